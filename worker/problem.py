@@ -1,0 +1,83 @@
+"""The interface every compiled problem offers to the solvers.
+
+A *compiled problem* is a document turned into arrays.  The solvers in
+``worker/solvers.py`` only ever talk to this interface, so tabular and grid
+problems share one set of solvers, bounds and reports.
+
+Conventions
+-----------
+* States are flattened in C order over ``shape`` (grid: endogenous states
+  first, then shocks; tabular: ``(n_states,)``).  ``v`` is always a float64
+  vector of length ``n``.
+* A *policy* is an int64 vector of length ``n`` holding, per state, the flat
+  index of the chosen alternative in the problem's choice space (tabular: the
+  action index; grid: the C-order flat index over the product of choices).
+"""
+
+from __future__ import annotations
+
+from typing import Any, Protocol
+
+import numpy as np
+import scipy.sparse as sp
+
+
+class CompiledProblem(Protocol):
+    """What a compiled document must provide."""
+
+    discount: float
+    """β, in (0, 1)."""
+    shape: tuple[int, ...]
+    """Shape of the value array (states then shocks; tabular ``(n_states,)``)."""
+    n: int
+    """Number of (flattened) states, ``prod(shape)``."""
+    axes: dict[str, list[float] | list[str]]
+    """Result-document ``axes``: grid values per axis, in array-axis order."""
+    hints_active: bool
+    """True when ``bellman_step(..., restricted=True)`` exploits hints."""
+
+    def bellman_step(
+        self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Apply the Bellman operator once.
+
+        Parameters
+        ----------
+        v : (n,) float64
+            Current value function.
+        restricted : bool
+            Exploit the document's hints (monotone/concave); only meaningful
+            when ``hints_active``.  ``False`` must be the exact maximum over
+            every allowed choice.
+        policy_guess : (n,) int64 or None
+            Previous policy, which a kernel may use to speed the search.
+
+        Returns
+        -------
+        Tv : (n,) float64
+        policy : (n,) int64  greedy choice (ties: lowest index).
+        """
+
+    def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
+        """``r_σ + β P_σ v`` for a fixed policy σ; (n,) → (n,)."""
+
+    def policy_reward(self, policy: np.ndarray) -> np.ndarray:
+        """``r_σ``, the per-state reward of the policy; shape (n,)."""
+
+    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
+        """``P_σ``, the (n, n) row-stochastic transition matrix of the policy."""
+
+    def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any]]:
+        """Result-document ``policy`` and ``policy_index``: nested lists of
+        shape ``shape`` per choice (tabular: ``{"action": [labels]}``)."""
+
+    def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
+        """Per choice name, the (n,) numeric value chosen (tabular: the action
+        index as float).  Used for means in reports and simulations."""
+
+    def state_values(self) -> dict[str, np.ndarray]:
+        """Per axis name, the (n,) value of that axis at each flat state."""
+
+    def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
+        """Problem-specific diagnostics for the final policy (edge hits,
+        clamped next states, warnings: a list of plain-English strings)."""
