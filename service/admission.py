@@ -1,0 +1,93 @@
+"""What every submitted document goes through before anything is stored or queued.
+
+:func:`admit` validates (``service.schema.parse_document``), estimates
+(``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
+runs the cheap grid feasibility check when the worker package offers one, and
+checks that a warm start names a finished job the caller may read.  It never
+builds the problem and never imports the numba kernels, so bad input is
+answered at the door (422 / 413) and never reaches a worker.
+"""
+
+from __future__ import annotations
+
+import importlib
+from collections.abc import Callable
+from typing import Any
+
+from service.schema import InitialJob, ProblemDocument, parse_document
+from service.settings import Settings
+from service.store import JobStore, is_job_id
+from worker.errors import InvalidDocument, TooLarge
+from worker.estimate import estimate
+
+__all__ = ["Admitted", "admit"]
+
+_MIB = 2**20
+FEASIBILITY_CHECK = ("worker.feasibility", "check_feasible")
+"""Module and function of the optional cheap feasibility check, ``check(doc) -> None`` raising ``InfeasibleModel``."""
+
+
+class Admitted:
+    """A document that passed the door: the validated form and its size estimate."""
+
+    __slots__ = ("document", "estimate")
+
+    def __init__(self, document: ProblemDocument, size: dict[str, Any]) -> None:
+        self.document = document
+        self.estimate = size
+
+
+def admit(
+    raw: dict[str, Any],
+    settings: Settings,
+    *,
+    store: JobStore | None = None,
+    may_see: Callable[[dict[str, Any]], bool] | None = None,
+) -> Admitted:
+    """Validate, estimate and size-check ``raw``; raise ``InvalidDocument`` or ``TooLarge``.
+
+    With ``store``, a warm start (``solver.initial.job``) must name a ``done``
+    job whose record ``may_see`` accepts.
+    """
+    document = parse_document(raw)
+    cap = int(settings.max_problem_mb * _MIB)
+    size = estimate(document, limits={"max_bytes": cap})
+    if size["bytes"] > cap:
+        raise TooLarge.at(
+            "model",
+            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['states']:,} states × "
+            f"{size['choices']:,} choices), over the cap max_problem_mb = {settings.max_problem_mb:g} MiB; "
+            "use coarser grids or fewer choices",
+            estimate=size,
+        )
+    check = _feasibility_check()
+    if check is not None:
+        check(document)
+    if store is not None:
+        _check_warm_start(document, store, may_see or (lambda record: True))
+    return Admitted(document, size)
+
+
+def _feasibility_check() -> Callable[[ProblemDocument], None] | None:
+    module_name, function = FEASIBILITY_CHECK
+    try:
+        module = importlib.import_module(module_name)
+    except ModuleNotFoundError as exc:
+        if exc.name != module_name:
+            raise
+        return None
+    return getattr(module, function, None)
+
+
+def _check_warm_start(document: ProblemDocument, store: JobStore, may_see: Callable[[dict[str, Any]], bool]) -> None:
+    initial = document.solver.initial
+    if not isinstance(initial, InitialJob):
+        return
+    path = "solver.initial.job"
+    record = store.get_job(initial.job) if is_job_id(initial.job) else None
+    if record is None or not may_see(record):
+        raise InvalidDocument.at(path, f"there is no job {initial.job!r} to start from")
+    if record["state"] != "done":
+        raise InvalidDocument.at(path, f"job {initial.job} is {record['state']}; a warm start needs a job that is done")
+    if not store.redis.exists(store.keys.result(initial.job)):
+        raise InvalidDocument.at(path, f"the result of job {initial.job} has expired; start from another job")

@@ -1,0 +1,401 @@
+"""The ``fixq`` command: run the service, or talk to one.
+
+Exit codes: 0 success; 1 the job failed or was canceled, or the API refused the
+request (unknown job, result not ready, ...); 2 usage error or an invalid
+problem document (including one too large); 3 the API cannot be reached.
+The API's URL comes from ``FIXQ_URL`` (default http://127.0.0.1:8000) and the
+key from ``FIXQ_KEY``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import ipaddress
+import json
+import math
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+from typing import Any, NoReturn, TextIO
+
+import httpx
+
+from service.client import APIError, FixqClient
+
+__all__ = ["main"]
+
+EXIT_OK, EXIT_FAILED, EXIT_INVALID, EXIT_UNREACHABLE = 0, 1, 2, 3
+STOP_GRACE_S = 10.0
+"""Seconds a child of ``fixq run`` gets to stop after SIGTERM before SIGKILL."""
+WARM_STOP_S = 2.0
+"""Seconds a worker of ``fixq run`` gets to finish its job before it is told to drop it."""
+PROGRESS_EVERY_S = 2.0
+"""Seconds between two progress lines when stderr is not a terminal."""
+
+
+class _Stop(Exception):
+    """SIGTERM or SIGINT reached ``fixq run``."""
+
+
+def _parser() -> argparse.ArgumentParser:
+    parser = argparse.ArgumentParser(
+        prog="fixq",
+        description="Solve discounted dynamic programs as a service.",
+        epilog=__doc__.split("\n\n", 1)[1],
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    commands = parser.add_subparsers(dest="command", required=True, metavar="COMMAND")
+
+    run = commands.add_parser("run", help="all in one: (embedded) Redis, the API and one worker")
+    api = commands.add_parser("api", help="serve the HTTP API")
+    for sub in (run, api):
+        sub.add_argument("--host", help="address to listen on (default FIXQ_HOST, 127.0.0.1)")
+        sub.add_argument("--port", type=int, help="port to listen on (default FIXQ_PORT, 8000)")
+    worker = commands.add_parser("worker", help="run one worker that solves queued jobs")
+    worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
+
+    submit = commands.add_parser("submit", help="queue a problem document; prints the job id")
+    submit.add_argument("file", help="the problem document (JSON); - reads standard input")
+    submit.add_argument("--wait", action="store_true", help="show progress and wait for the job to finish")
+    status = commands.add_parser("status", help="show a job")
+    status.add_argument("id")
+    status.add_argument("--json", action="store_true", help="print the job record as JSON")
+    result = commands.add_parser("result", help="print or save a job's result")
+    result.add_argument("id")
+    result.add_argument("-o", "--output", help="write to this file instead of standard output")
+    result.add_argument("--format", choices=("json", "csv"), default="json")
+    check = commands.add_parser("check", help="validate a document and estimate its size; queues nothing")
+    check.add_argument("file", help="the problem document (JSON); - reads standard input")
+    cancel = commands.add_parser("cancel", help="cancel a queued or running job")
+    cancel.add_argument("id")
+    return parser
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point of the ``fixq`` console script; returns the exit code."""
+    args = _parser().parse_args(argv)
+    handler = _COMMANDS[args.command]
+    try:
+        return handler(args)
+    except APIError as exc:
+        _print_problem(exc)
+        return EXIT_INVALID if exc.status in (413, 422) else EXIT_FAILED
+    except httpx.TransportError as exc:
+        print(f"fixq: cannot reach the API at {_url()}: {exc}", file=sys.stderr)
+        return EXIT_UNREACHABLE
+    except KeyboardInterrupt:
+        return 130
+
+
+def _url() -> str:
+    return os.environ.get("FIXQ_URL", "http://127.0.0.1:8000")
+
+
+def _print_problem(exc: APIError) -> None:
+    print(f"fixq: {exc}", file=sys.stderr)
+    for error in exc.errors:
+        print(f"  {error.get('path') or '(document)'}: {error.get('message')}", file=sys.stderr)
+
+
+def _read_document(file: str) -> dict[str, Any]:
+    try:
+        text = sys.stdin.read() if file == "-" else Path(file).read_text(encoding="utf-8")
+    except OSError as exc:
+        _usage_error(f"cannot read {file}: {exc.strerror}")
+    try:
+        document = json.loads(text)
+    except json.JSONDecodeError as exc:
+        _usage_error(f"{file} is not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}")
+    if not isinstance(document, dict):
+        _usage_error(f"{file}: a problem document is a JSON object")
+    return document
+
+
+def _usage_error(message: str) -> NoReturn:
+    print(f"fixq: {message}", file=sys.stderr)
+    raise SystemExit(EXIT_INVALID)
+
+
+def _cmd_submit(args: argparse.Namespace) -> int:
+    document = _read_document(args.file)
+    with FixqClient() as client:
+        job = client.submit(document)
+        print(job["id"], flush=True)
+        if not args.wait:
+            return EXIT_OK
+        tolerance = float((document.get("solver") or {}).get("tolerance", 1e-6))
+        bar = ProgressBar(sys.stderr, tolerance)
+        record = client.wait(job["id"], on_progress=bar.update)
+        bar.close()
+    state = record.get("state")
+    print(f"fixq: job {record['id']} {_outcome(record)}", file=sys.stderr)
+    return EXIT_OK if state == "done" else EXIT_FAILED
+
+
+def _outcome(record: dict[str, Any]) -> str:
+    state = record.get("state")
+    if state == "done":
+        text = f"done: {record.get('status') or 'finished'}"
+        if record.get("iterations") is not None:
+            text += f" after {record['iterations']} iterations"
+        if record.get("error_bound") is not None:
+            text += f", error bound {record['error_bound']:.3g}"
+        return text
+    if state == "failed":
+        return f"failed: {record.get('error') or 'no reason recorded'}"
+    return str(state)
+
+
+class ProgressBar:
+    """Convergence progress on a terminal line: iteration, distance, bound.
+
+    The bar fills as the error bound falls from its first value to the
+    tolerance, on a log scale (each iteration shrinks it by about β).
+    """
+
+    WIDTH = 24
+
+    def __init__(self, stream: TextIO, tolerance: float) -> None:
+        self.stream = stream
+        self.tolerance = tolerance
+        self.first_bound: float | None = None
+        self.live = stream.isatty()
+        self.last_print = 0.0
+        self.printed = False
+        self.pending: str | None = None
+
+    def fraction(self, bound: float) -> float:
+        """Share of the way from the first bound to the tolerance, in [0, 1]."""
+        if self.first_bound is None or bound <= self.tolerance:
+            return 1.0 if bound <= self.tolerance else 0.0
+        span = math.log(self.first_bound / self.tolerance)
+        if span <= 0:
+            return 1.0
+        return min(1.0, max(0.0, math.log(self.first_bound / bound) / span))
+
+    def update(self, entry: dict[str, Any]) -> None:
+        """Show one convergence-log entry."""
+        bound = entry.get("error_bound")
+        if bound is None or not math.isfinite(bound):
+            bound = math.inf
+        elif self.first_bound is None and bound > 0:
+            self.first_bound = bound
+        filled = round(self.fraction(bound) * self.WIDTH)
+        line = (
+            f"iteration {entry.get('iteration', '?'):>6}  distance {entry.get('distance', math.nan):9.3e}  "
+            f"bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
+        )
+        now = time.monotonic()
+        if self.live:
+            self.stream.write("\r" + line)
+            self.stream.flush()
+            self.printed = True
+        elif now - self.last_print >= PROGRESS_EVERY_S:
+            self.stream.write(line + "\n")
+            self.stream.flush()
+            self.last_print = now
+            self.pending = None
+        else:
+            self.pending = line
+
+    def close(self) -> None:
+        """End the progress line (or print the last entry not yet shown)."""
+        if self.live and self.printed:
+            self.stream.write("\n")
+        elif self.pending is not None:
+            self.stream.write(self.pending + "\n")
+        self.stream.flush()
+
+
+def _cmd_status(args: argparse.Namespace) -> int:
+    with FixqClient() as client:
+        record = client.status(args.id)
+    if args.json:
+        print(json.dumps(record, indent=2))
+        return EXIT_OK
+    progress = record.get("progress") or {}
+    rows = [
+        ("job", record.get("id")),
+        ("label", record.get("label")),
+        ("state", _outcome(record)),
+        ("iterations", record.get("iterations") if record.get("iterations") is not None else progress.get("iteration")),
+        ("error bound", record.get("error_bound") if record.get("error_bound") is not None else progress.get("error_bound")),
+        ("submitted", record.get("submitted_at")),
+        ("started", record.get("started_at")),
+        ("finished", record.get("finished_at")),
+    ]
+    for name, value in rows:
+        if value not in (None, "", []):
+            print(f"{name:<12} {value}")
+    return EXIT_OK
+
+
+def _cmd_result(args: argparse.Namespace) -> int:
+    with FixqClient() as client:
+        result = client.result(args.id, format=args.format)
+    text = result if isinstance(result, str) else json.dumps(result)
+    if args.output:
+        Path(args.output).write_text(text if text.endswith("\n") else text + "\n", encoding="utf-8")
+    else:
+        sys.stdout.write(text if text.endswith("\n") else text + "\n")
+    return EXIT_OK
+
+
+def _cmd_check(args: argparse.Namespace) -> int:
+    document = _read_document(args.file)
+    with FixqClient() as client:
+        report = client.check(document)
+    print(json.dumps(report, indent=2))
+    return EXIT_OK
+
+
+def _cmd_cancel(args: argparse.Namespace) -> int:
+    with FixqClient() as client:
+        record = client.cancel(args.id)
+    print(f"job {record.get('id')}: {record.get('state')}")
+    return EXIT_OK
+
+
+def _cmd_api(args: argparse.Namespace) -> int:
+    import uvicorn
+
+    from service.settings import get_settings
+
+    settings = get_settings()
+    uvicorn.run(
+        "service.app:create_app",
+        factory=True,
+        host=args.host or settings.host,
+        port=args.port or settings.port,
+        timeout_graceful_shutdown=5,
+        log_level="info",
+        access_log=False,
+    )
+    return EXIT_OK
+
+
+def _cmd_worker(args: argparse.Namespace) -> int:
+    from worker.task import run_worker
+
+    run_worker(burst=args.burst)
+    return EXIT_OK
+
+
+def _is_loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def _cmd_run(args: argparse.Namespace) -> int:
+    from service.settings import get_settings
+
+    settings = get_settings()
+    host = args.host or settings.host
+    port = args.port or settings.port
+    env = dict(os.environ)
+    auth_on = settings.auth
+    if "FIXQ_AUTH" not in os.environ and _is_loopback(host):
+        env["FIXQ_AUTH"] = "off"
+        auth_on = False
+    signal.signal(signal.SIGTERM, _raise_stop)
+    signal.signal(signal.SIGINT, _raise_stop)
+    redis_server = None
+    children: list[tuple[str, subprocess.Popen[bytes]]] = []
+    try:
+        if settings.redis_url is None:
+            from service.embedded_redis import start_embedded_redis
+
+            redis_server = start_embedded_redis(settings)
+            env["FIXQ_REDIS_URL"] = redis_server.url
+            print(f"fixq: embedded Redis at {redis_server.url} (data in {settings.embedded_redis_dir})", flush=True)
+        else:
+            print(f"fixq: Redis at {settings.redis_url}", flush=True)
+        if not auth_on:
+            reason = "FIXQ_AUTH=off" if "FIXQ_AUTH" in os.environ else f"{host} is loopback"
+            print(f"fixq: auth is OFF ({reason}): anyone who can reach the port can submit and cancel", flush=True)
+        else:
+            print("fixq: auth is on: requests need Authorization: Bearer KEY", flush=True)
+        command = [sys.executable, "-m", "service.cli"]
+        children.append(("api", _spawn([*command, "api", "--host", host, "--port", str(port)], env)))
+        children.append(("worker", _spawn([*command, "worker"], env)))
+        print(f"fixq: API on http://{host}:{port} and one worker; Ctrl-C stops everything", flush=True)
+        while True:
+            for name, child in children:
+                if child.poll() is not None:
+                    print(f"fixq: the {name} process exited with {child.returncode}; stopping", file=sys.stderr)
+                    return EXIT_FAILED
+            time.sleep(0.2)
+    except _Stop:
+        print("fixq: stopping", flush=True)
+        return EXIT_OK
+    finally:
+        signal.signal(signal.SIGINT, signal.SIG_IGN)
+        signal.signal(signal.SIGTERM, signal.SIG_IGN)
+        for name, child in children:
+            _stop_child(child, repeat_after_s=WARM_STOP_S if name == "worker" else None)
+        if redis_server is not None:
+            redis_server.stop()
+
+
+def _raise_stop(signum: int, frame: object) -> None:
+    raise _Stop
+
+
+def _spawn(command: list[str], env: dict[str, str]) -> subprocess.Popen[bytes]:
+    # Own session: a Ctrl-C on the terminal reaches only `fixq run`, which then
+    # stops its children in order; the parent-death signal stops them too if
+    # `fixq run` itself is killed.
+    return subprocess.Popen(command, env=env, start_new_session=True, preexec_fn=_die_with_parent)
+
+
+def _die_with_parent() -> None:
+    if sys.platform.startswith("linux"):
+        import ctypes
+
+        pr_set_pdeathsig = 1
+        ctypes.CDLL("libc.so.6", use_errno=True).prctl(pr_set_pdeathsig, signal.SIGTERM)
+
+
+def _stop_child(child: subprocess.Popen[bytes], *, repeat_after_s: float | None = None) -> None:
+    """SIGTERM, optionally a second SIGTERM, then SIGKILL after ``STOP_GRACE_S``.
+
+    An RQ worker treats the first SIGTERM as "finish the current job" and a
+    second one (at least a second later) as "kill the work-horse and exit";
+    the interrupted job resumes from its checkpoint on the next start.
+    """
+    if child.poll() is not None:
+        return
+    child.send_signal(signal.SIGTERM)
+    if repeat_after_s is not None:
+        try:
+            child.wait(repeat_after_s)
+            return
+        except subprocess.TimeoutExpired:
+            child.send_signal(signal.SIGTERM)
+    try:
+        child.wait(STOP_GRACE_S)
+    except subprocess.TimeoutExpired:
+        child.kill()
+        child.wait()
+
+
+_COMMANDS = {
+    "run": _cmd_run,
+    "api": _cmd_api,
+    "worker": _cmd_worker,
+    "submit": _cmd_submit,
+    "status": _cmd_status,
+    "result": _cmd_result,
+    "check": _cmd_check,
+    "cancel": _cmd_cancel,
+}
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,201 @@
+"""A small Python client for the fixq HTTP API (the CLI is built on it).
+
+>>> with FixqClient("http://127.0.0.1:8000") as fixq:      # doctest: +SKIP
+...     job = fixq.submit(document)
+...     record = fixq.wait(job["id"], on_progress=print)
+...     result = fixq.result(job["id"])
+
+Errors answered by the API raise :class:`APIError`, which carries the RFC 9457
+problem body; a server that cannot be reached raises ``httpx.TransportError``.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import time
+from collections.abc import Callable, Iterator
+from typing import Any
+
+import httpx
+
+__all__ = ["DEFAULT_URL", "APIError", "FixqClient"]
+
+DEFAULT_URL = "http://127.0.0.1:8000"
+TERMINAL_STATES = frozenset({"done", "failed", "canceled"})
+RECONNECT_S = 1.0
+"""Seconds to wait before re-opening a progress stream that broke."""
+
+
+class APIError(Exception):
+    """Raised when the API answers with an error status.
+
+    ``status`` is the HTTP status and ``problem`` the problem-details body
+    (``type``, ``title``, ``detail`` and, for invalid documents, ``errors``).
+    """
+
+    def __init__(self, status: int, problem: dict[str, Any]) -> None:
+        self.status = status
+        self.problem = problem
+        super().__init__(f"{status} {problem.get('title', 'error')}: {problem.get('detail', '')}".rstrip(": "))
+
+    @property
+    def errors(self) -> list[dict[str, str]]:
+        """The ``{path, message}`` list of an invalid document (else empty)."""
+        return list(self.problem.get("errors") or [])
+
+
+class FixqClient:
+    """Talks to one fixq API.
+
+    Parameters
+    ----------
+    url : str, optional
+        Base URL of the API; default ``FIXQ_URL`` or ``http://127.0.0.1:8000``.
+    key : str, optional
+        API key sent as ``Authorization: Bearer``; default ``FIXQ_KEY``.
+    timeout_s : float
+        Timeout of each request, in seconds.
+    transport : httpx.BaseTransport, optional
+        For tests (``httpx.MockTransport``, a WSGI/ASGI bridge).
+    """
+
+    def __init__(
+        self,
+        url: str | None = None,
+        key: str | None = None,
+        *,
+        timeout_s: float = 30.0,
+        transport: httpx.BaseTransport | None = None,
+    ) -> None:
+        self.url = (url or os.environ.get("FIXQ_URL") or DEFAULT_URL).rstrip("/")
+        key = key if key is not None else os.environ.get("FIXQ_KEY")
+        headers = {"Authorization": f"Bearer {key}"} if key else {}
+        self._http = httpx.Client(base_url=self.url, headers=headers, timeout=timeout_s, transport=transport)
+
+    def __enter__(self) -> FixqClient:
+        return self
+
+    def __exit__(self, *exc_info: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the connection pool."""
+        self._http.close()
+
+    def _request(self, method: str, path: str, **kwargs: Any) -> httpx.Response:
+        response = self._http.request(method, path, **kwargs)
+        if response.status_code >= 400:
+            raise _api_error(response)
+        return response
+
+    def submit(self, document: dict[str, Any], *, idempotency_key: str | None = None) -> dict[str, Any]:
+        """Queue a problem document; returns the job record (``id``, ``state``...)."""
+        headers = {"Idempotency-Key": idempotency_key} if idempotency_key else None
+        return self._request("POST", "/v1/jobs", json=document, headers=headers).json()
+
+    def check(self, document: dict[str, Any]) -> dict[str, Any]:
+        """Validate a document and estimate its size, memory and time."""
+        return self._request("POST", "/v1/check", json=document).json()
+
+    def status(self, job_id: str) -> dict[str, Any]:
+        """The job record."""
+        return self._request("GET", f"/v1/jobs/{job_id}").json()
+
+    def result(self, job_id: str, *, format: str = "json") -> dict[str, Any] | str:
+        """The result document (``format="json"``) or the long table (``"csv"``)."""
+        response = self._request("GET", f"/v1/jobs/{job_id}/result", params={"format": format})
+        return response.json() if format == "json" else response.text
+
+    def log(self, job_id: str, *, cursor: int | None = None, limit: int | None = None) -> dict[str, Any]:
+        """One page of the convergence log: ``{"data": [...], "next": cursor}``."""
+        params = {k: v for k, v in {"cursor": cursor, "limit": limit}.items() if v is not None}
+        return self._request("GET", f"/v1/jobs/{job_id}/log", params=params).json()
+
+    def cancel(self, job_id: str) -> dict[str, Any]:
+        """Ask for a queued or running job to stop; returns the job record."""
+        return self._request("DELETE", f"/v1/jobs/{job_id}").json()
+
+    def jobs(self, **filters: Any) -> dict[str, Any]:
+        """One page of the job list (filters ``state``, ``tag``, ``label``, ``cursor``, ``limit``)."""
+        params = {k: v for k, v in filters.items() if v is not None}
+        return self._request("GET", "/v1/jobs", params=params).json()
+
+    def health(self) -> dict[str, Any]:
+        """``/healthz``: ``{"status": "ok", "redis": "ok"}`` when all is well."""
+        return self._request("GET", "/healthz").json()
+
+    def stream_log(self, job_id: str, *, after: int | None = None) -> Iterator[tuple[str, dict[str, Any]]]:
+        """Follow the live log (SSE): yields ``("entry", entry)`` then ``("end", {"state": ...})``.
+
+        ``after`` is the last iteration already seen (sent as ``Last-Event-ID``).
+        """
+        headers = {"Accept": "text/event-stream"}
+        if after is not None:
+            headers["Last-Event-ID"] = str(after)
+        timeout = httpx.Timeout(self._http.timeout.connect, read=None)
+        with self._http.stream("GET", f"/v1/jobs/{job_id}/log", headers=headers, timeout=timeout) as response:
+            if response.status_code >= 400:
+                response.read()
+                raise _api_error(response)
+            event, data = "message", []
+            for line in response.iter_lines():
+                if line == "":
+                    if data:
+                        yield event, json.loads("\n".join(data))
+                    event, data = "message", []
+                elif line.startswith("event:"):
+                    event = line[6:].strip()
+                elif line.startswith("data:"):
+                    data.append(line[5:].lstrip())
+
+    def wait(
+        self,
+        job_id: str,
+        *,
+        on_progress: Callable[[dict[str, Any]], None] | None = None,
+        timeout_s: float | None = None,
+    ) -> dict[str, Any]:
+        """Block until the job is done, failed or canceled; returns its final record.
+
+        ``on_progress(entry)`` is called with each convergence-log entry
+        (``iteration``, ``distance``, ``error_bound``...) as it is made.  A
+        broken stream (say, the API restarted) is re-opened where it left off.
+        """
+        deadline = None if timeout_s is None else time.monotonic() + timeout_s
+        last_iteration: int | None = None
+        while True:
+            ended = False
+            try:
+                for event, data in self.stream_log(job_id, after=last_iteration):
+                    if event == "entry":
+                        last_iteration = data.get("iteration", last_iteration)
+                        if on_progress is not None:
+                            on_progress(data)
+                    elif event == "end":
+                        ended = True
+                        break
+                    if deadline is not None and time.monotonic() > deadline:
+                        break
+            except (httpx.TransportError, httpx.StreamError):
+                pass
+            try:
+                record = self.status(job_id)
+            except httpx.TransportError:
+                record = {"state": None}
+            if record.get("state") in TERMINAL_STATES:
+                return record
+            if deadline is not None and time.monotonic() > deadline:
+                raise TimeoutError(f"job {job_id} not finished after {timeout_s} s")
+            if not ended:
+                time.sleep(RECONNECT_S)
+
+
+def _api_error(response: httpx.Response) -> APIError:
+    try:
+        problem = response.json()
+    except ValueError:
+        problem = {"title": response.reason_phrase, "detail": response.text[:200]}
+    if not isinstance(problem, dict):
+        problem = {"title": response.reason_phrase, "detail": str(problem)[:200]}
+    return APIError(response.status_code, problem)

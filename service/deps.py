@@ -1,0 +1,127 @@
+"""Dependencies of the routes, as ``Annotated`` aliases: settings, Redis, the job store, the caller.
+
+``Owner`` is the one place authentication plugs in: every route that touches
+jobs takes it, and a key system replaces :func:`current_owner` alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Annotated, Any
+
+import orjson
+import redis
+from fastapi import Depends, Request
+
+from service.problems import Problem
+from service.settings import Settings
+from service.store import JobStore
+from worker.errors import InvalidDocument
+
+__all__ = [
+    "ANONYMOUS",
+    "Caller",
+    "JsonObject",
+    "Owner",
+    "RedisDep",
+    "SettingsDep",
+    "StoreDep",
+    "current_owner",
+    "read_json_object",
+]
+
+ANONYMOUS = "anonymous"
+"""Owner name of every job submitted while auth is off."""
+
+
+@dataclass(frozen=True)
+class Caller:
+    """Who is asking: the owner recorded on their jobs, and whether they see everyone's."""
+
+    owner: str
+    admin: bool = False
+
+    def may_see(self, record: dict[str, Any]) -> bool:
+        """True when this caller may read and cancel the job ``record``."""
+        return self.admin or record.get("owner") == self.owner
+
+    @property
+    def listed_owner(self) -> str | None:
+        """The owner filter of this caller's job list (None: every owner)."""
+        return None if self.admin else self.owner
+
+
+def _settings(request: Request) -> Settings:
+    return request.app.state.settings
+
+
+def _redis(request: Request) -> redis.Redis:
+    return request.app.state.redis
+
+
+def _store(request: Request) -> JobStore:
+    return request.app.state.store
+
+
+SettingsDep = Annotated[Settings, Depends(_settings)]
+RedisDep = Annotated[redis.Redis, Depends(_redis)]
+StoreDep = Annotated[JobStore, Depends(_store)]
+
+
+def current_owner(request: Request, settings: SettingsDep) -> Caller:
+    """The caller.  With auth off everyone is ``anonymous`` and sees every job.
+
+    With auth on, a request needs ``Authorization: Bearer KEY``; until API keys
+    exist, no key is valid, so every such request is refused with 401.
+    """
+    if not settings.auth:
+        return Caller(ANONYMOUS, admin=True)
+    challenge = {"WWW-Authenticate": 'Bearer realm="fixq"'}
+    scheme, _, key = request.headers.get("authorization", "").partition(" ")
+    if scheme.lower() != "bearer" or not key.strip():
+        raise Problem(401, "unauthorized", "this API needs a key: send Authorization: Bearer KEY", headers=challenge)
+    raise Problem(
+        401,
+        "unauthorized",
+        "the key is not valid (this server has no API keys yet; run it with FIXQ_AUTH=off on a trusted network)",
+        headers=challenge,
+    )
+
+
+Owner = Annotated[Caller, Depends(current_owner)]
+
+
+async def read_json_object(request: Request) -> dict[str, Any]:
+    """The request body parsed as one JSON object (strict JSON: no NaN, no trailing commas)."""
+    body = await request.body()
+    if not body.strip():
+        raise Problem(400, "malformed-json", "the request body is empty; send a JSON object", title="malformed JSON")
+    try:
+        value = orjson.loads(body)
+    except orjson.JSONDecodeError as exc:
+        raise Problem(
+            400,
+            "malformed-json",
+            f"the request body is not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno} "
+            f"(character {exc.pos})",
+            title="malformed JSON",
+            line=exc.lineno,
+            column=exc.colno,
+            position=exc.pos,
+        ) from None
+    if not isinstance(value, dict):
+        raise InvalidDocument.at("", f"a problem document is a JSON object, not {_json_kind(value)}")
+    return value
+
+
+def _json_kind(value: Any) -> str:
+    if isinstance(value, list):
+        return "an array"
+    if isinstance(value, str):
+        return "a string"
+    if isinstance(value, bool) or value is None:
+        return orjson.dumps(value).decode()
+    return "a number"
+
+
+JsonObject = Annotated[dict[str, Any], Depends(read_json_object)]

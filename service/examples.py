@@ -1,0 +1,125 @@
+"""The bundled example problems: invented scenarios to start from.
+
+Each example is one problem document in ``service/examples/NAME.json``;
+``NAME`` is its file stem.  The documents are read from the installed package
+on every call (they are a few kilobytes), so an edited file is seen at once
+and callers may change what they get without touching anyone else's copy.
+
+Used by ``GET /v1/examples`` and by the ``fixq examples`` command.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+__all__ = ["DESCRIPTIONS", "EXAMPLES_DIR", "UnknownExample", "example_names", "list_examples", "load_example"]
+
+EXAMPLES_DIR = Path(__file__).with_name("examples")
+"""Folder holding one ``NAME.json`` problem document per example."""
+
+_NAME = re.compile(r"^[a-z][a-z0-9_]*$")
+
+# The problem document has no free-text field beyond its label, so the longer
+# description of each example lives here (tests check that the two lists match).
+DESCRIPTIONS: dict[str, str] = {
+    "fishery_harvest": (
+        "A fishery sets this season's harvest; the stock left behind regrows logistically, "
+        "scaled by this season's ocean conditions (a law of motion in `next`)."
+    ),
+    "household_saving": (
+        "A household splits cash on hand between consumption and saving under persistent income risk; "
+        "it cannot borrow more than 1 (the lowest asset level)."
+    ),
+    "job_search": (
+        "A job seeker draws one wage offer per period and either takes the job or keeps searching "
+        "on benefits: optimal stopping with a reservation wage."
+    ),
+    "machine_replacement": (
+        "A machine shop runs a lathe that wears out at random; running costs rise with wear "
+        "and a replacement costs 30 (a tabular model with sparse transitions)."
+    ),
+    "plant_capacity": (
+        "A plant chooses next year's capacity under persistent demand shocks: it sells the smaller of "
+        "capacity and demand, pays upkeep, cannot disinvest, and pays a convex cost of expanding (monotone hint)."
+    ),
+    "roastery_growth": (
+        "A coffee roastery chooses its roasting capacity and its marketing; marketing grows a customer base "
+        "that churns (two endogenous states, so its plots are heatmaps)."
+    ),
+}
+
+
+class UnknownExample(LookupError):
+    """Raised by :func:`load_example` for a name that is not a bundled example."""
+
+    def __init__(self, name: str) -> None:
+        self.name = name
+        super().__init__(f"no example named {name!r}; the examples are: {', '.join(example_names())}")
+
+
+def example_names() -> list[str]:
+    """Names of the bundled examples, sorted."""
+    return sorted(path.stem for path in EXAMPLES_DIR.glob("*.json") if _NAME.match(path.stem))
+
+
+def load_example(name: str) -> dict[str, Any]:
+    """The problem document of one example, as a fresh dict.
+
+    Raises
+    ------
+    UnknownExample
+        when ``name`` is not one of :func:`example_names`.
+    """
+    if not _NAME.match(name):
+        raise UnknownExample(name)
+    path = EXAMPLES_DIR / f"{name}.json"
+    if not path.is_file():
+        raise UnknownExample(name)
+    return json.loads(path.read_text(encoding="utf-8"))
+
+
+def list_examples() -> list[dict[str, Any]]:
+    """One summary per example: ``name``, ``label``, ``tags``, ``kind``, ``states``, ``description``.
+
+    ``states`` is the number of points of the value function (tabular: the
+    number of states; grid: the product of the state and shock grid sizes),
+    which says at a glance how big the example is.
+    """
+    return [_summary(name, load_example(name)) for name in example_names()]
+
+
+def _summary(name: str, document: dict[str, Any]) -> dict[str, Any]:
+    model = document.get("model") or {}
+    return {
+        "name": name,
+        "label": document.get("label", name),
+        "tags": list(document.get("tags") or []),
+        "kind": model.get("kind"),
+        "states": _state_count(model),
+        "description": DESCRIPTIONS.get(name, ""),
+    }
+
+
+def _state_count(model: dict[str, Any]) -> int | None:
+    if model.get("kind") == "tabular":
+        states = model.get("states")
+        return states if isinstance(states, int) else len(states or [])
+    count = 1
+    for axis in (*(model.get("states") or {}).values(), *(model.get("shocks") or {}).values()):
+        count *= _axis_size(axis)
+    return count
+
+
+def _axis_size(axis: dict[str, Any]) -> int:
+    if "values" in axis:
+        return len(axis["values"])
+    if "points" in axis:
+        return int(axis["points"])
+    for family in ("ar1", "markov", "iid"):
+        if family in axis:
+            spec = axis[family]
+            return int(spec["points"]) if "points" in spec else len(spec["values"])
+    return 1

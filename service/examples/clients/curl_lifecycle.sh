@@ -1,0 +1,62 @@
+#!/usr/bin/env bash
+# The whole life of a fixq job with curl (and jq to read JSON).
+#
+# Tested: the fixq test suite runs this exact script against a live server.
+#
+#   FIXQ_URL=http://127.0.0.1:8000 FIXQ_KEY=... bash curl_lifecycle.sh [OUTDIR]
+#
+# Fetches the bundled machine-shop example (an invented scenario), checks it,
+# submits it, follows its progress, reads the result as JSON and as a CSV
+# table, saves a plot, lists jobs by tag, and cancels a second job.
+# FIXQ_KEY may be left unset when the server runs with auth off.
+set -euo pipefail
+
+url=${FIXQ_URL:-http://127.0.0.1:8000}
+out=${1:-.}
+mkdir -p "$out"
+
+auth=()
+if [ -n "${FIXQ_KEY:-}" ]; then
+    auth=(-H "Authorization: Bearer $FIXQ_KEY")
+fi
+# --fail-with-body: exit non-zero on 4xx/5xx but still print fixq's problem details.
+fixq() { curl -sS --fail-with-body "${auth[@]}" "$@"; }
+
+# 1. An example document to start from; edit it as you like.
+fixq "$url/v1/examples/machine_replacement" >"$out/problem.json"
+jq '.label = "machine shop, base case (invented scenario)" | .tags += ["curl"]' \
+    "$out/problem.json" >"$out/problem.edited.json"
+
+# 2. Validate and estimate without queueing anything.
+fixq -X POST -H "Content-Type: application/json" --data-binary @"$out/problem.edited.json" \
+    "$url/v1/check" | jq -c '{states: .estimate.states, choices: .estimate.choices}'
+
+# 3. Submit. The Idempotency-Key makes a retried POST return the same job.
+job=$(fixq -X POST -H "Content-Type: application/json" -H "Idempotency-Key: machine-shop-base-1" \
+    --data-binary @"$out/problem.edited.json" "$url/v1/jobs" | jq -r .id)
+echo "submitted job $job"
+
+# 4. Wait: poll the job record (or follow the live log: curl -N -H 'Accept: text/event-stream' .../log).
+state=queued
+for _ in $(seq 1 240); do
+    state=$(fixq "$url/v1/jobs/$job" | jq -r .state)
+    case $state in queued | running) sleep 0.5 ;; *) break ;; esac
+done
+echo "job $job is $state"
+[ "$state" = done ] || exit 1
+
+# 5. The result: status and bound, the policy per state, the long CSV table, a plot, the log.
+fixq "$url/v1/jobs/$job/result" >"$out/result.json"
+jq -r '"\(.status): \(.iterations) iterations, error bound \(.error_bound)"' "$out/result.json"
+jq -r '[.axes.state, .policy.action] | transpose[] | "\(.[0])\t\(.[1])"' "$out/result.json"
+fixq "$url/v1/jobs/$job/result?format=csv" >"$out/result.csv"
+fixq "$url/v1/jobs/$job/plots/policy.png" >"$out/policy.png"
+fixq "$url/v1/jobs/$job/log" | jq -c '.data[-1]'
+
+# 6. Find jobs again by tag.
+fixq "$url/v1/jobs?tag=curl" | jq -r '.data[] | "\(.id) \(.state) \(.label)"'
+
+# 7. Cancel a job: a queued or running job stops (a finished one is left as it is).
+slow=$(jq '.solver = {"method": "value_iteration", "tolerance": 1e-12, "max_iterations": 100000}' \
+    "$out/problem.edited.json" | fixq -X POST -H "Content-Type: application/json" --data-binary @- "$url/v1/jobs" | jq -r .id)
+fixq -X DELETE "$url/v1/jobs/$slow" | jq -c '{id, state}'

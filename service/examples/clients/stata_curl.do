@@ -1,0 +1,66 @@
+* Solve a fixq example from Stata by shelling out to curl, and read the
+* solution table (CSV) into the dataset in memory.
+*
+* NOT TESTED HERE: Stata is not installed on the machine that runs fixq's tests.
+* The same curl calls are tested in curl_lifecycle.sh.
+*
+*   FIXQ_URL and FIXQ_KEY come from the environment (FIXQ_KEY may be unset
+*   when the server runs with auth off); curl must be on the PATH (it ships
+*   with Windows 10 and later, macOS and Linux). Then:  do stata_curl.do
+
+version 16
+clear all
+
+local url : env FIXQ_URL
+if "`url'" == "" local url "http://127.0.0.1:8000"
+local key : env FIXQ_KEY
+local auth ""
+if "`key'" != "" local auth `"-H "Authorization: Bearer `key'""'
+
+tempfile document jobfile
+local curl `"curl -sS --fail-with-body `auth'"'
+
+* 1. The bundled household-saving example (an invented scenario), as is.
+shell `curl' -o "`document'" "`url'/v1/examples/household_saving"
+
+* 2. Submit it; fixq answers 202 with the job record, whose "id" we read.
+shell `curl' -H "Content-Type: application/json" --data-binary @"`document'" -o "`jobfile'" "`url'/v1/jobs"
+file open fh using "`jobfile'", read text
+file read fh line
+file close fh
+if !regexm(`"`macval(line)'"', `""id" *: *"([0-9a-f]+)""') {
+    display as error "fixq did not accept the job: `macval(line)'"
+    exit 498
+}
+local job = regexs(1)
+display "submitted job `job'"
+
+* 3. Wait until the job is no longer queued or running.
+local state "queued"
+forvalues attempt = 1/240 {
+    shell `curl' -o "`jobfile'" "`url'/v1/jobs/`job'"
+    file open fh using "`jobfile'", read text
+    file read fh line
+    file close fh
+    if regexm(`"`macval(line)'"', `""state" *: *"([a-z]+)""') local state = regexs(1)
+    if !inlist("`state'", "queued", "running") continue, break
+    sleep 500
+}
+if "`state'" != "done" {
+    display as error "job `job' ended `state'"
+    exit 498
+}
+
+* 4. The long table: one row per grid point with assets, income, value, assets_next.
+tempfile table
+shell `curl' -o "`table'" "`url'/v1/jobs/`job'/result?format=csv"
+import delimited using "`table'", clear
+describe
+list in 1/10
+
+* The saving rule as a wide table: one column of next assets per income state.
+keep assets income assets_next
+egen income_state = group(income)
+drop income
+reshape wide assets_next, i(assets) j(income_state)
+list in 1/10

@@ -1,0 +1,423 @@
+"""Pictures of a job: its convergence log, value function and policy, as SVG or PNG.
+
+Everything here reads plain result documents (DESIGN section 5) and log
+entries; nothing touches Redis or HTTP, so the router and the tests share it.
+
+* ``convergence`` — distance between iterates and the certified error bound
+  against the iteration, on a log scale (a horizontal line marks the target
+  tolerance when known).
+* ``value`` / ``policy`` — one endogenous state: a line per shock state
+  (every combination of shocks).  Two or more endogenous states: a heatmap of
+  the first two at one shock state (others held at their middle grid point).
+  Tabular problems: a bar per state.
+
+matplotlib is used through its object API (``Figure`` + the Agg canvas): no
+pyplot, so no global figure registry and no display backend.  SVG text is
+drawn as paths, so a picture needs no font on the machine that shows it.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+import threading
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any, Literal
+
+import numpy as np
+from matplotlib import rc_context
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.cm import ScalarMappable
+from matplotlib.colors import LinearSegmentedColormap, Normalize
+from matplotlib.figure import Figure
+
+from service.problems import Problem
+
+__all__ = [
+    "FORMATS",
+    "MEDIA_TYPES",
+    "AxisLayout",
+    "axis_layout",
+    "convergence_plot",
+    "policy_plot",
+    "shock_labels",
+    "value_plot",
+]
+
+Format = Literal["svg", "png"]
+FORMATS: tuple[str, ...] = ("svg", "png")
+MEDIA_TYPES: dict[str, str] = {"svg": "image/svg+xml", "png": "image/png"}
+
+FIGURE_SIZE_IN: tuple[float, float] = (7.2, 4.2)
+"""Width and height of every picture, in inches."""
+PNG_DPI: int = 130
+"""Raster resolution of PNG pictures, in dots per inch (7.2 in → 936 px)."""
+MAX_LEGEND_LINES: int = 9
+"""Above this many shock states the lines share a colour ramp and a colour bar
+replaces the legend (a legend of 30 entries hides the plot)."""
+
+INK = "#23303d"
+PAPER = "#fbfaf6"
+RULE = "#dcdfe2"
+PALETTE: tuple[str, ...] = (
+    "#1b7f79",  # lagoon
+    "#c4572b",  # brick
+    "#d4a020",  # mustard
+    "#4c5aa8",  # slate blue
+    "#6b8e23",  # moss
+    "#b4487a",  # mulberry
+    "#3f9ad1",  # harbour
+    "#8a6a4f",  # walnut
+    "#5d6b75",  # pewter
+)
+HEAT = LinearSegmentedColormap.from_list("fixq_heat", ["#f6f1e3", "#e8c872", "#5fa89a", "#1b5f6e", "#1d2a44"])
+RAMP = LinearSegmentedColormap.from_list("fixq_ramp", ["#e0a24a", "#1b7f79", "#23303d"])
+
+# matplotlib's font cache and text layout are shared between figures, and the
+# API answers plot requests from a thread pool: draw one picture at a time.
+_RENDER_LOCK = threading.Lock()
+
+
+@dataclass(frozen=True)
+class AxisLayout:
+    """Which result axes are endogenous states and which are shocks.
+
+    ``states`` and ``shocks`` are axis names in array-axis order; ``tabular``
+    is true for a finite Markov decision problem (one axis of state labels).
+    """
+
+    states: tuple[str, ...]
+    shocks: tuple[str, ...]
+    tabular: bool = False
+
+
+def axis_layout(result: dict[str, Any], document: dict[str, Any] | None = None) -> AxisLayout:
+    """Split a result's axes into endogenous states and shocks.
+
+    The result alone does not say which axes are shocks; the submitted
+    document does (``model.states`` vs ``model.shocks``).  Without a document
+    the first axis is taken as the one state and the rest as shocks, which is
+    right for the common one-state models.
+    """
+    names = list(result.get("axes") or {})
+    model = (document or {}).get("model") or {}
+    if model.get("kind") == "tabular" or (not model and _looks_tabular(result)):
+        return AxisLayout(states=tuple(names[:1]), shocks=(), tabular=True)
+    if model:
+        declared_states = list(model.get("states") or {})
+        declared_shocks = list(model.get("shocks") or {})
+        states = tuple(n for n in names if n in declared_states)
+        shocks = tuple(n for n in names if n in declared_shocks)
+        if len(states) + len(shocks) == len(names):
+            return AxisLayout(states=states, shocks=shocks)
+    return AxisLayout(states=tuple(names[:1]), shocks=tuple(names[1:]))
+
+
+def _looks_tabular(result: dict[str, Any]) -> bool:
+    axes = result.get("axes") or {}
+    policy = result.get("policy") or {}
+    return len(axes) == 1 and list(policy) == ["action"]
+
+
+def convergence_plot(
+    log: Sequence[dict[str, Any]],
+    *,
+    tolerance: float | None = None,
+    title: str | None = None,
+    fmt: Format = "svg",
+) -> bytes:
+    """Distance and error bound against the iteration, log scale.
+
+    Parameters
+    ----------
+    log : sequence of log entries (``iteration``, ``distance``, ``error_bound``)
+    tolerance : the document's target error bound, drawn as a dashed line
+    title : heading above the plot (default: none)
+    fmt : ``"svg"`` or ``"png"``
+    """
+    fig, ax = _figure()
+    iterations = np.array([float(e.get("iteration", i + 1)) for i, e in enumerate(log)])
+    for key, name, colour in (
+        ("distance", "distance between iterates", PALETTE[0]),
+        ("error_bound", "certified error bound", PALETTE[1]),
+    ):
+        y = _positive([e.get(key) for e in log])
+        if np.isfinite(y).any():
+            ax.plot(iterations, y, color=colour, lw=1.8, marker="o" if len(log) <= 40 else None, ms=3.5, label=name, gid=f"series-{key}")
+    if tolerance is not None and tolerance > 0:
+        ax.axhline(tolerance, color=INK, lw=1.0, ls=(0, (4, 3)), label=f"tolerance {tolerance:g}")
+    if not log:
+        ax.text(0.5, 0.5, "no iterations logged yet", transform=ax.transAxes, ha="center", va="center", color=INK)
+        ax.set_yticks([])
+    else:
+        ax.set_yscale("log")
+        ax.legend(frameon=False, loc="upper right")
+    ax.set_xlabel("iteration")
+    ax.set_ylabel("sup-norm (log scale)")
+    ax.xaxis.get_major_locator().set_params(integer=True)
+    return _finish(fig, ax, title, fmt)
+
+
+def value_plot(
+    result: dict[str, Any],
+    *,
+    layout: AxisLayout | None = None,
+    shock: int | None = None,
+    title: str | None = None,
+    fmt: Format = "svg",
+) -> bytes:
+    """The value function of a result document (see module docstring)."""
+    layout = layout or axis_layout(result)
+    values = np.asarray(result.get("value"), dtype=float)
+    return _field_plot(result, layout, values, "value", shock, title, fmt)
+
+
+def policy_plot(
+    result: dict[str, Any],
+    *,
+    layout: AxisLayout | None = None,
+    choice: str | None = None,
+    shock: int | None = None,
+    title: str | None = None,
+    fmt: Format = "svg",
+) -> bytes:
+    """One choice of a result's policy; ``choice`` defaults to the first."""
+    layout = layout or axis_layout(result)
+    policy = result.get("policy") or {}
+    if not policy:
+        raise _bad_query("choice", "this result has no policy to plot")
+    if choice is None:
+        choice = next(iter(policy))
+    elif choice not in policy:
+        raise _bad_query("choice", f"unknown choice {choice!r}; this policy has {', '.join(map(repr, policy))}")
+    if layout.tabular:
+        labels = [str(a) for a in policy[choice]]
+        index = (result.get("policy_index") or {}).get(choice)
+        return _tabular_policy(result, labels, index, choice, title, fmt)
+    values = np.asarray(policy[choice], dtype=float)
+    return _field_plot(result, layout, values, choice, shock, title, fmt)
+
+
+def _field_plot(
+    result: dict[str, Any],
+    layout: AxisLayout,
+    field: np.ndarray,
+    name: str,
+    shock: int | None,
+    title: str | None,
+    fmt: Format,
+) -> bytes:
+    axes: dict[str, list[Any]] = result.get("axes") or {}
+    if layout.tabular:
+        labels = [str(s) for s in next(iter(axes.values()), range(field.size))]
+        return _tabular_bars(labels, field.ravel(), name, title, fmt)
+    shape = tuple(len(axes[a]) for a in (*layout.states, *layout.shocks))
+    if field.shape != shape:
+        raise ValueError(f"{name}: array of shape {field.shape} does not match the axes {shape}")
+    n_states = len(layout.states)
+    shock_count = int(np.prod(shape[n_states:], dtype=int)) if layout.shocks else 1
+    if shock is not None and not 0 <= shock < shock_count:
+        raise _bad_query("shock", f"shock index {shock} is out of range: this model has {shock_count} shock states")
+    by_shock = field.reshape(shape[:n_states] + (shock_count,))
+    labels = shock_labels(axes, layout.shocks)
+    if n_states == 1:
+        x = np.asarray(axes[layout.states[0]], dtype=float)
+        first_shock = axes[layout.shocks[0]] if layout.shocks else []
+        return _lines(x, first_shock, by_shock, layout, labels, name, title, fmt)
+    return _heatmap(axes, layout, by_shock, labels, shock or 0, name, title, fmt)
+
+
+def shock_labels(axes: dict[str, list[Any]], shocks: Sequence[str]) -> list[str]:
+    """One label per flat shock state (C order over ``shocks``), e.g. ``"z=0.95, y=1"``."""
+    if not shocks:
+        return [""]
+    grids = [[f"{s}={_num(v)}" for v in axes[s]] for s in shocks]
+    labels = [""]
+    for grid in grids:
+        labels = [f"{a}, {b}" if a else b for a in labels for b in grid]
+    return labels
+
+
+def _lines(
+    x: np.ndarray,
+    shock_axis_values: Sequence[Any],
+    by_shock: np.ndarray,
+    layout: AxisLayout,
+    labels: list[str],
+    name: str,
+    title: str | None,
+    fmt: Format,
+) -> bytes:
+    fig, ax = _figure()
+    count = by_shock.shape[1]
+    ramp = count > MAX_LEGEND_LINES
+    for j in range(count):
+        colour = RAMP(j / max(count - 1, 1)) if ramp else PALETTE[j % len(PALETTE)]
+        ax.plot(x, by_shock[:, j], color=colour, lw=1.6, label=labels[j] or None, gid=f"series-{j}")
+    if ramp:
+        # One shock: the colour bar reads in its own values; several: in the flat shock index.
+        if len(layout.shocks) == 1:
+            shock_values = np.asarray(shock_axis_values, dtype=float)
+            low, high, label = float(shock_values[0]), float(shock_values[-1]), layout.shocks[0]
+        else:
+            low, high, label = 0.0, float(count - 1), "shock state index"
+        _colorbar(fig, ax, _mappable(RAMP, low, high), label)
+    elif layout.shocks:
+        ax.legend(frameon=False, fontsize=8.5, loc="best")
+    ax.set_xlabel(layout.states[0])
+    ax.set_ylabel(name)
+    return _finish(fig, ax, title, fmt)
+
+
+def _heatmap(
+    axes: dict[str, list[Any]],
+    layout: AxisLayout,
+    by_shock: np.ndarray,
+    labels: list[str],
+    shock: int,
+    name: str,
+    title: str | None,
+    fmt: Format,
+) -> bytes:
+    first, second = layout.states[:2]
+    held = {s: len(axes[s]) // 2 for s in layout.states[2:]}
+    plane = by_shock[(slice(None), slice(None), *held.values(), shock)]
+    x = np.asarray(axes[second], dtype=float)
+    y = np.asarray(axes[first], dtype=float)
+    fig, ax = _figure()
+    finite = plane[np.isfinite(plane)]
+    if finite.size:
+        # Rasterised inside the SVG: a vector mesh of 200 x 200 cells would be megabytes of paths.
+        mesh = ax.pcolormesh(
+            _edges(x), _edges(y), np.ma.masked_invalid(plane), cmap=HEAT, shading="flat", rasterized=True
+        )
+        _colorbar(fig, ax, mesh, name)
+    ax.set_xlabel(second)
+    ax.set_ylabel(first)
+    notes = [labels[shock]] if labels[shock] else []
+    notes += [f"{s}={_num(axes[s][i])}" for s, i in held.items()]
+    if notes:
+        ax.set_title(", ".join(notes), fontsize=9, color=INK, loc="right")
+    return _finish(fig, ax, title, fmt, grid=False)
+
+
+def _tabular_bars(labels: list[str], heights: np.ndarray, name: str, title: str | None, fmt: Format) -> bytes:
+    fig, ax = _figure()
+    positions = np.arange(len(labels))
+    _tag_bars(ax.bar(positions, heights, color=PALETTE[0], width=0.72))
+    _state_ticks(ax, labels)
+    ax.set_ylabel(name)
+    ax.axhline(0.0, color=INK, lw=0.8)
+    return _finish(fig, ax, title, fmt)
+
+
+def _tabular_policy(
+    result: dict[str, Any],
+    chosen: list[str],
+    index: list[int] | None,
+    name: str,
+    title: str | None,
+    fmt: Format,
+) -> bytes:
+    states = [str(s) for s in next(iter((result.get("axes") or {}).values()), range(len(chosen)))]
+    # Order actions by their index in the model when known, else by first use.
+    actions: list[str] = []
+    if index is not None and len(index) == len(chosen):
+        by_index = sorted({(int(i), a) for i, a in zip(index, chosen)})
+        actions = [a for _, a in by_index]
+    for a in chosen:
+        if a not in actions:
+            actions.append(a)
+    level = {a: k for k, a in enumerate(actions)}
+    fig, ax = _figure()
+    positions = np.arange(len(chosen))
+    heights = np.array([level[a] + 1 for a in chosen], dtype=float)
+    colours = [PALETTE[level[a] % len(PALETTE)] for a in chosen]
+    _tag_bars(ax.bar(positions, heights, color=colours, width=0.72))
+    ax.set_yticks(np.arange(1, len(actions) + 1), actions)
+    ax.set_ylim(0, len(actions) + 0.5)
+    _state_ticks(ax, states)
+    ax.set_ylabel(name)
+    return _finish(fig, ax, title, fmt)
+
+
+def _tag_bars(bars: Any) -> None:
+    for i, patch in enumerate(bars):
+        patch.set_gid(f"bar-{i}")
+
+
+def _state_ticks(ax: Any, labels: list[str]) -> None:
+    step = max(1, math.ceil(len(labels) / 24))
+    shown = list(range(0, len(labels), step))
+    ax.set_xticks(shown, [labels[i] for i in shown], rotation=45 if max(map(len, labels), default=0) > 3 else 0)
+    for tick in ax.get_xticklabels():
+        tick.set_horizontalalignment("right" if tick.get_rotation() else "center")
+    ax.set_xlabel("state")
+    ax.set_xlim(-0.6, len(labels) - 0.4)
+
+
+def _figure() -> tuple[Figure, Any]:
+    fig = Figure(figsize=FIGURE_SIZE_IN, facecolor=PAPER, layout="constrained")
+    FigureCanvasAgg(fig)
+    ax = fig.add_subplot()
+    ax.set_facecolor("#ffffff")
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    for side in ("left", "bottom"):
+        ax.spines[side].set_color(INK)
+    ax.tick_params(colors=INK, labelsize=9)
+    ax.xaxis.label.set_color(INK)
+    ax.yaxis.label.set_color(INK)
+    return fig, ax
+
+
+def _colorbar(fig: Figure, ax: Any, mappable: Any, label: str) -> None:
+    bar = fig.colorbar(mappable, ax=ax, pad=0.02, fraction=0.05)
+    bar.outline.set_visible(False)
+    bar.ax.tick_params(colors=INK, labelsize=9)
+    bar.set_label(label, color=INK)
+
+
+def _finish(fig: Figure, ax: Any, title: str | None, fmt: Format, *, grid: bool = True) -> bytes:
+    if grid:
+        ax.grid(True, color=RULE, lw=0.7)
+        ax.set_axisbelow(True)
+    if title:
+        fig.suptitle(title, color=INK, fontsize=11, x=0.01, ha="left")
+    if fmt not in FORMATS:
+        raise _bad_query("format", f"unknown picture format {fmt!r}; use svg or png")
+    out = io.BytesIO()
+    # A fixed salt makes the SVG's generated ids, hence its bytes, repeatable.
+    with _RENDER_LOCK, rc_context({"svg.hashsalt": "fixq"}):
+        if fmt == "svg":
+            fig.savefig(out, format="svg", metadata={"Date": None})
+        else:
+            fig.savefig(out, format="png", dpi=PNG_DPI, metadata={"Software": None})
+    return out.getvalue()
+
+
+def _bad_query(parameter: str, message: str) -> Problem:
+    return Problem(400, "invalid-request", f"query.{parameter}: {message}", errors=[{"path": f"query.{parameter}", "message": message}])
+
+
+def _positive(values: Sequence[Any]) -> np.ndarray:
+    """Floats with non-positive and missing entries as NaN (a log axis cannot show them)."""
+    out = np.array([v if isinstance(v, (int, float)) else np.nan for v in values], dtype=float)
+    out[~(out > 0)] = np.nan
+    return out
+
+
+def _edges(centres: np.ndarray) -> np.ndarray:
+    if centres.size == 1:
+        return np.array([centres[0] - 0.5, centres[0] + 0.5])
+    mid = (centres[1:] + centres[:-1]) / 2
+    return np.concatenate([[2 * centres[0] - mid[0]], mid, [2 * centres[-1] - mid[-1]]])
+
+
+def _mappable(cmap: Any, low: float, high: float) -> ScalarMappable:
+    return ScalarMappable(norm=Normalize(low, high), cmap=cmap)
+
+
+def _num(value: Any) -> str:
+    return f"{value:.4g}" if isinstance(value, float) else str(value)

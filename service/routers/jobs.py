@@ -1,0 +1,287 @@
+"""``/v1/jobs``: submit, read, follow, cancel and list jobs."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import AsyncIterator
+from typing import Annotated, Any, Literal
+
+import anyio
+import orjson
+from fastapi import APIRouter, Header, Query, Request, Response
+from fastapi.responses import StreamingResponse
+from pydantic import BaseModel, ConfigDict
+
+from service.admission import admit
+from service.deps import JsonObject, Owner, SettingsDep, StoreDep
+from service.problems import Problem
+from service.schema import document_hash
+from service.store import TERMINAL_STATES, JobStore, is_job_id
+from service.tables import csv_chunks
+
+__all__ = ["router"]
+
+router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
+
+LOG_PAGE_MAX = 1000
+"""Most log entries in one page of ``GET /v1/jobs/{id}/log`` (entries)."""
+LIST_PAGE_MAX = 200
+"""Most jobs in one page of ``GET /v1/jobs`` (jobs)."""
+SSE_FIRST_POLL_S = 0.005
+"""Seconds between the first polls of a live log; the wait grows towards ``sse_poll_s``
+so that short jobs are followed closely and long ones cheaply."""
+SSE_KEEPALIVE_S = 15.0
+"""Seconds of silence after which a live log sends a comment line, so proxies keep it open."""
+SSE_BATCH = 500
+"""Most log entries read from Redis per poll of a live log (entries)."""
+
+JobState = Literal["queued", "running", "done", "failed", "canceled"]
+
+
+class Progress(BaseModel):
+    """The latest convergence-log entry of a running job."""
+
+    model_config = ConfigDict(extra="allow")
+    iteration: int | None = None
+    distance: float | None = None
+    error_bound: float | None = None
+    seconds: float | None = None
+
+
+class JobRecord(BaseModel):
+    """A job: its state, times, progress and, once finished, how it ended."""
+
+    model_config = ConfigDict(extra="allow")
+    id: str
+    state: JobState
+    label: str | None = None
+    tags: list[str] = []
+    owner: str | None = None
+    priority: str | None = None
+    submitted_at: str | None = None
+    started_at: str | None = None
+    finished_at: str | None = None
+    attempts: int = 0
+    progress: Progress | None = None
+    estimate: dict[str, Any] | None = None
+    status: str | None = None
+    iterations: int | None = None
+    error_bound: float | None = None
+    error: dict[str, Any] | None = None
+    links: dict[str, str] = {}
+
+
+class JobPage(BaseModel):
+    """One page of jobs, newest first; ``next`` is the cursor of the next page."""
+
+    data: list[JobRecord]
+    next: str | None
+
+
+class LogPage(BaseModel):
+    """One page of the convergence log; ``next`` is the cursor of the next page."""
+
+    data: list[dict[str, Any]]
+    next: int | None
+
+
+def _job_or_404(store: JobStore, job_id: str, owner: Owner) -> dict[str, Any]:
+    record = store.get_job(job_id) if is_job_id(job_id) else None
+    if record is None or not owner.may_see(record):
+        raise Problem(404, "not-found", f"there is no job {job_id!r}")
+    return record
+
+
+@router.post("", status_code=202, response_model=JobRecord, openapi_extra={"requestBody": {
+    "required": True, "content": {"application/json": {"schema": {"$ref": "/v1/schema"}}}}})  # fmt: skip
+def submit_job(
+    raw: JsonObject,
+    owner: Owner,
+    store: StoreDep,
+    settings: SettingsDep,
+    response: Response,
+    idempotency_key: Annotated[str | None, Header(max_length=256)] = None,
+) -> dict[str, Any]:
+    """Validate a problem document and queue it; answers the job record."""
+    admitted = admit(raw, settings, store=store, may_see=owner.may_see)
+    record = store.create_job(
+        raw,
+        owner=owner.owner,
+        estimate=admitted.estimate,
+        document_hash=document_hash(admitted.document),
+        idempotency_key=idempotency_key,
+    )
+    response.headers["Location"] = f"/v1/jobs/{record['id']}"
+    return record
+
+
+@router.get("", response_model=JobPage)
+def list_jobs(
+    owner: Owner,
+    store: StoreDep,
+    state: Annotated[list[JobState] | None, Query(description="Only jobs in these states (repeatable).")] = None,
+    tag: Annotated[str | None, Query(max_length=200, description="Only jobs carrying this tag.")] = None,
+    label: Annotated[str | None, Query(max_length=500, description="Only jobs with exactly this label.")] = None,
+    cursor: Annotated[str | None, Query(max_length=200, description="The `next` of the previous page.")] = None,
+    limit: Annotated[int, Query(ge=1, le=LIST_PAGE_MAX, description="Most jobs on the page.")] = 50,
+) -> dict[str, Any]:
+    """List jobs, newest first, filtered by state, tag or label; paginated."""
+    try:
+        records, next_cursor = store.list_jobs(
+            owner=owner.listed_owner, state=state, tag=tag, label=label, cursor=cursor, limit=limit
+        )
+    except ValueError as exc:
+        raise Problem(400, "invalid-request", str(exc), errors=[{"path": "query.cursor", "message": str(exc)}]) from None
+    return {"data": records, "next": next_cursor}
+
+
+@router.get("/{job_id}", response_model=JobRecord)
+def get_job(job_id: str, owner: Owner, store: StoreDep) -> dict[str, Any]:
+    """The job record: state, times, progress (iteration, distance, error bound)."""
+    return _job_or_404(store, job_id, owner)
+
+
+@router.get("/{job_id}/result", responses={200: {"content": {"text/csv": {}}}})
+def get_result(
+    job_id: str,
+    owner: Owner,
+    store: StoreDep,
+    request: Request,
+    format: Annotated[Literal["json", "csv"] | None, Query(description="json (default) or csv.")] = None,
+) -> Response:
+    """The result document once the job is done; `?format=csv` gives the long table."""
+    record = _job_or_404(store, job_id, owner)
+    if record["state"] != "done":
+        raise Problem(
+            409,
+            "not-ready",
+            _not_ready(record),
+            title="result not ready",
+            state=record["state"],
+            progress=record.get("progress"),
+        )
+    result = store.get_result(job_id)
+    if result is None:
+        raise Problem(410, "expired", f"the result of job {job_id} has expired (results are kept result_ttl_s)")
+    if format is None:
+        format = "csv" if "text/csv" in request.headers.get("accept", "") else "json"
+    if format == "csv":
+        return StreamingResponse(
+            csv_chunks(result),
+            media_type="text/csv; charset=utf-8",
+            headers={"Content-Disposition": f'attachment; filename="fixq-{job_id}.csv"'},
+        )
+    return Response(orjson.dumps(result), media_type="application/json")
+
+
+def _not_ready(record: dict[str, Any]) -> str:
+    state = record["state"]
+    job = f"job {record['id']}"
+    if state == "queued":
+        return f"{job} is queued; the result is ready when it is done"
+    if state == "running":
+        progress = record.get("progress") or {}
+        where = ""
+        if progress.get("iteration") is not None:
+            where = f" (iteration {progress['iteration']}"
+            if progress.get("error_bound") is not None:
+                where += f", error bound {progress['error_bound']:.3g}"
+            where += ")"
+        return f"{job} is running{where}; the result is ready when it is done"
+    if state == "failed":
+        error = record.get("error") or {}
+        return f"{job} failed: {error.get('detail') or error.get('title') or 'no reason recorded'}; it has no result"
+    return f"{job} was canceled; it has no result"
+
+
+@router.get("/{job_id}/log", response_model=LogPage, responses={200: {"content": {"text/event-stream": {}}}})
+async def get_log(
+    job_id: str,
+    owner: Owner,
+    store: StoreDep,
+    settings: SettingsDep,
+    request: Request,
+    cursor: Annotated[int, Query(ge=0, description="Index of the first entry (the `next` of the previous page).")] = 0,
+    limit: Annotated[int, Query(ge=1, le=LOG_PAGE_MAX, description="Most entries on the page.")] = LOG_PAGE_MAX,
+    last_event_id: Annotated[str | None, Header(max_length=32)] = None,
+) -> Any:
+    """The convergence log; with `Accept: text/event-stream`, live progress (SSE) until the job ends."""
+    await anyio.to_thread.run_sync(_job_or_404, store, job_id, owner)
+    if "text/event-stream" in request.headers.get("accept", ""):
+        after = int(last_event_id) if last_event_id and last_event_id.isdigit() else 0
+        return StreamingResponse(
+            _live_log(store, job_id, after, settings.sse_poll_s),
+            media_type="text/event-stream",
+            headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
+        )
+    entries, length = await anyio.to_thread.run_sync(_log_page, store, job_id, cursor, limit)
+    end = cursor + len(entries)
+    return {"data": entries, "next": end if end < length else None}
+
+
+def _log_page(store: JobStore, job_id: str, cursor: int, limit: int) -> tuple[list[dict[str, Any]], int]:
+    with store.redis.pipeline(transaction=True) as pipe:
+        pipe.lrange(store.keys.log(job_id), cursor, cursor + limit - 1)
+        pipe.llen(store.keys.log(job_id))
+        rows, length = pipe.execute()
+    return [orjson.loads(row) for row in rows], int(length)
+
+
+def _poll_log(store: JobStore, job_id: str, cursor: int) -> tuple[list[bytes], int, str | None]:
+    """New log rows from ``cursor``, the log's length and the job's state: one atomic round trip."""
+    with store.redis.pipeline(transaction=True) as pipe:
+        pipe.lrange(store.keys.log(job_id), cursor, cursor + SSE_BATCH - 1)
+        pipe.llen(store.keys.log(job_id))
+        pipe.hget(store.keys.job(job_id), "state")
+        rows, length, state = pipe.execute()
+    return rows, int(length), state.decode() if state is not None else None
+
+
+async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> AsyncIterator[bytes]:
+    """SSE: ``event: entry`` per log entry (``id:`` its iteration), then ``event: end``."""
+    # Entries are one per iteration, so the entry of iteration `after` sits at
+    # index after - 1; reading from index `after` and skipping what was sent
+    # also copes with a log trimmed back to a checkpoint and regrown.
+    cursor, sent = after, after
+    started = last_write = time.monotonic()
+    while True:
+        rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, cursor)
+        if length < cursor:
+            cursor = length
+        cursor += len(rows)
+        chunk = bytearray()
+        for row in rows:
+            entry = orjson.loads(row)
+            iteration = entry.get("iteration")
+            if isinstance(iteration, int):
+                if iteration <= sent:
+                    continue
+                sent = iteration
+                chunk += b"id: %d\n" % iteration
+            chunk += b"event: entry\ndata: " + row + b"\n\n"
+        now = time.monotonic()
+        if chunk:
+            last_write = now
+            yield bytes(chunk)
+        if len(rows) == SSE_BATCH:
+            continue
+        if state is None or state in TERMINAL_STATES:
+            yield b"event: end\ndata: " + orjson.dumps({"state": state or "missing"}) + b"\n\n"
+            return
+        if now - last_write >= SSE_KEEPALIVE_S:
+            last_write = now
+            yield b": keepalive\n\n"
+        await anyio.sleep(min(poll_s, SSE_FIRST_POLL_S + (now - started) / 10))
+
+
+@router.delete("/{job_id}", response_model=JobRecord, responses={202: {"model": JobRecord}})
+def cancel_job(job_id: str, owner: Owner, store: StoreDep, response: Response) -> dict[str, Any]:
+    """Cancel a queued job now, or ask a running one to stop (202) at its next sweep."""
+    _job_or_404(store, job_id, owner)
+    outcome = store.request_cancel(job_id)
+    if outcome is None:
+        raise Problem(404, "not-found", f"there is no job {job_id!r}")
+    if outcome["outcome"] == "cancel_requested":
+        response.status_code = 202
+    return outcome["job"]
+

@@ -1,0 +1,127 @@
+"""``/v1/jobs/{id}/plots``: pictures of a job, and what can be pictured.
+
+* ``convergence.svg|png`` — from the convergence log, at any time (a running
+  job's picture shows the iterations so far);
+* ``value.svg|png``, ``policy.svg|png`` — from the result, once ``done``
+  (``?shock=i`` picks the shock state of a heatmap, ``?choice=NAME`` the
+  policy's choice);
+* ``GET /v1/jobs/{id}/plots`` — a small JSON summary of a solved job: which
+  picture layout applies, the choices and shock states to pick from, and the
+  result's status and diagnostics without its arrays (the dashboard reads it
+  instead of downloading a possibly large result).
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Any, Literal
+
+from fastapi import APIRouter, Query
+from fastapi.responses import Response
+
+from service import plots
+from service.deps import Owner, StoreDep
+from service.problems import Problem
+from service.store import JobStore
+
+__all__ = ["router"]
+
+router = APIRouter(prefix="/v1/jobs", tags=["plots"])
+
+LOG_PAGE = 1000
+"""Log entries fetched from the store per round trip."""
+DONE_MAX_AGE_S = 3600
+"""How long a browser may reuse a picture of a finished job, in seconds (it never changes)."""
+
+Picture = Literal["convergence", "value", "policy"]
+Format = Literal["svg", "png"]
+
+
+@router.get("/{job_id}/plots")
+def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
+    """What the value and policy pictures of a solved job can show, and its diagnostics."""
+    job = readable_job(store, owner, job_id)
+    result = _result(store, job)
+    document = store.get_document(job_id)
+    layout = plots.axis_layout(result, document)
+    axes = result.get("axes") or {}
+    shock_labels = plots.shock_labels(axes, layout.shocks)
+    return {
+        "id": job_id,
+        "layout": "bars" if layout.tabular else ("lines" if len(layout.states) == 1 else "heatmap"),
+        "states": list(layout.states),
+        "shocks": list(layout.shocks),
+        "shock_labels": shock_labels if layout.shocks else [],
+        "choices": list(result.get("policy") or {}),
+        "tolerance": ((document or {}).get("solver") or {}).get("tolerance"),
+        **{key: result.get(key) for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "seconds")},
+        "diagnostics": result.get("diagnostics") or {},
+        "stationary": _without(result.get("stationary"), "distribution"),
+        "simulation": _without(result.get("simulation"), "first_path"),
+    }
+
+
+@router.get(
+    "/{job_id}/plots/{picture}.{fmt}",
+    response_class=Response,
+    responses={200: {"content": {"image/svg+xml": {}, "image/png": {}}}},
+)
+def plot(
+    job_id: str,
+    picture: Picture,
+    fmt: Format,
+    store: StoreDep,
+    owner: Owner,
+    choice: Annotated[str | None, Query(description="Policy pictures: the choice to draw (default: the first).")] = None,
+    shock: Annotated[
+        int | None, Query(ge=0, description="Heatmaps: the flat index of the shock state to draw (default 0).")
+    ] = None,
+) -> Response:
+    """A picture of a job: its convergence log, value function or policy, as SVG or PNG."""
+    job = readable_job(store, owner, job_id)
+    title = job.get("label") or None
+    if picture == "convergence":
+        log = _whole_log(store, job_id)
+        document = store.get_document(job_id) or {}
+        tolerance = (document.get("solver") or {}).get("tolerance")
+        body = plots.convergence_plot(log, tolerance=tolerance, title=title, fmt=fmt)
+        cache = f"private, max-age={DONE_MAX_AGE_S}" if job.get("state") in ("done", "failed", "canceled") else "no-store"
+    else:
+        result = _result(store, job)
+        layout = plots.axis_layout(result, store.get_document(job_id))
+        if picture == "value":
+            body = plots.value_plot(result, layout=layout, shock=shock, title=title, fmt=fmt)
+        else:
+            body = plots.policy_plot(result, layout=layout, choice=choice, shock=shock, title=title, fmt=fmt)
+        cache = f"private, max-age={DONE_MAX_AGE_S}"
+    return Response(body, media_type=plots.MEDIA_TYPES[fmt], headers={"Cache-Control": cache})
+
+
+def readable_job(store: JobStore, owner: Any, job_id: str) -> dict[str, Any]:
+    """The job record if it exists and the caller may see it; else 404 (another's job is not revealed)."""
+    job = store.get_job(job_id)
+    if job is None or not owner.may_see(job):
+        raise Problem(404, "not-found", f"no job {job_id!r}")
+    return job
+
+
+def _result(store: JobStore, job: dict[str, Any]) -> dict[str, Any]:
+    result = store.get_result(job["id"]) if job.get("state") == "done" else None
+    if result is None:
+        state = job.get("state")
+        if state == "done":
+            raise Problem(404, "not-found", "the result of this job has expired and is no longer stored")
+        raise Problem(409, "not-ready", f"the job is {state}: value and policy pictures exist once it is done", state=state)
+    return result
+
+
+def _whole_log(store: JobStore, job_id: str) -> list[dict[str, Any]]:
+    log: list[dict[str, Any]] = []
+    while True:
+        page = store.get_log(job_id, start=len(log), limit=LOG_PAGE)
+        log.extend(page)
+        if len(page) < LOG_PAGE:
+            return log
+
+
+def _without(block: dict[str, Any] | None, key: str) -> dict[str, Any] | None:
+    return None if block is None else {k: v for k, v in block.items() if k != key}

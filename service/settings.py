@@ -1,0 +1,79 @@
+"""fixq's settings: one class, read from ``FIXQ_*`` environment variables.
+
+Every field names its unit (``_s`` seconds, ``_mb`` mebibytes) or says it in
+its description.  ``get_settings()`` builds the object once per process; tests
+that change the environment call ``get_settings.cache_clear()``.
+"""
+
+from __future__ import annotations
+
+from functools import lru_cache
+from pathlib import Path
+
+from pydantic import Field
+from pydantic_settings import BaseSettings, SettingsConfigDict
+
+__all__ = ["Settings", "get_settings"]
+
+
+class Settings(BaseSettings):
+    """Configuration of the API, the workers and the embedded Redis server."""
+
+    model_config = SettingsConfigDict(env_prefix="FIXQ_", extra="ignore")
+
+    redis_url: str | None = Field(
+        None,
+        description="Redis URL, e.g. redis://host:6379/0. None: `fixq run` starts an embedded server.",
+    )
+    redis_prefix: str = Field("fixq", description="Prefix of every fixq key in Redis.", pattern=r"^[A-Za-z0-9_.-]+$")
+    embedded_redis_dir: Path = Field(
+        Path(".fixq/redis"), description="Data directory (append-only file, log) of the embedded Redis server."
+    )
+    embedded_redis_port: int | None = Field(
+        None, ge=1, le=65535, description="Loopback port of the embedded Redis server; None picks a free one."
+    )
+    result_ttl_s: int = Field(604_800, gt=0, description="Lifetime of a stored result and its log, in seconds (7 days).")
+    checkpoint_ttl_s: int = Field(
+        172_800, gt=0, description="Lifetime of a checkpoint after its last save, in seconds (2 days)."
+    )
+    lease_s: float = Field(
+        15.0,
+        gt=0,
+        description="Lifetime of an execution's lease in seconds; renewed every lease_s/3. A job whose lease "
+        "lapsed is taken to have lost its worker. Must exceed the longest single sweep of the solver.",
+    )
+    reaper_interval_s: float = Field(5.0, gt=0, description="Seconds between two passes of each worker's reaper.")
+    progress_interval_s: float = Field(
+        0.25, gt=0, description="Least seconds between two writes of progress and log entries to Redis."
+    )
+    stop_check_interval_s: float = Field(
+        0.1, gt=0, description="Least seconds between two Redis checks for a cancel flag or a lost lease."
+    )
+    max_attempts: int = Field(5, ge=1, description="Executions a job may start before the reaper fails it.")
+    job_timeout_s: int = Field(86_400, gt=0, description="RQ's hard limit on one execution, in seconds (24 h).")
+    idempotency_ttl_s: int = Field(86_400, gt=0, description="How long an Idempotency-Key is remembered, in seconds.")
+    max_problem_mb: float = Field(
+        4096.0, gt=0, description="Memory cap of one solve in MiB (2**20 bytes); larger estimates are refused."
+    )
+    worker_log_level: str = Field("INFO", description="Log level of worker processes (DEBUG, INFO, WARNING, ...).")
+
+    # Fields of the HTTP layer, the CLI and the dashboard are appended below.
+    auth: bool = Field(
+        True,
+        description="Require an API key (Authorization: Bearer). FIXQ_AUTH=off turns it off; `fixq run` on "
+        "loopback does so by default.",
+    )
+    host: str = Field("127.0.0.1", description="Address that `fixq api` and `fixq run` listen on.")
+    port: int = Field(8000, ge=1, le=65535, description="TCP port that `fixq api` and `fixq run` listen on.")
+    max_body_mb: float = Field(
+        128.0, gt=0, description="Largest accepted request body in MiB (2**20 bytes); larger ones get 413."
+    )
+    sse_poll_s: float = Field(
+        0.2, gt=0, description="Seconds between two Redis reads of a live log stream (SSE) per open stream."
+    )
+
+
+@lru_cache(maxsize=1)
+def get_settings() -> Settings:
+    """The process-wide settings, read from the environment on first use."""
+    return Settings()

@@ -1,0 +1,65 @@
+"""The long table of a result document (``GET /v1/jobs/{id}/result?format=csv``).
+
+One header row, then one row per point of the value function, in C order of
+its axes (states, then shocks; tabular: one row per state): the axis values,
+``value``, then the chosen value of each choice.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+
+__all__ = ["ROWS_PER_CHUNK", "csv_chunks", "table_columns"]
+
+ROWS_PER_CHUNK = 4096
+"""Rows formatted per chunk of the streamed CSV (rows)."""
+
+
+def table_columns(result: dict[str, Any]) -> tuple[list[str], list[np.ndarray]]:
+    """Column names and flat (n,) columns of the long table of ``result``."""
+    axes: dict[str, list[Any]] = result["axes"]
+    value = np.asarray(result["value"], dtype=float)
+    shape = tuple(len(values) for values in axes.values())
+    if value.shape != shape:
+        raise ValueError(f"value has shape {value.shape}, the axes give {shape}")
+    names = list(axes)
+    columns: list[np.ndarray] = []
+    if names:
+        grids = np.meshgrid(*(np.asarray(values, dtype=object) for values in axes.values()), indexing="ij")
+        columns = [grid.ravel() for grid in grids]
+    names.append(_unique("value", names))
+    columns.append(value.ravel())
+    for choice, chosen in (result.get("policy") or {}).items():
+        column = np.asarray(chosen, dtype=object)
+        if column.shape != shape:
+            raise ValueError(f"policy {choice!r} has shape {column.shape}, the axes give {shape}")
+        names.append(_unique(choice, names))
+        columns.append(column.ravel())
+    return names, columns
+
+
+def _unique(name: str, taken: list[str]) -> str:
+    while name in taken:
+        name += "_choice"
+    return name
+
+
+def csv_chunks(result: dict[str, Any]) -> Iterator[str]:
+    """The CSV text of the long table, in chunks of ``ROWS_PER_CHUNK`` rows."""
+    names, columns = table_columns(result)
+    buffer = io.StringIO()
+    writer = csv.writer(buffer, lineterminator="\n")
+    writer.writerow(names)
+    n = len(columns[0]) if columns else 0
+    for start in range(0, n, ROWS_PER_CHUNK):
+        writer.writerows(zip(*(column[start : start + ROWS_PER_CHUNK] for column in columns)))
+        yield buffer.getvalue()
+        buffer.seek(0)
+        buffer.truncate()
+    if buffer.tell():
+        yield buffer.getvalue()

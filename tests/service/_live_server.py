@@ -1,0 +1,92 @@
+"""A real fixq API (uvicorn) and worker as subprocesses, for tests that need a live server.
+
+Used by the dashboard's browser tests and by the client-script tests, which
+talk HTTP from outside the test process (a browser, curl, a Python script).
+The processes run in their own sessions and are stopped by their own ids.
+"""
+
+from __future__ import annotations
+
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import httpx
+
+from service.embedded_redis import free_port
+
+REPO = Path(__file__).resolve().parents[2]
+STARTUP_TIMEOUT_S = 60.0
+"""Seconds to wait for the API to answer /healthz."""
+STOP_TIMEOUT_S = 10.0
+"""Seconds to wait for a process to exit after SIGTERM before it is killed."""
+
+
+class LiveServer:
+    """``service.app:create_app`` under uvicorn on a free loopback port, plus workers on demand."""
+
+    def __init__(self, redis_url: str, log_dir: Path, **settings: str) -> None:
+        self.port = free_port()
+        self.url = f"http://127.0.0.1:{self.port}"
+        self.log_dir = log_dir
+        self.env = {**os.environ, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": str(REPO), **settings}
+        self.processes: list[tuple[str, subprocess.Popen[bytes]]] = []
+
+    def _spawn(self, name: str, command: list[str]) -> subprocess.Popen[bytes]:
+        log = open(self.log_dir / f"{name}-{len(self.processes)}.log", "wb")
+        process = subprocess.Popen(
+            command, cwd=REPO, env=self.env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
+        )
+        log.close()
+        self.processes.append((name, process))
+        return process
+
+    def start(self) -> LiveServer:
+        api = self._spawn(
+            "api",
+            [sys.executable, "-m", "uvicorn", "service.app:create_app", "--factory",
+             "--host", "127.0.0.1", "--port", str(self.port), "--log-level", "warning"],
+        )  # fmt: skip
+        deadline = time.monotonic() + STARTUP_TIMEOUT_S
+        while time.monotonic() < deadline:
+            if api.poll() is not None:
+                raise RuntimeError(f"the API exited with {api.returncode}:\n{self.logs()}")
+            try:
+                if httpx.get(f"{self.url}/healthz", timeout=1.0).status_code < 500:
+                    return self
+            except httpx.HTTPError:
+                pass
+            time.sleep(0.1)
+        raise RuntimeError(f"the API did not answer within {STARTUP_TIMEOUT_S:.0f} s:\n{self.logs()}")
+
+    def start_worker(self) -> subprocess.Popen[bytes]:
+        return self._spawn("worker", [sys.executable, "-m", "service.cli", "worker"])
+
+    def logs(self) -> str:
+        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in sorted(self.log_dir.glob("*.log")))
+
+    def stop(self) -> None:
+        for _, process in reversed(self.processes):
+            if process.poll() is None:
+                os.killpg(process.pid, signal.SIGTERM)
+        for _, process in reversed(self.processes):
+            try:
+                process.wait(STOP_TIMEOUT_S)
+            except subprocess.TimeoutExpired:
+                os.killpg(process.pid, signal.SIGKILL)
+                process.wait()
+        self.processes.clear()
+
+
+def wait_until_finished(client: httpx.Client, job_id: str, timeout_s: float = 120.0) -> dict:
+    """Poll a job until it is no longer queued or running; its final record."""
+    deadline = time.monotonic() + timeout_s
+    while time.monotonic() < deadline:
+        record = client.get(f"/v1/jobs/{job_id}").json()
+        if record["state"] not in ("queued", "running"):
+            return record
+        time.sleep(0.2)
+    raise TimeoutError(f"job {job_id} still unfinished after {timeout_s:.0f} s")

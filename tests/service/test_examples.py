@@ -1,0 +1,316 @@
+"""The bundled examples: valid, labelled as invented, small, served, and each solved with the
+property that makes it worth showing."""
+
+from __future__ import annotations
+
+import copy
+import json
+import os
+import re
+import shutil
+import subprocess
+import sys
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+from fastapi import FastAPI
+from fastapi.testclient import TestClient
+from scipy.optimize import brentq
+from scipy.stats import binom
+
+from _live_server import LiveServer
+from service import plots, problems
+from service.embedded_redis import EmbeddedRedis
+from service.examples import DESCRIPTIONS, UnknownExample, example_names, list_examples, load_example
+from service.routers.examples import router as examples_router
+from service.schema import parse_document
+from worker import solve
+from worker.estimate import estimate
+
+EXPECTED = {
+    "fishery_harvest",
+    "household_saving",
+    "job_search",
+    "machine_replacement",
+    "plant_capacity",
+    "roastery_growth",
+}
+MAX_PAIRS = 500_000
+"""Most (state, choice) pairs an example may have: a size that solves in about a second on
+one core once compiled (common practice here, not a timed test)."""
+
+
+@pytest.fixture(scope="module")
+def solved() -> Iterator[dict[str, dict[str, Any]]]:
+    cache: dict[str, dict[str, Any]] = {}
+
+    class Results(dict):
+        def __missing__(self, name: str) -> dict[str, Any]:
+            cache[name] = solve(load_example(name))
+            self[name] = cache[name]
+            return cache[name]
+
+    yield Results()
+
+
+def test_the_examples_are_the_expected_ones() -> None:
+    assert set(example_names()) == EXPECTED
+    assert set(DESCRIPTIONS) == EXPECTED
+
+
+@pytest.mark.parametrize("name", sorted(EXPECTED))
+def test_example_is_a_valid_small_invented_scenario(name: str) -> None:
+    document = load_example(name)
+    parsed = parse_document(document)
+    assert "invented scenario" in document["label"]
+    assert {"example", "invented"} <= set(document["tags"])
+    assert DESCRIPTIONS[name].strip()
+    assert estimate(parsed)["pairs"] <= MAX_PAIRS
+
+
+def test_list_and_load() -> None:
+    listed = list_examples()
+    assert [e["name"] for e in listed] == sorted(EXPECTED)
+    by_name = {e["name"]: e for e in listed}
+    assert by_name["machine_replacement"]["kind"] == "tabular"
+    assert by_name["machine_replacement"]["states"] == 10
+    assert by_name["household_saving"]["states"] == 160 * 5
+    first = load_example("household_saving")
+    first["model"]["params"]["r"] = 99.0
+    assert load_example("household_saving")["model"]["params"]["r"] != 99.0
+    for bad in ("nope", "../pyproject", "Household_Saving", ""):
+        with pytest.raises(UnknownExample):
+            load_example(bad)
+
+
+@pytest.fixture
+def examples_client() -> Iterator[TestClient]:
+    app = FastAPI()
+    problems.install(app)
+    app.include_router(examples_router)
+    with TestClient(app) as client:
+        yield client
+
+
+def test_examples_routes(examples_client: TestClient) -> None:
+    listing = examples_client.get("/v1/examples").json()
+    assert listing["next"] is None
+    assert [e["name"] for e in listing["data"]] == sorted(EXPECTED)
+    assert examples_client.get("/v1/examples/job_search").json() == load_example("job_search")
+    missing = examples_client.get("/v1/examples/space_elevator")
+    assert missing.status_code == 404
+    assert missing.headers["content-type"] == problems.PROBLEM_JSON
+    assert "machine_replacement" in missing.json()["detail"]
+
+
+def test_machine_shop_replaces_at_and_beyond_a_wear_threshold(solved: dict[str, Any]) -> None:
+    document = load_example("machine_replacement")
+    result = solved["machine_replacement"]
+    actions = result["policy"]["action"]
+    threshold = actions.index("replace")
+    assert 0 < threshold < len(actions) - 1, "the threshold should be interior, or the example shows nothing"
+    assert actions == ["keep running"] * threshold + ["replace"] * (len(actions) - threshold)
+
+    # Independent check: plain value iteration in dense numpy on the same arrays
+    # (the Bellman optimality equation; contraction at rate beta, Banach's theorem).
+    model = document["model"]
+    n = len(model["states"])
+    reward = np.array([[np.nan if r is None else r for r in row] for row in model["reward"]])
+    transition = np.zeros((n, 2, n))
+    for s, a, s_next, p in model["transition"]["entries"]:
+        transition[int(s), int(a), int(s_next)] += p
+    beta = document["discount"]
+    v = np.zeros(n)
+    for _ in range(2000):
+        v = np.nanmax(reward + beta * transition @ v, axis=1)
+    assert np.max(np.abs(np.array(result["value"]) - v)) <= result["error_bound"] + 1e-9
+
+
+def test_job_seeker_accepts_exactly_the_wages_above_the_reservation_wage(solved: dict[str, Any]) -> None:
+    document = load_example("job_search")
+    result = solved["job_search"]
+    beta = document["discount"]
+    model = document["model"]
+    n = len(model["states"]) // 2
+    wages = np.array([row[0] for row in model["reward"][:n]])
+    benefit = model["reward"][0][1]
+    probs = np.zeros(n)
+    for s, a, s_next, p in model["transition"]["entries"]:
+        if s == 0 and a == 1:
+            probs[int(s_next)] += p
+    assert probs.sum() == pytest.approx(1.0, abs=1e-9)
+
+    # McCall (1970, QJE 84(1)), reservation-wage equation for search without separations:
+    # w* - b = beta / (1 - beta) * E[max(w - w*, 0)], solved here with scipy's brentq.
+    def gap(w: float) -> float:
+        return (w - benefit) - beta / (1 - beta) * np.sum(probs * np.maximum(wages - w, 0.0))
+
+    reservation = brentq(gap, benefit, wages.max())
+    assert wages.min() < reservation < wages.max()
+    accept = [a == "work" for a in result["policy"]["action"][:n]]
+    assert accept == list(wages >= reservation)
+    # Values: an offer is worth max(w, w*) / (1 - beta) (accepting w forever, or searching on).
+    expected_values = np.maximum(wages, reservation) / (1 - beta)
+    assert np.max(np.abs(np.array(result["value"][:n]) - expected_values)) <= result["error_bound"] + 1e-6
+
+
+def rouwenhorst_matrix(points: int, rho: float) -> np.ndarray:
+    """Rouwenhorst (1995) transition matrix written as a sum of binomial draws: with state i the
+    number of 'up' components among points - 1, each staying put with probability p = (1 + rho)/2,
+    tomorrow's count is Binomial(i, p) + Binomial(points - 1 - i, 1 - p) (Kopecky and Suen, 2010,
+    Review of Economic Dynamics 13(3); formula from memory, checked by its row sums and mean)."""
+    p = (1 + rho) / 2
+    m = points - 1
+    matrix = np.zeros((points, points))
+    for i in range(points):
+        stay = binom.pmf(np.arange(i + 1), i, p)
+        flip = binom.pmf(np.arange(m - i + 1), m - i, 1 - p)
+        matrix[i] = np.convolve(stay, flip)
+    return matrix
+
+
+def test_household_saving_rule(solved: dict[str, Any]) -> None:
+    document = load_example("household_saving")
+    result = solved["household_saving"]
+    assets = np.array(result["axes"]["assets"])
+    income = np.array(result["axes"]["income"])
+    saving = np.array(result["policy"]["assets_next"])
+    assert saving.shape == (assets.size, income.size)
+
+    # Saving rises with wealth and with income (monotone policy of a concave problem;
+    # Stokey and Lucas, Recursive Methods, 1989, ch. 9 — from memory).
+    assert (np.diff(saving, axis=0) >= 0).all()
+    assert (np.diff(saving, axis=1) >= 0).all()
+    # The borrowing limit binds for poor, low-income households and for nobody at the top income.
+    at_limit = saving == assets[0]
+    assert at_limit[0, 0]
+    binding_rows = np.flatnonzero(at_limit[:, 0])
+    assert list(binding_rows) == list(range(binding_rows.size)), "the limit binds on a bottom range of wealth"
+    assert (np.diff(at_limit.sum(axis=0)) <= 0).all()
+    assert not at_limit[:, -1].any()
+    assert not at_limit[-1].any()
+
+    # Independent check of the whole pipeline: one Bellman step in numpy with the chain rebuilt
+    # from its binomial form. If ||V - V*|| <= e then ||TV - V|| <= (1 + beta) e.
+    params = document["model"]["params"]
+    ar1 = document["model"]["shocks"]["income"]["ar1"]
+    transition = rouwenhorst_matrix(ar1["points"], ar1["rho"])
+    assert np.allclose(transition.sum(axis=1), 1.0)
+    half_width = ar1["sigma"] / np.sqrt(1 - ar1["rho"] ** 2) * np.sqrt(ar1["points"] - 1)
+    assert np.allclose(income, np.exp(np.linspace(-half_width, half_width, ar1["points"])))
+    beta, gamma, r = document["discount"], params["gamma"], params["r"]
+    value = np.array(result["value"])
+    consumption = (1 + r) * assets[:, None, None] + income[None, :, None] - assets[None, None, :]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        utility = np.where(consumption > 0, consumption ** (1 - gamma) / (1 - gamma), -np.inf)
+    continuation = value @ transition.T  # [a_next, y] -> E[V(a_next, y') | y]
+    objective = utility + beta * continuation.T[None, :, :]
+    bellman = objective.max(axis=2)
+    assert np.max(np.abs(bellman - value)) <= (1 + beta) * result["error_bound"] + 1e-9
+    assert np.array_equal(assets[objective.argmax(axis=2)], saving)
+
+
+def test_plant_capacity_rises_with_capacity_and_demand(solved: dict[str, Any]) -> None:
+    document = load_example("plant_capacity")
+    result = solved["plant_capacity"]
+    capacity = np.array(result["axes"]["capacity"])
+    policy = np.array(result["policy"]["capacity_next"])
+    assert (np.diff(policy, axis=0) >= 0).all()
+    assert (np.diff(policy, axis=1) >= 0).all()
+    assert (policy[:, -1] > policy[:, 0]).any(), "demand should matter somewhere"
+    assert policy[-1, 0] > policy[0, 0]
+    # Irreversible: next capacity never below the depreciated current capacity.
+    depreciation = document["model"]["params"]["depreciation"]
+    assert (policy >= (1 - depreciation) * capacity[:, None] - 1e-12).all()
+    # The monotone hint held (a broken promise would be reported as a warning).
+    assert not [w for w in result["diagnostics"]["warnings"] if "hint" in w]
+
+
+def test_fishery_harvest_is_monotone_in_the_stock(solved: dict[str, Any]) -> None:
+    result = solved["fishery_harvest"]
+    stock = np.array(result["axes"]["stock"])
+    harvest = np.array(result["policy"]["harvest"])
+    assert (np.diff(harvest, axis=0) >= 0).all()
+    assert (harvest <= stock[:, None] + 1e-12).all()
+    # A depleted stock is left alone to regrow; a large one is fished.
+    assert (harvest[0] == 0).all()
+    assert (harvest[-1] > 0).all()
+
+
+def test_roastery_builds_more_capacity_with_more_capacity_customers_and_taste(solved: dict[str, Any]) -> None:
+    document = load_example("roastery_growth")
+    result = solved["roastery_growth"]
+    policy = np.array(result["policy"]["capacity_next"])
+    assert policy.shape == (30, 30, 2)
+    assert (np.diff(policy, axis=0) >= 0).all()
+    assert (policy[:, :, 1] >= policy[:, :, 0]).all()
+    assert (policy[:, -1, :] >= policy[:, 0, :]).all()
+    assert (policy[:, -1, :] > policy[:, 0, :]).any()
+    layout = plots.axis_layout(result, document)
+    assert layout == plots.AxisLayout(states=("capacity", "customers"), shocks=("taste",))
+    assert b"<image" in plots.value_plot(result, layout=layout, shock=1)
+
+
+def test_examples_survive_a_json_round_trip_unchanged() -> None:
+    # What the dashboard and the client scripts do: fetch, edit, post back.
+    for name in EXPECTED:
+        document = load_example(name)
+        assert parse_document(copy.deepcopy(document)) is not None
+
+
+CLIENTS = Path(__file__).resolve().parents[2] / "service" / "examples" / "clients"
+
+
+@pytest.fixture(scope="module")
+def live_server(redis_server: EmbeddedRedis, tmp_path_factory: pytest.TempPathFactory) -> Iterator[LiveServer]:
+    # Database 2 of the private server: other tests empty database 0 between tests.
+    server = LiveServer(redis_server.url.rsplit("/", 1)[0] + "/2", tmp_path_factory.mktemp("live"), FIXQ_AUTH="off")
+    try:
+        server.start()
+        server.start_worker()
+        yield server
+    finally:
+        server.stop()
+
+
+def run_client(command: list[str], server: LiveServer, cwd: Path) -> subprocess.CompletedProcess[str]:
+    env = {**os.environ, "FIXQ_URL": server.url}
+    env.pop("FIXQ_KEY", None)
+    done = subprocess.run(command, cwd=cwd, env=env, capture_output=True, text=True, timeout=240)
+    assert done.returncode == 0, f"{command} failed:\n{done.stdout}\n{done.stderr}\n{server.logs()}"
+    return done
+
+
+def test_the_python_client_example_runs_against_a_live_server(live_server: LiveServer, tmp_path: Path) -> None:
+    output = run_client([sys.executable, str(CLIENTS / "python_httpx.py")], live_server, tmp_path).stdout
+    assert "converged after" in output
+    assert "policy array shape (160, 5) (assets x income)" in output
+    rows = [line.split() for line in output.splitlines()[-8:]]
+    assert [float(row[0]) for row in rows] == sorted(float(row[0]) for row in rows)
+    assert float(rows[0][1]) == -1.0  # the poorest, lowest-income household sits at the borrowing limit
+
+
+@pytest.mark.skipif(not (shutil.which("curl") and shutil.which("jq")), reason="curl and jq are needed for this example")
+def test_the_curl_lifecycle_example_runs_against_a_live_server(live_server: LiveServer, tmp_path: Path) -> None:
+    output = run_client(["bash", str(CLIENTS / "curl_lifecycle.sh"), str(tmp_path)], live_server, tmp_path).stdout
+    assert '{"states":10,"choices":2}' in output
+    assert re.search(r"job [0-9a-f]{16} is done", output)
+    assert "wear 8\treplace" in output and "new\tkeep running" in output
+    table = (tmp_path / "result.csv").read_text().splitlines()
+    assert table[0] == "state,value,action" and len(table) == 11
+    assert (tmp_path / "policy.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    canceled = json.loads(output.strip().splitlines()[-1])
+    assert canceled["state"] in ("canceled", "running", "done")
+
+
+@pytest.mark.parametrize(
+    "script", ["r_httr2.R", "julia_http.jl", "matlab_webwrite.m", "stata_curl.do"]
+)
+def test_untested_client_examples_say_so(script: str) -> None:
+    text = (CLIENTS / script).read_text()
+    assert "NOT TESTED HERE" in text
+    assert "/v1/examples/household_saving" in text
+    assert "/result" in text

@@ -1,0 +1,221 @@
+"""Pictures of jobs: ``service.plots`` on result documents, and the plot routes on a real store."""
+
+from __future__ import annotations
+
+import struct
+import xml.etree.ElementTree as ET
+from collections.abc import Iterator
+from typing import Any
+
+import numpy as np
+import pytest
+from fastapi import FastAPI
+from fastapi.testclient import TestClient
+
+from service import plots, problems
+from service.deps import Caller, current_owner
+from service.examples import load_example
+from service.problems import Problem
+from service.routers.plots import router as plots_router
+from service.schema import document_hash, parse_document
+from service.settings import get_settings
+from service.store import JobStore
+from worker.estimate import estimate
+from worker.task import run_job
+
+SVG_NS = "{http://www.w3.org/2000/svg}"
+
+
+def svg_ids(svg: bytes) -> set[str]:
+    root = ET.fromstring(svg)
+    assert root.tag == f"{SVG_NS}svg"
+    return {node.get("id") for node in root.iter() if node.get("id")}
+
+
+def png_size(png: bytes) -> tuple[int, int]:
+    assert png[:8] == b"\x89PNG\r\n\x1a\n"
+    width, height = struct.unpack(">II", png[16:24])
+    return width, height
+
+
+def line_result(n_points: int = 30, n_shocks: int = 3) -> dict[str, Any]:
+    k = np.linspace(0.5, 10.0, n_points)
+    z = np.linspace(0.9, 1.1, n_shocks)
+    value = np.log(k)[:, None] + z[None, :]
+    return {
+        "axes": {"k": k.tolist(), "z": z.tolist()},
+        "value": value.tolist(),
+        "policy": {"k_next": (0.9 * k[:, None] * z[None, :]).tolist(), "hours": np.ones((n_points, n_shocks)).tolist()},
+    }
+
+
+def two_state_result() -> dict[str, Any]:
+    a, b, y = np.linspace(0, 1, 12), np.linspace(1, 2, 9), np.array([0.5, 1.0, 1.5])
+    value = a[:, None, None] + b[None, :, None] * y[None, None, :]
+    return {"axes": {"a": a.tolist(), "b": b.tolist(), "y": y.tolist()}, "value": value.tolist(), "policy": {"a_next": value.tolist()}}
+
+
+def tabular_result() -> dict[str, Any]:
+    actions = ["keep"] * 6 + ["replace"] * 4
+    return {
+        "axes": {"state": [f"wear {i}" for i in range(10)]},
+        "value": np.linspace(50, 30, 10).tolist(),
+        "policy": {"action": actions},
+        "policy_index": {"action": [0 if a == "keep" else 1 for a in actions]},
+    }
+
+
+def test_convergence_plot_draws_both_series_on_a_log_axis() -> None:
+    log = [{"iteration": i, "distance": 0.9**i, "error_bound": 9 * 0.9**i, "policy_changes": 5, "seconds": 0.01} for i in range(1, 60)]
+    ids = svg_ids(plots.convergence_plot(log, tolerance=1e-3, fmt="svg"))
+    assert {"series-distance", "series-error_bound"} <= ids
+    assert png_size(plots.convergence_plot(log, fmt="png")) == (
+        round(plots.FIGURE_SIZE_IN[0] * plots.PNG_DPI),
+        round(plots.FIGURE_SIZE_IN[1] * plots.PNG_DPI),
+    )
+
+
+def test_convergence_plot_of_an_empty_or_exact_log() -> None:
+    assert "series-distance" not in svg_ids(plots.convergence_plot([]))
+    # A distance of exactly 0 cannot sit on a log axis; the other points still do.
+    log = [{"iteration": 1, "distance": 1.0, "error_bound": 2.0}, {"iteration": 2, "distance": 0.0, "error_bound": 0.0}]
+    assert "series-distance" in svg_ids(plots.convergence_plot(log))
+
+
+def test_value_plot_draws_a_line_per_shock_state() -> None:
+    ids = svg_ids(plots.value_plot(line_result(n_shocks=3)))
+    assert {"series-0", "series-1", "series-2"} <= ids and "series-3" not in ids
+
+
+def test_many_shock_states_share_a_colour_ramp() -> None:
+    ids = svg_ids(plots.value_plot(line_result(n_shocks=plots.MAX_LEGEND_LINES + 3)))
+    assert f"series-{plots.MAX_LEGEND_LINES + 2}" in ids
+    assert "legend_1" not in ids
+
+
+def test_policy_plot_picks_the_named_choice() -> None:
+    result = line_result()
+    hours = plots.policy_plot(result, choice="hours")
+    capital = plots.policy_plot(result, choice="k_next")
+    assert hours != capital
+    assert plots.policy_plot(result) == capital  # the first choice by default
+    with pytest.raises(Problem) as refused:
+        plots.policy_plot(result, choice="leisure")
+    assert refused.value.status == 400
+    assert refused.value.errors[0]["path"] == "query.choice"
+
+
+def test_two_endogenous_states_make_a_heatmap_per_shock_state() -> None:
+    result = two_state_result()
+    layout = plots.AxisLayout(states=("a", "b"), shocks=("y",))
+    first = plots.value_plot(result, layout=layout, shock=0)
+    last = plots.value_plot(result, layout=layout, shock=2, fmt="svg")
+    assert b"<image" in first  # the mesh is rasterised inside the SVG
+    assert first != last
+    with pytest.raises(Problem) as refused:
+        plots.value_plot(result, layout=layout, shock=3)
+    assert refused.value.errors[0]["path"] == "query.shock"
+    png_size(plots.policy_plot(result, layout=layout, fmt="png"))
+
+
+def test_tabular_results_are_bars_per_state() -> None:
+    result = tabular_result()
+    layout = plots.axis_layout(result)
+    assert layout.tabular
+    ids = svg_ids(plots.value_plot(result))
+    assert {f"bar-{i}" for i in range(10)} <= ids and "bar-10" not in ids
+    assert {f"bar-{i}" for i in range(10)} <= svg_ids(plots.policy_plot(result))
+
+
+def test_axis_layout_reads_states_and_shocks_from_the_document() -> None:
+    result = two_state_result()
+    document = {"model": {"kind": "grid", "states": {"a": {}, "b": {}}, "shocks": {"y": {}}}}
+    assert plots.axis_layout(result, document) == plots.AxisLayout(states=("a", "b"), shocks=("y",))
+    # Without the document the first axis is taken as the state.
+    assert plots.axis_layout(result) == plots.AxisLayout(states=("a",), shocks=("b", "y"))
+    assert plots.shock_labels(result["axes"], ("y",)) == ["y=0.5", "y=1", "y=1.5"]
+
+
+def test_plots_of_a_solved_example_result() -> None:
+    from worker import solve
+
+    document = load_example("machine_replacement")
+    result = solve(document)
+    layout = plots.axis_layout(result, document)
+    assert layout.tabular
+    assert len({f"bar-{i}" for i in range(10)} & svg_ids(plots.policy_plot(result, layout=layout))) == 10
+    assert "series-distance" in svg_ids(plots.convergence_plot(result["log"]))
+
+
+@pytest.fixture
+def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[TestClient, FastAPI]]:
+    monkeypatch.setenv("FIXQ_AUTH", "off")
+    get_settings.cache_clear()
+    app = FastAPI()
+    problems.install(app)
+    app.state.settings = get_settings()
+    app.state.redis = store.redis
+    app.state.store = store
+    app.include_router(plots_router)
+    with TestClient(app, raise_server_exceptions=False) as client:
+        yield client, app
+    get_settings.cache_clear()
+
+
+def submit(store: JobStore, document: dict[str, Any], *, owner: str = "anonymous", solve_now: bool = True) -> str:
+    parsed = parse_document(document)
+    record = store.create_job(
+        document, owner=owner, estimate=estimate(parsed), document_hash=document_hash(document), enqueue=False
+    )
+    if solve_now:
+        assert run_job(record["id"])["outcome"] == "done"
+    return record["id"]
+
+
+def test_plot_routes_draw_a_solved_job(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+    client, _ = plot_app
+    job_id = submit(store, load_example("machine_replacement"))
+    for picture in ("convergence", "value", "policy"):
+        svg = client.get(f"/v1/jobs/{job_id}/plots/{picture}.svg")
+        assert svg.status_code == 200, svg.text
+        assert svg.headers["content-type"] == "image/svg+xml"
+        svg_ids(svg.content)
+        png = client.get(f"/v1/jobs/{job_id}/plots/{picture}.png")
+        assert png.headers["content-type"] == "image/png"
+        png_size(png.content)
+    summary = client.get(f"/v1/jobs/{job_id}/plots").json()
+    assert summary["layout"] == "bars"
+    assert summary["choices"] == ["action"]
+    assert summary["status"] == "converged"
+    assert summary["tolerance"] == load_example("machine_replacement")["solver"]["tolerance"]
+    assert "distribution" not in summary["stationary"]
+
+
+def test_plot_routes_refuse_what_cannot_be_drawn(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+    client, _ = plot_app
+    queued = submit(store, load_example("machine_replacement"), solve_now=False)
+    # A queued job has a (still empty) convergence picture but no value yet: 409, as for its result.
+    assert client.get(f"/v1/jobs/{queued}/plots/convergence.svg").status_code == 200
+    not_ready = client.get(f"/v1/jobs/{queued}/plots/value.png")
+    assert not_ready.status_code == 409
+    assert not_ready.headers["content-type"] == problems.PROBLEM_JSON
+    assert not_ready.json()["state"] == "queued"
+
+    done = submit(store, load_example("machine_replacement"))
+    bad_choice = client.get(f"/v1/jobs/{done}/plots/policy.svg", params={"choice": "nope"})
+    assert bad_choice.status_code == 400
+    assert bad_choice.json()["errors"][0]["path"] == "query.choice"
+    assert client.get(f"/v1/jobs/{done}/plots/policy.gif").status_code in (400, 404)
+    assert client.get(f"/v1/jobs/{done}/plots/surface.svg").status_code in (400, 404)
+    assert client.get("/v1/jobs/0123456789abcdef/plots/value.svg").status_code == 404
+    assert client.get("/v1/jobs/not-a-job/plots/value.svg").status_code == 404
+
+
+def test_plot_routes_hide_other_owners_jobs(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+    client, app = plot_app
+    job_id = submit(store, load_example("machine_replacement"), owner="bob")
+    app.dependency_overrides[current_owner] = lambda: Caller("alice")
+    assert client.get(f"/v1/jobs/{job_id}/plots/value.svg").status_code == 404
+    assert client.get(f"/v1/jobs/{job_id}/plots").status_code == 404
+    app.dependency_overrides[current_owner] = lambda: Caller("bob")
+    assert client.get(f"/v1/jobs/{job_id}/plots/value.svg").status_code == 200

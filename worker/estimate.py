@@ -1,0 +1,372 @@
+"""Size, memory and time estimates of a validated problem document, without building it.
+
+:func:`estimate` answers ``POST /v1/check`` and the size check of every solve:
+it reads only the sizes the schema already knows (``GridAxis.size``,
+``ShockSpec.size``, ``ChoiceSpec.size``, array shapes), never builds a grid,
+a chain or a table, and so answers in microseconds even for a document of a
+billion (state, choice) pairs.
+
+It also makes the one decision the grid compiler follows, the *regime*
+(:func:`grid_plan`), so that the memory the check reports is the memory the
+worker will use:
+
+``precomputed``
+    The reward (``-inf`` where not allowed) and the interpolation nodes of
+    tomorrow's state are evaluated once for every (state, choice) pair and
+    kept; each Bellman step is then a scan over tables.  Chosen when the
+    tables fit the precompute budget — ``PRECOMPUTE_CAP_SHARE`` of the
+    memory cap and at most ``PRECOMPUTE_MAX_BYTES`` — and no hint can be used.
+``on_the_fly``
+    Compiled code evaluates the model's expressions pointwise inside the
+    search; nothing of size (states × choices) is ever allocated.  Chosen
+    when the tables would not fit, and whenever hints can be used: a hinted
+    search looks at a handful of choices per state, so evaluating every pair
+    up front would cost more than all the searches together.
+
+Times are rough: a count of pointwise evaluations and table reads times
+per-operation costs measured on a 2-core x86 machine (``*_NS`` constants,
+"common practice" orders of magnitude, not guarantees), and a number of
+Bellman steps guessed from the discount and the tolerance for a value
+function of order ``1/(1 − β)``.  The returned ``basis`` says which.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+__all__ = [
+    "PRECOMPUTE_CAP_SHARE",
+    "PRECOMPUTE_MAX_BYTES",
+    "GridPlan",
+    "estimate",
+    "grid_plan",
+    "precompute_budget",
+]
+
+PRECOMPUTE_MAX_BYTES = 1 << 30
+"""Largest precomputed table set, in bytes (1 GiB)."""
+PRECOMPUTE_CAP_SHARE = 0.25
+"""Share of the memory cap (``limits["max_bytes"]``) precomputed tables may take (dimensionless)."""
+CHUNK_ELEMENTS = 1 << 20
+"""(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
+CHUNK_TEMPORARIES = 8
+"""float64 temporaries of chunk size alive at once while evaluating a model's expressions (count)."""
+
+TABLE_READ_NS = 1.0
+"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds)."""
+NUMPY_PAIR_NS = 40.0
+"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds)."""
+POINT_NS = 12.0
+"""Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds)."""
+BOUND_NS = 40.0
+"""Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
+LEAF_POINTS = 32
+"""Choices the exact block search evaluates pointwise per block it cannot skip (count)."""
+MATVEC_NS = 2.0
+"""Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
+COMPILE_S = 6.0
+"""Compilation on first use of a model structure on a machine (seconds; cached afterwards)."""
+RESULT_BYTES_PER_STATE = 120
+"""Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
+SOLVER_BYTES_PER_STATE = 96
+"""Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
+
+_MIB = 2**20
+
+
+@dataclass(frozen=True)
+class GridPlan:
+    """Sizes of a grid model and the regime its compilation will use.
+
+    Attributes
+    ----------
+    grid_states : int
+        Points of the product grid of the endogenous states.
+    shocks : int
+        Points of the product chain of the shocks (1 without shocks).
+    n : int
+        Entries of the value function, ``grid_states · shocks``.
+    choices : int
+        Alternatives per state (C-order product of the choices).
+    pairs : int
+        ``n · choices``.
+    interpolated : int
+        States whose tomorrow comes from a ``next`` expression.
+    nodes : int
+        Interpolation nodes per (state, choice): ``2 ** interpolated``.
+    monotone, concave : bool
+        Hints that will be used.
+    hint_note : str or None
+        Why a requested hint will not be used.
+    regime : str
+        ``precomputed`` or ``on_the_fly``.
+    precompute_bytes, on_the_fly_bytes, budget : int
+        Peak working memory of each regime and the precompute budget.
+    reason : str
+        The regime decision in plain words.
+    """
+
+    grid_states: int
+    shocks: int
+    n: int
+    choices: int
+    pairs: int
+    interpolated: int
+    nodes: int
+    monotone: bool
+    concave: bool
+    hint_note: str | None
+    regime: str
+    precompute_bytes: int
+    on_the_fly_bytes: int
+    budget: int
+    reason: str
+
+    @property
+    def hints_active(self) -> bool:
+        return self.monotone or self.concave
+
+    @property
+    def bytes(self) -> int:
+        return self.precompute_bytes if self.regime == "precomputed" else self.on_the_fly_bytes
+
+
+def precompute_budget(limits: dict[str, Any] | None = None) -> int:
+    """Bytes the precomputed tables may take under ``limits`` (default: the worker's memory cap)."""
+    cap = (limits or {}).get("max_bytes")
+    if not cap:
+        from worker.solve import max_problem_bytes
+
+        cap = max_problem_bytes()
+    return int(min(PRECOMPUTE_MAX_BYTES, PRECOMPUTE_CAP_SHARE * int(cap)))
+
+
+def hint_use(model: Any) -> tuple[bool, bool, str | None]:
+    """Which of the requested hints the compiled kernels can use, and a note on any left unused.
+
+    Hints are used only when the model has exactly one choice: ``concave``
+    then means single-peaked along that choice's ordered alternatives, and
+    ``monotone`` needs the choice to be ``next_of`` a state (its *own* state,
+    along which the policy is promised not to fall).
+    """
+    wants_monotone, wants_concave = bool(model.hints.monotone), bool(model.hints.concave)
+    if not (wants_monotone or wants_concave):
+        return False, False, None
+    asked = " and ".join(name for name, on in (("monotone", wants_monotone), ("concave", wants_concave)) if on)
+    if len(model.choices) != 1:
+        return False, False, (
+            f"the {asked} hint{'s' if ' and ' in asked else ''} were not used: hints apply to models with exactly "
+            f"one choice, and this one has {len(model.choices)}; every step searched all choices"
+        )
+    (name, choice), = model.choices.items()
+    if wants_monotone and choice.next_of is None:
+        note = (
+            f"the monotone hint was not used: it needs the choice `{name}` to be next_of a state (the policy "
+            "is promised not to fall along that state)"
+        )
+        return False, wants_concave, note
+    return wants_monotone, wants_concave, None
+
+
+def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str = "howard") -> GridPlan:
+    """Sizes and regime of a validated ``GridModel``, from sizes alone."""
+    grid_states = math.prod(axis.size for axis in model.states.values())
+    shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
+    choices = math.prod(choice.size for choice in model.choices.values())
+    n = grid_states * shocks
+    pairs = n * choices
+    interpolated = sum(1 for name in model.states if name in model.next)
+    nodes = 2**interpolated
+    monotone, concave, note = hint_use(model)
+
+    common = _grid_common_bytes(n, shocks, nodes, method)
+    table_bytes = pairs * (8 + 12 * interpolated)
+    chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
+    precompute_bytes = common + table_bytes + chunk
+    # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
+    on_the_fly_bytes = common + 2 * 8 * n + chunk
+
+    budget = precompute_budget(limits)
+    if monotone or concave:
+        regime = "on_the_fly"
+        reason = (
+            "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "
+            "code rather than tabulated for all pairs"
+        )
+    elif table_bytes <= budget:
+        regime = "precomputed"
+        reason = (
+            f"the tables of all {pairs:,} (state, choice) pairs take {table_bytes / _MIB:,.0f} MiB, within the "
+            f"precompute budget of {budget / _MIB:,.0f} MiB, so they are evaluated once and every step scans them"
+        )
+    else:
+        regime = "on_the_fly"
+        reason = (
+            f"the tables of all {pairs:,} (state, choice) pairs would take {table_bytes / _MIB:,.0f} MiB, over "
+            f"the precompute budget of {budget / _MIB:,.0f} MiB, so the model is evaluated pointwise in compiled "
+            "code and exact steps skip blocks of choices that provably cannot win"
+        )
+    return GridPlan(
+        grid_states=grid_states,
+        shocks=shocks,
+        n=n,
+        choices=choices,
+        pairs=pairs,
+        interpolated=interpolated,
+        nodes=nodes,
+        monotone=monotone,
+        concave=concave,
+        hint_note=note,
+        regime=regime,
+        precompute_bytes=precompute_bytes,
+        on_the_fly_bytes=on_the_fly_bytes,
+        budget=budget,
+        reason=reason,
+    )
+
+
+def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
+    """Memory every regime needs: solver vectors, the policy's nodes and sparse matrix, the result."""
+    policy_nodes = n * nodes * 16
+    matrix = n * nodes * shocks * 12 + 8 * (n + 1)
+    if method == "policy_iteration":
+        # A sparse LU of I − βP_σ fills in; ten times the matrix is a rough allowance (common practice).
+        matrix *= 10
+    chain = 8 * shocks * shocks
+    return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
+
+
+def _steps(doc: Any) -> tuple[int, int, str]:
+    """(improvement steps, evaluation sweeps per step, basis) guessed from β, the tolerance and the method."""
+    beta = float(doc.discount)
+    solver = doc.solver
+    tolerance = float(solver.tolerance)
+    scale = 1.0 / (1.0 - beta)
+    # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
+    target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
+    per_step = math.log(beta)
+    sweeps = 0
+    if solver.method == "value_iteration":
+        steps = math.ceil(math.log(target) / per_step)
+    elif solver.method == "policy_iteration":
+        steps = 12
+    else:
+        sweeps = int(solver.evaluation_steps)
+        steps = math.ceil(math.log(target) / (per_step * (sweeps + 1))) + 2
+    steps = min(max(steps, 1), int(solver.max_iterations))
+    basis = (
+        f"{steps} improvement steps ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
+        f"order 1/(1 − β))" + (f", {sweeps} evaluation sweeps each" if sweeps else "")
+    )
+    return steps, sweeps, basis
+
+
+def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
+    """Size, memory and time of a validated ``ProblemDocument``, without building it.
+
+    Returns
+    -------
+    dict
+        ``kind``; ``states`` (entries of the value function), ``shocks`` (points
+        of the shock chain; 1 without shocks, 0 for tabular), ``choices``
+        (alternatives per state), ``pairs`` (state × choice); ``bytes`` (peak
+        working memory of the regime that will be used, interpreter and
+        libraries not counted); ``regime``; ``seconds`` (a rough time guess)
+        with its ``basis``; ``notes``, plain words.
+    """
+    if doc.model.kind == "tabular":
+        return _tabular_estimate(doc)
+    model = doc.model
+    plan = grid_plan(model, limits=limits, method=doc.solver.method)
+    steps, sweeps, basis = _steps(doc)
+    matrix_entries = plan.n * plan.nodes * plan.shocks
+    evaluation = sweeps * matrix_entries * MATVEC_NS
+    if plan.regime == "precomputed":
+        setup = plan.pairs * NUMPY_PAIR_NS
+        step = plan.pairs * TABLE_READ_NS
+        how = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans ({TABLE_READ_NS:g} ns per pair)"
+    else:
+        setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
+        blocks = max(1, math.ceil(math.log2(max(plan.choices / LEAF_POINTS, 1.0))))
+        exact = plan.n * (2 * blocks * BOUND_NS + 2 * min(LEAF_POINTS, plan.choices) * POINT_NS)
+        hinted = plan.n * 4 * POINT_NS
+        step = hinted if plan.hints_active else exact
+        how = (
+            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point, {BOUND_NS:g} ns per block bound); "
+            + ("hinted steps look at a few choices per state, exact ones" if plan.hints_active else "exact steps")
+            + f" bound about {2 * blocks} blocks and evaluate about {2 * min(LEAF_POINTS, plan.choices)} points per state"
+        )
+        if plan.hints_active:
+            step_total = (steps - 2) * step + 2 * exact
+        else:
+            step_total = steps * step
+    if plan.regime == "precomputed":
+        step_total = steps * step
+    seconds = (setup + step_total + steps * evaluation) * 1e-9
+    notes = [f"regime {plan.regime}: {plan.reason}"]
+    if plan.hints_active:
+        used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
+        notes.append(f"the {used} hint{'s' if ' and ' in used else ''} will be used, and the final policy checked by one exact step")
+    if plan.hint_note:
+        notes.append(plan.hint_note)
+    if plan.interpolated:
+        notes.append(
+            f"{plan.interpolated} state{'s' if plan.interpolated > 1 else ''} move by a next expression: tomorrow's value is "
+            f"split over {plan.nodes} grid points, and points outside the grid are clamped and counted"
+        )
+    notes.append("memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)")
+    notes.append(
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {COMPILE_S:g} s, then cached)"
+    )
+    return {
+        "kind": "grid",
+        "states": plan.n,
+        "grid_states": plan.grid_states,
+        "shocks": plan.shocks,
+        "choices": plan.choices,
+        "pairs": plan.pairs,
+        "bytes": plan.bytes,
+        "regime": plan.regime,
+        "seconds": seconds,
+        "basis": f"{basis}; {how}",
+        "notes": notes,
+    }
+
+
+def _tabular_estimate(doc: Any) -> dict[str, Any]:
+    model = doc.model
+    n_states, n_actions = int(model.n_states), int(model.n_actions)
+    pairs = n_states * n_actions
+    transition = model.transition
+    shape = getattr(transition, "shape", None)
+    dense = shape is not None and len(shape) == 3
+    entries = math.prod(shape) if dense else int(transition.entries.shape[0])
+    # Dense input stays in memory as the parsed document; the compiled form is CSR (12 bytes per entry).
+    stored = entries if not dense else min(entries, pairs * n_states)
+    csr = stored * 12 + 8 * (pairs + 1)
+    document = entries * 8 if dense else entries * 32
+    common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
+    matrix = n_states * n_states * 12 if doc.solver.method != "policy_iteration" else n_states * n_states * 120
+    matrix = min(matrix, stored * 12 * (10 if doc.solver.method == "policy_iteration" else 1))
+    steps, sweeps, basis = _steps(doc)
+    step = stored * MATVEC_NS + pairs * TABLE_READ_NS
+    seconds = (steps * step + steps * sweeps * min(stored, n_states * n_states) * MATVEC_NS) * 1e-9
+    notes = [
+        f"{'dense' if dense else 'sparse'} transition with {entries:,} entries, held as a sparse matrix of at most {stored:,}",
+        "memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)",
+    ]
+    return {
+        "kind": "tabular",
+        "states": n_states,
+        "grid_states": n_states,
+        "shocks": 0,
+        "choices": n_actions,
+        "pairs": pairs,
+        "bytes": int(common + csr + document + matrix),
+        "regime": "tabular",
+        "seconds": seconds,
+        "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
+        "notes": notes,
+    }

@@ -1,0 +1,114 @@
+"""Carrying a value function from one product grid onto another.
+
+Warm starts (``solver.initial: {"job": ID}``) hand the solver the value
+function of an earlier job, whose grids may differ from today's: a nightly
+re-solve with a finer capital grid or a re-calibrated shock.  Any start is
+valid for a contraction, so the aim is a good one, cheaply: multilinear
+interpolation, flat outside the old range.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any, Mapping, Sequence
+
+import numpy as np
+
+from worker.errors import InvalidDocument
+from worker.grids import locate
+
+__all__ = ["regrid"]
+
+
+def regrid(
+    old_axes: Mapping[str, Sequence[Any]],
+    old_value: Any,
+    new_axes: Mapping[str, Sequence[Any]],
+    *,
+    path: str = "solver.initial",
+) -> np.ndarray:
+    """Interpolate ``old_value``, given on ``old_axes``, onto ``new_axes``.
+
+    Axes are matched by name, so their order may differ.  Along an axis
+    whose values are unchanged nothing happens; along a numeric axis whose
+    values changed (an endogenous state or a shock alike) the value is
+    interpolated linearly and held at the end values outside the old range;
+    along an axis of labels (tabular states) values are matched by label.
+    Interpolating one axis after another is exactly multilinear
+    interpolation on the product grid.
+
+    Parameters
+    ----------
+    old_axes : name -> values (length ``m_k``), in the axis order of ``old_value``.
+    old_value : array of shape ``(m_1, ..., m_d)``, or flat ``(m_1 * ... * m_d,)``.
+    new_axes : name -> values (length ``n_k``), in the axis order wanted.
+
+    Returns
+    -------
+    value : (n_1, ..., n_d) float64, C-contiguous, in the order of ``new_axes``.
+
+    Raises
+    ------
+    InvalidDocument
+        At ``path`` when the axis names differ, the value does not fit the
+        old axes, or it holds non-finite numbers.
+    """
+    old_names, new_names = list(old_axes), list(new_axes)
+    missing = [name for name in new_names if name not in old_axes]
+    extra = [name for name in old_names if name not in new_axes]
+    if missing or extra:
+        parts = [f"lacks axes {missing} of this problem" if missing else "", f"has axes {extra} this problem does not" if extra else ""]
+        raise InvalidDocument.at(path, "the starting value function " + " and ".join(p for p in parts if p) + "; axes must match by name")
+    shape = tuple(len(old_axes[name]) for name in old_names)
+    value = np.asarray(old_value, dtype=np.float64)
+    if value.shape != shape:
+        if value.ndim != 1 or value.size != math.prod(shape):
+            raise InvalidDocument.at(path, f"the starting value function has shape {list(value.shape)}, but its axes give {list(shape)}")
+        value = value.reshape(shape)
+    if not np.all(np.isfinite(value)):
+        raise InvalidDocument.at(path, "the starting value function holds NaN or infinite values")
+
+    value = np.transpose(value, [old_names.index(name) for name in new_names])
+    for axis, name in enumerate(new_names):
+        value = _regrid_axis(value, axis, list(old_axes[name]), list(new_axes[name]), name, path)
+    return np.ascontiguousarray(value, dtype=np.float64)
+
+
+def _regrid_axis(value: np.ndarray, axis: int, old: list, new: list, name: str, path: str) -> np.ndarray:
+    if len(old) == len(new) and all(a == b for a, b in zip(old, new)):
+        return value
+    if not (_all_numbers(old) and _all_numbers(new)):
+        return _match_labels(value, axis, old, new, name, path)
+
+    old_grid, new_grid = np.asarray(old, dtype=np.float64), np.asarray(new, dtype=np.float64)
+    if not (np.all(np.isfinite(old_grid)) and np.all(np.isfinite(new_grid))):
+        raise InvalidDocument.at(path, f"axis {name!r} holds non-finite values")
+    if old_grid.size == 1:
+        return np.repeat(value, new_grid.size, axis=axis)
+    # Shock values need not be sorted (an explicit chain may list them in any order).
+    order = np.argsort(old_grid, kind="stable")
+    old_grid = old_grid[order]
+    if not np.all(old_grid[1:] > old_grid[:-1]):
+        raise InvalidDocument.at(path, f"axis {name!r} of the starting value function repeats a value, so it cannot be interpolated along")
+    if np.any(order != np.arange(order.size)):
+        value = np.take(value, order, axis=axis)
+
+    lower, weight, _ = locate(old_grid, new_grid)
+    along = [1] * value.ndim
+    along[axis] = -1
+    weight = weight.reshape(along)
+    return np.take(value, lower, axis=axis) * (1.0 - weight) + np.take(value, lower + 1, axis=axis) * weight
+
+
+def _match_labels(value: np.ndarray, axis: int, old: list, new: list, name: str, path: str) -> np.ndarray:
+    position = {label: i for i, label in enumerate(old)}
+    if len(position) != len(old):
+        raise InvalidDocument.at(path, f"axis {name!r} of the starting value function repeats a label")
+    unknown = [label for label in new if label not in position]
+    if unknown:
+        raise InvalidDocument.at(path, f"axis {name!r} of the starting value function has no entry for {unknown[:5]}")
+    return np.take(value, [position[label] for label in new], axis=axis)
+
+
+def _all_numbers(values: list) -> bool:
+    return all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_)) for v in values)

@@ -1,0 +1,264 @@
+"""Reports on a solved policy: its stationary distribution and simulated paths.
+
+Both work on ``P_σ``, the (n, n) transition matrix of the final policy, so
+they serve tabular and grid problems alike.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from worker.errors import InvalidDocument
+from worker.problem import CompiledProblem
+from worker.shocks import stationary_distribution
+
+__all__ = [
+    "DIRECT_MAX_STATES",
+    "PERCENTILES",
+    "POWER_MAX_STEPS",
+    "POWER_TOLERANCE",
+    "long_run_distribution",
+    "simulate_report",
+    "stationary_report",
+]
+
+DIRECT_MAX_STATES = 20_000
+"""Chains with at most this many states are solved exactly (sparse LU);
+larger ones by power iteration, whose memory stays O(nonzeros)."""
+POWER_TOLERANCE = 1e-10
+"""Power iteration stops when the residual ``‖πP − π‖₁`` is at most this
+(unitless: a total-variation distance of probability vectors)."""
+POWER_MAX_STEPS = 200_000
+"""Power iteration gives up (with a warning) after this many steps."""
+_POWER_CHECK_EVERY = 10
+"""Lazy steps between two residual checks."""
+PERCENTILES = (5, 25, 50, 75, 95)
+"""Percentiles reported for every simulated series."""
+
+
+def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, Any]]:
+    """The long-run distribution of a chain started uniformly over its states.
+
+    With one recurrent class this is the chain's unique stationary
+    distribution.  With several, it is the mixture the chain settles into from
+    a uniform start: each recurrent class receives the mass that reaches it
+    (absorption probabilities) spread by its own stationary distribution —
+    the Cesàro limit of ``u P^t``, ``u`` uniform.  Periodic chains are fine.
+
+    Up to ``DIRECT_MAX_STATES`` states the limit is solved exactly
+    (:func:`worker.shocks.stationary_distribution`, a sparse LU).  Above, it
+    is approached by power iteration on the lazy chain ``(I + P)/2`` (which
+    has the same limit and is aperiodic) from the uniform distribution, until
+    ``‖πP − π‖₁ ≤ POWER_TOLERANCE``.
+
+    Parameters
+    ----------
+    matrix : (n, n) row-stochastic sparse matrix
+
+    Returns
+    -------
+    pi : (n,) float64, summing to 1
+    info : dict
+        ``method`` (``"direct"`` or ``"power"``), ``residual`` (‖πP − π‖₁),
+        ``steps`` (power steps; 0 for direct), ``warnings``.
+    """
+    matrix = sp.csr_matrix(matrix, dtype=np.float64)
+    n = matrix.shape[0]
+    transposed = sp.csr_matrix(matrix.T)
+    warnings: list[str] = []
+    if n <= DIRECT_MAX_STATES:
+        pi = stationary_distribution(matrix)
+        method, steps = "direct", 0
+    else:
+        pi, steps = _lazy_power(transposed, n)
+        method = "power"
+    residual = float(np.abs(transposed @ pi - pi).sum())
+    if method == "power" and residual > POWER_TOLERANCE:
+        warnings.append(
+            f"the stationary distribution did not settle within {POWER_MAX_STEPS} power steps "
+            f"(residual {residual:.3g}); the chain of this policy mixes very slowly"
+        )
+    return pi, {"method": method, "residual": residual, "steps": steps, "warnings": warnings}
+
+
+def _lazy_power(transposed: sp.csr_matrix, n: int) -> tuple[np.ndarray, int]:
+    """Power iteration ``π ← (π + πP)/2`` from uniform; returns (π, steps)."""
+    pi = np.full(n, 1.0 / n)
+    steps = 0
+    while steps < POWER_MAX_STEPS:
+        for _ in range(_POWER_CHECK_EVERY):
+            moved = transposed @ pi
+            residual = float(np.abs(moved - pi).sum())
+            pi = 0.5 * (pi + moved)
+            steps += 1
+        if residual <= POWER_TOLERANCE:
+            break
+    return pi / pi.sum(), steps
+
+
+def _as_shape(array: np.ndarray, shape: tuple[int, ...]) -> list[Any]:
+    return np.asarray(array, dtype=np.float64).reshape(shape).tolist()
+
+
+def _series(problem: CompiledProblem, policy: np.ndarray) -> dict[str, np.ndarray]:
+    """Per state/shock axis and per choice, its (n,) numeric value."""
+    series = {name: np.asarray(values, dtype=np.float64) for name, values in problem.state_values().items()}
+    for name, values in problem.choice_values(policy).items():
+        series[name] = np.asarray(values, dtype=np.float64)
+    return series
+
+
+def stationary_report(problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
+    """The stationary distribution of (states, shocks) under ``policy``.
+
+    Parameters
+    ----------
+    problem : CompiledProblem
+    policy : (n,) int64
+
+    Returns
+    -------
+    dict
+        ``distribution``: nested lists of shape ``problem.shape`` (see
+        :func:`long_run_distribution` for which distribution when the policy's
+        chain has several recurrent classes); ``means``: the mean of every
+        state/shock axis and every choice under it; ``method``, ``residual``,
+        ``steps``; ``warnings``.
+    """
+    pi, info = long_run_distribution(problem.policy_matrix(policy))
+    means = {name: float(pi @ values) for name, values in _series(problem, policy).items()}
+    return {"distribution": _as_shape(pi, problem.shape), "means": means, **info}
+
+
+def simulate_report(problem: CompiledProblem, policy: np.ndarray, spec: Any, *, path: str = "report.simulate") -> dict[str, Any]:
+    """Simulated paths of the chain under ``policy``, summarised.
+
+    Each path starts at ``spec.start`` (the nearest grid point on each axis;
+    tabular: a state label or index) or, when absent, at a draw from the
+    stationary distribution, and records ``spec.periods`` states, the first
+    being the start.  Successors are drawn from the CSR rows of ``P_σ`` for
+    all paths at once: one uniform draw per path is located by
+    ``searchsorted`` in the cumulative sums of the row's probabilities
+    (``numpy.random.default_rng(spec.seed)``; the same seed gives the same
+    paths).  Zero-probability entries are never drawn.
+
+    Returns
+    -------
+    dict
+        ``periods``, ``paths``, ``seed``; ``summary``: per state/shock axis and
+        choice, ``mean``, ``std`` and ``p5 … p95`` over every recorded period
+        of every path; ``first_path``: per axis its values along path 0
+        (tabular: state labels), per choice the chosen values.
+    """
+    periods, paths = int(spec.periods), int(spec.paths)
+    seed = getattr(spec, "seed", None)
+    rng = np.random.default_rng(seed)
+    matrix = sp.csr_matrix(problem.policy_matrix(policy), dtype=np.float64)
+    matrix.sum_duplicates()
+    start = getattr(spec, "start", None)
+    warnings: list[str] = []
+    if start is None:
+        pi, info = long_run_distribution(matrix)
+        warnings.extend(info["warnings"])
+        first = _draw_from(np.cumsum(pi), rng.random(paths))
+    else:
+        first = np.full(paths, _start_state(problem, start, path + ".start"), dtype=np.int64)
+
+    cumulative = np.cumsum(matrix.data)
+    row_base = np.concatenate([[0.0], cumulative])[matrix.indptr[:-1]]
+    row_total = np.concatenate([[0.0], cumulative])[matrix.indptr[1:]] - row_base
+    states = np.empty((paths, periods), dtype=np.int64)
+    states[:, 0] = first
+    for t in range(1, periods):
+        here = states[:, t - 1]
+        target = row_base[here] + rng.random(paths) * row_total[here]
+        entry = np.searchsorted(cumulative, target, side="right")
+        entry = np.clip(entry, matrix.indptr[here], matrix.indptr[here + 1] - 1)
+        states[:, t] = matrix.indices[entry]
+
+    series = _series(problem, policy)
+    summary = {name: _summarise(values[states]) for name, values in series.items()}
+    return {
+        "periods": periods,
+        "paths": paths,
+        "seed": seed,
+        "summary": summary,
+        "first_path": _first_path(problem, policy, states[0]),
+        "warnings": warnings,
+    }
+
+
+def _draw_from(cumulative: np.ndarray, uniforms: np.ndarray) -> np.ndarray:
+    index = np.searchsorted(cumulative, uniforms * cumulative[-1], side="right")
+    return np.minimum(index, cumulative.size - 1).astype(np.int64)
+
+
+def _summarise(samples: np.ndarray) -> dict[str, float]:
+    flat = samples.ravel()
+    quantiles = np.percentile(flat, PERCENTILES)
+    out = {"mean": float(flat.mean()), "std": float(flat.std())}
+    out.update({f"p{p}": float(q) for p, q in zip(PERCENTILES, quantiles)})
+    return out
+
+
+def _first_path(problem: CompiledProblem, policy: np.ndarray, states: np.ndarray) -> dict[str, list[Any]]:
+    out: dict[str, list[Any]] = {}
+    index = np.unravel_index(states, problem.shape)
+    for k, (name, axis) in enumerate(problem.axes.items()):
+        labels = np.empty(len(axis), dtype=object)
+        labels[:] = list(axis)
+        out[name] = labels[index[k]].tolist()
+    chosen, _ = problem.describe_policy(policy)
+    for name, nested in chosen.items():
+        flat = np.empty(problem.n, dtype=object)
+        flat[:] = _flatten(nested, problem.shape)
+        out[name] = flat[states].tolist()
+    return out
+
+
+def _flatten(nested: Any, shape: tuple[int, ...]) -> list[Any]:
+    if len(shape) == 1:
+        return list(nested)
+    return [leaf for part in nested for leaf in _flatten(part, shape[1:])]
+
+
+def _start_state(problem: CompiledProblem, start: Any, path: str) -> int:
+    """Flat index of the grid point nearest to ``start``.
+
+    ``start`` is a mapping from axis name to a value (every axis needed), or,
+    for a one-axis problem, the value itself.  Label axes (tabular states)
+    match a label exactly, or an integer index.
+    """
+    names = list(problem.axes)
+    if not isinstance(start, dict):
+        if len(names) != 1:
+            raise InvalidDocument.at(path, f"give a value for each of {', '.join(names)}")
+        start = {names[0]: start}
+    unknown = sorted(set(start) - set(names))
+    missing = [name for name in names if name not in start]
+    errors = [{"path": f"{path}.{name}", "message": f"not an axis; the axes are {', '.join(names)}"} for name in unknown]
+    errors += [{"path": f"{path}.{name}", "message": "a start value is needed for this axis"} for name in missing]
+    if errors:
+        raise InvalidDocument(errors)
+    index = []
+    for name in names:
+        axis = list(problem.axes[name])
+        value = start[name]
+        index.append(_nearest(axis, value, f"{path}.{name}"))
+    return int(np.ravel_multi_index(tuple(index), problem.shape))
+
+
+def _nearest(axis: list[Any], value: Any, path: str) -> int:
+    numeric = all(isinstance(x, (int, float)) and not isinstance(x, bool) for x in axis)
+    if value in axis and not isinstance(value, bool):
+        return axis.index(value)
+    if not numeric:
+        if isinstance(value, int) and not isinstance(value, bool) and 0 <= value < len(axis):
+            return value
+        raise InvalidDocument.at(path, f"{value!r} is not one of the labels of this axis")
+    if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value):
+        raise InvalidDocument.at(path, f"expected a finite number, got {value!r}")
+    return int(np.argmin(np.abs(np.asarray(axis, dtype=np.float64) - float(value))))

@@ -1,0 +1,320 @@
+"""Finite Markov chains for exogenous shocks.
+
+A chain is a pair ``(values, P)``: ``values`` of shape ``(n,)`` and a
+row-stochastic ``P`` of shape ``(n, n)`` with ``P[i, j]`` the probability of
+moving from ``values[i]`` to ``values[j]``, both float64.
+
+AR(1) processes ``y' = (1 - rho) * mean + rho * y + e``, ``e ~ N(0, sigma**2)``,
+are discretised by Rouwenhorst (1995) or Tauchen (1986).  Builders take the
+document ``path`` of what they build (``"model.shocks.z.ar1"``) and raise
+:class:`worker.errors.InvalidDocument` at the offending field under it.
+"""
+
+from __future__ import annotations
+
+import math
+from functools import reduce
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+import scipy.sparse.csgraph as csgraph
+import scipy.sparse.linalg as spla
+from scipy.special import ndtr
+
+from worker.arrays import decode_array
+from worker.errors import InvalidDocument, join_path
+
+__all__ = [
+    "AR1_METHODS",
+    "TRANSFORMS",
+    "ar1_chain",
+    "apply_transform",
+    "iid_chain",
+    "markov_chain",
+    "product_chain",
+    "rouwenhorst",
+    "stationary_distribution",
+    "tauchen",
+]
+
+AR1_METHODS = ("rouwenhorst", "tauchen")
+TRANSFORMS = ("exp", "none")
+
+STOCHASTIC_TOLERANCE = 1e-9
+"""How far a probability row's sum may be from 1 (absolute, dimensionless)."""
+
+DEFAULT_WIDTH = 3.0
+"""Tauchen grid half-width, in unconditional standard deviations of the process."""
+
+_MAX_FAULTS = 10
+"""Faulty rows reported per check before the rest are summarised."""
+
+
+def rouwenhorst(rho: float, sigma: float, points: int, mean: float = 0.0, *, path: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """Rouwenhorst (1995) chain for an AR(1).
+
+    The grid is symmetric about ``mean`` with half-width
+    ``sigma / sqrt(1 - rho**2) * sqrt(points - 1)``; the conditional mean and
+    variance of the chain equal those of the AR(1) at every grid point
+    (Kopecky and Suen, 2010), which makes it the method of choice for
+    persistent processes.
+
+    Returns
+    -------
+    values : (points,) float64
+    P : (points, points) float64, row-stochastic
+    """
+    _check_ar1(rho, sigma, points, mean, path)
+    p = (1.0 + rho) / 2.0
+    matrix = np.array([[p, 1.0 - p], [1.0 - p, p]])
+    for size in range(3, points + 1):
+        grown = np.zeros((size, size))
+        grown[:-1, :-1] += p * matrix
+        grown[:-1, 1:] += (1.0 - p) * matrix
+        grown[1:, :-1] += (1.0 - p) * matrix
+        grown[1:, 1:] += p * matrix
+        # Interior rows received two contributions each.
+        grown[1:-1] /= 2.0
+        matrix = grown
+    half_width = sigma / math.sqrt(1.0 - rho * rho) * math.sqrt(points - 1)
+    values = np.linspace(mean - half_width, mean + half_width, points)
+    return values, matrix
+
+
+def tauchen(
+    rho: float, sigma: float, points: int, width: float = DEFAULT_WIDTH, mean: float = 0.0, *, path: str = ""
+) -> tuple[np.ndarray, np.ndarray]:
+    """Tauchen (1986) chain for an AR(1).
+
+    Evenly spaced grid over ``mean +- width * sigma / sqrt(1 - rho**2)``; the
+    probability of moving from ``y_i`` to ``y_j`` is the normal probability
+    of the innovation landing ``y'`` between the midpoints around ``y_j``,
+    the end points taking the tails.
+
+    Returns
+    -------
+    values : (points,) float64
+    P : (points, points) float64, row-stochastic
+    """
+    errors = _ar1_errors(rho, sigma, points, mean, path)
+    if not _is_real(width) or not math.isfinite(width) or width <= 0:
+        errors.append(_fault(path, "width", f"width (in unconditional standard deviations) must be a positive number, got {width!r}"))
+    if errors:
+        raise InvalidDocument(errors)
+    half_width = width * sigma / math.sqrt(1.0 - rho * rho)
+    values = np.linspace(mean - half_width, mean + half_width, points)
+    midpoints = (values[1:] + values[:-1]) / 2.0
+    conditional_mean = (1.0 - rho) * mean + rho * values
+    below = ndtr((midpoints[None, :] - conditional_mean[:, None]) / sigma)
+    cumulative = np.hstack([np.zeros((points, 1)), below, np.ones((points, 1))])
+    return values, np.diff(cumulative, axis=1)
+
+
+def ar1_chain(
+    method: str, rho: float, sigma: float, points: int, *, width: float = DEFAULT_WIDTH, mean: float = 0.0, path: str = ""
+) -> tuple[np.ndarray, np.ndarray]:
+    """Discretise an AR(1) by ``method`` (``rouwenhorst`` or ``tauchen``)."""
+    if method == "rouwenhorst":
+        return rouwenhorst(rho, sigma, points, mean, path=path)
+    if method == "tauchen":
+        return tauchen(rho, sigma, points, width, mean, path=path)
+    raise InvalidDocument.at(join_path(path, "method"), f"unknown method {method!r}; use one of {', '.join(AR1_METHODS)}")
+
+
+def markov_chain(values: Any, matrix: Any, *, path: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """Validate an explicit chain.
+
+    ``matrix`` must be square, its size that of ``values``, finite,
+    non-negative, and each row must sum to 1 within ``STOCHASTIC_TOLERANCE``;
+    rows are then rescaled to sum to 1 to rounding.  Faults are named at
+    ``path.values`` and ``path.matrix[i]`` (``[i][j]`` for single entries).
+    """
+    values = _check_values(values, join_path(path, "values"))
+    where = join_path(path, "matrix")
+    matrix = decode_array(matrix, path=where)
+    if matrix.ndim != 2 or matrix.shape[0] != matrix.shape[1]:
+        raise InvalidDocument.at(where, f"the transition matrix must be square, got shape {list(matrix.shape)}")
+    if matrix.shape[0] != values.size:
+        raise InvalidDocument.at(where, f"the transition matrix is {matrix.shape[0]}x{matrix.shape[0]} but there are {values.size} values")
+    return values, _check_stochastic(matrix, where)
+
+
+def iid_chain(values: Any, probs: Any, *, path: str = "") -> tuple[np.ndarray, np.ndarray]:
+    """A chain drawn independently each period from ``probs``: every row of ``P`` equals ``probs``."""
+    values = _check_values(values, join_path(path, "values"))
+    where = join_path(path, "probs")
+    probs = decode_array(probs, path=where)
+    if probs.ndim != 1 or probs.size != values.size:
+        raise InvalidDocument.at(where, f"probs must be a list of {values.size} numbers (one per value), got shape {list(probs.shape)}")
+    probs = _check_stochastic(probs[None, :], where, single_row=True)[0]
+    return values, np.tile(probs, (values.size, 1))
+
+
+def product_chain(chains: list[tuple[np.ndarray, np.ndarray]]) -> tuple[np.ndarray, np.ndarray]:
+    """Combine independent chains into one over the product of their states.
+
+    States are ordered in C order, the first chain varying slowest.
+
+    Returns
+    -------
+    value_table : (n_total, k) float64
+        Row ``s`` holds the value of each of the ``k`` chains in joint state ``s``.
+    P : (n_total, n_total) float64
+        ``kron(P_1, P_2, ..., P_k)``.  With no chains, one state and ``P = [[1]]``.
+    """
+    if not chains:
+        return np.zeros((1, 0)), np.ones((1, 1))
+    grids = np.meshgrid(*[np.asarray(values, dtype=np.float64) for values, _ in chains], indexing="ij")
+    value_table = np.stack([grid.reshape(-1) for grid in grids], axis=1)
+    matrix = reduce(np.kron, [np.asarray(P, dtype=np.float64) for _, P in chains])
+    return value_table, matrix
+
+
+def apply_transform(values: np.ndarray, transform: str, *, path: str = "") -> np.ndarray:
+    """Map chain values through ``transform``: ``exp`` or ``none``; returns a new array.
+
+    Faults are named at ``path.transform``.
+    """
+    where = join_path(path, "transform")
+    values = np.asarray(values, dtype=np.float64)
+    if transform == "none":
+        return values.copy()
+    if transform == "exp":
+        with np.errstate(over="ignore"):
+            out = np.exp(values)
+        if not np.all(np.isfinite(out)):
+            raise InvalidDocument.at(where, f"exp overflows float64 at value {values.max()!r}; the shock values are too large to exponentiate")
+        return out
+    raise InvalidDocument.at(where, f"unknown transform {transform!r}; use one of {', '.join(TRANSFORMS)}")
+
+
+def stationary_distribution(P: np.ndarray | sp.spmatrix | sp.sparray, start: np.ndarray | None = None) -> np.ndarray:
+    """Long-run distribution of a finite chain started from ``start``.
+
+    For a chain with one closed class this is its unique stationary
+    distribution, whatever ``start``.  With several closed classes the answer
+    depends on where the chain starts: mass reaches each closed class with the
+    chain's absorption probabilities and is then spread by that class's own
+    stationary distribution (the Cesaro limit of ``start @ P**t``).
+    Periodic chains are fine.  Dense input is solved densely, sparse input
+    with a sparse LU.
+
+    Parameters
+    ----------
+    P : (n, n) row-stochastic, ndarray or scipy sparse
+    start : (n,) probabilities, or None for uniform over the states
+
+    Returns
+    -------
+    pi : (n,) float64, non-negative, summing to 1, ``pi @ P == pi`` to rounding.
+    """
+    dense = not sp.issparse(P)
+    matrix = sp.csr_array(np.asarray(P, dtype=np.float64) if dense else P, dtype=np.float64)
+    matrix.eliminate_zeros()
+    n = matrix.shape[0]
+    if matrix.ndim != 2 or matrix.shape[1] != n or n == 0:
+        raise ValueError(f"a transition matrix must be square and non-empty, got shape {matrix.shape}")
+    start = np.full(n, 1.0 / n) if start is None else np.asarray(start, dtype=np.float64)
+
+    # Closed classes are the strongly connected components with no edge leaving them.
+    _, label = csgraph.connected_components(matrix, directed=True, connection="strong")
+    rows, cols = matrix.nonzero()
+    leaky = np.unique(label[rows[label[rows] != label[cols]]])
+    closed = ~np.isin(label, leaky)
+
+    # Mass that ends in each closed class: the start's own share plus what the
+    # transient states send there, from expected visits x solving x (I - Q) = start_T.
+    mass_in = start * closed
+    transient = np.flatnonzero(~closed)
+    if transient.size:
+        to_transient = matrix[transient][:, transient]
+        visits = _solve((sp.eye_array(transient.size) - to_transient).T, start[transient], dense)
+        mass_in = mass_in + (matrix[transient].T @ visits) * closed
+    class_mass = np.bincount(label, weights=mass_in, minlength=label.max() + 1)
+
+    # Closed classes do not interact, so one block-diagonal system gives all of
+    # them: pi (I - P) = 0 on each class, with one equation per class replaced
+    # by pi[first state] = 1 (positive in an irreducible class).  A unit row,
+    # unlike a row of ones, keeps the sparse LU sparse.
+    keep = np.flatnonzero(closed)
+    keep_label = label[keep]
+    system = (sp.eye_array(keep.size) - matrix[keep][:, keep]).T.tocoo()
+    _, first = np.unique(keep_label, return_index=True)
+    is_first = np.zeros(keep.size, dtype=bool)
+    is_first[first] = True
+    kept = ~is_first[system.row]
+    system = sp.coo_array(
+        (np.append(system.data[kept], np.ones(first.size)), (np.append(system.row[kept], first), np.append(system.col[kept], first))),
+        shape=(keep.size, keep.size),
+    )
+    relative = np.clip(_solve(system, is_first.astype(np.float64), dense), 0.0, None)
+    class_total = np.bincount(keep_label, weights=relative, minlength=class_mass.size)
+    pi = np.zeros(n)
+    pi[keep] = relative * (class_mass / np.where(class_total > 0, class_total, 1.0))[keep_label]
+    return pi / pi.sum()
+
+
+def _solve(A: sp.sparray, b: np.ndarray, dense: bool) -> np.ndarray:
+    if dense:
+        return np.linalg.solve(A.toarray(), b)
+    return np.atleast_1d(spla.spsolve(A.tocsc(), b))
+
+
+def _is_real(value: Any) -> bool:
+    return isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, (bool, np.bool_))
+
+
+def _fault(path: str, field: str | int, message: str) -> dict[str, str]:
+    return {"path": join_path(path, field), "message": message}
+
+
+def _ar1_errors(rho: Any, sigma: Any, points: Any, mean: Any, path: str) -> list[dict[str, str]]:
+    errors = []
+    if not _is_real(rho) or not math.isfinite(rho):
+        errors.append(_fault(path, "rho", f"rho must be a finite number, got {rho!r}"))
+    elif not -1.0 < rho < 1.0:
+        errors.append(_fault(path, "rho", f"rho must lie strictly between -1 and 1, got {rho!r}: with |rho| >= 1 the "
+                             "process is not stationary (its variance grows without bound), so no finite chain can match it"))
+    if not _is_real(sigma) or not math.isfinite(sigma) or sigma <= 0:
+        errors.append(_fault(path, "sigma", f"sigma (the innovation's standard deviation) must be a positive number, got {sigma!r}"))
+    if not isinstance(points, (int, np.integer)) or isinstance(points, (bool, np.bool_)):
+        errors.append(_fault(path, "points", f"points must be a whole number, got {points!r}"))
+    elif points < 2:
+        errors.append(_fault(path, "points", f"an AR(1) chain needs at least 2 points, got {points}"))
+    if not _is_real(mean) or not math.isfinite(mean):
+        errors.append(_fault(path, "mean", f"mean must be a finite number, got {mean!r}"))
+    return errors
+
+
+def _check_ar1(rho: Any, sigma: Any, points: Any, mean: Any, path: str) -> None:
+    errors = _ar1_errors(rho, sigma, points, mean, path)
+    if errors:
+        raise InvalidDocument(errors)
+
+
+def _check_values(values: Any, where: str) -> np.ndarray:
+    values = decode_array(values, path=where)
+    if values.ndim != 1 or values.size == 0:
+        raise InvalidDocument.at(where, f"values must be a non-empty flat list of numbers, got shape {list(values.shape)}")
+    return values
+
+
+def _check_stochastic(matrix: np.ndarray, where: str, single_row: bool = False) -> np.ndarray:
+    def at(i: int, j: int | None = None) -> str:
+        parts = [] if single_row else [i]
+        return join_path(where, *parts, *([] if j is None else [j]))
+
+    errors = []
+    for i, j in np.argwhere(~np.isfinite(matrix))[:_MAX_FAULTS]:
+        errors.append({"path": at(int(i), int(j)), "message": "probabilities must be finite numbers"})
+    for i, j in np.argwhere(matrix < 0)[:_MAX_FAULTS]:
+        errors.append({"path": at(int(i), int(j)), "message": f"probabilities must be non-negative, got {matrix[i, j]!r}"})
+    if not errors:
+        sums = matrix.sum(axis=1)
+        for i in np.flatnonzero(np.abs(sums - 1.0) > STOCHASTIC_TOLERANCE)[:_MAX_FAULTS]:
+            what = "the probabilities" if single_row else f"row {i}"
+            errors.append({"path": at(int(i)), "message": f"{what} must sum to 1 (within {STOCHASTIC_TOLERANCE:g}), got {sums[i]!r}"})
+    if errors:
+        raise InvalidDocument(errors)
+    return matrix / matrix.sum(axis=1, keepdims=True)

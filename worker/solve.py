@@ -1,0 +1,281 @@
+"""The front door of the numerics: ``solve(document) -> result document``.
+
+``solve`` validates the document (``service.schema.parse_document``),
+estimates its size and refuses it over the memory cap, compiles it (tabular
+here, grid through ``worker.gridmodel``, imported only when needed so that
+``import worker`` never loads numba), picks the initial values, dispatches to
+``worker.solvers.METHODS[solver.method]`` and builds the result document of
+DESIGN section 5 from the one :class:`~worker.solvers.SolveOutcome`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from typing import Any, Callable
+
+import numpy as np
+
+from worker.errors import InvalidDocument, TooLarge
+from worker.problem import CompiledProblem
+from worker.report import simulate_report, stationary_report
+from worker.solvers import METHODS, Checkpoint, SolveOutcome
+
+__all__ = ["DEFAULT_MAX_PROBLEM_MB", "compile_document", "max_problem_bytes", "solve"]
+
+DEFAULT_MAX_PROBLEM_MB = 4096
+"""Memory cap of one problem in MiB (2**20 bytes) when ``FIXQ_MAX_PROBLEM_MB`` is unset."""
+
+_MIB = 2**20
+
+
+def max_problem_bytes() -> int:
+    """The memory cap in bytes: ``FIXQ_MAX_PROBLEM_MB`` (MiB), default ``DEFAULT_MAX_PROBLEM_MB``."""
+    raw = os.environ.get("FIXQ_MAX_PROBLEM_MB", "").strip()
+    try:
+        megabytes = float(raw) if raw else float(DEFAULT_MAX_PROBLEM_MB)
+    except ValueError:
+        megabytes = float(DEFAULT_MAX_PROBLEM_MB)
+    return int(megabytes * _MIB)
+
+
+def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None = None) -> tuple[Any, CompiledProblem]:
+    """Validate, size-check and compile a problem document.
+
+    Parameters
+    ----------
+    document : dict
+        The raw problem document (parsed JSON, or a dict with packed arrays or ndarrays).
+    limits : dict, optional
+        ``{"max_bytes": int}``; default :func:`max_problem_bytes`.
+
+    Returns
+    -------
+    (ProblemDocument, CompiledProblem)
+
+    Raises
+    ------
+    InvalidDocument, InfeasibleModel
+        The document is wrong (errors name the field paths).
+    TooLarge
+        The size estimate exceeds the cap; ``context["estimate"]`` holds it.
+    """
+    from service.schema import parse_document
+
+    doc = parse_document(document)
+    cap = {"max_bytes": int((limits or {}).get("max_bytes") or max_problem_bytes())}
+    _check_size(doc, cap)
+    return doc, _compile(doc, cap)
+
+
+def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
+    from worker.estimate import estimate
+
+    cap = limits["max_bytes"]
+    size = estimate(doc, limits=limits)
+    if size["bytes"] > cap:
+        raise TooLarge.at(
+            "model",
+            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['states']:,} states × "
+            f"{size['choices']:,} choices), over the memory cap of {cap / _MIB:,.0f} MiB "
+            "(FIXQ_MAX_PROBLEM_MB); use coarser grids or fewer choices",
+            estimate=size,
+        )
+    return size
+
+
+def _compile(doc: Any, limits: dict[str, int]) -> CompiledProblem:
+    if doc.model.kind == "tabular":
+        from worker.tabular import compile_tabular
+
+        return compile_tabular(doc)
+    from worker.gridmodel import compile_grid
+
+    return compile_grid(doc, limits=limits)
+
+
+def solve(
+    document: dict[str, Any],
+    *,
+    on_progress: Callable[[dict[str, Any]], None] | None = None,
+    checkpoint: Checkpoint | None = None,
+    should_stop: Callable[[], bool] | None = None,
+    warm_start: dict[str, Any] | None = None,
+    limits: dict[str, Any] | None = None,
+) -> dict[str, Any]:
+    """Validate, compile and solve a problem document; return the result document.
+
+    Parameters
+    ----------
+    document : dict
+        A problem document (DESIGN section 3).
+    on_progress : callable, optional
+        Called with each log entry as it is made.
+    checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
+        Resumed from when its fingerprint matches this document; saved every
+        ``solver.checkpoint_s`` seconds of solving.
+    should_stop : callable, optional
+        Polled between sweeps; when true the solve raises ``Canceled``.
+    warm_start : dict, optional
+        ``{"axes", "value"}`` of an earlier result, for ``solver.initial: {"job": ID}``.
+    limits : dict, optional
+        ``{"max_bytes": int}``; default from ``FIXQ_MAX_PROBLEM_MB``.
+
+    Returns
+    -------
+    dict
+        Plain JSON-ready Python (DESIGN section 5): ``status``, ``method``,
+        ``error_bound``, ``iterations``, ``evaluation_steps``, ``seconds``,
+        ``axes``, ``value`` and ``policy``/``policy_index`` (nested lists of
+        shape ``shape``), ``log``, ``diagnostics``, ``stationary``,
+        ``simulation`` (``None`` when not asked for).
+
+        ``diagnostics`` holds the problem's own diagnostics (edge hits, …)
+        and: ``observed_rate`` (see ``worker.solvers.observed_rate``),
+        ``warnings``, ``resumed_from_iteration`` and ``bracket``.  The
+        bracket describes the final improvement step ``v → Tv``: ``v* − Tv``
+        lies in ``[lower, upper]`` at every state (MacQueen–Porteus), the
+        returned value is ``Tv + shift`` with ``shift = (lower + upper)/2``,
+        so ``error_bound = (upper − lower)/2 + rounding_allowance``;
+        ``standard_bound = β/(1−β)·‖Tv − v‖∞ + rounding_allowance`` is the
+        bound ``Tv`` alone would carry.
+
+    Raises
+    ------
+    InvalidDocument, InfeasibleModel, TooLarge
+        Bad input, with field paths.
+    Canceled
+        ``should_stop`` returned true.
+    """
+    doc, problem = compile_document(document, limits=limits)
+    initial = _initial_values(doc, problem, warm_start)
+    spec = doc.solver
+    outcome = METHODS[spec.method](
+        problem,
+        initial,
+        tolerance=spec.tolerance,
+        max_iterations=spec.max_iterations,
+        time_limit_s=spec.time_limit_s,
+        checkpoint_s=spec.checkpoint_s,
+        evaluation_steps=spec.evaluation_steps,
+        on_progress=on_progress,
+        checkpoint=checkpoint,
+        should_stop=should_stop,
+        fingerprint=_fingerprint(document),
+    )
+    return _result(doc, problem, outcome)
+
+
+def _fingerprint(document: dict[str, Any]) -> str:
+    try:
+        from service.schema import document_hash
+
+        return str(document_hash(document))
+    except (TypeError, ValueError):
+        text = json.dumps(document, sort_keys=True, default=_json_fallback)
+        return hashlib.sha256(text.encode()).hexdigest()
+
+
+def _json_fallback(obj: Any) -> Any:
+    if isinstance(obj, np.ndarray):
+        return {"ndarray": obj.tolist(), "dtype": str(obj.dtype)}
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return repr(obj)
+
+
+def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, Any] | None) -> np.ndarray:
+    """(n,) float64 starting values from ``solver.initial``."""
+    initial = doc.solver.initial
+    if initial is None or initial == "zeros":
+        return np.zeros(problem.n)
+    if hasattr(initial, "values"):
+        return _checked_values(np.asarray(initial.values, dtype=np.float64), problem, "solver.initial.values")
+    if hasattr(initial, "job"):
+        path = "solver.initial.job"
+        if warm_start is None:
+            raise InvalidDocument.at(
+                path,
+                "starting from an earlier job needs the fixq service, which looks the job up; "
+                "in-process callers pass its result as warm_start, or use initial: {\"values\": ...}",
+            )
+        return _warm_values(warm_start, problem, path)
+    raise InvalidDocument.at("solver.initial", f"unknown initial values {initial!r}")
+
+
+def _checked_values(values: np.ndarray, problem: CompiledProblem, path: str) -> np.ndarray:
+    if values.shape not in (tuple(problem.shape), (problem.n,)):
+        raise InvalidDocument.at(
+            path,
+            f"has shape {list(values.shape)}, but the value function of this model has shape "
+            f"{list(problem.shape)} ({', '.join(problem.axes)})",
+        )
+    if not np.isfinite(values).all():
+        raise InvalidDocument.at(path, "initial values must be finite numbers")
+    return values.reshape(problem.n).copy()
+
+
+def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str) -> np.ndarray:
+    from worker.interpolate import regrid
+
+    old_axes = warm_start.get("axes")
+    if not isinstance(old_axes, dict) or "value" not in warm_start:
+        raise InvalidDocument.at(path, "the earlier job's result has no axes and value to start from")
+    values = regrid(old_axes, warm_start["value"], problem.axes, path=path)
+    return _checked_values(values, problem, path)
+
+
+def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[str, Any]:
+    policy, policy_index = problem.describe_policy(outcome.policy)
+    problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
+    warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
+    report = getattr(doc, "report", None)
+    stationary = None
+    simulation = None
+    if report is not None and getattr(report, "stationary", False):
+        stationary = stationary_report(problem, outcome.policy)
+        warnings += stationary.pop("warnings", [])
+    if report is not None and getattr(report, "simulate", None) is not None:
+        simulation = simulate_report(problem, outcome.policy, report.simulate)
+        warnings += simulation.pop("warnings", [])
+    diagnostics = {
+        **problem_diagnostics,
+        "observed_rate": outcome.observed_rate,
+        "warnings": warnings,
+        "resumed_from_iteration": outcome.resumed_from_iteration,
+        "bracket": dict(outcome.bracket),
+    }
+    return _plain(
+        {
+            "status": outcome.status,
+            "method": doc.solver.method,
+            "error_bound": outcome.error_bound,
+            "iterations": outcome.iterations,
+            "evaluation_steps": outcome.evaluation_steps,
+            "seconds": outcome.seconds,
+            "axes": problem.axes,
+            "value": np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist(),
+            "policy": policy,
+            "policy_index": policy_index,
+            "log": outcome.log,
+            "diagnostics": diagnostics,
+            "stationary": stationary,
+            "simulation": simulation,
+        }
+    )
+
+
+def _plain(obj: Any) -> Any:
+    """Numpy scalars and arrays → Python numbers and lists, recursively."""
+    if isinstance(obj, dict):
+        return {str(key): _plain(value) for key, value in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        if obj and all(type(x) in (float, int, str) for x in obj):
+            return list(obj)
+        return [_plain(x) for x in obj]
+    if isinstance(obj, np.ndarray):
+        return obj.tolist()
+    if isinstance(obj, np.generic):
+        return obj.item()
+    return obj

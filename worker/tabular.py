@@ -1,0 +1,246 @@
+"""Tabular documents (``kind: tabular``) compiled to a :class:`CompiledProblem`.
+
+A finite Markov decision problem with ``S`` states and ``A`` actions is held
+as two arrays:
+
+* ``reward`` — (S, A) float64, ``-inf`` where an action is not allowed;
+* ``transition`` — one CSR matrix of shape (S·A, S) whose row ``s·A + a`` is
+  the distribution of tomorrow's state after action ``a`` in state ``s``
+  (rows of disallowed pairs are empty).
+
+The Bellman step is then one sparse matrix–vector product and an ``argmax``:
+``Q = R + β·(T @ v).reshape(S, A)``, with no Python loop over states.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from worker.errors import InfeasibleModel, InvalidDocument, join_path
+
+__all__ = ["ROW_SUM_TOLERANCE", "TabularProblem", "compile_tabular"]
+
+ROW_SUM_TOLERANCE = 1e-9
+"""Allowed deviation of a transition row's sum from 1 (absolute, unitless)."""
+
+_MAX_LISTED_FAULTS = 20
+"""At most this many faulty rows are listed in one error (the rest are counted)."""
+
+
+class TabularProblem:
+    """A finite MDP as arrays; implements :class:`worker.problem.CompiledProblem`.
+
+    Parameters
+    ----------
+    reward : (S, A) float64
+        ``-inf`` (or NaN) marks an action that is not allowed in a state.
+    transition : (S·A, S) sparse matrix, or (S, A, S) dense array
+        Row ``s·A + a`` is the law of tomorrow's state after ``a`` in ``s``.
+        Rows of disallowed pairs are ignored (emptied).
+    discount : float
+        β in (0, 1).
+    state_labels, action_labels : list, optional
+        Labels reported in ``axes`` and ``policy``; default ``0..S-1`` / ``0..A-1``.
+
+    No validation happens here beyond shapes: :func:`compile_tabular` checks a
+    document's arrays and names the faulty field.
+    """
+
+    hints_active = False
+
+    def __init__(
+        self,
+        reward: np.ndarray,
+        transition: sp.spmatrix | sp.sparray | np.ndarray,
+        discount: float,
+        *,
+        state_labels: list[Any] | None = None,
+        action_labels: list[Any] | None = None,
+    ) -> None:
+        reward = np.array(reward, dtype=np.float64)
+        if reward.ndim != 2:
+            raise ValueError(f"reward must be (S, A), got shape {reward.shape}")
+        n_states, n_actions = reward.shape
+        allowed = np.isfinite(reward)
+        reward[~allowed] = -np.inf
+        if isinstance(transition, np.ndarray):
+            if transition.shape != (n_states, n_actions, n_states):
+                raise ValueError(f"dense transition must be {(n_states, n_actions, n_states)}, got {transition.shape}")
+            matrix = sp.csr_matrix(transition.reshape(n_states * n_actions, n_states))
+        else:
+            matrix = sp.csr_matrix(transition)
+            if matrix.shape != (n_states * n_actions, n_states):
+                raise ValueError(f"sparse transition must be {(n_states * n_actions, n_states)}, got {matrix.shape}")
+        matrix.sum_duplicates()
+        row_allowed = np.repeat(allowed.ravel(), np.diff(matrix.indptr))
+        if not row_allowed.all():
+            matrix.data[~row_allowed] = 0.0
+        matrix.eliminate_zeros()
+
+        self.discount = float(discount)
+        self.n_states = n_states
+        self.n_actions = n_actions
+        self.shape: tuple[int, ...] = (n_states,)
+        self.n = n_states
+        self.reward = reward
+        self.allowed = allowed
+        self.transition = matrix
+        self.state_labels = list(range(n_states)) if state_labels is None else list(state_labels)
+        self.action_labels = list(range(n_actions)) if action_labels is None else list(action_labels)
+        self.axes: dict[str, list[Any]] = {"state": self.state_labels}
+        self._rows = np.arange(n_states)
+
+    def bellman_step(
+        self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """One Bellman step; ``restricted`` and ``policy_guess`` are ignored (no hints).
+
+        Parameters
+        ----------
+        v : (S,) float64
+
+        Returns
+        -------
+        Tv : (S,) float64
+        policy : (S,) int64, the lowest-index maximising action per state.
+        """
+        q = self.transition @ v
+        q *= self.discount
+        q = q.reshape(self.n_states, self.n_actions)
+        q += self.reward
+        policy = q.argmax(axis=1)
+        return q[self._rows, policy], policy.astype(np.int64, copy=False)
+
+    def _pair_rows(self, policy: np.ndarray) -> np.ndarray:
+        return self._rows * self.n_actions + np.asarray(policy, dtype=np.int64)
+
+    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
+        """``P_σ``: (S, S) CSR, the rows of ``transition`` the policy selects."""
+        return sp.csr_matrix(self.transition[self._pair_rows(policy)])
+
+    def policy_reward(self, policy: np.ndarray) -> np.ndarray:
+        """``r_σ``: (S,) float64."""
+        return self.reward[self._rows, np.asarray(policy, dtype=np.int64)]
+
+    def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
+        """``r_σ + β P_σ v``: (S,) → (S,)."""
+        return self.policy_reward(policy) + self.discount * (self.policy_matrix(policy) @ v)
+
+    def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any]]:
+        """``({"action": [labels]}, {"action": [indices]})``, one entry per state."""
+        index = np.asarray(policy, dtype=np.int64)
+        labels = np.empty(self.n_actions, dtype=object)
+        labels[:] = self.action_labels
+        return {"action": labels[index].tolist()}, {"action": index.tolist()}
+
+    def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
+        """``{"action": (S,) float64}``: the chosen action's index."""
+        return {"action": np.asarray(policy, dtype=np.float64)}
+
+    def state_values(self) -> dict[str, np.ndarray]:
+        """``{"state": (S,) float64}``: each state's index."""
+        return {"state": self._rows.astype(np.float64)}
+
+    def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
+        """Tabular problems have no grid edges to report: ``{}``."""
+        return {}
+
+
+def compile_tabular(doc: Any) -> TabularProblem:
+    """Compile a validated ``kind: tabular`` document.
+
+    Parameters
+    ----------
+    doc : service.schema.ProblemDocument
+        ``doc.model`` is a ``TabularModel``: ``reward`` (S, A) with NaN for
+        "not allowed", ``transition`` an (S, A, S) array or a sparse object
+        whose ``entries`` is an (N, 4) array of ``(s, a, s_next, p)`` rows.
+
+    Raises
+    ------
+    InfeasibleModel
+        A state has no allowed action (``model.reward[s]``).
+    InvalidDocument
+        A transition row of an allowed pair is negative, non-finite or does not
+        sum to 1 (``model.transition[s][a]`` or ``model.transition.entries``).
+        The schema checks these too; the compiler re-checks because a wrong
+        row would silently give a wrong answer.
+    """
+    model = doc.model
+    reward = np.asarray(model.reward, dtype=np.float64)
+    n_states, n_actions = reward.shape
+    allowed = np.isfinite(reward)
+    _check_feasible(allowed)
+
+    raw = model.transition
+    if isinstance(raw, np.ndarray):
+        transition: sp.csr_matrix | np.ndarray = raw
+        where = "dense"
+    else:
+        transition = _entries_to_csr(np.asarray(raw.entries, dtype=np.float64), n_states, n_actions)
+        where = "entries"
+    problem = TabularProblem(
+        reward,
+        transition,
+        doc.discount,
+        state_labels=model.state_labels(),
+        action_labels=model.action_labels(),
+    )
+    _check_rows(problem, where)
+    return problem
+
+
+def _entries_to_csr(entries: np.ndarray, n_states: int, n_actions: int) -> sp.csr_matrix:
+    """(N, 4) ``(s, a, s_next, p)`` rows → (S·A, S) CSR; duplicates are summed."""
+    if entries.size == 0:
+        return sp.csr_matrix((n_states * n_actions, n_states), dtype=np.float64)
+    state = entries[:, 0].astype(np.int64)
+    action = entries[:, 1].astype(np.int64)
+    successor = entries[:, 2].astype(np.int64)
+    matrix = sp.coo_matrix(
+        (entries[:, 3], (state * n_actions + action, successor)), shape=(n_states * n_actions, n_states)
+    ).tocsr()
+    matrix.sum_duplicates()
+    return matrix
+
+
+def _check_feasible(allowed: np.ndarray) -> None:
+    stuck = np.flatnonzero(~allowed.any(axis=1))
+    if stuck.size:
+        errors = [
+            {"path": join_path("model", "reward", int(s)), "message": "this state has no allowed action (every reward is null)"}
+            for s in stuck[:_MAX_LISTED_FAULTS]
+        ]
+        raise InfeasibleModel(errors, states=stuck.tolist())
+
+
+def _check_rows(problem: TabularProblem, where: str) -> None:
+    matrix = problem.transition
+    n_actions = problem.n_actions
+    allowed = problem.allowed.ravel()
+    row_of_entry = np.repeat(np.arange(matrix.shape[0]), np.diff(matrix.indptr))
+    bad_value = np.zeros(matrix.shape[0], dtype=bool)
+    bad_value[row_of_entry[~np.isfinite(matrix.data) | (matrix.data < 0)]] = True
+    sums = np.asarray(matrix.sum(axis=1)).ravel()
+    bad_sum = allowed & ~(np.abs(sums - 1.0) <= ROW_SUM_TOLERANCE)
+    faulty = np.flatnonzero(allowed & (bad_value | bad_sum))
+    if not faulty.size:
+        return
+    errors = []
+    for row in faulty[:_MAX_LISTED_FAULTS]:
+        s, a = divmod(int(row), n_actions)
+        if bad_value[row]:
+            message = "transition probabilities must be finite and non-negative"
+        else:
+            message = f"transition probabilities sum to {sums[row]:.12g}, not 1 (tolerance {ROW_SUM_TOLERANCE:g})"
+        if where == "dense":
+            errors.append({"path": join_path("model", "transition", s, a), "message": message})
+        else:
+            errors.append({"path": "model.transition.entries", "message": f"state {s}, action {a}: {message}"})
+    more = faulty.size - len(errors)
+    if more > 0:
+        errors.append({"path": "model.transition", "message": f"{more} more rows are faulty"})
+    raise InvalidDocument(errors)
