@@ -21,6 +21,7 @@ help:
 	@echo "make test   set up .venv and run the test suite"
 
 $(STAMP): pyproject.toml
+	@echo "setting up $(VENV) (the first time takes a few minutes)"
 	if [ ! -x $(BIN)/python ]; then $(PYTHON) -m venv $(VENV); fi
 	$(BIN)/python -m pip install --quiet -e '.[test]'
 	rm -f $(VENV)/.fixq-installed-*
@@ -31,14 +32,14 @@ env: $(STAMP)
 # PYTEST_STATUS=FILE makes the recipe write pytest's own exit code there,
 # since make itself exits 2 on any failure (.ci/run needs to tell 5 apart).
 test: $(STAMP)
-	rc=0
+	@rc=0
 	$(BIN)/python -m pytest -q $(PYTEST_ARGS) || rc=$$?
 	if [ -n "$(PYTEST_STATUS)" ]; then echo "$$rc" >"$(PYTEST_STATUS)"; fi
 	if [ "$$rc" -eq 5 ]; then echo "make test: pytest collected no tests" >&2; fi
 	exit "$$rc"
 
 demo: $(STAMP)
-	export PATH="$(CURDIR)/$(BIN):$$PATH"
+	@export PATH="$(CURDIR)/$(BIN):$$PATH"
 	workdir=$$(mktemp -d)
 	port=$$(python -c 'import socket; s = socket.socket(); s.bind(("127.0.0.1", 0)); print(s.getsockname()[1])')
 	export FIXQ_URL="http://127.0.0.1:$$port"
@@ -67,4 +68,4 @@ demo: $(STAMP)
 	fixq status "$$job"
 	echo
 	echo "A few rows of the solution table (every 250th grid point):"
-	fixq result "$$job" --format csv | awk -F, 'NR == 1 || NR % 250 == 2 { for (i = 1; i <= NF; i++) printf "%14s", $$i; print "" }'
+	fixq result "$$job" --format csv | awk -F, 'NR == 1 { for (i = 1; i <= NF; i++) printf "%16s", $$i; print "" } NR > 1 && NR % 250 == 2 { for (i = 1; i <= NF; i++) printf "%16.6g", $$i; print "" }'

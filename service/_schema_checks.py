@@ -1,5 +1,6 @@
-"""Helpers of :mod:`service.schema`: faults, the nesting guard, the translation
-of pydantic errors, and the vectorised checks of numeric arrays.
+"""Helpers of :mod:`service.schema`: annotated field types, faults, the nesting
+guard, the translation of pydantic errors, the vectorised checks of numeric
+arrays, and the finishing of the JSON Schema and the canonical form.
 
 A *fault* is a ``{"path", "message"}`` dict as in :mod:`worker.errors`, plus
 an optional ``"kind"`` (``"infeasible"`` or ``"too_large"``) that picks the
@@ -16,15 +17,16 @@ import difflib
 import keyword
 import math
 import types
-from itertools import chain
+from itertools import chain, compress
 from typing import Annotated, Any, Iterable, Union, get_args, get_origin
 
 import numpy as np
-from pydantic import BaseModel, Tag
-from pydantic_core import PydanticCustomError
+from pydantic import AfterValidator, BaseModel, BeforeValidator, GetJsonSchemaHandler, PlainSerializer, Tag, WithJsonSchema
+from pydantic_core import PydanticCustomError, core_schema
 
-from worker.errors import join_path
-from worker.expressions import FUNCTIONS
+from worker.arrays import decode_array, encode_array
+from worker import expressions
+from worker.errors import InfeasibleModel, InvalidDocument, TooLarge, join_path
 
 Fault = dict[str, Any]
 
@@ -37,11 +39,79 @@ MAX_LISTED = 10
 ROW_SUM_TOLERANCE = 1e-9
 """How far a probability row's sum may be from 1 (absolute, dimensionless)."""
 
-EXPRESSION_FUNCTIONS = tuple(FUNCTIONS)
+EXPRESSION_FUNCTIONS = tuple(expressions.FUNCTIONS)
 """Functions of the expression language; no variable may take their names."""
 
 MAX_NAME_CHARS = 64
 """Longest name of a parameter, state, shock, choice or define (characters)."""
+
+
+class SchemaExtra:
+    """Annotated metadata that adds JSON Schema keywords for a check a validator makes."""
+
+    def __init__(self, **keywords: Any) -> None:
+        self.keywords = keywords
+
+    def __get_pydantic_json_schema__(self, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler) -> dict[str, Any]:
+        out = handler(schema)
+        out.update(self.keywords)
+        return out
+
+
+def check(predicate: Any, message: str) -> AfterValidator:
+    """An after-validator raising ``message`` (``{value}`` is filled in) when ``predicate`` fails."""
+
+    def validate(value: Any) -> Any:
+        if not predicate(value):
+            raise PydanticCustomError("fixq_check", message, {"value": shown(value)})
+        return value
+
+    return AfterValidator(validate)
+
+
+def integral(value: Any) -> Any:
+    """Before-validator of whole numbers: ``3.0`` becomes ``3``."""
+    # JSON writers of R, MATLAB and Julia send 3.0 for 3; bool stays bool so strict int refuses it.
+    if type(value) is float and value.is_integer() and abs(value) < 2**63:
+        return int(value)
+    return value
+
+
+def _nested_schema(ndim: int | None, nullable: bool, row_length: int | None) -> dict[str, Any]:
+    if ndim is None:
+        return {"x-nested-numbers": True}
+    nested: dict[str, Any] = {"type": ["number", "null"]} if nullable else {"type": "number"}
+    for level in range(ndim):
+        nested = {"type": "array", "items": nested}
+        if level == 0 and row_length is not None:
+            nested.update(minItems=row_length, maxItems=row_length)
+    return nested
+
+
+def array_field(
+    ndim: int | None, *, max_elements: int, inline_elements: int, allow_null: bool = False, row_length: int | None = None
+) -> Any:
+    """The annotated type of a numeric-array field.
+
+    Nested lists, a packed array or an ndarray in (via :func:`worker.arrays.decode_array`);
+    a C-contiguous float64 ndarray out.  In JSON it is written as nested lists
+    up to ``inline_elements`` elements and packed beyond.
+    """
+
+    def decode(value: Any) -> np.ndarray:
+        try:
+            array = decode_array(value, path="", allow_null=allow_null, max_elements=max_elements, ndim=ndim)
+        except TooLarge as exc:
+            raise faults_error([{**e, "kind": "too_large"} for e in exc.errors]) from None
+        except InvalidDocument as exc:
+            raise faults_error(exc.errors) from None
+        return np.ascontiguousarray(array, dtype=np.float64)
+
+    def to_json(array: np.ndarray) -> Any:
+        return array.tolist() if array.size <= inline_elements else encode_array(array)
+
+    schema = {"anyOf": [_nested_schema(ndim, allow_null, row_length), {"x-packed-array": True}]}
+    return Annotated[np.ndarray, BeforeValidator(decode), PlainSerializer(to_json, when_used="json"), WithJsonSchema(schema)]
 
 
 def fault(path: str | int, message: str, kind: str | None = None) -> Fault:
@@ -142,29 +212,47 @@ def check_name(name: str) -> str:
     return name
 
 
-def nesting_fault(raw: Any, limit: int) -> Fault | None:
-    """A fault at the first list or object nested deeper than ``limit`` levels, else None.
+_CONTAINERS = frozenset({list, tuple, dict})
+_MAPPINGS = frozenset({dict})
+_SEQUENCES = frozenset({list, tuple})
 
-    Breadth first over whole levels, so the common case costs a few C-level
-    passes (``map(type, ...)``, ``chain``) and no recursion at any depth.
+
+def structure_fault(raw: Any, *, max_depth: int, max_keys: int) -> Fault | None:
+    """A fault at the first list or object nested deeper than ``max_depth``
+    levels, or the first object with more than ``max_keys`` keys; else None.
+
+    Breadth first over whole levels with C-level iterators only (``chain``,
+    ``compress``, ``map``), so the cost is a few passes over the document's
+    nodes and there is no recursion at any depth.  Only exact JSON types count
+    as containers (what a JSON parser produces).
     """
-    level: list[Any] = [raw]
-    for depth in range(1, limit + 2):
-        present = set(map(type, level))
-        if present <= {list}:
-            lists, dicts = level, []
-        elif present <= {dict}:
-            lists, dicts = [], level
-        else:
-            lists = [node for node in level if isinstance(node, (list, tuple))]
-            dicts = [node for node in level if isinstance(node, dict)]
-        if not lists and not dicts:
+    level: list[Any] = [raw] if type(raw) in _CONTAINERS else []
+    for depth in range(1, max_depth + 2):
+        if not level:
             return None
-        if depth > limit:
-            return fault(_path_to_depth(raw, depth), f"nested more than {limit} levels deep; no part of a problem document needs that")
-        level = list(chain.from_iterable(lists))
-        level.extend(chain.from_iterable(map(dict.values, dicts)))
+        if depth > max_depth:
+            return fault(_path_to_depth(raw, depth), f"nested more than {max_depth} levels deep; no part of a problem document needs that")
+        dicts = list(compress(level, map(_MAPPINGS.__contains__, map(type, level))))
+        if dicts and max(map(len, dicts)) > max_keys:
+            big = next(d for d in dicts if len(d) > max_keys)
+            return fault(_path_to(raw, big), f"has {len(big):,} keys; no object in a problem document needs more than {max_keys:,}")
+        lists = compress(level, map(_SEQUENCES.__contains__, map(type, level)))
+        children = list(chain(chain.from_iterable(lists), chain.from_iterable(map(dict.values, dicts))))
+        level = list(compress(children, map(_CONTAINERS.__contains__, map(type, children))))
     return None
+
+
+def _path_to(raw: Any, target: Any) -> str:
+    stack: list[tuple[Any, tuple[str | int, ...]]] = [(raw, ())]
+    while stack:
+        node, parts = stack.pop()
+        if node is target:
+            return join_path(*parts)
+        if type(node) is dict:
+            stack.extend((child, (*parts, str(key))) for key, child in node.items() if type(child) in _CONTAINERS)
+        elif type(node) in _SEQUENCES:
+            stack.extend((child, (*parts, i)) for i, child in enumerate(node) if type(child) in _CONTAINERS)
+    return ""
 
 
 def _path_to_depth(raw: Any, depth: int) -> str:
@@ -447,16 +535,21 @@ def tabular_faults(model: Any) -> list[Fault]:
 
 
 def _label_faults(labels: list[str] | int, where: str, noun: str) -> list[Fault]:
-    if isinstance(labels, int) or len(set(labels)) == len(labels):
+    if isinstance(labels, int):
         return []
-    first: dict[str, int] = {}
-    duplicates = []
-    for i, label in enumerate(labels):
-        if label in first:
-            duplicates.append(fault(join_path(where, i), f'duplicate {noun} label "{label}" (first used at index {first[label]})'))
-        else:
-            first.setdefault(label, i)
-    return capped(duplicates, len(duplicates), where, "duplicate labels")
+    repeats = len(labels) - len(set(labels))
+    if not repeats:
+        return []
+
+    def duplicates() -> Iterable[Fault]:
+        first: dict[str, int] = {}
+        for i, label in enumerate(labels):
+            if label in first:
+                yield fault(join_path(where, i), f'duplicate {noun} label "{label}" (first used at index {first[label]})')
+            else:
+                first[label] = i
+
+    return capped(duplicates(), repeats, where, "duplicate labels")
 
 
 def _state(model: Any, s: int) -> str:
@@ -569,4 +662,215 @@ def _entry_faults(columns: np.ndarray, sizes: tuple[int, int, int], where: str) 
         where,
         "probabilities outside [0, 1]",
     )
+    return faults
+
+
+RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
+"""Keys of a grid given by its range."""
+
+
+def form_faults(part: Any, forms: dict[str, tuple[str, ...]], described: str) -> tuple[str | None, list[Fault]]:
+    """Which of the mutually exclusive ``forms`` (name → keys) ``part`` uses, and faults if not exactly one."""
+    present = {name: [key for key in keys if getattr(part, key) is not None] for name, keys in forms.items()}
+    used = [name for name, keys in present.items() if keys]
+    if not used:
+        return None, [fault("", f"give {described}")]
+    if len(used) > 1:
+        first = ", ".join(f"`{k}`" for k in present[used[0]])
+        return None, [
+            fault(key, f"`{key}` cannot be combined with {first}: give {described}") for name in used[1:] for key in present[name]
+        ]
+    return used[0], []
+
+
+def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Fault]:
+    """Faults of a grid given by ``min``, ``max``, ``points``, ``spacing``, ``exponent``.
+
+    Fills in the defaults (``spacing`` uniform; ``exponent`` for power) on ``part``.
+    """
+    faults = [fault(key, f"missing `{key}`: a grid needs min, max and points ({other})") for key in ("min", "max", "points") if getattr(part, key) is None]
+    spacing = part.spacing or "uniform"
+    if part.exponent is not None and spacing != "power":
+        faults.append(fault("exponent", f'exponent is used only with spacing "power", not "{spacing}"'))
+    if faults:
+        return faults
+    if part.min >= part.max:
+        faults.append(fault("max", f"max ({number(part.max)}) must be greater than min ({number(part.min)})"))
+    elif spacing == "log" and part.min <= 0:
+        faults.append(fault("min", f"log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got {number(part.min)}"))
+    else:
+        exponent = part.exponent if part.exponent is not None else default_exponent
+        gap = grid_gap_fault(spacing, part.min, part.max, part.points, exponent)
+        faults += [gap] if gap else []
+    part.spacing = spacing
+    if spacing == "power" and part.exponent is None:
+        part.exponent = default_exponent
+    return faults
+
+
+def sorted_keys(node: Any, ordered: set[tuple[str, ...]], where: tuple[str, ...] = ()) -> Any:
+    """``node`` with object keys sorted, except in the objects at the paths in ``ordered``."""
+    if isinstance(node, dict):
+        keys = node if where in ordered else sorted(node)
+        return {key: sorted_keys(node[key], ordered, (*where, key)) for key in keys}
+    if isinstance(node, list) and node and isinstance(node[0], (dict, list)):
+        return [sorted_keys(item, ordered, where) for item in node]
+    return node
+
+
+_KEYWORDS = {"ge": "minimum", "le": "maximum", "gt": "exclusiveMinimum", "lt": "exclusiveMaximum"}
+"""Constraint names pydantic leaves untranslated on validated-then-constrained ints."""
+
+
+def finish_schema(node: Any) -> Any:
+    """Swap array markers for ``$ref``s, fix key-pattern and constraint keywords,
+    and unwrap docstring line breaks inside paragraphs of descriptions."""
+    if isinstance(node, dict):
+        if node.get("x-packed-array"):
+            return {"$ref": "#/$defs/PackedArray"}
+        if node.get("x-nested-numbers"):
+            return {"$ref": "#/$defs/NestedNumbers"}
+        out = {_KEYWORDS.get(key, key) if "type" in node else key: finish_schema(value) for key, value in node.items()}
+        patterns = out.pop("patternProperties", None)
+        if patterns:
+            # dict[Name, X]: the key pattern belongs in propertyNames, or other keys would pass unchecked.
+            ((pattern, values),) = patterns.items()
+            out["propertyNames"] = {**out.get("propertyNames", {}), "pattern": pattern}
+            out["additionalProperties"] = values
+        if isinstance(out.get("description"), str):
+            out["description"] = "\n\n".join(" ".join(part.split()) for part in out["description"].split("\n\n"))
+        return out
+    if isinstance(node, list):
+        return [finish_schema(item) for item in node]
+    return node
+
+
+def exception_for(faults: list[Fault], max_reported: int, unlisted: int = 0) -> InvalidDocument | TooLarge:
+    """The exception for ``faults``: duplicates dropped, at most ``max_reported`` listed,
+    the rest (plus ``unlisted`` faults never translated) counted in a last fault.
+
+    ``TooLarge`` when an array is over its cap (the client must shrink the
+    document whatever else is wrong), ``InfeasibleModel`` when the only faults
+    are states with no allowed action, else ``InvalidDocument``.
+    """
+    unique: dict[tuple[str, str], Fault] = {}
+    for item in faults:
+        unique.setdefault((item["path"], item["message"]), {"path": item["path"], "message": item["message"]})
+    listed = list(unique.values())
+    more = max(len(listed) - max_reported, 0) + unlisted
+    if more:
+        listed = listed[:max_reported] + [fault("", f"and {more:,} more faults")]
+    kinds = {item.get("kind") for item in faults}
+    if "too_large" in kinds:
+        return TooLarge(listed)
+    if kinds == {"infeasible"}:
+        return InfeasibleModel(listed)
+    return InvalidDocument(listed)
+
+
+def grid_model_faults(model: Any) -> list[Fault]:
+    """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
+    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model)
+
+
+def _name_faults(model: Any) -> list[Fault]:
+    faults = []
+    seen: dict[str, str] = {}
+    for section in ("params", "states", "shocks", "choices", "define"):
+        for name in getattr(model, section):
+            if name in seen:
+                faults.append(
+                    fault(
+                        join_path(section, name),
+                        f"the name `{name}` is already used in {seen[name]}; names must be unique across params, states, shocks, choices and define",
+                    )
+                )
+            else:
+                seen[name] = section
+    return faults
+
+
+def _motion_faults(model: Any) -> list[Fault]:
+    faults = []
+    chooser: dict[str, str] = {}
+    states = ", ".join(model.states)
+    for name, choice in model.choices.items():
+        target = choice.next_of
+        if target is None:
+            continue
+        where = join_path("choices", name, "next_of")
+        if target not in model.states:
+            faults.append(fault(where, f"`{target}` is not a state; next_of must name one of: {states}"))
+        elif target in chooser:
+            faults.append(fault(where, f"state `{target}` is already chosen by choice `{chooser[target]}`; a state can be the next_of of only one choice"))
+        else:
+            chooser[target] = name
+    for name in model.next:
+        where = join_path("next", name)
+        if name not in model.states:
+            faults.append(fault(where, f"`{name}` is not a state; next gives tomorrow's value of a state (states: {states})"))
+        elif name in chooser:
+            faults.append(fault(where, f"state `{name}` is already chosen through next_of by choice `{chooser[name]}`, so it must not also have a next expression"))
+    faults += [
+        fault(
+            join_path("next", name),
+            f"state `{name}` has no law of motion: give next.{name}, an expression for its value tomorrow, or a choice with next_of \"{name}\"",
+        )
+        for name in model.states
+        if name not in chooser and name not in model.next
+    ]
+    return faults
+
+
+def _expressions_faults(model: Any) -> list[Fault]:
+    base = [*model.params, *model.states, *model.shocks, *model.choices]
+    defines = list(model.define)
+    faults = []
+    for i, name in enumerate(defines):
+        faults += _expression_faults(model.define[name], base + defines[:i], set(defines[i:]), join_path("define", name))
+    known = base + defines
+    for name, text in model.next.items():
+        faults += _expression_faults(text, known, set(), join_path("next", name))
+    faults += _expression_faults(model.reward, known, set(), "reward")
+    for i, text in enumerate(model.feasible):
+        faults += _expression_faults(text, known, set(), join_path("feasible", i))
+    return faults
+
+
+def _expression_faults(text: str, known: list[str], later: set[str], where: str) -> list[Fault]:
+    """Faults of one expression: its grammar, and names it uses that are unknown or defined later."""
+    try:
+        expression = expressions.parse(text, path=where)
+        early = sorted(expression.names & later)
+        if early:
+            names = ", ".join(f"`{n}`" for n in early)
+            return [fault(where, f"uses {names} before it is defined: a define may use only the defines listed before it")]
+        expressions.check_names(expression, known, path=where)
+    except InvalidDocument as exc:
+        return exc.errors
+    return []
+
+
+def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
+    """Faults of ``report.simulate.start`` against the model (paths from the document root)."""
+    if model.kind == "tabular":
+        if isinstance(start, dict):
+            return [fault(where, "for a tabular model, start is a state label or a state index")]
+        if isinstance(start, int):
+            if not 0 <= start < model.n_states:
+                return [fault(where, f"state index {start} is out of range: with {model.n_states} states it must be 0 to {model.n_states - 1}")]
+            return []
+        if not isinstance(model.states, list) or start not in model.states:
+            return [fault(where, f'"{start[:80]}" is not a state label')]
+        return []
+    if not isinstance(start, dict):
+        return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
+    axes = {**model.states, **model.shocks}
+    faults = [fault(join_path(where, name), f"`{name}` is not a state or shock of the model") for name in start if name not in axes]
+    faults += [fault(join_path(where, name), f"missing a starting value for `{name}`") for name in axes if name not in start]
+    for name, value in start.items():
+        if name in axes:
+            lo, hi = axes[name].bounds
+            if not lo <= value <= hi:
+                faults.append(fault(join_path(where, name), f"{number(value)} lies outside the grid of `{name}`, [{number(lo)}, {number(hi)}]"))
     return faults

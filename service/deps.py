@@ -20,6 +20,7 @@ from worker.errors import InvalidDocument
 
 __all__ = [
     "ANONYMOUS",
+    "SESSION_COOKIE",
     "Caller",
     "JsonObject",
     "Owner",
@@ -32,6 +33,8 @@ __all__ = [
 
 ANONYMOUS = "anonymous"
 """Owner name of every job submitted while auth is off."""
+SESSION_COOKIE = "fixq_session"
+"""Cookie in which the dashboard keeps a signed-in browser's key (HttpOnly, SameSite=Strict)."""
 
 
 @dataclass(frozen=True)
@@ -71,14 +74,17 @@ StoreDep = Annotated[JobStore, Depends(_store)]
 def current_owner(request: Request, settings: SettingsDep) -> Caller:
     """The caller.  With auth off everyone is ``anonymous`` and sees every job.
 
-    With auth on, a request needs ``Authorization: Bearer KEY``; until API keys
-    exist, no key is valid, so every such request is refused with 401.
+    With auth on, a request needs a key: ``Authorization: Bearer KEY``, or the
+    dashboard's session cookie.  Until API keys exist, no key is valid, so
+    every such request is refused with 401.
     """
     if not settings.auth:
         return Caller(ANONYMOUS, admin=True)
     challenge = {"WWW-Authenticate": 'Bearer realm="fixq"'}
     scheme, _, key = request.headers.get("authorization", "").partition(" ")
-    if scheme.lower() != "bearer" or not key.strip():
+    if scheme.lower() != "bearer":
+        key = request.cookies.get(SESSION_COOKIE, "")
+    if not key.strip():
         raise Problem(401, "unauthorized", "this API needs a key: send Authorization: Bearer KEY", headers=challenge)
     raise Problem(
         401,

@@ -27,7 +27,7 @@ _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
 DESCRIPTIONS: dict[str, str] = {
     "fishery_harvest": (
         "A fishery sets this season's harvest; the stock left behind regrows logistically, "
-        "scaled by this season's ocean conditions (a law of motion in `next`)."
+        "scaled by this season's ocean conditions (a law of motion given in next)."
     ),
     "household_saving": (
         "A household splits cash on hand between consumption and saving under persistent income risk; "

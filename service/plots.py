@@ -11,6 +11,10 @@ entries; nothing touches Redis or HTTP, so the router and the tests share it.
   the first two at one shock state (others held at their middle grid point).
   Tabular problems: a bar per state.
 
+A request for a picture that cannot be drawn (an unknown choice, a shock
+index out of range) raises :class:`service.problems.Problem` (400) naming the
+query parameter.
+
 matplotlib is used through its object API (``Figure`` + the Agg canvas): no
 pyplot, so no global figure registry and no display backend.  SVG text is
 drawn as paths, so a picture needs no font on the machine that shows it.

@@ -38,22 +38,20 @@ from pydantic import (
     BeforeValidator,
     ConfigDict,
     Discriminator,
+    FailFast,
     Field,
-    GetJsonSchemaHandler,
-    PlainSerializer,
     PrivateAttr,
     Tag,
     ValidationError,
-    WithJsonSchema,
     model_validator,
 )
-from pydantic_core import PydanticCustomError, core_schema
+from pydantic_core import PydanticCustomError
 
 from service import _schema_checks as checks
 from service._schema_checks import fault
-from worker.arrays import DTYPES, decode_array, encode_array
-from worker import expressions
-from worker.errors import InfeasibleModel, InvalidDocument, TooLarge, join_path
+from worker.arrays import DTYPES
+from worker.expressions import MAX_LENGTH as _EXPRESSION_LENGTH
+from worker.errors import InvalidDocument, join_path
 
 __all__ = [
     "AR1Spec",
@@ -89,19 +87,22 @@ DOCUMENT_VERSION = 1
 MAX_DEPTH = 64
 """Deepest nesting of lists and objects in a document (levels)."""
 
+MAX_KEYS = 1_000
+"""Most keys in any one object of a document (count; the largest are params and define)."""
+
 MAX_POINTS = 10_000_000
 """Most points on one grid axis, chain, menu or tabular label list (count)."""
 
 MAX_ARRAY_ELEMENTS = 100_000_000
 """Most elements in one numeric array (count; 800 MB as float64)."""
 
-MAX_EXPRESSION_CHARS = expressions.MAX_LENGTH
+MAX_EXPRESSION_CHARS = _EXPRESSION_LENGTH
 """Longest expression (characters)."""
 
 MAX_AXES = 16
 """Most states, shocks or choices in a grid model (count of each)."""
 
-MAX_ENTRIES = 1_000
+MAX_ENTRIES = MAX_KEYS
 """Most params, defines or feasible expressions in a grid model (count of each)."""
 
 DEFAULT_TOLERANCE = 1e-6
@@ -169,100 +170,30 @@ _ORDERED = {("model", "states"), ("model", "shocks"), ("model", "choices"), ("mo
 """Objects whose key order means something (array axes; define order)."""
 
 
-class _SchemaExtra:
-    """Annotated metadata that adds JSON Schema keywords for a check a validator makes."""
-
-    def __init__(self, **keywords: Any) -> None:
-        self.keywords = keywords
-
-    def __get_pydantic_json_schema__(self, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler) -> dict[str, Any]:
-        out = handler(schema)
-        out.update(self.keywords)
-        return out
-
-
-def _check(predicate: Any, message: str) -> AfterValidator:
-    """An after-validator raising ``message`` (``{value}`` is filled in) when ``predicate`` fails."""
-
-    def validate(value: Any) -> Any:
-        if not predicate(value):
-            raise PydanticCustomError("fixq_check", message, {"value": checks.shown(value)})
-        return value
-
-    return AfterValidator(validate)
-
-
-def _integral(value: Any) -> Any:
-    # JSON writers of R, MATLAB and Julia send 3.0 for 3; bool stays bool so strict int refuses it.
-    if type(value) is float and value.is_integer() and abs(value) < 2**63:
-        return int(value)
-    return value
-
-
-Integer = Annotated[int, BeforeValidator(_integral)]
+Integer = Annotated[int, BeforeValidator(checks.integral)]
 Name = Annotated[
     str,
     AfterValidator(checks.check_name),
-    _SchemaExtra(pattern="^[A-Za-z_][A-Za-z0-9_]*$", maxLength=checks.MAX_NAME_CHARS),
+    checks.SchemaExtra(pattern="^[A-Za-z_][A-Za-z0-9_]*$", maxLength=checks.MAX_NAME_CHARS),
 ]
 Expression = Annotated[str, Field(min_length=1, max_length=MAX_EXPRESSION_CHARS)]
 Points = Annotated[
     Integer,
-    _check(lambda n: n >= 2, "a grid needs at least 2 points, got {value}"),
-    _check(lambda n: n <= MAX_POINTS, f"at most {MAX_POINTS:,} points per axis are accepted, got {{value}}"),
-    _SchemaExtra(minimum=2, maximum=MAX_POINTS),
+    checks.check(lambda n: n >= 2, "a grid needs at least 2 points, got {value}"),
+    checks.check(lambda n: n <= MAX_POINTS, f"at most {MAX_POINTS:,} points per axis are accepted, got {{value}}"),
+    checks.SchemaExtra(minimum=2, maximum=MAX_POINTS),
 ]
 Positive = Annotated[float, Field(gt=0)]
 Spacing = Literal["uniform", "log", "power"]
 
 
-def _nested_schema(ndim: int | None, nullable: bool, row_length: int | None = None) -> dict[str, Any]:
-    leaf: dict[str, Any] = {"type": ["number", "null"]} if nullable else {"type": "number"}
-    if ndim is None:
-        return {"x-nested-numbers": True}
-    nested = leaf
-    for level in range(ndim):
-        nested = {"type": "array", "items": nested}
-        if level == 0 and row_length is not None:
-            nested.update(minItems=row_length, maxItems=row_length)
-    return nested
-
-
-def _array(ndim: int | None, *, allow_null: bool = False, row_length: int | None = None) -> Any:
-    """A numeric-array field: nested lists or a packed array in, a float64 ndarray out."""
-
-    def decode(value: Any) -> np.ndarray:
-        if isinstance(value, np.ndarray) and value.dtype == np.float64 and value.flags.c_contiguous:
-            return value
-        try:
-            array = decode_array(value, path="", allow_null=allow_null, max_elements=MAX_ARRAY_ELEMENTS, ndim=ndim)
-        except TooLarge as exc:
-            raise checks.faults_error([{**e, "kind": "too_large"} for e in exc.errors]) from None
-        except InvalidDocument as exc:
-            raise checks.faults_error(exc.errors) from None
-        return np.ascontiguousarray(array, dtype=np.float64)
-
-    schema = {"anyOf": [_nested_schema(ndim, allow_null, row_length), {"x-packed-array": True}]}
-    return Annotated[
-        np.ndarray,
-        BeforeValidator(decode),
-        PlainSerializer(_array_to_json, when_used="json"),
-        WithJsonSchema(schema),
-    ]
-
-
-def _array_to_json(array: np.ndarray) -> Any:
-    if array.size <= CANONICAL_INLINE_ELEMENTS:
-        return array.tolist()
-    return encode_array(array)
-
-
-Vector = _array(1)
-Matrix = _array(2)
-NullableMatrix = _array(2, allow_null=True)
-Cube = _array(3)
-Rows4 = _array(2, row_length=4)
-AnyArray = _array(None)
+_SIZES = {"max_elements": MAX_ARRAY_ELEMENTS, "inline_elements": CANONICAL_INLINE_ELEMENTS}
+Vector = checks.array_field(1, **_SIZES)
+Matrix = checks.array_field(2, **_SIZES)
+NullableMatrix = checks.array_field(2, allow_null=True, **_SIZES)
+Cube = checks.array_field(3, **_SIZES)
+Rows4 = checks.array_field(2, row_length=4, **_SIZES)
+AnyArray = checks.array_field(None, **_SIZES)
 
 
 class _Part(BaseModel):
@@ -283,10 +214,17 @@ def _labels_or_count(value: Any) -> str | None:
     return None
 
 
+class _FailFast(FailFast):
+    """Stop a list at its first bad item (so a million bad labels cost one error); hashable,
+    as members of a ``Union`` must be."""
+
+    __hash__ = object.__hash__
+
+
 Label = Annotated[str, Field(min_length=1, max_length=MAX_LABEL_CHARS)]
 LabelsOrCount = Annotated[
     Union[
-        Annotated[list[Label], annotated_types.Len(1, MAX_POINTS), Tag("<labels>")],
+        Annotated[list[Label], annotated_types.Len(1, MAX_POINTS), _FailFast(), Tag("<labels>")],
         Annotated[Integer, annotated_types.Interval(ge=1, le=MAX_POINTS), Tag("<count>")],
     ],
     Discriminator(
@@ -377,47 +315,6 @@ class TabularModel(_Part):
         return self
 
 
-def _range_faults(part: Any, *, other: str) -> list[checks.Fault]:
-    """Faults of a ``min``/``max``/``points``/``spacing``/``exponent`` grid; fills the defaults."""
-    faults = [fault(key, f"missing `{key}`: a grid needs min, max and points ({other})") for key in ("min", "max", "points") if getattr(part, key) is None]
-    spacing = part.spacing or "uniform"
-    if part.exponent is not None and spacing != "power":
-        faults.append(fault("exponent", f'exponent is used only with spacing "power", not "{spacing}"'))
-    if faults:
-        return faults
-    if part.min >= part.max:
-        faults.append(fault("max", f"max ({checks.number(part.max)}) must be greater than min ({checks.number(part.min)})"))
-    elif spacing == "log" and part.min <= 0:
-        faults.append(fault("min", f"log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got {checks.number(part.min)}"))
-    else:
-        exponent = part.exponent if part.exponent is not None else DEFAULT_EXPONENT
-        gap = checks.grid_gap_fault(spacing, part.min, part.max, part.points, exponent)
-        faults += [gap] if gap else []
-    part.spacing = spacing
-    if spacing == "power" and part.exponent is None:
-        part.exponent = DEFAULT_EXPONENT
-    return faults
-
-
-def _form_faults(part: Any, forms: dict[str, tuple[str, ...]], described: str) -> tuple[str | None, list[checks.Fault]]:
-    """Which of the mutually exclusive ``forms`` (name → keys) ``part`` uses, and faults if not exactly one."""
-    present = {name: [key for key in keys if getattr(part, key) is not None] for name, keys in forms.items()}
-    used = [name for name, keys in present.items() if keys]
-    if not used:
-        return None, [fault("", f"give {described}")]
-    if len(used) > 1:
-        first = ", ".join(f"`{k}`" for k in present[used[0]])
-        return None, [
-            fault(key, f"`{key}` cannot be combined with {first}: give {described}")
-            for name in used[1:]
-            for key in present[name]
-        ]
-    return used[0], []
-
-
-_RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
-
-
 _GRID_DESCRIPTIONS = {
     "min": "Smallest grid value.",
     "max": "Largest grid value; must be greater than min.",
@@ -469,11 +366,11 @@ class GridAxis(_Part):
 
     @model_validator(mode="after")
     def _check_axis(self) -> GridAxis:
-        form, faults = _form_faults(
-            self, {"range": _RANGE_KEYS, "values": ("values",)}, "either `min`, `max` and `points` (and optionally `spacing`), or `values`"
+        form, faults = checks.form_faults(
+            self, {"range": checks.RANGE_KEYS, "values": ("values",)}, "either `min`, `max` and `points` (and optionally `spacing`), or `values`"
         )
         if form == "range":
-            faults = _range_faults(self, other="or give `values`")
+            faults = checks.range_faults(self, other="or give `values`", default_exponent=DEFAULT_EXPONENT)
         elif form == "values":
             if self.values.size < 2:
                 faults = [fault("values", f"a grid needs at least 2 values, got {self.values.size}")]
@@ -523,13 +420,13 @@ class ChoiceSpec(_Part):
 
     @model_validator(mode="after")
     def _check_choice(self) -> ChoiceSpec:
-        form, faults = _form_faults(
+        form, faults = checks.form_faults(
             self,
-            {"next_of": ("next_of",), "values": ("values",), "range": _RANGE_KEYS},
+            {"next_of": ("next_of",), "values": ("values",), "range": checks.RANGE_KEYS},
             "exactly one of: `next_of`; `values`; or `min`, `max` and `points` (and optionally `spacing`)",
         )
         if form == "range":
-            faults = _range_faults(self, other="or give `next_of` or `values`")
+            faults = checks.range_faults(self, other="or give `next_of` or `values`", default_exponent=DEFAULT_EXPONENT)
         elif form == "values":
             faults = checks.increasing_faults(self.values, "values") if self.values.size else [fault("values", "the menu must not be empty")]
         checks.raise_faults(faults)
@@ -542,21 +439,21 @@ class AR1Spec(_Part):
 
     rho: Annotated[
         float,
-        _check(
+        checks.check(
             lambda r: -1 < r < 1,
             "rho must lie strictly between -1 and 1, got {value}: with |rho| >= 1 the process is not stationary "
             "(its variance grows without bound), so there is no long-run distribution for a finite chain to match",
         ),
-        _SchemaExtra(exclusiveMinimum=-1, exclusiveMaximum=1),
+        checks.SchemaExtra(exclusiveMinimum=-1, exclusiveMaximum=1),
     ] = Field(description="Persistence, strictly between -1 and 1.")
     sigma: Annotated[
         float,
-        _check(
+        checks.check(
             lambda s: s > 0,
             "sigma, the standard deviation of the innovation e, must be positive, got {value} "
             "(for a shock that never moves, use markov with one value)",
         ),
-        _SchemaExtra(exclusiveMinimum=0),
+        checks.SchemaExtra(exclusiveMinimum=0),
     ] = Field(description="Standard deviation of the innovation e (not of y itself); positive, in the units of y.")
     points: Points = Field(description=f"Number of chain values, 2 to {MAX_POINTS:,}.")
     method: Literal["rouwenhorst", "tauchen"] = Field(
@@ -684,7 +581,7 @@ class ShockSpec(_Part):
 
     @model_validator(mode="after")
     def _check_shock(self) -> ShockSpec:
-        form, faults = _form_faults(self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`")
+        form, faults = checks.form_faults(self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`")
         if form and self.transform == "exp":
             top = self.ar1.mean + self.ar1.half_width() if self.ar1 is not None else float((self.markov or self.iid).values[-1])
             if not top < _EXP_LIMIT:
@@ -724,7 +621,7 @@ class GridModel(_Part):
     choices: Annotated[dict[Name, ChoiceSpec], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description="What is chosen each period."
     )
-    next: dict[str, Expression] = Field(
+    next: Annotated[dict[str, Expression], Field(max_length=MAX_AXES)] = Field(
         default_factory=dict,
         description=(
             "For each state not chosen through next_of: an expression for its value tomorrow, from today's "
@@ -752,85 +649,11 @@ class GridModel(_Part):
 
     @model_validator(mode="after")
     def _check_model(self) -> GridModel:
-        faults = self._name_faults() + self._motion_faults()
-        faults += self._expression_faults()
-        checks.raise_faults(faults)
+        checks.raise_faults(checks.grid_model_faults(self))
+        for choice in self.choices.values():
+            if choice.next_of in self.states:
+                choice._target = self.states[choice.next_of]
         return self
-
-    def _name_faults(self) -> list[checks.Fault]:
-        faults = []
-        seen: dict[str, str] = {}
-        for section in ("params", "states", "shocks", "choices", "define"):
-            for name in getattr(self, section):
-                if name in seen:
-                    faults.append(
-                        fault(
-                            join_path(section, name),
-                            f"the name `{name}` is already used in {seen[name]}; names must be unique across params, states, shocks, choices and define",
-                        )
-                    )
-                else:
-                    seen[name] = section
-        return faults
-
-    def _motion_faults(self) -> list[checks.Fault]:
-        faults = []
-        chooser: dict[str, str] = {}
-        states = ", ".join(self.states)
-        for name, choice in self.choices.items():
-            target = choice.next_of
-            if target is None:
-                continue
-            where = join_path("choices", name, "next_of")
-            if target not in self.states:
-                faults.append(fault(where, f"`{target}` is not a state; next_of must name one of: {states}"))
-            elif target in chooser:
-                faults.append(fault(where, f"state `{target}` is already chosen by choice `{chooser[target]}`; a state can be the next_of of only one choice"))
-            else:
-                chooser[target] = name
-                choice._target = self.states[target]
-        for name in self.next:
-            where = join_path("next", name)
-            if name not in self.states:
-                faults.append(fault(where, f"`{name}` is not a state; next gives tomorrow's value of a state (states: {states})"))
-            elif name in chooser:
-                faults.append(fault(where, f"state `{name}` is already chosen through next_of by choice `{chooser[name]}`, so it must not also have a next expression"))
-        for name in self.states:
-            if name not in chooser and name not in self.next:
-                faults.append(
-                    fault(
-                        join_path("next", name),
-                        f"state `{name}` has no law of motion: give next.{name}, an expression for its value tomorrow, or a choice with next_of \"{name}\"",
-                    )
-                )
-        return faults
-
-    def _expression_faults(self) -> list[checks.Fault]:
-        base = [*self.params, *self.states, *self.shocks, *self.choices]
-        defines = list(self.define)
-        faults = []
-        for i, name in enumerate(defines):
-            faults += _expression_faults(self.define[name], base + defines[:i], set(defines[i:]), join_path("define", name))
-        known = base + defines
-        for name, text in self.next.items():
-            faults += _expression_faults(text, known, set(), join_path("next", name))
-        faults += _expression_faults(self.reward, known, set(), "reward")
-        for i, text in enumerate(self.feasible):
-            faults += _expression_faults(text, known, set(), join_path("feasible", i))
-        return faults
-
-
-def _expression_faults(text: str, known: list[str], later: set[str], where: str) -> list[checks.Fault]:
-    """Faults of one expression: its grammar, and names it uses that are unknown or defined later."""
-    try:
-        expression = expressions.parse(text, path=where)
-        early = sorted(expression.names & later)
-        if early:
-            return [fault(where, f"uses {', '.join(f'`{n}`' for n in early)} before it is defined: a define may use only the defines listed before it")]
-        expressions.check_names(expression, known, path=where)
-    except InvalidDocument as exc:
-        return exc.errors
-    return []
 
 
 class InitialValues(_Part):
@@ -849,11 +672,11 @@ class InitialJob(_Part):
 
     job: Annotated[
         str,
-        _check(
+        checks.check(
             lambda j: 1 <= len(j) <= 128 and j.isascii() and all(c.isalnum() or c in "_-" for c in j),
             "a job id is 1 to 128 letters, digits, _ or -, got {value}",
         ),
-        _SchemaExtra(pattern="^[A-Za-z0-9_-]{1,128}$"),
+        checks.SchemaExtra(pattern="^[A-Za-z0-9_-]{1,128}$"),
     ] = Field(
         description="The id of an earlier finished job; its value function is carried onto this grid (interpolated when the grids differ)."
     )
@@ -945,7 +768,7 @@ class SimulateSpec(_Part):
     start: (
         Annotated[
             Union[
-                Annotated[dict[str, float], Tag("<values>")],
+                Annotated[dict[str, float], annotated_types.MaxLen(2 * MAX_AXES), Tag("<values>")],
                 Annotated[str, Tag("<label>")],
                 Annotated[Integer, Tag("<index>")],
             ],
@@ -999,17 +822,18 @@ class NotifySpec(_Part):
         description=f"An http:// or https:// URL (at most {MAX_URL_CHARS:,} characters) that receives a POST when the job ends."
     )
     secret: Annotated[str, Field(min_length=1, max_length=MAX_SECRET_CHARS)] | None = Field(
-        default=None, description=f"Optional shared secret used to sign the notification (1 to {MAX_SECRET_CHARS} characters)."
+        default=None,
+        description=f"Optional shared secret (1 to {MAX_SECRET_CHARS} characters) with which the notification is signed, so the receiver can check it came from this service.",
     )
 
 
 TagText = Annotated[
     str,
-    _check(
+    checks.check(
         lambda t: 1 <= len(t) <= 64 and t.isascii() and all(c.isalnum() or c in "_.:-" for c in t),
         "a tag must be 1 to 64 characters of letters, digits and _ . : -, got {value}",
     ),
-    _SchemaExtra(pattern="^[A-Za-z0-9_.:-]{1,64}$"),
+    checks.SchemaExtra(pattern="^[A-Za-z0-9_.:-]{1,64}$"),
 ]
 
 
@@ -1018,8 +842,8 @@ class ProblemDocument(_Part):
 
     version: Annotated[
         Integer,
-        _check(lambda v: v == DOCUMENT_VERSION, f"unsupported document version {{value}}: this service reads version {DOCUMENT_VERSION}"),
-        _SchemaExtra(const=DOCUMENT_VERSION),
+        checks.check(lambda v: v == DOCUMENT_VERSION, f"unsupported document version {{value}}: this service reads version {DOCUMENT_VERSION}"),
+        checks.SchemaExtra(const=DOCUMENT_VERSION),
     ] = Field(description=f"Version of the document format; must be {DOCUMENT_VERSION}.")
     label: Annotated[str, Field(max_length=MAX_LABEL_CHARS)] | None = Field(
         default=None, description=f"A free-text name for the job, at most {MAX_LABEL_CHARS} characters."
@@ -1030,14 +854,19 @@ class ProblemDocument(_Part):
     )
     discount: Annotated[
         float,
-        _check(
+        checks.check(
             lambda b: 0 < b < 1,
             "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
             "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
             "degenerate (the future does not count, or counts with the wrong sign)",
         ),
-        _SchemaExtra(exclusiveMinimum=0, exclusiveMaximum=1),
-    ] = Field(description="The discount factor β applied to next period's value, strictly between 0 and 1.")
+        checks.SchemaExtra(exclusiveMinimum=0, exclusiveMaximum=1),
+    ] = Field(
+        description=(
+            "The discount factor β applied to next period's value, strictly between 0 and 1 (per period). "
+            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge."
+        )
+    )
     model: Annotated[Union[TabularModel, GridModel], Field(discriminator="kind")] = Field(
         description='The model: "tabular" (finite states and actions given as arrays) or "grid" (states on grids, defined by expressions).'
     )
@@ -1075,32 +904,7 @@ class ProblemDocument(_Part):
         simulate = self.report.simulate
         if simulate is None or simulate.start is None:
             return []
-        start, where = simulate.start, "report.simulate.start"
-        if isinstance(self.model, TabularModel):
-            return _tabular_start_faults(self.model, start, where)
-        if not isinstance(start, dict):
-            return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
-        axes: dict[str, GridAxis | ShockSpec] = {**self.model.states, **self.model.shocks}
-        faults = [fault(join_path(where, name), f"`{name}` is not a state or shock of the model") for name in start if name not in axes]
-        faults += [fault(join_path(where, name), f"missing a starting value for `{name}`") for name in axes if name not in start]
-        for name, value in start.items():
-            if name in axes:
-                lo, hi = axes[name].bounds
-                if not lo <= value <= hi:
-                    faults.append(fault(join_path(where, name), f"{checks.number(value)} lies outside the grid of `{name}`, [{checks.number(lo)}, {checks.number(hi)}]"))
-        return faults
-
-
-def _tabular_start_faults(model: TabularModel, start: Any, where: str) -> list[checks.Fault]:
-    if isinstance(start, dict):
-        return [fault(where, "for a tabular model, start is a state label or a state index")]
-    if isinstance(start, int):
-        if not 0 <= start < model.n_states:
-            return [fault(where, f"state index {start} is out of range: with {model.n_states} states it must be 0 to {model.n_states - 1}")]
-        return []
-    if not isinstance(model.states, list) or start not in model.states:
-        return [fault(where, f'"{start[:80]}" is not a state label')]
-    return []
+        return checks.start_faults(self.model, simulate.start, "report.simulate.start")
 
 
 def parse_document(raw: Any) -> ProblemDocument:
@@ -1120,45 +924,21 @@ def parse_document(raw: Any) -> ProblemDocument:
     InvalidDocument
         Any other fault; ``errors`` lists all of them.
     """
-    deep = checks.nesting_fault(raw, MAX_DEPTH)
-    if deep is not None:
-        raise InvalidDocument([deep])
+    hostile = checks.structure_fault(raw, max_depth=MAX_DEPTH, max_keys=MAX_KEYS)
+    if hostile is not None:
+        raise InvalidDocument([hostile])
     try:
         return ProblemDocument.model_validate(raw)
     except ValidationError as exc:
-        faults = checks.translate(exc.errors(include_url=False), ProblemDocument)
-    raise _exception(faults)
-
-
-def _exception(faults: list[checks.Fault]) -> InvalidDocument | TooLarge:
-    kinds = {f.get("kind") for f in faults}
-    unique, seen = [], set()
-    for f in faults:
-        key = (f["path"], f["message"])
-        if key not in seen:
-            seen.add(key)
-            unique.append({"path": f["path"], "message": f["message"]})
-    if len(unique) > MAX_REPORTED:
-        unique = unique[:MAX_REPORTED] + [{"path": "", "message": f"and {len(unique) - MAX_REPORTED:,} more faults"}]
-    if "too_large" in kinds:
-        return TooLarge(unique)
-    if kinds == {"infeasible"}:
-        return InfeasibleModel(unique)
-    return InvalidDocument(unique)
+        errors = exc.errors(include_url=False)
+    # Only the listed errors are translated: a document with a million unknown keys costs no more.
+    faults = checks.translate(errors[:MAX_REPORTED], ProblemDocument)
+    raise checks.exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
 
 
 def _canonical(document: ProblemDocument, include_submission: bool) -> Any:
     data = document.model_dump(mode="json", exclude_none=True, exclude=None if include_submission else set(SUBMISSION_KEYS))
-    return _sorted(data, ())
-
-
-def _sorted(node: Any, where: tuple[str, ...]) -> Any:
-    if isinstance(node, dict):
-        keys = node if where in _ORDERED else sorted(node)
-        return {key: _sorted(node[key], (*where, key)) for key in keys}
-    if isinstance(node, list):
-        return [_sorted(item, where) for item in node] if node and isinstance(node[0], (dict, list)) else node
-    return node
+    return checks.sorted_keys(data, _ORDERED)
 
 
 def canonical_json(raw_document: dict[str, Any] | ProblemDocument, *, include_submission: bool = False) -> bytes:
@@ -1208,39 +988,13 @@ def _schema() -> bytes:
         "description": "Numbers in nested lists, one level per dimension.",
         "items": {"anyOf": [{"type": "number"}, {"$ref": "#/$defs/NestedNumbers"}]},
     }
-    schema = _replace_markers(schema)
+    schema = checks.finish_schema(schema)
     out = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "title": "fixq problem document, version 1",
         **{key: value for key, value in schema.items() if key != "title"},
     }
     return orjson.dumps(out)
-
-
-_KEYWORDS = {"ge": "minimum", "le": "maximum", "gt": "exclusiveMinimum", "lt": "exclusiveMaximum"}
-"""Constraint names pydantic leaves untranslated on validated-then-constrained ints."""
-
-
-def _replace_markers(node: Any) -> Any:
-    """Swap array markers for ``$ref``s and unwrap docstring line breaks inside paragraphs."""
-    if isinstance(node, dict):
-        if node.get("x-packed-array"):
-            return {"$ref": "#/$defs/PackedArray"}
-        if node.get("x-nested-numbers"):
-            return {"$ref": "#/$defs/NestedNumbers"}
-        out = {_KEYWORDS.get(key, key) if "type" in node else key: _replace_markers(value) for key, value in node.items()}
-        patterns = out.pop("patternProperties", None)
-        if patterns:
-            # dict[Name, X]: the key pattern belongs in propertyNames, or other keys would pass unchecked.
-            ((pattern, values),) = patterns.items()
-            out["propertyNames"] = {**out.get("propertyNames", {}), "pattern": pattern}
-            out["additionalProperties"] = values
-        if isinstance(out.get("description"), str):
-            out["description"] = "\n\n".join(" ".join(part.split()) for part in out["description"].split("\n\n"))
-        return out
-    if isinstance(node, list):
-        return [_replace_markers(item) for item in node]
-    return node
 
 
 def json_schema() -> dict[str, Any]:

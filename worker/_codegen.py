@@ -50,6 +50,7 @@ from __future__ import annotations
 
 import hashlib
 import importlib.util
+import math
 import os
 import pathlib
 import sys
@@ -60,7 +61,7 @@ from typing import Sequence
 
 import numpy as np
 
-from worker import expressions, kernels
+from worker import expressions
 
 __all__ = ["BOUND_SLACK", "KernelLayout", "ModelSource", "context", "kernel_cache_dir", "load", "module_source"]
 
@@ -69,6 +70,20 @@ BOUND_SLACK = 2.0**-40
 covers interpolation weights that sum to one only up to rounding."""
 
 _TEMPLATE_HASH = hashlib.sha256(pathlib.Path(__file__).read_bytes()).hexdigest()[:16]
+
+
+def _dependency_hash() -> str:
+    """Hash of the modules whose jitted code is linked into generated kernels.
+
+    numba's cache checks only the generated file itself, so a change in the
+    helpers it calls must change that file's name.
+    """
+    digest = hashlib.sha256()
+    for name in ("kernels.py", "_intervals.py", "expressions.py"):
+        path = pathlib.Path(__file__).with_name(name)
+        if path.exists():
+            digest.update(path.read_bytes())
+    return digest.hexdigest()[:16]
 
 
 @dataclass(frozen=True)
@@ -153,6 +168,15 @@ def layout_for(
     return KernelLayout(n_states, n_shocks, n_choices, tuple(setter), backend, hinted_axis, pyramid_axis, bound_kind)
 
 
+def _packed(grids: Sequence[np.ndarray]) -> tuple[np.ndarray, list[int], list[int], list[int]]:
+    """Concatenated grids with their offsets, sizes and C-order strides."""
+    sizes = [int(g.size) for g in grids]
+    offsets = [sum(sizes[:t]) for t in range(len(sizes))]
+    strides = [math.prod(sizes[t + 1 :]) for t in range(len(sizes))]
+    flat = np.ascontiguousarray(np.concatenate(grids) if grids else np.zeros(0), dtype=np.float64)
+    return flat, offsets, sizes, strides
+
+
 def context(
     params: np.ndarray,
     state_grids: Sequence[np.ndarray],
@@ -162,30 +186,49 @@ def context(
 ) -> tuple[np.ndarray, ...]:
     """The ``ctx`` tuple every kernel takes.
 
-    ``(params, state_grid, state_offset, state_size, state_stride, shock_table,
-    choice_grid, choice_offset, choice_size, choice_stride, R, next_base,
-    node_lower, node_weight)``: grids concatenated with offsets, C-order
-    strides; the four tables (``table`` backend) or 1-element stand-ins.
+    ``expr`` backend (``tables`` None): ``(params, state_grid, shock_table,
+    choice_grid, meta)``; ``table`` backend: ``(R, next_base, node_lower,
+    node_weight, meta)``.  Grids are concatenated; ``meta`` (int64) holds, in
+    order, the state grids' offsets, sizes and C-order strides, then the
+    choice grids' (see :class:`_Meta`).  Few entries keep numba's typing of
+    every kernel cheap.
     """
-
-    def packed(grids: Sequence[np.ndarray]) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        sizes = np.array([g.size for g in grids], dtype=np.int64)
-        offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64) if len(grids) else np.zeros(0, np.int64)
-        strides = np.ones(len(grids), dtype=np.int64)
-        for t in range(len(grids) - 2, -1, -1):
-            strides[t] = strides[t + 1] * sizes[t + 1]
-        flat = np.ascontiguousarray(np.concatenate(grids) if len(grids) else np.zeros(0), dtype=np.float64)
-        return flat, offsets, sizes, strides
-
-    if tables is None:
-        tables = (np.full((1, 1), -np.inf), np.zeros(1, np.int64), np.zeros((1, 1, 1), np.int32), np.zeros((1, 1, 1)))
-    return (
-        np.ascontiguousarray(params, dtype=np.float64),
-        *packed(state_grids),
-        np.ascontiguousarray(shock_table, dtype=np.float64),
-        *packed(choice_grids),
-        *tables,
+    state_flat, state_offsets, state_sizes, state_strides = _packed(state_grids)
+    choice_flat, choice_offsets, choice_sizes, choice_strides = _packed(choice_grids)
+    meta = np.array(
+        state_offsets + state_sizes + state_strides + choice_offsets + choice_sizes + choice_strides, dtype=np.int64
     )
+    if tables is None:
+        return (
+            np.ascontiguousarray(params, dtype=np.float64),
+            state_flat,
+            np.ascontiguousarray(shock_table, dtype=np.float64),
+            choice_flat,
+            meta,
+        )
+    return (*tables, meta)
+
+
+class _Meta:
+    """Source text of the entries of ``meta`` for ``d`` states and ``q`` choices."""
+
+    def __init__(self, d: int, q: int) -> None:
+        self.d, self.q = d, q
+
+    def soff(self, t: int) -> str:
+        return f"meta[{t}]"
+
+    def ssize(self, t: int) -> str:
+        return f"meta[{self.d + t}]"
+
+    def sstride(self, t: int) -> str:
+        return f"meta[{2 * self.d + t}]"
+
+    def coff(self, t: int) -> str:
+        return f"meta[{3 * self.d + t}]"
+
+    def csize(self, t: int) -> str:
+        return f"meta[{3 * self.d + self.q + t}]"
 
 
 def kernel_cache_dir() -> pathlib.Path:
@@ -248,7 +291,9 @@ class _Lines:
     def extend(self, lines: Sequence[str]) -> None:
         self.add(*lines)
 
-    def indent(self) -> "_Indent":
+    def block(self, header: str) -> "_Indent":
+        """``with out.block("if x:"):`` writes the header and indents the body."""
+        self.add(header)
         return _Indent(self)
 
     def text(self) -> str:
@@ -256,35 +301,116 @@ class _Lines:
 
 
 class _Indent:
-    def __init__(self, block: _Lines) -> None:
-        self.block = block
+    def __init__(self, lines: _Lines) -> None:
+        self.lines = lines
 
     def __enter__(self) -> None:
-        self.block.depth += 1
+        self.lines.depth += 1
 
     def __exit__(self, *exc: object) -> None:
-        self.block.depth -= 1
+        self.lines.depth -= 1
 
-
-_UNPACK = (
-    "p = ctx[0]",
-    "sgrid = ctx[1]",
-    "soff = ctx[2]",
-    "ssize = ctx[3]",
-    "sstride = ctx[4]",
-    "ztab = ctx[5]",
-    "cgrid = ctx[6]",
-    "coff = ctx[7]",
-    "csize = ctx[8]",
-    "cstride = ctx[9]",
-    "R = ctx[10]",
-    "nbase = ctx[11]",
-    "LO = ctx[12]",
-    "WU = ctx[13]",
-)
 
 _JIT = '@njit(cache=True, nogil=True, error_model="numpy")'
-_PJIT = '@njit(cache=True, parallel=True, error_model="numpy")'
+
+
+def _names_in(node: expressions.Node) -> set[str]:
+    if isinstance(node, expressions.Name):
+        return {node.id}
+    found: set[str] = set()
+    for child in _children(node):
+        found |= _names_in(child)
+    return found
+
+
+def _children(node: expressions.Node) -> tuple[expressions.Node, ...]:
+    E = expressions
+    if isinstance(node, (E.Negate, E.Not)):
+        return (node.operand,)
+    if isinstance(node, E.Arith):
+        return (node.first, *(term for _, term in node.rest))
+    if isinstance(node, E.Power):
+        return (node.base, node.exponent)
+    if isinstance(node, (E.Compare, E.Logic)):
+        return tuple(node.operands)
+    if isinstance(node, E.Call):
+        return tuple(node.args)
+    return ()
+
+
+def _as_expression(node: expressions.Node) -> expressions.Expression:
+    return expressions.Expression(text="", tree=node, names=frozenset(_names_in(node)), functions=frozenset())
+
+
+class _Hoister:
+    """Moves the parts of expressions that do not depend on ``varying`` names out, as named values.
+
+    Each such part (a maximal sub-tree, or the leading part of a
+    left-to-right run of ``+ -`` or ``* /``) becomes one assignment in
+    ``lines``, computed by the same operations in the same order as the
+    whole expression would, so the result is bit-for-bit unchanged.  Used
+    twice: parts that do not depend on any choice are computed once per state
+    instead of once per choice, and inside a block bound, parts that do not
+    depend on the blocked choice are single points, whose bounds are exact.
+
+    The tree gets ``Name`` nodes whose ids start with ``@`` (never a document
+    name) and ``names`` maps them to the variables assigned in ``lines``.
+    """
+
+    def __init__(self, varying: set[str], names: dict[str, str], lines: list[str], prefix: str) -> None:
+        self.varying = varying
+        self.names = names
+        self.lines = lines
+        self.prefix = prefix
+        self.count = 0
+
+    def point(self, node: expressions.Node) -> expressions.Node:
+        if isinstance(node, (expressions.Number, expressions.Name)):
+            return node
+        variable = f"{self.prefix}{self.count}"
+        self.count += 1
+        self.lines.append(f"{variable} = {expressions.scalar_source(_as_expression(node), self.names)}")
+        self.names[f"@{variable}"] = variable
+        return expressions.Name(f"@{variable}")
+
+    def rewrite(self, node: expressions.Node) -> expressions.Node:
+        E = expressions
+        if not (_names_in(node) & self.varying):
+            return self.point(node)
+        if isinstance(node, E.Arith):
+            terms = [node.first, *(term for _, term in node.rest)]
+            lead = 0
+            while lead < len(terms) and not (_names_in(terms[lead]) & self.varying):
+                lead += 1
+            if lead >= 2:
+                first = self.point(E.Arith(node.first, node.rest[: lead - 1]))
+                rest = node.rest[lead - 1 :]
+            else:
+                first = self.rewrite(node.first)
+                rest = node.rest
+            return E.Arith(first, tuple((op, self.rewrite(term)) for op, term in rest))
+        if isinstance(node, E.Negate):
+            return E.Negate(self.rewrite(node.operand))
+        if isinstance(node, E.Not):
+            return E.Not(self.rewrite(node.operand))
+        if isinstance(node, E.Power):
+            return E.Power(self.rewrite(node.base), self.rewrite(node.exponent))
+        if isinstance(node, E.Compare):
+            return E.Compare(tuple(self.rewrite(x) for x in node.operands), node.ops)
+        if isinstance(node, E.Logic):
+            return E.Logic(node.op, tuple(self.rewrite(x) for x in node.operands))
+        if isinstance(node, E.Call):
+            return E.Call(node.function, tuple(self.rewrite(x) for x in node.args))
+        return node
+
+
+def _dependents(model: ModelSource, roots: set[str]) -> set[str]:
+    """``roots`` and every define that depends on them, directly or through earlier defines."""
+    found = set(roots)
+    for name, expr in model.defines:
+        if expr.names & found:
+            found.add(name)
+    return found
 
 
 class _Writer:
@@ -297,37 +423,66 @@ class _Writer:
         self.m = layout.n_shocks
         self.q = layout.n_choices
         self.expr = layout.backend == "expr"
-        names: dict[str, str] = {}
+        self.meta = _Meta(self.d, self.q)
+        self.names: dict[str, str] = {}
+        self.state_lines: list[str] = []
         if model is not None:
-            names.update({name: f"p_{k}" for k, name in enumerate(model.params)})
-            names.update({name: f"s_{t}" for t, name in enumerate(model.states)})
-            names.update({name: f"z_{t}" for t, name in enumerate(model.shocks)})
-            names.update({name: f"c_{t}" for t, name in enumerate(model.choices)})
-            names.update({name: f"d_{k}" for k, (name, _) in enumerate(model.defines)})
-        self.names = names
+            self._prepare(model)
 
-    @property
-    def state_args(self) -> str:
-        """Per-state scalars passed to the helpers (values of states and shocks)."""
-        if not self.expr:
-            return ""
-        return "".join(f", s_{t}" for t in range(self.d)) + "".join(f", z_{t}" for t in range(self.m))
+    def _prepare(self, model: ModelSource) -> None:
+        """Map document names to variables and hoist what does not depend on the choices."""
+        names = self.names
+        names.update({name: f"p_{k}" for k, name in enumerate(model.params)})
+        names.update({name: f"s_{t}" for t, name in enumerate(model.states)})
+        names.update({name: f"z_{t}" for t, name in enumerate(model.shocks)})
+        names.update({name: f"c_{t}" for t, name in enumerate(model.choices)})
+        names.update({name: f"d_{k}" for k, (name, _) in enumerate(model.defines)})
+        dependent = _dependents(model, set(model.choices))
+        hoist = _Hoister(dependent, names, self.state_lines, "h_")
+        self.defines: list[tuple[int, expressions.Expression | None]] = []
+        for k, (name, expr) in enumerate(model.defines):
+            if name in dependent:
+                self.defines.append((k, _as_expression(hoist.rewrite(expr.tree))))
+            else:
+                self.state_lines.append(f"d_{k} = {expressions.scalar_source(expr, names)}")
+                self.defines.append((k, None))
+        self.feasible = [_as_expression(hoist.rewrite(expr.tree)) for expr in model.feasible]
+        self.reward = _as_expression(hoist.rewrite(model.reward.tree))
+        self.next = [(t, _as_expression(hoist.rewrite(expr.tree))) for t, expr in model.next]
+
+    # Pieces ------------------------------------------------------------------
+
+    def unpack(self, out: _Lines) -> None:
+        if self.expr:
+            out.add("p = ctx[0]", "sgrid = ctx[1]", "ztab = ctx[2]", "cgrid = ctx[3]", "meta = ctx[4]")
+        else:
+            out.add("R = ctx[0]", "nbase = ctx[1]", "LO = ctx[2]", "WU = ctx[3]", "meta = ctx[4]")
+
+    def params(self, out: _Lines) -> None:
+        if self.model is not None:
+            for k in range(len(self.model.params)):
+                out.add(f"p_{k} = p[{k}]")
 
     def state_setup(self, out: _Lines, *, from_ix: bool = False) -> None:
-        """Decode flat state ``i`` (or ``ix`` with ``iz`` known) into indices and values."""
+        """Decode flat state ``i`` (or ``ix`` with ``iz`` known) and compute its per-state values."""
         if not from_ix:
             out.add("ix = i // NZ", "iz = i - ix * NZ")
         if not self.expr:
             return
         out.add("rem = ix")
         for t in range(self.d - 1, 0, -1):
-            out.add(f"i_{t} = rem % ssize[{t}]", f"rem = rem // ssize[{t}]")
-        if self.d:
-            out.add("i_0 = rem")
+            out.add(f"i_{t} = rem % {self.meta.ssize(t)}", f"rem = rem // {self.meta.ssize(t)}")
+        out.add("i_0 = rem")
         for t in range(self.d):
-            out.add(f"s_{t} = sgrid[soff[{t}] + i_{t}]")
+            out.add(f"s_{t} = sgrid[{self.meta.soff(t)} + i_{t}]")
         for t in range(self.m):
             out.add(f"z_{t} = ztab[iz, {t}]")
+        out.extend(self.state_lines)
+
+    def n_choices(self, out: _Lines, name: str = "NC", upto: int | None = None) -> None:
+        count = self.q if upto is None else upto
+        sizes = [self.meta.csize(t) for t in range(count)]
+        out.add(f"{name} = " + (" * ".join(sizes) if sizes else "1"))
 
     def choice_decode(self, out: _Lines) -> None:
         if self.q == 1:
@@ -335,148 +490,116 @@ class _Writer:
         else:
             out.add("rem = c")
             for t in range(self.q - 1, 0, -1):
-                out.add(f"j_{t} = rem % csize[{t}]", f"rem = rem // csize[{t}]")
+                out.add(f"j_{t} = rem % {self.meta.csize(t)}", f"rem = rem // {self.meta.csize(t)}")
             out.add("j_0 = rem")
         if self.expr:
             for t in range(self.q):
-                out.add(f"c_{t} = cgrid[coff[{t}] + j_{t}]")
+                out.add(f"c_{t} = cgrid[{self.meta.coff(t)} + j_{t}]")
 
-    def params(self, out: _Lines) -> None:
-        if self.model is not None:
-            for k in range(len(self.model.params)):
-                out.add(f"p_{k} = p[{k}]")
-
-    def base_index(self) -> str:
-        terms = [f"sstride[{t}] * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None]
-        return " + ".join(terms) if terms else "0"
-
-    def nodes(self, out: _Lines, mode: str) -> None:
-        """Interpolation corners: ``mode`` ``value`` accumulates ``e``; ``detail`` writes rows."""
+    def nodes(self, out: _Lines, detail: bool) -> None:
+        """Interpolation corners: accumulate ``e``; with ``detail`` also write ``idx_row``/``w_row``."""
         interp = self.layout.interpolated
         if self.expr:
-            out.add(f"base = {self.base_index()}")
+            terms = [f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None]
+            out.add("base = " + (" + ".join(terms) if terms else "0"))
             for k, t in enumerate(interp):
-                out.add(f"lo_{k}, w_{k}, cl_{k} = locate_one(sgrid, soff[{t}], ssize[{t}], n_{k})")
+                out.add(f"lo_{k}, w_{k}, cl_{k} = locate_one(sgrid, {self.meta.soff(t)}, {self.meta.ssize(t)}, n_{k})")
         else:
             out.add("base = nbase[c]")
             for k, t in enumerate(interp):
                 out.add(f"lo_{k} = LO[i, c, {k}]", f"w_{k} = WU[i, c, {k}]")
-        if mode == "value" and not interp:
+        if not interp:
             out.add("e = EVt[iz, base]")
+            if detail:
+                out.add("idx_row[0] = base", "w_row[0] = 1.0")
             return
-        if mode == "value":
-            out.add("e = 0.0")
+        out.add("e = 0.0")
         for corner in range(2 ** len(interp)):
             bits = [(corner >> k) & 1 for k in range(len(interp))]
-            factors = [f"w_{k}" if bit else f"(1.0 - w_{k})" for k, bit in enumerate(bits)]
-            weight = " * ".join(factors) if factors else "1.0"
+            weight = " * ".join(f"w_{k}" if bit else f"(1.0 - w_{k})" for k, bit in enumerate(bits))
             index = "base" + "".join(
-                f" + sstride[{t}] * (lo_{k} + 1)" if bit else f" + sstride[{t}] * lo_{k}"
-                for k, (t, bit) in enumerate(zip(interp, bits))
+                f" + {self.meta.sstride(t)} * (lo_{k} + {bit})" for k, (t, bit) in enumerate(zip(interp, bits))
             )
-            out.add(f"wk = {weight}")
-            if mode == "value":
-                out.add("if wk != 0.0:")
-                with out.indent():
-                    out.add(f"e += wk * EVt[iz, {index}]")
-            else:
-                out.add(f"idx_row[{corner}] = {index}", f"w_row[{corner}] = wk")
+            out.add(f"wk = {weight}", f"xk = {index}")
+            if detail:
+                out.add(f"idx_row[{corner}] = xk", f"w_row[{corner}] = wk")
+            # Zero weights are skipped, here and in policy evaluation alike, so both give the same bits.
+            with out.block("if wk != 0.0:"):
+                out.add("e += wk * EVt[iz, xk]")
 
-    def model_body(self, out: _Lines, mode: str) -> None:
-        """Sets ``ok``, ``bad``, ``r`` (and ``val`` or the node rows, ``clamped``)."""
-        out.add("ok = False", "bad = False", "clamped = False", "r = -np.inf", "val = -np.inf")
-        if not self.expr:
-            out.add("r = R[i, c]", "if r != -np.inf:")
-            with out.indent():
-                self.nodes(out, mode)
-                self.finish(out, mode)
-            return
-        model = self.model
-        for k, (_, expr) in enumerate(model.defines):
-            out.add(f"d_{k} = {expressions.scalar_source(expr, self.names)}")
-        depth_before = out.depth
-        for k, expr in enumerate(model.feasible):
-            out.add(f"f_{k} = {expressions.scalar_source(expr, self.names)}", f"if f_{k} != 0.0:")
-            out.depth += 1
-        out.add(f"r = {expressions.scalar_source(model.reward, self.names)}")
-        out.add("if r - r == 0.0:")
-        with out.indent():
-            for k, (_, expr) in enumerate(model.next):
-                out.add(f"n_{k} = {expressions.scalar_source(expr, self.names)}")
-            if model.next:
-                out.add("if " + " and ".join(f"n_{k} == n_{k}" for k in range(len(model.next))) + ":")
-                with out.indent():
-                    self.nodes(out, mode)
-                    self.finish(out, mode)
-                out.add("else:")
-                with out.indent():
-                    out.add("bad = True")
-            else:
-                self.nodes(out, mode)
-                self.finish(out, mode)
-        out.add("elif r != -np.inf:")
-        with out.indent():
-            out.add("bad = True")
-        out.depth = depth_before
-
-    def finish(self, out: _Lines, mode: str) -> None:
-        if mode == "value":
-            out.add("val = r + beta * e")
-        interp = self.layout.interpolated
-        if interp:
-            out.add("clamped = " + " or ".join(f"cl_{k}" for k in range(len(interp))) if self.expr else "clamped = False")
+    def finish(self, out: _Lines) -> None:
+        out.add("val = r + beta * e")
+        if self.expr and self.layout.interpolated:
+            out.add("clamped = " + " or ".join(f"cl_{k}" for k in range(len(self.layout.interpolated))))
         out.add("ok = True")
 
-    def helper_value(self) -> str:
-        out = _Lines()
-        out.add(_JIT, f"def _choice_value(c, i, iz{self.state_args}, EVt, beta, ctx):")
-        with out.indent():
-            out.extend(_UNPACK)
-            self.params(out)
-            self.choice_decode(out)
-            self.model_body(out, "value")
-            out.add("return ok, val, bad")
-        return out.text()
+    def evaluate(self, out: _Lines, detail: bool = False) -> None:
+        """The model at flat choice ``c``: sets ``ok``, ``bad``, ``clamped``, ``r``, ``val``.
 
-    def helper_detail(self) -> str:
-        out = _Lines()
-        out.add(_JIT, f"def _choice_detail(c, i, iz{self.state_args}, ctx, idx_row, w_row):")
-        with out.indent():
-            out.extend(_UNPACK)
-            self.params(out)
-            self.choice_decode(out)
-            self.model_body(out, "detail")
-            out.add("return ok, r, bad, clamped")
-        return out.text()
+        Written inline at every evaluation site: a call into a helper that
+        holds arrays costs numba reference counting on each call, many times
+        the arithmetic of a typical model.
+        """
+        self.choice_decode(out)
+        out.add("ok = False", "bad = False", "clamped = False", "r = -np.inf", "val = -np.inf")
+        if not self.expr:
+            out.add("r = R[i, c]")
+            with out.block("if r != -np.inf:"):
+                self.nodes(out, detail)
+                self.finish(out)
+            return
+        names = self.names
+        for k, expr in self.defines:
+            if expr is not None:
+                out.add(f"d_{k} = {expressions.scalar_source(expr, names)}")
+        depth = out.depth
+        for k, expr in enumerate(self.feasible):
+            out.add(f"f_{k} = {expressions.scalar_source(expr, names)}", f"if f_{k} != 0.0:")
+            out.depth += 1
+        out.add(f"r = {expressions.scalar_source(self.reward, names)}")
+        with out.block("if r - r == 0.0:"):
+            for k, (_, expr) in enumerate(self.next):
+                out.add(f"n_{k} = {expressions.scalar_source(expr, names)}")
+            if self.next:
+                with out.block("if " + " and ".join(f"n_{k} == n_{k}" for k in range(len(self.next))) + ":"):
+                    self.nodes(out, detail)
+                    self.finish(out)
+                with out.block("else:"):
+                    out.add("bad = True")
+            else:
+                self.nodes(out, detail)
+                self.finish(out)
+        with out.block("elif r != -np.inf:"):
+            out.add("bad = True")
+        out.depth = depth
 
-    def call_value(self, choice: str) -> str:
-        return f"_choice_value({choice}, i, iz{self.state_args}, EVt, beta, ctx)"
+    def scratch(self, out: _Lines) -> None:
+        out.add(f"idx_row = np.empty({self.layout.nodes}, dtype=np.int64)", f"w_row = np.empty({self.layout.nodes})")
+
+    def prologue(self, out: _Lines) -> None:
+        self.unpack(out)
+        self.params(out)
+        out.add("NZ = EVt.shape[0]")
+
+    # Kernels -----------------------------------------------------------------
 
     def kernel_full(self) -> str:
         out = _Lines()
-        out.add(_PJIT, "def bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice):")
-        with out.indent():
-            out.extend(_UNPACK)
-            out.add("NZ = EVt.shape[0]", "NC = 1")
-            out.add(f"for t in range({self.q}):")
-            with out.indent():
-                out.add("NC *= csize[t]")
-            out.add("for i in prange(out_v.shape[0]):")
-            with out.indent():
+        out.add(_JIT)
+        with out.block("def bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice):"):
+            self.prologue(out)
+            self.n_choices(out)
+            with out.block("for i in range(out_v.shape[0]):"):
                 self.state_setup(out)
                 out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1")
-                out.add("for c in range(NC):")
-                with out.indent():
-                    out.add(f"ok, val, bad = {self.call_value('c')}")
-                    out.add("if ok:")
-                    with out.indent():
-                        out.add("if val > best:")
-                        with out.indent():
+                with out.block("for c in range(NC):"):
+                    self.evaluate(out)
+                    with out.block("if ok:"):
+                        with out.block("if val > best:"):
                             out.add("best = val", "chosen = c")
-                    out.add("elif bad:")
-                    with out.indent():
-                        out.add("nbad += 1", "if first_bad < 0:")
-                        with out.indent():
+                    with out.block("elif bad:"):
+                        out.add("nbad += 1")
+                        with out.block("if first_bad < 0:"):
                             out.add("first_bad = c")
                 out.add("out_v[i] = best", "out_policy[i] = chosen", "out_bad[i] = nbad", "out_bad_choice[i] = first_bad")
         return out.text()
@@ -484,89 +607,89 @@ class _Writer:
     def kernel_hinted(self) -> str:
         axis = self.layout.hinted_axis
         out = _Lines()
-        out.add(_PJIT, "def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy):")
-        with out.indent():
-            out.extend(_UNPACK)
-            out.add("NZ = EVt.shape[0]", "NX = EVt.shape[1]", "M = csize[0]")
-            out.add(f"NH = ssize[{axis}]", f"INNER = sstride[{axis}]", "NLINES = NX // NH")
-            out.add("for task in prange(NLINES * NZ):")
-            with out.indent():
+        out.add(_JIT)
+        with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy):"):
+            self.prologue(out)
+            out.add("NX = EVt.shape[1]", f"M = {self.meta.csize(0)}")
+            out.add(f"NH = {self.meta.ssize(axis)}", f"INNER = {self.meta.sstride(axis)}", "NLINES = NX // NH")
+            with out.block("for task in range(NLINES * NZ):"):
                 out.add("iz = task % NZ", "line = task // NZ", "outer = line // INNER", "inner = line - outer * INNER")
                 out.add("x0 = outer * NH * INNER + inner", "start = 0")
-                out.add("for t in range(NH):")
-                with out.indent():
+                with out.block("for t in range(NH):"):
                     out.add("ix = x0 + t * INNER", "i = ix * NZ + iz")
                     self.state_setup(out, from_ix=True)
-                    out.add("first = start if monotone else 0", "best = -np.inf", "chosen = -1", "c = first")
-                    out.add("while c < M:")
-                    with out.indent():
-                        out.add(f"ok, val, bad = {self.call_value('c')}", "if ok:")
-                        with out.indent():
-                            out.add("best = val", "chosen = c", "break")
-                        out.add("c += 1")
-                    out.add("c += 1", "while chosen >= 0 and c < M:")
-                    with out.indent():
-                        out.add(f"ok, val, bad = {self.call_value('c')}")
-                        out.add("if not ok:")
-                        with out.indent():
-                            out.add("if concave:")
-                            with out.indent():
-                                out.add("break")
-                        out.add("elif val > best:")
-                        with out.indent():
-                            out.add("best = val", "chosen = c")
-                        out.add("elif concave and val < best:")
-                        with out.indent():
+                    # One evaluation site, three phases: 0 skips a leading infeasible stretch from the
+                    # start, 1 climbs, 2 searches below a monotone start that had nothing allowed above it.
+                    out.add("first = start if monotone else 0", "best = -np.inf", "chosen = -1")
+                    out.add("c = first", "phase = 0", "stop = M")
+                    with out.block("while True:"):
+                        with out.block("if c >= stop:"):
+                            with out.block("if phase < 2 and chosen < 0 and first > 0:"):
+                                out.add("phase = 2", "c = 0", "stop = first", "continue")
                             out.add("break")
-                        out.add("c += 1")
-                    # Nothing allowed at or above the monotone start: search below it, exhaustively.
-                    out.add("if chosen < 0:")
-                    with out.indent():
-                        out.add("for c in range(first):")
-                        with out.indent():
-                            out.add(f"ok, val, bad = {self.call_value('c')}", "if ok and val > best:")
-                            with out.indent():
+                        self.evaluate(out)
+                        with out.block("if phase == 1 and not ok and concave:"):
+                            out.add("break")
+                        with out.block("if ok:"):
+                            with out.block("if val > best:"):
                                 out.add("best = val", "chosen = c")
-                    out.add("out_v[i] = best", "out_policy[i] = chosen", "if chosen >= 0:")
-                    with out.indent():
+                            with out.block("elif concave and phase == 1 and val < best:"):
+                                out.add("break")
+                            with out.block("if phase == 0:"):
+                                out.add("phase = 1")
+                        out.add("c += 1")
+                    out.add("out_v[i] = best", "out_policy[i] = chosen")
+                    with out.block("if chosen >= 0:"):
                         out.add("start = chosen")
         return out.text()
 
-    def helper_bound(self) -> str:
-        """``_block_bound``: upper bound of the objective over a block of the last choice."""
+    def block_bound(self, out: _Lines) -> None:
+        """Sets ``dead`` (no allowed choice in inner block ``[a, b]``) or ``ub``, an upper bound of the objective."""
         model = self.model
         inner = self.q - 1
-        lo_names = dict(self.names)
-        hi_names = dict(self.names)
-        lo_names[model.choices[inner]] = "c_lo"
-        hi_names[model.choices[inner]] = "c_hi"
-        outer_args = "".join(f", j_{t}" for t in range(inner))
-        out = _Lines()
-        out.add(_JIT, f"def _block_bound(a, b{outer_args}{self.state_args}, iz, beta, EVt, pyramid, levels, evmax, ctx):")
-        with out.indent():
-            out.extend(_UNPACK)
-            self.params(out)
-            for t in range(inner):
-                out.add(f"c_{t} = cgrid[coff[{t}] + j_{t}]")
-            out.add(f"c_lo = cgrid[coff[{inner}] + a]", f"c_hi = cgrid[coff[{inner}] + b]")
-            for k, (name, expr) in enumerate(model.defines):
-                lines, lo, hi = expressions.interval_source(expr, lo_names, hi_names, f"bd{k}_")
-                out.extend(lines)
-                lo_names[name], hi_names[name] = lo, hi
-            for k, expr in enumerate(model.feasible):
-                lines, lo, hi = expressions.interval_source(expr, lo_names, hi_names, f"bf{k}_")
-                out.extend(lines)
-                out.add(f"if {lo} == 0.0 and {hi} == 0.0:")
-                with out.indent():
-                    out.add("return -np.inf, True")
-            lines, r_lo, r_hi = expressions.interval_source(model.reward, lo_names, hi_names, "br_")
+        inner_name = model.choices[inner]
+        varying = _dependents(model, {inner_name})
+        names = dict(self.names)
+        point_lines: list[str] = []
+        hoist = _Hoister(varying, names, point_lines, "hq_")
+        lo_names, hi_names = dict(names), dict(names)
+        lo_names[inner_name], hi_names[inner_name] = "c_lo", "c_hi"
+
+        def bounds(expr: expressions.Expression, prefix: str) -> tuple[str, str]:
+            tree = hoist.rewrite(expr.tree)
+            out.extend(point_lines)
+            point_lines.clear()
+            if isinstance(tree, expressions.Name) and tree.id not in varying:
+                return names[tree.id], names[tree.id]
+            for key, value in names.items():
+                lo_names.setdefault(key, value)
+                hi_names.setdefault(key, value)
+            lines, lo, hi = expressions.interval_source(_as_expression(tree), lo_names, hi_names, prefix)
             out.extend(lines)
-            out.add(f"r_hi = {r_hi}", "if r_hi == -np.inf:")
-            with out.indent():
-                out.add("return -np.inf, True")
-            kind = self.layout.bound_kind
-            axis = self.layout.pyramid_axis
-            fixed = [f"sstride[{t}] * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None and j != inner]
+            return lo, hi
+
+        out.add("dead = True", "ub = -np.inf")
+        out.add(f"c_lo = cgrid[{self.meta.coff(inner)} + a]", f"c_hi = cgrid[{self.meta.coff(inner)} + b]")
+        for k, expr in self.defines:
+            if expr is None:
+                continue
+            name = model.defines[k][0]
+            if name in varying:
+                lo_names[name], hi_names[name] = bounds(expr, f"bd{k}_")
+            else:
+                out.add(f"d_{k} = {expressions.scalar_source(expr, names)}")
+        depth = out.depth
+        for k, expr in enumerate(self.feasible):
+            lo, hi = bounds(expr, f"bf{k}_")
+            out.add(f"if not ({lo} == 0.0 and {hi} == 0.0):")
+            out.depth += 1
+        _, r_hi = bounds(self.reward, "br_")
+        out.add(f"r_hi = {r_hi}")
+        with out.block("if r_hi != -np.inf:"):
+            kind, axis = self.layout.bound_kind, self.layout.pyramid_axis
+            fixed = [
+                f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None and j != inner
+            ]
             out.add("base = " + (" + ".join(fixed) if fixed else "0"))
             if kind == "fixed":
                 out.add("ev = EVt[iz, base]")
@@ -577,90 +700,72 @@ class _Writer:
                     out.add("lo_i = a", "hi_i = b")
                 else:
                     k = self.layout.interpolated.index(axis)
-                    expr = dict(model.next)[axis]
-                    lines, n_lo, n_hi = expressions.interval_source(expr, lo_names, hi_names, f"bn{k}_")
-                    out.extend(lines)
-                    out.add(
-                        f"lo_i = locate_one(sgrid, soff[{axis}], ssize[{axis}], {n_lo})[0]",
-                        f"hi_i = locate_one(sgrid, soff[{axis}], ssize[{axis}], {n_hi})[0] + 1",
-                    )
-                out.add(f"n_outer = EVt.shape[1] // (ssize[{axis}] * sstride[{axis}])")
-                out.add(f"ev = pyramid_max(pyramid, levels, ssize[{axis}], sstride[{axis}], n_outer, iz, base, lo_i, hi_i)")
-            out.add("ub = r_hi + beta * ev", "if ub - ub == 0.0:")
-            with out.indent():
+                    n_lo, n_hi = bounds(dict(self.next)[axis], f"bn{k}_")
+                    grid = f"sgrid, {self.meta.soff(axis)}, {self.meta.ssize(axis)}"
+                    out.add(f"lo_i = locate_one({grid}, {n_lo})[0]", f"hi_i = locate_one({grid}, {n_hi})[0] + 1")
+                size, stride = self.meta.ssize(axis), self.meta.sstride(axis)
+                out.add(f"ev = pyramid_max(pyramid, levels, {size}, {stride}, n_outer, iz, base, lo_i, hi_i)")
+            out.add("ub = r_hi + beta * ev", "dead = False")
+            with out.block("if ub - ub == 0.0:"):
                 out.add(f"ub += {BOUND_SLACK!r} * (abs(r_hi) + abs(beta * ev))")
-            out.add("return ub, False")
-        return out.text()
+        out.depth = depth
 
     def kernel_bnb(self) -> str:
         inner = self.q - 1
-        outer_args = "".join(f", j_{t}" for t in range(inner))
         out = _Lines()
-        out.add(
-            _PJIT,
+        out.add(_JIT)
+        with out.block(
             "def bellman_bnb(EVt, beta, ctx, pyramid, levels, evmax, guess, has_guess, leaf, depth, "
-            "out_v, out_policy, out_bad, out_bad_choice):",
-        )
-        with out.indent():
-            out.extend(_UNPACK)
-            out.add("NZ = EVt.shape[0]", f"M = csize[{inner}]", "NOUT = 1")
-            out.add(f"for t in range({inner}):")
-            with out.indent():
-                out.add("NOUT *= csize[t]")
-            out.add("for i in prange(out_v.shape[0]):")
-            with out.indent():
+            "out_v, out_policy, out_bad, out_bad_choice):"
+        ):
+            self.prologue(out)
+            out.add(f"M = {self.meta.csize(inner)}")
+            self.n_choices(out, "NOUT", inner)
+            axis = self.layout.pyramid_axis
+            if axis is not None:
+                out.add(f"n_outer = EVt.shape[1] // ({self.meta.ssize(axis)} * {self.meta.sstride(axis)})")
+            with out.block("for i in range(out_v.shape[0]):"):
                 self.state_setup(out)
                 out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1")
-                out.add("if has_guess:")
-                with out.indent():
-                    out.add("g = guess[i]", "if g >= 0:")
-                    with out.indent():
-                        out.add(f"ok, val, bad = {self.call_value('g')}", "if ok:")
-                        with out.indent():
-                            out.add("best = val", "chosen = g")
-                out.add("for o in range(NOUT):")
-                with out.indent():
+                with out.block("if has_guess and guess[i] >= 0:"):
+                    out.add("c = guess[i]")
+                    self.evaluate(out)
+                    with out.block("if ok:"):
+                        out.add("best = val", "chosen = c")
+                with out.block("for o in range(NOUT):"):
                     if inner:
                         out.add("rem = o")
                         for t in range(inner - 1, 0, -1):
-                            out.add(f"j_{t} = rem % csize[{t}]", f"rem = rem // csize[{t}]")
+                            out.add(f"j_{t} = rem % {self.meta.csize(t)}", f"rem = rem // {self.meta.csize(t)}")
                         out.add("j_0 = rem")
+                        for t in range(inner):
+                            out.add(f"c_{t} = cgrid[{self.meta.coff(t)} + j_{t}]")
                     out.add("cb = o * M", "h = 0", "k = 0")
-                    out.add("while True:")
-                    with out.indent():
-                        out.add("size = leaf << (depth - h)", "a = k * size", "descend = False", "if a < M:")
-                        with out.indent():
-                            out.add("b = min(a + size, M) - 1", "if size <= leaf:")
-                            with out.indent():
-                                out.add("for jj in range(a, b + 1):")
-                                with out.indent():
-                                    out.add("c = cb + jj", f"ok, val, bad = {self.call_value('c')}", "if ok:")
-                                    with out.indent():
-                                        out.add("if val > best or (val == best and c < chosen):")
-                                        with out.indent():
+                    # Depth-first walk of the binary tree over the last choice; node (h, k) covers
+                    # [k·size, (k+1)·size) with size = leaf · 2**(depth − h); leaves are evaluated.
+                    with out.block("while True:"):
+                        out.add("size = leaf << (depth - h)", "a = k * size", "descend = False")
+                        with out.block("if a < M:"):
+                            out.add("b = min(a + size, M) - 1")
+                            with out.block("if size <= leaf:"):
+                                with out.block("for c in range(cb + a, cb + b + 1):"):
+                                    self.evaluate(out)
+                                    with out.block("if ok:"):
+                                        with out.block("if val > best or (val == best and c < chosen):"):
                                             out.add("best = val", "chosen = c")
-                                    out.add("elif bad:")
-                                    with out.indent():
-                                        out.add("nbad += 1", "if first_bad < 0:")
-                                        with out.indent():
+                                    with out.block("elif bad:"):
+                                        out.add("nbad += 1")
+                                        with out.block("if first_bad < 0:"):
                                             out.add("first_bad = c")
-                            out.add("else:")
-                            with out.indent():
-                                out.add(
-                                    f"ub, dead = _block_bound(a, b{outer_args}{self.state_args}, iz, beta, EVt, "
-                                    "pyramid, levels, evmax, ctx)"
-                                )
-                                out.add("if not dead and not (ub < best or (ub == best and cb + a > chosen)):")
-                                with out.indent():
+                            with out.block("else:"):
+                                self.block_bound(out)
+                                with out.block("if not dead and not (ub < best or (ub == best and cb + a > chosen)):"):
                                     out.add("descend = True")
-                        out.add("if descend:")
-                        with out.indent():
+                        with out.block("if descend:"):
                             out.add("h += 1", "k *= 2", "continue")
-                        out.add("while h > 0 and (k & 1) == 1:")
-                        with out.indent():
+                        with out.block("while h > 0 and (k & 1) == 1:"):
                             out.add("h -= 1", "k >>= 1")
-                        out.add("if h == 0:")
-                        with out.indent():
+                        with out.block("if h == 0:"):
                             out.add("break")
                         out.add("k += 1")
                 out.add("out_v[i] = best", "out_policy[i] = chosen", "out_bad[i] = nbad", "out_bad_choice[i] = first_bad")
@@ -668,51 +773,34 @@ class _Writer:
 
     def kernel_policy_nodes(self) -> str:
         out = _Lines()
-        out.add(_PJIT, "def policy_nodes(policy, ctx, out_reward, out_index, out_weight, out_ok, out_clamped):")
-        with out.indent():
-            out.add("NZ = ctx[5].shape[0]")
-            if self.expr:
-                out.extend(_UNPACK)
-            out.add("for i in prange(policy.shape[0]):")
-            with out.indent():
+        out.add(_JIT)
+        with out.block("def policy_nodes(policy, EVt, ctx, out_reward, out_index, out_weight, out_ok, out_clamped):"):
+            self.prologue(out)
+            out.add("beta = 0.0")
+            with out.block("for i in range(policy.shape[0]):"):
                 self.state_setup(out)
-                out.add(
-                    f"ok, r, bad, clamped = _choice_detail(policy[i], i, iz{self.state_args}, ctx, out_index[i], out_weight[i])",
-                    "out_reward[i] = r",
-                    "out_ok[i] = ok",
-                    "out_clamped[i] = clamped",
-                )
+                out.add("c = policy[i]", "idx_row = out_index[i]", "w_row = out_weight[i]")
+                self.evaluate(out, detail=True)
+                out.add("out_reward[i] = r", "out_ok[i] = ok", "out_clamped[i] = clamped")
         return out.text()
 
     def kernel_scan(self) -> str:
         out = _Lines()
-        out.add(_PJIT, "def scan_pairs(ctx, out_allowed, out_clamped, out_bad):")
-        with out.indent():
-            out.extend(_UNPACK)
-            out.add("NZ = ztab.shape[0]", "NC = 1")
-            out.add(f"for t in range({self.q}):")
-            with out.indent():
-                out.add("NC *= csize[t]")
-            out.add("for i in prange(out_allowed.shape[0]):")
-            with out.indent():
+        out.add(_JIT)
+        with out.block("def scan_pairs(EVt, ctx, out_allowed, out_clamped, out_bad):"):
+            self.prologue(out)
+            out.add("beta = 0.0")
+            self.n_choices(out)
+            with out.block("for i in range(out_allowed.shape[0]):"):
                 self.state_setup(out)
-                out.add(
-                    f"idx_row = np.empty({self.layout.nodes}, dtype=np.int64)",
-                    f"w_row = np.empty({self.layout.nodes})",
-                    "allowed = 0",
-                    "clamps = 0",
-                    "nbad = 0",
-                )
-                out.add("for c in range(NC):")
-                with out.indent():
-                    out.add(f"ok, r, bad, clamped = _choice_detail(c, i, iz{self.state_args}, ctx, idx_row, w_row)")
-                    out.add("if ok:")
-                    with out.indent():
-                        out.add("allowed += 1", "if clamped:")
-                        with out.indent():
+                out.add("allowed = 0", "clamps = 0", "nbad = 0")
+                with out.block("for c in range(NC):"):
+                    self.evaluate(out)
+                    with out.block("if ok:"):
+                        out.add("allowed += 1")
+                        with out.block("if clamped:"):
                             out.add("clamps += 1")
-                    out.add("elif bad:")
-                    with out.indent():
+                    with out.block("elif bad:"):
                         out.add("nbad += 1")
                 out.add("out_allowed[i] = allowed", "out_clamped[i] = clamps", "out_bad[i] = nbad")
         return out.text()
@@ -722,16 +810,19 @@ class _Writer:
         header = [
             f"# fixq generated kernels: backend {layout.backend}, {self.d} states, {self.m} shocks, {self.q} choices",
             f"# setter {layout.setter}, hinted axis {layout.hinted_axis}, bound {layout.bound_kind} {layout.pyramid_axis}",
-            f"# template {_TEMPLATE_HASH}, kernels {kernels.SOURCE_HASH}",
+            f"# template {_TEMPLATE_HASH}, dependencies {_dependency_hash()}",
             "import numpy as np",
-            "from numba import njit, prange",
+            "from numba import njit",
+            "from worker.expressions import interval_globals",
             "from worker.kernels import locate_one, pyramid_max",
+            "",
+            "globals().update(interval_globals())",
         ]
-        parts = ["\n".join(header), self.helper_value(), self.helper_detail(), self.kernel_full(), self.kernel_policy_nodes()]
+        parts = ["\n".join(header), self.kernel_full(), self.kernel_policy_nodes()]
         if layout.hinted_axis is not None:
             parts.append(self.kernel_hinted())
         if self.expr:
-            parts += [self.helper_bound(), self.kernel_bnb(), self.kernel_scan()]
+            parts += [self.kernel_bnb(), self.kernel_scan()]
         return "\n\n\n".join(parts) + "\n"
 
 

@@ -2,8 +2,16 @@
 
 The solver verifies a policy with one unrestricted Bellman step; on huge
 grids it prunes blocks of choices whose objective is provably below the best
-found, and these bounds are the proof.  They must be *sound*: for every point
+found, and these bounds are the proof.  They must be *sound*: at every point
 of the box, the value either evaluator computes lies within the bounds.
+
+The generated lines call the small jitted helpers below, one call per
+operation, through the global name ``fixq_intervals`` (this module; see
+`worker.expressions.interval_globals`).  Numba compiles each helper the first
+time a kernel uses it (0.1-1 s each, once per process), and each call site
+then costs a kernel some 20-50 ms of compile time; writing the branches
+inline instead made kernels several times slower to compile, because numba's
+compile time grows faster than linearly with the branches of a function.
 
 How soundness is kept
 ---------------------
@@ -14,29 +22,34 @@ How soundness is kept
   every outcome agrees.
 * ``+ - * /`` need no slack.  Both evaluators round them correctly, and
   rounding to nearest is monotone, so the rounded value at any point of the
-  box lies between the rounded corner values computed here.  Sums chain left
-  to right in the same order as the evaluators.  Possible ``inf - inf``,
-  ``0 * inf``, ``inf / inf`` and a divisor interval containing 0 give full.
+  box lies between the rounded corner values computed here.  Runs of ``+``
+  chain left to right in the same order as the evaluators.  A possible
+  ``inf - inf``, ``0 * inf`` or ``inf / inf``, or a divisor interval
+  containing 0, gives full.
 * ``log exp sqrt **`` are monotone in each argument on the domains used, but
   the C library and numpy's vectorised versions are each a few ulps off and
   not exactly monotone: their bounds are widened outward by `RELATIVE_SLACK`
   times their magnitude plus `ABSOLUTE_SLACK`.
-* ``x**y``: with ``x >= 0`` the extremes are at the four corners (for
-  ``x`` that may be 0, only when ``y >= 0``, because ``(-0.0)**-1`` is
-  ``-inf``); with a possibly negative ``x`` only a single integral exponent
-  is bounded (even powers through ``|x|``, odd ones are monotone, negative
-  odd ones across 0 are full); anything else is full.
+* ``x**y``: with ``x >= 0`` the extremes are at the four corners (when ``x``
+  may be 0, only if ``y >= 0``, because ``(-0.0)**-1`` is ``-inf``); with a
+  possibly negative ``x`` only a single integral exponent is bounded (even
+  powers through ``|x|``, odd ones are monotone, negative odd ones across 0
+  are full); anything else is full.  ``x**0`` and ``1**y`` are exactly 1.
 * Comparisons give ``[1, 1]`` when certainly true, ``[0, 0]`` when certainly
   false, else ``[0, 1]``; logic treats an interval excluding 0 as certainly
-  true and ``[0, 0]`` as certainly false.
+  true and ``[0, 0]`` as certainly false (nan counts as true, so a full
+  interval is neither).
 
-Variable names are ``{prefix}{n}_lo``/``_hi`` (``n`` counting nodes) plus
-helpers ``{prefix}{n}_c1``...; the result is ``{prefix}lo``/``{prefix}hi``.
+Variable names are ``{prefix}{n}_lo``/``_hi`` with ``n`` counting nodes; the
+result is ``{prefix}lo``/``{prefix}hi``.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
+
+import numpy as np
+from numba import njit
 
 from worker.expressions import (
     Arith,
@@ -50,20 +63,23 @@ from worker.expressions import (
     Not,
     Number,
     Power,
+    _float_literal,
     _pairwise,
-    float_literal,
-    variable_text,
+    _variable_text,
 )
 
 RELATIVE_SLACK = 2.0**-46
 """Outward widening of ``log exp sqrt **`` bounds, relative to their
-magnitude (about 64 ulps; library errors are a few ulps)."""
+magnitude (about 64 ulps; the libraries are within a few ulps)."""
 ABSOLUTE_SLACK = 1e-300
 """Outward widening of ``log exp sqrt **`` bounds, absolute: covers results
 near underflow, where relative error means little."""
 
-_LARGEST = repr(1.7976931348623157e308)
-_FULL = ("(-np.inf)", "np.inf")
+GLOBAL_NAME = "fixq_intervals"
+"""The global name the generated lines use for this module."""
+
+_LARGEST = 1.7976931348623157e308
+_jit = njit(error_model="numpy", fastmath=False)
 
 Interval = tuple[str, str]
 
@@ -83,10 +99,6 @@ def interval_source(
     return writer.lines, f"{prefix}lo", f"{prefix}hi"
 
 
-def _is_full(a: Interval) -> str:
-    return f"({a[0]} == -np.inf and {a[1]} == np.inf)"
-
-
 class _Writer:
     def __init__(self, name_of_lo: Mapping[str, str], name_of_hi: Mapping[str, str], prefix: str) -> None:
         self.name_of_lo = name_of_lo
@@ -95,239 +107,279 @@ class _Writer:
         self.lines: list[str] = []
         self.count = 0
 
-    def fresh(self) -> tuple[str, str, str]:
-        """New result variables ``lo``, ``hi`` and a stem for helpers."""
+    def fresh(self) -> Interval:
         self.count += 1
-        stem = f"{self.prefix}{self.count}_"
-        return f"{stem}lo", f"{stem}hi", stem
+        return f"{self.prefix}{self.count}_lo", f"{self.prefix}{self.count}_hi"
 
-    def emit(self, *lines: str) -> None:
-        self.lines.extend(lines)
+    def helper(self, name: str, *operands: Interval) -> Interval:
+        lo, hi = self.fresh()
+        args = ", ".join(end for operand in operands for end in operand)
+        self.lines.append(f"{lo}, {hi} = {GLOBAL_NAME}.{name}({args})")
+        return lo, hi
+
+    def assign(self, lo_text: str, hi_text: str) -> Interval:
+        lo, hi = self.fresh()
+        self.lines += [f"{lo} = {lo_text}", f"{hi} = {hi_text}"]
+        return lo, hi
 
     def node(self, node: Node) -> Interval:
         if isinstance(node, Number):
             if node.value != node.value:
-                return _FULL
-            literal = float_literal(node.value)
+                return "(-np.inf)", "np.inf"
+            literal = _float_literal(node.value)
             return literal, literal
         if isinstance(node, Name):
-            return variable_text(self.name_of_lo[node.id]), variable_text(self.name_of_hi[node.id])
+            return _variable_text(self.name_of_lo[node.id]), _variable_text(self.name_of_hi[node.id])
         if isinstance(node, Negate):
-            a = self.node(node.operand)
-            lo, hi, _ = self.fresh()
-            self.emit(f"{lo} = -{a[1]}", f"{hi} = -{a[0]}")
-            return lo, hi
+            lo, hi = self.node(node.operand)
+            return self.assign(f"-{hi}", f"-{lo}")
         if isinstance(node, Arith):
+            names = {"+": "add", "-": "subtract", "*": "multiply", "/": "divide"}
             result = self.node(node.first)
             for op, term in node.rest:
-                result = self.arith(op, result, self.node(term))
+                result = self.helper(names[op], result, self.node(term))
             return result
         if isinstance(node, Power):
-            return self.power(self.node(node.base), self.node(node.exponent))
+            return self.helper("power", self.node(node.base), self.node(node.exponent))
         if isinstance(node, Compare):
             operands = [self.node(operand) for operand in node.operands]
-            tests = [self.compare(op, operands[i], operands[i + 1]) for i, op in enumerate(node.ops)]
-            return self.combine_truth("min", tests)
+            tests = [self.helper(_COMPARE_HELPERS[op], operands[i], operands[i + 1]) for i, op in enumerate(node.ops)]
+            return _fold_left(tests, lambda a, b: self.helper("logical_and", a, b))
         if isinstance(node, Logic):
-            truths = [self.truth(self.node(operand)) for operand in node.operands]
-            return self.combine_truth("min" if node.op == "and" else "max", truths)
+            operands = [self.node(operand) for operand in node.operands]
+            return _fold_left(operands, lambda a, b: self.helper(f"logical_{node.op}", a, b))
         if isinstance(node, Not):
-            t_lo, t_hi = self.truth(self.node(node.operand))
-            lo, hi, _ = self.fresh()
-            self.emit(f"{lo} = 1.0 - {t_hi}", f"{hi} = 1.0 - {t_lo}")
-            return lo, hi
-        return self.call(node)
-
-    def full_lines(self, lo: str, hi: str, indent: str = "    ") -> list[str]:
-        return [f"{indent}{lo} = -np.inf", f"{indent}{hi} = np.inf"]
-
-    def widen_lines(self, lo: str, hi: str, indent: str = "    ") -> list[str]:
-        rel, absolute = repr(RELATIVE_SLACK), repr(ABSOLUTE_SLACK)
-        return [
-            f"{indent}{lo} = ({lo} - (abs({lo}) * {rel} + {absolute})) if {lo} < np.inf else {_LARGEST}",
-            f"{indent}{hi} = ({hi} + (abs({hi}) * {rel} + {absolute})) if {hi} > -np.inf else -{_LARGEST}",
-        ]
-
-    def arith(self, op: str, a: Interval, b: Interval) -> Interval:
-        (al, ah), (bl, bh) = a, b
-        lo, hi, s = self.fresh()
-        if op in "+-":
-            if op == "+":
-                ends, cross = ((al, bl), (ah, bh)), ((al, bh), (ah, bl))
-            else:
-                ends, cross = ((al, bh), (ah, bl)), ((al, bl), (ah, bh))
-            self.emit(
-                f"{s}c1 = {cross[0][0]} {op} {cross[0][1]}",
-                f"{s}c2 = {cross[1][0]} {op} {cross[1][1]}",
-                f"if {s}c1 != {s}c1 or {s}c2 != {s}c2:",
-                *self.full_lines(lo, hi),
-                "else:",
-                f"    {lo} = {ends[0][0]} {op} {ends[0][1]}",
-                f"    {hi} = {ends[1][0]} {op} {ends[1][1]}",
-            )
-            return lo, hi
-        corners = [f"{s}c{i}" for i in range(1, 5)]
-        nan_corner = " or ".join(f"{c} != {c}" for c in corners)
-        if op == "*":
-            head = []
-            unsafe = (
-                f"{nan_corner} or ({al} <= 0.0 <= {ah} and ({bl} == -np.inf or {bh} == np.inf))"
-                f" or ({bl} <= 0.0 <= {bh} and ({al} == -np.inf or {ah} == np.inf))"
-            )
-        else:
-            head = [f"if {bl} <= 0.0 <= {bh}:", *self.full_lines(lo, hi), "else:"]
-            unsafe = nan_corner
-        indent = "    " if head else ""
-        self.emit(
-            *head,
-            *(
-                f"{indent}{c} = {x} {op} {y}"
-                for c, (x, y) in zip(corners, [(al, bl), (al, bh), (ah, bl), (ah, bh)])
-            ),
-            f"{indent}if {unsafe}:",
-            *self.full_lines(lo, hi, indent + "    "),
-            f"{indent}else:",
-            f"{indent}    {lo} = min({', '.join(corners)})",
-            f"{indent}    {hi} = max({', '.join(corners)})",
-        )
-        return lo, hi
-
-    def power(self, a: Interval, b: Interval) -> Interval:
-        (al, ah), (bl, bh) = a, b
-        lo, hi, s = self.fresh()
-        corners = [f"{s}c{i}" for i in range(1, 5)]
-        pairs = [(al, bl), (al, bh), (ah, bl), (ah, bh)]
-        self.emit(
-            f"if ({bl} == 0.0 and {bh} == 0.0) or ({al} == 1.0 and {ah} == 1.0):",
-            f"    {lo} = 1.0",
-            f"    {hi} = 1.0",
-            f"elif {_is_full(a)} or {_is_full(b)}:",
-            *self.full_lines(lo, hi),
-            f"elif {al} > 0.0 or ({al} >= 0.0 and {bl} >= 0.0):",
-            *(f"    {c} = np.power({x}, {y})" for c, (x, y) in zip(corners, pairs)),
-            f"    {lo} = min({', '.join(corners)})",
-            f"    {hi} = max({', '.join(corners)})",
-            *self.widen_lines(lo, hi),
-            f"elif {bl} == {bh} and abs({bl}) < np.inf and np.floor({bl}) == {bl}:",
-            f"    {s}small = 0.0 if {al} <= 0.0 <= {ah} else min(abs({al}), abs({ah}))",
-            f"    {s}big = max(abs({al}), abs({ah}))",
-            f"    {s}even = np.floor({bl} * 0.5) == {bl} * 0.5",
-            f"    if {bl} > 0.0 and {s}even:",
-            f"        {lo} = np.power({s}small, {bl})",
-            f"        {hi} = np.power({s}big, {bl})",
-            f"    elif {bl} > 0.0:",
-            f"        {lo} = np.power({al}, {bl})",
-            f"        {hi} = np.power({ah}, {bl})",
-            f"    elif {s}even:",
-            f"        {lo} = np.power({s}big, {bl})",
-            f"        {hi} = np.power({s}small, {bl})",
-            f"    elif {al} <= 0.0 <= {ah}:",
-            *self.full_lines(lo, hi, "        "),
-            "    else:",
-            f"        {lo} = np.power({ah}, {bl})",
-            f"        {hi} = np.power({al}, {bl})",
-            *self.widen_lines(lo, hi),
-            "else:",
-            *self.full_lines(lo, hi),
-        )
-        return lo, hi
-
-    def compare(self, op: str, a: Interval, b: Interval) -> Interval:
-        (al, ah), (bl, bh) = a, b
-        equal = f"({al} == {ah} and {ah} == {bl} and {bl} == {bh})"
-        apart = f"({ah} < {bl} or {bh} < {al})"
-        certain = {
-            "<": (f"{ah} < {bl}", f"{al} >= {bh}"),
-            "<=": (f"{ah} <= {bl}", f"{al} > {bh}"),
-            ">": (f"{al} > {bh}", f"{ah} <= {bl}"),
-            ">=": (f"{al} >= {bh}", f"{ah} < {bl}"),
-            "==": (equal, apart),
-            "!=": (apart, equal),
-        }
-        true, false = certain[op]
-        lo, hi, _ = self.fresh()
-        self.emit(f"{lo} = 1.0 if {true} else 0.0", f"{hi} = 0.0 if {false} else 1.0")
-        return lo, hi
-
-    def truth(self, a: Interval) -> Interval:
-        """``[1, 1]`` if ``a`` is certainly nonzero, ``[0, 0]`` if certainly 0."""
-        lo, hi, _ = self.fresh()
-        self.emit(
-            f"{lo} = 1.0 if ({a[0]} > 0.0 or {a[1]} < 0.0) else 0.0",
-            f"{hi} = 0.0 if ({a[0]} == 0.0 and {a[1]} == 0.0) else 1.0",
-        )
-        return lo, hi
-
-    def combine_truth(self, how: str, truths: list[Interval]) -> Interval:
-        if len(truths) == 1:
-            return truths[0]
-        lo, hi, _ = self.fresh()
-        self.emit(
-            f"{lo} = {how}({', '.join(t[0] for t in truths)})",
-            f"{hi} = {how}({', '.join(t[1] for t in truths)})",
-        )
-        return lo, hi
-
-    def call(self, node: Call) -> Interval:
+            return self.helper("logical_not", self.node(node.operand))
         args = [self.node(arg) for arg in node.args]
         if node.function in ("min", "max"):
-            return _pairwise(args, lambda a, b: self.extreme(node.function, a, b))
+            name = "minimum" if node.function == "min" else "maximum"
+            return _pairwise(args, lambda a, b: self.helper(name, a, b))
         if node.function == "clip":
-            return self.extreme("min", self.extreme("max", args[0], args[1]), args[2])
+            return self.helper("minimum", self.helper("maximum", args[0], args[1]), args[2])
         if node.function == "where":
-            return self.where(*args)
-        (al, ah), = args
-        lo, hi, _ = self.fresh()
-        if node.function == "abs":
-            self.emit(
-                f"if {_is_full(args[0])}:",
-                *self.full_lines(lo, hi),
-                f"elif {al} >= 0.0:",
-                f"    {lo} = {al}",
-                f"    {hi} = {ah}",
-                f"elif {ah} <= 0.0:",
-                f"    {lo} = -{ah}",
-                f"    {hi} = -{al}",
-                "else:",
-                f"    {lo} = 0.0",
-                f"    {hi} = max(-{al}, {ah})",
-            )
-            return lo, hi
-        # log and sqrt are nan below 0; exp of a possibly-nan operand is too.
-        unsafe = _is_full(args[0]) if node.function == "exp" else f"{al} < 0.0"
-        self.emit(
-            f"if {unsafe}:",
-            *self.full_lines(lo, hi),
-            "else:",
-            f"    {lo} = np.{node.function}({al})",
-            f"    {hi} = np.{node.function}({ah})",
-            *self.widen_lines(lo, hi),
-        )
-        return lo, hi
+            return self.helper("where", *args)
+        return self.helper("absolute" if node.function == "abs" else node.function, args[0])
 
-    def extreme(self, how: str, a: Interval, b: Interval) -> Interval:
-        lo, hi, _ = self.fresh()
-        self.emit(
-            f"if {_is_full(a)} or {_is_full(b)}:",
-            *self.full_lines(lo, hi),
-            "else:",
-            f"    {lo} = {how}({a[0]}, {b[0]})",
-            f"    {hi} = {how}({a[1]}, {b[1]})",
-        )
-        return lo, hi
 
-    def where(self, condition: Interval, if_true: Interval, if_false: Interval) -> Interval:
-        (cl, ch), (tl, th), (fl, fh) = condition, if_true, if_false
-        lo, hi, _ = self.fresh()
-        self.emit(
-            f"if {cl} > 0.0 or {ch} < 0.0:",
-            f"    {lo} = {tl}",
-            f"    {hi} = {th}",
-            f"elif {cl} == 0.0 and {ch} == 0.0:",
-            f"    {lo} = {fl}",
-            f"    {hi} = {fh}",
-            "else:",
-            f"    {lo} = min({tl}, {fl})",
-            f"    {hi} = max({th}, {fh})",
-        )
-        return lo, hi
+_COMPARE_HELPERS = {
+    "<": "less", "<=": "less_equal", ">": "greater", ">=": "greater_equal", "==": "equal", "!=": "not_equal",
+}
+
+
+def _fold_left(items: list[Interval], combine: Callable[[Interval, Interval], Interval]) -> Interval:
+    result = items[0]
+    for item in items[1:]:
+        result = combine(result, item)
+    return result
+
+
+# The helpers the generated lines call.  Each takes and returns bounds as
+# float64 (lo, hi) pairs; a full operand is (-inf, inf).
+
+
+@_jit
+def _widen(lo: float, hi: float) -> tuple[float, float]:
+    lo = lo - (abs(lo) * RELATIVE_SLACK + ABSOLUTE_SLACK) if lo < np.inf else _LARGEST
+    hi = hi + (abs(hi) * RELATIVE_SLACK + ABSOLUTE_SLACK) if hi > -np.inf else -_LARGEST
+    return lo, hi
+
+
+@_jit
+def _is_full(lo: float, hi: float) -> bool:
+    return lo == -np.inf and hi == np.inf
+
+
+@_jit
+def add(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    cross1 = al + bh
+    cross2 = ah + bl
+    if cross1 != cross1 or cross2 != cross2:
+        return -np.inf, np.inf
+    return al + bl, ah + bh
+
+
+@_jit
+def subtract(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    cross1 = al - bl
+    cross2 = ah - bh
+    if cross1 != cross1 or cross2 != cross2:
+        return -np.inf, np.inf
+    return al - bh, ah - bl
+
+
+@_jit
+def multiply(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    c1 = al * bl
+    c2 = al * bh
+    c3 = ah * bl
+    c4 = ah * bh
+    if c1 != c1 or c2 != c2 or c3 != c3 or c4 != c4:
+        return -np.inf, np.inf
+    if al <= 0.0 <= ah and (bl == -np.inf or bh == np.inf):
+        return -np.inf, np.inf
+    if bl <= 0.0 <= bh and (al == -np.inf or ah == np.inf):
+        return -np.inf, np.inf
+    return min(c1, c2, c3, c4), max(c1, c2, c3, c4)
+
+
+@_jit
+def divide(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    if bl <= 0.0 <= bh:
+        return -np.inf, np.inf
+    c1 = al / bl
+    c2 = al / bh
+    c3 = ah / bl
+    c4 = ah / bh
+    if c1 != c1 or c2 != c2 or c3 != c3 or c4 != c4:
+        return -np.inf, np.inf
+    return min(c1, c2, c3, c4), max(c1, c2, c3, c4)
+
+
+@_jit
+def power(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    if (bl == 0.0 and bh == 0.0) or (al == 1.0 and ah == 1.0):
+        return 1.0, 1.0
+    if _is_full(al, ah) or _is_full(bl, bh):
+        return -np.inf, np.inf
+    if al > 0.0 or (al >= 0.0 and bl >= 0.0):
+        c1 = np.power(al, bl)
+        c2 = np.power(al, bh)
+        c3 = np.power(ah, bl)
+        c4 = np.power(ah, bh)
+        return _widen(min(c1, c2, c3, c4), max(c1, c2, c3, c4))
+    if not (bl == bh and abs(bl) < np.inf and np.floor(bl) == bl):
+        return -np.inf, np.inf
+    n = bl
+    small = 0.0 if al <= 0.0 <= ah else min(abs(al), abs(ah))
+    big = max(abs(al), abs(ah))
+    even = np.floor(n * 0.5) == n * 0.5
+    if n > 0.0 and even:
+        return _widen(np.power(small, n), np.power(big, n))
+    if n > 0.0:
+        return _widen(np.power(al, n), np.power(ah, n))
+    if even:
+        return _widen(np.power(big, n), np.power(small, n))
+    if al <= 0.0 <= ah:
+        return -np.inf, np.inf
+    return _widen(np.power(ah, n), np.power(al, n))
+
+
+@_jit
+def log(al: float, ah: float) -> tuple[float, float]:
+    if al < 0.0:
+        return -np.inf, np.inf
+    return _widen(np.log(al), np.log(ah))
+
+
+@_jit
+def sqrt(al: float, ah: float) -> tuple[float, float]:
+    if al < 0.0:
+        return -np.inf, np.inf
+    return _widen(np.sqrt(al), np.sqrt(ah))
+
+
+@_jit
+def exp(al: float, ah: float) -> tuple[float, float]:
+    if _is_full(al, ah):
+        return -np.inf, np.inf
+    return _widen(np.exp(al), np.exp(ah))
+
+
+@_jit
+def absolute(al: float, ah: float) -> tuple[float, float]:
+    if _is_full(al, ah):
+        return -np.inf, np.inf
+    if al >= 0.0:
+        return al, ah
+    if ah <= 0.0:
+        return -ah, -al
+    return 0.0, max(-al, ah)
+
+
+@_jit
+def minimum(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    if _is_full(al, ah) or _is_full(bl, bh):
+        return -np.inf, np.inf
+    return min(al, bl), min(ah, bh)
+
+
+@_jit
+def maximum(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    if _is_full(al, ah) or _is_full(bl, bh):
+        return -np.inf, np.inf
+    return max(al, bl), max(ah, bh)
+
+
+@_jit
+def where(cl: float, ch: float, tl: float, th: float, fl: float, fh: float) -> tuple[float, float]:
+    if cl > 0.0 or ch < 0.0:
+        return tl, th
+    if cl == 0.0 and ch == 0.0:
+        return fl, fh
+    return min(tl, fl), max(th, fh)
+
+
+@_jit
+def less(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    return (1.0 if ah < bl else 0.0), (0.0 if al >= bh else 1.0)
+
+
+@_jit
+def less_equal(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    return (1.0 if ah <= bl else 0.0), (0.0 if al > bh else 1.0)
+
+
+@_jit
+def greater(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    return less(bl, bh, al, ah)
+
+
+@_jit
+def greater_equal(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    return less_equal(bl, bh, al, ah)
+
+
+@_jit
+def equal(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    if al == ah and ah == bl and bl == bh:
+        return 1.0, 1.0
+    if ah < bl or bh < al:
+        return 0.0, 0.0
+    return 0.0, 1.0
+
+
+@_jit
+def not_equal(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    lo, hi = equal(al, ah, bl, bh)
+    return 1.0 - hi, 1.0 - lo
+
+
+@_jit
+def _truth(al: float, ah: float) -> tuple[float, float]:
+    """[1, 1] when certainly nonzero, [0, 0] when certainly 0 (nan is nonzero,
+    so a full interval is neither)."""
+    if al > 0.0 or ah < 0.0:
+        return 1.0, 1.0
+    if al == 0.0 and ah == 0.0:
+        return 0.0, 0.0
+    return 0.0, 1.0
+
+
+@_jit
+def logical_and(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    a_lo, a_hi = _truth(al, ah)
+    b_lo, b_hi = _truth(bl, bh)
+    return min(a_lo, b_lo), min(a_hi, b_hi)
+
+
+@_jit
+def logical_or(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
+    a_lo, a_hi = _truth(al, ah)
+    b_lo, b_hi = _truth(bl, bh)
+    return max(a_lo, b_lo), max(a_hi, b_hi)
+
+
+@_jit
+def logical_not(al: float, ah: float) -> tuple[float, float]:
+    lo, hi = _truth(al, ah)
+    return 1.0 - hi, 1.0 - lo

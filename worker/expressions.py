@@ -17,6 +17,17 @@ The text goes through ``ast.parse(text, mode="eval")`` and then a whitelist
 walk that refuses anything else, naming what it found and where.  Every
 refusal is a `worker.errors.InvalidDocument` carrying the caller's ``path``.
 
+The tree
+--------
+`Expression.tree` is made of the frozen node classes below, which code
+generators elsewhere may walk: `Number` (``value``), `Name` (``id``),
+`Negate` and `Not` (``operand``), `Arith` (``first`` and ``rest``, a tuple of
+``(op, term)`` applied left to right, ops all from ``+ -`` or all from
+``* /``), `Power` (``base``, ``exponent``), `Compare` (``operands``, ``ops``),
+`Logic` (``op`` ``"and"``/``"or"``, ``operands``) and `Call` (``function``,
+``args``).  Unary ``+`` leaves no node; parts made of numbers only are
+folded into one `Number`.
+
 Semantics
 ---------
 Every value is float64, and both evaluators (`evaluate` with numpy,
@@ -38,20 +49,23 @@ Every value is float64, and both evaluators (`evaluate` with numpy,
   (``9**9**9**9`` becomes inf at once).
 
 The two evaluators agree bit for bit on ``+ - * /``, comparisons, logic,
-``where``, ``min``, ``max``, ``abs``, ``clip`` and ``sqrt``.  ``log``, ``exp``
-and ``**`` may differ in the last bits, because numpy uses vectorised
-implementations of them while numba calls the C library; the interval bounds
-of ``_intervals`` allow for that.
+``where``, ``min``, ``max``, ``abs``, ``clip``, ``sqrt`` and on ``**`` with
+a constant exponent of 0, 0.5, 1, 2 or -1 (the tests pin this, signed zeros
+included).  Otherwise ``log``, ``exp`` and ``**`` may differ in the last bits,
+because numpy uses vectorised implementations of them while numba calls the
+C library; the interval bounds of ``_intervals`` allow for that.
 
 Generated source is not eval of user text
 -----------------------------------------
 `scalar_source` and `interval_source` write Python source for numba from the
 *validated tree*, never from the text.  Their output holds only tokens this
-module writes itself (operators, parentheses, ``np.log`` and the like,
-``if``/``else``), the local variable names the caller chose for each document
-name, and numbers written with ``repr(float(x))`` (or ``np.inf``/``np.nan``).
-A document name is only ever used as a key to look up the caller's variable;
-its characters never reach the output.
+module writes itself (operators, parentheses, ``np.log``, ``np.float64``,
+``if``/``else``, the helper calls of ``worker._intervals``), the variable
+names the caller chose for each document name, and numbers written with
+``repr(float(x))`` (or ``np.inf``/``np.nan``).  A document name is only ever
+used as a key to look up the caller's variable; its characters never reach
+the output, so no document can make the generated code do anything but
+arithmetic on the caller's variables.
 
 Limits
 ------
@@ -77,9 +91,20 @@ __all__ = [
     "MAX_DEPTH",
     "MAX_LENGTH",
     "MAX_NODES",
+    "Arith",
+    "Call",
+    "Compare",
     "Expression",
+    "Logic",
+    "Name",
+    "Negate",
+    "Node",
+    "Not",
+    "Number",
+    "Power",
     "check_names",
     "evaluate",
+    "interval_globals",
     "interval_source",
     "parse",
     "scalar_source",
@@ -89,8 +114,9 @@ MAX_LENGTH = 2000
 """Longest expression text `parse` accepts by default, in characters."""
 MAX_DEPTH = 40
 """Deepest nesting `parse` accepts by default, in levels of the tree: each
-operator, call or parenthesised group inside another adds one, while a run of
-``+``/``-`` (or ``*``/``/``) at one level counts once."""
+operator or call inside another adds one, while a run of ``+``/``-`` (or
+``*``/``/``) at one level counts once.  Parentheses, and runs of signs, may
+not nest deeper either."""
 MAX_NODES = 500
 """Most parts `parse` accepts by default, in tree nodes: numbers, names,
 operators and calls."""
@@ -290,7 +316,25 @@ def parse(
         tree = builder.build(body, 1)
     except RecursionError:
         raise InvalidDocument.at(path, "the expression is nested too deeply to read") from None
+    if _nesting(_scalar(tree, dict.fromkeys(builder.names, "v"))) > _SOURCE_NESTING:
+        raise InvalidDocument.at(path, "the expression is nested too deeply (too many arguments at too many levels)")
     return Expression(text, tree, frozenset(builder.names), frozenset(builder.functions))
+
+
+_SOURCE_NESTING = 150
+"""Deepest parenthesis nesting of generated source `parse` lets through:
+Python refuses more than 200, and callers wrap the source further."""
+
+
+def _nesting(source: str) -> int:
+    depth = deepest = 0
+    for char in source:
+        if char in "([":
+            depth += 1
+            deepest = max(deepest, depth)
+        elif char in ")]":
+            depth -= 1
+    return deepest
 
 
 class _Positions:
@@ -324,7 +368,16 @@ class _Positions:
 def _precheck(source: str, positions: _Positions, path: str, max_depth: int) -> None:
     """Cheap character checks that must come before `ast.parse`."""
     depth = 0
+    signs = 0
     for index, char in enumerate(source):
+        if char in "+-":
+            signs += 1
+            if signs > max_depth + 1:
+                raise InvalidDocument.at(
+                    path, f"the expression is nested more than {max_depth} levels deep (signs at {positions.of_index(index)})"
+                )
+        elif not char.isspace():
+            signs = 0
         if char in "([{":
             depth += 1
             if depth > max_depth:
@@ -702,7 +755,7 @@ def _pairwise(items: list[_T], combine: Callable[[_T, _T], _T]) -> _T:
 
 # Source for numba ---------------------------------------------------------
 
-def float_literal(value: float) -> str:
+def _float_literal(value: float) -> str:
     """Python source for a float64 constant (negative ones parenthesised)."""
     if math.isnan(value):
         return "np.nan"
@@ -712,7 +765,7 @@ def float_literal(value: float) -> str:
     return f"({text})" if math.copysign(1.0, value) < 0 else text
 
 
-def variable_text(text: str) -> str:
+def _variable_text(text: str) -> str:
     """A caller's variable name, parenthesised unless it is a plain identifier."""
     return text if text.isidentifier() else f"({text})"
 
@@ -722,6 +775,10 @@ def scalar_source(expr: Expression, name_of: Mapping[str, str]) -> str:
 
     Meant for ``@njit(error_model="numpy", fastmath=False)`` with ``np``
     bound to numpy; in plain CPython ``**`` and ``/`` would raise instead.
+    Comparisons and logic are written without branches (``np.float64`` of
+    booleans, ``&``, ``|``), because numba's compile time grows faster than
+    linearly with the branches of a function; only ``where`` and chained
+    comparisons compile to a conditional expression.
 
     Parameters
     ----------
@@ -741,13 +798,13 @@ def _scalar(node: Node, name_of: Mapping[str, str]) -> str:
         return _scalar(child, name_of)
 
     if isinstance(node, Number):
-        return float_literal(node.value)
+        return _float_literal(node.value)
     if isinstance(node, Name):
-        return variable_text(name_of[node.id])
+        return _variable_text(name_of[node.id])
     if isinstance(node, Negate):
         return f"(-{of(node.operand)})"
     if isinstance(node, Not):
-        return f"(1.0 if {of(node.operand)} == 0.0 else 0.0)"
+        return f"np.float64({of(node.operand)} == 0.0)"
     if isinstance(node, Arith):
         return "(" + of(node.first) + "".join(f" {op} {of(term)}" for op, term in node.rest) + ")"
     if isinstance(node, Power):
@@ -756,10 +813,13 @@ def _scalar(node: Node, name_of: Mapping[str, str]) -> str:
         chain = of(node.operands[0]) + "".join(
             f" {op} {of(operand)}" for op, operand in zip(node.ops, node.operands[1:])
         )
-        return f"(1.0 if {chain} else 0.0)"
+        # A chain must stay a chain (its middle operands written once), and
+        # Python compiles it to branches; a single comparison needs none.
+        return f"np.float64({chain})" if len(node.ops) == 1 else f"(1.0 if {chain} else 0.0)"
     if isinstance(node, Logic):
-        condition = f" {node.op} ".join(f"{of(operand)} != 0.0" for operand in node.operands)
-        return f"(1.0 if {condition} else 0.0)"
+        # `&` and `|` of booleans: no short-circuit branches for numba to type.
+        joiner = " & " if node.op == "and" else " | "
+        return "np.float64(" + joiner.join(f"({of(operand)} != 0.0)" for operand in node.operands) + ")"
     args = [of(arg) for arg in node.args]
     if node.function in _UNARY_UFUNCS:
         return f"np.{node.function}({args[0]})"
@@ -776,11 +836,12 @@ def interval_source(
 ) -> tuple[list[str], str, str]:
     """Numba source lines bounding ``expr`` over a box of its names.
 
-    When each name lies in ``[lo, hi]`` (the caller's variables
-    ``name_of_lo[name]``, ``name_of_hi[name]``), the lines set two float64
-    variables whose values bound the expression at every point of the box,
-    as computed by either evaluator.  Where nan is possible the bounds are
+    When each name lies in ``[lo, hi]`` (the caller's float64 variables
+    ``name_of_lo[name]`` and ``name_of_hi[name]``), the lines set two float64
+    variables that bound the expression at every point of the box, as
+    computed by either evaluator.  Where nan is possible the bounds are
     ``(-inf, inf)``; comparisons and logic give bounds within ``[0, 1]``.
+    The rules are in the docstring of ``worker._intervals``.
 
     Parameters
     ----------
@@ -794,11 +855,20 @@ def interval_source(
     Returns
     -------
     lines : list of str
-        Statements (some are ``if`` blocks, indented relative to each
-        other); indent them all alike inside a function that sees ``np``.
+        Plain assignments, one per line, for a function whose globals include
+        `interval_globals` (they call helpers jitted once per process).  They
+        also run in plain CPython.
     lo, hi : str
         The names of the variables holding the bounds.
     """
     from worker import _intervals
 
     return _intervals.interval_source(expr, name_of_lo, name_of_hi, prefix)
+
+
+def interval_globals() -> dict[str, object]:
+    """The globals that the lines of `interval_source` use (``np`` and the
+    helper module); merge them into the namespace of the generated function."""
+    from worker import _intervals
+
+    return {"np": np, _intervals.GLOBAL_NAME: _intervals}

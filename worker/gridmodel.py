@@ -501,6 +501,10 @@ class GridProblem:
 
     # Bellman steps ---------------------------------------------------------
 
+    def _zero_continuation(self) -> np.ndarray:
+        """An all-zero ``EVt`` for kernels that need only rewards and nodes."""
+        return np.zeros((self._data.n_shocks, self._data.n_grid))
+
     def _continuation(self, v: np.ndarray) -> np.ndarray:
         """``EVt`` (n_shocks, n_grid): ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']``."""
         values = np.asarray(v, dtype=np.float64).reshape(self._data.n_grid, self._data.n_shocks)
@@ -579,7 +583,7 @@ class GridProblem:
         weight = np.empty((self.n, nodes))
         ok = np.empty(self.n, dtype=np.bool_)
         clamped = np.empty(self.n, dtype=np.bool_)
-        self._kernels.policy_nodes(policy, self._ctx, reward, index, weight, ok, clamped)
+        self._kernels.policy_nodes(policy, self._zero_continuation(), self._ctx, reward, index, weight, ok, clamped)
         if not ok.all():
             i = int(np.flatnonzero(~ok)[0])
             raise ValueError(
@@ -592,9 +596,7 @@ class GridProblem:
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
         """``r_σ + β P_σ v``; (n,) → (n,).  Same bits as :meth:`bellman_step` at its own policy."""
         reward, index, weight, _ = self._nodes(policy)
-        out = np.empty(self.n)
-        kernels.policy_value(reward, index, weight, self._continuation(v), self.discount, out)
-        return out
+        return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
         """``r_σ``, shape (n,)."""
@@ -701,7 +703,7 @@ class GridProblem:
             allowed_per = np.empty(self.n, dtype=np.int64)
             clamped_per = np.empty(self.n, dtype=np.int64)
             bad_per = np.empty(self.n, dtype=np.int64)
-            self._kernels.scan_pairs(self._ctx, allowed_per, clamped_per, bad_per)
+            self._kernels.scan_pairs(self._zero_continuation(), self._ctx, allowed_per, clamped_per, bad_per)
             count, allowed = int(clamped_per.sum()), int(allowed_per.sum())
             overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"}
         else:
@@ -782,10 +784,8 @@ class GridProblem:
             k.bellman_full(EVt, self.discount, self._ctx, empty_f, empty_i, empty_i, empty_i)
         else:
             pyramid, levels = np.zeros(1), np.zeros(2, dtype=np.int64)
-            if self._layout.pyramid_axis is not None:
-                kernels.build_pyramid(EVt, 1, 1, levels, pyramid)
             k.bellman_bnb(EVt, self.discount, self._ctx, pyramid, levels, np.zeros(EVt.shape[0]), empty_i, True,
                           BNB_LEAF, self._depth, empty_f, empty_i, empty_i, empty_i)
-        k.policy_nodes(empty_i, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
+        k.policy_nodes(empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                        np.empty(0, dtype=np.bool_), np.empty(0, dtype=np.bool_))
         kernels.policy_csr(np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)), self._data.transition)

@@ -51,7 +51,8 @@ def power_grid(
     """
     errors = _bound_errors(lo, hi, points, path)
     if not _is_real(exponent) or not math.isfinite(exponent) or exponent <= 0:
-        errors.append(_fault(path, "exponent", f"the power-spacing exponent must be a positive number, got {exponent!r}"))
+        message = f"the power-spacing exponent must be a positive number, got {exponent!r}"
+        errors.append(_fault(path, "exponent", message))
     if errors:
         raise InvalidDocument(errors)
     lo, hi, points = float(lo), float(hi), operator.index(points)
@@ -174,7 +175,8 @@ def _bound_errors(lo: Any, hi: Any, points: Any, path: str, positive: bool = Fal
     if ends_ok and lo >= hi:
         errors.append(_fault(path, "max", f"max ({hi!r}) must be greater than min ({lo!r})"))
     if ends_ok and positive and lo <= 0:
-        errors.append(_fault(path, "min", f"log spacing needs min > 0 (logarithms of non-positive numbers do not exist), got {lo!r}"))
+        message = f"log spacing needs min > 0 (non-positive numbers have no logarithm), got {lo!r}"
+        errors.append(_fault(path, "min", message))
     if not _is_count(points):
         errors.append(_fault(path, "points", f"points must be a whole number, got {points!r}"))
     elif points < 2:

@@ -14,6 +14,7 @@ from typing import Any, Mapping, Sequence
 
 import numpy as np
 
+from worker.arrays import decode_array
 from worker.errors import InvalidDocument
 from worker.grids import locate
 
@@ -57,13 +58,15 @@ def regrid(
     missing = [name for name in new_names if name not in old_axes]
     extra = [name for name in old_names if name not in new_axes]
     if missing or extra:
-        parts = [f"lacks axes {missing} of this problem" if missing else "", f"has axes {extra} this problem does not" if extra else ""]
-        raise InvalidDocument.at(path, "the starting value function " + " and ".join(p for p in parts if p) + "; axes must match by name")
+        parts = [f"lacks axes {missing} of this problem"] if missing else []
+        parts += [f"has axes {extra} this problem does not"] if extra else []
+        raise InvalidDocument.at(path, f"the starting value function {' and '.join(parts)}; axes must match by name")
     shape = tuple(len(old_axes[name]) for name in old_names)
-    value = np.asarray(old_value, dtype=np.float64)
+    value = decode_array(old_value, path=path, allow_nonfinite=True)
     if value.shape != shape:
         if value.ndim != 1 or value.size != math.prod(shape):
-            raise InvalidDocument.at(path, f"the starting value function has shape {list(value.shape)}, but its axes give {list(shape)}")
+            message = f"the starting value function has shape {list(value.shape)}, but its axes give {list(shape)}"
+            raise InvalidDocument.at(path, message)
         value = value.reshape(shape)
     if not np.all(np.isfinite(value)):
         raise InvalidDocument.at(path, "the starting value function holds NaN or infinite values")
@@ -89,7 +92,8 @@ def _regrid_axis(value: np.ndarray, axis: int, old: list, new: list, name: str, 
     order = np.argsort(old_grid, kind="stable")
     old_grid = old_grid[order]
     if not np.all(old_grid[1:] > old_grid[:-1]):
-        raise InvalidDocument.at(path, f"axis {name!r} of the starting value function repeats a value, so it cannot be interpolated along")
+        message = f"axis {name!r} of the starting value function repeats a value, so it cannot be interpolated along"
+        raise InvalidDocument.at(path, message)
     if np.any(order != np.arange(order.size)):
         value = np.take(value, order, axis=axis)
 
@@ -111,4 +115,5 @@ def _match_labels(value: np.ndarray, axis: int, old: list, new: list, name: str,
 
 
 def _all_numbers(values: list) -> bool:
-    return all(isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, (bool, np.bool_)) for v in values)
+    numbers, bools = (int, float, np.integer, np.floating), (bool, np.bool_)
+    return all(isinstance(v, numbers) and not isinstance(v, bools) for v in values)

@@ -30,7 +30,7 @@ import hashlib
 import pathlib
 
 import numpy as np
-from numba import njit, prange
+from numba import njit
 
 __all__ = ["SOURCE_HASH", "build_pyramid", "locate_one", "policy_csr", "policy_value", "pyramid_levels", "pyramid_max"]
 
@@ -88,9 +88,8 @@ def pyramid_levels(axis_size: int) -> np.ndarray:
     return np.concatenate([[0], np.cumsum(lengths)]).astype(np.int64)
 
 
-@njit(cache=True, parallel=True, error_model="numpy")
 def build_pyramid(EVt: np.ndarray, axis_size: int, axis_stride: int, level_starts: np.ndarray, out: np.ndarray) -> None:
-    """Dyadic block maxima of ``EVt`` along one state axis.
+    """Dyadic block maxima of ``EVt`` along one state axis (numpy; a few passes over ``EVt``).
 
     A *line* is one shock ``z`` and one setting ``outer`` of the axes before
     the pyramid's axis (``n_outer = n_grid // (axis_size · axis_stride)``).
@@ -108,28 +107,15 @@ def build_pyramid(EVt: np.ndarray, axis_size: int, axis_stride: int, level_start
     """
     n_shocks, n_grid = EVt.shape
     n_outer = n_grid // (axis_size * axis_stride)
-    total = level_starts[-1]
-    n_levels = level_starts.shape[0] - 1
-    for task in prange(n_shocks * n_outer):
-        z = task // n_outer
-        outer = task - z * n_outer
-        line = (z * n_outer + outer) * total
-        for t in range(axis_size):
-            for inner in range(axis_stride):
-                out[(line + t) * axis_stride + inner] = EVt[z, (outer * axis_size + t) * axis_stride + inner]
-        for level in range(1, n_levels):
-            below = line + level_starts[level - 1]
-            here = line + level_starts[level]
-            below_length = level_starts[level] - level_starts[level - 1]
-            for b in range(level_starts[level + 1] - level_starts[level]):
-                left = 2 * b
-                for inner in range(axis_stride):
-                    best = out[(below + left) * axis_stride + inner]
-                    if left + 1 < below_length:
-                        other = out[(below + left + 1) * axis_stride + inner]
-                        if other > best:
-                            best = other
-                    out[(here + b) * axis_stride + inner] = best
+    blocks = out.reshape(n_shocks, n_outer, int(level_starts[-1]), axis_stride)
+    blocks[:, :, :axis_size, :] = EVt.reshape(n_shocks, n_outer, axis_size, axis_stride)
+    for level in range(1, level_starts.size - 1):
+        below = blocks[:, :, level_starts[level - 1] : level_starts[level], :]
+        here = blocks[:, :, level_starts[level] : level_starts[level + 1], :]
+        pairs = below.shape[2] // 2
+        np.maximum(below[:, :, 0 : 2 * pairs : 2, :], below[:, :, 1 : 2 * pairs : 2, :], out=here[:, :, :pairs, :])
+        if below.shape[2] % 2:
+            here[:, :, pairs, :] = below[:, :, -1, :]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -170,33 +156,29 @@ def pyramid_max(
     return best
 
 
-@njit(cache=True, parallel=True, error_model="numpy")
 def policy_value(
-    reward: np.ndarray, node_index: np.ndarray, node_weight: np.ndarray, EVt: np.ndarray, beta: float, out: np.ndarray
-) -> None:
-    """``out = r_σ + β P_σ v`` from a policy's nodes.
+    reward: np.ndarray, node_index: np.ndarray, node_weight: np.ndarray, EVt: np.ndarray, beta: float
+) -> np.ndarray:
+    """``r_σ + β P_σ v`` from a policy's nodes; (n,).
 
     Parameters
     ----------
     reward : (n,) float64
     node_index, node_weight : (n, K) int64, float64
         Tomorrow's grid states of each state under the policy and their
-        interpolation weights (zero weights are skipped, as in the Bellman
-        kernels, so both give the same bits).
+        interpolation weights.  Nodes are summed in the order of the Bellman
+        kernels (a zero weight adds an exact zero where the kernels skip the
+        node), so both give the same bits.
     EVt : (n_shocks, n_grid) float64
-    out : (n,) float64
     """
     n = reward.shape[0]
-    n_shocks = EVt.shape[0]
-    n_nodes = node_index.shape[1]
-    for i in prange(n):
-        z = i % n_shocks
-        expected = 0.0
-        for k in range(n_nodes):
-            w = node_weight[i, k]
-            if w != 0.0:
-                expected += w * EVt[z, node_index[i, k]]
-        out[i] = reward[i] + beta * expected
+    n_shocks, n_grid = EVt.shape
+    flat = EVt.reshape(-1)
+    row = (np.arange(n) % n_shocks) * n_grid
+    expected = node_weight[:, 0] * flat[row + node_index[:, 0]]
+    for k in range(1, node_index.shape[1]):
+        expected += node_weight[:, k] * flat[row + node_index[:, k]]
+    return reward + beta * expected
 
 
 @njit(cache=True, error_model="numpy")

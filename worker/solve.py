@@ -10,8 +10,6 @@ DESIGN section 5 from the one :class:`~worker.solvers.SolveOutcome`.
 
 from __future__ import annotations
 
-import hashlib
-import json
 import os
 from typing import Any, Callable
 
@@ -162,27 +160,16 @@ def solve(
         on_progress=on_progress,
         checkpoint=checkpoint,
         should_stop=should_stop,
-        fingerprint=_fingerprint(document),
+        fingerprint="" if checkpoint is None else _fingerprint(doc),
     )
     return _result(doc, problem, outcome)
 
 
-def _fingerprint(document: dict[str, Any]) -> str:
-    try:
-        from service.schema import document_hash
+def _fingerprint(doc: Any) -> str:
+    """The checkpoint fingerprint: ``service.schema.document_hash`` of the validated document."""
+    from service.schema import document_hash
 
-        return str(document_hash(document))
-    except (TypeError, ValueError):
-        text = json.dumps(document, sort_keys=True, default=_json_fallback)
-        return hashlib.sha256(text.encode()).hexdigest()
-
-
-def _json_fallback(obj: Any) -> Any:
-    if isinstance(obj, np.ndarray):
-        return {"ndarray": obj.tolist(), "dtype": str(obj.dtype)}
-    if isinstance(obj, np.generic):
-        return obj.item()
-    return repr(obj)
+    return str(document_hash(doc))
 
 
 def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, Any] | None) -> np.ndarray:

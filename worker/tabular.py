@@ -75,8 +75,8 @@ class TabularProblem:
             if matrix.shape != (n_states * n_actions, n_states):
                 raise ValueError(f"sparse transition must be {(n_states * n_actions, n_states)}, got {matrix.shape}")
         matrix.sum_duplicates()
-        row_allowed = np.repeat(allowed.ravel(), np.diff(matrix.indptr))
-        if not row_allowed.all():
+        if not allowed.all():
+            row_allowed = np.repeat(allowed.ravel(), np.diff(matrix.indptr))
             matrix.data[~row_allowed] = 0.0
         matrix.eliminate_zeros()
 
@@ -194,15 +194,19 @@ def compile_tabular(doc: Any) -> TabularProblem:
 
 
 def _entries_to_csr(entries: np.ndarray, n_states: int, n_actions: int) -> sp.csr_matrix:
-    """(N, 4) ``(s, a, s_next, p)`` rows → (S·A, S) CSR; duplicates are summed."""
+    """(N, 4) ``(s, a, s_next, p)`` rows → (S·A, S) CSR; duplicates are summed.
+
+    Row and column indices are formed straight from the float columns (exact
+    below 2**53) in the narrowest index type, and scipy's counting-sort
+    conversion from COO does the rest: no Python loop over entries.
+    """
+    shape = (n_states * n_actions, n_states)
     if entries.size == 0:
-        return sp.csr_matrix((n_states * n_actions, n_states), dtype=np.float64)
-    state = entries[:, 0].astype(np.int64)
-    action = entries[:, 1].astype(np.int64)
-    successor = entries[:, 2].astype(np.int64)
-    matrix = sp.coo_matrix(
-        (entries[:, 3], (state * n_actions + action, successor)), shape=(n_states * n_actions, n_states)
-    ).tocsr()
+        return sp.csr_matrix(shape, dtype=np.float64)
+    index_type = np.int32 if max(shape[0], entries.shape[0]) < 2**31 - 1 else np.int64
+    row = (entries[:, 0] * n_actions + entries[:, 1]).astype(index_type)
+    column = entries[:, 2].astype(index_type)
+    matrix = sp.coo_matrix((np.ascontiguousarray(entries[:, 3]), (row, column)), shape=shape).tocsr()
     matrix.sum_duplicates()
     return matrix
 
@@ -221,9 +225,11 @@ def _check_rows(problem: TabularProblem, where: str) -> None:
     matrix = problem.transition
     n_actions = problem.n_actions
     allowed = problem.allowed.ravel()
-    row_of_entry = np.repeat(np.arange(matrix.shape[0]), np.diff(matrix.indptr))
     bad_value = np.zeros(matrix.shape[0], dtype=bool)
-    bad_value[row_of_entry[~np.isfinite(matrix.data) | (matrix.data < 0)]] = True
+    bad_entry = ~(matrix.data >= 0) | ~np.isfinite(matrix.data)
+    if bad_entry.any():
+        row_of_entry = np.repeat(np.arange(matrix.shape[0]), np.diff(matrix.indptr))
+        bad_value[row_of_entry[bad_entry]] = True
     sums = np.asarray(matrix.sum(axis=1)).ravel()
     bad_sum = allowed & ~(np.abs(sums - 1.0) <= ROW_SUM_TOLERANCE)
     faulty = np.flatnonzero(allowed & (bad_value | bad_sum))

@@ -37,6 +37,7 @@
     document.getElementById("problem").classList.add("hidden");
     renderHead();
     renderFacts();
+    if (!entries.size) drawChart();
     if (job.state === "failed") renderFailure();
     if (job.state === "canceled") renderCanceled();
     if (job.state === "done" && !summaryShown) {
@@ -86,9 +87,10 @@
     const items = [];
     if (!error) items.push("The job failed without a recorded reason; the worker's log may say more.");
     else if (typeof error === "string") items.push(error);
-    else {
-      if (error.detail || error.title) items.push(error.detail || error.title);
-      for (const fault of error.errors || []) items.push(fault.path ? `${fault.path}: ${fault.message}` : fault.message);
+    else if ((error.errors || []).length) {
+      for (const fault of error.errors) items.push(fault.path ? `${fault.path}: ${fault.message}` : fault.message);
+    } else {
+      items.push(error.detail || error.title || "no reason recorded");
     }
     list.replaceChildren(...items.map((text) => el("li", { text })));
     document.getElementById("failure").classList.remove("hidden");

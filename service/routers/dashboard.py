@@ -21,6 +21,7 @@ from fastapi.responses import HTMLResponse, RedirectResponse, Response
 
 from service.deps import Caller, SettingsDep, current_owner
 from service.problems import Problem
+from service.settings import Settings
 from service.store import is_job_id
 
 __all__ = ["SESSION_COOKIE", "SESSION_MAX_AGE_S", "router"]
@@ -131,7 +132,7 @@ def sign_out(request: Request) -> Response:
     return response
 
 
-def _caller_or_none(request: Request, settings: Any) -> Caller | None:
+def _caller_or_none(request: Request, settings: Settings) -> Caller | None:
     """The caller the API's ``Owner`` dependency sees in this request, or None when it refuses (401)."""
     try:
         return current_owner(request, settings)
@@ -141,7 +142,7 @@ def _caller_or_none(request: Request, settings: Any) -> Caller | None:
         raise
 
 
-def _caller_with_key(request: Request, settings: Any, key: str) -> Caller | None:
+def _caller_with_key(request: Request, settings: Settings, key: str) -> Caller | None:
     """Whom ``key`` signs in as, asked of the ``Owner`` dependency itself (so there is one key check)."""
     headers = [(name, value) for name, value in request.scope["headers"] if name not in (b"authorization", b"cookie")]
     scope = {**request.scope, "headers": [*headers, (b"authorization", f"Bearer {key}".encode("latin-1", "replace"))]}

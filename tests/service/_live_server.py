@@ -19,6 +19,8 @@ import httpx
 from service.embedded_redis import free_port
 
 REPO = Path(__file__).resolve().parents[2]
+APP_FACTORY = "service.app:create_app"
+"""The app factory uvicorn serves (``module:function``)."""
 STARTUP_TIMEOUT_S = 60.0
 """Seconds to wait for the API to answer /healthz."""
 STOP_TIMEOUT_S = 10.0
@@ -32,7 +34,8 @@ class LiveServer:
         self.port = free_port()
         self.url = f"http://127.0.0.1:{self.port}"
         self.log_dir = log_dir
-        self.env = {**os.environ, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": str(REPO), **settings}
+        python_path = os.pathsep.join(filter(None, [str(REPO), os.environ.get("PYTHONPATH")]))
+        self.env = {**os.environ, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": python_path, **settings}
         self.processes: list[tuple[str, subprocess.Popen[bytes]]] = []
 
     def _spawn(self, name: str, command: list[str]) -> subprocess.Popen[bytes]:
@@ -47,7 +50,7 @@ class LiveServer:
     def start(self) -> LiveServer:
         api = self._spawn(
             "api",
-            [sys.executable, "-m", "uvicorn", "service.app:create_app", "--factory",
+            [sys.executable, "-m", "uvicorn", APP_FACTORY, "--factory",
              "--host", "127.0.0.1", "--port", str(self.port), "--log-level", "warning"],
         )  # fmt: skip
         deadline = time.monotonic() + STARTUP_TIMEOUT_S
@@ -64,6 +67,11 @@ class LiveServer:
 
     def start_worker(self) -> subprocess.Popen[bytes]:
         return self._spawn("worker", [sys.executable, "-m", "service.cli", "worker"])
+
+    def ensure_worker(self) -> None:
+        """Start a worker unless one is running."""
+        if not any(name == "worker" and process.poll() is None for name, process in self.processes):
+            self.start_worker()
 
     def logs(self) -> str:
         return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in sorted(self.log_dir.glob("*.log")))

@@ -118,6 +118,17 @@ def test_two_endogenous_states_make_a_heatmap_per_shock_state() -> None:
     png_size(plots.policy_plot(result, layout=layout, fmt="png"))
 
 
+def test_a_third_state_is_held_at_its_middle_point() -> None:
+    a, b, c = np.linspace(0, 1, 4), np.linspace(0, 1, 5), np.array([10.0, 20.0, 30.0])
+    value = a[:, None, None, None] + b[None, :, None, None] + c[None, None, :, None] * np.ones((1, 1, 1, 2))
+    result = {"axes": {"a": a.tolist(), "b": b.tolist(), "c": c.tolist(), "y": [0.0, 1.0]}, "value": value.tolist()}
+    layout = plots.AxisLayout(states=("a", "b", "c"), shocks=("y",))
+    svg = plots.value_plot(result, layout=layout, shock=1)
+    assert b"<image" in svg
+    assert svg == plots.value_plot(result, layout=layout, shock=1)
+    assert svg != plots.value_plot(result, layout=layout, shock=0)
+
+
 def test_tabular_results_are_bars_per_state() -> None:
     result = tabular_result()
     layout = plots.axis_layout(result)

@@ -21,7 +21,6 @@ from service import schema
 from service.schema import (
     METHOD_NAMES,
     GridModel,
-    ProblemDocument,
     TabularModel,
     canonical_json,
     document_hash,
@@ -549,21 +548,27 @@ def test_many_bad_rows_are_counted_not_listed() -> None:
 # Hostile documents ------------------------------------------------------------
 
 
-def test_deeply_nested_lists_are_refused_without_recursion() -> None:
-    nested: Any = [1.0]
-    for _ in range(100_000):
-        nested = [nested]
-    errors = faults(edit(machine_shop(), "model.reward", nested))
-    assert len(errors) == 1 and "nested more than 64 levels deep" in errors[0]["message"]
-    assert errors[0]["path"].startswith("model.reward[0][0]")
+def test_a_flood_of_unknown_keys_is_listed_up_to_the_cap() -> None:
+    document = plant()
+    for part in (document, document["solver"], document["model"]["hints"]):
+        part.update({f"key{i}": i for i in range(900)})
+    errors = faults(document)
+    assert len(errors) == schema.MAX_REPORTED + 1
+    assert all("unknown key `key" in e["message"] for e in errors[:-1])
+    assert errors[-1] == {"path": "", "message": "and 2,600 more faults"}
 
 
-def test_deeply_nested_objects_under_an_unknown_key_are_refused() -> None:
-    nested: Any = {}
-    for _ in range(100_000):
-        nested = {"a": nested}
-    errors = faults(edit(plant(), "junk", nested))
-    assert len(errors) == 1 and errors[0]["path"].startswith("junk.a.a.a") and "nested more than" in errors[0]["message"]
+def test_objects_with_too_many_keys_are_refused_before_validation() -> None:
+    document = edit(plant(), "model.params", {f"p{i}": "not a number" for i in range(100_000)})
+    assert faults(document) == [{"path": "model.params", "message": "has 100,000 keys; no object in a problem document needs more than 1,000"}]
+
+
+def test_a_million_bad_labels_give_one_fault() -> None:
+    document = edit(machine_shop(), "model.states", [1] * 1_000_000)
+    assert faults(document) == [{"path": "model.states[0]", "message": "expected a string, got the number 1"}]
+    document = edit(machine_shop(), "model.states", ["idle"] * 1_000_000)
+    errors = faults(document)
+    assert errors[10] == {"path": "model.states", "message": "and 999,989 more duplicate labels"}
 
 
 def test_huge_grids_are_validated_without_being_built(monkeypatch: pytest.MonkeyPatch) -> None:

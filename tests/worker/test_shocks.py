@@ -98,7 +98,10 @@ def _tauchen_reference(rho, sigma, n, width, mean):
     return y, P
 
 
-@pytest.mark.parametrize(("rho", "sigma", "n", "width", "mean"), [(0.9, 0.02, 7, 3.0, 0.0), (-0.4, 0.5, 5, 2.0, 2.0), (0.0, 1.0, 2, 1.0, 0.0), (0.99, 0.1, 31, 4.0, -1.0)])
+@pytest.mark.parametrize(
+    ("rho", "sigma", "n", "width", "mean"),
+    [(0.9, 0.02, 7, 3.0, 0.0), (-0.4, 0.5, 5, 2.0, 2.0), (0.0, 1.0, 2, 1.0, 0.0), (0.99, 0.1, 31, 4.0, -1.0)],
+)
 def test_tauchen_matches_the_published_formula(rho, sigma, n, width, mean):
     y, P = tauchen(rho, sigma, n, width, mean)
     y_ref, P_ref = _tauchen_reference(rho, sigma, n, width, mean)
@@ -262,13 +265,44 @@ def test_stationary_distribution_matches_scipy_eigenvector():
     np.testing.assert_allclose(stationary_distribution(P), reference / reference.sum(), rtol=1e-10)
 
 
-def test_stationary_distribution_of_a_large_sparse_chain():
+def test_stationary_distribution_of_a_fast_mixing_sparse_chain():
     rng = np.random.default_rng(11)
-    n = 20_000
+    n = 5_000
     rows = np.repeat(np.arange(n), 3)
     cols = np.concatenate([np.arange(n)[:, None], rng.integers(0, n, (n, 2))], axis=1).reshape(-1)
     weights = rng.uniform(0.1, 1.0, (n, 3))
     P = sp.csr_matrix(((weights / weights.sum(axis=1, keepdims=True)).reshape(-1), (rows, cols)), shape=(n, n))
     pi = stationary_distribution(P)
     assert pi.min() >= 0 and pi.sum() == pytest.approx(1.0, abs=1e-12)
+    assert np.abs(P.T @ pi - pi).sum() < 1e-13
+
+
+def test_stationary_distribution_of_a_slow_mixing_sparse_chain_matches_dense():
+    # A persistent shock times a sticky endogenous index: too slow for power
+    # steps, so the sparse direct solve runs; the dense solve is the reference.
+    _, Pz = rouwenhorst(0.995, 0.1, 7)
+    stay = np.array([[0.999, 0.001], [0.002, 0.998]])
+    P = sp.kron(sp.kron(sp.csr_matrix(stay), sp.csr_matrix(Pz)), sp.csr_matrix(rouwenhorst(0.99, 0.1, 30)[1])).tocsr()
+    pi = stationary_distribution(P)
     assert np.abs(P.T @ pi - pi).sum() < 1e-12
+    np.testing.assert_allclose(pi, stationary_distribution(P.toarray()), rtol=1e-8, atol=1e-15)
+
+
+@pytest.mark.parametrize("as_sparse", [False, True])
+def test_stationary_distribution_with_probabilities_spanning_many_decades(as_sparse):
+    # Birth-death chain with strong upward drift: detailed balance gives
+    # pi[i+1] / pi[i] = up / down, so pi[0] / pi[-1] = (1/99)**59, about 1e-118.
+    n, up, down = 60, 0.99, 0.01
+    P = np.zeros((n, n))
+    for i in range(n):
+        P[i, min(i + 1, n - 1)] += up
+        P[i, max(i - 1, 0)] += down
+    expected = (up / down) ** np.arange(n, dtype=np.float64)
+    expected /= expected.sum()
+    pi = stationary_distribution(sp.csr_matrix(P) if as_sparse else P)
+    if as_sparse:
+        # Fast mixing, so power steps answer: accurate in total variation.
+        assert np.abs(pi - expected).sum() < 1e-13
+    else:
+        # The direct solve, pinned at a likely state, keeps even 1e-118 accurate.
+        np.testing.assert_allclose(pi, expected, rtol=1e-9, atol=1e-300)

@@ -1,0 +1,432 @@
+"""The dashboard in a real browser: headless Chromium driven over the DevTools protocol.
+
+A live API and worker (subprocesses on the private Redis) serve the pages; the
+browser loads them, and every test asserts that no request failed and nothing
+was logged as an error.  Screenshots go to ``tests/screenshots/`` (git-ignored).
+The tests are skipped only when no Chromium is installed
+(``apt-get install -y chromium``).
+"""
+
+from __future__ import annotations
+
+import base64
+import contextlib
+import json
+import shutil
+import subprocess
+import tempfile
+import time
+from collections.abc import Callable, Iterator
+from pathlib import Path
+from typing import Any
+
+import httpx
+import pytest
+from websockets.sync.client import connect
+
+from _live_server import LiveServer, wait_until_finished
+from service.embedded_redis import EmbeddedRedis
+from service.examples import load_example
+from service.routers.dashboard import SESSION_COOKIE
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
+SCREENSHOTS = Path(__file__).resolve().parents[1] / "screenshots"
+WAIT_S = 60.0
+"""Longest wait for a page to reach an expected state, in seconds."""
+VIEWPORT = (1280, 900)
+"""Browser window width and height in CSS pixels."""
+
+pytestmark = pytest.mark.skipif(CHROMIUM is None, reason="Chromium is not installed (apt-get install -y chromium)")
+
+
+class Browser:
+    """A headless Chromium and one DevTools websocket to it."""
+
+    def __init__(self, binary: str) -> None:
+        self.profile = tempfile.mkdtemp(prefix="fixq-chromium-")
+        self._closing = contextlib.ExitStack()
+        self.process = subprocess.Popen(
+            [binary, "--headless", "--no-sandbox", "--disable-gpu", "--disable-quic", "--no-first-run",
+             "--disable-background-networking", "--disable-component-update", "--disable-sync",
+             "--disable-default-apps", "--disable-extensions", "--mute-audio", "--hide-scrollbars",
+             f"--user-data-dir={self.profile}", "--remote-debugging-port=0",
+             f"--window-size={VIEWPORT[0]},{VIEWPORT[1]}", "about:blank"],
+            stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, start_new_session=True,
+        )  # fmt: skip
+        port_file = Path(self.profile) / "DevToolsActivePort"
+        deadline = time.monotonic() + WAIT_S
+        while not port_file.exists() or len(port_file.read_text().splitlines()) < 2:
+            if time.monotonic() > deadline or self.process.poll() is not None:
+                self.close()
+                raise RuntimeError("Chromium did not open its DevTools port")
+            time.sleep(0.05)
+        port, path = port_file.read_text().splitlines()[:2]
+        self.socket = self._closing.enter_context(connect(f"ws://127.0.0.1:{port}{path}", max_size=None, open_timeout=10))
+        self.last_id = 0
+        self.events: list[dict[str, Any]] = []
+
+    def send(self, method: str, params: dict[str, Any] | None = None, session: str | None = None) -> dict[str, Any]:
+        self.last_id += 1
+        message: dict[str, Any] = {"id": self.last_id, "method": method, "params": params or {}}
+        if session:
+            message["sessionId"] = session
+        self.socket.send(json.dumps(message))
+        deadline = time.monotonic() + WAIT_S
+        while True:
+            reply = json.loads(self.socket.recv(timeout=max(0.01, deadline - time.monotonic())))
+            if reply.get("id") == self.last_id:
+                if "error" in reply:
+                    raise RuntimeError(f"{method}: {reply['error']}")
+                return reply.get("result", {})
+            self.events.append(reply)
+
+    def pump(self, seconds: float) -> None:
+        """Collect events for ``seconds``."""
+        deadline = time.monotonic() + seconds
+        while (left := deadline - time.monotonic()) > 0:
+            try:
+                self.events.append(json.loads(self.socket.recv(timeout=left)))
+            except TimeoutError:
+                return
+
+    def close(self) -> None:
+        self._closing.close()
+        if self.process.poll() is None:
+            self.process.terminate()
+            try:
+                self.process.wait(10)
+            except subprocess.TimeoutExpired:
+                self.process.kill()
+                self.process.wait()
+        shutil.rmtree(self.profile, ignore_errors=True)
+
+
+class Tab:
+    """One page of the browser, with its console and network events."""
+
+    def __init__(self, browser: Browser) -> None:
+        self.browser = browser
+        self.target = browser.send("Target.createTarget", {"url": "about:blank"})["targetId"]
+        self.session = browser.send("Target.attachToTarget", {"targetId": self.target, "flatten": True})["sessionId"]
+        for domain in ("Page", "Runtime", "Network", "Log"):
+            self.send(f"{domain}.enable")
+        self._viewport(VIEWPORT[1])
+
+    def close(self) -> None:
+        self.browser.send("Target.closeTarget", {"targetId": self.target})
+
+    def front(self) -> None:
+        """Make this the visible tab: hidden tabs get no animation frames and slowed timers."""
+        self.send("Page.bringToFront")
+
+    def send(self, method: str, params: dict[str, Any] | None = None) -> dict[str, Any]:
+        return self.browser.send(method, params, self.session)
+
+    def _viewport(self, height: int) -> None:
+        self.send(
+            "Emulation.setDeviceMetricsOverride",
+            {"width": VIEWPORT[0], "height": height, "deviceScaleFactor": 1, "mobile": False},
+        )
+
+    def goto(self, url: str) -> None:
+        self.send("Page.navigate", {"url": url})
+
+    def evaluate(self, expression: str) -> Any:
+        reply = self.send("Runtime.evaluate", {"expression": expression, "returnByValue": True, "awaitPromise": True})
+        if "exceptionDetails" in reply:
+            raise RuntimeError(reply["exceptionDetails"].get("exception", {}).get("description", "script error"))
+        return reply["result"].get("value")
+
+    def wait_for(self, expression: str, timeout_s: float = WAIT_S) -> Any:
+        """Poll a JavaScript expression until it is truthy; its value."""
+        deadline = time.monotonic() + timeout_s
+        last_error = None
+        while time.monotonic() < deadline:
+            try:
+                value = self.evaluate(expression)
+                if value:
+                    return value
+            except RuntimeError as error:  # the page is still loading
+                last_error = error
+            self.browser.pump(0.15)
+        shot = self.screenshot("timed-out")
+        text = self.evaluate("document.body ? document.body.innerText.slice(0, 2000) : ''")
+        raise AssertionError(
+            f"timed out waiting for {expression} (last error: {last_error}); screenshot {shot}\n"
+            f"problems: {self.problems()}\npage text:\n{text}"
+        )
+
+    def mine(self, method: str) -> list[dict[str, Any]]:
+        return [e["params"] for e in self.browser.events if e.get("sessionId") == self.session and e.get("method") == method]
+
+    def problems(self) -> list[str]:
+        """Console errors, uncaught exceptions, failed requests and HTTP errors seen on this tab."""
+        found = [f"console.{p['type']}: {[a.get('value', a.get('description')) for a in p['args']]}"
+                 for p in self.mine("Runtime.consoleAPICalled") if p["type"] in ("error", "assert")]  # fmt: skip
+        found += [f"exception: {p['exceptionDetails'].get('exception', {}).get('description')}" for p in self.mine("Runtime.exceptionThrown")]
+        found += [f"log: {p['entry']['text']} {p['entry'].get('url', '')}" for p in self.mine("Log.entryAdded") if p["entry"]["level"] == "error"]
+        # A request the page itself abandons (an EventSource it closed) is "canceled", not failed.
+        found += [f"failed: {p['errorText']} ({p.get('type')})" for p in self.mine("Network.loadingFailed") if not p.get("canceled")]
+        found += [f"HTTP {p['response']['status']}: {p['response']['url']}" for p in self.mine("Network.responseReceived") if p["response"]["status"] >= 400]
+        return found
+
+    def requested(self) -> list[tuple[str, str]]:
+        return [(p["request"]["url"], p.get("type", "")) for p in self.mine("Network.requestWillBeSent")]
+
+    def screenshot(self, name: str) -> Path:
+        self.browser.pump(0.3)
+        height = int(self.send("Page.getLayoutMetrics")["cssContentSize"]["height"])
+        self._viewport(max(height, VIEWPORT[1]))
+        self.browser.pump(0.3)
+        data = self.send("Page.captureScreenshot", {"format": "png"})["data"]
+        self._viewport(VIEWPORT[1])
+        SCREENSHOTS.mkdir(parents=True, exist_ok=True)
+        path = SCREENSHOTS / f"{name}.png"
+        path.write_bytes(base64.b64decode(data))
+        return path
+
+
+@pytest.fixture(scope="module")
+def browser() -> Iterator[Browser]:
+    assert CHROMIUM is not None
+    instance = Browser(CHROMIUM)
+    try:
+        yield instance
+    finally:
+        instance.close()
+
+
+@pytest.fixture
+def new_tab(browser: Browser) -> Iterator[Callable[[], Tab]]:
+    """Open tabs (each brought to the front when opened); closed after the test."""
+    opened: list[Tab] = []
+
+    def open_tab() -> Tab:
+        tab = Tab(browser)
+        tab.front()
+        opened.append(tab)
+        return tab
+
+    yield open_tab
+    for tab in opened:
+        tab.close()
+
+
+@pytest.fixture(scope="module")
+def server(redis_server: EmbeddedRedis, tmp_path_factory: pytest.TempPathFactory) -> Iterator[LiveServer]:
+    # Database 3 of the private server: other tests empty database 0 between tests.
+    live = LiveServer(redis_server.url.rsplit("/", 1)[0] + "/3", tmp_path_factory.mktemp("dashboard"), FIXQ_AUTH="off")
+    try:
+        live.start()
+        yield live
+    finally:
+        live.stop()
+
+
+@pytest.fixture(scope="module")
+def api(server: LiveServer) -> Iterator[httpx.Client]:
+    with httpx.Client(base_url=server.url, timeout=30.0) as client:
+        page = client.get("/")
+        assert page.status_code == 200 and "text/html" in page.headers["content-type"], (
+            "GET / is not the dashboard: service.app.create_app must include service.routers.dashboard.router"
+        )
+        assert client.get("/v1/jobs/0123456789abcdef/plots").status_code == 404
+        yield client
+
+
+def submit(api: httpx.Client, document: dict[str, Any]) -> str:
+    response = api.post("/v1/jobs", json=document)
+    assert response.status_code == 202, response.text
+    return response.json()["id"]
+
+
+PLOTS_SHOWN = (
+    "!document.getElementById('pictures').classList.contains('hidden')"
+    " && ['value-plot', 'policy-plot'].every(id => { const img = document.getElementById(id);"
+    " return img.complete && img.naturalWidth > 0; })"
+)
+
+
+def chart_points(tab: Tab, series: str) -> int:
+    return tab.evaluate(
+        f"(document.querySelector('#convergence path[data-series={series}]')?.getAttribute('d') || '')"
+        ".split(/[ML]/).filter(s => s.trim()).length"
+    )
+
+
+def test_a_job_is_followed_live_from_queued_to_solved(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+    # No worker yet: the job waits in the queue while both pages are open.
+    document = load_example("household_saving")
+    job_id = submit(api, document)
+
+    listing = new_tab()
+    listing.goto(f"{server.url}/")
+    listing.wait_for(f"document.querySelector('tr[data-job=\"{job_id}\"]')?.dataset.state === 'queued'")
+    assert "refreshing" in listing.evaluate("document.getElementById('live').textContent")
+
+    page = new_tab()
+    page.goto(f"{server.url}/jobs/{job_id}")
+    page.wait_for("document.querySelector('#job-state .state')?.textContent === 'queued'")
+    assert "waiting for the first iteration" in page.evaluate("document.getElementById('convergence').textContent")
+
+    server.start_worker()
+    page.wait_for(PLOTS_SHOWN)
+    record = wait_until_finished(api, job_id)
+    assert record["state"] == "done"
+    result = api.get(f"/v1/jobs/{job_id}/result").json()
+
+    # The chart was fed by the event stream (the page never reloaded) and holds the whole log.
+    assert any(url.endswith(f"/v1/jobs/{job_id}/log") and kind == "EventSource" for url, kind in page.requested())
+    assert len(page.mine("Page.frameNavigated")) == 1
+    assert chart_points(page, "distance") == len(result["log"]) == result["iterations"]
+    assert chart_points(page, "error_bound") == len(result["log"])
+    assert page.evaluate("document.querySelector('#job-state .state').textContent") == "done"
+    notes = page.evaluate("document.getElementById('notes').textContent")
+    assert "Converged" in notes and "howard" in notes and "simulated paths" in notes
+    assert "borrowing limit" in page.evaluate("document.getElementById('warning-list').textContent")
+    links = page.evaluate("[...document.querySelectorAll('#downloads a')].map(a => a.getAttribute('href'))")
+    assert f"/v1/jobs/{job_id}/result" in links and f"/v1/jobs/{job_id}/result?format=csv" in links
+    for link in links:
+        assert api.get(link).status_code == 200, link
+    page.screenshot("job-household-saving")
+    assert page.problems() == []
+
+    # The list refreshed itself while the job was active, and stopped once nothing was.
+    listing.front()
+    listing.wait_for(f"document.querySelector('tr[data-job=\"{job_id}\"]')?.dataset.state === 'done'")
+    listing.wait_for("document.getElementById('live').textContent.startsWith('no active jobs')")
+    row = listing.evaluate(f"document.querySelector('tr[data-job=\"{job_id}\"]').innerText")
+    assert document["label"] in row and "consumption-saving" in row and "anonymous" in row
+    assert str(result["iterations"]) in row
+    listing.screenshot("job-list")
+    assert listing.problems() == []
+
+
+def test_an_example_started_from_the_list_shows_its_bars(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+    server.ensure_worker()
+    tab = new_tab()
+    tab.goto(f"{server.url}/")
+    tab.wait_for("document.querySelector('[data-example=\"machine_replacement\"] button') !== null")
+    tab.evaluate("document.querySelector('[data-example=\"machine_replacement\"] button').click()")
+    job_id = tab.wait_for("location.pathname.startsWith('/jobs/') && location.pathname.split('/')[2]")
+    tab.wait_for(PLOTS_SHOWN)
+    assert api.get(f"/v1/jobs/{job_id}").json()["label"] == load_example("machine_replacement")["label"]
+    # A tabular model: bars per state, no shock or choice pickers.
+    assert tab.evaluate("document.getElementById('choice-box').classList.contains('hidden')")
+    assert tab.evaluate("document.getElementById('value-shock-box').classList.contains('hidden')")
+    assert "/plots/policy.svg?choice=action" in tab.evaluate("document.getElementById('policy-plot').src")
+    tab.screenshot("job-machine-shop")
+    assert tab.problems() == []
+
+
+def test_two_state_models_offer_shock_and_choice_pickers(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+    server.ensure_worker()
+    job_id = submit(api, load_example("roastery_growth"))
+    assert wait_until_finished(api, job_id)["state"] == "done"
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for(PLOTS_SHOWN)
+    assert tab.evaluate("[...document.querySelectorAll('#choice option')].map(o => o.value)") == ["capacity_next", "marketing"]
+    assert tab.evaluate("[...document.querySelectorAll('#policy-shock option')].map(o => o.textContent)") == ["taste=0.8", "taste=1.2"]
+    first = tab.evaluate("document.getElementById('policy-plot').src")
+    tab.evaluate(
+        "(() => { const pick = (id, v) => { const s = document.getElementById(id); s.value = v;"
+        " s.dispatchEvent(new Event('change')); }; pick('choice', 'marketing'); pick('policy-shock', '1'); })()"
+    )
+    tab.wait_for(PLOTS_SHOWN + " && document.getElementById('policy-plot').src.includes('choice=marketing')")
+    assert tab.evaluate("document.getElementById('policy-plot').src") != first
+    assert "shock=1" in tab.evaluate("document.getElementById('policy-plot').src")
+    tab.screenshot("job-roastery-heatmaps")
+    assert tab.problems() == []
+
+
+def test_a_failed_job_says_why(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+    server.ensure_worker()
+    # Valid at the door, but no state has an allowed choice: only compiling the model shows it.
+    document = load_example("household_saving")
+    document["model"]["feasible"] = ["consumption > 50"]
+    job_id = submit(api, document)
+    assert wait_until_finished(api, job_id)["state"] == "failed"
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for("!document.getElementById('failure').classList.contains('hidden')")
+    assert tab.evaluate("document.getElementById('failure-list').textContent").strip()
+    assert tab.evaluate("document.getElementById('pictures').classList.contains('hidden')")
+    tab.screenshot("job-failed")
+    assert tab.problems() == []
+
+
+def test_the_pages_load_nothing_from_outside(server: LiveServer, new_tab: Callable[[], Tab]) -> None:
+    tab = new_tab()
+    tab.goto(f"{server.url}/")
+    tab.wait_for("document.querySelectorAll('#examples .example').length > 0")
+    urls = [url for url, _ in tab.requested()]
+    assert urls and all(url.startswith(server.url) or url.startswith("data:") for url in urls), urls
+    assert tab.problems() == []
+
+
+@pytest.fixture(scope="module")
+def guarded_server(redis_server: EmbeddedRedis, tmp_path_factory: pytest.TempPathFactory) -> Iterator[LiveServer]:
+    live = LiveServer(redis_server.url.rsplit("/", 1)[0] + "/4", tmp_path_factory.mktemp("guarded"), FIXQ_AUTH="on")
+    try:
+        live.start()
+        yield live
+    finally:
+        live.stop()
+
+
+def test_with_auth_on_the_dashboard_asks_for_a_key_and_refuses_a_wrong_one(
+    guarded_server: LiveServer, new_tab: Callable[[], Tab]
+) -> None:
+    tab = new_tab()
+    tab.goto(f"{guarded_server.url}/jobs/0123456789abcdef")
+    tab.wait_for("!document.getElementById('signin').classList.contains('hidden')")
+    assert tab.evaluate("document.getElementById('content').classList.contains('hidden')")
+    # Nothing but the page itself and the session check was asked for: no 401s in the console.
+    assert tab.problems() == []
+    tab.evaluate(
+        "document.querySelector('#signin input[name=key]').value = 'not-a-real-key';"
+        " document.querySelector('#signin form').submit()"
+    )
+    tab.wait_for("location.search.includes('signin=failed')")
+    tab.wait_for("!document.querySelector('#signin .problem').classList.contains('hidden')")
+    assert tab.evaluate("location.pathname") == "/jobs/0123456789abcdef"
+    assert "not-a-real-key" not in tab.evaluate("location.href")
+    assert not [c for c in tab.send("Network.getCookies", {"urls": [guarded_server.url]})["cookies"] if c["name"] == SESSION_COOKIE]
+    tab.screenshot("signin-refused")
+
+
+def test_the_session_endpoints_keep_the_key_out_of_urls(guarded_server: LiveServer) -> None:
+    with httpx.Client(base_url=guarded_server.url, follow_redirects=False) as client:
+        assert client.get("/ui/session").json() == {"auth": True, "signed_in": False, "owner": None}
+        refused = client.post("/ui/session", data={"key": "wrong", "next": "/jobs/0123456789abcdef"})
+        assert refused.status_code == 303
+        assert refused.headers["location"] == "/jobs/0123456789abcdef?signin=failed"
+        assert SESSION_COOKIE not in refused.cookies
+        # Only local paths are followed after signing in (no open redirect).
+        assert client.post("/ui/session", data={"key": "x", "next": "https://elsewhere.test/"}).headers["location"] == "/?signin=failed"
+        # A browser's cross-site post is refused outright.
+        cross = client.post("/ui/session", data={"key": "x"}, headers={"Sec-Fetch-Site": "cross-site"})
+        assert cross.status_code == 403
+        out = client.post("/ui/logout")
+        assert out.status_code == 303
+        assert f"{SESSION_COOKIE}=" in out.headers["set-cookie"] and "Max-Age=0" in out.headers["set-cookie"]
+
+
+def test_a_running_job_can_be_canceled_from_its_page(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+    server.ensure_worker()
+    # A tolerance no float64 arithmetic reaches: the solve runs until it is stopped.
+    document = load_example("machine_replacement")
+    document["solver"] = {"method": "value_iteration", "tolerance": 1e-300, "max_iterations": 10_000_000}
+    job_id = submit(api, document)
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for("document.querySelector('#job-state .state')?.textContent === 'running'")
+    tab.wait_for("document.querySelector('#convergence path[data-series=distance]') !== null")
+    tab.evaluate("document.getElementById('cancel').click()")
+    tab.wait_for("document.querySelector('#job-state .state')?.textContent === 'canceled'")
+    assert api.get(f"/v1/jobs/{job_id}").json()["state"] == "canceled"
+    assert tab.evaluate("document.getElementById('cancel').classList.contains('hidden')")
+    assert "canceled after" in tab.evaluate("document.getElementById('notes').textContent")
+    tab.screenshot("job-canceled")
+    assert tab.problems() == []
