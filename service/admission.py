@@ -23,18 +23,22 @@ from worker.estimate import estimate
 __all__ = ["Admitted", "admit"]
 
 _MIB = 2**20
-FEASIBILITY_CHECK = ("worker.feasibility", "check_feasible")
-"""Module and function of the optional cheap feasibility check, ``check(doc) -> None`` raising ``InfeasibleModel``."""
+FEASIBILITY_CHECK = ("worker.feasibility", "check_feasibility")
+"""Module and function of the cheap grid feasibility check, ``check(doc, budget_s=...) -> dict``
+raising ``InfeasibleModel``; used when that module exists.  It must not import numba."""
+FEASIBILITY_BUDGET_S = 0.5
+"""Seconds the door spends proving every state has an allowed choice; past it the worker decides."""
 
 
 class Admitted:
     """A document that passed the door: the validated form and its size estimate."""
 
-    __slots__ = ("document", "estimate")
+    __slots__ = ("document", "estimate", "feasibility")
 
-    def __init__(self, document: ProblemDocument, size: dict[str, Any]) -> None:
+    def __init__(self, document: ProblemDocument, size: dict[str, Any], feasibility: dict[str, Any] | None) -> None:
         self.document = document
         self.estimate = size
+        self.feasibility = feasibility
 
 
 def admit(
@@ -60,15 +64,16 @@ def admit(
             "use coarser grids or fewer choices",
             estimate=size,
         )
-    check = _feasibility_check()
+    feasibility = None
+    check = _feasibility_check() if document.model.kind == "grid" else None
     if check is not None:
-        check(document)
+        feasibility = check(document, budget_s=FEASIBILITY_BUDGET_S)
     if store is not None:
         _check_warm_start(document, store, may_see or (lambda record: True))
-    return Admitted(document, size)
+    return Admitted(document, size, feasibility)
 
 
-def _feasibility_check() -> Callable[[ProblemDocument], None] | None:
+def _feasibility_check() -> Callable[..., dict[str, Any]] | None:
     module_name, function = FEASIBILITY_CHECK
     try:
         module = importlib.import_module(module_name)

@@ -265,6 +265,7 @@ def _cmd_api(args: argparse.Namespace) -> int:
     from service.settings import get_settings
 
     settings = get_settings()
+    _require_redis_url(settings.redis_url, "api")
     uvicorn.run(
         "service.app:create_app",
         factory=True,
@@ -278,10 +279,20 @@ def _cmd_api(args: argparse.Namespace) -> int:
 
 
 def _cmd_worker(args: argparse.Namespace) -> int:
+    from service.settings import get_settings
+
+    _require_redis_url(get_settings().redis_url, "worker")
     from worker.task import run_worker
 
     run_worker(burst=args.burst)
     return EXIT_OK
+
+
+def _require_redis_url(url: str | None, command: str) -> None:
+    if not url:
+        _usage_error(
+            f"FIXQ_REDIS_URL is not set: `fixq {command}` needs a Redis server (`fixq run` starts one of its own)"
+        )
 
 
 def _is_loopback(host: str) -> bool:

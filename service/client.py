@@ -160,7 +160,8 @@ class FixqClient:
 
         ``on_progress(entry)`` is called with each convergence-log entry
         (``iteration``, ``distance``, ``error_bound``...) as it is made.  A
-        broken stream (say, the API restarted) is re-opened where it left off.
+        broken stream (the API restarted, Redis answered 503 for a while) is
+        re-opened where it left off.
         """
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         last_iteration: int | None = None
@@ -179,9 +180,16 @@ class FixqClient:
                         break
             except (httpx.TransportError, httpx.StreamError):
                 pass
+            except APIError as exc:
+                if exc.status != 503:
+                    raise
             try:
                 record = self.status(job_id)
             except httpx.TransportError:
+                record = {"state": None}
+            except APIError as exc:
+                if exc.status != 503:
+                    raise
                 record = {"state": None}
             if record.get("state") in TERMINAL_STATES:
                 return record

@@ -148,7 +148,16 @@ def convergence_plot(
     ):
         y = _positive([e.get(key) for e in log])
         if np.isfinite(y).any():
-            ax.plot(iterations, y, color=colour, lw=1.8, marker="o" if len(log) <= 40 else None, ms=3.5, label=name, gid=f"series-{key}")
+            ax.plot(
+                iterations,
+                y,
+                color=colour,
+                lw=1.8,
+                marker="o" if len(log) <= 40 else None,
+                ms=3.5,
+                label=name,
+                gid=f"series-{key}",
+            )
     if tolerance is not None and tolerance > 0:
         ax.axhline(tolerance, color=INK, lw=1.0, ls=(0, (4, 3)), label=f"tolerance {tolerance:g}")
     if not log:
@@ -328,7 +337,7 @@ def _tabular_policy(
     # Order actions by their index in the model when known, else by first use.
     actions: list[str] = []
     if index is not None and len(index) == len(chosen):
-        by_index = sorted({(int(i), a) for i, a in zip(index, chosen)})
+        by_index = sorted({(int(i), a) for i, a in zip(index, chosen, strict=True)})
         actions = [a for _, a in by_index]
     for a in chosen:
         if a not in actions:
@@ -402,7 +411,12 @@ def _finish(fig: Figure, ax: Any, title: str | None, fmt: Format, *, grid: bool 
 
 
 def _bad_query(parameter: str, message: str) -> Problem:
-    return Problem(400, "invalid-request", f"query.{parameter}: {message}", errors=[{"path": f"query.{parameter}", "message": message}])
+    return Problem(
+        400,
+        "invalid-request",
+        f"query.{parameter}: {message}",
+        errors=[{"path": f"query.{parameter}", "message": message}],
+    )
 
 
 def _positive(values: Sequence[Any]) -> np.ndarray:

@@ -55,6 +55,7 @@ __all__ = [
     "Reaper",
     "enqueue_execution",
     "execution_id",
+    "ordered_queue_names",
     "queue_key",
     "queue_name",
     "reap",
@@ -179,7 +180,7 @@ def _rescue_lost(store: JobStore, report: dict[str, list[str]]) -> None:
         rescued = store.rescue_lost(job_id, rq_job_id)
         if rescued is not None:
             new_rq_job_id, priority = rescued
-            logger.warning("job %s was queued in no RQ queue (%s); enqueued again as %s", job_id, rq_job_id, new_rq_job_id)
+            logger.warning("job %s was in no RQ queue (%s); enqueued again as %s", job_id, rq_job_id, new_rq_job_id)
             _enqueue_quietly(store, job_id, new_rq_job_id, priority)
             report["rescued"].append(job_id)
 
@@ -211,10 +212,12 @@ class Reaper:
         self._thread = threading.Thread(target=self._run, name="fixq-reaper", daemon=True)
 
     def start(self) -> Reaper:
+        """Start the thread; its first pass runs at once."""
         self._thread.start()
         return self
 
     def stop(self, timeout_s: float = 5.0) -> None:
+        """Ask the thread to end and wait up to ``timeout_s`` for it."""
         self._stopped.set()
         if self._thread.is_alive():
             self._thread.join(timeout_s)

@@ -32,7 +32,9 @@ class Settings(BaseSettings):
     embedded_redis_port: int | None = Field(
         None, ge=1, le=65535, description="Loopback port of the embedded Redis server; None picks a free one."
     )
-    result_ttl_s: int = Field(604_800, gt=0, description="Lifetime of a stored result and its log, in seconds (7 days).")
+    result_ttl_s: int = Field(
+        604_800, gt=0, description="Lifetime of a stored result and its log, in seconds (7 days)."
+    )
     checkpoint_ttl_s: int = Field(
         172_800, gt=0, description="Lifetime of a checkpoint after its last save, in seconds (2 days)."
     )

@@ -83,8 +83,8 @@ EDGE_WARNING_SHARE = 0.01
 """Share of states at the lowest or highest point of a choice grid above which the diagnostics warn."""
 SCAN_MAX_PAIRS = 20_000_000
 """On the fly, (state, choice) pairs up to which the diagnostics count clamped pairs over all choices."""
-FEASIBILITY_STRIDE = 64
-"""The feasibility check samples every 64th choice first, then the ones in between (count)."""
+FEASIBILITY_MAX_PASS = 4096
+"""Most choices the feasibility check tries in one pass over the undecided states (count)."""
 _LISTED_STATES = 3
 """States named in an infeasibility error before the rest are counted."""
 
@@ -283,24 +283,43 @@ def _infeasible(data: _ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -
     return InfeasibleModel(errors, states=int(stuck.size))
 
 
+def _choice_order(n_choices: int) -> np.ndarray:
+    """Every flat choice once, coarse to fine: both ends, then midpoints of ever finer halvings."""
+    seen = np.zeros(n_choices, dtype=bool)
+    ends = np.unique(np.array([0, n_choices - 1], dtype=np.int64))
+    seen[ends] = True
+    parts = [ends]
+    level = 0
+    while (1 << level) < 2 * n_choices:
+        points = ((2 * np.arange(1 << level, dtype=np.int64) + 1) * n_choices) >> (level + 1)
+        points = np.unique(points[~seen[points]])
+        seen[points] = True
+        parts.append(points)
+        level += 1
+    parts.append(np.flatnonzero(~seen))
+    return np.concatenate(parts)
+
+
 def _feasibility_scan(data: _ModelData, budget_s: float | None) -> dict[str, Any]:
     """Find, per state, one allowed choice; raise :class:`InfeasibleModel` for states with none.
 
-    Choices are visited in passes over residue classes modulo
-    ``FEASIBILITY_STRIDE`` (0, 32, 16, 48, …): the first pass already meets
-    any allowed stretch longer than the stride, and a state leaves the scan
-    as soon as it has an allowed choice.
+    Choices are tried coarse to fine (:func:`_choice_order`) in passes of
+    doubling size, and a state leaves the scan at its first allowed choice:
+    where allowed choices form wide stretches (the usual case) a state costs
+    one or two evaluations, and the worst case is one evaluation per pair.
     """
     started = time.perf_counter()
     n, n_choices = data.n, data.n_choices
-    stride = min(FEASIBILITY_STRIDE, n_choices)
-    order = sorted(range(stride), key=lambda r: int(f"{r:06b}"[::-1], 2) if stride == FEASIBILITY_STRIDE else r)
+    order = _choice_order(n_choices)
     active = np.arange(n, dtype=np.int64)
     any_feasible = np.zeros(n, dtype=bool)
     evaluated = 0
-    for residue in order:
-        columns = np.arange(residue, n_choices, stride, dtype=np.int64)
-        rows_per_chunk = max(1, CHUNK_ELEMENTS // max(columns.size, 1))
+    position, width = 0, 1
+    while position < n_choices and active.size:
+        columns = order[position : position + width]
+        position += columns.size
+        width = min(2 * width, FEASIBILITY_MAX_PASS)
+        rows_per_chunk = max(1, CHUNK_ELEMENTS // columns.size)
         resolved = np.zeros(active.size, dtype=bool)
         for start in range(0, active.size, rows_per_chunk):
             rows = active[start : start + rows_per_chunk]
@@ -308,13 +327,11 @@ def _feasibility_scan(data: _ModelData, budget_s: float | None) -> dict[str, Any
             resolved[start : start + rows.size] = block.allowed.any(axis=1)
             any_feasible[rows] |= block.feasible.any(axis=1)
             evaluated += rows.size * columns.size
-            if budget_s is not None and time.perf_counter() - started > budget_s:
-                unresolved = active.size - int(resolved[: start + rows.size].sum())
+            unresolved = active.size - int(resolved[: start + rows.size].sum())
+            if unresolved and budget_s is not None and time.perf_counter() - started > budget_s:
                 return {"complete": False, "states": n, "unresolved": unresolved, "pairs_evaluated": evaluated,
                         "seconds": time.perf_counter() - started}
         active = active[~resolved]
-        if not active.size:
-            break
     if active.size:
         raise _infeasible(data, active, any_feasible)
     return {"complete": True, "states": n, "unresolved": 0, "pairs_evaluated": evaluated,

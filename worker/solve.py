@@ -10,6 +10,8 @@ DESIGN section 5 from the one :class:`~worker.solvers.SolveOutcome`.
 
 from __future__ import annotations
 
+import hashlib
+import json
 import os
 from typing import Any, Callable
 
@@ -166,10 +168,33 @@ def solve(
 
 
 def _fingerprint(doc: Any) -> str:
-    """The checkpoint fingerprint: ``service.schema.document_hash`` of the validated document."""
-    from service.schema import document_hash
+    """A hash of the validated problem, for checkpoints (hex BLAKE2b, 32 bytes).
 
-    return str(document_hash(doc))
+    The document's fields (submission keys such as ``label`` left out, like
+    ``service.schema.document_hash``) are hashed as JSON with every array
+    replaced by its shape and dtype, and the arrays' raw bytes are fed to
+    the hash directly: re-encoding a large packed array, as the canonical
+    document hash does, would cost seconds and gigabytes on big tabular
+    problems, for no gain here.
+    """
+    from service.schema import SUBMISSION_KEYS
+
+    digest = hashlib.blake2b(digest_size=32)
+
+    def skeleton(node: Any) -> Any:
+        if isinstance(node, np.ndarray):
+            array = np.ascontiguousarray(node)
+            digest.update(memoryview(array).cast("B"))
+            return {"array": list(array.shape), "dtype": array.dtype.str}
+        if isinstance(node, dict):
+            return {str(key): skeleton(value) for key, value in node.items()}
+        if isinstance(node, (list, tuple)):
+            return [skeleton(item) for item in node]
+        return node
+
+    outline = skeleton(doc.model_dump(exclude=set(SUBMISSION_KEYS)))
+    digest.update(json.dumps(outline, default=repr).encode())
+    return digest.hexdigest()
 
 
 def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, Any] | None) -> np.ndarray:

@@ -91,7 +91,17 @@ Entry = dict[str, Any]
 
 
 class Checkpoint(Protocol):
-    """Where a solve keeps its state (see DEVELOPERS.md, "The solve front door")."""
+    """Where a solve keeps its state (see DEVELOPERS.md, "The solve front door").
+
+    A saved state holds ``fingerprint`` (str), ``method`` (str), ``value``
+    ((n,) float64, the iterate), ``iteration``, ``evaluation_steps`` (ints),
+    ``log`` (list of entries, ``iteration`` of them), ``policy`` ((n,) int64,
+    the last greedy policy, or None), ``sweeps_done`` (int: Howard sweeps of
+    the current phase already applied to ``value``; None at a phase
+    boundary), ``restricted`` (bool: hints still in use), ``warnings`` (list
+    of str) and ``seconds`` (float, solving time so far).  A state whose
+    fingerprint, method or value shape does not match is ignored.
+    """
 
     def load(self) -> dict[str, Any] | None: ...
 
@@ -366,7 +376,7 @@ class _Run:
         broken = int(np.count_nonzero(step.tv > restricted_tv + slack))
         if broken:
             self.warnings.append(
-                f"the `{_hint_names(self.problem)}` hint did not hold for this model: {broken} states found "
+                f"the {_hint_names(self.problem)} hint did not hold for this model: {broken} states found "
                 "better choices outside the hinted search; re-solved without hints"
             )
 
@@ -398,8 +408,8 @@ class _Run:
 
 def _hint_names(problem: CompiledProblem) -> str:
     hints = getattr(problem, "hints", None)
-    names = [name for name in ("monotone", "concave") if getattr(hints, name, False)]
-    return "/".join(names) if names else "monotone/concave"
+    names = [name for name in ("monotone", "concave") if getattr(hints, name, False)] or ["monotone", "concave"]
+    return "/".join(f"`{name}`" for name in names)
 
 
 Evaluate = Callable[[_Run, np.ndarray, int], None]
@@ -419,6 +429,16 @@ def _iterate(
     "policy_changes" (states whose greedy choice differs from the previous
     step's; the first step counts all), "seconds" (cumulative solving time)}``
     and passes it to ``on_progress``.
+
+    ``time_limit_s`` counts solving seconds across resumes.  It is checked
+    after each improvement step and between sweeps; a sweep phase cut short
+    by it is followed by one more improvement step, so the returned value
+    always carries the bound of its own step.  ``should_stop`` is polled
+    before every improvement step and at most every ``STOP_POLL_S`` between
+    sweeps.  Checkpoints are saved at most every ``checkpoint_s`` solving
+    seconds, after an evaluation or between sweeps (with ``sweeps_done``, so
+    a resumed solve finishes the interrupted phase and then repeats exactly
+    what the interrupted one would have done).
 
     With hints active, steps are restricted until one meets the stopping rule
     (or the solve must stop); then one unrestricted step at the same ``v``
@@ -474,6 +494,11 @@ def _options(
     )
 
 
+def _meets(tolerance: float) -> Accept:
+    """The plain stopping rule: the step's certified bound is within ``tolerance``."""
+    return lambda step: step.error_bound <= tolerance
+
+
 def _no_evaluation(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
     """Value iteration: ``v ← Tv`` already happened."""
 
@@ -527,8 +552,7 @@ def _value_iteration(
     options = _options(
         tolerance, max_iterations, time_limit_s, checkpoint_s, 0, on_progress, checkpoint, should_stop, fingerprint
     )
-    return _iterate(problem, initial, options, "value_iteration", _no_evaluation,
-                    lambda step: step.error_bound <= options.tolerance)
+    return _iterate(problem, initial, options, "value_iteration", _no_evaluation, _meets(options.tolerance))
 
 
 def _howard(
@@ -550,7 +574,7 @@ def _howard(
         tolerance, max_iterations, time_limit_s, checkpoint_s, evaluation_steps, on_progress, checkpoint,
         should_stop, fingerprint,
     )
-    return _iterate(problem, initial, options, "howard", _sweeps, lambda step: step.error_bound <= options.tolerance)
+    return _iterate(problem, initial, options, "howard", _sweeps, _meets(options.tolerance))
 
 
 def _policy_iteration(

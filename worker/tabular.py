@@ -74,7 +74,6 @@ class TabularProblem:
             matrix = sp.csr_matrix(transition)
             if matrix.shape != (n_states * n_actions, n_states):
                 raise ValueError(f"sparse transition must be {(n_states * n_actions, n_states)}, got {matrix.shape}")
-        matrix.sum_duplicates()
         if not allowed.all():
             row_allowed = np.repeat(allowed.ravel(), np.diff(matrix.indptr))
             matrix.data[~row_allowed] = 0.0
@@ -197,8 +196,14 @@ def _entries_to_csr(entries: np.ndarray, n_states: int, n_actions: int) -> sp.cs
     """(N, 4) ``(s, a, s_next, p)`` rows → (S·A, S) CSR; duplicates are summed.
 
     Row and column indices are formed straight from the float columns (exact
-    below 2**53) in the narrowest index type, and scipy's counting-sort
-    conversion from COO does the rest: no Python loop over entries.
+    below 2**53) in the narrowest index type.  Entries already in row order —
+    the usual way a client writes them — become the CSR arrays as they are
+    (row pointers from a ``bincount``); others go through scipy's
+    counting-sort conversion from COO.  No Python loop over entries.
+    Repeated (s, a, s_next) entries may stay as separate CSR entries: every
+    use of the matrix (products, row selection, row sums, sampling) adds
+    them up, and a negative one (which only a sum can make valid) forces an
+    explicit summation.
     """
     shape = (n_states * n_actions, n_states)
     if entries.size == 0:
@@ -206,8 +211,15 @@ def _entries_to_csr(entries: np.ndarray, n_states: int, n_actions: int) -> sp.cs
     index_type = np.int32 if max(shape[0], entries.shape[0]) < 2**31 - 1 else np.int64
     row = (entries[:, 0] * n_actions + entries[:, 1]).astype(index_type)
     column = entries[:, 2].astype(index_type)
-    matrix = sp.coo_matrix((np.ascontiguousarray(entries[:, 3]), (row, column)), shape=shape).tocsr()
-    matrix.sum_duplicates()
+    data = np.ascontiguousarray(entries[:, 3])
+    if np.all(row[1:] >= row[:-1]):
+        indptr = np.zeros(shape[0] + 1, dtype=index_type)
+        np.cumsum(np.bincount(row, minlength=shape[0]), out=indptr[1:])
+        matrix = sp.csr_matrix((data, column, indptr), shape=shape)
+    else:
+        matrix = sp.coo_matrix((data, (row, column)), shape=shape).tocsr()
+    if not np.all(matrix.data >= 0):
+        matrix.sum_duplicates()
     return matrix
 
 

@@ -241,7 +241,9 @@ class _Execution:
             last = entries[-1]
             progress = {key: last.get(key) for key in ("iteration", "distance", "error_bound", "seconds")}
         try:
-            written = self.store.write_log(self.job_id, self.token, entries, progress=progress, trim_from=self._trim_from)
+            written = self.store.write_log(
+                self.job_id, self.token, entries, progress=progress, trim_from=self._trim_from
+            )
         except redis.RedisError:
             logger.warning("job %s: could not write progress", self.job_id, exc_info=True)
             self._buffer = entries + self._buffer

@@ -13,12 +13,12 @@
 
 from __future__ import annotations
 
+from types import ModuleType
 from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Query
 from fastapi.responses import Response
 
-from service import plots
 from service.deps import Owner, StoreDep
 from service.problems import Problem
 from service.store import JobStore
@@ -34,11 +34,13 @@ DONE_MAX_AGE_S = 3600
 
 Picture = Literal["convergence", "value", "policy"]
 Format = Literal["svg", "png"]
+MEDIA_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
 
 
 @router.get("/{job_id}/plots")
 def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
     """What the value and policy pictures of a solved job can show, and its diagnostics."""
+    plots = _plots()
     job = readable_job(store, owner, job_id)
     result = _result(store, job)
     document = store.get_document(job_id)
@@ -53,7 +55,10 @@ def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
         "shock_labels": shock_labels if layout.shocks else [],
         "choices": list(result.get("policy") or {}),
         "tolerance": ((document or {}).get("solver") or {}).get("tolerance"),
-        **{key: result.get(key) for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "seconds")},
+        **{
+            key: result.get(key)
+            for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "seconds")
+        },
         "diagnostics": result.get("diagnostics") or {},
         "stationary": _without(result.get("stationary"), "distribution"),
         "simulation": _without(result.get("simulation"), "first_path"),
@@ -71,12 +76,15 @@ def plot(
     fmt: Format,
     store: StoreDep,
     owner: Owner,
-    choice: Annotated[str | None, Query(description="Policy pictures: the choice to draw (default: the first).")] = None,
+    choice: Annotated[
+        str | None, Query(description="Policy pictures: the choice to draw (default: the first).")
+    ] = None,
     shock: Annotated[
         int | None, Query(ge=0, description="Heatmaps: the flat index of the shock state to draw (default 0).")
     ] = None,
 ) -> Response:
     """A picture of a job: its convergence log, value function or policy, as SVG or PNG."""
+    plots = _plots()
     job = readable_job(store, owner, job_id)
     title = job.get("label") or None
     if picture == "convergence":
@@ -84,7 +92,9 @@ def plot(
         document = store.get_document(job_id) or {}
         tolerance = (document.get("solver") or {}).get("tolerance")
         body = plots.convergence_plot(log, tolerance=tolerance, title=title, fmt=fmt)
-        cache = f"private, max-age={DONE_MAX_AGE_S}" if job.get("state") in ("done", "failed", "canceled") else "no-store"
+        cache = (
+            f"private, max-age={DONE_MAX_AGE_S}" if job.get("state") in ("done", "failed", "canceled") else "no-store"
+        )
     else:
         result = _result(store, job)
         layout = plots.axis_layout(result, store.get_document(job_id))
@@ -93,7 +103,15 @@ def plot(
         else:
             body = plots.policy_plot(result, layout=layout, choice=choice, shock=shock, title=title, fmt=fmt)
         cache = f"private, max-age={DONE_MAX_AGE_S}"
-    return Response(body, media_type=plots.MEDIA_TYPES[fmt], headers={"Cache-Control": cache})
+    return Response(body, media_type=MEDIA_TYPES[fmt], headers={"Cache-Control": cache})
+
+
+def _plots() -> ModuleType:
+    # matplotlib takes about a second to import: the API loads it with the first
+    # picture asked for, not at start-up.
+    from service import plots
+
+    return plots
 
 
 def readable_job(store: JobStore, owner: Any, job_id: str) -> dict[str, Any]:
@@ -110,7 +128,9 @@ def _result(store: JobStore, job: dict[str, Any]) -> dict[str, Any]:
         state = job.get("state")
         if state == "done":
             raise Problem(404, "not-found", "the result of this job has expired and is no longer stored")
-        raise Problem(409, "not-ready", f"the job is {state}: value and policy pictures exist once it is done", state=state)
+        raise Problem(
+            409, "not-ready", f"the job is {state}: value and policy pictures exist once it is done", state=state
+        )
     return result
 
 

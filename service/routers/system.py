@@ -24,7 +24,12 @@ router = APIRouter()
 def check_document(raw: JsonObject, owner: Owner, store: StoreDep, settings: SettingsDep) -> dict[str, Any]:
     """Validate a document and estimate its size, memory and time; queues nothing."""
     admitted = admit(raw, settings, store=store, may_see=owner.may_see)
-    return {"valid": True, "estimate": admitted.estimate, "document_hash": document_hash(admitted.document)}
+    return {
+        "valid": True,
+        "estimate": admitted.estimate,
+        "feasibility": admitted.feasibility,
+        "document_hash": document_hash(admitted.document),
+    }
 
 
 @router.get("/v1/schema", tags=["documents"])

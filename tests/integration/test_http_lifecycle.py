@@ -16,6 +16,7 @@ import os
 import signal
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -25,6 +26,7 @@ import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
 
+from service.client import FixqClient
 from service.embedded_redis import EmbeddedRedis, free_port
 
 ROOT = Path(__file__).resolve().parents[2]
@@ -251,10 +253,20 @@ def test_an_api_restart_does_not_disturb_a_running_job(service: Service) -> None
     job_id = record["id"]
     wait_for(lambda: (service.job(job_id).get("progress") or {}).get("iteration", 0) >= 2, 60, "progress")
     assert service.job(job_id)["state"] == "running"
+    seen: list[int] = []
+    waited: list[dict] = []
+    follower = threading.Thread(
+        target=lambda: waited.append(FixqClient(service.url).wait(job_id, on_progress=lambda e: seen.append(e["iteration"])))
+    )
+    follower.start()
+    wait_for(lambda: seen, 30, "the client to follow the live log")
     service.kill_api()
     service.start_api()
     finished = service.wait_state(job_id, {"done", "failed", "canceled"}, 60)
     assert finished["state"] == "done" and finished["attempts"] == 1
+    follower.join(60)
+    assert waited and waited[0]["state"] == "done"
+    assert seen == sorted(set(seen)) and seen[-1] == finished["iterations"]
     result = service.http.get(f"/v1/jobs/{job_id}/result").json()
     assert result["status"] == "time_limit"
     iterations = [entry["iteration"] for entry in result["log"]]

@@ -181,7 +181,8 @@ class Workers:
         return horses
 
     def logs(self) -> str:
-        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in sorted(self.log_dir.glob("*.log")))
+        logs = sorted(self.log_dir.glob("*.log"))
+        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in logs)
 
     def close(self) -> None:
         for process in self.processes:

@@ -74,7 +74,9 @@ class LiveServer:
             self.start_worker()
 
     def logs(self) -> str:
-        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in sorted(self.log_dir.glob("*.log")))
+        return "\n".join(
+            f"--- {p.name}\n{p.read_text(errors='replace')[-4000:]}" for p in sorted(self.log_dir.glob("*.log"))
+        )
 
     def stop(self) -> None:
         for _, process in reversed(self.processes):

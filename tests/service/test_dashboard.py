@@ -61,7 +61,9 @@ class Browser:
                 raise RuntimeError("Chromium did not open its DevTools port")
             time.sleep(0.05)
         port, path = port_file.read_text().splitlines()[:2]
-        self.socket = self._closing.enter_context(connect(f"ws://127.0.0.1:{port}{path}", max_size=None, open_timeout=10))
+        self.socket = self._closing.enter_context(
+            connect(f"ws://127.0.0.1:{port}{path}", max_size=None, open_timeout=10)
+        )
         self.last_id = 0
         self.events: list[dict[str, Any]] = []
 
@@ -157,17 +159,34 @@ class Tab:
         )
 
     def mine(self, method: str) -> list[dict[str, Any]]:
-        return [e["params"] for e in self.browser.events if e.get("sessionId") == self.session and e.get("method") == method]
+        return [
+            e["params"] for e in self.browser.events if e.get("sessionId") == self.session and e.get("method") == method
+        ]
 
     def problems(self) -> list[str]:
         """Console errors, uncaught exceptions, failed requests and HTTP errors seen on this tab."""
         found = [f"console.{p['type']}: {[a.get('value', a.get('description')) for a in p['args']]}"
                  for p in self.mine("Runtime.consoleAPICalled") if p["type"] in ("error", "assert")]  # fmt: skip
-        found += [f"exception: {p['exceptionDetails'].get('exception', {}).get('description')}" for p in self.mine("Runtime.exceptionThrown")]
-        found += [f"log: {p['entry']['text']} {p['entry'].get('url', '')}" for p in self.mine("Log.entryAdded") if p["entry"]["level"] == "error"]
+        found += [
+            f"exception: {p['exceptionDetails'].get('exception', {}).get('description')}"
+            for p in self.mine("Runtime.exceptionThrown")
+        ]
+        found += [
+            f"log: {p['entry']['text']} {p['entry'].get('url', '')}"
+            for p in self.mine("Log.entryAdded")
+            if p["entry"]["level"] == "error"
+        ]
         # A request the page itself abandons (an EventSource it closed) is "canceled", not failed.
-        found += [f"failed: {p['errorText']} ({p.get('type')})" for p in self.mine("Network.loadingFailed") if not p.get("canceled")]
-        found += [f"HTTP {p['response']['status']}: {p['response']['url']}" for p in self.mine("Network.responseReceived") if p["response"]["status"] >= 400]
+        found += [
+            f"failed: {p['errorText']} ({p.get('type')})"
+            for p in self.mine("Network.loadingFailed")
+            if not p.get("canceled")
+        ]
+        found += [
+            f"HTTP {p['response']['status']}: {p['response']['url']}"
+            for p in self.mine("Network.responseReceived")
+            if p["response"]["status"] >= 400
+        ]
         return found
 
     def requested(self) -> list[tuple[str, str]]:
@@ -254,7 +273,9 @@ def chart_points(tab: Tab, series: str) -> int:
     )
 
 
-def test_a_job_is_followed_live_from_queued_to_solved(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+def test_a_job_is_followed_live_from_queued_to_solved(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
     # No worker yet: the job waits in the queue while both pages are open.
     document = load_example("household_saving")
     job_id = submit(api, document)
@@ -302,7 +323,9 @@ def test_a_job_is_followed_live_from_queued_to_solved(server: LiveServer, api: h
     assert listing.problems() == []
 
 
-def test_an_example_started_from_the_list_shows_its_bars(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+def test_an_example_started_from_the_list_shows_its_bars(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
     server.ensure_worker()
     tab = new_tab()
     tab.goto(f"{server.url}/")
@@ -319,15 +342,23 @@ def test_an_example_started_from_the_list_shows_its_bars(server: LiveServer, api
     assert tab.problems() == []
 
 
-def test_two_state_models_offer_shock_and_choice_pickers(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+def test_two_state_models_offer_shock_and_choice_pickers(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
     server.ensure_worker()
     job_id = submit(api, load_example("roastery_growth"))
     assert wait_until_finished(api, job_id)["state"] == "done"
     tab = new_tab()
     tab.goto(f"{server.url}/jobs/{job_id}")
     tab.wait_for(PLOTS_SHOWN)
-    assert tab.evaluate("[...document.querySelectorAll('#choice option')].map(o => o.value)") == ["capacity_next", "marketing"]
-    assert tab.evaluate("[...document.querySelectorAll('#policy-shock option')].map(o => o.textContent)") == ["taste=0.8", "taste=1.2"]
+    assert tab.evaluate("[...document.querySelectorAll('#choice option')].map(o => o.value)") == [
+        "capacity_next",
+        "marketing",
+    ]
+    assert tab.evaluate("[...document.querySelectorAll('#policy-shock option')].map(o => o.textContent)") == [
+        "taste=0.8",
+        "taste=1.2",
+    ]
     first = tab.evaluate("document.getElementById('policy-plot').src")
     tab.evaluate(
         "(() => { const pick = (id, v) => { const s = document.getElementById(id); s.value = v;"
@@ -392,7 +423,11 @@ def test_with_auth_on_the_dashboard_asks_for_a_key_and_refuses_a_wrong_one(
     tab.wait_for("!document.querySelector('#signin .problem').classList.contains('hidden')")
     assert tab.evaluate("location.pathname") == "/jobs/0123456789abcdef"
     assert "not-a-real-key" not in tab.evaluate("location.href")
-    assert not [c for c in tab.send("Network.getCookies", {"urls": [guarded_server.url]})["cookies"] if c["name"] == SESSION_COOKIE]
+    assert not [
+        c
+        for c in tab.send("Network.getCookies", {"urls": [guarded_server.url]})["cookies"]
+        if c["name"] == SESSION_COOKIE
+    ]
     tab.screenshot("signin-refused")
 
 
@@ -404,7 +439,10 @@ def test_the_session_endpoints_keep_the_key_out_of_urls(guarded_server: LiveServ
         assert refused.headers["location"] == "/jobs/0123456789abcdef?signin=failed"
         assert SESSION_COOKIE not in refused.cookies
         # Only local paths are followed after signing in (no open redirect).
-        assert client.post("/ui/session", data={"key": "x", "next": "https://elsewhere.test/"}).headers["location"] == "/?signin=failed"
+        assert (
+            client.post("/ui/session", data={"key": "x", "next": "https://elsewhere.test/"}).headers["location"]
+            == "/?signin=failed"
+        )
         # A browser's cross-site post is refused outright.
         cross = client.post("/ui/session", data={"key": "x"}, headers={"Sec-Fetch-Site": "cross-site"})
         assert cross.status_code == 403
@@ -413,7 +451,9 @@ def test_the_session_endpoints_keep_the_key_out_of_urls(guarded_server: LiveServ
         assert f"{SESSION_COOKIE}=" in out.headers["set-cookie"] and "Max-Age=0" in out.headers["set-cookie"]
 
 
-def test_a_running_job_can_be_canceled_from_its_page(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
+def test_a_running_job_can_be_canceled_from_its_page(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
     server.ensure_worker()
     # A tolerance no float64 arithmetic reaches: the solve runs until it is stopped.
     document = load_example("machine_replacement")

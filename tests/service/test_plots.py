@@ -3,6 +3,8 @@
 from __future__ import annotations
 
 import struct
+import subprocess
+import sys
 import xml.etree.ElementTree as ET
 from collections.abc import Iterator
 from typing import Any
@@ -52,7 +54,11 @@ def line_result(n_points: int = 30, n_shocks: int = 3) -> dict[str, Any]:
 def two_state_result() -> dict[str, Any]:
     a, b, y = np.linspace(0, 1, 12), np.linspace(1, 2, 9), np.array([0.5, 1.0, 1.5])
     value = a[:, None, None] + b[None, :, None] * y[None, None, :]
-    return {"axes": {"a": a.tolist(), "b": b.tolist(), "y": y.tolist()}, "value": value.tolist(), "policy": {"a_next": value.tolist()}}
+    return {
+        "axes": {"a": a.tolist(), "b": b.tolist(), "y": y.tolist()},
+        "value": value.tolist(),
+        "policy": {"a_next": value.tolist()},
+    }
 
 
 def tabular_result() -> dict[str, Any]:
@@ -66,7 +72,10 @@ def tabular_result() -> dict[str, Any]:
 
 
 def test_convergence_plot_draws_both_series_on_a_log_axis() -> None:
-    log = [{"iteration": i, "distance": 0.9**i, "error_bound": 9 * 0.9**i, "policy_changes": 5, "seconds": 0.01} for i in range(1, 60)]
+    log = [
+        {"iteration": i, "distance": 0.9**i, "error_bound": 9 * 0.9**i, "policy_changes": 5, "seconds": 0.01}
+        for i in range(1, 60)
+    ]
     ids = svg_ids(plots.convergence_plot(log, tolerance=1e-3, fmt="svg"))
     assert {"series-distance", "series-error_bound"} <= ids
     assert png_size(plots.convergence_plot(log, fmt="png")) == (
@@ -230,3 +239,12 @@ def test_plot_routes_hide_other_owners_jobs(plot_app: tuple[TestClient, FastAPI]
     assert client.get(f"/v1/jobs/{job_id}/plots").status_code == 404
     app.dependency_overrides[current_owner] = lambda: Caller("bob")
     assert client.get(f"/v1/jobs/{job_id}/plots/value.svg").status_code == 200
+
+
+def test_the_api_loads_matplotlib_only_for_a_first_picture() -> None:
+    from service.routers import plots as plot_routes
+
+    assert plot_routes.MEDIA_TYPES == plots.MEDIA_TYPES
+    code = "import sys, service.app; print('matplotlib' in sys.modules)"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "False"

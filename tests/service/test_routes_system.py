@@ -2,10 +2,14 @@
 
 from __future__ import annotations
 
+import json
 import subprocess
 import sys
+import types
+from pathlib import Path
 
 import httpx
+import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
 
@@ -15,6 +19,7 @@ from service.schema import json_schema
 from service.settings import Settings
 from service.store import JobStore
 from tests.service.conftest import make_client
+from worker.errors import InfeasibleModel
 from tests.service.test_routes_jobs import assert_problem, machine_shop, run_inline, submit
 
 
@@ -136,3 +141,30 @@ def test_redis_errors_mid_request_are_503(app: object, client: httpx.Client, mon
     monkeypatch.setattr(app.state.store, "list_jobs", unreachable)
     assert_problem(client.get("/v1/jobs"), 503)
 
+
+
+def infeasible_plant() -> dict:
+    document = json.loads((Path(__file__).resolve().parents[2] / "service/examples/plant_capacity.json").read_text())
+    document["model"]["feasible"] = ["capacity_next < 0"]
+    return document
+
+
+def test_the_door_runs_the_grid_feasibility_check(client: httpx.Client, monkeypatch, store: JobStore) -> None:
+    calls = []
+
+    def check_feasibility(doc, *, budget_s):
+        calls.append(budget_s)
+        raise InfeasibleModel.at("model.feasible", "no choice is allowed at capacity = 0.5, demand = 2.0")
+
+    monkeypatch.setitem(sys.modules, "worker.feasibility", types.SimpleNamespace(check_feasibility=check_feasibility))
+    body = assert_problem(client.post("/v1/jobs", json=infeasible_plant()), 422)
+    assert body["type"] == "urn:fixq:problem:infeasible-model" and body["errors"][0]["path"] == "model.feasible"
+    assert calls and 0 < calls[0] <= 5
+    assert store.counts_by_state()["queued"] == 0
+    assert client.post("/v1/check", json=machine_shop()).status_code == 200 and len(calls) == 1
+
+
+def test_an_infeasible_grid_model_is_refused_at_the_door(client: httpx.Client) -> None:
+    pytest.importorskip("worker.feasibility", reason="the numba-free feasibility check is not in worker/ yet")
+    body = assert_problem(client.post("/v1/check", json=infeasible_plant()), 422)
+    assert body["errors"][0]["path"].startswith("model.")

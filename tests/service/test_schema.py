@@ -237,8 +237,11 @@ def test_packed_arrays_are_accepted() -> None:
 
 
 def test_sparse_transition() -> None:
-    entries = [[0, 0, 0, 0.6], [0, 0, 1, 0.4], [0, 1, 0, 1.0], [1, 0, 0, 0.1], [1, 0, 1, 0.7], [1, 0, 2, 0.1],
-               [1, 0, 2, 0.1], [2, 0, 2, 1.0], [2, 1, 0, 0.9], [2, 1, 1, 0.1]]  # fmt: skip
+    # (1, 0, 2) appears twice: duplicates are summed, so the row still sums to 1.
+    entries = [
+        [0, 0, 0, 0.6], [0, 0, 1, 0.4], [0, 1, 0, 1.0], [1, 0, 0, 0.1], [1, 0, 1, 0.7],
+        [1, 0, 2, 0.1], [1, 0, 2, 0.1], [2, 0, 2, 1.0], [2, 1, 0, 0.9], [2, 1, 1, 0.1],
+    ]
     doc = parse_document(edit(machine_shop(), "model.transition", {"entries": entries}))
     assert doc.model.transition.entries.shape == (10, 4)
     doc = parse_document(edit(machine_shop(), "model.transition", {"entries": packed(entries)}))
@@ -538,8 +541,8 @@ def test_many_bad_rows_are_counted_not_listed() -> None:
     reward = np.zeros((rows, 1))
     transition = np.zeros((rows, 1, rows))
     transition[:, 0, 0] = 0.5
-    document = {"version": 1, "discount": 0.9, "model": {"kind": "tabular", "states": rows, "actions": 1,
-                                                         "reward": packed(reward), "transition": packed(transition)}}  # fmt: skip
+    model = {"kind": "tabular", "states": rows, "actions": 1, "reward": packed(reward), "transition": packed(transition)}
+    document = {"version": 1, "discount": 0.9, "model": model}
     errors = faults(document)
     assert len(errors) == 11 and errors[0]["path"] == "model.transition[0][0]"
     assert errors[-1] == {"path": "model.transition", "message": "and 190 more rows that do not sum to 1"}
@@ -696,8 +699,10 @@ def _valid(root: dict[str, Any], schema_: dict[str, Any], value: Any) -> bool:
         elif key in ("minLength", "maxLength", "pattern"):
             if not isinstance(value, str):
                 continue
-            ok = {"minLength": lambda: len(value) >= rule, "maxLength": lambda: len(value) <= rule,
-                  "pattern": lambda: re.search(rule, value) is not None}[key]()  # fmt: skip
+            if key == "pattern":
+                ok = re.search(rule, value) is not None
+            else:
+                ok = len(value) >= rule if key == "minLength" else len(value) <= rule
         else:
             raise AssertionError(f"the test validator does not know the keyword {key!r}")
         if not ok:
@@ -781,8 +786,8 @@ def test_hash_ignores_key_order_and_submission_options() -> None:
 
 def test_hash_sees_defaults_packing_and_numbers_alike() -> None:
     shop = machine_shop()
-    explicit = edit(shop, "solver", {**shop["solver"], "evaluation_steps": schema.DEFAULT_EVALUATION_STEPS, "initial": "zeros",
-                                     "checkpoint_s": 30, "time_limit_s": None})  # fmt: skip
+    defaults = {"evaluation_steps": schema.DEFAULT_EVALUATION_STEPS, "initial": "zeros", "checkpoint_s": 30, "time_limit_s": None}
+    explicit = edit(shop, "solver", {**shop["solver"], **defaults})
     as_packed = edit(shop, "model.transition", packed(shop["model"]["transition"]))
     assert document_hash(shop) == document_hash(explicit) == document_hash(as_packed)
 
@@ -816,8 +821,8 @@ def test_canonical_json_packs_large_arrays() -> None:
     rows = 100
     transition = np.zeros((rows, 1, rows))
     transition[:, 0, 0] = 1.0
-    document = {"version": 1, "discount": 0.9, "model": {"kind": "tabular", "states": rows, "actions": 1,
-                                                         "reward": [[1.0]] * rows, "transition": transition.tolist()}}  # fmt: skip
+    model = {"kind": "tabular", "states": rows, "actions": 1, "reward": [[1.0]] * rows, "transition": transition.tolist()}
+    document = {"version": 1, "discount": 0.9, "model": model}
     data = json.loads(canonical_json(document))
     assert set(data["model"]["transition"]) == {"base64", "dtype", "shape"}
     assert data["model"]["reward"] == [[1.0]] * rows

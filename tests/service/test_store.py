@@ -275,7 +275,8 @@ def test_solve_histograms_are_cumulative(store: JobStore) -> None:
     for seconds, iterations in samples:
         job_id = create(store)["id"]
         store.claim(job_id, "tok", worker="w")
-        store.finish(job_id, "tok", "done", result={"status": "converged", "iterations": iterations, "seconds": seconds})
+        result = {"status": "converged", "iterations": iterations, "seconds": seconds}
+        store.finish(job_id, "tok", "done", result=result)
     histograms = store.solve_histograms()
     seconds_h = histograms["seconds"]
     assert seconds_h["count"] == 4 and seconds_h["sum"] == pytest.approx(sum(s for s, _ in samples))

@@ -23,6 +23,11 @@ from worker.arrays import encode_array
 REFUSAL_S = 1.0
 """Longest time a refusal may take (seconds)."""
 
+CHILD_MEMORY_BYTES = 4 * 2**30
+"""Address-space cap of a child process running a case that could exhaust memory (bytes)."""
+CHILD_TIMEOUT_S = 30
+"""Longest wait for such a child, start-up and kernel loading included (seconds)."""
+
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 
@@ -221,12 +226,35 @@ def test_billion_point_grids_are_too_large():
 
 
 def test_a_huge_choice_grid_is_too_large():
+    # 2e5 states × 1e10 choices: no memory cap or time would let this finish, so
+    # it runs in a child process with an address-space cap and a timeout.
     document = with_change(grid(), ("model", "states", "k", "points"), 100_000)
     document["model"]["choices"] = {"k_next": {"next_of": "k"}, "effort": {"min": 0.0, "max": 1.0, "points": 100_000}}
     document["model"]["define"] = {"c": "z * k**alpha * (1 + effort) - k_next - effort"}
-    error = refuse(document, TooLarge)
-    assert paths(error) == ["model"]
-    assert "choices" in error.errors[0]["message"]
+    code = f"""
+import json, resource, sys, time
+resource.setrlimit(resource.RLIMIT_AS, ({CHILD_MEMORY_BYTES}, {CHILD_MEMORY_BYTES}))
+sys.path.insert(0, {REPO!r})
+from worker import solve, FixqError
+document = json.loads(sys.stdin.read())
+started = time.perf_counter()
+try:
+    solve(document)
+    outcome = ["solved", [], ""]
+except FixqError as error:
+    outcome = [type(error).__name__, [e["path"] for e in error.errors], error.detail]
+print(json.dumps(outcome + [time.perf_counter() - started]))
+"""
+    try:
+        done = subprocess.run([sys.executable, "-c", code], input=json.dumps(document), capture_output=True,
+                              text=True, timeout=CHILD_TIMEOUT_S, cwd=REPO)
+    except subprocess.TimeoutExpired:
+        pytest.fail(f"a 1e10-choice grid was not refused within {CHILD_TIMEOUT_S} s")
+    assert done.returncode == 0, "the solve crashed instead of refusing the document: " + done.stderr[-1500:]
+    kind, where, message, seconds = json.loads(done.stdout.splitlines()[-1])
+    assert kind == "TooLarge", (kind, message)
+    assert where == ["model"] and "MiB" in message
+    assert seconds < REFUSAL_S
 
 
 @pytest.mark.parametrize(

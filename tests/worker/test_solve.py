@@ -168,6 +168,12 @@ def test_checkpoints_resume_through_solve():
     assert solve(relabelled, checkpoint=store)["diagnostics"]["resumed_from_iteration"] is not None
     other = copy.deepcopy(document) | {"discount": 0.9}
     assert solve(other, checkpoint=store)["diagnostics"]["resumed_from_iteration"] is None
+    changed = copy.deepcopy(document)
+    changed["model"]["reward"][2][0] = 0.30000001
+    store.state = None
+    with pytest.raises(Crash):
+        solve(copy.deepcopy(document), checkpoint=store, on_progress=crash)
+    assert solve(changed, checkpoint=store)["diagnostics"]["resumed_from_iteration"] is None
 
 
 def test_progress_and_cancel():
@@ -252,3 +258,48 @@ def test_a_grid_model_matches_the_closed_form():
     spacing = k[1] - k[0]
     assert np.abs(policy - exact)[inside].max() <= spacing
     assert set(result["stationary"]["means"]) >= {"k", "z", "k_next"}
+
+
+def test_grid_hints_that_hold_give_the_same_answer():
+    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
+    plain = solve(growth_document(120))
+    hinted_document = growth_document(120)
+    hinted_document["model"]["hints"] = {"monotone": True, "concave": True}
+    hinted = solve(hinted_document)
+    assert hinted["diagnostics"]["warnings"] == []
+    assert hinted["policy_index"] == plain["policy_index"]
+    gap = np.abs(np.array(hinted["value"]) - np.array(plain["value"])).max()
+    assert gap <= hinted["error_bound"] + plain["error_bound"]
+
+
+def test_a_broken_grid_hint_is_reported_and_solved_without_it():
+    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
+    # Invented: tomorrow's best k' = 0.55 − k falls as k rises, so "monotone" is false.
+    document = growth_document(120)
+    document["model"]["reward"] = "-(k_next - (0.55 - k))**2"
+    document["model"]["feasible"] = []
+    document["model"]["hints"] = {"monotone": True, "concave": False}
+    broken = solve(copy.deepcopy(document))
+    document["model"]["hints"] = {"monotone": False, "concave": False}
+    honest = solve(document)
+    assert len(broken["diagnostics"]["warnings"]) == 1
+    warning = broken["diagnostics"]["warnings"][0]
+    assert warning.startswith("the `monotone` hint did not hold for this model") and "re-solved without hints" in warning
+    gap = np.abs(np.array(broken["value"]) - np.array(honest["value"])).max()
+    assert gap <= broken["error_bound"] + honest["error_bound"]
+    assert broken["policy_index"] == honest["policy_index"]
+
+
+def test_a_grid_warm_start_is_carried_onto_a_finer_grid():
+    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
+    coarse = growth_document(60)
+    coarse["solver"] = {"method": "value_iteration", "tolerance": 1e-6}
+    earlier = solve(coarse)
+    fine = growth_document(150)
+    fine["solver"] = {"method": "value_iteration", "tolerance": 1e-6}
+    cold = solve(copy.deepcopy(fine))
+    fine["solver"]["initial"] = {"job": "coarse-run"}
+    warm = solve(fine, warm_start={"axes": earlier["axes"], "value": earlier["value"]})
+    assert warm["status"] == "converged"
+    assert warm["iterations"] < cold["iterations"]
+    assert warm["policy_index"] == cold["policy_index"]

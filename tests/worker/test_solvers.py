@@ -213,11 +213,12 @@ def test_progress_callback_gets_every_entry_in_order():
 
 
 class MemoryCheckpoint:
-    """A checkpoint store in memory that records every save."""
+    """A checkpoint store in memory that records every save; ``crash_after`` saves, it raises."""
 
-    def __init__(self) -> None:
+    def __init__(self, crash_after: int | None = None) -> None:
         self.state: dict | None = None
         self.saves: list[dict] = []
+        self.crash_after = crash_after
 
     def load(self) -> dict | None:
         return self.state
@@ -225,6 +226,9 @@ class MemoryCheckpoint:
     def save(self, state: dict) -> None:
         self.state = state
         self.saves.append(state)
+        if self.crash_after is not None and len(self.saves) >= self.crash_after:
+            self.crash_after = None
+            raise Crash
 
 
 class Crash(Exception):
@@ -235,30 +239,28 @@ class Crash(Exception):
 def test_checkpoint_resume_gives_the_same_answer_and_log(name):
     problem = random_mdp(26, 30, 3, 0.97, 2)
     method = METHODS[name]
-    options = dict(tolerance=1e-10, evaluation_steps=20, fingerprint="doc-a")
-    whole = method(problem, np.zeros(problem.n), **options)
+    options = dict(tolerance=1e-10, evaluation_steps=6, fingerprint="doc-a", checkpoint_s=0.0)
+    whole = method(problem, np.zeros(problem.n), **{k: v for k, v in options.items() if k != "checkpoint_s"})
     assert whole.iterations >= 3
-
-    store = MemoryCheckpoint()
-
-    def crash_at(entry: dict) -> None:
-        if entry["iteration"] == whole.iterations - 1:
-            raise Crash
-
-    with pytest.raises(Crash):
-        method(problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, on_progress=crash_at, **options)
-    assert store.state is not None
-    if name == "howard":
-        assert any(save["sweeps_done"] for save in store.saves), "Howard saves between sweeps too"
-    resumed = method(problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, **options)
-    assert resumed.resumed_from_iteration == store.saves[-1]["iteration"] or resumed.resumed_from_iteration is not None
-    np.testing.assert_array_equal(resumed.value, whole.value)
-    np.testing.assert_array_equal(resumed.policy, whole.policy)
-    assert resumed.iterations == whole.iterations
-    assert resumed.evaluation_steps == whole.evaluation_steps
-    assert [e["iteration"] for e in resumed.log] == list(range(1, whole.iterations + 1))
+    counting = MemoryCheckpoint()
+    method(problem, np.zeros(problem.n), checkpoint=counting, **options)
     strip = lambda log: [{k: v for k, v in e.items() if k != "seconds"} for e in log]  # noqa: E731
-    assert strip(resumed.log) == strip(whole.log)
+
+    resumed_mid_phase = False
+    for crash_after in range(1, len(counting.saves) + 1, max(1, len(counting.saves) // 7)):
+        store = MemoryCheckpoint(crash_after=crash_after)
+        with pytest.raises(Crash):
+            method(problem, np.zeros(problem.n), checkpoint=store, **options)
+        at = store.state["iteration"]
+        resumed_mid_phase |= store.state["sweeps_done"] is not None
+        resumed = method(problem, np.zeros(problem.n), checkpoint=store, **options)
+        assert resumed.resumed_from_iteration == at
+        np.testing.assert_array_equal(resumed.value, whole.value)
+        np.testing.assert_array_equal(resumed.policy, whole.policy)
+        assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
+        assert [e["iteration"] for e in resumed.log] == list(range(1, whole.iterations + 1))
+        assert strip(resumed.log) == strip(whole.log)
+    assert resumed_mid_phase == (name == "howard"), "Howard checkpoints between sweeps too"
 
 
 def test_checkpoint_of_another_document_is_ignored():
