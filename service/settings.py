@@ -74,6 +74,44 @@ class Settings(BaseSettings):
         0.2, gt=0, description="Seconds between two Redis reads of a live log stream (SSE) per open stream."
     )
 
+    # Fields of sweeps and webhooks.
+    sweep_max_combinations: int = Field(
+        10_000, ge=1, description="Most combinations (one job each) that one sweep may expand to (count)."
+    )
+    sweep_max_documents_mb: float = Field(
+        1024.0,
+        gt=0,
+        description="Most MiB (2**20 bytes) of documents one sweep may store: combinations × the JSON size of its "
+        "base document; larger sweeps get 413.",
+    )
+    notify_allow_hosts: str = Field(
+        "",
+        description="Comma-separated hosts that notify.url may name: exact names (hooks.lab.example), suffixes "
+        "with a leading dot (.lab.example: its subdomains), IP addresses or CIDR blocks (192.0.2.0/24, a "
+        "host name whose addresses all lie inside them). Empty (the default): no webhooks are allowed.",
+    )
+    notify_allow_private: bool = Field(
+        False,
+        description="Also allow webhook targets whose addresses are loopback, private or not globally routable "
+        "(tests, closed lab networks). Link-local (cloud metadata), multicast, unspecified and reserved "
+        "addresses stay refused.",
+    )
+    notify_timeout_s: float = Field(
+        5.0, gt=0, description="Seconds one webhook attempt may spend on each of connecting, sending and waiting for the answer."
+    )
+    notify_retry_delays_s: list[float] = Field(
+        [1.0, 5.0, 30.0, 120.0, 600.0],
+        min_length=1,
+        description="Seconds to wait before each retry of a failed webhook delivery, in order (the last one "
+        "repeats); JSON in the environment, e.g. FIXQ_NOTIFY_RETRY_DELAYS_S='[1, 5, 30]'.",
+    )
+    notify_max_attempts: int = Field(
+        6, ge=1, description="Attempts at delivering one webhook (the first and its retries) before it is given up (count)."
+    )
+    notify_poll_s: float = Field(
+        0.5, gt=0, description="Seconds an idle notifier thread waits before it looks again for due webhook deliveries."
+    )
+
 
 @lru_cache(maxsize=1)
 def get_settings() -> Settings:

@@ -1,0 +1,84 @@
+"""The door every submission goes through, shared by ``POST /v1/jobs`` and ``POST /v1/sweeps``.
+
+:func:`admit_submission` is ``service.admission.admit`` (validation, size cap,
+feasibility, warm start visible to the caller) plus the one check that
+concerns the submission rather than the problem: a ``notify.url`` must pass
+``service.webhooks.check_target``.  :func:`create_submitted_job` stores an
+admitted document as a job; :func:`submit` does both.  A sweep admits every
+combination before it creates any job, so it calls the two halves itself.
+
+Nothing here imports FastAPI: workers create the later jobs of chained sweeps
+through the same functions.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any, Protocol
+
+from service.admission import Admitted, admit
+from service.schema import document_hash
+from service.settings import Settings
+from service.store import JobStore
+from service.webhooks import check_target
+
+__all__ = ["Submitter", "admit_submission", "create_submitted_job", "submit"]
+
+
+class Submitter(Protocol):
+    """Who submits: ``service.deps.Caller`` or anything with the same two members."""
+
+    @property
+    def owner(self) -> str: ...
+
+    def may_see(self, record: dict[str, Any]) -> bool: ...
+
+
+def admit_submission(
+    raw: dict[str, Any],
+    settings: Settings,
+    store: JobStore,
+    *,
+    may_see: Callable[[dict[str, Any]], bool],
+    check_notify: bool = True,
+) -> Admitted:
+    """Admit ``raw`` as ``admit`` does, then check its webhook target unless ``check_notify`` is false.
+
+    Raises ``InvalidDocument`` (the refused target at ``notify.url``) or ``TooLarge``.
+    """
+    admitted = admit(raw, settings, store=store, may_see=may_see)
+    notify = admitted.document.notify
+    if check_notify and notify is not None:
+        check_target(notify.url, settings)
+    return admitted
+
+
+def create_submitted_job(
+    raw: dict[str, Any],
+    admitted: Admitted,
+    store: JobStore,
+    *,
+    owner: str,
+    idempotency_key: str | None = None,
+) -> dict[str, Any]:
+    """Store an admitted document as a new ``queued`` job and enqueue it; the job record."""
+    return store.create_job(
+        raw,
+        owner=owner,
+        estimate=admitted.estimate,
+        document_hash=document_hash(admitted.document),
+        idempotency_key=idempotency_key,
+    )
+
+
+def submit(
+    raw: dict[str, Any],
+    caller: Submitter,
+    store: JobStore,
+    settings: Settings,
+    *,
+    idempotency_key: str | None = None,
+) -> dict[str, Any]:
+    """Admit and create one job for ``caller``; the job record (what ``POST /v1/jobs`` answers)."""
+    admitted = admit_submission(raw, settings, store, may_see=caller.may_see)
+    return create_submitted_job(raw, admitted, store, owner=caller.owner, idempotency_key=idempotency_key)
