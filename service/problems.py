@@ -10,7 +10,7 @@ responses themselves: they raise, and :func:`handle_error` translates
   result not ready 409, missing key 401, malformed JSON 400, ...),
 * FastAPI's ``RequestValidationError`` (a bad query parameter or header, 400),
 * Starlette's ``HTTPException`` (no such route 404, wrong method 405, ...),
-* Redis being unreachable (503),
+* Redis being unreachable, out of memory or read-only (503),
 * anything else (500, logged with its traceback; never caused by input).
 
 ``type`` is a URN naming the kind of problem (``urn:fixq:problem:not-found``);
@@ -87,6 +87,14 @@ def problem_response(
     return JSONResponse(body, status_code=status, headers=headers, media_type=PROBLEM_JSON)
 
 
+_STORE_UNAVAILABLE = (
+    redis.exceptions.ConnectionError,
+    redis.exceptions.TimeoutError,
+    redis.exceptions.OutOfMemoryError,
+    redis.exceptions.ReadOnlyError,
+)
+"""Redis failures that are the store's state, not a bug: answered 503 with Retry-After."""
+
 _FIXQ_KINDS = {422: "invalid-document", 413: "too-large", 409: "canceled"}
 
 
@@ -131,13 +139,13 @@ async def handle_error(request: Request, exc: Exception) -> JSONResponse:
         return _from_validation(exc)
     if isinstance(exc, HTTPException):
         return _from_http(request, exc)
-    if isinstance(exc, (redis.exceptions.ConnectionError, redis.exceptions.TimeoutError)):
-        logger.warning("redis unreachable while answering %s %s: %s", request.method, request.url.path, exc)
+    if isinstance(exc, _STORE_UNAVAILABLE):
+        logger.warning("redis unavailable while answering %s %s: %s", request.method, request.url.path, exc)
         return problem_response(
             503,
             "unavailable",
             "service unavailable",
-            "the job store (Redis) cannot be reached; try again shortly",
+            "the job store (Redis) is unavailable; try again shortly",
             headers={"Retry-After": "5"},
         )
     logger.error("unexpected error answering %s %s", request.method, request.url.path, exc_info=exc)
@@ -151,8 +159,7 @@ def install(app: FastAPI) -> None:
         FixqError,
         RequestValidationError,
         HTTPException,
-        redis.exceptions.ConnectionError,
-        redis.exceptions.TimeoutError,
+        *_STORE_UNAVAILABLE,
         Exception,
     ):
         app.add_exception_handler(exc_class, handle_error)

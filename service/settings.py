@@ -112,6 +112,32 @@ class Settings(BaseSettings):
         0.5, gt=0, description="Seconds an idle notifier thread waits before it looks again for due webhook deliveries."
     )
 
+    # Fields of API keys and the per-key limits of a shared queue.
+    allow_open_network: bool = Field(
+        False,
+        description="Let `fixq api` serve with auth off on an address that is not loopback: the second "
+        "confirmation FIXQ_AUTH=off needs there (the same as its --allow-open-network flag).",
+    )
+    max_active_jobs: int = Field(
+        1000,
+        ge=0,
+        description="Most jobs one key may have queued or running at once (count; 0: no cap); more are refused "
+        "with 429. A key may carry its own cap (`fixq keys add NAME --max-active-jobs N`).",
+    )
+    max_active_high_jobs: int = Field(
+        20,
+        ge=0,
+        description="Most `priority: high` jobs one key may have queued or running at once (count; 0: no cap); "
+        "more are refused with 429. A key may carry its own cap (`--max-active-high-jobs N`).",
+    )
+    key_max_problem_mb: float = Field(
+        1024.0,
+        gt=0,
+        description="Memory cap of one job of one key in MiB (2**20 bytes), on the admission estimate; larger "
+        "ones get 413. A key may carry its own cap (`--max-problem-mb MB`); max_problem_mb, the workers' "
+        "cap, applies to every key as well.",
+    )
+
 
 @lru_cache(maxsize=1)
 def get_settings() -> Settings:

@@ -5,7 +5,8 @@ feasibility, warm start visible to the caller) plus the one check that
 concerns the submission rather than the problem: a ``notify.url`` must pass
 ``service.webhooks.check_target``.  :func:`create_submitted_job` stores an
 admitted document as a job; :func:`submit` does both.  A sweep admits every
-combination before it creates any job, so it calls the two halves itself.
+combination before it creates any job, so it calls the two halves itself,
+keeping only :func:`admitted_summary` of each (not the parsed arrays).
 
 Nothing here imports FastAPI: workers create the later jobs of chained sweeps
 through the same functions.
@@ -17,12 +18,12 @@ from collections.abc import Callable
 from typing import Any, Protocol
 
 from service.admission import Admitted, admit
-from service.schema import document_hash
+from service import schema
 from service.settings import Settings
 from service.store import JobStore
 from service.webhooks import check_target
 
-__all__ = ["Submitter", "admit_submission", "create_submitted_job", "submit"]
+__all__ = ["Submitter", "admit_submission", "admitted_summary", "create_submitted_job", "submit"]
 
 
 class Submitter(Protocol):
@@ -55,20 +56,25 @@ def admit_submission(
 
 def create_submitted_job(
     raw: dict[str, Any],
-    admitted: Admitted,
     store: JobStore,
     *,
     owner: str,
+    estimate: dict[str, Any],
+    document_hash: str,
     idempotency_key: str | None = None,
 ) -> dict[str, Any]:
-    """Store an admitted document as a new ``queued`` job and enqueue it; the job record."""
+    """Store an admitted document as a new ``queued`` job and enqueue it; the job record.
+
+    ``estimate`` and ``document_hash`` come from its ``Admitted`` (see :func:`admitted_summary`).
+    """
     return store.create_job(
-        raw,
-        owner=owner,
-        estimate=admitted.estimate,
-        document_hash=document_hash(admitted.document),
-        idempotency_key=idempotency_key,
+        raw, owner=owner, estimate=estimate, document_hash=document_hash, idempotency_key=idempotency_key
     )
+
+
+def admitted_summary(admitted: Admitted) -> dict[str, Any]:
+    """What creating the job needs of an admitted document: ``estimate`` and ``document_hash``."""
+    return {"estimate": admitted.estimate, "document_hash": schema.document_hash(admitted.document)}
 
 
 def submit(
@@ -81,4 +87,6 @@ def submit(
 ) -> dict[str, Any]:
     """Admit and create one job for ``caller``; the job record (what ``POST /v1/jobs`` answers)."""
     admitted = admit_submission(raw, settings, store, may_see=caller.may_see)
-    return create_submitted_job(raw, admitted, store, owner=caller.owner, idempotency_key=idempotency_key)
+    return create_submitted_job(
+        raw, store, owner=caller.owner, idempotency_key=idempotency_key, **admitted_summary(admitted)
+    )

@@ -59,8 +59,11 @@ Delivery
 :func:`schedule` is called once a job has reached a terminal state
 (``service.lifecycle``).  It reads ``notify`` from the stored document and
 writes the delivery ``fixq:notify:{job id}`` (a hash, kept ``result_ttl_s``)
-with its due time in the zset ``fixq:notify:due``.  A :class:`Notifier`
-thread in every worker process claims due deliveries (a Lua script moves the
+with its due time in the zset ``fixq:notify:due``: that zset, not an RQ
+queue, is the delivery queue, because RQ 3.0 schedules delayed retries only
+in workers started with its scheduler.  A :class:`Notifier` thread, started
+beside the reaper in each worker process (``worker.task.run_worker``; any
+number may run), claims due deliveries (a Lua script moves the
 due time ahead by :data:`CLAIM_S`, so a delivery whose notifier died becomes
 due again), makes one attempt each, and on a connection error, a timeout or a
 non-2xx answer schedules the next attempt ``notify_retry_delays_s[n - 1]``
@@ -79,6 +82,7 @@ import socket
 import threading
 import time
 import urllib.parse
+import zlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from datetime import datetime, timezone
@@ -326,7 +330,11 @@ def schedule(store: JobStore, job_id: str) -> bool:
 
     Idempotent: a job is notified at most once however often this is called.
     """
-    document = store.get_document(job_id)
+    blob = store.redis.get(store.keys.doc(job_id))
+    text = zlib.decompress(blob) if blob is not None else b""
+    if b'"notify"' not in text:
+        return False  # most jobs: no need to parse a possibly large document
+    document = orjson.loads(text)
     notify = document.get("notify") if isinstance(document, dict) else None
     if not isinstance(notify, dict) or not isinstance(notify.get("url"), str):
         return False

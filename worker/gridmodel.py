@@ -64,7 +64,7 @@ import scipy.sparse as sp
 from worker import _codegen, kernels
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.estimate import CHUNK_ELEMENTS, GridPlan, grid_plan
-from worker.expressions import Expression, evaluate, parse
+from worker.expressions import evaluate, parse
 from worker.grids import locate
 from worker.shocks import product_chain
 
@@ -77,14 +77,18 @@ __all__ = [
     "compile_grid",
 ]
 
-BNB_LEAF = 32
-"""Choices per leaf block of the exact branch-and-bound search (count)."""
+BNB_LEAF = 16
+"""Choices per leaf block of the exact branch-and-bound search (count; of 4, 8, 16 and 32,
+8 and 16 were fastest on the growth benchmark at 1,000 and 5,000 choices)."""
 EDGE_WARNING_SHARE = 0.01
 """Share of states at the lowest or highest point of a choice grid above which the diagnostics warn."""
 SCAN_MAX_PAIRS = 20_000_000
 """On the fly, (state, choice) pairs up to which the diagnostics count clamped pairs over all choices."""
 FEASIBILITY_MAX_PASS = 4096
 """Most choices the feasibility check tries in one pass over the undecided states (count)."""
+FEASIBILITY_MAX_STATES = 50_000_000
+"""A budgeted feasibility check (the service's door) of more states than this answers
+"undecided" at once instead of allocating its work lists (count)."""
 _LISTED_STATES = 3
 """States named in an infeasibility error before the rest are counted."""
 
@@ -310,6 +314,9 @@ def _feasibility_scan(data: _ModelData, budget_s: float | None) -> dict[str, Any
     """
     started = time.perf_counter()
     n, n_choices = data.n, data.n_choices
+    if budget_s is not None and n > FEASIBILITY_MAX_STATES:
+        return {"complete": False, "states": n, "unresolved": n, "pairs_evaluated": 0,
+                "seconds": time.perf_counter() - started}
     order = _choice_order(n_choices)
     active = np.arange(n, dtype=np.int64)
     any_feasible = np.zeros(n, dtype=bool)
@@ -370,7 +377,8 @@ def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any
     Returns ``(R, next_base, node_lower, node_weight)`` with ``R`` (n, C)
     (``-inf`` where not allowed), ``next_base`` (C,) int64, and per
     interpolated state the lower node (n, C, m) int32 and upper weight
-    (n, C, m) float64; and counts of excluded and clamped pairs.
+    (n, C, m) float64; and counts of excluded and clamped pairs, with per
+    state flags ``any_feasible`` and ``any_allowed``.
     """
     n, n_choices = data.n, data.n_choices
     interpolated = [t for t, j in enumerate(data.setter) if j is None]
@@ -387,16 +395,19 @@ def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any
     else:
         lower, weight = np.zeros((1, 1, 1), np.int32), np.zeros((1, 1, 1))
     any_feasible = np.zeros(n, dtype=bool)
+    any_allowed = np.zeros(n, dtype=bool)
     bad_count = clamped_count = allowed_count = 0
     bad_example: tuple[int, int] | None = None
     columns = np.arange(n_choices, dtype=np.int64)
     rows_per_chunk = max(1, CHUNK_ELEMENTS // n_choices)
     for start in range(0, n, rows_per_chunk):
-        rows = np.arange(start, min(n, start + rows_per_chunk), dtype=np.int64)
+        stop = min(n, start + rows_per_chunk)
+        rows = np.arange(start, stop, dtype=np.int64)
         block = _evaluate(data, rows, columns)
         allowed = block.allowed
-        R[rows] = np.where(allowed, block.reward, -np.inf)
-        any_feasible[rows] = block.feasible.any(axis=1)
+        np.copyto(R[start:stop], np.where(allowed, block.reward, -np.inf))
+        any_feasible[start:stop] = block.feasible.any(axis=1)
+        any_allowed[start:stop] = allowed.any(axis=1)
         allowed_count += int(allowed.sum())
         bad = block.bad
         count = int(bad.sum())
@@ -408,8 +419,8 @@ def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any
         clamped_any = np.zeros(allowed.shape, dtype=bool)
         for k, t in enumerate(interpolated):
             low, w, clamped = locate(data.state_grids[t], block.next_values[k])
-            lower[rows, :, k] = low
-            weight[rows, :, k] = w
+            lower[start:stop, :, k] = low
+            weight[start:stop, :, k] = w
             clamped_any |= clamped
         if interpolated:
             clamped_count += int((clamped_any & allowed).sum())
@@ -419,6 +430,7 @@ def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any
         "bad_example": bad_example,
         "clamped": clamped_count if interpolated else None,
         "any_feasible": any_feasible,
+        "any_allowed": any_allowed,
     }
     return (R, next_base, lower, weight), counts
 
@@ -455,7 +467,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
     counts: dict[str, Any]
     if backend == "table":
         tables, counts = _precompute(data)
-        stuck = np.flatnonzero(np.all(tables[0] == -np.inf, axis=1))
+        stuck = np.flatnonzero(~counts["any_allowed"])
         if stuck.size:
             raise _infeasible(data, stuck, counts["any_feasible"])
     else:
@@ -514,13 +526,16 @@ class GridProblem:
         self._policy_cache: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
         self._last_exact: dict[str, Any] | None = None
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
+        self._zeros: np.ndarray | None = None
         self._depth = max(0, math.ceil(math.log2(max(1.0, data.choice_sizes[-1] / BNB_LEAF))))
 
     # Bellman steps ---------------------------------------------------------
 
     def _zero_continuation(self) -> np.ndarray:
-        """An all-zero ``EVt`` for kernels that need only rewards and nodes."""
-        return np.zeros((self._data.n_shocks, self._data.n_grid))
+        """An all-zero ``EVt`` for kernels that need only rewards and nodes (allocated once)."""
+        if self._zeros is None:
+            self._zeros = np.zeros((self._data.n_shocks, self._data.n_grid))
+        return self._zeros
 
     def _continuation(self, v: np.ndarray) -> np.ndarray:
         """``EVt`` (n_shocks, n_grid): ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']``."""
@@ -805,4 +820,3 @@ class GridProblem:
                           BNB_LEAF, self._depth, empty_f, empty_i, empty_i, empty_i)
         k.policy_nodes(empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                        np.empty(0, dtype=np.bool_), np.empty(0, dtype=np.bool_))
-        kernels.policy_csr(np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)), self._data.transition)

@@ -53,6 +53,7 @@ import redis
 from rq import Queue, Worker, get_current_job
 from rq.timeouts import JobTimeoutException
 
+from service.lifecycle import job_finished
 from service.queue import Reaper, ordered_queue_names, reap
 from service.settings import Settings, get_settings
 from service.store import JobStore, connect, is_job_id
@@ -79,7 +80,10 @@ def run_job(job_id: str) -> dict[str, Any]:
     settings = get_settings()
     current = get_current_job()
     connection = current.connection if current is not None else _connection(settings)
-    return {"job": job_id, "outcome": _Execution(JobStore(connection, settings), job_id).run()}
+    store = JobStore(connection, settings)
+    outcome = _Execution(store, job_id).run()
+    job_finished(store, job_id, outcome)
+    return {"job": job_id, "outcome": outcome}
 
 
 _CONNECTIONS: dict[str, redis.Redis] = {}

@@ -35,6 +35,9 @@ SSE_KEEPALIVE_S = 15.0
 SSE_BATCH = 500
 """Most log entries read from Redis per poll of a live log (entries)."""
 
+MAX_LOG_INDEX = 10**12
+"""Largest log index a client may name (Redis list indices are 64-bit)."""
+
 JobState = Literal["queued", "running", "done", "failed", "canceled"]
 
 
@@ -201,14 +204,16 @@ async def get_log(
     store: StoreDep,
     settings: SettingsDep,
     request: Request,
-    cursor: Annotated[int, Query(ge=0, description="Index of the first entry (the `next` of the previous page).")] = 0,
+    cursor: Annotated[
+        int, Query(ge=0, le=MAX_LOG_INDEX, description="Index of the first entry (the `next` of the previous page).")
+    ] = 0,
     limit: Annotated[int, Query(ge=1, le=LOG_PAGE_MAX, description="Most entries on the page.")] = LOG_PAGE_MAX,
     last_event_id: Annotated[str | None, Header(max_length=32)] = None,
 ) -> Any:
     """The convergence log; with `Accept: text/event-stream`, live progress (SSE) until the job ends."""
     await anyio.to_thread.run_sync(_job_or_404, store, job_id, owner)
     if "text/event-stream" in request.headers.get("accept", ""):
-        after = int(last_event_id) if last_event_id and last_event_id.isdigit() else 0
+        after = min(int(last_event_id), MAX_LOG_INDEX) if last_event_id and last_event_id.isdigit() else 0
         return StreamingResponse(
             _live_log(store, job_id, after, settings.sse_poll_s),
             media_type="text/event-stream",

@@ -317,6 +317,10 @@ def test_log_pages_with_cursors(client: httpx.Client, store: JobStore) -> None:
     running = client.get(f"/v1/jobs/{record['id']}").json()
     assert running["state"] == "running" and running["progress"]["iteration"] == 25
     assert_problem(client.get(f"/v1/jobs/{record['id']}/log", params={"limit": 0}), 400)
+    assert_problem(client.get(f"/v1/jobs/{record['id']}/log", params={"cursor": 10**30}), 400)
+    store.finish(record["id"], token, "canceled", iterations=25)
+    huge = client.get(f"/v1/jobs/{record['id']}/log", headers={"accept": "text/event-stream", "last-event-id": "9" * 30})
+    assert huge.status_code == 200 and parse_sse(huge.text)[-1][1] == "end"
 
 
 def parse_sse(text: str) -> list[tuple[str | None, str, dict]]:

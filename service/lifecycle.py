@@ -1,0 +1,35 @@
+"""What happens once a job has finished: its webhook is queued and its sweep moves on.
+
+:func:`job_finished` is called where a job reaches a terminal state (done,
+failed, canceled): by ``worker.task.run_job`` after an execution, and by
+whatever else ends jobs (the sweep routes when they cancel queued jobs).  It
+runs in the worker's work-horse, so it imports no FastAPI and never raises:
+a Redis error here is logged, and the sweep's next read repeats the chain
+step (``service.sweeps``).
+"""
+
+from __future__ import annotations
+
+import logging
+
+from service import sweeps, webhooks
+from service.store import TERMINAL_STATES, JobStore
+
+__all__ = ["job_finished"]
+
+logger = logging.getLogger("fixq.lifecycle")
+
+
+def job_finished(store: JobStore, job_id: str, outcome: str) -> None:
+    """After an execution whose ``outcome`` is a terminal state: notify and advance the sweep.
+
+    Any other ``outcome`` (``busy``, ``terminal``, ``lease_lost``, ...) means
+    this execution did not finish the job, and nothing is done.
+    """
+    if outcome not in TERMINAL_STATES:
+        return
+    for step in (webhooks.schedule, sweeps.job_finished):
+        try:
+            step(store, job_id)
+        except Exception:
+            logger.exception("job %s: %s after it finished failed", job_id, step.__module__ + "." + step.__name__)

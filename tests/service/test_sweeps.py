@@ -1,0 +1,393 @@
+"""``/v1/sweeps`` in process, on the private Redis server.
+
+Executions are the real ``worker.task.run_job`` called in the test process
+(tabular documents only, so no numba compilation); ``run_job`` runs the
+finish hook that advances chained sweeps, as it does under a worker.
+"""
+
+from __future__ import annotations
+
+import copy
+import csv
+import io
+
+import httpx
+import pytest
+from fastapi import FastAPI
+
+from service import queue as rq_queues
+from service import sweeps
+from service.app import create_app
+from service.deps import Caller, current_owner
+from service.routers import sweeps as sweeps_router
+from service.settings import Settings
+from service.store import JobStore
+from tests.service.conftest import make_client
+from worker import solve
+from worker.task import run_job
+
+PROBLEM_JSON = "application/problem+json"
+
+
+def machine_shop(**overrides) -> dict:
+    """An invented three-state machine: run it, or repair it at a cost."""
+    document = {
+        "version": 1,
+        "label": "machine shop (invented)",
+        "tags": ["shop"],
+        "discount": 0.9,
+        "model": {
+            "kind": "tabular",
+            "states": ["new", "worn", "broken"],
+            "actions": ["run", "repair"],
+            "reward": [[3.0, -1.0], [2.0, -1.0], [None, -4.0]],
+            "transition": [
+                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
+                [[0.0, 0.7, 0.3], [1.0, 0.0, 0.0]],
+                [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]],
+            ],
+        },
+        "solver": {"method": "value_iteration", "tolerance": 1e-8},
+        "report": {"stationary": True},
+    }
+    document.update(overrides)
+    return document
+
+
+def with_sweeps(app: FastAPI) -> FastAPI:
+    """The app with the sweeps router, whether or not ``create_app`` includes it yet."""
+    if not any(getattr(route, "path", "") == "/v1/sweeps" for route in app.routes):
+        app.include_router(sweeps_router.router)
+    return app
+
+
+@pytest.fixture
+def sweep_app(app_settings: Settings, redis_client) -> FastAPI:
+    return with_sweeps(create_app(app_settings))
+
+
+@pytest.fixture
+def http(sweep_app: FastAPI):
+    with make_client(sweep_app) as client:
+        yield client
+
+
+def assert_problem(response: httpx.Response, status: int) -> dict:
+    assert response.status_code == status, response.text
+    assert response.headers["content-type"] == PROBLEM_JSON
+    body = response.json()
+    assert body["status"] == status and body["detail"]
+    return body
+
+
+def post_sweep(http: httpx.Client, **body) -> dict:
+    response = http.post("/v1/sweeps", json={"base": machine_shop(), **body})
+    assert response.status_code == 202, response.text
+    sweep = response.json()
+    assert response.headers["location"] == f"/v1/sweeps/{sweep['id']}"
+    return sweep
+
+
+def run_inline(store: JobStore, job_id: str) -> str:
+    """One real execution of a job in this process, taking its RQ entry off the queue as a worker would."""
+    record = store.get_job(job_id)
+    store.redis.lrem(rq_queues.queue_key(record["priority"]), 0, f"{job_id}-1")
+    return run_job(job_id)["outcome"]
+
+
+def run_all(http: httpx.Client, store: JobStore, sweep_id: str) -> dict:
+    """Run the sweep's jobs inline, as they appear, until none is left queued."""
+    for _ in range(100):
+        view = http.get(f"/v1/sweeps/{sweep_id}", params={"limit": 1000}).json()
+        queued = [row["job"] for row in view["rows"]["data"] if row["state"] == "queued"]
+        if not queued:
+            return view
+        for job_id in queued:
+            assert run_inline(store, job_id) == "done"
+    raise AssertionError("the sweep never ran out of queued jobs")
+
+
+def test_parse_path_reads_keys_and_indices() -> None:
+    assert sweeps.parse_path("discount") == ("discount",)
+    assert sweeps.parse_path("model.params.gamma") == ("model", "params", "gamma")
+    assert sweeps.parse_path("model.reward[0][1]") == ("model", "reward", 0, 1)
+    assert sweeps.parse_path("model.feasible[0]") == ("model", "feasible", 0)
+    for bad in ["", ".a", "a.", "a..b", "[0]", "a[x]", "a[0]b", "a.[0]", "a[-1]"]:
+        with pytest.raises(ValueError):
+            sweeps.parse_path(bad)
+
+
+def test_product_combinations_in_c_order_and_documents_leave_the_base_alone(settings: Settings) -> None:
+    base = machine_shop()
+    pristine = copy.deepcopy(base)
+    request = sweeps.parse_request(
+        {"base": base, "vary": {"discount": [0.8, 0.9], "model.reward[0][1]": [-1.0, -2.0, -3.0]}}, settings
+    )
+    assert request.count == 6 and request.shape == (2, 3)
+    assert [request.values_of(i) for i in (0, 1, 3, 5)] == [
+        {"discount": 0.8, "model.reward[0][1]": -1.0},
+        {"discount": 0.8, "model.reward[0][1]": -2.0},
+        {"discount": 0.9, "model.reward[0][1]": -1.0},
+        {"discount": 0.9, "model.reward[0][1]": -3.0},
+    ]
+    document = request.document(5, sweep_id="0123456789abcdef")
+    assert document["discount"] == 0.9 and document["model"]["reward"][0] == [3.0, -3.0]
+    assert document["model"]["reward"][1] is base["model"]["reward"][1]  # untouched parts are shared
+    assert document["tags"] == ["shop", "sweep:0123456789abcdef"]
+    assert document["label"].startswith("machine shop (invented) · discount=0.9, model.reward[0][1]=-3.0")
+    assert base == pristine
+
+
+def test_chain_tree_steps_back_along_the_last_non_zero_axis(settings: Settings) -> None:
+    request = sweeps.parse_request(
+        {"base": machine_shop(), "vary": {"discount": [0.8, 0.85, 0.9], "solver.tolerance": [1e-6, 1e-7]},
+         "chain": True},
+        settings,
+    )  # fmt: skip
+    predecessors = [request.predecessor(i) for i in range(6)]
+    # (i, j) ← (i, j-1) when j > 0, else (i-1, 0).
+    assert predecessors == [None, 0, 0, 2, 2, 4]
+    assert [request.successors(i) for i in range(6)] == [[2, 1], [], [4, 3], [], [5], []]
+    zipped = sweeps.parse_request(
+        {"base": machine_shop(), "vary": {"discount": [0.8, 0.9, 0.95], "solver.tolerance": [1e-6, 1e-7, 1e-8]},
+         "mode": "zip", "chain": True},
+        settings,
+    )  # fmt: skip
+    assert zipped.count == 3 and [zipped.predecessor(i) for i in range(3)] == [None, 0, 1]
+    assert zipped.values_of(2) == {"discount": 0.95, "solver.tolerance": 1e-8}
+
+
+def test_a_sweep_queues_one_tagged_job_per_combination(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.8, 0.9], "model.reward[0][1]": [-1.0, -2.0]}, tags=["calib"],
+                       label="shop calibration", priority="low")  # fmt: skip
+    assert sweep["combinations"] == 4 and sweep["state"] == "active" and sweep["counts"]["queued"] == 4
+    assert sweep["tag"] == f"sweep:{sweep['id']}" and sweep["priority"] == "low"
+    rows = sweep["rows"]["data"]
+    assert [row["values"] for row in rows][1] == {"discount": 0.8, "model.reward[0][1]": -2.0}
+    assert all(row["state"] == "queued" and row["job"] for row in rows)
+    assert store.queue_depths()["low"] == 4
+    listed = http.get("/v1/jobs", params={"tag": sweep["tag"]}).json()["data"]
+    assert {job["id"] for job in listed} == {row["job"] for row in rows}
+    job = store.get_job(rows[3]["job"])
+    assert job["tags"] == ["shop", "calib", sweep["tag"]] and job["priority"] == "low"
+    assert job["label"].startswith("shop calibration · discount=0.9")
+    document = store.get_document(rows[3]["job"])
+    assert document["discount"] == 0.9 and document["model"]["reward"][0] == [3.0, -2.0]
+
+
+def test_rows_report_iterations_bounds_means_and_a_csv_table(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.8, 0.9, 0.95]})
+    view = run_all(http, store, sweep["id"])
+    assert view["state"] == "finished" and view["counts"]["done"] == 3
+    for row in view["rows"]["data"]:
+        result = store.get_result(row["job"])
+        assert row["status"] == result["status"] == "converged"
+        assert row["iterations"] == result["iterations"] and row["error_bound"] == result["error_bound"]
+        assert row["means"] == result["stationary"]["means"]
+    # A more patient owner runs the machine longer before repairing it: the same
+    # document solved in process gives the same means.
+    reference = solve(machine_shop(discount=0.95))
+    assert view["rows"]["data"][2]["means"] == pytest.approx(reference["stationary"]["means"], rel=1e-9)
+
+    response = http.get(f"/v1/sweeps/{sweep['id']}", params={"format": "csv"})
+    assert response.status_code == 200 and response.headers["content-type"].startswith("text/csv")
+    table = list(csv.reader(io.StringIO(response.text)))
+    assert table[0] == ["index", "discount", "job", "state", "status", "iterations", "error_bound",
+                        "mean.state", "mean.action", "error"]  # fmt: skip
+    assert [line[1] for line in table[1:]] == ["0.8", "0.9", "0.95"]
+    assert float(table[3][7]) == pytest.approx(view["rows"]["data"][2]["means"]["state"])
+
+
+def test_rows_are_paginated(http: httpx.Client) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.8, 0.85, 0.9, 0.95, 0.97]})
+    first = http.get(f"/v1/sweeps/{sweep['id']}", params={"limit": 2}).json()["rows"]
+    assert [row["index"] for row in first["data"]] == [0, 1] and first["next"] == 2
+    last = http.get(f"/v1/sweeps/{sweep['id']}", params={"limit": 2, "cursor": 4}).json()["rows"]
+    assert [row["index"] for row in last["data"]] == [4] and last["next"] is None
+
+
+def test_a_refused_combination_names_its_vary_entry_and_creates_nothing(http: httpx.Client, store: JobStore) -> None:
+    body = {"base": machine_shop(), "vary": {"discount": [0.9, 1.5], "model.reward[0][1]": [-1.0, -2.0]}}
+    problem = assert_problem(http.post("/v1/sweeps", json=body), 422)
+    faults = {error["path"]: error["message"] for error in problem["errors"]}
+    assert list(faults) == ["vary.discount[1]"]
+    assert faults["vary.discount[1]"].startswith("discount: the discount factor must lie strictly between 0 and 1")
+    assert "in 2 of 4 combinations; first #2" in faults["vary.discount[1]"]
+    assert store.counts_by_state()["queued"] == 0 and store.queue_depths()["normal"] == 0
+    assert http.get("/v1/sweeps").json()["data"] == []
+
+
+def test_faults_outside_the_varied_paths_are_named_in_the_base(http: httpx.Client) -> None:
+    base = machine_shop()
+    base["model"]["transition"][0][0] = [0.5, 0.6, 0.0]
+    problem = assert_problem(http.post("/v1/sweeps", json={"base": base, "vary": {"discount": [0.8, 0.9]}}), 422)
+    paths = [error["path"] for error in problem["errors"]]
+    assert paths and all(path.startswith("base.model.transition[0][0]") for path in paths)
+    assert "in 2 of 2 combinations" in problem["errors"][0]["message"]
+
+
+@pytest.mark.parametrize(
+    ("body", "path", "words"),
+    [
+        ({"vary": {}}, "vary", "required"),
+        ({"vary": {"discount": []}}, "vary.discount", "non-empty list"),
+        ({"vary": {"tags": [["a"]]}}, "vary.tags", "whole sweep"),
+        ({"vary": {"notify.url": ["http://x"]}}, "vary.notify.url", "whole sweep"),
+        ({"vary": {"solver.initial": ["zeros"]}, "chain": True}, "vary.solver.initial", "set by the chain"),
+        ({"vary": {"model.reward[7][0]": [1.0]}}, "vary.model.reward[7][0]", "has 3 items"),
+        ({"vary": {"discount.x": [1.0]}}, "vary.discount.x", "not an object"),
+        ({"vary": {"model": [{}], "model.kind": ["grid"]}}, "vary.model.kind", "overlaps"),
+        ({"vary": {"a[": [1]}}, "vary.a[", "not a path"),
+        ({"vary": {"discount": [0.8, 0.9], "solver.tolerance": [1e-6]}, "mode": "zip"}, "vary", "same length"),
+        ({"vary": {"discount": [0.9]}, "mode": "grid"}, "mode", "product"),
+        ({"vary": {"discount": [0.9]}, "chain": "yes"}, "chain", "true or false"),
+        ({"vary": {"discount": [0.9]}, "colour": "red"}, "colour", "unknown key"),
+        ({"vary": {"discount": [0.9]}, "tags": ["no spaces"]}, "tags[0]", "a tag must be"),
+        ({"vary": {"discount": [0.9]}, "tags": [f"t{i}" for i in range(31)]}, "tags", "at most 32"),
+        ({"vary": {"discount": [0.9]}, "priority": "urgent"}, "priority", "high"),
+    ],
+)
+def test_malformed_sweep_requests_are_422_naming_the_field(http: httpx.Client, body: dict, path: str, words: str) -> None:
+    problem = assert_problem(http.post("/v1/sweeps", json={"base": machine_shop(), **body}), 422)
+    messages = {error["path"]: error["message"] for error in problem["errors"]}
+    assert path in messages and words in messages[path], messages
+
+
+def test_a_sweep_without_a_base_is_422(http: httpx.Client) -> None:
+    problem = assert_problem(http.post("/v1/sweeps", json={"vary": {"discount": [0.9]}}), 422)
+    assert problem["errors"][0]["path"] == "base"
+
+
+def test_a_sweep_over_the_combination_cap_is_413_naming_the_setting(app_settings: Settings, redis_client) -> None:
+    app = with_sweeps(create_app(app_settings.model_copy(update={"sweep_max_combinations": 4})))
+    with make_client(app) as http:
+        body = {"base": machine_shop(), "vary": {"discount": [0.8, 0.9, 0.95], "solver.tolerance": [1e-6, 1e-7]}}
+        problem = assert_problem(http.post("/v1/sweeps", json=body), 413)
+        assert problem["errors"][0]["path"] == "vary"
+        assert "6 combinations" in problem["detail"] and "sweep_max_combinations = 4" in problem["detail"]
+        small = {"base": machine_shop(), "vary": {"discount": [0.8, 0.9]}}
+        assert http.post("/v1/sweeps", json=small).status_code == 202
+
+
+def test_a_sweep_whose_documents_exceed_the_storage_cap_is_413(app_settings: Settings, redis_client) -> None:
+    app = with_sweeps(create_app(app_settings.model_copy(update={"sweep_max_documents_mb": 0.001})))
+    with make_client(app) as http:
+        body = {"base": machine_shop(), "vary": {"discount": [0.8, 0.9, 0.95]}}
+        problem = assert_problem(http.post("/v1/sweeps", json=body), 413)
+        assert problem["errors"][0]["path"] == "base" and "sweep_max_documents_mb" in problem["detail"]
+
+
+def test_a_webhook_in_the_base_is_refused_unless_allowlisted(http: httpx.Client, store: JobStore) -> None:
+    base = machine_shop(notify={"url": "http://127.0.0.1:9/hook", "secret": "s"})
+    problem = assert_problem(http.post("/v1/sweeps", json={"base": base, "vary": {"discount": [0.8, 0.9]}}), 422)
+    assert problem["errors"][0]["path"] == "base.notify.url"
+    assert "notify_allow_hosts is empty" in problem["errors"][0]["message"]
+    assert store.counts_by_state()["queued"] == 0
+
+
+def test_a_chain_creates_each_job_once_its_predecessor_finished(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92], "model.reward[0][0]": [3.0, 3.2]}, chain=True)
+    rows = sweep["rows"]["data"]
+    assert [row["state"] for row in rows] == ["queued", "waiting", "waiting", "waiting"]
+    assert [row["after"] for row in rows] == [None, 0, 0, 2]
+    assert rows[1]["job"] is None and sweep["counts"]["waiting"] == 3
+    root = rows[0]["job"]
+    assert store.get_document(root).get("solver", {}).get("initial", "zeros") == "zeros"
+    assert run_inline(store, root) == "done"
+    view = http.get(f"/v1/sweeps/{sweep['id']}").json()
+    assert [row["state"] for row in view["rows"]["data"]] == ["done", "queued", "queued", "waiting"]
+    view = run_all(http, store, sweep["id"])
+    assert view["state"] == "finished"
+    jobs = [row["job"] for row in view["rows"]["data"]]
+    for index, before in ((1, 0), (2, 0), (3, 2)):
+        assert store.get_document(jobs[index])["solver"]["initial"] == {"job": jobs[before]}
+        assert store.get_job(jobs[index])["started_at"] >= store.get_job(jobs[before])["finished_at"]
+    # A warm start from the neighbouring calibration needs fewer Bellman steps than the cold root.
+    iterations = [row["iterations"] for row in view["rows"]["data"]]
+    assert all(n < iterations[0] for n in iterations[1:]), iterations
+    # Warm or cold, each value function lies within its certified bound of the fixed point.
+    for row in view["rows"]["data"][1:]:
+        cold = solve(store.get_document(row["job"]) | {"solver": {"method": "value_iteration", "tolerance": 1e-8}})
+        warm = store.get_result(row["job"])
+        gap = max(abs(a - b) for a, b in zip(warm["value"], cold["value"]))
+        assert gap <= warm["error_bound"] + cold["error_bound"]
+
+
+def test_a_chain_goes_on_cold_after_a_canceled_predecessor(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92]}, chain=True)
+    root = sweep["rows"]["data"][0]["job"]
+    # Canceled in its queue: no worker sees it end, so reading the sweep takes the chain on.
+    assert http.delete(f"/v1/jobs/{root}").json()["state"] == "canceled"
+    view = http.get(f"/v1/sweeps/{sweep['id']}").json()
+    second = view["rows"]["data"][1]
+    assert second["state"] == "queued"
+    assert store.get_document(second["job"])["solver"] == machine_shop()["solver"]
+    assert view["state"] == "active" and view["counts"] == {"waiting": 0, "queued": 1, "running": 0, "done": 0,
+                                                           "failed": 0, "canceled": 1}  # fmt: skip
+
+
+def test_delete_cancels_the_remaining_jobs_and_starts_no_more(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92, 0.94]}, chain=True)
+    root = sweep["rows"]["data"][0]["job"]
+    response = http.delete(f"/v1/sweeps/{sweep['id']}")
+    assert response.status_code == 200
+    view = response.json()
+    assert view["state"] == "canceled" and view["canceled_at"]
+    assert [row["state"] for row in view["rows"]["data"]] == ["canceled"] * 3
+    assert store.get_job(root)["state"] == "canceled" and store.queue_depths()["normal"] == 0
+    again = http.get(f"/v1/sweeps/{sweep['id']}").json()
+    assert [row["job"] for row in again["rows"]["data"]] == [root, None, None]
+
+
+def test_delete_asks_running_jobs_to_stop(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92]})
+    job_id = sweep["rows"]["data"][0]["job"]
+    assert store.claim(job_id, "token", worker="test:1") == "ok"
+    response = http.delete(f"/v1/sweeps/{sweep['id']}")
+    assert response.status_code == 202
+    states = [row["state"] for row in response.json()["rows"]["data"]]
+    assert states == ["running", "canceled"]
+    assert store.stop_signals(job_id, "token") == (True, True)
+
+
+def test_another_owner_sees_404_and_an_admin_sees_all(app_settings: Settings, redis_client) -> None:
+    def app_for(caller: Caller) -> FastAPI:
+        app = with_sweeps(create_app(app_settings))
+        app.dependency_overrides[current_owner] = lambda: caller
+        return app
+
+    with make_client(app_for(Caller("alice"))) as alice, make_client(app_for(Caller("bob"))) as bob, \
+            make_client(app_for(Caller("root", admin=True))) as admin:  # fmt: skip
+        sweep = post_sweep(alice, vary={"discount": [0.9, 0.92]})
+        assert sweep["owner"] == "alice"
+        path = f"/v1/sweeps/{sweep['id']}"
+        assert_problem(bob.get(path), 404)
+        assert_problem(bob.delete(path), 404)
+        assert bob.get("/v1/sweeps").json()["data"] == []
+        assert bob.get("/v1/jobs", params={"tag": sweep["tag"]}).json()["data"] == []
+        assert admin.get(path).status_code == 200
+        assert [s["id"] for s in admin.get("/v1/sweeps").json()["data"]] == [sweep["id"]]
+        assert all(alice.get(f"/v1/jobs/{row['job']}").json()["owner"] == "alice" for row in sweep["rows"]["data"])
+
+
+def test_unknown_and_malformed_sweep_ids_are_404(http: httpx.Client) -> None:
+    assert_problem(http.get("/v1/sweeps/0123456789abcdef"), 404)
+    assert_problem(http.get("/v1/sweeps/not-an-id"), 404)
+    assert_problem(http.delete("/v1/sweeps/0123456789abcdef"), 404)
+
+
+def test_the_list_is_newest_first_and_paginated(http: httpx.Client) -> None:
+    ids = [post_sweep(http, vary={"discount": [0.9]})["id"] for _ in range(3)]
+    first = http.get("/v1/sweeps", params={"limit": 2}).json()
+    assert [s["id"] for s in first["data"]] == ids[::-1][:2] and first["next"]
+    assert "rows" not in first["data"][0]
+    rest = http.get("/v1/sweeps", params={"limit": 2, "cursor": first["next"]}).json()
+    assert [s["id"] for s in rest["data"]] == [ids[0]] and rest["next"] is None
+    assert_problem(http.get("/v1/sweeps", params={"cursor": "garbage"}), 400)
+
+
+def test_an_idempotency_key_returns_the_same_sweep(http: httpx.Client, store: JobStore) -> None:
+    body = {"base": machine_shop(), "vary": {"discount": [0.9, 0.92]}}
+    first = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
+    second = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
+    assert first["id"] == second["id"] and store.counts_by_state()["queued"] == 2
