@@ -97,7 +97,9 @@ class Settings(BaseSettings):
         "addresses stay refused.",
     )
     notify_timeout_s: float = Field(
-        5.0, gt=0, description="Seconds one webhook attempt may spend on each of connecting, sending and waiting for the answer."
+        5.0,
+        gt=0,
+        description="Seconds one webhook attempt may spend on each of connecting, sending and waiting for the answer.",
     )
     notify_retry_delays_s: list[float] = Field(
         [1.0, 5.0, 30.0, 120.0, 600.0],
@@ -106,7 +108,9 @@ class Settings(BaseSettings):
         "repeats); JSON in the environment, e.g. FIXQ_NOTIFY_RETRY_DELAYS_S='[1, 5, 30]'.",
     )
     notify_max_attempts: int = Field(
-        6, ge=1, description="Attempts at delivering one webhook (the first and its retries) before it is given up (count)."
+        6,
+        ge=1,
+        description="Attempts at delivering one webhook (the first and its retries) before it is given up (count).",
     )
     notify_poll_s: float = Field(
         0.5, gt=0, description="Seconds an idle notifier thread waits before it looks again for due webhook deliveries."

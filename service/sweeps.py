@@ -50,8 +50,9 @@ A job that must wait for its predecessor is not created until the
 predecessor has finished: rows then show ``state: "waiting"`` and no job.
 When a sweep job finishes, the worker (``service.lifecycle``) creates the
 combinations that start from it, with ``solver.initial: {"job": ID}`` when it
-is ``done``, else with the base's ``solver.initial`` (a failed or canceled
-predecessor does not fail the rest of the chain).  Creation is claimed per
+is ``done`` and its result still stored, else with the base's
+``solver.initial`` (a failed or canceled predecessor does not fail the rest
+of the chain).  Creation is claimed per
 row (``SET NX PX``) and reading a sweep repeats it for any row whose
 predecessor has finished without a successor, so a worker dying between the
 two does not stall the chain.  fixq's own reaper re-enqueues any ``queued``
@@ -69,6 +70,7 @@ Keys (prefix ``fixq``)
 ``fixq:sweep:{id}:means``         hash    combination index → stationary means (JSON)
 ``fixq:sweep:{id}:errors``        hash    combination index → why its job was not created
 ``fixq:sweep:{id}:claim:{i}``     string  a short-lived claim on creating row ``i``'s job
+``fixq:sweep:{id}:door``          string  present while ``POST`` is still creating the first jobs
 ``fixq:sweepjob:{job id}``        string  ``{sweep id}:{index}`` of a sweep's job
 ``fixq:sweeps``                   zset    sweep ids by creation time (ms)
 ``fixq:sweeps:owner:{owner}``     zset    the same per owner
@@ -87,7 +89,7 @@ import re
 import secrets
 import time
 import zlib
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from typing import Any
@@ -123,6 +125,9 @@ ROW_STATES = ("waiting", "queued", "running", "done", "failed", "canceled")
 """States of a row: a job's state, or ``waiting`` while its chain predecessor runs."""
 CLAIM_MS = 60_000
 """Milliseconds a claim on creating one row's job lasts; a creator that died loses it then."""
+DOOR_RENEW_EVERY = 200
+"""Jobs the door creates between two renewals of its marker ``fixq:sweep:{id}:door`` (count), which
+lasts ``CLAIM_MS``: while it lives, reading the sweep leaves the first jobs to the door."""
 MAX_REPORTED = 100
 """Most distinct faults listed when combinations are refused (count)."""
 VALUE_IN_LABEL_CHARS = 40
@@ -184,7 +189,11 @@ def _with_value(node: Any, segments: Segments, value: Any) -> Any:
     """A copy of ``node`` with ``value`` at ``segments``; only the containers on the path are copied."""
     head, rest = segments[0], segments[1:]
     copy: Any = list(node) if isinstance(head, int) else dict(node or {})
-    copy[head] = value if not rest else _with_value(copy[head] if isinstance(head, int) else copy.get(head), rest, value)
+    if not rest:
+        copy[head] = value
+    else:
+        child = copy[head] if isinstance(head, int) else copy.get(head)
+        copy[head] = _with_value(child, rest, value)
     return copy
 
 
@@ -342,7 +351,7 @@ def parse_request(body: dict[str, Any], settings: Settings) -> SweepRequest:
         fault("base", "required: the problem document that every combination starts from (a JSON object)")
     mode = body.get("mode", "product")
     if mode not in MODES:
-        fault("mode", f'must be "product" (every combination, the default) or "zip" (the i-th value of each), got {mode!r}')
+        fault("mode", f'must be "product" (every combination, the default) or "zip" (the i-th of each), got {mode!r}')
     chain = body.get("chain", False)
     if not isinstance(chain, bool):
         fault("chain", f"must be true or false, got {chain!r}")
@@ -363,7 +372,7 @@ def parse_request(body: dict[str, Any], settings: Settings) -> SweepRequest:
     if isinstance(base, dict) and isinstance(tags, list) and isinstance(base.get("tags", []), list):
         total = len(dict.fromkeys([*base.get("tags", []), *tags])) + 1
         if total > MAX_TAGS:
-            fault("tags", f"the jobs would carry {total} tags (the base's, the sweep's and sweep:ID); at most {MAX_TAGS}")
+            fault("tags", f"the jobs would carry {total} tags (the base's, the sweep's, sweep:ID); at most {MAX_TAGS}")
     if mode == "zip" and len({len(v) for v in values}) > 1:
         lengths = ", ".join(f"{p}: {len(v)}" for p, v in zip(paths, values))
         fault("vary", f'with mode "zip" every list needs the same length; got {lengths}')
@@ -422,7 +431,7 @@ def _check_size(request: SweepRequest, settings: Settings) -> None:
         raise TooLarge.at(
             "base",
             f"{request.count:,} copies of this base document take about {total_mb:,.0f} MiB, over the cap "
-            f"sweep_max_documents_mb = {settings.sweep_max_documents_mb:g} MiB; vary fewer values or send smaller arrays",
+            f"sweep_max_documents_mb = {settings.sweep_max_documents_mb:g} MiB; vary fewer values or pack the arrays",
         )
 
 
@@ -474,6 +483,7 @@ class _Keys:
         self.jobs = f"{self.sweep}:jobs"
         self.means = f"{self.sweep}:means"
         self.errors = f"{self.sweep}:errors"
+        self.door = f"{self.sweep}:door"
         self._store = store
 
     def claim(self, index: int) -> str:
@@ -595,7 +605,10 @@ def create_sweep(
     sweep = _store_sweep(store, sweep_id, caller.owner, request, stationary)
     try:
         for index in first_jobs:
+            if index % DOOR_RENEW_EVERY == 0:
+                store.redis.set(sweep.keys.door, "1", px=CLAIM_MS)
             _ensure_job(sweep, index, prepared=prepared.get(index))
+        store.redis.delete(sweep.keys.door)
     except redis.RedisError:
         # Nothing half-done: what was created is canceled, then the 503 is answered.
         try:
@@ -659,7 +672,8 @@ def _ensure_job(sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = N
                 prepared = _readmit(sweep, raw)
         record = create_submitted_job(raw, store, owner=sweep.owner, **prepared)
     except FixqError as exc:
-        store.redis.hset(keys.errors, index, orjson.dumps({"title": exc.title, "detail": exc.detail, "errors": exc.errors}))
+        error = {"title": exc.title, "detail": exc.detail, "errors": exc.errors}
+        store.redis.hset(keys.errors, index, orjson.dumps(error))
         return None
     finally:
         store.redis.delete(keys.claim(index))
@@ -758,7 +772,7 @@ def _row_states(sweep: Sweep) -> tuple[dict[int, str], dict[int, str]]:
 def _reconcile(sweep: Sweep, jobs: dict[int, str], states: dict[int, str]) -> bool:
     """Create the jobs of rows whose predecessor finished without starting them; True if any was."""
     plan = sweep.plan
-    if sweep.canceled_at is not None or len(jobs) >= plan.count:
+    if sweep.canceled_at is not None or len(jobs) >= plan.count or sweep.store.redis.exists(sweep.keys.door):
         return False
     errors = {int(k) for k in sweep.store.redis.hkeys(sweep.keys.errors)}
     created = False
@@ -803,7 +817,8 @@ def sweep_view(sweep: Sweep, *, cursor: int = 0, limit: int | None = 100) -> dic
     end = total if limit is None else min(total, cursor + limit)
     page = range(min(cursor, total), end)
     rows = _rows(sweep, page, jobs, states, errors, row_state)
-    return {**sweep.public(), "state": state, "counts": counts, "rows": {"data": rows, "next": end if end < total else None}}
+    next_row = end if end < total else None
+    return {**sweep.public(), "state": state, "counts": counts, "rows": {"data": rows, "next": next_row}}
 
 
 def _rows(

@@ -586,9 +586,6 @@ class _Writer:
             out.add("bad = True")
         out.depth = depth
 
-    def scratch(self, out: _Lines) -> None:
-        out.add(f"idx_row = np.empty({self.layout.nodes}, dtype=np.int64)", f"w_row = np.empty({self.layout.nodes})")
-
     def prologue(self, out: _Lines) -> None:
         self.unpack(out)
         self.params(out)

@@ -54,20 +54,28 @@ CHUNK_ELEMENTS = 1 << 20
 CHUNK_TEMPORARIES = 8
 """float64 temporaries of chunk size alive at once while evaluating a model's expressions (count)."""
 
-TABLE_READ_NS = 1.0
+TABLE_READ_NS = 3.0
 """Cost of one (state, choice) pair in a compiled table scan (nanoseconds)."""
 NUMPY_PAIR_NS = 40.0
 """Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds)."""
-POINT_NS = 12.0
-"""Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds)."""
-BOUND_NS = 40.0
+POINT_NS = 40.0
+"""Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds; one
+``pow`` with a runtime exponent dominates)."""
+BOUND_NS = 150.0
 """Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
-LEAF_POINTS = 32
-"""Choices the exact block search evaluates pointwise per block it cannot skip (count)."""
+EXACT_POINTS_PER_ROOT_CHOICE = 5.0
+"""The exact block search evaluates about this many points times √(choices) per state: interval
+bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
+(measured on growth models: about 150 points at 1,000 choices, 700 at 20,000)."""
+HOWARD_STEPS_PER_OCTAVE = 3.0
+"""Howard needs about this many improvement steps per doubling of the choice grid: on fine grids
+the greedy policy keeps moving for many steps (measured: 30 at 1,000 choices, 48 at 20,000)."""
 MATVEC_NS = 2.0
 """Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
 COMPILE_S = 6.0
 """Compilation on first use of a model structure on a machine (seconds; cached afterwards)."""
+CHOICE_BYTES = 17
+"""Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
 RESULT_BYTES_PER_STATE = 120
 """Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
 SOLVER_BYTES_PER_STATE = 96
@@ -181,7 +189,8 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     nodes = 2**interpolated
     monotone, concave, note = hint_use(model)
 
-    common = _grid_common_bytes(n, shocks, nodes, method)
+    # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
+    common = _grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
     table_bytes = pairs * (8 + 12 * interpolated)
     chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
     precompute_bytes = common + table_bytes + chunk
@@ -238,8 +247,9 @@ def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
     return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
 
 
-def _steps(doc: Any) -> tuple[int, int, str]:
-    """(improvement steps, evaluation sweeps per step, basis) guessed from β, the tolerance and the method."""
+def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
+    """(improvement steps, evaluation sweeps per step, basis) guessed from β, the tolerance, the method
+    and the number of choices."""
     beta = float(doc.discount)
     solver = doc.solver
     tolerance = float(solver.tolerance)
@@ -255,10 +265,12 @@ def _steps(doc: Any) -> tuple[int, int, str]:
     else:
         sweeps = int(solver.evaluation_steps)
         steps = math.ceil(math.log(target) / (per_step * (sweeps + 1))) + 2
+        steps = max(steps, math.ceil(HOWARD_STEPS_PER_OCTAVE * math.log2(max(choices, 2))))
     steps = min(max(steps, 1), int(solver.max_iterations))
     basis = (
         f"{steps} improvement steps ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
-        f"order 1/(1 − β))" + (f", {sweeps} evaluation sweeps each" if sweeps else "")
+        f"order 1/(1 − β); Howard at least {HOWARD_STEPS_PER_OCTAVE:g} per doubling of the choices)"
+        + (f", {sweeps} evaluation sweeps each" if sweeps else "")
     )
     return steps, sweeps, basis
 
@@ -280,7 +292,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         return _tabular_estimate(doc)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
-    steps, sweeps, basis = _steps(doc)
+    steps, sweeps, basis = _steps(doc, plan.choices)
     matrix_entries = plan.n * plan.nodes * plan.shocks
     evaluation = sweeps * matrix_entries * MATVEC_NS
     if plan.regime == "precomputed":
@@ -289,14 +301,15 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         how = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans ({TABLE_READ_NS:g} ns per pair)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
-        blocks = max(1, math.ceil(math.log2(max(plan.choices / LEAF_POINTS, 1.0))))
-        exact = plan.n * (2 * blocks * BOUND_NS + 2 * min(LEAF_POINTS, plan.choices) * POINT_NS)
-        hinted = plan.n * 4 * POINT_NS
+        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
+        points = min(float(plan.choices), EXACT_POINTS_PER_ROOT_CHOICE * math.sqrt(plan.choices))
+        exact = plan.n * (blocks * BOUND_NS + points * POINT_NS)
+        hinted = plan.n * 5 * POINT_NS
         step = hinted if plan.hints_active else exact
         how = (
             f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point, {BOUND_NS:g} ns per block bound); "
-            + ("hinted steps look at a few choices per state, exact ones" if plan.hints_active else "exact steps")
-            + f" bound about {2 * blocks} blocks and evaluate about {2 * min(LEAF_POINTS, plan.choices)} points per state"
+            + ("hinted steps look at about 5 choices per state, exact ones" if plan.hints_active else "exact steps")
+            + f" bound about {blocks} blocks and evaluate about {points:,.0f} points per state"
         )
         if plan.hints_active:
             step_total = (steps - 2) * step + 2 * exact
@@ -350,7 +363,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
     matrix = n_states * n_states * 12 if doc.solver.method != "policy_iteration" else n_states * n_states * 120
     matrix = min(matrix, stored * 12 * (10 if doc.solver.method == "policy_iteration" else 1))
-    steps, sweeps, basis = _steps(doc)
+    steps, sweeps, basis = _steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * TABLE_READ_NS
     seconds = (steps * step + steps * sweeps * min(stored, n_states * n_states) * MATVEC_NS) * 1e-9
     notes = [

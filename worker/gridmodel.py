@@ -36,8 +36,9 @@ reward is a finite number and every ``next`` value is a number (not NaN).
 A state with no allowed choice makes the document infeasible:
 :class:`~worker.errors.InfeasibleModel` names the first few such states by
 their grid values, at ``model.feasible`` (or ``model.reward`` when choices
-are feasible but none has a finite reward).  :func:`check_feasibility` runs
-the same check cheaply, without compiling anything, for the service's door.
+are feasible but none has a finite reward).  :func:`check_feasibility` (from
+:mod:`worker.feasibility`, which imports no numba) runs the same check
+cheaply, without compiling anything, for the service's door.
 
 Regimes and hints
 -----------------
@@ -54,7 +55,6 @@ from __future__ import annotations
 
 import math
 import time
-from dataclasses import dataclass
 from types import ModuleType, SimpleNamespace
 from typing import Any
 
@@ -62,11 +62,10 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker import _codegen, kernels
-from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.estimate import CHUNK_ELEMENTS, GridPlan, grid_plan
-from worker.expressions import evaluate, parse
+from worker.expressions import evaluate
+from worker.feasibility import ModelData, check_feasibility, evaluate_pairs, feasibility_scan, infeasible, model_data
 from worker.grids import locate
-from worker.shocks import product_chain
 
 __all__ = [
     "BNB_LEAF",
@@ -84,294 +83,7 @@ EDGE_WARNING_SHARE = 0.01
 """Share of states at the lowest or highest point of a choice grid above which the diagnostics warn."""
 SCAN_MAX_PAIRS = 20_000_000
 """On the fly, (state, choice) pairs up to which the diagnostics count clamped pairs over all choices."""
-FEASIBILITY_MAX_PASS = 4096
-"""Most choices the feasibility check tries in one pass over the undecided states (count)."""
-FEASIBILITY_MAX_STATES = 50_000_000
-"""A budgeted feasibility check (the service's door) of more states than this answers
-"undecided" at once instead of allocating its work lists (count)."""
-_LISTED_STATES = 3
-"""States named in an infeasibility error before the rest are counted."""
-
-
-@dataclass
-class _ModelData:
-    """A grid model's numbers and parsed expressions (no tables)."""
-
-    params: tuple[str, ...]
-    param_values: np.ndarray
-    states: tuple[str, ...]
-    state_grids: list[np.ndarray]
-    shocks: tuple[str, ...]
-    shock_values: list[np.ndarray]
-    shock_table: np.ndarray
-    transition: np.ndarray
-    choices: tuple[str, ...]
-    choice_grids: list[np.ndarray]
-    choice_is_menu: tuple[bool, ...]
-    setter: tuple[int | None, ...]
-    source: _codegen.ModelSource
-
-    @property
-    def state_sizes(self) -> tuple[int, ...]:
-        return tuple(g.size for g in self.state_grids)
-
-    @property
-    def choice_sizes(self) -> tuple[int, ...]:
-        return tuple(g.size for g in self.choice_grids)
-
-    @property
-    def n_grid(self) -> int:
-        return math.prod(self.state_sizes)
-
-    @property
-    def n_shocks(self) -> int:
-        return self.shock_table.shape[0]
-
-    @property
-    def n(self) -> int:
-        return self.n_grid * self.n_shocks
-
-    @property
-    def n_choices(self) -> int:
-        return math.prod(self.choice_sizes)
-
-    def state_env(self, rows: np.ndarray) -> dict[str, np.ndarray]:
-        """Values of states and shocks at flat states ``rows``, each shaped ``(len(rows), 1)``."""
-        ix, iz = np.divmod(rows, self.n_shocks)
-        env: dict[str, np.ndarray] = {}
-        for name, grid, index in zip(self.states, self.state_grids, np.unravel_index(ix, self.state_sizes)):
-            env[name] = grid[index][:, None]
-        for t, name in enumerate(self.shocks):
-            env[name] = self.shock_table[iz, t][:, None]
-        return env
-
-    def choice_env(self, columns: np.ndarray) -> dict[str, np.ndarray]:
-        """Values of the choices at flat choices ``columns``, each shaped ``(1, len(columns))``."""
-        return {
-            name: grid[index][None, :]
-            for name, grid, index in zip(self.choices, self.choice_grids, np.unravel_index(columns, self.choice_sizes))
-        }
-
-    def describe_state(self, i: int) -> str:
-        ix, iz = divmod(int(i), self.n_shocks)
-        parts = [
-            f"{name} = {grid[index]:.6g}"
-            for name, grid, index in zip(self.states, self.state_grids, np.unravel_index(ix, self.state_sizes))
-        ]
-        parts += [f"{name} = {self.shock_table[iz, t]:.6g}" for t, name in enumerate(self.shocks)]
-        return ", ".join(parts)
-
-    def describe_choice(self, c: int) -> str:
-        return ", ".join(
-            f"{name} = {grid[index]:.6g}"
-            for name, grid, index in zip(self.choices, self.choice_grids, np.unravel_index(int(c), self.choice_sizes))
-        )
-
-
-@dataclass
-class _Evaluated:
-    """Numpy evaluation of the model over a block of (state, choice) pairs, all ``(rows, columns)``."""
-
-    feasible: np.ndarray
-    reward: np.ndarray
-    next_values: list[np.ndarray]
-
-    @property
-    def allowed(self) -> np.ndarray:
-        ok = self.feasible & np.isfinite(self.reward)
-        for values in self.next_values:
-            ok &= ~np.isnan(values)
-        return ok
-
-    @property
-    def bad(self) -> np.ndarray:
-        """Feasible pairs excluded for a NaN/+inf reward or a NaN next value."""
-        return self.feasible & ~self.allowed & (self.reward != -np.inf)
-
-
-def _model_data(doc: Any) -> _ModelData:
-    model = doc.model
-    params = tuple(model.params)
-    states = tuple(model.states)
-    shocks = tuple(model.shocks)
-    choices = tuple(model.choices)
-    state_grids = [np.ascontiguousarray(axis.grid(path=join_path("model", "states", name)), dtype=np.float64)
-                   for name, axis in model.states.items()]
-    chains = [spec.chain(path=join_path("model", "shocks", name)) for name, spec in model.shocks.items()]
-    shock_table, transition = product_chain(chains)
-    choice_grids = []
-    setter: list[int | None] = [None] * len(states)
-    for j, (name, spec) in enumerate(model.choices.items()):
-        choice_grids.append(np.ascontiguousarray(spec.grid(path=join_path("model", "choices", name)), dtype=np.float64))
-        if spec.next_of is not None:
-            setter[states.index(spec.next_of)] = j
-    defines = tuple(
-        (name, parse(text, path=join_path("model", "define", name))) for name, text in model.define.items()
-    )
-    reward = parse(model.reward, path=join_path("model", "reward"))
-    feasible = tuple(parse(text, path=join_path("model", "feasible", k)) for k, text in enumerate(model.feasible))
-    next_laws = []
-    for t, name in enumerate(states):
-        if setter[t] is None:
-            if name not in model.next:
-                raise InvalidDocument.at(
-                    join_path("model", "next", name),
-                    f"state `{name}` has no law of motion: give next.{name} or a choice with next_of \"{name}\"",
-                )
-            next_laws.append((t, parse(model.next[name], path=join_path("model", "next", name))))
-    source = _codegen.ModelSource(
-        params=params,
-        states=states,
-        shocks=shocks,
-        choices=choices,
-        defines=defines,
-        reward=reward,
-        feasible=feasible,
-        next=tuple(next_laws),
-    )
-    return _ModelData(
-        params=params,
-        param_values=np.array([float(model.params[name]) for name in params], dtype=np.float64),
-        states=states,
-        state_grids=state_grids,
-        shocks=shocks,
-        shock_values=[np.asarray(values, dtype=np.float64) for values, _ in chains],
-        shock_table=np.ascontiguousarray(shock_table, dtype=np.float64),
-        transition=np.ascontiguousarray(transition, dtype=np.float64),
-        choices=choices,
-        choice_grids=choice_grids,
-        choice_is_menu=tuple(spec.values is not None for spec in model.choices.values()),
-        setter=tuple(setter),
-        source=source,
-    )
-
-
-def _evaluate(data: _ModelData, rows: np.ndarray, columns: np.ndarray) -> _Evaluated:
-    """Evaluate feasibility, reward and next values at ``rows × columns`` with numpy."""
-    env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
-    env.update(data.state_env(rows))
-    env.update(data.choice_env(columns))
-    shape = (rows.size, columns.size)
-    src = data.source
-    with np.errstate(all="ignore"):
-        for name, expr in src.defines:
-            env[name] = evaluate(expr, env)
-        feasible = np.ones(shape, dtype=bool)
-        for expr in src.feasible:
-            feasible &= evaluate(expr, env) != 0.0
-        reward = np.broadcast_to(evaluate(src.reward, env), shape)
-        next_values = [np.broadcast_to(evaluate(expr, env), shape) for _, expr in src.next]
-    return _Evaluated(feasible, reward, next_values)
-
-
-def _infeasible(data: _ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -> InfeasibleModel:
-    """The error for states ``stuck`` (flat indices) with no allowed choice."""
-    conditions = " and ".join(f"`{expr.text}`" for expr in data.source.feasible)
-    errors = []
-    for i in stuck[:_LISTED_STATES]:
-        where = data.describe_state(i)
-        if not data.source.feasible:
-            errors.append({"path": "model.reward", "message": f"at {where} every choice gives a reward that is -inf, NaN or +inf, so none is allowed"})
-        elif any_feasible[i]:
-            errors.append({
-                "path": "model.reward",
-                "message": f"at {where} the choices that satisfy {conditions} all give a reward that is -inf, NaN or +inf, so none is allowed",
-            })
-        else:
-            errors.append({"path": "model.feasible", "message": f"at {where} no choice satisfies {conditions}"})
-    if stuck.size > _LISTED_STATES:
-        errors.append({
-            "path": errors[0]["path"],
-            "message": f"… and {stuck.size - _LISTED_STATES:,} more of the {data.n:,} states have no allowed choice",
-        })
-    return InfeasibleModel(errors, states=int(stuck.size))
-
-
-def _choice_order(n_choices: int) -> np.ndarray:
-    """Every flat choice once, coarse to fine: both ends, then midpoints of ever finer halvings."""
-    seen = np.zeros(n_choices, dtype=bool)
-    ends = np.unique(np.array([0, n_choices - 1], dtype=np.int64))
-    seen[ends] = True
-    parts = [ends]
-    level = 0
-    while (1 << level) < 2 * n_choices:
-        points = ((2 * np.arange(1 << level, dtype=np.int64) + 1) * n_choices) >> (level + 1)
-        points = np.unique(points[~seen[points]])
-        seen[points] = True
-        parts.append(points)
-        level += 1
-    parts.append(np.flatnonzero(~seen))
-    return np.concatenate(parts)
-
-
-def _feasibility_scan(data: _ModelData, budget_s: float | None) -> dict[str, Any]:
-    """Find, per state, one allowed choice; raise :class:`InfeasibleModel` for states with none.
-
-    Choices are tried coarse to fine (:func:`_choice_order`) in passes of
-    doubling size, and a state leaves the scan at its first allowed choice:
-    where allowed choices form wide stretches (the usual case) a state costs
-    one or two evaluations, and the worst case is one evaluation per pair.
-    """
-    started = time.perf_counter()
-    n, n_choices = data.n, data.n_choices
-    if budget_s is not None and n > FEASIBILITY_MAX_STATES:
-        return {"complete": False, "states": n, "unresolved": n, "pairs_evaluated": 0,
-                "seconds": time.perf_counter() - started}
-    order = _choice_order(n_choices)
-    active = np.arange(n, dtype=np.int64)
-    any_feasible = np.zeros(n, dtype=bool)
-    evaluated = 0
-    position, width = 0, 1
-    while position < n_choices and active.size:
-        columns = order[position : position + width]
-        position += columns.size
-        width = min(2 * width, FEASIBILITY_MAX_PASS)
-        rows_per_chunk = max(1, CHUNK_ELEMENTS // columns.size)
-        resolved = np.zeros(active.size, dtype=bool)
-        for start in range(0, active.size, rows_per_chunk):
-            rows = active[start : start + rows_per_chunk]
-            block = _evaluate(data, rows, columns)
-            resolved[start : start + rows.size] = block.allowed.any(axis=1)
-            any_feasible[rows] |= block.feasible.any(axis=1)
-            evaluated += rows.size * columns.size
-            unresolved = active.size - int(resolved[: start + rows.size].sum())
-            if unresolved and budget_s is not None and time.perf_counter() - started > budget_s:
-                return {"complete": False, "states": n, "unresolved": unresolved, "pairs_evaluated": evaluated,
-                        "seconds": time.perf_counter() - started}
-        active = active[~resolved]
-    if active.size:
-        raise _infeasible(data, active, any_feasible)
-    return {"complete": True, "states": n, "unresolved": 0, "pairs_evaluated": evaluated,
-            "seconds": time.perf_counter() - started}
-
-
-def check_feasibility(doc: Any, *, budget_s: float | None = None) -> dict[str, Any]:
-    """Check that every state of a validated grid document has an allowed choice.
-
-    Cheap and compile-free: numpy evaluation in chunks, stopping per state at
-    its first allowed choice (see :func:`_feasibility_scan`).
-
-    Parameters
-    ----------
-    doc : ProblemDocument with a grid model
-    budget_s : float, optional
-        Seconds after which the scan gives up undecided (``complete`` false).
-
-    Returns
-    -------
-    dict
-        ``complete`` (bool), ``states``, ``unresolved`` (states not yet shown
-        feasible when the budget ran out), ``pairs_evaluated``, ``seconds``.
-
-    Raises
-    ------
-    InfeasibleModel
-        Naming the first few states with no allowed choice by their values.
-    """
-    return _feasibility_scan(_model_data(doc), budget_s)
-
-
-def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any]]:
+def _precompute(data: ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any]]:
     """Tables of every (state, choice) pair for the ``table`` backend, and their counts.
 
     Returns ``(R, next_base, node_lower, node_weight)`` with ``R`` (n, C)
@@ -403,7 +115,7 @@ def _precompute(data: _ModelData) -> tuple[tuple[np.ndarray, ...], dict[str, Any
     for start in range(0, n, rows_per_chunk):
         stop = min(n, start + rows_per_chunk)
         rows = np.arange(start, stop, dtype=np.int64)
-        block = _evaluate(data, rows, columns)
+        block = evaluate_pairs(data, rows, columns)
         allowed = block.allowed
         np.copyto(R[start:stop], np.where(allowed, block.reward, -np.inf))
         any_feasible[start:stop] = block.feasible.any(axis=1)
@@ -461,7 +173,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
     chosen = regime or plan.regime
     if chosen not in ("precomputed", "on_the_fly"):
         raise ValueError(f"unknown regime {chosen!r}")
-    data = _model_data(doc)
+    data = model_data(doc)
     backend = "table" if chosen == "precomputed" else "expr"
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
     counts: dict[str, Any]
@@ -469,10 +181,10 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
         tables, counts = _precompute(data)
         stuck = np.flatnonzero(~counts["any_allowed"])
         if stuck.size:
-            raise _infeasible(data, stuck, counts["any_feasible"])
+            raise infeasible(data, stuck, counts["any_feasible"])
     else:
         tables = None
-        counts = {"feasibility": _feasibility_scan(data, None)}
+        counts = {"feasibility": feasibility_scan(data, None)}
     prepared = time.perf_counter()
     module = _codegen.load(_codegen.module_source(layout, data.source))
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
@@ -499,7 +211,7 @@ class GridProblem:
     def __init__(
         self,
         doc: Any,
-        data: _ModelData,
+        data: ModelData,
         plan: GridPlan,
         layout: _codegen.KernelLayout,
         module: ModuleType,
@@ -575,8 +287,14 @@ class GridProblem:
                 k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, guess)
             pyramid, levels = self._pyramid_of(EVt)
             evmax = EVt.max(axis=1) if self._layout.bound_kind == "global" else np.zeros(EVt.shape[0])
+            if guess is not None:
+                guess = np.ascontiguousarray(guess, dtype=np.int64).reshape(-1)
+                # The kernels do not check bounds: a guess that does not fit this problem is dropped.
+                if guess.size != self.n or guess.min() < 0 or guess.max() >= self._data.n_choices:
+                    guess = None
             has_guess = guess is not None
-            guess = np.ascontiguousarray(guess, dtype=np.int64) if has_guess else np.zeros(1, dtype=np.int64)
+            if guess is None:
+                guess = np.zeros(1, dtype=np.int64)
             k.bellman_bnb(
                 EVt, self.discount, self._ctx, pyramid, levels, evmax, guess, has_guess, BNB_LEAF, self._depth,
                 out_v, out_policy, out_bad, out_bad_choice,

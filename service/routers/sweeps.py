@@ -147,7 +147,8 @@ def list_all(
     try:
         records, next_cursor = list_sweeps(store, owner=owner.listed_owner, cursor=cursor, limit=limit)
     except ValueError as exc:
-        raise Problem(400, "invalid-request", str(exc), errors=[{"path": "query.cursor", "message": str(exc)}]) from None
+        errors = [{"path": "query.cursor", "message": str(exc)}]
+        raise Problem(400, "invalid-request", str(exc), errors=errors) from None
     return {"data": records, "next": next_cursor}
 
 

@@ -13,10 +13,11 @@ import io
 
 import httpx
 import pytest
+import redis
 from fastapi import FastAPI
 
+from service import lifecycle, sweeps
 from service import queue as rq_queues
-from service import sweeps
 from service.app import create_app
 from service.deps import Caller, current_owner
 from service.routers import sweeps as sweeps_router
@@ -391,3 +392,70 @@ def test_an_idempotency_key_returns_the_same_sweep(http: httpx.Client, store: Jo
     first = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
     second = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
     assert first["id"] == second["id"] and store.counts_by_state()["queued"] == 2
+
+
+def test_a_chain_starts_cold_when_the_predecessor_result_has_expired(
+    http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92]}, chain=True)
+    root = sweep["rows"]["data"][0]["job"]
+    with monkeypatch.context() as patch:
+        patch.setattr(sweeps, "job_finished", lambda store, job_id: None)  # the hook did not run
+        assert run_inline(store, root) == "done"
+    store.redis.delete(store.keys.result(root))
+    second = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]
+    assert second["state"] == "queued"
+    assert store.get_document(second["job"])["solver"] == machine_shop()["solver"]
+
+
+def test_a_redis_failure_while_creating_jobs_leaves_the_sweep_canceled(
+    http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    real = sweeps._ensure_job
+    calls = []
+
+    def failing(sweep, index, **kwargs):
+        calls.append(index)
+        if len(calls) == 2:
+            raise redis.ConnectionError("Redis went away")
+        return real(sweep, index, **kwargs)
+
+    monkeypatch.setattr(sweeps, "_ensure_job", failing)
+    response = http.post("/v1/sweeps", json={"base": machine_shop(), "vary": {"discount": [0.9, 0.92, 0.94]}})
+    assert_problem(response, 503)
+    monkeypatch.setattr(sweeps, "_ensure_job", real)
+    (listed,) = http.get("/v1/sweeps").json()["data"]
+    view = http.get(f"/v1/sweeps/{listed['id']}").json()
+    assert view["state"] == "canceled" and [row["state"] for row in view["rows"]["data"]] == ["canceled"] * 3
+    assert store.counts_by_state()["queued"] == 0 and store.queue_depths()["normal"] == 0
+
+
+def test_the_finish_hook_ignores_executions_that_did_not_finish_and_never_raises(
+    store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    seen = []
+
+    def broken(store, job_id):
+        raise redis.ConnectionError("Redis went away")
+
+    monkeypatch.setattr(lifecycle.webhooks, "schedule", broken)
+    monkeypatch.setattr(lifecycle.sweeps, "job_finished", lambda store, job_id: seen.append(job_id))
+    for outcome in ("busy", "terminal", "missing", "lease_lost", "redis_error"):
+        lifecycle.job_finished(store, "0123456789abcdef", outcome)
+    assert seen == []
+    lifecycle.job_finished(store, "0123456789abcdef", "failed")
+    assert seen == ["0123456789abcdef"]
+
+
+def test_reading_a_sweep_creates_rows_the_door_left_behind_once_it_is_gone(http: httpx.Client, store: JobStore) -> None:
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92]})
+    keys = f"fixq:sweep:{sweep['id']}"
+    lost = sweep["rows"]["data"][1]["job"]
+    store.request_cancel(lost)
+    store.redis.hdel(f"{keys}:jobs", 1)  # as if the API died before creating row 1
+    store.redis.set(f"{keys}:door", "1", px=60_000)  # ... while its door marker still lives
+    assert http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]["state"] == "waiting"
+    store.redis.delete(f"{keys}:door")
+    row = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]
+    assert row["state"] == "queued" and row["job"] not in (None, lost)
+    assert store.get_document(row["job"])["discount"] == 0.92
