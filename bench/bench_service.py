@@ -9,8 +9,8 @@ and two ``fixq worker`` processes, and prints three ratios with PASS/FAIL:
    HTTP and waited for (SSE) until its result is fetched, against
    ``worker.solve`` on the same document in this process — target ≤ 1.10×;
 2. throughput of tiny jobs through 2 fixq workers (submitted over HTTP,
-   counted until the last is done) against bare RQ running a trivial numpy
-   job with one forking worker on the same Redis — target ≥ 40 %;
+   counted until the last is done) against bare RQ running ``numpy.ones(16)``
+   with one forking worker on the same Redis — target ≥ 40 %;
 3. the median round trip of a tiny job (submit → done → result fetched) —
    target ≤ 50 ms.
 """
@@ -30,7 +30,6 @@ import time
 from pathlib import Path
 
 import httpx
-import numpy as np
 import redis
 from rq import Queue
 
@@ -46,11 +45,6 @@ ROUND_TRIP_TARGET_S = 0.050
 END_TO_END_REPEATS = 5
 """In-process and HTTP solves of the 1 s problem, alternated; their medians are compared."""
 BARE_QUEUE = "bench-bare"
-
-
-def trivial_numpy_job() -> float:
-    """The bare-RQ job: a little numpy, no I/O."""
-    return float(np.ones(16).sum())
 
 
 def tiny_document(i: int) -> dict:
@@ -134,20 +128,19 @@ def wait_until(predicate, timeout_s: float, what: str) -> None:
 
 def bare_rq_throughput(connection: redis.Redis, processes: Processes, jobs: int) -> float:
     queue = Queue(BARE_QUEUE, connection=connection)
-    # The parent imports the job's module (and so numpy) before forking, as a
-    # fixq worker has imported its task: each work-horse then starts warm.
+    # The job is numpy.ones(16); the worker imports numpy before it forks, as a
+    # fixq worker has imported its task, so each work-horse starts warm.
     code = (
-        "import sys; import bench_service; from redis import Redis; from rq import Queue, Worker; "
+        "import sys; import numpy; from redis import Redis; from rq import Queue, Worker; "
         f"r = Redis.from_url(sys.argv[1]); Worker([Queue('{BARE_QUEUE}', connection=r)], connection=r).work(burst=True)"
     )
     url = f"redis://127.0.0.1:{connection.connection_pool.connection_kwargs['port']}/0"
     with connection.pipeline() as pipe:
         for _ in range(jobs):
-            queue.enqueue("bench_service.trivial_numpy_job", pipeline=pipe, result_ttl=3600)
+            queue.enqueue("numpy.ones", 16, pipeline=pipe, result_ttl=3600)
         pipe.execute()
     started = time.perf_counter()
-    path = os.pathsep.join([str(ROOT / "bench"), str(ROOT)])
-    worker = processes.spawn("bare-rq", [sys.executable, "-c", code, url], PYTHONPATH=path)
+    worker = processes.spawn("bare-rq", [sys.executable, "-c", code, url], PYTHONPATH="")
     worker.wait(1800)
     elapsed = time.perf_counter() - started
     done, failed = queue.finished_job_registry.count, queue.failed_job_registry.count
@@ -161,15 +154,12 @@ def fixq_throughput(client: FixqClient, jobs: int) -> float:
     started = time.perf_counter()
     for i in range(jobs):
         ids.append(client.submit(tiny_document(i))["id"])
-    pending = set(ids)
-    while pending:
-        page = client.jobs(tag="bench", state="done", limit=200)
-        pending -= {job["id"] for job in page["data"]}
-        if pending:
-            failed = client.jobs(tag="bench", state="failed", limit=1)["data"]
-            if failed:
-                raise RuntimeError(f"a tiny job failed: {failed[0]['error']}")
-            time.sleep(0.01)
+    # Jobs finish roughly in submission order: wait for each in turn.
+    for job_id in ids:
+        while (state := client.status(job_id)["state"]) not in ("done", "failed", "canceled"):
+            time.sleep(0.002)
+        if state != "done":
+            raise RuntimeError(f"tiny job {job_id} ended {state}: {client.status(job_id).get('error')}")
     return jobs / (time.perf_counter() - started)
 
 
@@ -206,7 +196,12 @@ def verdict(ok: bool) -> str:
     return "PASS" if ok else "FAIL"
 
 
+def _stop_on_sigterm(signum: int, frame: object) -> None:
+    raise SystemExit(143)
+
+
 def main() -> int:
+    signal.signal(signal.SIGTERM, _stop_on_sigterm)
     parser = argparse.ArgumentParser(description=__doc__.split("\n\n")[0])
     parser.add_argument("--quick", action="store_true", help="fewer jobs (a smoke run, not a measurement)")
     args = parser.parse_args()

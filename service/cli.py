@@ -105,13 +105,21 @@ def _read_document(file: str) -> dict[str, Any]:
         text = sys.stdin.read() if file == "-" else Path(file).read_text(encoding="utf-8")
     except OSError as exc:
         _usage_error(f"cannot read {file}: {exc.strerror}")
+    except UnicodeDecodeError:
+        _usage_error(f"{file} is not UTF-8 text")
     try:
-        document = json.loads(text)
+        document = json.loads(text, parse_constant=_refuse_constant)
     except json.JSONDecodeError as exc:
         _usage_error(f"{file} is not valid JSON: {exc.msg} at line {exc.lineno} column {exc.colno}")
+    except ValueError as exc:
+        _usage_error(f"{file}: {exc}")
     if not isinstance(document, dict):
         _usage_error(f"{file}: a problem document is a JSON object")
     return document
+
+
+def _refuse_constant(name: str) -> NoReturn:
+    raise ValueError(f"{name} is not JSON; write null for an action that is not allowed")
 
 
 def _usage_error(message: str) -> NoReturn:

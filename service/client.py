@@ -18,11 +18,13 @@ from collections.abc import Callable, Iterator
 from typing import Any
 
 import httpx
+import orjson
 
 __all__ = ["DEFAULT_URL", "APIError", "FixqClient"]
 
 DEFAULT_URL = "http://127.0.0.1:8000"
 TERMINAL_STATES = frozenset({"done", "failed", "canceled"})
+JSON_HEADERS = {"Content-Type": "application/json"}
 RECONNECT_S = 1.0
 """Seconds to wait before re-opening a progress stream that broke."""
 
@@ -92,11 +94,12 @@ class FixqClient:
     def submit(self, document: dict[str, Any], *, idempotency_key: str | None = None) -> dict[str, Any]:
         """Queue a problem document; returns the job record (``id``, ``state``...)."""
         headers = {"Idempotency-Key": idempotency_key} if idempotency_key else None
-        return self._request("POST", "/v1/jobs", json=document, headers=headers).json()
+        headers = {**JSON_HEADERS, **(headers or {})}
+        return self._request("POST", "/v1/jobs", content=_encode(document), headers=headers).json()
 
     def check(self, document: dict[str, Any]) -> dict[str, Any]:
         """Validate a document and estimate its size, memory and time."""
-        return self._request("POST", "/v1/check", json=document).json()
+        return self._request("POST", "/v1/check", content=_encode(document), headers=JSON_HEADERS).json()
 
     def status(self, job_id: str) -> dict[str, Any]:
         """The job record."""
@@ -105,7 +108,7 @@ class FixqClient:
     def result(self, job_id: str, *, format: str = "json") -> dict[str, Any] | str:
         """The result document (``format="json"``) or the long table (``"csv"``)."""
         response = self._request("GET", f"/v1/jobs/{job_id}/result", params={"format": format})
-        return response.json() if format == "json" else response.text
+        return orjson.loads(response.content) if format == "json" else response.text
 
     def log(self, job_id: str, *, cursor: int | None = None, limit: int | None = None) -> dict[str, Any]:
         """One page of the convergence log: ``{"data": [...], "next": cursor}``."""
@@ -197,6 +200,20 @@ class FixqClient:
                 raise TimeoutError(f"job {job_id} not finished after {timeout_s} s")
             if not ended:
                 time.sleep(RECONNECT_S)
+
+
+def _encode(document: dict[str, Any]) -> bytes:
+    """Strict JSON: NaN and infinity refused here rather than silently sent as null."""
+    try:
+        return json.dumps(document, allow_nan=False, separators=(",", ":"), default=_array_to_list).encode()
+    except ValueError as exc:
+        raise ValueError(f"a problem document is strict JSON ({exc}); write null for an action that is not allowed") from None
+
+
+def _array_to_list(value: Any) -> Any:
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    raise TypeError(f"{type(value).__name__} is not JSON")
 
 
 def _api_error(response: httpx.Response) -> APIError:

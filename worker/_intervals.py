@@ -8,7 +8,8 @@ of the box, the value either evaluator computes lies within the bounds.
 The generated lines call the small jitted helpers below, one call per
 operation, through the global name ``fixq_intervals`` (this module; see
 `worker.expressions.interval_globals`).  Numba compiles each helper the first
-time a kernel uses it (0.1-1 s each, once per process), and each call site
+time a kernel uses it (0.1-1 s each) and caches it on disk (``cache=True``),
+so later processes load it instead of compiling; each call site
 then costs a kernel some 20-50 ms of compile time; writing the branches
 inline instead made kernels several times slower to compile, because numba's
 compile time grows faster than linearly with the branches of a function.
@@ -79,7 +80,7 @@ GLOBAL_NAME = "fixq_intervals"
 """The global name the generated lines use for this module."""
 
 _LARGEST = 1.7976931348623157e308
-_jit = njit(error_model="numpy", fastmath=False)
+_jit = njit(cache=True, error_model="numpy", fastmath=False)
 
 Interval = tuple[str, str]
 

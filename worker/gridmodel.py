@@ -239,6 +239,7 @@ class GridProblem:
         self._last_exact: dict[str, Any] | None = None
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
         self._zeros: np.ndarray | None = None
+        self._sweep_scratch: tuple[np.ndarray, np.ndarray] | None = None
         self._depth = max(0, math.ceil(math.log2(max(1.0, data.choice_sizes[-1] / BNB_LEAF))))
 
     # Bellman steps ---------------------------------------------------------
@@ -347,6 +348,36 @@ class GridProblem:
         """``r_σ + β P_σ v``; (n,) → (n,).  Same bits as :meth:`bellman_step` at its own policy."""
         reward, index, weight, _ = self._nodes(policy)
         return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
+
+    def policy_sweeps(
+        self, v: np.ndarray, policy: np.ndarray, sweeps: int, span_stop: float = -np.inf
+    ) -> tuple[np.ndarray, int, float]:
+        """Up to ``sweeps`` Howard sweeps ``v ← r_σ + β P_σ v`` in one kernel call (no sparse matrix).
+
+        Optional extension of :class:`worker.problem.CompiledProblem` that
+        :mod:`worker.solvers` uses when present.  Stops early after the first
+        sweep whose increment has span ``max − min`` at most ``span_stop``.
+
+        Parameters
+        ----------
+        v : (n,) float64, not modified
+        policy : (n,) int64
+        sweeps : int
+        span_stop : float
+
+        Returns
+        -------
+        (the (n,) new value, sweeps done, span of the last sweep's increment)
+        """
+        reward, index, weight, _ = self._nodes(policy)
+        out = np.array(v, dtype=np.float64).reshape(self.n)
+        if self._sweep_scratch is None:
+            self._sweep_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
+        EVt, spare = self._sweep_scratch
+        done, span = kernels.policy_sweeps(
+            reward, index, weight, self._data.transition, self.discount, out, int(sweeps), float(span_stop), EVt, spare
+        )
+        return out, int(done), float(span)
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
         """``r_σ``, shape (n,)."""
@@ -538,3 +569,5 @@ class GridProblem:
                           BNB_LEAF, self._depth, empty_f, empty_i, empty_i, empty_i)
         k.policy_nodes(empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                        np.empty(0, dtype=np.bool_), np.empty(0, dtype=np.bool_))
+        kernels.policy_sweeps(empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
+                              self._data.transition, self.discount, empty_f, 1, -np.inf, EVt, empty_f)

@@ -5,8 +5,9 @@ All three methods share one loop (:func:`_iterate`): an *improvement step*
 the certified bound of that step, then a method-specific *evaluation*:
 
 * ``value_iteration`` — ``v ← Tv``;
-* ``howard`` — ``v ← Tv``, then ``evaluation_steps`` sweeps
-  ``v ← r_σ + β P_σ v`` (modified policy iteration);
+* ``howard`` — ``v ← Tv``, then sweeps ``v ← r_σ + β P_σ v`` (modified
+  policy iteration): ``evaluation_steps`` of them while the policy changes,
+  more once it is stable (see :func:`_phase_plan`);
 * ``policy_iteration`` — ``v ← v_σ``, the exact solution of
   ``(I − β P_σ) v = r_σ`` (one sparse linear solve).
 
@@ -57,7 +58,10 @@ __all__ = [
     "RATE_FLOOR_ULPS",
     "RATE_WINDOW",
     "ROUNDING_ULPS",
+    "MOVING_SWEEPS_DIVISOR",
+    "STABLE_SWEEPS_FACTOR",
     "STOP_POLL_S",
+    "SWEEP_BLOCK_S",
     "Checkpoint",
     "SolveOutcome",
     "observed_rate",
@@ -68,7 +72,8 @@ DEFAULT_TOLERANCE = 1e-6
 DEFAULT_MAX_ITERATIONS = 100_000
 """Improvement steps before giving up (status ``max_iterations``)."""
 DEFAULT_EVALUATION_STEPS = 50
-"""Howard: policy-evaluation sweeps between two improvement steps."""
+"""Howard: policy-evaluation sweeps between two improvement steps while the policy changes (count; the
+base of the adaptive rule in :func:`_phase_plan`)."""
 DEFAULT_CHECKPOINT_S = 30.0
 """Seconds of solving time between two checkpoint saves."""
 
@@ -79,6 +84,13 @@ a row sum, the reward addition and the midpoint shift."""
 STOP_POLL_S = 0.005
 """Seconds between two polls of ``should_stop`` during evaluation sweeps
 (it is always polled before an improvement step)."""
+SWEEP_BLOCK_S = 0.004
+"""Seconds of fused evaluation sweeps per kernel call, between two polls of the stop flag and the clocks."""
+MOVING_SWEEPS_DIVISOR = 5
+"""Howard: while the policy changes, an evaluation phase is ``evaluation_steps`` divided by this (count)."""
+STABLE_SWEEPS_FACTOR = 20
+"""Howard: once the policy stops changing, the evaluation phase may run this many times
+``evaluation_steps`` sweeps (count; it ends earlier when the sweeps have settled)."""
 RATE_WINDOW = 10
 """``observed_rate`` uses at most this many successive distance ratios."""
 RATE_FLOOR_ULPS = 1e6
@@ -503,16 +515,61 @@ def _no_evaluation(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
     """Value iteration: ``v ← Tv`` already happened."""
 
 
+def _phase_plan(run: _Run) -> tuple[int, float]:
+    """Howard: ``(most sweeps, span stop)`` of the evaluation phase after the last improvement.
+
+    The rule (modified policy iteration with an adaptive evaluation length;
+    cf. Puterman 1994, §6.5, from memory) reads ``evaluation_steps`` as the
+    base length ``m``:
+
+    * while the last improvement changed the policy somewhere, the phase is
+      ``max(1, m // MOVING_SWEEPS_DIVISOR)`` sweeps: a policy that is still
+      moving is not worth evaluating precisely (on the growth benchmark the
+      number of improvements did not grow from 50 down to 10 sweeps);
+    * once an improvement changed no policy entry, the policy is probably
+      optimal and the next improvement can certify only if ``v`` is close to
+      ``v_σ``: the phase runs up to ``STABLE_SWEEPS_FACTOR · m`` sweeps and
+      ends early after the first sweep whose increment ``Δ`` has span
+      ``max Δ − min Δ ≤ tolerance · (1 − β)/β``.  If the policy then stays the
+      same, the next improvement's ``d = Tv − v`` is one more such sweep, whose
+      MacQueen–Porteus half-width ``β/(1−β) · span/2`` is within half the
+      tolerance (spans of successive sweeps never grow for a stochastic ``P_σ``).
+
+    ``m = 0`` means no sweeps at all.  Both cases depend only on the log and
+    the options, so a resumed solve repeats the same phase.
+    """
+    base = run.options.evaluation_steps
+    changes = run.log[-1]["policy_changes"] if run.log else run.problem.n
+    if base == 0:
+        return 0, -np.inf
+    if changes:
+        return max(1, base // MOVING_SWEEPS_DIVISOR), -np.inf
+    return STABLE_SWEEPS_FACTOR * base, run.options.tolerance * (1.0 - run.beta) / run.beta
+
+
 def _sweeps(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
-    """Howard: ``v ← r_σ + β P_σ v``, ``evaluation_steps − sweeps_done`` times."""
-    total = run.options.evaluation_steps
+    """Howard: ``v ← r_σ + β P_σ v`` for the rest of the phase :func:`_phase_plan` sets.
+
+    Problems with a ``policy_sweeps(v, policy, sweeps, span_stop) -> (v, done,
+    span)`` method (grid problems) run blocks of sweeps in one kernel call,
+    each block sized to about ``SWEEP_BLOCK_S``; others get one sparse
+    mat-vec per sweep.  Between blocks (or sweeps) the stop flag is polled,
+    the time limit checked and a checkpoint saved when due, with
+    ``sweeps_done`` counting every sweep of the phase so far.
+    """
+    total, span_stop = _phase_plan(run)
     if sweeps_done >= total:
+        return
+    fused = getattr(run.problem, "policy_sweeps", None)
+    if fused is not None:
+        _fused_sweeps(run, fused, policy, sweeps_done, total, span_stop)
         return
     matrix = run.problem.policy_matrix(policy)
     reward = run.problem.policy_reward(policy)
     beta = run.beta
     v = run.v
     for done in range(sweeps_done + 1, total + 1):
+        previous = v
         v = matrix @ v
         v *= beta
         v += reward
@@ -521,8 +578,34 @@ def _sweeps(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
         run.poll()
         if run.out_of_time():
             return
+        if span_stop > -np.inf:
+            increment = v - previous
+            if float(increment.max()) - float(increment.min()) <= span_stop:
+                return
         if done < total:
             run.save_if_due(sweeps_done=done)
+
+
+def _fused_sweeps(
+    run: _Run, fused: Callable[..., tuple[np.ndarray, int, float]], policy: np.ndarray, sweeps_done: int,
+    total: int, span_stop: float,
+) -> None:
+    done = sweeps_done
+    block = 1
+    while done < total:
+        started = time.perf_counter()
+        run.v, swept, span = fused(run.v, policy, min(block, total - done), span_stop)
+        seconds = time.perf_counter() - started
+        done += swept
+        run.evaluation_steps += swept
+        run.poll()
+        if run.out_of_time() or span <= span_stop:
+            return
+        if done < total:
+            run.save_if_due(sweeps_done=done)
+        # Blocks grow or shrink toward SWEEP_BLOCK_S of work; their size never changes the result.
+        per_sweep = seconds / max(swept, 1)
+        block = max(1, min(4 * block, int(SWEEP_BLOCK_S / max(per_sweep, 1e-9))))
 
 
 def _exact_evaluation(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
@@ -569,7 +652,8 @@ def _howard(
     should_stop: Callable[[], bool] | None = None,
     fingerprint: str = "",
 ) -> SolveOutcome:
-    """Modified policy iteration: improve, then ``evaluation_steps`` sweeps."""
+    """Modified policy iteration: improve, then evaluation sweeps (``evaluation_steps`` as the base; see
+    :func:`_phase_plan`)."""
     options = _options(
         tolerance, max_iterations, time_limit_s, checkpoint_s, evaluation_steps, on_progress, checkpoint,
         should_stop, fingerprint,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import time
+import zlib
 from collections.abc import AsyncIterator
 from typing import Annotated, Any, Literal
 
@@ -28,8 +29,10 @@ LOG_PAGE_MAX = 1000
 LIST_PAGE_MAX = 200
 """Most jobs in one page of ``GET /v1/jobs`` (jobs)."""
 SSE_FIRST_POLL_S = 0.005
-"""Seconds between the first polls of a live log; the wait grows towards ``sse_poll_s``
-so that short jobs are followed closely and long ones cheaply."""
+"""Seconds between the first polls of a live log."""
+SSE_POLL_GROWTH = 1 / 40
+"""Poll wait added per second a live log has been open (s/s), up to ``sse_poll_s``: short
+jobs are followed closely (their end is seen within milliseconds), long ones cheaply."""
 SSE_KEEPALIVE_S = 15.0
 """Seconds of silence after which a live log sends a comment line, so proxies keep it open."""
 SSE_BATCH = 500
@@ -163,18 +166,21 @@ def get_result(
             state=record["state"],
             progress=record.get("progress"),
         )
-    result = store.get_result(job_id)
-    if result is None:
+    # The stored result is zlib-compressed JSON (DEVELOPERS.md, "Jobs in
+    # Redis"): JSON answers send it as stored, without a parse and re-encode.
+    blob = store.redis.get(store.keys.result(job_id))
+    if blob is None:
         raise Problem(410, "expired", f"the result of job {job_id} has expired (results are kept result_ttl_s)")
+    document = zlib.decompress(blob)
     if format is None:
         format = "csv" if "text/csv" in request.headers.get("accept", "") else "json"
     if format == "csv":
         return StreamingResponse(
-            csv_chunks(result),
+            csv_chunks(orjson.loads(document)),
             media_type="text/csv; charset=utf-8",
             headers={"Content-Disposition": f'attachment; filename="fixq-{job_id}.csv"'},
         )
-    return Response(orjson.dumps(result), media_type="application/json")
+    return Response(document, media_type="application/json")
 
 
 def _not_ready(record: dict[str, Any]) -> str:
@@ -276,7 +282,7 @@ async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> 
         if now - last_write >= SSE_KEEPALIVE_S:
             last_write = now
             yield b": keepalive\n\n"
-        await anyio.sleep(min(poll_s, SSE_FIRST_POLL_S + (now - started) / 10))
+        await anyio.sleep(min(poll_s, SSE_FIRST_POLL_S + (now - started) * SSE_POLL_GROWTH))
 
 
 @router.delete("/{job_id}", response_model=JobRecord, responses={202: {"model": JobRecord}})

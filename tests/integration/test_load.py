@@ -4,9 +4,10 @@ Everything is real and separate: the API and the workers are ``fixq``
 subprocesses on the private Redis server, the 20 clients are threads with
 their own ``httpx`` client and their own API key.  Every job must finish
 ``done`` exactly once: none lost (every submitted id is done and listed to its
-owner), none duplicated (exactly 1,000 job records; each job executed once —
-one enqueue, one attempt, one RQ execution that returned ``done``; and the
-workers' count of results written is exactly 1,000).
+owner), none duplicated (exactly 1,000 job records; each claimed by one
+execution, one RQ execution per job returned ``done`` and any extra one —
+the reaper may enqueue a waiting job again — wrote nothing; and the workers'
+count of results written is exactly 1,000).
 """
 
 from __future__ import annotations
@@ -193,20 +194,29 @@ def test_a_thousand_tiny_jobs_from_twenty_clients_finish_exactly_once(
     # None lost: each owner's list holds exactly its own jobs.
     for n in range(CLIENTS):
         assert sorted(listed_ids(fleet.url, client_keys[n])) == sorted(submitted[n])
-    # None duplicated: exactly JOBS records, each enqueued and started once, its one RQ execution done.
+    # None duplicated: exactly JOBS records, each claimed by one execution (one attempt) whose RQ
+    # execution returned "done". The reaper may have enqueued a job a second time (it rescues queued
+    # jobs it finds in no RQ queue); such an extra execution must have found the job taken and
+    # written nothing.
     assert connection.zcard(store.keys.jobs) == JOBS
     with connection.pipeline(transaction=False) as pipe:
         for job_id in all_ids:
             pipe.hmget(store.keys.job(job_id), "state", "attempts", "enqueues", "status")
             pipe.exists(store.keys.result(job_id))
         replies = pipe.execute()
-    for job_id, fields, has_result in zip(all_ids, replies[::2], replies[1::2]):
-        assert fields == [b"done", b"1", b"1", b"converged"] and has_result, (job_id, fields)
-    outcomes = [Job.fetch(rq_queues.execution_id(job_id, 1), connection=connection).return_value() for job_id in all_ids]
-    assert all(outcome == {"job": job_id, "outcome": "done"} for job_id, outcome in zip(all_ids, outcomes))
+    extra_executions = 0
+    for job_id, (state, attempts, enqueues, status), has_result in zip(all_ids, replies[::2], replies[1::2]):
+        assert (state, attempts, status, has_result) == (b"done", b"1", b"converged", 1), (job_id, state, attempts)
+        outcomes = []
+        for n in range(1, int(enqueues) + 1):
+            execution = Job.fetch(rq_queues.execution_id(job_id, n), connection=connection)
+            outcomes.append((execution.return_value() or {}).get("outcome"))
+        assert outcomes.count("done") == 1 and set(outcomes) <= {"done", "terminal", "busy"}, (job_id, outcomes)
+        extra_executions += len(outcomes) - 1
     # The finish script counts every result it writes into the solve histograms: exactly one per job.
     histograms = store.solve_histograms()
     assert histograms["seconds"]["count"] == histograms["iterations"]["count"] == JOBS
     assert store.queue_depths() == {priority: 0 for priority in rq_queues.PRIORITIES}
-    print(f"\n{JOBS} jobs: submitted in {submit_s:.1f} s, all done after {finish_s:.1f} s")
+    print(f"\n{JOBS} jobs: submitted in {submit_s:.1f} s, all done after {finish_s:.1f} s; "
+          f"{extra_executions} extra executions wrote nothing")  # fmt: skip
     connection.close()

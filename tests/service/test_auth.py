@@ -180,7 +180,10 @@ def test_a_key_may_carry_its_own_limits(keys: KeyStore) -> None:
 
 
 def run_cli(capsys: pytest.CaptureFixture[str], *argv: str) -> tuple[int, str, str]:
-    code = cli.main(list(argv))
+    try:
+        code = cli.main(list(argv))
+    except SystemExit as exit_:
+        code = int(exit_.code or 0)
     out, err = capsys.readouterr()
     return code, out, err
 

@@ -75,6 +75,10 @@ def test_invalid_documents_exit_2_naming_the_paths(fixq, tmp_path: Path) -> None
     assert code == 2 and "not valid JSON" in err and "line 1" in err
     code, _, err = fixq("submit", str(tmp_path / "missing.json"))
     assert code == 2 and "cannot read" in err
+    not_a_number = tmp_path / "nan.json"
+    not_a_number.write_text('{"version": 1, "discount": NaN}')
+    code, _, err = fixq("submit", str(not_a_number))
+    assert code == 2 and "NaN is not JSON" in err
 
 
 def test_submit_status_result_and_cancel(fixq, document_file: Path, tmp_path: Path) -> None:

@@ -343,3 +343,66 @@ def test_tables_are_never_built_on_the_fly() -> None:
     problem = compiled(GROWTH, regime="on_the_fly")
     assert all(array.size <= max(problem._data.n_grid, problem._data.n_choices, 3 * 3 + 1) * 8 for array in problem._ctx)
     assert math.prod(problem.shape) * problem._data.n_choices > max(array.size for array in problem._ctx)
+
+
+def test_fused_sweeps_match_the_sparse_matrix_and_split_calls_give_the_same_bits() -> None:
+    # Reference: scipy's sparse P_σ (policy_matrix) applied sweep by sweep, v ← r_σ + β P_σ v.
+    problem = compiled(TWO_CHOICES, regime="on_the_fly")
+    v = random_values(problem)
+    _, policy = problem.bellman_step(v)
+    matrix, reward = problem.policy_matrix(policy), problem.policy_reward(policy)
+    expected = v.copy()
+    for _ in range(7):
+        expected = reward + problem.discount * (matrix @ expected)
+    whole, done, _ = problem.policy_sweeps(v, policy, 7)
+    assert done == 7
+    np.testing.assert_allclose(whole, expected, rtol=1e-12, atol=1e-12)
+    first, _, _ = problem.policy_sweeps(v, policy, 3)
+    split, _, _ = problem.policy_sweeps(first, policy, 4)
+    assert np.array_equal(split, whole)
+    settled, done, span = problem.policy_sweeps(v, policy, 10_000, 1e-9)
+    assert done < 10_000 and span <= 1e-9
+    step = problem.policy_step(settled, policy) - settled
+    assert float(step.max() - step.min()) <= 1e-9 * (1 + 1e-6)
+
+
+class _Store:
+    """A checkpoint store in memory; ``crash_after`` saves, it raises ``RuntimeError``."""
+
+    def __init__(self, crash_after: int | None = None) -> None:
+        self.state: dict | None = None
+        self.saves = 0
+        self.crash_after = crash_after
+
+    def load(self) -> dict | None:
+        return self.state
+
+    def save(self, state: dict) -> None:
+        self.state = state
+        self.saves += 1
+        if self.crash_after is not None and self.saves >= self.crash_after:
+            self.crash_after = None
+            raise RuntimeError("crash")
+
+
+def test_grid_howard_resumes_bit_for_bit_from_checkpoints_between_sweep_blocks() -> None:
+    from worker.solvers import METHODS
+
+    problem = compiled(GROWTH, regime="on_the_fly")
+    options = dict(tolerance=1e-9, evaluation_steps=40, fingerprint="grid", max_iterations=10_000)
+    whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
+    counting = _Store()
+    METHODS["howard"](problem, np.zeros(problem.n), checkpoint=counting, checkpoint_s=0.0, **options)
+    assert counting.saves >= 3
+    mid_phase = False
+    for crash_after in sorted({1, counting.saves // 3, counting.saves // 2, counting.saves - 1}):
+        store = _Store(crash_after=max(1, crash_after))
+        with pytest.raises(RuntimeError):
+            METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, **options)
+        mid_phase |= store.state["sweeps_done"] is not None
+        resumed = METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, **options)
+        np.testing.assert_array_equal(resumed.value, whole.value)
+        np.testing.assert_array_equal(resumed.policy, whole.policy)
+        assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
+    assert mid_phase, "some crash points fall between sweep blocks of a phase"
+    assert whole.status == "converged" and whole.error_bound <= 1e-9
