@@ -18,7 +18,7 @@ from fastapi import FastAPI
 from service import problems
 from service.bodylimit import BodyLimit
 from service.metrics import build_registry
-from service.routers import dashboard, examples, jobs, plots, system
+from service.routers import dashboard, examples, jobs, plots, sweeps, system
 from service.settings import Settings, get_settings
 from service.store import JobStore
 
@@ -71,6 +71,6 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.metrics = build_registry(store)
     problems.install(app)
     app.add_middleware(BodyLimit, max_bytes=int(settings.max_body_mb * _MIB))
-    for router in (jobs.router, plots.router, examples.router, system.router, dashboard.router):
+    for router in (jobs.router, sweeps.router, plots.router, examples.router, system.router, dashboard.router):
         app.include_router(router)
     return app

@@ -2,9 +2,10 @@
 
 Exit codes: 0 success; 1 the job failed or was canceled, or the API refused the
 request (unknown job, result not ready, ...); 2 usage error or an invalid
-problem document (including one too large); 3 the API cannot be reached.
+problem document (including one too large); 3 the API (or, for ``fixq keys``,
+Redis) cannot be reached.
 The API's URL comes from ``FIXQ_URL`` (default http://127.0.0.1:8000) and the
-key from ``FIXQ_KEY``.
+key from ``FIXQ_KEY``; ``fixq keys`` talks to Redis directly (``FIXQ_REDIS_URL``).
 """
 
 from __future__ import annotations
@@ -54,6 +55,11 @@ def _parser() -> argparse.ArgumentParser:
     for sub in (run, api):
         sub.add_argument("--host", help="address to listen on (default FIXQ_HOST, 127.0.0.1)")
         sub.add_argument("--port", type=int, help="port to listen on (default FIXQ_PORT, 8000)")
+        sub.add_argument(
+            "--allow-open-network",
+            action="store_true",
+            help="serve with FIXQ_AUTH=off on an address that is not loopback (or FIXQ_ALLOW_OPEN_NETWORK=yes)",
+        )
     worker = commands.add_parser("worker", help="run one worker that solves queued jobs")
     worker.add_argument("--burst", action="store_true", help="exit once the queues are empty")
 
@@ -71,6 +77,19 @@ def _parser() -> argparse.ArgumentParser:
     check.add_argument("file", help="the problem document (JSON); - reads standard input")
     cancel = commands.add_parser("cancel", help="cancel a queued or running job")
     cancel.add_argument("id")
+
+    keys = commands.add_parser("keys", help="manage API keys (talks to Redis directly: FIXQ_REDIS_URL)")
+    key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="KEYS_COMMAND")
+    add = key_commands.add_parser("add", help="make a key; prints it alone on the last line, only this once")
+    add.add_argument("name", help="the owner name of the key's jobs (letters, digits, _ . @ -)")
+    add.add_argument("--admin", action="store_true", help="the key sees and cancels every owner's jobs")
+    add.add_argument("--max-active-jobs", type=int, metavar="N", help="its own cap on queued+running jobs")
+    add.add_argument("--max-active-high-jobs", type=int, metavar="N", help="its own cap on priority-high ones")
+    add.add_argument("--max-problem-mb", type=float, metavar="MB", help="its own memory cap of one job, MiB")
+    listing = key_commands.add_parser("list", help="names, admin flags, creation times, own limits (never keys)")
+    listing.add_argument("--json", action="store_true", help="print JSON")
+    revoke = key_commands.add_parser("revoke", help="delete a key: its next request is refused (401)")
+    revoke.add_argument("name")
     return parser
 
 
@@ -274,16 +293,94 @@ def _cmd_api(args: argparse.Namespace) -> int:
 
     settings = get_settings()
     _require_redis_url(settings.redis_url, "api")
+    host = args.host or settings.host
+    _check_open_network(host, auth=settings.auth, allowed=args.allow_open_network or settings.allow_open_network)
     uvicorn.run(
         "service.app:create_app",
         factory=True,
-        host=args.host or settings.host,
+        host=host,
         port=args.port or settings.port,
         timeout_graceful_shutdown=5,
         log_level="info",
         access_log=False,
     )
     return EXIT_OK
+
+
+def _check_open_network(host: str, *, auth: bool, allowed: bool) -> None:
+    """Refuse auth off on a non-loopback address unless confirmed a second time; warn when confirmed."""
+    if auth or _is_loopback(host):
+        return
+    if not allowed:
+        _usage_error(
+            f"refusing to serve {host} with auth off (FIXQ_AUTH=off): anyone who can reach the port could submit, "
+            "read and cancel every job. Listen on loopback (--host 127.0.0.1), or turn auth on (unset FIXQ_AUTH; "
+            "make keys with `fixq keys add NAME`), or, on a network you trust, confirm with --allow-open-network "
+            "or FIXQ_ALLOW_OPEN_NETWORK=yes"
+        )
+    print(f"fixq: auth is OFF on {host} (confirmed): anyone who can reach the port can use every job", file=sys.stderr)
+
+
+def _cmd_keys(args: argparse.Namespace) -> int:
+    import redis
+
+    from service.keys import KeyNameError, KeyStore
+    from service.settings import get_settings
+
+    settings = get_settings()
+    if not settings.redis_url:
+        _usage_error("FIXQ_REDIS_URL is not set: `fixq keys` talks to the Redis server of the fixq installation")
+    client = redis.Redis.from_url(settings.redis_url, socket_connect_timeout=5, socket_timeout=10)
+    keys = KeyStore(client, settings.redis_prefix)
+    try:
+        if args.keys_command == "add":
+            limits = {
+                "max_active_jobs": args.max_active_jobs,
+                "max_active_high_jobs": args.max_active_high_jobs,
+                "max_problem_mb": args.max_problem_mb,
+            }
+            key = keys.add(args.name, admin=args.admin, limits={k: v for k, v in limits.items() if v is not None})
+            kind = "an admin key" if args.admin else "a key"
+            print(f"fixq: made {kind} for {args.name!r}; it is shown only once (fixq stores only its SHA-256), "
+                  "so keep it now; send it as Authorization: Bearer KEY, or FIXQ_KEY for the CLI", file=sys.stderr)  # fmt: skip
+            print(key, flush=True)
+            return EXIT_OK
+        if args.keys_command == "list":
+            _print_keys(keys.list_keys(), as_json=args.json)
+            return EXIT_OK
+        if not keys.revoke(args.name):
+            print(f"fixq: there is no key named {args.name!r}", file=sys.stderr)
+            return EXIT_FAILED
+        print(f"fixq: revoked the key of {args.name!r}; its jobs stay, and its next request is refused")
+        return EXIT_OK
+    except (KeyNameError, ValueError) as exc:
+        _usage_error(str(exc))
+    except redis.RedisError as exc:
+        print(f"fixq: cannot reach Redis at {_without_password(settings.redis_url)}: {exc}", file=sys.stderr)
+        return EXIT_UNREACHABLE
+    finally:
+        client.close()
+
+
+def _print_keys(records: list[Any], *, as_json: bool) -> None:
+    rows = [{"name": r.name, "admin": r.admin, "created_at": r.created_at, "limits": r.limits} for r in records]
+    if as_json:
+        print(json.dumps(rows, indent=2))
+        return
+    width = max([4, *(len(row["name"]) for row in rows)])
+    print(f"{'name':<{width}}  admin  {'created':<20}  limits")
+    for row in rows:
+        limits = " ".join(f"{name}={value:g}" for name, value in row["limits"].items()) or "-"
+        print(f"{row['name']:<{width}}  {'yes' if row['admin'] else 'no':<5}  {row['created_at'] or '?':<20}  {limits}")
+
+
+def _without_password(url: str) -> str:
+    """``url`` with any password replaced by ``***`` (for messages)."""
+    scheme, sep, rest = url.partition("://")
+    credentials, at, host = rest.rpartition("@")
+    if not at or ":" not in credentials:
+        return url
+    return f"{scheme}{sep}{credentials.split(':', 1)[0]}:***@{host}"
 
 
 def _cmd_worker(args: argparse.Namespace) -> int:
@@ -323,6 +420,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
     if "FIXQ_AUTH" not in os.environ and _is_loopback(host):
         env["FIXQ_AUTH"] = "off"
         auth_on = False
+    open_network = args.allow_open_network or settings.allow_open_network
+    _check_open_network(host, auth=auth_on, allowed=open_network)
     signal.signal(signal.SIGTERM, _raise_stop)
     signal.signal(signal.SIGINT, _raise_stop)
     redis_server = None
@@ -340,9 +439,16 @@ def _cmd_run(args: argparse.Namespace) -> int:
             reason = "FIXQ_AUTH=off" if "FIXQ_AUTH" in os.environ else f"{host} is loopback"
             print(f"fixq: auth is OFF ({reason}): anyone who can reach the port can submit and cancel", flush=True)
         else:
-            print("fixq: auth is on: requests need Authorization: Bearer KEY", flush=True)
+            print(
+                "fixq: auth is on: requests need Authorization: Bearer KEY "
+                f"(make one with FIXQ_REDIS_URL={_without_password(env['FIXQ_REDIS_URL'])} fixq keys add NAME)",
+                flush=True,
+            )
         command = [sys.executable, "-m", "service.cli"]
-        children.append(("api", _spawn([*command, "api", "--host", host, "--port", str(port)], env)))
+        api_command = [*command, "api", "--host", host, "--port", str(port)]
+        if open_network:
+            api_command.append("--allow-open-network")
+        children.append(("api", _spawn(api_command, env)))
         children.append(("worker", _spawn([*command, "worker"], env)))
         print(f"fixq: API on http://{host}:{port} and one worker; Ctrl-C stops everything", flush=True)
         while True:
@@ -414,6 +520,7 @@ _COMMANDS = {
     "result": _cmd_result,
     "check": _cmd_check,
     "cancel": _cmd_cancel,
+    "keys": _cmd_keys,
 }
 
 if __name__ == "__main__":

@@ -1,7 +1,10 @@
 """Dependencies of the routes, as ``Annotated`` aliases: settings, Redis, the job store, the caller.
 
-``Owner`` is the one place authentication plugs in: every route that touches
-jobs takes it, and a key system replaces :func:`current_owner` alone.
+``Owner`` is the one place authentication happens: every route that touches
+jobs takes it.  :func:`current_owner` reads the key (``Authorization: Bearer
+KEY``, else the dashboard's session cookie), looks it up in
+:class:`service.keys.KeyStore` and answers the :class:`Caller`; the key's
+record stays on ``request.state.api_key`` for the per-key limits.
 """
 
 from __future__ import annotations
@@ -13,6 +16,7 @@ import orjson
 import redis
 from fastapi import Depends, Request
 
+from service.keys import ApiKey, KeyStore
 from service.problems import Problem
 from service.settings import Settings
 from service.store import JobStore
@@ -27,7 +31,9 @@ __all__ = [
     "RedisDep",
     "SettingsDep",
     "StoreDep",
+    "api_key_of",
     "current_owner",
+    "key_store",
     "read_json_object",
 ]
 
@@ -71,27 +77,49 @@ RedisDep = Annotated[redis.Redis, Depends(_redis)]
 StoreDep = Annotated[JobStore, Depends(_store)]
 
 
+def key_store(request: Request, settings: Settings) -> KeyStore:
+    """The app's API keys (one :class:`~service.keys.KeyStore` per app, made on first use)."""
+    keys = getattr(request.app.state, "keys", None)
+    if keys is None:
+        keys = request.app.state.keys = KeyStore(request.app.state.redis, settings.redis_prefix)
+    return keys
+
+
 def current_owner(request: Request, settings: SettingsDep) -> Caller:
     """The caller.  With auth off everyone is ``anonymous`` and sees every job.
 
-    With auth on, a request needs a key: ``Authorization: Bearer KEY``, or the
-    dashboard's session cookie.  Until API keys exist, no key is valid, so
-    every such request is refused with 401.
+    With auth on, a request needs a key: ``Authorization: Bearer KEY``, or,
+    when no Bearer header is sent, the dashboard's session cookie.  A missing,
+    unknown or revoked key is answered 401; a key in a URL is never read.
     """
     if not settings.auth:
         return Caller(ANONYMOUS, admin=True)
-    challenge = {"WWW-Authenticate": 'Bearer realm="fixq"'}
     scheme, _, key = request.headers.get("authorization", "").partition(" ")
     if scheme.lower() != "bearer":
         key = request.cookies.get(SESSION_COOKIE, "")
-    if not key.strip():
-        raise Problem(401, "unauthorized", "this API needs a key: send Authorization: Bearer KEY", headers=challenge)
-    raise Problem(
-        401,
-        "unauthorized",
-        "the key is not valid (this server has no API keys yet; run it with FIXQ_AUTH=off on a trusted network)",
-        headers=challenge,
-    )
+    key = key.strip()
+    if not key:
+        raise Problem(
+            401,
+            "unauthorized",
+            "this API needs a key: send Authorization: Bearer KEY (an operator makes one with `fixq keys add NAME`)",
+            headers={"WWW-Authenticate": 'Bearer realm="fixq"'},
+        )
+    record = key_store(request, settings).authenticate(key)
+    if record is None:
+        raise Problem(
+            401,
+            "unauthorized",
+            "the key is not valid: it is unknown or has been revoked",
+            headers={"WWW-Authenticate": 'Bearer realm="fixq", error="invalid_token"'},
+        )
+    request.state.api_key = record
+    return Caller(record.name, admin=record.admin)
+
+
+def api_key_of(request: Request) -> ApiKey | None:
+    """The key record :func:`current_owner` accepted for this request (None with auth off)."""
+    return getattr(request.state, "api_key", None)
 
 
 Owner = Annotated[Caller, Depends(current_owner)]

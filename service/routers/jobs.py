@@ -1,4 +1,13 @@
-"""``/v1/jobs``: submit, read, follow, cancel and list jobs."""
+"""``/v1/jobs``: submit, read, follow, cancel and list jobs.
+
+A submission passes, in order: the caller's ``Idempotency-Key`` (a replay
+answers the job it made, ``service.resubmission``), the door
+(``service.submission.admit_submission``: validation, size, warm start from
+the caller's own jobs, webhook target), the key's memory cap
+(``service.limits``), the reuse of a solved twin (answered ``201`` with a job
+that is already ``done``; ``?fresh=true`` skips it), and the key's caps on
+active jobs, taken race-free before the job is created (``429``).
+"""
 
 from __future__ import annotations
 
@@ -13,11 +22,15 @@ from fastapi import APIRouter, Header, Query, Request, Response
 from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, ConfigDict
 
-from service.admission import admit
-from service.deps import JsonObject, Owner, SettingsDep, StoreDep
+from service import webhooks
+from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_key_of
+from service.keys import ApiKey
+from service.limits import ActiveJobs, check_problem_size, quota_for
 from service.problems import Problem
-from service.schema import document_hash
+from service.resubmission import IdempotencyKeys, SolvedJobs, with_reuse_fields
+from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore, is_job_id
+from service.submission import admit_submission, admitted_summary
 from service.tables import csv_chunks
 
 __all__ = ["router"]
@@ -30,7 +43,7 @@ LIST_PAGE_MAX = 200
 """Most jobs in one page of ``GET /v1/jobs`` (jobs)."""
 SSE_FIRST_POLL_S = 0.005
 """Seconds between the first polls of a live log."""
-SSE_POLL_GROWTH = 1 / 40
+SSE_POLL_GROWTH = 1 / 100
 """Poll wait added per second a live log has been open (s/s), up to ``sse_poll_s``: short
 jobs are followed closely (their end is seen within milliseconds), long ones cheaply."""
 SSE_KEEPALIVE_S = 15.0
@@ -74,6 +87,8 @@ class JobRecord(BaseModel):
     iterations: int | None = None
     error_bound: float | None = None
     error: dict[str, Any] | None = None
+    reused: bool = False
+    reused_from: str | None = None
     links: dict[str, str] = {}
 
 
@@ -98,27 +113,100 @@ def _job_or_404(store: JobStore, job_id: str, owner: Owner) -> dict[str, Any]:
     return record
 
 
-@router.post("", status_code=202, response_model=JobRecord, openapi_extra={"requestBody": {
-    "required": True, "content": {"application/json": {"schema": {"$ref": "/v1/schema"}}}}})  # fmt: skip
+_PROBLEM = {"content": {"application/problem+json": {}}}
+
+
+@router.post(
+    "",
+    status_code=202,
+    response_model=JobRecord,
+    responses={
+        201: {"model": JobRecord, "description": "The caller solved this problem already: a new job, done at once."},
+        409: {**_PROBLEM, "description": "A request with the same Idempotency-Key is still being handled."},
+        413: {**_PROBLEM, "description": "The body, or the problem's estimated memory, is over a cap."},
+        422: {**_PROBLEM, "description": "An invalid document, or an Idempotency-Key reused with another body."},
+        429: {**_PROBLEM, "description": "The key has as many active (or high-priority) jobs as its cap allows."},
+    },
+    openapi_extra={"requestBody": {
+        "required": True, "content": {"application/json": {"schema": {"$ref": "/v1/schema"}}}}},
+)  # fmt: skip
 def submit_job(
-    raw: JsonObject,
     owner: Owner,
+    raw: JsonObject,
     store: StoreDep,
     settings: SettingsDep,
+    request: Request,
     response: Response,
-    idempotency_key: Annotated[str | None, Header(max_length=256)] = None,
+    idempotency_key: Annotated[
+        str | None,
+        Header(max_length=256, description="Resending a body with the same key answers the job it made (per key)."),
+    ] = None,
+    fresh: Annotated[
+        bool, Query(description="Solve again even if this key has already solved the same problem.")
+    ] = False,
 ) -> dict[str, Any]:
-    """Validate a problem document and queue it; answers the job record."""
-    admitted = admit(raw, settings, store=store, may_see=owner.may_see)
-    record = store.create_job(
-        raw,
-        owner=owner.owner,
-        estimate=admitted.estimate,
-        document_hash=document_hash(admitted.document),
-        idempotency_key=idempotency_key,
-    )
+    """Validate a problem document and queue it (202); one the caller already solved is answered done (201)."""
+    idempotency = IdempotencyKeys(store)
+    claim = None
+    if idempotency_key is not None:
+        found = idempotency.begin(owner.owner, idempotency_key, raw)
+        if isinstance(found, dict):
+            response.headers["Location"] = f"/v1/jobs/{found['id']}"
+            response.headers["Idempotent-Replayed"] = "true"
+            return with_reuse_fields(store, [found])[0]
+        claim = found
+    try:
+        record, reused = _create(raw, owner, api_key_of(request), store, settings, fresh=fresh)
+    except BaseException:
+        if claim is not None:
+            idempotency.abandon(claim)
+        raise
+    if claim is not None:
+        idempotency.complete(claim, record["id"])
+    if reused:
+        response.status_code = 201
     response.headers["Location"] = f"/v1/jobs/{record['id']}"
-    return record
+    return with_reuse_fields(store, [record])[0]
+
+
+def _create(
+    raw: dict[str, Any], owner: Caller, key: ApiKey | None, store: JobStore, settings: Settings, *, fresh: bool
+) -> tuple[dict[str, Any], bool]:
+    """Admit ``raw`` and make its job: (record, True) for a reused solve, (record, False) for a queued one."""
+    admitted = admit_submission(raw, settings, store, may_see=owner.may_see)
+    quota = quota_for(settings, owner.owner, key)
+    check_problem_size(quota, admitted.estimate)
+    summary = admitted_summary(admitted)
+    solved = SolvedJobs(store)
+    unqueued = None
+    earlier = None if fresh else solved.find(owner.owner, summary["document_hash"])
+    if earlier is not None:
+        record, reused = solved.create_reused(raw, earlier, owner=owner.owner, **summary)
+        if reused:
+            if raw.get("notify") is not None:
+                webhooks.schedule(store, record["id"])
+            return record, True
+        # The earlier result expired a moment ago: this job is solved afresh.
+        unqueued = record
+    active = ActiveJobs(store.redis, settings.redis_prefix)
+    try:
+        reservation = active.reserve(quota, high=admitted.document.priority == "high")
+    except Problem:
+        if unqueued is not None:
+            store.request_cancel(unqueued["id"])
+        raise
+    try:
+        if unqueued is None:
+            record = store.create_job(raw, owner=owner.owner, **summary)
+        else:
+            solved.enqueue(unqueued)
+            record = unqueued
+    except BaseException:
+        active.release(reservation)
+        raise
+    active.bind(reservation, [record["id"]])
+    solved.remember(owner.owner, summary["document_hash"], record["id"])
+    return record, False
 
 
 @router.get("", response_model=JobPage)
@@ -138,13 +226,13 @@ def list_jobs(
         )
     except ValueError as exc:
         raise Problem(400, "invalid-request", str(exc), errors=[{"path": "query.cursor", "message": str(exc)}]) from None
-    return {"data": records, "next": next_cursor}
+    return {"data": with_reuse_fields(store, records), "next": next_cursor}
 
 
 @router.get("/{job_id}", response_model=JobRecord)
 def get_job(job_id: str, owner: Owner, store: StoreDep) -> dict[str, Any]:
     """The job record: state, times, progress (iteration, distance, error bound)."""
-    return _job_or_404(store, job_id, owner)
+    return with_reuse_fields(store, [_job_or_404(store, job_id, owner)])[0]
 
 
 @router.get("/{job_id}/result", responses={200: {"content": {"text/csv": {}}}})
@@ -294,5 +382,5 @@ def cancel_job(job_id: str, owner: Owner, store: StoreDep, response: Response) -
         raise Problem(404, "not-found", f"there is no job {job_id!r}")
     if outcome["outcome"] == "cancel_requested":
         response.status_code = 202
-    return outcome["job"]
+    return with_reuse_fields(store, [outcome["job"]])[0]
 

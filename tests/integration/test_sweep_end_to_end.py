@@ -1,6 +1,6 @@
-"""A chained sweep end to end: the API, two real worker processes, Redis, and a webhook receiver.
+"""A chained sweep end to end: ``fixq api``, two real worker processes, Redis, and a webhook receiver.
 
-The workers use database 6 of the session's private Redis server, so other
+The API and the workers use database 6 of the session's private Redis server, so other
 tests emptying database 0 never touch them; each has a notifier thread, as
 ``run_worker`` is to start one.  The bundled machine-shop example (an
 invented scenario) is swept over two of its inputs with warm starts along
@@ -26,12 +26,9 @@ import httpx
 import pytest
 import redis
 
-from service.app import create_app
-from service.embedded_redis import EmbeddedRedis
-from service.routers import sweeps as sweeps_router
+from service.embedded_redis import EmbeddedRedis, free_port
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
 from tests.service.test_webhooks import WORKER_LAUNCH, Receiver
 from worker import solve
 
@@ -39,6 +36,8 @@ REPO = Path(__file__).resolve().parents[2]
 EXAMPLE = json.loads((REPO / "service" / "examples" / "machine_replacement.json").read_text())
 DATABASE = 6
 WORKERS = 2
+API_STARTUP_S = 60.0
+"""Seconds to wait for ``fixq api`` to answer ``/healthz``."""
 SECRET = "shop floor secret"
 
 
@@ -64,26 +63,49 @@ def workers(lab: tuple[JobStore, Path]) -> Iterator[list[subprocess.Popen]]:
         with open(logs / f"worker-{n}.log", "wb") as out:
             processes.append(subprocess.Popen([sys.executable, "-c", WORKER_LAUNCH], cwd=REPO, env=env, stdout=out,
                                               stderr=subprocess.STDOUT, start_new_session=True))  # fmt: skip
-    yield processes
-    for process in processes:
-        if process.poll() is None:
-            os.killpg(process.pid, signal.SIGTERM)
-    for process in processes:
-        try:
-            process.wait(10)
-        except subprocess.TimeoutExpired:
-            os.killpg(process.pid, signal.SIGKILL)
-            process.wait()
+    try:
+        yield processes
+    finally:
+        for process in processes:
+            stop(process)
 
 
 @pytest.fixture
 def api(lab: tuple[JobStore, Path]) -> Iterator[httpx.Client]:
-    store, _ = lab
-    app = create_app(store.settings)
-    if not any(getattr(route, "path", "") == "/v1/sweeps" for route in app.routes):
-        app.include_router(sweeps_router.router)
-    with make_client(app) as client:
+    """``fixq api`` as a child process on loopback, with auth off."""
+    store, logs = lab
+    port = free_port()
+    env = {**os.environ, "FIXQ_REDIS_URL": store.settings.redis_url, "FIXQ_AUTH": "off",
+           "FIXQ_NOTIFY_ALLOW_HOSTS": "127.0.0.1", "FIXQ_NOTIFY_ALLOW_PRIVATE": "true", "PYTHONPATH": str(REPO)}  # fmt: skip
+    with open(logs / "api.log", "wb") as out:
+        process = subprocess.Popen([sys.executable, "-m", "service.cli", "api", "--port", str(port)], cwd=REPO,
+                                   env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)  # fmt: skip
+    client = httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=30.0)
+    try:
+        deadline = time.monotonic() + API_STARTUP_S
+        while True:
+            assert process.poll() is None, (logs / "api.log").read_text()
+            try:
+                if client.get("/healthz").status_code == 200:
+                    break
+            except httpx.TransportError:
+                pass
+            assert time.monotonic() < deadline, "fixq api did not become healthy"
+            time.sleep(0.1)
         yield client
+    finally:
+        client.close()
+        stop(process)
+
+
+def stop(process: subprocess.Popen) -> None:
+    if process.poll() is None:
+        os.killpg(process.pid, signal.SIGTERM)
+    try:
+        process.wait(10)
+    except subprocess.TimeoutExpired:
+        os.killpg(process.pid, signal.SIGKILL)
+        process.wait()
 
 
 def worker_logs(logs: Path) -> str:

@@ -99,7 +99,9 @@ def test_submit_status_result_and_cancel(fixq, document_file: Path, tmp_path: Pa
     code, out, _ = fixq("result", job_id, "--format", "csv", "-o", str(table))
     assert code == 0 and out == ""
     assert table.read_text().splitlines()[0] == "state,value,action"
-    code, out, _ = fixq("submit", str(document_file))
+    other = tmp_path / "other.json"
+    other.write_text(json.dumps(machine_shop(discount=0.8)))
+    code, out, _ = fixq("submit", str(other))
     code, out, _ = fixq("cancel", out.strip())
     assert code == 0 and "canceled" in out
 
@@ -137,7 +139,10 @@ def test_submit_wait_shows_progress_and_exits_by_the_outcome(fixq, document_file
         return record
 
     monkeypatch.setattr(FixqClient, "submit", submit_then_cancel)
-    code, _, err = fixq("submit", str(document_file), "--wait")
+    # Another discount: the same document again would reuse the done job's result.
+    other = document_file.with_name("other.json")
+    other.write_text(json.dumps(machine_shop(discount=0.8)))
+    code, _, err = fixq("submit", str(other), "--wait")
     assert code == 1 and f"job {canceled[0]} canceled" in err
 
 

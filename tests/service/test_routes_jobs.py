@@ -441,7 +441,7 @@ def test_bad_list_parameters_are_400(client: httpx.Client, params: dict, path: s
     assert body["errors"][0]["path"] == path
 
 
-def test_auth_on_without_keys_refuses_with_401(app_settings: Settings, redis_client: redis.Redis) -> None:
+def test_auth_on_refuses_requests_without_a_valid_key(app_settings: Settings, redis_client: redis.Redis) -> None:
     app = create_app(app_settings.model_copy(update={"auth": True}))
     with make_client(app) as client:
         for request in (client.build_request("POST", "/v1/jobs", json=machine_shop()),

@@ -90,8 +90,9 @@ def metric_samples(text: str) -> dict[tuple[str, tuple[tuple[str, str], ...]], f
 def test_metrics_count_jobs_queues_and_solves_without_job_contents(client: httpx.Client, store: JobStore) -> None:
     done = submit(client, machine_shop(label="secret plant (invented)"))
     run_inline(done["id"])
-    submit(client, machine_shop(label="secret plant (invented)", priority="high"))
-    submit(client)
+    # Other discounts: the same document again would reuse the done job's result.
+    submit(client, machine_shop(label="secret plant (invented)", priority="high", discount=0.85))
+    submit(client, machine_shop(discount=0.8))
     response = client.get("/metrics")
     assert response.status_code == 200 and response.headers["content-type"].startswith("text/plain")
     samples = metric_samples(response.text)

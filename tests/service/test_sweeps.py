@@ -20,7 +20,6 @@ from service import lifecycle, sweeps
 from service import queue as rq_queues
 from service.app import create_app
 from service.deps import Caller, current_owner
-from service.routers import sweeps as sweeps_router
 from service.settings import Settings
 from service.store import JobStore
 from tests.service.conftest import make_client
@@ -55,22 +54,9 @@ def machine_shop(**overrides) -> dict:
     return document
 
 
-def with_sweeps(app: FastAPI) -> FastAPI:
-    """The app with the sweeps router, whether or not ``create_app`` includes it yet."""
-    if not any(getattr(route, "path", "") == "/v1/sweeps" for route in app.routes):
-        app.include_router(sweeps_router.router)
-    return app
-
-
 @pytest.fixture
-def sweep_app(app_settings: Settings, redis_client) -> FastAPI:
-    return with_sweeps(create_app(app_settings))
-
-
-@pytest.fixture
-def http(sweep_app: FastAPI):
-    with make_client(sweep_app) as client:
-        yield client
+def http(client: httpx.Client) -> httpx.Client:
+    return client
 
 
 def assert_problem(response: httpx.Response, status: int) -> dict:
@@ -260,7 +246,7 @@ def test_a_sweep_without_a_base_is_422(http: httpx.Client) -> None:
 
 
 def test_a_sweep_over_the_combination_cap_is_413_naming_the_setting(app_settings: Settings, redis_client) -> None:
-    app = with_sweeps(create_app(app_settings.model_copy(update={"sweep_max_combinations": 4})))
+    app = create_app(app_settings.model_copy(update={"sweep_max_combinations": 4}))
     with make_client(app) as http:
         body = {"base": machine_shop(), "vary": {"discount": [0.8, 0.9, 0.95], "solver.tolerance": [1e-6, 1e-7]}}
         problem = assert_problem(http.post("/v1/sweeps", json=body), 413)
@@ -271,7 +257,7 @@ def test_a_sweep_over_the_combination_cap_is_413_naming_the_setting(app_settings
 
 
 def test_a_sweep_whose_documents_exceed_the_storage_cap_is_413(app_settings: Settings, redis_client) -> None:
-    app = with_sweeps(create_app(app_settings.model_copy(update={"sweep_max_documents_mb": 0.001})))
+    app = create_app(app_settings.model_copy(update={"sweep_max_documents_mb": 0.001}))
     with make_client(app) as http:
         body = {"base": machine_shop(), "vary": {"discount": [0.8, 0.9, 0.95]}}
         problem = assert_problem(http.post("/v1/sweeps", json=body), 413)
@@ -353,7 +339,7 @@ def test_delete_asks_running_jobs_to_stop(http: httpx.Client, store: JobStore) -
 
 def test_another_owner_sees_404_and_an_admin_sees_all(app_settings: Settings, redis_client) -> None:
     def app_for(caller: Caller) -> FastAPI:
-        app = with_sweeps(create_app(app_settings))
+        app = create_app(app_settings)
         app.dependency_overrides[current_owner] = lambda: caller
         return app
 
