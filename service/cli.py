@@ -341,8 +341,11 @@ def _cmd_keys(args: argparse.Namespace) -> int:
             }
             key = keys.add(args.name, admin=args.admin, limits={k: v for k, v in limits.items() if v is not None})
             kind = "an admin key" if args.admin else "a key"
-            print(f"fixq: made {kind} for {args.name!r}; it is shown only once (fixq stores only its SHA-256), "
-                  "so keep it now; send it as Authorization: Bearer KEY, or FIXQ_KEY for the CLI", file=sys.stderr)  # fmt: skip
+            print(
+                f"fixq: made {kind} for {args.name!r}; it is shown only once (fixq stores only its SHA-256), so "
+                "keep it now; send it as Authorization: Bearer KEY, or set FIXQ_KEY for the CLI",
+                file=sys.stderr,
+            )
             print(key, flush=True)
             return EXIT_OK
         if args.keys_command == "list":

@@ -59,6 +59,8 @@ from dataclasses import dataclass
 from datetime import datetime, timezone
 from typing import Any
 
+import redis
+
 from service import queue as rq_queues
 from service.problems import Problem
 from service.store import JobStore
@@ -283,10 +285,15 @@ class SolvedJobs:
     def enqueue(self, record: dict[str, Any]) -> None:
         """Queue the first execution of a job :meth:`create_reused` could not finish."""
         job_id = record["id"]
-        rq_queues.enqueue_execution(
-            self.store.redis, self.store.settings, job_id, rq_queues.execution_id(job_id, 1),
-            record.get("priority") or "normal",
-        )  # fmt: skip
+        try:
+            rq_queues.enqueue_execution(
+                self.store.redis, self.store.settings, job_id, rq_queues.execution_id(job_id, 1),
+                record.get("priority") or "normal",
+            )  # fmt: skip
+        except redis.RedisError:
+            # As in JobStore.create_job: the record says `queued`, and the
+            # reaper enqueues a queued job that sits in no RQ queue.
+            pass
 
 
 def with_reuse_fields(store: JobStore, records: list[dict[str, Any]]) -> list[dict[str, Any]]:

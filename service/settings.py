@@ -10,6 +10,8 @@ from __future__ import annotations
 from functools import lru_cache
 from pathlib import Path
 
+from typing import Literal
+
 from pydantic import Field
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
@@ -117,6 +119,13 @@ class Settings(BaseSettings):
     )
 
     # Fields of API keys and the per-key limits of a shared queue.
+    worker_class: Literal["simple", "forking"] = Field(
+        "simple",
+        description="How `fixq worker` runs jobs: `simple` runs each job in the worker process itself, so "
+        "compiled kernels stay loaded between jobs (fast for many small jobs; a crash in a job ends the worker "
+        "and the reaper requeues its job); `forking` runs each job in a forked work-horse (RQ's default; a "
+        "crash ends only the work-horse, but every job pays the fork and the kernel loading).",
+    )
     allow_open_network: bool = Field(
         False,
         description="Let `fixq api` serve with auth off on an address that is not loopback: the second "

@@ -50,7 +50,7 @@ from typing import Any
 import numpy as np
 import orjson
 import redis
-from rq import Queue, Worker, get_current_job
+from rq import Queue, SimpleWorker, Worker, get_current_job
 from rq.timeouts import JobTimeoutException
 
 from service.lifecycle import job_finished
@@ -361,7 +361,10 @@ def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool
         reap(reaper_store)
     reaper = Reaper(reaper_store).start()
     try:
-        worker = Worker(rq_queues, connection=connection, name=f"fixq-{socket.gethostname()}-{os.getpid()}")
+        # A SimpleWorker sends RQ no heartbeats while a job runs (DESIGN 7); fixq's own lease
+        # heartbeat carries liveness, and RQ extends a SimpleWorker's key to the job timeout.
+        worker_class = SimpleWorker if settings.worker_class == "simple" else Worker
+        worker = worker_class(rq_queues, connection=connection, name=f"fixq-{socket.gethostname()}-{os.getpid()}")
         return worker.work(burst=burst, logging_level=settings.worker_log_level.upper())
     finally:
         reaper.stop()

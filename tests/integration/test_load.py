@@ -101,7 +101,8 @@ class Fleet:
         raise RuntimeError(f"the fleet did not come up within {STARTUP_TIMEOUT_S:.0f} s:\n{self.logs()}")
 
     def logs(self) -> str:
-        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-3000:]}" for p in sorted(self.log_dir.glob("*.log")))
+        files = sorted(self.log_dir.glob("*.log"))
+        return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-3000:]}" for p in files)
 
     def stop(self) -> None:
         for process in self.processes:

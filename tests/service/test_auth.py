@@ -379,7 +379,9 @@ PUBLIC_ROUTES = {"/v1/examples/{name}"}
 EXTRA_QUERIES: dict[str, list[dict[str, Any]]] = {
     "/v1/jobs/{job_id}/result": [{"params": {"format": "csv"}}],
     "/v1/jobs/{job_id}/log": [{"headers": {"accept": "text/event-stream"}}],
-    "/v1/jobs/{job_id}/plots/{picture}.{fmt}": [{"path": {"picture": "value", "fmt": "png"}}],
+    "/v1/jobs/{job_id}/plots/{picture}.{fmt}": [{"path": {"picture": "value", "fmt": "png"}},
+                                                {"path": {"picture": "policy", "fmt": "svg"}}],
+    "/v1/sweeps/{sweep_id}": [{"params": {"format": "csv"}}],
 }
 """More ways to call a route (CSV, SSE, other pictures), each checked as well."""
 
@@ -440,10 +442,30 @@ def test_another_keys_ids_answer_exactly_as_unknown_ids_on_every_route(
         theirs = bob.request(method, fill(template, owned, extra), **options)
         nobody = bob.request(method, fill(template, unknown, extra), **options)
         assert theirs.status_code == 404, (method, template, theirs.text)
-        assert normalised(theirs, list(owned.values())) == normalised(nobody, list(unknown.values())), (method, template)
+        same_as_unknown = normalised(theirs, list(owned.values())) == normalised(nobody, list(unknown.values()))
+        assert same_as_unknown, (method, template, theirs.text, nobody.text)
         for who in (admin, alice):
             response = who.request(method, fill(template, owned, extra), **options)
             assert response.status_code < 400, (method, template, response.text)
+
+
+PUBLIC_LISTS = {"/v1/examples"}
+"""List routes of public documents (the bundled invented examples), not of anything a key owns."""
+
+
+def test_every_list_route_shows_a_key_only_its_own(
+    auth_app: FastAPI, alice: httpx.Client, bob: httpx.Client, admin: httpx.Client, owned: dict[str, str]
+) -> None:
+    lists = [template for template, methods in api_routes(auth_app)
+             if template.startswith("/v1") and "{" not in template and "GET" in methods]  # fmt: skip
+    lists = [template for template in lists if template not in PUBLIC_LISTS and template != "/v1/schema"]
+    assert "/v1/jobs" in lists
+    for template in lists:
+        theirs = bob.get(template)
+        assert theirs.status_code == 200 and theirs.json()["data"] == [], (template, theirs.text)
+        listed_to_admin = {entry["id"] for entry in admin.get(template).json()["data"]}
+        listed_to_alice = {entry["id"] for entry in alice.get(template).json()["data"]}
+        assert listed_to_admin == listed_to_alice and listed_to_alice & set(owned.values()), template
 
 
 def test_another_key_can_neither_cancel_nor_list_nor_warm_start_from_a_job(
@@ -458,7 +480,8 @@ def test_another_key_can_neither_cancel_nor_list_nor_warm_start_from_a_job(
     assert run_inline(solved["id"])["outcome"] == "done"
     warm = print_shop(discount=0.86, solver={"method": "value_iteration", "initial": {"job": solved["id"]}})
     refused = assert_problem(bob.post("/v1/jobs", json=warm), 422)
-    unknown = assert_problem(bob.post("/v1/jobs", json={**warm, "solver": {"initial": {"job": secrets.token_hex(8)}}}), 422)
+    nobodys = {**warm, "solver": {"initial": {"job": secrets.token_hex(8)}}}
+    unknown = assert_problem(bob.post("/v1/jobs", json=nobodys), 422)
     assert refused["errors"][0]["path"] == unknown["errors"][0]["path"] == "solver.initial.job"
     assert refused["errors"][0]["message"].replace(solved["id"], "ID") == re.sub(
         r"[0-9a-f]{16}", "ID", unknown["errors"][0]["message"]

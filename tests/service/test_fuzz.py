@@ -12,7 +12,6 @@ to well under a minute.
 from __future__ import annotations
 
 import copy
-import json
 from collections import Counter
 from typing import Any
 
@@ -40,7 +39,7 @@ DOCUMENT_PREFIX = "ProblemDocument_"
 
 
 def inline_document_schema(spec: dict[str, Any]) -> dict[str, Any]:
-    """``spec`` with every ``{"$ref": "/v1/schema"}`` replaced by the problem-document schema, in ``components``."""
+    """``spec`` with each reference to ``/v1/schema`` pointing at the problem-document schema, in ``components``."""
     document = json_schema()
     definitions = document.pop("$defs", {})
     document.pop("$schema", None)
@@ -51,19 +50,18 @@ def inline_document_schema(spec: dict[str, Any]) -> dict[str, Any]:
             ref = out.get("$ref")
             if isinstance(ref, str) and ref.startswith("#/$defs/"):
                 out["$ref"] = "#/components/schemas/" + DOCUMENT_PREFIX + ref[len("#/$defs/") :]
-            elif ref == "#":
+            elif ref in ("#", "/v1/schema"):
                 out["$ref"] = "#/components/schemas/ProblemDocument"
             return out
         if isinstance(node, list):
             return [rewrite(item) for item in node]
         return node
 
-    spec = copy.deepcopy(spec)
+    spec = rewrite(spec)
     schemas = spec.setdefault("components", {}).setdefault("schemas", {})
     schemas.update({DOCUMENT_PREFIX + name: rewrite(value) for name, value in definitions.items()})
     schemas["ProblemDocument"] = rewrite(document)
-    text = json.dumps(spec).replace('{"$ref": "/v1/schema"}', '{"$ref": "#/components/schemas/ProblemDocument"}')
-    return json.loads(text)
+    return spec
 
 
 @pytest.fixture

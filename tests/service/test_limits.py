@@ -6,7 +6,6 @@ import threading
 import time
 from typing import Any
 
-import httpx
 import pytest
 import redis
 from fastapi import FastAPI
@@ -207,7 +206,7 @@ def test_twenty_concurrent_submissions_cannot_exceed_the_cap(
 def test_workers_drain_high_then_normal_then_low(redis_client: redis.Redis) -> None:
     names = rq_queues.ordered_queue_names()
     assert names == ["fixq-high", "fixq-normal", "fixq-low"]
-    queues = {priority: Queue(rq_queues.queue_name(priority), connection=redis_client) for priority in ("low", "normal", "high")}
+    queues = {p: Queue(rq_queues.queue_name(p), connection=redis_client) for p in ("low", "normal", "high")}
     for priority, queue in queues.items():
         queue.enqueue("worker.task.run_job", f"{priority}job", job_id=f"{priority}-1")
     # Queue.dequeue_any is how an RQ worker picks its next job from its queues, in their order.

@@ -15,6 +15,7 @@ import redis
 from fastapi import FastAPI
 
 from service.keys import KeyStore
+from service.resubmission import SolvedJobs
 from service.settings import Settings
 from service.store import JobStore
 from tests.service.conftest import make_client
@@ -106,7 +107,8 @@ def test_a_solved_document_resubmitted_is_a_done_job_at_once(alice: httpx.Client
     assert response.headers["location"] == f"/v1/jobs/{reused['id']}"
     assert store.queue_depths() == {"high": 0, "normal": 0, "low": 0}
     assert alice.get(f"/v1/jobs/{reused['id']}/result").json() == alice.get(f"/v1/jobs/{first['id']}/result").json()
-    assert alice.get(f"/v1/jobs/{reused['id']}/log").json()["data"] == alice.get(f"/v1/jobs/{first['id']}/log").json()["data"]
+    logs = [alice.get(f"/v1/jobs/{job['id']}/log").json()["data"] for job in (reused, first)]
+    assert logs[0] == logs[1] and logs[0]
     shown = alice.get(f"/v1/jobs/{reused['id']}").json()
     assert shown["reused"] is True and shown["iterations"] == alice.get(f"/v1/jobs/{first['id']}").json()["iterations"]
     listed = {job["id"]: job for job in alice.get("/v1/jobs").json()["data"]}
@@ -209,3 +211,34 @@ def test_reuse_applies_with_auth_off_to_the_anonymous_owner(
 def test_unknown_idempotency_and_fresh_inputs_are_400(alice: httpx.Client) -> None:
     assert_problem(alice.post("/v1/jobs", json=print_shop(), params={"fresh": "maybe"}), 400)
     assert_problem(alice.post("/v1/jobs", json=print_shop(), headers={"Idempotency-Key": "x" * 300}), 400)
+
+
+def test_a_twin_whose_result_expires_mid_request_is_solved_afresh(
+    alice: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    solved = submit(alice)
+    run_inline(solved["id"])
+    # The result expires between the lookup and the copy: the lookup still names the job.
+    monkeypatch.setattr(SolvedJobs, "find", lambda self, owner, document_hash: solved["id"])
+    store.redis.delete(store.keys.result(solved["id"]))
+    response = alice.post("/v1/jobs", json=print_shop())
+    assert response.status_code == 202 and response.json()["state"] == "queued"
+    assert response.json()["reused"] is False
+    assert store.queue_depths()["normal"] == 1
+    assert run_inline(response.json()["id"])["outcome"] == "done"
+
+
+def test_a_twin_that_cannot_be_queued_for_the_cap_leaves_no_queued_job(
+    settings: Settings, redis_client: redis.Redis, keys: KeyStore, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    from service.app import create_app
+
+    app = create_app(settings.model_copy(update={"auth": True, "max_active_jobs": 1}))
+    with make_client(app, Authorization=f"Bearer {keys.add('alice')}") as alice:
+        solved = submit(alice)
+        run_inline(solved["id"])
+        submit(alice, print_shop(discount=0.7))
+        monkeypatch.setattr(SolvedJobs, "find", lambda self, owner, document_hash: solved["id"])
+        store.redis.delete(store.keys.result(solved["id"]))
+        assert alice.post("/v1/jobs", json=print_shop()).status_code == 429
+    assert store.counts_by_state()["queued"] == 1 and store.queue_depths()["normal"] == 1

@@ -9,7 +9,6 @@ import types
 from pathlib import Path
 
 import httpx
-import pytest
 import redis
 from prometheus_client.parser import text_string_to_metric_families
 
@@ -166,6 +165,5 @@ def test_the_door_runs_the_grid_feasibility_check(client: httpx.Client, monkeypa
 
 
 def test_an_infeasible_grid_model_is_refused_at_the_door(client: httpx.Client) -> None:
-    pytest.importorskip("worker.feasibility", reason="the numba-free feasibility check is not in worker/ yet")
     body = assert_problem(client.post("/v1/check", json=infeasible_plant()), 422)
     assert body["errors"][0]["path"].startswith("model.")
