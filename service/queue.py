@@ -152,6 +152,10 @@ def _reap_abandoned(store: JobStore, report: dict[str, list[str]]) -> None:
         elif outcome in ("failed", "canceled"):
             logger.warning("job %s lost its execution and is now %s", job_id, outcome)
             report[outcome].append(job_id)
+            # Imported here: service.lifecycle imports the store, which imports this module.
+            from service.lifecycle import job_finished
+
+            job_finished(store, job_id, outcome)
 
 
 def _rescue_lost(store: JobStore, report: dict[str, list[str]]) -> None:

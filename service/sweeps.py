@@ -117,6 +117,7 @@ __all__ = [
     "load_sweep",
     "parse_path",
     "parse_request",
+    "sweep_tag",
     "sweep_view",
 ]
 
@@ -322,7 +323,7 @@ def _job_label(prefix: str, values: dict[str, Any]) -> str:
 
 
 def _job_tags(base_tags: Any, sweep_tags: Sequence[str], sweep_id: str) -> Any:
-    if base_tags is not None and not isinstance(base_tags, list):
+    if base_tags is not None and not (isinstance(base_tags, list) and all(isinstance(t, str) for t in base_tags)):
         return base_tags  # admission names the fault at `tags`
     return list(dict.fromkeys([*(base_tags or []), *sweep_tags, sweep_tag(sweep_id)]))
 
@@ -369,8 +370,10 @@ def parse_request(body: dict[str, Any], settings: Settings) -> SweepRequest:
     if priority is not None and priority not in _PRIORITIES:
         fault("priority", f'must be "high", "normal" or "low", got {priority!r}')
     paths, segments, values = _check_vary(body.get("vary"), base, chain is True, fault)
-    if isinstance(base, dict) and isinstance(tags, list) and isinstance(base.get("tags", []), list):
-        total = len(dict.fromkeys([*base.get("tags", []), *tags])) + 1
+    base_tags = base.get("tags", []) if isinstance(base, dict) else None
+    texts = isinstance(base_tags, list) and all(isinstance(t, str) for t in [*base_tags, *tags])
+    if texts:
+        total = len(dict.fromkeys([*base_tags, *tags])) + 1
         if total > MAX_TAGS:
             fault("tags", f"the jobs would carry {total} tags (the base's, the sweep's, sweep:ID); at most {MAX_TAGS}")
     if mode == "zip" and len({len(v) for v in values}) > 1:

@@ -61,9 +61,10 @@ Delivery
 writes the delivery ``fixq:notify:{job id}`` (a hash, kept ``result_ttl_s``)
 with its due time in the zset ``fixq:notify:due``: that zset, not an RQ
 queue, is the delivery queue, because RQ 3.0 schedules delayed retries only
-in workers started with its scheduler.  A :class:`Notifier` thread, started
-beside the reaper in each worker process (``worker.task.run_worker``; any
-number may run), claims due deliveries (a Lua script moves the
+in workers started with its scheduler.  Each worker process is to run one
+:class:`Notifier` thread beside its reaper (started in
+``worker.task.run_worker``; any number may run).  A notifier claims due
+deliveries (a Lua script moves the
 due time ahead by :data:`CLAIM_S`, so a delivery whose notifier died becomes
 due again), makes one attempt each, and on a connection error, a timeout or a
 non-2xx answer schedules the next attempt ``notify_retry_delays_s[n - 1]``

@@ -57,6 +57,7 @@ from service.lifecycle import job_finished
 from service.queue import Reaper, ordered_queue_names, reap
 from service.settings import Settings, get_settings
 from service.store import JobStore, connect, is_job_id
+from service.webhooks import Notifier
 from worker import solve
 from worker.errors import Canceled, FixqError, InvalidDocument
 
@@ -360,6 +361,7 @@ def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool
     if burst:
         reap(reaper_store)
     reaper = Reaper(reaper_store).start()
+    notifier = Notifier(JobStore(connect(settings), settings)).start()
     try:
         # A SimpleWorker sends RQ no heartbeats while a job runs (DESIGN 7); fixq's own lease
         # heartbeat carries liveness, and RQ extends a SimpleWorker's key to the job timeout.
@@ -367,4 +369,5 @@ def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool
         worker = worker_class(rq_queues, connection=connection, name=f"fixq-{socket.gethostname()}-{os.getpid()}")
         return worker.work(burst=burst, logging_level=settings.worker_log_level.upper())
     finally:
+        notifier.stop()
         reaper.stop()

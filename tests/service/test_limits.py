@@ -231,6 +231,7 @@ def test_run_worker_listens_on_the_priorities_in_order(monkeypatch: pytest.Monke
             return False
 
     monkeypatch.setattr(task, "Worker", RecordingWorker)
+    monkeypatch.setattr(task, "SimpleWorker", RecordingWorker)
     started = time.monotonic()
     task.run_worker(burst=True)
     assert seen["queues"] == ["fixq-high", "fixq-normal", "fixq-low"]

@@ -445,3 +445,22 @@ def test_reading_a_sweep_creates_rows_the_door_left_behind_once_it_is_gone(http:
     row = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]
     assert row["state"] == "queued" and row["job"] not in (None, lost)
     assert store.get_document(row["job"])["discount"] == 0.92
+
+
+@pytest.mark.parametrize(
+    "body",
+    [
+        {"base": machine_shop(tags=[{"a": 1}, ["b"]]), "vary": {"discount": [0.9]}},
+        {"base": machine_shop(), "vary": {"discount": [0.9]}, "tags": [{"a": 1}], "label": ["x"]},
+        {"base": machine_shop(), "vary": {"discount": [0.9]}, "mode": ["zip"], "priority": {"p": 1}},
+        {"base": machine_shop(label=7, priority=3), "vary": {"discount": [0.9]}},
+        {"base": [], "vary": []},
+        {"base": machine_shop(), "vary": {"model.reward[0]": [{"deep": [[[1]]]}], "solver": [None]}},
+        {"base": machine_shop(), "vary": {"discount": [[0.9], "0.9", None, True, {"x": 1}]}},
+        {"base": machine_shop(notify="http://x"), "vary": {"discount": [0.9]}},
+    ],
+)
+def test_hostile_sweep_requests_are_4xx_never_5xx(http: httpx.Client, body: dict) -> None:
+    response = http.post("/v1/sweeps", json=body)
+    assert 400 <= response.status_code < 500, response.text
+    assert response.headers["content-type"] == PROBLEM_JSON
