@@ -373,9 +373,14 @@ def test_two_state_models_offer_shock_and_choice_pickers(
 
 def test_a_failed_job_says_why(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
     server.ensure_worker()
-    # Valid at the door, but no state has an allowed choice: only compiling the model shows it.
-    document = load_example("household_saving")
-    document["model"]["feasible"] = ["consumption > 50"]
+    # Valid at the door (every number is finite), but the values overflow to inf while solving.
+    document = {
+        "version": 1,
+        "label": "overflowing rewards (invented)",
+        "discount": 0.99,
+        "model": {"kind": "tabular", "states": 2, "actions": 1, "reward": [[1e308], [1e308]],
+                  "transition": [[[0.5, 0.5]], [[0.5, 0.5]]]},
+    }  # fmt: skip
     job_id = submit(api, document)
     assert wait_until_finished(api, job_id)["state"] == "failed"
     tab = new_tab()
