@@ -78,6 +78,10 @@ def _parser() -> argparse.ArgumentParser:
     cancel = commands.add_parser("cancel", help="cancel a queued or running job")
     cancel.add_argument("id")
 
+    examples = commands.add_parser("examples", help="list the bundled example problems, or write one out")
+    examples.add_argument("name", nargs="?", help="the example to write out (default: list them all)")
+    examples.add_argument("-o", "--output", metavar="FILE", help="write the document to FILE (default: stdout)")
+
     keys = commands.add_parser("keys", help="manage API keys (talks to Redis directly: FIXQ_REDIS_URL)")
     key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="KEYS_COMMAND")
     add = key_commands.add_parser("add", help="make a key; prints it alone on the last line, only this once")
@@ -514,7 +518,29 @@ def _stop_child(child: subprocess.Popen[bytes], *, repeat_after_s: float | None 
         child.wait()
 
 
+def _cmd_examples(args: argparse.Namespace) -> int:
+    from service.examples import UnknownExample, list_examples, load_example
+
+    if args.name is None:
+        for example in list_examples():
+            print(f"{example['name']:<22} {example['kind']:<8} {example['states'] or '':>7}  {example['label']}")
+        return EXIT_OK
+    try:
+        document = load_example(args.name)
+    except UnknownExample as exc:
+        print(f"fixq: {exc}", file=sys.stderr)
+        return EXIT_INVALID
+    text = json.dumps(document, indent=2) + "\n"
+    if args.output:
+        Path(args.output).write_text(text)
+        print(f"wrote {args.output}", file=sys.stderr)
+    else:
+        sys.stdout.write(text)
+    return EXIT_OK
+
+
 _COMMANDS = {
+    "examples": _cmd_examples,
     "run": _cmd_run,
     "api": _cmd_api,
     "worker": _cmd_worker,

@@ -211,3 +211,19 @@ def test_run_starts_redis_api_and_worker_and_stops_them_all(tmp_path: Path, docu
     assert "auth is OFF" in output and "loopback" in output
     assert not [pid for pid in children if alive(pid)]
     assert (tmp_path / "redis" / "appendonlydir").exists() or any((tmp_path / "redis").glob("appendonly*"))
+
+
+def test_examples_lists_the_bundled_problems_and_writes_one_out(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+    from service.cli import main
+    from service.examples import example_names, load_example
+    from service.schema import parse_document
+
+    assert main(["examples"]) == 0
+    listing = capsys.readouterr().out.splitlines()
+    assert [line.split()[0] for line in listing] == example_names()
+    target = tmp_path / "shop.json"
+    assert main(["examples", "machine_replacement", "-o", str(target)]) == 0
+    written = json.loads(target.read_text())
+    assert written == load_example("machine_replacement")
+    parse_document(written)
+    assert main(["examples", "no_such_example"]) == 2
