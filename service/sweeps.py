@@ -98,6 +98,7 @@ import orjson
 import redis
 
 from service import webhooks
+from service.limits import ActiveJobs, Quota, check_problem_size
 from service.schema import MAX_LABEL_CHARS, MAX_TAGS, SUBMISSION_KEYS
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore, is_job_id
@@ -564,8 +565,14 @@ def create_sweep(
     settings: Settings,
     *,
     idempotency_key: str | None = None,
+    quota: Quota | None = None,
 ) -> Sweep:
     """Check and admit every combination, store the sweep, and create its first jobs.
+
+    With a ``quota`` (the caller's per-key caps), every combination must fit
+    the key's memory cap (413) and the jobs created now take slots of its
+    active-job caps (429), exactly as single submissions do.  Jobs a chain
+    creates later, when their predecessor finishes, are not counted.
 
     Raises ``InvalidDocument`` or ``TooLarge`` (nothing stored) when any part is refused.
     With an ``idempotency_key`` the same owner already used within
@@ -588,6 +595,7 @@ def create_sweep(
             faults.add_base(exc)
     prepared: dict[int, dict[str, Any]] = {}
     stationary = False
+    high = False
     first_jobs = range(request.count) if not request.chain else [0]
     for index in range(request.count):
         raw = request.document(index, sweep_id=sweep_id)
@@ -597,21 +605,33 @@ def create_sweep(
             faults.add(index, exc)
             continue
         stationary = stationary or admitted.document.report.stationary
+        high = high or admitted.document.priority == "high"
+        if quota is not None:
+            check_problem_size(quota, admitted.estimate)
         if not faults.seen and (not request.chain or index == 0):
             prepared[index] = admitted_summary(admitted)
     faults.raise_if_any()
+    active = ActiveJobs(store.redis, settings.redis_prefix)
+    reservation = active.reserve(quota, high=high, count=len(first_jobs)) if quota is not None else None
     if idem is not None:
         if not store.redis.set(idem, sweep_id, nx=True, ex=settings.idempotency_ttl_s):
             earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
             if earlier is not None:
+                if reservation is not None:
+                    active.release(reservation)
                 return earlier
     sweep = _store_sweep(store, sweep_id, caller.owner, request, stationary)
+    created: list[str] = []
     try:
         for index in first_jobs:
             if index % DOOR_RENEW_EVERY == 0:
                 store.redis.set(sweep.keys.door, "1", px=CLAIM_MS)
-            _ensure_job(sweep, index, prepared=prepared.get(index))
+            job_id = _ensure_job(sweep, index, prepared=prepared.get(index))
+            if job_id is not None:
+                created.append(job_id)
         store.redis.delete(sweep.keys.door)
+        if reservation is not None:
+            active.bind(reservation, created)
     except redis.RedisError:
         # Nothing half-done: what was created is canceled, then the 503 is answered.
         try:

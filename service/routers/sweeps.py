@@ -16,7 +16,8 @@ import orjson
 from fastapi import APIRouter, Header, Query, Request, Response
 from pydantic import BaseModel, ConfigDict
 
-from service.deps import JsonObject, Owner, SettingsDep, StoreDep
+from service.deps import JsonObject, Owner, SettingsDep, StoreDep, api_key_of
+from service.limits import quota_for
 from service.problems import Problem
 from service.store import JobStore
 from service.sweeps import Sweep, cancel_sweep, create_sweep, list_sweeps, load_sweep, sweep_view
@@ -128,10 +129,12 @@ def submit_sweep(
     store: StoreDep,
     settings: SettingsDep,
     response: Response,
+    request: Request,
     idempotency_key: Annotated[str | None, Header(max_length=256)] = None,
 ) -> dict[str, Any]:
     """Check every combination of a base document and values, then queue their jobs; answers the sweep."""
-    sweep = create_sweep(body, owner, store, settings, idempotency_key=idempotency_key)
+    quota = quota_for(settings, owner.owner, api_key_of(request))
+    sweep = create_sweep(body, owner, store, settings, idempotency_key=idempotency_key, quota=quota)
     response.headers["Location"] = f"/v1/sweeps/{sweep.id}"
     return sweep_view(sweep, limit=ROWS_PAGE_DEFAULT)
 

@@ -464,3 +464,18 @@ def test_hostile_sweep_requests_are_4xx_never_5xx(http: httpx.Client, body: dict
     response = http.post("/v1/sweeps", json=body)
     assert 400 <= response.status_code < 500, response.text
     assert response.headers["content-type"] == PROBLEM_JSON
+
+
+def test_a_sweep_takes_active_job_slots_and_is_refused_over_the_cap(app_settings: Settings, redis_client) -> None:
+    # The per-key cap on queued + running jobs holds for sweeps as for single jobs.
+    settings = app_settings.model_copy(update={"max_active_jobs": 3})
+    with make_client(create_app(settings)) as client:
+        vary = {"discount": [0.9, 0.91, 0.92, 0.93]}
+        too_many = client.post("/v1/sweeps", json={"base": machine_shop(), "vary": vary})
+        assert too_many.status_code == 429, too_many.text
+        assert too_many.headers["content-type"].startswith(PROBLEM_JSON)
+        assert "max_active_jobs" in too_many.text
+        fits = client.post("/v1/sweeps", json={"base": machine_shop(), "vary": {"discount": vary["discount"][:3]}})
+        assert fits.status_code == 202, fits.text
+        one_more = client.post("/v1/jobs", json=machine_shop(discount=0.95))
+        assert one_more.status_code == 429, one_more.text
