@@ -737,33 +737,34 @@ class _Writer:
             with out.block("for i in range(out_v.shape[0]):"):
                 self.state_setup(out)
                 out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1")
-                with out.block("if has_guess and guess[i] >= 0:"):
-                    out.add("c = guess[i]")
-                    self.evaluate(out)
-                    with out.block("if ok:"):
-                        out.add("best = val", "chosen = c")
-                with out.block("for o in range(NOUT):"):
+                # Pass o = -1 evaluates the guess alone, as a leaf of one choice, through the same
+                # evaluation site as the leaves: a second copy of the model doubled the compile time.
+                out.add("first_o = -1 if has_guess and guess[i] >= 0 else 0")
+                with out.block("for o in range(first_o, NOUT):"):
                     if inner:
-                        out.add("rem = o")
+                        out.add("rem = max(o, 0)")
                         for t in range(inner - 1, 0, -1):
                             out.add(f"j_{t} = rem % {self.meta.csize(t)}", f"rem = rem // {self.meta.csize(t)}")
                         out.add("j_0 = rem")
                         for t in range(inner):
                             out.add(f"c_{t} = cgrid[{self.meta.coff(t)} + j_{t}]")
-                    out.add("cb = o * M", "h = 0", "k = 0")
+                    out.add("cb = max(o, 0) * M", "h = 0", "k = 0")
                     # Depth-first walk of the binary tree over the last choice; node (h, k) covers
                     # [k·size, (k+1)·size) with size = leaf · 2**(depth − h); leaves are evaluated.
                     with out.block("while True:"):
                         out.add("size = leaf << (depth - h)", "a = k * size", "descend = False")
-                        with out.block("if a < M:"):
-                            out.add("b = min(a + size, M) - 1")
-                            with out.block("if size <= leaf:"):
-                                with out.block("for c in range(cb + a, cb + b + 1):"):
+                        with out.block("if o < 0 or a < M:"):
+                            with out.block("if o < 0:"):
+                                out.add("c_first = guess[i]", "c_last = c_first")
+                            with out.block("else:"):
+                                out.add("b = min(a + size, M) - 1", "c_first = cb + a", "c_last = cb + b")
+                            with out.block("if o < 0 or size <= leaf:"):
+                                with out.block("for c in range(c_first, c_last + 1):"):
                                     self.evaluate(out)
                                     with out.block("if ok:"):
                                         with out.block("if val > best or (val == best and c < chosen):"):
                                             out.add("best = val", "chosen = c")
-                                    with out.block("elif bad:"):
+                                    with out.block("elif bad and o >= 0:"):
                                         out.add("nbad += 1")
                                         with out.block("if first_bad < 0:"):
                                             out.add("first_bad = c")

@@ -436,6 +436,40 @@ def test_with_auth_on_the_dashboard_asks_for_a_key_and_refuses_a_wrong_one(
     tab.screenshot("signin-refused")
 
 
+def test_with_auth_on_a_right_key_signs_in_once_and_shows_only_its_jobs(
+    guarded_server: LiveServer, new_tab: Callable[[], Tab]
+) -> None:
+    import redis as redis_client
+
+    from service.keys import KeyStore
+
+    connection = redis_client.Redis.from_url(guarded_server.env["FIXQ_REDIS_URL"])
+    keys = KeyStore(connection, "fixq")
+    mine, theirs = keys.add("dash-owner"), keys.add("dash-other")
+    labels = {}
+    for key, who in ((mine, "mine"), (theirs, "theirs")):
+        document = load_example("machine_replacement")
+        document["label"] = f"{who} (invented)"
+        reply = httpx.post(f"{guarded_server.url}/v1/jobs", json=document, headers={"Authorization": f"Bearer {key}"})
+        assert reply.status_code in (201, 202), reply.text
+        labels[who] = reply.json()["id"]
+    tab = new_tab()
+    tab.goto(f"{guarded_server.url}/")
+    tab.wait_for("!document.getElementById('signin').classList.contains('hidden')")
+    tab.evaluate(
+        f"document.querySelector('#signin input[name=key]').value = {mine!r};"
+        " document.querySelector('#signin form').submit()"
+    )
+    tab.wait_for(f"document.body.textContent.includes({labels['mine']!r})")
+    assert labels["theirs"] not in tab.evaluate("document.body.textContent")
+    assert mine not in tab.evaluate("location.href")
+    cookies = [c for c in tab.send("Network.getCookies", {"urls": [guarded_server.url]})["cookies"]
+               if c["name"] == SESSION_COOKIE]  # fmt: skip
+    assert cookies and cookies[0]["httpOnly"] and cookies[0]["sameSite"] == "Strict"
+    assert tab.problems() == []
+    tab.screenshot("signed-in-job-list")
+
+
 def test_the_session_endpoints_keep_the_key_out_of_urls(guarded_server: LiveServer) -> None:
     with httpx.Client(base_url=guarded_server.url, follow_redirects=False) as client:
         assert client.get("/ui/session").json() == {"auth": True, "signed_in": False, "owner": None}
