@@ -98,7 +98,7 @@ import orjson
 import redis
 
 from service import webhooks
-from service.limits import ActiveJobs, Quota, check_problem_size
+from service.limits import ActiveJobs, Quota, Reservation, check_problem_size
 from service.schema import MAX_LABEL_CHARS, MAX_TAGS, SUBMISSION_KEYS
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore, is_job_id
@@ -694,6 +694,10 @@ def _ensure_job(sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = N
                 raw = request.document(index, sweep_id=sweep.id)
                 prepared = _readmit(sweep, raw)
         record = create_submitted_job(raw, store, owner=sweep.owner, **prepared)
+        # Counted among the owner's active jobs, so later submissions see it under their caps
+        # (a chain's successor is made when its predecessor ends, past the door's reservation).
+        active = ActiveJobs(store.redis, store.settings.redis_prefix)
+        active.bind(Reservation(sweep.owner, raw.get("priority") == "high", member=""), [record["id"]])
     except FixqError as exc:
         error = {"title": exc.title, "detail": exc.detail, "errors": exc.errors}
         store.redis.hset(keys.errors, index, orjson.dumps(error))

@@ -479,3 +479,18 @@ def test_a_sweep_takes_active_job_slots_and_is_refused_over_the_cap(app_settings
         assert fits.status_code == 202, fits.text
         one_more = client.post("/v1/jobs", json=machine_shop(discount=0.95))
         assert one_more.status_code == 429, one_more.text
+
+
+def test_jobs_a_chain_makes_later_count_among_the_owners_active_jobs(http: httpx.Client, store: JobStore) -> None:
+    from service.limits import ActiveJobs
+
+    sweep = post_sweep(http, vary={"discount": [0.9, 0.92]}, chain=True)
+    first = [row["job"] for row in http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"] if row["job"]]
+    assert len(first) == 1
+    assert run_inline(store, first[0]) == "done"
+    rows = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"]
+    successor = rows[1]["job"]
+    assert successor and rows[1]["state"] == "queued"
+    active = ActiveJobs(store.redis, store.settings.redis_prefix)
+    assert store.redis.zscore(active.active_key("anonymous"), successor) is not None
+    assert active.usage("anonymous")[0] == 1
