@@ -153,7 +153,7 @@ def fixq_throughput(client: FixqClient, jobs: int) -> float:
     ids: list[str] = []
     started = time.perf_counter()
     for i in range(jobs):
-        ids.append(client.submit(tiny_document(i))["id"])
+        ids.append(client.submit(tiny_document(i), fresh=True)["id"])
     # Jobs finish roughly in submission order: wait for each in turn.
     for job_id in ids:
         while (state := client.status(job_id)["state"]) not in ("done", "failed", "canceled"):
@@ -165,7 +165,7 @@ def fixq_throughput(client: FixqClient, jobs: int) -> float:
 
 def round_trip(client: FixqClient) -> float:
     started = time.perf_counter()
-    job = client.submit(tiny_document(0))
+    job = client.submit(tiny_document(0), fresh=True)
     record = client.wait(job["id"])
     if record["state"] != "done":
         raise RuntimeError(f"tiny job ended {record['state']}: {record.get('error')}")
@@ -183,7 +183,7 @@ def time_in_process(document: dict) -> float:
 
 def time_over_http(client: FixqClient, document: dict) -> float:
     started = time.perf_counter()
-    job = client.submit(document)
+    job = client.submit(document, fresh=True)
     record = client.wait(job["id"])
     client.result(job["id"])
     elapsed = time.perf_counter() - started
@@ -226,7 +226,7 @@ def main() -> int:
 
             round_trip(client)  # the first job of a worker pays for its imports
             for _ in range(2):
-                client.wait(client.submit(document)["id"])  # both workers have the kernels loaded
+                client.wait(client.submit(document, fresh=True)["id"])  # both workers have the kernels loaded
             in_process, over_http = [], []
             for _ in range(END_TO_END_REPEATS):
                 in_process.append(time_in_process(document))

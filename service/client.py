@@ -91,11 +91,17 @@ class FixqClient:
             raise _api_error(response)
         return response
 
-    def submit(self, document: dict[str, Any], *, idempotency_key: str | None = None) -> dict[str, Any]:
-        """Queue a problem document; returns the job record (``id``, ``state``...)."""
+    def submit(
+        self, document: dict[str, Any], *, idempotency_key: str | None = None, fresh: bool = False
+    ) -> dict[str, Any]:
+        """Queue a problem document; returns the job record (``id``, ``state``...).
+
+        ``fresh=True`` solves again even when this key already solved the same document.
+        """
         headers = {"Idempotency-Key": idempotency_key} if idempotency_key else None
         headers = {**JSON_HEADERS, **(headers or {})}
-        return self._request("POST", "/v1/jobs", content=_encode(document), headers=headers).json()
+        params = {"fresh": "true"} if fresh else None
+        return self._request("POST", "/v1/jobs", content=_encode(document), headers=headers, params=params).json()
 
     def check(self, document: dict[str, Any]) -> dict[str, Any]:
         """Validate a document and estimate its size, memory and time."""

@@ -240,6 +240,7 @@ class GridProblem:
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
         self._zeros: np.ndarray | None = None
         self._sweep_scratch: tuple[np.ndarray, np.ndarray] | None = None
+        self._last_hinted: tuple[np.ndarray, np.ndarray] | None = None
         self._depth = max(0, math.ceil(math.log2(max(1.0, data.choice_sizes[-1] / BNB_LEAF))))
 
     # Bellman steps ---------------------------------------------------------
@@ -276,6 +277,7 @@ class GridProblem:
         k = self._kernels
         if restricted and self.hints_active and not exhaustive:
             k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, out_policy)
+            self._last_hinted = (np.array(v, dtype=np.float64).reshape(self.n), out_policy.copy())
             return out_v, out_policy
         out_bad = np.empty(self.n, dtype=np.int64)
         out_bad_choice = np.empty(self.n, dtype=np.int64)
@@ -284,8 +286,13 @@ class GridProblem:
         else:
             guess = policy_guess
             if self.hints_active:
-                guess = np.empty(self.n, dtype=np.int64)
-                k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, guess)
+                last = self._last_hinted
+                if last is not None and np.array_equal(last[0], np.asarray(v, dtype=np.float64).reshape(self.n)):
+                    # The solver's final check runs at the v of its last hinted step: reuse that policy.
+                    guess = last[1]
+                else:
+                    guess = np.empty(self.n, dtype=np.int64)
+                    k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, guess)
             pyramid, levels = self._pyramid_of(EVt)
             evmax = EVt.max(axis=1) if self._layout.bound_kind == "global" else np.zeros(EVt.shape[0])
             if guess is not None:

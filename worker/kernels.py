@@ -255,15 +255,46 @@ def policy_sweeps(
     (sweeps done, span of the last sweep's increment; inf when none was done)
     """
     n_shocks = P.shape[0]
-    Vt = np.empty((n_shocks, reward.shape[0] // n_shocks))
+    n_grid = reward.shape[0] // n_shocks
+    n_nodes = node_index.shape[1]
+    Vt = np.empty((n_shocks, n_grid))
     done = 0
     span = np.inf
-    # One call site, with the roles of the two buffers swapped after each sweep: two call sites
-    # were inlined twice and made this kernel several seconds slower to compile.
+    # The sweep is written here rather than in a helper called from here: numba compiles a helper
+    # and then again the caller it is inlined into, which cost about half a second more.
     source = v
     target = spare
     while done < sweeps:
-        span = _sweep(reward, node_index, node_weight, P, beta, source, target, EVt, Vt)
+        # Transposed first, then row by row over z', so the inner loops run over contiguous memory
+        # (the reductions over z' of a state-by-state loop are latency-bound and ran several times slower).
+        for x in range(n_grid):
+            for zz in range(n_shocks):
+                Vt[zz, x] = source[x * n_shocks + zz]
+        for z in range(n_shocks):
+            row = EVt[z]
+            for x in range(n_grid):
+                row[x] = 0.0
+            for zz in range(n_shocks):
+                p = P[z, zz]
+                if p != 0.0:
+                    column = Vt[zz]
+                    for x in range(n_grid):
+                        row[x] += p * column[x]
+        low = np.inf
+        high = -np.inf
+        for x in range(n_grid):
+            for z in range(n_shocks):
+                i = x * n_shocks + z
+                expected = node_weight[i, 0] * EVt[z, node_index[i, 0]]
+                for k in range(1, n_nodes):
+                    expected += node_weight[i, k] * EVt[z, node_index[i, k]]
+                value = reward[i] + beta * expected
+                step = value - source[i]
+                low = min(low, step)
+                high = max(high, step)
+                target[i] = value
+        span = high - low
+        # The two buffers swap roles after each sweep, so no sweep copies.
         source, target = target, source
         done += 1
         if span <= span_stop:
@@ -273,49 +304,3 @@ def policy_sweeps(
         for i in range(v.shape[0]):
             v[i] = spare[i]
     return done, span
-
-
-@njit(cache=True, nogil=True, error_model="numpy")
-def _sweep(
-    reward: np.ndarray,
-    node_index: np.ndarray,
-    node_weight: np.ndarray,
-    P: np.ndarray,
-    beta: float,
-    source: np.ndarray,
-    target: np.ndarray,
-    EVt: np.ndarray,
-    Vt: np.ndarray,
-) -> float:
-    """One sweep of :func:`policy_sweeps` from ``source`` into ``target``; the span of its increment."""
-    n_shocks = P.shape[0]
-    n_grid = reward.shape[0] // n_shocks
-    n_nodes = node_index.shape[1]
-    # Transposed first, then row by row over z', so the inner loops run over contiguous memory
-    # (the reductions over z' of a state-by-state loop are latency-bound and ran several times slower).
-    for x in range(n_grid):
-        for zz in range(n_shocks):
-            Vt[zz, x] = source[x * n_shocks + zz]
-    for z in range(n_shocks):
-        row = EVt[z]
-        row[:] = 0.0
-        for zz in range(n_shocks):
-            p = P[z, zz]
-            if p != 0.0:
-                column = Vt[zz]
-                for x in range(n_grid):
-                    row[x] += p * column[x]
-    low = np.inf
-    high = -np.inf
-    for x in range(n_grid):
-        for z in range(n_shocks):
-            i = x * n_shocks + z
-            expected = node_weight[i, 0] * EVt[z, node_index[i, 0]]
-            for k in range(1, n_nodes):
-                expected += node_weight[i, k] * EVt[z, node_index[i, k]]
-            value = reward[i] + beta * expected
-            step = value - source[i]
-            low = min(low, step)
-            high = max(high, step)
-            target[i] = value
-    return high - low
