@@ -66,6 +66,7 @@ def _parser() -> argparse.ArgumentParser:
     submit = commands.add_parser("submit", help="queue a problem document; prints the job id")
     submit.add_argument("file", help="the problem document (JSON); - reads standard input")
     submit.add_argument("--wait", action="store_true", help="show progress and wait for the job to finish")
+    submit.add_argument("--fresh", action="store_true", help="solve again even if this key already solved it")
     status = commands.add_parser("status", help="show a job")
     status.add_argument("id")
     status.add_argument("--json", action="store_true", help="print the job record as JSON")
@@ -153,7 +154,7 @@ def _usage_error(message: str) -> NoReturn:
 def _cmd_submit(args: argparse.Namespace) -> int:
     document = _read_document(args.file)
     with FixqClient() as client:
-        job = client.submit(document)
+        job = client.submit(document, fresh=args.fresh)
         print(job["id"], flush=True)
         if not args.wait:
             return EXIT_OK
