@@ -406,3 +406,17 @@ def test_grid_howard_resumes_bit_for_bit_from_checkpoints_between_sweep_blocks()
         assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
     assert mid_phase, "some crash points fall between sweep blocks of a phase"
     assert whole.status == "converged" and whole.error_bound <= 1e-9
+
+
+def test_exact_step_after_a_hinted_step_equals_exhaustive_search() -> None:
+    # The exact step reuses the policy of a hinted step at the same v as its seed; a seed never
+    # changes the answer, at that v or at another one (the reference is the plain scan of every choice).
+    problem = compiled(GROWTH, regime="on_the_fly", hints={"monotone": True, "concave": True})
+    assert problem.hints_active
+    v = random_values(problem, seed=3)
+    other = random_values(problem, seed=4)
+    problem.bellman_step(v, restricted=True)
+    for point in (v, other):
+        blocked = problem.bellman_step(point)
+        exhaustive = problem.bellman_step(point, exhaustive=True)
+        assert np.array_equal(blocked[0], exhaustive[0]) and np.array_equal(blocked[1], exhaustive[1])
