@@ -32,7 +32,6 @@ from __future__ import annotations
 
 import logging
 import secrets
-import threading
 import time
 from collections.abc import Sequence
 from datetime import datetime, timezone
@@ -42,6 +41,8 @@ import redis
 from rq import Queue
 from rq.job import Job
 from rq.utils import utcparse
+
+from service._periodic import PeriodicThread
 
 if TYPE_CHECKING:
     from service.settings import Settings
@@ -206,35 +207,18 @@ def _enqueue_quietly(store: JobStore, job_id: str, rq_job_id: str, priority: str
         logger.exception("could not enqueue job %s; the reaper will try again", job_id)
 
 
-class Reaper:
+class Reaper(PeriodicThread):
     """A daemon thread running ``reap`` every ``settings.reaper_interval_s``."""
 
+    name = "fixq-reaper"
+
     def __init__(self, store: JobStore, *, interval_s: float | None = None) -> None:
+        super().__init__(interval_s if interval_s is not None else store.settings.reaper_interval_s)
         self.store = store
-        self.interval_s = interval_s if interval_s is not None else store.settings.reaper_interval_s
-        self._stopped = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="fixq-reaper", daemon=True)
 
-    def start(self) -> Reaper:
-        """Start the thread; its first pass runs at once."""
-        self._thread.start()
-        return self
-
-    def stop(self, timeout_s: float = 5.0) -> None:
-        """Ask the thread to end and wait up to ``timeout_s`` for it."""
-        self._stopped.set()
-        if self._thread.is_alive():
-            self._thread.join(timeout_s)
-
-    def _run(self) -> None:
-        while not self._stopped.is_set():
-            try:
-                reap(self.store)
-            except Exception:
-                # A Redis outage or a bad record must not kill the thread: the
-                # next pass tries again.
-                logger.exception("reaper pass failed")
-            self._stopped.wait(self.interval_s)
+    def run_once(self) -> bool:
+        reap(self.store)
+        return False
 
 
 def ordered_queue_names(queues: Sequence[str] | None = None) -> list[str]:

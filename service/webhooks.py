@@ -80,7 +80,6 @@ import hmac
 import ipaddress
 import logging
 import socket
-import threading
 import time
 import urllib.parse
 import zlib
@@ -93,6 +92,7 @@ import httpx
 import orjson
 import redis
 
+from service._periodic import PeriodicThread
 from worker.errors import InvalidDocument
 
 if TYPE_CHECKING:
@@ -492,37 +492,22 @@ def _iso(seconds: float) -> str:
     return datetime.fromtimestamp(seconds, timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
-class Notifier:
+class Notifier(PeriodicThread):
     """A daemon thread that delivers due webhooks (:func:`deliver_due`) until stopped.
 
     Every worker process runs one beside its reaper; they share the work
     through the claim script, so any number may run.
     """
 
+    name = "fixq-notifier"
+
     def __init__(self, store: JobStore, *, poll_s: float | None = None) -> None:
+        super().__init__(poll_s if poll_s is not None else store.settings.notify_poll_s)
         self.store = store
-        self.poll_s = poll_s if poll_s is not None else store.settings.notify_poll_s
-        self._stopped = threading.Event()
-        self._thread = threading.Thread(target=self._run, name="fixq-notifier", daemon=True)
 
-    def start(self) -> Notifier:
-        self._thread.start()
-        return self
-
-    def stop(self, timeout_s: float = 5.0) -> None:
-        self._stopped.set()
-        if self._thread.is_alive():
-            self._thread.join(timeout_s)
-
-    def _run(self) -> None:
-        while not self._stopped.is_set():
-            attempted = 0
-            try:
-                attempted = deliver_due(self.store)
-            except redis.RedisError:
-                logger.warning("notifier: Redis unavailable; trying again", exc_info=True)
-            except Exception:
-                # A bad delivery record must not kill the thread.
-                logger.exception("notifier pass failed")
-            if attempted < DUE_BATCH:
-                self._stopped.wait(self.poll_s)
+    def run_once(self) -> bool:
+        try:
+            return deliver_due(self.store) >= DUE_BATCH
+        except redis.RedisError:
+            logger.warning("notifier: Redis unavailable; trying again", exc_info=True)
+            return False
