@@ -59,3 +59,27 @@ def app(app_settings: Settings, redis_client: Any) -> FastAPI:
 def client(app: FastAPI) -> Iterator[httpx.Client]:
     with make_client(app) as http:
         yield http
+
+
+def machine_shop(**overrides) -> dict:
+    """An invented three-state machine: run it, or repair it at a cost."""
+    document = {
+        "version": 1,
+        "label": "machine shop (invented)",
+        "tags": ["shop"],
+        "discount": 0.9,
+        "model": {
+            "kind": "tabular",
+            "states": ["new", "worn", "broken"],
+            "actions": ["run", "repair"],
+            "reward": [[3.0, -1.0], [2.0, -1.0], [None, -4.0]],
+            "transition": [
+                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
+                [[0.0, 0.7, 0.3], [1.0, 0.0, 0.0]],
+                [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]],
+            ],
+        },
+        "solver": {"method": "value_iteration", "tolerance": 1e-8},
+    }
+    document.update(overrides)
+    return document

@@ -25,35 +25,11 @@ from service import queue as rq_queues
 from service.app import create_app
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
+from tests.service.conftest import machine_shop, make_client
 from worker import solve
 from worker.task import run_job
 
 PROBLEM_JSON = "application/problem+json"
-
-
-def machine_shop(**overrides) -> dict:
-    """An invented three-state machine: run it, or repair it at a cost."""
-    document = {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "tags": ["shop"],
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["new", "worn", "broken"],
-            "actions": ["run", "repair"],
-            "reward": [[3.0, -1.0], [2.0, -1.0], [None, -4.0]],
-            "transition": [
-                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
-                [[0.0, 0.7, 0.3], [1.0, 0.0, 0.0]],
-                [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]],
-            ],
-        },
-        "solver": {"method": "value_iteration", "tolerance": 1e-8},
-    }
-    document.update(overrides)
-    return document
 
 
 def assert_problem(response: httpx.Response, status: int) -> dict:

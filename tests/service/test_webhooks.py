@@ -32,6 +32,7 @@ from service.settings import Settings
 from service.store import JobStore
 from service.submission import submit
 from worker.errors import InvalidDocument
+from tests.service.conftest import machine_shop
 
 REPO = Path(__file__).resolve().parents[2]
 PUBLIC = ipaddress.ip_address("93.184.215.14")
@@ -46,28 +47,6 @@ WORKER_LAUNCH = (
     "run_worker()\n"
 )
 """A worker process with a notifier thread beside it, as ``run_worker`` is to start one."""
-
-
-def machine_shop(**overrides) -> dict:
-    """An invented three-state machine: run it, or repair it at a cost."""
-    document = {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["new", "worn", "broken"],
-            "actions": ["run", "repair"],
-            "reward": [[3.0, -1.0], [2.0, -1.0], [None, -4.0]],
-            "transition": [
-                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
-                [[0.0, 0.7, 0.3], [1.0, 0.0, 0.0]],
-                [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]],
-            ],
-        },
-    }
-    document.update(overrides)
-    return document
 
 
 def independent_signature(secret: str, timestamp: str, body: bytes) -> str:
