@@ -40,8 +40,8 @@ seconds more compilation per kernel):
 
 * ``bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice)``
   — every choice; ties go to the lowest flat choice index.
-* ``bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy)``
-  — one choice only, along lines of the hinted state axis: monotone starts
+* ``bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy,
+  out_reward)`` — one choice only (``out_reward``: the reward at the choice found), along lines of the hinted state axis: monotone starts
   at the previous state's choice (and searches below it only when nothing
   at or above it is allowed), concave stops when the objective falls, after
   skipping a leading infeasible stretch, and at the first infeasible point
@@ -53,8 +53,9 @@ seconds more compilation per kernel):
   ``interval_source``, plus ``β`` times the exact block maximum of ``EV``)
   cannot beat the incumbent under the lowest-index tie rule, leaves are
   evaluated pointwise.  Equal to ``bellman_full`` bit for bit.
-* ``policy_nodes(policy, EVt, ctx, out_reward, out_index, out_weight,
-  out_ok, out_clamped)`` — reward and interpolation nodes of a fixed policy.
+* ``policy_nodes(policy, states, EVt, ctx, out_reward, out_index, out_weight,
+  out_ok, out_clamped)`` — reward and interpolation nodes of a fixed policy
+  at the flat states listed in ``states`` (rows of the outputs).
 * ``scan_pairs(EVt, ctx, out_allowed, out_clamped, out_bad)`` (``expr``
   only) — counts per state over every choice, for diagnostics.
 """
@@ -74,13 +75,15 @@ from typing import Sequence
 
 import numpy as np
 
-from worker import expressions
+from worker import _slopes, expressions
 
 __all__ = ["BOUND_SLACK", "KernelLayout", "ModelSource", "context", "kernel_cache_dir", "layout_for", "load", "module_source"]
 
 BOUND_SLACK = 2.0**-40
 """Relative widening of a block's upper bound (of ``|reward bound| + |β·EV bound|``):
 covers interpolation weights that sum to one only up to rounding."""
+SLOPE_SLACK = 2.0**-40
+"""Relative widening of the slope bound's per-step bound, far above the rounding of its few operations."""
 
 _TEMPLATE_HASH = hashlib.sha256(pathlib.Path(__file__).read_bytes()).hexdigest()[:16]
 
@@ -510,7 +513,10 @@ class _Writer:
                 out.add(f"c_{t} = cgrid[{self.meta.coff(t)} + j_{t}]")
 
     def nodes(self, out: _Lines, detail: bool) -> None:
-        """Interpolation corners: accumulate ``e``; with ``detail`` also write ``idx_row``/``w_row``."""
+        """Interpolation corners: accumulate ``e``; with ``detail`` also write row ``i`` of ``out_index``/``out_weight``.
+
+        Written by element, not through row views: a view costs numba reference counting per state.
+        """
         interp = self.layout.interpolated
         if self.expr:
             terms = [f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None]
@@ -524,7 +530,7 @@ class _Writer:
         if not interp:
             out.add("e = EVt[iz, base]")
             if detail:
-                out.add("idx_row[0] = base", "w_row[0] = 1.0")
+                out.add("out_index[i, 0] = base", "out_weight[i, 0] = 1.0")
             return
         out.add("e = 0.0")
         for corner in range(2 ** len(interp)):
@@ -535,7 +541,7 @@ class _Writer:
             )
             out.add(f"wk = {weight}", f"xk = {index}")
             if detail:
-                out.add(f"idx_row[{corner}] = xk", f"w_row[{corner}] = wk")
+                out.add(f"out_index[i, {corner}] = xk", f"out_weight[i, {corner}] = wk")
             # Zero weights are skipped, here and in policy evaluation alike, so both give the same bits.
             with out.block("if wk != 0.0:"):
                 out.add("e += wk * EVt[iz, xk]")
@@ -618,7 +624,7 @@ class _Writer:
         axis = self.layout.hinted_axis
         out = _Lines()
         out.add(_JIT)
-        with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy):"):
+        with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy, out_reward):"):
             self.prologue(out)
             out.add("NX = EVt.shape[1]", f"M = {self.meta.csize(0)}")
             out.add(f"NH = {self.meta.ssize(axis)}", f"INNER = {self.meta.sstride(axis)}", "NLINES = NX // NH")
@@ -630,7 +636,7 @@ class _Writer:
                     self.state_setup(out, from_ix=True)
                     # One evaluation site, three phases: 0 skips a leading infeasible stretch from the
                     # start, 1 climbs, 2 searches below a monotone start that had nothing allowed above it.
-                    out.add("first = start if monotone else 0", "best = -np.inf", "chosen = -1")
+                    out.add("first = start if monotone else 0", "best = -np.inf", "chosen = -1", "best_r = -np.inf")
                     out.add("c = first", "phase = 0", "stop = M")
                     with out.block("while True:"):
                         with out.block("if c >= stop:"):
@@ -642,13 +648,13 @@ class _Writer:
                             out.add("break")
                         with out.block("if ok:"):
                             with out.block("if val > best:"):
-                                out.add("best = val", "chosen = c")
+                                out.add("best = val", "chosen = c", "best_r = r")
                             with out.block("elif concave and phase == 1 and val < best:"):
                                 out.add("break")
                             with out.block("if phase == 0:"):
                                 out.add("phase = 1")
                         out.add("c += 1")
-                    out.add("out_v[i] = best", "out_policy[i] = chosen")
+                    out.add("out_v[i] = best", "out_policy[i] = chosen", "out_reward[i] = best_r")
                     with out.block("if chosen >= 0:"):
                         out.add("start = chosen")
         return out.text()
@@ -678,7 +684,7 @@ class _Writer:
             out.extend(lines)
             return lo, hi
 
-        out.add("dead = True", "ub = -np.inf")
+        out.add("dead = True", "ub = -np.inf", "base = 0")
         out.add(f"c_lo = cgrid[{self.meta.coff(inner)} + a]", f"c_hi = cgrid[{self.meta.coff(inner)} + b]")
         for k, expr in self.defines:
             if expr is None:
@@ -693,6 +699,7 @@ class _Writer:
             lo, hi = bounds(expr, f"bf{k}_")
             out.add(f"if not ({lo} == 0.0 and {hi} == 0.0):")
             out.depth += 1
+            self.tighten(out, expr.tree, varying, names, lo_names, hi_names)
         _, r_hi = bounds(self.reward, "br_")
         out.add(f"r_hi = {r_hi}")
         with out.block("if r_hi != -np.inf:"):
@@ -720,27 +727,200 @@ class _Writer:
                 out.add(f"ub += {BOUND_SLACK!r} * (abs(r_hi) + abs(beta * ev))")
         out.depth = depth
 
+    _FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "=="}
+
+    def tighten(
+        self, out: _Lines, tree: expressions.Node, varying: set[str], names: dict[str, str],
+        lo_names: dict[str, str], hi_names: dict[str, str],
+    ) -> None:
+        """Narrows the bounds of a name that a constraint compares with a point, and nests on a non-empty box.
+
+        Only allowed choices can be the maximum, so bounds may assume every
+        constraint holds: from ``c > 0`` the reward is bounded over ``c`` in
+        ``[max(c_lo, tiny), c_hi]``, not over the whole block, which keeps a
+        pole just outside the allowed set (``1/c``, ``log c``) out of the bound.
+        Handles comparisons (chained too, and inside ``and``) of a name that
+        varies in the block with a side that does not.
+        """
+        E = expressions
+        if isinstance(tree, E.Logic) and tree.op == "and":
+            for operand in tree.operands:
+                self.tighten(out, operand, varying, names, lo_names, hi_names)
+            return
+        if not isinstance(tree, E.Compare):
+            return
+        for left, op, right in zip(tree.operands, tree.ops, tree.operands[1:]):
+            if op == "!=":
+                continue
+            if isinstance(right, E.Name) and right.id in varying and not (_names_in(left) & varying):
+                left, op, right = right, self._FLIPPED[op], left
+            if not (isinstance(left, E.Name) and left.id in varying) or (_names_in(right) & varying):
+                continue
+            lo, hi = lo_names[left.id], hi_names[left.id]
+            if not (lo.isidentifier() and hi.isidentifier()):
+                continue
+            point = expressions.scalar_source(_as_expression(right), names)
+            if op in (">", ">="):
+                limit = f"np.nextafter({point}, np.inf)" if op == ">" else f"({point})"
+                out.add(f"{lo} = max({lo}, {limit})")
+            elif op in ("<", "<="):
+                limit = f"np.nextafter({point}, -np.inf)" if op == "<" else f"({point})"
+                out.add(f"{hi} = min({hi}, {limit})")
+            else:
+                out.add(f"{lo} = max({lo}, {point})", f"{hi} = min({hi}, {point})")
+            out.add(f"if {lo} <= {hi}:")
+            out.depth += 1
+
+    def slope_plan(self) -> list[tuple[str, expressions.Node, expressions.Node]] | None:
+        """What the slope bound needs, or None where it does not apply (see :mod:`worker._slopes`).
+
+        It applies when the last choice is ``next_of`` the pyramid's axis and no
+        state is interpolated (choice ``j`` then lands on grid point ``j``), and
+        the reward is smooth in that choice.  Returns ``[(name, value tree,
+        derivative tree), ...]``: the defines the reward needs that depend on
+        the choice, in order, then ``("", reward tree, its derivative)``; the
+        trees are hoisted against the choice (their ``@hs_`` names are set by
+        :meth:`slope_bound`).
+        """
+        layout, model = self.layout, self.model
+        inner = self.q - 1
+        if (
+            not self.expr
+            or layout.interpolated
+            or layout.bound_kind != "pyramid"
+            or layout.setter[layout.pyramid_axis] != inner
+        ):
+            return None
+        choice = model.choices[inner]
+        varying = _dependents(model, {choice})
+        needed = set(model.reward.names)
+        for name, expr in reversed(model.defines):
+            if name in needed:
+                needed |= set(expr.names)
+        self._slope_names = dict(self.names)
+        self._slope_lines: list[str] = []
+        hoist = _Hoister(varying, self._slope_names, self._slope_lines, "hs_")
+        moving = {name: True for name in varying if name != choice}
+        plan = []
+        try:
+            for k, expr in self.defines:
+                name = model.defines[k][0]
+                if expr is None or name not in varying or name not in needed:
+                    continue
+                tree = hoist.rewrite(expr.tree)
+                plan.append((name, tree, _slopes.derivative(tree, choice, moving)))
+            tree = hoist.rewrite(self.reward.tree)
+            plan.append(("", tree, _slopes.derivative(tree, choice, moving)))
+        except _slopes.NotSmooth:
+            return None
+        return plan
+
+    def slope_bound(self, out: _Lines, plan: list[tuple[str, expressions.Node, expressions.Node]]) -> None:
+        """Clears ``descend`` when the slope bound proves block ``[a, b]`` below ``best``.
+
+        The anchor is the guess's neighbour on the block's side (``g_j ± 1``,
+        evaluated in the guess pass).  For a block to the right, every step
+        ``f(i+1) − f(i)`` with ``i`` from the anchor ``p`` to ``b − 1`` is at
+        most ``h · max r' + β · max ΔEV``, so ``f(j) ≤ f(p) + (j − p) · step``;
+        to the left, symmetrically with the least step.  ``r'`` is bounded over
+        the hull of the anchor and the block, ``ΔEV`` exactly by the pyramids
+        ``dpu`` (of ``ΔEV`` rounded up) and ``dpd`` (of ``−ΔEV`` rounded up).
+        """
+        model = self.model
+        inner = self.q - 1
+        choice = model.choices[inner]
+        names = self._slope_names
+        lo_names, hi_names = dict(names), dict(names)
+        lo_names[choice], hi_names[choice] = "s_lo", "s_hi"
+        axis = self.layout.pyramid_axis
+        size, stride = self.meta.ssize(axis), self.meta.sstride(axis)
+        out.add("side = 0")
+        with out.block("if o == g_o:"):
+            with out.block("if left_ok and b < g_j - 1:"):
+                out.add("side = -1", "p_a = g_j - 1", "i_lo = a", "i_hi = p_a", "anchor_v = left_v", "anchor_r = left_r")
+            with out.block("elif right_ok and a > g_j + 1:"):
+                out.add("side = 1", "p_a = g_j + 1", "i_lo = p_a", "i_hi = b", "anchor_v = right_v", "anchor_r = right_r")
+        with out.block("if side != 0:"):
+            offset = self.meta.coff(inner)
+            out.add(f"s_lo = cgrid[{offset} + i_lo]", f"s_hi = cgrid[{offset} + i_hi]")
+            fixed = [f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None and j != inner]
+            out.add("base = " + (" + ".join(fixed) if fixed else "0"))
+            out.extend(self._slope_lines)
+            g_lo = g_hi = "0.0"
+            for k, (name, tree, slope) in enumerate(plan):
+                for key, value in names.items():
+                    lo_names.setdefault(key, value)
+                    hi_names.setdefault(key, value)
+                if name:
+                    lines, lo, hi = expressions.interval_source(_as_expression(tree), lo_names, hi_names, f"sv{k}_")
+                    out.extend(lines)
+                    lo_names[name], hi_names[name] = lo, hi
+                lines, lo, hi = expressions.interval_source(_as_expression(slope), lo_names, hi_names, f"sd{k}_")
+                out.extend(lines)
+                if name:
+                    lo_names[_slopes.prime(name)], hi_names[_slopes.prime(name)] = lo, hi
+                else:
+                    g_lo, g_hi = lo, hi
+            with out.block(f"if {g_lo} - {g_lo} == 0.0 and {g_hi} - {g_hi} == 0.0:"):
+                query = f"levels, {size}, {stride}, n_outer, iz, base, i_lo, i_hi - 1)"
+                with out.block("if side > 0:"):
+                    out.add(f"dq = pyramid_max(dpu, {query}")
+                    out.add(f"gh = {g_hi} * (h_max if {g_hi} >= 0.0 else h_min)", "step = gh + beta * dq")
+                with out.block("else:"):
+                    out.add(f"dq = pyramid_max(dpd, {query}")
+                    out.add(f"gh = {g_lo} * (h_min if {g_lo} >= 0.0 else h_max)", "step = beta * dq - gh")
+                out.add(f"step += {SLOPE_SLACK!r} * (abs(gh) + beta * abs(dq))")
+                # The most the objective can rise over the anchor: at the far end when steps may go up.
+                with out.block("if step > 0.0:"):
+                    out.add("reach = (i_hi - p_a) if side > 0 else (p_a - i_lo)")
+                with out.block("else:"):
+                    out.add("reach = (a - p_a) if side > 0 else (p_a - b)")
+                out.add("rise = reach * step")
+                # Rounding of f(j) and f(p): |r(j)| is at most |r(p)| plus the hull's width times max |r'|.
+                out.add(f"r_span = (s_hi - s_lo) * max(abs({g_lo}), abs({g_hi}))")
+                out.add(
+                    "sub = anchor_v + rise + "
+                    f"{BOUND_SLACK!r} * (2.0 * abs(anchor_r) + r_span + 2.0 * beta * ev_abs + abs(rise))"
+                )
+                with out.block("if sub - sub == 0.0 and sub < best:"):
+                    out.add("descend = False")
+
     def kernel_bnb(self) -> str:
         inner = self.q - 1
+        plan = self.slope_plan()
+        self.has_slope = plan is not None
         out = _Lines()
         out.add(_JIT)
         with out.block(
-            "def bellman_bnb(EVt, beta, ctx, pyramid, levels, evmax, guess, has_guess, leaf, depth, "
-            "out_v, out_policy, out_bad, out_bad_choice):"
+            "def bellman_bnb(EVt, beta, ctx, pyramid, levels, evmax, guess, has_guess, leaf, "
+            "dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice):"
         ):
             self.prologue(out)
             out.add(f"M = {self.meta.csize(inner)}")
+            if plan is not None:
+                out.add("h_min = slope[0]", "h_max = slope[1]", "ev_abs = slope[2]")
             self.n_choices(out, "NOUT", inner)
             axis = self.layout.pyramid_axis
             if axis is not None:
                 out.add(f"n_outer = EVt.shape[1] // ({self.meta.ssize(axis)} * {self.meta.sstride(axis)})")
+            # Blocks [a, b] of the last choice still to be searched, depth first (each split pushes
+            # two halves, so the stack never holds more than about log2(M) + 2 blocks).
+            out.add("stack = np.empty((130, 2), dtype=np.int64)")
             with out.block("for i in range(out_v.shape[0]):"):
                 self.state_setup(out)
-                out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1")
-                # Pass o = -1 evaluates the guess alone, as a leaf of one choice, through the same
-                # evaluation site as the leaves: a second inline copy of the model cost about a quarter
-                # more compile time for this kernel.
-                out.add("first_o = -1 if has_guess and guess[i] >= 0 else 0")
+                out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1", "g_o = -1", "g_j = -1")
+                if plan is not None:
+                    out.add("left_ok = False", "right_ok = False")
+                    out.add("left_v = 0.0", "left_r = 0.0", "right_v = 0.0", "right_r = 0.0")
+                with out.block("if has_guess and guess[i] >= 0:"):
+                    out.add("g_o = guess[i] // M", "g_j = guess[i] - g_o * M")
+                # The guess pass (o = -1) evaluates the guess (with its neighbours, the anchors of
+                # the slope bound, when there is one) through the same evaluation site as every other
+                # choice: a second inline copy of the model cost about a quarter more compile time.
+                # The guess's own pass then searches the rest of its line on either side.
+                spread = 1 if plan is not None else 0
+                out.add(f"g_lo = max(g_j - {spread}, 0)", f"g_hi = min(g_j + {spread}, M - 1)")
+                out.add("first_o = -1 if g_o >= 0 else 0")
                 with out.block("for o in range(first_o, NOUT):"):
                     if inner:
                         out.add("rem = max(o, 0)")
@@ -749,51 +929,65 @@ class _Writer:
                         out.add("j_0 = rem")
                         for t in range(inner):
                             out.add(f"c_{t} = cgrid[{self.meta.coff(t)} + j_{t}]")
-                    out.add("cb = max(o, 0) * M", "h = 0", "k = 0")
-                    # Depth-first walk of the binary tree over the last choice; node (h, k) covers
-                    # [k·size, (k+1)·size) with size = leaf · 2**(depth − h); leaves are evaluated.
-                    with out.block("while True:"):
-                        out.add("size = leaf << (depth - h)", "a = k * size", "descend = False")
-                        with out.block("if o < 0 or a < M:"):
-                            with out.block("if o < 0:"):
-                                out.add("c_first = guess[i]", "c_last = c_first")
-                            with out.block("else:"):
-                                out.add("b = min(a + size, M) - 1", "c_first = cb + a", "c_last = cb + b")
-                            with out.block("if o < 0 or size <= leaf:"):
-                                with out.block("for c in range(c_first, c_last + 1):"):
-                                    self.evaluate(out)
-                                    with out.block("if ok:"):
-                                        with out.block("if val > best or (val == best and c < chosen):"):
-                                            out.add("best = val", "chosen = c")
-                                    with out.block("elif bad and o >= 0:"):
-                                        out.add("nbad += 1")
-                                        with out.block("if first_bad < 0:"):
-                                            out.add("first_bad = c")
-                            with out.block("else:"):
+                    out.add("top = 0")
+                    with out.block("if o < 0:"):
+                        out.add("cb = g_o * M", "stack[0, 0] = g_lo", "stack[0, 1] = g_hi", "top = 1")
+                    with out.block("else:"):
+                        out.add("cb = o * M")
+                        with out.block("if o == g_o:"):
+                            with out.block("if g_hi < M - 1:"):
+                                out.add("stack[top, 0] = g_hi + 1", "stack[top, 1] = M - 1", "top += 1")
+                            with out.block("if g_lo > 0:"):
+                                out.add("stack[top, 0] = 0", "stack[top, 1] = g_lo - 1", "top += 1")
+                        with out.block("else:"):
+                            out.add("stack[0, 0] = 0", "stack[0, 1] = M - 1", "top = 1")
+                    with out.block("while top > 0:"):
+                        out.add("top -= 1", "a = stack[top, 0]", "b = stack[top, 1]", "descend = False")
+                        with out.block("if o < 0 or b - a < leaf:"):
+                            with out.block("for c in range(cb + a, cb + b + 1):"):
+                                self.evaluate(out)
+                                with out.block("if ok:"):
+                                    with out.block("if val > best or (val == best and c < chosen):"):
+                                        out.add("best = val", "chosen = c")
+                                    if plan is not None:
+                                        with out.block("if o < 0 and c != guess[i]:"):
+                                            with out.block("if c < guess[i]:"):
+                                                out.add("left_ok = True", "left_v = val", "left_r = r")
+                                            with out.block("else:"):
+                                                out.add("right_ok = True", "right_v = val", "right_r = r")
+                                with out.block("elif bad:"):
+                                    out.add("nbad += 1")
+                                    with out.block("if first_bad < 0:"):
+                                        out.add("first_bad = c")
+                        with out.block("else:"):
+                            # The slope bound first: beside the anchors, where it is meant to work, the
+                            # interval bound cannot (the block holds choices nearly as good as the best).
+                            out.add("descend = True")
+                            if plan is not None:
+                                self.slope_bound(out, plan)
+                            with out.block("if descend:"):
                                 self.block_bound(out)
-                                with out.block("if not dead and not (ub < best or (ub == best and cb + a > chosen)):"):
-                                    out.add("descend = True")
+                                with out.block("if dead or ub < best or (ub == best and cb + a > chosen):"):
+                                    out.add("descend = False")
                         with out.block("if descend:"):
-                            out.add("h += 1", "k *= 2", "continue")
-                        with out.block("while h > 0 and (k & 1) == 1:"):
-                            out.add("h -= 1", "k >>= 1")
-                        with out.block("if h == 0:"):
-                            out.add("break")
-                        out.add("k += 1")
+                            out.add("mid = (a + b) // 2")
+                            out.add("stack[top, 0] = mid + 1", "stack[top, 1] = b")
+                            out.add("stack[top + 1, 0] = a", "stack[top + 1, 1] = mid", "top += 2")
                 out.add("out_v[i] = best", "out_policy[i] = chosen", "out_bad[i] = nbad", "out_bad_choice[i] = first_bad")
         return out.text()
 
     def kernel_policy_nodes(self) -> str:
         out = _Lines()
         out.add(_JIT)
-        with out.block("def policy_nodes(policy, EVt, ctx, out_reward, out_index, out_weight, out_ok, out_clamped):"):
+        with out.block("def policy_nodes(policy, states, EVt, ctx, out_reward, out_index, out_weight, out_ok, out_clamped):"):
             self.prologue(out)
             out.add("beta = 0.0")
-            with out.block("for i in range(policy.shape[0]):"):
+            with out.block("for t in range(states.shape[0]):"):
+                out.add("i = states[t]")
                 self.state_setup(out)
-                out.add("c = policy[i]", "idx_row = out_index[i]", "w_row = out_weight[i]")
+                out.add("c = policy[i]")
                 self.evaluate(out, detail=True)
-                out.add("out_reward[i] = r", "out_ok[i] = ok", "out_clamped[i] = clamped")
+                out.add("out_reward[i] = r", "out_ok[t] = ok", "out_clamped[i] = clamped")
         return out.text()
 
     def kernel_scan(self) -> str:
@@ -835,6 +1029,8 @@ class _Writer:
             parts.append(self.kernel_hinted())
         if self.expr:
             parts += [self.kernel_bnb(), self.kernel_scan()]
+            header_slope = f"SLOPE = {self.has_slope}"
+            parts[0] += "\n" + header_slope
         return "\n\n\n".join(parts) + "\n"
 
 

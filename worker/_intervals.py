@@ -242,6 +242,11 @@ def power(al: float, ah: float, bl: float, bh: float) -> tuple[float, float]:
         return 1.0, 1.0
     if _is_full(al, ah) or _is_full(bl, bh):
         return -np.inf, np.inf
+    if (al > 0.0 or (al >= 0.0 and bl >= 0.0)) and bl == bh:
+        # A fixed exponent (the usual case): monotone in the base, two corners.
+        c1 = np.power(al, bl)
+        c3 = np.power(ah, bl)
+        return _widen(min(c1, c3), max(c1, c3))
     if al > 0.0 or (al >= 0.0 and bl >= 0.0):
         c1 = np.power(al, bl)
         c2 = np.power(al, bh)

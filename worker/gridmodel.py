@@ -240,8 +240,8 @@ class GridProblem:
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
         self._zeros: np.ndarray | None = None
         self._sweep_scratch: tuple[np.ndarray, np.ndarray] | None = None
-        self._last_hinted: tuple[np.ndarray, np.ndarray] | None = None
-        self._depth = max(0, math.ceil(math.log2(max(1.0, data.choice_sizes[-1] / BNB_LEAF))))
+        self._last_hinted: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        self._slope_scratch: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
 
     # Bellman steps ---------------------------------------------------------
 
@@ -276,8 +276,9 @@ class GridProblem:
         out_policy = np.empty(self.n, dtype=np.int64)
         k = self._kernels
         if restricted and self.hints_active and not exhaustive:
-            k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, out_policy)
-            self._last_hinted = (np.array(v, dtype=np.float64).reshape(self.n), out_policy.copy())
+            out_reward = np.empty(self.n)
+            k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, out_policy, out_reward)
+            self._last_hinted = (np.array(v, dtype=np.float64).reshape(self.n), out_policy.copy(), out_reward)
             return out_v, out_policy
         out_bad = np.empty(self.n, dtype=np.int64)
         out_bad_choice = np.empty(self.n, dtype=np.int64)
@@ -292,8 +293,10 @@ class GridProblem:
                     guess = last[1]
                 else:
                     guess = np.empty(self.n, dtype=np.int64)
-                    k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, guess)
+                    k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, guess,
+                                     np.empty(self.n))
             pyramid, levels = self._pyramid_of(EVt)
+            dpu, dpd, slope = self._slope_of(EVt, levels)
             evmax = EVt.max(axis=1) if self._layout.bound_kind == "global" else np.zeros(EVt.shape[0])
             if guess is not None:
                 guess = np.ascontiguousarray(guess, dtype=np.int64).reshape(-1)
@@ -304,8 +307,8 @@ class GridProblem:
             if guess is None:
                 guess = np.zeros(1, dtype=np.int64)
             k.bellman_bnb(
-                EVt, self.discount, self._ctx, pyramid, levels, evmax, guess, has_guess, BNB_LEAF, self._depth,
-                out_v, out_policy, out_bad, out_bad_choice,
+                EVt, self.discount, self._ctx, pyramid, levels, evmax, guess, has_guess, BNB_LEAF,
+                dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice,
             )
         if self.regime == "on_the_fly":
             self._last_exact = {"bad": out_bad, "bad_choice": out_bad_choice}
@@ -325,31 +328,93 @@ class GridProblem:
         kernels.build_pyramid(EVt, size, stride, levels, pyramid)
         return pyramid, levels
 
+    def _slope_of(self, EVt: np.ndarray, levels: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(dpu, dpd, slope)`` for the block search's slope bound (``_codegen.SLOPE``), else placeholders.
+
+        ``dpu``/``dpd`` are pyramids of ``EV(t+1) − EV(t)`` and ``EV(t) − EV(t+1)``
+        along the pyramid axis, each rounded up by a relative ``2**-50`` (four
+        half-ulps: above the rounding of the subtraction), ``-inf`` at the
+        axis's last point; ``slope`` is ``[least, greatest spacing of the last
+        choice's grid (rounded outward), max |EV|]``.
+        """
+        if not getattr(self._kernels, "SLOPE", False):
+            return np.zeros(1), np.zeros(1), np.zeros(3)
+        axis = self._layout.pyramid_axis
+        size = self._data.state_sizes[axis]
+        stride = math.prod(self._data.state_sizes[axis + 1 :])
+        if self._slope_scratch is None:
+            self._slope_scratch = (np.empty(self._pyramid[0].size), np.empty(self._pyramid[0].size), np.empty(EVt.shape))
+        dpu, dpd, diff = self._slope_scratch
+        lines = EVt.reshape(EVt.shape[0], -1, size, stride)
+        steps = diff.reshape(lines.shape)
+        steps[:, :, -1, :] = -np.inf
+        np.subtract(lines[:, :, 1:, :], lines[:, :, :-1, :], out=steps[:, :, :-1, :])
+        widen = np.abs(steps[:, :, :-1, :]) * 2.0**-50
+        raw = steps[:, :, :-1, :].copy()
+        steps[:, :, :-1, :] = raw + widen
+        kernels.build_pyramid(diff, size, stride, levels, dpu)
+        steps[:, :, :-1, :] = widen - raw
+        kernels.build_pyramid(diff, size, stride, levels, dpd)
+        grid = self._data.choice_grids[-1]
+        spacing = np.diff(grid) if grid.size > 1 else np.ones(1)
+        slope = np.array([spacing.min() * (1 - 2.0**-50), spacing.max() * (1 + 2.0**-50), np.abs(EVt).max()])
+        if not spacing.min() > 0.0:
+            slope[:] = np.nan  # a grid that is not increasing: the bound is never used (nan prunes nothing)
+        return dpu, dpd, slope
+
     # Fixed policies --------------------------------------------------------
 
     def _nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """``(reward, node_index, node_weight, clamped)`` of a policy, cached for the last policy."""
+        """``(reward, node_index, node_weight, clamped)`` of a policy, cached for the last policy.
+
+        After the first policy only the states whose choice changed are
+        recomputed, in place: the arrays returned are overwritten by the next
+        call with another policy (every caller uses them at once).
+        """
         policy = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
         cached = self._policy_cache
         if cached is not None and np.array_equal(cached[0], policy):
             return cached[1:]
         if policy.min() < 0 or policy.max() >= self._data.n_choices:
             raise ValueError(f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}")
-        nodes = self._layout.nodes
-        reward = np.empty(self.n)
-        index = np.empty((self.n, nodes), dtype=np.int64)
-        weight = np.empty((self.n, nodes))
-        ok = np.empty(self.n, dtype=np.bool_)
-        clamped = np.empty(self.n, dtype=np.bool_)
-        self._kernels.policy_nodes(policy, self._zero_continuation(), self._ctx, reward, index, weight, ok, clamped)
+        if cached is None:
+            nodes = self._layout.nodes
+            cached = (
+                np.full(self.n, -1, dtype=np.int64), np.empty(self.n), np.empty((self.n, nodes), dtype=np.int64),
+                np.empty((self.n, nodes)), np.empty(self.n, dtype=np.bool_),
+            )
+        known, reward, index, weight, clamped = cached
+        states = np.flatnonzero(known != policy)
+        hinted = self._last_hinted
+        if not self._layout.interpolated and hinted is not None and np.array_equal(hinted[1], policy):
+            # Every state moves onto a grid point: the node is that point with weight 1, and the
+            # hinted step that chose this policy computed the rewards, by the same code.
+            reward[states] = hinted[2][states]
+            index[states, 0] = self._grid_index(policy[states])
+            weight[states, 0] = 1.0
+            clamped[states] = False
+            ok = np.isfinite(reward[states])
+        else:
+            ok = np.empty(states.size, dtype=np.bool_)
+            self._kernels.policy_nodes(
+                policy, states, self._zero_continuation(), self._ctx, reward, index, weight, ok, clamped
+            )
+        known[states] = policy[states]
+        self._policy_cache = cached
         if not ok.all():
-            i = int(np.flatnonzero(~ok)[0])
+            i = int(states[np.flatnonzero(~ok)[0]])
+            known[i] = -1  # recomputed next time, so the error repeats rather than a stale row being used
             raise ValueError(
                 f"the policy picks a choice that is not allowed at {self._data.describe_state(i)} "
                 f"({self._data.describe_choice(policy[i])})"
             )
-        self._policy_cache = (policy.copy(), reward, index, weight, clamped)
         return reward, index, weight, clamped
+
+    def _grid_index(self, choices: np.ndarray) -> np.ndarray:
+        """Tomorrow's flat grid state of flat choices when every state is ``next_of`` a choice."""
+        parts = np.unravel_index(choices, self._data.choice_sizes)
+        strides = [math.prod(self._data.state_sizes[t + 1 :]) for t in range(len(self._data.state_sizes))]
+        return sum(stride * parts[j] for stride, j in zip(strides, self._layout.setter))
 
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
         """``r_σ + β P_σ v``; (n,) → (n,).  Same bits as :meth:`bellman_step` at its own policy."""
@@ -567,14 +632,14 @@ class GridProblem:
         k = self._kernels
         if self.hints_active:
             k.bellman_hinted(EVt, self.discount, self._ctx, bool(self.hints.monotone), bool(self.hints.concave),
-                             empty_f, empty_i)
+                             empty_f, empty_i, empty_f)
         if self.regime == "precomputed":
             k.bellman_full(EVt, self.discount, self._ctx, empty_f, empty_i, empty_i, empty_i)
         else:
             pyramid, levels = np.zeros(1), np.zeros(2, dtype=np.int64)
             k.bellman_bnb(EVt, self.discount, self._ctx, pyramid, levels, np.zeros(EVt.shape[0]), empty_i, True,
-                          BNB_LEAF, self._depth, empty_f, empty_i, empty_i, empty_i)
-        k.policy_nodes(empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
+                          BNB_LEAF, pyramid, pyramid, np.zeros(3), empty_f, empty_i, empty_i, empty_i)
+        k.policy_nodes(empty_i, empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                        np.empty(0, dtype=np.bool_), np.empty(0, dtype=np.bool_))
         kernels.policy_sweeps(empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                               self._data.transition, self.discount, empty_f, 1, -np.inf, EVt, empty_f)
