@@ -13,6 +13,7 @@
 
 from __future__ import annotations
 
+import os
 from collections.abc import Iterator
 
 import pytest
@@ -23,6 +24,11 @@ from service.settings import Settings, get_settings
 from service.store import JobStore
 
 SHARED_REDIS_PORT = 6379
+
+# No background kernel compiles from first solves (worker.bridge): in a clean clone every model
+# structure is new, and a compile process per structure would crowd the two cores and outlive the
+# test that started it.  tests/worker/test_bridge.py turns the bridge on where it tests it.
+os.environ.setdefault("FIXQ_COLD_BRIDGE", "off")
 
 
 @pytest.fixture(scope="session")

@@ -77,7 +77,10 @@ import numpy as np
 
 from worker import _slopes, expressions
 
-__all__ = ["BOUND_SLACK", "KernelLayout", "ModelSource", "context", "kernel_cache_dir", "layout_for", "load", "module_source"]
+__all__ = [
+    "BOUND_SLACK", "KernelLayout", "ModelSource", "context", "kernel_cache_dir", "layout_for", "load", "module_name",
+    "module_source",
+]
 
 BOUND_SLACK = 2.0**-40
 """Relative widening of a block's upper bound (of ``|reward bound| + |β·EV bound|``):
@@ -263,10 +266,14 @@ def kernel_cache_dir() -> pathlib.Path:
     raise OSError("no writable folder for compiled kernels; set FIXQ_KERNEL_CACHE")
 
 
+def module_name(source: str) -> str:
+    """The module (and file) name generated ``source`` is imported under: a hash of it."""
+    return f"fixq_kernels_{hashlib.sha256(source.encode()).hexdigest()[:24]}"
+
+
 def load(source: str) -> ModuleType:
     """Import generated source from the kernel cache (writing it first if new)."""
-    digest = hashlib.sha256(source.encode()).hexdigest()[:24]
-    name = f"fixq_kernels_{digest}"
+    name = module_name(source)
     if name in sys.modules:
         return sys.modules[name]
     directory = kernel_cache_dir()

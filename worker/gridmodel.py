@@ -53,6 +53,7 @@ answer equals the exhaustive search bit for bit.
 
 from __future__ import annotations
 
+import json
 import math
 import time
 from types import ModuleType, SimpleNamespace
@@ -176,6 +177,9 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
     data = model_data(doc)
     backend = "table" if chosen == "precomputed" else "expr"
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
+    source = _codegen.module_source(layout, data.source)
+    if regime is None and _bridge_applies(plan, source):
+        return _bridged(doc, data, plan, chosen, source, started)
     counts: dict[str, Any]
     if backend == "table":
         tables, counts = _precompute(data)
@@ -186,14 +190,52 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
         tables = None
         counts = {"feasibility": feasibility_scan(data, None)}
     prepared = time.perf_counter()
-    module = _codegen.load(_codegen.module_source(layout, data.source))
+    module = _codegen.load(source)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts)
     problem._warm_up()
+    from worker import bridge
+
+    bridge.mark_warm(module.__name__)
     problem.timings = {
         "prepare_s": prepared - started,
         "compile_s": time.perf_counter() - prepared,
     }
+    return problem
+
+
+def _bridge_applies(plan: GridPlan, source: str) -> bool:
+    """Whether to solve by numpy table scans while the kernels compile (see :mod:`worker.bridge`)."""
+    from worker import bridge
+
+    return (
+        bridge.enabled()
+        and plan.pairs <= bridge.BRIDGE_MAX_PAIRS
+        and plan.precompute_bytes <= plan.budget
+        and not bridge.is_warm(_codegen.module_name(source))
+    )
+
+
+def _bridged(doc: Any, data: ModelData, plan: GridPlan, regime: str, source: str, started: float) -> "GridProblem":
+    from service.schema import canonical_json
+    from worker import bridge
+
+    tables, counts = _precompute(data)
+    stuck = np.flatnonzero(~counts["any_allowed"])
+    if stuck.size:
+        raise infeasible(data, stuck, counts["any_feasible"])
+    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
+    ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
+    problem = bridge.TableProblem(doc, data, plan, layout, None, ctx, "precomputed", counts)
+    started_compile = bridge.compile_later(json.loads(canonical_json(doc)), regime, _codegen.module_name(source))
+    problem.bridge_note = (
+        "this model structure's compiled kernels were not in the cache yet: solved by exact numpy scans of the "
+        "tables of all (state, choice) pairs"
+        + (", while they compile in the background for the next solve" if started_compile else
+           "; another process is compiling them")
+        + " (hints, if any, were not needed)"
+    )
+    problem.timings = {"prepare_s": time.perf_counter() - started, "compile_s": 0.0}
     return problem
 
 
@@ -235,6 +277,7 @@ class GridProblem:
         self._monotone, self._concave = bool(plan.monotone), bool(plan.concave)
         self.hints_active = layout.hinted_axis is not None
         self.timings: dict[str, float] = {}
+        self.bridge_note = ""
         self._policy_cache: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
         self._last_exact: dict[str, Any] | None = None
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
@@ -491,6 +534,8 @@ class GridProblem:
         data = self._data
         warnings: list[str] = []
         notes = [f"regime {self.regime}: {self.plan.reason}"]
+        if self.bridge_note:
+            notes = [f"regime {self.regime}: {self.bridge_note}"]
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
         model_choices = self._choice_indices(policy)
