@@ -69,7 +69,9 @@ class CompiledProblem(Protocol):
 
     def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any]]:
         """Result-document ``policy`` and ``policy_index``: nested lists of
-        shape ``shape`` per choice (tabular: ``{"action": [labels]}``)."""
+        shape ``shape`` per choice (tabular: ``{"action": [labels]}``), of
+        plain Python numbers and strings (``ndarray.tolist()``): the result
+        document uses them as they are."""
 
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
         """Per choice name, the (n,) numeric value chosen (tabular: the action

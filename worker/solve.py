@@ -258,7 +258,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
         "resumed_from_iteration": outcome.resumed_from_iteration,
         "bracket": dict(outcome.bracket),
     }
-    return _plain(
+    head = _plain(
         {
             "status": outcome.status,
             "method": doc.solver.method,
@@ -267,15 +267,18 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
             "evaluation_steps": outcome.evaluation_steps,
             "seconds": outcome.seconds,
             "axes": problem.axes,
-            "value": np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist(),
-            "policy": policy,
-            "policy_index": policy_index,
-            "log": outcome.log,
-            "diagnostics": diagnostics,
-            "stationary": stationary,
-            "simulation": simulation,
         }
     )
+    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation})
+    # The big nested lists come from ndarray.tolist() (``describe_policy`` promises the same), so they
+    # are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
+    return {
+        **head,
+        "value": np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist(),
+        "policy": policy,
+        "policy_index": policy_index,
+        **tail,
+    }
 
 
 def _plain(obj: Any) -> Any:

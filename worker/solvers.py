@@ -258,6 +258,7 @@ class _Run:
         self._resume()
         self.started = time.perf_counter()
         self.last_save = self.elapsed()
+        self.sweep_block = 1  # sweeps per fused call, carried from phase to phase (never changes the result)
         self.last_poll = self.started
         self.last_restricted_tv: np.ndarray | None = None
 
@@ -591,7 +592,7 @@ def _fused_sweeps(
     total: int, span_stop: float,
 ) -> None:
     done = sweeps_done
-    block = 1
+    block = run.sweep_block
     while done < total:
         started = time.perf_counter()
         run.v, swept, span = fused(run.v, policy, min(block, total - done), span_stop)
@@ -606,6 +607,7 @@ def _fused_sweeps(
         # Blocks grow or shrink toward SWEEP_BLOCK_S of work; their size never changes the result.
         per_sweep = seconds / max(swept, 1)
         block = max(1, min(4 * block, int(SWEEP_BLOCK_S / max(per_sweep, 1e-9))))
+        run.sweep_block = block
 
 
 def _exact_evaluation(run: _Run, policy: np.ndarray, sweeps_done: int) -> None:
