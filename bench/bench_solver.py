@@ -100,6 +100,7 @@ _CHILD = textwrap.dedent(
     print(json.dumps({"import_s": imported - started, "solve_s": done - imported, "status": result["status"],
                       "timings": result["diagnostics"].get("timings", {}),
                       "bridged": "not in the cache yet" in result["diagnostics"]["notes"][0],
+                      "warnings": len(result["diagnostics"]["warnings"]),
                       "peak_rss_bytes": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}))
     """
 )
@@ -188,7 +189,7 @@ def main() -> int:
         results.append(ok)
         print(f"(d) 20,000 x 7 with hints: solve {solve_s:.2f} s (target <= 5 s; kernels loaded from the cache in "
               f"{report['timings'].get('compile_s', float('nan')):.2f} s), peak RSS {rss / 2**20:.0f} MiB "
-              f"(<= 1024 MiB), status {report['status']}  {verdict(ok)}")
+              f"(<= 1024 MiB), status {report['status']}, warnings {report['warnings']}  {verdict(ok)}")
 
     print(f"{sum(results)} passed, {len(results) - sum(results)} failed")
     return 0 if all(results) else 1

@@ -13,8 +13,9 @@ the problem is small, the solve does not wait:
   table in numpy (:class:`TableProblem`) — no hints, no block search, nothing
   to compile;
 * it starts a background process (``python -m worker.bridge``, niced) that
-  compiles the kernels the regular path would use, so the next solve of the
-  structure, in any process on the machine, loads them.
+  compiles the kernels the regular path would use (by a solve of three
+  iterations), so the next solve of the structure, in any process on the
+  machine, loads them.
 
 The table scan is exact, so the answer is certified exactly as on the
 regular path; it can differ from the regular path's in the last bits, as
@@ -100,7 +101,7 @@ def _locked(module_name: str) -> bool:
         return False
 
 
-def compile_later(document: dict[str, Any], regime: str, module_name: str) -> bool:
+def compile_later(document: dict[str, Any], module_name: str) -> bool:
     """Start the background compile of a document's kernels; False when one already runs (or cannot start)."""
     for process in list(_BACKGROUND):
         if process.poll() is not None:
@@ -114,7 +115,7 @@ def compile_later(document: dict[str, Any], regime: str, module_name: str) -> bo
     except OSError:
         return False
     os.close(descriptor)
-    payload = json.dumps({"document": document, "regime": regime, "lock": str(lock)})
+    payload = json.dumps({"document": document, "lock": str(lock)})
     env = {**os.environ, ENV: "off"}
     root = str(Path(__file__).resolve().parents[1])
     env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
@@ -280,7 +281,12 @@ class TableProblem(GridProblem):
 
 
 def main() -> int:
-    """``python -m worker.bridge``: compile a document's kernels (JSON on stdin), then drop the lock."""
+    """``python -m worker.bridge``: compile a document's kernels (JSON on stdin), then drop the lock.
+
+    Runs a solve of at most three iterations from zeros, with no reports, so
+    that every kernel a real solve calls is compiled, diagnostics included
+    (compiling alone would leave those to the first real solve).
+    """
     payload = json.loads(sys.stdin.read())
     lock = Path(payload["lock"])
     try:
@@ -288,10 +294,13 @@ def main() -> int:
     except OSError:
         pass
     try:
-        from service.schema import parse_document
-        from worker.gridmodel import compile_grid
+        from worker.solve import solve
 
-        compile_grid(parse_document(payload["document"]), regime=payload["regime"])
+        document = dict(payload["document"])
+        document.pop("report", None)
+        document["solver"] = {**document.get("solver", {}), "initial": "zeros", "max_iterations": 3}
+        document["solver"].pop("time_limit_s", None)
+        solve(document)
     finally:
         lock.unlink(missing_ok=True)
     return 0

@@ -179,7 +179,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
     source = _codegen.module_source(layout, data.source)
     if regime is None and _bridge_applies(plan, source):
-        return _bridged(doc, data, plan, chosen, source, started)
+        return _bridged(doc, data, plan, source, started)
     counts: dict[str, Any]
     if backend == "table":
         tables, counts = _precompute(data)
@@ -216,7 +216,7 @@ def _bridge_applies(plan: GridPlan, source: str) -> bool:
     )
 
 
-def _bridged(doc: Any, data: ModelData, plan: GridPlan, regime: str, source: str, started: float) -> "GridProblem":
+def _bridged(doc: Any, data: ModelData, plan: GridPlan, source: str, started: float) -> "GridProblem":
     from service.schema import canonical_json
     from worker import bridge
 
@@ -227,7 +227,7 @@ def _bridged(doc: Any, data: ModelData, plan: GridPlan, regime: str, source: str
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = bridge.TableProblem(doc, data, plan, layout, None, ctx, "precomputed", counts)
-    started_compile = bridge.compile_later(json.loads(canonical_json(doc)), regime, _codegen.module_name(source))
+    started_compile = bridge.compile_later(json.loads(canonical_json(doc)), _codegen.module_name(source))
     problem.bridge_note = (
         "this model structure's compiled kernels were not in the cache yet: solved by exact numpy scans of the "
         "tables of all (state, choice) pairs"

@@ -81,7 +81,7 @@ def test_one_background_compile_per_structure_at_a_time(monkeypatch, tmp_path) -
     name = _codegen.module_name("# a structure\n")
     lock = tmp_path / f"{name}.{bridge._tag()}.compiling"
     lock.touch()
-    assert bridge.compile_later({}, "on_the_fly", name) is False
+    assert bridge.compile_later({}, name) is False
     assert not bridge.wait_idle(timeout=0.2)
     lock.unlink()
     assert bridge.wait_idle(timeout=1.0)
