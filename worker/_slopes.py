@@ -50,7 +50,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 
-from worker.expressions import Arith, Call, Compare, Logic, Name, Negate, Node, Not, Number, Power
+from worker.expressions import Arith, Call, Compare, Name, Negate, Node, Number, Power, _children
 
 __all__ = ["NotSmooth", "derivative", "prime"]
 
@@ -122,20 +122,6 @@ def _names(node: Node) -> set[str]:
     for child in _children(node):
         found |= _names(child)
     return found
-
-
-def _children(node: Node) -> tuple[Node, ...]:
-    if isinstance(node, (Negate, Not)):
-        return (node.operand,)
-    if isinstance(node, Arith):
-        return (node.first, *(term for _, term in node.rest))
-    if isinstance(node, Power):
-        return (node.base, node.exponent)
-    if isinstance(node, (Compare, Logic)):
-        return tuple(node.operands)
-    if isinstance(node, Call):
-        return tuple(node.args)
-    return ()
 
 
 def derivative(node: Node, choice: str, varying: Mapping[str, bool]) -> Node:
