@@ -28,9 +28,10 @@ test suite does, except where it tests this module).
 Readiness is a marker file beside the kernels (``<module>.<tag>.ready``),
 written after a successful warm-up in any process; ``tag`` covers
 ``NUMBA_CACHE_DIR``, Python and numba versions, since the compiled code lives
-where those say.  A lock file (``.compiling``) keeps two background compiles
-of one structure from running at once; a lock older than
-:data:`STALE_LOCK_S` is ignored (its process died).
+where those say.  Lock files (``.compiling``) keep two background compiles of one
+structure from running at once, and more than :data:`MAX_BACKGROUND` of any
+structures; a lock older than :data:`STALE_LOCK_S` is ignored (its process
+died).
 """
 
 from __future__ import annotations
@@ -58,6 +59,10 @@ A scan costs about 5 ns a pair here, so some 30 improvements of the largest take
 compiling the kernels would."""
 ENV = "FIXQ_COLD_BRIDGE"
 """Environment variable; ``off`` (or ``0``, ``false``, ``no``) disables the bridge."""
+MAX_BACKGROUND = 1
+"""Background compiles that may run at once per kernel folder (count): a queue fed many new
+structures at once (a hostile or a careless user) starts no more than this, and the rest of those
+first solves take the bridge again until their turn comes."""
 STALE_LOCK_S = 900.0
 """Age after which a background compile's lock file is ignored (seconds)."""
 CHUNK_PAIRS = 2_000_000
@@ -106,7 +111,7 @@ def compile_later(document: dict[str, Any], module_name: str) -> bool:
     for process in list(_BACKGROUND):
         if process.poll() is not None:
             _BACKGROUND.remove(process)
-    if _locked(module_name):
+    if _locked(module_name) or len(_active_locks()) >= MAX_BACKGROUND:
         return False
     lock = _path(module_name, "compiling")
     try:
@@ -133,13 +138,22 @@ def compile_later(document: dict[str, Any], module_name: str) -> bool:
     return True
 
 
+def _active_locks() -> list[Path]:
+    found = []
+    for lock in _codegen.kernel_cache_dir().glob(f"*.{_tag()}.compiling"):
+        try:
+            if time.time() - lock.stat().st_mtime < STALE_LOCK_S:
+                found.append(lock)
+        except FileNotFoundError:
+            continue
+    return found
+
+
 def wait_idle(timeout: float = 120.0) -> bool:
     """Wait until no background compile holds a lock (benchmarks and tests); True when idle."""
     deadline = time.monotonic() + timeout
-    directory = _codegen.kernel_cache_dir()
     while time.monotonic() < deadline:
-        locks = [p for p in directory.glob(f"*.{_tag()}.compiling") if time.time() - p.stat().st_mtime < STALE_LOCK_S]
-        if not locks:
+        if not _active_locks():
             return True
         time.sleep(0.05)
     return False

@@ -49,6 +49,11 @@ choice (monotone: that choice is ``next_of`` a state); ``restricted=False``
 always searches every allowed choice exactly — in the on-the-fly regime by a
 branch-and-bound over blocks of choices whose bounds are sound, so its
 answer equals the exhaustive search bit for bit.
+
+When the structure's kernels are not compiled on this machine yet and the
+problem is small, :func:`compile_grid` returns a :class:`worker.bridge.TableProblem`
+instead (numpy scans of the ``precomputed`` tables, nothing compiled) and
+starts the compile in the background; see :mod:`worker.bridge`.
 """
 
 from __future__ import annotations
@@ -232,7 +237,7 @@ def _bridged(doc: Any, data: ModelData, plan: GridPlan, source: str, started: fl
         "this model structure's compiled kernels were not in the cache yet: solved by exact numpy scans of the "
         "tables of all (state, choice) pairs"
         + (", while they compile in the background for the next solve" if started_compile else
-           "; another process is compiling them")
+           "; another background compile is running, so a later solve starts this structure's")
         + " (hints, if any, were not needed)"
     )
     problem.timings = {"prepare_s": time.perf_counter() - started, "compile_s": 0.0}
