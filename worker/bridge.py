@@ -106,7 +106,9 @@ def _locked(module_name: str) -> bool:
         return False
 
 
-def compile_later(document: dict[str, Any], module_name: str) -> bool:
+def compile_later(
+    document: dict[str, Any], module_name: str, *, regime: str, limits: dict[str, Any] | None = None
+) -> bool:
     """Start the background compile of a document's kernels; False when one already runs (or cannot start)."""
     for process in list(_BACKGROUND):
         if process.poll() is not None:
@@ -120,7 +122,9 @@ def compile_later(document: dict[str, Any], module_name: str) -> bool:
     except OSError:
         return False
     os.close(descriptor)
-    payload = json.dumps({"document": document, "lock": str(lock)})
+    payload = json.dumps(
+        {"document": document, "module": module_name, "regime": regime, "limits": limits, "lock": str(lock)}
+    )
     env = {**os.environ, ENV: "off"}
     root = str(Path(__file__).resolve().parents[1])
     env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
@@ -297,9 +301,12 @@ class TableProblem(GridProblem):
 def main() -> int:
     """``python -m worker.bridge``: compile a document's kernels (JSON on stdin), then drop the lock.
 
-    Runs a solve of at most three iterations from zeros, with no reports, so
-    that every kernel a real solve calls is compiled, diagnostics included
-    (compiling alone would leave those to the first real solve).
+    Runs a solve of at most three iterations from zeros, with no reports and
+    the caller's limits (they decide the regime, hence the kernels), so that
+    every kernel a real solve calls is compiled, diagnostics included
+    (compiling alone would leave those to the first real solve).  Should that
+    solve have compiled another module than the one the caller named, that
+    one is compiled too, in the regime the caller chose.
     """
     payload = json.loads(sys.stdin.read())
     lock = Path(payload["lock"])
@@ -314,7 +321,12 @@ def main() -> int:
         document.pop("report", None)
         document["solver"] = {**document.get("solver", {}), "initial": "zeros", "max_iterations": 3}
         document["solver"].pop("time_limit_s", None)
-        solve(document)
+        solve(document, limits=payload.get("limits"))
+        if not is_warm(payload["module"]):
+            from service.schema import parse_document
+            from worker.gridmodel import compile_grid
+
+            compile_grid(parse_document(document), limits=payload.get("limits"), regime=payload["regime"])
     finally:
         lock.unlink(missing_ok=True)
     return 0

@@ -58,7 +58,6 @@ starts the compile in the background; see :mod:`worker.bridge`.
 
 from __future__ import annotations
 
-import json
 import math
 import time
 from types import ModuleType, SimpleNamespace
@@ -184,7 +183,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, regime: str 
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
     source = _codegen.module_source(layout, data.source)
     if regime is None and _bridge_applies(plan, source):
-        return _bridged(doc, data, plan, source, started)
+        return _bridged(doc, data, plan, source, chosen, limits, started)
     counts: dict[str, Any]
     if backend == "table":
         tables, counts = _precompute(data)
@@ -221,8 +220,10 @@ def _bridge_applies(plan: GridPlan, source: str) -> bool:
     )
 
 
-def _bridged(doc: Any, data: ModelData, plan: GridPlan, source: str, started: float) -> "GridProblem":
-    from service.schema import canonical_json
+def _bridged(
+    doc: Any, data: ModelData, plan: GridPlan, source: str, regime: str, limits: dict[str, Any] | None, started: float
+) -> "GridProblem":
+    from service.schema import SUBMISSION_KEYS
     from worker import bridge
 
     tables, counts = _precompute(data)
@@ -232,7 +233,10 @@ def _bridged(doc: Any, data: ModelData, plan: GridPlan, source: str, started: fl
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = bridge.TableProblem(doc, data, plan, layout, None, ctx, "precomputed", counts)
-    started_compile = bridge.compile_later(json.loads(canonical_json(doc)), _codegen.module_name(source))
+    # The document as validated, in its own order: the order of params and defines is part of the
+    # generated source (sorted keys, as in the canonical form, would name another module).
+    text = doc.model_dump(mode="json", exclude_none=True, exclude=set(SUBMISSION_KEYS))
+    started_compile = bridge.compile_later(text, _codegen.module_name(source), regime=regime, limits=limits)
     problem.bridge_note = (
         "this model structure's compiled kernels were not in the cache yet: solved by exact numpy scans of the "
         "tables of all (state, choice) pairs"

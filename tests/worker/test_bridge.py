@@ -15,7 +15,7 @@ from test_gridmodel import GROWTH, LQ, TWO_CHOICES, document, random_values
 def _table_problem(model: dict, monkeypatch: pytest.MonkeyPatch, tmp_path) -> bridge.TableProblem:
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
     monkeypatch.setenv(bridge.ENV, "on")
-    monkeypatch.setattr(bridge, "compile_later", lambda *args: False)
+    monkeypatch.setattr(bridge, "compile_later", lambda *args, **kwargs: False)
     problem = compile_grid(parse_document(document(model)))
     assert isinstance(problem, bridge.TableProblem)
     return problem
@@ -60,9 +60,24 @@ def test_a_cold_solve_takes_the_bridge_and_leaves_compiled_kernels_behind(monkey
     assert first["policy_index"] == second["policy_index"]
 
 
+def test_the_background_compile_warms_exactly_the_kernels_the_caller_looks_for(monkeypatch, tmp_path) -> None:
+    # Params in reverse alphabetical order: their order is part of the generated source, so a
+    # background compile of a reordered (canonical) document would warm another module.
+    monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
+    monkeypatch.setenv(bridge.ENV, "on")
+    model = {**GROWTH, "params": {"gamma": 2.0, "delta": 0.08, "alpha": 0.36}}
+    doc = parse_document(document(model))
+    limits = {"max_bytes": 64 << 20}
+    assert isinstance(compile_grid(doc, limits=limits), bridge.TableProblem)
+    assert bridge.wait_idle(timeout=240)
+    warmed = compile_grid(doc, limits=limits)
+    assert not isinstance(warmed, bridge.TableProblem), "the next solve finds the kernels it looks for"
+    assert warmed.timings["compile_s"] < 2.0, "loaded from the cache, not compiled again"
+
+
 def test_the_bridge_stays_out_when_off_forced_too_large_or_warm(monkeypatch, tmp_path) -> None:
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setattr(bridge, "compile_later", lambda *args: False)
+    monkeypatch.setattr(bridge, "compile_later", lambda *args, **kwargs: False)
     doc = parse_document(document(GROWTH))
     monkeypatch.setenv(bridge.ENV, "off")
     assert not isinstance(compile_grid(doc), bridge.TableProblem)
@@ -81,9 +96,9 @@ def test_one_background_compile_at_a_time(monkeypatch, tmp_path) -> None:
     name = _codegen.module_name("# a structure\n")
     lock = tmp_path / f"{name}.{bridge._tag()}.compiling"
     lock.touch()
-    assert bridge.compile_later({}, name) is False
+    assert bridge.compile_later({}, name, regime="on_the_fly") is False
     # Nor a second structure while one compiles (MAX_BACKGROUND is 1).
-    assert bridge.compile_later({}, _codegen.module_name("# another structure\n")) is False
+    assert bridge.compile_later({}, _codegen.module_name("# another structure\n"), regime="on_the_fly") is False
     assert not bridge.wait_idle(timeout=0.2)
     lock.unlink()
     assert bridge.wait_idle(timeout=1.0)
