@@ -21,9 +21,10 @@ The table scan is exact, so the answer is certified exactly as on the
 regular path; it can differ from the regular path's in the last bits, as
 the two regimes already may (numpy's vectorised ``log``/``exp``/``**`` are
 not the C library's).  It applies only when the tables fit within the
-precompute budget and have at most :data:`BRIDGE_MAX_PAIRS` pairs, and never
-when a caller forces a regime.  ``FIXQ_COLD_BRIDGE=off`` turns it off (the
-test suite does, except where it tests this module).
+precompute budget and :data:`BRIDGE_MAX_BYTES`, and have at most
+:data:`BRIDGE_MAX_PAIRS` pairs, and never when a caller forces a regime.
+``FIXQ_COLD_BRIDGE=off`` turns it off (the test suite does, except where it
+tests this module).
 
 Readiness is a marker file beside the kernels (``<module>.<tag>.ready``),
 written after a successful warm-up in any process; ``tag`` covers
@@ -51,12 +52,15 @@ import numpy as np
 from worker import _codegen
 from worker.gridmodel import GridProblem
 
-__all__ = ["BRIDGE_MAX_PAIRS", "ENV", "TableProblem", "compile_later", "enabled", "is_warm", "mark_warm", "wait_idle"]
+__all__ = ["BRIDGE_MAX_BYTES", "BRIDGE_MAX_PAIRS", "ENV", "TableProblem", "compile_later", "enabled", "is_warm", "mark_warm", "wait_idle"]
 
 BRIDGE_MAX_PAIRS = 12_000_000
 """Largest number of (state, choice) pairs solved by numpy table scans while kernels compile (count).
 A scan costs about 5 ns a pair here, so some 30 improvements of the largest take about as long as
 compiling the kernels would."""
+BRIDGE_MAX_BYTES = 256 << 20
+"""Most memory the bridge's tables and scans may take (bytes, the precompute estimate): a first solve
+admitted on the smaller on-the-fly estimate stays within a few hundred MiB more than it."""
 ENV = "FIXQ_COLD_BRIDGE"
 """Environment variable; ``off`` (or ``0``, ``false``, ``no``) disables the bridge."""
 MAX_BACKGROUND = 1

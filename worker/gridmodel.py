@@ -215,7 +215,7 @@ def _bridge_applies(plan: GridPlan, source: str) -> bool:
     return (
         bridge.enabled()
         and plan.pairs <= bridge.BRIDGE_MAX_PAIRS
-        and plan.precompute_bytes <= plan.budget
+        and plan.precompute_bytes <= min(plan.budget, bridge.BRIDGE_MAX_BYTES)
         and not bridge.is_warm(_codegen.module_name(source))
     )
 
