@@ -315,8 +315,8 @@ def main() -> int:
     payload = json.loads(sys.stdin.read())
     lock = Path(payload["lock"])
     try:
-        os.nice(10)
-    except OSError:
+        os.nice(10)  # behind the solves of the machine it shares
+    except (AttributeError, OSError):
         pass
     try:
         from worker.solve import solve
