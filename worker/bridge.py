@@ -167,6 +167,16 @@ def wait_idle(timeout: float = 120.0) -> bool:
     return False
 
 
+def _corner(w: np.ndarray, corner: int, m: int) -> tuple[list[int], np.ndarray]:
+    """The bits of interpolation corner ``corner`` and its weights ``Π_k (w_k or 1 − w_k)``, left to right
+    as the kernels multiply them (``w``: upper weights, last axis of length ``m``)."""
+    bits = [(corner >> k) & 1 for k in range(m)]
+    weight = w[..., 0] if bits[0] else (1.0 - w[..., 0])
+    for k in range(1, m):
+        weight = weight * (w[..., k] if bits[k] else (1.0 - w[..., k]))
+    return bits, weight
+
+
 class TableProblem(GridProblem):
     """A grid problem solved by exact numpy scans of its ``precomputed`` tables; nothing is compiled.
 
@@ -203,10 +213,7 @@ class TableProblem(GridProblem):
         w = weight[rows][:, columns]
         expected = np.zeros(lo.shape[:2])
         for corner in range(2 ** len(interp)):
-            bits = [(corner >> k) & 1 for k in range(len(interp))]
-            wk = w[..., 0] if bits[0] else (1.0 - w[..., 0])
-            for k in range(1, len(interp)):
-                wk = wk * (w[..., k] if bits[k] else (1.0 - w[..., k]))
+            bits, wk = _corner(w, corner, len(interp))
             index = base[None, :].astype(np.int64)
             for k, stride in enumerate(strides):
                 index = index + stride * (lo[..., k].astype(np.int64) + bits[k])
@@ -263,21 +270,14 @@ class TableProblem(GridProblem):
 
     def _nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """The table's reward and nodes at a policy (recomputed whenever the policy changes)."""
-        policy = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
-        cached = self._policy_cache
-        if cached is not None and np.array_equal(cached[0], policy):
-            return cached[1:]
-        if policy.min() < 0 or policy.max() >= self._data.n_choices:
-            raise ValueError(f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}")
+        policy, hit = self._cached_nodes(policy)
+        if hit is not None:
+            return hit
         R, next_base, lower, weight = self._tables
         rows = np.arange(self.n)
         reward = R[rows, policy]
         if not np.all(reward != -np.inf):
-            i = int(np.flatnonzero(reward == -np.inf)[0])
-            raise ValueError(
-                f"the policy picks a choice that is not allowed at {self._data.describe_state(i)} "
-                f"({self._data.describe_choice(policy[i])})"
-            )
+            raise self._not_allowed(policy, int(np.flatnonzero(reward == -np.inf)[0]))
         interp = self._layout.interpolated
         nodes = self._layout.nodes
         index = np.empty((self.n, nodes), dtype=np.int64)
@@ -291,10 +291,7 @@ class TableProblem(GridProblem):
             w = weight[rows, policy]
             strides = [self._meta_stride(t) for t in interp]
             for corner in range(nodes):
-                bits = [(corner >> k) & 1 for k in range(len(interp))]
-                wk = w[:, 0] if bits[0] else (1.0 - w[:, 0])
-                for k in range(1, len(interp)):
-                    wk = wk * (w[:, k] if bits[k] else (1.0 - w[:, k]))
+                bits, wk = _corner(w, corner, len(interp))
                 node_weight[:, corner] = wk
                 index[:, corner] = base + sum(stride * (lo[:, k] + bits[k]) for k, stride in enumerate(strides))
         clamped = np.zeros(self.n, dtype=np.bool_)

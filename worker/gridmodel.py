@@ -423,12 +423,10 @@ class GridProblem:
         recomputed, in place: the arrays returned are overwritten by the next
         call with another policy (every caller uses them at once).
         """
-        policy = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
+        policy, hit = self._cached_nodes(policy)
+        if hit is not None:
+            return hit
         cached = self._policy_cache
-        if cached is not None and np.array_equal(cached[0], policy):
-            return cached[1:]
-        if policy.min() < 0 or policy.max() >= self._data.n_choices:
-            raise ValueError(f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}")
         if cached is None:
             nodes = self._layout.nodes
             cached = (
@@ -456,11 +454,24 @@ class GridProblem:
         if not ok.all():
             i = int(states[np.flatnonzero(~ok)[0]])
             known[i] = -1  # recomputed next time, so the error repeats rather than a stale row being used
-            raise ValueError(
-                f"the policy picks a choice that is not allowed at {self._data.describe_state(i)} "
-                f"({self._data.describe_choice(policy[i])})"
-            )
+            raise self._not_allowed(policy, i)
         return reward, index, weight, clamped
+
+    def _cached_nodes(self, policy: np.ndarray) -> tuple[np.ndarray, tuple[np.ndarray, ...] | None]:
+        """``(policy as flat int64, the cached nodes when it is the cached policy, else None)``; checks the range."""
+        policy = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
+        cached = self._policy_cache
+        if cached is not None and np.array_equal(cached[0], policy):
+            return policy, cached[1:]
+        if policy.min() < 0 or policy.max() >= self._data.n_choices:
+            raise ValueError(f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}")
+        return policy, None
+
+    def _not_allowed(self, policy: np.ndarray, i: int) -> ValueError:
+        return ValueError(
+            f"the policy picks a choice that is not allowed at {self._data.describe_state(i)} "
+            f"({self._data.describe_choice(policy[i])})"
+        )
 
     def _grid_index(self, choices: np.ndarray) -> np.ndarray:
         """Tomorrow's flat grid state of flat choices when every state is ``next_of`` a choice."""
