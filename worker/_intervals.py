@@ -54,7 +54,6 @@ from numba import njit
 
 from worker.expressions import (
     Arith,
-    Call,
     Compare,
     Expression,
     Logic,
