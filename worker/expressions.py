@@ -53,7 +53,11 @@ The two evaluators agree bit for bit on ``+ - * /``, comparisons, logic,
 a constant exponent of 0, 0.5, 1, 2 or -1 (the tests pin this, signed zeros
 included).  Otherwise ``log``, ``exp`` and ``**`` may differ in the last bits,
 because numpy uses vectorised implementations of them while numba calls the
-C library; the interval bounds of ``_intervals`` allow for that.
+C library; the interval bounds of ``_intervals`` allow for that.  With an
+exponent that is a variable (a param) and a base that is one, the numba
+source computes ``1/x`` when it is -1 and ``x*x`` when it is 2, as compilers
+do for constant exponents: the same values as ``pow`` but for its last bit,
+at a fraction of its cost.
 
 Generated source is not eval of user text
 -----------------------------------------
@@ -808,7 +812,12 @@ def _scalar(node: Node, name_of: Mapping[str, str]) -> str:
     if isinstance(node, Arith):
         return "(" + of(node.first) + "".join(f" {op} {of(term)}" for op, term in node.rest) + ")"
     if isinstance(node, Power):
-        return f"({of(node.base)} ** {of(node.exponent)})"
+        base, exponent = of(node.base), of(node.exponent)
+        if isinstance(node.exponent, Number) or not (base.isidentifier() and exponent.isidentifier()):
+            return f"({base} ** {exponent})"
+        # A runtime exponent (a param, say): the compiler cannot fold the common ones as it does
+        # constants, and a call of pow costs several times a division (3x on a CRRA reward).
+        return f"((1.0 / {base}) if {exponent} == -1.0 else (({base} * {base}) if {exponent} == 2.0 else ({base} ** {exponent})))"
     if isinstance(node, Compare):
         chain = of(node.operands[0]) + "".join(
             f" {op} {of(operand)}" for op, operand in zip(node.ops, node.operands[1:])
