@@ -449,6 +449,18 @@ def _dependents(model: ModelSource, roots: set[str]) -> set[str]:
     return found
 
 
+@dataclass
+class _SlopePlan:
+    """What the slope bound's source needs: ``steps`` are ``(name, value tree, derivative tree)`` for
+    the defines the reward needs that depend on the last choice, in order, then ``("", reward tree,
+    its derivative)``; the trees are hoisted against the choice, their ``@hs_`` parts computed by
+    ``lines`` into the variables ``names`` maps them to."""
+
+    names: dict[str, str]
+    lines: list[str]
+    steps: list[tuple[str, expressions.Node, expressions.Node]]
+
+
 class _Writer:
     """Writes one generated module for a layout (and, for ``expr``, a model)."""
 
@@ -793,16 +805,12 @@ class _Writer:
             out.add(f"if {lo} <= {hi}:")
             out.depth += 1
 
-    def slope_plan(self) -> list[tuple[str, expressions.Node, expressions.Node]] | None:
+    def slope_plan(self) -> _SlopePlan | None:
         """What the slope bound needs, or None where it does not apply (see :mod:`worker._slopes`).
 
         It applies when the last choice is ``next_of`` the pyramid's axis and no
         state is interpolated (choice ``j`` then lands on grid point ``j``), and
-        the reward is smooth in that choice.  Returns ``[(name, value tree,
-        derivative tree), ...]``: the defines the reward needs that depend on
-        the choice, in order, then ``("", reward tree, its derivative)``; the
-        trees are hoisted against the choice (their ``@hs_`` names are set by
-        :meth:`slope_bound`).
+        the reward is smooth in that choice.
         """
         layout, model = self.layout, self.model
         inner = self.q - 1
@@ -819,25 +827,23 @@ class _Writer:
         for name, expr in reversed(model.defines):
             if name in needed:
                 needed |= set(expr.names)
-        self._slope_names = dict(self.names)
-        self._slope_lines: list[str] = []
-        hoist = _Hoister(varying, self._slope_names, self._slope_lines, "hs_")
+        plan = _SlopePlan(names=dict(self.names), lines=[], steps=[])
+        hoist = _Hoister(varying, plan.names, plan.lines, "hs_")
         moving = {name: True for name in varying if name != choice}
-        plan = []
         try:
             for k, expr in self.defines:
                 name = model.defines[k][0]
                 if expr is None or name not in varying or name not in needed:
                     continue
                 tree = hoist.rewrite(expr.tree)
-                plan.append((name, tree, _slopes.derivative(tree, choice, moving)))
+                plan.steps.append((name, tree, _slopes.derivative(tree, choice, moving)))
             tree = hoist.rewrite(self.reward.tree)
-            plan.append(("", tree, _slopes.derivative(tree, choice, moving)))
+            plan.steps.append(("", tree, _slopes.derivative(tree, choice, moving)))
         except _slopes.NotSmooth:
             return None
         return plan
 
-    def slope_bound(self, out: _Lines, plan: list[tuple[str, expressions.Node, expressions.Node]]) -> None:
+    def slope_bound(self, out: _Lines, plan: _SlopePlan) -> None:
         """Clears ``descend`` when the slope bound proves block ``[a, b]`` below ``best``.
 
         The anchor is the guess's neighbour on the block's side (``g_j ± 1``,
@@ -851,7 +857,7 @@ class _Writer:
         model = self.model
         inner = self.q - 1
         choice = model.choices[inner]
-        names = self._slope_names
+        names = plan.names
         lo_names, hi_names = dict(names), dict(names)
         lo_names[choice], hi_names[choice] = "s_lo", "s_hi"
         axis = self.layout.pyramid_axis
@@ -867,9 +873,9 @@ class _Writer:
             out.add(f"s_lo = cgrid[{offset} + i_lo]", f"s_hi = cgrid[{offset} + i_hi]")
             fixed = [f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None and j != inner]
             out.add("base = " + (" + ".join(fixed) if fixed else "0"))
-            out.extend(self._slope_lines)
+            out.extend(plan.lines)
             g_lo = g_hi = "0.0"
-            for k, (name, tree, slope) in enumerate(plan):
+            for k, (name, tree, slope) in enumerate(plan.steps):
                 for key, value in names.items():
                     lo_names.setdefault(key, value)
                     hi_names.setdefault(key, value)
@@ -907,10 +913,8 @@ class _Writer:
                 with out.block("if sub - sub == 0.0 and sub < best:"):
                     out.add("descend = False")
 
-    def kernel_bnb(self) -> str:
+    def kernel_bnb(self, plan: _SlopePlan | None) -> str:
         inner = self.q - 1
-        plan = self.slope_plan()
-        self.has_slope = plan is not None
         out = _Lines()
         out.add(_JIT)
         with out.block(
@@ -1050,9 +1054,9 @@ class _Writer:
         if layout.hinted_axis is not None:
             parts.append(self.kernel_hinted())
         if self.expr:
-            parts += [self.kernel_bnb(), self.kernel_scan()]
-            header_slope = f"SLOPE = {self.has_slope}"
-            parts[0] += "\n" + header_slope
+            plan = self.slope_plan()
+            parts[0] += f"\nSLOPE = {plan is not None}"
+            parts += [self.kernel_bnb(plan), self.kernel_scan()]
         return "\n\n\n".join(parts) + "\n"
 
 

@@ -200,31 +200,22 @@ class TableProblem(GridProblem):
     def _warm_up(self) -> None:
         """Nothing to compile."""
 
-    def _expected(self, EVt: np.ndarray, rows: np.ndarray, columns: np.ndarray | slice) -> np.ndarray:
-        """``Σ_k w_k EVt[z, node_k]`` for every row × column pair, corners in the kernels' order."""
-        R, next_base, lower, weight = self._tables
-        z = rows % EVt.shape[0]
-        base = next_base[columns]
+    def _interpolated_expected(self, EVt: np.ndarray, start: int, stop: int) -> np.ndarray:
+        """``Σ_k w_k EVt[z, node_k]`` for states ``[start, stop)`` × every choice, corners in the kernels' order."""
+        _, next_base, lower, weight = self._tables
         interp = self._layout.interpolated
-        if not interp:
-            return EVt[z[:, None], base[None, :]]
-        strides = [self._meta_stride(t) for t in interp]
-        lo = lower[rows][:, columns]
-        w = weight[rows][:, columns]
+        z = np.arange(start, stop) % EVt.shape[0]
+        lo, w = lower[start:stop], weight[start:stop]
         expected = np.zeros(lo.shape[:2])
         for corner in range(2 ** len(interp)):
             bits, wk = _corner(w, corner, len(interp))
-            index = base[None, :].astype(np.int64)
-            for k, stride in enumerate(strides):
-                index = index + stride * (lo[..., k].astype(np.int64) + bits[k])
+            index = next_base[None, :].astype(np.int64)
+            for k, t in enumerate(interp):
+                index = index + self._strides[t] * (lo[..., k].astype(np.int64) + bits[k])
             # Zero weights add nothing (the kernels skip them; ``e + 0.0`` is ``e`` for e ≥ +0.0 sums).
             term = wk * EVt[z[:, None], np.minimum(index, EVt.shape[1] - 1)]
             expected += np.where(wk != 0.0, term, 0.0)
         return expected
-
-    def _meta_stride(self, t: int) -> int:
-        sizes = self._data.state_sizes
-        return int(np.prod(sizes[t + 1 :], dtype=np.int64))
 
     def bellman_step(
         self,
@@ -257,15 +248,14 @@ class TableProblem(GridProblem):
                     out_policy[start * n_shocks + z : stop * n_shocks : n_shocks] = best
                     out_v[start * n_shocks + z : stop * n_shocks : n_shocks] = values[np.arange(stop - start), best]
             return out_v, out_policy
-        all_columns = np.arange(R.shape[1])
         for start in range(0, self.n, rows_per_chunk):
-            rows = np.arange(start, min(self.n, start + rows_per_chunk))
-            reward = R[rows]
-            values = reward + self.discount * self._expected(EVt, rows, all_columns)
+            stop = min(self.n, start + rows_per_chunk)
+            reward = R[start:stop]
+            values = reward + self.discount * self._interpolated_expected(EVt, start, stop)
             values[reward == -np.inf] = -np.inf
             best = np.argmax(values, axis=1)
-            out_policy[rows] = best
-            out_v[rows] = values[np.arange(rows.size), best]
+            out_policy[start:stop] = best
+            out_v[start:stop] = values[np.arange(stop - start), best]
         return out_v, out_policy
 
     def _nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
@@ -289,7 +279,7 @@ class TableProblem(GridProblem):
         else:
             lo = lower[rows, policy].astype(np.int64)
             w = weight[rows, policy]
-            strides = [self._meta_stride(t) for t in interp]
+            strides = [self._strides[t] for t in interp]
             for corner in range(nodes):
                 bits, wk = _corner(w, corner, len(interp))
                 node_weight[:, corner] = wk

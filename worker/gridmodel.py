@@ -294,6 +294,8 @@ class GridProblem:
         self._sweep_scratch: tuple[np.ndarray, np.ndarray] | None = None
         self._last_hinted: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         self._slope_scratch: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        sizes = data.state_sizes
+        self._strides = tuple(math.prod(sizes[t + 1 :]) for t in range(len(sizes)))  # of the flat grid-state index
 
     # Bellman steps ---------------------------------------------------------
 
@@ -371,7 +373,7 @@ class GridProblem:
         if axis is None:
             return np.zeros(1), np.zeros(2, dtype=np.int64)
         size = self._data.state_sizes[axis]
-        stride = math.prod(self._data.state_sizes[axis + 1 :])
+        stride = self._strides[axis]
         if self._pyramid is None:
             levels = kernels.pyramid_levels(size)
             lines = EVt.shape[0] * (EVt.shape[1] // (size * stride))
@@ -393,7 +395,7 @@ class GridProblem:
             return np.zeros(1), np.zeros(1), np.zeros(3)
         axis = self._layout.pyramid_axis
         size = self._data.state_sizes[axis]
-        stride = math.prod(self._data.state_sizes[axis + 1 :])
+        stride = self._strides[axis]
         if self._slope_scratch is None:
             self._slope_scratch = (np.empty(self._pyramid[0].size), np.empty(self._pyramid[0].size), np.empty(EVt.shape))
         dpu, dpd, diff = self._slope_scratch
@@ -476,8 +478,7 @@ class GridProblem:
     def _grid_index(self, choices: np.ndarray) -> np.ndarray:
         """Tomorrow's flat grid state of flat choices when every state is ``next_of`` a choice."""
         parts = np.unravel_index(choices, self._data.choice_sizes)
-        strides = [math.prod(self._data.state_sizes[t + 1 :]) for t in range(len(self._data.state_sizes))]
-        return sum(stride * parts[j] for stride, j in zip(strides, self._layout.setter))
+        return sum(stride * parts[j] for stride, j in zip(self._strides, self._layout.setter))
 
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
         """``r_σ + β P_σ v``; (n,) → (n,).  Same bits as :meth:`bellman_step` at its own policy."""

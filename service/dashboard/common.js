@@ -120,11 +120,24 @@ const fixq = (() => {
     panel.querySelector("input[name=key]").focus();
   }
 
+  // Once the page has loaded: the sign-in check, then the page's own start (not when signed out).
+  function startPage(start) {
+    document.addEventListener("DOMContentLoaded", async () => {
+      try {
+        if (!(await requireSession())) return;
+      } catch (error) {
+        showError("problem", error);
+        return;
+      }
+      await start();
+    });
+  }
+
   function showError(where, error) {
     const box = typeof where === "string" ? document.getElementById(where) : where;
     box.classList.remove("hidden");
     box.replaceChildren(el("strong", { text: "Something went wrong: " }), error.message || String(error));
   }
 
-  return { ApiError, api, el, toDate, formatTime, timeCell, formatBound, formatCount, formatSeconds, stateBadge, isActive, requireSession, showSignin, showError };
+  return { ApiError, api, el, toDate, formatTime, timeCell, formatBound, formatCount, formatSeconds, stateBadge, isActive, requireSession, showSignin, showError, startPage };
 })();

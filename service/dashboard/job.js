@@ -3,7 +3,7 @@
 "use strict";
 
 (() => {
-  const { api, el, timeCell, formatBound, formatCount, formatSeconds, stateBadge, isActive, requireSession, showError } = fixq;
+  const { api, el, timeCell, formatBound, formatCount, formatSeconds, stateBadge, isActive, showError, startPage } = fixq;
   const POLL_MS = 2000;
   const SVG = "http://www.w3.org/2000/svg";
   const COLOURS = { distance: "#1b7f79", error_bound: "#c4572b", tolerance: "#23303d" };
@@ -403,13 +403,7 @@
 
   document.getElementById("cancel").addEventListener("click", cancel);
 
-  document.addEventListener("DOMContentLoaded", async () => {
-    try {
-      if (!(await requireSession())) return;
-    } catch (error) {
-      showError("problem", error);
-      return;
-    }
+  startPage(async () => {
     drawChart();
     await loadJob();
     if (job) followLog();

@@ -3,7 +3,7 @@
 "use strict";
 
 (() => {
-  const { api, el, timeCell, formatBound, formatCount, stateBadge, isActive, requireSession, showError } = fixq;
+  const { api, el, timeCell, formatBound, formatCount, stateBadge, isActive, showError, startPage } = fixq;
   const REFRESH_MS = 2000;
   const PAGE_SIZE = 50;
 
@@ -145,13 +145,7 @@
   });
   older.addEventListener("click", showOlder);
 
-  document.addEventListener("DOMContentLoaded", async () => {
-    try {
-      if (!(await requireSession())) return;
-    } catch (error) {
-      showError("problem", error);
-      return;
-    }
+  startPage(async () => {
     readFiltersFromAddress();
     refresh();
     showExamples();

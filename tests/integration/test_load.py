@@ -13,7 +13,6 @@ count of results written is exactly 1,000).
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import sys
 import threading
@@ -32,6 +31,7 @@ from service.embedded_redis import EmbeddedRedis, free_port
 from service.keys import KeyStore
 from service.settings import Settings
 from service.store import JobStore
+from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
 CLIENTS = 20
@@ -41,7 +41,6 @@ WORKERS = 2
 FINISH_TIMEOUT_S = 240.0
 """Seconds all jobs get to finish after the last submission."""
 STARTUP_TIMEOUT_S = 60.0
-STOP_TIMEOUT_S = 10.0
 
 
 def tiny_document(i: int) -> dict[str, Any]:
@@ -105,15 +104,7 @@ class Fleet:
         return "\n".join(f"--- {p.name}\n{p.read_text(errors='replace')[-3000:]}" for p in files)
 
     def stop(self) -> None:
-        for process in self.processes:
-            if process.poll() is None:
-                os.killpg(process.pid, signal.SIGTERM)
-        for process in self.processes:
-            try:
-                process.wait(STOP_TIMEOUT_S)
-            except subprocess.TimeoutExpired:
-                os.killpg(process.pid, signal.SIGKILL)
-                process.wait()
+        stop_process_groups(self.processes)
 
 
 @pytest.fixture

@@ -15,7 +15,6 @@ import hmac
 import io
 import json
 import os
-import signal
 import subprocess
 import sys
 import time
@@ -29,6 +28,7 @@ import redis
 from service.embedded_redis import EmbeddedRedis, free_port
 from service.settings import Settings
 from service.store import JobStore
+from tests._processes import stop_process_groups
 from tests.service.test_webhooks import WORKER_LAUNCH, Receiver
 from worker import solve
 
@@ -99,13 +99,7 @@ def api(lab: tuple[JobStore, Path]) -> Iterator[httpx.Client]:
 
 
 def stop(process: subprocess.Popen) -> None:
-    if process.poll() is None:
-        os.killpg(process.pid, signal.SIGTERM)
-    try:
-        process.wait(10)
-    except subprocess.TimeoutExpired:
-        os.killpg(process.pid, signal.SIGKILL)
-        process.wait()
+    stop_process_groups([process])
 
 
 def worker_logs(logs: Path) -> str:

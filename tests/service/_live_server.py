@@ -8,7 +8,6 @@ The processes run in their own sessions and are stopped by their own ids.
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import sys
 import time
@@ -17,14 +16,13 @@ from pathlib import Path
 import httpx
 
 from service.embedded_redis import free_port
+from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
 APP_FACTORY = "service.app:create_app"
 """The app factory uvicorn serves (``module:function``)."""
 STARTUP_TIMEOUT_S = 60.0
 """Seconds to wait for the API to answer /healthz."""
-STOP_TIMEOUT_S = 10.0
-"""Seconds to wait for a process to exit after SIGTERM before it is killed."""
 
 
 class LiveServer:
@@ -79,15 +77,7 @@ class LiveServer:
         )
 
     def stop(self) -> None:
-        for _, process in reversed(self.processes):
-            if process.poll() is None:
-                os.killpg(process.pid, signal.SIGTERM)
-        for _, process in reversed(self.processes):
-            try:
-                process.wait(STOP_TIMEOUT_S)
-            except subprocess.TimeoutExpired:
-                os.killpg(process.pid, signal.SIGKILL)
-                process.wait()
+        stop_process_groups(process for _, process in reversed(self.processes))
         self.processes.clear()
 
 

@@ -13,7 +13,6 @@ import http.server
 import ipaddress
 import json
 import os
-import signal
 import socket
 import subprocess
 import sys
@@ -33,6 +32,7 @@ from service.store import JobStore
 from service.submission import submit
 from worker.errors import InvalidDocument
 from tests.service.conftest import machine_shop
+from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
 PUBLIC = ipaddress.ip_address("93.184.215.14")
@@ -384,13 +384,7 @@ def start_worker(store: JobStore, log: Path) -> subprocess.Popen:
 
 
 def stop_worker(process: subprocess.Popen) -> None:
-    if process.poll() is None:
-        os.killpg(process.pid, signal.SIGTERM)
-    try:
-        process.wait(10)
-    except subprocess.TimeoutExpired:
-        os.killpg(process.pid, signal.SIGKILL)
-        process.wait()
+    stop_process_groups([process])
 
 
 def test_a_real_worker_notifies_a_loopback_receiver_and_retries_after_a_500(
