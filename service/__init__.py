@@ -1,5 +1,4 @@
-"""The front door of fixq: HTTP routes, the problem-document schema, job bookkeeping, CLI and client.
+"""The front door of fixq: HTTP routes, job bookkeeping, the queue, the CLI and the client.
 
-Importing this package imports nothing else, so ``service.schema`` can be used
-without the web stack.
+Importing this package imports nothing else.
 """

@@ -1,6 +1,6 @@
 """What every submitted document goes through before anything is stored or queued.
 
-:func:`admit` validates (``service.schema.parse_document``), estimates
+:func:`admit` validates (``worker.document.schema.parse_document``), estimates
 (``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
 checks that a warm start names a finished job the caller may read.  It never
@@ -14,7 +14,7 @@ import importlib
 from collections.abc import Callable
 from typing import Any
 
-from service.schema import InitialJob, ProblemDocument, parse_document
+from worker.document.schema import InitialJob, ProblemDocument, parse_document
 from service.settings import Settings
 from service.store import JobStore, is_job_id
 from worker.errors import InvalidDocument, TooLarge

@@ -395,7 +395,7 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     from service.settings import get_settings
 
     _require_redis_url(get_settings().redis_url, "worker")
-    from worker.task import run_worker
+    from service.task import run_worker
 
     run_worker(burst=args.burst)
     return EXIT_OK

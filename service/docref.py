@@ -1,7 +1,7 @@
 """The problem-document reference of README.md, generated from the JSON Schema.
 
 ``python -m service.docref [--write | --check]`` renders
-``service.schema.json_schema()`` as Markdown: one table per kind of object
+``worker.document.schema.json_schema()`` as Markdown: one table per kind of object
 (the document, each model kind, grids, shocks, the solver, ...), each key with
 its type, its default (or *required*), its limits and its description, in the
 order a reader meets them.  The schema is the contract; this is its reading
@@ -16,7 +16,7 @@ from collections import deque
 from typing import Any
 
 from service._readme import command_line
-from service.schema import json_schema
+from worker.document.schema import json_schema
 
 __all__ = ["reference"]
 

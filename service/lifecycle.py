@@ -1,7 +1,7 @@
 """What happens once a job has finished: its webhook is queued and its sweep moves on.
 
 :func:`job_finished` is called where a job reaches a terminal state (done,
-failed, canceled): by ``worker.task.run_job`` after an execution, and by
+failed, canceled): by ``service.task.run_job`` after an execution, and by
 whatever else ends jobs (the sweep routes when they cancel queued jobs).  It
 runs in the worker's work-horse, so it imports no FastAPI and never raises:
 a Redis error here is logged, and the sweep's next read repeats the chain

@@ -1,7 +1,7 @@
 """fixq's RQ queues: enqueue by import path, requeue, and the reaper.
 
 The service never imports the task it enqueues: RQ is handed the import path
-``worker.task.run_job`` and the job id.  Each *execution* of a job gets its own
+``service.task.run_job`` and the job id.  Each *execution* of a job gets its own
 RQ job id, ``{job_id}-{n}`` with ``n`` counting enqueues (RQ 3.0 allows only
 ``[A-Za-z0-9_-]`` in ids), so an RQ job left behind by a dead worker never
 shares its id, its registries or its result with the execution that replaces it.
@@ -63,7 +63,7 @@ __all__ = [
     "rq_job_key",
 ]
 
-TASK = "worker.task.run_job"
+TASK = "service.task.run_job"
 """Import path of the RQ task; its only argument is the fixq job id."""
 
 PRIORITIES: tuple[str, ...] = ("high", "normal", "low")

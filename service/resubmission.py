@@ -21,7 +21,7 @@ Reuse of identical solves
 Nightly pipelines resubmit the same document whenever nothing upstream
 changed.  Before it queues anything, ``POST /v1/jobs`` looks for a ``done``
 job of the *same owner* whose document has the same
-``service.schema.document_hash`` (the validated problem; label, tags,
+``worker.document.schema.document_hash`` (the validated problem; label, tags,
 priority and notify left out) and whose result is still stored.  If there
 is one, the new job is created already ``done``:
 

@@ -74,7 +74,7 @@ Keys (prefix ``fixq``, setting ``FIXQ_REDIS_PREFIX``)
 ``fixq:reaper:lock``        string  the reaper's pass lock
 ==========================  ======  ==================================================
 
-Execution API (for ``worker.task`` and ``service.queue`` only)
+Execution API (for ``service.task`` and ``service.queue`` only)
 --------------------------------------------------------------
 Writes made on behalf of an execution take its lease ``token`` and are Lua
 scripts that do nothing unless the lease still holds that token: ``claim``,

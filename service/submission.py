@@ -18,7 +18,7 @@ from collections.abc import Callable
 from typing import Any, Protocol
 
 from service.admission import Admitted, admit
-from service import schema
+from worker.document import schema
 from service.settings import Settings
 from service.store import JobStore
 from service.webhooks import check_target

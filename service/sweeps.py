@@ -99,7 +99,7 @@ import redis
 
 from service import webhooks
 from service.limits import ActiveJobs, Quota, Reservation, check_problem_size
-from service.schema import MAX_LABEL_CHARS, MAX_TAGS, SUBMISSION_KEYS
+from worker.document.schema import MAX_LABEL_CHARS, MAX_TAGS, SUBMISSION_KEYS
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore, is_job_id
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job

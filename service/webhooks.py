@@ -63,7 +63,7 @@ with its due time in the zset ``fixq:notify:due``: that zset, not an RQ
 queue, is the delivery queue, because RQ 3.0 schedules delayed retries only
 in workers started with its scheduler.  Each worker process is to run one
 :class:`Notifier` thread beside its reaper (started in
-``worker.task.run_worker``; any number may run).  A notifier claims due
+``service.task.run_worker``; any number may run).  A notifier claims due
 deliveries (a Lua script moves the
 due time ahead by :data:`CLAIM_S`, so a delivery whose notifier died becomes
 due again), makes one attempt each, and on a connection error, a timeout or a

@@ -314,7 +314,7 @@ def main() -> int:
         document["solver"].pop("time_limit_s", None)
         solve(document, limits=payload.get("limits"))
         if not is_warm(payload["module"]):
-            from service.schema import parse_document
+            from worker.document.schema import parse_document
             from worker.gridmodel import compile_grid
 
             compile_grid(parse_document(document), limits=payload.get("limits"), regime=payload["regime"])

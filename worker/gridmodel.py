@@ -223,7 +223,7 @@ def _bridge_applies(plan: GridPlan, source: str) -> bool:
 def _bridged(
     doc: Any, data: ModelData, plan: GridPlan, source: str, regime: str, limits: dict[str, Any] | None, started: float
 ) -> "GridProblem":
-    from service.schema import SUBMISSION_KEYS
+    from worker.document.schema import SUBMISSION_KEYS
     from worker import bridge
 
     tables, counts = _precompute(data)

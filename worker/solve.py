@@ -1,6 +1,6 @@
 """The front door of the numerics: ``solve(document) -> result document``.
 
-``solve`` validates the document (``service.schema.parse_document``),
+``solve`` validates the document (``worker.document.schema.parse_document``),
 estimates its size and refuses it over the memory cap, compiles it (tabular
 here, grid through ``worker.gridmodel``, imported only when needed so that
 ``import worker`` never loads numba), picks the initial values, dispatches to
@@ -61,7 +61,7 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
     TooLarge
         The size estimate exceeds the cap; ``context["estimate"]`` holds it.
     """
-    from service.schema import parse_document
+    from worker.document.schema import parse_document
 
     doc = parse_document(document)
     cap = {"max_bytes": int((limits or {}).get("max_bytes") or max_problem_bytes())}
@@ -171,13 +171,13 @@ def _fingerprint(doc: Any) -> str:
     """A hash of the validated problem, for checkpoints (hex BLAKE2b, 32 bytes).
 
     The document's fields (submission keys such as ``label`` left out, like
-    ``service.schema.document_hash``) are hashed as JSON with every array
+    ``worker.document.schema.document_hash``) are hashed as JSON with every array
     replaced by its shape and dtype, and the arrays' raw bytes are fed to
     the hash directly: re-encoding a large packed array, as the canonical
     document hash does, would cost seconds and gigabytes on big tabular
     problems, for no gain here.
     """
-    from service.schema import SUBMISSION_KEYS
+    from worker.document.schema import SUBMISSION_KEYS
 
     digest = hashlib.blake2b(digest_size=32)
 

@@ -698,6 +698,6 @@ METHODS: dict[str, Callable[..., SolveOutcome]] = {
 }
 """Method name → solver ``fn(problem, initial, *, tolerance, max_iterations,
 time_limit_s, checkpoint_s, evaluation_steps, on_progress, checkpoint,
-should_stop, fingerprint) -> SolveOutcome``.  ``service.schema.METHOD_NAMES``
+should_stop, fingerprint) -> SolveOutcome``.  ``worker.document.schema.METHOD_NAMES``
 lists the same names."""
 

@@ -153,7 +153,7 @@ def compile_tabular(doc: Any) -> TabularProblem:
 
     Parameters
     ----------
-    doc : service.schema.ProblemDocument
+    doc : worker.document.schema.ProblemDocument
         ``doc.model`` is a ``TabularModel``: ``reward`` (S, A) with NaN for
         "not allowed", ``transition`` an (S, A, S) array or a sparse object
         whose ``entries`` is an (N, 4) array of ``(s, a, s_next, p)`` rows.

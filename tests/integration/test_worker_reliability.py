@@ -1,7 +1,7 @@
 """Reliability of jobs: the RQ task, the lease, checkpoints, cancel and the reaper.
 
 Real Redis (the private server of ``tests/conftest.py``) and, for most tests,
-real ``rq`` worker processes started through ``worker.task.run_worker``, each
+real ``rq`` worker processes started through ``service.task.run_worker``, each
 in its own session so that a test can SIGKILL a worker and its work-horse (RQ
 puts the horse in a process group of its own).  Leases and reaper passes are
 shortened through ``FIXQ_*`` variables so that a dead node is noticed in a few
@@ -33,11 +33,11 @@ from service import queue as rq_queues
 from service.queue import reap
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
-from worker.task import decode_checkpoint, encode_checkpoint, run_job
+from service.task import decode_checkpoint, encode_checkpoint, run_job
 
 REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}
-WORKER_COMMAND = [sys.executable, "-c", "from worker.task import run_worker; run_worker()"]
+WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; run_worker()"]
 
 
 def machine_shop() -> dict[str, Any]:
@@ -371,7 +371,7 @@ def test_two_concurrent_executions_write_one_result(
     job_id = submit(fast_store, slow_replacement(15), enqueue=False)
     # Both processes import first, then start run_job together on a signal.
     code = (
-        "import os, redis; from worker.task import run_job; "
+        "import os, redis; from service.task import run_job; "
         "r = redis.Redis.from_url(os.environ['FIXQ_REDIS_URL']); r.rpush('test:ready', 1); r.blpop('test:go', 60); "
         f"print(run_job({job_id!r})['outcome'])"
     )
@@ -396,7 +396,7 @@ def test_an_execution_that_loses_its_lease_stops_without_writing(
     fast_store: JobStore, workers: Workers, result_writes: Counter[str]
 ) -> None:
     job_id = submit(fast_store, slow_replacement(10_000, checkpoint_s=0.2), enqueue=False)
-    code = f"from worker.task import run_job; print(run_job({job_id!r})['outcome'])"
+    code = f"from service.task import run_job; print(run_job({job_id!r})['outcome'])"
     run = subprocess.Popen([sys.executable, "-c", code], cwd=REPO, env=workers.env, stdout=subprocess.PIPE)
     wait_for(fast_store, job_id, lambda j: (j["progress"] or {}).get("iteration", 0) >= 2, 60, "iterating")
     # Another execution takes over, as after a reaper requeue.

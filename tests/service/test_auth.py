@@ -25,7 +25,7 @@ from service.keys import KEY_PREFIX, KeyNameError, KeyStore, key_digest, looks_l
 from service.settings import Settings, get_settings
 from service.store import JobStore
 from tests.service.conftest import make_client
-from worker.task import run_job
+from service.task import run_job
 
 PROBLEM_JSON = "application/problem+json"
 

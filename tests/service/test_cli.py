@@ -216,7 +216,7 @@ def test_run_starts_redis_api_and_worker_and_stops_them_all(tmp_path: Path, docu
 def test_examples_lists_the_bundled_problems_and_writes_one_out(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     from service.cli import main
     from service.examples import example_names, load_example
-    from service.schema import parse_document
+    from worker.document.schema import parse_document
 
     assert main(["examples"]) == 0
     listing = capsys.readouterr().out.splitlines()

@@ -28,7 +28,7 @@ def test_document_reference_is_current() -> None:
 
 
 def test_document_reference_covers_every_object_of_the_schema() -> None:
-    from service.schema import json_schema
+    from worker.document.schema import json_schema
 
     text = reference()
     for name in json_schema()["$defs"]:

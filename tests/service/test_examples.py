@@ -26,7 +26,7 @@ from service import plots, problems
 from service.embedded_redis import EmbeddedRedis
 from service.examples import DESCRIPTIONS, UnknownExample, example_names, list_examples, load_example
 from service.routers.examples import router as examples_router
-from service.schema import parse_document
+from worker.document.schema import parse_document
 from worker import solve
 from worker.estimate import estimate
 

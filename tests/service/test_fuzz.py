@@ -26,7 +26,7 @@ from hypothesis import strategies as st
 from service.app import create_app
 from service.examples import load_example
 from service.keys import KeyStore
-from service.schema import json_schema
+from worker.document.schema import json_schema
 from service.settings import Settings
 from tests.service.conftest import make_client
 

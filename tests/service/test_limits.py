@@ -208,7 +208,7 @@ def test_workers_drain_high_then_normal_then_low(redis_client: redis.Redis) -> N
     assert names == ["fixq-high", "fixq-normal", "fixq-low"]
     queues = {p: Queue(rq_queues.queue_name(p), connection=redis_client) for p in ("low", "normal", "high")}
     for priority, queue in queues.items():
-        queue.enqueue("worker.task.run_job", f"{priority}job", job_id=f"{priority}-1")
+        queue.enqueue("service.task.run_job", f"{priority}job", job_id=f"{priority}-1")
     # Queue.dequeue_any is how an RQ worker picks its next job from its queues, in their order.
     ordered = [queues[p] for p in ("high", "normal", "low")]
     taken = []
@@ -219,7 +219,7 @@ def test_workers_drain_high_then_normal_then_low(redis_client: redis.Redis) -> N
 
 
 def test_run_worker_listens_on_the_priorities_in_order(monkeypatch: pytest.MonkeyPatch, redis_url: str) -> None:
-    import worker.task as task
+    import service.task as task
 
     seen: dict[str, Any] = {}
 

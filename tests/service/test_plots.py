@@ -19,11 +19,11 @@ from service.deps import Caller, current_owner
 from service.examples import load_example
 from service.problems import Problem
 from service.routers.plots import router as plots_router
-from service.schema import document_hash, parse_document
+from worker.document.schema import document_hash, parse_document
 from service.settings import get_settings
 from service.store import JobStore
 from worker.estimate import estimate
-from worker.task import run_job
+from service.task import run_job
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 

@@ -1,6 +1,6 @@
 """``/v1/jobs`` in process: the app from ``create_app`` on the private Redis server.
 
-Executions are the real ``worker.task.run_job`` called in the test process
+Executions are the real ``service.task.run_job`` called in the test process
 (tabular documents only, so no numba), or a hand-driven lease through the
 store's execution API where a test needs a job caught mid-solve.
 """
@@ -27,7 +27,7 @@ from service.settings import Settings
 from service.store import JobStore
 from tests.service.conftest import machine_shop, make_client
 from worker import solve
-from worker.task import run_job
+from service.task import run_job
 
 PROBLEM_JSON = "application/problem+json"
 

@@ -14,7 +14,7 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from service.app import create_app
 from service.embedded_redis import free_port
-from service.schema import json_schema
+from worker.document.schema import json_schema
 from service.settings import Settings
 from service.store import JobStore
 from tests.service.conftest import make_client

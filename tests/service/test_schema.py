@@ -17,8 +17,8 @@ from typing import Any
 import numpy as np
 import pytest
 
-from service import schema
-from service.schema import (
+from worker.document import schema
+from worker.document.schema import (
     METHOD_NAMES,
     GridModel,
     TabularModel,

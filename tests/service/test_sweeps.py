@@ -1,6 +1,6 @@
 """``/v1/sweeps`` in process, on the private Redis server.
 
-Executions are the real ``worker.task.run_job`` called in the test process
+Executions are the real ``service.task.run_job`` called in the test process
 (tabular documents only, so no numba compilation); ``run_job`` runs the
 finish hook that advances chained sweeps, as it does under a worker.
 """
@@ -25,7 +25,7 @@ from service.store import JobStore
 from tests.service.conftest import machine_shop as shared_machine_shop
 from tests.service.conftest import make_client
 from worker import solve
-from worker.task import run_job
+from service.task import run_job
 
 PROBLEM_JSON = "application/problem+json"
 

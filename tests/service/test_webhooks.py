@@ -42,7 +42,7 @@ WORKER_DATABASE = 5
 WORKER_LAUNCH = (
     "from service.store import JobStore\n"
     "from service.webhooks import Notifier\n"
-    "from worker.task import run_worker\n"
+    "from service.task import run_worker\n"
     "Notifier(JobStore.from_settings()).start()\n"
     "run_worker()\n"
 )

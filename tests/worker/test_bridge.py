@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from service.schema import parse_document
+from worker.document.schema import parse_document
 from worker import _codegen, bridge, solve
 from worker.gridmodel import compile_grid
 

@@ -7,7 +7,7 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from service.schema import parse_document
+from worker.document.schema import parse_document
 from worker import solve
 from worker.errors import TooLarge
 from worker.estimate import PRECOMPUTE_MAX_BYTES, estimate, grid_plan

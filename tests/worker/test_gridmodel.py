@@ -7,7 +7,7 @@ import math
 import numpy as np
 import pytest
 
-from service.schema import parse_document
+from worker.document.schema import parse_document
 from worker import _codegen, solve
 from worker.errors import InfeasibleModel
 from worker.gridmodel import EDGE_WARNING_SHARE, check_feasibility, compile_grid

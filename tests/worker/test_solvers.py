@@ -400,7 +400,7 @@ def test_outcome_is_one_result_type_for_every_method():
 
 
 def test_methods_match_the_schema_names():
-    from service.schema import METHOD_NAMES
+    from worker.document.schema import METHOD_NAMES
 
     assert set(METHODS) == set(METHOD_NAMES)
 

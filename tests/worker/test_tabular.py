@@ -12,7 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from service.schema import parse_document
+from worker.document.schema import parse_document
 from worker.arrays import encode_array
 from worker.errors import InfeasibleModel, InvalidDocument
 from worker.tabular import TabularProblem, compile_tabular

@@ -1,4 +1,4 @@
-"""Helpers of :mod:`service.schema`: annotated field types, faults, the nesting
+"""Helpers of :mod:`worker.document.schema`: annotated field types, faults, the nesting
 guard, the translation of pydantic errors, the vectorised checks of numeric
 arrays, and the finishing of the JSON Schema and the canonical form.
 

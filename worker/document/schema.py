@@ -47,8 +47,8 @@ from pydantic import (
 )
 from pydantic_core import PydanticCustomError
 
-from service import _schema_checks as checks
-from service._schema_checks import fault
+from worker.document import _checks as checks
+from worker.document._checks import fault
 from worker.arrays import DTYPES
 from worker.expressions import MAX_LENGTH as _EXPRESSION_LENGTH
 from worker.errors import InvalidDocument, join_path
