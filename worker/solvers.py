@@ -46,6 +46,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from worker.defaults import DEFAULT_CHECKPOINT_S, DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
 from worker.errors import Canceled, InvalidDocument
 from worker.problem import CompiledProblem
 
@@ -66,16 +67,6 @@ __all__ = [
     "SolveOutcome",
     "observed_rate",
 ]
-
-DEFAULT_TOLERANCE = 1e-6
-"""Target certified sup-norm error, in the units of the value function."""
-DEFAULT_MAX_ITERATIONS = 100_000
-"""Improvement steps before giving up (status ``max_iterations``)."""
-DEFAULT_EVALUATION_STEPS = 50
-"""Howard: policy-evaluation sweeps between two improvement steps while the policy changes (count; the
-base of the adaptive rule in :func:`_phase_plan`)."""
-DEFAULT_CHECKPOINT_S = 30.0
-"""Seconds of solving time between two checkpoint saves."""
 
 ROUNDING_ULPS = 16.0
 """Rounding allowance of one Bellman step, in ulps of ``max(‖Tv‖∞, ‖v‖∞)``

@@ -50,6 +50,7 @@ from pydantic_core import PydanticCustomError
 from worker.document import _checks as checks
 from worker.document._checks import fault
 from worker.arrays import DTYPES
+from worker.defaults import DEFAULT_CHECKPOINT_S, DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
 from worker.expressions import MAX_LENGTH as _EXPRESSION_LENGTH
 from worker.errors import InvalidDocument, join_path
 
@@ -105,26 +106,11 @@ MAX_AXES = 16
 MAX_ENTRIES = MAX_KEYS
 """Most params, defines or feasible expressions in a grid model (count of each)."""
 
-DEFAULT_TOLERANCE = 1e-6
-"""Target certified sup-norm error of the value function (units of the value function)."""
-
-DEFAULT_EVALUATION_STEPS = 50
-"""Policy-evaluation sweeps between improvements for ``howard`` (count; common practice is tens)."""
-
 MAX_EVALUATION_STEPS = 100_000
 """Most policy-evaluation sweeps between improvements (count)."""
 
-DEFAULT_MAX_ITERATIONS = 100_000
-"""Improvement steps before a solve stops with status ``max_iterations`` (count).
-
-Plain value iteration at β = 0.999 needs about log(1e-6) / log(0.999) ≈ 14,000
-sweeps to shrink an error a millionfold, so this leaves room for that."""
-
 MAX_ITERATIONS = 10_000_000
 """Largest accepted ``max_iterations`` (count)."""
-
-DEFAULT_CHECKPOINT_S = 30.0
-"""Seconds of solving between checkpoints."""
 
 DEFAULT_WIDTH = 3.0
 """Tauchen grid half-width (unconditional standard deviations; common practice)."""
