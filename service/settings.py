@@ -15,6 +15,8 @@ from typing import Literal
 from pydantic import Field
 from pydantic_settings import BaseSettings, SettingsConfigDict
 
+from worker.environment import DEFAULT_MAX_PROBLEM_MB
+
 __all__ = ["Settings", "get_settings"]
 
 
@@ -57,7 +59,7 @@ class Settings(BaseSettings):
     job_timeout_s: int = Field(86_400, gt=0, description="RQ's hard limit on one execution, in seconds (24 h).")
     idempotency_ttl_s: int = Field(86_400, gt=0, description="How long an Idempotency-Key is remembered, in seconds.")
     max_problem_mb: float = Field(
-        4096.0, gt=0, description="Memory cap of one solve in MiB (2**20 bytes); larger estimates are refused."
+        float(DEFAULT_MAX_PROBLEM_MB), gt=0, description="Memory cap of one solve in MiB (2**20 bytes); larger estimates are refused."
     )
     worker_log_level: str = Field("INFO", description="Log level of worker processes (DEBUG, INFO, WARNING, ...).")
 

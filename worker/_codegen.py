@@ -83,6 +83,7 @@ from typing import Sequence
 import numpy as np
 
 from worker import _slopes, expressions
+from worker.environment import kernel_cache_setting
 
 __all__ = [
     "BOUND_SLACK", "KernelLayout", "ModelSource", "context", "kernel_cache_dir", "layout_for", "load", "module_name",
@@ -265,8 +266,8 @@ class _Meta:
 
 def kernel_cache_dir() -> pathlib.Path:
     """``FIXQ_KERNEL_CACHE``, else ``~/.cache/fixq/kernels``; a temp folder when neither is writable."""
-    configured = os.environ.get("FIXQ_KERNEL_CACHE", "").strip()
-    candidates = [pathlib.Path(configured).expanduser()] if configured else []
+    configured = kernel_cache_setting()
+    candidates = [configured] if configured else []
     candidates.append(pathlib.Path.home() / ".cache" / "fixq" / "kernels")
     candidates.append(pathlib.Path(tempfile.gettempdir()) / f"fixq-kernels-{os.getuid()}")
     for directory in candidates:

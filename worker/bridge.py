@@ -50,6 +50,7 @@ from typing import Any
 import numpy as np
 
 from worker import _codegen
+from worker.environment import COLD_BRIDGE, cold_bridge_enabled
 from worker.gridmodel import GridProblem
 
 __all__ = ["BRIDGE_MAX_BYTES", "BRIDGE_MAX_PAIRS", "ENV", "TableProblem", "compile_later", "enabled", "is_warm", "mark_warm", "wait_idle"]
@@ -61,7 +62,6 @@ compiling the kernels would."""
 BRIDGE_MAX_BYTES = 256 << 20
 """Most memory the bridge's tables and scans may take (bytes, the precompute estimate): a first solve
 admitted on the smaller on-the-fly estimate stays within a few hundred MiB more than it."""
-ENV = "FIXQ_COLD_BRIDGE"
 """Environment variable; ``off`` (or ``0``, ``false``, ``no``) disables the bridge."""
 MAX_BACKGROUND = 1
 """Background compiles that may run at once per kernel folder (count): a queue fed many new
@@ -76,7 +76,7 @@ _BACKGROUND: list[subprocess.Popen] = []
 
 
 def enabled() -> bool:
-    return os.environ.get(ENV, "on").strip().lower() not in ("off", "0", "false", "no")
+    return cold_bridge_enabled()
 
 
 def _tag() -> str:
@@ -129,7 +129,7 @@ def compile_later(
     payload = json.dumps(
         {"document": document, "module": module_name, "regime": regime, "limits": limits, "lock": str(lock)}
     )
-    env = {**os.environ, ENV: "off"}
+    env = {**os.environ, COLD_BRIDGE: "off"}
     root = str(Path(__file__).resolve().parents[1])
     env["PYTHONPATH"] = root + (os.pathsep + env["PYTHONPATH"] if env.get("PYTHONPATH") else "")
     try:

@@ -145,7 +145,7 @@ def precompute_budget(limits: dict[str, Any] | None = None) -> int:
     """Bytes the precomputed tables may take under ``limits`` (default: the worker's memory cap)."""
     cap = (limits or {}).get("max_bytes")
     if not cap:
-        from worker.solve import max_problem_bytes
+        from worker.environment import max_problem_bytes
 
         cap = max_problem_bytes()
     return int(min(PRECOMPUTE_MAX_BYTES, PRECOMPUTE_CAP_SHARE * int(cap)))

@@ -17,28 +17,15 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
 from worker.problem import CompiledProblem
 from worker.report import simulate_report, stationary_report
 from worker.solvers import METHODS, Checkpoint, SolveOutcome
 
-__all__ = ["DEFAULT_MAX_PROBLEM_MB", "compile_document", "max_problem_bytes", "solve"]
-
-DEFAULT_MAX_PROBLEM_MB = 4096
-"""Memory cap of one problem in MiB (2**20 bytes) when ``FIXQ_MAX_PROBLEM_MB`` is unset."""
+__all__ = ["compile_document", "solve"]
 
 _MIB = 2**20
-
-
-def max_problem_bytes() -> int:
-    """The memory cap in bytes: ``FIXQ_MAX_PROBLEM_MB`` (MiB), default ``DEFAULT_MAX_PROBLEM_MB``."""
-    raw = os.environ.get("FIXQ_MAX_PROBLEM_MB", "").strip()
-    try:
-        megabytes = float(raw) if raw else float(DEFAULT_MAX_PROBLEM_MB)
-    except ValueError:
-        megabytes = float(DEFAULT_MAX_PROBLEM_MB)
-    return int(megabytes * _MIB)
-
 
 def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None = None) -> tuple[Any, CompiledProblem]:
     """Validate, size-check and compile a problem document.
@@ -79,7 +66,7 @@ def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
             "model",
             f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['states']:,} states × "
             f"{size['choices']:,} choices), over the memory cap of {cap / _MIB:,.0f} MiB "
-            "(FIXQ_MAX_PROBLEM_MB); use coarser grids or fewer choices",
+            f"({MAX_PROBLEM_MB}); use coarser grids or fewer choices",
             estimate=size,
         )
     return size

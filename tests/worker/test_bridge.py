@@ -7,6 +7,7 @@ import pytest
 
 from worker.document.schema import parse_document
 from worker import _codegen, bridge, solve
+from worker.environment import COLD_BRIDGE
 from worker.gridmodel import compile_grid
 
 from test_gridmodel import GROWTH, LQ, TWO_CHOICES, document, random_values
@@ -14,7 +15,7 @@ from test_gridmodel import GROWTH, LQ, TWO_CHOICES, document, random_values
 
 def _table_problem(model: dict, monkeypatch: pytest.MonkeyPatch, tmp_path) -> bridge.TableProblem:
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setenv(bridge.ENV, "on")
+    monkeypatch.setenv(COLD_BRIDGE, "on")
     monkeypatch.setattr(bridge, "compile_later", lambda *args, **kwargs: False)
     problem = compile_grid(parse_document(document(model)))
     assert isinstance(problem, bridge.TableProblem)
@@ -26,7 +27,7 @@ def test_table_scan_equals_the_compiled_table_kernels_bit_for_bit(model, monkeyp
     # The same tables scanned by numpy and by the table backend's bellman_full: same bits, same
     # policy (first of equal values), at value functions of no particular shape.
     bridged = _table_problem(model, monkeypatch, tmp_path)
-    monkeypatch.setenv(bridge.ENV, "off")
+    monkeypatch.setenv(COLD_BRIDGE, "off")
     compiled = compile_grid(parse_document(document(model)), regime="precomputed")
     assert not isinstance(compiled, bridge.TableProblem)
     for seed in range(3):
@@ -42,7 +43,7 @@ def test_table_scan_equals_the_compiled_table_kernels_bit_for_bit(model, monkeyp
 
 def test_a_cold_solve_takes_the_bridge_and_leaves_compiled_kernels_behind(monkeypatch, tmp_path) -> None:
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setenv(bridge.ENV, "on")
+    monkeypatch.setenv(COLD_BRIDGE, "on")
     doc = document(GROWTH, hints={"monotone": True, "concave": True})
     first = solve(doc)
     assert first["status"] == "converged"
@@ -64,7 +65,7 @@ def test_the_background_compile_warms_exactly_the_kernels_the_caller_looks_for(m
     # Params in reverse alphabetical order: their order is part of the generated source, so a
     # background compile of a reordered (canonical) document would warm another module.
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
-    monkeypatch.setenv(bridge.ENV, "on")
+    monkeypatch.setenv(COLD_BRIDGE, "on")
     model = {**GROWTH, "params": {"gamma": 2.0, "delta": 0.08, "alpha": 0.36}}
     doc = parse_document(document(model))
     limits = {"max_bytes": 64 << 20}
@@ -79,9 +80,9 @@ def test_the_bridge_stays_out_when_off_forced_too_large_or_warm(monkeypatch, tmp
     monkeypatch.setenv("FIXQ_KERNEL_CACHE", str(tmp_path))
     monkeypatch.setattr(bridge, "compile_later", lambda *args, **kwargs: False)
     doc = parse_document(document(GROWTH))
-    monkeypatch.setenv(bridge.ENV, "off")
+    monkeypatch.setenv(COLD_BRIDGE, "off")
     assert not isinstance(compile_grid(doc), bridge.TableProblem)
-    monkeypatch.setenv(bridge.ENV, "on")
+    monkeypatch.setenv(COLD_BRIDGE, "on")
     assert not isinstance(compile_grid(doc, regime="precomputed"), bridge.TableProblem)
     # compile_grid above warmed this structure's kernels and marked them: no bridge now.
     assert not isinstance(compile_grid(doc), bridge.TableProblem)
