@@ -1,5 +1,6 @@
 # `make demo`: set up a fresh machine and solve a bundled example end to end.
-# `make test`: set up and run the whole test suite (.ci/run calls this).
+# `make test`: set up, lint, and run the whole test suite (.ci/run calls this).
+# `make lint`: set up and run only the linter (ruff, configured in pyproject.toml).
 
 SHELL := bash
 .SHELLFLAGS := -eu -o pipefail -c
@@ -14,11 +15,12 @@ BIN := $(VENV)/bin
 STAMP := $(VENV)/.fixq-installed-$(shell cksum pyproject.toml | cut -d' ' -f1)
 DEMO_PROBLEM ?= service/examples/plant_capacity.json
 
-.PHONY: help env demo test
+.PHONY: help env demo lint test
 
 help:
 	@echo "make demo   set up .venv, start fixq, solve $(DEMO_PROBLEM), stop"
-	@echo "make test   set up .venv and run the test suite"
+	@echo "make lint   set up .venv and run ruff (settings in pyproject.toml)"
+	@echo "make test   set up .venv, run ruff, then the test suite"
 
 $(STAMP): pyproject.toml
 	@echo "setting up $(VENV) (the first time takes a few minutes)"
@@ -29,10 +31,15 @@ $(STAMP): pyproject.toml
 
 env: $(STAMP)
 
+lint: $(STAMP)
+	$(BIN)/ruff check .
+
 # PYTEST_STATUS=FILE makes the recipe write pytest's own exit code there,
 # since make itself exits 2 on any failure (.ci/run needs to tell 5 apart).
+# A lint failure stops the recipe before pytest runs (so no status is written).
 test: $(STAMP)
-	@rc=0
+	@$(BIN)/ruff check .
+	rc=0
 	$(BIN)/python -m pytest -q $(PYTEST_ARGS) || rc=$$?
 	if [ -n "$(PYTEST_STATUS)" ]; then echo "$$rc" >"$(PYTEST_STATUS)"; fi
 	if [ "$$rc" -eq 5 ]; then echo "make test: pytest collected no tests" >&2; fi

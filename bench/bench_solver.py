@@ -155,7 +155,7 @@ def main() -> int:
         results.append(ok)
         print(f"{label} {seconds * 1000:.1f} ms = {base_s / seconds:.0f}x faster (target >= {target}x); "
               f"max |value diff| {diff:.1e} (<= 2e-6), policy differs at {changed} states (0); "
-              f"{result['iterations']} iterations, regime {result['diagnostics']['regime']}  {verdict(ok)}")
+              f"{result['iterations']} iterations, reward storage {result['diagnostics']['reward_storage']}  {verdict(ok)}")
 
     with tempfile.TemporaryDirectory() as kernels, tempfile.TemporaryDirectory() as numba_cache:
         env = {"FIXQ_KERNEL_CACHE": kernels, "NUMBA_CACHE_DIR": numba_cache, "FIXQ_COLD_BRIDGE": "on"}

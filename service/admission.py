@@ -1,6 +1,6 @@
 """What every submitted document goes through before anything is stored or queued.
 
-:func:`admit` validates (``worker.document.schema.parse_document``), estimates
+:func:`admit` validates (``worker.document.parse_document``), estimates
 (``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
 checks that a warm start names a finished job the caller may read.  It never
@@ -14,9 +14,9 @@ import importlib
 from collections.abc import Callable
 from typing import Any
 
-from worker.document.schema import InitialJob, ProblemDocument, parse_document
 from service.settings import Settings
 from service.store import JobStore, is_job_id
+from worker.document import InitialJob, ProblemDocument, parse_document
 from worker.errors import InvalidDocument, TooLarge
 from worker.estimate import estimate
 
@@ -59,8 +59,8 @@ def admit(
     if size["bytes"] > cap:
         raise TooLarge.at(
             "model",
-            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['states']:,} states × "
-            f"{size['choices']:,} choices), over the cap max_problem_mb = {settings.max_problem_mb:g} MiB; "
+            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['points']:,} points × "
+            f"{size['choice_points']:,} choice points), over the cap max_problem_mb = {settings.max_problem_mb:g} MiB; "
             "use coarser grids or fewer choices",
             estimate=size,
         )

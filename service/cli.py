@@ -24,21 +24,14 @@ from typing import Any, NoReturn, TextIO
 
 import httpx
 
+from service.children import WARM_STOP_S, Stop, raise_stop, spawn, stop_child
 from service.client import APIError, FixqClient
 
 __all__ = ["main"]
 
 EXIT_OK, EXIT_FAILED, EXIT_INVALID, EXIT_UNREACHABLE = 0, 1, 2, 3
-STOP_GRACE_S = 10.0
-"""Seconds a child of ``fixq run`` gets to stop after SIGTERM before SIGKILL."""
-WARM_STOP_S = 2.0
-"""Seconds a worker of ``fixq run`` gets to finish its job before it is told to drop it."""
 PROGRESS_EVERY_S = 2.0
 """Seconds between two progress lines when stderr is not a terminal."""
-
-
-class _Stop(Exception):
-    """SIGTERM or SIGINT reached ``fixq run``."""
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -143,7 +136,7 @@ def _read_document(file: str) -> dict[str, Any]:
 
 
 def _refuse_constant(name: str) -> NoReturn:
-    raise ValueError(f"{name} is not JSON; write null for an action that is not allowed")
+    raise ValueError(f"{name} is not JSON; write null where a choice is not allowed")
 
 
 def _usage_error(message: str) -> NoReturn:
@@ -182,7 +175,7 @@ def _outcome(record: dict[str, Any]) -> str:
 
 
 class ProgressBar:
-    """Convergence progress on a terminal line: iteration, distance, bound.
+    """Convergence progress on a terminal line: iteration, distance, error bound.
 
     The bar fills as the error bound falls from its first value to the
     tolerance, on a log scale (each iteration shrinks it by about β).
@@ -200,7 +193,7 @@ class ProgressBar:
         self.pending: str | None = None
 
     def fraction(self, bound: float) -> float:
-        """Share of the way from the first bound to the tolerance, in [0, 1]."""
+        """Share of the way from the first error bound to the tolerance, in [0, 1]."""
         if self.first_bound is None or bound <= self.tolerance:
             return 1.0 if bound <= self.tolerance else 0.0
         span = math.log(self.first_bound / self.tolerance)
@@ -218,7 +211,7 @@ class ProgressBar:
         filled = round(self.fraction(bound) * self.WIDTH)
         line = (
             f"iteration {entry.get('iteration', '?'):>6}  distance {entry.get('distance', math.nan):9.3e}  "
-            f"bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
+            f"error bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
         )
         now = time.monotonic()
         if self.live:
@@ -253,8 +246,8 @@ def _cmd_status(args: argparse.Namespace) -> int:
         ("job", record.get("id")),
         ("label", record.get("label")),
         ("state", _outcome(record)),
-        ("iterations", record.get("iterations") if record.get("iterations") is not None else progress.get("iteration")),
-        ("error bound", record.get("error_bound") if record.get("error_bound") is not None else progress.get("error_bound")),
+        ("iterations", _recorded_or_latest(record, progress, "iterations", "iteration")),
+        ("error bound", _recorded_or_latest(record, progress, "error_bound", "error_bound")),
         ("submitted", record.get("submitted_at")),
         ("started", record.get("started_at")),
         ("finished", record.get("finished_at")),
@@ -263,6 +256,12 @@ def _cmd_status(args: argparse.Namespace) -> int:
         if value not in (None, "", []):
             print(f"{name:<12} {value}")
     return EXIT_OK
+
+
+def _recorded_or_latest(record: dict[str, Any], progress: dict[str, Any], key: str, progress_key: str) -> Any:
+    """The job record's final ``key`` once there is one, else the latest progress entry's ``progress_key``."""
+    value = record.get(key)
+    return value if value is not None else progress.get(progress_key)
 
 
 def _cmd_result(args: argparse.Namespace) -> int:
@@ -430,8 +429,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         auth_on = False
     open_network = args.allow_open_network or settings.allow_open_network
     _check_open_network(host, auth=auth_on, allowed=open_network)
-    signal.signal(signal.SIGTERM, _raise_stop)
-    signal.signal(signal.SIGINT, _raise_stop)
+    signal.signal(signal.SIGTERM, raise_stop)
+    signal.signal(signal.SIGINT, raise_stop)
     redis_server = None
     children: list[tuple[str, subprocess.Popen[bytes]]] = []
     try:
@@ -456,8 +455,8 @@ def _cmd_run(args: argparse.Namespace) -> int:
         api_command = [*command, "api", "--host", host, "--port", str(port)]
         if open_network:
             api_command.append("--allow-open-network")
-        children.append(("api", _spawn(api_command, env)))
-        children.append(("worker", _spawn([*command, "worker"], env)))
+        children.append(("api", spawn(api_command, env)))
+        children.append(("worker", spawn([*command, "worker"], env)))
         print(f"fixq: API on http://{host}:{port} and one worker; Ctrl-C stops everything", flush=True)
         while True:
             for name, child in children:
@@ -465,58 +464,16 @@ def _cmd_run(args: argparse.Namespace) -> int:
                     print(f"fixq: the {name} process exited with {child.returncode}; stopping", file=sys.stderr)
                     return EXIT_FAILED
             time.sleep(0.2)
-    except _Stop:
+    except Stop:
         print("fixq: stopping", flush=True)
         return EXIT_OK
     finally:
         signal.signal(signal.SIGINT, signal.SIG_IGN)
         signal.signal(signal.SIGTERM, signal.SIG_IGN)
         for name, child in children:
-            _stop_child(child, repeat_after_s=WARM_STOP_S if name == "worker" else None)
+            stop_child(child, repeat_after_s=WARM_STOP_S if name == "worker" else None)
         if redis_server is not None:
             redis_server.stop()
-
-
-def _raise_stop(signum: int, frame: object) -> None:
-    raise _Stop
-
-
-def _spawn(command: list[str], env: dict[str, str]) -> subprocess.Popen[bytes]:
-    # Own session: a Ctrl-C on the terminal reaches only `fixq run`, which then
-    # stops its children in order; the parent-death signal stops them too if
-    # `fixq run` itself is killed.
-    return subprocess.Popen(command, env=env, start_new_session=True, preexec_fn=_die_with_parent)
-
-
-def _die_with_parent() -> None:
-    if sys.platform.startswith("linux"):
-        import ctypes
-
-        pr_set_pdeathsig = 1
-        ctypes.CDLL("libc.so.6", use_errno=True).prctl(pr_set_pdeathsig, signal.SIGTERM)
-
-
-def _stop_child(child: subprocess.Popen[bytes], *, repeat_after_s: float | None = None) -> None:
-    """SIGTERM, optionally a second SIGTERM, then SIGKILL after ``STOP_GRACE_S``.
-
-    An RQ worker treats the first SIGTERM as "finish the current job" and a
-    second one (at least a second later) as "kill the work-horse and exit";
-    the interrupted job resumes from its checkpoint on the next start.
-    """
-    if child.poll() is not None:
-        return
-    child.send_signal(signal.SIGTERM)
-    if repeat_after_s is not None:
-        try:
-            child.wait(repeat_after_s)
-            return
-        except subprocess.TimeoutExpired:
-            child.send_signal(signal.SIGTERM)
-    try:
-        child.wait(STOP_GRACE_S)
-    except subprocess.TimeoutExpired:
-        child.kill()
-        child.wait()
 
 
 def _cmd_examples(args: argparse.Namespace) -> int:
@@ -524,7 +481,8 @@ def _cmd_examples(args: argparse.Namespace) -> int:
 
     if args.name is None:
         for example in list_examples():
-            print(f"{example['name']:<22} {example['kind']:<8} {example['states'] or '':>7}  {example['label']}")
+            points = f"{example['points']} points" if example["points"] else ""
+            print(f"{example['name']:<22} {example['kind']:<8} {points:>13}  {example['label']}")
         return EXIT_OK
     try:
         document = load_example(args.name)

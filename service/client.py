@@ -213,7 +213,9 @@ def _encode(document: dict[str, Any]) -> bytes:
     try:
         return json.dumps(document, allow_nan=False, separators=(",", ":"), default=_array_to_list).encode()
     except ValueError as exc:
-        raise ValueError(f"a problem document is strict JSON ({exc}); write null for an action that is not allowed") from None
+        raise ValueError(
+            f"a problem document is strict JSON ({exc}); write null where a choice is not allowed"
+        ) from None
 
 
 def _array_to_list(value: Any) -> Any:

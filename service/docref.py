@@ -1,7 +1,7 @@
 """The problem-document reference of README.md, generated from the JSON Schema.
 
 ``python -m service.docref [--write | --check]`` renders
-``worker.document.schema.json_schema()`` as Markdown: one table per kind of object
+``worker.document.json_schema()`` as Markdown: one table per kind of object
 (the document, each model kind, grids, shocks, the solver, ...), each key with
 its type, its default (or *required*), its limits and its description, in the
 order a reader meets them.  The schema is the contract; this is its reading
@@ -16,7 +16,7 @@ from collections import deque
 from typing import Any
 
 from service._readme import command_line
-from worker.document.schema import json_schema
+from worker.document import json_schema
 
 __all__ = ["reference"]
 
@@ -85,7 +85,8 @@ class _Reference:
                  "null": "nulls", "array": "arrays"}  # fmt: skip
         head, sep, rest = text.partition(" ")
         if head in words and (not sep or rest.startswith(("of ", "or "))):
-            rest = " or ".join(words.get(part, part) for part in rest[3:].split(" or ")) if rest.startswith("or ") else rest
+            if rest.startswith("or "):
+                rest = " or ".join(words.get(part, part) for part in rest[3:].split(" or "))
             return words[head] + (f" or {rest}" if sep and not rest.startswith("of ") else f"{sep}{rest}")
         return text
 

@@ -33,10 +33,6 @@ DESCRIPTIONS: dict[str, str] = {
         "A household splits cash on hand between consumption and saving under persistent income risk; "
         "it cannot borrow more than 1 (the lowest asset level)."
     ),
-    "job_search": (
-        "A job seeker draws one wage offer per period and either takes the job or keeps searching "
-        "on benefits: optimal stopping with a reservation wage."
-    ),
     "machine_replacement": (
         "A machine shop runs a lathe that wears out at random; running costs rise with wear "
         "and a replacement costs 30 (a tabular model with sparse transitions)."
@@ -47,7 +43,12 @@ DESCRIPTIONS: dict[str, str] = {
     ),
     "roastery_growth": (
         "A coffee roastery chooses its roasting capacity and its marketing; marketing grows a customer base "
-        "that churns (two endogenous states, so its plots are heatmaps)."
+        "that churns (two endogenous state variables, so its plots are heatmaps)."
+    ),
+    "translator_contracts": (
+        "A freelance translator living on one-off jobs weighs the monthly contract offers that arrive "
+        "in most months; a contract may end any month, and she may also quit one: a search model "
+        "with a reservation fee."
     ),
 }
 
@@ -82,9 +83,9 @@ def load_example(name: str) -> dict[str, Any]:
 
 
 def list_examples() -> list[dict[str, Any]]:
-    """One summary per example: ``name``, ``label``, ``tags``, ``kind``, ``states``, ``description``.
+    """One summary per example: ``name``, ``label``, ``tags``, ``kind``, ``points``, ``description``.
 
-    ``states`` is the number of points of the value function (tabular: the
+    ``points`` is the number of points of the value function (tabular: the
     number of states; grid: the product of the state and shock grid sizes),
     which says at a glance how big the example is.
     """
@@ -98,12 +99,12 @@ def _summary(name: str, document: dict[str, Any]) -> dict[str, Any]:
         "label": document.get("label", name),
         "tags": list(document.get("tags") or []),
         "kind": model.get("kind"),
-        "states": _state_count(model),
+        "points": _point_count(model),
         "description": DESCRIPTIONS.get(name, ""),
     }
 
 
-def _state_count(model: dict[str, Any]) -> int | None:
+def _point_count(model: dict[str, Any]) -> int | None:
     if model.get("kind") == "tabular":
         states = model.get("states")
         return states if isinstance(states, int) else len(states or [])

@@ -39,9 +39,10 @@ import hmac
 import re
 import secrets
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
 
 import redis
+
+from service._formats import iso_utc
 
 __all__ = [
     "KEY_LIMITS",
@@ -99,8 +100,6 @@ def looks_like_key(text: str) -> bool:
     return _KEY.fullmatch(text) is not None
 
 
-def _now_iso() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="seconds").replace("+00:00", "Z")
 
 
 # KEYS 1 name index, 2 record.  ARGV 1 name, 2 digest, 3.. field/value pairs.
@@ -151,7 +150,8 @@ class KeyStore:
             )
         if name in RESERVED_NAMES:
             raise KeyNameError(f"key name {name!r} is reserved (it owns the jobs submitted while auth was off)")
-        fields: dict[str, str] = {"name": name, "admin": "1" if admin else "0", "created_at": _now_iso()}
+        created_at = iso_utc(timespec="seconds")
+        fields: dict[str, str] = {"name": name, "admin": "1" if admin else "0", "created_at": created_at}
         for limit, value in (limits or {}).items():
             if limit not in KEY_LIMITS:
                 raise ValueError(f"unknown key limit {limit!r}; expected one of {', '.join(KEY_LIMITS)}")

@@ -1,11 +1,14 @@
 """What happens once a job has finished: its webhook is queued and its sweep moves on.
 
 :func:`job_finished` is called where a job reaches a terminal state (done,
-failed, canceled): by ``service.task.run_job`` after an execution, and by
-whatever else ends jobs (the sweep routes when they cancel queued jobs).  It
-runs in the worker's work-horse, so it imports no FastAPI and never raises:
-a Redis error here is logged, and the sweep's next read repeats the chain
-step (``service.sweeps``).
+failed, canceled): by ``service.task.run_job`` after an execution, and by the
+reaper (``service.reaper``) when it gives up on an abandoned job.  It runs in
+the worker's work-horse, so it imports no FastAPI and never raises: a Redis
+error here is logged, and the reaper's next pass creates the chain's next
+jobs instead (``service.sweeps.rescue_pending``).
+
+Layering: this module sits above ``service.sweeps`` and ``service.webhooks``,
+which never import it (nor ``service.reaper``) back.
 """
 
 from __future__ import annotations

@@ -50,7 +50,7 @@ class StoreCollector:
         yield queued
         for name, unit_help in (
             ("seconds", "Solve time of finished jobs, in seconds."),
-            ("iterations", "Bellman improvement steps of finished jobs."),
+            ("iterations", "Iterations of finished jobs."),
         ):
             histogram = histograms[name]
             family = HistogramMetricFamily(f"fixq_solve_{name}", unit_help)

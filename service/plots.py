@@ -1,15 +1,15 @@
 """Pictures of a job: its convergence log, value function and policy, as SVG or PNG.
 
-Everything here reads plain result documents (DESIGN section 5) and log
-entries; nothing touches Redis or HTTP, so the router and the tests share it.
+Everything here reads plain result documents and log entries; nothing
+touches Redis or HTTP, so the router and the tests share it.
 
 * ``convergence`` — distance between iterates and the certified error bound
   against the iteration, on a log scale (a horizontal line marks the target
   tolerance when known).
-* ``value`` / ``policy`` — one endogenous state: a line per shock state
-  (every combination of shocks).  Two or more endogenous states: a heatmap of
-  the first two at one shock state (others held at their middle grid point).
-  Tabular problems: a bar per state.
+* ``value`` / ``policy`` — one state variable: a line per shock point
+  (every combination of shock values).  Two or more state variables: a
+  heatmap of the first two at one shock point (others held at their middle
+  grid point).  Tabular problems: a bar per state.
 
 A request for a picture that cannot be drawn (an unknown choice, a shock
 index out of range) raises :class:`service.problems.Problem` (400) naming the
@@ -58,7 +58,7 @@ FIGURE_SIZE_IN: tuple[float, float] = (7.2, 4.2)
 PNG_DPI: int = 130
 """Raster resolution of PNG pictures, in dots per inch (7.2 in → 936 px)."""
 MAX_LEGEND_LINES: int = 9
-"""Above this many shock states the lines share a colour ramp and a colour bar
+"""Above this many shock points the lines share a colour ramp and a colour bar
 replaces the legend (a legend of 30 entries hides the plot)."""
 
 INK = "#23303d"
@@ -85,7 +85,7 @@ _RENDER_LOCK = threading.Lock()
 
 @dataclass(frozen=True)
 class AxisLayout:
-    """Which result axes are endogenous states and which are shocks.
+    """Which result axes are state variables and which are shocks.
 
     ``states`` and ``shocks`` are axis names in array-axis order; ``tabular``
     is true for a finite Markov decision problem (one axis of state labels).
@@ -97,7 +97,7 @@ class AxisLayout:
 
 
 def axis_layout(result: dict[str, Any], document: dict[str, Any] | None = None) -> AxisLayout:
-    """Split a result's axes into endogenous states and shocks.
+    """Split a result's axes into state variables and shocks.
 
     The result alone does not say which axes are shocks; the submitted
     document does (``model.states`` vs ``model.shocks``).  Without a document
@@ -176,14 +176,18 @@ def value_plot(
     result: dict[str, Any],
     *,
     layout: AxisLayout | None = None,
-    shock: int | None = None,
+    shock_index: int | None = None,
     title: str | None = None,
     fmt: Format = "svg",
 ) -> bytes:
-    """The value function of a result document (see module docstring)."""
+    """The value function of a result document (see module docstring).
+
+    ``shock_index`` is the flat index (C order over the shocks) of the shock
+    point a heatmap shows; default 0.
+    """
     layout = layout or axis_layout(result)
     values = np.asarray(result.get("value"), dtype=float)
-    return _field_plot(result, layout, values, "value", shock, title, fmt)
+    return _field_plot(result, layout, values, "value", shock_index, title, fmt)
 
 
 def policy_plot(
@@ -191,11 +195,15 @@ def policy_plot(
     *,
     layout: AxisLayout | None = None,
     choice: str | None = None,
-    shock: int | None = None,
+    shock_index: int | None = None,
     title: str | None = None,
     fmt: Format = "svg",
 ) -> bytes:
-    """One choice of a result's policy; ``choice`` defaults to the first."""
+    """One choice of a result's policy; ``choice`` (a name) defaults to the first.
+
+    A tabular model has one choice, named ``action``.  ``shock_index`` is as
+    in :func:`value_plot`.
+    """
     layout = layout or axis_layout(result)
     policy = result.get("policy") or {}
     if not policy:
@@ -209,7 +217,7 @@ def policy_plot(
         index = (result.get("policy_index") or {}).get(choice)
         return _tabular_policy(result, labels, index, choice, title, fmt)
     values = np.asarray(policy[choice], dtype=float)
-    return _field_plot(result, layout, values, choice, shock, title, fmt)
+    return _field_plot(result, layout, values, choice, shock_index, title, fmt)
 
 
 def _field_plot(
@@ -217,7 +225,7 @@ def _field_plot(
     layout: AxisLayout,
     field: np.ndarray,
     name: str,
-    shock: int | None,
+    shock_index: int | None,
     title: str | None,
     fmt: Format,
 ) -> bytes:
@@ -230,19 +238,23 @@ def _field_plot(
         raise ValueError(f"{name}: array of shape {field.shape} does not match the axes {shape}")
     n_states = len(layout.states)
     shock_count = int(np.prod(shape[n_states:], dtype=int)) if layout.shocks else 1
-    if shock is not None and not 0 <= shock < shock_count:
-        raise _bad_query("shock", f"shock index {shock} is out of range: this model has {shock_count} shock states")
+    if shock_index is not None and not 0 <= shock_index < shock_count:
+        raise _bad_query(
+            "shock_index",
+            f"shock index {shock_index} is out of range: this model has {shock_count} shock points "
+            f"(0 to {shock_count - 1})",
+        )
     by_shock = field.reshape(shape[:n_states] + (shock_count,))
     labels = shock_labels(axes, layout.shocks)
     if n_states == 1:
         x = np.asarray(axes[layout.states[0]], dtype=float)
         first_shock = axes[layout.shocks[0]] if layout.shocks else []
         return _lines(x, first_shock, by_shock, layout, labels, name, title, fmt)
-    return _heatmap(axes, layout, by_shock, labels, shock or 0, name, title, fmt)
+    return _heatmap(axes, layout, by_shock, labels, shock_index or 0, name, title, fmt)
 
 
 def shock_labels(axes: dict[str, list[Any]], shocks: Sequence[str]) -> list[str]:
-    """One label per flat shock state (C order over ``shocks``), e.g. ``"z=0.95, y=1"``."""
+    """One label per shock point, in flat (C) order over ``shocks``, e.g. ``"z=0.95, y=1"``."""
     if not shocks:
         return [""]
     grids = [[f"{s}={_num(v)}" for v in axes[s]] for s in shocks]
@@ -274,7 +286,7 @@ def _lines(
             shock_values = np.asarray(shock_axis_values, dtype=float)
             low, high, label = float(shock_values[0]), float(shock_values[-1]), layout.shocks[0]
         else:
-            low, high, label = 0.0, float(count - 1), "shock state index"
+            low, high, label = 0.0, float(count - 1), "shock point index"
         _colorbar(fig, ax, _mappable(RAMP, low, high), label)
     elif layout.shocks:
         ax.legend(frameon=False, fontsize=8.5, loc="best")
@@ -288,14 +300,14 @@ def _heatmap(
     layout: AxisLayout,
     by_shock: np.ndarray,
     labels: list[str],
-    shock: int,
+    shock_index: int,
     name: str,
     title: str | None,
     fmt: Format,
 ) -> bytes:
     first, second = layout.states[:2]
     held = {s: len(axes[s]) // 2 for s in layout.states[2:]}
-    plane = by_shock[(slice(None), slice(None), *held.values(), shock)]
+    plane = by_shock[(slice(None), slice(None), *held.values(), shock_index)]
     x = np.asarray(axes[second], dtype=float)
     y = np.asarray(axes[first], dtype=float)
     fig, ax = _figure()
@@ -308,7 +320,7 @@ def _heatmap(
         _colorbar(fig, ax, mesh, name)
     ax.set_xlabel(second)
     ax.set_ylabel(first)
-    notes = [labels[shock]] if labels[shock] else []
+    notes = [labels[shock_index]] if labels[shock_index] else []
     notes += [f"{s}={_num(axes[s][i])}" for s, i in held.items()]
     if notes:
         ax.set_title(", ".join(notes), fontsize=9, color=INK, loc="right")
@@ -334,7 +346,7 @@ def _tabular_policy(
     fmt: Format,
 ) -> bytes:
     states = [str(s) for s in next(iter((result.get("axes") or {}).values()), range(len(chosen)))]
-    # Order actions by their index in the model when known, else by first use.
+    # Order the action labels by their index in the model when known, else by first use.
     actions: list[str] = []
     if index is not None and len(index) == len(chosen):
         by_index = sorted({(int(i), a) for i, a in zip(index, chosen, strict=True)})

@@ -7,7 +7,8 @@ responses themselves: they raise, and :func:`handle_error` translates
 
 * ``worker.errors.FixqError`` subclasses (invalid document 422, too large 413),
 * :class:`Problem`, the HTTP-level errors of the routes (unknown job 404,
-  result not ready 409, missing key 401, malformed JSON 400, ...),
+  result not ready 409, result expired 410 (``/result`` and ``/plots``
+  alike), missing key 401, malformed JSON 400, ...),
 * FastAPI's ``RequestValidationError`` (a bad query parameter or header, 400),
 * Starlette's ``HTTPException`` (no such route 404, wrong method 405, ...),
 * Redis being unreachable, out of memory or read-only (503),
@@ -149,7 +150,9 @@ async def handle_error(request: Request, exc: Exception) -> JSONResponse:
             headers={"Retry-After": "5"},
         )
     logger.error("unexpected error answering %s %s", request.method, request.url.path, exc_info=exc)
-    return problem_response(500, "internal-error", "internal server error", "an unexpected error occurred; it was logged")
+    return problem_response(
+        500, "internal-error", "internal server error", "an unexpected error occurred; it was logged"
+    )
 
 
 def install(app: FastAPI) -> None:

@@ -21,7 +21,7 @@ Reuse of identical solves
 Nightly pipelines resubmit the same document whenever nothing upstream
 changed.  Before it queues anything, ``POST /v1/jobs`` looks for a ``done``
 job of the *same owner* whose document has the same
-``worker.document.schema.document_hash`` (the validated problem; label, tags,
+``worker.document.document_hash`` (the validated problem; label, tags,
 priority and notify left out) and whose result is still stored.  If there
 is one, the new job is created already ``done``:
 
@@ -56,14 +56,15 @@ import hashlib
 import secrets
 import time
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from typing import Any
 
 import redis
 
 from service import queue as rq_queues
+from service._formats import iso_utc
 from service.problems import Problem
 from service.store import JobStore
+from worker.document import DEFAULT_PRIORITY
 
 __all__ = [
     "CLAIM_S",
@@ -121,8 +122,6 @@ return 1
 _COPIED_FIELDS = ("status", "iterations", "error_bound", "progress")
 
 
-def _now_iso() -> str:
-    return datetime.now(timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
 @dataclass(frozen=True)
@@ -266,7 +265,7 @@ class SolvedJobs:
         )
         job_id = record["id"]
         copied = store.redis.hmget(store.keys.job(earlier_id), *_COPIED_FIELDS)
-        now = _now_iso()
+        now = iso_utc()
         fields: dict[str, bytes | str] = {"started_at": now, "finished_at": now, "reused": "true",
                                           "reused_from": earlier_id}  # fmt: skip
         fields.update({name: value for name, value in zip(_COPIED_FIELDS, copied) if value is not None})
@@ -288,7 +287,7 @@ class SolvedJobs:
         try:
             rq_queues.enqueue_execution(
                 self.store.redis, self.store.settings, job_id, rq_queues.execution_id(job_id, 1),
-                record.get("priority") or "normal",
+                record.get("priority") or DEFAULT_PRIORITY,
             )  # fmt: skip
         except redis.RedisError:
             # As in JobStore.create_job: the record says `queued`, and the

@@ -9,7 +9,6 @@ from __future__ import annotations
 
 from functools import lru_cache
 from pathlib import Path
-
 from typing import Literal
 
 from pydantic import Field
@@ -46,7 +45,8 @@ class Settings(BaseSettings):
         15.0,
         gt=0,
         description="Lifetime of an execution's lease in seconds; renewed every lease_s/3. A job whose lease "
-        "lapsed is taken to have lost its worker. Must exceed the longest single sweep of the solver.",
+        "lapsed is taken to have lost its worker. Must exceed the longest single iteration or evaluation "
+        "step of the solver.",
     )
     reaper_interval_s: float = Field(5.0, gt=0, description="Seconds between two passes of each worker's reaper.")
     progress_interval_s: float = Field(
@@ -59,7 +59,9 @@ class Settings(BaseSettings):
     job_timeout_s: int = Field(86_400, gt=0, description="RQ's hard limit on one execution, in seconds (24 h).")
     idempotency_ttl_s: int = Field(86_400, gt=0, description="How long an Idempotency-Key is remembered, in seconds.")
     max_problem_mb: float = Field(
-        float(DEFAULT_MAX_PROBLEM_MB), gt=0, description="Memory cap of one solve in MiB (2**20 bytes); larger estimates are refused."
+        float(DEFAULT_MAX_PROBLEM_MB),
+        gt=0,
+        description="Memory cap of one solve in MiB (2**20 bytes); larger estimates are refused.",
     )
     worker_log_level: str = Field("INFO", description="Log level of worker processes (DEBUG, INFO, WARNING, ...).")
 

@@ -18,10 +18,10 @@ from collections.abc import Callable
 from typing import Any, Protocol
 
 from service.admission import Admitted, admit
-from worker.document import schema
 from service.settings import Settings
 from service.store import JobStore
 from service.webhooks import check_target
+from worker.document import document_hash
 
 __all__ = ["Submitter", "admit_submission", "admitted_summary", "create_submitted_job", "submit"]
 
@@ -62,19 +62,26 @@ def create_submitted_job(
     estimate: dict[str, Any],
     document_hash: str,
     idempotency_key: str | None = None,
+    enqueue: bool = True,
 ) -> dict[str, Any]:
     """Store an admitted document as a new ``queued`` job and enqueue it; the job record.
 
     ``estimate`` and ``document_hash`` come from its ``Admitted`` (see :func:`admitted_summary`).
+    With ``enqueue=False`` the caller enqueues it later (``JobStore.enqueue_created``).
     """
     return store.create_job(
-        raw, owner=owner, estimate=estimate, document_hash=document_hash, idempotency_key=idempotency_key
+        raw,
+        owner=owner,
+        estimate=estimate,
+        document_hash=document_hash,
+        idempotency_key=idempotency_key,
+        enqueue=enqueue,
     )
 
 
 def admitted_summary(admitted: Admitted) -> dict[str, Any]:
     """What creating the job needs of an admitted document: ``estimate`` and ``document_hash``."""
-    return {"estimate": admitted.estimate, "document_hash": schema.document_hash(admitted.document)}
+    return {"estimate": admitted.estimate, "document_hash": document_hash(admitted.document)}
 
 
 def submit(

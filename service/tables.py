@@ -1,8 +1,11 @@
 """The long table of a result document (``GET /v1/jobs/{id}/result?format=csv``).
 
 One header row, then one row per point of the value function, in C order of
-its axes (states, then shocks; tabular: one row per state): the axis values,
-``value``, then the chosen value of each choice.
+its axes.  The header follows the result's axes: a column per axis (the state
+variables, then the shocks; a tabular result has the one axis ``state_label``),
+then ``value``, then a column per choice with the chosen value (a tabular
+result's one choice is named ``action`` and holds action labels).  A choice
+whose name repeats an earlier column gets ``_choice`` appended.
 """
 
 from __future__ import annotations

@@ -1,7 +1,9 @@
-"""The RQ task around ``worker.solve``, and the worker process entry point.
+"""The RQ task around ``worker.solve``, and the worker process entry point (``fixq worker``).
 
-``run_job(job_id)`` is one *execution* of a job (enqueued by import path by
-``service.queue``).  It
+This is the queue side's glue and sits on the service side of the wall: it
+imports the numerics (``worker``), and nothing in ``worker`` imports it.
+``run_job(job_id)`` is one *execution* of a job, enqueued by its import path
+``service.task.run_job`` (``service.queue.TASK``).  It
 
 1. claims the job: takes the lease ``fixq:lease:{id}`` (``SET NX PX``, a fresh
    token per execution) and marks it ``running`` in one Lua script; if another
@@ -22,15 +24,17 @@
 
 4. writes the outcome under the lease: ``done`` with the result (one script,
    result stored once), ``canceled``, or ``failed`` with the document's errors
-   or a plain message (the traceback goes to the worker log only).
+   or a plain message (the traceback goes to the worker log only);
+5. hands a finished job to ``service.lifecycle.job_finished`` (its webhook,
+   its sweep's next jobs).
 
 An execution that loses its lease (its worker was taken for dead and the job
-re-enqueued) stops at the next sweep without writing anything, so an orphaned
+re-enqueued) stops at its next iteration without writing anything, so an orphaned
 work-horse can never overwrite or duplicate the result.  RQ gets back a tiny
 summary dict, never arrays.
 
 ``run_worker(burst=False, queues=None)`` runs an RQ worker on ``fixq-high``,
-``fixq-normal``, ``fixq-low`` (in that order) with a ``service.queue.Reaper``
+``fixq-normal``, ``fixq-low`` (in that order) with a ``service.reaper.Reaper``
 thread beside it.
 """
 
@@ -54,7 +58,8 @@ from rq import Queue, SimpleWorker, Worker, get_current_job
 from rq.timeouts import JobTimeoutException
 
 from service.lifecycle import job_finished
-from service.queue import Reaper, ordered_queue_names, reap
+from service.queue import ordered_queue_names
+from service.reaper import Reaper, reap
 from service.settings import Settings, get_settings
 from service.store import JobStore, connect, is_job_id
 from service.webhooks import Notifier
@@ -347,6 +352,19 @@ def _warm_start(store: JobStore, document: dict[str, Any]) -> dict[str, Any] | N
     return {"axes": result["axes"], "value": result["value"]}
 
 
+class _WithoutCommandChannel:
+    """An RQ worker that does not listen on RQ's command channel.
+
+    fixq sends RQ no worker commands (a cancel is fixq's own flag, which the
+    solver checks), and with RQ 3.0 and redis-py 8 that channel can hold a
+    warm shutdown (SIGTERM) for up to a minute: stopping its pub/sub thread
+    waits for a subscription the unsubscribe has just ended.
+    """
+
+    def subscribe(self) -> None:
+        return None
+
+
 def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool:
     """Run an RQ worker on fixq's queues with a reaper thread; True if it ran a job.
 
@@ -363,9 +381,10 @@ def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool
     reaper = Reaper(reaper_store).start()
     notifier = Notifier(JobStore(connect(settings), settings)).start()
     try:
-        # A SimpleWorker sends RQ no heartbeats while a job runs (DESIGN 7); fixq's own lease
+        # A SimpleWorker sends RQ no heartbeats while a job runs; fixq's own lease
         # heartbeat carries liveness, and RQ extends a SimpleWorker's key to the job timeout.
-        worker_class = SimpleWorker if settings.worker_class == "simple" else Worker
+        base = SimpleWorker if settings.worker_class == "simple" else Worker
+        worker_class = type(f"Fixq{base.__name__}", (_WithoutCommandChannel, base), {})
         worker = worker_class(rq_queues, connection=connection, name=f"fixq-{socket.gethostname()}-{os.getpid()}")
         return worker.work(burst=burst, logging_level=settings.worker_log_level.upper())
     finally:

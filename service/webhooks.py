@@ -85,13 +85,13 @@ import urllib.parse
 import zlib
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
 
 import httpx
 import orjson
 import redis
 
+from service._formats import iso_utc
 from service._periodic import PeriodicThread
 from worker.errors import InvalidDocument
 
@@ -120,6 +120,7 @@ __all__ = [
 EVENT = "job.finished"
 """The ``event`` of every notification fixq sends."""
 USER_AGENT = "fixq-webhooks/1"
+"""The ``User-Agent`` of every delivery."""
 SIGNATURE_TOLERANCE_S = 300
 """Default largest age (and clock skew), in seconds, that :func:`verify` accepts (common practice)."""
 CLAIM_S = 120.0
@@ -348,7 +349,7 @@ def schedule(store: JobStore, job_id: str) -> bool:
         "job": orjson.dumps(record).decode(),
         "state": "pending",
         "attempts": "0",
-        "scheduled_at": _now_iso(),
+        "scheduled_at": iso_utc(),
     }
     script = store.redis.register_script(_SCHEDULE)
     queued = script(
@@ -376,7 +377,7 @@ def delivery_status(store: JobStore, job_id: str) -> dict[str, Any] | None:
         "last_error": fields.get("last_error") or None,
         "scheduled_at": fields.get("scheduled_at"),
         "delivered_at": fields.get("delivered_at"),
-        "next_attempt_at": _iso(due / 1000) if due is not None and fields.get("state") == "pending" else None,
+        "next_attempt_at": iso_utc(due / 1000) if due is not None and fields.get("state") == "pending" else None,
     }
 
 
@@ -429,7 +430,7 @@ def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.tim
     status, error = _post(target, body, headers, settings.notify_timeout_s)
     if status is not None and 200 <= status < 300:
         _record(store, job_id, {"state": "delivered", "attempts": attempt, "last_status": status,
-                                "last_error": "", "delivered_at": _now_iso()})  # fmt: skip
+                                "last_error": "", "delivered_at": iso_utc()})  # fmt: skip
         return "delivered"
     update: dict[str, Any] = {"attempts": attempt, "last_status": status if status is not None else "",
                               "last_error": error or f"the receiver answered {status}"}  # fmt: skip
@@ -484,12 +485,6 @@ def _bracketed(host: str) -> str:
     return f"[{host}]" if ":" in host else host
 
 
-def _now_iso() -> str:
-    return _iso(time.time())
-
-
-def _iso(seconds: float) -> str:
-    return datetime.fromtimestamp(seconds, timezone.utc).isoformat(timespec="milliseconds").replace("+00:00", "Z")
 
 
 class Notifier(PeriodicThread):

@@ -1,6 +1,6 @@
 """Derivatives of model expressions with respect to one choice, as expression trees.
 
-The exact block search (``bellman_bnb`` in :mod:`worker._codegen`) proves
+The exact block search (``bellman_bnb`` in :mod:`worker._codegen.block_search`) proves
 that a block of choices cannot beat the best one found.  Its first proof, an
 interval bound of the reward plus the block maximum of the continuation,
 cannot prune choices close to the optimum: there the objective is flat, and
@@ -18,7 +18,7 @@ block maximum of the continuation's differences bound every step, and a
 negative bound on every step proves the whole block below ``f(p)``.
 
 This module writes ``r'`` as an expression tree (the node classes of
-:mod:`worker.expressions`), to be bounded by ``interval_source`` like any
+:mod:`worker.expressions.nodes`), to be bounded by ``interval_source`` like any
 other expression.  Defines that depend on the choice get their own
 derivative names, ``name + "'"`` (a prime never occurs in a document name).
 
@@ -50,7 +50,7 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 
-from worker.expressions import Arith, Call, Compare, Name, Negate, Node, Number, Power, _children
+from worker.expressions import Arith, Call, Compare, Name, Negate, Node, Number, Power, names_in
 
 __all__ = ["NotSmooth", "derivative", "prime"]
 
@@ -115,15 +115,6 @@ def _quotient(top: Node, bottom: Node) -> Node:
     return Arith(top, (("/", bottom),))
 
 
-def _names(node: Node) -> set[str]:
-    if isinstance(node, Name):
-        return {node.id}
-    found: set[str] = set()
-    for child in _children(node):
-        found |= _names(child)
-    return found
-
-
 def derivative(node: Node, choice: str, varying: Mapping[str, bool]) -> Node:
     """The derivative of ``node`` with respect to the name ``choice``.
 
@@ -140,7 +131,7 @@ class _Deriver:
         self.varying = varying
 
     def moves(self, node: Node) -> bool:
-        return any(name == self.choice or name in self.varying for name in _names(node))
+        return any(name == self.choice or name in self.varying for name in names_in(node))
 
     def of(self, node: Node) -> Node:
         if not self.moves(node):

@@ -18,7 +18,8 @@ import base64
 import binascii
 import functools
 import math
-from itertools import chain
+import operator
+from itertools import chain, repeat
 from typing import Any
 
 import numpy as np
@@ -66,7 +67,8 @@ def decode_array(
     obj : nested lists of numbers, packed ``{"dtype", "shape", "base64"}``, or ndarray
     path : document path of ``obj``, used in every error.
     max_elements : refuse (``TooLarge``) arrays with more elements than this.
-    allow_null : JSON ``null`` becomes NaN (in packed arrays NaN stands for null).
+    allow_null : JSON ``null`` becomes NaN (in packed arrays and ndarrays NaN stands for null;
+        a NaN number inside nested lists is refused: there only ``null`` does).
     allow_nonfinite : accept NaN and +-inf.
     dtype : ``"float64"`` (the default) or ``"keep"`` for the sent integer or float type.
     ndim : required number of dimensions, or None for any.
@@ -192,6 +194,8 @@ def _decode_nested(
     # np.asarray quietly turns True, "1.5" and None into numbers, so the leaf
     # types are checked too: one C-level pass over the flattened leaves.
     if array is not None and array.shape == tuple(shape) and _leaves_are_numbers(obj, array.ndim, allow_null):
+        if allow_null:
+            _refuse_nan_numbers(obj, array, path)
         if not keep_ints or not array.size or not _leaves_are_ints(obj, array.ndim):
             return array
         try:
@@ -212,6 +216,25 @@ def _leaves(obj: list, depth: int) -> Any:
 def _leaves_are_numbers(obj: list, depth: int, allow_null: bool) -> bool:
     allowed = _NUMBER_TYPES + ((type(None),) if allow_null else ())
     return all(issubclass(t, allowed) and not issubclass(t, _BOOL_TYPES) for t in set(map(type, _leaves(obj, depth))))
+
+
+def _refuse_nan_numbers(obj: list, array: np.ndarray, path: str) -> None:
+    """Raise at the first NaN that was sent as a number rather than as ``null``.
+
+    In nested lists only ``null`` means "not allowed"; a float NaN there is a
+    mistake of the caller (JSON has no NaN), not a second spelling of null.
+    """
+    nan = np.isnan(array)
+    if not nan.any():
+        return
+    # One C-level pass over the leaves: which NaN entries were None.
+    sent_null = np.fromiter(map(operator.is_, _leaves(obj, array.ndim), repeat(None)), dtype=bool, count=array.size)
+    numbers = nan.ravel() & ~sent_null
+    if numbers.any():
+        first = np.unravel_index(int(np.argmax(numbers)), array.shape)
+        raise InvalidDocument.at(
+            join_path(path, *map(int, first)), "NaN is not a number here; use null for a choice that is not allowed"
+        )
 
 
 def _leaves_are_ints(obj: list, depth: int) -> bool:

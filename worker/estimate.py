@@ -6,19 +6,19 @@ it reads only the sizes the schema already knows (``GridAxis.size``,
 a chain or a table, and so answers in microseconds even for a document of a
 billion (state, choice) pairs.
 
-It also makes the one decision the grid compiler follows, the *regime*
-(:func:`grid_plan`), so that the memory the check reports is the memory the
-worker will use:
+It also makes the one decision the grid compiler follows, the *reward
+storage* (:func:`grid_plan`), so that the memory the check reports is the
+memory the worker will use:
 
-``precomputed``
+``tables``
     The reward (``-inf`` where not allowed) and the interpolation nodes of
-    tomorrow's state are evaluated once for every (state, choice) pair and
+    tomorrow's state are evaluated once for every (point, choice) pair and
     kept; each Bellman step is then a scan over tables.  Chosen when the
     tables fit the precompute budget — ``PRECOMPUTE_CAP_SHARE`` of the
     memory cap and at most ``PRECOMPUTE_MAX_BYTES`` — and no hint can be used.
 ``on_the_fly``
     Compiled code evaluates the model's expressions pointwise inside the
-    search; nothing of size (states × choices) is ever allocated.  Chosen
+    search; nothing of size (points × choice points) is ever allocated.  Chosen
     when the tables would not fit, and whenever hints can be used: a hinted
     search looks at a handful of choices per state, so evaluating every pair
     up front would cost more than all the searches together.
@@ -26,7 +26,7 @@ worker will use:
 Times are rough: a count of pointwise evaluations and table reads times
 per-operation costs measured on a 2-core x86 machine (``*_NS`` constants,
 "common practice" orders of magnitude, not guarantees), and a number of
-Bellman steps guessed from the discount and the tolerance for a value
+iterations guessed from the discount and the tolerance for a value
 function of order ``1/(1 − β)``.  The returned ``basis`` says which.
 """
 
@@ -39,12 +39,15 @@ from typing import Any
 __all__ = [
     "PRECOMPUTE_CAP_SHARE",
     "PRECOMPUTE_MAX_BYTES",
+    "REWARD_STORAGES",
     "GridPlan",
     "estimate",
     "grid_plan",
     "precompute_budget",
 ]
 
+REWARD_STORAGES = ("tables", "on_the_fly")
+"""The two reward storages of a grid model; a tabular model's rewards are always ``tables``."""
 PRECOMPUTE_MAX_BYTES = 1 << 30
 """Largest precomputed table set, in bytes (1 GiB)."""
 PRECOMPUTE_CAP_SHARE = 0.25
@@ -68,8 +71,8 @@ EXACT_POINTS_PER_ROOT_CHOICE = 5.0
 bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
 (measured on growth models: about 150 points at 1,000 choices, 700 at 20,000)."""
 HOWARD_STEPS_PER_OCTAVE = 3.0
-"""Howard needs about this many improvement steps per doubling of the choice grid: on fine grids
-the greedy policy keeps moving for many steps (measured: 30 at 1,000 choices, 48 at 20,000)."""
+"""Howard needs about this many iterations per doubling of the choice grid: on fine grids
+the greedy policy keeps moving for many iterations (measured: 30 at 1,000 choices, 48 at 20,000)."""
 MATVEC_NS = 2.0
 """Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
 COMPILE_S = 6.0
@@ -86,7 +89,7 @@ _MIB = 2**20
 
 @dataclass(frozen=True)
 class GridPlan:
-    """Sizes of a grid model and the regime its compilation will use.
+    """Sizes of a grid model and the reward storage its compilation will use.
 
     Attributes
     ----------
@@ -108,12 +111,12 @@ class GridPlan:
         Hints that will be used.
     hint_note : str or None
         Why a requested hint will not be used.
-    regime : str
-        ``precomputed`` or ``on_the_fly``.
+    reward_storage : str
+        ``tables`` or ``on_the_fly``.
     precompute_bytes, on_the_fly_bytes, budget : int
-        Peak working memory of each regime and the precompute budget.
+        Peak working memory of each reward storage and the precompute budget.
     reason : str
-        The regime decision in plain words.
+        The reward-storage decision in plain words.
     """
 
     grid_states: int
@@ -126,7 +129,7 @@ class GridPlan:
     monotone: bool
     concave: bool
     hint_note: str | None
-    regime: str
+    reward_storage: str
     precompute_bytes: int
     on_the_fly_bytes: int
     budget: int
@@ -138,7 +141,7 @@ class GridPlan:
 
     @property
     def bytes(self) -> int:
-        return self.precompute_bytes if self.regime == "precomputed" else self.on_the_fly_bytes
+        return self.precompute_bytes if self.reward_storage == "tables" else self.on_the_fly_bytes
 
 
 def precompute_budget(limits: dict[str, Any] | None = None) -> int:
@@ -179,7 +182,7 @@ def hint_use(model: Any) -> tuple[bool, bool, str | None]:
 
 
 def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str = "howard") -> GridPlan:
-    """Sizes and regime of a validated ``GridModel``, from sizes alone."""
+    """Sizes and reward storage of a validated ``GridModel``, from sizes alone."""
     grid_states = math.prod(axis.size for axis in model.states.values())
     shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
     choices = math.prod(choice.size for choice in model.choices.values())
@@ -199,19 +202,19 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
 
     budget = precompute_budget(limits)
     if monotone or concave:
-        regime = "on_the_fly"
+        reward_storage = "on_the_fly"
         reason = (
             "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "
             "code rather than tabulated for all pairs"
         )
     elif table_bytes <= budget:
-        regime = "precomputed"
+        reward_storage = "tables"
         reason = (
             f"the tables of all {pairs:,} (state, choice) pairs take {table_bytes / _MIB:,.0f} MiB, within the "
             f"precompute budget of {budget / _MIB:,.0f} MiB, so they are evaluated once and every step scans them"
         )
     else:
-        regime = "on_the_fly"
+        reward_storage = "on_the_fly"
         reason = (
             f"the tables of all {pairs:,} (state, choice) pairs would take {table_bytes / _MIB:,.0f} MiB, over "
             f"the precompute budget of {budget / _MIB:,.0f} MiB, so the model is evaluated pointwise in compiled "
@@ -228,7 +231,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         monotone=monotone,
         concave=concave,
         hint_note=note,
-        regime=regime,
+        reward_storage=reward_storage,
         precompute_bytes=precompute_bytes,
         on_the_fly_bytes=on_the_fly_bytes,
         budget=budget,
@@ -237,7 +240,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
 
 
 def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
-    """Memory every regime needs: solver vectors, the policy's nodes and sparse matrix, the result."""
+    """Memory every reward storage needs: solver vectors, the policy's nodes and sparse matrix, the result."""
     policy_nodes = n * nodes * 16
     matrix = n * nodes * shocks * 12 + 8 * (n + 1)
     if method == "policy_iteration":
@@ -248,8 +251,8 @@ def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
 
 
 def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
-    """(improvement steps, evaluation sweeps per step, basis) guessed from β, the tolerance, the method
-    and the number of choices."""
+    """(iterations, evaluation steps per iteration, basis) guessed from β, the tolerance, the method
+    and the number of choice points."""
     beta = float(doc.discount)
     solver = doc.solver
     tolerance = float(solver.tolerance)
@@ -257,22 +260,22 @@ def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
     # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
     target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
     per_step = math.log(beta)
-    sweeps = 0
+    evaluation = 0
     if solver.method == "value_iteration":
         steps = math.ceil(math.log(target) / per_step)
     elif solver.method == "policy_iteration":
         steps = 12
     else:
-        sweeps = int(solver.evaluation_steps)
-        steps = math.ceil(math.log(target) / (per_step * (sweeps + 1))) + 2
+        evaluation = int(solver.evaluation_steps)
+        steps = math.ceil(math.log(target) / (per_step * (evaluation + 1))) + 2
         steps = max(steps, math.ceil(HOWARD_STEPS_PER_OCTAVE * math.log2(max(choices, 2))))
     steps = min(max(steps, 1), int(solver.max_iterations))
     basis = (
-        f"{steps} improvement steps ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
+        f"{steps} iterations ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
         f"order 1/(1 − β); Howard at least {HOWARD_STEPS_PER_OCTAVE:g} per doubling of the choices)"
-        + (f", {sweeps} evaluation sweeps each" if sweeps else "")
+        + (f", {evaluation} evaluation steps each" if evaluation else "")
     )
-    return steps, sweeps, basis
+    return steps, evaluation, basis
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -281,21 +284,24 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     Returns
     -------
     dict
-        ``kind``; ``states`` (entries of the value function), ``shocks`` (points
-        of the shock chain; 1 without shocks, 0 for tabular), ``choices``
-        (alternatives per state), ``pairs`` (state × choice); ``bytes`` (peak
-        working memory of the regime that will be used, interpreter and
-        libraries not counted); ``regime``; ``seconds`` (a rough time guess)
-        with its ``basis``; ``notes``, plain words.
+        ``kind``; ``points`` (points of the state space: entries of the
+        value function), ``grid_states`` (points of the endogenous state
+        grid; tabular: the states), ``shocks`` (points of the shock chain; 1
+        without shocks, 0 for tabular), ``choice_points`` (alternatives per
+        point), ``pairs`` (point × choice point); ``bytes`` (peak working
+        memory of the reward storage that will be used, interpreter and
+        libraries not counted); ``reward_storage`` (``tables`` or
+        ``on_the_fly``); ``seconds`` (a rough time guess) with its
+        ``basis``; ``notes``, plain words.
     """
     if doc.model.kind == "tabular":
         return _tabular_estimate(doc)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
-    steps, sweeps, basis = _steps(doc, plan.choices)
+    steps, per_iteration, basis = _steps(doc, plan.choices)
     matrix_entries = plan.n * plan.nodes * plan.shocks
-    evaluation = sweeps * matrix_entries * MATVEC_NS
-    if plan.regime == "precomputed":
+    evaluation = per_iteration * matrix_entries * MATVEC_NS
+    if plan.reward_storage == "tables":
         setup = plan.pairs * NUMPY_PAIR_NS
         step = plan.pairs * TABLE_READ_NS
         how = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans ({TABLE_READ_NS:g} ns per pair)"
@@ -315,13 +321,16 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             step_total = (steps - 2) * step + 2 * exact
         else:
             step_total = steps * step
-    if plan.regime == "precomputed":
+    if plan.reward_storage == "tables":
         step_total = steps * step
     seconds = (setup + step_total + steps * evaluation) * 1e-9
-    notes = [f"regime {plan.regime}: {plan.reason}"]
+    notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
         used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
-        notes.append(f"the {used} hint{'s' if ' and ' in used else ''} will be used, and the final policy checked by one exact step")
+        notes.append(
+            f"the {used} hint{'s' if ' and ' in used else ''} will be used, and the final policy checked by one "
+            "exact Bellman step (the verification, not an iteration)"
+        )
     if plan.hint_note:
         notes.append(plan.hint_note)
     if plan.interpolated:
@@ -335,13 +344,13 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     )
     return {
         "kind": "grid",
-        "states": plan.n,
+        "points": plan.n,
         "grid_states": plan.grid_states,
         "shocks": plan.shocks,
-        "choices": plan.choices,
+        "choice_points": plan.choices,
         "pairs": plan.pairs,
         "bytes": plan.bytes,
-        "regime": plan.regime,
+        "reward_storage": plan.reward_storage,
         "seconds": seconds,
         "basis": f"{basis}; {how}",
         "notes": notes,
@@ -363,22 +372,22 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
     matrix = n_states * n_states * 12 if doc.solver.method != "policy_iteration" else n_states * n_states * 120
     matrix = min(matrix, stored * 12 * (10 if doc.solver.method == "policy_iteration" else 1))
-    steps, sweeps, basis = _steps(doc, n_actions)
+    steps, per_iteration, basis = _steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * TABLE_READ_NS
-    seconds = (steps * step + steps * sweeps * min(stored, n_states * n_states) * MATVEC_NS) * 1e-9
+    seconds = (steps * step + steps * per_iteration * min(stored, n_states * n_states) * MATVEC_NS) * 1e-9
     notes = [
         f"{'dense' if dense else 'sparse'} transition with {entries:,} entries, held as a sparse matrix of at most {stored:,}",
         "memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)",
     ]
     return {
         "kind": "tabular",
-        "states": n_states,
+        "points": n_states,
         "grid_states": n_states,
         "shocks": 0,
-        "choices": n_actions,
+        "choice_points": n_actions,
         "pairs": pairs,
         "bytes": int(common + csr + document + matrix),
-        "regime": "tabular",
+        "reward_storage": "tables",
         "seconds": seconds,
         "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
         "notes": notes,

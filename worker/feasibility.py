@@ -237,7 +237,7 @@ def infeasible(data: ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -> 
     if stuck.size > _LISTED_STATES:
         errors.append({
             "path": errors[0]["path"],
-            "message": f"… and {stuck.size - _LISTED_STATES:,} more of the {data.n:,} states have no allowed choice",
+            "message": f"… and {stuck.size - _LISTED_STATES:,} more of the {data.n:,} points have no allowed choice",
         })
     return InfeasibleModel(errors, states=int(stuck.size))
 
@@ -270,7 +270,7 @@ def feasibility_scan(data: ModelData, budget_s: float | None) -> dict[str, Any]:
     started = time.perf_counter()
     n, n_choices = data.n, data.n_choices
     if budget_s is not None and (n > FEASIBILITY_MAX_STATES or n_choices > FEASIBILITY_MAX_STATES):
-        return {"complete": False, "states": n, "unresolved": n, "pairs_evaluated": 0,
+        return {"complete": False, "points": n, "unresolved": n, "pairs_evaluated": 0,
                 "seconds": time.perf_counter() - started}
     order = _choice_order(n_choices)
     active = np.arange(n, dtype=np.int64)
@@ -291,19 +291,19 @@ def feasibility_scan(data: ModelData, budget_s: float | None) -> dict[str, Any]:
             evaluated += rows.size * columns.size
             unresolved = active.size - int(resolved[: start + rows.size].sum())
             if unresolved and budget_s is not None and time.perf_counter() - started > budget_s:
-                return {"complete": False, "states": n, "unresolved": unresolved, "pairs_evaluated": evaluated,
+                return {"complete": False, "points": n, "unresolved": unresolved, "pairs_evaluated": evaluated,
                         "seconds": time.perf_counter() - started}
         active = active[~resolved]
     if active.size:
         raise infeasible(data, active, any_feasible)
-    return {"complete": True, "states": n, "unresolved": 0, "pairs_evaluated": evaluated,
+    return {"complete": True, "points": n, "unresolved": 0, "pairs_evaluated": evaluated,
             "seconds": time.perf_counter() - started}
 
 
 def check_feasibility(doc: Any, *, budget_s: float | None = None) -> dict[str, Any]:
-    """Check that every state of a validated grid document has an allowed choice.
+    """Check that every point of a validated grid document has an allowed choice.
 
-    Cheap and compile-free: numpy evaluation in chunks, stopping per state at
+    Cheap and compile-free: numpy evaluation in chunks, stopping per point at
     its first allowed choice (see :func:`feasibility_scan`).
 
     Parameters
@@ -315,12 +315,13 @@ def check_feasibility(doc: Any, *, budget_s: float | None = None) -> dict[str, A
     Returns
     -------
     dict
-        ``complete`` (bool), ``states``, ``unresolved`` (states not yet shown
-        feasible when the budget ran out), ``pairs_evaluated``, ``seconds``.
+        ``complete`` (bool), ``points`` (points of the state space),
+        ``unresolved`` (points not yet shown feasible when the budget ran
+        out), ``pairs_evaluated``, ``seconds``.
 
     Raises
     ------
     InfeasibleModel
-        Naming the first few states with no allowed choice by their values.
+        Naming the first few points with no allowed choice by their values.
     """
     return feasibility_scan(model_data(doc), budget_s)

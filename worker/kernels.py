@@ -13,7 +13,7 @@ not depend on any document:
   whole blocks of choices;
 * :func:`policy_value` and :func:`policy_csr` (numpy) — ``r_σ + β P_σ v``
   and the sparse ``P_σ`` of a fixed policy from its interpolation nodes;
-* :func:`policy_sweeps` (numba) — many Howard evaluation sweeps
+* :func:`policy_steps` (numba) — many Howard evaluation steps
   ``v ← r_σ + β P_σ v`` in one call, without forming ``P_σ``.
 
 The numba functions are compiled once per machine (``cache=True``); the rest
@@ -40,7 +40,7 @@ __all__ = [
     "build_pyramid",
     "locate_one",
     "policy_csr",
-    "policy_sweeps",
+    "policy_steps",
     "policy_value",
     "pyramid_levels",
     "pyramid_max",
@@ -214,28 +214,28 @@ def policy_csr(
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def policy_sweeps(
+def policy_steps(
     reward: np.ndarray,
     node_index: np.ndarray,
     node_weight: np.ndarray,
     P: np.ndarray,
     beta: float,
     v: np.ndarray,
-    sweeps: int,
+    steps: int,
     span_stop: float,
     EVt: np.ndarray,
     spare: np.ndarray,
 ) -> tuple[int, float]:
-    """Up to ``sweeps`` evaluation sweeps ``v ← r_σ + β P_σ v`` in place, from a policy's nodes.
+    """Up to ``steps`` evaluation steps ``v ← r_σ + β P_σ v`` in place, from a policy's nodes.
 
-    Each sweep forms ``EVt[z, x'] = Σ_z' P[z, z'] v[x' · n_shocks + z']`` (a
+    Each step forms ``EVt[z, x'] = Σ_z' P[z, z'] v[x' · n_shocks + z']`` (a
     tiny dense product per grid state) and then
     ``v[i] = r[i] + β Σ_k w[i, k] EVt[z(i), node[i, k]]`` with the nodes summed
-    in order, as :func:`policy_value` does.  After each sweep the span
+    in order, as :func:`policy_value` does.  After each step the span
     ``max(Δ) − min(Δ)`` of its increment ``Δ = v_new − v_old`` is measured;
-    the call stops early, after that sweep, once the span is at most
-    ``span_stop`` (pass ``-inf`` never to stop early).  Every sweep depends on
-    ``v`` alone, so splitting a run of sweeps over several calls gives the
+    the call stops early, after that step, once the span is at most
+    ``span_stop`` (pass ``-inf`` never to stop early).  Every step depends on
+    ``v`` alone, so splitting a run of steps over several calls gives the
     same bits as one call.
 
     Parameters
@@ -245,14 +245,14 @@ def policy_sweeps(
     P : (n_shocks, n_shocks) float64, the shock chain
     beta : float
     v : (n,) float64, overwritten with the result
-    sweeps : int
+    steps : int
     span_stop : float
     EVt : (n_shocks, n // n_shocks) float64, scratch
     spare : (n,) float64, scratch
 
     Returns
     -------
-    (sweeps done, span of the last sweep's increment; inf when none was done)
+    (steps done, span of the last step's increment; inf when none was done)
     """
     n_shocks = P.shape[0]
     n_grid = reward.shape[0] // n_shocks
@@ -260,11 +260,11 @@ def policy_sweeps(
     Vt = np.empty((n_shocks, n_grid))
     done = 0
     span = np.inf
-    # The sweep is written here rather than in a helper called from here: numba compiles a helper
+    # The step is written here rather than in a helper called from here: numba compiles a helper
     # and then again the caller it is inlined into, which cost about half a second more.
     source = v
     target = spare
-    while done < sweeps:
+    while done < steps:
         # Transposed first, then row by row over z', so the inner loops run over contiguous memory
         # (the reductions over z' of a state-by-state loop are latency-bound and ran several times slower).
         for x in range(n_grid):
@@ -294,7 +294,7 @@ def policy_sweeps(
                 high = max(high, step)
                 target[i] = value
         span = high - low
-        # The two buffers swap roles after each sweep, so no sweep copies.
+        # The two buffers swap roles after each step, so no step copies.
         source, target = target, source
         done += 1
         if span <= span_stop:

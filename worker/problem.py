@@ -1,12 +1,13 @@
 """The interface every compiled problem offers to the solvers.
 
-A *compiled problem* is a document turned into arrays.  The solvers in
-``worker/solvers.py`` only ever talk to this interface, so tabular and grid
-problems share one set of solvers, bounds and reports.
+A *compiled problem* is a document turned into arrays.  The solvers
+(:mod:`worker.solvers`), the reports and the result document only ever talk
+to this interface, and every problem class implements all of it, so tabular
+and grid problems share one set of solvers, error bounds and reports.
 
 Conventions
 -----------
-* States are flattened in C order over ``shape`` (grid: endogenous states
+* Points (states) are flattened in C order over ``shape`` (grid: endogenous states
   first, then shocks; tabular: ``(n_states,)``).  ``v`` is always a float64
   vector of length ``n``.
 * A *policy* is an int64 vector of length ``n`` holding, per state, the flat
@@ -16,10 +17,27 @@ Conventions
 
 from __future__ import annotations
 
-from typing import Any, Protocol
+from dataclasses import dataclass
+from typing import Any, Callable, Protocol
 
 import numpy as np
 import scipy.sparse as sp
+
+__all__ = ["CompiledProblem", "Hints", "PolicySteps"]
+
+
+@dataclass(frozen=True)
+class Hints:
+    """The hints a compiled problem's hinted search uses (none by default)."""
+
+    monotone: bool = False
+    concave: bool = False
+
+
+PolicySteps = Callable[[np.ndarray, np.ndarray, int, float], tuple[np.ndarray, int, float]]
+"""``policy_steps(v, policy, steps, span_stop) -> (new v, steps applied, span of the last increment)``:
+up to ``steps`` evaluation steps ``v ← r_σ + β P_σ v`` in one call, ``v`` not modified, stopping
+early after the first step whose increment has span ``max − min`` at most ``span_stop``."""
 
 
 class CompiledProblem(Protocol):
@@ -35,6 +53,11 @@ class CompiledProblem(Protocol):
     """Result-document ``axes``: grid values per axis, in array-axis order."""
     hints_active: bool
     """True when ``bellman_step(..., restricted=True)`` exploits hints."""
+    hints: Hints
+    """The hints in use (both False when ``hints_active`` is False)."""
+    policy_steps: PolicySteps | None
+    """Fused Howard evaluation steps, or None: the solvers then step with
+    :meth:`policy_matrix` and :meth:`policy_reward`."""
 
     def bellman_step(
         self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None

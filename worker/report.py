@@ -133,7 +133,7 @@ def stationary_report(problem: CompiledProblem, policy: np.ndarray) -> dict[str,
     return {"distribution": _as_shape(pi, problem.shape), "means": means, **info}
 
 
-def simulate_report(problem: CompiledProblem, policy: np.ndarray, spec: Any, *, path: str = "report.simulate") -> dict[str, Any]:
+def simulate_report(problem: CompiledProblem, policy: np.ndarray, spec: Any, *, path: str = "report.simulation") -> dict[str, Any]:
     """Simulated paths of the chain under ``policy``, summarised.
 
     Each path starts at ``spec.start`` (the nearest grid point on each axis;
@@ -154,11 +154,11 @@ def simulate_report(problem: CompiledProblem, policy: np.ndarray, spec: Any, *, 
         (tabular: state labels), per choice the chosen values.
     """
     periods, paths = int(spec.periods), int(spec.paths)
-    seed = getattr(spec, "seed", None)
+    seed = spec.seed
     rng = np.random.default_rng(seed)
     matrix = sp.csr_matrix(problem.policy_matrix(policy), dtype=np.float64)
     matrix.sum_duplicates()
-    start = getattr(spec, "start", None)
+    start = spec.start
     warnings: list[str] = []
     if start is None:
         pi, info = long_run_distribution(matrix)

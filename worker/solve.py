@@ -1,18 +1,17 @@
 """The front door of the numerics: ``solve(document) -> result document``.
 
-``solve`` validates the document (``worker.document.schema.parse_document``),
+``solve`` validates the document (``worker.document.parse_document``),
 estimates its size and refuses it over the memory cap, compiles it (tabular
 here, grid through ``worker.gridmodel``, imported only when needed so that
 ``import worker`` never loads numba), picks the initial values, dispatches to
-``worker.solvers.METHODS[solver.method]`` and builds the result document of
-DESIGN section 5 from the one :class:`~worker.solvers.SolveOutcome`.
+``worker.solvers.METHODS[solver.method]`` and builds the result document
+from the one :class:`~worker.solvers.SolveOutcome`.
 """
 
 from __future__ import annotations
 
 import hashlib
 import json
-import os
 from typing import Any, Callable
 
 import numpy as np
@@ -22,6 +21,7 @@ from worker.errors import InvalidDocument, TooLarge
 from worker.problem import CompiledProblem
 from worker.report import simulate_report, stationary_report
 from worker.solvers import METHODS, Checkpoint, SolveOutcome
+from worker.tabular import STATE_AXIS
 
 __all__ = ["compile_document", "solve"]
 
@@ -48,7 +48,7 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
     TooLarge
         The size estimate exceeds the cap; ``context["estimate"]`` holds it.
     """
-    from worker.document.schema import parse_document
+    from worker.document import parse_document
 
     doc = parse_document(document)
     cap = {"max_bytes": int((limits or {}).get("max_bytes") or max_problem_bytes())}
@@ -64,8 +64,8 @@ def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
     if size["bytes"] > cap:
         raise TooLarge.at(
             "model",
-            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['states']:,} states × "
-            f"{size['choices']:,} choices), over the memory cap of {cap / _MIB:,.0f} MiB "
+            f"this problem needs about {size['bytes'] / _MIB:,.0f} MiB ({size['points']:,} points × "
+            f"{size['choice_points']:,} choice points), over the memory cap of {cap / _MIB:,.0f} MiB "
             f"({MAX_PROBLEM_MB}); use coarser grids or fewer choices",
             estimate=size,
         )
@@ -96,14 +96,14 @@ def solve(
     Parameters
     ----------
     document : dict
-        A problem document (DESIGN section 3).
+        A problem document.
     on_progress : callable, optional
         Called with each log entry as it is made.
     checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
         Resumed from when its fingerprint matches this document; saved every
         ``solver.checkpoint_s`` seconds of solving.
     should_stop : callable, optional
-        Polled between sweeps; when true the solve raises ``Canceled``.
+        Polled before every iteration and between evaluation steps; when true the solve raises ``Canceled``.
     warm_start : dict, optional
         ``{"axes", "value"}`` of an earlier result, for ``solver.initial: {"job": ID}``.
     limits : dict, optional
@@ -112,21 +112,25 @@ def solve(
     Returns
     -------
     dict
-        Plain JSON-ready Python (DESIGN section 5): ``status``, ``method``,
-        ``error_bound``, ``iterations``, ``evaluation_steps``, ``seconds``,
+        Plain JSON-ready Python: ``status``, ``method``, ``error_bound``,
+        ``iterations``, ``evaluation_steps`` (Howard: evaluation steps in
+        all), ``linear_solves`` (policy iteration: exact evaluations),
+        ``seconds``,
         ``axes``, ``value`` and ``policy``/``policy_index`` (nested lists of
         shape ``shape``), ``log``, ``diagnostics``, ``stationary``,
         ``simulation`` (``None`` when not asked for).
 
         ``diagnostics`` holds the problem's own diagnostics (edge hits, …)
         and: ``observed_rate`` (see ``worker.solvers.observed_rate``),
-        ``warnings``, ``resumed_from_iteration`` and ``bracket``.  The
-        bracket describes the final improvement step ``v → Tv``: ``v* − Tv``
+        ``warnings``, ``resumed_from_iteration``, ``verification`` (with
+        hints: the unrestricted step that checked them, which is not an
+        iteration; see :class:`~worker.solvers.SolveOutcome`; else None) and
+        ``bracket``.  The bracket describes the final Bellman step ``v → Tv``: ``v* − Tv``
         lies in ``[lower, upper]`` at every state (MacQueen–Porteus), the
         returned value is ``Tv + shift`` with ``shift = (lower + upper)/2``,
         so ``error_bound = (upper − lower)/2 + rounding_allowance``;
         ``standard_bound = β/(1−β)·‖Tv − v‖∞ + rounding_allowance`` is the
-        bound ``Tv`` alone would carry.
+        error bound ``Tv`` alone would carry.
 
     Raises
     ------
@@ -158,13 +162,13 @@ def _fingerprint(doc: Any) -> str:
     """A hash of the validated problem, for checkpoints (hex BLAKE2b, 32 bytes).
 
     The document's fields (submission keys such as ``label`` left out, like
-    ``worker.document.schema.document_hash``) are hashed as JSON with every array
+    ``worker.document.document_hash``) are hashed as JSON with every array
     replaced by its shape and dtype, and the arrays' raw bytes are fed to
     the hash directly: re-encoding a large packed array, as the canonical
     document hash does, would cost seconds and gigabytes on big tabular
     problems, for no gain here.
     """
-    from worker.document.schema import SUBMISSION_KEYS
+    from worker.document import SUBMISSION_KEYS
 
     digest = hashlib.blake2b(digest_size=32)
 
@@ -186,12 +190,14 @@ def _fingerprint(doc: Any) -> str:
 
 def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, Any] | None) -> np.ndarray:
     """(n,) float64 starting values from ``solver.initial``."""
+    from worker.document import InitialJob, InitialValues
+
     initial = doc.solver.initial
     if initial is None or initial == "zeros":
         return np.zeros(problem.n)
-    if hasattr(initial, "values"):
+    if isinstance(initial, InitialValues):
         return _checked_values(np.asarray(initial.values, dtype=np.float64), problem, "solver.initial.values")
-    if hasattr(initial, "job"):
+    if isinstance(initial, InitialJob):
         path = "solver.initial.job"
         if warm_start is None:
             raise InvalidDocument.at(
@@ -221,6 +227,9 @@ def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str
     old_axes = warm_start.get("axes")
     if not isinstance(old_axes, dict) or "value" not in warm_start:
         raise InvalidDocument.at(path, "the earlier job's result has no axes and value to start from")
+    if STATE_AXIS in problem.axes and "state" in old_axes and STATE_AXIS not in old_axes:
+        # Tabular results stored before the axis was named state_label call it "state".
+        old_axes = {(STATE_AXIS if name == "state" else name): values for name, values in old_axes.items()}
     values = regrid(old_axes, warm_start["value"], problem.axes, path=path)
     return _checked_values(values, problem, path)
 
@@ -229,20 +238,21 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     policy, policy_index = problem.describe_policy(outcome.policy)
     problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
-    report = getattr(doc, "report", None)
+    report = doc.report
     stationary = None
     simulation = None
-    if report is not None and getattr(report, "stationary", False):
+    if report.stationary:
         stationary = stationary_report(problem, outcome.policy)
         warnings += stationary.pop("warnings", [])
-    if report is not None and getattr(report, "simulate", None) is not None:
-        simulation = simulate_report(problem, outcome.policy, report.simulate)
+    if report.simulation is not None:
+        simulation = simulate_report(problem, outcome.policy, report.simulation)
         warnings += simulation.pop("warnings", [])
     diagnostics = {
         **problem_diagnostics,
         "observed_rate": outcome.observed_rate,
         "warnings": warnings,
         "resumed_from_iteration": outcome.resumed_from_iteration,
+        "verification": outcome.verification,
         "bracket": dict(outcome.bracket),
     }
     head = _plain(
@@ -252,6 +262,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
             "error_bound": outcome.error_bound,
             "iterations": outcome.iterations,
             "evaluation_steps": outcome.evaluation_steps,
+            "linear_solves": outcome.linear_solves,
             "seconds": outcome.seconds,
             "axes": problem.axes,
         }

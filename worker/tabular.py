@@ -20,8 +20,13 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
+from worker.problem import Hints, PolicySteps
 
-__all__ = ["ROW_SUM_TOLERANCE", "TabularProblem", "compile_tabular"]
+__all__ = ["ROW_SUM_TOLERANCE", "STATE_AXIS", "TabularProblem", "compile_tabular"]
+
+STATE_AXIS = "state_label"
+"""Name of a tabular result's one axis (its values are the state labels); not ``state``, which
+names a job's lifecycle state beside it."""
 
 ROW_SUM_TOLERANCE = 1e-9
 """Allowed deviation of a transition row's sum from 1 (absolute, unitless)."""
@@ -50,6 +55,9 @@ class TabularProblem:
     """
 
     hints_active = False
+    hints = Hints()
+    policy_steps: PolicySteps | None = None
+    """Evaluation steps go through :meth:`policy_matrix` (a sparse product is already one call)."""
 
     def __init__(
         self,
@@ -89,7 +97,7 @@ class TabularProblem:
         self.transition = matrix
         self.state_labels = list(range(n_states)) if state_labels is None else list(state_labels)
         self.action_labels = list(range(n_actions)) if action_labels is None else list(action_labels)
-        self.axes: dict[str, list[Any]] = {"state": self.state_labels}
+        self.axes: dict[str, list[Any]] = {STATE_AXIS: self.state_labels}
         self._rows = np.arange(n_states)
 
     def bellman_step(
@@ -140,8 +148,8 @@ class TabularProblem:
         return {"action": np.asarray(policy, dtype=np.float64)}
 
     def state_values(self) -> dict[str, np.ndarray]:
-        """``{"state": (S,) float64}``: each state's index."""
-        return {"state": self._rows.astype(np.float64)}
+        """``{"state_label": (S,) float64}``: each state's index."""
+        return {STATE_AXIS: self._rows.astype(np.float64)}
 
     def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
         """Tabular problems have no grid edges to report: ``{}``."""
@@ -153,7 +161,7 @@ def compile_tabular(doc: Any) -> TabularProblem:
 
     Parameters
     ----------
-    doc : worker.document.schema.ProblemDocument
+    doc : worker.document.ProblemDocument
         ``doc.model`` is a ``TabularModel``: ``reward`` (S, A) with NaN for
         "not allowed", ``transition`` an (S, A, S) array or a sparse object
         whose ``entries`` is an (N, 4) array of ``(s, a, s_next, p)`` rows.

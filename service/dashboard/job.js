@@ -18,8 +18,6 @@
   let summaryShown = false;
   let drawPending = false;
 
-  // ---- the job record -------------------------------------------------------
-
   async function loadJob() {
     clearTimeout(pollTimer);
     try {
@@ -70,8 +68,8 @@
       ["iterations", formatCount(job.iterations ?? progress.iteration)],
       ["distance", formatBound(progress.distance)],
       ["error bound", formatBound(job.error_bound ?? progress.error_bound)],
-      ["states", estimate.states !== undefined ? formatCount(estimate.states) : null],
-      ["choices", estimate.choices !== undefined ? formatCount(estimate.choices) : null],
+      ["points", estimate.points !== undefined ? formatCount(estimate.points) : null],
+      ["choice points", estimate.choice_points !== undefined ? formatCount(estimate.choice_points) : null],
       ["priority", job.priority || null],
       ["attempts", job.attempts > 1 ? formatCount(job.attempts) : null],
       ["reused", job.reused ? "yes: an identical document was solved before" : null],
@@ -99,11 +97,9 @@
   function renderCanceled() {
     const iteration = job.iterations ?? (job.progress || {}).iteration;
     setNotes([
-      iteration ? `This job was canceled after ${formatCount(iteration)} improvement steps; no result was stored.` : "This job was canceled before it produced a result.",
+      iteration ? `This job was canceled after ${formatCount(iteration)} iterations; no result was stored.` : "This job was canceled before it produced a result.",
     ]);
   }
-
-  // ---- the convergence log, live -------------------------------------------
 
   function addEntry(entry) {
     // After a resume the log restarts past the checkpoint: later entries are superseded.
@@ -264,8 +260,6 @@
     };
   }
 
-  // ---- the solved result -----------------------------------------------------
-
   async function loadSummary() {
     let summary;
     try {
@@ -295,12 +289,13 @@
     const notes = [];
     const bound = formatBound(summary.error_bound);
     const effort =
-      `${formatCount(summary.iterations)} improvement steps` +
-      (summary.evaluation_steps ? ` and ${formatCount(summary.evaluation_steps)} policy-evaluation sweeps` : "") +
+      `${formatCount(summary.iterations)} iterations` +
+      (summary.evaluation_steps ? ` and ${formatCount(summary.evaluation_steps)} evaluation steps` : "") +
+      (summary.linear_solves ? ` and ${formatCount(summary.linear_solves)} linear solves` : "") +
       (summary.method ? ` (${summary.method.replace(/_/g, " ")})` : "") +
       (summary.seconds !== undefined ? `, ${formatSeconds(summary.seconds)} of solving` : "");
     if (summary.status === "converged") {
-      notes.push(`Converged: at every state the value function shown is within ${bound} of the exact fixed point of the discretized problem (a certified bound). It took ${effort}.`);
+      notes.push(`Converged: at every point the value function shown is within ${bound} of the exact fixed point of the discretized problem (the certified error bound). It took ${effort}.`);
     } else if (summary.status === "max_iterations") {
       notes.push(`Stopped at the iteration limit (solver.max_iterations) after ${effort}, before reaching the tolerance. The value function is still certified to be within ${bound} of the fixed point. Raise the limit, or continue from this job with solver.initial = {"job": "${jobId}"}.`);
     } else if (summary.status === "time_limit") {
@@ -310,12 +305,16 @@
     }
     const diagnostics = summary.diagnostics || {};
     if (Number.isFinite(diagnostics.observed_rate)) {
-      notes.push(`Successive distances shrank by a factor of about ${diagnostics.observed_rate.toFixed(3)} per step near the end.`);
+      notes.push(`Successive distances shrank by a factor of about ${diagnostics.observed_rate.toFixed(3)} per iteration near the end.`);
+    }
+    if (diagnostics.verification) {
+      const held = diagnostics.verification.hints_held;
+      notes.push(`The hints were checked by one unrestricted application of the Bellman operator (a verification, not counted as an iteration): ${held === false ? "they did not hold, so the solve went on without them" : "they held"}.`);
     }
     if (diagnostics.resumed_from_iteration) {
       notes.push(`A worker stopped during this solve; another one resumed it from the checkpoint of iteration ${formatCount(diagnostics.resumed_from_iteration)}, so finished work was not lost.`);
     }
-    // Means over tabular state or action indices say little; they are shown for grid models only.
+    // Means over the indices of tabular states or action labels say little; they are shown for grid models only.
     if (summary.layout !== "bars") {
       const means = Object.entries((summary.stationary || {}).means || {}).filter(([, value]) => Number.isFinite(value));
       if (means.length) {
@@ -354,11 +353,11 @@
     document.getElementById("policy-shock-box").classList.toggle("hidden", !(heatmap && shockLabels.length > 1));
     document.getElementById("choice-box").classList.toggle("hidden", choices.length < 2);
 
-    const valueUrl = (fmt) => `${base}/plots/value.${fmt}${heatmap ? `?shock=${valueShock.value || 0}` : ""}`;
+    const valueUrl = (fmt) => `${base}/plots/value.${fmt}${heatmap ? `?shock_index=${valueShock.value || 0}` : ""}`;
     const policyUrl = (fmt) => {
       const params = new URLSearchParams();
       if (choices.length) params.set("choice", choiceSelect.value || choices[0]);
-      if (heatmap) params.set("shock", policyShock.value || "0");
+      if (heatmap) params.set("shock_index", policyShock.value || "0");
       return `${base}/plots/policy.${fmt}?${params}`;
     };
     const update = () => {

@@ -116,7 +116,7 @@
             { class: "example", "data-example": example.name },
             el("span", { class: "label", text: example.label }),
             example.description ? el("span", { text: example.description }) : null,
-            el("span", { class: "meta", text: `${example.kind} · ${formatCount(example.states)} states · ${example.name}.json` }),
+            el("span", { class: "meta", text: `${example.kind} · ${formatCount(example.points)} points · ${example.name}.json` }),
             button,
           );
         }),

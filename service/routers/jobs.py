@@ -225,7 +225,8 @@ def list_jobs(
             owner=owner.listed_owner, state=state, tag=tag, label=label, cursor=cursor, limit=limit
         )
     except ValueError as exc:
-        raise Problem(400, "invalid-request", str(exc), errors=[{"path": "query.cursor", "message": str(exc)}]) from None
+        error = {"path": "query.cursor", "message": str(exc)}
+        raise Problem(400, "invalid-request", str(exc), errors=[error]) from None
     return {"data": with_reuse_fields(store, records), "next": next_cursor}
 
 
@@ -375,7 +376,7 @@ async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> 
 
 @router.delete("/{job_id}", response_model=JobRecord, responses={202: {"model": JobRecord}})
 def cancel_job(job_id: str, owner: Owner, store: StoreDep, response: Response) -> dict[str, Any]:
-    """Cancel a queued job now, or ask a running one to stop (202) at its next sweep."""
+    """Cancel a queued job now, or ask a running one to stop (202) at its next iteration or evaluation step."""
     _job_or_404(store, job_id, owner)
     outcome = store.request_cancel(job_id)
     if outcome is None:

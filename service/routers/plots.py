@@ -3,10 +3,11 @@
 * ``convergence.svg|png`` — from the convergence log, at any time (a running
   job's picture shows the iterations so far);
 * ``value.svg|png``, ``policy.svg|png`` — from the result, once ``done``
-  (``?shock=i`` picks the shock state of a heatmap, ``?choice=NAME`` the
-  policy's choice);
+  (``?shock_index=I`` picks the shock point of a heatmap by its flat index,
+  ``?choice=NAME`` the policy's choice by its name); an expired result is
+  410, as on ``/result``;
 * ``GET /v1/jobs/{id}/plots`` — a small JSON summary of a solved job: which
-  picture layout applies, the choices and shock states to pick from, and the
+  picture layout applies, the choices and shock points to pick from, and the
   result's status and diagnostics without its arrays (the dashboard reads it
   instead of downloading a possibly large result).
 """
@@ -57,7 +58,7 @@ def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
         "tolerance": ((document or {}).get("solver") or {}).get("tolerance"),
         **{
             key: result.get(key)
-            for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "seconds")
+            for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "linear_solves", "seconds")
         },
         "diagnostics": result.get("diagnostics") or {},
         "stationary": _without(result.get("stationary"), "distribution"),
@@ -77,10 +78,18 @@ def plot(
     store: StoreDep,
     owner: Owner,
     choice: Annotated[
-        str | None, Query(description="Policy pictures: the choice to draw (default: the first).")
+        str | None,
+        Query(
+            description="Policy pictures: the name of the choice to draw (a tabular model's one choice is "
+            "named action; default: the first)."
+        ),
     ] = None,
-    shock: Annotated[
-        int | None, Query(ge=0, description="Heatmaps: the flat index of the shock state to draw (default 0).")
+    shock_index: Annotated[
+        int | None,
+        Query(
+            ge=0,
+            description="Heatmaps: the flat index (C order over the shocks) of the shock point to draw (default 0).",
+        ),
     ] = None,
 ) -> Response:
     """A picture of a job: its convergence log, value function or policy, as SVG or PNG."""
@@ -99,9 +108,11 @@ def plot(
         result = _result(store, job)
         layout = plots.axis_layout(result, store.get_document(job_id))
         if picture == "value":
-            body = plots.value_plot(result, layout=layout, shock=shock, title=title, fmt=fmt)
+            body = plots.value_plot(result, layout=layout, shock_index=shock_index, title=title, fmt=fmt)
         else:
-            body = plots.policy_plot(result, layout=layout, choice=choice, shock=shock, title=title, fmt=fmt)
+            body = plots.policy_plot(
+                result, layout=layout, choice=choice, shock_index=shock_index, title=title, fmt=fmt
+            )
         cache = f"private, max-age={DONE_MAX_AGE_S}"
     return Response(body, media_type=MEDIA_TYPES[fmt], headers={"Cache-Control": cache})
 
@@ -127,7 +138,7 @@ def _result(store: JobStore, job: dict[str, Any]) -> dict[str, Any]:
     if result is None:
         state = job.get("state")
         if state == "done":
-            raise Problem(404, "not-found", "the result of this job has expired and is no longer stored")
+            raise Problem(410, "expired", f"the result of job {job['id']} has expired (results are kept result_ttl_s)")
         raise Problem(
             409, "not-ready", f"the job is {state}: value and policy pictures exist once it is done", state=state
         )

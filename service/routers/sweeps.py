@@ -20,7 +20,18 @@ from service.deps import JsonObject, Owner, SettingsDep, StoreDep, api_key_of
 from service.limits import quota_for
 from service.problems import Problem
 from service.store import JobStore
-from service.sweeps import Sweep, cancel_sweep, create_sweep, list_sweeps, load_sweep, sweep_view
+from service.sweeps import (
+    MODES,
+    ROW_STATES,
+    SWEEP_STATES,
+    Sweep,
+    SweepRequest,
+    cancel_sweep,
+    create_sweep,
+    list_sweeps,
+    load_sweep,
+    sweep_view,
+)
 
 __all__ = ["router"]
 
@@ -33,7 +44,7 @@ ROWS_PAGE_MAX = 1000
 LIST_PAGE_MAX = 200
 """Most sweeps in one page of ``GET /v1/sweeps`` (sweeps)."""
 
-RowState = Literal["waiting", "queued", "running", "done", "failed", "canceled"]
+RowState = Literal[ROW_STATES]
 
 
 class SweepRow(BaseModel):
@@ -68,20 +79,20 @@ class SweepSummary(BaseModel):
     label: str | None = None
     tags: list[str] = []
     priority: str
-    mode: Literal["product", "zip"]
+    mode: Literal[MODES]
     chain: bool
     vary: dict[str, list[Any]]
     combinations: int
     tag: str
-    created_at: str
+    submitted_at: str
     canceled_at: str | None = None
     links: dict[str, str] = {}
 
 
 class SweepRecord(SweepSummary):
-    """A sweep: its request, ``state`` (active, finished, canceled), counts of rows by state, and a page of rows."""
+    """A sweep: its request, ``state`` (active, done, canceled), counts of rows by state, and a page of rows."""
 
-    state: Literal["active", "finished", "canceled"]
+    state: Literal[SWEEP_STATES]
     counts: dict[str, int]
     rows: RowPage
 
@@ -100,29 +111,8 @@ def _sweep_or_404(store: JobStore, sweep_id: str, owner: Owner) -> Sweep:
     return sweep
 
 
-_REQUEST_SCHEMA = {
-    "type": "object",
-    "required": ["base", "vary"],
-    "additionalProperties": False,
-    "properties": {
-        "base": {"$ref": "/v1/schema", "description": "The problem document every combination starts from."},
-        "vary": {
-            "type": "object",
-            "minProperties": 1,
-            "description": "Path into the document (dotted keys, [i] list indices) → the values it takes.",
-            "additionalProperties": {"type": "array", "minItems": 1},
-        },
-        "mode": {"enum": ["product", "zip"], "default": "product"},
-        "chain": {"type": "boolean", "default": False, "description": "Warm-start each job from its neighbour."},
-        "label": {"type": "string", "maxLength": 200},
-        "tags": {"type": "array", "items": {"type": "string", "pattern": "^[A-Za-z0-9_.:-]{1,64}$"}},
-        "priority": {"enum": ["high", "normal", "low"]},
-    },
-}
-
-
 @router.post("", status_code=202, response_model=SweepRecord, openapi_extra={"requestBody": {
-    "required": True, "content": {"application/json": {"schema": _REQUEST_SCHEMA}}}})  # fmt: skip
+    "required": True, "content": {"application/json": {"schema": SweepRequest.model_json_schema()}}}})  # fmt: skip
 def submit_sweep(
     body: JsonObject,
     owner: Owner,

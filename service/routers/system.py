@@ -12,7 +12,7 @@ from rq import Worker
 
 from service.admission import admit
 from service.deps import JsonObject, Owner, SettingsDep, StoreDep
-from worker.document.schema import document_hash, json_schema
+from worker.document import document_hash, json_schema
 
 __all__ = ["router"]
 

@@ -56,8 +56,9 @@ class Service:
         self.http = httpx.Client(base_url=self.url, timeout=30.0)
 
     def _spawn(self, *args: str) -> subprocess.Popen:
-        log = open(self.log_dir / f"{args[0]}-{time.monotonic_ns()}.log", "wb")
-        return subprocess.Popen([sys.executable, "-m", "service.cli", *args], env=self.env, stdout=log, stderr=log)
+        # The child keeps its own copy of the file descriptor; this process closes its one at once.
+        with open(self.log_dir / f"{args[0]}-{time.monotonic_ns()}.log", "wb") as log:
+            return subprocess.Popen([sys.executable, "-m", "service.cli", *args], env=self.env, stdout=log, stderr=log)
 
     def start_api(self) -> None:
         self.api = self._spawn("api", "--port", str(self.port))
@@ -255,9 +256,12 @@ def test_an_api_restart_does_not_disturb_a_running_job(service: Service) -> None
     assert service.job(job_id)["state"] == "running"
     seen: list[int] = []
     waited: list[dict] = []
-    follower = threading.Thread(
-        target=lambda: waited.append(FixqClient(service.url).wait(job_id, on_progress=lambda e: seen.append(e["iteration"])))
-    )
+
+    def follow() -> None:
+        with FixqClient(service.url) as client:
+            waited.append(client.wait(job_id, on_progress=lambda e: seen.append(e["iteration"])))
+
+    follower = threading.Thread(target=follow)
     follower.start()
     wait_for(lambda: seen, 30, "the client to follow the live log")
     service.kill_api()

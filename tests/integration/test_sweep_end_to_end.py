@@ -28,8 +28,8 @@ import redis
 from service.embedded_redis import EmbeddedRedis, free_port
 from service.settings import Settings
 from service.store import JobStore
-from tests._processes import stop_process_groups
-from tests.service.test_webhooks import WORKER_LAUNCH, Receiver
+from tests._processes import WORKER_LAUNCH, stop_process_groups
+from tests._receiver import Receiver
 from worker import solve
 
 REPO = Path(__file__).resolve().parents[2]
@@ -76,7 +76,8 @@ def api(lab: tuple[JobStore, Path]) -> Iterator[httpx.Client]:
     store, logs = lab
     port = free_port()
     env = {**os.environ, "FIXQ_REDIS_URL": store.settings.redis_url, "FIXQ_AUTH": "off",
-           "FIXQ_NOTIFY_ALLOW_HOSTS": "127.0.0.1", "FIXQ_NOTIFY_ALLOW_PRIVATE": "true", "PYTHONPATH": str(REPO)}  # fmt: skip
+           "FIXQ_NOTIFY_ALLOW_HOSTS": "127.0.0.1", "FIXQ_NOTIFY_ALLOW_PRIVATE": "true",
+           "PYTHONPATH": str(REPO)}  # fmt: skip
     with open(logs / "api.log", "wb") as out:
         process = subprocess.Popen([sys.executable, "-m", "service.cli", "api", "--port", str(port)], cwd=REPO,
                                    env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)  # fmt: skip
@@ -122,7 +123,7 @@ def test_a_chained_sweep_runs_on_real_workers_and_notifies_every_job(
             if view["state"] != "active":
                 break
             time.sleep(0.1)
-        assert view["state"] == "finished", worker_logs(logs)
+        assert view["state"] == "done", worker_logs(logs)
         requests = receiver.wait_for(6, 20)
     rows = view["rows"]["data"]
     assert view["counts"]["done"] == 6 and all(row["status"] == "converged" for row in rows)
@@ -151,7 +152,7 @@ def test_a_chained_sweep_runs_on_real_workers_and_notifies_every_job(
         assert row["means"] == warm["stationary"]["means"]
 
     table = list(csv.reader(io.StringIO(api.get(f"/v1/sweeps/{sweep['id']}", params={"format": "csv"}).text)))
-    assert table[0][:3] == ["index", "discount", "model.reward[0][0]"] and "mean.state" in table[0]
+    assert table[0][:3] == ["index", "discount", "model.reward[0][0]"] and "mean.state_label" in table[0]
     assert [line[table[0].index("job")] for line in table[1:]] == jobs
 
     assert sorted(r["headers"]["Fixq-Delivery"] for r in requests) == sorted(jobs)

@@ -30,7 +30,7 @@ import redis
 from rq.job import Job
 
 from service import queue as rq_queues
-from service.queue import reap
+from service.reaper import reap
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
 from service.task import decode_checkpoint, encode_checkpoint, run_job
@@ -158,10 +158,10 @@ class Workers:
         self.horses: set[int] = set()
 
     def start(self) -> subprocess.Popen[bytes]:
-        log = open(self.log_dir / f"worker-{len(self.processes)}.log", "wb")
-        process = subprocess.Popen(
-            WORKER_COMMAND, cwd=REPO, env=self.env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
-        )
+        with open(self.log_dir / f"worker-{len(self.processes)}.log", "wb") as log:
+            process = subprocess.Popen(
+                WORKER_COMMAND, cwd=REPO, env=self.env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
+            )
         self.processes.append(process)
         return process
 

@@ -3,6 +3,12 @@
 Used by the dashboard's browser tests and by the client-script tests, which
 talk HTTP from outside the test process (a browser, curl, a Python script).
 The processes run in their own sessions and are stopped by their own ids.
+
+The API is started as ``fixq api`` starts it (``python -m service.cli api``), not
+by a bare ``uvicorn`` command: a bare uvicorn has no graceful-shutdown limit, so
+after SIGTERM it waited for every open live-log stream (SSE) to end, which a
+browser tab never does, and each stop ran into the SIGKILL after
+``STOP_TIMEOUT_S``.
 """
 
 from __future__ import annotations
@@ -19,14 +25,12 @@ from service.embedded_redis import free_port
 from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
-APP_FACTORY = "service.app:create_app"
-"""The app factory uvicorn serves (``module:function``)."""
 STARTUP_TIMEOUT_S = 60.0
 """Seconds to wait for the API to answer /healthz."""
 
 
 class LiveServer:
-    """``service.app:create_app`` under uvicorn on a free loopback port, plus workers on demand."""
+    """``fixq api`` on a free loopback port, plus ``fixq worker`` processes on demand."""
 
     def __init__(self, redis_url: str, log_dir: Path, **settings: str) -> None:
         self.port = free_port()
@@ -37,20 +41,16 @@ class LiveServer:
         self.processes: list[tuple[str, subprocess.Popen[bytes]]] = []
 
     def _spawn(self, name: str, command: list[str]) -> subprocess.Popen[bytes]:
-        log = open(self.log_dir / f"{name}-{len(self.processes)}.log", "wb")
-        process = subprocess.Popen(
-            command, cwd=REPO, env=self.env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
-        )
-        log.close()
+        with open(self.log_dir / f"{name}-{len(self.processes)}.log", "wb") as log:
+            process = subprocess.Popen(
+                command, cwd=REPO, env=self.env, stdout=log, stderr=subprocess.STDOUT, start_new_session=True
+            )
         self.processes.append((name, process))
         return process
 
     def start(self) -> LiveServer:
-        api = self._spawn(
-            "api",
-            [sys.executable, "-m", "uvicorn", APP_FACTORY, "--factory",
-             "--host", "127.0.0.1", "--port", str(self.port), "--log-level", "warning"],
-        )  # fmt: skip
+        command = [sys.executable, "-m", "service.cli", "api", "--host", "127.0.0.1", "--port", str(self.port)]
+        api = self._spawn("api", command)
         deadline = time.monotonic() + STARTUP_TIMEOUT_S
         while time.monotonic() < deadline:
             if api.poll() is not None:

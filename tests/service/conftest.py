@@ -1,9 +1,12 @@
-"""Fixtures of the in-process HTTP tests: the app on the private Redis, and a client for it.
+"""Fixtures of the in-process HTTP tests: the app on the private Redis, and clients for it.
 
-``client`` is a plain synchronous ``httpx.Client`` whose transport hands each
-request to the ASGI app (``httpx.ASGITransport``) in a fresh event loop, so
-tests stay plain functions; a response is read whole before it is returned,
-so a live log (SSE) returns once its job has ended.
+* ``app_settings``, ``app``, ``client``: the app with auth off and a client of it.
+* ``keys``: the API key store on the private Redis.
+* ``auth_settings``, ``auth_app``: the app with auth on; ``alice`` and ``bob``
+  are clients with ordinary keys, ``admin`` one with an admin key.
+
+The client and the calls the tests share are in ``tests/service/_http.py``, the
+documents in ``tests/_documents.py``.
 """
 
 from __future__ import annotations
@@ -11,37 +14,15 @@ from __future__ import annotations
 from collections.abc import Iterator
 from typing import Any
 
-import anyio
 import httpx
 import pytest
+import redis
 from fastapi import FastAPI
 
 from service.app import create_app
+from service.keys import KeyStore
 from service.settings import Settings
-
-
-class ASGIBridge(httpx.BaseTransport):
-    """A sync httpx transport that serves each request from an ASGI app."""
-
-    def __init__(self, app: Any) -> None:
-        self.app = app
-
-    def handle_request(self, request: httpx.Request) -> httpx.Response:
-        body = request.read()
-
-        async def serve() -> httpx.Response:
-            transport = httpx.ASGITransport(app=self.app, raise_app_exceptions=False)
-            forwarded = httpx.Request(request.method, request.url, headers=request.headers, content=body)
-            response = await transport.handle_async_request(forwarded)
-            content = await response.aread()
-            return httpx.Response(response.status_code, headers=response.headers, content=content, request=request)
-
-        return anyio.run(serve)
-
-
-def make_client(app: FastAPI, **headers: str) -> httpx.Client:
-    """A sync client talking to ``app`` in process."""
-    return httpx.Client(transport=ASGIBridge(app), base_url="http://fixq.test", headers=headers)
+from tests.service._http import client_for, make_client
 
 
 @pytest.fixture
@@ -61,25 +42,34 @@ def client(app: FastAPI) -> Iterator[httpx.Client]:
         yield http
 
 
-def machine_shop(**overrides) -> dict:
-    """An invented three-state machine: run it, or repair it at a cost."""
-    document = {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "tags": ["shop"],
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["new", "worn", "broken"],
-            "actions": ["run", "repair"],
-            "reward": [[3.0, -1.0], [2.0, -1.0], [None, -4.0]],
-            "transition": [
-                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
-                [[0.0, 0.7, 0.3], [1.0, 0.0, 0.0]],
-                [[0.0, 0.0, 1.0], [1.0, 0.0, 0.0]],
-            ],
-        },
-        "solver": {"method": "value_iteration", "tolerance": 1e-8},
-    }
-    document.update(overrides)
-    return document
+@pytest.fixture
+def keys(redis_client: redis.Redis, settings: Settings) -> KeyStore:
+    return KeyStore(redis_client, settings.redis_prefix)
+
+
+@pytest.fixture
+def auth_settings(settings: Settings) -> Settings:
+    return settings.model_copy(update={"auth": True})
+
+
+@pytest.fixture
+def auth_app(auth_settings: Settings, redis_client: redis.Redis) -> FastAPI:
+    return create_app(auth_settings)
+
+
+@pytest.fixture
+def alice(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
+    with client_for(auth_app, keys, "alice") as http:
+        yield http
+
+
+@pytest.fixture
+def bob(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
+    with client_for(auth_app, keys, "bob") as http:
+        yield http
+
+
+@pytest.fixture
+def admin(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
+    with client_for(auth_app, keys, "operator", admin=True) as http:
+        yield http

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import re
 import secrets
-from collections.abc import Iterator
 from typing import Any
 
 import httpx
@@ -19,62 +18,10 @@ import redis
 from fastapi import FastAPI
 
 from service import cli
-from service import queue as rq_queues
-from service.app import create_app
 from service.keys import KEY_PREFIX, KeyNameError, KeyStore, key_digest, looks_like_key
-from service.settings import Settings, get_settings
-from service.store import JobStore
-from tests.service.conftest import make_client
-from service.task import run_job
-
-PROBLEM_JSON = "application/problem+json"
-
-
-def print_shop(**overrides: Any) -> dict[str, Any]:
-    """An invented two-state print shop: print, or service the press at a cost."""
-    document: dict[str, Any] = {
-        "version": 1,
-        "label": "print shop (invented)",
-        "tags": ["shop"],
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["sharp", "smudging"],
-            "actions": ["print", "service"],
-            "reward": [[4.0, -1.0], [1.5, -1.0]],
-            "transition": [[[0.85, 0.15], [1.0, 0.0]], [[0.0, 1.0], [1.0, 0.0]]],
-        },
-        "solver": {"method": "value_iteration", "tolerance": 1e-8},
-    }
-    document.update(overrides)
-    return document
-
-
-def assert_problem(response: httpx.Response, status: int) -> dict[str, Any]:
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"] == PROBLEM_JSON
-    body = response.json()
-    assert body["status"] == status and body["type"].startswith("urn:fixq:problem:")
-    assert body["title"] and body["detail"]
-    return body
-
-
-def run_inline(job_id: str) -> dict[str, Any]:
-    """One real execution in this process, taking its RQ entry off the queue as a worker would."""
-    store = JobStore.from_settings()
-    try:
-        record = store.get_job(job_id)
-        assert record is not None
-        store.redis.lrem(rq_queues.queue_key(record["priority"]), 0, rq_queues.execution_id(job_id, 1))
-    finally:
-        store.redis.close()
-    return run_job(job_id)
-
-
-def submit(client: httpx.Client, document: dict[str, Any] | None = None, **params: Any) -> dict[str, Any]:
-    response = client.post("/v1/jobs", json=document or print_shop(), params=params)
-    assert response.status_code == 202, response.text
-    return response.json()
+from service.settings import get_settings
+from tests._documents import print_shop
+from tests.service._http import assert_problem, make_client, run_inline, submit
 
 
 def api_routes(app: FastAPI) -> list[tuple[str, set[str]]]:
@@ -86,43 +33,6 @@ def api_routes(app: FastAPI) -> list[tuple[str, set[str]]]:
     else:
         contexts = iter_route_contexts(app.routes)
     return [(c.path, set(c.methods) - {"HEAD"}) for c in contexts if c.path and c.methods]
-
-
-@pytest.fixture
-def keys(redis_client: redis.Redis, settings: Settings) -> KeyStore:
-    return KeyStore(redis_client, settings.redis_prefix)
-
-
-@pytest.fixture
-def auth_settings(settings: Settings) -> Settings:
-    return settings.model_copy(update={"auth": True})
-
-
-@pytest.fixture
-def auth_app(auth_settings: Settings, redis_client: redis.Redis) -> FastAPI:
-    return create_app(auth_settings)
-
-
-def client_for(app: FastAPI, keys: KeyStore, name: str, **options: Any) -> httpx.Client:
-    return make_client(app, Authorization=f"Bearer {keys.add(name, **options)}")
-
-
-@pytest.fixture
-def alice(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
-    with client_for(auth_app, keys, "alice") as http:
-        yield http
-
-
-@pytest.fixture
-def bob(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
-    with client_for(auth_app, keys, "bob") as http:
-        yield http
-
-
-@pytest.fixture
-def admin(auth_app: FastAPI, keys: KeyStore) -> Iterator[httpx.Client]:
-    with client_for(auth_app, keys, "operator", admin=True) as http:
-        yield http
 
 
 def every_stored_byte(client: redis.Redis) -> bytes:
@@ -289,7 +199,7 @@ def test_run_refuses_auth_off_on_an_open_address_before_starting_anything(
     served: list[dict[str, Any]], monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]
 ) -> None:
     spawned: list[Any] = []
-    monkeypatch.setattr(cli, "_spawn", lambda *args: spawned.append(args))
+    monkeypatch.setattr(cli, "spawn", lambda *args: spawned.append(args))
     with_env(monkeypatch, FIXQ_AUTH="off")
     code, _, err = run_cli(capsys, "run", "--host", "0.0.0.0")
     assert code == 2 and not spawned and "--allow-open-network" in err

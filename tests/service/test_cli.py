@@ -19,8 +19,8 @@ from fastapi import FastAPI
 from service import cli
 from service.client import FixqClient
 from service.embedded_redis import free_port
-from tests.service.conftest import ASGIBridge
-from tests.service.test_routes_jobs import machine_shop, run_inline
+from tests._documents import machine_shop
+from tests.service._http import ASGIBridge, run_inline
 
 
 @pytest.fixture
@@ -60,7 +60,7 @@ def test_every_command_parses() -> None:
 def test_check_prints_the_estimate(fixq, document_file: Path) -> None:
     code, out, _ = fixq("check", str(document_file))
     assert code == 0
-    assert json.loads(out)["estimate"]["states"] == 3
+    assert json.loads(out)["estimate"]["points"] == 3
 
 
 def test_invalid_documents_exit_2_naming_the_paths(fixq, tmp_path: Path) -> None:
@@ -98,7 +98,7 @@ def test_submit_status_result_and_cancel(fixq, document_file: Path, tmp_path: Pa
     table = tmp_path / "table.csv"
     code, out, _ = fixq("result", job_id, "--format", "csv", "-o", str(table))
     assert code == 0 and out == ""
-    assert table.read_text().splitlines()[0] == "state,value,action"
+    assert table.read_text().splitlines()[0] == "state_label,value,action"
     other = tmp_path / "other.json"
     other.write_text(json.dumps(machine_shop(discount=0.8)))
     code, out, _ = fixq("submit", str(other))
@@ -127,7 +127,7 @@ def test_submit_wait_shows_progress_and_exits_by_the_outcome(fixq, document_file
     assert code == 0 and out.strip() == submitted[0]
     lines = [line for line in err.splitlines() if line.startswith("iteration")]
     assert len(lines) > 10
-    assert "distance" in lines[0] and "bound" in lines[0]
+    assert "distance" in lines[0] and "error bound" in lines[0]
     assert f"job {submitted[0]} done: converged" in err
 
     canceled: list[str] = []
@@ -213,14 +213,17 @@ def test_run_starts_redis_api_and_worker_and_stops_them_all(tmp_path: Path, docu
     assert (tmp_path / "redis" / "appendonlydir").exists() or any((tmp_path / "redis").glob("appendonly*"))
 
 
-def test_examples_lists_the_bundled_problems_and_writes_one_out(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
+def test_examples_lists_the_bundled_problems_and_writes_one_out(
+    tmp_path: Path, capsys: pytest.CaptureFixture[str]
+) -> None:
     from service.cli import main
     from service.examples import example_names, load_example
-    from worker.document.schema import parse_document
+    from worker.document import parse_document
 
     assert main(["examples"]) == 0
     listing = capsys.readouterr().out.splitlines()
     assert [line.split()[0] for line in listing] == example_names()
+    assert "10 points" in next(line for line in listing if line.startswith("machine_replacement"))
     target = tmp_path / "shop.json"
     assert main(["examples", "machine_replacement", "-o", str(target)]) == 0
     written = json.loads(target.read_text())

@@ -24,10 +24,10 @@ import httpx
 import pytest
 from websockets.sync.client import connect
 
-from _live_server import LiveServer, wait_until_finished
 from service.embedded_redis import EmbeddedRedis
 from service.examples import load_example
 from service.routers.dashboard import SESSION_COOKIE
+from tests.service._live_server import LiveServer, wait_until_finished
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
 SCREENSHOTS = Path(__file__).resolve().parents[1] / "screenshots"
@@ -304,6 +304,12 @@ def test_a_job_is_followed_live_from_queued_to_solved(
     assert page.evaluate("document.querySelector('#job-state .state').textContent") == "done"
     notes = page.evaluate("document.getElementById('notes').textContent")
     assert "Converged" in notes and "howard" in notes and "simulated paths" in notes
+    assert f"{result['iterations']} iterations" in notes and "evaluation steps" in notes
+    facts = page.evaluate(
+        "Object.fromEntries([...document.querySelectorAll('#facts dt')]"
+        ".map(dt => [dt.textContent, dt.nextElementSibling.textContent]))"
+    )
+    assert facts["points"] == "800" and "choice points" in facts and "states" not in facts
     assert "borrowing limit" in page.evaluate("document.getElementById('warning-list').textContent")
     links = page.evaluate("[...document.querySelectorAll('#downloads a')].map(a => a.getAttribute('href'))")
     assert f"/v1/jobs/{job_id}/result" in links and f"/v1/jobs/{job_id}/result?format=csv" in links
@@ -330,6 +336,8 @@ def test_an_example_started_from_the_list_shows_its_bars(
     tab = new_tab()
     tab.goto(f"{server.url}/")
     tab.wait_for("document.querySelector('[data-example=\"machine_replacement\"] button') !== null")
+    meta = tab.evaluate("document.querySelector('[data-example=\"machine_replacement\"] .meta').textContent")
+    assert "10 points" in meta
     tab.evaluate("document.querySelector('[data-example=\"machine_replacement\"] button').click()")
     job_id = tab.wait_for("location.pathname.startsWith('/jobs/') && location.pathname.split('/')[2]")
     tab.wait_for(PLOTS_SHOWN)
@@ -366,7 +374,7 @@ def test_two_state_models_offer_shock_and_choice_pickers(
     )
     tab.wait_for(PLOTS_SHOWN + " && document.getElementById('policy-plot').src.includes('choice=marketing')")
     assert tab.evaluate("document.getElementById('policy-plot').src") != first
-    assert "shock=1" in tab.evaluate("document.getElementById('policy-plot').src")
+    assert "shock_index=1" in tab.evaluate("document.getElementById('policy-plot').src")
     tab.screenshot("job-roastery-heatmaps")
     assert tab.problems() == []
 

@@ -22,13 +22,26 @@ def test_settings_table_names_every_field() -> None:
         assert f"`FIXQ_{name.upper()}`" in table
 
 
+def test_settings_table_names_every_variable_of_the_numerics() -> None:
+    import worker.environment
+
+    table = settings_table()
+    constants = vars(worker.environment).values()
+    variables = [value for value in constants if isinstance(value, str) and value.startswith("FIXQ_")]
+    assert variables
+    for variable in variables:
+        assert f"`{variable}`" in table
+    assert "| `FIXQ_KERNEL_CACHE` | `~/.cache/fixq/kernels` |" in table
+
+
 def test_document_reference_is_current() -> None:
     text = _readme.README.read_text(encoding="utf-8")
-    assert _readme.current_section(text, "docref") == reference(), "README.md is stale: run python -m service.docref --write"
+    stale = "README.md is stale: run python -m service.docref --write"
+    assert _readme.current_section(text, "docref") == reference(), stale
 
 
 def test_document_reference_covers_every_object_of_the_schema() -> None:
-    from worker.document.schema import json_schema
+    from worker.document import json_schema
 
     text = reference()
     for name in json_schema()["$defs"]:

@@ -14,29 +14,30 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 from fastapi import FastAPI
-from fastapi.testclient import TestClient
 from scipy.optimize import brentq
 from scipy.stats import binom
 
-from _live_server import LiveServer
 from service import plots, problems
 from service.embedded_redis import EmbeddedRedis
 from service.examples import DESCRIPTIONS, UnknownExample, example_names, list_examples, load_example
 from service.routers.examples import router as examples_router
-from worker.document.schema import parse_document
+from tests.service._http import make_client
+from tests.service._live_server import LiveServer
 from worker import solve
+from worker.document import parse_document
 from worker.estimate import estimate
 
 EXPECTED = {
     "fishery_harvest",
     "household_saving",
-    "job_search",
     "machine_replacement",
     "plant_capacity",
     "roastery_growth",
+    "translator_contracts",
 }
 MAX_PAIRS = 500_000
 """Most (state, choice) pairs an example may have: a size that solves in about a second on
@@ -76,8 +77,8 @@ def test_list_and_load() -> None:
     assert [e["name"] for e in listed] == sorted(EXPECTED)
     by_name = {e["name"]: e for e in listed}
     assert by_name["machine_replacement"]["kind"] == "tabular"
-    assert by_name["machine_replacement"]["states"] == 10
-    assert by_name["household_saving"]["states"] == 160 * 5
+    assert by_name["machine_replacement"]["points"] == 10
+    assert by_name["household_saving"]["points"] == 160 * 5
     first = load_example("household_saving")
     first["model"]["params"]["r"] = 99.0
     assert load_example("household_saving")["model"]["params"]["r"] != 99.0
@@ -87,19 +88,19 @@ def test_list_and_load() -> None:
 
 
 @pytest.fixture
-def examples_client() -> Iterator[TestClient]:
+def examples_client() -> Iterator[httpx.Client]:
     app = FastAPI()
     problems.install(app)
     app.include_router(examples_router)
-    with TestClient(app) as client:
+    with make_client(app) as client:
         yield client
 
 
-def test_examples_routes(examples_client: TestClient) -> None:
+def test_examples_routes(examples_client: httpx.Client) -> None:
     listing = examples_client.get("/v1/examples").json()
     assert listing["next"] is None
     assert [e["name"] for e in listing["data"]] == sorted(EXPECTED)
-    assert examples_client.get("/v1/examples/job_search").json() == load_example("job_search")
+    assert examples_client.get("/v1/examples/translator_contracts").json() == load_example("translator_contracts")
     missing = examples_client.get("/v1/examples/space_elevator")
     assert missing.status_code == 404
     assert missing.headers["content-type"] == problems.PROBLEM_JSON
@@ -129,32 +130,49 @@ def test_machine_shop_replaces_at_and_beyond_a_wear_threshold(solved: dict[str, 
     assert np.max(np.abs(np.array(result["value"]) - v)) <= result["error_bound"] + 1e-9
 
 
-def test_job_seeker_accepts_exactly_the_wages_above_the_reservation_wage(solved: dict[str, Any]) -> None:
-    document = load_example("job_search")
-    result = solved["job_search"]
+def test_translator_accepts_and_keeps_exactly_the_fees_above_the_reservation_fee(solved: dict[str, Any]) -> None:
+    document = load_example("translator_contracts")
+    result = solved["translator_contracts"]
     beta = document["discount"]
     model = document["model"]
-    n = len(model["states"]) // 2
-    wages = np.array([row[0] for row in model["reward"][:n]])
-    benefit = model["reward"][0][1]
-    probs = np.zeros(n)
+    n = (len(model["states"]) - 1) // 2
+    offers, contracts = slice(1, 1 + n), slice(1 + n, 1 + 2 * n)
+    fees = np.array([row[0] for row in model["reward"][offers]])
+    odd_jobs = model["reward"][0][1]
+    quiet = 0.0
+    draws = np.zeros(n)
+    ends = 0.0
     for s, a, s_next, p in model["transition"]["entries"]:
         if s == 0 and a == 1:
-            probs[int(s_next)] += p
-    assert probs.sum() == pytest.approx(1.0, abs=1e-9)
+            if s_next == 0:
+                quiet += p
+            else:
+                draws[int(s_next) - 1] += p
+        if s == 1 and a == 0 and s_next == 0:
+            ends = p
+    assert quiet + draws.sum() == pytest.approx(1.0, abs=1e-9) and 0 < ends < 1
 
-    # McCall (1970, QJE 84(1)), reservation-wage equation for search without separations:
-    # w* - b = beta / (1 - beta) * E[max(w - w*, 0)], solved here with scipy's brentq.
+    # Derived from the Bellman equation: with R the value of being without a contract and a
+    # contract at fee w worth W(w) = (w + beta*ends*R) / (1 - beta*(1 - ends)), accepting pays
+    # iff w >= (1 - beta) R =: w*, and R = odd_jobs + beta*E[max(V(next), R)] gives
+    # w* - odd_jobs = beta / (1 - beta + beta*ends) * sum_i draws_i * max(w_i - w*, 0),
+    # solved here with scipy's brentq instead of by iteration.
     def gap(w: float) -> float:
-        return (w - benefit) - beta / (1 - beta) * np.sum(probs * np.maximum(wages - w, 0.0))
+        return (w - odd_jobs) - beta / (1 - beta + beta * ends) * np.sum(draws * np.maximum(fees - w, 0.0))
 
-    reservation = brentq(gap, benefit, wages.max())
-    assert wages.min() < reservation < wages.max()
-    accept = [a == "work" for a in result["policy"]["action"][:n]]
-    assert accept == list(wages >= reservation)
-    # Values: an offer is worth max(w, w*) / (1 - beta) (accepting w forever, or searching on).
-    expected_values = np.maximum(wages, reservation) / (1 - beta)
-    assert np.max(np.abs(np.array(result["value"][:n]) - expected_values)) <= result["error_bound"] + 1e-6
+    reservation = brentq(gap, odd_jobs, fees.max())
+    assert fees.min() < reservation < fees.max()
+    actions = result["policy"]["action"]
+    assert actions[0] == "decline"
+    assert [a == "accept" for a in actions[offers]] == list(fees >= reservation)
+    assert [a == "accept" for a in actions[contracts]] == list(fees >= reservation)
+    # Values: R without a contract; an offer or a contract at w is worth R + max(w - w*, 0) / (1 - beta + beta*ends).
+    without = reservation / (1 - beta)
+    expected = without + np.maximum(fees - reservation, 0.0) / (1 - beta + beta * ends)
+    value = np.array(result["value"])
+    assert abs(value[0] - without) <= result["error_bound"] + 1e-6
+    assert np.max(np.abs(value[offers] - expected)) <= result["error_bound"] + 1e-6
+    assert np.max(np.abs(value[contracts] - expected)) <= result["error_bound"] + 1e-6
 
 
 def rouwenhorst_matrix(points: int, rho: float) -> np.ndarray:
@@ -251,7 +269,7 @@ def test_roastery_builds_more_capacity_with_more_capacity_customers_and_taste(so
     assert (policy[:, -1, :] > policy[:, 0, :]).any()
     layout = plots.axis_layout(result, document)
     assert layout == plots.AxisLayout(states=("capacity", "customers"), shocks=("taste",))
-    assert b"<image" in plots.value_plot(result, layout=layout, shock=1)
+    assert b"<image" in plots.value_plot(result, layout=layout, shock_index=1)
 
 
 def test_examples_survive_a_json_round_trip_unchanged() -> None:
@@ -296,11 +314,11 @@ def test_the_python_client_example_runs_against_a_live_server(live_server: LiveS
 @pytest.mark.skipif(not (shutil.which("curl") and shutil.which("jq")), reason="curl and jq are needed for this example")
 def test_the_curl_lifecycle_example_runs_against_a_live_server(live_server: LiveServer, tmp_path: Path) -> None:
     output = run_client(["bash", str(CLIENTS / "curl_lifecycle.sh"), str(tmp_path)], live_server, tmp_path).stdout
-    assert '{"states":10,"choices":2}' in output
+    assert '{"points":10,"choice_points":2}' in output
     assert re.search(r"job [0-9a-f]{16} is done", output)
     assert "wear 8\treplace" in output and "new\tkeep running" in output
     table = (tmp_path / "result.csv").read_text().splitlines()
-    assert table[0] == "state,value,action" and len(table) == 11
+    assert table[0] == "state_label,value,action" and len(table) == 11
     assert (tmp_path / "policy.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     canceled = json.loads(output.strip().splitlines()[-1])
     assert canceled["state"] in ("canceled", "running", "done")

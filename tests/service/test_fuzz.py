@@ -26,9 +26,9 @@ from hypothesis import strategies as st
 from service.app import create_app
 from service.examples import load_example
 from service.keys import KeyStore
-from worker.document.schema import json_schema
 from service.settings import Settings
-from tests.service.conftest import make_client
+from tests.service._http import make_client
+from worker.document import json_schema
 
 MUTATIONS = 150
 """Documents the mutation fuzzer sends (count), each to /v1/check and /v1/jobs."""
@@ -136,7 +136,7 @@ def replaced(document: Any, path: tuple[Any, ...], value: Any) -> Any:
     return out
 
 
-SEEDS = [load_example("machine_replacement"), load_example("household_saving"), load_example("job_search")]
+SEEDS = [load_example("machine_replacement"), load_example("household_saving"), load_example("translator_contracts")]
 """Valid documents (bundled invented examples) that the mutation fuzzer breaks one field at a time."""
 
 

@@ -22,8 +22,8 @@ from service.app import create_app
 from service.keys import KeyStore
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
-from tests.service.test_auth import PROBLEM_JSON, print_shop
+from tests._documents import print_shop
+from tests.service._http import PROBLEM_JSON, make_client
 
 BODY_CAP_MB = 2.0
 """The request-body cap of the app under attack, in MiB (small, so huge bodies stay cheap to send)."""

@@ -18,8 +18,8 @@ from service.limits import ActiveJobs, Quota, check_problem_size, quota_for
 from service.problems import Problem
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
-from tests.service.test_auth import assert_problem, client_for, keys, print_shop, run_inline  # noqa: F401
+from tests._documents import print_shop
+from tests.service._http import assert_problem, client_for, make_client, run_inline
 
 
 def quota(owner: str = "alice", active: int = 3, high: int = 1, mb: float = 100.0) -> Quota:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import secrets
 import struct
 import subprocess
 import sys
@@ -9,21 +10,22 @@ import xml.etree.ElementTree as ET
 from collections.abc import Iterator
 from typing import Any
 
+import httpx
 import numpy as np
 import pytest
 from fastapi import FastAPI
-from fastapi.testclient import TestClient
 
 from service import plots, problems
 from service.deps import Caller, current_owner
 from service.examples import load_example
 from service.problems import Problem
 from service.routers.plots import router as plots_router
-from worker.document.schema import document_hash, parse_document
 from service.settings import get_settings
 from service.store import JobStore
-from worker.estimate import estimate
 from service.task import run_job
+from tests.service._http import make_client
+from worker.document import document_hash, parse_document
+from worker.estimate import estimate
 
 SVG_NS = "{http://www.w3.org/2000/svg}"
 
@@ -64,7 +66,7 @@ def two_state_result() -> dict[str, Any]:
 def tabular_result() -> dict[str, Any]:
     actions = ["keep"] * 6 + ["replace"] * 4
     return {
-        "axes": {"state": [f"wear {i}" for i in range(10)]},
+        "axes": {"state_label": [f"wear {i}" for i in range(10)]},
         "value": np.linspace(50, 30, 10).tolist(),
         "policy": {"action": actions},
         "policy_index": {"action": [0 if a == "keep" else 1 for a in actions]},
@@ -114,16 +116,16 @@ def test_policy_plot_picks_the_named_choice() -> None:
     assert refused.value.errors[0]["path"] == "query.choice"
 
 
-def test_two_endogenous_states_make_a_heatmap_per_shock_state() -> None:
+def test_two_state_variables_make_a_heatmap_per_shock_point() -> None:
     result = two_state_result()
     layout = plots.AxisLayout(states=("a", "b"), shocks=("y",))
-    first = plots.value_plot(result, layout=layout, shock=0)
-    last = plots.value_plot(result, layout=layout, shock=2, fmt="svg")
+    first = plots.value_plot(result, layout=layout, shock_index=0)
+    last = plots.value_plot(result, layout=layout, shock_index=2, fmt="svg")
     assert b"<image" in first  # the mesh is rasterised inside the SVG
     assert first != last
     with pytest.raises(Problem) as refused:
-        plots.value_plot(result, layout=layout, shock=3)
-    assert refused.value.errors[0]["path"] == "query.shock"
+        plots.value_plot(result, layout=layout, shock_index=3)
+    assert refused.value.errors[0]["path"] == "query.shock_index"
     png_size(plots.policy_plot(result, layout=layout, fmt="png"))
 
 
@@ -132,10 +134,10 @@ def test_a_third_state_is_held_at_its_middle_point() -> None:
     value = a[:, None, None, None] + b[None, :, None, None] + c[None, None, :, None] * np.ones((1, 1, 1, 2))
     result = {"axes": {"a": a.tolist(), "b": b.tolist(), "c": c.tolist(), "y": [0.0, 1.0]}, "value": value.tolist()}
     layout = plots.AxisLayout(states=("a", "b", "c"), shocks=("y",))
-    svg = plots.value_plot(result, layout=layout, shock=1)
+    svg = plots.value_plot(result, layout=layout, shock_index=1)
     assert b"<image" in svg
-    assert svg == plots.value_plot(result, layout=layout, shock=1)
-    assert svg != plots.value_plot(result, layout=layout, shock=0)
+    assert svg == plots.value_plot(result, layout=layout, shock_index=1)
+    assert svg != plots.value_plot(result, layout=layout, shock_index=0)
 
 
 def test_tabular_results_are_bars_per_state() -> None:
@@ -168,7 +170,7 @@ def test_plots_of_a_solved_example_result() -> None:
 
 
 @pytest.fixture
-def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[TestClient, FastAPI]]:
+def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[httpx.Client, FastAPI]]:
     monkeypatch.setenv("FIXQ_AUTH", "off")
     get_settings.cache_clear()
     app = FastAPI()
@@ -177,7 +179,7 @@ def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple
     app.state.redis = store.redis
     app.state.store = store
     app.include_router(plots_router)
-    with TestClient(app, raise_server_exceptions=False) as client:
+    with make_client(app) as client:
         yield client, app
     get_settings.cache_clear()
 
@@ -192,7 +194,7 @@ def submit(store: JobStore, document: dict[str, Any], *, owner: str = "anonymous
     return record["id"]
 
 
-def test_plot_routes_draw_a_solved_job(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+def test_plot_routes_draw_a_solved_job(plot_app: tuple[httpx.Client, FastAPI], store: JobStore) -> None:
     client, _ = plot_app
     job_id = submit(store, load_example("machine_replacement"))
     for picture in ("convergence", "value", "policy"):
@@ -211,7 +213,7 @@ def test_plot_routes_draw_a_solved_job(plot_app: tuple[TestClient, FastAPI], sto
     assert "distribution" not in summary["stationary"]
 
 
-def test_plot_routes_refuse_what_cannot_be_drawn(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+def test_plot_routes_refuse_what_cannot_be_drawn(plot_app: tuple[httpx.Client, FastAPI], store: JobStore) -> None:
     client, _ = plot_app
     queued = submit(store, load_example("machine_replacement"), solve_now=False)
     # A queued job has a (still empty) convergence picture but no value yet: 409, as for its result.
@@ -231,7 +233,58 @@ def test_plot_routes_refuse_what_cannot_be_drawn(plot_app: tuple[TestClient, Fas
     assert client.get("/v1/jobs/not-a-job/plots/value.svg").status_code == 404
 
 
-def test_plot_routes_hide_other_owners_jobs(plot_app: tuple[TestClient, FastAPI], store: JobStore) -> None:
+def roastery_result(capacity: int = 4, customers: int = 3, taste: int = 2) -> dict[str, Any]:
+    """A result document shaped like the roastery example's (two state variables, one shock)."""
+    c, m, t = np.linspace(1, 2, capacity), np.linspace(0, 1, customers), np.linspace(0.9, 1.1, taste)
+    value = c[:, None, None] + m[None, :, None] * t[None, None, :]
+    axes = {"capacity": c.tolist(), "customers": m.tolist(), "taste": t.tolist()}
+    policy = {"capacity_next": value.tolist(), "marketing": (value / 2).tolist()}
+    return {"status": "converged", "error_bound": 1e-9, "iterations": 3, "evaluation_steps": 0, "seconds": 0.1,
+            "axes": axes, "value": value.tolist(), "policy": policy, "policy_index": policy, "log": [],
+            "diagnostics": {}}  # fmt: skip
+
+
+def finish_with(store: JobStore, job_id: str, result: dict[str, Any]) -> None:
+    token = secrets.token_hex(8)
+    store.claim(job_id, token, worker="test:1")
+    assert store.finish(job_id, token, "done", result=result)
+
+
+def test_heatmap_routes_pick_the_shock_point_by_its_flat_index(
+    plot_app: tuple[httpx.Client, FastAPI], store: JobStore
+) -> None:
+    client, _ = plot_app
+    job_id = submit(store, load_example("roastery_growth"), solve_now=False)
+    finish_with(store, job_id, roastery_result())
+    summary = client.get(f"/v1/jobs/{job_id}/plots").json()
+    assert summary["layout"] == "heatmap" and summary["shocks"] == ["taste"]
+    assert summary["shock_labels"] == ["taste=0.9", "taste=1.1"]
+    first = client.get(f"/v1/jobs/{job_id}/plots/value.svg", params={"shock_index": 0})
+    second = client.get(f"/v1/jobs/{job_id}/plots/value.svg", params={"shock_index": 1})
+    assert first.status_code == second.status_code == 200 and first.content != second.content
+    policy = client.get(f"/v1/jobs/{job_id}/plots/policy.svg", params={"choice": "marketing", "shock_index": 1})
+    assert policy.status_code == 200
+    out_of_range = client.get(f"/v1/jobs/{job_id}/plots/value.svg", params={"shock_index": 2})
+    assert out_of_range.status_code == 400
+    assert out_of_range.json()["errors"][0]["path"] == "query.shock_index"
+
+
+def test_an_expired_result_is_gone_for_plots_as_for_the_result(
+    plot_app: tuple[httpx.Client, FastAPI], store: JobStore
+) -> None:
+    client, _ = plot_app
+    job_id = submit(store, load_example("machine_replacement"))
+    assert client.get(f"/v1/jobs/{job_id}/plots/value.svg").status_code == 200
+    store.redis.delete(store.keys.result(job_id))
+    for path in ("plots", "plots/value.svg", "plots/policy.png"):
+        gone = client.get(f"/v1/jobs/{job_id}/{path}")
+        assert gone.status_code == 410, path
+        assert gone.headers["content-type"] == problems.PROBLEM_JSON
+    # The convergence picture is drawn from the log, not the result.
+    assert client.get(f"/v1/jobs/{job_id}/plots/convergence.svg").status_code == 200
+
+
+def test_plot_routes_hide_other_owners_jobs(plot_app: tuple[httpx.Client, FastAPI], store: JobStore) -> None:
     client, app = plot_app
     job_id = submit(store, load_example("machine_replacement"), owner="bob")
     app.dependency_overrides[current_owner] = lambda: Caller("alice")

@@ -18,19 +18,8 @@ from service.keys import KeyStore
 from service.resubmission import SolvedJobs
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
-from tests.service.test_auth import (  # noqa: F401
-    admin,
-    alice,
-    assert_problem,
-    auth_app,
-    auth_settings,
-    bob,
-    keys,
-    print_shop,
-    run_inline,
-    submit,
-)
+from tests._documents import print_shop
+from tests.service._http import assert_problem, make_client, run_inline, submit
 from worker import solve
 
 EXAMPLES = Path(__file__).resolve().parents[2] / "service" / "examples"

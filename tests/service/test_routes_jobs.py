@@ -21,36 +21,13 @@ import numpy as np
 import pytest
 import redis
 
-from service import queue as rq_queues
 from service.app import create_app
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import machine_shop, make_client
-from worker import solve
 from service.task import run_job
-
-PROBLEM_JSON = "application/problem+json"
-
-
-def assert_problem(response: httpx.Response, status: int) -> dict:
-    assert response.status_code == status, response.text
-    assert response.headers["content-type"] == PROBLEM_JSON
-    body = response.json()
-    assert body["status"] == status
-    assert body["type"].startswith("urn:fixq:problem:")
-    assert body["title"] and body["detail"]
-    return body
-
-
-def run_inline(job_id: str) -> dict:
-    """One real execution of the job in this process, taking its RQ entry off the queue as a worker would."""
-    store = JobStore.from_settings()
-    try:
-        record = store.get_job(job_id)
-        store.redis.lrem(rq_queues.queue_key(record["priority"]), 0, f"{job_id}-1")
-    finally:
-        store.redis.close()
-    return run_job(job_id)
+from tests._documents import machine_shop
+from tests.service._http import PROBLEM_JSON, assert_problem, make_client, run_inline
+from worker import solve
 
 
 def submit(client: httpx.Client, document: dict | None = None, **headers: str) -> dict:
@@ -66,7 +43,7 @@ def test_submit_answers_202_with_the_record_and_location(client: httpx.Client, s
     assert response.headers["location"] == f"/v1/jobs/{record['id']}"
     assert record["state"] == "queued" and record["owner"] == "anonymous"
     assert record["label"] == "machine shop (invented)" and record["tags"] == ["shop"]
-    assert record["estimate"]["states"] == 3 and record["estimate"]["choices"] == 2
+    assert record["estimate"]["points"] == 3 and record["estimate"]["choice_points"] == 2
     assert store.queue_depths()["normal"] == 1
     assert client.get(record["links"]["self"]).json() == record
 
@@ -163,7 +140,7 @@ def test_problem_over_max_problem_mb_is_413_naming_the_estimate(
     app = create_app(app_settings.model_copy(update={"max_problem_mb": 0.0001}))
     with make_client(app) as client:
         body = assert_problem(client.post("/v1/jobs", json=machine_shop()), 413)
-    assert body["estimate"]["states"] == 3 and body["estimate"]["bytes"] > 0.0001 * 2**20
+    assert body["estimate"]["points"] == 3 and body["estimate"]["bytes"] > 0.0001 * 2**20
     assert "MiB" in body["detail"] and "max_problem_mb" in body["detail"]
     assert body["errors"][0]["path"] == "model"
     assert store.counts_by_state()["queued"] == 0

@@ -14,12 +14,12 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from service.app import create_app
 from service.embedded_redis import free_port
-from worker.document.schema import json_schema
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import make_client
+from tests._documents import machine_shop
+from tests.service._http import assert_problem, make_client, run_inline, submit
+from worker.document import json_schema
 from worker.errors import InfeasibleModel
-from tests.service.test_routes_jobs import assert_problem, machine_shop, run_inline, submit
 
 
 def test_check_validates_and_estimates_without_queueing(client: httpx.Client, store: JobStore) -> None:
@@ -27,7 +27,7 @@ def test_check_validates_and_estimates_without_queueing(client: httpx.Client, st
     assert response.status_code == 200
     body = response.json()
     assert body["valid"] is True
-    assert body["estimate"]["states"] == 3 and body["estimate"]["bytes"] > 0 and body["estimate"]["seconds"] >= 0
+    assert body["estimate"]["points"] == 3 and body["estimate"]["bytes"] > 0 and body["estimate"]["seconds"] >= 0
     assert len(body["document_hash"]) == 64
     assert store.counts_by_state() == {"queued": 0, "running": 0, "done": 0, "failed": 0, "canceled": 0}
     assert store.queue_depths() == {"high": 0, "normal": 0, "low": 0}
@@ -52,7 +52,7 @@ from service.settings import Settings
 doc = json.load(open("service/examples/plant_capacity.json"))
 admitted = admit(doc, Settings(redis_url="redis://127.0.0.1:1/0"))
 import service.app
-assert admitted.estimate["states"] > 0
+assert admitted.estimate["points"] > 0
 print("numba" in sys.modules)
 """
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)

@@ -10,7 +10,7 @@ import redis
 import redis.backoff
 import redis.retry
 
-import service.store as store_module
+import service.store.jobs as store_module
 from service import queue as rq_queues
 from service.embedded_redis import EmbeddedRedis, free_port
 from service.settings import Settings

@@ -10,6 +10,7 @@ from __future__ import annotations
 import copy
 import csv
 import io
+import threading
 
 import httpx
 import pytest
@@ -20,12 +21,14 @@ from service import lifecycle, sweeps
 from service import queue as rq_queues
 from service.app import create_app
 from service.deps import Caller, current_owner
+from service.reaper import reap
 from service.settings import Settings
 from service.store import JobStore
-from tests.service.conftest import machine_shop as shared_machine_shop
-from tests.service.conftest import make_client
-from worker import solve
+from service.sweeps import creation as sweep_creation
 from service.task import run_job
+from tests._documents import machine_shop as shared_machine_shop
+from tests.service._http import make_client
+from worker import solve
 
 PROBLEM_JSON = "application/problem+json"
 
@@ -146,7 +149,7 @@ def test_a_sweep_queues_one_tagged_job_per_combination(http: httpx.Client, store
 def test_rows_report_iterations_bounds_means_and_a_csv_table(http: httpx.Client, store: JobStore) -> None:
     sweep = post_sweep(http, vary={"discount": [0.8, 0.9, 0.95]})
     view = run_all(http, store, sweep["id"])
-    assert view["state"] == "finished" and view["counts"]["done"] == 3
+    assert view["state"] == "done" and view["counts"]["done"] == 3
     for row in view["rows"]["data"]:
         result = store.get_result(row["job"])
         assert row["status"] == result["status"] == "converged"
@@ -161,9 +164,9 @@ def test_rows_report_iterations_bounds_means_and_a_csv_table(http: httpx.Client,
     assert response.status_code == 200 and response.headers["content-type"].startswith("text/csv")
     table = list(csv.reader(io.StringIO(response.text)))
     assert table[0] == ["index", "discount", "job", "state", "status", "iterations", "error_bound",
-                        "mean.state", "mean.action", "error"]  # fmt: skip
+                        "mean.state_label", "mean.action", "error"]  # fmt: skip
     assert [line[1] for line in table[1:]] == ["0.8", "0.9", "0.95"]
-    assert float(table[3][7]) == pytest.approx(view["rows"]["data"][2]["means"]["state"])
+    assert float(table[3][7]) == pytest.approx(view["rows"]["data"][2]["means"]["state_label"])
 
 
 def test_rows_are_paginated(http: httpx.Client) -> None:
@@ -215,7 +218,9 @@ def test_faults_outside_the_varied_paths_are_named_in_the_base(http: httpx.Clien
         ({"vary": {"discount": [0.9]}, "priority": "urgent"}, "priority", "high"),
     ],
 )
-def test_malformed_sweep_requests_are_422_naming_the_field(http: httpx.Client, body: dict, path: str, words: str) -> None:
+def test_malformed_sweep_requests_are_422_naming_the_field(
+    http: httpx.Client, body: dict, path: str, words: str
+) -> None:
     problem = assert_problem(http.post("/v1/sweeps", json={"base": machine_shop(), **body}), 422)
     messages = {error["path"]: error["message"] for error in problem["errors"]}
     assert path in messages and words in messages[path], messages
@@ -265,7 +270,7 @@ def test_a_chain_creates_each_job_once_its_predecessor_finished(http: httpx.Clie
     view = http.get(f"/v1/sweeps/{sweep['id']}").json()
     assert [row["state"] for row in view["rows"]["data"]] == ["done", "queued", "queued", "waiting"]
     view = run_all(http, store, sweep["id"])
-    assert view["state"] == "finished"
+    assert view["state"] == "done"
     jobs = [row["job"] for row in view["rows"]["data"]]
     for index, before in ((1, 0), (2, 0), (3, 2)):
         assert store.get_document(jobs[index])["solver"]["initial"] == {"job": jobs[before]}
@@ -284,8 +289,9 @@ def test_a_chain_creates_each_job_once_its_predecessor_finished(http: httpx.Clie
 def test_a_chain_goes_on_cold_after_a_canceled_predecessor(http: httpx.Client, store: JobStore) -> None:
     sweep = post_sweep(http, vary={"discount": [0.9, 0.92]}, chain=True)
     root = sweep["rows"]["data"][0]["job"]
-    # Canceled in its queue: no worker sees it end, so reading the sweep takes the chain on.
+    # Canceled in its queue: no worker sees it end, so the reaper's next pass takes the chain on.
     assert http.delete(f"/v1/jobs/{root}").json()["state"] == "canceled"
+    reap(store, use_lock=False)
     view = http.get(f"/v1/sweeps/{sweep['id']}").json()
     second = view["rows"]["data"][1]
     assert second["state"] == "queued"
@@ -370,6 +376,8 @@ def test_a_chain_starts_cold_when_the_predecessor_result_has_expired(
         patch.setattr(sweeps, "job_finished", lambda store, job_id: None)  # the hook did not run
         assert run_inline(store, root) == "done"
     store.redis.delete(store.keys.result(root))
+    assert http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]["state"] == "waiting"  # a read never writes
+    reap(store, use_lock=False)
     second = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]
     assert second["state"] == "queued"
     assert store.get_document(second["job"])["solver"] == machine_shop()["solver"]
@@ -378,7 +386,7 @@ def test_a_chain_starts_cold_when_the_predecessor_result_has_expired(
 def test_a_redis_failure_while_creating_jobs_leaves_the_sweep_canceled(
     http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    real = sweeps._ensure_job
+    real = sweep_creation.ensure_job
     calls = []
 
     def failing(sweep, index, **kwargs):
@@ -387,10 +395,10 @@ def test_a_redis_failure_while_creating_jobs_leaves_the_sweep_canceled(
             raise redis.ConnectionError("Redis went away")
         return real(sweep, index, **kwargs)
 
-    monkeypatch.setattr(sweeps, "_ensure_job", failing)
+    monkeypatch.setattr(sweep_creation, "ensure_job", failing)
     response = http.post("/v1/sweeps", json={"base": machine_shop(), "vary": {"discount": [0.9, 0.92, 0.94]}})
     assert_problem(response, 503)
-    monkeypatch.setattr(sweeps, "_ensure_job", real)
+    monkeypatch.setattr(sweep_creation, "ensure_job", real)
     (listed,) = http.get("/v1/sweeps").json()["data"]
     view = http.get(f"/v1/sweeps/{listed['id']}").json()
     assert view["state"] == "canceled" and [row["state"] for row in view["rows"]["data"]] == ["canceled"] * 3
@@ -414,18 +422,25 @@ def test_the_finish_hook_ignores_executions_that_did_not_finish_and_never_raises
     assert seen == ["0123456789abcdef"]
 
 
-def test_reading_a_sweep_creates_rows_the_door_left_behind_once_it_is_gone(http: httpx.Client, store: JobStore) -> None:
+def test_the_reaper_creates_rows_the_door_left_behind_once_it_is_gone(http: httpx.Client, store: JobStore) -> None:
     sweep = post_sweep(http, vary={"discount": [0.9, 0.92]})
     keys = f"fixq:sweep:{sweep['id']}"
     lost = sweep["rows"]["data"][1]["job"]
     store.request_cancel(lost)
     store.redis.hdel(f"{keys}:jobs", 1)  # as if the API died before creating row 1
     store.redis.set(f"{keys}:door", "1", px=60_000)  # ... while its door marker still lives
+    reap(store, use_lock=False)
     assert http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]["state"] == "waiting"
     store.redis.delete(f"{keys}:door")
+    assert http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]["state"] == "waiting"  # a read never writes
+    reap(store, use_lock=False)
     row = http.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][1]
     assert row["state"] == "queued" and row["job"] not in (None, lost)
     assert store.get_document(row["job"])["discount"] == 0.92
+    # Every row has its job now: the next pass settles the sweep, and later passes skip it.
+    assert store.redis.sismember("fixq:sweeps:pending", sweep["id"])
+    reap(store, use_lock=False)
+    assert not store.redis.sismember("fixq:sweeps:pending", sweep["id"])
 
 
 @pytest.mark.parametrize(
@@ -475,3 +490,78 @@ def test_jobs_a_chain_makes_later_count_among_the_owners_active_jobs(http: httpx
     active = ActiveJobs(store.redis, store.settings.redis_prefix)
     assert store.redis.zscore(active.active_key("anonymous"), successor) is not None
     assert active.usage("anonymous")[0] == 1
+
+
+def finished_root_without_hook(
+    http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch, rows: int = 2
+) -> dict:
+    """A chain whose root is done while its finish hook did not run: row 1 is due and has no job."""
+    sweep = post_sweep(http, vary={"discount": [0.9 + 0.005 * i for i in range(rows)]}, chain=True)
+    with monkeypatch.context() as patch:
+        patch.setattr(sweeps, "job_finished", lambda store, job_id: None)
+        assert run_inline(store, sweep["rows"]["data"][0]["job"]) == "done"
+    return sweep
+
+
+def test_concurrent_creators_of_one_row_make_one_job(
+    http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    rows, creators = 10, 6
+    sweep = finished_root_without_hook(http, store, monkeypatch, rows=rows)
+    jobs_key = f"fixq:sweep:{sweep['id']}:jobs"
+    barrier = threading.Barrier(creators)
+    made: list[tuple[int, str | None]] = []
+
+    def create() -> None:
+        # Every creator races for every row in turn, retrying as overlapping hooks and reaper
+        # passes would, until the row is recorded.
+        mine = sweeps.load_sweep(store, sweep["id"])
+        for index in range(1, rows):
+            barrier.wait()
+            for _ in range(200):
+                made.append((index, sweeps.ensure_job(mine, index)))
+                if store.redis.hexists(jobs_key, index):
+                    break
+
+    threads = [threading.Thread(target=create) for _ in range(creators)]
+    for thread in threads:
+        thread.start()
+    for thread in threads:
+        thread.join()
+    created = {index: job_id for index, job_id in made if job_id is not None}
+    assert len([job_id for _, job_id in made if job_id is not None]) == rows - 1 == len(created)
+    recorded = {int(k): v.decode() for k, v in store.redis.hgetall(jobs_key).items()}
+    assert recorded == {0: sweep["rows"]["data"][0]["job"], **created}
+    jobs, _ = store.list_jobs(tag=sweep["tag"], limit=100)
+    assert sorted(job["id"] for job in jobs if job["state"] == "queued") == sorted(created.values())
+    assert len(store.redis.lrange(rq_queues.queue_key("normal"), 0, -1)) == rows - 1
+
+
+def test_a_creator_whose_claim_lapsed_leaves_the_row_to_the_one_that_recorded_it(
+    http: httpx.Client, store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    sweep = finished_root_without_hook(http, store, monkeypatch)
+    claim = f"fixq:sweep:{sweep['id']}:claim:1"
+    real = sweep_creation.create_submitted_job
+    late: list[str | None] = []
+    calls = []
+
+    def slow_create(*args, **kwargs):
+        calls.append(1)
+        if len(calls) == 1:
+            # The first creator stalls past its claim; a second one arrives, creates and records the row.
+            store.redis.delete(claim)
+            late.append(sweeps.ensure_job(sweeps.load_sweep(store, sweep["id"]), 1))
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(sweep_creation, "create_submitted_job", slow_create)
+    assert sweeps.ensure_job(sweeps.load_sweep(store, sweep["id"]), 1) is None
+    (winner,) = late
+    assert winner is not None and len(calls) == 2
+    assert store.redis.hget(f"fixq:sweep:{sweep['id']}:jobs", 1) == winner.encode()
+    jobs, _ = store.list_jobs(tag=sweep["tag"])
+    states = {job["id"]: job["state"] for job in jobs}
+    assert [job_id for job_id, state in states.items() if state == "queued"] == [winner]
+    assert sorted(states.values()) == ["canceled", "done", "queued"]
+    assert store.redis.lrange(rq_queues.queue_key("normal"), 0, -1) == [f"{winner}-1".encode()]
+    assert not store.redis.exists(claim)

@@ -9,14 +9,12 @@ from __future__ import annotations
 
 import hashlib
 import hmac
-import http.server
 import ipaddress
 import json
 import os
 import socket
 import subprocess
 import sys
-import threading
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -30,77 +28,19 @@ from service.embedded_redis import EmbeddedRedis
 from service.settings import Settings
 from service.store import JobStore
 from service.submission import submit
+from tests._documents import machine_shop
+from tests._processes import WORKER_LAUNCH, stop_process_groups
+from tests._receiver import Receiver
 from worker.errors import InvalidDocument
-from tests.service.conftest import machine_shop
-from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
 PUBLIC = ipaddress.ip_address("93.184.215.14")
 """A global address the patched resolver hands out; nothing ever connects to it."""
 WORKER_DATABASE = 5
 """Redis database of the real-worker test, apart from the FLUSHDB of other tests."""
-WORKER_LAUNCH = (
-    "from service.store import JobStore\n"
-    "from service.webhooks import Notifier\n"
-    "from service.task import run_worker\n"
-    "Notifier(JobStore.from_settings()).start()\n"
-    "run_worker()\n"
-)
-"""A worker process with a notifier thread beside it, as ``run_worker`` is to start one."""
-
-
 def independent_signature(secret: str, timestamp: str, body: bytes) -> str:
     """The documented scheme, computed here without fixq: hex HMAC-SHA256 over f"{timestamp}." + body."""
     return "sha256=" + hmac.new(secret.encode(), timestamp.encode() + b"." + body, hashlib.sha256).hexdigest()
-
-
-class Receiver:
-    """A tiny HTTP server on loopback that records requests and answers from a script."""
-
-    def __init__(self, answers: list[int], *, delay_s: float = 0.0) -> None:
-        self.answers = list(answers)
-        self.delay_s = delay_s
-        self.requests: list[dict] = []
-        self.arrived = threading.Condition()
-        receiver = self
-
-        class Handler(http.server.BaseHTTPRequestHandler):
-            def do_POST(self) -> None:  # noqa: N802 (the stdlib's name)
-                body = self.rfile.read(int(self.headers.get("Content-Length", 0)))
-                time.sleep(receiver.delay_s)
-                status = receiver.answers.pop(0) if len(receiver.answers) > 1 else receiver.answers[0]
-                self.send_response(status)
-                if 300 <= status < 400:
-                    self.send_header("Location", "/elsewhere")
-                self.send_header("Content-Length", "0")
-                self.end_headers()
-                with receiver.arrived:
-                    receiver.requests.append(
-                        {"path": self.path, "headers": dict(self.headers), "body": body, "at": time.monotonic()}
-                    )
-                    receiver.arrived.notify_all()
-
-            def log_message(self, *args: object) -> None:
-                pass
-
-        self.server = http.server.ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-        self.server.daemon_threads = True
-        self.port = self.server.server_address[1]
-        self.url = f"http://127.0.0.1:{self.port}/hook?lab=1"
-        self.thread = threading.Thread(target=self.server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True)
-
-    def __enter__(self) -> Receiver:
-        self.thread.start()
-        return self
-
-    def __exit__(self, *exc: object) -> None:
-        self.server.shutdown()
-        self.server.server_close()
-
-    def wait_for(self, count: int, timeout_s: float) -> list[dict]:
-        with self.arrived:
-            self.arrived.wait_for(lambda: len(self.requests) >= count, timeout_s)
-        return list(self.requests)
 
 
 def loopback_settings(settings: Settings, **update) -> Settings:

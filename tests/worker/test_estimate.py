@@ -1,4 +1,4 @@
-"""Size, memory and time estimates, and the regime decision they share with the compiler."""
+"""Size, memory and time estimates, and the reward-storage decision they share with the compiler."""
 
 from __future__ import annotations
 
@@ -7,8 +7,8 @@ import tracemalloc
 import numpy as np
 import pytest
 
-from worker.document.schema import parse_document
 from worker import solve
+from worker.document import parse_document
 from worker.errors import TooLarge
 from worker.estimate import PRECOMPUTE_MAX_BYTES, estimate, grid_plan
 from worker.gridmodel import compile_grid
@@ -41,37 +41,37 @@ def test_a_billion_pair_document_is_sized_without_allocating() -> None:
     finally:
         tracemalloc.stop()
     assert peak < 200_000  # a grid alone would be 160 kB, a table of pairs 22 GB
-    assert size["states"] == 140_000 and size["shocks"] == 7 and size["choices"] == 20_000
+    assert size["points"] == 140_000 and size["shocks"] == 7 and size["choice_points"] == 20_000
     assert size["pairs"] == 2_800_000_000
-    assert size["regime"] == "on_the_fly"
+    assert size["reward_storage"] == "on_the_fly"
     assert size["bytes"] < 1 << 30
-    assert size["seconds"] > 0 and "improvement steps" in size["basis"]
+    assert size["seconds"] > 0 and "iterations" in size["basis"]
     assert any("monotone and concave" in note for note in size["notes"])
 
 
 def test_small_models_without_hints_are_tabulated() -> None:
     size = estimate(parse_document(grid_document()))
-    assert size["regime"] == "precomputed"
+    assert size["reward_storage"] == "tables"
     assert size["bytes"] >= size["pairs"] * 8
 
 
 def test_hints_choose_pointwise_evaluation() -> None:
     size = estimate(parse_document(grid_document(hints={"monotone": True, "concave": True})))
-    assert size["regime"] == "on_the_fly"
+    assert size["reward_storage"] == "on_the_fly"
 
 
 def test_the_memory_cap_moves_tables_out_of_reach() -> None:
     doc = parse_document(grid_document())
     pairs = 200 * 3 * 200
-    assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8}).regime == "precomputed"
-    assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8 - 8}).regime == "on_the_fly"
+    assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8}).reward_storage == "tables"
+    assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8 - 8}).reward_storage == "on_the_fly"
     assert grid_plan(doc.model, limits={"max_bytes": 1 << 50}).budget == PRECOMPUTE_MAX_BYTES
 
 
 def test_unusable_hints_are_explained() -> None:
     two = {"k_next": {"next_of": "k"}, "effort": {"values": [0.0, 1.0]}}
     size = estimate(parse_document(grid_document(hints={"concave": True}, choices=two)))
-    assert size["regime"] == "precomputed"
+    assert size["reward_storage"] == "tables"
     assert any("exactly one choice" in note for note in size["notes"])
     own = grid_document(hints={"monotone": True, "concave": True}, choices={"k_next": {"min": 1.0, "max": 9.0, "points": 50}})
     own["model"]["next"] = {"k": "k_next"}
@@ -84,12 +84,12 @@ def test_unusable_hints_are_explained() -> None:
     [grid_document(), grid_document(hints={"monotone": True, "concave": True}), grid_document(points=30, shocks=2)],
     ids=["plain", "hinted", "small"],
 )
-def test_the_compiler_uses_the_estimated_regime(raw: dict) -> None:
+def test_the_compiler_uses_the_estimated_reward_storage(raw: dict) -> None:
     doc = parse_document(raw)
-    assert compile_grid(doc).regime == estimate(doc)["regime"]
+    assert compile_grid(doc).reward_storage == estimate(doc)["reward_storage"]
 
 
-@pytest.mark.parametrize("hints", [None, {"monotone": True, "concave": True}], ids=["precomputed", "on_the_fly"])
+@pytest.mark.parametrize("hints", [None, {"monotone": True, "concave": True}], ids=["tables", "on_the_fly"])
 def test_estimated_bytes_cover_what_compiling_and_a_step_allocate(hints: dict | None) -> None:
     doc = parse_document(grid_document(points=300, shocks=3, hints=hints))
     compile_grid(doc)  # kernels compiled or loaded outside the measurement
@@ -115,8 +115,8 @@ def test_tabular_documents_are_sized_from_their_shapes() -> None:
                   "transition": transition.tolist()},
     }
     size = estimate(parse_document(raw))
-    assert size["kind"] == "tabular" and size["regime"] == "tabular"
-    assert (size["states"], size["choices"], size["pairs"]) == (S, A, S * A)
+    assert size["kind"] == "tabular" and size["reward_storage"] == "tables"
+    assert (size["points"], size["choice_points"], size["pairs"]) == (S, A, S * A)
     assert size["bytes"] >= S * A * S * 8
     assert size["seconds"] > 0
 

@@ -1,66 +1,26 @@
-"""The grid compiler: semantics, exactness of the searches, regimes, hints and diagnostics."""
+"""The grid compiler: semantics, exactness of the searches, reward storages, hints and diagnostics."""
 
 from __future__ import annotations
 
 import math
+import pathlib
 
 import numpy as np
 import pytest
 
-from worker.document.schema import parse_document
+from tests._documents import GROWTH, LQ, TWO_CHOICES, random_values
+from tests._documents import grid_document as document
 from worker import _codegen, solve
+from worker.document import parse_document
 from worker.errors import InfeasibleModel
-from worker.gridmodel import EDGE_WARNING_SHARE, check_feasibility, compile_grid
-
-GROWTH = {
-    "params": {"alpha": 0.36, "delta": 0.08, "gamma": 2.0},
-    "states": {"k": {"min": 2.7, "max": 8.2, "points": 120}},
-    "shocks": {"z": {"ar1": {"rho": 0.9, "sigma": 0.02, "points": 3}, "transform": "exp"}},
-    "choices": {"k_next": {"next_of": "k"}},
-    "define": {"c": "z * k**alpha + (1 - delta) * k - k_next"},
-    "reward": "c**(1 - gamma) / (1 - gamma)",
-    "feasible": ["c > 0"],
-}
-"""Stochastic growth with CRRA utility (invented calibration): the workhorse model of these tests."""
-
-LQ = {
-    "params": {"a": 0.95, "b": 0.5, "q": 1.0, "r": 0.5},
-    "states": {"x": {"min": -1.0, "max": 1.0, "points": 41}},
-    "choices": {"u": {"min": -3.0, "max": 3.0, "points": 61}},
-    "next": {"x": "a * x + b * u"},
-    "reward": "-(q * x**2 + r * u**2)",
-}
-"""A linear–quadratic problem on a narrow grid: many choices send x' outside it (clamped)."""
-
-TWO_CHOICES = {
-    "params": {"alpha": 0.3, "wage": 1.0},
-    "states": {"a": {"min": 0.0, "max": 4.0, "points": 25}, "h": {"min": 0.5, "max": 2.0, "points": 4}},
-    "shocks": {"e": {"markov": {"values": [0.8, 1.2], "matrix": [[0.9, 0.1], [0.2, 0.8]]}}},
-    "choices": {"a_next": {"next_of": "a"}, "work": {"values": [0.0, 0.5, 1.0]}},
-    "next": {"h": "0.9 * h + 0.3 * work"},
-    "define": {"income": "wage * e * h * work + 1.02 * a", "c": "income + 0.2 - a_next"},
-    "reward": "log(c) - 0.5 * work**2",
-    "feasible": ["c > 0"],
-}
-"""A household (invented): savings by next_of, a work menu, and human capital h that moves by
-interpolation — several states, several choices, shocks and interpolation at once."""
-
-
-def document(model: dict, *, discount: float = 0.95, hints: dict | None = None, **solver: object) -> dict:
-    model = {"kind": "grid", **model}
-    if hints is not None:
-        model["hints"] = hints
-    return {"version": 1, "discount": discount, "model": model, "solver": {"tolerance": 1e-8, **solver}}
+from worker.feasibility import check_feasibility
+from worker.griddiagnostics import EDGE_WARNING_SHARE
+from worker.gridmodel import compile_grid
 
 
 def compiled(model: dict, **kwargs: object):
     hints = kwargs.pop("hints", None)
     return compile_grid(parse_document(document(model, hints=hints)), **kwargs)
-
-
-def random_values(problem, seed: int = 0) -> np.ndarray:
-    """A value function that is neither concave nor monotone: the searches must not rely on shape."""
-    return np.random.default_rng(seed).normal(scale=3.0, size=problem.n)
 
 
 def test_value_array_layout_and_axes() -> None:
@@ -78,7 +38,7 @@ def test_value_array_layout_and_axes() -> None:
 
 @pytest.mark.parametrize("model", [GROWTH, LQ, TWO_CHOICES], ids=["growth", "lq", "two-choices"])
 def test_block_search_equals_exhaustive_search(model: dict) -> None:
-    problem = compiled(model, regime="on_the_fly")
+    problem = compiled(model, reward_storage="on_the_fly")
     rng = np.random.default_rng(1)
     for trial in range(3):
         v = random_values(problem, seed=trial)
@@ -90,7 +50,7 @@ def test_block_search_equals_exhaustive_search(model: dict) -> None:
 
 
 def test_block_search_equals_exhaustive_search_at_a_converged_value() -> None:
-    problem = compiled(GROWTH, regime="on_the_fly")
+    problem = compiled(GROWTH, reward_storage="on_the_fly")
     result = solve(document(GROWTH))
     v = np.array(result["value"]).reshape(-1)
     exhaustive = problem.bellman_step(v, exhaustive=True)
@@ -99,9 +59,9 @@ def test_block_search_equals_exhaustive_search_at_a_converged_value() -> None:
 
 
 @pytest.mark.parametrize("model", [GROWTH, LQ, TWO_CHOICES], ids=["growth", "lq", "two-choices"])
-def test_precomputed_and_on_the_fly_regimes_agree(model: dict) -> None:
-    table = compiled(model, regime="precomputed")
-    pointwise = compiled(model, regime="on_the_fly")
+def test_tables_and_on_the_fly_reward_storages_agree(model: dict) -> None:
+    table = compiled(model, reward_storage="tables")
+    pointwise = compiled(model, reward_storage="on_the_fly")
     v = random_values(table)
     tv_table, policy_table = table.bellman_step(v)
     tv_point, policy_point = pointwise.bellman_step(v)
@@ -114,16 +74,16 @@ def test_precomputed_and_on_the_fly_regimes_agree(model: dict) -> None:
     assert (table.policy_matrix(policy_table) != pointwise.policy_matrix(policy_table)).nnz == 0
 
 
-def test_regimes_agree_bit_for_bit_without_transcendental_functions() -> None:
-    table = compiled(LQ, regime="precomputed")
-    pointwise = compiled(LQ, regime="on_the_fly")
+def test_reward_storages_agree_bit_for_bit_without_transcendental_functions() -> None:
+    table = compiled(LQ, reward_storage="tables")
+    pointwise = compiled(LQ, reward_storage="on_the_fly")
     v = random_values(table)
     assert np.array_equal(table.bellman_step(v)[0], pointwise.bellman_step(v)[0])
 
 
 def test_fixed_policy_operators_match_the_bellman_step() -> None:
-    for regime in ("precomputed", "on_the_fly"):
-        problem = compiled(TWO_CHOICES, regime=regime)
+    for storage in ("tables", "on_the_fly"):
+        problem = compiled(TWO_CHOICES, reward_storage=storage)
         v = random_values(problem)
         tv, policy = problem.bellman_step(v)
         assert np.array_equal(problem.policy_step(v, policy), tv)
@@ -133,7 +93,7 @@ def test_fixed_policy_operators_match_the_bellman_step() -> None:
 
 
 def test_expected_continuation_is_the_chain_times_tomorrows_values() -> None:
-    problem = compiled(GROWTH, regime="precomputed")
+    problem = compiled(GROWTH, reward_storage="tables")
     v = random_values(problem)
     policy = np.zeros(problem.n, dtype=np.int64)  # everyone picks the lowest k'
     P = problem._data.transition
@@ -207,9 +167,9 @@ def test_hints_are_ignored_with_a_note_when_they_cannot_apply() -> None:
     assert grid_choice.hints.concave and not grid_choice.hints.monotone
 
 
-@pytest.mark.parametrize("regime", ["precomputed", "on_the_fly"])
-def test_clamped_next_states_are_counted(regime: str) -> None:
-    problem = compiled(LQ, regime=regime)
+@pytest.mark.parametrize("storage", ["tables", "on_the_fly"])
+def test_clamped_next_states_are_counted(storage: str) -> None:
+    problem = compiled(LQ, reward_storage=storage)
     result = solve(document(LQ))
     policy = np.array(result["policy_index"]["u"]).reshape(-1)
     diagnostics = problem.diagnostics(policy)["clamped_next"]
@@ -248,10 +208,10 @@ def test_states_without_an_allowed_choice_are_named() -> None:
     assert first["path"] == "model.feasible"
     assert "at k = " in first["message"] and ", z = " in first["message"]
     assert "`c > 0` and `k_next >= 1.2 * k`" in first["message"]
-    assert "more of the 360 states" in caught.value.errors[-1]["message"]
-    for regime in ("precomputed", "on_the_fly"):
+    assert "more of the 360 points" in caught.value.errors[-1]["message"]
+    for storage in ("tables", "on_the_fly"):
         with pytest.raises(InfeasibleModel):
-            compile_grid(doc, regime=regime)
+            compile_grid(doc, reward_storage=storage)
 
 
 def test_feasibility_names_the_reward_when_only_non_finite_rewards_remain() -> None:
@@ -276,7 +236,7 @@ def test_feasibility_check_can_stop_at_its_budget() -> None:
 def test_nan_rewards_are_excluded_and_reported() -> None:
     # log(c) without a feasibility condition: NaN wherever c < 0, -inf at c = 0.
     model = {**GROWTH, "reward": "log(c)", "feasible": []}
-    problem = compiled(model, regime="precomputed")
+    problem = compiled(model, reward_storage="tables")
     result = solve(document(model))
     assert np.isfinite(np.array(result["value"])).all()
     k = np.linspace(2.7, 8.2, 120)
@@ -301,9 +261,9 @@ def test_describe_policy_nests_values_and_indices() -> None:
 
 
 def test_params_are_runtime_numbers_so_a_sweep_reuses_the_kernels() -> None:
-    base = compiled(GROWTH, regime="on_the_fly")
+    base = compiled(GROWTH, reward_storage="on_the_fly")
     other = compiled({**GROWTH, "params": {"alpha": 0.3, "delta": 0.1, "gamma": 3.0},
-                      "states": {"k": {"min": 1.0, "max": 9.0, "points": 77}}}, regime="on_the_fly")
+                      "states": {"k": {"min": 1.0, "max": 9.0, "points": 77}}}, reward_storage="on_the_fly")
     assert other._kernels is base._kernels
 
 
@@ -315,8 +275,8 @@ def test_generated_source_carries_no_document_text() -> None:
         "define": {"getattr": "system * exec - popen"},
         "reward": "-getattr**2 + __class__",
     }
-    problem = compiled(sneaky, regime="on_the_fly")
-    source = open(problem._kernels.__file__).read()
+    problem = compiled(sneaky, reward_storage="on_the_fly")
+    source = pathlib.Path(problem._kernels.__file__).read_text()
     for name in ("system", "__class__", "exec", "popen", "getattr"):
         assert name not in source.replace("def ", "").replace("import", ""), name
 
@@ -327,40 +287,40 @@ def test_kernels_live_in_the_cache_folder_under_their_hash(tmp_path, monkeypatch
     source = _codegen.module_source(data_layout, None)
     module = _codegen.load(source + "\n# a test's own copy\n")
     assert module.__file__.startswith(str(tmp_path))
-    assert open(module.__file__).read().startswith("# fixq generated kernels")
+    assert pathlib.Path(module.__file__).read_text().startswith("# fixq generated kernels")
     assert _codegen.load(source + "\n# a test's own copy\n") is module
 
 
-def test_regime_follows_the_estimate_and_the_memory_cap() -> None:
+def test_reward_storage_follows_the_estimate_and_the_memory_cap() -> None:
     doc = parse_document(document(GROWTH))
-    assert compile_grid(doc).regime == "precomputed"
-    assert compile_grid(doc, limits={"max_bytes": 1000}).regime == "on_the_fly"
+    assert compile_grid(doc).reward_storage == "tables"
+    assert compile_grid(doc, limits={"max_bytes": 1000}).reward_storage == "on_the_fly"
     hinted = parse_document(document(GROWTH, hints={"monotone": True, "concave": True}))
-    assert compile_grid(hinted).regime == "on_the_fly"
+    assert compile_grid(hinted).reward_storage == "on_the_fly"
 
 
 def test_tables_are_never_built_on_the_fly() -> None:
-    problem = compiled(GROWTH, regime="on_the_fly")
+    problem = compiled(GROWTH, reward_storage="on_the_fly")
     assert all(array.size <= max(problem._data.n_grid, problem._data.n_choices, 3 * 3 + 1) * 8 for array in problem._ctx)
     assert math.prod(problem.shape) * problem._data.n_choices > max(array.size for array in problem._ctx)
 
 
-def test_fused_sweeps_match_the_sparse_matrix_and_split_calls_give_the_same_bits() -> None:
-    # Reference: scipy's sparse P_σ (policy_matrix) applied sweep by sweep, v ← r_σ + β P_σ v.
-    problem = compiled(TWO_CHOICES, regime="on_the_fly")
+def test_fused_evaluation_steps_match_the_sparse_matrix_and_split_calls_give_the_same_bits() -> None:
+    # Reference: scipy's sparse P_σ (policy_matrix) applied step by step, v ← r_σ + β P_σ v.
+    problem = compiled(TWO_CHOICES, reward_storage="on_the_fly")
     v = random_values(problem)
     _, policy = problem.bellman_step(v)
     matrix, reward = problem.policy_matrix(policy), problem.policy_reward(policy)
     expected = v.copy()
     for _ in range(7):
         expected = reward + problem.discount * (matrix @ expected)
-    whole, done, _ = problem.policy_sweeps(v, policy, 7)
+    whole, done, _ = problem.policy_steps(v, policy, 7)
     assert done == 7
     np.testing.assert_allclose(whole, expected, rtol=1e-12, atol=1e-12)
-    first, _, _ = problem.policy_sweeps(v, policy, 3)
-    split, _, _ = problem.policy_sweeps(first, policy, 4)
+    first, _, _ = problem.policy_steps(v, policy, 3)
+    split, _, _ = problem.policy_steps(first, policy, 4)
     assert np.array_equal(split, whole)
-    settled, done, span = problem.policy_sweeps(v, policy, 10_000, 1e-9)
+    settled, done, span = problem.policy_steps(v, policy, 10_000, 1e-9)
     assert done < 10_000 and span <= 1e-9
     step = problem.policy_step(settled, policy) - settled
     assert float(step.max() - step.min()) <= 1e-9 * (1 + 1e-6)
@@ -385,10 +345,10 @@ class _Store:
             raise RuntimeError("crash")
 
 
-def test_grid_howard_resumes_bit_for_bit_from_checkpoints_between_sweep_blocks() -> None:
+def test_grid_howard_resumes_bit_for_bit_from_checkpoints_between_evaluation_blocks() -> None:
     from worker.solvers import METHODS
 
-    problem = compiled(GROWTH, regime="on_the_fly")
+    problem = compiled(GROWTH, reward_storage="on_the_fly")
     options = dict(tolerance=1e-9, evaluation_steps=40, fingerprint="grid", max_iterations=10_000)
     whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
     counting = _Store()
@@ -399,19 +359,19 @@ def test_grid_howard_resumes_bit_for_bit_from_checkpoints_between_sweep_blocks()
         store = _Store(crash_after=max(1, crash_after))
         with pytest.raises(RuntimeError):
             METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, **options)
-        mid_phase |= store.state["sweeps_done"] is not None
+        mid_phase |= store.state["evaluation_steps_done"] is not None
         resumed = METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, checkpoint_s=0.0, **options)
         np.testing.assert_array_equal(resumed.value, whole.value)
         np.testing.assert_array_equal(resumed.policy, whole.policy)
         assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
-    assert mid_phase, "some crash points fall between sweep blocks of a phase"
+    assert mid_phase, "some crash points fall between evaluation blocks of a phase"
     assert whole.status == "converged" and whole.error_bound <= 1e-9
 
 
 def test_exact_step_after_a_hinted_step_equals_exhaustive_search() -> None:
     # The exact step reuses the policy of a hinted step at the same v as its seed; a seed never
     # changes the answer, at that v or at another one (the reference is the plain scan of every choice).
-    problem = compiled(GROWTH, regime="on_the_fly", hints={"monotone": True, "concave": True})
+    problem = compiled(GROWTH, reward_storage="on_the_fly", hints={"monotone": True, "concave": True})
     assert problem.hints_active
     v = random_values(problem, seed=3)
     other = random_values(problem, seed=4)

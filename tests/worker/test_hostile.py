@@ -222,7 +222,7 @@ def test_billion_point_grids_are_too_large():
     error = refuse(document, TooLarge)
     assert paths(error) == ["model"]
     assert "MiB" in error.errors[0]["message"]
-    assert error.context["estimate"]["states"] >= 10**10
+    assert error.context["estimate"]["points"] >= 10**10
 
 
 def test_a_huge_choice_grid_is_too_large():

@@ -104,7 +104,7 @@ def test_stationary_report_shapes_and_means():
     pi = eig_stationary(matrix)
     np.testing.assert_allclose(out["distribution"], pi, atol=1e-10)
     assert isinstance(out["distribution"], list) and len(out["distribution"]) == 6
-    assert out["means"]["state"] == pytest.approx(pi @ np.arange(6), abs=1e-10)
+    assert out["means"]["state_label"] == pytest.approx(pi @ np.arange(6), abs=1e-10)
     assert out["means"]["action"] == 0.0
     assert out["method"] == "direct" and out["warnings"] == []
 
@@ -123,12 +123,12 @@ def test_simulated_means_converge_to_stationary_means():
     sd = np.sqrt(pi @ (states - mean) ** 2)
     paths = 20_000
     out = simulate_report(problem, policy, spec(periods=30, paths=paths, seed=11))
-    summary = out["summary"]["state"]
+    summary = out["summary"]["state_label"]
     assert abs(summary["mean"] - mean) <= 5 * sd / np.sqrt(paths)
     assert summary["std"] == pytest.approx(sd, rel=0.02)  # common practice: a loose check of the spread
     quantiles = [summary[f"p{p}"] for p in (5, 25, 50, 75, 95)]
     assert quantiles == sorted(quantiles)
-    assert len(out["first_path"]["state"]) == 30
+    assert len(out["first_path"]["state_label"]) == 30
 
 
 def test_one_step_from_a_given_start_follows_the_row():
@@ -141,8 +141,8 @@ def test_one_step_from_a_given_start_follows_the_row():
     mean_next = row @ np.arange(6)
     sd_next = np.sqrt(row @ (np.arange(6) - mean_next) ** 2)
     # The summary averages period 0 (always state 2) and period 1.
-    assert abs(2 * out["summary"]["state"]["mean"] - 2 - mean_next) <= 5 * sd_next / np.sqrt(paths)
-    assert out["first_path"]["state"][0] == "s2"
+    assert abs(2 * out["summary"]["state_label"]["mean"] - 2 - mean_next) <= 5 * sd_next / np.sqrt(paths)
+    assert out["first_path"]["state_label"][0] == "s2"
     assert out["first_path"]["action"] == [0, 0]
 
 
@@ -151,7 +151,7 @@ def test_simulation_is_reproducible_and_follows_a_deterministic_chain():
     problem = chain_problem(cycle)
     policy = np.zeros(5, dtype=np.int64)
     out = simulate_report(problem, policy, spec(periods=7, paths=3, seed=1, start=3))
-    assert out["first_path"]["state"] == [3, 4, 0, 1, 2, 3, 4]
+    assert out["first_path"]["state_label"] == [3, 4, 0, 1, 2, 3, 4]
     again = simulate_report(problem, policy, spec(periods=7, paths=3, seed=1, start=3))
     assert again == out
     matrix = random_chain(6, 10)
@@ -181,6 +181,6 @@ class ExplicitZeros:
 def test_zero_probability_entries_are_never_drawn():
     problem = ExplicitZeros(chain_problem(np.full((6, 6), 1 / 6)))
     out = simulate_report(problem, np.zeros(6, dtype=np.int64), spec(periods=6, paths=1000, seed=0, start=0))
-    assert out["first_path"]["state"] == [0, 2, 4, 0, 2, 4]
-    assert out["summary"]["state"]["mean"] == pytest.approx(2.0)
-    assert out["summary"]["state"]["std"] == pytest.approx(np.sqrt(8 / 3))
+    assert out["first_path"]["state_label"] == [0, 2, 4, 0, 2, 4]
+    assert out["summary"]["state_label"]["mean"] == pytest.approx(2.0)
+    assert out["summary"]["state_label"]["std"] == pytest.approx(np.sqrt(8 / 3))

@@ -2,14 +2,16 @@
 
 from __future__ import annotations
 
+import pathlib
+
 import numpy as np
 import pytest
 
-from worker.document.schema import parse_document
-from worker import _codegen, _slopes, expressions
+from tests._documents import GROWTH, random_values
+from tests._documents import grid_document as document
+from worker import _slopes, expressions
+from worker.document import parse_document
 from worker.gridmodel import compile_grid
-
-from test_gridmodel import GROWTH, document, random_values
 
 
 def _expression(text: str) -> expressions.Expression:
@@ -18,7 +20,7 @@ def _expression(text: str) -> expressions.Expression:
 
 def _derivative_values(text: str, x: np.ndarray, env: dict[str, float]) -> np.ndarray:
     tree = _slopes.derivative(_expression(text).tree, "x", {})
-    return np.broadcast_to(expressions.evaluate(_codegen._as_expression(tree), {**env, "x": x}), x.shape)
+    return np.broadcast_to(expressions.evaluate(expressions.Expression.from_tree(tree), {**env, "x": x}), x.shape)
 
 
 SMOOTH = [
@@ -61,7 +63,7 @@ def test_kinks_give_the_derivative_of_the_winning_branch(text: str) -> None:
 def test_defines_chain_through_their_derivative_names() -> None:
     # d/dx of y * y with y = 3 x + 1 is 2 y · y' = 2 (3x + 1) · 3.
     tree = _slopes.derivative(_expression("y * y").tree, "x", {"y": True})
-    value = expressions.evaluate(_codegen._as_expression(tree), {"y": 4.0, _slopes.prime("y"): 3.0})
+    value = expressions.evaluate(expressions.Expression.from_tree(tree), {"y": 4.0, _slopes.prime("y"): 3.0})
     assert float(value) == 24.0
 
 
@@ -77,8 +79,8 @@ def test_constant_parts_have_no_derivative() -> None:
 
 
 def _source(model: dict, hints: dict | None = None) -> str:
-    problem = compile_grid(parse_document(document(model, hints=hints)), regime="on_the_fly")
-    return open(problem._kernels.__file__).read()
+    problem = compile_grid(parse_document(document(model, hints=hints)), reward_storage="on_the_fly")
+    return pathlib.Path(problem._kernels.__file__).read_text()
 
 
 def test_the_slope_bound_is_written_where_it_applies_and_only_there() -> None:
@@ -110,10 +112,10 @@ TWO_SAVINGS = {
 
 @pytest.mark.parametrize("model", [GROWTH, NONUNIFORM, TWO_SAVINGS], ids=["growth", "nonuniform", "two-savings"])
 def test_block_search_with_slope_bounds_equals_exhaustive_search(model: dict) -> None:
-    problem = compile_grid(parse_document(document(model)), regime="on_the_fly")
+    problem = compile_grid(parse_document(document(model)), reward_storage="on_the_fly")
     assert problem._kernels.SLOPE, "the search under test uses the slope bound"
     rng = np.random.default_rng(7)
-    exact = compile_grid(parse_document(document(model)), regime="on_the_fly")
+    exact = compile_grid(parse_document(document(model)), reward_storage="on_the_fly")
     from worker import solve
 
     converged = np.array(solve(document(model))["value"]).reshape(-1)

@@ -62,11 +62,11 @@ def test_result_document_has_every_part_and_is_plain_json():
     document = machine_shop()
     result = solve(copy.deepcopy(document))
     assert set(result) == {
-        "status", "method", "error_bound", "iterations", "evaluation_steps", "seconds", "axes", "value",
+        "status", "method", "error_bound", "iterations", "evaluation_steps", "linear_solves", "seconds", "axes", "value",
         "policy", "policy_index", "log", "diagnostics", "stationary", "simulation",
     }
     assert result["status"] == "converged" and result["method"] == "howard"
-    assert result["axes"] == {"state": ["idle", "busy", "worn"]}
+    assert result["axes"] == {"state_label": ["idle", "busy", "worn"]}
     assert set(result["policy"]) == {"action"} and set(result["policy_index"]) == {"action"}
     assert all(label in ("run", "service") for label in result["policy"]["action"])
     diagnostics = result["diagnostics"]
@@ -204,11 +204,11 @@ def test_reports_through_solve():
     stationary = result["stationary"]
     assert len(stationary["distribution"]) == 3
     assert math.isclose(sum(stationary["distribution"]), 1.0, abs_tol=1e-12)
-    assert set(stationary["means"]) == {"state", "action"}
+    assert set(stationary["means"]) == {"state_label", "action"}
     simulation = result["simulation"]
-    assert simulation["first_path"]["state"][0] == "worn"
-    assert set(simulation["summary"]) == {"state", "action"}
-    assert set(simulation["summary"]["state"]) == {"mean", "std", "p5", "p25", "p50", "p75", "p95"}
+    assert simulation["first_path"]["state_label"][0] == "worn"
+    assert set(simulation["summary"]) == {"state_label", "action"}
+    assert set(simulation["summary"]["state_label"]) == {"mean", "std", "p5", "p25", "p50", "p75", "p95"}
     json.dumps(result, allow_nan=False)
 
 
@@ -246,7 +246,6 @@ def growth_document(points: int = 300) -> dict:
 
 
 def test_a_grid_model_matches_the_closed_form():
-    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
     result = solve(growth_document())
     assert result["status"] == "converged"
     k = np.array(result["axes"]["k"])
@@ -261,7 +260,6 @@ def test_a_grid_model_matches_the_closed_form():
 
 
 def test_grid_hints_that_hold_give_the_same_answer():
-    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
     plain = solve(growth_document(120))
     hinted_document = growth_document(120)
     hinted_document["model"]["hints"] = {"monotone": True, "concave": True}
@@ -272,8 +270,26 @@ def test_grid_hints_that_hold_give_the_same_answer():
     assert gap <= hinted["error_bound"] + plain["error_bound"]
 
 
+@pytest.mark.parametrize("method", ["value_iteration", "howard"])
+def test_a_hinted_grid_solve_reports_its_verification_apart_from_the_log(method):
+    document = growth_document(120)
+    document["model"]["hints"] = {"monotone": True, "concave": True}
+    document["solver"] = {"method": method, "tolerance": 1e-7}
+    result = solve(document)
+    assert result["status"] == "converged"
+    log, check = result["log"], result["diagnostics"]["verification"]
+    # The verification re-applies the last iteration's Bellman step without hints: it is not an
+    # iteration, so the log neither counts nor repeats it, and its last ratio is not 1.
+    assert len(log) == result["iterations"] and log[-1]["iteration"] == result["iterations"]
+    assert log[-1]["distance"] < log[-2]["distance"]
+    assert check["hints_held"] is True and check["policy_changes"] == 0
+    assert check["distance"] == pytest.approx(log[-1]["distance"], rel=1e-9)
+    assert result["error_bound"] == check["error_bound"] <= 1e-7
+    plain = solve({**document, "model": {**document["model"], "hints": {}}})
+    assert plain["diagnostics"]["verification"] is None
+
+
 def test_a_broken_grid_hint_is_reported_and_solved_without_it():
-    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
     # Invented: tomorrow's best k' = 0.55 − k falls as k rises, so "monotone" is false.
     document = growth_document(120)
     document["model"]["reward"] = "-(k_next - (0.55 - k))**2"
@@ -291,7 +307,6 @@ def test_a_broken_grid_hint_is_reported_and_solved_without_it():
 
 
 def test_a_grid_warm_start_is_carried_onto_a_finer_grid():
-    pytest.importorskip("worker.gridmodel", reason="waiting for the grid compiler (worker/gridmodel.py)")
     coarse = growth_document(60)
     coarse["solver"] = {"method": "value_iteration", "tolerance": 1e-6}
     earlier = solve(coarse)

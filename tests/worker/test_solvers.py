@@ -162,7 +162,7 @@ def test_observed_rate_is_the_geometric_mean_of_the_last_ratios():
     assert observed_rate([{"distance": 1e-300}, {"distance": 1e-301}], scale=1.0) is None
 
 
-def test_howard_and_policy_iteration_need_fewer_improvements():
+def test_howard_and_policy_iteration_need_fewer_iterations():
     problem = random_mdp(21, 50, 4, 0.99, 2)
     counts = {name: method(problem, np.zeros(problem.n), tolerance=1e-8).iterations for name, method in METHODS.items()}
     assert counts["howard"] < counts["value_iteration"]
@@ -174,7 +174,8 @@ def test_policy_iteration_stops_on_a_stable_policy():
     outcome = METHODS["policy_iteration"](problem, np.zeros(problem.n), tolerance=1e-8)
     assert outcome.status == "converged"
     assert outcome.log[-1]["policy_changes"] == 0
-    assert outcome.evaluation_steps == outcome.iterations - 1
+    assert outcome.linear_solves == outcome.iterations - 1
+    assert outcome.evaluation_steps == 0
 
 
 def test_statuses_for_max_iterations_and_time_limit():
@@ -252,15 +253,16 @@ def test_checkpoint_resume_gives_the_same_answer_and_log(name):
         with pytest.raises(Crash):
             method(problem, np.zeros(problem.n), checkpoint=store, **options)
         at = store.state["iteration"]
-        resumed_mid_phase |= store.state["sweeps_done"] is not None
+        resumed_mid_phase |= store.state["evaluation_steps_done"] is not None
         resumed = method(problem, np.zeros(problem.n), checkpoint=store, **options)
         assert resumed.resumed_from_iteration == at
         np.testing.assert_array_equal(resumed.value, whole.value)
         np.testing.assert_array_equal(resumed.policy, whole.policy)
         assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
+        assert resumed.linear_solves == whole.linear_solves
         assert [e["iteration"] for e in resumed.log] == list(range(1, whole.iterations + 1))
         assert strip(resumed.log) == strip(whole.log)
-    assert resumed_mid_phase == (name == "howard"), "Howard checkpoints between sweeps too"
+    assert resumed_mid_phase == (name == "howard"), "Howard checkpoints between evaluation steps too"
 
 
 def test_checkpoint_of_another_document_is_ignored():
@@ -296,7 +298,7 @@ def test_stop_flag_raises_canceled_with_iteration_and_log():
     assert [e["iteration"] for e in caught.value.context["log"]] == [1, 2, 3]
 
 
-def test_stop_flag_is_polled_between_evaluation_sweeps():
+def test_stop_flag_is_polled_between_evaluation_steps():
     problem = random_mdp(30, 200, 3, 0.999, 3)
     seen: list[dict] = []
     started = time.perf_counter()
@@ -378,11 +380,12 @@ def test_a_hint_that_holds_is_verified_once_and_gives_no_warning():
     outcome = METHODS["value_iteration"](problem, np.zeros(inner.n), tolerance=1e-8)
     assert outcome.warnings == []
     assert problem.calls["full"] == 1
-    assert problem.calls["restricted"] == outcome.iterations - 1
+    # The verification is the one unrestricted step, and not an iteration: every iteration was hinted.
+    assert problem.calls["restricted"] == outcome.iterations
     assert np.abs(outcome.value - exact).max() <= outcome.error_bound
 
 
-def test_with_hints_the_last_step_before_max_iterations_is_unrestricted():
+def test_with_hints_the_step_that_ends_at_max_iterations_is_unrestricted():
     inner = fully_allowed(33, 15, 3, 0.95)
     problem = HintedProblem(inner, hinted=[0, 1])
     outcome = METHODS["value_iteration"](problem, np.zeros(inner.n), tolerance=1e-30, max_iterations=5)
@@ -400,7 +403,7 @@ def test_outcome_is_one_result_type_for_every_method():
 
 
 def test_methods_match_the_schema_names():
-    from worker.document.schema import METHOD_NAMES
+    from worker.document import METHOD_NAMES
 
     assert set(METHODS) == set(METHOD_NAMES)
 
@@ -416,3 +419,60 @@ def test_a_large_sparse_problem_solves():
     assert outcome.status == "converged"
     tv, _ = problem.bellman_step(outcome.value)
     assert np.abs(tv - outcome.value).max() <= (1 + 0.95) * outcome.error_bound
+
+
+@pytest.mark.parametrize("name", sorted(METHODS))
+def test_the_hint_verification_is_reported_apart_and_is_not_an_iteration(name):
+    inner = fully_allowed(35, 25, 3, 0.9)
+    problem = HintedProblem(inner, hinted=[0, 1, 2])
+    seen: list[dict] = []
+    outcome = METHODS[name](problem, np.zeros(inner.n), tolerance=1e-8, on_progress=seen.append)
+    assert outcome.status == "converged"
+    assert len(outcome.log) == outcome.iterations == problem.calls["restricted"] and seen == outcome.log
+    assert [e["iteration"] for e in outcome.log] == list(range(1, outcome.iterations + 1))
+    check = outcome.verification
+    assert set(check) == {"distance", "error_bound", "policy_changes", "seconds", "hints_held"}
+    assert check["hints_held"] is True and check["policy_changes"] == 0
+    # The verification re-applies the last iteration's step without hints: same distance, and the
+    # final error bound is its own (certified without hints), yet the log does not repeat it.
+    assert check["distance"] == pytest.approx(outcome.log[-1]["distance"], rel=1e-12)
+    assert outcome.error_bound == check["error_bound"]
+    assert check["seconds"] >= outcome.log[-1]["seconds"]
+    if len(outcome.log) >= 2 and name != "policy_iteration":
+        assert outcome.log[-1]["distance"] < outcome.log[-2]["distance"]
+
+
+def test_a_broken_hint_verification_becomes_the_next_iteration():
+    inner = fully_allowed(31, 25, 3, 0.9)
+    problem = HintedProblem(inner, hinted=[0, 1])
+    outcome = METHODS["value_iteration"](problem, np.zeros(inner.n), tolerance=1e-8)
+    assert outcome.verification is not None and outcome.verification["hints_held"] is False
+    hinted = problem.calls["restricted"]
+    # Hinted iterations, then the verification (the solve went on from it), then plain iterations.
+    assert outcome.iterations == len(outcome.log) == problem.calls["full"] + hinted
+    assert outcome.log[hinted]["distance"] == outcome.verification["distance"]
+
+
+def test_without_hints_there_is_no_verification():
+    problem = random_mdp(36, 10, 2, 0.9, None)
+    assert all(method(problem, np.zeros(problem.n)).verification is None for method in METHODS.values())
+
+
+def test_a_hinted_solve_resumes_from_checkpoints_with_the_same_log_and_verification():
+    inner = fully_allowed(37, 25, 3, 0.97)
+    options = dict(tolerance=1e-10, evaluation_steps=6, fingerprint="hinted", checkpoint_s=0.0)
+    whole = METHODS["howard"](HintedProblem(inner, hinted=[0, 1]), np.zeros(inner.n), **options)
+    counting = MemoryCheckpoint()
+    METHODS["howard"](HintedProblem(inner, hinted=[0, 1]), np.zeros(inner.n), checkpoint=counting, **options)
+    strip = lambda entry: {k: v for k, v in entry.items() if k != "seconds"}  # noqa: E731
+    for crash_after in range(1, len(counting.saves) + 1):
+        store = MemoryCheckpoint(crash_after=crash_after)
+        with pytest.raises(Crash):
+            METHODS["howard"](HintedProblem(inner, hinted=[0, 1]), np.zeros(inner.n), checkpoint=store, **options)
+        resumed = METHODS["howard"](HintedProblem(inner, hinted=[0, 1]), np.zeros(inner.n), checkpoint=store, **options)
+        np.testing.assert_array_equal(resumed.value, whole.value)
+        assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
+        assert [strip(e) for e in resumed.log] == [strip(e) for e in whole.log]
+        assert strip(resumed.verification) == strip(whole.verification)
+        assert resumed.warnings == whole.warnings
+

@@ -12,8 +12,8 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
-from worker.document.schema import parse_document
 from worker.arrays import encode_array
+from worker.document import parse_document
 from worker.errors import InfeasibleModel, InvalidDocument
 from worker.tabular import TabularProblem, compile_tabular
 
@@ -151,9 +151,9 @@ def test_policy_methods_select_rows():
     labels, indices = problem.describe_policy(policy)
     assert indices == {"action": policy.tolist()}
     assert labels == {"action": [["low", "mid", "high"][i] for i in policy]}
-    assert problem.axes == {"state": [f"s{i}" for i in range(10)]}
+    assert problem.axes == {"state_label": [f"s{i}" for i in range(10)]}
     assert problem.shape == (10,) and problem.n == 10 and not problem.hints_active
-    np.testing.assert_array_equal(problem.state_values()["state"], np.arange(10.0))
+    np.testing.assert_array_equal(problem.state_values()["state_label"], np.arange(10.0))
     np.testing.assert_array_equal(problem.choice_values(policy)["action"], policy.astype(float))
     assert problem.diagnostics(policy) == {}
 
@@ -166,9 +166,9 @@ def test_labels_from_the_document():
     doc_with_labels["model"]["states"] = ["idle", "busy"]
     doc_with_labels["model"]["actions"] = ["run", "service"]
     problem = compile_tabular(parse_document(doc_with_labels))
-    assert problem.axes == {"state": ["idle", "busy"]}
+    assert problem.axes == {"state_label": ["idle", "busy"]}
     assert problem.describe_policy(np.array([1, 0]))[0] == {"action": ["service", "run"]}
-    assert compile_tabular(doc).axes == {"state": [0, 1]}
+    assert compile_tabular(doc).axes == {"state_label": [0, 1]}
 
 
 def test_a_large_sparse_document_compiles_without_entry_loops():

@@ -29,7 +29,7 @@ jq '.label = "machine shop, base case (invented scenario)" | .tags += ["curl"]' 
 
 # 2. Validate and estimate without queueing anything.
 fixq -X POST -H "Content-Type: application/json" --data-binary @"$out/problem.edited.json" \
-    "$url/v1/check" | jq -c '{states: .estimate.states, choices: .estimate.choices}'
+    "$url/v1/check" | jq -c '{points: .estimate.points, choice_points: .estimate.choice_points}'
 
 # 3. Submit. The Idempotency-Key makes a retried POST return the same job.
 job=$(fixq -X POST -H "Content-Type: application/json" -H "Idempotency-Key: machine-shop-base-1" \
@@ -45,10 +45,10 @@ done
 echo "job $job is $state"
 [ "$state" = done ] || exit 1
 
-# 5. The result: status and bound, the policy per state, the long CSV table, a plot, the log.
+# 5. The result: status and error bound, the policy per state, the long CSV table, a plot, the log.
 fixq "$url/v1/jobs/$job/result" >"$out/result.json"
 jq -r '"\(.status): \(.iterations) iterations, error bound \(.error_bound)"' "$out/result.json"
-jq -r '[.axes.state, .policy.action] | transpose[] | "\(.[0])\t\(.[1])"' "$out/result.json"
+jq -r '[.axes.state_label, .policy.action] | transpose[] | "\(.[0])\t\(.[1])"' "$out/result.json"
 fixq "$url/v1/jobs/$job/result?format=csv" >"$out/result.csv"
 fixq "$url/v1/jobs/$job/plots/policy.png" >"$out/policy.png"
 fixq "$url/v1/jobs/$job/log" | jq -c '.data[-1]'

@@ -44,7 +44,7 @@ while job.state in ("queued", "running")
 end
 job.state == "done" || error("job $(job.id) ended $(job.state)")
 
-# 4. The result: axes in array-axis order (states, then shocks), so
+# 4. The result: axes in array-axis order (state variables, then shocks), so
 #    policy.assets_next is a vector (over assets) of vectors (over income).
 result = fixq("GET", "/v1/jobs/$(job.id)/result")
 assets = Float64.(result.axes.assets)

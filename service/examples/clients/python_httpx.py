@@ -6,7 +6,7 @@ Tested: the fixq test suite runs this exact script against a live server.
 
 It fetches the bundled household-saving example (an invented scenario),
 changes the interest rate, submits it, waits for the job, and prints the
-saving rule as a table: one row per asset level, one column per income state.
+saving rule as a table: one row per asset level, one column per income value.
 FIXQ_KEY may be left unset when the server runs with auth off.
 """
 
@@ -58,7 +58,7 @@ def main() -> None:
             sys.exit(f"job {job['id']} ended {job['state']}: {job.get('error')}")
         result = checked(client.get(f"/v1/jobs/{job['id']}/result"))
 
-    # axes come in array-axis order (states, then shocks): the policy is (assets, income).
+    # axes come in array-axis order (state variables, then shocks): the policy is (assets, income).
     assets = np.asarray(result["axes"]["assets"])
     income = np.asarray(result["axes"]["income"])
     saving_rule = np.asarray(result["policy"]["assets_next"])

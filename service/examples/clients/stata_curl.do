@@ -58,9 +58,9 @@ import delimited using "`table'", clear
 describe
 list in 1/10
 
-* The saving rule as a wide table: one column of next assets per income state.
+* The saving rule as a wide table: one column of next assets per income value.
 keep assets income assets_next
-egen income_state = group(income)
+egen income_index = group(income)
 drop income
-reshape wide assets_next, i(assets) j(income_state)
+reshape wide assets_next, i(assets) j(income_index)
 list in 1/10

@@ -1,4 +1,4 @@
-"""Tests of the problem-document schema (service/schema.py).
+"""Tests of the problem-document package (worker/document/).
 
 The example problems here (a machine shop, a plant, a farm) are invented.
 """
@@ -12,14 +12,17 @@ import math
 import re
 import subprocess
 import sys
+from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pytest
 
-from worker.document import schema
-from worker.document.schema import (
+from worker.defaults import DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS
+from worker.document import (
+    MAX_REPORTED,
     METHOD_NAMES,
+    PRIORITIES,
     GridModel,
     TabularModel,
     canonical_json,
@@ -27,6 +30,7 @@ from worker.document.schema import (
     json_schema,
     parse_document,
 )
+from worker.document.limits import DEFAULT_WIDTH
 from worker.errors import InfeasibleModel, InvalidDocument, TooLarge
 
 DELETE = object()
@@ -51,7 +55,7 @@ def machine_shop() -> dict[str, Any]:
             ],
         },
         "solver": {"method": "policy_iteration", "tolerance": 1e-8},
-        "report": {"stationary": True, "simulate": {"periods": 50, "paths": 20, "seed": 7, "start": "idle"}},
+        "report": {"stationary": True, "simulation": {"periods": 50, "paths": 20, "seed": 7, "start": "idle"}},
     }
 
 
@@ -76,7 +80,7 @@ def plant() -> dict[str, Any]:
             "hints": {"monotone": True},
         },
         "solver": {"method": "howard", "tolerance": 1e-6},
-        "report": {"simulate": {"periods": 100, "paths": 10, "start": {"capacity": 2.0, "demand": 1.0}}},
+        "report": {"simulation": {"periods": 100, "paths": 10, "start": {"capacity": 2.0, "demand": 1.0}}},
     }
 
 
@@ -141,7 +145,7 @@ def packed(array: Any, dtype: str = "float64") -> dict[str, Any]:
     return {"dtype": dtype, "shape": list(np.shape(array)), "base64": base64.b64encode(data).decode()}
 
 
-# Valid documents ----------------------------------------------------------------
+# Valid documents.
 
 
 def test_machine_shop_parses_with_arrays_and_labels() -> None:
@@ -154,12 +158,12 @@ def test_machine_shop_parses_with_arrays_and_labels() -> None:
     assert model.state_labels() == ["idle", "busy", "worn"]
     assert model.action_labels() == ["run", "service"]
     assert doc.solver.method == "policy_iteration" and doc.solver.initial == "zeros"
-    assert doc.report.simulate.start == "idle" and doc.priority == "normal"
+    assert doc.report.simulation.start == "idle" and doc.priority == "normal"
 
 
 def test_counts_become_index_labels() -> None:
     document = edit(edit(machine_shop(), "model.states", 3), "model.actions", 2.0)
-    doc = parse_document(edit(document, "report.simulate.start", 0))
+    doc = parse_document(edit(document, "report.simulation.start", 0))
     assert doc.model.state_labels() == [0, 1, 2] and doc.model.action_labels() == [0, 1]
 
 
@@ -172,10 +176,10 @@ def test_plant_parses_with_defaults_filled_in() -> None:
     assert model.shocks["demand"].ar1.method == "rouwenhorst" and model.shocks["demand"].ar1.width is None
     assert model.choices["capacity_next"].size == 60
     assert model.axis_sizes() == {"capacity": 60, "demand": 5}
-    assert doc.solver.evaluation_steps == schema.DEFAULT_EVALUATION_STEPS
-    assert doc.solver.max_iterations == schema.DEFAULT_MAX_ITERATIONS
+    assert doc.solver.evaluation_steps == DEFAULT_EVALUATION_STEPS
+    assert doc.solver.max_iterations == DEFAULT_MAX_ITERATIONS
     assert doc.solver.checkpoint_s == 30.0 and doc.solver.time_limit_s is None
-    assert doc.report.simulate.seed == 0
+    assert doc.report.simulation.seed == 0
 
 
 def test_farm_parses_with_every_shock_and_choice_form() -> None:
@@ -216,7 +220,7 @@ def test_shock_chain() -> None:
 
 def test_tauchen_width_defaults() -> None:
     doc = parse_document(edit(plant(), "model.shocks.demand.ar1.method", "tauchen"))
-    assert doc.model.shocks["demand"].ar1.width == schema.DEFAULT_WIDTH
+    assert doc.model.shocks["demand"].ar1.width == DEFAULT_WIDTH
 
 
 def test_tiny_tolerance_is_accepted() -> None:
@@ -265,8 +269,8 @@ def test_initial_values_in_value_shape_or_flat() -> None:
 
 
 def test_tabular_start_by_index_and_label() -> None:
-    parse_document(edit(machine_shop(), "report.simulate.start", 2))
-    parse_document(edit(machine_shop(), "report.simulate.start", "worn"))
+    parse_document(edit(machine_shop(), "report.simulation.start", 2))
+    parse_document(edit(machine_shop(), "report.simulation.start", "worn"))
 
 
 def test_numpy_arrays_are_accepted_from_python_callers() -> None:
@@ -274,22 +278,96 @@ def test_numpy_arrays_are_accepted_from_python_callers() -> None:
     assert np.isnan(parse_document(document).model.reward[1, 1])
 
 
-def test_examples_shipped_with_the_service_parse() -> None:
-    import pathlib
+def test_a_packed_reward_writes_not_allowed_as_nan() -> None:
+    reward = np.array([[1.0, 2.0], [3.0, np.nan], [0.0, 1.0]])
+    doc = parse_document(edit(machine_shop(), "model.reward", packed(reward)))
+    assert np.isnan(doc.model.reward[1, 1]) and not np.isnan(doc.model.reward[1, 0])
 
-    folder = pathlib.Path(schema.__file__).parent / "examples"
+
+def test_report_simulate_is_a_deprecated_alias_of_simulation() -> None:
+    current = machine_shop()
+    old = edit(current, "report", {"stationary": True, "simulate": current["report"]["simulation"]})
+    doc = parse_document(old)
+    assert doc.report.simulation.start == "idle" and doc.report.simulation.periods == 50
+    assert document_hash(old) == document_hash(current)
+    assert json.loads(canonical_json(old))["report"] == json.loads(canonical_json(current))["report"]
+    assert "simulation" in json.loads(canonical_json(old))["report"]
+    assert_fault(edit(old, "report.simulate.periods", 0), "report.simulate.periods", "at least 1")
+    assert_fault(edit(old, "report.simulate.start", 3), "report.simulate.start", "state index 3 is out of range")
+    assert_fault(edit(old, "report.simulate.perods", 3), "report.simulate.perods", "did you mean `periods`?")
+    both = edit(old, "report.simulation", current["report"]["simulation"])
+    assert_fault(both, "report.simulate", "give simulation only")
+
+
+def test_priorities_are_listed_once() -> None:
+    assert PRIORITIES == ("high", "normal", "low")
+    for priority in PRIORITIES:
+        assert parse_document(edit(plant(), "priority", priority)).priority == priority
+    assert_fault(edit(plant(), "priority", "urgent"), "priority", '"high", "normal" or "low"')
+    assert json_schema()["properties"]["priority"]["enum"] == list(PRIORITIES)
+
+
+def test_a_nan_number_inside_a_nested_reward_is_refused() -> None:
+    # Only null means "not allowed" in nested lists; a Python caller's float NaN is a mistake.
+    document = edit(machine_shop(), "model.reward[2][1]", float("nan"))
+    errors = faults(document)
+    assert errors == [{"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"}]
+    document = edit(machine_shop(), "model.reward[1]", [np.float64("nan"), None])
+    assert_fault(document, "model.reward[1][0]", "NaN is not a number here")
+
+
+@pytest.mark.parametrize("value", [math.inf, -math.inf])
+def test_infinity_inside_a_nested_reward_is_refused(value: float) -> None:
+    assert_fault(edit(machine_shop(), "model.reward[0][1]", value), "model.reward[0][1]", "infinity is not allowed here")
+
+
+def test_solve_refuses_a_nan_number_inside_a_nested_reward() -> None:
+    from worker import solve
+
+    with pytest.raises(InvalidDocument) as info:
+        solve(edit(machine_shop(), "model.reward[2][1]", float("nan")))
+    assert {"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"} in info.value.errors
+
+
+NESTED_ARRAYS = [
+    (machine_shop, "model.transition[0][0][1]"),
+    (farm, "model.states.herd.values[1]"),
+    (farm, "model.shocks.rain.markov.values[0]"),
+    (farm, "model.shocks.rain.markov.matrix[0][1]"),
+    (farm, "model.shocks.price.iid.values[2]"),
+    (farm, "model.shocks.price.iid.probs[1]"),
+    (farm, "model.choices.sell.values[1]"),
+]
+
+
+@pytest.mark.parametrize(("value", "word"), [(math.nan, "NaN"), (math.inf, "infinity"), (-math.inf, "infinity")])
+@pytest.mark.parametrize(("document", "path"), NESTED_ARRAYS)
+def test_other_nested_arrays_refuse_nan_and_infinity(document: Any, path: str, value: float, word: str) -> None:
+    assert_fault(edit(document(), path, value), path, f"{word} is not allowed here: expected a finite number")
+
+
+@pytest.mark.parametrize("value", [math.nan, math.inf])
+def test_initial_values_refuse_nan_and_infinity(value: float) -> None:
+    values = [[0.0] * 5 for _ in range(60)]
+    values[3][2] = value
+    assert_fault(edit(plant(), "solver.initial", {"values": values}), "solver.initial.values[3][2]", "is not allowed here")
+
+
+def test_examples_shipped_with_the_service_parse() -> None:
+    folder = Path(__file__).resolve().parents[2] / "service" / "examples"
     documents = sorted(folder.glob("*.json"))
+    assert documents, f"no example documents in {folder}"
     for path in documents:
         parse_document(json.loads(path.read_text()))
 
 
 def test_service_package_is_import_light() -> None:
     code = "import sys, service; print('fastapi' in sys.modules, 'pydantic' in sys.modules)"
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=schema.__file__.rsplit("/service/", 1)[0])
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=Path(__file__).resolve().parents[2])
     assert out.stdout.split() == ["False", "False"]
 
 
-# Faults: the path and a key phrase of each message ----------------------------------
+# Faults: the path and a key phrase of each message.
 
 TOP_LEVEL = [
     ("discount", 1.0, "discount", "not a contraction"),
@@ -325,7 +403,7 @@ SOLVER_AND_REPORT = [
     ("solver.tolerance", 0, "solver.tolerance", "greater than 0"),
     ("solver.tolerance", -1e-6, "solver.tolerance", "greater than 0"),
     ("solver.tolerence", 1e-6, "solver.tolerence", "did you mean `tolerance`?"),
-    ("solver.method", "newton", "solver.method", '"value_iteration", "howard" or "policy_iteration"'),
+    ("solver.method", "newton", "solver.method", '"howard", "policy_iteration" or "value_iteration"'),
     ("solver.max_iterations", 0, "solver.max_iterations", "at least 1"),
     ("solver.max_iterations", 10_000_001, "solver.max_iterations", "at most 10000000"),
     ("solver.max_iterations", 2.5, "solver.max_iterations", "expected a whole number"),
@@ -340,19 +418,19 @@ SOLVER_AND_REPORT = [
     ("solver.initial", {"values": [[1.0, 2.0]]}, "solver.initial.values", "the value array has shape [60, 5]"),
     ("solver.initial", {"values": [1.0, float("nan")]}, "solver.initial.values[1]", "NaN is not allowed"),
     ("report.stationary", "yes", "report.stationary", "expected true or false"),
-    ("report.simulate.periods", 0, "report.simulate.periods", "at least 1"),
-    ("report.simulate.periods", 100_001, "report.simulate.periods", "at most 100000"),
-    ("report.simulate.paths", 100_001, "report.simulate.paths", "at most 100000"),
-    ("report.simulate.paths", DELETE, "report.simulate.paths", "missing required key `paths`"),
-    ("report.simulate", {"periods": 1000, "paths": 10_001}, "report.simulate", "periods × paths is 10,001,000"),
-    ("report.simulate.seed", -1, "report.simulate.seed", "at least 0"),
-    ("report.simulate.start", {"capacity": 2.0, "demand": 1.0, "weather": 1}, "report.simulate.start.weather", "not a state or shock"),
-    ("report.simulate.start", {"capacity": 2.0}, "report.simulate.start.demand", "missing a starting value"),
-    ("report.simulate.start", {"capacity": 20.0, "demand": 1.0}, "report.simulate.start.capacity", "outside the grid of `capacity`, [0.5, 10]"),
-    ("report.simulate.start", {"capacity": 2.0, "demand": 5.0}, "report.simulate.start.demand", "outside the grid of `demand`"),
-    ("report.simulate.start", {"capacity": "a", "demand": 1.0}, "report.simulate.start.capacity", "expected a number"),
-    ("report.simulate.start", "capacity", "report.simulate.start", "for a grid model, start is an object"),
-    ("report.simulate.start", [1, 2], "report.simulate.start", "expected an object of state and shock values"),
+    ("report.simulation.periods", 0, "report.simulation.periods", "at least 1"),
+    ("report.simulation.periods", 100_001, "report.simulation.periods", "at most 100000"),
+    ("report.simulation.paths", 100_001, "report.simulation.paths", "at most 100000"),
+    ("report.simulation.paths", DELETE, "report.simulation.paths", "missing required key `paths`"),
+    ("report.simulation", {"periods": 1000, "paths": 10_001}, "report.simulation", "periods × paths is 10,001,000"),
+    ("report.simulation.seed", -1, "report.simulation.seed", "at least 0"),
+    ("report.simulation.start", {"capacity": 2.0, "demand": 1.0, "weather": 1}, "report.simulation.start.weather", "not a state or shock"),
+    ("report.simulation.start", {"capacity": 2.0}, "report.simulation.start.demand", "missing a starting value"),
+    ("report.simulation.start", {"capacity": 20.0, "demand": 1.0}, "report.simulation.start.capacity", "outside the grid of `capacity`, [0.5, 10]"),
+    ("report.simulation.start", {"capacity": 2.0, "demand": 5.0}, "report.simulation.start.demand", "outside the grid of `demand`"),
+    ("report.simulation.start", {"capacity": "a", "demand": 1.0}, "report.simulation.start.capacity", "expected a number"),
+    ("report.simulation.start", "capacity", "report.simulation.start", "for a grid model, start is an object"),
+    ("report.simulation.start", [1, 2], "report.simulation.start", "expected an object of state and shock values"),
 ]
 
 GRID = [
@@ -445,9 +523,9 @@ TABULAR = [
     ("model.actions", True, "model.actions", "expected a list of labels"),
     ("model.reward", DELETE, "model.reward", "missing required key `reward`"),
     ("model.next", {}, "model.next", "unknown key `next`"),
-    ("report.simulate.start", "broken", "report.simulate.start", '"broken" is not a state label'),
-    ("report.simulate.start", 3, "report.simulate.start", "state index 3 is out of range"),
-    ("report.simulate.start", {"idle": 1}, "report.simulate.start", "for a tabular model, start is a state label or a state index"),
+    ("report.simulation.start", "broken", "report.simulation.start", '"broken" is not a state label'),
+    ("report.simulation.start", 3, "report.simulation.start", "state index 3 is out of range"),
+    ("report.simulation.start", {"idle": 1}, "report.simulation.start", "for a tabular model, start is a state label or a state index"),
     ("solver.initial", {"values": [0.0, 1.0]}, "solver.initial.values", "the value array has shape [3]"),
 ]
 
@@ -463,12 +541,12 @@ SPARSE = [
 ]
 
 
-@pytest.mark.parametrize(("path", "value", "where", "phrase"), TOP_LEVEL + [c for c in SOLVER_AND_REPORT if not c[0].startswith("report.simulate.start")])
+@pytest.mark.parametrize(("path", "value", "where", "phrase"), TOP_LEVEL + [c for c in SOLVER_AND_REPORT if not c[0].startswith("report.simulation.start")])
 def test_top_level_solver_and_report_faults(path: str, value: Any, where: str, phrase: str) -> None:
     assert_fault(edit(plant(), path, value), where, phrase)
 
 
-@pytest.mark.parametrize(("path", "value", "where", "phrase"), [c for c in SOLVER_AND_REPORT if c[0].startswith("report.simulate.start")])
+@pytest.mark.parametrize(("path", "value", "where", "phrase"), [c for c in SOLVER_AND_REPORT if c[0].startswith("report.simulation.start")])
 def test_grid_start_faults(path: str, value: Any, where: str, phrase: str) -> None:
     assert_fault(edit(plant(), path, value), where, phrase)
 
@@ -519,7 +597,7 @@ def test_every_fault_is_listed_at_once() -> None:
     document = edit(document, "solver.tolerance", 0)
     document = edit(document, "model.states.capacity.points", 1)
     document = edit(document, "model.shocks.demand.ar1.rho", 2.0)
-    document = edit(document, "report.simulate.paths", 0)
+    document = edit(document, "report.simulation.paths", 0)
     document = edit(document, "label", 5)
     paths = {e["path"] for e in faults(document)}
     assert paths == {
@@ -527,7 +605,7 @@ def test_every_fault_is_listed_at_once() -> None:
         "solver.tolerance",
         "model.states.capacity.points",
         "model.shocks.demand.ar1.rho",
-        "report.simulate.paths",
+        "report.simulation.paths",
         "label",
     }
 
@@ -548,7 +626,7 @@ def test_many_bad_rows_are_counted_not_listed() -> None:
     assert errors[-1] == {"path": "model.transition", "message": "and 190 more rows that do not sum to 1"}
 
 
-# Hostile documents ------------------------------------------------------------
+# Hostile documents.
 
 
 def test_a_flood_of_unknown_keys_is_listed_up_to_the_cap() -> None:
@@ -556,7 +634,7 @@ def test_a_flood_of_unknown_keys_is_listed_up_to_the_cap() -> None:
     for part in (document, document["solver"], document["model"]["hints"]):
         part.update({f"key{i}": i for i in range(900)})
     errors = faults(document)
-    assert len(errors) == schema.MAX_REPORTED + 1
+    assert len(errors) == MAX_REPORTED + 1
     assert all("unknown key `key" in e["message"] for e in errors[:-1])
     assert errors[-1] == {"path": "", "message": "and 2,600 more faults"}
 
@@ -626,7 +704,7 @@ def test_large_sparse_problem_validates_with_vectorised_checks() -> None:
     assert_fault(document, "model.transition.entries[5][2]", "next-state index 100000 is out of range")
 
 
-# JSON Schema -----------------------------------------------------------------
+# JSON Schema.
 
 _ANNOTATIONS = {"title", "description", "default", "discriminator", "contentEncoding", "$schema", "$defs"}
 
@@ -771,7 +849,7 @@ def test_json_schema_describes_arrays_honestly() -> None:
     assert "float64" in defs["PackedArray"]["properties"]["dtype"]["enum"]
 
 
-# Canonical form and hash -------------------------------------------------------
+# Canonical form and hash.
 
 
 def test_hash_ignores_key_order_and_submission_options() -> None:
@@ -786,7 +864,7 @@ def test_hash_ignores_key_order_and_submission_options() -> None:
 
 def test_hash_sees_defaults_packing_and_numbers_alike() -> None:
     shop = machine_shop()
-    defaults = {"evaluation_steps": schema.DEFAULT_EVALUATION_STEPS, "initial": "zeros", "checkpoint_s": 30, "time_limit_s": None}
+    defaults = {"evaluation_steps": DEFAULT_EVALUATION_STEPS, "initial": "zeros", "checkpoint_s": 30, "time_limit_s": None}
     explicit = edit(shop, "solver", {**shop["solver"], **defaults})
     as_packed = edit(shop, "model.transition", packed(shop["model"]["transition"]))
     assert document_hash(shop) == document_hash(explicit) == document_hash(as_packed)

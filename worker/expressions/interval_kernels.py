@@ -1,18 +1,12 @@
-"""Interval bounds of an expression over a box, written as numba source.
+"""The jitted helpers that the lines of `interval_source` call, one per operation.
 
-The solver verifies a policy with one unrestricted Bellman step; on huge
-grids it prunes blocks of choices whose objective is provably below the best
-found, and these bounds are the proof.  They must be *sound*: at every point
-of the box, the value either evaluator computes lies within the bounds.
-
-The generated lines call the small jitted helpers below, one call per
-operation, through the global name ``fixq_intervals`` (this module; see
-`worker.expressions.interval_globals`).  Numba compiles each helper the first
-time a kernel uses it (0.1-1 s each) and caches it on disk (``cache=True``),
-so later processes load it instead of compiling; each call site
-then costs a kernel some 20-50 ms of compile time; writing the branches
-inline instead made kernels several times slower to compile, because numba's
-compile time grows faster than linearly with the branches of a function.
+Each takes and returns bounds as float64 ``(lo, hi)`` pairs; a full operand
+is ``(-inf, inf)``.  The lines reach them through the global name
+`worker.expressions.intervals.GLOBAL_NAME`, bound by `interval_globals`.
+Numba compiles each helper the first time a kernel uses it (0.1-1 s each)
+and caches it on disk (``cache=True``), so later processes load it instead
+of compiling; each call site then costs a kernel some 20-50 ms of compile
+time.
 
 How soundness is kept
 ---------------------
@@ -40,33 +34,18 @@ How soundness is kept
   false, else ``[0, 1]``; logic treats an interval excluding 0 as certainly
   true and ``[0, 0]`` as certainly false (nan counts as true, so a full
   interval is neither).
-
-Variable names are ``{prefix}{n}_lo``/``_hi`` with ``n`` counting nodes; the
-result is ``{prefix}lo``/``{prefix}hi``.
 """
 
 from __future__ import annotations
 
-from collections.abc import Callable, Mapping
+import sys
 
 import numpy as np
 from numba import njit
 
-from worker.expressions import (
-    Arith,
-    Compare,
-    Expression,
-    Logic,
-    Name,
-    Negate,
-    Node,
-    Not,
-    Number,
-    Power,
-    _float_literal,
-    _pairwise,
-    _variable_text,
-)
+from worker.expressions.intervals import GLOBAL_NAME
+
+__all__ = ["ABSOLUTE_SLACK", "RELATIVE_SLACK", "interval_globals"]
 
 RELATIVE_SLACK = 2.0**-46
 """Outward widening of ``log exp sqrt **`` bounds, relative to their
@@ -75,106 +54,15 @@ ABSOLUTE_SLACK = 1e-300
 """Outward widening of ``log exp sqrt **`` bounds, absolute: covers results
 near underflow, where relative error means little."""
 
-GLOBAL_NAME = "fixq_intervals"
-"""The global name the generated lines use for this module."""
-
 _LARGEST = 1.7976931348623157e308
 _jit = njit(cache=True, error_model="numpy", fastmath=False)
 
-Interval = tuple[str, str]
 
-
-def interval_source(
-    expr: Expression, name_of_lo: Mapping[str, str], name_of_hi: Mapping[str, str], prefix: str
-) -> tuple[list[str], str, str]:
-    """See `worker.expressions.interval_source`."""
-    if not prefix.isidentifier():
-        raise ValueError(f"prefix must be an identifier, got {prefix!r}")
-    missing = sorted(expr.names.difference(name_of_lo) | expr.names.difference(name_of_hi))
-    if missing:
-        raise ValueError(f"no bound variables given for names: {', '.join(missing)}")
-    writer = _Writer(name_of_lo, name_of_hi, prefix)
-    lo, hi = writer.node(expr.tree)
-    writer.lines += [f"{prefix}lo = {lo}", f"{prefix}hi = {hi}"]
-    return writer.lines, f"{prefix}lo", f"{prefix}hi"
-
-
-class _Writer:
-    def __init__(self, name_of_lo: Mapping[str, str], name_of_hi: Mapping[str, str], prefix: str) -> None:
-        self.name_of_lo = name_of_lo
-        self.name_of_hi = name_of_hi
-        self.prefix = prefix
-        self.lines: list[str] = []
-        self.count = 0
-
-    def fresh(self) -> Interval:
-        self.count += 1
-        return f"{self.prefix}{self.count}_lo", f"{self.prefix}{self.count}_hi"
-
-    def helper(self, name: str, *operands: Interval) -> Interval:
-        lo, hi = self.fresh()
-        args = ", ".join(end for operand in operands for end in operand)
-        self.lines.append(f"{lo}, {hi} = {GLOBAL_NAME}.{name}({args})")
-        return lo, hi
-
-    def assign(self, lo_text: str, hi_text: str) -> Interval:
-        lo, hi = self.fresh()
-        self.lines += [f"{lo} = {lo_text}", f"{hi} = {hi_text}"]
-        return lo, hi
-
-    def node(self, node: Node) -> Interval:
-        if isinstance(node, Number):
-            if node.value != node.value:
-                return "(-np.inf)", "np.inf"
-            literal = _float_literal(node.value)
-            return literal, literal
-        if isinstance(node, Name):
-            return _variable_text(self.name_of_lo[node.id]), _variable_text(self.name_of_hi[node.id])
-        if isinstance(node, Negate):
-            lo, hi = self.node(node.operand)
-            return self.assign(f"-{hi}", f"-{lo}")
-        if isinstance(node, Arith):
-            names = {"+": "add", "-": "subtract", "*": "multiply", "/": "divide"}
-            result = self.node(node.first)
-            for op, term in node.rest:
-                result = self.helper(names[op], result, self.node(term))
-            return result
-        if isinstance(node, Power):
-            return self.helper("power", self.node(node.base), self.node(node.exponent))
-        if isinstance(node, Compare):
-            operands = [self.node(operand) for operand in node.operands]
-            tests = [self.helper(_COMPARE_HELPERS[op], operands[i], operands[i + 1]) for i, op in enumerate(node.ops)]
-            return _fold_left(tests, lambda a, b: self.helper("logical_and", a, b))
-        if isinstance(node, Logic):
-            operands = [self.node(operand) for operand in node.operands]
-            return _fold_left(operands, lambda a, b: self.helper(f"logical_{node.op}", a, b))
-        if isinstance(node, Not):
-            return self.helper("logical_not", self.node(node.operand))
-        args = [self.node(arg) for arg in node.args]
-        if node.function in ("min", "max"):
-            name = "minimum" if node.function == "min" else "maximum"
-            return _pairwise(args, lambda a, b: self.helper(name, a, b))
-        if node.function == "clip":
-            return self.helper("minimum", self.helper("maximum", args[0], args[1]), args[2])
-        if node.function == "where":
-            return self.helper("where", *args)
-        return self.helper("absolute" if node.function == "abs" else node.function, args[0])
-
-
-_COMPARE_HELPERS = {
-    "<": "less", "<=": "less_equal", ">": "greater", ">=": "greater_equal", "==": "equal", "!=": "not_equal",
-}
-
-
-def _fold_left(items: list[Interval], combine: Callable[[Interval, Interval], Interval]) -> Interval:
-    result = items[0]
-    for item in items[1:]:
-        result = combine(result, item)
-    return result
-
-
-# The helpers the generated lines call.  Each takes and returns bounds as
-# float64 (lo, hi) pairs; a full operand is (-inf, inf).
+def interval_globals() -> dict[str, object]:
+    """The globals that the lines of `interval_source` use (``np`` and this
+    module, for its helpers); merge them into the namespace of the generated
+    function."""
+    return {"np": np, GLOBAL_NAME: sys.modules[__name__]}
 
 
 @_jit

@@ -1,0 +1,204 @@
+"""The whole problem document and :func:`parse_document`, the one way in.
+
+:func:`parse_document` refuses hostile nesting before pydantic sees the
+document, validates it, runs every check that needs no model evaluation, and
+raises :class:`~worker.errors.InvalidDocument` (or its subclass
+:class:`~worker.errors.InfeasibleModel`, or :class:`~worker.errors.TooLarge`)
+listing *all* faults it found, each as ``{"path", "message"}``.  Field names
+equal the JSON keys; the contract of the validated objects is in
+DEVELOPERS.md, "The validated document".
+
+Checks inside one object run as soon as that object's own keys are valid, so
+one broken state grid does not hide a bad ``solver``; checks that span the
+model (names, laws of motion, expressions) run when the model's parts are
+valid, and checks that need the whole document (the shape of
+``solver.initial.values``, ``report.simulation.start``) when everything else is.
+
+Nothing here builds a grid or a chain, so the cost of validation does not
+grow with the sizes a document asks for (the estimator in
+``worker.estimate`` judges those).  Class docstrings and field descriptions
+become the JSON Schema served at ``/v1/schema``: they are written for people
+who never read Python.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Any, Literal, Union
+
+from pydantic import Field, ValidationError, model_validator
+
+from worker.document._faults import (
+    Fault,
+    exception_for,
+    fault,
+    number,
+    raise_faults,
+    structure_fault,
+)
+from worker.document._fields import Integer, Part, SchemaExtra, check
+from worker.document._translate import translate
+from worker.document.grid import GridModel
+from worker.document.limits import (
+    DOCUMENT_VERSION,
+    MAX_DEPTH,
+    MAX_KEYS,
+    MAX_LABEL_CHARS,
+    MAX_REPORTED,
+    MAX_TAGS,
+)
+from worker.document.options import InitialValues, NotifySpec, ReportSpec, SolverSpec
+from worker.document.tabular import TabularModel
+from worker.errors import InvalidDocument, join_path
+
+PRIORITIES = ("high", "normal", "low")
+"""Queue priorities a document may ask for (key ``priority``), most urgent first: the order in which
+workers drain their queues."""
+
+DEFAULT_PRIORITY = "normal"
+"""The priority of a document that gives none."""
+
+SUBMISSION_KEYS = ("label", "tags", "priority", "notify")
+"""Top-level keys that describe the submission, not the problem: left out of the hash."""
+
+
+def _or(words: tuple[str, ...]) -> str:
+    quoted = [f'"{word}"' for word in words]
+    return ", ".join(quoted[:-1]) + " or " + quoted[-1]
+
+
+TagText = Annotated[
+    str,
+    check(
+        lambda t: 1 <= len(t) <= 64 and t.isascii() and all(c.isalnum() or c in "_.:-" for c in t),
+        "a tag must be 1 to 64 characters of letters, digits and _ . : -, got {value}",
+    ),
+    SchemaExtra(pattern="^[A-Za-z0-9_.:-]{1,64}$"),
+]
+
+
+class ProblemDocument(Part):
+    """A discounted dynamic program to solve, version 1 of the problem-document format."""
+
+    version: Annotated[
+        Integer,
+        check(lambda v: v == DOCUMENT_VERSION, f"unsupported document version {{value}}: this service reads version {DOCUMENT_VERSION}"),
+        SchemaExtra(const=DOCUMENT_VERSION),
+    ] = Field(description=f"Version of the document format; must be {DOCUMENT_VERSION}.")
+    label: Annotated[str, Field(max_length=MAX_LABEL_CHARS)] | None = Field(
+        default=None, description=f"A free-text name for the job, at most {MAX_LABEL_CHARS} characters."
+    )
+    tags: Annotated[list[TagText], Field(max_length=MAX_TAGS)] = Field(
+        default_factory=list,
+        description=f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters of letters, digits and _ . : -.",
+    )
+    discount: Annotated[
+        float,
+        check(
+            lambda b: 0 < b < 1,
+            "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
+            "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
+            "degenerate (the future does not count, or counts with the wrong sign)",
+        ),
+        SchemaExtra(exclusiveMinimum=0, exclusiveMaximum=1),
+    ] = Field(
+        description=(
+            "The discount factor β applied to next period's value, strictly between 0 and 1 (per period). "
+            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge."
+        )
+    )
+    model: Annotated[Union[TabularModel, GridModel], Field(discriminator="kind")] = Field(
+        description='The model: "tabular" (finite states and actions given as arrays) or "grid" (states on grids, defined by expressions).'
+    )
+    solver: SolverSpec = Field(default_factory=SolverSpec, description="How to solve; every key has a default.")
+    report: ReportSpec = Field(default_factory=ReportSpec, description="Extra results.")
+    priority: Literal[PRIORITIES] = Field(
+        default=DEFAULT_PRIORITY,
+        description=f'Queue priority: {_or(PRIORITIES)} (default "{DEFAULT_PRIORITY}").',
+    )
+    notify: NotifySpec | None = Field(default=None, description="Optional call-back when the job ends.")
+
+    def value_shape(self) -> tuple[int, ...]:
+        """Shape of the value array: grid axis sizes (states, then shocks), or ``(n_states,)``."""
+        if isinstance(self.model, TabularModel):
+            return (self.model.n_states,)
+        return tuple(self.model.axis_sizes().values())
+
+    @model_validator(mode="after")
+    def _check_document(self) -> ProblemDocument:
+        faults = self._initial_faults() + self._start_faults()
+        raise_faults(faults)
+        return self
+
+    def _initial_faults(self) -> list[Fault]:
+        if not isinstance(self.solver.initial, InitialValues):
+            return []
+        shape, got = self.value_shape(), self.solver.initial.values.shape
+        if got == shape or got == (math.prod(shape),):
+            return []
+        return [
+            fault(
+                "solver.initial.values",
+                f"has shape {list(got)}, but the value array has shape {list(shape)} ({math.prod(shape):,} values; a flat list of that many is also accepted)",
+            )
+        ]
+
+    def _start_faults(self) -> list[Fault]:
+        simulation = self.report.simulation
+        if simulation is None or simulation.start is None:
+            return []
+        return start_faults(self.model, simulation.start, join_path("report", self.report.simulation_key, "start"))
+
+
+def parse_document(raw: Any) -> ProblemDocument:
+    """Validate a problem document and run every check that needs no model evaluation.
+
+    Parameters
+    ----------
+    raw : the decoded JSON document (dicts, lists, numbers, strings; ndarrays
+        are accepted where arrays go).
+
+    Raises
+    ------
+    InfeasibleModel
+        The only faults are states with no allowed action.
+    TooLarge
+        An array exceeds the element cap (the other faults are listed too).
+    InvalidDocument
+        Any other fault; ``errors`` lists all of them.
+    """
+    hostile = structure_fault(raw, max_depth=MAX_DEPTH, max_keys=MAX_KEYS)
+    if hostile is not None:
+        raise InvalidDocument([hostile])
+    try:
+        return ProblemDocument.model_validate(raw)
+    except ValidationError as exc:
+        errors = exc.errors(include_url=False)
+    # Only the listed errors are translated: a document with a million unknown keys costs no more.
+    faults = translate(errors[:MAX_REPORTED], ProblemDocument)
+    raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
+
+
+def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
+    """Faults of ``report.simulation.start`` against the model (paths from the document root)."""
+    if model.kind == "tabular":
+        if isinstance(start, dict):
+            return [fault(where, "for a tabular model, start is a state label or a state index")]
+        if isinstance(start, int):
+            if not 0 <= start < model.n_states:
+                return [fault(where, f"state index {start} is out of range: with {model.n_states} states it must be 0 to {model.n_states - 1}")]
+            return []
+        if not isinstance(model.states, list) or start not in model.states:
+            return [fault(where, f'"{start[:80]}" is not a state label')]
+        return []
+    if not isinstance(start, dict):
+        return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
+    axes = {**model.states, **model.shocks}
+    faults = [fault(join_path(where, name), f"`{name}` is not a state or shock of the model") for name in start if name not in axes]
+    faults += [fault(join_path(where, name), f"missing a starting value for `{name}`") for name in axes if name not in start]
+    for name, value in start.items():
+        if name in axes:
+            lo, hi = axes[name].bounds
+            if not lo <= value <= hi:
+                faults.append(fault(join_path(where, name), f"{number(value)} lies outside the grid of `{name}`, [{number(lo)}, {number(hi)}]"))
+    return faults

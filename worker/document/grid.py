@@ -1,0 +1,357 @@
+"""The grid model: states on grids, choices, and expressions; with its checks.
+
+The shocks of a grid model are in :mod:`worker.document.shock_specs`.
+Nothing here builds a grid: sizes and bounds come from closed forms, and
+:meth:`GridAxis.grid` and :meth:`ChoiceSpec.grid` build through
+:mod:`worker.grids` only when the numerics ask.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Any, Literal
+
+import numpy as np
+from pydantic import Field, PrivateAttr, model_validator
+
+from worker import expressions
+from worker.document._faults import (
+    Fault,
+    fault,
+    form_faults,
+    increasing_faults,
+    number,
+    raise_faults,
+)
+from worker.document._fields import (
+    Expression,
+    Name,
+    Part,
+    Points,
+    Positive,
+    Spacing,
+    Vector,
+)
+from worker.document.limits import DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
+from worker.document.shock_specs import ShockSpec
+from worker.errors import InvalidDocument, join_path
+
+RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
+"""Keys of a grid given by its range."""
+
+
+_GRID_DESCRIPTIONS = {
+    "min": "Smallest grid value.",
+    "max": "Largest grid value; must be greater than min.",
+    "points": f"Number of grid points, 2 to {MAX_POINTS:,}.",
+    "spacing": (
+        'How the points are spread between min and max: "uniform" (evenly, the default), "log" '
+        '(constant ratio between neighbours; needs min > 0) or "power" (min + (max - min) * u^exponent '
+        "for evenly spread u in [0, 1]; exponent above 1 puts more points near min)."
+    ),
+    "exponent": f'Exponent of "power" spacing, a positive number (default {DEFAULT_EXPONENT:g}).',
+}
+
+
+def _grid_field(key: str) -> Any:
+    return Field(default=None, description=_GRID_DESCRIPTIONS[key])
+
+
+class GridAxis(Part):
+    """The grid of an endogenous state: either min, max and points (with a spacing), or an explicit
+    list of values."""
+
+    min: float | None = _grid_field("min")
+    max: float | None = _grid_field("max")
+    points: Points | None = _grid_field("points")
+    spacing: Spacing | None = _grid_field("spacing")
+    exponent: Positive | None = _grid_field("exponent")
+    values: Vector | None = Field(
+        default=None,
+        description="The grid values themselves, strictly increasing, at least 2 of them (instead of min, max and points).",
+    )
+
+    @property
+    def size(self) -> int:
+        """Number of grid points (no grid is built)."""
+        return self.points if self.values is None else int(self.values.size)
+
+    @property
+    def bounds(self) -> tuple[float, float]:
+        """Smallest and largest grid value."""
+        return (self.min, self.max) if self.values is None else (float(self.values[0]), float(self.values[-1]))
+
+    def grid(self, *, path: str = "") -> np.ndarray:
+        """The grid, shape ``(size,)`` float64, strictly increasing (via :mod:`worker.grids`)."""
+        if self.values is not None:
+            return self.values.copy()
+        from worker.grids import build_grid
+
+        return build_grid(self.spacing, self.min, self.max, self.points, self.exponent or DEFAULT_EXPONENT, path=path)
+
+    @model_validator(mode="after")
+    def _check_axis(self) -> GridAxis:
+        form, faults = form_faults(
+            self, {"range": RANGE_KEYS, "values": ("values",)}, "either `min`, `max` and `points` (and optionally `spacing`), or `values`"
+        )
+        if form == "range":
+            faults = range_faults(self, other="or give `values`", default_exponent=DEFAULT_EXPONENT)
+        elif form == "values":
+            if self.values.size < 2:
+                faults = [fault("values", f"a grid needs at least 2 values, got {self.values.size}")]
+            else:
+                faults = increasing_faults(self.values, "values")
+        raise_faults(faults)
+        return self
+
+
+class ChoiceSpec(Part):
+    """A choice made each period: tomorrow's value of a state picked from that state's grid
+    (next_of), a finite menu of values, or a grid of its own (min, max, points)."""
+
+    next_of: Name | None = Field(
+        default=None,
+        description="The name of a state: the choice is tomorrow's value of that state, picked from the state's grid.",
+    )
+    values: Vector | None = Field(default=None, description="A finite menu of values to choose from, strictly increasing.")
+    min: float | None = _grid_field("min")
+    max: float | None = _grid_field("max")
+    points: Points | None = _grid_field("points")
+    spacing: Spacing | None = _grid_field("spacing")
+    exponent: Positive | None = _grid_field("exponent")
+
+    _target: GridAxis | None = PrivateAttr(default=None)
+
+    @property
+    def size(self) -> int:
+        """Number of alternatives (for ``next_of``, the size of that state's grid)."""
+        if self.next_of is not None:
+            if self._target is None:
+                raise ValueError("the size of a next_of choice is known only inside a validated GridModel")
+            return self._target.size
+        return self.points if self.values is None else int(self.values.size)
+
+    def grid(self, *, path: str = "") -> np.ndarray:
+        """The alternatives, shape ``(size,)`` float64 (for ``next_of``, the state's grid)."""
+        if self.next_of is not None:
+            if self._target is None:
+                raise ValueError("the grid of a next_of choice is known only inside a validated GridModel")
+            return self._target.grid(path=path)
+        if self.values is not None:
+            return self.values.copy()
+        from worker.grids import build_grid
+
+        return build_grid(self.spacing, self.min, self.max, self.points, self.exponent or DEFAULT_EXPONENT, path=path)
+
+    @model_validator(mode="after")
+    def _check_choice(self) -> ChoiceSpec:
+        form, faults = form_faults(
+            self,
+            {"next_of": ("next_of",), "values": ("values",), "range": RANGE_KEYS},
+            "exactly one of: `next_of`; `values`; or `min`, `max` and `points` (and optionally `spacing`)",
+        )
+        if form == "range":
+            faults = range_faults(self, other="or give `next_of` or `values`", default_exponent=DEFAULT_EXPONENT)
+        elif form == "values":
+            faults = increasing_faults(self.values, "values") if self.values.size else [fault("values", "the menu must not be empty")]
+        raise_faults(faults)
+        return self
+
+
+class Hints(Part):
+    """Promises about the model that let the solver search faster. The final policy is always verified
+    against the full search (the verification is not an iteration); a broken promise is reported and the
+    solve falls back to the full search."""
+
+    monotone: bool = Field(default=False, description="The chosen next value of a state never falls as that state rises.")
+    concave: bool = Field(default=False, description="The objective is single-peaked (concave) in each choice, so the search can stop past the peak.")
+
+
+class GridModel(Part):
+    """A model with states on grids, Markov shocks, and choices, defined by expressions.
+
+    Expressions may use numbers, the names of params, states, shocks, choices and defines,
+    + - * / ** (power), comparisons (< <= > >= == !=), and or not, and the functions
+    log exp sqrt abs min max where clip. Nothing else."""
+
+    kind: Literal["grid"] = Field(description='Always "grid" for this kind of model.')
+    params: Annotated[dict[Name, float], Field(max_length=MAX_ENTRIES)] = Field(
+        default_factory=dict, description="Named constants usable in every expression."
+    )
+    states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(
+        description=(
+            "The endogenous states, each with its grid; together they form a product grid. Their order is the "
+            "order of the axes of the value array (states first, then shocks)."
+        )
+    )
+    shocks: Annotated[dict[Name, ShockSpec], Field(max_length=MAX_AXES)] = Field(
+        default_factory=dict, description="Exogenous shocks, each a Markov chain that evolves independently of the choices."
+    )
+    choices: Annotated[dict[Name, ChoiceSpec], Field(min_length=1, max_length=MAX_AXES)] = Field(
+        description="What is chosen each period."
+    )
+    next: Annotated[dict[str, Expression], Field(max_length=MAX_AXES)] = Field(
+        default_factory=dict,
+        description=(
+            "For each state not chosen through next_of: an expression for its value tomorrow, from today's "
+            "states, shocks and choices. Values between grid points are split between the two neighbouring "
+            "points by linear interpolation; values outside the grid are moved to its nearest end and counted "
+            "in the diagnostics."
+        ),
+    )
+    define: Annotated[dict[Name, Expression], Field(max_length=MAX_ENTRIES)] = Field(
+        default_factory=dict,
+        description="Named intermediate expressions, in order: each may use the defines listed before it.",
+    )
+    reward: Expression = Field(description="The reward paid this period, an expression.")
+    feasible: Annotated[list[Expression], Field(max_length=MAX_ENTRIES)] = Field(
+        default_factory=list,
+        description="Conditions (expressions) that must all hold for a choice to be allowed in a state.",
+    )
+    hints: Hints = Field(default_factory=Hints, description="Optional speed promises.")
+
+    def axis_sizes(self) -> dict[str, int]:
+        """Size of each axis of the value array, in array-axis order: states, then shocks."""
+        sizes = {name: axis.size for name, axis in self.states.items()}
+        sizes.update((name, shock.size) for name, shock in self.shocks.items())
+        return sizes
+
+    @model_validator(mode="after")
+    def _check_model(self) -> GridModel:
+        raise_faults(grid_model_faults(self))
+        for choice in self.choices.values():
+            if choice.next_of in self.states:
+                choice._target = self.states[choice.next_of]
+        return self
+
+
+def grid_gap_fault(spacing: str, lo: float, hi: float, points: int, exponent: float) -> Fault | None:
+    """A fault when the grid's closest neighbours would be indistinguishable in float64.
+
+    Computed from the closed-form smallest gap, so no grid is built.
+    """
+    step = 1.0 / (points - 1)
+    if spacing == "log":
+        gap = lo * math.expm1(math.log(hi / lo) * step)
+    elif spacing == "power" and exponent >= 1:
+        gap = (hi - lo) * step**exponent
+    elif spacing == "power":
+        gap = (hi - lo) * -math.expm1(exponent * math.log1p(-step)) if points > 2 else hi - lo
+    else:
+        gap = (hi - lo) * step
+    # Four ulps of the largest magnitude on the grid: below that, rounding can
+    # merge or reorder neighbouring points.
+    if not gap > 4 * math.ulp(max(abs(lo), abs(hi))):
+        return fault(
+            "points",
+            f"{points:,} points between {number(lo)} and {number(hi)} would lie too close together to tell apart in float64",
+        )
+    return None
+
+
+def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Fault]:
+    """Faults of a grid given by ``min``, ``max``, ``points``, ``spacing``, ``exponent``.
+
+    Fills in the defaults (``spacing`` uniform; ``exponent`` for power) on ``part``.
+    """
+    faults = [fault(key, f"missing `{key}`: a grid needs min, max and points ({other})") for key in ("min", "max", "points") if getattr(part, key) is None]
+    spacing = part.spacing or "uniform"
+    if part.exponent is not None and spacing != "power":
+        faults.append(fault("exponent", f'exponent is used only with spacing "power", not "{spacing}"'))
+    if faults:
+        return faults
+    if part.min >= part.max:
+        faults.append(fault("max", f"max ({number(part.max)}) must be greater than min ({number(part.min)})"))
+    elif spacing == "log" and part.min <= 0:
+        faults.append(fault("min", f"log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got {number(part.min)}"))
+    else:
+        exponent = part.exponent if part.exponent is not None else default_exponent
+        gap = grid_gap_fault(spacing, part.min, part.max, part.points, exponent)
+        faults += [gap] if gap else []
+    part.spacing = spacing
+    if spacing == "power" and part.exponent is None:
+        part.exponent = default_exponent
+    return faults
+
+
+def grid_model_faults(model: Any) -> list[Fault]:
+    """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
+    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model)
+
+
+def _name_faults(model: Any) -> list[Fault]:
+    faults = []
+    seen: dict[str, str] = {}
+    for section in ("params", "states", "shocks", "choices", "define"):
+        for name in getattr(model, section):
+            if name in seen:
+                faults.append(
+                    fault(
+                        join_path(section, name),
+                        f"the name `{name}` is already used in {seen[name]}; names must be unique across params, states, shocks, choices and define",
+                    )
+                )
+            else:
+                seen[name] = section
+    return faults
+
+
+def _motion_faults(model: Any) -> list[Fault]:
+    faults = []
+    chooser: dict[str, str] = {}
+    states = ", ".join(model.states)
+    for name, choice in model.choices.items():
+        target = choice.next_of
+        if target is None:
+            continue
+        where = join_path("choices", name, "next_of")
+        if target not in model.states:
+            faults.append(fault(where, f"`{target}` is not a state; next_of must name one of: {states}"))
+        elif target in chooser:
+            faults.append(fault(where, f"state `{target}` is already chosen by choice `{chooser[target]}`; a state can be the next_of of only one choice"))
+        else:
+            chooser[target] = name
+    for name in model.next:
+        where = join_path("next", name)
+        if name not in model.states:
+            faults.append(fault(where, f"`{name}` is not a state; next gives tomorrow's value of a state (states: {states})"))
+        elif name in chooser:
+            faults.append(fault(where, f"state `{name}` is already chosen through next_of by choice `{chooser[name]}`, so it must not also have a next expression"))
+    faults += [
+        fault(
+            join_path("next", name),
+            f"state `{name}` has no law of motion: give next.{name}, an expression for its value tomorrow, or a choice with next_of \"{name}\"",
+        )
+        for name in model.states
+        if name not in chooser and name not in model.next
+    ]
+    return faults
+
+
+def _expressions_faults(model: Any) -> list[Fault]:
+    base = [*model.params, *model.states, *model.shocks, *model.choices]
+    defines = list(model.define)
+    faults = []
+    for i, name in enumerate(defines):
+        faults += _expression_faults(model.define[name], base + defines[:i], set(defines[i:]), join_path("define", name))
+    known = base + defines
+    for name, text in model.next.items():
+        faults += _expression_faults(text, known, set(), join_path("next", name))
+    faults += _expression_faults(model.reward, known, set(), "reward")
+    for i, text in enumerate(model.feasible):
+        faults += _expression_faults(text, known, set(), join_path("feasible", i))
+    return faults
+
+
+def _expression_faults(text: str, known: list[str], later: set[str], where: str) -> list[Fault]:
+    """Faults of one expression: its grammar, and names it uses that are unknown or defined later."""
+    try:
+        expression = expressions.parse(text, path=where)
+        early = sorted(expression.names & later)
+        if early:
+            names = ", ".join(f"`{n}`" for n in early)
+            return [fault(where, f"uses {names} before it is defined: a define may use only the defines listed before it")]
+        expressions.check_names(expression, known, path=where)
+    except InvalidDocument as exc:
+        return exc.errors
+    return []

@@ -1,0 +1,84 @@
+"""The limits and fixed values of the problem document, each with its unit.
+
+Every size a document may ask for is capped here, so that validation costs
+the same whatever the document claims; the estimator in ``worker.estimate``
+judges the work the accepted sizes imply.  The defaults of a solve live in
+:mod:`worker.defaults`; the two below are used only by the document.
+"""
+
+from __future__ import annotations
+
+from worker.expressions import MAX_LENGTH as _EXPRESSION_LENGTH
+
+DOCUMENT_VERSION = 1
+"""The only ``version`` this package reads."""
+
+MAX_DEPTH = 64
+"""Deepest nesting of lists and objects in a document (levels)."""
+
+MAX_KEYS = 1_000
+"""Most keys in any one object of a document (count; the largest are params and define)."""
+
+MAX_POINTS = 10_000_000
+"""Most points on one grid axis, chain, menu or tabular label list (count)."""
+
+MAX_ARRAY_ELEMENTS = 100_000_000
+"""Most elements in one numeric array (count; 800 MB as float64)."""
+
+MAX_EXPRESSION_CHARS = _EXPRESSION_LENGTH
+"""Longest expression (characters)."""
+
+MAX_AXES = 16
+"""Most states, shocks or choices in a grid model (count of each)."""
+
+MAX_ENTRIES = MAX_KEYS
+"""Most params, defines or feasible expressions in a grid model (count of each)."""
+
+MAX_EVALUATION_STEPS = 100_000
+"""Most evaluation steps in one evaluation phase of Howard's method (count)."""
+
+MAX_ITERATIONS = 10_000_000
+"""Largest accepted ``max_iterations`` (count)."""
+
+MAX_SIMULATION_PERIODS = 100_000
+"""Most periods in one simulated path (count)."""
+
+MAX_SIMULATION_PATHS = 100_000
+"""Most simulated paths (count)."""
+
+MAX_SIMULATION_DRAWS = 10_000_000
+"""Most periods × paths in one simulation (count)."""
+
+MAX_LABEL_CHARS = 200
+"""Longest document label or tabular state/action label (characters)."""
+
+MAX_NAME_CHARS = 64
+"""Longest name of a parameter, state, shock, choice or define (characters)."""
+
+MAX_TAGS = 32
+"""Most tags on a document (count)."""
+
+MAX_URL_CHARS = 2_048
+"""Longest ``notify.url`` (characters)."""
+
+MAX_SECRET_CHARS = 256
+"""Longest ``notify.secret`` (characters)."""
+
+MAX_REPORTED = 100
+"""Most faults in one error (count); more are summed up in a last fault."""
+
+MAX_LISTED = 10
+"""Faults listed per vectorised check (count); the rest are summed up in one more fault."""
+
+CANONICAL_INLINE_ELEMENTS = 4_096
+"""Arrays up to this many elements appear as nested lists in the canonical
+form and in dumps of a validated document, larger ones packed (count)."""
+
+ROW_SUM_TOLERANCE = 1e-9
+"""How far a probability row's sum may be from 1 (absolute, dimensionless)."""
+
+DEFAULT_WIDTH = 3.0
+"""Tauchen grid half-width (unconditional standard deviations; common practice)."""
+
+DEFAULT_EXPONENT = 2.0
+"""Exponent of ``power`` spacing (dimensionless)."""

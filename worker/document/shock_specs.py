@@ -1,0 +1,194 @@
+"""The shocks of a grid model: AR(1) processes, explicit Markov chains and i.i.d. draws.
+
+Only the specifications and their checks are here; :meth:`ShockSpec.chain`
+builds the chain through :mod:`worker.shocks` when the numerics ask.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Annotated, Literal
+
+import numpy as np
+from pydantic import Field, model_validator
+
+from worker.document._faults import (
+    fault,
+    faults_error,
+    form_faults,
+    increasing_faults,
+    number,
+    raise_faults,
+    stochastic_faults,
+)
+from worker.document._fields import (
+    Matrix,
+    Part,
+    Points,
+    Positive,
+    SchemaExtra,
+    Vector,
+    check,
+)
+from worker.document.limits import DEFAULT_WIDTH, MAX_POINTS
+from worker.errors import join_path
+
+_EXP_LIMIT = math.log(np.finfo(np.float64).max)
+"""Largest value whose ``exp`` is finite in float64 (about 709.78)."""
+
+
+class AR1Spec(Part):
+    """An AR(1) process y' = (1 - rho) * mean + rho * y + e, with e normal with mean 0 and standard
+    deviation sigma, replaced by a finite Markov chain."""
+
+    rho: Annotated[
+        float,
+        check(
+            lambda r: -1 < r < 1,
+            "rho must lie strictly between -1 and 1, got {value}: with |rho| >= 1 the process is not stationary "
+            "(its variance grows without bound), so there is no long-run distribution for a finite chain to match",
+        ),
+        SchemaExtra(exclusiveMinimum=-1, exclusiveMaximum=1),
+    ] = Field(description="Persistence, strictly between -1 and 1.")
+    sigma: Annotated[
+        float,
+        check(
+            lambda s: s > 0,
+            "sigma, the standard deviation of the innovation e, must be positive, got {value} "
+            "(for a shock that never moves, use markov with one value)",
+        ),
+        SchemaExtra(exclusiveMinimum=0),
+    ] = Field(description="Standard deviation of the innovation e (not of y itself); positive, in the units of y.")
+    points: Points = Field(description=f"Number of chain values, 2 to {MAX_POINTS:,}.")
+    method: Literal["rouwenhorst", "tauchen"] = Field(
+        default="rouwenhorst",
+        description=(
+            'How the chain is built: "rouwenhorst" (Rouwenhorst 1995; matches the conditional mean and variance '
+            'exactly, the better choice for persistent processes; the default) or "tauchen" (Tauchen 1986; an '
+            "evenly spaced grid of half-width `width` unconditional standard deviations)."
+        ),
+    )
+    width: Positive | None = Field(
+        default=None,
+        description=(
+            f'Only for "tauchen": half-width of the grid in unconditional standard deviations of y '
+            f"(default {DEFAULT_WIDTH:g}). Rouwenhorst's grid always spans sqrt(points - 1) of them."
+        ),
+    )
+    mean: float = Field(default=0.0, description="Long-run mean of y (before any transform).")
+
+    @model_validator(mode="after")
+    def _check_ar1(self) -> AR1Spec:
+        if self.width is not None and self.method != "tauchen":
+            raise faults_error(
+                [fault("width", "width is used only with method \"tauchen\"; Rouwenhorst's grid spans sqrt(points - 1) unconditional standard deviations")]
+            )
+        if self.method == "tauchen" and self.width is None:
+            self.width = DEFAULT_WIDTH
+        return self
+
+    def half_width(self) -> float:
+        """Distance from ``mean`` to the outermost chain value (no chain is built)."""
+        spread = self.sigma / math.sqrt(1.0 - self.rho * self.rho)
+        return spread * (math.sqrt(self.points - 1) if self.method == "rouwenhorst" else self.width)
+
+
+class MarkovSpec(Part):
+    """A finite Markov chain given explicitly."""
+
+    values: Vector = Field(description="The values the shock can take, strictly increasing.")
+    matrix: Matrix = Field(
+        description=(
+            "matrix[i][j]: the probability that tomorrow's value is values[j] when today's is values[i]. "
+            "Square, one row and column per value; each row non-negative and summing to 1 (within 1e-9)."
+        )
+    )
+
+    @model_validator(mode="after")
+    def _check_markov(self) -> MarkovSpec:
+        n = self.values.size
+        faults = [fault("values", "there must be at least one value")] if n == 0 else increasing_faults(self.values, "values")
+        shape = self.matrix.shape
+        if shape[0] != shape[1]:
+            faults.append(fault("matrix", f"the matrix must be square, got shape {list(shape)}"))
+        elif shape[0] != n:
+            faults.append(fault("matrix", f"the matrix is {shape[0]} by {shape[1]} but there are {n} values: it needs one row and column per value"))
+        else:
+            faults += stochastic_faults(self.matrix, "matrix")
+        raise_faults(faults)
+        return self
+
+
+class IIDSpec(Part):
+    """A shock drawn afresh each period, independently of its past, from a finite distribution."""
+
+    values: Vector = Field(description="The values the shock can take, strictly increasing.")
+    probs: Vector = Field(description="probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9).")
+
+    @model_validator(mode="after")
+    def _check_iid(self) -> IIDSpec:
+        n = self.values.size
+        faults = [fault("values", "there must be at least one value")] if n == 0 else increasing_faults(self.values, "values")
+        if self.probs.size != n:
+            faults.append(fault("probs", f"there are {n} values but {self.probs.size} probabilities: give one per value"))
+        else:
+            faults += stochastic_faults(self.probs[None, :], "probs", single_row=True)
+        raise_faults(faults)
+        return self
+
+
+class ShockSpec(Part):
+    """An exogenous shock: a Markov chain that evolves on its own, whatever is chosen. Give exactly
+    one of ar1, markov or iid."""
+
+    ar1: AR1Spec | None = Field(default=None, description="An AR(1) process, discretised.")
+    markov: MarkovSpec | None = Field(default=None, description="An explicit Markov chain.")
+    iid: IIDSpec | None = Field(default=None, description="Independent draws from a finite distribution.")
+    transform: Literal["exp", "none"] = Field(
+        default="none",
+        description='Applied to the chain values before use: "exp" (values become exp(value), e.g. a log-AR(1) productivity) or "none" (the default).',
+    )
+
+    @property
+    def size(self) -> int:
+        """Number of chain values (no chain is built)."""
+        if self.ar1 is not None:
+            return self.ar1.points
+        return int((self.markov or self.iid).values.size)
+
+    @property
+    def bounds(self) -> tuple[float, float]:
+        """Smallest and largest chain value, after the transform (no chain is built)."""
+        if self.ar1 is not None:
+            half = self.ar1.half_width()
+            lo, hi = self.ar1.mean - half, self.ar1.mean + half
+        else:
+            values = (self.markov or self.iid).values
+            lo, hi = float(values[0]), float(values[-1])
+        return (math.exp(lo), math.exp(hi)) if self.transform == "exp" else (lo, hi)
+
+    def chain(self, *, path: str = "") -> tuple[np.ndarray, np.ndarray]:
+        """The chain: values ``(n,)`` (transform applied) and row-stochastic ``P`` ``(n, n)`` (via :mod:`worker.shocks`)."""
+        from worker import shocks
+
+        if self.ar1 is not None:
+            spec, where = self.ar1, join_path(path, "ar1")
+            if spec.method == "tauchen":
+                values, matrix = shocks.tauchen(spec.rho, spec.sigma, spec.points, spec.width, spec.mean, path=where)
+            else:
+                values, matrix = shocks.rouwenhorst(spec.rho, spec.sigma, spec.points, spec.mean, path=where)
+        elif self.markov is not None:
+            values, matrix = shocks.markov_chain(self.markov.values, self.markov.matrix, path=join_path(path, "markov"))
+        else:
+            values, matrix = shocks.iid_chain(self.iid.values, self.iid.probs, path=join_path(path, "iid"))
+        return shocks.apply_transform(values, self.transform, path=path), matrix
+
+    @model_validator(mode="after")
+    def _check_shock(self) -> ShockSpec:
+        form, faults = form_faults(self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`")
+        if form and self.transform == "exp":
+            top = self.ar1.mean + self.ar1.half_width() if self.ar1 is not None else float((self.markov or self.iid).values[-1])
+            if not top < _EXP_LIMIT:
+                faults.append(fault("transform", f"exp of the largest chain value ({number(top)}) overflows float64; values must stay below {_EXP_LIMIT:.2f}"))
+        raise_faults(faults)
+        return self

@@ -1,0 +1,183 @@
+"""What a solved grid model reports beside its answer: edge hits, clamped next values, excluded rewards.
+
+:class:`GridDiagnostics` is the diagnostics half of
+:class:`worker.gridproblem.GridProblem` (a base class of it), kept apart so
+that the Bellman and fixed-policy code reads in one sitting.
+"""
+
+from __future__ import annotations
+
+from types import ModuleType
+from typing import Any, Callable
+
+import numpy as np
+
+from worker.estimate import GridPlan
+from worker.expressions import evaluate
+from worker.feasibility import ModelData
+from worker.grids import locate
+from worker.problem import Hints
+
+__all__ = ["EDGE_WARNING_SHARE", "SCAN_MAX_PAIRS", "GridDiagnostics"]
+
+EDGE_WARNING_SHARE = 0.01
+"""Share of points at the lowest or highest point of a choice grid above which the diagnostics warn."""
+SCAN_MAX_PAIRS = 20_000_000
+"""On the fly, (point, choice) pairs up to which the diagnostics count clamped pairs over all choices."""
+
+
+class GridDiagnostics:
+    """The ``diagnostics`` of :class:`worker.problem.CompiledProblem` for grid models.
+
+    Reads the attributes :class:`~worker.gridproblem.GridProblem` sets (the
+    ones annotated below).
+    """
+
+    n: int
+    plan: GridPlan
+    reward_storage: str
+    hints: Hints
+    timings: dict[str, float]
+    bridge_note: str
+    _data: ModelData
+    _kernels: ModuleType | None
+    _ctx: tuple[np.ndarray, ...]
+    _counts: dict[str, Any]
+    _last_exact: dict[str, Any] | None
+    _nodes: Callable[[np.ndarray], tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]]
+    _zero_continuation: Callable[[], np.ndarray]
+
+    def _choice_indices(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
+        return np.unravel_index(np.asarray(policy, dtype=np.int64).reshape(self.n), self._data.choice_sizes)
+
+    def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
+        """Reward storage, hints, edge hits per choice, clamped next values and excluded rewards, with warnings."""
+        data = self._data
+        warnings: list[str] = []
+        notes = [f"reward storage {self.reward_storage}: {self.bridge_note or self.plan.reason}"]
+        if self.plan.hint_note:
+            notes.append(self.plan.hint_note)
+        model_choices = self._choice_indices(policy)
+        edge_hits = {}
+        for j, (name, grid, index) in enumerate(zip(data.choices, data.choice_grids, model_choices)):
+            lowest = float(np.mean(index == 0))
+            highest = float(np.mean(index == grid.size - 1))
+            edge_hits[name] = {"lowest": lowest, "highest": highest}
+            if not self._is_choice_grid(j):
+                continue
+            if highest >= EDGE_WARNING_SHARE:
+                warnings.append(
+                    f"{highest:.1%} of points choose the highest point of `{name}` ({grid[-1]:.6g}): the best choice "
+                    f"may lie beyond the grid; consider a larger max for {self._grid_of(j)}"
+                )
+            if lowest >= EDGE_WARNING_SHARE:
+                warnings.append(
+                    f"{lowest:.1%} of points choose the lowest point of `{name}` ({grid[0]:.6g}): unless that is a "
+                    f"real limit of the problem (a borrowing limit, say), consider a smaller min for {self._grid_of(j)}"
+                )
+        result: dict[str, Any] = {
+            "reward_storage": self.reward_storage,
+            "hints": {"monotone": self.hints.monotone, "concave": self.hints.concave},
+            "edge_hits": edge_hits,
+        }
+        clamped = self._clamped(policy, warnings)
+        if clamped is not None:
+            result["clamped_next"] = clamped
+        excluded = self._excluded(warnings)
+        if excluded is not None:
+            result["nonfinite_rewards"] = excluded
+        result["timings"] = dict(self.timings)
+        result["notes"] = notes
+        result["warnings"] = warnings
+        return result
+
+    def _is_choice_grid(self, j: int) -> bool:
+        """True for ``next_of`` choices and min/max/points grids, whose ends are arbitrary; not for menus."""
+        return not self._data.choice_is_menu[j]
+
+    def _grid_of(self, j: int) -> str:
+        name = self._data.choices[j]
+        for t, setter in enumerate(self._data.setter):
+            if setter == j:
+                return f"the grid of state `{self._data.states[t]}`"
+        return f"choice `{name}`"
+
+    def _clamped(self, policy: np.ndarray, warnings: list[str]) -> dict[str, Any] | None:
+        data = self._data
+        interpolated = [data.states[t] for t, j in enumerate(data.setter) if j is None]
+        if not interpolated:
+            return None
+        policy = np.asarray(policy, dtype=np.int64).reshape(self.n)
+        if self.reward_storage == "on_the_fly":
+            at_policy = int(self._nodes(policy)[3].sum())
+        else:
+            at_policy = self._clamped_at_policy_numpy(policy)
+        overall: dict[str, Any] | None
+        if self.reward_storage == "tables":
+            count, allowed = self._counts["clamped"], self._counts["allowed"]
+            overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"}
+        elif data.n * data.n_choices <= SCAN_MAX_PAIRS:
+            allowed_per = np.empty(self.n, dtype=np.int64)
+            clamped_per = np.empty(self.n, dtype=np.int64)
+            bad_per = np.empty(self.n, dtype=np.int64)
+            self._kernels.scan_pairs(self._zero_continuation(), self._ctx, allowed_per, clamped_per, bad_per)
+            count, allowed = int(clamped_per.sum()), int(allowed_per.sum())
+            overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"}
+        else:
+            overall = None
+        names = ", ".join(f"`{name}`" for name in interpolated)
+        result = {
+            "states": interpolated,
+            "policy": {"count": at_policy, "share": at_policy / self.n},
+            "all_pairs": overall,
+        }
+        if overall is None:
+            result["note"] = f"not counted over all {data.n * data.n_choices:,} pairs (more than {SCAN_MAX_PAIRS:,})"
+        if at_policy:
+            warnings.append(
+                f"under the final policy, tomorrow's {names} falls outside its grid at {at_policy:,} of {self.n:,} "
+                f"points ({at_policy / self.n:.1%}) and was moved to the nearest end; consider widening the grid"
+            )
+        return result
+
+    def _clamped_at_policy_numpy(self, policy: np.ndarray) -> int:
+        data = self._data
+        rows = np.arange(self.n, dtype=np.int64)
+        env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
+        env.update({k: v[:, 0] for k, v in data.state_env(rows).items()})
+        env.update({name: grid[index] for name, grid, index in zip(data.choices, data.choice_grids, self._choice_indices(policy))})
+        clamped = np.zeros(self.n, dtype=bool)
+        with np.errstate(all="ignore"):
+            for name, expr in data.source.defines:
+                env[name] = evaluate(expr, env)
+            for t, expr in data.source.next:
+                values = np.broadcast_to(evaluate(expr, env), (self.n,))
+                clamped |= locate(data.state_grids[t], values)[2]
+        return int(clamped.sum())
+
+    def _excluded(self, warnings: list[str]) -> dict[str, Any] | None:
+        data = self._data
+        if self.reward_storage == "tables":
+            count, example = self._counts["bad"], self._counts["bad_example"]
+            scope = "all (state, choice) pairs"
+        else:
+            if self._last_exact is None:
+                return None
+            bad = self._last_exact["bad"]
+            count = int(bad.sum())
+            example = None
+            if count:
+                i = int(np.flatnonzero(bad)[0])
+                example = (i, int(self._last_exact["bad_choice"][i]))
+            scope = "the (state, choice) pairs the last exact step evaluated"
+        if not count:
+            return None
+        state, choice = data.describe_state(example[0]), data.describe_choice(example[1])
+        warnings.append(
+            f"the reward (or a next value) is NaN or +inf at {count:,} feasible (state, choice) pairs, e.g. at "
+            f"{state} with {choice}; those pairs were treated as not allowed. This usually means an expression "
+            "leaves its domain (a log or fractional power of a negative number): check `reward`, `define` and "
+            "`feasible`"
+        )
+        return {"count": count, "scope": scope, "example": {"state": state, "choice": choice}}
+
