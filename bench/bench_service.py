@@ -145,7 +145,9 @@ def bare_rq_throughput(connection: redis.Redis, processes: Processes, jobs: int)
     elapsed = time.perf_counter() - started
     done, failed = queue.finished_job_registry.count, queue.failed_job_registry.count
     if done != jobs or failed:
-        raise RuntimeError(f"bare RQ finished {done} of {jobs} jobs ({failed} failed); see {processes.log_dir}/bare-rq.log")
+        raise RuntimeError(
+            f"bare RQ finished {done} of {jobs} jobs ({failed} failed); see {processes.log_dir}/bare-rq.log"
+        )
     return jobs / elapsed
 
 

@@ -153,9 +153,12 @@ def main() -> int:
         diff, changed = compare(result, reference)
         ok = base_s / seconds >= target and diff <= 2e-6 and changed == 0
         results.append(ok)
-        print(f"{label} {seconds * 1000:.1f} ms = {base_s / seconds:.0f}x faster (target >= {target}x); "
-              f"max |value diff| {diff:.1e} (<= 2e-6), policy differs at {changed} states (0); "
-              f"{result['iterations']} iterations, reward storage {result['diagnostics']['reward_storage']}  {verdict(ok)}")
+        print(
+            f"{label} {seconds * 1000:.1f} ms = {base_s / seconds:.0f}x faster (target >= {target}x); "
+            f"max |value diff| {diff:.1e} (<= 2e-6), policy differs at {changed} states (0); "
+            f"{result['iterations']} iterations, reward storage {result['diagnostics']['reward_storage']}  "
+            f"{verdict(ok)}"
+        )
 
     with tempfile.TemporaryDirectory() as kernels, tempfile.TemporaryDirectory() as numba_cache:
         env = {"FIXQ_KERNEL_CACHE": kernels, "NUMBA_CACHE_DIR": numba_cache, "FIXQ_COLD_BRIDGE": "on"}

@@ -50,7 +50,9 @@ def warehouse_document(n_states: int, seed: int = 0) -> dict:
     rng = np.random.default_rng(seed)
     stock = np.arange(n_states, dtype=np.float64)
     order = np.arange(ACTIONS, dtype=np.float64)
-    reward = np.sqrt(stock[:, None] + 1.0) * 0.01 - 0.3 * order[None, :] + rng.normal(scale=0.1, size=(n_states, ACTIONS))
+    reward = (
+        np.sqrt(stock[:, None] + 1.0) * 0.01 - 0.3 * order[None, :] + rng.normal(scale=0.1, size=(n_states, ACTIONS))
+    )
     pairs = n_states * ACTIONS
     state = np.repeat(np.arange(pairs) // ACTIONS, SUCCESSORS)
     action = np.repeat(np.arange(pairs) % ACTIONS, SUCCESSORS)
@@ -98,10 +100,21 @@ def main() -> None:
           f"({args.states * ACTIONS * SUCCESSORS:,} transition entries, packed)")
     print(f"result: status {result['status']}, {result['iterations']} improvements, "
           f"{result['evaluation_steps']} evaluation sweeps, error bound {result['error_bound']:.2e}")
-    print(f"wall seconds        {seconds:8.3f}   target {TARGET_SECONDS:.1f} s     ratio {seconds / TARGET_SECONDS:.2f}")
-    print(f"  first solve       {cold:8.3f}   (includes one-time loading of compiled helpers)  ratio {cold / TARGET_SECONDS:.2f}")
-    print(f"peak tracemalloc    {traced_peak / 2**30:8.3f} GiB  target {TARGET_BYTES / 2**30:.1f} GiB  ratio {traced_peak / TARGET_BYTES:.2f}")
-    print(f"peak maxrss         {maxrss / 2**30:8.3f} GiB  target {TARGET_BYTES / 2**30:.1f} GiB  ratio {maxrss / TARGET_BYTES:.2f}")
+    print(
+        f"wall seconds        {seconds:8.3f}   target {TARGET_SECONDS:.1f} s     ratio {seconds / TARGET_SECONDS:.2f}"
+    )
+    print(
+        f"  first solve       {cold:8.3f}   (includes one-time loading of compiled helpers)  ratio "
+        f"{cold / TARGET_SECONDS:.2f}"
+    )
+    print(
+        f"peak tracemalloc    {traced_peak / 2**30:8.3f} GiB  target {TARGET_BYTES / 2**30:.1f} GiB  ratio "
+        f"{traced_peak / TARGET_BYTES:.2f}"
+    )
+    print(
+        f"peak maxrss         {maxrss / 2**30:8.3f} GiB  target {TARGET_BYTES / 2**30:.1f} GiB  ratio "
+        f"{maxrss / TARGET_BYTES:.2f}"
+    )
 
 
 if __name__ == "__main__":

@@ -1,7 +1,9 @@
 """What every submitted document goes through before anything is stored or queued.
 
-:func:`admit` validates (``worker.document.parse_document``), estimates
-(``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
+:func:`admit` validates (``worker.document.parse_document``), refuses a grid
+model whose kernels would be too large to compile
+(``worker.estimate.check_structure``), estimates (``worker.estimate.estimate``),
+refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
 checks that a warm start names a finished job the caller may read.  It never
 builds the problem and never imports the numba kernels, so bad input is
@@ -18,7 +20,7 @@ from service.settings import Settings
 from service.store import JobStore, is_job_id
 from worker.document import InitialJob, ProblemDocument, parse_document
 from worker.errors import InvalidDocument, TooLarge
-from worker.estimate import estimate
+from worker.estimate import check_structure, estimate
 
 __all__ = ["Admitted", "admit"]
 
@@ -47,13 +49,18 @@ def admit(
     *,
     store: JobStore | None = None,
     may_see: Callable[[dict[str, Any]], bool] | None = None,
+    earlier: Admitted | None = None,
 ) -> Admitted:
     """Validate, estimate and size-check ``raw``; raise ``InvalidDocument`` or ``TooLarge``.
 
     With ``store``, a warm start (``solver.initial.job``) must name a ``done``
-    job whose record ``may_see`` accepts.
+    job whose record ``may_see`` accepts.  ``earlier``: a document admitted
+    before whose validated ``model`` object ``raw`` carries in place of its
+    own (a sweep's combinations, ``service.submission``); its feasibility
+    result stands, as the check reads the model alone.
     """
     document = parse_document(raw)
+    check_structure(document)
     cap = int(settings.max_problem_mb * _MIB)
     size = estimate(document, limits={"max_bytes": cap})
     if size["bytes"] > cap:
@@ -66,7 +73,9 @@ def admit(
         )
     feasibility = None
     check = _feasibility_check() if document.model.kind == "grid" else None
-    if check is not None:
+    if earlier is not None and earlier.document.model is document.model:
+        feasibility = earlier.feasibility
+    elif check is not None:
         feasibility = check(document, budget_s=FEASIBILITY_BUDGET_S)
     if store is not None:
         _check_warm_start(document, store, may_see or (lambda record: True))

@@ -84,6 +84,7 @@ def _parser() -> argparse.ArgumentParser:
     add.add_argument("--max-active-jobs", type=int, metavar="N", help="its own cap on queued+running jobs")
     add.add_argument("--max-active-high-jobs", type=int, metavar="N", help="its own cap on priority-high ones")
     add.add_argument("--max-problem-mb", type=float, metavar="MB", help="its own memory cap of one job, MiB")
+    add.add_argument("--max-running-jobs", type=int, metavar="N", help="its own cap on jobs run at once")
     listing = key_commands.add_parser("list", help="names, admin flags, creation times, own limits (never keys)")
     listing.add_argument("--json", action="store_true", help="print JSON")
     revoke = key_commands.add_parser("revoke", help="delete a key: its next request is refused (401)")
@@ -342,6 +343,7 @@ def _cmd_keys(args: argparse.Namespace) -> int:
                 "max_active_jobs": args.max_active_jobs,
                 "max_active_high_jobs": args.max_active_high_jobs,
                 "max_problem_mb": args.max_problem_mb,
+                "max_running_jobs": args.max_running_jobs,
             }
             key = keys.add(args.name, admin=args.admin, limits={k: v for k, v in limits.items() if v is not None})
             kind = "an admin key" if args.admin else "a key"

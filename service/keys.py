@@ -62,7 +62,12 @@ KEY_TOKEN_BYTES = 32
 """Random bytes in a key (256 bits)."""
 RESERVED_NAMES = frozenset({"anonymous"})
 """Names no key may take: ``anonymous`` owns the jobs submitted while auth was off."""
-KEY_LIMITS: dict[str, type] = {"max_active_jobs": int, "max_active_high_jobs": int, "max_problem_mb": float}
+KEY_LIMITS: dict[str, type] = {
+    "max_active_jobs": int,
+    "max_active_high_jobs": int,
+    "max_problem_mb": float,
+    "max_running_jobs": int,
+}
 """The limits a key may carry of its own (each overrides the setting of the same meaning)."""
 
 _NAME = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.@-]{0,63}")

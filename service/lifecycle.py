@@ -1,4 +1,4 @@
-"""What happens once a job has finished: its webhook is queued and its sweep moves on.
+"""What happens once a job has finished: its webhook is queued, its sweep moves on, waiting workers look again.
 
 :func:`job_finished` is called where a job reaches a terminal state (done,
 failed, canceled): by ``service.task.run_job`` after an execution, and by the
@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import logging
 
-from service import sweeps, webhooks
+from service import dispatch, sweeps, webhooks
 from service.store import TERMINAL_STATES, JobStore
 
 __all__ = ["job_finished"]
@@ -31,6 +31,7 @@ def job_finished(store: JobStore, job_id: str, outcome: str) -> None:
     """
     if outcome not in TERMINAL_STATES:
         return
+    dispatch.wake(store)
     for step in (webhooks.schedule, sweeps.job_finished):
         try:
             step(store, job_id)

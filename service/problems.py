@@ -11,7 +11,8 @@ responses themselves: they raise, and :func:`handle_error` translates
   alike), missing key 401, malformed JSON 400, ...),
 * FastAPI's ``RequestValidationError`` (a bad query parameter or header, 400),
 * Starlette's ``HTTPException`` (no such route 404, wrong method 405, ...),
-* Redis being unreachable, out of memory or read-only (503),
+* Redis being full (a write refused at ``maxmemory``, by a plain command or
+  inside a Lua script: 503 ``redis-full``), unreachable or read-only (503),
 * anything else (500, logged with its traceback; never caused by input).
 
 ``type`` is a URN naming the kind of problem (``urn:fixq:problem:not-found``);
@@ -96,6 +97,13 @@ _STORE_UNAVAILABLE = (
 )
 """Redis failures that are the store's state, not a bug: answered 503 with Retry-After."""
 
+def _redis_full(exc: Exception) -> bool:
+    """True when Redis refused a write at ``maxmemory``: a plain command's error, or a Lua script's."""
+    if isinstance(exc, redis.exceptions.OutOfMemoryError):
+        return True
+    return isinstance(exc, redis.exceptions.ResponseError) and "OOM command not allowed" in str(exc)
+
+
 _FIXQ_KINDS = {422: "invalid-document", 413: "too-large", 409: "canceled"}
 
 
@@ -140,6 +148,16 @@ async def handle_error(request: Request, exc: Exception) -> JSONResponse:
         return _from_validation(exc)
     if isinstance(exc, HTTPException):
         return _from_http(request, exc)
+    if _redis_full(exc):
+        logger.warning("redis is full (maxmemory) while answering %s %s: %s", request.method, request.url.path, exc)
+        return problem_response(
+            503,
+            "redis-full",
+            "service unavailable",
+            "the job store (Redis) is full: it refused a write at its maxmemory limit and nothing was stored; "
+            "try again later (an operator must raise maxmemory or let finished jobs expire)",
+            headers={"Retry-After": "30"},
+        )
     if isinstance(exc, _STORE_UNAVAILABLE):
         logger.warning("redis unavailable while answering %s %s: %s", request.method, request.url.path, exc)
         return problem_response(

@@ -1,10 +1,13 @@
-"""fixq's RQ queues: their names, and enqueueing one execution by import path.
+"""fixq's RQ queues: their names, the keys of the pending jobs, and enqueueing one job.
 
-The service never imports the task it enqueues: RQ is handed the import path
-``service.task.run_job`` and the job id.  Each *execution* of a job gets its own
-RQ job id, ``{job_id}-{n}`` with ``n`` counting enqueues (RQ 3.0 allows only
+Enqueueing a job makes it pending for its owner and puts a *ticket* on the RQ
+queue of its priority (see ``service.dispatch`` for why and how a worker
+picks the job a ticket runs).  The service never imports the task it
+enqueues: RQ is handed the import path ``service.task.run_next`` and the id
+of the job the ticket is issued for.  Each enqueue of a job gets its own RQ
+job id, ``{job_id}-{n}`` with ``n`` counting enqueues (RQ 3.0 allows only
 ``[A-Za-z0-9_-]`` in ids), so an RQ job left behind by a dead worker never
-shares its id, its registries or its result with the execution that replaces it.
+shares its id, its registries or its result with the one that replaces it.
 
 This module is the bottom of the queue side: of fixq's own it imports only
 the document's priorities and the settings' type, so the job store can
@@ -27,6 +30,8 @@ if TYPE_CHECKING:
 
 __all__ = [
     "PRIORITIES",
+    "WAKE_BACKLOG",
+    "DispatchKeys",
     "QUEUE_NAMES",
     "RQ_RECORD_TTL_S",
     "TASK",
@@ -38,8 +43,11 @@ __all__ = [
     "rq_job_key",
 ]
 
-TASK = "service.task.run_job"
-"""Import path of the RQ task; its only argument is the fixq job id."""
+TASK = "service.task.run_next"
+"""Import path of a ticket's RQ task; its only argument is the id of the job the ticket was issued for."""
+
+WAKE_BACKLOG = 16
+"""Most wake-ups kept for workers waiting on capped owners (count); one per waiting worker is all that is useful."""
 
 QUEUE_NAMES: dict[str, str] = {priority: f"fixq-{priority}" for priority in PRIORITIES}
 """RQ queue name per priority (``worker.document.PRIORITIES``, in the order workers drain their queues)."""
@@ -72,10 +80,58 @@ def execution_id(job_id: str, enqueue_number: int) -> str:
     return f"{job_id}-{enqueue_number}"
 
 
-def enqueue_execution(
-    connection: redis.Redis, settings: Settings, job_id: str, rq_job_id: str, priority: str
-) -> None:
-    """Put one execution of ``job_id`` on the RQ queue of ``priority``."""
+class DispatchKeys:
+    """Names of the Redis keys that order the pending jobs (``service.dispatch``), under one prefix."""
+
+    def __init__(self, prefix: str) -> None:
+        self.prefix = prefix
+        self.tickets = f"{prefix}:dispatch:tickets"
+        """Hash: each waiting ticket's RQ job id → the job it stands for."""
+        self.wake = f"{prefix}:dispatch:wake"
+        """List a worker waiting on capped owners blocks on; pushed to by enqueues and finished jobs."""
+
+    def ring(self, priority: str) -> str:
+        """List of the owners with pending jobs of ``priority``, in the order of their turns."""
+        return f"{self.prefix}:dispatch:ring:{priority}"
+
+    def pending(self, priority: str, owner: str) -> str:
+        """List of the pending job ids of ``owner`` at ``priority``, oldest first."""
+        return f"{self.prefix}:dispatch:pending:{priority}:{owner}"
+
+    def picked(self, owner: str) -> str:
+        """Sorted set of the jobs of ``owner`` taken by workers, scored by when (ms): its running count."""
+        return f"{self.prefix}:dispatch:picked:{owner}"
+
+
+# ARGV 1 job id, 2 ticket, 3 job-hash key prefix, 4 ring key prefix, 5 pending key prefix,
+# 6 tickets hash, 7 wake list, 8 wake backlog.
+_ENQUEUE = """
+local id = ARGV[1]
+local owner, priority = unpack(redis.call('HMGET', ARGV[3] .. id, 'owner', 'priority'))
+if not owner then return 0 end
+priority = priority or 'normal'
+local ring = ARGV[4] .. priority
+local pending = ARGV[5] .. priority .. ':' .. owner
+if not redis.call('LPOS', pending, id) then redis.call('RPUSH', pending, id) end
+if not redis.call('LPOS', ring, owner) then redis.call('RPUSH', ring, owner) end
+redis.call('HSET', ARGV[6], ARGV[2], id)
+redis.call('RPUSH', ARGV[7], '1')
+redis.call('LTRIM', ARGV[7], -tonumber(ARGV[8]), -1)
+return 1
+"""
+
+
+def enqueue_execution(connection: redis.Redis, settings: Settings, job_id: str, rq_job_id: str, priority: str) -> None:
+    """Make the ``queued`` job ``job_id`` pending for its owner; put its ticket ``rq_job_id`` on its queue.
+
+    Making it pending is idempotent (a job already pending keeps its place),
+    so the reaper may call this again for a job whose ticket was lost.
+    """
+    keys = DispatchKeys(settings.redis_prefix)
+    connection.register_script(_ENQUEUE)(
+        args=[job_id, rq_job_id, f"{settings.redis_prefix}:job:", keys.ring(""), keys.pending("", ""),
+              keys.tickets, keys.wake, WAKE_BACKLOG],
+    )  # fmt: skip
     Queue(queue_name(priority), connection=connection).enqueue(
         TASK,
         job_id,
@@ -83,7 +139,7 @@ def enqueue_execution(
         job_timeout=settings.job_timeout_s,
         result_ttl=RQ_RECORD_TTL_S,
         failure_ttl=RQ_RECORD_TTL_S,
-        description=f"fixq job {job_id}",
+        description=f"fixq ticket of job {job_id}",
     )
 
 

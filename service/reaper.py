@@ -11,9 +11,13 @@ worker process runs a ``Reaper`` thread which, every ``reaper_interval_s``,
   flag becomes ``canceled``, and one that has already started
   ``max_attempts`` executions becomes ``failed`` (and goes through
   ``service.lifecycle`` as any finished job does);
-* finds ``queued`` jobs whose current RQ job is in no fixq queue and has not
-  started for ``lease_s`` (a lost enqueue, or a worker that died between
-  popping the job and starting it) and enqueues them again;
+* finds ``queued`` jobs whose ticket (``rq_job``, see ``service.dispatch``)
+  is in no fixq queue and has not started for ``lease_s`` (a lost enqueue, or
+  a worker that died between taking the ticket and claiming the job it
+  picked) and enqueues them again: pending for their owner once more, with a
+  new ticket; and forgets the tickets of jobs no longer queued;
+* drops jobs whose record expired (``job_ttl_s``) from the listings and
+  state sets, and deletes sweeps whose jobs have all expired;
 * creates the sweep rows nobody created: a chained row whose predecessor
   finished while the process that was to create its successor died, or a
   row the ``POST`` left behind (``service.sweeps.rescue_pending``).
@@ -34,7 +38,7 @@ from datetime import datetime, timezone
 import redis
 from rq.utils import utcparse
 
-from service import lifecycle, sweeps
+from service import dispatch, lifecycle, sweeps
 from service._periodic import PeriodicThread
 from service.queue import PRIORITIES, enqueue_execution, queue_key, rq_job_key
 from service.store import JobStore
@@ -59,6 +63,9 @@ def reap(store: JobStore, *, use_lock: bool = True) -> dict[str, list[str]]:
             return report
     _reap_abandoned(store, report)
     _rescue_lost(store, report)
+    dispatch.prune_tickets(store)
+    store.forget_expired()
+    sweeps.forget_expired_sweeps(store)
     created = sweeps.rescue_pending(store)
     if created:
         logger.warning("created %d sweep jobs nobody had created: %s", len(created), ", ".join(created))
@@ -120,7 +127,7 @@ def _rescue_lost(store: JobStore, report: dict[str, list[str]]) -> None:
 
 
 def _started_recently(store: JobStore, rq_job_id: str, grace_ms: float) -> bool:
-    """True while a worker has popped the RQ job and is about to claim it."""
+    """True while a worker has taken the ticket and is picking a job, waiting for a slot, or claiming."""
     status, started_at = store.redis.hmget(rq_job_key(rq_job_id), "status", "started_at")
     if status != b"started" or not started_at:
         return False

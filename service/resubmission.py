@@ -29,7 +29,8 @@ is one, the new job is created already ``done``:
   like any other — with ``reused: true`` and ``reused_from`` naming the job
   whose result it carries (answered ``201``, not ``202``: nothing is pending);
 * its result and convergence log are server-side copies (Redis ``COPY``) of
-  that job's, kept ``result_ttl_s`` from now; nothing travels through the API;
+  that job's, the result kept ``result_ttl_s`` from now and the log, like the
+  record and the document, ``job_ttl_s``; nothing travels through the API;
 * it never reaches a queue, so it costs no worker time and takes no slot of
   the owner's ``max_active_jobs``.
 
@@ -101,8 +102,8 @@ return 1
 """
 
 # KEYS 1..5 the state sets (queued, running, done, failed, canceled), 6 new job
-# hash, 7 new result, 8 earlier result, 9 new log, 10 earlier log.
-# ARGV 1 new id, 2 result ttl s, 3.. field/value pairs.
+# hash, 7 new result, 8 earlier result, 9 new log, 10 earlier log, 11 new document.
+# ARGV 1 new id, 2 result ttl s, 3 job ttl s, 4.. field/value pairs.
 _MARK_REUSED = """
 if redis.call('HGET', KEYS[6], 'state') ~= 'queued' then return 0 end
 if redis.call('EXISTS', KEYS[8]) == 0 then return 0 end
@@ -110,16 +111,18 @@ redis.call('COPY', KEYS[8], KEYS[7], 'REPLACE')
 redis.call('EXPIRE', KEYS[7], ARGV[2])
 if redis.call('EXISTS', KEYS[10]) == 1 then
   redis.call('COPY', KEYS[10], KEYS[9], 'REPLACE')
-  redis.call('EXPIRE', KEYS[9], ARGV[2])
+  redis.call('EXPIRE', KEYS[9], ARGV[3])
 end
-redis.call('HSET', KEYS[6], unpack(ARGV, 3))
+redis.call('HSET', KEYS[6], unpack(ARGV, 4))
+redis.call('EXPIRE', KEYS[6], ARGV[3])
+redis.call('EXPIRE', KEYS[11], ARGV[3])
 redis.call('SREM', KEYS[1], ARGV[1])
 redis.call('SADD', KEYS[3], ARGV[1])
 redis.call('HSET', KEYS[6], 'state', 'done')
 return 1
 """
 
-_COPIED_FIELDS = ("status", "iterations", "error_bound", "progress")
+_COPIED_FIELDS = ("status", "iterations", "error_bound", "progress", "log_dropped")
 
 
 
@@ -271,8 +274,9 @@ class SolvedJobs:
         fields.update({name: value for name, value in zip(_COPIED_FIELDS, copied) if value is not None})
         marked = self._mark_reused(
             keys=[*store.keys.states, store.keys.job(job_id), store.keys.result(job_id), store.keys.result(earlier_id),
-                  store.keys.log(job_id), store.keys.log(earlier_id)],
-            args=[job_id, store.settings.result_ttl_s, *(item for pair in fields.items() for item in pair)],
+                  store.keys.log(job_id), store.keys.log(earlier_id), store.keys.doc(job_id)],
+            args=[job_id, store.settings.result_ttl_s, store.settings.job_ttl_s,
+                  *(item for pair in fields.items() for item in pair)],
         )  # fmt: skip
         if not marked:
             return record, False

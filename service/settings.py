@@ -36,10 +36,17 @@ class Settings(BaseSettings):
         None, ge=1, le=65535, description="Loopback port of the embedded Redis server; None picks a free one."
     )
     result_ttl_s: int = Field(
-        604_800, gt=0, description="Lifetime of a stored result and its log, in seconds (7 days)."
+        604_800, gt=0, description="Lifetime of a stored result in seconds (7 days), from the job's end."
     )
     checkpoint_ttl_s: int = Field(
         172_800, gt=0, description="Lifetime of a checkpoint after its last save, in seconds (2 days)."
+    )
+    job_ttl_s: int = Field(
+        2_592_000,
+        gt=0,
+        description="Lifetime of a finished job (done, failed or canceled) in seconds (30 days): its record, "
+        "document and log, then its place in the listings; a sweep goes once all its jobs have. Queued and "
+        "running jobs never expire. Keep it at least result_ttl_s: a result outliving its record is unreachable.",
     )
     lease_s: float = Field(
         15.0,
@@ -57,6 +64,13 @@ class Settings(BaseSettings):
     )
     max_attempts: int = Field(5, ge=1, description="Executions a job may start before the reaper fails it.")
     job_timeout_s: int = Field(86_400, gt=0, description="RQ's hard limit on one execution, in seconds (24 h).")
+    max_solve_s: float = Field(
+        21_600.0,
+        gt=0,
+        description="Longest solve of one job in seconds (6 h): a job stops with status time_limit at the smaller "
+        "of this and its solver.time_limit_s, so it bounds jobs that ask for no time limit. Must be at most "
+        "job_timeout_s (with room for compiling and storing the result), or RQ kills the job first.",
+    )
     idempotency_ttl_s: int = Field(86_400, gt=0, description="How long an Idempotency-Key is remembered, in seconds.")
     max_problem_mb: float = Field(
         float(DEFAULT_MAX_PROBLEM_MB),
@@ -153,6 +167,19 @@ class Settings(BaseSettings):
         description="Memory cap of one job of one key in MiB (2**20 bytes), on the admission estimate; larger "
         "ones get 413. A key may carry its own cap (`--max-problem-mb MB`); max_problem_mb, the workers' "
         "cap, applies to every key as well.",
+    )
+    key_max_running_jobs: int = Field(
+        0,
+        ge=0,
+        description="Most jobs of one key that workers run at once (count; 0: half the workers registered, "
+        "rounded up); the key's other jobs wait while workers serve the other keys in turn. A key may carry "
+        "its own cap (`fixq keys add NAME --max-running-jobs N`).",
+    )
+    dispatch_wait_s: float = Field(
+        5.0,
+        gt=0,
+        description="Seconds a free worker waits for a slot when every key with queued jobs is at its "
+        "key_max_running_jobs, before it puts its ticket back on the queue (at most lease_s/2).",
     )
 
 

@@ -2,8 +2,9 @@
 
 This is the queue side's glue and sits on the service side of the wall: it
 imports the numerics (``worker``), and nothing in ``worker`` imports it.
-``run_job(job_id)`` is one *execution* of a job, enqueued by its import path
-``service.task.run_job`` (``service.queue.TASK``).  It
+``run_job(job_id)`` is one *execution* of a job.  The RQ queues carry
+tickets, ``run_next`` (import path ``service.queue.TASK``), each running one
+execution of the job ``service.dispatch`` picks in turn.  An execution
 
 1. claims the job: takes the lease ``fixq:lease:{id}`` (``SET NX PX``, a fresh
    token per execution) and marks it ``running`` in one Lua script; if another
@@ -57,6 +58,7 @@ import redis
 from rq import Queue, SimpleWorker, Worker, get_current_job
 from rq.timeouts import JobTimeoutException
 
+from service import dispatch
 from service.lifecycle import job_finished
 from service.queue import ordered_queue_names
 from service.reaper import Reaper, reap
@@ -66,7 +68,7 @@ from service.webhooks import Notifier
 from worker import solve
 from worker.errors import Canceled, FixqError, InvalidDocument
 
-__all__ = ["decode_checkpoint", "encode_checkpoint", "run_job", "run_worker"]
+__all__ = ["decode_checkpoint", "encode_checkpoint", "run_job", "run_next", "run_worker"]
 
 logger = logging.getLogger("fixq.task")
 
@@ -90,6 +92,26 @@ def run_job(job_id: str) -> dict[str, Any]:
     outcome = _Execution(store, job_id).run()
     job_finished(store, job_id, outcome)
     return {"job": job_id, "outcome": outcome}
+
+
+def run_next(job_id: str) -> dict[str, Any]:
+    """Run one ticket (``service.dispatch``): an execution of the next job in turn; ``{"job", "outcome"}``.
+
+    ``job_id`` is the job the ticket was issued for; ``job`` is the one run.
+    ``outcome`` is ``run_job``'s, or ``idle`` when nothing was pending (or
+    every owner stayed at its cap and the ticket went back on its queue).
+    """
+    settings = get_settings()
+    current = get_current_job()
+    connection = current.connection if current is not None else _connection(settings)
+    store = JobStore(connection, settings)
+    ticket = current.id if current is not None else ""
+    picked = dispatch.next_job(store, ticket)
+    if picked is None:
+        return {"job": job_id, "outcome": "idle"}
+    outcome = _Execution(store, picked).run()
+    job_finished(store, picked, outcome)
+    return {"job": picked, "outcome": outcome}
 
 
 _CONNECTIONS: dict[str, redis.Redis] = {}

@@ -39,7 +39,9 @@ def main() -> int:
         document["solver"].pop("time_limit_s", None)
         solve(document, limits=payload.get("limits"))
         if not bridge.is_warm(payload["module"]):
-            compile_grid(parse_document(document), limits=payload.get("limits"), reward_storage=payload["reward_storage"])
+            compile_grid(
+                parse_document(document), limits=payload.get("limits"), reward_storage=payload["reward_storage"]
+            )
     finally:
         bridge.release(payload["lock"])
     return 0

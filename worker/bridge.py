@@ -51,7 +51,16 @@ from typing import Any
 from worker import _codegen
 from worker.environment import COLD_BRIDGE, cold_bridge_enabled
 
-__all__ = ["BRIDGE_MAX_BYTES", "BRIDGE_MAX_PAIRS", "compile_later", "enabled", "is_warm", "mark_warm", "release", "wait_idle"]
+__all__ = [
+    "BRIDGE_MAX_BYTES",
+    "BRIDGE_MAX_PAIRS",
+    "compile_later",
+    "enabled",
+    "is_warm",
+    "mark_warm",
+    "release",
+    "wait_idle",
+]
 
 BRIDGE_MAX_PAIRS = 12_000_000
 """Largest number of (point, choice) pairs solved by numpy table scans while kernels compile (count).

@@ -14,10 +14,16 @@ import pathlib
 __all__ = [
     "COLD_BRIDGE",
     "DEFAULT_MAX_PROBLEM_MB",
+    "DEFAULT_KERNEL_CACHE_MB",
+    "DEFAULT_MAX_LOADED_STRUCTURES",
     "KERNEL_CACHE",
+    "KERNEL_CACHE_MB",
+    "MAX_LOADED_STRUCTURES",
     "MAX_PROBLEM_MB",
     "cold_bridge_enabled",
+    "kernel_cache_bytes",
     "kernel_cache_setting",
+    "max_loaded_structures",
     "max_problem_bytes",
 ]
 
@@ -32,7 +38,22 @@ COLD_BRIDGE = "FIXQ_COLD_BRIDGE"
 kernels compile in the background (see :mod:`worker.bridge`)."""
 
 KERNEL_CACHE = "FIXQ_KERNEL_CACHE"
-"""Folder of the compiled kernels (default ``~/.cache/fixq/kernels``)."""
+"""Folder of the compiled kernels (default ``~/.cache/fixq/kernels``): it must be the worker user's
+own, writable by no one else (group and other access is removed), else the worker refuses it."""
+
+KERNEL_CACHE_MB = "FIXQ_KERNEL_CACHE_MB"
+"""Size limit of the compiled-kernel folder in MiB (default ``512``): past it, the least recently used
+model structures' kernels are deleted (and compiled again if needed)."""
+
+DEFAULT_KERNEL_CACHE_MB = 512
+"""Default of ``FIXQ_KERNEL_CACHE_MB`` (MiB)."""
+
+MAX_LOADED_STRUCTURES = "FIXQ_MAX_LOADED_STRUCTURES"
+"""Model structures whose kernels a worker process loads before it is replaced by a fresh one, a
+count (default ``64``): compiled code is never freed, so this bounds a worker's memory."""
+
+DEFAULT_MAX_LOADED_STRUCTURES = 64
+"""Default of ``FIXQ_MAX_LOADED_STRUCTURES`` (count)."""
 
 _MIB = 2**20
 _OFF = ("off", "0", "false", "no")
@@ -46,6 +67,24 @@ def max_problem_bytes() -> int:
     except ValueError:
         megabytes = float(DEFAULT_MAX_PROBLEM_MB)
     return int(megabytes * _MIB)
+
+
+def _number(variable: str, default: float) -> float:
+    raw = os.environ.get(variable, "").strip()
+    try:
+        return float(raw) if raw else float(default)
+    except ValueError:
+        return float(default)
+
+
+def kernel_cache_bytes() -> int:
+    """The kernel folder's size limit in bytes: ``FIXQ_KERNEL_CACHE_MB`` (MiB), default ``DEFAULT_KERNEL_CACHE_MB``."""
+    return int(max(_number(KERNEL_CACHE_MB, DEFAULT_KERNEL_CACHE_MB), 0.0) * _MIB)
+
+
+def max_loaded_structures() -> int:
+    """``FIXQ_MAX_LOADED_STRUCTURES`` (count, at least 1), default ``DEFAULT_MAX_LOADED_STRUCTURES``."""
+    return max(int(_number(MAX_LOADED_STRUCTURES, DEFAULT_MAX_LOADED_STRUCTURES)), 1)
 
 
 def cold_bridge_enabled() -> bool:

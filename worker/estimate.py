@@ -37,10 +37,14 @@ from dataclasses import dataclass
 from typing import Any
 
 __all__ = [
+    "DIRECT_SOLVE_MAX_POINTS",
+    "KRYLOV_RESTART",
+    "MAX_INTERPOLATION_CORNERS",
     "PRECOMPUTE_CAP_SHARE",
     "PRECOMPUTE_MAX_BYTES",
     "REWARD_STORAGES",
     "GridPlan",
+    "check_structure",
     "estimate",
     "grid_plan",
     "precompute_budget",
@@ -83,6 +87,27 @@ RESULT_BYTES_PER_STATE = 120
 """Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
 SOLVER_BYTES_PER_STATE = 96
 """Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
+
+MAX_INTERPOLATION_CORNERS = 64
+"""Most interpolation corners (``2 ** state variables moved by a next expression``) a grid model may have (count).
+
+Every kernel is generated with each corner written out, so compile time and memory grow with them; measured
+on this machine (2-core x86, cold kernel cache, state variables of 2 points): 8 corners compile in 2 s with 40 MiB more
+data, 64 in 10–14 s with 100 MiB, 128 in 27 s with 215 MiB more resident memory, 256 in more than 55 s with
+more than 800 MiB, and 4,096 grew past 7 GB before failing.  Structures over the limit are refused."""
+COMPILE_CORNER_S = 0.2
+"""Compile time per interpolation corner, on top of ``COMPILE_S`` (seconds; measured on this machine)."""
+COMPILE_BASE_BYTES = 32 * 2**20
+COMPILE_CORNER_BYTES = 3 * 2**19
+"""Memory a cold compile adds: ``COMPILE_BASE_BYTES`` (32 MiB) plus this (1.5 MiB) per interpolation corner
+(bytes; measured on this machine, see ``MAX_INTERPOLATION_CORNERS``).  It is reported apart from ``bytes`` (the
+solve's arrays) and covered by the margin of the per-job memory limit (:mod:`worker.memory`)."""
+DIRECT_SOLVE_MAX_POINTS = 2_000
+"""Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
+then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
+larger problems use restarted GMRES, whose memory is ``KRYLOV_RESTART + 4`` vectors."""
+KRYLOV_RESTART = 30
+"""Policy iteration above ``DIRECT_SOLVE_MAX_POINTS``: GMRES steps per restart cycle (count)."""
 
 _MIB = 2**20
 
@@ -244,10 +269,79 @@ def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
     policy_nodes = n * nodes * 16
     matrix = n * nodes * shocks * 12 + 8 * (n + 1)
     if method == "policy_iteration":
-        # A sparse LU of I − βP_σ fills in; ten times the matrix is a rough allowance (common practice).
-        matrix *= 10
+        matrix += linear_solve_bytes(n, n * nodes * shocks)
     chain = 8 * shocks * shocks
     return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
+
+
+def linear_solve_bytes(n: int, entries: int) -> int:
+    """Memory of one exact evaluation of policy iteration, ``P_σ`` with ``entries`` stored entries.
+
+    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC and its LU,
+    whose fill-in is at most ``n²`` entries of 12 bytes each, plus SuperLU's
+    work arrays.  Iterative: ``I − βP_σ`` is applied, never formed; GMRES keeps
+    ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
+    """
+    if n <= DIRECT_SOLVE_MAX_POINTS:
+        return 2 * (entries + n) * 12 + n * n * 12 + 64 * n
+    return (KRYLOV_RESTART + 6) * 8 * n + (entries + n) * 12
+
+
+def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) -> float:
+    """Time of one exact evaluation: an LU's ``n³/3`` floating-point operations at most (1 ns each), or the GMRES
+    mat-vecs a rate of β needs to bring the residual to the target (an upper guess for chains that mix slowly)."""
+    if n <= DIRECT_SOLVE_MAX_POINTS:
+        return n**3 / 3 * 1e-9
+    scale = 1.0 / (1.0 - beta)
+    target = max(1e-3 * tolerance * (1.0 - beta) / scale, 1e-16)
+    matvecs = math.ceil(math.log(target) / math.log(beta))
+    return matvecs * (entries + 2 * n + KRYLOV_RESTART * n) * MATVEC_NS * 1e-9
+
+
+def _compile_bytes(corners: int) -> int:
+    return COMPILE_BASE_BYTES + COMPILE_CORNER_BYTES * corners
+
+
+def _linear_solve_words(n: int) -> str:
+    if n <= DIRECT_SOLVE_MAX_POINTS:
+        return f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points: fill-in at most n²)"
+    return (
+        f"exact evaluations by restarted GMRES ({KRYLOV_RESTART} steps a cycle; above {DIRECT_SOLVE_MAX_POINTS:,} "
+        "points an LU's fill-in is unbounded), mat-vecs guessed for a chain that mixes at rate β"
+    )
+
+
+def interpolation_corners(model: Any) -> int:
+    """Corners of the interpolation of tomorrow's state: ``2 ** state variables moved by a next expression``."""
+    return 2 ** sum(1 for name in model.states if name in model.next)
+
+
+def check_structure(doc: Any) -> None:
+    """Refuse a grid model whose generated kernels would be too large to compile.
+
+    Raises
+    ------
+    TooLarge
+        At ``model.next``, when more than ``MAX_INTERPOLATION_CORNERS`` corners.
+    """
+    model = doc.model
+    if model.kind != "grid":
+        return
+    corners = interpolation_corners(model)
+    if corners > MAX_INTERPOLATION_CORNERS:
+        from worker.errors import TooLarge
+
+        moved = sum(1 for name in model.states if name in model.next)
+        most = MAX_INTERPOLATION_CORNERS.bit_length() - 1
+        raise TooLarge.at(
+            "model.next",
+            f"{moved} state variables move by a next expression, so tomorrow's value is split over 2^{moved} = "
+            f"{corners:,} grid points at every (point, choice point) pair; the compiled kernels allow at most "
+            f"{MAX_INTERPOLATION_CORNERS} (at most {most} state variables with a next expression): move some by "
+            "a choice with next_of instead, or merge state variables",
+            corners=corners,
+            max_corners=MAX_INTERPOLATION_CORNERS,
+        )
 
 
 def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
@@ -291,8 +385,12 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         point), ``pairs`` (point × choice point); ``bytes`` (peak working
         memory of the reward storage that will be used, interpreter and
         libraries not counted); ``reward_storage`` (``tables`` or
-        ``on_the_fly``); ``seconds`` (a rough time guess) with its
-        ``basis``; ``notes``, plain words.
+        ``on_the_fly``); ``compile_bytes`` and ``compile_seconds`` (what
+        the first solve of a grid model's structure on a machine adds while
+        its kernels compile; 0 for tabular); ``seconds`` (a rough time
+        guess, compiling not counted) with its ``basis``; ``notes``, plain
+        words.  A grid model over ``MAX_INTERPOLATION_CORNERS`` is sized all
+        the same: :func:`check_structure` is what refuses it.
     """
     if doc.model.kind == "tabular":
         return _tabular_estimate(doc)
@@ -304,7 +402,10 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     if plan.reward_storage == "tables":
         setup = plan.pairs * NUMPY_PAIR_NS
         step = plan.pairs * TABLE_READ_NS
-        how = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans ({TABLE_READ_NS:g} ns per pair)"
+        how = (
+            f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans "
+            f"({TABLE_READ_NS:g} ns per pair)"
+        )
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
         blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
@@ -324,6 +425,12 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     if plan.reward_storage == "tables":
         step_total = steps * step
     seconds = (setup + step_total + steps * evaluation) * 1e-9
+    if doc.solver.method == "policy_iteration":
+        seconds += steps * linear_solve_seconds(
+            plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
+        )
+        basis += f"; {_linear_solve_words(plan.n)}"
+    compile_s = COMPILE_S + COMPILE_CORNER_S * plan.nodes
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
         used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
@@ -335,12 +442,14 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         notes.append(plan.hint_note)
     if plan.interpolated:
         notes.append(
-            f"{plan.interpolated} state{'s' if plan.interpolated > 1 else ''} move by a next expression: tomorrow's value is "
+            f"{plan.interpolated} state{'s' if plan.interpolated > 1 else ''} move by a next expression: "
+            "tomorrow's value is "
             f"split over {plan.nodes} grid points, and points outside the grid are clamped and counted"
         )
     notes.append("memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)")
     notes.append(
-        f"the first solve of a new model structure on a machine also compiles its kernels (about {COMPILE_S:g} s, then cached)"
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
+        f"and {_compile_bytes(plan.nodes) / _MIB:,.0f} MiB, then cached)"
     )
     return {
         "kind": "grid",
@@ -351,6 +460,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "pairs": plan.pairs,
         "bytes": plan.bytes,
         "reward_storage": plan.reward_storage,
+        "compile_bytes": _compile_bytes(plan.nodes),
+        "compile_seconds": compile_s,
         "seconds": seconds,
         "basis": f"{basis}; {how}",
         "notes": notes,
@@ -369,14 +480,24 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     stored = entries if not dense else min(entries, pairs * n_states)
     csr = stored * 12 + 8 * (pairs + 1)
     document = entries * 8 if dense else entries * 32
+    # Building the CSR from entries: row and column columns, a contiguous copy of p, scipy's conversion copies.
+    conversion = 0 if dense else entries * 32
     common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
-    matrix = n_states * n_states * 12 if doc.solver.method != "policy_iteration" else n_states * n_states * 120
-    matrix = min(matrix, stored * 12 * (10 if doc.solver.method == "policy_iteration" else 1))
+    # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
+    policy_entries = min(stored, n_states * n_states)
+    matrix = policy_entries * 12 + 8 * (n_states + 1)
     steps, per_iteration, basis = _steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * TABLE_READ_NS
-    seconds = (steps * step + steps * per_iteration * min(stored, n_states * n_states) * MATVEC_NS) * 1e-9
+    seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
+    if doc.solver.method == "policy_iteration":
+        matrix += linear_solve_bytes(n_states, policy_entries)
+        seconds += steps * linear_solve_seconds(
+            n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance)
+        )
+        basis += f"; {_linear_solve_words(n_states)}"
     notes = [
-        f"{'dense' if dense else 'sparse'} transition with {entries:,} entries, held as a sparse matrix of at most {stored:,}",
+        f"{'dense' if dense else 'sparse'} transition with {entries:,} entries, held as a sparse matrix of at most "
+        f"{stored:,}",
         "memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)",
     ]
     return {
@@ -386,8 +507,10 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + matrix),
+        "bytes": int(common + csr + document + conversion + matrix),
         "reward_storage": "tables",
+        "compile_bytes": 0,
+        "compile_seconds": 0.0,
         "seconds": seconds,
         "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
         "notes": notes,

@@ -226,12 +226,20 @@ def infeasible(data: ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -> 
     for i in stuck[:_LISTED_STATES]:
         where = data.describe_state(i)
         if not data.source.feasible:
-            errors.append({"path": "model.reward", "message": f"at {where} every choice gives a reward that is -inf, NaN or +inf, so none is allowed"})
+            errors.append(
+                {
+                    "path": "model.reward",
+                    "message": f"at {where} every choice gives a reward that is -inf, NaN or +inf, so none is allowed",
+                }
+            )
         elif any_feasible[i]:
-            errors.append({
-                "path": "model.reward",
-                "message": f"at {where} the choices that satisfy {conditions} all give a reward that is -inf, NaN or +inf, so none is allowed",
-            })
+            errors.append(
+                {
+                    "path": "model.reward",
+                    "message": f"at {where} the choices that satisfy {conditions} all give a reward that is "
+                    "-inf, NaN or +inf, so none is allowed",
+                }
+            )
         else:
             errors.append({"path": "model.feasible", "message": f"at {where} no choice satisfies {conditions}"})
     if stuck.size > _LISTED_STATES:

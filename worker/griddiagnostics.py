@@ -145,7 +145,12 @@ class GridDiagnostics:
         rows = np.arange(self.n, dtype=np.int64)
         env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
         env.update({k: v[:, 0] for k, v in data.state_env(rows).items()})
-        env.update({name: grid[index] for name, grid, index in zip(data.choices, data.choice_grids, self._choice_indices(policy))})
+        env.update(
+            {
+                name: grid[index]
+                for name, grid, index in zip(data.choices, data.choice_grids, self._choice_indices(policy))
+            }
+        )
         clamped = np.zeros(self.n, dtype=bool)
         with np.errstate(all="ignore"):
             for name, expr in data.source.defines:

@@ -105,7 +105,9 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     data = model_data(doc)
     backend = "table" if chosen == "tables" else "expr"
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
-    source = _codegen.module_source(layout, data.source)
+    # The expressions' numbers go to the kernels as params, so they never name a new module.
+    kernel_model, literals = _codegen.lift_literals(data.source)
+    source = _codegen.module_source(layout, kernel_model)
     if reward_storage is None and _bridge_applies(plan, source):
         return _bridged(doc, data, plan, source, chosen, limits, started)
     counts: dict[str, Any]
@@ -117,10 +119,13 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
         counts = {"feasibility": feasibility_scan(data, None)}
     prepared = time.perf_counter()
     module = _codegen.load(source)
-    ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
+    params = _codegen.kernel_params(data.param_values, literals)
+    ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts)
     problem._warm_up()
     bridge.mark_warm(module.__name__)
+    # Numba has written this structure's machine code by now: bring the folder back within its limit.
+    _codegen.trim()
     problem.timings = {
         "prepare_s": prepared - started,
         "compile_s": time.perf_counter() - prepared,

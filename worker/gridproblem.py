@@ -112,7 +112,9 @@ class GridProblem(GridDiagnostics):
         k = self._kernels
         if restricted and self.hints_active and not exhaustive:
             out_reward = np.empty(self.n)
-            k.bellman_hinted(EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, out_policy, out_reward)
+            k.bellman_hinted(
+                EVt, self.discount, self._ctx, self._monotone, self._concave, out_v, out_policy, out_reward
+            )
             self._last_hinted = (np.array(v, dtype=np.float64).reshape(self.n), out_policy.copy(), out_reward)
             return out_v, out_policy
         out_bad = np.empty(self.n, dtype=np.int64)
@@ -178,7 +180,11 @@ class GridProblem(GridDiagnostics):
         size = self._data.state_sizes[axis]
         stride = self._strides[axis]
         if self._slope_scratch is None:
-            self._slope_scratch = (np.empty(self._pyramid[0].size), np.empty(self._pyramid[0].size), np.empty(EVt.shape))
+            self._slope_scratch = (
+                np.empty(self._pyramid[0].size),
+                np.empty(self._pyramid[0].size),
+                np.empty(EVt.shape),
+            )
         dpu, dpd, diff = self._slope_scratch
         lines = EVt.reshape(EVt.shape[0], -1, size, stride)
         steps = diff.reshape(lines.shape)
@@ -245,7 +251,9 @@ class GridProblem(GridDiagnostics):
         if cached is not None and np.array_equal(cached[0], policy):
             return policy, cached[1:]
         if policy.min() < 0 or policy.max() >= self._data.n_choices:
-            raise ValueError(f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}")
+            raise ValueError(
+                f"policy indices must lie in [0, {self._data.n_choices}), got {policy.min()}..{policy.max()}"
+            )
         return policy, None
 
     def _not_allowed(self, policy: np.ndarray, i: int) -> ValueError:
@@ -345,7 +353,16 @@ class GridProblem(GridDiagnostics):
             pyramid, levels = np.zeros(1), np.zeros(2, dtype=np.int64)
             k.bellman_bnb(EVt, self.discount, self._ctx, pyramid, levels, np.zeros(EVt.shape[0]), empty_i, True,
                           BNB_LEAF, pyramid, pyramid, np.zeros(3), empty_f, empty_i, empty_i, empty_i)
-        k.policy_nodes(empty_i, empty_i, EVt, self._ctx, empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
-                       np.empty(0, dtype=np.bool_), np.empty(0, dtype=np.bool_))
+        k.policy_nodes(
+            empty_i,
+            empty_i,
+            EVt,
+            self._ctx,
+            empty_f,
+            np.empty((0, nodes), dtype=np.int64),
+            np.empty((0, nodes)),
+            np.empty(0, dtype=np.bool_),
+            np.empty(0, dtype=np.bool_),
+        )
         kernels.policy_steps(empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
                              self._data.transition, self.discount, empty_f, 1, -np.inf, EVt, empty_f)

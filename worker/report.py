@@ -133,7 +133,9 @@ def stationary_report(problem: CompiledProblem, policy: np.ndarray) -> dict[str,
     return {"distribution": _as_shape(pi, problem.shape), "means": means, **info}
 
 
-def simulate_report(problem: CompiledProblem, policy: np.ndarray, spec: Any, *, path: str = "report.simulation") -> dict[str, Any]:
+def simulate_report(
+    problem: CompiledProblem, policy: np.ndarray, spec: Any, *, path: str = "report.simulation"
+) -> dict[str, Any]:
     """Simulated paths of the chain under ``policy``, summarised.
 
     Each path starts at ``spec.start`` (the nearest grid point on each axis;
@@ -239,7 +241,9 @@ def _start_state(problem: CompiledProblem, start: Any, path: str) -> int:
         start = {names[0]: start}
     unknown = sorted(set(start) - set(names))
     missing = [name for name in names if name not in start]
-    errors = [{"path": f"{path}.{name}", "message": f"not an axis; the axes are {', '.join(names)}"} for name in unknown]
+    errors = [
+        {"path": f"{path}.{name}", "message": f"not an axis; the axes are {', '.join(names)}"} for name in unknown
+    ]
     errors += [{"path": f"{path}.{name}", "message": "a start value is needed for this axis"} for name in missing]
     if errors:
         raise InvalidDocument(errors)

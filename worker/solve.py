@@ -1,11 +1,14 @@
 """The front door of the numerics: ``solve(document) -> result document``.
 
 ``solve`` validates the document (``worker.document.parse_document``),
-estimates its size and refuses it over the memory cap, compiles it (tabular
+estimates its size and refuses it over the memory cap or when its kernels
+would be too large to compile (``worker.estimate.check_structure``), compiles it (tabular
 here, grid through ``worker.gridmodel``, imported only when needed so that
 ``import worker`` never loads numba), picks the initial values, dispatches to
 ``worker.solvers.METHODS[solver.method]`` and builds the result document
-from the one :class:`~worker.solvers.SolveOutcome`.
+from the one :class:`~worker.solvers.SolveOutcome`.  With ``limits`` it
+also bounds the solve's time and, on request, enforces its estimate as a
+memory limit (:mod:`worker.memory`).
 """
 
 from __future__ import annotations
@@ -16,14 +19,16 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
+from worker.memory import memory_limit
 from worker.problem import CompiledProblem
 from worker.report import simulate_report, stationary_report
 from worker.solvers import METHODS, Checkpoint, SolveOutcome
 from worker.tabular import STATE_AXIS
 
-__all__ = ["compile_document", "solve"]
+__all__ = ["compile_document", "solve", "time_limit"]
 
 _MIB = 2**20
 
@@ -57,8 +62,9 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 
 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
-    from worker.estimate import estimate
+    from worker.estimate import check_structure, estimate
 
+    check_structure(doc)
     cap = limits["max_bytes"]
     size = estimate(doc, limits=limits)
     if size["bytes"] > cap:
@@ -107,7 +113,12 @@ def solve(
     warm_start : dict, optional
         ``{"axes", "value"}`` of an earlier result, for ``solver.initial: {"job": ID}``.
     limits : dict, optional
-        ``{"max_bytes": int}``; default from ``FIXQ_MAX_PROBLEM_MB``.
+        ``{"max_bytes": int, "max_seconds": float | None, "enforce_memory": bool}``, every key optional.
+        ``max_bytes``: the memory cap the estimate must be within (bytes; default from
+        ``FIXQ_MAX_PROBLEM_MB``).  ``max_seconds``: a deployment's longest solve (seconds); the solve
+        stops with status ``time_limit`` at the smaller of it and ``solver.time_limit_s``.
+        ``enforce_memory``: run under :func:`worker.memory.memory_limit` of the estimate, so that a
+        solve outgrowing its estimate fails with ``TooLarge`` and the process lives on (default False).
 
     Returns
     -------
@@ -122,7 +133,8 @@ def solve(
 
         ``diagnostics`` holds the problem's own diagnostics (edge hits, …)
         and: ``observed_rate`` (see ``worker.solvers.observed_rate``),
-        ``warnings``, ``resumed_from_iteration``, ``verification`` (with
+        ``warnings``, ``resumed_from_iteration``, ``log_dropped`` (iterations
+        the bounded ``log`` does not hold, see ``worker.convergence_log``), ``verification`` (with
         hints: the unrestricted step that checked them, which is not an
         iteration; see :class:`~worker.solvers.SolveOutcome`; else None) and
         ``bracket``.  The bracket describes the final Bellman step ``v → Tv``: ``v* − Tv``
@@ -135,11 +147,38 @@ def solve(
     Raises
     ------
     InvalidDocument, InfeasibleModel, TooLarge
-        Bad input, with field paths.
+        Bad input, with field paths; ``TooLarge`` also when an enforced memory limit ran out.
     Canceled
         ``should_stop`` returned true.
     """
-    doc, problem = compile_document(document, limits=limits)
+    from worker.document import parse_document
+
+    limits = limits or {}
+    doc = parse_document(document)
+    cap = {"max_bytes": int(limits.get("max_bytes") or max_problem_bytes())}
+    size = _check_size(doc, cap)
+    if not limits.get("enforce_memory"):
+        return _solve(doc, cap, warm_start, on_progress, checkpoint, should_stop, limits.get("max_seconds"))
+    with memory_limit(size["bytes"], what="this solve", context={"estimate": size}):
+        return _solve(doc, cap, warm_start, on_progress, checkpoint, should_stop, limits.get("max_seconds"))
+
+
+def time_limit(document_limit_s: float | None, max_seconds: float | None) -> float | None:
+    """The effective time limit: the smaller of the document's and the deployment's (None: neither is set)."""
+    limits = [float(limit) for limit in (document_limit_s, max_seconds) if limit is not None]
+    return min(limits) if limits else None
+
+
+def _solve(
+    doc: Any,
+    cap: dict[str, int],
+    warm_start: dict[str, Any] | None,
+    on_progress: Callable[[dict[str, Any]], None] | None,
+    checkpoint: Checkpoint | None,
+    should_stop: Callable[[], bool] | None,
+    max_seconds: float | None,
+) -> dict[str, Any]:
+    problem = _compile(doc, cap)
     initial = _initial_values(doc, problem, warm_start)
     spec = doc.solver
     outcome = METHODS[spec.method](
@@ -147,7 +186,7 @@ def solve(
         initial,
         tolerance=spec.tolerance,
         max_iterations=spec.max_iterations,
-        time_limit_s=spec.time_limit_s,
+        time_limit_s=time_limit(spec.time_limit_s, max_seconds),
         checkpoint_s=spec.checkpoint_s,
         evaluation_steps=spec.evaluation_steps,
         on_progress=on_progress,
@@ -254,6 +293,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
         "resumed_from_iteration": outcome.resumed_from_iteration,
         "verification": outcome.verification,
         "bracket": dict(outcome.bracket),
+        "log_dropped": dropped(outcome.log),
     }
     head = _plain(
         {

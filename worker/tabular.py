@@ -235,7 +235,10 @@ def _check_feasible(allowed: np.ndarray) -> None:
     stuck = np.flatnonzero(~allowed.any(axis=1))
     if stuck.size:
         errors = [
-            {"path": join_path("model", "reward", int(s)), "message": "this state has no allowed action (every reward is null)"}
+            {
+                "path": join_path("model", "reward", int(s)),
+                "message": "this state has no allowed action (every reward is null)",
+            }
             for s in stuck[:_MAX_LISTED_FAULTS]
         ]
         raise InfeasibleModel(errors, states=stuck.tolist())

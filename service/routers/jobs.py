@@ -32,6 +32,7 @@ from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore, is_job_id
 from service.submission import admit_submission, admitted_summary
 from service.tables import csv_chunks
+from worker.convergence_log import KEEP_LATEST
 
 __all__ = ["router"]
 
@@ -100,10 +101,16 @@ class JobPage(BaseModel):
 
 
 class LogPage(BaseModel):
-    """One page of the convergence log; ``next`` is the cursor of the next page."""
+    """One page of the convergence log; ``next`` is the cursor of the next page.
+
+    The stored log is bounded (``worker.convergence_log``): every early
+    iteration, then a sampling, then the latest ones; ``dropped`` counts the
+    iterations it no longer holds.
+    """
 
     data: list[dict[str, Any]]
     next: int | None
+    dropped: int = 0
 
 
 def _job_or_404(store: JobStore, job_id: str, owner: Owner) -> dict[str, Any]:
@@ -314,17 +321,18 @@ async def get_log(
             media_type="text/event-stream",
             headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
         )
-    entries, length = await anyio.to_thread.run_sync(_log_page, store, job_id, cursor, limit)
+    entries, length, dropped = await anyio.to_thread.run_sync(_log_page, store, job_id, cursor, limit)
     end = cursor + len(entries)
-    return {"data": entries, "next": end if end < length else None}
+    return {"data": entries, "next": end if end < length else None, "dropped": dropped}
 
 
-def _log_page(store: JobStore, job_id: str, cursor: int, limit: int) -> tuple[list[dict[str, Any]], int]:
+def _log_page(store: JobStore, job_id: str, cursor: int, limit: int) -> tuple[list[dict[str, Any]], int, int]:
     with store.redis.pipeline(transaction=True) as pipe:
         pipe.lrange(store.keys.log(job_id), cursor, cursor + limit - 1)
         pipe.llen(store.keys.log(job_id))
-        rows, length = pipe.execute()
-    return [orjson.loads(row) for row in rows], int(length)
+        pipe.hget(store.keys.job(job_id), "log_dropped")
+        rows, length, dropped = pipe.execute()
+    return [orjson.loads(row) for row in rows], int(length), int(dropped or 0)
 
 
 def _poll_log(store: JobStore, job_id: str, cursor: int) -> tuple[list[bytes], int, str | None]:
@@ -339,16 +347,21 @@ def _poll_log(store: JobStore, job_id: str, cursor: int) -> tuple[list[bytes], i
 
 async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> AsyncIterator[bytes]:
     """SSE: ``event: entry`` per log entry (``id:`` its iteration), then ``event: end``."""
-    # Entries are one per iteration, so the entry of iteration `after` sits at
-    # index after - 1; reading from index `after` and skipping what was sent
-    # also copes with a log trimmed back to a checkpoint and regrown.
+    # Entries come in iteration order, at most one per iteration, and skipping
+    # what was sent copes with a log trimmed back to a checkpoint and regrown.
+    # The bounded log (worker.convergence_log) also removes entries: at most
+    # the KEEP_LATEST + 1 last ones, except when its sampling step doubles.
+    # So each poll re-reads that many entries before the cursor, and reads
+    # from the start again when even the first of those was not sent yet.
     cursor, sent = after, after
     started = last_write = time.monotonic()
     while True:
-        rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, cursor)
-        if length < cursor:
-            cursor = length
-        cursor += len(rows)
+        start = max(0, cursor - KEEP_LATEST - 1)
+        rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)
+        if start and rows and _iteration_of_row(rows[0], sent) > sent:
+            start = 0
+            rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)
+        cursor = start + len(rows) if rows else min(start, length)
         chunk = bytearray()
         for row in rows:
             entry = orjson.loads(row)
@@ -372,6 +385,11 @@ async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> 
             last_write = now
             yield b": keepalive\n\n"
         await anyio.sleep(min(poll_s, SSE_FIRST_POLL_S + (now - started) * SSE_POLL_GROWTH))
+
+
+def _iteration_of_row(row: bytes, default: int) -> int:
+    iteration = orjson.loads(row).get("iteration")
+    return iteration if isinstance(iteration, int) else default
 
 
 @router.delete("/{job_id}", response_model=JobRecord, responses={202: {"model": JobRecord}})

@@ -22,8 +22,9 @@ without touching Redis.
   job's record is returned.
 * ``get_job(id) -> record | None``; ``get_document(id) -> dict | None``;
   ``get_result(id) -> dict | None`` (``None`` until ``done``, and after
-  ``result_ttl_s``); ``get_log(id, start=0, limit=1000) -> list[dict]`` and
-  ``log_length(id) -> int``.
+  ``result_ttl_s``); ``get_log(id, start=0, limit=1000) -> list[dict]``,
+  ``log_length(id) -> int`` and ``log_dropped(id) -> int`` (iterations the
+  bounded log no longer holds; see ``worker.convergence_log``).
 * ``list_jobs(*, owner=None, state=None, tag=None, label=None, cursor=None,
   limit=50) -> (records, next_cursor)``: newest first.  ``owner=None`` lists
   every owner's jobs; ``state`` is one state or a list of them; ``tag`` must
@@ -42,6 +43,17 @@ without touching Redis.
   cumulative_count), ..., (inf, count)], "sum", "count"}}`` (Prometheus
   shape; recorded once per ``done`` job by the worker), ``ping() -> bool``.
 * ``key(*parts) -> str``: a key under the fixq prefix, for other resources.
+* ``forget_expired(now=None) -> [id]``: drops jobs whose record expired from
+  the listings and the state sets (the reaper calls it).
+
+A write Redis refuses at ``maxmemory`` raises ``redis.exceptions.OutOfMemoryError``,
+from a Lua script as from a plain command (``layout.register_script``).
+
+Lifetimes: a queued or running job never expires.  When a job ends (``done``,
+``failed`` or ``canceled``, whichever script ends it) its record, document
+and log get a TTL of ``job_ttl_s``, its result one of ``result_ttl_s``; its
+checkpoint, lease and cancel flag are deleted.  ``forget_expired`` then
+removes it from ``fixq:jobs``, the owner's listing and the state sets.
 
 The job record (JSON)::
 
@@ -61,20 +73,26 @@ Keys (prefix ``fixq``, setting ``FIXQ_REDIS_PREFIX``)
 ``fixq:job:{id}``           hash    the record; JSON-encoded where not a string, plus
                                     ``worker`` (host:pid of the last execution),
                                     ``rq_job`` (current RQ job id), ``enqueues``,
-                                    ``enqueued_at`` (ms), ``document_hash``
-``fixq:doc:{id}``           string  the submitted document, zlib-compressed JSON
+                                    ``enqueued_at`` (ms), ``document_hash``,
+                                    ``log_dropped`` and ``log_stride`` (the log's
+                                    bound); TTL ``job_ttl_s`` once the job is finished
+``fixq:doc:{id}``           string  the submitted document, zlib-compressed JSON;
+                                    TTL ``job_ttl_s`` once the job is finished
 ``fixq:result:{id}``        string  the result, zlib-compressed JSON, ``SET NX`` once,
                                     TTL ``result_ttl_s``
-``fixq:log:{id}``           list    log entries (JSON), one per iteration, in order;
-                                    TTL ``result_ttl_s`` once the job is finished
+``fixq:log:{id}``           list    log entries (JSON), at most one per iteration, in
+                                    order, bounded as ``worker.convergence_log``
+                                    says; TTL ``job_ttl_s`` once the job is finished
 ``fixq:ckpt:{id}``          string  ``fixq-ckpt:{iteration}\\n`` + the checkpoint
                                     payload; TTL ``checkpoint_ttl_s``
 ``fixq:lease:{id}``         string  token of the execution owning the job, TTL ``lease_s``
 ``fixq:cancel:{id}``        string  present when a cancel was requested
 ``fixq:jobs``               zset    every job id scored by submission time (ms)
 ``fixq:jobs:owner:{owner}`` zset    the same per owner
+``fixq:owners``             set     every owner that submitted a job
 ``fixq:state:{state}``      set     the job ids in each state
-``fixq:idem:{owner}:{h}``   string  job id of an Idempotency-Key (``h`` its SHA-256)
+``fixq:idem:{owner}:{h}``   string  job id of an Idempotency-Key (``h`` its SHA-256);
+                                    TTL ``idempotency_ttl_s``
 ``fixq:metrics:solve_*``    hash    histogram buckets (``seconds``, ``iterations``)
 ``fixq:reaper:lock``        string  the reaper's pass lock
 ==========================  ======  ==================================================

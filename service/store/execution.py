@@ -27,7 +27,9 @@ from service.store.layout import (
     bucket_field,
     compress,
     dumps,
+    register_script,
 )
+from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, iteration_of, kept, stride
 
 __all__ = ["ExecutionWrites"]
 
@@ -42,7 +44,9 @@ class ExecutionWrites:
     keys: Keys
 
     def _register_execution_scripts(self) -> None:
-        register = self.redis.register_script
+        def register(source: str) -> Any:
+            return register_script(self.redis, source)
+
         self._claim = register(scripts.LUA_PRELUDE + scripts.CLAIM)
         self._renew = register(scripts.RENEW)
         self._release = register(scripts.RELEASE)
@@ -61,8 +65,8 @@ class ExecutionWrites:
         """
         return self._claim(
             keys=[*self.keys.states, self.keys.job(job_id), self.keys.lease(job_id), self.keys.cancel(job_id),
-                  self.keys.checkpoint(job_id), self.keys.log(job_id)],
-            args=[job_id, token, int(self.settings.lease_s * 1000), iso_utc(), worker, self.settings.result_ttl_s],
+                  self.keys.checkpoint(job_id), self.keys.log(job_id), self.keys.doc(job_id)],
+            args=[job_id, token, int(self.settings.lease_s * 1000), iso_utc(), worker, self.settings.job_ttl_s],
         ).decode()  # fmt: skip
 
     def renew_lease(self, job_id: str, token: str) -> bool:
@@ -88,14 +92,19 @@ class ExecutionWrites:
         """Append log entries and set ``progress``, under the lease.
 
         ``trim_from`` first drops stored entries: ``n > 0`` those at the end
-        whose iteration is ``>= n``, ``-1`` all of them.  False (nothing
+        whose iteration is ``>= n``, ``-1`` all of them.  The stored log keeps
+        what ``worker.convergence_log`` keeps (so that it stays bounded) and
+        the record's ``log_dropped`` counts the rest.  False (nothing
         written) when the lease is not ``token``'s.
         """
+        last = next((i for i in map(iteration_of, reversed(entries)) if i is not None), 0)
+        k = stride(last)
+        survivors = [entry for entry in entries if (i := iteration_of(entry)) is None or kept(i, last, k)]
         return bool(
             self._write_log(
                 keys=[self.keys.lease(job_id), self.keys.log(job_id), self.keys.job(job_id)],
-                args=[token, dumps(progress) if progress is not None else "", trim_from,
-                      *(dumps(entry) for entry in entries)],
+                args=[token, dumps(progress) if progress is not None else "", trim_from, KEEP_FIRST, KEEP_LATEST,
+                      k, last, *(dumps(entry) for entry in survivors)],
             )  # fmt: skip
         )
 
@@ -144,7 +153,8 @@ class ExecutionWrites:
         One script stores the result (``SET NX``, TTL ``result_ttl_s``), sets
         ``status``, ``iterations``, ``error_bound``, ``error`` and
         ``finished_at``, moves the state, drops lease, checkpoint and cancel
-        flag and, for ``done``, records the histograms.  False (nothing
+        flag, gives record, document and log their lifetime (``job_ttl_s``)
+        and, for ``done``, records the histograms.  False (nothing
         written) when the lease is not ``token``'s.
         """
         if state not in TERMINAL_STATES:
@@ -170,9 +180,9 @@ class ExecutionWrites:
             self._finish(
                 keys=[*self.keys.states, self.keys.job(job_id), self.keys.lease(job_id), self.keys.result(job_id),
                       self.keys.checkpoint(job_id), self.keys.cancel(job_id), self.keys.log(job_id),
-                      self.keys.solve_seconds, self.keys.solve_iterations],
+                      self.keys.solve_seconds, self.keys.solve_iterations, self.keys.doc(job_id)],
                 args=[job_id, token, state, iso_utc(), blob, self.settings.result_ttl_s, *histogram,
-                      *(item for pair in fields.items() for item in pair)],
+                      self.settings.job_ttl_s, *(item for pair in fields.items() for item in pair)],
             )  # fmt: skip
         )
 
@@ -193,9 +203,9 @@ class ExecutionWrites:
         }
         reply = self._requeue_abandoned(
             keys=[*self.keys.states, self.keys.job(job_id), self.keys.lease(job_id), self.keys.cancel(job_id),
-                  self.keys.checkpoint(job_id), self.keys.log(job_id)],
+                  self.keys.checkpoint(job_id), self.keys.log(job_id), self.keys.doc(job_id)],
             args=[job_id, self.settings.max_attempts, iso_utc(), int(time.time() * 1000),
-                  self.settings.result_ttl_s, dumps(error)],
+                  self.settings.job_ttl_s, dumps(error)],
         )  # fmt: skip
         outcome = reply[0].decode()
         if outcome == "requeued":

@@ -32,10 +32,14 @@ from service.store.layout import (
     decompress,
     dumps,
     is_job_id,
+    register_script,
 )
 from worker.document import DEFAULT_PRIORITY
 
-__all__ = ["JobStore"]
+__all__ = ["FORGET_SCAN_LIMIT", "JobStore"]
+
+FORGET_SCAN_LIMIT = 2000
+"""Most old jobs one ``forget_expired`` call examines in each listing (count)."""
 
 _JSON_FIELDS = frozenset({"tags", "progress", "estimate", "error", "attempts", "iterations", "error_bound"})
 
@@ -49,8 +53,8 @@ class JobStore(ExecutionWrites):
         self.redis = redis_client
         self.settings = settings or get_settings()
         self.keys = Keys(self.settings.redis_prefix)
-        self._create = redis_client.register_script(scripts.CREATE)
-        self._cancel = redis_client.register_script(scripts.LUA_PRELUDE + scripts.CANCEL)
+        self._create = register_script(redis_client, scripts.CREATE)
+        self._cancel = register_script(redis_client, scripts.LUA_PRELUDE + scripts.CANCEL)
         self._register_execution_scripts()
 
     @classmethod
@@ -106,9 +110,9 @@ class JobStore(ExecutionWrites):
         idempotency = self.keys.idempotency(owner, idempotency_key) if idempotency_key else self.keys.job(job_id)
         created = self._create(
             keys=[*self.keys.states, self.keys.job(job_id), self.keys.doc(job_id), self.keys.jobs,
-                  self.keys.owner_jobs(owner), idempotency],
+                  self.keys.owner_jobs(owner), idempotency, self.keys.owners],
             args=[job_id, now_ms, compress(raw_document),
-                  self.settings.idempotency_ttl_s if idempotency_key else "",
+                  self.settings.idempotency_ttl_s if idempotency_key else "", owner,
                   *(item for pair in fields.items() for item in pair)],
         ).decode()  # fmt: skip
         if created != job_id:
@@ -169,6 +173,59 @@ class JobStore(ExecutionWrites):
         """Number of log entries stored for a job."""
         return int(self.redis.llen(self.keys.log(job_id))) if is_job_id(job_id) else 0
 
+    def log_dropped(self, job_id: str) -> int:
+        """Iterations the stored log no longer holds (``worker.convergence_log`` keeps it bounded)."""
+        if not is_job_id(job_id):
+            return 0
+        return int(self.redis.hget(self.keys.job(job_id), "log_dropped") or 0)
+
+    def forget_expired(self, now: float | None = None, *, scan_limit: int = FORGET_SCAN_LIMIT) -> list[str]:
+        """Drop the jobs whose record expired from the listings and the state sets; their ids.
+
+        A finished job's record lives ``job_ttl_s`` after its end, so only
+        jobs submitted at least that long before ``now`` (seconds since the
+        epoch; default the current time) can be gone: at most ``scan_limit``
+        of them, oldest first, are examined in the listing of every job and
+        in each owner's.  The reaper calls this on its passes.
+        """
+        horizon_ms = int(((time.time() if now is None else now) - self.settings.job_ttl_s) * 1000)
+        owners = sorted(member.decode() for member in self.redis.smembers(self.keys.owners))
+        gone = self._forget_in(self.keys.jobs, horizon_ms, scan_limit, states=True)
+        for owner in owners:
+            self._forget_in(self.keys.owner_jobs(owner), horizon_ms, scan_limit, states=False)
+        return gone
+
+    def _forget_in(self, index: str, horizon_ms: int, scan_limit: int, *, states: bool) -> list[str]:
+        """The members of ``index`` scored up to ``horizon_ms`` whose record is gone, removed from it."""
+        gone: list[bytes] = []
+        offset = examined = 0
+        while examined < scan_limit:
+            batch = self.redis.zrangebyscore(
+                index, "-inf", horizon_ms, start=offset, num=min(500, scan_limit - examined)
+            )
+            if not batch:
+                break
+            examined += len(batch)
+            with self.redis.pipeline(transaction=False) as pipe:
+                for member in batch:
+                    pipe.exists(self.keys.job(member.decode()))
+                exists = pipe.execute()
+            missing = [member for member, present in zip(batch, exists) if not present]
+            offset += len(batch) - len(missing)
+            self._remove_members(index, missing, states=states)
+            gone += missing
+        return [member.decode() for member in gone]
+
+    def _remove_members(self, index: str, members: list[bytes], *, states: bool) -> None:
+        if not members:
+            return
+        with self.redis.pipeline(transaction=False) as pipe:
+            pipe.zrem(index, *members)
+            if states:
+                for key in self.keys.states:
+                    pipe.srem(key, *members)
+            pipe.execute()
+
     def list_jobs(
         self,
         *,
@@ -185,9 +242,28 @@ class JobStore(ExecutionWrites):
             raise ValueError(f"unknown state {sorted(states - set(JOB_STATES))}; expected one of {JOB_STATES}")
         limit = max(1, min(int(limit), 1000))
         index = self.keys.owner_jobs(owner) if owner is not None else self.keys.jobs
+        expired: list[bytes] = []
+        try:
+            return self._list_page(index, decode_cursor(cursor), limit, states, tag, label, expired)
+        finally:
+            # A member whose record is gone has expired (a record and its
+            # listing entries are made together): tidy the listing now rather
+            # than at the reaper's next forget_expired.
+            self._remove_members(index, expired, states=owner is None)
+
+    def _list_page(
+        self,
+        index: str,
+        cursor: tuple[float, bytes] | None,
+        limit: int,
+        states: set[str] | None,
+        tag: str | None,
+        label: str | None,
+        expired: list[bytes],
+    ) -> tuple[list[dict[str, Any]], str | None]:
         records: list[dict[str, Any]] = []
         last: tuple[bytes, float] | None = None
-        for scanned, batch in self._walk_index(index, decode_cursor(cursor)):
+        for scanned, batch in self._walk_index(index, cursor):
             with self.redis.pipeline(transaction=False) as pipe:
                 for member, _ in batch:
                     pipe.hgetall(self.keys.job(member.decode()))
@@ -196,6 +272,7 @@ class JobStore(ExecutionWrites):
                 last = (member, score)
                 record = self._record(row)
                 if record is None:
+                    expired.append(member)
                     continue
                 if states is not None and record["state"] not in states:
                     continue
@@ -246,8 +323,8 @@ class JobStore(ExecutionWrites):
         outcome = self._cancel(
             keys=[*self.keys.states, self.keys.job(job_id), self.keys.cancel(job_id),
                   rq_queues.queue_key(priority.decode() if priority else DEFAULT_PRIORITY),
-                  rq_queues.rq_job_key(rq_job_id or "none"), self.keys.log(job_id)],
-            args=[job_id, rq_job_id, iso_utc(), self.settings.job_timeout_s + 3600, self.settings.result_ttl_s],
+                  rq_queues.rq_job_key(rq_job_id or "none"), self.keys.log(job_id), self.keys.doc(job_id)],
+            args=[job_id, rq_job_id, iso_utc(), self.settings.job_timeout_s + 3600, self.settings.job_ttl_s],
         ).decode()  # fmt: skip
         if outcome == "missing":
             return None

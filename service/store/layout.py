@@ -10,6 +10,7 @@ from typing import Any
 
 import orjson
 import redis
+from redis.commands.core import Script
 
 from service._formats import is_resource_id
 from service.settings import Settings, get_settings
@@ -28,6 +29,7 @@ __all__ = [
     "decompress",
     "dumps",
     "is_job_id",
+    "register_script",
 ]
 
 JOB_STATES: tuple[str, ...] = ("queued", "running", "done", "failed", "canceled")
@@ -65,6 +67,34 @@ def connect(settings: Settings | None = None) -> redis.Redis:
     return redis.Redis.from_url(settings.redis_url, decode_responses=False, health_check_interval=30)
 
 
+_OOM_REPLY = "OOM command not allowed"
+
+
+class _Script:
+    """A registered Lua script whose refusal for want of memory raises ``OutOfMemoryError``.
+
+    Redis answers a write refused at ``maxmemory`` inside a script with a
+    generic script error; raising the same error as a plain command gets
+    lets every caller tell "Redis is full" from a bug.
+    """
+
+    def __init__(self, script: Script) -> None:
+        self._script = script
+
+    def __call__(self, keys: Sequence[Any] = (), args: Sequence[Any] = ()) -> Any:
+        try:
+            return self._script(keys=keys, args=args)
+        except redis.exceptions.ResponseError as exc:
+            if _OOM_REPLY in str(exc):
+                raise redis.exceptions.OutOfMemoryError(str(exc)) from exc
+            raise
+
+
+def register_script(client: redis.Redis, source: str) -> _Script:
+    """``client.register_script(source)``, with Redis's out-of-memory refusal raised as ``OutOfMemoryError``."""
+    return _Script(client.register_script(source))
+
+
 def dumps(value: Any) -> bytes:
     """JSON bytes of ``value``, numpy arrays included."""
     return orjson.dumps(value, option=orjson.OPT_SERIALIZE_NUMPY)
@@ -92,6 +122,7 @@ class Keys:
     def __init__(self, prefix: str) -> None:
         self.prefix = prefix
         self.jobs = f"{prefix}:jobs"
+        self.owners = f"{prefix}:owners"
         self.reaper_lock = f"{prefix}:reaper:lock"
         self.solve_seconds = f"{prefix}:metrics:solve_seconds"
         self.solve_iterations = f"{prefix}:metrics:solve_iterations"

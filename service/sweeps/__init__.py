@@ -25,8 +25,11 @@ i-th value of every list, which must all have the same length.  At most
 ``sweep_max_combinations`` combinations, and combinations × the base's JSON
 size at most ``sweep_max_documents_mb`` (else 413, naming the setting).
 
-*Admission*: every combination's document passes the same door as a single
-job (``service.submission.admit_submission``) before any job is created; if
+*Admission*: the first jobs take their slots of the caller's active-job
+caps (429 if they do not fit) before any combination is validated; then every
+combination's document passes the same door as a single job
+(``service.submission.admit_submission``, each validated like the first one
+admitted, reusing the parts it shares with it) before any job is created; if
 any is refused, none is, and the 422 lists each fault once, at
 ``vary.<path>[i]`` when the fault lies at or under a varied path (its message
 starting with the inner path), else at ``base.<inner path>``, with the
@@ -48,6 +51,10 @@ a tree rooted at combination 0 whose branches run in parallel.
 
 A job that must wait for its predecessor is not created until the
 predecessor has finished: rows then show ``state: "waiting"`` and no job.
+Like any job, a chain's later job takes a slot of its owner's active-job
+caps (``max_active_jobs``, ``max_active_high_jobs``) when it is created;
+while they are full its row keeps waiting, and it is created when one of the
+owner's jobs finishes (or by the reaper's next pass) — never refused.
 When a sweep job finishes, the worker (``service.lifecycle``) creates the
 combinations that start from it, with ``solver.initial: {"job": ID}`` when it
 is ``done`` and its result still stored, else with the base's
@@ -88,10 +95,15 @@ Keys (prefix ``fixq``)
 ``fixq:sweeps:pending``           set     sweeps the reaper checks for rows nobody created
 ``fixq:sweepidem:{owner}:{h}``    string  sweep id of an Idempotency-Key
 ================================  ======  ===========================================
+
+A sweep lives as long as its last job: once every row has a job or an error
+and every one of its jobs has expired (``job_ttl_s`` after its end),
+``forget_expired_sweeps`` (called by the reaper) deletes its keys and its
+listing entries.
 """
 
 from service.sweeps.creation import cancel_sweep, create_sweep, ensure_job, job_finished, rescue_pending
-from service.sweeps.records import CLAIM_MS, Sweep, list_sweeps, load_sweep
+from service.sweeps.records import CLAIM_MS, Sweep, forget_expired_sweeps, list_sweeps, load_sweep
 from service.sweeps.request import MODES, SweepRequest, parse_path, parse_request, sweep_tag
 from service.sweeps.view import ROW_STATES, SWEEP_STATES, sweep_view
 
@@ -105,6 +117,7 @@ __all__ = [
     "cancel_sweep",
     "create_sweep",
     "ensure_job",
+    "forget_expired_sweeps",
     "job_finished",
     "list_sweeps",
     "load_sweep",

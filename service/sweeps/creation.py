@@ -23,7 +23,9 @@ import redis
 
 from service import webhooks
 from service._formats import iso_utc
-from service.limits import ActiveJobs, Quota, Reservation, check_problem_size
+from service.keys import KeyStore
+from service.limits import ActiveJobs, Quota, Reservation, check_problem_size, quota_for
+from service.problems import Problem
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
@@ -112,10 +114,13 @@ def create_sweep(
 ) -> Sweep:
     """Check and admit every combination, store the sweep, and create its first jobs.
 
-    With a ``quota`` (the caller's per-key caps), every combination must fit
-    the key's memory cap (413) and the jobs created now take slots of its
-    active-job caps (429), exactly as single submissions do.  Jobs a chain
-    creates later, when their predecessor finishes, are not counted.
+    With a ``quota`` (the caller's per-key caps), the jobs created now take
+    slots of its active-job caps (429) before any combination is validated,
+    and every combination must fit the key's memory cap (413), exactly as
+    single submissions do.  Jobs a chain creates later, when their
+    predecessor finishes, take their slots then (:func:`ensure_job`).
+    Each combination is validated like the first one admitted, reusing the
+    parts it shares with it (``service.submission.admit_submission``).
 
     Raises ``InvalidDocument`` or ``TooLarge`` (nothing stored) when any part is refused.
     With an ``idempotency_key`` the same owner already used within
@@ -136,26 +141,17 @@ def create_sweep(
             webhooks.check_target(notify["url"], settings, path="notify.url")
         except InvalidDocument as exc:
             faults.add_base(exc)
-    prepared: dict[int, dict[str, Any]] = {}
-    stationary = False
-    high = False
     first_jobs = range(request.count) if not request.chain else [0]
-    for index in range(request.count):
-        raw = request.document(index, sweep_id=sweep_id)
-        try:
-            admitted = admit_submission(raw, settings, store, may_see=caller.may_see, check_notify=False)
-        except FixqError as exc:
-            faults.add(index, exc)
-            continue
-        stationary = stationary or admitted.document.report.stationary
-        high = high or admitted.document.priority == "high"
-        if quota is not None:
-            check_problem_size(quota, admitted.estimate)
-        if not faults.seen and (not request.chain or index == 0):
-            prepared[index] = admitted_summary(admitted)
-    faults.raise_if_any()
+    # Priority cannot vary, so the caps are known before any combination is validated.
+    high = (request.priority or request.base.get("priority")) == "high"
     active = ActiveJobs(store.redis, settings.redis_prefix)
     reservation = active.reserve(quota, high=high, count=len(first_jobs)) if quota is not None else None
+    try:
+        prepared, stationary = _admit_combinations(request, sweep_id, faults, caller, store, settings, quota)
+    except BaseException:
+        if reservation is not None:
+            active.release(reservation)
+        raise
     if idem is not None:
         if not store.redis.set(idem, sweep_id, nx=True, ex=settings.idempotency_ttl_s):
             earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
@@ -169,7 +165,7 @@ def create_sweep(
         for index in first_jobs:
             if index and index % DOOR_RENEW_EVERY == 0:
                 store.redis.set(sweep.keys.door, "1", px=CLAIM_MS)
-            job_id = ensure_job(sweep, index, prepared=prepared.get(index))
+            job_id = ensure_job(sweep, index, prepared=prepared.get(index), counted=True)
             if job_id is not None:
                 created.append(job_id)
         store.redis.delete(sweep.keys.door)
@@ -185,12 +181,50 @@ def create_sweep(
     return sweep
 
 
-def ensure_job(sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = None) -> str | None:
+def _admit_combinations(
+    request: SweepRequest, sweep_id: str, faults: _Faults, caller: Submitter, store: JobStore, settings: Settings,
+    quota: Quota | None,
+) -> tuple[dict[int, dict[str, Any]], bool]:  # fmt: skip
+    """Admit every combination (raising the refusal of any); the admitted summaries of the first jobs,
+    and whether any asks for the stationary distribution."""
+    prepared: dict[int, dict[str, Any]] = {}
+    stationary = False
+    like: tuple[dict[str, Any], Any] | None = None
+    for index in range(request.count):
+        raw = request.document(index, sweep_id=sweep_id)
+        try:
+            admitted = admit_submission(raw, settings, store, may_see=caller.may_see, check_notify=False, like=like)
+        except FixqError as exc:
+            faults.add(index, exc)
+            continue
+        if like is None:
+            like = (raw, admitted)
+        stationary = stationary or admitted.document.report.stationary
+        if quota is not None:
+            check_problem_size(quota, admitted.estimate)
+        if not faults.seen and (not request.chain or index == 0):
+            prepared[index] = admitted_summary(admitted)
+    faults.raise_if_any()
+    return prepared, stationary
+
+
+class AtCap(Exception):
+    """Raised by :func:`ensure_job` when the owner's active-job caps leave no slot for the row's job."""
+
+
+def ensure_job(
+    sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = None, counted: bool = False
+) -> str | None:
     """Create and record the job of row ``index`` unless it exists or another creator holds the claim.
 
     The claim is held until the job id is in the sweep's jobs hash, and the
     job is enqueued only after that, so its own finish always finds its row.
     ``prepared`` is the door's admitted summary of the row's document.
+    Unless ``counted`` (the door reserved the slots of its first jobs), the
+    job takes a slot of the owner's active-job caps as a submission would; when
+    there is none, :class:`AtCap` is raised, nothing is created, and the sweep
+    is remembered among the owner's sweeps waiting for a slot (the row is
+    created when one of the owner's jobs finishes, or by the reaper).
     Returns the new job id, or None when nothing was created.
     """
     store, keys = sweep.store, sweep.keys
@@ -201,21 +235,28 @@ def ensure_job(sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = No
         return None
     settle = store.redis.register_script(_SETTLE_WITHOUT_JOB)
     settle_keys = [keys.claim(index), keys.jobs, keys.errors]
+    active = ActiveJobs(store.redis, store.settings.redis_prefix)
+    high = sweep.record.get("priority") == "high"
+    reservation = Reservation(sweep.owner, high, member="")
     try:
         if store.redis.hexists(keys.jobs, index) or store.redis.hexists(keys.errors, index):
             settle(keys=settle_keys, args=[token, index, ""])
             return None
+        if not counted:
+            reservation = _take_slot(sweep, active, high)
         raw, prepared = _document_of(sweep, index, prepared)
         record = create_submitted_job(raw, store, owner=sweep.owner, enqueue=False, **prepared)
     except FixqError as exc:
+        active.release(reservation)
         error = {"title": exc.title, "detail": exc.detail, "errors": exc.errors}
         settle(keys=settle_keys, args=[token, index, orjson.dumps(error)])
         return None
     except BaseException:
         try:
+            active.release(reservation)
             settle(keys=settle_keys, args=[token, index, ""])
         except redis.RedisError:
-            pass  # the claim lapses after CLAIM_MS
+            pass  # the claim lapses after CLAIM_MS, the reservation after RESERVATION_S
         raise
     job_id = record["id"]
     outcome = store.redis.register_script(_RECORD_JOB)(
@@ -225,17 +266,34 @@ def ensure_job(sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = No
     if outcome == "taken":
         # Another creator recorded the row after this one's claim lapsed: this job never runs.
         store.request_cancel(job_id)
+        active.release(reservation)
         return None
-    # Counted among the owner's active jobs, so later submissions see it under their caps
-    # (a chain's successor is made when its predecessor ends, past the door's reservation).
-    active = ActiveJobs(store.redis, store.settings.redis_prefix)
-    active.bind(Reservation(sweep.owner, raw.get("priority") == "high", member=""), [job_id])
+    # Counted among the owner's active jobs, so later submissions see it under their caps.
+    active.bind(reservation, [job_id])
     if outcome == "canceled":
         # The sweep was canceled while this job was being created.
         _cancel_job(store, job_id)
     else:
         store.enqueue_created(record)
     return job_id
+
+
+def _take_slot(sweep: Sweep, active: ActiveJobs, high: bool) -> Reservation:
+    """One slot of the owner's active-job caps for a row's job, or :class:`AtCap`."""
+    store = sweep.store
+    key = KeyStore(store.redis, store.settings.redis_prefix).get(sweep.owner)
+    try:
+        reservation = active.reserve(quota_for(store.settings, sweep.owner, key), high=high)
+    except Problem:
+        store.redis.sadd(_waiting_for_slot_key(store, sweep.owner), sweep.id)
+        raise AtCap(sweep.owner) from None
+    # Uncapped keys are not counted by reserve; the job is still listed among the owner's active ones.
+    return reservation if reservation.member is not None else Reservation(sweep.owner, high, member="")
+
+
+def _waiting_for_slot_key(store: JobStore, owner: str) -> str:
+    """The set of ``owner``'s sweeps with a row due but held back by the owner's caps."""
+    return store.key("sweeps", "capped", owner)
 
 
 def _document_of(sweep: Sweep, index: int, prepared: dict[str, Any] | None) -> tuple[dict[str, Any], dict[str, Any]]:
@@ -286,15 +344,21 @@ def _cancel_job(store: JobStore, job_id: str) -> str | None:
 
 
 def job_finished(store: JobStore, job_id: str) -> None:
-    """Bookkeeping once a sweep's job reached a terminal state: keep its means, start its chain successors."""
+    """Bookkeeping once a job reached a terminal state: a sweep job's means and chain successors, then
+    the rows of its owner's sweeps that waited for the slot it freed."""
     link = store.redis.get(store.key("sweepjob", job_id))
-    if link is None:
-        return
-    sweep_id, _, index_text = link.decode().partition(":")
-    sweep = load_sweep(store, sweep_id)
-    if sweep is None:
-        return
-    index = int(index_text)
+    if link is not None:
+        sweep_id, _, index_text = link.decode().partition(":")
+        sweep = load_sweep(store, sweep_id)
+        if sweep is not None:
+            _sweep_job_finished(sweep, job_id, int(index_text))
+    owner = store.redis.hget(store.keys.job(job_id), "owner")
+    if owner is not None:
+        _create_held_back(store, owner.decode())
+
+
+def _sweep_job_finished(sweep: Sweep, job_id: str, index: int) -> None:
+    store = sweep.store
     if sweep.stationary and store.redis.hget(store.keys.job(job_id), "state") == b"done":
         result = store.get_result(job_id)
         if result is not None:
@@ -302,8 +366,26 @@ def job_finished(store: JobStore, job_id: str) -> None:
             means = stationary.get("means") if isinstance(stationary, dict) else None
             store.redis.hset(sweep.keys.means, index, orjson.dumps(means))
     if sweep.plan.chain and sweep.canceled_at is None:
-        for successor in sweep.plan.successors(index):
-            ensure_job(sweep, successor)
+        try:
+            for successor in sweep.plan.successors(index):
+                ensure_job(sweep, successor)
+        except AtCap:
+            pass  # created once one of the owner's jobs finishes
+
+
+def _create_held_back(store: JobStore, owner: str) -> list[str]:
+    """Create the due rows of ``owner``'s sweeps that waited for a slot; the ids of the jobs created."""
+    key = _waiting_for_slot_key(store, owner)
+    created: list[str] = []
+    for member in store.redis.smembers(key):
+        sweep = load_sweep(store, member.decode())
+        store.redis.srem(key, member)
+        if sweep is not None and sweep.canceled_at is None:
+            try:
+                created += _create_due_rows(sweep)
+            except AtCap:
+                break
+    return created
 
 
 def rescue_pending(store: JobStore) -> list[str]:
@@ -323,20 +405,34 @@ def rescue_pending(store: JobStore) -> list[str]:
             continue
         if store.redis.exists(sweep.keys.door):
             continue
-        plan = sweep.plan
-        jobs, states = row_states(sweep)
-        errors = {int(k) for k in store.redis.hkeys(sweep.keys.errors)}
-        if len(jobs) + len(errors) >= plan.count:
-            store.redis.srem(key, member)
+        try:
+            created += _create_due_rows(sweep)
+        except AtCap:
             continue
-        for index in range(plan.count):
-            if index in jobs or index in errors:
-                continue
-            before = plan.predecessor(index) if plan.chain else None
-            if before is None or states.get(before) in TERMINAL_STATES:
-                job_id = ensure_job(sweep, index)
-                if job_id is not None:
-                    created.append(job_id)
+    return created
+
+
+def _create_due_rows(sweep: Sweep) -> list[str]:
+    """Create every due row of ``sweep`` until its owner's caps refuse one (:class:`AtCap`); the new job ids.
+
+    A row is due when it has no job and no error and, in a chain, its
+    predecessor has finished.  A sweep with every row settled leaves the pending set.
+    """
+    store, plan = sweep.store, sweep.plan
+    jobs, states = row_states(sweep)
+    errors = {int(k) for k in store.redis.hkeys(sweep.keys.errors)}
+    if len(jobs) + len(errors) >= plan.count:
+        store.redis.srem(pending_key(store), sweep.id)
+        return []
+    created: list[str] = []
+    for index in range(plan.count):
+        if index in jobs or index in errors:
+            continue
+        before = plan.predecessor(index) if plan.chain else None
+        if before is None or states.get(before) in TERMINAL_STATES:
+            job_id = ensure_job(sweep, index)
+            if job_id is not None:
+                created.append(job_id)
     return created
 
 

@@ -1,4 +1,4 @@
-"""Stored sweeps: their Redis keys, loading one, storing a new one, and listing them."""
+"""Stored sweeps: their Redis keys, loading one, storing a new one, listing them and forgetting old ones."""
 
 from __future__ import annotations
 
@@ -15,7 +15,16 @@ from service.store import JobStore, is_job_id
 from service.sweeps.request import SweepRequest, sweep_tag
 from worker.errors import InvalidDocument
 
-__all__ = ["CLAIM_MS", "Sweep", "SweepKeys", "list_sweeps", "load_sweep", "row_states", "store_sweep"]
+__all__ = [
+    "CLAIM_MS",
+    "Sweep",
+    "SweepKeys",
+    "forget_expired_sweeps",
+    "list_sweeps",
+    "load_sweep",
+    "row_states",
+    "store_sweep",
+]
 
 CLAIM_MS = 60_000
 """Milliseconds a claim on creating one row's job lasts, and the door's marker between renewals;
@@ -184,3 +193,43 @@ def list_sweeps(
         if sweep is not None:
             records.append(sweep.public())
     return records, encode_cursor(*page[-1]) if more and page else None
+
+
+def forget_expired_sweeps(store: JobStore, now: float | None = None, *, scan_limit: int = 500) -> list[str]:
+    """Delete the sweeps whose jobs have all expired, with every key of theirs; their ids.
+
+    A sweep lives as long as its last job: once it is no longer pending (every
+    row has a job or an error) and none of its jobs' records is left
+    (``job_ttl_s`` after each job's end), its keys go and it leaves the
+    listings.  Only sweeps submitted at least ``job_ttl_s`` before ``now``
+    (seconds since the epoch; default the current time) can qualify; at most
+    ``scan_limit`` of them, oldest first, are examined per call.  The reaper
+    calls this on its passes.
+    """
+    horizon_ms = int(((time.time() if now is None else now) - store.settings.job_ttl_s) * 1000)
+    redis = store.redis
+    candidates = [m.decode() for m in redis.zrangebyscore(index_key(store, None), "-inf", horizon_ms, 0, scan_limit)]
+    pending = {m.decode() for m in redis.smembers(pending_key(store))}
+    forgotten = []
+    for sweep_id in candidates:
+        if sweep_id in pending:
+            continue
+        keys = SweepKeys(store, sweep_id)
+        owner = redis.hget(keys.sweep, "owner")
+        job_ids = [v.decode() for v in redis.hvals(keys.jobs)]
+        with redis.pipeline(transaction=False) as pipe:
+            for job_id in job_ids:
+                pipe.exists(store.keys.job(job_id))
+            alive = pipe.execute()
+        if any(alive):
+            continue
+        with redis.pipeline(transaction=True) as pipe:
+            pipe.delete(keys.sweep, keys.base, keys.jobs, keys.means, keys.errors, keys.door)
+            for job_id in job_ids:
+                pipe.delete(keys.job_link(job_id))
+            pipe.zrem(index_key(store, None), sweep_id)
+            if owner is not None:
+                pipe.zrem(index_key(store, owner.decode()), sweep_id)
+            pipe.execute()
+        forgotten.append(sweep_id)
+    return forgotten

@@ -228,7 +228,9 @@ def test_full_lifecycle(service: Service) -> None:
     assert table[0] == ["capacity", "demand", "value", "capacity_next"]
     sizes = [len(values) for values in result["axes"].values()]
     assert len(table) - 1 == math.prod(sizes) == 120 * 7
-    assert float(table[1][2]) == result["value"][0][0] and float(table[-1][3]) == result["policy"]["capacity_next"][-1][-1]
+    assert (
+        float(table[1][2]) == result["value"][0][0] and float(table[-1][3]) == result["policy"]["capacity_next"][-1][-1]
+    )
 
     listed = service.http.get("/v1/jobs", params={"state": "done", "tag": "example"}).json()
     assert job_id in [job["id"] for job in listed["data"]]

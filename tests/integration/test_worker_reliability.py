@@ -349,7 +349,7 @@ def test_a_killed_node_s_job_resumes_from_its_checkpoint(
 def test_an_orphaned_work_horse_keeps_its_lease_and_finishes(
     fast_store: JobStore, workers: Workers, result_writes: Counter[str]
 ) -> None:
-    # Only a forking worker has a work-horse that can outlive it (DESIGN 7).
+    # Only a forking worker has a work-horse that can outlive it (RQ 3.0 puts it in its own process group).
     workers.env["FIXQ_WORKER_CLASS"] = "forking"
     job_id = submit(fast_store, slow_replacement(25))
     first = workers.start()

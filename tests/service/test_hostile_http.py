@@ -91,8 +91,8 @@ EXPRESSIONS = [
     "log(stock, 2, 3, 4)",
     "\x00stock",
 ]
-"""Expressions outside the grammar (DESIGN section 3b): no calls beyond the list, no attributes, no indexing,
-no strings, no comprehensions; plus ones built to exhaust the parser."""
+"""Expressions outside the grammar (the README's expression reference): no calls beyond the list, no
+attributes, no indexing, no strings, no comprehensions; plus ones built to exhaust the parser."""
 
 
 def corpus() -> Iterator[tuple[str, Any]]:

@@ -48,7 +48,9 @@ def test_submit_answers_202_with_the_record_and_location(client: httpx.Client, s
     assert client.get(record["links"]["self"]).json() == record
 
 
-def test_invalid_documents_are_422_with_every_fault_and_nothing_is_queued(client: httpx.Client, store: JobStore) -> None:
+def test_invalid_documents_are_422_with_every_fault_and_nothing_is_queued(
+    client: httpx.Client, store: JobStore
+) -> None:
     document = machine_shop(discount=1.0)
     document["model"]["transition"][1][0] = [0.5, 0.5, 0.5]
     body = assert_problem(client.post("/v1/jobs", json=document), 422)
@@ -83,7 +85,8 @@ def test_bodies_that_are_no_json_object_are_4xx(client: httpx.Client, body: byte
 
 def test_hostile_documents_never_yield_5xx(client: httpx.Client) -> None:
     bodies = [
-        b'{"version": 1, "discount": 0.9, "model": ' + b"[" * depth + b"0" + b"]" * depth + b"}" for depth in (900, 5000)
+        b'{"version": 1, "discount": 0.9, "model": ' + b"[" * depth + b"0" + b"]" * depth + b"}"
+        for depth in (900, 5000)
     ]
     shapes = [
         {"version": 1, "discount": "0.9", "model": {"kind": "grid"}},
@@ -155,7 +158,9 @@ def test_idempotency_key_answers_the_same_job(client: httpx.Client, store: JobSt
 
 
 def test_warm_start_must_name_a_finished_job(client: httpx.Client) -> None:
-    body = assert_problem(client.post("/v1/jobs", json=machine_shop(solver={"initial": {"job": "0123456789abcdef"}})), 422)
+    body = assert_problem(
+        client.post("/v1/jobs", json=machine_shop(solver={"initial": {"job": "0123456789abcdef"}})), 422
+    )
     assert body["errors"][0]["path"] == "solver.initial.job"
     queued = submit(client)
     body = assert_problem(client.post("/v1/jobs", json=machine_shop(solver={"initial": {"job": queued["id"]}})), 422)
@@ -181,7 +186,7 @@ def test_result_is_409_until_done_and_then_the_result_document(client: httpx.Cli
     response = client.get(f"/v1/jobs/{record['id']}/result")
     assert response.status_code == 200 and response.headers["content-type"] == "application/json"
     result = response.json()
-    # The HTTP answer is the in-process front door's answer (DESIGN section 2).
+    # The HTTP answer is the in-process front door's answer (worker.solve).
     expected = solve(document)
     assert result["status"] == expected["status"] == "converged"
     assert result["policy"] == expected["policy"]
@@ -225,13 +230,14 @@ def test_csv_of_a_tabular_result_has_one_row_per_state(client: httpx.Client) -> 
 
 
 def test_csv_of_a_grid_result_covers_every_state_and_shock_combination(client: httpx.Client, store: JobStore) -> None:
-    # A result document of the shape DESIGN section 5 gives a grid problem:
+    # A result document of the shape the README's result reference gives a grid problem:
     # two states and one shock, value and policy of shape (3, 2, 2).
     axes = {"k": [1.0, 2.0, 3.0], "h": [0.0, 1.0], "z": [0.9, 1.1]}
     value = np.arange(12, dtype=float).reshape(3, 2, 2) / 7
     policy = {"k_next": (np.arange(12).reshape(3, 2, 2) % 3 + 1.0).tolist(), "work": np.full((3, 2, 2), 0.5).tolist()}
     result = {"status": "converged", "error_bound": 1e-9, "iterations": 4, "seconds": 0.1, "axes": axes,
-              "value": value.tolist(), "policy": policy, "policy_index": policy, "log": [], "diagnostics": {}}  # fmt: skip
+              "value": value.tolist(), "policy": policy, "policy_index": policy, "log": [],
+              "diagnostics": {}}  # fmt: skip
     record = submit(client)
     token = secrets.token_hex(8)
     store.claim(record["id"], token, worker="test:1")
@@ -253,7 +259,10 @@ def test_unknown_format_is_400(client: httpx.Client) -> None:
 
 
 def fake_entries(first: int, last: int) -> list[dict]:
-    return [{"iteration": i, "distance": 0.5**i, "error_bound": 9 * 0.5**i, "seconds": i / 100} for i in range(first, last + 1)]
+    return [
+        {"iteration": i, "distance": 0.5**i, "error_bound": 9 * 0.5**i, "seconds": i / 100}
+        for i in range(first, last + 1)
+    ]
 
 
 def test_log_pages_with_cursors(client: httpx.Client, store: JobStore) -> None:
@@ -272,7 +281,9 @@ def test_log_pages_with_cursors(client: httpx.Client, store: JobStore) -> None:
     assert_problem(client.get(f"/v1/jobs/{record['id']}/log", params={"limit": 0}), 400)
     assert_problem(client.get(f"/v1/jobs/{record['id']}/log", params={"cursor": 10**30}), 400)
     store.finish(record["id"], token, "canceled", iterations=25)
-    huge = client.get(f"/v1/jobs/{record['id']}/log", headers={"accept": "text/event-stream", "last-event-id": "9" * 30})
+    huge = client.get(
+        f"/v1/jobs/{record['id']}/log", headers={"accept": "text/event-stream", "last-event-id": "9" * 30}
+    )
     assert huge.status_code == 200 and parse_sse(huge.text)[-1][1] == "end"
 
 
@@ -399,7 +410,8 @@ def test_auth_on_refuses_requests_without_a_valid_key(app_settings: Settings, re
     with make_client(app) as client:
         for request in (client.build_request("POST", "/v1/jobs", json=machine_shop()),
                         client.build_request("GET", "/v1/jobs"),
-                        client.build_request("GET", "/v1/jobs/0123456789abcdef", headers={"authorization": "Bearer k"})):  # fmt: skip
+                        client.build_request("GET", "/v1/jobs/0123456789abcdef",
+                                             headers={"authorization": "Bearer k"})):  # fmt: skip
             response = client.send(request)
             assert_problem(response, 401)
             assert response.headers["www-authenticate"].startswith("Bearer")

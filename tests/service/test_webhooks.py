@@ -168,7 +168,8 @@ def test_host_names_that_resolve_inside_are_refused(settings: Settings, resolver
         "metadata.google.internal": ["169.254.169.254"],
     })  # fmt: skip
     for host, shown in (("localhost", "127.0.0.1"), ("hooks.lab.example", "10.20.30.40"),
-                        ("mixed.lab.example", "192.168.0.7"), ("metadata.google.internal", "169.254.169.254")):  # fmt: skip
+                        ("mixed.lab.example", "192.168.0.7"),
+                        ("metadata.google.internal", "169.254.169.254")):  # fmt: skip
         with pytest.raises(InvalidDocument) as caught:
             webhooks.check_target(f"https://{host}/hook", listed)
         assert f"resolves to {shown}" in caught.value.errors[0]["message"]

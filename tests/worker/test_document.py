@@ -97,7 +97,9 @@ def farm() -> dict[str, Any]:
                 "feed": {"min": 1.0, "max": 100.0, "points": 12, "spacing": "log"},
             },
             "shocks": {
-                "rain": {"markov": {"values": [0.5, 1.0, 1.5], "matrix": [[0.5, 0.5, 0], [0.25, 0.5, 0.25], [0, 0.5, 0.5]]}},
+                "rain": {
+                    "markov": {"values": [0.5, 1.0, 1.5], "matrix": [[0.5, 0.5, 0], [0.25, 0.5, 0.25], [0, 0.5, 0.5]]}
+                },
                 "price": {"iid": {"values": [0.8, 1.0, 1.3], "probs": [0.25, 0.5, 0.25]}},
             },
             "choices": {
@@ -110,7 +112,12 @@ def farm() -> dict[str, Any]:
             "reward": "income - 0.01 * feed_next - effort**2",
             "feasible": ["feed_next <= feed + 10 * rain"],
         },
-        "solver": {"method": "value_iteration", "max_iterations": 5000, "time_limit_s": 60, "initial": {"job": "job_123-abc"}},
+        "solver": {
+            "method": "value_iteration",
+            "max_iterations": 5000,
+            "time_limit_s": 60,
+            "initial": {"job": "job_123-abc"},
+        },
     }
 
 
@@ -235,7 +242,9 @@ def test_disallowed_rows_are_ignored() -> None:
 def test_packed_arrays_are_accepted() -> None:
     shop = machine_shop()
     reward = np.array([[1.0, -0.5], [2.0, np.nan], [0.2, -1.0]])
-    doc = parse_document(edit(edit(shop, "model.reward", packed(reward)), "model.transition", packed(shop["model"]["transition"])))
+    doc = parse_document(
+        edit(edit(shop, "model.reward", packed(reward)), "model.transition", packed(shop["model"]["transition"]))
+    )
     np.testing.assert_array_equal(doc.model.reward, reward)
     assert doc.model.transition.shape == (3, 2, 3)
 
@@ -311,14 +320,18 @@ def test_a_nan_number_inside_a_nested_reward_is_refused() -> None:
     # Only null means "not allowed" in nested lists; a Python caller's float NaN is a mistake.
     document = edit(machine_shop(), "model.reward[2][1]", float("nan"))
     errors = faults(document)
-    assert errors == [{"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"}]
+    assert errors == [
+        {"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"}
+    ]
     document = edit(machine_shop(), "model.reward[1]", [np.float64("nan"), None])
     assert_fault(document, "model.reward[1][0]", "NaN is not a number here")
 
 
 @pytest.mark.parametrize("value", [math.inf, -math.inf])
 def test_infinity_inside_a_nested_reward_is_refused(value: float) -> None:
-    assert_fault(edit(machine_shop(), "model.reward[0][1]", value), "model.reward[0][1]", "infinity is not allowed here")
+    assert_fault(
+        edit(machine_shop(), "model.reward[0][1]", value), "model.reward[0][1]", "infinity is not allowed here"
+    )
 
 
 def test_solve_refuses_a_nan_number_inside_a_nested_reward() -> None:
@@ -326,7 +339,10 @@ def test_solve_refuses_a_nan_number_inside_a_nested_reward() -> None:
 
     with pytest.raises(InvalidDocument) as info:
         solve(edit(machine_shop(), "model.reward[2][1]", float("nan")))
-    assert {"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"} in info.value.errors
+    assert {
+        "path": "model.reward[2][1]",
+        "message": "NaN is not a number here; use null for a choice that is not allowed",
+    } in info.value.errors
 
 
 NESTED_ARRAYS = [
@@ -350,7 +366,9 @@ def test_other_nested_arrays_refuse_nan_and_infinity(document: Any, path: str, v
 def test_initial_values_refuse_nan_and_infinity(value: float) -> None:
     values = [[0.0] * 5 for _ in range(60)]
     values[3][2] = value
-    assert_fault(edit(plant(), "solver.initial", {"values": values}), "solver.initial.values[3][2]", "is not allowed here")
+    assert_fault(
+        edit(plant(), "solver.initial", {"values": values}), "solver.initial.values[3][2]", "is not allowed here"
+    )
 
 
 def test_examples_shipped_with_the_service_parse() -> None:
@@ -363,7 +381,13 @@ def test_examples_shipped_with_the_service_parse() -> None:
 
 def test_service_package_is_import_light() -> None:
     code = "import sys, service; print('fastapi' in sys.modules, 'pydantic' in sys.modules)"
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=Path(__file__).resolve().parents[2])
+    out = subprocess.run(
+        [sys.executable, "-c", code],
+        capture_output=True,
+        text=True,
+        check=True,
+        cwd=Path(__file__).resolve().parents[2],
+    )
     assert out.stdout.split() == ["False", "False"]
 
 
@@ -413,7 +437,7 @@ SOLVER_AND_REPORT = [
     ("solver.time_limit_s", float("inf"), "solver.time_limit_s", "finite"),
     ("solver.checkpoint_s", -5, "solver.checkpoint_s", "greater than 0"),
     ("solver.initial", "ones", "solver.initial", 'must be "zeros"'),
-    ("solver.initial", {"values": [1.0], "job": "a"}, "solver.initial", '{"values": ARRAY} or an object {"job": JOB_ID}'),
+    ("solver.initial", {"values": [1.0], "job": "a"}, "solver.initial", '{"values": ARRAY} or an object {"job": JOB_ID}'),  # noqa: E501
     ("solver.initial", {"job": "no spaces"}, "solver.initial.job", "a job id is 1 to 128 letters"),
     ("solver.initial", {"values": [[1.0, 2.0]]}, "solver.initial.values", "the value array has shape [60, 5]"),
     ("solver.initial", {"values": [1.0, float("nan")]}, "solver.initial.values[1]", "NaN is not allowed"),
@@ -424,11 +448,11 @@ SOLVER_AND_REPORT = [
     ("report.simulation.paths", DELETE, "report.simulation.paths", "missing required key `paths`"),
     ("report.simulation", {"periods": 1000, "paths": 10_001}, "report.simulation", "periods × paths is 10,001,000"),
     ("report.simulation.seed", -1, "report.simulation.seed", "at least 0"),
-    ("report.simulation.start", {"capacity": 2.0, "demand": 1.0, "weather": 1}, "report.simulation.start.weather", "not a state or shock"),
+    ("report.simulation.start", {"capacity": 2.0, "demand": 1.0, "weather": 1}, "report.simulation.start.weather", "not a state or shock"),  # noqa: E501
     ("report.simulation.start", {"capacity": 2.0}, "report.simulation.start.demand", "missing a starting value"),
-    ("report.simulation.start", {"capacity": 20.0, "demand": 1.0}, "report.simulation.start.capacity", "outside the grid of `capacity`, [0.5, 10]"),
-    ("report.simulation.start", {"capacity": 2.0, "demand": 5.0}, "report.simulation.start.demand", "outside the grid of `demand`"),
-    ("report.simulation.start", {"capacity": "a", "demand": 1.0}, "report.simulation.start.capacity", "expected a number"),
+    ("report.simulation.start", {"capacity": 20.0, "demand": 1.0}, "report.simulation.start.capacity", "outside the grid of `capacity`, [0.5, 10]"),  # noqa: E501
+    ("report.simulation.start", {"capacity": 2.0, "demand": 5.0}, "report.simulation.start.demand", "outside the grid of `demand`"),  # noqa: E501
+    ("report.simulation.start", {"capacity": "a", "demand": 1.0}, "report.simulation.start.capacity", "expected a number"),  # noqa: E501
     ("report.simulation.start", "capacity", "report.simulation.start", "for a grid model, start is an object"),
     ("report.simulation.start", [1, 2], "report.simulation.start", "expected an object of state and shock values"),
 ]
@@ -441,18 +465,18 @@ GRID = [
     ("model.states.capacity.points", 10_000_001, "model.states.capacity.points", "at most 10,000,000 points per axis"),
     ("model.states.capacity.points", 10**12, "model.states.capacity.points", "at most 10,000,000 points"),
     ("model.states.capacity.points", DELETE, "model.states.capacity.points", "missing `points`"),
-    ("model.states.capacity.minimum", 1, "model.states.capacity.minimum", "unknown key `minimum` (did you mean `min`?)"),
+    ("model.states.capacity.minimum", 1, "model.states.capacity.minimum", "unknown key `minimum` (did you mean `min`?)"),  # noqa: E501
     ("model.states.capacity.spacing", "cubic", "model.states.capacity.spacing", '"uniform", "log" or "power"'),
     ("model.states.capacity.exponent", 0, "model.states.capacity.exponent", "greater than 0"),
-    ("model.states.capacity.values", [1, 2], "model.states.capacity.values", "cannot be combined with `min`, `max`, `points`"),
+    ("model.states.capacity.values", [1, 2], "model.states.capacity.values", "cannot be combined with `min`, `max`, `points`"),  # noqa: E501
     ("model.states.capacity", {}, "model.states.capacity", "give either `min`, `max` and `points`"),
-    ("model.states.capacity", {"values": [1, 2, 2, 3]}, "model.states.capacity.values[2]", "strictly increasing, but 2 follows 2"),
+    ("model.states.capacity", {"values": [1, 2, 2, 3]}, "model.states.capacity.values[2]", "strictly increasing, but 2 follows 2"),  # noqa: E501
     ("model.states.capacity", {"values": [1]}, "model.states.capacity.values", "at least 2 values"),
     ("model.states.capacity", {"values": [[1, 2]]}, "model.states.capacity.values", "1-dimensional"),
     ("model.states.capacity", {"values": [1, "2"]}, "model.states.capacity.values[1]", "expected a number"),
-    ("model.states.capacity", {"min": 0, "max": 1, "points": 3, "spacing": "log"}, "model.states.capacity.min", "log spacing needs min > 0"),
-    ("model.states.capacity", {"min": 0, "max": 1, "points": 3, "exponent": 2}, "model.states.capacity.exponent", 'only with spacing "power"'),
-    ("model.states.capacity", {"min": 1, "max": 1 + 1e-12, "points": 100_000}, "model.states.capacity.points", "too close together"),
+    ("model.states.capacity", {"min": 0, "max": 1, "points": 3, "spacing": "log"}, "model.states.capacity.min", "log spacing needs min > 0"),  # noqa: E501
+    ("model.states.capacity", {"min": 0, "max": 1, "points": 3, "exponent": 2}, "model.states.capacity.exponent", 'only with spacing "power"'),  # noqa: E501
+    ("model.states.capacity", {"min": 1, "max": 1 + 1e-12, "points": 100_000}, "model.states.capacity.points", "too close together"),  # noqa: E501
     ("model.states", {}, "model.states", "at least 1 entry"),
     ("model.states.2k", {"min": 0, "max": 1, "points": 3}, "model.states.2k", "not a valid name"),
     ("model.params.exp", 1.0, "model.params.exp", "name of a function"),
@@ -470,22 +494,22 @@ GRID = [
     ("model.shocks.demand.ar1.mean", 800.0, "model.shocks.demand.transform", "overflows float64"),
     ("model.shocks.demand.transform", "log", "model.shocks.demand.transform", '"exp" or "none"'),
     ("model.shocks.demand", {"transform": "exp"}, "model.shocks.demand", "exactly one of `ar1`, `markov` or `iid`"),
-    ("model.shocks.demand.iid", {"values": [1], "probs": [1]}, "model.shocks.demand.iid", "cannot be combined with `ar1`"),
-    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0]]}}, "model.shocks.demand.markov.matrix", "must be square"),
-    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0, 0]] * 3}}, "model.shocks.demand.markov.matrix", "there are 2 values"),
-    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0], [0.3, 0.6]]}}, "model.shocks.demand.markov.matrix[1]", "sums to 0.9"),
-    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1.2, -0.2], [0, 1]]}}, "model.shocks.demand.markov.matrix[0][1]", "non-negative"),
-    ("model.shocks.demand", {"markov": {"values": [2, 1], "matrix": [[1, 0], [0, 1]]}}, "model.shocks.demand.markov.values[1]", "strictly increasing"),
-    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [0.5, 0.6]}}, "model.shocks.demand.iid.probs", "the probabilities sum to 1.1"),
-    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [1.5, -0.5]}}, "model.shocks.demand.iid.probs[1]", "non-negative"),
-    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [1.0]}}, "model.shocks.demand.iid.probs", "one per value"),
+    ("model.shocks.demand.iid", {"values": [1], "probs": [1]}, "model.shocks.demand.iid", "cannot be combined with `ar1`"),  # noqa: E501
+    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0]]}}, "model.shocks.demand.markov.matrix", "must be square"),  # noqa: E501
+    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0, 0]] * 3}}, "model.shocks.demand.markov.matrix", "there are 2 values"),  # noqa: E501
+    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1, 0], [0.3, 0.6]]}}, "model.shocks.demand.markov.matrix[1]", "sums to 0.9"),  # noqa: E501
+    ("model.shocks.demand", {"markov": {"values": [1, 2], "matrix": [[1.2, -0.2], [0, 1]]}}, "model.shocks.demand.markov.matrix[0][1]", "non-negative"),  # noqa: E501
+    ("model.shocks.demand", {"markov": {"values": [2, 1], "matrix": [[1, 0], [0, 1]]}}, "model.shocks.demand.markov.values[1]", "strictly increasing"),  # noqa: E501
+    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [0.5, 0.6]}}, "model.shocks.demand.iid.probs", "the probabilities sum to 1.1"),  # noqa: E501
+    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [1.5, -0.5]}}, "model.shocks.demand.iid.probs[1]", "non-negative"),  # noqa: E501
+    ("model.shocks.demand", {"iid": {"values": [1, 2], "probs": [1.0]}}, "model.shocks.demand.iid.probs", "one per value"),  # noqa: E501
     ("model.choices", {}, "model.choices", "at least 1 entry"),
     ("model.choices.capacity_next.next_of", "size", "model.choices.capacity_next.next_of", "`size` is not a state"),
-    ("model.choices.again", {"next_of": "capacity"}, "model.choices.again.next_of", "already chosen by choice `capacity_next`"),
+    ("model.choices.again", {"next_of": "capacity"}, "model.choices.again.next_of", "already chosen by choice `capacity_next`"),  # noqa: E501
     ("model.choices.capacity_next", {}, "model.choices.capacity_next", "exactly one of: `next_of`"),
-    ("model.choices.capacity_next.values", [1.0], "model.choices.capacity_next.values", "cannot be combined with `next_of`"),
+    ("model.choices.capacity_next.values", [1.0], "model.choices.capacity_next.values", "cannot be combined with `next_of`"),  # noqa: E501
     ("model.choices.price_cut", {"values": [0.1, 0.0]}, "model.choices.price_cut.values[1]", "strictly increasing"),
-    ("model.choices.price_cut", {"min": 1, "max": 0, "points": 3}, "model.choices.price_cut.max", "must be greater than min"),
+    ("model.choices.price_cut", {"min": 1, "max": 0, "points": 3}, "model.choices.price_cut.max", "must be greater than min"),  # noqa: E501
     ("model.next", {"capacity": "capacity"}, "model.next.capacity", "must not also have a next expression"),
     ("model.next", {"size": "1"}, "model.next.size", "`size` is not a state"),
     ("model.reward", "price * (sales", "model.reward", "syntax error"),
@@ -508,13 +532,13 @@ TABULAR = [
     ("model.reward", {"dtype": "float64", "shape": [3, 2], "base64": "AAAA"}, "model.reward.base64", "needs 48 bytes"),
     ("model.reward", {"dtype": "float64", "shape": [3, 2]}, "model.reward.base64", "missing"),
     ("model.transition", [[[1.0, 0.0, 0.0]] * 2] * 2, "model.transition", "must have shape [3, 2, 3]"),
-    ("model.transition[0][0]", [0.6, 0.3, 0.0], "model.transition[0][0]", 'from state "idle" (index 0) under action "run" (index 0) sum to 0.9'),
+    ("model.transition[0][0]", [0.6, 0.3, 0.0], "model.transition[0][0]", 'from state "idle" (index 0) under action "run" (index 0) sum to 0.9'),  # noqa: E501
     ("model.transition[1][0]", [0.5, 0.7, -0.2], "model.transition[1][0][2]", "probability -0.2 is negative"),
     ("model.transition[1][0][1]", None, "model.transition[1][0][1]", "null is not allowed"),
     ("model.transition", {"entry": []}, "model.transition", 'a sparse object {"entries": ...}'),
-    ("model.transition", {"entries": [[0, 0, 0, 1]], "format": "coo"}, "model.transition.format", "unknown key `format`"),
+    ("model.transition", {"entries": [[0, 0, 0, 1]], "format": "coo"}, "model.transition.format", "unknown key `format`"),  # noqa: E501
     ("model.transition", {"entries": [[0, 0, 0]]}, "model.transition.entries", "rows of 4 numbers"),
-    ("model.states", ["idle", "busy", "idle"], "model.states[2]", 'duplicate state label "idle" (first used at index 0)'),
+    ("model.states", ["idle", "busy", "idle"], "model.states[2]", 'duplicate state label "idle" (first used at index 0)'),  # noqa: E501
     ("model.actions", ["run", "run"], "model.actions[1]", "duplicate action label"),
     ("model.states", ["idle", 2, "worn"], "model.states[1]", "expected a string"),
     ("model.states", 0, "model.states", "at least 1"),
@@ -525,7 +549,7 @@ TABULAR = [
     ("model.next", {}, "model.next", "unknown key `next`"),
     ("report.simulation.start", "broken", "report.simulation.start", '"broken" is not a state label'),
     ("report.simulation.start", 3, "report.simulation.start", "state index 3 is out of range"),
-    ("report.simulation.start", {"idle": 1}, "report.simulation.start", "for a tabular model, start is a state label or a state index"),
+    ("report.simulation.start", {"idle": 1}, "report.simulation.start", "for a tabular model, start is a state label or a state index"),  # noqa: E501
     ("solver.initial", {"values": [0.0, 1.0]}, "solver.initial.values", "the value array has shape [3]"),
 ]
 
@@ -533,20 +557,25 @@ SPARSE_ENTRIES = [[0, 0, 0, 0.6], [0, 0, 1, 0.4], [0, 1, 0, 1.0], [1, 0, 1, 1.0]
 
 SPARSE = [
     (0, [0, 0, 0.5, 0.6], "model.transition.entries[0][2]", "next-state index 0.5 is not a whole number"),
-    (1, [3, 0, 1, 0.4], "model.transition.entries[1][0]", "state index 3 is out of range: with 3 states it must be 0 to 2"),
+    (1, [3, 0, 1, 0.4], "model.transition.entries[1][0]", "state index 3 is out of range: with 3 states it must be 0 to 2"),  # noqa: E501
     (2, [0, 2, 0, 1.0], "model.transition.entries[2][1]", "action index 2 is out of range"),
     (3, [1, 0, 1, 1.5], "model.transition.entries[3][3]", "probability 1.5 is outside [0, 1]"),
-    (3, [1, 0, 1, 0.5], "model.transition.entries", 'from state "busy" (index 1) under action "run" (index 0) sum to 0.5'),
+    (3, [1, 0, 1, 0.5], "model.transition.entries", 'from state "busy" (index 1) under action "run" (index 0) sum to 0.5'),  # noqa: E501
     (3, [1, 0, 1, float("nan")], "model.transition.entries[3][3]", "NaN is not allowed"),
 ]
 
 
-@pytest.mark.parametrize(("path", "value", "where", "phrase"), TOP_LEVEL + [c for c in SOLVER_AND_REPORT if not c[0].startswith("report.simulation.start")])
+@pytest.mark.parametrize(
+    ("path", "value", "where", "phrase"),
+    TOP_LEVEL + [c for c in SOLVER_AND_REPORT if not c[0].startswith("report.simulation.start")],
+)
 def test_top_level_solver_and_report_faults(path: str, value: Any, where: str, phrase: str) -> None:
     assert_fault(edit(plant(), path, value), where, phrase)
 
 
-@pytest.mark.parametrize(("path", "value", "where", "phrase"), [c for c in SOLVER_AND_REPORT if c[0].startswith("report.simulation.start")])
+@pytest.mark.parametrize(
+    ("path", "value", "where", "phrase"), [c for c in SOLVER_AND_REPORT if c[0].startswith("report.simulation.start")]
+)
 def test_grid_start_faults(path: str, value: Any, where: str, phrase: str) -> None:
     assert_fault(edit(plant(), path, value), where, phrase)
 
@@ -570,13 +599,19 @@ def test_sparse_transition_faults(row: int, entry: list[float], where: str, phra
 
 def test_sparse_rows_with_no_entries_sum_to_zero() -> None:
     entries = [e for e in SPARSE_ENTRIES if e[:2] != [2, 1]]
-    assert_fault(edit(machine_shop(), "model.transition", {"entries": entries}), "model.transition.entries", 'state "worn" (index 2) under action "service" (index 1) sum to 0')
+    assert_fault(
+        edit(machine_shop(), "model.transition", {"entries": entries}),
+        "model.transition.entries",
+        'state "worn" (index 2) under action "service" (index 1) sum to 0',
+    )
 
 
 def test_farm_faults_on_next_and_law_of_motion() -> None:
     assert_fault(edit(farm(), "model.next", {}), "model.next.herd", "state `herd` has no law of motion")
     assert_fault(edit(farm(), "model.next.herd", "herd * rainfall"), "model.next.herd", "unknown name `rainfall`")
-    assert_fault(edit(farm(), "model.states.herd.values", [0, 5, 10, 20, 40, 30]), "model.states.herd.values[5]", "30 follows 40")
+    assert_fault(
+        edit(farm(), "model.states.herd.values", [0, 5, 10, 20, 40, 30]), "model.states.herd.values[5]", "30 follows 40"
+    )
     assert_fault(edit(farm(), "model.states.feed.min", -1), "model.states.feed.min", "log spacing needs min > 0")
     assert_fault(edit(farm(), "model.choices.sell", {"values": []}), "model.choices.sell.values", "must not be empty")
 
@@ -584,7 +619,12 @@ def test_farm_faults_on_next_and_law_of_motion() -> None:
 def test_a_state_with_no_allowed_action_is_infeasible() -> None:
     document = edit(machine_shop(), "model.reward[2]", [None, None])
     errors = faults(document, InfeasibleModel)
-    assert errors == [{"path": "model.reward[2]", "message": 'state "worn" (index 2) has no allowed action: every reward in its row is null'}]
+    assert errors == [
+        {
+            "path": "model.reward[2]",
+            "message": 'state "worn" (index 2) has no allowed action: every reward in its row is null',
+        }
+    ]
 
 
 def test_infeasibility_with_other_faults_is_an_invalid_document() -> None:
@@ -619,7 +659,13 @@ def test_many_bad_rows_are_counted_not_listed() -> None:
     reward = np.zeros((rows, 1))
     transition = np.zeros((rows, 1, rows))
     transition[:, 0, 0] = 0.5
-    model = {"kind": "tabular", "states": rows, "actions": 1, "reward": packed(reward), "transition": packed(transition)}
+    model = {
+        "kind": "tabular",
+        "states": rows,
+        "actions": 1,
+        "reward": packed(reward),
+        "transition": packed(transition),
+    }
     document = {"version": 1, "discount": 0.9, "model": model}
     errors = faults(document)
     assert len(errors) == 11 and errors[0]["path"] == "model.transition[0][0]"
@@ -641,7 +687,9 @@ def test_a_flood_of_unknown_keys_is_listed_up_to_the_cap() -> None:
 
 def test_objects_with_too_many_keys_are_refused_before_validation() -> None:
     document = edit(plant(), "model.params", {f"p{i}": "not a number" for i in range(100_000)})
-    assert faults(document) == [{"path": "model.params", "message": "has 100,000 keys; no object in a problem document needs more than 1,000"}]
+    assert faults(document) == [
+        {"path": "model.params", "message": "has 100,000 keys; no object in a problem document needs more than 1,000"}
+    ]
 
 
 def test_a_million_bad_labels_give_one_fault() -> None:
@@ -674,13 +722,19 @@ def test_packed_array_with_huge_shape_is_refused_before_decoding() -> None:
     document = edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [10**9, 10**9], "base64": text})
     errors = faults(document, TooLarge)
     assert errors[0]["path"] == "model.reward" and "more than the limit" in errors[0]["message"]
-    document = edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [10**6, 10**6, 10**6], "base64": text})
+    document = edit(
+        machine_shop(), "model.reward", {"dtype": "float64", "shape": [10**6, 10**6, 10**6], "base64": text}
+    )
     assert_fault(document, "model.reward", "expected a 2-dimensional array")
 
 
 def test_packed_array_whose_shape_does_not_match_its_bytes() -> None:
     text = base64.b64encode(np.zeros(6).tobytes()).decode()
-    assert_fault(edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [3, 3], "base64": text}), "model.reward.base64", "needs 72 bytes")
+    assert_fault(
+        edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [3, 3], "base64": text}),
+        "model.reward.base64",
+        "needs 72 bytes",
+    )
 
 
 def test_large_sparse_problem_validates_with_vectorised_checks() -> None:
@@ -695,7 +749,13 @@ def test_large_sparse_problem_validates_with_vectorised_checks() -> None:
     document = {
         "version": 1,
         "discount": 0.99,
-        "model": {"kind": "tabular", "states": states, "actions": actions, "reward": reward, "transition": {"entries": entries}},
+        "model": {
+            "kind": "tabular",
+            "states": states,
+            "actions": actions,
+            "reward": reward,
+            "transition": {"entries": entries},
+        },
     }
     assert parse_document(document).model.transition.entries.shape == (1_000_000, 4)
     entries[-1, 3] = 0.3
@@ -749,7 +809,14 @@ def _valid(root: dict[str, Any], schema_: dict[str, Any], value: Any) -> bool:
             ok = sum(_valid(root, s, value) for s in rule) == 1
         elif key == "allOf":
             ok = all(_valid(root, s, value) for s in rule)
-        elif key in ("properties", "required", "additionalProperties", "propertyNames", "maxProperties", "minProperties"):
+        elif key in (
+            "properties",
+            "required",
+            "additionalProperties",
+            "propertyNames",
+            "maxProperties",
+            "minProperties",
+        ):
             if not isinstance(value, dict):
                 continue
             props = schema_.get("properties", {})
@@ -769,11 +836,20 @@ def _valid(root: dict[str, Any], schema_: dict[str, Any], value: Any) -> bool:
         elif key in ("items", "minItems", "maxItems"):
             if not isinstance(value, list):
                 continue
-            ok = all(_valid(root, rule, v) for v in value) if key == "items" else (len(value) >= rule if key == "minItems" else len(value) <= rule)
+            ok = (
+                all(_valid(root, rule, v) for v in value)
+                if key == "items"
+                else (len(value) >= rule if key == "minItems" else len(value) <= rule)
+            )
         elif key in ("minimum", "maximum", "exclusiveMinimum", "exclusiveMaximum"):
             if not _is_type(value, "number"):
                 continue
-            ok = {"minimum": value >= rule, "maximum": value <= rule, "exclusiveMinimum": value > rule, "exclusiveMaximum": value < rule}[key]
+            ok = {
+                "minimum": value >= rule,
+                "maximum": value <= rule,
+                "exclusiveMinimum": value > rule,
+                "exclusiveMaximum": value < rule,
+            }[key]
         elif key in ("minLength", "maxLength", "pattern"):
             if not isinstance(value, str):
                 continue
@@ -824,7 +900,13 @@ def test_json_schema_is_a_2020_12_schema_with_descriptions() -> None:
 def test_json_schema_accepts_the_valid_examples_and_refuses_unknown_keys() -> None:
     document_schema = json_schema()
     shop_packed = edit(machine_shop(), "model.transition", {"entries": packed(SPARSE_ENTRIES)})
-    examples = [machine_shop(), plant(), farm(), shop_packed, edit(plant(), "solver.initial", {"values": [[0.0] * 5] * 60})]
+    examples = [
+        machine_shop(),
+        plant(),
+        farm(),
+        shop_packed,
+        edit(plant(), "solver.initial", {"values": [[0.0] * 5] * 60}),
+    ]
     for example in examples:
         assert _valid(document_schema, document_schema, _json(example))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "colour", 1)))
@@ -864,7 +946,12 @@ def test_hash_ignores_key_order_and_submission_options() -> None:
 
 def test_hash_sees_defaults_packing_and_numbers_alike() -> None:
     shop = machine_shop()
-    defaults = {"evaluation_steps": DEFAULT_EVALUATION_STEPS, "initial": "zeros", "checkpoint_s": 30, "time_limit_s": None}
+    defaults = {
+        "evaluation_steps": DEFAULT_EVALUATION_STEPS,
+        "initial": "zeros",
+        "checkpoint_s": 30,
+        "time_limit_s": None,
+    }
     explicit = edit(shop, "solver", {**shop["solver"], **defaults})
     as_packed = edit(shop, "model.transition", packed(shop["model"]["transition"]))
     assert document_hash(shop) == document_hash(explicit) == document_hash(as_packed)
@@ -899,7 +986,13 @@ def test_canonical_json_packs_large_arrays() -> None:
     rows = 100
     transition = np.zeros((rows, 1, rows))
     transition[:, 0, 0] = 1.0
-    model = {"kind": "tabular", "states": rows, "actions": 1, "reward": [[1.0]] * rows, "transition": transition.tolist()}
+    model = {
+        "kind": "tabular",
+        "states": rows,
+        "actions": 1,
+        "reward": [[1.0]] * rows,
+        "transition": transition.tolist(),
+    }
     document = {"version": 1, "discount": 0.9, "model": model}
     data = json.loads(canonical_json(document))
     assert set(data["model"]["transition"]) == {"base64", "dtype", "shape"}

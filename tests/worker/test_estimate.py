@@ -14,7 +14,9 @@ from worker.estimate import PRECOMPUTE_MAX_BYTES, estimate, grid_plan
 from worker.gridmodel import compile_grid
 
 
-def grid_document(*, points: int = 200, shocks: int = 3, hints: dict | None = None, choices: dict | None = None) -> dict:
+def grid_document(
+    *, points: int = 200, shocks: int = 3, hints: dict | None = None, choices: dict | None = None
+) -> dict:
     """Stochastic growth (invented calibration), with the expressions of ``test_gridmodel.GROWTH``
     so that both files share compiled kernels."""
     model = {
@@ -73,7 +75,9 @@ def test_unusable_hints_are_explained() -> None:
     size = estimate(parse_document(grid_document(hints={"concave": True}, choices=two)))
     assert size["reward_storage"] == "tables"
     assert any("exactly one choice" in note for note in size["notes"])
-    own = grid_document(hints={"monotone": True, "concave": True}, choices={"k_next": {"min": 1.0, "max": 9.0, "points": 50}})
+    own = grid_document(
+        hints={"monotone": True, "concave": True}, choices={"k_next": {"min": 1.0, "max": 9.0, "points": 50}}
+    )
     own["model"]["next"] = {"k": "k_next"}
     plan = grid_plan(parse_document(own).model)
     assert plan.concave and not plan.monotone and "next_of" in plan.hint_note

@@ -301,7 +301,9 @@ def test_reward_storage_follows_the_estimate_and_the_memory_cap() -> None:
 
 def test_tables_are_never_built_on_the_fly() -> None:
     problem = compiled(GROWTH, reward_storage="on_the_fly")
-    assert all(array.size <= max(problem._data.n_grid, problem._data.n_choices, 3 * 3 + 1) * 8 for array in problem._ctx)
+    assert all(
+        array.size <= max(problem._data.n_grid, problem._data.n_choices, 3 * 3 + 1) * 8 for array in problem._ctx
+    )
     assert math.prod(problem.shape) * problem._data.n_choices > max(array.size for array in problem._ctx)
 
 

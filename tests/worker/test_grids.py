@@ -59,7 +59,11 @@ def test_power_grid_above_one_is_denser_near_min():
         (lambda: build_grid("uniform", float("nan"), 1.0, 10, path="model.states.k"), "model.states.k.min", "finite"),
         (lambda: build_grid("uniform", 0.0, float("inf"), 10, path="model.states.k"), "model.states.k.max", "finite"),
         (lambda: build_grid("cubic", 0.0, 1.0, 10, path="model.states.k"), "model.states.k.spacing", "unknown spacing"),
-        (lambda: build_grid("uniform", 1.0, 1 + 1e-15, 50, path="model.states.k"), "model.states.k.points", "too close"),
+        (
+            lambda: build_grid("uniform", 1.0, 1 + 1e-15, 50, path="model.states.k"),
+            "model.states.k.points",
+            "too close",
+        ),
     ],
 )
 def test_grid_faults_name_the_field(call, path, words):

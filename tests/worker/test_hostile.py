@@ -53,7 +53,9 @@ def grid() -> dict:
             "kind": "grid",
             "params": {"alpha": 0.3},
             "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
-            "shocks": {"z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}},
+            "shocks": {
+                "z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}
+            },
             "choices": {"k_next": {"next_of": "k"}},
             "define": {"c": "z * k**alpha - k_next"},
             "reward": "log(c)",

@@ -62,8 +62,21 @@ def test_result_document_has_every_part_and_is_plain_json():
     document = machine_shop()
     result = solve(copy.deepcopy(document))
     assert set(result) == {
-        "status", "method", "error_bound", "iterations", "evaluation_steps", "linear_solves", "seconds", "axes", "value",
-        "policy", "policy_index", "log", "diagnostics", "stationary", "simulation",
+        "status",
+        "method",
+        "error_bound",
+        "iterations",
+        "evaluation_steps",
+        "linear_solves",
+        "seconds",
+        "axes",
+        "value",
+        "policy",
+        "policy_index",
+        "log",
+        "diagnostics",
+        "stationary",
+        "simulation",
     }
     assert result["status"] == "converged" and result["method"] == "howard"
     assert result["axes"] == {"state_label": ["idle", "busy", "worn"]}
@@ -181,7 +194,11 @@ def test_progress_and_cancel():
     result = solve(machine_shop(method="value_iteration"), on_progress=seen.append)
     assert seen == result["log"]
     with pytest.raises(Canceled) as caught:
-        solve(machine_shop(method="value_iteration"), on_progress=seen.append, should_stop=lambda: len(seen) > len(result["log"]) + 2)
+        solve(
+            machine_shop(method="value_iteration"),
+            on_progress=seen.append,
+            should_stop=lambda: len(seen) > len(result["log"]) + 2,
+        )
     assert caught.value.context["iteration"] == 3
 
 
@@ -199,7 +216,9 @@ def test_the_memory_cap_refuses_with_the_estimate(monkeypatch):
 
 
 def test_reports_through_solve():
-    document = machine_shop() | {"report": {"stationary": True, "simulate": {"periods": 20, "paths": 50, "seed": 4, "start": "worn"}}}
+    document = machine_shop() | {
+        "report": {"stationary": True, "simulate": {"periods": 20, "paths": 50, "seed": 4, "start": "worn"}}
+    }
     result = solve(document)
     stationary = result["stationary"]
     assert len(stationary["distribution"]) == 3
@@ -220,7 +239,16 @@ def test_compile_document_gives_the_document_and_the_problem():
 
 def test_package_exports_and_light_import():
     assert worker.__all__ == sorted(worker.__all__)
-    assert {"solve", "estimate", "METHODS", "FixqError", "InvalidDocument", "InfeasibleModel", "TooLarge", "Canceled"} <= set(worker.__all__)
+    assert {
+        "solve",
+        "estimate",
+        "METHODS",
+        "FixqError",
+        "InvalidDocument",
+        "InfeasibleModel",
+        "TooLarge",
+        "Canceled",
+    } <= set(worker.__all__)
     code = "import sys, worker; assert 'numba' not in sys.modules, 'numba was imported'; print('ok')"
     done = subprocess.run([sys.executable, "-c", code], cwd=REPO, capture_output=True, text=True, timeout=60)
     assert done.returncode == 0 and done.stdout.strip() == "ok", done.stderr
@@ -234,7 +262,9 @@ def growth_document(points: int = 300) -> dict:
             "kind": "grid",
             "params": {"alpha": 0.3},
             "states": {"k": {"min": 0.05, "max": 0.5, "points": points}},
-            "shocks": {"z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}},
+            "shocks": {
+                "z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}
+            },
             "choices": {"k_next": {"next_of": "k"}},
             "define": {"c": "z * k**alpha - k_next"},
             "reward": "log(c)",
@@ -300,7 +330,9 @@ def test_a_broken_grid_hint_is_reported_and_solved_without_it():
     honest = solve(document)
     assert len(broken["diagnostics"]["warnings"]) == 1
     warning = broken["diagnostics"]["warnings"][0]
-    assert warning.startswith("the `monotone` hint did not hold for this model") and "re-solved without hints" in warning
+    assert (
+        warning.startswith("the `monotone` hint did not hold for this model") and "re-solved without hints" in warning
+    )
     gap = np.abs(np.array(broken["value"]) - np.array(honest["value"])).max()
     assert gap <= broken["error_bound"] + honest["error_bound"]
     assert broken["policy_index"] == honest["policy_index"]

@@ -132,7 +132,9 @@ def test_midpoint_bound_is_at_most_the_standard_bound():
         outcome = METHODS["value_iteration"](problem, np.zeros(problem.n), tolerance=1e-30, max_iterations=cut)
         bracket = outcome.bracket
         assert outcome.error_bound <= bracket["standard_bound"]
-        assert outcome.error_bound == pytest.approx(0.5 * (bracket["upper"] - bracket["lower"]) + bracket["rounding_allowance"])
+        assert outcome.error_bound == pytest.approx(
+            0.5 * (bracket["upper"] - bracket["lower"]) + bracket["rounding_allowance"]
+        )
         # The bracket holds statewise: value − shift is Tv, and v* − Tv ∈ [lower, upper].
         tv = outcome.value - bracket["shift"]
         slack = bracket["rounding_allowance"]
@@ -268,7 +270,9 @@ def test_checkpoint_resume_gives_the_same_answer_and_log(name):
 def test_checkpoint_of_another_document_is_ignored():
     problem = random_mdp(27, 10, 2, 0.9, None)
     store = MemoryCheckpoint()
-    METHODS["value_iteration"](problem, np.zeros(problem.n), max_iterations=3, checkpoint=store, checkpoint_s=0.0, fingerprint="one")
+    METHODS["value_iteration"](
+        problem, np.zeros(problem.n), max_iterations=3, checkpoint=store, checkpoint_s=0.0, fingerprint="one"
+    )
     assert store.state["iteration"] >= 2
     fresh = METHODS["value_iteration"](problem, np.zeros(problem.n), checkpoint=store, fingerprint="two")
     assert fresh.resumed_from_iteration is None
@@ -304,7 +308,11 @@ def test_stop_flag_is_polled_between_evaluation_steps():
     started = time.perf_counter()
     with pytest.raises(Canceled) as caught:
         METHODS["howard"](
-            problem, np.zeros(problem.n), evaluation_steps=10_000_000, on_progress=seen.append, should_stop=lambda: bool(seen)
+            problem,
+            np.zeros(problem.n),
+            evaluation_steps=10_000_000,
+            on_progress=seen.append,
+            should_stop=lambda: bool(seen),
         )
     assert caught.value.context["iteration"] == 1
     assert time.perf_counter() - started < 1.0

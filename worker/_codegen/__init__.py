@@ -5,9 +5,11 @@ written per model *structure* (:class:`KernelLayout`): the number of states,
 shocks and choices, which state each ``next_of`` choice sets, and the
 expressions' source from :func:`worker.expressions.scalar_source` and
 :func:`worker.expressions.intervals.interval_source`, with names replaced by
-variables of ours.  Numbers of the document — params, grids, chains — are
-runtime arrays (:func:`context`), never part of the source, so a sweep over
-params or grid sizes reuses one compiled module.
+variables of ours.  Numbers of the document — params, grids, chains, and
+the numbers written in its expressions (:mod:`worker._codegen.literals`,
+but for a few exponents and bases that stay structural) — are runtime arrays
+(:func:`context`), never part of the source, so a sweep over params, grid
+sizes or a number in a formula reuses one compiled module.
 
 The generated text contains only tokens written here plus what the
 expression package returns (which contains no user text).  :func:`load`
@@ -29,7 +31,11 @@ storage run the same search code:
     structure.
 
 The modules of this package: :mod:`~worker._codegen.layout` (the structure
-and ``ctx``), :mod:`~worker._codegen.cache` (the on-disk cache),
+and ``ctx``), :mod:`~worker._codegen.literals` (the expressions' numbers
+moved into ``ctx``), :mod:`~worker._codegen.folder` (the private kernel
+folder), :mod:`~worker._codegen.cache` (loading from it, and the bounds on
+the folder's size and on the modules a process loads:
+:func:`trim`, :func:`loaded_structures`, :func:`recycle_due`),
 :mod:`~worker._codegen.hoist` and :mod:`~worker._codegen.writer` (the
 pieces every kernel shares), :mod:`~worker._codegen.loops` and
 :mod:`~worker._codegen.block_search` (the kernels),
@@ -67,18 +73,26 @@ seconds more compilation per kernel):
 """
 
 from worker._codegen.block_search import BOUND_SLACK
-from worker._codegen.cache import kernel_cache_dir, load, module_name
+from worker._codegen.cache import load, loaded_structures, module_name, recycle_due, trim
+from worker._codegen.folder import UnsafeFolder, kernel_cache_dir
 from worker._codegen.layout import KernelLayout, ModelSource, context, layout_for
+from worker._codegen.literals import kernel_params, lift_literals
 from worker._codegen.source import module_source
 
 __all__ = [
     "BOUND_SLACK",
     "KernelLayout",
     "ModelSource",
+    "UnsafeFolder",
     "context",
+    "kernel_params",
     "kernel_cache_dir",
     "layout_for",
+    "lift_literals",
     "load",
+    "loaded_structures",
     "module_name",
     "module_source",
+    "recycle_due",
+    "trim",
 ]

@@ -130,11 +130,17 @@ def structure_fault(raw: Any, *, max_depth: int, max_keys: int) -> Fault | None:
         if not level:
             return None
         if depth > max_depth:
-            return fault(_path_to_depth(raw, depth), f"nested more than {max_depth} levels deep; no part of a problem document needs that")
+            return fault(
+                _path_to_depth(raw, depth),
+                f"nested more than {max_depth} levels deep; no part of a problem document needs that",
+            )
         dicts = list(compress(level, map(_MAPPINGS.__contains__, map(type, level))))
         if dicts and max(map(len, dicts)) > max_keys:
             big = next(d for d in dicts if len(d) > max_keys)
-            return fault(_path_to(raw, big), f"has {len(big):,} keys; no object in a problem document needs more than {max_keys:,}")
+            return fault(
+                _path_to(raw, big),
+                f"has {len(big):,} keys; no object in a problem document needs more than {max_keys:,}",
+            )
         lists = compress(level, map(_SEQUENCES.__contains__, map(type, level)))
         children = list(chain(chain.from_iterable(lists), chain.from_iterable(map(dict.values, dicts))))
         level = list(compress(children, map(_CONTAINERS.__contains__, map(type, children))))
@@ -191,7 +197,10 @@ def stochastic_faults(matrix: np.ndarray, where: str, *, single_row: bool = Fals
 
     negative = np.argwhere(matrix < 0)
     faults = capped(
-        (fault(at(int(i), int(j)), f"probabilities must be non-negative, got {number(matrix[i, j])}") for i, j in negative),
+        (
+            fault(at(int(i), int(j)), f"probabilities must be non-negative, got {number(matrix[i, j])}")
+            for i, j in negative
+        ),
         len(negative),
         where,
         "negative probabilities",
@@ -200,7 +209,12 @@ def stochastic_faults(matrix: np.ndarray, where: str, *, single_row: bool = Fals
     off = np.flatnonzero((np.abs(sums - 1.0) > ROW_SUM_TOLERANCE) & ~(matrix < 0).any(axis=1))
     what = "the probabilities sum" if single_row else "this row sums"
     faults += capped(
-        (fault(at(int(i)), f"{what} to {number(sums[i])}; probabilities must sum to 1 (within {ROW_SUM_TOLERANCE:g})") for i in off),
+        (
+            fault(
+                at(int(i)), f"{what} to {number(sums[i])}; probabilities must sum to 1 (within {ROW_SUM_TOLERANCE:g})"
+            )
+            for i in off
+        ),
         off.size,
         where,
         "rows that do not sum to 1",
@@ -217,7 +231,9 @@ def form_faults(part: Any, forms: dict[str, tuple[str, ...]], described: str) ->
     if len(used) > 1:
         first = ", ".join(f"`{k}`" for k in present[used[0]])
         return None, [
-            fault(key, f"`{key}` cannot be combined with {first}: give {described}") for name in used[1:] for key in present[name]
+            fault(key, f"`{key}` cannot be combined with {first}: give {described}")
+            for name in used[1:]
+            for key in present[name]
         ]
     return used[0], []
 

@@ -63,7 +63,9 @@ class SchemaExtra:
     def __init__(self, **keywords: Any) -> None:
         self.keywords = keywords
 
-    def __get_pydantic_json_schema__(self, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler) -> dict[str, Any]:
+    def __get_pydantic_json_schema__(
+        self, schema: core_schema.CoreSchema, handler: GetJsonSchemaHandler
+    ) -> dict[str, Any]:
         out = handler(schema)
         out.update(self.keywords)
         return out
@@ -100,7 +102,12 @@ def _nested_schema(ndim: int | None, nullable: bool, row_length: int | None) -> 
 
 
 def array_field(
-    ndim: int | None, *, max_elements: int, inline_elements: int, allow_null: bool = False, row_length: int | None = None
+    ndim: int | None,
+    *,
+    max_elements: int,
+    inline_elements: int,
+    allow_null: bool = False,
+    row_length: int | None = None,
 ) -> Any:
     """The annotated type of a numeric-array field.
 
@@ -122,7 +129,9 @@ def array_field(
         return array.tolist() if array.size <= inline_elements else encode_array(array)
 
     schema = {"anyOf": [_nested_schema(ndim, allow_null, row_length), {"x-packed-array": True}]}
-    return Annotated[np.ndarray, BeforeValidator(decode), PlainSerializer(to_json, when_used="json"), WithJsonSchema(schema)]
+    return Annotated[
+        np.ndarray, BeforeValidator(decode), PlainSerializer(to_json, when_used="json"), WithJsonSchema(schema)
+    ]
 
 
 def check_name(name: str) -> str:
@@ -135,10 +144,14 @@ def check_name(name: str) -> str:
             {"name": name[:80], "limit": MAX_NAME_CHARS},
         )
     if keyword.iskeyword(name) or keyword.issoftkeyword(name):
-        raise PydanticCustomError("fixq_name", "`{name}` is a reserved word and cannot be used as a name", {"name": name})
+        raise PydanticCustomError(
+            "fixq_name", "`{name}` is a reserved word and cannot be used as a name", {"name": name}
+        )
     if name in EXPRESSION_FUNCTIONS:
         raise PydanticCustomError(
-            "fixq_name", "`{name}` is the name of a function of the expression language and cannot be used as a name", {"name": name}
+            "fixq_name",
+            "`{name}` is the name of a function of the expression language and cannot be used as a name",
+            {"name": name},
         )
     return name
 

@@ -39,7 +39,11 @@ def _tagged_member(union: Any, item: Any) -> Any:
         inner, metadata = _unwrap(member)
         if any(isinstance(m, Tag) and m.tag == item for m in metadata):
             return inner
-        if _is_model(inner) and "kind" in inner.model_fields and get_args(inner.model_fields["kind"].annotation) == (item,):
+        if (
+            _is_model(inner)
+            and "kind" in inner.model_fields
+            and get_args(inner.model_fields["kind"].annotation) == (item,)
+        ):
             return inner
     return None
 
@@ -153,7 +157,9 @@ def _union_tags(loc: tuple[Any, ...], root: type[BaseModel]) -> list[str]:
     if union is None or not _is_union(union):
         return []
     members = [_unwrap(m)[0] for m in get_args(union)]
-    return [get_args(m.model_fields["kind"].annotation)[0] for m in members if _is_model(m) and "kind" in m.model_fields]
+    return [
+        get_args(m.model_fields["kind"].annotation)[0] for m in members if _is_model(m) and "kind" in m.model_fields
+    ]
 
 
 def _message(kind: str, ctx: dict[str, Any], given: Any, parts: list[str | int], fallback: str) -> str:
@@ -173,9 +179,16 @@ def _message(kind: str, ctx: dict[str, Any], given: Any, parts: list[str | int],
         key, words = _COMPARISONS[kind]
         return f"must be {words} {ctx.get(key)}, got {describe(given)}"
     if kind == "string_too_short":
-        return "must not be empty" if ctx.get("min_length") == 1 else f"must be at least {ctx.get('min_length')} characters long"
+        return (
+            "must not be empty"
+            if ctx.get("min_length") == 1
+            else f"must be at least {ctx.get('min_length')} characters long"
+        )
     if kind == "string_too_long":
-        return f"must be at most {ctx.get('max_length')} characters long, got {len(given) if isinstance(given, str) else 'more'}"
+        return (
+            f"must be at most {ctx.get('max_length')} characters long, got "
+            f"{len(given) if isinstance(given, str) else 'more'}"
+        )
     if kind in ("too_short", "too_long"):
         limit = ctx.get("min_length" if kind == "too_short" else "max_length")
         noun = ("entry", "entries") if ctx.get("field_type") == "Dictionary" else ("item", "items")

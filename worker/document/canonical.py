@@ -29,7 +29,9 @@ def sorted_keys(node: Any, ordered: set[tuple[str, ...]], where: tuple[str, ...]
 
 
 def _canonical(document: ProblemDocument, include_submission: bool) -> Any:
-    data = document.model_dump(mode="json", exclude_none=True, exclude=None if include_submission else set(SUBMISSION_KEYS))
+    data = document.model_dump(
+        mode="json", exclude_none=True, exclude=None if include_submission else set(SUBMISSION_KEYS)
+    )
     return sorted_keys(data, _ORDERED)
 
 

@@ -82,7 +82,10 @@ class ProblemDocument(Part):
 
     version: Annotated[
         Integer,
-        check(lambda v: v == DOCUMENT_VERSION, f"unsupported document version {{value}}: this service reads version {DOCUMENT_VERSION}"),
+        check(
+            lambda v: v == DOCUMENT_VERSION,
+            f"unsupported document version {{value}}: this service reads version {DOCUMENT_VERSION}",
+        ),
         SchemaExtra(const=DOCUMENT_VERSION),
     ] = Field(description=f"Version of the document format; must be {DOCUMENT_VERSION}.")
     label: Annotated[str, Field(max_length=MAX_LABEL_CHARS)] | None = Field(
@@ -90,7 +93,10 @@ class ProblemDocument(Part):
     )
     tags: Annotated[list[TagText], Field(max_length=MAX_TAGS)] = Field(
         default_factory=list,
-        description=f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters of letters, digits and _ . : -.",
+        description=(
+            f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters "
+            "of letters, digits and _ . : -."
+        ),
     )
     discount: Annotated[
         float,
@@ -108,7 +114,10 @@ class ProblemDocument(Part):
         )
     )
     model: Annotated[Union[TabularModel, GridModel], Field(discriminator="kind")] = Field(
-        description='The model: "tabular" (finite states and actions given as arrays) or "grid" (states on grids, defined by expressions).'
+        description=(
+            'The model: "tabular" (finite states and actions given as arrays) or "grid" (states on grids, defined by '
+            'expressions).'
+        )
     )
     solver: SolverSpec = Field(default_factory=SolverSpec, description="How to solve; every key has a default.")
     report: ReportSpec = Field(default_factory=ReportSpec, description="Extra results.")
@@ -139,7 +148,8 @@ class ProblemDocument(Part):
         return [
             fault(
                 "solver.initial.values",
-                f"has shape {list(got)}, but the value array has shape {list(shape)} ({math.prod(shape):,} values; a flat list of that many is also accepted)",
+                f"has shape {list(got)}, but the value array has shape {list(shape)} ({math.prod(shape):,} values; a "
+                "flat list of that many is also accepted)",
             )
         ]
 
@@ -186,7 +196,13 @@ def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
             return [fault(where, "for a tabular model, start is a state label or a state index")]
         if isinstance(start, int):
             if not 0 <= start < model.n_states:
-                return [fault(where, f"state index {start} is out of range: with {model.n_states} states it must be 0 to {model.n_states - 1}")]
+                return [
+                    fault(
+                        where,
+                        f"state index {start} is out of range: with {model.n_states} states it must be 0 to "
+                        f"{model.n_states - 1}",
+                    )
+                ]
             return []
         if not isinstance(model.states, list) or start not in model.states:
             return [fault(where, f'"{start[:80]}" is not a state label')]
@@ -194,11 +210,22 @@ def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
     if not isinstance(start, dict):
         return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
     axes = {**model.states, **model.shocks}
-    faults = [fault(join_path(where, name), f"`{name}` is not a state or shock of the model") for name in start if name not in axes]
-    faults += [fault(join_path(where, name), f"missing a starting value for `{name}`") for name in axes if name not in start]
+    faults = [
+        fault(join_path(where, name), f"`{name}` is not a state or shock of the model")
+        for name in start
+        if name not in axes
+    ]
+    faults += [
+        fault(join_path(where, name), f"missing a starting value for `{name}`") for name in axes if name not in start
+    ]
     for name, value in start.items():
         if name in axes:
             lo, hi = axes[name].bounds
             if not lo <= value <= hi:
-                faults.append(fault(join_path(where, name), f"{number(value)} lies outside the grid of `{name}`, [{number(lo)}, {number(hi)}]"))
+                faults.append(
+                    fault(
+                        join_path(where, name),
+                        f"{number(value)} lies outside the grid of `{name}`, [{number(lo)}, {number(hi)}]",
+                    )
+                )
     return faults

@@ -68,7 +68,10 @@ class GridAxis(Part):
     exponent: Positive | None = _grid_field("exponent")
     values: Vector | None = Field(
         default=None,
-        description="The grid values themselves, strictly increasing, at least 2 of them (instead of min, max and points).",
+        description=(
+            "The grid values themselves, strictly increasing, at least 2 of them (instead of min, max and "
+            "points)."
+        ),
     )
 
     @property
@@ -92,7 +95,9 @@ class GridAxis(Part):
     @model_validator(mode="after")
     def _check_axis(self) -> GridAxis:
         form, faults = form_faults(
-            self, {"range": RANGE_KEYS, "values": ("values",)}, "either `min`, `max` and `points` (and optionally `spacing`), or `values`"
+            self,
+            {"range": RANGE_KEYS, "values": ("values",)},
+            "either `min`, `max` and `points` (and optionally `spacing`), or `values`",
         )
         if form == "range":
             faults = range_faults(self, other="or give `values`", default_exponent=DEFAULT_EXPONENT)
@@ -113,7 +118,9 @@ class ChoiceSpec(Part):
         default=None,
         description="The name of a state: the choice is tomorrow's value of that state, picked from the state's grid.",
     )
-    values: Vector | None = Field(default=None, description="A finite menu of values to choose from, strictly increasing.")
+    values: Vector | None = Field(
+        default=None, description="A finite menu of values to choose from, strictly increasing."
+    )
     min: float | None = _grid_field("min")
     max: float | None = _grid_field("max")
     points: Points | None = _grid_field("points")
@@ -153,7 +160,11 @@ class ChoiceSpec(Part):
         if form == "range":
             faults = range_faults(self, other="or give `next_of` or `values`", default_exponent=DEFAULT_EXPONENT)
         elif form == "values":
-            faults = increasing_faults(self.values, "values") if self.values.size else [fault("values", "the menu must not be empty")]
+            faults = (
+                increasing_faults(self.values, "values")
+                if self.values.size
+                else [fault("values", "the menu must not be empty")]
+            )
         raise_faults(faults)
         return self
 
@@ -163,8 +174,13 @@ class Hints(Part):
     against the full search (the verification is not an iteration); a broken promise is reported and the
     solve falls back to the full search."""
 
-    monotone: bool = Field(default=False, description="The chosen next value of a state never falls as that state rises.")
-    concave: bool = Field(default=False, description="The objective is single-peaked (concave) in each choice, so the search can stop past the peak.")
+    monotone: bool = Field(
+        default=False, description="The chosen next value of a state never falls as that state rises."
+    )
+    concave: bool = Field(
+        default=False,
+        description="The objective is single-peaked (concave) in each choice, so the search can stop past the peak.",
+    )
 
 
 class GridModel(Part):
@@ -185,7 +201,8 @@ class GridModel(Part):
         )
     )
     shocks: Annotated[dict[Name, ShockSpec], Field(max_length=MAX_AXES)] = Field(
-        default_factory=dict, description="Exogenous shocks, each a Markov chain that evolves independently of the choices."
+        default_factory=dict,
+        description="Exogenous shocks, each a Markov chain that evolves independently of the choices.",
     )
     choices: Annotated[dict[Name, ChoiceSpec], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description="What is chosen each period."
@@ -244,7 +261,8 @@ def grid_gap_fault(spacing: str, lo: float, hi: float, points: int, exponent: fl
     if not gap > 4 * math.ulp(max(abs(lo), abs(hi))):
         return fault(
             "points",
-            f"{points:,} points between {number(lo)} and {number(hi)} would lie too close together to tell apart in float64",
+            f"{points:,} points between {number(lo)} and {number(hi)} would lie too close together to tell apart in "
+            "float64",
         )
     return None
 
@@ -254,7 +272,11 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
 
     Fills in the defaults (``spacing`` uniform; ``exponent`` for power) on ``part``.
     """
-    faults = [fault(key, f"missing `{key}`: a grid needs min, max and points ({other})") for key in ("min", "max", "points") if getattr(part, key) is None]
+    faults = [
+        fault(key, f"missing `{key}`: a grid needs min, max and points ({other})")
+        for key in ("min", "max", "points")
+        if getattr(part, key) is None
+    ]
     spacing = part.spacing or "uniform"
     if part.exponent is not None and spacing != "power":
         faults.append(fault("exponent", f'exponent is used only with spacing "power", not "{spacing}"'))
@@ -263,7 +285,13 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
     if part.min >= part.max:
         faults.append(fault("max", f"max ({number(part.max)}) must be greater than min ({number(part.min)})"))
     elif spacing == "log" and part.min <= 0:
-        faults.append(fault("min", f"log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got {number(part.min)}"))
+        faults.append(
+            fault(
+                "min",
+                "log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got "
+                f"{number(part.min)}",
+            )
+        )
     else:
         exponent = part.exponent if part.exponent is not None else default_exponent
         gap = grid_gap_fault(spacing, part.min, part.max, part.points, exponent)
@@ -288,7 +316,8 @@ def _name_faults(model: Any) -> list[Fault]:
                 faults.append(
                     fault(
                         join_path(section, name),
-                        f"the name `{name}` is already used in {seen[name]}; names must be unique across params, states, shocks, choices and define",
+                        f"the name `{name}` is already used in {seen[name]}; names must be unique across params, "
+                        "states, shocks, choices and define",
                     )
                 )
             else:
@@ -308,19 +337,34 @@ def _motion_faults(model: Any) -> list[Fault]:
         if target not in model.states:
             faults.append(fault(where, f"`{target}` is not a state; next_of must name one of: {states}"))
         elif target in chooser:
-            faults.append(fault(where, f"state `{target}` is already chosen by choice `{chooser[target]}`; a state can be the next_of of only one choice"))
+            faults.append(
+                fault(
+                    where,
+                    f"state `{target}` is already chosen by choice `{chooser[target]}`; a state can be the next_of of "
+                    "only one choice",
+                )
+            )
         else:
             chooser[target] = name
     for name in model.next:
         where = join_path("next", name)
         if name not in model.states:
-            faults.append(fault(where, f"`{name}` is not a state; next gives tomorrow's value of a state (states: {states})"))
+            faults.append(
+                fault(where, f"`{name}` is not a state; next gives tomorrow's value of a state (states: {states})")
+            )
         elif name in chooser:
-            faults.append(fault(where, f"state `{name}` is already chosen through next_of by choice `{chooser[name]}`, so it must not also have a next expression"))
+            faults.append(
+                fault(
+                    where,
+                    f"state `{name}` is already chosen through next_of by choice `{chooser[name]}`, so it must not "
+                    "also have a next expression",
+                )
+            )
     faults += [
         fault(
             join_path("next", name),
-            f"state `{name}` has no law of motion: give next.{name}, an expression for its value tomorrow, or a choice with next_of \"{name}\"",
+            f'state `{name}` has no law of motion: give next.{name}, an expression for its value tomorrow, or a '
+            f'choice with next_of "{name}"',
         )
         for name in model.states
         if name not in chooser and name not in model.next
@@ -333,7 +377,9 @@ def _expressions_faults(model: Any) -> list[Fault]:
     defines = list(model.define)
     faults = []
     for i, name in enumerate(defines):
-        faults += _expression_faults(model.define[name], base + defines[:i], set(defines[i:]), join_path("define", name))
+        faults += _expression_faults(
+            model.define[name], base + defines[:i], set(defines[i:]), join_path("define", name)
+        )
     known = base + defines
     for name, text in model.next.items():
         faults += _expression_faults(text, known, set(), join_path("next", name))
@@ -350,7 +396,9 @@ def _expression_faults(text: str, known: list[str], later: set[str], where: str)
         early = sorted(expression.names & later)
         if early:
             names = ", ".join(f"`{n}`" for n in early)
-            return [fault(where, f"uses {names} before it is defined: a define may use only the defines listed before it")]
+            return [
+                fault(where, f"uses {names} before it is defined: a define may use only the defines listed before it")
+            ]
         expressions.check_names(expression, known, path=where)
     except InvalidDocument as exc:
         return exc.errors

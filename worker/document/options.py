@@ -79,7 +79,10 @@ class InitialJob(Part):
         ),
         SchemaExtra(pattern="^[A-Za-z0-9_-]{1,128}$"),
     ] = Field(
-        description="The id of an earlier finished job; its value function is carried onto this grid (interpolated when the grids differ)."
+        description=(
+            "The id of an earlier finished job; its value function is carried onto this grid (interpolated when the "
+            "grids differ)."
+        )
     )
 
 
@@ -108,8 +111,8 @@ class SolverSpec(Part):
         default=DEFAULT_TOLERANCE,
         description=(
             "Target for the error bound: the certified largest distance between the returned value function and "
-            "the exact fixed point of the discretised problem, in the units of the value function. Any positive number is "
-            "accepted; one below what float64 arithmetic can reach runs to max_iterations."
+            "the exact fixed point of the discretised problem, in the units of the value function. "
+            "Any positive number is accepted; one below what float64 arithmetic can reach runs to max_iterations."
         ),
     )
     evaluation_steps: Annotated[Integer, Field(ge=1, le=MAX_EVALUATION_STEPS)] = Field(
@@ -131,7 +134,10 @@ class SolverSpec(Part):
     )
     time_limit_s: Positive | None = Field(
         default=None,
-        description="Wall-clock limit in seconds; a solve that reaches it ends with status time_limit. null (the default): no limit.",
+        description=(
+            "Wall-clock limit in seconds; a solve that reaches it ends with status time_limit. null (the default): no "
+            "limit."
+        ),
     )
     checkpoint_s: Positive = Field(
         default=DEFAULT_CHECKPOINT_S,
@@ -150,7 +156,10 @@ class SolverSpec(Part):
         ),
     ] = Field(
         default="zeros",
-        description='Where iteration starts: "zeros" (the default), {"values": ARRAY}, or {"job": ID} to start from an earlier job\'s value function.',
+        description=(
+            'Where iteration starts: "zeros" (the default), {"values": ARRAY}, or {"job": ID} to start from an '
+            'earlier job\'s value function.'
+        ),
     )
 
 
@@ -171,7 +180,10 @@ class SimulateSpec(Part):
         description=f"Length of each path in periods, 1 to {MAX_SIMULATION_PERIODS:,}."
     )
     paths: Annotated[Integer, Field(ge=1, le=MAX_SIMULATION_PATHS)] = Field(
-        description=f"Number of paths, 1 to {MAX_SIMULATION_PATHS:,}; periods times paths may be at most {MAX_SIMULATION_DRAWS:,}."
+        description=(
+            f"Number of paths, 1 to {MAX_SIMULATION_PATHS:,}; periods times paths may be at most "
+            f"{MAX_SIMULATION_DRAWS:,}."
+        )
     )
     seed: Annotated[Integer, Field(ge=0, le=2**64 - 1)] = Field(
         default=0, description="Seed of the random numbers, a whole number from 0; the same seed gives the same paths."
@@ -204,7 +216,13 @@ class SimulateSpec(Part):
     def _check_size(self) -> SimulateSpec:
         if self.periods * self.paths > MAX_SIMULATION_DRAWS:
             raise faults_error(
-                [fault("", f"periods × paths is {self.periods * self.paths:,}; at most {MAX_SIMULATION_DRAWS:,} simulated periods are allowed")]
+                [
+                    fault(
+                        "",
+                        f"periods × paths is {self.periods * self.paths:,}; at most {MAX_SIMULATION_DRAWS:,} "
+                        "simulated periods are allowed",
+                    )
+                ]
             )
         return self
 
@@ -227,7 +245,10 @@ class ReportSpec(Part):
 
     stationary: bool = Field(
         default=False,
-        description="Also compute the long-run (stationary) distribution of states and shocks under the optimal policy, with means of states and choices.",
+        description=(
+            "Also compute the long-run (stationary) distribution of states and shocks under the optimal policy, with "
+            "means of states and choices."
+        ),
     )
     simulation: SimulateSpec | None = Field(
         default=None,
@@ -242,7 +263,8 @@ class ReportSpec(Part):
 
     @property
     def simulation_key(self) -> str:
-        """The key the document used for :attr:`simulation` (``simulate`` is the deprecated one), for paths in messages."""
+        """The key the document used for :attr:`simulation` (``simulate`` is the deprecated one),
+        for paths in messages."""
         return self._simulation_key
 
     @model_validator(mode="wrap")
@@ -251,7 +273,12 @@ class ReportSpec(Part):
         deprecated = isinstance(data, dict) and DEPRECATED_SIMULATION_KEY in data
         if deprecated and "simulation" in data:
             raise faults_error(
-                [fault(DEPRECATED_SIMULATION_KEY, "give simulation only: simulate is its deprecated alias, not a second simulation")]
+                [
+                    fault(
+                        DEPRECATED_SIMULATION_KEY,
+                        "give simulation only: simulate is its deprecated alias, not a second simulation",
+                    )
+                ]
             )
         spec = handler(data)
         if deprecated:
@@ -270,9 +297,15 @@ class NotifySpec(Part):
     """Ask the service to call a URL when the job ends."""
 
     url: Annotated[str, Field(max_length=MAX_URL_CHARS), AfterValidator(_check_url)] = Field(
-        description=f"An http:// or https:// URL (at most {MAX_URL_CHARS:,} characters) that receives a POST when the job ends."
+        description=(
+            f"An http:// or https:// URL (at most {MAX_URL_CHARS:,} characters) that receives a POST when the job "
+            "ends."
+        )
     )
     secret: Annotated[str, Field(min_length=1, max_length=MAX_SECRET_CHARS)] | None = Field(
         default=None,
-        description=f"Optional shared secret (1 to {MAX_SECRET_CHARS} characters) with which the notification is signed, so the receiver can check it came from this service.",
+        description=(
+            f"Optional shared secret (1 to {MAX_SECRET_CHARS} characters) with which the notification is signed, so "
+            "the receiver can check it came from this service."
+        ),
     )

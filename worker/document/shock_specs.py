@@ -81,7 +81,13 @@ class AR1Spec(Part):
     def _check_ar1(self) -> AR1Spec:
         if self.width is not None and self.method != "tauchen":
             raise faults_error(
-                [fault("width", "width is used only with method \"tauchen\"; Rouwenhorst's grid spans sqrt(points - 1) unconditional standard deviations")]
+                [
+                    fault(
+                        "width",
+                        'width is used only with method "tauchen"; Rouwenhorst\'s grid spans sqrt(points - 1) '
+                        'unconditional standard deviations',
+                    )
+                ]
             )
         if self.method == "tauchen" and self.width is None:
             self.width = DEFAULT_WIDTH
@@ -107,12 +113,22 @@ class MarkovSpec(Part):
     @model_validator(mode="after")
     def _check_markov(self) -> MarkovSpec:
         n = self.values.size
-        faults = [fault("values", "there must be at least one value")] if n == 0 else increasing_faults(self.values, "values")
+        faults = (
+            [fault("values", "there must be at least one value")]
+            if n == 0
+            else increasing_faults(self.values, "values")
+        )
         shape = self.matrix.shape
         if shape[0] != shape[1]:
             faults.append(fault("matrix", f"the matrix must be square, got shape {list(shape)}"))
         elif shape[0] != n:
-            faults.append(fault("matrix", f"the matrix is {shape[0]} by {shape[1]} but there are {n} values: it needs one row and column per value"))
+            faults.append(
+                fault(
+                    "matrix",
+                    f"the matrix is {shape[0]} by {shape[1]} but there are {n} values: it needs one row and column "
+                    "per value",
+                )
+            )
         else:
             faults += stochastic_faults(self.matrix, "matrix")
         raise_faults(faults)
@@ -123,14 +139,22 @@ class IIDSpec(Part):
     """A shock drawn afresh each period, independently of its past, from a finite distribution."""
 
     values: Vector = Field(description="The values the shock can take, strictly increasing.")
-    probs: Vector = Field(description="probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9).")
+    probs: Vector = Field(
+        description="probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9)."
+    )
 
     @model_validator(mode="after")
     def _check_iid(self) -> IIDSpec:
         n = self.values.size
-        faults = [fault("values", "there must be at least one value")] if n == 0 else increasing_faults(self.values, "values")
+        faults = (
+            [fault("values", "there must be at least one value")]
+            if n == 0
+            else increasing_faults(self.values, "values")
+        )
         if self.probs.size != n:
-            faults.append(fault("probs", f"there are {n} values but {self.probs.size} probabilities: give one per value"))
+            faults.append(
+                fault("probs", f"there are {n} values but {self.probs.size} probabilities: give one per value")
+            )
         else:
             faults += stochastic_faults(self.probs[None, :], "probs", single_row=True)
         raise_faults(faults)
@@ -146,7 +170,10 @@ class ShockSpec(Part):
     iid: IIDSpec | None = Field(default=None, description="Independent draws from a finite distribution.")
     transform: Literal["exp", "none"] = Field(
         default="none",
-        description='Applied to the chain values before use: "exp" (values become exp(value), e.g. a log-AR(1) productivity) or "none" (the default).',
+        description=(
+            'Applied to the chain values before use: "exp" (values become exp(value), e.g. a log-AR(1) productivity) '
+            'or "none" (the default).'
+        ),
     )
 
     @property
@@ -168,7 +195,8 @@ class ShockSpec(Part):
         return (math.exp(lo), math.exp(hi)) if self.transform == "exp" else (lo, hi)
 
     def chain(self, *, path: str = "") -> tuple[np.ndarray, np.ndarray]:
-        """The chain: values ``(n,)`` (transform applied) and row-stochastic ``P`` ``(n, n)`` (via :mod:`worker.shocks`)."""
+        """The chain: values ``(n,)`` (transform applied) and row-stochastic ``P`` ``(n, n)``
+        (via :mod:`worker.shocks`)."""
         from worker import shocks
 
         if self.ar1 is not None:
@@ -185,10 +213,22 @@ class ShockSpec(Part):
 
     @model_validator(mode="after")
     def _check_shock(self) -> ShockSpec:
-        form, faults = form_faults(self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`")
+        form, faults = form_faults(
+            self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`"
+        )
         if form and self.transform == "exp":
-            top = self.ar1.mean + self.ar1.half_width() if self.ar1 is not None else float((self.markov or self.iid).values[-1])
+            top = (
+                self.ar1.mean + self.ar1.half_width()
+                if self.ar1 is not None
+                else float((self.markov or self.iid).values[-1])
+            )
             if not top < _EXP_LIMIT:
-                faults.append(fault("transform", f"exp of the largest chain value ({number(top)}) overflows float64; values must stay below {_EXP_LIMIT:.2f}"))
+                faults.append(
+                    fault(
+                        "transform",
+                        f"exp of the largest chain value ({number(top)}) overflows float64; values must stay below "
+                        f"{_EXP_LIMIT:.2f}",
+                    )
+                )
         raise_faults(faults)
         return self

@@ -34,7 +34,13 @@ class SparseTransition(Part):
 
 def _transition_form(value: Any) -> str | None:
     if isinstance(value, dict):
-        return "<sparse>" if "entries" in value else "<dense>" if "base64" in value or "dtype" in value or "shape" in value else None
+        return (
+            "<sparse>"
+            if "entries" in value
+            else "<dense>"
+            if "base64" in value or "dtype" in value or "shape" in value
+            else None
+        )
     if isinstance(value, SparseTransition):
         return "<sparse>"
     return "<dense>" if isinstance(value, (list, np.ndarray)) else None
@@ -117,7 +123,14 @@ def tabular_faults(model: Any) -> list[Fault]:
     allowed = ~np.isnan(reward)
     stuck = np.flatnonzero(~allowed.any(axis=1))
     faults += capped(
-        (fault(join_path("reward", int(s)), f"{_state(model, s)} has no allowed action: every reward in its row is null", "infeasible") for s in stuck),
+        (
+            fault(
+                join_path("reward", int(s)),
+                f"{_state(model, s)} has no allowed action: every reward in its row is null",
+                "infeasible",
+            )
+            for s in stuck
+        ),
         stuck.size,
         "reward",
         "states with no allowed action",
@@ -138,7 +151,9 @@ def _label_faults(labels: list[str] | int, where: str, noun: str) -> list[Fault]
         first: dict[str, int] = {}
         for i, label in enumerate(labels):
             if label in first:
-                yield fault(join_path(where, i), f'duplicate {noun} label "{label}" (first used at index {first[label]})')
+                yield fault(
+                    join_path(where, i), f'duplicate {noun} label "{label}" (first used at index {first[label]})'
+                )
             else:
                 first[label] = i
 
@@ -168,7 +183,12 @@ def _dense_faults(model: Any, transition: np.ndarray, allowed: np.ndarray) -> li
     if negative is not None:
         where = np.argwhere(negative)
         faults = capped(
-            (fault(join_path("transition", *map(int, ix)), f"probability {number(transition[tuple(ix)])} is negative") for ix in where),
+            (
+                fault(
+                    join_path("transition", *map(int, ix)), f"probability {number(transition[tuple(ix)])} is negative"
+                )
+                for ix in where
+            ),
             len(where),
             "transition",
             "negative probabilities",
@@ -239,7 +259,8 @@ def _entry_faults(columns: np.ndarray, sizes: tuple[int, int, int], where: str) 
                     join_path(where, int(r), col),
                     f"{_ENTRY_COLUMNS[col]} {number(values[r])} is not a whole number"
                     if fractional[r]
-                    else f"{_ENTRY_COLUMNS[col]} {number(values[r])} is out of range: with {sizes[col]} {noun} it must be 0 to {sizes[col] - 1}",
+                    else f"{_ENTRY_COLUMNS[col]} {number(values[r])} is out of range: with {sizes[col]} {noun} it "
+                         f"must be 0 to {sizes[col] - 1}",
                 )
                 for r in rows
             ),

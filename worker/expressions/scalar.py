@@ -18,7 +18,10 @@ The source follows the semantics in the package docstring
 that is a variable (a param) and a base that is one, it computes ``1/x``
 when the exponent is -1 and ``x*x`` when it is 2, as compilers do for
 constant exponents: the same values as ``pow`` but for its last bit, at a
-fraction of its cost.
+fraction of its cost.  A name starting with `LITERAL_PREFIX` stands for a
+number the code generator moved out of the source (see
+:mod:`worker._codegen.literals`); a power with such a base or exponent is
+written plainly, as it was with the number in the source.
 """
 
 from __future__ import annotations
@@ -40,7 +43,10 @@ from worker.expressions.nodes import (
     pairwise,
 )
 
-__all__ = ["float_literal", "scalar_source", "source_nesting", "variable_text"]
+__all__ = ["LITERAL_PREFIX", "float_literal", "scalar_source", "source_nesting", "variable_text"]
+
+LITERAL_PREFIX = "@lit"
+"""Start of the names that stand for numbers moved out of generated source (never a document name)."""
 
 
 def float_literal(value: float) -> str:
@@ -97,7 +103,9 @@ def _scalar(node: Node, name_of: Mapping[str, str]) -> str:
         return "(" + of(node.first) + "".join(f" {op} {of(term)}" for op, term in node.rest) + ")"
     if isinstance(node, Power):
         base, exponent = of(node.base), of(node.exponent)
-        if isinstance(node.exponent, Number) or not (base.isidentifier() and exponent.isidentifier()):
+        # A number moved out of the source stays a plain power, as it was written in it.
+        lifted = any(isinstance(x, Name) and x.id.startswith(LITERAL_PREFIX) for x in (node.base, node.exponent))
+        if isinstance(node.exponent, Number) or lifted or not (base.isidentifier() and exponent.isidentifier()):
             return f"({base} ** {exponent})"
         # A runtime exponent (a param, say): the compiler cannot fold the common ones as it does
         # constants, and a call of pow costs several times a division (3x on a CRRA reward).

@@ -8,15 +8,20 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
+from worker.estimate import DIRECT_SOLVE_MAX_POINTS, KRYLOV_RESTART
 from worker.problem import PolicySteps
 from worker.solvers.loop import Run
 
 __all__ = [
+    "KRYLOV_FLOOR_ULPS",
+    "KRYLOV_RESIDUAL_SHARE",
+    "KRYLOV_STALL_CYCLES",
     "MOVING_STEPS_DIVISOR",
     "STABLE_STEPS_FACTOR",
     "STEP_BLOCK_S",
     "evaluation_steps",
     "exact_evaluation",
+    "krylov_solve",
     "no_evaluation",
     "phase_plan",
 ]
@@ -28,6 +33,14 @@ MOVING_STEPS_DIVISOR = 5
 STABLE_STEPS_FACTOR = 20
 """Howard: once the policy stops changing, the evaluation phase may run this many times
 ``evaluation_steps`` evaluation steps (count; it ends earlier when the steps have settled)."""
+
+KRYLOV_RESIDUAL_SHARE = 1e-3
+"""Policy iteration, iterative solve: the residual target as a share of ``tolerance · (1 − β)`` (dimensionless)."""
+KRYLOV_FLOOR_ULPS = 64.0
+"""Policy iteration, iterative solve: the residual floor in units of ``ε · ‖r_σ‖∞ / (1 − β)`` (count)."""
+KRYLOV_STALL_CYCLES = 5
+"""Policy iteration, iterative solve: restart cycles in a row without a tenth less residual before it gives up
+(count; the Bellman step that follows still certifies the value)."""
 
 
 def no_evaluation(run: Run, policy: np.ndarray, steps_done: int) -> None:
@@ -127,9 +140,61 @@ def _fused_steps(
 
 
 def exact_evaluation(run: Run, policy: np.ndarray, steps_done: int) -> None:
-    """Policy iteration: ``v ← (I − β P_σ)⁻¹ r_σ`` by a sparse LU solve."""
+    """Policy iteration: ``v ← v_σ``, the solution of ``(I − β P_σ) v = r_σ``.
+
+    Up to :data:`~worker.estimate.DIRECT_SOLVE_MAX_POINTS` points a sparse LU
+    solve, whose fill-in is then at most ``n²`` entries; above it restarted
+    GMRES from the current ``v`` (:func:`krylov_solve`), whose memory is a
+    fixed number of vectors of length ``n`` and which checks the stop flag and
+    the time limit after every restart cycle.  Either way the Bellman step
+    that follows certifies the result, so an evaluation cut short by the time
+    limit still ends in a certified value.
+    """
     matrix = run.problem.policy_matrix(policy)
-    reward = run.problem.policy_reward(policy)
-    system = (sp.identity(run.problem.n, format="csc") - run.beta * matrix).tocsc()
-    run.v = np.asarray(spla.spsolve(system, reward), dtype=np.float64).reshape(run.problem.n)
+    reward = np.asarray(run.problem.policy_reward(policy), dtype=np.float64)
+    n = run.problem.n
+    if n <= DIRECT_SOLVE_MAX_POINTS:
+        system = (sp.identity(n, format="csc") - run.beta * matrix).tocsc()
+        run.v = np.asarray(spla.spsolve(system, reward), dtype=np.float64).reshape(n)
+    else:
+        run.v = krylov_solve(run, sp.csr_matrix(matrix), reward)
     run.linear_solves += 1
+
+
+def krylov_solve(run: Run, matrix: sp.csr_matrix, reward: np.ndarray) -> np.ndarray:
+    """``(I − β P) x = r`` by GMRES restarted every ``KRYLOV_RESTART`` steps, from ``run.v``.
+
+    Stops when the residual's largest entry is at most ``KRYLOV_RESIDUAL_SHARE``
+    of ``tolerance · (1 − β)`` (then ``x`` is within that share of the tolerance
+    of ``v_σ``), or at the rounding floor ``KRYLOV_FLOOR_ULPS · ε · ‖r‖∞ / (1 − β)``,
+    or when ``KRYLOV_STALL_CYCLES`` cycles in a row did not reduce it by a tenth,
+    or when the time limit is reached; the stop flag is polled after every cycle.
+    """
+    beta = run.beta
+    n = reward.shape[0]
+
+    def apply(x: np.ndarray) -> np.ndarray:
+        return x - beta * (matrix @ x)
+
+    operator = spla.LinearOperator((n, n), matvec=apply, dtype=np.float64)
+    scale = float(np.abs(reward).max()) if n else 0.0
+    target = max(
+        KRYLOV_RESIDUAL_SHARE * run.options.tolerance * (1.0 - beta),
+        KRYLOV_FLOOR_ULPS * np.finfo(np.float64).eps * scale / (1.0 - beta),
+    )
+    x = np.array(run.v, dtype=np.float64)
+    residual = float(np.abs(reward - apply(x)).max())
+    best, stalled = residual, 0
+    while residual > target:
+        x, _ = spla.gmres(operator, reward, x0=x, rtol=0.0, atol=target, restart=KRYLOV_RESTART, maxiter=1)
+        residual = float(np.abs(reward - apply(x)).max())
+        run.poll()
+        if run.out_of_time():
+            break
+        if residual < 0.9 * best:
+            best, stalled = residual, 0
+        else:
+            stalled += 1
+            if stalled >= KRYLOV_STALL_CYCLES:
+                break
+    return np.asarray(x, dtype=np.float64)

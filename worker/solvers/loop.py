@@ -15,6 +15,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.convergence_log import ConvergenceLog
 from worker.defaults import DEFAULT_CHECKPOINT_S
 from worker.errors import Canceled, InvalidDocument
 from worker.problem import CompiledProblem
@@ -102,7 +103,7 @@ class Run:
         self.iteration = 0
         self.evaluation_steps = 0
         self.linear_solves = 0
-        self.log: list[Entry] = []
+        self.log: list[Entry] = ConvergenceLog()
         self.policy: np.ndarray | None = None
         self.restricted = bool(problem.hints_active)
         self.verification: dict[str, Any] | None = None
@@ -130,7 +131,7 @@ class Run:
         self.iteration = int(state["iteration"])
         self.evaluation_steps = int(state["evaluation_steps"])
         self.linear_solves = int(state.get("linear_solves", 0))
-        self.log = [dict(entry) for entry in state["log"]][: self.iteration]
+        self.log = ConvergenceLog([dict(entry) for entry in state["log"]][: self.iteration])
         policy = state.get("policy")
         self.policy = None if policy is None else np.asarray(policy, dtype=np.int64).copy()
         self.restricted = bool(state.get("restricted", self.restricted))

@@ -7,7 +7,16 @@ from typing import Any, Protocol
 
 import numpy as np
 
-__all__ = ["EPS", "RATE_FLOOR_ULPS", "RATE_WINDOW", "ROUNDING_ULPS", "Checkpoint", "Entry", "SolveOutcome", "observed_rate"]
+__all__ = [
+    "EPS",
+    "RATE_FLOOR_ULPS",
+    "RATE_WINDOW",
+    "ROUNDING_ULPS",
+    "Checkpoint",
+    "Entry",
+    "SolveOutcome",
+    "observed_rate",
+]
 
 ROUNDING_ULPS = 16.0
 """Rounding allowance of one Bellman step, in ulps of ``max(‖Tv‖∞, ‖v‖∞)``
@@ -118,7 +127,8 @@ def observed_rate(log: list[Entry], scale: float) -> float | None:
 
     With ``d_t`` the ``distance`` (``‖Tv_t − v_t‖∞``) of log entry ``t``, the
     rate is the geometric mean of ``d_{t+1} / d_t`` over the last
-    ``RATE_WINDOW`` consecutive pairs of entries whose distances are both
+    ``RATE_WINDOW`` pairs of entries of consecutive iterations (a log that
+    dropped entries, ``worker.convergence_log``, has gaps) whose distances are both
     above the rounding floor ``RATE_FLOOR_ULPS · ε · scale``.  For value
     iteration every ratio is at most β (contraction mapping theorem), so the
     rate is too; for Howard and policy iteration it is the rate per
@@ -135,7 +145,9 @@ def observed_rate(log: list[Entry], scale: float) -> float | None:
     if distances.size < 2:
         return None
     above = distances > floor
-    pairs = np.flatnonzero(above[:-1] & above[1:])[-RATE_WINDOW:]
+    iterations = np.array([entry.get("iteration", t) for t, entry in enumerate(log)], dtype=np.float64)
+    consecutive = np.diff(iterations) == 1
+    pairs = np.flatnonzero(above[:-1] & above[1:] & consecutive)[-RATE_WINDOW:]
     if not pairs.size:
         return None
     ratios = distances[pairs + 1] / distances[pairs]

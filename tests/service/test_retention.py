@@ -1,0 +1,261 @@
+"""Redis holds a bounded amount per job: finished jobs and sweeps expire, logs stay bounded, a full Redis is a 503."""
+
+from __future__ import annotations
+
+import time
+from collections.abc import Iterator
+
+import httpx
+import pytest
+import redis
+
+from service import sweeps
+from service.app import create_app
+from service.embedded_redis import EmbeddedRedis
+from service.reaper import reap
+from service.settings import Settings
+from service.store import JobStore
+from tests._documents import print_shop
+from tests.service._http import assert_problem, make_client, run_inline
+from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, KEEP_SAMPLED, kept
+
+JOB_TTL_S = 1000
+
+
+@pytest.fixture
+def short_store(redis_client: redis.Redis, settings: Settings) -> JobStore:
+    return JobStore(redis_client, settings.model_copy(update={"job_ttl_s": JOB_TTL_S, "result_ttl_s": 500}))
+
+
+def new_job(store: JobStore, owner: str = "lab") -> str:
+    return store.create_job(print_shop(), owner=owner, estimate={}, document_hash="h", enqueue=False)["id"]
+
+
+def lifetimes(store: JobStore, job_id: str) -> dict[str, int]:
+    keys = {"job": store.keys.job(job_id), "doc": store.keys.doc(job_id), "log": store.keys.log(job_id)}
+    return {name: store.redis.ttl(key) for name, key in keys.items()}
+
+
+def assert_expiring(store: JobStore, job_id: str) -> None:
+    """Record and document expire within job_ttl_s; so does the log, where there is one."""
+    for name, ttl in lifetimes(store, job_id).items():
+        if name == "log" and ttl == -2:
+            continue
+        assert JOB_TTL_S - 5 < ttl <= JOB_TTL_S, (name, ttl)
+
+
+def test_active_jobs_never_expire(short_store: JobStore) -> None:
+    job_id = new_job(short_store)
+    assert short_store.redis.ttl(short_store.keys.job(job_id)) == -1
+    assert short_store.redis.ttl(short_store.keys.doc(job_id)) == -1
+    assert short_store.claim(job_id, "t", worker="w") == "ok"
+    assert short_store.write_log(job_id, "t", [{"iteration": 1, "distance": 1.0}], progress=None)
+    assert lifetimes(short_store, job_id) == {"job": -1, "doc": -1, "log": -1}
+
+
+def test_done_jobs_expire_and_their_result_keeps_result_ttl(short_store: JobStore) -> None:
+    job_id = new_job(short_store)
+    short_store.claim(job_id, "t", worker="w")
+    short_store.write_log(job_id, "t", [{"iteration": 1, "distance": 1.0}], progress=None)
+    assert short_store.finish(job_id, "t", "done", result={"status": "converged", "iterations": 1})
+    assert_expiring(short_store, job_id)
+    assert 495 < short_store.redis.ttl(short_store.keys.result(job_id)) <= 500
+
+
+def test_failed_jobs_expire(short_store: JobStore) -> None:
+    job_id = new_job(short_store)
+    short_store.claim(job_id, "t", worker="w")
+    assert short_store.finish(job_id, "t", "failed", error={"title": "x", "detail": "y", "errors": []})
+    assert_expiring(short_store, job_id)
+
+
+def test_jobs_abandoned_too_often_expire(short_store: JobStore) -> None:
+    store = JobStore(short_store.redis, short_store.settings.model_copy(update={"max_attempts": 1}))
+    job_id = new_job(store)
+    store.claim(job_id, "t", worker="w")
+    store.redis.delete(store.keys.lease(job_id))
+    assert store.requeue_abandoned(job_id)[0] == "failed"
+    assert_expiring(store, job_id)
+
+
+def test_canceled_jobs_expire_queued_running_and_at_claim(short_store: JobStore) -> None:
+    queued = new_job(short_store)
+    assert short_store.request_cancel(queued)["outcome"] == "canceled"
+    assert_expiring(short_store, queued)
+
+    running = new_job(short_store)
+    short_store.claim(running, "t", worker="w")
+    assert short_store.request_cancel(running)["outcome"] == "cancel_requested"
+    assert short_store.finish(running, "t", "canceled")
+    assert_expiring(short_store, running)
+
+    flagged = new_job(short_store)
+    short_store.claim(flagged, "t", worker="w")
+    short_store.request_cancel(flagged)
+    short_store.redis.delete(short_store.keys.lease(flagged))
+    assert short_store.claim(flagged, "u", worker="w") == "canceled"
+    assert_expiring(short_store, flagged)
+
+    abandoned = new_job(short_store)
+    short_store.claim(abandoned, "t", worker="w")
+    short_store.request_cancel(abandoned)
+    short_store.redis.delete(short_store.keys.lease(abandoned))
+    assert short_store.requeue_abandoned(abandoned)[0] == "canceled"
+    assert_expiring(short_store, abandoned)
+
+
+def expire_now(store: JobStore, job_id: str) -> None:
+    """Let a finished job's record, document and log lapse as their TTL would."""
+    for key in (store.keys.job(job_id), store.keys.doc(job_id), store.keys.log(job_id)):
+        store.redis.pexpire(key, 1)
+    time.sleep(0.01)
+
+
+def test_forget_expired_drops_expired_jobs_from_listings_and_state_sets(short_store: JobStore) -> None:
+    store = short_store
+    gone, kept_done, running = new_job(store, "ann"), new_job(store, "ann"), new_job(store, "bo")
+    for job_id in (gone, kept_done):
+        store.claim(job_id, "t", worker="w")
+        store.finish(job_id, "t", "done", result={"status": "converged", "iterations": 1})
+    store.claim(running, "t", worker="w")
+    expire_now(store, gone)
+
+    assert store.forget_expired() == []  # submitted less than job_ttl_s ago: not examined
+    assert store.forget_expired(now=time.time() + JOB_TTL_S + 1) == [gone]
+    assert store.redis.zscore(store.keys.jobs, gone) is None
+    assert store.redis.zscore(store.keys.owner_jobs("ann"), gone) is None
+    assert store.job_ids_in_state("done") == [kept_done]
+    assert store.counts_by_state()["done"] == 1
+    assert store.job_ids_in_state("running") == [running]
+    assert {r["id"] for r in store.list_jobs()[0]} == {kept_done, running}
+
+
+def test_the_reaper_pass_forgets_expired_jobs(redis_client: redis.Redis, settings: Settings) -> None:
+    store = JobStore(redis_client, settings.model_copy(update={"job_ttl_s": 1}))
+    job_id = new_job(store)
+    store.claim(job_id, "t", worker="w")
+    store.finish(job_id, "t", "canceled")
+    time.sleep(1.1)  # submitted job_ttl_s ago, and its record has lapsed by itself
+    assert not store.redis.exists(store.keys.job(job_id), store.keys.doc(job_id))
+    assert store.counts_by_state()["canceled"] == 1
+    reap(store, use_lock=False)
+    assert store.counts_by_state()["canceled"] == 0
+    assert store.redis.zcard(store.keys.jobs) == store.redis.zcard(store.keys.owner_jobs("lab")) == 0
+
+
+def test_listing_tidies_members_whose_record_expired(short_store: JobStore) -> None:
+    store = short_store
+    gone, other = new_job(store, "cy"), new_job(store, "cy")
+    store.claim(gone, "t", worker="w")
+    store.finish(gone, "t", "failed", error={"title": "x", "detail": "y", "errors": []})
+    expire_now(store, gone)
+    assert [r["id"] for r in store.list_jobs(owner="cy")[0]] == [other]
+    assert store.redis.zrange(store.keys.owner_jobs("cy"), 0, -1) == [other.encode()]
+    assert [r["id"] for r in store.list_jobs()[0]] == [other]
+    assert store.redis.zrange(store.keys.jobs, 0, -1) == [other.encode()]
+    assert store.job_ids_in_state("failed") == []
+
+
+def test_a_sweep_and_its_keys_go_with_its_last_job(app_settings: Settings, redis_client: redis.Redis) -> None:
+    settings = app_settings.model_copy(update={"job_ttl_s": JOB_TTL_S})
+    store = JobStore(redis_client, settings)
+    with make_client(create_app(settings)) as http:
+        response = http.post("/v1/sweeps", json={"base": print_shop(), "vary": {"discount": [0.8, 0.9]}})
+        assert response.status_code == 202, response.text
+        sweep_id = response.json()["id"]
+        rows = http.get(f"/v1/sweeps/{sweep_id}").json()["rows"]["data"]
+        job_ids = [row["job"] for row in rows]
+        for job_id in job_ids:
+            assert run_inline(job_id)["outcome"] == "done"
+        sweeps.rescue_pending(store)
+        later = time.time() + JOB_TTL_S + 1
+        assert sweeps.forget_expired_sweeps(store, now=later) == []  # its jobs are still there
+        expire_now(store, job_ids[0])
+        assert sweeps.forget_expired_sweeps(store, now=later) == []  # one job is left
+        expire_now(store, job_ids[1])
+        assert sweeps.forget_expired_sweeps(store, now=later) == [sweep_id]
+        assert http.get(f"/v1/sweeps/{sweep_id}").status_code == 404
+        assert http.get("/v1/sweeps").json()["data"] == []
+    left = [key for key in redis_client.scan_iter(match=f"{settings.redis_prefix}:sweep*")]
+    assert left == []
+
+
+def test_the_stored_log_is_bounded_sampled_and_counts_what_it_dropped(store: JobStore) -> None:
+    job_id = new_job(store)
+    store.claim(job_id, "t", worker="w")
+    last = KEEP_FIRST + 6 * KEEP_SAMPLED + 7
+    for start in range(1, last + 1, 777):  # uneven batches, as the throttled writes make them
+        batch = [{"iteration": i, "distance": 0.5**i} for i in range(start, min(start + 777, last + 1))]
+        assert store.write_log(job_id, "t", batch, progress=None)
+    iterations = [entry["iteration"] for entry in store.get_log(job_id, limit=10_000)]
+    assert iterations == [i for i in range(1, last + 1) if kept(i, last)]
+    assert len(iterations) <= KEEP_FIRST + KEEP_SAMPLED + KEEP_LATEST
+    assert iterations[:KEEP_FIRST] == list(range(1, KEEP_FIRST + 1))
+    assert iterations[-KEEP_LATEST:] == list(range(last - KEEP_LATEST + 1, last + 1))
+    assert store.log_dropped(job_id) == last - len(iterations) > 0
+
+
+def test_a_trimmed_bounded_log_regrows_with_each_iteration_once_in_order(store: JobStore) -> None:
+    job_id = new_job(store)
+    store.claim(job_id, "t", worker="w")
+    entries = [{"iteration": i, "distance": 1.0 / i} for i in range(1, 4001)]
+    store.write_log(job_id, "t", entries, progress=None)
+    # The solver went back to iteration 3000 (resumed from an older checkpoint) and goes on.
+    store.write_log(job_id, "t", entries[2999:3500], progress=None, trim_from=3000)
+    more = [{"iteration": i, "distance": 1.0 / i} for i in range(3501, 9001)]
+    store.write_log(job_id, "t", more, progress=None)
+    iterations = [entry["iteration"] for entry in store.get_log(job_id, limit=10_000)]
+    assert iterations == sorted(set(iterations))
+    assert iterations == [i for i in range(1, 9001) if kept(i, 9000)]
+    assert store.log_dropped(job_id) == 9000 - len(iterations)
+    # A checkpoint's log replaces the stored one whole.
+    store.write_log(job_id, "t", entries[:50], progress=None, trim_from=-1)
+    assert [e["iteration"] for e in store.get_log(job_id)] == list(range(1, 51))
+    assert store.log_dropped(job_id) == 0
+
+
+@pytest.fixture
+def small_redis(tmp_path) -> Iterator[redis.Redis]:
+    """A Redis of our own that is full: maxmemory a little above what it uses, noeviction."""
+    with EmbeddedRedis(tmp_path / "small") as server:
+        client = redis.Redis.from_url(server.url)
+        try:
+            client.config_set("maxmemory-policy", "noeviction")
+            client.config_set("maxmemory", client.info("memory")["used_memory"] + 100_000)
+            with pytest.raises(redis.exceptions.OutOfMemoryError):
+                for i in range(1000):
+                    client.set(f"filler:{i}", b"x" * 1000)
+            yield client
+        finally:
+            client.close()
+
+
+def test_a_submission_to_a_full_redis_is_503_saying_so(small_redis: redis.Redis) -> None:
+    url = "redis://{host}:{port}/0".format(**small_redis.connection_pool.connection_kwargs)
+    settings = Settings(redis_url=url, auth=False)
+    with make_client(create_app(settings)) as http:
+        response = http.post("/v1/jobs", json=print_shop())
+    body = assert_problem(response, 503)
+    assert body["type"] == "urn:fixq:problem:redis-full"
+    assert "full" in body["detail"] and "maxmemory" in body["detail"]
+    assert response.headers["retry-after"]
+
+
+def test_a_script_refused_by_a_full_redis_raises_out_of_memory(small_redis: redis.Redis) -> None:
+    store = JobStore(small_redis, Settings(redis_url="redis://unused"))
+    with pytest.raises(redis.exceptions.OutOfMemoryError):
+        store.create_job(print_shop(), owner="lab", estimate={}, document_hash="h", enqueue=False)
+
+
+def test_the_log_endpoint_reports_dropped_entries(client: httpx.Client, store: JobStore) -> None:
+    job_id = new_job(store, owner="anonymous")
+    store.claim(job_id, "t", worker="w")
+    last = KEEP_FIRST + 3 * KEEP_SAMPLED
+    store.write_log(job_id, "t", [{"iteration": i, "distance": 1.0} for i in range(1, last + 1)], progress=None)
+    store.finish(job_id, "t", "canceled")
+    page = client.get(f"/v1/jobs/{job_id}/log", params={"limit": 10})
+    assert page.status_code == 200, page.text
+    assert page.json()["dropped"] == last - store.log_length(job_id) > 0
+    stream = client.get(f"/v1/jobs/{job_id}/log", headers={"Accept": "text/event-stream"})
+    ids = [int(line[4:]) for line in stream.text.splitlines() if line.startswith("id: ")]
+    assert ids == [e["iteration"] for e in store.get_log(job_id, limit=10_000)]
