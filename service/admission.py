@@ -2,7 +2,7 @@
 
 :func:`admit` validates (``worker.document.parse_document``), refuses a grid
 model whose kernels would be too large to compile
-(``worker.estimate.check_structure``), estimates (``worker.estimate.estimate``),
+(``worker.kernel_limits.check_structure``), estimates (``worker.estimate.estimate``),
 refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
 checks that a warm start names a finished job the caller may read.  It never
@@ -20,7 +20,8 @@ from service.settings import Settings
 from service.store import JobStore, is_job_id
 from worker.document import InitialJob, ProblemDocument, parse_document
 from worker.errors import InvalidDocument, TooLarge
-from worker.estimate import check_structure, estimate
+from worker.estimate import estimate
+from worker.kernel_limits import check_structure
 
 __all__ = ["Admitted", "admit"]
 

@@ -173,8 +173,8 @@ def pick(store: JobStore, ticket: str) -> tuple[str, str | None]:
     api_keys = KeyStore(store.redis, store.keys.prefix)
     reply = store.redis.register_script(_PICK)(
         args=[ticket, int(time.time() * 1000), int(store.settings.lease_s * 1000), cap, half,
-              store.keys.job(""), store.keys.lease(""), keys.picked(""), api_keys.index, api_keys.record_key(""),
-              keys.tickets, keys.ring(""), keys.pending("", ""), *PRIORITIES],
+              store.keys.job(""), store.keys.lease(""), keys.picked_prefix, api_keys.index, api_keys.record_key(""),
+              keys.tickets, keys.ring_prefix, keys.pending_prefix, *PRIORITIES],
     )  # fmt: skip
     outcome = reply[0].decode()
     return outcome, (reply[1].decode() if outcome == "job" else None)

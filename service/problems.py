@@ -154,8 +154,8 @@ async def handle_error(request: Request, exc: Exception) -> JSONResponse:
             503,
             "redis-full",
             "service unavailable",
-            "the job store (Redis) is full: it refused a write at its maxmemory limit and nothing was stored; "
-            "try again later (an operator must raise maxmemory or let finished jobs expire)",
+            "the job store (Redis) is full: it refused a write at its maxmemory limit, so the request was not "
+            "carried out; try again later (an operator must raise maxmemory or let finished jobs expire)",
             headers={"Retry-After": "30"},
         )
     if isinstance(exc, _STORE_UNAVAILABLE):

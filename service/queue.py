@@ -32,6 +32,7 @@ __all__ = [
     "PRIORITIES",
     "WAKE_BACKLOG",
     "DispatchKeys",
+    "drop_pending",
     "QUEUE_NAMES",
     "RQ_RECORD_TTL_S",
     "TASK",
@@ -89,22 +90,26 @@ class DispatchKeys:
         """Hash: each waiting ticket's RQ job id → the job it stands for."""
         self.wake = f"{prefix}:dispatch:wake"
         """List a worker waiting on capped owners blocks on; pushed to by enqueues and finished jobs."""
+        # The Lua scripts build the per-priority and per-owner names from these prefixes alike.
+        self.ring_prefix = f"{prefix}:dispatch:ring:"
+        self.pending_prefix = f"{prefix}:dispatch:pending:"
+        self.picked_prefix = f"{prefix}:dispatch:picked:"
 
     def ring(self, priority: str) -> str:
         """List of the owners with pending jobs of ``priority``, in the order of their turns."""
-        return f"{self.prefix}:dispatch:ring:{priority}"
+        return f"{self.ring_prefix}{priority}"
 
     def pending(self, priority: str, owner: str) -> str:
         """List of the pending job ids of ``owner`` at ``priority``, oldest first."""
-        return f"{self.prefix}:dispatch:pending:{priority}:{owner}"
+        return f"{self.pending_prefix}{priority}:{owner}"
 
     def picked(self, owner: str) -> str:
         """Sorted set of the jobs of ``owner`` taken by workers, scored by when (ms): its running count."""
-        return f"{self.prefix}:dispatch:picked:{owner}"
+        return f"{self.picked_prefix}{owner}"
 
 
 # ARGV 1 job id, 2 ticket, 3 job-hash key prefix, 4 ring key prefix, 5 pending key prefix,
-# 6 tickets hash, 7 wake list, 8 wake backlog.
+# 6 tickets hash, 7 wake list, 8 wake backlog, 9 '1' for a job's first enqueue (it cannot be pending yet).
 _ENQUEUE = """
 local id = ARGV[1]
 local owner, priority = unpack(redis.call('HMGET', ARGV[3] .. id, 'owner', 'priority'))
@@ -112,7 +117,7 @@ if not owner then return 0 end
 priority = priority or 'normal'
 local ring = ARGV[4] .. priority
 local pending = ARGV[5] .. priority .. ':' .. owner
-if not redis.call('LPOS', pending, id) then redis.call('RPUSH', pending, id) end
+if ARGV[9] == '1' or not redis.call('LPOS', pending, id) then redis.call('RPUSH', pending, id) end
 if not redis.call('LPOS', ring, owner) then redis.call('RPUSH', ring, owner) end
 redis.call('HSET', ARGV[6], ARGV[2], id)
 redis.call('RPUSH', ARGV[7], '1')
@@ -129,8 +134,8 @@ def enqueue_execution(connection: redis.Redis, settings: Settings, job_id: str, 
     """
     keys = DispatchKeys(settings.redis_prefix)
     connection.register_script(_ENQUEUE)(
-        args=[job_id, rq_job_id, f"{settings.redis_prefix}:job:", keys.ring(""), keys.pending("", ""),
-              keys.tickets, keys.wake, WAKE_BACKLOG],
+        args=[job_id, rq_job_id, f"{settings.redis_prefix}:job:", keys.ring_prefix, keys.pending_prefix,
+              keys.tickets, keys.wake, WAKE_BACKLOG, "1" if rq_job_id == execution_id(job_id, 1) else "0"],
     )  # fmt: skip
     Queue(queue_name(priority), connection=connection).enqueue(
         TASK,
@@ -141,6 +146,17 @@ def enqueue_execution(connection: redis.Redis, settings: Settings, job_id: str, 
         failure_ttl=RQ_RECORD_TTL_S,
         description=f"fixq ticket of job {job_id}",
     )
+
+
+def drop_pending(
+    connection: redis.Redis, settings: Settings, job_id: str, rq_job_id: str, owner: str, priority: str
+) -> None:
+    """Take a job canceled in its queue off its owner's pending list, and forget its ticket."""
+    keys = DispatchKeys(settings.redis_prefix)
+    with connection.pipeline(transaction=False) as pipe:
+        pipe.lrem(keys.pending(priority, owner), 0, job_id)
+        pipe.hdel(keys.tickets, rq_job_id or "none")
+        pipe.execute()
 
 
 def ordered_queue_names(queues: Sequence[str] | None = None) -> list[str]:

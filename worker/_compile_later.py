@@ -14,6 +14,7 @@ import sys
 from worker import bridge
 from worker.document import parse_document
 from worker.gridmodel import compile_grid
+from worker.memory import release_inherited_limit
 from worker.solve import solve
 
 
@@ -28,6 +29,7 @@ def main() -> int:
     one is compiled too, with the reward storage the caller chose.
     """
     payload = json.loads(sys.stdin.read())
+    release_inherited_limit()  # a job's memory limit bounds that job, not this compile
     try:
         os.nice(10)  # behind the solves of the machine it shares
     except (AttributeError, OSError):

@@ -36,15 +36,16 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.kernel_limits import compile_cost
+
 __all__ = [
     "DIRECT_SOLVE_MAX_POINTS",
+    "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_RESTART",
-    "MAX_INTERPOLATION_CORNERS",
     "PRECOMPUTE_CAP_SHARE",
     "PRECOMPUTE_MAX_BYTES",
     "REWARD_STORAGES",
     "GridPlan",
-    "check_structure",
     "estimate",
     "grid_plan",
     "precompute_budget",
@@ -79,8 +80,6 @@ HOWARD_STEPS_PER_OCTAVE = 3.0
 the greedy policy keeps moving for many iterations (measured: 30 at 1,000 choices, 48 at 20,000)."""
 MATVEC_NS = 2.0
 """Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
-COMPILE_S = 6.0
-"""Compilation on first use of a model structure on a machine (seconds; cached afterwards)."""
 CHOICE_BYTES = 17
 """Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
 RESULT_BYTES_PER_STATE = 120
@@ -88,26 +87,15 @@ RESULT_BYTES_PER_STATE = 120
 SOLVER_BYTES_PER_STATE = 96
 """Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
 
-MAX_INTERPOLATION_CORNERS = 64
-"""Most interpolation corners (``2 ** state variables moved by a next expression``) a grid model may have (count).
-
-Every kernel is generated with each corner written out, so compile time and memory grow with them; measured
-on this machine (2-core x86, cold kernel cache, state variables of 2 points): 8 corners compile in 2 s with 40 MiB more
-data, 64 in 10–14 s with 100 MiB, 128 in 27 s with 215 MiB more resident memory, 256 in more than 55 s with
-more than 800 MiB, and 4,096 grew past 7 GB before failing.  Structures over the limit are refused."""
-COMPILE_CORNER_S = 0.2
-"""Compile time per interpolation corner, on top of ``COMPILE_S`` (seconds; measured on this machine)."""
-COMPILE_BASE_BYTES = 32 * 2**20
-COMPILE_CORNER_BYTES = 3 * 2**19
-"""Memory a cold compile adds: ``COMPILE_BASE_BYTES`` (32 MiB) plus this (1.5 MiB) per interpolation corner
-(bytes; measured on this machine, see ``MAX_INTERPOLATION_CORNERS``).  It is reported apart from ``bytes`` (the
-solve's arrays) and covered by the margin of the per-job memory limit (:mod:`worker.memory`)."""
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
 then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
 larger problems use restarted GMRES, whose memory is ``KRYLOV_RESTART + 4`` vectors."""
 KRYLOV_RESTART = 30
 """Policy iteration above ``DIRECT_SOLVE_MAX_POINTS``: GMRES steps per restart cycle (count)."""
+KRYLOV_RESIDUAL_SHARE = 1e-3
+"""Policy iteration above ``DIRECT_SOLVE_MAX_POINTS``: the residual target of GMRES as a share of
+``tolerance · (1 − β)`` (dimensionless)."""
 
 _MIB = 2**20
 
@@ -293,13 +281,9 @@ def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) ->
     if n <= DIRECT_SOLVE_MAX_POINTS:
         return n**3 / 3 * 1e-9
     scale = 1.0 / (1.0 - beta)
-    target = max(1e-3 * tolerance * (1.0 - beta) / scale, 1e-16)
+    target = max(KRYLOV_RESIDUAL_SHARE * tolerance * (1.0 - beta) / scale, 1e-16)
     matvecs = math.ceil(math.log(target) / math.log(beta))
     return matvecs * (entries + 2 * n + KRYLOV_RESTART * n) * MATVEC_NS * 1e-9
-
-
-def _compile_bytes(corners: int) -> int:
-    return COMPILE_BASE_BYTES + COMPILE_CORNER_BYTES * corners
 
 
 def _linear_solve_words(n: int) -> str:
@@ -309,39 +293,6 @@ def _linear_solve_words(n: int) -> str:
         f"exact evaluations by restarted GMRES ({KRYLOV_RESTART} steps a cycle; above {DIRECT_SOLVE_MAX_POINTS:,} "
         "points an LU's fill-in is unbounded), mat-vecs guessed for a chain that mixes at rate β"
     )
-
-
-def interpolation_corners(model: Any) -> int:
-    """Corners of the interpolation of tomorrow's state: ``2 ** state variables moved by a next expression``."""
-    return 2 ** sum(1 for name in model.states if name in model.next)
-
-
-def check_structure(doc: Any) -> None:
-    """Refuse a grid model whose generated kernels would be too large to compile.
-
-    Raises
-    ------
-    TooLarge
-        At ``model.next``, when more than ``MAX_INTERPOLATION_CORNERS`` corners.
-    """
-    model = doc.model
-    if model.kind != "grid":
-        return
-    corners = interpolation_corners(model)
-    if corners > MAX_INTERPOLATION_CORNERS:
-        from worker.errors import TooLarge
-
-        moved = sum(1 for name in model.states if name in model.next)
-        most = MAX_INTERPOLATION_CORNERS.bit_length() - 1
-        raise TooLarge.at(
-            "model.next",
-            f"{moved} state variables move by a next expression, so tomorrow's value is split over 2^{moved} = "
-            f"{corners:,} grid points at every (point, choice point) pair; the compiled kernels allow at most "
-            f"{MAX_INTERPOLATION_CORNERS} (at most {most} state variables with a next expression): move some by "
-            "a choice with next_of instead, or merge state variables",
-            corners=corners,
-            max_corners=MAX_INTERPOLATION_CORNERS,
-        )
 
 
 def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
@@ -389,8 +340,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         the first solve of a grid model's structure on a machine adds while
         its kernels compile; 0 for tabular); ``seconds`` (a rough time
         guess, compiling not counted) with its ``basis``; ``notes``, plain
-        words.  A grid model over ``MAX_INTERPOLATION_CORNERS`` is sized all
-        the same: :func:`check_structure` is what refuses it.
+        words.  A grid model over the limits of :mod:`worker.kernel_limits`
+        is sized all the same: its ``check_structure`` is what refuses it.
     """
     if doc.model.kind == "tabular":
         return _tabular_estimate(doc)
@@ -430,7 +381,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
         )
         basis += f"; {_linear_solve_words(plan.n)}"
-    compile_s = COMPILE_S + COMPILE_CORNER_S * plan.nodes
+    compile_bytes, compile_s = compile_cost(model)
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
         used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
@@ -449,7 +400,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     notes.append("memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)")
     notes.append(
         f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
-        f"and {_compile_bytes(plan.nodes) / _MIB:,.0f} MiB, then cached)"
+        f"and {compile_bytes / _MIB:,.0f} MiB, then cached)"
     )
     return {
         "kind": "grid",
@@ -460,7 +411,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "pairs": plan.pairs,
         "bytes": plan.bytes,
         "reward_storage": plan.reward_storage,
-        "compile_bytes": _compile_bytes(plan.nodes),
+        "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
         "seconds": seconds,
         "basis": f"{basis}; {how}",

@@ -15,8 +15,9 @@ purpose (compiling a new model structure, the interpreter's temporaries, a
 thread's stack), the factor the estimate's roughness.  The limit is
 process-wide, so threads started inside the block (a heartbeat, a notifier)
 share it; they allocate little.  A child process started inside the block
-inherits the lowered limit, which is above any child's needs since the child
-starts smaller than its parent.
+inherits the lowered limit; the background compile of :mod:`worker.bridge`
+lifts it (:func:`release_inherited_limit`), since the structure limits of
+:mod:`worker.kernel_limits` bound what compiling takes, not the job's estimate.
 
 Elsewhere than on Linux, or when the limit cannot be set, the block only
 converts ``MemoryError``.
@@ -32,14 +33,23 @@ from typing import Any
 
 from worker.errors import TooLarge
 
-__all__ = ["MARGIN_BYTES", "SAFETY_FACTOR", "MemoryLimit", "data_bytes", "memory_limit", "peak_rss_bytes"]
+__all__ = [
+    "MARGIN_BYTES",
+    "SAFETY_FACTOR",
+    "MemoryLimit",
+    "data_bytes",
+    "memory_limit",
+    "peak_rss_bytes",
+    "release_inherited_limit",
+]
 
 SAFETY_FACTOR = 2.0
 """The limit allows this many times the promised bytes (dimensionless)."""
 MARGIN_BYTES = 512 * 2**20
 """Bytes allowed on top of the promise (512 MiB): a cold compile of a new model structure grows the data
-size by about 40 MiB, and by about 100 MiB at the largest structure admitted (64 interpolation corners;
-measured on this machine), plus the interpreter's temporaries and thread stacks (8 MiB each)."""
+size by about 40 MiB, and by up to about 200 MiB at the largest structures :mod:`worker.kernel_limits` admits
+(measured on this machine: 99 MiB at 64 interpolation corners, 198 MiB at 962 expression parts), plus the
+libraries a solve loads on first use (about 60 MiB) and thread stacks (8 MiB each)."""
 
 _MIB = 2**20
 _STATUS = "/proc/self/status"
@@ -69,6 +79,15 @@ def peak_rss_bytes() -> int:
         return kib * 1024
     scale = 1 if sys.platform == "darwin" else 1024
     return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss) * scale
+
+
+def release_inherited_limit() -> None:
+    """Raise the soft ``RLIMIT_DATA`` a child process inherited from a job back to the hard limit."""
+    try:
+        _, hard = resource.getrlimit(resource.RLIMIT_DATA)
+        resource.setrlimit(resource.RLIMIT_DATA, (hard, hard))
+    except (OSError, ValueError):
+        pass
 
 
 def _reset_peak() -> None:

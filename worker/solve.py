@@ -2,7 +2,7 @@
 
 ``solve`` validates the document (``worker.document.parse_document``),
 estimates its size and refuses it over the memory cap or when its kernels
-would be too large to compile (``worker.estimate.check_structure``), compiles it (tabular
+would be too large to compile (``worker.kernel_limits.check_structure``), compiles it (tabular
 here, grid through ``worker.gridmodel``, imported only when needed so that
 ``import worker`` never loads numba), picks the initial values, dispatches to
 ``worker.solvers.METHODS[solver.method]`` and builds the result document
@@ -62,7 +62,8 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 
 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
-    from worker.estimate import check_structure, estimate
+    from worker.estimate import estimate
+    from worker.kernel_limits import check_structure
 
     check_structure(doc)
     cap = limits["max_bytes"]

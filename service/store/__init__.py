@@ -72,7 +72,7 @@ Keys (prefix ``fixq``, setting ``FIXQ_REDIS_PREFIX``)
 ==========================  ======  ==================================================
 ``fixq:job:{id}``           hash    the record; JSON-encoded where not a string, plus
                                     ``worker`` (host:pid of the last execution),
-                                    ``rq_job`` (current RQ job id), ``enqueues``,
+                                    ``rq_job`` (its ticket, ``service.dispatch``), ``enqueues``,
                                     ``enqueued_at`` (ms), ``document_hash``,
                                     ``log_dropped`` and ``log_stride`` (the log's
                                     bound); TTL ``job_ttl_s`` once the job is finished

@@ -318,7 +318,7 @@ class JobStore(ExecutionWrites):
         """Cancel a queued job now or ask a running one to stop; see the module docstring."""
         if not is_job_id(job_id):
             return None
-        rq_job, priority = self.redis.hmget(self.keys.job(job_id), "rq_job", "priority")
+        rq_job, priority, owner = self.redis.hmget(self.keys.job(job_id), "rq_job", "priority", "owner")
         rq_job_id = rq_job.decode() if rq_job else ""
         outcome = self._cancel(
             keys=[*self.keys.states, self.keys.job(job_id), self.keys.cancel(job_id),
@@ -328,6 +328,9 @@ class JobStore(ExecutionWrites):
         ).decode()  # fmt: skip
         if outcome == "missing":
             return None
+        if outcome == "canceled" and owner is not None:
+            rq_queues.drop_pending(self.redis, self.settings, job_id, rq_job_id, owner.decode(),
+                                   priority.decode() if priority else DEFAULT_PRIORITY)  # fmt: skip
         return {"outcome": outcome, "job": self.get_job(job_id)}
 
     def counts_by_state(self) -> dict[str, int]:

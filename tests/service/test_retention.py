@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import threading
 import time
 from collections.abc import Iterator
 
@@ -13,6 +14,7 @@ from service import sweeps
 from service.app import create_app
 from service.embedded_redis import EmbeddedRedis
 from service.reaper import reap
+from service.resubmission import SolvedJobs
 from service.settings import Settings
 from service.store import JobStore
 from tests._documents import print_shop
@@ -102,6 +104,20 @@ def test_canceled_jobs_expire_queued_running_and_at_claim(short_store: JobStore)
     short_store.redis.delete(short_store.keys.lease(abandoned))
     assert short_store.requeue_abandoned(abandoned)[0] == "canceled"
     assert_expiring(short_store, abandoned)
+
+
+def test_a_reused_job_expires_and_keeps_the_count_of_dropped_log_entries(short_store: JobStore) -> None:
+    store = short_store
+    earlier = new_job(store)
+    store.claim(earlier, "t", worker="w")
+    last = KEEP_FIRST + 2 * KEEP_SAMPLED
+    store.write_log(earlier, "t", [{"iteration": i, "distance": 1.0} for i in range(1, last + 1)], progress=None)
+    store.finish(earlier, "t", "done", result={"status": "max_iterations", "iterations": last})
+    reused, made = SolvedJobs(store).create_reused(print_shop(), earlier, owner="lab", estimate={}, document_hash="h")
+    assert made and reused["state"] == "done"
+    assert store.log_dropped(reused["id"]) == store.log_dropped(earlier) > 0
+    assert store.get_log(reused["id"], limit=10_000) == store.get_log(earlier, limit=10_000)
+    assert_expiring(store, reused["id"])
 
 
 def expire_now(store: JobStore, job_id: str) -> None:
@@ -235,10 +251,16 @@ def test_a_submission_to_a_full_redis_is_503_saying_so(small_redis: redis.Redis)
     settings = Settings(redis_url=url, auth=False)
     with make_client(create_app(settings)) as http:
         response = http.post("/v1/jobs", json=print_shop())
-    body = assert_problem(response, 503)
-    assert body["type"] == "urn:fixq:problem:redis-full"
-    assert "full" in body["detail"] and "maxmemory" in body["detail"]
-    assert response.headers["retry-after"]
+        body = assert_problem(response, 503)
+        assert body["type"] == "urn:fixq:problem:redis-full"
+        assert "full" in body["detail"] and "maxmemory" in body["detail"]
+        assert response.headers["retry-after"]
+        assert list(small_redis.scan_iter(match="fixq:job:*")) == []
+        sweep = http.post("/v1/sweeps", json={"base": print_shop(), "vary": {"discount": [0.8, 0.9]}})
+        assert assert_problem(sweep, 503)["type"] == "urn:fixq:problem:redis-full"
+        assert http.get("/healthz").status_code == 200
+        assert http.get("/metrics").status_code == 200
+        assert http.get("/v1/jobs").status_code == 200
 
 
 def test_a_script_refused_by_a_full_redis_raises_out_of_memory(small_redis: redis.Redis) -> None:
@@ -259,3 +281,28 @@ def test_the_log_endpoint_reports_dropped_entries(client: httpx.Client, store: J
     stream = client.get(f"/v1/jobs/{job_id}/log", headers={"Accept": "text/event-stream"})
     ids = [int(line[4:]) for line in stream.text.splitlines() if line.startswith("id: ")]
     assert ids == [e["iteration"] for e in store.get_log(job_id, limit=10_000)]
+
+
+def test_a_live_log_misses_nothing_while_the_stored_log_is_thinned(app_settings: Settings, store: JobStore) -> None:
+    job_id = new_job(store, owner="anonymous")
+    store.claim(job_id, "t", worker="w")
+    last = KEEP_FIRST + 4 * KEEP_SAMPLED + 333
+
+    def solver() -> None:
+        for start in range(1, last + 1, 97):
+            batch = [{"iteration": i, "distance": 1.0} for i in range(start, min(start + 97, last + 1))]
+            store.write_log(job_id, "t", batch, progress=None)
+            time.sleep(0.002)
+        store.finish(job_id, "t", "canceled")
+
+    writer = threading.Thread(target=solver)
+    with make_client(create_app(app_settings.model_copy(update={"sse_poll_s": 0.001}))) as http:
+        writer.start()
+        try:
+            stream = http.get(f"/v1/jobs/{job_id}/log", headers={"Accept": "text/event-stream"})
+        finally:
+            writer.join()
+    ids = [int(line[4:]) for line in stream.text.splitlines() if line.startswith("id: ")]
+    assert ids == sorted(set(ids))
+    assert set(ids) >= {e["iteration"] for e in store.get_log(job_id, limit=10_000)}
+    assert ids[-1] == last

@@ -17,18 +17,20 @@ import pytest
 import redis
 from fastapi import FastAPI
 
-from service import lifecycle, sweeps
+from service import lifecycle, submission, sweeps
 from service import queue as rq_queues
 from service.app import create_app
 from service.deps import Caller, current_owner
 from service.reaper import reap
-from service.settings import Settings
+from service.settings import Settings, get_settings
 from service.store import JobStore
 from service.sweeps import creation as sweep_creation
 from service.task import run_job
+from tests._documents import GROWTH, LQ, TWO_CHOICES, grid_document
 from tests._documents import machine_shop as shared_machine_shop
 from tests.service._http import make_client
 from worker import solve
+from worker.errors import FixqError
 
 PROBLEM_JSON = "application/problem+json"
 
@@ -565,3 +567,112 @@ def test_a_creator_whose_claim_lapsed_leaves_the_row_to_the_one_that_recorded_it
     assert sorted(states.values()) == ["canceled", "done", "queued"]
     assert store.redis.lrange(rq_queues.queue_key("normal"), 0, -1) == [f"{winner}-1".encode()]
     assert not store.redis.exists(claim)
+
+
+
+FOUR_AXES = {"discount": [0.9, 0.91], "model.reward[0][0]": [3.0, 3.1], "model.reward[1][0]": [2.0, 2.1],
+             "model.reward[0][1]": [-1.0, -1.1]}  # fmt: skip
+"""A chain over four axes of two values: the root has four successors, which want to run at once."""
+
+
+def capped_everywhere(app_settings: Settings, monkeypatch: pytest.MonkeyPatch, cap: int) -> Settings:
+    """The API's settings with ``max_active_jobs`` = ``cap``, which the executions in this process read too."""
+    monkeypatch.setenv("FIXQ_MAX_ACTIVE_JOBS", str(cap))
+    get_settings.cache_clear()
+    return app_settings.model_copy(update={"max_active_jobs": cap})
+
+
+def test_a_chain_stays_within_the_owners_active_job_cap(
+    app_settings: Settings, redis_client, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    # Capped at 3, the rows past the cap wait in the sweep and are created as slots free, none refused.
+    settings = capped_everywhere(app_settings, monkeypatch, 3)
+    store = JobStore(redis_client, settings)
+    with make_client(create_app(settings)) as client:
+        sweep = post_sweep(client, vary=FOUR_AXES, chain=True)
+        most_active = 0
+        for _ in range(40):
+            rows = client.get(f"/v1/sweeps/{sweep['id']}", params={"limit": 100}).json()["rows"]["data"]
+            active = [row["job"] for row in rows if row["state"] in ("queued", "running")]
+            most_active = max(most_active, len(active))
+            if not active:
+                break
+            assert run_inline(store, active[0]) == "done"
+        assert [row["state"] for row in rows] == ["done"] * 16
+        assert most_active == 3
+
+
+def test_a_chain_row_held_back_by_the_cap_is_created_when_another_job_of_the_owner_ends(
+    app_settings: Settings, redis_client, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    settings = capped_everywhere(app_settings, monkeypatch, 2)
+    store = JobStore(redis_client, settings)
+    with make_client(create_app(settings)) as client:
+        # Rows (0,0) → (0,1) and (1,0); (1,0) → (1,1).
+        sweep = post_sweep(client, vary={"discount": [0.9, 0.92], "model.reward[0][0]": [3.0, 3.2]}, chain=True)
+        other = client.post("/v1/jobs", json=machine_shop(discount=0.95)).json()["id"]
+        root = client.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"][0]["job"]
+        assert run_inline(store, root) == "done"
+        rows = client.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"]
+        # The root's slot went to one successor; the other waits, with no job, not refused.
+        assert rows[0]["state"] == "done" and rows[3]["state"] == "waiting"
+        assert sorted(row["state"] for row in rows[1:3]) == ["queued", "waiting"]
+        assert [row["job"] is None and row.get("error") is None for row in rows[1:3]].count(True) == 1
+        assert run_inline(store, other) == "done"
+        rows = client.get(f"/v1/sweeps/{sweep['id']}").json()["rows"]["data"]
+        assert [row["state"] for row in rows] == ["done", "queued", "queued", "waiting"]
+
+
+def test_a_sweep_over_the_cap_is_refused_before_any_combination_is_validated(
+    app_settings: Settings, redis_client, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    admitted: list[int] = []
+    real = sweep_creation.admit_submission
+
+    def counting(*args, **kwargs):
+        admitted.append(1)
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(sweep_creation, "admit_submission", counting)
+    settings = app_settings.model_copy(update={"max_active_jobs": 3})
+    with make_client(create_app(settings)) as client:
+        vary = {"discount": [0.9 + 0.001 * i for i in range(20)]}
+        too_many = client.post("/v1/sweeps", json={"base": machine_shop(), "vary": vary})
+        assert too_many.status_code == 429, too_many.text
+        assert admitted == []
+        # The slots were given back: a sweep that fits is admitted, each combination once.
+        fits = client.post("/v1/sweeps", json={"base": machine_shop(), "vary": {"discount": vary["discount"][:3]}})
+        assert fits.status_code == 202, fits.text
+        assert len(admitted) == 3
+
+
+def _admission(raw: dict, settings: Settings, like=None) -> tuple:
+    """What the door makes of ``raw``: the summary and feasibility (less its timing), or the faults."""
+    try:
+        admitted = submission.admit_submission(raw, settings, None, may_see=lambda record: True,
+                                               check_notify=False, like=like)  # fmt: skip
+    except FixqError as exc:
+        return ("refused", type(exc).__name__, exc.errors)
+    feasibility = {k: v for k, v in (admitted.feasibility or {}).items() if k != "seconds"}
+    return ("admitted", submission.admitted_summary(admitted), feasibility)
+
+
+@pytest.mark.parametrize(
+    ("base", "vary"),
+    [
+        (machine_shop(), {"discount": [0.9, 0.5, 1.5]}),
+        (machine_shop(), {"model.reward[0][0]": [3.0, "x", 4.0], "solver.tolerance": [1e-6, -1.0]}),
+        (grid_document(GROWTH), {"model.params.gamma": [2.0, 1.5, "x"], "solver.tolerance": [1e-6, -1]}),
+        (grid_document(TWO_CHOICES), {"discount": [0.95, 0.9, 1.0]}),
+        (grid_document(LQ), {"model.states.x.points": [41, 11, 1]}),
+        (grid_document(LQ, initial={"values": [0.0] * 41}), {"model.states.x.points": [41, 11]}),
+    ],
+)
+def test_each_combination_validated_like_the_first_admits_exactly_as_a_full_validation(
+    settings: Settings, base: dict, vary: dict
+) -> None:
+    request = sweeps.parse_request({"base": base, "vary": vary}, settings)
+    documents = [request.document(i, sweep_id="0123456789abcdef") for i in range(request.count)]
+    first = submission.admit_submission(documents[0], settings, None, may_see=lambda r: True, check_notify=False)
+    for raw in documents[1:]:
+        assert _admission(raw, settings, like=(documents[0], first)) == _admission(raw, settings)

@@ -8,13 +8,12 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from worker.estimate import DIRECT_SOLVE_MAX_POINTS, KRYLOV_RESTART
+from worker.estimate import DIRECT_SOLVE_MAX_POINTS, KRYLOV_RESIDUAL_SHARE, KRYLOV_RESTART
 from worker.problem import PolicySteps
 from worker.solvers.loop import Run
 
 __all__ = [
     "KRYLOV_FLOOR_ULPS",
-    "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_STALL_CYCLES",
     "MOVING_STEPS_DIVISOR",
     "STABLE_STEPS_FACTOR",
@@ -34,8 +33,6 @@ STABLE_STEPS_FACTOR = 20
 """Howard: once the policy stops changing, the evaluation phase may run this many times
 ``evaluation_steps`` evaluation steps (count; it ends earlier when the steps have settled)."""
 
-KRYLOV_RESIDUAL_SHARE = 1e-3
-"""Policy iteration, iterative solve: the residual target as a share of ``tolerance · (1 − β)`` (dimensionless)."""
 KRYLOV_FLOOR_ULPS = 64.0
 """Policy iteration, iterative solve: the residual floor in units of ``ε · ‖r_σ‖∞ / (1 − β)`` (count)."""
 KRYLOV_STALL_CYCLES = 5

@@ -335,11 +335,12 @@ def iterate(
     time)}`` and passes it to ``on_progress``.
 
     ``time_limit_s`` counts solving seconds across resumes.  It is checked
-    after each iteration and between evaluation steps; an evaluation phase
-    cut short by it is followed by one more iteration, so the returned value
-    always carries the error bound of its own step.  ``should_stop`` is
-    polled before every iteration and at most every ``STOP_POLL_S`` between
-    evaluation steps.  Checkpoints are saved at most every ``checkpoint_s``
+    after each iteration, between evaluation steps and between the restart
+    cycles of an iterative linear solve; an evaluation cut short by it is
+    followed by one more iteration, so the returned value always carries
+    the error bound of its own step.  ``should_stop`` is polled before every
+    iteration and at most every ``STOP_POLL_S`` between evaluation steps or
+    restart cycles.  Checkpoints are saved at most every ``checkpoint_s``
     solving seconds, after an evaluation or between evaluation steps (with
     the steps done so far, so a resumed solve finishes the interrupted phase
     and then repeats exactly what the interrupted one would have done).
