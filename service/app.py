@@ -20,6 +20,7 @@ from service.bodylimit import BodyLimit
 from service.metrics import build_registry
 from service.routers import dashboard, examples, jobs, plots, sweeps, system
 from service.settings import Settings, get_settings
+from service.stopping import watch_stop_signals
 from service.store import JobStore
 
 __all__ = ["create_app"]
@@ -54,7 +55,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
-        yield
+        with watch_stop_signals():
+            yield
         connection.close()
 
     app = FastAPI(

@@ -396,10 +396,9 @@ def _cmd_worker(args: argparse.Namespace) -> int:
     from service.settings import get_settings
 
     _require_redis_url(get_settings().redis_url, "worker")
-    from service.task import run_worker
+    from service.supervisor import supervise
 
-    run_worker(burst=args.burst)
-    return EXIT_OK
+    return supervise(burst=args.burst)
 
 
 def _require_redis_url(url: str | None, command: str) -> None:

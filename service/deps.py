@@ -12,10 +12,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Annotated, Any
 
+import anyio
 import orjson
 import redis
 from fastapi import Depends, Request
 
+from service.bodylimit import check_inline_values
 from service.keys import ApiKey, KeyStore
 from service.problems import Problem
 from service.settings import Settings
@@ -125,11 +127,21 @@ def api_key_of(request: Request) -> ApiKey | None:
 Owner = Annotated[Caller, Depends(current_owner)]
 
 
-async def read_json_object(request: Request) -> dict[str, Any]:
-    """The request body parsed as one JSON object (strict JSON: no NaN, no trailing commas)."""
+async def read_json_object(request: Request, settings: SettingsDep) -> dict[str, Any]:
+    """The request body parsed as one JSON object (strict JSON: no NaN, no trailing commas).
+
+    A body writing more than ``max_inline_elements`` values inline is refused
+    (413) before it is parsed; counting and parsing run in a worker thread,
+    so a large body never holds the event loop.
+    """
     body = await request.body()
     if not body.strip():
         raise Problem(400, "malformed-json", "the request body is empty; send a JSON object", title="malformed JSON")
+    return await anyio.to_thread.run_sync(_parse_object, body, settings.max_inline_elements)
+
+
+def _parse_object(body: bytes, max_inline_elements: int) -> dict[str, Any]:
+    check_inline_values(body, max_inline_elements)
     try:
         value = orjson.loads(body)
     except orjson.JSONDecodeError as exc:

@@ -12,9 +12,16 @@ A client that resends ``POST /v1/jobs`` with the same ``Idempotency-Key``
   :data:`IDEMPOTENCY_WAIT_S` for it, then answers ``409``.
 
 Keys are per owner and remembered ``idempotency_ttl_s``.  A request *claims*
-its key (``SET NX`` of a pending marker, :data:`CLAIM_S`) before it admits the
-document, turns the claim into the job id once the job exists, and drops it
-if the document is refused, so a refused body does not burn the key.
+its key (``SET NX`` of a pending marker) before it admits the document; the
+marker already names the id the job will be created with
+(:attr:`IdempotencyClaim.job_id`) and when it was claimed.  The request turns
+the claim into the bare job id once the job exists, and drops it if the
+document is refused, so a refused body does not burn the key.  An API that
+dies between creating the job and that last step leaves a marker naming a
+job that exists: a retry answers that job, so a crash never makes a second
+job.  A marker whose job does not exist :data:`CLAIM_S` after the claim
+belongs to a request that died before creating it, and a retry takes the
+key over.
 
 Reuse of identical solves
 -------------------------
@@ -41,9 +48,10 @@ solve got depends on the machine's load).  ``?fresh=true`` skips the lookup.
 Keys in Redis (prefix ``fixq``)
 -------------------------------
 =======================================  ======  ===============================
-``fixq:idempotency:{owner}:{sha256}``    string  ``pending:{token}`` while a
-                                                 request is admitted, then the
-                                                 job id (TTL ``idempotency_ttl_s``)
+``fixq:idempotency:{owner}:{sha256}``    string  ``pending:{job id}:{unix s}``
+                                                 while a request is admitted,
+                                                 then the job id (TTL
+                                                 ``idempotency_ttl_s``)
 ``fixq:solved:{owner}:{document_hash}``  list    the newest :data:`REUSE_CANDIDATES`
                                                  job ids submitted with that
                                                  hash, kept ``result_ttl_s +
@@ -79,7 +87,8 @@ __all__ = [
 ]
 
 CLAIM_S = 60
-"""Seconds a pending claim on an idempotency key lives (covers an API that died mid-request)."""
+"""Seconds after which a pending claim whose job was never created may be taken over (an API that died
+before creating it)."""
 IDEMPOTENCY_WAIT_S = 5.0
 """Seconds a request waits for a concurrent one with the same key to create its job, before 409."""
 IDEMPOTENCY_POLL_S = 0.02
@@ -125,14 +134,14 @@ return 1
 _COPIED_FIELDS = ("status", "iterations", "error_bound", "progress", "log_dropped")
 
 
-
-
 @dataclass(frozen=True)
 class IdempotencyClaim:
     """A request's hold on an idempotency key until its job exists."""
 
     redis_key: str
     marker: bytes
+    job_id: str
+    """The id the request must create its job with (``JobStore.create_job(job_id=...)``)."""
 
 
 class IdempotencyKeys:
@@ -153,20 +162,32 @@ class IdempotencyKeys:
         :data:`IDEMPOTENCY_WAIT_S`.
         """
         redis_key = self.redis_key(owner, key)
-        marker = _PENDING + secrets.token_hex(8).encode()
+        job_id = secrets.token_hex(8)
+        marker = b"%s%s:%d" % (_PENDING, job_id.encode(), int(time.time()))
+        claim = IdempotencyClaim(redis_key, marker, job_id)
+        ttl_s = self.store.settings.idempotency_ttl_s
         deadline = time.monotonic() + IDEMPOTENCY_WAIT_S
         redis = self.store.redis
         while True:
-            if redis.set(redis_key, marker, nx=True, ex=CLAIM_S):
-                return IdempotencyClaim(redis_key, marker)
+            if redis.set(redis_key, marker, nx=True, ex=ttl_s):
+                return claim
             value = redis.get(redis_key)
             if value is not None and not value.startswith(_PENDING):
                 record = self._replay(key, value.decode(), raw_document)
                 if record is not None:
                     return record
                 # The key named a job that no longer exists: take the key over.
-                if self._swap(keys=[redis_key], args=[value, marker, CLAIM_S]):
-                    return IdempotencyClaim(redis_key, marker)
+                if self._swap(keys=[redis_key], args=[value, marker, ttl_s]):
+                    return claim
+            elif value is not None:
+                pending_job, claimed_at = _pending(value)
+                record = self._replay(key, pending_job, raw_document)
+                if record is not None:
+                    # Its request created the job and died before naming it here.
+                    self._swap(keys=[redis_key], args=[value, pending_job, ttl_s])
+                    return record
+                if time.time() - claimed_at > CLAIM_S and self._swap(keys=[redis_key], args=[value, marker, ttl_s]):
+                    return claim
             if time.monotonic() >= deadline:
                 raise Problem(
                     409,
@@ -202,8 +223,22 @@ class IdempotencyKeys:
         self._swap(keys=[claim.redis_key], args=[claim.marker, job_id, self.store.settings.idempotency_ttl_s])
 
     def abandon(self, claim: IdempotencyClaim) -> None:
-        """Free the key (the request created no job)."""
+        """Free the key (the request created no job), or name the job if it was created and lives on."""
+        state = self.store.redis.hget(self.store.keys.job(claim.job_id), "state")
+        if state is not None and state != b"canceled":
+            # The request failed after creating its job: a retry must get that job, not a second one.
+            self.complete(claim, claim.job_id)
+            return
         self._swap(keys=[claim.redis_key], args=[claim.marker, "", 0])
+
+
+def _pending(marker: bytes) -> tuple[str, float]:
+    """(job id, unix seconds of the claim) of a pending marker."""
+    job_id, _, claimed_at = marker[len(_PENDING) :].decode().partition(":")
+    try:
+        return job_id, float(claimed_at)
+    except ValueError:
+        return job_id, 0.0
 
 
 class SolvedJobs:
@@ -251,9 +286,11 @@ class SolvedJobs:
 
     def create_reused(
         self, raw_document: dict[str, Any], earlier_id: str, *, owner: str, estimate: dict[str, Any],
-        document_hash: str,
+        document_hash: str, job_id: str | None = None,
     ) -> tuple[dict[str, Any], bool]:  # fmt: skip
         """A new job carrying ``earlier_id``'s result; (record, reused).
+
+        ``job_id``: the id to create it with (an idempotency claim's), else a fresh one.
 
         The job is created unqueued and turned ``done`` by one script.  When
         that fails — the earlier result expired a moment ago — the job is
@@ -264,7 +301,7 @@ class SolvedJobs:
         """
         store = self.store
         record = store.create_job(
-            raw_document, owner=owner, estimate=estimate, document_hash=document_hash, enqueue=False
+            raw_document, owner=owner, estimate=estimate, document_hash=document_hash, enqueue=False, job_id=job_id
         )
         job_id = record["id"]
         copied = store.redis.hmget(store.keys.job(earlier_id), *_COPIED_FIELDS)

@@ -182,6 +182,44 @@ class Settings(BaseSettings):
         "key_max_running_jobs, before it puts its ticket back on the queue (at most lease_s/2).",
     )
 
+    # Fields of request bodies, webhook delivery concurrency (issue 10).
+    max_inline_elements: int = Field(
+        1_000_000,
+        ge=1,
+        description="Most values one request body may write out inline in JSON arrays and objects (count, "
+        "measured as the commas, [ and { outside strings); larger arrays must come packed ({dtype, shape, "
+        "base64}). More get 413 before the body is parsed.",
+    )
+    notify_workers: int = Field(
+        8, ge=1, description="Most webhook deliveries one notifier thread makes at once, over all targets (count)."
+    )
+    notify_per_target: int = Field(
+        2,
+        ge=1,
+        description="Most webhook deliveries one notifier makes at once to one target (host and port; count), "
+        "so a slow or dead receiver delays only its own deliveries.",
+    )
+
+    # Fields of workers riding out a Redis outage, and their liveness (issue 10).
+    redis_retry_s: float = Field(
+        600.0,
+        gt=0,
+        description="Seconds a worker keeps retrying, with backoff, the final writes of a finished solve "
+        "(its result or state) while Redis is unreachable, before it leaves the job to the reaper.",
+    )
+    worker_restart_max_s: float = Field(
+        10.0,
+        gt=0,
+        description="Longest wait in seconds before `fixq worker` restarts its RQ worker process after it "
+        "exited unexpectedly (the wait doubles from 0.5 s up to this); a recycled process restarts at once.",
+    )
+    worker_beacon_s: float = Field(
+        5.0,
+        gt=0,
+        description="Seconds between two liveness beacons of a worker process; /healthz counts the workers "
+        "heard from within the last three intervals.",
+    )
+
 
 @lru_cache(maxsize=1)
 def get_settings() -> Settings:

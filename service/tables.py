@@ -6,6 +6,11 @@ variables, then the shocks; a tabular result has the one axis ``state_label``),
 then ``value``, then a column per choice with the chosen value (a tabular
 result's one choice is named ``action`` and holds action labels).  A choice
 whose name repeats an earlier column gets ``_choice`` appended.
+
+Text cells that begin with ``=``, ``+``, ``-``, ``@``, a tab or a carriage
+return (labels, names) get a leading ``'`` (:func:`csv_text`), so a
+spreadsheet shows them as text instead of running them as formulas; numbers
+are written as they are, a negative one included.
 """
 
 from __future__ import annotations
@@ -17,10 +22,20 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["ROWS_PER_CHUNK", "csv_chunks", "table_columns"]
+__all__ = ["FORMULA_STARTS", "ROWS_PER_CHUNK", "csv_chunks", "csv_text", "table_columns"]
 
 ROWS_PER_CHUNK = 4096
 """Rows formatted per chunk of the streamed CSV (rows)."""
+FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
+"""First characters that make a spreadsheet read a CSV cell as a formula (CSV injection)."""
+
+
+def csv_text(value: Any) -> Any:
+    """``value`` as a CSV cell: text that begins with one of :data:`FORMULA_STARTS` gets a leading ``'``;
+    anything that is not text (a number, too) is returned unchanged."""
+    if isinstance(value, str) and value.startswith(FORMULA_STARTS):
+        return "'" + value
+    return value
 
 
 def table_columns(result: dict[str, Any]) -> tuple[list[str], list[np.ndarray]]:
@@ -57,10 +72,12 @@ def csv_chunks(result: dict[str, Any]) -> Iterator[str]:
     names, columns = table_columns(result)
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(names)
+    writer.writerow([csv_text(name) for name in names])
     n = len(columns[0]) if columns else 0
     for start in range(0, n, ROWS_PER_CHUNK):
-        writer.writerows(zip(*(column[start : start + ROWS_PER_CHUNK] for column in columns)))
+        chunks = [column[start : start + ROWS_PER_CHUNK] for column in columns]
+        chunks = [[csv_text(v) for v in chunk] if chunk.dtype == object else chunk for chunk in chunks]
+        writer.writerows(zip(*chunks))
         yield buffer.getvalue()
         buffer.seek(0)
         buffer.truncate()

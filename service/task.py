@@ -34,45 +34,78 @@ re-enqueued) stops at its next iteration without writing anything, so an orphane
 work-horse can never overwrite or duplicate the result.  RQ gets back a tiny
 summary dict, never arrays.
 
+A Redis outage does not end a solve: a failed checkpoint save, progress
+write or stop check is logged and the solve goes on; the heartbeat takes a
+lease that lapsed meanwhile back if nobody else claimed the job; the final
+writes are retried with backoff for up to ``redis_retry_s``, and write
+nothing once the lease is known to be another execution's.
+
 ``run_worker(burst=False, queues=None)`` runs an RQ worker on ``fixq-high``,
 ``fixq-normal``, ``fixq-low`` (in that order) with a ``service.reaper.Reaper``
-thread beside it.
+and a ``service.liveness.Beacon`` thread beside it; ``worker_main`` is one
+such process under ``fixq worker`` (``service.supervisor``), which stops
+taking jobs once ``worker._codegen.recycle_due()`` and exits with
+``RECYCLE_EXIT`` to be replaced.
 """
 
 from __future__ import annotations
 
-import io
 import logging
 import os
 import secrets
 import socket
 import threading
 import time
-import zlib
-from collections.abc import Sequence
-from typing import Any
+from collections.abc import Callable, Sequence
+from typing import Any, TypeVar
 
-import numpy as np
-import orjson
 import redis
 from rq import Queue, SimpleWorker, Worker, get_current_job
 from rq.timeouts import JobTimeoutException
 
 from service import dispatch
+from service.checkpoints import RedisCheckpoint
 from service.lifecycle import job_finished
+from service.liveness import Beacon
+from service.notifier import Notifier
 from service.queue import ordered_queue_names
 from service.reaper import Reaper, reap
 from service.settings import Settings, get_settings
 from service.store import JobStore, connect, is_job_id
-from service.webhooks import Notifier
+from service.supervisor import RECYCLE_EXIT
 from worker import solve
+from worker._codegen import recycle_due
+from worker.convergence_log import ConvergenceLog
 from worker.errors import Canceled, FixqError, InvalidDocument
 
-__all__ = ["decode_checkpoint", "encode_checkpoint", "run_job", "run_next", "run_worker"]
+__all__ = ["run_job", "run_next", "run_worker", "worker_main"]
 
 logger = logging.getLogger("fixq.task")
+_T = TypeVar("_T")
 
 _MIB = 2**20
+FIRST_RETRY_S = 0.1
+"""Seconds before the first retry of a Redis write that failed (the wait doubles up to ``LONGEST_RETRY_S``)."""
+LONGEST_RETRY_S = 2.0
+"""Longest wait in seconds between two retries of a Redis write."""
+
+# The lease heartbeat: renew the lease if it is ours; take it again if it
+# lapsed (a Redis outage outlasted it) while nobody else claimed the job —
+# still `running`, with the attempt count of our claim — so that the
+# execution keeps its work rather than leave it to the reaper.
+# KEYS 1 lease, 2 job.  ARGV 1 token, 2 lease ms, 3 attempts at our claim.
+_RENEW_OR_RETAKE = """
+local holder = redis.call('GET', KEYS[1])
+if holder == ARGV[1] then
+  redis.call('PEXPIRE', KEYS[1], ARGV[2])
+  return 1
+end
+if holder then return 0 end
+local job = redis.call('HMGET', KEYS[2], 'state', 'attempts')
+if job[1] ~= 'running' or job[2] ~= ARGV[3] then return 0 end
+redis.call('SET', KEYS[1], ARGV[1], 'PX', ARGV[2])
+return 2
+"""
 
 
 def run_job(job_id: str) -> dict[str, Any]:
@@ -106,7 +139,12 @@ def run_next(job_id: str) -> dict[str, Any]:
     connection = current.connection if current is not None else _connection(settings)
     store = JobStore(connection, settings)
     ticket = current.id if current is not None else ""
-    picked = dispatch.next_job(store, ticket)
+    try:
+        picked = dispatch.next_job(store, ticket)
+    except redis.RedisError:
+        # The job this ticket stood for keeps a ticket that ran: the reaper issues it a new one.
+        logger.exception("ticket %s: Redis failed while picking a job; left to the reaper", ticket)
+        return {"job": job_id, "outcome": "redis_error"}
     if picked is None:
         return {"job": job_id, "outcome": "idle"}
     outcome = _Execution(store, picked).run()
@@ -135,7 +173,6 @@ class _Execution:
         self.token = secrets.token_hex(16)
         self.lease_lost = threading.Event()
         self._heartbeat_stop = threading.Event()
-        self._last_renewal = time.monotonic()
         self._stopping = False
         self._last_stop_check = 0.0
         self._buffer: list[dict[str, Any]] = []
@@ -145,17 +182,23 @@ class _Execution:
         self._finished = False
         self._last_iteration = 0
         self._last_flush = time.monotonic()
+        self.worker = f"{socket.gethostname()}:{os.getpid()}"
+        self._attempts = b""
+        self._renew = store.redis.register_script(_RENEW_OR_RETAKE)
 
     def run(self) -> str:
-        worker = f"{socket.gethostname()}:{os.getpid()}"
-        claim = self.store.claim(self.job_id, self.token, worker=worker)
+        claim = self.store.claim(self.job_id, self.token, worker=self.worker)
         if claim != "ok":
             logger.info("job %s: not run (%s)", self.job_id, claim)
             return claim
         heartbeat = threading.Thread(target=self._heartbeat, name=f"fixq-lease-{self.job_id}", daemon=True)
         heartbeat.start()
         try:
+            self._attempts = self.store.redis.hget(self.store.keys.job(self.job_id), "attempts") or b""
             return self._solve_and_record()
+        except redis.RedisError:
+            logger.exception("job %s: Redis stayed unreachable; leaving the job to the reaper", self.job_id)
+            return "redis_error"
         finally:
             self._heartbeat_stop.set()
             heartbeat.join(timeout=5)
@@ -173,18 +216,22 @@ class _Execution:
             result = solve(
                 document,
                 on_progress=self.on_progress,
-                checkpoint=_RedisCheckpoint(self),
+                checkpoint=RedisCheckpoint(self),
                 should_stop=self.should_stop,
                 warm_start=_warm_start(self.store, document),
-                limits={"max_bytes": int(self.settings.max_problem_mb * _MIB)},
+                limits={
+                    "max_bytes": int(self.settings.max_problem_mb * _MIB),
+                    "max_seconds": self.settings.max_solve_s,
+                    "enforce_memory": True,
+                },
             )
         except Canceled as exc:
             if self.lease_lost.is_set():
                 return self._lost()
-            self.flush()
+            self._final_flush()
             return self._finish("canceled", iterations=exc.context.get("iteration"))
         except FixqError as exc:
-            self.flush()
+            self._final_flush()
             return self._finish("failed", error={"title": exc.title, "detail": exc.detail, "errors": exc.errors})
         except redis.RedisError:
             # Not the job's fault: it stays `running`, its lease lapses and the
@@ -192,41 +239,110 @@ class _Execution:
             logger.exception("job %s: Redis failed during the execution; leaving it to the reaper", self.job_id)
             return "redis_error"
         except JobTimeoutException:
-            self.flush()
+            self._final_flush()
             detail = f"the solve ran longer than job_timeout_s ({self.settings.job_timeout_s} s) and was stopped"
             return self._finish("failed", error={"title": "job timed out", "detail": detail, "errors": []})
         except Exception as exc:
             logger.exception("job %s: the solve raised", self.job_id)
-            self.flush()
+            self._final_flush()
             detail = f"the solver stopped on an internal error: {type(exc).__name__}: {exc}"[:500]
             return self._finish("failed", error={"title": "solver error", "detail": detail, "errors": []})
-        self.flush()
+        self._final_flush()
         return self._finish("done", result=result)
 
     def _finish(self, state: str, **outcome: Any) -> str:
-        if self.store.finish(self.job_id, self.token, state, **outcome):
+        def write() -> bool:
+            return self.store.finish(self.job_id, self.token, state, **outcome)
+
+        written, retried = self._retrying(write)
+        if not written and retried and self._finished_by_us(state):
+            written = True
+        elif not written and self._retrying(self.still_ours)[0]:
+            # The lease lapsed while Redis was away and nobody took the job: write under it again.
+            written = self._retrying(write)[0]
+        if written:
             self._finished = True
             logger.info("job %s: %s", self.job_id, state)
             return state
         return self._lost()
+
+    def _finished_by_us(self, state: str) -> bool:
+        """After a retried ``finish``: whether the attempt whose reply was lost wrote ``state`` itself."""
+        fields = self.store.redis.hmget(self.store.keys.job(self.job_id), "state", "worker", "attempts")
+        return fields == [state.encode(), self.worker.encode(), self._attempts]
+
+    def _retrying(self, write: Callable[[], _T]) -> tuple[_T, bool]:
+        """``write()``'s value, retried with backoff through Redis errors for up to ``redis_retry_s``;
+        (value, whether it was retried).  Raises the last ``RedisError`` once that time is up."""
+        deadline = time.monotonic() + self.settings.redis_retry_s
+        wait_s = FIRST_RETRY_S
+        retried = False
+        while True:
+            try:
+                return write(), retried
+            except redis.RedisError as exc:
+                if time.monotonic() + wait_s > deadline:
+                    raise
+                logger.warning("job %s: Redis write failed (%s); retrying in %.1f s", self.job_id, exc, wait_s)
+            time.sleep(wait_s)
+            wait_s = min(2 * wait_s, LONGEST_RETRY_S)
+            retried = True
 
     def _lost(self) -> str:
         logger.warning("job %s: lease lost; stopped without writing", self.job_id)
         return "lease_lost"
 
     def _heartbeat(self) -> None:
+        # Only Redis can say the lease is lost: while it is unreachable the
+        # solve goes on, and every write is compare-and-set on the token.
+        # While Redis is unreachable it asks more often, to take a lapsed lease
+        # back before a reaper gives the job to another execution.
         interval = self.settings.lease_s / 3
-        while not self._heartbeat_stop.wait(interval):
+        wait_s = interval
+        failing = False
+        while not self._heartbeat_stop.wait(wait_s):
+            wait_s = min(interval, 2 * FIRST_RETRY_S)
             try:
-                if not self.store.renew_lease(self.job_id, self.token):
-                    self.lease_lost.set()
-                    return
-                self._last_renewal = time.monotonic()
-            except redis.RedisError:
-                logger.warning("job %s: could not renew the lease", self.job_id, exc_info=True)
-                if time.monotonic() - self._last_renewal > self.settings.lease_s:
-                    self.lease_lost.set()
-                    return
+                renewed = self._renew_or_retake()
+            except redis.RedisError as exc:
+                if not failing:
+                    self._log_quietly("job %s: could not renew the lease (%s); retrying", self.job_id, exc)
+                failing = True
+                continue
+            except MemoryError:
+                # The solve's memory limit is process-wide: this thread may hit it too; try again soon.
+                continue
+            wait_s, failing = interval, False
+            if not renewed:
+                self.lease_lost.set()
+                return
+            if renewed == 2:
+                self._log_quietly("job %s: the lease had lapsed during a Redis outage; taken again", self.job_id)
+
+    def _renew_or_retake(self) -> int:
+        """0: the lease is another execution's (or the job is no longer running); 1: renewed; 2: taken back."""
+        return int(
+            self._renew(
+                keys=[self.store.keys.lease(self.job_id), self.store.keys.job(self.job_id)],
+                args=[self.token, int(self.settings.lease_s * 1000), self._attempts],
+            )
+        )
+
+    def still_ours(self) -> bool:
+        """After a write refused for want of the lease: take it back if it only lapsed (a Redis outage
+        outlasted it) and nobody claimed the job since; else the lease is lost."""
+        if self._renew_or_retake():
+            logger.info("job %s: the lease had lapsed; taken again", self.job_id)
+            return True
+        self.lease_lost.set()
+        return False
+
+    @staticmethod
+    def _log_quietly(message: str, *args: Any) -> None:
+        try:
+            logger.warning(message, *args)
+        except MemoryError:
+            pass
 
     def should_stop(self) -> bool:
         """Cancel flag set or lease lost; Redis is asked at most every stop_check_interval_s."""
@@ -241,11 +357,10 @@ class _Execution:
         self._last_stop_check = now
         try:
             canceled, ours = self.store.stop_signals(self.job_id, self.token)
+            ours = ours or self.still_ours()
         except redis.RedisError:
-            # Keep solving through a Redis blip; the heartbeat decides when the lease is gone.
+            # Keep solving through a Redis outage; only Redis can say the lease is gone.
             return False
-        if not ours:
-            self.lease_lost.set()
         self._stopping = canceled or not ours
         return self._stopping
 
@@ -263,7 +378,17 @@ class _Execution:
             self.flush()
 
     def flush(self) -> None:
-        """Write buffered log entries and the latest progress under the lease."""
+        """Write buffered log entries and the latest progress under the lease; a Redis error keeps them buffered."""
+        try:
+            self._write_buffer()
+        except redis.RedisError as exc:
+            logger.warning("job %s: could not write progress (%s)", self.job_id, exc)
+
+    def _final_flush(self) -> None:
+        """Write what is buffered, retrying through a Redis outage (see :meth:`_retrying`)."""
+        self._retrying(self._write_buffer)
+
+    def _write_buffer(self) -> None:
         self._last_flush = time.monotonic()
         if not self._buffer and not self._trim_from:
             return
@@ -276,10 +401,15 @@ class _Execution:
             written = self.store.write_log(
                 self.job_id, self.token, entries, progress=progress, trim_from=self._trim_from
             )
+            if not written and self.still_ours():
+                written = self.store.write_log(
+                    self.job_id, self.token, entries, progress=progress, trim_from=self._trim_from
+                )
         except redis.RedisError:
-            logger.warning("job %s: could not write progress", self.job_id, exc_info=True)
-            self._buffer = entries + self._buffer
-            return
+            # Kept bounded as the stored log is (the entries it drops would be dropped
+            # by write_log anyway), so a long outage cannot grow the buffer without end.
+            self._buffer = ConvergenceLog(entries + self._buffer)
+            raise
         self._trim_from = 0
         if not written:
             self.lease_lost.set()
@@ -288,71 +418,13 @@ class _Execution:
         """Make the stored log exactly ``entries`` (a checkpoint's log)."""
         self._buffer = []
         self._trim_from = 0
-        if not self.store.write_log(self.job_id, self.token, entries, progress=None, trim_from=-1):
+        written = self.store.write_log(self.job_id, self.token, entries, progress=None, trim_from=-1)
+        if not written and self.still_ours():
+            written = self.store.write_log(self.job_id, self.token, entries, progress=None, trim_from=-1)
+        if not written:
             self.lease_lost.set()
         iterations = [e.get("iteration") for e in entries if isinstance(e.get("iteration"), int)]
         self._last_iteration = iterations[-1] if iterations else 0
-
-
-class _RedisCheckpoint:
-    """The ``checkpoint`` object handed to ``solve``."""
-
-    def __init__(self, execution: _Execution) -> None:
-        self.execution = execution
-
-    def load(self) -> dict[str, Any] | None:
-        execution = self.execution
-        stored = execution.store.load_checkpoint(execution.job_id)
-        if stored is None:
-            return None
-        iteration, payload = stored
-        try:
-            state = decode_checkpoint(payload)
-        except (ValueError, OSError, zlib.error):
-            logger.warning("job %s: unreadable checkpoint ignored", execution.job_id, exc_info=True)
-            return None
-        log = [entry for entry in state.get("log", []) if entry.get("iteration", 0) <= iteration]
-        execution.replace_log(log)
-        logger.info("job %s: resuming from the checkpoint of iteration %d", execution.job_id, iteration)
-        return state
-
-    def save(self, state: dict[str, Any]) -> None:
-        execution = self.execution
-        outcome = execution.store.save_checkpoint(
-            execution.job_id, execution.token, int(state["iteration"]), encode_checkpoint(state)
-        )
-        if outcome == "lease_lost":
-            execution.lease_lost.set()
-
-
-def encode_checkpoint(state: dict[str, Any]) -> bytes:
-    """Compress a solver state: arrays as ``np.save`` bytes, the rest as JSON."""
-    arrays: list[tuple[str, bytes]] = []
-    plain: dict[str, Any] = {}
-    for name, value in state.items():
-        if isinstance(value, np.ndarray):
-            buffer = io.BytesIO()
-            np.save(buffer, value, allow_pickle=False)
-            arrays.append((name, buffer.getvalue()))
-        else:
-            plain[name] = value
-    header = orjson.dumps(
-        {"plain": plain, "arrays": [[name, len(data)] for name, data in arrays]}, option=orjson.OPT_SERIALIZE_NUMPY
-    )
-    return zlib.compress(len(header).to_bytes(8, "big") + header + b"".join(data for _, data in arrays), 1)
-
-
-def decode_checkpoint(payload: bytes) -> dict[str, Any]:
-    """Inverse of ``encode_checkpoint``."""
-    raw = zlib.decompress(payload)
-    size = int.from_bytes(raw[:8], "big")
-    header = orjson.loads(raw[8 : 8 + size])
-    state: dict[str, Any] = dict(header["plain"])
-    offset = 8 + size
-    for name, length in header["arrays"]:
-        state[name] = np.load(io.BytesIO(raw[offset : offset + length]), allow_pickle=False)
-        offset += length
-    return state
 
 
 def _warm_start(store: JobStore, document: dict[str, Any]) -> dict[str, Any] | None:
@@ -387,12 +459,39 @@ class _WithoutCommandChannel:
         return None
 
 
+class _Recycling:
+    """An RQ worker that stops taking jobs once ``worker._codegen.recycle_due()`` (checked after each job)."""
+
+    recycle = False
+
+    def execute_job(self, job: Any, queue: Any) -> None:
+        super().execute_job(job, queue)  # type: ignore[misc]
+        if recycle_due():
+            logger.info("worker: it has loaded FIXQ_MAX_LOADED_STRUCTURES compiled kernels; stopping to be recycled")
+            self.recycle = True
+            self._stop_requested = True
+
+
+def worker_main(burst: bool = False) -> int:
+    """One RQ worker process under ``fixq worker`` (``service.supervisor``); its exit code.
+
+    0 when it stopped as asked (or, with ``burst``, the queues are empty);
+    ``RECYCLE_EXIT`` when it stopped to be replaced by a fresh process.
+    """
+    return RECYCLE_EXIT if _run(burst, None)[1] else 0
+
+
 def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool:
     """Run an RQ worker on fixq's queues with a reaper thread; True if it ran a job.
 
     ``queues``: priorities (``high``) or queue names (``fixq-high``), in the
     order they are drained; default all three, high first.
     """
+    return _run(burst, queues)[0]
+
+
+def _run(burst: bool, queues: Sequence[str] | None) -> tuple[bool, bool]:
+    """(ran a job, stopped to be recycled)."""
     settings = get_settings()
     logging.basicConfig(level=settings.worker_log_level.upper(), format="%(asctime)s %(name)s %(message)s")
     connection = connect(settings)
@@ -406,9 +505,15 @@ def run_worker(burst: bool = False, queues: Sequence[str] | None = None) -> bool
         # A SimpleWorker sends RQ no heartbeats while a job runs; fixq's own lease
         # heartbeat carries liveness, and RQ extends a SimpleWorker's key to the job timeout.
         base = SimpleWorker if settings.worker_class == "simple" else Worker
-        worker_class = type(f"Fixq{base.__name__}", (_WithoutCommandChannel, base), {})
-        worker = worker_class(rq_queues, connection=connection, name=f"fixq-{socket.gethostname()}-{os.getpid()}")
-        return worker.work(burst=burst, logging_level=settings.worker_log_level.upper())
+        worker_class = type(f"Fixq{base.__name__}", (_WithoutCommandChannel, _Recycling, base), {})
+        name = f"fixq-{socket.gethostname()}-{os.getpid()}"
+        beacon = Beacon(JobStore(connect(settings), settings), name).start()
+        try:
+            worker = worker_class(rq_queues, connection=connection, name=name)
+            ran = worker.work(burst=burst, logging_level=settings.worker_log_level.upper())
+            return ran, worker.recycle
+        finally:
+            beacon.stop()
     finally:
         notifier.stop()
         reaper.stop()

@@ -19,7 +19,8 @@ later (DNS rebinding) is still refused.  A target must
   (169.254/16 and fe80::/10, where cloud metadata services live), the known
   metadata addresses, multicast, unspecified, "this network" (0/8) and
   reserved addresses are refused even then.  IPv4 addresses inside IPv6
-  (``::ffff:a.b.c.d``, 6to4 ``2002::/16``) are judged by the IPv4 address.
+  (``::ffff:a.b.c.d``, 6to4 ``2002::/16``, and both the server's and the
+  client's address of Teredo ``2001::/32``) are judged by the IPv4 address.
 
 A delivery connects to the address that was checked (the host name travels
 in ``Host`` and, for https, in TLS SNI and certificate checks), so the check
@@ -62,11 +63,12 @@ writes the delivery ``fixq:notify:{job id}`` (a hash, kept ``result_ttl_s``)
 with its due time in the zset ``fixq:notify:due``: that zset, not an RQ
 queue, is the delivery queue, because RQ 3.0 schedules delayed retries only
 in workers started with its scheduler.  Each worker process is to run one
-:class:`Notifier` thread beside its reaper (started in
+:class:`service.notifier.Notifier` thread beside its reaper (started in
 ``service.task.run_worker``; any number may run).  A notifier claims due
 deliveries (a Lua script moves the
 due time ahead by :data:`CLAIM_S`, so a delivery whose notifier died becomes
-due again), makes one attempt each, and on a connection error, a timeout or a
+due again), makes one attempt each, a few targets at once with a small cap
+per target (``notify_workers``, ``notify_per_target``), and on a connection error, a timeout or a
 non-2xx answer schedules the next attempt ``notify_retry_delays_s[n - 1]``
 seconds later, up to ``notify_max_attempts`` attempts.  A target refused by
 :func:`check_target` at delivery is not retried.  Deliveries never run on the
@@ -89,10 +91,8 @@ from typing import TYPE_CHECKING, Any
 
 import httpx
 import orjson
-import redis
 
 from service._formats import iso_utc
-from service._periodic import PeriodicThread
 from worker.errors import InvalidDocument
 
 if TYPE_CHECKING:
@@ -104,16 +104,18 @@ __all__ = [
     "EVENT",
     "METADATA_ADDRESSES",
     "SIGNATURE_TOLERANCE_S",
-    "Notifier",
     "Target",
     "address_refusal",
     "check_target",
+    "claim_due",
+    "defer",
     "deliver",
     "deliver_due",
     "delivery_status",
     "resolve_host",
     "schedule",
     "sign",
+    "target_of",
     "verify",
 ]
 
@@ -157,11 +159,17 @@ def resolve_host(host: str, port: int) -> list[ADDRESS]:
 
 def address_refusal(address: ADDRESS, *, allow_private: bool = False) -> str | None:
     """Why a webhook may not be sent to ``address`` (None: it may)."""
-    embedded = None
     if isinstance(address, ipaddress.IPv6Address):
         embedded = address.ipv4_mapped or address.sixtofour
-    if embedded is not None:
-        return address_refusal(embedded, allow_private=allow_private)
+        if embedded is not None:
+            return address_refusal(embedded, allow_private=allow_private)
+        # Teredo (2001::/32) carries the server's IPv4 address and the
+        # client's (inverted); traffic to it may reach either, so both are
+        # judged, and then the IPv6 address itself.
+        for inner in address.teredo or ():
+            reason = address_refusal(inner, allow_private=allow_private)
+            if reason is not None:
+                return f"{reason} (inside the Teredo address {address})"
     if address in METADATA_ADDRESSES:
         return "a cloud metadata address"
     if address.is_unspecified:
@@ -382,16 +390,38 @@ def delivery_status(store: JobStore, job_id: str) -> dict[str, Any] | None:
 
 
 def deliver_due(store: JobStore, *, limit: int = DUE_BATCH) -> int:
-    """Claim and attempt up to ``limit`` due deliveries; returns how many were attempted."""
-    claim = store.redis.register_script(_CLAIM)
+    """Claim and attempt up to ``limit`` due deliveries one after another; how many were attempted."""
     attempted = 0
     while attempted < limit:
-        member = claim(keys=[_due_key(store)], args=[int(time.time() * 1000), int(CLAIM_S * 1000)])
-        if member is None:
+        job_id = claim_due(store)
+        if job_id is None:
             break
-        deliver(store, member.decode())
+        deliver(store, job_id)
         attempted += 1
     return attempted
+
+
+def claim_due(store: JobStore) -> str | None:
+    """Claim the earliest due delivery for :data:`CLAIM_S` seconds; its job id (None: nothing is due)."""
+    claim = store.redis.register_script(_CLAIM)
+    member = claim(keys=[_due_key(store)], args=[int(time.time() * 1000), int(CLAIM_S * 1000)])
+    return None if member is None else member.decode()
+
+
+def defer(store: JobStore, job_id: str, delay_s: float) -> None:
+    """Make a claimed, unattempted delivery due again ``delay_s`` seconds from now."""
+    store.redis.zadd(_due_key(store), {job_id: int((time.time() + delay_s) * 1000)}, xx=True)
+
+
+def target_of(store: JobStore, job_id: str) -> str:
+    """The target (``host:port``) a delivery goes to; a malformed URL is a target of its own."""
+    url = store.redis.hget(_key(store, job_id), "url")
+    text = url.decode(errors="replace") if url else ""
+    try:
+        parts = urllib.parse.urlsplit(text)
+        return f"{(parts.hostname or '').lower()}:{parts.port or parts.scheme}"
+    except ValueError:
+        return text
 
 
 def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.time) -> str:
@@ -483,26 +513,3 @@ def _post(target: Target, body: bytes, headers: dict[str, str], timeout_s: float
 
 def _bracketed(host: str) -> str:
     return f"[{host}]" if ":" in host else host
-
-
-
-
-class Notifier(PeriodicThread):
-    """A daemon thread that delivers due webhooks (:func:`deliver_due`) until stopped.
-
-    Every worker process runs one beside its reaper; they share the work
-    through the claim script, so any number may run.
-    """
-
-    name = "fixq-notifier"
-
-    def __init__(self, store: JobStore, *, poll_s: float | None = None) -> None:
-        super().__init__(poll_s if poll_s is not None else store.settings.notify_poll_s)
-        self.store = store
-
-    def run_once(self) -> bool:
-        try:
-            return deliver_due(self.store) >= DUE_BATCH
-        except redis.RedisError:
-            logger.warning("notifier: Redis unavailable; trying again", exc_info=True)
-            return False

@@ -11,7 +11,7 @@ STOP_TIMEOUT_S = 10.0
 """Seconds a process group has after SIGTERM before it gets SIGKILL."""
 WORKER_LAUNCH = (
     "from service.store import JobStore\n"
-    "from service.webhooks import Notifier\n"
+    "from service.notifier import Notifier\n"
     "from service.task import run_worker\n"
     "Notifier(JobStore.from_settings()).start()\n"
     "run_worker()\n"

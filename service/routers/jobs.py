@@ -13,7 +13,8 @@ from __future__ import annotations
 
 import time
 import zlib
-from collections.abc import AsyncIterator
+from collections.abc import AsyncIterator, Callable
+from functools import partial
 from typing import Annotated, Any, Literal
 
 import anyio
@@ -23,12 +24,13 @@ from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, ConfigDict
 
 from service import webhooks
-from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_key_of
+from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_key_of, current_owner
 from service.keys import ApiKey
 from service.limits import ActiveJobs, check_problem_size, quota_for
 from service.problems import Problem
 from service.resubmission import IdempotencyKeys, SolvedJobs, with_reuse_fields
 from service.settings import Settings
+from service.stopping import STOPPING
 from service.store import TERMINAL_STATES, JobStore, is_job_id
 from service.submission import admit_submission, admitted_summary
 from service.tables import csv_chunks
@@ -51,6 +53,8 @@ SSE_KEEPALIVE_S = 15.0
 """Seconds of silence after which a live log sends a comment line, so proxies keep it open."""
 SSE_BATCH = 500
 """Most log entries read from Redis per poll of a live log (entries)."""
+SSE_KEY_CHECK_S = 2.0
+"""Seconds between two checks, inside a live log, that the caller's key is still valid (revoked: it ends)."""
 
 MAX_LOG_INDEX = 10**12
 """Largest log index a client may name (Redis list indices are 64-bit)."""
@@ -163,7 +167,8 @@ def submit_job(
             return with_reuse_fields(store, [found])[0]
         claim = found
     try:
-        record, reused = _create(raw, owner, api_key_of(request), store, settings, fresh=fresh)
+        job_id = claim.job_id if claim is not None else None
+        record, reused = _create(raw, owner, api_key_of(request), store, settings, fresh=fresh, job_id=job_id)
     except BaseException:
         if claim is not None:
             idempotency.abandon(claim)
@@ -177,9 +182,11 @@ def submit_job(
 
 
 def _create(
-    raw: dict[str, Any], owner: Caller, key: ApiKey | None, store: JobStore, settings: Settings, *, fresh: bool
-) -> tuple[dict[str, Any], bool]:
-    """Admit ``raw`` and make its job: (record, True) for a reused solve, (record, False) for a queued one."""
+    raw: dict[str, Any], owner: Caller, key: ApiKey | None, store: JobStore, settings: Settings, *, fresh: bool,
+    job_id: str | None = None,
+) -> tuple[dict[str, Any], bool]:  # fmt: skip
+    """Admit ``raw`` and make its job (with ``job_id``, an idempotency claim's, if given): (record, True) for a
+    reused solve, (record, False) for a queued one."""
     admitted = admit_submission(raw, settings, store, may_see=owner.may_see)
     quota = quota_for(settings, owner.owner, key)
     check_problem_size(quota, admitted.estimate)
@@ -188,7 +195,7 @@ def _create(
     unqueued = None
     earlier = None if fresh else solved.find(owner.owner, summary["document_hash"])
     if earlier is not None:
-        record, reused = solved.create_reused(raw, earlier, owner=owner.owner, **summary)
+        record, reused = solved.create_reused(raw, earlier, owner=owner.owner, job_id=job_id, **summary)
         if reused:
             if raw.get("notify") is not None:
                 webhooks.schedule(store, record["id"])
@@ -204,7 +211,7 @@ def _create(
         raise
     try:
         if unqueued is None:
-            record = store.create_job(raw, owner=owner.owner, **summary)
+            record = store.create_job(raw, owner=owner.owner, job_id=job_id, **summary)
         else:
             solved.enqueue(unqueued)
             record = unqueued
@@ -316,8 +323,9 @@ async def get_log(
     await anyio.to_thread.run_sync(_job_or_404, store, job_id, owner)
     if "text/event-stream" in request.headers.get("accept", ""):
         after = min(int(last_event_id), MAX_LOG_INDEX) if last_event_id and last_event_id.isdigit() else 0
+        key_valid = partial(_key_still_valid, request, settings) if settings.auth else None
         return StreamingResponse(
-            _live_log(store, job_id, after, settings.sse_poll_s),
+            _live_log(store, job_id, after, settings.sse_poll_s, key_valid),
             media_type="text/event-stream",
             headers={"Cache-Control": "no-store", "X-Accel-Buffering": "no"},
         )
@@ -345,8 +353,25 @@ def _poll_log(store: JobStore, job_id: str, cursor: int) -> tuple[list[bytes], i
     return rows, int(length), state.decode() if state is not None else None
 
 
-async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> AsyncIterator[bytes]:
-    """SSE: ``event: entry`` per log entry (``id:`` its iteration), then ``event: end``."""
+def _key_still_valid(request: Request, settings: Settings) -> bool:
+    """True while the key that opened ``request`` still authenticates (the one key check, run again)."""
+    try:
+        current_owner(request, settings)
+    except Problem:
+        return False
+    return True
+
+
+async def _live_log(
+    store: JobStore, job_id: str, after: int, poll_s: float, key_valid: Callable[[], bool] | None = None
+) -> AsyncIterator[bytes]:
+    """SSE: ``event: entry`` per log entry (``id:`` its iteration), then ``event: end``.
+
+    The stream also ends, without ``end``, when the API is stopping (the
+    client reconnects with ``Last-Event-ID``), and with ``event: error`` (a
+    401 problem) once ``key_valid``, asked every :data:`SSE_KEY_CHECK_S`
+    seconds, says the caller's key was revoked.
+    """
     # Entries come in iteration order, at most one per iteration, and skipping
     # what was sent copes with a log trimmed back to a checkpoint and regrown.
     # The bounded log (worker.convergence_log) also removes entries: at most
@@ -354,8 +379,8 @@ async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> 
     # So each poll re-reads that many entries before the cursor, and reads
     # from the start again when even the first of those was not sent yet.
     cursor, sent = after, after
-    started = last_write = time.monotonic()
-    while True:
+    started = last_write = key_checked = time.monotonic()
+    while not STOPPING.is_set():
         start = max(0, cursor - KEEP_LATEST - 1)
         rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)
         if start and rows and _iteration_of_row(rows[0], sent) > sent:
@@ -384,6 +409,12 @@ async def _live_log(store: JobStore, job_id: str, after: int, poll_s: float) -> 
         if now - last_write >= SSE_KEEPALIVE_S:
             last_write = now
             yield b": keepalive\n\n"
+        if key_valid is not None and now - key_checked >= SSE_KEY_CHECK_S:
+            key_checked = now
+            if not await anyio.to_thread.run_sync(key_valid):
+                problem = {"status": 401, "title": "unauthorized", "detail": "the key was revoked"}
+                yield b"event: error\ndata: " + orjson.dumps(problem) + b"\n\n"
+                return
         await anyio.sleep(min(poll_s, SSE_FIRST_POLL_S + (now - started) * SSE_POLL_GROWTH))
 
 

@@ -32,6 +32,7 @@ from service.sweeps import (
     load_sweep,
     sweep_view,
 )
+from service.tables import csv_text
 
 __all__ = ["router"]
 
@@ -185,15 +186,15 @@ def _csv(paths: list[str], rows: list[dict[str, Any]]) -> str:
     mean_names = list(dict.fromkeys(name for row in rows for name in (row.get("means") or {})))
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
-    writer.writerow(["index", *paths, "job", "state", "status", "iterations", "error_bound",
-                     *(f"mean.{name}" for name in mean_names), "error"])  # fmt: skip
+    writer.writerow([csv_text(name) for name in ["index", *paths, "job", "state", "status", "iterations",
+                     "error_bound", *(f"mean.{name}" for name in mean_names), "error"]])  # fmt: skip
     for row in rows:
         means = row.get("means") or {}
         error = row.get("error") or {}
         writer.writerow([
-            row["index"], *(_cell(row["values"][path]) for path in paths), row["job"] or "", row["state"],
-            row["status"] or "", _cell(row["iterations"]), _cell(row["error_bound"]),
-            *(_cell(means.get(name)) for name in mean_names), error.get("detail") or error.get("title") or "",
+            row["index"], *(_cell(row["values"][path]) for path in paths), *map(_cell, (row["job"] or "",
+            row["state"], row["status"] or "")), _cell(row["iterations"]), _cell(row["error_bound"]),
+            *(_cell(means.get(name)) for name in mean_names), _cell(error.get("detail") or error.get("title") or ""),
         ])  # fmt: skip
     return buffer.getvalue()
 
@@ -205,4 +206,4 @@ def _cell(value: Any) -> Any:
         return orjson.dumps(value).decode()
     if isinstance(value, float):
         return repr(value)
-    return value
+    return csv_text(value)

@@ -8,10 +8,10 @@ import redis
 from fastapi import APIRouter, Request, Response
 from fastapi.responses import JSONResponse
 from prometheus_client import CONTENT_TYPE_LATEST, generate_latest
-from rq import Worker
 
 from service.admission import admit
 from service.deps import JsonObject, Owner, SettingsDep, StoreDep
+from service.liveness import live_workers
 from worker.document import document_hash, json_schema
 
 __all__ = ["router"]
@@ -40,11 +40,11 @@ def get_schema() -> Response:
 
 @router.get("/healthz", tags=["system"])
 def health(store: StoreDep) -> JSONResponse:
-    """Liveness and Redis reachability: 200 when Redis answers, else 503; `workers` counts live RQ workers."""
+    """Liveness and Redis reachability: 200 when Redis answers, else 503; `workers` counts live workers."""
     if not store.ping():
         return JSONResponse({"status": "unavailable", "redis": "unreachable"}, status_code=503)
     try:
-        workers = Worker.count(connection=store.redis)
+        workers = live_workers(store)
     except redis.RedisError:
         workers = None
     return JSONResponse({"status": "ok", "redis": "ok", "workers": workers})

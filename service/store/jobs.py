@@ -84,11 +84,15 @@ class JobStore(ExecutionWrites):
         priority: str | None = None,
         idempotency_key: str | None = None,
         enqueue: bool = True,
+        job_id: str | None = None,
     ) -> dict[str, Any]:
-        """Store a validated document as a new ``queued`` job and enqueue it."""
+        """Store a validated document as a new ``queued`` job and enqueue it.
+
+        ``job_id``: the id to use (one an ``Idempotency-Key`` claim already names), else a fresh one.
+        """
         priority = priority or raw_document.get("priority") or DEFAULT_PRIORITY
         rq_queues.queue_name(priority)
-        job_id = secrets.token_hex(8)
+        job_id = job_id or secrets.token_hex(8)
         now_ms = int(time.time() * 1000)
         rq_job_id = rq_queues.execution_id(job_id, 1)
         fields: dict[str, str] = {

@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import threading
 import time
 from collections.abc import Iterator
 from datetime import datetime
@@ -104,6 +105,31 @@ def test_without_a_cap_of_its_own_an_owner_runs_on_half_the_workers(store: JobSt
     assert picked == [alice[0], bob[0], alice[1]]
     assert dispatch.pick(store, take_ticket(store)) == ("capped", None)
     assert store.get_job(alice[2])["state"] == "queued"
+
+
+def test_a_worker_waits_a_little_while_every_owner_is_at_its_cap_then_puts_its_ticket_back(
+    redis_client: redis.Redis, settings: Settings, keys: KeyStore
+) -> None:
+    store = JobStore(redis_client, settings.model_copy(update={"dispatch_wait_s": 0.3}))
+    keys.add("alice", limits={"max_running_jobs": 1})
+    alice = submit(store, "alice", 2)
+    start(store, dispatch.pick(store, take_ticket(store))[1])
+    ticket = take_ticket(store)
+    began = time.monotonic()
+    assert dispatch.next_job(store, ticket) is None
+    assert 0.3 <= time.monotonic() - began < 2.0
+    again = f"{alice[1]}-2"
+    assert store.redis.lrange(rq_queues.queue_key("normal"), 0, -1) == [again.encode()]
+    assert store.redis.hget(store.keys.job(alice[1]), "rq_job") == again.encode()
+    # A job of another owner wakes a waiting worker at once.
+    waited: list[str | None] = []
+    patient = JobStore(redis_client, settings.model_copy(update={"dispatch_wait_s": 5.0}))
+    waiter = threading.Thread(target=lambda: waited.append(dispatch.next_job(patient, take_ticket(patient))))
+    waiter.start()
+    time.sleep(0.1)
+    [bob] = submit(store, "bob", 1)
+    waiter.join(5)
+    assert waited == [bob]
 
 
 def test_a_job_canceled_in_its_queue_is_never_picked(roomy: JobStore) -> None:

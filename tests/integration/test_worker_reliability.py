@@ -30,10 +30,11 @@ import redis
 from rq.job import Job
 
 from service import queue as rq_queues
+from service.checkpoints import decode_checkpoint, encode_checkpoint
 from service.reaper import reap
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
-from service.task import decode_checkpoint, encode_checkpoint, run_job
+from service.task import run_job
 
 REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}

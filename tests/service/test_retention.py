@@ -15,8 +15,9 @@ from service.app import create_app
 from service.embedded_redis import EmbeddedRedis
 from service.reaper import reap
 from service.resubmission import SolvedJobs
-from service.settings import Settings
+from service.settings import Settings, get_settings
 from service.store import JobStore
+from service.task import _Execution, run_job
 from tests._documents import print_shop
 from tests.service._http import assert_problem, make_client, run_inline
 from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, KEEP_SAMPLED, kept
@@ -267,6 +268,87 @@ def test_a_script_refused_by_a_full_redis_raises_out_of_memory(small_redis: redi
     store = JobStore(small_redis, Settings(redis_url="redis://unused"))
     with pytest.raises(redis.exceptions.OutOfMemoryError):
         store.create_job(print_shop(), owner="lab", estimate={}, document_hash="h", enqueue=False)
+
+
+def test_a_worker_rides_through_a_full_redis_and_writes_its_result_once_there_is_room(
+    tmp_path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    refused = threading.Event()
+    finish = JobStore.finish
+
+    def watched_finish(self: JobStore, *args, **kwargs):
+        try:
+            return finish(self, *args, **kwargs)
+        except redis.exceptions.OutOfMemoryError:
+            refused.set()
+            raise
+
+    monkeypatch.setattr(JobStore, "finish", watched_finish)
+    with EmbeddedRedis(tmp_path / "full") as server:
+        monkeypatch.setenv("FIXQ_REDIS_URL", server.url)
+        get_settings.cache_clear()
+        client = redis.Redis.from_url(server.url)
+        stop = threading.Event()
+        outcome: dict = {}
+        try:
+            store = JobStore(client, get_settings())
+            document = print_shop()
+            document["solver"] = {"method": "value_iteration", "tolerance": 1e-300, "max_iterations": 40_000}
+            job_id = store.create_job(document, owner="lab", estimate={}, document_hash="h", enqueue=False)["id"]
+            client.config_set("maxmemory-policy", "noeviction")
+
+            def keep_full() -> None:
+                while store.get_job(job_id)["state"] == "queued":
+                    time.sleep(0.001)
+                client.config_set("maxmemory", client.info("memory")["used_memory"] + 20_000)
+                n = 0
+                while not stop.is_set():
+                    try:
+                        client.set(f"filler:{n}", b"x" * 200)
+                        n += 1
+                    except redis.exceptions.OutOfMemoryError:
+                        time.sleep(0.002)
+
+            filler = threading.Thread(target=keep_full)
+            execution = threading.Thread(target=lambda: outcome.update(run_job(job_id)))
+            filler.start()
+            execution.start()
+            # The solve ends while Redis is full: its result write is refused, and retried.
+            assert refused.wait(60)
+            time.sleep(0.5)
+            assert execution.is_alive() and store.get_job(job_id)["state"] == "running"
+        finally:
+            stop.set()
+            client.config_set("maxmemory", 0)
+            for thread in (filler, execution):
+                thread.join(60)
+            client.close()
+            get_settings.cache_clear()
+    assert outcome["outcome"] == "done"
+
+
+def test_log_entries_held_back_while_redis_refuses_them_stay_bounded(
+    store: JobStore, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    store = JobStore(store.redis, store.settings.model_copy(update={"progress_interval_s": 0.0}))
+    job_id = new_job(store)
+    execution = _Execution(store, job_id)
+    assert store.claim(job_id, execution.token, worker="w") == "ok"
+    write_log = JobStore.write_log
+
+    def full(*args, **kwargs):
+        raise redis.exceptions.OutOfMemoryError("OOM command not allowed when used memory > 'maxmemory'.")
+
+    monkeypatch.setattr(JobStore, "write_log", full)
+    last = KEEP_FIRST + 10 * KEEP_SAMPLED
+    for i in range(1, last + 1):
+        execution.on_progress({"iteration": i, "distance": 1.0})
+    assert len(execution._buffer) <= KEEP_FIRST + KEEP_SAMPLED + KEEP_LATEST
+    monkeypatch.setattr(JobStore, "write_log", write_log)
+    execution.flush()
+    assert [e["iteration"] for e in store.get_log(job_id, limit=10_000)] == [
+        i for i in range(1, last + 1) if kept(i, last)
+    ]
 
 
 def test_the_log_endpoint_reports_dropped_entries(client: httpx.Client, store: JobStore) -> None:

@@ -25,6 +25,7 @@ import redis
 from service import webhooks
 from service.deps import Caller
 from service.embedded_redis import EmbeddedRedis
+from service.notifier import Notifier
 from service.settings import Settings
 from service.store import JobStore
 from service.submission import submit
@@ -353,3 +354,49 @@ def test_a_real_worker_notifies_a_loopback_receiver_and_retries_after_a_500(
         assert payload["job"]["status"] == "converged" and payload["job"]["iterations"] > 0
     status = webhooks.delivery_status(store, record["id"])
     assert status["state"] == "delivered" and status["attempts"] == 2 and status["last_status"] == 204
+
+
+def teredo(server: str, client: str) -> str:
+    """The Teredo address (2001::/32) of ``server`` and ``client``: server in bits 32-63, client inverted last."""
+    inverted = int(ipaddress.IPv4Address(client)) ^ 0xFFFFFFFF
+    return str(ipaddress.IPv6Address((0x20010000 << 96) | (int(ipaddress.IPv4Address(server)) << 64) | inverted))
+
+
+@pytest.mark.parametrize(
+    ("address", "reason"),
+    [
+        (teredo("127.0.0.1", "93.184.215.14"), "loopback"),
+        (teredo("93.184.215.14", "10.0.0.1"), "private"),
+        (teredo("93.184.215.14", "169.254.169.254"), "metadata"),
+        (teredo("169.254.10.10", "93.184.215.14"), "link-local"),
+    ],
+)
+def test_teredo_addresses_are_judged_by_their_embedded_ipv4(settings: Settings, address: str, reason: str) -> None:
+    everything = settings.model_copy(update={"notify_allow_hosts": "0.0.0.0/0, ::/0"})
+    with pytest.raises(InvalidDocument) as caught:
+        webhooks.check_target(f"http://[{address}]:8080/hook", everything)
+    assert reason in caught.value.errors[0]["message"] and "Teredo" in caught.value.errors[0]["message"]
+    relaxed = everything.model_copy(update={"notify_allow_private": True})
+    if reason in ("metadata", "link-local"):
+        with pytest.raises(InvalidDocument, match=reason):
+            webhooks.check_target(f"http://[{address}]:8080/hook", relaxed)
+
+
+def test_a_slow_receiver_does_not_delay_another_targets_delivery(redis_client: redis.Redis, settings: Settings) -> None:
+    store = JobStore(redis_client, loopback_settings(settings, notify_timeout_s=10.0, notify_per_target=2))
+    notifier = Notifier(store, poll_s=0.05)
+    with Receiver([204], delay_s=3.0) as slow, Receiver([204]) as fast:
+        for _ in range(3):
+            webhooks.schedule(store, finished_job(store, slow.url))
+        time.sleep(0.01)
+        webhooks.schedule(store, finished_job(store, fast.url))
+        started = time.monotonic()
+        notifier.start()
+        try:
+            (request,) = fast.wait_for(1, 10)
+            assert request["at"] - started < 1.5
+            assert len(slow.requests) == 0  # the slow receiver is still sleeping on its first two
+            assert len(slow.wait_for(3, 15)) == 3
+        finally:
+            notifier.stop()
+            assert notifier.pool.wait_idle(15)
