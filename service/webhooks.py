@@ -65,12 +65,12 @@ queue, is the delivery queue, because RQ 3.0 schedules delayed retries only
 in workers started with its scheduler.  Each worker process is to run one
 :class:`service.notifier.Notifier` thread beside its reaper (started in
 ``service.task.run_worker``; any number may run).  A notifier claims due
-deliveries (a Lua script moves the
-due time ahead by :data:`CLAIM_S`, so a delivery whose notifier died becomes
-due again), makes one attempt each, a few targets at once with a small cap
-per target (``notify_workers``, ``notify_per_target``), and on a connection error, a timeout or a
-non-2xx answer schedules the next attempt ``notify_retry_delays_s[n - 1]``
-seconds later, up to ``notify_max_attempts`` attempts.  A target refused by
+deliveries (a Lua script moves the due time ahead by :data:`CLAIM_S`, so a
+delivery whose notifier died becomes due again) and makes one attempt each,
+a few at once with a small cap per target (``notify_workers``,
+``notify_per_target``); on a connection error, a timeout or a non-2xx answer
+it schedules the next attempt ``notify_retry_delays_s[n - 1]`` seconds
+later, up to ``notify_max_attempts`` attempts.  A target refused by
 :func:`check_target` at delivery is not retried.  Deliveries never run on the
 solve path: the worker's executions only write the Redis entry.
 """

@@ -207,7 +207,7 @@ def test_a_worker_recycles_once_its_kernel_budget_is_spent(tmp_path: Path) -> No
         )  # fmt: skip
         records = [store.get_job(first), store.get_job(second)]
         assert [record["state"] for record in records] == ["done", "done"], records
-        ran_on = {record["worker"] for record in records}
+        ran_on = {store.redis.hget(store.keys.job(job_id), "worker").decode() for job_id in (first, second)}
         assert len(ran_on) == 2, ran_on
         assert supervisor.pid not in {int(worker.rsplit(":", 1)[1]) for worker in ran_on}
         assert supervisor.poll() is None
@@ -216,3 +216,16 @@ def test_a_worker_recycles_once_its_kernel_budget_is_spent(tmp_path: Path) -> No
             fleet.close()
         finally:
             print(fleet.logs())
+
+
+def test_a_worker_started_while_redis_is_down_waits_for_it(fleet: Fleet) -> None:
+    fleet.crash_redis()
+    supervisor = fleet.start_worker()
+    # Its RQ worker process cannot start without Redis: it exits, and is started again with backoff.
+    time.sleep(4)
+    assert supervisor.poll() is None
+    fleet.restart_redis()
+    job_id = fleet.submit(machine_shop())
+    wait_until(lambda: (fleet.store.get_job(job_id) or {}).get("state") == "done", 30, "the job done")
+    assert live_workers(fleet.store) == 1
+    assert "exited unexpectedly" in fleet.logs()
