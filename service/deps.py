@@ -18,7 +18,7 @@ import redis
 from fastapi import Depends, Request
 
 from service.bodylimit import check_inline_values
-from service.keys import ApiKey, KeyStore
+from service.keys import ANONYMOUS, ApiKey, KeyStore
 from service.problems import Problem
 from service.settings import Settings
 from service.store import JobStore
@@ -39,8 +39,6 @@ __all__ = [
     "read_json_object",
 ]
 
-ANONYMOUS = "anonymous"
-"""Owner name of every job submitted while auth is off."""
 SESSION_COOKIE = "fixq_session"
 """Cookie in which the dashboard keeps a signed-in browser's key (HttpOnly, SameSite=Strict)."""
 

@@ -26,7 +26,8 @@ order of pending jobs and lets the RQ queues carry *tickets*:
 
 The cap on one owner's running jobs is ``key_max_running_jobs`` or the
 key's own ``max_running_jobs`` (``service.keys``); 0 means half the workers
-registered with RQ, rounded up.  An owner's running count is its picked jobs
+registered with RQ, rounded up.  With auth off every job belongs to the one
+anonymous owner, who is not capped: a cap would only leave workers idle.  An owner's running count is its picked jobs
 that are ``running``, plus those picked within the last ``lease_s`` that are
 still ``queued`` (taken, about to be claimed); the others drop out as the
 count is taken.
@@ -48,7 +49,7 @@ from typing import TYPE_CHECKING
 import redis
 from rq.worker import BaseWorker
 
-from service.keys import KeyStore
+from service.keys import ANONYMOUS, KeyStore
 from service.queue import PRIORITIES, WAKE_BACKLOG, DispatchKeys, enqueue_execution
 
 if TYPE_CHECKING:
@@ -70,11 +71,14 @@ _WAKE_POLL_S = 1.0
 
 # ARGV 1 ticket, 2 now ms, 3 grace ms, 4 cap of an owner without its own, 5 half the workers (a key's
 # own 0), 6 job-hash prefix, 7 lease prefix, 8 picked prefix, 9 api key index, 10 api key record
-# prefix, 11 tickets hash, 12 ring prefix, 13 pending prefix, 14.. priorities in order.
+# prefix, 11 tickets hash, 12 ring prefix, 13 pending prefix, 14 the anonymous owner (uncapped),
+# 15.. priorities in order.
 # Returns {'job', id} | {'capped'} | {'empty'}.
 _PICK = """
 local ticket, now, grace = ARGV[1], tonumber(ARGV[2]), tonumber(ARGV[3])
 local function cap_of(owner)
+  -- With auth off every job is the one anonymous owner's: a cap would only idle workers.
+  if owner == ARGV[14] then return math.huge end
   local digest = redis.call('HGET', ARGV[9], owner)
   local own = digest and tonumber(redis.call('HGET', ARGV[10] .. digest, 'max_running_jobs'))
   if not own then return tonumber(ARGV[4]) end
@@ -113,7 +117,7 @@ local function take(id, owner)
   return {'job', id}
 end
 local capped = false
-for p = 14, #ARGV do
+for p = 15, #ARGV do
   local ring = ARGV[12] .. ARGV[p]
   for _, owner in ipairs(redis.call('LRANGE', ring, 0, -1)) do
     local pending = ARGV[13] .. ARGV[p] .. ':' .. owner
@@ -174,7 +178,7 @@ def pick(store: JobStore, ticket: str) -> tuple[str, str | None]:
     reply = store.redis.register_script(_PICK)(
         args=[ticket, int(time.time() * 1000), int(store.settings.lease_s * 1000), cap, half,
               store.keys.job(""), store.keys.lease(""), keys.picked_prefix, api_keys.index, api_keys.record_key(""),
-              keys.tickets, keys.ring_prefix, keys.pending_prefix, *PRIORITIES],
+              keys.tickets, keys.ring_prefix, keys.pending_prefix, ANONYMOUS, *PRIORITIES],
     )  # fmt: skip
     outcome = reply[0].decode()
     return outcome, (reply[1].decode() if outcome == "job" else None)

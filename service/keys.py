@@ -45,6 +45,7 @@ import redis
 from service._formats import iso_utc
 
 __all__ = [
+    "ANONYMOUS",
     "KEY_LIMITS",
     "KEY_PREFIX",
     "RESERVED_NAMES",
@@ -60,7 +61,10 @@ KEY_PREFIX = "fxq_"
 """What every fixq key starts with, so that one pasted into the wrong place is recognisable."""
 KEY_TOKEN_BYTES = 32
 """Random bytes in a key (256 bits)."""
-RESERVED_NAMES = frozenset({"anonymous"})
+ANONYMOUS = "anonymous"
+"""Owner name of every job submitted while auth is off (no key can take it)."""
+
+RESERVED_NAMES = frozenset({ANONYMOUS})
 """Names no key may take: ``anonymous`` owns the jobs submitted while auth was off."""
 KEY_LIMITS: dict[str, type] = {
     "max_active_jobs": int,

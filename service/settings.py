@@ -172,7 +172,8 @@ class Settings(BaseSettings):
         0,
         ge=0,
         description="Most jobs of one key that workers run at once (count; 0: half the workers registered, "
-        "rounded up); the key's other jobs wait while workers serve the other keys in turn. A key may carry "
+        "rounded up; not applied with auth off, where every job is one owner's); the key's other jobs wait while "
+        "workers serve the other keys in turn. A key may carry "
         "its own cap (`fixq keys add NAME --max-running-jobs N`).",
     )
     dispatch_wait_s: float = Field(

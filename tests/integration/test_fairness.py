@@ -22,7 +22,7 @@ import redis
 
 from service import dispatch
 from service import queue as rq_queues
-from service.keys import KeyStore
+from service.keys import ANONYMOUS, KeyStore
 from service.reaper import reap
 from service.settings import Settings
 from service.store import JobStore
@@ -105,6 +105,15 @@ def test_without_a_cap_of_its_own_an_owner_runs_on_half_the_workers(store: JobSt
     assert picked == [alice[0], bob[0], alice[1]]
     assert dispatch.pick(store, take_ticket(store)) == ("capped", None)
     assert store.get_job(alice[2])["state"] == "queued"
+
+
+def test_with_auth_off_the_one_anonymous_owner_is_not_capped(store: JobStore) -> None:
+    anonymous = submit(store, ANONYMOUS, 4)
+    store.redis.sadd("rq:workers", "rq:worker:one", "rq:worker:two", "rq:worker:three", "rq:worker:four")
+    picked = [dispatch.pick(store, take_ticket(store))[1] for _ in range(4)]
+    for job in picked:
+        start(store, job)
+    assert picked == anonymous
 
 
 def test_a_worker_waits_a_little_while_every_owner_is_at_its_cap_then_puts_its_ticket_back(

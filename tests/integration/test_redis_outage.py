@@ -6,7 +6,7 @@ so that it can SIGKILL that server and start it again on the same data
 directory without touching the session's.  Leases, reaper passes, restart
 waits and liveness beacons are shortened through ``FIXQ_*`` variables.  The
 problems are invented (see ``tests/_documents.py`` and
-``tests/integration/test_worker_reliability.py``).
+``tests/_long_solves.py``).
 """
 
 from __future__ import annotations
@@ -29,8 +29,8 @@ from service.liveness import live_workers
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from tests._documents import LQ, grid_document, machine_shop
+from tests._long_solves import fleet_upkeep
 from tests._processes import stop_process_groups
-from tests.integration.test_worker_reliability import child_pids, slow_replacement
 from worker import solve
 
 REPO = Path(__file__).resolve().parents[2]
@@ -47,11 +47,13 @@ OUTAGE_S = 6.0
 
 
 def long_solve(seed: int) -> dict[str, Any]:
-    """A random replacement problem solved by 60,000 Bellman iterations: about 4 s, through the outage."""
-    document = slow_replacement(60_000, checkpoint_s=0.2, seed=seed)
-    document["solver"]["method"] = "value_iteration"
-    del document["solver"]["evaluation_steps"]
-    return document
+    """60,000 Bellman iterations: about 4 s of solving, through the outage."""
+    return fleet_upkeep(60_000, checkpoint_s=0.2, seed=seed)
+
+
+def child_pids(pid: int) -> list[int]:
+    """Children of ``pid`` (Linux /proc)."""
+    return [int(child) for child in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
 
 
 class Fleet:
@@ -133,7 +135,7 @@ def test_workers_ride_out_a_redis_crash_and_every_job_finishes_as_if_uninterrupt
         long_solve(seed=11),
         long_solve(seed=12),
         machine_shop(),
-        slow_replacement(40, checkpoint_s=0.2, seed=13),
+        fleet_upkeep(3_000, checkpoint_s=0.2, seed=13),
         machine_shop(discount=0.8),
     ]
     supervisors = [fleet.start_worker(), fleet.start_worker()]
