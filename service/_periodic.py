@@ -5,6 +5,8 @@ from __future__ import annotations
 import logging
 import threading
 
+import redis
+
 logger = logging.getLogger(__name__)
 
 
@@ -43,6 +45,9 @@ class PeriodicThread:
             again = False
             try:
                 again = self.run_once()
+            except redis.ConnectionError as exc:
+                # Redis is away (a restart, an outage): one line per pass, not a traceback.
+                logger.warning("%s pass failed: %s", self.name, exc)
             except Exception:
                 logger.exception("%s pass failed", self.name)
             if not again:

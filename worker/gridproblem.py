@@ -13,13 +13,14 @@ plain numpy reference they are tested against is :mod:`worker.reference`.
 from __future__ import annotations
 
 import math
+from collections.abc import Callable
 from types import ModuleType
 from typing import Any
 
 import numpy as np
 import scipy.sparse as sp
 
-from worker import _codegen, kernels
+from worker import _codegen, kernels, threadpool
 from worker.estimate import GridPlan
 from worker.feasibility import ModelData
 from worker.griddiagnostics import GridDiagnostics
@@ -39,7 +40,10 @@ class GridProblem(GridDiagnostics):
     ``plan`` (the :class:`~worker.estimate.GridPlan`), ``timings`` (seconds spent
     preparing tables and loading or compiling kernels), and
     ``bellman_step(..., exhaustive=True)``, the plain search over every
-    choice (the reference the exact block search is tested against).
+    choice (the reference the exact block search is tested against), and
+    ``threads``, the threads its exact Bellman steps and (from
+    ``THREAD_MIN_STEP_POINTS`` points) its evaluation steps run on, in row
+    blocks (:mod:`worker.threadpool`; the bits do not depend on it).
     """
 
     def __init__(
@@ -77,6 +81,7 @@ class GridProblem(GridDiagnostics):
         self._step_scratch: tuple[np.ndarray, np.ndarray] | None = None
         self._last_hinted: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
         self._slope_scratch: tuple[np.ndarray, np.ndarray, np.ndarray] | None = None
+        self.threads = threadpool.threads_for(self.n, data.n_choices)
         sizes = data.state_sizes
         self._strides = tuple(math.prod(sizes[t + 1 :]) for t in range(len(sizes)))  # of the flat grid-state index
 
@@ -120,7 +125,11 @@ class GridProblem(GridDiagnostics):
         out_bad = np.empty(self.n, dtype=np.int64)
         out_bad_choice = np.empty(self.n, dtype=np.int64)
         if self.reward_storage == "tables" or exhaustive:
-            k.bellman_full(EVt, self.discount, self._ctx, out_v, out_policy, out_bad, out_bad_choice)
+            self._in_blocks(
+                lambda start, stop: k.bellman_full(
+                    EVt, self.discount, self._ctx, out_v, out_policy, out_bad, out_bad_choice, start, stop
+                )
+            )
         else:
             guess = policy_guess
             if self.hints_active:
@@ -143,13 +152,20 @@ class GridProblem(GridDiagnostics):
             has_guess = guess is not None
             if guess is None:
                 guess = np.zeros(1, dtype=np.int64)
-            k.bellman_bnb(
-                EVt, self.discount, self._ctx, pyramid, levels, evmax, guess, has_guess, BNB_LEAF,
-                dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice,
+            self._in_blocks(
+                lambda start, stop: k.bellman_bnb(
+                    EVt, self.discount, self._ctx, pyramid, levels, evmax, guess, has_guess, BNB_LEAF,
+                    dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice, start, stop,
+                )
             )
         if self.reward_storage == "on_the_fly":
             self._last_exact = {"bad": out_bad, "bad_choice": out_bad_choice}
         return out_v, out_policy
+
+    def _in_blocks(self, step: Callable[[int, int], object]) -> None:
+        """``step(start, stop)`` over row blocks of the flat states, on ``threads`` threads."""
+        blocks = threadpool.row_blocks(self.n, self.threads * threadpool.BLOCKS_PER_THREAD if self.threads > 1 else 1)
+        threadpool.run_blocks(step, blocks, self.threads)
 
     def _pyramid_of(self, EVt: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         axis = self._layout.pyramid_axis
@@ -296,10 +312,45 @@ class GridProblem(GridDiagnostics):
         if self._step_scratch is None:
             self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
         EVt, spare = self._step_scratch
-        done, span = kernels.policy_steps(
-            reward, index, weight, self._data.transition, self.discount, out, int(steps), float(span_stop), EVt, spare
-        )
+        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
+            done, span = self._threaded_steps(reward, index, weight, out, int(steps), float(span_stop))
+        else:
+            done, span = kernels.policy_steps(
+                reward, index, weight, self._data.transition, self.discount, out, int(steps), float(span_stop),
+                EVt, spare,
+            )
         return out, int(done), float(span)
+
+    def _threaded_steps(
+        self, reward: np.ndarray, index: np.ndarray, weight: np.ndarray, v: np.ndarray, steps: int, span_stop: float
+    ) -> tuple[int, float]:
+        """:func:`worker.kernels.policy_steps` on ``threads`` threads: each step in two phases over blocks
+        of grid states (tomorrow's expected values, then today's values), with the same bits."""
+        EVt, spare = self._step_scratch
+        transition = self._data.transition
+        beta = self.discount
+        blocks = threadpool.row_blocks(self._data.n_grid, self.threads)
+        source, target = v, spare
+        done, span = 0, np.inf
+        while done < steps:
+            threadpool.run_blocks(
+                lambda start, stop: kernels.continuation_rows(transition, source, EVt, start, stop),
+                blocks,
+                self.threads,
+            )
+            ranges = threadpool.run_blocks(
+                lambda start, stop: kernels.policy_rows(reward, index, weight, EVt, beta, source, target, start, stop),
+                blocks,
+                self.threads,
+            )
+            span = max(high for _, high in ranges) - min(low for low, _ in ranges)
+            source, target = target, source
+            done += 1
+            if span <= span_stop:
+                break
+        if source is not v:
+            v[:] = source
+        return done, span
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
         """``r_σ``, shape (n,)."""
@@ -348,11 +399,11 @@ class GridProblem(GridDiagnostics):
             k.bellman_hinted(EVt, self.discount, self._ctx, bool(self.hints.monotone), bool(self.hints.concave),
                              empty_f, empty_i, empty_f)
         if self.reward_storage == "tables":
-            k.bellman_full(EVt, self.discount, self._ctx, empty_f, empty_i, empty_i, empty_i)
+            k.bellman_full(EVt, self.discount, self._ctx, empty_f, empty_i, empty_i, empty_i, 0, 0)
         else:
             pyramid, levels = np.zeros(1), np.zeros(2, dtype=np.int64)
             k.bellman_bnb(EVt, self.discount, self._ctx, pyramid, levels, np.zeros(EVt.shape[0]), empty_i, True,
-                          BNB_LEAF, pyramid, pyramid, np.zeros(3), empty_f, empty_i, empty_i, empty_i)
+                          BNB_LEAF, pyramid, pyramid, np.zeros(3), empty_f, empty_i, empty_i, empty_i, 0, 0)
         k.policy_nodes(
             empty_i,
             empty_i,
@@ -364,5 +415,9 @@ class GridProblem(GridDiagnostics):
             np.empty(0, dtype=np.bool_),
             np.empty(0, dtype=np.bool_),
         )
-        kernels.policy_steps(empty_f, np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes)),
-                             self._data.transition, self.discount, empty_f, 1, -np.inf, EVt, empty_f)
+        node_index, node_weight = np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes))
+        kernels.policy_steps(empty_f, node_index, node_weight, self._data.transition, self.discount, empty_f, 1,
+                             -np.inf, EVt, empty_f)
+        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
+            kernels.continuation_rows(self._data.transition, empty_f, EVt, 0, 0)
+            kernels.policy_rows(empty_f, node_index, node_weight, EVt, self.discount, empty_f, empty_f, 0, 0)

@@ -14,7 +14,10 @@ not depend on any document:
 * :func:`policy_value` and :func:`policy_csr` (numpy) — ``r_σ + β P_σ v``
   and the sparse ``P_σ`` of a fixed policy from its interpolation nodes;
 * :func:`policy_steps` (numba) — many Howard evaluation steps
-  ``v ← r_σ + β P_σ v`` in one call, without forming ``P_σ``.
+  ``v ← r_σ + β P_σ v`` in one call, without forming ``P_σ``;
+  :func:`continuation_rows` and :func:`policy_rows` (numba) — one such step
+  in two phases over a block of grid states, for row blocks run on several
+  threads (same bits as :func:`policy_steps`).
 
 The numba functions are compiled once per machine (``cache=True``); the rest
 is vectorised numpy, which needs no compilation at all.
@@ -38,8 +41,10 @@ from numba import njit
 
 __all__ = [
     "build_pyramid",
+    "continuation_rows",
     "locate_one",
     "policy_csr",
+    "policy_rows",
     "policy_steps",
     "policy_value",
     "pyramid_levels",
@@ -304,3 +309,60 @@ def policy_steps(
         for i in range(v.shape[0]):
             v[i] = spare[i]
     return done, span
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def continuation_rows(P: np.ndarray, v: np.ndarray, EVt: np.ndarray, start: int, stop: int) -> None:
+    """``EVt[z, x] = Σ_z' P[z, z'] v[x · n_shocks + z']`` for grid states ``x`` in ``[start, stop)``.
+
+    The first phase of an evaluation step over a block of grid states: each
+    entry is summed over ``z'`` in order from ``0.0``, skipping zero
+    probabilities, exactly as :func:`policy_steps` does, so the bits agree.
+    """
+    n_shocks = P.shape[0]
+    for z in range(n_shocks):
+        row = EVt[z]
+        for x in range(start, stop):
+            row[x] = 0.0
+        for zz in range(n_shocks):
+            p = P[z, zz]
+            if p != 0.0:
+                for x in range(start, stop):
+                    row[x] += p * v[x * n_shocks + zz]
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def policy_rows(
+    reward: np.ndarray,
+    node_index: np.ndarray,
+    node_weight: np.ndarray,
+    EVt: np.ndarray,
+    beta: float,
+    source: np.ndarray,
+    target: np.ndarray,
+    start: int,
+    stop: int,
+) -> tuple[float, float]:
+    """``target[i] = r[i] + β Σ_k w[i, k] EVt[z(i), node[i, k]]`` for grid states ``x`` in ``[start, stop)``.
+
+    The second phase of an evaluation step (after :func:`continuation_rows`
+    over every grid state), state by state as :func:`policy_steps` computes
+    it.  Returns ``(min, max)`` of the increment ``target − source`` over the
+    block: the minimum of the blocks' minima is the step's minimum, exactly.
+    """
+    n_shocks = EVt.shape[0]
+    n_nodes = node_index.shape[1]
+    low = np.inf
+    high = -np.inf
+    for x in range(start, stop):
+        for z in range(n_shocks):
+            i = x * n_shocks + z
+            expected = node_weight[i, 0] * EVt[z, node_index[i, 0]]
+            for k in range(1, n_nodes):
+                expected += node_weight[i, k] * EVt[z, node_index[i, k]]
+            value = reward[i] + beta * expected
+            step = value - source[i]
+            low = min(low, step)
+            high = max(high, step)
+            target[i] = value
+    return low, high

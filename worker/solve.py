@@ -287,8 +287,10 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
         warnings += simulation.pop("warnings", [])
+    euler = _euler_errors(doc, problem, outcome.policy, stationary, problem_diagnostics)
     diagnostics = {
         **problem_diagnostics,
+        **euler,
         "observed_rate": outcome.observed_rate,
         "warnings": warnings,
         "resumed_from_iteration": outcome.resumed_from_iteration,
@@ -318,6 +320,24 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
         "policy_index": policy_index,
         **tail,
     }
+
+
+def _euler_errors(
+    doc: Any, problem: CompiledProblem, policy: np.ndarray, stationary: dict[str, Any] | None,
+    problem_diagnostics: dict[str, Any],
+) -> dict[str, Any]:
+    """``{"euler_errors": ...}`` for the grid models :mod:`worker.euler` applies to; else ``{}``, with a note why."""
+    data = getattr(problem, "_data", None)
+    if doc.model.kind != "grid" or data is None:
+        return {}
+    from worker.euler import euler_report
+
+    choice = data.choices[0]
+    distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
+    errors, note = euler_report(data, doc.discount, problem.choice_values(policy)[choice], distribution)
+    if note is not None:
+        problem_diagnostics.setdefault("notes", []).append(note)
+    return {} if errors is None else {"euler_errors": _plain(errors)}
 
 
 def _plain(obj: Any) -> Any:

@@ -14,8 +14,10 @@ Public API (for the HTTP layer, the CLI and the dashboard)
 without touching Redis.
 
 * ``create_job(raw_document, *, owner, estimate, document_hash, priority=None,
-  idempotency_key=None, enqueue=True) -> record`` stores the record and the
-  document and enqueues the first execution (``service.queue``).  ``label``,
+  idempotency_key=None, enqueue=True, job_id=None) -> record`` stores the record
+  and the document and enqueues the first execution (``service.queue``); the
+  job gets ``job_id`` if given (an ``Idempotency-Key`` claim names it in
+  advance), else a fresh id.  ``label``,
   ``tags`` and ``priority`` are read from the document (``priority`` argument
   wins; default ``normal``).  With an ``idempotency_key`` already used by the
   same owner within ``idempotency_ttl_s``, nothing is created and that earlier

@@ -83,11 +83,7 @@ class Fleet:
 
     def crash_redis(self) -> None:
         """SIGKILL the server: no shutdown save, only what the append-only file already holds."""
-        process = self.server.process
-        assert process is not None
-        process.kill()
-        process.wait()
-        self.server.process = None
+        self.server.kill()
 
     def restart_redis(self) -> None:
         self.server.start()
@@ -231,3 +227,18 @@ def test_a_worker_started_while_redis_is_down_waits_for_it(fleet: Fleet) -> None
     wait_until(lambda: (fleet.store.get_job(job_id) or {}).get("state") == "done", 30, "the job done")
     assert live_workers(fleet.store) == 1
     assert "exited unexpectedly" in fleet.logs()
+
+
+def test_sigterm_stops_a_busy_worker_and_its_process_within_seconds(fleet: Fleet) -> None:
+    supervisor = fleet.start_worker()
+    job_id = fleet.submit(fleet_upkeep(2_000_000, checkpoint_s=0.2))
+    wait_until(lambda: (fleet.store.get_job(job_id) or {}).get("state") == "running", 60, "solving")
+    time.sleep(0.5)
+    children = child_pids(supervisor.pid)
+    asked = time.monotonic()
+    stop_process_groups([supervisor])
+    took = time.monotonic() - asked
+    assert supervisor.returncode == 0 and took < 6.0, took
+    assert children and not [pid for pid in children if Path(f"/proc/{pid}").exists()]
+    # The dropped job's lease was released: another worker may take it over at once.
+    assert not fleet.client.exists(fleet.store.keys.lease(job_id))

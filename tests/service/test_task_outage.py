@@ -43,7 +43,7 @@ def failing(times: int, call: Callable[..., Any], before: Callable[[], None] = l
 @pytest.fixture
 def short_waits(redis_url: str, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("FIXQ_LEASE_S", "3")
-    monkeypatch.setattr(task, "FIRST_RETRY_S", 0.01)
+    monkeypatch.setattr(task, "FIRST_RETRY_S", 0.01, raising=False)
     get_settings.cache_clear()
 
 

@@ -273,7 +273,7 @@ def bellman_bnb(writer: KernelWriter, plan: SlopePlan | None) -> str:
     out.add(JIT)
     with out.block(
         "def bellman_bnb(EVt, beta, ctx, pyramid, levels, evmax, guess, has_guess, leaf, "
-        "dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice):"
+        "dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice, start=0, stop=-1):"
     ):
         writer.prologue(out)
         out.add(f"M = {writer.meta.csize(inner)}")
@@ -286,7 +286,8 @@ def bellman_bnb(writer: KernelWriter, plan: SlopePlan | None) -> str:
         # Blocks [a, b] of the last choice still to be searched, depth first (each split pushes
         # two halves, so the stack never holds more than about log2(M) + 2 blocks).
         out.add("stack = np.empty((130, 2), dtype=np.int64)")
-        with out.block("for i in range(out_v.shape[0]):"):
+        writer.row_range(out)
+        with out.block("for i in range(start, stop):"):
             writer.state_setup(out)
             out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1", "g_o = -1", "g_j = -1")
             if plan is not None:

@@ -28,10 +28,11 @@ def bellman_full(writer: KernelWriter) -> str:
     """Source of ``bellman_full``: every choice at every state."""
     out = Lines()
     out.add(JIT)
-    with out.block("def bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice):"):
+    with out.block("def bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice, start=0, stop=-1):"):
         writer.prologue(out)
         writer.n_choices(out)
-        with out.block("for i in range(out_v.shape[0]):"):
+        writer.row_range(out)
+        with out.block("for i in range(start, stop):"):
             writer.state_setup(out)
             out.add("best = -np.inf", "chosen = -1", "nbad = 0", "first_bad = -1")
             with out.block("for c in range(NC):"):

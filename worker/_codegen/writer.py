@@ -235,6 +235,15 @@ class KernelWriter:
             out.add("bad = True")
         out.depth = depth
 
+    def row_range(self, out: Lines) -> None:
+        """The flat states ``[start, stop)`` a row-block kernel visits; ``stop < 0`` means through the last.
+
+        A block's rows are computed exactly as in a call over every state, so
+        blocks run on several threads give the bits of one call.
+        """
+        with out.block("if stop < 0:"):
+            out.add("stop = out_v.shape[0]")
+
     def prologue(self, out: Lines) -> None:
         self.unpack(out)
         self.params(out)
