@@ -25,8 +25,8 @@ order of pending jobs and lets the RQ queues carry *tickets*:
   ticket back on its queue and returns to RQ.
 
 The cap on one owner's running jobs is ``key_max_running_jobs`` or the
-key's own ``max_running_jobs`` (``service.keys``); 0 means half the workers
-registered with RQ, rounded up.  With auth off every job belongs to the one
+key's own ``max_running_jobs`` (``service.keys``); 0 means half the live
+workers (``service.liveness``), rounded up.  With auth off every job belongs to the one
 anonymous owner, who is not capped: a cap would only leave workers idle.  An owner's running count is its picked jobs
 that are ``running``, plus those picked within the last ``lease_s`` that are
 still ``queued`` (taken, about to be claimed); the others drop out as the
@@ -47,9 +47,9 @@ import time
 from typing import TYPE_CHECKING
 
 import redis
-from rq.worker import BaseWorker
 
 from service.keys import ANONYMOUS, KeyStore
+from service.liveness import live_workers
 from service.queue import PRIORITIES, WAKE_BACKLOG, DispatchKeys, enqueue_execution
 
 if TYPE_CHECKING:
@@ -157,11 +157,11 @@ return dropped
 
 
 def running_cap(store: JobStore) -> tuple[int, int]:
-    """(cap of an owner without its own, half the workers registered with RQ rounded up, at least 1).
+    """(cap of an owner without its own, half the live workers rounded up, at least 1).
 
     The first is ``key_max_running_jobs``, or the second when that is 0.
     """
-    half = half_the_workers(int(store.redis.scard(BaseWorker.redis_workers_keys)))
+    half = half_the_workers(live_workers(store))
     return store.settings.key_max_running_jobs or half, half
 
 
@@ -239,5 +239,5 @@ def prune_tickets(store: JobStore) -> int:
 
 
 def half_the_workers(workers: int) -> int:
-    """The default cap for ``workers`` registered workers: half of them, rounded up, at least 1."""
+    """The default cap for ``workers`` live workers: half of them, rounded up, at least 1."""
     return max(1, math.ceil(workers / 2))

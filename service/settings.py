@@ -171,7 +171,7 @@ class Settings(BaseSettings):
     key_max_running_jobs: int = Field(
         0,
         ge=0,
-        description="Most jobs of one key that workers run at once (count; 0: half the workers registered, "
+        description="Most jobs of one key that workers run at once (count; 0: half the live workers, "
         "rounded up; not applied with auth off, where every job is one owner's); the key's other jobs wait while "
         "workers serve the other keys in turn. A key may carry "
         "its own cap (`fixq keys add NAME --max-running-jobs N`).",

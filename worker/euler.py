@@ -72,6 +72,8 @@ TEST_POINTS_PER_GRID_POINT = 10
 """Test points per grid point of the chosen state, at the least (count)."""
 _ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
+_CHUNK_ELEMENTS = 2**18
+"""Tomorrow's (test point, shock, next shock) triples evaluated at once: bounds the temporaries (count)."""
 _NEWTON_STEPS = 40
 _BISECTION_STEPS = 200
 
@@ -246,23 +248,12 @@ def euler_errors(
     """
     grid = data.state_grids[0]
     n_z = data.n_shocks
-    k = between_points(grid)[:, None]
-    shocks = data.shock_table[None, :, :]
-    with np.errstate(all="ignore"):
-        x = policy(k[:, 0])
-        constrained = _binding(data, found, grid, k, shocks, x)
-        env = _environment(data, found, k, shocks, x)
-        c = np.broadcast_to(env[found.define], x.shape)
-        c_slope = _slope(found.define_slope, env, x.shape)
-        # Tomorrow: k' = x at every shock point z', with tomorrow's policy there; rows are (test point, z).
-        k_next = x.reshape(-1, 1)
-        env_next = _environment(data, found, k_next, shocks, policy(k_next[:, 0]))
-        state_slope = _slope(found.state_slope, env_next, (k_next.size, n_z)).reshape(x.shape[0], n_z, n_z)
-        expected = np.einsum("azw,zw->az", state_slope, data.transition)
-        target = -discount * expected / c_slope
-        c_tilde = _invert(found, env, c, target)
-        error = np.abs(1.0 - c_tilde / c)
-        log_error = np.log10(np.maximum(error, _ERROR_FLOOR))
+    k_all = between_points(grid)
+    rows = max(1, _CHUNK_ELEMENTS // (n_z * n_z))
+    parts = [_errors_at(data, found, discount, policy, k_all[start:start + rows])
+             for start in range(0, k_all.size, rows)]
+    log_error = np.concatenate([part[0] for part in parts])
+    constrained = np.concatenate([part[1] for part in parts])
     measured = ~constrained & np.isfinite(log_error)
     undefined = ~constrained & ~measured
     result: dict[str, Any] = {
@@ -274,12 +265,36 @@ def euler_errors(
         "define": found.define,
     }
     if distribution is not None:
-        weights = grid_policy(grid, np.asarray(distribution, dtype=np.float64).reshape(grid.size, n_z))(k[:, 0])
+        weights = grid_policy(grid, np.asarray(distribution, dtype=np.float64).reshape(grid.size, n_z))(k_all)
         total = weights[measured].sum()
         result["weighted_mean_log10"] = (
             float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
         )
     return result
+
+
+def _errors_at(
+    data: ModelData, found: EulerSetup, discount: float, policy: PolicyRule, k_points: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """log10 errors and the constrained mask at test points ``k_points``, both (points, shock points)."""
+    n_z = data.n_shocks
+    k = k_points[:, None]
+    shocks = data.shock_table[None, :, :]
+    with np.errstate(all="ignore"):
+        x = policy(k_points)
+        constrained = _binding(data, found, data.state_grids[0], k, shocks, x)
+        env = _environment(data, found, k, shocks, x)
+        c = np.broadcast_to(env[found.define], x.shape)
+        c_slope = _slope(found.define_slope, env, x.shape)
+        # Tomorrow: k' = x at every shock point z', with tomorrow's policy there; rows are (test point, z).
+        k_next = x.reshape(-1, 1)
+        env_next = _environment(data, found, k_next, shocks, policy(k_next[:, 0]))
+        state_slope = _slope(found.state_slope, env_next, (k_next.size, n_z)).reshape(x.shape[0], n_z, n_z)
+        expected = np.einsum("azw,zw->az", state_slope, data.transition)
+        target = -discount * expected / c_slope
+        c_tilde = _invert(found, env, c, target)
+        error = np.abs(1.0 - c_tilde / c)
+        return np.log10(np.maximum(error, _ERROR_FLOOR)), constrained
 
 
 def _environment(

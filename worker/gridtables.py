@@ -12,6 +12,7 @@ from typing import Any
 
 import numpy as np
 
+from worker import threadpool
 from worker.estimate import CHUNK_ELEMENTS
 from worker.feasibility import ModelData, evaluate_pairs
 from worker.grids import locate
@@ -47,34 +48,42 @@ def precompute_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
         lower, weight = np.zeros((1, 1, 1), np.int32), np.zeros((1, 1, 1))
     any_feasible = np.zeros(n, dtype=bool)
     any_allowed = np.zeros(n, dtype=bool)
-    bad_count = clamped_count = allowed_count = 0
-    bad_example: tuple[int, int] | None = None
     columns = np.arange(n_choices, dtype=np.int64)
-    rows_per_chunk = max(1, CHUNK_ELEMENTS // n_choices)
-    for start in range(0, n, rows_per_chunk):
-        stop = min(n, start + rows_per_chunk)
+
+    def chunk(start: int, stop: int) -> tuple[int, int, tuple[int, int] | None, int]:
+        """Rows ``[start, stop)`` of the tables; ``(allowed, bad, first bad pair or None, clamped)`` counts."""
         rows = np.arange(start, stop, dtype=np.int64)
         block = evaluate_pairs(data, rows, columns)
         allowed = block.allowed
         np.copyto(R[start:stop], np.where(allowed, block.reward, -np.inf))
         any_feasible[start:stop] = block.feasible.any(axis=1)
         any_allowed[start:stop] = allowed.any(axis=1)
-        allowed_count += int(allowed.sum())
         bad = block.bad
         count = int(bad.sum())
+        example = None
         if count:
-            if bad_example is None:
-                r, c = np.argwhere(bad)[0]
-                bad_example = (int(rows[r]), int(c))
-            bad_count += count
+            r, c = np.argwhere(bad)[0]
+            example = (int(rows[r]), int(c))
         clamped_any = np.zeros(allowed.shape, dtype=bool)
         for k, t in enumerate(interpolated):
             low, w, clamped = locate(data.state_grids[t], block.next_values[k])
             lower[start:stop, :, k] = low
             weight[start:stop, :, k] = w
             clamped_any |= clamped
-        if interpolated:
-            clamped_count += int((clamped_any & allowed).sum())
+        return int(allowed.sum()), count, example, int((clamped_any & allowed).sum()) if interpolated else 0
+
+    # The chunks are those of one thread whatever the threads, so every entry has the same bits; up to
+    # TABLE_CHUNKS_AT_ONCE of them are evaluated at once (each holds its own temporaries).
+    rows_per_chunk = max(1, CHUNK_ELEMENTS // n_choices)
+    chunks = [(start, min(n, start + rows_per_chunk)) for start in range(0, n, rows_per_chunk)]
+    at_once = min(threadpool.threads_for(n, n_choices), threadpool.TABLE_CHUNKS_AT_ONCE)
+    parts = []
+    for wave in range(0, len(chunks), at_once):
+        parts += threadpool.run_blocks(chunk, chunks[wave : wave + at_once], at_once)
+    allowed_count = sum(part[0] for part in parts)
+    bad_count = sum(part[1] for part in parts)
+    bad_example = next((part[2] for part in parts if part[2] is not None), None)
+    clamped_count = sum(part[3] for part in parts)
     counts = {
         "allowed": allowed_count,
         "bad": bad_count,

@@ -320,15 +320,16 @@ def continuation_rows(P: np.ndarray, v: np.ndarray, EVt: np.ndarray, start: int,
     probabilities, exactly as :func:`policy_steps` does, so the bits agree.
     """
     n_shocks = P.shape[0]
-    for z in range(n_shocks):
-        row = EVt[z]
-        for x in range(start, stop):
-            row[x] = 0.0
-        for zz in range(n_shocks):
-            p = P[z, zz]
-            if p != 0.0:
-                for x in range(start, stop):
-                    row[x] += p * v[x * n_shocks + zz]
+    # State by state (a block's part of ``v`` is contiguous); each sum runs in the order of policy_steps.
+    for x in range(start, stop):
+        first = x * n_shocks
+        for z in range(n_shocks):
+            total = 0.0
+            for zz in range(n_shocks):
+                p = P[z, zz]
+                if p != 0.0:
+                    total += p * v[first + zz]
+            EVt[z, x] = total
 
 
 @njit(cache=True, nogil=True, error_model="numpy")

@@ -23,8 +23,15 @@ from typing import TypeVar
 
 from worker import environment
 
-__all__ = ["BLOCKS_PER_THREAD", "THREAD_MIN_PAIRS", "THREAD_MIN_STEP_POINTS", "row_blocks", "run_blocks",
-           "threads_for"]
+__all__ = [
+    "BLOCKS_PER_THREAD",
+    "TABLE_CHUNKS_AT_ONCE",
+    "THREAD_MIN_PAIRS",
+    "THREAD_MIN_STEP_POINTS",
+    "row_blocks",
+    "run_blocks",
+    "threads_for",
+]
 
 THREAD_MIN_PAIRS = 2_000_000
 """Points × choice points from which a solve uses several threads (count).  Measured on a 2-core
@@ -35,6 +42,11 @@ single-threaded speed at 0.1 million pairs (200 points × 7 shocks × 200 choice
 THREAD_MIN_STEP_POINTS = 20_000
 """Points from which a threaded solve also splits its evaluation steps (count): a step costs a few
 microseconds per hundred points, and each step makes two rounds of the pool (measured on 2 cores)."""
+
+TABLE_CHUNKS_AT_ONCE = 4
+"""Chunks of a threaded solve's reward tables evaluated at once, at most (count): each holds
+``worker.estimate.CHUNK_TEMPORARIES`` temporaries of a chunk, so this bounds the memory threads add
+while the tables are filled (three chunks' temporaries beyond the estimate, 192 MiB at most)."""
 
 BLOCKS_PER_THREAD = 4
 """Row blocks per thread of a Bellman step (count): more blocks than threads even out rows of

@@ -20,7 +20,7 @@ from typing import Any
 import pytest
 import redis
 
-from service import dispatch
+from service import dispatch, liveness
 from service import queue as rq_queues
 from service.keys import ANONYMOUS, KeyStore
 from service.reaper import reap
@@ -39,6 +39,12 @@ def submit(store: JobStore, owner: str, n: int = 1, **overrides: Any) -> list[st
                          document_hash=f"{owner}-{i}")["id"]
         for i in range(n)
     ]  # fmt: skip
+
+
+def four_live_workers(store: JobStore) -> None:
+    """Four workers heard from just now, as their beacons would record them."""
+    now = time.time()
+    store.redis.zadd(liveness.seen_key(store), {name: now for name in ("one", "two", "three", "four")})
 
 
 def take_ticket(store: JobStore) -> str:
@@ -97,7 +103,7 @@ def test_an_owner_at_its_running_cap_waits_while_the_others_are_served(store: Jo
 def test_without_a_cap_of_its_own_an_owner_runs_on_half_the_workers(store: JobStore) -> None:
     assert store.settings.key_max_running_jobs == 0
     alice, bob = submit(store, "alice", 3), submit(store, "bob", 1)
-    store.redis.sadd("rq:workers", "rq:worker:one", "rq:worker:two", "rq:worker:three", "rq:worker:four")
+    four_live_workers(store)
     assert dispatch.running_cap(store) == (2, 2)
     picked = [dispatch.pick(store, take_ticket(store))[1] for _ in range(3)]
     for job in picked:
@@ -109,7 +115,7 @@ def test_without_a_cap_of_its_own_an_owner_runs_on_half_the_workers(store: JobSt
 
 def test_with_auth_off_the_one_anonymous_owner_is_not_capped(store: JobStore) -> None:
     anonymous = submit(store, ANONYMOUS, 4)
-    store.redis.sadd("rq:workers", "rq:worker:one", "rq:worker:two", "rq:worker:three", "rq:worker:four")
+    four_live_workers(store)
     picked = [dispatch.pick(store, take_ticket(store))[1] for _ in range(4)]
     for job in picked:
         start(store, job)

@@ -13,11 +13,12 @@ import redis
 from service import sweeps
 from service.app import create_app
 from service.embedded_redis import EmbeddedRedis
+from service.execution import Execution
 from service.reaper import reap
 from service.resubmission import SolvedJobs
 from service.settings import Settings, get_settings
 from service.store import JobStore
-from service.task import _Execution, run_job
+from service.task import run_job
 from tests._documents import print_shop
 from tests.service._http import assert_problem, make_client, run_inline
 from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, KEEP_SAMPLED, kept
@@ -333,7 +334,7 @@ def test_log_entries_held_back_while_redis_refuses_them_stay_bounded(
     # A write tried with every iteration, under a lease that outlasts the test.
     store = JobStore(store.redis, store.settings.model_copy(update={"progress_interval_s": 0.0, "lease_s": 600.0}))
     job_id = new_job(store)
-    execution = _Execution(store, job_id)
+    execution = Execution(store, job_id)
     assert store.claim(job_id, execution.token, worker="w") == "ok"
     write_log = JobStore.write_log
 

@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 import redis
 
-from service import task
+from service import execution, task
 from service.settings import get_settings
 from service.store import JobStore
 from tests._documents import machine_shop
@@ -43,7 +43,7 @@ def failing(times: int, call: Callable[..., Any], before: Callable[[], None] = l
 @pytest.fixture
 def short_waits(redis_url: str, monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setenv("FIXQ_LEASE_S", "3")
-    monkeypatch.setattr(task, "FIRST_RETRY_S", 0.01, raising=False)
+    monkeypatch.setattr(execution, "FIRST_RETRY_S", 0.01)
     get_settings.cache_clear()
 
 
@@ -116,7 +116,7 @@ def test_the_lease_heartbeat_survives_a_memory_error(
     monkeypatch.setenv("FIXQ_LEASE_S", "0.3")
     get_settings.cache_clear()
     job_id = submit(store, fleet_upkeep(20_000))
-    original_init = task._Execution.__init__
+    original_init = execution.Execution.__init__
     raised = []
 
     def init(self: Any, *args: Any, **kwargs: Any) -> None:
@@ -131,7 +131,7 @@ def test_the_lease_heartbeat_survives_a_memory_error(
 
         self._renew = renew_once_out_of_memory
 
-    monkeypatch.setattr(task._Execution, "__init__", init)
+    monkeypatch.setattr(execution.Execution, "__init__", init)
     # A heartbeat that died would let the 0.3 s lease lapse within the solve (over a second).
     assert task.run_job(job_id)["outcome"] == "done"
     assert raised

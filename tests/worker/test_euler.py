@@ -1,0 +1,140 @@
+"""Euler-equation errors (worker.euler) against a model whose exact policy is known.
+
+Brock, W. A. and L. J. Mirman (1972), "Optimal economic growth and uncertainty:
+the discounted case", Journal of Economic Theory 4(3), 479–513: with log
+utility, full depreciation and output ``z k**alpha``, the optimal policy is
+``k' = alpha * beta * z * k**alpha`` whatever the shock process.  The
+calibration and the shock chain below are invented.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+from typing import Any
+
+import numpy as np
+import pytest
+
+from worker import euler
+from worker.document import parse_document
+from worker.feasibility import model_data
+from worker.solve import solve
+
+ALPHA = 0.3
+BETA = 0.95
+
+EXACT_GROWTH: dict[str, Any] = {
+    "kind": "grid",
+    "params": {"alpha": ALPHA},
+    "states": {"k": {"min": 0.05, "max": 0.4, "points": 50}},
+    "shocks": {"z": {"markov": {"values": [0.9, 1.0, 1.1],
+                                "matrix": [[0.8, 0.2, 0.0], [0.1, 0.8, 0.1], [0.0, 0.2, 0.8]]}}},
+    "choices": {"k_next": {"next_of": "k"}},
+    "define": {"c": "z * k**alpha - k_next"},
+    "reward": "log(c)",
+    "feasible": ["c > 0"],
+    "hints": {"monotone": True, "concave": True},
+}
+"""Log utility, full depreciation: the exact policy stays inside the capital grid at every shock."""
+
+
+def _document(points: int | None = None, **model: Any) -> dict[str, Any]:
+    spec = copy.deepcopy(EXACT_GROWTH)
+    spec.update(model)
+    if points is not None:
+        spec["states"]["k"]["points"] = points
+    return {"version": 1, "discount": BETA, "model": spec, "solver": {"method": "howard", "tolerance": 1e-10},
+            "report": {"stationary": True}}
+
+
+def _data(document: dict[str, Any]) -> Any:
+    return model_data(parse_document(document))
+
+
+def _exact_policy(data: Any) -> euler.PolicyRule:
+    z = data.shock_table[:, 0]
+    return lambda k: ALPHA * BETA * z[None, :] * k[:, None] ** ALPHA
+
+
+def test_the_exact_policy_has_errors_at_rounding_level() -> None:
+    data = _data(_document())
+    found = euler.setup(data)
+    assert isinstance(found, euler.EulerSetup)
+    assert found.define == "c"
+    errors = euler.euler_errors(data, found, BETA, _exact_policy(data))
+    assert errors["max_log10"] < -10
+    assert errors["constrained"] == 0 and errors["undefined"] == 0
+    assert errors["points"] >= euler.TEST_POINTS_PER_GRID_POINT * 50 * 3
+
+
+def test_a_policy_off_by_a_known_factor_has_that_error() -> None:
+    # Consuming 1% less than the exact policy allows: c̃/c is then known in closed form at every point,
+    # so this pins the sign conventions and the inversion, not just "small when exact".
+    data = _data(_document())
+    found = euler.setup(data)
+    z = data.shock_table[:, 0]
+    share = ALPHA * BETA + 0.01 * (1 - ALPHA * BETA)
+    errors = euler.euler_errors(data, found, BETA, lambda k: share * z[None, :] * k[:, None] ** ALPHA)
+    # With k' = s y: c = (1 - s) y and the Euler value c̃ = (1 - s) y · s / (alpha beta) (log utility).
+    expected = math.log10(abs(1 - share / (ALPHA * BETA)))
+    assert errors["max_log10"] == pytest.approx(expected, abs=1e-9)
+    assert errors["mean_log10"] == pytest.approx(expected, abs=1e-9)
+
+
+def test_points_at_the_grid_end_are_counted_as_constrained() -> None:
+    data = _data(_document())
+    found = euler.setup(data)
+    exact = _exact_policy(data)
+    floor = 0.12
+    errors = euler.euler_errors(data, found, BETA, lambda k: np.maximum(exact(k), floor))
+    assert errors["constrained"] == 0  # 0.12 is far inside the grid: a kink, not a constraint
+    grid_floor = euler.euler_errors(data, found, BETA, lambda k: np.maximum(exact(k) - 0.08, 0.05))
+    assert grid_floor["constrained"] > 0
+    assert grid_floor["points"] + grid_floor["constrained"] + grid_floor["undefined"] == errors["points"]
+
+
+def test_the_error_falls_with_the_grid_step() -> None:
+    results = {points: solve(_document(points)) for points in (200, 800, 3200)}
+    worst = []
+    for points, result in results.items():
+        assert result["status"] == "converged"
+        errors = result["diagnostics"]["euler_errors"]
+        assert errors["define"] == "c"
+        assert errors["points"] >= euler.TEST_POINTS_PER_GRID_POINT * points * 3
+        assert errors["weighted_mean_log10"] is not None
+        assert errors["mean_log10"] <= errors["max_log10"]
+        worst.append(errors["max_log10"])
+    # The interpolated step policy is first order in the grid step: 4x finer is about 4x smaller.
+    assert worst[0] - worst[1] >= math.log10(2)
+    assert worst[1] - worst[2] >= math.log10(2)
+
+
+def test_a_choice_entering_through_two_defines_gets_a_note_instead() -> None:
+    document = _document(
+        60,
+        define={"c": "z * k**alpha - k_next", "upkeep": "0.05 * k_next**2"},
+        reward="log(c) - upkeep",
+    )
+    found = euler.setup(_data(document))
+    assert isinstance(found, str) and "`c`" in found and "`upkeep`" in found
+    result = solve(document)
+    assert "euler_errors" not in result["diagnostics"]
+    assert any("several defines" in note for note in result["diagnostics"]["notes"])
+
+
+def test_a_define_that_only_renames_is_looked_through() -> None:
+    document = _document(define={"c": "z * k**alpha - k_next", "felicity": "log(c)"}, reward="felicity")
+    data = _data(document)
+    found = euler.setup(data)
+    assert isinstance(found, euler.EulerSetup) and found.define == "c"
+    assert euler.euler_errors(data, found, BETA, _exact_policy(data))["max_log10"] < -10
+
+
+def test_models_without_a_next_of_choice_are_left_alone() -> None:
+    document = _document(
+        choices={"saving": {"min": 0.0, "max": 0.9, "points": 10}},
+        define={"c": "z * k**alpha * (1 - saving)"},
+        next={"k": "z * k**alpha * saving"},
+    )
+    assert euler.setup(_data(document)) is None
