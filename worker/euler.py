@@ -112,7 +112,7 @@ def setup(data: ModelData) -> EulerSetup | str | None:
     if len(data.choices) != 1 or len(data.states) != 1:
         return ("Euler-equation errors not computed: they are measured for models with one state and one choice "
                 "that sets tomorrow's value of it")
-    if data.choice_is_menu[0]:
+    if data.choice_is_menu[0] or data.state_grids[0].size < 2:
         return None
     state, choice = data.states[0], data.choices[0]
     src = data.source
@@ -195,17 +195,19 @@ def _slope_trees(defines: dict[str, Node], variable: str, *, skip_own: bool = Fa
 def grid_policy(grid: np.ndarray, values: np.ndarray) -> PolicyRule:
     """The policy ``values`` (grid points × shock points) interpolated linearly along ``grid``.
 
-    Outside the grid the end intervals' lines are extended.
+    The policy of a choice restricted to the grid is a step function on the
+    grid; interpolating it between grid points is what the trade does to
+    measure how coarse the grid is.  Outside the grid the end intervals'
+    lines are extended.
     """
     grid = np.asarray(grid, dtype=np.float64)
     values = np.asarray(values, dtype=np.float64)
+    slopes = np.diff(values, axis=0) / np.diff(grid)[:, None]
     last = grid.size - 2
 
     def policy(k: np.ndarray) -> np.ndarray:
         left = np.clip(np.searchsorted(grid, k, side="right") - 1, 0, last)
-        share = ((k - grid[left]) / (grid[left + 1] - grid[left]))[:, None]
-        low = values[left]
-        return low + share * (values[left + 1] - low)
+        return values[left] + (k - grid[left])[:, None] * slopes[left]
 
     return policy
 
@@ -357,19 +359,27 @@ def _subset(env: dict[str, Any], rows: np.ndarray) -> dict[str, Any]:
 
 
 def _bisect(found: EulerSetup, env: dict[str, Any], c: np.ndarray, target: np.ndarray) -> np.ndarray:
-    """Bracket the root around ``c`` by doubling steps, then halve the bracket; nan where no bracket is found."""
+    """Bracket the root around ``c`` by widening steps, then halve the bracket; nan where no bracket is found.
+
+    Around a positive ``c`` the bracket widens by factors (``c/f``, ``c·f``), so that it never reaches 0,
+    where marginal rewards such as ``1/c`` change sign through a pole; elsewhere by doubling distances.
+    """
     def gap(values: np.ndarray) -> np.ndarray:
         return _marginal(found, env, values, slope=False) - target
 
-    width = np.abs(c) * 1e-3 + 1e-12
-    low, high = c - width, c + width
+    def ends(spread: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        width = spread * (np.abs(c) + 1e-12)
+        return np.where(c > 0, c / (1 + spread), c - width), np.where(c > 0, c * (1 + spread), c + width)
+
+    spread = np.full(c.shape, 1e-3)
+    low, high = ends(spread)
     g_low, g_high = gap(low), gap(high)
     for _ in range(_BISECTION_STEPS):
         open_ = ~(np.sign(g_low) * np.sign(g_high) <= 0)
         if not open_.any():
             break
-        width = np.where(open_, 2 * width, width)
-        low, high = np.where(open_, c - width, low), np.where(open_, c + width, high)
+        spread = np.where(open_, 2 * spread, spread)
+        low, high = ends(spread)
         g_low, g_high = gap(low), gap(high)
     bracketed = np.sign(g_low) * np.sign(g_high) <= 0
     for _ in range(_BISECTION_STEPS):

@@ -85,6 +85,11 @@ class GridProblem(GridDiagnostics):
         sizes = data.state_sizes
         self._strides = tuple(math.prod(sizes[t + 1 :]) for t in range(len(sizes)))  # of the flat grid-state index
 
+
+    @property
+    def model_data(self) -> ModelData:
+        """The evaluated model (grids, defines, expressions) this problem was compiled from."""
+        return self._data
     def _zero_continuation(self) -> np.ndarray:
         """An all-zero ``EVt`` for kernels that need only rewards and nodes (allocated once)."""
         if self._zeros is None:
@@ -330,11 +335,12 @@ class GridProblem(GridDiagnostics):
         transition = self._data.transition
         beta = self.discount
         blocks = threadpool.row_blocks(self._data.n_grid, self.threads)
+        Vt = np.empty_like(EVt)
         source, target = v, spare
         done, span = 0, np.inf
         while done < steps:
             threadpool.run_blocks(
-                lambda start, stop: kernels.continuation_rows(transition, source, EVt, start, stop),
+                lambda start, stop: kernels.continuation_rows(transition, source, Vt, EVt, start, stop),
                 blocks,
                 self.threads,
             )
@@ -419,5 +425,5 @@ class GridProblem(GridDiagnostics):
         kernels.policy_steps(empty_f, node_index, node_weight, self._data.transition, self.discount, empty_f, 1,
                              -np.inf, EVt, empty_f)
         if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
-            kernels.continuation_rows(self._data.transition, empty_f, EVt, 0, 0)
+            kernels.continuation_rows(self._data.transition, empty_f, EVt, EVt, 0, 0)
             kernels.policy_rows(empty_f, node_index, node_weight, EVt, self.discount, empty_f, empty_f, 0, 0)

@@ -312,24 +312,28 @@ def policy_steps(
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def continuation_rows(P: np.ndarray, v: np.ndarray, EVt: np.ndarray, start: int, stop: int) -> None:
+def continuation_rows(P: np.ndarray, v: np.ndarray, Vt: np.ndarray, EVt: np.ndarray, start: int, stop: int) -> None:
     """``EVt[z, x] = Σ_z' P[z, z'] v[x · n_shocks + z']`` for grid states ``x`` in ``[start, stop)``.
 
-    The first phase of an evaluation step over a block of grid states: each
-    entry is summed over ``z'`` in order from ``0.0``, skipping zero
-    probabilities, exactly as :func:`policy_steps` does, so the bits agree.
+    The first phase of an evaluation step over a block of grid states, with
+    the loops of :func:`policy_steps` (``v`` transposed into the scratch
+    ``Vt``, then each entry summed over ``z'`` in order from ``0.0``, skipping
+    zero probabilities) restricted to the block, so the bits agree.
     """
     n_shocks = P.shape[0]
-    # State by state (a block's part of ``v`` is contiguous); each sum runs in the order of policy_steps.
     for x in range(start, stop):
-        first = x * n_shocks
-        for z in range(n_shocks):
-            total = 0.0
-            for zz in range(n_shocks):
-                p = P[z, zz]
-                if p != 0.0:
-                    total += p * v[first + zz]
-            EVt[z, x] = total
+        for zz in range(n_shocks):
+            Vt[zz, x] = v[x * n_shocks + zz]
+    for z in range(n_shocks):
+        row = EVt[z]
+        for x in range(start, stop):
+            row[x] = 0.0
+        for zz in range(n_shocks):
+            p = P[z, zz]
+            if p != 0.0:
+                column = Vt[zz]
+                for x in range(start, stop):
+                    row[x] += p * column[x]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")

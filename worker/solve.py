@@ -15,6 +15,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import time
 from typing import Any, Callable
 
 import numpy as np
@@ -326,17 +327,28 @@ def _euler_errors(
     doc: Any, problem: CompiledProblem, policy: np.ndarray, stationary: dict[str, Any] | None,
     problem_diagnostics: dict[str, Any],
 ) -> dict[str, Any]:
-    """``{"euler_errors": ...}`` for the grid models :mod:`worker.euler` applies to; else ``{}``, with a note why."""
-    data = getattr(problem, "_data", None)
-    if doc.model.kind != "grid" or data is None:
+    """``{"euler_errors": ...}`` when ``report.euler_errors`` asks and :mod:`worker.euler` applies; else ``{}``
+    (with a note why when it was asked for)."""
+    if not doc.report.euler_errors:
         return {}
     from worker.euler import euler_report
+    from worker.gridproblem import GridProblem
 
+    if not isinstance(problem, GridProblem):
+        problem_diagnostics.setdefault("notes", []).append(
+            "Euler-equation errors were not measured: they apply to grid models"
+        )
+        return {}
+    data = problem.model_data
+
+    started = time.perf_counter()
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     errors, note = euler_report(data, doc.discount, problem.choice_values(policy)[choice], distribution)
     if note is not None:
         problem_diagnostics.setdefault("notes", []).append(note)
+    if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):
+        problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
     return {} if errors is None else {"euler_errors": _plain(errors)}
 
 

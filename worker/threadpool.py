@@ -33,15 +33,16 @@ __all__ = [
     "threads_for",
 ]
 
-THREAD_MIN_PAIRS = 2_000_000
-"""Points × choice points from which a solve uses several threads (count).  Measured on a 2-core
-machine with the growth model without hints (tables): 2 threads gave a Bellman step 1.0× the
-single-threaded speed at 0.1 million pairs (200 points × 7 shocks × 200 choices... see
-``bench/bench_threads.py``), 1.5× at 1.1 million and 1.8× from about 2 million."""
+THREAD_MIN_PAIRS = 1_000_000
+"""Points × choice points from which a solve uses several threads (count).  Measured on this 2-core
+machine, an exact Bellman step of the growth model without tables on 2 threads against 1: slower at
+70,000 pairs (0.3 ms against 0.2 ms), 1.3× at 630,000 pairs and 1.8× at 7 million."""
 
-THREAD_MIN_STEP_POINTS = 20_000
-"""Points from which a threaded solve also splits its evaluation steps (count): a step costs a few
-microseconds per hundred points, and each step makes two rounds of the pool (measured on 2 cores)."""
+THREAD_MIN_STEP_POINTS = 1_000_000
+"""Points from which a threaded solve also splits its evaluation steps (count).  A step costs about
+5 ns a point and is bound by memory traffic, and a split step makes two rounds of the pool (about
+0.2 ms together): on this 2-core machine two threads were 0.1 ms a step slower at 140,000 points and
+no faster at 700,000 (measured), so only larger problems split them."""
 
 TABLE_CHUNKS_AT_ONCE = 4
 """Chunks of a threaded solve's reward tables evaluated at once, at most (count): each holds

@@ -44,9 +44,11 @@ pieces every kernel shares), :mod:`~worker._codegen.loops` and
 Kernels (``n`` value-function entries, ``i = x · n_shocks + z``; every
 kernel takes ``ctx``, the tuple built by :func:`context`; all serial — on a
 shared 2-core machine ``parallel=True`` measured 1.03–1.3× faster at several
-seconds more compilation per kernel):
+seconds more compilation per kernel; a large solve instead runs the exact
+searches in row blocks on threads, :mod:`worker.threadpool`, through their
+trailing ``start, stop``: the flat states ``[start, stop)``, all by default):
 
-* ``bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice)``
+* ``bellman_full(EVt, beta, ctx, out_v, out_policy, out_bad, out_bad_choice, start, stop)``
   — every choice; ties go to the lowest flat choice index.
 * ``bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy,
   out_reward)`` — one choice only, along lines of the hinted state axis
@@ -57,7 +59,7 @@ seconds more compilation per kernel):
   infeasible stretch, and at the first infeasible point after a feasible
   one; both together give one pass per line.
 * ``bellman_bnb(EVt, beta, ctx, pyramid, levels, evmax, guess, has_guess,
-  leaf, dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice)`` —
+  leaf, dpu, dpd, slope, out_v, out_policy, out_bad, out_bad_choice, start, stop)`` —
   exact.  The guess pass evaluates the guess and its two neighbours; then a
   depth-first walk over blocks ``[a, b]`` of the last choice (the rest of
   the guess's line on either side, or the whole line) evaluates blocks of at

@@ -259,6 +259,16 @@ class ReportSpec(Part):
         ),
     )
 
+    euler_errors: bool = Field(
+        default=False,
+        description=(
+            "Also measure the accuracy of the policy by Euler-equation errors (Judd 1992) at test points between "
+            "the grid points, for grid models with one state variable chosen through next_of and a differentiable "
+            "reward: diagnostics.euler_errors. On a grid-restricted choice it shows how coarse the grid is; it "
+            "costs about as much as a hinted solve."
+        ),
+    )
+
     _simulation_key: str = PrivateAttr(default="simulation")
 
     @property
