@@ -41,8 +41,8 @@ machine, an exact Bellman step of the growth model without tables on 2 threads a
 THREAD_MIN_STEP_POINTS = 1_000_000
 """Points from which a threaded solve also splits its evaluation steps (count).  A step costs about
 5 ns a point and is bound by memory traffic, and a split step makes two rounds of the pool (about
-0.2 ms together): on this 2-core machine two threads were 0.1 ms a step slower at 140,000 points and
-no faster at 700,000 (measured), so only larger problems split them."""
+0.2 ms together): on this shared 2-core machine two threads were 0.3–0.4 ms a step slower at 140,000
+points and no faster at 700,000 (measured), so only larger problems split them."""
 
 TABLE_CHUNKS_AT_ONCE = 4
 """Chunks of a threaded solve's reward tables evaluated at once, at most (count): each holds
