@@ -118,14 +118,17 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
         tables = None
         counts = {"feasibility": feasibility_scan(data, None)}
     prepared = time.perf_counter()
+    first_load = not _codegen.is_held(source)
     module = _codegen.load(source)
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts)
     problem._warm_up()
     bridge.mark_warm(module.__name__)
-    # Numba has written this structure's machine code by now: bring the folder back within its limit.
-    _codegen.trim()
+    if first_load:
+        # Numba has written this structure's machine code by now: bring the folder back within its limit.
+        # (Only on a first load in this process: a scan of the folder costs more than a small solve.)
+        _codegen.trim()
     problem.timings = {
         "prepare_s": prepared - started,
         "compile_s": time.perf_counter() - prepared,

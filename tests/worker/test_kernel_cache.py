@@ -76,6 +76,16 @@ def test_documents_differing_only_in_a_number_share_one_module(kernels) -> None:
     assert not np.array_equal(first.bellman_step(values)[0], second.bellman_step(values)[0])
 
 
+def test_the_folder_is_trimmed_after_a_first_load_only(kernels, monkeypatch) -> None:
+    # Scanning the folder costs more than a small solve: a structure this process holds skips it.
+    trims: list[int] = []
+    monkeypatch.setattr(_codegen, "trim", lambda *args: trims.append(1) or 0)
+    document = parse_document(grid_document(nudged("a * k - abs(k2 - k)**3 + sqrt(k) * 5e-9")))
+    compile_grid(document, reward_storage="on_the_fly")
+    compile_grid(document, reward_storage="on_the_fly")
+    assert len(trims) == 1
+
+
 MIXED: dict = {
     "params": {"a": 0.5, "t": 2.0},
     "states": {"k": {"min": 0.5, "max": 3.0, "points": 30}},

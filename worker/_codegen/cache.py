@@ -23,7 +23,7 @@ Bounds
   next process that needs it.  A loader that waited on the lock of a module
   deleted meanwhile sees that the lock file is gone and starts over.  The
   modules live processes hold (at most `LOADED_KEPT` each) may take the
-  folder past the limit; `trim` runs after each compile
+  folder past the limit; `trim` runs after a structure's first load in a process
   (:func:`worker.gridmodel.compile_grid`).
 * The process: numba never frees compiled code, so a worker's memory grows
   with every module it imports.  `loaded_structures` counts those imports
@@ -51,7 +51,7 @@ from types import ModuleType
 from worker._codegen.folder import kernel_cache_dir, numba_cache_dir
 from worker.environment import kernel_cache_bytes, max_loaded_structures
 
-__all__ = ["LOADED_KEPT", "load", "loaded_structures", "module_name", "recycle_due", "trim"]
+__all__ = ["LOADED_KEPT", "is_held", "load", "loaded_structures", "module_name", "recycle_due", "trim"]
 
 LOADED_KEPT = 16
 """Modules a process keeps imported (count); a module used again while kept costs no new load."""
@@ -100,6 +100,12 @@ def load(source: str) -> ModuleType:
     """
     with _GUARD:
         return _load(source)
+
+
+def is_held(source: str) -> bool:
+    """Whether this process holds the module of ``source`` already (loading it again compiles nothing)."""
+    with _GUARD:
+        return module_name(source) in _HELD
 
 
 def _load(source: str) -> ModuleType:
