@@ -1,5 +1,9 @@
 """Webhooks: a signed ``POST`` to a submission's ``notify.url`` when its job finishes.
 
+One module of about 500 lines on purpose: who may be called, the signed
+request and its delivery are one protocol, and are read together (the
+delivery threads are in :mod:`service.notifier`).
+
 Who may be called
 -----------------
 :func:`check_target` runs at the door (``POST /v1/jobs`` and ``/v1/sweeps``,

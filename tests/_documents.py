@@ -6,6 +6,14 @@ Tabular:
   repair it at a cost; the default document of the in-process HTTP tests.
 * :func:`print_shop` — a two-state print shop: print, or service the press; the
   default document of the auth, limits and reuse tests.
+* :func:`tiny_tabular` — two states, two actions, numbers passed in by the test
+  that depends on them (store, load, hostile tests).
+* :func:`idle_busy_worn` — a three-state machine that is idle, busy or worn, run
+  or serviced; tests whose expected values depend on its numbers pass them.
+* :func:`random_replacement` — a random sparse problem (500 states, 3 actions, 8
+  successors each) whose solve length a test chooses: the tolerance is below what
+  float64 reaches, so it always runs to ``max_iterations`` (about 70 µs per
+  value-iteration step on the test machine).
 
 Grid models (the ``model`` part only; :func:`grid_document` wraps one):
 
@@ -13,12 +21,16 @@ Grid models (the ``model`` part only; :func:`grid_document` wraps one):
 * :data:`LQ` — a linear–quadratic problem on a narrow grid;
 * :data:`TWO_CHOICES` — a household with two states, two choices and a shock.
 
+:func:`drifting` is a whole grid document whose size (state variables, points)
+a test chooses, for the kernel-size limits.
+
 :func:`random_values` gives the value function the kernel tests probe a compiled
 problem with.  Each builder returns a fresh dict, so a test may edit its copy.
 """
 
 from __future__ import annotations
 
+import base64
 import copy
 from typing import Any
 
@@ -69,6 +81,100 @@ def print_shop(**overrides: Any) -> dict[str, Any]:
     return document
 
 
+def tiny_tabular(
+    *,
+    states: int | list[str] = 2,
+    actions: int | list[str] = 2,
+    reward: list | None = None,
+    transition: list | None = None,
+    **top_level: Any,
+) -> dict[str, Any]:
+    """An invented two-state, two-action document at discount 0.9; top-level keys overridden."""
+    document: dict[str, Any] = {
+        "version": 1,
+        "discount": 0.9,
+        "model": {
+            "kind": "tabular",
+            "states": states,
+            "actions": actions,
+            "reward": [[1.0, 0.0], [0.0, 2.0]] if reward is None else reward,
+            "transition": [[[0.5, 0.5], [1.0, 0.0]], [[0.0, 1.0], [0.3, 0.7]]] if transition is None else transition,
+        },
+    }
+    document.update(top_level)
+    return document
+
+
+def idle_busy_worn(*, reward: list | None = None, transition: list | None = None, **top_level: Any) -> dict[str, Any]:
+    """An invented machine that is idle, busy or worn: run it, or service it; top-level keys overridden.
+
+    Running a busy machine is the only choice there (its service reward is None).
+    """
+    document: dict[str, Any] = {
+        "version": 1,
+        "label": "machine shop (invented)",
+        "discount": 0.95,
+        "model": {
+            "kind": "tabular",
+            "states": ["idle", "busy", "worn"],
+            "actions": ["run", "service"],
+            "reward": [[1.0, -0.5], [2.0, None], [0.3, -1.5]] if reward is None else reward,
+            "transition": [
+                [[0.2, 0.7, 0.1], [0.9, 0.1, 0.0]],
+                [[0.1, 0.6, 0.3], [0.0, 1.0, 0.0]],
+                [[0.0, 0.1, 0.9], [0.8, 0.2, 0.0]],
+            ]
+            if transition is None
+            else transition,
+        },
+        "solver": {"tolerance": 1e-9},
+    }
+    document.update(top_level)
+    return document
+
+
+def _packed(array: np.ndarray) -> dict[str, Any]:
+    data = np.ascontiguousarray(array, dtype="<f8")
+    return {"dtype": "float64", "shape": list(data.shape), "base64": base64.b64encode(data.tobytes()).decode()}
+
+
+def random_replacement(
+    iterations: int,
+    *,
+    seed: int = 0,
+    label: str = "fleet upkeep (invented)",
+    checkpoint_s: float | None = None,
+    **solver: Any,
+) -> dict[str, Any]:
+    """An invented random sparse problem solved for exactly ``iterations`` improvement steps.
+
+    ``solver`` options (value iteration unless ``method`` says otherwise) are added
+    to the tolerance and ``max_iterations`` that fix the length of the solve.
+    """
+    states, actions, successors = 500, 3, 8
+    rng = np.random.default_rng(seed)
+    s = np.repeat(np.arange(states), actions * successors)
+    a = np.tile(np.repeat(np.arange(actions), successors), states)
+    s_next = rng.integers(0, states, states * actions * successors)
+    p = rng.dirichlet(np.ones(successors), (states, actions)).ravel()
+    options: dict[str, Any] = {"method": "value_iteration", **solver, "tolerance": 1e-30, "max_iterations": iterations}
+    if checkpoint_s is not None:
+        options["checkpoint_s"] = checkpoint_s
+    return {
+        "version": 1,
+        "label": label,
+        "discount": 0.999,
+        "model": {
+            "kind": "tabular",
+            "states": states,
+            "actions": actions,
+            "reward": _packed(rng.uniform(0.0, 1.0, (states, actions))),
+            "transition": {"entries": _packed(np.column_stack([s, a, s_next, p]))},
+        },
+        "solver": options,
+    }
+
+
 GROWTH: dict[str, Any] = {
     "params": {"alpha": 0.36, "delta": 0.08, "gamma": 2.0},
     "states": {"k": {"min": 2.7, "max": 8.2, "points": 120}},
@@ -109,6 +215,18 @@ def grid_document(model: dict, *, discount: float = 0.95, hints: dict | None = N
     if hints is not None:
         model["hints"] = hints
     return {"version": 1, "discount": discount, "model": model, "solver": {"tolerance": 1e-8, **solver}}
+
+
+def drifting(state_variables: int, points: int) -> dict[str, Any]:
+    """An invented grid document: every state variable drifts toward the chosen effort by a next expression."""
+    model = {
+        "kind": "grid",
+        "states": {f"x{i}": {"min": 0.0, "max": 1.0, "points": points} for i in range(state_variables)},
+        "choices": {"effort": {"values": [0.0, 1.0]}},
+        "next": {f"x{i}": f"0.6 * x{i} + 0.3 * effort + 0.05" for i in range(state_variables)},
+        "reward": " + ".join(f"x{i}" for i in range(state_variables)) + " - 0.5 * effort",
+    }
+    return {"version": 1, "discount": 0.9, "model": model}
 
 
 def random_values(problem: Any, seed: int = 0) -> np.ndarray:

@@ -16,7 +16,7 @@ import httpx
 import pytest
 from fastapi import FastAPI
 
-from service import cli
+from service import cli, progress
 from service.client import FixqClient
 from service.embedded_redis import free_port
 from tests._documents import machine_shop
@@ -112,7 +112,7 @@ def test_unknown_job_exits_1(fixq) -> None:
 
 
 def test_submit_wait_shows_progress_and_exits_by_the_outcome(fixq, document_file: Path, monkeypatch) -> None:
-    monkeypatch.setattr(cli, "PROGRESS_EVERY_S", 0.0)
+    monkeypatch.setattr(progress, "PROGRESS_EVERY_S", 0.0)
     submitted: list[str] = []
     original = FixqClient.submit
 
@@ -153,7 +153,7 @@ def test_unreachable_api_exits_3(monkeypatch, document_file: Path, capsys) -> No
 
 
 def test_progress_bar_fills_on_a_log_scale() -> None:
-    bar = cli.ProgressBar(io.StringIO(), tolerance=1e-6)
+    bar = progress.ProgressBar(io.StringIO(), tolerance=1e-6)
     bar.update({"iteration": 1, "distance": 1.0, "error_bound": 1.0})
     assert bar.fraction(1.0) == 0.0
     assert bar.fraction(1e-3) == pytest.approx(0.5)
