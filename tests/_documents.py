@@ -8,6 +8,8 @@ Tabular:
   default document of the auth, limits and reuse tests.
 * :func:`tiny_tabular` — two states, two actions, numbers passed in by the test
   that depends on them (store, load, hostile tests).
+* :func:`array_tabular` — a document around a reward array and a transition a
+  test generated (sizes counted from the reward array).
 * :func:`idle_busy_worn` — a three-state machine that is idle, busy or worn, run
   or serviced; tests whose expected values depend on its numbers pass them.
 * :func:`random_replacement` — a random sparse problem (500 states, 3 actions, 8
@@ -15,11 +17,17 @@ Tabular:
   float64 reaches, so it always runs to ``max_iterations`` (about 70 µs per
   value-iteration step on the test machine).
 
+:func:`plant_capacity` reads the bundled plant example (an invented scenario),
+optionally on a coarser capacity grid.
+
 Grid models (the ``model`` part only; :func:`grid_document` wraps one):
 
 * :data:`GROWTH` — stochastic growth with CRRA utility, the workhorse model;
 * :data:`LQ` — a linear–quadratic problem on a narrow grid;
 * :data:`TWO_CHOICES` — a household with two states, two choices and a shock.
+
+:func:`log_growth` is a whole grid ``model`` (``kind`` included): growth with
+log utility and full depreciation, whose exact policy is ``k' = αβ z k^α``.
 
 :func:`drifting` is a whole grid document whose size (state variables, points)
 a test chooses, for the kernel-size limits.
@@ -30,11 +38,14 @@ problem with.  Each builder returns a fresh dict, so a test may edit its copy.
 
 from __future__ import annotations
 
-import base64
 import copy
+import json
+from pathlib import Path
 from typing import Any
 
 import numpy as np
+
+from worker.arrays import encode_array
 
 
 def machine_shop(**overrides: Any) -> dict[str, Any]:
@@ -105,6 +116,29 @@ def tiny_tabular(
     return document
 
 
+def array_tabular(reward: np.ndarray, transition: Any, *, pack: bool = False, **top_level: Any) -> dict[str, Any]:
+    """A tabular document at discount 0.9 whose sizes are those of ``reward``; top-level keys overridden.
+
+    ``reward`` is written as nested lists (None where it is NaN: a forbidden
+    action), or as a packed array when ``pack``; ``transition`` is written as given.
+    """
+    document: dict[str, Any] = {
+        "version": 1,
+        "discount": 0.9,
+        "model": {
+            "kind": "tabular",
+            "states": reward.shape[0],
+            "actions": reward.shape[1],
+            "reward": encode_array(reward)
+            if pack
+            else [[None if np.isnan(x) else float(x) for x in row] for row in reward],
+            "transition": transition,
+        },
+    }
+    document.update(top_level)
+    return document
+
+
 def idle_busy_worn(*, reward: list | None = None, transition: list | None = None, **top_level: Any) -> dict[str, Any]:
     """An invented machine that is idle, busy or worn: run it, or service it; top-level keys overridden.
 
@@ -131,11 +165,6 @@ def idle_busy_worn(*, reward: list | None = None, transition: list | None = None
     }
     document.update(top_level)
     return document
-
-
-def _packed(array: np.ndarray) -> dict[str, Any]:
-    data = np.ascontiguousarray(array, dtype="<f8")
-    return {"dtype": "float64", "shape": list(data.shape), "base64": base64.b64encode(data.tobytes()).decode()}
 
 
 def random_replacement(
@@ -168,8 +197,8 @@ def random_replacement(
             "kind": "tabular",
             "states": states,
             "actions": actions,
-            "reward": _packed(rng.uniform(0.0, 1.0, (states, actions))),
-            "transition": {"entries": _packed(np.column_stack([s, a, s_next, p]))},
+            "reward": encode_array(rng.uniform(0.0, 1.0, (states, actions))),
+            "transition": {"entries": encode_array(np.column_stack([s, a, s_next, p]))},
         },
         "solver": options,
     }
@@ -209,12 +238,51 @@ TWO_CHOICES: dict[str, Any] = {
 interpolation — several states, several choices, shocks and interpolation at once."""
 
 
+def log_growth(
+    *,
+    alpha: float = 0.3,
+    k_min: float = 0.1,
+    k_max: float = 2.0,
+    points: int = 20,
+    shocks: dict | None = None,
+    **model: Any,
+) -> dict[str, Any]:
+    """Invented growth with log utility and full depreciation: a grid ``model``, its keys overridden.
+
+    The capital grid is ``[k_min, k_max]`` with ``points`` points; the default
+    shock is a two-state Markov chain used untransformed.
+    """
+    if shocks is None:
+        shocks = {"z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}}
+    return {
+        "kind": "grid",
+        "params": {"alpha": alpha},
+        "states": {"k": {"min": k_min, "max": k_max, "points": points}},
+        "shocks": shocks,
+        "choices": {"k_next": {"next_of": "k"}},
+        "define": {"c": "z * k**alpha - k_next"},
+        "reward": "log(c)",
+        "feasible": ["c > 0"],
+        **model,
+    }
+
+
 def grid_document(model: dict, *, discount: float = 0.95, hints: dict | None = None, **solver: object) -> dict:
     """A version-1 document around the grid ``model`` (a copy), with ``solver`` options and tolerance 1e-8."""
     model = {"kind": "grid", **copy.deepcopy(model)}
     if hints is not None:
         model["hints"] = hints
     return {"version": 1, "discount": discount, "model": model, "solver": {"tolerance": 1e-8, **solver}}
+
+
+def plant_capacity(points: int | None = None, **top_level: Any) -> dict[str, Any]:
+    """The bundled plant example, a fresh copy; ``points`` capacity points if given, top-level keys overridden."""
+    path = Path(__file__).resolve().parents[1] / "service" / "examples" / "plant_capacity.json"
+    document: dict[str, Any] = json.loads(path.read_text(encoding="utf-8"))
+    if points is not None:
+        document["model"]["states"]["capacity"]["points"] = points
+    document.update(top_level)
+    return document
 
 
 def drifting(state_variables: int, points: int) -> dict[str, Any]:

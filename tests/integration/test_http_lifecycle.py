@@ -7,7 +7,6 @@ the tests that need it present or absent.
 
 from __future__ import annotations
 
-import copy
 import csv
 import io
 import json
@@ -28,10 +27,9 @@ from prometheus_client.parser import text_string_to_metric_families
 
 from service.client import FixqClient
 from service.embedded_redis import EmbeddedRedis, free_port
+from tests._documents import plant_capacity
 from worker.convergence_log import kept
 
-ROOT = Path(__file__).resolve().parents[2]
-EXAMPLE = json.loads((ROOT / "service" / "examples" / "plant_capacity.json").read_text())
 DATABASE = 3
 MAX_BODY_MB = 0.05
 PROBLEM_JSON = "application/problem+json"
@@ -136,11 +134,7 @@ def service(redis_server: EmbeddedRedis, tmp_path_factory: pytest.TempPathFactor
 
 
 def plant(points: int = 120, **solver: object) -> dict:
-    document = copy.deepcopy(EXAMPLE)
-    document["model"]["states"]["capacity"]["points"] = points
-    document["solver"] = {"method": "value_iteration", "tolerance": 1e-8, **solver}
-    document["report"] = {}
-    return document
+    return plant_capacity(points, solver={"method": "value_iteration", "tolerance": 1e-8, **solver}, report={})
 
 
 def long_plant(seconds: float) -> dict:

@@ -32,6 +32,7 @@ from service.embedded_redis import EmbeddedRedis, free_port
 from service.keys import KeyStore
 from service.settings import Settings
 from service.store import JobStore
+from tests._documents import tiny_tabular
 from tests._processes import stop_process_groups
 
 REPO = Path(__file__).resolve().parents[2]
@@ -46,20 +47,14 @@ STARTUP_TIMEOUT_S = 60.0
 
 def tiny_document(i: int) -> dict[str, Any]:
     """An invented two-state machine, made distinct per job (no two are the same problem, so none is reused)."""
-    return {
-        "version": 1,
-        "label": f"load {i} (invented)",
-        "tags": ["load"],
-        "discount": 0.5 + i * 1e-5,
-        "model": {
-            "kind": "tabular",
-            "states": 2,
-            "actions": 2,
-            "reward": [[1.0, 0.2], [0.0, 0.5]],
-            "transition": [[[0.9, 0.1], [0.2, 0.8]], [[0.3, 0.7], [0.6, 0.4]]],
-        },
-        "solver": {"method": "howard", "tolerance": 1e-6},
-    }
+    return tiny_tabular(
+        reward=[[1.0, 0.2], [0.0, 0.5]],
+        transition=[[[0.9, 0.1], [0.2, 0.8]], [[0.3, 0.7], [0.6, 0.4]]],
+        label=f"load {i} (invented)",
+        tags=["load"],
+        discount=0.5 + i * 1e-5,
+        solver={"method": "howard", "tolerance": 1e-6},
+    )
 
 
 class Fleet:

@@ -5,8 +5,7 @@ its own (``EmbeddedRedis``, append-only file in a directory the test keeps),
 so that it can SIGKILL that server and start it again on the same data
 directory without touching the session's.  Leases, reaper passes, restart
 waits and liveness beacons are shortened through ``FIXQ_*`` variables.  The
-problems are invented (see ``tests/_documents.py`` and
-``tests/_long_solves.py``).
+problems are invented (see ``tests/_documents.py``).
 """
 
 from __future__ import annotations
@@ -28,8 +27,7 @@ from service.embedded_redis import EmbeddedRedis, free_port
 from service.liveness import live_workers
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
-from tests._documents import LQ, grid_document, machine_shop
-from tests._long_solves import fleet_upkeep
+from tests._documents import LQ, grid_document, machine_shop, random_replacement
 from tests._processes import stop_process_groups
 from worker import solve
 
@@ -48,7 +46,7 @@ OUTAGE_S = 6.0
 
 def long_solve(seed: int) -> dict[str, Any]:
     """60,000 Bellman iterations: about 4 s of solving, through the outage."""
-    return fleet_upkeep(60_000, checkpoint_s=0.2, seed=seed)
+    return random_replacement(60_000, checkpoint_s=0.2, seed=seed)
 
 
 def child_pids(pid: int) -> list[int]:
@@ -131,7 +129,7 @@ def test_workers_ride_out_a_redis_crash_and_every_job_finishes_as_if_uninterrupt
         long_solve(seed=11),
         long_solve(seed=12),
         machine_shop(),
-        fleet_upkeep(3_000, checkpoint_s=0.2, seed=13),
+        random_replacement(3_000, checkpoint_s=0.2, seed=13),
         machine_shop(discount=0.8),
     ]
     supervisors = [fleet.start_worker(), fleet.start_worker()]
@@ -231,7 +229,7 @@ def test_a_worker_started_while_redis_is_down_waits_for_it(fleet: Fleet) -> None
 
 def test_sigterm_stops_a_busy_worker_and_its_process_within_seconds(fleet: Fleet) -> None:
     supervisor = fleet.start_worker()
-    job_id = fleet.submit(fleet_upkeep(2_000_000, checkpoint_s=0.2))
+    job_id = fleet.submit(random_replacement(2_000_000, checkpoint_s=0.2))
     wait_until(lambda: (fleet.store.get_job(job_id) or {}).get("state") == "running", 60, "solving")
     time.sleep(0.5)
     children = child_pids(supervisor.pid)

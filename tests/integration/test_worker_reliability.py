@@ -11,7 +11,6 @@ sparse replacement problem.
 
 from __future__ import annotations
 
-import base64
 import itertools
 import os
 import signal
@@ -35,6 +34,7 @@ from service.reaper import reap
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
 from service.task import run_job
+from tests._documents import idle_busy_worn, random_replacement
 
 REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}
@@ -43,61 +43,30 @@ WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; ru
 
 def machine_shop() -> dict[str, Any]:
     """Three machine states, run or service (invented numbers)."""
-    return {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "tags": ["reliability"],
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["idle", "busy", "worn"],
-            "actions": ["run", "service"],
-            "reward": [[1.0, -0.5], [2.0, None], [0.5, -1.0]],
-            "transition": [
-                [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
-                [[0.1, 0.6, 0.3], [0.3, 0.3, 0.4]],
-                [[0.0, 0.0, 1.0], [0.9, 0.1, 0.0]],
-            ],
-        },
-        "solver": {"method": "howard", "tolerance": 1e-10},
-    }
+    return idle_busy_worn(
+        reward=[[1.0, -0.5], [2.0, None], [0.5, -1.0]],
+        transition=[
+            [[0.8, 0.2, 0.0], [1.0, 0.0, 0.0]],
+            [[0.1, 0.6, 0.3], [0.3, 0.3, 0.4]],
+            [[0.0, 0.0, 1.0], [0.9, 0.1, 0.0]],
+        ],
+        tags=["reliability"],
+        discount=0.9,
+        solver={"method": "howard", "tolerance": 1e-10},
+    )
 
 
-def _packed(array: np.ndarray) -> dict[str, Any]:
-    data = np.ascontiguousarray(array, dtype="<f8")
-    return {"dtype": "float64", "shape": list(data.shape), "base64": base64.b64encode(data.tobytes()).decode()}
-
-
-def slow_replacement(iterations: int, *, checkpoint_s: float | None = None, seed: int = 7) -> dict[str, Any]:
-    """A random sparse replacement problem that takes about 0.1 s per improvement step.
-
-    The tolerance is below what float64 reaches, so the solve always runs to
-    ``max_iterations`` and its length is set by ``iterations`` (invented data).
-    """
-    states, actions, successors = 500, 3, 8
-    rng = np.random.default_rng(seed)
-    s = np.repeat(np.arange(states), actions * successors)
-    a = np.tile(np.repeat(np.arange(actions), successors), states)
-    s_next = rng.integers(0, states, states * actions * successors)
-    p = rng.dirichlet(np.ones(successors), (states, actions)).ravel()
+def slow_replacement(iterations: int, *, checkpoint_s: float | None = None) -> dict[str, Any]:
+    """A random sparse replacement problem that takes about 0.1 s per improvement step (invented data)."""
     # Howard stretches an evaluation phase to 20 × evaluation_steps once the policy is stable.
-    solver: dict[str, Any] = {"method": "howard", "evaluation_steps": 100, "tolerance": 1e-30,
-                              "max_iterations": iterations}  # fmt: skip
-    if checkpoint_s is not None:
-        solver["checkpoint_s"] = checkpoint_s
-    return {
-        "version": 1,
-        "label": "random replacement problem (invented)",
-        "discount": 0.999,
-        "model": {
-            "kind": "tabular",
-            "states": states,
-            "actions": actions,
-            "reward": _packed(rng.uniform(0.0, 1.0, (states, actions))),
-            "transition": {"entries": _packed(np.column_stack([s, a, s_next, p]))},
-        },
-        "solver": solver,
-    }
+    return random_replacement(
+        iterations,
+        seed=7,
+        label="random replacement problem (invented)",
+        checkpoint_s=checkpoint_s,
+        method="howard",
+        evaluation_steps=100,
+    )
 
 
 def submit(store: JobStore, document: dict[str, Any], **kwargs: Any) -> str:

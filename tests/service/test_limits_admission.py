@@ -6,20 +6,9 @@ import httpx
 import pytest
 
 from service.store import JobStore
+from tests._documents import drifting
 from tests.service._http import assert_problem
 from worker.kernel_limits import MAX_INTERPOLATION_CORNERS
-
-
-def drifting(state_variables: int, points: int) -> dict:
-    """Invented: every state variable drifts toward the chosen effort by a next expression."""
-    model = {
-        "kind": "grid",
-        "states": {f"x{i}": {"min": 0.0, "max": 1.0, "points": points} for i in range(state_variables)},
-        "choices": {"effort": {"values": [0.0, 1.0]}},
-        "next": {f"x{i}": f"0.6 * x{i} + 0.3 * effort + 0.05" for i in range(state_variables)},
-        "reward": " + ".join(f"x{i}" for i in range(state_variables)) + " - 0.5 * effort",
-    }
-    return {"version": 1, "discount": 0.9, "model": model}
 
 
 @pytest.mark.parametrize("route", ["/v1/check", "/v1/jobs"])

@@ -3,9 +3,7 @@
 from __future__ import annotations
 
 import copy
-import json
 import threading
-from pathlib import Path
 from typing import Any
 
 import httpx
@@ -18,11 +16,9 @@ from service.keys import KeyStore
 from service.resubmission import SolvedJobs
 from service.settings import Settings
 from service.store import JobStore
-from tests._documents import print_shop
+from tests._documents import plant_capacity, print_shop
 from tests.service._http import assert_problem, make_client, run_inline, submit
 from worker import solve
-
-EXAMPLES = Path(__file__).resolve().parents[2] / "service" / "examples"
 
 
 def idem(client: httpx.Client, key: str, document: dict[str, Any], **params: Any) -> httpx.Response:
@@ -153,10 +149,8 @@ def test_a_warm_start_from_another_owners_job_is_refused(
 
 def small_plant(points: int, price: float = 1.0) -> dict[str, Any]:
     """The bundled plant example (an invented scenario) on a coarser grid, solved by plain value iteration."""
-    document = json.loads((EXAMPLES / "plant_capacity.json").read_text())
-    document["model"]["states"]["capacity"]["points"] = points
+    document = plant_capacity(points, solver={"method": "value_iteration", "tolerance": 1e-6})
     document["model"]["params"]["price"] = price
-    document["solver"] = {"method": "value_iteration", "tolerance": 1e-6}
     document.pop("report", None)
     return document
 

@@ -2,11 +2,9 @@
 
 from __future__ import annotations
 
-import json
 import subprocess
 import sys
 import types
-from pathlib import Path
 
 import httpx
 import redis
@@ -16,7 +14,7 @@ from service.app import create_app
 from service.embedded_redis import free_port
 from service.settings import Settings
 from service.store import JobStore
-from tests._documents import machine_shop
+from tests._documents import machine_shop, plant_capacity
 from tests.service._http import assert_problem, make_client, run_inline, submit
 from worker.document import json_schema
 from worker.errors import InfeasibleModel
@@ -144,7 +142,7 @@ def test_redis_errors_mid_request_are_503(app: object, client: httpx.Client, mon
 
 
 def infeasible_plant() -> dict:
-    document = json.loads((Path(__file__).resolve().parents[2] / "service/examples/plant_capacity.json").read_text())
+    document = plant_capacity()
     document["model"]["feasible"] = ["capacity_next < 0"]
     return document
 

@@ -15,6 +15,7 @@ from service import queue as rq_queues
 from service.embedded_redis import EmbeddedRedis, free_port
 from service.settings import Settings
 from service.store import JobStore
+from tests._documents import tiny_tabular
 
 RECORD_KEYS = {
     "id", "state", "label", "tags", "owner", "priority", "submitted_at", "started_at", "finished_at",
@@ -23,20 +24,7 @@ RECORD_KEYS = {
 
 
 def document(label: str = "plant expansion, base case (invented)", tags: list[str] | None = None, **extra) -> dict:
-    return {
-        "version": 1,
-        "label": label,
-        "tags": ["nightly"] if tags is None else tags,
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": 2,
-            "actions": 2,
-            "reward": [[1.0, 0.0], [0.0, 2.0]],
-            "transition": [[[0.5, 0.5], [1.0, 0.0]], [[0.0, 1.0], [0.3, 0.7]]],
-        },
-        **extra,
-    }
+    return tiny_tabular(label=label, tags=["nightly"] if tags is None else tags, **extra)
 
 
 def create(store: JobStore, owner: str = "alice", **kwargs) -> dict:

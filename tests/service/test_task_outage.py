@@ -2,7 +2,7 @@
 
 Faults are injected into the store's calls: a ``ConnectionError`` is what
 redis-py raises while the server is down.  The problems are invented (see
-``tests/_documents.py`` and ``tests/_long_solves.py``).
+``tests/_documents.py``).
 """
 
 from __future__ import annotations
@@ -17,8 +17,7 @@ import redis
 from service import execution, task
 from service.settings import get_settings
 from service.store import JobStore
-from tests._documents import machine_shop
-from tests._long_solves import fleet_upkeep
+from tests._documents import machine_shop, random_replacement
 from worker import solve
 
 
@@ -99,7 +98,7 @@ def test_a_lease_taken_over_during_the_outage_writes_nothing(
 def test_a_solve_goes_on_when_checkpoint_saves_and_stop_checks_fail(
     store: JobStore, short_waits: None, monkeypatch: pytest.MonkeyPatch
 ) -> None:
-    document = fleet_upkeep(3_000, checkpoint_s=0.05)
+    document = random_replacement(3_000, checkpoint_s=0.05)
     job_id = submit(store, document)
     saves = failing(10**6, JobStore.save_checkpoint)
     monkeypatch.setattr(JobStore, "save_checkpoint", saves)
@@ -115,7 +114,7 @@ def test_the_lease_heartbeat_survives_a_memory_error(
 ) -> None:
     monkeypatch.setenv("FIXQ_LEASE_S", "0.3")
     get_settings.cache_clear()
-    job_id = submit(store, fleet_upkeep(20_000))
+    job_id = submit(store, random_replacement(20_000))
     original_init = execution.Execution.__init__
     raised = []
 
@@ -142,7 +141,7 @@ def test_a_job_too_large_for_the_worker_fails_with_its_message_and_the_next_one_
 ) -> None:
     monkeypatch.setenv("FIXQ_MAX_PROBLEM_MB", "0.05")
     get_settings.cache_clear()
-    large, small = submit(store, fleet_upkeep(3)), submit(store, machine_shop())
+    large, small = submit(store, random_replacement(3)), submit(store, machine_shop())
     assert task.run_job(large)["outcome"] == "failed"
     error = store.get_job(large)["error"]
     assert error["title"] == "problem too large" and "MiB" in error["detail"], error

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from tests._documents import idle_busy_worn
 from worker.defaults import DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS
 from worker.document import (
     MAX_REPORTED,
@@ -38,25 +39,18 @@ DELETE = object()
 
 def machine_shop() -> dict[str, Any]:
     """Invented: a machine that is idle, busy or worn; run it or service it."""
-    return {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "tags": ["invented", "shop.floor:A-1"],
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["idle", "busy", "worn"],
-            "actions": ["run", "service"],
-            "reward": [[1.0, -0.5], [2.0, None], [0.2, -1.0]],
-            "transition": [
-                [[0.6, 0.4, 0.0], [1.0, 0.0, 0.0]],
-                [[0.1, 0.7, 0.2], [0.0, 0.0, 0.0]],
-                [[0.0, 0.0, 1.0], [0.9, 0.1, 0.0]],
-            ],
-        },
-        "solver": {"method": "policy_iteration", "tolerance": 1e-8},
-        "report": {"stationary": True, "simulation": {"periods": 50, "paths": 20, "seed": 7, "start": "idle"}},
-    }
+    return idle_busy_worn(
+        reward=[[1.0, -0.5], [2.0, None], [0.2, -1.0]],
+        transition=[
+            [[0.6, 0.4, 0.0], [1.0, 0.0, 0.0]],
+            [[0.1, 0.7, 0.2], [0.0, 0.0, 0.0]],
+            [[0.0, 0.0, 1.0], [0.9, 0.1, 0.0]],
+        ],
+        tags=["invented", "shop.floor:A-1"],
+        discount=0.9,
+        solver={"method": "policy_iteration", "tolerance": 1e-8},
+        report={"stationary": True, "simulation": {"periods": 50, "paths": 20, "seed": 7, "start": "idle"}},
+    )
 
 
 def plant() -> dict[str, Any]:

@@ -2,11 +2,13 @@
 
 from __future__ import annotations
 
+import copy
 import tracemalloc
 
 import numpy as np
 import pytest
 
+from tests._documents import GROWTH, array_tabular
 from worker import solve
 from worker.document import parse_document
 from worker.errors import TooLarge
@@ -14,28 +16,23 @@ from worker.estimate import PRECOMPUTE_MAX_BYTES, estimate, grid_plan
 from worker.gridmodel import compile_grid
 
 
-def grid_document(
+def growth_document(
     *, points: int = 200, shocks: int = 3, hints: dict | None = None, choices: dict | None = None
 ) -> dict:
-    """Stochastic growth (invented calibration), with the expressions of ``test_gridmodel.GROWTH``
-    so that both files share compiled kernels."""
-    model = {
-        "kind": "grid",
-        "params": {"alpha": 0.36, "delta": 0.08, "gamma": 2.0},
-        "states": {"k": {"min": 1.0, "max": 9.0, "points": points}},
-        "shocks": {"z": {"ar1": {"rho": 0.9, "sigma": 0.02, "points": shocks}, "transform": "exp"}},
-        "choices": choices or {"k_next": {"next_of": "k"}},
-        "define": {"c": "z * k**alpha + (1 - delta) * k - k_next"},
-        "reward": "c**(1 - gamma) / (1 - gamma)",
-        "feasible": ["c > 0"],
-    }
+    """The shared growth model on a capital grid [1, 9] of ``points`` points (invented calibration); its
+    expressions are those of :data:`tests._documents.GROWTH`, so the kernel tests' compiled kernels are reused."""
+    model = {"kind": "grid", **copy.deepcopy(GROWTH)}
+    model["states"]["k"] = {"min": 1.0, "max": 9.0, "points": points}
+    model["shocks"]["z"]["ar1"]["points"] = shocks
+    if choices:
+        model["choices"] = choices
     if hints is not None:
         model["hints"] = hints
     return {"version": 1, "discount": 0.95, "model": model}
 
 
 def test_a_billion_pair_document_is_sized_without_allocating() -> None:
-    doc = parse_document(grid_document(points=20_000, shocks=7, hints={"monotone": True, "concave": True}))
+    doc = parse_document(growth_document(points=20_000, shocks=7, hints={"monotone": True, "concave": True}))
     tracemalloc.start()
     try:
         size = estimate(doc)
@@ -52,18 +49,18 @@ def test_a_billion_pair_document_is_sized_without_allocating() -> None:
 
 
 def test_small_models_without_hints_are_tabulated() -> None:
-    size = estimate(parse_document(grid_document()))
+    size = estimate(parse_document(growth_document()))
     assert size["reward_storage"] == "tables"
     assert size["bytes"] >= size["pairs"] * 8
 
 
 def test_hints_choose_pointwise_evaluation() -> None:
-    size = estimate(parse_document(grid_document(hints={"monotone": True, "concave": True})))
+    size = estimate(parse_document(growth_document(hints={"monotone": True, "concave": True})))
     assert size["reward_storage"] == "on_the_fly"
 
 
 def test_the_memory_cap_moves_tables_out_of_reach() -> None:
-    doc = parse_document(grid_document())
+    doc = parse_document(growth_document())
     pairs = 200 * 3 * 200
     assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8}).reward_storage == "tables"
     assert grid_plan(doc.model, limits={"max_bytes": 4 * pairs * 8 - 8}).reward_storage == "on_the_fly"
@@ -72,10 +69,10 @@ def test_the_memory_cap_moves_tables_out_of_reach() -> None:
 
 def test_unusable_hints_are_explained() -> None:
     two = {"k_next": {"next_of": "k"}, "effort": {"values": [0.0, 1.0]}}
-    size = estimate(parse_document(grid_document(hints={"concave": True}, choices=two)))
+    size = estimate(parse_document(growth_document(hints={"concave": True}, choices=two)))
     assert size["reward_storage"] == "tables"
     assert any("exactly one choice" in note for note in size["notes"])
-    own = grid_document(
+    own = growth_document(
         hints={"monotone": True, "concave": True}, choices={"k_next": {"min": 1.0, "max": 9.0, "points": 50}}
     )
     own["model"]["next"] = {"k": "k_next"}
@@ -85,7 +82,11 @@ def test_unusable_hints_are_explained() -> None:
 
 @pytest.mark.parametrize(
     "raw",
-    [grid_document(), grid_document(hints={"monotone": True, "concave": True}), grid_document(points=30, shocks=2)],
+    [
+        growth_document(),
+        growth_document(hints={"monotone": True, "concave": True}),
+        growth_document(points=30, shocks=2),
+    ],
     ids=["plain", "hinted", "small"],
 )
 def test_the_compiler_uses_the_estimated_reward_storage(raw: dict) -> None:
@@ -95,7 +96,7 @@ def test_the_compiler_uses_the_estimated_reward_storage(raw: dict) -> None:
 
 @pytest.mark.parametrize("hints", [None, {"monotone": True, "concave": True}], ids=["tables", "on_the_fly"])
 def test_estimated_bytes_cover_what_compiling_and_a_step_allocate(hints: dict | None) -> None:
-    doc = parse_document(grid_document(points=300, shocks=3, hints=hints))
+    doc = parse_document(growth_document(points=300, shocks=3, hints=hints))
     compile_grid(doc)  # kernels compiled or loaded outside the measurement
     tracemalloc.start()
     try:
@@ -112,12 +113,7 @@ def test_estimated_bytes_cover_what_compiling_and_a_step_allocate(hints: dict | 
 def test_tabular_documents_are_sized_from_their_shapes() -> None:
     S, A = 30, 4
     transition = np.full((S, A, S), 1.0 / S)
-    raw = {
-        "version": 1,
-        "discount": 0.9,
-        "model": {"kind": "tabular", "states": S, "actions": A, "reward": np.ones((S, A)).tolist(),
-                  "transition": transition.tolist()},
-    }
+    raw = array_tabular(np.ones((S, A)), transition.tolist())
     size = estimate(parse_document(raw))
     assert size["kind"] == "tabular" and size["reward_storage"] == "tables"
     assert (size["points"], size["choice_points"], size["pairs"]) == (S, A, S * A)
@@ -127,5 +123,5 @@ def test_tabular_documents_are_sized_from_their_shapes() -> None:
 
 def test_a_solve_over_the_cap_is_refused_with_the_estimate() -> None:
     with pytest.raises(TooLarge) as caught:
-        solve(grid_document(), limits={"max_bytes": 10_000})
+        solve(growth_document(), limits={"max_bytes": 10_000})
     assert caught.value.context["estimate"]["pairs"] == 200 * 3 * 200

@@ -16,7 +16,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from tests._documents import machine_shop
+from tests._documents import log_growth, machine_shop
 from worker import euler
 from worker.document import parse_document
 from worker.feasibility import model_data
@@ -25,18 +25,16 @@ from worker.solve import solve
 ALPHA = 0.3
 BETA = 0.95
 
-EXACT_GROWTH: dict[str, Any] = {
-    "kind": "grid",
-    "params": {"alpha": ALPHA},
-    "states": {"k": {"min": 0.05, "max": 0.4, "points": 50}},
-    "shocks": {"z": {"markov": {"values": [0.9, 1.0, 1.1],
-                                "matrix": [[0.8, 0.2, 0.0], [0.1, 0.8, 0.1], [0.0, 0.2, 0.8]]}}},
-    "choices": {"k_next": {"next_of": "k"}},
-    "define": {"c": "z * k**alpha - k_next"},
-    "reward": "log(c)",
-    "feasible": ["c > 0"],
-    "hints": {"monotone": True, "concave": True},
-}
+EXACT_GROWTH: dict[str, Any] = log_growth(
+    alpha=ALPHA,
+    k_min=0.05,
+    k_max=0.4,
+    points=50,
+    shocks={
+        "z": {"markov": {"values": [0.9, 1.0, 1.1], "matrix": [[0.8, 0.2, 0.0], [0.1, 0.8, 0.1], [0.0, 0.2, 0.8]]}}
+    },
+    hints={"monotone": True, "concave": True},
+)
 """Log utility, full depreciation: the exact policy stays inside the capital grid at every shock."""
 
 

@@ -17,6 +17,7 @@ import time
 import numpy as np
 import pytest
 
+from tests._documents import log_growth, tiny_tabular
 from worker import FixqError, InfeasibleModel, InvalidDocument, TooLarge, solve
 from worker.arrays import encode_array
 
@@ -32,36 +33,16 @@ REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 
 
 def tabular() -> dict:
-    return {
-        "version": 1,
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": ["idle", "busy"],
-            "actions": ["run", "service"],
-            "reward": [[1.0, 0.0], [2.0, -1.0]],
-            "transition": [[[0.5, 0.5], [1.0, 0.0]], [[0.2, 0.8], [0.9, 0.1]]],
-        },
-    }
+    return tiny_tabular(
+        states=["idle", "busy"],
+        actions=["run", "service"],
+        reward=[[1.0, 0.0], [2.0, -1.0]],
+        transition=[[[0.5, 0.5], [1.0, 0.0]], [[0.2, 0.8], [0.9, 0.1]]],
+    )
 
 
 def grid() -> dict:
-    return {
-        "version": 1,
-        "discount": 0.95,
-        "model": {
-            "kind": "grid",
-            "params": {"alpha": 0.3},
-            "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
-            "shocks": {
-                "z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}
-            },
-            "choices": {"k_next": {"next_of": "k"}},
-            "define": {"c": "z * k**alpha - k_next"},
-            "reward": "log(c)",
-            "feasible": ["c > 0"],
-        },
-    }
+    return {"version": 1, "discount": 0.95, "model": log_growth(k_min=0.1, k_max=2.0, points=20)}
 
 
 def with_change(document: dict, path: tuple, value) -> dict:

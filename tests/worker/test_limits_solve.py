@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
+from tests._documents import array_tabular, drifting
 from worker import solve
 from worker.arrays import encode_array
 from worker.document import parse_document
@@ -30,19 +31,6 @@ from worker.solvers import METHODS
 from worker.tabular import TabularProblem
 
 
-def drifting_document(state_variables: int, points: int) -> dict:
-    """Invented: every state variable drifts toward the chosen effort by a next expression."""
-    states = {f"x{i}": {"min": 0.0, "max": 1.0, "points": points} for i in range(state_variables)}
-    model = {
-        "kind": "grid",
-        "states": states,
-        "choices": {"effort": {"values": [0.0, 1.0]}},
-        "next": {f"x{i}": f"0.6 * x{i} + 0.3 * effort + 0.05" for i in range(state_variables)},
-        "reward": " + ".join(f"x{i}" for i in range(state_variables)) + " - 0.5 * effort",
-    }
-    return {"version": 1, "discount": 0.9, "model": model}
-
-
 def scattered_chain(n: int, actions: int, successors: int, seed: int) -> tuple[np.ndarray, np.ndarray]:
     """Invented: each (point, choice point) moves to `successors` points drawn at random (LU fill-in explodes)."""
     rng = np.random.default_rng(seed)
@@ -54,19 +42,13 @@ def scattered_chain(n: int, actions: int, successors: int, seed: int) -> tuple[n
 
 
 def tabular_document(reward: np.ndarray, entries: np.ndarray, **solver: object) -> dict:
-    n, actions = reward.shape
-    return {
-        "version": 1,
-        "discount": 0.95,
-        "model": {
-            "kind": "tabular",
-            "states": n,
-            "actions": actions,
-            "reward": encode_array(reward),
-            "transition": {"entries": encode_array(entries)},
-        },
-        "solver": {"method": "policy_iteration", **solver},
-    }
+    return array_tabular(
+        reward,
+        {"entries": encode_array(entries)},
+        pack=True,
+        discount=0.95,
+        solver={"method": "policy_iteration", **solver},
+    )
 
 
 def slow_ring(n: int = 20_000, beta: float = 0.9999, seed: int = 3) -> TabularProblem:
@@ -87,7 +69,7 @@ def slow_ring(n: int = 20_000, beta: float = 0.9999, seed: int = 3) -> TabularPr
 def test_kernels_with_too_many_interpolation_corners_are_refused_at_model_next(
     state_variables: int, points: int
 ) -> None:
-    raw = drifting_document(state_variables, points)
+    raw = drifting(state_variables, points)
     started = time.perf_counter()
     with pytest.raises(TooLarge) as caught:
         solve(raw)
@@ -102,9 +84,9 @@ def test_kernels_with_too_many_interpolation_corners_are_refused_at_model_next(
 
 
 def test_the_largest_admitted_structure_passes_the_check() -> None:
-    check_structure(parse_document(drifting_document(6, 2)))
-    size = estimate(parse_document(drifting_document(6, 2)))
-    assert size["compile_bytes"] > estimate(parse_document(drifting_document(1, 2)))["compile_bytes"]
+    check_structure(parse_document(drifting(6, 2)))
+    size = estimate(parse_document(drifting(6, 2)))
+    assert size["compile_bytes"] > estimate(parse_document(drifting(1, 2)))["compile_bytes"]
     assert any("compiles its kernels" in note for note in size["notes"])
 
 

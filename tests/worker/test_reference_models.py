@@ -13,17 +13,8 @@ import numpy as np
 import pytest
 import scipy.linalg
 
+from tests._documents import LQ, grid_document
 from worker import solve
-
-
-def _document(model: dict, discount: float, tolerance: float = 1e-8, method: str = "howard") -> dict:
-    return {
-        "version": 1,
-        "discount": discount,
-        "model": {"kind": "grid", **model},
-        "solver": {"method": method, "tolerance": tolerance},
-    }
-
 
 # Brock, W. A. and L. J. Mirman (1972), "Optimal economic growth and uncertainty: the
 # discounted case", Journal of Economic Theory 4(3), 479-513.  Log utility, output
@@ -70,7 +61,7 @@ def test_brock_mirman_policy_and_value(stochastic: bool) -> None:
         shocks = {"z": {"markov": {"values": z_values.tolist(), "matrix": P.tolist()}}}
     else:
         z_values, P, shocks = np.array([1.0]), np.eye(1), None
-    result = solve(_document(_brock_mirman_model(points, shocks), BETA))
+    result = solve(grid_document(_brock_mirman_model(points, shocks), discount=BETA, method="howard"))
     assert result["status"] == "converged"
 
     k = np.array(result["axes"]["k"])
@@ -105,13 +96,12 @@ def test_brock_mirman_policy_and_value(stochastic: bool) -> None:
 # State x' = a x + b u, reward −(q x² + r u²), discount β.  With V(x) = −P x², the Bellman
 # equation is the discounted Riccati equation P = q + β a² P − (β a b P)² / (r + β b² P), which is
 # the standard DARE for A = √β·a, B = √β·b, Q = q, R = r; the policy is u = −F x with
-# F = β a b P / (r + β b² P).
-LQ = {"a": 0.95, "b": 0.5, "q": 1.0, "r": 0.5}
+# F = β a b P / (r + β b² P).  The model is the shared LQ on wider grids.
 LQ_BETA = 0.95
 
 
 def test_linear_quadratic_against_riccati() -> None:
-    a, b, q, r = LQ["a"], LQ["b"], LQ["q"], LQ["r"]
+    a, b, q, r = (LQ["params"][name] for name in ("a", "b", "q", "r"))
     P = float(scipy.linalg.solve_discrete_are(
         np.array([[math.sqrt(LQ_BETA) * a]]), np.array([[math.sqrt(LQ_BETA) * b]]), np.array([[q]]), np.array([[r]])
     )[0, 0])
@@ -119,13 +109,11 @@ def test_linear_quadratic_against_riccati() -> None:
 
     x_points, u_points = 201, 801
     model = {
-        "params": LQ,
+        **LQ,
         "states": {"x": {"min": -2.0, "max": 2.0, "points": x_points}},
         "choices": {"u": {"min": -3.0, "max": 3.0, "points": u_points}},
-        "next": {"x": "a * x + b * u"},
-        "reward": "-(q * x**2 + r * u**2)",
     }
-    result = solve(_document(model, LQ_BETA))
+    result = solve(grid_document(model, discount=LQ_BETA, method="howard"))
     assert result["status"] == "converged"
     x = np.array(result["axes"]["x"])
     value = np.array(result["value"])

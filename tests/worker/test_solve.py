@@ -21,6 +21,7 @@ import numpy as np
 import pytest
 
 import worker
+from tests._documents import idle_busy_worn, log_growth
 from worker import METHODS, Canceled, InvalidDocument, TooLarge, solve
 from worker.solve import compile_document
 from worker.tabular import TabularProblem
@@ -30,23 +31,7 @@ REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__)
 
 def machine_shop(**solver) -> dict:
     """Invented: a machine that earns while it runs and wears out unless serviced."""
-    return {
-        "version": 1,
-        "label": "machine shop (invented)",
-        "discount": 0.95,
-        "model": {
-            "kind": "tabular",
-            "states": ["idle", "busy", "worn"],
-            "actions": ["run", "service"],
-            "reward": [[1.0, -0.5], [2.0, None], [0.3, -1.5]],
-            "transition": [
-                [[0.2, 0.7, 0.1], [0.9, 0.1, 0.0]],
-                [[0.1, 0.6, 0.3], [0.0, 1.0, 0.0]],
-                [[0.0, 0.1, 0.9], [0.8, 0.2, 0.0]],
-            ],
-        },
-        "solver": {"tolerance": 1e-9, **solver},
-    }
+    return idle_busy_worn(solver={"tolerance": 1e-9, **solver})
 
 
 def policy_value(document: dict, policy_index: list[int]) -> np.ndarray:
@@ -258,18 +243,7 @@ def growth_document(points: int = 300) -> dict:
     return {
         "version": 1,
         "discount": 0.95,
-        "model": {
-            "kind": "grid",
-            "params": {"alpha": 0.3},
-            "states": {"k": {"min": 0.05, "max": 0.5, "points": points}},
-            "shocks": {
-                "z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}
-            },
-            "choices": {"k_next": {"next_of": "k"}},
-            "define": {"c": "z * k**alpha - k_next"},
-            "reward": "log(c)",
-            "feasible": ["c > 0"],
-        },
+        "model": log_growth(k_min=0.05, k_max=0.5, points=points),
         "solver": {"tolerance": 1e-7},
         "report": {"stationary": True},
     }

@@ -12,6 +12,7 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 
+from tests._documents import array_tabular
 from worker.arrays import encode_array
 from worker.document import parse_document
 from worker.errors import InfeasibleModel, InvalidDocument
@@ -25,21 +26,6 @@ def random_arrays(seed: int, n_states: int, n_actions: int) -> tuple[np.ndarray,
     reward[:, 0] = rng.normal(size=n_states)
     weights = rng.random((n_states, n_actions, n_states)) ** 6
     return reward, weights / weights.sum(axis=2, keepdims=True)
-
-
-def tabular_document(reward: np.ndarray, transition, **model) -> dict:
-    return {
-        "version": 1,
-        "discount": 0.9,
-        "model": {
-            "kind": "tabular",
-            "states": reward.shape[0],
-            "actions": reward.shape[1],
-            "reward": [[None if np.isnan(x) else float(x) for x in row] for row in reward],
-            "transition": transition,
-            **model,
-        },
-    }
 
 
 def sparse_entries(transition: np.ndarray) -> list[list[float]]:
@@ -76,10 +62,10 @@ def test_ties_go_to_the_lowest_action_index():
 
 def test_dense_sparse_and_packed_documents_compile_alike():
     reward, transition = random_arrays(3, 9, 3)
-    dense = compile_tabular(parse_document(tabular_document(reward, transition.tolist())))
-    sparse = compile_tabular(parse_document(tabular_document(reward, {"entries": sparse_entries(transition)})))
+    dense = compile_tabular(parse_document(array_tabular(reward, transition.tolist())))
+    sparse = compile_tabular(parse_document(array_tabular(reward, {"entries": sparse_entries(transition)})))
     packed_entries = encode_array(np.array(sparse_entries(transition)))
-    packed = compile_tabular(parse_document(tabular_document(reward, {"entries": packed_entries})))
+    packed = compile_tabular(parse_document(array_tabular(reward, {"entries": packed_entries})))
     for other in (sparse, packed):
         assert (dense.transition != other.transition).nnz == 0
         np.testing.assert_array_equal(dense.reward, other.reward)
@@ -89,14 +75,14 @@ def test_dense_sparse_and_packed_documents_compile_alike():
 def test_duplicate_sparse_entries_are_summed():
     reward = np.array([[0.0], [1.0]])
     entries = [[0, 0, 1, 0.25], [0, 0, 1, 0.25], [0, 0, 0, 0.5], [1, 0, 1, 1.0]]
-    problem = compile_tabular(parse_document(tabular_document(reward, {"entries": entries})))
+    problem = compile_tabular(parse_document(array_tabular(reward, {"entries": entries})))
     np.testing.assert_allclose(problem.transition.toarray(), [[0.5, 0.5], [0.0, 1.0]])
 
 
 def test_rows_of_disallowed_pairs_are_ignored():
     reward = np.array([[1.0, np.nan], [0.0, 2.0]])
     transition = np.array([[[1.0, 0.0], [0.7, 0.7]], [[0.0, 1.0], [1.0, 0.0]]])  # row (0, 1) is not a distribution
-    problem = compile_tabular(parse_document(tabular_document(reward, transition.tolist())))
+    problem = compile_tabular(parse_document(array_tabular(reward, transition.tolist())))
     assert problem.transition[1].nnz == 0
     assert np.isneginf(problem.reward[0, 1])
     _, policy = problem.bellman_step(np.zeros(2))
@@ -107,7 +93,7 @@ def test_a_state_with_no_allowed_action_is_infeasible():
     reward = np.array([[1.0, 0.0], [np.nan, np.nan], [0.0, 0.0]])
     transition = np.full((3, 2, 3), 1 / 3)
     with pytest.raises(InfeasibleModel) as caught:
-        parse_document(tabular_document(reward, transition.tolist()))
+        parse_document(array_tabular(reward, transition.tolist()))
     assert [e["path"] for e in caught.value.errors] == ["model.reward[1]"]
     fake = SimpleNamespace(discount=0.9, model=SimpleNamespace(
         reward=reward, transition=transition, state_labels=lambda: [0, 1, 2], action_labels=lambda: [0, 1]))
@@ -161,8 +147,8 @@ def test_policy_methods_select_rows():
 def test_labels_from_the_document():
     reward = np.array([[1.0, 0.0], [0.0, 1.0]])
     transition = np.full((2, 2, 2), 0.5).tolist()
-    doc = parse_document(tabular_document(reward, transition))
-    doc_with_labels = tabular_document(reward, transition)
+    doc = parse_document(array_tabular(reward, transition))
+    doc_with_labels = array_tabular(reward, transition)
     doc_with_labels["model"]["states"] = ["idle", "busy"]
     doc_with_labels["model"]["actions"] = ["run", "service"]
     problem = compile_tabular(parse_document(doc_with_labels))
@@ -178,7 +164,7 @@ def test_a_large_sparse_document_compiles_without_entry_loops():
     entries = np.column_stack([
         rows // n_actions, rows % n_actions, rng.integers(n_states, size=rows.size), np.full(rows.size, 1 / successors)
     ]).astype(np.float64)
-    doc = parse_document(tabular_document(rng.normal(size=(n_states, n_actions)), {"entries": encode_array(entries)}))
+    doc = parse_document(array_tabular(rng.normal(size=(n_states, n_actions)), {"entries": encode_array(entries)}))
     problem = compile_tabular(doc)
     assert problem.transition.shape == (n_states * n_actions, n_states)
     assert problem.transition.nnz <= rows.size
