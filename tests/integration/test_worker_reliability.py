@@ -41,7 +41,7 @@ SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}
 WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; run_worker()"]
 
 
-def machine_shop() -> dict[str, Any]:
+def worn_machine() -> dict[str, Any]:
     """Three machine states, run or service (invented numbers)."""
     return idle_busy_worn(
         reward=[[1.0, -0.5], [2.0, None], [0.5, -1.0]],
@@ -231,7 +231,7 @@ def optimal_values_by_enumeration(document: dict[str, Any]) -> np.ndarray:
 
 
 def test_a_job_runs_to_done_on_a_worker(fast_store: JobStore, workers: Workers, result_writes: Counter[str]) -> None:
-    document = machine_shop()
+    document = worn_machine()
     job_id = submit(fast_store, document)
     workers.start()
     job = wait_for(fast_store, job_id, finished, 60, "finished")
@@ -255,7 +255,7 @@ def test_a_job_runs_to_done_on_a_worker(fast_store: JobStore, workers: Workers, 
 
 
 def test_cancel_of_a_queued_job_is_immediate_and_final(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop())
+    job_id = submit(fast_store, worn_machine())
     reply = fast_store.request_cancel(job_id)
     assert reply is not None and reply["outcome"] == "canceled" and reply["job"]["state"] == "canceled"
     assert fast_store.queue_depths() == {"high": 0, "normal": 0, "low": 0}
@@ -281,7 +281,7 @@ def test_cancel_of_a_running_job_stops_it_at_the_next_sweep(fast_store: JobStore
     log = fast_store.get_log(job_id)
     assert iterations_of(log) == list(range(1, len(log) + 1)) and job["iterations"] == len(log)
     # The worker survives the cancel and runs the next job.
-    next_id = submit(fast_store, machine_shop())
+    next_id = submit(fast_store, worn_machine())
     assert wait_for(fast_store, next_id, finished, 30, "finished")["state"] == "done"
 
 
@@ -404,7 +404,7 @@ def test_progress_reaches_redis_throttled_and_complete(fast_store: JobStore, mon
 
 
 def test_bad_documents_fail_with_their_field_errors(fast_store: JobStore) -> None:
-    document = machine_shop()
+    document = worn_machine()
     document["discount"] = 1.5
     job_id = submit(fast_store, document, enqueue=False)
     assert run_job(job_id)["outcome"] == "failed"
@@ -414,12 +414,12 @@ def test_bad_documents_fail_with_their_field_errors(fast_store: JobStore) -> Non
 
 
 def test_warm_start_from_an_earlier_job(fast_store: JobStore) -> None:
-    earlier = submit(fast_store, machine_shop(), enqueue=False)
-    missing = machine_shop()
+    earlier = submit(fast_store, worn_machine(), enqueue=False)
+    missing = worn_machine()
     missing["solver"]["initial"] = {"job": "0123456789abcdef"}
     missing_id = submit(fast_store, missing, enqueue=False)
     assert run_job(missing_id)["outcome"] == "failed"
-    not_done = machine_shop()
+    not_done = worn_machine()
     not_done["solver"]["initial"] = {"job": earlier}
     not_done_id = submit(fast_store, not_done, enqueue=False)
     assert run_job(not_done_id)["outcome"] == "failed"
@@ -436,7 +436,7 @@ def test_warm_start_from_an_earlier_job(fast_store: JobStore) -> None:
 
 
 def test_run_job_writes_nothing_while_another_execution_holds_the_lease(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop(), enqueue=False)
+    job_id = submit(fast_store, worn_machine(), enqueue=False)
     assert fast_store.claim(job_id, "someone-else", worker="elsewhere:1") == "ok"
     assert run_job(job_id) == {"job": job_id, "outcome": "busy"}
     job = fast_store.get_job(job_id)
@@ -466,7 +466,7 @@ def _abandon(store: JobStore, job_id: str, *, attempts: int = 1) -> None:
 
 
 def test_reaper_requeues_a_job_whose_lease_lapsed(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop())
+    job_id = submit(fast_store, worn_machine())
     _abandon(fast_store, job_id)
     report = reap(fast_store, use_lock=False)
     assert report["requeued"] == [job_id]
@@ -479,7 +479,7 @@ def test_reaper_requeues_a_job_whose_lease_lapsed(fast_store: JobStore) -> None:
 
 
 def test_racing_reapers_enqueue_once(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop())
+    job_id = submit(fast_store, worn_machine())
     _abandon(fast_store, job_id)
     barrier = threading.Barrier(4)
     reports = []
@@ -496,7 +496,7 @@ def test_racing_reapers_enqueue_once(fast_store: JobStore) -> None:
         thread.join()
     assert sum(len(r["requeued"]) for r in reports) == 1
     assert fast_store.queue_depths()["normal"] == 1
-    other = submit(fast_store, machine_shop())
+    other = submit(fast_store, worn_machine())
     _abandon(fast_store, other)
     # Another reaper's pass a moment ago holds the pass lock: this one does nothing.
     fast_store.redis.set(fast_store.keys.reaper_lock, "another-reaper", px=5000)
@@ -506,7 +506,7 @@ def test_racing_reapers_enqueue_once(fast_store: JobStore) -> None:
 
 
 def test_reaper_gives_up_after_max_attempts(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop())
+    job_id = submit(fast_store, worn_machine())
     _abandon(fast_store, job_id, attempts=fast_store.settings.max_attempts)
     assert reap(fast_store, use_lock=False)["failed"] == [job_id]
     job = fast_store.get_job(job_id)
@@ -516,7 +516,7 @@ def test_reaper_gives_up_after_max_attempts(fast_store: JobStore) -> None:
 
 
 def test_reaper_cancels_an_abandoned_job_with_a_cancel_request(fast_store: JobStore) -> None:
-    job_id = submit(fast_store, machine_shop())
+    job_id = submit(fast_store, worn_machine())
     _abandon(fast_store, job_id)
     assert fast_store.request_cancel(job_id)["outcome"] == "cancel_requested"
     assert reap(fast_store, use_lock=False)["canceled"] == [job_id]
@@ -524,9 +524,9 @@ def test_reaper_cancels_an_abandoned_job_with_a_cancel_request(fast_store: JobSt
 
 
 def test_reaper_rescues_a_lost_enqueue_after_the_grace_period(fast_store: JobStore) -> None:
-    lost = submit(fast_store, machine_shop(), enqueue=False)
-    fresh = submit(fast_store, machine_shop(), enqueue=False)
-    waiting = submit(fast_store, machine_shop())
+    lost = submit(fast_store, worn_machine(), enqueue=False)
+    fresh = submit(fast_store, worn_machine(), enqueue=False)
+    waiting = submit(fast_store, worn_machine())
     long_ago_ms = (time.time() - 10 * fast_store.settings.lease_s) * 1000
     for job_id in (lost, waiting):
         fast_store.redis.hset(fast_store.keys.job(job_id), "enqueued_at", long_ago_ms)

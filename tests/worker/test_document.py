@@ -37,7 +37,7 @@ from worker.errors import InfeasibleModel, InvalidDocument, TooLarge
 DELETE = object()
 
 
-def machine_shop() -> dict[str, Any]:
+def worn_machine() -> dict[str, Any]:
     """Invented: a machine that is idle, busy or worn; run it or service it."""
     return idle_busy_worn(
         reward=[[1.0, -0.5], [2.0, None], [0.2, -1.0]],
@@ -150,7 +150,7 @@ def packed(array: Any, dtype: str = "float64") -> dict[str, Any]:
 
 
 def test_machine_shop_parses_with_arrays_and_labels() -> None:
-    doc = parse_document(machine_shop())
+    doc = parse_document(worn_machine())
     model = doc.model
     assert isinstance(model, TabularModel)
     assert model.reward.dtype == np.float64 and model.reward.flags.c_contiguous
@@ -163,7 +163,7 @@ def test_machine_shop_parses_with_arrays_and_labels() -> None:
 
 
 def test_counts_become_index_labels() -> None:
-    document = edit(edit(machine_shop(), "model.states", 3), "model.actions", 2.0)
+    document = edit(edit(worn_machine(), "model.states", 3), "model.actions", 2.0)
     doc = parse_document(edit(document, "report.simulation.start", 0))
     assert doc.model.state_labels() == [0, 1, 2] and doc.model.action_labels() == [0, 1]
 
@@ -230,11 +230,11 @@ def test_tiny_tolerance_is_accepted() -> None:
 
 def test_disallowed_rows_are_ignored() -> None:
     # busy/service is not allowed, so its all-zero row is fine; so is garbage there.
-    parse_document(edit(machine_shop(), "model.transition[1][1]", [5.0, -3.0, 0.0]))
+    parse_document(edit(worn_machine(), "model.transition[1][1]", [5.0, -3.0, 0.0]))
 
 
 def test_packed_arrays_are_accepted() -> None:
-    shop = machine_shop()
+    shop = worn_machine()
     reward = np.array([[1.0, -0.5], [2.0, np.nan], [0.2, -1.0]])
     doc = parse_document(
         edit(edit(shop, "model.reward", packed(reward)), "model.transition", packed(shop["model"]["transition"]))
@@ -249,9 +249,9 @@ def test_sparse_transition() -> None:
         [0, 0, 0, 0.6], [0, 0, 1, 0.4], [0, 1, 0, 1.0], [1, 0, 0, 0.1], [1, 0, 1, 0.7],
         [1, 0, 2, 0.1], [1, 0, 2, 0.1], [2, 0, 2, 1.0], [2, 1, 0, 0.9], [2, 1, 1, 0.1],
     ]
-    doc = parse_document(edit(machine_shop(), "model.transition", {"entries": entries}))
+    doc = parse_document(edit(worn_machine(), "model.transition", {"entries": entries}))
     assert doc.model.transition.entries.shape == (10, 4)
-    doc = parse_document(edit(machine_shop(), "model.transition", {"entries": packed(entries)}))
+    doc = parse_document(edit(worn_machine(), "model.transition", {"entries": packed(entries)}))
     assert doc.model.transition.entries.dtype == np.float64
 
 
@@ -272,23 +272,23 @@ def test_initial_values_in_value_shape_or_flat() -> None:
 
 
 def test_tabular_start_by_index_and_label() -> None:
-    parse_document(edit(machine_shop(), "report.simulation.start", 2))
-    parse_document(edit(machine_shop(), "report.simulation.start", "worn"))
+    parse_document(edit(worn_machine(), "report.simulation.start", 2))
+    parse_document(edit(worn_machine(), "report.simulation.start", "worn"))
 
 
 def test_numpy_arrays_are_accepted_from_python_callers() -> None:
-    document = edit(machine_shop(), "model.reward", np.array([[1.0, 2.0], [3.0, np.nan], [0.0, 1.0]]))
+    document = edit(worn_machine(), "model.reward", np.array([[1.0, 2.0], [3.0, np.nan], [0.0, 1.0]]))
     assert np.isnan(parse_document(document).model.reward[1, 1])
 
 
 def test_a_packed_reward_writes_not_allowed_as_nan() -> None:
     reward = np.array([[1.0, 2.0], [3.0, np.nan], [0.0, 1.0]])
-    doc = parse_document(edit(machine_shop(), "model.reward", packed(reward)))
+    doc = parse_document(edit(worn_machine(), "model.reward", packed(reward)))
     assert np.isnan(doc.model.reward[1, 1]) and not np.isnan(doc.model.reward[1, 0])
 
 
 def test_report_simulate_is_a_deprecated_alias_of_simulation() -> None:
-    current = machine_shop()
+    current = worn_machine()
     old = edit(current, "report", {"stationary": True, "simulate": current["report"]["simulation"]})
     doc = parse_document(old)
     assert doc.report.simulation.start == "idle" and doc.report.simulation.periods == 50
@@ -312,19 +312,19 @@ def test_priorities_are_listed_once() -> None:
 
 def test_a_nan_number_inside_a_nested_reward_is_refused() -> None:
     # Only null means "not allowed" in nested lists; a Python caller's float NaN is a mistake.
-    document = edit(machine_shop(), "model.reward[2][1]", float("nan"))
+    document = edit(worn_machine(), "model.reward[2][1]", float("nan"))
     errors = faults(document)
     assert errors == [
         {"path": "model.reward[2][1]", "message": "NaN is not a number here; use null for a choice that is not allowed"}
     ]
-    document = edit(machine_shop(), "model.reward[1]", [np.float64("nan"), None])
+    document = edit(worn_machine(), "model.reward[1]", [np.float64("nan"), None])
     assert_fault(document, "model.reward[1][0]", "NaN is not a number here")
 
 
 @pytest.mark.parametrize("value", [math.inf, -math.inf])
 def test_infinity_inside_a_nested_reward_is_refused(value: float) -> None:
     assert_fault(
-        edit(machine_shop(), "model.reward[0][1]", value), "model.reward[0][1]", "infinity is not allowed here"
+        edit(worn_machine(), "model.reward[0][1]", value), "model.reward[0][1]", "infinity is not allowed here"
     )
 
 
@@ -332,7 +332,7 @@ def test_solve_refuses_a_nan_number_inside_a_nested_reward() -> None:
     from worker import solve
 
     with pytest.raises(InvalidDocument) as info:
-        solve(edit(machine_shop(), "model.reward[2][1]", float("nan")))
+        solve(edit(worn_machine(), "model.reward[2][1]", float("nan")))
     assert {
         "path": "model.reward[2][1]",
         "message": "NaN is not a number here; use null for a choice that is not allowed",
@@ -340,7 +340,7 @@ def test_solve_refuses_a_nan_number_inside_a_nested_reward() -> None:
 
 
 NESTED_ARRAYS = [
-    (machine_shop, "model.transition[0][0][1]"),
+    (worn_machine, "model.transition[0][0][1]"),
     (farm, "model.states.herd.values[1]"),
     (farm, "model.shocks.rain.markov.values[0]"),
     (farm, "model.shocks.rain.markov.matrix[0][1]"),
@@ -581,20 +581,20 @@ def test_grid_model_faults(path: str, value: Any, where: str, phrase: str) -> No
 
 @pytest.mark.parametrize(("path", "value", "where", "phrase"), TABULAR)
 def test_tabular_model_faults(path: str, value: Any, where: str, phrase: str) -> None:
-    assert_fault(edit(machine_shop(), path, value), where, phrase)
+    assert_fault(edit(worn_machine(), path, value), where, phrase)
 
 
 @pytest.mark.parametrize(("row", "entry", "where", "phrase"), SPARSE)
 def test_sparse_transition_faults(row: int, entry: list[float], where: str, phrase: str) -> None:
     entries = copy.deepcopy(SPARSE_ENTRIES)
     entries[row] = entry
-    assert_fault(edit(machine_shop(), "model.transition", {"entries": entries}), where, phrase)
+    assert_fault(edit(worn_machine(), "model.transition", {"entries": entries}), where, phrase)
 
 
 def test_sparse_rows_with_no_entries_sum_to_zero() -> None:
     entries = [e for e in SPARSE_ENTRIES if e[:2] != [2, 1]]
     assert_fault(
-        edit(machine_shop(), "model.transition", {"entries": entries}),
+        edit(worn_machine(), "model.transition", {"entries": entries}),
         "model.transition.entries",
         'state "worn" (index 2) under action "service" (index 1) sum to 0',
     )
@@ -611,7 +611,7 @@ def test_farm_faults_on_next_and_law_of_motion() -> None:
 
 
 def test_a_state_with_no_allowed_action_is_infeasible() -> None:
-    document = edit(machine_shop(), "model.reward[2]", [None, None])
+    document = edit(worn_machine(), "model.reward[2]", [None, None])
     errors = faults(document, InfeasibleModel)
     assert errors == [
         {
@@ -622,7 +622,7 @@ def test_a_state_with_no_allowed_action_is_infeasible() -> None:
 
 
 def test_infeasibility_with_other_faults_is_an_invalid_document() -> None:
-    document = edit(edit(machine_shop(), "model.reward[2]", [None, None]), "discount", 2.0)
+    document = edit(edit(worn_machine(), "model.reward[2]", [None, None]), "discount", 2.0)
     assert {e["path"] for e in faults(document, InvalidDocument)} == {"discount", "model.reward[2]"}
 
 
@@ -687,9 +687,9 @@ def test_objects_with_too_many_keys_are_refused_before_validation() -> None:
 
 
 def test_a_million_bad_labels_give_one_fault() -> None:
-    document = edit(machine_shop(), "model.states", [1] * 1_000_000)
+    document = edit(worn_machine(), "model.states", [1] * 1_000_000)
     assert faults(document) == [{"path": "model.states[0]", "message": "expected a string, got the number 1"}]
-    document = edit(machine_shop(), "model.states", ["idle"] * 1_000_000)
+    document = edit(worn_machine(), "model.states", ["idle"] * 1_000_000)
     errors = faults(document)
     assert errors[10] == {"path": "model.states", "message": "and 999,989 more duplicate labels"}
 
@@ -713,11 +713,11 @@ def test_huge_grids_are_validated_without_being_built(monkeypatch: pytest.Monkey
 
 def test_packed_array_with_huge_shape_is_refused_before_decoding() -> None:
     text = "AAAA" * (50 * 2**20 // 4)  # 50 MiB of base64
-    document = edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [10**9, 10**9], "base64": text})
+    document = edit(worn_machine(), "model.reward", {"dtype": "float64", "shape": [10**9, 10**9], "base64": text})
     errors = faults(document, TooLarge)
     assert errors[0]["path"] == "model.reward" and "more than the limit" in errors[0]["message"]
     document = edit(
-        machine_shop(), "model.reward", {"dtype": "float64", "shape": [10**6, 10**6, 10**6], "base64": text}
+        worn_machine(), "model.reward", {"dtype": "float64", "shape": [10**6, 10**6, 10**6], "base64": text}
     )
     assert_fault(document, "model.reward", "expected a 2-dimensional array")
 
@@ -725,7 +725,7 @@ def test_packed_array_with_huge_shape_is_refused_before_decoding() -> None:
 def test_packed_array_whose_shape_does_not_match_its_bytes() -> None:
     text = base64.b64encode(np.zeros(6).tobytes()).decode()
     assert_fault(
-        edit(machine_shop(), "model.reward", {"dtype": "float64", "shape": [3, 3], "base64": text}),
+        edit(worn_machine(), "model.reward", {"dtype": "float64", "shape": [3, 3], "base64": text}),
         "model.reward.base64",
         "needs 72 bytes",
     )
@@ -893,9 +893,9 @@ def test_json_schema_is_a_2020_12_schema_with_descriptions() -> None:
 
 def test_json_schema_accepts_the_valid_examples_and_refuses_unknown_keys() -> None:
     document_schema = json_schema()
-    shop_packed = edit(machine_shop(), "model.transition", {"entries": packed(SPARSE_ENTRIES)})
+    shop_packed = edit(worn_machine(), "model.transition", {"entries": packed(SPARSE_ENTRIES)})
     examples = [
-        machine_shop(),
+        worn_machine(),
         plant(),
         farm(),
         shop_packed,
@@ -907,7 +907,7 @@ def test_json_schema_accepts_the_valid_examples_and_refuses_unknown_keys() -> No
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "model.states.capacity.minimum", 1)))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "discount", 1)))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "model.params.2x", 1)))
-    assert not _valid(document_schema, document_schema, _json(edit(machine_shop(), "model.kind", "grid")))
+    assert not _valid(document_schema, document_schema, _json(edit(worn_machine(), "model.kind", "grid")))
     try:
         import jsonschema
     except ImportError:
@@ -939,7 +939,7 @@ def test_hash_ignores_key_order_and_submission_options() -> None:
 
 
 def test_hash_sees_defaults_packing_and_numbers_alike() -> None:
-    shop = machine_shop()
+    shop = worn_machine()
     defaults = {
         "evaluation_steps": DEFAULT_EVALUATION_STEPS,
         "initial": "zeros",

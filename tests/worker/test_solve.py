@@ -29,7 +29,7 @@ from worker.tabular import TabularProblem
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
 
 
-def machine_shop(**solver) -> dict:
+def worn_machine(**solver) -> dict:
     """Invented: a machine that earns while it runs and wears out unless serviced."""
     return idle_busy_worn(solver={"tolerance": 1e-9, **solver})
 
@@ -44,7 +44,7 @@ def policy_value(document: dict, policy_index: list[int]) -> np.ndarray:
 
 
 def test_result_document_has_every_part_and_is_plain_json():
-    document = machine_shop()
+    document = worn_machine()
     result = solve(copy.deepcopy(document))
     assert set(result) == {
         "status",
@@ -88,7 +88,7 @@ def _assert_plain(node) -> None:
 
 @pytest.mark.parametrize("method", sorted(METHODS))
 def test_every_method_solves_the_machine_shop(method):
-    document = machine_shop(method=method)
+    document = worn_machine(method=method)
     result = solve(copy.deepcopy(document))
     exact = policy_value(document, result["policy_index"]["action"])
     assert result["method"] == method and result["status"] == "converged"
@@ -97,28 +97,28 @@ def test_every_method_solves_the_machine_shop(method):
 
 
 def test_non_convergence_is_a_status():
-    result = solve(machine_shop(method="value_iteration", tolerance=1e-30, max_iterations=5))
+    result = solve(worn_machine(method="value_iteration", tolerance=1e-30, max_iterations=5))
     assert (result["status"], result["iterations"]) == ("max_iterations", 5)
-    result = solve(machine_shop(tolerance=1e-30, time_limit_s=1e-9))
+    result = solve(worn_machine(tolerance=1e-30, time_limit_s=1e-9))
     assert result["status"] == "time_limit"
 
 
 def test_initial_values_are_used_and_checked():
-    cold = solve(machine_shop(method="value_iteration"))
-    warm = solve(machine_shop(method="value_iteration", initial={"values": cold["value"]}))
+    cold = solve(worn_machine(method="value_iteration"))
+    warm = solve(worn_machine(method="value_iteration", initial={"values": cold["value"]}))
     assert warm["iterations"] < cold["iterations"]
     with pytest.raises(InvalidDocument) as caught:
-        solve(machine_shop(initial={"values": [1.0, 2.0]}))
+        solve(worn_machine(initial={"values": [1.0, 2.0]}))
     assert caught.value.errors[0]["path"] == "solver.initial.values"
 
 
 def test_a_job_start_needs_the_service_or_a_warm_start():
-    document = machine_shop(method="value_iteration", initial={"job": "earlier-job"})
+    document = worn_machine(method="value_iteration", initial={"job": "earlier-job"})
     with pytest.raises(InvalidDocument) as caught:
         solve(document)
     assert caught.value.errors[0]["path"] == "solver.initial.job"
     assert "service" in caught.value.errors[0]["message"]
-    earlier = solve(machine_shop(method="value_iteration"))
+    earlier = solve(worn_machine(method="value_iteration"))
     warm = solve(document, warm_start={"axes": earlier["axes"], "value": earlier["value"]})
     assert warm["iterations"] < earlier["iterations"]
     with pytest.raises(InvalidDocument) as caught:
@@ -144,7 +144,7 @@ class Crash(Exception):
 
 
 def test_checkpoints_resume_through_solve():
-    document = machine_shop(method="value_iteration", tolerance=1e-10, checkpoint_s=1e-9)
+    document = worn_machine(method="value_iteration", tolerance=1e-10, checkpoint_s=1e-9)
     whole = solve(copy.deepcopy(document))
     store = MemoryCheckpoint()
 
@@ -176,11 +176,11 @@ def test_checkpoints_resume_through_solve():
 
 def test_progress_and_cancel():
     seen = []
-    result = solve(machine_shop(method="value_iteration"), on_progress=seen.append)
+    result = solve(worn_machine(method="value_iteration"), on_progress=seen.append)
     assert seen == result["log"]
     with pytest.raises(Canceled) as caught:
         solve(
-            machine_shop(method="value_iteration"),
+            worn_machine(method="value_iteration"),
             on_progress=seen.append,
             should_stop=lambda: len(seen) > len(result["log"]) + 2,
         )
@@ -189,19 +189,19 @@ def test_progress_and_cancel():
 
 def test_the_memory_cap_refuses_with_the_estimate(monkeypatch):
     with pytest.raises(TooLarge) as caught:
-        solve(machine_shop(), limits={"max_bytes": 10})
+        solve(worn_machine(), limits={"max_bytes": 10})
     assert caught.value.errors[0]["path"] == "model"
     assert "MiB" in caught.value.errors[0]["message"]
     assert caught.value.context["estimate"]["bytes"] > 10
     monkeypatch.setenv("FIXQ_MAX_PROBLEM_MB", "0.000001")
     with pytest.raises(TooLarge):
-        solve(machine_shop())
+        solve(worn_machine())
     monkeypatch.setenv("FIXQ_MAX_PROBLEM_MB", "1")
-    assert solve(machine_shop())["status"] == "converged"
+    assert solve(worn_machine())["status"] == "converged"
 
 
 def test_reports_through_solve():
-    document = machine_shop() | {
+    document = worn_machine() | {
         "report": {"stationary": True, "simulate": {"periods": 20, "paths": 50, "seed": 4, "start": "worn"}}
     }
     result = solve(document)
@@ -217,7 +217,7 @@ def test_reports_through_solve():
 
 
 def test_compile_document_gives_the_document_and_the_problem():
-    doc, problem = compile_document(machine_shop())
+    doc, problem = compile_document(worn_machine())
     assert isinstance(problem, TabularProblem)
     assert doc.discount == 0.95 and problem.shape == (3,)
 
