@@ -1,9 +1,5 @@
 """Webhooks: a signed ``POST`` to a submission's ``notify.url`` when its job finishes.
 
-One module of about 500 lines on purpose: who may be called, the signed
-request and its delivery are one protocol, and are read together (the
-delivery threads are in :mod:`service.notifier`).
-
 Who may be called
 -----------------
 :func:`check_target` runs at the door (``POST /v1/jobs`` and ``/v1/sweeps``,
@@ -93,10 +89,10 @@ from collections.abc import Callable, Sequence
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any
 
-import httpx
 import orjson
 
 from service._formats import iso_utc
+from service.webhook_post import post
 from worker.errors import InvalidDocument
 
 if TYPE_CHECKING:
@@ -461,7 +457,8 @@ def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.tim
         logger.warning("webhook of job %s refused at delivery: %s", job_id, exc.detail)
         _record(store, job_id, {"state": "refused", "attempts": attempt, "last_error": exc.errors[0]["message"]})
         return "refused"
-    status, error = _post(target, body, headers, settings.notify_timeout_s)
+    status, error = post(target.url, target.host, target.port, target.addresses, body, headers,
+                         settings.notify_timeout_s)
     if status is not None and 200 <= status < 300:
         _record(store, job_id, {"state": "delivered", "attempts": attempt, "last_status": status,
                                 "last_error": "", "delivered_at": iso_utc()})  # fmt: skip
@@ -486,34 +483,3 @@ def _record(store: JobStore, job_id: str, fields: dict[str, Any], *, due_ms: int
         else:
             pipe.zadd(_due_key(store), {job_id: due_ms})
         pipe.execute()
-
-
-def _post(target: Target, body: bytes, headers: dict[str, str], timeout_s: float) -> tuple[int | None, str | None]:
-    """POST ``body`` to the checked addresses in turn; (status, None) or (None, error)."""
-    url = httpx.URL(target.url)
-    default_port = 443 if url.scheme == "https" else 80
-    host_header = target.host if target.port == default_port else f"{_bracketed(target.host)}:{target.port}"
-    error = "no address to connect to"
-    with httpx.Client(timeout=httpx.Timeout(timeout_s), follow_redirects=False, trust_env=False) as client:
-        for address in target.addresses:
-            request = client.build_request(
-                "POST",
-                url.copy_with(host=str(address)),
-                content=body,
-                headers={**headers, "Host": host_header},
-                extensions={"sni_hostname": target.host} if url.scheme == "https" else {},
-            )
-            try:
-                response = client.send(request, stream=True)
-            except httpx.ConnectError as exc:
-                error = f"could not connect to {address}: {exc}"
-                continue
-            except httpx.HTTPError as exc:
-                return None, f"{type(exc).__name__}: {exc}"[:300]
-            response.close()
-            return response.status_code, None
-    return None, error[:300]
-
-
-def _bracketed(host: str) -> str:
-    return f"[{host}]" if ":" in host else host
