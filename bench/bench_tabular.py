@@ -98,8 +98,8 @@ def main() -> None:
 
     print(f"problem: {args.states:,} states x {ACTIONS} actions x {SUCCESSORS} successors "
           f"({args.states * ACTIONS * SUCCESSORS:,} transition entries, packed)")
-    print(f"result: status {result['status']}, {result['iterations']} improvements, "
-          f"{result['evaluation_steps']} evaluation sweeps, error bound {result['error_bound']:.2e}")
+    print(f"result: status {result['status']}, {result['iterations']} iterations, "
+          f"{result['evaluation_steps']} evaluation steps, error bound {result['error_bound']:.2e}")
     print(
         f"wall seconds        {seconds:8.3f}   target {TARGET_SECONDS:.1f} s     ratio {seconds / TARGET_SECONDS:.2f}"
     )

@@ -12,9 +12,9 @@ its document names:
    ``warm_start``, exactly what the worker does for a job that names an
    earlier one).
 
-It prints Bellman improvement steps (the result's ``iterations``) warm and
-cold, their ratio, evaluation sweeps and seconds, and PASS/FAIL for the
-target "at least 50 % fewer improvement steps warm" (ratio ≤ 0.50).  Both
+It prints iterations (the result's ``iterations``) warm and
+cold, their ratio, evaluation steps and seconds, and PASS/FAIL for the
+target "at least 50 % fewer iterations warm" (ratio ≤ 0.50).  Both
 solves must converge and agree within the sum of their certified error
 bounds, or the line says FAIL regardless of the ratio.  All numbers are of
 this one run.
@@ -39,7 +39,7 @@ from worker import solve  # noqa: E402
 
 EXAMPLES = ROOT / "service" / "examples"
 TARGET_RATIO = 0.50
-"""Warm improvement steps over cold ones must be at most this (≥ 50 % fewer)."""
+"""Warm iterations over cold ones must be at most this (≥ 50 % fewer)."""
 DEFAULT_EXAMPLES = ("plant_capacity", "household_saving")
 
 
@@ -80,11 +80,11 @@ def compare(name: str, shift: float) -> bool:
     method = tonight["solver"].get("method", "howard")
     print(f"{name} ({method}, parameters x{1 + shift:g}):")
     print(
-        f"  improvement steps warm {warm['iterations']}, cold {cold['iterations']}, ratio {ratio:.2f} "
+        f"  iterations warm {warm['iterations']}, cold {cold['iterations']}, ratio {ratio:.2f} "
         f"({1 - ratio:.0%} fewer; target >= {1 - TARGET_RATIO:.0%} fewer) {'PASS' if ok else 'FAIL'}"
     )
     print(
-        f"  evaluation sweeps warm {warm['evaluation_steps']}, cold {cold['evaluation_steps']}; "
+        f"  evaluation steps warm {warm['evaluation_steps']}, cold {cold['evaluation_steps']}; "
         f"seconds warm {warm_s:.3f}, cold {cold_s:.3f}"
     )
     if not converged:
