@@ -183,7 +183,7 @@ class Settings(BaseSettings):
         "key_max_running_jobs, before it puts its ticket back on the queue (at most lease_s/2).",
     )
 
-    # Fields of request bodies, webhook delivery concurrency (issue 10).
+    # Fields of request bodies and webhook delivery concurrency.
     max_inline_elements: int = Field(
         1_000_000,
         ge=1,
@@ -201,7 +201,7 @@ class Settings(BaseSettings):
         "so a slow or dead receiver delays only its own deliveries.",
     )
 
-    # Fields of workers riding out a Redis outage, and their liveness (issue 10).
+    # Fields of workers riding out a Redis outage, and their liveness.
     redis_retry_s: float = Field(
         600.0,
         gt=0,
