@@ -37,6 +37,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from worker.kernel_limits import compile_cost
+from worker.staticchoices import static_choices
 
 __all__ = [
     "DIRECT_SOLVE_MAX_POINTS",
@@ -130,6 +131,9 @@ class GridPlan:
         Peak working memory of each reward storage and the precompute budget.
     reason : str
         The reward-storage decision in plain words.
+    table_entries : int
+        Entries of the reward tables: ``pairs``, or fewer when static
+        choices are maximised out (:mod:`worker.staticchoices`).
     """
 
     grid_states: int
@@ -147,6 +151,7 @@ class GridPlan:
     on_the_fly_bytes: int
     budget: int
     reason: str
+    table_entries: int = 0
 
     @property
     def hints_active(self) -> bool:
@@ -204,10 +209,13 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     interpolated = sum(1 for name in model.states if name in model.next)
     nodes = 2**interpolated
     monotone, concave, note = hint_use(model)
+    static = static_choices(model)
+    # With static choices the tables run over the other choices only, plus the static choice that wins each entry.
+    table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
     common = _grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
-    table_bytes = pairs * (8 + 12 * interpolated)
+    table_bytes = n * table_choices * (8 + 12 * interpolated + (8 if static else 0))
     chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
     precompute_bytes = common + table_bytes + chunk
     # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
@@ -219,6 +227,14 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         reason = (
             "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "
             "code rather than tabulated for all pairs"
+        )
+    elif table_bytes <= budget and static:
+        reward_storage = "tables"
+        reason = (
+            f"{', '.join(f'`{name}`' for name in static)} affect{'s' if len(static) == 1 else ''} nothing tomorrow, "
+            f"so the tables of all {pairs:,} (state, choice) pairs are evaluated once with those choices maximised "
+            f"out ({n * table_choices:,} entries, {table_bytes / _MIB:,.0f} MiB, within the precompute budget of "
+            f"{budget / _MIB:,.0f} MiB), and every step scans them"
         )
     elif table_bytes <= budget:
         reward_storage = "tables"
@@ -249,6 +265,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         on_the_fly_bytes=on_the_fly_bytes,
         budget=budget,
         reason=reason,
+        table_entries=n * table_choices,
     )
 
 
@@ -352,10 +369,10 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     evaluation = per_iteration * matrix_entries * MATVEC_NS
     if plan.reward_storage == "tables":
         setup = plan.pairs * NUMPY_PAIR_NS
-        step = plan.pairs * TABLE_READ_NS
+        step = plan.table_entries * TABLE_READ_NS
         how = (
             f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans "
-            f"({TABLE_READ_NS:g} ns per pair)"
+            f"({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
         )
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices

@@ -40,6 +40,8 @@ class GridDiagnostics:
     timings: dict[str, float]
     bridge_note: str
     _data: ModelData
+    _full: ModelData
+    _static: tuple[str, ...]
     _kernels: ModuleType | None
     _ctx: tuple[np.ndarray, ...]
     _counts: dict[str, Any]
@@ -48,13 +50,29 @@ class GridDiagnostics:
     _zero_continuation: Callable[[], np.ndarray]
 
     def _choice_indices(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
-        return np.unravel_index(np.asarray(policy, dtype=np.int64).reshape(self.n), self._data.choice_sizes)
+        """Per choice of the model (static ones too), the (n,) grid index ``policy`` (kernel choices) picks."""
+        policy = np.asarray(policy, dtype=np.int64).reshape(self.n)
+        dynamic = np.unravel_index(policy, self._data.choice_sizes)
+        if not self._static:
+            return dynamic
+        full = self._full
+        pick = self._counts["static_pick"][np.arange(self.n), policy]
+        static = iter(np.unravel_index(pick, [g.size for name, g in zip(full.choices, full.choice_grids)
+                                              if name in self._static]))
+        kept = iter(dynamic)
+        return tuple(next(static) if name in self._static else next(kept) for name in full.choices)
 
     def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
         """Reward storage, hints, edge hits per choice, clamped next values and excluded rewards, with warnings."""
-        data = self._data
+        data = self._full
         warnings: list[str] = []
         notes = [f"reward storage {self.reward_storage}: {self.bridge_note or self.plan.reason}"]
+        if self._static:
+            names = ", ".join(f"`{name}`" for name in self._static)
+            notes.append(
+                f"{names} affect{'s' if len(self._static) == 1 else ''} nothing tomorrow: maximised out within the "
+                "period once, with the reward tables, for each value of the other choices"
+            )
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
         model_choices = self._choice_indices(policy)
@@ -79,6 +97,7 @@ class GridDiagnostics:
             "reward_storage": self.reward_storage,
             "hints": {"monotone": self.hints.monotone, "concave": self.hints.concave},
             "edge_hits": edge_hits,
+            "maximised_within_period": list(self._static),
         }
         clamped = self._clamped(policy, warnings)
         if clamped is not None:
@@ -93,13 +112,13 @@ class GridDiagnostics:
 
     def _is_choice_grid(self, j: int) -> bool:
         """True for ``next_of`` choices and min/max/points grids, whose ends are arbitrary; not for menus."""
-        return not self._data.choice_is_menu[j]
+        return not self._full.choice_is_menu[j]
 
     def _grid_of(self, j: int) -> str:
-        name = self._data.choices[j]
-        for t, setter in enumerate(self._data.setter):
+        name = self._full.choices[j]
+        for t, setter in enumerate(self._full.setter):
             if setter == j:
-                return f"the grid of state `{self._data.states[t]}`"
+                return f"the grid of state `{self._full.states[t]}`"
         return f"choice `{name}`"
 
     def _clamped(self, policy: np.ndarray, warnings: list[str]) -> dict[str, Any] | None:
@@ -141,7 +160,7 @@ class GridDiagnostics:
         return result
 
     def _clamped_at_policy_numpy(self, policy: np.ndarray) -> int:
-        data = self._data
+        data = self._full
         rows = np.arange(self.n, dtype=np.int64)
         env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
         env.update({k: v[:, 0] for k, v in data.state_env(rows).items()})
@@ -161,7 +180,7 @@ class GridDiagnostics:
         return int(clamped.sum())
 
     def _excluded(self, warnings: list[str]) -> dict[str, Any] | None:
-        data = self._data
+        data = self._full
         if self.reward_storage == "tables":
             count, example = self._counts["bad"], self._counts["bad_example"]
             scope = "all (state, choice) pairs"

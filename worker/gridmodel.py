@@ -48,7 +48,9 @@ generated search code (:mod:`worker._codegen`), in a
 choice (monotone: that choice is ``next_of`` a state); ``restricted=False``
 always searches every allowed choice exactly — on the fly by a
 branch-and-bound over blocks of choices whose bounds are sound, so its
-answer equals the exhaustive search bit for bit.
+answer equals the exhaustive search bit for bit.  With reward tables, choices
+that affect nothing tomorrow are maximised out within the period first
+(:mod:`worker.staticchoices`); the kernels see the other choices only.
 
 When the structure's kernels are not compiled on this machine yet and the
 problem is small, :func:`compile_grid` returns a
@@ -69,8 +71,9 @@ from worker.document import SUBMISSION_KEYS
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
 from worker.gridproblem import GridProblem
-from worker.gridtables import RewardTables, precompute_tables
+from worker.gridtables import RewardTables, precompute_tables, reduce_static
 from worker.reference import ReferenceProblem
+from worker.staticchoices import static_choices
 
 __all__ = ["compile_grid"]
 
@@ -102,18 +105,20 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     chosen = reward_storage or plan.reward_storage
     if chosen not in REWARD_STORAGES:
         raise ValueError(f"unknown reward storage {chosen!r}; expected one of {', '.join(REWARD_STORAGES)}")
-    data = model_data(doc)
+    full = model_data(doc)
     backend = "table" if chosen == "tables" else "expr"
+    static = static_choices(doc.model) if backend == "table" else ()
+    data = reduce_static(full, static) if static else full
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
     if reward_storage is None and _bridge_applies(plan, source):
-        return _bridged(doc, data, plan, source, chosen, limits, started)
+        return _bridged(doc, full, static, plan, source, chosen, limits, started)
     counts: dict[str, Any]
     tables: RewardTables | None
     if backend == "table":
-        tables, counts = _tables(data)
+        tables, counts = _tables(full, static)
     else:
         tables = None
         counts = {"feasibility": feasibility_scan(data, None)}
@@ -122,7 +127,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     module = _codegen.load(source)
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
-    problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts)
+    problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
     problem._warm_up()
     bridge.mark_warm(module.__name__)
     if first_load:
@@ -136,9 +141,9 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     return problem
 
 
-def _tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
-    """The reward tables, or the error naming the points with no allowed choice."""
-    tables, counts = precompute_tables(data)
+def _tables(data: ModelData, static: tuple[str, ...]) -> tuple[RewardTables, dict[str, Any]]:
+    """The reward tables (``static`` choices maximised out), or the error naming the points with no allowed choice."""
+    tables, counts = precompute_tables(data, static)
     stuck = np.flatnonzero(~counts["any_allowed"])
     if stuck.size:
         raise infeasible(data, stuck, counts["any_feasible"])
@@ -156,13 +161,16 @@ def _bridge_applies(plan: GridPlan, source: str) -> bool:
 
 
 def _bridged(
-    doc: Any, data: ModelData, plan: GridPlan, source: str, reward_storage: str, limits: dict[str, Any] | None,
-    started: float,
+    doc: Any, full: ModelData, static: tuple[str, ...], plan: GridPlan, source: str, reward_storage: str,
+    limits: dict[str, Any] | None, started: float,
 ) -> ReferenceProblem:
-    tables, counts = _tables(data)
+    if reward_storage != "tables":
+        static = static_choices(doc.model)
+    tables, counts = _tables(full, static)
+    data = reduce_static(full, static) if static else full
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
-    problem = ReferenceProblem(doc, data, plan, layout, None, ctx, "tables", counts)
+    problem = ReferenceProblem(doc, data, plan, layout, None, ctx, "tables", counts, full=full, static=static)
     # The document as validated, in its own order: the order of params and defines is part of the
     # generated source (sorted keys, as in the canonical form, would name another module).
     text = doc.model_dump(mode="json", exclude_none=True, exclude=set(SUBMISSION_KEYS))

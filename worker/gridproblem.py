@@ -44,6 +44,12 @@ class GridProblem(GridDiagnostics):
     ``threads``, the threads its exact Bellman steps and (from
     ``THREAD_MIN_STEP_POINTS`` points) its evaluation steps run on, in row
     blocks (:mod:`worker.threadpool`; the bits do not depend on it).
+
+    With static choices (``full`` the whole model, ``static`` their names;
+    see :mod:`worker.staticchoices`) ``data`` holds the other choices only,
+    policies are flat indices over those, and ``describe_policy``,
+    ``choice_values``, ``model_data`` and the diagnostics add the static
+    choices back from the tables' record of the winning static values.
     """
 
     def __init__(
@@ -56,8 +62,13 @@ class GridProblem(GridDiagnostics):
         ctx: tuple[np.ndarray, ...],
         reward_storage: str,
         counts: dict[str, Any],
+        *,
+        full: ModelData | None = None,
+        static: tuple[str, ...] = (),
     ) -> None:
         self._data = data
+        self._full = full if full is not None else data
+        self._static = static
         self._layout = layout
         self._kernels = module
         self._ctx = ctx
@@ -88,8 +99,9 @@ class GridProblem(GridDiagnostics):
 
     @property
     def model_data(self) -> ModelData:
-        """The evaluated model (grids, defines, expressions) this problem was compiled from."""
-        return self._data
+        """The evaluated model (grids, defines, expressions, every choice) this problem was compiled from."""
+        return self._full
+
     def _zero_continuation(self) -> np.ndarray:
         """An all-zero ``EVt`` for kernels that need only rewards and nodes (allocated once)."""
         if self._zeros is None:
@@ -371,7 +383,7 @@ class GridProblem(GridDiagnostics):
     def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any]]:
         """``policy`` (chosen values) and ``policy_index`` (grid indices), nested to ``shape``."""
         values, indices = {}, {}
-        for name, grid, index in zip(self._data.choices, self._data.choice_grids, self._choice_indices(policy)):
+        for name, grid, index in zip(self._full.choices, self._full.choice_grids, self._choice_indices(policy)):
             values[name] = grid[index].reshape(self.shape).tolist()
             indices[name] = index.reshape(self.shape).tolist()
         return values, indices
@@ -380,7 +392,7 @@ class GridProblem(GridDiagnostics):
         """Per choice, the (n,) chosen value."""
         return {
             name: grid[index]
-            for name, grid, index in zip(self._data.choices, self._data.choice_grids, self._choice_indices(policy))
+            for name, grid, index in zip(self._full.choices, self._full.choice_grids, self._choice_indices(policy))
         }
 
     def state_values(self) -> dict[str, np.ndarray]:
