@@ -275,16 +275,21 @@ def test_a_worker_rides_through_a_full_redis_and_writes_its_result_once_there_is
     tmp_path, monkeypatch: pytest.MonkeyPatch
 ) -> None:
     refused = threading.Event()
-    finish = JobStore.finish
+    retrying = Execution._retrying
 
-    def watched_finish(self: JobStore, *args, **kwargs):
-        try:
-            return finish(self, *args, **kwargs)
-        except redis.exceptions.OutOfMemoryError:
-            refused.set()
-            raise
+    def watched_retrying(self: Execution, write):
+        # The final writes (the last log entries, then the result) go through _retrying: note a refusal of either.
+        def watched():
+            try:
+                return write()
+            except redis.exceptions.ResponseError as exc:
+                if "OOM" in str(exc):
+                    refused.set()
+                raise
 
-    monkeypatch.setattr(JobStore, "finish", watched_finish)
+        return retrying(self, watched)
+
+    monkeypatch.setattr(Execution, "_retrying", watched_retrying)
     with EmbeddedRedis(tmp_path / "full") as server:
         monkeypatch.setenv("FIXQ_REDIS_URL", server.url)
         get_settings.cache_clear()
@@ -314,7 +319,7 @@ def test_a_worker_rides_through_a_full_redis_and_writes_its_result_once_there_is
             execution = threading.Thread(target=lambda: outcome.update(run_job(job_id)))
             filler.start()
             execution.start()
-            # The solve ends while Redis is full: its result write is refused, and retried.
+            # The solve ends while Redis is full: its final writes are refused, and retried.
             assert refused.wait(60)
             time.sleep(0.5)
             assert execution.is_alive() and store.get_job(job_id)["state"] == "running"
