@@ -25,6 +25,11 @@ _NAME = re.compile(r"^[a-z][a-z0-9_]*$")
 # The problem document has no free-text field beyond its label, so the longer
 # description of each example lives here (tests check that the two lists match).
 DESCRIPTIONS: dict[str, str] = {
+    "beekeeper_savings": (
+        "A beekeeper splits her savings and this season's honey income between spending and savings for next "
+        "season; harvests swing with persistent weather and she cannot borrow. Next season's savings is a "
+        "continuous choice (monotone cubic interpolation), with Euler-equation errors and the long-run distribution."
+    ),
     "fishery_harvest": (
         "A fishery sets this season's harvest; the stock left behind regrows logistically, "
         "scaled by this season's ocean conditions (a law of motion given in next)."

@@ -10,6 +10,10 @@ touches Redis or HTTP, so the router and the tests share it.
   (every combination of shock values).  Two or more state variables: a
   heatmap of the first two at one shock point (others held at their middle
   grid point).  Tabular problems: a bar per state.
+* ``euler_errors`` — the profile of ``diagnostics.euler_errors``: log10 of
+  the Euler-equation error against the state, a line per shock point (gaps
+  where a test point was constrained or undefined), the worst and the mean
+  written on the plot and the mean drawn as a dotted line.
 
 A request for a picture that cannot be drawn (an unknown choice, a shock
 index out of range) raises :class:`service.problems.Problem` (400) naming the
@@ -44,6 +48,7 @@ __all__ = [
     "AxisLayout",
     "axis_layout",
     "convergence_plot",
+    "euler_plot",
     "policy_plot",
     "shock_labels",
     "value_plot",
@@ -275,6 +280,22 @@ def _lines(
     fmt: Format,
 ) -> bytes:
     fig, ax = _figure()
+    _shock_lines(fig, ax, x, shock_axis_values, by_shock, layout, labels)
+    ax.set_xlabel(layout.states[0])
+    ax.set_ylabel(name)
+    return _finish(fig, ax, title, fmt)
+
+
+def _shock_lines(
+    fig: Figure,
+    ax: Any,
+    x: np.ndarray,
+    shock_axis_values: Sequence[Any],
+    by_shock: np.ndarray,
+    layout: AxisLayout,
+    labels: list[str],
+) -> None:
+    """A line per shock point, with a legend, or a colour bar when there are too many for one."""
     count = by_shock.shape[1]
     ramp = count > MAX_LEGEND_LINES
     for j in range(count):
@@ -290,8 +311,38 @@ def _lines(
         _colorbar(fig, ax, _mappable(RAMP, low, high), label)
     elif layout.shocks:
         ax.legend(frameon=False, fontsize=8.5, loc="best")
-    ax.set_xlabel(layout.states[0])
-    ax.set_ylabel(name)
+
+
+def euler_plot(
+    result: dict[str, Any], *, layout: AxisLayout | None = None, title: str | None = None, fmt: Format = "svg"
+) -> bytes:
+    """log10 Euler-equation errors across the state, from ``diagnostics.euler_errors.profile``; 404 without one."""
+    errors = (result.get("diagnostics") or {}).get("euler_errors") or {}
+    profile = errors.get("profile")
+    if not profile:
+        raise Problem(404, "not-found", "this result has no Euler-equation errors to plot (report.euler_errors)")
+    layout = layout or axis_layout(result)
+    axes: dict[str, list[Any]] = result.get("axes") or {}
+    x = np.asarray(profile["at"], dtype=float)
+    by_shock = np.array(profile["log10_error"], dtype=float).reshape(x.size, -1)
+    labels = shock_labels(axes, layout.shocks)
+    labels = labels if len(labels) == by_shock.shape[1] else [""] * by_shock.shape[1]
+    fig, ax = _figure()
+    _shock_lines(fig, ax, x, axes[layout.shocks[0]] if layout.shocks else [], by_shock, layout, labels)
+    power = "$10^{{{:.2f}}}$".format
+    if errors.get("max_log10") is None:
+        words = ["no test point could be measured"]
+    else:
+        ax.axhline(errors["mean_log10"], color=INK, lw=1.0, ls=(0, (1, 2.5)), gid="mean")
+        words = [f"worst {power(errors['max_log10'])}, mean {power(errors['mean_log10'])} (dotted)"]
+    if errors.get("weighted_mean_log10") is not None:
+        words.append(f"weighted by the stationary distribution {power(errors['weighted_mean_log10'])}")
+    counts = [f"{errors.get('points', 0):,} test points"]
+    counts += [f"{errors[key]:,} {key}" for key in ("constrained", "undefined") if errors.get(key)]
+    pooled = f"; the worst of every {profile['pooled']} shown" if profile.get("pooled", 1) > 1 else ""
+    ax.set_title("\n".join([*words, ", ".join(counts) + pooled]), fontsize=8.5, color=INK, loc="left", gid="summary")
+    ax.set_xlabel(profile.get("state") or layout.states[0])
+    ax.set_ylabel(f"log10 Euler-equation error in {errors.get('define', 'c')}")
     return _finish(fig, ax, title, fmt)
 
 

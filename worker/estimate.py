@@ -16,12 +16,17 @@ memory the worker will use:
     kept; each Bellman step is then a scan over tables.  Chosen when the
     tables fit the precompute budget — ``PRECOMPUTE_CAP_SHARE`` of the
     memory cap and at most ``PRECOMPUTE_MAX_BYTES`` — and no hint can be used.
+    With static choices (:mod:`worker.staticchoices`) the tables hold the
+    best reward over them per (point, other choice), filled in compiled code
+    (:mod:`worker.statickernel`), and are chosen whenever they fit, hints or
+    not: the hints then apply to the one other choice (:mod:`worker.hintuse`).
 ``on_the_fly``
     Compiled code evaluates the model's expressions pointwise inside the
     search; nothing of size (points × choice points) is ever allocated.  Chosen
-    when the tables would not fit, and whenever hints can be used: a hinted
-    search looks at a handful of choices per state, so evaluating every pair
-    up front would cost more than all the searches together.
+    when the tables would not fit, and whenever hints can be used on a model
+    without static choices: a hinted search looks at a handful of choices per
+    state, so evaluating every pair up front would cost more than all the
+    searches together.
 
 Times are rough: a count of pointwise evaluations and table reads times
 per-operation costs measured on a 2-core x86 machine (``*_NS`` constants,
@@ -36,6 +41,7 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
 
@@ -72,6 +78,9 @@ POINT_NS = 40.0
 ``pow`` with a runtime exponent dominates)."""
 BOUND_NS = 150.0
 """Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
+STATIC_CLIMB_POINTS = 4
+"""Points a climb along a static choice evaluates per table entry, from the neighbouring entry's best (count;
+"common practice" guess: the start, a step each way and one more)."""
 EXACT_POINTS_PER_ROOT_CHOICE = 5.0
 """The exact block search evaluates about this many points times √(choices) per state: interval
 bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
@@ -134,6 +143,9 @@ class GridPlan:
     table_entries : int
         Entries of the reward tables: ``pairs``, or fewer when static
         choices are maximised out (:mod:`worker.staticchoices`).
+    static_concave : bool
+        The concave hint is also used along the single static choice while
+        the tables are filled (:mod:`worker.statickernel`).
     """
 
     grid_states: int
@@ -152,6 +164,7 @@ class GridPlan:
     budget: int
     reason: str
     table_entries: int = 0
+    static_concave: bool = False
 
     @property
     def hints_active(self) -> bool:
@@ -172,33 +185,6 @@ def precompute_budget(limits: dict[str, Any] | None = None) -> int:
     return int(min(PRECOMPUTE_MAX_BYTES, PRECOMPUTE_CAP_SHARE * int(cap)))
 
 
-def hint_use(model: Any) -> tuple[bool, bool, str | None]:
-    """Which of the requested hints the compiled kernels can use, and a note on any left unused.
-
-    Hints are used only when the model has exactly one choice: ``concave``
-    then means single-peaked along that choice's ordered alternatives, and
-    ``monotone`` needs the choice to be ``next_of`` a state (its *own* state,
-    along which the policy is promised not to fall).
-    """
-    wants_monotone, wants_concave = bool(model.hints.monotone), bool(model.hints.concave)
-    if not (wants_monotone or wants_concave):
-        return False, False, None
-    asked = " and ".join(name for name, on in (("monotone", wants_monotone), ("concave", wants_concave)) if on)
-    if len(model.choices) != 1:
-        return False, False, (
-            f"the {asked} hint{'s' if ' and ' in asked else ''} were not used: hints apply to models with exactly "
-            f"one choice, and this one has {len(model.choices)}; every step searched all choices"
-        )
-    (name, choice), = model.choices.items()
-    if wants_monotone and choice.next_of is None:
-        note = (
-            f"the monotone hint was not used: it needs the choice `{name}` to be next_of a state (the policy "
-            "is promised not to fall along that state)"
-        )
-        return False, wants_concave, note
-    return wants_monotone, wants_concave, None
-
-
 def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str = "howard") -> GridPlan:
     """Sizes and reward storage of a validated ``GridModel``, from sizes alone."""
     grid_states = math.prod(axis.size for axis in model.states.values())
@@ -208,7 +194,6 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     pairs = n * choices
     interpolated = sum(1 for name in model.states if name in model.next)
     nodes = 2**interpolated
-    monotone, concave, note = hint_use(model)
     static = static_choices(model)
     # With static choices the tables run over the other choices only, plus the static choice that wins each entry.
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
@@ -222,19 +207,26 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     on_the_fly_bytes = common + 2 * 8 * n + chunk
 
     budget = precompute_budget(limits)
-    if monotone or concave:
+    fits = table_bytes <= budget
+    use = hint_use(model, static, None if fits else (
+        f"the table of the best reward per (point, remaining choice) would take {table_bytes / _MIB:,.0f} MiB, over "
+        f"the precompute budget of {budget / _MIB:,.0f} MiB"
+    ))
+    monotone, concave, note = use.monotone, use.concave, use.note
+    if (monotone or concave) and not static:
         reward_storage = "on_the_fly"
         reason = (
             "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "
             "code rather than tabulated for all pairs"
         )
-    elif table_bytes <= budget and static:
+    elif fits and static:
         reward_storage = "tables"
         reason = (
             f"{', '.join(f'`{name}`' for name in static)} affect{'s' if len(static) == 1 else ''} nothing tomorrow, "
-            f"so the tables of all {pairs:,} (state, choice) pairs are evaluated once with those choices maximised "
-            f"out ({n * table_choices:,} entries, {table_bytes / _MIB:,.0f} MiB, within the precompute budget of "
+            f"so the model is evaluated once in compiled code with those choices maximised out, into tables of "
+            f"{n * table_choices:,} entries ({table_bytes / _MIB:,.0f} MiB, within the precompute budget of "
             f"{budget / _MIB:,.0f} MiB), and every step scans them"
+            + (f"; {use.used}" if use.used else "")
         )
     elif table_bytes <= budget:
         reward_storage = "tables"
@@ -266,6 +258,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         budget=budget,
         reason=reason,
         table_entries=n * table_choices,
+        static_concave=use.static_concave and reward_storage == "tables",
     )
 
 
@@ -369,11 +362,14 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     evaluation = per_iteration * matrix_entries * MATVEC_NS
     if plan.reward_storage == "tables":
         setup = plan.pairs * NUMPY_PAIR_NS
+        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each)"
+        if plan.table_entries < plan.pairs:
+            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
+            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
+            setup = evaluated * POINT_NS
+            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
         step = plan.table_entries * TABLE_READ_NS
-        how = (
-            f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each), then table scans "
-            f"({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
-        )
+        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
         blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10

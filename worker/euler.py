@@ -42,6 +42,14 @@ number are skipped and counted as ``undefined``.
 interpolated linearly along ``k`` to the test points, renormalised over the
 points measured.  Errors below ``2**-56`` are counted as ``2**-56``, so
 log10 stays finite.
+
+``profile`` lays the errors out across the state for a plot: the test points
+in order, and the log10 error at every shock point, None where the point was
+constrained or undefined.  With more than ``PROFILE_POINTS`` test points,
+consecutive test points are pooled (equal numbers per pool, the last pool
+possibly smaller) and each pool keeps, per shock point, the worst error
+measured in it, at the middle of the pool's range of the state: a peak is
+never smoothed away, so the profile's largest value is ``max_log10``.
 """
 
 from __future__ import annotations
@@ -59,9 +67,11 @@ from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
 __all__ = [
+    "PROFILE_POINTS",
     "TEST_POINTS_PER_GRID_POINT",
     "EulerSetup",
     "between_points",
+    "error_profile",
     "euler_errors",
     "euler_report",
     "grid_policy",
@@ -70,6 +80,12 @@ __all__ = [
 
 TEST_POINTS_PER_GRID_POINT = 10
 """Test points per grid point of the chosen state, at the least (count)."""
+PROFILE_POINTS = 1000
+"""Most state values in ``profile``; more test points are pooled, keeping each pool's worst (count).
+
+About one per pixel column of a picture: more would not show, and a profile
+is stored with every result that asks for the errors.
+"""
 _ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
 _CHUNK_ELEMENTS = 2**18
@@ -246,7 +262,8 @@ def euler_errors(
     dict
         ``max_log10``, ``mean_log10`` (None when no point was measured),
         ``points`` (test points measured), ``constrained``, ``undefined``,
-        ``define`` and, with ``distribution``, ``weighted_mean_log10``.
+        ``define``, ``profile`` (see :func:`error_profile`) and, with
+        ``distribution``, ``weighted_mean_log10``.
     """
     grid = data.state_grids[0]
     n_z = data.n_shocks
@@ -265,6 +282,7 @@ def euler_errors(
         "constrained": int(constrained.sum()),
         "undefined": int(undefined.sum()),
         "define": found.define,
+        "profile": error_profile(found.state, k_all, log_error, measured),
     }
     if distribution is not None:
         weights = grid_policy(grid, np.asarray(distribution, dtype=np.float64).reshape(grid.size, n_z))(k_all)
@@ -273,6 +291,43 @@ def euler_errors(
             float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
         )
     return result
+
+
+def error_profile(state: str, k_points: np.ndarray, log_error: np.ndarray, measured: np.ndarray) -> dict[str, Any]:
+    """The errors across the state, at most ``PROFILE_POINTS`` values of it, for a plot.
+
+    Parameters
+    ----------
+    state : str
+        The state's name.
+    k_points : ndarray
+        The test points, increasing, (m,).
+    log_error, measured : ndarray
+        log10 errors and where they were measured, (m, shock points).
+
+    Returns
+    -------
+    dict
+        ``state``; ``at``, the values of the state, (p,); ``log10_error``,
+        (p, shock points), shock points in flat (C) order, None where nothing
+        was measured; ``pooled``, test points per entry (1: no pooling).
+        With ``m > PROFILE_POINTS``, ``pooled = ceil(m / PROFILE_POINTS)``
+        consecutive test points make one entry: its worst measured error per
+        shock point, at the middle of its first and last test point.
+    """
+    size = max(1, math.ceil(k_points.size / PROFILE_POINTS))
+    count = math.ceil(k_points.size / size)
+    padding = count * size - k_points.size
+    worst = np.pad(np.where(measured, log_error, -np.inf), ((0, padding), (0, 0)), constant_values=-np.inf)
+    worst = worst.reshape(count, size, -1).max(axis=1)
+    starts = np.arange(count) * size
+    at = 0.5 * (k_points[starts] + k_points[np.minimum(starts + size - 1, k_points.size - 1)])
+    return {
+        "state": state,
+        "at": at.tolist(),
+        "log10_error": [[value if value > -np.inf else None for value in row] for row in worst.tolist()],
+        "pooled": size,
+    }
 
 
 def _errors_at(
@@ -409,14 +464,18 @@ def _binding(
 
 
 def euler_report(data: ModelData, discount: float, policy_values: np.ndarray,
-                 distribution: np.ndarray | None = None) -> tuple[dict[str, Any] | None, str | None]:
+                 distribution: np.ndarray | None = None, *,
+                 rule: PolicyRule | None = None) -> tuple[dict[str, Any] | None, str | None]:
     """``(diagnostics.euler_errors, note)`` of a solved grid model: the errors, or None and why (or no note).
 
     ``policy_values`` is the chosen value at every flat point, (n,); ``distribution`` the stationary one, (n,).
+    ``rule`` gives the policy between grid points (a continuous choice: the solved problem's own search
+    there); by default the grid policy interpolated linearly (:func:`grid_policy`).
     """
     found = setup(data)
     if not isinstance(found, EulerSetup):
         return None, found
     values = np.asarray(policy_values, dtype=np.float64).reshape(data.state_grids[0].size, data.n_shocks)
-    rule = grid_policy(data.state_grids[0], values)
+    if rule is None:
+        rule = grid_policy(data.state_grids[0], values)
     return euler_errors(data, found, discount, rule, distribution), None

@@ -25,7 +25,7 @@ import numpy as np
 from worker import _codegen
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.estimate import CHUNK_ELEMENTS
-from worker.expressions import evaluate, parse
+from worker.expressions import Expression, evaluate, parse
 from worker.shocks import product_chain
 
 __all__ = [
@@ -65,6 +65,8 @@ class ModelData:
     choice_is_menu: tuple[bool, ...]
     setter: tuple[int | None, ...]
     source: _codegen.ModelSource
+    span: tuple[Expression, Expression] | None = None
+    """A continuous choice given by min and max: the two bounds; its grid then holds fractions of the interval."""
 
     @property
     def state_sizes(self) -> tuple[int, ...]:
@@ -174,6 +176,11 @@ def model_data(doc: Any) -> ModelData:
                     f"state `{name}` has no law of motion: give next.{name} or a choice with next_of \"{name}\"",
                 )
             next_laws.append((t, parse(model.next[name], path=join_path("model", "next", name))))
+    span = None
+    for name, spec in model.choices.items():
+        if spec.continuous and spec.next_of is None:
+            span = tuple(parse(str(bound), path=join_path("model", "choices", name, key))
+                         for key, bound in (("min", spec.min), ("max", spec.max)))
     source = _codegen.ModelSource(
         params=params,
         states=states,
@@ -198,6 +205,7 @@ def model_data(doc: Any) -> ModelData:
         choice_is_menu=tuple(spec.values is not None for spec in model.choices.values()),
         setter=tuple(setter),
         source=source,
+        span=span,
     )
 
 
@@ -209,6 +217,9 @@ def evaluate_pairs(data: ModelData, rows: np.ndarray, columns: np.ndarray) -> _E
     shape = (rows.size, columns.size)
     src = data.source
     with np.errstate(all="ignore"):
+        if data.span is not None:
+            low, high = (evaluate(bound, env) for bound in data.span)
+            env[data.choices[0]] = low + env[data.choices[0]] * (high - low)
         for name, expr in src.defines:
             env[name] = evaluate(expr, env)
         feasible = np.ones(shape, dtype=bool)

@@ -44,13 +44,17 @@ Reward storage and hints
 :func:`worker.estimate.grid_plan` picks the reward storage (``tables`` of
 every pair, or ``on_the_fly`` pointwise evaluation); both run the same
 generated search code (:mod:`worker._codegen`), in a
-:class:`worker.gridproblem.GridProblem`.  Hints are used when the model has exactly one
-choice (monotone: that choice is ``next_of`` a state); ``restricted=False``
+:class:`worker.gridproblem.GridProblem`.  Hints are used along one choice (monotone: that
+choice is ``next_of`` a state): the model's only choice, or the one left when
+the others affect nothing tomorrow and are maximised out into tables
+(:mod:`worker.hintuse` says which hint applies to which choice, and notes every
+one that cannot be used); ``restricted=False``
 always searches every allowed choice exactly — on the fly by a
 branch-and-bound over blocks of choices whose bounds are sound, so its
 answer equals the exhaustive search bit for bit.  With reward tables, choices
 that affect nothing tomorrow are maximised out within the period first
-(:mod:`worker.staticchoices`); the kernels see the other choices only.
+(:mod:`worker.staticchoices`, in compiled code: :mod:`worker.statickernel`);
+the kernels see the other choices only.
 
 When the structure's kernels are not compiled on this machine yet and the
 problem is small, :func:`compile_grid` returns a
@@ -61,6 +65,7 @@ background; see :mod:`worker.bridge`.
 
 from __future__ import annotations
 
+import dataclasses
 import time
 from typing import Any
 
@@ -74,6 +79,7 @@ from worker.gridproblem import GridProblem
 from worker.gridtables import RewardTables, precompute_tables, reduce_static
 from worker.reference import ReferenceProblem
 from worker.staticchoices import static_choices
+from worker.statickernel import static_tables
 
 __all__ = ["compile_grid"]
 
@@ -100,6 +106,10 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     InfeasibleModel
         Some point has no allowed choice.
     """
+    if doc.model.continuous_choice() is not None:
+        from worker.continuous import compile_continuous
+
+        return compile_continuous(doc)
     started = time.perf_counter()
     plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
     chosen = reward_storage or plan.reward_storage
@@ -110,6 +120,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     static = static_choices(doc.model) if backend == "table" else ()
     data = reduce_static(full, static) if static else full
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
+    if plan.hints_active and layout.hinted_axis is None:
+        plan = _hints_dropped(plan, chosen)
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
@@ -118,7 +130,10 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     counts: dict[str, Any]
     tables: RewardTables | None
     if backend == "table":
-        tables, counts = _tables(full, static)
+        tables, counts = _tables(full, static, compiled=True, climb=plan.static_concave)
+        if counts.get("static_note"):
+            note = counts["static_note"]
+            plan = dataclasses.replace(plan, hint_note=f"{plan.hint_note}; {note}" if plan.hint_note else note)
     else:
         tables = None
         counts = {"feasibility": feasibility_scan(data, None)}
@@ -141,9 +156,18 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     return problem
 
 
-def _tables(data: ModelData, static: tuple[str, ...]) -> tuple[RewardTables, dict[str, Any]]:
-    """The reward tables (``static`` choices maximised out), or the error naming the points with no allowed choice."""
-    tables, counts = precompute_tables(data, static)
+def _tables(
+    data: ModelData, static: tuple[str, ...], *, compiled: bool = False, climb: bool = False
+) -> tuple[RewardTables, dict[str, Any]]:
+    """The reward tables (``static`` choices maximised out), or the error naming the points with no allowed choice.
+
+    ``compiled`` fills the tables of static choices in compiled code (:mod:`worker.statickernel`; ``climb``:
+    with the concave hint along the static choice); otherwise, and without static choices, numpy evaluates them.
+    """
+    if compiled and static:
+        tables, counts = static_tables(data, static, climb=climb)
+    else:
+        tables, counts = precompute_tables(data, static)
     stuck = np.flatnonzero(~counts["any_allowed"])
     if stuck.size:
         raise infeasible(data, stuck, counts["any_feasible"])
@@ -186,3 +210,18 @@ def _bridged(
     )
     problem.timings = {"prepare_s": time.perf_counter() - started, "compile_s": 0.0}
     return problem
+
+
+def _hints_dropped(plan: GridPlan, reward_storage: str) -> GridPlan:
+    """``plan`` with its hints off, and a note saying so, when the forced ``reward_storage`` leaves several
+    choices to search together (the hinted search runs along one)."""
+    used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
+    note = (
+        f"the {used} hint{'s were' if ' and ' in used else ' was'} not used: reward storage `{reward_storage}` was "
+        "forced, where the choices that affect nothing tomorrow are not maximised out, so several choices remain "
+        "to be searched together; every step searched all combinations"
+    )
+    return dataclasses.replace(
+        plan, monotone=False, concave=False, static_concave=False,
+        hint_note=f"{plan.hint_note}; {note}" if plan.hint_note else note,
+    )

@@ -155,6 +155,10 @@ def simulate_report(
         of every path; ``first_path``: per axis its values along path 0
         (tabular: state labels), per choice the chosen values.
     """
+    if getattr(problem, "choose_at", None) is not None:
+        from worker.continuous.paths import simulate_paths
+
+        return simulate_paths(problem, policy, spec, path, long_run_distribution)
     periods, paths = int(spec.periods), int(spec.paths)
     seed = spec.seed
     rng = np.random.default_rng(seed)

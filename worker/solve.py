@@ -288,7 +288,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
         warnings += simulation.pop("warnings", [])
-    euler = _euler_errors(doc, problem, outcome.policy, stationary, problem_diagnostics)
+    euler = _euler_errors(doc, problem, outcome, stationary, problem_diagnostics)
     diagnostics = {
         **problem_diagnostics,
         **euler,
@@ -324,7 +324,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
 
 
 def _euler_errors(
-    doc: Any, problem: CompiledProblem, policy: np.ndarray, stationary: dict[str, Any] | None,
+    doc: Any, problem: CompiledProblem, outcome: SolveOutcome, stationary: dict[str, Any] | None,
     problem_diagnostics: dict[str, Any],
 ) -> dict[str, Any]:
     """``{"euler_errors": ...}`` when ``report.euler_errors`` asks and :mod:`worker.euler` applies; else ``{}``
@@ -334,7 +334,8 @@ def _euler_errors(
     from worker.euler import euler_report
     from worker.gridproblem import GridProblem
 
-    if not isinstance(problem, GridProblem):
+    continuous = getattr(problem, "choose_at", None) is not None
+    if not isinstance(problem, GridProblem) and not continuous:
         problem_diagnostics.setdefault("notes", []).append(
             "Euler-equation errors were not measured: they apply to grid models"
         )
@@ -344,7 +345,9 @@ def _euler_errors(
     started = time.perf_counter()
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
-    errors, note = euler_report(data, doc.discount, problem.choice_values(policy)[choice], distribution)
+    rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
+    errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice], distribution,
+                                rule=rule)
     if note is not None:
         problem_diagnostics.setdefault("notes", []).append(note)
     if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):

@@ -1,5 +1,6 @@
 // One job: its record, a convergence plot fed live by the log's event stream,
-// and once solved the value and policy plots, diagnostics and downloads.
+// and once solved the value and policy plots (and Euler-equation errors when measured),
+// diagnostics and downloads.
 "use strict";
 
 (() => {
@@ -369,7 +370,30 @@
     policyShock.onchange = update;
     choiceSelect.onchange = update;
     if (plots.value !== false) update();
+    showEulerErrors(summary);
     document.getElementById("pictures").classList.remove("hidden");
+  }
+
+  // The profile itself stays on the server, which draws it like the value and policy plots;
+  // the summary carries the worst and mean errors, written beside the picture.
+  function showEulerErrors(summary) {
+    const errors = (summary.diagnostics || {}).euler_errors;
+    const shown = Boolean(errors && summary.euler_profile);
+    document.getElementById("euler-figure").classList.toggle("hidden", !shown);
+    if (!shown) return;
+    const power = (value) => [el("span", { text: "10" }), el("sup", { text: value.toFixed(2).replace("-", "−") })];
+    const words = [];
+    if (Number.isFinite(errors.max_log10)) {
+      words.push("worst ", ...power(errors.max_log10), ", mean ", ...power(errors.mean_log10));
+      if (Number.isFinite(errors.weighted_mean_log10)) words.push(", weighted by the stationary distribution ", ...power(errors.weighted_mean_log10));
+      words.push(` over ${formatCount(errors.points)} test points`);
+    } else {
+      words.push("no test point could be measured");
+    }
+    if (errors.constrained) words.push(`; ${formatCount(errors.constrained)} constrained`);
+    if (errors.undefined) words.push(`; ${formatCount(errors.undefined)} undefined`);
+    document.getElementById("euler-summary").replaceChildren(...words.map((part) => (part instanceof Node ? part : document.createTextNode(part))));
+    document.getElementById("euler-plot").src = `${base}/plots/euler_errors.svg`;
   }
 
   function showDownloads(summary, valueUrl, policyUrl) {
@@ -384,6 +408,7 @@
       links.push(["value plot (PNG)", valueUrl("png"), `${jobId}-value.png`]);
       links.push(["policy plot (PNG)", policyUrl("png"), `${jobId}-policy.png`]);
     }
+    if (summary.euler_profile) links.push(["Euler-error plot (PNG)", `${base}/plots/euler_errors.png`, `${jobId}-euler-errors.png`]);
     document.getElementById("downloads").replaceChildren(...links.map(([text, href, download]) => el("a", { class: "button quiet", href, download, text })));
     document.getElementById("downloads-card").classList.remove("hidden");
   }

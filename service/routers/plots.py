@@ -6,10 +6,14 @@
   (``?shock_index=I`` picks the shock point of a heatmap by its flat index,
   ``?choice=NAME`` the policy's choice by its name); an expired result is
   410, as on ``/result``;
+* ``euler_errors.svg|png`` — the profile of ``diagnostics.euler_errors``
+  across the state, once ``done``; 404 when the result has none;
 * ``GET /v1/jobs/{id}/plots`` — a small JSON summary of a solved job: which
   picture layout applies, the choices and shock points to pick from, and the
-  result's status and diagnostics without its arrays (the dashboard reads it
-  instead of downloading a possibly large result).
+  result's status and diagnostics without its arrays (``euler_errors``
+  without its ``profile``; ``euler_profile`` is true when there is one to
+  picture).  The dashboard reads it instead of downloading a possibly large
+  result.
 """
 
 from __future__ import annotations
@@ -33,7 +37,7 @@ LOG_PAGE = 1000
 DONE_MAX_AGE_S = 3600
 """How long a browser may reuse a picture of a finished job, in seconds (it never changes)."""
 
-Picture = Literal["convergence", "value", "policy"]
+Picture = Literal["convergence", "value", "policy", "euler_errors"]
 Format = Literal["svg", "png"]
 MEDIA_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
 
@@ -60,7 +64,8 @@ def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
             key: result.get(key)
             for key in ("status", "method", "error_bound", "iterations", "evaluation_steps", "linear_solves", "seconds")
         },
-        "diagnostics": result.get("diagnostics") or {},
+        "diagnostics": _without_profile(result.get("diagnostics") or {}),
+        "euler_profile": bool(((result.get("diagnostics") or {}).get("euler_errors") or {}).get("profile")),
         "stationary": _without(result.get("stationary"), "distribution"),
         "simulation": _without(result.get("simulation"), "first_path"),
     }
@@ -92,7 +97,7 @@ def plot(
         ),
     ] = None,
 ) -> Response:
-    """A picture of a job: its convergence log, value function or policy, as SVG or PNG."""
+    """A picture of a job: its convergence log, value function, policy or Euler-equation errors, as SVG or PNG."""
     plots = _plots()
     job = readable_job(store, owner, job_id)
     title = job.get("label") or None
@@ -109,6 +114,8 @@ def plot(
         layout = plots.axis_layout(result, store.get_document(job_id))
         if picture == "value":
             body = plots.value_plot(result, layout=layout, shock_index=shock_index, title=title, fmt=fmt)
+        elif picture == "euler_errors":
+            body = plots.euler_plot(result, layout=layout, title=title, fmt=fmt)
         else:
             body = plots.policy_plot(
                 result, layout=layout, choice=choice, shock_index=shock_index, title=title, fmt=fmt
@@ -156,3 +163,10 @@ def _whole_log(store: JobStore, job_id: str) -> list[dict[str, Any]]:
 
 def _without(block: dict[str, Any] | None, key: str) -> dict[str, Any] | None:
     return None if block is None else {k: v for k, v in block.items() if k != key}
+
+
+def _without_profile(diagnostics: dict[str, Any]) -> dict[str, Any]:
+    """The diagnostics with ``euler_errors.profile`` left out: its arrays are for the picture."""
+    if not isinstance(diagnostics.get("euler_errors"), dict):
+        return diagnostics
+    return {**diagnostics, "euler_errors": _without(diagnostics["euler_errors"], "profile")}

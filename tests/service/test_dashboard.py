@@ -27,6 +27,7 @@ from websockets.sync.client import connect
 from service.embedded_redis import EmbeddedRedis
 from service.examples import load_example
 from service.routers.dashboard import SESSION_COOKIE
+from tests._documents import log_growth
 from tests.service._live_server import LiveServer, wait_until_finished
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser")
@@ -315,6 +316,10 @@ def test_a_job_is_followed_live_from_queued_to_solved(
     assert f"/v1/jobs/{job_id}/result" in links and f"/v1/jobs/{job_id}/result?format=csv" in links
     for link in links:
         assert api.get(link).status_code == 200, link
+    # No Euler-equation errors were asked for: no such picture, and none asked of the server.
+    assert page.evaluate("document.getElementById('euler-figure').classList.contains('hidden')")
+    assert not any("euler_errors" in url for url, _ in page.requested())
+    assert api.get(f"/v1/jobs/{job_id}/plots/euler_errors.svg").status_code == 404
     page.screenshot("job-household-saving")
     assert page.problems() == []
 
@@ -376,6 +381,58 @@ def test_two_state_models_offer_shock_and_choice_pickers(
     assert tab.evaluate("document.getElementById('policy-plot').src") != first
     assert "shock_index=1" in tab.evaluate("document.getElementById('policy-plot').src")
     tab.screenshot("job-roastery-heatmaps")
+    assert tab.problems() == []
+
+
+EULER_SHOWN = (
+    PLOTS_SHOWN + " && !document.getElementById('euler-figure').classList.contains('hidden')"
+    " && (img => img.complete && img.naturalWidth > 0)(document.getElementById('euler-plot'))"
+)
+
+
+def test_euler_equation_errors_are_plotted_across_the_state(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
+    server.ensure_worker()
+    # Growth with log utility and full depreciation (the Brock & Mirman 1972 form); every number is invented.
+    model = log_growth(alpha=0.33, k_min=0.04, k_max=0.45, points=150, hints={"monotone": True, "concave": True})
+    document = {
+        "version": 1,
+        "label": "orchard growth, log utility (invented)",
+        "discount": 0.94,
+        "model": model,
+        "solver": {"method": "howard", "tolerance": 1e-9},
+        "report": {"euler_errors": True, "stationary": True},
+    }
+    job_id = submit(api, document)
+    assert wait_until_finished(api, job_id)["state"] == "done"
+    errors = api.get(f"/v1/jobs/{job_id}/result").json()["diagnostics"]["euler_errors"]
+    profile = errors["profile"]
+    summary = api.get(f"/v1/jobs/{job_id}/plots").json()
+    assert summary["euler_profile"] is True and "profile" not in summary["diagnostics"]["euler_errors"]
+    assert summary["diagnostics"]["euler_errors"]["max_log10"] == errors["max_log10"]
+
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for(EULER_SHOWN)
+    shown = tab.evaluate("document.getElementById('euler-plot').src")
+    assert shown.endswith(f"/v1/jobs/{job_id}/plots/euler_errors.svg")
+    words = tab.evaluate("document.getElementById('euler-summary').textContent")
+    assert f"worst 10{errors['max_log10']:.2f}".replace("-", "−") in words
+    assert f"mean 10{errors['mean_log10']:.2f}".replace("-", "−") in words
+    assert f"{errors['points']:,} test points" in words and "weighted by the stationary distribution" in words
+
+    # The picture the page shows: a line per shock point (two here) and the mean, drawn from the profile.
+    picture = api.get(f"/v1/jobs/{job_id}/plots/euler_errors.svg")
+    assert picture.status_code == 200 and picture.headers["content-type"].startswith("image/svg+xml")
+    for gid in ("series-0", "series-1", "mean"):
+        assert f'id="{gid}"' in picture.text, gid
+    assert 'id="series-2"' not in picture.text
+    assert len(profile["at"]) == len(profile["log10_error"]) and len(profile["log10_error"][0]) == 2
+    links = tab.evaluate("[...document.querySelectorAll('#downloads a')].map(a => a.getAttribute('href'))")
+    assert f"/v1/jobs/{job_id}/plots/euler_errors.png" in links
+    assert api.get(f"/v1/jobs/{job_id}/plots/euler_errors.png").content[:8] == b"\x89PNG\r\n\x1a\n"
+    tab.screenshot("job-euler-errors")
     assert tab.problems() == []
 
 

@@ -71,7 +71,8 @@ def test_unusable_hints_are_explained() -> None:
     two = {"k_next": {"next_of": "k"}, "effort": {"values": [0.0, 1.0]}}
     size = estimate(parse_document(growth_document(hints={"concave": True}, choices=two)))
     assert size["reward_storage"] == "tables"
-    assert any("exactly one choice" in note for note in size["notes"])
+    # `effort` affects nothing tomorrow: it is maximised out and the hint applies to `k_next`.
+    assert any("the concave hint applies to `k_next`" in note for note in size["notes"])
     own = growth_document(
         hints={"monotone": True, "concave": True}, choices={"k_next": {"min": 1.0, "max": 9.0, "points": 50}}
     )

@@ -154,3 +154,59 @@ def test_a_tabular_model_that_asks_gets_a_note_instead() -> None:
     diagnostics = solve(document)["diagnostics"]
     assert "euler_errors" not in diagnostics
     assert any("grid models" in note for note in diagnostics["notes"])
+
+
+def test_the_profile_is_bounded_and_keeps_the_worst_of_each_pool() -> None:
+    # A policy off by a known factor has the same error everywhere (closed form above), so every entry of
+    # the profile, pooled or not, must carry it; 200 grid points give more test points than the bound.
+    data = _data(_document(200))
+    found = euler.setup(data)
+    z = data.shock_table[:, 0]
+    share = 1.025 * ALPHA * BETA
+    errors = euler.euler_errors(data, found, BETA, lambda k: share * z[None, :] * k[:, None] ** ALPHA)
+    profile = errors["profile"]
+    tests = euler.between_points(data.state_grids[0])
+    assert tests.size > euler.PROFILE_POINTS
+    assert profile["state"] == "k" and profile["pooled"] == math.ceil(tests.size / euler.PROFILE_POINTS)
+    assert len(profile["at"]) == len(profile["log10_error"]) <= euler.PROFILE_POINTS
+    assert all(len(row) == 3 for row in profile["log10_error"])
+    at = np.array(profile["at"])
+    assert np.all(np.diff(at) > 0) and tests[0] <= at[0] and at[-1] <= tests[-1]
+    values = np.array(profile["log10_error"], dtype=float)
+    assert values == pytest.approx(math.log10(0.025), abs=1e-9)
+    assert values.max() == errors["max_log10"]
+
+
+def test_the_profile_pools_like_a_plain_loop() -> None:
+    # Against a loop written here: pools of `size` consecutive test points, the worst measured per shock point.
+    rng = np.random.default_rng(11)
+    points = 2 * euler.PROFILE_POINTS + 7
+    k_points = np.sort(rng.uniform(0.0, 5.0, points))
+    log_error = rng.uniform(-8.0, -1.0, (points, 2))
+    measured = rng.random((points, 2)) > 0.3
+    measured[:40, 0] = False  # a whole pool with nothing measured at shock point 0
+    profile = euler.error_profile("wealth", k_points, log_error, measured)
+    size = 3
+    assert profile["pooled"] == size and len(profile["at"]) == math.ceil(points / size) <= euler.PROFILE_POINTS
+    for entry, start in enumerate(range(0, points, size)):
+        stop = min(start + size, points)
+        assert profile["at"][entry] == pytest.approx(0.5 * (k_points[start] + k_points[stop - 1]))
+        for j in range(2):
+            seen = [log_error[i, j] for i in range(start, stop) if measured[i, j]]
+            assert profile["log10_error"][entry][j] == (max(seen) if seen else None)
+    assert profile["log10_error"][0][0] is None
+
+
+def test_constrained_test_points_are_gaps_in_the_profile() -> None:
+    data = _data(_document())
+    found = euler.setup(data)
+    exact = _exact_policy(data)
+    errors = euler.euler_errors(data, found, BETA, lambda k: np.maximum(exact(k) - 0.08, 0.05))
+    profile = errors["profile"]
+    assert profile["pooled"] == 1  # 50 grid points: fewer test points than the bound, so one entry each
+    assert profile["at"] == euler.between_points(data.state_grids[0]).tolist()
+    cells = [value for row in profile["log10_error"] for value in row]
+    assert errors["constrained"] > 0
+    assert sum(value is None for value in cells) == errors["constrained"] + errors["undefined"]
+    assert max(value for value in cells if value is not None) == errors["max_log10"]
+    assert sum(value for value in cells if value is not None) / errors["points"] == pytest.approx(errors["mean_log10"])

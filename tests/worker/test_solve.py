@@ -22,8 +22,9 @@ import pytest
 
 import worker
 from tests._documents import idle_busy_worn, log_growth
-from worker import METHODS, Canceled, InvalidDocument, TooLarge, solve
+from worker import Canceled, InvalidDocument, TooLarge, solve
 from worker.solve import compile_document
+from worker.solvers import GENERAL_METHODS
 from worker.tabular import TabularProblem
 
 REPO = os.path.dirname(os.path.dirname(os.path.dirname(os.path.abspath(__file__))))
@@ -86,7 +87,7 @@ def _assert_plain(node) -> None:
         assert node is None or type(node) in (str, int, float, bool), type(node)
 
 
-@pytest.mark.parametrize("method", sorted(METHODS))
+@pytest.mark.parametrize("method", sorted(GENERAL_METHODS))
 def test_every_method_solves_the_machine_shop(method):
     document = worn_machine(method=method)
     result = solve(copy.deepcopy(document))
@@ -324,3 +325,11 @@ def test_a_grid_warm_start_is_carried_onto_a_finer_grid():
     assert warm["status"] == "converged"
     assert warm["iterations"] < cold["iterations"]
     assert warm["policy_index"] == cold["policy_index"]
+
+
+def test_endogenous_grid_is_refused_for_a_model_not_of_its_form():
+    document = worn_machine(method="endogenous_grid")
+    with pytest.raises(InvalidDocument) as caught:
+        solve(copy.deepcopy(document))
+    assert caught.value.errors[0]["path"] == "solver.method"
+    assert "continuous" in caught.value.errors[0]["message"]

@@ -14,7 +14,7 @@ from worker._codegen.writer import KernelWriter
 __all__ = ["generator_hash", "module_source"]
 
 _WORKER = pathlib.Path(__file__).resolve().parent.parent
-_GENERATORS = ("_codegen/*.py", "expressions/*.py", "_slopes.py", "kernels.py")
+_GENERATORS = ("_codegen/*.py", "continuous/*.py", "expressions/*.py", "_slopes.py", "kernels.py")
 """The files whose text decides a generated module's text or the jitted code it links to
 (patterns under ``worker/``)."""
 

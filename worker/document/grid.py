@@ -32,7 +32,7 @@ from worker.document._fields import (
     Spacing,
     Vector,
 )
-from worker.document.limits import DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
+from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
 from worker.errors import InvalidDocument, join_path
 
@@ -112,7 +112,8 @@ class GridAxis(Part):
 
 class ChoiceSpec(Part):
     """A choice made each period: tomorrow's value of a state picked from that state's grid
-    (next_of), a finite menu of values, or a grid of its own (min, max, points)."""
+    (next_of), a finite menu of values, or a grid of its own (min, max, points); or, with
+    continuous, any value of an interval."""
 
     next_of: Name | None = Field(
         default=None,
@@ -121,21 +122,51 @@ class ChoiceSpec(Part):
     values: Vector | None = Field(
         default=None, description="A finite menu of values to choose from, strictly increasing."
     )
-    min: float | None = _grid_field("min")
-    max: float | None = _grid_field("max")
-    points: Points | None = _grid_field("points")
+    min: float | Expression | None = Field(
+        default=None,
+        description=(
+            "Smallest grid value; for a continuous choice, the lower end of the interval, a number or an "
+            "expression of today's states, shocks and params."
+        ),
+    )
+    max: float | Expression | None = Field(
+        default=None,
+        description=(
+            "Largest grid value, greater than min; for a continuous choice, the upper end of the interval, a "
+            "number or an expression of today's states, shocks and params (cash on hand, say)."
+        ),
+    )
+    points: Points | None = Field(
+        default=None,
+        description=(
+            f"Number of grid points, 2 to {MAX_POINTS:,}; for a continuous choice with min and max, the points "
+            f"of the scan that starts a search without hints (default {CONTINUOUS_SCAN_POINTS})."
+        ),
+    )
     spacing: Spacing | None = _grid_field("spacing")
     exponent: Positive | None = _grid_field("exponent")
+    continuous: bool = Field(
+        default=False,
+        description=(
+            "Choose any value of an interval instead of a point of a grid: with next_of, tomorrow's value of "
+            "that state anywhere between its grid's ends; with min and max, any number between them. "
+            "Tomorrow's value is interpolated between grid points as model.interpolation says. A model with "
+            "a continuous choice has no other choice."
+        ),
+    )
 
     _target: GridAxis | None = PrivateAttr(default=None)
 
     @property
     def size(self) -> int:
-        """Number of alternatives (for ``next_of``, the size of that state's grid)."""
+        """Number of alternatives (for ``next_of``, the size of that state's grid; for a continuous
+        choice, the points of its scan)."""
         if self.next_of is not None:
             if self._target is None:
                 raise ValueError("the size of a next_of choice is known only inside a validated GridModel")
             return self._target.size
+        if self.continuous:
+            return self.points or CONTINUOUS_SCAN_POINTS
         return self.points if self.values is None else int(self.values.size)
 
     def grid(self, *, path: str = "") -> np.ndarray:
@@ -146,12 +177,25 @@ class ChoiceSpec(Part):
             return self._target.grid(path=path)
         if self.values is not None:
             return self.values.copy()
+        if self.continuous:
+            # The bounds may be expressions of the state: the scan's points are fractions of the interval.
+            return np.linspace(0.0, 1.0, self.size)
         from worker.grids import build_grid
 
         return build_grid(self.spacing, self.min, self.max, self.points, self.exponent or DEFAULT_EXPONENT, path=path)
 
     @model_validator(mode="after")
     def _check_choice(self) -> ChoiceSpec:
+        if self.continuous:
+            raise_faults(_continuous_faults(self))
+            return self
+        written = [key for key in ("min", "max") if isinstance(getattr(self, key), str)]
+        if written:
+            raise_faults([
+                fault(key, "must be a number here; expressions are allowed only in the bounds of a continuous "
+                      "choice (add \"continuous\": true)")
+                for key in written
+            ])
         form, faults = form_faults(
             self,
             {"next_of": ("next_of",), "values": ("values",), "range": RANGE_KEYS},
@@ -167,6 +211,37 @@ class ChoiceSpec(Part):
             )
         raise_faults(faults)
         return self
+
+
+def _continuous_faults(choice: ChoiceSpec) -> list[Fault]:
+    """Faults of a continuous choice: ``next_of`` alone, or ``min`` and ``max`` (and the scan's ``points``)."""
+    if choice.next_of is not None:
+        keys = ("values", "min", "max", "points", "spacing", "exponent")
+        extra = [key for key in keys if getattr(choice, key) is not None]
+        return [
+            fault(key, f"a continuous next_of choice takes any value between the ends of `{choice.next_of}`'s grid; "
+                  f"drop `{key}`")
+            for key in extra
+        ]
+    faults = [
+        fault(key, f"a continuous choice chooses any value of an interval, so it has no `{key}`")
+        for key in ("values", "spacing", "exponent")
+        if getattr(choice, key) is not None
+    ]
+    faults += [
+        fault(key, f"missing `{key}`: a continuous choice needs next_of, or min and max (numbers or expressions)")
+        for key in ("min", "max")
+        if getattr(choice, key) is None
+    ]
+    faults += [
+        fault(key, f"the bounds of a continuous choice must be finite, got {number(getattr(choice, key))}")
+        for key in ("min", "max")
+        if isinstance(getattr(choice, key), float) and not math.isfinite(getattr(choice, key))
+    ]
+    low, high = choice.min, choice.max
+    if not faults and isinstance(low, float) and isinstance(high, float) and not high > low:
+        faults.append(fault("max", f"max ({number(high)}) must be greater than min ({number(low)})"))
+    return faults
 
 
 class Hints(Part):
@@ -226,6 +301,19 @@ class GridModel(Part):
         description="Conditions (expressions) that must all hold for a choice to be allowed in a state.",
     )
     hints: Hints = Field(default_factory=Hints, description="Optional speed promises.")
+    interpolation: Literal["linear", "monotone_cubic"] = Field(
+        default="linear",
+        description=(
+            'How tomorrow\'s value is read between grid points for a continuous choice: "linear" (the default; '
+            "the error bound then certifies the interpolated problem) or \"monotone_cubic\" (Fritsch–Carlson, "
+            "shape-preserving and far more accurate for smooth models; one state only; its error bound is "
+            "computed the same way but is not a proof)."
+        ),
+    )
+
+    def continuous_choice(self) -> str | None:
+        """The name of the model's continuous choice, or None."""
+        return next((name for name, choice in self.choices.items() if choice.continuous), None)
 
     def axis_sizes(self) -> dict[str, int]:
         """Size of each axis of the value array, in array-axis order: states, then shocks."""
@@ -304,7 +392,46 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
 
 def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
-    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model)
+    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + _continuous_model_faults(model)
+
+
+def _continuous_model_faults(model: Any) -> list[Fault]:
+    """Faults of a continuous choice within its model, and of ``interpolation``."""
+    continuous = [name for name, choice in model.choices.items() if choice.continuous]
+    faults = []
+    if continuous and len(model.choices) > 1:
+        others = ", ".join(f"`{name}`" for name in model.choices if name != continuous[0])
+        faults.append(fault(
+            join_path("choices", continuous[0], "continuous"),
+            f"a continuous choice must be the model's only choice, and this model also has {others}; make them "
+            "discrete, or give them a continuous model of their own",
+        ))
+    known = [*model.params, *model.states, *model.shocks]
+    for name in continuous:
+        for key in ("min", "max"):
+            text = getattr(model.choices[name], key)
+            if isinstance(text, str):
+                where = join_path("choices", name, key)
+                later = set(model.choices) | set(model.define)
+                try:
+                    expression = expressions.parse(text, path=where)
+                    used = sorted(expression.names & later)
+                    if used:
+                        names = ", ".join(f"`{n}`" for n in used)
+                        faults.append(fault(where, f"uses {names}: the bounds of a continuous choice may use only "
+                                            "params, states and shocks"))
+                        continue
+                    expressions.check_names(expression, known, path=where)
+                except InvalidDocument as exc:
+                    faults += exc.errors
+    if model.interpolation == "monotone_cubic":
+        if not continuous:
+            faults.append(fault("interpolation", 'monotone_cubic interpolation applies to a model with a continuous '
+                                'choice; a discrete choice reads tomorrow\'s value at grid points or linearly'))
+        elif len(model.states) != 1:
+            faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
+                                f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
+    return faults
 
 
 def _name_faults(model: Any) -> list[Fault]:

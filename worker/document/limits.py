@@ -80,5 +80,9 @@ ROW_SUM_TOLERANCE = 1e-9
 DEFAULT_WIDTH = 3.0
 """Tauchen grid half-width (unconditional standard deviations; common practice)."""
 
+CONTINUOUS_SCAN_POINTS = 101
+"""Points of the scan that starts the search of a continuous choice given by min and max when no
+hint applies (count; a next_of choice scans its state's grid)."""
+
 DEFAULT_EXPONENT = 2.0
 """Exponent of ``power`` spacing (dimensionless)."""

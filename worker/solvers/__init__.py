@@ -51,13 +51,14 @@ from typing import Callable
 import numpy as np
 
 from worker.defaults import DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
+from worker.errors import InvalidDocument
 from worker.problem import CompiledProblem
 from worker.solvers.evaluation import evaluation_steps as _evaluation_steps
 from worker.solvers.evaluation import exact_evaluation, no_evaluation
 from worker.solvers.loop import Step, iterate, meets, options
 from worker.solvers.outcome import RATE_FLOOR_ULPS, ROUNDING_ULPS, Checkpoint, Entry, SolveOutcome, observed_rate
 
-__all__ = ["METHODS", "RATE_FLOOR_ULPS", "ROUNDING_ULPS", "Checkpoint", "SolveOutcome", "observed_rate"]
+__all__ = ["GENERAL_METHODS", "METHODS", "RATE_FLOOR_ULPS", "ROUNDING_ULPS", "Checkpoint", "SolveOutcome", "observed_rate"]
 
 
 def _value_iteration(
@@ -132,7 +133,21 @@ def _policy_iteration(
     return iterate(problem, initial, settings, "policy_iteration", exact_evaluation, accept)
 
 
+def _endogenous_grid(problem: CompiledProblem, initial: np.ndarray, **options: object) -> SolveOutcome:
+    """The endogenous grid method, for problems that offer it (``solve_endogenous_grid``), certified by
+    Howard's method from the method's policy value; see :mod:`worker.continuous.egm`."""
+    solve = getattr(problem, "solve_endogenous_grid", None)
+    if solve is None or getattr(problem, "egm_form", None) is None:
+        raise InvalidDocument.at(
+            "solver.method",
+            "the endogenous grid method applies to a grid model whose one choice is continuous and next_of its one "
+            "state; use howard, value_iteration or policy_iteration",
+        )
+    return solve(initial, _howard, **options)
+
+
 METHODS: dict[str, Callable[..., SolveOutcome]] = {
+    "endogenous_grid": _endogenous_grid,
     "howard": _howard,
     "policy_iteration": _policy_iteration,
     "value_iteration": _value_iteration,
@@ -141,3 +156,6 @@ METHODS: dict[str, Callable[..., SolveOutcome]] = {
 time_limit_s, checkpoint_s, evaluation_steps, on_progress, checkpoint,
 should_stop, fingerprint) -> SolveOutcome``.  ``worker.document.METHOD_NAMES``
 is read from it."""
+
+GENERAL_METHODS = ("howard", "policy_iteration", "value_iteration")
+"""The methods that solve every compiled problem (``endogenous_grid`` needs a model of its form)."""

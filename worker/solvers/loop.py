@@ -133,7 +133,7 @@ class Run:
         self.linear_solves = int(state.get("linear_solves", 0))
         self.log = ConvergenceLog([dict(entry) for entry in state["log"]][: self.iteration])
         policy = state.get("policy")
-        self.policy = None if policy is None else np.asarray(policy, dtype=np.int64).copy()
+        self.policy = None if policy is None else _policy_array(policy)
         self.restricted = bool(state.get("restricted", self.restricted))
         verification = state.get("verification")
         self.verification = None if verification is None else dict(verification)
@@ -197,7 +197,7 @@ class Run:
         """A Bellman step at the current iterate, measured against the last policy; nothing is recorded."""
         tv, policy = self.problem.bellman_step(self.v, restricted=restricted, policy_guess=self.policy)
         tv = np.asarray(tv, dtype=np.float64)
-        policy = np.asarray(policy, dtype=np.int64)
+        policy = _policy_array(policy)
         if not np.isfinite(tv).all():
             bad = np.flatnonzero(~np.isfinite(tv))
             raise InvalidDocument.at(
@@ -209,7 +209,7 @@ class Run:
         d_min, d_max = float(d.min()), float(d.max())
         k = self.beta / (1.0 - self.beta)
         scale = max(float(np.abs(tv).max()), float(np.abs(self.v).max()))
-        changes = self.problem.n if self.policy is None else int(np.count_nonzero(policy != self.policy))
+        changes = self.problem.n if self.policy is None else _changes(self.problem, policy, self.policy)
         return Step(
             tv=tv,
             policy=policy,
@@ -293,6 +293,20 @@ class Run:
             seconds=self.elapsed(),
             verification=None if self.verification is None else dict(self.verification),
         )
+
+
+def _policy_array(policy: np.ndarray) -> np.ndarray:
+    """A policy as the solvers keep it: int64 indices, or float64 values for a continuous choice."""
+    array = np.asarray(policy)
+    return array.astype(np.float64) if array.dtype.kind == "f" else array.astype(np.int64)
+
+
+def _changes(problem: CompiledProblem, policy: np.ndarray, before: np.ndarray) -> int:
+    """Points whose choice changed; a continuous choice must move by more than ``policy_resolution``."""
+    if policy.dtype.kind == "f":
+        resolution = float(getattr(problem, "policy_resolution", 0.0))
+        return int(np.count_nonzero(~(np.abs(policy - before) <= resolution)))
+    return int(np.count_nonzero(policy != before))
 
 
 def _hint_names(problem: CompiledProblem) -> str:

@@ -1,0 +1,171 @@
+"""Speed hints with several choices: used along the choice left once static choices are maximised out, and
+reported plainly, hint by hint and choice by choice, wherever they cannot be used."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from tests._documents import TWO_CHOICES
+from tests._documents import grid_document as document
+from worker import solve
+from worker.document import parse_document
+from worker.estimate import grid_plan
+from worker.feasibility import model_data
+from worker.gridmodel import compile_grid
+from worker.gridtables import precompute_tables
+from worker.solvers import METHODS
+from worker.statickernel import static_tables
+
+LABOUR = {
+    "params": {"alpha": 0.33, "delta": 0.1, "chi": 2.0, "eta": 0.5},
+    "states": {"k": {"min": 1.0, "max": 6.0, "points": 40}},
+    "shocks": {"z": {"markov": {"values": [0.9, 1.0, 1.1], "matrix": [[0.8, 0.15, 0.05], [0.1, 0.8, 0.1],
+                                                                       [0.05, 0.15, 0.8]]}, "transform": "none"}},
+    "choices": {"k_next": {"next_of": "k"}, "h": {"min": 0.1, "max": 1.0, "points": 15}},
+    "define": {"c": "z * k**alpha * h**(1 - alpha) + (1 - delta) * k - k_next"},
+    "reward": "log(c) - chi * h**(1 + 1 / eta) / (1 + 1 / eta)",
+    "feasible": ["c > 0"],
+}
+"""Invented growth with elastic labour: capital is chosen for tomorrow, hours only matter today (log
+utility of consumption is concave in hours, so the concave hint holds along both choices)."""
+BOTH = {"monotone": True, "concave": True}
+
+
+def _plain_value_iteration(beta: float, tolerance: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Independent plain numpy value iteration over every (k', h) pair at once: values, k' and h indices, (k, z)."""
+    alpha, delta, chi, eta = 0.33, 0.1, 2.0, 0.5
+    k = np.linspace(1.0, 6.0, 40)
+    z = np.array([0.9, 1.0, 1.1])
+    P = np.array([[0.8, 0.15, 0.05], [0.1, 0.8, 0.1], [0.05, 0.15, 0.8]])
+    h = np.linspace(0.1, 1.0, 15)
+    c = (z[None, :, None, None] * k[:, None, None, None] ** alpha * h[None, None, None, :] ** (1 - alpha)
+         + (1 - delta) * k[:, None, None, None] - k[None, None, :, None])
+    with np.errstate(divide="ignore", invalid="ignore"):
+        r = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf) - chi * h ** (1 + 1 / eta) / (1 + 1 / eta)
+    v = np.zeros((40, 3))
+    while True:
+        total = r + beta * (v @ P.T).T[None, :, :, None]  # (k, z, k', h)
+        new = total.reshape(40, 3, -1).max(axis=2)
+        done = np.max(np.abs(new - v)) < tolerance
+        v = new
+        if done:
+            break
+    flat = (r + beta * (v @ P.T).T[None, :, :, None]).reshape(40, 3, -1).argmax(axis=2)
+    return v, flat // 15, flat % 15
+
+
+def test_hints_apply_to_capital_once_hours_are_maximised_out() -> None:
+    doc = parse_document(document(LABOUR, hints=BOTH))
+    plan = grid_plan(doc.model)
+    assert plan.reward_storage == "tables" and plan.monotone and plan.concave and plan.static_concave
+    assert plan.hint_note is None
+    problem = compile_grid(doc, reward_storage="tables")
+    assert problem.hints_active and problem._layout.hinted_axis == 0
+    result = solve(document(LABOUR, hints=BOTH))
+    assert result["status"] == "converged"
+    diagnostics = result["diagnostics"]
+    assert diagnostics["hints"] == {"monotone": True, "concave": True}
+    assert diagnostics["maximised_within_period"] == ["h"]
+    assert any("the monotone and concave hints apply to `k_next`" in note and "concave hint to `h`" in note
+               for note in diagnostics["notes"])
+    v, k_index, h_index = _plain_value_iteration(0.95, 1e-12)
+    assert np.max(np.abs(np.array(result["value"]) - v)) <= 1e-7
+    assert np.array_equal(np.array(result["policy_index"]["k_next"]), k_index)
+    assert np.array_equal(np.array(result["policy_index"]["h"]), h_index)
+    assert len(np.unique(h_index)) > 2  # hours respond to capital and productivity
+
+
+def test_climbing_along_hours_finds_the_exhaustive_maxima_with_fewer_evaluations() -> None:
+    data = model_data(parse_document(document(LABOUR)))
+    (climbed, _, _, _), climbed_counts = static_tables(data, ("h",), climb=True)
+    (scanned, _, _, _), scanned_counts = static_tables(data, ("h",), climb=False)
+    assert np.array_equal(climbed, scanned)
+    assert np.array_equal(climbed_counts["static_pick"], scanned_counts["static_pick"])
+    assert climbed_counts["allowed"] < scanned_counts["allowed"] / 2
+    # The compiled exhaustive tables against numpy's evaluation of every pair (worker.gridtables).
+    (numpy_R, numpy_base, _, _), numpy_counts = precompute_tables(data, ("h",))
+    (_, compiled_base, _, _), _ = static_tables(data, ("h",))
+    finite = np.isfinite(numpy_R)
+    assert np.array_equal(finite, np.isfinite(scanned))
+    assert np.allclose(scanned[finite], numpy_R[finite], rtol=1e-13, atol=0)
+    assert np.array_equal(scanned_counts["static_pick"], numpy_counts["static_pick"])
+    assert np.array_equal(compiled_base, numpy_base)
+    assert scanned_counts["allowed"] == numpy_counts["allowed"]
+
+
+def test_two_static_choices_are_searched_together_and_the_unused_concave_hint_is_named() -> None:
+    model = dict(LABOUR, choices={**LABOUR["choices"], "e": {"values": [0.0, 0.05, 0.1]}},
+                 reward="log(c) - chi * h**(1 + 1 / eta) / (1 + 1 / eta) + e * h - e * e")
+    doc = parse_document(document(model, hints=BOTH))
+    plan = grid_plan(doc.model)
+    assert plan.monotone and plan.concave and not plan.static_concave
+    assert "the concave hint was not used along `h`, `e`" in plan.hint_note
+    data = model_data(doc)
+    (R, _, _, _), counts = static_tables(data, ("h", "e"), climb=True)
+    (numpy_R, _, _, _), numpy_counts = precompute_tables(data, ("h", "e"))
+    finite = np.isfinite(numpy_R)
+    assert np.allclose(R[finite], numpy_R[finite], rtol=1e-13, atol=0)
+    assert np.array_equal(counts["static_pick"], numpy_counts["static_pick"])
+    assert len(np.unique(counts["static_pick"] % 3)) > 1  # `e` is not always the same value
+
+
+def test_forced_pointwise_storage_says_the_hints_were_not_used_and_still_answers_exactly() -> None:
+    doc = parse_document(document(LABOUR, hints=BOTH))
+    problem = compile_grid(doc, reward_storage="on_the_fly")
+    assert not problem.hints_active
+    outcome = METHODS["howard"](problem, np.zeros(problem.n), tolerance=1e-8)
+    assert outcome.status == "converged"
+    diagnostics = problem.diagnostics(outcome.policy)
+    assert diagnostics["hints"] == {"monotone": False, "concave": False}
+    assert diagnostics["maximised_within_period"] == []
+    assert any("the monotone and concave hints were not used: reward storage `on_the_fly` was forced" in note
+               for note in diagnostics["notes"])
+    v, k_index, h_index = _plain_value_iteration(0.95, 1e-12)
+    assert np.max(np.abs(outcome.value.reshape(40, 3) - v)) <= 1e-7
+    chosen = problem.choice_values(outcome.policy)
+    assert np.array_equal(chosen["k_next"].reshape(40, 3), np.linspace(1.0, 6.0, 40)[k_index])
+    assert np.array_equal(chosen["h"].reshape(40, 3), np.linspace(0.1, 1.0, 15)[h_index])
+
+
+def test_static_tables_over_the_budget_say_why_the_hints_were_not_used() -> None:
+    doc = parse_document(document(LABOUR, hints=BOTH))
+    plan = grid_plan(doc.model, limits={"max_bytes": 4 * 120 * 40 * 16 - 4})
+    assert plan.reward_storage == "on_the_fly" and not plan.hints_active
+    assert "the monotone and concave hints were not used for `k_next`" in plan.hint_note
+    assert "`h` could not be maximised out within the period" in plan.hint_note
+    assert "over the precompute budget" in plan.hint_note
+    assert grid_plan(doc.model, limits={"max_bytes": 4 * 120 * 40 * 16}).hints_active
+
+
+def test_hints_with_two_choices_that_both_move_tomorrow_are_reported() -> None:
+    result = solve(document(TWO_CHOICES, hints=BOTH))
+    assert result["status"] == "converged"
+    diagnostics = result["diagnostics"]
+    assert diagnostics["hints"] == {"monotone": False, "concave": False}
+    assert any(
+        "the monotone and concave hints were not used" in note and "(`a_next`, `work`) moves tomorrow's state" in note
+        for note in diagnostics["notes"]
+    )
+
+
+def test_static_tables_with_an_interpolated_state_match_numpy_evaluation() -> None:
+    # TWO_CHOICES (human capital moves by a next expression) with an invented static choice `effort`.
+    model = dict(TWO_CHOICES, choices={**TWO_CHOICES["choices"], "effort": {"min": 0.0, "max": 1.0, "points": 6}},
+                 reward="log(c) - 0.5 * work**2 + 0.3 * effort - 0.4 * effort**2")
+    doc = parse_document(document(model))
+    data = model_data(doc)
+    (R, base, lower, weight), counts = static_tables(data, ("effort",))
+    (numpy_R, numpy_base, numpy_lower, numpy_weight), numpy_counts = precompute_tables(data, ("effort",))
+    finite = np.isfinite(numpy_R)
+    assert np.array_equal(finite, np.isfinite(R))
+    assert np.allclose(R[finite], numpy_R[finite], rtol=1e-13, atol=0)
+    assert np.array_equal(counts["static_pick"], numpy_counts["static_pick"])
+    assert np.array_equal(base, numpy_base)
+    assert np.array_equal(lower[finite], numpy_lower[finite])
+    assert np.allclose(weight[finite], numpy_weight[finite], rtol=0, atol=1e-13)
+    for key in ("allowed", "bad", "clamped"):
+        assert counts[key] == numpy_counts[key], key
+    # The concave hint along `effort` (its reward term is concave) picks the same.
+    (climbed, _, _, _), climbed_counts = static_tables(data, ("effort",), climb=True)
+    assert np.array_equal(climbed, R)
+    assert np.array_equal(climbed_counts["static_pick"], counts["static_pick"])

@@ -1,0 +1,77 @@
+"""Continuous choices: a grid model whose one choice takes any value of an interval.
+
+:func:`compile_continuous` turns such a document into a
+:class:`~worker.continuous.problem.ContinuousProblem`, which the solvers of
+:mod:`worker.solvers` run like any other compiled problem (its policy is a
+vector of values instead of indices); ``solver.method: endogenous_grid``
+has its own solver (:mod:`worker.continuous.egm`).  The modules: the search
+(:mod:`~worker.continuous.search`), the generated kernels
+(:mod:`~worker.continuous.source`), the document-free kernels
+(:mod:`~worker.continuous.interp_kernels`), the problem
+(:mod:`~worker.continuous.problem`), simulated paths
+(:mod:`~worker.continuous.paths`).
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+from worker import _codegen
+from worker.continuous.egm import conditions
+from worker.continuous.problem import ContinuousProblem
+from worker.continuous.source import BOUND_HIGH, BOUND_LOW, module_text
+from worker.errors import InvalidDocument
+from worker.feasibility import feasibility_scan, model_data
+
+__all__ = ["ContinuousProblem", "compile_continuous"]
+
+
+def compile_continuous(doc: Any) -> ContinuousProblem:
+    """Compile a validated grid document whose one choice is continuous.
+
+    Raises
+    ------
+    InfeasibleModel
+        Some point has no allowed choice among the scan's points of its interval.
+    """
+    started = time.perf_counter()
+    cubic = doc.model.interpolation == "monotone_cubic"
+    if cubic and doc.solver.method == "policy_iteration":
+        raise InvalidDocument.at(
+            "solver.method",
+            "policy_iteration solves a linear system for each policy's value, and with monotone_cubic "
+            "interpolation that value is not linear in the value function; use howard or value_iteration, or "
+            "linear interpolation",
+        )
+    data = model_data(doc)
+    egm = None
+    if doc.solver.method == "endogenous_grid":
+        found, c_slope, reason = conditions(data)
+        if reason is not None:
+            raise InvalidDocument.at("solver.method", f"the endogenous grid method does not apply: {reason}")
+        egm = (found, c_slope)
+    feasibility_scan(data, None)
+    source = data.source
+    target = next((t for t, j in enumerate(data.setter) if j is not None), None)
+    if data.span is not None:
+        source = _codegen.ModelSource(
+            params=source.params,
+            states=source.states,
+            shocks=source.shocks,
+            choices=source.choices,
+            defines=((BOUND_LOW, data.span[0]), (BOUND_HIGH, data.span[1]), *source.defines),
+            reward=source.reward,
+            feasible=source.feasible,
+            next=source.next,
+        )
+    kernel_model, literals = _codegen.lift_literals(source)
+    text = module_text(kernel_model, target, len(data.states), cubic)
+    prepared = time.perf_counter()
+    module = _codegen.load(text)
+    params = _codegen.kernel_params(data.param_values, literals)
+    problem = ContinuousProblem(doc, data, module, params)
+    problem.egm_form = egm
+    problem.warm_up()
+    problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
+    return problem

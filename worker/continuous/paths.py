@@ -1,0 +1,145 @@
+"""Simulated paths of a continuous-choice model: states off the grid, the policy interpolated.
+
+Each path starts at ``start`` — the state values as given (not moved to a
+grid point) and the nearest point of each shock — or, when absent, at a grid
+point drawn from the stationary distribution (Young lotteries, see
+:mod:`worker.continuous.problem`).  Every period the choice is the solved
+policy interpolated multilinearly along the state grids at the path's
+state, for its shock point; tomorrow's state is the choice itself for the
+``next_of`` state and the ``next`` expressions for the others (evaluated with
+numpy); a value outside a grid is moved to its nearer end and counted.  The
+shock moves by its chain: one uniform draw per path, located in the
+cumulative sums of the chain's row (``numpy.random.default_rng(seed)``; the
+same seed gives the same paths).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from worker.errors import InvalidDocument
+from worker.expressions import evaluate
+from worker.grids import locate
+from worker.report import PERCENTILES
+
+__all__ = ["simulate_paths"]
+
+
+def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
+                   stationary: Any) -> dict[str, Any]:
+    """Summary and first path of ``spec.paths`` simulated paths; the keys of :func:`worker.report.simulate_report`.
+
+    ``stationary(matrix) -> (pi, info)`` gives the distribution to draw starts from.
+    """
+    data = problem.model_data
+    periods, paths = int(spec.periods), int(spec.paths)
+    rng = np.random.default_rng(spec.seed)
+    n_z = data.n_shocks
+    d = len(data.states)
+    values = np.asarray(policy, dtype=np.float64).reshape(data.n_grid, n_z)
+    warnings: list[str] = []
+    if spec.start is None:
+        pi, info = stationary(problem.policy_matrix(policy))
+        warnings.extend(info["warnings"])
+        cumulative = np.cumsum(pi)
+        first = np.minimum(np.searchsorted(cumulative, rng.random(paths) * cumulative[-1], side="right"), pi.size - 1)
+        env = data.state_env(first)
+        x = np.column_stack([env[name][:, 0] for name in data.states])
+        z = first % n_z
+    else:
+        x, z = _start(data, spec.start, path, paths)
+    chain = np.cumsum(data.transition, axis=1)
+    states = np.empty((periods, paths, d))
+    shocks = np.empty((periods, paths), dtype=np.int64)
+    chosen = np.empty((periods, paths))
+    clamped = 0
+    for t in range(periods):
+        states[t], shocks[t] = x, z
+        a = _interpolate(data, values, x, z)
+        chosen[t] = a
+        if t + 1 == periods:
+            break
+        x, out = _tomorrow(problem, data, x, z, a)
+        clamped += out
+        draws = rng.random(paths) * chain[z, -1]
+        z = np.minimum((chain[z] <= draws[:, None]).sum(axis=1), n_z - 1)
+    if clamped:
+        warnings.append(f"{clamped} simulated next states fell outside their grid and were moved to its nearer end")
+    series = {name: states[:, :, k] for k, name in enumerate(data.states)}
+    series.update({name: data.shock_table[shocks, k] for k, name in enumerate(data.shocks)})
+    series[problem.choice] = chosen
+    summary = {name: _summarise(sample) for name, sample in series.items()}
+    first_path = {name: sample[:, 0].tolist() for name, sample in series.items()}
+    return {"periods": periods, "paths": paths, "seed": spec.seed, "summary": summary, "first_path": first_path,
+            "warnings": warnings, "interpolated": True}
+
+
+def _start(data: Any, start: Any, path: str, paths: int) -> tuple[np.ndarray, np.ndarray]:
+    names = [*data.states, *data.shocks]
+    if not isinstance(start, dict):
+        if len(names) != 1:
+            raise InvalidDocument.at(path, f"give a value for each of {', '.join(names)}")
+        start = {names[0]: start}
+    errors = [{"path": f"{path}.{name}", "message": f"not an axis; the axes are {', '.join(names)}"}
+              for name in sorted(set(start) - set(names))]
+    errors += [{"path": f"{path}.{name}", "message": "a start value is needed for this axis"}
+               for name in names if name not in start]
+    for name in names:
+        value = start.get(name)
+        if name in start and (isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value)):
+            errors.append({"path": f"{path}.{name}", "message": f"expected a finite number, got {value!r}"})
+    if errors:
+        raise InvalidDocument(errors)
+    x = np.array([[min(max(float(start[name]), grid[0]), grid[-1])
+                   for name, grid in zip(data.states, data.state_grids)]] * paths)
+    index = [int(np.argmin(np.abs(values - float(start[name]))))
+             for name, values in zip(data.shocks, data.shock_values)]
+    z = int(np.ravel_multi_index(tuple(index), tuple(v.size for v in data.shock_values))) if index else 0
+    return x, np.full(paths, z, dtype=np.int64)
+
+
+def _interpolate(data: Any, values: np.ndarray, x: np.ndarray, z: np.ndarray) -> np.ndarray:
+    """The policy at states ``x`` (paths, d) and shock rows ``z``: multilinear along the state grids."""
+    sizes = data.state_sizes
+    strides = [int(np.prod(sizes[t + 1:])) for t in range(len(sizes))]
+    located = [locate(grid, x[:, t])[:2] for t, grid in enumerate(data.state_grids)]
+    out = np.zeros(x.shape[0])
+    for corner in range(2 ** len(sizes)):
+        index = np.zeros(x.shape[0], dtype=np.int64)
+        weight = np.ones(x.shape[0])
+        for t, (lower, share) in enumerate(located):
+            bit = (corner >> t) & 1
+            index += strides[t] * (lower + bit)
+            weight *= share if bit else 1.0 - share
+        out += weight * values[index, z]
+    return out
+
+
+def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, int]:
+    """Tomorrow's states (paths, d) after choices ``a``, moved into the grids, and how many were moved."""
+    env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
+    env.update({name: x[:, t] for t, name in enumerate(data.states)})
+    env.update({name: data.shock_table[z, k] for k, name in enumerate(data.shocks)})
+    choice = problem.choice
+    env[choice] = a
+    with np.errstate(all="ignore"):
+        for name, expr in data.source.defines:
+            env[name] = evaluate(expr, env)
+        laws = dict(data.source.next)
+        out = np.empty_like(x)
+        moved = 0
+        for t, grid in enumerate(data.state_grids):
+            value = a if t == problem.target else np.broadcast_to(evaluate(laws[t], env), a.shape)
+            moved += int(np.count_nonzero((value < grid[0]) | (value > grid[-1])))
+            out[:, t] = np.clip(value, grid[0], grid[-1])
+    return out, moved
+
+
+def _summarise(samples: np.ndarray) -> dict[str, float]:
+    flat = np.asarray(samples, dtype=np.float64).ravel()
+    quantiles = np.percentile(flat, PERCENTILES)
+    out = {"mean": float(flat.mean()), "std": float(flat.std())}
+    out.update({f"p{p}": float(q) for p, q in zip(PERCENTILES, quantiles)})
+    return out

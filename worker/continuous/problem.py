@@ -1,0 +1,355 @@
+"""A compiled continuous-choice model: :class:`worker.problem.CompiledProblem` with a policy of values.
+
+Semantics, as for every grid model (:mod:`worker.gridmodel`): the value
+array has shape ``(state sizes..., shock sizes...)``, flat point
+``i = x · n_shocks + z``, and ``EV(x', z) = Σ_z' P[z, z'] V(x', z')``.  The
+one choice takes any value of its interval; tomorrow's state ``x'`` is then
+off the grid, and ``EV`` is read between grid points by the model's
+interpolation:
+
+``linear``
+    multilinear on the product grid.  It is monotone and non-expansive in
+    the sup norm (a convex combination of grid values), so the fitted
+    Bellman operator is a β-contraction and the MacQueen–Porteus bracket of
+    :mod:`worker.solvers` certifies its fixed point — the solution of the
+    interpolated problem, which is itself an approximation of the model.
+``monotone_cubic``
+    Fritsch–Carlson along the one state (:mod:`worker.continuous.interp_kernels`).
+    Far more accurate for smooth models, but not linear in ``v``: the bracket
+    is computed the same way and is not a proof (the result says so).
+
+A policy is a float64 vector: the chosen value at each point.  Its fixed-
+policy steps read ``EV`` by the same interpolation; its transition matrix
+``P_σ`` (stationary distribution, simulation start) always puts each next
+state's mass on the neighbouring grid points in proportion (multilinear
+weights: Young 2010, "Solving the incomplete markets model with aggregate
+uncertainty using the Krusell–Smith algorithm and non-stochastic
+simulations", JEDC 34(1)), whatever the interpolation.
+"""
+
+from __future__ import annotations
+
+import math
+from types import ModuleType
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from worker import kernels, threadpool
+from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
+from worker.feasibility import ModelData
+from worker.grids import locate
+from worker.problem import Hints
+
+__all__ = ["POLICY_RESOLUTION", "ContinuousProblem"]
+
+POLICY_RESOLUTION = 1e-6
+"""A choice that moves by less than this share of its interval's scale between two iterations does
+not count as a policy change in the log (Howard's evaluation phases key on the count)."""
+
+
+class ContinuousProblem:
+    """A grid model whose one choice is continuous; see the module docstring.
+
+    Besides the protocol: ``model_data`` (the evaluated model), ``cubic``,
+    ``target`` (the state the choice is ``next_of``, or None),
+    ``policy_resolution``, ``timings`` and :meth:`choose_at`, the search at
+    points off the grid (Euler errors).
+    """
+
+    def __init__(self, doc: Any, data: ModelData, module: ModuleType, params: np.ndarray) -> None:
+        self._data = data
+        self._k = module
+        self._params = params
+        model = doc.model
+        self.discount = float(doc.discount)
+        self.choice = data.choices[0]
+        self.target = next((t for t, j in enumerate(data.setter) if j is not None), None)
+        self.cubic = model.interpolation == "monotone_cubic"
+        self.interpolation = model.interpolation
+        self.shape = tuple(data.state_sizes) + tuple(v.size for v in data.shock_values)
+        self.n = data.n
+        self.axes: dict[str, list[float]] = {name: grid.tolist() for name, grid in zip(data.states, data.state_grids)}
+        self.axes.update((name, values.tolist()) for name, values in zip(data.shocks, data.shock_values))
+        monotone = bool(model.hints.monotone) and self.target is not None
+        self.hints = Hints(monotone=monotone, concave=bool(model.hints.concave))
+        self.hints_active = monotone or self.hints.concave
+        self.scan_points = model.choices[self.choice].size
+        self.timings: dict[str, float] = {}
+        self.notes: list[str] = []
+        if model.hints.monotone and not monotone:
+            self.notes.append(
+                "the monotone hint is not used: it narrows the search of a continuous choice that is next_of a "
+                "state, and this one is given by min and max"
+            )
+        sizes = data.state_sizes
+        self._sgrid = np.ascontiguousarray(np.concatenate(data.state_grids))
+        offsets = np.concatenate([[0], np.cumsum(sizes)[:-1]]).astype(np.int64)
+        strides = [math.prod(sizes[t + 1:]) for t in range(len(sizes))]
+        self._meta = np.array([*offsets, *sizes, *strides], dtype=np.int64)
+        self._strides = strides
+        rows = np.arange(self.n, dtype=np.int64)
+        env = data.state_env(rows)
+        self._svals = np.ascontiguousarray(np.column_stack([env[name][:, 0] for name in data.states]))
+        self._piz = np.ascontiguousarray(rows % data.n_shocks)
+        self._order, self._prev, self._line = self._lines()
+        self.threads = threadpool.threads_for(self.n, self.scan_points)
+        if self.target is not None:
+            grid = data.state_grids[self.target]
+            self.policy_resolution = POLICY_RESOLUTION * float(grid[-1] - grid[0])
+        else:
+            self.policy_resolution = POLICY_RESOLUTION
+        self.egm_form: tuple[Any, Any] | None = None
+        self.egm_rule: Any = None
+        self.egm_report: dict[str, Any] | None = None
+        self._nodes_for: np.ndarray | None = None
+        self._nodes: tuple[np.ndarray, ...] = ()
+        self._scratch = (np.empty((data.n_shocks, data.n_grid)), np.empty(self.n))
+
+    def warm_up(self) -> None:
+        """Compile (or load) the kernels on empty inputs, so that ``timings`` shows the compile's cost."""
+        data = self._data
+        none_f, none_i = np.empty(0), np.empty(0, dtype=np.int64)
+        states = np.empty((0, len(data.states)))
+        self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
+                       self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
+                       False, False, self.scan_points, none_f, none_f, none_f, 0, 0)
+        self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f, none_f,
+                          np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
+
+    @property
+    def model_data(self) -> ModelData:
+        return self._data
+
+    def _lines(self) -> tuple[np.ndarray, np.ndarray, int]:
+        """The points in the order of the search: lines along the chosen state, each contiguous.
+
+        Returns ``(order, prev, line length)``; ``prev[q]`` is ``q − 1`` inside a
+        line and ``−1`` at its start.
+        """
+        axis = self.target if self.target is not None else len(self.shape) - 1
+        index = np.arange(self.n, dtype=np.int64).reshape(self.shape)
+        order = np.ascontiguousarray(np.moveaxis(index, axis, -1).reshape(-1))
+        length = self.shape[axis]
+        prev = np.arange(self.n, dtype=np.int64) - 1
+        prev[::length] = -1
+        return order, prev, length
+
+    def continuation(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``(EVt, D)``: ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` and its monotone cubic slopes (cubic only)."""
+        data = self._data
+        values = np.asarray(v, dtype=np.float64).reshape(data.n_grid, data.n_shocks)
+        EVt = np.ascontiguousarray(data.transition @ values.T)
+        if not self.cubic:
+            return EVt, np.zeros((1, 1))
+        D = np.empty_like(EVt)
+        monotone_slopes(data.state_grids[0], EVt, D)
+        return EVt, D
+
+    def bellman_step(
+        self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """One step of the fitted Bellman operator; the policy is the (n,) chosen values.
+
+        ``restricted`` uses the hints (see :mod:`worker.continuous.search`);
+        unrestricted, the search starts from a scan of the interval.
+        """
+        EVt, D = self.continuation(v)
+        out_v, out_a, out_r = np.empty(self.n), np.empty(self.n), np.empty(self.n)
+        guess = self._guess(policy_guess)
+        concave = bool(restricted and self.hints.concave)
+        monotone = bool(restricted and self.hints.monotone)
+        step = self._step(EVt, D, self._svals, self._piz, self._order, self._prev, guess, concave, monotone,
+                          out_v, out_a, out_r)
+        lines = self.n // self._line
+        blocks = [(start * self._line, stop * self._line)
+                  for start, stop in threadpool.row_blocks(lines, self.threads * threadpool.BLOCKS_PER_THREAD)]
+        threadpool.run_blocks(step, blocks if self.threads > 1 else [(0, self.n)], self.threads)
+        return out_v, out_a
+
+    def _guess(self, policy_guess: np.ndarray | None) -> np.ndarray | None:
+        if policy_guess is None:
+            return None
+        guess = np.asarray(policy_guess)
+        if guess.dtype.kind != "f" or guess.shape != (self.n,):
+            return None
+        return np.ascontiguousarray(guess, dtype=np.float64)
+
+    def _step(self, EVt: np.ndarray, D: np.ndarray, svals: np.ndarray, piz: np.ndarray, order: np.ndarray,
+              prev: np.ndarray, guess: np.ndarray | None, concave: bool, monotone: bool,
+              out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray) -> Any:
+        has_guess = guess is not None
+        guess = guess if has_guess else np.zeros(1)
+        search = self._k.search
+
+        def run(start: int, stop: int) -> None:
+            search(EVt, D, self.discount, self._params, self._sgrid, self._meta, self._data.shock_table, svals,
+                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, out_v, out_a, out_r,
+                   start, stop)
+
+        return run
+
+    def choose_at(self, v: np.ndarray, states: np.ndarray, rows: np.ndarray, guess: np.ndarray | None,
+                  *, restricted: bool = True) -> tuple[np.ndarray, np.ndarray]:
+        """The search at any points: ``states`` (P, d) values, ``rows`` (P,) shock rows; ``(values, choices)``.
+
+        Off the grid the state values need not be grid points (test points of the
+        Euler errors); ``guess`` (P,) seeds a concave search.
+        """
+        EVt, D = self.continuation(v)
+        count = rows.shape[0]
+        out_v, out_a, out_r = np.empty(count), np.empty(count), np.empty(count)
+        order = np.arange(count, dtype=np.int64)
+        prev = np.full(count, -1, dtype=np.int64)
+        run = self._step(EVt, D, np.ascontiguousarray(states, dtype=np.float64),
+                         np.ascontiguousarray(rows, dtype=np.int64), order, prev,
+                         None if guess is None else np.ascontiguousarray(guess, dtype=np.float64),
+                         bool(restricted and self.hints.concave), False, out_v, out_a, out_r)
+        run(0, count)
+        return out_v, out_a
+
+    def solve_endogenous_grid(self, initial: np.ndarray, solve_from: Any, **options: Any) -> Any:
+        """``solver.method: endogenous_grid`` (:mod:`worker.continuous.egm`); ``initial`` is not needed."""
+        from worker.continuous.egm import endogenous_grid
+
+        found, c_slope = self.egm_form
+        return endogenous_grid(self, found, c_slope, solve_from, **options)
+
+    def policy_rule(self, v: np.ndarray, policy: np.ndarray) -> Any:
+        """``rule(k) -> x``: the choice at states ``k`` (m,) of the one state, at every shock point, (m, shocks).
+
+        The fitted problem's own search at those points, with the final ``v``
+        (seeded with the grid policy interpolated linearly): what the solved
+        policy is between grid points.  For :func:`worker.euler.euler_errors`.
+        """
+        if self.egm_rule is not None:
+            return self.egm_rule
+        data = self._data
+        grid = data.state_grids[0]
+        n_z = data.n_shocks
+        values = np.asarray(policy, dtype=np.float64).reshape(grid.size, n_z)
+
+        def rule(k: np.ndarray) -> np.ndarray:
+            k = np.asarray(k, dtype=np.float64).reshape(-1)
+            guess = np.column_stack([np.interp(k, grid, values[:, z]) for z in range(n_z)]).reshape(-1)
+            states = np.repeat(k, n_z)[:, None]
+            rows = np.tile(np.arange(n_z, dtype=np.int64), k.size)
+            _, chosen = self.choose_at(v, states, rows, guess)
+            return chosen.reshape(k.size, n_z)
+
+        return rule
+
+    def nodes(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
+        """``(reward, tomorrow (n, d), clamped (n,), index (n, 2^d), weight (n, 2^d))`` of a policy (cached)."""
+        a = np.ascontiguousarray(policy, dtype=np.float64).reshape(self.n)
+        if self._nodes_for is not None and np.array_equal(self._nodes_for, a):
+            return self._nodes
+        data = self._data
+        reward = np.empty(self.n)
+        tomorrow = np.empty((self.n, len(data.states)))
+        ok = np.empty(self.n, dtype=np.bool_)
+        self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, self._svals, self._piz, a,
+                          reward, tomorrow, ok)
+        if not ok.all():
+            i = int(np.flatnonzero(~ok)[0])
+            raise ValueError(
+                f"the policy picks a choice that is not allowed at {data.describe_state(i)} ({self.choice} = "
+                f"{a[i]:.6g})"
+            )
+        lowers, weights, clamped = [], [], np.zeros(self.n, dtype=bool)
+        for t, grid in enumerate(data.state_grids):
+            lower, weight, out = locate(grid, tomorrow[:, t])
+            lowers.append(lower)
+            weights.append(weight)
+            clamped |= out
+        corners = 2 ** len(lowers)
+        index = np.zeros((self.n, corners), dtype=np.int64)
+        weight = np.ones((self.n, corners))
+        for corner in range(corners):
+            for t, (lower, share) in enumerate(zip(lowers, weights)):
+                bit = (corner >> t) & 1
+                index[:, corner] += self._strides[t] * (lower + bit)
+                weight[:, corner] *= share if bit else 1.0 - share
+        self._nodes_for = a.copy()
+        self._nodes = (reward, tomorrow, clamped, index, weight, lowers[0], weights[0])
+        return self._nodes
+
+    def policy_steps(
+        self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
+    ) -> tuple[np.ndarray, int, float]:
+        """Howard evaluation steps under the model's interpolation; see :data:`worker.problem.PolicySteps`."""
+        reward, _, _, index, weight, lower, share = self.nodes(policy)
+        out = np.array(v, dtype=np.float64).reshape(self.n)
+        if self.cubic:
+            done, span = cubic_policy_steps(reward, lower, share, self._data.state_grids[0],
+                                            self._data.transition, self.discount, out, int(steps), float(span_stop))
+        else:
+            EVt, spare = self._scratch
+            done, span = kernels.policy_steps(reward, index, weight, self._data.transition, self.discount, out,
+                                              int(steps), float(span_stop), EVt, spare)
+        return out, int(done), float(span)
+
+    def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
+        """``r_σ + β EV_σ`` under the model's interpolation; (n,) → (n,)."""
+        return self.policy_steps(v, policy, 1)[0]
+
+    def policy_reward(self, policy: np.ndarray) -> np.ndarray:
+        return self.nodes(policy)[0].copy()
+
+    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
+        """``P_σ`` with each next state's mass on its neighbouring grid points in proportion (Young 2010)."""
+        _, _, _, index, weight, _, _ = self.nodes(policy)
+        indptr, indices, values = kernels.policy_csr(index, weight, self._data.transition)
+        return sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
+
+    def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], None]:
+        """``policy`` (the chosen values, nested to ``shape``); no ``policy_index`` for a continuous choice."""
+        return {self.choice: np.asarray(policy, dtype=np.float64).reshape(self.shape).tolist()}, None
+
+    def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
+        return {self.choice: np.asarray(policy, dtype=np.float64).reshape(self.n)}
+
+    def state_values(self) -> dict[str, np.ndarray]:
+        env = self._data.state_env(np.arange(self.n, dtype=np.int64))
+        return {name: np.ascontiguousarray(env[name][:, 0]) for name in self.axes}
+
+    def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
+        """The continuous choice's search and interpolation, clamped next values, and notes."""
+        _, tomorrow, clamped, _, _, _, _ = self.nodes(policy)
+        a = np.asarray(policy, dtype=np.float64).reshape(self.n)
+        warnings: list[str] = []
+        if clamped.any():
+            warnings.append(
+                f"at {int(clamped.sum())} of {self.n} points tomorrow's state under the policy lies outside its grid "
+                "and was moved to the nearer end; widen the grid"
+            )
+        notes = list(self.notes)
+        if self.cubic:
+            notes.append(
+                "monotone_cubic interpolation: the error bound is computed as for linear interpolation, but the "
+                "cubic interpolant is not linear in the value function, so the bound is not a proof"
+            )
+        if not self.hints.concave:
+            notes.append(
+                "without the concave hint each point's search scans the interval and refines the best scanned "
+                "choice; a maximum hidden between two scanned points can be missed"
+            )
+        continuous = {
+            "choice": self.choice,
+            "interpolation": self.interpolation,
+            "certified": not self.cubic,
+            "search": ("brent_from_bracket" if self.hints.concave else "scan_and_refine"),
+            "monotone_narrowing": self.hints.monotone,
+            "clamped_next": int(clamped.sum()),
+        }
+        if self.target is not None:
+            grid = self._data.state_grids[self.target]
+            continuous["at_lower_end"] = int(np.count_nonzero(a <= grid[0]))
+            continuous["at_upper_end"] = int(np.count_nonzero(a >= grid[-1]))
+        if self.egm_report is not None:
+            continuous["endogenous_grid"] = dict(self.egm_report)
+        out: dict[str, Any] = {"continuous_choice": continuous, "warnings": warnings, "timings": dict(self.timings)}
+        if notes:
+            out["notes"] = notes
+        return out

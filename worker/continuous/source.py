@@ -1,0 +1,208 @@
+"""The generated module of a continuous-choice model: its search kernel and its policy kernel.
+
+One module per model *structure* (counts of states and shocks, which state
+the choice sets, the interpolation, and the expressions with their numbers
+lifted into params by :func:`worker._codegen.lift_literals`), loaded through
+the same kernel cache as the discrete kernels (:func:`worker._codegen.load`).
+
+The model at one value ``c_0`` of the choice is a closure ``f(c_0) -> (value,
+reward)`` inside the kernel's loop over points; numba inlines it at each call
+site, so the search pays no call and no reference counting.  Parts that do
+not depend on the choice are computed once per point (the hoisting of
+:mod:`worker._codegen.hoist`), and so are the interval's ends.
+
+Kernels (``P`` points given by their state values ``svals`` (P, d) and shock
+row ``piz`` (P,); ``EVt`` (n_shocks, n_grid) the continuation, ``D`` its
+slopes along the one state for ``monotone_cubic`` (unused for ``linear``)):
+
+* ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
+  has_guess, concave, monotone, scan_n, out_v, out_a, out_r, start, stop)``
+  — the maximisation over the interval at the points ``order[start:stop]``;
+  ``prev[q]`` is the position of the point before it on the same line of
+  the chosen state (``-1`` at a line's start), whose choice narrows the
+  bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
+  search itself.
+* ``policy_at(p, sgrid, ztab, svals, piz, a, out_r, out_x, out_ok)`` — the
+  reward and tomorrow's state values ``out_x`` (P, d) at the fixed choices
+  ``a``; ``out_ok`` false where the choice is not allowed.
+"""
+
+from __future__ import annotations
+
+from worker import expressions
+from worker._codegen.hoist import Hoister, dependents
+from worker._codegen.layout import ModelSource
+from worker._codegen.source import generator_hash
+from worker._codegen.writer import JIT, Lines
+from worker.continuous.search import SEARCH_TEXT
+from worker.expressions import Expression
+
+__all__ = ["BOUND_HIGH", "BOUND_LOW", "module_text"]
+
+BOUND_LOW = "_bound_low"
+BOUND_HIGH = "_bound_high"
+"""Names of the interval's ends when they are expressions: two defines placed first (they use no choice)."""
+
+
+def module_text(model: ModelSource, target: int | None, grid_sizes_known: int, cubic: bool) -> str:
+    """Source of the continuous-choice module.
+
+    Parameters
+    ----------
+    model : ModelSource
+        Expressions with their numbers lifted; with ``target`` None its first
+        two defines are the interval's ends (:data:`BOUND_LOW`, :data:`BOUND_HIGH`).
+    target : int or None
+        The state the choice is ``next_of`` (its interval is that grid's ends), or None.
+    grid_sizes_known : int
+        Number of states (their grids are in ``sgrid`` with offsets in the kernel's ``meta``).
+    cubic : bool
+        ``monotone_cubic`` (one state) instead of multilinear interpolation.
+    """
+    writer = _Writer(model, target, cubic)
+    header = [
+        f"# fixq generated continuous-choice kernels: {writer.d} states, {writer.m} shocks, target {target}, "
+        f"interpolation {'monotone_cubic' if cubic else 'linear'}",
+        f"# generators {generator_hash()}",
+        "import numpy as np",
+        "from numba import njit",
+        "from worker.expressions.interval_kernels import interval_globals",
+        "from worker.kernels import locate_one",
+        "",
+        "globals().update(interval_globals())",
+    ]
+    return "\n\n\n".join(["\n".join(header), writer.search(), writer.policy_at()]) + "\n"
+
+
+class _Writer:
+    def __init__(self, model: ModelSource, target: int | None, cubic: bool) -> None:
+        self.model = model
+        self.target = target
+        self.cubic = cubic
+        self.d = len(model.states)
+        self.m = len(model.shocks)
+        names: dict[str, str] = {}
+        names.update({name: f"p_{k}" for k, name in enumerate(model.params)})
+        names.update({name: f"s_{t}" for t, name in enumerate(model.states)})
+        names.update({name: f"z_{t}" for t, name in enumerate(model.shocks)})
+        names.update({name: f"c_{t}" for t, name in enumerate(model.choices)})
+        names.update({name: f"d_{k}" for k, (name, _) in enumerate(model.defines)})
+        self.names = names
+        self.state_lines: list[str] = []
+        dependent = dependents(model, set(model.choices))
+        hoist = Hoister(dependent, names, self.state_lines, "h_")
+        self.defines: list[tuple[int, Expression]] = []
+        for k, (name, expr) in enumerate(model.defines):
+            if name in dependent:
+                self.defines.append((k, Expression.from_tree(hoist.rewrite(expr.tree))))
+            else:
+                self.state_lines.append(f"d_{k} = {expressions.scalar_source(expr, names)}")
+        self.feasible = [Expression.from_tree(hoist.rewrite(expr.tree)) for expr in model.feasible]
+        self.reward = Expression.from_tree(hoist.rewrite(model.reward.tree))
+        self.next = {t: Expression.from_tree(hoist.rewrite(expr.tree)) for t, expr in model.next}
+
+    def _src(self, expr: Expression) -> str:
+        return expressions.scalar_source(expr, self.names)
+
+    def _point(self, out: Lines) -> None:
+        """Unpack point ``i``: its states, its shock row, and what does not depend on the choice."""
+        out.add("iz = piz[i]")
+        for t in range(self.d):
+            out.add(f"s_{t} = svals[i, {t}]")
+        for t in range(self.m):
+            out.add(f"z_{t} = ztab[iz, {t}]")
+        out.extend(self.state_lines)
+
+    def _prologue(self, out: Lines) -> None:
+        for k in range(len(self.model.params)):
+            out.add(f"p_{k} = p[{k}]")
+        for t in range(self.d):
+            out.add(f"off_{t} = meta[{t}]", f"size_{t} = meta[{self.d + t}]", f"stride_{t} = meta[{2 * self.d + t}]")
+
+    def _tomorrow(self, out: Lines) -> None:
+        """``x_t``: tomorrow's state values at choice ``c_0`` (NaN-checked by the caller)."""
+        for t in range(self.d):
+            out.add(f"x_{t} = c_0" if t == self.target else f"x_{t} = {self._src(self.next[t])}")
+
+    def _model_at_choice(self, out: Lines, continuation: bool) -> None:
+        """Sets ``ok``, ``r`` and (with ``continuation``) ``val`` at choice ``c_0``."""
+        out.add("ok = False", "r = -np.inf", "val = -np.inf")
+        for k, expr in self.defines:
+            out.add(f"d_{k} = {self._src(expr)}")
+        depth = out.depth
+        for k, expr in enumerate(self.feasible):
+            out.add(f"f_{k} = {self._src(expr)}", f"if f_{k} != 0.0:")
+            out.depth += 1
+        out.add(f"r = {self._src(self.reward)}")
+        with out.block("if r - r == 0.0:"):
+            self._tomorrow(out)
+            check = " and ".join(f"x_{t} == x_{t}" for t in range(self.d))
+            with out.block(f"if {check}:"):
+                out.add("ok = True")
+                if continuation:
+                    self._interpolate(out)
+                    out.add("val = r + beta * e")
+        out.depth = depth
+
+    def _interpolate(self, out: Lines) -> None:
+        """``e``: the continuation at ``x`` (clamped to the grid's ends)."""
+        for t in range(self.d):
+            out.add(f"lo_{t}, w_{t}, cl_{t} = locate_one(sgrid, off_{t}, size_{t}, x_{t})")
+        if self.cubic:
+            out.add(
+                "h = sgrid[off_0 + lo_0 + 1] - sgrid[off_0 + lo_0]",
+                "t1 = w_0",
+                "t2 = t1 * t1",
+                "t3 = t2 * t1",
+                "e = ((2.0 * t3 - 3.0 * t2 + 1.0) * EVt[iz, lo_0] + (t3 - 2.0 * t2 + t1) * h * D[iz, lo_0]"
+                " + (3.0 * t2 - 2.0 * t3) * EVt[iz, lo_0 + 1] + (t3 - t2) * h * D[iz, lo_0 + 1])",
+            )
+            return
+        out.add("e = 0.0")
+        for corner in range(2**self.d):
+            bits = [(corner >> t) & 1 for t in range(self.d)]
+            weight = " * ".join(f"w_{t}" if bit else f"(1.0 - w_{t})" for t, bit in enumerate(bits))
+            index = " + ".join(f"stride_{t} * (lo_{t} + {bit})" for t, bit in enumerate(bits))
+            out.add(f"wk = {weight}")
+            with out.block("if wk != 0.0:"):
+                out.add(f"e += wk * EVt[iz, {index}]")
+
+    def search(self) -> str:
+        out = Lines()
+        out.add(JIT)
+        out.add(
+            "def search(EVt, D, beta, p, sgrid, meta, ztab, svals, piz, order, prev, guess, has_guess, concave, "
+            "monotone, scan_n, out_v, out_a, out_r, start, stop):"
+        )
+        out.depth += 1
+        self._prologue(out)
+        with out.block("for q in range(start, stop):"):
+            out.add("i = order[q]")
+            self._point(out)
+            if self.target is not None:
+                t = self.target
+                out.add(f"low = sgrid[off_{t}]", f"high = sgrid[off_{t} + size_{t} - 1]",
+                        f"grid_off = off_{t}", f"grid_size = size_{t}")
+            else:
+                out.add("low = d_0", "high = d_1", "grid_off = -1", "grid_size = 0")
+            with out.block("def f(c_0):"):
+                self._model_at_choice(out, continuation=True)
+                out.add("return val, r")
+            out.extend(SEARCH_TEXT.strip("\n").split("\n"))
+        return out.text()
+
+    def policy_at(self) -> str:
+        out = Lines()
+        out.add(JIT)
+        out.add("def policy_at(p, sgrid, meta, ztab, svals, piz, a, out_r, out_x, out_ok):")
+        out.depth += 1
+        self._prologue(out)
+        with out.block("for i in range(a.shape[0]):"):
+            self._point(out)
+            out.add("c_0 = a[i]")
+            self._model_at_choice(out, continuation=False)
+            out.add("out_ok[i] = ok", "out_r[i] = r")
+            with out.block("if ok:"):
+                for t in range(self.d):
+                    out.add(f"out_x[i, {t}] = x_{t}")
+        return out.text()
