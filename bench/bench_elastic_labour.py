@@ -4,8 +4,9 @@ Run from the repository root: ``python bench/bench_elastic_labour.py``.  Target,
 FAIL: the model of :mod:`baseline_elastic_labour` (an invented calibration; 500 capital × 91 hours ×
 7 productivity points, hours affect nothing tomorrow) given to fixq with the monotone and concave
 hints solves at least 10× faster than the baseline, which maximises hours out first and then
-iterates over next capital, with the same answer: values within the tolerance and the same
-policy indices (the number of points where they differ is printed).
+iterates over next capital, with the same answer: values within twice the tolerance (each
+solver's certified bound) and the same policy indices (the number of points where they differ
+is printed).  The same document without hints is timed once more, for information.
 
 fixq runs in this process, once to compile or load its kernels and then ``REPEATS`` timed solves
 (the median is reported); the baseline runs once.  The machine may be shared and noisy: the ratio
@@ -108,6 +109,15 @@ def main() -> int:
         f"{diagnostics['maximised_within_period']}, timings {diagnostics['timings']}"
     )
     print(f"  fixq solve times (s): {', '.join(f'{seconds:.3f}' for seconds, _ in runs)}")
+    plain = elastic_labour_document(hints=False)
+    timed_solve(plain)  # compiles or loads the kernels
+    seconds, unhinted = timed_solve(plain)
+    gap = float(np.max(np.abs(np.array(unhinted["value"]) - reference.value)))
+    print(
+        f"  for information, fixq without hints (hours maximised out over all 91 values): {seconds:.3f} s = "
+        f"{reference.seconds / seconds:.1f}x; max |value difference| {gap:.2e}, same policy indices: "
+        f"{unhinted['policy_index'] == result['policy_index']}"
+    )
     return 0 if ok else 1
 
 

@@ -42,17 +42,8 @@ from matplotlib.figure import Figure
 
 from service.problems import Problem
 
-__all__ = [
-    "FORMATS",
-    "MEDIA_TYPES",
-    "AxisLayout",
-    "axis_layout",
-    "convergence_plot",
-    "euler_plot",
-    "policy_plot",
-    "shock_labels",
-    "value_plot",
-]
+__all__ = ["FORMATS", "MEDIA_TYPES", "AxisLayout", "axis_layout", "convergence_plot", "euler_plot", "policy_plot",
+           "shock_labels", "value_plot"]
 
 Format = Literal["svg", "png"]
 FORMATS: tuple[str, ...] = ("svg", "png")

@@ -2,7 +2,10 @@
 
 The ``tables`` reward storage (see :mod:`worker.estimate`) keeps them and
 every exact Bellman step scans them, in compiled code
-(:mod:`worker.gridproblem`) or in numpy (:mod:`worker.reference`).
+(:mod:`worker.gridproblem`) or in numpy (:mod:`worker.reference`).  With
+static choices the compiled kernels' tables are filled by
+:mod:`worker.statickernel` instead (same tables and counts); numpy fills them
+for the cold-start bridge, which compiles nothing.
 """
 
 from __future__ import annotations

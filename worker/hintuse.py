@@ -15,6 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from worker.staticchoices import unmoving_choices
+
 __all__ = ["HintUse", "hint_use"]
 
 
@@ -60,10 +62,15 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
     if len(choices) > 1:
         searched = f"every step searched all combinations of {_names(choices)}"
         if not static:
+            why = (
+                f"no choice ({_names(choices)}) moves tomorrow's state, so none is set aside"
+                if len(unmoving_choices(model)) == len(choices)
+                else f"every choice ({_names(choices)}) moves tomorrow's state"
+            )
             return HintUse(note=(
                 f"the {asked} hint{were} not used: with several choices, hints apply to the one choice left "
-                "once the choices that affect nothing tomorrow are maximised out within the period, and here every "
-                f"choice ({_names(choices)}) moves tomorrow's state; {searched}"
+                f"once the choices that affect nothing tomorrow are maximised out within the period, and here {why}; "
+                f"{searched}"
             ))
         if len(dynamic) > 1:
             return HintUse(note=(

@@ -158,7 +158,7 @@ def simulate_report(
     if getattr(problem, "choose_at", None) is not None:
         from worker.continuous.paths import simulate_paths
 
-        return simulate_paths(problem, policy, spec, path, long_run_distribution)
+        return simulate_paths(problem, policy, spec, path, long_run_distribution, _summarise)
     periods, paths = int(spec.periods), int(spec.paths)
     seed = spec.seed
     rng = np.random.default_rng(seed)

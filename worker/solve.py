@@ -348,6 +348,9 @@ def _euler_errors(
     rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
     errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice], distribution,
                                 rule=rule)
+    if errors is None and note is None:
+        note = ("Euler-equation errors were not measured: they need a choice that sets tomorrow's value of a state "
+                "(next_of)")
     if note is not None:
         problem_diagnostics.setdefault("notes", []).append(note)
     if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):

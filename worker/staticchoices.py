@@ -7,8 +7,10 @@ Tomorrow's state then depends on the other (dynamic) choices only, so
     max over (d, s) of r(x, d, s) + β EV(x'(x, d))
     = max over d of [max over s of r(x, d, s)] + β EV(x'(x, d)),
 
-and the inner maximum is computed once, with the reward tables
-(:mod:`worker.gridtables`), and reused by every iteration.  Feasibility
+and the inner maximum is computed once, into the reward tables
+(:mod:`worker.gridtables`; in compiled code by :mod:`worker.statickernel`),
+and reused by every iteration.  The speed hints then apply to the one
+remaining choice, if one remains (:mod:`worker.hintuse`).  Feasibility
 expressions may use static choices freely: they only decide which
 combinations enter the inner maximum.  A model whose every choice is static
 (nothing chosen moves tomorrow's state) keeps its plain tables: there is
@@ -22,13 +24,19 @@ from typing import Any
 from worker.errors import join_path
 from worker.expressions import parse
 
-__all__ = ["static_choices"]
+__all__ = ["static_choices", "unmoving_choices"]
 
 
 def static_choices(model: Any) -> tuple[str, ...]:
     """Names of ``model``'s static choices, in document order (empty unless there are ≥ 2 choices and ≥ 1 dynamic)."""
     if len(model.choices) < 2:
         return ()
+    static = unmoving_choices(model)
+    return static if len(static) < len(model.choices) else ()
+
+
+def unmoving_choices(model: Any) -> tuple[str, ...]:
+    """Names of ``model``'s choices that affect nothing tomorrow, in document order (all of them, possibly)."""
     uses: dict[str, set[str]] = {}
     for name, text in model.define.items():
         found = set(parse(text, path=join_path("model", "define", name)).names)
@@ -43,7 +51,4 @@ def static_choices(model: Any) -> tuple[str, ...]:
         for other in list(found):
             found |= uses.get(other, set())
         moving |= found
-    static = tuple(
-        name for name, spec in model.choices.items() if spec.next_of is None and name not in moving
-    )
-    return static if len(static) < len(model.choices) else ()
+    return tuple(name for name, spec in model.choices.items() if spec.next_of is None and name not in moving)

@@ -20,6 +20,7 @@ from scipy.interpolate import PchipInterpolator
 from tests._documents import log_growth
 from worker import environment, threadpool
 from worker.continuous.interp_kernels import cubic_values, monotone_slopes
+from worker.errors import InvalidDocument
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
 
@@ -113,10 +114,7 @@ def test_the_hints_do_not_change_the_answer(how: str) -> None:
 
 
 @pytest.mark.parametrize("how", [
-    pytest.param("linear", marks=pytest.mark.xfail(strict=True, reason=(
-        "engine bug: the maximum often sits on a kink of the linear interpolant (a grid point); the hinted "
-        "Brent search stops ~1e-8 past it, losing ~1e-10 of value, and the verification, which allows only "
-        "rounding, reports the true concave/monotone hints as broken"))),
+    "linear",
     "monotone_cubic",
 ])
 def test_hints_that_hold_are_not_reported_broken(how: str) -> None:
@@ -124,6 +122,29 @@ def test_hints_that_hold_are_not_reported_broken(how: str) -> None:
     hinted = solve(_document(48, how, BOTH))
     assert hinted["diagnostics"]["verification"]["hints_held"], hinted["diagnostics"]["warnings"]
     assert hinted["diagnostics"]["warnings"] == []
+
+
+@pytest.mark.parametrize("how", ["linear", "monotone_cubic"])
+def test_the_methods_reach_the_same_fixed_point(how: str) -> None:
+    methods = ["howard", "value_iteration"] + (["policy_iteration"] if how == "linear" else [])
+    results = []
+    for method in methods:
+        document = _document(24, how)
+        document["solver"]["method"] = method
+        results.append(solve(document))
+        assert results[-1]["status"] == "converged", method
+    for result in results[1:]:
+        gap = np.abs(np.array(result["value"]) - np.array(results[0]["value"])).max()
+        assert gap <= result["error_bound"] + results[0]["error_bound"], (result["method"], gap)
+
+
+def test_policy_iteration_is_refused_with_monotone_cubic() -> None:
+    # Its exact evaluation solves a linear system; the cubic interpolant is not linear in the values.
+    document = _document(24, "monotone_cubic")
+    document["solver"]["method"] = "policy_iteration"
+    with pytest.raises(InvalidDocument) as info:
+        solve(document)
+    assert [e["path"] for e in info.value.errors] == ["solver.method"]
 
 
 def _bits(result: dict[str, Any]) -> tuple:

@@ -31,8 +31,12 @@ utility of consumption is concave in hours, so the concave hint holds along both
 BOTH = {"monotone": True, "concave": True}
 
 
-def _plain_value_iteration(beta: float, tolerance: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Independent plain numpy value iteration over every (k', h) pair at once: values, k' and h indices, (k, z)."""
+def _plain_value_iteration(
+    beta: float, tolerance: float, bump: float = 0.0
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Independent plain numpy value iteration over every (k', h) pair at once: values, k' and h indices, (k, z).
+
+    ``bump`` adds ``bump · |h − 0.5|`` to the reward (two peaks along the hours)."""
     alpha, delta, chi, eta = 0.33, 0.1, 2.0, 0.5
     k = np.linspace(1.0, 6.0, 40)
     z = np.array([0.9, 1.0, 1.1])
@@ -42,6 +46,7 @@ def _plain_value_iteration(beta: float, tolerance: float) -> tuple[np.ndarray, n
          + (1 - delta) * k[:, None, None, None] - k[None, None, :, None])
     with np.errstate(divide="ignore", invalid="ignore"):
         r = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf) - chi * h ** (1 + 1 / eta) / (1 + 1 / eta)
+    r = r + bump * np.abs(h - 0.5)
     v = np.zeros((40, 3))
     while True:
         total = r + beta * (v @ P.T).T[None, :, :, None]  # (k, z, k', h)
@@ -169,3 +174,31 @@ def test_static_tables_with_an_interpolated_state_match_numpy_evaluation() -> No
     (climbed, _, _, _), climbed_counts = static_tables(data, ("effort",), climb=True)
     assert np.array_equal(climbed, R)
     assert np.array_equal(climbed_counts["static_pick"], counts["static_pick"])
+
+
+def test_a_broken_concave_promise_along_hours_is_caught_and_hours_are_searched_in_full() -> None:
+    # |h − 0.5| bends the hours profile into two peaks: the concave hint is false along `h`.
+    model = dict(LABOUR, reward=LABOUR["reward"] + " + 0.8 * abs(h - 0.5)")
+    result = solve(document(model, hints=BOTH))
+    assert result["status"] == "converged"
+    notes = result["diagnostics"]["notes"]
+    assert any("the concave hint did not hold along `h`" in note and "maximised over all its values" in note
+               for note in notes)
+    v, k_index, h_index = _plain_value_iteration(0.95, 1e-12, bump=0.8)
+    assert np.max(np.abs(np.array(result["value"]) - v)) <= 1e-7
+    assert np.array_equal(np.array(result["policy_index"]["k_next"]), k_index)
+    assert np.array_equal(np.array(result["policy_index"]["h"]), h_index)
+    assert len(np.unique(h_index)) > 1
+
+
+def test_hints_with_choices_that_move_nothing_are_reported() -> None:
+    model = {  # invented: the state drifts on its own, two choices only matter today
+        "states": {"x": {"min": 0.0, "max": 1.0, "points": 5}},
+        "choices": {"a": {"values": [0.0, 0.5, 1.0]}, "b": {"values": [0.0, 1.0]}},
+        "next": {"x": "0.5 * x + 0.1"},
+        "reward": "x - (a - 0.3)**2 - (b - 0.6)**2",
+    }
+    plan = grid_plan(parse_document(document(model, hints={"concave": True})).model)
+    assert not plan.hints_active and plan.reward_storage == "tables"
+    assert "the concave hint was not used" in plan.hint_note
+    assert "no choice (`a`, `b`) moves tomorrow's state" in plan.hint_note

@@ -92,7 +92,7 @@ def test_all_methods_agree_with_the_linear_program(seed, n_states, n_actions, be
     exact = optimal_value(problem)
     # HiGHS solves to ~1e-7 relative feasibility (common practice for its defaults).
     assert np.abs(reference - exact).max() <= 1e-6 * max(1.0, np.abs(exact).max())
-    for name, method in ((name, METHODS[name]) for name in GENERAL_METHODS):
+    for name, method in _general_items():
         outcome = method(problem, np.zeros(problem.n), tolerance=1e-7)
         assert outcome.status == "converged", name
         assert outcome.error_bound <= 1e-7
@@ -112,7 +112,7 @@ def test_certified_bound_is_never_below_the_true_error():
         problem = random_mdp(seed, n_states, n_actions, beta, successors)
         exact = optimal_value(problem)
         start = rng.normal(scale=10.0, size=problem.n)
-        for name, method in ((name, METHODS[name]) for name in GENERAL_METHODS):
+        for name, method in _general_items():
             for tolerance in (1e-1, 1e-4, 1e-8, 1e-13):
                 outcome = method(problem, start, tolerance=tolerance, evaluation_steps=7, max_iterations=400)
                 assert np.abs(outcome.value - exact).max() <= outcome.error_bound, (seed, name, tolerance)
@@ -166,7 +166,8 @@ def test_observed_rate_is_the_geometric_mean_of_the_last_ratios():
 
 def test_howard_and_policy_iteration_need_fewer_iterations():
     problem = random_mdp(21, 50, 4, 0.99, 2)
-    counts = {name: method(problem, np.zeros(problem.n), tolerance=1e-8).iterations for name, method in ((name, METHODS[name]) for name in GENERAL_METHODS)}
+    counts = {name: method(problem, np.zeros(problem.n), tolerance=1e-8).iterations
+              for name, method in _general_items()}
     assert counts["howard"] < counts["value_iteration"]
     assert counts["policy_iteration"] <= counts["howard"]
 
@@ -197,7 +198,7 @@ def test_statuses_for_max_iterations_and_time_limit():
 
 def test_tolerance_below_float64_reach_runs_to_max_iterations():
     problem = random_mdp(24, 15, 3, 0.9, None)
-    for name, method in ((name, METHODS[name]) for name in GENERAL_METHODS):
+    for name, method in _general_items():
         outcome = method(problem, np.zeros(problem.n), tolerance=1e-30, max_iterations=60)
         assert outcome.status == "max_iterations", name
         assert outcome.iterations == 60
@@ -405,7 +406,7 @@ def test_with_hints_the_step_that_ends_at_max_iterations_is_unrestricted():
 
 def test_outcome_is_one_result_type_for_every_method():
     problem = random_mdp(34, 10, 2, 0.9, None)
-    outcomes = [method(problem, np.zeros(problem.n)) for method in (METHODS[name] for name in GENERAL_METHODS)]
+    outcomes = [method(problem, np.zeros(problem.n)) for method in _general()]
     assert all(isinstance(o, SolveOutcome) for o in outcomes)
     assert all(o.value.shape == (10,) and o.policy.dtype == np.int64 for o in outcomes)
 
@@ -463,7 +464,7 @@ def test_a_broken_hint_verification_becomes_the_next_iteration():
 
 def test_without_hints_there_is_no_verification():
     problem = random_mdp(36, 10, 2, 0.9, None)
-    assert all(method(problem, np.zeros(problem.n)).verification is None for method in (METHODS[name] for name in GENERAL_METHODS))
+    assert all(method(problem, np.zeros(problem.n)).verification is None for method in _general())
 
 
 def test_a_hinted_solve_resumes_from_checkpoints_with_the_same_log_and_verification():
@@ -484,3 +485,11 @@ def test_a_hinted_solve_resumes_from_checkpoints_with_the_same_log_and_verificat
         assert strip(resumed.verification) == strip(whole.verification)
         assert resumed.warnings == whole.warnings
 
+
+
+def _general():
+    return [METHODS[name] for name in GENERAL_METHODS]
+
+
+def _general_items():
+    return [(name, METHODS[name]) for name in GENERAL_METHODS]

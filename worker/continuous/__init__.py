@@ -17,12 +17,15 @@ from __future__ import annotations
 import time
 from typing import Any
 
+import numpy as np
+
 from worker import _codegen
 from worker.continuous.egm import conditions
 from worker.continuous.problem import ContinuousProblem
 from worker.continuous.source import BOUND_HIGH, BOUND_LOW, module_text
-from worker.errors import InvalidDocument
-from worker.feasibility import feasibility_scan, model_data
+from worker.errors import InvalidDocument, join_path
+from worker.expressions import evaluate
+from worker.feasibility import ModelData, feasibility_scan, model_data
 
 __all__ = ["ContinuousProblem", "compile_continuous"]
 
@@ -51,6 +54,8 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
         if reason is not None:
             raise InvalidDocument.at("solver.method", f"the endogenous grid method does not apply: {reason}")
         egm = (found, c_slope)
+    if data.span is not None:
+        _check_bounds(data)
     feasibility_scan(data, None)
     source = data.source
     target = next((t for t, j in enumerate(data.setter) if j is not None), None)
@@ -75,3 +80,28 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     problem.warm_up()
     problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
     return problem
+
+
+def _check_bounds(data: ModelData) -> None:
+    """Refuse bounds that are not finite numbers, or a max below the min, at some point (named by its values)."""
+    rows = np.arange(data.n, dtype=np.int64)
+    env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
+    env.update(data.state_env(rows))
+    name = data.choices[0]
+    with np.errstate(all="ignore"):
+        low, high = (np.broadcast_to(evaluate(bound, env), (data.n, 1))[:, 0] for bound in data.span)
+    for key, values in (("min", low), ("max", high)):
+        bad = np.flatnonzero(~np.isfinite(values))
+        if bad.size:
+            raise InvalidDocument.at(
+                join_path("model", "choices", name, key),
+                f"is {values[bad[0]]} at {data.describe_state(int(bad[0]))} ({bad.size:,} points in all): the "
+                "bounds of a continuous choice must be finite numbers at every point",
+            )
+    below = np.flatnonzero(high < low)
+    if below.size:
+        i = int(below[0])
+        raise InvalidDocument.at(
+            join_path("model", "choices", name, "max"),
+            f"is {high[i]:.6g}, below min ({low[i]:.6g}), at {data.describe_state(i)} ({below.size:,} points in all)",
+        )

@@ -22,16 +22,16 @@ import numpy as np
 from worker.errors import InvalidDocument
 from worker.expressions import evaluate
 from worker.grids import locate
-from worker.report import PERCENTILES
 
 __all__ = ["simulate_paths"]
 
 
 def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
-                   stationary: Any) -> dict[str, Any]:
+                   stationary: Any, summarise: Any) -> dict[str, Any]:
     """Summary and first path of ``spec.paths`` simulated paths; the keys of :func:`worker.report.simulate_report`.
 
-    ``stationary(matrix) -> (pi, info)`` gives the distribution to draw starts from.
+    ``stationary(matrix) -> (pi, info)`` gives the distribution to draw starts from; ``summarise(samples)``
+    the summary of one series (both from :mod:`worker.report`, which calls this).
     """
     data = problem.model_data
     periods, paths = int(spec.periods), int(spec.paths)
@@ -70,7 +70,7 @@ def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
     series = {name: states[:, :, k] for k, name in enumerate(data.states)}
     series.update({name: data.shock_table[shocks, k] for k, name in enumerate(data.shocks)})
     series[problem.choice] = chosen
-    summary = {name: _summarise(sample) for name, sample in series.items()}
+    summary = {name: summarise(sample) for name, sample in series.items()}
     first_path = {name: sample[:, 0].tolist() for name, sample in series.items()}
     return {"periods": periods, "paths": paths, "seed": spec.seed, "summary": summary, "first_path": first_path,
             "warnings": warnings, "interpolated": True}
@@ -135,11 +135,3 @@ def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray, a: np.ndarr
             moved += int(np.count_nonzero((value < grid[0]) | (value > grid[-1])))
             out[:, t] = np.clip(value, grid[0], grid[-1])
     return out, moved
-
-
-def _summarise(samples: np.ndarray) -> dict[str, float]:
-    flat = np.asarray(samples, dtype=np.float64).ravel()
-    quantiles = np.percentile(flat, PERCENTILES)
-    out = {"mean": float(flat.mean()), "std": float(flat.std())}
-    out.update({f"p{p}": float(q) for p, q in zip(PERCENTILES, quantiles)})
-    return out

@@ -33,7 +33,9 @@ row blocks of whole lines give the same bits on any number of threads.
 
 from __future__ import annotations
 
-__all__ = ["BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "SEARCH_TEXT", "XTOL_SHARE"]
+__all__ = [
+    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_TEXT", "SEARCH_TEXT", "XTOL_SHARE",
+]
 
 COARSE_POINTS = 9
 """Points of the coarse scan that starts a concave search without a guess (count)."""
@@ -59,7 +61,7 @@ fx = -np.inf
 rx = -np.inf
 width = hi_b - lo_b
 if width == 0.0:
-    fx, rx = f(lo_b)
+    fx, rx, _xk = f(lo_b)
     x = lo_b
 elif width > 0.0:
     tol_abs = {XTOL_SHARE!r} * width
@@ -73,7 +75,7 @@ elif width > 0.0:
     if g == g:
         g = min(max(g, lo_b), hi_b)
     if concave and g == g:
-        fg, rg = f(g)
+        fg, rg, _xk = f(g)
         if fg > -np.inf:
             found = True
             step = {EXPAND_SHARE!r} * width
@@ -81,7 +83,7 @@ elif width > 0.0:
             f1 = fg
             r1 = rg
             xa = min(x1 + step, hi_b)
-            fa, ra = f(xa)
+            fa, ra, _xk = f(xa)
             if fa > f1:
                 a0 = x1
                 x1 = xa
@@ -91,7 +93,7 @@ elif width > 0.0:
                 while x1 < hi_b:
                     step *= 2.0
                     xb = min(x1 + step, hi_b)
-                    fb, rb = f(xb)
+                    fb, rb, _xk = f(xb)
                     if fb > f1:
                         a0 = x1
                         x1 = xb
@@ -103,7 +105,7 @@ elif width > 0.0:
             else:
                 a2 = xa
                 xb = max(x1 - step, lo_b)
-                fb, rb = f(xb)
+                fb, rb, _xk = f(xb)
                 if fb > f1:
                     a2 = x1
                     x1 = xb
@@ -113,7 +115,7 @@ elif width > 0.0:
                     while x1 > lo_b:
                         step *= 2.0
                         xc = max(x1 - step, lo_b)
-                        fc, rc = f(xc)
+                        fc, rc, _xk = f(xc)
                         if fc > f1:
                             a2 = x1
                             x1 = xc
@@ -156,7 +158,7 @@ elif width > 0.0:
             if wanted:
                 a2 = xk
                 wanted = False
-            fk, rk = f(xk)
+            fk, rk, _xk = f(xk)
             if fk > f1:
                 x1 = xk
                 f1 = fk
@@ -212,7 +214,7 @@ elif width > 0.0:
             else:
                 u = x - tol1
             u = min(max(u, lo_b), hi_b)
-            fu, ru = f(u)
+            fu, ru, _xk = f(u)
             gu = -fu
             if gu <= gx:
                 if u < x:
@@ -240,9 +242,37 @@ elif width > 0.0:
                 elif gu <= gv or v == x or v == w:
                     v = u
                     gv = gu
+#KINK#
 out_v[i] = fx
 out_a[i] = x
 out_r[i] = rx
 """
 """The search's text, run inside the kernel's loop over points with ``f``, ``low``, ``high``,
-``grid_off``/``grid_size`` (−1/0 without a grid to scan), and the kernel's arguments in scope."""
+``grid_off``/``grid_size`` (−1/0 without a grid to scan), and the kernel's arguments in scope;
+``#KINK#`` is where :data:`KINK_TEXT` goes with linear interpolation."""
+
+KINK_TEXT = """
+if fx > -np.inf:
+    fy, ry, xp = f(x)
+    lo_k, w_k, c_k = locate_one(sgrid, kink_off, kink_size, xp)
+    slope_k = 1.0
+    if not direct:
+        h_k = 1e-7 * (abs(x) + width)
+        x2 = x + h_k if x + h_k <= hi_b else x - h_k
+        f2, r2, xp2 = f(x2)
+        slope_k = (xp2 - xp) / (x2 - x)
+    for side in range(2):
+        g_k = sgrid[kink_off + lo_k + side]
+        u = x + (g_k - xp) / slope_k
+        if u >= lo_b and u <= hi_b:
+            fu, ru, xu = f(u)
+            if fu > fx:
+                x = u
+                fx = fu
+                rx = ru
+"""
+"""With linear interpolation the objective bends where tomorrow's state crosses a grid point of the
+kink axis (the chosen state, or the one state), and a maximum often sits on such a bend, where
+Brent's method stops a little past it: the two grid points around tomorrow's state at the best
+choice are tried (through a secant step of the law of motion when the choice is not tomorrow's
+state itself), and kept when better."""

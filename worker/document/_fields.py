@@ -197,6 +197,24 @@ class _FailFast(FailFast):
     __hash__ = object.__hash__
 
 
+def _number_or_text(value: Any) -> str | None:
+    if isinstance(value, str):
+        return "<expression>"
+    if isinstance(value, (int, float)) and not isinstance(value, bool):
+        return "<number>"
+    return None
+
+
+NumberOrExpression = Annotated[
+    Union[Annotated[float, Tag("<number>")], Annotated[Expression, Tag("<expression>")]],
+    Discriminator(
+        _number_or_text,
+        custom_error_type="fixq_bound",
+        custom_error_message="expected a number or an expression (a string)",
+    ),
+]
+"""A bound that is a number, or an expression (a continuous choice's interval)."""
+
 Label = Annotated[str, Field(min_length=1, max_length=MAX_LABEL_CHARS)]
 LabelsOrCount = Annotated[
     Union[

@@ -26,6 +26,7 @@ from worker.document._faults import (
 from worker.document._fields import (
     Expression,
     Name,
+    NumberOrExpression,
     Part,
     Points,
     Positive,
@@ -122,14 +123,14 @@ class ChoiceSpec(Part):
     values: Vector | None = Field(
         default=None, description="A finite menu of values to choose from, strictly increasing."
     )
-    min: float | Expression | None = Field(
+    min: NumberOrExpression | None = Field(
         default=None,
         description=(
             "Smallest grid value; for a continuous choice, the lower end of the interval, a number or an "
             "expression of today's states, shocks and params."
         ),
     )
-    max: float | Expression | None = Field(
+    max: NumberOrExpression | None = Field(
         default=None,
         description=(
             "Largest grid value, greater than min; for a continuous choice, the upper end of the interval, a "

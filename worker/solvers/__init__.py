@@ -58,7 +58,9 @@ from worker.solvers.evaluation import exact_evaluation, no_evaluation
 from worker.solvers.loop import Step, iterate, meets, options
 from worker.solvers.outcome import RATE_FLOOR_ULPS, ROUNDING_ULPS, Checkpoint, Entry, SolveOutcome, observed_rate
 
-__all__ = ["GENERAL_METHODS", "METHODS", "RATE_FLOOR_ULPS", "ROUNDING_ULPS", "Checkpoint", "SolveOutcome", "observed_rate"]
+__all__ = [
+    "GENERAL_METHODS", "METHODS", "RATE_FLOOR_ULPS", "ROUNDING_ULPS", "Checkpoint", "SolveOutcome", "observed_rate",
+]
 
 
 def _value_iteration(
