@@ -52,8 +52,9 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
+from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
 from worker.errors import InvalidDocument
-from worker.euler import EulerSetup, _environment, _invert, _slope, _slope_trees, setup
+from worker.euler import EulerSetup, _environment, _invert, _marginal, _slope, _slope_trees, _subset, setup
 from worker.expressions import names_in
 from worker.feasibility import ModelData
 
@@ -92,7 +93,8 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
 
 
 def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], solve_from: Callable[..., Any],
-                    *, tolerance: float, max_iterations: int, **options: Any) -> Any:
+                    *, tolerance: float = DEFAULT_TOLERANCE, max_iterations: int = DEFAULT_MAX_ITERATIONS,
+                    **options: Any) -> Any:
     """Solve ``problem`` (a :class:`~worker.continuous.ContinuousProblem`) by the method; a certified outcome.
 
     ``solve_from(problem, v, **options)`` is the ordinary solver that certifies (Howard's method).
@@ -103,30 +105,30 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     n_k, n_z = grid.size, data.n_shocks
     shocks = data.shock_table[None, :, :]
     beta = problem.discount
-    policy = np.full((n_k, n_z), grid[0])
-    c_star = None
     width = float(grid[-1] - grid[0])
+    policy = np.full((n_k, n_z), grid[0])
+    pairs: tuple[np.ndarray, np.ndarray] | None = None
+    c_star: np.ndarray | None = None
     rounds, change = 0, np.inf
-    k_today = np.empty((n_k, n_z))
     with np.errstate(all="ignore"):
-        x_today = np.broadcast_to(grid[:, None], (n_k, n_z))
-        env_today = _environment(data, found, grid[:, None], shocks, x_today)
-        c_x = _slope(found.define_slope, env_today, (n_k, n_z))
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
-            env_next = _environment(data, found, grid[:, None], shocks, policy)
-            marginal_next = _slope(found.state_slope, env_next, (n_k, n_z))
-            expected = marginal_next @ data.transition.T
-            target = -beta * expected / c_x
-            guess = np.broadcast_to(env_today[found.define], (n_k, n_z)).astype(np.float64) if c_star is None \
-                else c_star
-            guess = np.where(np.isfinite(guess) & (guess > 0), guess, 1.0)
-            c_star = _invert(found, env_today, guess, target)
-            k_today = _state_for(data, found, c_slope, grid, shocks, c_star, k_today if rounds else None)
-            new = _policy_on_grid(grid, k_today)
-            change = float(np.nanmax(np.abs(new - policy))) if np.isfinite(new).all() else np.inf
-            if not np.isfinite(new).all():
+            points = grid if pairs is None else _with_kinks(grid, pairs)
+            tomorrow = np.full((points.size, n_z), grid[0]) if pairs is None else _rule_at(grid, pairs, points)
+            env_next = _environment(data, found, points[:, None], shocks, tomorrow)
+            expected = _slope(found.state_slope, env_next, (points.size, n_z)) @ data.transition.T
+            choices = np.broadcast_to(points[:, None], (points.size, n_z))
+            env_today = _environment(data, found, points[:, None], shocks, choices)
+            target = -beta * expected / _slope(found.define_slope, env_today, (points.size, n_z))
+            if c_star is None or c_star.shape != target.shape:
+                c_star = np.broadcast_to(env_today[found.define], target.shape).astype(np.float64)
+            c_star = _inverse_marginal(found, env_today, c_star, target)
+            k_today = _state_for(data, found, c_slope, points, shocks, c_star)
+            if not np.isfinite(k_today).all():
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
+            pairs = (k_today, points)
+            new = _rule_at(grid, pairs, grid)
+            change = float(np.abs(new - policy).max())
             policy = new
             rounds += 1
     egm_seconds = time.perf_counter() - started
@@ -141,54 +143,71 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     problem.egm_report = {"rounds": rounds, "last_change": change, "seconds": egm_seconds,
                           "greedy_gap": float(np.abs(greedy - flat).max())}
     outcome.policy = flat
-    problem.egm_rule = _endogenous_rule(grid, k_today)
+    problem.egm_rule = lambda k: _rule_at(grid, pairs, np.asarray(k, dtype=np.float64).reshape(-1))
     return outcome
 
 
-def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], grid: np.ndarray,
-               shocks: np.ndarray, c_star: np.ndarray, start: np.ndarray | None) -> np.ndarray:
-    """Today's state ``k*`` (n_k, n_z) at which the define equals ``c_star`` with the choice at each grid point."""
-    k = np.broadcast_to(grid[:, None], c_star.shape).copy() if start is None else start.copy()
-    x = np.broadcast_to(grid[:, None], c_star.shape)
-    scale = float(np.abs(grid).max())
+def _with_kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
+    """The grid with the states where the lower end starts to bind tomorrow, for each shock point, added.
+
+    There tomorrow's policy bends, and so does today's: with them among the
+    choices the endogenous grid has a point on every bend, and reading it
+    linearly is exact there (common practice in the method's refinements).
+    """
+    kinks = pairs[0][0]
+    inside = kinks[(kinks > grid[0]) & (kinks < grid[-1])]
+    return np.union1d(grid, inside) if inside.size else grid
+
+
+def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarray) -> np.ndarray:
+    """The method's policy (m, n_z) at states ``k`` (m,): linear along each shock point's endogenous grid;
+    the grid's lower end below its first point (the constraint binds), its upper end past the last."""
+    states, choices = pairs
+    out = np.empty((k.size, states.shape[1]))
+    for z in range(states.shape[1]):
+        column = states[:, z]
+        if np.all(np.diff(column) > 0):
+            out[:, z] = np.interp(k, column, choices, left=grid[0], right=grid[-1])
+        else:
+            order = np.argsort(column, kind="stable")
+            out[:, z] = np.interp(k, column[order], choices[order], left=grid[0], right=grid[-1])
+    return np.clip(out, grid[0], grid[-1])
+
+
+def _inverse_marginal(found: EulerSetup, env: dict[str, Any], guess: np.ndarray, target: np.ndarray) -> np.ndarray:
+    """The ``c`` with ``∂r/∂c(c) = target``: Newton steps on the logarithms (exact in one step for a marginal
+    reward that is a power of ``c``, as CRRA and log rewards have), :func:`worker.euler._invert` where the
+    marginal reward or the target is not positive or a step does not settle."""
+    c = np.where(np.isfinite(guess) & (guess > 0), guess, 1.0)
+    settled = np.zeros(c.shape, dtype=bool)
+    for _ in range(_NEWTON_STEPS):
+        marginal = _marginal(found, env, c, slope=False)
+        elasticity = c * _marginal(found, env, c, slope=True) / marginal
+        step = (np.log(marginal) - np.log(target)) / elasticity
+        usable = np.isfinite(step)
+        c = np.where(usable, c * np.exp(-np.clip(step, -50.0, 50.0)), c)
+        settled = usable & (np.abs(step) <= 4 * np.finfo(float).eps)
+        if settled.all():
+            return c
+    rest = ~settled
+    c[rest] = _invert(found, _subset(env, rest), c[rest], target[rest]) if rest.any() else c[rest]
+    return c
+
+
+def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], points: np.ndarray,
+               shocks: np.ndarray, c_star: np.ndarray) -> np.ndarray:
+    """Today's state ``k*`` (m, n_z) at which the define equals ``c_star`` with the choice at ``points`` (m,)."""
+    k = np.broadcast_to(points[:, None], c_star.shape).copy()
+    x = np.broadcast_to(points[:, None], c_star.shape)
+    scale = float(np.abs(points).max())
     for _ in range(_NEWTON_STEPS):
         env = _environment(data, found, k, shocks, x)
         gap = np.broadcast_to(env[found.define], c_star.shape) - c_star
-        slope = _slope(c_slope, env, c_star.shape)
-        step = gap / slope
+        step = gap / _slope(c_slope, env, c_star.shape)
         k = k - step
         if np.all(np.abs(step) <= 4 * np.finfo(float).eps * (np.abs(k) + scale)):
             break
     return k
-
-
-def _policy_on_grid(grid: np.ndarray, k_today: np.ndarray) -> np.ndarray:
-    """The choice at each grid point: tomorrow's grid against today's endogenous states, linearly."""
-    out = np.empty_like(k_today)
-    for z in range(k_today.shape[1]):
-        points = k_today[:, z]
-        if not np.all(np.diff(points) > 0):
-            order = np.argsort(points, kind="stable")
-            points, values = points[order], grid[order]
-        else:
-            values = grid
-        out[:, z] = np.interp(grid, points, values, left=grid[0], right=grid[-1])
-    return np.clip(out, grid[0], grid[-1])
-
-
-def _endogenous_rule(grid: np.ndarray, k_today: np.ndarray) -> Callable[[np.ndarray], np.ndarray]:
-    """``rule(k) -> x`` (m, n_z): the method's own policy between grid points (linear along the endogenous grid)."""
-    def rule(k: np.ndarray) -> np.ndarray:
-        return _policy_on_grid_at(grid, k_today, np.asarray(k, dtype=np.float64).reshape(-1))
-
-    return rule
-
-
-def _policy_on_grid_at(grid: np.ndarray, k_today: np.ndarray, k: np.ndarray) -> np.ndarray:
-    out = np.empty((k.size, k_today.shape[1]))
-    for z in range(k_today.shape[1]):
-        out[:, z] = np.interp(k, k_today[:, z], grid, left=grid[0], right=grid[-1])
-    return out
 
 
 def _policy_value(problem: Any, policy: np.ndarray, tolerance: float) -> np.ndarray:

@@ -53,7 +53,10 @@ def phase_plan(run: Run) -> tuple[int, float]:
     * while the last iteration changed the policy somewhere, the phase is
       ``max(1, m // MOVING_STEPS_DIVISOR)`` steps: a policy that is still
       moving is not worth evaluating precisely (on the growth benchmark the
-      number of iterations did not grow from 50 down to 10 steps);
+      number of iterations did not grow from 50 down to 10 steps).  A problem
+      may set its own ``moving_steps_divisor``: a continuous choice, whose
+      Bellman step costs tens of evaluation steps and whose policy keeps
+      moving a little until the end, uses 1;
     * once an iteration changed no policy entry, the policy is probably
       optimal and the next iteration can certify only if ``v`` is close to
       ``v_σ``: the phase runs up to ``STABLE_STEPS_FACTOR · m`` steps and
@@ -71,7 +74,8 @@ def phase_plan(run: Run) -> tuple[int, float]:
     if base == 0:
         return 0, -np.inf
     if changes:
-        return max(1, base // MOVING_STEPS_DIVISOR), -np.inf
+        divisor = getattr(run.problem, "moving_steps_divisor", MOVING_STEPS_DIVISOR)
+        return max(1, base // divisor), -np.inf
     return STABLE_STEPS_FACTOR * base, run.options.tolerance * (1.0 - run.beta) / run.beta
 
 
