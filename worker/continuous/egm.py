@@ -58,13 +58,15 @@ from worker.euler import EulerSetup, _environment, _invert, _marginal, _slope, _
 from worker.expressions import names_in
 from worker.feasibility import ModelData
 
-__all__ = ["MAX_ROUNDS", "POLICY_TOLERANCE", "conditions", "endogenous_grid"]
+__all__ = ["KINK_GENERATIONS", "MAX_ROUNDS", "POLICY_TOLERANCE", "conditions", "endogenous_grid"]
 
 POLICY_TOLERANCE = 1e-11
 """The iteration stops when no choice moves by more than this share of the grid's width."""
 MAX_ROUNDS = 20_000
 """Most rounds of the iteration (count)."""
 _NEWTON_STEPS = 60
+KINK_GENERATIONS = 3
+"""Generations of bends of the policy added to the choices (count; see :func:`_kinks`)."""
 
 
 def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | None, str | None]:
@@ -108,11 +110,14 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     width = float(grid[-1] - grid[0])
     policy = np.full((n_k, n_z), grid[0])
     pairs: tuple[np.ndarray, np.ndarray] | None = None
+    kinks: tuple[np.ndarray, np.ndarray] | None = None
     c_star: np.ndarray | None = None
     rounds, change = 0, np.inf
     with np.errstate(all="ignore"):
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
-            points = grid if pairs is None else _with_kinks(grid, pairs)
+            if pairs is not None:
+                kinks = _kinks(grid, pairs, kinks)
+            points = grid if kinks is None else np.union1d(grid, kinks[0])
             tomorrow = np.full((points.size, n_z), grid[0]) if pairs is None else _rule_at(grid, pairs, points)
             env_next = _environment(data, found, points[:, None], shocks, tomorrow)
             expected = _slope(found.state_slope, env_next, (points.size, n_z)) @ data.transition.T
@@ -147,16 +152,35 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     return outcome
 
 
-def _with_kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray]) -> np.ndarray:
-    """The grid with the states where the lower end starts to bind tomorrow, for each shock point, added.
+def _kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray],
+           previous: tuple[np.ndarray, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray]:
+    """``(states, generations)`` where the method's policy bends, inside the grid, for the next round's choices.
 
-    There tomorrow's policy bends, and so does today's: with them among the
-    choices the endogenous grid has a point on every bend, and reading it
-    linearly is exact there (common practice in the method's refinements).
+    Generation 1: the states where the lower end starts to bind, for each
+    shock point.  Tomorrow's policy bends there, so today's bends at the
+    states that choose them — generation 2, the images of generation 1 on
+    this round's endogenous grid — and so on, each weaker than the last.
+    With the bends among the choices the endogenous grid has a point on each,
+    and reading it linearly is exact there; ``KINK_GENERATIONS`` are kept.
     """
-    kinks = pairs[0][0]
-    inside = kinks[(kinks > grid[0]) & (kinks < grid[-1])]
-    return np.union1d(grid, inside) if inside.size else grid
+    states, choices = pairs
+    if KINK_GENERATIONS < 1:
+        return np.zeros(0), np.zeros(0, dtype=np.int64)
+    values, generations = [states[0]], [np.ones(states.shape[1], dtype=np.int64)]
+    if previous is not None:
+        for value, generation in zip(*previous):
+            if generation < KINK_GENERATIONS:
+                row = np.flatnonzero(choices == value)
+                if row.size:
+                    values.append(states[row[0]])
+                    generations.append(np.full(states.shape[1], generation + 1, dtype=np.int64))
+    value, generation = np.concatenate(values), np.concatenate(generations)
+    inside = np.isfinite(value) & (value > grid[0]) & (value < grid[-1]) & ~np.isin(value, grid)
+    value, generation = value[inside], generation[inside]
+    order = np.lexsort((generation, value))
+    value, generation = value[order], generation[order]
+    first = np.concatenate([[True], value[1:] != value[:-1]]) if value.size else np.zeros(0, dtype=bool)
+    return value[first], generation[first]
 
 
 def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarray) -> np.ndarray:

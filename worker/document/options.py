@@ -103,8 +103,10 @@ class SolverSpec(Part):
         description=(
             'The algorithm: "value_iteration" (one iteration after another until the error bound meets the '
             "tolerance), \"howard\" (Howard's method, i.e. modified policy iteration: after each iteration, "
-            "evaluation steps of the current policy, see evaluation_steps; the default) or \"policy_iteration\" "
-            "(each policy evaluated exactly by solving a linear system)."
+            "evaluation steps of the current policy, see evaluation_steps; the default), \"policy_iteration\" "
+            "(each policy evaluated exactly by solving a linear system) or \"endogenous_grid\" (Carroll's "
+            "endogenous grid method, for a model with one state, a continuous next_of choice and a reward that "
+            "depends on it through one define; its value certified by Howard's method from the policy found)."
         ),
     )
     tolerance: Positive = Field(

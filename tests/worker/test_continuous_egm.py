@@ -1,0 +1,131 @@
+"""The endogenous grid method and simulation off the grid, on an invented consumption–saving model.
+
+References written here: the fixed point of the same fitted problem by Howard's method (fixq's other
+path), a plain numpy endogenous-grid iteration (Carroll 2006) for the policy, and the long-run mean of the
+Young (2010) lottery chain for the simulated mean.
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import numpy as np
+import pytest
+
+from worker.errors import InvalidDocument
+from worker.solve import solve
+
+BETA, R, GAMMA = 0.94, 0.03, 2.0
+INCOME = np.array([0.7, 1.3])
+CHAIN = np.array([[0.8, 0.2], [0.25, 0.75]])
+
+HOUSEHOLD: dict[str, Any] = {
+    "kind": "grid",
+    "params": {"r": R, "gamma": GAMMA},
+    "states": {"a": {"min": 0.0, "max": 12.0, "points": 120, "spacing": "power", "exponent": 2.0}},
+    "shocks": {"y": {"markov": {"values": INCOME.tolist(), "matrix": CHAIN.tolist()}, "transform": "none"}},
+    "choices": {"save": {"next_of": "a", "continuous": True}},
+    "define": {"c": "(1 + r) * a + y - save"},
+    "reward": "c**(1 - gamma) / (1 - gamma)",
+    "feasible": ["c > 0"],
+    "hints": {"concave": True, "monotone": True},
+}
+"""Invented: a household saving out of a two-state income."""
+
+
+def _document(method: str = "endogenous_grid", model: dict[str, Any] = HOUSEHOLD, **report: Any) -> dict[str, Any]:
+    return {"version": 1, "discount": BETA, "model": copy.deepcopy(model),
+            "solver": {"method": method, "tolerance": 1e-9}, "report": report}
+
+
+def _numpy_egm(grid: np.ndarray, rounds: int = 3000) -> np.ndarray:
+    """Savings on ``grid`` (points, shocks) by a plain endogenous-grid iteration (Carroll 2006), linear reading."""
+    policy = np.zeros((grid.size, INCOME.size))
+    for _ in range(rounds):
+        consumption = (1 + R) * grid[:, None] + INCOME[None, :] - policy
+        expected = (consumption ** -GAMMA) @ CHAIN.T * (1 + R)
+        today_c = (BETA * expected) ** (-1 / GAMMA)
+        today_a = (today_c + grid[:, None] - INCOME[None, :]) / (1 + R)
+        new = np.column_stack([np.interp(grid, today_a[:, z], grid, left=0.0, right=grid[-1])
+                               for z in range(INCOME.size)])
+        if np.abs(new - policy).max() < 1e-13:
+            return new
+        policy = new
+    return policy
+
+
+def test_the_value_agrees_with_howards_method_within_both_bounds() -> None:
+    egm = solve(_document())
+    howard = solve(_document("howard"))
+    assert egm["status"] == howard["status"] == "converged"
+    gap = np.abs(np.array(egm["value"]) - np.array(howard["value"])).max()
+    assert gap <= egm["error_bound"] + howard["error_bound"]
+    report = egm["diagnostics"]["continuous_choice"]["endogenous_grid"]
+    assert report["rounds"] > 10 and report["last_change"] < 1e-8
+    # The method's policy is close to the fitted problem's maximiser (their gap is reported).
+    assert report["greedy_gap"] == pytest.approx(
+        np.abs(np.array(egm["policy"]["save"]) - np.array(howard["policy"]["save"])).max(), abs=1e-6)
+    assert report["greedy_gap"] < 0.05
+
+
+def test_the_policy_agrees_with_a_plain_numpy_endogenous_grid_iteration(monkeypatch: pytest.MonkeyPatch) -> None:
+    from worker.continuous import egm
+
+    monkeypatch.setattr(egm, "KINK_GENERATIONS", 0)
+    plain = solve(_document())
+    grid = np.array(plain["axes"]["a"])
+    reference = _numpy_egm(grid)
+    # Without the bends added, both iterate the same map on the same grid; fixq stops when no choice moves by
+    # more than POLICY_TOLERANCE of the grid's width (1.2e-9 here), which at this rate of convergence leaves a
+    # few times that to the fixed point.
+    assert np.abs(np.array(plain["policy"]["save"]) - reference).max() < 1e-8
+    monkeypatch.undo()
+    # With them the fitted solution moves a little (the bends are read exactly), and its errors fall.
+    bent = solve(_document(euler_errors=True))
+    assert np.abs(np.array(bent["policy"]["save"]) - reference).max() < 2e-3
+    monkeypatch.setattr(egm, "KINK_GENERATIONS", 0)
+    straight = solve(_document(euler_errors=True))
+    assert bent["diagnostics"]["euler_errors"]["max_log10"] < straight["diagnostics"]["euler_errors"]["max_log10"]
+
+
+def test_its_euler_errors_beat_the_linear_value_iteration() -> None:
+    egm = solve(_document(euler_errors=True))["diagnostics"]["euler_errors"]
+    linear = solve(_document("howard", euler_errors=True))["diagnostics"]["euler_errors"]
+    assert egm["max_log10"] < linear["max_log10"] - 0.5
+    assert egm["mean_log10"] < linear["mean_log10"] - 2
+
+
+@pytest.mark.parametrize("change, phrase", [
+    ({"choices": {"c": {"min": "0", "max": "(1 + r) * a + y", "continuous": True}}, "define": {},
+      "next": {"a": "(1 + r) * a + y - c"}}, "next_of"),
+    ({"reward": "c**(1 - gamma) / (1 - gamma) - 0.01 * save"}, "directly"),
+    ({"reward": "c**(1 - gamma) / (1 - gamma) * (1 + 0.1 * a)"}, "today's state"),
+])
+def test_a_model_not_of_its_form_is_refused_naming_the_condition(change: dict[str, Any], phrase: str) -> None:
+    model = {**copy.deepcopy(HOUSEHOLD), **change}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(_document(model=model))
+    assert caught.value.errors[0]["path"] == "solver.method"
+    assert phrase in caught.value.errors[0]["message"]
+
+
+def test_a_simulation_follows_states_off_the_grid_with_the_policy_interpolated() -> None:
+    document = _document("howard", stationary=True,
+                         simulation={"periods": 400, "paths": 2000, "seed": 7, "start": {"a": 1.2345, "y": 0.7}})
+    result = solve(document)
+    simulation = result["simulation"]
+    path = simulation["first_path"]
+    assert path["a"][0] == 1.2345 and path["y"][0] == 0.7
+    grid = np.array(result["axes"]["a"])
+    policy = np.array(result["policy"]["save"])
+    # Each period's choice is the policy read linearly at the path's state; tomorrow's state is that choice.
+    for t in range(20):
+        z = int(np.flatnonzero(INCOME == path["y"][t])[0])
+        assert path["save"][t] == pytest.approx(np.interp(path["a"][t], grid, policy[:, z]), abs=1e-12)
+        assert path["a"][t + 1] == pytest.approx(path["save"][t], abs=1e-15)
+    assert sum(not np.isclose(a, grid).any() for a in path["a"]) > 15
+    # The long-run mean of the simulated assets is the Young-lottery chain's mean, within sampling error.
+    long_run = result["stationary"]["means"]["a"]
+    assert simulation["summary"]["a"]["mean"] == pytest.approx(long_run, rel=0.05)
+    assert simulation["summary"]["save"]["mean"] == pytest.approx(result["stationary"]["means"]["save"], rel=0.05)
