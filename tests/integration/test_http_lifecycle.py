@@ -289,3 +289,24 @@ def test_metrics_parse(service: Service) -> None:
     assert samples[("fixq_jobs", (("state", "canceled"),))] >= 1
     assert samples[("fixq_solve_seconds_count", ())] >= 1
     assert ("fixq_queue_depth", (("queue", "fixq-normal"),)) in samples
+
+
+def test_a_continuous_choice_solves_through_the_queue(service: Service) -> None:
+    """The bundled continuous-choice example (invented), end to end: result, table, plots."""
+    from service.examples import load_example
+
+    service.start_worker()
+    document = load_example("beekeeper_savings")
+    record = service.submit(document)
+    job_id = record["id"]
+    finished = service.wait_state(job_id, {"done", "failed"}, 120)
+    assert finished["state"] == "done", finished
+    result = service.http.get(f"/v1/jobs/{job_id}/result").json()
+    assert result["policy_index"] is None and result["diagnostics"]["continuous_choice"]["interpolation"]
+    (choice,) = result["policy"]
+    assert result["diagnostics"]["euler_errors"]["max_log10"] < -2
+    table = list(csv.reader(io.StringIO(service.http.get(f"/v1/jobs/{job_id}/result?format=csv").text)))
+    assert table[0][-1] == choice and float(table[1][-1]) == result["policy"][choice][0][0]
+    for picture in ("policy", "value", "euler_errors"):
+        response = service.http.get(f"/v1/jobs/{job_id}/plots/{picture}.svg")
+        assert response.status_code == 200 and response.text.lstrip().startswith("<?xml"), picture
