@@ -52,6 +52,8 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
+from worker.continuous.egm_source import egm_kernel, power_law
+from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
 from worker.errors import InvalidDocument
 from worker.euler import EulerSetup, _environment, _invert, _marginal, _slope, _slope_trees, _subset, setup
@@ -105,7 +107,6 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     started = time.perf_counter()
     grid = data.state_grids[0]
     n_k, n_z = grid.size, data.n_shocks
-    shocks = data.shock_table[None, :, :]
     beta = problem.discount
     width = float(grid[-1] - grid[0])
     policy = np.full((n_k, n_z), grid[0])
@@ -113,21 +114,23 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     kinks: tuple[np.ndarray, np.ndarray] | None = None
     c_star: np.ndarray | None = None
     rounds, change = 0, np.inf
+    power = _power(data, found, grid)
+    kernel, params = egm_kernel(data, found, c_slope, power)
     with np.errstate(all="ignore"):
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
             if pairs is not None:
                 kinks = _kinks(grid, pairs, kinks)
             points = grid if kinks is None else np.union1d(grid, kinks[0])
             tomorrow = np.full((points.size, n_z), grid[0]) if pairs is None else _rule_at(grid, pairs, points)
-            env_next = _environment(data, found, points[:, None], shocks, tomorrow)
-            expected = _slope(found.state_slope, env_next, (points.size, n_z)) @ data.transition.T
-            choices = np.broadcast_to(points[:, None], (points.size, n_z))
-            env_today = _environment(data, found, points[:, None], shocks, choices)
-            target = -beta * expected / _slope(found.define_slope, env_today, (points.size, n_z))
-            if c_star is None or c_star.shape != target.shape:
-                c_star = np.broadcast_to(env_today[found.define], target.shape).astype(np.float64)
-            c_star = _inverse_marginal(found, env_today, c_star, target)
-            k_today = _state_for(data, found, c_slope, points, shocks, c_star)
+            if c_star is None:
+                c_star = np.full((points.size, n_z), np.nan)
+            elif c_star.shape != (points.size, n_z):
+                # The bends moved: carry each shock point's c* onto this round's choices.
+                c_star = np.column_stack([np.interp(points, pairs[1], c_star[:, z]) for z in range(n_z)])
+            k_today = np.empty((points.size, n_z))
+            if not kernel(points, tomorrow, data.transition, beta, params, data.shock_table, power is not None,
+                          c_star, k_today):
+                c_star, k_today = _numpy_round(data, found, c_slope, beta, points, tomorrow, c_star)
             if not np.isfinite(k_today).all():
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
@@ -152,6 +155,34 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     return outcome
 
 
+def _power(data: ModelData, found: EulerSetup, grid: np.ndarray) -> tuple[float, float] | None:
+    """``(A, p)`` when the marginal reward is ``A·c**p`` at every shock point (:func:`power_law`), else None."""
+    found_laws = set()
+    shocks = data.shock_table[None, :, :]
+    for z in range(data.n_shocks):
+        env = _environment(data, found, grid[:1, None], shocks[:, z:z + 1, :], grid[:1, None])
+        law = power_law(lambda c, env=env: _marginal(found, {**env}, c[:, None], slope=False)[:, 0],
+                        max(float(np.abs(env[found.define]).max()), 1.0))
+        if law is None:
+            return None
+        found_laws.add(law)
+    return found_laws.pop() if len(found_laws) == 1 else None
+
+
+def _numpy_round(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], beta: float, points: np.ndarray,
+                 tomorrow: np.ndarray, c_star: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """One round in numpy (the kernel's twin, with bisection where Newton steps do not settle): ``(c*, k*)``."""
+    shocks = data.shock_table[None, :, :]
+    shape = (points.size, data.n_shocks)
+    env_next = _environment(data, found, points[:, None], shocks, tomorrow)
+    expected = _slope(found.state_slope, env_next, shape) @ data.transition.T
+    env_today = _environment(data, found, points[:, None], shocks, np.broadcast_to(points[:, None], shape))
+    target = -beta * expected / _slope(found.define_slope, env_today, shape)
+    start = np.where(np.isfinite(c_star), c_star, np.broadcast_to(env_today[found.define], shape))
+    c_star = _inverse_marginal(found, env_today, start, target)
+    return c_star, _state_for(data, found, c_slope, points, shocks, c_star)
+
+
 def _kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray],
            previous: tuple[np.ndarray, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray]:
     """``(states, generations)`` where the method's policy bends, inside the grid, for the next round's choices.
@@ -167,13 +198,13 @@ def _kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray],
     if KINK_GENERATIONS < 1:
         return np.zeros(0), np.zeros(0, dtype=np.int64)
     values, generations = [states[0]], [np.ones(states.shape[1], dtype=np.int64)]
-    if previous is not None:
-        for value, generation in zip(*previous):
-            if generation < KINK_GENERATIONS:
-                row = np.flatnonzero(choices == value)
-                if row.size:
-                    values.append(states[row[0]])
-                    generations.append(np.full(states.shape[1], generation + 1, dtype=np.int64))
+    if previous is not None and previous[0].size:
+        # ``choices`` is sorted (a union of the grid and the bends): find each earlier bend's row at once.
+        earlier, generation = previous
+        rows = np.minimum(np.searchsorted(choices, earlier), choices.size - 1)
+        keep = (choices[rows] == earlier) & (generation < KINK_GENERATIONS)
+        values.append(states[rows[keep]].reshape(-1))
+        generations.append(np.repeat(generation[keep] + 1, states.shape[1]))
     value, generation = np.concatenate(values), np.concatenate(generations)
     inside = np.isfinite(value) & (value > grid[0]) & (value < grid[-1]) & ~np.isin(value, grid)
     value, generation = value[inside], generation[inside]
@@ -188,13 +219,11 @@ def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarr
     the grid's lower end below its first point (the constraint binds), its upper end past the last."""
     states, choices = pairs
     out = np.empty((k.size, states.shape[1]))
+    if np.all(k[1:] >= k[:-1]) and read_pairs(states, choices, grid[0], grid[-1], k, out):
+        return out
     for z in range(states.shape[1]):
-        column = states[:, z]
-        if np.all(np.diff(column) > 0):
-            out[:, z] = np.interp(k, column, choices, left=grid[0], right=grid[-1])
-        else:
-            order = np.argsort(column, kind="stable")
-            out[:, z] = np.interp(k, column[order], choices[order], left=grid[0], right=grid[-1])
+        order = np.argsort(states[:, z], kind="stable")
+        out[:, z] = np.interp(k, states[order, z], choices[order], left=grid[0], right=grid[-1])
     return np.clip(out, grid[0], grid[-1])
 
 

@@ -130,3 +130,33 @@ def cubic_policy_steps(
         if span <= span_stop:
             break
     return done, span
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def read_pairs(states: np.ndarray, choices: np.ndarray, low: float, high: float, k: np.ndarray,
+               out: np.ndarray) -> bool:
+    """``out[i, z]``: ``choices`` read linearly against ``states[:, z]`` at ``k[i]`` (sorted ``k``), ``low``
+    below the first state, ``high`` past the last, clipped to ``[low, high]``; False (nothing written
+    for that column on) when a column of ``states`` is not increasing."""
+    m = states.shape[0]
+    for z in range(states.shape[1]):
+        for j in range(1, m):
+            if not states[j, z] > states[j - 1, z]:
+                return False
+        j = 0
+        for i in range(k.shape[0]):
+            x = k[i]
+            if x < states[0, z]:
+                value = low
+            elif x > states[m - 1, z]:
+                value = high
+            else:
+                while j < m - 2 and states[j + 1, z] < x:
+                    j += 1
+                while j > 0 and states[j, z] > x:
+                    j -= 1
+                left = states[j, z]
+                right = states[j + 1, z]
+                value = choices[j] + (choices[j + 1] - choices[j]) * ((x - left) / (right - left))
+            out[i, z] = min(max(value, low), high)
+    return True
