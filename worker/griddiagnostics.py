@@ -75,6 +75,13 @@ class GridDiagnostics:
             )
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
+        missed = self._counts.get("climb_missed")
+        if missed is not None:
+            notes.append(
+                "the verification refilled the tables over every value of the static choice (the iterations climbed "
+                f"along it under the concave hint): the climb had missed {missed:,} entries"
+                + ("" if missed == 0 else ", and the solve went on from the exact tables")
+            )
         model_choices = self._choice_indices(policy)
         edge_hits = {}
         for j, (name, grid, index) in enumerate(zip(data.choices, data.choice_grids, model_choices)):

@@ -285,10 +285,12 @@ def static_tables(
     climbing = bool(climb and len(static_axes) == 1)
     fill(climbing)
     note = None
+    climbed = climbing
     if climbing:
         checked = n * len(range(0, n_dyn, CHECK_EVERY))
         broken = int(counts_per[:, 4].sum())
         if broken:
+            climbed = False
             fill(False)
             name = static[0]
             note = (
@@ -321,5 +323,6 @@ def static_tables(
         "any_allowed": any_allowed,
         "static_pick": pick,
         "static_note": note,
+        "climbed": climbed,
     }
     return (R, next_base, lower, weight), counts
