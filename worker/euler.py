@@ -25,7 +25,9 @@ At test points strictly between the grid points of ``k`` (the midpoints of
 ``q`` equal parts of every grid interval, ``q`` the least whole number that
 gives at least ten times as many test points as grid points), at every shock
 point.  The policy at a test point, and tomorrow's policy at ``k'``, is the
-solved policy interpolated linearly along ``k``.  For a choice restricted to
+solved policy interpolated linearly along ``k`` — for a continuous choice,
+the solved problem's own search there (``rule`` of :func:`euler_report`), and
+for the endogenous grid method its own rule.  For a choice restricted to
 the grid, the solved policy is a step function on the grid; interpolating it
 is what the trade does to measure how coarse the grid is, and the error so
 measured falls like the grid step.
