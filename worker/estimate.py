@@ -355,6 +355,11 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     """
     if doc.model.kind == "tabular":
         return _tabular_estimate(doc)
+    if doc.model.continuous_choice() is not None:
+        from worker.continuous_estimate import continuous_estimate
+
+        return continuous_estimate(doc, common_bytes=_grid_common_bytes, steps_of=_steps, point_ns=POINT_NS,
+                                   matvec_ns=MATVEC_NS)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
     steps, per_iteration, basis = _steps(doc, plan.choices)

@@ -75,6 +75,8 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
     """``(setup, ∂c/∂k, None)`` when the method applies; else ``(None, None, reason)`` naming the failing condition."""
     if not any(j is not None for j in data.setter) or data.span is not None:
         return None, None, "it needs a continuous choice that is next_of the state (tomorrow's value of it)"
+    if len(data.states) != 1:
+        return None, None, f"it needs one state, and this model has {len(data.states)}"
     found = setup(data)
     if not isinstance(found, EulerSetup):
         reason = found or "it needs one state and one choice that sets tomorrow's value of it"

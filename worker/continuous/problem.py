@@ -223,7 +223,8 @@ class ContinuousProblem:
         return endogenous_grid(self, found, c_slope, solve_from, **options)
 
     def policy_rule(self, v: np.ndarray, policy: np.ndarray) -> Any:
-        """``rule(k) -> x``: the choice at states ``k`` (m,) of the one state, at every shock point, (m, shocks).
+        """``rule(k) -> x``: the choice at states ``k`` (m,) of the one state, at every shock point, (m, shocks);
+        None with several states (the Euler errors are measured for one).
 
         The fitted problem's own search at those points, with the final ``v``
         (seeded with the grid policy interpolated linearly): what the solved
@@ -232,6 +233,8 @@ class ContinuousProblem:
         if self.egm_rule is not None:
             return self.egm_rule
         data = self._data
+        if len(data.states) != 1:
+            return None
         grid = data.state_grids[0]
         n_z = data.n_shocks
         values = np.asarray(policy, dtype=np.float64).reshape(grid.size, n_z)

@@ -34,7 +34,8 @@ row blocks of whole lines give the same bits on any number of threads.
 from __future__ import annotations
 
 __all__ = [
-    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_TEXT", "SEARCH_TEXT", "XTOL_SHARE",
+    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT", "SEARCH_TEXT",
+    "XTOL_SHARE",
 ]
 
 COARSE_POINTS = 9
@@ -253,26 +254,25 @@ out_r[i] = rx
 
 KINK_TEXT = """
 if fx > -np.inf:
-    fy, ry, xp = f(x)
-    lo_k, w_k, c_k = locate_one(sgrid, kink_off, kink_size, xp)
-    slope_k = 1.0
-    if not direct:
-        h_k = 1e-7 * (abs(x) + width)
-        x2 = x + h_k if x + h_k <= hi_b else x - h_k
-        f2, r2, xp2 = f(x2)
-        slope_k = (xp2 - xp) / (x2 - x)
+    fy, ry, xs = f(x)
+    h_k = 1e-7 * (abs(x) + width)
+    x2 = x + h_k if x + h_k <= hi_b else x - h_k
+    f2, r2, xs2 = f(x2)
+    x_best = x
+#AXES#
+"""
+KINK_AXIS = """    lo_k, w_k, c_k = locate_one(sgrid, off_{t}, size_{t}, xs[{t}])
+    slope_k = {slope}
     for side in range(2):
-        g_k = sgrid[kink_off + lo_k + side]
-        u = x + (g_k - xp) / slope_k
+        u = x_best + (sgrid[off_{t} + lo_k + side] - xs[{t}]) / slope_k
         if u >= lo_b and u <= hi_b:
             fu, ru, xu = f(u)
             if fu > fx:
                 x = u
                 fx = fu
-                rx = ru
-"""
-"""With linear interpolation the objective bends where tomorrow's state crosses a grid point of the
-kink axis (the chosen state, or the one state), and a maximum often sits on such a bend, where
-Brent's method stops a little past it: the two grid points around tomorrow's state at the best
-choice are tried (through a secant step of the law of motion when the choice is not tomorrow's
-state itself), and kept when better."""
+                rx = ru"""
+"""With linear interpolation the objective bends where tomorrow's state crosses a grid point of any
+state's grid, and a maximum often sits on such a bend, where Brent's method stops a little past it:
+along each state, the two grid points around tomorrow's value at the best choice are tried
+(through a secant step of its law of motion, unless the choice is tomorrow's state itself), and
+kept when better.  ``KINK_AXIS`` is written once per state, ``{t}`` its position."""

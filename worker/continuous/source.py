@@ -34,7 +34,7 @@ from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
-from worker.continuous.search import KINK_TEXT, SEARCH_TEXT
+from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
 from worker.expressions import Expression
 
 __all__ = ["BOUND_HIGH", "BOUND_LOW", "module_text"]
@@ -185,17 +185,22 @@ class _Writer:
                         f"grid_off = off_{t}", f"grid_size = size_{t}")
             else:
                 out.add("low = d_0", "high = d_1", "grid_off = -1", "grid_size = 0")
-            kink = None if self.cubic else (self.target if self.target is not None else (0 if self.d == 1 else None))
-            if kink is not None:
-                out.add(f"kink_off = off_{kink}", f"kink_size = size_{kink}", f"direct = {kink == self.target}")
             with out.block("def f(c_0):"):
                 for t in range(self.d):
                     out.add(f"x_{t} = np.nan")
                 self._model_at_choice(out, continuation=True)
-                out.add(f"return val, r, x_{0 if kink is None else kink}")
-            text = SEARCH_TEXT.replace("#KINK#", KINK_TEXT if kink is not None else "")
+                out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
+            text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic else self._kinks())
             out.extend(text.strip("\n").split("\n"))
         return out.text()
+
+    def _kinks(self) -> str:
+        """The kink polish (see :data:`worker.continuous.search.KINK_TEXT`) along every state axis."""
+        axes = []
+        for t in range(self.d):
+            slope = "1.0" if t == self.target else f"(xs2[{t}] - xs[{t}]) / (x2 - x)"
+            axes.append(KINK_AXIS.format(t=t, slope=slope))
+        return KINK_TEXT.replace("#AXES#", "\n".join(axes))
 
     def policy_at(self) -> str:
         out = Lines()

@@ -33,6 +33,7 @@ from worker.document._fields import (
     Spacing,
     Vector,
 )
+from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
 from worker.errors import InvalidDocument, join_path
@@ -188,7 +189,7 @@ class ChoiceSpec(Part):
     @model_validator(mode="after")
     def _check_choice(self) -> ChoiceSpec:
         if self.continuous:
-            raise_faults(_continuous_faults(self))
+            raise_faults(continuous_faults(self))
             return self
         written = [key for key in ("min", "max") if isinstance(getattr(self, key), str)]
         if written:
@@ -212,37 +213,6 @@ class ChoiceSpec(Part):
             )
         raise_faults(faults)
         return self
-
-
-def _continuous_faults(choice: ChoiceSpec) -> list[Fault]:
-    """Faults of a continuous choice: ``next_of`` alone, or ``min`` and ``max`` (and the scan's ``points``)."""
-    if choice.next_of is not None:
-        keys = ("values", "min", "max", "points", "spacing", "exponent")
-        extra = [key for key in keys if getattr(choice, key) is not None]
-        return [
-            fault(key, f"a continuous next_of choice takes any value between the ends of `{choice.next_of}`'s grid; "
-                  f"drop `{key}`")
-            for key in extra
-        ]
-    faults = [
-        fault(key, f"a continuous choice chooses any value of an interval, so it has no `{key}`")
-        for key in ("values", "spacing", "exponent")
-        if getattr(choice, key) is not None
-    ]
-    faults += [
-        fault(key, f"missing `{key}`: a continuous choice needs next_of, or min and max (numbers or expressions)")
-        for key in ("min", "max")
-        if getattr(choice, key) is None
-    ]
-    faults += [
-        fault(key, f"the bounds of a continuous choice must be finite, got {number(getattr(choice, key))}")
-        for key in ("min", "max")
-        if isinstance(getattr(choice, key), float) and not math.isfinite(getattr(choice, key))
-    ]
-    low, high = choice.min, choice.max
-    if not faults and isinstance(low, float) and isinstance(high, float) and not high > low:
-        faults.append(fault("max", f"max ({number(high)}) must be greater than min ({number(low)})"))
-    return faults
 
 
 class Hints(Part):
@@ -393,46 +363,7 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
 
 def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
-    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + _continuous_model_faults(model)
-
-
-def _continuous_model_faults(model: Any) -> list[Fault]:
-    """Faults of a continuous choice within its model, and of ``interpolation``."""
-    continuous = [name for name, choice in model.choices.items() if choice.continuous]
-    faults = []
-    if continuous and len(model.choices) > 1:
-        others = ", ".join(f"`{name}`" for name in model.choices if name != continuous[0])
-        faults.append(fault(
-            join_path("choices", continuous[0], "continuous"),
-            f"a continuous choice must be the model's only choice, and this model also has {others}; make them "
-            "discrete, or give them a continuous model of their own",
-        ))
-    known = [*model.params, *model.states, *model.shocks]
-    for name in continuous:
-        for key in ("min", "max"):
-            text = getattr(model.choices[name], key)
-            if isinstance(text, str):
-                where = join_path("choices", name, key)
-                later = set(model.choices) | set(model.define)
-                try:
-                    expression = expressions.parse(text, path=where)
-                    used = sorted(expression.names & later)
-                    if used:
-                        names = ", ".join(f"`{n}`" for n in used)
-                        faults.append(fault(where, f"uses {names}: the bounds of a continuous choice may use only "
-                                            "params, states and shocks"))
-                        continue
-                    expressions.check_names(expression, known, path=where)
-                except InvalidDocument as exc:
-                    faults += exc.errors
-    if model.interpolation == "monotone_cubic":
-        if not continuous:
-            faults.append(fault("interpolation", 'monotone_cubic interpolation applies to a model with a continuous '
-                                'choice; a discrete choice reads tomorrow\'s value at grid points or linearly'))
-        elif len(model.states) != 1:
-            faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
-                                f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
-    return faults
+    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
 
 
 def _name_faults(model: Any) -> list[Fault]:

@@ -1,0 +1,80 @@
+"""Size, memory and time of a grid model whose one choice is continuous, without building it (no numba).
+
+A continuous choice keeps no reward tables: its memory is a fixed number of
+arrays per point (the solver's vectors, the search's outputs, the state
+values of every point, tomorrow's interpolation corners and the policy's
+sparse matrix), whatever the interval.  Its time is the search's: about
+``SEARCH_POINTS`` evaluations per point in a hinted step, the scan's points
+in an unhinted one.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from typing import Any
+
+from worker.kernel_limits import compile_cost
+
+__all__ = ["SEARCH_POINTS", "continuous_estimate"]
+
+SEARCH_POINTS = 30
+"""Evaluations of the model per point in a hinted search of a continuous choice (count; a bracket and
+Brent's method, measured at 15–40 on the accuracy benchmark)."""
+_SEARCH_BYTES_PER_POINT = 8 * 6
+"""The search's outputs and scratch per point: value, choice, reward, order, previous point, guess (bytes)."""
+_GRID_SCAN_MAX = 512
+"""As :data:`worker.continuous.search.GRID_SCAN_MAX` (not imported: that package loads numba)."""
+
+
+def continuous_estimate(doc: Any, *, common_bytes: Callable[[int, int, int, str], int],
+                        steps_of: Callable[[Any, int], tuple[int, int, str]], point_ns: float,
+                        matvec_ns: float) -> dict[str, Any]:
+    """The :func:`worker.estimate.estimate` dictionary for a model with a continuous choice.
+
+    :func:`worker.estimate.estimate` passes its own measures in (the memory every grid model needs, the
+    iterations a solve takes, nanoseconds per model evaluation and per mat-vec entry), so they have one
+    source and this module does not import it back.
+    """
+    model = doc.model
+    name = model.continuous_choice()
+    choice = model.choices[name]
+    grid_states = math.prod(axis.size for axis in model.states.values())
+    shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
+    n = grid_states * shocks
+    states = len(model.states)
+    nodes = 2**states
+    scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
+    method = doc.solver.method
+    memory = common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+    hinted = bool(model.hints.concave)
+    per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
+    steps, per_iteration, basis = steps_of(doc, scan)
+    seconds = steps * (n * per_point * point_ns + per_iteration * n * nodes * shocks * matvec_ns) * 1e-9
+    if hinted:
+        seconds += n * (scan + SEARCH_POINTS) * point_ns * 1e-9  # the unhinted verification
+    compile_bytes, compile_s = compile_cost(model)
+    notes = [
+        f"continuous choice `{name}`: no reward tables; tomorrow's value read by {model.interpolation} "
+        "interpolation",
+        ("hinted searches evaluate about " f"{SEARCH_POINTS} points per state, and one unhinted step verifies them"
+         if hinted else f"without the concave hint each search scans {scan:,} points, then refines"),
+        "memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)",
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
+        f"and {compile_bytes / 2**20:,.0f} MiB, then cached)",
+    ]
+    return {
+        "kind": "grid",
+        "points": n,
+        "grid_states": grid_states,
+        "shocks": shocks,
+        "choice_points": scan,
+        "pairs": n * scan,
+        "bytes": memory,
+        "reward_storage": "on_the_fly",
+        "compile_bytes": compile_bytes,
+        "compile_seconds": compile_s,
+        "seconds": seconds,
+        "basis": f"{basis}; a search of about {per_point} points per state ({point_ns:g} ns each)",
+        "notes": notes,
+    }

@@ -1,0 +1,86 @@
+"""The faults of a continuous choice, and of a model that has one (``interpolation`` included).
+
+Kept apart from :mod:`worker.document.grid` so that module stays one reading; the rules are in the
+README, "Continuous choices".
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from worker import expressions
+from worker.document._faults import Fault, fault, number
+from worker.errors import InvalidDocument, join_path
+
+__all__ = ["continuous_faults", "continuous_model_faults"]
+
+
+def continuous_faults(choice: Any) -> list[Fault]:
+    """Faults of a continuous choice: ``next_of`` alone, or ``min`` and ``max`` (and the scan's ``points``)."""
+    if choice.next_of is not None:
+        keys = ("values", "min", "max", "points", "spacing", "exponent")
+        extra = [key for key in keys if getattr(choice, key) is not None]
+        return [
+            fault(key, f"a continuous next_of choice takes any value between the ends of `{choice.next_of}`'s grid; "
+                  f"drop `{key}`")
+            for key in extra
+        ]
+    faults = [
+        fault(key, f"a continuous choice chooses any value of an interval, so it has no `{key}`")
+        for key in ("values", "spacing", "exponent")
+        if getattr(choice, key) is not None
+    ]
+    faults += [
+        fault(key, f"missing `{key}`: a continuous choice needs next_of, or min and max (numbers or expressions)")
+        for key in ("min", "max")
+        if getattr(choice, key) is None
+    ]
+    faults += [
+        fault(key, f"the bounds of a continuous choice must be finite, got {number(getattr(choice, key))}")
+        for key in ("min", "max")
+        if isinstance(getattr(choice, key), float) and not math.isfinite(getattr(choice, key))
+    ]
+    low, high = choice.min, choice.max
+    if not faults and isinstance(low, float) and isinstance(high, float) and not high > low:
+        faults.append(fault("max", f"max ({number(high)}) must be greater than min ({number(low)})"))
+    return faults
+
+
+def continuous_model_faults(model: Any) -> list[Fault]:
+    """Faults of a continuous choice within its model, and of ``interpolation``."""
+    continuous = [name for name, choice in model.choices.items() if choice.continuous]
+    faults = []
+    if continuous and len(model.choices) > 1:
+        others = ", ".join(f"`{name}`" for name in model.choices if name != continuous[0])
+        faults.append(fault(
+            join_path("choices", continuous[0], "continuous"),
+            f"a continuous choice must be the model's only choice, and this model also has {others}; make them "
+            "discrete, or give them a continuous model of their own",
+        ))
+    known = [*model.params, *model.states, *model.shocks]
+    for name in continuous:
+        for key in ("min", "max"):
+            text = getattr(model.choices[name], key)
+            if isinstance(text, str):
+                where = join_path("choices", name, key)
+                later = set(model.choices) | set(model.define)
+                try:
+                    expression = expressions.parse(text, path=where)
+                    used = sorted(expression.names & later)
+                    if used:
+                        names = ", ".join(f"`{n}`" for n in used)
+                        faults.append(fault(where, f"uses {names}: the bounds of a continuous choice may use only "
+                                            "params, states and shocks"))
+                        continue
+                    expressions.check_names(expression, known, path=where)
+                except InvalidDocument as exc:
+                    faults += exc.errors
+    if model.interpolation == "monotone_cubic":
+        if not continuous:
+            faults.append(fault("interpolation", 'monotone_cubic interpolation applies to a model with a continuous '
+                                'choice; a discrete choice reads tomorrow\'s value at grid points or linearly'))
+        elif len(model.states) != 1:
+            faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
+                                f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
+    return faults
