@@ -449,6 +449,11 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
     # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
     policy_entries = min(stored, n_states * n_states)
+    if getattr(model, "taste_shocks", None) is not None:
+        # The logit probabilities, their exponentials and the entropy terms are (S, A) arrays, and the mixed
+        # matrix of a policy may hold every stored entry before its duplicates are summed.
+        common += 3 * 8 * pairs
+        policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
     steps, per_iteration, basis = _steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * TABLE_READ_NS
