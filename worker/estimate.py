@@ -44,6 +44,7 @@ from typing import Any
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
+from worker.taste import taste_storage_words, taste_table_bytes
 
 __all__ = [
     "DIRECT_SOLVE_MAX_POINTS",
@@ -194,7 +195,9 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     pairs = n * choices
     interpolated = sum(1 for name in model.states if name in model.next)
     nodes = 2**interpolated
-    static = static_choices(model)
+    taste = getattr(model, "taste_shocks", None) is not None
+    # With taste shocks every combination of the choices carries its own shock: none is maximised out.
+    static = () if taste else static_choices(model)
     # With static choices the tables run over the other choices only, plus the static choice that wins each entry.
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
@@ -207,6 +210,17 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     on_the_fly_bytes = common + 2 * 8 * n + chunk
 
     budget = precompute_budget(limits)
+    if taste:
+        extra = taste_table_bytes(pairs, interpolated, nodes) - table_bytes
+        table_bytes += extra
+        precompute_bytes += extra + 12 * pairs * nodes * shocks  # the mixed matrix before its duplicates are summed
+        reason, note = taste_storage_words(pairs, table_bytes, budget, model.hints.monotone or model.hints.concave)
+        return GridPlan(
+            grid_states=grid_states, shocks=shocks, n=n, choices=choices, pairs=pairs, interpolated=interpolated,
+            nodes=nodes, monotone=False, concave=False, hint_note=note, reward_storage="tables",
+            precompute_bytes=precompute_bytes, on_the_fly_bytes=on_the_fly_bytes, budget=budget, reason=reason,
+            table_entries=pairs,
+        )
     fits = table_bytes <= budget
     use = hint_use(model, static, None if fits else (
         f"the table of the best reward per (point, remaining choice) would take {table_bytes / _MIB:,.0f} MiB, over "

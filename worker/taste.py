@@ -52,7 +52,8 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["EULER_GAMMA", "check_scale", "diagnostics", "entropy_reward", "smoothed_max"]
+__all__ = ["EULER_GAMMA", "check_scale", "diagnostics", "entropy_reward", "smoothed_max", "taste_storage_words",
+           "taste_table_bytes"]
 
 EULER_GAMMA = 0.5772156649015329
 """The Euler–Mascheroni constant γ, the mean of a location-zero standard Gumbel variable (unitless)."""
@@ -131,3 +132,33 @@ def check_scale(scale: float) -> float:
     if not (value > 0.0 and math.isfinite(value)):
         raise ValueError(f"the taste-shock scale must be a positive number, got {scale!r}")
     return value
+
+
+def taste_storage_words(pairs: int, table_bytes: int, budget: int, hints_requested: bool) -> tuple[str, str | None]:
+    """``(reason, hint note)`` of a grid model's reward storage with taste shocks (always ``tables``).
+
+    The smoothed maximum needs every allowed choice's value at every point, so neither a hinted search nor
+    a block search that skips choices applies: every step scans the full tables.  Tables over the budget
+    are refused when the model is compiled (:mod:`worker.tastegrid`).
+    """
+    mib = 2**20
+    place = "within" if table_bytes <= budget else "over"
+    reason = (
+        f"taste shocks give every allowed choice a probability, so every step scans the tables of all {pairs:,} "
+        f"(state, choice) pairs ({table_bytes / mib:,.0f} MiB with the choice probabilities, {place} the "
+        f"precompute budget of {budget / mib:,.0f} MiB)"
+    )
+    note = (
+        "the monotone and concave hints do not apply with taste shocks (every choice has a probability, so every "
+        "choice is evaluated); they were not used"
+        if hints_requested
+        else None
+    )
+    return reason, note
+
+
+def taste_table_bytes(pairs: int, interpolated: int, nodes: int) -> int:
+    """Bytes of a grid model's tables with taste shocks: the rewards and nodes of every pair (8 + 12 per
+    interpolated state), the choice values, probabilities and a temporary (3 × 8), and every pair's
+    interpolation nodes with their weights, twice while the mixed transition is built (2 × 16 per node)."""
+    return pairs * (8 + 12 * interpolated) + 3 * 8 * pairs + 2 * 16 * pairs * nodes

@@ -22,6 +22,7 @@ import scipy.optimize
 from tests._documents import array_tabular, idle_busy_worn
 from worker import solve
 from worker.errors import InvalidDocument
+from worker.solve import compile_document
 from worker.solvers import GENERAL_METHODS, METHODS
 from worker.tabular import TabularProblem
 from worker.taste import EULER_GAMMA, entropy_reward, smoothed_max
@@ -276,22 +277,47 @@ class MemoryCheckpoint:
             raise Crash
 
 
-@pytest.mark.parametrize("name", sorted(GENERAL_METHODS))
-def test_a_resumed_solve_ends_exactly_where_an_uninterrupted_one_does(name):
+def _tabular_factory():
     reward, transition = random_model(29, 30, 3)
-    make = lambda: TabularProblem(reward, transition, 0.97, taste_scale=0.3)  # noqa: E731
+    return lambda: TabularProblem(reward, transition, 0.97, taste_scale=0.3)
+
+
+def _grid_factory():
+    document = {
+        "version": 1,
+        "discount": 0.97,
+        "model": {
+            "kind": "grid",
+            "states": {"stock": {"min": 0, "max": 9, "points": 10}},
+            "shocks": {"demand": {"markov": {"values": [0, 1, 2], "matrix": [[0.6, 0.3, 0.1], [0.2, 0.6, 0.2],
+                                                                            [0.1, 0.3, 0.6]]}}},
+            "choices": {"order": {"values": [0, 1, 2, 3]}},
+            "next": {"stock": "min(max(stock + order - demand, 0), 9)"},
+            "reward": "2 * min(stock, demand) - order - 0.1 * stock - 0.8 * (order > 0)",
+            "taste_shocks": {"scale": 0.3},
+        },
+    }
+    return lambda: compile_document(document)[1]
+
+
+@pytest.mark.parametrize("factory", [_tabular_factory, _grid_factory], ids=["tabular", "grid"])
+@pytest.mark.parametrize("name", sorted(GENERAL_METHODS))
+def test_a_resumed_solve_ends_exactly_where_an_uninterrupted_one_does(name, factory):
+    # Each run gets a fresh compiled problem, as a resumed job does in a new process.
+    make = factory()
+    n = make().n
     method = METHODS[name]
     options = dict(tolerance=1e-10, evaluation_steps=6, fingerprint="doc", checkpoint_s=0.0)
-    whole = method(make(), np.zeros(30), **{k: v for k, v in options.items() if k != "checkpoint_s"})
+    whole = method(make(), np.zeros(n), **{k: v for k, v in options.items() if k != "checkpoint_s"})
     counting = MemoryCheckpoint()
-    method(make(), np.zeros(30), checkpoint=counting, **options)
+    method(make(), np.zeros(n), checkpoint=counting, **options)
     mid_phase = False
     for crash_after in range(1, len(counting.saves) + 1, max(1, len(counting.saves) // 6)):
         store = MemoryCheckpoint(crash_after=crash_after)
         with pytest.raises(Crash):
-            method(make(), np.zeros(30), checkpoint=store, **options)
+            method(make(), np.zeros(n), checkpoint=store, **options)
         mid_phase |= store.state["evaluation_steps_done"] is not None
-        resumed = method(make(), np.zeros(30), checkpoint=store, **options)
+        resumed = method(make(), np.zeros(n), checkpoint=store, **options)
         np.testing.assert_array_equal(resumed.value, whole.value)
         np.testing.assert_array_equal(resumed.policy, whole.policy)
         assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)

@@ -35,6 +35,7 @@ from worker.document._fields import (
 )
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
+from worker.document.taste_shocks import TasteShocks
 from worker.errors import InvalidDocument, join_path
 
 RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
@@ -311,6 +312,13 @@ class GridModel(Part):
             "computed the same way but is not a proof)."
         ),
     )
+    taste_shocks: TasteShocks | None = Field(
+        default=None,
+        description=(
+            "Optional taste shocks on every combination of the choices (grid-restricted choices only): the "
+            "result then carries choice_probabilities, shape the value's axes then the choices."
+        ),
+    )
 
     def continuous_choice(self) -> str | None:
         """The name of the model's continuous choice, or None."""
@@ -432,6 +440,9 @@ def _continuous_model_faults(model: Any) -> list[Fault]:
         elif len(model.states) != 1:
             faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
                                 f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
+    if continuous and getattr(model, "taste_shocks", None) is not None:
+        faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "
+                            f"`{continuous[0]}` is continuous; give it a grid (points) or a menu (values) instead"))
     return faults
 
 
