@@ -65,8 +65,10 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
     from worker.estimate import estimate
     from worker.kernel_limits import check_structure
+    from worker.tastecheck import check_taste_tables
 
     check_structure(doc)
+    check_taste_tables(doc, limits=limits)
     cap = limits["max_bytes"]
     size = estimate(doc, limits=limits)
     if size["bytes"] > cap:

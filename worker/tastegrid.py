@@ -25,16 +25,14 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker import _codegen
-from worker.errors import TooLarge
 from worker.estimate import grid_plan
 from worker.feasibility import infeasible, model_data
 from worker.gridtables import precompute_tables
 from worker.reference import ReferenceProblem, _corner, _interpolated_expected
-from worker.taste import check_scale, entropy_reward, smoothed_max, taste_table_bytes
+from worker.taste import check_scale, entropy_reward, smoothed_max
+from worker.tastecheck import check_taste_tables
 
 __all__ = ["TasteGridProblem", "compile_taste_grid"]
-
-_MIB = 2**20
 
 
 def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> TasteGridProblem:
@@ -48,15 +46,8 @@ def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> Tas
         Some point has no allowed choice.
     """
     started = time.perf_counter()
+    check_taste_tables(doc, limits=limits)
     plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
-    table_bytes = taste_table_bytes(plan.pairs, plan.interpolated, plan.nodes)
-    if table_bytes > plan.budget:
-        raise TooLarge.at(
-            "model.taste_shocks",
-            f"with taste shocks every step needs the values of all {plan.pairs:,} (point, choice) pairs: "
-            f"{table_bytes / _MIB:,.0f} MiB of tables and choice probabilities, over the precompute budget of "
-            f"{plan.budget / _MIB:,.0f} MiB; use coarser grids or fewer choices",
-        )
     data = model_data(doc)
     tables, counts = precompute_tables(data)
     stuck = np.flatnonzero(~counts["any_allowed"])

@@ -140,6 +140,9 @@ def test_hints_are_not_used_and_the_diagnostics_say_so():
 def test_tables_over_the_budget_are_refused_at_taste_shocks():
     # The budget is a quarter of the cap: 1,000 bytes cannot hold the tables of 240 pairs.
     document = grid_document(machine(0.5))
+    with pytest.raises(TooLarge) as caught:
+        solve(document, limits={"max_bytes": 4_000})
+    assert caught.value.errors[0]["path"] == "model.taste_shocks"
     from worker.document import parse_document
     from worker.gridmodel import compile_grid
 
