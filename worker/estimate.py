@@ -44,7 +44,7 @@ from typing import Any
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
-from worker.taste import taste_storage_words, taste_table_bytes
+from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
 
 __all__ = [
     "DIRECT_SOLVE_MAX_POINTS",
@@ -382,7 +382,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
             setup = evaluated * POINT_NS
             filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = plan.table_entries * TABLE_READ_NS
+        step = plan.table_entries * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
         how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices

@@ -52,11 +52,16 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["EULER_GAMMA", "check_scale", "diagnostics", "entropy_reward", "smoothed_max", "taste_storage_words",
-           "taste_table_bytes"]
+__all__ = [
+    "EULER_GAMMA", "SMOOTHED_PAIR_NS", "check_scale", "diagnostics", "entropy_reward", "smoothed_max",
+    "taste_storage_words", "taste_table_bytes",
+]
 
 EULER_GAMMA = 0.5772156649015329
 """The Euler–Mascheroni constant γ, the mean of a location-zero standard Gumbel variable (unitless)."""
+SMOOTHED_PAIR_NS = 15.0
+"""Cost of one (point, choice) pair in a smoothed Bellman step by numpy (nanoseconds; measured 12 to 20 ns on
+grid models of 0.6 to 1 million pairs on a 2-core x86 machine): the choice value, its exponential, the sums."""
 
 
 def smoothed_max(q: np.ndarray, scale: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:

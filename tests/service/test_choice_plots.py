@@ -125,3 +125,22 @@ def test_the_route_draws_them_and_the_summary_says_so(plot_app: httpx.Client, st
     assert "bar-1-0" in svg_ids(svg.content)
     plain = solve(idle_busy_worn())
     assert "choice_probabilities" not in plain
+
+
+def test_the_long_table_has_a_probability_column_per_alternative() -> None:
+    from service.tables import table_columns
+
+    result = solve(tabular_taste())
+    names, columns = table_columns(result)
+    assert names[-2:] == ["P(action=run)", "P(action=service)"]
+    assert [list(c) for c in columns[-2:]] == [[row[0] for row in result["choice_probabilities"]],
+                                               [row[1] for row in result["choice_probabilities"]]]
+    grid = solve(taste_machine(
+        choices={"replace": {"values": [0, 1]}, "oil": {"values": [0.0, 0.5, 1.0]}},
+        reward="-(1 - replace) * 0.3 * mileage - replace * 4 - oil",
+    ))
+    names, columns = table_columns(grid)
+    assert names[-6:] == [f"P(replace={r}, oil={o})" for r in (0.0, 1.0) for o in (0.0, 0.5, 1.0)]
+    total = sum(columns[-6:])
+    assert abs(total - 1.0).max() < 1e-12
+    assert "P(action=run)" not in table_columns(solve(idle_busy_worn()))[0]
