@@ -470,7 +470,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
     steps, per_iteration, basis = _steps(doc, n_actions)
-    step = stored * MATVEC_NS + pairs * TABLE_READ_NS
+    step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
     seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
     if doc.solver.method == "policy_iteration":
         matrix += linear_solve_bytes(n_states, policy_entries)
