@@ -13,7 +13,10 @@ Tables over the precompute budget are refused (``TooLarge`` at
 Evaluation (Howard's method, policy iteration), the stationary distribution
 and simulation use the logit probabilities of the last Bellman step, as for
 tabular models: ``P_π`` mixes every pair's interpolation nodes by its
-probability, and ``r_π`` carries the entropy term.
+probability, and ``r_π`` carries the entropy term.  Written as the nodes of
+one point (every pair's nodes, weighted by the pair's probability), the
+mixture runs through the same compiled fixed-policy kernels
+(:mod:`worker.kernels`) as a grid model's policy, fused and threaded alike.
 """
 
 from __future__ import annotations
@@ -24,7 +27,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from worker import _codegen
+from worker import _codegen, kernels, threadpool
 from worker.estimate import grid_plan
 from worker.feasibility import infeasible, model_data
 from worker.gridtables import precompute_tables
@@ -58,7 +61,9 @@ def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> Tas
     problem = TasteGridProblem(
         doc, data, plan, layout, None, ctx, "tables", counts, full=data, taste_scale=doc.model.taste_shocks.scale
     )
-    problem.timings = {"prepare_s": time.perf_counter() - started, "compile_s": 0.0}
+    prepared = time.perf_counter()
+    problem._warm_up()
+    problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
     return problem
 
 
@@ -77,8 +82,7 @@ class TasteGridProblem(ReferenceProblem):
         self._probabilities: np.ndarray | None = None
         self._most_probable: np.ndarray | None = None
         self._pair_nodes: tuple[np.ndarray, np.ndarray] | None = None
-        self._mixed: tuple[np.ndarray, sp.csr_matrix, np.ndarray] | None = None
-        self._grouped: sp.csr_matrix | None = None
+        self._mixed: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
 
     def _choice_expected(self, v: np.ndarray) -> np.ndarray:
         """(n, C): ``EV(x, c) = Σ_k w_k EVt[z, node_k(x, c)]``, the expected value of tomorrow after each choice."""
@@ -158,107 +162,71 @@ class TasteGridProblem(ReferenceProblem):
         self._pair_nodes = (index, node_weight)
         return self._pair_nodes
 
-    def _grid_rows(self, weights: np.ndarray, per_row: int) -> sp.csr_matrix:
-        """CSR (rows, n_grid) straight from every pair's nodes: ``per_row`` consecutive (pair, node) entries
-        make one row, weighted by ``weights`` (flat, one per entry).  Built without sorting: repeated columns
-        stay separate entries, which every product adds up."""
-        index, _ = self._nodes_of_pairs()
-        entries = index.size
-        indptr = np.arange(0, entries + 1, per_row, dtype=np.int64)
-        return sp.csr_matrix((weights, index.reshape(-1), indptr), shape=(entries // per_row, self._data.n_grid))
-
-    def _mixed_grid(self, probabilities: np.ndarray) -> sp.csr_matrix:
-        """CSR (n, n_grid): ``G[x, x'] = Σ_c π(c|x) Σ_k w_k(x, c) [node_k(x, c) = x']`` (tomorrow's grid state)."""
-        _, weight = self._nodes_of_pairs()
-        n, n_choices, nodes = weight.shape
-        return self._grid_rows((probabilities[:, :, None] * weight).reshape(-1), n_choices * nodes)
-
-    def _with_shocks(self, grid_rows: sp.csr_matrix, points: np.ndarray) -> sp.csr_matrix:
-        """CSR (rows, n): each entry ``(row, x')`` of ``grid_rows`` becomes ``(row, x'·S + z')`` with weight times
-        ``P[z, z']``, ``z`` the shock of the row's point ``points[row]``; built without sorting."""
-        transition = self._data.transition
-        n_shocks = transition.shape[0]
-        counts = np.diff(grid_rows.indptr)
-        shock_of_entry = np.repeat(points % n_shocks, counts)
-        data = (grid_rows.data[:, None] * transition[shock_of_entry]).reshape(-1)
-        indices = (grid_rows.indices.astype(np.int64)[:, None] * n_shocks + np.arange(n_shocks)).reshape(-1)
-        indptr = grid_rows.indptr.astype(np.int64) * n_shocks
-        return sp.csr_matrix((data, indices, indptr), shape=(grid_rows.shape[0], self.n))
-
-    def _phase(self, policy: np.ndarray) -> tuple[np.ndarray, sp.csr_matrix, np.ndarray]:
-        """``(probabilities, G, r_π)`` of the last Bellman step, built once per step."""
+    def _mixture(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(r_π, index, weight)`` of the last Bellman step's probabilities, built once per step: every
+        pair's nodes as the nodes of one point, ``index`` (n, C·nodes) and ``weight = π(c|x)·w_k`` — the
+        form of a policy's nodes, so the compiled fixed-policy kernels evaluate the probabilities."""
         probabilities = self.choice_probabilities(policy)
         if self._mixed is None or self._mixed[0] is not probabilities:
+            index, weight = self._nodes_of_pairs()
+            n = index.shape[0]
+            mixed = (probabilities[:, :, None] * weight).reshape(n, -1)
             reward = entropy_reward(self._tables[0], probabilities, self.taste_scale)
-            self._mixed = (probabilities, self._mixed_grid(probabilities), reward)
-            self._grouped = None
-        return self._mixed
-
-    def _grouped_phase(self, policy: np.ndarray) -> tuple[sp.csr_matrix, np.ndarray]:
-        """``(G grouped by shock, r_π)`` for evaluation steps, built once per step."""
-        _, grid_rows, reward = self._phase(policy)
-        if self._grouped is None:
-            self._grouped = self._by_shock(grid_rows)
-        return self._grouped, reward
+            self._mixed = (probabilities, reward, index.reshape(n, -1), mixed)
+        return self._mixed[1], self._mixed[2], self._mixed[3]
 
     def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
         """``P_π`` (n, n) CSR: every pair's nodes weighted by the pair's probability, times the shock chain."""
-        _, grid_rows, _ = self._phase(policy)
-        return self._with_shocks(grid_rows, np.arange(self.n))
+        _, index, weight = self._mixture(policy)
+        indptr, indices, data = kernels.policy_csr(index, weight, self._data.transition)
+        return sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
 
     def pair_transition(self) -> sp.csr_matrix:
         """(n·C, n) CSR: row ``x·C + c`` is tomorrow's law after choice ``c`` at ``x`` (zero when not allowed)."""
-        _, weight = self._nodes_of_pairs()
+        index, weight = self._nodes_of_pairs()
         n, n_choices, nodes = weight.shape
-        grid_rows = self._grid_rows(weight.reshape(-1), nodes)
-        return self._with_shocks(grid_rows, np.arange(n * n_choices) // n_choices)
+        transition = self._data.transition
+        n_shocks = transition.shape[0]
+        shock = np.repeat(np.arange(n) % n_shocks, n_choices * nodes)
+        data = (weight.reshape(-1)[:, None] * transition[shock]).reshape(-1)
+        indices = (index.reshape(-1)[:, None] * n_shocks + np.arange(n_shocks)).reshape(-1)
+        indptr = np.arange(0, data.size + 1, nodes * n_shocks, dtype=np.int64)
+        return sp.csr_matrix((data, indices, indptr), shape=(n * n_choices, self.n))
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
         """``r_π = Σ_c π(c|x)·(r(x, c) − s·log π(c|x))``, shape (n,)."""
-        return self._phase(policy)[2].copy()
+        return self._mixture(policy)[0].copy()
 
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
         """``r_π + β P_π v``; (n,) → (n,)."""
-        grid_rows, reward = self._grouped_phase(policy)
-        return self._evaluate(grid_rows, reward, np.asarray(v, dtype=np.float64).reshape(self.n))
-
-    def _evaluate(self, grid_rows: sp.csr_matrix, reward: np.ndarray, v: np.ndarray) -> np.ndarray:
-        """One evaluation step: ``r_π(x) + β Σ_x' G[x, x'] EVt[z(x), x']`` (no (n, n) matrix).
-
-        ``grid_rows`` is ``G`` with its rows grouped by shock (see :meth:`_by_shock`)."""
-        EVt = self._continuation(v)
-        n_shocks = EVt.shape[0]
-        out = np.empty(self.n)
-        per_shock = self.n // n_shocks
-        for z in range(n_shocks):
-            out[z::n_shocks] = grid_rows[z * per_shock : (z + 1) * per_shock] @ EVt[z]
-        out *= self.discount
-        out += reward
-        return out
-
-    def _by_shock(self, grid_rows: sp.csr_matrix) -> sp.csr_matrix:
-        """``G`` with its rows reordered shock by shock (points z, z + S, z + 2S, … for each z in turn), so
-        that each shock's rows are one contiguous block whose product reads one row of ``EVt``."""
-        n_shocks = self._data.n_shocks
-        order = np.arange(self.n).reshape(-1, n_shocks).T.reshape(-1)
-        return sp.csr_matrix(grid_rows[order])
+        reward, index, weight = self._mixture(policy)
+        return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
 
     def policy_steps(  # type: ignore[override]
         self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
     ) -> tuple[np.ndarray, int, float]:
-        """Up to ``steps`` evaluation steps ``v ← r_π + β P_π v`` (see :data:`worker.problem.PolicySteps`)."""
-        grid_rows, reward = self._grouped_phase(policy)
-        current = np.array(v, dtype=np.float64).reshape(self.n)
-        done, span = 0, np.inf
-        while done < steps:
-            new = self._evaluate(grid_rows, reward, current)
-            increment = new - current
-            span = float(increment.max() - increment.min())
-            current = new
-            done += 1
-            if span <= span_stop:
-                break
-        return current, done, span
+        """Up to ``steps`` evaluation steps ``v ← r_π + β P_π v`` in one compiled call, on ``threads`` threads
+        from ``THREAD_MIN_STEP_POINTS`` points (see :data:`worker.problem.PolicySteps`)."""
+        reward, index, weight = self._mixture(policy)
+        out = np.array(v, dtype=np.float64).reshape(self.n)
+        if self._step_scratch is None:
+            self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
+        EVt, spare = self._step_scratch
+        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
+            done, span = self._threaded_steps(reward, index, weight, out, int(steps), float(span_stop))
+        else:
+            done, span = kernels.policy_steps(
+                reward, index, weight, self._data.transition, self.discount, out, int(steps), float(span_stop),
+                EVt, spare,
+            )
+        return out, int(done), float(span)
+
+    def _warm_up(self) -> None:
+        """Load (or compile once per machine) the fixed-policy kernel the evaluation steps use."""
+        node_index, node_weight = np.empty((0, 1), dtype=np.int64), np.empty((0, 1))
+        empty = np.empty(0)
+        kernels.policy_steps(empty, node_index, node_weight, self._data.transition, self.discount, empty, 1,
+                             -np.inf, np.zeros((self._data.n_shocks, 0)), empty)
 
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
         """Per choice, the (n,) expected chosen value under the probabilities."""

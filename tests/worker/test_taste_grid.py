@@ -165,3 +165,29 @@ def test_a_continuous_choice_with_taste_shocks_is_refused():
         solve(grid_document(model))
     error = next(e for e in caught.value.errors if e["path"] == "model.taste_shocks")
     assert "continuous" in error["message"]
+
+
+@pytest.mark.parametrize("threads", [1, 2])
+def test_fused_evaluation_steps_equal_steps_with_the_mixed_matrix(monkeypatch, threads):
+    # The compiled fixed-policy kernels evaluate the probabilities through every pair's nodes; the sparse
+    # P_π built separately must give the same steps (to rounding), on one thread and on two.
+    from worker import threadpool
+    from worker.solve import compile_document
+
+    model = machine(0.4, "0.5 * wear")
+    model["shocks"] = {"wear": {"markov": {"values": WEAR, "matrix": [[0.6, 0.3, 0.1], [0.2, 0.6, 0.2],
+                                                                       [0.1, 0.3, 0.6]]}}}
+    problem = compile_document(grid_document(model, discount=0.95))[1]
+    problem.threads = threads
+    monkeypatch.setattr(threadpool, "THREAD_MIN_STEP_POINTS", 0)
+    v = np.random.default_rng(5).normal(size=problem.n)
+    _, policy = problem.bellman_step(v)
+    matrix, reward = problem.policy_matrix(policy), problem.policy_reward(policy)
+    np.testing.assert_allclose(matrix.sum(axis=1).A1, 1.0, rtol=0, atol=1e-13)
+    np.testing.assert_allclose(problem.policy_step(v, policy), reward + 0.95 * (matrix @ v), rtol=0, atol=1e-12)
+    stepped, done, _ = problem.policy_steps(v, policy, 3)
+    assert done == 3
+    expected = v
+    for _ in range(3):
+        expected = reward + 0.95 * (matrix @ expected)
+    np.testing.assert_allclose(stepped, expected, rtol=0, atol=1e-11)

@@ -302,8 +302,12 @@ def _grid_factory():
 
 @pytest.mark.parametrize("factory", [_tabular_factory, _grid_factory], ids=["tabular", "grid"])
 @pytest.mark.parametrize("name", sorted(GENERAL_METHODS))
-def test_a_resumed_solve_ends_exactly_where_an_uninterrupted_one_does(name, factory):
-    # Each run gets a fresh compiled problem, as a resumed job does in a new process.
+def test_a_resumed_solve_ends_exactly_where_an_uninterrupted_one_does(name, factory, monkeypatch):
+    # Each run gets a fresh compiled problem, as a resumed job does in a new process.  Fused evaluation
+    # steps (grid) run one step per call here, so that checkpoints fall inside evaluation phases.
+    from worker.solvers import evaluation
+
+    monkeypatch.setattr(evaluation, "STEP_BLOCK_S", 0.0)
     make = factory()
     n = make().n
     method = METHODS[name]
