@@ -2,8 +2,9 @@
 
 :func:`admit` validates (``worker.document.parse_document``), refuses a grid
 model whose kernels would be too large to compile
-(``worker.kernel_limits.check_structure``), estimates (``worker.estimate.estimate``),
-refuses a problem over ``max_problem_mb``,
+(``worker.kernel_limits.check_structure``) or whose tables with taste shocks
+would exceed the precompute budget (``worker.tastecheck``), estimates
+(``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
 checks that a warm start names a finished job the caller may read.  It never
 builds the problem and never imports the numba kernels, so bad input is
@@ -22,6 +23,7 @@ from worker.document import InitialJob, ProblemDocument, parse_document
 from worker.errors import InvalidDocument, TooLarge
 from worker.estimate import estimate
 from worker.kernel_limits import check_structure
+from worker.tastecheck import check_taste_tables
 
 __all__ = ["Admitted", "admit"]
 
@@ -63,6 +65,7 @@ def admit(
     document = parse_document(raw)
     check_structure(document)
     cap = int(settings.max_problem_mb * _MIB)
+    check_taste_tables(document, limits={"max_bytes": cap})
     size = estimate(document, limits={"max_bytes": cap})
     if size["bytes"] > cap:
         raise TooLarge.at(

@@ -30,6 +30,11 @@ DESCRIPTIONS: dict[str, str] = {
         "season; harvests swing with persistent weather and she cannot borrow. Next season's savings is a "
         "continuous choice (monotone cubic interpolation), with Euler-equation errors and the long-run distribution."
     ),
+    "courier_van_replacement": (
+        "A courier firm decides each month whether to replace a delivery van; upkeep grows with the odometer and "
+        "the old van's resale value falls with it. Taste shocks (things the analyst does not see) make the decision "
+        "random: the result carries the replacement probability at every odometer reading and route load."
+    ),
     "fishery_harvest": (
         "A fishery sets this season's harvest; the stock left behind regrows logistically, "
         "scaled by this season's ocean conditions (a law of motion given in next)."

@@ -5,7 +5,10 @@ its axes.  The header follows the result's axes: a column per axis (the state
 variables, then the shocks; a tabular result has the one axis ``state_label``),
 then ``value``, then a column per choice with the chosen value (a tabular
 result's one choice is named ``action`` and holds action labels).  A choice
-whose name repeats an earlier column gets ``_choice`` appended.
+whose name repeats an earlier column gets ``_choice`` appended.  With taste
+shocks a column per alternative follows, ``P(action=run)`` or
+``P(replace=1, oil=0.5)``, its choice probability, when there are at most
+:data:`MAX_PROBABILITY_COLUMNS` alternatives (the result holds them all).
 
 Text cells that begin with ``=``, ``+``, ``-``, ``@``, a tab or a carriage
 return (labels, names) get a leading ``'`` (:func:`csv_text`), so a
@@ -17,17 +20,20 @@ from __future__ import annotations
 
 import csv
 import io
+import itertools
 from collections.abc import Iterator
 from typing import Any
 
 import numpy as np
 
-__all__ = ["FORMULA_STARTS", "ROWS_PER_CHUNK", "csv_chunks", "csv_text", "table_columns"]
+__all__ = ["FORMULA_STARTS", "MAX_PROBABILITY_COLUMNS", "ROWS_PER_CHUNK", "csv_chunks", "csv_text", "table_columns"]
 
 ROWS_PER_CHUNK = 4096
 """Rows formatted per chunk of the streamed CSV (rows)."""
 FORMULA_STARTS = ("=", "+", "-", "@", "\t", "\r")
 """First characters that make a spreadsheet read a CSV cell as a formula (CSV injection)."""
+MAX_PROBABILITY_COLUMNS = 64
+"""Most alternatives whose choice probabilities get a column each (count; a wider table is unreadable)."""
 
 
 def csv_text(value: Any) -> Any:
@@ -58,7 +64,22 @@ def table_columns(result: dict[str, Any]) -> tuple[list[str], list[np.ndarray]]:
             raise ValueError(f"policy {choice!r} has shape {column.shape}, the axes give {shape}")
         names.append(_unique(choice, names))
         columns.append(column.ravel())
+    _probability_columns(result, value.size, names, columns)
     return names, columns
+
+
+def _probability_columns(result: dict[str, Any], n: int, names: list[str], columns: list[np.ndarray]) -> None:
+    """Append a column per alternative of ``choice_probabilities`` (taste shocks), when there are few enough."""
+    probabilities = result.get("choice_probabilities")
+    choices = ((result.get("diagnostics") or {}).get("taste_shocks") or {}).get("choices") or {}
+    alternatives = int(np.prod([len(values) for values in choices.values()], dtype=np.int64)) if choices else 0
+    if probabilities is None or not 0 < alternatives <= MAX_PROBABILITY_COLUMNS:
+        return
+    flat = np.asarray(probabilities, dtype=float).reshape(n, alternatives)
+    for k, combination in enumerate(itertools.product(*choices.values())):
+        label = ", ".join(f"{name}={value}" for name, value in zip(choices, combination))
+        names.append(_unique(f"P({label})", names))
+        columns.append(flat[:, k])
 
 
 def _unique(name: str, taken: list[str]) -> str:

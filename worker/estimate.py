@@ -44,18 +44,11 @@ from typing import Any
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
+from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
 
 __all__ = [
-    "DIRECT_SOLVE_MAX_POINTS",
-    "KRYLOV_RESIDUAL_SHARE",
-    "KRYLOV_RESTART",
-    "PRECOMPUTE_CAP_SHARE",
-    "PRECOMPUTE_MAX_BYTES",
-    "REWARD_STORAGES",
-    "GridPlan",
-    "estimate",
-    "grid_plan",
-    "precompute_budget",
+    "DIRECT_SOLVE_MAX_POINTS", "KRYLOV_RESIDUAL_SHARE", "KRYLOV_RESTART", "PRECOMPUTE_CAP_SHARE",
+    "PRECOMPUTE_MAX_BYTES", "REWARD_STORAGES", "GridPlan", "estimate", "grid_plan", "precompute_budget",
 ]
 
 REWARD_STORAGES = ("tables", "on_the_fly")
@@ -194,7 +187,9 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     pairs = n * choices
     interpolated = sum(1 for name in model.states if name in model.next)
     nodes = 2**interpolated
-    static = static_choices(model)
+    taste = getattr(model, "taste_shocks", None) is not None
+    # With taste shocks every combination of the choices carries its own shock: none is maximised out.
+    static = () if taste else static_choices(model)
     # With static choices the tables run over the other choices only, plus the static choice that wins each entry.
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
@@ -207,6 +202,17 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     on_the_fly_bytes = common + 2 * 8 * n + chunk
 
     budget = precompute_budget(limits)
+    if taste:
+        extra = taste_table_bytes(pairs, interpolated, nodes) - table_bytes
+        table_bytes += extra
+        precompute_bytes += extra + 12 * pairs * nodes * shocks  # the mixed matrix before its duplicates are summed
+        reason, note = taste_storage_words(pairs, table_bytes, budget, model.hints.monotone or model.hints.concave)
+        return GridPlan(
+            grid_states=grid_states, shocks=shocks, n=n, choices=choices, pairs=pairs, interpolated=interpolated,
+            nodes=nodes, monotone=False, concave=False, hint_note=note, reward_storage="tables",
+            precompute_bytes=precompute_bytes, on_the_fly_bytes=on_the_fly_bytes, budget=budget, reason=reason,
+            table_entries=pairs,
+        )
     fits = table_bytes <= budget
     use = hint_use(model, static, None if fits else (
         f"the table of the best reward per (point, remaining choice) would take {table_bytes / _MIB:,.0f} MiB, over "
@@ -373,7 +379,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
             setup = evaluated * POINT_NS
             filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = plan.table_entries * TABLE_READ_NS
+        step = plan.table_entries * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
         how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
@@ -454,9 +460,14 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
     # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
     policy_entries = min(stored, n_states * n_states)
+    if getattr(model, "taste_shocks", None) is not None:
+        # The logit probabilities, their exponentials and the entropy terms are (S, A) arrays, and the mixed
+        # matrix of a policy may hold every stored entry before its duplicates are summed.
+        common += 3 * 8 * pairs
+        policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
     steps, per_iteration, basis = _steps(doc, n_actions)
-    step = stored * MATVEC_NS + pairs * TABLE_READ_NS
+    step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
     seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
     if doc.solver.method == "policy_iteration":
         matrix += linear_solve_bytes(n_states, policy_entries)

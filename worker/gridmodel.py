@@ -103,6 +103,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     InvalidDocument
         A state variable without a law of motion, or a grid or chain the
         schema let through but that cannot be built.
+    TooLarge
+        With taste shocks, tables over the precompute budget (see :mod:`worker.tastegrid`).
     InfeasibleModel
         Some point has no allowed choice.
     """
@@ -110,6 +112,11 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
         from worker.continuous import compile_continuous
 
         return compile_continuous(doc)
+    if getattr(doc.model, "taste_shocks", None) is not None:
+        # The smoothed maximum needs every choice's value: full table scans, whatever storage was asked for.
+        from worker.tastegrid import compile_taste_grid
+
+        return compile_taste_grid(doc, limits=limits)
     started = time.perf_counter()
     plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
     chosen = reward_storage or plan.reward_storage

@@ -13,6 +13,21 @@ Conventions
 * A *policy* is an int64 vector of length ``n`` holding, per state, the flat
   index of the chosen alternative in the problem's choice space (tabular: the
   action index; grid: the C-order flat index over the product of choices).
+
+Taste shocks
+------------
+A problem with taste shocks (:mod:`worker.taste`) also has ``taste_scale``
+(a float; problems without have no such attribute or None),
+``choice_probabilities(policy) -> (n, C)`` (the logit probabilities of its
+last Bellman step, whose most probable choices ``policy`` must be),
+``choice_axes() -> {choice name: values}`` and ``pair_transition() -> (n·C, n)
+CSR`` (row ``x·C + c``: tomorrow's law after choice ``c`` at ``x``).  Its
+``bellman_step`` is the smoothed one and returns the most probable choice;
+``policy_matrix``, ``policy_reward``, ``policy_step`` and ``policy_steps``
+evaluate the last step's probabilities (entropy term included), so the
+solvers keep an int64 policy and need not know; only a resumed solve does,
+and steps once more from the value the interrupted phase started from
+(:class:`worker.solvers.loop.Run`).
 """
 
 from __future__ import annotations

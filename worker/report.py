@@ -173,6 +173,12 @@ def simulate_report(
     else:
         first = np.full(paths, _start_state(problem, start, path + ".start"), dtype=np.int64)
 
+    if getattr(problem, "taste_scale", None) is not None:
+        from worker.taste_paths import simulate_taste_paths
+
+        summary, first_path = simulate_taste_paths(problem, policy, first, periods, rng, _summarise)
+        return {"periods": periods, "paths": paths, "seed": seed, "summary": summary, "first_path": first_path,
+                "warnings": warnings}
     cumulative = np.cumsum(matrix.data)
     row_base = np.concatenate([[0.0], cumulative])[matrix.indptr[:-1]]
     row_total = np.concatenate([[0.0], cumulative])[matrix.indptr[1:]] - row_base

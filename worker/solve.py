@@ -65,8 +65,10 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
     from worker.estimate import estimate
     from worker.kernel_limits import check_structure
+    from worker.tastecheck import check_taste_tables
 
     check_structure(doc)
+    check_taste_tables(doc, limits=limits)
     cap = limits["max_bytes"]
     size = estimate(doc, limits=limits)
     if size["bytes"] > cap:
@@ -276,6 +278,7 @@ def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str
 
 
 def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[str, Any]:
+    taste, probabilities = _taste_shocks(doc, problem, outcome)
     policy, policy_index = problem.describe_policy(outcome.policy)
     problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
@@ -288,9 +291,14 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
         warnings += simulation.pop("warnings", [])
-    euler = _euler_errors(doc, problem, outcome, stationary, problem_diagnostics)
+    euler = {} if taste else _euler_errors(doc, problem, outcome, stationary, problem_diagnostics)
+    if taste and doc.report.euler_errors:
+        problem_diagnostics.setdefault("notes", []).append(
+            "Euler-equation errors were not measured: with taste shocks the choice is random, not a policy rule"
+        )
     diagnostics = {
         **problem_diagnostics,
+        **taste,
         **euler,
         "observed_rate": outcome.observed_rate,
         "warnings": warnings,
@@ -319,8 +327,35 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
         "value": np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist(),
         "policy": policy,
         "policy_index": policy_index,
+        **probabilities,
         **tail,
     }
+
+
+def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> tuple[dict[str, Any], dict[str, Any]]:
+    """With taste shocks: ``({"taste_shocks": diagnostics}, {"choice_probabilities": nested lists})``.
+
+    The probabilities are the logit of the choice-specific values at the returned value (the midpoint,
+    the most accurate value the solve has), from one more Bellman step; ``outcome.policy`` becomes that
+    step's most probable choice, so that the policy, the probabilities, the stationary distribution and
+    the simulation all describe the same choice rule.  Without taste shocks: ``({}, {})``.
+    """
+    scale = getattr(problem, "taste_scale", None)
+    if scale is None:
+        return {}, {}
+    from worker.taste import diagnostics
+
+    _, policy = problem.bellman_step(np.asarray(outcome.value, dtype=np.float64))
+    outcome.policy = np.asarray(policy, dtype=np.int64)
+    axes = problem.choice_axes()
+    probabilities = problem.choice_probabilities(outcome.policy)
+    shape = (*problem.shape, *(len(values) for values in axes.values()))
+    notes = {
+        **diagnostics(scale, float(doc.discount)),
+        "choices": _plain(axes),
+        "probabilities_at": "the choice-specific values at the returned value",
+    }
+    return {"taste_shocks": notes}, {"choice_probabilities": probabilities.reshape(shape).tolist()}
 
 
 def _euler_errors(

@@ -9,7 +9,11 @@ as two arrays:
   (rows of disallowed pairs are empty).
 
 The Bellman step is then one sparse matrix–vector product and an ``argmax``:
-``Q = R + β·(T @ v).reshape(S, A)``, with no Python loop over states.
+``Q = R + β·(T @ v).reshape(S, A)``, with no Python loop over states.  With
+taste shocks (``taste_scale``) the maximum is the smoothed one of
+:mod:`worker.taste`, and the evaluation of a policy (Howard's method, policy
+iteration, the stationary distribution, simulation) mixes the actions by the
+logit probabilities of the last Bellman step, entropy term included.
 """
 
 from __future__ import annotations
@@ -21,6 +25,7 @@ import scipy.sparse as sp
 
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.problem import Hints, PolicySteps
+from worker.taste import check_scale, entropy_reward, smoothed_max
 
 __all__ = ["ROW_SUM_TOLERANCE", "STATE_AXIS", "TabularProblem", "compile_tabular"]
 
@@ -49,6 +54,8 @@ class TabularProblem:
         β in (0, 1).
     state_labels, action_labels : list, optional
         Labels reported in ``axes`` and ``policy``; default ``0..S-1`` / ``0..A-1``.
+    taste_scale : float, optional
+        The scale ``s > 0`` of extreme-value taste shocks on the actions (None: none).
 
     No validation happens here beyond shapes: :func:`compile_tabular` checks a
     document's arrays and names the faulty field.
@@ -67,6 +74,7 @@ class TabularProblem:
         *,
         state_labels: list[Any] | None = None,
         action_labels: list[Any] | None = None,
+        taste_scale: float | None = None,
     ) -> None:
         reward = np.array(reward, dtype=np.float64)
         if reward.ndim != 2:
@@ -99,6 +107,9 @@ class TabularProblem:
         self.action_labels = list(range(n_actions)) if action_labels is None else list(action_labels)
         self.axes: dict[str, list[Any]] = {STATE_AXIS: self.state_labels}
         self._rows = np.arange(n_states)
+        self.taste_scale = None if taste_scale is None else check_scale(taste_scale)
+        self._probabilities: np.ndarray | None = None
+        self._most_probable: np.ndarray | None = None
 
     def bellman_step(
         self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None
@@ -112,24 +123,55 @@ class TabularProblem:
         Returns
         -------
         Tv : (S,) float64
-        policy : (S,) int64, the lowest-index maximising action per state.
+        policy : (S,) int64, the lowest-index maximising action per state (with taste
+            shocks: the most probable one; the step's probabilities are kept for evaluation).
         """
         q = self.transition @ v
         q *= self.discount
         q = q.reshape(self.n_states, self.n_actions)
         q += self.reward
+        if self.taste_scale is not None:
+            value, self._probabilities, policy = smoothed_max(q, self.taste_scale)
+            self._most_probable = policy
+            return value, policy
         policy = q.argmax(axis=1)
         return q[self._rows, policy], policy.astype(np.int64, copy=False)
+
+    def choice_probabilities(self, policy: np.ndarray) -> np.ndarray:
+        """(S, A) logit probabilities of the last Bellman step, whose most probable actions are ``policy``.
+
+        Raises
+        ------
+        ValueError
+            No Bellman step was taken, or ``policy`` is not the last step's most probable choice (the
+            solvers always evaluate the policy of the step they just took).
+        """
+        if self._probabilities is None or self._most_probable is None:
+            raise ValueError("choice probabilities exist only after a Bellman step of a model with taste shocks")
+        if not np.array_equal(self._most_probable, policy):
+            raise ValueError("the policy is not the most probable choice of the last Bellman step")
+        return self._probabilities
 
     def _pair_rows(self, policy: np.ndarray) -> np.ndarray:
         return self._rows * self.n_actions + np.asarray(policy, dtype=np.int64)
 
     def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
-        """``P_σ``: (S, S) CSR, the rows of ``transition`` the policy selects."""
-        return sp.csr_matrix(self.transition[self._pair_rows(policy)])
+        """``P_σ``: (S, S) CSR, the rows of ``transition`` the policy selects (taste shocks: the rows of
+        every action mixed by its probability, ``Σ_a π(a|s) P(·|s, a)``)."""
+        if self.taste_scale is None:
+            return sp.csr_matrix(self.transition[self._pair_rows(policy)])
+        weights = self.choice_probabilities(policy)
+        pairs = self.n_states * self.n_actions
+        mixer = sp.csr_matrix(
+            (weights.ravel(), np.arange(pairs), np.arange(0, pairs + 1, self.n_actions)),
+            shape=(self.n_states, pairs),
+        )
+        return sp.csr_matrix(mixer @ self.transition)
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
-        """``r_σ``: (S,) float64."""
+        """``r_σ``: (S,) float64 (taste shocks: ``Σ_a π(a|s)·(r(s, a) − s·log π(a|s))``)."""
+        if self.taste_scale is not None:
+            return entropy_reward(self.reward, self.choice_probabilities(policy), self.taste_scale)
         return self.reward[self._rows, np.asarray(policy, dtype=np.int64)]
 
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
@@ -144,8 +186,19 @@ class TabularProblem:
         return {"action": labels[index].tolist()}, {"action": index.tolist()}
 
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
-        """``{"action": (S,) float64}``: the chosen action's index."""
+        """``{"action": (S,) float64}``: the chosen action's index (taste shocks: its expected index)."""
+        if self.taste_scale is not None:
+            return {"action": self.choice_probabilities(policy) @ np.arange(self.n_actions, dtype=np.float64)}
         return {"action": np.asarray(policy, dtype=np.float64)}
+
+    def choice_axes(self) -> dict[str, list[Any]]:
+        """The choice axes of ``choice_probabilities``: ``{"action": labels}``."""
+        return {"action": self.action_labels}
+
+    def pair_transition(self) -> sp.csr_matrix:
+        """(S·A, S) CSR: row ``s·A + a`` is tomorrow's law after action ``a`` in state ``s`` (simulation
+        with taste shocks draws the action, then tomorrow's state from its row)."""
+        return self.transition
 
     def state_values(self) -> dict[str, np.ndarray]:
         """``{"state_label": (S,) float64}``: each state's index."""
@@ -195,9 +248,16 @@ def compile_tabular(doc: Any) -> TabularProblem:
         doc.discount,
         state_labels=model.state_labels(),
         action_labels=model.action_labels(),
+        taste_scale=_taste_scale(model),
     )
     _check_rows(problem, where)
     return problem
+
+
+def _taste_scale(model: Any) -> float | None:
+    """``model.taste_shocks.scale``, or None without taste shocks."""
+    taste = getattr(model, "taste_shocks", None)
+    return None if taste is None else float(taste.scale)
 
 
 def _entries_to_csr(entries: np.ndarray, n_states: int, n_actions: int) -> sp.csr_matrix:

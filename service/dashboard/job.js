@@ -312,6 +312,10 @@
       const held = diagnostics.verification.hints_held;
       notes.push(`The hints were checked by one unrestricted application of the Bellman operator (a verification, not counted as an iteration): ${held === false ? "they did not hold, so the solve went on without them" : "they held"}.`);
     }
+    if (diagnostics.taste_shocks) {
+      const taste = diagnostics.taste_shocks;
+      notes.push(`Taste shocks of scale ${formatBound(taste.scale)}: the value is the smoothed maximum over the choices, and every allowed choice has a probability (the policy shows the most probable). Euler's constant is not in the value; with location-zero shocks every value would be ${formatBound(taste.location_zero_offset)} higher.`);
+    }
     if (diagnostics.resumed_from_iteration) {
       notes.push(`A worker stopped during this solve; another one resumed it from the checkpoint of iteration ${formatCount(diagnostics.resumed_from_iteration)}, so finished work was not lost.`);
     }
@@ -371,7 +375,32 @@
     choiceSelect.onchange = update;
     if (plots.value !== false) update();
     showEulerErrors(summary);
+    showChoiceProbabilities(summary);
     document.getElementById("pictures").classList.remove("hidden");
+  }
+
+  // Models with taste shocks: the probabilities of one choice's values, drawn by the server.
+  function showChoiceProbabilities(summary) {
+    const shown = Boolean(summary.choice_probabilities);
+    document.getElementById("probability-figure").classList.toggle("hidden", !shown);
+    if (!shown) return;
+    const choices = Object.keys(((summary.diagnostics || {}).taste_shocks || {}).choices || {});
+    const shockLabels = summary.shock_labels || [];
+    const choiceSelect = document.getElementById("probability-choice");
+    const shockSelect = document.getElementById("probability-shock");
+    choiceSelect.replaceChildren(...choices.map((name) => el("option", { value: name, text: name })));
+    fillSelect(shockSelect, shockLabels);
+    document.getElementById("probability-choice-box").classList.toggle("hidden", choices.length < 2);
+    document.getElementById("probability-shock-box").classList.toggle("hidden", summary.layout === "bars" || shockLabels.length < 2);
+    const update = () => {
+      const params = new URLSearchParams();
+      if (choices.length) params.set("choice", choiceSelect.value || choices[0]);
+      if (summary.layout !== "bars") params.set("shock_index", shockSelect.value || "0");
+      document.getElementById("probability-plot").src = `${base}/plots/choice_probabilities.svg?${params}`;
+    };
+    choiceSelect.onchange = update;
+    shockSelect.onchange = update;
+    update();
   }
 
   // The profile itself stays on the server, which draws it like the value and policy plots;
@@ -409,6 +438,7 @@
       links.push(["policy plot (PNG)", policyUrl("png"), `${jobId}-policy.png`]);
     }
     if (summary.euler_profile) links.push(["Euler-error plot (PNG)", `${base}/plots/euler_errors.png`, `${jobId}-euler-errors.png`]);
+    if (summary.choice_probabilities) links.push(["choice-probability plot (PNG)", `${base}/plots/choice_probabilities.png`, `${jobId}-choice-probabilities.png`]);
     document.getElementById("downloads").replaceChildren(...links.map(([text, href, download]) => el("a", { class: "button quiet", href, download, text })));
     document.getElementById("downloads-card").classList.remove("hidden");
   }

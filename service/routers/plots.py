@@ -8,6 +8,9 @@
   410, as on ``/result``;
 * ``euler_errors.svg|png`` — the profile of ``diagnostics.euler_errors``
   across the state, once ``done``; 404 when the result has none;
+* ``choice_probabilities.svg|png`` — a model with taste shocks: the
+  probabilities of one choice's values (``?choice=NAME``, ``?shock_index=I``;
+  see :mod:`service.choice_plots`); 404 when the result has none;
 * ``GET /v1/jobs/{id}/plots`` — a small JSON summary of a solved job: which
   picture layout applies, the choices and shock points to pick from, and the
   result's status and diagnostics without its arrays (``euler_errors``
@@ -37,7 +40,7 @@ LOG_PAGE = 1000
 DONE_MAX_AGE_S = 3600
 """How long a browser may reuse a picture of a finished job, in seconds (it never changes)."""
 
-Picture = Literal["convergence", "value", "policy", "euler_errors"]
+Picture = Literal["convergence", "value", "policy", "euler_errors", "choice_probabilities"]
 Format = Literal["svg", "png"]
 MEDIA_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
 
@@ -66,6 +69,7 @@ def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
         },
         "diagnostics": _without_profile(result.get("diagnostics") or {}),
         "euler_profile": bool(((result.get("diagnostics") or {}).get("euler_errors") or {}).get("profile")),
+        "choice_probabilities": result.get("choice_probabilities") is not None,
         "stationary": _without(result.get("stationary"), "distribution"),
         "simulation": _without(result.get("simulation"), "first_path"),
     }
@@ -85,8 +89,8 @@ def plot(
     choice: Annotated[
         str | None,
         Query(
-            description="Policy pictures: the name of the choice to draw (a tabular model's one choice is "
-            "named action; default: the first)."
+            description="Policy and choice-probability pictures: the name of the choice to draw (a tabular "
+            "model's one choice is named action; default: the first)."
         ),
     ] = None,
     shock_index: Annotated[
@@ -116,6 +120,12 @@ def plot(
             body = plots.value_plot(result, layout=layout, shock_index=shock_index, title=title, fmt=fmt)
         elif picture == "euler_errors":
             body = plots.euler_plot(result, layout=layout, title=title, fmt=fmt)
+        elif picture == "choice_probabilities":
+            from service.choice_plots import choice_probability_plot
+
+            body = choice_probability_plot(
+                result, layout=layout, choice=choice, shock_index=shock_index, title=title, fmt=fmt
+            )
         else:
             body = plots.policy_plot(
                 result, layout=layout, choice=choice, shock_index=shock_index, title=title, fmt=fmt

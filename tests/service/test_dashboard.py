@@ -255,6 +255,50 @@ def test_euler_equation_errors_are_plotted_across_the_state(
     assert tab.problems() == []
 
 
+PROBABILITIES_SHOWN = (
+    PLOTS_SHOWN + " && !document.getElementById('probability-figure').classList.contains('hidden')"
+    " && (img => img.complete && img.naturalWidth > 0)(document.getElementById('probability-plot'))"
+)
+
+
+def test_choice_probabilities_of_taste_shocks_are_plotted(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
+    server.ensure_worker()
+    document = {
+        "version": 1,
+        "label": "lathe replacement with taste shocks (invented)",
+        "discount": 0.95,
+        "model": {
+            "kind": "grid",
+            "states": {"mileage": {"min": 0, "max": 19, "points": 20}},
+            "shocks": {"wear": {"iid": {"values": [0, 1, 2], "probs": [0.35, 0.5, 0.15]}}},
+            "choices": {"replace": {"values": [0, 1]}},
+            "next": {"mileage": "(1 - replace) * min(mileage + wear, 19)"},
+            "reward": "-(1 - replace) * 0.3 * mileage - replace * 4",
+            "taste_shocks": {"scale": 0.7},
+        },
+    }
+    job_id = submit(api, document)
+    assert wait_until_finished(api, job_id)["state"] == "done"
+    assert api.get(f"/v1/jobs/{job_id}/plots").json()["choice_probabilities"] is True
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for(PROBABILITIES_SHOWN)
+    shown = tab.evaluate("document.getElementById('probability-plot').src")
+    assert "/plots/choice_probabilities.svg?" in shown and "choice=replace" in shown and "shock_index=0" in shown
+    notes = tab.evaluate("document.getElementById('notes').textContent")
+    assert "Taste shocks of scale 0.7" in notes and "Euler's constant is not in the value" in notes
+    # Three wear values: the shock point can be picked, and the picture follows it.
+    tab.evaluate("(s => { s.value = '2'; s.dispatchEvent(new Event('change')); })"
+                 "(document.getElementById('probability-shock'))")
+    tab.wait_for(PROBABILITIES_SHOWN + " && document.getElementById('probability-plot').src.includes('shock_index=2')")
+    links = tab.evaluate("[...document.querySelectorAll('#downloads a')].map(a => a.getAttribute('href'))")
+    assert f"/v1/jobs/{job_id}/plots/choice_probabilities.png" in links
+    tab.screenshot("job-choice-probabilities")
+    assert tab.problems() == []
+
+
 def test_a_failed_job_says_why(server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]) -> None:
     server.ensure_worker()
     # Valid at the door (every number is finite), but the values overflow to inf while solving.

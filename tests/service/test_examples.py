@@ -34,6 +34,7 @@ from worker.estimate import estimate
 
 EXPECTED = {
     "beekeeper_savings",
+    "courier_van_replacement",
     "fishery_harvest",
     "household_saving",
     "machine_replacement",
@@ -130,6 +131,27 @@ def test_machine_shop_replaces_at_and_beyond_a_wear_threshold(solved: dict[str, 
     for _ in range(2000):
         v = np.nanmax(reward + beta * transition @ v, axis=1)
     assert np.max(np.abs(np.array(result["value"]) - v)) <= result["error_bound"] + 1e-9
+
+
+def test_courier_van_replacement_probabilities_rise_with_the_odometer(solved: dict[str, Any]) -> None:
+    document = load_example("courier_van_replacement")
+    result = solved["courier_van_replacement"]
+    p = np.asarray(result["choice_probabilities"])[:, :, 1]
+    assert np.all(np.diff(p, axis=0) > 0), "replacing gets likelier as the van ages, at every route load"
+    assert p[0].max() < 0.01 and p[-1].min() > 0.95, "the probability should run the whole range"
+    # Hotz & Miller (1993): log(P_replace/P_keep) = (v_replace − v_keep)/s, the choice-specific values
+    # computed here in numpy from the returned value and the document's numbers.
+    params, beta = document["model"]["params"], document["discount"]
+    scale = document["model"]["taste_shocks"]["scale"]
+    load = np.array(document["model"]["shocks"]["route_load"]["iid"]["values"])
+    probs = np.array(document["model"]["shocks"]["route_load"]["iid"]["probs"])
+    expected = np.asarray(result["value"]) @ probs
+    odometer = np.arange(90.0)[:, None]
+    keep = -params["upkeep"] * odometer + beta * expected[np.minimum(odometer + load, 89).astype(int)]
+    replace = -(params["new_van"] - params["resale"] * (89 - odometer)) + beta * expected[0]
+    np.testing.assert_allclose(np.log(p / (1 - p)), (replace - keep) / scale, rtol=0, atol=1e-6)
+    pi = np.asarray(result["stationary"]["distribution"])
+    assert result["stationary"]["means"]["replace"] == pytest.approx(float((pi * p).sum()), abs=1e-12)
 
 
 def test_translator_accepts_and_keeps_exactly_the_fees_above_the_reservation_fee(solved: dict[str, Any]) -> None:

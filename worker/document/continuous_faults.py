@@ -83,4 +83,7 @@ def continuous_model_faults(model: Any) -> list[Fault]:
         elif len(model.states) != 1:
             faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
                                 f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
+    if continuous and getattr(model, "taste_shocks", None) is not None:
+        faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "
+                            f"`{continuous[0]}` is continuous; give it a grid (points) or a menu (values) instead"))
     return faults

@@ -36,6 +36,7 @@ from worker.document._fields import (
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
+from worker.document.taste_shocks import TasteShocks
 from worker.errors import InvalidDocument, join_path
 
 RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
@@ -279,6 +280,13 @@ class GridModel(Part):
             "the error bound then certifies the interpolated problem) or \"monotone_cubic\" (Fritsch–Carlson, "
             "shape-preserving and far more accurate for smooth models; one state only; its error bound is "
             "computed the same way but is not a proof)."
+        ),
+    )
+    taste_shocks: TasteShocks | None = Field(
+        default=None,
+        description=(
+            "Optional taste shocks on every combination of the choices (grid-restricted choices only): the "
+            "result then carries choice_probabilities, shape the value's axes then the choices."
         ),
     )
 

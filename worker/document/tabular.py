@@ -17,6 +17,7 @@ from pydantic import Discriminator, Field, Tag, model_validator
 from worker.document._faults import Fault, capped, fault, number, raise_faults
 from worker.document._fields import Cube, LabelsOrCount, NullableMatrix, Part, Rows4
 from worker.document.limits import ROW_SUM_TOLERANCE
+from worker.document.taste_shocks import TasteShocks
 from worker.errors import join_path
 
 
@@ -80,6 +81,13 @@ class TabularModel(Part):
             "(state, action) pair the probabilities must be non-negative and sum to 1 (within 1e-9); rows of "
             "pairs that are not allowed are ignored."
         )
+    )
+    taste_shocks: TasteShocks | None = Field(
+        default=None,
+        description=(
+            "Optional taste shocks on the actions: the result then carries choice_probabilities, the logit "
+            "probability of each action in each state."
+        ),
     )
 
     @property

@@ -39,6 +39,12 @@ never below the true error in the tests across many random problems.
 Because the allowance is never zero for a non-zero value, a tolerance below
 it simply runs to ``max_iterations``.
 
+The bracket needs only two properties of ``T``: it is monotone and
+``T(v + c) = Tv + βc`` for a constant ``c``.  The smoothed (log-sum-exp)
+operator of taste shocks has both (see :mod:`worker.taste`), so the same
+bracket certifies it; its policy evaluation mixes the choices by the step's
+logit probabilities with an entropy term, which keeps ``P_σ`` row-stochastic.
+
 Statuses are data, not exceptions: ``converged`` (error bound ≤ tolerance),
 ``max_iterations``, ``time_limit``.  A stop flag raises
 :class:`worker.errors.Canceled`.

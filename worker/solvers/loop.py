@@ -40,6 +40,9 @@ class Step:
     rounding: float
     changes: int
     restricted: bool
+    origin: np.ndarray | None = None
+    """The ``v`` the step was taken from (kept for problems with taste shocks, whose evaluation uses the
+    choice probabilities of this step)."""
 
     @property
     def error_bound(self) -> float:
@@ -109,6 +112,8 @@ class Run:
         self.verification: dict[str, Any] | None = None
         self.warnings: list[str] = []
         self.pending_steps: int | None = None
+        self.taste = getattr(problem, "taste_scale", None) is not None
+        self.origin: np.ndarray | None = None
         self.resumed_from: int | None = None
         self.seconds_before = 0.0
         self._resume()
@@ -141,8 +146,21 @@ class Run:
         # Checkpoints written before the key was renamed call it sweeps_done.
         done = state.get("evaluation_steps_done", state.get("sweeps_done"))
         self.pending_steps = None if done is None or self.policy is None else int(done)
+        origin = state.get("evaluation_origin")
+        self.origin = None if origin is None else np.asarray(origin, dtype=np.float64)
+        if self.taste and self.pending_steps is not None and not self._restore_probabilities():
+            self.pending_steps = None
         self.seconds_before = float(state.get("seconds", 0.0))
         self.resumed_from = self.iteration
+
+    def _restore_probabilities(self) -> bool:
+        """Taste shocks: redo the Bellman step of the interrupted phase, so that its remaining evaluation
+        steps use the very probabilities the interrupted solve used (the step is deterministic); False
+        when the checkpoint cannot give them back."""
+        if self.origin is None or self.origin.shape != (self.problem.n,) or self.policy is None:
+            return False
+        _, policy = self.problem.bellman_step(self.origin)
+        return bool(np.array_equal(_policy_array(policy), self.policy))
 
     def elapsed(self) -> float:
         """Solving seconds, counted across resumes."""
@@ -185,6 +203,11 @@ class Run:
                 "log": list(self.log),
                 "policy": None if self.policy is None else self.policy.copy(),
                 "evaluation_steps_done": steps_done,
+                **(
+                    {"evaluation_origin": self.origin.copy()}
+                    if self.taste and steps_done is not None and self.origin is not None
+                    else {}
+                ),
                 "restricted": self.restricted,
                 "verification": None if self.verification is None else dict(self.verification),
                 "warnings": list(self.warnings),
@@ -219,12 +242,14 @@ class Run:
             rounding=ROUNDING_ULPS * EPS * scale / (1.0 - self.beta),
             changes=changes,
             restricted=restricted,
+            origin=self.v if self.taste else None,
         )
 
     def record(self, step: Step) -> None:
         """Count ``step`` as an iteration: log it and report progress."""
         self.iteration += 1
         self.policy = step.policy
+        self.origin = step.origin
         entry = {
             "iteration": self.iteration,
             "distance": step.distance,

@@ -43,7 +43,10 @@ class Checkpoint(Protocol):
     ``linear_solves`` (ints), ``log`` (list of entries, ``iteration`` of
     them), ``policy`` ((n,) int64, the last greedy policy, or None),
     ``evaluation_steps_done`` (int: Howard evaluation steps of the current phase
-    already applied to ``value``; None at a phase boundary), ``restricted``
+    already applied to ``value``; None at a phase boundary), ``evaluation_origin``
+    (taste shocks, within a phase only: the (n,) value the phase's Bellman step
+    started from, which a resumed solve steps from again to get the same choice
+    probabilities), ``restricted``
     (bool: hints still in use), ``verification`` (dict or None: the hint
     verification, once made), ``warnings`` (list of str) and ``seconds``
     (float, solving time so far).  A state whose fingerprint, method or

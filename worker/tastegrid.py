@@ -1,0 +1,238 @@
+"""A grid model with taste shocks: the smoothed Bellman operator on the full reward tables.
+
+Every combination of the choices carries its own extreme-value shock (see
+:mod:`worker.taste`), so every allowed choice has a probability and enters the
+value: no hinted search, no block search that skips choices, and no static
+choice maximised out within the period applies.  Every step therefore scans
+the tables of every (point, choice) pair (:func:`worker.gridtables.precompute_tables`,
+the same tables the ``tables`` reward storage and the numpy reference use) with
+numpy: the choice-specific values ``Q = R + β·EV`` and their log-sum-exp.
+Tables over the precompute budget are refused (``TooLarge`` at
+``model.taste_shocks``), since no other storage can give every choice's value.
+
+Evaluation (Howard's method, policy iteration), the stationary distribution
+and simulation use the logit probabilities of the last Bellman step, as for
+tabular models: ``P_π`` mixes every pair's interpolation nodes by its
+probability, and ``r_π`` carries the entropy term.  Written as the nodes of
+one point (every pair's nodes, weighted by the pair's probability), the
+mixture runs through the same compiled fixed-policy kernels
+(:mod:`worker.kernels`) as a grid model's policy, fused and threaded alike.
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from worker import _codegen, kernels, threadpool
+from worker.estimate import grid_plan
+from worker.feasibility import infeasible, model_data
+from worker.gridtables import precompute_tables
+from worker.reference import ReferenceProblem, _corner, _interpolated_expected
+from worker.taste import check_scale, entropy_reward, smoothed_max
+from worker.tastecheck import check_taste_tables
+
+__all__ = ["TasteGridProblem", "compile_taste_grid"]
+
+
+def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> TasteGridProblem:
+    """Compile a grid document with ``model.taste_shocks`` (grid-restricted choices only).
+
+    Raises
+    ------
+    TooLarge
+        The tables of every (point, choice) pair, with the choice probabilities, exceed the precompute budget.
+    InfeasibleModel
+        Some point has no allowed choice.
+    """
+    started = time.perf_counter()
+    check_taste_tables(doc, limits=limits)
+    plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
+    data = model_data(doc)
+    tables, counts = precompute_tables(data)
+    stuck = np.flatnonzero(~counts["any_allowed"])
+    if stuck.size:
+        raise infeasible(data, stuck, counts["any_feasible"])
+    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
+    ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
+    problem = TasteGridProblem(
+        doc, data, plan, layout, None, ctx, "tables", counts, full=data, taste_scale=doc.model.taste_shocks.scale
+    )
+    prepared = time.perf_counter()
+    problem._warm_up()
+    problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
+    return problem
+
+
+class TasteGridProblem(ReferenceProblem):
+    """A grid problem with taste shocks; implements :class:`worker.problem.CompiledProblem`.
+
+    Policies are the most probable choice (flat C-order index over the
+    choices); ``choice_probabilities(policy)`` gives the (n, C) logit
+    probabilities of the last Bellman step, which ``policy_matrix``,
+    ``policy_reward`` and ``choice_values`` use.
+    """
+
+    def __init__(self, *args: Any, taste_scale: float, **kwargs: Any) -> None:
+        super().__init__(*args, **kwargs)
+        self.taste_scale = check_scale(taste_scale)
+        self._probabilities: np.ndarray | None = None
+        self._most_probable: np.ndarray | None = None
+        self._pair_nodes: tuple[np.ndarray, np.ndarray] | None = None
+        self._mixed: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+
+    def _choice_expected(self, v: np.ndarray) -> np.ndarray:
+        """(n, C): ``EV(x, c) = Σ_k w_k EVt[z, node_k(x, c)]``, the expected value of tomorrow after each choice."""
+        EVt = self._continuation(v)
+        R, next_base = self._tables[0], self._tables[1]
+        n, n_choices = R.shape
+        if not self._interpolated_strides:
+            n_shocks = EVt.shape[0]
+            per_shock = EVt[:, next_base]
+            return np.broadcast_to(per_shock[None], (n // n_shocks, n_shocks, n_choices)).reshape(n, n_choices)
+        return _interpolated_expected(self._tables, EVt, self._interpolated_strides, 0, n)
+
+    def choice_specific_values(self, v: np.ndarray) -> np.ndarray:
+        """(n, C) ``Q(x, c) = r(x, c) + β EV(x, c)`` at ``v``; ``-inf`` where a choice is not allowed."""
+        R = self._tables[0]
+        q = R + self.discount * self._choice_expected(v)
+        q[R == -np.inf] = -np.inf
+        return q
+
+    def bellman_step(
+        self,
+        v: np.ndarray,
+        *,
+        restricted: bool = False,
+        policy_guess: np.ndarray | None = None,
+        exhaustive: bool = False,
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """The smoothed step over every allowed choice; keeps its probabilities for evaluation.
+
+        Returns
+        -------
+        Tv : (n,) float64, ``s·log Σ_c exp(Q(x, c)/s)``
+        policy : (n,) int64, the most probable choice
+        """
+        value, self._probabilities, policy = smoothed_max(self.choice_specific_values(v), self.taste_scale)
+        self._most_probable = policy
+        self._mixed = None
+        return value, policy
+
+    def choice_probabilities(self, policy: np.ndarray) -> np.ndarray:
+        """(n, C) logit probabilities of the last Bellman step, whose most probable choices are ``policy``."""
+        if self._probabilities is None or self._most_probable is None:
+            raise ValueError("choice probabilities exist only after a Bellman step")
+        if not np.array_equal(self._most_probable, np.asarray(policy).reshape(-1)):
+            raise ValueError("the policy is not the most probable choice of the last Bellman step")
+        return self._probabilities
+
+    def choice_axes(self) -> dict[str, list[float]]:
+        """The choice axes of ``choice_probabilities``: per choice, its grid values."""
+        return {name: grid.tolist() for name, grid in zip(self._data.choices, self._data.choice_grids)}
+
+    def _nodes_of_pairs(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(index, weight)``, each (n, C, nodes): tomorrow's flat grid states of every pair and their weights
+        (0 where a pair is not allowed); computed once."""
+        if self._pair_nodes is not None:
+            return self._pair_nodes
+        R, next_base, lower, weight = self._tables
+        n, n_choices = R.shape
+        strides = self._interpolated_strides
+        nodes = self._layout.nodes
+        index = np.empty((n, n_choices, nodes), dtype=np.int64)
+        node_weight = np.empty((n, n_choices, nodes))
+        if not strides:
+            index[:, :, 0] = next_base[None, :]
+            node_weight[:, :, 0] = 1.0
+        else:
+            for corner in range(nodes):
+                bits, wk = _corner(weight, corner, len(strides))
+                node_weight[:, :, corner] = wk
+                index[:, :, corner] = next_base[None, :] + sum(
+                    stride * (lower[:, :, k].astype(np.int64) + bits[k]) for k, stride in enumerate(strides)
+                )
+        allowed = R != -np.inf
+        node_weight[~allowed] = 0.0
+        # A zero-weight corner beyond the grid's last point is never read: keep its index in range.
+        np.clip(index, 0, self._data.n_grid - 1, out=index)
+        self._pair_nodes = (index, node_weight)
+        return self._pair_nodes
+
+    def _mixture(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(r_π, index, weight)`` of the last Bellman step's probabilities, built once per step: every
+        pair's nodes as the nodes of one point, ``index`` (n, C·nodes) and ``weight = π(c|x)·w_k`` — the
+        form of a policy's nodes, so the compiled fixed-policy kernels evaluate the probabilities."""
+        probabilities = self.choice_probabilities(policy)
+        if self._mixed is None or self._mixed[0] is not probabilities:
+            index, weight = self._nodes_of_pairs()
+            n = index.shape[0]
+            mixed = (probabilities[:, :, None] * weight).reshape(n, -1)
+            reward = entropy_reward(self._tables[0], probabilities, self.taste_scale)
+            self._mixed = (probabilities, reward, index.reshape(n, -1), mixed)
+        return self._mixed[1], self._mixed[2], self._mixed[3]
+
+    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
+        """``P_π`` (n, n) CSR: every pair's nodes weighted by the pair's probability, times the shock chain."""
+        _, index, weight = self._mixture(policy)
+        indptr, indices, data = kernels.policy_csr(index, weight, self._data.transition)
+        return sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
+
+    def pair_transition(self) -> sp.csr_matrix:
+        """(n·C, n) CSR: row ``x·C + c`` is tomorrow's law after choice ``c`` at ``x`` (zero when not allowed)."""
+        index, weight = self._nodes_of_pairs()
+        n, n_choices, nodes = weight.shape
+        transition = self._data.transition
+        n_shocks = transition.shape[0]
+        shock = np.repeat(np.arange(n) % n_shocks, n_choices * nodes)
+        data = (weight.reshape(-1)[:, None] * transition[shock]).reshape(-1)
+        indices = (index.reshape(-1)[:, None] * n_shocks + np.arange(n_shocks)).reshape(-1)
+        indptr = np.arange(0, data.size + 1, nodes * n_shocks, dtype=np.int64)
+        return sp.csr_matrix((data, indices, indptr), shape=(n * n_choices, self.n))
+
+    def policy_reward(self, policy: np.ndarray) -> np.ndarray:
+        """``r_π = Σ_c π(c|x)·(r(x, c) − s·log π(c|x))``, shape (n,)."""
+        return self._mixture(policy)[0].copy()
+
+    def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
+        """``r_π + β P_π v``; (n,) → (n,)."""
+        reward, index, weight = self._mixture(policy)
+        return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
+
+    def policy_steps(  # type: ignore[override]
+        self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
+    ) -> tuple[np.ndarray, int, float]:
+        """Up to ``steps`` evaluation steps ``v ← r_π + β P_π v`` in one compiled call, on ``threads`` threads
+        from ``THREAD_MIN_STEP_POINTS`` points (see :data:`worker.problem.PolicySteps`)."""
+        reward, index, weight = self._mixture(policy)
+        out = np.array(v, dtype=np.float64).reshape(self.n)
+        if self._step_scratch is None:
+            self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
+        EVt, spare = self._step_scratch
+        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
+            done, span = self._threaded_steps(reward, index, weight, out, int(steps), float(span_stop))
+        else:
+            done, span = kernels.policy_steps(
+                reward, index, weight, self._data.transition, self.discount, out, int(steps), float(span_stop),
+                EVt, spare,
+            )
+        return out, int(done), float(span)
+
+    def _warm_up(self) -> None:
+        """Load (or compile once per machine) the fixed-policy kernel the evaluation steps use."""
+        node_index, node_weight = np.empty((0, 1), dtype=np.int64), np.empty((0, 1))
+        empty = np.empty(0)
+        kernels.policy_steps(empty, node_index, node_weight, self._data.transition, self.discount, empty, 1,
+                             -np.inf, np.zeros((self._data.n_shocks, 0)), empty)
+
+    def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
+        """Per choice, the (n,) expected chosen value under the probabilities."""
+        probabilities = self.choice_probabilities(policy)
+        parts = np.unravel_index(np.arange(self._data.n_choices), self._data.choice_sizes)
+        return {
+            name: probabilities @ grid[parts[j]]
+            for j, (name, grid) in enumerate(zip(self._data.choices, self._data.choice_grids))
+        }
