@@ -20,8 +20,10 @@ benchmark's own measure (:func:`baseline_egm.euler_errors`): the policy on the g
 between grid points, at ten test points per grid point, leaving out the points where the borrowing
 limit may bind (rule ``"limit_interval"``: within one grid step of the limit or the top, or in a grid
 interval at either end of which the policy is at the limit).  Beside them it prints, as a cross-check,
-the same measure under the rule fixq's diagnostic documents (``"grid_step"``, which leaves out only
-points within one grid step of an end) and fixq's own ``diagnostics.euler_errors``; for the baseline
+the same measure under a rule that leaves out only points within one grid step of an end
+(``"grid_step"``; fixq's diagnostic also leaves out, for a policy read linearly, the grid intervals at
+an end of which the choice is at an end of its grid, close to ``"limit_interval"``) and fixq's own
+``diagnostics.euler_errors``; for the baseline
 also the errors of its consumption function read along its endogenous grid.  Targets, printed with
 PASS or FAIL at 1,000 points: (c) a worst error of 10^-4.5 or better and (d) 10^-5 or better, each
 in no more than the baseline's time.

@@ -33,7 +33,9 @@ is what the trade does to measure how coarse the grid is, and the error so
 measured falls like the grid step.
 
 A test point is skipped and counted as ``constrained`` when the choice there
-is within one local grid step of an end of the grid of ``k``, or when moving
+is within one local grid step of an end of the grid of ``k`` (for a policy
+read linearly from the grid, also when the choice at either end of its grid
+interval is at an end of the grid: the limit may bind there), or when moving
 the choice by that step either way is not allowed (a feasibility expression
 fails or the reward is not finite): there the first-order condition need not
 hold with equality.  Points where a derivative or ``c̃`` is not a finite
@@ -243,6 +245,7 @@ def euler_errors(
     discount: float,
     policy: PolicyRule,
     distribution: np.ndarray | None = None,
+    at_end: np.ndarray | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of ``data``'s state grid.
 
@@ -258,6 +261,9 @@ def euler_errors(
         :func:`grid_policy` for a solved model.
     distribution : ndarray, optional
         The stationary distribution, (grid points, shock points), for ``weighted_mean_log10``.
+    at_end : ndarray, optional
+        (grid points, shock points): where the solved choice is at an end of its grid; test points in a
+        grid interval with such an end are counted as ``constrained`` (for a policy read linearly).
 
     Returns
     -------
@@ -275,6 +281,11 @@ def euler_errors(
              for start in range(0, k_all.size, rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
+    if at_end is not None:
+        # A test point between a grid point whose choice is at an end of its grid and one whose choice is not:
+        # the limit may bind there, where the policy read linearly says it does not.
+        interval = np.clip(np.searchsorted(grid, k_all, side="right") - 1, 0, grid.size - 2)
+        constrained |= at_end[interval] | at_end[interval + 1]
     measured = ~constrained & np.isfinite(log_error)
     undefined = ~constrained & ~measured
     result: dict[str, Any] = {
@@ -478,6 +489,9 @@ def euler_report(data: ModelData, discount: float, policy_values: np.ndarray,
     if not isinstance(found, EulerSetup):
         return None, found
     values = np.asarray(policy_values, dtype=np.float64).reshape(data.state_grids[0].size, data.n_shocks)
+    at_end = None
     if rule is None:
         rule = grid_policy(data.state_grids[0], values)
-    return euler_errors(data, found, discount, rule, distribution), None
+        grid = data.state_grids[0]
+        at_end = (values <= grid[0]) | (values >= grid[-1])
+    return euler_errors(data, found, discount, rule, distribution, at_end), None
