@@ -127,8 +127,11 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     static = static_choices(doc.model) if backend == "table" else ()
     data = reduce_static(full, static) if static else full
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
-    if plan.hints_active and layout.hinted_axis is None:
+    if plan.hints_active and (layout.hinted_axis is None or (backend == "expr" and static_choices(doc.model))):
+        # The plan's hints are for the choices left once the static ones are maximised out, which this storage
+        # does not do: its kernels would search along another choice.
         plan = _hints_dropped(plan, chosen)
+        layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, False)
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
@@ -220,8 +223,8 @@ def _bridged(
 
 
 def _hints_dropped(plan: GridPlan, reward_storage: str) -> GridPlan:
-    """``plan`` with its hints off, and a note saying so, when the forced ``reward_storage`` leaves several
-    choices to search together (the hinted search runs along one)."""
+    """``plan`` with its hints off, and a note saying so, when the forced ``reward_storage`` does not maximise
+    out the static choices the plan's hints were worked out without."""
     used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
     note = (
         f"the {used} hint{'s were' if ' and ' in used else ' was'} not used: reward storage `{reward_storage}` was "

@@ -1,10 +1,10 @@
 """Which of a grid model's speed hints the kernels can use, per choice, and why not where they cannot.
 
-The hinted searches run along one choice.  A model with several choices
-keeps its hints when its static choices (:mod:`worker.staticchoices`) are
-maximised out into tables and exactly one choice remains: ``monotone`` and
-``concave`` then apply to that choice as to a single choice, and
-``concave`` also to the maximisation over a single static choice (see
+The hinted searches run along one choice: the last of the choices that
+move tomorrow's state, once for every combination of the others, which are
+searched in full.  Static choices (:mod:`worker.staticchoices`) are
+maximised out into tables first when they fit; ``concave`` also applies to
+the maximisation over a single static choice (see
 :mod:`worker.statickernel`).  Every requested hint that cannot be used gets
 a note naming the hint, the choice and the reason; nothing is dropped
 silently.
@@ -14,8 +14,6 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from typing import Any
-
-from worker.staticchoices import unmoving_choices
 
 __all__ = ["HintUse", "hint_use"]
 
@@ -59,32 +57,20 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
     were = "s were" if " and " in asked else " was"
     choices = list(model.choices)
     dynamic = [name for name in choices if name not in static]
-    if len(choices) > 1:
+    if len(choices) > 1 and static and no_tables is not None:
         searched = f"every step searched all combinations of {_names(choices)}"
-        if not static:
-            why = (
-                f"no choice ({_names(choices)}) moves tomorrow's state, so none is set aside"
-                if len(unmoving_choices(model)) == len(choices)
-                else f"every choice ({_names(choices)}) moves tomorrow's state"
-            )
-            return HintUse(note=(
-                f"the {asked} hint{were} not used: with several choices, hints apply to the one choice left "
-                f"once the choices that affect nothing tomorrow are maximised out within the period, and here {why}; "
-                f"{searched}"
-            ))
-        if len(dynamic) > 1:
-            return HintUse(note=(
-                f"the {asked} hint{were} not used: after maximising out {_names(static)} within the period, "
-                f"{len(dynamic)} choices that move tomorrow's state remain ({_names(dynamic)}), and hints apply to "
-                f"one; {searched}"
-            ))
-        if no_tables is not None:
-            return HintUse(note=(
-                f"the {asked} hint{were} not used for `{dynamic[0]}`: {_names(static)} could not be maximised "
-                f"out within the period because {no_tables}; {searched}"
-            ))
-    name = dynamic[0]
+        return HintUse(note=(
+            f"the {asked} hint{were} not used for {_names(dynamic)}: {_names(static)} could not be maximised "
+            f"out within the period because {no_tables}; {searched}"
+        ))
+    name = dynamic[-1]
     notes = []
+    if len(dynamic) > 1:
+        notes.append(
+            f"the hints apply to `{name}`, the last of the choices that move tomorrow's state: it is searched with "
+            f"them once for every combination of {_names(dynamic[:-1])}, which are searched in full (the promises "
+            "are read for each such combination)"
+        )
     monotone = wants_monotone and model.choices[name].next_of is not None
     if wants_monotone and not monotone:
         notes.append(
@@ -104,8 +90,7 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
         if static_concave:
             words += (
                 f", and the concave hint to `{static[0]}`, maximised out by climbing from the best value at the "
-                f"neighbouring `{name}` (the promise is tested over every value of `{static[0]}` along a sample of "
-                f"lines, and should it fail there `{static[0]}` is searched in full)"
+                f"neighbouring `{name}` during the iterations (the verification searches `{static[0]}` in full)"
             )
         if monotone and static:
             sets = "which sets" if len(static) == 1 else "which set"

@@ -158,11 +158,12 @@ def test_broken_hint_still_gives_the_right_answer_and_a_warning(model: dict, hin
     assert not np.array_equal(problem.bellman_step(v, restricted=True)[1], problem.bellman_step(v)[1])
 
 
-def test_hints_are_ignored_with_a_note_when_they_cannot_apply() -> None:
+def test_hints_that_cannot_apply_to_a_choice_are_noted() -> None:
     problem = compiled(TWO_CHOICES, hints={"monotone": True, "concave": True})
-    assert not problem.hints_active
+    # With two choices the hints run along the last (`work`, a menu): concave applies, monotone cannot.
+    assert problem.hints_active and problem.hints.concave and not problem.hints.monotone
     notes = problem.diagnostics(np.zeros(problem.n, dtype=np.int64))["notes"]
-    assert any("hints were not used" in note and "moves tomorrow's state" in note for note in notes)
+    assert any("the monotone hint was not used" in note and "`work`" in note for note in notes)
     grid_choice = compiled(LQ, hints={"monotone": True, "concave": True})
     assert grid_choice.hints.concave and not grid_choice.hints.monotone
 

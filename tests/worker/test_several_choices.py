@@ -142,15 +142,21 @@ def test_static_tables_over_the_budget_say_why_the_hints_were_not_used() -> None
     assert grid_plan(doc.model, limits={"max_bytes": 4 * 120 * 40 * 16}).hints_active
 
 
-def test_hints_with_two_choices_that_both_move_tomorrow_are_reported() -> None:
+def test_hints_with_two_choices_that_both_move_tomorrow_apply_to_the_last_one() -> None:
+    # Both choices move tomorrow's state: the hinted search runs along `work` for every `a_next`, and the
+    # final unrestricted step verifies it, so the answer is the unhinted one.
     result = solve(document(TWO_CHOICES, hints=BOTH))
-    assert result["status"] == "converged"
+    plain = solve(document(TWO_CHOICES))
+    assert result["status"] == plain["status"] == "converged"
     diagnostics = result["diagnostics"]
-    assert diagnostics["hints"] == {"monotone": False, "concave": False}
-    assert any(
-        "the monotone and concave hints were not used" in note and "(`a_next`, `work`) moves tomorrow's state" in note
-        for note in diagnostics["notes"]
-    )
+    assert diagnostics["hints"] == {"monotone": False, "concave": True}
+    assert diagnostics["verification"]["hints_held"]
+    notes = " ".join(diagnostics["notes"])
+    assert "the hints apply to `work`" in notes and "every combination of `a_next`" in notes
+    assert "the monotone hint was not used" in notes
+    assert np.abs(np.array(result["value"]) - np.array(plain["value"])).max() <= (
+        result["error_bound"] + plain["error_bound"])
+    assert result["policy_index"] == plain["policy_index"]
 
 
 def test_static_tables_with_an_interpolated_state_match_numpy_evaluation() -> None:
@@ -191,7 +197,7 @@ def test_a_broken_concave_promise_along_hours_is_caught_and_hours_are_searched_i
     assert len(np.unique(h_index)) > 1
 
 
-def test_hints_with_choices_that_move_nothing_are_reported() -> None:
+def test_hints_with_choices_that_move_nothing_apply_to_the_last_one() -> None:
     model = {  # invented: the state drifts on its own, two choices only matter today
         "states": {"x": {"min": 0.0, "max": 1.0, "points": 5}},
         "choices": {"a": {"values": [0.0, 0.5, 1.0]}, "b": {"values": [0.0, 1.0]}},
@@ -199,6 +205,25 @@ def test_hints_with_choices_that_move_nothing_are_reported() -> None:
         "reward": "x - (a - 0.3)**2 - (b - 0.6)**2",
     }
     plan = grid_plan(parse_document(document(model, hints={"concave": True})).model)
-    assert not plan.hints_active and plan.reward_storage == "tables"
-    assert "the concave hint was not used" in plan.hint_note
-    assert "no choice (`a`, `b`) moves tomorrow's state" in plan.hint_note
+    assert plan.hints_active and plan.concave and not plan.monotone
+    assert "the hints apply to `b`" in plan.hint_note and "every combination of `a`" in plan.hint_note
+    hinted, plain = solve(document(model, hints={"concave": True})), solve(document(model))
+    assert hinted["policy_index"] == plain["policy_index"]
+    assert hinted["diagnostics"]["verification"]["hints_held"]
+
+def test_a_nested_hinted_search_along_the_last_choice_matches_the_exhaustive_one() -> None:
+    # TWO_CHOICES with the savings choice last: monotone and concave apply to `a_next`, searched once for every
+    # `work`; each storage's answer must be the unhinted one, and the hinted steps the exhaustive ones at v.
+    model = dict(TWO_CHOICES, choices={"work": TWO_CHOICES["choices"]["work"], "a_next": {"next_of": "a"}})
+    plain = solve(document(model))
+    for storage in ("tables", "on_the_fly"):
+        doc = parse_document(document(model, hints=BOTH))
+        problem = compile_grid(doc, reward_storage=storage)
+        assert problem.hints_active and problem.hints.monotone and problem.hints.concave
+        outcome = METHODS["howard"](problem, np.zeros(problem.n), tolerance=1e-9)
+        assert outcome.verification["hints_held"], storage
+        hinted_v, hinted_policy = problem.bellman_step(outcome.value, restricted=True)
+        exact_v, exact_policy = problem.bellman_step(outcome.value, exhaustive=True)
+        assert np.array_equal(hinted_policy, exact_policy) and np.array_equal(hinted_v, exact_v), storage
+        assert np.abs(outcome.value - np.array(plain["value"]).reshape(-1)).max() <= (
+            outcome.error_bound + plain["error_bound"])

@@ -35,8 +35,10 @@ class KernelLayout:
     backend : str
         ``expr`` or ``table``.
     hinted_axis : int or None
-        The state axis hinted searches run along (the single choice's own
-        state, or 0), or None when hints cannot be used.
+        The state axis hinted searches run along (the state the last choice
+        sets, or 0), or None when hints cannot be used.  With several choices
+        the hinted search runs along the last one, for every combination of
+        the others.
     pyramid_axis : int or None
         The single state axis whose next index varies within a block of the
         last choice (the bound then uses exact block maxima along it), or
@@ -97,8 +99,9 @@ def layout_for(
     else:
         bound_kind, pyramid_axis = "global", None
     hinted_axis = None
-    if hints_usable and n_choices == 1:
-        own = [t for t, j in enumerate(setter) if j == 0]
+    if hints_usable and n_choices >= 1:
+        # The hinted search runs along the last choice (with several, once for each combination of the others).
+        own = [t for t, j in enumerate(setter) if j == inner]
         hinted_axis = own[0] if own else 0
     return KernelLayout(n_states, n_shocks, n_choices, tuple(setter), backend, hinted_axis, pyramid_axis, bound_kind)
 

@@ -49,7 +49,9 @@ def bellman_full(writer: KernelWriter) -> str:
 
 
 def bellman_hinted(writer: KernelWriter) -> str:
-    """Source of ``bellman_hinted``: one choice, searched along the hinted axis."""
+    """Source of ``bellman_hinted``: one choice, searched along the hinted axis (several: :func:`_nested_hinted`)."""
+    if writer.q > 1:
+        return _nested_hinted(writer)
     axis = writer.layout.hinted_axis
     out = Lines()
     out.add(JIT)
@@ -90,6 +92,65 @@ def bellman_hinted(writer: KernelWriter) -> str:
                 out.add("out_v[i] = best", "out_policy[i] = chosen", "out_reward[i] = best_r")
                 with out.block("if chosen >= 0:"):
                     out.add("start = chosen")
+    return out.text()
+
+
+def _nested_hinted(writer: KernelWriter) -> str:
+    """``bellman_hinted`` for several choices: the hinted search runs along the last choice, once for every
+    combination of the others (all of them), along the hinted axis.
+
+    ``monotone`` starts each combination's search at that combination's choice
+    at the previous point of the line (the promise read per combination);
+    ``concave`` stops it past the peak.  The best over the combinations wins,
+    ties going to the lowest flat choice index, as in ``bellman_full``.
+    """
+    axis = writer.layout.hinted_axis
+    out = Lines()
+    out.add(JIT)
+    with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy, out_reward):"):
+        writer.prologue(out)
+        writer.n_choices(out, "NOUT", upto=writer.q - 1)
+        out.add("NX = EVt.shape[1]", f"M = {writer.meta.csize(writer.q - 1)}")
+        out.add(f"NH = {writer.meta.ssize(axis)}", f"INNER = {writer.meta.sstride(axis)}", "NLINES = NX // NH")
+        out.add("starts = np.zeros(NOUT, dtype=np.int64)")
+        with out.block("for task in range(NLINES * NZ):"):
+            out.add("iz = task % NZ", "line = task // NZ", "outer = line // INNER", "inner = line - outer * INNER")
+            out.add("x0 = outer * NH * INNER + inner")
+            with out.block("for co in range(NOUT):"):
+                out.add("starts[co] = 0")
+            with out.block("for t in range(NH):"):
+                out.add("ix = x0 + t * INNER", "i = ix * NZ + iz")
+                writer.state_setup(out, from_ix=True)
+                out.add("top = -np.inf", "top_choice = -1", "top_r = -np.inf")
+                with out.block("for co in range(NOUT):"):
+                    out.add(
+                        "first = starts[co] if monotone else 0", "best = -np.inf", "chosen = -1", "best_r = -np.inf",
+                        "falls = 0", "cl = first", "phase = 0", "stop = M",
+                    )
+                    with out.block("while True:"):
+                        with out.block("if cl >= stop:"):
+                            with out.block("if phase < 2 and chosen < 0 and first > 0:"):
+                                out.add("phase = 2", "cl = 0", "stop = first", "continue")
+                            out.add("break")
+                        out.add("c = co * M + cl")
+                        writer.evaluate(out)
+                        with out.block("if phase == 1 and not ok and concave:"):
+                            out.add("break")
+                        with out.block("if ok:"):
+                            with out.block("if val > best:"):
+                                out.add("best = val", "chosen = cl", "best_r = r", "falls = 0")
+                            with out.block("elif concave and phase == 1 and val < best:"):
+                                out.add("falls += 1")
+                                with out.block(f"if falls >= {HINT_PATIENCE}:"):
+                                    out.add("break")
+                            with out.block("if phase == 0:"):
+                                out.add("phase = 1")
+                        out.add("cl += 1")
+                    with out.block("if chosen >= 0:"):
+                        out.add("starts[co] = chosen")
+                        with out.block("if best > top:"):
+                            out.add("top = best", "top_choice = co * M + chosen", "top_r = best_r")
+                out.add("out_v[i] = top", "out_policy[i] = top_choice", "out_reward[i] = top_r")
     return out.text()
 
 
