@@ -323,9 +323,15 @@ class GridProblem(GridDiagnostics):
         parts = np.unravel_index(choices, self._data.choice_sizes)
         return sum(stride * parts[j] for stride, j in zip(self._strides, self._layout.setter))
 
+    def _evaluated(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """``(r_σ, node index, node weight)`` of the fixed policy the evaluation steps use (a subclass with
+        choice probabilities gives every pair's nodes, weighted by them)."""
+        reward, index, weight, _ = self._nodes(policy)
+        return reward, index, weight
+
     def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
         """``r_σ + β P_σ v``; (n,) → (n,).  Same bits as :meth:`bellman_step` at its own policy."""
-        reward, index, weight, _ = self._nodes(policy)
+        reward, index, weight = self._evaluated(policy)
         return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
 
     def policy_steps(
@@ -347,7 +353,7 @@ class GridProblem(GridDiagnostics):
         -------
         (the (n,) new value, steps applied, span of the last step's increment)
         """
-        reward, index, weight, _ = self._nodes(policy)
+        reward, index, weight = self._evaluated(policy)
         out = np.array(v, dtype=np.float64).reshape(self.n)
         if self._step_scratch is None:
             self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
@@ -395,11 +401,11 @@ class GridProblem(GridDiagnostics):
 
     def policy_reward(self, policy: np.ndarray) -> np.ndarray:
         """``r_σ``, shape (n,)."""
-        return self._nodes(policy)[0].copy()
+        return self._evaluated(policy)[0].copy()
 
     def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
         """``P_σ`` (n, n) CSR: interpolation nodes × shock transitions."""
-        _, index, weight, _ = self._nodes(policy)
+        _, index, weight = self._evaluated(policy)
         indptr, indices, data = kernels.policy_csr(index, weight, self._data.transition)
         return sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
 

@@ -27,9 +27,10 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from worker import _codegen, kernels, threadpool
+from worker import _codegen, kernels
 from worker.estimate import grid_plan
 from worker.feasibility import infeasible, model_data
+from worker.gridproblem import GridProblem
 from worker.gridtables import precompute_tables
 from worker.reference import ReferenceProblem, _corner, _interpolated_expected
 from worker.taste import check_scale, entropy_reward, smoothed_max
@@ -175,12 +176,6 @@ class TasteGridProblem(ReferenceProblem):
             self._mixed = (probabilities, reward, index.reshape(n, -1), mixed)
         return self._mixed[1], self._mixed[2], self._mixed[3]
 
-    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
-        """``P_π`` (n, n) CSR: every pair's nodes weighted by the pair's probability, times the shock chain."""
-        _, index, weight = self._mixture(policy)
-        indptr, indices, data = kernels.policy_csr(index, weight, self._data.transition)
-        return sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
-
     def pair_transition(self) -> sp.csr_matrix:
         """(n·C, n) CSR: row ``x·C + c`` is tomorrow's law after choice ``c`` at ``x`` (zero when not allowed)."""
         index, weight = self._nodes_of_pairs()
@@ -193,33 +188,13 @@ class TasteGridProblem(ReferenceProblem):
         indptr = np.arange(0, data.size + 1, nodes * n_shocks, dtype=np.int64)
         return sp.csr_matrix((data, indices, indptr), shape=(n * n_choices, self.n))
 
-    def policy_reward(self, policy: np.ndarray) -> np.ndarray:
-        """``r_π = Σ_c π(c|x)·(r(x, c) − s·log π(c|x))``, shape (n,)."""
-        return self._mixture(policy)[0].copy()
-
-    def policy_step(self, v: np.ndarray, policy: np.ndarray) -> np.ndarray:
-        """``r_π + β P_π v``; (n,) → (n,)."""
-        reward, index, weight = self._mixture(policy)
-        return kernels.policy_value(reward, index, weight, self._continuation(v), self.discount)
+    _evaluated = _mixture
 
     def policy_steps(  # type: ignore[override]
         self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
     ) -> tuple[np.ndarray, int, float]:
-        """Up to ``steps`` evaluation steps ``v ← r_π + β P_π v`` in one compiled call, on ``threads`` threads
-        from ``THREAD_MIN_STEP_POINTS`` points (see :data:`worker.problem.PolicySteps`)."""
-        reward, index, weight = self._mixture(policy)
-        out = np.array(v, dtype=np.float64).reshape(self.n)
-        if self._step_scratch is None:
-            self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
-        EVt, spare = self._step_scratch
-        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
-            done, span = self._threaded_steps(reward, index, weight, out, int(steps), float(span_stop))
-        else:
-            done, span = kernels.policy_steps(
-                reward, index, weight, self._data.transition, self.discount, out, int(steps), float(span_stop),
-                EVt, spare,
-            )
-        return out, int(done), float(span)
+        """Compiled, threaded evaluation steps of the probabilities (the reference problem has none)."""
+        return GridProblem.policy_steps(self, v, policy, steps, span_stop)
 
     def _warm_up(self) -> None:
         """Load (or compile once per machine) the fixed-policy kernel the evaluation steps use."""

@@ -49,62 +49,17 @@ def bellman_full(writer: KernelWriter) -> str:
 
 
 def bellman_hinted(writer: KernelWriter) -> str:
-    """Source of ``bellman_hinted``: one choice, searched along the hinted axis (several: :func:`_nested_hinted`)."""
-    if writer.q > 1:
-        return _nested_hinted(writer)
-    axis = writer.layout.hinted_axis
-    out = Lines()
-    out.add(JIT)
-    with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy, out_reward):"):
-        writer.prologue(out)
-        out.add("NX = EVt.shape[1]", f"M = {writer.meta.csize(0)}")
-        out.add(f"NH = {writer.meta.ssize(axis)}", f"INNER = {writer.meta.sstride(axis)}", "NLINES = NX // NH")
-        with out.block("for task in range(NLINES * NZ):"):
-            out.add("iz = task % NZ", "line = task // NZ", "outer = line // INNER", "inner = line - outer * INNER")
-            out.add("x0 = outer * NH * INNER + inner", "start = 0")
-            with out.block("for t in range(NH):"):
-                out.add("ix = x0 + t * INNER", "i = ix * NZ + iz")
-                writer.state_setup(out, from_ix=True)
-                # One evaluation site, three phases: 0 skips a leading infeasible stretch from the
-                # start, 1 climbs, 2 searches below a monotone start that had nothing allowed above it.
-                out.add(
-                    "first = start if monotone else 0", "best = -np.inf", "chosen = -1", "best_r = -np.inf", "falls = 0"
-                )
-                out.add("c = first", "phase = 0", "stop = M")
-                with out.block("while True:"):
-                    with out.block("if c >= stop:"):
-                        with out.block("if phase < 2 and chosen < 0 and first > 0:"):
-                            out.add("phase = 2", "c = 0", "stop = first", "continue")
-                        out.add("break")
-                    writer.evaluate(out)
-                    with out.block("if phase == 1 and not ok and concave:"):
-                        out.add("break")
-                    with out.block("if ok:"):
-                        with out.block("if val > best:"):
-                            out.add("best = val", "chosen = c", "best_r = r", "falls = 0")
-                        with out.block("elif concave and phase == 1 and val < best:"):
-                            out.add("falls += 1")
-                            with out.block(f"if falls >= {HINT_PATIENCE}:"):
-                                out.add("break")
-                        with out.block("if phase == 0:"):
-                            out.add("phase = 1")
-                    out.add("c += 1")
-                out.add("out_v[i] = best", "out_policy[i] = chosen", "out_reward[i] = best_r")
-                with out.block("if chosen >= 0:"):
-                    out.add("start = chosen")
-    return out.text()
+    """Source of ``bellman_hinted``: the hinted search along the last choice and the hinted axis.
 
-
-def _nested_hinted(writer: KernelWriter) -> str:
-    """``bellman_hinted`` for several choices: the hinted search runs along the last choice, once for every
-    combination of the others (all of them), along the hinted axis.
-
-    ``monotone`` starts each combination's search at that combination's choice
-    at the previous point of the line (the promise read per combination);
-    ``concave`` stops it past the peak.  The best over the combinations wins,
-    ties going to the lowest flat choice index, as in ``bellman_full``.
+    With one choice, one search per point; with several, one for every
+    combination ``co`` of the others (all of them), and the best over the
+    combinations wins, ties going to the lowest flat choice index as in
+    ``bellman_full``.  ``monotone`` starts each search at the choice the same
+    combination made at the previous point of the line (the promise read per
+    combination); ``concave`` stops it past the peak.
     """
     axis = writer.layout.hinted_axis
+    nested = writer.q > 1
     out = Lines()
     out.add(JIT)
     with out.block("def bellman_hinted(EVt, beta, ctx, monotone, concave, out_v, out_policy, out_reward):"):
@@ -123,35 +78,45 @@ def _nested_hinted(writer: KernelWriter) -> str:
                 writer.state_setup(out, from_ix=True)
                 out.add("top = -np.inf", "top_choice = -1", "top_r = -np.inf")
                 with out.block("for co in range(NOUT):"):
-                    out.add(
-                        "first = starts[co] if monotone else 0", "best = -np.inf", "chosen = -1", "best_r = -np.inf",
-                        "falls = 0", "cl = first", "phase = 0", "stop = M",
-                    )
-                    with out.block("while True:"):
-                        with out.block("if cl >= stop:"):
-                            with out.block("if phase < 2 and chosen < 0 and first > 0:"):
-                                out.add("phase = 2", "cl = 0", "stop = first", "continue")
-                            out.add("break")
-                        out.add("c = co * M + cl")
-                        writer.evaluate(out)
-                        with out.block("if phase == 1 and not ok and concave:"):
-                            out.add("break")
-                        with out.block("if ok:"):
-                            with out.block("if val > best:"):
-                                out.add("best = val", "chosen = cl", "best_r = r", "falls = 0")
-                            with out.block("elif concave and phase == 1 and val < best:"):
-                                out.add("falls += 1")
-                                with out.block(f"if falls >= {HINT_PATIENCE}:"):
-                                    out.add("break")
-                            with out.block("if phase == 0:"):
-                                out.add("phase = 1")
-                        out.add("cl += 1")
+                    _line_search(out, writer, "co * M + cl" if nested else "cl")
                     with out.block("if chosen >= 0:"):
                         out.add("starts[co] = chosen")
                         with out.block("if best > top:"):
                             out.add("top = best", "top_choice = co * M + chosen", "top_r = best_r")
                 out.add("out_v[i] = top", "out_policy[i] = top_choice", "out_reward[i] = top_r")
     return out.text()
+
+
+def _line_search(out: Lines, writer: KernelWriter, flat: str) -> None:
+    """The hinted search along the last choice ``cl`` (flat choice ``flat``): sets ``best``, ``chosen``, ``best_r``.
+
+    One evaluation site, three phases: 0 skips a leading infeasible stretch
+    from the start, 1 climbs, 2 searches below a monotone start that had
+    nothing allowed above it.
+    """
+    out.add(
+        "first = starts[co] if monotone else 0", "best = -np.inf", "chosen = -1", "best_r = -np.inf", "falls = 0",
+        "cl = first", "phase = 0", "stop = M",
+    )
+    with out.block("while True:"):
+        with out.block("if cl >= stop:"):
+            with out.block("if phase < 2 and chosen < 0 and first > 0:"):
+                out.add("phase = 2", "cl = 0", "stop = first", "continue")
+            out.add("break")
+        out.add(f"c = {flat}")
+        writer.evaluate(out)
+        with out.block("if phase == 1 and not ok and concave:"):
+            out.add("break")
+        with out.block("if ok:"):
+            with out.block("if val > best:"):
+                out.add("best = val", "chosen = cl", "best_r = r", "falls = 0")
+            with out.block("elif concave and phase == 1 and val < best:"):
+                out.add("falls += 1")
+                with out.block(f"if falls >= {HINT_PATIENCE}:"):
+                    out.add("break")
+            with out.block("if phase == 0:"):
+                out.add("phase = 1")
+        out.add("cl += 1")
 
 
 def policy_nodes(writer: KernelWriter) -> str:
