@@ -41,6 +41,7 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.drawnames import draw_count, draw_table_bytes
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
@@ -181,12 +182,13 @@ def precompute_budget(limits: dict[str, Any] | None = None) -> int:
 def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str = "howard") -> GridPlan:
     """Sizes and reward storage of a validated ``GridModel``, from sizes alone."""
     grid_states = math.prod(axis.size for axis in model.states.values())
-    shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
+    shocks = math.prod(shock.size for shock in model.shocks.values() if not shock.after_choice)
     choices = math.prod(choice.size for choice in model.choices.values())
     n = grid_states * shocks
     pairs = n * choices
     interpolated = sum(1 for name in model.states if name in model.next)
-    nodes = 2**interpolated
+    draws = draw_count(model)  # after the choice: every draw's nodes, and tables the only storage (worker.draws)
+    nodes = 2**interpolated * (draws if draws and interpolated else 1)
     taste = getattr(model, "taste_shocks", None) is not None
     # With taste shocks every combination of the choices carries its own shock: none is maximised out.
     static = () if taste else static_choices(model)
@@ -195,7 +197,8 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
     common = _grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
-    table_bytes = n * table_choices * (8 + 12 * interpolated + (8 if static else 0))
+    table_bytes = draw_table_bytes(pairs, draws, interpolated) if draws else n * table_choices * (
+        8 + 12 * interpolated + (8 if static else 0))
     chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
     precompute_bytes = common + table_bytes + chunk
     # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
@@ -219,7 +222,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         f"the precompute budget of {budget / _MIB:,.0f} MiB"
     ))
     monotone, concave, note = use.monotone, use.concave, use.note
-    if (monotone or concave) and not static:
+    if (monotone or concave) and not static and not (draws and fits):
         reward_storage = "on_the_fly"
         reason = (
             "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "

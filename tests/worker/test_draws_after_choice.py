@@ -1,0 +1,345 @@
+"""Draws revealed after the choice (``"timing": "after_choice"``) on grid models.
+
+References named beside each check:
+
+* An independent plain-numpy value iteration written here (``plain_value_iteration``) on the dense
+  reward ``R[s, a]`` and transition ``P[s, a, s']`` arrays each model's builder below writes by hand
+  from the invented scenario's description, with its own linear interpolation and its own
+  expectation over the draws.
+* The stationary distribution of the policy's transition matrix, as the left eigenvector of
+  eigenvalue 1 from ``numpy.linalg.eig``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from tests._documents import grid_document
+from worker import solve
+from worker.errors import InvalidDocument, TooLarge
+from worker.solvers import GENERAL_METHODS
+
+# ---- the invented models ------------------------------------------------------------------------------------
+
+TOP = 24
+WEAR = [0.0, 1.0, 2.0]
+
+
+def machine() -> dict:
+    """An invented press: mileage 0..TOP, keep (0) or replace (1) at 6; half a unit of wear per wear draw seen
+    after the decision, a new press wearing less (its probabilities depend on the choice)."""
+    return {
+        "states": {"mileage": {"min": 0, "max": TOP, "points": TOP + 1}},
+        "shocks": {"wear": {"iid": {"values": WEAR, "probs": ["0.3 + 0.2 * replace", "0.5", "0.2 - 0.2 * replace"]},
+                            "timing": "after_choice"}},
+        "choices": {"replace": {"values": [0, 1]}},
+        "next": {"mileage": f"min((1 - replace) * mileage + 0.5 * wear, {TOP})"},
+        "reward": "-(1 - replace) * 0.25 * mileage - replace * 6 - 0.3 * wear",
+    }
+
+
+def machine_arrays() -> tuple[np.ndarray, np.ndarray]:
+    mileage = np.arange(TOP + 1, dtype=float)
+    S = mileage.size
+    R = np.empty((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        probs = np.array([0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a])
+        R[:, a] = -(1 - a) * 0.25 * mileage - a * 6 - 0.3 * (probs @ np.array(WEAR))
+        for wear, p in zip(WEAR, probs):
+            x = np.minimum((1 - a) * mileage + 0.5 * wear, TOP)
+            low = np.minimum(np.floor(x).astype(int), TOP - 1)
+            frac = x - low
+            P[np.arange(S), a, low] += p * (1 - frac)
+            P[np.arange(S), a, low + 1] += p * frac
+    return R, P
+
+
+SEPARATION = 0.25
+WAGES = [1.0, 1.5, 2.0, 2.5, 3.0]
+OFFER_PROBS = [0.3, 0.25, 0.2, 0.15, 0.1]
+EFFORTS = [0.0, 0.5, 1.0]
+
+
+def job_search() -> dict:
+    """An invented worker: unemployed (status 0, benefit 1.1) or employed at a wage; an offer seen before the
+    choice; accept it, or (employed) choose an effort that lowers the chance of losing the job, revealed after
+    the choice, with a severance payment of 0.4 on separation."""
+    sep = f"{SEPARATION} * (1 - 0.7 * effort)"
+    return {
+        "params": {"benefit": 1.1, "severance": 0.4},
+        "states": {"status": {"values": [0, 1]}, "wage": {"values": WAGES}},
+        "shocks": {
+            "offer": {"iid": {"values": WAGES, "probs": OFFER_PROBS}},
+            "separated": {"iid": {"values": [0, 1], "probs": [f"1 - {sep}", sep]}, "timing": "after_choice"},
+        },
+        "choices": {"accept": {"values": [0, 1]}, "effort": {"values": EFFORTS}},
+        "feasible": ["status == 1 or effort == 0", "status == 0 or accept == 0"],
+        "define": {"working": "max(status, accept)"},
+        "next": {
+            "status": "working * (1 - separated)",
+            "wage": "where(status == 1, wage, where(accept == 1, offer, wage))",
+        },
+        "reward": "where(status == 1, wage - 0.6 * effort ** 2 + severance * separated, benefit)",
+    }
+
+
+def job_search_arrays() -> tuple[np.ndarray, np.ndarray]:
+    nw = len(WAGES)
+    S, A = 2 * nw * nw, 2 * len(EFFORTS)
+    R = np.full((S, A), -np.inf)
+    P = np.zeros((S, A, S))
+    offer_probs = np.array(OFFER_PROBS)
+    for status in range(2):
+        for w in range(nw):
+            for o in range(nw):
+                s = (status * nw + w) * nw + o
+                for accept in range(2):
+                    for e, effort in enumerate(EFFORTS):
+                        a = accept * len(EFFORTS) + e
+                        if (status == 0 and effort != 0) or (status == 1 and accept == 1):
+                            continue
+                        sep = SEPARATION * (1 - 0.7 * effort)
+                        if status == 1:
+                            R[s, a] = WAGES[w] - 0.6 * effort**2 + 0.4 * sep
+                        else:
+                            R[s, a] = 1.1
+                        working = max(status, accept)
+                        wage = w if status == 1 or accept == 0 else o
+                        for separated, p in ((0, 1 - sep), (1, sep)):
+                            status_next = working * (1 - separated)
+                            P[s, a, (status_next * nw + wage) * nw : (status_next * nw + wage + 1) * nw] += (
+                                p * offer_probs
+                            )
+    return R, P
+
+
+STOCK = 8
+DEMAND = [0.0, 1.0, 2.0, 3.0]
+
+
+def inventory() -> dict:
+    """An invented corner shop: stock 0..STOCK, an order placed (fixed cost 2 when positive, 1 a unit) and a
+    price set before the day's demand is seen; a higher price makes low demand more likely."""
+    shift = "(price - 4)"
+    return {
+        "params": {"unit_cost": 1.0, "fixed_cost": 2.0, "holding": 0.1},
+        "states": {"stock": {"min": 0, "max": STOCK, "points": STOCK + 1}},
+        "shocks": {"demand": {"iid": {"values": DEMAND, "probs": [
+            f"0.1 + 0.1 * {shift}", f"0.3 + 0.05 * {shift}", f"0.4 - 0.1 * {shift}", f"0.2 - 0.05 * {shift}",
+        ]}, "timing": "after_choice"}},
+        "choices": {"order": {"min": 0, "max": STOCK, "points": STOCK + 1}, "price": {"values": [4, 6]}},
+        "feasible": ["stock + order <= 8"],
+        "define": {"sold": "min(stock + order, demand)"},
+        "next": {"stock": "stock + order - sold"},
+        "reward": "price * sold - unit_cost * order - fixed_cost * (order > 0) - holding * (stock + order - sold)",
+    }
+
+
+def inventory_arrays() -> tuple[np.ndarray, np.ndarray]:
+    S = STOCK + 1
+    prices = [4.0, 6.0]
+    R = np.full((S, S * 2), -np.inf)
+    P = np.zeros((S, S * 2, S))
+    for x in range(S):
+        for q in range(S):
+            for j, price in enumerate(prices):
+                a = q * 2 + j
+                if x + q > STOCK:
+                    continue
+                shift = price - 4
+                probs = [0.1 + 0.1 * shift, 0.3 + 0.05 * shift, 0.4 - 0.1 * shift, 0.2 - 0.05 * shift]
+                R[x, a] = 0.0
+                for d, p in zip(DEMAND, probs):
+                    sold = min(x + q, d)
+                    R[x, a] += p * (price * sold - q - 2.0 * (q > 0) - 0.1 * (x + q - sold))
+                    P[x, a, int(x + q - sold)] += p
+    return R, P
+
+
+def plain_value_iteration(R: np.ndarray, P: np.ndarray, beta: float) -> tuple[np.ndarray, np.ndarray]:
+    """Independent reference: value iteration on dense arrays until the MacQueen-Porteus gap is below 1e-12."""
+    v = np.zeros(R.shape[0])
+    while True:
+        q = R + beta * (P @ v)
+        new = q.max(axis=1)
+        gap = np.abs(new - v).max()
+        v = new
+        if beta / (1 - beta) * gap < 1e-12:
+            return v, q.argmax(axis=1)
+
+
+MODELS = {"machine": (machine, machine_arrays), "job_search": (job_search, job_search_arrays),
+          "inventory": (inventory, inventory_arrays)}
+
+# ---- against the plain numpy solver --------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_each_model_matches_an_independent_numpy_value_iteration_within_the_bound(name):
+    build, arrays = MODELS[name]
+    beta = 0.93
+    reference, _ = plain_value_iteration(*arrays(), beta)
+    result = solve(grid_document(build(), discount=beta, method="value_iteration", tolerance=1e-7))
+    assert result["status"] == "converged"
+    value = np.asarray(result["value"]).reshape(-1)
+    assert np.abs(value - reference).max() <= result["error_bound"]
+    assert "wear" not in result["axes"] and "separated" not in result["axes"] and "demand" not in result["axes"]
+
+
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_all_three_methods_agree_within_their_bounds(name):
+    build, arrays = MODELS[name]
+    beta = 0.93
+    reference, _ = plain_value_iteration(*arrays(), beta)
+    for method in sorted(GENERAL_METHODS):
+        result = solve(grid_document(build(), discount=beta, method=method, tolerance=1e-8))
+        assert result["status"] == "converged", method
+        value = np.asarray(result["value"]).reshape(-1)
+        assert np.abs(value - reference).max() <= max(result["error_bound"], 1e-9), method
+
+
+def test_the_draws_move_the_answer():
+    # The same machine with the wear drawn before the choice (an axis of the value) is another model: its
+    # value averaged over the wear draw differs (the decision then sees the wear it is about to suffer).
+    before = machine()
+    before["shocks"]["wear"] = {"iid": {"values": WEAR, "probs": [0.4, 0.5, 0.1]}}
+    after = solve(grid_document(machine(), discount=0.93))
+    seen = solve(grid_document(before, discount=0.93))
+    assert np.asarray(after["value"]).shape == (TOP + 1,)
+    assert np.asarray(seen["value"]).shape == (TOP + 1, 3)
+    assert np.abs(np.asarray(seen["value"]) @ np.array([0.4, 0.5, 0.1]) - np.asarray(after["value"])).max() > 0.01
+
+
+def test_the_policy_matches_the_numpy_policy_on_the_job_search_model():
+    R, P = job_search_arrays()
+    _, policy = plain_value_iteration(R, P, 0.95)
+    result = solve(grid_document(job_search(), discount=0.95, method="policy_iteration", tolerance=1e-10))
+    accept = np.asarray(result["policy_index"]["accept"]).reshape(-1)
+    effort = np.asarray(result["policy_index"]["effort"]).reshape(-1)
+    np.testing.assert_array_equal(accept * len(EFFORTS) + effort, policy)
+    # Effort lowers the separation chance: employed workers at high wages exert some.
+    assert effort.reshape(2, 5, 5)[1, -1].min() > 0
+
+
+# ---- the report ------------------------------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("name", ["machine", "inventory"])
+def test_stationary_distribution_matches_a_numpy_eigenvector(name):
+    build, arrays = MODELS[name]
+    R, P = arrays()
+    document = grid_document(build(), discount=0.93, method="policy_iteration", tolerance=1e-10)
+    document["report"] = {"stationary": True, "simulation": {"periods": 400, "paths": 200, "seed": 3}}
+    result = solve(document)
+    index = result["policy_index"]
+    if name == "machine":
+        policy = np.asarray(index["replace"])
+    else:
+        policy = np.asarray(index["order"]) * 2 + np.asarray(index["price"])
+    chain = P[np.arange(P.shape[0]), policy.reshape(-1)]
+    # Reference: numpy.linalg.eig of the policy's transition, the left eigenvector of eigenvalue 1.
+    values, vectors = np.linalg.eig(chain.T)
+    pi = np.real(vectors[:, np.argmin(np.abs(values - 1.0))])
+    pi /= pi.sum()
+    np.testing.assert_allclose(np.asarray(result["stationary"]["distribution"]).reshape(-1), pi, atol=1e-9)
+    state = "mileage" if name == "machine" else "stock"
+    grid = np.arange(P.shape[0], dtype=float)
+    # Seeded paths of 80,000 periods in all: 0.15 of a grid unit (common practice for a seeded check).
+    assert result["simulation"]["summary"][state]["mean"] == pytest.approx(float(pi @ grid), abs=0.15)
+    first = result["simulation"]["first_path"][state]
+    # Tomorrow's stock never exceeds today's stock plus the order: demand is drawn after it, never negative.
+    if name == "inventory":
+        order = result["simulation"]["first_path"]["order"]
+        assert all(b <= a + q + 1e-12 for a, q, b in zip(first[:-1], order[:-1], first[1:]))
+
+
+# ---- the checks ------------------------------------------------------------------------------------------------
+
+
+def test_probabilities_that_do_not_sum_to_one_are_refused_naming_the_point_and_choice():
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"] = ["0.3 + 0.2 * replace", "0.5", "0.2 - 0.1 * replace"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = caught.value.errors[0]
+    assert error["path"] == "model.shocks.wear.iid.probs"
+    assert "mileage = 0" in error["message"] and "replace = 1" in error["message"]
+    assert "sum 1.1" in error["message"]
+
+
+def test_negative_probabilities_are_refused():
+    model = inventory()
+    model["shocks"]["demand"]["iid"]["probs"][0] = "0.1 - 0.1 * (price - 4)"
+    model["shocks"]["demand"]["iid"]["probs"][2] = "0.4 + 0.1 * (price - 4)"
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = caught.value.errors[0]
+    assert error["path"] == "model.shocks.demand.iid.probs"
+    assert "price = 6" in error["message"] and "non-negative" in error["message"]
+
+
+def test_names_are_checked():
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"][1] = "0.5 + 0 * speed"
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert any(e["path"] == "model.shocks.wear.iid.probs[1]" and "speed" in e["message"]
+               for e in caught.value.errors)
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"][1] = "0.5 + 0 * wear"
+    model["feasible"] = ["wear < 3"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    paths = {e["path"] for e in caught.value.errors}
+    assert {"model.shocks.wear.iid.probs[1]", "model.feasible[0]"} <= paths
+
+
+def test_expressions_need_the_after_choice_timing_and_after_choice_needs_iid():
+    model = machine()
+    del model["shocks"]["wear"]["timing"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.iid.probs"
+    model = machine()
+    model["shocks"]["wear"] = {"markov": {"values": [0, 1], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
+                               "timing": "after_choice"}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
+
+
+def test_taste_shocks_and_continuous_choices_are_refused_with_draws():
+    model = {**machine(), "taste_shocks": {"scale": 0.5}}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
+    model = {
+        "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
+        "shocks": {"luck": {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "define": {"c": "k**0.3 - k_next"},
+        "reward": "log(c)",
+        "feasible": ["c > 0"],
+    }
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = next(e for e in caught.value.errors if e["path"] == "model.shocks.luck.timing")
+    assert "continuous" in error["message"]
+
+
+def test_tables_over_the_budget_are_refused_at_the_draw():
+    with pytest.raises(TooLarge) as caught:
+        solve(grid_document(job_search()), limits={"max_bytes": 40_000})
+    assert caught.value.errors[0]["path"] == "model.shocks.separated.timing"
+
+
+def test_hints_still_apply_and_are_verified():
+    # Replacing is worth more as the press wears: the policy is monotone in mileage along a next_of-free menu,
+    # so the hint is about the concave search on the one choice; it must give the exact answer.
+    R, P = machine_arrays()
+    reference, _ = plain_value_iteration(R, P, 0.93)
+    result = solve(grid_document(machine(), discount=0.93, hints={"concave": True}, tolerance=1e-8))
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    assert result["diagnostics"]["reward_storage"] == "tables"
