@@ -92,7 +92,8 @@ def draw_probabilities(
     """Probabilities ``(K, rows, columns)`` of every combination of the draws at a block of (point, choice) pairs.
 
     Each draw's probabilities are checked where the pair is feasible: finite, non-negative, summing to one
-    (within ``ROW_SUM_TOLERANCE``).  ``describe(r, c)`` names the block's pair ``(r, c)`` in the error.
+    (both within ``ROW_SUM_TOLERANCE``; a probability that far below 0, a rounding error, counts as 0).
+    ``describe(r, c)`` names the block's pair ``(r, c)`` in the error.
 
     Raises
     ------
@@ -105,7 +106,8 @@ def draw_probabilities(
             table = np.stack([np.broadcast_to(np.asarray(evaluate(e, env) if isinstance(e, Expression) else e,
                                                          dtype=np.float64), shape) for e in entries])
         total = table.sum(axis=0)
-        wrong = feasible & ~(np.isfinite(table).all(axis=0) & (table >= 0).all(axis=0)
+        # An expression that should give 0 may round to -1e-17: that much below 0 counts as 0.
+        wrong = feasible & ~(np.isfinite(table).all(axis=0) & (table >= -ROW_SUM_TOLERANCE).all(axis=0)
                              & (np.abs(total - 1.0) <= ROW_SUM_TOLERANCE))
         if wrong.any():
             r, c = np.argwhere(wrong)[0]
@@ -116,7 +118,7 @@ def draw_probabilities(
                 f"must be non-negative and sum to 1 (within {ROW_SUM_TOLERANCE:g}) at every point and feasible "
                 "choice",
             )
-        per_draw.append(np.where(feasible, table, 0.0))
+        per_draw.append(np.where(feasible, np.maximum(table, 0.0), 0.0))
     out = per_draw[0]
     for table in per_draw[1:]:
         out = (out[:, None] * table[None, :]).reshape(-1, *shape)

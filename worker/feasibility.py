@@ -335,7 +335,7 @@ def feasibility_scan(data: ModelData, budget_s: float | None) -> dict[str, Any]:
         columns = order[position : position + width]
         position += columns.size
         width = min(2 * width, FEASIBILITY_MAX_PASS)
-        rows_per_chunk = max(1, CHUNK_ELEMENTS // columns.size)
+        rows_per_chunk = max(1, CHUNK_ELEMENTS // (columns.size * (data.draws.size if data.draws is not None else 1)))
         resolved = np.zeros(active.size, dtype=bool)
         for start in range(0, active.size, rows_per_chunk):
             rows = active[start : start + rows_per_chunk]

@@ -74,6 +74,12 @@ class GridDiagnostics:
                 f"{names} affect{'s' if len(self._static) == 1 else ''} nothing tomorrow: maximised out within the "
                 "period once, with the reward tables, for each value of the other choices"
             )
+        if data.draws is not None:
+            names = ", ".join(f"`{name}`" for name in data.draws.names)
+            notes.append(
+                f"{names} drawn after the choice ({data.draws.size:,} combinations), integrated out within the "
+                "period: rewards are expectations over the draws and tomorrow's point the mixture over them"
+            )
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
         missed = self._counts.get("climb_missed")

@@ -147,7 +147,8 @@ def precompute_tables(
 
     # The chunks are those of one thread whatever the threads, so every entry has the same bits; up to
     # TABLE_CHUNKS_AT_ONCE of them are evaluated at once (each holds its own temporaries).
-    rows_per_chunk = max(1, CHUNK_ELEMENTS // n_all)
+    # With draws after the choice a chunk holds every draw's values: fewer rows keep its temporaries the same size.
+    rows_per_chunk = max(1, CHUNK_ELEMENTS // (n_all * (data.draws.size if data.draws is not None else 1)))
     chunks = [(start, min(n, start + rows_per_chunk)) for start in range(0, n, rows_per_chunk)]
     at_once = min(threadpool.threads_for(n, n_all), threadpool.TABLE_CHUNKS_AT_ONCE)
     parts = []

@@ -343,3 +343,61 @@ def test_hints_still_apply_and_are_verified():
     result = solve(grid_document(machine(), discount=0.93, hints={"concave": True}, tolerance=1e-8))
     assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
     assert result["diagnostics"]["reward_storage"] == "tables"
+
+
+def test_two_draws_are_drawn_independently_and_a_define_may_use_them():
+    # The press with a second draw after the choice: a breakdown (probability 0.1, or 0.02 right after a
+    # replacement) that costs 3 and adds one more half unit of wear; a define combines both draws.
+    model = machine()
+    model["shocks"]["breakdown"] = {
+        "iid": {"values": [0, 1], "probs": ["0.9 + 0.08 * replace", "0.1 - 0.08 * replace"]},
+        "timing": "after_choice",
+    }
+    model["define"] = {"moved": "0.5 * (wear + breakdown)"}
+    model["next"] = {"mileage": f"min((1 - replace) * mileage + moved, {TOP})"}
+    model["reward"] = "-(1 - replace) * 0.25 * mileage - replace * 6 - 0.3 * wear - 3 * breakdown"
+    mileage = np.arange(TOP + 1, dtype=float)
+    S = mileage.size
+    R = np.zeros((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        wear_probs = [0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a]
+        breakdown_probs = [0.9 + 0.08 * a, 0.1 - 0.08 * a]
+        for wear, p in zip(WEAR, wear_probs):
+            for breakdown, q in zip((0, 1), breakdown_probs):
+                R[:, a] += p * q * (-(1 - a) * 0.25 * mileage - a * 6 - 0.3 * wear - 3 * breakdown)
+                x = np.minimum((1 - a) * mileage + 0.5 * (wear + breakdown), TOP)
+                low = np.minimum(np.floor(x).astype(int), TOP - 1)
+                P[np.arange(S), a, low] += p * q * (1 - (x - low))
+                P[np.arange(S), a, low + 1] += p * q * (x - low)
+    reference, _ = plain_value_iteration(R, P, 0.93)
+    result = solve(grid_document(model, discount=0.93, tolerance=1e-8))
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    notes = " ".join(result["diagnostics"]["notes"])
+    assert "`wear`, `breakdown` drawn after the choice (6 combinations)" in notes
+
+
+def test_a_draw_in_the_reward_only_with_a_next_of_choice():
+    # An invented cellar: the stock of casks is chosen directly (next_of); the price a cask fetches is drawn
+    # after the choice, its distribution tilted by how many are sold today.
+    model = {
+        "states": {"casks": {"min": 0, "max": 6, "points": 7}},
+        "shocks": {"price": {"iid": {"values": [1.0, 2.0, 4.0],
+                                     "probs": ["0.2 + 0.05 * (casks - keep)", "0.5", "0.3 - 0.05 * (casks - keep)"]},
+                             "timing": "after_choice"}},
+        "choices": {"keep": {"next_of": "casks"}},
+        "feasible": ["keep <= casks + 1"],
+        "reward": "price * (casks + 1 - keep) - 0.05 * keep ** 2",
+    }
+    S = 7
+    R = np.full((S, S), -np.inf)
+    P = np.zeros((S, S, S))
+    for x in range(S):
+        for k in range(min(S, x + 2)):
+            probs = [0.2 + 0.05 * (x - k), 0.5, 0.3 - 0.05 * (x - k)]
+            R[x, k] = sum(p * v * (x + 1 - k) for p, v in zip(probs, [1.0, 2.0, 4.0])) - 0.05 * k**2
+            P[x, k, k] = 1.0
+    reference, _ = plain_value_iteration(R, P, 0.9)
+    result = solve(grid_document(model, discount=0.9, hints={"monotone": True}, tolerance=1e-9))
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    assert result["diagnostics"]["reward_storage"] == "tables"
