@@ -401,3 +401,19 @@ def test_a_draw_in_the_reward_only_with_a_next_of_choice():
     result = solve(grid_document(model, discount=0.9, hints={"monotone": True}, tolerance=1e-9))
     assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
     assert result["diagnostics"]["reward_storage"] == "tables"
+
+
+def test_a_simulation_starts_from_the_states_alone():
+    document = grid_document(machine(), discount=0.93)
+    document["report"] = {"simulation": {"periods": 50, "paths": 20, "seed": 1, "start": {"mileage": 3.0}}}
+    first = solve(document)["simulation"]["first_path"]
+    assert first["mileage"][0] == 3.0 and "wear" not in first
+    # The draw moves mileage by at most one unit (two half units), after a keep from today's, after a
+    # replacement from 0; the path visits grid points (the half units are split between neighbours).
+    path = list(zip(first["mileage"][:-1], first["replace"][:-1], first["mileage"][1:]))
+    assert all((0.0 if r else m) <= n <= (0.0 if r else m) + 1.0 for m, r, n in path)
+    assert any(r for _, r, _ in path) and any(n > m for m, r, n in path if not r)
+    document["report"]["simulation"]["start"] = {"mileage": 3.0, "wear": 1.0}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert caught.value.errors[0]["path"] == "report.simulation.start.wear"
