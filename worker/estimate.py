@@ -251,8 +251,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
             "code and exact steps skip blocks of choices that provably cannot win"
         )
     return GridPlan(
-        grid_states=grid_states,
-        shocks=shocks,
+        grid_states=grid_states, shocks=shocks,
         n=n,
         choices=choices,
         pairs=pairs,
@@ -375,14 +374,15 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     matrix_entries = plan.n * plan.nodes * plan.shocks
     evaluation = per_iteration * matrix_entries * MATVEC_NS
     if plan.reward_storage == "tables":
-        setup = plan.pairs * NUMPY_PAIR_NS
+        draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
+        setup = plan.pairs * NUMPY_PAIR_NS * draws
         filled = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each)"
         if plan.table_entries < plan.pairs:
             # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
             setup = evaluated * POINT_NS
             filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = plan.table_entries * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
+        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
         how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices

@@ -417,3 +417,15 @@ def test_a_simulation_starts_from_the_states_alone():
     with pytest.raises(InvalidDocument) as caught:
         solve(document)
     assert caught.value.errors[0]["path"] == "report.simulation.start.wear"
+
+
+def test_the_plan_counts_every_draw_and_keeps_the_tables():
+    from worker.document import parse_document
+    from worker.estimate import grid_plan
+
+    plan = grid_plan(parse_document(grid_document(job_search(), hints={"monotone": True})).model)
+    # Two interpolated states (status, wage): four corners for each of the two values of the draw.
+    assert plan.nodes == 8 and plan.shocks == len(OFFER_PROBS) and plan.n == 2 * len(WAGES) * len(OFFER_PROBS)
+    assert plan.reward_storage == "tables"
+    # The expected reward, then per draw its probability, two lower nodes (int32) and two weights.
+    assert plan.precompute_bytes >= plan.pairs * (8 + 2 * (8 + 2 * 12))
