@@ -330,9 +330,19 @@ def test_taste_shocks_and_continuous_choices_are_refused_with_draws():
 
 
 def test_tables_over_the_budget_are_refused_at_the_draw():
+    from worker.document import parse_document
+    from worker.drawcheck import check_draw_tables
+
     with pytest.raises(TooLarge) as caught:
         solve(grid_document(job_search()), limits={"max_bytes": 40_000})
     assert caught.value.errors[0]["path"] == "model.shocks.separated.timing"
+    # The door's check (service.admission) refuses the same document before any work, and passes it under the
+    # worker's usual cap.
+    document = parse_document(grid_document(job_search()))
+    with pytest.raises(TooLarge) as caught:
+        check_draw_tables(document, limits={"max_bytes": 40_000})
+    assert "over the precompute budget" in caught.value.errors[0]["message"]
+    check_draw_tables(document, limits={"max_bytes": 1 << 30})
 
 
 def test_hints_still_apply_and_are_verified():
