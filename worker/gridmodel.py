@@ -14,6 +14,10 @@ Semantics
   diagnostics).
 * Shocks evolve by their chain whatever is chosen, so the continuation is
   ``EV(x', z) = Σ_z' P[z, z'] V(x', z')``, one matrix product per Bellman step.
+* A shock drawn after the choice (``"timing": "after_choice"``) is no axis:
+  the reward is its expectation over the draws and tomorrow's state the
+  mixture over them (see :mod:`worker.draws`); such a model is solved from
+  reward tables only, and neither bridged nor maximised within the period.
 * ``define`` is evaluated in order; ``feasible`` holds when every expression
   is nonzero (NaN counts as nonzero, as everywhere in the expression
   language); ``reward`` is one expression.
