@@ -408,9 +408,15 @@ def test_a_draw_in_the_reward_only_with_a_next_of_choice():
             R[x, k] = sum(p * v * (x + 1 - k) for p, v in zip(probs, [1.0, 2.0, 4.0])) - 0.05 * k**2
             P[x, k, k] = 1.0
     reference, _ = plain_value_iteration(R, P, 0.9)
-    result = solve(grid_document(model, discount=0.9, hints={"monotone": True}, tolerance=1e-9))
+    document = grid_document(model, discount=0.9, hints={"monotone": True}, tolerance=1e-9)
+    document["report"] = {"euler_errors": True}
+    result = solve(document)
     assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
     assert result["diagnostics"]["reward_storage"] == "tables"
+    assert result["diagnostics"]["hints"]["monotone"] and result["diagnostics"]["verification"]["hints_held"]
+    assert "euler_errors" not in result
+    assert any(note.startswith("Euler-equation errors were not measured") and "draws after the choice" in note
+               for note in result["diagnostics"]["notes"])
 
 
 def test_a_simulation_starts_from_the_states_alone():
