@@ -15,6 +15,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from worker.drawnames import draw_names
 from worker.staticchoices import unmoving_choices
 
 __all__ = ["HintUse", "hint_use"]
@@ -63,7 +64,9 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
         searched = f"every step searched all combinations of {_names(choices)}"
         if not static:
             why = (
-                f"no choice ({_names(choices)}) moves tomorrow's state, so none is set aside"
+                "the model has draws after the choice, so no choice is maximised out within the period"
+                if draw_names(model)
+                else f"no choice ({_names(choices)}) moves tomorrow's state, so none is set aside"
                 if len(unmoving_choices(model)) == len(choices)
                 else f"every choice ({_names(choices)}) moves tomorrow's state"
             )

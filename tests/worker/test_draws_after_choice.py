@@ -445,3 +445,10 @@ def test_the_plan_counts_every_draw_and_keeps_the_tables():
     assert plan.reward_storage == "tables"
     # The expected reward, then per draw its probability, two lower nodes (int32) and two weights.
     assert plan.precompute_bytes >= plan.pairs * (8 + 2 * (8 + 2 * 12))
+
+
+def test_hints_with_several_choices_are_not_used_and_the_note_says_why():
+    result = solve(grid_document(inventory(), discount=0.93, hints={"monotone": True}))
+    notes = " ".join(result["diagnostics"]["notes"])
+    assert "the monotone hint was not used" in notes and "draws after the choice" in notes
+    assert result["diagnostics"]["hints"] == {"monotone": False, "concave": False}
