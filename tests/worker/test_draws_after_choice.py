@@ -20,8 +20,6 @@ from worker import solve
 from worker.errors import InvalidDocument, TooLarge
 from worker.solvers import GENERAL_METHODS
 
-# ---- the invented models ------------------------------------------------------------------------------------
-
 TOP = 24
 WEAR = [0.0, 1.0, 2.0]
 
@@ -173,8 +171,6 @@ def plain_value_iteration(R: np.ndarray, P: np.ndarray, beta: float) -> tuple[np
 MODELS = {"machine": (machine, machine_arrays), "job_search": (job_search, job_search_arrays),
           "inventory": (inventory, inventory_arrays)}
 
-# ---- against the plain numpy solver --------------------------------------------------------------------------
-
 
 @pytest.mark.parametrize("name", sorted(MODELS))
 def test_each_model_matches_an_independent_numpy_value_iteration_within_the_bound(name):
@@ -223,9 +219,6 @@ def test_the_policy_matches_the_numpy_policy_on_the_job_search_model():
     assert effort.reshape(2, 5, 5)[1, -1].min() > 0
 
 
-# ---- the report ------------------------------------------------------------------------------------------------
-
-
 @pytest.mark.parametrize("name", ["machine", "inventory"])
 def test_stationary_distribution_matches_a_numpy_eigenvector(name):
     build, arrays = MODELS[name]
@@ -253,9 +246,6 @@ def test_stationary_distribution_matches_a_numpy_eigenvector(name):
     if name == "inventory":
         order = result["simulation"]["first_path"]["order"]
         assert all(b <= a + q + 1e-12 for a, q, b in zip(first[:-1], order[:-1], first[1:]))
-
-
-# ---- the checks ------------------------------------------------------------------------------------------------
 
 
 def test_probabilities_that_do_not_sum_to_one_are_refused_naming_the_point_and_choice():
