@@ -442,3 +442,39 @@ def test_hints_with_several_choices_are_not_used_and_the_note_says_why():
     notes = " ".join(result["diagnostics"]["notes"])
     assert "the monotone hint was not used" in notes and "draws after the choice" in notes
     assert result["diagnostics"]["hints"] == {"monotone": False, "concave": False}
+
+
+def test_a_persistent_shock_before_the_choice_and_a_draw_after_it():
+    # The press under a persistent price of its output (a two-state Markov chain seen before the choice):
+    # idle time costs more when the price is high. Rows of the chain differ, so a draw's nodes must be read
+    # at today's shock.
+    model = machine()
+    model["shocks"] = {"price": {"markov": {"values": [1.0, 3.0], "matrix": [[0.8, 0.2], [0.3, 0.7]]}},
+                       **model["shocks"]}
+    model["reward"] = "-(1 - replace) * 0.25 * mileage - replace * 2 * price - 0.3 * wear * price"
+    chain = np.array([[0.8, 0.2], [0.3, 0.7]])
+    prices = [1.0, 3.0]
+    mileage = np.arange(TOP + 1, dtype=float)
+    M = mileage.size
+    S = 2 * M
+    R = np.empty((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        probs = np.array([0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a])
+        for z, price in enumerate(prices):
+            rows = np.arange(M) * 2 + z  # flat point: mileage first, the shock fastest
+            R[rows, a] = -(1 - a) * 0.25 * mileage - a * 2 * price - 0.3 * price * (probs @ np.array(WEAR))
+            for wear, p in zip(WEAR, probs):
+                x = np.minimum((1 - a) * mileage + 0.5 * wear, TOP)
+                low = np.minimum(np.floor(x).astype(int), TOP - 1)
+                frac = x - low
+                for z_next in range(2):
+                    P[rows, a, low * 2 + z_next] += p * (1 - frac) * chain[z, z_next]
+                    P[rows, a, (low + 1) * 2 + z_next] += p * frac * chain[z, z_next]
+    reference, policy = plain_value_iteration(R, P, 0.93)
+    for method in sorted(GENERAL_METHODS):
+        result = solve(grid_document(model, discount=0.93, method=method, tolerance=1e-8))
+        value = np.asarray(result["value"])
+        assert value.shape == (M, 2)
+        assert np.abs(value.reshape(-1) - reference).max() <= result["error_bound"], method
+    np.testing.assert_array_equal(np.asarray(result["policy_index"]["replace"]).reshape(-1), policy)
