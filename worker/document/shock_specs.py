@@ -31,12 +31,8 @@ from worker.document._fields import (
     Vector,
     check,
 )
-from worker.document.limits import DEFAULT_WIDTH, MAX_EXPRESSION_CHARS, MAX_POINTS
+from worker.document.limits import DEFAULT_WIDTH, MAX_ENTRIES, MAX_EXPRESSION_CHARS, MAX_POINTS
 from worker.errors import join_path
-
-TIMINGS = ("before_choice", "after_choice")
-"""When a shock's value is revealed: before the period's choice (a point of the value function) or after it
-(a draw integrated out within the period)."""
 
 _EXP_LIMIT = math.log(np.finfo(np.float64).max)
 """Largest value whose ``exp`` is finite in float64 (about 709.78)."""
@@ -143,6 +139,11 @@ class MarkovSpec(Part):
 def _probabilities(value: Any) -> Any:
     """A list with an expression among its entries stays a list of numbers and texts; anything else is an array."""
     if isinstance(value, list) and any(isinstance(entry, str) for entry in value):
+        if len(value) > MAX_ENTRIES:
+            raise PydanticCustomError(
+                "fixq_probability", "at most {limit} probabilities may be written with expressions",
+                {"limit": MAX_ENTRIES},
+            )
         for k, entry in enumerate(value):
             number_like = isinstance(entry, (int, float)) and not isinstance(entry, bool)
             text_like = isinstance(entry, str) and 0 < len(entry) <= MAX_EXPRESSION_CHARS
@@ -183,7 +184,7 @@ class IIDSpec(Part):
         description=(
             "probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9). A shock drawn "
             "after the choice may give expressions of today's states, shocks, choices and params instead of "
-            "numbers; they are checked at every point and allowed choice."
+            f"numbers (at most {MAX_ENTRIES:,} entries then); they are checked at every point and feasible choice."
         )
     )
 
