@@ -20,6 +20,7 @@ from typing import Any
 from service.settings import Settings
 from service.store import JobStore, is_job_id
 from worker.document import InitialJob, ProblemDocument, parse_document
+from worker.drawcheck import check_draw_tables
 from worker.errors import InvalidDocument, TooLarge
 from worker.estimate import estimate
 from worker.kernel_limits import check_structure
@@ -66,6 +67,7 @@ def admit(
     check_structure(document)
     cap = int(settings.max_problem_mb * _MIB)
     check_taste_tables(document, limits={"max_bytes": cap})
+    check_draw_tables(document, limits={"max_bytes": cap})
     size = estimate(document, limits={"max_bytes": cap})
     if size["bytes"] > cap:
         raise TooLarge.at(

@@ -30,6 +30,11 @@ DESCRIPTIONS: dict[str, str] = {
         "season; harvests swing with persistent weather and she cannot borrow. Next season's savings is a "
         "continuous choice (monotone cubic interpolation), with Euler-equation errors and the long-run distribution."
     ),
+    "bike_shop_inventory": (
+        "A bicycle repair shop orders inner tubes each week (a fixed delivery fee on any order) and sets their "
+        "price before the week's demand is seen: demand is drawn after the choice, and a higher price makes low "
+        "demand more likely. Unsold tubes are kept at a holding cost."
+    ),
     "courier_van_replacement": (
         "A courier firm decides each month whether to replace a delivery van; upkeep grows with the odometer and "
         "the old van's resale value falls with it. Taste shocks (things the analyst does not see) make the decision "
@@ -119,7 +124,8 @@ def _point_count(model: dict[str, Any]) -> int | None:
         states = model.get("states")
         return states if isinstance(states, int) else len(states or [])
     count = 1
-    for axis in (*(model.get("states") or {}).values(), *(model.get("shocks") or {}).values()):
+    shocks = [shock for shock in (model.get("shocks") or {}).values() if shock.get("timing") != "after_choice"]
+    for axis in (*(model.get("states") or {}).values(), *shocks):
         count *= _axis_size(axis)
     return count
 

@@ -41,6 +41,7 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.drawnames import draw_count, draw_table_bytes
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
@@ -181,12 +182,13 @@ def precompute_budget(limits: dict[str, Any] | None = None) -> int:
 def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str = "howard") -> GridPlan:
     """Sizes and reward storage of a validated ``GridModel``, from sizes alone."""
     grid_states = math.prod(axis.size for axis in model.states.values())
-    shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
+    shocks = math.prod(shock.size for shock in model.shocks.values() if not shock.after_choice)
     choices = math.prod(choice.size for choice in model.choices.values())
     n = grid_states * shocks
     pairs = n * choices
     interpolated = sum(1 for name in model.states if name in model.next)
-    nodes = 2**interpolated
+    draws = draw_count(model)  # after the choice: every draw's nodes, and tables the only storage (worker.draws)
+    nodes = 2**interpolated * (draws if draws and interpolated else 1)
     taste = getattr(model, "taste_shocks", None) is not None
     # With taste shocks every combination of the choices carries its own shock: none is maximised out.
     static = () if taste else static_choices(model)
@@ -195,7 +197,8 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
     common = _grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
-    table_bytes = n * table_choices * (8 + 12 * interpolated + (8 if static else 0))
+    table_bytes = draw_table_bytes(pairs, draws, interpolated) if draws else n * table_choices * (
+        8 + 12 * interpolated + (8 if static else 0))
     chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
     precompute_bytes = common + table_bytes + chunk
     # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
@@ -219,7 +222,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         f"the precompute budget of {budget / _MIB:,.0f} MiB"
     ))
     monotone, concave, note = use.monotone, use.concave, use.note
-    if (monotone or concave) and not static:
+    if (monotone or concave) and not static and not (draws and fits):
         reward_storage = "on_the_fly"
         reason = (
             "hinted searches evaluate a few choices per state, so the model is evaluated pointwise in compiled "
@@ -248,8 +251,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
             "code and exact steps skip blocks of choices that provably cannot win"
         )
     return GridPlan(
-        grid_states=grid_states,
-        shocks=shocks,
+        grid_states=grid_states, shocks=shocks,
         n=n,
         choices=choices,
         pairs=pairs,
@@ -372,14 +374,15 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     matrix_entries = plan.n * plan.nodes * plan.shocks
     evaluation = per_iteration * matrix_entries * MATVEC_NS
     if plan.reward_storage == "tables":
-        setup = plan.pairs * NUMPY_PAIR_NS
+        draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
+        setup = plan.pairs * NUMPY_PAIR_NS * draws
         filled = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each)"
         if plan.table_entries < plan.pairs:
             # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
             setup = evaluated * POINT_NS
             filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = plan.table_entries * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
+        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
         how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices

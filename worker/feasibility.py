@@ -23,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from worker import _codegen
+from worker.draws import Draws, draw_probabilities, model_draws
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.estimate import CHUNK_ELEMENTS
 from worker.expressions import Expression, evaluate, parse
@@ -67,6 +68,8 @@ class ModelData:
     source: _codegen.ModelSource
     span: tuple[Expression, Expression] | None = None
     """A continuous choice given by min and max: the two bounds; its grid then holds fractions of the interval."""
+    draws: Draws | None = None
+    """The shocks drawn after the choice (not axes of the value function; see :mod:`worker.draws`)."""
 
     @property
     def state_sizes(self) -> tuple[int, ...]:
@@ -132,12 +135,15 @@ class _Evaluated:
     feasible: np.ndarray
     reward: np.ndarray
     next_values: list[np.ndarray]
+    probs: np.ndarray | None = None
+    """With draws after the choice: ``(K, rows, columns)``, the draws' probabilities; ``reward`` is then the
+    expectation over them and each of ``next_values`` is ``(K, rows, columns)``, one entry per draw."""
 
     @property
     def allowed(self) -> np.ndarray:
         ok = self.feasible & np.isfinite(self.reward)
         for values in self.next_values:
-            ok &= ~np.isnan(values)
+            ok &= ~np.isnan(values) if self.probs is None else ~(np.isnan(values) & (self.probs > 0)).any(axis=0)
         return ok
 
     @property
@@ -150,11 +156,12 @@ def model_data(doc: Any) -> ModelData:
     model = doc.model
     params = tuple(model.params)
     states = tuple(model.states)
-    shocks = tuple(model.shocks)
+    shocks = tuple(name for name, spec in model.shocks.items() if not spec.after_choice)
     choices = tuple(model.choices)
     state_grids = [np.ascontiguousarray(axis.grid(path=join_path("model", "states", name)), dtype=np.float64)
                    for name, axis in model.states.items()]
-    chains = [spec.chain(path=join_path("model", "shocks", name)) for name, spec in model.shocks.items()]
+    chains = [spec.chain(path=join_path("model", "shocks", name)) for name, spec in model.shocks.items()
+              if name in shocks]
     shock_table, transition = product_chain(chains)
     choice_grids = []
     setter: list[int | None] = [None] * len(states)
@@ -206,6 +213,7 @@ def model_data(doc: Any) -> ModelData:
         setter=tuple(setter),
         source=source,
         span=span,
+        draws=model_draws(model),
     )
 
 
@@ -220,14 +228,41 @@ def evaluate_pairs(data: ModelData, rows: np.ndarray, columns: np.ndarray) -> _E
         if data.span is not None:
             low, high = (evaluate(bound, env) for bound in data.span)
             env[data.choices[0]] = low + env[data.choices[0]] * (high - low)
+        draws = data.draws
         for name, expr in src.defines:
-            env[name] = evaluate(expr, env)
+            if draws is None or name not in draws.dependent:
+                env[name] = evaluate(expr, env)
         feasible = np.ones(shape, dtype=bool)
         for expr in src.feasible:
             feasible &= evaluate(expr, env) != 0.0
+        if draws is not None:
+            return _with_draws(data, draws, env, rows, columns, feasible)
         reward = np.broadcast_to(evaluate(src.reward, env), shape)
         next_values = [np.broadcast_to(evaluate(expr, env), shape) for _, expr in src.next]
     return _Evaluated(feasible, reward, next_values)
+
+
+def _with_draws(
+    data: ModelData, draws: Draws, env: dict[str, Any], rows: np.ndarray, columns: np.ndarray, feasible: np.ndarray
+) -> _Evaluated:
+    """The block evaluated at every combination of the draws: the expected reward, each draw's next values."""
+    shape = feasible.shape
+    probs = draw_probabilities(
+        draws, env, shape, feasible,
+        lambda r, c: f"{data.describe_state(int(rows[r]))} with {data.describe_choice(int(columns[c]))}",
+    )
+    reward = np.zeros(shape)
+    next_values = [np.empty((draws.size, *shape)) for _ in data.source.next]
+    for k in range(draws.size):
+        env.update(draws.combination(k))
+        for name, expr in data.source.defines:
+            if name in draws.dependent:
+                env[name] = evaluate(expr, env)
+        # A draw that cannot happen adds nothing, whatever its reward (0 · inf would be NaN).
+        reward += np.where(probs[k] > 0, probs[k] * evaluate(data.source.reward, env), 0.0)
+        for values, (_, expr) in zip(next_values, data.source.next):
+            values[k] = evaluate(expr, env)
+    return _Evaluated(feasible, reward, next_values, probs)
 
 
 def infeasible(data: ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -> InfeasibleModel:
@@ -300,7 +335,7 @@ def feasibility_scan(data: ModelData, budget_s: float | None) -> dict[str, Any]:
         columns = order[position : position + width]
         position += columns.size
         width = min(2 * width, FEASIBILITY_MAX_PASS)
-        rows_per_chunk = max(1, CHUNK_ELEMENTS // columns.size)
+        rows_per_chunk = max(1, CHUNK_ELEMENTS // (columns.size * (data.draws.size if data.draws is not None else 1)))
         resolved = np.zeros(active.size, dtype=bool)
         for start in range(0, active.size, rows_per_chunk):
             rows = active[start : start + rows_per_chunk]

@@ -12,6 +12,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.draws import draw_probabilities
 from worker.estimate import GridPlan
 from worker.expressions import evaluate
 from worker.feasibility import ModelData
@@ -72,6 +73,12 @@ class GridDiagnostics:
             notes.append(
                 f"{names} affect{'s' if len(self._static) == 1 else ''} nothing tomorrow: maximised out within the "
                 "period once, with the reward tables, for each value of the other choices"
+            )
+        if data.draws is not None:
+            names = ", ".join(f"`{name}`" for name in data.draws.names)
+            notes.append(
+                f"{names} drawn after the choice ({data.draws.size:,} combinations), integrated out within the "
+                "period: rewards are expectations over the draws and tomorrow's point the mixture over them"
             )
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
@@ -178,12 +185,27 @@ class GridDiagnostics:
             }
         )
         clamped = np.zeros(self.n, dtype=bool)
+        draws = data.draws
+        if draws is not None:
+            # With draws after the choice: counted where some draw that can happen leaves the grid.
+            env = {k: np.asarray(v)[:, None] if np.ndim(v) else v for k, v in env.items()}
         with np.errstate(all="ignore"):
             for name, expr in data.source.defines:
-                env[name] = evaluate(expr, env)
-            for t, expr in data.source.next:
-                values = np.broadcast_to(evaluate(expr, env), (self.n,))
-                clamped |= locate(data.state_grids[t], values)[2]
+                if draws is None or name not in draws.dependent:
+                    env[name] = evaluate(expr, env)
+            if draws is not None:
+                probs = draw_probabilities(draws, env, (self.n, 1), np.ones((self.n, 1), dtype=bool),
+                                           lambda r, c: data.describe_state(r))[:, :, 0]
+            for k in range(draws.size if draws is not None else 1):
+                if draws is not None:
+                    env.update(draws.combination(k))
+                    for name, expr in data.source.defines:
+                        if name in draws.dependent:
+                            env[name] = evaluate(expr, env)
+                for t, expr in data.source.next:
+                    values = np.broadcast_to(evaluate(expr, env), (self.n, 1) if draws is not None else (self.n,))
+                    out = locate(data.state_grids[t], values)[2].reshape(self.n)
+                    clamped |= out if draws is None else out & (probs[k] > 0)
         return int(clamped.sum())
 
     def _excluded(self, warnings: list[str]) -> dict[str, Any] | None:

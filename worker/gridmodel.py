@@ -14,6 +14,10 @@ Semantics
   diagnostics).
 * Shocks evolve by their chain whatever is chosen, so the continuation is
   ``EV(x', z) = Σ_z' P[z, z'] V(x', z')``, one matrix product per Bellman step.
+* A shock drawn after the choice (``"timing": "after_choice"``) is no axis:
+  the reward is its expectation over the draws and tomorrow's state the
+  mixture over them (see :mod:`worker.draws`); such a model is solved from
+  reward tables only, and neither bridged nor maximised within the period.
 * ``define`` is evaluated in order; ``feasible`` holds when every expression
   is nonzero (NaN counts as nonzero, as everywhere in the expression
   language); ``reward`` is one expression.
@@ -73,6 +77,7 @@ import numpy as np
 
 from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
+from worker.drawcheck import check_draw_tables
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
 from worker.gridproblem import GridProblem
@@ -104,7 +109,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
         A state variable without a law of motion, or a grid or chain the
         schema let through but that cannot be built.
     TooLarge
-        With taste shocks, tables over the precompute budget (see :mod:`worker.tastegrid`).
+        With taste shocks, or with draws after the choice, tables over the precompute budget (see
+        :mod:`worker.tastegrid`, :mod:`worker.drawcheck`).
     InfeasibleModel
         Some point has no allowed choice.
     """
@@ -118,24 +124,30 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
 
         return compile_taste_grid(doc, limits=limits)
     started = time.perf_counter()
+    check_draw_tables(doc, limits=limits)
     plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
     chosen = reward_storage or plan.reward_storage
     if chosen not in REWARD_STORAGES:
         raise ValueError(f"unknown reward storage {chosen!r}; expected one of {', '.join(REWARD_STORAGES)}")
     full = model_data(doc)
+    if full.draws is not None and chosen != "tables":
+        raise ValueError("a model with draws after the choice is solved from reward tables only")
     backend = "table" if chosen == "tables" else "expr"
     static = static_choices(doc.model) if backend == "table" else ()
     data = reduce_static(full, static) if static else full
-    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active)
+    draws = data.draws.size if data.draws is not None else 0
+    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, plan.hints_active,
+                                 draws=draws)
     if plan.hints_active and (layout.hinted_axis is None or (backend == "expr" and static_choices(doc.model))):
         # The plan's hints are for the choices left once the static ones are maximised out, which this storage
         # does not do: its kernels would search along another choice.
         plan = _hints_dropped(plan, chosen)
-        layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, False)
+        layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), backend, False, draws=draws)
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
-    if reward_storage is None and _bridge_applies(plan, source):
+    # The bridge's numpy reference step reads tables without draws: a model with draws waits for its kernels.
+    if reward_storage is None and full.draws is None and _bridge_applies(plan, source):
         return _bridged(doc, full, static, plan, source, chosen, limits, started)
     counts: dict[str, Any]
     tables: RewardTables | None

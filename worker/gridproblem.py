@@ -407,7 +407,10 @@ class GridProblem(GridDiagnostics):
         """``P_σ`` (n, n) CSR: interpolation nodes × shock transitions."""
         _, index, weight = self._evaluated(policy)
         indptr, indices, data = kernels.policy_csr(index, weight, self._data.transition)
-        return sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
+        matrix = sp.csr_matrix((data, indices, indptr), shape=(self.n, self.n))
+        if self._layout.draws:
+            matrix.sum_duplicates()  # several draws may reach one node; a row's columns must be unique
+        return matrix
 
     def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any]]:
         """``policy`` (chosen values) and ``policy_index`` (grid indices), nested to ``shape``."""

@@ -23,8 +23,9 @@ from worker.grids import locate
 
 __all__ = ["RewardTables", "precompute_tables", "reduce_static"]
 
-RewardTables = tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]
-"""``(R, next_base, node_lower, node_weight)``; see :func:`precompute_tables`."""
+RewardTables = tuple[np.ndarray, ...]
+"""``(R, next_base, node_lower, node_weight)``, and ``draw_probability`` with draws after the choice; see
+:func:`precompute_tables`."""
 
 
 def reduce_static(data: ModelData, static: tuple[str, ...]) -> ModelData:
@@ -57,6 +58,13 @@ def precompute_tables(
     interpolated state variable the lower node (n, C, m) int32 and upper
     weight (n, C, m) float64; and counts of excluded and clamped pairs, with
     per point flags ``any_feasible`` and ``any_allowed``.
+
+    With draws after the choice (:mod:`worker.draws`; no static choices) ``R``
+    holds the expected reward, and when some state is interpolated the node
+    tables gain a draw axis, (n, C, K, m), and a fifth table (n, C, K) holds
+    each draw's probability; a draw that cannot happen has its nodes at the
+    grid's start.  Clamped pairs are those where some possible draw leaves
+    the grid.
     """
     n, n_all = data.n, data.n_choices
     dynamic = [j for j, name in enumerate(data.choices) if name not in static]
@@ -73,7 +81,13 @@ def precompute_tables(
         if j is not None:
             next_base += strides[t] * choice_index[j]
     R = np.empty((n, n_choices))
-    if interpolated:
+    drawn = data.draws is not None and bool(interpolated)
+    if drawn:
+        k_draws = data.draws.size
+        lower = np.empty((n, n_choices, k_draws, len(interpolated)), dtype=np.int32)
+        weight = np.empty((n, n_choices, k_draws, len(interpolated)))
+        draw_probability = np.empty((n, n_choices, k_draws))
+    elif interpolated:
         lower = np.empty((n, n_choices, len(interpolated)), dtype=np.int32)
         weight = np.empty((n, n_choices, len(interpolated)))
     else:
@@ -112,7 +126,17 @@ def precompute_tables(
             r, c = np.argwhere(bad)[0]
             example = (int(rows[r]), int(c))
         clamped_any = np.zeros((stop - start, n_choices), dtype=bool)
-        for k, t in enumerate(interpolated):
+        if drawn:
+            possible = block.probs > 0
+            draw_probability[start:stop] = block.probs.transpose(1, 2, 0)
+            for k, t in enumerate(interpolated):
+                grid = data.state_grids[t]
+                values = np.where(possible & ~np.isnan(next_values[k]), next_values[k], grid[0])
+                low, w, clamped = locate(grid, values)
+                lower[start:stop, :, :, k] = low.transpose(1, 2, 0)
+                weight[start:stop, :, :, k] = w.transpose(1, 2, 0)
+                clamped_any |= (clamped & possible).any(axis=0)
+        for k, t in enumerate(interpolated if not drawn else ()):
             low, w, clamped = locate(data.state_grids[t], next_values[k])
             lower[start:stop, :, k] = low
             weight[start:stop, :, k] = w
@@ -123,7 +147,8 @@ def precompute_tables(
 
     # The chunks are those of one thread whatever the threads, so every entry has the same bits; up to
     # TABLE_CHUNKS_AT_ONCE of them are evaluated at once (each holds its own temporaries).
-    rows_per_chunk = max(1, CHUNK_ELEMENTS // n_all)
+    # With draws after the choice a chunk holds every draw's values: fewer rows keep its temporaries the same size.
+    rows_per_chunk = max(1, CHUNK_ELEMENTS // (n_all * (data.draws.size if data.draws is not None else 1)))
     chunks = [(start, min(n, start + rows_per_chunk)) for start in range(0, n, rows_per_chunk)]
     at_once = min(threadpool.threads_for(n, n_all), threadpool.TABLE_CHUNKS_AT_ONCE)
     parts = []
@@ -142,4 +167,4 @@ def precompute_tables(
         "any_allowed": any_allowed,
         "static_pick": pick,
     }
-    return (R, next_base, lower, weight), counts
+    return ((R, next_base, lower, weight, draw_probability) if drawn else (R, next_base, lower, weight)), counts

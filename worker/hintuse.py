@@ -15,6 +15,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from worker.drawnames import draw_names
+
 __all__ = ["HintUse", "hint_use"]
 
 
@@ -70,6 +72,8 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
             f"the hints apply to `{name}`, the last of the choices that move tomorrow's state: it is searched with "
             f"them once for every combination of {_names(dynamic[:-1])}, which are searched in full (the promises "
             "are read for each such combination)"
+            + ("; the model has draws after the choice, so no choice is maximised out within the period"
+               if draw_names(model) else "")
         )
     monotone = wants_monotone and model.choices[name].next_of is not None
     if wants_monotone and not monotone:

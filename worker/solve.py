@@ -63,12 +63,14 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 
 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
+    from worker.drawcheck import check_draw_tables
     from worker.estimate import estimate
     from worker.kernel_limits import check_structure
     from worker.tastecheck import check_taste_tables
 
     check_structure(doc)
     check_taste_tables(doc, limits=limits)
+    check_draw_tables(doc, limits=limits)
     cap = limits["max_bytes"]
     size = estimate(doc, limits=limits)
     if size["bytes"] > cap:
@@ -376,7 +378,11 @@ def _euler_errors(
         )
         return {}
     data = problem.model_data
-
+    if getattr(data, "draws", None) is not None:
+        problem_diagnostics.setdefault("notes", []).append(
+            "Euler-equation errors were not measured: the model has draws after the choice"
+        )
+        return {}
     started = time.perf_counter()
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)

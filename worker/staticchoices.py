@@ -21,6 +21,7 @@ from __future__ import annotations
 
 from typing import Any
 
+from worker.drawnames import draw_names
 from worker.errors import join_path
 from worker.expressions import parse
 
@@ -29,7 +30,8 @@ __all__ = ["static_choices", "unmoving_choices"]
 
 def static_choices(model: Any) -> tuple[str, ...]:
     """Names of ``model``'s static choices, in document order (empty unless there are ≥ 2 choices and ≥ 1 dynamic)."""
-    if len(model.choices) < 2:
+    if len(model.choices) < 2 or draw_names(model):
+        # With draws after the choice any choice may move their probabilities, and the tables hold expectations.
         return ()
     static = unmoving_choices(model)
     return static if len(static) < len(model.choices) else ()

@@ -34,6 +34,7 @@ from worker.estimate import estimate
 
 EXPECTED = {
     "beekeeper_savings",
+    "bike_shop_inventory",
     "courier_van_replacement",
     "fishery_harvest",
     "household_saving",
@@ -130,6 +131,46 @@ def test_machine_shop_replaces_at_and_beyond_a_wear_threshold(solved: dict[str, 
     v = np.zeros(n)
     for _ in range(2000):
         v = np.nanmax(reward + beta * transition @ v, axis=1)
+    assert np.max(np.abs(np.array(result["value"]) - v)) <= result["error_bound"] + 1e-9
+
+
+def test_bike_shop_orders_up_to_a_level_below_a_reorder_point(solved: dict[str, Any]) -> None:
+    document = load_example("bike_shop_inventory")
+    result = solved["bike_shop_inventory"]
+    stock = np.array(result["axes"]["stock"])
+    order = np.array(result["policy"]["order"])
+    ordering = order > 0
+    reorder_point = int(ordering.sum())
+    assert 0 < reorder_point < stock.size, "the reorder point should be interior, or the example shows nothing"
+    # The fixed delivery fee gives an (s, S) policy (Scarf 1960): order exactly at stock <= s, up to one level S.
+    assert ordering.tolist() == [True] * reorder_point + [False] * (stock.size - reorder_point)
+    assert np.unique(stock[ordering] + order[ordering]).size == 1
+
+    # Independent check: plain value iteration in dense numpy, demand drawn after the order and the price.
+    model = document["model"]
+    params = model["params"]
+    demand = np.array(model["shocks"]["demand"]["iid"]["values"], dtype=float)
+    prices = model["choices"]["price"]["values"]
+    n = stock.size
+    reward = np.full((n, n, len(prices)), -np.inf)
+    transition = np.zeros((n, n, len(prices), n))
+    for x in range(n):
+        for q in range(n - x):
+            for j, price in enumerate(prices):
+                s = price - 6
+                probs = np.array([0.05 + 0.075 * s, 0.2 + 0.075 * s, 0.35, 0.25 - 0.075 * s, 0.15 - 0.075 * s])
+                sold = np.minimum(x + q, demand)
+                left = x + q - sold
+                reward[x, q, j] = probs @ (price * sold - params["unit_cost"] * q - params["delivery_fee"] * (q > 0)
+                                           - params["holding"] * left)
+                np.add.at(transition[x, q, j], left.astype(int), probs)
+    beta = document["discount"]
+    v = np.zeros(n)
+    while True:
+        new = (reward + beta * transition @ v).reshape(n, -1).max(axis=1)
+        gap, v = np.abs(new - v).max(), new
+        if beta / (1 - beta) * gap < 1e-11:
+            break
     assert np.max(np.abs(np.array(result["value"]) - v)) <= result["error_bound"] + 1e-9
 
 

@@ -46,6 +46,11 @@ class KernelLayout:
     bound_kind : str
         ``fixed`` (tomorrow's grid state does not vary inside a block),
         ``pyramid`` or ``global`` (the shock's maximum over all grid states).
+    draws : int
+        ``table`` backend with draws after the choice and an interpolated
+        state: the number of draw combinations, each with its own nodes and
+        probability (read from ``ctx``; the source depends only on there
+        being draws, so every count shares one module); else 0.
     """
 
     n_states: int
@@ -56,6 +61,7 @@ class KernelLayout:
     hinted_axis: int | None
     pyramid_axis: int | None
     bound_kind: str
+    draws: int = 0
 
     @property
     def interpolated(self) -> tuple[int, ...]:
@@ -63,7 +69,7 @@ class KernelLayout:
 
     @property
     def nodes(self) -> int:
-        return 2 ** len(self.interpolated)
+        return 2 ** len(self.interpolated) * max(self.draws, 1)
 
 
 @dataclass(frozen=True)
@@ -86,9 +92,9 @@ class ModelSource:
 
 
 def layout_for(
-    setter: Sequence[int | None], n_shocks: int, n_choices: int, backend: str, hints_usable: bool
+    setter: Sequence[int | None], n_shocks: int, n_choices: int, backend: str, hints_usable: bool, draws: int = 0
 ) -> KernelLayout:
-    """Work out the kernel layout of a model structure."""
+    """Work out the kernel layout of a model structure (``draws``: see :class:`KernelLayout`)."""
     n_states = len(setter)
     inner = n_choices - 1
     varying = [t for t, j in enumerate(setter) if j is None or j == inner]
@@ -103,7 +109,10 @@ def layout_for(
         # The hinted search runs along the last choice (with several, once for each combination of the others).
         own = [t for t, j in enumerate(setter) if j == inner]
         hinted_axis = own[0] if own else 0
-    return KernelLayout(n_states, n_shocks, n_choices, tuple(setter), backend, hinted_axis, pyramid_axis, bound_kind)
+    draws = draws if backend == "table" and None in setter else 0
+    return KernelLayout(
+        n_states, n_shocks, n_choices, tuple(setter), backend, hinted_axis, pyramid_axis, bound_kind, draws
+    )
 
 
 def _packed(grids: Sequence[np.ndarray]) -> tuple[np.ndarray, list[int], list[int], list[int]]:
@@ -120,13 +129,14 @@ def context(
     state_grids: Sequence[np.ndarray],
     shock_table: np.ndarray,
     choice_grids: Sequence[np.ndarray],
-    tables: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None,
+    tables: tuple[np.ndarray, ...] | None = None,
 ) -> tuple[np.ndarray, ...]:
     """The ``ctx`` tuple every kernel takes.
 
     ``expr`` backend (``tables`` None): ``(params, state_grid, shock_table,
     choice_grid, meta)``; ``table`` backend: ``(R, next_base, node_lower,
-    node_weight, meta)``.  Grids are concatenated; ``meta`` (int64) holds, in
+    node_weight, meta)``, or with draws after the choice ``(R, next_base, node_lower, node_weight,
+    draw_probability, meta)``.  Grids are concatenated; ``meta`` (int64) holds, in
     order, the state grids' offsets, sizes and C-order strides, then the
     choice grids' (see :class:`Meta`).  Few entries keep numba's typing of
     every kernel cheap.

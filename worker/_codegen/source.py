@@ -43,7 +43,8 @@ def module_source(layout: KernelLayout, model: ModelSource | None) -> str:
     writer = KernelWriter(layout, model if layout.backend == "expr" else None)
     header = [
         f"# fixq generated kernels: backend {layout.backend}, {writer.d} states, {writer.m} shocks, {writer.q} choices",
-        f"# setter {layout.setter}, hinted axis {layout.hinted_axis}, bound {layout.bound_kind} {layout.pyramid_axis}",
+        f"# setter {layout.setter}, hinted axis {layout.hinted_axis}, bound {layout.bound_kind} {layout.pyramid_axis}"
+        + (", draws after the choice" if layout.draws else ""),
         f"# generators {generator_hash()}",
         "import numpy as np",
         "from numba import njit",

@@ -105,6 +105,8 @@ class KernelWriter:
     def unpack(self, out: Lines) -> None:
         if self.expr:
             out.add("p = ctx[0]", "sgrid = ctx[1]", "ztab = ctx[2]", "cgrid = ctx[3]", "meta = ctx[4]")
+        elif self.layout.draws:
+            out.add("R = ctx[0]", "nbase = ctx[1]", "LO = ctx[2]", "WU = ctx[3]", "PD = ctx[4]", "meta = ctx[5]")
         else:
             out.add("R = ctx[0]", "nbase = ctx[1]", "LO = ctx[2]", "WU = ctx[3]", "meta = ctx[4]")
 
@@ -153,6 +155,9 @@ class KernelWriter:
         Written by element, not through row views: a view costs numba reference counting per state.
         """
         interp = self.layout.interpolated
+        if self.layout.draws:
+            self._draw_nodes(out, detail)
+            return
         if self.expr:
             terms = [f"{self.meta.sstride(t)} * j_{j}" for t, j in enumerate(self.layout.setter) if j is not None]
             out.add("base = " + (" + ".join(terms) if terms else "0"))
@@ -180,6 +185,29 @@ class KernelWriter:
             # Zero weights are skipped, here and in policy evaluation alike, so both give the same bits.
             with out.block("if wk != 0.0:"):
                 out.add("e += wk * EVt[iz, xk]")
+
+    def _draw_nodes(self, out: Lines, detail: bool) -> None:
+        """The nodes of every draw after the choice (``table`` backend), the draw's probability folded into
+        their weights; node ``kd · 2^m + corner`` of row ``i`` is draw ``kd``'s corner."""
+        interp = self.layout.interpolated
+        corners = 2 ** len(interp)
+        out.add("base = nbase[c]", "e = 0.0")
+        with out.block("for kd in range(PD.shape[2]):"):
+            out.add("pk = PD[i, c, kd]")
+            for k in range(len(interp)):
+                out.add(f"lo_{k} = LO[i, c, kd, {k}]", f"w_{k} = WU[i, c, kd, {k}]")
+            for corner in range(corners):
+                bits = [(corner >> k) & 1 for k in range(len(interp))]
+                weight = " * ".join(["pk", *(f"w_{k}" if bit else f"(1.0 - w_{k})" for k, bit in enumerate(bits))])
+                index = "base" + "".join(
+                    f" + {self.meta.sstride(t)} * (lo_{k} + {bit})" for k, (t, bit) in enumerate(zip(interp, bits))
+                )
+                out.add(f"wk = {weight}", f"xk = {index}")
+                if detail:
+                    node = f"kd * {corners} + {corner}"
+                    out.add(f"out_index[i, {node}] = xk", f"out_weight[i, {node}] = wk")
+                with out.block("if wk != 0.0:"):
+                    out.add("e += wk * EVt[iz, xk]")
 
     def outer_base(self, out: Lines) -> None:
         """``base``: the flat grid state set by the choices before the last one (their ``next_of`` states)."""

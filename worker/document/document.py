@@ -209,7 +209,7 @@ def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
         return []
     if not isinstance(start, dict):
         return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
-    axes = {**model.states, **model.shocks}
+    axes = {**model.states, **{name: shock for name, shock in model.shocks.items() if not shock.after_choice}}
     faults = [
         fault(join_path(where, name), f"`{name}` is not a state or shock of the model")
         for name in start

@@ -34,6 +34,7 @@ from worker.document._fields import (
     Vector,
 )
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
+from worker.document.draw_faults import draw_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
 from worker.document.taste_shocks import TasteShocks
@@ -249,7 +250,10 @@ class GridModel(Part):
     )
     shocks: Annotated[dict[Name, ShockSpec], Field(max_length=MAX_AXES)] = Field(
         default_factory=dict,
-        description="Exogenous shocks, each a Markov chain that evolves independently of the choices.",
+        description=(
+            "Exogenous shocks, each a Markov chain that evolves independently of the choices, or an iid draw "
+            'revealed after the choice ("timing": "after_choice").'
+        ),
     )
     choices: Annotated[dict[Name, ChoiceSpec], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description="What is chosen each period."
@@ -297,7 +301,7 @@ class GridModel(Part):
     def axis_sizes(self) -> dict[str, int]:
         """Size of each axis of the value array, in array-axis order: states, then shocks."""
         sizes = {name: axis.size for name, axis in self.states.items()}
-        sizes.update((name, shock.size) for name, shock in self.shocks.items())
+        sizes.update((name, shock.size) for name, shock in self.shocks.items() if not shock.after_choice)
         return sizes
 
     @model_validator(mode="after")
@@ -371,7 +375,10 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
 
 def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
-    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
+    return (
+        _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
+        + draw_faults(model)
+    )
 
 
 def _name_faults(model: Any) -> list[Fault]:

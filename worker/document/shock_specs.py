@@ -7,10 +7,11 @@ builds the chain through :mod:`worker.shocks` when the numerics ask.
 from __future__ import annotations
 
 import math
-from typing import Annotated, Literal
+from typing import Annotated, Any, Literal
 
 import numpy as np
-from pydantic import Field, model_validator
+from pydantic import BeforeValidator, Field, PlainSerializer, WithJsonSchema, model_validator
+from pydantic_core import PydanticCustomError
 
 from worker.document._faults import (
     fault,
@@ -30,7 +31,7 @@ from worker.document._fields import (
     Vector,
     check,
 )
-from worker.document.limits import DEFAULT_WIDTH, MAX_POINTS
+from worker.document.limits import DEFAULT_WIDTH, MAX_ENTRIES, MAX_EXPRESSION_CHARS, MAX_POINTS
 from worker.errors import join_path
 
 _EXP_LIMIT = math.log(np.finfo(np.float64).max)
@@ -135,13 +136,62 @@ class MarkovSpec(Part):
         return self
 
 
+def _probabilities(value: Any) -> Any:
+    """A list with an expression among its entries stays a list of numbers and texts; anything else is an array."""
+    if isinstance(value, list) and any(isinstance(entry, str) for entry in value):
+        if len(value) > MAX_ENTRIES:
+            raise PydanticCustomError(
+                "fixq_probability", "at most {limit} probabilities may be written with expressions",
+                {"limit": MAX_ENTRIES},
+            )
+        for k, entry in enumerate(value):
+            number_like = isinstance(entry, (int, float)) and not isinstance(entry, bool)
+            text_like = isinstance(entry, str) and 0 < len(entry) <= MAX_EXPRESSION_CHARS
+            if not (number_like and math.isfinite(entry) or text_like):
+                raise PydanticCustomError(
+                    "fixq_probability",
+                    "entry {k} must be a finite number or an expression (a non-empty string of at most {limit} "
+                    "characters)",
+                    {"k": k, "limit": MAX_EXPRESSION_CHARS},
+                )
+        return [float(entry) if not isinstance(entry, str) else entry for entry in value]
+    return _VECTOR_DECODE(value)
+
+
+_VECTOR_DECODE = next(m for m in Vector.__metadata__ if isinstance(m, BeforeValidator)).func
+_VECTOR_JSON = next(m for m in Vector.__metadata__ if isinstance(m, PlainSerializer)).func
+_VECTOR_SCHEMA = next(m for m in Vector.__metadata__ if isinstance(m, WithJsonSchema)).json_schema
+
+Probabilities = Annotated[
+    Any,
+    BeforeValidator(_probabilities),
+    PlainSerializer(lambda v: list(v) if isinstance(v, list) else _VECTOR_JSON(v), when_used="json"),
+    WithJsonSchema({
+        "anyOf": [
+            *_VECTOR_SCHEMA["anyOf"],
+            {"type": "array", "items": {"anyOf": [{"type": "number"}, {"type": "string", "minLength": 1}]}},
+        ]
+    }),
+]
+"""Numbers (an array), or a list of numbers and expressions (a shock drawn after the choice)."""
+
+
 class IIDSpec(Part):
     """A shock drawn afresh each period, independently of its past, from a finite distribution."""
 
     values: Vector = Field(description="The values the shock can take, strictly increasing.")
-    probs: Vector = Field(
-        description="probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9)."
+    probs: Probabilities = Field(
+        description=(
+            "probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9). A shock drawn "
+            "after the choice may give expressions of today's states, shocks, choices and params instead of "
+            f"numbers (at most {MAX_ENTRIES:,} entries then); they are checked at every point and feasible choice."
+        )
     )
+
+    @property
+    def written(self) -> bool:
+        """Whether the probabilities are written as expressions (a list of numbers and texts)."""
+        return isinstance(self.probs, list)
 
     @model_validator(mode="after")
     def _check_iid(self) -> IIDSpec:
@@ -151,11 +201,12 @@ class IIDSpec(Part):
             if n == 0
             else increasing_faults(self.values, "values")
         )
-        if self.probs.size != n:
+        given = len(self.probs) if self.written else self.probs.size
+        if given != n:
             faults.append(
-                fault("probs", f"there are {n} values but {self.probs.size} probabilities: give one per value")
+                fault("probs", f"there are {n} values but {given} probabilities: give one per value")
             )
-        else:
+        elif not self.written:
             faults += stochastic_faults(self.probs[None, :], "probs", single_row=True)
         raise_faults(faults)
         return self
@@ -163,7 +214,8 @@ class IIDSpec(Part):
 
 class ShockSpec(Part):
     """An exogenous shock: a Markov chain that evolves on its own, whatever is chosen. Give exactly
-    one of ar1, markov or iid."""
+    one of ar1, markov or iid. With timing "after_choice", an iid draw revealed after the period's
+    choice, whose probabilities may depend on it."""
 
     ar1: AR1Spec | None = Field(default=None, description="An AR(1) process, discretised.")
     markov: MarkovSpec | None = Field(default=None, description="An explicit Markov chain.")
@@ -175,6 +227,22 @@ class ShockSpec(Part):
             'or "none" (the default).'
         ),
     )
+
+    timing: Literal["before_choice", "after_choice"] = Field(
+        default="before_choice",
+        description=(
+            'When the value is revealed: "before_choice" (the default; the shock is an axis of the value '
+            'function and evolves by its chain) or "after_choice" (an iid draw revealed after the period\'s '
+            "choice: its probabilities may be expressions of today's states, shocks drawn before the choice, "
+            "choices and params; next and reward may use it, the reward of a choice is its expectation over "
+            "the draw and tomorrow's state the mixture over it; it is not an axis of the value function)."
+        ),
+    )
+
+    @property
+    def after_choice(self) -> bool:
+        """Whether the shock is drawn after the choice (integrated out within the period)."""
+        return self.timing == "after_choice"
 
     @property
     def size(self) -> int:
@@ -216,6 +284,13 @@ class ShockSpec(Part):
         form, faults = form_faults(
             self, {"ar1": ("ar1",), "markov": ("markov",), "iid": ("iid",)}, "exactly one of `ar1`, `markov` or `iid`"
         )
+        if form and self.after_choice and self.iid is None:
+            faults.append(fault("timing", 'a shock drawn after the choice must be an `iid` distribution '
+                                '(values and probs): a chain would link it to the next period\'s draw'))
+        if form == "iid" and self.iid.written and not self.after_choice:
+            faults.append(fault(join_path("iid", "probs"), 'probabilities written as expressions need "timing": '
+                                '"after_choice" (a shock drawn before the choice is a point of the value function, '
+                                'with fixed probabilities)'))
         if form and self.transform == "exp":
             top = (
                 self.ar1.mean + self.ar1.half_width()

@@ -1,0 +1,480 @@
+"""Draws revealed after the choice (``"timing": "after_choice"``) on grid models.
+
+References named beside each check:
+
+* An independent plain-numpy value iteration written here (``plain_value_iteration``) on the dense
+  reward ``R[s, a]`` and transition ``P[s, a, s']`` arrays each model's builder below writes by hand
+  from the invented scenario's description, with its own linear interpolation and its own
+  expectation over the draws.
+* The stationary distribution of the policy's transition matrix, as the left eigenvector of
+  eigenvalue 1 from ``numpy.linalg.eig``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from tests._documents import grid_document
+from worker import solve
+from worker.errors import InvalidDocument, TooLarge
+from worker.solvers import GENERAL_METHODS
+
+TOP = 24
+WEAR = [0.0, 1.0, 2.0]
+
+
+def machine() -> dict:
+    """An invented press: mileage 0..TOP, keep (0) or replace (1) at 6; half a unit of wear per wear draw seen
+    after the decision, a new press wearing less (its probabilities depend on the choice)."""
+    return {
+        "states": {"mileage": {"min": 0, "max": TOP, "points": TOP + 1}},
+        "shocks": {"wear": {"iid": {"values": WEAR, "probs": ["0.3 + 0.2 * replace", "0.5", "0.2 - 0.2 * replace"]},
+                            "timing": "after_choice"}},
+        "choices": {"replace": {"values": [0, 1]}},
+        "next": {"mileage": f"min((1 - replace) * mileage + 0.5 * wear, {TOP})"},
+        "reward": "-(1 - replace) * 0.25 * mileage - replace * 6 - 0.3 * wear",
+    }
+
+
+def machine_arrays() -> tuple[np.ndarray, np.ndarray]:
+    mileage = np.arange(TOP + 1, dtype=float)
+    S = mileage.size
+    R = np.empty((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        probs = np.array([0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a])
+        R[:, a] = -(1 - a) * 0.25 * mileage - a * 6 - 0.3 * (probs @ np.array(WEAR))
+        for wear, p in zip(WEAR, probs):
+            x = np.minimum((1 - a) * mileage + 0.5 * wear, TOP)
+            low = np.minimum(np.floor(x).astype(int), TOP - 1)
+            frac = x - low
+            P[np.arange(S), a, low] += p * (1 - frac)
+            P[np.arange(S), a, low + 1] += p * frac
+    return R, P
+
+
+SEPARATION = 0.25
+WAGES = [1.0, 1.5, 2.0, 2.5, 3.0]
+OFFER_PROBS = [0.3, 0.25, 0.2, 0.15, 0.1]
+EFFORTS = [0.0, 0.5, 1.0]
+
+
+def job_search() -> dict:
+    """An invented worker: unemployed (status 0, benefit 1.1) or employed at a wage; an offer seen before the
+    choice; accept it, or (employed) choose an effort that lowers the chance of losing the job, revealed after
+    the choice, with a severance payment of 0.4 on separation."""
+    sep = f"{SEPARATION} * (1 - 0.7 * effort)"
+    return {
+        "params": {"benefit": 1.1, "severance": 0.4},
+        "states": {"status": {"values": [0, 1]}, "wage": {"values": WAGES}},
+        "shocks": {
+            "offer": {"iid": {"values": WAGES, "probs": OFFER_PROBS}},
+            "separated": {"iid": {"values": [0, 1], "probs": [f"1 - {sep}", sep]}, "timing": "after_choice"},
+        },
+        "choices": {"accept": {"values": [0, 1]}, "effort": {"values": EFFORTS}},
+        "feasible": ["status == 1 or effort == 0", "status == 0 or accept == 0"],
+        "define": {"working": "max(status, accept)"},
+        "next": {
+            "status": "working * (1 - separated)",
+            "wage": "where(status == 1, wage, where(accept == 1, offer, wage))",
+        },
+        "reward": "where(status == 1, wage - 0.6 * effort ** 2 + severance * separated, benefit)",
+    }
+
+
+def job_search_arrays() -> tuple[np.ndarray, np.ndarray]:
+    nw = len(WAGES)
+    S, A = 2 * nw * nw, 2 * len(EFFORTS)
+    R = np.full((S, A), -np.inf)
+    P = np.zeros((S, A, S))
+    offer_probs = np.array(OFFER_PROBS)
+    for status in range(2):
+        for w in range(nw):
+            for o in range(nw):
+                s = (status * nw + w) * nw + o
+                for accept in range(2):
+                    for e, effort in enumerate(EFFORTS):
+                        a = accept * len(EFFORTS) + e
+                        if (status == 0 and effort != 0) or (status == 1 and accept == 1):
+                            continue
+                        sep = SEPARATION * (1 - 0.7 * effort)
+                        if status == 1:
+                            R[s, a] = WAGES[w] - 0.6 * effort**2 + 0.4 * sep
+                        else:
+                            R[s, a] = 1.1
+                        working = max(status, accept)
+                        wage = w if status == 1 or accept == 0 else o
+                        for separated, p in ((0, 1 - sep), (1, sep)):
+                            status_next = working * (1 - separated)
+                            P[s, a, (status_next * nw + wage) * nw : (status_next * nw + wage + 1) * nw] += (
+                                p * offer_probs
+                            )
+    return R, P
+
+
+STOCK = 8
+DEMAND = [0.0, 1.0, 2.0, 3.0]
+
+
+def inventory() -> dict:
+    """An invented corner shop: stock 0..STOCK, an order placed (fixed cost 2 when positive, 1 a unit) and a
+    price set before the day's demand is seen; a higher price makes low demand more likely."""
+    shift = "(price - 4)"
+    return {
+        "params": {"unit_cost": 1.0, "fixed_cost": 2.0, "holding": 0.1},
+        "states": {"stock": {"min": 0, "max": STOCK, "points": STOCK + 1}},
+        "shocks": {"demand": {"iid": {"values": DEMAND, "probs": [
+            f"0.1 + 0.1 * {shift}", f"0.3 + 0.05 * {shift}", f"0.4 - 0.1 * {shift}", f"0.2 - 0.05 * {shift}",
+        ]}, "timing": "after_choice"}},
+        "choices": {"order": {"min": 0, "max": STOCK, "points": STOCK + 1}, "price": {"values": [4, 6]}},
+        "feasible": ["stock + order <= 8"],
+        "define": {"sold": "min(stock + order, demand)"},
+        "next": {"stock": "stock + order - sold"},
+        "reward": "price * sold - unit_cost * order - fixed_cost * (order > 0) - holding * (stock + order - sold)",
+    }
+
+
+def inventory_arrays() -> tuple[np.ndarray, np.ndarray]:
+    S = STOCK + 1
+    prices = [4.0, 6.0]
+    R = np.full((S, S * 2), -np.inf)
+    P = np.zeros((S, S * 2, S))
+    for x in range(S):
+        for q in range(S):
+            for j, price in enumerate(prices):
+                a = q * 2 + j
+                if x + q > STOCK:
+                    continue
+                shift = price - 4
+                probs = [0.1 + 0.1 * shift, 0.3 + 0.05 * shift, 0.4 - 0.1 * shift, 0.2 - 0.05 * shift]
+                R[x, a] = 0.0
+                for d, p in zip(DEMAND, probs):
+                    sold = min(x + q, d)
+                    R[x, a] += p * (price * sold - q - 2.0 * (q > 0) - 0.1 * (x + q - sold))
+                    P[x, a, int(x + q - sold)] += p
+    return R, P
+
+
+def plain_value_iteration(R: np.ndarray, P: np.ndarray, beta: float) -> tuple[np.ndarray, np.ndarray]:
+    """Independent reference: value iteration on dense arrays until the MacQueen-Porteus gap is below 1e-12."""
+    v = np.zeros(R.shape[0])
+    while True:
+        q = R + beta * (P @ v)
+        new = q.max(axis=1)
+        gap = np.abs(new - v).max()
+        v = new
+        if beta / (1 - beta) * gap < 1e-12:
+            return v, q.argmax(axis=1)
+
+
+MODELS = {"machine": (machine, machine_arrays), "job_search": (job_search, job_search_arrays),
+          "inventory": (inventory, inventory_arrays)}
+
+
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_each_model_matches_an_independent_numpy_value_iteration_within_the_bound(name):
+    build, arrays = MODELS[name]
+    beta = 0.93
+    reference, _ = plain_value_iteration(*arrays(), beta)
+    result = solve(grid_document(build(), discount=beta, method="value_iteration", tolerance=1e-7))
+    assert result["status"] == "converged"
+    value = np.asarray(result["value"]).reshape(-1)
+    assert np.abs(value - reference).max() <= result["error_bound"]
+    assert "wear" not in result["axes"] and "separated" not in result["axes"] and "demand" not in result["axes"]
+
+
+@pytest.mark.parametrize("name", sorted(MODELS))
+def test_all_three_methods_agree_within_their_bounds(name):
+    build, arrays = MODELS[name]
+    beta = 0.93
+    reference, _ = plain_value_iteration(*arrays(), beta)
+    for method in sorted(GENERAL_METHODS):
+        result = solve(grid_document(build(), discount=beta, method=method, tolerance=1e-8))
+        assert result["status"] == "converged", method
+        value = np.asarray(result["value"]).reshape(-1)
+        assert np.abs(value - reference).max() <= max(result["error_bound"], 1e-9), method
+
+
+def test_the_draws_move_the_answer():
+    # The same machine with the wear drawn before the choice (an axis of the value) is another model: its
+    # value averaged over the wear draw differs (the decision then sees the wear it is about to suffer).
+    before = machine()
+    before["shocks"]["wear"] = {"iid": {"values": WEAR, "probs": [0.4, 0.5, 0.1]}}
+    after = solve(grid_document(machine(), discount=0.93))
+    seen = solve(grid_document(before, discount=0.93))
+    assert np.asarray(after["value"]).shape == (TOP + 1,)
+    assert np.asarray(seen["value"]).shape == (TOP + 1, 3)
+    assert np.abs(np.asarray(seen["value"]) @ np.array([0.4, 0.5, 0.1]) - np.asarray(after["value"])).max() > 0.01
+
+
+def test_the_policy_matches_the_numpy_policy_on_the_job_search_model():
+    R, P = job_search_arrays()
+    _, policy = plain_value_iteration(R, P, 0.95)
+    result = solve(grid_document(job_search(), discount=0.95, method="policy_iteration", tolerance=1e-10))
+    accept = np.asarray(result["policy_index"]["accept"]).reshape(-1)
+    effort = np.asarray(result["policy_index"]["effort"]).reshape(-1)
+    np.testing.assert_array_equal(accept * len(EFFORTS) + effort, policy)
+    # Effort lowers the separation chance: employed workers at high wages exert some.
+    assert effort.reshape(2, 5, 5)[1, -1].min() > 0
+
+
+@pytest.mark.parametrize("name", ["machine", "inventory"])
+def test_stationary_distribution_matches_a_numpy_eigenvector(name):
+    build, arrays = MODELS[name]
+    R, P = arrays()
+    document = grid_document(build(), discount=0.93, method="policy_iteration", tolerance=1e-10)
+    document["report"] = {"stationary": True, "simulation": {"periods": 400, "paths": 200, "seed": 3}}
+    result = solve(document)
+    index = result["policy_index"]
+    if name == "machine":
+        policy = np.asarray(index["replace"])
+    else:
+        policy = np.asarray(index["order"]) * 2 + np.asarray(index["price"])
+    chain = P[np.arange(P.shape[0]), policy.reshape(-1)]
+    # Reference: numpy.linalg.eig of the policy's transition, the left eigenvector of eigenvalue 1.
+    values, vectors = np.linalg.eig(chain.T)
+    pi = np.real(vectors[:, np.argmin(np.abs(values - 1.0))])
+    pi /= pi.sum()
+    np.testing.assert_allclose(np.asarray(result["stationary"]["distribution"]).reshape(-1), pi, atol=1e-9)
+    state = "mileage" if name == "machine" else "stock"
+    grid = np.arange(P.shape[0], dtype=float)
+    # Seeded paths of 80,000 periods in all: 0.15 of a grid unit (common practice for a seeded check).
+    assert result["simulation"]["summary"][state]["mean"] == pytest.approx(float(pi @ grid), abs=0.15)
+    first = result["simulation"]["first_path"][state]
+    # Tomorrow's stock never exceeds today's stock plus the order: demand is drawn after it, never negative.
+    if name == "inventory":
+        order = result["simulation"]["first_path"]["order"]
+        assert all(b <= a + q + 1e-12 for a, q, b in zip(first[:-1], order[:-1], first[1:]))
+
+
+def test_probabilities_that_do_not_sum_to_one_are_refused_naming_the_point_and_choice():
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"] = ["0.3 + 0.2 * replace", "0.5", "0.2 - 0.1 * replace"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = caught.value.errors[0]
+    assert error["path"] == "model.shocks.wear.iid.probs"
+    assert "mileage = 0" in error["message"] and "replace = 1" in error["message"]
+    assert "sum 1.1" in error["message"]
+
+
+def test_negative_probabilities_are_refused():
+    model = inventory()
+    model["shocks"]["demand"]["iid"]["probs"][0] = "0.1 - 0.1 * (price - 4)"
+    model["shocks"]["demand"]["iid"]["probs"][2] = "0.4 + 0.1 * (price - 4)"
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = caught.value.errors[0]
+    assert error["path"] == "model.shocks.demand.iid.probs"
+    assert "price = 6" in error["message"] and "non-negative" in error["message"]
+
+
+def test_names_are_checked():
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"][1] = "0.5 + 0 * speed"
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert any(e["path"] == "model.shocks.wear.iid.probs[1]" and "speed" in e["message"]
+               for e in caught.value.errors)
+    model = machine()
+    model["shocks"]["wear"]["iid"]["probs"][1] = "0.5 + 0 * wear"
+    model["feasible"] = ["wear < 3"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    paths = {e["path"] for e in caught.value.errors}
+    assert {"model.shocks.wear.iid.probs[1]", "model.feasible[0]"} <= paths
+
+
+def test_expressions_need_the_after_choice_timing_and_after_choice_needs_iid():
+    model = machine()
+    del model["shocks"]["wear"]["timing"]
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.iid.probs"
+    model = machine()
+    model["shocks"]["wear"] = {"markov": {"values": [0, 1], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
+                               "timing": "after_choice"}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
+
+
+def test_taste_shocks_and_continuous_choices_are_refused_with_draws():
+    model = {**machine(), "taste_shocks": {"scale": 0.5}}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
+    model = {
+        "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
+        "shocks": {"luck": {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "define": {"c": "k**0.3 - k_next"},
+        "reward": "log(c)",
+        "feasible": ["c > 0"],
+    }
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = next(e for e in caught.value.errors if e["path"] == "model.shocks.luck.timing")
+    assert "continuous" in error["message"]
+
+
+def test_tables_over_the_budget_are_refused_at_the_draw():
+    from worker.document import parse_document
+    from worker.drawcheck import check_draw_tables
+
+    with pytest.raises(TooLarge) as caught:
+        solve(grid_document(job_search()), limits={"max_bytes": 40_000})
+    assert caught.value.errors[0]["path"] == "model.shocks.separated.timing"
+    # The door's check (service.admission) refuses the same document before any work, and passes it under the
+    # worker's usual cap.
+    document = parse_document(grid_document(job_search()))
+    with pytest.raises(TooLarge) as caught:
+        check_draw_tables(document, limits={"max_bytes": 40_000})
+    assert "over the precompute budget" in caught.value.errors[0]["message"]
+    check_draw_tables(document, limits={"max_bytes": 1 << 30})
+
+
+def test_hints_still_apply_and_are_verified():
+    # Replacing is worth more as the press wears: the policy is monotone in mileage along a next_of-free menu,
+    # so the hint is about the concave search on the one choice; it must give the exact answer.
+    R, P = machine_arrays()
+    reference, _ = plain_value_iteration(R, P, 0.93)
+    result = solve(grid_document(machine(), discount=0.93, hints={"concave": True}, tolerance=1e-8))
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    assert result["diagnostics"]["reward_storage"] == "tables"
+
+
+def test_two_draws_are_drawn_independently_and_a_define_may_use_them():
+    # The press with a second draw after the choice: a breakdown (probability 0.1, or 0.02 right after a
+    # replacement) that costs 3 and adds one more half unit of wear; a define combines both draws.
+    model = machine()
+    model["shocks"]["breakdown"] = {
+        "iid": {"values": [0, 1], "probs": ["0.9 + 0.08 * replace", "0.1 - 0.08 * replace"]},
+        "timing": "after_choice",
+    }
+    model["define"] = {"moved": "0.5 * (wear + breakdown)"}
+    model["next"] = {"mileage": f"min((1 - replace) * mileage + moved, {TOP})"}
+    model["reward"] = "-(1 - replace) * 0.25 * mileage - replace * 6 - 0.3 * wear - 3 * breakdown"
+    mileage = np.arange(TOP + 1, dtype=float)
+    S = mileage.size
+    R = np.zeros((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        wear_probs = [0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a]
+        breakdown_probs = [0.9 + 0.08 * a, 0.1 - 0.08 * a]
+        for wear, p in zip(WEAR, wear_probs):
+            for breakdown, q in zip((0, 1), breakdown_probs):
+                R[:, a] += p * q * (-(1 - a) * 0.25 * mileage - a * 6 - 0.3 * wear - 3 * breakdown)
+                x = np.minimum((1 - a) * mileage + 0.5 * (wear + breakdown), TOP)
+                low = np.minimum(np.floor(x).astype(int), TOP - 1)
+                P[np.arange(S), a, low] += p * q * (1 - (x - low))
+                P[np.arange(S), a, low + 1] += p * q * (x - low)
+    reference, _ = plain_value_iteration(R, P, 0.93)
+    result = solve(grid_document(model, discount=0.93, tolerance=1e-8))
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    notes = " ".join(result["diagnostics"]["notes"])
+    assert "`wear`, `breakdown` drawn after the choice (6 combinations)" in notes
+
+
+def test_a_draw_in_the_reward_only_with_a_next_of_choice():
+    # An invented cellar: the stock of casks is chosen directly (next_of); the price a cask fetches is drawn
+    # after the choice, its distribution tilted by how many are sold today.
+    model = {
+        "states": {"casks": {"min": 0, "max": 6, "points": 7}},
+        "shocks": {"price": {"iid": {"values": [1.0, 2.0, 4.0],
+                                     "probs": ["0.2 + 0.05 * (casks - keep)", "0.5", "0.3 - 0.05 * (casks - keep)"]},
+                             "timing": "after_choice"}},
+        "choices": {"keep": {"next_of": "casks"}},
+        "feasible": ["keep <= casks + 1"],
+        "reward": "price * (casks + 1 - keep) - 0.05 * keep ** 2",
+    }
+    S = 7
+    R = np.full((S, S), -np.inf)
+    P = np.zeros((S, S, S))
+    for x in range(S):
+        for k in range(min(S, x + 2)):
+            probs = [0.2 + 0.05 * (x - k), 0.5, 0.3 - 0.05 * (x - k)]
+            R[x, k] = sum(p * v * (x + 1 - k) for p, v in zip(probs, [1.0, 2.0, 4.0])) - 0.05 * k**2
+            P[x, k, k] = 1.0
+    reference, _ = plain_value_iteration(R, P, 0.9)
+    document = grid_document(model, discount=0.9, hints={"monotone": True}, tolerance=1e-9)
+    document["report"] = {"euler_errors": True}
+    result = solve(document)
+    assert np.abs(np.asarray(result["value"]) - reference).max() <= result["error_bound"]
+    assert result["diagnostics"]["reward_storage"] == "tables"
+    assert result["diagnostics"]["hints"]["monotone"] and result["diagnostics"]["verification"]["hints_held"]
+    assert "euler_errors" not in result
+    assert any(note.startswith("Euler-equation errors were not measured") and "draws after the choice" in note
+               for note in result["diagnostics"]["notes"])
+
+
+def test_a_simulation_starts_from_the_states_alone():
+    document = grid_document(machine(), discount=0.93)
+    document["report"] = {"simulation": {"periods": 50, "paths": 20, "seed": 1, "start": {"mileage": 3.0}}}
+    first = solve(document)["simulation"]["first_path"]
+    assert first["mileage"][0] == 3.0 and "wear" not in first
+    # The draw moves mileage by at most one unit (two half units), after a keep from today's, after a
+    # replacement from 0; the path visits grid points (the half units are split between neighbours).
+    path = list(zip(first["mileage"][:-1], first["replace"][:-1], first["mileage"][1:]))
+    assert all((0.0 if r else m) <= n <= (0.0 if r else m) + 1.0 for m, r, n in path)
+    assert any(r for _, r, _ in path) and any(n > m for m, r, n in path if not r)
+    document["report"]["simulation"]["start"] = {"mileage": 3.0, "wear": 1.0}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert caught.value.errors[0]["path"] == "report.simulation.start.wear"
+
+
+def test_the_plan_counts_every_draw_and_keeps_the_tables():
+    from worker.document import parse_document
+    from worker.estimate import grid_plan
+
+    plan = grid_plan(parse_document(grid_document(job_search(), hints={"monotone": True})).model)
+    # Two interpolated states (status, wage): four corners for each of the two values of the draw.
+    assert plan.nodes == 8 and plan.shocks == len(OFFER_PROBS) and plan.n == 2 * len(WAGES) * len(OFFER_PROBS)
+    assert plan.reward_storage == "tables"
+    # The expected reward, then per draw its probability, two lower nodes (int32) and two weights.
+    assert plan.precompute_bytes >= plan.pairs * (8 + 2 * (8 + 2 * 12))
+
+
+def test_hints_with_several_choices_are_not_used_and_the_note_says_why():
+    result = solve(grid_document(inventory(), discount=0.93, hints={"monotone": True}))
+    notes = " ".join(result["diagnostics"]["notes"])
+    assert "the monotone hint was not used" in notes and "draws after the choice" in notes
+    assert result["diagnostics"]["hints"] == {"monotone": False, "concave": False}
+
+
+def test_a_persistent_shock_before_the_choice_and_a_draw_after_it():
+    # The press under a persistent price of its output (a two-state Markov chain seen before the choice):
+    # idle time costs more when the price is high. Rows of the chain differ, so a draw's nodes must be read
+    # at today's shock.
+    model = machine()
+    model["shocks"] = {"price": {"markov": {"values": [1.0, 3.0], "matrix": [[0.8, 0.2], [0.3, 0.7]]}},
+                       **model["shocks"]}
+    model["reward"] = "-(1 - replace) * 0.25 * mileage - replace * 2 * price - 0.3 * wear * price"
+    chain = np.array([[0.8, 0.2], [0.3, 0.7]])
+    prices = [1.0, 3.0]
+    mileage = np.arange(TOP + 1, dtype=float)
+    M = mileage.size
+    S = 2 * M
+    R = np.empty((S, 2))
+    P = np.zeros((S, 2, S))
+    for a in range(2):
+        probs = np.array([0.3 + 0.2 * a, 0.5, 0.2 - 0.2 * a])
+        for z, price in enumerate(prices):
+            rows = np.arange(M) * 2 + z  # flat point: mileage first, the shock fastest
+            R[rows, a] = -(1 - a) * 0.25 * mileage - a * 2 * price - 0.3 * price * (probs @ np.array(WEAR))
+            for wear, p in zip(WEAR, probs):
+                x = np.minimum((1 - a) * mileage + 0.5 * wear, TOP)
+                low = np.minimum(np.floor(x).astype(int), TOP - 1)
+                frac = x - low
+                for z_next in range(2):
+                    P[rows, a, low * 2 + z_next] += p * (1 - frac) * chain[z, z_next]
+                    P[rows, a, (low + 1) * 2 + z_next] += p * frac * chain[z, z_next]
+    reference, policy = plain_value_iteration(R, P, 0.93)
+    for method in sorted(GENERAL_METHODS):
+        result = solve(grid_document(model, discount=0.93, method=method, tolerance=1e-8))
+        value = np.asarray(result["value"])
+        assert value.shape == (M, 2)
+        assert np.abs(value.reshape(-1) - reference).max() <= result["error_bound"], method
+    np.testing.assert_array_equal(np.asarray(result["policy_index"]["replace"]).reshape(-1), policy)
