@@ -241,6 +241,15 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
             f"the precompute budget of {budget / _MIB:,.0f} MiB, so the model is evaluated pointwise in compiled "
             "code and exact steps skip blocks of choices that provably cannot win"
         )
+    from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
+
+    if varies_by_period(model):
+        reward_storage = "on_the_fly"
+        reason = (
+            "the model changes with the period (params given per period, or `period` in its expressions), so it is "
+            "evaluated pointwise in compiled code with each period's params: tables would be filled again in every "
+            "period"
+        )
     return GridPlan(
         grid_states=grid_states,
         shocks=shocks,
@@ -308,6 +317,12 @@ def _linear_solve_words(n: int) -> str:
 def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
     """(iterations, evaluation steps per iteration, basis) guessed from β, the tolerance, the method
     and the number of choice points."""
+    horizon = doc.model.horizon
+    if horizon is not None:
+        return horizon.periods, 0, (
+            f"{horizon.periods:,} periods of backward induction, one exact Bellman step each (with hints, seeded by "
+            "a hinted one)"
+        )
     beta = float(doc.discount)
     solver = doc.solver
     tolerance = float(solver.tolerance)
@@ -331,6 +346,16 @@ def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
         + (f", {evaluation} evaluation steps each" if evaluation else "")
     )
     return steps, evaluation, basis
+
+
+def horizon_bytes(model: Any, n: int) -> int:
+    """The value and policy of every period of a finite horizon, kept for the result (bytes; 0 without one).
+
+    Per period and point: the value and the policy (8 bytes each) in the solve, and the result's
+    nested lists of them (about ``RESULT_BYTES_PER_STATE``).
+    """
+    horizon = getattr(model, "horizon", None)
+    return 0 if horizon is None else int(horizon.periods) * n * (16 + RESULT_BYTES_PER_STATE)
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -382,14 +407,16 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             + ("hinted steps look at about 5 choices per state, exact ones" if plan.hints_active else "exact steps")
             + f" bound about {blocks} blocks and evaluate about {points:,.0f} points per state"
         )
-        if plan.hints_active:
+        if plan.hints_active and model.horizon is not None:
+            step_total = steps * (step + exact / 2)  # every period's exact step, seeded by the hinted one
+        elif plan.hints_active:
             step_total = (steps - 2) * step + 2 * exact
         else:
             step_total = steps * step
     if plan.reward_storage == "tables":
         step_total = steps * step
     seconds = (setup + step_total + steps * evaluation) * 1e-9
-    if doc.solver.method == "policy_iteration":
+    if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(
             plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
         )
@@ -422,7 +449,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "shocks": plan.shocks,
         "choice_points": plan.choices,
         "pairs": plan.pairs,
-        "bytes": plan.bytes,
+        "bytes": plan.bytes + horizon_bytes(model, plan.n),
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
@@ -453,7 +480,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     steps, per_iteration, basis = _steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * TABLE_READ_NS
     seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
-    if doc.solver.method == "policy_iteration":
+    if doc.solver.method == "policy_iteration" and model.horizon is None:
         matrix += linear_solve_bytes(n_states, policy_entries)
         seconds += steps * linear_solve_seconds(
             n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance)
@@ -471,7 +498,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + conversion + matrix),
+        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(model, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,

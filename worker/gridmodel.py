@@ -73,6 +73,7 @@ import numpy as np
 
 from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
+from worker.document.horizon import varies_by_period
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
 from worker.gridproblem import GridProblem
@@ -125,7 +126,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
-    if reward_storage is None and _bridge_applies(plan, source):
+    # A model that changes with the period swaps its params in the on_the_fly kernels; the bridge's tables cannot.
+    if reward_storage is None and not varies_by_period(doc.model) and _bridge_applies(plan, source):
         return _bridged(doc, full, static, plan, source, chosen, limits, started)
     counts: dict[str, Any]
     tables: RewardTables | None
@@ -143,6 +145,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
+    problem.kernel_literals = literals
     problem._warm_up()
     bridge.mark_warm(module.__name__)
     if first_load:

@@ -181,8 +181,11 @@ def _solve(
     max_seconds: float | None,
 ) -> dict[str, Any]:
     problem = _compile(doc, cap)
-    initial = _initial_values(doc, problem, warm_start)
     spec = doc.solver
+    if doc.model.horizon is not None:
+        return _solve_horizon(doc, problem, on_progress, checkpoint, should_stop, time_limit(spec.time_limit_s,
+                                                                                            max_seconds))
+    initial = _initial_values(doc, problem, warm_start)
     outcome = METHODS[spec.method](
         problem,
         initial,
@@ -197,6 +200,26 @@ def _solve(
         fingerprint="" if checkpoint is None else _fingerprint(doc),
     )
     return _result(doc, problem, outcome)
+
+
+def _solve_horizon(
+    doc: Any,
+    problem: CompiledProblem,
+    on_progress: Callable[[dict[str, Any]], None] | None,
+    checkpoint: Checkpoint | None,
+    should_stop: Callable[[], bool] | None,
+    time_limit_s: float | None,
+) -> dict[str, Any]:
+    """Backward induction for a document with ``model.horizon`` (see :mod:`worker.periods`)."""
+    from worker.periods import horizon_result, period_plan
+    from worker.solvers.backward import backward_induction
+
+    plan = period_plan(doc, problem)
+    outcome = backward_induction(
+        problem, plan, time_limit_s=time_limit_s, checkpoint_s=doc.solver.checkpoint_s, on_progress=on_progress,
+        checkpoint=checkpoint, should_stop=should_stop, fingerprint="" if checkpoint is None else _fingerprint(doc),
+    )
+    return horizon_result(doc, problem, plan, outcome, _plain)
 
 
 def _fingerprint(doc: Any) -> str:

@@ -26,7 +26,8 @@ from __future__ import annotations
 import math
 from typing import Annotated, Any, Literal, Union
 
-from pydantic import Field, ValidationError, model_validator
+from pydantic import AfterValidator, Field, ValidationError, ValidationInfo, model_validator
+from pydantic_core import PydanticCustomError
 
 from worker.document._faults import (
     Fault,
@@ -34,6 +35,7 @@ from worker.document._faults import (
     fault,
     number,
     raise_faults,
+    shown,
     structure_fault,
 )
 from worker.document._fields import Integer, Part, SchemaExtra, check
@@ -77,6 +79,35 @@ TagText = Annotated[
 ]
 
 
+_DISCOUNT_POSITIVE = (
+    "the discount factor must lie strictly between 0 and 1 (with a finite horizon: be positive), got {value}: with "
+    "0 or less the problem is degenerate (the future does not count, or counts with the wrong sign)"
+)
+_DISCOUNT_BELOW_ONE = (
+    "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
+    "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
+    "degenerate (the future does not count, or counts with the wrong sign). A model with a finite horizon "
+    "(model.horizon) may have any positive discount"
+)
+
+
+HORIZON_CONTEXT = "horizon"
+"""Key of the validation context saying whether the raw document's model has a horizon (see :func:`parse_document`)."""
+
+
+def _below_one_without_horizon(value: float, info: ValidationInfo) -> float:
+    """Refuse a discount of 1 or more when the validation context says the model has no horizon.
+
+    The discount is validated before the model, so it cannot look at the model; :func:`parse_document`
+    tells it from the raw document, and this fault is then reported beside the model's own faults.
+    Without that context the check waits for :meth:`ProblemDocument._discount_faults`.
+    """
+    context = info.context or {}
+    if value >= 1 and context.get(HORIZON_CONTEXT) is False:
+        raise PydanticCustomError("fixq_check", _DISCOUNT_BELOW_ONE, {"value": shown(value)})
+    return value
+
+
 class ProblemDocument(Part):
     """A discounted dynamic program to solve, version 1 of the problem-document format."""
 
@@ -100,17 +131,15 @@ class ProblemDocument(Part):
     )
     discount: Annotated[
         float,
-        check(
-            lambda b: 0 < b < 1,
-            "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
-            "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
-            "degenerate (the future does not count, or counts with the wrong sign)",
-        ),
-        SchemaExtra(exclusiveMinimum=0, exclusiveMaximum=1),
+        check(lambda b: 0 < b, _DISCOUNT_POSITIVE),
+        AfterValidator(_below_one_without_horizon),
+        SchemaExtra(exclusiveMinimum=0),
     ] = Field(
         description=(
             "The discount factor β applied to next period's value, strictly between 0 and 1 (per period). "
-            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge."
+            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge. "
+            "A model with a horizon (model.horizon) needs only β > 0: backward induction takes one step per "
+            "period and seeks no fixed point."
         )
     )
     model: Annotated[Union[TabularModel, GridModel], Field(discriminator="kind")] = Field(
@@ -135,9 +164,14 @@ class ProblemDocument(Part):
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
-        faults = self._initial_faults() + self._start_faults()
+        faults = self._discount_faults() + self._initial_faults() + self._start_faults()
         raise_faults(faults)
         return self
+
+    def _discount_faults(self) -> list[Fault]:
+        if self.discount < 1 or self.model.horizon is not None:
+            return []
+        return [fault("discount", _DISCOUNT_BELOW_ONE.format(value=number(self.discount)))]
 
     def _initial_faults(self) -> list[Fault]:
         if not isinstance(self.solver.initial, InitialValues):
@@ -181,12 +215,17 @@ def parse_document(raw: Any) -> ProblemDocument:
     if hostile is not None:
         raise InvalidDocument([hostile])
     try:
-        return ProblemDocument.model_validate(raw)
+        return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
     # Only the listed errors are translated: a document with a million unknown keys costs no more.
     faults = translate(errors[:MAX_REPORTED], ProblemDocument)
     raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
+
+
+def _has_horizon(raw: Any) -> bool:
+    model = raw.get("model") if isinstance(raw, dict) else None
+    return isinstance(model, dict) and model.get("horizon") is not None
 
 
 def start_faults(model: Any, start: Any, where: str) -> list[Fault]:

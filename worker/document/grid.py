@@ -33,6 +33,7 @@ from worker.document._fields import (
     Spacing,
     Vector,
 )
+from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
 from worker.errors import InvalidDocument, join_path
@@ -267,8 +268,12 @@ class GridModel(Part):
     log exp sqrt abs min max where clip. Nothing else."""
 
     kind: Literal["grid"] = Field(description='Always "grid" for this kind of model.')
-    params: Annotated[dict[Name, float], Field(max_length=MAX_ENTRIES)] = Field(
-        default_factory=dict, description="Named constants usable in every expression."
+    params: Annotated[dict[Name, ParamValue], Field(max_length=MAX_ENTRIES)] = Field(
+        default_factory=dict,
+        description=(
+            "Named constants usable in every expression; with a horizon, a param may also be a list with one "
+            "value per period (an income profile, survival probabilities)."
+        ),
     )
     states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description=(
@@ -302,6 +307,13 @@ class GridModel(Part):
         description="Conditions (expressions) that must all hold for a choice to be allowed in a state.",
     )
     hints: Hints = Field(default_factory=Hints, description="Optional speed promises.")
+    horizon: GridHorizon | None = Field(
+        default=None,
+        description=(
+            "A finite number of periods, solved by backward induction (absent: an infinite horizon). The value "
+            "and the policy then have a first axis, period."
+        ),
+    )
     interpolation: Literal["linear", "monotone_cubic"] = Field(
         default="linear",
         description=(
@@ -393,7 +405,8 @@ def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Faul
 
 def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
-    return _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + _continuous_model_faults(model)
+    return (_name_faults(model) + _motion_faults(model) + _expressions_faults(model) + _continuous_model_faults(model)
+            + grid_horizon_faults(model))
 
 
 def _continuous_model_faults(model: Any) -> list[Fault]:
@@ -502,6 +515,8 @@ def _motion_faults(model: Any) -> list[Fault]:
 
 def _expressions_faults(model: Any) -> list[Fault]:
     base = [*model.params, *model.states, *model.shocks, *model.choices]
+    if model.horizon is not None:
+        base.append(PERIOD_NAME)
     defines = list(model.define)
     faults = []
     for i, name in enumerate(defines):

@@ -1,0 +1,312 @@
+"""Finite horizons (``model.horizon``): backward induction, checked against sources outside fixq.
+
+* the finite-horizon cake-eating problem with log utility, whose consumption rule
+  ``c_t = W_t (1 − β) / (1 − β^(T−t))`` and value ``A_t log W + B_t`` are a textbook closed form;
+* a small life-cycle model and a tabular model against backward induction written here in plain numpy;
+* the infinite-horizon solution as the limit of long horizons: with terminal value 0 the first
+  period's value is ``T^T 0`` for the Bellman operator ``T``, a β-contraction, so
+  ``‖V_0 − v*‖∞ ≤ β^T ‖v*‖∞`` (Banach's fixed-point theorem).
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import numpy as np
+import pytest
+
+from worker import solve
+from worker.errors import Canceled, InvalidDocument
+
+BETA = 0.9
+
+
+def cake(periods: int, points: int, *, hints: bool = True, terminal: Any = 0.0) -> dict[str, Any]:
+    """Cake eating on a uniform grid of [0, 2]: eat w − wn, keep wn (a grid point) for tomorrow.
+
+    The point w = 0 stands for "no cake left": every earlier period avoids it (its reward of −10⁶
+    stands for log 0 = −∞), and the last period, whose terminal value is 0, eats what is left.
+    """
+    return {
+        "version": 1,
+        "discount": BETA,
+        "model": {
+            "kind": "grid",
+            "states": {"w": {"min": 0.0, "max": 2.0, "points": points}},
+            "choices": {"wn": {"next_of": "w"}},
+            "feasible": ["wn < w or w == 0"],
+            "reward": "where(w > 0, log(w - wn), -1e6)",
+            "hints": {"monotone": hints, "concave": hints},
+            "horizon": {"periods": periods, "terminal_value": terminal},
+        },
+    }
+
+
+def cake_closed_form(periods: int, w: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Textbook closed form of finite-horizon log cake eating: consumption and value, each (T, W).
+
+    With ``A_t = (1 − β^(T−t)) / (1 − β)`` the rule is ``c_t = W / A_t`` and the value
+    ``A_t log W + B_t``, where ``B_t = −log A_t + β A_{t+1} log(β A_{t+1} / A_t) + β B_{t+1}``,
+    ``B_{T−1} = 0`` (substituting the rule into the Bellman equation).
+    """
+    A = (1 - BETA ** (periods - np.arange(periods + 1))) / (1 - BETA)
+    B = np.zeros(periods + 1)
+    for t in range(periods - 2, -1, -1):
+        B[t] = -np.log(A[t]) + BETA * A[t + 1] * np.log(BETA * A[t + 1] / A[t]) + BETA * B[t + 1]
+    consumption = w[None, :] / A[:periods, None]
+    value = A[:periods, None] * np.log(w[None, :]) + B[:periods, None]
+    return consumption, value
+
+
+@pytest.mark.parametrize("hints", [True, False])
+def test_cake_eating_follows_the_textbook_consumption_rule(hints: bool) -> None:
+    periods, points = 8, 601
+    result = solve(cake(periods, points, hints=hints))
+    assert result["status"] == "converged" and result["method"] == "backward_induction"
+    assert list(result["axes"]) == ["period", "w"] and result["axes"]["period"] == list(range(periods))
+    w = np.array(result["axes"]["w"])
+    step = w[1] - w[0]
+    eaten = w[None, :] - np.array(result["policy"]["wn"])
+    value = np.array(result["value"])
+    assert value.shape == (periods, points)
+    consumption, exact = cake_closed_form(periods, w[1:])
+    # The choice is a grid point, so consumption is the closed form rounded to the grid, moved a little
+    # further by the grid's error in tomorrow's value: within 1.5 grid steps (common practice).
+    assert np.abs(eaten[:, 1:] - consumption).max() <= 1.5 * step
+    # The last period eats everything (terminal value 0), exactly.
+    np.testing.assert_array_equal(eaten[-1], w)
+    # Restricting the choices to the grid can only lower the value: never above the closed form.
+    assert (value[:, 1:] <= exact + result["error_bound"]).all()
+    # From cake 0.5 up, the grid's loss is below 1% of a period's utility scale.
+    rich = w[1:] >= 0.5
+    assert (exact - value[:, 1:])[:, rich].max() < 0.01
+    if hints:
+        verification = result["diagnostics"]["verification"]
+        assert verification["periods"] == periods and verification["hints_held"]
+
+
+def test_the_error_bound_is_the_accumulated_rounding_allowance() -> None:
+    result = solve(cake(4, 101))
+    allowance = result["diagnostics"]["horizon"]["rounding_allowance"]
+    assert len(allowance) == 4 and result["error_bound"] == max(allowance)
+    # Later periods' allowances carry into earlier ones, discounted: e_t = ρ_t + β e_{t+1}.
+    assert all(a >= BETA * b for a, b in zip(allowance, allowance[1:]))
+    assert 0 < result["error_bound"] < 1e-6
+    assert any("exact up to rounding" in note for note in result["diagnostics"]["notes"])
+
+
+AGES = 6
+INCOME = [1.0, 1.3, 1.6, 1.8, 0.7, 0.7]
+SURVIVAL = [0.99, 0.98, 0.96, 0.93, 0.88, 0.8]
+ASSETS = np.linspace(0.0, 4.0, 41)
+SHOCK_VALUES = [0.8, 1.0, 1.25]
+SHOCK_MATRIX = [[0.7, 0.25, 0.05], [0.15, 0.7, 0.15], [0.05, 0.25, 0.7]]
+
+
+def life_cycle(**horizon: Any) -> dict[str, Any]:
+    """An invented life cycle: income by age, a pension from age 4 on, survival in the discount, a bequest."""
+    return {
+        "version": 1,
+        "discount": 0.96,
+        "model": {
+            "kind": "grid",
+            "params": {"r": 0.03, "income": INCOME, "survival": SURVIVAL, "pension": 0.9, "bequest": 0.5},
+            "states": {"a": {"values": ASSETS.tolist()}},
+            "shocks": {"y": {"markov": {"values": SHOCK_VALUES, "matrix": SHOCK_MATRIX}}},
+            "choices": {"an": {"next_of": "a"}},
+            "define": {"earnings": "where(period >= 4, pension, income * y)", "c": "(1 + r) * a + earnings - an"},
+            "feasible": ["c > 0"],
+            "reward": "log(c)",
+            "hints": {"monotone": True, "concave": True},
+            "horizon": {"periods": AGES, "terminal_value": "bequest * log(1 + a)",
+                        "discount": "discount * survival", **horizon},
+        },
+    }
+
+
+def life_cycle_by_numpy() -> tuple[np.ndarray, np.ndarray]:
+    """Independent backward induction of :func:`life_cycle` in plain numpy: value and savings, (T, a, y)."""
+    y = np.array(SHOCK_VALUES)
+    P = np.array(SHOCK_MATRIX)
+    after = np.broadcast_to(0.5 * np.log(1 + ASSETS)[:, None], (ASSETS.size, y.size))
+    values, savings = [], []
+    for t in range(AGES - 1, -1, -1):
+        earnings = np.full(y.size, 0.9) if t >= 4 else INCOME[t] * y
+        c = (1.03 * ASSETS)[:, None, None] + earnings[None, :, None] - ASSETS[None, None, :]  # (a, y, a')
+        expected = after @ P.T  # (a', y): E[V(a', y') | y]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            q = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf) + 0.96 * SURVIVAL[t] * expected.T[None]
+        best = q.argmax(axis=2)
+        after = q.max(axis=2)
+        values.append(after)
+        savings.append(ASSETS[best])
+    return np.array(values[::-1]), np.array(savings[::-1])
+
+
+def test_life_cycle_matches_a_plain_numpy_backward_induction() -> None:
+    result = solve(life_cycle())
+    value, savings = life_cycle_by_numpy()
+    assert list(result["axes"]) == ["period", "a", "y"]
+    np.testing.assert_allclose(np.array(result["value"]), value, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(np.array(result["policy"]["an"]), savings)
+    discounts = result["diagnostics"]["horizon"]["discount"]
+    np.testing.assert_allclose(discounts, 0.96 * np.array(SURVIVAL), rtol=1e-15)
+    assert result["diagnostics"]["verification"]["hints_held"]
+
+
+def test_life_cycle_reports_progress_per_period_and_cancels_between_periods() -> None:
+    entries: list[dict[str, Any]] = []
+    solve(life_cycle(), on_progress=entries.append)
+    assert [entry["period"] for entry in entries] == list(range(AGES - 1, -1, -1))
+    assert [entry["iteration"] for entry in entries] == list(range(1, AGES + 1))
+    polls = iter(range(100))
+    with pytest.raises(Canceled) as caught:
+        solve(life_cycle(), should_stop=lambda: next(polls) >= 2)
+    assert caught.value.context["iteration"] == 2 and len(caught.value.context["log"]) == 2
+
+
+class MemoryCheckpoint:
+    """A checkpoint store in memory that can stop the solve after its first save."""
+
+    def __init__(self) -> None:
+        self.state: dict[str, Any] | None = None
+        self.saves = 0
+
+    def load(self) -> dict[str, Any] | None:
+        return copy.deepcopy(self.state)
+
+    def save(self, state: dict[str, Any]) -> None:
+        self.saves += 1
+        self.state = copy.deepcopy(state)
+
+
+def test_a_checkpoint_by_period_resumes_with_the_next_period() -> None:
+    document = life_cycle()
+    document["solver"] = {"checkpoint_s": 1e-9}
+    store = MemoryCheckpoint()
+    polls = iter(range(100))
+    with pytest.raises(Canceled):
+        solve(document, checkpoint=store, should_stop=lambda: next(polls) >= 3)
+    assert store.state is not None and store.state["iteration"] == 3 and store.state["values"].shape == (3, 41 * 3)
+    entries: list[dict[str, Any]] = []
+    resumed = solve(document, checkpoint=store, on_progress=entries.append)
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 3
+    assert [entry["period"] for entry in entries] == [2, 1, 0]
+    assert [entry["period"] for entry in resumed["log"]] == [5, 4, 3, 2, 1, 0]
+    np.testing.assert_array_equal(np.array(resumed["value"]), np.array(solve(life_cycle())["value"]))
+    other = life_cycle()
+    other["model"]["params"]["r"] = 0.02
+    assert solve(other, checkpoint=store)["diagnostics"]["resumed_from_iteration"] is None
+
+
+def test_a_time_limit_keeps_the_periods_solved() -> None:
+    document = life_cycle()
+    document["solver"] = {"time_limit_s": 1e-9}
+    result = solve(document)
+    assert result["status"] == "time_limit" and result["axes"]["period"] == []
+
+
+def tabular_mdp(seed: int, states: int = 12, actions: int = 3) -> tuple[np.ndarray, np.ndarray]:
+    rng = np.random.default_rng(seed)
+    reward = rng.normal(size=(states, actions))
+    transition = rng.random((states, actions, states)) ** 4
+    transition /= transition.sum(axis=2, keepdims=True)
+    return reward, transition
+
+
+def test_tabular_horizon_matches_a_plain_numpy_backward_induction() -> None:
+    reward, transition = tabular_mdp(3)
+    discounts = [1.05, 0.9, 0.8, 1.0, 0.95]
+    terminal = np.linspace(-1.0, 1.0, 12)
+    document = {
+        "version": 1,
+        "discount": 1.1,
+        "model": {"kind": "tabular", "states": 12, "actions": 3, "reward": reward.tolist(),
+                  "transition": transition.tolist(),
+                  "horizon": {"periods": 5, "terminal_value": terminal.tolist(), "discount": discounts}},
+    }
+    result = solve(document)
+    after = terminal
+    values, actions = [], []
+    for t in range(4, -1, -1):  # independent backward induction in plain numpy
+        q = reward + discounts[t] * transition @ after
+        after = q.max(axis=1)
+        values.append(after)
+        actions.append(q.argmax(axis=1))
+    np.testing.assert_allclose(np.array(result["value"]), np.array(values[::-1]), rtol=0, atol=1e-13)
+    np.testing.assert_array_equal(np.array(result["policy_index"]["action"]), np.array(actions[::-1]))
+    assert list(result["axes"]) == ["period", "state_label"]
+
+
+def test_long_horizons_approach_the_infinite_horizon_solution_at_rate_beta_to_the_T() -> None:
+    reward, transition = tabular_mdp(5)
+    beta = 0.8
+    base = {"version": 1, "discount": beta,
+            "model": {"kind": "tabular", "states": 12, "actions": 3, "reward": reward.tolist(),
+                      "transition": transition.tolist()},
+            "solver": {"method": "policy_iteration", "tolerance": 1e-13}}
+    infinite = np.array(solve(base)["value"])
+    gaps = []
+    for periods in (5, 10, 20, 40):
+        document = copy.deepcopy(base)
+        document["model"]["horizon"] = {"periods": periods}
+        first = np.array(solve(document)["value"][0])
+        gap = np.abs(first - infinite).max()
+        # Banach: ‖T^T 0 − v*‖∞ ≤ β^T ‖0 − v*‖∞ (plus the two solves' error bounds, far smaller).
+        assert gap <= beta**periods * np.abs(infinite).max() + 1e-10
+        gaps.append(gap)
+    assert gaps == sorted(gaps, reverse=True) and gaps[-1] < 1e-3
+
+
+def test_a_grid_horizon_approaches_the_infinite_horizon_grid_solution() -> None:
+    infinite_document = cake(1, 201)
+    del infinite_document["model"]["horizon"]
+    infinite_document["model"]["reward"] = "where(w > 0, log(w - wn + 0.05), -1e6)"
+    infinite_document["model"]["feasible"] = ["wn <= w"]
+    infinite_document["solver"] = {"tolerance": 1e-10}
+    infinite = np.array(solve(infinite_document)["value"])
+    document = copy.deepcopy(infinite_document)
+    document["model"]["horizon"] = {"periods": 120}
+    first = np.array(solve(document)["value"][0])
+    assert np.abs(first - infinite).max() <= BETA**120 * np.abs(infinite).max() + 1e-8
+
+
+def bad(document: dict[str, Any]) -> dict[str, str]:
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    return {error["path"]: error["message"] for error in caught.value.errors}
+
+
+def test_horizon_faults_name_their_field() -> None:
+    short = life_cycle()
+    short["model"]["params"]["income"] = INCOME[:-1]
+    assert "one value per period" in bad(short)["model.params.income"]
+    no_horizon = life_cycle()
+    del no_horizon["model"]["horizon"]
+    faults = bad(no_horizon)
+    assert "needs a finite horizon" in faults["model.params.income"]
+    assert "unknown name `period`" in faults["model.define.earnings"]
+    clash = life_cycle()
+    clash["model"]["params"]["period"] = 1.0
+    assert "names the period" in bad(clash)["model.params.period"]
+    terminal = life_cycle(terminal_value="income * a")
+    assert "no period after the last" in bad(terminal)["model.horizon.terminal_value"]
+    negative = life_cycle(discount="discount * (survival - 0.9)")
+    assert "positive number in every period" in bad(negative)["model.horizon.discount"]
+    tabular_reward, tabular_transition = tabular_mdp(1)
+    tabular = {"version": 1, "discount": 0.9,
+               "model": {"kind": "tabular", "states": 12, "actions": 3, "reward": tabular_reward.tolist(),
+                         "transition": tabular_transition.tolist(),
+                         "horizon": {"periods": 3, "terminal_value": [0.0, 1.0], "discount": [0.9, -1.0, 0.9]}}}
+    faults = bad(tabular)
+    assert "one per state" in faults["model.horizon.terminal_value"]
+    assert "positive in every period" in faults["model.horizon.discount[1]"]
+
+
+def test_a_discount_of_one_or_more_needs_a_horizon() -> None:
+    document = cake(3, 51)
+    document["discount"] = 1.0
+    assert solve(document)["status"] == "converged"
+    del document["model"]["horizon"]
+    assert "strictly between 0 and 1" in bad(document)["discount"]

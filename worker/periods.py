@@ -1,0 +1,190 @@
+"""A finite horizon's periods: each period's params and discount, the terminal value, and the result by period.
+
+:func:`period_plan` turns ``model.horizon`` of a validated document and its compiled problem into the
+:class:`~worker.solvers.backward.PeriodPlan` backward induction runs on; :func:`horizon_result` builds the
+result document, whose value and policy have the axis ``period`` first.
+
+Reward storage
+--------------
+A grid model whose expressions use ``period`` or whose params are given per period evaluates a
+different model in each period.  The ``on_the_fly`` storage reads its params from ``ctx`` as it runs,
+so a period is one swap of the params vector (:meth:`worker.gridproblem.GridProblem.use_params`) and
+one compiled module serves every period.  Reward tables would have to be filled again each period
+(``T`` times the precompute, or ``T`` times its memory kept), so such a model always uses
+``on_the_fly`` (:func:`worker.estimate.grid_plan`); a horizon whose periods differ only in the discount or in
+nothing keeps whichever storage the plan picks, tables included.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from worker.document.horizon import DISCOUNT_NAME, PERIOD_NAME, varies_by_period
+from worker.errors import InvalidDocument, join_path
+from worker.expressions import evaluate, parse
+from worker.problem import CompiledProblem
+from worker.solvers.backward import METHOD, HorizonOutcome, PeriodPlan
+
+__all__ = ["PERIOD_AXIS", "horizon_result", "period_plan"]
+
+PERIOD_AXIS = "period"
+"""The first axis of a finite-horizon result's value and policy (its values: the periods, from 0)."""
+
+
+def period_plan(doc: Any, problem: CompiledProblem) -> PeriodPlan:
+    """The periods, discounts, terminal value and period switch of a document with ``model.horizon``."""
+    if doc.model.kind == "tabular":
+        return _tabular_plan(doc, problem)
+    return _grid_plan(doc, problem)
+
+
+def _tabular_plan(doc: Any, problem: Any) -> PeriodPlan:
+    horizon = doc.model.horizon
+    periods = int(horizon.periods)
+    discounts = np.full(periods, float(doc.discount)) if horizon.discount is None else np.array(horizon.discount)
+    terminal = np.broadcast_to(np.asarray(horizon.terminal_value, dtype=np.float64), (problem.n,)).copy()
+    labels = doc.model.state_labels()
+
+    def enter(t: int) -> None:
+        problem.discount = float(discounts[t])
+
+    return PeriodPlan(periods, discounts, terminal, enter, lambda i: f"state {labels[i]!r}")
+
+
+def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
+    from worker._codegen import kernel_params
+    from worker.feasibility import period_params
+
+    model, horizon = doc.model, doc.model.horizon
+    periods = int(horizon.periods)
+    data = problem.model_data
+    discounts = _discounts(doc, data.params)
+    terminal = _terminal_value(doc, data)
+    varying = varies_by_period(model)
+
+    def enter(t: int) -> None:
+        if varying:
+            problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
+        problem.discount = float(discounts[t])
+
+    return PeriodPlan(periods, discounts, terminal, enter, data.describe_state)
+
+
+def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
+    """``β_t`` for every period, each checked finite and positive (the path names the period)."""
+    from worker.feasibility import period_params
+
+    horizon = doc.model.horizon
+    where = join_path("model", "horizon", "discount")
+    if horizon.discount is None:
+        return np.full(horizon.periods, float(doc.discount))
+    if not isinstance(horizon.discount, str):
+        return np.full(horizon.periods, float(horizon.discount))
+    expression = parse(horizon.discount, path=where)
+    discounts = np.empty(horizon.periods)
+    with np.errstate(all="ignore"):
+        for t in range(horizon.periods):
+            env = dict(zip(names, period_params(doc.model, t).tolist()))
+            env[DISCOUNT_NAME] = float(doc.discount)
+            discounts[t] = float(np.asarray(evaluate(expression, env), dtype=np.float64).reshape(-1)[0])
+    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts > 0)))
+    if bad.size:
+        t = int(bad[0])
+        raise InvalidDocument.at(
+            where, f"gives {discounts[t]!r} in period {t}: the discount must be a positive number in every period"
+            + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
+        )
+    return discounts
+
+
+def _terminal_value(doc: Any, data: Any) -> np.ndarray:
+    """``V_T`` at every flat point, (n,) float64, checked finite."""
+    from worker.feasibility import period_params
+
+    horizon = doc.model.horizon
+    where = join_path("model", "horizon", "terminal_value")
+    if not isinstance(horizon.terminal_value, str):
+        return np.full(data.n, float(horizon.terminal_value))
+    expression = parse(horizon.terminal_value, path=where)
+    env: dict[str, Any] = {
+        name: value
+        for name, value, raw in zip(data.params, period_params(doc.model, 0).tolist(),
+                                    [*doc.model.params.values(), None])
+        if not isinstance(raw, list)
+    }
+    env[PERIOD_NAME] = float(horizon.periods)
+    env.update(data.state_env(np.arange(data.n, dtype=np.int64)))
+    with np.errstate(all="ignore"):
+        terminal = np.broadcast_to(np.asarray(evaluate(expression, env), dtype=np.float64), (data.n, 1)).reshape(-1)
+    bad = np.flatnonzero(~np.isfinite(terminal))
+    if bad.size:
+        raise InvalidDocument.at(
+            where, f"is {terminal[bad[0]]!r} at {data.describe_state(int(bad[0]))}: the terminal value must be a "
+            "finite "
+            f"number at every point ({bad.size:,} points fail)",
+        )
+    return terminal.copy()
+
+
+def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome: HorizonOutcome,
+                   plain: Any) -> dict[str, Any]:
+    """The result document of a finite-horizon solve: value and policy with ``period`` first.
+
+    ``plain`` turns numpy scalars and arrays into Python numbers and lists (``worker.solve._plain``).
+    """
+    from worker.convergence_log import dropped
+
+    periods = list(range(outcome.first_period, plan.periods))
+    shape = (len(periods), *problem.shape)
+    policy: dict[str, list[Any]] = {}
+    policy_index: dict[str, list[Any]] = {}
+    for row in outcome.policies:
+        values, indices = problem.describe_policy(row)
+        for name in values:
+            policy.setdefault(name, []).append(values[name])
+            policy_index.setdefault(name, []).append(indices[name])
+    problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
+    warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
+    notes = problem_diagnostics.setdefault("notes", [])
+    notes.append(
+        f"solved by backward induction: one exact Bellman step per period from the terminal value, "
+        f"{len(periods)} of {plan.periods} periods; the value is exact up to rounding, and the error bound is the "
+        "rounding allowance accumulated over the periods"
+    )
+    if outcome.status == "time_limit":
+        notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
+                     f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
+    report = doc.report
+    if report.stationary:
+        notes.append("no stationary distribution: a model with a finite horizon has none")
+    if report.simulation is not None:
+        notes.append("no simulation: simulating a model with a finite horizon is not available yet")
+    if report.euler_errors:
+        notes.append("Euler-equation errors were not measured: they are not available yet with a finite horizon")
+    bound = outcome.error_bound
+    diagnostics = {
+        **problem_diagnostics,
+        "observed_rate": None,
+        "warnings": warnings,
+        "resumed_from_iteration": outcome.resumed_from_iteration,
+        "verification": outcome.verification,
+        "bracket": {"lower": 0.0, "upper": 0.0, "shift": 0.0, "standard_bound": bound, "rounding_allowance": bound},
+        "log_dropped": dropped(outcome.log),
+        "horizon": {"periods": plan.periods, "discount": plan.discounts.tolist(),
+                    "rounding_allowance": outcome.bounds.tolist()},
+    }
+    head = plain({
+        "status": outcome.status, "method": METHOD, "error_bound": bound, "iterations": len(periods),
+        "evaluation_steps": 0, "linear_solves": 0, "seconds": outcome.seconds,
+        "axes": {PERIOD_AXIS: periods, **problem.axes},
+    })
+    tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": None})
+    return {
+        **head,
+        "value": np.asarray(outcome.values, dtype=np.float64).reshape(shape).tolist(),
+        "policy": policy,
+        "policy_index": policy_index,
+        **tail,
+    }
