@@ -17,6 +17,9 @@ nothing keeps whichever storage the plan picks, tables included.
 
 from __future__ import annotations
 
+import gc
+from collections.abc import Iterator
+from contextlib import contextmanager
 from typing import Any
 
 import numpy as np
@@ -138,13 +141,17 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
 
     periods = list(range(outcome.first_period, plan.periods))
     shape = (len(periods), *problem.shape)
-    policy: dict[str, list[Any]] = {}
-    policy_index: dict[str, list[Any]] = {}
-    for row in outcome.policies:
-        values, indices = problem.describe_policy(row)
-        for name in values:
-            policy.setdefault(name, []).append(values[name])
-            policy_index.setdefault(name, []).append(indices[name])
+    with _collector_paused():
+        # Millions of list and number objects, none in a cycle: a collection pass in the middle of
+        # building them only walks them (it took 40% of this function at 61 x 1,000 x 7 points).
+        value = np.asarray(outcome.values, dtype=np.float64).reshape(shape).tolist()
+        policy: dict[str, list[Any]] = {}
+        policy_index: dict[str, list[Any]] = {}
+        for row in outcome.policies:
+            values, indices = problem.describe_policy(row)
+            for name in values:
+                policy.setdefault(name, []).append(values[name])
+                policy_index.setdefault(name, []).append(indices[name])
     problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
@@ -183,8 +190,20 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": None})
     return {
         **head,
-        "value": np.asarray(outcome.values, dtype=np.float64).reshape(shape).tolist(),
+        "value": value,
         "policy": policy,
         "policy_index": policy_index,
         **tail,
     }
+
+
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cyclic garbage collector inside the block (when it was running)."""
+    running = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if running:
+            gc.enable()
