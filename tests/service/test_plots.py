@@ -269,6 +269,24 @@ def test_heatmap_routes_pick_the_shock_point_by_its_flat_index(
     assert out_of_range.json()["errors"][0]["path"] == "query.shock_index"
 
 
+def test_a_finite_horizon_job_draws_value_and_policy_by_period(
+    plot_app: tuple[httpx.Client, FastAPI], store: JobStore
+) -> None:
+    client, _ = plot_app
+    job_id = submit(store, load_example("glassblower_life_cycle"))
+    summary = client.get(f"/v1/jobs/{job_id}/plots").json()
+    assert summary["layout"] == "heatmap" and summary["shocks"] == ["orders"]
+    for picture in ("convergence", "value", "policy"):
+        svg = client.get(f"/v1/jobs/{job_id}/plots/{picture}.svg", params={} if picture == "convergence" else
+                         {"shock_index": 2})
+        assert svg.status_code == 200, svg.text
+        svg_ids(svg.content)
+    result = store.get_result(job_id)
+    assert result is not None and list(result["axes"]) == ["period", "savings", "orders"]
+    assert plots.axis_layout(result, load_example("glassblower_life_cycle")) == plots.AxisLayout(
+        states=("period", "savings"), shocks=("orders",))
+
+
 def test_an_expired_result_is_gone_for_plots_as_for_the_result(
     plot_app: tuple[httpx.Client, FastAPI], store: JobStore
 ) -> None:
