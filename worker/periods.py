@@ -165,9 +165,20 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
     report = doc.report
     if report.stationary:
-        notes.append("no stationary distribution: a model with a finite horizon has none")
-    if report.simulation is not None:
-        notes.append("no simulation: simulating a model with a finite horizon is not available yet")
+        notes.append("no stationary distribution: a model with a finite horizon has none (report.cohort gives the "
+                     "distribution by period)")
+    cohort = simulation = None
+    if (report.cohort is not None or report.simulation is not None) and outcome.first_period > 0:
+        notes.append("no cohort and no simulation: they start in period 0, which the solve did not reach")
+    elif report.cohort is not None or report.simulation is not None:
+        from worker.cohort import cohort_report, horizon_simulation
+
+        if report.cohort is not None:
+            cohort = cohort_report(problem, plan, outcome, report.cohort)
+        if report.simulation is not None:
+            simulation = horizon_simulation(problem, plan, outcome, report.simulation, report.cohort,
+                                            f"report.{report.simulation_key}")
+            warnings += simulation.pop("warnings")
     if report.euler_errors:
         notes.append("Euler-equation errors were not measured: they are not available yet with a finite horizon")
     bound = outcome.error_bound
@@ -187,7 +198,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         "evaluation_steps": 0, "linear_solves": 0, "seconds": outcome.seconds,
         "axes": {PERIOD_AXIS: periods, **problem.axes},
     })
-    tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": None})
+    tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
+                  "cohort": cohort})
     return {
         **head,
         "value": value,

@@ -310,3 +310,51 @@ def test_a_discount_of_one_or_more_needs_a_horizon() -> None:
     assert solve(document)["status"] == "converged"
     del document["model"]["horizon"]
     assert "strictly between 0 and 1" in bad(document)["discount"]
+
+
+def test_a_cohort_moves_through_the_periods_as_a_plain_numpy_forward_pass_says() -> None:
+    document = life_cycle()
+    document["report"] = {"cohort": {"start": {"a": 0.0, "y": 1.0}},
+                          "simulation": {"periods": AGES, "paths": 20_000, "seed": 3}}
+    result = solve(document)
+    _, savings = life_cycle_by_numpy()
+    chosen = np.searchsorted(ASSETS, savings)  # (T, a, y): the grid index of next period's assets
+    mu = np.zeros((ASSETS.size, len(SHOCK_VALUES)))
+    mu[0, 1] = 1.0
+    means_a, means_an = [], []
+    for t in range(AGES):  # independent forward pass: mass at (a, y) moves to (σ_t(a, y), y') with P[y, y']
+        means_a.append(float((mu * ASSETS[:, None]).sum()))
+        means_an.append(float((mu * savings[t]).sum()))
+        np.testing.assert_allclose(np.array(result["cohort"]["distribution"][t]), mu, rtol=0, atol=1e-14)
+        moved = np.zeros_like(mu)
+        for y in range(len(SHOCK_VALUES)):
+            np.add.at(moved, chosen[t, :, y], mu[:, y, None] * np.array(SHOCK_MATRIX)[y][None, :])
+        mu = moved
+    np.testing.assert_allclose(result["cohort"]["means"]["a"], means_a, rtol=0, atol=1e-13)
+    np.testing.assert_allclose(result["cohort"]["means"]["an"], means_an, rtol=0, atol=1e-13)
+    simulated = np.array(result["simulation"]["by_period"]["a"])
+    # Law of large numbers: the paths' mean in each period within 5 standard errors of the cohort's mean
+    # (common practice), the standard error from the cohort's own distribution.
+    for t in range(AGES):
+        weights = np.array(result["cohort"]["distribution"][t]).sum(axis=1)
+        spread = np.sqrt(weights @ (ASSETS - means_a[t]) ** 2)
+        assert abs(simulated[t] - means_a[t]) <= 5 * spread / np.sqrt(20_000) + 1e-12
+    assert result["simulation"]["first_path"]["a"][0] == 0.0
+
+
+def test_cohort_and_simulation_faults_name_their_field() -> None:
+    document = life_cycle()
+    document["report"] = {"simulation": {"periods": AGES + 1, "paths": 10}}
+    faults = bad(document)
+    assert "at most model.horizon.periods" in faults["report.simulation.periods"]
+    assert "no long-run distribution" in faults["report.simulation.start"]
+    document["report"] = {"cohort": {"distribution": [[0.5, 0.2, 0.2]] + [[0.0] * 3] * 40}}
+    assert "sums to" in bad(document)["report.cohort.distribution"]
+    document["report"] = {"cohort": {"start": {"a": 9.0, "y": 1.0}}}
+    assert "outside the grid" in bad(document)["report.cohort.start.a"]
+    infinite = life_cycle()
+    del infinite["model"]["horizon"]
+    infinite["model"]["params"] = {"r": 0.03, "income": 1.0, "survival": 0.9, "pension": 0.9, "bequest": 0.5}
+    infinite["model"]["define"]["earnings"] = "income * y"
+    infinite["report"] = {"cohort": {"start": {"a": 0.0, "y": 1.0}}}
+    assert "finite horizon" in bad(infinite)["report.cohort"]

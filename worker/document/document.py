@@ -48,6 +48,7 @@ from worker.document.limits import (
     MAX_LABEL_CHARS,
     MAX_REPORTED,
     MAX_TAGS,
+    ROW_SUM_TOLERANCE,
 )
 from worker.document.options import InitialValues, NotifySpec, ReportSpec, SolverSpec
 from worker.document.tabular import TabularModel
@@ -164,7 +165,7 @@ class ProblemDocument(Part):
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
-        faults = self._discount_faults() + self._initial_faults() + self._start_faults()
+        faults = self._discount_faults() + self._initial_faults() + self._start_faults() + self._cohort_faults()
         raise_faults(faults)
         return self
 
@@ -189,9 +190,42 @@ class ProblemDocument(Part):
 
     def _start_faults(self) -> list[Fault]:
         simulation = self.report.simulation
+        horizon = self.model.horizon
+        faults = []
+        where = join_path("report", self.report.simulation_key)
+        if simulation is not None and horizon is not None:
+            if simulation.periods > horizon.periods:
+                faults.append(fault(join_path(where, "periods"), f"paths run from period 0 through the horizon, at "
+                                    f"most model.horizon.periods = {horizon.periods:,} periods, not "
+                                    f"{simulation.periods:,}"))
+            if simulation.start is None and self.report.cohort is None:
+                faults.append(fault(join_path(where, "start"), "with a finite horizon there is no long-run "
+                                    "distribution to start from: give start, or report.cohort (paths then start "
+                                    "from the cohort's period-0 distribution)"))
         if simulation is None or simulation.start is None:
+            return faults
+        return faults + start_faults(self.model, simulation.start, join_path(where, "start"))
+
+    def _cohort_faults(self) -> list[Fault]:
+        cohort = self.report.cohort
+        if cohort is None:
             return []
-        return start_faults(self.model, simulation.start, join_path("report", self.report.simulation_key, "start"))
+        if self.model.horizon is None:
+            return [fault("report.cohort", "a cohort is followed through a finite horizon: give model.horizon (or "
+                          "use report.stationary for the long-run distribution of an infinite horizon)")]
+        if cohort.start is not None:
+            return start_faults(self.model, cohort.start, "report.cohort.start")
+        shape, got = self.value_shape(), cohort.distribution.shape
+        where = "report.cohort.distribution"
+        if got != shape and got != (math.prod(shape),):
+            return [fault(where, f"has shape {list(got)}, but one period's value has shape {list(shape)} (a flat "
+                          f"list of {math.prod(shape):,} is also accepted)")]
+        if (cohort.distribution < 0).any():
+            return [fault(where, "probabilities must not be negative")]
+        total = float(cohort.distribution.sum())
+        if abs(total - 1.0) > ROW_SUM_TOLERANCE:
+            return [fault(where, f"sums to {total!r}; a distribution sums to 1 (within {ROW_SUM_TOLERANCE:g})")]
+        return []
 
 
 def parse_document(raw: Any) -> ProblemDocument:

@@ -175,6 +175,47 @@ def _start_form(value: Any) -> str | None:
     return None
 
 
+StartPoint = Annotated[
+    Union[
+        Annotated[dict[str, float], annotated_types.MaxLen(2 * MAX_AXES), Tag("<values>")],
+        Annotated[str, Tag("<label>")],
+        Annotated[Integer, Tag("<index>")],
+    ],
+    Discriminator(
+        _start_form,
+        custom_error_type="fixq_start",
+        custom_error_message="expected an object of state and shock values, a state label or a state index",
+    ),
+]
+"""One point of the state space: grid models an object of state and shock values, tabular models a label or index."""
+
+
+class CohortSpec(Part):
+    """Follow a cohort through a finite horizon: its distribution over the points in every period, from a
+    start in period 0, under the optimal policy of each period."""
+
+    start: StartPoint | None = Field(
+        default=None,
+        description=(
+            "Where the whole cohort starts in period 0. Grid models: an object giving a value for every state and "
+            "shock, each within its grid (the nearest grid point is used). Tabular models: a state label or index."
+        ),
+    )
+    distribution: AnyArray | None = Field(
+        default=None,
+        description=(
+            "Instead of start: the cohort's distribution over the points in period 0, an array shaped like the "
+            "value of one period (or flat), non-negative and summing to 1 (within 1e-9; it is rescaled)."
+        ),
+    )
+
+    @model_validator(mode="after")
+    def _one_start(self) -> CohortSpec:
+        if (self.start is None) == (self.distribution is None):
+            raise faults_error([fault("", "give either start or distribution: where the cohort is in period 0")])
+        return self
+
+
 class SimulateSpec(Part):
     """Simulate paths under the optimal policy."""
 
@@ -258,6 +299,14 @@ class ReportSpec(Part):
         description=(
             "Also simulate paths under the optimal policy. The key simulate is accepted as a deprecated alias; "
             "the canonical form writes simulation."
+        ),
+    )
+
+    cohort: CohortSpec | None = Field(
+        default=None,
+        description=(
+            "With a finite horizon (model.horizon): the distribution of a cohort over the points in every period "
+            "from period 0, and the mean of every state, shock and choice by period (the result's cohort)."
         ),
     )
 
