@@ -151,14 +151,18 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
             values, indices = problem.describe_policy(row)
             for name in values:
                 policy.setdefault(name, []).append(values[name])
-                policy_index.setdefault(name, []).append(indices[name])
+                if indices is not None:  # a continuous choice has no grid index
+                    policy_index.setdefault(name, []).append(indices[name])
     problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
+    continuous = getattr(problem, "choose_at", None) is not None
     notes.append(
         f"solved by backward induction: one exact Bellman step per period from the terminal value, "
         f"{len(periods)} of {plan.periods} periods; the value is exact up to rounding, and the error bound is the "
         "rounding allowance accumulated over the periods"
+        + ("; with a continuous choice, exact for the fitted problem (tomorrow's value interpolated), each "
+           "period's maximum found by its search" if continuous else "")
     )
     if outcome.status == "time_limit":
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
@@ -204,7 +208,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         **head,
         "value": value,
         "policy": policy,
-        "policy_index": policy_index,
+        "policy_index": policy_index or None,
         **tail,
     }
 

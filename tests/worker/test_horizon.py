@@ -358,3 +358,46 @@ def test_cohort_and_simulation_faults_name_their_field() -> None:
     infinite["model"]["define"]["earnings"] = "income * y"
     infinite["report"] = {"cohort": {"start": {"a": 0.0, "y": 1.0}}}
     assert "finite horizon" in bad(infinite)["report.cohort"]
+
+
+def test_cake_eating_with_a_continuous_choice_follows_the_textbook_rule() -> None:
+    periods, extra = 6, 3
+    # The terminal value is the closed-form value with `extra` periods left, so the rule of a
+    # (periods + extra)-period problem applies in every period; then what is kept, β A_{t+1}/A_t of the
+    # cake, is at least 0.7 and the choice's interval [0.6 w, 0.99 w] holds it inside.
+    total = periods + extra
+    A = (1 - BETA ** (total - np.arange(total + 1))) / (1 - BETA)
+    _, exact = cake_closed_form(total, np.array([1.0]))
+    B = exact[:, 0]  # the closed form's constant: its value at W = 1
+    document = {
+        "version": 1,
+        "discount": BETA,
+        "model": {
+            "kind": "grid",
+            "params": {"A": float(A[periods]), "B": float(B[periods])},
+            "states": {"w": {"min": 0.005, "max": 2.0, "points": 300, "spacing": "log"}},
+            "choices": {"wn": {"continuous": True, "min": "0.6 * w", "max": "0.99 * w"}},
+            "next": {"w": "wn"},
+            "reward": "log(w - wn)",
+            "interpolation": "monotone_cubic",
+            "hints": {"concave": True},
+            "horizon": {"periods": periods, "terminal_value": "A * log(w) + B"},
+        },
+    }
+    result = solve(document)
+    assert result["policy_index"] is None and list(result["axes"]) == ["period", "w"]
+    assert any("fitted problem" in note for note in result["diagnostics"]["notes"])
+    w = np.array(result["axes"]["w"])
+    eaten = w[None, :] - np.array(result["policy"]["wn"])
+    value = np.array(result["value"])
+    step = np.log(w[1] / w[0])
+    for t in range(periods):
+        # Below the grid's end tomorrow's value is read at the end (clamped, too high), which can pull a
+        # point's choice down; a point w reaches below 0.005 within the remaining periods only from
+        # w < 0.005 / 0.6^(periods − t), so the check starts above that.
+        safe = w >= 0.005 / 0.6 ** (periods - t)
+        rule = w[safe] / A[t]
+        # Monotone cubic interpolation of smooth data is accurate to order h² in the step h (Fritsch and
+        # Carlson 1980; here h is the step of log w): consumption within h² relative, the value within h².
+        assert np.abs(eaten[t, safe] - rule).max() <= step**2 * rule.max()
+        assert np.abs(value[t, safe] - (A[t] * np.log(w[safe]) + B[t])).max() <= step**2

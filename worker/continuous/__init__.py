@@ -76,6 +76,7 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     module = _codegen.load(text)
     params = _codegen.kernel_params(data.param_values, literals)
     problem = ContinuousProblem(doc, data, module, params)
+    problem.kernel_literals = literals
     problem.egm_form = egm
     problem.warm_up()
     problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}

@@ -152,9 +152,6 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
         if PERIOD_NAME in names:
             faults.append(fault(join_path(section, PERIOD_NAME), f"with a horizon, `{PERIOD_NAME}` names the period "
                                 "(counted from 0); give this one another name"))
-    if model.continuous_choice() is not None:
-        faults.append(fault("horizon", "a finite horizon is not available yet for a model with a continuous choice; "
-                            "give the choice a grid (min, max and points, or next_of without continuous)"))
     lists = [name for name, value in model.params.items() if isinstance(value, list)]
     scalars = [name for name in model.params if name not in lists]
     if isinstance(horizon.terminal_value, str):

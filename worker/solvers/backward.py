@@ -125,7 +125,8 @@ def backward_induction(
     """Solve the periods from the last to the first; see the module for the rules."""
     T, n = plan.periods, problem.n
     values = np.empty((T, n))
-    policies = np.empty((T, n), dtype=np.int64)
+    # Choice indices, or the chosen values of a continuous choice (float64), as the problem's steps give them.
+    policies = np.empty((T, n), dtype=np.float64 if getattr(problem, "choose_at", None) is not None else np.int64)
     bounds = np.zeros(T)
     log: list[Entry] = ConvergenceLog()
     warnings: list[str] = []
@@ -204,7 +205,7 @@ def _period_step(
         guess = hinted_policy
     tv, policy = problem.bellman_step(after, restricted=False, policy_guess=guess)
     tv = np.asarray(tv, dtype=np.float64)
-    policy = np.asarray(policy, dtype=np.int64)
+    policy = np.asarray(policy)
     if not np.isfinite(tv).all():
         bad = np.flatnonzero(~np.isfinite(tv))
         raise InfeasibleModel.at(
