@@ -348,14 +348,20 @@ def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
     return steps, evaluation, basis
 
 
-def horizon_bytes(model: Any, n: int) -> int:
+def horizon_bytes(doc: Any, n: int) -> int:
     """The value and policy of every period of a finite horizon, kept for the result (bytes; 0 without one).
 
     Per period and point: the value and the policy (8 bytes each) in the solve, and the result's
-    nested lists of them (about ``RESULT_BYTES_PER_STATE``).
+    nested lists of them (about ``RESULT_BYTES_PER_STATE``); with ``report.cohort`` the cohort's
+    distribution by period as well.
     """
-    horizon = getattr(model, "horizon", None)
-    return 0 if horizon is None else int(horizon.periods) * n * (16 + RESULT_BYTES_PER_STATE)
+    horizon = getattr(doc.model, "horizon", None)
+    if horizon is None:
+        return 0
+    per_point = 16 + RESULT_BYTES_PER_STATE
+    if doc.report.cohort is not None:
+        per_point += 8 + RESULT_BYTES_PER_STATE // 3
+    return int(horizon.periods) * n * per_point
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -449,7 +455,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "shocks": plan.shocks,
         "choice_points": plan.choices,
         "pairs": plan.pairs,
-        "bytes": plan.bytes + horizon_bytes(model, plan.n),
+        "bytes": plan.bytes + horizon_bytes(doc, plan.n),
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
@@ -498,7 +504,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(model, n_states),
+        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(doc, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,

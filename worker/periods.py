@@ -167,6 +167,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     if outcome.status == "time_limit":
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
+    if doc.solver.initial not in (None, "zeros"):
+        notes.append("solver.initial was not used: backward induction starts from the terminal value")
     report = doc.report
     if report.stationary:
         notes.append("no stationary distribution: a model with a finite horizon has none (report.cohort gives the "

@@ -283,6 +283,9 @@ def test_a_finite_horizon_job_draws_value_and_policy_by_period(
         svg_ids(svg.content)
     result = store.get_result(job_id)
     assert result is not None and list(result["axes"]) == ["period", "savings", "orders"]
+    record = store.get_job(job_id)
+    assert record["progress"]["period"] == 0 and record["progress"]["periods"] == 60 and record["iterations"] == 60
+    assert [entry["period"] for entry in store.get_log(job_id)] == list(range(59, -1, -1))
     assert plots.axis_layout(result, load_example("glassblower_life_cycle")) == plots.AxisLayout(
         states=("period", "savings"), shocks=("orders",))
 

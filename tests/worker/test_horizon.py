@@ -16,8 +16,11 @@ from typing import Any
 import numpy as np
 import pytest
 
+from service.checkpoints import decode_checkpoint, encode_checkpoint
 from worker import solve
+from worker.document import parse_document
 from worker.errors import Canceled, InvalidDocument
+from worker.estimate import estimate
 
 BETA = 0.9
 
@@ -167,18 +170,20 @@ def test_life_cycle_reports_progress_per_period_and_cancels_between_periods() ->
 
 
 class MemoryCheckpoint:
-    """A checkpoint store in memory that can stop the solve after its first save."""
+    """A checkpoint store in memory, holding the bytes the service would write to Redis."""
 
     def __init__(self) -> None:
-        self.state: dict[str, Any] | None = None
-        self.saves = 0
+        self.payload: bytes | None = None
+
+    @property
+    def state(self) -> dict[str, Any] | None:
+        return None if self.payload is None else decode_checkpoint(self.payload)
 
     def load(self) -> dict[str, Any] | None:
-        return copy.deepcopy(self.state)
+        return self.state
 
     def save(self, state: dict[str, Any]) -> None:
-        self.saves += 1
-        self.state = copy.deepcopy(state)
+        self.payload = encode_checkpoint(state)
 
 
 def test_a_checkpoint_by_period_resumes_with_the_next_period() -> None:
@@ -198,6 +203,14 @@ def test_a_checkpoint_by_period_resumes_with_the_next_period() -> None:
     other = life_cycle()
     other["model"]["params"]["r"] = 0.02
     assert solve(other, checkpoint=store)["diagnostics"]["resumed_from_iteration"] is None
+
+
+def test_the_estimate_counts_every_period_and_the_log_says_how_many() -> None:
+    sized = estimate(parse_document(life_cycle()))
+    assert sized["reward_storage"] == "on_the_fly" and "changes with the period" in sized["notes"][0]
+    assert sized["bytes"] >= AGES * 41 * 3 * 16
+    assert f"{AGES} periods of backward induction" in sized["basis"]
+    assert {entry["periods"] for entry in solve(life_cycle())["log"]} == {AGES}
 
 
 def test_a_time_limit_keeps_the_periods_solved() -> None:

@@ -29,7 +29,8 @@ where the hinted search missed a better choice is counted in ``verification`` an
 
 Progress, checkpoints, cancel
 -----------------------------
-One log entry per period (``iteration`` counts the periods done, ``period`` names the period);
+One log entry per period (``iteration`` counts the periods done, ``period`` names the period,
+``periods`` is ``T``);
 ``should_stop`` is polled before each period; a checkpoint (every ``checkpoint_s`` solving seconds)
 holds the values and policies of the periods done, so a resumed solve continues with the next
 period.  A time limit stops between periods with status ``time_limit``: the result then covers
@@ -169,6 +170,7 @@ def backward_induction(
         entry = {
             "iteration": done,
             "period": t,
+            "periods": T,
             "distance": float(np.abs(tv - after).max()),
             "error_bound": float(bounds[t:].max()),
             "policy_changes": n if t == T - 1 else int(np.count_nonzero(policy != policies[t + 1])),
