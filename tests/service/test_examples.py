@@ -407,6 +407,12 @@ def test_glassblower_saves_while_working_and_draws_down_in_retirement(solved: di
     value = np.array(result["value"])
     np.testing.assert_allclose(value[retired][:, 0, 0], by_hand[:0:-1], rtol=1e-12)
     assert result["error_bound"] < 1e-9
+    # The cohort starts with nothing saved: its wealth builds up over the working years and is run down
+    # in retirement (a hump peaking around 65).
+    wealth = np.array(result["cohort"]["means"]["savings"])
+    peak = int(wealth.argmax())
+    assert wealth[0] == 0.0 and 35 <= peak <= 41 and wealth[peak] > 1.0
+    assert (np.diff(wealth[: peak + 1]) >= 0).all() and (np.diff(wealth[peak:]) < 0).all()
 
 
 def test_examples_survive_a_json_round_trip_unchanged() -> None:
