@@ -414,3 +414,67 @@ def test_cake_eating_with_a_continuous_choice_follows_the_textbook_rule() -> Non
         # Carlson 1980; here h is the step of log w): consumption within h² relative, the value within h².
         assert np.abs(eaten[t, safe] - rule).max() <= step**2 * rule.max()
         assert np.abs(value[t, safe] - (A[t] * np.log(w[safe]) + B[t])).max() <= step**2
+
+
+WAGES = [0.8, 1.0, 1.2, 1.1]
+
+
+def working_household(wage: Any) -> dict[str, Any]:
+    """An invented household over 4 periods: savings and a work menu, skills h that grow with work (moved by
+    interpolation), a wage that may change by period."""
+    return {
+        "version": 1,
+        "discount": 0.95,
+        "model": {
+            "kind": "grid",
+            "params": {"wage": wage},
+            "states": {"a": {"min": 0.0, "max": 4.0, "points": 25}, "h": {"min": 0.5, "max": 2.0, "points": 4}},
+            "shocks": {"e": {"markov": {"values": [0.8, 1.2], "matrix": [[0.9, 0.1], [0.2, 0.8]]}}},
+            "choices": {"a_next": {"next_of": "a"}, "work": {"values": [0.0, 0.5, 1.0]}},
+            "next": {"h": "0.9 * h + 0.3 * work"},
+            "define": {"income": "wage * e * h * work + 1.02 * a", "c": "income + 0.2 - a_next"},
+            "reward": "log(c) - 0.5 * work**2",
+            "feasible": ["c > 0"],
+            "horizon": {"periods": len(WAGES), "terminal_value": "log(1 + a + h)"},
+        },
+    }
+
+
+def working_household_by_numpy(wages: list[float]) -> np.ndarray:
+    """Independent backward induction of :func:`working_household` in plain numpy: the value, (T, a, h, e).
+
+    Tomorrow's skills are clamped to [0.5, 2] and read by linear interpolation between grid points.
+    """
+    a = np.linspace(0.0, 4.0, 25)
+    h = np.linspace(0.5, 2.0, 4)
+    e = np.array([0.8, 1.2])
+    P = np.array([[0.9, 0.1], [0.2, 0.8]])
+    work = np.array([0.0, 0.5, 1.0])
+    after = np.log(1 + a[:, None, None] + h[None, :, None]) * np.ones((1, 1, 2))  # (a', h', e')
+    values = []
+    for t in range(len(wages) - 1, -1, -1):
+        expected = after @ P.T  # (a', h', e): E[V(a', h', e') | e]
+        q = np.full((25, 4, 2, 25, 3), -np.inf)  # (a, h, e, a', work)
+        for k, w in enumerate(work):
+            h_next = np.clip(0.9 * h + 0.3 * w, 0.5, 2.0)
+            low = np.minimum(np.searchsorted(h, h_next, side="right") - 1, 2)
+            share = (h_next - h[low]) / (h[low + 1] - h[low])
+            ev = expected[:, low, :] * (1 - share)[None, :, None] + expected[:, low + 1, :] * share[None, :, None]
+            c = (wages[t] * e[None, None, :] * h[None, :, None] * w + 1.02 * a[:, None, None] + 0.2)[..., None] \
+                - a[None, None, None, :]
+            with np.errstate(divide="ignore", invalid="ignore"):
+                utility = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf) - 0.5 * w**2
+            q[..., k] = utility + 0.95 * np.moveaxis(ev, 0, -1)[None]  # ev (a', h, e) → (h, e, a')
+        after = q.reshape(25, 4, 2, -1).max(axis=3)
+        values.append(after)
+    return np.array(values[::-1])
+
+
+@pytest.mark.parametrize("by_period", [True, False])
+def test_several_choices_and_interpolated_states_match_a_plain_numpy_backward_induction(by_period: bool) -> None:
+    wages = WAGES if by_period else [1.0] * len(WAGES)
+    document = working_household(WAGES if by_period else 1.0)
+    result = solve(document)
+    storage = "on_the_fly" if by_period else "tables"  # per-period params are read as the kernels run
+    assert storage in result["diagnostics"]["notes"][0]
+    np.testing.assert_allclose(np.array(result["value"]), working_household_by_numpy(wages), rtol=0, atol=1e-12)
