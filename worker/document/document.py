@@ -258,8 +258,11 @@ def parse_document(raw: Any) -> ProblemDocument:
 
 
 def _has_horizon(raw: Any) -> bool:
+    """Whether the raw document's model has a horizon; the model may be given already validated (sweeps)."""
     model = raw.get("model") if isinstance(raw, dict) else None
-    return isinstance(model, dict) and model.get("horizon") is not None
+    if isinstance(model, dict):
+        return model.get("horizon") is not None
+    return getattr(model, "horizon", None) is not None
 
 
 def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
