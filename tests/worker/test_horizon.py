@@ -478,3 +478,33 @@ def test_several_choices_and_interpolated_states_match_a_plain_numpy_backward_in
     storage = "on_the_fly" if by_period else "tables"  # per-period params are read as the kernels run
     assert storage in result["diagnostics"]["notes"][0]
     np.testing.assert_allclose(np.array(result["value"]), working_household_by_numpy(wages), rtol=0, atol=1e-12)
+
+
+def test_a_time_limit_between_periods_keeps_the_last_periods_exactly() -> None:
+    import time
+
+    document = life_cycle()
+    document["solver"] = {"time_limit_s": 0.1}
+    document["report"] = {"cohort": {"start": {"a": 0.0, "y": 1.0}}}
+    # Each period's progress report takes 60 ms, so the limit falls after the second period.
+    result = solve(document, on_progress=lambda entry: time.sleep(0.06))
+    assert result["status"] == "time_limit" and result["axes"]["period"] == [4, 5]
+    full = solve(life_cycle())
+    np.testing.assert_array_equal(np.array(result["value"]), np.array(full["value"])[4:])
+    assert result["cohort"] is None
+    assert any("did not reach" in note for note in result["diagnostics"]["notes"])
+
+
+def test_a_broken_hint_is_reported_and_the_value_stays_exact() -> None:
+    # A bonus for keeping more than 1.2 makes the objective two-peaked in the choice: the concave
+    # hint's search stops at the first peak.
+    document = cake(5, 201)
+    document["model"]["reward"] = "where(w > 0, log(w - wn) + where(wn > 1.2, 0.8, 0), -1e6)"
+    hinted = solve(document)
+    document["model"]["hints"] = {"monotone": False, "concave": False}
+    plain = solve(document)
+    assert not hinted["diagnostics"]["verification"]["hints_held"]
+    assert any("did not hold" in warning for warning in hinted["diagnostics"]["warnings"])
+    # With hints the model is evaluated on the fly, without them from tables: the last bits may differ.
+    np.testing.assert_allclose(np.array(hinted["value"]), np.array(plain["value"]), rtol=1e-14, atol=0)
+    np.testing.assert_array_equal(np.array(hinted["policy"]["wn"]), np.array(plain["policy"]["wn"]))
