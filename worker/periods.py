@@ -36,11 +36,15 @@ PERIOD_AXIS = "period"
 """The first axis of a finite-horizon result's value and policy (its values: the periods, from 0)."""
 
 
-def period_plan(doc: Any, problem: CompiledProblem) -> PeriodPlan:
-    """The periods, discounts, terminal value and period switch of a document with ``model.horizon``."""
-    if doc.model.kind == "tabular":
-        return _tabular_plan(doc, problem)
-    return _grid_plan(doc, problem)
+def period_plan(doc: Any, problem: CompiledProblem, *, terminal: np.ndarray | None = None) -> PeriodPlan:
+    """The periods, discounts, terminal value and period switch of a document with ``model.horizon``.
+
+    ``terminal`` ((n,) float64), when given, replaces ``model.horizon.terminal_value`` (from ``solver.initial``).
+    """
+    plan = _tabular_plan(doc, problem) if doc.model.kind == "tabular" else _grid_plan(doc, problem)
+    if terminal is not None:
+        plan.terminal = np.asarray(terminal, dtype=np.float64).reshape(problem.n)
+    return plan
 
 
 def _tabular_plan(doc: Any, problem: Any) -> PeriodPlan:
@@ -168,7 +172,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
     if doc.solver.initial not in (None, "zeros"):
-        notes.append("solver.initial was not used: backward induction starts from the terminal value")
+        notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
     report = doc.report
     if report.stationary:
         notes.append("no stationary distribution: a model with a finite horizon has none (report.cohort gives the "

@@ -508,3 +508,23 @@ def test_a_broken_hint_is_reported_and_the_value_stays_exact() -> None:
     # With hints the model is evaluated on the fly, without them from tables: the last bits may differ.
     np.testing.assert_allclose(np.array(hinted["value"]), np.array(plain["value"]), rtol=1e-14, atol=0)
     np.testing.assert_array_equal(np.array(hinted["policy"]["wn"]), np.array(plain["policy"]["wn"]))
+
+
+def test_a_life_solved_in_two_spans_equals_the_whole_life() -> None:
+    # The later span's first-period value, passed as the earlier span's solver.initial (as the service
+    # passes an earlier job's result), is the value after the earlier span's last period.
+    whole = solve(life_cycle())
+    later = life_cycle(periods=3, terminal_value="bequest * log(1 + a)")
+    later["model"]["params"].update(income=INCOME[3:], survival=SURVIVAL[3:])
+    later["model"]["define"]["earnings"] = "where(period + 3 >= 4, pension, income * y)"
+    earlier = life_cycle(periods=3)
+    del earlier["model"]["horizon"]["terminal_value"]
+    earlier["model"]["params"].update(income=INCOME[:3], survival=SURVIVAL[:3])
+    earlier["solver"] = {"initial": {"job": "0123456789abcdef"}}
+    later_result = solve(later)
+    joined = solve(earlier, warm_start={"axes": later_result["axes"], "value": later_result["value"]})
+    np.testing.assert_array_equal(np.array(joined["value"]), np.array(whole["value"])[:3])
+    np.testing.assert_array_equal(np.array(later_result["value"]), np.array(whole["value"])[3:])
+    assert any("solver.initial" in note for note in joined["diagnostics"]["notes"])
+    earlier["model"]["horizon"]["terminal_value"] = "0"
+    assert "give it once" in bad(earlier)["model.horizon.terminal_value"]

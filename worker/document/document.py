@@ -165,7 +165,8 @@ class ProblemDocument(Part):
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
-        faults = self._discount_faults() + self._initial_faults() + self._start_faults() + self._cohort_faults()
+        faults = (self._discount_faults() + self._initial_faults() + self._terminal_faults() + self._start_faults()
+                  + self._cohort_faults())
         raise_faults(faults)
         return self
 
@@ -173,6 +174,13 @@ class ProblemDocument(Part):
         if self.discount < 1 or self.model.horizon is not None:
             return []
         return [fault("discount", _DISCOUNT_BELOW_ONE.format(value=number(self.discount)))]
+
+    def _terminal_faults(self) -> list[Fault]:
+        horizon = self.model.horizon
+        if horizon is None or self.solver.initial in (None, "zeros") or "terminal_value" not in horizon.model_fields_set:
+            return []
+        return [fault("model.horizon.terminal_value", "with a horizon, solver.initial is the value after the last "
+                      "period: give it once, as terminal_value or as solver.initial")]
 
     def _initial_faults(self) -> list[Fault]:
         if not isinstance(self.solver.initial, InitialValues):

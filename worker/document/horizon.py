@@ -79,7 +79,8 @@ class GridHorizon(Part):
         description=(
             "The value after the last period (a bequest, a scrap value): a number, or an expression of the "
             "states, shocks and params (lists of per-period values excepted: there is no period after the last; "
-            "`period` is the number of periods). Default 0."
+            "`period` is the number of periods). Default 0; solver.initial, when given, is used instead (an "
+            "earlier job's value, say)."
         ),
     )
     discount: NumberOrExpression | None = Field(
@@ -102,7 +103,10 @@ class TabularHorizon(Part):
     )
     terminal_value: float | Vector = Field(
         default=0.0,
-        description="The value after the last period: a number for every state, or one per state. Default 0.",
+        description=(
+            "The value after the last period: a number for every state, or one per state. Default 0; solver.initial, "
+            "when given, is used instead."
+        ),
     )
     discount: Vector | None = Field(
         default=None,

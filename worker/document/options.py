@@ -160,7 +160,9 @@ class SolverSpec(Part):
         default="zeros",
         description=(
             'Where iteration starts: "zeros" (the default), {"values": ARRAY}, or {"job": ID} to start from an '
-            'earlier job\'s value function.'
+            'earlier job\'s value function. With a finite horizon (model.horizon) it is the value after the last '
+            'period instead of terminal_value: values shaped like one period\'s value, or an earlier job (an '
+            'infinite-horizon one, or a finite one whose first period follows this horizon\'s last).'
         ),
     )
 
