@@ -177,7 +177,8 @@ class ProblemDocument(Part):
 
     def _terminal_faults(self) -> list[Fault]:
         horizon = self.model.horizon
-        if horizon is None or self.solver.initial in (None, "zeros") or "terminal_value" not in horizon.model_fields_set:
+        given = horizon is not None and "terminal_value" in horizon.model_fields_set
+        if not given or self.solver.initial in (None, "zeros"):
             return []
         return [fault("model.horizon.terminal_value", "with a horizon, solver.initial is the value after the last "
                       "period: give it once, as terminal_value or as solver.initial")]
