@@ -317,6 +317,14 @@ def test_horizon_faults_name_their_field() -> None:
     assert "positive in every period" in faults["model.horizon.discount[1]"]
 
 
+def test_the_method_may_be_named_backward_induction_with_a_horizon_only() -> None:
+    document = cake(3, 51)
+    document["solver"] = {"method": "backward_induction"}
+    assert solve(document)["method"] == "backward_induction"
+    del document["model"]["horizon"]
+    assert "finite horizon" in bad(document)["solver.method"]
+
+
 def test_a_discount_of_one_or_more_needs_a_horizon() -> None:
     document = cake(3, 51)
     document["discount"] = 1.0

@@ -165,8 +165,8 @@ class ProblemDocument(Part):
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
-        faults = (self._discount_faults() + self._initial_faults() + self._terminal_faults() + self._start_faults()
-                  + self._cohort_faults())
+        faults = (self._discount_faults() + self._method_faults() + self._initial_faults() + self._terminal_faults()
+                  + self._start_faults() + self._cohort_faults())
         raise_faults(faults)
         return self
 
@@ -174,6 +174,12 @@ class ProblemDocument(Part):
         if self.discount < 1 or self.model.horizon is not None:
             return []
         return [fault("discount", _DISCOUNT_BELOW_ONE.format(value=number(self.discount)))]
+
+    def _method_faults(self) -> list[Fault]:
+        if self.solver.method != "backward_induction" or self.model.horizon is not None:
+            return []
+        return [fault("solver.method", "backward induction solves a model with a finite horizon: give model.horizon, "
+                      "or use howard, value_iteration or policy_iteration for an infinite one")]
 
     def _terminal_faults(self) -> list[Fault]:
         horizon = self.model.horizon

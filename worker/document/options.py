@@ -49,8 +49,9 @@ from worker.document.limits import (
     MAX_URL_CHARS,
 )
 from worker.solvers import METHODS
+from worker.solvers.backward import METHOD as BACKWARD_INDUCTION
 
-METHOD_NAMES = tuple(METHODS)
+METHOD_NAMES = tuple(sorted((*METHODS, BACKWARD_INDUCTION)))
 """Solver methods, as written in documents: the keys of the solvers' registry."""
 
 DEPRECATED_SIMULATION_KEY = "simulate"
@@ -106,7 +107,9 @@ class SolverSpec(Part):
             "evaluation steps of the current policy, see evaluation_steps; the default), \"policy_iteration\" "
             "(each policy evaluated exactly by solving a linear system) or \"endogenous_grid\" (Carroll's "
             "endogenous grid method, for a model with one state, a continuous next_of choice and a reward that "
-            "depends on it through one define; its value certified by Howard's method from the policy found)."
+            "depends on it through one define; its value certified by Howard's method from the policy found). "
+            "A model with a finite horizon (model.horizon) is always solved by \"backward_induction\", which may be "
+            "named here; without a horizon it is refused."
         ),
     )
     tolerance: Positive = Field(
