@@ -250,6 +250,16 @@ def test_tabular_horizon_matches_a_plain_numpy_backward_induction() -> None:
     np.testing.assert_allclose(np.array(result["value"]), np.array(values[::-1]), rtol=0, atol=1e-13)
     np.testing.assert_array_equal(np.array(result["policy_index"]["action"]), np.array(actions[::-1]))
     assert list(result["axes"]) == ["period", "state_label"]
+    # A cohort spread over the states in period 0 moves by each period's policy (plain numpy forward pass).
+    start = np.linspace(1.0, 2.0, 12)
+    start /= start.sum()
+    document["report"] = {"cohort": {"distribution": start.tolist()}}
+    cohort = solve(document)["cohort"]
+    mu = start
+    for t, chosen in enumerate(actions[::-1]):
+        np.testing.assert_allclose(cohort["distribution"][t], mu, rtol=0, atol=1e-15)
+        assert cohort["means"]["action"][t] == pytest.approx(float(mu @ chosen), abs=1e-13)
+        mu = mu @ transition[np.arange(12), chosen]
 
 
 def test_long_horizons_approach_the_infinite_horizon_solution_at_rate_beta_to_the_T() -> None:
