@@ -100,8 +100,8 @@ def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
     if bad.size:
         t = int(bad[0])
         raise InvalidDocument.at(
-            where, f"gives {discounts[t]!r} in period {t}: the discount must be a positive number in every period"
-            + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
+            where, f"gives {float(discounts[t])!r} in period {t}: the discount must be a positive number in every "
+            "period" + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
         )
     return discounts
 
@@ -128,9 +128,8 @@ def _terminal_value(doc: Any, data: Any) -> np.ndarray:
     bad = np.flatnonzero(~np.isfinite(terminal))
     if bad.size:
         raise InvalidDocument.at(
-            where, f"is {terminal[bad[0]]!r} at {data.describe_state(int(bad[0]))}: the terminal value must be a "
-            "finite "
-            f"number at every point ({bad.size:,} points fail)",
+            where, f"is {float(terminal[bad[0]])!r} at {data.describe_state(int(bad[0]))}: the terminal value must "
+            f"be a finite number at every point ({bad.size:,} points fail)",
         )
     return terminal.copy()
 

@@ -578,3 +578,9 @@ def test_euler_errors_by_period_use_each_period_and_the_next() -> None:
     finer["report"] = {"euler_errors": True}
     drop = errors["mean_log10"] - solve(finer)["diagnostics"]["euler_errors"]["mean_log10"]
     assert 0.4 < drop < 0.8
+
+
+def test_a_terminal_value_that_is_not_finite_names_a_point() -> None:
+    document = cake(3, 51, terminal="log(w)")
+    message = bad(document)["model.horizon.terminal_value"]
+    assert message.startswith("is -inf at w = 0:") and "1 points fail" in message
