@@ -71,12 +71,30 @@ def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
     terminal = _terminal_value(doc, data)
     varying = varies_by_period(model)
 
+    if varying and data.span is not None:
+        _check_bounds_by_period(model, data)
+
     def enter(t: int) -> None:
         if varying:
             problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
         problem.discount = float(discounts[t])
 
     return PeriodPlan(periods, discounts, terminal, enter, data.describe_state)
+
+
+def _check_bounds_by_period(model: Any, data: Any) -> None:
+    """A continuous choice's min and max checked in every period (the compiler checked period 0's params)."""
+    import dataclasses
+
+    from worker.continuous import check_bounds
+    from worker.feasibility import period_params
+
+    for t in range(1, int(model.horizon.periods)):
+        try:
+            check_bounds(dataclasses.replace(data, param_values=period_params(model, t)))
+        except InvalidDocument as exc:
+            raise InvalidDocument([{**error, "message": f"in period {t}: {error['message']}"}
+                                   for error in exc.errors]) from None
 
 
 def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
@@ -170,6 +188,10 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     if outcome.status == "time_limit":
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
+    method = doc.solver.method
+    if "method" in doc.solver.model_fields_set and method != METHOD:
+        notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
+                     "induction")
     if doc.solver.initial not in (None, "zeros"):
         notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
     report = doc.report

@@ -584,3 +584,25 @@ def test_a_terminal_value_that_is_not_finite_names_a_point() -> None:
     document = cake(3, 51, terminal="log(w)")
     message = bad(document)["model.horizon.terminal_value"]
     assert message.startswith("is -inf at w = 0:") and "1 points fail" in message
+
+
+def test_a_continuous_choice_whose_bounds_cross_in_a_later_period_is_refused_naming_it() -> None:
+    document = {
+        "version": 1,
+        "discount": BETA,
+        "model": {
+            "kind": "grid",
+            "params": {"keep": [0.6, 0.6, 1.2]},
+            "states": {"w": {"min": 0.5, "max": 2.0, "points": 20}},
+            "choices": {"wn": {"continuous": True, "min": "keep * w", "max": "0.99 * w"}},
+            "next": {"w": "wn"},
+            "reward": "log(w - wn + 0.1)",
+            "horizon": {"periods": 3},
+            "solver": {"method": "howard"},
+        },
+    }
+    document["solver"] = document["model"].pop("solver")
+    message = bad(document)["model.choices.wn.max"]
+    assert message.startswith("in period 2:") and "below min" in message
+    document["model"]["params"]["keep"] = [0.6, 0.6, 0.7]
+    assert any("solver.method howard was not used" in note for note in solve(document)["diagnostics"]["notes"])
