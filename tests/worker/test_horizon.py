@@ -606,3 +606,14 @@ def test_a_continuous_choice_whose_bounds_cross_in_a_later_period_is_refused_nam
     assert message.startswith("in period 2:") and "below min" in message
     document["model"]["params"]["keep"] = [0.6, 0.6, 0.7]
     assert any("solver.method howard was not used" in note for note in solve(document)["diagnostics"]["notes"])
+
+
+def test_a_period_with_no_allowed_choice_somewhere_names_the_period_and_the_point() -> None:
+    from worker.errors import InfeasibleModel
+
+    document = life_cycle()
+    document["model"]["params"]["income"] = [1.0, 1.0, -9.0, 1.0, 1.0, 1.0]
+    with pytest.raises(InfeasibleModel) as caught:
+        solve(document)
+    message = caught.value.errors[0]["message"]
+    assert message.startswith("in period 2 no choice is allowed") and "a = 0" in message
