@@ -44,6 +44,12 @@ DESCRIPTIONS: dict[str, str] = {
         "A fishery sets this season's harvest; the stock left behind regrows logistically, "
         "scaled by this season's ocean conditions (a law of motion given in next)."
     ),
+    "glassblower_life_cycle": (
+        "A self-employed glassblower from age 25 to 84: earnings rise and ease with age and swing with orders, "
+        "a pension replaces them from 65, the chance of surviving each year falls with age and discounts the "
+        "future, and what is left behind counts as a bequest. A finite horizon solved by backward induction: "
+        "value and savings by age."
+    ),
     "household_saving": (
         "A household splits cash on hand between consumption and saving under persistent income risk; "
         "it cannot borrow more than 1 (the lowest asset level)."

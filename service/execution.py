@@ -296,6 +296,8 @@ class Execution:
         if entries:
             last = entries[-1]
             progress = {key: last.get(key) for key in ("iteration", "distance", "error_bound", "seconds")}
+            # A finite horizon's entries also say which period was solved and how many there are.
+            progress.update((key, last[key]) for key in ("period", "periods") if key in last)
         try:
             written = self.store.write_log(
                 self.job_id, self.token, entries, progress=progress, trim_from=self._trim_from

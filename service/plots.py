@@ -105,7 +105,8 @@ def axis_layout(result: dict[str, Any], document: dict[str, Any] | None = None) 
     if model.get("kind") == "tabular" or (not model and _looks_tabular(result)):
         return AxisLayout(states=tuple(names[:1]), shocks=(), tabular=True)
     if model:
-        declared_states = list(model.get("states") or {})
+        # A finite horizon's period axis comes first and is drawn as a state variable: value and policy by age.
+        declared_states = (["period"] if model.get("horizon") is not None else []) + list(model.get("states") or {})
         declared_shocks = list(model.get("shocks") or {})
         states = tuple(n for n in names if n in declared_states)
         shocks = tuple(n for n in names if n in declared_shocks)

@@ -1,4 +1,5 @@
-"""The terminal progress line of ``fixq submit --wait``: iteration, distance, error bound and a bar."""
+"""The terminal progress line of ``fixq submit --wait``: iteration, distance, error bound and a bar
+(a finite horizon: the period and how many periods are done)."""
 
 from __future__ import annotations
 
@@ -46,11 +47,21 @@ class ProgressBar:
             bound = math.inf
         elif self.first_bound is None and bound > 0:
             self.first_bound = bound
-        filled = round(self.fraction(bound) * self.WIDTH)
-        line = (
-            f"iteration {entry.get('iteration', '?'):>6}  distance {entry.get('distance', math.nan):9.3e}  "
-            f"error bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
-        )
+        periods = entry.get("periods")
+        if isinstance(periods, int) and periods > 0:
+            # A finite horizon: the bar fills by periods done, from the last period back to period 0.
+            done = int(entry.get("iteration", 0))
+            filled = round(min(1.0, done / periods) * self.WIDTH)
+            line = (
+                f"period {entry.get('period', '?'):>6}  ({done} of {periods} done)  "
+                f"error bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
+            )
+        else:
+            filled = round(self.fraction(bound) * self.WIDTH)
+            line = (
+                f"iteration {entry.get('iteration', '?'):>6}  distance {entry.get('distance', math.nan):9.3e}  "
+                f"error bound {bound:9.3e}  [{'#' * filled}{'.' * (self.WIDTH - filled)}]"
+            )
         now = time.monotonic()
         if self.live:
             self.stream.write("\r" + line)

@@ -11,9 +11,9 @@ in an unhinted one.
 from __future__ import annotations
 
 import math
-from collections.abc import Callable
 from typing import Any
 
+from worker.costs import MATVEC_NS, POINT_NS, grid_common_bytes, iteration_steps
 from worker.kernel_limits import compile_cost
 
 __all__ = ["SEARCH_POINTS", "continuous_estimate"]
@@ -27,15 +27,8 @@ _GRID_SCAN_MAX = 512
 """As :data:`worker.continuous.search.GRID_SCAN_MAX` (not imported: that package loads numba)."""
 
 
-def continuous_estimate(doc: Any, *, common_bytes: Callable[[int, int, int, str], int],
-                        steps_of: Callable[[Any, int], tuple[int, int, str]], point_ns: float,
-                        matvec_ns: float) -> dict[str, Any]:
-    """The :func:`worker.estimate.estimate` dictionary for a model with a continuous choice.
-
-    :func:`worker.estimate.estimate` passes its own measures in (the memory every grid model needs, the
-    iterations a solve takes, nanoseconds per model evaluation and per mat-vec entry), so they have one
-    source and this module does not import it back.
-    """
+def continuous_estimate(doc: Any) -> dict[str, Any]:
+    """The :func:`worker.estimate.estimate` dictionary for a model with a continuous choice."""
     model = doc.model
     name = model.continuous_choice()
     choice = model.choices[name]
@@ -46,13 +39,13 @@ def continuous_estimate(doc: Any, *, common_bytes: Callable[[int, int, int, str]
     nodes = 2**states
     scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
     method = doc.solver.method
-    memory = common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+    memory = grid_common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
     hinted = bool(model.hints.concave)
     per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
-    steps, per_iteration, basis = steps_of(doc, scan)
-    seconds = steps * (n * per_point * point_ns + per_iteration * n * nodes * shocks * matvec_ns) * 1e-9
+    steps, per_iteration, basis = iteration_steps(doc, scan)
+    seconds = steps * (n * per_point * POINT_NS + per_iteration * n * nodes * shocks * MATVEC_NS) * 1e-9
     if hinted:
-        seconds += n * (scan + SEARCH_POINTS) * point_ns * 1e-9  # the unhinted verification
+        seconds += n * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
     compile_bytes, compile_s = compile_cost(model)
     notes = [
         f"continuous choice `{name}`: no reward tables; tomorrow's value read by {model.interpolation} "
@@ -75,6 +68,6 @@ def continuous_estimate(doc: Any, *, common_bytes: Callable[[int, int, int, str]
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
         "seconds": seconds,
-        "basis": f"{basis}; a search of about {per_point} points per state ({point_ns:g} ns each)",
+        "basis": f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each)",
         "notes": notes,
     }

@@ -41,6 +41,24 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.costs import (
+    BOUND_NS,
+    CHOICE_BYTES,
+    EXACT_POINTS_PER_ROOT_CHOICE,
+    MATVEC_NS,
+    NUMPY_PAIR_NS,
+    POINT_NS,
+    RESULT_BYTES_PER_STATE,
+    SOLVER_BYTES_PER_STATE,
+    STATIC_CLIMB_POINTS,
+    TABLE_READ_NS,
+    grid_common_bytes,
+    horizon_bytes,
+    iteration_steps,
+    linear_solve_bytes,
+    linear_solve_seconds,
+    linear_solve_words,
+)
 from worker.drawnames import draw_count, draw_table_bytes
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
@@ -48,7 +66,7 @@ from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
 
 __all__ = [
-    "DIRECT_SOLVE_MAX_POINTS", "KRYLOV_RESIDUAL_SHARE", "KRYLOV_RESTART", "PRECOMPUTE_CAP_SHARE",
+    "PRECOMPUTE_CAP_SHARE",
     "PRECOMPUTE_MAX_BYTES", "REWARD_STORAGES", "GridPlan", "estimate", "grid_plan", "precompute_budget",
 ]
 
@@ -62,44 +80,6 @@ CHUNK_ELEMENTS = 1 << 20
 """(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
 CHUNK_TEMPORARIES = 8
 """float64 temporaries of chunk size alive at once while evaluating a model's expressions (count)."""
-
-TABLE_READ_NS = 3.0
-"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds)."""
-NUMPY_PAIR_NS = 40.0
-"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds)."""
-POINT_NS = 40.0
-"""Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds; one
-``pow`` with a runtime exponent dominates)."""
-BOUND_NS = 150.0
-"""Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
-STATIC_CLIMB_POINTS = 4
-"""Points a climb along a static choice evaluates per table entry, from the neighbouring entry's best (count;
-"common practice" guess: the start, a step each way and one more)."""
-EXACT_POINTS_PER_ROOT_CHOICE = 5.0
-"""The exact block search evaluates about this many points times √(choices) per state: interval
-bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
-(measured on growth models: about 150 points at 1,000 choices, 700 at 20,000)."""
-HOWARD_STEPS_PER_OCTAVE = 3.0
-"""Howard needs about this many iterations per doubling of the choice grid: on fine grids
-the greedy policy keeps moving for many iterations (measured: 30 at 1,000 choices, 48 at 20,000)."""
-MATVEC_NS = 2.0
-"""Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
-CHOICE_BYTES = 17
-"""Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
-RESULT_BYTES_PER_STATE = 120
-"""Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
-SOLVER_BYTES_PER_STATE = 96
-"""Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
-
-DIRECT_SOLVE_MAX_POINTS = 2_000
-"""Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
-then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
-larger problems use restarted GMRES, whose memory is ``KRYLOV_RESTART + 4`` vectors."""
-KRYLOV_RESTART = 30
-"""Policy iteration above ``DIRECT_SOLVE_MAX_POINTS``: GMRES steps per restart cycle (count)."""
-KRYLOV_RESIDUAL_SHARE = 1e-3
-"""Policy iteration above ``DIRECT_SOLVE_MAX_POINTS``: the residual target of GMRES as a share of
-``tolerance · (1 − β)`` (dimensionless)."""
 
 _MIB = 2**20
 
@@ -196,7 +176,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
-    common = _grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
+    common = grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
     table_bytes = draw_table_bytes(pairs, draws, interpolated) if draws else n * table_choices * (
         8 + 12 * interpolated + (8 if static else 0))
     chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
@@ -250,6 +230,15 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
             f"the precompute budget of {budget / _MIB:,.0f} MiB, so the model is evaluated pointwise in compiled "
             "code and exact steps skip blocks of choices that provably cannot win"
         )
+    from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
+
+    if varies_by_period(model):
+        reward_storage = "on_the_fly"
+        reason = (
+            "the model changes with the period (params given per period, or `period` in its expressions), so it is "
+            "evaluated pointwise in compiled code with each period's params: tables would be filled again in every "
+            "period"
+        )
     return GridPlan(
         grid_states=grid_states, shocks=shocks,
         n=n,
@@ -268,77 +257,6 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         table_entries=n * table_choices,
         static_concave=use.static_concave and reward_storage == "tables",
     )
-
-
-def _grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
-    """Memory every reward storage needs: solver vectors, the policy's nodes and sparse matrix, the result."""
-    policy_nodes = n * nodes * 16
-    matrix = n * nodes * shocks * 12 + 8 * (n + 1)
-    if method == "policy_iteration":
-        matrix += linear_solve_bytes(n, n * nodes * shocks)
-    chain = 8 * shocks * shocks
-    return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
-
-
-def linear_solve_bytes(n: int, entries: int) -> int:
-    """Memory of one exact evaluation of policy iteration, ``P_σ`` with ``entries`` stored entries.
-
-    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC and its LU,
-    whose fill-in is at most ``n²`` entries of 12 bytes each, plus SuperLU's
-    work arrays.  Iterative: ``I − βP_σ`` is applied, never formed; GMRES keeps
-    ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
-    """
-    if n <= DIRECT_SOLVE_MAX_POINTS:
-        return 2 * (entries + n) * 12 + n * n * 12 + 64 * n
-    return (KRYLOV_RESTART + 6) * 8 * n + (entries + n) * 12
-
-
-def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) -> float:
-    """Time of one exact evaluation: an LU's ``n³/3`` floating-point operations at most (1 ns each), or the GMRES
-    mat-vecs a rate of β needs to bring the residual to the target (an upper guess for chains that mix slowly)."""
-    if n <= DIRECT_SOLVE_MAX_POINTS:
-        return n**3 / 3 * 1e-9
-    scale = 1.0 / (1.0 - beta)
-    target = max(KRYLOV_RESIDUAL_SHARE * tolerance * (1.0 - beta) / scale, 1e-16)
-    matvecs = math.ceil(math.log(target) / math.log(beta))
-    return matvecs * (entries + 2 * n + KRYLOV_RESTART * n) * MATVEC_NS * 1e-9
-
-
-def _linear_solve_words(n: int) -> str:
-    if n <= DIRECT_SOLVE_MAX_POINTS:
-        return f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points: fill-in at most n²)"
-    return (
-        f"exact evaluations by restarted GMRES ({KRYLOV_RESTART} steps a cycle; above {DIRECT_SOLVE_MAX_POINTS:,} "
-        "points an LU's fill-in is unbounded), mat-vecs guessed for a chain that mixes at rate β"
-    )
-
-
-def _steps(doc: Any, choices: int) -> tuple[int, int, str]:
-    """(iterations, evaluation steps per iteration, basis) guessed from β, the tolerance, the method
-    and the number of choice points."""
-    beta = float(doc.discount)
-    solver = doc.solver
-    tolerance = float(solver.tolerance)
-    scale = 1.0 / (1.0 - beta)
-    # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
-    target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
-    per_step = math.log(beta)
-    evaluation = 0
-    if solver.method == "value_iteration":
-        steps = math.ceil(math.log(target) / per_step)
-    elif solver.method == "policy_iteration":
-        steps = 12
-    else:
-        evaluation = int(solver.evaluation_steps)
-        steps = math.ceil(math.log(target) / (per_step * (evaluation + 1))) + 2
-        steps = max(steps, math.ceil(HOWARD_STEPS_PER_OCTAVE * math.log2(max(choices, 2))))
-    steps = min(max(steps, 1), int(solver.max_iterations))
-    basis = (
-        f"{steps} iterations ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
-        f"order 1/(1 − β); Howard at least {HOWARD_STEPS_PER_OCTAVE:g} per doubling of the choices)"
-        + (f", {evaluation} evaluation steps each" if evaluation else "")
-    )
-    return steps, evaluation, basis
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -366,11 +284,10 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     if doc.model.continuous_choice() is not None:
         from worker.continuous_estimate import continuous_estimate
 
-        return continuous_estimate(doc, common_bytes=_grid_common_bytes, steps_of=_steps, point_ns=POINT_NS,
-                                   matvec_ns=MATVEC_NS)
+        return continuous_estimate(doc)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
-    steps, per_iteration, basis = _steps(doc, plan.choices)
+    steps, per_iteration, basis = iteration_steps(doc, plan.choices)
     matrix_entries = plan.n * plan.nodes * plan.shocks
     evaluation = per_iteration * matrix_entries * MATVEC_NS
     if plan.reward_storage == "tables":
@@ -396,18 +313,20 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             + ("hinted steps look at about 5 choices per state, exact ones" if plan.hints_active else "exact steps")
             + f" bound about {blocks} blocks and evaluate about {points:,.0f} points per state"
         )
-        if plan.hints_active:
+        if plan.hints_active and model.horizon is not None:
+            step_total = steps * (step + exact / 2)  # every period's exact step, seeded by the hinted one
+        elif plan.hints_active:
             step_total = (steps - 2) * step + 2 * exact
         else:
             step_total = steps * step
     if plan.reward_storage == "tables":
         step_total = steps * step
     seconds = (setup + step_total + steps * evaluation) * 1e-9
-    if doc.solver.method == "policy_iteration":
+    if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(
             plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
         )
-        basis += f"; {_linear_solve_words(plan.n)}"
+        basis += f"; {linear_solve_words(plan.n)}"
     compile_bytes, compile_s = compile_cost(model)
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
@@ -436,7 +355,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "shocks": plan.shocks,
         "choice_points": plan.choices,
         "pairs": plan.pairs,
-        "bytes": plan.bytes,
+        "bytes": plan.bytes + horizon_bytes(doc, plan.n),
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
@@ -469,15 +388,15 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         common += 3 * 8 * pairs
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
-    steps, per_iteration, basis = _steps(doc, n_actions)
+    steps, per_iteration, basis = iteration_steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
     seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
-    if doc.solver.method == "policy_iteration":
+    if doc.solver.method == "policy_iteration" and model.horizon is None:
         matrix += linear_solve_bytes(n_states, policy_entries)
         seconds += steps * linear_solve_seconds(
             n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance)
         )
-        basis += f"; {_linear_solve_words(n_states)}"
+        basis += f"; {linear_solve_words(n_states)}"
     notes = [
         f"{'dense' if dense else 'sparse'} transition with {entries:,} entries, held as a sparse matrix of at most "
         f"{stored:,}",
@@ -490,7 +409,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + conversion + matrix),
+        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(doc, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,

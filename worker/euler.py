@@ -71,15 +71,8 @@ from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
 __all__ = [
-    "PROFILE_POINTS",
-    "TEST_POINTS_PER_GRID_POINT",
-    "EulerSetup",
-    "between_points",
-    "error_profile",
-    "euler_errors",
-    "euler_report",
-    "grid_policy",
-    "setup",
+    "PROFILE_POINTS", "TEST_POINTS_PER_GRID_POINT", "EulerSetup", "between_points", "error_profile", "euler_errors",
+    "euler_report", "grid_policy", "setup",
 ]
 
 TEST_POINTS_PER_GRID_POINT = 10
@@ -246,6 +239,8 @@ def euler_errors(
     policy: PolicyRule,
     distribution: np.ndarray | None = None,
     at_end: np.ndarray | None = None,
+    *,
+    tomorrow: tuple[ModelData, PolicyRule] | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of ``data``'s state grid.
 
@@ -264,6 +259,9 @@ def euler_errors(
     at_end : ndarray, optional
         (grid points, shock points): where the solved choice is at an end of its grid; test points in a
         grid interval with such an end are counted as ``constrained`` (for a policy read linearly).
+    tomorrow : (ModelData, policy), optional
+        Tomorrow's model (its params) and policy, when they differ from today's (a finite horizon's
+        next period); default: ``data`` and ``policy``.
 
     Returns
     -------
@@ -277,7 +275,7 @@ def euler_errors(
     n_z = data.n_shocks
     k_all = between_points(grid)
     rows = max(1, _CHUNK_ELEMENTS // (n_z * n_z))
-    parts = [_errors_at(data, found, discount, policy, k_all[start:start + rows])
+    parts = [_errors_at(data, found, discount, policy, k_all[start:start + rows], tomorrow or (data, policy))
              for start in range(0, k_all.size, rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
@@ -344,9 +342,11 @@ def error_profile(state: str, k_points: np.ndarray, log_error: np.ndarray, measu
 
 
 def _errors_at(
-    data: ModelData, found: EulerSetup, discount: float, policy: PolicyRule, k_points: np.ndarray
+    data: ModelData, found: EulerSetup, discount: float, policy: PolicyRule, k_points: np.ndarray,
+    tomorrow: tuple[ModelData, PolicyRule],
 ) -> tuple[np.ndarray, np.ndarray]:
-    """log10 errors and the constrained mask at test points ``k_points``, both (points, shock points)."""
+    """log10 errors and the constrained mask at test points ``k_points``, both (points, shock points);
+    ``tomorrow`` is the model and policy of the next period."""
     n_z = data.n_shocks
     k = k_points[:, None]
     shocks = data.shock_table[None, :, :]
@@ -358,7 +358,8 @@ def _errors_at(
         c_slope = _slope(found.define_slope, env, x.shape)
         # Tomorrow: k' = x at every shock point z', with tomorrow's policy there; rows are (test point, z).
         k_next = x.reshape(-1, 1)
-        env_next = _environment(data, found, k_next, shocks, policy(k_next[:, 0]))
+        data_next, policy_next = tomorrow
+        env_next = _environment(data_next, found, k_next, shocks, policy_next(k_next[:, 0]))
         state_slope = _slope(found.state_slope, env_next, (k_next.size, n_z)).reshape(x.shape[0], n_z, n_z)
         expected = np.einsum("azw,zw->az", state_slope, data.transition)
         target = -discount * expected / c_slope

@@ -23,6 +23,7 @@ from typing import Any
 import numpy as np
 
 from worker import _codegen
+from worker.document.horizon import PERIOD_NAME
 from worker.draws import Draws, draw_probabilities, model_draws
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
 from worker.estimate import CHUNK_ELEMENTS
@@ -38,6 +39,7 @@ __all__ = [
     "feasibility_scan",
     "infeasible",
     "model_data",
+    "period_params",
 ]
 
 FEASIBILITY_MAX_PASS = 4096
@@ -154,7 +156,7 @@ class _Evaluated:
 
 def model_data(doc: Any) -> ModelData:
     model = doc.model
-    params = tuple(model.params)
+    params = tuple(model.params) + (() if getattr(model, "horizon", None) is None else (PERIOD_NAME,))
     states = tuple(model.states)
     shocks = tuple(name for name, spec in model.shocks.items() if not spec.after_choice)
     choices = tuple(model.choices)
@@ -200,7 +202,7 @@ def model_data(doc: Any) -> ModelData:
     )
     return ModelData(
         params=params,
-        param_values=np.array([float(model.params[name]) for name in params], dtype=np.float64),
+        param_values=period_params(model, 0),
         states=states,
         state_grids=state_grids,
         shocks=shocks,
@@ -215,6 +217,18 @@ def model_data(doc: Any) -> ModelData:
         span=span,
         draws=model_draws(model),
     )
+
+
+def period_params(model: Any, period: int) -> np.ndarray:
+    """The values of a grid model's params in ``period`` (0-based), in :attr:`ModelData.params` order.
+
+    A param given per period (a list) takes its entry of that period; with a horizon the
+    last value is ``period`` itself.  Without a horizon every param is a number.
+    """
+    values = [float(value[period] if isinstance(value, list) else value) for value in model.params.values()]
+    if getattr(model, "horizon", None) is not None:
+        values.append(float(period))
+    return np.array(values, dtype=np.float64)
 
 
 def evaluate_pairs(data: ModelData, rows: np.ndarray, columns: np.ndarray) -> _Evaluated:

@@ -77,6 +77,7 @@ import numpy as np
 
 from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
+from worker.document.horizon import varies_by_period
 from worker.drawcheck import check_draw_tables
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
@@ -146,8 +147,10 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     # The expressions' numbers go to the kernels as params, so they never name a new module.
     kernel_model, literals = _codegen.lift_literals(data.source)
     source = _codegen.module_source(layout, kernel_model)
-    # The bridge's numpy reference step reads tables without draws: a model with draws waits for its kernels.
-    if reward_storage is None and full.draws is None and _bridge_applies(plan, source):
+    # The bridge's numpy reference step reads tables without draws, and a model that changes with the period
+    # swaps its params in the on_the_fly kernels, which the bridge's tables cannot: both wait for their kernels.
+    if (reward_storage is None and full.draws is None and not varies_by_period(doc.model)
+            and _bridge_applies(plan, source)):
         return _bridged(doc, full, static, plan, source, chosen, limits, started)
     counts: dict[str, Any]
     tables: RewardTables | None
@@ -165,6 +168,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
+    problem.kernel_literals = literals
     problem._warm_up()
     bridge.mark_warm(module.__name__)
     if first_load:

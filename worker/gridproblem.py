@@ -85,6 +85,7 @@ class GridProblem(GridDiagnostics):
         self.hints_active = layout.hinted_axis is not None
         self.timings: dict[str, float] = {}
         self.bridge_note = ""
+        self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
         self._policy_cache: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
         self._last_exact: dict[str, Any] | None = None
         self._pyramid: tuple[np.ndarray, np.ndarray] | None = None
@@ -96,6 +97,21 @@ class GridProblem(GridDiagnostics):
         sizes = data.state_sizes
         self._strides = tuple(math.prod(sizes[t + 1 :]) for t in range(len(sizes)))  # of the flat grid-state index
 
+
+    def use_params(self, params: np.ndarray) -> None:
+        """Evaluate the model with other kernel params from now on (a finite horizon's period).
+
+        ``params`` is ``kernel_params(param values, literals)`` of the same structure, so
+        only the ``on_the_fly`` storage, which reads its params as it runs, can change them;
+        the reward tables of the ``tables`` storage were filled with the first ones.  The
+        caches of the last policy's rewards and of the last hinted step are dropped.
+        """
+        if self.reward_storage != "on_the_fly":
+            raise ValueError("params can change only with reward storage on_the_fly; the tables hold the old ones")
+        self._ctx = (np.ascontiguousarray(params, dtype=np.float64), *self._ctx[1:])
+        self._policy_cache = None
+        self._last_hinted = None
+        self._last_exact = None
 
     @property
     def model_data(self) -> ModelData:

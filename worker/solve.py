@@ -185,8 +185,11 @@ def _solve(
     max_seconds: float | None,
 ) -> dict[str, Any]:
     problem = _compile(doc, cap)
-    initial = _initial_values(doc, problem, warm_start)
     spec = doc.solver
+    if doc.model.horizon is not None:
+        return _solve_horizon(doc, problem, warm_start, on_progress, checkpoint, should_stop,
+                              time_limit(spec.time_limit_s, max_seconds))
+    initial = _initial_values(doc, problem, warm_start)
     outcome = METHODS[spec.method](
         problem,
         initial,
@@ -201,6 +204,38 @@ def _solve(
         fingerprint="" if checkpoint is None else _fingerprint(doc),
     )
     return _result(doc, problem, outcome)
+
+
+def _solve_horizon(
+    doc: Any,
+    problem: CompiledProblem,
+    warm_start: dict[str, Any] | None,
+    on_progress: Callable[[dict[str, Any]], None] | None,
+    checkpoint: Checkpoint | None,
+    should_stop: Callable[[], bool] | None,
+    time_limit_s: float | None,
+) -> dict[str, Any]:
+    """Backward induction for a document with ``model.horizon`` (see :mod:`worker.periods`).
+
+    ``solver.initial``, when given, is the value after the last period (it replaces the terminal
+    value): values, or an earlier job's value — of an infinite horizon, or the first period of a
+    finite one (a life solved in two spans, the later first).
+    """
+    from worker.periods import PERIOD_AXIS, horizon_result, period_plan
+    from worker.solvers.backward import backward_induction
+
+    terminal = None
+    if doc.solver.initial not in (None, "zeros"):
+        if warm_start is not None and PERIOD_AXIS in (warm_start.get("axes") or {}):
+            axes = {name: values for name, values in warm_start["axes"].items() if name != PERIOD_AXIS}
+            warm_start = {"axes": axes, "value": (warm_start.get("value") or [None])[0]}
+        terminal = _initial_values(doc, problem, warm_start)
+    plan = period_plan(doc, problem, terminal=terminal)
+    outcome = backward_induction(
+        problem, plan, time_limit_s=time_limit_s, checkpoint_s=doc.solver.checkpoint_s, on_progress=on_progress,
+        checkpoint=checkpoint, should_stop=should_stop, fingerprint="" if checkpoint is None else _fingerprint(doc),
+    )
+    return horizon_result(doc, problem, plan, outcome, _plain)
 
 
 def _fingerprint(doc: Any) -> str:

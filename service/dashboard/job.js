@@ -295,7 +295,12 @@
       (summary.linear_solves ? ` and ${formatCount(summary.linear_solves)} linear solves` : "") +
       (summary.method ? ` (${summary.method.replace(/_/g, " ")})` : "") +
       (summary.seconds !== undefined ? `, ${formatSeconds(summary.seconds)} of solving` : "");
-    if (summary.status === "converged") {
+    if (summary.method === "backward_induction") {
+      const solved = formatCount(summary.periods ?? summary.iterations);
+      notes.push(summary.status === "time_limit"
+        ? `Stopped at the time limit (solver.time_limit_s) after ${solved} periods of backward induction: the value and policy shown are those of the last ${solved} periods, exact up to rounding (error bound ${bound}).`
+        : `Solved by backward induction: one exact Bellman step for each of the ${solved} periods, from the terminal value back to period 0, so the value shown is exact up to rounding (error bound ${bound}). The pictures show value and policy by period.`);
+    } else if (summary.status === "converged") {
       notes.push(`Converged: at every point the value function shown is within ${bound} of the exact fixed point of the discretized problem (the certified error bound). It took ${effort}.`);
     } else if (summary.status === "max_iterations") {
       notes.push(`Stopped at the iteration limit (solver.max_iterations) after ${effort}, before reaching the tolerance. The value function is still certified to be within ${bound} of the fixed point. Raise the limit, or continue from this job with solver.initial = {"job": "${jobId}"}.`);
@@ -308,7 +313,10 @@
     if (Number.isFinite(diagnostics.observed_rate)) {
       notes.push(`Successive distances shrank by a factor of about ${diagnostics.observed_rate.toFixed(3)} per iteration near the end.`);
     }
-    if (diagnostics.verification) {
+    if (diagnostics.verification && summary.method === "backward_induction") {
+      const held = diagnostics.verification.hints_held;
+      notes.push(`In every period the hinted search was checked by the unrestricted Bellman step it seeded, whose value was kept: the hints ${held === false ? `did not hold in ${formatCount(diagnostics.verification.periods_broken)} periods` : "held"}.`);
+    } else if (diagnostics.verification) {
       const held = diagnostics.verification.hints_held;
       notes.push(`The hints were checked by one unrestricted application of the Bellman operator (a verification, not counted as an iteration): ${held === false ? "they did not hold, so the solve went on without them" : "they held"}.`);
     }
@@ -376,6 +384,7 @@
     if (plots.value !== false) update();
     showEulerErrors(summary);
     showChoiceProbabilities(summary);
+    showLifeCycle(summary);
     document.getElementById("pictures").classList.remove("hidden");
   }
 
@@ -425,6 +434,12 @@
     document.getElementById("euler-plot").src = `${base}/plots/euler_errors.svg`;
   }
 
+  // A finite horizon's cohort (report.cohort): the means of the states and choices by period, drawn by the server.
+  function showLifeCycle(summary) {
+    document.getElementById("life-cycle-figure").classList.toggle("hidden", !summary.life_cycle);
+    if (summary.life_cycle) document.getElementById("life-cycle-plot").src = `${base}/plots/life_cycle.svg`;
+  }
+
   function showDownloads(summary, valueUrl, policyUrl) {
     const links = [
       ["result (JSON)", `${base}/result`, `${jobId}-result.json`],
@@ -439,6 +454,7 @@
     }
     if (summary.euler_profile) links.push(["Euler-error plot (PNG)", `${base}/plots/euler_errors.png`, `${jobId}-euler-errors.png`]);
     if (summary.choice_probabilities) links.push(["choice-probability plot (PNG)", `${base}/plots/choice_probabilities.png`, `${jobId}-choice-probabilities.png`]);
+    if (summary.life_cycle) links.push(["life-cycle plot (PNG)", `${base}/plots/life_cycle.png`, `${jobId}-life-cycle.png`]);
     document.getElementById("downloads").replaceChildren(...links.map(([text, href, download]) => el("a", { class: "button quiet", href, download, text })));
     document.getElementById("downloads-card").classList.remove("hidden");
   }

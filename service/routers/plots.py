@@ -11,11 +11,14 @@
 * ``choice_probabilities.svg|png`` — a model with taste shocks: the
   probabilities of one choice's values (``?choice=NAME``, ``?shock_index=I``;
   see :mod:`service.choice_plots`); 404 when the result has none;
+* ``life_cycle.svg|png`` — a finite horizon's cohort (``report.cohort``): the
+  mean of each state variable and choice by period; 404 without one;
 * ``GET /v1/jobs/{id}/plots`` — a small JSON summary of a solved job: which
   picture layout applies, the choices and shock points to pick from, and the
   result's status and diagnostics without its arrays (``euler_errors``
   without its ``profile``; ``euler_profile`` is true when there is one to
-  picture).  The dashboard reads it instead of downloading a possibly large
+  picture; ``periods`` counts a finite horizon's periods, ``life_cycle`` is
+  true when there is a cohort to picture).  The dashboard reads it instead of downloading a possibly large
   result.
 """
 
@@ -40,7 +43,7 @@ LOG_PAGE = 1000
 DONE_MAX_AGE_S = 3600
 """How long a browser may reuse a picture of a finished job, in seconds (it never changes)."""
 
-Picture = Literal["convergence", "value", "policy", "euler_errors", "choice_probabilities"]
+Picture = Literal["convergence", "value", "policy", "euler_errors", "choice_probabilities", "life_cycle"]
 Format = Literal["svg", "png"]
 MEDIA_TYPES = {"svg": "image/svg+xml", "png": "image/png"}
 
@@ -72,6 +75,8 @@ def plot_summary(job_id: str, store: StoreDep, owner: Owner) -> dict[str, Any]:
         "choice_probabilities": result.get("choice_probabilities") is not None,
         "stationary": _without(result.get("stationary"), "distribution"),
         "simulation": _without(result.get("simulation"), "first_path"),
+        "periods": len(axes.get("period") or []) if "period" in axes else None,
+        "life_cycle": bool(_life_cycle_series(result, document)),
     }
 
 
@@ -116,7 +121,11 @@ def plot(
     else:
         result = _result(store, job)
         layout = plots.axis_layout(result, store.get_document(job_id))
-        if picture == "value":
+        if picture == "life_cycle":
+            from service.cohort_plot import life_cycle_plot
+
+            body = life_cycle_plot(result, store.get_document(job_id), title=title, fmt=fmt)
+        elif picture == "value":
             body = plots.value_plot(result, layout=layout, shock_index=shock_index, title=title, fmt=fmt)
         elif picture == "euler_errors":
             body = plots.euler_plot(result, layout=layout, title=title, fmt=fmt)
@@ -132,6 +141,12 @@ def plot(
             )
         cache = f"private, max-age={DONE_MAX_AGE_S}"
     return Response(body, media_type=MEDIA_TYPES[fmt], headers={"Cache-Control": cache})
+
+
+def _life_cycle_series(result: dict[str, Any], document: dict[str, Any] | None) -> dict[str, list[float]]:
+    from service.cohort_plot import life_cycle_series
+
+    return life_cycle_series(result, document)
 
 
 def _plots() -> ModuleType:

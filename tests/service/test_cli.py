@@ -160,6 +160,15 @@ def test_progress_bar_fills_on_a_log_scale() -> None:
     assert bar.fraction(1e-7) == 1.0
 
 
+def test_progress_bar_of_a_finite_horizon_counts_periods() -> None:
+    stream = io.StringIO()
+    bar = progress.ProgressBar(stream, tolerance=1e-6)
+    bar.update({"iteration": 15, "period": 45, "periods": 60, "distance": 1.0, "error_bound": 1e-12})
+    bar.close()
+    line = stream.getvalue()
+    assert "period     45  (15 of 60 done)" in line and "[######..................]" in line
+
+
 def wait_healthy(url: str, process: subprocess.Popen, timeout_s: float = 60.0) -> None:
     deadline = time.monotonic() + timeout_s
     while time.monotonic() < deadline:

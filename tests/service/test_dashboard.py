@@ -203,6 +203,31 @@ def test_two_state_models_offer_shock_and_choice_pickers(
     assert tab.problems() == []
 
 
+LIFE_CYCLE_SHOWN = (
+    PLOTS_SHOWN + " && !document.getElementById('life-cycle-figure').classList.contains('hidden')"
+    " && (img => img.complete && img.naturalWidth > 0)(document.getElementById('life-cycle-plot'))"
+)
+
+
+def test_a_finite_horizon_shows_value_policy_and_means_by_period(
+    server: LiveServer, api: httpx.Client, new_tab: Callable[[], Tab]
+) -> None:
+    server.ensure_worker()
+    job_id = submit(api, load_example("glassblower_life_cycle"))
+    assert wait_until_finished(api, job_id)["state"] == "done"
+    tab = new_tab()
+    tab.goto(f"{server.url}/jobs/{job_id}")
+    tab.wait_for(LIFE_CYCLE_SHOWN)
+    notes = tab.evaluate("document.getElementById('notes').textContent")
+    assert "backward induction" in notes and "60 periods" in notes and "fixed point" not in notes
+    assert "In every period the hinted search was checked" in notes and "hints held" in notes
+    assert "shock_index=0" in tab.evaluate("document.getElementById('value-plot').src")
+    links = tab.evaluate("[...document.querySelectorAll('#downloads a')].map(a => a.getAttribute('href'))")
+    assert f"/v1/jobs/{job_id}/plots/life_cycle.png" in links
+    tab.screenshot("job-glassblower-life-cycle")
+    assert tab.problems() == []
+
+
 EULER_SHOWN = (
     PLOTS_SHOWN + " && !document.getElementById('euler-figure').classList.contains('hidden')"
     " && (img => img.complete && img.naturalWidth > 0)(document.getElementById('euler-plot'))"

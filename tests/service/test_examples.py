@@ -37,6 +37,7 @@ EXPECTED = {
     "bike_shop_inventory",
     "courier_van_replacement",
     "fishery_harvest",
+    "glassblower_life_cycle",
     "household_saving",
     "machine_replacement",
     "plant_capacity",
@@ -437,6 +438,44 @@ def test_roastery_builds_more_capacity_with_more_capacity_customers_and_taste(so
     layout = plots.axis_layout(result, document)
     assert layout == plots.AxisLayout(states=("capacity", "customers"), shocks=("taste",))
     assert b"<image" in plots.value_plot(result, layout=layout, shock_index=1)
+
+
+def test_glassblower_saves_while_working_and_draws_down_in_retirement(solved: dict[str, Any]) -> None:
+    result = solved["glassblower_life_cycle"]
+    document = load_example("glassblower_life_cycle")
+    periods = document["model"]["horizon"]["periods"]
+    assert result["method"] == "backward_induction" and result["status"] == "converged"
+    assert list(result["axes"]) == ["period", "savings", "orders"] and len(result["axes"]["period"]) == periods
+    savings = np.array(result["axes"]["savings"])
+    chosen = np.array(result["policy"]["savings_next"])
+    assert chosen.shape == (periods, savings.size, 3)
+    assert (np.diff(chosen, axis=1) >= 0).all()  # more savings today, never less tomorrow
+    assert result["diagnostics"]["verification"]["hints_held"]
+    retired = np.arange(periods) >= 65 - 25
+    comfortable = savings > 1.0
+    assert (chosen[retired][:, comfortable] < savings[comfortable][None, :, None]).all()
+    # In mid-career with good orders and little saved, the glassblower puts money aside.
+    assert (chosen[10:30, 0, 2] > 0).all()
+    # A retiree with nothing saved lives on the pension and leaves nothing: its value is the recursion
+    # V_t = u(pension) + (1 - s_t)·B(0) + β s_t V_{t+1}, V_T = B(0), written here by hand.
+    assert (chosen[retired][:, 0, :] == 0).all()
+    params = document["model"]["params"]
+    gamma, beta = params["gamma"], document["discount"]
+    utility = params["pension"] ** (1 - gamma) / (1 - gamma)
+    left = params["bequest"] / (1 - gamma)
+    by_hand = [left]
+    for t in range(periods - 1, 65 - 25 - 1, -1):
+        survival = params["survival"][t]
+        by_hand.append(utility + (1 - survival) * left + beta * survival * by_hand[-1])
+    value = np.array(result["value"])
+    np.testing.assert_allclose(value[retired][:, 0, 0], by_hand[:0:-1], rtol=1e-12)
+    assert result["error_bound"] < 1e-9
+    # The cohort starts with nothing saved: its wealth builds up over the working years and is run down
+    # in retirement (a hump peaking around 65).
+    wealth = np.array(result["cohort"]["means"]["savings"])
+    peak = int(wealth.argmax())
+    assert wealth[0] == 0.0 and 35 <= peak <= 41 and wealth[peak] > 1.0
+    assert (np.diff(wealth[: peak + 1]) >= 0).all() and (np.diff(wealth[peak:]) < 0).all()
 
 
 def test_examples_survive_a_json_round_trip_unchanged() -> None:

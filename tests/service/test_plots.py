@@ -269,6 +269,31 @@ def test_heatmap_routes_pick_the_shock_point_by_its_flat_index(
     assert out_of_range.json()["errors"][0]["path"] == "query.shock_index"
 
 
+def test_a_finite_horizon_job_draws_value_and_policy_by_period(
+    plot_app: tuple[httpx.Client, FastAPI], store: JobStore
+) -> None:
+    client, _ = plot_app
+    job_id = submit(store, load_example("glassblower_life_cycle"))
+    summary = client.get(f"/v1/jobs/{job_id}/plots").json()
+    assert summary["layout"] == "heatmap" and summary["shocks"] == ["orders"]
+    assert summary["periods"] == 60 and summary["life_cycle"]
+    for picture in ("convergence", "value", "policy", "life_cycle"):
+        svg = client.get(f"/v1/jobs/{job_id}/plots/{picture}.svg", params={"shock_index": 2} if picture in (
+                         "value", "policy") else {})
+        assert svg.status_code == 200, svg.text
+        svg_ids(svg.content)
+    result = store.get_result(job_id)
+    assert result is not None and list(result["axes"]) == ["period", "savings", "orders"]
+    assert "series-savings_next" in svg_ids(client.get(f"/v1/jobs/{job_id}/plots/life_cycle.svg").content)
+    plain = submit(store, load_example("household_saving"))
+    assert client.get(f"/v1/jobs/{plain}/plots/life_cycle.svg").status_code == 404
+    record = store.get_job(job_id)
+    assert record["progress"]["period"] == 0 and record["progress"]["periods"] == 60 and record["iterations"] == 60
+    assert [entry["period"] for entry in store.get_log(job_id)] == list(range(59, -1, -1))
+    assert plots.axis_layout(result, load_example("glassblower_life_cycle")) == plots.AxisLayout(
+        states=("period", "savings"), shocks=("orders",))
+
+
 def test_an_expired_result_is_gone_for_plots_as_for_the_result(
     plot_app: tuple[httpx.Client, FastAPI], store: JobStore
 ) -> None:

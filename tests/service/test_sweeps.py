@@ -676,3 +676,18 @@ def test_each_combination_validated_like_the_first_admits_exactly_as_a_full_vali
     first = submission.admit_submission(documents[0], settings, None, may_see=lambda r: True, check_notify=False)
     for raw in documents[1:]:
         assert _admission(raw, settings, like=(documents[0], first)) == _admission(raw, settings)
+
+
+def test_a_sweep_of_a_finite_horizon_may_vary_the_discount_past_one(http: httpx.Client, store: JobStore) -> None:
+    base = machine_shop()
+    base["model"]["horizon"] = {"periods": 12}
+    base.pop("report", None)
+    discounts = [0.9, 1.0, 1.05]
+    response = http.post("/v1/sweeps", json={"base": base, "vary": {"discount": discounts}})
+    assert response.status_code == 202, response.text
+    view = run_all(http, store, response.json()["id"])
+    assert view["state"] == "done" and view["counts"]["done"] == 3
+    for row, discount in zip(sorted(view["rows"]["data"], key=lambda row: row["index"]), discounts):
+        result = store.get_result(row["job"])
+        assert result["method"] == "backward_induction" and row["iterations"] == 12
+        assert result["value"] == solve({**base, "discount": discount})["value"]

@@ -258,8 +258,9 @@ def test_sparse_transition() -> None:
 def test_methods_match_the_solver_registry() -> None:
     from worker.solvers import METHODS
 
-    assert sorted(METHOD_NAMES) == sorted(METHODS)
-    for method in METHOD_NAMES:
+    # Backward induction is no solver of the registry: a document with a horizon is always solved by it.
+    assert sorted(METHOD_NAMES) == sorted([*METHODS, "backward_induction"])
+    for method in METHODS:
         assert parse_document(edit(plant(), "solver.method", method)).solver.method == method
 
 
@@ -803,6 +804,11 @@ def _valid(root: dict[str, Any], schema_: dict[str, Any], value: Any) -> bool:
             ok = sum(_valid(root, s, value) for s in rule) == 1
         elif key == "allOf":
             ok = all(_valid(root, s, value) for s in rule)
+        elif key in ("then", "else"):
+            continue  # applied with "if"
+        elif key == "if":
+            branch = schema_.get("then" if _valid(root, rule, value) else "else")
+            ok = branch is None or _valid(root, branch, value)
         elif key in (
             "properties",
             "required",
@@ -906,6 +912,8 @@ def test_json_schema_accepts_the_valid_examples_and_refuses_unknown_keys() -> No
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "colour", 1)))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "model.states.capacity.minimum", 1)))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "discount", 1)))
+    finite = edit(edit(plant(), "discount", 1), "model.horizon", {"periods": 3})
+    assert _valid(document_schema, document_schema, _json(finite))
     assert not _valid(document_schema, document_schema, _json(edit(plant(), "model.params.2x", 1)))
     assert not _valid(document_schema, document_schema, _json(edit(worn_machine(), "model.kind", "grid")))
     try:

@@ -16,9 +16,10 @@ import scipy.sparse as sp
 from tests._documents import array_tabular, drifting
 from worker import solve
 from worker.arrays import encode_array
+from worker.costs import DIRECT_SOLVE_MAX_POINTS
 from worker.document import parse_document
 from worker.errors import Canceled, TooLarge
-from worker.estimate import DIRECT_SOLVE_MAX_POINTS, estimate
+from worker.estimate import estimate
 from worker.kernel_limits import (
     MAX_EXPRESSION_NODES,
     MAX_FEASIBLE_CONDITIONS,

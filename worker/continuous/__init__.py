@@ -27,7 +27,7 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.feasibility import ModelData, feasibility_scan, model_data
 
-__all__ = ["ContinuousProblem", "compile_continuous"]
+__all__ = ["ContinuousProblem", "check_bounds", "compile_continuous"]
 
 
 def compile_continuous(doc: Any) -> ContinuousProblem:
@@ -55,7 +55,7 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
             raise InvalidDocument.at("solver.method", f"the endogenous grid method does not apply: {reason}")
         egm = (found, c_slope)
     if data.span is not None:
-        _check_bounds(data)
+        check_bounds(data)
     feasibility_scan(data, None)
     source = data.source
     target = next((t for t, j in enumerate(data.setter) if j is not None), None)
@@ -76,13 +76,14 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     module = _codegen.load(text)
     params = _codegen.kernel_params(data.param_values, literals)
     problem = ContinuousProblem(doc, data, module, params)
+    problem.kernel_literals = literals
     problem.egm_form = egm
     problem.warm_up()
     problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
     return problem
 
 
-def _check_bounds(data: ModelData) -> None:
+def check_bounds(data: ModelData) -> None:
     """Refuse bounds that are not finite numbers, or a max below the min, at some point (named by its values)."""
     rows = np.arange(data.n, dtype=np.int64)
     env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))

@@ -112,6 +112,17 @@ class ContinuousProblem:
         self._nodes_for: np.ndarray | None = None
         self._nodes: tuple[np.ndarray, ...] = ()
         self._scratch = (np.empty((data.n_shocks, data.n_grid)), np.empty(self.n))
+        self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
+
+    def use_params(self, params: np.ndarray) -> None:
+        """Search and evaluate with other kernel params from now on (a finite horizon's period).
+
+        ``params`` is ``kernel_params(param values, kernel_literals)``; the cached nodes of the
+        last policy are dropped, since its rewards and next values may change with them.
+        """
+        self._params = np.ascontiguousarray(params, dtype=np.float64)
+        self._nodes_for = None
+        self._nodes = ()
 
     def warm_up(self) -> None:
         """Compile (or load) the kernels on empty inputs, so that ``timings`` shows the compile's cost."""

@@ -72,6 +72,9 @@ def _schema() -> bytes:
         "items": {"anyOf": [{"type": "number"}, {"$ref": "#/$defs/NestedNumbers"}]},
     }
     schema = finish_schema(schema)
+    # The discount lies below 1 unless the model has a finite horizon (the one rule spanning two keys).
+    schema["if"] = {"properties": {"model": {"required": ["horizon"]}}}
+    schema["else"] = {"properties": {"discount": {"exclusiveMaximum": 1}}}
     out = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "title": "fixq problem document, version 1",

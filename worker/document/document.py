@@ -26,7 +26,8 @@ from __future__ import annotations
 import math
 from typing import Annotated, Any, Literal, Union
 
-from pydantic import Field, ValidationError, model_validator
+from pydantic import AfterValidator, Field, ValidationError, ValidationInfo, model_validator
+from pydantic_core import PydanticCustomError
 
 from worker.document._faults import (
     Fault,
@@ -34,6 +35,7 @@ from worker.document._faults import (
     fault,
     number,
     raise_faults,
+    shown,
     structure_fault,
 )
 from worker.document._fields import Integer, Part, SchemaExtra, check
@@ -46,6 +48,7 @@ from worker.document.limits import (
     MAX_LABEL_CHARS,
     MAX_REPORTED,
     MAX_TAGS,
+    ROW_SUM_TOLERANCE,
 )
 from worker.document.options import InitialValues, NotifySpec, ReportSpec, SolverSpec
 from worker.document.tabular import TabularModel
@@ -77,6 +80,35 @@ TagText = Annotated[
 ]
 
 
+_DISCOUNT_POSITIVE = (
+    "the discount factor must lie strictly between 0 and 1 (with a finite horizon: be positive), got {value}: with "
+    "0 or less the problem is degenerate (the future does not count, or counts with the wrong sign)"
+)
+_DISCOUNT_BELOW_ONE = (
+    "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
+    "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
+    "degenerate (the future does not count, or counts with the wrong sign). A model with a finite horizon "
+    "(model.horizon) may have any positive discount"
+)
+
+
+HORIZON_CONTEXT = "horizon"
+"""Key of the validation context saying whether the raw document's model has a horizon (see :func:`parse_document`)."""
+
+
+def _below_one_without_horizon(value: float, info: ValidationInfo) -> float:
+    """Refuse a discount of 1 or more when the validation context says the model has no horizon.
+
+    The discount is validated before the model, so it cannot look at the model; :func:`parse_document`
+    tells it from the raw document, and this fault is then reported beside the model's own faults.
+    Without that context the check waits for :meth:`ProblemDocument._discount_faults`.
+    """
+    context = info.context or {}
+    if value >= 1 and context.get(HORIZON_CONTEXT) is False:
+        raise PydanticCustomError("fixq_check", _DISCOUNT_BELOW_ONE, {"value": shown(value)})
+    return value
+
+
 class ProblemDocument(Part):
     """A discounted dynamic program to solve, version 1 of the problem-document format."""
 
@@ -100,17 +132,15 @@ class ProblemDocument(Part):
     )
     discount: Annotated[
         float,
-        check(
-            lambda b: 0 < b < 1,
-            "the discount factor must lie strictly between 0 and 1, got {value}: with a discount of 1 or more the "
-            "Bellman operator is not a contraction, so iteration need not converge; with 0 or less the problem is "
-            "degenerate (the future does not count, or counts with the wrong sign)",
-        ),
-        SchemaExtra(exclusiveMinimum=0, exclusiveMaximum=1),
+        check(lambda b: 0 < b, _DISCOUNT_POSITIVE),
+        AfterValidator(_below_one_without_horizon),
+        SchemaExtra(exclusiveMinimum=0),
     ] = Field(
         description=(
             "The discount factor β applied to next period's value, strictly between 0 and 1 (per period). "
-            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge."
+            "With β of 1 or more the Bellman operator is not a contraction and iteration need not converge. "
+            "A model with a horizon (model.horizon) needs only β > 0: backward induction takes one step per "
+            "period and seeks no fixed point."
         )
     )
     model: Annotated[Union[TabularModel, GridModel], Field(discriminator="kind")] = Field(
@@ -135,9 +165,29 @@ class ProblemDocument(Part):
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
-        faults = self._initial_faults() + self._start_faults()
+        faults = (self._discount_faults() + self._method_faults() + self._initial_faults() + self._terminal_faults()
+                  + self._start_faults() + self._cohort_faults())
         raise_faults(faults)
         return self
+
+    def _discount_faults(self) -> list[Fault]:
+        if self.discount < 1 or self.model.horizon is not None:
+            return []
+        return [fault("discount", _DISCOUNT_BELOW_ONE.format(value=number(self.discount)))]
+
+    def _method_faults(self) -> list[Fault]:
+        if self.solver.method != "backward_induction" or self.model.horizon is not None:
+            return []
+        return [fault("solver.method", "backward induction solves a model with a finite horizon: give model.horizon, "
+                      "or use howard, value_iteration or policy_iteration for an infinite one")]
+
+    def _terminal_faults(self) -> list[Fault]:
+        horizon = self.model.horizon
+        given = horizon is not None and "terminal_value" in horizon.model_fields_set
+        if not given or self.solver.initial in (None, "zeros"):
+            return []
+        return [fault("model.horizon.terminal_value", "with a horizon, solver.initial is the value after the last "
+                      "period: give it once, as terminal_value or as solver.initial")]
 
     def _initial_faults(self) -> list[Fault]:
         if not isinstance(self.solver.initial, InitialValues):
@@ -155,9 +205,42 @@ class ProblemDocument(Part):
 
     def _start_faults(self) -> list[Fault]:
         simulation = self.report.simulation
+        horizon = self.model.horizon
+        faults = []
+        where = join_path("report", self.report.simulation_key)
+        if simulation is not None and horizon is not None:
+            if simulation.periods > horizon.periods:
+                faults.append(fault(join_path(where, "periods"), f"paths run from period 0 through the horizon, at "
+                                    f"most model.horizon.periods = {horizon.periods:,} periods, not "
+                                    f"{simulation.periods:,}"))
+            if simulation.start is None and self.report.cohort is None:
+                faults.append(fault(join_path(where, "start"), "with a finite horizon there is no long-run "
+                                    "distribution to start from: give start, or report.cohort (paths then start "
+                                    "from the cohort's period-0 distribution)"))
         if simulation is None or simulation.start is None:
+            return faults
+        return faults + start_faults(self.model, simulation.start, join_path(where, "start"))
+
+    def _cohort_faults(self) -> list[Fault]:
+        cohort = self.report.cohort
+        if cohort is None:
             return []
-        return start_faults(self.model, simulation.start, join_path("report", self.report.simulation_key, "start"))
+        if self.model.horizon is None:
+            return [fault("report.cohort", "a cohort is followed through a finite horizon: give model.horizon (or "
+                          "use report.stationary for the long-run distribution of an infinite horizon)")]
+        if cohort.start is not None:
+            return start_faults(self.model, cohort.start, "report.cohort.start")
+        shape, got = self.value_shape(), cohort.distribution.shape
+        where = "report.cohort.distribution"
+        if got != shape and got != (math.prod(shape),):
+            return [fault(where, f"has shape {list(got)}, but one period's value has shape {list(shape)} (a flat "
+                          f"list of {math.prod(shape):,} is also accepted)")]
+        if (cohort.distribution < 0).any():
+            return [fault(where, "probabilities must not be negative")]
+        total = float(cohort.distribution.sum())
+        if abs(total - 1.0) > ROW_SUM_TOLERANCE:
+            return [fault(where, f"sums to {total!r}; a distribution sums to 1 (within {ROW_SUM_TOLERANCE:g})")]
+        return []
 
 
 def parse_document(raw: Any) -> ProblemDocument:
@@ -181,12 +264,20 @@ def parse_document(raw: Any) -> ProblemDocument:
     if hostile is not None:
         raise InvalidDocument([hostile])
     try:
-        return ProblemDocument.model_validate(raw)
+        return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
     # Only the listed errors are translated: a document with a million unknown keys costs no more.
     faults = translate(errors[:MAX_REPORTED], ProblemDocument)
     raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
+
+
+def _has_horizon(raw: Any) -> bool:
+    """Whether the raw document's model has a horizon; the model may be given already validated (sweeps)."""
+    model = raw.get("model") if isinstance(raw, dict) else None
+    if isinstance(model, dict):
+        return model.get("horizon") is not None
+    return getattr(model, "horizon", None) is not None
 
 
 def start_faults(model: Any, start: Any, where: str) -> list[Fault]:

@@ -35,6 +35,7 @@ from worker.document._fields import (
 )
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.draw_faults import draw_faults
+from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
 from worker.document.taste_shocks import TasteShocks
@@ -239,8 +240,12 @@ class GridModel(Part):
     log exp sqrt abs min max where clip. Nothing else."""
 
     kind: Literal["grid"] = Field(description='Always "grid" for this kind of model.')
-    params: Annotated[dict[Name, float], Field(max_length=MAX_ENTRIES)] = Field(
-        default_factory=dict, description="Named constants usable in every expression."
+    params: Annotated[dict[Name, ParamValue], Field(max_length=MAX_ENTRIES)] = Field(
+        default_factory=dict,
+        description=(
+            "Named constants usable in every expression; with a horizon, a param may also be a list with one "
+            "value per period (an income profile, survival probabilities)."
+        ),
     )
     states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description=(
@@ -277,6 +282,13 @@ class GridModel(Part):
         description="Conditions (expressions) that must all hold for a choice to be allowed in a state.",
     )
     hints: Hints = Field(default_factory=Hints, description="Optional speed promises.")
+    horizon: GridHorizon | None = Field(
+        default=None,
+        description=(
+            "A finite number of periods, solved by backward induction (absent: an infinite horizon). The value "
+            "and the policy then have a first axis, period."
+        ),
+    )
     interpolation: Literal["linear", "monotone_cubic"] = Field(
         default="linear",
         description=(
@@ -377,7 +389,7 @@ def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
     return (
         _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
-        + draw_faults(model)
+        + draw_faults(model) + grid_horizon_faults(model)
     )
 
 
@@ -448,6 +460,8 @@ def _motion_faults(model: Any) -> list[Fault]:
 
 def _expressions_faults(model: Any) -> list[Fault]:
     base = [*model.params, *model.states, *model.shocks, *model.choices]
+    if model.horizon is not None:
+        base.append(PERIOD_NAME)
     defines = list(model.define)
     faults = []
     for i, name in enumerate(defines):

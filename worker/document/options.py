@@ -49,9 +49,11 @@ from worker.document.limits import (
     MAX_URL_CHARS,
 )
 from worker.solvers import METHODS
+from worker.solvers.backward import METHOD as BACKWARD_INDUCTION
 
-METHOD_NAMES = tuple(METHODS)
-"""Solver methods, as written in documents: the keys of the solvers' registry."""
+METHOD_NAMES = tuple(sorted((*METHODS, BACKWARD_INDUCTION)))
+"""Solver methods, as written in documents: the keys of the solvers' registry, and the backward induction a
+finite horizon is solved by."""
 
 DEPRECATED_SIMULATION_KEY = "simulate"
 """The older name of ``report.simulation``, still accepted so that stored documents keep working."""
@@ -106,7 +108,9 @@ class SolverSpec(Part):
             "evaluation steps of the current policy, see evaluation_steps; the default), \"policy_iteration\" "
             "(each policy evaluated exactly by solving a linear system) or \"endogenous_grid\" (Carroll's "
             "endogenous grid method, for a model with one state, a continuous next_of choice and a reward that "
-            "depends on it through one define; its value certified by Howard's method from the policy found)."
+            "depends on it through one define; its value certified by Howard's method from the policy found). "
+            "A model with a finite horizon (model.horizon) is always solved by \"backward_induction\", which may be "
+            "named here; without a horizon it is refused."
         ),
     )
     tolerance: Positive = Field(
@@ -160,7 +164,9 @@ class SolverSpec(Part):
         default="zeros",
         description=(
             'Where iteration starts: "zeros" (the default), {"values": ARRAY}, or {"job": ID} to start from an '
-            'earlier job\'s value function.'
+            'earlier job\'s value function. With a finite horizon (model.horizon) it is the value after the last '
+            'period instead of terminal_value: values shaped like one period\'s value, or an earlier job (an '
+            'infinite-horizon one, or a finite one whose first period follows this horizon\'s last).'
         ),
     )
 
@@ -173,6 +179,47 @@ def _start_form(value: Any) -> str | None:
     if isinstance(value, int) and not isinstance(value, bool) or isinstance(value, float) and value.is_integer():
         return "<index>"
     return None
+
+
+StartPoint = Annotated[
+    Union[
+        Annotated[dict[str, float], annotated_types.MaxLen(2 * MAX_AXES), Tag("<values>")],
+        Annotated[str, Tag("<label>")],
+        Annotated[Integer, Tag("<index>")],
+    ],
+    Discriminator(
+        _start_form,
+        custom_error_type="fixq_start",
+        custom_error_message="expected an object of state and shock values, a state label or a state index",
+    ),
+]
+"""One point of the state space: grid models an object of state and shock values, tabular models a label or index."""
+
+
+class CohortSpec(Part):
+    """Follow a cohort through a finite horizon: its distribution over the points in every period, from a
+    start in period 0, under the optimal policy of each period."""
+
+    start: StartPoint | None = Field(
+        default=None,
+        description=(
+            "Where the whole cohort starts in period 0. Grid models: an object giving a value for every state and "
+            "shock, each within its grid (the nearest grid point is used). Tabular models: a state label or index."
+        ),
+    )
+    distribution: AnyArray | None = Field(
+        default=None,
+        description=(
+            "Instead of start: the cohort's distribution over the points in period 0, an array shaped like the "
+            "value of one period (or flat), non-negative and summing to 1 (within 1e-9; it is rescaled)."
+        ),
+    )
+
+    @model_validator(mode="after")
+    def _one_start(self) -> CohortSpec:
+        if (self.start is None) == (self.distribution is None):
+            raise faults_error([fault("", "give either start or distribution: where the cohort is in period 0")])
+        return self
 
 
 class SimulateSpec(Part):
@@ -258,6 +305,14 @@ class ReportSpec(Part):
         description=(
             "Also simulate paths under the optimal policy. The key simulate is accepted as a deprecated alias; "
             "the canonical form writes simulation."
+        ),
+    )
+
+    cohort: CohortSpec | None = Field(
+        default=None,
+        description=(
+            "With a finite horizon (model.horizon): the distribution of a cohort over the points in every period "
+            "from period 0, and the mean of every state, shock and choice by period (the result's cohort)."
         ),
     )
 

@@ -16,6 +16,7 @@ from pydantic import Discriminator, Field, Tag, model_validator
 
 from worker.document._faults import Fault, capped, fault, number, raise_faults
 from worker.document._fields import Cube, LabelsOrCount, NullableMatrix, Part, Rows4
+from worker.document.horizon import TabularHorizon, tabular_horizon_faults
 from worker.document.limits import ROW_SUM_TOLERANCE
 from worker.document.taste_shocks import TasteShocks
 from worker.errors import join_path
@@ -90,6 +91,14 @@ class TabularModel(Part):
         ),
     )
 
+    horizon: TabularHorizon | None = Field(
+        default=None,
+        description=(
+            "A finite number of periods, solved by backward induction (absent: an infinite horizon). The value "
+            "and the policy then have a first axis, period."
+        ),
+    )
+
     @property
     def n_states(self) -> int:
         """Number of states."""
@@ -110,7 +119,7 @@ class TabularModel(Part):
 
     @model_validator(mode="after")
     def _check_model(self) -> TabularModel:
-        raise_faults(tabular_faults(self))
+        raise_faults(tabular_faults(self) + tabular_horizon_faults(self))
         return self
 
 

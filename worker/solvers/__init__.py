@@ -15,7 +15,7 @@ of that step, then a method-specific evaluation
   :func:`worker.solvers.evaluation.phase_plan`);
 * ``policy_iteration`` — ``v ← v_σ``, the exact solution of
   ``(I − β P_σ) v = r_σ`` (one linear solve: sparse LU on small problems,
-  restarted GMRES above ``worker.estimate.DIRECT_SOLVE_MAX_POINTS``, where
+  restarted GMRES above ``worker.costs.DIRECT_SOLVE_MAX_POINTS``, where
   an LU's fill-in is unbounded; see
   :func:`worker.solvers.evaluation.exact_evaluation`).
 

@@ -8,7 +8,7 @@ import numpy as np
 import scipy.sparse as sp
 import scipy.sparse.linalg as spla
 
-from worker.estimate import DIRECT_SOLVE_MAX_POINTS, KRYLOV_RESIDUAL_SHARE, KRYLOV_RESTART
+from worker.costs import DIRECT_SOLVE_MAX_POINTS, KRYLOV_RESIDUAL_SHARE, KRYLOV_RESTART
 from worker.problem import PolicySteps
 from worker.solvers.loop import Run
 
@@ -143,7 +143,7 @@ def _fused_steps(
 def exact_evaluation(run: Run, policy: np.ndarray, steps_done: int) -> None:
     """Policy iteration: ``v ← v_σ``, the solution of ``(I − β P_σ) v = r_σ``.
 
-    Up to :data:`~worker.estimate.DIRECT_SOLVE_MAX_POINTS` points a sparse LU
+    Up to :data:`~worker.costs.DIRECT_SOLVE_MAX_POINTS` points a sparse LU
     solve, whose fill-in is then at most ``n²`` entries; above it restarted
     GMRES from the current ``v`` (:func:`krylov_solve`), whose memory is a
     fixed number of vectors of length ``n`` and which checks the stop flag and

@@ -1,0 +1,316 @@
+"""A finite horizon's periods: each period's params and discount, the terminal value, and the result by period.
+
+:func:`period_plan` turns ``model.horizon`` of a validated document and its compiled problem into the
+:class:`~worker.solvers.backward.PeriodPlan` backward induction runs on; :func:`horizon_result` builds the
+result document, whose value and policy have the axis ``period`` first.
+
+Reward storage
+--------------
+A grid model whose expressions use ``period`` or whose params are given per period evaluates a
+different model in each period.  The ``on_the_fly`` storage reads its params from ``ctx`` as it runs,
+so a period is one swap of the params vector (:meth:`worker.gridproblem.GridProblem.use_params`) and
+one compiled module serves every period.  Reward tables would have to be filled again each period
+(``T`` times the precompute, or ``T`` times its memory kept), so such a model always uses
+``on_the_fly`` (:func:`worker.estimate.grid_plan`); a horizon whose periods differ only in the discount or in
+nothing keeps whichever storage the plan picks, tables included.
+"""
+
+from __future__ import annotations
+
+import gc
+from collections.abc import Iterator
+from contextlib import contextmanager
+from typing import Any
+
+import numpy as np
+
+from worker.document.horizon import DISCOUNT_NAME, PERIOD_NAME, varies_by_period
+from worker.errors import InvalidDocument, join_path
+from worker.expressions import evaluate, parse
+from worker.problem import CompiledProblem
+from worker.solvers.backward import METHOD, HorizonOutcome, PeriodPlan
+
+__all__ = ["PERIOD_AXIS", "horizon_result", "period_plan"]
+
+PERIOD_AXIS = "period"
+"""The first axis of a finite-horizon result's value and policy (its values: the periods, from 0)."""
+
+
+def period_plan(doc: Any, problem: CompiledProblem, *, terminal: np.ndarray | None = None) -> PeriodPlan:
+    """The periods, discounts, terminal value and period switch of a document with ``model.horizon``.
+
+    ``terminal`` ((n,) float64), when given, replaces ``model.horizon.terminal_value`` (from ``solver.initial``).
+    """
+    plan = _tabular_plan(doc, problem) if doc.model.kind == "tabular" else _grid_plan(doc, problem)
+    if terminal is not None:
+        plan.terminal = np.asarray(terminal, dtype=np.float64).reshape(problem.n)
+    return plan
+
+
+def _tabular_plan(doc: Any, problem: Any) -> PeriodPlan:
+    horizon = doc.model.horizon
+    periods = int(horizon.periods)
+    discounts = np.full(periods, float(doc.discount)) if horizon.discount is None else np.array(horizon.discount)
+    terminal = np.broadcast_to(np.asarray(horizon.terminal_value, dtype=np.float64), (problem.n,)).copy()
+    labels = doc.model.state_labels()
+
+    def enter(t: int) -> None:
+        problem.discount = float(discounts[t])
+
+    return PeriodPlan(periods, discounts, terminal, enter, lambda i: f"state {labels[i]!r}")
+
+
+def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
+    from worker._codegen import kernel_params
+    from worker.feasibility import period_params
+
+    model, horizon = doc.model, doc.model.horizon
+    periods = int(horizon.periods)
+    data = problem.model_data
+    discounts = _discounts(doc, data.params)
+    terminal = _terminal_value(doc, data)
+    varying = varies_by_period(model)
+
+    if varying and data.span is not None:
+        _check_bounds_by_period(model, data)
+
+    def enter(t: int) -> None:
+        if varying:
+            problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
+        problem.discount = float(discounts[t])
+
+    return PeriodPlan(periods, discounts, terminal, enter, data.describe_state)
+
+
+def _check_bounds_by_period(model: Any, data: Any) -> None:
+    """A continuous choice's min and max checked in every period (the compiler checked period 0's params)."""
+    import dataclasses
+
+    from worker.continuous import check_bounds
+    from worker.feasibility import period_params
+
+    for t in range(1, int(model.horizon.periods)):
+        try:
+            check_bounds(dataclasses.replace(data, param_values=period_params(model, t)))
+        except InvalidDocument as exc:
+            raise InvalidDocument([{**error, "message": f"in period {t}: {error['message']}"}
+                                   for error in exc.errors]) from None
+
+
+def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
+    """``β_t`` for every period, each checked finite and positive (the path names the period)."""
+    from worker.feasibility import period_params
+
+    horizon = doc.model.horizon
+    where = join_path("model", "horizon", "discount")
+    if horizon.discount is None:
+        return np.full(horizon.periods, float(doc.discount))
+    if not isinstance(horizon.discount, str):
+        return np.full(horizon.periods, float(horizon.discount))
+    expression = parse(horizon.discount, path=where)
+    discounts = np.empty(horizon.periods)
+    with np.errstate(all="ignore"):
+        for t in range(horizon.periods):
+            env = dict(zip(names, period_params(doc.model, t).tolist()))
+            env[DISCOUNT_NAME] = float(doc.discount)
+            discounts[t] = float(np.asarray(evaluate(expression, env), dtype=np.float64).reshape(-1)[0])
+    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts > 0)))
+    if bad.size:
+        t = int(bad[0])
+        raise InvalidDocument.at(
+            where, f"gives {float(discounts[t])!r} in period {t}: the discount must be a positive number in every "
+            "period" + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
+        )
+    return discounts
+
+
+def _terminal_value(doc: Any, data: Any) -> np.ndarray:
+    """``V_T`` at every flat point, (n,) float64, checked finite."""
+    from worker.feasibility import period_params
+
+    horizon = doc.model.horizon
+    where = join_path("model", "horizon", "terminal_value")
+    if not isinstance(horizon.terminal_value, str):
+        return np.full(data.n, float(horizon.terminal_value))
+    expression = parse(horizon.terminal_value, path=where)
+    env: dict[str, Any] = {
+        name: value
+        for name, value, raw in zip(data.params, period_params(doc.model, 0).tolist(),
+                                    [*doc.model.params.values(), None])
+        if not isinstance(raw, list)
+    }
+    env[PERIOD_NAME] = float(horizon.periods)
+    env.update(data.state_env(np.arange(data.n, dtype=np.int64)))
+    with np.errstate(all="ignore"):
+        terminal = np.broadcast_to(np.asarray(evaluate(expression, env), dtype=np.float64), (data.n, 1)).reshape(-1)
+    bad = np.flatnonzero(~np.isfinite(terminal))
+    if bad.size:
+        raise InvalidDocument.at(
+            where, f"is {float(terminal[bad[0]])!r} at {data.describe_state(int(bad[0]))}: the terminal value must "
+            f"be a finite number at every point ({bad.size:,} points fail)",
+        )
+    return terminal.copy()
+
+
+def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome: HorizonOutcome,
+                   plain: Any) -> dict[str, Any]:
+    """The result document of a finite-horizon solve: value and policy with ``period`` first.
+
+    ``plain`` turns numpy scalars and arrays into Python numbers and lists (``worker.solve._plain``).
+    """
+    from worker.convergence_log import dropped
+
+    periods = list(range(outcome.first_period, plan.periods))
+    shape = (len(periods), *problem.shape)
+    with _collector_paused():
+        # Millions of list and number objects, none in a cycle: a collection pass in the middle of
+        # building them only walks them (it took 40% of this function at 61 x 1,000 x 7 points).
+        value = np.asarray(outcome.values, dtype=np.float64).reshape(shape).tolist()
+        policy: dict[str, list[Any]] = {}
+        policy_index: dict[str, list[Any]] = {}
+        for row in outcome.policies:
+            values, indices = problem.describe_policy(row)
+            for name in values:
+                policy.setdefault(name, []).append(values[name])
+                if indices is not None:  # a continuous choice has no grid index
+                    policy_index.setdefault(name, []).append(indices[name])
+    problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
+    warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
+    notes = problem_diagnostics.setdefault("notes", [])
+    continuous = getattr(problem, "choose_at", None) is not None
+    notes.append(
+        f"solved by backward induction: one exact Bellman step per period from the terminal value, "
+        f"{len(periods)} of {plan.periods} periods; the value is exact up to rounding, and the error bound is the "
+        "rounding allowance accumulated over the periods"
+        + ("; with a continuous choice, exact for the fitted problem (tomorrow's value interpolated), each "
+           "period's maximum found by its search" if continuous else "")
+    )
+    if outcome.status == "time_limit":
+        notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
+                     f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
+    method = doc.solver.method
+    if "method" in doc.solver.model_fields_set and method != METHOD:
+        notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
+                     "induction")
+    if doc.solver.initial not in (None, "zeros"):
+        notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
+    report = doc.report
+    if report.stationary:
+        notes.append("no stationary distribution: a model with a finite horizon has none (report.cohort gives the "
+                     "distribution by period)")
+    cohort = simulation = None
+    if (report.cohort is not None or report.simulation is not None) and outcome.first_period > 0:
+        notes.append("no cohort and no simulation: they start in period 0, which the solve did not reach")
+    elif report.cohort is not None or report.simulation is not None:
+        from worker.cohort import cohort_report, horizon_simulation
+
+        if report.cohort is not None:
+            cohort = cohort_report(problem, plan, outcome, report.cohort)
+        if report.simulation is not None:
+            simulation = horizon_simulation(problem, plan, outcome, report.simulation, report.cohort,
+                                            f"report.{report.simulation_key}")
+            warnings += simulation.pop("warnings")
+    euler = {}
+    if report.euler_errors:
+        euler, note = _euler_by_period(doc, problem, plan, outcome)
+        if note:
+            notes.append(note)
+    bound = outcome.error_bound
+    diagnostics = {
+        **problem_diagnostics,
+        **euler,
+        "observed_rate": None,
+        "warnings": warnings,
+        "resumed_from_iteration": outcome.resumed_from_iteration,
+        "verification": outcome.verification,
+        "bracket": {"lower": 0.0, "upper": 0.0, "shift": 0.0, "standard_bound": bound, "rounding_allowance": bound},
+        "log_dropped": dropped(outcome.log),
+        "horizon": {"periods": plan.periods, "discount": plan.discounts.tolist(),
+                    "rounding_allowance": outcome.bounds.tolist()},
+    }
+    head = plain({
+        "status": outcome.status, "method": METHOD, "error_bound": bound, "iterations": len(periods),
+        "evaluation_steps": 0, "linear_solves": 0, "seconds": outcome.seconds,
+        "axes": {PERIOD_AXIS: periods, **problem.axes},
+    })
+    tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
+                  "cohort": cohort})
+    return {
+        **head,
+        "value": value,
+        "policy": policy,
+        "policy_index": policy_index or None,
+        **tail,
+    }
+
+
+@contextmanager
+def _collector_paused() -> Iterator[None]:
+    """Pause Python's cyclic garbage collector inside the block (when it was running)."""
+    running = gc.isenabled()
+    gc.disable()
+    try:
+        yield
+    finally:
+        if running:
+            gc.enable()
+
+
+def _euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
+                     outcome: HorizonOutcome) -> tuple[dict[str, Any], str | None]:
+    """``({"euler_errors": ...}, note)``: Euler-equation errors of every period but the last, pooled.
+
+    Period ``t``'s errors use its params, discount and policy today and period ``t + 1``'s tomorrow (the
+    last period's tomorrow is the terminal value, which has no policy: it is left out).  The result has
+    the keys of :func:`worker.euler.euler_errors` over all periods measured (``profile``: the first
+    period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
+    """
+    import dataclasses
+
+    from worker.euler import EulerSetup, euler_errors, grid_policy, setup
+    from worker.feasibility import period_params
+
+    if getattr(problem, "choose_at", None) is not None or getattr(problem, "model_data", None) is None:
+        return {}, ("Euler-equation errors were not measured: with a finite horizon they are measured for a choice "
+                    "restricted to the grid")
+    data = problem.model_data
+    found = setup(data)
+    if not isinstance(found, EulerSetup):
+        return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
+                             "value of a state (next_of)")
+    first, periods = outcome.first_period, plan.periods
+    if periods - first < 2:
+        return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
+    choice = data.choices[0]
+    grid = data.state_grids[0]
+
+    def model_and_rule(t: int) -> tuple[Any, Any]:
+        values = problem.choice_values(outcome.policies[t - first])[choice]
+        period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
+        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
+
+    by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
+    pooled = {"points": 0, "constrained": 0, "undefined": 0}
+    worst, total, profile = None, 0.0, None
+    for t in range(first, periods - 1):
+        today, rule = model_and_rule(t)
+        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        profile = profile or errors["profile"]
+        by_period["period"].append(t)
+        by_period["max_log10"].append(errors["max_log10"])
+        by_period["mean_log10"].append(errors["mean_log10"])
+        for key in pooled:
+            pooled[key] += errors[key]
+        if errors["max_log10"] is not None:
+            worst = errors["max_log10"] if worst is None else max(worst, errors["max_log10"])
+            total += errors["mean_log10"] * errors["points"]
+    result = {
+        "max_log10": worst,
+        "mean_log10": total / pooled["points"] if pooled["points"] else None,
+        **pooled,
+        "define": found.define,
+        "profile": profile,
+        "by_period": by_period,
+    }
+    note = f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal value)"
+    return {"euler_errors": result}, note
