@@ -237,21 +237,7 @@ class SimulateSpec(Part):
     seed: Annotated[Integer, Field(ge=0, le=2**64 - 1)] = Field(
         default=0, description="Seed of the random numbers, a whole number from 0; the same seed gives the same paths."
     )
-    start: (
-        Annotated[
-            Union[
-                Annotated[dict[str, float], annotated_types.MaxLen(2 * MAX_AXES), Tag("<values>")],
-                Annotated[str, Tag("<label>")],
-                Annotated[Integer, Tag("<index>")],
-            ],
-            Discriminator(
-                _start_form,
-                custom_error_type="fixq_start",
-                custom_error_message="expected an object of state and shock values, a state label or a state index",
-            ),
-        ]
-        | None
-    ) = Field(
+    start: StartPoint | None = Field(
         default=None,
         description=(
             "Where every path starts. Grid models: an object giving a value for every state and shock, each "
