@@ -25,7 +25,7 @@ __all__ = [
     "stationary_report",
 ]
 
-DIRECT_MAX_STATES = 20_000
+DIRECT_MAX_STATES = 400_000
 """Chains with at most this many states are solved exactly (sparse LU);
 larger ones by power iteration, whose memory stays O(nonzeros)."""
 POWER_TOLERANCE = 1e-10

@@ -1,0 +1,220 @@
+"""Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
+
+:func:`run_search` solves the model once per trial value of the unknown, each solve started from the
+last one's value, computes the stationary distribution of the policy and the conditions' aggregates
+(:mod:`worker.aggregates`), and lets ``scipy.optimize.brentq`` — a bracketing method that never leaves
+its bracket — choose the next trial.
+
+Inner tolerances tighten as the search goes: the first trials are solved with a tolerance
+`LOOSE_FACTOR` times the document's ``solver.tolerance``, each next one `TIGHTEN` times tighter, down to
+the document's own.  A point is accepted only when a solve at the document's tolerance puts every
+condition within ``search.tolerance`` of zero; otherwise the search says how close it came (status
+``not_met`` or ``max_trials``) and never presents the point as a solution.  When the condition has the
+same sign at both ends of the bracket there is no root to bracket: :class:`~worker.errors.InvalidDocument`
+names the values found at the ends, and carries the trials.
+
+The solves themselves are done by the caller's ``trial`` function (:mod:`worker.solve` passes its own),
+so that this module does not import the front door that imports it.
+"""
+
+from __future__ import annotations
+
+import copy
+import time
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+from scipy.optimize import brentq
+
+from worker.aggregates import Condition, aggregate_value, parse_condition
+from worker.document import parse_document
+from worker.document.params import param_expressions
+from worker.document.search import DISCOUNT
+from worker.errors import InvalidDocument, join_path
+from worker.expressions import evaluate, parse
+from worker.problem import CompiledProblem
+from worker.report import long_run_distribution
+
+__all__ = ["LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "run_search"]
+
+LOOSE_FACTOR = 1e4
+"""The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
+only need the sign of the condition, not its digits)."""
+TIGHTEN = 0.1
+"""Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
+XTOL_SHARE = 1e-12
+"""The root finder stops when its bracket is narrower than this share of the search bracket."""
+
+Trial = Callable[[Any, "np.ndarray | None", float], tuple[CompiledProblem, Any]]
+"""``trial(doc, initial, tolerance) -> (problem, outcome)``: one solve of a validated document."""
+
+
+class _Met(Exception):
+    """Raised inside the root finder's function when a point meets the tolerance at full accuracy."""
+
+
+def run_search(
+    document: dict[str, Any],
+    doc: Any,
+    trial: Trial,
+    finish: Callable[[Any, CompiledProblem, Any], dict[str, Any]],
+    *,
+    on_progress: Callable[[dict[str, Any]], None] | None = None,
+) -> dict[str, Any]:
+    """Run the document's search; return the result at the point found, with its ``search`` object.
+
+    Parameters
+    ----------
+    document : the raw document (its string params are resolved again for every trial).
+    doc : the validated document, with ``doc.search`` set.
+    trial : solves one validated document from given values (None: the document's own start).
+    finish : builds the result document of a solve (``worker.solve``'s own).
+    on_progress : called with a ``{"search_trial": row}`` entry after every trial.
+
+    Raises
+    ------
+    InvalidDocument
+        An unknown given as an expression, a condition that cannot be evaluated, or no sign change across
+        the bracket (``trials`` in the exception's context).
+    """
+    spec = doc.search
+    (name, bracket), = spec.unknowns.items()
+    where = join_path("search.unknowns", name)
+    if name in param_expressions(document):
+        raise InvalidDocument.at(where, f"`{name}` is given as an expression; an unknown is a param given as a number")
+    model = doc.model
+    reserved = {*model.params, *model.states, *model.shocks, *model.choices, *model.define, DISCOUNT}
+    conditions = [parse_condition(text, path=join_path("search.conditions", k), reserved=reserved)
+                  for k, text in enumerate(spec.conditions)]
+    final_tolerance = float(doc.solver.tolerance)
+    trials: list[dict[str, Any]] = []
+    last: dict[str, Any] = {}
+
+    def at(x: float, tolerance: float) -> float:
+        started = time.perf_counter()
+        trial_doc = parse_document(_with_unknown(document, name, x))
+        problem, outcome = trial(trial_doc, last.get("value"), tolerance)
+        pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
+        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
+                     for k, c in enumerate(conditions)]
+        last.update(value=np.asarray(outcome.value, dtype=np.float64), x=x, tolerance=tolerance, doc=trial_doc,
+                    problem=problem, outcome=outcome, residuals=residuals)
+        row = {"unknowns": {name: x}, "residuals": residuals, "inner_tolerance": tolerance,
+               "inner_status": outcome.status, "iterations": int(outcome.iterations),
+               "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
+               "seconds": time.perf_counter() - started}
+        trials.append(row)
+        if on_progress is not None:
+            on_progress({"search_trial": row})
+        return residuals[0]
+
+    def inner_tolerance() -> float:
+        return max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
+
+    known: dict[float, float] = {}
+
+    def objective(x: float) -> float:
+        # brentq evaluates the ends again itself: their signs, already known, are all it needs.
+        if x in known:
+            return known[x]
+        value = at(x, inner_tolerance())
+        if abs(value) <= spec.tolerance and last["tolerance"] > final_tolerance:
+            value = at(x, final_tolerance)
+        if abs(value) <= spec.tolerance and last["outcome"].status == "converged":
+            raise _Met
+        if len(trials) >= spec.max_trials:
+            raise _Met
+        known[x] = value
+        return value
+
+    status = "converged"
+    try:
+        low = objective(bracket.min)
+        high = objective(bracket.max)
+        if np.sign(low) == np.sign(high):
+            raise InvalidDocument([{"path": where, "message": (
+                f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
+                f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
+                "check the condition")}], trials=trials)
+        brentq(objective, bracket.min, bracket.max, xtol=XTOL_SHARE * (bracket.max - bracket.min),
+               maxiter=spec.max_trials)
+    except _Met:
+        pass
+    except RuntimeError:
+        status = "max_trials"
+    if last["tolerance"] > final_tolerance:
+        at(last["x"], final_tolerance)
+    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["outcome"].status == "converged"
+    if not met and status == "converged":
+        status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
+    result = finish(last["doc"], last["problem"], last["outcome"])
+    result["search"] = {"status": status, "unknowns": {name: last["x"]}, "residuals": last["residuals"],
+                        "tolerance": spec.tolerance, "sign_change": _sign_change(trials, name), "trials": trials}
+    if status != "converged":
+        result["diagnostics"]["warnings"].append(_not_met_warning(status, name, last, spec, trials))
+    return result
+
+
+def _with_unknown(document: dict[str, Any], name: str, x: float) -> dict[str, Any]:
+    """The raw document with the unknown set to ``x``, no search, and the stationary report on."""
+    out = {key: value for key, value in document.items() if key != "search"}
+    if name == DISCOUNT:
+        out[DISCOUNT] = x
+    else:
+        model = copy.copy(document["model"])
+        model["params"] = {**model["params"], name: x}
+        out["model"] = model
+    out["report"] = {**(document.get("report") or {}), "stationary": True}
+    return out
+
+
+def point_env(doc: Any, problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
+    """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
+    choices (chosen there) and the defines that can be evaluated from them."""
+    env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
+    env[DISCOUNT] = float(doc.discount)
+    env.update(problem.state_values())
+    env.update(problem.choice_values(policy))
+    for name, text in doc.model.define.items():
+        expr = parse(text, path=join_path("model.define", name))
+        if expr.names <= env.keys():
+            env[name] = evaluate(expr, env)
+    return env
+
+
+def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
+              where: str) -> float:
+    env = point_env(doc, problem, policy)
+    for aggregate in condition.aggregates.values():
+        missing = sorted(aggregate.argument.names - env.keys())
+        if missing:
+            raise InvalidDocument.at(where, "cannot be evaluated over the stationary distribution: "
+                                     + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
+    values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
+    scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
+    return float(evaluate(condition.outer, {**scalars, **values}))
+
+
+def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
+    """The two closest trials whose first residuals have opposite signs (None when there are none)."""
+    points = sorted((row["unknowns"][name], row["residuals"][0]) for row in trials)
+    pairs = [(a, b) for a, b in zip(points, points[1:]) if np.sign(a[1]) != np.sign(b[1]) and a[0] != b[0]]
+    if not pairs:
+        return None
+    a, b = min(pairs, key=lambda pair: pair[1][0] - pair[0][0])
+    return {"below": {name: a[0], "residual": a[1]}, "above": {name: b[0], "residual": b[1]}}
+
+
+def _not_met_warning(status: str, name: str, last: dict[str, Any], spec: Any, trials: list[dict[str, Any]]) -> str:
+    residual = max(last["residuals"], key=abs)
+    if last["outcome"].status != "converged":
+        why = f"the last solve ended with status {last['outcome'].status}"
+    elif status == "max_trials":
+        why = f"search.max_trials ({spec.max_trials}) solves were used up"
+    else:
+        why = ("the condition jumps across zero between two neighbouring values of the unknown (aggregates move "
+               "in steps when a choice is restricted to a grid; a continuous choice makes them move smoothly)")
+    return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {name} = {last['x']:.12g} the largest "
+            f"residual is {residual:.6g} after {len(trials)} trials; {why}. search.sign_change gives the closest "
+            "values on either side of zero")
