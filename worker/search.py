@@ -213,8 +213,10 @@ def _not_met_warning(status: str, name: str, last: dict[str, Any], spec: Any, tr
     elif status == "max_trials":
         why = f"search.max_trials ({spec.max_trials}) solves were used up"
     else:
-        why = ("the condition jumps across zero between two neighbouring values of the unknown (aggregates move "
-               "in steps when a choice is restricted to a grid; a continuous choice makes them move smoothly)")
+        why = ("the condition changes sign across the narrowest bracket without coming that close to zero: it "
+               "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
+               "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
+               "solver.tolerance, or loosen search.tolerance)")
     return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {name} = {last['x']:.12g} the largest "
             f"residual is {residual:.6g} after {len(trials)} trials; {why}. search.sign_change gives the closest "
             "values on either side of zero")
