@@ -17,6 +17,8 @@ from worker.shocks import stationary_distribution
 
 __all__ = [
     "DIRECT_MAX_STATES",
+    "ILU_DROP_TOLERANCE",
+    "ILU_FILL_FACTOR",
     "PERCENTILES",
     "POWER_MAX_STEPS",
     "POWER_TOLERANCE",
@@ -25,9 +27,15 @@ __all__ = [
     "stationary_report",
 ]
 
-DIRECT_MAX_STATES = 400_000
-"""Chains with at most this many states are solved exactly (sparse LU);
-larger ones by power iteration, whose memory stays O(nonzeros)."""
+DIRECT_MAX_STATES = 20_000
+"""Chains with at most this many states are solved exactly (sparse LU); larger ones by GMRES with an
+incomplete-LU preconditioner (one closed class), else by power iteration, whose memory stays O(nonzeros).
+A sparse LU of a 28,000-state savings chain fills in to 40 million entries (8 s, measured); the
+preconditioned GMRES settles it to a residual of 3e-14 in 1.1 s."""
+ILU_DROP_TOLERANCE = 1e-3
+"""``spilu``'s drop tolerance for the GMRES preconditioner (measured fastest of 1e-3 to 1e-5)."""
+ILU_FILL_FACTOR = 5
+"""``spilu``'s fill factor for the GMRES preconditioner."""
 POWER_TOLERANCE = 1e-10
 """Power iteration stops when the residual ``‖πP − π‖₁`` is at most this
 (unitless: a total-variation distance of probability vectors)."""
@@ -49,10 +57,13 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     the Cesàro limit of ``u P^t``, ``u`` uniform.  Periodic chains are fine.
 
     Up to ``DIRECT_MAX_STATES`` states the limit is solved exactly
-    (:func:`worker.shocks.stationary_distribution`, a sparse LU).  Above, it
-    is approached by power iteration on the lazy chain ``(I + P)/2`` (which
-    has the same limit and is aperiodic) from the uniform distribution, until
-    ``‖πP − π‖₁ ≤ POWER_TOLERANCE``.
+    (:func:`worker.shocks.stationary_distribution`, a sparse LU).  Above, a
+    chain with one closed class is solved by GMRES preconditioned with an
+    incomplete LU (:func:`_preconditioned`); when that is not possible or
+    leaves a residual above ``POWER_TOLERANCE``, the limit is approached by
+    power iteration on the lazy chain ``(I + P)/2`` (which has the same limit
+    and is aperiodic) from the uniform distribution, until
+    ``‖πP − π‖₁ ≤ POWER_TOLERANCE``.  The residual is reported either way.
 
     Parameters
     ----------
@@ -62,19 +73,23 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     -------
     pi : (n,) float64, summing to 1
     info : dict
-        ``method`` (``"direct"`` or ``"power"``), ``residual`` (‖πP − π‖₁),
+        ``method`` (``"direct"``, ``"gmres"`` or ``"power"``), ``residual`` (‖πP − π‖₁),
         ``steps`` (power steps; 0 for direct), ``warnings``.
     """
     matrix = sp.csr_matrix(matrix, dtype=np.float64)
     n = matrix.shape[0]
     transposed = sp.csr_matrix(matrix.T)
     warnings: list[str] = []
+    pi = None
     if n <= DIRECT_MAX_STATES:
         pi = stationary_distribution(matrix)
         method, steps = "direct", 0
     else:
-        pi, steps = _lazy_power(transposed, n)
-        method = "power"
+        pi = _preconditioned(matrix, n)
+        method, steps = "gmres", 0
+        if pi is None or float(np.abs(transposed @ pi - pi).sum()) > POWER_TOLERANCE:
+            pi, steps = _lazy_power(transposed, n)
+            method = "power"
     residual = float(np.abs(transposed @ pi - pi).sum())
     if method == "power" and residual > POWER_TOLERANCE:
         warnings.append(
@@ -82,6 +97,39 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
             f"(residual {residual:.3g}); the chain of this policy mixes very slowly"
         )
     return pi, {"method": method, "residual": residual, "steps": steps, "warnings": warnings}
+
+
+def _preconditioned(matrix: sp.csr_matrix, n: int) -> np.ndarray | None:
+    """The stationary distribution of a chain with one closed class by GMRES, or None (several closed
+    classes, or GMRES did not settle).
+
+    ``π (I − P) = 0`` with ``π_k = 1`` for a state ``k`` of the closed class is a nonsingular system in the
+    other entries (the transient ones come out 0); its solution is normalised to sum to 1.
+    """
+    from scipy.sparse import csgraph
+    from scipy.sparse import linalg as sla
+
+    count, label = csgraph.connected_components(matrix, directed=True, connection="strong")
+    rows, cols = matrix.nonzero()
+    leaky = np.unique(label[rows[label[rows] != label[cols]]])
+    closed = np.setdiff1d(np.arange(count), leaky)
+    if closed.size != 1:
+        return None
+    k = int(np.flatnonzero(label == closed[0])[0])
+    system = sp.csc_matrix(sp.identity(n, format="csr") - matrix.T)
+    keep = np.r_[0:k, k + 1:n]
+    reduced = sp.csc_matrix(system[keep][:, keep])
+    rhs = -system[keep][:, [k]].toarray().ravel()
+    try:
+        ilu = sla.spilu(reduced, drop_tol=ILU_DROP_TOLERANCE, fill_factor=ILU_FILL_FACTOR)
+    except RuntimeError:  # an exactly singular pivot: leave it to power iteration
+        return None
+    solution, info = sla.gmres(reduced, rhs, M=sla.LinearOperator(reduced.shape, ilu.solve), rtol=1e-13, atol=0,
+                               restart=50, maxiter=200)
+    if info != 0 or not np.isfinite(solution).all():
+        return None
+    pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
+    return pi / pi.sum()
 
 
 def _lazy_power(transposed: sp.csr_matrix, n: int) -> tuple[np.ndarray, int]:

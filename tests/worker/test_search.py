@@ -319,3 +319,19 @@ def test_an_unknown_given_as_an_expression_is_refused() -> None:
     with pytest.raises(InvalidDocument) as caught:
         solve(_document(search))
     assert caught.value.errors[0]["path"] == "search.unknowns.w"
+
+
+def test_a_large_chain_is_settled_by_preconditioned_gmres_to_the_direct_answer(monkeypatch: pytest.MonkeyPatch) -> None:
+    from worker import report
+    from worker.shocks import stationary_distribution
+
+    doc, problem = compile_document(_document(r=0.04))
+    value = np.asarray(solve(_document(r=0.04))["value"]).reshape(-1)
+    _, chosen = problem.bellman_step(value)
+    matrix = problem.policy_matrix(chosen)
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 10)
+    pi, info = long_run_distribution(matrix)
+    assert info["method"] == "gmres"
+    assert info["residual"] <= 1e-12
+    # Independent: a sparse LU of the same chain (scipy's SuperLU, through worker.shocks).
+    np.testing.assert_allclose(pi, stationary_distribution(matrix), rtol=0, atol=1e-12)
