@@ -70,7 +70,8 @@ def run_search(
     doc : the validated document, with ``doc.search`` set.
     trial : solves one validated document from given values (None: the document's own start).
     finish : builds the result document of a solve (``worker.solve``'s own).
-    on_progress : called with a ``{"search_trial": row}`` entry after every trial.
+    on_progress : called after every trial with ``{"iteration": trial number, "error_bound", "seconds",
+        "search_trial": row}``.
 
     Raises
     ------
@@ -90,6 +91,7 @@ def run_search(
     final_tolerance = float(doc.solver.tolerance)
     trials: list[dict[str, Any]] = []
     last: dict[str, Any] = {}
+    begun = time.perf_counter()
 
     def at(x: float, tolerance: float) -> float:
         started = time.perf_counter()
@@ -106,7 +108,9 @@ def run_search(
                "seconds": time.perf_counter() - started}
         trials.append(row)
         if on_progress is not None:
-            on_progress({"search_trial": row})
+            # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
+            on_progress({"iteration": len(trials), "error_bound": row["error_bound"],
+                         "seconds": time.perf_counter() - begun, "search_trial": row})
         return residuals[0]
 
     def inner_tolerance() -> float:

@@ -185,6 +185,13 @@ def test_a_tolerance_below_the_noise_is_reported_not_met_with_the_sign_change() 
     assert min(below["r"], above["r"]) - 1e-8 <= reference <= max(below["r"], above["r"]) + 1e-8
 
 
+def test_progress_reports_every_trial() -> None:
+    entries: list[dict[str, Any]] = []
+    result = solve(_document(MARKET), on_progress=entries.append)
+    assert [entry["search_trial"] for entry in entries] == result["search"]["trials"]
+    assert [entry["iteration"] for entry in entries] == list(range(1, len(entries) + 1))
+
+
 def test_the_trials_record_warm_starts_and_tightening_tolerances(equilibrium: dict[str, Any]) -> None:
     trials = equilibrium["search"]["trials"]
     assert 3 <= len(trials) <= 60
