@@ -243,8 +243,9 @@ class GridModel(Part):
     params: Annotated[dict[Name, ParamValue], Field(max_length=MAX_ENTRIES)] = Field(
         default_factory=dict,
         description=(
-            "Named constants usable in every expression; with a horizon, a param may also be a list with one "
-            "value per period (an income profile, survival probabilities)."
+            "Named constants usable in every expression: a number, or a string holding an expression of other "
+            "params (a wage from the interest rate), evaluated once in dependency order; with a horizon, a param "
+            "may also be a list with one value per period (an income profile, survival probabilities)."
         ),
     )
     states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(
