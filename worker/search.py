@@ -61,6 +61,8 @@ def run_search(
     finish: Callable[[Any, CompiledProblem, Any], dict[str, Any]],
     *,
     on_progress: Callable[[dict[str, Any]], None] | None = None,
+    checkpoint: Any = None,
+    fingerprint: str = "",
 ) -> dict[str, Any]:
     """Run the document's search; return the result at the point found, with its ``search`` object.
 
@@ -72,6 +74,12 @@ def run_search(
     finish : builds the result document of a solve (``worker.solve``'s own).
     on_progress : called after every trial with ``{"iteration": trial number, "error_bound", "seconds",
         "search_trial": row}``.
+    checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
+        Saved after every trial (``kind`` "search", ``fingerprint``, ``iteration`` = trials so far, ``log``,
+        ``trials``, ``value`` = the last solve's value).  A matching saved state is resumed from: the root
+        finder is deterministic, so it asks for the same trials again, and those already made are answered
+        from the saved rows without solving; the next solve starts from the saved value.
+    fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
     ------
@@ -92,8 +100,20 @@ def run_search(
     trials: list[dict[str, Any]] = []
     last: dict[str, Any] = {}
     begun = time.perf_counter()
+    log: list[dict[str, Any]] = []
+    saved = checkpoint.load() if checkpoint is not None else None
+    replay: dict[tuple[float, float], dict[str, Any]] = {}
+    if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
+        replay = {(row["unknowns"][name], row["inner_tolerance"]): row for row in saved["trials"]}
+        log = list(saved.get("log") or [])
+        last["value"] = np.asarray(saved["value"], dtype=np.float64)
 
     def at(x: float, tolerance: float) -> float:
+        if (x, tolerance) in replay:
+            row = replay.pop((x, tolerance))
+            trials.append(row)
+            last.update(x=x, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
+            return row["residuals"][0]
         started = time.perf_counter()
         trial_doc = parse_document(_with_unknown(document, name, x))
         problem, outcome = trial(trial_doc, last.get("value"), tolerance)
@@ -101,16 +121,21 @@ def run_search(
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         last.update(value=np.asarray(outcome.value, dtype=np.float64), x=x, tolerance=tolerance, doc=trial_doc,
-                    problem=problem, outcome=outcome, residuals=residuals)
+                    problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": {name: x}, "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
                "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
                "seconds": time.perf_counter() - started}
         trials.append(row)
+        # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
+        entry = {"iteration": len(trials), "error_bound": row["error_bound"], "seconds": time.perf_counter() - begun,
+                 "search_trial": row}
+        log.append(entry)
         if on_progress is not None:
-            # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
-            on_progress({"iteration": len(trials), "error_bound": row["error_bound"],
-                         "seconds": time.perf_counter() - begun, "search_trial": row})
+            on_progress(entry)
+        if checkpoint is not None:
+            checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
+                             "trials": trials, "value": last["value"]})
         return residuals[0]
 
     def inner_tolerance() -> float:
@@ -125,7 +150,7 @@ def run_search(
         value = at(x, inner_tolerance())
         if abs(value) <= spec.tolerance and last["tolerance"] > final_tolerance:
             value = at(x, final_tolerance)
-        if abs(value) <= spec.tolerance and last["outcome"].status == "converged":
+        if abs(value) <= spec.tolerance and last["status"] == "converged":
             raise _Met
         if len(trials) >= spec.max_trials:
             raise _Met
@@ -147,9 +172,11 @@ def run_search(
         pass
     except RuntimeError:
         status = "max_trials"
-    if last["tolerance"] > final_tolerance:
+    if last["tolerance"] > final_tolerance or last["doc"] is None:
+        # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
+        replay.clear()
         at(last["x"], final_tolerance)
-    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["outcome"].status == "converged"
+    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
     if not met and status == "converged":
         status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
     result = finish(last["doc"], last["problem"], last["outcome"])
@@ -212,8 +239,8 @@ def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | No
 
 def _not_met_warning(status: str, name: str, last: dict[str, Any], spec: Any, trials: list[dict[str, Any]]) -> str:
     residual = max(last["residuals"], key=abs)
-    if last["outcome"].status != "converged":
-        why = f"the last solve ended with status {last['outcome'].status}"
+    if last["status"] != "converged":
+        why = f"the last solve ended with status {last['status']}"
     elif status == "max_trials":
         why = f"search.max_trials ({spec.max_trials}) solves were used up"
     else:

@@ -164,7 +164,8 @@ def solve(
     cap = {"max_bytes": int(limits.get("max_bytes") or max_problem_bytes())}
     size = _check_size(doc, cap)
     if doc.search is not None:
-        return _search(document, doc, cap, warm_start, on_progress, should_stop, limits.get("max_seconds"))
+        return _search(document, doc, cap, warm_start, on_progress, checkpoint, should_stop,
+                       limits.get("max_seconds"))
     if not limits.get("enforce_memory"):
         return _solve(doc, cap, warm_start, on_progress, checkpoint, should_stop, limits.get("max_seconds"))
     with memory_limit(size["bytes"], what="this solve", context={"estimate": size}):
@@ -214,6 +215,7 @@ def _search(
     cap: dict[str, int],
     warm_start: dict[str, Any] | None,
     on_progress: Callable[[dict[str, Any]], None] | None,
+    checkpoint: Checkpoint | None,
     should_stop: Callable[[], bool] | None,
     max_seconds: float | None,
 ) -> dict[str, Any]:
@@ -232,7 +234,8 @@ def _search(
         )
         return problem, outcome
 
-    return run_search(document, doc, trial, _result, on_progress=on_progress)
+    return run_search(document, doc, trial, _result, on_progress=on_progress, checkpoint=checkpoint,
+                      fingerprint="" if checkpoint is None else _fingerprint(doc))
 
 
 def _solve_horizon(

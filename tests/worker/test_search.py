@@ -342,3 +342,44 @@ def test_a_large_chain_is_settled_by_preconditioned_gmres_to_the_direct_answer(m
     assert info["residual"] <= 1e-12
     # Independent: a sparse LU of the same chain (scipy's SuperLU, through worker.shocks).
     np.testing.assert_allclose(pi, stationary_distribution(matrix), rtol=0, atol=1e-12)
+
+
+class _Memory:
+    """An in-memory checkpoint (load/save), as the service keeps one in Redis."""
+
+    def __init__(self) -> None:
+        self.state: dict[str, Any] | None = None
+        self.saves = 0
+
+    def load(self) -> dict[str, Any] | None:
+        return copy.deepcopy(self.state)
+
+    def save(self, state: dict[str, Any]) -> None:
+        self.state = copy.deepcopy(state)
+        self.saves += 1
+
+
+def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(equilibrium: dict[str, Any]) -> None:
+    from worker.errors import Canceled
+
+    memory = _Memory()
+    first: list[dict[str, Any]] = []
+    with pytest.raises(Canceled):
+        solve(_document(MARKET), checkpoint=memory, on_progress=first.append, should_stop=lambda: len(first) >= 5)
+    assert memory.state is not None and memory.state["iteration"] == 5 and len(memory.state["trials"]) == 5
+    second: list[dict[str, Any]] = []
+    resumed = solve(_document(MARKET), checkpoint=memory, on_progress=second.append)
+    fresh = equilibrium["search"]
+    # The same trials, the first five answered from the checkpoint: the same point, reached with fewer solves.
+    assert resumed["search"]["unknowns"] == fresh["unknowns"]
+    assert [row["unknowns"] for row in resumed["search"]["trials"]] == [row["unknowns"] for row in fresh["trials"]]
+    assert len(second) == len(fresh["trials"]) - 5
+    assert resumed["search"]["status"] == "converged"
+
+
+def test_a_checkpoint_of_another_document_is_ignored() -> None:
+    memory = _Memory()
+    solve(_document(MARKET), checkpoint=memory)
+    entries: list[dict[str, Any]] = []
+    other = solve(_document({**MARKET, "tolerance": 1e-5}), checkpoint=memory, on_progress=entries.append)
+    assert len(entries) == len(other["search"]["trials"])
