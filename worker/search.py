@@ -25,7 +25,7 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq
+from scipy.optimize import brentq, least_squares
 
 from worker.aggregates import Condition, aggregate_value, parse_condition
 from worker.document import parse_document
@@ -36,7 +36,7 @@ from worker.expressions import evaluate, parse
 from worker.problem import CompiledProblem
 from worker.report import long_run_distribution
 
-__all__ = ["LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "run_search"]
+__all__ = ["DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
 LOOSE_FACTOR = 1e4
 """The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
@@ -45,6 +45,9 @@ TIGHTEN = 0.1
 """Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
 XTOL_SHARE = 1e-12
 """The root finder stops when its bracket is narrower than this share of the search bracket."""
+DIFF_STEP = 1e-6
+"""Relative step of least squares' forward differences with several unknowns: large beside the conditions'
+noise from the inner solves (about 1e-7 of their size, measured), small beside their curvature."""
 
 Trial = Callable[[Any, "np.ndarray | None", float], tuple[CompiledProblem, Any]]
 """``trial(doc, initial, tolerance) -> (problem, outcome)``: one solve of a validated document."""
@@ -88,10 +91,11 @@ def run_search(
         the bracket (``trials`` in the exception's context).
     """
     spec = doc.search
-    (name, bracket), = spec.unknowns.items()
-    where = join_path("search.unknowns", name)
-    if name in param_expressions(document):
-        raise InvalidDocument.at(where, f"`{name}` is given as an expression; an unknown is a param given as a number")
+    names = list(spec.unknowns)
+    for name in names:
+        if name in param_expressions(document):
+            raise InvalidDocument.at(join_path("search.unknowns", name),
+                                     f"`{name}` is given as an expression; an unknown is a param given as a number")
     model = doc.model
     reserved = {*model.params, *model.states, *model.shocks, *model.choices, *model.define, DISCOUNT}
     conditions = [parse_condition(text, path=join_path("search.conditions", k), reserved=reserved)
@@ -102,27 +106,27 @@ def run_search(
     begun = time.perf_counter()
     log: list[dict[str, Any]] = []
     saved = checkpoint.load() if checkpoint is not None else None
-    replay: dict[tuple[float, float], dict[str, Any]] = {}
+    replay: dict[tuple[tuple[float, ...], float], dict[str, Any]] = {}
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
-        replay = {(row["unknowns"][name], row["inner_tolerance"]): row for row in saved["trials"]}
+        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"]): row for row in saved["trials"]}
         log = list(saved.get("log") or [])
         last["value"] = np.asarray(saved["value"], dtype=np.float64)
 
-    def at(x: float, tolerance: float) -> float:
-        if (x, tolerance) in replay:
-            row = replay.pop((x, tolerance))
+    def at(xs: tuple[float, ...], tolerance: float) -> list[float]:
+        if (xs, tolerance) in replay:
+            row = replay.pop((xs, tolerance))
             trials.append(row)
-            last.update(x=x, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
-            return row["residuals"][0]
+            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
+            return row["residuals"]
         started = time.perf_counter()
-        trial_doc = parse_document(_with_unknown(document, name, x))
+        trial_doc = parse_document(_with_unknowns(document, dict(zip(names, xs))))
         problem, outcome = trial(trial_doc, last.get("value"), tolerance)
         pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
-        last.update(value=np.asarray(outcome.value, dtype=np.float64), x=x, tolerance=tolerance, doc=trial_doc,
+        last.update(value=np.asarray(outcome.value, dtype=np.float64), xs=xs, tolerance=tolerance, doc=trial_doc,
                     problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
-        row = {"unknowns": {name: x}, "residuals": residuals, "inner_tolerance": tolerance,
+        row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
                "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
                "seconds": time.perf_counter() - started}
@@ -136,38 +140,32 @@ def run_search(
         if checkpoint is not None:
             checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
                              "trials": trials, "value": last["value"]})
-        return residuals[0]
+        return residuals
 
-    def inner_tolerance() -> float:
-        return max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
+    known: dict[tuple[float, ...], list[float]] = {}
 
-    known: dict[float, float] = {}
-
-    def objective(x: float) -> float:
+    def residuals_at(xs: tuple[float, ...]) -> list[float]:
+        """The conditions at ``xs``; raises ``_Met`` once they hold at full accuracy or the trials run out."""
         # brentq evaluates the ends again itself: their signs, already known, are all it needs.
-        if x in known:
-            return known[x]
-        value = at(x, inner_tolerance())
-        if abs(value) <= spec.tolerance and last["tolerance"] > final_tolerance:
-            value = at(x, final_tolerance)
-        if abs(value) <= spec.tolerance and last["status"] == "converged":
+        if xs in known:
+            return known[xs]
+        tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
+        values = at(xs, tolerance)
+        met = all(abs(v) <= spec.tolerance for v in values)
+        if met and last["tolerance"] > final_tolerance:
+            values = at(xs, final_tolerance)
+            met = all(abs(v) <= spec.tolerance for v in values)
+        if (met and last["status"] == "converged") or len(trials) >= spec.max_trials:
             raise _Met
-        if len(trials) >= spec.max_trials:
-            raise _Met
-        known[x] = value
-        return value
+        known[xs] = values
+        return values
 
     status = "converged"
     try:
-        low = objective(bracket.min)
-        high = objective(bracket.max)
-        if np.sign(low) == np.sign(high):
-            raise InvalidDocument([{"path": where, "message": (
-                f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
-                f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
-                "check the condition")}], trials=trials)
-        brentq(objective, bracket.min, bracket.max, xtol=XTOL_SHARE * (bracket.max - bracket.min),
-               maxiter=spec.max_trials)
+        if len(names) == 1:
+            _bracketed(residuals_at, names[0], spec, trials)
+        else:
+            _least_squares(residuals_at, document, doc, names, spec)
     except _Met:
         pass
     except RuntimeError:
@@ -175,26 +173,57 @@ def run_search(
     if last["tolerance"] > final_tolerance or last["doc"] is None:
         # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
         replay.clear()
-        at(last["x"], final_tolerance)
+        at(last["xs"], final_tolerance)
     met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
     if not met and status == "converged":
         status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
     result = finish(last["doc"], last["problem"], last["outcome"])
-    result["search"] = {"status": status, "unknowns": {name: last["x"]}, "residuals": last["residuals"],
-                        "tolerance": spec.tolerance, "sign_change": _sign_change(trials, name), "trials": trials}
+    result["search"] = {"status": status, "unknowns": dict(zip(names, last["xs"])), "residuals": last["residuals"],
+                        "tolerance": spec.tolerance,
+                        "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}
     if status != "converged":
-        result["diagnostics"]["warnings"].append(_not_met_warning(status, name, last, spec, trials))
+        result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials))
     return result
 
 
-def _with_unknown(document: dict[str, Any], name: str, x: float) -> dict[str, Any]:
-    """The raw document with the unknown set to ``x``, no search, and the stationary report on."""
+def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, spec: Any,
+               trials: list[dict[str, Any]]) -> None:
+    """One unknown: brentq inside its bracket, after checking that the condition changes sign across it."""
+    bracket = spec.unknowns[name]
+    low = residuals_at((bracket.min,))[0]
+    high = residuals_at((bracket.max,))[0]
+    if np.sign(low) == np.sign(high):
+        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
+            f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
+            f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
+            "check the condition")}], trials=trials)
+    brentq(lambda x: residuals_at((x,))[0], bracket.min, bracket.max,
+           xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+
+
+def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], document: dict[str, Any], doc: Any,
+                   names: list[str], spec: Any) -> None:
+    """Several unknowns: scipy's trust-region least squares within the brackets (bounds), from the document's
+    own values (or the brackets' midpoints when those lie outside), with forward differences of relative step
+    `DIFF_STEP`."""
+    lows = np.array([spec.unknowns[n].min for n in names])
+    highs = np.array([spec.unknowns[n].max for n in names])
+    own = np.array([float(doc.discount) if n == DISCOUNT else float(doc.model.params[n]) for n in names])
+    start = np.where((own > lows) & (own < highs), own, 0.5 * (lows + highs))
+    least_squares(lambda v: np.asarray(residuals_at(tuple(float(x) for x in v))), start, bounds=(lows, highs),
+                  method="trf", x_scale=highs - lows, diff_step=DIFF_STEP, xtol=1e-15, ftol=1e-15, gtol=1e-15,
+                  max_nfev=spec.max_trials)
+
+
+def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
+    """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
     out = {key: value for key, value in document.items() if key != "search"}
-    if name == DISCOUNT:
-        out[DISCOUNT] = x
-    else:
+    params = {name: x for name, x in values.items() if name != DISCOUNT}
+    if DISCOUNT in values:
+        out[DISCOUNT] = values[DISCOUNT]
+    if params:
         model = copy.copy(document["model"])
-        model["params"] = {**model["params"], name: x}
+        model["params"] = {**model["params"], **params}
         out["model"] = model
     out["report"] = {**(document.get("report") or {}), "stationary": True}
     return out
@@ -237,17 +266,23 @@ def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | No
     return {"below": {name: a[0], "residual": a[1]}, "above": {name: b[0], "residual": b[1]}}
 
 
-def _not_met_warning(status: str, name: str, last: dict[str, Any], spec: Any, trials: list[dict[str, Any]]) -> str:
+def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: Any,
+                     trials: list[dict[str, Any]]) -> str:
     residual = max(last["residuals"], key=abs)
     if last["status"] != "converged":
         why = f"the last solve ended with status {last['status']}"
     elif status == "max_trials":
         why = f"search.max_trials ({spec.max_trials}) solves were used up"
+    elif len(names) > 1:
+        why = ("least squares stopped where the conditions are not all met: they may have no common root inside "
+               "the brackets, or their noise from the inner solves exceeds the tolerance (tighten solver.tolerance, "
+               "or loosen search.tolerance)")
     else:
         why = ("the condition changes sign across the narrowest bracket without coming that close to zero: it "
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
                "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
                "solver.tolerance, or loosen search.tolerance)")
-    return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {name} = {last['x']:.12g} the largest "
-            f"residual is {residual:.6g} after {len(trials)} trials; {why}. search.sign_change gives the closest "
-            "values on either side of zero")
+    point = ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, last["xs"]))
+    where = " search.sign_change gives the closest values on either side of zero." if len(names) == 1 else ""
+    return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {point} the largest "
+            f"residual is {residual:.6g} after {len(trials)} trials; {why}.{where}")

@@ -305,8 +305,6 @@ def test_a_cycle_of_params_is_refused_naming_them() -> None:
         ({"conditions": ["quantile(a) - 1"]}, "search.conditions[0]", "2 arguments"),
         ({"conditions": ["mean(k) - 1"]}, "search.conditions[0]", "`k`"),
         ({"conditions": ["mean(a) - 1", "sd(a) - 1"]}, "search.conditions", "one condition per unknown"),
-        ({"unknowns": {"r": {"min": 0, "max": 1}, "alpha": {"min": 0, "max": 1}}, "conditions": ["mean(a) - 1",
-          "sd(a) - 1"]}, "search.unknowns", "one unknown for now"),
     ],
 )
 def test_a_bad_search_is_refused_at_its_field(search: dict[str, Any], path: str, words: str) -> None:

@@ -43,7 +43,8 @@ class SearchSpec(Part):
     unknowns: Annotated[dict[Name, Bracket], Field(min_length=1, max_length=8)] = Field(
         description=(
             'The unknowns, each a param of the model (given as a number) or "discount", with the interval in '
-            "which to seek it. One unknown for now."
+            "which to seek it. One unknown is found by a bracketing root finder (brentq), several by bounded "
+            "least squares."
         )
     )
     conditions: Annotated[list[Expression], Field(min_length=1, max_length=8)] = Field(
@@ -69,9 +70,6 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
         return [fault("search", "a search needs an infinite horizon: its conditions use the stationary "
                       "distribution, which a finite horizon does not have")]
     faults: list[Fault] = []
-    if len(search.unknowns) > 1:
-        faults.append(fault("search.unknowns", "one unknown for now: searches over several unknowns at once are "
-                            "not supported yet; nest one-unknown searches in the client meanwhile"))
     if len(search.conditions) != len(search.unknowns):
         faults.append(fault("search.conditions", f"give one condition per unknown: {len(search.unknowns)} "
                             f"unknown(s), {len(search.conditions)} condition(s)"))
