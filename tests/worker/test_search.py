@@ -413,3 +413,36 @@ def test_two_unknowns_agree_with_a_nested_loop_of_one_unknown_searches() -> None
     r = equilibrium_at(beta)["search"]["unknowns"]["r"]
     assert abs(search["unknowns"]["discount"] - beta) <= 1e-7, (search["unknowns"], beta)
     assert abs(search["unknowns"]["r"] - r) <= 1e-7, (search["unknowns"], r)
+
+
+def test_a_discount_calibrated_to_a_capital_stock_is_near_brock_mirmans_closed_form() -> None:
+    """Full depreciation and log utility: k' = alpha beta k^alpha, so the steady state is
+    k* = (alpha beta)^(1/(1-alpha)) (Brock & Mirman 1972) and the beta that makes k* a target is
+    target^(1-alpha) / alpha.  The fitted problem's policy often sits on a grid node (the interpolated
+    continuation has kinks there), so mean(k) moves in steps of one grid spacing: the search may say
+    not_met, and the beta it ends at lies within one grid spacing of k* of the closed form, carried to beta by
+    the closed form's slope dbeta/dk = 0.7 k^(-0.3) / 0.3 (common practice for a grid's resolution)."""
+    alpha, target, points = 0.3, 0.165, 300
+    document = {
+        "version": 1, "discount": 0.95,
+        "model": {"kind": "grid", "params": {"alpha": alpha},
+                  "states": {"k": {"min": 0.05, "max": 0.4, "points": points}},
+                  "choices": {"kk": {"next_of": "k", "continuous": True}},
+                  "define": {"c": "k ** alpha - kk"}, "reward": "log(c)", "feasible": ["c > 0"]},
+        "solver": {"method": "howard", "tolerance": 1e-10},
+        "search": {"unknowns": {"discount": {"min": 0.9, "max": 0.99}}, "conditions": [f"mean(k) - {target}"],
+                   "tolerance": 1e-9},
+    }
+    result = solve(document)
+    search = result["search"]
+    closed_form = target ** (1 - alpha) / alpha
+    spacing = (0.4 - 0.05) / (points - 1)
+    slope = (1 - alpha) * target ** (-alpha) / alpha
+    assert abs(search["unknowns"]["discount"] - closed_form) <= slope * spacing
+    if search["status"] == "converged":
+        assert abs(search["residuals"][0]) <= 1e-9
+    else:
+        assert search["status"] == "not_met" and abs(search["residuals"][0]) > 1e-9
+        assert any("did NOT meet" in w for w in result["diagnostics"]["warnings"])
+        below, above = search["sign_change"]["below"], search["sign_change"]["above"]
+        assert abs(below["discount"] - above["discount"]) <= 1e-9
