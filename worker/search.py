@@ -57,6 +57,10 @@ class _Met(Exception):
     """Raised inside the root finder's function when a point meets the tolerance at full accuracy."""
 
 
+class _InnerStopped(Exception):
+    """Raised inside the root finder's function when a solve ended without converging (time or iterations)."""
+
+
 def run_search(
     document: dict[str, Any],
     doc: Any,
@@ -151,6 +155,8 @@ def run_search(
             return known[xs]
         tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
         values = at(xs, tolerance)
+        if last["status"] != "converged":
+            raise _InnerStopped
         met = all(abs(v) <= spec.tolerance for v in values)
         if met and last["tolerance"] > final_tolerance:
             values = at(xs, final_tolerance)
@@ -168,9 +174,13 @@ def run_search(
             _least_squares(residuals_at, document, doc, names, spec)
     except _Met:
         pass
+    except _InnerStopped:
+        # A solve ran out of time or iterations: the search stops there, and says so.
+        status = last["status"]
     except RuntimeError:
         status = "max_trials"
-    if last["tolerance"] > final_tolerance or last["doc"] is None:
+    inner_stopped = status == last["status"] != "converged"
+    if last["doc"] is None or (not inner_stopped and last["tolerance"] > final_tolerance):
         # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
         replay.clear()
         at(last["xs"], final_tolerance)

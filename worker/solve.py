@@ -222,13 +222,18 @@ def _search(
     """A document with ``search``: :func:`worker.search.run_search`, each trial solved here from the last."""
     from worker.search import run_search
 
+    limit = time_limit(doc.solver.time_limit_s, max_seconds)
+    # The time limit is the whole search's: each trial gets what is left of it.
+    deadline = None if limit is None else time.monotonic() + limit
+
     def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float) -> tuple[CompiledProblem, SolveOutcome]:
         problem = _compile(trial_doc, cap)
         start = _initial_values(trial_doc, problem, warm_start) if initial is None else initial
         spec = trial_doc.solver
+        left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
         outcome = METHODS[spec.method](
             problem, start, tolerance=tolerance, max_iterations=spec.max_iterations,
-            time_limit_s=time_limit(spec.time_limit_s, max_seconds), checkpoint_s=spec.checkpoint_s,
+            time_limit_s=left, checkpoint_s=spec.checkpoint_s,
             evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
             fingerprint="",
         )

@@ -446,3 +446,21 @@ def test_a_discount_calibrated_to_a_capital_stock_is_near_brock_mirmans_closed_f
         assert any("did NOT meet" in w for w in result["diagnostics"]["warnings"])
         below, above = search["sign_change"]["below"], search["sign_change"]["above"]
         assert abs(below["discount"] - above["discount"]) <= 1e-9
+
+
+def test_a_search_out_of_time_says_so() -> None:
+    document = _document(MARKET)
+    document["solver"]["max_iterations"] = 2
+    result = solve(document)
+    search = result["search"]
+    assert search["status"] == "max_iterations"
+    assert len(search["trials"]) == 1 and search["trials"][0]["inner_status"] == "max_iterations"
+    assert any("did NOT meet" in w and "max_iterations" in w for w in result["diagnostics"]["warnings"])
+
+
+def test_a_search_with_taste_shocks_is_refused_for_now() -> None:
+    document = _document(MARKET)
+    document["model"]["choices"] = {"save": {"next_of": "a"}}
+    document["model"]["taste_shocks"] = {"scale": 0.1}
+    faults = _faults(document)
+    assert any(f["path"] == "search" and "taste shocks" in f["message"] for f in faults), faults

@@ -69,6 +69,9 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
     if has_horizon:
         return [fault("search", "a search needs an infinite horizon: its conditions use the stationary "
                       "distribution, which a finite horizon does not have")]
+    if model.taste_shocks is not None:
+        return [fault("search", "a search with taste shocks is not supported yet: its aggregates would need the "
+                      "stationary distribution of the random choice, not of one policy")]
     faults: list[Fault] = []
     if len(search.conditions) != len(search.unknowns):
         faults.append(fault("search.conditions", f"give one condition per unknown: {len(search.unknowns)} "
