@@ -1,0 +1,42 @@
+"""A search through ``/v1/jobs``: the job record carries its summary; a bracket with no root fails saying so.
+
+The executions are the real ``service.task.run_job`` in the test process (``run_inline``), on the private
+Redis server of the fixtures.  The document is the invented economy of ``tests/worker/test_search.py``.
+"""
+
+from __future__ import annotations
+
+import httpx
+
+from tests.service._http import run_inline
+from tests.worker.test_search import MARKET, _document
+from worker import solve
+
+
+def _submit(client: httpx.Client, document: dict) -> str:
+    response = client.post("/v1/jobs", json=document)
+    assert response.status_code == 202, response.text
+    return response.json()["id"]
+
+
+def test_a_search_job_records_its_answer_in_the_job_record(client: httpx.Client) -> None:
+    document = _document(MARKET)
+    job_id = _submit(client, document)
+    assert run_inline(job_id)["outcome"] == "done"
+    record = client.get(f"/v1/jobs/{job_id}").json()
+    result = client.get(f"/v1/jobs/{job_id}/result").json()
+    # The HTTP answer is the in-process front door's answer (worker.solve).
+    expected = solve(document)["search"]
+    assert result["search"]["unknowns"] == expected["unknowns"]
+    assert record["search"] == {"status": "converged", "unknowns": expected["unknowns"],
+                                "residuals": expected["residuals"], "trials": len(expected["trials"])}
+    entries = client.get(f"/v1/jobs/{job_id}/log", params={"limit": 100}).json()["data"]
+    assert [entry["search_trial"]["unknowns"] for entry in entries] == [row["unknowns"] for row in expected["trials"]]
+
+
+def test_a_search_without_a_root_fails_naming_the_ends(client: httpx.Client) -> None:
+    job_id = _submit(client, _document({**MARKET, "unknowns": {"r": {"min": 0.0, "max": 0.02}}}))
+    assert run_inline(job_id)["outcome"] == "failed"
+    record = client.get(f"/v1/jobs/{job_id}").json()
+    (error,) = record["error"]["errors"]
+    assert error["path"] == "search.unknowns.r" and "no root in the bracket" in error["message"]
