@@ -17,6 +17,7 @@ from worker.shocks import stationary_distribution
 
 __all__ = [
     "DIRECT_MAX_STATES",
+    "TOP_MASS_WARNING",
     "ILU_DROP_TOLERANCE",
     "ILU_FILL_FACTOR",
     "PERCENTILES",
@@ -159,7 +160,14 @@ def _series(problem: CompiledProblem, policy: np.ndarray) -> dict[str, np.ndarra
     return series
 
 
-def stationary_report(problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
+TOP_MASS_WARNING = 0.01
+"""Stationary mass at the top of a state's grid above which the report warns that the grid may cut the state
+short (a share of the distribution; common practice)."""
+
+
+def stationary_report(
+    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None
+) -> dict[str, Any]:
     """The stationary distribution of (states, shocks) under ``policy``.
 
     Parameters
@@ -172,13 +180,38 @@ def stationary_report(problem: CompiledProblem, policy: np.ndarray) -> dict[str,
     dict
         ``distribution``: nested lists of shape ``problem.shape`` (see
         :func:`long_run_distribution` for which distribution when the policy's
-        chain has several recurrent classes); ``means``: the mean of every
-        state/shock axis and every choice under it; ``method``, ``residual``,
-        ``steps``; ``warnings``.
+        chain has several recurrent classes); ``means`` and ``sd``: the mean and
+        standard deviation of every state/shock axis and every choice under it;
+        ``ends`` (grid models): per endogenous state, the mass at the ``min``
+        and ``max`` of its grid; ``method``, ``residual``, ``steps``;
+        ``warnings`` (also when more than `TOP_MASS_WARNING` of the mass sits at
+        the top of a state's grid, unless ``real_ends`` lists ``"max"`` for it).
     """
     pi, info = long_run_distribution(problem.policy_matrix(policy))
-    means = {name: float(pi @ values) for name, values in _series(problem, policy).items()}
-    return {"distribution": _as_shape(pi, problem.shape), "means": means, **info}
+    series = _series(problem, policy)
+    means = {name: float(pi @ values) for name, values in series.items()}
+    sds = {name: float(np.sqrt(max(pi @ (values - means[name]) ** 2, 0.0))) for name, values in series.items()}
+    ends = _ends(problem, pi, real_ends or {}, info["warnings"])
+    return {"distribution": _as_shape(pi, problem.shape), "means": means, "sd": sds, "ends": ends, **info}
+
+
+def _ends(problem: CompiledProblem, pi: np.ndarray, real_ends: dict[str, list[str]],
+          warnings: list[str]) -> dict[str, dict[str, float]]:
+    """Mass at each end of every endogenous state's grid (grid models; empty otherwise)."""
+    names = list(getattr(getattr(problem, "model_data", None), "states", None) or [])
+    shaped = np.asarray(pi).reshape(problem.shape)
+    out = {}
+    for k, name in enumerate(names):
+        marginal = shaped.sum(axis=tuple(i for i in range(shaped.ndim) if i != k))
+        out[name] = {"min": float(marginal[0]), "max": float(marginal[-1])}
+        if marginal[-1] > TOP_MASS_WARNING and "max" not in real_ends.get(name, ()):
+            top = problem.axes[name][-1]
+            warnings.append(
+                f"{100 * marginal[-1]:.3g}% of the stationary distribution sits at the top of the grid of `{name}` "
+                f"({top:.6g}): the grid may cut the state short; raise its max, or list \"max\" in "
+                f"model.states.{name}.real_ends if it is a real limit"
+            )
+    return out
 
 
 def simulate_report(

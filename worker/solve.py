@@ -360,7 +360,9 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     stationary = None
     simulation = None
     if report.stationary:
-        stationary = stationary_report(problem, outcome.policy)
+        states = getattr(doc.model, "states", None)
+        real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
+        stationary = stationary_report(problem, outcome.policy, real_ends)
         warnings += stationary.pop("warnings", [])
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)

@@ -464,3 +464,30 @@ def test_a_search_with_taste_shocks_is_refused_for_now() -> None:
     document["model"]["taste_shocks"] = {"scale": 0.1}
     faults = _faults(document)
     assert any(f["path"] == "search" and "taste shocks" in f["message"] for f in faults), faults
+
+
+def test_mass_at_the_top_of_a_short_grid_is_warned_unless_declared_a_real_limit() -> None:
+    short = _document(r=0.04)
+    short["model"]["states"]["a"] = {"min": 0.0, "max": 1.0, "points": POINTS}
+    short["report"] = {"stationary": True}
+    result = solve(short)
+    ends = result["stationary"]["ends"]["a"]
+    pi = np.asarray(result["stationary"]["distribution"])
+    # numpy on the returned distribution: the marginal of a at its first and last grid points.
+    assert ends["min"] == pytest.approx(pi[0].sum(), abs=1e-15)
+    assert ends["max"] == pytest.approx(pi[-1].sum(), abs=1e-15)
+    assert ends["max"] > 0.01
+    assert any("top of the grid of `a`" in w for w in result["diagnostics"]["warnings"])
+    short["model"]["states"]["a"]["real_ends"] = ["max"]
+    declared = solve(short)
+    assert not any("top of the grid" in w for w in declared["diagnostics"]["warnings"])
+    # The wide grid of the economy leaves (almost) nothing at the top, and says nothing.
+    wide = _document(r=0.04)
+    wide["report"] = {"stationary": True}
+    result = solve(wide)
+    assert result["stationary"]["ends"]["a"]["max"] <= 0.01
+    assert not any("top of the grid" in w for w in result["diagnostics"]["warnings"])
+    sd = result["stationary"]["sd"]["a"]
+    pi = np.asarray(result["stationary"]["distribution"])
+    mean = float((pi * GRID[:, None]).sum())
+    assert sd == pytest.approx(np.sqrt((pi * (GRID[:, None] - mean) ** 2).sum()), rel=1e-12)

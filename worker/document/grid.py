@@ -78,6 +78,14 @@ class GridAxis(Part):
             "points)."
         ),
     )
+    real_ends: list[Literal["min", "max"]] = Field(
+        default_factory=list,
+        description=(
+            'Ends of the grid that are real limits of the state (a borrowing limit, a capacity): "min", "max" '
+            "or both. Stationary mass piling up at the top of a grid is warned about (the grid may cut the "
+            "state short) unless \"max\" is listed here."
+        ),
+    )
 
     @property
     def size(self) -> int:
