@@ -1,7 +1,8 @@
 """A search through ``/v1/jobs``: the job record carries its summary; a bracket with no root fails saying so.
 
 The executions are the real ``service.task.run_job`` in the test process (``run_inline``), on the private
-Redis server of the fixtures.  The document is the invented economy of ``tests/worker/test_search.py``.
+Redis server of the fixtures.  The document is the invented economy of ``tests/worker/test_search.py``
+(written again here: test modules do not import each other).
 """
 
 from __future__ import annotations
@@ -9,8 +10,31 @@ from __future__ import annotations
 import httpx
 
 from tests.service._http import run_inline
-from tests.worker.test_search import MARKET, _document
 from worker import solve
+
+MARKET = {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
+          "tolerance": 1e-6}
+
+
+def _document(search: dict) -> dict:
+    """Invented: households saving in `a` (continuous choice), income from a two-state chain, a Cobb-Douglas
+    firm's wage and capital demand as params given as expressions of r."""
+    return {
+        "version": 1, "discount": 0.95, "solver": {"method": "howard", "tolerance": 1e-10}, "search": search,
+        "model": {
+            "kind": "grid",
+            "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
+                       "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
+                       "w": "(1 - alpha) * capital_demand ** alpha"},
+            "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
+            "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
+                             "transform": "none"}},
+            "choices": {"save": {"next_of": "a", "continuous": True}},
+            "define": {"c": "(1 + r) * a + w * y - save"},
+            "reward": "log(c)",
+            "feasible": ["c > 0"],
+        },
+    }
 
 
 def _submit(client: httpx.Client, document: dict) -> str:
