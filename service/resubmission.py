@@ -131,7 +131,7 @@ redis.call('HSET', KEYS[6], 'state', 'done')
 return 1
 """
 
-_COPIED_FIELDS = ("status", "iterations", "error_bound", "progress", "log_dropped")
+_COPIED_FIELDS = ("status", "iterations", "error_bound", "search", "progress", "log_dropped")
 
 
 @dataclass(frozen=True)

@@ -163,6 +163,9 @@ def solve(
     doc = parse_document(document)
     cap = {"max_bytes": int(limits.get("max_bytes") or max_problem_bytes())}
     size = _check_size(doc, cap)
+    if doc.search is not None:
+        return _search(document, doc, cap, warm_start, on_progress, checkpoint, should_stop,
+                       limits.get("max_seconds"))
     if not limits.get("enforce_memory"):
         return _solve(doc, cap, warm_start, on_progress, checkpoint, should_stop, limits.get("max_seconds"))
     with memory_limit(size["bytes"], what="this solve", context={"estimate": size}):
@@ -204,6 +207,40 @@ def _solve(
         fingerprint="" if checkpoint is None else _fingerprint(doc),
     )
     return _result(doc, problem, outcome)
+
+
+def _search(
+    document: dict[str, Any],
+    doc: Any,
+    cap: dict[str, int],
+    warm_start: dict[str, Any] | None,
+    on_progress: Callable[[dict[str, Any]], None] | None,
+    checkpoint: Checkpoint | None,
+    should_stop: Callable[[], bool] | None,
+    max_seconds: float | None,
+) -> dict[str, Any]:
+    """A document with ``search``: :func:`worker.search.run_search`, each trial solved here from the last."""
+    from worker.search import run_search
+
+    limit = time_limit(doc.solver.time_limit_s, max_seconds)
+    # The time limit is the whole search's: each trial gets what is left of it.
+    deadline = None if limit is None else time.monotonic() + limit
+
+    def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float) -> tuple[CompiledProblem, SolveOutcome]:
+        problem = _compile(trial_doc, cap)
+        start = _initial_values(trial_doc, problem, warm_start) if initial is None else initial
+        spec = trial_doc.solver
+        left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
+        outcome = METHODS[spec.method](
+            problem, start, tolerance=tolerance, max_iterations=spec.max_iterations,
+            time_limit_s=left, checkpoint_s=spec.checkpoint_s,
+            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
+            fingerprint="",
+        )
+        return problem, outcome
+
+    return run_search(document, doc, trial, _result, on_progress=on_progress, checkpoint=checkpoint,
+                      fingerprint="" if checkpoint is None else _fingerprint(doc))
 
 
 def _solve_horizon(
@@ -323,7 +360,9 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     stationary = None
     simulation = None
     if report.stationary:
-        stationary = stationary_report(problem, outcome.policy)
+        states = getattr(doc.model, "states", None)
+        real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
+        stationary = stationary_report(problem, outcome.policy, real_ends)
         warnings += stationary.pop("warnings", [])
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)

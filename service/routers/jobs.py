@@ -91,6 +91,7 @@ class JobRecord(BaseModel):
     status: str | None = None
     iterations: int | None = None
     error_bound: float | None = None
+    search: dict[str, Any] | None = None
     error: dict[str, Any] | None = None
     reused: bool = False
     reused_from: str | None = None

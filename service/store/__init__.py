@@ -63,6 +63,7 @@ The job record (JSON)::
      "submitted_at", "started_at", "finished_at",      # ISO-8601 UTC or null
      "attempts", "progress": {"iteration", "distance", "error_bound", "seconds"} | null,
      "estimate", "status", "iterations", "error_bound",
+     "search": {"status", "unknowns", "residuals", "trials"} | null,   # a search's summary
      "error": {"title", "detail", "errors"} | null,
      "links": {"self", "result", "log"}}
 

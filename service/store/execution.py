@@ -36,6 +36,13 @@ __all__ = ["ExecutionWrites"]
 _CKPT_HEADER = re.compile(rb"fixq-ckpt:(\d+)\n")
 
 
+
+def search_summary(search: dict[str, Any]) -> dict[str, Any]:
+    """What the job record keeps of a search: its status, the unknowns found, the residuals and the number
+    of trials, so that a client reads the answer without downloading the result."""
+    return {"status": search.get("status"), "unknowns": search.get("unknowns"), "residuals": search.get("residuals"),
+            "trials": len(search.get("trials") or [])}
+
 class ExecutionWrites:
     """The lease-guarded writes of an execution and the reaper's compare-and-set transitions."""
 
@@ -151,7 +158,7 @@ class ExecutionWrites:
         """Write the final state (and for ``done`` the result) under the lease.
 
         One script stores the result (``SET NX``, TTL ``result_ttl_s``), sets
-        ``status``, ``iterations``, ``error_bound``, ``error`` and
+        ``status``, ``iterations``, ``error_bound``, ``search`` (a search's summary), ``error`` and
         ``finished_at``, moves the state, drops lease, checkpoint and cancel
         flag, gives record, document and log their lifetime (``job_ttl_s``)
         and, for ``done``, records the histograms.  False (nothing
@@ -168,6 +175,8 @@ class ExecutionWrites:
             seconds = float(result.get("seconds") or 0.0)
             fields["status"] = str(result.get("status"))
             fields["error_bound"] = dumps(result.get("error_bound")).decode()
+            if isinstance(result.get("search"), dict):
+                fields["search"] = dumps(search_summary(result["search"])).decode()
             histogram = [
                 bucket_field(seconds, SOLVE_SECONDS_BUCKETS), seconds,
                 bucket_field(iterations, SOLVE_ITERATION_BUCKETS), iterations,

@@ -41,7 +41,8 @@ __all__ = ["FORGET_SCAN_LIMIT", "JobStore"]
 FORGET_SCAN_LIMIT = 2000
 """Most old jobs one ``forget_expired`` call examines in each listing (count)."""
 
-_JSON_FIELDS = frozenset({"tags", "progress", "estimate", "error", "attempts", "iterations", "error_bound"})
+_JSON_FIELDS = frozenset({"tags", "progress", "estimate", "error", "attempts", "iterations", "error_bound",
+                          "search"})
 
 
 class JobStore(ExecutionWrites):
@@ -403,6 +404,7 @@ class JobStore(ExecutionWrites):
             "status": value("status"),
             "iterations": value("iterations"),
             "error_bound": value("error_bound"),
+            "search": value("search"),
             "error": value("error"),
             "links": {
                 "self": f"/v1/jobs/{job_id}",

@@ -19,7 +19,7 @@ from tests._documents import tiny_tabular
 
 RECORD_KEYS = {
     "id", "state", "label", "tags", "owner", "priority", "submitted_at", "started_at", "finished_at",
-    "attempts", "progress", "estimate", "status", "iterations", "error_bound", "error", "links",
+    "attempts", "progress", "estimate", "status", "iterations", "error_bound", "search", "error", "links",
 }  # fmt: skip
 
 
@@ -256,6 +256,17 @@ def test_finish_done_stores_the_result_once_with_its_ttl(store: JobStore) -> Non
     assert not store.finish(job_id, "tok", "done", result={**result, "iterations": 99})
     assert store.get_result(job_id) == result
     assert store.counts_by_state()["done"] == 1 and store.counts_by_state()["running"] == 0
+    assert job["search"] is None
+
+
+def test_a_search_leaves_its_summary_in_the_job_record(store: JobStore) -> None:
+    job_id = create(store)["id"]
+    store.claim(job_id, "tok", worker="w")
+    trials = [{"unknowns": {"r": 0.0}, "residuals": [-1.0]}, {"unknowns": {"r": 0.04}, "residuals": [1e-9]}]
+    search = {"status": "converged", "unknowns": {"r": 0.04}, "residuals": [1e-9], "trials": trials}
+    assert store.finish(job_id, "tok", "done", result={"status": "converged", "iterations": 3, "search": search})
+    assert store.get_job(job_id)["search"] == {"status": "converged", "unknowns": {"r": 0.04}, "residuals": [1e-9],
+                                               "trials": 2}
 
 
 def test_solve_histograms_are_cumulative(store: JobStore) -> None:

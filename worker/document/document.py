@@ -51,6 +51,8 @@ from worker.document.limits import (
     ROW_SUM_TOLERANCE,
 )
 from worker.document.options import InitialValues, NotifySpec, ReportSpec, SolverSpec
+from worker.document.params import resolve_params
+from worker.document.search import SearchSpec, search_faults
 from worker.document.tabular import TabularModel
 from worker.errors import InvalidDocument, join_path
 
@@ -151,6 +153,13 @@ class ProblemDocument(Part):
     )
     solver: SolverSpec = Field(default_factory=SolverSpec, description="How to solve; every key has a default.")
     report: ReportSpec = Field(default_factory=ReportSpec, description="Extra results.")
+    search: SearchSpec | None = Field(
+        default=None,
+        description=(
+            "Optional: unknowns (params or the discount) to find so that conditions on the stationary "
+            "distribution hold, e.g. an interest rate that clears the capital market."
+        ),
+    )
     priority: Literal[PRIORITIES] = Field(
         default=DEFAULT_PRIORITY,
         description=f'Queue priority: {_or(PRIORITIES)} (default "{DEFAULT_PRIORITY}").',
@@ -166,7 +175,7 @@ class ProblemDocument(Part):
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
         faults = (self._discount_faults() + self._method_faults() + self._initial_faults() + self._terminal_faults()
-                  + self._start_faults() + self._cohort_faults())
+                  + self._start_faults() + self._cohort_faults() + self._search_faults())
         raise_faults(faults)
         return self
 
@@ -221,6 +230,11 @@ class ProblemDocument(Part):
             return faults
         return faults + start_faults(self.model, simulation.start, join_path(where, "start"))
 
+    def _search_faults(self) -> list[Fault]:
+        if self.search is None:
+            return []
+        return search_faults(self.search, self.model, self.model.horizon is not None)
+
     def _cohort_faults(self) -> list[Fault]:
         cohort = self.report.cohort
         if cohort is None:
@@ -263,6 +277,7 @@ def parse_document(raw: Any) -> ProblemDocument:
     hostile = structure_fault(raw, max_depth=MAX_DEPTH, max_keys=MAX_KEYS)
     if hostile is not None:
         raise InvalidDocument([hostile])
+    raw = resolve_params(raw)
     try:
         return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
     except ValidationError as exc:

@@ -15,24 +15,8 @@ import numpy as np
 from pydantic import Field, PrivateAttr, model_validator
 
 from worker import expressions
-from worker.document._faults import (
-    Fault,
-    fault,
-    form_faults,
-    increasing_faults,
-    number,
-    raise_faults,
-)
-from worker.document._fields import (
-    Expression,
-    Name,
-    NumberOrExpression,
-    Part,
-    Points,
-    Positive,
-    Spacing,
-    Vector,
-)
+from worker.document._faults import Fault, fault, form_faults, increasing_faults, number, raise_faults
+from worker.document._fields import Expression, Name, NumberOrExpression, Part, Points, Positive, Spacing, Vector
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.draw_faults import draw_faults
 from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
@@ -76,6 +60,14 @@ class GridAxis(Part):
         description=(
             "The grid values themselves, strictly increasing, at least 2 of them (instead of min, max and "
             "points)."
+        ),
+    )
+    real_ends: list[Literal["min", "max"]] = Field(
+        default_factory=list,
+        description=(
+            'Ends of the grid that are real limits of the state (a borrowing limit, a capacity): "min", "max" '
+            "or both. Stationary mass piling up at the top of a grid is warned about (the grid may cut the "
+            "state short) unless \"max\" is listed here."
         ),
     )
 
@@ -243,8 +235,9 @@ class GridModel(Part):
     params: Annotated[dict[Name, ParamValue], Field(max_length=MAX_ENTRIES)] = Field(
         default_factory=dict,
         description=(
-            "Named constants usable in every expression; with a horizon, a param may also be a list with one "
-            "value per period (an income profile, survival probabilities)."
+            "Named constants usable in every expression: a number, or a string holding an expression of other "
+            "params (a wage from the interest rate), evaluated once in dependency order; with a horizon, a param "
+            "may also be a list with one value per period (an income profile, survival probabilities)."
         ),
     )
     states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(

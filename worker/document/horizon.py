@@ -22,6 +22,7 @@ from pydantic import Discriminator, Field, Tag
 from worker import expressions
 from worker.document._faults import Fault, fault, number
 from worker.document._fields import Integer, NumberOrExpression, Part, Vector
+from worker.document.limits import MAX_EXPRESSION_CHARS
 from worker.errors import InvalidDocument, join_path
 
 __all__ = [
@@ -50,6 +51,8 @@ DISCOUNT_NAME = "discount"
 def _number_or_list(value: Any) -> str | None:
     if isinstance(value, (int, float)) and not isinstance(value, bool):
         return "<number>"
+    if isinstance(value, str):
+        return "<expression>"
     return "<list>" if isinstance(value, list) else "<number>"
 
 
@@ -57,14 +60,19 @@ ParamValue = Annotated[
     Union[
         Annotated[float, Tag("<number>")],
         Annotated[list[float], Field(min_length=1, max_length=MAX_PERIODS), Tag("<list>")],
+        # Resolved to numbers by worker.document.params before validation; listed so the schema shows it.
+        Annotated[str, Field(min_length=1, max_length=MAX_EXPRESSION_CHARS), Tag("<expression>")],
     ],
     Discriminator(
         _number_or_list,
         custom_error_type="fixq_param",
-        custom_error_message="expected a number, or (with a horizon) a list of numbers, one per period",
+        custom_error_message=(
+            "expected a number, an expression of other params, or (with a horizon) a list of numbers, one per period"
+        ),
     ),
 ]
-"""A grid model's param: a number, or with a horizon a list with one number per period."""
+"""A grid model's param: a number, an expression of other params (a string, evaluated before validation by
+:func:`worker.document.params.resolve_params`), or with a horizon a list with one number per period."""
 
 
 class GridHorizon(Part):

@@ -1,0 +1,66 @@
+"""A search through ``/v1/jobs``: the job record carries its summary; a bracket with no root fails saying so.
+
+The executions are the real ``service.task.run_job`` in the test process (``run_inline``), on the private
+Redis server of the fixtures.  The document is the invented economy of ``tests/worker/test_search.py``
+(written again here: test modules do not import each other).
+"""
+
+from __future__ import annotations
+
+import httpx
+
+from tests.service._http import run_inline
+from worker import solve
+
+MARKET = {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
+          "tolerance": 1e-6}
+
+
+def _document(search: dict) -> dict:
+    """Invented: households saving in `a` (continuous choice), income from a two-state chain, a Cobb-Douglas
+    firm's wage and capital demand as params given as expressions of r."""
+    return {
+        "version": 1, "discount": 0.95, "solver": {"method": "howard", "tolerance": 1e-10}, "search": search,
+        "model": {
+            "kind": "grid",
+            "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
+                       "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
+                       "w": "(1 - alpha) * capital_demand ** alpha"},
+            "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
+            "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
+                             "transform": "none"}},
+            "choices": {"save": {"next_of": "a", "continuous": True}},
+            "define": {"c": "(1 + r) * a + w * y - save"},
+            "reward": "log(c)",
+            "feasible": ["c > 0"],
+        },
+    }
+
+
+def _submit(client: httpx.Client, document: dict) -> str:
+    response = client.post("/v1/jobs", json=document)
+    assert response.status_code == 202, response.text
+    return response.json()["id"]
+
+
+def test_a_search_job_records_its_answer_in_the_job_record(client: httpx.Client) -> None:
+    document = _document(MARKET)
+    job_id = _submit(client, document)
+    assert run_inline(job_id)["outcome"] == "done"
+    record = client.get(f"/v1/jobs/{job_id}").json()
+    result = client.get(f"/v1/jobs/{job_id}/result").json()
+    # The HTTP answer is the in-process front door's answer (worker.solve).
+    expected = solve(document)["search"]
+    assert result["search"]["unknowns"] == expected["unknowns"]
+    assert record["search"] == {"status": "converged", "unknowns": expected["unknowns"],
+                                "residuals": expected["residuals"], "trials": len(expected["trials"])}
+    entries = client.get(f"/v1/jobs/{job_id}/log", params={"limit": 100}).json()["data"]
+    assert [entry["search_trial"]["unknowns"] for entry in entries] == [row["unknowns"] for row in expected["trials"]]
+
+
+def test_a_search_without_a_root_fails_naming_the_ends(client: httpx.Client) -> None:
+    job_id = _submit(client, _document({**MARKET, "unknowns": {"r": {"min": 0.0, "max": 0.02}}}))
+    assert run_inline(job_id)["outcome"] == "failed"
+    record = client.get(f"/v1/jobs/{job_id}").json()
+    (error,) = record["error"]["errors"]
+    assert error["path"] == "search.unknowns.r" and "no root in the bracket" in error["message"]

@@ -1,0 +1,109 @@
+"""The ``search`` section: unknowns with brackets and conditions that must equal zero.
+
+A search solves the model again for each trial value of its unknowns (params, or ``discount``) until
+every condition is zero within the tolerance; the conditions are expressions over params and aggregates
+of the stationary distribution (:mod:`worker.aggregates`).  The numerics are in :mod:`worker.search`.
+"""
+
+from __future__ import annotations
+
+from typing import Annotated, Any
+
+from pydantic import Field, model_validator
+
+from worker.aggregates import parse_condition
+from worker.document._faults import Fault, fault, number, raise_faults
+from worker.document._fields import Expression, Integer, Name, Part
+from worker.errors import InvalidDocument, join_path
+
+__all__ = ["DISCOUNT", "MAX_TRIALS", "Bracket", "SearchSpec", "search_faults"]
+
+DISCOUNT = "discount"
+"""The name by which a search's unknown or condition means the document's discount factor."""
+MAX_TRIALS = 500
+"""Most solves one search may make."""
+
+
+class Bracket(Part):
+    """The interval in which an unknown is sought; the conditions must change sign across it."""
+
+    min: float = Field(description="Lower end of the interval.")
+    max: float = Field(description="Upper end of the interval; greater than min.")
+
+    @model_validator(mode="after")
+    def _check_bracket(self) -> Bracket:
+        if not self.min < self.max:
+            raise_faults([fault("max", f"must be greater than min ({number(self.min)}), got {number(self.max)}")])
+        return self
+
+
+class SearchSpec(Part):
+    """Unknowns to find so that every condition equals zero: an equilibrium or a calibration in one job."""
+
+    unknowns: Annotated[dict[Name, Bracket], Field(min_length=1, max_length=8)] = Field(
+        description=(
+            'The unknowns, each a param of the model (given as a number) or "discount", with the interval in '
+            "which to seek it. One unknown is found by a bracketing root finder (brentq), several by bounded "
+            "least squares."
+        )
+    )
+    conditions: Annotated[list[Expression], Field(min_length=1, max_length=8)] = Field(
+        description=(
+            "Expressions that must equal zero, one per unknown: over params and the aggregates mean(x), sd(x), "
+            "quantile(x, q) and mass(condition) of the stationary distribution, where x and condition are "
+            "expressions of params, states, shocks, choices and defines."
+        )
+    )
+    tolerance: Annotated[float, Field(gt=0)] = Field(
+        default=1e-7, description="Each condition must be within this of zero at the point returned (absolute)."
+    )
+    max_trials: Annotated[Integer, Field(ge=3, le=MAX_TRIALS)] = Field(
+        default=60, description=f"Most solves the search may make, 3 to {MAX_TRIALS} (default 60)."
+    )
+
+
+def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fault]:
+    """Faults of ``search`` against the model, with paths from the document root."""
+    if model.kind != "grid":
+        return [fault("search", "a search needs a grid model: its conditions are aggregates over the grid")]
+    if has_horizon:
+        return [fault("search", "a search needs an infinite horizon: its conditions use the stationary "
+                      "distribution, which a finite horizon does not have")]
+    if model.taste_shocks is not None:
+        return [fault("search", "a search with taste shocks is not supported yet: its aggregates would need the "
+                      "stationary distribution of the random choice, not of one policy")]
+    faults: list[Fault] = []
+    if len(search.conditions) != len(search.unknowns):
+        faults.append(fault("search.conditions", f"give one condition per unknown: {len(search.unknowns)} "
+                            f"unknown(s), {len(search.conditions)} condition(s)"))
+    for name, bracket in search.unknowns.items():
+        where = join_path("search.unknowns", name)
+        if name == DISCOUNT:
+            if not (0 < bracket.min and bracket.max < 1):
+                faults.append(fault(where, "the discount factor is sought inside (0, 1): give 0 < min < max < 1"))
+        elif name not in model.params:
+            faults.append(fault(where, f"`{name}` is not a param of the model (nor \"discount\")"))
+        elif isinstance(model.params[name], list):
+            faults.append(fault(where, f"`{name}` has one value per period; an unknown is one number"))
+    params = [*model.params, DISCOUNT]
+    at_points = [*model.params, *model.states, *(n for n, s in model.shocks.items() if not s.after_choice),
+                 *model.choices, *model.define]
+    reserved = set(at_points) | {DISCOUNT}
+    for k, text in enumerate(search.conditions):
+        where = join_path("search.conditions", k)
+        try:
+            condition = parse_condition(text, path=where, reserved=reserved)
+        except InvalidDocument as exc:
+            faults += exc.errors
+            continue
+        outer = sorted(n for n in condition.outer.names if n not in condition.aggregates and n not in params)
+        if outer:
+            faults.append(fault(where, "outside mean, sd, quantile and mass a condition uses params only: "
+                                + ", ".join(f"`{n}`" for n in outer) + " must be inside an aggregate"))
+        inner = sorted(condition.point_names() - set(at_points))
+        if inner:
+            faults.append(fault(where, "unknown name(s) " + ", ".join(f"`{n}`" for n in inner) + " inside an "
+                                "aggregate: known are params, states, shocks, choices and defines"))
+        if not condition.aggregates and not condition.outer.names:
+            faults.append(fault(where, "a condition must depend on something: it has no names"))
+    return faults

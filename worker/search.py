@@ -1,0 +1,298 @@
+"""Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
+
+:func:`run_search` solves the model once per trial value of the unknown, each solve started from the
+last one's value, computes the stationary distribution of the policy and the conditions' aggregates
+(:mod:`worker.aggregates`), and lets ``scipy.optimize.brentq`` — a bracketing method that never leaves
+its bracket — choose the next trial.
+
+Inner tolerances tighten as the search goes: the first trials are solved with a tolerance
+`LOOSE_FACTOR` times the document's ``solver.tolerance``, each next one `TIGHTEN` times tighter, down to
+the document's own.  A point is accepted only when a solve at the document's tolerance puts every
+condition within ``search.tolerance`` of zero; otherwise the search says how close it came (status
+``not_met`` or ``max_trials``) and never presents the point as a solution.  When the condition has the
+same sign at both ends of the bracket there is no root to bracket: :class:`~worker.errors.InvalidDocument`
+names the values found at the ends, and carries the trials.
+
+The solves themselves are done by the caller's ``trial`` function (:mod:`worker.solve` passes its own),
+so that this module does not import the front door that imports it.
+"""
+
+from __future__ import annotations
+
+import copy
+import time
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+from scipy.optimize import brentq, least_squares
+
+from worker.aggregates import Condition, aggregate_value, parse_condition
+from worker.document import parse_document
+from worker.document.params import param_expressions
+from worker.document.search import DISCOUNT
+from worker.errors import InvalidDocument, join_path
+from worker.expressions import evaluate, parse
+from worker.problem import CompiledProblem
+from worker.report import long_run_distribution
+
+__all__ = ["DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
+
+LOOSE_FACTOR = 1e4
+"""The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
+only need the sign of the condition, not its digits)."""
+TIGHTEN = 0.1
+"""Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
+XTOL_SHARE = 1e-12
+"""The root finder stops when its bracket is narrower than this share of the search bracket."""
+DIFF_STEP = 1e-6
+"""Relative step of least squares' forward differences with several unknowns: large beside the conditions'
+noise from the inner solves (about 1e-7 of their size, measured), small beside their curvature."""
+
+Trial = Callable[[Any, "np.ndarray | None", float], tuple[CompiledProblem, Any]]
+"""``trial(doc, initial, tolerance) -> (problem, outcome)``: one solve of a validated document."""
+
+
+class _Met(Exception):
+    """Raised inside the root finder's function when a point meets the tolerance at full accuracy."""
+
+
+class _InnerStopped(Exception):
+    """Raised inside the root finder's function when a solve ended without converging (time or iterations)."""
+
+
+def run_search(
+    document: dict[str, Any],
+    doc: Any,
+    trial: Trial,
+    finish: Callable[[Any, CompiledProblem, Any], dict[str, Any]],
+    *,
+    on_progress: Callable[[dict[str, Any]], None] | None = None,
+    checkpoint: Any = None,
+    fingerprint: str = "",
+) -> dict[str, Any]:
+    """Run the document's search; return the result at the point found, with its ``search`` object.
+
+    Parameters
+    ----------
+    document : the raw document (its string params are resolved again for every trial).
+    doc : the validated document, with ``doc.search`` set.
+    trial : solves one validated document from given values (None: the document's own start).
+    finish : builds the result document of a solve (``worker.solve``'s own).
+    on_progress : called after every trial with ``{"iteration": trial number, "error_bound", "seconds",
+        "search_trial": row}``.
+    checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
+        Saved after every trial (``kind`` "search", ``fingerprint``, ``iteration`` = trials so far, ``log``,
+        ``trials``, ``value`` = the last solve's value).  A matching saved state is resumed from: the root
+        finder is deterministic, so it asks for the same trials again, and those already made are answered
+        from the saved rows without solving; the next solve starts from the saved value.
+    fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
+
+    Raises
+    ------
+    InvalidDocument
+        An unknown given as an expression, a condition that cannot be evaluated, or no sign change across
+        the bracket (``trials`` in the exception's context).
+    """
+    spec = doc.search
+    names = list(spec.unknowns)
+    for name in names:
+        if name in param_expressions(document):
+            raise InvalidDocument.at(join_path("search.unknowns", name),
+                                     f"`{name}` is given as an expression; an unknown is a param given as a number")
+    model = doc.model
+    reserved = {*model.params, *model.states, *model.shocks, *model.choices, *model.define, DISCOUNT}
+    conditions = [parse_condition(text, path=join_path("search.conditions", k), reserved=reserved)
+                  for k, text in enumerate(spec.conditions)]
+    final_tolerance = float(doc.solver.tolerance)
+    trials: list[dict[str, Any]] = []
+    last: dict[str, Any] = {}
+    begun = time.perf_counter()
+    log: list[dict[str, Any]] = []
+    saved = checkpoint.load() if checkpoint is not None else None
+    replay: dict[tuple[tuple[float, ...], float], dict[str, Any]] = {}
+    if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
+        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"]): row for row in saved["trials"]}
+        log = list(saved.get("log") or [])
+        last["value"] = np.asarray(saved["value"], dtype=np.float64)
+
+    def at(xs: tuple[float, ...], tolerance: float) -> list[float]:
+        if (xs, tolerance) in replay:
+            row = replay.pop((xs, tolerance))
+            trials.append(row)
+            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
+            return row["residuals"]
+        started = time.perf_counter()
+        trial_doc = parse_document(_with_unknowns(document, dict(zip(names, xs))))
+        problem, outcome = trial(trial_doc, last.get("value"), tolerance)
+        pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
+        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
+                     for k, c in enumerate(conditions)]
+        last.update(value=np.asarray(outcome.value, dtype=np.float64), xs=xs, tolerance=tolerance, doc=trial_doc,
+                    problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
+        row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
+               "inner_status": outcome.status, "iterations": int(outcome.iterations),
+               "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
+               "seconds": time.perf_counter() - started}
+        trials.append(row)
+        # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
+        entry = {"iteration": len(trials), "error_bound": row["error_bound"], "seconds": time.perf_counter() - begun,
+                 "search_trial": row}
+        log.append(entry)
+        if on_progress is not None:
+            on_progress(entry)
+        if checkpoint is not None:
+            checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
+                             "trials": trials, "value": last["value"]})
+        return residuals
+
+    known: dict[tuple[float, ...], list[float]] = {}
+
+    def residuals_at(xs: tuple[float, ...]) -> list[float]:
+        """The conditions at ``xs``; raises ``_Met`` once they hold at full accuracy or the trials run out."""
+        # brentq evaluates the ends again itself: their signs, already known, are all it needs.
+        if xs in known:
+            return known[xs]
+        tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
+        values = at(xs, tolerance)
+        if last["status"] != "converged":
+            raise _InnerStopped
+        met = all(abs(v) <= spec.tolerance for v in values)
+        if met and last["tolerance"] > final_tolerance:
+            values = at(xs, final_tolerance)
+            met = all(abs(v) <= spec.tolerance for v in values)
+        if (met and last["status"] == "converged") or len(trials) >= spec.max_trials:
+            raise _Met
+        known[xs] = values
+        return values
+
+    status = "converged"
+    try:
+        if len(names) == 1:
+            _bracketed(residuals_at, names[0], spec, trials)
+        else:
+            _least_squares(residuals_at, document, doc, names, spec)
+    except _Met:
+        pass
+    except _InnerStopped:
+        # A solve ran out of time or iterations: the search stops there, and says so.
+        status = last["status"]
+    except RuntimeError:
+        status = "max_trials"
+    inner_stopped = status == last["status"] != "converged"
+    if last["doc"] is None or (not inner_stopped and last["tolerance"] > final_tolerance):
+        # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
+        replay.clear()
+        at(last["xs"], final_tolerance)
+    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
+    if not met and status == "converged":
+        status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
+    result = finish(last["doc"], last["problem"], last["outcome"])
+    result["search"] = {"status": status, "unknowns": dict(zip(names, last["xs"])), "residuals": last["residuals"],
+                        "tolerance": spec.tolerance,
+                        "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}
+    if status != "converged":
+        result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials))
+    return result
+
+
+def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, spec: Any,
+               trials: list[dict[str, Any]]) -> None:
+    """One unknown: brentq inside its bracket, after checking that the condition changes sign across it."""
+    bracket = spec.unknowns[name]
+    low = residuals_at((bracket.min,))[0]
+    high = residuals_at((bracket.max,))[0]
+    if np.sign(low) == np.sign(high):
+        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
+            f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
+            f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
+            "check the condition")}], trials=trials)
+    brentq(lambda x: residuals_at((x,))[0], bracket.min, bracket.max,
+           xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+
+
+def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], document: dict[str, Any], doc: Any,
+                   names: list[str], spec: Any) -> None:
+    """Several unknowns: scipy's trust-region least squares within the brackets (bounds), from the document's
+    own values (or the brackets' midpoints when those lie outside), with forward differences of relative step
+    `DIFF_STEP`."""
+    lows = np.array([spec.unknowns[n].min for n in names])
+    highs = np.array([spec.unknowns[n].max for n in names])
+    own = np.array([float(doc.discount) if n == DISCOUNT else float(doc.model.params[n]) for n in names])
+    start = np.where((own > lows) & (own < highs), own, 0.5 * (lows + highs))
+    least_squares(lambda v: np.asarray(residuals_at(tuple(float(x) for x in v))), start, bounds=(lows, highs),
+                  method="trf", x_scale=highs - lows, diff_step=DIFF_STEP, xtol=1e-15, ftol=1e-15, gtol=1e-15,
+                  max_nfev=spec.max_trials)
+
+
+def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
+    """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
+    out = {key: value for key, value in document.items() if key != "search"}
+    params = {name: x for name, x in values.items() if name != DISCOUNT}
+    if DISCOUNT in values:
+        out[DISCOUNT] = values[DISCOUNT]
+    if params:
+        model = copy.copy(document["model"])
+        model["params"] = {**model["params"], **params}
+        out["model"] = model
+    out["report"] = {**(document.get("report") or {}), "stationary": True}
+    return out
+
+
+def point_env(doc: Any, problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
+    """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
+    choices (chosen there) and the defines that can be evaluated from them."""
+    env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
+    env[DISCOUNT] = float(doc.discount)
+    env.update(problem.state_values())
+    env.update(problem.choice_values(policy))
+    for name, text in doc.model.define.items():
+        expr = parse(text, path=join_path("model.define", name))
+        if expr.names <= env.keys():
+            env[name] = evaluate(expr, env)
+    return env
+
+
+def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
+              where: str) -> float:
+    env = point_env(doc, problem, policy)
+    for aggregate in condition.aggregates.values():
+        missing = sorted(aggregate.argument.names - env.keys())
+        if missing:
+            raise InvalidDocument.at(where, "cannot be evaluated over the stationary distribution: "
+                                     + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
+    values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
+    scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
+    return float(evaluate(condition.outer, {**scalars, **values}))
+
+
+def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
+    """The two closest trials whose first residuals have opposite signs (None when there are none)."""
+    points = sorted((row["unknowns"][name], row["residuals"][0]) for row in trials)
+    pairs = [(a, b) for a, b in zip(points, points[1:]) if np.sign(a[1]) != np.sign(b[1]) and a[0] != b[0]]
+    if not pairs:
+        return None
+    a, b = min(pairs, key=lambda pair: pair[1][0] - pair[0][0])
+    return {"below": {name: a[0], "residual": a[1]}, "above": {name: b[0], "residual": b[1]}}
+
+
+def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: Any,
+                     trials: list[dict[str, Any]]) -> str:
+    residual = max(last["residuals"], key=abs)
+    if last["status"] != "converged":
+        why = f"the last solve ended with status {last['status']}"
+    elif status == "max_trials":
+        why = f"search.max_trials ({spec.max_trials}) solves were used up"
+    elif len(names) > 1:
+        why = ("least squares stopped where the conditions are not all met: they may have no common root inside "
+               "the brackets, or their noise from the inner solves exceeds the tolerance (tighten solver.tolerance, "
+               "or loosen search.tolerance)")
+    else:
+        why = ("the condition changes sign across the narrowest bracket without coming that close to zero: it "
+               "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
+               "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
+               "solver.tolerance, or loosen search.tolerance)")
+    point = ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, last["xs"]))
+    where = " search.sign_change gives the closest values on either side of zero." if len(names) == 1 else ""
+    return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {point} the largest "
+            f"residual is {residual:.6g} after {len(trials)} trials; {why}.{where}")
