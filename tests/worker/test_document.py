@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from tests._documents import idle_busy_worn
+from tests._documents import grid_document, idle_busy_worn
 from worker.defaults import DEFAULT_EVALUATION_STEPS, DEFAULT_MAX_ITERATIONS
 from worker.document import (
     MAX_REPORTED,
@@ -513,7 +513,7 @@ GRID = [
     ("model.reward", "", "model.reward", "must not be empty"),
     ("model.reward", "1 + " * 600 + "1", "model.reward", "at most 2000 characters"),
     ("model.reward", 3, "model.reward", "expected a string, got the number 3"),
-    ("model.define.investment", "sales - capacity", "model.define.investment", "`sales` before it is defined"),
+    ("model.define.investment", "investment + capacity", "model.define.investment", "use each other in a circle"),
     ("model.feasible", ["investment >= 0", "capacity < limit"], "model.feasible[1]", "unknown name `limit`"),
     ("model.hints.monotone", "true", "model.hints.monotone", "expected true or false"),
     ("model.hints.fast", True, "model.hints.fast", "unknown key `fast`"),
@@ -1000,3 +1000,32 @@ def test_canonical_json_packs_large_arrays() -> None:
     assert set(data["model"]["transition"]) == {"base64", "dtype", "shape"}
     assert data["model"]["reward"] == [[1.0]] * rows
     assert document_hash(data) == document_hash(document)
+
+
+def test_defines_in_any_order_solve_to_the_same_numbers() -> None:
+    """Keys of a decoded JSON object may arrive in any order: the defines mean the same thing."""
+    from worker import solve
+
+    ordered = grid_document(GROWTH_ORDERED)
+    shuffled = grid_document(dict(GROWTH_ORDERED, define=dict(reversed(list(GROWTH_ORDERED["define"].items())))))
+    assert list(parse_document(shuffled).model.define) == list(GROWTH_ORDERED["define"])
+    assert solve(shuffled)["value"] == solve(ordered)["value"]
+
+
+GROWTH_ORDERED = {  # invented: output, then what is left to eat, then its utility
+    "params": {"alpha": 0.3},
+    "states": {"k": {"min": 0.1, "max": 2.0, "points": 15}},
+    "choices": {"k_next": {"next_of": "k"}},
+    "define": {"output": "k**alpha", "eaten": "output - k_next", "joy": "log(eaten)"},
+    "reward": "joy",
+    "feasible": ["eaten > 0"],
+}
+
+
+def test_a_circle_of_defines_is_refused_naming_it() -> None:
+    model = dict(GROWTH_ORDERED, define={"output": "k**alpha + joy", "eaten": "output - k_next", "joy": "log(eaten)"})
+    with pytest.raises(InvalidDocument) as caught:
+        parse_document(grid_document(model))
+    error = caught.value.errors[0]
+    # Each define on the path uses the next: output uses joy, joy uses eaten, eaten uses output.
+    assert error["path"] == "model.define.output" and "`output` → `joy` → `eaten` → `output`" in error["message"]

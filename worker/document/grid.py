@@ -18,6 +18,7 @@ from worker import expressions
 from worker.document._faults import Fault, fault, form_faults, increasing_faults, number, raise_faults
 from worker.document._fields import Expression, Name, NumberOrExpression, Part, Points, Positive, Spacing, Vector
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
+from worker.document.define_order import dependency_order
 from worker.document.draw_faults import draw_faults
 from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
@@ -267,7 +268,10 @@ class GridModel(Part):
     )
     define: Annotated[dict[Name, Expression], Field(max_length=MAX_ENTRIES)] = Field(
         default_factory=dict,
-        description="Named intermediate expressions, in order: each may use the defines listed before it.",
+        description=(
+            "Named intermediate expressions. A define may use other defines in any order: they are evaluated in "
+            "the order their dependencies require (a cycle is refused, naming the defines on it)."
+        ),
     )
     reward: Expression = Field(description="The reward paid this period, an expression.")
     feasible: Annotated[list[Expression], Field(max_length=MAX_ENTRIES)] = Field(
@@ -311,6 +315,10 @@ class GridModel(Part):
 
     @model_validator(mode="after")
     def _check_model(self) -> GridModel:
+        ordered, cycle = dependency_order(self.define)
+        raise_faults(cycle)
+        # Every later reader (the checks, the numerics, the generated code) then sees each define after those it uses.
+        self.__dict__["define"] = ordered
         raise_faults(grid_model_faults(self))
         for choice in self.choices.values():
             if choice.next_of in self.states:
@@ -452,35 +460,25 @@ def _motion_faults(model: Any) -> list[Fault]:
 
 
 def _expressions_faults(model: Any) -> list[Fault]:
-    base = [*model.params, *model.states, *model.shocks, *model.choices]
+    """Faults of every expression: its grammar and the names it uses (the defines are in dependency order)."""
+    known = [*model.params, *model.states, *model.shocks, *model.choices, *model.define]
     if model.horizon is not None:
-        base.append(PERIOD_NAME)
-    defines = list(model.define)
+        known.append(PERIOD_NAME)
     faults = []
-    for i, name in enumerate(defines):
-        faults += _expression_faults(
-            model.define[name], base + defines[:i], set(defines[i:]), join_path("define", name)
-        )
-    known = base + defines
+    for name, text in model.define.items():
+        faults += _expression_faults(text, known, join_path("define", name))
     for name, text in model.next.items():
-        faults += _expression_faults(text, known, set(), join_path("next", name))
-    faults += _expression_faults(model.reward, known, set(), "reward")
+        faults += _expression_faults(text, known, join_path("next", name))
+    faults += _expression_faults(model.reward, known, "reward")
     for i, text in enumerate(model.feasible):
-        faults += _expression_faults(text, known, set(), join_path("feasible", i))
+        faults += _expression_faults(text, known, join_path("feasible", i))
     return faults
 
 
-def _expression_faults(text: str, known: list[str], later: set[str], where: str) -> list[Fault]:
-    """Faults of one expression: its grammar, and names it uses that are unknown or defined later."""
+def _expression_faults(text: str, known: list[str], where: str) -> list[Fault]:
+    """Faults of one expression: its grammar, and names it uses that are unknown."""
     try:
-        expression = expressions.parse(text, path=where)
-        early = sorted(expression.names & later)
-        if early:
-            names = ", ".join(f"`{n}`" for n in early)
-            return [
-                fault(where, f"uses {names} before it is defined: a define may use only the defines listed before it")
-            ]
-        expressions.check_names(expression, known, path=where)
+        expressions.check_names(expressions.parse(text, path=where), known, path=where)
     except InvalidDocument as exc:
         return exc.errors
     return []
