@@ -407,7 +407,7 @@ TOP_LEVEL = [
     ("tags", ["ok", "has space"], "tags[1]", "a tag must be 1 to 64 characters"),
     ("tags", [""], "tags[0]", "a tag must be"),
     ("tags", ["x" * 65], "tags[0]", "a tag must be"),
-    ("tags", "nightly", "tags", "expected a list"),
+    ("tags", 3, "tags", "expected a list"),
     ("priority", "urgent", "priority", '"high", "normal" or "low"'),
     ("notify", {"url": "ftp://example.org/x"}, "notify.url", "http:// or https://"),
     ("notify", {"url": "https://"}, "notify.url", "with a host name"),
@@ -1029,3 +1029,11 @@ def test_a_circle_of_defines_is_refused_naming_it() -> None:
     error = caught.value.errors[0]
     # Each define on the path uses the next: output uses joy, joy uses eaten, eaten uses output.
     assert error["path"] == "model.define.output" and "`output` → `joy` → `eaten` → `output`" in error["message"]
+
+
+def test_a_single_string_is_accepted_where_a_list_of_strings_is() -> None:
+    # R's jsonlite with auto_unbox turns a one-element list into its element.
+    document = grid_document(dict(GROWTH_ORDERED, feasible="eaten > 0"))
+    document["tags"] = "nightly"
+    doc = parse_document(document)
+    assert doc.model.feasible == ["eaten > 0"] and doc.tags == ["nightly"]

@@ -157,6 +157,12 @@ def check_name(name: str) -> str:
 
 
 Integer = Annotated[int, BeforeValidator(integral)]
+
+
+def one_as_list(value: Any) -> Any:
+    """A single string where a list of strings is expected, as that one string's list (decoders that unbox a
+    one-element list into its element, such as R's jsonlite with auto_unbox, send that)."""
+    return [value] if isinstance(value, str) else value
 Name = Annotated[
     str,
     AfterValidator(check_name),

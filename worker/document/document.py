@@ -26,7 +26,7 @@ from __future__ import annotations
 import math
 from typing import Annotated, Any, Literal, Union
 
-from pydantic import AfterValidator, Field, ValidationError, ValidationInfo, model_validator
+from pydantic import AfterValidator, BeforeValidator, Field, ValidationError, ValidationInfo, model_validator
 from pydantic_core import PydanticCustomError
 
 from worker.document._faults import (
@@ -38,7 +38,7 @@ from worker.document._faults import (
     shown,
     structure_fault,
 )
-from worker.document._fields import Integer, Part, SchemaExtra, check
+from worker.document._fields import Integer, Part, SchemaExtra, check, one_as_list
 from worker.document._translate import translate
 from worker.document.grid import GridModel
 from worker.document.limits import (
@@ -125,11 +125,15 @@ class ProblemDocument(Part):
     label: Annotated[str, Field(max_length=MAX_LABEL_CHARS)] | None = Field(
         default=None, description=f"A free-text name for the job, at most {MAX_LABEL_CHARS} characters."
     )
-    tags: Annotated[list[TagText], Field(max_length=MAX_TAGS)] = Field(
+    tags: Annotated[
+        list[TagText],
+        BeforeValidator(one_as_list, json_schema_input_type=TagText | list[TagText]),
+        Field(max_length=MAX_TAGS),
+    ] = Field(
         default_factory=list,
         description=(
             f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters "
-            "of letters, digits and _ . : -."
+            "of letters, digits and _ . : -; one tag may be given as a string."
         ),
     )
     discount: Annotated[

@@ -12,11 +12,21 @@ import math
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from pydantic import Field, PrivateAttr, model_validator
+from pydantic import BeforeValidator, Field, PrivateAttr, model_validator
 
 from worker import expressions
 from worker.document._faults import Fault, fault, form_faults, increasing_faults, number, raise_faults
-from worker.document._fields import Expression, Name, NumberOrExpression, Part, Points, Positive, Spacing, Vector
+from worker.document._fields import (
+    Expression,
+    Name,
+    NumberOrExpression,
+    Part,
+    Points,
+    Positive,
+    Spacing,
+    Vector,
+    one_as_list,
+)
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.define_order import dependency_order
 from worker.document.draw_faults import draw_faults
@@ -274,9 +284,16 @@ class GridModel(Part):
         ),
     )
     reward: Expression = Field(description="The reward paid this period, an expression.")
-    feasible: Annotated[list[Expression], Field(max_length=MAX_ENTRIES)] = Field(
+    feasible: Annotated[
+        list[Expression],
+        BeforeValidator(one_as_list, json_schema_input_type=Expression | list[Expression]),
+        Field(max_length=MAX_ENTRIES),
+    ] = Field(
         default_factory=list,
-        description="Conditions (expressions) that must all hold for a choice to be allowed in a state.",
+        description=(
+            "Conditions (expressions) that must all hold for a choice to be allowed in a state; one condition may "
+            "be given as a string."
+        ),
     )
     hints: Hints = Field(default_factory=Hints, description="Optional speed promises.")
     horizon: GridHorizon | None = Field(
