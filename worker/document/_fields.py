@@ -169,6 +169,10 @@ Name = Annotated[
     SchemaExtra(pattern="^[A-Za-z_][A-Za-z0-9_]*$", maxLength=MAX_NAME_CHARS),
 ]
 Expression = Annotated[str, Field(min_length=1, max_length=MAX_EXPRESSION_CHARS)]
+Expressions = Annotated[
+    list[Expression], BeforeValidator(one_as_list, json_schema_input_type=Expression | list[Expression])
+]
+"""A list of expressions, or one expression as a string."""
 Points = Annotated[
     Integer,
     check(lambda n: n >= 2, "a grid needs at least 2 points, got {value}"),

@@ -12,12 +12,13 @@ import math
 from typing import Annotated, Any, Literal
 
 import numpy as np
-from pydantic import BeforeValidator, Field, PrivateAttr, model_validator
+from pydantic import Field, PrivateAttr, model_validator
 
 from worker import expressions
 from worker.document._faults import Fault, fault, form_faults, increasing_faults, number, raise_faults
 from worker.document._fields import (
     Expression,
+    Expressions,
     Name,
     NumberOrExpression,
     Part,
@@ -25,7 +26,6 @@ from worker.document._fields import (
     Positive,
     Spacing,
     Vector,
-    one_as_list,
 )
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.define_order import dependency_order
@@ -284,11 +284,7 @@ class GridModel(Part):
         ),
     )
     reward: Expression = Field(description="The reward paid this period, an expression.")
-    feasible: Annotated[
-        list[Expression],
-        BeforeValidator(one_as_list, json_schema_input_type=Expression | list[Expression]),
-        Field(max_length=MAX_ENTRIES),
-    ] = Field(
+    feasible: Annotated[Expressions, Field(max_length=MAX_ENTRIES)] = Field(
         default_factory=list,
         description=(
             "Conditions (expressions) that must all hold for a choice to be allowed in a state; one condition may "
