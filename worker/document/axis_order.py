@@ -3,7 +3,9 @@
 A JSON object's key order is not kept by every decoder (MATLAB's ``containers.Map``, R environments, Julia's
 ``Dict``), so a document may name the order of the value array's axes outright: a permutation of the model's
 states and of its shocks that are axes of the value (a shock drawn after the choice is not).  The numerics keep
-their own layout; :mod:`worker.axis_order` transposes at the result's boundary.
+their own layout (the states in the order ``axis_order`` names them, then the shocks likewise, so that key
+order changes nothing even inside); :mod:`worker.axis_order` transposes to ``axis_order`` at the result's
+boundary when it puts a shock before a state.
 """
 
 from __future__ import annotations
@@ -17,7 +19,7 @@ from worker.document._fields import Name, one_as_list
 from worker.document.limits import MAX_AXES
 from worker.errors import join_path
 
-__all__ = ["AXIS_ORDER_DESCRIPTION", "AxisOrder", "axis_order_faults"]
+__all__ = ["AXIS_ORDER_DESCRIPTION", "AxisOrder", "axis_order_faults", "in_axis_order"]
 
 AxisOrder = Annotated[
     list[Name],
@@ -59,3 +61,11 @@ def axis_order_faults(model: Any) -> list[Fault]:
         faults.append(fault(where, f"must name every axis of the value once; missing {', '.join(missing)} "
                                    f"(the axes are {', '.join(axes)})"))
     return faults
+
+
+def in_axis_order(states: dict[str, Any], shocks: dict[str, Any], order: list[str]) -> tuple[dict, dict]:
+    """``states`` and ``shocks`` with their keys in the order ``order`` names them (shocks drawn after the choice,
+    which it does not name, last, as they came): the internal layout then depends on ``order`` alone."""
+    rank = {name: i for i, name in enumerate(order)}
+    return ({name: states[name] for name in sorted(states, key=rank.__getitem__)},
+            {name: shocks[name] for name in sorted(shocks, key=lambda name: rank.get(name, len(order)))})

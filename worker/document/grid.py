@@ -26,7 +26,7 @@ from worker.document._fields import (
     Spacing,
     Vector,
 )
-from worker.document.axis_order import AXIS_ORDER_DESCRIPTION, AxisOrder, axis_order_faults
+from worker.document.axis_order import AXIS_ORDER_DESCRIPTION, AxisOrder, axis_order_faults, in_axis_order
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.define_order import dependency_order
 from worker.document.draw_faults import draw_faults
@@ -336,6 +336,9 @@ class GridModel(Part):
         # Every later reader (the checks, the numerics, the generated code) then sees each define after those it uses.
         self.__dict__["define"] = ordered
         raise_faults(grid_model_faults(self))
+        if self.axis_order is not None:
+            # Named axes fix the internal layout too, so the states' and shocks' key order changes nothing.
+            self.__dict__["states"], self.__dict__["shocks"] = in_axis_order(self.states, self.shocks, self.axis_order)
         for choice in self.choices.values():
             if choice.next_of in self.states:
                 choice._target = self.states[choice.next_of]
