@@ -154,7 +154,8 @@ def _decode_packed(obj: dict, path: str, max_elements: int, ndim: int | None) ->
         fault("base64", f"base64 must be a string, got {_describe(text)}")
     order = obj.get("order", "row_major")
     if not isinstance(order, str) or order not in ORDERS:
-        fault("order", f'order must be "row_major" (the default) or "column_major", got {_describe(order)}')
+        got = f'"{order[:40]}"' if isinstance(order, str) else _describe(order)
+        fault("order", f'order must be "row_major" (the default) or "column_major", got {got}')
     if errors:
         raise InvalidDocument(errors)
 

@@ -207,3 +207,33 @@ def test_a_horizon_keeps_period_first_and_follows_axis_order() -> None:
     np.testing.assert_allclose(aligned(fixed["cohort"]["distribution"], order, to), plain["cohort"]["distribution"],
                                rtol=0, atol=1e-15)
     np.testing.assert_allclose(fixed["cohort"]["means"]["a"], plain["cohort"]["means"]["a"], rtol=1e-13)
+
+
+def test_euler_profile_columns_follow_the_order_of_the_shocks() -> None:
+    """One state, two shocks: the profile's columns run over the shocks' points as axis_order lists them."""
+    def grower(**model: Any) -> dict[str, Any]:
+        return {
+            "version": 1,
+            "discount": 0.9,
+            "model": {
+                "kind": "grid",
+                "params": {"alpha": 0.3},
+                "states": {"k": {"min": 0.05, "max": 0.5, "points": 40}},
+                "shocks": {"z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.2, 0.8]]}},
+                           "q": {"iid": {"values": [0.95, 1.0, 1.05], "probs": [0.25, 0.5, 0.25]}}},
+                "choices": {"kn": {"next_of": "k"}},
+                "define": {"c": "z * q * k ** alpha - kn"},
+                "reward": "log(c)",
+                "feasible": ["c > 0"],
+                **model,
+            },
+            "report": {"euler_errors": True},
+        }
+
+    plain = solve(grower())["diagnostics"]["euler_errors"]["profile"]
+    fixed = solve(grower(axis_order=["q", "k", "z"]))["diagnostics"]["euler_errors"]["profile"]
+    rows = len(plain["at"])
+    assert plain["at"] == fixed["at"]
+    as_array = lambda table: np.array([[np.nan if v is None else v for v in row] for row in table])  # noqa: E731
+    expected = as_array(plain["log10_error"]).reshape(rows, 2, 3).transpose(0, 2, 1).reshape(rows, 6)
+    np.testing.assert_allclose(as_array(fixed["log10_error"]), expected, rtol=0, atol=1e-9, equal_nan=True)
