@@ -67,7 +67,8 @@ def test_empty_array_for_an_optional_value_says_send_null_or_leave_it_out(path: 
 ])
 def test_empty_array_for_a_value_with_a_default_says_leave_it_out(path: tuple[str, ...], expected: str) -> None:
     errors = refusal(grid(), path)
-    assert errors == [{"path": ".".join(path), "message": f"{expected}{MATLAB_NOTE}; leave the key out for the default"}]
+    message = f"{expected}{MATLAB_NOTE}; leave the key out for the default"
+    assert errors == [{"path": ".".join(path), "message": message}]
 
 
 @pytest.mark.parametrize(("document", "path", "expected"), [

@@ -55,8 +55,8 @@ def test_a_bad_order_is_refused_naming_it() -> None:
               "order": "fortran"}
     with pytest.raises(InvalidDocument) as caught:
         decode_array(packed, path="model.reward")
-    assert caught.value.errors == [{"path": "model.reward.order",
-                                    "message": 'order must be "row_major" (the default) or "column_major", got "fortran"'}]
+    message = 'order must be "row_major" (the default) or "column_major", got "fortran"'
+    assert caught.value.errors == [{"path": "model.reward.order", "message": message}]
 
 
 def test_a_column_major_reward_solves_like_the_nested_one() -> None:
