@@ -271,8 +271,7 @@ def get_result(
     arrays: Annotated[Literal["nested", "flat"] | None, Query(description=ARRAYS_QUERY)] = None,
     order: Annotated[Literal["row_major", "column_major"] | None, Query(description=ORDER_QUERY)] = None,
 ) -> Response:
-    """The result document once the job is done; `?format=csv` gives the long table, `?arrays=flat` every
-    numeric array as `{shape, order, data}` (see `service.flat`)."""
+    """The result document once done; `?format=csv` the long table, `?arrays=flat` arrays as {shape, order, data}."""
     record = _job_or_404(store, job_id, owner)
     if record["state"] != "done":
         raise Problem(
