@@ -344,4 +344,4 @@ def warm_start(store: JobStore, document: dict[str, Any]) -> dict[str, Any] | No
     result = store.get_result(earlier)
     if result is None:
         raise InvalidDocument.at(path, f"the result of job {earlier} has expired; start from another job")
-    return {"axes": result["axes"], "value": result["value"]}
+    return {key: result[key] for key in ("axes", "axis_order", "value") if key in result}

@@ -1,8 +1,10 @@
 """The long table of a result document (``GET /v1/jobs/{id}/result?format=csv``).
 
-One header row, then one row per point of the value function, in C order of
-its axes.  The header follows the result's axes: a column per axis (the state
-variables, then the shocks; a tabular result has the one axis ``state_label``),
+One header row, then one row per point of the value function, in row-major
+order over its axes (the last axis varies fastest).  The header follows the
+result's ``axis_order``: a column per axis (by default the state variables,
+then the shocks, a finite horizon's ``period`` first; ``model.axis_order``
+sets another order; a tabular result has the one axis ``state_label``),
 then ``value``, then a column per choice with the chosen value (a tabular
 result's one choice is named ``action`` and holds action labels).  A choice
 whose name repeats an earlier column gets ``_choice`` appended.  With taste
@@ -47,6 +49,8 @@ def csv_text(value: Any) -> Any:
 def table_columns(result: dict[str, Any]) -> tuple[list[str], list[np.ndarray]]:
     """Column names and flat (n,) columns of the long table of ``result``."""
     axes: dict[str, list[Any]] = result["axes"]
+    if isinstance(result.get("axis_order"), list) and sorted(result["axis_order"]) == sorted(axes):
+        axes = {name: axes[name] for name in result["axis_order"]}  # the stated order, whatever the key order
     value = np.asarray(result["value"], dtype=float)
     shape = tuple(len(values) for values in axes.values())
     if value.shape != shape:

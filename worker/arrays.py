@@ -2,8 +2,11 @@
 
 A packed array is ``{"dtype": D, "shape": [...], "base64": TEXT}`` with ``D``
 one of ``float64``, ``float32``, ``int64``, ``int32``; ``TEXT`` is standard
-base64 (RFC 4648 section 4, padded) of the elements in C order, each
-little-endian.  Numpy, Julia and R clients send large arrays this way.
+base64 (RFC 4648 section 4, padded) of the elements, each little-endian, in
+row-major (C) order, or in column-major (Fortran) order with ``"order":
+"column_major"`` (R, Julia, MATLAB and Fortran hold arrays that way, so their
+clients send their buffer as it is).  Numpy, Julia and R clients send large
+arrays this way.
 
 :func:`decode_array` turns either form into an ndarray, refusing bad input
 with an :class:`~worker.errors.InvalidDocument` that names the exact place
@@ -38,6 +41,9 @@ MAX_DEPTH = 32
 """Deepest nesting (number of dimensions) accepted."""
 
 _PACKED_KEYS = ("dtype", "shape", "base64")
+_OPTIONAL_KEYS = ("order",)
+ORDERS = {"row_major": "C", "column_major": "F"}
+"""Element orders of a packed array (its optional ``order``; default ``row_major``) and numpy's names for them."""
 _NUMBER_TYPES = (int, float, np.integer, np.floating)
 _BOOL_TYPES = (bool, np.bool_)
 _FAST_DECODE_CHARS = 1 << 22
@@ -64,7 +70,7 @@ def decode_array(
 
     Parameters
     ----------
-    obj : nested lists of numbers, packed ``{"dtype", "shape", "base64"}``, or ndarray
+    obj : nested lists of numbers, packed ``{"dtype", "shape", "base64"}`` (optionally ``"order"``), or ndarray
     path : document path of ``obj``, used in every error.
     max_elements : refuse (``TooLarge``) arrays with more elements than this.
     allow_null : JSON ``null`` becomes NaN (in packed arrays and ndarrays NaN stands for null;
@@ -130,8 +136,8 @@ def _decode_packed(obj: dict, path: str, max_elements: int, ndim: int | None) ->
         errors.append({"path": join_path(path, where, *more), "message": message})
 
     for key in obj:
-        if key not in _PACKED_KEYS:
-            fault(str(key), "unknown key: a packed array has only dtype, shape and base64")
+        if key not in _PACKED_KEYS and key not in _OPTIONAL_KEYS:
+            fault(str(key), "unknown key: a packed array has only dtype, shape, base64 and order")
     for key in _PACKED_KEYS:
         if key not in obj:
             fault(key, "missing: a packed array needs dtype, shape and base64")
@@ -146,6 +152,10 @@ def _decode_packed(obj: dict, path: str, max_elements: int, ndim: int | None) ->
                 fault("shape", f"each dimension must be a non-negative whole number, got {_describe(size)}", i)
     if "base64" in obj and not isinstance(text, str):
         fault("base64", f"base64 must be a string, got {_describe(text)}")
+    order = obj.get("order", "row_major")
+    if not isinstance(order, str) or order not in ORDERS:
+        got = f'"{order[:40]}"' if isinstance(order, str) else _describe(order)
+        fault("order", f'order must be "row_major" (the default) or "column_major", got {got}')
     if errors:
         raise InvalidDocument(errors)
 
@@ -171,7 +181,8 @@ def _decode_packed(obj: dict, path: str, max_elements: int, ndim: int | None) ->
     except (binascii.Error, UnicodeEncodeError, ValueError) as exc:
         message = f"not valid base64 (standard alphabet A-Z a-z 0-9 + /, padded with =): {exc}"
         raise InvalidDocument.at(where, message) from None
-    return np.frombuffer(raw, dtype=DTYPES[dtype]).reshape(shape)
+    # Column-major: the buffer read with the first index fastest; decode_array then copies it to C order.
+    return np.frombuffer(raw, dtype=DTYPES[dtype]).reshape(shape, order=ORDERS[order])
 
 
 def _decode_nested(

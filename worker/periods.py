@@ -24,6 +24,7 @@ from typing import Any
 
 import numpy as np
 
+from worker.axis_order import PERIOD_AXIS, apply_axis_order, cohort_in_internal_layout, model_axis_order
 from worker.document.horizon import DISCOUNT_NAME, PERIOD_NAME, varies_by_period
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate, parse
@@ -32,8 +33,6 @@ from worker.solvers.backward import METHOD, HorizonOutcome, PeriodPlan
 
 __all__ = ["PERIOD_AXIS", "horizon_result", "period_plan"]
 
-PERIOD_AXIS = "period"
-"""The first axis of a finite-horizon result's value and policy (its values: the periods, from 0)."""
 
 
 def period_plan(doc: Any, problem: CompiledProblem, *, terminal: np.ndarray | None = None) -> PeriodPlan:
@@ -204,10 +203,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     elif report.cohort is not None or report.simulation is not None:
         from worker.cohort import cohort_report, horizon_simulation
 
-        if report.cohort is not None:
-            cohort = cohort_report(problem, plan, outcome, report.cohort)
+        start = cohort_in_internal_layout(report.cohort, doc.model, problem)
+        if start is not None:
+            cohort = cohort_report(problem, plan, outcome, start)
         if report.simulation is not None:
-            simulation = horizon_simulation(problem, plan, outcome, report.simulation, report.cohort,
+            simulation = horizon_simulation(problem, plan, outcome, report.simulation, start,
                                             f"report.{report.simulation_key}")
             warnings += simulation.pop("warnings")
     euler = {}
@@ -235,13 +235,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     })
     tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
                   "cohort": cohort})
-    return {
-        **head,
-        "value": value,
-        "policy": policy,
-        "policy_index": policy_index or None,
-        **tail,
-    }
+    result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **tail}
+    return apply_axis_order(result, model_axis_order(doc.model))
 
 
 @contextmanager

@@ -20,6 +20,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.axis_order import apply_axis_order, model_axis_order, to_internal
 from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
@@ -313,7 +314,8 @@ def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, An
     if initial is None or initial == "zeros":
         return np.zeros(problem.n)
     if isinstance(initial, InitialValues):
-        return _checked_values(np.asarray(initial.values, dtype=np.float64), problem, "solver.initial.values")
+        values = to_internal(np.asarray(initial.values, dtype=np.float64), model_axis_order(doc.model), _sizes(problem))
+        return _checked_values(values, problem, "solver.initial.values")
     if isinstance(initial, InitialJob):
         path = "solver.initial.job"
         if warm_start is None:
@@ -344,6 +346,8 @@ def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str
     old_axes = warm_start.get("axes")
     if not isinstance(old_axes, dict) or "value" not in warm_start:
         raise InvalidDocument.at(path, "the earlier job's result has no axes and value to start from")
+    if isinstance(warm_start.get("axis_order"), list) and sorted(warm_start["axis_order"]) == sorted(old_axes):
+        old_axes = {name: old_axes[name] for name in warm_start["axis_order"]}  # the stated order, not key order
     if STATE_AXIS in problem.axes and "state" in old_axes and STATE_AXIS not in old_axes:
         # Tabular results stored before the axis was named state_label call it "state".
         old_axes = {(STATE_AXIS if name == "state" else name): values for name, values in old_axes.items()}
@@ -398,14 +402,13 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation})
     # The big nested lists come from ndarray.tolist() (``describe_policy`` promises the same), so they
     # are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
-    return {
-        **head,
-        "value": np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist(),
-        "policy": policy,
-        "policy_index": policy_index,
-        **probabilities,
-        **tail,
-    }
+    value = np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist()
+    result = {**head, "value": value, "policy": policy, "policy_index": policy_index, **probabilities, **tail}
+    return apply_axis_order(result, model_axis_order(doc.model))
+
+
+def _sizes(problem: CompiledProblem) -> dict[str, int]:
+    return {name: len(values) for name, values in problem.axes.items()}
 
 
 def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> tuple[dict[str, Any], dict[str, Any]]:

@@ -25,6 +25,7 @@ from pydantic import BaseModel, ConfigDict
 
 from service import webhooks
 from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_key_of, current_owner
+from service.flat import flat_result
 from service.keys import ApiKey
 from service.limits import ActiveJobs, check_problem_size, quota_for
 from service.problems import Problem
@@ -37,6 +38,15 @@ from service.tables import csv_chunks
 from worker.convergence_log import KEEP_LATEST
 
 __all__ = ["router"]
+
+ARRAYS_QUERY = (
+    "nested (default): arrays as nested lists, the first axis outermost; flat: every numeric array as "
+    "{shape, order, data}, data the elements in one list (see order), for one reshape in R, Julia or MATLAB."
+)
+ORDER_QUERY = (
+    "With arrays=flat: row_major (default; last index fastest, numpy's C order) or column_major (first index "
+    "fastest: R's array(data, dim = shape), Julia's and MATLAB's reshape(data, shape))."
+)
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
@@ -258,8 +268,10 @@ def get_result(
     store: StoreDep,
     request: Request,
     format: Annotated[Literal["json", "csv"] | None, Query(description="json (default) or csv.")] = None,
+    arrays: Annotated[Literal["nested", "flat"] | None, Query(description=ARRAYS_QUERY)] = None,
+    order: Annotated[Literal["row_major", "column_major"] | None, Query(description=ORDER_QUERY)] = None,
 ) -> Response:
-    """The result document once the job is done; `?format=csv` gives the long table."""
+    """The result document once done; `?format=csv` the long table, `?arrays=flat` arrays as {shape, order, data}."""
     record = _job_or_404(store, job_id, owner)
     if record["state"] != "done":
         raise Problem(
@@ -278,6 +290,8 @@ def get_result(
     document = zlib.decompress(blob)
     if format is None:
         format = "csv" if "text/csv" in request.headers.get("accept", "") else "json"
+    if arrays == "flat" or order is not None:
+        return _flat(document, format, arrays, order)
     if format == "csv":
         return StreamingResponse(
             csv_chunks(orjson.loads(document)),
@@ -285,6 +299,21 @@ def get_result(
             headers={"Content-Disposition": f'attachment; filename="fixq-{job_id}.csv"'},
         )
     return Response(document, media_type="application/json")
+
+
+def _flat(document: bytes, format: str, arrays: str | None, order: str | None) -> Response:
+    """The result with its numeric arrays flat (``?arrays=flat``, optionally ``&order=column_major``)."""
+    if arrays != "flat":
+        raise _bad_query("order", "order applies to flat arrays: add arrays=flat")
+    if format == "csv":
+        raise _bad_query("arrays", "arrays=flat applies to the JSON result, not to format=csv")
+    return Response(orjson.dumps(flat_result(orjson.loads(document), order or "row_major")),
+                    media_type="application/json")
+
+
+def _bad_query(parameter: str, message: str) -> Problem:
+    return Problem(400, "invalid-request", f"query.{parameter}: {message}",
+                   errors=[{"path": f"query.{parameter}", "message": message}])
 
 
 def _not_ready(record: dict[str, Any]) -> str:

@@ -33,6 +33,7 @@ from fastapi.responses import Response
 from service.deps import Owner, StoreDep
 from service.problems import Problem
 from service.store import JobStore
+from worker.axis_order import apply_axis_order
 
 __all__ = ["router"]
 
@@ -174,7 +175,9 @@ def _result(store: JobStore, job: dict[str, Any]) -> dict[str, Any]:
         raise Problem(
             409, "not-ready", f"the job is {state}: value and policy pictures exist once it is done", state=state
         )
-    return result
+    # model.axis_order may put a shock before a state: the pictures read the states first, then the shocks.
+    layout = _plots().axis_layout(result, store.get_document(job["id"]))
+    return result if layout.tabular else apply_axis_order(result, [*layout.states, *layout.shocks])
 
 
 def _whole_log(store: JobStore, job_id: str) -> list[dict[str, Any]]:

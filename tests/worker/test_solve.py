@@ -56,6 +56,7 @@ def test_result_document_has_every_part_and_is_plain_json():
         "linear_solves",
         "seconds",
         "axes",
+        "axis_order",
         "value",
         "policy",
         "policy_index",

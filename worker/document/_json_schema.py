@@ -50,8 +50,9 @@ def _schema() -> bytes:
     defs["PackedArray"] = {
         "type": "object",
         "description": (
-            "A numeric array sent compactly: the elements in C order (last index fastest), each little-endian, "
-            "base64-encoded (standard alphabet, padded)."
+            "A numeric array sent compactly: the elements in row-major order (last index fastest; the default) or, "
+            'with "order": "column_major", in column-major order (first index fastest: the memory layout of R, '
+            "Julia, MATLAB and Fortran arrays), each little-endian, base64-encoded (standard alphabet, padded)."
         ),
         "properties": {
             "dtype": {"enum": list(DTYPES), "description": "Element type of the encoded bytes."},
@@ -62,6 +63,14 @@ def _schema() -> bytes:
                 "description": "Length of each dimension.",
             },
             "base64": {"type": "string", "contentEncoding": "base64", "description": "The encoded bytes."},
+            "order": {
+                "enum": ["row_major", "column_major"],
+                "default": "row_major",
+                "description": (
+                    'The order of the elements: "row_major" (C order, last index fastest) or "column_major" '
+                    "(Fortran order, first index fastest)."
+                ),
+            },
         },
         "required": ["dtype", "shape", "base64"],
         "additionalProperties": False,

@@ -130,11 +130,16 @@ _COMPARISONS = {
 def translate(errors: list[Any], root: type[BaseModel]) -> list[Fault]:
     """Turn pydantic's error list into faults with document paths and plain messages."""
     faults: list[Fault] = []
+    empty_at: set[str] = set()
     for error in errors:
         kind, ctx, given = error["type"], error.get("ctx") or {}, error.get("input")
         parts, _ = split_loc(tuple(error["loc"]), root)
         path = join_path(*parts)
-        if kind == FAULTS_ERROR:
+        if isinstance(given, list) and not given and kind in _EMPTY_ARRAY_KINDS:
+            if path not in empty_at:  # a union's members each refuse it: one fault is enough
+                empty_at.add(path)
+                faults.append(fault(path, empty_array_message(kind, ctx, tuple(error["loc"]), root)))
+        elif kind == FAULTS_ERROR:
             faults.extend({**f, "path": concat(path, f["path"])} for f in ctx["faults"])
         elif kind == "extra_forbidden":
             faults.append(fault(path, _unknown_key_message(tuple(error["loc"]), root)))
@@ -149,6 +154,51 @@ def translate(errors: list[Any], root: type[BaseModel]) -> list[Fault]:
         else:
             faults.append(fault(path, _message(kind, ctx, given, parts, error.get("msg", ""))))
     return faults
+
+
+_EMPTY_ARRAY_KINDS = {*(kind for kind in _EXPECTED if kind != "list_type"), "fixq_initial", "literal_error"}
+"""Error kinds that, for an empty JSON array, mean a value other than a list was expected."""
+
+def empty_array_message(kind: str, ctx: dict[str, Any], loc: tuple[Any, ...], root: type[BaseModel]) -> str:
+    """The message for ``[]`` where a non-list was expected: what was, and how to send nothing instead.
+
+    MATLAB/Octave's ``jsonencode`` writes ``[]`` for an empty or missing value (and ``jsondecode`` reads
+    ``null`` back as ``[]``), so a round trip through them puts ``[]`` where an object, a number or null was.
+    """
+    if kind == "fixq_initial":
+        expected = '"zeros", an object {"values": ARRAY} or an object {"job": JOB_ID}'
+    elif kind == "literal_error":
+        expected = str(ctx.get("expected", "one of the listed words")).replace(chr(39), chr(34))
+    else:
+        expected = _EXPECTED.get(kind, "a value")
+    optional, nullable = _slot(loc, root)
+    note = "MATLAB/Octave encode a missing value as []"
+    if optional and nullable:
+        return f"expected {expected} (or null); got an empty array — {note}; send null or leave the key out"
+    if optional:
+        return f"expected {expected}; got an empty array — {note}; leave the key out for the default"
+    return f"expected {expected}; got an empty array — {note}, but this value is required"
+
+
+def _slot(loc: tuple[Any, ...], root: type[BaseModel]) -> tuple[bool, bool]:
+    """Whether the value at pydantic's ``loc`` may be left out, and whether it may be null (False, False when
+    unknown)."""
+    if not loc:
+        return False, False
+    _, holder = split_loc(loc[:-1], root)
+    holder = _resolve(holder) if holder is not None else None
+    if not _is_model(holder) or not isinstance(loc[-1], str):
+        value = _child(holder, loc[-1]) if holder is not None else None
+        return False, _accepts_none(value)
+    field = _field(holder, loc[-1])
+    if field is None:
+        return False, False
+    return not field.is_required(), _accepts_none(field.annotation)
+
+
+def _accepts_none(tp: Any) -> bool:
+    tp, _ = _unwrap(tp)
+    return tp is type(None) or (_is_union(tp) and any(_unwrap(m)[0] is type(None) for m in get_args(tp)))
 
 
 def _union_tags(loc: tuple[Any, ...], root: type[BaseModel]) -> list[str]:

@@ -171,10 +171,12 @@ class ProblemDocument(Part):
     notify: NotifySpec | None = Field(default=None, description="Optional call-back when the job ends.")
 
     def value_shape(self) -> tuple[int, ...]:
-        """Shape of the value array: grid axis sizes (states, then shocks), or ``(n_states,)``."""
+        """Shape of the value array as documents send and results give it: grid axis sizes (in
+        ``model.axis_order``, else states then shocks), or ``(n_states,)``."""
         if isinstance(self.model, TabularModel):
             return (self.model.n_states,)
-        return tuple(self.model.axis_sizes().values())
+        sizes = self.model.axis_sizes()
+        return tuple(sizes[name] for name in (self.model.axis_order or sizes))
 
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:

@@ -8,14 +8,13 @@ Nothing here builds a grid: sizes and bounds come from closed forms, and
 
 from __future__ import annotations
 
-import math
 from typing import Annotated, Any, Literal
 
 import numpy as np
 from pydantic import Field, PrivateAttr, model_validator
 
 from worker import expressions
-from worker.document._faults import Fault, fault, form_faults, increasing_faults, number, raise_faults
+from worker.document._faults import Fault, fault, form_faults, increasing_faults, raise_faults
 from worker.document._fields import (
     Expression,
     Expressions,
@@ -27,9 +26,11 @@ from worker.document._fields import (
     Spacing,
     Vector,
 )
+from worker.document.axis_order import AXIS_ORDER_DESCRIPTION, AxisOrder, axis_order_faults, in_axis_order
 from worker.document.continuous_faults import continuous_faults, continuous_model_faults
 from worker.document.define_order import dependency_order
 from worker.document.draw_faults import draw_faults
+from worker.document.grid_ranges import range_faults
 from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
@@ -253,8 +254,8 @@ class GridModel(Part):
     )
     states: Annotated[dict[Name, GridAxis], Field(min_length=1, max_length=MAX_AXES)] = Field(
         description=(
-            "The endogenous states, each with its grid; together they form a product grid. Their order is the "
-            "order of the axes of the value array (states first, then shocks)."
+            "The endogenous states, each with its grid; together they form a product grid. Unless axis_order says "
+            "otherwise, their order is the order of the axes of the value array (states first, then shocks)."
         )
     )
     shocks: Annotated[dict[Name, ShockSpec], Field(max_length=MAX_AXES)] = Field(
@@ -316,6 +317,8 @@ class GridModel(Part):
         ),
     )
 
+    axis_order: AxisOrder | None = Field(default=None, description=AXIS_ORDER_DESCRIPTION)
+
     def continuous_choice(self) -> str | None:
         """The name of the model's continuous choice, or None."""
         return next((name for name, choice in self.choices.items() if choice.continuous), None)
@@ -333,77 +336,20 @@ class GridModel(Part):
         # Every later reader (the checks, the numerics, the generated code) then sees each define after those it uses.
         self.__dict__["define"] = ordered
         raise_faults(grid_model_faults(self))
+        if self.axis_order is not None:
+            # Named axes fix the internal layout too, so the states' and shocks' key order changes nothing.
+            self.__dict__["states"], self.__dict__["shocks"] = in_axis_order(self.states, self.shocks, self.axis_order)
         for choice in self.choices.values():
             if choice.next_of in self.states:
                 choice._target = self.states[choice.next_of]
         return self
 
 
-def grid_gap_fault(spacing: str, lo: float, hi: float, points: int, exponent: float) -> Fault | None:
-    """A fault when the grid's closest neighbours would be indistinguishable in float64.
-
-    Computed from the closed-form smallest gap, so no grid is built.
-    """
-    step = 1.0 / (points - 1)
-    if spacing == "log":
-        gap = lo * math.expm1(math.log(hi / lo) * step)
-    elif spacing == "power" and exponent >= 1:
-        gap = (hi - lo) * step**exponent
-    elif spacing == "power":
-        gap = (hi - lo) * -math.expm1(exponent * math.log1p(-step)) if points > 2 else hi - lo
-    else:
-        gap = (hi - lo) * step
-    # Four ulps of the largest magnitude on the grid: below that, rounding can
-    # merge or reorder neighbouring points.
-    if not gap > 4 * math.ulp(max(abs(lo), abs(hi))):
-        return fault(
-            "points",
-            f"{points:,} points between {number(lo)} and {number(hi)} would lie too close together to tell apart in "
-            "float64",
-        )
-    return None
-
-
-def range_faults(part: Any, *, other: str, default_exponent: float) -> list[Fault]:
-    """Faults of a grid given by ``min``, ``max``, ``points``, ``spacing``, ``exponent``.
-
-    Fills in the defaults (``spacing`` uniform; ``exponent`` for power) on ``part``.
-    """
-    faults = [
-        fault(key, f"missing `{key}`: a grid needs min, max and points ({other})")
-        for key in ("min", "max", "points")
-        if getattr(part, key) is None
-    ]
-    spacing = part.spacing or "uniform"
-    if part.exponent is not None and spacing != "power":
-        faults.append(fault("exponent", f'exponent is used only with spacing "power", not "{spacing}"'))
-    if faults:
-        return faults
-    if part.min >= part.max:
-        faults.append(fault("max", f"max ({number(part.max)}) must be greater than min ({number(part.min)})"))
-    elif spacing == "log" and part.min <= 0:
-        faults.append(
-            fault(
-                "min",
-                "log spacing needs min > 0 (there are no logarithms of zero or negative numbers), got "
-                f"{number(part.min)}",
-            )
-        )
-    else:
-        exponent = part.exponent if part.exponent is not None else default_exponent
-        gap = grid_gap_fault(spacing, part.min, part.max, part.points, exponent)
-        faults += [gap] if gap else []
-    part.spacing = spacing
-    if spacing == "power" and part.exponent is None:
-        part.exponent = default_exponent
-    return faults
-
-
 def grid_model_faults(model: Any) -> list[Fault]:
     """Faults of a grid model's names, laws of motion and expressions (paths relative to it)."""
     return (
         _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
-        + draw_faults(model) + grid_horizon_faults(model)
+        + draw_faults(model) + grid_horizon_faults(model) + axis_order_faults(model)
     )
 
 
