@@ -36,7 +36,7 @@ from service.submission import admit_submission, admitted_summary
 from service.tables import csv_chunks
 from worker.convergence_log import KEEP_LATEST
 
-__all__ = ["router"]
+__all__ = ["router", "solved_job"]
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
 
@@ -260,16 +260,7 @@ def get_result(
     format: Annotated[Literal["json", "csv"] | None, Query(description="json (default) or csv.")] = None,
 ) -> Response:
     """The result document once the job is done; `?format=csv` gives the long table."""
-    record = _job_or_404(store, job_id, owner)
-    if record["state"] != "done":
-        raise Problem(
-            409,
-            "not-ready",
-            _not_ready(record),
-            title="result not ready",
-            state=record["state"],
-            progress=record.get("progress"),
-        )
+    solved_job(store, job_id, owner)
     # The stored result is zlib-compressed JSON (DEVELOPERS.md, "Jobs in
     # Redis"): JSON answers send it as stored, without a parse and re-encode.
     blob = store.redis.get(store.keys.result(job_id))
@@ -285,6 +276,21 @@ def get_result(
             headers={"Content-Disposition": f'attachment; filename="fixq-{job_id}.csv"'},
         )
     return Response(document, media_type="application/json")
+
+
+def solved_job(store: JobStore, job_id: str, owner: Caller) -> dict[str, Any]:
+    """The record of a job the caller may see and that is done; else 404, or 409 saying why it has no result."""
+    record = _job_or_404(store, job_id, owner)
+    if record["state"] != "done":
+        raise Problem(
+            409,
+            "not-ready",
+            _not_ready(record),
+            title="result not ready",
+            state=record["state"],
+            progress=record.get("progress"),
+        )
+    return record
 
 
 def _not_ready(record: dict[str, Any]) -> str:
