@@ -28,7 +28,7 @@ def describe_changes(answer: dict[str, Any]) -> str:
         verdict = {True: "within them: noise", False: "the change is larger: real", None: ""}
         rows.append((
             "error bounds",
-            f"{_num(bounds['now'])} + {_num(bounds['since'])} = {_num(bounds['sum'])}; "
+            f"{bounds['now']:.3g} + {bounds['since']:.3g} = {bounds['sum']:.3g}; "
             f"{verdict[answer['within_error_bounds']]}",
         ))  # fmt: skip
     for choice, block in (answer.get("policy") or {}).items():
