@@ -20,6 +20,7 @@ from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Query
 from fastapi.responses import Response
+from pydantic import BaseModel, ConfigDict, Field
 
 from service.changes import Comparison, NotComparable, compare
 from service.deps import Caller, Owner, StoreDep
@@ -37,6 +38,73 @@ DONE_MAX_AGE_S = 3600
 VALUE_CHANGE = "change in value"
 """The name the picture gives the value change (its axis label)."""
 
+
+class ValueChange(BaseModel):
+    """The largest change in the value function (newer − older) and where it happens."""
+
+    sup_norm: float | None = Field(description="The largest absolute change over the compared points.")
+    largest_change: float | None = Field(description="That change with its sign.")
+    at: dict[str, Any] | None = Field(description="The point: the value of each axis there.")
+    now: float | None = Field(description="The newer job's value at that point.")
+    since: float | None = Field(description="The older job's value at that point (interpolated when the grids differ).")
+    mean_change: float | None = Field(description="The mean change over the compared points.")
+
+
+class PolicyChange(BaseModel):
+    """Where one choice's policy changed."""
+
+    changed_share: float | None = Field(description="The share of compared points whose chosen value changed.")
+    changed_points: int
+    points: int = Field(description="The points compared.")
+    rule: str = Field(description="When a point counts as changed.")
+    largest: list[dict[str, Any]] = Field(description="The largest changes: at (the point), since, now.")
+    ranges: dict[str, list[Any]] = Field(
+        description="Per axis, [lowest, highest] of its values where the policy changed (labels: the list)."
+    )
+
+
+class MeanChange(BaseModel):
+    """One mean of the stationary distribution or of the simulation, in both jobs."""
+
+    since: float
+    now: float
+    change: float
+
+
+class ErrorBounds(BaseModel):
+    """The certified error bounds of the two solves, and their sum: a value change below it is noise."""
+
+    now: float | None
+    since: float | None
+    sum: float | None
+
+
+class Changes(BaseModel):
+    """What moved from the older job (`since`) to the newer one (`id`), on the newer job's grid."""
+
+    model_config = ConfigDict(extra="allow")
+    id: str
+    since: str
+    compared_on: str = Field(description="The job whose grid the comparison is made on (the newer one, `id`).")
+    jobs: dict[str, dict[str, Any]] = Field(description="now and since: label, times, status and error bound.")
+    same_structure: bool = Field(description="True when grids, shocks, choices and horizon are all the same.")
+    structure_changes: list[dict[str, Any]] = Field(description="What differs in structure: part, name, what.")
+    document_changes: dict[str, Any] = Field(description="Other document paths that differ: paths (path, now, "
+                                             "since) and more (how many were left out).")  # fmt: skip
+    interpolated: bool = Field(description="True when the older job was interpolated onto the newer grid.")
+    axis_order: list[str]
+    points: int
+    points_compared: int
+    outside_older_grid: int = Field(description="Points of the newer grid outside the older grid's range.")
+    value: ValueChange
+    error_bounds: ErrorBounds
+    within_error_bounds: bool | None = Field(description="True when the largest value change is at most their sum.")
+    policy: dict[str, PolicyChange]
+    stationary_means: dict[str, MeanChange] | None
+    simulated_means: dict[str, MeanChange] | None
+    notes: list[str]
+
+
 Since = Annotated[
     str, Query(min_length=1, max_length=64, description="The id of the older job to compare with (done, yours).")
 ]
@@ -44,6 +112,7 @@ Since = Annotated[
 
 @router.get(
     "/{job_id}/changes",
+    response_model=Changes,
     responses={
         409: {"content": {"application/problem+json": {}}, "description": "One of the two jobs is not done."},
         422: {"content": {"application/problem+json": {}}, "description": "The two cannot be matched axis by axis."},
@@ -55,7 +124,13 @@ def get_changes(job_id: str, since: Since, owner: Owner, store: StoreDep) -> dic
     now, older = records
     jobs = {"id": job_id, "since": since, "compared_on": job_id}
     times = {"now": _times(now), "since": _times(older)}
-    return {**jobs, "jobs": times, **comparison.answer}
+    answer = {**jobs, "jobs": times, **comparison.answer}
+    if (older.get("submitted_at") or "") > (now.get("submitted_at") or ""):
+        answer["notes"] = [*answer["notes"], (
+            f"Job {since} was submitted after job {job_id}: the changes read from {since} to {job_id}, on the grid of "
+            f"{job_id}. Swap the two to compare the other way."
+        )]  # fmt: skip
+    return answer
 
 
 @router.get(

@@ -107,6 +107,11 @@ def test_a_changed_param_is_measured_as_numpy_measures_the_two_results(client: h
     assert answer["same_structure"] is True
     assert answer["document_changes"]["paths"] == [{"path": "model.params.alpha", "now": 0.36, "since": 0.3}]
 
+    backwards = changes(client, older, newer)
+    assert backwards["value"]["largest_change"] == -answer["value"]["largest_change"]
+    assert any(f"Job {newer} was submitted after job {older}" in note for note in backwards["notes"])
+    assert not any("submitted after" in note for note in answer["notes"])
+
     picture = client.get(f"/v1/jobs/{newer}/plots/changes.svg", params={"since": older})
     assert picture.status_code == 200 and picture.headers["content-type"] == "image/svg+xml"
     assert ET.fromstring(picture.content).tag == "{http://www.w3.org/2000/svg}svg"
