@@ -90,8 +90,8 @@ def compare(
     now_axes = {name: list(now["axes"][name]) for name in order}
     since_axes = {name: list((since.get("axes") or {})[name]) for name in axis_order(since)}
     structure = structure_changes(now_axes, since_axes, now_document, since_document)
-    interpolated = any(now_axes[name] != since_axes[name] for name in order)
     aligner = _Aligner(since_axes, now_axes, tabular=_is_tabular(now, now_document))
+    interpolated = aligner.interpolates
 
     now_value = _array(now.get("value"), now_axes, "value of the newer job")
     since_value = aligner.carry(_array(since.get("value"), since_axes, "value of the older job"))
@@ -133,9 +133,12 @@ class _Aligner:
     def __init__(self, old: dict[str, list[Any]], new: dict[str, list[Any]], *, tabular: bool) -> None:
         self.old, self.new, self.tabular = old, new, tabular
         self.outside = np.zeros(tuple(len(v) for v in new.values()), dtype=bool)
+        # True once a numeric axis differs; labels that are only reordered are matched, not interpolated.
+        self.interpolates = False
         for axis, name in enumerate(new):
             if old[name] == new[name] or not _numeric(old[name]):
                 continue
+            self.interpolates = True
             grid = np.asarray(old[name], dtype=float)
             points = np.asarray(new[name], dtype=float)
             off = (points < grid.min()) | (points > grid.max())
@@ -152,6 +155,10 @@ class _Aligner:
             if old == new:
                 continue
             if not _numeric(old) or array.dtype == object:
+                unmatched = [label for label in new if label not in old]
+                if unmatched:
+                    message = f"axis {name!r} of the older job has no entry for {unmatched[:5]}"
+                    raise NotComparable([{"path": f"axes.{name}", "message": message}])
                 array = np.take(array, [old.index(label) for label in new], axis=axis)
             else:
                 array = _interpolate_axis(array, axis, np.asarray(old, float), np.asarray(new, float))
@@ -213,8 +220,7 @@ def _policies(
     now: dict[str, Any], since: dict[str, Any], now_side: _Side, since_side: _Side, aligner: _Aligner
 ) -> dict[str, Any]:
     now_policy, since_policy = now.get("policy") or {}, since.get("policy") or {}
-    tabular, axes = aligner.tabular, now_side.axes
-    interpolated = any(aligner.old[name] != aligner.new[name] for name in aligner.new)
+    tabular, axes, interpolated = aligner.tabular, now_side.axes, aligner.interpolates
     out: dict[str, Any] = {}
     for choice in now_policy:
         if choice not in since_policy:

@@ -221,6 +221,21 @@ def test_tabular_jobs_compare_by_state_label(client: httpx.Client) -> None:
     assert picture.status_code == 200
 
 
+def test_tabular_states_listed_in_another_order_are_matched_by_label() -> None:
+    first = {"axes": {"state_label": ["new", "worn", "broken"]}, "value": [3.0, 2.0, 1.0],
+             "policy": {"action": ["run", "run", "repair"]}, "error_bound": 0.0}  # fmt: skip
+    reordered = {"axes": {"state_label": ["broken", "new", "worn"]}, "value": [1.0, 3.0, 2.5],
+                 "policy": {"action": ["repair", "run", "repair"]}, "error_bound": 0.0}  # fmt: skip
+    answer = compare(reordered, first).answer
+    assert answer["interpolated"] is False and answer["value"]["at"] == {"state_label": "worn"}
+    assert answer["value"]["largest_change"] == 0.5
+    assert answer["policy"]["action"]["largest"] == [{"at": {"state_label": "worn"}, "since": "run", "now": "repair"}]
+    assert answer["structure_changes"][0]["what"].startswith("the same states in another order")
+    with pytest.raises(NotComparable) as refused:
+        compare({**first, "axes": {"state_label": ["new", "worn", "gone"]}}, first)
+    assert refused.value.errors[0]["path"] == "model.states" and "gone" in refused.value.errors[0]["message"]
+
+
 def test_a_job_that_is_not_done_is_409_naming_its_state(client: httpx.Client) -> None:
     done = solved(client, growth())
     queued = submit(client, growth(), fresh="true")["id"]
