@@ -155,11 +155,12 @@ class _Aligner:
             if old == new:
                 continue
             if not _numeric(old) or array.dtype == object:
-                unmatched = [label for label in new if label not in old]
+                position = {label: i for i, label in enumerate(old)}
+                unmatched = [label for label in new if label not in position]
                 if unmatched:
                     message = f"axis {name!r} of the older job has no entry for {unmatched[:5]}"
                     raise NotComparable([{"path": f"axes.{name}", "message": message}])
-                array = np.take(array, [old.index(label) for label in new], axis=axis)
+                array = np.take(array, [position[label] for label in new], axis=axis)
             else:
                 array = _interpolate_axis(array, axis, np.asarray(old, float), np.asarray(new, float))
         return array
