@@ -18,7 +18,7 @@ from fastapi import FastAPI
 from service import problems
 from service.bodylimit import BodyLimit
 from service.metrics import build_registry
-from service.routers import dashboard, examples, jobs, plots, sweeps, system
+from service.routers import changes, dashboard, examples, jobs, plots, sweeps, system
 from service.settings import Settings, get_settings
 from service.stopping import watch_stop_signals
 from service.store import JobStore
@@ -73,6 +73,8 @@ def create_app(settings: Settings | None = None) -> FastAPI:
     app.state.metrics = build_registry(store)
     problems.install(app)
     app.add_middleware(BodyLimit, max_bytes=int(settings.max_body_mb * _MIB))
-    for router in (jobs.router, sweeps.router, plots.router, examples.router, system.router, dashboard.router):
+    # changes before plots: its /plots/changes.{fmt} would otherwise be taken by /plots/{picture}.{fmt}.
+    routers = (jobs.router, changes.router, sweeps.router, plots.router, examples.router, system.router)
+    for router in (*routers, dashboard.router):
         app.include_router(router)
     return app

@@ -3,7 +3,8 @@
 Exit codes: 0 success; 1 the job failed or was canceled, or the API refused the
 request (unknown job, result not ready, ...); 2 usage error or an invalid
 problem document (including one too large); 3 the API (or, for ``fixq keys``,
-Redis) cannot be reached.
+Redis) cannot be reached.  ``fixq changes`` exits 1 only when the value moved
+more than ``--fail-above``, and 2 when the API refused the comparison.
 The API's URL comes from ``FIXQ_URL`` (default http://127.0.0.1:8000) and the
 key from ``FIXQ_KEY``; ``fixq keys`` talks to Redis directly (``FIXQ_REDIS_URL``).
 """
@@ -68,6 +69,13 @@ def _parser() -> argparse.ArgumentParser:
     check.add_argument("file", help="the problem document (JSON); - reads standard input")
     cancel = commands.add_parser("cancel", help="cancel a queued or running job")
     cancel.add_argument("id")
+    changes = commands.add_parser(
+        "changes", help="what moved between two finished jobs; exit 1 when the value moved more than --fail-above"
+    )
+    changes.add_argument("id", help="the newer job (the comparison is made on its grid)")
+    changes.add_argument("--since", required=True, metavar="OTHER_ID", help="the older job to compare with")
+    changes.add_argument("--fail-above", type=float, metavar="X", help="exit 1 when the largest value change is > X")
+    changes.add_argument("--json", action="store_true", help="print the API's answer as JSON")
 
     examples = commands.add_parser("examples", help="list the bundled example problems, or write one out")
     examples.add_argument("name", nargs="?", help="the example to write out (default: list them all)")
@@ -224,6 +232,33 @@ def _cmd_cancel(args: argparse.Namespace) -> int:
     with FixqClient() as client:
         record = client.cancel(args.id)
     print(f"job {record.get('id')}: {record.get('state')}")
+    return EXIT_OK
+
+
+def _cmd_changes(args: argparse.Namespace) -> int:
+    """Exit 0, or 1 when the value moved more than --fail-above; a refusal (unknown job, not done, not
+    comparable) exits 2, so a cron job tells a drift from a comparison that could not be made."""
+    from service.changes_text import describe_changes
+
+    if args.fail_above is not None and not args.fail_above >= 0:
+        _usage_error(f"--fail-above must be a number >= 0, not {args.fail_above}")
+    try:
+        with FixqClient() as client:
+            answer = client.changes(args.id, since=args.since)
+    except APIError as exc:
+        _print_problem(exc)
+        return EXIT_INVALID
+    sys.stdout.write(json.dumps(answer, indent=2) + "\n" if args.json else describe_changes(answer))
+    largest = answer["value"]["sup_norm"]
+    if args.fail_above is None:
+        return EXIT_OK
+    if largest is None:
+        print("fixq: no point could be compared, so --fail-above cannot be checked", file=sys.stderr)
+        return EXIT_INVALID
+    if largest > args.fail_above:
+        message = f"the largest value change {largest:.4g} is above --fail-above {args.fail_above:g}"
+        print(f"fixq: {message}", file=sys.stderr)
+        return EXIT_FAILED
     return EXIT_OK
 
 
@@ -445,6 +480,7 @@ _COMMANDS = {
     "result": _cmd_result,
     "check": _cmd_check,
     "cancel": _cmd_cancel,
+    "changes": _cmd_changes,
     "keys": _cmd_keys,
 }
 

@@ -116,6 +116,10 @@ class FixqClient:
         response = self._request("GET", f"/v1/jobs/{job_id}/result", params={"format": format})
         return orjson.loads(response.content) if format == "json" else response.text
 
+    def changes(self, job_id: str, *, since: str) -> dict[str, Any]:
+        """What moved from job ``since`` (the older) to job ``job_id``: ``GET /v1/jobs/{id}/changes``."""
+        return self._request("GET", f"/v1/jobs/{job_id}/changes", params={"since": since}).json()
+
     def log(self, job_id: str, *, cursor: int | None = None, limit: int | None = None) -> dict[str, Any]:
         """One page of the convergence log: ``{"data": [...], "next": cursor}``."""
         params = {k: v for k, v in {"cursor": cursor, "limit": limit}.items() if v is not None}

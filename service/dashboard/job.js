@@ -457,6 +457,8 @@
     if (summary.life_cycle) links.push(["life-cycle plot (PNG)", `${base}/plots/life_cycle.png`, `${jobId}-life-cycle.png`]);
     document.getElementById("downloads").replaceChildren(...links.map(([text, href, download]) => el("a", { class: "button quiet", href, download, text })));
     document.getElementById("downloads-card").classList.remove("hidden");
+    document.getElementById("compare").action = `/jobs/${encodeURIComponent(jobId)}/changes`;
+    document.getElementById("compare-card").classList.remove("hidden");
   }
 
   async function cancel() {

@@ -1,4 +1,5 @@
-"""The dashboard: ``GET /`` (the job list) and ``GET /jobs/{id}`` (one job).
+"""The dashboard: ``GET /`` (the job list), ``GET /jobs/{id}`` (one job) and ``GET /jobs/{id}/changes?since=ID``
+(what moved since an earlier job).
 
 The pages are static HTML shells from ``service/dashboard/`` that read the
 JSON API from the browser (plain JavaScript, no framework, nothing fetched
@@ -39,6 +40,7 @@ STATIC_TYPES = {
     "common.js": "text/javascript; charset=utf-8",
     "jobs.js": "text/javascript; charset=utf-8",
     "job.js": "text/javascript; charset=utf-8",
+    "changes.js": "text/javascript; charset=utf-8",
     "favicon.svg": "image/svg+xml",
 }
 # Everything the pages load comes from this service; no inline script or style.
@@ -75,6 +77,14 @@ def job_page(job_id: str) -> HTMLResponse:
     if not is_job_id(job_id):
         raise Problem(404, "not-found", f"no job {job_id!r}: job ids are 16 lowercase hexadecimal characters")
     return _page("job", "job.html", "job.js", "job")
+
+
+@router.get("/jobs/{job_id}/changes", response_class=HTMLResponse)
+def changes_page(job_id: str) -> HTMLResponse:
+    """What moved between this job and an earlier one (``?since=ID``), read by the page with the caller's key."""
+    if not is_job_id(job_id):
+        raise Problem(404, "not-found", f"no job {job_id!r}: job ids are 16 lowercase hexadecimal characters")
+    return _page("changes", "changes.html", "changes.js", "changes")
 
 
 @router.get("/ui/static/{name}")

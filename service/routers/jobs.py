@@ -37,7 +37,7 @@ from service.submission import admit_submission, admitted_summary
 from service.tables import csv_chunks
 from worker.convergence_log import KEEP_LATEST
 
-__all__ = ["router"]
+__all__ = ["router", "solved_job"]
 
 ARRAYS_QUERY = (
     "nested (default): arrays as nested lists, the first axis outermost; flat: every numeric array as "
@@ -272,16 +272,7 @@ def get_result(
     order: Annotated[Literal["row_major", "column_major"] | None, Query(description=ORDER_QUERY)] = None,
 ) -> Response:
     """The result document once done; `?format=csv` the long table, `?arrays=flat` arrays as {shape, order, data}."""
-    record = _job_or_404(store, job_id, owner)
-    if record["state"] != "done":
-        raise Problem(
-            409,
-            "not-ready",
-            _not_ready(record),
-            title="result not ready",
-            state=record["state"],
-            progress=record.get("progress"),
-        )
+    solved_job(store, job_id, owner)
     # The stored result is zlib-compressed JSON (DEVELOPERS.md, "Jobs in
     # Redis"): JSON answers send it as stored, without a parse and re-encode.
     blob = store.redis.get(store.keys.result(job_id))
@@ -314,6 +305,21 @@ def _flat(document: bytes, format: str, arrays: str | None, order: str | None) -
 def _bad_query(parameter: str, message: str) -> Problem:
     return Problem(400, "invalid-request", f"query.{parameter}: {message}",
                    errors=[{"path": f"query.{parameter}", "message": message}])
+
+
+def solved_job(store: JobStore, job_id: str, owner: Caller) -> dict[str, Any]:
+    """The record of a job the caller may see and that is done; else 404, or 409 saying why it has no result."""
+    record = _job_or_404(store, job_id, owner)
+    if record["state"] != "done":
+        raise Problem(
+            409,
+            "not-ready",
+            _not_ready(record),
+            title="result not ready",
+            state=record["state"],
+            progress=record.get("progress"),
+        )
+    return record
 
 
 def _not_ready(record: dict[str, Any]) -> str:

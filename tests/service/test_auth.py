@@ -294,6 +294,11 @@ EXTRA_QUERIES: dict[str, list[dict[str, Any]]] = {
     "/v1/sweeps/{sweep_id}": [{"params": {"format": "csv"}}],
 }
 """More ways to call a route (CSV, SSE, other pictures), each checked as well."""
+REQUIRED_QUERIES: dict[str, dict[str, Any]] = {
+    "/v1/jobs/{job_id}/changes": {"params": {"since": "{job_id}"}},
+    "/v1/jobs/{job_id}/plots/changes.{fmt}": {"params": {"since": "{job_id}"}},
+}
+"""Query parameters a route cannot be called without; an id in braces is filled as the path's ids are."""
 
 
 @pytest.fixture
@@ -319,15 +324,21 @@ def id_route_calls(app: FastAPI) -> list[tuple[str, str, dict[str, Any]]]:
         unknown = names - ID_PARAMETERS - set(OTHER_PARAMETERS)
         assert not unknown, f"{template} has path parameters {unknown} this test does not know: cover it"
         assert names & ID_PARAMETERS, f"{template} takes no known id: add it to ID_PARAMETERS or PUBLIC_ROUTES"
+        required = REQUIRED_QUERIES.get(template, {})
         for method in sorted(methods):
-            calls.append((method, template, {}))
-            calls += [(method, template, extra) for extra in EXTRA_QUERIES.get(template, []) if method == "GET"]
+            calls.append((method, template, required))
+            extras = EXTRA_QUERIES.get(template, []) if method == "GET" else []
+            calls += [(method, template, {**required, **extra}) for extra in extras]
     return calls
 
 
 def fill(template: str, ids: dict[str, str], extra: dict[str, Any]) -> str:
     values = {**OTHER_PARAMETERS, **ids, **extra.get("path", {})}
     return re.sub(r"\{([^}:]+)\}", lambda match: values[match.group(1)], template)
+
+
+def filled_params(extra: dict[str, Any], ids: dict[str, str]) -> dict[str, str]:
+    return {name: fill(str(value), ids, {}) for name, value in extra.get("params", {}).items()}
 
 
 def normalised(response: httpx.Response, ids: list[str]) -> tuple[int, str, str]:
@@ -348,14 +359,14 @@ def test_another_keys_ids_answer_exactly_as_unknown_ids_on_every_route(
         missing = set(re.findall(r"\{([^}:]+)", template)) & ID_PARAMETERS - set(owned)
         if missing:
             pytest.fail(f"{template}: no owned {missing} to try; extend the `owned` fixture")
-        options = {key: value for key, value in extra.items() if key != "path"}
-        theirs = bob.request(method, fill(template, owned, extra), **options)
-        nobody = bob.request(method, fill(template, unknown, extra), **options)
+        options = {key: value for key, value in extra.items() if key not in ("path", "params")}
+        theirs = bob.request(method, fill(template, owned, extra), params=filled_params(extra, owned), **options)
+        nobody = bob.request(method, fill(template, unknown, extra), params=filled_params(extra, unknown), **options)
         assert theirs.status_code == 404, (method, template, theirs.text)
         same_as_unknown = normalised(theirs, list(owned.values())) == normalised(nobody, list(unknown.values()))
         assert same_as_unknown, (method, template, theirs.text, nobody.text)
         for who in (admin, alice):
-            response = who.request(method, fill(template, owned, extra), **options)
+            response = who.request(method, fill(template, owned, extra), params=filled_params(extra, owned), **options)
             assert response.status_code < 400, (method, template, response.text)
 
 
