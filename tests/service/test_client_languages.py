@@ -137,7 +137,7 @@ def test_the_script_reads_the_solution_into_native_arrays(
 
 
 @pytest.mark.parametrize("language", LANGUAGES)
-def test_without_a_key_the_script_stops_with_fixqs_explanation(language: str, server: LiveServer, tmp_path: Path) -> None:
+def test_without_a_key_the_script_stops_with_the_reason(language: str, server: LiveServer, tmp_path: Path) -> None:
     done = run(language, server, tmp_path)
     assert done.returncode != 0
     said = done.stdout + done.stderr
