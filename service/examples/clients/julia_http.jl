@@ -10,8 +10,8 @@
 #   FIXQ_URL=http://127.0.0.1:8000 FIXQ_KEY=... julia julia_http.jl
 #
 # ] add HTTP JSON3 OrderedCollections   if needed (DelimitedFiles is a standard
-# library). FIXQ_KEY may be unset when auth is off; FIXQ_EXAMPLE picks another
-# bundled example (default household_saving).
+# library). FIXQ_KEY may be unset when auth is off. It starts from
+# GET /v1/examples/household_saving; FIXQ_EXAMPLE picks another bundled example.
 #
 # Key order: copy() of a JSON3 object gives a Dict, which forgets the order
 # of the keys. fixq solves the same model whatever the order, but the order
