@@ -57,8 +57,9 @@ fixq_get <- function(path) {
 # The result's nested lists are row-major (the last axis varies fastest); R
 # fills an array first axis fastest. So: read the leaves in order (a null
 # becomes NA), fill an array of the reversed dimensions, and reverse its axes.
-# This works for any number of axes; do not let fromJSON simplify here, since
-# it drops axes of length 1.
+# This works for any number of axes. (fromJSON with simplifyVector = TRUE
+# builds the same arrays from rectangular lists; doing it by hand shows the
+# reshape the CSV columns need too.)
 leaves <- function(x) {
   if (!is.list(x)) return(x)
   unlist(lapply(x, function(e) if (is.null(e)) NA else leaves(e)), use.names = FALSE)
