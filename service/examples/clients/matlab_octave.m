@@ -33,8 +33,9 @@ function out = matlab_octave(outdir)
 %   fixq also takes a bare string where a list of strings is expected.
 %   jsonencode writes [] for an empty value: leave an optional field out
 %   (rmfield) instead of sending it empty.
-% * Octave 7's jsonencode writes at most 15 decimal places (1e-17 becomes 0);
-%   fine for a model's parameters and tolerances, but know it.
+% * Octave 7's jsonencode sends a number smaller than about 1e-15 in size as
+%   0 (1.5e-16 becomes 0, 1e-12 stays); fine for a model's parameters and
+%   tolerances, but know it.
 % * Struct fields keep their order, but key order never changes what fixq
 %   solves; the value array's axis order is in the result's axis_order (older
 %   servers: the order of the fields of axes). containers.Map sorts its keys.
