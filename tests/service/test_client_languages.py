@@ -5,15 +5,21 @@ Each script writes its arrays in its language's own (column-major) order with th
 axis names; the test reads them back with Fortran order and compares them with the JSON result
 it fetches itself, so a transposed or scrambled array fails. The examples cover two axes of
 different lengths (household_saving), three with a period axis (glassblower_life_cycle) and one
-axis of text labels (machine_replacement). A test skips when its language is not installed.
+axis of text labels (machine_replacement). One more run goes through a pass-through that lists
+a result's axes out of order and states the order in ``axis_order``, which the scripts must
+follow. A test skips when its language is not installed.
 """
 
 from __future__ import annotations
 
+import json
 import os
+import re
 import shutil
 import subprocess
+import threading
 from collections.abc import Iterator
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
 
@@ -81,6 +87,51 @@ def run(language: str, server: LiveServer, outdir: Path, **env: str) -> subproce
                           timeout=RUN_TIMEOUT_S)  # fmt: skip
 
 
+class ReorderingProxy:
+    """A pass-through to the live server that lists a result's ``axes`` in reverse key order and
+    states their array order in ``axis_order``: what a result looks like when the document fixed
+    the axis order apart from its key order. A script that sizes its arrays by the keys of
+    ``axes`` then gets them wrong."""
+
+    def __init__(self, upstream: str) -> None:
+        def relay(handler: BaseHTTPRequestHandler) -> None:
+            size = int(handler.headers.get("Content-Length") or 0)
+            body = handler.rfile.read(size) if size else None
+            headers = {k: v for k, v in handler.headers.items() if k.lower() in ("authorization", "content-type")}
+            reply = httpx.request(handler.command, upstream + handler.path, content=body, headers=headers, timeout=30)
+            content = reply.content
+            if re.fullmatch(r"/v1/jobs/[0-9a-f]+/result", handler.path) and reply.status_code == 200:
+                result = reply.json()
+                order = result.get("axis_order") or list(result["axes"])
+                result["axes"] = dict(reversed(list(result["axes"].items())))
+                result["axis_order"] = order
+                content = json.dumps(result).encode()
+            handler.send_response(reply.status_code)
+            handler.send_header("Content-Type", reply.headers.get("content-type", "application/json"))
+            handler.send_header("Content-Length", str(len(content)))
+            handler.end_headers()
+            handler.wfile.write(content)
+
+        class Handler(BaseHTTPRequestHandler):
+            do_GET = do_POST = do_DELETE = relay
+
+            def log_message(self, *args: Any) -> None:
+                pass
+
+        self.server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
+        self.url = f"http://127.0.0.1:{self.server.server_address[1]}"
+        self.thread = threading.Thread(target=self.server.serve_forever, daemon=True)
+
+    def __enter__(self) -> ReorderingProxy:
+        self.thread.start()
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.server.shutdown()
+        self.server.server_close()
+        self.thread.join()
+
+
 def read_native(path: Path) -> tuple[list[str], np.ndarray]:
     """An array a script wrote: its sizes, its axis names, then its cells in column-major order."""
     sizes, names, *cells = path.read_text().splitlines()
@@ -143,3 +194,18 @@ def test_without_a_key_the_script_stops_with_the_reason(language: str, server: L
     said = done.stdout + done.stderr
     assert "401" in said and "this API needs a key" in said
     assert not (tmp_path / "value.txt").exists()
+
+
+@pytest.mark.parametrize("language", LANGUAGES)
+def test_the_script_follows_axis_order_over_the_order_of_the_keys(
+    language: str, server: LiveServer, key: str, tmp_path: Path
+) -> None:
+    with ReorderingProxy(server.url) as proxy:
+        done = run(language, server, tmp_path, FIXQ_URL=proxy.url, FIXQ_KEY=key, FIXQ_EXAMPLE="glassblower_life_cycle")
+    assert done.returncode == 0, f"{language} failed:\n{done.stdout}\n{done.stderr}\n{server.logs()}"
+    job_id = (tmp_path / "job_id.txt").read_text().strip()
+    with httpx.Client(base_url=server.url, headers={"Authorization": f"Bearer {key}"}, timeout=30) as client:
+        result = client.get(f"/v1/jobs/{job_id}/result").json()
+    names, value = read_native(tmp_path / "value.txt")
+    assert names == ["period", "savings", "orders"] and value.shape == (60, 150, 3)
+    assert_same(value, result["value"])
