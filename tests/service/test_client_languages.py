@@ -4,8 +4,9 @@ worker on the private Redis, auth on, and a key made as the other tests make key
 Each script writes its arrays in its language's own (column-major) order with their sizes and
 axis names; the test reads them back with Fortran order and compares them with the JSON result
 it fetches itself, so a transposed or scrambled array fails. The examples cover two axes of
-different lengths (household_saving), three with a period axis (glassblower_life_cycle) and one
-axis of text labels (machine_replacement). One more run goes through a pass-through that lists
+different lengths (household_saving), three with a period axis (glassblower_life_cycle), one
+axis of text labels (machine_replacement), and taste shocks, whose CSV table has a probability
+column per alternative (courier_van_replacement). One more run goes through a pass-through that lists
 a result's axes out of order and states the order in ``axis_order``, which the scripts must
 follow. A test skips when its language is not installed.
 """
@@ -35,7 +36,7 @@ from tests.service._live_server import LiveServer
 
 CLIENTS = Path(__file__).resolve().parents[2] / "service" / "examples" / "clients"
 KEY_NAME = "client-scripts"
-EXAMPLES = ["household_saving", "glassblower_life_cycle", "machine_replacement"]
+EXAMPLES = ["household_saving", "glassblower_life_cycle", "machine_replacement", "courier_van_replacement"]
 RUN_TIMEOUT_S = 90
 
 

@@ -180,10 +180,13 @@ end
 function columns = csv_columns(text)
 % A CSV table (header first) as a struct of columns: numbers where a column
 % is all numbers, else cells of strings. Works in MATLAB and Octave alike
-% (readtable is MATLAB only).
+% (readtable is MATLAB only). A header that is no MATLAB name, such as a
+% taste-shock model's P(action=run), becomes one (P_action_run_), as
+% jsondecode does with keys.
 lines = regexp(text, '\r?\n', 'split');
 lines = lines(~cellfun(@isempty, lines));
-header = strsplit(lines{1}, ',');
+header = textscan(lines{1}, '%q', 'Delimiter', ',');
+header = matlab.lang.makeValidName(header{1}');
 cells = textscan(strjoin(lines(2:end), sprintf('\n')), repmat('%q', 1, numel(header)), 'Delimiter', ',');
 columns = struct();
 for k = 1:numel(header)
@@ -244,17 +247,20 @@ end
 
 
 function [status, text] = call_with_matlab(api, method, path, body)
-% MATLAB: matlab.net.http, with the body as raw bytes and the answer unconverted.
-fields = matlab.net.http.HeaderField('Accept', 'application/json, application/problem+json, text/csv');
+% MATLAB: matlab.net.http, with the JSON text as the raw payload and the
+% answer left unconverted (its text, whatever the status).
+fields = {};
 if ~isempty(api.key)
-    fields(end + 1) = matlab.net.http.field.AuthorizationField('Authorization', ['Bearer ' api.key]);
+    fields{end + 1} = matlab.net.http.field.AuthorizationField('Authorization', ['Bearer ' api.key]);
 end
-request = matlab.net.http.RequestMessage(method, fields);
+payload = [];
 if ~isempty(body)
-    request.Header(end + 1) = matlab.net.http.field.ContentTypeField('application/json');
-    request.Body = matlab.net.http.MessageBody();
-    request.Body.Payload = unicode2native(body, 'UTF-8');
+    fields{end + 1} = matlab.net.http.field.ContentTypeField('application/json');
+    payload = matlab.net.http.MessageBody();
+    payload.Payload = unicode2native(body, 'UTF-8');
 end
+header = [fields{:}];                                  % [] when there are none
+request = matlab.net.http.RequestMessage(method, header, payload);
 options = matlab.net.http.HTTPOptions('ConvertResponse', false, 'ConnectTimeout', 30);
 response = send(request, matlab.net.URI([api.url path]), options);
 status = double(response.StatusCode);
