@@ -181,6 +181,15 @@ def test_the_script_reads_the_solution_into_native_arrays(
         # income sits at the borrowing limit, and more assets today never mean fewer tomorrow.
         assert shape == (160, 5) and policy[0, 0] == -1.0 and (np.diff(policy, axis=0) >= 0).all()
 
+    # Progress: R follows the live log, so it shows every entry of the result's log; Octave polls
+    # the job record, so it shows some of them (none when the job ends before the first poll).
+    shown = [int(n) for n in re.findall(r"^  iteration (\d+), error bound", output, re.MULTILINE)]
+    logged = [entry["iteration"] for entry in result["log"]]
+    if language == "R":
+        assert shown == logged
+    else:
+        assert shown == sorted(set(shown)) and set(shown) <= set(logged)
+
     assert "CSV and JSON values agree" in output
     assert "the bad document was refused with 422" in output
     assert "  solver.tolerance: must be greater than" in output

@@ -87,17 +87,39 @@ job <- fixq_request("/v1/jobs") |>
   resp_body_json()
 cat("submitted job", job$id, "\n")
 
-# 3. Follow its progress until it is no longer queued or running. (The live
-#    log, GET /v1/jobs/{id}/log with Accept: text/event-stream, sends every
-#    iteration as it happens; polling the job record is simpler.)
-seen <- 0
-while (job$state %in% c("queued", "running")) {
-  Sys.sleep(0.25)
-  job <- fixq_get(paste0("/v1/jobs/", job$id))
-  if (!is.null(job$progress) && job$progress$iteration > seen) {
-    seen <- job$progress$iteration
-    cat(sprintf("  iteration %d, error bound %.3g\n", seen, job$progress$error_bound))
+# 3. Follow its progress live: the job's log as server-sent events, one
+#    "entry" event per iteration, then "end" when the job has finished.
+#    (Polling GET /v1/jobs/{id}, whose progress holds the latest iteration,
+#    works too; matlab_octave.m does that.) httr2 1.0 renamed req_stream.
+stream <- if (exists("req_perform_stream", asNamespace("httr2"))) httr2::req_perform_stream else httr2::req_stream
+pending <- ""
+follow <- function(bytes) {
+  pending <<- paste0(pending, rawToChar(bytes))
+  events <- strsplit(pending, "\n\n")[[1]]
+  complete <- endsWith(pending, "\n\n")
+  pending <<- if (complete) "" else events[length(events)]
+  if (!complete) events <- events[-length(events)]
+  for (event in events) {
+    lines <- strsplit(event, "\n")[[1]]
+    kind <- sub("^event: ", "", grep("^event: ", lines, value = TRUE))
+    data <- sub("^data: ", "", grep("^data: ", lines, value = TRUE))
+    if (length(data) == 0) next  # a comment line that keeps the connection open
+    data <- fromJSON(data)
+    if (identical(kind, "entry")) {
+      cat(sprintf("  iteration %d, error bound %.3g\n", data$iteration, data$error_bound))
+    } else if (identical(kind, "end")) {
+      return(FALSE)  # stop reading: the job has finished
+    }
   }
+  TRUE
+}
+invisible(fixq_request(paste0("/v1/jobs/", job$id, "/log")) |>
+  req_headers(Accept = "text/event-stream") |>
+  stream(follow))
+job <- fixq_get(paste0("/v1/jobs/", job$id))
+while (job$state %in% c("queued", "running")) {  # only if the stream was cut short
+  Sys.sleep(0.5)
+  job <- fixq_get(paste0("/v1/jobs/", job$id))
 }
 if (job$state != "done") stop("job ", job$id, " ended ", job$state)
 
