@@ -18,8 +18,9 @@ function out = matlab_octave(outdir)
 % fastest), with their sizes. OUT holds the job, the result, the arrays and
 % the CSV columns.
 %
-% Why not webwrite: Octave's webwrite form-encodes its data (the API answers
-% 400 "the request body is empty"), and neither MATLAB's webwrite nor
+% Why not webwrite: Octave 7's webwrite form-encodes its data and sends a JSON
+% text as an empty form body, whatever MediaType says (the API answers 400
+% "the request body is empty"), and neither MATLAB's webwrite nor
 % Octave's hands back the body of a 422, where fixq lists the faults. So HTTP
 % goes through one function, fixq_call: matlab.net.http in MATLAB, and curl
 % (7.55 or later, for -H @file; on the PATH on Linux, macOS and Windows 10+)
