@@ -24,7 +24,8 @@ function out = matlab_octave(outdir)
 % Octave's hands back the body of a 422, where fixq lists the faults. So HTTP
 % goes through one function, fixq_call: matlab.net.http in MATLAB, and curl
 % (7.55 or later, for -H @file; on the PATH on Linux, macOS and Windows 10+)
-% in Octave, which has no built-in way to send a JSON body.
+% in Octave, which has no built-in way to send a JSON body (short of Java,
+% which a plain Octave install lacks).
 %
 % Shapes and jsondecode / jsonencode:
 % * jsondecode turns [x] into x, null into [] (NaN inside a numeric array) and
