@@ -16,8 +16,8 @@
 # Sending documents from R (jsonlite, which httr2's req_body_json calls):
 # * auto_unbox = TRUE writes a length-1 vector as a bare value: 0.5, not [0.5].
 #   Where the document needs a list of one element (a per-period param of a
-#   one-period horizon, a one-point grid), wrap it: I(0.5) or list(0.5). fixq
-#   also takes a bare string where a list of strings is expected (feasible, tags).
+#   one-period horizon, say), wrap it: I(0.5) or list(0.5). fixq also takes a
+#   bare string where a list of strings is expected (feasible, tags).
 # * NULL is sent as null (httr2's default null = "null"); an empty list() is
 #   sent as [] and a named empty list, setNames(list(), character(0)), as {}.
 # * NA is sent as the string "NA" unless you pass na = "null" (done below); a
@@ -26,6 +26,9 @@
 #   plenty for a model's parameters.
 # * Key order never changes what fixq solves; the value array's axis order is
 #   in the result's axis_order (older servers: the order of the keys of axes).
+#   Build documents from named lists, which keep their order; an environment
+#   (or a list sorted by name) loses the order of states and shocks, and with
+#   it the axis order you expect.
 
 library(httr2)
 library(jsonlite)
