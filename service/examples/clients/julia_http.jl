@@ -25,8 +25,8 @@ const FIXQ_URL = get(ENV, "FIXQ_URL", "http://127.0.0.1:8000")
 const FIXQ_KEY = get(ENV, "FIXQ_KEY", "")
 const EXAMPLE = get(ENV, "FIXQ_EXAMPLE", "household_saving")
 
-headers = ["Accept" => "application/json, application/problem+json, text/csv",
-           "Content-Type" => "application/json"]
+# (Accept must not list text/csv: the result would then come as the CSV table.)
+headers = ["Accept" => "application/json", "Content-Type" => "application/json"]
 isempty(FIXQ_KEY) || push!(headers, "Authorization" => "Bearer $FIXQ_KEY")
 
 # One request: its status and its body as text (no exception on 4xx/5xx).
@@ -56,7 +56,7 @@ function row_major_array(flat::AbstractVector, dims)
     length(flat) == prod(dims) || error("expected $(prod(dims)) values, got $(length(flat))")
     values = all(x -> x isa Real, flat) ? Float64.(flat) : String.(flat)
     a = reshape(values, Tuple(reverse(dims)))
-    return length(dims) == 1 ? a : permutedims(a, length(dims):-1:1)
+    return length(dims) == 1 ? a : permutedims(a, Tuple(length(dims):-1:1))
 end
 nested_array(nested, dims) = row_major_array(leaves!(Any[], nested), dims)
 
