@@ -9,7 +9,7 @@
 *
 * curl must be on the PATH, version 7.55.0 (2017) or later, for -H @file,
 * which keeps the key off the command line where other users of the machine
-* could read it; `curl --version` shows yours. Windows 10 (since version 1803)
+* could read it; curl --version shows yours. Windows 10 (since version 1803)
 * and 11 ship it as curl.exe; macOS and Linux have it. Stata's shell does not
 * see curl's exit status, so the script reads each answer instead: a refused
 * request leaves fixq's explanation (problem details, with the path of each
