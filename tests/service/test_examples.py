@@ -530,7 +530,7 @@ def test_the_curl_lifecycle_example_runs_against_a_live_server(live_server: Live
     assert canceled["state"] in ("canceled", "running", "done")
 
 
-@pytest.mark.parametrize("script", ["r_httr2.R", "julia_http.jl", "matlab_webwrite.m", "stata_curl.do"])
+@pytest.mark.parametrize("script", ["julia_http.jl", "stata_curl.do"])
 def test_untested_client_examples_say_so(script: str) -> None:
     text = (CLIENTS / script).read_text()
     assert "NOT TESTED HERE" in text

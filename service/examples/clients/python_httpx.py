@@ -58,10 +58,15 @@ def main() -> None:
             sys.exit(f"job {job['id']} ended {job['state']}: {job.get('error')}")
         result = checked(client.get(f"/v1/jobs/{job['id']}/result"))
 
-    # axes come in array-axis order (state variables, then shocks): the policy is (assets, income).
+    # The arrays' axes in order: axis_order when the server states it, else the keys of axes
+    # (state variables, then shocks). Nested lists are row-major, as numpy is: no reshape needed.
+    # moveaxis puts them as this script wants them, (assets, income), whatever that order.
+    axis_names = result.get("axis_order") or list(result["axes"])
+    policy = np.asarray(result["policy"]["assets_next"])
+    assert policy.shape == tuple(len(result["axes"][name]) for name in axis_names)
+    saving_rule = np.moveaxis(policy, [axis_names.index("assets"), axis_names.index("income")], [0, 1])
     assets = np.asarray(result["axes"]["assets"])
     income = np.asarray(result["axes"]["income"])
-    saving_rule = np.asarray(result["policy"]["assets_next"])
     print(f"{result['status']} after {result['iterations']} iterations, error bound {result['error_bound']:.2e}")
     print(f"policy array shape {saving_rule.shape} (assets x income)")
 

@@ -1,24 +1,51 @@
-# Solve a fixq example from R with httr2 + jsonlite, and read the policy into
-# a matrix and a long data frame.
+# Solve a fixq example from R with httr2 + jsonlite: submit it, follow its
+# progress, read the value function and the policy into R arrays (right shape,
+# right axis order), read the CSV table, and see how a bad document is refused.
 #
-# NOT TESTED HERE: R is not installed on the machine that runs fixq's tests.
-# The same steps are tested in Python (python_httpx.py) and with curl.
+# Tested: the fixq test suite runs this exact script against a live server
+# (R 4.2, httr2 0.2, jsonlite 1.8), with an API key.
 #
-#   Sys.setenv(FIXQ_URL = "http://127.0.0.1:8000", FIXQ_KEY = "...")
-#   source("r_httr2.R")
+#   FIXQ_URL=http://127.0.0.1:8000 FIXQ_KEY=... Rscript r_httr2.R [OUTDIR]
+#   or, in a session: Sys.setenv(FIXQ_URL = ..., FIXQ_KEY = ...); source("r_httr2.R")
 #
 # install.packages(c("httr2", "jsonlite")) if needed. FIXQ_KEY may be unset
-# when the server runs with auth off.
+# when the server runs with auth off. FIXQ_EXAMPLE picks another bundled
+# example (default household_saving). With OUTDIR, the arrays are also
+# written there as text in R's own (column-major) order, with their dimensions.
+#
+# Sending documents from R (jsonlite, which httr2's req_body_json calls):
+# * auto_unbox = TRUE writes a length-1 vector as a bare value: 0.5, not [0.5].
+#   Where the document needs a list of one element (a per-period param of a
+#   one-period horizon, say), wrap it: I(0.5) or list(0.5). fixq also takes a
+#   bare string where a list of strings is expected (feasible, tags).
+# * NULL is sent as null (httr2's default null = "null"); an empty list() is
+#   sent as [] and a named empty list, setNames(list(), character(0)), as {}.
+# * NA is sent as the string "NA" unless you pass na = "null" (done below); a
+#   fixq document has no missing values, so treat an NA as a bug upstream.
+# * jsonlite writes at most 15 significant digits (digits = NA); that is
+#   plenty for a model's parameters.
+# * Key order never changes what fixq solves; the value array's axis order is
+#   in the result's axis_order (older servers: the order of the keys of axes).
+#   Build documents from named lists, which keep their order; an environment
+#   (or a list sorted by name) loses the order of states and shocks, and with
+#   it the axis order you expect.
 
 library(httr2)
 library(jsonlite)
 
 fixq_url <- Sys.getenv("FIXQ_URL", "http://127.0.0.1:8000")
 fixq_key <- Sys.getenv("FIXQ_KEY")
+example <- Sys.getenv("FIXQ_EXAMPLE", "household_saving")
+outdir <- commandArgs(trailingOnly = TRUE)[1]
 
-fixq_request <- function(path) {
+fixq_base <- function(path) {
   req <- request(paste0(fixq_url, path))
   if (nzchar(fixq_key)) req <- req_auth_bearer_token(req, fixq_key)
+  req
+}
+
+fixq_request <- function(path) {
+  req <- fixq_base(path)
   # On 4xx/5xx, stop with fixq's own explanation (RFC 9457 problem details).
   req_error(req, body = function(resp) {
     problem <- resp_body_json(resp)
@@ -26,53 +53,128 @@ fixq_request <- function(path) {
   })
 }
 
-# 1. Start from the bundled household-saving example (an invented scenario).
-#    simplifyVector = FALSE keeps the document's lists as lists, so it goes
-#    back to the server exactly as it came.
-document <- fixq_request("/v1/examples/household_saving") |>
-  req_perform() |>
-  resp_body_json(simplifyVector = FALSE)
-document$label <- "household saving at a 2% interest rate (invented scenario)"
-document$model$params$r <- 0.02
+fixq_get <- function(path) {
+  fixq_request(path) |> req_perform() |> resp_body_json(simplifyVector = FALSE)
+}
 
-# 2. Submit (digits = NA keeps every digit of the numbers).
+# The result's nested lists are row-major (the last axis varies fastest); R
+# fills an array first axis fastest. So: read the leaves in order (a null
+# becomes NA), fill an array of the reversed dimensions, and reverse its axes.
+# This works for any number of axes. (fromJSON with simplifyVector = TRUE
+# builds the same arrays from rectangular lists; doing it by hand shows the
+# reshape the CSV columns need too.)
+leaves <- function(x) {
+  if (!is.list(x)) return(x)
+  unlist(lapply(x, function(e) if (is.null(e)) NA else leaves(e)), use.names = FALSE)
+}
+row_major_array <- function(flat, axes) {
+  dims <- lengths(axes)
+  stopifnot(length(flat) == prod(dims))
+  a <- aperm(array(flat, dim = rev(dims)), rev(seq_along(dims)))
+  dimnames(a) <- lapply(axes, as.character)
+  a
+}
+
+# 1. Start from a bundled example (an invented scenario). simplifyVector =
+#    FALSE keeps the document's lists as lists, so it goes back as it came.
+document <- fixq_get(paste0("/v1/examples/", example))
+if (example == "household_saving") {
+  document$label <- "household saving at a 2% interest rate (invented scenario)"
+  document$model$params$r <- 0.02
+}
+
+# 2. Submit (na = "null": see the notes at the top).
 job <- fixq_request("/v1/jobs") |>
-  req_body_json(document, auto_unbox = TRUE, digits = NA) |>
+  req_body_json(document, auto_unbox = TRUE, digits = NA, na = "null") |>
   req_perform() |>
   resp_body_json()
-message("submitted job ", job$id)
+cat("submitted job", job$id, "\n")
 
-# 3. Wait until the job is no longer queued or running.
-while (job$state %in% c("queued", "running")) {
+# 3. Follow its progress live: the job's log as server-sent events, one
+#    "entry" event per iteration, then "end" when the job has finished.
+#    (Polling GET /v1/jobs/{id}, whose progress holds the latest iteration,
+#    works too; matlab_octave.m does that.) httr2 1.0 renamed req_stream.
+stream <- if (exists("req_perform_stream", asNamespace("httr2"))) httr2::req_perform_stream else httr2::req_stream
+pending <- ""
+follow <- function(bytes) {
+  pending <<- paste0(pending, rawToChar(bytes))
+  events <- strsplit(pending, "\n\n")[[1]]
+  complete <- endsWith(pending, "\n\n")
+  pending <<- if (complete) "" else events[length(events)]
+  if (!complete) events <- events[-length(events)]
+  for (event in events) {
+    lines <- strsplit(event, "\n")[[1]]
+    kind <- sub("^event: ", "", grep("^event: ", lines, value = TRUE))
+    data <- sub("^data: ", "", grep("^data: ", lines, value = TRUE))
+    if (length(data) == 0) next  # a comment line that keeps the connection open
+    data <- fromJSON(data)
+    if (identical(kind, "entry")) {
+      cat(sprintf("  iteration %d, error bound %.3g\n", data$iteration, data$error_bound))
+    } else if (identical(kind, "end")) {
+      return(FALSE)  # stop reading: the job has finished
+    }
+  }
+  TRUE
+}
+invisible(fixq_request(paste0("/v1/jobs/", job$id, "/log")) |>
+  req_headers(Accept = "text/event-stream") |>
+  stream(follow))
+job <- fixq_get(paste0("/v1/jobs/", job$id))
+while (job$state %in% c("queued", "running")) {  # only if the stream was cut short
   Sys.sleep(0.5)
-  job <- fixq_request(paste0("/v1/jobs/", job$id)) |> req_perform() |> resp_body_json()
+  job <- fixq_get(paste0("/v1/jobs/", job$id))
 }
 if (job$state != "done") stop("job ", job$id, " ended ", job$state)
 
-# 4. The result. With simplifyVector = TRUE the nested policy list becomes a
-#    matrix: rows follow the first axis (assets), columns the second (income).
-result <- fixq_request(paste0("/v1/jobs/", job$id, "/result")) |>
-  req_perform() |>
-  resp_body_json(simplifyVector = TRUE)
-assets <- result$axes$assets
-income <- result$axes$income
-saving_rule <- result$policy$assets_next
-dimnames(saving_rule) <- list(assets = format(assets, digits = 4), income = format(income, digits = 4))
+# 4. The result. Axes in array order: axis_order when the server states it,
+#    else the order of the keys of axes (jsonlite keeps key order).
+result <- fixq_get(paste0("/v1/jobs/", job$id, "/result"))
+axis_names <- if (is.null(result$axis_order)) names(result$axes) else unlist(result$axis_order)
+axes <- lapply(result$axes[axis_names], unlist)
+value <- row_major_array(leaves(result$value), axes)
+policy <- lapply(result$policy, function(p) row_major_array(leaves(p), axes))
 cat(result$status, "after", result$iterations, "iterations, error bound", result$error_bound, "\n")
-print(saving_rule[round(seq(1, length(assets), length.out = 8)), ])
+cat("value array", paste(dim(value), collapse = " x "), "(", paste(axis_names, collapse = " x "), ")\n")
+# e.g. for household_saving: value["-1", "1"] is the value at assets = -1, income = 1.
+first <- names(policy)[1]
+cat("policy", first, "at the first point of every axis:", policy[[first]][1], "\n")
+cat("policy", first, "at the last point of every axis:", policy[[first]][length(policy[[first]])], "\n")
 
-# A long data frame: expand.grid varies its first argument fastest, as
-# as.vector() reads a matrix column by column.
-policy_long <- data.frame(
-  expand.grid(assets = assets, income = income),
-  assets_next = as.vector(result$policy$assets_next)
-)
-head(policy_long)
-
-# The same long table, straight from the server as CSV.
-policy_csv <- fixq_request(paste0("/v1/jobs/", job$id, "/result")) |>
+# 5. The same solution as one long table (a row per grid point, the last axis
+#    varying fastest: expand.grid with its arguments reversed). A column goes
+#    back into an array with the same reshape as the nested lists above.
+table <- fixq_request(paste0("/v1/jobs/", job$id, "/result")) |>
   req_url_query(format = "csv") |>
   req_perform() |>
   resp_body_string() |>
-  (\(text) read.csv(text = text))()
-head(policy_csv)
+  (\(text) read.csv(text = text, check.names = FALSE))()
+print(head(table))
+from_csv <- row_major_array(table$value, axes)
+cat(sprintf("CSV and JSON values agree: largest difference %.3g\n", max(abs(from_csv - value))))
+stopifnot(isTRUE(all.equal(from_csv, value, tolerance = 1e-12)))
+
+# 6. A bad document is refused with 422 and the path of each fault. Here the
+#    error is handled instead of stopping: is_error = FALSE keeps the response.
+bad <- document
+bad$discount <- 1.5
+bad$solver$tolerance <- -1
+refused <- fixq_base("/v1/jobs") |>
+  req_body_json(bad, auto_unbox = TRUE, digits = NA, na = "null") |>
+  req_error(is_error = function(resp) FALSE) |>
+  req_perform()
+problem <- resp_body_json(refused)
+cat("the bad document was refused with", resp_status(refused), "\n")
+for (fault in problem$errors) cat("  ", fault$path, ": ", substr(fault$message, 1, 60), "...\n", sep = "")
+
+# With OUTDIR: the arrays as text, in R's own order (first axis fastest).
+if (!is.na(outdir)) {
+  dir.create(outdir, showWarnings = FALSE, recursive = TRUE)
+  save_array <- function(a, name) {
+    cells <- if (is.numeric(a)) sprintf("%.17g", as.vector(a)) else as.vector(a)
+    writeLines(c(paste(dim(a), collapse = " "), paste(names(dimnames(a)), collapse = " "), cells),
+               file.path(outdir, paste0(name, ".txt")))
+  }
+  save_array(value, "value")
+  for (name in names(policy)) save_array(policy[[name]], paste0("policy.", name))
+  writeLines(job$id, file.path(outdir, "job_id.txt"))
+}

@@ -5,8 +5,21 @@
 * The same curl calls are tested in curl_lifecycle.sh.
 *
 *   FIXQ_URL and FIXQ_KEY come from the environment (FIXQ_KEY may be unset
-*   when the server runs with auth off); curl must be on the PATH (it ships
-*   with Windows 10 and later, macOS and Linux). Then:  do stata_curl.do
+*   when the server runs with auth off). Then:  do stata_curl.do
+*
+* curl must be on the PATH, version 7.55.0 (2017) or later, for -H @file,
+* which keeps the key off the command line where other users of the machine
+* could read it; curl --version shows yours. Windows 10 (since version 1803)
+* and 11 ship it as curl.exe; macOS and Linux have it. Stata's shell does not
+* see curl's exit status, so the script reads each answer instead: a refused
+* request leaves fixq's explanation (problem details, with the path of each
+* fault in a bad document) in the file, and the script shows it.
+*
+* Numbers: Stata reads a CSV's decimals as float (about 7 digits) unless told
+* otherwise; the asdouble option of import delimited keeps all 16-17 digits of
+* fixq's values. The table has one row per grid point, the last axis varying
+* fastest, so a long dataset needs no reshaping at all; reshape wide as below
+* when you want one column per value of the last axis.
 
 version 16
 clear all
@@ -14,11 +27,15 @@ clear all
 local url : env FIXQ_URL
 if "`url'" == "" local url "http://127.0.0.1:8000"
 local key : env FIXQ_KEY
+tempfile document jobfile headers
 local auth ""
-if "`key'" != "" local auth `"-H "Authorization: Bearer `key'""'
-
-tempfile document jobfile
-local curl `"curl -sS --fail-with-body `auth'"'
+if "`key'" != "" {
+    file open fh using "`headers'", write text replace
+    file write fh "Authorization: Bearer `key'" _n
+    file close fh
+    local auth `"-H "@`headers'""'
+}
+local curl `"curl -sS `auth'"'
 
 * 1. The bundled household-saving example (an invented scenario), as is.
 shell `curl' -o "`document'" "`url'/v1/examples/household_saving"
@@ -29,7 +46,8 @@ file open fh using "`jobfile'", read text
 file read fh line
 file close fh
 if !regexm(`"`macval(line)'"', `""id" *: *"([0-9a-f]+)""') {
-    display as error "fixq did not accept the job: `macval(line)'"
+    * Problem details: "detail", then "errors", a list of {"path", "message"}.
+    display as error `"fixq did not accept the job: `macval(line)'"'
     exit 498
 }
 local job = regexs(1)
@@ -54,7 +72,7 @@ if "`state'" != "done" {
 * 4. The long table: one row per grid point with assets, income, value, assets_next.
 tempfile table
 shell `curl' -o "`table'" "`url'/v1/jobs/`job'/result?format=csv"
-import delimited using "`table'", clear
+import delimited using "`table'", clear asdouble varnames(1)
 describe
 list in 1/10
 
