@@ -31,9 +31,13 @@ SIMULATION = {"periods": 12, "paths": 6, "seed": 3}
 
 ECONOMY: dict[str, Any] = {
     "kind": "grid",
-    "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
-               "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-               "w": "(1 - alpha) * capital_demand ** alpha"},
+    "params": {
+        "r": 0.02,
+        "alpha": 0.36,
+        "delta": 0.08,
+        "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
+        "w": "(1 - alpha) * capital_demand ** alpha",
+    },
     "states": {"a": {"min": 0.0, "max": 30.0, "points": 30, "spacing": "power", "exponent": 2.0}},
     "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
     "choices": {"save": {"next_of": "a", "continuous": True}},
@@ -45,8 +49,13 @@ ECONOMY: dict[str, Any] = {
 
 
 def _economy(**top_level: Any) -> dict[str, Any]:
-    return {"version": 1, "discount": 0.95, "model": copy.deepcopy(ECONOMY),
-            "solver": {"method": "howard", "tolerance": 1e-8}, **top_level}
+    return {
+        "version": 1,
+        "discount": 0.95,
+        "model": copy.deepcopy(ECONOMY),
+        "solver": {"method": "howard", "tolerance": 1e-8},
+        **top_level,
+    }
 
 
 def _glassblower(points: int, *, continuous: bool = False) -> dict[str, Any]:
@@ -57,8 +66,11 @@ def _glassblower(points: int, *, continuous: bool = False) -> dict[str, Any]:
     del document["model"]["define"]["left_behind"]
     if continuous:
         document["model"]["choices"]["savings_next"]["continuous"] = True
-    document["report"] = {"cohort": document["report"]["cohort"], "simulation": dict(SIMULATION, periods=60),
-                          "euler_errors": True}
+    document["report"] = {
+        "cohort": document["report"]["cohort"],
+        "simulation": dict(SIMULATION, periods=60),
+        "euler_errors": True,
+    }
     return document
 
 
@@ -69,8 +81,9 @@ def _tabular_taste() -> dict[str, Any]:
 
 
 def _tabular_horizon() -> dict[str, Any]:
-    document = machine_shop(report={"cohort": {"start": "new"}, "simulation": dict(SIMULATION, periods=5),
-                                    "euler_errors": True})
+    document = machine_shop(
+        report={"cohort": {"start": "new"}, "simulation": dict(SIMULATION, periods=5), "euler_errors": True}
+    )
     document["model"]["horizon"] = {"periods": 5, "terminal_value": 0.0}
     return document
 
@@ -83,8 +96,12 @@ def _grid_taste() -> dict[str, Any]:
 
 def _static_choice() -> dict[str, Any]:
     """Invented: growth with an hours choice that only this period's reward sees (maximised within the period)."""
-    model = log_growth(points=12, choices={"k_next": {"next_of": "k"}, "hours": {"values": [0.5, 1.0]}},
-                       define={"c": "z * k**alpha * hours - k_next"}, reward="log(c) - 0.3 * hours")
+    model = log_growth(
+        points=12,
+        choices={"k_next": {"next_of": "k"}, "hours": {"values": [0.5, 1.0]}},
+        define={"c": "z * k**alpha * hours - k_next"},
+        reward="log(c) - 0.3 * hours",
+    )
     return {**grid_document(model), "report": {"stationary": True, "simulation": SIMULATION}}
 
 
@@ -108,9 +125,15 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
     "grid taste shocks": _grid_taste,
     "endogenous grid method": lambda: _economy(
         solver={"method": "endogenous_grid", "tolerance": 1e-8},
-        report={"stationary": True, "simulation": SIMULATION, "euler_errors": True}),
-    "search": lambda: _economy(search={"unknowns": {"r": {"min": 0.0, "max": 0.05}},
-                                       "conditions": ["mean(a) - capital_demand"], "tolerance": 1e-4}),
+        report={"stationary": True, "simulation": SIMULATION, "euler_errors": True},
+    ),
+    "search": lambda: _economy(
+        search={
+            "unknowns": {"r": {"min": 0.0, "max": 0.05}},
+            "conditions": ["mean(a) - capital_demand"],
+            "tolerance": 1e-4,
+        }
+    ),
     "static choice": _static_choice,
     "law of motion leaving its grid, non-finite rewards": _leaving_grid,
     "max_iterations": lambda: machine_shop(solver={"method": "howard", "max_iterations": 1}),

@@ -14,13 +14,30 @@ from typing import Annotated, Any, Union
 from pydantic import BaseModel, ConfigDict, Field
 from typing_extensions import TypeAliasType
 
-__all__ = ["Label", "NestedIntegers", "NestedLabels", "NestedNumbers", "NestedOptionalNumbers", "Reported"]
+__all__ = [
+    "NestedIntegers",
+    "NestedLabels",
+    "NestedNumbers",
+    "NestedOptionalNumbers",
+    "NumberOrLabel",
+    "Reported",
+    "absent_unless",
+]
 
 
-def _open_to_additions(schema: dict[str, Any], cls: type) -> None:
-    """Drop ``additionalProperties: false`` from a model's JSON Schema (see the module docstring)."""
+def _finish(schema: dict[str, Any], cls: type) -> None:
+    """Drop ``additionalProperties: false`` from a model's JSON Schema (see the module docstring), and the
+    defaults of keys left out when they do not apply (:func:`absent_unless`: never null, never defaulted)."""
     if schema.get("additionalProperties") is False:
         del schema["additionalProperties"]
+    for prop in schema.get("properties", {}).values():
+        prop.pop("default", None)
+
+
+def absent_unless(description: str) -> Any:
+    """A key that a result leaves out when it does not apply: optional, and never null when present (the
+    attribute reads None on a model validated without it)."""
+    return Field(default=None, description=description)
 
 
 class Reported(BaseModel):
@@ -28,28 +45,42 @@ class Reported(BaseModel):
 
     model_config = ConfigDict(
         extra="forbid",
+        strict=True,
         allow_inf_nan=False,
         protected_namespaces=(),
-        json_schema_extra=_open_to_additions,
+        json_schema_extra=_finish,
     )
 
 
-Label = Union[str, int]
-"""A tabular state's or action's label: the document's strings, or indices from 0 when it gave a count."""
+NumberOrLabel = Union[float, str]
+"""A value on an axis or of a choice: a number, or a tabular state's or action's label (the document's strings,
+or indices from 0 when it gave a count)."""
 
-NestedNumbers = TypeAliasType("NestedNumbers", Annotated[
-    list[Union[float, "NestedNumbers"]],
-    Field(description="Numbers in nested lists, one level per axis (C order: the last axis varies fastest)."),
-])
-NestedIntegers = TypeAliasType("NestedIntegers", Annotated[
-    list[Union[int, "NestedIntegers"]],
-    Field(description="Whole numbers (grid indices, from 0) in nested lists, one level per axis."),
-])
-NestedLabels = TypeAliasType("NestedLabels", Annotated[
-    list[Union[str, int, "NestedLabels"]],
-    Field(description="Labels (strings, or indices from 0) in nested lists, one level per axis."),
-])
-NestedOptionalNumbers = TypeAliasType("NestedOptionalNumbers", Annotated[
-    list[Union[float, None, "NestedOptionalNumbers"]],
-    Field(description="Numbers, or null where nothing was measured, in nested lists."),
-])
+NestedNumbers = TypeAliasType(
+    "NestedNumbers",
+    Annotated[
+        list[Union[float, "NestedNumbers"]],
+        Field(description="Numbers in nested lists, one level per axis (C order: the last axis varies fastest)."),
+    ],
+)
+NestedIntegers = TypeAliasType(
+    "NestedIntegers",
+    Annotated[
+        list[Union[int, "NestedIntegers"]],
+        Field(description="Whole numbers (grid indices, from 0) in nested lists, one level per axis."),
+    ],
+)
+NestedLabels = TypeAliasType(
+    "NestedLabels",
+    Annotated[
+        list[Union[str, int, "NestedLabels"]],
+        Field(description="Labels (strings, or indices from 0) in nested lists, one level per axis."),
+    ],
+)
+NestedOptionalNumbers = TypeAliasType(
+    "NestedOptionalNumbers",
+    Annotated[
+        list[Union[float, None, "NestedOptionalNumbers"]],
+        Field(description="Numbers, or null where nothing was measured, in nested lists."),
+    ],
+)

@@ -12,7 +12,8 @@ from typing import Literal, Union
 
 from pydantic import Field
 
-from worker.result_document._types import Label, NestedOptionalNumbers, Reported
+from worker.result_document._types import NestedOptionalNumbers, NumberOrLabel, Reported, absent_unless
+from worker.solvers.outcome import RATE_WINDOW, ROUNDING_ULPS
 
 __all__ = ["Diagnostics"]
 
@@ -30,8 +31,8 @@ class ErrorBracket(Reported):
         "comparison with error_bound = (upper − lower)/2 plus the allowance."
     )
     rounding_allowance: float = Field(
-        description="The allowance for float64 rounding included in both bounds (16 ulps of the largest value, "
-        "divided by 1 − β): a stated allowance, not a proof for every summation order."
+        description=f"The allowance for float64 rounding included in both bounds ({ROUNDING_ULPS:g} ulps of the "
+        "largest value, divided by 1 − β): a stated allowance, not a proof for every summation order."
     )
 
 
@@ -101,7 +102,7 @@ class ClampedNext(Reported):
     all_pairs: PairCount | None = Field(
         description="The same over every allowed (state, choice) pair; null when there were too many to count."
     )
-    note: str | None = Field(default=None, description="Why all_pairs is null; absent otherwise.")
+    note: str = absent_unless(description="Why all_pairs is null; absent otherwise.")
 
 
 class PairExample(Reported):
@@ -125,8 +126,9 @@ class Timings(Reported):
 
     prepare_s: float = Field(description="Reading the model and filling its tables (s).")
     compile_s: float = Field(description="Compiling or loading the model's kernels (s).")
-    euler_s: float | None = Field(default=None, description="Measuring the Euler-equation errors (s); absent "
-                                  "when they were not measured.")
+    euler_s: float = absent_unless(
+        description="Measuring the Euler-equation errors (s); absent when they were not measured."
+    )
 
 
 class EndogenousGrid(Reported):
@@ -160,13 +162,13 @@ class ContinuousChoice(Reported):
         description="Points where tomorrow's state under the policy lay outside its grid and was moved to the "
         "nearer end (a count; grid models without a continuous choice report diagnostics.clamped_next, an object)."
     )
-    at_lower_end: int | None = Field(
-        default=None, description="next_of choices: points choosing the lowest value of the state's grid."
+    at_lower_end: int = absent_unless(
+        description="next_of choices: points choosing the lowest value of the state's grid."
     )
-    at_upper_end: int | None = Field(
-        default=None, description="next_of choices: points choosing the highest value of the state's grid."
+    at_upper_end: int = absent_unless(
+        description="next_of choices: points choosing the highest value of the state's grid."
     )
-    endogenous_grid: EndogenousGrid | None = Field(default=None, description="With solver.method endogenous_grid.")
+    endogenous_grid: EndogenousGrid = absent_unless(description="With solver.method endogenous_grid.")
 
 
 class TasteShockInfo(Reported):
@@ -181,9 +183,9 @@ class TasteShockInfo(Reported):
         description="σ × Euler's constant / (1 − discount): add it to every value for shocks of location zero."
     )
     note: str = Field(description="What the value includes, in words.")
-    choices: dict[str, list[Label]] = Field(
+    choices: dict[str, list[NumberOrLabel]] = Field(
         description="The choices' values, in the order of the last axes of choice_probabilities (tabular: "
-        "{\"action\": labels})."
+        '{"action": labels}).'
     )
     probabilities_at: str = Field(description="Which values the choice probabilities were computed from.")
 
@@ -194,8 +196,7 @@ class EulerProfile(Reported):
     state: str = Field(description="The state variable.")
     at: list[float] = Field(description="Values of the state, increasing.")
     log10_error: NestedOptionalNumbers = Field(
-        description="log10 errors, [len(at)][shock points] (shock points in C order); null where nothing was "
-        "measured."
+        description="log10 errors, [len(at)][shock points] (shock points in C order); null where nothing was measured."
     )
     pooled: int = Field(
         description="Test points per entry: 1, or with many test points the worst of that many consecutive ones."
@@ -226,7 +227,7 @@ class EulerErrors(Reported):
         description="With report.stationary (infinite horizon): the mean weighted by the stationary distribution; "
         "absent otherwise.",
     )
-    by_period: EulerByPeriod | None = Field(default=None, description="Finite horizon only.")
+    by_period: EulerByPeriod = absent_unless(description="Finite horizon only.")
 
 
 class HorizonDiagnostics(Reported):
@@ -240,13 +241,14 @@ class HorizonDiagnostics(Reported):
 
 
 class Diagnostics(Reported):
-    """How the solve went. Keys marked grid models appear for grid models (with or without a continuous choice
-    as said); the others for every model unless said."""
+    """How the solve went. The keys up to log_dropped are in every result; the others only for the models their
+    descriptions name."""
 
     observed_rate: float | None = Field(
-        description="The measured contraction rate: the geometric mean of the ratios of successive log distances "
-        "(at most the last 10 pairs above rounding noise). For value iteration at most β; for Howard's method and "
-        "policy iteration the rate per iteration. Null when no pair qualifies, and with a finite horizon."
+        description="The measured contraction rate: the geometric mean of the ratios of successive log "
+        f"distances (at most the last {RATE_WINDOW} pairs above rounding noise). For value iteration at most β; "
+        "for Howard's method and policy iteration the rate per iteration. Null when no pair qualifies, and with a "
+        "finite horizon."
     )
     warnings: list[str] = Field(
         description="Things to check before trusting the answer, in plain words (grid ends reached, hints that did "
@@ -263,39 +265,32 @@ class Diagnostics(Reported):
         description="Iterations the bounded log does not hold (every early one is kept, then a sampling, then the "
         "latest)."
     )
-    notes: list[str] | None = Field(
-        default=None,
+    notes: list[str] = absent_unless(
         description="How the model was solved, in plain words (reward storage, choices maximised within the period, "
         "why a measurement was skipped, ...). Grid models, a finite horizon, or a note to give; absent otherwise.",
     )
-    reward_storage: Literal["tables", "on_the_fly"] | None = Field(
-        default=None,
+    reward_storage: Literal["tables", "on_the_fly"] = absent_unless(
         description="Grid models without a continuous choice: tables (rewards precomputed for every (point, "
         "choice) pair) or on_the_fly (computed inside the kernels).",
     )
-    hints: HintsUsed | None = Field(default=None, description="Grid models without a continuous choice.")
-    edge_hits: dict[str, EdgeHits] | None = Field(
-        default=None, description="Grid models without a continuous choice: per choice, how often an end is chosen."
+    hints: HintsUsed = absent_unless(description="Grid models without a continuous choice.")
+    edge_hits: dict[str, EdgeHits] = absent_unless(
+        description="Grid models without a continuous choice: per choice, how often an end is chosen."
     )
-    maximised_within_period: list[str] | None = Field(
-        default=None,
+    maximised_within_period: list[str] = absent_unless(
         description="Grid models without a continuous choice: the choices that affect nothing tomorrow, maximised "
         "out within the period.",
     )
-    clamped_next: ClampedNext | None = Field(
-        default=None, description="Grid models with a state variable moved by a law of motion (next)."
+    clamped_next: ClampedNext = absent_unless(
+        description="Grid models with a state variable moved by a law of motion (next)."
     )
-    nonfinite_rewards: NonfiniteRewards | None = Field(
-        default=None, description="Grid models where some feasible reward was NaN or +inf."
+    nonfinite_rewards: NonfiniteRewards = absent_unless(
+        description="Grid models where some feasible reward was NaN or +inf."
     )
-    timings: Timings | None = Field(default=None, description="Grid models.")
-    continuous_choice: ContinuousChoice | None = Field(default=None, description="Grid models with a continuous "
-                                                       "choice.")
-    taste_shocks: TasteShockInfo | None = Field(
-        default=None, description="With model.taste_shocks (infinite horizon)."
+    timings: Timings = absent_unless(description="Grid models.")
+    continuous_choice: ContinuousChoice = absent_unless(description="Grid models with a continuous choice.")
+    taste_shocks: TasteShockInfo = absent_unless(description="With model.taste_shocks (infinite horizon).")
+    euler_errors: EulerErrors = absent_unless(
+        description="With report.euler_errors, where the model has the form they need (notes say why not otherwise)."
     )
-    euler_errors: EulerErrors | None = Field(
-        default=None, description="With report.euler_errors, where the model has the form they need (notes say why "
-        "not otherwise)."
-    )
-    horizon: HorizonDiagnostics | None = Field(default=None, description="With model.horizon.")
+    horizon: HorizonDiagnostics = absent_unless(description="With model.horizon.")

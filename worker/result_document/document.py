@@ -11,7 +11,14 @@ from typing import Literal, Union
 from pydantic import Field
 
 from worker.document.options import METHOD_NAMES
-from worker.result_document._types import Label, NestedIntegers, NestedLabels, NestedNumbers, Reported
+from worker.result_document._types import (
+    NestedIntegers,
+    NestedLabels,
+    NestedNumbers,
+    NumberOrLabel,
+    Reported,
+    absent_unless,
+)
 from worker.result_document.diagnostics import Diagnostics
 from worker.result_document.reports import CohortReport, SearchOutcome, SimulationReport, StationaryReport, StopStatus
 
@@ -31,8 +38,8 @@ class LogEntry(Reported):
         description="Points whose choice differs from the previous iteration's (the first counts them all)."
     )
     seconds: float = Field(description="Solving time (s) when the iteration ended, counted across resumes.")
-    period: int | None = Field(default=None, description="Finite horizon only: the period solved.")
-    periods: int | None = Field(default=None, description="Finite horizon only: T, the number of periods.")
+    period: int = absent_unless(description="Finite horizon only: the period solved.")
+    periods: int = absent_unless(description="Finite horizon only: T, the number of periods.")
 
 
 class ResultDocument(Reported):
@@ -48,22 +55,23 @@ class ResultDocument(Reported):
         "max_iterations or time_limit (stopped before; the value is still certified to within error_bound)."
     )
     method: Literal[METHOD_NAMES] = Field(  # type: ignore[valid-type]
-        description="The method that solved it (backward_induction for a finite horizon, whatever "
-        "solver.method said)."
+        description="The method that solved it (backward_induction for a finite horizon, whatever solver.method said)."
     )
     error_bound: float = Field(
         description="Certified sup-norm distance between value and the exact fixed point of the discretized "
         "problem (finite horizon: the exact backward-induction values), rounding allowance included."
     )
-    iterations: int = Field(description="Iterations (Bellman steps with the policy they imply) in all, counted "
-                            "across resumes (finite horizon: the periods solved).")
+    iterations: int = Field(
+        description="Iterations (Bellman steps with the policy they imply) in all, counted "
+        "across resumes (finite horizon: the periods solved)."
+    )
     evaluation_steps: int = Field(description="Howard's method: evaluation steps applied in all; 0 otherwise.")
     linear_solves: int = Field(description="Policy iteration: exact policy evaluations (linear solves); 0 otherwise.")
     seconds: float = Field(description="Solving time (s), counted across resumes.")
-    axis_order: list[str] | None = Field(
-        default=None, description="The names of the axes of value (and of policy and policy_index), in order."
+    axis_order: list[str] = absent_unless(
+        description="The names of the axes of value (and of policy and policy_index), in order."
     )
-    axes: dict[str, list[Union[float, Label]]] = Field(
+    axes: dict[str, list[NumberOrLabel]] = Field(
         description="Each axis's values, in the order of value's axes: state variables' grid points, then shocks' "
         "values (tabular: state_label, the state labels; finite horizon: period first, the periods solved)."
     )
@@ -76,8 +84,7 @@ class ResultDocument(Reported):
         description="Per choice, the chosen value's index in its grid (tabular: the action's index), shaped like "
         "value; null for a continuous choice, which has no grid."
     )
-    choice_probabilities: NestedNumbers | None = Field(
-        default=None,
+    choice_probabilities: NestedNumbers = absent_unless(
         description="With model.taste_shocks: the probability of each combination of the choices at every point, "
         "nested as value's axes and then diagnostics.taste_shocks.choices in order.",
     )
@@ -93,4 +100,4 @@ class ResultDocument(Reported):
     cohort: CohortReport | None = Field(
         default=None, description="Finite horizon: with report.cohort, else null; absent without a horizon."
     )
-    search: SearchOutcome | None = Field(default=None, description="With a search in the document; absent otherwise.")
+    search: SearchOutcome = absent_unless(description="With a search in the document; absent otherwise.")

@@ -11,8 +11,8 @@ from typing import Literal
 
 from pydantic import Field, create_model
 
-from worker.report import PERCENTILES
-from worker.result_document._types import Label, NestedNumbers, Reported
+from worker.report import DIRECT_MAX_STATES, PERCENTILES, TOP_MASS_WARNING
+from worker.result_document._types import NestedNumbers, NumberOrLabel, Reported, absent_unless
 
 __all__ = ["CohortReport", "SearchOutcome", "SeriesSummary", "SimulationReport", "StationaryReport", "StopStatus"]
 
@@ -24,8 +24,10 @@ class EndMass(Reported):
     """The stationary mass at the two ends of a state variable's grid."""
 
     min: float = Field(description="Mass (0 to 1) at the grid's lowest point.")
-    max: float = Field(description="Mass (0 to 1) at the grid's highest point (a warning comes with more than 1%, "
-                       "unless real_ends lists max).")
+    max: float = Field(
+        description=f"Mass (0 to 1) at the grid's highest point (a warning comes with more than "
+        f"{TOP_MASS_WARNING:.0%}, unless real_ends lists max)."
+    )
 
 
 class StationaryReport(Reported):
@@ -45,8 +47,8 @@ class StationaryReport(Reported):
         description="Grid models: per state variable, the mass at the ends of its grid ({} for tabular models)."
     )
     method: Literal["direct", "gmres", "power"] = Field(
-        description="How it was computed: direct (sparse LU, up to 20,000 points), gmres (preconditioned, one "
-        "closed class) or power (power iteration on the lazy chain)."
+        description=f"How it was computed: direct (sparse LU, up to {DIRECT_MAX_STATES:,} points), gmres "
+        "(preconditioned, one closed class) or power (power iteration on the lazy chain)."
     )
     residual: float = Field(description="‖πP − π‖₁, the distribution's residual (0 for an exact one).")
     steps: int = Field(description="Power-iteration steps (0 unless method is power).")
@@ -72,16 +74,14 @@ class SimulationReport(Reported):
         description="Per axis (state variable, shock; tabular: state_label, as an index) and per choice (tabular: "
         "action, as an index; with taste shocks the drawn choice), its summary."
     )
-    first_path: dict[str, list[Label | float]] = Field(
+    first_path: dict[str, list[NumberOrLabel]] = Field(
         description="Path 0: per axis its values period by period (tabular: state labels), per choice the chosen "
         "values (tabular: action labels; with a finite horizon every series as numbers, tabular ones as indices)."
     )
-    by_period: dict[str, list[float]] | None = Field(
-        default=None,
+    by_period: dict[str, list[float]] = absent_unless(
         description="Finite horizon only: per axis and per choice, the mean over the paths in each period.",
     )
-    interpolated: Literal[True] | None = Field(
-        default=None,
+    interpolated: Literal[True] = absent_unless(
         description="Continuous choice only: true, the paths' states lie off the grid and the policy was "
         "interpolated between grid points.",
     )
@@ -139,4 +139,3 @@ class SearchOutcome(Reported):
         description="One unknown: the closest trials on either side of zero; null with several unknowns or none."
     )
     trials: list[SearchTrial] = Field(description="Every solve made, in order.")
-
