@@ -267,7 +267,8 @@ class Diagnostics(Reported):
     )
     notes: list[str] = absent_unless(
         description="How the model was solved, in plain words (reward storage, choices maximised within the period, "
-        "why a measurement was skipped, ...). Grid models, a finite horizon, or a note to give; absent otherwise.",
+        "backward induction, ...), and why a measurement asked for was skipped. Grid models and finite horizons "
+        "always; other models only with such a note."
     )
     reward_storage: Literal["tables", "on_the_fly"] = absent_unless(
         description="Grid models without a continuous choice: tables (rewards precomputed for every (point, "
@@ -287,7 +288,7 @@ class Diagnostics(Reported):
     nonfinite_rewards: NonfiniteRewards = absent_unless(
         description="Grid models where some feasible reward was NaN or +inf."
     )
-    timings: Timings = absent_unless(description="Grid models.")
+    timings: Timings = absent_unless(description="Grid models (a continuous choice included).")
     continuous_choice: ContinuousChoice = absent_unless(description="Grid models with a continuous choice.")
     taste_shocks: TasteShockInfo = absent_unless(description="With model.taste_shocks (infinite horizon).")
     euler_errors: EulerErrors = absent_unless(

@@ -47,8 +47,9 @@ class ResultDocument(Reported):
 
     Arrays of the value function and the policy are nested lists in the order of axes (state variables, then
     shocks; tabular: the one axis state_label; a finite horizon puts period first), the last axis varying
-    fastest. The discretized model is an approximation: check the answer's sensitivity to the grids and the
-    tolerance before it feeds a decision."""
+    fastest. With a search, everything but search describes the last solve, at the unknowns it reports. The
+    discretized model is an approximation: check the answer's sensitivity to the grids and the tolerance before
+    it feeds a decision."""
 
     status: StopStatus = Field(
         description="converged (the error bound met solver.tolerance; a finite horizon: every period solved), "
@@ -59,7 +60,8 @@ class ResultDocument(Reported):
     )
     error_bound: float = Field(
         description="Certified sup-norm distance between value and the exact fixed point of the discretized "
-        "problem (finite horizon: the exact backward-induction values), rounding allowance included."
+        "problem (a continuous choice: of the fitted problem, a proof only where diagnostics.continuous_choice."
+        "certified; finite horizon: to the exact backward-induction values), rounding allowance included."
     )
     iterations: int = Field(
         description="Iterations (Bellman steps with the policy they imply) in all, counted "
@@ -67,7 +69,10 @@ class ResultDocument(Reported):
     )
     evaluation_steps: int = Field(description="Howard's method: evaluation steps applied in all; 0 otherwise.")
     linear_solves: int = Field(description="Policy iteration: exact policy evaluations (linear solves); 0 otherwise.")
-    seconds: float = Field(description="Solving time (s), counted across resumes.")
+    seconds: float = Field(
+        description="Solving time (s), counted across resumes (a search: its last solve's; search.trials has "
+        "every trial's)."
+    )
     axis_order: list[str] = absent_unless(
         description="The names of the axes of value (and of policy and policy_index), in order."
     )
