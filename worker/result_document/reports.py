@@ -40,7 +40,8 @@ class StationaryReport(Reported):
     )
     means: dict[str, float] = Field(
         description="Per axis (state variable, shock; tabular: state_label, the state's index) and per choice "
-        "(tabular: action, the chosen action's index), its mean under the distribution."
+        "(tabular: action, the chosen action's index; with taste shocks its expected index), its mean under the "
+        "distribution."
     )
     sd: dict[str, float] = Field(description="The same names' standard deviations under the distribution.")
     ends: dict[str, EndMass] = Field(
@@ -50,7 +51,7 @@ class StationaryReport(Reported):
         description=f"How it was computed: direct (sparse LU, up to {DIRECT_MAX_STATES:,} points), gmres "
         "(preconditioned, one closed class) or power (power iteration on the lazy chain)."
     )
-    residual: float = Field(description="‖πP − π‖₁, the distribution's residual (0 for an exact one).")
+    residual: float = Field(description="‖πP − π‖₁, the distribution's residual (rounding-small for method direct).")
     steps: int = Field(description="Power-iteration steps (0 unless method is power).")
 
 
