@@ -1,11 +1,14 @@
-"""The problem-document reference of README.md, generated from the JSON Schema.
+"""The problem-document and result-document references of README.md, generated from their JSON Schemas.
 
 ``python -m service.docref [--write | --check]`` renders
 ``worker.document.json_schema()`` as Markdown: one table per kind of object
 (the document, each model kind, grids, shocks, the solver, ...), each key with
 its type, its default (or *required*), its limits and its description, in the
-order a reader meets them.  The schema is the contract; this is its reading
-copy, and a test keeps README.md equal to it.
+order a reader meets them.  It renders the schema of the result document
+(``worker.result_document``, the schema of ``GET /v1/jobs/{id}/result`` in the
+OpenAPI description) the same way into a second section, each key saying whether
+every result has it, followed by the CSV form.  The schemas are the contract;
+these are their reading copies, and a test keeps README.md equal to them.
 """
 
 from __future__ import annotations
@@ -16,9 +19,23 @@ from collections import deque
 from typing import Any
 
 from service._readme import command_line
+from service.result_openapi import CSV_TABLE
 from worker.document import json_schema
+from worker.result_document import result_json_schema
 
-__all__ = ["reference"]
+__all__ = ["RESULT_SECTION", "reference", "result_reference"]
+
+RESULT_SECTION = "docref_result"
+"""The name of the README section holding the result document's reference."""
+
+_ARRAYS = {
+    "PackedArray": "packed array",
+    "NestedNumbers": "nested lists of numbers",
+    "NestedIntegers": "nested lists of integers",
+    "NestedLabels": "nested lists of labels",
+    "NestedOptionalNumbers": "nested lists of numbers or nulls",
+}
+"""Shared array definitions, named by a phrase instead of a table of their own."""
 
 _LIMITS = (
     ("exclusiveMinimum", "> {}"),
@@ -36,8 +53,9 @@ _LIMITS = (
 
 
 class _Reference:
-    def __init__(self, schema: dict[str, Any]) -> None:
+    def __init__(self, schema: dict[str, Any], *, presence: bool = False) -> None:
         self.defs: dict[str, Any] = schema.get("$defs", {})
+        self.presence = presence  # a result's "present" column (always / optional) instead of a default
         self.where: dict[str, str] = {}
         self.queue: deque[str] = deque()
 
@@ -46,17 +64,15 @@ class _Reference:
         return ref.rsplit("/", 1)[-1] if ref.startswith("#/$defs/") else None
 
     def visit(self, name: str, path: str) -> None:
-        if name not in self.where and name not in ("PackedArray", "NestedNumbers"):
+        if name not in self.where and name not in _ARRAYS:
             self.where[name] = path
             self.queue.append(name)
 
     def type_of(self, node: dict[str, Any], path: str) -> str:
         """A short reading of a schema node's type, queueing the objects it names."""
         name = self.ref_name(node)
-        if name == "PackedArray":
-            return "packed array"
-        if name == "NestedNumbers":
-            return "nested lists of numbers"
+        if name in _ARRAYS:
+            return _ARRAYS[name]
         if name is not None:
             self.visit(name, path)
             return f"object ({name})"
@@ -102,10 +118,15 @@ class _Reference:
 
     def table(self, node: dict[str, Any], path: str) -> list[str]:
         required = set(node.get("required", []))
-        lines = ["| key | type | default | description |", "| --- | --- | --- | --- |"]
+        lines = [
+            f"| key | type | {'present' if self.presence else 'default'} | description |",
+            "| --- | --- | --- | --- |",
+        ]
         for key, prop in node.get("properties", {}).items():
             kind = self.type_of(prop, f"{path}.{key}" if path else key)
-            if key in required:
+            if self.presence:
+                default = "always" if key in required else "optional"
+            elif key in required:
                 default = "*required*"
             elif "default" in prop:
                 default = f"`{json.dumps(prop['default'], ensure_ascii=False)}`"
@@ -118,10 +139,8 @@ class _Reference:
             lines.append(f"| `{key}` | {kind} | {default} | {_cell(description)} |")
         return lines
 
-    def render(self, schema: dict[str, Any]) -> str:
-        out = [f"Generated from `GET /v1/schema` ({schema.get('title', 'the problem document')}). "
-               "Unknown keys are refused, with their path named.", "",
-               "### The document", "", _cell(" ".join(schema.get("description", "").split())), ""]  # fmt: skip
+    def render(self, schema: dict[str, Any], intro: str) -> str:
+        out = [intro, "", "### The document", "", _cell(" ".join(schema.get("description", "").split())), ""]
         out += self.table(schema, "")
         while self.queue:
             name = self.queue.popleft()
@@ -155,8 +174,26 @@ def _cell(text: str) -> str:
 def reference(schema: dict[str, Any] | None = None) -> str:
     """The Markdown reference of the problem document."""
     schema = schema if schema is not None else json_schema()
-    return _Reference(schema).render(schema)
+    intro = (
+        f"Generated from `GET /v1/schema` ({schema.get('title', 'the problem document')}). "
+        "Unknown keys are refused, with their path named."
+    )
+    return _Reference(schema).render(schema, intro)
+
+
+def result_reference(schema: dict[str, Any] | None = None) -> str:
+    """The Markdown reference of the result document, and of its CSV form."""
+    schema = schema if schema is not None else result_json_schema()
+    intro = (
+        "Generated from the schema of `GET /v1/jobs/{id}/result` in the OpenAPI description (`/openapi.json`, "
+        "`ResultDocument`). It lists every key today's results carry (a test solves results of every shape and "
+        "refuses any key not listed); later versions may add keys, so a client should ignore the ones it does not "
+        "know. *present*: **always**, or **optional** — only in the cases its description names. A key always "
+        "present may still be null where its type says so."
+    )
+    text = _Reference(schema, presence=True).render(schema, intro)
+    return f"{text}\n\n### The CSV table\n\n{CSV_TABLE}"
 
 
 if __name__ == "__main__":
-    sys.exit(command_line("docref", reference))
+    sys.exit(command_line("docref", reference, more={RESULT_SECTION: result_reference}))

@@ -30,6 +30,7 @@ from service.keys import ApiKey
 from service.limits import ActiveJobs, check_problem_size, quota_for
 from service.problems import Problem
 from service.resubmission import IdempotencyKeys, SolvedJobs, with_reuse_fields
+from service.result_openapi import RESULT_RESPONSES
 from service.settings import Settings
 from service.stopping import STOPPING
 from service.store import TERMINAL_STATES, JobStore, is_job_id
@@ -261,7 +262,7 @@ def get_job(job_id: str, owner: Owner, store: StoreDep) -> dict[str, Any]:
     return with_reuse_fields(store, [_job_or_404(store, job_id, owner)])[0]
 
 
-@router.get("/{job_id}/result", responses={200: {"content": {"text/csv": {}}}})
+@router.get("/{job_id}/result", responses=RESULT_RESPONSES)
 def get_result(
     job_id: str,
     owner: Owner,
