@@ -227,6 +227,12 @@ def test_csv_of_a_tabular_result_has_one_row_per_state(client: httpx.Client) -> 
         assert row[0] == str(label) and float(row[1]) == value and row[2] == str(action)
     by_accept = client.get(f"/v1/jobs/{record['id']}/result", headers={"accept": "text/csv"})
     assert by_accept.text == response.text
+    # An Accept header that merely mentions text/csv, preferring JSON, gets JSON (as Julia's HTTP.jl
+    # or a browser may send); one preferring CSV gets CSV.
+    for accept, wants in [("application/json, text/csv;q=0.5", False), ("text/csv, application/json", True),
+                        ("application/json;q=0.4, text/csv", True), ("*/*", False), ("text/csv;q=0", False)]:
+        answer = client.get(f"/v1/jobs/{record['id']}/result", headers={"accept": accept})
+        assert answer.headers["content-type"].startswith("text/csv") is csv, accept
 
 
 def test_csv_of_a_grid_result_covers_every_state_and_shock_combination(client: httpx.Client, store: JobStore) -> None:

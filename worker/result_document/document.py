@@ -73,8 +73,10 @@ class ResultDocument(Reported):
         description="Solving time (s), counted across resumes (a search: its last solve's; search.trials has "
         "every trial's)."
     )
-    axis_order: list[str] = absent_unless(
-        description="The names of the axes of value (and of policy and policy_index), in order."
+    axis_order: list[str] = Field(
+        description="The names of the axes of value (and of policy, policy_index, choice_probabilities and the "
+        "distributions), in order: the keys of axes in the same order. model.axis_order fixes it; without it, "
+        "the state variables in the document's order, then the shocks (finite horizon: period first)."
     )
     axes: dict[str, list[NumberOrLabel]] = Field(
         description="Each axis's values, in the order of value's axes: state variables' grid points, then shocks' "
