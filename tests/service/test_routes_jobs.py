@@ -232,7 +232,7 @@ def test_csv_of_a_tabular_result_has_one_row_per_state(client: httpx.Client) -> 
     for accept, wants in [("application/json, text/csv;q=0.5", False), ("text/csv, application/json", True),
                         ("application/json;q=0.4, text/csv", True), ("*/*", False), ("text/csv;q=0", False)]:
         answer = client.get(f"/v1/jobs/{record['id']}/result", headers={"accept": accept})
-        assert answer.headers["content-type"].startswith("text/csv") is csv, accept
+        assert answer.headers["content-type"].startswith("text/csv") is wants, accept
 
 
 def test_csv_of_a_grid_result_covers_every_state_and_shock_combination(client: httpx.Client, store: JobStore) -> None:
