@@ -232,7 +232,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         )
     from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
 
-    if varies_by_period(model):
+    if varies_by_period(model) and not draws:  # draws: tables only, refilled per period (worker.period_tables)
         reward_storage = "on_the_fly"
         reason = (
             "the model changes with the period (params given per period, or `period` in its expressions), so it is "

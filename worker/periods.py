@@ -63,6 +63,7 @@ def _tabular_plan(doc: Any, problem: Any) -> PeriodPlan:
 def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
     from worker._codegen import kernel_params
     from worker.feasibility import period_params
+    from worker.period_tables import enter_period_tables
 
     model, horizon = doc.model, doc.model.horizon
     periods = int(horizon.periods)
@@ -75,7 +76,10 @@ def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
         _check_bounds_by_period(model, data)
 
     def enter(t: int) -> None:
-        if varying:
+        if varying and getattr(problem, "reward_storage", None) == "tables":
+            # Taste shocks and draws after the choice are solved from tables only: refilled per period.
+            enter_period_tables(problem, model, t)
+        elif varying:
             problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
         problem.discount = float(discounts[t])
 
@@ -174,6 +178,14 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
                 policy.setdefault(name, []).append(values[name])
                 if indices is not None:  # a continuous choice has no grid index
                     policy_index.setdefault(name, []).append(indices[name])
+    taste, probabilities = {}, {}
+    if getattr(problem, "taste_scale", None) is not None and periods:
+        from worker.taste_horizon import probabilities_by_period, with_probabilities
+
+        plan = with_probabilities(plan, problem, outcome)  # entering a period retakes its smoothed step
+        notes_of_taste, by_period = probabilities_by_period(problem, plan, outcome)
+        taste = {"taste_shocks": notes_of_taste}
+        probabilities = {"choice_probabilities": by_period.tolist()}
     problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
@@ -211,13 +223,17 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
                                             f"report.{report.simulation_key}")
             warnings += simulation.pop("warnings")
     euler = {}
-    if report.euler_errors:
+    if report.euler_errors and taste:
+        notes.append("Euler-equation errors were not measured: with taste shocks the choice is random, not a policy "
+                     "rule")
+    elif report.euler_errors:
         euler, note = _euler_by_period(doc, problem, plan, outcome)
         if note:
             notes.append(note)
     bound = outcome.error_bound
     diagnostics = {
         **problem_diagnostics,
+        **plain(taste),
         **euler,
         "observed_rate": None,
         "warnings": warnings,
@@ -240,6 +256,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         "value": value,
         "policy": policy,
         "policy_index": policy_index or None,
+        **probabilities,
         **tail,
     }
 

@@ -185,9 +185,6 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
 def _not_yet_faults(model: Any) -> list[Fault]:
     """A horizon with taste shocks or with draws after the choice: not solved by backward induction yet."""
     faults = []
-    if getattr(model, "taste_shocks", None) is not None:
-        faults.append(fault("taste_shocks", "taste shocks are not yet solved with a finite horizon; drop one of "
-                            "model.taste_shocks and model.horizon"))
     shocks = getattr(model, "shocks", None) or {}
     faults += [
         fault(join_path("shocks", name, "timing"), "draws after the choice are not yet solved with a finite "
