@@ -227,7 +227,9 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         notes.append("Euler-equation errors were not measured: with taste shocks the choice is random, not a policy "
                      "rule")
     elif report.euler_errors:
-        euler, note = _euler_by_period(doc, problem, plan, outcome)
+        from worker.horizon_euler import euler_by_period
+
+        euler, note = euler_by_period(doc, problem, plan, outcome)
         if note:
             notes.append(note)
     bound = outcome.error_bound
@@ -271,63 +273,3 @@ def _collector_paused() -> Iterator[None]:
     finally:
         if running:
             gc.enable()
-
-
-def _euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
-                     outcome: HorizonOutcome) -> tuple[dict[str, Any], str | None]:
-    """``({"euler_errors": ...}, note)``: Euler-equation errors of every period but the last, pooled.
-
-    Period ``t``'s errors use its params, discount and policy today and period ``t + 1``'s tomorrow (the
-    last period's tomorrow is the terminal value, which has no policy: it is left out).  The result has
-    the keys of :func:`worker.euler.euler_errors` over all periods measured (``profile``: the first
-    period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
-    """
-    import dataclasses
-
-    from worker.euler import EulerSetup, euler_errors, grid_policy, setup
-    from worker.feasibility import period_params
-
-    if getattr(problem, "choose_at", None) is not None or getattr(problem, "model_data", None) is None:
-        return {}, ("Euler-equation errors were not measured: with a finite horizon they are measured for a choice "
-                    "restricted to the grid")
-    data = problem.model_data
-    found = setup(data)
-    if not isinstance(found, EulerSetup):
-        return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
-                             "value of a state (next_of)")
-    first, periods = outcome.first_period, plan.periods
-    if periods - first < 2:
-        return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
-    choice = data.choices[0]
-    grid = data.state_grids[0]
-
-    def model_and_rule(t: int) -> tuple[Any, Any]:
-        values = problem.choice_values(outcome.policies[t - first])[choice]
-        period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
-        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
-
-    by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
-    pooled = {"points": 0, "constrained": 0, "undefined": 0}
-    worst, total, profile = None, 0.0, None
-    for t in range(first, periods - 1):
-        today, rule = model_and_rule(t)
-        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
-        profile = profile or errors["profile"]
-        by_period["period"].append(t)
-        by_period["max_log10"].append(errors["max_log10"])
-        by_period["mean_log10"].append(errors["mean_log10"])
-        for key in pooled:
-            pooled[key] += errors[key]
-        if errors["max_log10"] is not None:
-            worst = errors["max_log10"] if worst is None else max(worst, errors["max_log10"])
-            total += errors["mean_log10"] * errors["points"]
-    result = {
-        "max_log10": worst,
-        "mean_log10": total / pooled["points"] if pooled["points"] else None,
-        **pooled,
-        "define": found.define,
-        "profile": profile,
-        "by_period": by_period,
-    }
-    note = f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal value)"
-    return {"euler_errors": result}, note
