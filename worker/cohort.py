@@ -78,10 +78,6 @@ def horizon_simulation(
     Returns the keys of :func:`worker.report.simulate_report` (``summary`` pools every period of every path)
     and ``by_period``: per state, shock and choice, the mean over the paths in each period.
     """
-    if getattr(problem, "taste_scale", None) is not None:
-        from worker.taste_horizon import taste_horizon_simulation
-
-        return taste_horizon_simulation(problem, plan, outcome, spec, cohort, where)
     periods, paths = int(spec.periods), int(spec.paths)
     rng = np.random.default_rng(spec.seed)
     if spec.start is not None:

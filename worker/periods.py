@@ -219,8 +219,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         if report.cohort is not None:
             cohort = cohort_report(problem, plan, outcome, report.cohort)
         if report.simulation is not None:
-            simulation = horizon_simulation(problem, plan, outcome, report.simulation, report.cohort,
-                                            f"report.{report.simulation_key}")
+            simulate = horizon_simulation
+            if taste:  # each period's choice is drawn from its probabilities, then tomorrow's point
+                from worker.taste_horizon import taste_horizon_simulation as simulate
+            simulation = simulate(problem, plan, outcome, report.simulation, report.cohort,
+                                  f"report.{report.simulation_key}")
             warnings += simulation.pop("warnings")
     euler = {}
     if report.euler_errors and taste:
