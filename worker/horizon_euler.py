@@ -53,6 +53,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     def model_and_rule(t: int) -> tuple[Any, Callable[[np.ndarray], np.ndarray]]:
         period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
         policy = outcome.policies[t - first]
+        own = None if plan.stepper is None else plan.stepper.rule(t)
+        if own is not None:  # the endogenous grid method's own rule (linear along its endogenous grid)
+            return period_data, own
         if continuous:
             after = plan.terminal if t == periods - 1 else outcome.values[t + 1 - first]
             return period_data, _in_period(plan, t, problem.policy_rule(np.asarray(after, dtype=np.float64), policy))
@@ -85,7 +88,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     }
     note = (f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal "
             "value, with no Euler equation)"
-            + ("; the policy between grid points is each period's own search" if continuous else ""))
+            + ("; the policy between grid points is the endogenous grid method's own (linear along its grid)"
+               if plan.stepper is not None else
+               "; the policy between grid points is each period's own search" if continuous else ""))
     return {"euler_errors": result}, note
 
 

@@ -44,6 +44,10 @@ def period_plan(doc: Any, problem: CompiledProblem, *, terminal: np.ndarray | No
     plan = _tabular_plan(doc, problem) if doc.model.kind == "tabular" else _grid_plan(doc, problem)
     if terminal is not None:
         plan.terminal = np.asarray(terminal, dtype=np.float64).reshape(problem.n)
+    if doc.model.kind == "grid":
+        from worker.egm_horizon import egm_stepper
+
+        plan.stepper = egm_stepper(doc, problem, plan, terminal is not None)
     return plan
 
 
@@ -186,6 +190,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         notes_of_taste, by_period = probabilities_by_period(problem, plan, outcome)
         taste = {"taste_shocks": notes_of_taste}
         probabilities = {"choice_probabilities": by_period.tolist()}
+    if plan.stepper is not None:
+        problem.egm_report = plan.stepper.report(outcome.first_period)
     problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
@@ -201,7 +207,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
     method = doc.solver.method
-    if "method" in doc.solver.model_fields_set and method != METHOD:
+    if plan.stepper is not None:
+        notes.append("solver.method endogenous_grid: each period's policy is one round of the endogenous grid method "
+                     "from the next period's, and each period's value the fitted Bellman step's, its search seeded by "
+                     "that policy (diagnostics.continuous_choice.endogenous_grid gives the gaps between them)")
+    elif "method" in doc.solver.model_fields_set and method != METHOD:
         notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
                      "induction")
     if doc.solver.initial not in (None, "zeros"):
