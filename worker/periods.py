@@ -12,7 +12,13 @@ so a period is one swap of the params vector (:meth:`worker.gridproblem.GridProb
 one compiled module serves every period.  Reward tables would have to be filled again each period
 (``T`` times the precompute, or ``T`` times its memory kept), so such a model always uses
 ``on_the_fly`` (:func:`worker.estimate.grid_plan`); a horizon whose periods differ only in the discount or in
-nothing keeps whichever storage the plan picks, tables included.
+nothing keeps whichever storage the plan picks, tables included.  The exceptions are taste shocks and
+draws after the choice, which tables alone solve: their tables are filled again in each period
+(:mod:`worker.period_tables`).
+
+With taste shocks the result adds the choice probabilities by period (:mod:`worker.taste_horizon`);
+with ``solver.method: endogenous_grid`` each period's policy is a round of that method
+(:mod:`worker.egm_horizon`); the Euler-equation errors by period are :mod:`worker.horizon_euler`'s.
 """
 
 from __future__ import annotations
@@ -182,7 +188,10 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
                 policy.setdefault(name, []).append(values[name])
                 if indices is not None:  # a continuous choice has no grid index
                     policy_index.setdefault(name, []).append(indices[name])
-    taste, probabilities = {}, {}
+    taste: dict[str, Any] = {}
+    probabilities: dict[str, Any] = {}
+    if getattr(problem, "taste_scale", None) is not None:
+        probabilities = {"choice_probabilities": []}  # no period solved (a time limit): none
     if getattr(problem, "taste_scale", None) is not None and periods:
         from worker.taste_horizon import probabilities_by_period, with_probabilities
 

@@ -206,3 +206,39 @@ def test_a_grid_cohort_with_taste_shocks_follows_the_probabilities() -> None:
         assert result["cohort"]["means"]["replace"][t] == pytest.approx(expected, abs=1e-12)
     assert any("taste shocks" in note for note in result["diagnostics"]["notes"])
     assert "euler_errors" not in result["diagnostics"]
+
+
+class MemoryCheckpoint:
+    """A checkpoint store in memory, holding the bytes the service would write to Redis."""
+
+    def __init__(self) -> None:
+        self.payload: bytes | None = None
+
+    def load(self) -> dict[str, Any] | None:
+        from service.checkpoints import decode_checkpoint
+
+        return None if self.payload is None else decode_checkpoint(self.payload)
+
+    def save(self, state: dict[str, Any]) -> None:
+        from service.checkpoints import encode_checkpoint
+
+        self.payload = encode_checkpoint(state)
+
+
+def test_a_resumed_taste_shock_horizon_gives_the_same_values_and_probabilities() -> None:
+    from worker.errors import Canceled
+
+    document = lathe(0.25)
+    document["solver"] = {"checkpoint_s": 1e-9}
+    store = MemoryCheckpoint()
+    polls = iter(range(100))
+    with pytest.raises(Canceled):
+        solve(document, checkpoint=store, should_stop=lambda: next(polls) >= 2)
+    resumed = solve(lathe(0.25) | {"solver": {"checkpoint_s": 1e-9}}, checkpoint=store)
+    whole = solve(lathe(0.25))
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 2
+    assert resumed["value"] == whole["value"]
+    assert resumed["choice_probabilities"] == whole["choice_probabilities"]
+    # A time limit before any period: no period, and no probabilities.
+    stopped = solve(lathe(0.25) | {"solver": {"time_limit_s": 1e-9}})
+    assert stopped["status"] == "time_limit" and stopped["choice_probabilities"] == []
