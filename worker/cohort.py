@@ -60,6 +60,7 @@ def cohort_report(problem: CompiledProblem, plan: PeriodPlan, outcome: HorizonOu
     means: dict[str, list[float]] = {}
     for t in range(plan.periods):
         policy = outcome.policies[t]
+        plan.enter(t)  # a choice's value may be the period's (taste shocks: expected under its probabilities)
         distributions[t] = mu
         for name, values in _series(problem, policy).items():
             means.setdefault(name, []).append(float(mu @ values))

@@ -155,7 +155,8 @@ def horizon_bytes(doc: Any, n: int) -> int:
 
     Per period and point: the value and the policy (8 bytes each) in the solve, and the result's
     nested lists of them (about ``RESULT_BYTES_PER_STATE``); with ``report.cohort`` the cohort's
-    distribution by period as well.
+    distribution by period as well; with taste shocks the choice probabilities by period (one per
+    choice, in the solve and in the result).
     """
     horizon = getattr(doc.model, "horizon", None)
     if horizon is None:
@@ -163,4 +164,8 @@ def horizon_bytes(doc: Any, n: int) -> int:
     per_point = 16 + RESULT_BYTES_PER_STATE
     if doc.report.cohort is not None:
         per_point += 8 + RESULT_BYTES_PER_STATE // 3
+    if getattr(doc.model, "taste_shocks", None) is not None:
+        model = doc.model
+        choices = model.n_actions if model.kind == "tabular" else math.prod(c.size for c in model.choices.values())
+        per_point += choices * (8 + RESULT_BYTES_PER_STATE)
     return int(horizon.periods) * n * per_point

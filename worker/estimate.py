@@ -232,7 +232,7 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         )
     from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
 
-    if varies_by_period(model):
+    if varies_by_period(model) and not draws:  # draws: tables only, refilled per period (worker.period_tables)
         reward_storage = "on_the_fly"
         reason = (
             "the model changes with the period (params given per period, or `period` in its expressions), so it is "
@@ -321,6 +321,10 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             step_total = steps * step
     if plan.reward_storage == "tables":
         step_total = steps * step
+        from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
+
+        if model.horizon is not None and varies_by_period(model):
+            setup *= model.horizon.periods  # the tables are filled again in every period (worker.period_tables)
     seconds = (setup + step_total + steps * evaluation) * 1e-9
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(

@@ -12,7 +12,13 @@ so a period is one swap of the params vector (:meth:`worker.gridproblem.GridProb
 one compiled module serves every period.  Reward tables would have to be filled again each period
 (``T`` times the precompute, or ``T`` times its memory kept), so such a model always uses
 ``on_the_fly`` (:func:`worker.estimate.grid_plan`); a horizon whose periods differ only in the discount or in
-nothing keeps whichever storage the plan picks, tables included.
+nothing keeps whichever storage the plan picks, tables included.  The exceptions are taste shocks and
+draws after the choice, which tables alone solve: their tables are filled again in each period
+(:mod:`worker.period_tables`).
+
+With taste shocks the result adds the choice probabilities by period (:mod:`worker.taste_horizon`);
+with ``solver.method: endogenous_grid`` each period's policy is a round of that method
+(:mod:`worker.egm_horizon`); the Euler-equation errors by period are :mod:`worker.horizon_euler`'s.
 """
 
 from __future__ import annotations
@@ -43,6 +49,10 @@ def period_plan(doc: Any, problem: CompiledProblem, *, terminal: np.ndarray | No
     plan = _tabular_plan(doc, problem) if doc.model.kind == "tabular" else _grid_plan(doc, problem)
     if terminal is not None:
         plan.terminal = np.asarray(terminal, dtype=np.float64).reshape(problem.n)
+    if doc.model.kind == "grid":
+        from worker.egm_horizon import egm_stepper
+
+        plan.stepper = egm_stepper(doc, problem, plan, terminal is not None)
     return plan
 
 
@@ -62,6 +72,7 @@ def _tabular_plan(doc: Any, problem: Any) -> PeriodPlan:
 def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
     from worker._codegen import kernel_params
     from worker.feasibility import period_params
+    from worker.period_tables import enter_period_tables
 
     model, horizon = doc.model, doc.model.horizon
     periods = int(horizon.periods)
@@ -74,7 +85,10 @@ def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
         _check_bounds_by_period(model, data)
 
     def enter(t: int) -> None:
-        if varying:
+        if varying and getattr(problem, "reward_storage", None) == "tables":
+            # Taste shocks and draws after the choice are solved from tables only: refilled per period.
+            enter_period_tables(problem, model, t)
+        elif varying:
             problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
         problem.discount = float(discounts[t])
 
@@ -173,6 +187,19 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
                 policy.setdefault(name, []).append(values[name])
                 if indices is not None:  # a continuous choice has no grid index
                     policy_index.setdefault(name, []).append(indices[name])
+    taste: dict[str, Any] = {}
+    probabilities: dict[str, Any] = {}
+    if getattr(problem, "taste_scale", None) is not None:
+        probabilities = {"choice_probabilities": []}  # no period solved (a time limit): none
+    if getattr(problem, "taste_scale", None) is not None and periods:
+        from worker.taste_horizon import probabilities_by_period, with_probabilities
+
+        plan = with_probabilities(plan, problem, outcome)  # entering a period retakes its smoothed step
+        notes_of_taste, by_period = probabilities_by_period(problem, plan, outcome)
+        taste = {"taste_shocks": notes_of_taste}
+        probabilities = {"choice_probabilities": by_period.tolist()}
+    if plan.stepper is not None:
+        problem.egm_report = plan.stepper.report(outcome.first_period)
     problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
@@ -188,7 +215,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         notes.append(f"the time limit stopped the solve after {len(periods)} of {plan.periods} periods: the value and "
                      f"policy cover periods {outcome.first_period} to {plan.periods - 1}")
     method = doc.solver.method
-    if "method" in doc.solver.model_fields_set and method != METHOD:
+    if plan.stepper is not None:
+        notes.append("solver.method endogenous_grid: each period's policy is one round of the endogenous grid method "
+                     "from the next period's, and each period's value the fitted Bellman step's, its search seeded by "
+                     "that policy (diagnostics.continuous_choice.endogenous_grid gives the gaps between them)")
+    elif "method" in doc.solver.model_fields_set and method != METHOD:
         notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
                      "induction")
     if doc.solver.initial not in (None, "zeros"):
@@ -207,17 +238,26 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         if start is not None:
             cohort = cohort_report(problem, plan, outcome, start)
         if report.simulation is not None:
-            simulation = horizon_simulation(problem, plan, outcome, report.simulation, start,
-                                            f"report.{report.simulation_key}")
+            simulate = horizon_simulation
+            if taste:  # each period's choice is drawn from its probabilities, then tomorrow's point
+                from worker.taste_horizon import taste_horizon_simulation as simulate
+            simulation = simulate(problem, plan, outcome, report.simulation, start,
+                                  f"report.{report.simulation_key}")
             warnings += simulation.pop("warnings")
     euler = {}
-    if report.euler_errors:
-        euler, note = _euler_by_period(doc, problem, plan, outcome)
+    if report.euler_errors and taste:
+        notes.append("Euler-equation errors were not measured: with taste shocks the choice is random, not a policy "
+                     "rule")
+    elif report.euler_errors:
+        from worker.horizon_euler import euler_by_period
+
+        euler, note = euler_by_period(doc, problem, plan, outcome)
         if note:
             notes.append(note)
     bound = outcome.error_bound
     diagnostics = {
         **problem_diagnostics,
+        **plain(taste),
         **euler,
         "observed_rate": None,
         "warnings": warnings,
@@ -235,7 +275,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     })
     tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
                   "cohort": cohort})
-    result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **tail}
+    result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **probabilities,
+              **tail}
     return apply_axis_order(result, model_axis_order(doc.model))
 
 
@@ -249,63 +290,3 @@ def _collector_paused() -> Iterator[None]:
     finally:
         if running:
             gc.enable()
-
-
-def _euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
-                     outcome: HorizonOutcome) -> tuple[dict[str, Any], str | None]:
-    """``({"euler_errors": ...}, note)``: Euler-equation errors of every period but the last, pooled.
-
-    Period ``t``'s errors use its params, discount and policy today and period ``t + 1``'s tomorrow (the
-    last period's tomorrow is the terminal value, which has no policy: it is left out).  The result has
-    the keys of :func:`worker.euler.euler_errors` over all periods measured (``profile``: the first
-    period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
-    """
-    import dataclasses
-
-    from worker.euler import EulerSetup, euler_errors, grid_policy, setup
-    from worker.feasibility import period_params
-
-    if getattr(problem, "choose_at", None) is not None or getattr(problem, "model_data", None) is None:
-        return {}, ("Euler-equation errors were not measured: with a finite horizon they are measured for a choice "
-                    "restricted to the grid")
-    data = problem.model_data
-    found = setup(data)
-    if not isinstance(found, EulerSetup):
-        return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
-                             "value of a state (next_of)")
-    first, periods = outcome.first_period, plan.periods
-    if periods - first < 2:
-        return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
-    choice = data.choices[0]
-    grid = data.state_grids[0]
-
-    def model_and_rule(t: int) -> tuple[Any, Any]:
-        values = problem.choice_values(outcome.policies[t - first])[choice]
-        period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
-        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
-
-    by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
-    pooled = {"points": 0, "constrained": 0, "undefined": 0}
-    worst, total, profile = None, 0.0, None
-    for t in range(first, periods - 1):
-        today, rule = model_and_rule(t)
-        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
-        profile = profile or errors["profile"]
-        by_period["period"].append(t)
-        by_period["max_log10"].append(errors["max_log10"])
-        by_period["mean_log10"].append(errors["mean_log10"])
-        for key in pooled:
-            pooled[key] += errors[key]
-        if errors["max_log10"] is not None:
-            worst = errors["max_log10"] if worst is None else max(worst, errors["max_log10"])
-            total += errors["mean_log10"] * errors["points"]
-    result = {
-        "max_log10": worst,
-        "mean_log10": total / pooled["points"] if pooled["points"] else None,
-        **pooled,
-        "define": found.define,
-        "profile": profile,
-        "by_period": by_period,
-    }
-    note = f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal value)"
-    return {"euler_errors": result}, note

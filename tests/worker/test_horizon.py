@@ -617,13 +617,3 @@ def test_a_period_with_no_allowed_choice_somewhere_names_the_period_and_the_poin
         solve(document)
     message = caught.value.errors[0]["message"]
     assert message.startswith("in period 2 no choice is allowed") and "a = 0" in message
-
-
-def test_taste_shocks_and_draws_after_the_choice_are_refused_with_a_horizon_for_now() -> None:
-    tasted = cake(5, 20)
-    tasted["model"]["taste_shocks"] = {"scale": 0.1}
-    assert "model.taste_shocks" in bad(tasted)
-    drawn = cake(5, 20)
-    drawn["model"]["shocks"] = {"spill": {"iid": {"values": [0.0, 0.01], "probs": [0.5, 0.5]},
-                                          "timing": "after_choice", "transform": "none"}}
-    assert "model.shocks.spill.timing" in bad(drawn)

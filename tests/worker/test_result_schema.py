@@ -88,6 +88,18 @@ def _tabular_horizon() -> dict[str, Any]:
     return document
 
 
+def _tabular_taste_horizon() -> dict[str, Any]:
+    document = _tabular_horizon()
+    document["model"]["taste_shocks"] = {"scale": 0.5}
+    return document
+
+
+def _glassblower_egm() -> dict[str, Any]:
+    document = _glassblower(12, continuous=True)
+    document["solver"] = {"method": "endogenous_grid"}
+    return document
+
+
 def _grid_taste() -> dict[str, Any]:
     document = load_example("courier_van_replacement")
     document["report"] = {"stationary": True, "simulation": SIMULATION, "euler_errors": True}
@@ -122,6 +134,8 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
     "continuous horizon": lambda: _glassblower(12, continuous=True),
     "tabular horizon": _tabular_horizon,
     "tabular taste shocks": _tabular_taste,
+    "tabular taste shocks with a horizon": _tabular_taste_horizon,
+    "endogenous grid method with a horizon": _glassblower_egm,
     "grid taste shocks": _grid_taste,
     "endogenous grid method": lambda: _economy(
         solver={"method": "endogenous_grid", "tolerance": 1e-8},

@@ -158,7 +158,6 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
     faults = period_list_faults(model.params, horizon)
     if horizon is None:
         return faults
-    faults += _not_yet_faults(model)
     taken = {"params": model.params, "states": model.states, "shocks": model.shocks, "choices": model.choices,
              "define": model.define}
     for section, names in taken.items():
@@ -182,21 +181,6 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
     return faults
 
 
-def _not_yet_faults(model: Any) -> list[Fault]:
-    """A horizon with taste shocks or with draws after the choice: not solved by backward induction yet."""
-    faults = []
-    if getattr(model, "taste_shocks", None) is not None:
-        faults.append(fault("taste_shocks", "taste shocks are not yet solved with a finite horizon; drop one of "
-                            "model.taste_shocks and model.horizon"))
-    shocks = getattr(model, "shocks", None) or {}
-    faults += [
-        fault(join_path("shocks", name, "timing"), "draws after the choice are not yet solved with a finite "
-              "horizon; drop one of them and model.horizon")
-        for name, shock in shocks.items() if getattr(shock, "after_choice", False)
-    ]
-    return faults
-
-
 def _names_faults(text: str, known: list[str], lists: list[str], where: str) -> list[Fault]:
     try:
         expression = expressions.parse(text, path=where)
@@ -216,7 +200,7 @@ def tabular_horizon_faults(model: Any) -> list[Fault]:
     horizon = model.horizon
     if horizon is None:
         return []
-    faults = _not_yet_faults(model)
+    faults = []
     terminal = horizon.terminal_value
     if isinstance(terminal, np.ndarray) and terminal.shape != (model.n_states,):
         faults.append(fault(join_path("horizon", "terminal_value"), f"has {terminal.size:,} values, but the model "

@@ -110,7 +110,9 @@ class SolverSpec(Part):
             "endogenous grid method, for a model with one state, a continuous next_of choice and a reward that "
             "depends on it through one define; its value certified by Howard's method from the policy found). "
             "A model with a finite horizon (model.horizon) is always solved by \"backward_induction\", which may be "
-            "named here; without a horizon it is refused."
+            "named here (without a horizon it is refused); with a horizon, \"endogenous_grid\" takes each "
+            "period's policy by one round of the endogenous grid method, each period's value still the exact "
+            "step of the fitted Bellman operator."
         ),
     )
     tolerance: Positive = Field(

@@ -143,6 +143,26 @@ class EndogenousGrid(Reported):
     )
 
 
+class EndogenousGridByPeriod(Reported):
+    """solver.method endogenous_grid with a finite horizon: one round of the method per period."""
+
+    periods: int = Field(description="Periods whose policy is the method's round (from the next period's policy).")
+    searched_periods: list[int] = Field(
+        description="Periods solved by the ordinary search instead (the last, when the terminal value has no slope "
+        "the method can use)."
+    )
+    seconds: float = Field(description="Time (s) spent in the rounds.")
+    greedy_gap: float = Field(
+        description="The largest distance, over the periods, between the method's policy (the one reported) and the "
+        "fitted problem's own maximising policy at that period's value."
+    )
+    value_gap: float = Field(
+        description="The most the method's policy loses, over the periods, against the fitted maximum (the value "
+        "reported): V_t − (reward + β_t E V_{t+1}) at the method's choice, never negative beyond rounding."
+    )
+    greedy_gap_by_period: list[float] = Field(description="greedy_gap of each period, from the first solved.")
+
+
 class ContinuousChoice(Reported):
     """A continuous choice: how its maximum was searched for and how tomorrow's value was interpolated."""
 
@@ -168,7 +188,9 @@ class ContinuousChoice(Reported):
     at_upper_end: int = absent_unless(
         description="next_of choices: points choosing the highest value of the state's grid."
     )
-    endogenous_grid: EndogenousGrid = absent_unless(description="With solver.method endogenous_grid.")
+    endogenous_grid: EndogenousGrid | EndogenousGridByPeriod = absent_unless(
+        description="With solver.method endogenous_grid (finite horizon: by period)."
+    )
 
 
 class TasteShockInfo(Reported):
@@ -179,8 +201,9 @@ class TasteShockInfo(Reported):
     euler_constant_included: bool = Field(
         description="False: the shocks are centred, so the value does not include σ × Euler's constant per period."
     )
-    location_zero_offset: float = Field(
-        description="σ × Euler's constant / (1 − discount): add it to every value for shocks of location zero."
+    location_zero_offset: float | list[float] = Field(
+        description="σ × Euler's constant / (1 − discount): add it to every value for shocks of location zero "
+        "(finite horizon: one number per period, o_t = σγ + β_t·o_{t+1}, added to that period's values)."
     )
     note: str = Field(description="What the value includes, in words.")
     choices: dict[str, list[NumberOrLabel]] = Field(

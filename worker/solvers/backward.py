@@ -51,7 +51,7 @@ from worker.errors import Canceled, InfeasibleModel
 from worker.problem import CompiledProblem
 from worker.solvers.outcome import EPS, ROUNDING_ULPS, Checkpoint, Entry
 
-__all__ = ["METHOD", "HorizonOutcome", "PeriodPlan", "backward_induction"]
+__all__ = ["METHOD", "HorizonOutcome", "PeriodPlan", "backward_induction", "period_step"]
 
 METHOD = "backward_induction"
 """The method name a finite-horizon result reports (and its checkpoints carry)."""
@@ -73,6 +73,11 @@ class PeriodPlan:
         ``enter(t)`` makes the problem's Bellman step that of period ``t`` (its params and discount).
     describe_point : callable
         ``describe_point(i)``: flat point ``i`` in words, for errors.
+    stepper : object, optional
+        Takes each period's step in place of the plain one (the endogenous grid method,
+        :mod:`worker.egm_horizon`): ``step(t, after, verification, warnings) -> (V_t, policy)``,
+        ``carry() -> dict`` of arrays saved with each checkpoint, ``resume(state, first_done) -> bool``
+        (whether a checkpoint's carry restores it).
     """
 
     periods: int
@@ -80,6 +85,7 @@ class PeriodPlan:
     terminal: np.ndarray
     enter: Callable[[int], None]
     describe_point: Callable[[int], str]
+    stepper: Any = None
 
 
 @dataclass
@@ -135,7 +141,8 @@ def backward_induction(
         if problem.hints_active else None
     done, seconds_before, resumed = 0, 0.0, None
     state = checkpoint.load() if checkpoint is not None else None
-    if _usable(state, fingerprint, T, n):
+    if _usable(state, fingerprint, T, n) and (
+            plan.stepper is None or plan.stepper.resume(state, T - int(state["iteration"]))):
         done = int(state["iteration"])
         values[T - done:] = state["values"]
         policies[T - done:] = state["policies"]
@@ -161,8 +168,11 @@ def backward_induction(
         t = T - 1 - done
         after = plan.terminal if t == T - 1 else values[t + 1]
         plan.enter(t)
-        tv, policy = _period_step(problem, plan, t, after, None if t == T - 1 else policies[t + 1], verification,
-                                  warnings)
+        if plan.stepper is not None:
+            tv, policy = plan.stepper.step(t, after, verification, warnings)
+        else:
+            tv, policy = period_step(problem, plan, t, after, None if t == T - 1 else policies[t + 1],
+                                      verification, warnings)
         scale = max(float(np.abs(tv).max()), float(np.abs(after).max()))
         bounds[t] = ROUNDING_ULPS * EPS * scale + plan.discounts[t] * (0.0 if t == T - 1 else bounds[t + 1])
         values[t], policies[t] = tv, policy
@@ -186,6 +196,7 @@ def backward_induction(
                 "values": values[T - done:].copy(), "policies": policies[T - done:].copy(),
                 "bounds": bounds[T - done:].copy(), "log": list(log), "warnings": list(warnings),
                 "verification": None if verification is None else dict(verification), "seconds": last_save,
+                **({} if plan.stepper is None else plan.stepper.carry()),
             })
     if verification is not None:
         verification["seconds"] = elapsed()
@@ -196,7 +207,7 @@ def backward_induction(
     )
 
 
-def _period_step(
+def period_step(
     problem: CompiledProblem, plan: PeriodPlan, t: int, after: np.ndarray, guess: np.ndarray | None,
     verification: dict[str, Any] | None, warnings: list[str],
 ) -> tuple[np.ndarray, np.ndarray]:

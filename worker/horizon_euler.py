@@ -1,0 +1,106 @@
+"""Euler-equation errors through a finite horizon: each period against the next, the last left out.
+
+Period ``t``'s first-order condition links its choice today (its params, discount and policy) with
+period ``t + 1``'s policy tomorrow, so the errors of :mod:`worker.euler` are measured for every
+period but the last, whose tomorrow is the terminal value: it has no policy and so no Euler
+equation.  Today's and tomorrow's policies between grid points are
+
+* for a choice restricted to the grid, each period's grid policy read linearly along the state;
+* for a continuous choice, each period's own search (:meth:`policy_rule` of the compiled problem at
+  the value it was chosen against, ``V_{t+1}``), run with that period's params and discount: the rule
+  enters its period before every search, since today's and tomorrow's are called in turn.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Any, Callable
+
+import numpy as np
+
+from worker.problem import CompiledProblem
+from worker.solvers.backward import HorizonOutcome, PeriodPlan
+
+__all__ = ["euler_by_period"]
+
+
+def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
+                    outcome: HorizonOutcome) -> tuple[dict[str, Any], str | None]:
+    """``({"euler_errors": ...}, note)``: Euler-equation errors of every period but the last, pooled.
+
+    The result has the keys of :func:`worker.euler.euler_errors` over all periods measured (``profile``:
+    the first period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
+    """
+    from worker.euler import EulerSetup, euler_errors, grid_policy, setup
+    from worker.feasibility import period_params
+
+    data = getattr(problem, "model_data", None)
+    if data is None:
+        return {}, "Euler-equation errors were not measured: they apply to grid models"
+    if getattr(data, "draws", None) is not None:
+        return {}, "Euler-equation errors were not measured: the model has draws after the choice"
+    continuous = getattr(problem, "choose_at", None) is not None
+    found = setup(data)
+    if not isinstance(found, EulerSetup):
+        return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
+                             "value of a state (next_of)")
+    first, periods = outcome.first_period, plan.periods
+    if periods - first < 2:
+        return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
+    choice = data.choices[0]
+    grid = data.state_grids[0]
+
+    def model_and_rule(t: int) -> tuple[Any, Callable[[np.ndarray], np.ndarray]]:
+        period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
+        policy = outcome.policies[t - first]
+        own = None if plan.stepper is None else plan.stepper.rule(t)
+        if own is not None:  # the endogenous grid method's own rule (linear along its endogenous grid)
+            return period_data, own
+        if continuous:
+            after = plan.terminal if t == periods - 1 else outcome.values[t + 1 - first]
+            return period_data, _in_period(plan, t, problem.policy_rule(np.asarray(after, dtype=np.float64), policy))
+        values = problem.choice_values(policy)[choice]
+        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
+
+    by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
+    pooled = {"points": 0, "constrained": 0, "undefined": 0}
+    worst, total, profile = None, 0.0, None
+    for t in range(first, periods - 1):
+        today, rule = model_and_rule(t)
+        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        profile = profile or errors["profile"]
+        by_period["period"].append(t)
+        by_period["max_log10"].append(errors["max_log10"])
+        by_period["mean_log10"].append(errors["mean_log10"])
+        for key in pooled:
+            pooled[key] += errors[key]
+        if errors["max_log10"] is not None:
+            worst = errors["max_log10"] if worst is None else max(worst, errors["max_log10"])
+            total += errors["mean_log10"] * errors["points"]
+    plan.enter(first)  # the rules entered other periods; leave the problem in the first, as the result describes
+    result = {
+        "max_log10": worst,
+        "mean_log10": total / pooled["points"] if pooled["points"] else None,
+        **pooled,
+        "define": found.define,
+        "profile": profile,
+        "by_period": by_period,
+    }
+    note = (f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal "
+            "value, with no Euler equation)"
+            + ("; the policy between grid points is the endogenous grid method's own (linear along its grid)"
+               if plan.stepper is not None else
+               "; the policy between grid points is each period's own search" if continuous else ""))
+    return {"euler_errors": result}, note
+
+
+def _in_period(plan: PeriodPlan, t: int, rule: Any) -> Callable[[np.ndarray], np.ndarray]:
+    """``rule`` run in period ``t`` (its params and discount), whichever period the problem was left in."""
+    if rule is None:
+        raise ValueError("a continuous choice's rule between grid points needs one state variable")
+
+    def in_period(k: np.ndarray) -> np.ndarray:
+        plan.enter(t)
+        return rule(k)
+
+    return in_period
