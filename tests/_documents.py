@@ -173,6 +173,7 @@ def random_replacement(
     seed: int = 0,
     label: str = "fleet upkeep (invented)",
     checkpoint_s: float | None = None,
+    discount: float = 0.999,
     **solver: Any,
 ) -> dict[str, Any]:
     """An invented random sparse problem solved for exactly ``iterations`` improvement steps.
@@ -192,7 +193,7 @@ def random_replacement(
     return {
         "version": 1,
         "label": label,
-        "discount": 0.999,
+        "discount": discount,
         "model": {
             "kind": "tabular",
             "states": states,

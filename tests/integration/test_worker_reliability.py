@@ -11,6 +11,7 @@ sparse replacement problem.
 
 from __future__ import annotations
 
+import functools
 import itertools
 import os
 import signal
@@ -36,6 +37,7 @@ from service.store import TERMINAL_STATES, JobStore
 from service.task import run_job
 from tests._documents import idle_busy_worn, random_replacement
 from worker.convergence_log import KEEP_FIRST
+from worker.solve import solve
 
 REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}
@@ -59,15 +61,34 @@ def worn_machine() -> dict[str, Any]:
 
 def slow_replacement(iterations: int, *, checkpoint_s: float | None = None) -> dict[str, Any]:
     """A random sparse replacement problem that takes about 0.1 s per improvement step (invented data)."""
-    # Howard stretches an evaluation phase to 20 × evaluation_steps once the policy is stable.
+    # Howard stretches an evaluation phase to 20 × evaluation_steps once the policy is stable, and ends
+    # it early only when the value stops changing, which a discount this close to 1 never lets happen
+    # within the test (at 0.999, some processors reached the floating-point fixed point in 7 steps).
     return random_replacement(
         iterations,
         seed=7,
         label="random replacement problem (invented)",
         checkpoint_s=checkpoint_s,
+        discount=SLOW_DISCOUNT,
         method="howard",
-        evaluation_steps=100,
+        evaluation_steps=_evaluation_steps_for(0.1),
     )
+
+
+SLOW_DISCOUNT = 0.99999
+
+
+@functools.cache
+def _evaluation_steps_for(seconds: float) -> int:
+    """Howard's evaluation_steps that make one stable-policy step take about ``seconds`` on this machine.
+
+    Measured once in this process (machines differ eightfold), so the tests that kill or cancel a
+    running job find it running whatever the machine.
+    """
+    probe = solve(random_replacement(12, seed=7, discount=SLOW_DISCOUNT, method="howard", evaluation_steps=100))
+    times = [entry["seconds"] for entry in probe["log"]]
+    per_step = max((times[-1] - times[5]) / (len(times) - 6), 1e-6)  # steps 7.. run stretched phases
+    return int(min(max(100 * seconds / per_step, 100), 20_000))
 
 
 def submit(store: JobStore, document: dict[str, Any], **kwargs: Any) -> str:
