@@ -78,8 +78,8 @@ class Economy:
 
     def __post_init__(self) -> None:
         z, self.P = tauchen(self.rho, self.sd)
-        self.l = np.exp(z)
-        self.L = float(stationary_chain(self.P) @ self.l)
+        self.endowment = np.exp(z)
+        self.L = float(stationary_chain(self.P) @ self.endowment)
         self.grid = ASSET_MAX * np.linspace(0.0, 1.0, self.points) ** ASSET_EXPONENT
         self._c: np.ndarray | None = None  # the last consumption policy: the next solve starts there
 
@@ -91,15 +91,15 @@ class Economy:
 
     def savings(self, r: float) -> np.ndarray:
         """Next period's assets at every (grid asset, endowment), by the endogenous grid method."""
-        grid, l, P, mu = self.grid, self.l, self.P, self.mu
-        cash = (1.0 + r) * grid[:, None] + self.wage(r) * l[None, :]
+        grid, e, P, mu = self.grid, self.endowment, self.P, self.mu
+        cash = (1.0 + r) * grid[:, None] + self.wage(r) * e[None, :]
         c = self._c if self._c is not None else cash.copy()  # start: consume all cash on hand
         for _ in range(20_000):
             marginal = (c ** -mu) @ P.T  # E[u'(c(a', l')) | l] at every a' on the grid
             c_today = (BETA * (1.0 + r) * marginal) ** (-1.0 / mu)
-            a_today = (c_today + grid[:, None] - self.wage(r) * l[None, :]) / (1.0 + r)
+            a_today = (c_today + grid[:, None] - self.wage(r) * e[None, :]) / (1.0 + r)
             a_next = np.empty_like(c)
-            for j in range(l.size):
+            for j in range(e.size):
                 a_next[:, j] = np.interp(grid, a_today[:, j], grid)
                 # Below the asset level at which a' = 0 is chosen freely, the borrowing limit binds.
                 a_next[grid < a_today[0, j], j] = 0.0

@@ -132,8 +132,8 @@ def client_loop_cell(client: FixqClient, doc: dict) -> tuple[float, float, int]:
             raise RuntimeError(f"a single job ended {record['state']}: {record.get('error')}")
         result = client.result(job["id"])
         pi = np.asarray(result["stationary"]["distribution"])  # (assets, endowment)
-        a, l = np.asarray(result["axes"]["a"]), np.asarray(result["axes"]["l"])
-        mean_a, mean_l = float((pi * a[:, None]).sum()), float((pi * l[None, :]).sum())
+        a, e = np.asarray(result["axes"]["a"]), np.asarray(result["axes"]["l"])
+        mean_a, mean_l = float((pi * a[:, None]).sum()), float((pi * e[None, :]).sum())
         return mean_a - mean_l * (ALPHA / (r + DELTA)) ** (1 / (1 - ALPHA))
 
     started = time.perf_counter()

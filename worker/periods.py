@@ -28,6 +28,7 @@ from worker.document.horizon import DISCOUNT_NAME, PERIOD_NAME, varies_by_period
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate, parse
 from worker.problem import CompiledProblem
+from worker.report import shock_chains
 from worker.solvers.backward import METHOD, HorizonOutcome, PeriodPlan
 
 __all__ = ["PERIOD_AXIS", "horizon_result", "period_plan"]
@@ -234,7 +235,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         "axes": {PERIOD_AXIS: periods, **problem.axes},
     })
     tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
-                  "cohort": cohort})
+                  "cohort": cohort, "chains": shock_chains(doc)})
     return {
         **head,
         "value": value,

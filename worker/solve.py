@@ -25,7 +25,7 @@ from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
 from worker.memory import memory_limit
 from worker.problem import CompiledProblem
-from worker.report import simulate_report, stationary_report
+from worker.report import shock_chains, simulate_report, stationary_report
 from worker.solvers import METHODS, Checkpoint, SolveOutcome
 from worker.tabular import STATE_AXIS
 
@@ -395,7 +395,8 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
             "axes": problem.axes,
         }
     )
-    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation})
+    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation,
+                   "chains": shock_chains(doc)})
     # The big nested lists come from ndarray.tolist() (``describe_policy`` promises the same), so they
     # are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
     return {
