@@ -192,7 +192,7 @@ short (a share of the distribution; common practice)."""
 
 
 def stationary_report(
-    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None
+    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None
 ) -> dict[str, Any]:
     """The stationary distribution of (states, shocks) under ``policy``.
 
@@ -207,7 +207,9 @@ def stationary_report(
         ``distribution``: nested lists of shape ``problem.shape`` (see
         :func:`long_run_distribution` for which distribution when the policy's
         chain has several recurrent classes); ``means`` and ``sd``: the mean and
-        standard deviation of every state/shock axis and every choice under it;
+        standard deviation of every state/shock axis, every choice and (given the
+        validated ``doc``) every define under it (null where a define is not finite
+        somewhere the distribution has mass);
         ``ends`` (grid models): per endogenous state, the mass at the ``min``
         and ``max`` of its grid; ``method``, ``residual``, ``steps``;
         ``warnings`` (also when more than `TOP_MASS_WARNING` of the mass sits at
@@ -215,8 +217,20 @@ def stationary_report(
     """
     pi, info = long_run_distribution(problem.policy_matrix(policy))
     series = _series(problem, policy)
-    means = {name: float(pi @ values) for name, values in series.items()}
-    sds = {name: float(np.sqrt(max(pi @ (values - means[name]) ** 2, 0.0))) for name, values in series.items()}
+    if doc is not None:
+        from worker.aggregates import define_series
+
+        series.update((name, values) for name, values in define_series(doc, problem, policy).items()
+                      if name not in series)
+    means, sds = {}, {}
+    for name, values in series.items():
+        held = values[pi > 0]  # a define may be undefined where no mass is
+        if not np.isfinite(held).all():
+            means[name] = sds[name] = None
+            continue
+        weights = pi[pi > 0]
+        means[name] = float(weights @ held)
+        sds[name] = float(np.sqrt(max(weights @ (held - means[name]) ** 2, 0.0)))
     ends = _ends(problem, pi, real_ends or {}, info["warnings"])
     return {"distribution": _as_shape(pi, problem.shape), "means": means, "sd": sds, "ends": ends, **info}
 

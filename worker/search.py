@@ -27,12 +27,12 @@ from typing import Any
 import numpy as np
 from scipy.optimize import brentq, least_squares
 
-from worker.aggregates import Condition, aggregate_value, parse_condition
+from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
 from worker.document import parse_document
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
-from worker.expressions import evaluate, parse
+from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.report import long_run_distribution
 
@@ -237,20 +237,6 @@ def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[s
         out["model"] = model
     out["report"] = {**(document.get("report") or {}), "stationary": True}
     return out
-
-
-def point_env(doc: Any, problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
-    """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
-    choices (chosen there) and the defines that can be evaluated from them."""
-    env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
-    env[DISCOUNT] = float(doc.discount)
-    env.update(problem.state_values())
-    env.update(problem.choice_values(policy))
-    for name, text in doc.model.define.items():
-        expr = parse(text, path=join_path("model.define", name))
-        if expr.names <= env.keys():
-            env[name] = evaluate(expr, env)
-    return env
 
 
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,

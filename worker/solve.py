@@ -362,7 +362,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.stationary:
         states = getattr(doc.model, "states", None)
         real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
-        stationary = stationary_report(problem, outcome.policy, real_ends)
+        stationary = stationary_report(problem, outcome.policy, real_ends, doc)
         warnings += stationary.pop("warnings", [])
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
