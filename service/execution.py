@@ -28,6 +28,7 @@ from rq.timeouts import JobTimeoutException
 
 from service.checkpoints import RedisCheckpoint
 from service.store import JobStore
+from service.store.execution import failed_search_summary
 from worker import solve
 from worker.convergence_log import ConvergenceLog
 from worker.errors import Canceled, FixqError, InvalidDocument
@@ -131,7 +132,10 @@ class Execution:
             return self._finish("canceled", iterations=exc.context.get("iteration"))
         except FixqError as exc:
             self._final_flush()
-            return self._finish("failed", error={"title": exc.title, "detail": exc.detail, "errors": exc.errors})
+            trials = exc.context.get("trials")
+            search = failed_search_summary(trials) if isinstance(trials, list) else None
+            return self._finish("failed", error={"title": exc.title, "detail": exc.detail, "errors": exc.errors},
+                                search=search)
         except redis.RedisError:
             # Not the job's fault: it stays `running`, its lease lapses and the
             # reaper gives it to another execution, which resumes it.

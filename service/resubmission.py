@@ -45,6 +45,13 @@ A result is reused only when it is a function of the document alone: status
 ``converged`` or ``max_iterations``, not ``time_limit`` (how far a timed-out
 solve got depends on the machine's load).  ``?fresh=true`` skips the lookup.
 
+A document that differs from a solved one only in its starting values
+(``solver.initial``) is answered from it too, when that job ``converged``: the
+fixed point does not depend on where the iteration starts.  Such twins share
+:func:`start_free_hash`, the hash of the canonical document without
+``solver.initial``.  A model with a finite horizon has none: there
+``solver.initial`` is the value after the last period, part of the problem.
+
 Keys in Redis (prefix ``fixq``)
 -------------------------------
 =======================================  ======  ===============================
@@ -56,6 +63,7 @@ Keys in Redis (prefix ``fixq``)
                                                  job ids submitted with that
                                                  hash, kept ``result_ttl_s +
                                                  job_timeout_s`` after the latest
+``fixq:solved:{owner}:start:{hash}``     list    the same, by :func:`start_free_hash`
 =======================================  ======  ===============================
 """
 
@@ -67,13 +75,15 @@ import time
 from dataclasses import dataclass
 from typing import Any
 
+import orjson
 import redis
 
 from service import queue as rq_queues
 from service._formats import iso_utc
 from service.problems import Problem
 from service.store import JobStore
-from worker.document import DEFAULT_PRIORITY
+from worker.document import DEFAULT_PRIORITY, ProblemDocument
+from worker.document.canonical import canonical_json
 
 __all__ = [
     "CLAIM_S",
@@ -83,6 +93,7 @@ __all__ = [
     "IdempotencyClaim",
     "IdempotencyKeys",
     "SolvedJobs",
+    "start_free_hash",
     "with_reuse_fields",
 ]
 
@@ -251,10 +262,26 @@ class SolvedJobs:
     def index_key(self, owner: str, document_hash: str) -> str:
         return self.store.key("solved", owner, document_hash)
 
+    def start_free_key(self, owner: str, start_free: str) -> str:
+        return self.store.key("solved", owner, "start", start_free)
+
+    def remember_start_free(self, owner: str, start_free: str | None, job_id: str) -> None:
+        """Note that ``owner`` submitted ``job_id`` with this :func:`start_free_hash` (None: nothing to note)."""
+        if start_free is not None:
+            self._remember(self.start_free_key(owner, start_free), job_id)
+
+    def find_start_free(self, owner: str, start_free: str | None) -> str | None:
+        """The newest ``converged`` job of ``owner`` with this :func:`start_free_hash` and a stored result."""
+        if start_free is None:
+            return None
+        return self._find(self.start_free_key(owner, start_free), owner, None, frozenset({"converged"}))
+
     def remember(self, owner: str, document_hash: str, job_id: str) -> None:
         """Note that ``owner`` submitted ``job_id`` with ``document_hash``."""
+        self._remember(self.index_key(owner, document_hash), job_id)
+
+    def _remember(self, key: str, job_id: str) -> None:
         settings = self.store.settings
-        key = self.index_key(owner, document_hash)
         with self.store.redis.pipeline(transaction=True) as pipe:
             pipe.lpush(key, job_id)
             pipe.ltrim(key, 0, REUSE_CANDIDATES - 1)
@@ -263,8 +290,13 @@ class SolvedJobs:
 
     def find(self, owner: str, document_hash: str) -> str | None:
         """The newest ``done`` job of ``owner`` with this hash, a reusable status and a stored result."""
+        return self._find(self.index_key(owner, document_hash), owner, document_hash, REUSABLE_STATUSES)
+
+    def _find(self, key: str, owner: str, document_hash: str | None, statuses: frozenset[str]) -> str | None:
+        """The newest job listed at ``key`` that is ``owner``'s, ``done`` with a status in ``statuses`` and a
+        stored result (and of ``document_hash``, unless None)."""
         store = self.store
-        candidates = [member.decode() for member in store.redis.lrange(self.index_key(owner, document_hash), 0, -1)]
+        candidates = [member.decode() for member in store.redis.lrange(key, 0, -1)]
         if not candidates:
             return None
         with store.redis.pipeline(transaction=False) as pipe:
@@ -278,8 +310,8 @@ class SolvedJobs:
                 state == "done"
                 and has_result
                 and job_owner == owner
-                and job_hash == document_hash
-                and status in REUSABLE_STATUSES
+                and (document_hash is None or job_hash == document_hash)
+                and status in statuses
             ):
                 return job_id
         return None
@@ -348,3 +380,14 @@ def with_reuse_fields(store: JobStore, records: list[dict[str, Any]]) -> list[di
         record["reused"] = reused == b"true"
         record["reused_from"] = reused_from.decode() if reused_from is not None else None
     return records
+
+
+def start_free_hash(document: ProblemDocument) -> str | None:
+    """SHA-256 (hex) of the canonical document without ``solver.initial``: equal for documents that pose the
+    same fixed point from any start.  None for a finite horizon, whose ``solver.initial`` is part of the problem
+    (the value after the last period)."""
+    if getattr(document.model, "horizon", None) is not None:
+        return None
+    data = orjson.loads(canonical_json(document))
+    (data.get("solver") or {}).pop("initial", None)
+    return hashlib.sha256(orjson.dumps(data)).hexdigest()

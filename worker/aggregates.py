@@ -21,11 +21,14 @@ from typing import Any
 
 import numpy as np
 
-from worker.errors import InvalidDocument
+from worker.errors import InvalidDocument, join_path
 from worker.expressions import Expression, evaluate, parse
 
-__all__ = ["AGGREGATES", "Aggregate", "Condition", "aggregate_value", "parse_condition", "point_values"]
+__all__ = ["AGGREGATES", "DISCOUNT", "Aggregate", "Condition", "aggregate_value", "define_series", "parse_condition",
+           "point_env", "point_values"]
 
+DISCOUNT = "discount"
+"""The name by which a search's unknown or condition means the document's discount factor."""
 AGGREGATES = {"mean": 1, "sd": 1, "quantile": 2, "mass": 1}
 """The aggregate calls of a condition and how many arguments each takes."""
 
@@ -127,3 +130,30 @@ def aggregate_value(aggregate: Aggregate, pi: np.ndarray, env: dict[str, Any]) -
     # Rounding may leave the total a hair under 1: q = 1 then still names the largest value.
     at = int(np.searchsorted(cumulative, aggregate.q * cumulative[-1], side="left"))
     return float(values[order][min(at, values.size - 1)])
+
+
+def point_env(doc: Any, problem: Any, policy: np.ndarray) -> dict[str, Any]:
+    """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
+    choices (chosen there) and the defines that can be evaluated from them (not those of a draw revealed
+    after the choice)."""
+    env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
+    env[DISCOUNT] = float(doc.discount)
+    env.update(problem.state_values())
+    env.update(problem.choice_values(policy))
+    for name, text in doc.model.define.items():
+        expr = parse(text, path=join_path("model.define", name))
+        if expr.names <= env.keys():
+            env[name] = evaluate(expr, env)
+    return env
+
+
+def define_series(doc: Any, problem: Any, policy: np.ndarray) -> dict[str, np.ndarray]:
+    """Each define of a grid model that can be evaluated at every point under ``policy`` (see `point_env`),
+    as an ``(n,)`` array; empty for models without defines."""
+    defines = getattr(doc.model, "define", None)
+    if not defines:
+        return {}
+    env = point_env(doc, problem, policy)
+    n = int(np.prod(problem.shape))
+    return {name: np.array(np.broadcast_to(np.asarray(env[name], dtype=np.float64), (n,)))
+            for name in defines if name in env}

@@ -35,6 +35,7 @@ from worker.document.horizon import DISCOUNT_NAME, PERIOD_NAME, varies_by_period
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate, parse
 from worker.problem import CompiledProblem
+from worker.report import shock_chains
 from worker.solvers.backward import METHOD, HorizonOutcome, PeriodPlan
 
 __all__ = ["PERIOD_AXIS", "horizon_result", "period_plan"]
@@ -274,7 +275,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         "axes": {PERIOD_AXIS: periods, **problem.axes},
     })
     tail = plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": None, "simulation": simulation,
-                  "cohort": cohort})
+                  "cohort": cohort, "chains": shock_chains(doc)})
     result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **probabilities,
               **tail}
     return apply_axis_order(result, model_axis_order(doc.model))

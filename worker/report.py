@@ -11,7 +11,7 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-from worker.errors import InvalidDocument
+from worker.errors import InvalidDocument, join_path
 from worker.problem import CompiledProblem
 from worker.shocks import stationary_distribution
 
@@ -23,7 +23,9 @@ __all__ = [
     "PERCENTILES",
     "POWER_MAX_STEPS",
     "POWER_TOLERANCE",
+    "CHAIN_TRANSITION_MAX_POINTS",
     "long_run_distribution",
+    "shock_chains",
     "simulate_report",
     "stationary_report",
 ]
@@ -33,6 +35,12 @@ DIRECT_MAX_STATES = 20_000
 incomplete-LU preconditioner (one closed class), else by power iteration, whose memory stays O(nonzeros).
 A sparse LU of a 28,000-state savings chain fills in to 40 million entries (8 s, measured); the
 preconditioned GMRES settles it to a residual of 3e-14 in 1.1 s."""
+CHAIN_TRANSITION_MAX_POINTS = 100
+"""A shock's transition matrix is returned in the result's ``chains`` up to this many values (10,000 entries);
+a longer chain's ``transition`` is null (its values are always returned)."""
+PINNED_TOLERANCE = 1e-12
+"""Largest residual ``‖πP − π‖₁`` accepted from the pinned sparse LU (a pin of tiny mass can leave more; the
+general solve of :func:`worker.shocks.stationary_distribution` then takes over)."""
 ILU_DROP_TOLERANCE = 1e-3
 """``spilu``'s drop tolerance for the GMRES preconditioner (measured fastest of 1e-3 to 1e-5)."""
 ILU_FILL_FACTOR = 5
@@ -83,7 +91,10 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     warnings: list[str] = []
     pi = None
     if n <= DIRECT_MAX_STATES:
-        pi = stationary_distribution(matrix)
+        # One closed class (the usual case) by one sparse LU of the pinned system; else the general solve.
+        pi = _pinned(matrix, n, direct=True)
+        if pi is None or float(np.abs(transposed @ pi - pi).sum()) > PINNED_TOLERANCE:
+            pi = stationary_distribution(matrix)
         method, steps = "direct", 0
     else:
         pi = _preconditioned(matrix, n)
@@ -102,7 +113,13 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
 
 def _preconditioned(matrix: sp.csr_matrix, n: int) -> np.ndarray | None:
     """The stationary distribution of a chain with one closed class by GMRES, or None (several closed
-    classes, or GMRES did not settle).
+    classes, or GMRES did not settle)."""
+    return _pinned(matrix, n, direct=False)
+
+
+def _pinned(matrix: sp.csr_matrix, n: int, *, direct: bool) -> np.ndarray | None:
+    """The stationary distribution of a chain with one closed class, or None (several closed classes, or the
+    solve failed): by a sparse LU when ``direct``, else by GMRES preconditioned with an incomplete LU.
 
     ``π (I − P) = 0`` with ``π_k = 1`` for a state ``k`` of the closed class is a nonsingular system in the
     other entries (the transient ones come out 0); its solution is normalised to sum to 1.
@@ -121,6 +138,15 @@ def _preconditioned(matrix: sp.csr_matrix, n: int) -> np.ndarray | None:
     keep = np.r_[0:k, k + 1:n]
     reduced = sp.csc_matrix(system[keep][:, keep])
     rhs = -system[keep][:, [k]].toarray().ravel()
+    if direct:
+        try:
+            solution = sla.splu(reduced).solve(rhs)
+        except RuntimeError:  # exactly singular
+            return None
+        if not np.isfinite(solution).all():
+            return None
+        pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
+        return pi / pi.sum()
     try:
         ilu = sla.spilu(reduced, drop_tol=ILU_DROP_TOLERANCE, fill_factor=ILU_FILL_FACTOR)
     except RuntimeError:  # an exactly singular pivot: leave it to power iteration
@@ -166,7 +192,7 @@ short (a share of the distribution; common practice)."""
 
 
 def stationary_report(
-    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None
+    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None
 ) -> dict[str, Any]:
     """The stationary distribution of (states, shocks) under ``policy``.
 
@@ -181,7 +207,9 @@ def stationary_report(
         ``distribution``: nested lists of shape ``problem.shape`` (see
         :func:`long_run_distribution` for which distribution when the policy's
         chain has several recurrent classes); ``means`` and ``sd``: the mean and
-        standard deviation of every state/shock axis and every choice under it;
+        standard deviation of every state/shock axis, every choice and (given the
+        validated ``doc``) every define under it (null where a define is not finite
+        somewhere the distribution has mass);
         ``ends`` (grid models): per endogenous state, the mass at the ``min``
         and ``max`` of its grid; ``method``, ``residual``, ``steps``;
         ``warnings`` (also when more than `TOP_MASS_WARNING` of the mass sits at
@@ -189,8 +217,20 @@ def stationary_report(
     """
     pi, info = long_run_distribution(problem.policy_matrix(policy))
     series = _series(problem, policy)
-    means = {name: float(pi @ values) for name, values in series.items()}
-    sds = {name: float(np.sqrt(max(pi @ (values - means[name]) ** 2, 0.0))) for name, values in series.items()}
+    if doc is not None:
+        from worker.aggregates import define_series
+
+        series.update((name, values) for name, values in define_series(doc, problem, policy).items()
+                      if name not in series)
+    means, sds = {}, {}
+    for name, values in series.items():
+        held = values[pi > 0]  # a define may be undefined where no mass is
+        if not np.isfinite(held).all():
+            means[name] = sds[name] = None
+            continue
+        weights = pi[pi > 0]
+        means[name] = float(weights @ held)
+        sds[name] = float(np.sqrt(max(weights @ (held - means[name]) ** 2, 0.0)))
     ends = _ends(problem, pi, real_ends or {}, info["warnings"])
     return {"distribution": _as_shape(pi, problem.shape), "means": means, "sd": sds, "ends": ends, **info}
 
@@ -357,3 +397,20 @@ def _nearest(axis: list[Any], value: Any, path: str) -> int:
     if isinstance(value, bool) or not isinstance(value, (int, float)) or not np.isfinite(value):
         raise InvalidDocument.at(path, f"expected a finite number, got {value!r}")
     return int(np.argmin(np.abs(np.asarray(axis, dtype=np.float64) - float(value))))
+
+
+def shock_chains(doc: Any) -> dict[str, dict[str, Any]]:
+    """The result's ``chains``: every shock drawn before the choice, as the solve discretised it —
+    ``{NAME: {"values": [...], "transition": [[...]]}}`` (values after the transform; ``transition[i][j]`` the
+    probability of values[j] tomorrow given values[i] today; null above `CHAIN_TRANSITION_MAX_POINTS` values).
+    Empty for a model without such shocks (and for tabular models)."""
+    shocks = getattr(doc.model, "shocks", None) or {}
+    out: dict[str, dict[str, Any]] = {}
+    for name, spec in shocks.items():
+        if spec.after_choice:
+            continue
+        values, matrix = spec.chain(path=join_path("model", "shocks", name))
+        transition = np.asarray(matrix, dtype=np.float64)
+        out[name] = {"values": np.asarray(values, dtype=np.float64).tolist(),
+                     "transition": transition.tolist() if values.size <= CHAIN_TRANSITION_MAX_POINTS else None}
+    return out

@@ -27,12 +27,12 @@ from typing import Any
 import numpy as np
 from scipy.optimize import brentq, least_squares
 
-from worker.aggregates import Condition, aggregate_value, parse_condition
+from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
 from worker.document import parse_document
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
-from worker.expressions import evaluate, parse
+from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.report import long_run_distribution
 
@@ -83,7 +83,8 @@ def run_search(
         "search_trial": row}``.
     checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
         Saved after every trial (``kind`` "search", ``fingerprint``, ``iteration`` = trials so far, ``log``,
-        ``trials``, ``value`` = the last solve's value).  A matching saved state is resumed from: the root
+        ``trials``, ``value`` = the last solve's value, at ``value_xs``; ``previous_value`` at ``previous_xs``, the
+        one before, or None).  A matching saved state is resumed from: the root
         finder is deterministic, so it asks for the same trials again, and those already made are answered
         from the saved rows without solving; the next solve starts from the saved value.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
@@ -109,12 +110,17 @@ def run_search(
     last: dict[str, Any] = {}
     begun = time.perf_counter()
     log: list[dict[str, Any]] = []
+    solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last two solves' unknowns and values
     saved = checkpoint.load() if checkpoint is not None else None
     replay: dict[tuple[tuple[float, ...], float], dict[str, Any]] = {}
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
         replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"]): row for row in saved["trials"]}
         log = list(saved.get("log") or [])
         last["value"] = np.asarray(saved["value"], dtype=np.float64)
+        if saved.get("value_xs") is not None:
+            solved.append((tuple(saved["value_xs"]), last["value"]))
+        if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
+            solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
 
     def at(xs: tuple[float, ...], tolerance: float) -> list[float]:
         if (xs, tolerance) in replay:
@@ -124,11 +130,13 @@ def run_search(
             return row["residuals"]
         started = time.perf_counter()
         trial_doc = parse_document(_with_unknowns(document, dict(zip(names, xs))))
-        problem, outcome = trial(trial_doc, last.get("value"), tolerance)
+        problem, outcome = trial(trial_doc, _start(solved, xs, last.get("value")), tolerance)
         pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
-        last.update(value=np.asarray(outcome.value, dtype=np.float64), xs=xs, tolerance=tolerance, doc=trial_doc,
+        solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
+        del solved[:-2]
+        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc,
                     problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
@@ -143,7 +151,10 @@ def run_search(
             on_progress(entry)
         if checkpoint is not None:
             checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
-                             "trials": trials, "value": last["value"]})
+                             "trials": trials, "value": last["value"], "value_xs": list(xs),
+                             # The solve before, from which the next start is extrapolated (see _start).
+                             "previous_xs": list(solved[0][0]) if len(solved) > 1 else None,
+                             "previous_value": solved[0][1] if len(solved) > 1 else None})
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}
@@ -196,6 +207,23 @@ def run_search(
     return result
 
 
+def _start(solved: list[tuple[tuple[float, ...], np.ndarray]], xs: tuple[float, ...],
+           value: np.ndarray | None) -> np.ndarray | None:
+    """The next solve's starting value: with one unknown and two solves made, their values extrapolated
+    linearly in the unknown to ``xs`` (the secant the root finder itself follows; measured to save a third
+    of Howard's iterations); else the last solve's value (``value``, which a resumed search reads from its
+    checkpoint)."""
+    if len(solved) < 2 or len(xs) != 1:
+        return value
+    (x0,), v0 = solved[0]
+    (x1,), v1 = solved[1]
+    if x0 == x1 or v0.shape != v1.shape:
+        return value
+    weight = (xs[0] - x1) / (x1 - x0)
+    start = v1 + weight * (v1 - v0)
+    return start if np.isfinite(start).all() else value
+
+
 def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, spec: Any,
                trials: list[dict[str, Any]]) -> None:
     """One unknown: brentq inside its bracket, after checking that the condition changes sign across it."""
@@ -237,20 +265,6 @@ def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[s
         out["model"] = model
     out["report"] = {**(document.get("report") or {}), "stationary": True}
     return out
-
-
-def point_env(doc: Any, problem: CompiledProblem, policy: np.ndarray) -> dict[str, Any]:
-    """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
-    choices (chosen there) and the defines that can be evaluated from them."""
-    env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
-    env[DISCOUNT] = float(doc.discount)
-    env.update(problem.state_values())
-    env.update(problem.choice_values(policy))
-    for name, text in doc.model.define.items():
-        expr = parse(text, path=join_path("model.define", name))
-        if expr.names <= env.keys():
-            env[name] = evaluate(expr, env)
-    return env
 
 
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,

@@ -26,7 +26,7 @@ from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
 from worker.memory import memory_limit
 from worker.problem import CompiledProblem
-from worker.report import simulate_report, stationary_report
+from worker.report import shock_chains, simulate_report, stationary_report
 from worker.solvers import METHODS, Checkpoint, SolveOutcome
 from worker.tabular import STATE_AXIS
 
@@ -366,7 +366,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.stationary:
         states = getattr(doc.model, "states", None)
         real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
-        stationary = stationary_report(problem, outcome.policy, real_ends)
+        stationary = stationary_report(problem, outcome.policy, real_ends, doc)
         warnings += stationary.pop("warnings", [])
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
@@ -399,7 +399,8 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
             "axes": problem.axes,
         }
     )
-    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation})
+    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation,
+                   "chains": shock_chains(doc)})
     # The big nested lists come from ndarray.tolist() (``describe_policy`` promises the same), so they
     # are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
     value = np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist()

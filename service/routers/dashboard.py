@@ -41,6 +41,7 @@ STATIC_TYPES = {
     "jobs.js": "text/javascript; charset=utf-8",
     "job.js": "text/javascript; charset=utf-8",
     "changes.js": "text/javascript; charset=utf-8",
+    "search.js": "text/javascript; charset=utf-8",
     "favicon.svg": "image/svg+xml",
 }
 # Everything the pages load comes from this service; no inline script or style.

@@ -29,7 +29,7 @@ from service.flat import flat_result
 from service.keys import ApiKey
 from service.limits import ActiveJobs, check_problem_size, quota_for
 from service.problems import Problem
-from service.resubmission import IdempotencyKeys, SolvedJobs, with_reuse_fields
+from service.resubmission import IdempotencyKeys, SolvedJobs, start_free_hash, with_reuse_fields
 from service.result_openapi import RESULT_RESPONSES
 from service.settings import Settings
 from service.stopping import STOPPING
@@ -205,7 +205,9 @@ def _create(
     summary = admitted_summary(admitted)
     solved = SolvedJobs(store)
     unqueued = None
-    earlier = None if fresh else solved.find(owner.owner, summary["document_hash"])
+    start_free = start_free_hash(admitted.document)
+    earlier = None if fresh else (solved.find(owner.owner, summary["document_hash"])
+                                  or solved.find_start_free(owner.owner, start_free))
     if earlier is not None:
         record, reused = solved.create_reused(raw, earlier, owner=owner.owner, job_id=job_id, **summary)
         if reused:
@@ -232,6 +234,7 @@ def _create(
         raise
     active.bind(reservation, [record["id"]])
     solved.remember(owner.owner, summary["document_hash"], record["id"])
+    solved.remember_start_free(owner.owner, start_free, record["id"])
     return record, False
 
 

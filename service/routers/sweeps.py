@@ -122,10 +122,13 @@ def submit_sweep(
     response: Response,
     request: Request,
     idempotency_key: Annotated[str | None, Header(max_length=256)] = None,
+    fresh: Annotated[bool, Query(description=(
+        "Solve every row again, even one whose document this key already solved (otherwise such a row is "
+        "answered at once from that job, as a submission is)."))] = False,
 ) -> dict[str, Any]:
     """Check every combination of a base document and values, then queue their jobs; answers the sweep."""
     quota = quota_for(settings, owner.owner, api_key_of(request))
-    sweep = create_sweep(body, owner, store, settings, idempotency_key=idempotency_key, quota=quota)
+    sweep = create_sweep(body, owner, store, settings, idempotency_key=idempotency_key, quota=quota, fresh=fresh)
     response.headers["Location"] = f"/v1/sweeps/{sweep.id}"
     return sweep_view(sweep, limit=ROWS_PAGE_DEFAULT)
 

@@ -31,7 +31,7 @@ from service.store.layout import (
 )
 from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, iteration_of, kept, stride
 
-__all__ = ["ExecutionWrites"]
+__all__ = ["ExecutionWrites", "failed_search_summary", "search_summary"]
 
 _CKPT_HEADER = re.compile(rb"fixq-ckpt:(\d+)\n")
 
@@ -42,6 +42,14 @@ def search_summary(search: dict[str, Any]) -> dict[str, Any]:
     of trials, so that a client reads the answer without downloading the result."""
     return {"status": search.get("status"), "unknowns": search.get("unknowns"), "residuals": search.get("residuals"),
             "trials": len(search.get("trials") or [])}
+
+
+def failed_search_summary(trials: list[dict[str, Any]]) -> dict[str, Any]:
+    """The record's ``search`` of a search that failed (no root in the bracket): status ``no_root``, the
+    unknowns and residuals of its last trial (the one that showed no sign change), and the number of trials."""
+    last = trials[-1] if trials else {}
+    return {"status": "no_root", "unknowns": last.get("unknowns"), "residuals": last.get("residuals"),
+            "trials": len(trials)}
 
 class ExecutionWrites:
     """The lease-guarded writes of an execution and the reaper's compare-and-set transitions."""
@@ -154,11 +162,13 @@ class ExecutionWrites:
         result: dict[str, Any] | None = None,
         error: dict[str, Any] | None = None,
         iterations: int | None = None,
+        search: dict[str, Any] | None = None,
     ) -> bool:
         """Write the final state (and for ``done`` the result) under the lease.
 
         One script stores the result (``SET NX``, TTL ``result_ttl_s``), sets
-        ``status``, ``iterations``, ``error_bound``, ``search`` (a search's summary), ``error`` and
+        ``status``, ``iterations``, ``error_bound``, ``search`` (a search's summary: the result's, or
+        ``search`` given for a failed one), ``error`` and
         ``finished_at``, moves the state, drops lease, checkpoint and cancel
         flag, gives record, document and log their lifetime (``job_ttl_s``)
         and, for ``done``, records the histograms.  False (nothing
@@ -181,6 +191,8 @@ class ExecutionWrites:
                 bucket_field(seconds, SOLVE_SECONDS_BUCKETS), seconds,
                 bucket_field(iterations, SOLVE_ITERATION_BUCKETS), iterations,
             ]  # fmt: skip
+        if search is not None and "search" not in fields:
+            fields["search"] = dumps(search).decode()
         if iterations is not None:
             fields["iterations"] = str(int(iterations))
         if error is not None:

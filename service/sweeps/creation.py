@@ -31,6 +31,7 @@ from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
 from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, row_states, store_sweep
 from service.sweeps.request import VALUE_IN_LABEL_CHARS, SweepRequest, parse_request
+from service.sweeps.reuse import record_means, remember_row, reused_row
 from worker.errors import FixqError, InvalidDocument, TooLarge, join_path
 
 __all__ = ["cancel_sweep", "create_sweep", "ensure_job", "job_finished", "rescue_pending"]
@@ -111,6 +112,7 @@ def create_sweep(
     *,
     idempotency_key: str | None = None,
     quota: Quota | None = None,
+    fresh: bool = False,
 ) -> Sweep:
     """Check and admit every combination, store the sweep, and create its first jobs.
 
@@ -121,6 +123,9 @@ def create_sweep(
     predecessor finishes, take their slots then (:func:`ensure_job`).
     Each combination is validated like the first one admitted, reusing the
     parts it shares with it (``service.submission.admit_submission``).
+
+    A row whose document its owner solved already is answered from that job, as a submission is
+    (``service.resubmission``), unless ``fresh``.
 
     Raises ``InvalidDocument`` or ``TooLarge`` (nothing stored) when any part is refused.
     With an ``idempotency_key`` the same owner already used within
@@ -159,7 +164,7 @@ def create_sweep(
                 if reservation is not None:
                     active.release(reservation)
                 return earlier
-    sweep = store_sweep(store, sweep_id, caller.owner, request, stationary)
+    sweep = store_sweep(store, sweep_id, caller.owner, request, stationary, fresh)
     created: list[str] = []
     try:
         for index in first_jobs:
@@ -215,6 +220,28 @@ class AtCap(Exception):
 def ensure_job(
     sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = None, counted: bool = False
 ) -> str | None:
+    """Create and record the job of row ``index`` (see :func:`_ensure_one`); a row answered from a solved
+    twin is finished at once, and so are its chain successors answered the same way (in a loop, not by
+    recursion: a chain of thousands of solved rows is followed in one call)."""
+    job_id, reused = _ensure_one(sweep, index, prepared=prepared, counted=counted)
+    due = [index] if reused else []
+    while due:
+        done = due.pop()
+        record_means(sweep, sweep.store.redis.hget(sweep.keys.jobs, done).decode(), done)
+        if not sweep.plan.chain or sweep.canceled_at is not None:
+            continue
+        for successor in sweep.plan.successors(done):
+            try:
+                if _ensure_one(sweep, successor)[1]:
+                    due.append(successor)
+            except AtCap:
+                pass  # created once one of the owner's jobs finishes
+    return job_id
+
+
+def _ensure_one(
+    sweep: Sweep, index: int, *, prepared: dict[str, Any] | None = None, counted: bool = False
+) -> tuple[str | None, bool]:
     """Create and record the job of row ``index`` unless it exists or another creator holds the claim.
 
     The claim is held until the job id is in the sweep's jobs hash, and the
@@ -225,14 +252,16 @@ def ensure_job(
     there is none, :class:`AtCap` is raised, nothing is created, and the sweep
     is remembered among the owner's sweeps waiting for a slot (the row is
     created when one of the owner's jobs finishes, or by the reaper).
-    Returns the new job id, or None when nothing was created.
+    Unless the sweep is ``fresh``, a row whose document the owner solved already
+    gets a job that is done at once (``reused``), which takes no slot.
+    Returns (the new job id or None when nothing was created, whether it was reused).
     """
     store, keys = sweep.store, sweep.keys
     if store.redis.hexists(keys.jobs, index):
-        return None
+        return None, False
     token = secrets.token_hex(8)
     if not store.redis.set(keys.claim(index), token, nx=True, px=CLAIM_MS):
-        return None
+        return None, False
     settle = store.redis.register_script(_SETTLE_WITHOUT_JOB)
     settle_keys = [keys.claim(index), keys.jobs, keys.errors]
     active = ActiveJobs(store.redis, store.settings.redis_prefix)
@@ -241,16 +270,19 @@ def ensure_job(
     try:
         if store.redis.hexists(keys.jobs, index) or store.redis.hexists(keys.errors, index):
             settle(keys=settle_keys, args=[token, index, ""])
-            return None
-        if not counted:
-            reservation = _take_slot(sweep, active, high)
+            return None, False
         raw, prepared = _document_of(sweep, index, prepared)
-        record = create_submitted_job(raw, store, owner=sweep.owner, enqueue=False, **prepared)
+        record, reused, start_free = reused_row(sweep, raw, prepared)
+        if not reused:
+            if not counted:
+                reservation = _take_slot(sweep, active, high)
+            if record is None:
+                record = create_submitted_job(raw, store, owner=sweep.owner, enqueue=False, **prepared)
     except FixqError as exc:
         active.release(reservation)
         error = {"title": exc.title, "detail": exc.detail, "errors": exc.errors}
         settle(keys=settle_keys, args=[token, index, orjson.dumps(error)])
-        return None
+        return None, False
     except BaseException:
         try:
             active.release(reservation)
@@ -267,15 +299,19 @@ def ensure_job(
         # Another creator recorded the row after this one's claim lapsed: this job never runs.
         store.request_cancel(job_id)
         active.release(reservation)
-        return None
+        return None, False
+    if reused:
+        active.release(reservation)
+        return job_id, True
     # Counted among the owner's active jobs, so later submissions see it under their caps.
     active.bind(reservation, [job_id])
+    remember_row(sweep, prepared, start_free, job_id)
     if outcome == "canceled":
         # The sweep was canceled while this job was being created.
         _cancel_job(store, job_id)
     else:
         store.enqueue_created(record)
-    return job_id
+    return job_id, False
 
 
 def _take_slot(sweep: Sweep, active: ActiveJobs, high: bool) -> Reservation:
@@ -358,13 +394,7 @@ def job_finished(store: JobStore, job_id: str) -> None:
 
 
 def _sweep_job_finished(sweep: Sweep, job_id: str, index: int) -> None:
-    store = sweep.store
-    if sweep.stationary and store.redis.hget(store.keys.job(job_id), "state") == b"done":
-        result = store.get_result(job_id)
-        if result is not None:
-            stationary = result.get("stationary")
-            means = stationary.get("means") if isinstance(stationary, dict) else None
-            store.redis.hset(sweep.keys.means, index, orjson.dumps(means))
+    record_means(sweep, job_id, index)
     if sweep.plan.chain and sweep.canceled_at is None:
         try:
             for successor in sweep.plan.successors(index):

@@ -81,6 +81,11 @@ class Sweep:
         return self.record["owner"]
 
     @property
+    def fresh(self) -> bool:
+        """Whether every row is solved afresh (``?fresh=true``), not answered from an owner's solved twin."""
+        return bool(self.record.get("fresh"))
+
+    @property
     def keys(self) -> SweepKeys:
         return SweepKeys(self.store, self.id)
 
@@ -119,7 +124,8 @@ def load_sweep(store: JobStore, sweep_id: str) -> Sweep | None:
     return Sweep(store, orjson.loads(raw[0]), raw[1] == b"1", raw[2].decode() if raw[2] else None)
 
 
-def store_sweep(store: JobStore, sweep_id: str, owner: str, request: SweepRequest, stationary: bool) -> Sweep:
+def store_sweep(store: JobStore, sweep_id: str, owner: str, request: SweepRequest, stationary: bool,
+                fresh: bool = False) -> Sweep:
     """Store a new sweep, its door marker set, and mark it pending until every row has a job or an error."""
     now_ms = int(time.time() * 1000)
     record = {
@@ -135,6 +141,7 @@ def store_sweep(store: JobStore, sweep_id: str, owner: str, request: SweepReques
         },
         "sweep_label": request.label,
         "sweep_priority": request.priority,
+        "fresh": fresh,
     }
     keys = SweepKeys(store, sweep_id)
     with store.redis.pipeline(transaction=True) as pipe:

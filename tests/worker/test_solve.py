@@ -64,7 +64,9 @@ def test_result_document_has_every_part_and_is_plain_json():
         "diagnostics",
         "stationary",
         "simulation",
+        "chains",
     }
+    assert result["chains"] == {}  # a tabular model has no shocks
     assert result["status"] == "converged" and result["method"] == "howard"
     assert result["axes"] == {"state_label": ["idle", "busy", "worn"]}
     assert set(result["policy"]) == {"action"} and set(result["policy_index"]) == {"action"}

@@ -11,15 +11,13 @@ from typing import Annotated, Any
 
 from pydantic import Field, model_validator
 
-from worker.aggregates import parse_condition
+from worker.aggregates import DISCOUNT, parse_condition
 from worker.document._faults import Fault, fault, number, raise_faults
 from worker.document._fields import Expression, Integer, Name, Part
 from worker.errors import InvalidDocument, join_path
 
 __all__ = ["DISCOUNT", "MAX_TRIALS", "Bracket", "SearchSpec", "search_faults"]
 
-DISCOUNT = "discount"
-"""The name by which a search's unknown or condition means the document's discount factor."""
 MAX_TRIALS = 500
 """Most solves one search may make."""
 

@@ -40,7 +40,8 @@ _EXP_LIMIT = math.log(np.finfo(np.float64).max)
 
 class AR1Spec(Part):
     """An AR(1) process y' = (1 - rho) * mean + rho * y + e, with e normal with mean 0 and standard
-    deviation sigma, replaced by a finite Markov chain."""
+    deviation sigma, replaced by a finite Markov chain. It may instead be given by y's unconditional standard
+    deviation sd = sigma / sqrt(1 - rho**2)."""
 
     rho: Annotated[
         float,
@@ -52,14 +53,27 @@ class AR1Spec(Part):
         SchemaExtra(exclusiveMinimum=-1, exclusiveMaximum=1),
     ] = Field(description="Persistence, strictly between -1 and 1.")
     sigma: Annotated[
-        float,
+        float | None,
         check(
-            lambda s: s > 0,
+            lambda s: s is None or s > 0,
             "sigma, the standard deviation of the innovation e, must be positive, got {value} "
             "(for a shock that never moves, use markov with one value)",
         ),
         SchemaExtra(exclusiveMinimum=0),
-    ] = Field(description="Standard deviation of the innovation e (not of y itself); positive, in the units of y.")
+    ] = Field(default=None, description=(
+        "Standard deviation of the innovation e (not of y itself); positive, in the units of y. Give exactly one "
+        "of sigma and sd."))
+    sd: Annotated[
+        float | None,
+        check(
+            lambda s: s is None or s > 0,
+            "sd, the unconditional standard deviation of y, must be positive, got {value} "
+            "(for a shock that never moves, use markov with one value)",
+        ),
+        SchemaExtra(exclusiveMinimum=0),
+    ] = Field(default=None, description=(
+        "Unconditional (long-run) standard deviation of y, as papers often quote it; the innovation's is then "
+        "sigma = sd * sqrt(1 - rho**2). Give exactly one of sigma and sd."))
     points: Points = Field(description=f"Number of chain values, 2 to {MAX_POINTS:,}.")
     method: Literal["rouwenhorst", "tauchen"] = Field(
         default="rouwenhorst",
@@ -80,6 +94,11 @@ class AR1Spec(Part):
 
     @model_validator(mode="after")
     def _check_ar1(self) -> AR1Spec:
+        if (self.sigma is None) == (self.sd is None):
+            which = "neither" if self.sigma is None else "both"
+            raise faults_error([fault("sigma" if self.sigma is None else "sd", (
+                f"give exactly one of sigma (the innovation's standard deviation) and sd (the unconditional "
+                f"standard deviation of y, sd = sigma / sqrt(1 - rho**2)); {which} given"))])
         if self.width is not None and self.method != "tauchen":
             raise faults_error(
                 [
@@ -94,9 +113,14 @@ class AR1Spec(Part):
             self.width = DEFAULT_WIDTH
         return self
 
+    @property
+    def innovation_sd(self) -> float:
+        """The innovation's standard deviation: ``sigma``, or ``sd * sqrt(1 - rho**2)`` when ``sd`` is given."""
+        return float(self.sigma) if self.sigma is not None else float(self.sd) * math.sqrt(1.0 - self.rho * self.rho)
+
     def half_width(self) -> float:
         """Distance from ``mean`` to the outermost chain value (no chain is built)."""
-        spread = self.sigma / math.sqrt(1.0 - self.rho * self.rho)
+        spread = self.sd if self.sd is not None else self.sigma / math.sqrt(1.0 - self.rho * self.rho)
         return spread * (math.sqrt(self.points - 1) if self.method == "rouwenhorst" else self.width)
 
 
@@ -270,9 +294,10 @@ class ShockSpec(Part):
         if self.ar1 is not None:
             spec, where = self.ar1, join_path(path, "ar1")
             if spec.method == "tauchen":
-                values, matrix = shocks.tauchen(spec.rho, spec.sigma, spec.points, spec.width, spec.mean, path=where)
+                values, matrix = shocks.tauchen(spec.rho, spec.innovation_sd, spec.points, spec.width, spec.mean,
+                                                path=where)
             else:
-                values, matrix = shocks.rouwenhorst(spec.rho, spec.sigma, spec.points, spec.mean, path=where)
+                values, matrix = shocks.rouwenhorst(spec.rho, spec.innovation_sd, spec.points, spec.mean, path=where)
         elif self.markov is not None:
             values, matrix = shocks.markov_chain(self.markov.values, self.markov.matrix, path=join_path(path, "markov"))
         else:

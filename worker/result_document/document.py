@@ -11,6 +11,7 @@ from typing import Literal, Union
 from pydantic import Field
 
 from worker.document.options import METHOD_NAMES
+from worker.report import CHAIN_TRANSITION_MAX_POINTS
 from worker.result_document._types import (
     NestedIntegers,
     NestedLabels,
@@ -40,6 +41,16 @@ class LogEntry(Reported):
     seconds: float = Field(description="Solving time (s) when the iteration ended, counted across resumes.")
     period: int = absent_unless(description="Finite horizon only: the period solved.")
     periods: int = absent_unless(description="Finite horizon only: T, the number of periods.")
+
+
+class ShockChain(Reported):
+    """One shock as the solve discretised it."""
+
+    values: list[float] = Field(description="The shock's values, after its transform, in the order of its axis.")
+    transition: list[list[float]] | None = Field(
+        description=f"transition[i][j]: the probability of values[j] tomorrow given values[i] today (an iid shock: "
+        f"every row the same); null above {CHAIN_TRANSITION_MAX_POINTS} values, to keep results small."
+    )
 
 
 class ResultDocument(Reported):
@@ -108,3 +119,7 @@ class ResultDocument(Reported):
         default=None, description="Finite horizon: with report.cohort, else null; absent without a horizon."
     )
     search: SearchOutcome = absent_unless(description="With a search in the document; absent otherwise.")
+    chains: dict[str, ShockChain] = Field(
+        description="Each shock drawn before the choice, as discretised (Tauchen, Rouwenhorst, a Markov chain or an "
+        "iid distribution), by name; {} for tabular models and models without such shocks."
+    )

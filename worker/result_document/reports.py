@@ -38,12 +38,13 @@ class StationaryReport(Reported):
     distribution: NestedNumbers = Field(
         description="The probability of every point, nested like value (the axes' order and lengths); sums to 1."
     )
-    means: dict[str, float] = Field(
-        description="Per axis (state variable, shock; tabular: state_label, the state's index) and per choice "
-        "(tabular: action, the chosen action's index; with taste shocks its expected index), its mean under the "
-        "distribution."
+    means: dict[str, float | None] = Field(
+        description="Per axis (state variable, shock; tabular: state_label, the state's index), per choice "
+        "(tabular: action, the chosen action's index; with taste shocks its expected index) and per define (grid "
+        "models), its mean under the distribution; null for a define that is not finite somewhere the distribution "
+        "has mass."
     )
-    sd: dict[str, float] = Field(description="The same names' standard deviations under the distribution.")
+    sd: dict[str, float | None] = Field(description="The same names' standard deviations under the distribution.")
     ends: dict[str, EndMass] = Field(
         description="Grid models: per state variable, the mass at the ends of its grid ({} for tabular models)."
     )
