@@ -1,0 +1,338 @@
+"""Proofs, per line, that no other value of a static choice beats the one a climb found.
+
+A static choice (hours worked; :mod:`worker.staticchoices`) is maximised out
+of the reward for every (point, value of the other choices) -- a *line*.
+Under the ``concave`` hint :mod:`worker.statickernel` climbs along it from
+the best value of the neighbouring line and stops at a peak ``j*``.  The
+hint is a promise, never trusted: every line is then verified, exactly, by
+the code this module writes, and the verification costs a few interval
+operations per line instead of an evaluation of every value.
+
+The proof on one side
+---------------------
+Along the static choice ``h`` (grid values increasing) the reward is
+``f(j) = r(h_j)``.  Take an evaluated, allowed *anchor* ``a`` (first
+``j* + 1``) and the block of every value beyond it, ``[a + 1, last]``.  By
+the mean value theorem, for ``j`` in that block
+
+    r(h_j) − r(h_a) = (h_j − h_a) · r'(ξ),   ξ between h_a and h_j,
+
+so an upper bound ``G`` of ``r'`` over the *hull* ``[h_a, h_last]`` gives
+``f(j) ≤ f(a) + (h_j − h_a)·G``: at most ``f(a) + (h_{a+1} − h_a)·G`` when
+``G ≤ 0``, at most ``f(a) + (h_last − h_a)·G`` otherwise.  When that is at
+most the best value (a tie beyond the best loses to it: ties go to the lower
+index), nothing on that side can win.  To the left (block ``[0, a − 1]``,
+first ``a = j* − 1``) a lower bound of ``r'`` over ``[h_0, h_a]`` does the
+same, and there the bound must be strictly below the best.  When a proof
+fails, the anchor's neighbour is evaluated and becomes the anchor
+(``PROOF_TRIES`` times per side), then the rest of that side is simply
+evaluated: a false hint costs time, never exactness.  A value better than
+the climb's found this way is counted as a broken promise.
+
+``r'`` is written by :func:`worker._slopes.derivative` (which refuses
+expressions that may jump along ``h``; the rules there also say why a finite
+bound means ``r`` is smooth on the hull) and bounded by
+:func:`worker.expressions.intervals.interval_source`.  To keep it cheap, its
+parts that depend on nothing but the params and ``h`` (``h**(1 − α)``, the
+marginal disutility of hours) are bounded once per kernel call over every
+prefix hull ``[h_0, h_a]`` and suffix hull ``[h_a, h_last]`` (tables
+``VT_lo``/``VT_hi``), and its parts that do not depend on ``h`` are computed
+once per line; per proof remain the few operations that mix the two.
+
+Constraints
+-----------
+Only allowed values can win, so a constraint comparing a define (or ``h``)
+with something fixed along the line (``c > 0``) may narrow that define's
+bounds -- but the mean value theorem runs along the whole segment between
+``h_a`` and ``h_j``, and both ends being allowed says nothing of the middle
+in general.  The narrowing is therefore applied only where the bounds of the
+define's derivative over the hull exclude 0: the define is then monotone on
+the hull, the constraint holds on the whole segment between two allowed
+ends, and the bounds of ``r'`` need only cover that segment.  (This keeps
+``log c`` with ``c`` reaching 0 at few hours provable.)  Other constraints
+are not used: the bounds then cover the whole hull, a superset.
+
+Rounding
+--------
+The intervals enclose the computed values of each part (their rules are in
+:mod:`worker.expressions.interval_kernels`); the mean value theorem is about
+the exact function.  As in the exact block search's slope bound
+(:mod:`worker._codegen.block_search`), the bound is widened by ``SLACK``
+(``2**-40``, about 4,000 ulps) times the magnitudes of the anchor's value,
+the step and the bound itself, which covers the difference between the
+computed and the exact reward at the anchor and at ``j`` (a few ulps of
+their magnitude for a reward computed without catastrophic cancellation),
+the rounding of ``h_j − h_a`` and of the product, and the intervals' own
+slack on ``r'``.  A reward whose computed value is off by more than that (a
+difference of nearly equal large terms) is outside this argument, as it is
+for the block search's.
+"""
+
+from __future__ import annotations
+
+import re
+from dataclasses import dataclass, field
+
+from worker import _slopes, expressions
+from worker._codegen.hoist import Hoister, dependents
+from worker._codegen.writer import KernelWriter, Lines
+from worker.expressions import Expression, names_in
+from worker.expressions.intervals import interval_source
+
+__all__ = ["PROOF_TRIES", "SLACK", "ProofPlan", "proof_plan"]
+
+SLACK = 2.0**-40
+"""Relative widening of a side's bound (of |anchor| + |step| + |bound|; see the module docstring)."""
+PROOF_TRIES = 4
+"""Proofs tried per side of a line, each from the next anchor outward, before the rest of that side is
+simply evaluated (count; where the hint holds the first proof succeeds on nearly every line)."""
+
+_FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<="}
+_HELPER_LINE = re.compile(r"^(\w+), (\w+) = fixq_intervals\.(add|subtract|multiply|divide)\((.*)\)$")
+_FULL = "(-np.inf)", "np.inf"
+
+
+def _specialised(lines: list[str]) -> list[str]:
+    """``lines`` of :func:`interval_source` with ``+ - * /`` written inline where that saves work.
+
+    Same bounds as the helpers of :mod:`worker.expressions.interval_kernels`
+    (each case below is the helper's result when its condition holds, and
+    any nan falls back to the full interval, as there): an operand that is
+    a single point (both its ends the same variable) needs two operations
+    instead of four, and a quotient of a non-negative by a positive interval
+    is ``[lo/hi', hi/lo']``.  The proof runs a few million times per table,
+    where the helpers' general cases were most of its cost (measured).
+    """
+    result: list[str] = []
+    for line in lines:
+        match = _HELPER_LINE.match(line)
+        if match is None:
+            result.append(line)
+            continue
+        lo, hi, op, args = match.group(1), match.group(2), match.group(3), match.group(4).split(", ")
+        al, ah, bl, bh = args
+        a_point, b_point = al == ah, bl == bh
+        pair = None
+        if op == "add" and (a_point or b_point):
+            pair = f"{al} + {bl}", f"{ah} + {bh}"
+        elif op == "subtract" and (a_point or b_point):
+            pair = f"{al} - {bh}", f"{ah} - {bl}"
+        elif op == "multiply" and (a_point or b_point):
+            p, (xl, xh) = (al, (bl, bh)) if a_point else (bl, (al, ah))
+            result += [f"if {p} > 0.0:", f"    {lo} = {p} * {xl}", f"    {hi} = {p} * {xh}",
+                       f"elif {p} < 0.0:", f"    {lo} = {p} * {xh}", f"    {hi} = {p} * {xl}",
+                       "else:", f"    {line}"]
+        elif op == "divide":
+            result += [f"if {bl} > 0.0 and {al} >= 0.0:", f"    {lo} = {al} / {bh}", f"    {hi} = {ah} / {bl}",
+                       "else:", f"    {line}"]
+        if pair is not None:
+            result += [f"{lo} = {pair[0]}", f"{hi} = {pair[1]}"]
+        elif op in ("add", "subtract"):
+            result.append(line)
+            continue
+        result += [f"if {lo} != {lo} or {hi} != {hi}:", f"    {lo} = {_FULL[0]}", f"    {hi} = {_FULL[1]}"]
+    return result
+
+
+class _Tabulator(Hoister):
+    """Hoists the sub-trees that depend on the static choice and constants only, recording each tree."""
+
+    def __init__(self, varying: set[str], choice: str, names: dict[str, str]) -> None:
+        super().__init__(varying, names, [], "vt")
+        self.choice = choice
+        self.trees: list[expressions.Node] = []
+
+    def point(self, node: expressions.Node) -> expressions.Node:
+        if isinstance(node, (expressions.Number, expressions.Name)) or self.choice not in names_in(node):
+            return node
+        self.trees.append(node)
+        return expressions.Name(f"@vt{len(self.trees) - 1}")
+
+
+@dataclass
+class ProofPlan:
+    """What the proofs need: ``tables`` (trees of ``h`` and constants, bounded over hulls), ``line_lines``
+    (the per-line parts, into variables that ``names`` maps them to), ``steps`` (``(define, value tree,
+    derivative tree)`` for the defines the reward needs that move with ``h``, in order, then ``("", None,
+    reward derivative)``) and ``limits`` (per define or ``""`` for ``h``: ``(op, source of the fixed
+    side)`` of the constraints that may narrow it)."""
+
+    choice: str
+    offset: str
+    tables: list[expressions.Node]
+    names: dict[str, str]
+    line_lines: list[str]
+    steps: list[tuple[str, expressions.Node | None, expressions.Node]]
+    limits: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
+
+
+def proof_plan(writer: KernelWriter, axis: int, constant: set[str]) -> ProofPlan | None:
+    """The plan for static choice ``axis`` of ``writer``'s model, or None where ``r`` may jump along it.
+
+    ``writer`` is a plain :class:`KernelWriter` (its trees not yet rewritten
+    for the static kernel); ``constant`` holds the variables of its
+    per-point lines that depend on params only.
+    """
+    model = writer.model
+    choice = model.choices[axis]
+    moving = dependents(model, {choice})
+    needed = set(model.reward.names)
+    for name, expr in reversed(model.defines):
+        if name in needed:
+            needed |= set(expr.names)
+    names = dict(writer.names)
+    static_names = {choice} | set(model.params) | {f"@{v}" for v in constant}
+    everything = set(names) | {_slopes.prime(name) for name in moving}
+    tabulator = _Tabulator(everything - static_names, choice, names)
+    line_lines: list[str] = []
+    for k, expr in writer.defines:
+        name = model.defines[k][0]
+        if expr is not None and name not in moving:
+            line_lines.append(f"d_{k} = {expressions.scalar_source(expr, names)}")
+    steps: list[tuple[str, expressions.Node | None, expressions.Node]] = []
+    varying = {name: True for name in moving if name != choice}
+    try:
+        for k, expr in writer.defines:
+            name = model.defines[k][0]
+            if expr is None or name not in moving or name not in needed:
+                continue
+            steps.append((name, expr.tree, _slopes.derivative(expr.tree, choice, varying)))
+        steps.append(("", None, _slopes.derivative(writer.reward.tree, choice, varying)))
+    except _slopes.NotSmooth:
+        return None
+    steps = [
+        (name, None if value is None else tabulator.rewrite(value), tabulator.rewrite(slope))
+        for name, value, slope in steps
+    ]
+    per_line = Hoister(moving | {_slopes.prime(n) for n in moving} | {f"@vt{k}" for k in range(len(tabulator.trees))},
+                       names, line_lines, "w")
+    steps = [
+        (name, None if value is None else per_line.rewrite(value), per_line.rewrite(slope))
+        for name, value, slope in steps
+    ]
+    plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, steps)
+    for expr in writer.feasible:
+        _limits(expr.tree, moving, names, plan.limits)
+    _limit_lines(plan)
+    return plan
+
+
+def _limits(
+    tree: expressions.Node, moving: set[str], names: dict[str, str], found: dict[str, list[tuple[str, str]]]
+) -> None:
+    """Comparisons (chained, or inside ``and``) of a name that moves with ``h`` with a side that does not."""
+    E = expressions
+    if isinstance(tree, E.Logic) and tree.op == "and":
+        for operand in tree.operands:
+            _limits(operand, moving, names, found)
+        return
+    if not isinstance(tree, E.Compare):
+        return
+    for left, op, right in zip(tree.operands, tree.ops, tree.operands[1:]):
+        if op not in _FLIPPED:
+            continue
+        if isinstance(right, E.Name) and right.id in moving and not (names_in(left) & moving):
+            left, op, right = right, _FLIPPED[op], left
+        if not (isinstance(left, E.Name) and left.id in moving) or (names_in(right) & moving):
+            continue
+        found.setdefault(left.id, []).append((op, expressions.scalar_source(Expression.from_tree(right), names)))
+
+
+def _limit_lines(plan: ProofPlan) -> None:
+    """Per line, the narrowing limits into variables ``lim<k>`` (the fixed side rounded inward for ``<``, ``>``)."""
+    count = 0
+    for name, limits in plan.limits.items():
+        moved = []
+        for op, point in limits:
+            if op == ">":
+                point = f"np.nextafter({point}, np.inf)"
+            elif op == "<":
+                point = f"np.nextafter({point}, -np.inf)"
+            plan.line_lines.append(f"lim{count} = {point}")
+            moved.append((op, f"lim{count}"))
+            count += 1
+        plan.limits[name] = moved
+
+
+def table_source(plan: ProofPlan, out: Lines) -> None:
+    """Fill ``VT_lo``/``VT_hi`` (side 0: suffix hulls ``[h_a, h_last]``, side 1: prefix hulls ``[h_0, h_a]``)."""
+    count = max(len(plan.tables), 1)
+    out.add(f"VT_lo = np.zeros((2, {count}, NS))", f"VT_hi = np.zeros((2, {count}, NS))")
+    lo_names = dict(plan.names)
+    hi_names = dict(plan.names)
+    lo_names[plan.choice], hi_names[plan.choice] = "hb_lo", "hb_hi"
+    with out.block("for sd in range(2):"):
+        with out.block("for a in range(NS):"):
+            out.add(f"hb_lo = cgrid[{plan.offset} + (a if sd == 0 else 0)]",
+                    f"hb_hi = cgrid[{plan.offset} + (NS - 1 if sd == 0 else a)]")
+            for k, tree in enumerate(plan.tables):
+                lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, f"tb{k}_")
+                out.extend(lines)
+                out.add(f"VT_lo[sd, {k}, a] = {lo}", f"VT_hi[sd, {k}, a] = {hi}")
+
+
+def proof_source(plan: ProofPlan, out: Lines) -> None:
+    """Lines setting ``proven``: no value beyond anchor ``a`` on side ``side`` (+1 right, −1 left) can win.
+
+    Reads ``a``, ``side``, ``best`` and the anchor's reward ``rs[a]``; the
+    per-line lines (:attr:`ProofPlan.line_lines`) must have run on this line.
+    """
+    lo_names, hi_names = dict(plan.names), dict(plan.names)
+    off = plan.offset
+    out.add("proven = False", "empty = False", "sd = 0 if side > 0 else 1")
+    out.add(f"hb_lo = cgrid[{off} + (a if side > 0 else 0)]", f"hb_hi = cgrid[{off} + (NS - 1 if side > 0 else a)]")
+    lo_names[plan.choice], hi_names[plan.choice] = "hb_lo", "hb_hi"
+    _narrow(plan, out, "", "hb_lo", "hb_hi", None)
+    for k in range(len(plan.tables)):
+        out.add(f"vt{k}_lo = VT_lo[sd, {k}, a]", f"vt{k}_hi = VT_hi[sd, {k}, a]")
+        lo_names[f"@vt{k}"], hi_names[f"@vt{k}"] = f"vt{k}_lo", f"vt{k}_hi"
+    g_lo = g_hi = "0.0"
+    for k, (name, value, slope) in enumerate(plan.steps):
+        if value is not None:
+            lines, lo, hi = interval_source(Expression.from_tree(value), lo_names, hi_names, f"pv{k}_")
+            out.extend(_specialised(lines))
+            lo_names[name], hi_names[name] = lo, hi
+        lines, d_lo, d_hi = interval_source(Expression.from_tree(slope), lo_names, hi_names, f"pd{k}_")
+        out.extend(_specialised(lines))
+        if name:
+            lo_names[_slopes.prime(name)], hi_names[_slopes.prime(name)] = d_lo, d_hi
+            _narrow(plan, out, name, lo_names[name], hi_names[name], (d_lo, d_hi))
+        else:
+            g_lo, g_hi = d_lo, d_hi
+    grid = f"cgrid[{off} + "
+    with out.block("if not empty and side > 0:"):
+        # f(j) <= f(a) + (h_j - h_a) * G over the block [a + 1, last]: largest at its near end when G <= 0.
+        with out.block(f"if {g_hi} == {g_hi} and {g_hi} < np.inf:"):
+            out.add(f"dist = {grid}a + 1] - {grid}a] if {g_hi} <= 0.0 else {grid}NS - 1] - {grid}a]",
+                    f"step = dist * {g_hi}")
+            _finish(out, "ub <= best")
+    with out.block("elif not empty:"):
+        # f(j) <= f(a) - (h_a - h_j) * G over the block [0, a - 1]: largest at its near end when G >= 0.
+        with out.block(f"if {g_lo} == {g_lo} and {g_lo} > -np.inf:"):
+            out.add(f"dist = {grid}a] - {grid}a - 1] if {g_lo} >= 0.0 else {grid}a] - {grid}0]",
+                    f"step = -(dist * {g_lo})")
+            _finish(out, "ub < best")
+
+
+def _finish(out: Lines, test: str) -> None:
+    out.add("ub = rs[a] + step")
+    with out.block("if ub == -np.inf:"):
+        out.add("proven = True")  # every allowed value beyond is below any finite one
+    with out.block("elif ub - ub == 0.0:"):
+        out.add(f"ub += {SLACK!r} * (2.0 * abs(rs[a]) + abs(step) + abs(ub))", f"proven = {test}")
+
+
+def _narrow(plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tuple[str, str] | None) -> None:
+    """Narrow ``[lo, hi]`` by the constraints on ``name`` (``""``: the static choice) where it is monotone."""
+    limits = plan.limits.get(name or plan.choice, [])
+    if not limits:
+        return
+    test = "True" if slope is None else f"{slope[0]} > 0.0 or {slope[1]} < 0.0"
+    with out.block(f"if {test}:"):
+        for op, limit in limits:
+            if op in (">", ">="):
+                out.add(f"{lo} = max({lo}, {limit})")
+            else:
+                out.add(f"{hi} = min({hi}, {limit})")
+        with out.block(f"if not ({lo} <= {hi}):"):
+            out.add("empty = True")
