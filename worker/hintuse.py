@@ -5,7 +5,7 @@ move tomorrow's state, once for every combination of the others, which are
 searched in full.  Static choices (:mod:`worker.staticchoices`) are
 maximised out into tables first when they fit; ``concave`` also applies to
 the maximisation over a single static choice (see
-:mod:`worker.statickernel`).  Every requested hint that cannot be used gets
+:mod:`worker.statickernel`, which verifies every climb exactly).  Every requested hint that cannot be used gets
 a note naming the hint, the choice and the reason; nothing is dropped
 silently.
 """
@@ -94,7 +94,7 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
         if static_concave:
             words += (
                 f", and the concave hint to `{static[0]}`, maximised out by climbing from the best value at the "
-                f"neighbouring `{name}` during the iterations (the verification searches `{static[0]}` in full)"
+                f"neighbouring `{name}`, each climb verified by bounds of the reward's slope along `{static[0]}`"
             )
         if monotone and static:
             sets = "which sets" if len(static) == 1 else "which set"
