@@ -154,16 +154,18 @@ class ProofPlan:
     """What the proofs need: ``tables`` (trees of ``h`` and constants, bounded over hulls), ``line_lines``
     (the per-line parts, into variables that ``names`` maps them to), ``steps`` (``(define, value tree,
     derivative tree)`` for the defines the reward needs that move with ``h``, in order, then ``("", None,
-    reward derivative)``) and ``limits`` (per define or ``""`` for ``h``: ``(op, source of the fixed
-    side)`` of the constraints that may narrow it)."""
+    reward derivative)``) and ``limits`` (per define or ``h``: ``(op, variable, fixed)`` of the constraints
+    that may narrow it, the variable set by ``fixed_lines`` once per kernel call when ``fixed``, else by
+    ``line_lines``)."""
 
     choice: str
     offset: str
     tables: list[expressions.Node]
     names: dict[str, str]
     line_lines: list[str]
+    fixed_lines: list[str]
     steps: list[tuple[str, expressions.Node | None, expressions.Node]]
-    limits: dict[str, list[tuple[str, str]]] = field(default_factory=dict)
+    limits: dict[str, list[tuple[str, str, bool]]] = field(default_factory=dict)
 
 
 def proof_plan(writer: KernelWriter, axis: int, constant: set[str]) -> ProofPlan | None:
@@ -210,21 +212,22 @@ def proof_plan(writer: KernelWriter, axis: int, constant: set[str]) -> ProofPlan
         (name, None if value is None else per_line.rewrite(value), per_line.rewrite(slope))
         for name, value, slope in steps
     ]
-    plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, steps)
+    plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, [], steps)
     for expr in writer.feasible:
-        _limits(expr.tree, moving, names, plan.limits)
+        _limits(expr.tree, moving, names, plan.limits, static_names)
     _limit_lines(plan)
     return plan
 
 
 def _limits(
-    tree: expressions.Node, moving: set[str], names: dict[str, str], found: dict[str, list[tuple[str, str]]]
+    tree: expressions.Node, moving: set[str], names: dict[str, str], found: dict[str, list[tuple[str, str, bool]]],
+    constant: set[str],
 ) -> None:
     """Comparisons (chained, or inside ``and``) of a name that moves with ``h`` with a side that does not."""
     E = expressions
     if isinstance(tree, E.Logic) and tree.op == "and":
         for operand in tree.operands:
-            _limits(operand, moving, names, found)
+            _limits(operand, moving, names, found, constant)
         return
     if not isinstance(tree, E.Compare):
         return
@@ -235,21 +238,23 @@ def _limits(
             left, op, right = right, _FLIPPED[op], left
         if not (isinstance(left, E.Name) and left.id in moving) or (names_in(right) & moving):
             continue
-        found.setdefault(left.id, []).append((op, expressions.scalar_source(Expression.from_tree(right), names)))
+        point = expressions.scalar_source(Expression.from_tree(right), names)
+        found.setdefault(left.id, []).append((op, point, names_in(right) <= constant))
 
 
 def _limit_lines(plan: ProofPlan) -> None:
-    """Per line, the narrowing limits into variables ``lim<k>`` (the fixed side rounded inward for ``<``, ``>``)."""
+    """The narrowing limits into variables ``lim<k>`` (the fixed side rounded inward for ``<``, ``>``), once per
+    kernel call when they depend on constants only, else once per line."""
     count = 0
     for name, limits in plan.limits.items():
         moved = []
-        for op, point in limits:
+        for op, point, fixed in limits:
             if op == ">":
                 point = f"np.nextafter({point}, np.inf)"
             elif op == "<":
                 point = f"np.nextafter({point}, -np.inf)"
-            plan.line_lines.append(f"lim{count} = {point}")
-            moved.append((op, f"lim{count}"))
+            (plan.fixed_lines if fixed else plan.line_lines).append(f"lim{count} = {point}")
+            moved.append((op, f"lim{count}", fixed))
             count += 1
         plan.limits[name] = moved
 
@@ -257,6 +262,7 @@ def _limit_lines(plan: ProofPlan) -> None:
 def table_source(plan: ProofPlan, out: Lines) -> None:
     """Fill ``VT_lo``/``VT_hi`` (side 0: suffix hulls ``[h_a, h_last]``, side 1: prefix hulls ``[h_0, h_a]``)."""
     count = max(len(plan.tables), 1)
+    out.extend(plan.fixed_lines)
     out.add(f"VT_lo = np.zeros((2, {count}, NS))", f"VT_hi = np.zeros((2, {count}, NS))")
     lo_names = dict(plan.names)
     hi_names = dict(plan.names)
@@ -329,7 +335,7 @@ def _narrow(plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tup
         return
     test = "True" if slope is None else f"{slope[0]} > 0.0 or {slope[1]} < 0.0"
     with out.block(f"if {test}:"):
-        for op, limit in limits:
+        for op, limit, _ in limits:
             if op in (">", ">="):
                 out.add(f"{lo} = max({lo}, {limit})")
             else:
