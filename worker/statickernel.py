@@ -162,10 +162,9 @@ def static_source(writer: StaticWriter) -> str:
                 out.add(f"lo_{k} = 0", f"w_{k} = 0.0")
             with out.block("for d in range(ND):"):
                 writer.decode(out, writer.dynamic_axes, "d")
-                out.add("best = -np.inf", "pick = -1", "pick0 = -1", "vlo = NS", "vhi = -1", "s = -1", "skip = -1",
-                        "a = 0", "tries = 0")
+                out.add("best = -np.inf", "pick = -1", "pick0 = -1", "vlo = NS", "vhi = -1", "s = -1", "skip = -1")
                 # Phases: 0 the warm start, 1 up from it, 2 down from it, 3 every value from the lowest (the
-                # search without the hint), 4 and 5 the verification right and left of the climb's peak, 6 done.
+                # search without the hint), 4 the verification on both sides of the climb's peak, 6 done.
                 with out.block("if climb:"):
                     out.add("todo = warm", "phase = 0")
                     if plan is not None:
@@ -194,7 +193,7 @@ def static_source(writer: StaticWriter) -> str:
                                     out.add("first_bad = c")
                         out.add("vlo = min(vlo, s)", "vhi = max(vhi, s)")
                     _climb_step(out)
-                    with out.block("while todo < 0 and 4 <= phase <= 5:"):
+                    with out.block("while todo < 0 and phase == 4:"):
                         _verify_step(out, plan)
                     with out.block("if todo < 0:"):
                         out.add("break")
@@ -239,29 +238,43 @@ def _climb_step(out: Lines) -> None:
         with out.block("if 0 <= nxt < NS:"):
             out.add("todo = nxt")
         with out.block("else:"):
-            out.add("phase = 4", "pick0 = pick", "a = pick + 1", "tries = 0")
+            out.add("phase = 4", "pick0 = pick", "ar = pick + 1", "al = pick - 1", "tries_r = 0", "tries_l = 0",
+                    "done_r = False", "done_l = False")
 
 
 def _verify_step(out: Lines, plan: static_proof.ProofPlan | None) -> None:
-    """One step of the verification: evaluate the anchor ``a``, or try the proof beyond it, or move on."""
-    out.add("side = 1 if phase == 4 else -1", "end = NS - 1 if side > 0 else 0", "proven = False")
-    with out.block("if (a - end) * side > 0:"):
-        out.add("proven = True")  # nothing left on this side
-    with out.block("elif a > vhi or a < vlo:"):
-        out.add("todo = a")
-    with out.block("elif a == end:"):
-        out.add("proven = True")
-    with out.block(f"elif rs[a] > -np.inf and tries < {static_proof.PROOF_TRIES}:"):
-        out.add("tries += 1")
-        if plan is not None:
-            static_proof.proof_source(plan, out)
-    with out.block("if proven:"):
-        with out.block("if phase == 4:"):
-            out.add("phase = 5", "a = pick0 - 1", "tries = 0")
-        with out.block("else:"):
+    """One pass of the verification on both sides of the climb's peak: evaluate an anchor that is not yet, or
+    try both sides' proofs beyond their anchors (``ar`` right, ``al`` left) and move on where one fails."""
+    with out.block("if not done_r:"):
+        with out.block("if ar > vhi and ar < NS:"):
+            out.add("todo = ar")
+        with out.block("elif ar >= NS - 1:"):
+            out.add("done_r = True")  # nothing (more) to the right
+    with out.block("if todo < 0 and not done_l:"):
+        with out.block("if al < vlo and al >= 0:"):
+            out.add("todo = al")
+        with out.block("elif al <= 0:"):
+            out.add("done_l = True")
+    with out.block("if todo < 0:"):
+        with out.block("if done_r and done_l:"):
             out.add("phase = 6")
-    with out.block("elif todo < 0:"):
-        out.add("a += side")
+        with out.block("else:"):
+            tries = static_proof.PROOF_TRIES
+            out.add(f"try_r = not done_r and rs[ar] > -np.inf and tries_r < {tries}",
+                    f"try_l = not done_l and rs[al] > -np.inf and tries_l < {tries}",
+                    "proven_r = False", "proven_l = False")
+            if plan is not None:
+                with out.block("if try_r:"):
+                    static_proof.proof_source(plan, out, 1)
+                with out.block("if try_l:"):
+                    static_proof.proof_source(plan, out, -1)
+            for tag, step in (("r", "+= 1"), ("l", "-= 1")):
+                with out.block(f"if try_{tag}:"):
+                    out.add(f"tries_{tag} += 1")
+                with out.block(f"if proven_{tag}:"):
+                    out.add(f"done_{tag} = True")
+                with out.block(f"elif not done_{tag}:"):
+                    out.add(f"a{tag} {step}")
 
 
 def static_tables(

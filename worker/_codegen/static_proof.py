@@ -277,58 +277,70 @@ def table_source(plan: ProofPlan, out: Lines) -> None:
                 out.add(f"VT_lo[sd, {k}, a] = {lo}", f"VT_hi[sd, {k}, a] = {hi}")
 
 
-def proof_source(plan: ProofPlan, out: Lines) -> None:
-    """Lines setting ``proven``: no value beyond anchor ``a`` on side ``side`` (+1 right, −1 left) can win.
+def proof_source(plan: ProofPlan, out: Lines, side: int) -> None:
+    """Lines setting ``proven_r`` (``side`` +1) or ``proven_l`` (−1): no value beyond the anchor can win.
 
-    Reads ``a``, ``side``, ``best`` and the anchor's reward ``rs[a]``; the
-    per-line lines (:attr:`ProofPlan.line_lines`) must have run on this line.
+    The anchor is ``ar`` (right) or ``al`` (left); the lines read it, ``best``
+    and the anchor's reward ``rs[anchor]``, and the per-line lines
+    (:attr:`ProofPlan.line_lines`) must have run on this line.  The two
+    sides' lines use their own variables, so the statickernel runs them one
+    after the other in straight-line code, where the processor overlaps them.
     """
+    tag, a = ("r", "ar") if side > 0 else ("l", "al")
     lo_names, hi_names = dict(plan.names), dict(plan.names)
     off = plan.offset
-    out.add("proven = False", "empty = False", "sd = 0 if side > 0 else 1")
-    out.add(f"hb_lo = cgrid[{off} + (a if side > 0 else 0)]", f"hb_hi = cgrid[{off} + (NS - 1 if side > 0 else a)]")
-    lo_names[plan.choice], hi_names[plan.choice] = "hb_lo", "hb_hi"
-    _narrow(plan, out, "", "hb_lo", "hb_hi", None)
+    hull_lo, hull_hi = f"{tag}hb_lo", f"{tag}hb_hi"
+    out.add(f"proven_{tag} = False", f"empty_{tag} = False")
+    if side > 0:
+        out.add(f"{hull_lo} = cgrid[{off} + {a}]", f"{hull_hi} = cgrid[{off} + NS - 1]")
+    else:
+        out.add(f"{hull_lo} = cgrid[{off}]", f"{hull_hi} = cgrid[{off} + {a}]")
+    lo_names[plan.choice], hi_names[plan.choice] = hull_lo, hull_hi
+    _narrow(plan, out, "", hull_lo, hull_hi, None, tag)
+    sd = 0 if side > 0 else 1
     for k in range(len(plan.tables)):
-        out.add(f"vt{k}_lo = VT_lo[sd, {k}, a]", f"vt{k}_hi = VT_hi[sd, {k}, a]")
-        lo_names[f"@vt{k}"], hi_names[f"@vt{k}"] = f"vt{k}_lo", f"vt{k}_hi"
+        out.add(f"{tag}vt{k}_lo = VT_lo[{sd}, {k}, {a}]", f"{tag}vt{k}_hi = VT_hi[{sd}, {k}, {a}]")
+        lo_names[f"@vt{k}"], hi_names[f"@vt{k}"] = f"{tag}vt{k}_lo", f"{tag}vt{k}_hi"
     g_lo = g_hi = "0.0"
     for k, (name, value, slope) in enumerate(plan.steps):
         if value is not None:
-            lines, lo, hi = interval_source(Expression.from_tree(value), lo_names, hi_names, f"pv{k}_")
+            lines, lo, hi = interval_source(Expression.from_tree(value), lo_names, hi_names, f"{tag}pv{k}_")
             out.extend(_specialised(lines))
             lo_names[name], hi_names[name] = lo, hi
-        lines, d_lo, d_hi = interval_source(Expression.from_tree(slope), lo_names, hi_names, f"pd{k}_")
+        lines, d_lo, d_hi = interval_source(Expression.from_tree(slope), lo_names, hi_names, f"{tag}pd{k}_")
         out.extend(_specialised(lines))
         if name:
             lo_names[_slopes.prime(name)], hi_names[_slopes.prime(name)] = d_lo, d_hi
-            _narrow(plan, out, name, lo_names[name], hi_names[name], (d_lo, d_hi))
+            _narrow(plan, out, name, lo_names[name], hi_names[name], (d_lo, d_hi), tag)
         else:
             g_lo, g_hi = d_lo, d_hi
     grid = f"cgrid[{off} + "
-    with out.block("if not empty and side > 0:"):
+    if side > 0:
         # f(j) <= f(a) + (h_j - h_a) * G over the block [a + 1, last]: largest at its near end when G <= 0.
-        with out.block(f"if {g_hi} == {g_hi} and {g_hi} < np.inf:"):
-            out.add(f"dist = {grid}a + 1] - {grid}a] if {g_hi} <= 0.0 else {grid}NS - 1] - {grid}a]",
-                    f"step = dist * {g_hi}")
-            _finish(out, "ub <= best")
-    with out.block("elif not empty:"):
+        with out.block(f"if not empty_r and {g_hi} == {g_hi} and {g_hi} < np.inf:"):
+            out.add(f"dist_r = {grid}ar + 1] - {grid}ar] if {g_hi} <= 0.0 else {grid}NS - 1] - {grid}ar]",
+                    f"step_r = dist_r * {g_hi}")
+            _finish(out, "r", "ar", "<=")
+    else:
         # f(j) <= f(a) - (h_a - h_j) * G over the block [0, a - 1]: largest at its near end when G >= 0.
-        with out.block(f"if {g_lo} == {g_lo} and {g_lo} > -np.inf:"):
-            out.add(f"dist = {grid}a] - {grid}a - 1] if {g_lo} >= 0.0 else {grid}a] - {grid}0]",
-                    f"step = -(dist * {g_lo})")
-            _finish(out, "ub < best")
+        with out.block(f"if not empty_l and {g_lo} == {g_lo} and {g_lo} > -np.inf:"):
+            out.add(f"dist_l = {grid}al] - {grid}al - 1] if {g_lo} >= 0.0 else {grid}al] - {grid}0]",
+                    f"step_l = -(dist_l * {g_lo})")
+            _finish(out, "l", "al", "<")
 
 
-def _finish(out: Lines, test: str) -> None:
-    out.add("ub = rs[a] + step")
-    with out.block("if ub == -np.inf:"):
-        out.add("proven = True")  # every allowed value beyond is below any finite one
-    with out.block("elif ub - ub == 0.0:"):
-        out.add(f"ub += {SLACK!r} * (2.0 * abs(rs[a]) + abs(step) + abs(ub))", f"proven = {test}")
+def _finish(out: Lines, tag: str, a: str, test: str) -> None:
+    out.add(f"ub_{tag} = rs[{a}] + step_{tag}")
+    with out.block(f"if ub_{tag} == -np.inf:"):
+        out.add(f"proven_{tag} = True")  # every allowed value beyond is below any finite one
+    with out.block(f"elif ub_{tag} - ub_{tag} == 0.0:"):
+        out.add(f"ub_{tag} += {SLACK!r} * (2.0 * abs(rs[{a}]) + abs(step_{tag}) + abs(ub_{tag}))",
+                f"proven_{tag} = ub_{tag} {test} best")
 
 
-def _narrow(plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tuple[str, str] | None) -> None:
+def _narrow(
+    plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tuple[str, str] | None, tag: str
+) -> None:
     """Narrow ``[lo, hi]`` by the constraints on ``name`` (``""``: the static choice) where it is monotone."""
     limits = plan.limits.get(name or plan.choice, [])
     if not limits:
@@ -341,4 +353,4 @@ def _narrow(plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tup
             else:
                 out.add(f"{hi} = min({hi}, {limit})")
         with out.block(f"if not ({lo} <= {hi}):"):
-            out.add("empty = True")
+            out.add(f"empty_{tag} = True")
