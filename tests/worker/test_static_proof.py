@@ -72,6 +72,29 @@ def test_verified_climb_equals_the_search_over_every_hour(bump: float) -> None:
         assert climbed_counts["allowed"] < 4 * lines < scanned_counts["allowed"] / 3
 
 
+def test_a_root_utility_with_a_power_in_its_slope_is_verified_exactly() -> None:
+    # sqrt(c) and c**-0.5 in the slope: the interval helpers for powers see the bounds of c (invented utility).
+    model = dict(LABOUR, reward="2 * sqrt(c) - chi * h**3 / 3 + 0.1 * c**0.7")
+    climbed, climbed_counts = _tables(model, climb=True)
+    scanned, scanned_counts = _tables(model, climb=False)
+    assert np.array_equal(climbed, scanned)
+    assert np.array_equal(climbed_counts["static_pick"], scanned_counts["static_pick"])
+    assert climbed_counts["static_note"] is None
+    assert climbed_counts["allowed"] < scanned_counts["allowed"] / 3
+
+
+def test_limits_on_hours_and_on_a_falling_define_narrow_the_bounds_soundly() -> None:
+    # Leisure l = 1 − h falls with hours; `l >= 0.2` and `h <= 0.9` narrow the bounds (an invented household).
+    model = dict(LABOUR, define={**LABOUR["define"], "l": "1 - h"}, reward="log(c) + 0.5 * log(l) - h**2",
+                 feasible=["c > 0", "l >= 0.2", "h <= 0.9"])
+    climbed, climbed_counts = _tables(model, climb=True)
+    scanned, scanned_counts = _tables(model, climb=False)
+    assert np.array_equal(climbed, scanned)
+    assert np.array_equal(climbed_counts["static_pick"], scanned_counts["static_pick"])
+    assert climbed_counts["static_note"] is None
+    assert climbed_counts["allowed"] < scanned_counts["allowed"] / 3
+
+
 def test_hours_allowed_on_two_intervals_are_still_searched_exactly() -> None:
     # Hours near 0.5 are not allowed (an invented rule): the climb may stop at the gap, the verification does not.
     model = dict(LABOUR, feasible=["c > 0", "abs(h - 0.5) > 0.12"])

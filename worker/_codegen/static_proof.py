@@ -90,6 +90,9 @@ simply evaluated (count; where the hint holds the first proof succeeds on nearly
 _FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<="}
 _HELPER_LINE = re.compile(r"^(\w+), (\w+) = fixq_intervals\.(add|subtract|multiply|divide)\((.*)\)$")
 _FULL = "(-np.inf)", "np.inf"
+_NAN_TEST = re.compile(r"^\s*if (\w+) != \1 or (\w+) != \2:$")
+_ALIAS = re.compile(r"^\s*(\w+) = -?(\w+)$")
+_SAFE_HELPERS = frozenset({"add", "subtract", "multiply", "divide"})
 
 
 def _specialised(lines: list[str]) -> list[str]:
@@ -127,8 +130,8 @@ def _specialised(lines: list[str]) -> list[str]:
                        "else:", f"    {line}"]
         if pair is not None:
             result += [f"{lo} = {pair[0]}", f"{hi} = {pair[1]}"]
-        elif op in ("add", "subtract"):
-            result.append(line)
+        elif op != "divide" and not (op == "multiply" and (a_point or b_point)):
+            result.append(line)  # two intervals: the helper as written
             continue
         result += [f"if {lo} != {lo} or {hi} != {hi}:", f"    {lo} = {_FULL[0]}", f"    {hi} = {_FULL[1]}"]
     return result
@@ -277,6 +280,43 @@ def table_source(plan: ProofPlan, out: Lines) -> None:
                 out.add(f"VT_lo[sd, {k}, a] = {lo}", f"VT_hi[sd, {k}, a] = {hi}")
 
 
+def _needed_nan_tests(lines: list[str]) -> list[str]:
+    """``lines`` without the tests that turn a nan end into the full interval where no helper needs them.
+
+    A nan end may stay nan while it only flows into ``+ - * /`` (written
+    inline, or by their helpers, which return the full interval for a nan
+    operand), into ``max``/``min`` with it first (numba returns the nan), into
+    the narrowing's tests (false for nan: no narrowing) and into the final
+    test of the bound (which requires a number).  The other helpers assume
+    ends that are never nan, so whatever reaches one, directly or through
+    plain assignments, keeps its test.
+    """
+    sensitive: set[str] = set()
+    aliases: list[tuple[str, str]] = []
+    for line in lines:
+        match = re.search(r"= fixq_intervals\.(\w+)\((.*)\)$", line)
+        if match and match.group(1) not in _SAFE_HELPERS:
+            sensitive.update(arg for arg in match.group(2).split(", ") if arg.isidentifier())
+        alias = _ALIAS.match(line)
+        if alias:
+            aliases.append((alias.group(1), alias.group(2)))
+    for target, source in reversed(aliases):
+        if target in sensitive:
+            sensitive.add(source)
+    kept: list[str] = []
+    skip = 0
+    for line in lines:
+        if skip:
+            skip -= 1
+            continue
+        test = _NAN_TEST.match(line)
+        if test and not ({test.group(1), test.group(2)} & sensitive):
+            skip = 2
+            continue
+        kept.append(line)
+    return kept
+
+
 def proof_source(plan: ProofPlan, out: Lines, side: int) -> None:
     """Lines setting ``proven_r`` (``side`` +1) or ``proven_l`` (−1): no value beyond the anchor can win.
 
@@ -286,6 +326,8 @@ def proof_source(plan: ProofPlan, out: Lines, side: int) -> None:
     sides' lines use their own variables, so the statickernel runs them one
     after the other in straight-line code, where the processor overlaps them.
     """
+    whole = out
+    out = Lines()
     tag, a = ("r", "ar") if side > 0 else ("l", "al")
     lo_names, hi_names = dict(plan.names), dict(plan.names)
     off = plan.offset
@@ -327,6 +369,7 @@ def proof_source(plan: ProofPlan, out: Lines, side: int) -> None:
             out.add(f"dist_l = {grid}al] - {grid}al - 1] if {g_lo} >= 0.0 else {grid}al] - {grid}0]",
                     f"step_l = -(dist_l * {g_lo})")
             _finish(out, "l", "al", "<")
+    whole.extend(_needed_nan_tests(out.lines))
 
 
 def _finish(out: Lines, tag: str, a: str, test: str) -> None:
