@@ -192,7 +192,7 @@ def static_source(writer: StaticWriter) -> str:
                                 with out.block("if first_bad < 0:"):
                                     out.add("first_bad = c")
                         out.add("vlo = min(vlo, s)", "vhi = max(vhi, s)")
-                    _climb_step(out)
+                    _climb_step(out, plan)
                     with out.block("while todo < 0 and phase == 4:"):
                         _verify_step(out, plan)
                     with out.block("if todo < 0:"):
@@ -211,7 +211,7 @@ def static_source(writer: StaticWriter) -> str:
     return out.text() + "\n"
 
 
-def _climb_step(out: Lines) -> None:
+def _climb_step(out: Lines, plan: static_proof.ProofPlan | None) -> None:
     """After an evaluation in phases 0-3, the next value to evaluate (``todo``), or the verification's start."""
     with out.block("if phase == 3:"):
         out.add("nxt = s + 1")
@@ -224,6 +224,10 @@ def _climb_step(out: Lines) -> None:
             out.add("phase = 3", "skip = warm", "todo = 0 if warm != 0 else 1")
             with out.block("if todo >= NS:"):
                 out.add("todo = -1")
+            if plan is not None:
+                static_proof.none_allowed_source(plan, out)
+                with out.block("if none_allowed:"):
+                    out.add("todo = -1")
         with out.block("else:"):
             out.add("phase = 1", "s = warm")
     with out.block("if phase == 1 or phase == 2:"):

@@ -148,8 +148,9 @@ class _Tabulator(Hoister):
     def point(self, node: expressions.Node) -> expressions.Node:
         if isinstance(node, (expressions.Number, expressions.Name)) or self.choice not in names_in(node):
             return node
-        self.trees.append(node)
-        return expressions.Name(f"@vt{len(self.trees) - 1}")
+        if node not in self.trees:  # the same part in several trees is bounded once
+            self.trees.append(node)
+        return expressions.Name(f"@vt{self.trees.index(node)}")
 
 
 @dataclass
@@ -159,7 +160,8 @@ class ProofPlan:
     derivative tree)`` for the defines the reward needs that move with ``h``, in order, then ``("", None,
     reward derivative)``) and ``limits`` (per define or ``h``: ``(op, variable, fixed)`` of the constraints
     that may narrow it, the variable set by ``fixed_lines`` once per kernel call when ``fixed``, else by
-    ``line_lines``)."""
+    ``line_lines``).  ``values`` (define, tree) and ``tests`` (the constraints) bound the allowed set over a
+    whole line."""
 
     choice: str
     offset: str
@@ -168,6 +170,8 @@ class ProofPlan:
     line_lines: list[str]
     fixed_lines: list[str]
     steps: list[tuple[str, expressions.Node | None, expressions.Node]]
+    values: list[tuple[str, expressions.Node]] = field(default_factory=list)
+    tests: list[expressions.Node] = field(default_factory=list)
     limits: dict[str, list[tuple[str, str, bool]]] = field(default_factory=dict)
 
 
@@ -205,17 +209,29 @@ def proof_plan(writer: KernelWriter, axis: int, constant: set[str]) -> ProofPlan
         steps.append(("", None, _slopes.derivative(writer.reward.tree, choice, varying)))
     except _slopes.NotSmooth:
         return None
+    # The allowed set over the whole line, for lines where the climb's start is not allowed.
+    tested = set().union(*(expr.names for expr in model.feasible)) if model.feasible else set()
+    for name, expr in reversed(model.defines):
+        if name in tested:
+            tested |= set(expr.names)
+    values = [(model.defines[k][0], expr.tree) for k, expr in writer.defines
+              if expr is not None and model.defines[k][0] in moving and model.defines[k][0] in tested]
+    tests = [expr.tree for expr in writer.feasible]
     steps = [
         (name, None if value is None else tabulator.rewrite(value), tabulator.rewrite(slope))
         for name, value, slope in steps
     ]
+    values = [(name, tabulator.rewrite(tree)) for name, tree in values]
+    tests = [tabulator.rewrite(tree) for tree in tests]
     per_line = Hoister(moving | {_slopes.prime(n) for n in moving} | {f"@vt{k}" for k in range(len(tabulator.trees))},
                        names, line_lines, "w")
     steps = [
         (name, None if value is None else per_line.rewrite(value), per_line.rewrite(slope))
         for name, value, slope in steps
     ]
-    plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, [], steps)
+    values = [(name, per_line.rewrite(tree)) for name, tree in values]
+    tests = [per_line.rewrite(tree) for tree in tests]
+    plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, [], steps, values, tests)
     for expr in writer.feasible:
         _limits(expr.tree, moving, names, plan.limits, static_names)
     _limit_lines(plan)
@@ -370,6 +386,34 @@ def proof_source(plan: ProofPlan, out: Lines, side: int) -> None:
                     f"step_l = -(dist_l * {g_lo})")
             _finish(out, "l", "al", "<")
     whole.extend(_needed_nan_tests(out.lines))
+
+
+def none_allowed_source(plan: ProofPlan, out: Lines) -> None:
+    """Lines setting ``none_allowed`` when some constraint is false at every value of the static choice.
+
+    Bounds every constraint over the whole line (the hull of all its
+    values: the tables of side 0 at anchor 0) and reads a bound of exactly
+    ``[0, 0]`` as false everywhere (the rule of the comparison helpers).
+    Lines with no allowed value are common where a large next capital
+    leaves nothing to eat at any hours; their climb's start is not allowed,
+    and this saves the search over every value there.
+    """
+    lo_names, hi_names = dict(plan.names), dict(plan.names)
+    off = plan.offset
+    lo_names[plan.choice], hi_names[plan.choice] = "nhb_lo", "nhb_hi"
+    out.add("none_allowed = False", f"nhb_lo = cgrid[{off}]", f"nhb_hi = cgrid[{off} + NS - 1]")
+    for k in range(len(plan.tables)):
+        out.add(f"nvt{k}_lo = VT_lo[0, {k}, 0]", f"nvt{k}_hi = VT_hi[0, {k}, 0]")
+        lo_names[f"@vt{k}"], hi_names[f"@vt{k}"] = f"nvt{k}_lo", f"nvt{k}_hi"
+    for k, (name, tree) in enumerate(plan.values):
+        lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, f"nv{k}_")
+        out.extend(lines)
+        lo_names[name], hi_names[name] = lo, hi
+    for k, tree in enumerate(plan.tests):
+        lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, f"nt{k}_")
+        out.extend(lines)
+        with out.block(f"if {lo} == 0.0 and {hi} == 0.0:"):
+            out.add("none_allowed = True")
 
 
 def _finish(out: Lines, tag: str, a: str, test: str) -> None:
