@@ -96,15 +96,20 @@ _SAFE_HELPERS = frozenset({"add", "subtract", "multiply", "divide"})
 
 
 def _specialised(lines: list[str]) -> list[str]:
-    """``lines`` of :func:`interval_source` with ``+ - * /`` written inline where that saves work.
+    """``lines`` of :func:`interval_source` with ``+ - * /`` written inline, each followed by a nan test.
 
-    Same bounds as the helpers of :mod:`worker.expressions.interval_kernels`
-    (each case below is the helper's result when its condition holds, and
-    any nan falls back to the full interval, as there): an operand that is
-    a single point (both its ends the same variable) needs two operations
-    instead of four, and a quotient of a non-negative by a positive interval
-    is ``[lo/hi', hi/lo']``.  The proof runs a few million times per table,
-    where the helpers' general cases were most of its cost (measured).
+    Each case encloses what the helper of :mod:`worker.expressions.interval_kernels`
+    encloses, by the same argument (rounding to nearest is monotone, so the
+    computed value at any point of the box lies between the computed corner
+    values), and any nan end -- which is where a nan may occur inside the box
+    -- becomes the full interval, as there: a sum or difference takes the two
+    corners that bound it; a product with a single point (both ends the same
+    variable) two corners chosen by its sign, or ``[0, 0]`` for a zero point
+    and a finite interval; a quotient by a single point likewise, and of a
+    non-negative by a positive interval ``[lo/hi', hi/lo']``, else the helper.
+    The proofs run millions of times per table, where the helpers' general
+    cases were most of their cost, and every helper call site costs the
+    kernel some 20-50 ms of compile time (measured).
     """
     result: list[str] = []
     for line in lines:
@@ -114,26 +119,27 @@ def _specialised(lines: list[str]) -> list[str]:
             continue
         lo, hi, op, args = match.group(1), match.group(2), match.group(3), match.group(4).split(", ")
         al, ah, bl, bh = args
-        a_point, b_point = al == ah, bl == bh
-        pair = None
-        if op == "add" and (a_point or b_point):
-            pair = f"{al} + {bl}", f"{ah} + {bh}"
-        elif op == "subtract" and (a_point or b_point):
-            pair = f"{al} - {bh}", f"{ah} - {bl}"
-        elif op == "multiply" and (a_point or b_point):
-            p, (xl, xh) = (al, (bl, bh)) if a_point else (bl, (al, ah))
+        full = [f"    {lo} = {_FULL[0]}", f"    {hi} = {_FULL[1]}"]
+        if op in ("add", "subtract"):
+            sign, first, second = ("+", bl, bh) if op == "add" else ("-", bh, bl)
+            result += [f"{lo} = {al} {sign} {first}", f"{hi} = {ah} {sign} {second}"]
+        elif op == "multiply" and (al == ah or bl == bh):
+            p, (xl, xh) = (al, (bl, bh)) if al == ah else (bl, (al, ah))
             result += [f"if {p} > 0.0:", f"    {lo} = {p} * {xl}", f"    {hi} = {p} * {xh}",
                        f"elif {p} < 0.0:", f"    {lo} = {p} * {xh}", f"    {hi} = {p} * {xl}",
-                       "else:", f"    {line}"]
+                       f"elif {p} == 0.0 and {xl} > -np.inf and {xh} < np.inf:", f"    {lo} = 0.0", f"    {hi} = 0.0",
+                       "else:", *full]
+        elif op == "divide" and bl == bh:
+            result += [f"if {bl} > 0.0:", f"    {lo} = {al} / {bl}", f"    {hi} = {ah} / {bl}",
+                       f"elif {bl} < 0.0:", f"    {lo} = {ah} / {bl}", f"    {hi} = {al} / {bl}",
+                       "else:", *full]
         elif op == "divide":
             result += [f"if {bl} > 0.0 and {al} >= 0.0:", f"    {lo} = {al} / {bh}", f"    {hi} = {ah} / {bl}",
                        "else:", f"    {line}"]
-        if pair is not None:
-            result += [f"{lo} = {pair[0]}", f"{hi} = {pair[1]}"]
-        elif op != "divide" and not (op == "multiply" and (a_point or b_point)):
+        else:
             result.append(line)  # two intervals: the helper as written
             continue
-        result += [f"if {lo} != {lo} or {hi} != {hi}:", f"    {lo} = {_FULL[0]}", f"    {hi} = {_FULL[1]}"]
+        result += [f"if {lo} != {lo} or {hi} != {hi}:", *full]
     return result
 
 
@@ -290,6 +296,7 @@ def table_source(plan: ProofPlan, out: Lines) -> None:
         with out.block("for a in range(NS):"):
             out.add(f"hb_lo = cgrid[{plan.offset} + (a if sd == 0 else 0)]",
                     f"hb_hi = cgrid[{plan.offset} + (NS - 1 if sd == 0 else a)]")
+            # The helpers as written: this runs 2 × NS times per call, and inline code compiles slower.
             for k, tree in enumerate(plan.tables):
                 lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, f"tb{k}_")
                 out.extend(lines)
@@ -405,6 +412,7 @@ def none_allowed_source(plan: ProofPlan, out: Lines) -> None:
     for k in range(len(plan.tables)):
         out.add(f"nvt{k}_lo = VT_lo[0, {k}, 0]", f"nvt{k}_hi = VT_hi[0, {k}, 0]")
         lo_names[f"@vt{k}"], hi_names[f"@vt{k}"] = f"nvt{k}_lo", f"nvt{k}_hi"
+    # The helpers as written: this runs on few lines, and inline code compiles slower.
     for k, (name, tree) in enumerate(plan.values):
         lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, f"nv{k}_")
         out.extend(lines)
