@@ -95,6 +95,20 @@ def test_limits_on_hours_and_on_a_falling_define_narrow_the_bounds_soundly() -> 
     assert climbed_counts["allowed"] < scanned_counts["allowed"] / 3
 
 
+@pytest.mark.parametrize("change", [
+    {"reward": "min(log(c), 0.5) - h**2"},  # a kink: the slope's bounds are the hull of both sides
+    {"reward": "0.0 * h + k"},  # flat along the hours: every value ties, the lowest wins
+    {"feasible": ["c >= 0.5 and h > 0.2"]},  # limits inside a conjunction
+])
+def test_other_shapes_and_limits_are_verified_exactly(change: dict) -> None:
+    model = dict(LABOUR, **change)
+    climbed, climbed_counts = _tables(model, climb=True)
+    scanned, scanned_counts = _tables(model, climb=False)
+    assert np.array_equal(climbed, scanned)
+    assert np.array_equal(climbed_counts["static_pick"], scanned_counts["static_pick"])
+    assert climbed_counts["static_note"] is None
+
+
 def test_hours_allowed_on_two_intervals_are_still_searched_exactly() -> None:
     # Hours near 0.5 are not allowed (an invented rule): the climb may stop at the gap, the verification does not.
     model = dict(LABOUR, feasible=["c > 0", "abs(h - 0.5) > 0.12"])
