@@ -15,9 +15,12 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any
 
+from worker import _slopes
 from worker.drawnames import draw_names
+from worker.errors import join_path
+from worker.expressions import names_in, parse
 
-__all__ = ["HintUse", "hint_use"]
+__all__ = ["HintUse", "hint_use", "jumps_along"]
 
 
 @dataclass(frozen=True)
@@ -38,6 +41,36 @@ class HintUse:
 
 def _names(names: list[str] | tuple[str, ...]) -> str:
     return ", ".join(f"`{name}`" for name in names)
+
+
+def jumps_along(model: Any, choice: str) -> bool:
+    """Whether ``model``'s reward may jump along ``choice`` (a comparison, logic or ``where()`` test that
+    depends on it, in the reward or a define it needs): then no bound of its slope exists, and a climb along
+    a static choice could not be verified (:mod:`worker._codegen.static_proof`, which decides the same)."""
+    trees = {name: parse(text, path=join_path("model", "define", name)).tree for name, text in model.define.items()}
+    moving = {choice}
+    changed = True
+    while changed:  # the defines that depend on the choice, whatever order they come in
+        changed = False
+        for name, tree in trees.items():
+            if name not in moving and names_in(tree) & moving:
+                moving.add(name)
+                changed = True
+    reward = parse(model.reward, path=join_path("model", "reward")).tree
+    needed, todo = set(), [reward]
+    while todo:
+        for name in names_in(todo.pop()):
+            if name in trees and name not in needed:
+                needed.add(name)
+                todo.append(trees[name])
+    varying = {name: True for name in moving if name != choice}
+    try:
+        for name in needed & moving:
+            _slopes.derivative(trees[name], choice, varying)
+        _slopes.derivative(reward, choice, varying)
+    except _slopes.NotSmooth:
+        return True
+    return False
 
 
 def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = None) -> HintUse:
@@ -81,7 +114,13 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
             f"the monotone hint was not used: it needs the choice `{name}` to be next_of a state (the policy is "
             "promised not to fall along that state)"
         )
-    static_concave = wants_concave and len(static) == 1
+    static_concave = wants_concave and len(static) == 1 and not jumps_along(model, static[0])
+    if wants_concave and len(static) == 1 and not static_concave:
+        notes.append(
+            f"the concave hint was not used along `{static[0]}` (maximised out within the period): the reward may "
+            f"jump along it (a comparison, logic or where() that depends on it), so a climb along it could not be "
+            f"verified by bounds of the reward's slope; `{static[0]}` was maximised over all its values"
+        )
     if wants_concave and len(static) > 1:
         notes.append(
             f"the concave hint was not used along {_names(static)} (maximised out within the period): it applies "

@@ -9,6 +9,7 @@ import pytest
 from tests._documents import grid_document as document
 from worker import solve
 from worker.document import parse_document
+from worker.estimate import grid_plan
 from worker.feasibility import model_data
 from worker.statickernel import static_tables
 
@@ -126,8 +127,14 @@ def test_a_reward_that_jumps_along_hours_is_searched_in_full_and_said_so() -> No
     assert np.array_equal(climbed, scanned)
     assert "the concave hint was not used along `h`" in counts["static_note"]
     assert "maximised over all its values" in counts["static_note"]
+    # The plan knows it before any kernel runs (worker.hintuse.jumps_along), so the notes agree.
+    plan = grid_plan(parse_document(document(model, hints=BOTH)).model)
+    assert plan.concave and not plan.static_concave
+    assert grid_plan(parse_document(document(LABOUR, hints=BOTH)).model).static_concave
     result = solve(document(model, hints=BOTH))
-    assert any("the concave hint was not used along `h`" in note for note in result["diagnostics"]["notes"])
+    notes = result["diagnostics"]["notes"]
+    assert any("the concave hint was not used along `h`" in note for note in notes)
+    assert not any("maximised out by climbing" in note for note in notes)
 
 
 def test_hinted_solve_matches_the_unhinted_one() -> None:
