@@ -137,10 +137,26 @@ def test_a_reward_that_jumps_along_hours_is_searched_in_full_and_said_so() -> No
     assert not any("maximised out by climbing" in note for note in notes)
 
 
-def test_hinted_solve_matches_the_unhinted_one() -> None:
+def test_hinted_solve_matches_the_unhinted_one_and_a_numpy_value_iteration() -> None:
     hinted, plain = solve(document(LABOUR, hints=BOTH)), solve(document(LABOUR))
     assert hinted["status"] == plain["status"] == "converged"
     assert hinted["policy_index"] == plain["policy_index"]
     assert np.abs(np.array(hinted["value"]) - np.array(plain["value"])).max() <= (
         hinted["error_bound"] + plain["error_bound"])
     assert not any("did not hold" in note for note in hinted["diagnostics"]["notes"])
+    # Independent: numpy value iteration over the hours-out tables of _plain_tables, β = 0.95 (the documents').
+    R, best_h = _plain_tables(LABOUR)  # (k, z, k')
+    P = np.array([[0.9, 0.1], [0.1, 0.9]])
+    v = np.zeros((30, 2))
+    for _ in range(2000):
+        new = (R + 0.95 * (v @ P.T).T[None, :, :]).max(axis=2)
+        done = np.abs(new - v).max() < 1e-12
+        v = new
+        if done:
+            break
+    k_index = (R + 0.95 * (v @ P.T).T[None, :, :]).argmax(axis=2)
+    h_index = np.take_along_axis(best_h, k_index[:, :, None], axis=2)[:, :, 0]
+    assert np.abs(np.array(hinted["value"]) - v).max() <= hinted["error_bound"] + 1e-10
+    assert np.array_equal(np.array(hinted["policy_index"]["k_next"]), k_index)
+    assert np.array_equal(np.array(hinted["policy_index"]["h"]), h_index)
+    assert len(np.unique(h_index)) > 1  # hours respond to capital and productivity
