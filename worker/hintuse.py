@@ -12,6 +12,7 @@ silently.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Any
 
@@ -43,11 +44,17 @@ def _names(names: list[str] | tuple[str, ...]) -> str:
     return ", ".join(f"`{name}`" for name in names)
 
 
+@functools.lru_cache(maxsize=512)
+def _tree(text: str, *path: str) -> Any:
+    """The parsed tree of ``text`` (frozen nodes, so shared safely; a plan is made several times per solve)."""
+    return parse(text, path=join_path(*path)).tree
+
+
 def jumps_along(model: Any, choice: str) -> bool:
     """Whether ``model``'s reward may jump along ``choice`` (a comparison, logic or ``where()`` test that
     depends on it, in the reward or a define it needs): then no bound of its slope exists, and a climb along
     a static choice could not be verified (:mod:`worker._codegen.static_proof`, which decides the same)."""
-    trees = {name: parse(text, path=join_path("model", "define", name)).tree for name, text in model.define.items()}
+    trees = {name: _tree(text, "model", "define", name) for name, text in model.define.items()}
     moving = {choice}
     changed = True
     while changed:  # the defines that depend on the choice, whatever order they come in
@@ -56,7 +63,7 @@ def jumps_along(model: Any, choice: str) -> bool:
             if name not in moving and names_in(tree) & moving:
                 moving.add(name)
                 changed = True
-    reward = parse(model.reward, path=join_path("model", "reward")).tree
+    reward = _tree(model.reward, "model", "reward")
     needed, todo = set(), [reward]
     while todo:
         for name in names_in(todo.pop()):
