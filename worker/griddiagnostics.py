@@ -25,6 +25,11 @@ EDGE_WARNING_SHARE = 0.01
 """Share of points at the lowest or highest point of a choice grid above which the diagnostics warn."""
 SCAN_MAX_PAIRS = 20_000_000
 """On the fly, (point, choice) pairs up to which the diagnostics count clamped pairs over all choices."""
+CLIMBED_SCOPE = (
+    " evaluated while the static choice was maximised out (under the concave hint its other values were proven "
+    "lower without evaluating them)"
+)
+"""Said of counted pairs when a climb along the static choice filled the tables (:mod:`worker.statickernel`)."""
 
 
 class GridDiagnostics:
@@ -82,13 +87,6 @@ class GridDiagnostics:
             )
         if self.plan.hint_note:
             notes.append(self.plan.hint_note)
-        missed = self._counts.get("climb_missed")
-        if missed is not None:
-            notes.append(
-                "the verification refilled the tables over every value of the static choice (the iterations climbed "
-                f"along it under the concave hint): the climb had missed {missed:,} entries"
-                + ("" if missed == 0 else ", and the solve went on from the exact tables")
-            )
         model_choices = self._choice_indices(policy)
         edge_hits = {}
         for j, (name, grid, index) in enumerate(zip(data.choices, data.choice_grids, model_choices)):
@@ -148,7 +146,8 @@ class GridDiagnostics:
         overall: dict[str, Any] | None
         if self.reward_storage == "tables":
             count, allowed = self._counts["clamped"], self._counts["allowed"]
-            overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"}
+            overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"
+                       + (CLIMBED_SCOPE if self._counts.get("climbed") else "")}
         elif data.n * data.n_choices <= SCAN_MAX_PAIRS:
             allowed_per = np.empty(self.n, dtype=np.int64)
             clamped_per = np.empty(self.n, dtype=np.int64)
@@ -212,7 +211,7 @@ class GridDiagnostics:
         data = self._full
         if self.reward_storage == "tables":
             count, example = self._counts["bad"], self._counts["bad_example"]
-            scope = "all (state, choice) pairs"
+            scope = "all (state, choice) pairs" + (CLIMBED_SCOPE if self._counts.get("climbed") else "")
         else:
             if self._last_exact is None:
                 return None

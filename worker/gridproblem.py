@@ -155,8 +155,6 @@ class GridProblem(GridDiagnostics):
             )
             self._last_hinted = (np.array(v, dtype=np.float64).reshape(self.n), out_policy.copy(), out_reward)
             return out_v, out_policy
-        if self._counts.get("climbed"):
-            self._exact_static_tables()
         out_bad = np.empty(self.n, dtype=np.int64)
         out_bad_choice = np.empty(self.n, dtype=np.int64)
         if self.reward_storage == "tables" or exhaustive:
@@ -196,27 +194,6 @@ class GridProblem(GridDiagnostics):
         if self.reward_storage == "on_the_fly":
             self._last_exact = {"bad": out_bad, "bad_choice": out_bad_choice}
         return out_v, out_policy
-
-    def _exact_static_tables(self) -> None:
-        """Refill the tables of a static choice over every value of it, replacing the climbed ones.
-
-        A climb along the static choice (the ``concave`` hint) is exact only when
-        the hint holds on every line; the solvers' unrestricted step verifies the
-        hints, so it must see the tables of the full maximisation.  Entries the
-        climb missed are counted in ``counts["climb_missed"]``.
-        """
-        from worker.statickernel import static_tables
-
-        climbed = self._ctx[0]
-        tables, counts = static_tables(self._full, self._static, climb=False)
-        scale = float(np.abs(tables[0][np.isfinite(tables[0])]).max(initial=1.0))
-        missed = int(np.count_nonzero(tables[0] > climbed + 64 * np.finfo(float).eps * scale))
-        self._ctx = (*tables, self._ctx[-1])
-        counts.pop("static_note", None)
-        self._counts.update(counts)
-        self._counts["climb_missed"] = missed
-        self._policy_cache = None
-        self._last_hinted = None
 
     def _in_blocks(self, step: Callable[[int, int], object]) -> None:
         """``step(start, stop)`` over row blocks of the flat states, on ``threads`` threads."""

@@ -5,19 +5,23 @@ move tomorrow's state, once for every combination of the others, which are
 searched in full.  Static choices (:mod:`worker.staticchoices`) are
 maximised out into tables first when they fit; ``concave`` also applies to
 the maximisation over a single static choice (see
-:mod:`worker.statickernel`).  Every requested hint that cannot be used gets
+:mod:`worker.statickernel`, which verifies every climb exactly).  Every requested hint that cannot be used gets
 a note naming the hint, the choice and the reason; nothing is dropped
 silently.
 """
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Any
 
+from worker import _slopes
 from worker.drawnames import draw_names
+from worker.errors import join_path
+from worker.expressions import names_in, parse
 
-__all__ = ["HintUse", "hint_use"]
+__all__ = ["HintUse", "hint_use", "jumps_along"]
 
 
 @dataclass(frozen=True)
@@ -38,6 +42,42 @@ class HintUse:
 
 def _names(names: list[str] | tuple[str, ...]) -> str:
     return ", ".join(f"`{name}`" for name in names)
+
+
+@functools.lru_cache(maxsize=512)
+def _tree(text: str, *path: str) -> Any:
+    """The parsed tree of ``text`` (frozen nodes, so shared safely; a plan is made several times per solve)."""
+    return parse(text, path=join_path(*path)).tree
+
+
+def jumps_along(model: Any, choice: str) -> bool:
+    """Whether ``model``'s reward may jump along ``choice`` (a comparison, logic or ``where()`` test that
+    depends on it, in the reward or a define it needs): then no bound of its slope exists, and a climb along
+    a static choice could not be verified (:mod:`worker._codegen.static_proof`, which decides the same)."""
+    trees = {name: _tree(text, "model", "define", name) for name, text in model.define.items()}
+    moving = {choice}
+    changed = True
+    while changed:  # the defines that depend on the choice, whatever order they come in
+        changed = False
+        for name, tree in trees.items():
+            if name not in moving and names_in(tree) & moving:
+                moving.add(name)
+                changed = True
+    reward = _tree(model.reward, "model", "reward")
+    needed, todo = set(), [reward]
+    while todo:
+        for name in names_in(todo.pop()):
+            if name in trees and name not in needed:
+                needed.add(name)
+                todo.append(trees[name])
+    varying = {name: True for name in moving if name != choice}
+    try:
+        for name in needed & moving:
+            _slopes.derivative(trees[name], choice, varying)
+        _slopes.derivative(reward, choice, varying)
+    except _slopes.NotSmooth:
+        return True
+    return False
 
 
 def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = None) -> HintUse:
@@ -81,7 +121,13 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
             f"the monotone hint was not used: it needs the choice `{name}` to be next_of a state (the policy is "
             "promised not to fall along that state)"
         )
-    static_concave = wants_concave and len(static) == 1
+    static_concave = wants_concave and len(static) == 1 and not jumps_along(model, static[0])
+    if wants_concave and len(static) == 1 and not static_concave:
+        notes.append(
+            f"the concave hint was not used along `{static[0]}` (maximised out within the period): the reward may "
+            f"jump along it (a comparison, logic or where() that depends on it), so a climb along it could not be "
+            f"verified by bounds of the reward's slope; `{static[0]}` was maximised over all its values"
+        )
     if wants_concave and len(static) > 1:
         notes.append(
             f"the concave hint was not used along {_names(static)} (maximised out within the period): it applies "
@@ -94,7 +140,7 @@ def hint_use(model: Any, static: tuple[str, ...] = (), no_tables: str | None = N
         if static_concave:
             words += (
                 f", and the concave hint to `{static[0]}`, maximised out by climbing from the best value at the "
-                f"neighbouring `{name}` during the iterations (the verification searches `{static[0]}` in full)"
+                f"neighbouring `{name}`, each climb verified by bounds of the reward's slope along `{static[0]}`"
             )
         if monotone and static:
             sets = "which sets" if len(static) == 1 else "which set"
