@@ -13,7 +13,16 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from worker.costs import MATVEC_NS, POINT_NS, grid_common_bytes, iteration_steps
+from worker.costs import (
+    BASE_BYTES,
+    MATVEC_NS,
+    POINT_NS,
+    euler_elements,
+    horizon_bytes,
+    iteration_steps,
+    report_bytes,
+    solve_bytes,
+)
 from worker.kernel_limits import compile_cost
 
 __all__ = ["SEARCH_POINTS", "continuous_estimate"]
@@ -39,7 +48,10 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     nodes = 2**states
     scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
     method = doc.solver.method
-    memory = grid_common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+    entries = n * nodes * shocks
+    first_axis = next(iter(model.states.values())).size
+    memory = (BASE_BYTES + solve_bytes(n, entries, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+              + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
     steps, per_iteration, basis = iteration_steps(doc, scan)

@@ -13,6 +13,10 @@ from typing import Any
 
 __all__ = [
     "BOUND_NS",
+    "EULER_BYTES_PER_ELEMENT",
+    "SIMULATION_BYTES_PER_DRAW",
+    "STATIONARY_BYTES_PER_ENTRY",
+    "STATIONARY_BYTES_PER_STATE",
     "CHOICE_BYTES",
     "DIRECT_SOLVE_MAX_POINTS",
     "EXACT_POINTS_PER_ROOT_CHOICE",
@@ -26,7 +30,11 @@ __all__ = [
     "SOLVER_BYTES_PER_STATE",
     "STATIC_CLIMB_POINTS",
     "TABLE_READ_NS",
-    "grid_common_bytes",
+    "BASE_BYTES",
+    "euler_elements",
+    "policy_matrix_bytes",
+    "report_bytes",
+    "solve_bytes",
     "horizon_bytes",
     "iteration_steps",
     "linear_solve_bytes",
@@ -59,8 +67,27 @@ CHOICE_BYTES = 17
 """Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
 RESULT_BYTES_PER_STATE = 120
 """Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
-SOLVER_BYTES_PER_STATE = 96
-"""Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
+SOLVER_BYTES_PER_STATE = 160
+"""Vectors of length n the solver, the Bellman step and the outcome keep alive (bytes per point; traced peaks
+measured by ``bench/bench_estimates.py``: about 120 with reward tables, 230 with hinted searches)."""
+BASE_BYTES = 24 * 2**10
+"""What any solve allocates whatever its size: the validated document, the log, the result's dictionaries
+(bytes; 24 KiB; the traced peak of a ten-state tabular solve is about 30 KiB)."""
+STATIONARY_BYTES_PER_STATE = 300
+"""The stationary report per point: the distribution, its marginals and lists, the solve's vectors (bytes;
+measured: 540 per point with 5 shock points, 1,100 with 7 and interpolated nodes, including the entries)."""
+STATIONARY_BYTES_PER_ENTRY = 50
+"""The stationary report per entry of the policy's matrix: the matrix, its transpose and their solve (bytes)."""
+SIMULATION_BYTES_PER_DRAW = 24
+"""The simulation per simulated period of one path (bytes; measured 24–28 at 200 × 100 and 1,000 × 500)."""
+EULER_BYTES_PER_ELEMENT = 64
+"""Temporaries of the Euler-error measurement per element of a chunk (bytes: about eight float64 arrays;
+measured 66 on the beekeeper example)."""
+EULER_TEST_POINTS_PER_GRID_POINT = 10
+"""As :data:`worker.euler.TEST_POINTS_PER_GRID_POINT` (not imported: ``worker.euler`` imports this module's
+importers; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+EULER_CHUNK_ELEMENTS = 2**18
+"""As ``worker.euler._CHUNK_ELEMENTS``: (test point, shock, next shock) triples evaluated at once (count)."""
 
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
@@ -73,14 +100,42 @@ KRYLOV_RESIDUAL_SHARE = 1e-3
 ``tolerance · (1 − β)`` (dimensionless)."""
 
 
-def grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
-    """Memory every reward storage needs: solver vectors, the policy's nodes and sparse matrix, the result."""
-    policy_nodes = n * nodes * 16
-    matrix = n * nodes * shocks * 12 + 8 * (n + 1)
+def policy_matrix_bytes(n: int, entries: int) -> int:
+    """A policy's sparse transition matrix with ``entries`` stored entries, in CSR (bytes)."""
+    return entries * 12 + 8 * (n + 1)
+
+
+def solve_bytes(n: int, entries: int, method: str) -> int:
+    """What the solver keeps while it iterates: its vectors and, for policy iteration, the policy's matrix and
+    its exact evaluation (bytes).  ``entries``: stored entries of a policy's matrix."""
+    memory = n * SOLVER_BYTES_PER_STATE
     if method == "policy_iteration":
-        matrix += linear_solve_bytes(n, n * nodes * shocks)
-    chain = 8 * shocks * shocks
-    return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
+        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries)
+    return memory
+
+
+def euler_elements(doc: Any, grid_points: int, shocks: int) -> int:
+    """Elements of one chunk of the Euler-error measurement (0 when it is not asked for): its test points
+    (``EULER_TEST_POINTS_PER_GRID_POINT`` per grid interval) times the pairs of today's and tomorrow's shocks,
+    at most ``EULER_CHUNK_ELEMENTS``."""
+    if not getattr(doc.report, "euler_errors", False) or grid_points < 2:
+        return 0
+    per_interval = math.ceil(EULER_TEST_POINTS_PER_GRID_POINT * grid_points / (grid_points - 1))
+    return min(per_interval * (grid_points - 1) * shocks * shocks, max(EULER_CHUNK_ELEMENTS, shocks * shocks))
+
+
+def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
+    """The result document and the reports asked for (bytes): the value and policy as nested lists, the
+    stationary distribution (a policy's matrix with ``entries`` entries and its solve), the simulated paths,
+    and ``euler`` elements of the Euler-error measurement's temporaries (:func:`euler_elements`)."""
+    report = doc.report
+    memory = n * RESULT_BYTES_PER_STATE
+    if report.stationary:
+        memory += n * STATIONARY_BYTES_PER_STATE + entries * STATIONARY_BYTES_PER_ENTRY
+    if report.simulation is not None:
+        memory += int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_BYTES_PER_DRAW
+        memory += 0 if report.stationary else policy_matrix_bytes(n, entries)
+    return memory + euler * EULER_BYTES_PER_ELEMENT
 
 
 def linear_solve_bytes(n: int, entries: int) -> int:

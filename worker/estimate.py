@@ -42,22 +42,24 @@ from dataclasses import dataclass
 from typing import Any
 
 from worker.costs import (
+    BASE_BYTES,
     BOUND_NS,
     CHOICE_BYTES,
     EXACT_POINTS_PER_ROOT_CHOICE,
     MATVEC_NS,
     NUMPY_PAIR_NS,
     POINT_NS,
-    RESULT_BYTES_PER_STATE,
     SOLVER_BYTES_PER_STATE,
     STATIC_CLIMB_POINTS,
     TABLE_READ_NS,
-    grid_common_bytes,
+    euler_elements,
     horizon_bytes,
     iteration_steps,
     linear_solve_bytes,
     linear_solve_seconds,
     linear_solve_words,
+    report_bytes,
+    solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
 from worker.hintuse import hint_use
@@ -78,8 +80,17 @@ PRECOMPUTE_CAP_SHARE = 0.25
 """Share of the memory cap (``limits["max_bytes"]``) precomputed tables may take (dimensionless)."""
 CHUNK_ELEMENTS = 1 << 20
 """(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
-CHUNK_TEMPORARIES = 8
-"""float64 temporaries of chunk size alive at once while evaluating a model's expressions (count)."""
+CHUNK_TEMPORARIES = 5
+"""float64 temporaries of chunk size alive at once while evaluating a model's expressions (count; traced peaks
+of the bundled examples: 3 to 8, and 10 per draw with draws after the choice)."""
+FEASIBILITY_COLUMNS = 2
+"""Choices per state the feasibility scan of a pointwise model typically evaluates before every state has an
+allowed one (count: its first passes try one, then two; a model whose allowed choices are rare goes on, with
+passes of up to ``CHUNK_ELEMENTS`` pairs)."""
+
+DENSE_CONVERSION_BYTES = 24
+"""Temporaries per entry of a dense tabular transition while it becomes a sparse matrix (bytes; measured on
+``bench/bench_estimates.py``'s dense document: the traced peak is about 40 bytes per entry in all)."""
 
 _MIB = 2**20
 
@@ -114,6 +125,9 @@ class GridPlan:
         Peak working memory of each reward storage and the precompute budget.
     reason : str
         The reward-storage decision in plain words.
+    table_bytes, solve_extra_bytes : int
+        Bytes of the tables alone (kept for the whole solve), and what the iterations add to the solver's
+        vectors (with taste shocks: a policy's mixed matrix before its duplicates are summed).
     table_entries : int
         Entries of the reward tables: ``pairs``, or fewer when static
         choices are maximised out (:mod:`worker.staticchoices`).
@@ -139,13 +153,17 @@ class GridPlan:
     reason: str
     table_entries: int = 0
     static_concave: bool = False
+    table_bytes: int = 0
+    solve_extra_bytes: int = 0
 
     @property
     def hints_active(self) -> bool:
         return self.monotone or self.concave
 
     @property
-    def bytes(self) -> int:
+    def setup_bytes(self) -> int:
+        """Peak of building the reward storage: the tables and their chunks' temporaries, or the feasibility
+        scan's temporaries."""
         return self.precompute_bytes if self.reward_storage == "tables" else self.on_the_fly_bytes
 
 
@@ -176,25 +194,29 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
-    common = grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
+    common = CHOICE_BYTES * choices
     table_bytes = draw_table_bytes(pairs, draws, interpolated) if draws else n * table_choices * (
         8 + 12 * interpolated + (8 if static else 0))
-    chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
+    # Filling the tables evaluates chunks of whole rows (every choice, every draw) of about CHUNK_ELEMENTS.
+    elements = pairs * max(draws, 1)
+    chunk = CHUNK_TEMPORARIES * 8 * min(max(CHUNK_ELEMENTS, choices * max(draws, 1)), elements)
     precompute_bytes = common + table_bytes + chunk
-    # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
-    on_the_fly_bytes = common + 2 * 8 * n + chunk
+    # Pointwise: the feasibility scan's first passes (a state leaves at its first allowed choice), and the exact
+    # block search's dyadic maxima of the continuation (about 2n floats).
+    scan = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, n * FEASIBILITY_COLUMNS * max(draws, 1), elements)
+    on_the_fly_bytes = common + scan
 
     budget = precompute_budget(limits)
     if taste:
         extra = taste_table_bytes(pairs, interpolated, nodes) - table_bytes
         table_bytes += extra
-        precompute_bytes += extra + 12 * pairs * nodes * shocks  # the mixed matrix before its duplicates are summed
+        precompute_bytes += extra
         reason, note = taste_storage_words(pairs, table_bytes, budget, model.hints.monotone or model.hints.concave)
         return GridPlan(
             grid_states=grid_states, shocks=shocks, n=n, choices=choices, pairs=pairs, interpolated=interpolated,
             nodes=nodes, monotone=False, concave=False, hint_note=note, reward_storage="tables",
             precompute_bytes=precompute_bytes, on_the_fly_bytes=on_the_fly_bytes, budget=budget, reason=reason,
-            table_entries=pairs,
+            table_entries=pairs, table_bytes=common + table_bytes, solve_extra_bytes=12 * pairs * nodes * shocks,
         )
     fits = table_bytes <= budget
     use = hint_use(model, static, None if fits else (
@@ -256,7 +278,20 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         reason=reason,
         table_entries=n * table_choices,
         static_concave=use.static_concave and reward_storage == "tables",
+        table_bytes=common + (table_bytes if reward_storage == "tables" else 0),
+        solve_extra_bytes=0 if reward_storage == "tables" else 2 * 8 * n,
     )
+
+
+def grid_bytes(doc: Any, plan: GridPlan) -> int:
+    """Peak memory of a grid model's solve: the larger of building its reward storage and the iterations with
+    the result and its reports (the tables, when kept, under both), plus a finite horizon's periods."""
+    entries = plan.n * plan.nodes * plan.shocks
+    first_axis = next(iter(doc.model.states.values())).size
+    euler = 0 if doc.model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
+    working = (solve_bytes(plan.n, entries, doc.solver.method) + plan.solve_extra_bytes
+               + report_bytes(doc, plan.n, entries, euler))
+    return BASE_BYTES + max(plan.setup_bytes, plan.table_bytes + working) + horizon_bytes(doc, plan.n)
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -355,7 +390,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "shocks": plan.shocks,
         "choice_points": plan.choices,
         "pairs": plan.pairs,
-        "bytes": plan.bytes + horizon_bytes(doc, plan.n),
+        "bytes": grid_bytes(doc, plan),
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
@@ -378,8 +413,9 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     csr = stored * 12 + 8 * (pairs + 1)
     document = entries * 8 if dense else entries * 32
     # Building the CSR from entries: row and column columns, a contiguous copy of p, scipy's conversion copies.
-    conversion = 0 if dense else entries * 32
-    common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
+    # Dense: the decoded array, its finite mask and the nonzero selection before the CSR is built.
+    conversion = entries * (DENSE_CONVERSION_BYTES if dense else 32)
+    common = n_states * SOLVER_BYTES_PER_STATE + 2 * 8 * pairs
     # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
     policy_entries = min(stored, n_states * n_states)
     if getattr(model, "taste_shocks", None) is not None:
@@ -409,7 +445,8 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(doc, n_states),
+        "bytes": int(BASE_BYTES + common + csr + document + conversion + matrix)
+        + report_bytes(doc, n_states, policy_entries) + horizon_bytes(doc, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,
