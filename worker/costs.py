@@ -12,15 +12,29 @@ import math
 from typing import Any
 
 __all__ = [
-    "BOUND_NS",
+    "EXACT_LEVEL_NS",
+    "EXPECTATION_NS",
     "EULER_BYTES_PER_ELEMENT",
     "SIMULATION_BYTES_PER_DRAW",
     "STATIONARY_BYTES_PER_ENTRY",
     "STATIONARY_BYTES_PER_STATE",
     "CHOICE_BYTES",
     "DIRECT_SOLVE_MAX_POINTS",
-    "EXACT_POINTS_PER_ROOT_CHOICE",
-    "HOWARD_STEPS_PER_OCTAVE",
+    "DRAWS_FIXED_S",
+    "FIXED_S",
+    "GRID_FIXED_S",
+    "HOWARD_BASE_ITERATIONS",
+    "HOWARD_ITERATIONS_PER_OCTAVE",
+    "HINTED_POINTS",
+    "HORIZON_POINT_NS",
+    "INTERPOLATED_PAIR_NS",
+    "ITERATION_S",
+    "PERIOD_S",
+    "STATIONARY_GRID_S",
+    "TABULAR_STEP_S",
+    "MOVING_STEPS_DIVISOR",
+    "SETTLE_SHARE",
+    "STABLE_STEPS_FACTOR",
     "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_RESTART",
     "MATVEC_NS",
@@ -33,6 +47,8 @@ __all__ = [
     "BASE_BYTES",
     "euler_elements",
     "policy_matrix_bytes",
+    "horizon_seconds",
+    "report_seconds",
     "report_bytes",
     "solve_bytes",
     "horizon_bytes",
@@ -42,27 +58,75 @@ __all__ = [
     "linear_solve_words",
 ]
 
-TABLE_READ_NS = 3.0
-"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds)."""
-NUMPY_PAIR_NS = 40.0
-"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds)."""
+TABLE_READ_NS = 1.0
+"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds; measured on one thread: 0.65 on
+tables of 0.2 and 20 million entries)."""
+NUMPY_PAIR_NS = 10.0
+"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds; measured on one
+thread: 9–13 filling the tables of the growth, farm and fishery models of ``bench/bench_estimates.py``)."""
 POINT_NS = 40.0
 """Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds; one
 ``pow`` with a runtime exponent dominates)."""
-BOUND_NS = 150.0
-"""Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
+EXACT_LEVEL_NS = 45.0
+"""The exact block search per state and level of its blocks (``2 · log2(choices/16) + 10`` levels): the interval
+bounds and the points evaluated near the optimum, seeded by the hinted policy (nanoseconds; measured on one
+thread at a solved value: 370–1,140 ns per state at 160 to 2,000 choices)."""
 STATIC_CLIMB_POINTS = 4
 """Points a climb along a static choice evaluates per table entry, from the neighbouring entry's best (count;
 "common practice" guess: the start, a step each way and one more)."""
-EXACT_POINTS_PER_ROOT_CHOICE = 5.0
-"""The exact block search evaluates about this many points times √(choices) per state: interval
-bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
-(measured on growth models: about 150 points at 1,000 choices, 700 at 20,000)."""
-HOWARD_STEPS_PER_OCTAVE = 3.0
-"""Howard needs about this many iterations per doubling of the choice grid: on fine grids
-the greedy policy keeps moving for many iterations (measured: 30 at 1,000 choices, 48 at 20,000)."""
-MATVEC_NS = 2.0
-"""Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
+HOWARD_BASE_ITERATIONS = 3.0
+HOWARD_ITERATIONS_PER_OCTAVE = 1.5
+"""Howard and policy iteration take about ``HOWARD_BASE_ITERATIONS`` plus this many iterations per doubling of
+the choices (count; measured by ``bench/bench_estimates.py``: 3 to 8 at 2 to 6 choices, 7 to 17 at 90 to 240,
+14 at 1,000 and 20 at 2,000)."""
+MOVING_STEPS_DIVISOR = 5
+STABLE_STEPS_FACTOR = 20
+"""As :data:`worker.solvers.evaluation.MOVING_STEPS_DIVISOR` and ``STABLE_STEPS_FACTOR`` (not imported: that
+module imports this one; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+SETTLE_SHARE = 0.15
+"""Howard's last evaluation phase runs until the increments' span settles: about this share of the steps a
+contraction at rate β would need (dimensionless; measured 0 to 0.45 on the bundled examples, since chains
+that mix contract the span faster than β)."""
+ITERATION_S = 5e-5
+"""Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
+PERIOD_S = 1e-3
+"""Fixed cost of one period of a finite horizon: its params, its steps, its log entry (seconds; measured about
+1.2 ms per period on the glassblower example)."""
+TABULAR_STEP_S = 5e-6
+"""Fixed cost of one evaluation step of a tabular model: a sparse product called from Python (seconds)."""
+FIXED_S = 7e-4
+"""Fixed cost of any solve: validation, the size check, the result's dictionaries (seconds; a ten-state tabular
+solve takes about 2 ms in all, 1.2 of them its stationary report)."""
+GRID_FIXED_S = 7e-4
+"""Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds)."""
+DRAWS_FIXED_S = 7e-4
+"""Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds)."""
+HINTED_POINTS = 5
+"""Choices per state a hinted search of a grid evaluates (count)."""
+INTERPOLATED_PAIR_NS = 40.0
+"""Filling the tables, per pair and state moved by a ``next`` expression: its nodes and weights (nanoseconds)."""
+HORIZON_POINT_NS = 2_000.0
+"""A finite horizon's result per point and period: the lists of every period's value and policy, and the cohort's
+distribution when asked for (nanoseconds)."""
+RESULT_NS = 100.0
+"""The result's nested lists per point (nanoseconds)."""
+STATIONARY_S = 1e-3
+STATIONARY_GRID_S = 1.5e-3
+"""The stationary report of a grid model, on top of ``STATIONARY_S``: the marginals by state and shock (seconds)."""
+STATIONARY_ENTRY_NS = 300.0
+"""The stationary report: a fixed cost (seconds) and the cost per entry of the policy's matrix (nanoseconds; a
+sparse solve or power iteration, its marginals; measured 4–15 ms on the bundled examples)."""
+SIMULATION_NS = 500.0
+"""The simulation per simulated period of one path (nanoseconds; measured 13 ms for 200 × 100)."""
+EULER_ELEMENT_NS = 600.0
+"""The Euler-error measurement per element of its chunks (nanoseconds; measured 500 on the beekeeper example on a quiet machine, 1,400 on a loaded one:
+tomorrow's choice interpolated, Newton steps on the first-order condition)."""
+MATVEC_NS = 1.0
+"""Cost per stored entry of a sparse matrix–vector product, or per interpolation node of a grid model's
+policy step (nanoseconds)."""
+EXPECTATION_NS = 0.2
+"""A grid model's expected continuation ``EV = P · V`` per (grid state, shock, next shock) product (nanoseconds;
+a dense matrix product, once per Bellman or evaluation step)."""
 CHOICE_BYTES = 17
 """Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
 RESULT_BYTES_PER_STATE = 120
@@ -171,9 +235,16 @@ def linear_solve_words(n: int) -> str:
     )
 
 
-def iteration_steps(doc: Any, choices: int) -> tuple[int, int, str]:
-    """(iterations, evaluation steps per iteration, basis) guessed from β, the tolerance, the method
-    and the number of choice points."""
+def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None) -> tuple[int, int, str]:
+    """(iterations, evaluation steps in all, basis) guessed from β, the tolerance, the method and the choices.
+
+    Howard and policy iteration: ``HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE · log2(choices)``
+    iterations (the greedy policy keeps moving longer on finer choice grids).  Howard's evaluation phases
+    follow :func:`worker.solvers.evaluation.phase_plan`: ``m // moving_divisor`` steps after each iteration
+    that moved the policy, then the steps until the increments settle, guessed as ``SETTLE_SHARE`` of the
+    steps a contraction at rate β needs to bring the span to ``tolerance · (1 − β)/β``.  Value iteration:
+    the steps at rate β from a value of order ``1/(1 − β)``.
+    """
     horizon = doc.model.horizon
     if horizon is not None:
         return horizon.periods, 0, (
@@ -186,23 +257,41 @@ def iteration_steps(doc: Any, choices: int) -> tuple[int, int, str]:
     scale = 1.0 / (1.0 - beta)
     # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
     target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
-    per_step = math.log(beta)
     evaluation = 0
     if solver.method == "value_iteration":
-        steps = math.ceil(math.log(target) / per_step)
-    elif solver.method == "policy_iteration":
-        steps = 12
+        steps = math.ceil(math.log(target) / math.log(beta))
+        how = f"value iteration at rate β from a value of order 1/(1 − β) to the tolerance {tolerance:g}"
     else:
-        evaluation = int(solver.evaluation_steps)
-        steps = math.ceil(math.log(target) / (per_step * (evaluation + 1))) + 2
-        steps = max(steps, math.ceil(HOWARD_STEPS_PER_OCTAVE * math.log2(max(choices, 2))))
+        steps = math.ceil(HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE * math.log2(max(choices, 2)))
+        how = (f"{solver.method}: {HOWARD_BASE_ITERATIONS:g} + {HOWARD_ITERATIONS_PER_OCTAVE:g} per doubling of "
+               f"the {choices:,} choices")
+        if solver.method == "howard" and int(solver.evaluation_steps) > 0:
+            m = int(solver.evaluation_steps)
+            settle_target = max(tolerance * (1.0 - beta) / beta, 1e-16)
+            settle = min(STABLE_STEPS_FACTOR * m, math.ceil(SETTLE_SHARE * math.log(settle_target) / math.log(beta)))
+            evaluation = (steps - 1) * max(1, m // (moving_divisor or MOVING_STEPS_DIVISOR)) + settle
     steps = min(max(steps, 1), int(solver.max_iterations))
-    basis = (
-        f"{steps} iterations ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
-        f"order 1/(1 − β); Howard at least {HOWARD_STEPS_PER_OCTAVE:g} per doubling of the choices)"
-        + (f", {evaluation} evaluation steps each" if evaluation else "")
-    )
+    basis = f"{steps} iterations ({how}, β = {beta:g})" + (
+        f", {evaluation} evaluation steps in all" if evaluation else "")
     return steps, evaluation, basis
+
+
+def horizon_seconds(doc: Any, n: int) -> float:
+    """A finite horizon's result: every period's value and policy, and the cohort (seconds; 0 without one)."""
+    horizon = getattr(doc.model, "horizon", None)
+    return 0.0 if horizon is None else int(horizon.periods) * (n * HORIZON_POINT_NS * 1e-9 + PERIOD_S)
+
+
+def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool = True) -> float:
+    """Time of the result and the reports asked for (seconds): the fixed cost of any solve, the stationary
+    distribution, the simulation and ``euler`` elements of the Euler-error measurement."""
+    report = doc.report
+    seconds = FIXED_S + n * RESULT_NS * 1e-9
+    if report.stationary:
+        seconds += STATIONARY_S + (STATIONARY_GRID_S if grid else 0.0) + entries * STATIONARY_ENTRY_NS * 1e-9
+    if report.simulation is not None:
+        seconds += STATIONARY_S + int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_NS * 1e-9
+    return seconds + euler * EULER_ELEMENT_NS * 1e-9
 
 
 def horizon_bytes(doc: Any, n: int) -> int:

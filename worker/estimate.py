@@ -43,22 +43,30 @@ from typing import Any
 
 from worker.costs import (
     BASE_BYTES,
-    BOUND_NS,
     CHOICE_BYTES,
-    EXACT_POINTS_PER_ROOT_CHOICE,
+    DRAWS_FIXED_S,
+    EXACT_LEVEL_NS,
+    EXPECTATION_NS,
+    GRID_FIXED_S,
+    HINTED_POINTS,
+    INTERPOLATED_PAIR_NS,
+    ITERATION_S,
     MATVEC_NS,
     NUMPY_PAIR_NS,
     POINT_NS,
     SOLVER_BYTES_PER_STATE,
     STATIC_CLIMB_POINTS,
     TABLE_READ_NS,
+    TABULAR_STEP_S,
     euler_elements,
     horizon_bytes,
+    horizon_seconds,
     iteration_steps,
     linear_solve_bytes,
     linear_solve_seconds,
     linear_solve_words,
     report_bytes,
+    report_seconds,
     solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
@@ -88,6 +96,9 @@ FEASIBILITY_COLUMNS = 2
 allowed one (count: its first passes try one, then two; a model whose allowed choices are rare goes on, with
 passes of up to ``CHUNK_ELEMENTS`` pairs)."""
 
+TABULAR_ENTRY_NS = 10.0
+"""Reading a tabular transition into a sparse matrix, per entry given (nanoseconds; measured 11 on the dense
+document of ``bench/bench_estimates.py``)."""
 DENSE_CONVERSION_BYTES = 24
 """Temporaries per entry of a dense tabular transition while it becomes a sparse matrix (bytes; measured on
 ``bench/bench_estimates.py``'s dense document: the traced peak is about 40 bytes per entry in all)."""
@@ -322,44 +333,11 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         return continuous_estimate(doc)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
-    steps, per_iteration, basis = iteration_steps(doc, plan.choices)
-    matrix_entries = plan.n * plan.nodes * plan.shocks
-    evaluation = per_iteration * matrix_entries * MATVEC_NS
-    if plan.reward_storage == "tables":
-        draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
-        setup = plan.pairs * NUMPY_PAIR_NS * draws
-        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each)"
-        if plan.table_entries < plan.pairs:
-            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
-            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
-            setup = evaluated * POINT_NS
-            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
-        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
-    else:
-        setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
-        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
-        points = min(float(plan.choices), EXACT_POINTS_PER_ROOT_CHOICE * math.sqrt(plan.choices))
-        exact = plan.n * (blocks * BOUND_NS + points * POINT_NS)
-        hinted = plan.n * 5 * POINT_NS
-        step = hinted if plan.hints_active else exact
-        how = (
-            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point, {BOUND_NS:g} ns per block bound); "
-            + ("hinted steps look at about 5 choices per state, exact ones" if plan.hints_active else "exact steps")
-            + f" bound about {blocks} blocks and evaluate about {points:,.0f} points per state"
-        )
-        if plan.hints_active and model.horizon is not None:
-            step_total = steps * (step + exact / 2)  # every period's exact step, seeded by the hinted one
-        elif plan.hints_active:
-            step_total = (steps - 2) * step + 2 * exact
-        else:
-            step_total = steps * step
-    if plan.reward_storage == "tables":
-        step_total = steps * step
-    seconds = (setup + step_total + steps * evaluation) * 1e-9
+    steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
+    seconds, how = _grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(
-            plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
+            plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
         )
         basis += f"; {linear_solve_words(plan.n)}"
     compile_bytes, compile_s = compile_cost(model)
@@ -400,6 +378,51 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     }
 
 
+def _grid_seconds(doc: Any, plan: GridPlan, steps: int, evaluation_steps: int) -> tuple[float, str]:
+    """Warm solve time of a grid model (seconds, kernels compiled) and how it was counted."""
+    model = doc.model
+    entries = plan.n * plan.nodes * plan.shocks  # a policy's matrix: one evaluation step, one expectation
+    draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
+    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+    if plan.reward_storage == "tables":
+        per_pair = NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
+        setup += plan.pairs * per_pair * draws
+        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
+        if plan.table_entries < plan.pairs:
+            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
+            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
+            setup += evaluated * POINT_NS - plan.pairs * per_pair * draws
+            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
+        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
+        step_total = steps * step
+        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
+    else:
+        setup += plan.n * FEASIBILITY_COLUMNS * NUMPY_PAIR_NS  # the feasibility scan's first passes
+        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
+        exact = plan.n * blocks * EXACT_LEVEL_NS
+        hinted = plan.n * HINTED_POINTS * POINT_NS
+        how = (
+            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point); "
+            + (f"hinted steps look at about {HINTED_POINTS} choices per state, exact ones" if plan.hints_active
+               else "exact steps")
+            + f" search {blocks} levels of blocks per state ({EXACT_LEVEL_NS:g} ns each)"
+        )
+        if plan.hints_active and model.horizon is not None:
+            step_total = steps * (hinted + exact / 2)  # every period's exact step, seeded by the hinted one
+        elif plan.hints_active:
+            step_total = max(steps - 2, 0) * hinted + 2 * exact  # the last iterations and the verification exact
+        else:
+            step_total = steps * exact
+    # Every Bellman and evaluation step forms the expected continuation; an evaluation step then reads the nodes.
+    expectation = plan.grid_states * plan.shocks * plan.shocks * EXPECTATION_NS
+    iterations = steps * (ITERATION_S * 1e9 + expectation)
+    evaluation = evaluation_steps * (expectation + plan.n * plan.nodes * MATVEC_NS)
+    first_axis = next(iter(model.states.values())).size
+    euler = 0 if model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
+    seconds = (setup + step_total + iterations + evaluation) * 1e-9
+    return seconds + report_seconds(doc, plan.n, entries, euler) + horizon_seconds(doc, plan.n), how
+
+
 def _tabular_estimate(doc: Any) -> dict[str, Any]:
     model = doc.model
     n_states, n_actions = int(model.n_states), int(model.n_actions)
@@ -416,17 +439,20 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     # Dense: the decoded array, its finite mask and the nonzero selection before the CSR is built.
     conversion = entries * (DENSE_CONVERSION_BYTES if dense else 32)
     common = n_states * SOLVER_BYTES_PER_STATE + 2 * 8 * pairs
-    # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
-    policy_entries = min(stored, n_states * n_states)
+    # A policy's matrix takes one action's rows per state: about a share 1/actions of the stored entries, at most n².
+    policy_entries = min(math.ceil(stored / n_actions), n_states * n_states)
     if getattr(model, "taste_shocks", None) is not None:
         # The logit probabilities, their exponentials and the entropy terms are (S, A) arrays, and the mixed
         # matrix of a policy may hold every stored entry before its duplicates are summed.
         common += 3 * 8 * pairs
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
-    steps, per_iteration, basis = iteration_steps(doc, n_actions)
+    steps, evaluation_steps, basis = iteration_steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
-    seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
+    step += ITERATION_S * 1e9
+    seconds = (steps * step + evaluation_steps * policy_entries * MATVEC_NS + entries * TABULAR_ENTRY_NS) * 1e-9
+    seconds += evaluation_steps * TABULAR_STEP_S
+    seconds += report_seconds(doc, n_states, policy_entries, grid=False) + horizon_seconds(doc, n_states)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         matrix += linear_solve_bytes(n_states, policy_entries)
         seconds += steps * linear_solve_seconds(
