@@ -160,36 +160,44 @@ def documents(large: bool = False) -> dict[str, dict[str, Any]]:
     if large:
         docs.update({
             "growth_hinted_300k": growth(6000, 50, {"monotone": True, "concave": True}),
-            "roastery_200k": two_states(120, 120),
+            "roastery_29k": two_states(120, 120),
             "several_iid_and_markov_60k": several_shocks(1000),
         })
     return docs
 
 
-def measure_memory(raw: dict[str, Any]) -> int:
+POINTWISE: dict[str, tuple[dict[str, Any], dict[str, int]]] = {
+    "fishery_pointwise": (example("fishery_harvest"), {"max_bytes": 2**20}),
+    "roastery_60_pointwise": (two_states(60, 60), {"max_bytes": 200 * 2**20}),
+}
+"""Documents solved under a memory cap whose precompute budget leaves their tables out: exact pointwise steps
+through an interpolated state (name → (document, ``limits``))."""
+
+
+def measure_memory(raw: dict[str, Any], limits: dict[str, Any] | None = None) -> int:
     """Peak traced bytes a warm solve of ``raw`` adds (the document solved once before, outside the trace)."""
     from worker import solve
 
-    solve(raw)
+    solve(raw, limits=limits)
     gc.collect()
     tracemalloc.start()
     try:
         base, _ = tracemalloc.get_traced_memory()
-        solve(raw)
+        solve(raw, limits=limits)
         _, peak = tracemalloc.get_traced_memory()
     finally:
         tracemalloc.stop()
     return peak - base
 
 
-def measure_seconds(raw: dict[str, Any], repeats: int = 3) -> float:
+def measure_seconds(raw: dict[str, Any], repeats: int = 3, limits: dict[str, Any] | None = None) -> float:
     """Least wall time of ``repeats`` warm solves (after one untimed solve) in seconds."""
     from worker import solve
 
-    solve(raw)
+    solve(raw, limits=limits)
     best = float("inf")
     for _ in range(repeats):
         start = time.perf_counter()
-        solve(raw)
+        solve(raw, limits=limits)
         best = min(best, time.perf_counter() - start)
     return best

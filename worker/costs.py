@@ -26,6 +26,7 @@ __all__ = [
     "HOWARD_BASE_ITERATIONS",
     "HOWARD_ITERATIONS_PER_OCTAVE",
     "HINTED_POINTS",
+    "SCAN_NODE_NS",
     "HORIZON_POINT_NS",
     "INTERPOLATED_PAIR_NS",
     "ITERATION_S",
@@ -101,6 +102,10 @@ GRID_FIXED_S = 7e-4
 """Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds)."""
 DRAWS_FIXED_S = 7e-4
 """Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds)."""
+SCAN_NODE_NS = 30.0
+"""An exact pointwise step of a model with an interpolated state, per point, choice and interpolation node:
+bounds through interpolated tomorrows are loose and the search comes near a scan of every choice
+(nanoseconds; measured 25 on the fishery and 42 on the roastery examples solved without tables)."""
 HINTED_POINTS = 5
 """Choices per state a hinted search of a grid evaluates (count)."""
 INTERPOLATED_PAIR_NS = 40.0
@@ -119,8 +124,9 @@ sparse solve or power iteration, its marginals; measured 4–15 ms on the bundle
 SIMULATION_NS = 500.0
 """The simulation per simulated period of one path (nanoseconds; measured 13 ms for 200 × 100)."""
 EULER_ELEMENT_NS = 600.0
-"""The Euler-error measurement per element of its chunks (nanoseconds; measured 500 on the beekeeper example on a quiet machine, 1,400 on a loaded one:
-tomorrow's choice interpolated, Newton steps on the first-order condition)."""
+"""The Euler-error measurement per element of its chunks (nanoseconds; measured on the beekeeper example: 500 on
+a quiet machine, 1,400 on a loaded one; tomorrow's choice interpolated, Newton steps on the first-order
+condition)."""
 MATVEC_NS = 1.0
 """Cost per stored entry of a sparse matrix–vector product, or per interpolation node of a grid model's
 policy step (nanoseconds)."""

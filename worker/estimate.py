@@ -28,11 +28,17 @@ memory the worker will use:
     state, so evaluating every pair up front would cost more than all the
     searches together.
 
-Times are rough: a count of pointwise evaluations and table reads times
-per-operation costs measured on a 2-core x86 machine (``*_NS`` constants,
-"common practice" orders of magnitude, not guarantees), and a number of
-iterations guessed from the discount and the tolerance for a value
-function of order ``1/(1 − β)``.  The returned ``basis`` says which.
+What the figures promise (measured by ``bench/bench_estimates.py``, memory also by
+``tests/worker/test_estimates_accuracy.py``, within a factor of two on every bundled example and the
+shapes listed there): ``bytes`` is the peak of the memory a solve allocates (numpy's arrays and Python
+objects, as :mod:`tracemalloc` traces them) in a worker that has its kernels and libraries loaded, the
+peak of building the reward storage or of iterating with the result and its reports, whichever is
+larger; ``seconds`` is the wall time of such a warm solve, compiling not counted (``compile_seconds`` is
+what the first solve of a structure on a machine adds).  Both are sums of counts (pairs, points, entries
+of a policy's matrix, iterations, evaluation steps) times costs measured on a 2-core x86 machine
+(:mod:`worker.costs`, each constant with its measurement); iterations and evaluation steps are guessed
+from the discount, the tolerance and the choices, so time is the rougher of the two.  The returned
+``basis`` says how the time was counted.
 """
 
 from __future__ import annotations
@@ -54,6 +60,7 @@ from worker.costs import (
     MATVEC_NS,
     NUMPY_PAIR_NS,
     POINT_NS,
+    SCAN_NODE_NS,
     SOLVER_BYTES_PER_STATE,
     STATIC_CLIMB_POINTS,
     TABLE_READ_NS,
@@ -315,13 +322,14 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         value function), ``grid_states`` (points of the endogenous state
         grid; tabular: the states), ``shocks`` (points of the shock chain; 1
         without shocks, 0 for tabular), ``choice_points`` (alternatives per
-        point), ``pairs`` (point × choice point); ``bytes`` (peak working
-        memory of the reward storage that will be used, interpreter and
-        libraries not counted); ``reward_storage`` (``tables`` or
+        point), ``pairs`` (point × choice point); ``bytes`` (peak memory
+        the solve allocates, with the reward storage that will be used and
+        the reports asked for; interpreter, libraries and kernels not
+        counted); ``reward_storage`` (``tables`` or
         ``on_the_fly``); ``compile_bytes`` and ``compile_seconds`` (what
         the first solve of a grid model's structure on a machine adds while
-        its kernels compile; 0 for tabular); ``seconds`` (a rough time
-        guess, compiling not counted) with its ``basis``; ``notes``, plain
+        its kernels compile; 0 for tabular); ``seconds`` (wall time of a warm
+        solve, compiling not counted) with its ``basis``; ``notes``, plain
         words.  A grid model over the limits of :mod:`worker.kernel_limits`
         is sized all the same: its ``check_structure`` is what refuses it.
     """
@@ -400,12 +408,16 @@ def _grid_seconds(doc: Any, plan: GridPlan, steps: int, evaluation_steps: int) -
         setup += plan.n * FEASIBILITY_COLUMNS * NUMPY_PAIR_NS  # the feasibility scan's first passes
         blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
         exact = plan.n * blocks * EXACT_LEVEL_NS
+        if plan.interpolated:
+            # Bounds through interpolated tomorrows are loose: the search comes near a scan of every choice.
+            exact = plan.n * plan.choices * plan.nodes * SCAN_NODE_NS
         hinted = plan.n * HINTED_POINTS * POINT_NS
         how = (
             f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point); "
             + (f"hinted steps look at about {HINTED_POINTS} choices per state, exact ones" if plan.hints_active
                else "exact steps")
-            + f" search {blocks} levels of blocks per state ({EXACT_LEVEL_NS:g} ns each)"
+            + (f" come near a scan of all {plan.choices:,} choices through {plan.nodes} interpolation nodes"
+               if plan.interpolated else f" search {blocks} levels of blocks per state ({EXACT_LEVEL_NS:g} ns each)")
         )
         if plan.hints_active and model.horizon is not None:
             step_total = steps * (hinted + exact / 2)  # every period's exact step, seeded by the hinted one
