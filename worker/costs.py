@@ -25,7 +25,9 @@ __all__ = [
     "GRID_FIXED_S",
     "HOWARD_BASE_ITERATIONS",
     "HOWARD_ITERATIONS_PER_OCTAVE",
+    "FEASIBILITY_COLUMNS",
     "HINTED_POINTS",
+    "THREAD_EFFICIENCY",
     "SCAN_NODE_NS",
     "HORIZON_POINT_NS",
     "INTERPOLATED_PAIR_NS",
@@ -59,16 +61,16 @@ __all__ = [
     "linear_solve_words",
 ]
 
-TABLE_READ_NS = 1.0
+TABLE_READ_NS = 0.7
 """Cost of one (state, choice) pair in a compiled table scan (nanoseconds; measured on one thread: 0.65 on
 tables of 0.2 and 20 million entries)."""
-NUMPY_PAIR_NS = 10.0
+NUMPY_PAIR_NS = 9.0
 """Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds; measured on one
 thread: 9–13 filling the tables of the growth, farm and fishery models of ``bench/bench_estimates.py``)."""
 POINT_NS = 40.0
 """Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds; one
 ``pow`` with a runtime exponent dominates)."""
-EXACT_LEVEL_NS = 45.0
+EXACT_LEVEL_NS = 38.0
 """The exact block search per state and level of its blocks (``2 · log2(choices/16) + 10`` levels): the interval
 bounds and the points evaluated near the optimum, seeded by the hinted policy (nanoseconds; measured on one
 thread at a solved value: 370–1,140 ns per state at 160 to 2,000 choices)."""
@@ -102,12 +104,22 @@ GRID_FIXED_S = 7e-4
 """Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds)."""
 DRAWS_FIXED_S = 7e-4
 """Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds)."""
-SCAN_NODE_NS = 30.0
+SCAN_NODE_NS = 12.0
 """An exact pointwise step of a model with an interpolated state, per point, choice and interpolation node:
 bounds through interpolated tomorrows are loose and the search comes near a scan of every choice
-(nanoseconds; measured 25 on the fishery and 42 on the roastery examples solved without tables)."""
+(nanoseconds; measured on one thread of a quiet machine: 9 on the fishery and 16 on the roastery examples
+solved without tables; 25 and 42 on a loaded one)."""
+FEASIBILITY_COLUMNS = 2
+"""Choices per state the feasibility scan of a pointwise model typically evaluates before every state has an
+allowed one (count: its first passes try one, then two; a model whose allowed choices are rare goes on, with
+passes of up to ``CHUNK_ELEMENTS`` pairs)."""
+THREAD_EFFICIENCY = 0.8
+"""Each thread beyond the first adds this share of one to the speed of the threaded parts of a large solve
+(dimensionless; :data:`worker.threadpool.THREAD_MIN_PAIRS` measured 1.8× on two threads at 7 million pairs)."""
 HINTED_POINTS = 5
-"""Choices per state a hinted search of a grid evaluates (count)."""
+"""Choices per state a hinted search of a grid evaluates with the monotone hint alone (count; with the concave
+hint it stops at the first that does worse, counted as one: measured 18–35 ns per state on growth and
+household models)."""
 INTERPOLATED_PAIR_NS = 40.0
 """Filling the tables, per pair and state moved by a ``next`` expression: its nodes and weights (nanoseconds)."""
 HORIZON_POINT_NS = 2_000.0

@@ -50,19 +50,10 @@ from typing import Any
 from worker.costs import (
     BASE_BYTES,
     CHOICE_BYTES,
-    DRAWS_FIXED_S,
-    EXACT_LEVEL_NS,
-    EXPECTATION_NS,
-    GRID_FIXED_S,
-    HINTED_POINTS,
-    INTERPOLATED_PAIR_NS,
+    FEASIBILITY_COLUMNS,
     ITERATION_S,
     MATVEC_NS,
-    NUMPY_PAIR_NS,
-    POINT_NS,
-    SCAN_NODE_NS,
     SOLVER_BYTES_PER_STATE,
-    STATIC_CLIMB_POINTS,
     TABLE_READ_NS,
     TABULAR_STEP_S,
     euler_elements,
@@ -77,6 +68,7 @@ from worker.costs import (
     solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
+from worker.grid_seconds import grid_seconds
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
@@ -98,10 +90,6 @@ CHUNK_ELEMENTS = 1 << 20
 CHUNK_TEMPORARIES = 5
 """float64 temporaries of chunk size alive at once while evaluating a model's expressions (count; traced peaks
 of the bundled examples: 3 to 8, and 10 per draw with draws after the choice)."""
-FEASIBILITY_COLUMNS = 2
-"""Choices per state the feasibility scan of a pointwise model typically evaluates before every state has an
-allowed one (count: its first passes try one, then two; a model whose allowed choices are rare goes on, with
-passes of up to ``CHUNK_ELEMENTS`` pairs)."""
 
 TABULAR_ENTRY_NS = 10.0
 """Reading a tabular transition into a sparse matrix, per entry given (nanoseconds; measured 11 on the dense
@@ -342,7 +330,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
     steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
-    seconds, how = _grid_seconds(doc, plan, steps, evaluation_steps)
+    seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(
             plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
@@ -384,55 +372,6 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "basis": f"{basis}; {how}",
         "notes": notes,
     }
-
-
-def _grid_seconds(doc: Any, plan: GridPlan, steps: int, evaluation_steps: int) -> tuple[float, str]:
-    """Warm solve time of a grid model (seconds, kernels compiled) and how it was counted."""
-    model = doc.model
-    entries = plan.n * plan.nodes * plan.shocks  # a policy's matrix: one evaluation step, one expectation
-    draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
-    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
-    if plan.reward_storage == "tables":
-        per_pair = NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
-        setup += plan.pairs * per_pair * draws
-        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
-        if plan.table_entries < plan.pairs:
-            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
-            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
-            setup += evaluated * POINT_NS - plan.pairs * per_pair * draws
-            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
-        step_total = steps * step
-        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
-    else:
-        setup += plan.n * FEASIBILITY_COLUMNS * NUMPY_PAIR_NS  # the feasibility scan's first passes
-        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
-        exact = plan.n * blocks * EXACT_LEVEL_NS
-        if plan.interpolated:
-            # Bounds through interpolated tomorrows are loose: the search comes near a scan of every choice.
-            exact = plan.n * plan.choices * plan.nodes * SCAN_NODE_NS
-        hinted = plan.n * HINTED_POINTS * POINT_NS
-        how = (
-            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point); "
-            + (f"hinted steps look at about {HINTED_POINTS} choices per state, exact ones" if plan.hints_active
-               else "exact steps")
-            + (f" come near a scan of all {plan.choices:,} choices through {plan.nodes} interpolation nodes"
-               if plan.interpolated else f" search {blocks} levels of blocks per state ({EXACT_LEVEL_NS:g} ns each)")
-        )
-        if plan.hints_active and model.horizon is not None:
-            step_total = steps * (hinted + exact / 2)  # every period's exact step, seeded by the hinted one
-        elif plan.hints_active:
-            step_total = max(steps - 2, 0) * hinted + 2 * exact  # the last iterations and the verification exact
-        else:
-            step_total = steps * exact
-    # Every Bellman and evaluation step forms the expected continuation; an evaluation step then reads the nodes.
-    expectation = plan.grid_states * plan.shocks * plan.shocks * EXPECTATION_NS
-    iterations = steps * (ITERATION_S * 1e9 + expectation)
-    evaluation = evaluation_steps * (expectation + plan.n * plan.nodes * MATVEC_NS)
-    first_axis = next(iter(model.states.values())).size
-    euler = 0 if model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
-    seconds = (setup + step_total + iterations + evaluation) * 1e-9
-    return seconds + report_seconds(doc, plan.n, entries, euler) + horizon_seconds(doc, plan.n), how
 
 
 def _tabular_estimate(doc: Any) -> dict[str, Any]:
