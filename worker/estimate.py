@@ -73,6 +73,7 @@ from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
+from worker.threadpool import TABLE_CHUNKS_AT_ONCE, threads_for
 
 __all__ = [
     "PRECOMPUTE_CAP_SHARE",
@@ -88,8 +89,9 @@ PRECOMPUTE_CAP_SHARE = 0.25
 CHUNK_ELEMENTS = 1 << 20
 """(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
 CHUNK_TEMPORARIES = 5
-"""float64 temporaries of chunk size alive at once while evaluating a model's expressions (count; traced peaks
-of the bundled examples: 3 to 8, and 10 per draw with draws after the choice)."""
+"""float64 temporaries of chunk size alive at once while evaluating a model's expressions, per chunk in flight
+(count; traced peaks of the bundled examples: 3 to 8, and 10 per draw with draws after the choice; 2.5 per
+chunk filling the 20-million-pair tables of ``bench/bench_estimates.py`` on 1, 2 and 4 threads)."""
 
 TABULAR_ENTRY_NS = 10.0
 """Reading a tabular transition into a sparse matrix, per entry given (nanoseconds; measured 11 on the dense
@@ -205,7 +207,10 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         8 + 12 * interpolated + (8 if static else 0))
     # Filling the tables evaluates chunks of whole rows (every choice, every draw) of about CHUNK_ELEMENTS.
     elements = pairs * max(draws, 1)
-    chunk = CHUNK_TEMPORARIES * 8 * min(max(CHUNK_ELEMENTS, choices * max(draws, 1)), elements)
+    chunk_elements = min(max(CHUNK_ELEMENTS, choices * max(draws, 1)), elements)
+    # A threaded fill evaluates up to TABLE_CHUNKS_AT_ONCE chunks at once, one per thread (worker.threadpool).
+    at_once = min(threads_for(n, choices), TABLE_CHUNKS_AT_ONCE, math.ceil(elements / max(chunk_elements, 1)))
+    chunk = CHUNK_TEMPORARIES * 8 * chunk_elements * max(at_once, 1)
     precompute_bytes = common + table_bytes + chunk
     # Pointwise: the feasibility scan's first passes (a state leaves at its first allowed choice), and the exact
     # block search's dyadic maxima of the continuation (about 2n floats).
