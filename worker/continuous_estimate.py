@@ -13,7 +13,20 @@ from __future__ import annotations
 import math
 from typing import Any
 
-from worker.costs import MATVEC_NS, POINT_NS, grid_common_bytes, iteration_steps
+from worker.costs import (
+    BASE_BYTES,
+    GRID_FIXED_S,
+    ITERATION_S,
+    MATVEC_NS,
+    POINT_NS,
+    euler_elements,
+    horizon_bytes,
+    horizon_seconds,
+    iteration_steps,
+    report_bytes,
+    report_seconds,
+    solve_bytes,
+)
 from worker.kernel_limits import compile_cost
 
 __all__ = ["SEARCH_POINTS", "continuous_estimate"]
@@ -39,13 +52,19 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     nodes = 2**states
     scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
     method = doc.solver.method
-    memory = grid_common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+    entries = n * nodes * shocks
+    first_axis = next(iter(model.states.values())).size
+    memory = (BASE_BYTES + solve_bytes(n, entries, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+              + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
-    steps, per_iteration, basis = iteration_steps(doc, scan)
-    seconds = steps * (n * per_point * POINT_NS + per_iteration * n * nodes * shocks * MATVEC_NS) * 1e-9
+    # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
+    steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
+    iteration = n * per_point * POINT_NS + ITERATION_S * 1e9 + entries * MATVEC_NS
+    seconds = (GRID_FIXED_S * 1e9 + steps * iteration + evaluation_steps * entries * MATVEC_NS) * 1e-9
     if hinted:
         seconds += n * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
+    seconds += report_seconds(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_seconds(doc, n)
     compile_bytes, compile_s = compile_cost(model)
     notes = [
         f"continuous choice `{name}`: no reward tables; tomorrow's value read by {model.interpolation} "

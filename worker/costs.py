@@ -12,11 +12,32 @@ import math
 from typing import Any
 
 __all__ = [
-    "BOUND_NS",
+    "EXACT_LEVEL_NS",
+    "EXPECTATION_NS",
+    "EULER_BYTES_PER_ELEMENT",
+    "SIMULATION_BYTES_PER_DRAW",
+    "STATIONARY_BYTES_PER_ENTRY",
+    "STATIONARY_BYTES_PER_STATE",
     "CHOICE_BYTES",
     "DIRECT_SOLVE_MAX_POINTS",
-    "EXACT_POINTS_PER_ROOT_CHOICE",
-    "HOWARD_STEPS_PER_OCTAVE",
+    "DRAWS_FIXED_S",
+    "FIXED_S",
+    "GRID_FIXED_S",
+    "HOWARD_BASE_ITERATIONS",
+    "HOWARD_ITERATIONS_PER_OCTAVE",
+    "FEASIBILITY_COLUMNS",
+    "HINTED_POINTS",
+    "THREAD_EFFICIENCY",
+    "SCAN_NODE_NS",
+    "HORIZON_POINT_NS",
+    "INTERPOLATED_PAIR_NS",
+    "ITERATION_S",
+    "PERIOD_S",
+    "STATIONARY_GRID_S",
+    "TABULAR_STEP_S",
+    "MOVING_STEPS_DIVISOR",
+    "SETTLE_SHARE",
+    "STABLE_STEPS_FACTOR",
     "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_RESTART",
     "MATVEC_NS",
@@ -26,7 +47,13 @@ __all__ = [
     "SOLVER_BYTES_PER_STATE",
     "STATIC_CLIMB_POINTS",
     "TABLE_READ_NS",
-    "grid_common_bytes",
+    "BASE_BYTES",
+    "euler_elements",
+    "policy_matrix_bytes",
+    "horizon_seconds",
+    "report_seconds",
+    "report_bytes",
+    "solve_bytes",
     "horizon_bytes",
     "iteration_steps",
     "linear_solve_bytes",
@@ -34,33 +61,115 @@ __all__ = [
     "linear_solve_words",
 ]
 
-TABLE_READ_NS = 3.0
-"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds)."""
-NUMPY_PAIR_NS = 40.0
-"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds)."""
+TABLE_READ_NS = 0.7
+"""Cost of one (state, choice) pair in a compiled table scan (nanoseconds; measured on one thread: 0.65 on
+tables of 0.2 and 20 million entries)."""
+NUMPY_PAIR_NS = 9.0
+"""Cost of evaluating one (state, choice) pair of a typical model with numpy (nanoseconds; measured on one
+thread: 9–13 filling the tables of the growth, farm and fishery models of ``bench/bench_estimates.py``)."""
 POINT_NS = 40.0
 """Cost of one pointwise evaluation of a typical model in compiled code (nanoseconds; one
 ``pow`` with a runtime exponent dominates)."""
-BOUND_NS = 150.0
-"""Cost of one interval bound over a block of choices in compiled code (nanoseconds)."""
+EXACT_LEVEL_NS = 38.0
+"""The exact block search per state and level of its blocks (``2 · log2(choices/16) + 10`` levels): the interval
+bounds and the points evaluated near the optimum, seeded by the hinted policy (nanoseconds; measured on one
+thread at a solved value: 370–1,140 ns per state at 160 to 2,000 choices)."""
 STATIC_CLIMB_POINTS = 4
 """Points a climb along a static choice evaluates per table entry, from the neighbouring entry's best (count;
 "common practice" guess: the start, a step each way and one more)."""
-EXACT_POINTS_PER_ROOT_CHOICE = 5.0
-"""The exact block search evaluates about this many points times √(choices) per state: interval
-bounds cannot skip blocks near the optimum, within a distance that grows like √(choices)
-(measured on growth models: about 150 points at 1,000 choices, 700 at 20,000)."""
-HOWARD_STEPS_PER_OCTAVE = 3.0
-"""Howard needs about this many iterations per doubling of the choice grid: on fine grids
-the greedy policy keeps moving for many iterations (measured: 30 at 1,000 choices, 48 at 20,000)."""
-MATVEC_NS = 2.0
-"""Cost per stored entry of a sparse matrix–vector product (nanoseconds)."""
+HOWARD_BASE_ITERATIONS = 3.0
+HOWARD_ITERATIONS_PER_OCTAVE = 1.5
+"""Howard and policy iteration take about ``HOWARD_BASE_ITERATIONS`` plus this many iterations per doubling of
+the choices (count; measured by ``bench/bench_estimates.py``: 3 to 8 at 2 to 6 choices, 7 to 17 at 90 to 240,
+14 at 1,000 and 20 at 2,000)."""
+MOVING_STEPS_DIVISOR = 5
+STABLE_STEPS_FACTOR = 20
+"""As :data:`worker.solvers.evaluation.MOVING_STEPS_DIVISOR` and ``STABLE_STEPS_FACTOR`` (not imported: that
+module imports this one; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+SETTLE_SHARE = 0.15
+"""Howard's last evaluation phase runs until the increments' span settles: about this share of the steps a
+contraction at rate β would need (dimensionless; measured 0 to 0.45 on the bundled examples, since chains
+that mix contract the span faster than β)."""
+ITERATION_S = 5e-5
+"""Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
+PERIOD_S = 1e-3
+"""Fixed cost of one period of a finite horizon: its params, its steps, its log entry (seconds; measured about
+1.2 ms per period on the glassblower example)."""
+TABULAR_STEP_S = 5e-6
+"""Fixed cost of one evaluation step of a tabular model: a sparse product called from Python (seconds)."""
+FIXED_S = 7e-4
+"""Fixed cost of any solve: validation, the size check, the result's dictionaries (seconds; a ten-state tabular
+solve takes about 2 ms in all, 1.2 of them its stationary report)."""
+GRID_FIXED_S = 7e-4
+"""Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds)."""
+DRAWS_FIXED_S = 7e-4
+"""Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds)."""
+SCAN_NODE_NS = 12.0
+"""An exact pointwise step of a model with an interpolated state, per point, choice and interpolation node:
+bounds through interpolated tomorrows are loose and the search comes near a scan of every choice
+(nanoseconds; measured on one thread of a quiet machine: 9 on the fishery and 16 on the roastery examples
+solved without tables; 25 and 42 on a loaded one)."""
+FEASIBILITY_COLUMNS = 2
+"""Choices per state the feasibility scan of a pointwise model typically evaluates before every state has an
+allowed one (count: its first passes try one, then two; a model whose allowed choices are rare goes on, with
+passes of up to ``CHUNK_ELEMENTS`` pairs)."""
+THREAD_EFFICIENCY = 0.8
+"""Each thread beyond the first adds this share of one to the speed of the threaded parts of a large solve
+(dimensionless; :data:`worker.threadpool.THREAD_MIN_PAIRS` measured 1.8× on two threads at 7 million pairs)."""
+HINTED_POINTS = 5
+"""Choices per state a hinted search of a grid evaluates with the monotone hint alone (count; with the concave
+hint it stops at the first that does worse, counted as one: measured 18–35 ns per state on growth and
+household models)."""
+INTERPOLATED_PAIR_NS = 40.0
+"""Filling the tables, per pair and state moved by a ``next`` expression: its nodes and weights (nanoseconds)."""
+HORIZON_POINT_NS = 2_000.0
+"""A finite horizon's result per point and period: the lists of every period's value and policy, and the cohort's
+distribution when asked for (nanoseconds)."""
+RESULT_NS = 100.0
+"""The result's nested lists per point (nanoseconds)."""
+STATIONARY_S = 1e-3
+STATIONARY_GRID_S = 1.5e-3
+"""The stationary report of a grid model, on top of ``STATIONARY_S``: the marginals by state and shock (seconds)."""
+STATIONARY_ENTRY_NS = 300.0
+"""The stationary report: a fixed cost (seconds) and the cost per entry of the policy's matrix (nanoseconds; a
+sparse solve or power iteration, its marginals; measured 4–15 ms on the bundled examples)."""
+SIMULATION_NS = 500.0
+"""The simulation per simulated period of one path (nanoseconds; measured 13 ms for 200 × 100)."""
+EULER_ELEMENT_NS = 600.0
+"""The Euler-error measurement per element of its chunks (nanoseconds; measured on the beekeeper example: 500 on
+a quiet machine, 1,400 on a loaded one; tomorrow's choice interpolated, Newton steps on the first-order
+condition)."""
+MATVEC_NS = 1.0
+"""Cost per stored entry of a sparse matrix–vector product, or per interpolation node of a grid model's
+policy step (nanoseconds)."""
+EXPECTATION_NS = 0.2
+"""A grid model's expected continuation ``EV = P · V`` per (grid state, shock, next shock) product (nanoseconds;
+a dense matrix product, once per Bellman or evaluation step)."""
 CHOICE_BYTES = 17
 """Work arrays per flat choice: a visiting order (int64), a mark (bool), an index (int64) (bytes)."""
 RESULT_BYTES_PER_STATE = 120
 """Result-document lists (value, policy, policy index as Python objects) per state (bytes)."""
-SOLVER_BYTES_PER_STATE = 96
-"""Vectors of length n the solver and the Bellman step keep alive (about twelve float64s per state)."""
+SOLVER_BYTES_PER_STATE = 160
+"""Vectors of length n the solver, the Bellman step and the outcome keep alive (bytes per point; traced peaks
+measured by ``bench/bench_estimates.py``: about 120 with reward tables, 230 with hinted searches)."""
+BASE_BYTES = 24 * 2**10
+"""What any solve allocates whatever its size: the validated document, the log, the result's dictionaries
+(bytes; 24 KiB; the traced peak of a ten-state tabular solve is about 30 KiB)."""
+STATIONARY_BYTES_PER_STATE = 300
+"""The stationary report per point: the distribution, its marginals and lists, the solve's vectors (bytes;
+measured: 540 per point with 5 shock points, 1,100 with 7 and interpolated nodes, including the entries)."""
+STATIONARY_BYTES_PER_ENTRY = 50
+"""The stationary report per entry of the policy's matrix: the matrix, its transpose and their solve (bytes)."""
+SIMULATION_BYTES_PER_DRAW = 24
+"""The simulation per simulated period of one path (bytes; measured 24–28 at 200 × 100 and 1,000 × 500)."""
+EULER_BYTES_PER_ELEMENT = 64
+"""Temporaries of the Euler-error measurement per element of a chunk (bytes: about eight float64 arrays;
+measured 66 on the beekeeper example)."""
+EULER_TEST_POINTS_PER_GRID_POINT = 10
+"""As :data:`worker.euler.TEST_POINTS_PER_GRID_POINT` (not imported: ``worker.euler`` imports this module's
+importers; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+EULER_CHUNK_ELEMENTS = 2**18
+"""As ``worker.euler._CHUNK_ELEMENTS``: (test point, shock, next shock) triples evaluated at once (count)."""
 
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
@@ -73,14 +182,42 @@ KRYLOV_RESIDUAL_SHARE = 1e-3
 ``tolerance · (1 − β)`` (dimensionless)."""
 
 
-def grid_common_bytes(n: int, shocks: int, nodes: int, method: str) -> int:
-    """Memory every reward storage needs: solver vectors, the policy's nodes and sparse matrix, the result."""
-    policy_nodes = n * nodes * 16
-    matrix = n * nodes * shocks * 12 + 8 * (n + 1)
+def policy_matrix_bytes(n: int, entries: int) -> int:
+    """A policy's sparse transition matrix with ``entries`` stored entries, in CSR (bytes)."""
+    return entries * 12 + 8 * (n + 1)
+
+
+def solve_bytes(n: int, entries: int, method: str) -> int:
+    """What the solver keeps while it iterates: its vectors and, for policy iteration, the policy's matrix and
+    its exact evaluation (bytes).  ``entries``: stored entries of a policy's matrix."""
+    memory = n * SOLVER_BYTES_PER_STATE
     if method == "policy_iteration":
-        matrix += linear_solve_bytes(n, n * nodes * shocks)
-    chain = 8 * shocks * shocks
-    return n * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + policy_nodes + matrix + chain
+        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries)
+    return memory
+
+
+def euler_elements(doc: Any, grid_points: int, shocks: int) -> int:
+    """Elements of one chunk of the Euler-error measurement (0 when it is not asked for): its test points
+    (``EULER_TEST_POINTS_PER_GRID_POINT`` per grid interval) times the pairs of today's and tomorrow's shocks,
+    at most ``EULER_CHUNK_ELEMENTS``."""
+    if not getattr(doc.report, "euler_errors", False) or grid_points < 2:
+        return 0
+    per_interval = math.ceil(EULER_TEST_POINTS_PER_GRID_POINT * grid_points / (grid_points - 1))
+    return min(per_interval * (grid_points - 1) * shocks * shocks, max(EULER_CHUNK_ELEMENTS, shocks * shocks))
+
+
+def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
+    """The result document and the reports asked for (bytes): the value and policy as nested lists, the
+    stationary distribution (a policy's matrix with ``entries`` entries and its solve), the simulated paths,
+    and ``euler`` elements of the Euler-error measurement's temporaries (:func:`euler_elements`)."""
+    report = doc.report
+    memory = n * RESULT_BYTES_PER_STATE
+    if report.stationary:
+        memory += n * STATIONARY_BYTES_PER_STATE + entries * STATIONARY_BYTES_PER_ENTRY
+    if report.simulation is not None:
+        memory += int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_BYTES_PER_DRAW
+        memory += 0 if report.stationary else policy_matrix_bytes(n, entries)
+    return memory + euler * EULER_BYTES_PER_ELEMENT
 
 
 def linear_solve_bytes(n: int, entries: int) -> int:
@@ -116,9 +253,16 @@ def linear_solve_words(n: int) -> str:
     )
 
 
-def iteration_steps(doc: Any, choices: int) -> tuple[int, int, str]:
-    """(iterations, evaluation steps per iteration, basis) guessed from β, the tolerance, the method
-    and the number of choice points."""
+def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None) -> tuple[int, int, str]:
+    """(iterations, evaluation steps in all, basis) guessed from β, the tolerance, the method and the choices.
+
+    Howard and policy iteration: ``HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE · log2(choices)``
+    iterations (the greedy policy keeps moving longer on finer choice grids).  Howard's evaluation phases
+    follow :func:`worker.solvers.evaluation.phase_plan`: ``m // moving_divisor`` steps after each iteration
+    that moved the policy, then the steps until the increments settle, guessed as ``SETTLE_SHARE`` of the
+    steps a contraction at rate β needs to bring the span to ``tolerance · (1 − β)/β``.  Value iteration:
+    the steps at rate β from a value of order ``1/(1 − β)``.
+    """
     horizon = doc.model.horizon
     if horizon is not None:
         return horizon.periods, 0, (
@@ -131,23 +275,41 @@ def iteration_steps(doc: Any, choices: int) -> tuple[int, int, str]:
     scale = 1.0 / (1.0 - beta)
     # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
     target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
-    per_step = math.log(beta)
     evaluation = 0
     if solver.method == "value_iteration":
-        steps = math.ceil(math.log(target) / per_step)
-    elif solver.method == "policy_iteration":
-        steps = 12
+        steps = math.ceil(math.log(target) / math.log(beta))
+        how = f"value iteration at rate β from a value of order 1/(1 − β) to the tolerance {tolerance:g}"
     else:
-        evaluation = int(solver.evaluation_steps)
-        steps = math.ceil(math.log(target) / (per_step * (evaluation + 1))) + 2
-        steps = max(steps, math.ceil(HOWARD_STEPS_PER_OCTAVE * math.log2(max(choices, 2))))
+        steps = math.ceil(HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE * math.log2(max(choices, 2)))
+        how = (f"{solver.method}: {HOWARD_BASE_ITERATIONS:g} + {HOWARD_ITERATIONS_PER_OCTAVE:g} per doubling of "
+               f"the {choices:,} choices")
+        if solver.method == "howard" and int(solver.evaluation_steps) > 0:
+            m = int(solver.evaluation_steps)
+            settle_target = max(tolerance * (1.0 - beta) / beta, 1e-16)
+            settle = min(STABLE_STEPS_FACTOR * m, math.ceil(SETTLE_SHARE * math.log(settle_target) / math.log(beta)))
+            evaluation = (steps - 1) * max(1, m // (moving_divisor or MOVING_STEPS_DIVISOR)) + settle
     steps = min(max(steps, 1), int(solver.max_iterations))
-    basis = (
-        f"{steps} iterations ({solver.method}, β = {beta:g}, tolerance {tolerance:g}, value function of "
-        f"order 1/(1 − β); Howard at least {HOWARD_STEPS_PER_OCTAVE:g} per doubling of the choices)"
-        + (f", {evaluation} evaluation steps each" if evaluation else "")
-    )
+    basis = f"{steps} iterations ({how}, β = {beta:g})" + (
+        f", {evaluation} evaluation steps in all" if evaluation else "")
     return steps, evaluation, basis
+
+
+def horizon_seconds(doc: Any, n: int) -> float:
+    """A finite horizon's result: every period's value and policy, and the cohort (seconds; 0 without one)."""
+    horizon = getattr(doc.model, "horizon", None)
+    return 0.0 if horizon is None else int(horizon.periods) * (n * HORIZON_POINT_NS * 1e-9 + PERIOD_S)
+
+
+def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool = True) -> float:
+    """Time of the result and the reports asked for (seconds): the fixed cost of any solve, the stationary
+    distribution, the simulation and ``euler`` elements of the Euler-error measurement."""
+    report = doc.report
+    seconds = FIXED_S + n * RESULT_NS * 1e-9
+    if report.stationary:
+        seconds += STATIONARY_S + (STATIONARY_GRID_S if grid else 0.0) + entries * STATIONARY_ENTRY_NS * 1e-9
+    if report.simulation is not None:
+        seconds += STATIONARY_S + int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_NS * 1e-9
+    return seconds + euler * EULER_ELEMENT_NS * 1e-9
 
 
 def horizon_bytes(doc: Any, n: int) -> int:

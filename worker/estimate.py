@@ -28,11 +28,17 @@ memory the worker will use:
     state, so evaluating every pair up front would cost more than all the
     searches together.
 
-Times are rough: a count of pointwise evaluations and table reads times
-per-operation costs measured on a 2-core x86 machine (``*_NS`` constants,
-"common practice" orders of magnitude, not guarantees), and a number of
-iterations guessed from the discount and the tolerance for a value
-function of order ``1/(1 − β)``.  The returned ``basis`` says which.
+What the figures promise (measured by ``bench/bench_estimates.py``, memory also by
+``tests/worker/test_estimates_accuracy.py``, within a factor of two on every bundled example and the
+shapes listed there): ``bytes`` is the peak of the memory a solve allocates (numpy's arrays and Python
+objects, as :mod:`tracemalloc` traces them) in a worker that has its kernels and libraries loaded, the
+peak of building the reward storage or of iterating with the result and its reports, whichever is
+larger; ``seconds`` is the wall time of such a warm solve, compiling not counted (``compile_seconds`` is
+what the first solve of a structure on a machine adds).  Both are sums of counts (pairs, points, entries
+of a policy's matrix, iterations, evaluation steps) times costs measured on a 2-core x86 machine
+(:mod:`worker.costs`, each constant with its measurement); iterations and evaluation steps are guessed
+from the discount, the tolerance and the choices, so time is the rougher of the two.  The returned
+``basis`` says how the time was counted.
 """
 
 from __future__ import annotations
@@ -42,28 +48,32 @@ from dataclasses import dataclass
 from typing import Any
 
 from worker.costs import (
-    BOUND_NS,
+    BASE_BYTES,
     CHOICE_BYTES,
-    EXACT_POINTS_PER_ROOT_CHOICE,
+    FEASIBILITY_COLUMNS,
+    ITERATION_S,
     MATVEC_NS,
-    NUMPY_PAIR_NS,
-    POINT_NS,
-    RESULT_BYTES_PER_STATE,
     SOLVER_BYTES_PER_STATE,
-    STATIC_CLIMB_POINTS,
     TABLE_READ_NS,
-    grid_common_bytes,
+    TABULAR_STEP_S,
+    euler_elements,
     horizon_bytes,
+    horizon_seconds,
     iteration_steps,
     linear_solve_bytes,
     linear_solve_seconds,
     linear_solve_words,
+    report_bytes,
+    report_seconds,
+    solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
+from worker.grid_seconds import grid_seconds
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_cost
 from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
+from worker.threadpool import TABLE_CHUNKS_AT_ONCE, threads_for
 
 __all__ = [
     "PRECOMPUTE_CAP_SHARE",
@@ -78,8 +88,17 @@ PRECOMPUTE_CAP_SHARE = 0.25
 """Share of the memory cap (``limits["max_bytes"]``) precomputed tables may take (dimensionless)."""
 CHUNK_ELEMENTS = 1 << 20
 """(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
-CHUNK_TEMPORARIES = 8
-"""float64 temporaries of chunk size alive at once while evaluating a model's expressions (count)."""
+CHUNK_TEMPORARIES = 5
+"""float64 temporaries of chunk size alive at once while evaluating a model's expressions, per chunk in flight
+(count; traced peaks of the bundled examples: 3 to 8, and 10 per draw with draws after the choice; 2.5 per
+chunk filling the 20-million-pair tables of ``bench/bench_estimates.py`` on 1, 2 and 4 threads)."""
+
+TABULAR_ENTRY_NS = 10.0
+"""Reading a tabular transition into a sparse matrix, per entry given (nanoseconds; measured 11 on the dense
+document of ``bench/bench_estimates.py``)."""
+DENSE_CONVERSION_BYTES = 24
+"""Temporaries per entry of a dense tabular transition while it becomes a sparse matrix (bytes; measured on
+``bench/bench_estimates.py``'s dense document: the traced peak is about 40 bytes per entry in all)."""
 
 _MIB = 2**20
 
@@ -114,6 +133,9 @@ class GridPlan:
         Peak working memory of each reward storage and the precompute budget.
     reason : str
         The reward-storage decision in plain words.
+    table_bytes, solve_extra_bytes : int
+        Bytes of the tables alone (kept for the whole solve), and what the iterations add to the solver's
+        vectors (with taste shocks: a policy's mixed matrix before its duplicates are summed).
     table_entries : int
         Entries of the reward tables: ``pairs``, or fewer when static
         choices are maximised out (:mod:`worker.staticchoices`).
@@ -139,13 +161,17 @@ class GridPlan:
     reason: str
     table_entries: int = 0
     static_concave: bool = False
+    table_bytes: int = 0
+    solve_extra_bytes: int = 0
 
     @property
     def hints_active(self) -> bool:
         return self.monotone or self.concave
 
     @property
-    def bytes(self) -> int:
+    def setup_bytes(self) -> int:
+        """Peak of building the reward storage: the tables and their chunks' temporaries, or the feasibility
+        scan's temporaries."""
         return self.precompute_bytes if self.reward_storage == "tables" else self.on_the_fly_bytes
 
 
@@ -176,25 +202,32 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     table_choices = math.prod(c.size for name, c in model.choices.items() if name not in static)
 
     # Per-choice work arrays (the feasibility scan's visiting order and marks, flat choice indices).
-    common = grid_common_bytes(n, shocks, nodes, method) + CHOICE_BYTES * choices
+    common = CHOICE_BYTES * choices
     table_bytes = draw_table_bytes(pairs, draws, interpolated) if draws else n * table_choices * (
         8 + 12 * interpolated + (8 if static else 0))
-    chunk = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, max(pairs, 1))
+    # Filling the tables evaluates chunks of whole rows (every choice, every draw) of about CHUNK_ELEMENTS.
+    elements = pairs * max(draws, 1)
+    chunk_elements = min(max(CHUNK_ELEMENTS, choices * max(draws, 1)), elements)
+    # A threaded fill evaluates up to TABLE_CHUNKS_AT_ONCE chunks at once, one per thread (worker.threadpool).
+    at_once = min(threads_for(n, choices), TABLE_CHUNKS_AT_ONCE, math.ceil(elements / max(chunk_elements, 1)))
+    chunk = CHUNK_TEMPORARIES * 8 * chunk_elements * max(at_once, 1)
     precompute_bytes = common + table_bytes + chunk
-    # The exact block search keeps dyadic maxima of the continuation (about 2n floats).
-    on_the_fly_bytes = common + 2 * 8 * n + chunk
+    # Pointwise: the feasibility scan's first passes (a state leaves at its first allowed choice), and the exact
+    # block search's dyadic maxima of the continuation (about 2n floats).
+    scan = CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, n * FEASIBILITY_COLUMNS * max(draws, 1), elements)
+    on_the_fly_bytes = common + scan
 
     budget = precompute_budget(limits)
     if taste:
         extra = taste_table_bytes(pairs, interpolated, nodes) - table_bytes
         table_bytes += extra
-        precompute_bytes += extra + 12 * pairs * nodes * shocks  # the mixed matrix before its duplicates are summed
+        precompute_bytes += extra
         reason, note = taste_storage_words(pairs, table_bytes, budget, model.hints.monotone or model.hints.concave)
         return GridPlan(
             grid_states=grid_states, shocks=shocks, n=n, choices=choices, pairs=pairs, interpolated=interpolated,
             nodes=nodes, monotone=False, concave=False, hint_note=note, reward_storage="tables",
             precompute_bytes=precompute_bytes, on_the_fly_bytes=on_the_fly_bytes, budget=budget, reason=reason,
-            table_entries=pairs,
+            table_entries=pairs, table_bytes=common + table_bytes, solve_extra_bytes=12 * pairs * nodes * shocks,
         )
     fits = table_bytes <= budget
     use = hint_use(model, static, None if fits else (
@@ -256,7 +289,20 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
         reason=reason,
         table_entries=n * table_choices,
         static_concave=use.static_concave and reward_storage == "tables",
+        table_bytes=common + (table_bytes if reward_storage == "tables" else 0),
+        solve_extra_bytes=0 if reward_storage == "tables" else 2 * 8 * n,
     )
+
+
+def grid_bytes(doc: Any, plan: GridPlan) -> int:
+    """Peak memory of a grid model's solve: the larger of building its reward storage and the iterations with
+    the result and its reports (the tables, when kept, under both), plus a finite horizon's periods."""
+    entries = plan.n * plan.nodes * plan.shocks
+    first_axis = next(iter(doc.model.states.values())).size
+    euler = 0 if doc.model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
+    working = (solve_bytes(plan.n, entries, doc.solver.method) + plan.solve_extra_bytes
+               + report_bytes(doc, plan.n, entries, euler))
+    return BASE_BYTES + max(plan.setup_bytes, plan.table_bytes + working) + horizon_bytes(doc, plan.n)
 
 
 def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
@@ -269,13 +315,14 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         value function), ``grid_states`` (points of the endogenous state
         grid; tabular: the states), ``shocks`` (points of the shock chain; 1
         without shocks, 0 for tabular), ``choice_points`` (alternatives per
-        point), ``pairs`` (point × choice point); ``bytes`` (peak working
-        memory of the reward storage that will be used, interpreter and
-        libraries not counted); ``reward_storage`` (``tables`` or
+        point), ``pairs`` (point × choice point); ``bytes`` (peak memory
+        the solve allocates, with the reward storage that will be used and
+        the reports asked for; interpreter, libraries and kernels not
+        counted); ``reward_storage`` (``tables`` or
         ``on_the_fly``); ``compile_bytes`` and ``compile_seconds`` (what
         the first solve of a grid model's structure on a machine adds while
-        its kernels compile; 0 for tabular); ``seconds`` (a rough time
-        guess, compiling not counted) with its ``basis``; ``notes``, plain
+        its kernels compile; 0 for tabular); ``seconds`` (wall time of a warm
+        solve, compiling not counted) with its ``basis``; ``notes``, plain
         words.  A grid model over the limits of :mod:`worker.kernel_limits`
         is sized all the same: its ``check_structure`` is what refuses it.
     """
@@ -287,48 +334,11 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         return continuous_estimate(doc)
     model = doc.model
     plan = grid_plan(model, limits=limits, method=doc.solver.method)
-    steps, per_iteration, basis = iteration_steps(doc, plan.choices)
-    matrix_entries = plan.n * plan.nodes * plan.shocks
-    evaluation = per_iteration * matrix_entries * MATVEC_NS
-    if plan.reward_storage == "tables":
-        draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
-        setup = plan.pairs * NUMPY_PAIR_NS * draws
-        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({NUMPY_PAIR_NS:g} ns each)"
-        if plan.table_entries < plan.pairs:
-            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
-            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
-            setup = evaluated * POINT_NS
-            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
-        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
-        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
-    else:
-        setup = plan.n * 64 * NUMPY_PAIR_NS  # the feasibility check: a strided sample of the choices
-        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
-        points = min(float(plan.choices), EXACT_POINTS_PER_ROOT_CHOICE * math.sqrt(plan.choices))
-        exact = plan.n * (blocks * BOUND_NS + points * POINT_NS)
-        hinted = plan.n * 5 * POINT_NS
-        step = hinted if plan.hints_active else exact
-        how = (
-            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point, {BOUND_NS:g} ns per block bound); "
-            + ("hinted steps look at about 5 choices per state, exact ones" if plan.hints_active else "exact steps")
-            + f" bound about {blocks} blocks and evaluate about {points:,.0f} points per state"
-        )
-        if plan.hints_active and model.horizon is not None:
-            step_total = steps * (step + exact / 2)  # every period's exact step, seeded by the hinted one
-        elif plan.hints_active:
-            step_total = (steps - 2) * step + 2 * exact
-        else:
-            step_total = steps * step
-    if plan.reward_storage == "tables":
-        step_total = steps * step
-        from worker.document.horizon import varies_by_period  # here: worker.document reads this module's limits
-
-        if model.horizon is not None and varies_by_period(model):
-            setup *= model.horizon.periods  # the tables are filled again in every period (worker.period_tables)
-    seconds = (setup + step_total + steps * evaluation) * 1e-9
+    steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
+    seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         seconds += steps * linear_solve_seconds(
-            plan.n, matrix_entries, float(doc.discount), float(doc.solver.tolerance)
+            plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
         )
         basis += f"; {linear_solve_words(plan.n)}"
     compile_bytes, compile_s = compile_cost(model)
@@ -359,7 +369,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "shocks": plan.shocks,
         "choice_points": plan.choices,
         "pairs": plan.pairs,
-        "bytes": plan.bytes + horizon_bytes(doc, plan.n),
+        "bytes": grid_bytes(doc, plan),
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
@@ -382,19 +392,23 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     csr = stored * 12 + 8 * (pairs + 1)
     document = entries * 8 if dense else entries * 32
     # Building the CSR from entries: row and column columns, a contiguous copy of p, scipy's conversion copies.
-    conversion = 0 if dense else entries * 32
-    common = n_states * (SOLVER_BYTES_PER_STATE + RESULT_BYTES_PER_STATE) + 2 * 8 * pairs
-    # A policy's matrix takes one action's rows per state: at most every stored entry, and at most n².
-    policy_entries = min(stored, n_states * n_states)
+    # Dense: the decoded array, its finite mask and the nonzero selection before the CSR is built.
+    conversion = entries * (DENSE_CONVERSION_BYTES if dense else 32)
+    common = n_states * SOLVER_BYTES_PER_STATE + 2 * 8 * pairs
+    # A policy's matrix takes one action's rows per state: about a share 1/actions of the stored entries, at most n².
+    policy_entries = min(math.ceil(stored / n_actions), n_states * n_states)
     if getattr(model, "taste_shocks", None) is not None:
         # The logit probabilities, their exponentials and the entropy terms are (S, A) arrays, and the mixed
         # matrix of a policy may hold every stored entry before its duplicates are summed.
         common += 3 * 8 * pairs
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
-    steps, per_iteration, basis = iteration_steps(doc, n_actions)
+    steps, evaluation_steps, basis = iteration_steps(doc, n_actions)
     step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
-    seconds = (steps * step + steps * per_iteration * policy_entries * MATVEC_NS) * 1e-9
+    step += ITERATION_S * 1e9
+    seconds = (steps * step + evaluation_steps * policy_entries * MATVEC_NS + entries * TABULAR_ENTRY_NS) * 1e-9
+    seconds += evaluation_steps * TABULAR_STEP_S
+    seconds += report_seconds(doc, n_states, policy_entries, grid=False) + horizon_seconds(doc, n_states)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         matrix += linear_solve_bytes(n_states, policy_entries)
         seconds += steps * linear_solve_seconds(
@@ -413,7 +427,8 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "shocks": 0,
         "choice_points": n_actions,
         "pairs": pairs,
-        "bytes": int(common + csr + document + conversion + matrix) + horizon_bytes(doc, n_states),
+        "bytes": int(BASE_BYTES + common + csr + document + conversion + matrix)
+        + report_bytes(doc, n_states, policy_entries) + horizon_bytes(doc, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,

@@ -1,0 +1,127 @@
+"""The size estimates against measurements: memory and time of every document of ``tests/_estimate_set.py``.
+
+Run from the repository root: ``python bench/bench_estimates.py`` (add ``--large`` for three grid models of
+29,000 to 300,000 points, ``--rss`` for the resident-memory column, ``--cold`` for the first solve of each
+structure with an empty kernel cache).  Target, printed with PASS or FAIL: every ratio estimate / measured
+within [1/2, 2].  Besides the set, two documents are solved under a memory cap that leaves their tables
+out (``POINTWISE``), for the exact pointwise search through an interpolated state.
+
+What is measured (the figures the estimate promises):
+
+* memory: the peak of the memory :mod:`tracemalloc` traces (Python objects and numpy's arrays) during a
+  solve of the document in a process that solved it once already, above what was traced just before —
+  the ``bytes`` of ``POST /v1/check`` and of admission;
+* with ``--rss``: a fresh process per document imports fixq, solves the document once (kernels loaded from
+  the cache, libraries imported), then the growth of its peak resident memory (``VmHWM``, reset before) over a
+  second solve is printed beside it, for information: freed memory the allocator keeps makes it smaller than
+  the traced peak, and memory returned to the system in between makes it larger;
+* time: the wall time of a warm solve (kernels compiled and loaded, the document solved once before), the
+  least of ``REPEATS`` — the ``seconds`` of the estimate;
+* with ``--cold``: a fresh process per grid document with an empty kernel cache solves it once (the cold
+  bridge off, so it waits for its kernels); its wall time is compared with ``seconds + compile_seconds``.
+
+The machine may be shared and noisy: time ratios are those of this run (the least of the repeats), and
+the test ``tests/worker/test_estimates_accuracy.py`` asserts the memory ratios only.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[1]
+sys.path.insert(0, str(ROOT))
+os.environ.setdefault("FIXQ_COLD_BRIDGE", "off")
+
+from tests._estimate_set import POINTWISE, documents, measure_memory, measure_seconds  # noqa: E402
+from worker.document import parse_document  # noqa: E402
+from worker.estimate import estimate  # noqa: E402
+
+REPEATS = 5
+"""Timed warm solves per document; the least is compared (count)."""
+FACTOR = 2.0
+"""Largest ratio estimate / measured, and its inverse the smallest (dimensionless)."""
+_MIB = 2**20
+
+RSS_CHILD = r"""
+import json, sys, os
+sys.path.insert(0, {root!r})
+from worker import solve
+raw = json.loads(sys.stdin.read())
+solve(raw)
+def status(field):
+    with open("/proc/self/status") as f:
+        for line in f:
+            if line.startswith(field + ":"):
+                return int(line.split()[1]) * 1024
+with open("/proc/self/clear_refs", "w") as f:
+    f.write("5")
+before = status("VmRSS")
+solve(raw)
+print(json.dumps({{"grown": status("VmHWM") - before}}))
+"""
+
+COLD_CHILD = r"""
+import json, sys, time
+sys.path.insert(0, {root!r})
+raw = json.loads(sys.stdin.read())
+start = time.perf_counter()
+from worker import solve
+solve(raw)
+print(json.dumps({{"seconds": time.perf_counter() - start}}))
+"""
+
+
+def _child(code: str, raw: dict, env: dict[str, str]) -> dict:
+    done = subprocess.run(
+        [sys.executable, "-c", code.format(root=str(ROOT))], input=json.dumps(raw), capture_output=True, text=True,
+        env={**os.environ, **env}, timeout=900, check=True,
+    )
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def verdict(ratio: float) -> str:
+    return "ok" if 1 / FACTOR <= ratio <= FACTOR else "OUT"
+
+
+def main(argv: list[str]) -> int:
+    large, rss, cold = "--large" in argv, "--rss" in argv, "--cold" in argv
+    rows = []
+    print(f"{'document':28s} {'est MiB':>9s} {'traced':>9s} {'ratio':>6s}    {'est s':>8s} {'warm s':>8s} "
+          f"{'ratio':>6s}" + ("   rss MiB" if rss else "") + ("   cold s  est+compile  ratio" if cold else ""))
+    cases = [(name, raw, None) for name, raw in documents(large).items()]
+    cases += [(name, raw, limits) for name, (raw, limits) in POINTWISE.items()]
+    for name, raw, limits in cases:
+        size = estimate(parse_document(raw), limits=limits)
+        traced = measure_memory(raw, limits)
+        seconds = measure_seconds(raw, REPEATS, limits)
+        row = {"name": name, "memory": size["bytes"] / traced, "time": size["seconds"] / seconds}
+        line = (f"{name:28s} {size['bytes'] / _MIB:9.2f} {traced / _MIB:9.2f} {row['memory']:6.2f} "
+                f"{verdict(row['memory']):3s} {size['seconds']:8.4f} {seconds:8.4f} {row['time']:6.2f} "
+                f"{verdict(row['time']):3s}")
+        if rss and limits is None:
+            line += f" {_child(RSS_CHILD, raw, {})['grown'] / _MIB:9.2f}"
+        if cold and raw["model"]["kind"] == "grid" and limits is None:
+            with tempfile.TemporaryDirectory() as cache:
+                first = _child(COLD_CHILD, raw, {"FIXQ_KERNEL_CACHE": cache})["seconds"]
+            promised = size["seconds"] + size["compile_seconds"]
+            line += f" {first:8.2f} {promised:12.2f} {promised / first:6.2f}"
+        print(line, flush=True)
+        rows.append(row)
+    memory_ok = all(1 / FACTOR <= row["memory"] <= FACTOR for row in rows)
+    time_ok = all(1 / FACTOR <= row["time"] <= FACTOR for row in rows)
+    spread = [row["memory"] for row in rows]
+    print(f"memory ratios {min(spread):.2f} to {max(spread):.2f}: {'PASS' if memory_ok else 'FAIL'} "
+          f"(within {FACTOR:g}x)")
+    spread = [row["time"] for row in rows]
+    print(f"warm time ratios {min(spread):.2f} to {max(spread):.2f}: {'PASS' if time_ok else 'FAIL'} "
+          f"(within {FACTOR:g}x, this run)")
+    return 0 if memory_ok and time_ok else 1
+
+
+if __name__ == "__main__":
+    sys.exit(main(sys.argv[1:]))

@@ -1,0 +1,203 @@
+"""The documents the size estimates are measured on, and the measurement (shared by a test and a bench).
+
+Every bundled example (``service/examples/*.json``) plus the shapes the estimates must also hold for,
+each an invented scenario: several iid and Markov shocks, taste shocks on a tabular model, draws after
+the choice, a finite horizon, a continuous choice, tabular dense and sparse transitions, and grid models
+of tens and hundreds of thousands of points where per-point costs dominate fixed ones.
+
+:func:`measure_memory` is the figure the estimate's ``bytes`` targets: the peak of the memory traced by
+:mod:`tracemalloc` (Python objects and numpy's arrays) during a solve in a process that has already
+solved the document once (kernels compiled or loaded, libraries imported), measured from the traced
+memory just before the solve.  :func:`measure_seconds` is the wall time of such a warm solve.
+"""
+
+from __future__ import annotations
+
+import copy
+import gc
+import json
+import time
+import tracemalloc
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from tests._documents import GROWTH, array_tabular, random_replacement
+from worker.arrays import encode_array
+
+EXAMPLES = Path(__file__).resolve().parents[1] / "service" / "examples"
+
+
+def example(name: str) -> dict[str, Any]:
+    return json.loads((EXAMPLES / f"{name}.json").read_text(encoding="utf-8"))
+
+
+def several_shocks(points: int = 60) -> dict[str, Any]:
+    """Invented farm savings: two iid shocks (rain, prices) and a Markov health chain, 60 × 5 × 4 × 3 points."""
+    return {
+        "version": 1, "label": "farm savings with rain, price and health shocks (invented)", "discount": 0.95,
+        "model": {
+            "kind": "grid",
+            "params": {"gamma": 2.0, "r": 0.03},
+            "states": {"a": {"min": 0.0, "max": 12.0, "points": points, "spacing": "power"}},
+            "shocks": {
+                "rain": {"iid": {"values": [0.6, 0.8, 1.0, 1.1, 1.2], "probs": [0.1, 0.2, 0.4, 0.2, 0.1]}},
+                "price": {"iid": {"values": [0.8, 0.95, 1.05, 1.2], "probs": [0.2, 0.3, 0.3, 0.2]}},
+                "health": {"markov": {"values": [0.5, 0.9, 1.0],
+                                      "matrix": [[0.5, 0.3, 0.2], [0.1, 0.7, 0.2], [0.02, 0.08, 0.9]]}},
+            },
+            "choices": {"a_next": {"next_of": "a"}},
+            "define": {"c": "(1 + r) * a + rain * price * health - a_next"},
+            "reward": "c**(1 - gamma) / (1 - gamma)",
+            "feasible": ["c > 0"],
+        },
+        "solver": {"method": "howard", "tolerance": 1e-6},
+    }
+
+
+def lifted_shock(points: int = 40, shock_points: int = 25) -> dict[str, Any]:
+    """Invented shop: a discretised iid cost shock of many points, two choices (the issue's refused shape)."""
+    values = np.linspace(-2.0, 2.0, shock_points)
+    probs = np.exp(-values**2 / 2)
+    probs /= probs.sum()
+    return {
+        "version": 1, "label": "repair shop with a many-point cost shock (invented)", "discount": 0.95,
+        "model": {
+            "kind": "grid",
+            "states": {"wear": {"min": 0.0, "max": float(points - 1), "points": points}},
+            "shocks": {"cost": {"iid": {"values": values.tolist(), "probs": probs.tolist()}}},
+            "choices": {"repair": {"values": [0, 1]}},
+            "next": {"wear": "(1 - repair) * min(wear + 1, " + str(points - 1) + ")"},
+            "reward": "-(0.1 * wear) * (1 - repair) - (3 + 0.5 * cost) * repair",
+        },
+        "solver": {"method": "howard", "tolerance": 1e-8},
+    }
+
+
+def separation(offers: int = 40) -> dict[str, Any]:
+    """Invented job search: the separation is drawn after the choice with a probability that falls with effort."""
+    return {
+        "version": 1, "label": "job search with separations after the choice (invented)", "discount": 0.95,
+        "model": {
+            "kind": "grid",
+            "params": {"benefit": 0.6, "cost": 0.3},
+            "states": {"employed": {"values": [0, 1]},
+                       "wage": {"min": 0.5, "max": 2.0, "points": offers}},
+            "shocks": {
+                "offer": {"iid": {"values": np.linspace(0.5, 2.0, offers).tolist(),
+                                  "probs": (np.ones(offers) / offers).tolist()}},
+                "lost": {"timing": "after_choice",
+                         "iid": {"values": [0, 1], "probs": ["1 - 0.1 * (1 - 0.5 * effort)",
+                                                             "0.1 * (1 - 0.5 * effort)"]}},
+            },
+            "choices": {"accept": {"values": [0, 1]}, "effort": {"values": [0.0, 0.5, 1.0]}},
+            "next": {
+                "employed": "max(employed, accept) * (1 - lost)",
+                "wage": "employed * wage + (1 - employed) * (accept * offer + (1 - accept) * wage)",
+            },
+            "reward": "employed * wage + (1 - employed) * benefit - cost * effort**2",
+        },
+        "solver": {"method": "howard", "tolerance": 1e-8},
+    }
+
+
+def growth(points: int, shocks: int, hints: dict | None = None) -> dict[str, Any]:
+    model = {"kind": "grid", **copy.deepcopy(GROWTH)}
+    model["states"]["k"] = {"min": 2.7, "max": 8.2, "points": points}
+    model["shocks"]["z"]["ar1"]["points"] = shocks
+    if hints is not None:
+        model["hints"] = hints
+    return {"version": 1, "label": f"growth {points} × {shocks} (invented)", "discount": 0.95, "model": model,
+            "solver": {"method": "howard", "tolerance": 1e-6}}
+
+
+def two_states(capacity: int, customers: int) -> dict[str, Any]:
+    """The roastery example on a finer grid: two states moved by a next_of and an expression."""
+    document = example("roastery_growth")
+    document["model"]["states"]["capacity"]["points"] = capacity
+    document["model"]["states"]["customers"]["points"] = customers
+    return document
+
+
+def dense_tabular(states: int = 150, actions: int = 4, seed: int = 1) -> dict[str, Any]:
+    """Invented dense fleet problem: every state reachable from every (state, action)."""
+    rng = np.random.default_rng(seed)
+    transition = rng.dirichlet(np.ones(states), (states, actions))
+    raw = array_tabular(rng.uniform(0.0, 1.0, (states, actions)), encode_array(transition))
+    raw["solver"] = {"method": "howard", "tolerance": 1e-8}
+    return raw
+
+
+def taste_tabular(states: int = 400) -> dict[str, Any]:
+    raw = random_replacement(200, seed=3, label="fleet upkeep with taste shocks (invented)", method="howard")
+    raw["solver"]["tolerance"] = 1e-8
+    raw["discount"] = 0.95
+    raw["model"]["taste_shocks"] = {"scale": 0.5}
+    return raw
+
+
+def sparse_tabular() -> dict[str, Any]:
+    raw = random_replacement(200, seed=2, method="howard")
+    raw["solver"]["tolerance"] = 1e-8
+    raw["discount"] = 0.95
+    return raw
+
+
+def documents(large: bool = False) -> dict[str, dict[str, Any]]:
+    """Name → document: the bundled examples and the extra shapes; ``large`` adds the slow, large ones."""
+    docs = {path.stem: example(path.stem) for path in sorted(EXAMPLES.glob("*.json"))}
+    docs.update({
+        "several_iid_and_markov": several_shocks(),
+        "many_point_iid": lifted_shock(),
+        "separation_after_choice": separation(),
+        "dense_tabular": dense_tabular(),
+        "sparse_tabular": sparse_tabular(),
+        "taste_tabular": taste_tabular(),
+        "growth_tables_20k": growth(1000, 20),
+        "growth_hinted_60k": growth(2000, 30, {"monotone": True, "concave": True}),
+    })
+    if large:
+        docs.update({
+            "growth_hinted_300k": growth(6000, 50, {"monotone": True, "concave": True}),
+            "roastery_29k": two_states(120, 120),
+            "several_iid_and_markov_60k": several_shocks(1000),
+        })
+    return docs
+
+
+POINTWISE: dict[str, tuple[dict[str, Any], dict[str, int]]] = {
+    "fishery_pointwise": (example("fishery_harvest"), {"max_bytes": 2**20}),
+    "roastery_60_pointwise": (two_states(60, 60), {"max_bytes": 200 * 2**20}),
+}
+"""Documents solved under a memory cap whose precompute budget leaves their tables out: exact pointwise steps
+through an interpolated state (name → (document, ``limits``))."""
+
+
+def measure_memory(raw: dict[str, Any], limits: dict[str, Any] | None = None) -> int:
+    """Peak traced bytes a warm solve of ``raw`` adds (the document solved once before, outside the trace)."""
+    from worker import solve
+
+    solve(raw, limits=limits)
+    gc.collect()
+    tracemalloc.start()
+    try:
+        base, _ = tracemalloc.get_traced_memory()
+        solve(raw, limits=limits)
+        _, peak = tracemalloc.get_traced_memory()
+    finally:
+        tracemalloc.stop()
+    return peak - base
+
+
+def measure_seconds(raw: dict[str, Any], repeats: int = 3, limits: dict[str, Any] | None = None) -> float:
+    """Least wall time of ``repeats`` warm solves (after one untimed solve) in seconds."""
+    from worker import solve
+
+    solve(raw, limits=limits)
+    best = float("inf")
+    for _ in range(repeats):
+        start = time.perf_counter()
+        solve(raw, limits=limits)
+        best = min(best, time.perf_counter() - start)
+    return best

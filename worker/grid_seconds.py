@@ -1,0 +1,101 @@
+"""The time of a grid model's warm solve, from its sizes and the reward storage :mod:`worker.estimate` chose.
+
+Kept apart from :mod:`worker.estimate` (which calls it) by topic: the counts of the work a solve does
+(pairs filled, entries scanned, points searched, expectations formed, evaluation steps), times the costs
+of :mod:`worker.costs`, divided among the threads :mod:`worker.threadpool` would use.  Imports no numba.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+from worker.costs import (
+    DRAWS_FIXED_S,
+    EXACT_LEVEL_NS,
+    EXPECTATION_NS,
+    FEASIBILITY_COLUMNS,
+    GRID_FIXED_S,
+    HINTED_POINTS,
+    INTERPOLATED_PAIR_NS,
+    ITERATION_S,
+    MATVEC_NS,
+    NUMPY_PAIR_NS,
+    POINT_NS,
+    SCAN_NODE_NS,
+    STATIC_CLIMB_POINTS,
+    TABLE_READ_NS,
+    THREAD_EFFICIENCY,
+    euler_elements,
+    horizon_seconds,
+    report_seconds,
+)
+from worker.taste import SMOOTHED_PAIR_NS
+from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
+
+__all__ = ["grid_seconds"]
+
+
+def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tuple[float, str]:
+    """Warm solve time of a grid model without a continuous choice (seconds, kernels compiled) and how it was
+    counted; ``plan`` is its :class:`worker.estimate.GridPlan`, ``steps`` and ``evaluation_steps`` from
+    :func:`worker.costs.iteration_steps`."""
+    model = doc.model
+    # Large problems run their table fill and Bellman steps on several threads (worker.threadpool), and very
+    # large ones their evaluation steps too.
+    threads = threads_for(plan.n, plan.choices)
+    speedup = 1.0 + THREAD_EFFICIENCY * (threads - 1)
+    evaluation_speedup = speedup if plan.n >= THREAD_MIN_STEP_POINTS else 1.0
+    entries = plan.n * plan.nodes * plan.shocks  # a policy's matrix: one evaluation step, one expectation
+    draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
+    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+    if plan.reward_storage == "tables":
+        per_pair = NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
+        setup += plan.pairs * per_pair * draws / speedup
+        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
+        if plan.table_entries < plan.pairs:
+            # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
+            evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
+            setup += (evaluated * POINT_NS - plan.pairs * per_pair * draws) / speedup
+            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
+        from worker.document.horizon import varies_by_period  # here: worker.document reads the estimate's limits
+
+        if model.horizon is not None and varies_by_period(model):
+            fixed = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+            setup = fixed + (setup - fixed) * model.horizon.periods  # refilled every period (worker.period_tables)
+        step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
+        step_total = steps * step
+        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
+    else:
+        setup += plan.n * FEASIBILITY_COLUMNS * NUMPY_PAIR_NS  # the feasibility scan's first passes
+        blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
+        exact = plan.n * blocks * EXACT_LEVEL_NS
+        if plan.interpolated:
+            # Bounds through interpolated tomorrows are loose: the search comes near a scan of every choice.
+            exact = plan.n * plan.choices * plan.nodes * SCAN_NODE_NS
+        # A concave search stops at the first choice that does worse; a monotone one alone scans from its bound.
+        looked_at = 1 if plan.concave else HINTED_POINTS
+        hinted = plan.n * looked_at * POINT_NS
+        how = (
+            f"pointwise evaluation in compiled code ({POINT_NS:g} ns per point); "
+            + (f"hinted steps look at about {looked_at} choices per state, exact ones" if plan.hints_active
+               else "exact steps")
+            + (f" come near a scan of all {plan.choices:,} choices through {plan.nodes} interpolation nodes"
+               if plan.interpolated else f" search {blocks} levels of blocks per state ({EXACT_LEVEL_NS:g} ns each)")
+        )
+        if plan.hints_active and model.horizon is not None:
+            step_total = steps * (hinted + exact / 2)  # every period's exact step, seeded by the hinted one
+        elif plan.hints_active:
+            step_total = max(steps - 2, 0) * hinted + 2 * exact  # the last iterations and the verification exact
+        else:
+            step_total = steps * exact
+    # Every Bellman and evaluation step forms the expected continuation; an evaluation step then reads the nodes.
+    expectation = plan.grid_states * plan.shocks * plan.shocks * EXPECTATION_NS
+    iterations = steps * (ITERATION_S * 1e9 + expectation / speedup)
+    evaluation = evaluation_steps * (expectation + plan.n * plan.nodes * MATVEC_NS) / evaluation_speedup
+    first_axis = next(iter(model.states.values())).size
+    euler = 0 if model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
+    seconds = (setup + step_total / speedup + iterations + evaluation) * 1e-9
+    if threads > 1:
+        how += f"; {threads} threads ({speedup:g}× on the table fill and the Bellman steps)"
+    return seconds + report_seconds(doc, plan.n, entries, euler) + horizon_seconds(doc, plan.n), how
