@@ -50,6 +50,15 @@ POWER_TOLERANCE = 1e-10
 (unitless: a total-variation distance of probability vectors)."""
 POWER_MAX_STEPS = 200_000
 """Power iteration gives up (with a warning) after this many steps."""
+POWER_FIRST_STEPS = 1000
+"""Above ``DIRECT_MAX_STATES``, power steps tried before the incomplete LU (count): a chain that mixes fast
+settles within them for less than the factorisation costs (a 60,000-state growth chain: 540 steps, 0.5 s,
+against 1.5–3 s for the incomplete LU and GMRES; measured), and a slow one (a 28,000-state savings chain
+near r = 1/β − 1 needs 10⁴–10⁵) loses little."""
+PIN_PROBE_STEPS = 50
+"""Lazy power steps from uniform that pick the pinned state of the direct solve (count; see ``_pinned``)."""
+GMRES_MAX_CYCLES = 20
+"""Restart cycles (of 50 steps) GMRES may run before power iteration takes over (count)."""
 _POWER_CHECK_EVERY = 10
 """Lazy steps between two residual checks."""
 PERCENTILES = (5, 25, 50, 75, 95)
@@ -92,16 +101,21 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     pi = None
     if n <= DIRECT_MAX_STATES:
         # One closed class (the usual case) by one sparse LU of the pinned system; else the general solve.
-        pi = _pinned(matrix, n, direct=True)
+        pi = _pinned(matrix, transposed, n, direct=True)
         if pi is None or float(np.abs(transposed @ pi - pi).sum()) > PINNED_TOLERANCE:
             pi = stationary_distribution(matrix)
         method, steps = "direct", 0
     else:
-        pi = _preconditioned(matrix, n)
-        method, steps = "gmres", 0
-        if pi is None or float(np.abs(transposed @ pi - pi).sum()) > POWER_TOLERANCE:
-            pi, steps = _lazy_power(transposed, n)
-            method = "power"
+        # A chain that mixes fast settles in a few hundred power steps, cheaper than an incomplete LU.
+        pi, steps = _lazy_power(transposed, n, max_steps=POWER_FIRST_STEPS)
+        method = "power"
+        if float(np.abs(transposed @ pi - pi).sum()) > POWER_TOLERANCE:
+            solved = _preconditioned(matrix, transposed, n, pi if steps >= PIN_PROBE_STEPS else None)
+            if solved is not None and float(np.abs(transposed @ solved - solved).sum()) <= POWER_TOLERANCE:
+                pi, method = solved, "gmres"
+            else:
+                pi, more = _lazy_power(transposed, n, start=pi)
+                steps += more
     residual = float(np.abs(transposed @ pi - pi).sum())
     if method == "power" and residual > POWER_TOLERANCE:
         warnings.append(
@@ -111,18 +125,27 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     return pi, {"method": method, "residual": residual, "steps": steps, "warnings": warnings}
 
 
-def _preconditioned(matrix: sp.csr_matrix, n: int) -> np.ndarray | None:
+def _preconditioned(
+    matrix: sp.csr_matrix, transposed: sp.csr_matrix, n: int, guess: np.ndarray | None = None
+) -> np.ndarray | None:
     """The stationary distribution of a chain with one closed class by GMRES, or None (several closed
     classes, or GMRES did not settle)."""
-    return _pinned(matrix, n, direct=False)
+    return _pinned(matrix, transposed, n, direct=False, guess=guess)
 
 
-def _pinned(matrix: sp.csr_matrix, n: int, *, direct: bool) -> np.ndarray | None:
+def _pinned(
+    matrix: sp.csr_matrix, transposed: sp.csr_matrix, n: int, *, direct: bool, guess: np.ndarray | None = None
+) -> np.ndarray | None:
     """The stationary distribution of a chain with one closed class, or None (several closed classes, or the
-    solve failed): by a sparse LU when ``direct``, else by GMRES preconditioned with an incomplete LU.
+    solve failed): by a sparse LU when ``direct``, else by GMRES preconditioned with an incomplete LU (at most
+    ``GMRES_MAX_CYCLES`` restart cycles, started from ``guess`` when given; the caller checks the residual).
 
     ``π (I − P) = 0`` with ``π_k = 1`` for a state ``k`` of the closed class is a nonsingular system in the
-    other entries (the transient ones come out 0); its solution is normalised to sum to 1.
+    other entries (the transient ones come out 0); its solution is normalised to sum to 1.  ``k`` is the
+    closed class's state of most mass under ``guess`` or, without one, after ``PIN_PROBE_STEPS`` lazy power
+    steps from uniform: pinning a state of tiny mass (a grid end the policy never reaches, say) leaves a
+    system so badly scaled that even a sparse LU's answer missed by a residual of 0.25 (a 60,000-state
+    growth chain, measured), and GMRES then ran its whole budget (300 s) for nothing.
     """
     from scipy.sparse import csgraph
     from scipy.sparse import linalg as sla
@@ -133,8 +156,11 @@ def _pinned(matrix: sp.csr_matrix, n: int, *, direct: bool) -> np.ndarray | None
     closed = np.setdiff1d(np.arange(count), leaky)
     if closed.size != 1:
         return None
-    k = int(np.flatnonzero(label == closed[0])[0])
-    system = sp.csc_matrix(sp.identity(n, format="csr") - matrix.T)
+    members = np.flatnonzero(label == closed[0])
+    if guess is None:
+        guess, _ = _lazy_power(transposed, n, max_steps=PIN_PROBE_STEPS)
+    k = int(members[np.argmax(guess[members])])
+    system = sp.csc_matrix(sp.identity(n, format="csr") - transposed)
     keep = np.r_[0:k, k + 1:n]
     reduced = sp.csc_matrix(system[keep][:, keep])
     rhs = -system[keep][:, [k]].toarray().ravel()
@@ -151,20 +177,24 @@ def _pinned(matrix: sp.csr_matrix, n: int, *, direct: bool) -> np.ndarray | None
         ilu = sla.spilu(reduced, drop_tol=ILU_DROP_TOLERANCE, fill_factor=ILU_FILL_FACTOR)
     except RuntimeError:  # an exactly singular pivot: leave it to power iteration
         return None
-    solution, info = sla.gmres(reduced, rhs, M=sla.LinearOperator(reduced.shape, ilu.solve), rtol=1e-13, atol=0,
-                               restart=50, maxiter=200)
-    if info != 0 or not np.isfinite(solution).all():
+    start = guess[keep] / guess[k] if guess[k] > 0 else None
+    solution, _ = sla.gmres(reduced, rhs, x0=start, M=sla.LinearOperator(reduced.shape, ilu.solve), rtol=1e-13,
+                            atol=0, restart=50, maxiter=GMRES_MAX_CYCLES)
+    if not np.isfinite(solution).all():
         return None
     pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
     return pi / pi.sum()
 
 
-def _lazy_power(transposed: sp.csr_matrix, n: int) -> tuple[np.ndarray, int]:
-    """Power iteration ``π ← (π + πP)/2`` from uniform; returns (π, steps)."""
-    pi = np.full(n, 1.0 / n)
+def _lazy_power(
+    transposed: sp.csr_matrix, n: int, *, max_steps: int = POWER_MAX_STEPS, start: np.ndarray | None = None
+) -> tuple[np.ndarray, int]:
+    """Power iteration ``π ← (π + πP)/2`` from ``start`` (default uniform), until the residual is at most
+    ``POWER_TOLERANCE`` or ``max_steps`` steps; returns (π, steps)."""
+    pi = np.full(n, 1.0 / n) if start is None else np.array(start, dtype=np.float64)
     steps = 0
-    while steps < POWER_MAX_STEPS:
-        for _ in range(_POWER_CHECK_EVERY):
+    while steps < max_steps:
+        for _ in range(min(_POWER_CHECK_EVERY, max_steps - steps)):
             moved = transposed @ pi
             residual = float(np.abs(moved - pi).sum())
             pi = 0.5 * (pi + moved)

@@ -11,7 +11,7 @@ from typing import Literal
 
 from pydantic import Field, create_model
 
-from worker.report import DIRECT_MAX_STATES, PERCENTILES, TOP_MASS_WARNING
+from worker.report import DIRECT_MAX_STATES, PERCENTILES, POWER_FIRST_STEPS, TOP_MASS_WARNING
 from worker.result_document._types import NestedNumbers, NumberOrLabel, Reported, absent_unless
 
 __all__ = ["CohortReport", "SearchOutcome", "SeriesSummary", "SimulationReport", "StationaryReport", "StopStatus"]
@@ -53,7 +53,10 @@ class StationaryReport(Reported):
         "(preconditioned, one closed class) or power (power iteration on the lazy chain)."
     )
     residual: float = Field(description="‖πP − π‖₁, the distribution's residual (rounding-small for method direct).")
-    steps: int = Field(description="Power-iteration steps (0 unless method is power).")
+    steps: int = Field(
+        description="Power-iteration steps taken (0 for direct; above the direct limit, up to "
+        f"{POWER_FIRST_STEPS:,} come first, so gmres shows them too)."
+    )
 
 
 SeriesSummary = create_model(
