@@ -24,6 +24,7 @@ from fastapi.responses import StreamingResponse
 from pydantic import BaseModel, ConfigDict
 
 from service import webhooks
+from service.accept import wants_csv
 from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_key_of, current_owner
 from service.flat import flat_result
 from service.keys import ApiKey
@@ -324,32 +325,6 @@ def solved_job(store: JobStore, job_id: str, owner: Caller) -> dict[str, Any]:
             progress=record.get("progress"),
         )
     return record
-
-
-def wants_csv(accept: str) -> bool:
-    """True when an Accept header prefers text/csv to JSON: a higher q, or the same q and listed first.
-
-    A header that merely mentions text/csv among others (``application/json, text/csv;q=0.5``) gets JSON.
-    """
-    csv_rank = json_rank = None
-    for position, part in enumerate(accept.split(",")):
-        media, *options = [item.strip() for item in part.split(";")]
-        q = 1.0
-        for option in options:
-            name, _, number = option.partition("=")
-            if name.strip() == "q":
-                try:
-                    q = float(number)
-                except ValueError:
-                    q = 0.0
-        rank = (q, -position)
-        if media.lower() == "text/csv":
-            csv_rank = rank if csv_rank is None else max(csv_rank, rank)
-        elif media.lower() in ("application/json", "application/*", "*/*"):
-            json_rank = rank if json_rank is None else max(json_rank, rank)
-    if csv_rank is None or csv_rank[0] <= 0:
-        return False
-    return json_rank is None or csv_rank > json_rank
 
 
 def _not_ready(record: dict[str, Any]) -> str:
