@@ -79,6 +79,7 @@ from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
 from worker.document.horizon import varies_by_period
 from worker.drawcheck import check_draw_tables
+from worker.drawsteps import DrawGridProblem
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
 from worker.gridproblem import GridProblem
@@ -167,7 +168,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     module = _codegen.load(source)
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
-    problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
+    kind = DrawGridProblem if layout.draws else GridProblem  # draws after the choice: merged nodes (worker.drawsteps)
+    problem = kind(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
     problem.kernel_literals = literals
     problem._warm_up()
     bridge.mark_warm(module.__name__)

@@ -1,0 +1,186 @@
+"""Howard's evaluation steps of a grid model with draws after the choice, over merged nodes.
+
+With draws after the choice (:mod:`worker.draws`) a policy's row holds every
+draw's interpolation corners, ``K · 2^m`` nodes with the draw's probability
+folded into their weights (:meth:`worker._codegen.writer.KernelWriter.nodes`).
+Many of them coincide (a separation that does not move the wage, draws whose
+next values fall on one grid point) and many weigh nothing (a value on a grid
+point has a zero upper weight).  :func:`merge_nodes` turns each row into its
+distinct nodes, weights summed, zero weights dropped, once per policy, so an
+evaluation step reads each distinct node once.
+
+The continuation ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` is the other half of
+a step.  When every row of the shocks' chain is the same (the shocks before
+the choice are iid, or there are none), every ``z`` gets the same row:
+:func:`draw_policy_steps` computes it once, by the operations of
+:func:`worker.kernels.policy_steps` for one row (the same bits), instead of
+``n_shocks`` times.
+
+The merged sums are not the Bellman kernels' sums node by node, so a step may
+differ from :meth:`~worker.gridproblem.GridProblem.policy_step` in the last
+bits; the Bellman step that follows every evaluation phase certifies the
+value whatever the steps did (see :mod:`worker.solvers`), so the error bound
+is unchanged in kind.  The threaded evaluation (from
+``threadpool.THREAD_MIN_STEP_POINTS`` points) stays that of the parent class.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit
+
+from worker import threadpool
+from worker.gridproblem import GridProblem
+
+__all__ = ["DrawGridProblem", "draw_policy_steps", "identical_rows", "merge_nodes"]
+
+
+def identical_rows(P: np.ndarray) -> bool:
+    """True when every row of the chain ``P`` equals the first, bit for bit (an iid chain, or one shock state)."""
+    return bool(P.shape[0] <= 1 or (P == P[:1]).all())
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def merge_nodes(
+    node_index: np.ndarray, node_weight: np.ndarray, out_index: np.ndarray, out_weight: np.ndarray,
+    out_count: np.ndarray,
+) -> None:
+    """Each row's distinct nodes with their weights summed (in the order the nodes first appear), zeros dropped.
+
+    Parameters
+    ----------
+    node_index, node_weight : (n, K) int64, float64
+    out_index, out_weight : (n, K) int64, float64, written in the first ``out_count[i]`` places of row ``i``
+    out_count : (n,) int64
+    """
+    n, nodes = node_index.shape
+    for i in range(n):
+        count = 0
+        for k in range(nodes):
+            w = node_weight[i, k]
+            if w == 0.0:
+                continue
+            x = node_index[i, k]
+            j = 0
+            while j < count and out_index[i, j] != x:
+                j += 1
+            if j < count:
+                out_weight[i, j] += w
+            else:
+                out_index[i, count] = x
+                out_weight[i, count] = w
+                count += 1
+        out_count[i] = count
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def draw_policy_steps(
+    reward: np.ndarray,
+    count: np.ndarray,
+    node_index: np.ndarray,
+    node_weight: np.ndarray,
+    P: np.ndarray,
+    same_rows: bool,
+    beta: float,
+    v: np.ndarray,
+    steps: int,
+    span_stop: float,
+    EVt: np.ndarray,
+    spare: np.ndarray,
+) -> tuple[int, float]:
+    """Up to ``steps`` evaluation steps ``v ← r_σ + β P_σ v`` in place, over merged nodes.
+
+    As :func:`worker.kernels.policy_steps` (the span stop, the two buffers, the
+    result in ``v``), with row ``i`` reading its first ``count[i]`` nodes, and
+    with ``same_rows`` (every row of ``P`` the same) one continuation row,
+    ``EVt[0]``, for every shock state.
+    """
+    n_shocks = P.shape[0]
+    n_grid = reward.shape[0] // n_shocks
+    rows = 1 if same_rows else n_shocks
+    done = 0
+    span = np.inf
+    source = v
+    target = spare
+    while done < steps:
+        for z in range(rows):
+            row = EVt[z]
+            for x in range(n_grid):
+                row[x] = 0.0
+            for zz in range(n_shocks):
+                p = P[z, zz]
+                if p != 0.0:
+                    for x in range(n_grid):
+                        row[x] += p * source[x * n_shocks + zz]
+        low = np.inf
+        high = -np.inf
+        for x in range(n_grid):
+            for z in range(n_shocks):
+                i = x * n_shocks + z
+                zr = 0 if same_rows else z
+                expected = 0.0
+                for k in range(count[i]):
+                    expected += node_weight[i, k] * EVt[zr, node_index[i, k]]
+                value = reward[i] + beta * expected
+                step = value - source[i]
+                low = min(low, step)
+                high = max(high, step)
+                target[i] = value
+        span = high - low
+        source, target = target, source
+        done += 1
+        if span <= span_stop:
+            break
+    if done % 2 == 1:
+        for i in range(v.shape[0]):
+            v[i] = spare[i]
+    return done, span
+
+
+class DrawGridProblem(GridProblem):
+    """A :class:`~worker.gridproblem.GridProblem` with draws after the choice: evaluation steps over merged nodes."""
+
+    _merged: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+
+    def _merged_nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+        """``(r_σ, count, node index, node weight)`` of ``policy``, nodes merged; cached for the last policy."""
+        reward, index, weight = self._evaluated(policy)
+        flat = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
+        merged = self._merged
+        if merged is not None and np.array_equal(merged[0], flat):
+            return reward, merged[1], merged[2], merged[3]
+        count = np.empty(self.n, dtype=np.int64)
+        out_index = np.empty_like(index)
+        out_weight = np.empty_like(weight)
+        merge_nodes(index, weight, out_index, out_weight, count)
+        self._merged = (flat.copy(), count, out_index, out_weight)
+        return reward, count, out_index, out_weight
+
+    def policy_steps(
+        self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
+    ) -> tuple[np.ndarray, int, float]:
+        """As :meth:`GridProblem.policy_steps`, over merged nodes and, for an iid chain, one continuation row."""
+        if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
+            return GridProblem.policy_steps(self, v, policy, steps, span_stop)
+        reward, count, index, weight = self._merged_nodes(policy)
+        out = np.array(v, dtype=np.float64).reshape(self.n)
+        if self._step_scratch is None:
+            self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
+        EVt, spare = self._step_scratch
+        transition = self._data.transition
+        done, span = draw_policy_steps(
+            reward, count, index, weight, transition, identical_rows(transition), self.discount, out, int(steps),
+            float(span_stop), EVt, spare,
+        )
+        return out, int(done), float(span)
+
+    def _warm_up(self) -> None:
+        super()._warm_up()
+        nodes = self._layout.nodes
+        index, weight = np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes))
+        count = np.empty(0, dtype=np.int64)
+        merge_nodes(index, weight, index, weight, count)
+        empty = np.empty(0)
+        EVt = np.zeros((self._data.n_shocks, 0))
+        draw_policy_steps(empty, count, index, weight, self._data.transition, True, self.discount, empty, 1,
+                          -np.inf, EVt, empty)
