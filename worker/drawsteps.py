@@ -32,7 +32,21 @@ from numba import njit
 from worker import threadpool
 from worker.gridproblem import GridProblem
 
-__all__ = ["DrawGridProblem", "draw_policy_steps", "identical_rows", "merge_nodes"]
+__all__ = ["DrawGridProblem", "draw_policy_steps", "identical_rows", "merge_nodes", "merged_rows"]
+
+
+def merged_rows(index: np.ndarray, weight: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """CSR ``(indptr, node index, node weight)`` of rows of nodes ``(n, K)``, each row's nodes merged by
+    :func:`merge_nodes`."""
+    n = index.shape[0]
+    count = np.empty(n, dtype=np.int64)
+    out_index = np.empty_like(index)
+    out_weight = np.empty_like(weight)
+    merge_nodes(index, weight, out_index, out_weight, count)
+    indptr = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum(count, out=indptr[1:])
+    keep = np.arange(index.shape[1]) < count[:, None]
+    return indptr, out_index[keep], out_weight[keep]
 
 
 def identical_rows(P: np.ndarray) -> bool:
@@ -76,7 +90,7 @@ def merge_nodes(
 @njit(cache=True, nogil=True, error_model="numpy")
 def draw_policy_steps(
     reward: np.ndarray,
-    count: np.ndarray,
+    indptr: np.ndarray,
     node_index: np.ndarray,
     node_weight: np.ndarray,
     P: np.ndarray,
@@ -91,13 +105,14 @@ def draw_policy_steps(
     """Up to ``steps`` evaluation steps ``v ← r_σ + β P_σ v`` in place, over merged nodes.
 
     As :func:`worker.kernels.policy_steps` (the span stop, the two buffers, the
-    result in ``v``), with row ``i`` reading its first ``count[i]`` nodes, and
+    result in ``v``), with row ``i`` reading its merged nodes ``indptr[i]:indptr[i + 1]`` (:func:`merged_rows`), and
     with ``same_rows`` (every row of ``P`` the same) one continuation row,
     ``EVt[0]``, for every shock state.
     """
     n_shocks = P.shape[0]
     n_grid = reward.shape[0] // n_shocks
     rows = 1 if same_rows else n_shocks
+    flat = EVt.reshape(-1)
     done = 0
     span = np.inf
     source = v
@@ -106,26 +121,28 @@ def draw_policy_steps(
         for z in range(rows):
             row = EVt[z]
             for x in range(n_grid):
-                row[x] = 0.0
-            for zz in range(n_shocks):
-                p = P[z, zz]
-                if p != 0.0:
-                    for x in range(n_grid):
-                        row[x] += p * source[x * n_shocks + zz]
+                # Contiguous in z': the sum over tomorrow's shocks in order, from 0.0, zero probabilities skipped.
+                total = 0.0
+                start = x * n_shocks
+                for zz in range(n_shocks):
+                    p = P[z, zz]
+                    if p != 0.0:
+                        total += p * source[start + zz]
+                row[x] = total
         low = np.inf
         high = -np.inf
-        for x in range(n_grid):
-            for z in range(n_shocks):
-                i = x * n_shocks + z
-                zr = 0 if same_rows else z
-                expected = 0.0
-                for k in range(count[i]):
-                    expected += node_weight[i, k] * EVt[zr, node_index[i, k]]
-                value = reward[i] + beta * expected
-                step = value - source[i]
-                low = min(low, step)
-                high = max(high, step)
-                target[i] = value
+        for i in range(reward.shape[0]):
+            offset = 0 if same_rows else (i % n_shocks) * n_grid
+            expected = 0.0
+            for k in range(indptr[i], indptr[i + 1]):
+                expected += node_weight[k] * flat[offset + node_index[k]]
+            value = reward[i] + beta * expected
+            step = value - source[i]
+            if step < low:
+                low = step
+            if step > high:
+                high = step
+            target[i] = value
         span = high - low
         source, target = target, source
         done += 1
@@ -143,18 +160,15 @@ class DrawGridProblem(GridProblem):
     _merged: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
 
     def _merged_nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-        """``(r_σ, count, node index, node weight)`` of ``policy``, nodes merged; cached for the last policy."""
+        """``(r_σ, indptr, node index, node weight)`` of ``policy``, nodes merged (CSR); cached for the last policy."""
         reward, index, weight = self._evaluated(policy)
         flat = np.ascontiguousarray(policy, dtype=np.int64).reshape(self.n)
         merged = self._merged
         if merged is not None and np.array_equal(merged[0], flat):
             return reward, merged[1], merged[2], merged[3]
-        count = np.empty(self.n, dtype=np.int64)
-        out_index = np.empty_like(index)
-        out_weight = np.empty_like(weight)
-        merge_nodes(index, weight, out_index, out_weight, count)
-        self._merged = (flat.copy(), count, out_index, out_weight)
-        return reward, count, out_index, out_weight
+        merged = merged_rows(index, weight)
+        self._merged = (flat.copy(), *merged)
+        return (reward, *merged)
 
     def policy_steps(
         self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
@@ -162,14 +176,14 @@ class DrawGridProblem(GridProblem):
         """As :meth:`GridProblem.policy_steps`, over merged nodes and, for an iid chain, one continuation row."""
         if self.threads > 1 and self.n >= threadpool.THREAD_MIN_STEP_POINTS:
             return GridProblem.policy_steps(self, v, policy, steps, span_stop)
-        reward, count, index, weight = self._merged_nodes(policy)
+        reward, indptr, index, weight = self._merged_nodes(policy)
         out = np.array(v, dtype=np.float64).reshape(self.n)
         if self._step_scratch is None:
             self._step_scratch = (np.empty((self._data.n_shocks, self._data.n_grid)), np.empty(self.n))
         EVt, spare = self._step_scratch
         transition = self._data.transition
         done, span = draw_policy_steps(
-            reward, count, index, weight, transition, identical_rows(transition), self.discount, out, int(steps),
+            reward, indptr, index, weight, transition, identical_rows(transition), self.discount, out, int(steps),
             float(span_stop), EVt, spare,
         )
         return out, int(done), float(span)
@@ -178,9 +192,8 @@ class DrawGridProblem(GridProblem):
         super()._warm_up()
         nodes = self._layout.nodes
         index, weight = np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes))
-        count = np.empty(0, dtype=np.int64)
-        merge_nodes(index, weight, index, weight, count)
+        indptr, flat_index, flat_weight = merged_rows(index, weight)
         empty = np.empty(0)
         EVt = np.zeros((self._data.n_shocks, 0))
-        draw_policy_steps(empty, count, index, weight, self._data.transition, True, self.discount, empty, 1,
+        draw_policy_steps(empty, indptr, flat_index, flat_weight, self._data.transition, True, self.discount, empty, 1,
                           -np.inf, EVt, empty)

@@ -79,6 +79,7 @@ from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
 from worker.document.horizon import varies_by_period
 from worker.drawcheck import check_draw_tables
+from worker.drawkernel import draw_tables
 from worker.drawsteps import DrawGridProblem
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
@@ -194,6 +195,8 @@ def _tables(
     """
     if compiled and static:
         tables, counts = static_tables(data, static, climb=climb)
+    elif compiled and data.draws is not None and None in data.setter:
+        tables, counts = draw_tables(data)  # draws after the choice, filled in compiled code (worker.drawkernel)
     else:
         tables, counts = precompute_tables(data, static)
     stuck = np.flatnonzero(~counts["any_allowed"])
