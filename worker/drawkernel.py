@@ -111,7 +111,6 @@ class DrawWriter(KernelWriter):
 
 def draw_source(writer: DrawWriter) -> str:
     """Source of the module with ``draw_fill`` for the ``expr`` layout, model and draws of ``writer``."""
-    interp = writer.layout.interpolated
     sizes = [len(entries) for entries in writer.probs]
     out = Lines()
     out.add(
@@ -295,8 +294,6 @@ def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
     per_row = np.empty((n, 6), dtype=np.int64)
     threads = threadpool.threads_for(n, n_choices)
     blocks = threadpool.row_blocks(n, threads * threadpool.BLOCKS_PER_THREAD if threads > 1 else 1)
-    global LAST
-    LAST = (module, ctx, DV, DQ, R, lower, weight, probability, per_row)
     threadpool.run_blocks(
         lambda start, stop: module.draw_fill(ctx, DV, DQ, ROW_SUM_TOLERANCE, R, lower, weight, probability, per_row,
                                              start, stop),
