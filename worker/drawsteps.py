@@ -39,7 +39,10 @@ DENSE_SOLVE_MAX_GRID = 400
 """Grid states up to which the reduced policy system is solved dense (LAPACK), above it by sparse LU (count;
 80 grid states took about 0.1 ms dense here; a dense solve grows with the cube)."""
 
-__all__ = ["DENSE_SOLVE_MAX_GRID", "DrawGridProblem", "reduced_policy_value", "draw_policy_steps", "identical_rows", "merge_nodes", "merged_rows"]
+__all__ = [
+    "DENSE_SOLVE_MAX_GRID", "DrawGridProblem", "draw_policy_steps", "identical_rows", "merge_nodes", "merged_rows",
+    "reduced_policy_value",
+]
 
 
 def merged_rows(index: np.ndarray, weight: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
