@@ -251,6 +251,29 @@ def _probabilities(writer: DrawWriter, out: Lines, sizes: list[int]) -> None:
             out.add(f"Q_{t}[j] = max(Q_{t}[j], 0.0) if feas else 0.0")
 
 
+@functools.lru_cache(maxsize=64)
+def _module_text(
+    source: ModelSource, setter: tuple[int | None, ...], names: tuple[str, ...], dependent: frozenset[str],
+    probs: tuple[tuple[Expression | None, ...], ...],
+) -> tuple[str, tuple[float, ...]]:
+    """The kernel module's text and the numbers lifted out of the expressions (``probs``: per draw, each entry's
+    expression or None for a number).  Kept by structure: a solve of the same model writes nothing again."""
+    # The probabilities' expressions go through the lifting with the model's, after its feasibility.
+    listed = tuple(e for entries in probs for e in entries if e is not None)
+    wide = ModelSource(source.params, source.states, source.shocks, source.choices, source.defines, source.reward,
+                       source.feasible + listed, source.next)
+    kernel_model, literals = _codegen.lift_literals(wide)
+    count = len(source.feasible)
+    lifted = iter(kernel_model.feasible[count:])
+    kernel_probs = [[None if e is None else next(lifted) for e in entries] for entries in probs]
+    kernel_model = ModelSource(kernel_model.params, kernel_model.states, kernel_model.shocks,
+                               kernel_model.choices, kernel_model.defines, kernel_model.reward,
+                               kernel_model.feasible[:count], kernel_model.next)
+    layout = _codegen.layout_for(setter, len(source.shocks), len(source.choices), "expr", False)
+    writer = DrawWriter(layout, kernel_model, names, dependent, kernel_probs)
+    return draw_source(writer), literals
+
+
 def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
     """The tables and counts of ``precompute_tables(data)`` for a model with draws after the choice and an
     interpolated state, filled by the generated kernel (the numpy fill raises the error of wrong probabilities)."""
@@ -259,22 +282,9 @@ def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
         raise ValueError("draw_tables needs draws after the choice and a state moved by a next expression")
     if any(data.state_grids[t].size < 2 for t, j in enumerate(data.setter) if j is None):
         return precompute_tables(data)  # a one-point grid cannot be interpolated on: numpy's error
-    probs = [[e if isinstance(e, Expression) else None for e in entries] for entries in draws.probs]
-    # The probabilities' expressions go through the lifting with the model's, after its feasibility.
-    listed = [e for entries in probs for e in entries if e is not None]
-    wide = ModelSource(data.source.params, data.source.states, data.source.shocks, data.source.choices,
-                       data.source.defines, data.source.reward, data.source.feasible + tuple(listed),
-                       data.source.next)
-    kernel_model, literals = _codegen.lift_literals(wide)
-    count = len(data.source.feasible)
-    lifted = iter(kernel_model.feasible[count:])
-    probs = [[None if e is None else next(lifted) for e in entries] for entries in probs]
-    kernel_model = ModelSource(kernel_model.params, kernel_model.states, kernel_model.shocks,
-                               kernel_model.choices, kernel_model.defines, kernel_model.reward,
-                               kernel_model.feasible[:count], kernel_model.next)
-    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "expr", False)
-    writer = DrawWriter(layout, kernel_model, draws.names, draws.dependent, probs)
-    module = _codegen.load(draw_source(writer))
+    probs = tuple(tuple(e if isinstance(e, Expression) else None for e in entries) for entries in draws.probs)
+    text, literals = _module_text(data.source, data.setter, draws.names, draws.dependent, probs)
+    module = _codegen.load(text)
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, None)
     widest = max(v.size for v in draws.values)
