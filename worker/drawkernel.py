@@ -124,7 +124,7 @@ def draw_source(writer: DrawWriter) -> str:
         "",
     )
     out.add(JIT)
-    with out.block("def draw_fill(ctx, DV, DQ, tol, out_R, out_lo, out_w, out_pd, out_counts, start, stop):"):
+    with out.block("def draw_fill(ctx, DV, DQ, tol, out_R, out_lo, out_w, out_pd, out_cl, out_counts, start, stop):"):
         out.add("p = ctx[0]", "sgrid = ctx[1]", "ztab = ctx[2]", "cgrid = ctx[3]", "meta = ctx[4]")
         writer.params(out)
         out.add("NZ = ztab.shape[0]")
@@ -169,7 +169,7 @@ def draw_source(writer: DrawWriter) -> str:
                         out.add("clamped = True")
                 out.add("kd += 1")
                 out.depth -= len(sizes)
-                out.add("ok = feas and reward - reward == 0.0 and not nan_next")
+                out.add("ok = feas and reward - reward == 0.0 and not nan_next", "out_cl[i, c] = clamped")
                 with out.block("if feas:"):
                     out.add("feasible_any += 1")
                 with out.block("if ok:"):
@@ -276,7 +276,11 @@ def _module_text(
 
 def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
     """The tables and counts of ``precompute_tables(data)`` for a model with draws after the choice and an
-    interpolated state, filled by the generated kernel (the numpy fill raises the error of wrong probabilities)."""
+    interpolated state, filled by the generated kernel (the numpy fill raises the error of wrong probabilities).
+
+    The counts also hold ``clamped_pairs`` (n, C) bool: whether some draw that can happen takes the pair's
+    next value off its grid (``diagnostics.clamped_next`` at the policy reads it).
+    """
     draws = data.draws
     if draws is None or None not in data.setter:
         raise ValueError("draw_tables needs draws after the choice and a state moved by a next expression")
@@ -301,12 +305,13 @@ def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
     lower = np.empty((n, n_choices, k_draws, len(interpolated)), dtype=np.int32)
     weight = np.empty((n, n_choices, k_draws, len(interpolated)))
     probability = np.empty((n, n_choices, k_draws))
+    clamped = np.empty((n, n_choices), dtype=np.bool_)
     per_row = np.empty((n, 6), dtype=np.int64)
     threads = threadpool.threads_for(n, n_choices)
     blocks = threadpool.row_blocks(n, threads * threadpool.BLOCKS_PER_THREAD if threads > 1 else 1)
     threadpool.run_blocks(
-        lambda start, stop: module.draw_fill(ctx, DV, DQ, ROW_SUM_TOLERANCE, R, lower, weight, probability, per_row,
-                                             start, stop),
+        lambda start, stop: module.draw_fill(ctx, DV, DQ, ROW_SUM_TOLERANCE, R, lower, weight, probability, clamped,
+                                             per_row, start, stop),
         blocks,
         threads,
     )
@@ -327,5 +332,6 @@ def draw_tables(data: ModelData) -> tuple[RewardTables, dict[str, Any]]:
         "any_feasible": per_row[:, 4] > 0,
         "any_allowed": per_row[:, 0] > 0,
         "static_pick": None,
+        "clamped_pairs": clamped,
     }
     return (R, next_base, lower, weight, probability), counts

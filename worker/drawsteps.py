@@ -239,6 +239,15 @@ class DrawGridProblem(GridProblem):
         reward, indptr, index, weight = self._merged_nodes(policy)
         return reduced_policy_value(reward, indptr, index, weight, transition[0], self.discount)
 
+    def _clamped_at_policy_numpy(self, policy: np.ndarray) -> int:
+        """Points whose policy's next value leaves a grid for some draw that can happen: read from the tables'
+        flags when the compiled fill (:mod:`worker.drawkernel`) made them, else evaluated with numpy."""
+        pairs = self._counts.get("clamped_pairs")
+        if pairs is None:
+            return super()._clamped_at_policy_numpy(policy)
+        flat = np.asarray(policy, dtype=np.int64).reshape(self.n)
+        return int(np.count_nonzero(pairs[np.arange(self.n), flat]))
+
     def _warm_up(self) -> None:
         super()._warm_up()
         nodes = self._layout.nodes
