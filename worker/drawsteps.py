@@ -40,23 +40,21 @@ DENSE_SOLVE_MAX_GRID = 400
 80 grid states took about 0.1 ms dense here; a dense solve grows with the cube)."""
 
 __all__ = [
-    "DENSE_SOLVE_MAX_GRID", "DrawGridProblem", "draw_policy_steps", "identical_rows", "merge_nodes", "merged_rows",
-    "reduced_policy_value",
+    "DENSE_SOLVE_MAX_GRID", "DrawGridProblem", "draw_policy_steps", "expand_value", "identical_rows", "merge_nodes",
+    "merged_rows", "reduced_policy_value", "reduced_system",
 ]
 
 
 def merged_rows(index: np.ndarray, weight: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """CSR ``(indptr, node index, node weight)`` of rows of nodes ``(n, K)``, each row's nodes merged by
     :func:`merge_nodes`."""
-    n = index.shape[0]
-    count = np.empty(n, dtype=np.int64)
-    out_index = np.empty_like(index)
-    out_weight = np.empty_like(weight)
-    merge_nodes(index, weight, out_index, out_weight, count)
-    indptr = np.zeros(n + 1, dtype=np.int64)
-    np.cumsum(count, out=indptr[1:])
-    keep = np.arange(index.shape[1]) < count[:, None]
-    return indptr, out_index[keep], out_weight[keep]
+    n, nodes = index.shape
+    indptr = np.empty(n + 1, dtype=np.int64)
+    out_index = np.empty(n * nodes, dtype=np.int64)
+    out_weight = np.empty(n * nodes)
+    merge_nodes(index, weight, indptr, out_index, out_weight)
+    used = int(indptr[n])
+    return indptr, out_index[:used], out_weight[:used]
 
 
 def identical_rows(P: np.ndarray) -> bool:
@@ -66,35 +64,69 @@ def identical_rows(P: np.ndarray) -> bool:
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def merge_nodes(
-    node_index: np.ndarray, node_weight: np.ndarray, out_index: np.ndarray, out_weight: np.ndarray,
-    out_count: np.ndarray,
+    node_index: np.ndarray, node_weight: np.ndarray, indptr: np.ndarray, out_index: np.ndarray,
+    out_weight: np.ndarray,
 ) -> None:
-    """Each row's distinct nodes with their weights summed (in the order the nodes first appear), zeros dropped.
+    """Each row's distinct nodes, weights summed (in the order the nodes first appear), zero weights dropped, as
+    CSR rows ``indptr[i]:indptr[i + 1]`` of ``out_index``, ``out_weight``.
 
     Parameters
     ----------
     node_index, node_weight : (n, K) int64, float64
-    out_index, out_weight : (n, K) int64, float64, written in the first ``out_count[i]`` places of row ``i``
-    out_count : (n,) int64
+    indptr : (n + 1,) int64, written
+    out_index, out_weight : (n · K,) int64, float64, written in their first ``indptr[n]`` places
     """
     n, nodes = node_index.shape
+    used = 0
+    indptr[0] = 0
     for i in range(n):
-        count = 0
+        first = used
         for k in range(nodes):
             w = node_weight[i, k]
             if w == 0.0:
                 continue
             x = node_index[i, k]
-            j = 0
-            while j < count and out_index[i, j] != x:
+            j = first
+            while j < used and out_index[j] != x:
                 j += 1
-            if j < count:
-                out_weight[i, j] += w
+            if j < used:
+                out_weight[j] += w
             else:
-                out_index[i, count] = x
-                out_weight[i, count] = w
-                count += 1
-        out_count[i] = count
+                out_index[used] = x
+                out_weight[used] = w
+                used += 1
+        indptr[i + 1] = used
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def reduced_system(
+    reward: np.ndarray, indptr: np.ndarray, index: np.ndarray, weight: np.ndarray, q: np.ndarray, M: np.ndarray,
+    b: np.ndarray,
+) -> None:
+    """``M = Q W`` (dense, zeroed first) and ``b = Q r`` of :func:`reduced_policy_value`, summed over the shock
+    states in order."""
+    n_shocks = q.shape[0]
+    M[:, :] = 0.0
+    b[:] = 0.0
+    for i in range(reward.shape[0]):
+        x = i // n_shocks
+        qz = q[i - x * n_shocks]
+        b[x] += qz * reward[i]
+        for k in range(indptr[i], indptr[i + 1]):
+            M[x, index[k]] += qz * weight[k]
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def expand_value(
+    reward: np.ndarray, indptr: np.ndarray, index: np.ndarray, weight: np.ndarray, e: np.ndarray, beta: float,
+    out: np.ndarray,
+) -> None:
+    """``out = r + β W e``: each point's merged nodes read from the grid states' continuation ``e``."""
+    for i in range(reward.shape[0]):
+        total = 0.0
+        for k in range(indptr[i], indptr[i + 1]):
+            total += weight[k] * e[index[k]]
+        out[i] = reward[i] + beta * total
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -180,20 +212,23 @@ def reduced_policy_value(
     n_grid = n // n_shocks
     if n_grid > DIRECT_SOLVE_MAX_POINTS:
         return None
-    points = np.repeat(np.arange(n, dtype=np.int64), np.diff(indptr))
-    rows = points // n_shocks
-    mixed = weight * q[points % n_shocks]
-    b = reward.reshape(n_grid, n_shocks) @ q
     if n_grid <= DENSE_SOLVE_MAX_GRID:
-        M = np.bincount(rows * n_grid + index, weights=mixed, minlength=n_grid * n_grid).reshape(n_grid, n_grid)
-        e = np.linalg.solve(np.eye(n_grid) - beta * M, b)
+        M = np.empty((n_grid, n_grid))
+        b = np.empty(n_grid)
+        reduced_system(reward, indptr, index, weight, q, M, b)
+        np.multiply(M, -beta, out=M)
+        M[np.diag_indices(n_grid)] += 1.0
+        e = np.linalg.solve(M, b)
     else:
+        points = np.repeat(np.arange(n, dtype=np.int64), np.diff(indptr))
+        rows = points // n_shocks
+        mixed = weight * q[points % n_shocks]
+        b = reward.reshape(n_grid, n_shocks) @ q
         M = sp.csr_matrix((mixed, (rows, index)), shape=(n_grid, n_grid))
         e = spla.spsolve((sp.identity(n_grid, format="csr") - beta * M).tocsc(), b)
-    e = np.asarray(e, dtype=np.float64).reshape(n_grid)
-    continuation = np.add.reduceat(weight * e[index], indptr[:-1]) if index.size else np.zeros(n)
-    continuation[np.diff(indptr) == 0] = 0.0  # reduceat repeats the next entry for an empty row
-    return reward + beta * continuation
+    out = np.empty(n)
+    expand_value(reward, indptr, index, weight, np.ascontiguousarray(e, dtype=np.float64).reshape(n_grid), beta, out)
+    return out
 
 
 class DrawGridProblem(GridProblem):
@@ -254,6 +289,8 @@ class DrawGridProblem(GridProblem):
         index, weight = np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes))
         indptr, flat_index, flat_weight = merged_rows(index, weight)
         empty = np.empty(0)
+        reduced_system(empty, indptr, flat_index, flat_weight, np.ones(1), np.empty((0, 0)), empty)
+        expand_value(empty, indptr, flat_index, flat_weight, empty, self.discount, empty)
         EVt = np.zeros((self._data.n_shocks, 0))
         draw_policy_steps(empty, indptr, flat_index, flat_weight, self._data.transition, True, self.discount, empty, 1,
                           -np.inf, EVt, empty)
