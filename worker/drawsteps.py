@@ -47,14 +47,16 @@ __all__ = [
 
 def merged_rows(index: np.ndarray, weight: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """CSR ``(indptr, node index, node weight)`` of rows of nodes ``(n, K)``, each row's nodes merged by
-    :func:`merge_nodes`."""
-    n, nodes = index.shape
+    :func:`merge_nodes`, in arrays of the exact size (a first pass counts: memory the size of the nodes'
+    table, fresh for each policy, cost more in page faults than the counting)."""
+    n = index.shape[0]
     indptr = np.empty(n + 1, dtype=np.int64)
-    out_index = np.empty(n * nodes, dtype=np.int64)
-    out_weight = np.empty(n * nodes)
-    merge_nodes(index, weight, indptr, out_index, out_weight)
+    merge_nodes(index, weight, indptr, np.empty(0, dtype=np.int64), np.empty(0), False)
     used = int(indptr[n])
-    return indptr, out_index[:used], out_weight[:used]
+    out_index = np.empty(used, dtype=np.int64)
+    out_weight = np.empty(used)
+    merge_nodes(index, weight, indptr, out_index, out_weight, True)
+    return indptr, out_index, out_weight
 
 
 def identical_rows(P: np.ndarray) -> bool:
@@ -65,16 +67,17 @@ def identical_rows(P: np.ndarray) -> bool:
 @njit(cache=True, nogil=True, error_model="numpy")
 def merge_nodes(
     node_index: np.ndarray, node_weight: np.ndarray, indptr: np.ndarray, out_index: np.ndarray,
-    out_weight: np.ndarray,
+    out_weight: np.ndarray, fill: bool,
 ) -> None:
     """Each row's distinct nodes, weights summed (in the order the nodes first appear), zero weights dropped, as
-    CSR rows ``indptr[i]:indptr[i + 1]`` of ``out_index``, ``out_weight``.
+    CSR rows ``indptr[i]:indptr[i + 1]`` of ``out_index``, ``out_weight``; without ``fill`` only ``indptr``.
 
     Parameters
     ----------
     node_index, node_weight : (n, K) int64, float64
     indptr : (n + 1,) int64, written
-    out_index, out_weight : (n · K,) int64, float64, written in their first ``indptr[n]`` places
+    out_index, out_weight : (indptr[n],) int64, float64, written when ``fill``
+    fill : bool
     """
     n, nodes = node_index.shape
     used = 0
@@ -86,14 +89,21 @@ def merge_nodes(
             if w == 0.0:
                 continue
             x = node_index[i, k]
-            j = first
-            while j < used and out_index[j] != x:
-                j += 1
-            if j < used:
-                out_weight[j] += w
+            seen = False
+            for kk in range(k):
+                if node_weight[i, kk] != 0.0 and node_index[i, kk] == x:
+                    seen = True
+                    break
+            if seen:
+                if fill:
+                    j = first
+                    while out_index[j] != x:
+                        j += 1
+                    out_weight[j] += w
             else:
-                out_index[used] = x
-                out_weight[used] = w
+                if fill:
+                    out_index[used] = x
+                    out_weight[used] = w
                 used += 1
         indptr[i + 1] = used
 
@@ -287,7 +297,7 @@ class DrawGridProblem(GridProblem):
         super()._warm_up()
         nodes = self._layout.nodes
         index, weight = np.empty((0, nodes), dtype=np.int64), np.empty((0, nodes))
-        indptr, flat_index, flat_weight = merged_rows(index, weight)
+        indptr, flat_index, flat_weight = merged_rows(index, weight)  # compiles merge_nodes
         empty = np.empty(0)
         reduced_system(empty, indptr, flat_index, flat_weight, np.ones(1), np.empty((0, 0)), empty)
         expand_value(empty, indptr, flat_index, flat_weight, empty, self.discount, empty)
