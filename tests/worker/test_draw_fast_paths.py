@@ -341,3 +341,17 @@ def test_policy_iteration_through_the_reduced_solve_matches_value_iteration_on_t
     result = solve(grid_document(job_search(), discount=BETA, method="policy_iteration", tolerance=1e-9))
     assert result["status"] == "converged" and result["linear_solves"] >= 1
     assert np.abs(np.asarray(result["value"]).reshape(-1) - v).max() <= max(result["error_bound"], 1e-9)
+
+
+def test_the_compiled_fill_on_several_threads_gives_the_same_tables(monkeypatch):
+    from worker import threadpool
+
+    data = data_of(job_search())
+    expected, expected_counts = precompute_tables(data)
+    monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
+    monkeypatch.setenv("FIXQ_SOLVE_THREADS", "3")
+    assert threadpool.threads_for(data.n, data.n_choices) == 3
+    tables, counts = draw_tables(data)
+    for got, want in zip(tables, expected):
+        np.testing.assert_array_equal(got, want)
+    assert counts["allowed"] == expected_counts["allowed"] and counts["clamped"] == expected_counts["clamped"]
