@@ -1,4 +1,4 @@
-"""Howard's evaluation steps of a grid model with draws after the choice, over merged nodes.
+"""Policy evaluation of a grid model with draws after the choice: merged nodes, one continuation row, a reduced solve.
 
 With draws after the choice (:mod:`worker.draws`) a policy's row holds every
 draw's interpolation corners, ``K · 2^m`` nodes with the draw's probability
@@ -12,9 +12,15 @@ evaluation step reads each distinct node once.
 The continuation ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` is the other half of
 a step.  When every row of the shocks' chain is the same (the shocks before
 the choice are iid, or there are none), every ``z`` gets the same row:
-:func:`draw_policy_steps` computes it once, by the operations of
-:func:`worker.kernels.policy_steps` for one row (the same bits), instead of
-``n_shocks`` times.
+:func:`draw_policy_steps` computes it once instead of ``n_shocks`` times (on
+the job-search benchmark, 40 offers, a step went from about 40 µs to 7 µs).
+
+With such a chain, policy iteration's exact evaluation needs no system over
+every point: the value is ``v = r + β W e`` with ``e`` the expected value of
+each grid state, which solves a system of the grid states' size
+(:func:`reduced_policy_value`, offered to the solvers as
+``exact_policy_value``; 80 × 80 on the benchmark where the full system is
+3,200 × 3,200 with 40 entries per node).
 
 The merged sums are not the Bellman kernels' sums node by node, so a step may
 differ from :meth:`~worker.gridproblem.GridProblem.policy_step` in the last
@@ -22,6 +28,8 @@ bits; the Bellman step that follows every evaluation phase certifies the
 value whatever the steps did (see :mod:`worker.solvers`), so the error bound
 is unchanged in kind.  The threaded evaluation (from
 ``threadpool.THREAD_MIN_STEP_POINTS`` points) stays that of the parent class.
+The count of clamped next values at the policy reads the flags the compiled
+fill of the tables made (:mod:`worker.drawkernel`).
 """
 
 from __future__ import annotations
