@@ -355,3 +355,33 @@ def test_the_compiled_fill_on_several_threads_gives_the_same_tables(monkeypatch)
     for got, want in zip(tables, expected):
         np.testing.assert_array_equal(got, want)
     assert counts["allowed"] == expected_counts["allowed"] and counts["clamped"] == expected_counts["clamped"]
+
+
+def test_the_compiled_fill_follows_defines_of_choices_transforms_and_numbers_in_probabilities():
+    # An invented orchard: trees 0..6 (a state moved by a next expression), a persistent frost risk seen
+    # before the choice, a spray choice; the harvest factor (log values, exp transform) is drawn after the
+    # choice with probabilities that use a define of the choice and the state; a second draw has fixed numbers.
+    model = {
+        "params": {"price": 1.5, "spray_cost": 0.4},
+        "states": {"trees": {"min": 0, "max": 6, "points": 7}},
+        "shocks": {
+            "frost": {"markov": {"values": [0.0, 1.0], "matrix": [[0.9, 0.1], [0.4, 0.6]]}},
+            "harvest": {"iid": {"values": [-0.5, 0.0, 0.3], "probs": [
+                "0.2 + 0.1 * frost - 0.1 * care", "0.5", "0.3 - 0.1 * frost + 0.1 * care"]},
+                "transform": "exp", "timing": "after_choice"},
+            "storm": {"iid": {"values": [0, 1], "probs": [0.85, 0.15]}, "timing": "after_choice"},
+        },
+        "choices": {"spray": {"values": [0, 1]}, "plant": {"values": [0, 1, 2]}},
+        "define": {"care": "spray * min(trees, 4) / 4", "crop": "harvest * trees * (1 - 0.5 * storm)"},
+        "feasible": ["trees + plant <= 7"],
+        "next": {"trees": "min(trees + plant - storm * (trees > 2), 6.5)"},
+        "reward": "price * crop - spray_cost * spray * trees - 0.3 * plant ** 2",
+    }
+    data = data_of(model)
+    expected, expected_counts = precompute_tables(data)
+    tables, counts = draw_tables(data)
+    for got, want in zip(tables, expected):
+        np.testing.assert_array_equal(got, want)
+    for key in ("allowed", "bad", "bad_example", "clamped"):
+        assert counts[key] == expected_counts[key], key
+    assert counts["clamped"] > 0  # 6.5 lies beyond the grid's end, 6
