@@ -36,8 +36,9 @@ def draw_dependent(model: Any) -> set[str]:
 
 def draw_table_bytes(pairs: int, draws: int, interpolated: int) -> int:
     """Bytes of the tables with ``draws`` combinations: the expected reward and, when some state is
-    interpolated, per draw its probability, lower nodes (int32) and upper weights (float64)."""
-    return pairs * (8 + (draws * (8 + 12 * interpolated) if interpolated else 0))
+    interpolated, a flag of a clamped next value and per draw its probability, lower nodes (int32) and upper
+    weights (float64)."""
+    return pairs * (8 + (1 + draws * (8 + 12 * interpolated) if interpolated else 0))
 
 
 def draw_count(model: Any) -> int:

@@ -79,6 +79,8 @@ from worker import _codegen, bridge
 from worker.document import SUBMISSION_KEYS
 from worker.document.horizon import varies_by_period
 from worker.drawcheck import check_draw_tables
+from worker.drawkernel import draw_tables
+from worker.drawsteps import DrawGridProblem
 from worker.estimate import REWARD_STORAGES, GridPlan, grid_plan
 from worker.feasibility import ModelData, feasibility_scan, infeasible, model_data
 from worker.gridproblem import GridProblem
@@ -167,7 +169,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     module = _codegen.load(source)
     params = _codegen.kernel_params(data.param_values, literals)
     ctx = _codegen.context(params, data.state_grids, data.shock_table, data.choice_grids, tables)
-    problem = GridProblem(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
+    kind = DrawGridProblem if layout.draws else GridProblem  # draws after the choice: merged nodes (worker.drawsteps)
+    problem = kind(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
     problem.kernel_literals = literals
     problem._warm_up()
     bridge.mark_warm(module.__name__)
@@ -192,6 +195,8 @@ def _tables(
     """
     if compiled and static:
         tables, counts = static_tables(data, static, climb=climb)
+    elif compiled and data.draws is not None and None in data.setter:
+        tables, counts = draw_tables(data)  # draws after the choice, filled in compiled code (worker.drawkernel)
     else:
         tables, counts = precompute_tables(data, static)
     stuck = np.flatnonzero(~counts["any_allowed"])

@@ -15,6 +15,7 @@ a grid or imports numba.
 from __future__ import annotations
 
 import ast
+import functools
 from typing import Any
 
 from worker.errors import TooLarge
@@ -79,17 +80,18 @@ def expression_nodes(model: Any) -> dict[str, int]:
         "reward": [model.reward],
         "next": list(model.next.values()),
     }
-    counts = {}
-    for section, texts in sections.items():
-        total = 0
-        for text in texts:
-            try:
-                tree = ast.parse(str(text).strip(), mode="eval")
-            except (SyntaxError, ValueError, RecursionError, MemoryError):
-                continue  # validation has refused it already
-            total += sum(1 for node in ast.walk(tree) if isinstance(node, ast.expr))
-        counts[section] = total
-    return counts
+    return {section: sum(_parts(str(text)) for text in texts) for section, texts in sections.items()}
+
+
+@functools.lru_cache(maxsize=4096)
+def _parts(text: str) -> int:
+    """Parts of one expression's syntax tree (0 when it cannot be read: validation has refused it already);
+    kept by text, since a solve counts each expression more than once."""
+    try:
+        tree = ast.parse(text.strip(), mode="eval")
+    except (SyntaxError, ValueError, RecursionError, MemoryError):
+        return 0
+    return sum(1 for node in ast.walk(tree) if isinstance(node, ast.expr))
 
 
 def check_structure(doc: Any) -> None:

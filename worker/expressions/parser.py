@@ -113,6 +113,13 @@ _REFUSED_NODES: dict[type, str] = {
 _FUNCTION_LIST = ", ".join(FUNCTIONS)
 
 
+_PARSED: dict[tuple[str, int, int, int], Expression] = {}
+"""Expressions parsed already, by text and limits (a solve parses each of a document's several times: the
+checks, the model's numbers, the draws, the diagnostics).  An :class:`Expression` is immutable and does not
+depend on ``path``, which only errors name; errors are not kept.  Cleared when it reaches `_PARSED_MAX`."""
+_PARSED_MAX = 4096
+
+
 def parse(
     text: str,
     *,
@@ -121,7 +128,7 @@ def parse(
     max_depth: int = MAX_DEPTH,
     max_nodes: int = MAX_NODES,
 ) -> Expression:
-    """Parse and validate one expression.
+    """Parse and validate one expression (the same text and limits give the same object, from `_PARSED`).
 
     Parameters
     ----------
@@ -141,6 +148,19 @@ def parse(
     """
     if max_depth > DEPTH_CEILING:
         raise ValueError(f"max_depth may be at most {DEPTH_CEILING}, got {max_depth}")
+    key = (text, max_length, max_depth, max_nodes) if type(text) is str else None
+    known = _PARSED.get(key) if key is not None else None
+    if known is not None:
+        return known
+    expression = _parse(text, path, max_length, max_depth, max_nodes)
+    if key is not None:
+        if len(_PARSED) >= _PARSED_MAX:
+            _PARSED.clear()
+        _PARSED[key] = expression
+    return expression
+
+
+def _parse(text: str, path: str, max_length: int, max_depth: int, max_nodes: int) -> Expression:
     if not isinstance(text, str):
         raise InvalidDocument.at(path, f"an expression must be a string, not {type(text).__name__}")
     if len(text) > max_length:

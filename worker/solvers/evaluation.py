@@ -143,6 +143,10 @@ def _fused_steps(
 def exact_evaluation(run: Run, policy: np.ndarray, steps_done: int) -> None:
     """Policy iteration: ``v ← v_σ``, the solution of ``(I − β P_σ) v = r_σ``.
 
+    A problem may solve it itself: ``exact_policy_value(policy)`` returns ``v_σ`` or None (a grid model with
+    draws after the choice and iid shocks solves a system over its grid states, :mod:`worker.drawsteps`).
+    Otherwise:
+
     Up to :data:`~worker.costs.DIRECT_SOLVE_MAX_POINTS` points a sparse LU
     solve, whose fill-in is then at most ``n²`` entries; above it restarted
     GMRES from the current ``v`` (:func:`krylov_solve`), whose memory is a
@@ -151,6 +155,12 @@ def exact_evaluation(run: Run, policy: np.ndarray, steps_done: int) -> None:
     that follows certifies the result, so an evaluation cut short by the time
     limit still ends in a certified value.
     """
+    exact = getattr(run.problem, "exact_policy_value", None)
+    value = None if exact is None else exact(policy)  # a problem's own direct solve (worker.drawsteps), or None
+    if value is not None:
+        run.v = np.asarray(value, dtype=np.float64).reshape(run.problem.n)
+        run.linear_solves += 1
+        return
     matrix = run.problem.policy_matrix(policy)
     reward = np.asarray(run.problem.policy_reward(policy), dtype=np.float64)
     n = run.problem.n
