@@ -211,6 +211,8 @@ def grid_plan(model: Any, *, limits: dict[str, Any] | None = None, method: str =
     # A threaded fill evaluates up to TABLE_CHUNKS_AT_ONCE chunks at once, one per thread (worker.threadpool).
     at_once = min(threads_for(n, choices), TABLE_CHUNKS_AT_ONCE, math.ceil(elements / max(chunk_elements, 1)))
     chunk = CHUNK_TEMPORARIES * 8 * chunk_elements * max(at_once, 1)
+    if draws and interpolated and not static:
+        chunk = 0  # filled in compiled code straight into the tables (worker.drawkernel): no numpy chunks
     precompute_bytes = common + table_bytes + chunk
     # Pointwise: the feasibility scan's first passes (a state leaves at its first allowed choice), and the exact
     # block search's dyadic maxima of the continuation (about 2n floats).

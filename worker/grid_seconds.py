@@ -35,6 +35,13 @@ from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
 
 __all__ = ["grid_seconds"]
 
+DRAW_FILL_NS = 16.0
+"""The compiled fill of a model with draws after the choice (:mod:`worker.drawkernel`), per (pair, draw)
+(nanoseconds; measured on the separation model of ``bench/bench_draws.py``: 0.6 ms for 38,400)."""
+DRAW_STEP_POINT_NS = 2.2
+"""An evaluation step of such a model (:mod:`worker.drawsteps`: each point's distinct nodes, the expectation once
+per step under iid shocks), per point (nanoseconds; measured there: about 7 µs per step at 3,200 points)."""
+
 
 def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tuple[float, str]:
     """Warm solve time of a grid model without a continuous choice (seconds, kernels compiled) and how it was
@@ -49,8 +56,10 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     entries = plan.n * plan.nodes * plan.shocks  # a policy's matrix: one evaluation step, one expectation
     draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
     setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+    # Draws after the choice with an interpolated state and no static choice: a compiled fill and draw steps.
+    draw_kernel = draws > 1 and plan.interpolated and plan.table_entries == plan.pairs
     if plan.reward_storage == "tables":
-        per_pair = NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
+        per_pair = DRAW_FILL_NS if draw_kernel else NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
         setup += plan.pairs * per_pair * draws / speedup
         filled = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
         if plan.table_entries < plan.pairs:
@@ -93,6 +102,8 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     expectation = plan.grid_states * plan.shocks * plan.shocks * EXPECTATION_NS
     iterations = steps * (ITERATION_S * 1e9 + expectation / speedup)
     evaluation = evaluation_steps * (expectation + plan.n * plan.nodes * MATVEC_NS) / evaluation_speedup
+    if draw_kernel:
+        evaluation = evaluation_steps * plan.n * DRAW_STEP_POINT_NS
     first_axis = next(iter(model.states.values())).size
     euler = 0 if model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
     seconds = (setup + step_total / speedup + iterations + evaluation) * 1e-9
