@@ -14,7 +14,9 @@ interpolation:
     :mod:`worker.solvers` certifies its fixed point — the solution of the
     interpolated problem, which is itself an approximation of the model.
 ``monotone_cubic``
-    Fritsch–Carlson along the one state (:mod:`worker.continuous.interp_kernels`).
+    Fritsch–Carlson along the one state; with several states, the tensor
+    product of those one-dimensional interpolants (along the last state, then
+    each earlier one: :func:`worker.continuous.interp_kernels.tensor_cubic`).
     Far more accurate for smooth models, but not linear in ``v``: the bracket
     is computed the same way and is not a proof (the result says so).
 
@@ -154,14 +156,16 @@ class ContinuousProblem:
         return order, prev, length
 
     def continuation(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """``(EVt, D)``: ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` and its monotone cubic slopes (cubic only)."""
+        """``(EVt, D)``: ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` and its monotone cubic slopes along the last
+        state (cubic only)."""
         data = self._data
         values = np.asarray(v, dtype=np.float64).reshape(data.n_grid, data.n_shocks)
         EVt = np.ascontiguousarray(data.transition @ values.T)
         if not self.cubic:
             return EVt, np.zeros((1, 1))
         D = np.empty_like(EVt)
-        monotone_slopes(data.state_grids[0], EVt, D)
+        last = data.state_grids[-1]
+        monotone_slopes(last, EVt.reshape(-1, last.size), D.reshape(-1, last.size))
         return EVt, D
 
     def bellman_step(
@@ -292,7 +296,8 @@ class ContinuousProblem:
                 index[:, corner] += self._strides[t] * (lower + bit)
                 weight[:, corner] *= share if bit else 1.0 - share
         self._nodes_for = a.copy()
-        self._nodes = (reward, tomorrow, clamped, index, weight, lowers[0], weights[0])
+        self._nodes = (reward, tomorrow, clamped, index, weight, np.ascontiguousarray(np.column_stack(lowers)),
+                       np.ascontiguousarray(np.column_stack(weights)))
         return self._nodes
 
     def policy_steps(
@@ -302,8 +307,8 @@ class ContinuousProblem:
         reward, _, _, index, weight, lower, share = self.nodes(policy)
         out = np.array(v, dtype=np.float64).reshape(self.n)
         if self.cubic:
-            done, span = cubic_policy_steps(reward, lower, share, self._data.state_grids[0],
-                                            self._data.transition, self.discount, out, int(steps), float(span_stop))
+            done, span = cubic_policy_steps(reward, lower, share, self._sgrid, self._meta, self._data.transition,
+                                            self.discount, out, int(steps), float(span_stop))
         else:
             EVt, spare = self._scratch
             done, span = kernels.policy_steps(reward, index, weight, self._data.transition, self.discount, out,

@@ -13,7 +13,7 @@ not depend on the choice are computed once per point (the hoisting of
 
 Kernels (``P`` points given by their state values ``svals`` (P, d) and shock
 row ``piz`` (P,); ``EVt`` (n_shocks, n_grid) the continuation, ``D`` its
-slopes along the one state for ``monotone_cubic`` (unused for ``linear``)):
+slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 * ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
   has_guess, concave, monotone, scan_n, out_v, out_a, out_r, start, stop)``
@@ -57,7 +57,7 @@ def module_text(model: ModelSource, target: int | None, grid_sizes_known: int, c
     grid_sizes_known : int
         Number of states (their grids are in ``sgrid`` with offsets in the kernel's ``meta``).
     cubic : bool
-        ``monotone_cubic`` (one state) instead of multilinear interpolation.
+        ``monotone_cubic`` (its tensor product with several states) instead of multilinear interpolation.
     """
     writer = _Writer(model, target, cubic)
     header = [
@@ -68,6 +68,7 @@ def module_text(model: ModelSource, target: int | None, grid_sizes_known: int, c
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
+        "from worker.continuous.interp_kernels import tensor_cubic",
         "",
         "globals().update(interval_globals())",
     ]
@@ -118,6 +119,9 @@ class _Writer:
             out.add(f"p_{k} = p[{k}]")
         for t in range(self.d):
             out.add(f"off_{t} = meta[{t}]", f"size_{t} = meta[{self.d + t}]", f"stride_{t} = meta[{2 * self.d + t}]")
+        if self.cubic and self.d > 1:
+            out.add(f"cub_lo = np.empty({self.d}, dtype=np.int64)", f"cub_w = np.empty({self.d})",
+                    f"cub_s = np.empty({4 ** (self.d - 1)})")
 
     def _tomorrow(self, out: Lines) -> None:
         """``x_t``: tomorrow's state values at choice ``c_0`` (NaN-checked by the caller)."""
@@ -148,6 +152,11 @@ class _Writer:
         """``e``: the continuation at ``x`` (clamped to the grid's ends)."""
         for t in range(self.d):
             out.add(f"lo_{t}, w_{t}, cl_{t} = locate_one(sgrid, off_{t}, size_{t}, x_{t})")
+        if self.cubic and self.d > 1:
+            for t in range(self.d):
+                out.add(f"cub_lo[{t}] = lo_{t}", f"cub_w[{t}] = w_{t}")
+            out.add("e = tensor_cubic(EVt, D, iz, sgrid, meta, cub_lo, cub_w, cub_s)")
+            return
         if self.cubic:
             out.add(
                 "h = sgrid[off_0 + lo_0 + 1] - sgrid[off_0 + lo_0]",
