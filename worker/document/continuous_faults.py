@@ -56,12 +56,12 @@ def continuous_model_faults(model: Any) -> list[Fault]:
     """Faults of a continuous choice within its model, and of ``interpolation``."""
     continuous = [name for name, choice in model.choices.items() if choice.continuous]
     faults = []
-    if continuous and len(model.choices) > 1:
-        others = ", ".join(f"`{name}`" for name in model.choices if name != continuous[0])
+    if len(continuous) > 1:
+        names = ", ".join(f"`{name}`" for name in continuous)
         faults.append(fault(
-            join_path("choices", continuous[0], "continuous"),
-            f"a continuous choice must be the model's only choice, and this model also has {others}; make them "
-            "discrete, or give them a continuous model of their own",
+            join_path("choices", continuous[1], "continuous"),
+            f"a model may have one continuous choice, and this one has {len(continuous)} ({names}); make the "
+            "others discrete (a grid or a menu): the continuous one is then searched for each combination of them",
         ))
     known = [*model.params, *model.states, *model.shocks]
     for name in continuous:

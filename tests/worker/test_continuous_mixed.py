@@ -1,0 +1,194 @@
+"""A continuous choice beside a discrete one, against an independent plain-numpy solver written here.
+
+Invented household: assets ``a`` on a grid, income ``y`` from a two-state chain; each period it chooses
+whether to work (``work`` ∈ {0, 1}, a menu: working adds ``wage · y`` to cash and costs ``disutility`` in
+utility) and how much to save (``save``, tomorrow's assets anywhere in [0, a_max]), with log utility.
+
+The references: (1) the fitted problem's fixed point (tomorrow's value read linearly between grid points)
+solved by a numpy value iteration whose maximisation is exact — on each grid segment the continuation is
+linear, so the first-order condition ``1/c = β·slope`` gives the segment's maximum in closed form, and the
+best segment and the best work choice win; (2) scipy's bounded ``minimize_scalar`` at every point and work
+choice, at that fixed point, seeded by a brute-force scan of a fine grid of savings.
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import numpy as np
+import pytest
+from scipy.optimize import minimize_scalar
+
+from worker.document import parse_document
+from worker.errors import InvalidDocument
+from worker.solve import solve
+
+BETA, R, WAGE, DISUTILITY, BASE, A_MAX = 0.9, 0.04, 1.0, 0.4, 0.3, 8.0
+INCOME = np.array([0.6, 1.4])
+CHAIN = np.array([[0.75, 0.25], [0.35, 0.65]])
+WORK = np.array([0.0, 1.0])
+
+HOUSEHOLD: dict[str, Any] = {
+    "kind": "grid",
+    "params": {"r": R, "wage": WAGE, "disutility": DISUTILITY, "base": BASE},
+    "states": {"a": {"min": 0.0, "max": A_MAX, "points": 30, "spacing": "power", "exponent": 1.5}},
+    "shocks": {"y": {"markov": {"values": INCOME.tolist(), "matrix": CHAIN.tolist()}, "transform": "none"}},
+    "choices": {"work": {"values": WORK.tolist()}, "save": {"next_of": "a", "continuous": True}},
+    "define": {"c": "(1 + r) * a + base + work * wage * y - save"},
+    "reward": "log(c) - disutility * work",
+    "feasible": ["c > 0"],
+}
+"""Invented: whether to work and how much to save."""
+
+
+def _document(hints: dict | None = None, **report: Any) -> dict[str, Any]:
+    model = copy.deepcopy(HOUSEHOLD)
+    if hints is not None:
+        model["hints"] = hints
+    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
+            "report": report}
+
+
+def _cash(grid: np.ndarray) -> np.ndarray:
+    """Cash on hand (points, shocks, work options)."""
+    return (1 + R) * grid[:, None, None] + BASE + WORK[None, None, :] * WAGE * INCOME[None, :, None]
+
+
+def _exact_bellman(v: np.ndarray, grid: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The fitted Bellman operator with an exact maximisation: ``(Tv, save, work index)``, (points, shocks)."""
+    continuation = v @ CHAIN.T  # (points, shocks): E[v(a', y') | y]
+    cash = _cash(grid)
+    best = np.full(cash.shape, -np.inf)
+    chosen = np.full(cash.shape, np.nan)
+    for j in range(grid.size - 1):
+        slope = (continuation[j + 1] - continuation[j]) / (grid[j + 1] - grid[j])
+        slope = slope[None, :, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            interior = cash - 1.0 / (BETA * slope)
+        upper = np.minimum(grid[j + 1], cash)
+        save = np.clip(np.where(slope > 0, interior, grid[j]), grid[j], upper)
+        c = cash - save
+        with np.errstate(divide="ignore", invalid="ignore"):
+            value = np.where((c > 0) & (grid[j] < cash), np.log(np.where(c > 0, c, 1.0))
+                             - DISUTILITY * WORK[None, None, :]
+                             + BETA * (continuation[j][None, :, None] + slope * (save - grid[j])), -np.inf)
+        better = value > best
+        best[better], chosen[better] = value[better], save[better]
+    work = np.argmax(best, axis=2)
+    take = np.take_along_axis
+    return (take(best, work[..., None], 2)[..., 0], take(chosen, work[..., None], 2)[..., 0], work)
+
+
+@pytest.fixture(scope="module")
+def reference() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``(grid, v*, save, work)`` of the fitted problem, iterated until a step moves ``v`` by at most 1e-13."""
+    grid = np.array(solve(_document())["axes"]["a"])
+    v = np.zeros((grid.size, INCOME.size))
+    for _ in range(2000):
+        tv, save, work = _exact_bellman(v, grid)
+        moved = np.abs(tv - v).max()
+        v = tv
+        if moved <= 1e-13:
+            break
+    return grid, v, save, work
+
+
+@pytest.fixture(scope="module")
+def household() -> dict[str, Any]:
+    return solve(_document({"concave": True}, stationary=True, euler_errors=True,
+                           simulation={"periods": 40, "paths": 30, "seed": 5}))
+
+
+def test_the_value_and_policy_are_the_independent_solvers(household: dict, reference: tuple) -> None:
+    grid, v, save, work = reference
+    assert household["status"] == "converged"
+    gap = np.abs(np.array(household["value"]) - v).max()
+    assert gap <= household["error_bound"] + 1e-11
+    np.testing.assert_array_equal(np.array(household["policy"]["work"]), WORK[work])
+    np.testing.assert_array_equal(np.array(household["policy_index"]["work"]), work)
+    assert "save" not in household["policy_index"]
+    # The fixed points agree to 1e-10 or so; the maximiser moves with the value by about gap / curvature.
+    np.testing.assert_allclose(np.array(household["policy"]["save"]), save, atol=1e-5)
+    # Both regimes occur: the poor work at low assets, the rich rest.
+    assert 0 < work.sum() < work.size
+
+
+def test_scipy_finds_the_same_maximum_at_every_point(household: dict, reference: tuple) -> None:
+    grid, v, _, _ = reference
+    continuation = v @ CHAIN.T
+    cash = _cash(grid)
+    found_value = np.array(household["value"])
+    for i in range(grid.size):
+        for z in range(INCOME.size):
+            best = -np.inf
+            for w in range(WORK.size):
+                top = min(A_MAX, cash[i, z, w] * (1 - 1e-12))
+
+                def loss(s: float, i: int = i, z: int = z, w: int = w) -> float:
+                    c = cash[i, z, w] - s
+                    if c <= 0:
+                        return np.inf
+                    return -(np.log(c) - DISUTILITY * WORK[w] + BETA * np.interp(s, grid, continuation[:, z]))
+
+                fine = np.linspace(0.0, top, 4001)  # brute force first, then Brent in the best cell
+                k = int(np.argmin([loss(s) for s in fine]))
+                lo, hi = fine[max(k - 1, 0)], fine[min(k + 1, fine.size - 1)]
+                found = minimize_scalar(loss, bounds=(lo, hi), method="bounded", options={"xatol": 1e-12})
+                best = max(best, -found.fun, -loss(fine[k]))
+            # fixq's value is the Bellman step's maximum at the fixed point, to within its error bound
+            assert found_value[i, z] == pytest.approx(best, abs=household["error_bound"] + 1e-9), (i, z)
+
+
+def test_without_hints_the_scan_finds_the_same_household(household: dict) -> None:
+    plain = solve(_document())
+    assert np.abs(np.array(plain["value"]) - np.array(household["value"])).max() <= 1e-8
+    np.testing.assert_array_equal(np.array(plain["policy"]["work"]), np.array(household["policy"]["work"]))
+
+
+def test_the_report_describes_both_choices(household: dict) -> None:
+    described = household["diagnostics"]["continuous_choice"]
+    assert described["choice"] == "save" and described["searched_for_each"] == ["work"]
+    assert described["combinations"] == 2
+    means = household["stationary"]["means"]
+    assert means["a"] == pytest.approx(means["save"], abs=1e-9)  # Young's lotteries keep the mean
+    assert 0.0 <= means["work"] <= 1.0
+    path = household["simulation"]["first_path"]
+    assert set(path["work"]) <= {0.0, 1.0} and len(path["save"]) == 40
+    notes = " ".join(household["diagnostics"].get("notes", []))
+    assert "Euler-equation errors" in notes and "euler_errors" not in household["diagnostics"]
+
+
+def test_the_endogenous_grid_method_says_which_condition_fails() -> None:
+    document = _document()
+    document["solver"]["method"] = "endogenous_grid"
+    with pytest.raises(InvalidDocument) as info:
+        solve(document)
+    assert any(e["path"] == "solver.method" and "only choice" in e["message"] and "`work`" in e["message"]
+               for e in info.value.errors), info.value.errors
+
+
+def test_two_continuous_choices_are_refused() -> None:
+    document = _document()
+    document["model"]["choices"]["hours"] = {"min": 0.0, "max": 1.0, "continuous": True}
+    with pytest.raises(InvalidDocument) as info:
+        parse_document(document)
+    assert any(e["path"] == "model.choices.hours.continuous" and "one continuous choice" in e["message"]
+               for e in info.value.errors), info.value.errors
+
+
+def test_choosing_consumption_between_bounds_gives_the_same_household(household: dict) -> None:
+    # The same household choosing consumption (given by min and max, the continuous choice second) instead of
+    # savings: the same fitted problem, so the same value and work policy.
+    document = _document({"concave": True})
+    model = document["model"]
+    model["choices"] = {"work": {"values": WORK.tolist()},
+                        "c": {"min": "0", "max": "(1 + r) * a + base + wage * y", "continuous": True}}
+    model["define"] = {"cash": "(1 + r) * a + base + work * wage * y"}
+    model["next"] = {"a": "cash - c"}
+    model["feasible"] = ["c > 0", "cash - c >= 0", "cash - c <= 8"]
+    consuming = solve(document)
+    assert consuming["status"] == "converged"
+    assert np.abs(np.array(consuming["value"]) - np.array(household["value"])).max() <= 1e-7
+    np.testing.assert_array_equal(np.array(consuming["policy"]["work"]), np.array(household["policy"]["work"]))
+    assert list(consuming["policy"]) == ["work", "c"]
