@@ -41,11 +41,12 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     method = doc.solver.method
     memory = grid_common_bytes(n, shocks, nodes, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
     hinted = bool(model.hints.concave)
-    per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
+    combos = math.prod(other.size for key, other in model.choices.items() if key != name)  # searched for each
+    per_point = combos * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     steps, per_iteration, basis = iteration_steps(doc, scan)
     seconds = steps * (n * per_point * POINT_NS + per_iteration * n * nodes * shocks * MATVEC_NS) * 1e-9
     if hinted:
-        seconds += n * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
+        seconds += n * combos * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
     compile_bytes, compile_s = compile_cost(model)
     notes = [
         f"continuous choice `{name}`: no reward tables; tomorrow's value read by {model.interpolation} "

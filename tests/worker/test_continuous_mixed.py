@@ -192,3 +192,19 @@ def test_choosing_consumption_between_bounds_gives_the_same_household(household:
     assert np.abs(np.array(consuming["value"]) - np.array(household["value"])).max() <= 1e-7
     np.testing.assert_array_equal(np.array(consuming["policy"]["work"]), np.array(household["policy"]["work"]))
     assert list(consuming["policy"]) == ["work", "c"]
+
+
+def test_a_finite_horizon_is_the_independent_backward_induction(reference: tuple) -> None:
+    grid = reference[0]
+    document = _document({"concave": True})
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    result = solve(document)
+    v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
+    expected_v, expected_work = [], []
+    for _ in range(4):
+        v, _, work = _exact_bellman(v, grid)
+        expected_v.insert(0, v)
+        expected_work.insert(0, work)
+    np.testing.assert_allclose(np.array(result["value"]), np.array(expected_v), rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(np.array(result["policy_index"]["work"]), np.array(expected_work))
+    assert np.array(result["policy"]["save"]).shape == (4, grid.size, INCOME.size)

@@ -92,6 +92,7 @@ class ContinuousProblem:
         self.axes: dict[str, list[float]] = {name: grid.tolist() for name, grid in zip(data.states, data.state_grids)}
         self.axes.update((name, values.tolist()) for name, values in zip(data.shocks, data.shock_values))
         monotone = bool(model.hints.monotone) and self.target is not None and not others
+        self.policy_shape = (self.n, 2) if others else (self.n,)
         self.hints = Hints(monotone=monotone, concave=bool(model.hints.concave))
         self.hints_active = monotone or self.hints.concave
         self.scan_points = model.choices[self.choice].size
