@@ -208,3 +208,44 @@ def test_a_finite_horizon_is_the_independent_backward_induction(reference: tuple
     np.testing.assert_allclose(np.array(result["value"]), np.array(expected_v), rtol=0, atol=1e-9)
     np.testing.assert_array_equal(np.array(result["policy_index"]["work"]), np.array(expected_work))
     assert np.array(result["policy"]["save"]).shape == (4, grid.size, INCOME.size)
+
+
+def test_two_separable_economies_split_into_their_known_parts() -> None:
+    # Invented: two capital stocks under one shock, log utility of each one's consumption, full depreciation.
+    # The problem separates, V(k1, k2, z) = V1(k1, z) + V2(k2, z): the continuous k1' has the Brock & Mirman
+    # (1972) policy k1' = αβ z k1^α; the grid-restricted k2' is a one-state discrete problem, solved here by a
+    # plain numpy value iteration.  Both interpolations keep the separation: tomorrow's k2 is a grid point,
+    # and the cubic of V1 + a constant is the cubic of V1 plus it.
+    alpha, beta = 0.3, 0.95
+    z_values, chain = np.array([0.9, 1.1]), np.array([[0.8, 0.2], [0.3, 0.7]])
+    model = {
+        "kind": "grid", "params": {"alpha": alpha},
+        "states": {"k1": {"min": 0.05, "max": 0.4, "points": 24}, "k2": {"min": 0.05, "max": 0.4, "points": 15}},
+        "shocks": {"z": {"markov": {"values": z_values.tolist(), "matrix": chain.tolist()}, "transform": "none"}},
+        "choices": {"k2_next": {"next_of": "k2"}, "k1_next": {"next_of": "k1", "continuous": True}},
+        "define": {"c1": "z * k1**alpha - k1_next", "c2": "z * k2**alpha - k2_next"},
+        "reward": "log(c1) + log(c2)", "feasible": ["c1 > 0", "c2 > 0"], "hints": {"concave": True},
+        "interpolation": "monotone_cubic",
+    }
+    result = solve({"version": 1, "discount": beta, "model": model,
+                    "solver": {"method": "howard", "tolerance": 1e-10}})
+    assert result["status"] == "converged"
+    k1, k2 = np.array(result["axes"]["k1"]), np.array(result["axes"]["k2"])
+    # the discrete part: v(k, z) = max_j log(z k^α − k_j) + β Σ P[z, z'] v(k_j, z')
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c = z_values[None, :, None] * k2[:, None, None] ** alpha - k2[None, None, :]
+        reward = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf)  # (k, z, k')
+    v2 = np.zeros((k2.size, 2))
+    for _ in range(3000):
+        candidate = reward + beta * (v2 @ chain.T).T[None, :, :]
+        new = candidate.max(axis=2)
+        moved = np.abs(new - v2).max()
+        v2 = new
+        if moved <= 1e-13:
+            break
+    np.testing.assert_array_equal(np.array(result["policy_index"]["k2_next"]),
+                                  np.broadcast_to(candidate.argmax(axis=2)[None], (k1.size, k2.size, 2)))
+    rest = np.array(result["value"]) - v2[None, :, :]  # V1(k1, z): the same whatever k2
+    assert np.abs(rest - rest[:, :1, :]).max() <= 1e-8
+    exact = alpha * beta * z_values[None, None, :] * k1[:, None, None] ** alpha
+    assert np.abs(np.array(result["policy"]["k1_next"]) - exact).max() < 2e-4
