@@ -20,9 +20,12 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
+from tests.worker.test_continuous import Crash, MemoryCheckpoint
+from worker import environment, threadpool
 from worker.document import parse_document
 from worker.errors import InvalidDocument
-from worker.solve import solve
+from worker.solve import compile_document, solve
+from worker.solvers import METHODS
 
 BETA, R, WAGE, DISUTILITY, BASE, A_MAX = 0.9, 0.04, 1.0, 0.4, 0.3, 8.0
 INCOME = np.array([0.6, 1.4])
@@ -249,3 +252,40 @@ def test_two_separable_economies_split_into_their_known_parts() -> None:
     assert np.abs(rest - rest[:, :1, :]).max() <= 1e-8
     exact = alpha * beta * z_values[None, None, :] * k1[:, None, None] ** alpha
     assert np.abs(np.array(result["policy"]["k1_next"]) - exact).max() < 2e-4
+
+
+def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
+    calls: list[int] = []
+    real = threadpool.run_blocks
+
+    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
+        calls.append(threads)
+        return real(task, blocks, threads)
+
+    monkeypatch.setattr(threadpool, "run_blocks", spy)
+    results = []
+    for threads in ("1", "2"):
+        monkeypatch.setenv(environment.SOLVE_THREADS, threads)
+        result = solve(_document({"concave": True}))
+        assert calls and calls[-1] == int(threads)
+        results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
+                        np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
+    assert results[0] == results[1]
+
+
+def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
+    _, problem = compile_document(_document({"concave": True}))
+    options = dict(tolerance=1e-10, evaluation_steps=5, fingerprint="household", checkpoint_s=0.0)
+    whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
+    counting = MemoryCheckpoint()
+    METHODS["howard"](problem, np.zeros(problem.n), checkpoint=counting, **options)
+    assert counting.saves >= 3 and counting.state["policy"].shape == (problem.n, 2)
+    store = MemoryCheckpoint(crash_after=counting.saves // 2)
+    with pytest.raises(Crash):
+        METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, **options)
+    at = store.state["iteration"]
+    resumed = METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, **options)
+    assert resumed.resumed_from_iteration == at
+    np.testing.assert_array_equal(resumed.value, whole.value)
+    np.testing.assert_array_equal(resumed.policy, whole.policy)
