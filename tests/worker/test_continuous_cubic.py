@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator
 
-from worker.continuous.interp_kernels import monotone_slopes, tensor_cubic
+from worker.continuous.interp_kernels import monotone_slopes, tensor_cubic, tensor_two
 from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.solve import solve
@@ -137,6 +137,8 @@ def test_the_tensor_product_matches_scipy_pchip_line_by_line(sizes: tuple[int, .
         for iz in range(shocks):
             found = tensor_cubic(flat, slopes, iz, sgrid, meta, lo, w, scratch)
             assert found == pytest.approx(_sequential_pchip(grids, values[iz], point), rel=1e-11, abs=1e-11)
+            if d == 2:  # the two-state form written out gives the same number
+                assert tensor_two(flat, slopes, iz, sgrid, meta, lo, w) == found
 
 
 def test_more_than_three_states_are_refused_at_interpolation() -> None:

@@ -73,7 +73,7 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
-        "from worker.continuous.interp_kernels import tensor_cubic",
+        "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
     ]
@@ -167,7 +167,8 @@ class _Writer:
         if self.cubic and self.d > 1:
             for t in range(self.d):
                 out.add(f"cub_lo[{t}] = lo_{t}", f"cub_w[{t}] = w_{t}")
-            out.add("e = tensor_cubic(EVt, D, iz, sgrid, meta, cub_lo, cub_w, cub_s)")
+            out.add("e = tensor_two(EVt, D, iz, sgrid, meta, cub_lo, cub_w)" if self.d == 2 else
+                    "e = tensor_cubic(EVt, D, iz, sgrid, meta, cub_lo, cub_w, cub_s)")
             return
         if self.cubic:
             out.add(
