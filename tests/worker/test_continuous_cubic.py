@@ -150,3 +150,19 @@ def test_more_than_three_states_are_refused_at_interpolation() -> None:
         parse_document(document)
     assert any(e["path"] == "model.interpolation" and "at most 3 states" in e["message"]
                for e in info.value.errors), info.value.errors
+
+
+def test_three_states_run_the_general_tensor_product() -> None:
+    # A third state B that drifts (B' = B**0.5, between grid points) and enters nothing: the value must not
+    # depend on it (the cubic of a constant line is that constant), and the policy is still Brock–Mirman's.
+    document = _document(12, 6, "monotone_cubic")
+    document["model"]["states"]["B"] = {"min": 0.5, "max": 2.0, "points": 5}
+    document["model"]["next"]["B"] = "B**0.5"
+    result = solve(document)
+    assert result["status"] == "converged"
+    value = np.array(result["value"])  # (k, A, B, z)
+    assert np.abs(value - value[:, :, :1, :]).max() <= 1e-9
+    k, a, z = (np.array(result["axes"][name]) for name in ("k", "A", "z"))
+    exact = ALPHA * BETA * a[None, :, None, None] * z[None, None, None, :] * k[:, None, None, None] ** ALPHA
+    two_states = _policy_error(solve(_document(12, 6, "monotone_cubic")))
+    assert np.abs(np.array(result["policy"]["k_next"]) - exact).max() == pytest.approx(two_states, rel=1e-3)

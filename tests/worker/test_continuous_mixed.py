@@ -289,3 +289,10 @@ def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
     assert resumed.resumed_from_iteration == at
     np.testing.assert_array_equal(resumed.value, whole.value)
     np.testing.assert_array_equal(resumed.policy, whole.policy)
+
+
+def test_the_monotone_hint_beside_other_choices_is_not_used_and_said_so() -> None:
+    result = solve(_document({"concave": True, "monotone": True}))
+    assert result["diagnostics"]["continuous_choice"]["monotone_narrowing"] is False
+    assert any("monotone hint is not used" in note and "`work`" in note for note in result["diagnostics"]["notes"])
+    assert result["diagnostics"]["verification"]["hints_held"] is True
