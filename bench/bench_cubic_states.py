@@ -20,8 +20,33 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 
-from tests.worker.test_continuous_cubic import _document, _policy_error  # noqa: E402
+import numpy as np  # noqa: E402
+
 from worker.solve import solve  # noqa: E402
+
+ALPHA, BETA = 0.3, 0.95
+
+
+def _document(k_points: int, a_points: int, how: str) -> dict:
+    """The invented growth model (as in ``tests/worker/test_continuous_cubic.py``) on a given grid."""
+    model = {
+        "kind": "grid", "params": {"alpha": ALPHA, "rho": 0.6},
+        "states": {"k": {"min": 0.05, "max": 0.4, "points": k_points},
+                   "A": {"min": 0.7, "max": 1.4, "points": a_points}},
+        "shocks": {"z": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "next": {"A": "A**rho"}, "define": {"c": "A * z * k**alpha - k_next"}, "reward": "log(c)",
+        "feasible": ["c > 0"], "hints": {"concave": True}, "interpolation": how,
+    }
+    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-9}}
+
+
+def _policy_error(result: dict) -> float:
+    """Largest distance of the solved policy from Brock–Mirman's k' = αβ·A·z·k**α at the grid points."""
+    k, a, z = (np.array(result["axes"][name]) for name in ("k", "A", "z"))
+    exact = ALPHA * BETA * a[None, :, None] * z[None, None, :] * k[:, None, None] ** ALPHA
+    return float(np.abs(np.array(result["policy"]["k_next"]) - exact).max())
 
 GRIDS = ((12, 6), (24, 12), (100, 10), (200, 20))
 """(capital points, productivity points) of the benchmark."""

@@ -20,7 +20,6 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
-from tests.worker.test_continuous import Crash, MemoryCheckpoint
 from worker import environment, threadpool
 from worker.document import parse_document
 from worker.errors import InvalidDocument
@@ -272,6 +271,29 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
         results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
     assert results[0] == results[1]
+
+
+class MemoryCheckpoint:
+    """A checkpoint store in memory (deep copies, as a store that serialises would); raises after ``crash_after``."""
+
+    def __init__(self, crash_after: int | None = None) -> None:
+        self.state: dict | None = None
+        self.saves = 0
+        self.crash_after = crash_after
+
+    def load(self) -> dict | None:
+        return copy.deepcopy(self.state)
+
+    def save(self, state: dict) -> None:
+        self.state = copy.deepcopy(state)
+        self.saves += 1
+        if self.crash_after is not None and self.saves >= self.crash_after:
+            self.crash_after = None
+            raise Crash
+
+
+class Crash(Exception):
+    """Stands in for a worker killed mid-solve."""
 
 
 def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
