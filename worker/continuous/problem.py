@@ -80,11 +80,11 @@ class ContinuousProblem:
         others = [j for j in range(len(data.choices)) if j != data.span_choice]
         self.others = tuple(data.choices[j] for j in others)
         self._other_grids = [data.choice_grids[j] for j in others]
-        if others:
+        if others:  # self.combos: one row per combination of the others' values
             mesh = np.meshgrid(*self._other_grids, indexing="ij")
-            self._combos = np.ascontiguousarray(np.column_stack([m.reshape(-1) for m in mesh]), dtype=np.float64)
+            self.combos = np.ascontiguousarray(np.column_stack([m.reshape(-1) for m in mesh]), dtype=np.float64)
         else:
-            self._combos = np.zeros((1, 0))
+            self.combos = np.zeros((1, 0))
         self.cubic = model.interpolation == "monotone_cubic"
         self.interpolation = model.interpolation
         self.shape = tuple(data.state_sizes) + tuple(v.size for v in data.shock_values)
@@ -121,7 +121,7 @@ class ContinuousProblem:
         self._svals = np.ascontiguousarray(np.column_stack([env[name][:, 0] for name in data.states]))
         self._piz = np.ascontiguousarray(rows % data.n_shocks)
         self._order, self._prev, self._line = self._lines()
-        self.threads = threadpool.threads_for(self.n, self.scan_points * self._combos.shape[0])
+        self.threads = threadpool.threads_for(self.n, self.scan_points * self.combos.shape[0])
         if self.target is not None:
             grid = data.state_grids[self.target]
             self.policy_resolution = POLICY_RESOLUTION * float(grid[-1] - grid[0])
@@ -152,9 +152,9 @@ class ContinuousProblem:
         states = np.empty((0, len(data.states)))
         self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
-                       False, False, self.scan_points, self._combos, none_f, none_f, none_f, none_i, 0, 0)
+                       False, False, self.scan_points, self.combos, none_f, none_f, none_f, none_i, 0, 0)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
-                          self._combos, none_i, none_f, np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
+                          self.combos, none_i, none_f, np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
 
     @property
     def model_data(self) -> ModelData:
@@ -243,14 +243,15 @@ class ContinuousProblem:
 
         def run(start: int, stop: int) -> None:
             search(EVt, D, self.discount, self._params, self._sgrid, self._meta, self._data.shock_table, svals,
-                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self._combos, out_v,
+                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self.combos, out_v,
                    out_a, out_r, out_j, start, stop)
 
         return run
 
     def choose_at(self, v: np.ndarray, states: np.ndarray, rows: np.ndarray, guess: np.ndarray | None,
                   *, restricted: bool = True) -> tuple[np.ndarray, np.ndarray]:
-        """The search at any points: ``states`` (P, d) values, ``rows`` (P,) shock rows; ``(values, choices)``.
+        """The search at any points: ``states`` (P, d) values, ``rows`` (P,) shock rows; ``(values, choices)``
+        (with other choices, ``choices`` is the (P, 2) policy: the values and the combinations).
 
         Off the grid the state values need not be grid points (test points of the
         Euler errors); ``guess`` (P,) seeds a concave search.
@@ -258,15 +259,15 @@ class ContinuousProblem:
         EVt, D = self.continuation(v)
         count = rows.shape[0]
         out_v, out_a, out_r = np.empty(count), np.empty(count), np.empty(count)
+        out_j = np.zeros(count, dtype=np.int64)
         order = np.arange(count, dtype=np.int64)
         prev = np.full(count, -1, dtype=np.int64)
         run = self._step(EVt, D, np.ascontiguousarray(states, dtype=np.float64),
                          np.ascontiguousarray(rows, dtype=np.int64), order, prev,
                          None if guess is None else np.ascontiguousarray(guess, dtype=np.float64),
-                         bool(restricted and self.hints.concave), False, out_v, out_a, out_r,
-                         np.zeros(count, dtype=np.int64))
+                         bool(restricted and self.hints.concave), False, out_v, out_a, out_r, out_j)
         run(0, count)
-        return out_v, out_a
+        return out_v, (np.column_stack([out_a, out_j.astype(np.float64)]) if self.others else out_a)
 
     def solve_endogenous_grid(self, initial: np.ndarray, solve_from: Any, **options: Any) -> Any:
         """``solver.method: endogenous_grid`` (:mod:`worker.continuous.egm`); ``initial`` is not needed."""
@@ -313,7 +314,7 @@ class ContinuousProblem:
         tomorrow = np.empty((self.n, len(data.states)))
         ok = np.empty(self.n, dtype=np.bool_)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, self._svals, self._piz, a,
-                          self._combos, jc, reward, tomorrow, ok)
+                          self.combos, jc, reward, tomorrow, ok)
         if not ok.all():
             i = int(np.flatnonzero(~ok)[0])
             raise ValueError(
@@ -382,7 +383,7 @@ class ContinuousProblem:
         """Per choice (in the model's order), the (n,) chosen value."""
         a, jc = self.split_policy(policy)
         found = {self.choice: a}
-        found.update((name, self._combos[jc, k]) for k, name in enumerate(self.others))
+        found.update((name, self.combos[jc, k]) for k, name in enumerate(self.others))
         return {name: found[name] for name in self._data.choices}
 
     def state_values(self) -> dict[str, np.ndarray]:
@@ -420,7 +421,7 @@ class ContinuousProblem:
         }
         if self.others:
             continuous["searched_for_each"] = list(self.others)
-            continuous["combinations"] = int(self._combos.shape[0])
+            continuous["combinations"] = int(self.combos.shape[0])
         if self.target is not None:
             grid = self._data.state_grids[self.target]
             continuous["at_lower_end"] = int(np.count_nonzero(a <= grid[0]))
