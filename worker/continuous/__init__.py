@@ -12,7 +12,8 @@ has its own solver (:mod:`worker.continuous.egm`).  The modules: the search
 (:mod:`~worker.continuous.source`), the document-free kernels
 (:mod:`~worker.continuous.interp_kernels`), the problem
 (:mod:`~worker.continuous.problem`), simulated paths
-(:mod:`~worker.continuous.paths`).
+(:mod:`~worker.continuous.paths`), Euler-equation errors beside other
+choices (:mod:`~worker.continuous.mixed_euler`).
 """
 
 from __future__ import annotations
