@@ -344,3 +344,26 @@ def test_euler_errors_at_the_chosen_combination_are_the_independent_ones(househo
     assert found["mean_log10"] == pytest.approx(error[measured].mean(), abs=0.01)
     assert found["points"] + found["constrained"] + found["undefined"] == k.size * INCOME.size
     assert any("chosen combination" in note for note in household["diagnostics"]["notes"])
+
+
+def test_the_stationary_distribution_is_youngs(household: dict) -> None:
+    # Young (2010), JEDC 34(1): each next asset level's mass split between its two neighbouring grid points in
+    # proportion to its distance from them, then income moves by its chain; π Q = π solved by least squares.
+    grid = np.array(household["axes"]["a"])
+    save = np.array(household["policy"]["save"])  # (points, shocks)
+    lower = np.clip(np.searchsorted(grid, save, side="right") - 1, 0, grid.size - 2)
+    share = (save - grid[lower]) / (grid[lower + 1] - grid[lower])
+    n_z = INCOME.size
+    matrix = np.zeros((grid.size * n_z, grid.size * n_z))
+    for i in range(grid.size):
+        for z in range(n_z):
+            for bit, weight in ((0, 1 - share[i, z]), (1, share[i, z])):
+                matrix[i * n_z + z, (lower[i, z] + bit) * n_z + np.arange(n_z)] += weight * CHAIN[z]
+    system = np.vstack([(np.eye(matrix.shape[0]) - matrix).T, np.ones(matrix.shape[0])])
+    target = np.zeros(matrix.shape[0] + 1)
+    target[-1] = 1.0
+    expected = np.linalg.lstsq(system, target, rcond=None)[0]
+    found = np.array(household["stationary"]["distribution"]).reshape(-1)
+    np.testing.assert_allclose(found, expected, rtol=0, atol=1e-10)
+    work = np.array(household["policy"]["work"]).reshape(-1)
+    assert household["stationary"]["means"]["work"] == pytest.approx(expected @ work, abs=1e-9)
