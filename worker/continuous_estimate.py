@@ -57,13 +57,14 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     memory = (BASE_BYTES + solve_bytes(n, entries, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
               + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
-    per_point = SEARCH_POINTS if hinted else scan + SEARCH_POINTS
+    combos = math.prod(other.size for key, other in model.choices.items() if key != name)  # searched for each
+    per_point = combos * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
     iteration = n * per_point * POINT_NS + ITERATION_S * 1e9 + entries * MATVEC_NS
     seconds = (GRID_FIXED_S * 1e9 + steps * iteration + evaluation_steps * entries * MATVEC_NS) * 1e-9
     if hinted:
-        seconds += n * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
+        seconds += n * combos * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
     seconds += report_seconds(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_seconds(doc, n)
     compile_bytes, compile_s = compile_cost(model)
     notes = [

@@ -70,6 +70,8 @@ class ModelData:
     source: _codegen.ModelSource
     span: tuple[Expression, Expression] | None = None
     """A continuous choice given by min and max: the two bounds; its grid then holds fractions of the interval."""
+    span_choice: int = 0
+    """The position of the continuous choice among ``choices`` (its grid holds fractions when ``span`` is set)."""
     draws: Draws | None = None
     """The shocks drawn after the choice (not axes of the value function; see :mod:`worker.draws`)."""
 
@@ -185,8 +187,10 @@ def model_data(doc: Any) -> ModelData:
                     f"state `{name}` has no law of motion: give next.{name} or a choice with next_of \"{name}\"",
                 )
             next_laws.append((t, parse(model.next[name], path=join_path("model", "next", name))))
-    span = None
-    for name, spec in model.choices.items():
+    span, span_choice = None, 0
+    for j, (name, spec) in enumerate(model.choices.items()):
+        if spec.continuous:
+            span_choice = j
         if spec.continuous and spec.next_of is None:
             span = tuple(parse(str(bound), path=join_path("model", "choices", name, key))
                          for key, bound in (("min", spec.min), ("max", spec.max)))
@@ -215,6 +219,7 @@ def model_data(doc: Any) -> ModelData:
         setter=tuple(setter),
         source=source,
         span=span,
+        span_choice=span_choice,
         draws=model_draws(model),
     )
 
@@ -241,7 +246,8 @@ def evaluate_pairs(data: ModelData, rows: np.ndarray, columns: np.ndarray) -> _E
     with np.errstate(all="ignore"):
         if data.span is not None:
             low, high = (evaluate(bound, env) for bound in data.span)
-            env[data.choices[0]] = low + env[data.choices[0]] * (high - low)
+            name = data.choices[data.span_choice]
+            env[name] = low + env[name] * (high - low)
         draws = data.draws
         for name, expr in src.defines:
             if draws is None or name not in draws.dependent:

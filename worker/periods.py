@@ -186,7 +186,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
             values, indices = problem.describe_policy(row)
             for name in values:
                 policy.setdefault(name, []).append(values[name])
-                if indices is not None:  # a continuous choice has no grid index
+                if indices is not None and name in indices:  # a continuous choice has no grid index
                     policy_index.setdefault(name, []).append(indices[name])
     taste: dict[str, Any] = {}
     probabilities: dict[str, Any] = {}

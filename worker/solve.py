@@ -465,8 +465,13 @@ def _euler_errors(
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
-    errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice], distribution,
-                                rule=rule)
+    if getattr(problem, "others", ()):  # a continuous choice beside others: at the chosen combination
+        from worker.continuous.mixed_euler import mixed_euler_report
+
+        errors, note = mixed_euler_report(problem, outcome.value, doc.discount)
+    else:
+        errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
+                                    distribution, rule=rule)
     if errors is None and note is None:
         note = ("Euler-equation errors were not measured: they need a choice that sets tomorrow's value of a state "
                 "(next_of)")

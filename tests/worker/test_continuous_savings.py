@@ -303,12 +303,13 @@ def _with(path: list[str], value: Any, document: dict[str, Any] | None = None) -
 
 
 REFUSED = {
-    "another choice": (_with(["choices", "work"], {"values": [0.0, 1.0]}), "model.choices.save.continuous",
-                       "only choice"),
-    "cubic with two states": (
-        _with(["next"], {"b": "b"}, _with(["states", "b"], {"min": 0.0, "max": 1.0, "points": 3},
-                                          _document(interpolation="monotone_cubic"))),
-        "model.interpolation", "one state"),
+    "another continuous choice": (_with(["choices", "hours"], {"min": 0.0, "max": 1.0, "continuous": True}),
+                                  "model.choices.hours.continuous", "one continuous choice"),
+    "cubic with four states": (
+        _with(["next"], {"b": "b", "e": "e", "f": "f"}, _with(["states"], {
+            "a": SAVINGS["states"]["a"], **{name: {"min": 0.0, "max": 1.0, "points": 3} for name in "bef"}},
+            _document(interpolation="monotone_cubic"))),
+        "model.interpolation", "at most 3 states"),
     "cubic with a discrete choice": (
         _with(["choices", "save"], {"next_of": "a"}, _document(interpolation="monotone_cubic")),
         "model.interpolation", "continuous"),

@@ -128,6 +128,17 @@ def _leaving_grid() -> dict[str, Any]:
     return grid_document(model, discount=0.9)
 
 
+def _economy_with_work() -> dict[str, Any]:
+    """The households also choose whether to work (a menu) beside their continuous saving."""
+    document = _economy(report={"stationary": True, "simulation": SIMULATION, "euler_errors": True})
+    model = document["model"]
+    model["choices"] = {"work": {"values": [0.0, 1.0]}, **model["choices"]}
+    model["define"] = {"c": "(1 + r) * a + 0.2 + work * w * y - save"}
+    model["reward"] = "log(c) - 0.3 * work"
+    model["hints"] = {"concave": True}
+    return document
+
+
 CASES: dict[str, Callable[[], dict[str, Any]]] = {
     **{f"example:{name}": (lambda name=name: load_example(name)) for name in example_names()},
     "grid horizon, hints, cohort, simulation, euler errors": lambda: _glassblower(20),
@@ -148,6 +159,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
             "tolerance": 1e-4,
         }
     ),
+    "continuous choice beside a discrete one": _economy_with_work,
     "static choice": _static_choice,
     "law of motion leaving its grid, non-finite rewards": _leaving_grid,
     "max_iterations": lambda: machine_shop(solver={"method": "howard", "max_iterations": 1}),

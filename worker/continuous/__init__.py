@@ -1,4 +1,7 @@
-"""Continuous choices: a grid model whose one choice takes any value of an interval.
+"""Continuous choices: a grid model one of whose choices takes any value of an interval.
+
+The other choices, if any, take values of their grids or menus: at each point the continuous one is
+searched for every combination of them, and the best combination is kept.
 
 :func:`compile_continuous` turns such a document into a
 :class:`~worker.continuous.problem.ContinuousProblem`, which the solvers of
@@ -9,7 +12,8 @@ has its own solver (:mod:`worker.continuous.egm`).  The modules: the search
 (:mod:`~worker.continuous.source`), the document-free kernels
 (:mod:`~worker.continuous.interp_kernels`), the problem
 (:mod:`~worker.continuous.problem`), simulated paths
-(:mod:`~worker.continuous.paths`).
+(:mod:`~worker.continuous.paths`), Euler-equation errors beside other
+choices (:mod:`~worker.continuous.mixed_euler`).
 """
 
 from __future__ import annotations
@@ -27,11 +31,11 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.feasibility import ModelData, feasibility_scan, model_data
 
-__all__ = ["ContinuousProblem", "check_bounds", "compile_continuous"]
+__all__ = ["ContinuousProblem", "check_bounds", "compile_continuous", "kernel_order"]
 
 
 def compile_continuous(doc: Any) -> ContinuousProblem:
-    """Compile a validated grid document whose one choice is continuous.
+    """Compile a validated grid document with a continuous choice.
 
     Raises
     ------
@@ -58,20 +62,21 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
         check_bounds(data)
     feasibility_scan(data, None)
     source = data.source
-    target = next((t for t, j in enumerate(data.setter) if j is not None), None)
-    if data.span is not None:
-        source = _codegen.ModelSource(
-            params=source.params,
-            states=source.states,
-            shocks=source.shocks,
-            choices=source.choices,
-            defines=((BOUND_LOW, data.span[0]), (BOUND_HIGH, data.span[1]), *source.defines),
-            reward=source.reward,
-            feasible=source.feasible,
-            next=source.next,
-        )
+    order = kernel_order(data)
+    bounds = () if data.span is None else ((BOUND_LOW, data.span[0]), (BOUND_HIGH, data.span[1]))
+    source = _codegen.ModelSource(
+        params=source.params,
+        states=source.states,
+        shocks=source.shocks,
+        choices=tuple(data.choices[j] for j in order),
+        defines=(*bounds, *source.defines),
+        reward=source.reward,
+        feasible=source.feasible,
+        next=source.next,
+    )
     kernel_model, literals = _codegen.lift_literals(source)
-    text = module_text(kernel_model, target, len(data.states), cubic)
+    setters = tuple(None if j is None else order.index(j) for j in data.setter)
+    text = module_text(kernel_model, setters, cubic)
     prepared = time.perf_counter()
     module = _codegen.load(text)
     params = _codegen.kernel_params(data.param_values, literals)
@@ -83,12 +88,17 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     return problem
 
 
+def kernel_order(data: ModelData) -> list[int]:
+    """The model's choices as the kernels see them: the continuous one first, then the others in order."""
+    return [data.span_choice, *(j for j in range(len(data.choices)) if j != data.span_choice)]
+
+
 def check_bounds(data: ModelData) -> None:
     """Refuse bounds that are not finite numbers, or a max below the min, at some point (named by its values)."""
     rows = np.arange(data.n, dtype=np.int64)
     env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
     env.update(data.state_env(rows))
-    name = data.choices[0]
+    name = data.choices[data.span_choice]
     with np.errstate(all="ignore"):
         low, high = (np.broadcast_to(evaluate(bound, env), (data.n, 1))[:, 0] for bound in data.span)
     for key, values in (("min", low), ("max", high)):

@@ -73,6 +73,11 @@ KINK_GENERATIONS = 3
 
 def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | None, str | None]:
     """``(setup, ∂c/∂k, None)`` when the method applies; else ``(None, None, reason)`` naming the failing condition."""
+    if len(data.choices) > 1:
+        others = ", ".join(f"`{name}`" for j, name in enumerate(data.choices) if j != data.span_choice)
+        return None, None, (f"it needs the continuous choice to be the model's only choice, and this model also "
+                            f"has {others} (the method inverts one first-order condition; solve with howard, "
+                            "which searches the continuous choice for each combination of the others)")
     if not any(j is not None for j in data.setter) or data.span is not None:
         return None, None, "it needs a continuous choice that is next_of the state (tomorrow's value of it)"
     if len(data.states) != 1:

@@ -7,6 +7,12 @@
   of Fritsch & Butland (1984), and the shape-preserving three-point formula
   at the ends.  With these slopes the cubic Hermite interpolant is monotone
   wherever the data are, and it reproduces the data at the grid points.
+* :func:`tensor_cubic` — with several state variables, the tensor product of
+  those one-dimensional interpolants: along the last state with the slopes
+  of :func:`monotone_slopes` (computed once per continuation), then along
+  each earlier state in turn, from the four values around the point (the
+  slopes at the two nodes need their neighbours).  See the README,
+  "Continuous choices", for what it preserves and what it does not.
 * :func:`cubic_policy_steps` — Howard evaluation steps of a fixed continuous
   policy under that interpolation (the step is not linear in ``v``: the
   slopes are recomputed each step).
@@ -20,7 +26,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-__all__ = ["cubic_policy_steps", "cubic_values", "monotone_slopes"]
+__all__ = ["cubic_policy_steps", "cubic_values", "hermite", "monotone_slopes", "tensor_cubic", "tensor_two"]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -32,6 +38,111 @@ def _end_slope(h0: float, h1: float, m0: float, m1: float) -> float:
     if m0 * m1 <= 0.0 and abs(d) > abs(3.0 * m0):
         return 3.0 * m0
     return d
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def _inner_slope(h0: float, h1: float, m0: float, m1: float) -> float:
+    """The slope at an inner node: 0 where the data turn, else Fritsch–Butland's weighted harmonic mean."""
+    if m0 * m1 <= 0.0:
+        return 0.0
+    w1 = 2.0 * h1 + h0
+    w2 = h1 + 2.0 * h0
+    return (w1 + w2) / (w1 / m0 + w2 / m1)
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def hermite(t1: float, h: float, y0: float, y1: float, d0: float, d1: float) -> float:
+    """The cubic Hermite form at share ``t1`` of an interval of width ``h`` (values ``y``, slopes ``d``)."""
+    t2 = t1 * t1
+    t3 = t2 * t1
+    return (2.0 * t3 - 3.0 * t2 + 1.0) * y0 + (t3 - 2.0 * t2 + t1) * h * d0 + (3.0 * t2 - 2.0 * t3) * y1 \
+        + (t3 - t2) * h * d1
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def four_point(sgrid: np.ndarray, off: int, size: int, k: int, t1: float, ym: float, y0: float, y1: float,
+               y2: float) -> float:
+    """The monotone cubic interpolant of one line at share ``t1`` of its interval ``k``, from the values at
+    nodes ``k − 1 … k + 2`` (those outside the grid are ignored): the slopes at ``k`` and ``k + 1`` are
+    exactly those :func:`monotone_slopes` gives on the whole line."""
+    h = sgrid[off + k + 1] - sgrid[off + k]
+    m0 = (y1 - y0) / h
+    if size == 2:
+        return hermite(t1, h, y0, y1, m0, m0)
+    if k >= 1:
+        hm = sgrid[off + k] - sgrid[off + k - 1]
+        d0 = _inner_slope(hm, h, (y0 - ym) / hm, m0)
+    else:
+        hp = sgrid[off + 2] - sgrid[off + 1]
+        d0 = _end_slope(h, hp, m0, (y2 - y1) / hp)
+    if k + 2 <= size - 1:
+        hp = sgrid[off + k + 2] - sgrid[off + k + 1]
+        d1 = _inner_slope(h, hp, m0, (y2 - y1) / hp)
+    else:
+        hm = sgrid[off + k] - sgrid[off + k - 1]
+        d1 = _end_slope(h, hm, m0, (y0 - ym) / hm)
+    return hermite(t1, h, y0, y1, d0, d1)
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def tensor_two(EVt: np.ndarray, D: np.ndarray, iz: int, sgrid: np.ndarray, meta: np.ndarray, lo: np.ndarray,
+                w: np.ndarray) -> float:
+    """:func:`tensor_cubic` with two states, written out: the same numbers, about 2.5 times as fast (no scratch
+    loops; small enough to be inlined where it is called)."""
+    k0 = lo[0]
+    size0 = meta[2]
+    stride0 = meta[4]
+    k1 = lo[1]
+    h1 = sgrid[meta[1] + k1 + 1] - sgrid[meta[1] + k1]
+    t1 = w[1]
+    row_m = max(k0 - 1, 0) * stride0 + k1
+    row_0 = k0 * stride0 + k1
+    row_1 = (k0 + 1) * stride0 + k1
+    row_2 = min(k0 + 2, size0 - 1) * stride0 + k1
+    ym = hermite(t1, h1, EVt[iz, row_m], EVt[iz, row_m + 1], D[iz, row_m], D[iz, row_m + 1])
+    y0 = hermite(t1, h1, EVt[iz, row_0], EVt[iz, row_0 + 1], D[iz, row_0], D[iz, row_0 + 1])
+    y1 = hermite(t1, h1, EVt[iz, row_1], EVt[iz, row_1 + 1], D[iz, row_1], D[iz, row_1 + 1])
+    y2 = hermite(t1, h1, EVt[iz, row_2], EVt[iz, row_2 + 1], D[iz, row_2], D[iz, row_2 + 1])
+    return four_point(sgrid, meta[0], size0, k0, w[0], ym, y0, y1, y2)
+
+
+@njit(cache=True, nogil=True, error_model="numpy")
+def tensor_cubic(EVt: np.ndarray, D: np.ndarray, iz: int, sgrid: np.ndarray, meta: np.ndarray, lo: np.ndarray,
+                 w: np.ndarray, scratch: np.ndarray) -> float:
+    """The tensor-product monotone cubic of row ``iz`` of ``EVt`` (flat over the product grid) at the point
+    located by ``lo``/``w`` (d,) on each state's grid.
+
+    ``D`` holds the slopes of every line along the last state (:func:`monotone_slopes` on ``EVt`` seen as
+    (rows, last size)); ``meta`` is ``offsets, sizes, strides`` of the states in ``sgrid``; ``scratch``
+    has room for ``4**(d − 1)`` numbers.  The ``4**(d − 1)`` lines along the last state through the nodes
+    ``lo − 1 … lo + 2`` of the other states (moved into the grid at its ends) are read at ``w``; then each
+    earlier state, from the last to the first, is interpolated by :func:`four_point`.
+    """
+    d = lo.shape[0]
+    last = d - 1
+    k_last = lo[last]
+    h_last = sgrid[meta[last] + k_last + 1] - sgrid[meta[last] + k_last]
+    count = 1
+    for _a in range(last):
+        count *= 4
+    for m in range(count):
+        base = k_last
+        rest = m
+        for a in range(last - 1, -1, -1):
+            j = lo[a] - 1 + rest % 4
+            rest //= 4
+            if j < 0:
+                j = 0
+            elif j > meta[d + a] - 1:
+                j = meta[d + a] - 1
+            base += meta[2 * d + a] * j
+        scratch[m] = hermite(w[last], h_last, EVt[iz, base], EVt[iz, base + 1], D[iz, base], D[iz, base + 1])
+    for a in range(last - 1, -1, -1):
+        count //= 4
+        for m in range(count):
+            scratch[m] = four_point(sgrid, meta[a], meta[d + a], lo[a], w[a], scratch[4 * m], scratch[4 * m + 1],
+                                    scratch[4 * m + 2], scratch[4 * m + 3])
+    return scratch[0]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -49,14 +160,7 @@ def monotone_slopes(grid: np.ndarray, values: np.ndarray, out: np.ndarray) -> No
         for k in range(1, n - 1):
             h0 = grid[k] - grid[k - 1]
             h1 = grid[k + 1] - grid[k]
-            m0 = (y[k] - y[k - 1]) / h0
-            m1 = (y[k + 1] - y[k]) / h1
-            if m0 * m1 <= 0.0:
-                d[k] = 0.0
-            else:
-                w1 = 2.0 * h1 + h0
-                w2 = h1 + 2.0 * h0
-                d[k] = (w1 + w2) / (w1 / m0 + w2 / m1)
+            d[k] = _inner_slope(h0, h1, (y[k] - y[k - 1]) / h0, (y[k + 1] - y[k]) / h1)
         h0 = grid[1] - grid[0]
         h1 = grid[2] - grid[1]
         d[0] = _end_slope(h0, h1, (y[1] - y[0]) / h0, (y[2] - y[1]) / h1)
@@ -82,23 +186,28 @@ def cubic_values(grid: np.ndarray, values: np.ndarray, slopes: np.ndarray, rows:
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def cubic_policy_steps(
-    reward: np.ndarray, lower: np.ndarray, share: np.ndarray, grid: np.ndarray, P: np.ndarray, beta: float,
-    v: np.ndarray, steps: int, span_stop: float,
+    reward: np.ndarray, lower: np.ndarray, share: np.ndarray, sgrid: np.ndarray, meta: np.ndarray, P: np.ndarray,
+    beta: float, v: np.ndarray, steps: int, span_stop: float,
 ) -> tuple[int, float]:
-    """Up to ``steps`` steps ``v ← r_σ + β EV_σ`` in place, ``EV_σ`` read by monotone cubic interpolation.
+    """Up to ``steps`` steps ``v ← r_σ + β EV_σ`` in place, ``EV_σ`` read by the monotone cubic (the tensor
+    product of :func:`tensor_cubic` with several states).
 
-    One state (flat point ``i = x · n_shocks + z``); ``lower``/``share`` (n,)
-    locate tomorrow's state of each point on ``grid``.  Stops after the first
-    step whose increment has span ``max − min`` at most ``span_stop``.
+    Flat point ``i = x · n_shocks + z``; ``lower``/``share`` (n, d) locate tomorrow's state of each point on
+    each state's grid (``meta``: offsets, sizes, strides in ``sgrid``).  Stops after the first step whose
+    increment has span ``max − min`` at most ``span_stop``.
 
     Returns
     -------
     (steps done, span of the last step's increment; inf when none was done)
     """
     n_shocks = P.shape[0]
-    n_grid = grid.shape[0]
+    d = lower.shape[1]
+    n_grid = v.shape[0] // n_shocks
+    size_last = meta[2 * d - 1]
+    last_grid = sgrid[meta[d - 1]:meta[d - 1] + size_last]
     EVt = np.empty((n_shocks, n_grid))
     D = np.empty((n_shocks, n_grid))
+    scratch = np.empty(4 ** (d - 1))
     done = 0
     span = np.inf
     while done < steps:
@@ -108,18 +217,19 @@ def cubic_policy_steps(
                 for zz in range(n_shocks):
                     total += P[z, zz] * v[x * n_shocks + zz]
                 EVt[z, x] = total
-        monotone_slopes(grid, EVt, D)
+        monotone_slopes(last_grid, EVt.reshape(n_shocks * (n_grid // size_last), size_last),
+                        D.reshape(n_shocks * (n_grid // size_last), size_last))
         low = np.inf
         high = -np.inf
         for i in range(reward.shape[0]):
-            z = i % n_shocks
-            k = lower[i]
-            h = grid[k + 1] - grid[k]
-            t1 = share[i]
-            t2 = t1 * t1
-            t3 = t2 * t1
-            e = ((2.0 * t3 - 3.0 * t2 + 1.0) * EVt[z, k] + (t3 - 2.0 * t2 + t1) * h * D[z, k]
-                 + (3.0 * t2 - 2.0 * t3) * EVt[z, k + 1] + (t3 - t2) * h * D[z, k + 1])
+            if d == 1:  # one state: the Hermite form at once
+                k = lower[i, 0]
+                e = hermite(share[i, 0], sgrid[k + 1] - sgrid[k], EVt[i % n_shocks, k], EVt[i % n_shocks, k + 1],
+                            D[i % n_shocks, k], D[i % n_shocks, k + 1])
+            elif d == 2:
+                e = tensor_two(EVt, D, i % n_shocks, sgrid, meta, lower[i], share[i])
+            else:
+                e = tensor_cubic(EVt, D, i % n_shocks, sgrid, meta, lower[i], share[i], scratch)
             value = reward[i] + beta * e
             step = value - v[i]
             low = min(low, step)

@@ -7,7 +7,12 @@ point drawn from the stationary distribution (Young lotteries, see
 policy interpolated multilinearly along the state grids at the path's
 state, for its shock point; tomorrow's state is the choice itself for the
 ``next_of`` state and the ``next`` expressions for the others (evaluated with
-numpy); a value outside a grid is moved to its nearer end and counted.  The
+numpy); a value outside a grid is moved to its nearer end and counted.  With
+other (discrete) choices beside the continuous one, the path takes the
+combination of them chosen at the grid point of largest multilinear weight
+(the nearest corner), and the continuous choice interpolated over the corners
+that chose the same combination (their weights renormalised), so two regimes
+are never averaged.  The
 shock moves by its chain: one uniform draw per path, located in the
 cumulative sums of the chain's row (``numpy.random.default_rng(seed)``; the
 same seed gives the same paths).
@@ -38,7 +43,10 @@ def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
     rng = np.random.default_rng(spec.seed)
     n_z = data.n_shocks
     d = len(data.states)
-    values = np.asarray(policy, dtype=np.float64).reshape(data.n_grid, n_z)
+    chosen_values, combos = problem.split_policy(policy)
+    values = chosen_values.reshape(data.n_grid, n_z)
+    combos = combos.reshape(data.n_grid, n_z)
+    others = problem.choice_values(policy)
     warnings: list[str] = []
     if spec.start is None:
         pi, info = stationary(problem.policy_matrix(policy))
@@ -54,14 +62,18 @@ def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
     states = np.empty((periods, paths, d))
     shocks = np.empty((periods, paths), dtype=np.int64)
     chosen = np.empty((periods, paths))
+    picked = {name: np.empty((periods, paths)) for name in problem.others}
     clamped = 0
     for t in range(periods):
         states[t], shocks[t] = x, z
-        a = _interpolate(data, values, x, z)
+        a, at = _interpolate(data, values, combos, x, z)
         chosen[t] = a
+        fixed = {name: others[name].reshape(data.n_grid, n_z)[at, z] for name in problem.others}
+        for name, value in fixed.items():
+            picked[name][t] = value
         if t + 1 == periods:
             break
-        x, out = _tomorrow(problem, data, x, z, a)
+        x, out = _tomorrow(problem, data, x, z, {problem.choice: a, **fixed})
         clamped += out
         draws = rng.random(paths) * chain[z, -1]
         z = np.minimum((chain[z] <= draws[:, None]).sum(axis=1), n_z - 1)
@@ -70,6 +82,7 @@ def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
     series = {name: states[:, :, k] for k, name in enumerate(data.states)}
     series.update({name: data.shock_table[shocks, k] for k, name in enumerate(data.shocks)})
     series[problem.choice] = chosen
+    series.update(picked)
     summary = {name: summarise(sample) for name, sample in series.items()}
     first_path = {name: sample[:, 0].tolist() for name, sample in series.items()}
     return {"periods": periods, "paths": paths, "seed": spec.seed, "summary": summary, "first_path": first_path,
@@ -100,30 +113,39 @@ def _start(data: Any, start: Any, path: str, paths: int) -> tuple[np.ndarray, np
     return x, np.full(paths, z, dtype=np.int64)
 
 
-def _interpolate(data: Any, values: np.ndarray, x: np.ndarray, z: np.ndarray) -> np.ndarray:
-    """The policy at states ``x`` (paths, d) and shock rows ``z``: multilinear along the state grids."""
+def _interpolate(data: Any, values: np.ndarray, combos: np.ndarray, x: np.ndarray,
+                 z: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The policy at states ``x`` (paths, d) and shock rows ``z``: ``(the continuous choice, the grid point
+    whose combination of the other choices is taken)``; multilinear along the state grids over the corners
+    that chose the nearest corner's combination."""
     sizes = data.state_sizes
     strides = [int(np.prod(sizes[t + 1:])) for t in range(len(sizes))]
     located = [locate(grid, x[:, t])[:2] for t, grid in enumerate(data.state_grids)]
-    out = np.zeros(x.shape[0])
-    for corner in range(2 ** len(sizes)):
-        index = np.zeros(x.shape[0], dtype=np.int64)
-        weight = np.ones(x.shape[0])
+    corners = 2 ** len(sizes)
+    index = np.zeros((corners, x.shape[0]), dtype=np.int64)
+    weight = np.ones((corners, x.shape[0]))
+    for corner in range(corners):
         for t, (lower, share) in enumerate(located):
             bit = (corner >> t) & 1
-            index += strides[t] * (lower + bit)
-            weight *= share if bit else 1.0 - share
-        out += weight * values[index, z]
-    return out
+            index[corner] += strides[t] * (lower + bit)
+            weight[corner] *= share if bit else 1.0 - share
+    paths = np.arange(x.shape[0])
+    nearest = index[np.argmax(weight, axis=0), paths]
+    same = combos[index, z[None, :]] == combos[nearest, z][None, :]
+    kept = np.where(same, weight, 0.0)
+    out = (kept * values[index, z[None, :]]).sum(axis=0) / kept.sum(axis=0)
+    return out, nearest
 
 
-def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray, a: np.ndarray) -> tuple[np.ndarray, int]:
-    """Tomorrow's states (paths, d) after choices ``a``, moved into the grids, and how many were moved."""
+def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray,
+              chosen: dict[str, np.ndarray]) -> tuple[np.ndarray, int]:
+    """Tomorrow's states (paths, d) after the choices ``chosen`` (name → (paths,)), moved into the grids, and
+    how many were moved."""
     env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
     env.update({name: x[:, t] for t, name in enumerate(data.states)})
     env.update({name: data.shock_table[z, k] for k, name in enumerate(data.shocks)})
-    choice = problem.choice
-    env[choice] = a
+    env.update(chosen)
+    a = chosen[problem.choice]
     with np.errstate(all="ignore"):
         for name, expr in data.source.defines:
             env[name] = evaluate(expr, env)
@@ -131,7 +153,9 @@ def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray, a: np.ndarr
         out = np.empty_like(x)
         moved = 0
         for t, grid in enumerate(data.state_grids):
-            value = a if t == problem.target else np.broadcast_to(evaluate(laws[t], env), a.shape)
+            setter = data.setter[t]
+            value = chosen[data.choices[setter]] if setter is not None else np.broadcast_to(
+                evaluate(laws[t], env), a.shape)
             moved += int(np.count_nonzero((value < grid[0]) | (value > grid[-1])))
             out[:, t] = np.clip(value, grid[0], grid[-1])
     return out, moved

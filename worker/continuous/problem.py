@@ -14,11 +14,17 @@ interpolation:
     :mod:`worker.solvers` certifies its fixed point — the solution of the
     interpolated problem, which is itself an approximation of the model.
 ``monotone_cubic``
-    Fritsch–Carlson along the one state (:mod:`worker.continuous.interp_kernels`).
+    Fritsch–Carlson along the one state; with several states, the tensor
+    product of those one-dimensional interpolants (along the last state, then
+    each earlier one: :func:`worker.continuous.interp_kernels.tensor_cubic`).
     Far more accurate for smooth models, but not linear in ``v``: the bracket
     is computed the same way and is not a proof (the result says so).
 
-A policy is a float64 vector: the chosen value at each point.  Its fixed-
+A policy is a float64 vector: the chosen value at each point.  With other
+(discrete) choices beside the continuous one, the continuous one is searched
+for each combination of theirs (one row of ``combos``, in C order of their
+grids) and the best kept; a policy is then (n, 2): the chosen value and the
+index of the combination (as a float).  Its fixed-
 policy steps read ``EV`` by the same interpolation; its transition matrix
 ``P_σ`` (stationary distribution, simulation start) always puts each next
 state's mass on the neighbouring grid points in proportion (multilinear
@@ -69,22 +75,37 @@ class ContinuousProblem:
         self._params = params
         model = doc.model
         self.discount = float(doc.discount)
-        self.choice = data.choices[0]
-        self.target = next((t for t, j in enumerate(data.setter) if j is not None), None)
+        self.choice = data.choices[data.span_choice]
+        self.target = next((t for t, j in enumerate(data.setter) if j == data.span_choice), None)
+        others = [j for j in range(len(data.choices)) if j != data.span_choice]
+        self.others = tuple(data.choices[j] for j in others)
+        self._other_grids = [data.choice_grids[j] for j in others]
+        if others:  # self.combos: one row per combination of the others' values
+            mesh = np.meshgrid(*self._other_grids, indexing="ij")
+            self.combos = np.ascontiguousarray(np.column_stack([m.reshape(-1) for m in mesh]), dtype=np.float64)
+        else:
+            self.combos = np.zeros((1, 0))
         self.cubic = model.interpolation == "monotone_cubic"
         self.interpolation = model.interpolation
         self.shape = tuple(data.state_sizes) + tuple(v.size for v in data.shock_values)
         self.n = data.n
         self.axes: dict[str, list[float]] = {name: grid.tolist() for name, grid in zip(data.states, data.state_grids)}
         self.axes.update((name, values.tolist()) for name, values in zip(data.shocks, data.shock_values))
-        monotone = bool(model.hints.monotone) and self.target is not None
+        monotone = bool(model.hints.monotone) and self.target is not None and not others
+        self.policy_shape = (self.n, 2) if others else (self.n,)
         self.hints = Hints(monotone=monotone, concave=bool(model.hints.concave))
         self.hints_active = monotone or self.hints.concave
         self.scan_points = model.choices[self.choice].size
         self.timings: dict[str, float] = {}
         self.moving_steps_divisor = MOVING_STEPS_DIVISOR
         self.notes: list[str] = []
-        if model.hints.monotone and not monotone:
+        if model.hints.monotone and self.target is not None and others:
+            self.notes.append(
+                f"the monotone hint is not used: `{self.choice}` is searched for each combination of "
+                f"{', '.join(f'`{name}`' for name in self.others)}, and the policy keeps only the best, so the "
+                "choice at the point before need not bound it"
+            )
+        elif model.hints.monotone and not monotone:
             self.notes.append(
                 "the monotone hint is not used: it narrows the search of a continuous choice that is next_of a "
                 "state, and this one is given by min and max"
@@ -100,7 +121,7 @@ class ContinuousProblem:
         self._svals = np.ascontiguousarray(np.column_stack([env[name][:, 0] for name in data.states]))
         self._piz = np.ascontiguousarray(rows % data.n_shocks)
         self._order, self._prev, self._line = self._lines()
-        self.threads = threadpool.threads_for(self.n, self.scan_points)
+        self.threads = threadpool.threads_for(self.n, self.scan_points * self.combos.shape[0])
         if self.target is not None:
             grid = data.state_grids[self.target]
             self.policy_resolution = POLICY_RESOLUTION * float(grid[-1] - grid[0])
@@ -131,9 +152,9 @@ class ContinuousProblem:
         states = np.empty((0, len(data.states)))
         self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
-                       False, False, self.scan_points, none_f, none_f, none_f, 0, 0)
-        self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f, none_f,
-                          np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
+                       False, False, self.scan_points, self.combos, none_f, none_f, none_f, none_i, 0, 0)
+        self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
+                          self.combos, none_i, none_f, np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
 
     @property
     def model_data(self) -> ModelData:
@@ -154,62 +175,83 @@ class ContinuousProblem:
         return order, prev, length
 
     def continuation(self, v: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """``(EVt, D)``: ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` and its monotone cubic slopes (cubic only)."""
+        """``(EVt, D)``: ``EVt[z, x'] = Σ_z' P[z, z'] v[x', z']`` and its monotone cubic slopes along the last
+        state (cubic only)."""
         data = self._data
         values = np.asarray(v, dtype=np.float64).reshape(data.n_grid, data.n_shocks)
         EVt = np.ascontiguousarray(data.transition @ values.T)
         if not self.cubic:
             return EVt, np.zeros((1, 1))
         D = np.empty_like(EVt)
-        monotone_slopes(data.state_grids[0], EVt, D)
+        last = data.state_grids[-1]
+        monotone_slopes(last, EVt.reshape(-1, last.size), D.reshape(-1, last.size))
         return EVt, D
 
     def bellman_step(
         self, v: np.ndarray, *, restricted: bool = False, policy_guess: np.ndarray | None = None
     ) -> tuple[np.ndarray, np.ndarray]:
-        """One step of the fitted Bellman operator; the policy is the (n,) chosen values.
+        """One step of the fitted Bellman operator; the policy is the (n,) chosen values (with other choices,
+        (n, 2): the values and the combinations' indices).
 
         ``restricted`` uses the hints (see :mod:`worker.continuous.search`);
         unrestricted, the search starts from a scan of the interval.
         """
         EVt, D = self.continuation(v)
         out_v, out_a, out_r = np.empty(self.n), np.empty(self.n), np.empty(self.n)
+        out_j = np.zeros(self.n, dtype=np.int64)
         guess = self._guess(policy_guess)
         concave = bool(restricted and self.hints.concave)
         monotone = bool(restricted and self.hints.monotone)
         step = self._step(EVt, D, self._svals, self._piz, self._order, self._prev, guess, concave, monotone,
-                          out_v, out_a, out_r)
+                          out_v, out_a, out_r, out_j)
         lines = self.n // self._line
         blocks = [(start * self._line, stop * self._line)
                   for start, stop in threadpool.row_blocks(lines, self.threads * threadpool.BLOCKS_PER_THREAD)]
         threadpool.run_blocks(step, blocks if self.threads > 1 else [(0, self.n)], self.threads)
-        return out_v, out_a
+        return out_v, self._policy(out_a, out_j)
+
+    def _policy(self, chosen: np.ndarray, combos: np.ndarray) -> np.ndarray:
+        """The policy array: the chosen values, with the combinations beside them when there are others."""
+        if not self.others:
+            return chosen
+        return np.ascontiguousarray(np.column_stack([chosen, combos.astype(np.float64)]))
+
+    def split_policy(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``(chosen values (n,), combinations (n,) int64)`` of a policy."""
+        array = np.asarray(policy, dtype=np.float64)
+        if not self.others:
+            return np.ascontiguousarray(array.reshape(self.n)), np.zeros(self.n, dtype=np.int64)
+        array = array.reshape(self.n, 2)
+        return np.ascontiguousarray(array[:, 0]), np.ascontiguousarray(array[:, 1]).astype(np.int64)
 
     def _guess(self, policy_guess: np.ndarray | None) -> np.ndarray | None:
         if policy_guess is None:
             return None
         guess = np.asarray(policy_guess)
+        if self.others and guess.dtype.kind == "f" and guess.shape == (self.n, 2):
+            guess = guess[:, 0]
         if guess.dtype.kind != "f" or guess.shape != (self.n,):
             return None
         return np.ascontiguousarray(guess, dtype=np.float64)
 
     def _step(self, EVt: np.ndarray, D: np.ndarray, svals: np.ndarray, piz: np.ndarray, order: np.ndarray,
               prev: np.ndarray, guess: np.ndarray | None, concave: bool, monotone: bool,
-              out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray) -> Any:
+              out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray, out_j: np.ndarray) -> Any:
         has_guess = guess is not None
         guess = guess if has_guess else np.zeros(1)
         search = self._k.search
 
         def run(start: int, stop: int) -> None:
             search(EVt, D, self.discount, self._params, self._sgrid, self._meta, self._data.shock_table, svals,
-                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, out_v, out_a, out_r,
-                   start, stop)
+                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self.combos, out_v,
+                   out_a, out_r, out_j, start, stop)
 
         return run
 
     def choose_at(self, v: np.ndarray, states: np.ndarray, rows: np.ndarray, guess: np.ndarray | None,
                   *, restricted: bool = True) -> tuple[np.ndarray, np.ndarray]:
-        """The search at any points: ``states`` (P, d) values, ``rows`` (P,) shock rows; ``(values, choices)``.
+        """The search at any points: ``states`` (P, d) values, ``rows`` (P,) shock rows; ``(values, choices)``
+        (with other choices, ``choices`` is the (P, 2) policy: the values and the combinations).
 
         Off the grid the state values need not be grid points (test points of the
         Euler errors); ``guess`` (P,) seeds a concave search.
@@ -217,14 +259,15 @@ class ContinuousProblem:
         EVt, D = self.continuation(v)
         count = rows.shape[0]
         out_v, out_a, out_r = np.empty(count), np.empty(count), np.empty(count)
+        out_j = np.zeros(count, dtype=np.int64)
         order = np.arange(count, dtype=np.int64)
         prev = np.full(count, -1, dtype=np.int64)
         run = self._step(EVt, D, np.ascontiguousarray(states, dtype=np.float64),
                          np.ascontiguousarray(rows, dtype=np.int64), order, prev,
                          None if guess is None else np.ascontiguousarray(guess, dtype=np.float64),
-                         bool(restricted and self.hints.concave), False, out_v, out_a, out_r)
+                         bool(restricted and self.hints.concave), False, out_v, out_a, out_r, out_j)
         run(0, count)
-        return out_v, out_a
+        return out_v, (np.column_stack([out_a, out_j.astype(np.float64)]) if self.others else out_a)
 
     def solve_endogenous_grid(self, initial: np.ndarray, solve_from: Any, **options: Any) -> Any:
         """``solver.method: endogenous_grid`` (:mod:`worker.continuous.egm`); ``initial`` is not needed."""
@@ -244,7 +287,7 @@ class ContinuousProblem:
         if self.egm_rule is not None:
             return self.egm_rule
         data = self._data
-        if len(data.states) != 1:
+        if len(data.states) != 1 or self.others:
             return None
         grid = data.state_grids[0]
         n_z = data.n_shocks
@@ -262,15 +305,16 @@ class ContinuousProblem:
 
     def nodes(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
         """``(reward, tomorrow (n, d), clamped (n,), index (n, 2^d), weight (n, 2^d))`` of a policy (cached)."""
-        a = np.ascontiguousarray(policy, dtype=np.float64).reshape(self.n)
-        if self._nodes_for is not None and np.array_equal(self._nodes_for, a):
+        a, jc = self.split_policy(policy)
+        key = np.asarray(policy, dtype=np.float64)
+        if self._nodes_for is not None and np.array_equal(self._nodes_for, key):
             return self._nodes
         data = self._data
         reward = np.empty(self.n)
         tomorrow = np.empty((self.n, len(data.states)))
         ok = np.empty(self.n, dtype=np.bool_)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, self._svals, self._piz, a,
-                          reward, tomorrow, ok)
+                          self.combos, jc, reward, tomorrow, ok)
         if not ok.all():
             i = int(np.flatnonzero(~ok)[0])
             raise ValueError(
@@ -291,8 +335,9 @@ class ContinuousProblem:
                 bit = (corner >> t) & 1
                 index[:, corner] += self._strides[t] * (lower + bit)
                 weight[:, corner] *= share if bit else 1.0 - share
-        self._nodes_for = a.copy()
-        self._nodes = (reward, tomorrow, clamped, index, weight, lowers[0], weights[0])
+        self._nodes_for = key.copy()
+        self._nodes = (reward, tomorrow, clamped, index, weight, np.ascontiguousarray(np.column_stack(lowers)),
+                       np.ascontiguousarray(np.column_stack(weights)))
         return self._nodes
 
     def policy_steps(
@@ -302,8 +347,8 @@ class ContinuousProblem:
         reward, _, _, index, weight, lower, share = self.nodes(policy)
         out = np.array(v, dtype=np.float64).reshape(self.n)
         if self.cubic:
-            done, span = cubic_policy_steps(reward, lower, share, self._data.state_grids[0],
-                                            self._data.transition, self.discount, out, int(steps), float(span_stop))
+            done, span = cubic_policy_steps(reward, lower, share, self._sgrid, self._meta, self._data.transition,
+                                            self.discount, out, int(steps), float(span_stop))
         else:
             EVt, spare = self._scratch
             done, span = kernels.policy_steps(reward, index, weight, self._data.transition, self.discount, out,
@@ -323,12 +368,23 @@ class ContinuousProblem:
         indptr, indices, values = kernels.policy_csr(index, weight, self._data.transition)
         return sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
 
-    def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], None]:
-        """``policy`` (the chosen values, nested to ``shape``); no ``policy_index`` for a continuous choice."""
-        return {self.choice: np.asarray(policy, dtype=np.float64).reshape(self.shape).tolist()}, None
+    def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any] | None]:
+        """``policy`` (the chosen values, nested to ``shape``) and ``policy_index``: grid indices of the other
+        choices, none for the continuous one (None when it is the only choice)."""
+        values = {name: chosen.reshape(self.shape).tolist() for name, chosen in self.choice_values(policy).items()}
+        if not self.others:
+            return values, None
+        _, jc = self.split_policy(policy)
+        sizes = tuple(grid.size for grid in self._other_grids)
+        indices = np.unravel_index(jc, sizes)
+        return values, {name: index.reshape(self.shape).tolist() for name, index in zip(self.others, indices)}
 
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
-        return {self.choice: np.asarray(policy, dtype=np.float64).reshape(self.n)}
+        """Per choice (in the model's order), the (n,) chosen value."""
+        a, jc = self.split_policy(policy)
+        found = {self.choice: a}
+        found.update((name, self.combos[jc, k]) for k, name in enumerate(self.others))
+        return {name: found[name] for name in self._data.choices}
 
     def state_values(self) -> dict[str, np.ndarray]:
         env = self._data.state_env(np.arange(self.n, dtype=np.int64))
@@ -337,7 +393,7 @@ class ContinuousProblem:
     def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
         """The continuous choice's search and interpolation, clamped next values, and notes."""
         _, tomorrow, clamped, _, _, _, _ = self.nodes(policy)
-        a = np.asarray(policy, dtype=np.float64).reshape(self.n)
+        a, _ = self.split_policy(policy)
         warnings: list[str] = []
         if clamped.any():
             warnings.append(
@@ -363,6 +419,9 @@ class ContinuousProblem:
             "monotone_narrowing": self.hints.monotone,
             "clamped_next": int(clamped.sum()),
         }
+        if self.others:
+            continuous["searched_for_each"] = list(self.others)
+            continuous["combinations"] = int(self.combos.shape[0])
         if self.target is not None:
             grid = self._data.state_grids[self.target]
             continuous["at_lower_end"] = int(np.count_nonzero(a <= grid[0]))

@@ -244,11 +244,9 @@ elif width > 0.0:
                     v = u
                     gv = gu
 #KINK#
-out_v[i] = fx
-out_a[i] = x
-out_r[i] = rx
 """
-"""The search's text, run inside the kernel's loop over points with ``f``, ``low``, ``high``,
+"""The search's text, run inside the kernel's loop over points (and over combinations of the other choices),
+leaving the best value, choice and reward in ``fx``, ``x``, ``rx``; with ``f``, ``low``, ``high``,
 ``grid_off``/``grid_size`` (−1/0 without a grid to scan), and the kernel's arguments in scope;
 ``#KINK#`` is where :data:`KINK_TEXT` goes with linear interpolation."""
 

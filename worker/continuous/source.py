@@ -13,18 +13,22 @@ not depend on the choice are computed once per point (the hoisting of
 
 Kernels (``P`` points given by their state values ``svals`` (P, d) and shock
 row ``piz`` (P,); ``EVt`` (n_shocks, n_grid) the continuation, ``D`` its
-slopes along the one state for ``monotone_cubic`` (unused for ``linear``)):
+slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 * ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
-  has_guess, concave, monotone, scan_n, out_v, out_a, out_r, start, stop)``
-  — the maximisation over the interval at the points ``order[start:stop]``;
+  has_guess, concave, monotone, scan_n, combos, out_v, out_a, out_r, out_j,
+  start, stop)`` — the maximisation over the interval at the points
+  ``order[start:stop]``, once for each row of ``combos`` (the values of the
+  other choices, one combination a row; one empty row without them), the
+  best combination's index in ``out_j``;
   ``prev[q]`` is the position of the point before it on the same line of
   the chosen state (``-1`` at a line's start), whose choice narrows the
   bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
   search itself.
-* ``policy_at(p, sgrid, ztab, svals, piz, a, out_r, out_x, out_ok)`` — the
-  reward and tomorrow's state values ``out_x`` (P, d) at the fixed choices
-  ``a``; ``out_ok`` false where the choice is not allowed.
+* ``policy_at(p, sgrid, ztab, svals, piz, a, combos, jc, out_r, out_x,
+  out_ok)`` — the reward and tomorrow's state values ``out_x`` (P, d) at the
+  fixed choices ``a`` and combinations ``jc`` of the others; ``out_ok`` false
+  where the choice is not allowed.
 """
 
 from __future__ import annotations
@@ -44,30 +48,32 @@ BOUND_HIGH = "_bound_high"
 """Names of the interval's ends when they are expressions: two defines placed first (they use no choice)."""
 
 
-def module_text(model: ModelSource, target: int | None, grid_sizes_known: int, cubic: bool) -> str:
+def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool) -> str:
     """Source of the continuous-choice module.
 
     Parameters
     ----------
     model : ModelSource
-        Expressions with their numbers lifted; with ``target`` None its first
-        two defines are the interval's ends (:data:`BOUND_LOW`, :data:`BOUND_HIGH`).
-    target : int or None
-        The state the choice is ``next_of`` (its interval is that grid's ends), or None.
-    grid_sizes_known : int
-        Number of states (their grids are in ``sgrid`` with offsets in the kernel's ``meta``).
+        Expressions with their numbers lifted, the continuous choice first among ``choices`` (``c_0``) and
+        the other choices after it (``c_1 …``, read from the kernels' ``combos`` table); when the
+        continuous choice is not ``next_of`` a state, the first two defines are the interval's ends
+        (:data:`BOUND_LOW`, :data:`BOUND_HIGH`).
+    setters : per state, the position in ``model.choices`` of the choice it is ``next_of``, or None
+        (its ``next`` law); the state set by position 0 is the continuous choice's target, whose grid's
+        ends are its interval.
     cubic : bool
-        ``monotone_cubic`` (one state) instead of multilinear interpolation.
+        ``monotone_cubic`` (its tensor product with several states) instead of multilinear interpolation.
     """
-    writer = _Writer(model, target, cubic)
+    writer = _Writer(model, setters, cubic)
     header = [
-        f"# fixq generated continuous-choice kernels: {writer.d} states, {writer.m} shocks, target {target}, "
+        f"# fixq generated continuous-choice kernels: {writer.d} states, {writer.m} shocks, setters {setters}, "
         f"interpolation {'monotone_cubic' if cubic else 'linear'}",
         f"# generators {generator_hash()}",
         "import numpy as np",
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
+        "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
     ]
@@ -75,9 +81,10 @@ def module_text(model: ModelSource, target: int | None, grid_sizes_known: int, c
 
 
 class _Writer:
-    def __init__(self, model: ModelSource, target: int | None, cubic: bool) -> None:
+    def __init__(self, model: ModelSource, setters: tuple[int | None, ...], cubic: bool) -> None:
         self.model = model
-        self.target = target
+        self.setters = setters
+        self.target = next((t for t, j in enumerate(setters) if j == 0), None)
         self.cubic = cubic
         self.d = len(model.states)
         self.m = len(model.shocks)
@@ -113,16 +120,25 @@ class _Writer:
             out.add(f"z_{t} = ztab[iz, {t}]")
         out.extend(self.state_lines)
 
+    def _others(self, out: Lines, combo: str) -> None:
+        """The other choices' values in combination ``combo`` of the ``combos`` table."""
+        for k in range(1, len(self.model.choices)):
+            out.add(f"c_{k} = combos[{combo}, {k - 1}]")
+
     def _prologue(self, out: Lines) -> None:
         for k in range(len(self.model.params)):
             out.add(f"p_{k} = p[{k}]")
         for t in range(self.d):
             out.add(f"off_{t} = meta[{t}]", f"size_{t} = meta[{self.d + t}]", f"stride_{t} = meta[{2 * self.d + t}]")
+        if self.cubic and self.d > 1:
+            out.add(f"cub_lo = np.empty({self.d}, dtype=np.int64)", f"cub_w = np.empty({self.d})",
+                    f"cub_s = np.empty({4 ** (self.d - 1)})")
 
     def _tomorrow(self, out: Lines) -> None:
         """``x_t``: tomorrow's state values at choice ``c_0`` (NaN-checked by the caller)."""
         for t in range(self.d):
-            out.add(f"x_{t} = c_0" if t == self.target else f"x_{t} = {self._src(self.next[t])}")
+            j = self.setters[t]
+            out.add(f"x_{t} = c_{j}" if j is not None else f"x_{t} = {self._src(self.next[t])}")
 
     def _model_at_choice(self, out: Lines, continuation: bool) -> None:
         """Sets ``ok``, ``r`` and (with ``continuation``) ``val`` at choice ``c_0``."""
@@ -148,6 +164,12 @@ class _Writer:
         """``e``: the continuation at ``x`` (clamped to the grid's ends)."""
         for t in range(self.d):
             out.add(f"lo_{t}, w_{t}, cl_{t} = locate_one(sgrid, off_{t}, size_{t}, x_{t})")
+        if self.cubic and self.d > 1:
+            for t in range(self.d):
+                out.add(f"cub_lo[{t}] = lo_{t}", f"cub_w[{t}] = w_{t}")
+            out.add("e = tensor_two(EVt, D, iz, sgrid, meta, cub_lo, cub_w)" if self.d == 2 else
+                    "e = tensor_cubic(EVt, D, iz, sgrid, meta, cub_lo, cub_w, cub_s)")
+            return
         if self.cubic:
             out.add(
                 "h = sgrid[off_0 + lo_0 + 1] - sgrid[off_0 + lo_0]",
@@ -172,7 +194,7 @@ class _Writer:
         out.add(JIT)
         out.add(
             "def search(EVt, D, beta, p, sgrid, meta, ztab, svals, piz, order, prev, guess, has_guess, concave, "
-            "monotone, scan_n, out_v, out_a, out_r, start, stop):"
+            "monotone, scan_n, combos, out_v, out_a, out_r, out_j, start, stop):"
         )
         out.depth += 1
         self._prologue(out)
@@ -185,13 +207,19 @@ class _Writer:
                         f"grid_off = off_{t}", f"grid_size = size_{t}")
             else:
                 out.add("low = d_0", "high = d_1", "grid_off = -1", "grid_size = 0")
-            with out.block("def f(c_0):"):
-                for t in range(self.d):
-                    out.add(f"x_{t} = np.nan")
-                self._model_at_choice(out, continuation=True)
-                out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
-            text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic else self._kinks())
-            out.extend(text.strip("\n").split("\n"))
+            out.add("best_v = -np.inf", "best_a = np.nan", "best_r = -np.inf", "best_j = 0")
+            with out.block("for cc in range(combos.shape[0]):"):
+                self._others(out, "cc")
+                with out.block("def f(c_0):"):
+                    for t in range(self.d):
+                        out.add(f"x_{t} = np.nan")
+                    self._model_at_choice(out, continuation=True)
+                    out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
+                text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic else self._kinks())
+                out.extend(text.strip("\n").split("\n"))
+                with out.block("if cc == 0 or fx > best_v:"):
+                    out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
+            out.add("out_v[i] = best_v", "out_a[i] = best_a", "out_r[i] = best_r", "out_j[i] = best_j")
         return out.text()
 
     def _kinks(self) -> str:
@@ -205,12 +233,13 @@ class _Writer:
     def policy_at(self) -> str:
         out = Lines()
         out.add(JIT)
-        out.add("def policy_at(p, sgrid, meta, ztab, svals, piz, a, out_r, out_x, out_ok):")
+        out.add("def policy_at(p, sgrid, meta, ztab, svals, piz, a, combos, jc, out_r, out_x, out_ok):")
         out.depth += 1
         self._prologue(out)
         with out.block("for i in range(a.shape[0]):"):
             self._point(out)
             out.add("c_0 = a[i]")
+            self._others(out, "jc[i]")
             self._model_at_choice(out, continuation=False)
             out.add("out_ok[i] = ok", "out_r[i] = r")
             with out.block("if ok:"):

@@ -13,7 +13,12 @@ from worker import expressions
 from worker.document._faults import Fault, fault, number
 from worker.errors import InvalidDocument, join_path
 
-__all__ = ["continuous_faults", "continuous_model_faults"]
+__all__ = ["CUBIC_MAX_STATES", "continuous_faults", "continuous_model_faults"]
+
+CUBIC_MAX_STATES = 3
+"""Most state variables of a model with monotone_cubic interpolation (count): its tensor product reads
+4^(d−1) lines of the grid per evaluation, 16 at three states (common practice: the cost grows fourfold with
+each state)."""
 
 
 def continuous_faults(choice: Any) -> list[Fault]:
@@ -51,12 +56,12 @@ def continuous_model_faults(model: Any) -> list[Fault]:
     """Faults of a continuous choice within its model, and of ``interpolation``."""
     continuous = [name for name, choice in model.choices.items() if choice.continuous]
     faults = []
-    if continuous and len(model.choices) > 1:
-        others = ", ".join(f"`{name}`" for name in model.choices if name != continuous[0])
+    if len(continuous) > 1:
+        names = ", ".join(f"`{name}`" for name in continuous)
         faults.append(fault(
-            join_path("choices", continuous[0], "continuous"),
-            f"a continuous choice must be the model's only choice, and this model also has {others}; make them "
-            "discrete, or give them a continuous model of their own",
+            join_path("choices", continuous[1], "continuous"),
+            f"a model may have one continuous choice, and this one has {len(continuous)} ({names}); make the "
+            "others discrete (a grid or a menu): the continuous one is then searched for each combination of them",
         ))
     known = [*model.params, *model.states, *model.shocks]
     for name in continuous:
@@ -80,8 +85,9 @@ def continuous_model_faults(model: Any) -> list[Fault]:
         if not continuous:
             faults.append(fault("interpolation", 'monotone_cubic interpolation applies to a model with a continuous '
                                 'choice; a discrete choice reads tomorrow\'s value at grid points or linearly'))
-        elif len(model.states) != 1:
-            faults.append(fault("interpolation", f"monotone_cubic interpolation needs one state, and this model has "
+        elif len(model.states) > CUBIC_MAX_STATES:
+            faults.append(fault("interpolation", f"monotone_cubic interpolation reads 4^(d−1) lines of the grid at "
+                                f"each point, so it takes at most {CUBIC_MAX_STATES} states, and this model has "
                                 f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
     if continuous and getattr(model, "taste_shocks", None) is not None:
         faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "

@@ -159,8 +159,8 @@ class ChoiceSpec(Part):
         description=(
             "Choose any value of an interval instead of a point of a grid: with next_of, tomorrow's value of "
             "that state anywhere between its grid's ends; with min and max, any number between them. "
-            "Tomorrow's value is interpolated between grid points as model.interpolation says. A model with "
-            "a continuous choice has no other choice."
+            "Tomorrow's value is interpolated between grid points as model.interpolation says. A model has at "
+            "most one continuous choice; it is searched for each combination of the other choices' values."
         ),
     )
 
@@ -305,8 +305,8 @@ class GridModel(Part):
         description=(
             'How tomorrow\'s value is read between grid points for a continuous choice: "linear" (the default; '
             "the error bound then certifies the interpolated problem) or \"monotone_cubic\" (Fritsch–Carlson, "
-            "shape-preserving and far more accurate for smooth models; one state only; its error bound is "
-            "computed the same way but is not a proof)."
+            "shape-preserving and far more accurate for smooth models; up to three states, as a tensor product "
+            "of one-dimensional interpolants; its error bound is computed the same way but is not a proof)."
         ),
     )
     taste_shocks: TasteShocks | None = Field(

@@ -188,6 +188,11 @@ class ContinuousChoice(Reported):
     at_upper_end: int = absent_unless(
         description="next_of choices: points choosing the highest value of the state's grid."
     )
+    searched_for_each: list[str] = absent_unless(
+        description="With other choices beside the continuous one: their names; the continuous choice is searched "
+        "for each combination of their values, and the best combination kept."
+    )
+    combinations: int = absent_unless(description="With other choices: how many combinations of their values.")
     endogenous_grid: EndogenousGrid | EndogenousGridByPeriod = absent_unless(
         description="With solver.method endogenous_grid (finite horizon: by period)."
     )

@@ -133,7 +133,8 @@ def backward_induction(
     T, n = plan.periods, problem.n
     values = np.empty((T, n))
     # Choice indices, or the chosen values of a continuous choice (float64), as the problem's steps give them.
-    policies = np.empty((T, n), dtype=np.float64 if getattr(problem, "choose_at", None) is not None else np.int64)
+    policies = np.empty((T, *getattr(problem, "policy_shape", (n,))),  # (n, 2): a continuous choice beside others
+                        dtype=np.float64 if getattr(problem, "choose_at", None) is not None else np.int64)
     bounds = np.zeros(T)
     log: list[Entry] = ConvergenceLog()
     warnings: list[str] = []
@@ -183,7 +184,8 @@ def backward_induction(
             "periods": T,
             "distance": float(np.abs(tv - after).max()),
             "error_bound": float(bounds[t:].max()),
-            "policy_changes": n if t == T - 1 else int(np.count_nonzero(policy != policies[t + 1])),
+            "policy_changes": n if t == T - 1 else int(np.count_nonzero(
+                (policy != policies[t + 1]).reshape(n, -1).any(axis=1))),
             "seconds": elapsed(),
         }
         log.append(entry)
@@ -231,7 +233,8 @@ def period_step(
         scale = max(float(np.abs(tv).max()), float(np.abs(after).max()))
         broken = int(np.count_nonzero(tv > hinted_v + ROUNDING_ULPS * EPS * scale))
         verification["periods"] += 1
-        verification["policy_changes"] += int(np.count_nonzero(policy != np.asarray(hinted_policy)))
+        verification["policy_changes"] += int(np.count_nonzero(
+            (policy != np.asarray(hinted_policy)).reshape(policy.shape[0], -1).any(axis=1)))
         if broken:
             if verification["hints_held"]:
                 warnings.append(

@@ -328,6 +328,10 @@ def _policy_array(policy: np.ndarray) -> np.ndarray:
 
 def _changes(problem: CompiledProblem, policy: np.ndarray, before: np.ndarray) -> int:
     """Points whose choice changed; a continuous choice must move by more than ``policy_resolution``."""
+    if policy.dtype.kind == "f" and policy.ndim == 2:  # a continuous choice's values, and the others' combination
+        resolution = float(getattr(problem, "policy_resolution", 0.0))
+        return int(np.count_nonzero(~(np.abs(policy[:, 0] - before[:, 0]) <= resolution)
+                                    | (policy[:, 1] != before[:, 1])))
     if policy.dtype.kind == "f":
         resolution = float(getattr(problem, "policy_resolution", 0.0))
         return int(np.count_nonzero(~(np.abs(policy - before) <= resolution)))

@@ -1,0 +1,369 @@
+"""A continuous choice beside a discrete one, against an independent plain-numpy solver written here.
+
+Invented household: assets ``a`` on a grid, income ``y`` from a two-state chain; each period it chooses
+whether to work (``work`` ∈ {0, 1}, a menu: working adds ``wage · y`` to cash and costs ``disutility`` in
+utility) and how much to save (``save``, tomorrow's assets anywhere in [0, a_max]), with log utility.
+
+The references: (1) the fitted problem's fixed point (tomorrow's value read linearly between grid points)
+solved by a numpy value iteration whose maximisation is exact — on each grid segment the continuation is
+linear, so the first-order condition ``1/c = β·slope`` gives the segment's maximum in closed form, and the
+best segment and the best work choice win; (2) scipy's bounded ``minimize_scalar`` at every point and work
+choice, at that fixed point, seeded by a brute-force scan of a fine grid of savings.
+"""
+
+from __future__ import annotations
+
+import copy
+from typing import Any
+
+import numpy as np
+import pytest
+from scipy.optimize import minimize_scalar
+
+from worker import environment, threadpool
+from worker.document import parse_document
+from worker.errors import InvalidDocument
+from worker.solve import compile_document, solve
+from worker.solvers import METHODS
+
+BETA, R, WAGE, DISUTILITY, BASE, A_MAX = 0.9, 0.04, 1.0, 0.4, 0.3, 8.0
+INCOME = np.array([0.6, 1.4])
+CHAIN = np.array([[0.75, 0.25], [0.35, 0.65]])
+WORK = np.array([0.0, 1.0])
+
+HOUSEHOLD: dict[str, Any] = {
+    "kind": "grid",
+    "params": {"r": R, "wage": WAGE, "disutility": DISUTILITY, "base": BASE},
+    "states": {"a": {"min": 0.0, "max": A_MAX, "points": 30, "spacing": "power", "exponent": 1.5}},
+    "shocks": {"y": {"markov": {"values": INCOME.tolist(), "matrix": CHAIN.tolist()}, "transform": "none"}},
+    "choices": {"work": {"values": WORK.tolist()}, "save": {"next_of": "a", "continuous": True}},
+    "define": {"c": "(1 + r) * a + base + work * wage * y - save"},
+    "reward": "log(c) - disutility * work",
+    "feasible": ["c > 0"],
+}
+"""Invented: whether to work and how much to save."""
+
+
+def _document(hints: dict | None = None, **report: Any) -> dict[str, Any]:
+    model = copy.deepcopy(HOUSEHOLD)
+    if hints is not None:
+        model["hints"] = hints
+    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
+            "report": report}
+
+
+def _cash(grid: np.ndarray) -> np.ndarray:
+    """Cash on hand (points, shocks, work options)."""
+    return (1 + R) * grid[:, None, None] + BASE + WORK[None, None, :] * WAGE * INCOME[None, :, None]
+
+
+def _exact_bellman(v: np.ndarray, grid: np.ndarray, at: np.ndarray | None = None
+                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The fitted Bellman operator with an exact maximisation: ``(Tv, save, work index)``, (points, shocks),
+    at the grid points or at the assets ``at``."""
+    continuation = v @ CHAIN.T  # (points, shocks): E[v(a', y') | y]
+    cash = _cash(grid if at is None else at)
+    best = np.full(cash.shape, -np.inf)
+    chosen = np.full(cash.shape, np.nan)
+    for j in range(grid.size - 1):
+        slope = (continuation[j + 1] - continuation[j]) / (grid[j + 1] - grid[j])
+        slope = slope[None, :, None]
+        with np.errstate(divide="ignore", invalid="ignore"):
+            interior = cash - 1.0 / (BETA * slope)
+        upper = np.minimum(grid[j + 1], cash)
+        save = np.clip(np.where(slope > 0, interior, grid[j]), grid[j], upper)
+        c = cash - save
+        with np.errstate(divide="ignore", invalid="ignore"):
+            value = np.where((c > 0) & (grid[j] < cash), np.log(np.where(c > 0, c, 1.0))
+                             - DISUTILITY * WORK[None, None, :]
+                             + BETA * (continuation[j][None, :, None] + slope * (save - grid[j])), -np.inf)
+        better = value > best
+        best[better], chosen[better] = value[better], save[better]
+    work = np.argmax(best, axis=2)
+    take = np.take_along_axis
+    return (take(best, work[..., None], 2)[..., 0], take(chosen, work[..., None], 2)[..., 0], work)
+
+
+@pytest.fixture(scope="module")
+def reference() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """``(grid, v*, save, work)`` of the fitted problem, iterated until a step moves ``v`` by at most 1e-13."""
+    grid = np.array(solve(_document())["axes"]["a"])
+    v = np.zeros((grid.size, INCOME.size))
+    for _ in range(2000):
+        tv, save, work = _exact_bellman(v, grid)
+        moved = np.abs(tv - v).max()
+        v = tv
+        if moved <= 1e-13:
+            break
+    return grid, v, save, work
+
+
+@pytest.fixture(scope="module")
+def household() -> dict[str, Any]:
+    return solve(_document({"concave": True}, stationary=True, euler_errors=True,
+                           simulation={"periods": 40, "paths": 30, "seed": 5}))
+
+
+def test_the_value_and_policy_are_the_independent_solvers(household: dict, reference: tuple) -> None:
+    grid, v, save, work = reference
+    assert household["status"] == "converged"
+    gap = np.abs(np.array(household["value"]) - v).max()
+    assert gap <= household["error_bound"] + 1e-11
+    np.testing.assert_array_equal(np.array(household["policy"]["work"]), WORK[work])
+    np.testing.assert_array_equal(np.array(household["policy_index"]["work"]), work)
+    assert "save" not in household["policy_index"]
+    # The fixed points agree to 1e-10 or so; the maximiser moves with the value by about gap / curvature.
+    np.testing.assert_allclose(np.array(household["policy"]["save"]), save, atol=1e-5)
+    # Both regimes occur: the poor work at low assets, the rich rest.
+    assert 0 < work.sum() < work.size
+
+
+def test_scipy_finds_the_same_maximum_at_every_point(household: dict, reference: tuple) -> None:
+    grid, v, _, _ = reference
+    continuation = v @ CHAIN.T
+    cash = _cash(grid)
+    found_value = np.array(household["value"])
+    for i in range(grid.size):
+        for z in range(INCOME.size):
+            best = -np.inf
+            for w in range(WORK.size):
+                top = min(A_MAX, cash[i, z, w] * (1 - 1e-12))
+
+                def loss(s: float, i: int = i, z: int = z, w: int = w) -> float:
+                    c = cash[i, z, w] - s
+                    if c <= 0:
+                        return np.inf
+                    return -(np.log(c) - DISUTILITY * WORK[w] + BETA * np.interp(s, grid, continuation[:, z]))
+
+                fine = np.linspace(0.0, top, 4001)  # brute force first, then Brent in the best cell
+                k = int(np.argmin([loss(s) for s in fine]))
+                lo, hi = fine[max(k - 1, 0)], fine[min(k + 1, fine.size - 1)]
+                found = minimize_scalar(loss, bounds=(lo, hi), method="bounded", options={"xatol": 1e-12})
+                best = max(best, -found.fun, -loss(fine[k]))
+            # fixq's value is the Bellman step's maximum at the fixed point, to within its error bound
+            assert found_value[i, z] == pytest.approx(best, abs=household["error_bound"] + 1e-9), (i, z)
+
+
+def test_without_hints_the_scan_finds_the_same_household(household: dict) -> None:
+    plain = solve(_document())
+    assert np.abs(np.array(plain["value"]) - np.array(household["value"])).max() <= 1e-8
+    np.testing.assert_array_equal(np.array(plain["policy"]["work"]), np.array(household["policy"]["work"]))
+
+
+def test_the_report_describes_both_choices(household: dict) -> None:
+    described = household["diagnostics"]["continuous_choice"]
+    assert described["choice"] == "save" and described["searched_for_each"] == ["work"]
+    assert described["combinations"] == 2
+    means = household["stationary"]["means"]
+    assert means["a"] == pytest.approx(means["save"], abs=1e-9)  # Young's lotteries keep the mean
+    assert 0.0 <= means["work"] <= 1.0
+    path = household["simulation"]["first_path"]
+    assert set(path["work"]) <= {0.0, 1.0} and len(path["save"]) == 40
+
+
+def test_the_endogenous_grid_method_says_which_condition_fails() -> None:
+    document = _document()
+    document["solver"]["method"] = "endogenous_grid"
+    with pytest.raises(InvalidDocument) as info:
+        solve(document)
+    assert any(e["path"] == "solver.method" and "only choice" in e["message"] and "`work`" in e["message"]
+               for e in info.value.errors), info.value.errors
+
+
+def test_two_continuous_choices_are_refused() -> None:
+    document = _document()
+    document["model"]["choices"]["hours"] = {"min": 0.0, "max": 1.0, "continuous": True}
+    with pytest.raises(InvalidDocument) as info:
+        parse_document(document)
+    assert any(e["path"] == "model.choices.hours.continuous" and "one continuous choice" in e["message"]
+               for e in info.value.errors), info.value.errors
+
+
+def test_choosing_consumption_between_bounds_gives_the_same_household(household: dict) -> None:
+    # The same household choosing consumption (given by min and max, the continuous choice second) instead of
+    # savings: the same fitted problem, so the same value and work policy.
+    document = _document({"concave": True})
+    model = document["model"]
+    model["choices"] = {"work": {"values": WORK.tolist()},
+                        "c": {"min": "0", "max": "(1 + r) * a + base + wage * y", "continuous": True}}
+    model["define"] = {"cash": "(1 + r) * a + base + work * wage * y"}
+    model["next"] = {"a": "cash - c"}
+    model["feasible"] = ["c > 0", "cash - c >= 0", "cash - c <= 8"]
+    consuming = solve(document)
+    assert consuming["status"] == "converged"
+    assert np.abs(np.array(consuming["value"]) - np.array(household["value"])).max() <= 1e-7
+    np.testing.assert_array_equal(np.array(consuming["policy"]["work"]), np.array(household["policy"]["work"]))
+    assert list(consuming["policy"]) == ["work", "c"]
+
+
+def test_a_finite_horizon_is_the_independent_backward_induction(reference: tuple) -> None:
+    grid = reference[0]
+    document = _document({"concave": True})
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    result = solve(document)
+    v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
+    expected_v, expected_work = [], []
+    for _ in range(4):
+        v, _, work = _exact_bellman(v, grid)
+        expected_v.insert(0, v)
+        expected_work.insert(0, work)
+    np.testing.assert_allclose(np.array(result["value"]), np.array(expected_v), rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(np.array(result["policy_index"]["work"]), np.array(expected_work))
+    assert np.array(result["policy"]["save"]).shape == (4, grid.size, INCOME.size)
+
+
+def test_two_separable_economies_split_into_their_known_parts() -> None:
+    # Invented: two capital stocks under one shock, log utility of each one's consumption, full depreciation.
+    # The problem separates, V(k1, k2, z) = V1(k1, z) + V2(k2, z): the continuous k1' has the Brock & Mirman
+    # (1972) policy k1' = αβ z k1^α; the grid-restricted k2' is a one-state discrete problem, solved here by a
+    # plain numpy value iteration.  Both interpolations keep the separation: tomorrow's k2 is a grid point,
+    # and the cubic of V1 + a constant is the cubic of V1 plus it.
+    alpha, beta = 0.3, 0.95
+    z_values, chain = np.array([0.9, 1.1]), np.array([[0.8, 0.2], [0.3, 0.7]])
+    model = {
+        "kind": "grid", "params": {"alpha": alpha},
+        "states": {"k1": {"min": 0.05, "max": 0.4, "points": 24}, "k2": {"min": 0.05, "max": 0.4, "points": 15}},
+        "shocks": {"z": {"markov": {"values": z_values.tolist(), "matrix": chain.tolist()}, "transform": "none"}},
+        "choices": {"k2_next": {"next_of": "k2"}, "k1_next": {"next_of": "k1", "continuous": True}},
+        "define": {"c1": "z * k1**alpha - k1_next", "c2": "z * k2**alpha - k2_next"},
+        "reward": "log(c1) + log(c2)", "feasible": ["c1 > 0", "c2 > 0"], "hints": {"concave": True},
+        "interpolation": "monotone_cubic",
+    }
+    result = solve({"version": 1, "discount": beta, "model": model,
+                    "solver": {"method": "howard", "tolerance": 1e-10}})
+    assert result["status"] == "converged"
+    k1, k2 = np.array(result["axes"]["k1"]), np.array(result["axes"]["k2"])
+    # the discrete part: v(k, z) = max_j log(z k^α − k_j) + β Σ P[z, z'] v(k_j, z')
+    with np.errstate(divide="ignore", invalid="ignore"):
+        c = z_values[None, :, None] * k2[:, None, None] ** alpha - k2[None, None, :]
+        reward = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)), -np.inf)  # (k, z, k')
+    v2 = np.zeros((k2.size, 2))
+    for _ in range(3000):
+        candidate = reward + beta * (v2 @ chain.T).T[None, :, :]
+        new = candidate.max(axis=2)
+        moved = np.abs(new - v2).max()
+        v2 = new
+        if moved <= 1e-13:
+            break
+    np.testing.assert_array_equal(np.array(result["policy_index"]["k2_next"]),
+                                  np.broadcast_to(candidate.argmax(axis=2)[None], (k1.size, k2.size, 2)))
+    rest = np.array(result["value"]) - v2[None, :, :]  # V1(k1, z): the same whatever k2
+    assert np.abs(rest - rest[:, :1, :]).max() <= 1e-8
+    exact = alpha * beta * z_values[None, None, :] * k1[:, None, None] ** alpha
+    assert np.abs(np.array(result["policy"]["k1_next"]) - exact).max() < 2e-4
+
+
+def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
+    calls: list[int] = []
+    real = threadpool.run_blocks
+
+    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
+        calls.append(threads)
+        return real(task, blocks, threads)
+
+    monkeypatch.setattr(threadpool, "run_blocks", spy)
+    results = []
+    for threads in ("1", "2"):
+        monkeypatch.setenv(environment.SOLVE_THREADS, threads)
+        result = solve(_document({"concave": True}))
+        assert calls and calls[-1] == int(threads)
+        results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
+                        np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
+    assert results[0] == results[1]
+
+
+class MemoryCheckpoint:
+    """A checkpoint store in memory (deep copies, as a store that serialises would); raises after ``crash_after``."""
+
+    def __init__(self, crash_after: int | None = None) -> None:
+        self.state: dict | None = None
+        self.saves = 0
+        self.crash_after = crash_after
+
+    def load(self) -> dict | None:
+        return copy.deepcopy(self.state)
+
+    def save(self, state: dict) -> None:
+        self.state = copy.deepcopy(state)
+        self.saves += 1
+        if self.crash_after is not None and self.saves >= self.crash_after:
+            self.crash_after = None
+            raise Crash
+
+
+class Crash(Exception):
+    """Stands in for a worker killed mid-solve."""
+
+
+def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
+    _, problem = compile_document(_document({"concave": True}))
+    options = dict(tolerance=1e-10, evaluation_steps=5, fingerprint="household", checkpoint_s=0.0)
+    whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
+    counting = MemoryCheckpoint()
+    METHODS["howard"](problem, np.zeros(problem.n), checkpoint=counting, **options)
+    assert counting.saves >= 3 and counting.state["policy"].shape == (problem.n, 2)
+    store = MemoryCheckpoint(crash_after=counting.saves // 2)
+    with pytest.raises(Crash):
+        METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, **options)
+    at = store.state["iteration"]
+    resumed = METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, **options)
+    assert resumed.resumed_from_iteration == at
+    np.testing.assert_array_equal(resumed.value, whole.value)
+    np.testing.assert_array_equal(resumed.policy, whole.policy)
+
+
+def test_the_monotone_hint_beside_other_choices_is_not_used_and_said_so() -> None:
+    result = solve(_document({"concave": True, "monotone": True}))
+    assert result["diagnostics"]["continuous_choice"]["monotone_narrowing"] is False
+    assert any("monotone hint is not used" in note and "`work`" in note for note in result["diagnostics"]["notes"])
+    assert result["diagnostics"]["verification"]["hints_held"] is True
+
+
+def test_euler_errors_at_the_chosen_combination_are_the_independent_ones(household: dict, reference: tuple) -> None:
+    # Judd (1992): |1 − c̃/c| with 1/c̃ = β Σ_z' P[z, z'] (1 + r)/c''(a', z') for log utility, c'' tomorrow's
+    # consumption at a' = save; measured where today's work choice and every tomorrow's are the same (no kink
+    # between) and the saving is more than one local grid step from both ends of the grid (common practice, as
+    # fixq's rule), at ten test points per grid point; everything from the exact solver here.
+    grid, v, _, _ = reference
+    parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
+    k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
+    _, save, work = _exact_bellman(v, grid, k)
+    c = _cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
+    _, save_next, work_next = _exact_bellman(v, grid, save.reshape(-1))
+    c_next = _cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :], work_next] \
+        - save_next
+    expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
+    error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    step = np.interp(save, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
+    same = (work_next.reshape(k.size, INCOME.size, INCOME.size) == work[:, :, None]).all(axis=2)
+    measured = same & (save - step >= grid[0]) & (save + step <= grid[-1])
+    found = household["diagnostics"]["euler_errors"]
+    assert found["points"] == pytest.approx(int(measured.sum()), abs=2)
+    assert found["max_log10"] == pytest.approx(error[measured].max(), abs=1e-3)
+    assert found["mean_log10"] == pytest.approx(error[measured].mean(), abs=0.01)
+    assert found["points"] + found["constrained"] + found["undefined"] == k.size * INCOME.size
+    assert any("chosen combination" in note for note in household["diagnostics"]["notes"])
+
+
+def test_the_stationary_distribution_is_youngs(household: dict) -> None:
+    # Young (2010), JEDC 34(1): each next asset level's mass split between its two neighbouring grid points in
+    # proportion to its distance from them, then income moves by its chain; π Q = π solved by least squares.
+    grid = np.array(household["axes"]["a"])
+    save = np.array(household["policy"]["save"])  # (points, shocks)
+    lower = np.clip(np.searchsorted(grid, save, side="right") - 1, 0, grid.size - 2)
+    share = (save - grid[lower]) / (grid[lower + 1] - grid[lower])
+    n_z = INCOME.size
+    matrix = np.zeros((grid.size * n_z, grid.size * n_z))
+    for i in range(grid.size):
+        for z in range(n_z):
+            for bit, weight in ((0, 1 - share[i, z]), (1, share[i, z])):
+                matrix[i * n_z + z, (lower[i, z] + bit) * n_z + np.arange(n_z)] += weight * CHAIN[z]
+    system = np.vstack([(np.eye(matrix.shape[0]) - matrix).T, np.ones(matrix.shape[0])])
+    target = np.zeros(matrix.shape[0] + 1)
+    target[-1] = 1.0
+    expected = np.linalg.lstsq(system, target, rcond=None)[0]
+    found = np.array(household["stationary"]["distribution"]).reshape(-1)
+    np.testing.assert_allclose(found, expected, rtol=0, atol=1e-10)
+    work = np.array(household["policy"]["work"]).reshape(-1)
+    assert household["stationary"]["means"]["work"] == pytest.approx(expected @ work, abs=1e-9)

@@ -1,0 +1,101 @@
+"""Euler-equation errors of a continuous choice beside other (discrete) choices.
+
+For each combination ``d`` of the other choices' values, the model with them fixed at ``d`` (as params)
+has one choice, and :mod:`worker.euler` measures its Euler equation (Judd 1992) as for any one-choice
+model: at the test points between grid points where the search chose ``d`` today *and* at every
+tomorrow's state it leads to (every shock point tomorrow) — there the envelope condition holds with ``d``
+on both days.  A test point where the best combination differs today or tomorrow is skipped (counted as
+``constrained``, and the note gives their number): across a switch the value function has a kink, and
+the first-order condition of the continuous choice alone need not hold there.  The choices at test points
+are the fitted problem's own search there, as for a continuous choice alone.
+
+The pooled errors: ``max_log10`` the largest over the combinations, ``mean_log10`` the mean over every
+point measured, ``profile`` the worst at each test point; ``weighted_mean_log10`` is not given.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from typing import Any
+
+import numpy as np
+
+from worker import _codegen
+from worker.euler import EulerSetup, between_points, euler_errors, setup
+from worker.feasibility import ModelData
+
+__all__ = ["mixed_euler_report"]
+
+
+def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) -> ModelData:
+    """``data`` with the choices ``others`` made params of the given ``values``: a one-choice model."""
+    keep = [j for j, name in enumerate(data.choices) if name not in others]
+    source = data.source
+    params = (*data.params, *others)
+    return dataclasses.replace(
+        data,
+        params=params,
+        param_values=np.concatenate([data.param_values, np.asarray(values, dtype=np.float64)]),
+        choices=tuple(data.choices[j] for j in keep),
+        choice_grids=[data.choice_grids[j] for j in keep],
+        choice_is_menu=tuple(data.choice_is_menu[j] for j in keep),
+        setter=tuple(None if j is None or j not in keep else keep.index(j) for j in data.setter),
+        span_choice=0,
+        source=_codegen.ModelSource(params=params, states=source.states, shocks=source.shocks,
+                                    choices=tuple(data.choices[j] for j in keep), defines=source.defines,
+                                    reward=source.reward, feasible=source.feasible, next=source.next),
+    )
+
+
+def mixed_euler_report(problem: Any, v: np.ndarray, discount: float) -> tuple[dict[str, Any] | None, str]:
+    """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
+    data = problem.model_data
+    found = setup(fixed_model(data, problem.others, problem.combos[0]))
+    if not isinstance(found, EulerSetup):
+        return None, found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
+                               "tomorrow's value of the state (next_of)")
+    grid = data.state_grids[0]
+    n_z = data.n_shocks
+    remembered: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
+
+    def search(k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The continuous choice and the combination at states ``k`` (m,), every shock point: (m, n_z) each."""
+        key = k.tobytes()
+        if key not in remembered:
+            states = np.repeat(k, n_z)[:, None]
+            rows = np.tile(np.arange(n_z, dtype=np.int64), k.size)
+            _, chosen = problem.choose_at(v, states, rows, None)
+            remembered[key] = (chosen[:, 0].reshape(k.size, n_z), chosen[:, 1].astype(np.int64).reshape(k.size, n_z))
+        return remembered[key]
+
+    parts = []
+    for d, values in enumerate(problem.combos):
+        model = fixed_model(data, problem.others, values)
+
+        def today(k: np.ndarray, d: int = d) -> np.ndarray:
+            x, combo = search(np.asarray(k, dtype=np.float64).reshape(-1))
+            _, after = search(x.reshape(-1))
+            keep = (combo == d) & (after.reshape(x.shape[0], n_z, n_z) == d).all(axis=2)
+            return np.where(keep, x, grid[0])  # a choice at the grid's end: skipped as constrained
+
+        parts.append(euler_errors(model, setup(model), discount, today,
+                                  tomorrow=(model, lambda k: search(np.asarray(k, dtype=np.float64).reshape(-1))[0])))
+    return _pooled(parts, between_points(grid).size * n_z, found.define)
+
+
+def _pooled(parts: list[dict[str, Any]], total: int, define: str) -> tuple[dict[str, Any] | None, str]:
+    points = sum(part["points"] for part in parts)
+    undefined = sum(part["undefined"] for part in parts)
+    measured = [part for part in parts if part["points"]]
+    worst = max((part["max_log10"] for part in measured), default=None)
+    mean = sum(part["mean_log10"] * part["points"] for part in measured) / points if points else None
+    profile = dict(parts[0]["profile"])
+    rows = [[max((value for value in values if value is not None), default=None) for values in zip(*column)]
+            for column in zip(*(part["profile"]["log10_error"] for part in parts))]
+    profile["log10_error"] = rows
+    skipped = total - points - undefined
+    note = (f"Euler-equation errors of the continuous choice at the chosen combination of the others: "
+            f"{skipped:,} test points skipped (where a limit may bind, or the best combination differs today or "
+            "at a state tomorrow, where the value function has a kink); no weighted mean")
+    return {"max_log10": worst, "mean_log10": mean, "points": points, "constrained": skipped,
+            "undefined": undefined, "define": define, "profile": profile}, note
