@@ -19,7 +19,6 @@ so that this module does not import the front door that imports it.
 
 from __future__ import annotations
 
-import copy
 import time
 from collections.abc import Callable
 from typing import Any
@@ -28,21 +27,24 @@ import numpy as np
 from scipy.optimize import brentq, least_squares
 
 from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
-from worker.document import parse_document
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.report import long_run_distribution
+from worker.search_trials import TrialModels
 
-__all__ = ["DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
+__all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
 LOOSE_FACTOR = 1e4
 """The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
 only need the sign of the condition, not its digits)."""
 TIGHTEN = 0.1
 """Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
+CERTIFY_NEAR = 1e3
+"""Once a trial's residuals are all within this many times ``search.tolerance``, every later trial is a
+certifying one (:mod:`worker.search_trials`); before, trials are guiding."""
 XTOL_SHARE = 1e-12
 """The root finder stops when its bracket is narrower than this share of the search bracket."""
 DIFF_STEP = 1e-6
@@ -106,15 +108,18 @@ def run_search(
     conditions = [parse_condition(text, path=join_path("search.conditions", k), reserved=reserved)
                   for k, text in enumerate(spec.conditions)]
     final_tolerance = float(doc.solver.tolerance)
+    models = TrialModels(document, names, trial)
     trials: list[dict[str, Any]] = []
     last: dict[str, Any] = {}
     begun = time.perf_counter()
     log: list[dict[str, Any]] = []
     solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last two solves' unknowns and values
     saved = checkpoint.load() if checkpoint is not None else None
-    replay: dict[tuple[tuple[float, ...], float], dict[str, Any]] = {}
+    replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
-        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"]): row for row in saved["trials"]}
+        # Rows saved before guiding trials existed were all certified.
+        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"], row.get("certified", True)): row
+                  for row in saved["trials"]}
         log = list(saved.get("log") or [])
         last["value"] = np.asarray(saved["value"], dtype=np.float64)
         if saved.get("value_xs") is not None:
@@ -122,26 +127,28 @@ def run_search(
         if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
             solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
 
-    def at(xs: tuple[float, ...], tolerance: float) -> list[float]:
-        if (xs, tolerance) in replay:
-            row = replay.pop((xs, tolerance))
+    def at(xs: tuple[float, ...], tolerance: float, certify: bool) -> list[float]:
+        """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`)."""
+        if (xs, tolerance, certify) in replay:
+            row = replay.pop((xs, tolerance, certify))
             trials.append(row)
-            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
+            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None,
+                        certified=False)  # a replayed row has no solution to return: solved again at the end
             return row["residuals"]
         started = time.perf_counter()
-        trial_doc = parse_document(_with_unknowns(document, dict(zip(names, xs))))
-        problem, outcome = trial(trial_doc, _start(solved, xs, last.get("value")), tolerance)
+        trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
+                                                              certify)
         pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-2]
-        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc,
+        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified,
                     problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
                "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
-               "seconds": time.perf_counter() - started}
+               "certified": certified, "seconds": time.perf_counter() - started}
         trials.append(row)
         # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
         entry = {"iteration": len(trials), "error_bound": row["error_bound"], "seconds": time.perf_counter() - begun,
@@ -158,6 +165,7 @@ def run_search(
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}
+    mode = {"certify": False}
 
     def residuals_at(xs: tuple[float, ...]) -> list[float]:
         """The conditions at ``xs``; raises ``_Met`` once they hold at full accuracy or the trials run out."""
@@ -165,14 +173,21 @@ def run_search(
         if xs in known:
             return known[xs]
         tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
-        values = at(xs, tolerance)
+        certify = mode["certify"]
+        values = at(xs, final_tolerance if certify else tolerance, certify=certify)
         if last["status"] != "converged":
             raise _InnerStopped
-        met = all(abs(v) <= spec.tolerance for v in values)
-        if met and last["tolerance"] > final_tolerance:
-            values = at(xs, final_tolerance)
-            met = all(abs(v) <= spec.tolerance for v in values)
-        if (met and last["status"] == "converged") or len(trials) >= spec.max_trials:
+        if not certify and all(abs(v) <= spec.tolerance for v in values):
+            # A guiding trial within the tolerance: only a certifying trial may make it the answer.
+            values = at(xs, final_tolerance, certify=True)
+            mode["certify"] = True
+        if last["certified"] and all(abs(v) <= spec.tolerance for v in values) and last["status"] == "converged":
+            raise _Met
+        if max(abs(v) for v in values) <= CERTIFY_NEAR * spec.tolerance:
+            # Close to the answer: from here on every trial is certifying, so that the root finder compares
+            # residuals of one kind (a guiding and a certifying trial differ by the inner solves' noise).
+            mode["certify"] = True
+        if len(trials) >= spec.max_trials:
             raise _Met
         known[xs] = values
         return values
@@ -190,12 +205,13 @@ def run_search(
         status = last["status"]
     except RuntimeError:
         status = "max_trials"
-    inner_stopped = status == last["status"] != "converged"
-    if last["doc"] is None or (not inner_stopped and last["tolerance"] > final_tolerance):
-        # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
+    if not last["certified"]:
+        # A guiding last trial, or one answered from a checkpoint: the point is solved again by a certifying
+        # trial, from which alone the result is built (a solve that stopped stops again, after one step).
         replay.clear()
-        at(last["xs"], final_tolerance)
-    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
+        at(last["xs"], final_tolerance, certify=True)
+    met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
+           and last["certified"])
     if not met and status == "converged":
         status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
     result = finish(last["doc"], last["problem"], last["outcome"])
@@ -253,20 +269,6 @@ def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], doc
                   max_nfev=spec.max_trials)
 
 
-def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
-    """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
-    out = {key: value for key, value in document.items() if key != "search"}
-    params = {name: x for name, x in values.items() if name != DISCOUNT}
-    if DISCOUNT in values:
-        out[DISCOUNT] = values[DISCOUNT]
-    if params:
-        model = copy.copy(document["model"])
-        model["params"] = {**model["params"], **params}
-        out["model"] = model
-    out["report"] = {**(document.get("report") or {}), "stationary": True}
-    return out
-
-
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
               where: str) -> float:
     env = point_env(doc, problem, policy)
@@ -282,7 +284,8 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
 
 def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
     """The two closest trials whose first residuals have opposite signs (None when there are none)."""
-    points = sorted((row["unknowns"][name], row["residuals"][0]) for row in trials)
+    # One point per value: the last trial there (a certifying trial follows the guiding one it checks).
+    points = sorted({row["unknowns"][name]: row["residuals"][0] for row in trials}.items())
     pairs = [(a, b) for a, b in zip(points, points[1:]) if np.sign(a[1]) != np.sign(b[1]) and a[0] != b[0]]
     if not pairs:
         return None
