@@ -24,7 +24,7 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq, least_squares
+from scipy.optimize import least_squares
 
 from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
 from worker.document.params import param_expressions
@@ -33,6 +33,7 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.report import long_run_distribution
+from worker.search_outer import NoRoot, find_root
 from worker.search_trials import TrialModels
 
 __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
@@ -195,7 +196,7 @@ def run_search(
     status = "converged"
     try:
         if len(names) == 1:
-            _bracketed(residuals_at, names[0], spec, trials)
+            _bracketed(residuals_at, names[0], doc, spec, trials)
         else:
             _least_squares(residuals_at, document, doc, names, spec)
     except _Met:
@@ -240,19 +241,24 @@ def _start(solved: list[tuple[tuple[float, ...], np.ndarray]], xs: tuple[float, 
     return start if np.isfinite(start).all() else value
 
 
-def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, spec: Any,
+def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, doc: Any, spec: Any,
                trials: list[dict[str, Any]]) -> None:
-    """One unknown: brentq inside its bracket, after checking that the condition changes sign across it."""
+    """One unknown: :func:`worker.search_outer.find_root` inside its bracket, from the document's own value;
+    no sign change even at the ends is refused naming the values there."""
     bracket = spec.unknowns[name]
-    low = residuals_at((bracket.min,))[0]
-    high = residuals_at((bracket.max,))[0]
-    if np.sign(low) == np.sign(high):
+    try:
+        find_root(lambda x: residuals_at((x,))[0], bracket.min, bracket.max, _own(doc, name),
+                  xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+    except NoRoot as ends:
         raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
-            f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
-            f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
-            "check the condition")}], trials=trials)
-    brentq(lambda x: residuals_at((x,))[0], bracket.min, bracket.max,
-           xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+            f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} and "
+            f"{ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
+            "check the condition")}], trials=trials) from None
+
+
+def _own(doc: Any, name: str) -> float:
+    """The document's own value of an unknown (a param given as a number, or the discount)."""
+    return float(doc.discount) if name == DISCOUNT else float(doc.model.params[name])
 
 
 def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], document: dict[str, Any], doc: Any,
@@ -262,7 +268,7 @@ def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], doc
     `DIFF_STEP`."""
     lows = np.array([spec.unknowns[n].min for n in names])
     highs = np.array([spec.unknowns[n].max for n in names])
-    own = np.array([float(doc.discount) if n == DISCOUNT else float(doc.model.params[n]) for n in names])
+    own = np.array([_own(doc, n) for n in names])
     start = np.where((own > lows) & (own < highs), own, 0.5 * (lows + highs))
     least_squares(lambda v: np.asarray(residuals_at(tuple(float(x) for x in v))), start, bounds=(lows, highs),
                   method="trf", x_scale=highs - lows, diff_step=DIFF_STEP, xtol=1e-15, ftol=1e-15, gtol=1e-15,
