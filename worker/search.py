@@ -1,17 +1,23 @@
 """Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
 
-:func:`run_search` solves the model once per trial value of the unknown, each solve started from the
-last one's value, computes the stationary distribution of the policy and the conditions' aggregates
-(:mod:`worker.aggregates`), and lets ``scipy.optimize.brentq`` — a bracketing method that never leaves
-its bracket — choose the next trial.
+:func:`run_search` solves the model once per trial value of the unknowns, each solve started from the last
+one's value, computes the stationary distribution of the policy and the conditions' aggregates
+(:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
+:func:`worker.search_outer.find_root` (from the document's own value, secant steps, then
+``scipy.optimize.brentq`` on the narrowest sign change; never outside the bracket), with several scipy's
+bounded least squares.
 
-Inner tolerances tighten as the search goes: the first trials are solved with a tolerance
-`LOOSE_FACTOR` times the document's ``solver.tolerance``, each next one `TIGHTEN` times tighter, down to
-the document's own.  A point is accepted only when a solve at the document's tolerance puts every
-condition within ``search.tolerance`` of zero; otherwise the search says how close it came (status
-``not_met`` or ``max_trials``) and never presents the point as a solution.  When the condition has the
-same sign at both ends of the bracket there is no root to bracket: :class:`~worker.errors.InvalidDocument`
-names the values found at the ends, and carries the trials.
+Trials are *guiding* or *certifying* (:mod:`worker.search_trials`).  A guiding trial reuses one compiled
+problem with its params swapped and trusts the hints (no verification step); its inner tolerance is
+`LOOSE_FACTOR` times the document's ``solver.tolerance`` at first, each next one `TIGHTEN` times tighter, down
+to the document's own.  A certifying trial compiles the document afresh at the trial values and solves it at
+``solver.tolerance`` with the hints verified, exactly as a single job would.  A guiding trial that puts every
+condition within ``search.tolerance`` is followed by a certifying trial at the same point, and once a trial's
+residuals are within `CERTIFY_NEAR` times the tolerance every later trial is certifying.  A point is accepted
+only from a certifying trial, and the result is always built from one; otherwise the search says how close
+it came (status ``not_met`` or ``max_trials``) and never presents the point as a solution.  When no sign
+change turns up, even at the ends of the bracket, :class:`~worker.errors.InvalidDocument` names the values
+found at the ends, and carries the trials.
 
 The solves themselves are done by the caller's ``trial`` function (:mod:`worker.solve` passes its own),
 so that this module does not import the front door that imports it.
@@ -32,9 +38,8 @@ from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
-from worker.report import long_run_distribution
 from worker.search_outer import NoRoot, find_root
-from worker.search_trials import TrialModels
+from worker.search_trials import TrialModels, trial_distribution
 
 __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
@@ -52,8 +57,9 @@ DIFF_STEP = 1e-6
 """Relative step of least squares' forward differences with several unknowns: large beside the conditions'
 noise from the inner solves (about 1e-7 of their size, measured), small beside their curvature."""
 
-Trial = Callable[[Any, "np.ndarray | None", float], tuple[CompiledProblem, Any]]
-"""``trial(doc, initial, tolerance) -> (problem, outcome)``: one solve of a validated document."""
+Trial = Callable[..., tuple[CompiledProblem, Any]]
+"""``trial(doc, initial, tolerance, problem=None, trust_hints=False) -> (problem, outcome)``: one solve of a
+validated document (compiled here unless ``problem`` is given: a compiled problem with its params swapped)."""
 
 
 class _Met(Exception):
@@ -87,9 +93,10 @@ def run_search(
     checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
         Saved after every trial (``kind`` "search", ``fingerprint``, ``iteration`` = trials so far, ``log``,
         ``trials``, ``value`` = the last solve's value, at ``value_xs``; ``previous_value`` at ``previous_xs``, the
-        one before, or None).  A matching saved state is resumed from: the root
-        finder is deterministic, so it asks for the same trials again, and those already made are answered
-        from the saved rows without solving; the next solve starts from the saved value.
+        one before, or None; ``distribution``, the last solve's stationary distribution).  A matching saved
+        state is resumed from: the root finder is deterministic, so it asks for the same trials again, and those
+        already made are answered from the saved rows without solving; the next solve starts from the saved
+        value.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
@@ -125,6 +132,8 @@ def run_search(
         last["value"] = np.asarray(saved["value"], dtype=np.float64)
         if saved.get("value_xs") is not None:
             solved.append((tuple(saved["value_xs"]), last["value"]))
+        if saved.get("distribution") is not None:  # the pin of the next trial's distribution (trial_distribution)
+            last["pi"] = np.asarray(saved["distribution"], dtype=np.float64)
         if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
             solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
 
@@ -139,12 +148,12 @@ def run_search(
         started = time.perf_counter()
         trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
                                                               certify)
-        pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
+        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"))
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-2]
-        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified,
+        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified, pi=pi,
                     problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
@@ -159,7 +168,7 @@ def run_search(
             on_progress(entry)
         if checkpoint is not None:
             checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
-                             "trials": trials, "value": last["value"], "value_xs": list(xs),
+                             "trials": trials, "value": last["value"], "value_xs": list(xs), "distribution": pi,
                              # The solve before, from which the next start is extrapolated (see _start).
                              "previous_xs": list(solved[0][0]) if len(solved) > 1 else None,
                              "previous_value": solved[0][1] if len(solved) > 1 else None})

@@ -185,3 +185,42 @@ def test_find_root_starts_at_the_midpoint_when_the_value_lies_outside() -> None:
     g, calls = _counted(lambda x: math.atan(x - 0.3))
     find_root(g, 0.0, 1.0, 7.0, xtol=1e-13, maxiter=60)
     assert calls[0] == 0.5 and abs(calls[-1] - 0.3) <= 1e-12
+
+
+def _stationary_numpy(matrix: np.ndarray) -> np.ndarray:
+    """pi (I - P) = 0 with sum(pi) = 1, as one least-squares system (numpy, written here)."""
+    n = matrix.shape[0]
+    system = np.vstack([(np.eye(n) - matrix).T, np.ones(n)])
+    target = np.zeros(n + 1)
+    target[-1] = 1.0
+    pi, *_ = np.linalg.lstsq(system, target, rcond=None)
+    return pi
+
+
+def test_a_trials_distribution_pinned_at_the_last_ones_heaviest_state_is_the_stationary_one() -> None:
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(7)
+    n = 60
+    dense = np.zeros((n, n))
+    for i in range(n):  # a savings-like chain: each state moves to one of a few neighbours
+        columns = np.clip(i + rng.integers(-3, 4, size=3), 0, n - 1)
+        dense[i, columns] += rng.random(3) + 0.1
+    dense /= dense.sum(axis=1, keepdims=True)
+    expected = _stationary_numpy(dense)
+    for previous in (expected, np.roll(expected, 5), None):
+        pi, info = search_trials.trial_distribution(sp.csr_matrix(dense), previous)
+        np.testing.assert_allclose(pi, expected, rtol=0, atol=1e-12)
+        assert info["residual"] <= 1e-12
+    # A pin on a transient state (the first one leaks into the rest and is never re-entered): the general
+    # solve answers instead, with that state's mass 0.
+    leaky = dense.copy()
+    leaky[:, 0] = 0.0
+    leaky[0] = 0.0
+    leaky[0, 1] = 1.0
+    leaky /= leaky.sum(axis=1, keepdims=True)
+    pinned_there = np.zeros(n)
+    pinned_there[0] = 1.0
+    pi, info = search_trials.trial_distribution(sp.csr_matrix(leaky), pinned_there)
+    np.testing.assert_allclose(pi, _stationary_numpy(leaky), rtol=0, atol=1e-12)
+    assert abs(pi[0]) <= 1e-15 and info["residual"] <= 1e-12
