@@ -1,17 +1,23 @@
 """Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
 
-:func:`run_search` solves the model once per trial value of the unknown, each solve started from the
-last one's value, computes the stationary distribution of the policy and the conditions' aggregates
-(:mod:`worker.aggregates`), and lets ``scipy.optimize.brentq`` — a bracketing method that never leaves
-its bracket — choose the next trial.
+:func:`run_search` solves the model once per trial value of the unknowns, each solve started from the last
+one's value, computes the stationary distribution of the policy and the conditions' aggregates
+(:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
+:func:`worker.search_outer.find_root` (from the document's own value, secant steps, then
+``scipy.optimize.brentq`` on the narrowest sign change; never outside the bracket), with several scipy's
+bounded least squares.
 
-Inner tolerances tighten as the search goes: the first trials are solved with a tolerance
-`LOOSE_FACTOR` times the document's ``solver.tolerance``, each next one `TIGHTEN` times tighter, down to
-the document's own.  A point is accepted only when a solve at the document's tolerance puts every
-condition within ``search.tolerance`` of zero; otherwise the search says how close it came (status
-``not_met`` or ``max_trials``) and never presents the point as a solution.  When the condition has the
-same sign at both ends of the bracket there is no root to bracket: :class:`~worker.errors.InvalidDocument`
-names the values found at the ends, and carries the trials.
+Trials are *guiding* or *certifying* (:mod:`worker.search_trials`).  A guiding trial reuses one compiled
+problem with its params swapped and trusts the hints (no verification step); its inner tolerance is
+`LOOSE_FACTOR` times the document's ``solver.tolerance`` at first, each next one `TIGHTEN` times tighter, down
+to the document's own.  A certifying trial compiles the document afresh at the trial values and solves it at
+``solver.tolerance`` with the hints verified, exactly as a single job would.  A guiding trial that puts every
+condition within ``search.tolerance`` is followed by a certifying trial at the same point, and once a trial's
+residuals are within `CERTIFY_NEAR` times the tolerance every later trial is certifying.  A point is accepted
+only from a certifying trial, and the result is always built from one; otherwise the search says how close
+it came (status ``not_met`` or ``max_trials``) and never presents the point as a solution.  When no sign
+change turns up, even at the ends of the bracket, :class:`~worker.errors.InvalidDocument` names the values
+found at the ends, and carries the trials.
 
 The solves themselves are done by the caller's ``trial`` function (:mod:`worker.solve` passes its own),
 so that this module does not import the front door that imports it.
@@ -19,38 +25,41 @@ so that this module does not import the front door that imports it.
 
 from __future__ import annotations
 
-import copy
 import time
 from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from scipy.optimize import brentq, least_squares
+from scipy.optimize import least_squares
 
 from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
-from worker.document import parse_document
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
-from worker.report import long_run_distribution
+from worker.search_outer import NoRoot, find_root
+from worker.search_trials import TrialModels, trial_distribution
 
-__all__ = ["DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
+__all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
 LOOSE_FACTOR = 1e4
 """The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
 only need the sign of the condition, not its digits)."""
 TIGHTEN = 0.1
 """Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
+CERTIFY_NEAR = 1e3
+"""Once a trial's residuals are all within this many times ``search.tolerance``, every later trial is a
+certifying one (:mod:`worker.search_trials`); before, trials are guiding."""
 XTOL_SHARE = 1e-12
 """The root finder stops when its bracket is narrower than this share of the search bracket."""
 DIFF_STEP = 1e-6
 """Relative step of least squares' forward differences with several unknowns: large beside the conditions'
 noise from the inner solves (about 1e-7 of their size, measured), small beside their curvature."""
 
-Trial = Callable[[Any, "np.ndarray | None", float], tuple[CompiledProblem, Any]]
-"""``trial(doc, initial, tolerance) -> (problem, outcome)``: one solve of a validated document."""
+Trial = Callable[..., tuple[CompiledProblem, Any]]
+"""``trial(doc, initial, tolerance, problem=None, trust_hints=False) -> (problem, outcome)``: one solve of a
+validated document (compiled here unless ``problem`` is given: a compiled problem with its params swapped)."""
 
 
 class _Met(Exception):
@@ -84,9 +93,10 @@ def run_search(
     checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
         Saved after every trial (``kind`` "search", ``fingerprint``, ``iteration`` = trials so far, ``log``,
         ``trials``, ``value`` = the last solve's value, at ``value_xs``; ``previous_value`` at ``previous_xs``, the
-        one before, or None).  A matching saved state is resumed from: the root
-        finder is deterministic, so it asks for the same trials again, and those already made are answered
-        from the saved rows without solving; the next solve starts from the saved value.
+        one before, or None; ``distribution``, the last solve's stationary distribution).  A matching saved
+        state is resumed from: the root finder is deterministic, so it asks for the same trials again, and those
+        already made are answered from the saved rows without solving; the next solve starts from the saved
+        value.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
@@ -106,42 +116,49 @@ def run_search(
     conditions = [parse_condition(text, path=join_path("search.conditions", k), reserved=reserved)
                   for k, text in enumerate(spec.conditions)]
     final_tolerance = float(doc.solver.tolerance)
+    models = TrialModels(document, names, trial)
     trials: list[dict[str, Any]] = []
     last: dict[str, Any] = {}
     begun = time.perf_counter()
     log: list[dict[str, Any]] = []
     solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last two solves' unknowns and values
     saved = checkpoint.load() if checkpoint is not None else None
-    replay: dict[tuple[tuple[float, ...], float], dict[str, Any]] = {}
+    replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
-        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"]): row for row in saved["trials"]}
+        # Rows saved before guiding trials existed were all certified.
+        replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"], row.get("certified", True)): row
+                  for row in saved["trials"]}
         log = list(saved.get("log") or [])
         last["value"] = np.asarray(saved["value"], dtype=np.float64)
         if saved.get("value_xs") is not None:
             solved.append((tuple(saved["value_xs"]), last["value"]))
+        if saved.get("distribution") is not None:  # the pin of the next trial's distribution (trial_distribution)
+            last["pi"] = np.asarray(saved["distribution"], dtype=np.float64)
         if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
             solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
 
-    def at(xs: tuple[float, ...], tolerance: float) -> list[float]:
-        if (xs, tolerance) in replay:
-            row = replay.pop((xs, tolerance))
+    def at(xs: tuple[float, ...], tolerance: float, certify: bool) -> list[float]:
+        """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`)."""
+        if (xs, tolerance, certify) in replay:
+            row = replay.pop((xs, tolerance, certify))
             trials.append(row)
-            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None)
+            last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None,
+                        certified=False)  # a replayed row has no solution to return: solved again at the end
             return row["residuals"]
         started = time.perf_counter()
-        trial_doc = parse_document(_with_unknowns(document, dict(zip(names, xs))))
-        problem, outcome = trial(trial_doc, _start(solved, xs, last.get("value")), tolerance)
-        pi, info = long_run_distribution(problem.policy_matrix(outcome.policy))
+        trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
+                                                              certify)
+        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"))
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-2]
-        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc,
+        last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified, pi=pi,
                     problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
                "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
-               "seconds": time.perf_counter() - started}
+               "certified": certified, "seconds": time.perf_counter() - started}
         trials.append(row)
         # Shaped like a solver's log entry, so that progress displays read it; the trial is under search_trial.
         entry = {"iteration": len(trials), "error_bound": row["error_bound"], "seconds": time.perf_counter() - begun,
@@ -151,13 +168,14 @@ def run_search(
             on_progress(entry)
         if checkpoint is not None:
             checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
-                             "trials": trials, "value": last["value"], "value_xs": list(xs),
+                             "trials": trials, "value": last["value"], "value_xs": list(xs), "distribution": pi,
                              # The solve before, from which the next start is extrapolated (see _start).
                              "previous_xs": list(solved[0][0]) if len(solved) > 1 else None,
                              "previous_value": solved[0][1] if len(solved) > 1 else None})
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}
+    mode = {"certify": False}
 
     def residuals_at(xs: tuple[float, ...]) -> list[float]:
         """The conditions at ``xs``; raises ``_Met`` once they hold at full accuracy or the trials run out."""
@@ -165,14 +183,21 @@ def run_search(
         if xs in known:
             return known[xs]
         tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
-        values = at(xs, tolerance)
+        certify = mode["certify"]
+        values = at(xs, final_tolerance if certify else tolerance, certify=certify)
         if last["status"] != "converged":
             raise _InnerStopped
-        met = all(abs(v) <= spec.tolerance for v in values)
-        if met and last["tolerance"] > final_tolerance:
-            values = at(xs, final_tolerance)
-            met = all(abs(v) <= spec.tolerance for v in values)
-        if (met and last["status"] == "converged") or len(trials) >= spec.max_trials:
+        if not certify and all(abs(v) <= spec.tolerance for v in values):
+            # A guiding trial within the tolerance: only a certifying trial may make it the answer.
+            values = at(xs, final_tolerance, certify=True)
+            mode["certify"] = True
+        if last["certified"] and all(abs(v) <= spec.tolerance for v in values) and last["status"] == "converged":
+            raise _Met
+        if max(abs(v) for v in values) <= CERTIFY_NEAR * spec.tolerance:
+            # Close to the answer: from here on every trial is certifying, so that the root finder compares
+            # residuals of one kind (a guiding and a certifying trial differ by the inner solves' noise).
+            mode["certify"] = True
+        if len(trials) >= spec.max_trials:
             raise _Met
         known[xs] = values
         return values
@@ -180,7 +205,7 @@ def run_search(
     status = "converged"
     try:
         if len(names) == 1:
-            _bracketed(residuals_at, names[0], spec, trials)
+            _bracketed(residuals_at, names[0], doc, spec, trials)
         else:
             _least_squares(residuals_at, document, doc, names, spec)
     except _Met:
@@ -190,12 +215,13 @@ def run_search(
         status = last["status"]
     except RuntimeError:
         status = "max_trials"
-    inner_stopped = status == last["status"] != "converged"
-    if last["doc"] is None or (not inner_stopped and last["tolerance"] > final_tolerance):
-        # A loose last trial, or one answered from a checkpoint: solve the point again at full accuracy.
+    if not last["certified"]:
+        # A guiding last trial, or one answered from a checkpoint: the point is solved again by a certifying
+        # trial, from which alone the result is built (a solve that stopped stops again, after one step).
         replay.clear()
-        at(last["xs"], final_tolerance)
-    met = all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
+        at(last["xs"], final_tolerance, certify=True)
+    met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
+           and last["certified"])
     if not met and status == "converged":
         status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
     result = finish(last["doc"], last["problem"], last["outcome"])
@@ -224,19 +250,24 @@ def _start(solved: list[tuple[tuple[float, ...], np.ndarray]], xs: tuple[float, 
     return start if np.isfinite(start).all() else value
 
 
-def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, spec: Any,
+def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: str, doc: Any, spec: Any,
                trials: list[dict[str, Any]]) -> None:
-    """One unknown: brentq inside its bracket, after checking that the condition changes sign across it."""
+    """One unknown: :func:`worker.search_outer.find_root` inside its bracket, from the document's own value;
+    no sign change even at the ends is refused naming the values there."""
     bracket = spec.unknowns[name]
-    low = residuals_at((bracket.min,))[0]
-    high = residuals_at((bracket.max,))[0]
-    if np.sign(low) == np.sign(high):
+    try:
+        find_root(lambda x: residuals_at((x,))[0], bracket.min, bracket.max, _own(doc, name),
+                  xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+    except NoRoot as ends:
         raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
-            f"no root in the bracket: {spec.conditions[0]} is {low:.10g} at {name} = {bracket.min:.10g} and "
-            f"{high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
-            "check the condition")}], trials=trials)
-    brentq(lambda x: residuals_at((x,))[0], bracket.min, bracket.max,
-           xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
+            f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} and "
+            f"{ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
+            "check the condition")}], trials=trials) from None
+
+
+def _own(doc: Any, name: str) -> float:
+    """The document's own value of an unknown (a param given as a number, or the discount)."""
+    return float(doc.discount) if name == DISCOUNT else float(doc.model.params[name])
 
 
 def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], document: dict[str, Any], doc: Any,
@@ -246,25 +277,11 @@ def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], doc
     `DIFF_STEP`."""
     lows = np.array([spec.unknowns[n].min for n in names])
     highs = np.array([spec.unknowns[n].max for n in names])
-    own = np.array([float(doc.discount) if n == DISCOUNT else float(doc.model.params[n]) for n in names])
+    own = np.array([_own(doc, n) for n in names])
     start = np.where((own > lows) & (own < highs), own, 0.5 * (lows + highs))
     least_squares(lambda v: np.asarray(residuals_at(tuple(float(x) for x in v))), start, bounds=(lows, highs),
                   method="trf", x_scale=highs - lows, diff_step=DIFF_STEP, xtol=1e-15, ftol=1e-15, gtol=1e-15,
                   max_nfev=spec.max_trials)
-
-
-def _with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
-    """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
-    out = {key: value for key, value in document.items() if key != "search"}
-    params = {name: x for name, x in values.items() if name != DISCOUNT}
-    if DISCOUNT in values:
-        out[DISCOUNT] = values[DISCOUNT]
-    if params:
-        model = copy.copy(document["model"])
-        model["params"] = {**model["params"], **params}
-        out["model"] = model
-    out["report"] = {**(document.get("report") or {}), "stationary": True}
-    return out
 
 
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
@@ -282,7 +299,8 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
 
 def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
     """The two closest trials whose first residuals have opposite signs (None when there are none)."""
-    points = sorted((row["unknowns"][name], row["residuals"][0]) for row in trials)
+    # One point per value: the last trial there (a certifying trial follows the guiding one it checks).
+    points = sorted({row["unknowns"][name]: row["residuals"][0] for row in trials}.items())
     pairs = [(a, b) for a, b in zip(points, points[1:]) if np.sign(a[1]) != np.sign(b[1]) and a[0] != b[0]]
     if not pairs:
         return None

@@ -227,16 +227,18 @@ def _search(
     # The time limit is the whole search's: each trial gets what is left of it.
     deadline = None if limit is None else time.monotonic() + limit
 
-    def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float) -> tuple[CompiledProblem, SolveOutcome]:
-        problem = _compile(trial_doc, cap)
+    def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float, problem: CompiledProblem | None = None,
+              trust_hints: bool = False) -> tuple[CompiledProblem, SolveOutcome]:
+        problem = _compile(trial_doc, cap) if problem is None else problem  # given: compiled, its params swapped
         start = _initial_values(trial_doc, problem, warm_start) if initial is None else initial
         spec = trial_doc.solver
         left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
+        extra = {"trust_hints": True} if trust_hints else {}
         outcome = METHODS[spec.method](
             problem, start, tolerance=tolerance, max_iterations=spec.max_iterations,
             time_limit_s=left, checkpoint_s=spec.checkpoint_s,
             evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
-            fingerprint="",
+            fingerprint="", **extra,
         )
         return problem, outcome
 

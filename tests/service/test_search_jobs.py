@@ -64,9 +64,12 @@ def test_a_search_without_a_root_fails_naming_the_ends(client: httpx.Client) -> 
     record = client.get(f"/v1/jobs/{job_id}").json()
     (error,) = record["error"]["errors"]
     assert error["path"] == "search.unknowns.r" and "no root in the bracket" in error["message"]
-    # The record carries the search's summary too: the trials made (the bracket's two ends) and the last one.
+    # The record carries the search's summary too: the trials made (from the document's r towards the root,
+    # then the bracket's two ends) and the last one.
     entries = client.get(f"/v1/jobs/{job_id}/log", params={"limit": 100}).json()["data"]
     rows = [entry["search_trial"] for entry in entries]
-    assert [row["unknowns"]["r"] for row in rows] == [0.0, 0.02]
+    assert rows[0]["unknowns"]["r"] == 0.01  # the document's r, 0.02, is an end of the bracket: its midpoint
+    assert [row["unknowns"]["r"] for row in rows[-2:]] == [0.0, 0.02]
+    assert all(0.0 <= row["unknowns"]["r"] <= 0.02 for row in rows)
     assert record["search"] == {"status": "no_root", "unknowns": rows[-1]["unknowns"],
-                                "residuals": rows[-1]["residuals"], "trials": 2}
+                                "residuals": rows[-1]["residuals"], "trials": len(rows)}

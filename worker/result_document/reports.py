@@ -116,6 +116,11 @@ class SearchTrial(Reported):
     iterations: int = Field(description="Its iterations.")
     error_bound: float = Field(description="Its error bound.")
     stationary_residual: float = Field(description="‖πP − π‖₁ of its stationary distribution.")
+    certified: bool = Field(
+        default=True,
+        description="A certifying trial (the document compiled afresh, solved at solver.tolerance with its hints "
+        "verified), from which alone an answer is taken; false: a guiding trial, which only chose the next trial.",
+    )
     seconds: float = Field(description="Time (s) this trial took.")
 
 

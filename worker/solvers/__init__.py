@@ -82,10 +82,12 @@ def _value_iteration(
     checkpoint: Checkpoint | None = None,
     should_stop: Callable[[], bool] | None = None,
     fingerprint: str = "",
+    trust_hints: bool = False,
 ) -> SolveOutcome:
     """Plain contraction iteration ``v ← Tv`` (``evaluation_steps`` is ignored)."""
     settings = options(
-        tolerance, max_iterations, time_limit_s, checkpoint_s, 0, on_progress, checkpoint, should_stop, fingerprint
+        tolerance, max_iterations, time_limit_s, checkpoint_s, 0, on_progress, checkpoint, should_stop, fingerprint,
+        trust_hints=trust_hints,
     )
     return iterate(problem, initial, settings, "value_iteration", no_evaluation, meets(settings.tolerance))
 
@@ -103,12 +105,13 @@ def _howard(
     checkpoint: Checkpoint | None = None,
     should_stop: Callable[[], bool] | None = None,
     fingerprint: str = "",
+    trust_hints: bool = False,
 ) -> SolveOutcome:
     """Howard's method (modified policy iteration): iterate, then evaluation steps
     (``evaluation_steps`` as the base; see :func:`worker.solvers.evaluation.phase_plan`)."""
     settings = options(
         tolerance, max_iterations, time_limit_s, checkpoint_s, evaluation_steps, on_progress, checkpoint,
-        should_stop, fingerprint,
+        should_stop, fingerprint, trust_hints=trust_hints,
     )
     return iterate(problem, initial, settings, "howard", _evaluation_steps, meets(settings.tolerance))
 
@@ -126,12 +129,14 @@ def _policy_iteration(
     checkpoint: Checkpoint | None = None,
     should_stop: Callable[[], bool] | None = None,
     fingerprint: str = "",
+    trust_hints: bool = False,
 ) -> SolveOutcome:
     """Exact evaluation by a linear solve; stops when the policy is stable
     (unchanged, or improving on its own value by no more than rounding) and
     the step's error bound meets the tolerance."""
     settings = options(
-        tolerance, max_iterations, time_limit_s, checkpoint_s, 0, on_progress, checkpoint, should_stop, fingerprint
+        tolerance, max_iterations, time_limit_s, checkpoint_s, 0, on_progress, checkpoint, should_stop, fingerprint,
+        trust_hints=trust_hints,
     )
 
     def accept(step: Step) -> bool:

@@ -67,6 +67,9 @@ class Options:
     checkpoint: Checkpoint | None
     should_stop: Callable[[], bool] | None
     fingerprint: str
+    trust_hints: bool = False
+    """Skip the unrestricted step that verifies the hints at the end (a search's guiding trials, whose
+    answers are never returned: the trial that is returned is solved again with it)."""
 
 
 def options(
@@ -79,6 +82,8 @@ def options(
     checkpoint: Checkpoint | None,
     should_stop: Callable[[], bool] | None,
     fingerprint: str,
+    *,
+    trust_hints: bool = False,
 ) -> Options:
     """The :class:`Options` of a method's keyword arguments, normalised."""
     return Options(
@@ -91,6 +96,7 @@ def options(
         checkpoint=checkpoint,
         should_stop=should_stop,
         fingerprint=fingerprint,
+        trust_hints=bool(trust_hints),
     )
 
 
@@ -395,7 +401,9 @@ def iterate(
     is always its own or a later unrestricted step's.  When it meets the
     stopping rule, or the solve had to stop anyway, the solve ends with it.
     Otherwise (the hints did not hold) the solve goes on unrestricted from
-    it, and it counts as the next iteration.
+    it, and it counts as the next iteration.  With ``trust_hints`` there is
+    no verification: the solve ends with the hinted step (``verification``
+    None), for guiding trials of a search only.
     """
     run = Run(problem, initial, options, method)
     if run.pending_steps is not None and run.policy is not None:
@@ -405,7 +413,7 @@ def iterate(
         run.poll(force=True)
         step = run.improve()
         stop = _stop(run, step, accept)
-        if stop is not None and step.restricted:
+        if stop is not None and step.restricted and not options.trust_hints:
             step = run.verify(step)
             if accept(step):
                 return run.outcome(step, "converged")

@@ -1,0 +1,226 @@
+"""Guiding and certifying trials of a search (``worker.search_trials``), and the one-unknown outer method
+(``worker.search_outer``).
+
+The economy is the invented one of ``tests/worker/test_search.py`` (written again here: test modules do not
+import each other): households saving in ``a`` (a continuous choice, with the monotone and concave hints),
+income from a two-state chain, a Cobb–Douglas firm's wage and capital demand as params given as expressions
+of ``r``.  The reference for the answer is a client-side loop: scipy's ``brentq`` over single solves, each
+reading mean assets off its stationary distribution with numpy.
+"""
+
+from __future__ import annotations
+
+import copy
+import importlib
+import math
+from typing import Any
+
+import numpy as np
+import pytest
+from scipy.optimize import brentq
+
+import worker.search_trials as search_trials
+from worker.search_outer import NoRoot, find_root
+from worker.solve import compile_document, solve
+from worker.solvers import METHODS
+
+ALPHA, DELTA = 0.36, 0.08
+DOCUMENT: dict[str, Any] = {
+    "version": 1, "discount": 0.95, "solver": {"method": "howard", "tolerance": 1e-10},
+    "model": {
+        "kind": "grid",
+        "params": {"r": 0.02, "alpha": ALPHA, "delta": DELTA,
+                   "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
+                   "w": "(1 - alpha) * capital_demand ** alpha"},
+        "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
+        "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
+        "choices": {"save": {"next_of": "a", "continuous": True}},
+        "define": {"c": "(1 + r) * a + w * y - save"},
+        "reward": "log(c)",
+        "feasible": ["c > 0"],
+        "hints": {"monotone": True, "concave": True},
+    },
+}
+"""Invented: the households of the economy."""
+MARKET = {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
+          "tolerance": 1e-6}
+
+
+def _search_document() -> dict[str, Any]:
+    return {**copy.deepcopy(DOCUMENT), "search": MARKET}
+
+
+def _client_loop_root() -> float:
+    """scipy's brentq over single solves (the stationary report read with numpy): the reference r."""
+
+    def excess(r: float) -> float:
+        single = copy.deepcopy(DOCUMENT)
+        single["model"]["params"]["r"] = r
+        single["report"] = {"stationary": True}
+        result = solve(single)
+        pi = np.asarray(result["stationary"]["distribution"])
+        grid = np.asarray(result["axes"]["a"])
+        return float((pi * grid[:, None]).sum()) - (ALPHA / (r + DELTA)) ** (1 / (1 - ALPHA))
+
+    return brentq(excess, 0.0, 0.05, xtol=1e-12)
+
+
+@pytest.fixture(scope="module")
+def reference() -> float:
+    return _client_loop_root()
+
+
+def test_the_answer_is_a_certifying_trial_and_guiding_trials_say_they_are_not(reference: float) -> None:
+    search = solve(_search_document())["search"]
+    trials = search["trials"]
+    assert search["status"] == "converged"
+    assert all(isinstance(row["certified"], bool) for row in trials)
+    assert not trials[0]["certified"]  # far from the root: a guiding trial
+    answer = trials[-1]
+    assert answer["certified"] and answer["unknowns"] == search["unknowns"]
+    assert answer["residuals"] == search["residuals"] and abs(answer["residuals"][0]) <= MARKET["tolerance"]
+    assert answer["inner_tolerance"] == pytest.approx(1e-10)
+    # The mean assets rise by about 300 per unit of r here: a residual of 1e-6 is about 3e-9 in r.
+    assert abs(search["unknowns"]["r"] - reference) <= 1e-8
+
+
+def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest.MonkeyPatch,
+                                                             reference: float) -> None:
+    """Guiding trials made to answer for another point (r + 2e-4): a guiding residual within the tolerance
+    is then far from the truth, and the certifying trial there says so; the search goes on with certifying
+    trials and ends at the true root."""
+    import worker.search as search_module
+
+    original = search_trials.TrialModels.solve
+    shifted: list[float] = []
+
+    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
+        if certify:
+            return original(self, xs, start, tolerance, certify)
+        shifted.append(xs[0])
+        return original(self, (xs[0] + 2e-4,), start, tolerance, certify)
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", lying)
+    # Guiding trials all the way down to the tolerance, so that one meets it where the truth does not.
+    monkeypatch.setattr(search_module, "CERTIFY_NEAR", 1.0)
+    search = solve(_search_document())["search"]
+    assert shifted, "the search made no guiding trial"
+    assert search["status"] == "converged"
+    assert search["trials"][-1]["certified"]
+    assert abs(search["unknowns"]["r"] - reference) <= 1e-8
+    # Some guiding trial met the tolerance at a point that is not the answer, and was refused there.
+    misled = [row for row in search["trials"] if not row["certified"] and abs(row["residuals"][0]) <= 1e-6]
+    assert misled and all(abs(row["unknowns"]["r"] - reference) > 1e-5 for row in misled)
+
+
+def test_guiding_trials_reuse_one_compiled_problem(monkeypatch: pytest.MonkeyPatch) -> None:
+    front = importlib.import_module("worker.solve")  # the module: ``worker.solve`` the attribute is the function
+    compiled: list[Any] = []
+    original = front._compile
+
+    def counting(doc: Any, cap: Any) -> Any:
+        compiled.append(doc)
+        return original(doc, cap)
+
+    monkeypatch.setattr(front, "_compile", counting)
+    shared = solve(_search_document())["search"]
+    certified = sum(row["certified"] for row in shared["trials"])
+    # One compile for the first guiding trial, one per certifying trial; none for the other guiding ones.
+    assert len(compiled) == 1 + certified < len(shared["trials"])
+    monkeypatch.setattr(search_trials, "_swappable", lambda doc, problem: False)
+    compiled.clear()
+    apart = solve(_search_document())["search"]
+    assert len(compiled) == len(apart["trials"])
+    # The same trials and answer either way: swapping the params is the same model as compiling it.
+    assert apart["unknowns"]["r"] == pytest.approx(shared["unknowns"]["r"], abs=1e-12)
+    assert [row["unknowns"]["r"] for row in apart["trials"]] == pytest.approx(
+        [row["unknowns"]["r"] for row in shared["trials"]], abs=1e-12)
+
+
+def test_a_trusted_hinted_solve_skips_only_the_verification() -> None:
+    single = copy.deepcopy(DOCUMENT)
+    doc, problem = compile_document(single)
+    start = np.zeros(problem.n)
+    checked = METHODS["howard"](problem, start, tolerance=1e-10)
+    trusted = METHODS["howard"](problem, start, tolerance=1e-10, trust_hints=True)
+    assert checked.verification is not None and checked.verification["hints_held"]
+    assert trusted.verification is None
+    np.testing.assert_allclose(trusted.value, checked.value, rtol=0, atol=1e-9)
+
+
+def _counted(f: Any) -> tuple[Any, list[float]]:
+    calls: list[float] = []
+
+    def g(x: float) -> float:
+        calls.append(x)
+        return f(x)
+
+    return g, calls
+
+
+def test_find_root_stays_in_its_bracket_and_finds_a_root_near_a_pole() -> None:
+    # A residual that blows up just past the top of its bracket (like savings as r nears 1/beta - 1).
+    def f(x: float) -> float:
+        return 1.0 / (0.0417 - x) - 1.0 / (0.0417 - 0.0337)
+
+    g, calls = _counted(f)
+    find_root(g, 0.0, 0.0416, 0.03, xtol=1e-14, maxiter=60)
+    assert all(0.0 <= x <= 0.0416 for x in calls)
+    assert min(abs(x - 0.0337) for x in calls) <= 1e-12
+    # Fewer residuals than scipy's brentq from the ends to the same point (common practice as a yardstick).
+    h, ends_first = _counted(f)
+    brentq(h, 0.0, 0.0416, xtol=1e-14)
+    assert len(calls) < len(ends_first)
+
+
+def test_find_root_without_a_sign_change_names_both_ends() -> None:
+    g, calls = _counted(lambda x: 1.0 + x * x)
+    with pytest.raises(NoRoot) as caught:
+        find_root(g, -1.0, 2.0, 0.5, xtol=1e-12, maxiter=60)
+    assert caught.value.low == 2.0 and caught.value.high == 5.0
+    assert {-1.0, 2.0} <= set(calls) and all(-1.0 <= x <= 2.0 for x in calls)
+
+
+def test_find_root_starts_at_the_midpoint_when_the_value_lies_outside() -> None:
+    g, calls = _counted(lambda x: math.atan(x - 0.3))
+    find_root(g, 0.0, 1.0, 7.0, xtol=1e-13, maxiter=60)
+    assert calls[0] == 0.5 and abs(calls[-1] - 0.3) <= 1e-12
+
+
+def _stationary_numpy(matrix: np.ndarray) -> np.ndarray:
+    """pi (I - P) = 0 with sum(pi) = 1, as one least-squares system (numpy, written here)."""
+    n = matrix.shape[0]
+    system = np.vstack([(np.eye(n) - matrix).T, np.ones(n)])
+    target = np.zeros(n + 1)
+    target[-1] = 1.0
+    pi, *_ = np.linalg.lstsq(system, target, rcond=None)
+    return pi
+
+
+def test_a_trials_distribution_pinned_at_the_last_ones_heaviest_state_is_the_stationary_one() -> None:
+    import scipy.sparse as sp
+
+    rng = np.random.default_rng(7)
+    n = 60
+    dense = np.zeros((n, n))
+    for i in range(n):  # a savings-like chain: each state moves to one of a few neighbours
+        columns = np.clip(i + rng.integers(-3, 4, size=3), 0, n - 1)
+        dense[i, columns] += rng.random(3) + 0.1
+    dense /= dense.sum(axis=1, keepdims=True)
+    expected = _stationary_numpy(dense)
+    for previous in (expected, np.roll(expected, 5), None):
+        pi, info = search_trials.trial_distribution(sp.csr_matrix(dense), previous)
+        np.testing.assert_allclose(pi, expected, rtol=0, atol=1e-12)
+        assert info["residual"] <= 1e-12
+    # A pin on a transient state (the first one leaks into the rest and is never re-entered): the general
+    # solve answers instead, with that state's mass 0.
+    leaky = dense.copy()
+    leaky[:, 0] = 0.0
+    leaky[0] = 0.0
+    leaky[0, 1] = 1.0
+    leaky /= leaky.sum(axis=1, keepdims=True)
+    pinned_there = np.zeros(n)
+    pinned_there[0] = 1.0
+    pi, info = search_trials.trial_distribution(sp.csr_matrix(leaky), pinned_there)
+    np.testing.assert_allclose(pi, _stationary_numpy(leaky), rtol=0, atol=1e-12)
+    assert abs(pi[0]) <= 1e-15 and info["residual"] <= 1e-12

@@ -1,0 +1,167 @@
+"""The solves of a search: guiding trials on one compiled problem, certifying trials compiled afresh.
+
+A search solves the same model at many values of its unknowns.  Only the params (or the discount) change
+from one trial to the next; the grids, the shock chains and the compiled kernels do not.  So a *guiding*
+trial — one that only tells the root finder where to look next — reuses one compiled problem and swaps its
+params vector (``use_params``, as a finite horizon's periods do), and trusts the model's hints: it skips the
+unrestricted Bellman step that verifies them at the end of a hinted solve.
+
+A *certifying* trial is the solve that may be returned: the document validated and compiled afresh at the
+trial values, solved at ``solver.tolerance`` with the hints verified, exactly as a single job at those values
+would be (started from the guiding trial's value at the same point).  :mod:`worker.search` accepts a point
+only from a certifying trial, and builds the result from one; the trial rows say which were certified.
+
+Problems that cannot swap their params (reward tables, the endogenous grid method, draws after the choice)
+are compiled afresh for every guiding trial.
+"""
+
+from __future__ import annotations
+
+import copy
+from collections.abc import Callable
+from typing import Any
+
+import numpy as np
+import scipy.sparse as sp
+
+from worker.document import parse_document
+from worker.document.params import resolve_params
+from worker.document.search import DISCOUNT
+from worker.errors import InvalidDocument
+from worker.problem import CompiledProblem
+
+__all__ = ["TrialModels", "trial_distribution", "with_unknowns"]
+
+SWAPPABLE_METHODS = ("howard", "value_iteration", "policy_iteration")
+"""Methods whose guiding trials may run on a problem with swapped params (the endogenous grid method reads
+its params when it is compiled)."""
+
+
+def with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
+    """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
+    out = {key: value for key, value in document.items() if key != "search"}
+    params = {name: x for name, x in values.items() if name != DISCOUNT}
+    if DISCOUNT in values:
+        out[DISCOUNT] = values[DISCOUNT]
+    if params:
+        model = copy.copy(document["model"])
+        model["params"] = {**model["params"], **params}
+        out["model"] = model
+    out["report"] = {**(document.get("report") or {}), "stationary": True}
+    return out
+
+
+class TrialModels:
+    """Solves a search's trials: ``solve(xs, start, tolerance, certify) -> (doc, problem, outcome, certified)``.
+
+    ``trial(doc, initial, tolerance, problem=None, trust_hints=False) -> (problem, outcome)`` is the caller's
+    solve of a validated document (:mod:`worker.solve`'s): it compiles ``doc`` unless given ``problem``.
+    """
+
+    def __init__(self, document: dict[str, Any], names: list[str], trial: Callable[..., tuple[CompiledProblem, Any]]):
+        self.document = document
+        self.names = names
+        self.trial = trial
+        self.base_doc: Any = None
+        self.problem: CompiledProblem | None = None  # the guiding trials' problem: never one returned
+
+    def fresh_doc(self, xs: tuple[float, ...]) -> Any:
+        """The document at ``xs``, validated in full."""
+        return parse_document(with_unknowns(self.document, dict(zip(self.names, xs))))
+
+    def solve(self, xs: tuple[float, ...], start: np.ndarray | None, tolerance: float,
+              certify: bool) -> tuple[Any, CompiledProblem, Any, bool]:
+        """One trial at ``xs``; the last item says whether it is a certifying trial (see the module docstring)."""
+        if not certify:
+            guided = self._guiding(xs, start, tolerance)
+            if guided is not None:
+                return guided
+        doc = self.fresh_doc(xs)
+        problem, outcome = self.trial(doc, start, tolerance)
+        return doc, problem, outcome, True
+
+    def _guiding(self, xs: tuple[float, ...], start: np.ndarray | None,
+                 tolerance: float) -> tuple[Any, CompiledProblem, Any, bool] | None:
+        """A guiding trial, on the shared problem when the model allows it; None when it failed (the
+        certifying trial then gives the error, as a single job would)."""
+        from worker._codegen import kernel_params
+        from worker.feasibility import period_params
+
+        shared = self.problem
+        if shared is None:
+            doc = self.fresh_doc(xs)
+        else:
+            doc = self._light_doc(xs)
+            shared.use_params(kernel_params(period_params(doc.model, 0), shared.kernel_literals))
+            shared.discount = float(doc.discount)
+        try:
+            problem, outcome = self.trial(doc, start, tolerance, problem=shared, trust_hints=True)
+        except (InvalidDocument, ValueError, ArithmeticError):
+            return None
+        if shared is None and _swappable(doc, problem):
+            self.base_doc, self.problem = doc, problem
+        return doc, problem, outcome, False
+
+    def _light_doc(self, xs: tuple[float, ...]) -> Any:
+        """The first guiding trial's validated document with the params (resolved again) and discount at
+        ``xs``: all a guiding trial and its conditions read."""
+        raw = resolve_params(with_unknowns(self.document, dict(zip(self.names, xs))))
+        base = self.base_doc
+        params = {name: float(raw["model"]["params"][name]) for name in base.model.params}
+        model = base.model.model_copy(update={"params": params})
+        return base.model_copy(update={"model": model, "discount": float(raw.get(DISCOUNT, base.discount))})
+
+
+def _swappable(doc: Any, problem: CompiledProblem) -> bool:
+    """Whether ``problem`` can take other params by ``use_params`` and stay the same model otherwise."""
+    return (callable(getattr(problem, "use_params", None))
+            and getattr(problem, "reward_storage", "on_the_fly") == "on_the_fly"
+            and getattr(problem, "taste_scale", None) is None
+            and getattr(getattr(problem, "model_data", None), "draws", None) is None
+            and doc.model.horizon is None
+            and doc.solver.method in SWAPPABLE_METHODS)
+
+
+def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None) -> tuple[np.ndarray, dict[str, Any]]:
+    """The stationary distribution of a trial's chain: one sparse LU pinned at the heaviest state of the last
+    trial's distribution, else :func:`worker.report.long_run_distribution`.
+
+    ``π (I − P) = 0`` with ``π_k = 1``: the variable ``π_k`` is replaced by a slack that only equation ``k``
+    (the redundant one) sees, so the matrix is ``(I − P)ᵀ`` with column ``k`` set to ``e_k`` — row ``k`` of
+    ``I − P`` in CSR, whose arrays read as CSC are that transpose, with no transpose or slicing (which cost
+    more than the LU itself at 1,400 states).  The answer is kept only when ``‖πP − π‖₁`` is at most the
+    pinned solve's tolerance of :mod:`worker.report` and nothing is negative beyond rounding; otherwise (a
+    pin outside the chain's closed class, several closed classes) the general solve gives it.
+    """
+    from scipy.sparse import linalg as sla
+
+    from worker.report import PINNED_TOLERANCE, long_run_distribution
+
+    n = matrix.shape[0]
+    if previous is None or previous.shape != (n,):
+        return long_run_distribution(matrix)
+    k = int(np.argmax(previous))
+    system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
+    system.sort_indices()
+    start, stop = int(system.indptr[k]), int(system.indptr[k + 1])
+    columns = system.indices[start:stop]
+    diagonal = start + int(np.searchsorted(columns, k))
+    pi = None
+    if diagonal < stop and system.indices[diagonal] == k:
+        rhs = np.zeros(n)
+        rhs[columns] = -system.data[start:stop]
+        data = system.data.copy()
+        data[start:stop] = 0.0
+        data[diagonal] = 1.0
+        try:
+            pi = sla.splu(sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n))).solve(rhs)
+        except RuntimeError:  # exactly singular: several closed classes
+            pi = None
+    if pi is not None and np.isfinite(pi).all():
+        pi[k] = 1.0
+        pi /= pi.sum()
+        residual = float(np.abs(matrix.T @ pi - pi).sum())
+        if residual <= PINNED_TOLERANCE and pi.min() >= -PINNED_TOLERANCE:
+            pi = np.maximum(pi, 0.0)
+            return pi / pi.sum(), {"method": "direct", "residual": residual, "steps": 0, "warnings": []}
+    return long_run_distribution(matrix)
