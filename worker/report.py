@@ -302,7 +302,7 @@ def simulate_report(
     -------
     dict
         ``periods``, ``paths``, ``seed``; ``summary``: per state/shock axis and
-        choice, ``mean``, ``std`` and ``p5 … p95`` over every recorded period
+        choice, ``mean``, ``sd`` and ``p5 … p95`` over every recorded period
         of every path; ``first_path``: per axis its values along path 0
         (tabular: state labels), per choice the chosen values.
     """
@@ -362,7 +362,7 @@ def _draw_from(cumulative: np.ndarray, uniforms: np.ndarray) -> np.ndarray:
 def _summarise(samples: np.ndarray) -> dict[str, float]:
     flat = samples.ravel()
     quantiles = np.percentile(flat, PERCENTILES)
-    out = {"mean": float(flat.mean()), "std": float(flat.std())}
+    out = {"mean": float(flat.mean()), "sd": float(flat.std())}
     out.update({f"p{p}": float(q) for p, q in zip(PERCENTILES, quantiles)})
     return out
 

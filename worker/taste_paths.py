@@ -36,7 +36,7 @@ def simulate_taste_paths(
     first : (paths,) int64, the starting points
     periods : int, points recorded per path (the first is the start)
     rng : the generator (the same seed gives the same paths)
-    summarise : maps samples to ``mean``, ``std`` and percentiles
+    summarise : maps samples to ``mean``, ``sd`` and percentiles
 
     Returns
     -------

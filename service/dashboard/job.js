@@ -338,7 +338,7 @@
     if (summary.layout !== "bars" && simulation && simulation.summary) {
       const means = Object.entries(simulation.summary)
         .filter(([, stats]) => stats && Number.isFinite(stats.mean))
-        .map(([name, stats]) => `${name} ${formatBound(stats.mean)} (sd ${formatBound(stats.std)})`);
+        .map(([name, stats]) => `${name} ${formatBound(stats.mean)} (sd ${formatBound(stats.sd)})`);
       if (means.length) notes.push(`Over ${formatCount(simulation.paths)} simulated paths of ${formatCount(simulation.periods)} periods the averages are: ${means.join(", ")}.`);
     }
     return notes;

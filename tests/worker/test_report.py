@@ -134,7 +134,7 @@ def test_simulated_means_converge_to_stationary_means():
     out = simulate_report(problem, policy, spec(periods=30, paths=paths, seed=11))
     summary = out["summary"]["state_label"]
     assert abs(summary["mean"] - mean) <= 5 * sd / np.sqrt(paths)
-    assert summary["std"] == pytest.approx(sd, rel=0.02)  # common practice: a loose check of the spread
+    assert summary["sd"] == pytest.approx(sd, rel=0.02)  # common practice: a loose check of the spread
     quantiles = [summary[f"p{p}"] for p in (5, 25, 50, 75, 95)]
     assert quantiles == sorted(quantiles)
     assert len(out["first_path"]["state_label"]) == 30
@@ -192,7 +192,7 @@ def test_zero_probability_entries_are_never_drawn():
     out = simulate_report(problem, np.zeros(6, dtype=np.int64), spec(periods=6, paths=1000, seed=0, start=0))
     assert out["first_path"]["state_label"] == [0, 2, 4, 0, 2, 4]
     assert out["summary"]["state_label"]["mean"] == pytest.approx(2.0)
-    assert out["summary"]["state_label"]["std"] == pytest.approx(np.sqrt(8 / 3))
+    assert out["summary"]["state_label"]["sd"] == pytest.approx(np.sqrt(8 / 3))
 
 
 @pytest.mark.parametrize("method", ["direct", "gmres"])

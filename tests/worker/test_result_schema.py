@@ -294,4 +294,4 @@ def test_every_key_of_the_schema_has_a_description() -> None:
 
 
 def test_a_series_summary_has_the_percentiles_the_report_computes() -> None:
-    assert list(SeriesSummary.model_fields) == ["mean", "std", *(f"p{p}" for p in PERCENTILES)]
+    assert list(SeriesSummary.model_fields) == ["mean", "sd", *(f"p{p}" for p in PERCENTILES)]

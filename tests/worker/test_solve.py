@@ -216,7 +216,7 @@ def test_reports_through_solve():
     simulation = result["simulation"]
     assert simulation["first_path"]["state_label"][0] == "worn"
     assert set(simulation["summary"]) == {"state_label", "action"}
-    assert set(simulation["summary"]["state_label"]) == {"mean", "std", "p5", "p25", "p50", "p75", "p95"}
+    assert set(simulation["summary"]["state_label"]) == {"mean", "sd", "p5", "p25", "p50", "p75", "p95"}
     json.dumps(result, allow_nan=False)
 
 

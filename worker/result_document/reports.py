@@ -64,7 +64,7 @@ SeriesSummary = create_model(
     __base__=Reported,
     __doc__="One simulated series summarised over every recorded period of every path.",
     mean=(float, Field(description="The mean.")),
-    std=(float, Field(description="The standard deviation (population: divided by the number of draws).")),
+    sd=(float, Field(description="The standard deviation (population: divided by the number of draws).")),
     **{f"p{p}": (float, Field(description=f"The {p}th percentile.")) for p in PERCENTILES},
 )
 
