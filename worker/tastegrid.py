@@ -174,7 +174,8 @@ class TasteGridProblem(ReferenceProblem):
             # are nodes k·2^m .. (k + 1)·2^m − 1, weighted by the draw's probability.
             drawn = len(self._tables) == 5
             corners = 2 ** len(strides)
-            per_draw = [(lower[:, :, k], weight[:, :, k]) for k in range(lower.shape[2])] if drawn else [(lower, weight)]
+            per_draw = [(lower[:, :, k], weight[:, :, k]) for k in range(lower.shape[2])] if drawn else [
+                (lower, weight)]
             for k, (low, w) in enumerate(per_draw):
                 for corner in range(corners):
                     bits, wk = _corner(w, corner, len(strides))

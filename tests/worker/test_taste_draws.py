@@ -25,55 +25,13 @@ import numpy as np
 import pytest
 
 from tests._documents import grid_document
+from tests._draw_models import VAN_TOP as TOP
+from tests._draw_models import van, van_arrays
 from worker import solve
 from worker.errors import TooLarge
 from worker.solvers import GENERAL_METHODS
 
-TOP = 30
-WEAR = np.array([0.0, 1.0, 2.0])
-SEASON = np.array([[0.8, 0.2], [0.3, 0.7]])
 BETA, SCALE = 0.95, 0.5
-
-
-def van(scale: float | None = SCALE) -> dict[str, Any]:
-    """The invented delivery van (see the module's docstring); without ``scale`` no taste shocks."""
-    model: dict[str, Any] = {
-        "states": {"odometer": {"min": 0, "max": TOP, "points": TOP + 1}},
-        "shocks": {
-            "busy": {"markov": {"values": [0, 1], "matrix": SEASON.tolist()}},
-            "wear": {"iid": {"values": WEAR.tolist(),
-                             "probs": ["0.4 + 0.2 * replace - 0.1 * busy", "0.4", "0.2 - 0.2 * replace + 0.1 * busy"]},
-                     "timing": "after_choice"},
-        },
-        "choices": {"replace": {"values": [0, 1]}},
-        "next": {"odometer": f"min((1 - replace) * odometer + 0.75 * wear, {TOP})"},
-        "reward": "-(1 - replace) * 0.3 * odometer * (1 + 0.5 * busy) - replace * 7 + 2 * busy - 0.2 * wear",
-    }
-    if scale is not None:
-        model["taste_shocks"] = {"scale": scale}
-    return model
-
-
-def van_arrays() -> tuple[np.ndarray, np.ndarray]:
-    """``R`` (S, 2) and ``P`` (S, 2, S) over the value's points ``x = odometer · 2 + busy``, by hand."""
-    odometer = np.arange(TOP + 1, dtype=float)
-    points = (TOP + 1) * 2
-    R = np.zeros((points, 2))
-    P = np.zeros((points, 2, points))
-    for m in range(TOP + 1):
-        for busy in range(2):
-            x = 2 * m + busy
-            for a in range(2):
-                probs = np.array([0.4 + 0.2 * a - 0.1 * busy, 0.4, 0.2 - 0.2 * a + 0.1 * busy])
-                R[x, a] = -(1 - a) * 0.3 * odometer[m] * (1 + 0.5 * busy) - 7 * a + 2 * busy - 0.2 * (probs @ WEAR)
-                for wear, p in zip(WEAR, probs):
-                    after = min((1 - a) * odometer[m] + 0.75 * wear, TOP)
-                    low = min(int(math.floor(after)), TOP - 1)
-                    frac = after - low
-                    for node, w in ((low, 1 - frac), (low + 1, frac)):
-                        for tomorrow in range(2):
-                            P[x, a, 2 * node + tomorrow] += p * w * SEASON[busy, tomorrow]
-    return R, P
 
 
 def smoothed_by_numpy(scale: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
