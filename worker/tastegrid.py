@@ -17,6 +17,14 @@ probability, and ``r_π`` carries the entropy term.  Written as the nodes of
 one point (every pair's nodes, weighted by the pair's probability), the
 mixture runs through the same compiled fixed-policy kernels
 (:mod:`worker.kernels`) as a grid model's policy, fused and threaded alike.
+
+With draws after the choice (:mod:`worker.draws`) the tables are those of
+:func:`~worker.gridtables.precompute_tables` with a draw axis: ``R`` is the
+expected reward and each pair's nodes are every draw's interpolation
+corners, the draw's probability folded into their weights
+(:meth:`TasteGridProblem._nodes_of_pairs`), so ``EV(x, c)`` is the
+expectation over the draws and every use of the pairs' nodes above (the
+mixture, ``pair_transition``) mixes the draws too.
 """
 
 from __future__ import annotations
