@@ -3,7 +3,8 @@
 An invented delivery van: its odometer (0..TOP, in units of 10,000 km) and the season (quiet or busy, a Markov
 shock seen before the choice); each period the van is kept or replaced, with extreme-value taste shocks on the
 decision, and the week's wear is drawn after the decision with probabilities that depend on the choice and the
-season.  References named beside each check:
+season.  The worker and the corner shop of ``tests/_draw_models.py`` check several choices with excluded
+pairs.  References named beside each check:
 
 * an independent plain-numpy solver written here: dense arrays ``R[x, a]`` (the reward's expectation over the
   draws) and ``P[x, a, x']`` built by hand from the description, with their own linear interpolation between
@@ -26,7 +27,7 @@ import pytest
 
 from tests._documents import grid_document
 from tests._draw_models import VAN_TOP as TOP
-from tests._draw_models import van, van_arrays
+from tests._draw_models import inventory, inventory_arrays, job_search, job_search_arrays, van, van_arrays
 from worker import solve
 from worker.errors import TooLarge
 from worker.solvers import GENERAL_METHODS
@@ -141,6 +142,36 @@ def test_a_small_scale_approaches_the_unsmoothed_solution_with_draws():
         assert gap.max() <= scale * math.log(2) / (1 - BETA) + 1e-9
         gaps.append(gap.max())
     assert gaps[0] > gaps[1] > gaps[2]
+
+
+def smoothed_arrays(R: np.ndarray, P: np.ndarray, scale: float, beta: float) -> tuple[np.ndarray, np.ndarray]:
+    """``(V, probabilities)`` of the smoothed Bellman equation on arrays with ``-inf`` rewards where a choice is not
+    allowed (probability 0), by value iteration to 1e-13."""
+    allowed = R > -np.inf
+    reward = np.where(allowed, R, 0.0)
+    v = np.zeros(R.shape[0])
+    while True:
+        q = np.where(allowed, reward + beta * P @ v, -np.inf)
+        top = q.max(axis=1)
+        new = top + scale * np.log(np.exp((q - top[:, None]) / scale).sum(axis=1))
+        gap = np.abs(new - v).max()
+        v = new
+        if beta / (1 - beta) * gap < 1e-13:
+            return v, np.exp((q - v[:, None]) / scale)
+
+
+@pytest.mark.parametrize("build, arrays", [(job_search, job_search_arrays), (inventory, inventory_arrays)],
+                         ids=["job_search", "inventory"])
+def test_several_choices_with_excluded_pairs_match_numpy(build, arrays):
+    # The invented worker (accept, effort; separation drawn after the choice) and corner shop (order, price;
+    # demand drawn after the choice), each with taste shocks on every combination of its choices.
+    R, P = arrays()
+    v, probabilities = smoothed_arrays(R, P, 0.4, 0.95)
+    result = solve(grid_document({**build(), "taste_shocks": {"scale": 0.4}}, discount=0.95, tolerance=1e-10))
+    assert np.abs(np.asarray(result["value"]).reshape(-1) - v).max() <= 1e-8
+    p = np.asarray(result["choice_probabilities"]).reshape(R.shape)
+    np.testing.assert_allclose(p, probabilities, rtol=0, atol=1e-8)
+    assert (p[R == -np.inf] == 0).all()
 
 
 def test_tables_over_the_budget_are_refused_at_the_taste_shocks():
