@@ -1,12 +1,16 @@
 """Invented scenarios with draws revealed after the choice, and their dense arrays written by hand.
 
 Shared by the tests of draws after the choice (test modules do not import each other): a press whose
-wear is drawn after the keep-or-replace decision, a worker who may lose a job after accepting it, and
-a shop whose demand is seen after the order.  Each scenario comes with the reward ``R[s, a]`` and
-transition ``P[s, a, s']`` arrays of its description, for the independent numpy checks.
+wear is drawn after the keep-or-replace decision, a worker who may lose a job after accepting it, a
+shop whose demand is seen after the order, and a delivery van with taste shocks on its replacement.
+Each scenario comes with the reward ``R[s, a]`` and transition ``P[s, a, s']`` arrays of its
+description, for the independent numpy checks.
 """
 
 from __future__ import annotations
+
+import math
+from typing import Any
 
 import numpy as np
 
@@ -143,4 +147,52 @@ def inventory_arrays() -> tuple[np.ndarray, np.ndarray]:
                     sold = min(x + q, d)
                     R[x, a] += p * (price * sold - q - 2.0 * (q > 0) - 0.1 * (x + q - sold))
                     P[x, a, int(x + q - sold)] += p
+    return R, P
+
+
+VAN_TOP = 30
+VAN_WEAR = np.array([0.0, 1.0, 2.0])
+VAN_SEASON = np.array([[0.8, 0.2], [0.3, 0.7]])
+
+
+def van(scale: float | None = 0.5, top: int = VAN_TOP) -> dict[str, Any]:
+    """An invented delivery van: odometer 0..top (10,000 km; :func:`van_arrays` is for ``VAN_TOP``), a busy
+    or quiet season seen before the choice, keep (0) or replace (1) with taste shocks of ``scale`` (none when
+    None), and the week's wear drawn after the choice, its probabilities depending on the choice and the season."""
+    model: dict[str, Any] = {
+        "states": {"odometer": {"min": 0, "max": top, "points": top + 1}},
+        "shocks": {
+            "busy": {"markov": {"values": [0, 1], "matrix": VAN_SEASON.tolist()}},
+            "wear": {"iid": {"values": VAN_WEAR.tolist(),
+                             "probs": ["0.4 + 0.2 * replace - 0.1 * busy", "0.4", "0.2 - 0.2 * replace + 0.1 * busy"]},
+                     "timing": "after_choice"},
+        },
+        "choices": {"replace": {"values": [0, 1]}},
+        "next": {"odometer": f"min((1 - replace) * odometer + 0.75 * wear, {top})"},
+        "reward": "-(1 - replace) * 0.3 * odometer * (1 + 0.5 * busy) - replace * 7 + 2 * busy - 0.2 * wear",
+    }
+    if scale is not None:
+        model["taste_shocks"] = {"scale": scale}
+    return model
+
+
+def van_arrays() -> tuple[np.ndarray, np.ndarray]:
+    """``R`` (S, 2) and ``P`` (S, 2, S) over the value's points ``x = odometer · 2 + busy``, by hand."""
+    odometer = np.arange(VAN_TOP + 1, dtype=float)
+    points = (VAN_TOP + 1) * 2
+    R = np.zeros((points, 2))
+    P = np.zeros((points, 2, points))
+    for m in range(VAN_TOP + 1):
+        for busy in range(2):
+            x = 2 * m + busy
+            for a in range(2):
+                probs = np.array([0.4 + 0.2 * a - 0.1 * busy, 0.4, 0.2 - 0.2 * a + 0.1 * busy])
+                R[x, a] = -(1 - a) * 0.3 * odometer[m] * (1 + 0.5 * busy) - 7 * a + 2 * busy - 0.2 * (probs @ VAN_WEAR)
+                for wear, p in zip(VAN_WEAR, probs):
+                    after = min((1 - a) * odometer[m] + 0.75 * wear, VAN_TOP)
+                    low = min(int(math.floor(after)), VAN_TOP - 1)
+                    frac = after - low
+                    for node, w in ((low, 1 - frac), (low + 1, frac)):
+                        for tomorrow in range(2):
+                            P[x, a, 2 * node + tomorrow] += p * w * VAN_SEASON[busy, tomorrow]
     return R, P

@@ -2,8 +2,9 @@
 
 Every bundled example (``service/examples/*.json``) plus the shapes the estimates must also hold for,
 each an invented scenario: several iid and Markov shocks, taste shocks on a tabular model, draws after
-the choice, a finite horizon, a continuous choice, tabular dense and sparse transitions, and grid models
-of tens and hundreds of thousands of points where per-point costs dominate fixed ones.
+the choice (alone and with taste shocks), a finite horizon, a continuous choice, tabular dense and sparse
+transitions, and grid models of tens and hundreds of thousands of points where per-point costs dominate
+fixed ones.
 
 :func:`measure_memory` is the figure the estimate's ``bytes`` targets: the peak of the memory traced by
 :mod:`tracemalloc` (Python objects and numpy's arrays) during a solve in a process that has already
@@ -23,7 +24,8 @@ from typing import Any
 
 import numpy as np
 
-from tests._documents import GROWTH, array_tabular, random_replacement
+from tests._documents import GROWTH, array_tabular, grid_document, random_replacement
+from tests._draw_models import van
 from worker.arrays import encode_array
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "service" / "examples"
@@ -154,6 +156,7 @@ def documents(large: bool = False) -> dict[str, dict[str, Any]]:
         "dense_tabular": dense_tabular(),
         "sparse_tabular": sparse_tabular(),
         "taste_tabular": taste_tabular(),
+        "taste_with_draws_after_choice": grid_document(van(top=400), discount=0.95, tolerance=1e-6),
         "growth_tables_20k": growth(1000, 20),
         "growth_hinted_60k": growth(2000, 30, {"monotone": True, "concave": True}),
     })

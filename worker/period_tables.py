@@ -43,8 +43,8 @@ def enter_period_tables(problem: Any, model: Any, t: int) -> None:
         raise error
     meta = problem._ctx[-1]
     problem._ctx = (*tables, meta)
-    if hasattr(problem, "_tables"):  # the numpy steps (taste shocks) read the four node tables
-        problem._tables = tuple(tables[:4])
+    if hasattr(problem, "_tables"):  # the numpy steps (taste shocks) read the node tables (and draw probabilities)
+        problem._tables = tuple(tables)
     for cache in ("_policy_cache", "_last_hinted", "_last_exact", "_pair_nodes", "_mixed", "_probabilities",
                   "_most_probable"):
         if hasattr(problem, cache):

@@ -137,8 +137,8 @@ class ReferenceProblem(GridProblem):
         self.hints = Hints()
         self._monotone = self._concave = False
         self.hints_active = False
-        R, next_base, lower, weight, _ = self._ctx
-        self._tables: RewardTables = (R, next_base, lower, weight)
+        # The tables without ``meta``; with draws after the choice (taste shocks only) the fifth is their probability.
+        self._tables: RewardTables = tuple(self._ctx[:-1])
         self._interpolated_strides = [self._strides[t] for t in self._layout.interpolated]
 
     def _warm_up(self) -> None:

@@ -52,6 +52,8 @@ from typing import Any
 
 import numpy as np
 
+from worker.drawnames import draw_table_bytes
+
 __all__ = [
     "EULER_GAMMA", "SMOOTHED_PAIR_NS", "check_scale", "diagnostics", "entropy_reward", "smoothed_max",
     "taste_storage_words", "taste_table_bytes",
@@ -164,6 +166,10 @@ def taste_storage_words(pairs: int, table_bytes: int, budget: int, hints_request
 
 def taste_table_bytes(pairs: int, interpolated: int, nodes: int) -> int:
     """Bytes of a grid model's tables with taste shocks: the rewards and nodes of every pair (8 + 12 per
-    interpolated state), the choice values, probabilities and a temporary (3 × 8), and every pair's
-    interpolation nodes with their weights, twice while the mixed transition is built (2 × 16 per node)."""
-    return pairs * (8 + 12 * interpolated) + 3 * 8 * pairs + 2 * 16 * pairs * nodes
+    interpolated state; with draws after the choice, ``nodes / 2^interpolated`` of them, each node set with its
+    probability, :func:`worker.drawnames.draw_table_bytes`), the choice values, probabilities and a temporary
+    (3 × 8), and every pair's interpolation nodes with their weights, twice while the mixed transition is built
+    (2 × 16 per node)."""
+    draws = nodes >> interpolated if interpolated else 1
+    tables = draw_table_bytes(pairs, draws, interpolated) if draws > 1 else pairs * (8 + 12 * interpolated)
+    return tables + 3 * 8 * pairs + 2 * 16 * pairs * nodes

@@ -17,6 +17,14 @@ probability, and ``r_π`` carries the entropy term.  Written as the nodes of
 one point (every pair's nodes, weighted by the pair's probability), the
 mixture runs through the same compiled fixed-policy kernels
 (:mod:`worker.kernels`) as a grid model's policy, fused and threaded alike.
+
+With draws after the choice (:mod:`worker.draws`) the tables are those of
+:func:`~worker.gridtables.precompute_tables` with a draw axis: ``R`` is the
+expected reward and each pair's nodes are every draw's interpolation
+corners, the draw's probability folded into their weights
+(:meth:`TasteGridProblem._nodes_of_pairs`), so ``EV(x, c)`` is the
+expectation over the draws and every use of the pairs' nodes above (the
+mixture, ``pair_transition``) mixes the draws too.
 """
 
 from __future__ import annotations
@@ -32,7 +40,7 @@ from worker.estimate import grid_plan
 from worker.feasibility import infeasible, model_data
 from worker.gridproblem import GridProblem
 from worker.gridtables import precompute_tables
-from worker.reference import ReferenceProblem, _corner, _interpolated_expected
+from worker.reference import CHUNK_PAIRS, ReferenceProblem, _corner, _interpolated_expected
 from worker.taste import check_scale, entropy_reward, smoothed_max
 from worker.tastecheck import check_taste_tables
 
@@ -57,7 +65,9 @@ def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> Tas
     stuck = np.flatnonzero(~counts["any_allowed"])
     if stuck.size:
         raise infeasible(data, stuck, counts["any_feasible"])
-    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False)
+    # With draws after the choice the tables hold one node set per draw with its probability (worker.draws).
+    draws = data.draws.size if data.draws is not None else 0
+    layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False, draws=draws)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
     problem = TasteGridProblem(
         doc, data, plan, layout, None, ctx, "tables", counts, full=data, taste_scale=doc.model.taste_shocks.scale
@@ -90,11 +100,29 @@ class TasteGridProblem(ReferenceProblem):
         EVt = self._continuation(v)
         R, next_base = self._tables[0], self._tables[1]
         n, n_choices = R.shape
+        if len(self._tables) == 5:
+            return self._drawn_expected(EVt)
         if not self._interpolated_strides:
             n_shocks = EVt.shape[0]
             per_shock = EVt[:, next_base]
             return np.broadcast_to(per_shock[None], (n // n_shocks, n_shocks, n_choices)).reshape(n, n_choices)
         return _interpolated_expected(self._tables, EVt, self._interpolated_strides, 0, n)
+
+    def _drawn_expected(self, EVt: np.ndarray) -> np.ndarray:
+        """(n, C) ``EV(x, c)`` with draws after the choice: every draw's nodes, its probability folded into their
+        weights (:meth:`_nodes_of_pairs`), summed in chunks of rows."""
+        index, weight = self._nodes_of_pairs()
+        n, n_choices, nodes = weight.shape
+        n_shocks = EVt.shape[0]
+        out = np.empty((n, n_choices))
+        rows_per_chunk = max(1, CHUNK_PAIRS // max(n_choices * nodes, 1))
+        for start in range(0, n, rows_per_chunk):
+            stop = min(n, start + rows_per_chunk)
+            z = (np.arange(start, stop) % n_shocks)[:, None, None]
+            terms = EVt[z, index[start:stop]]
+            terms *= weight[start:stop]
+            out[start:stop] = terms.sum(axis=2)
+        return out
 
     def choice_specific_values(self, v: np.ndarray) -> np.ndarray:
         """(n, C) ``Q(x, c) = r(x, c) + β EV(x, c)`` at ``v``; ``-inf`` where a choice is not allowed."""
@@ -140,7 +168,7 @@ class TasteGridProblem(ReferenceProblem):
         (0 where a pair is not allowed); computed once."""
         if self._pair_nodes is not None:
             return self._pair_nodes
-        R, next_base, lower, weight = self._tables
+        R, next_base, lower, weight = self._tables[:4]
         n, n_choices = R.shape
         strides = self._interpolated_strides
         nodes = self._layout.nodes
@@ -150,12 +178,19 @@ class TasteGridProblem(ReferenceProblem):
             index[:, :, 0] = next_base[None, :]
             node_weight[:, :, 0] = 1.0
         else:
-            for corner in range(nodes):
-                bits, wk = _corner(weight, corner, len(strides))
-                node_weight[:, :, corner] = wk
-                index[:, :, corner] = next_base[None, :] + sum(
-                    stride * (lower[:, :, k].astype(np.int64) + bits[k]) for k, stride in enumerate(strides)
-                )
+            # With draws after the choice ``lower`` and ``weight`` carry a draw axis (n, C, K, m): draw k's corners
+            # are nodes k·2^m .. (k + 1)·2^m − 1, weighted by the draw's probability.
+            drawn = len(self._tables) == 5
+            corners = 2 ** len(strides)
+            per_draw = [(lower[:, :, k], weight[:, :, k]) for k in range(lower.shape[2])] if drawn else [
+                (lower, weight)]
+            for k, (low, w) in enumerate(per_draw):
+                for corner in range(corners):
+                    bits, wk = _corner(w, corner, len(strides))
+                    node_weight[:, :, k * corners + corner] = wk * self._tables[4][:, :, k] if drawn else wk
+                    index[:, :, k * corners + corner] = next_base[None, :] + sum(
+                        stride * (low[:, :, j].astype(np.int64) + bits[j]) for j, stride in enumerate(strides)
+                    )
         allowed = R != -np.inf
         node_weight[~allowed] = 0.0
         # A zero-weight corner beyond the grid's last point is never read: keep its index in range.

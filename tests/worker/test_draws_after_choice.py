@@ -178,11 +178,8 @@ def test_expressions_need_the_after_choice_timing_and_after_choice_needs_iid():
     assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
 
 
-def test_taste_shocks_and_continuous_choices_are_refused_with_draws():
-    model = {**machine(), "taste_shocks": {"scale": 0.5}}
-    with pytest.raises(InvalidDocument) as caught:
-        solve(grid_document(model))
-    assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
+def test_continuous_choices_are_refused_with_draws():
+    # Taste shocks with draws are solved (tests/worker/test_taste_draws.py); a continuous choice is refused.
     model = {
         "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
         "shocks": {"luck": {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}},

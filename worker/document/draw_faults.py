@@ -22,8 +22,6 @@ def draw_faults(model: Any) -> list[Fault]:
     if not draws:
         return []
     first = join_path("shocks", draws[0], "timing")
-    if model.taste_shocks is not None:
-        return [fault(first, "shocks drawn after the choice cannot be combined with taste_shocks yet")]
     if model.continuous_choice() is not None:
         return [fault(first, "shocks drawn after the choice need discrete choices: a continuous choice cannot be "
                              "combined with them yet")]
