@@ -21,10 +21,6 @@ def draw_faults(model: Any) -> list[Fault]:
     draws = draw_names(model)
     if not draws:
         return []
-    first = join_path("shocks", draws[0], "timing")
-    if model.continuous_choice() is not None:
-        return [fault(first, "shocks drawn after the choice need discrete choices: a continuous choice cannot be "
-                             "combined with them yet")]
     dependent = draw_dependent(model)
     known = [
         *model.params, *model.states, *(n for n in model.shocks if n not in draws), *model.choices,
