@@ -384,7 +384,10 @@ class ContinuousProblem:
         """``P_σ`` with each next state's mass on its neighbouring grid points in proportion (Young 2010)."""
         _, _, _, index, weight, _, _ = self.nodes(policy)
         indptr, indices, values = kernels.policy_csr(index, weight, self._data.transition)
-        return sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
+        matrix = sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
+        if self._draw_count:
+            matrix.sum_duplicates()  # two draws' nodes may meet at one grid point
+        return matrix
 
     def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any] | None]:
         """``policy`` (the chosen values, nested to ``shape``) and ``policy_index``: grid indices of the other
