@@ -39,21 +39,24 @@ def _document() -> dict[str, Any]:
         "report": {"stationary": True, "euler_errors": True, "simulation": {"paths": 200, "periods": 60, "seed": 4}}}
 
 
-def _parts(s: float, c: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Per season: probability, reward, next stock (the document's expressions, written in numpy)."""
+def _parts(s: float, c: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Per season (first axis), at harvests ``c`` (scalar or array): probability, reward, next stock (the
+    document's expressions, written in numpy)."""
+    c = np.asarray(c, dtype=np.float64)
     p_bad = 0.3 + 0.1 * c / s
-    probs = np.array([p_bad, 1.0 - p_bad])
-    reward = np.log(c + 0.05) + 0.05 * SEASONS
-    nxt = np.minimum(SEASONS * 1.6 * (s - c) ** 0.8 + 0.1, HIGH)
+    probs = np.stack([p_bad, 1.0 - p_bad])
+    season = SEASONS.reshape((2,) + (1,) * c.ndim)
+    reward = np.log(c + 0.05) + 0.05 * season
+    nxt = np.minimum(season * 1.6 * (s - c) ** 0.8 + 0.1, HIGH)
     return probs, reward, nxt
 
 
 def _reference(grid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Value iteration of ``V(s) = max_c Σ_d p_d(s, c) [r(s, c, d) + β V_lin(next(s, c, d))]``."""
 
-    def objective(s: float, c: float, v: np.ndarray) -> float:
+    def objective(s: float, c: Any, v: np.ndarray) -> Any:
         probs, reward, nxt = _parts(s, c)
-        return float(probs @ (reward + BETA * np.interp(nxt, grid, v)))
+        return (probs * (reward + BETA * np.interp(nxt, grid, v))).sum(axis=0)
 
     v = np.zeros(grid.size)
     policy = np.zeros(grid.size)
@@ -61,10 +64,10 @@ def _reference(grid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         new = np.empty_like(v)
         for i, s in enumerate(grid):
             fine = np.linspace(0.0, s - 0.1, 801)
-            values = np.array([objective(s, c, v) for c in fine])
+            values = objective(s, fine, v)
             best = int(np.argmax(values))
             lo, hi = fine[max(best - 1, 0)], fine[min(best + 1, fine.size - 1)]
-            found = minimize_scalar(lambda c: -objective(s, c, v), bounds=(lo, hi), method="bounded",
+            found = minimize_scalar(lambda c: -float(objective(s, c, v)), bounds=(lo, hi), method="bounded",
                                     options={"xatol": 1e-12})
             policy[i], new[i] = (found.x, -found.fun) if -found.fun >= values[best] else (fine[best], values[best])
         change = np.abs(new - v).max()
@@ -75,11 +78,25 @@ def _reference(grid: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
 
 
 @pytest.fixture(scope="module")
-def solved() -> tuple[dict[str, Any], np.ndarray, np.ndarray, np.ndarray]:
-    result = solve(_document())
+def reference() -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     grid = np.linspace(LOW, HIGH, POINTS)
-    v, policy = _reference(grid)
-    return result, grid, v, policy
+    return (grid, *_reference(grid))
+
+
+@pytest.fixture(scope="module")
+def solved(reference: tuple) -> tuple[dict[str, Any], np.ndarray, np.ndarray, np.ndarray]:
+    return (solve(_document()), *reference)
+
+
+def test_the_concave_hint_gives_the_same_answer(reference: tuple) -> None:
+    # Brent's method from a bracket (the hint) instead of scan and refine: the fishery's objective is concave.
+    grid, v, policy = reference
+    document = _document()
+    document["model"]["hints"] = {"concave": True}
+    result = solve(document)
+    assert result["diagnostics"]["continuous_choice"]["search"] == "brent_from_bracket"
+    np.testing.assert_allclose(result["value"], v, rtol=1e-6)
+    np.testing.assert_allclose(result["policy"]["harvest"], policy, atol=1e-4)
 
 
 def test_values_and_policy_match_a_plain_numpy_solver(solved: tuple) -> None:
