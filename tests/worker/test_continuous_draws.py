@@ -158,3 +158,35 @@ def test_the_endogenous_grid_method_and_cubic_interpolation_are_refused_with_dra
     cubic["model"]["interpolation"] = "monotone_cubic"
     with pytest.raises(InvalidDocument, match="monotone_cubic"):
         solve(cubic)
+
+
+def test_a_discrete_choice_beside_the_continuous_one() -> None:
+    # A boat that may go out with a second crew (gear 1): a costlier season's odds improve; the harvest is
+    # searched for each gear and the better kept.  Reference: the same plain-numpy solver, maximising over both.
+    document = _document()
+    model = document["model"]
+    model["choices"]["gear"] = {"values": [0, 1]}
+    model["shocks"]["season"]["iid"]["probs"] = ["0.3 + 0.1 * harvest / stock - 0.15 * gear",
+                                                 "0.7 - 0.1 * harvest / stock + 0.15 * gear"]
+    model["reward"] = "price * log(harvest + 0.05) + 0.05 * season - 0.04 * gear"
+    result = solve(document)
+    grid = np.linspace(LOW, HIGH, POINTS)
+    v = np.zeros(grid.size)
+    for _ in range(400):
+        best = np.full(grid.size, -np.inf)
+        for i, s in enumerate(grid):
+            for gear in (0, 1):
+                def objective(c: Any, s: float = s, gear: int = gear) -> Any:
+                    probs, reward, nxt = _parts(s, c)
+                    shift = np.array([-0.15, 0.15]).reshape((2,) + (1,) * np.ndim(c)) * gear
+                    return ((probs + shift) * (reward - 0.04 * gear + BETA * np.interp(nxt, grid, v))).sum(axis=0)
+                fine = np.linspace(0.0, s - 0.1, 401)
+                k = int(np.argmax(objective(fine)))
+                found = minimize_scalar(lambda c: -float(objective(c)), method="bounded", options={"xatol": 1e-12},
+                                        bounds=(fine[max(k - 1, 0)], fine[min(k + 1, fine.size - 1)]))
+                best[i] = max(best[i], -found.fun, objective(fine)[k])
+        change = np.abs(best - v).max()
+        v = best
+        if change < 1e-11:
+            break
+    np.testing.assert_allclose(result["value"], v, rtol=1e-6)
