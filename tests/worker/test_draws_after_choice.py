@@ -178,9 +178,11 @@ def test_expressions_need_the_after_choice_timing_and_after_choice_needs_iid():
     assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
 
 
-def test_continuous_choices_are_refused_with_draws():
-    # Taste shocks with draws are solved (tests/worker/test_taste_draws.py); a continuous choice is refused.
+def test_continuous_choices_with_draws_are_refused_with_a_horizon():
+    # A continuous choice with draws is solved (tests/worker/test_continuous_draws.py) with an infinite horizon;
+    # with a finite one it is refused at the draw's timing.
     model = {
+        "horizon": {"periods": 3},
         "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
         "shocks": {"luck": {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}},
         "choices": {"k_next": {"next_of": "k", "continuous": True}},
@@ -191,7 +193,7 @@ def test_continuous_choices_are_refused_with_draws():
     with pytest.raises(InvalidDocument) as caught:
         solve(grid_document(model))
     error = next(e for e in caught.value.errors if e["path"] == "model.shocks.luck.timing")
-    assert "continuous" in error["message"]
+    assert "finite horizon" in error["message"]
 
 
 def test_tables_over_the_budget_are_refused_at_the_draw():

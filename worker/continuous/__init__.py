@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from worker import _codegen
+from worker.continuous.drawnodes import check_at_scan
 from worker.continuous.egm import conditions
 from worker.continuous.problem import ContinuousProblem
 from worker.continuous.source import BOUND_HIGH, BOUND_LOW, module_text
@@ -52,6 +53,12 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
             "linear interpolation",
         )
     data = model_data(doc)
+    if data.draws is not None and cubic:
+        raise InvalidDocument.at(
+            "model.interpolation",
+            "monotone_cubic interpolation is not available with shocks drawn after the choice yet; use linear "
+            "(which also keeps the error bound a proof)",
+        )
     egm = None
     if doc.solver.method == "endogenous_grid":
         found, c_slope, reason = conditions(data)
@@ -61,6 +68,7 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     if data.span is not None:
         check_bounds(data)
     feasibility_scan(data, None)
+    check_at_scan(data)
     source = data.source
     order = kernel_order(data)
     bounds = () if data.span is None else ((BOUND_LOW, data.span[0]), (BOUND_HIGH, data.span[1]))
@@ -76,7 +84,7 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     )
     kernel_model, literals = _codegen.lift_literals(source)
     setters = tuple(None if j is None else order.index(j) for j in data.setter)
-    text = module_text(kernel_model, setters, cubic)
+    text = module_text(kernel_model, setters, cubic, data.draws)
     prepared = time.perf_counter()
     module = _codegen.load(text)
     params = _codegen.kernel_params(data.param_values, literals)

@@ -73,6 +73,10 @@ KINK_GENERATIONS = 3
 
 def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | None, str | None]:
     """``(setup, ∂c/∂k, None)`` when the method applies; else ``(None, None, reason)`` naming the failing condition."""
+    if data.draws is not None:
+        return None, None, ("it needs tomorrow's state and today's reward known at the choice, and this model has "
+                            f"shocks drawn after it ({', '.join(f'`{n}`' for n in data.draws.names)}); the "
+                            "first-order condition would hold only in expectation over the draws (solve with howard)")
     if len(data.choices) > 1:
         others = ", ".join(f"`{name}`" for j, name in enumerate(data.choices) if j != data.span_choice)
         return None, None, (f"it needs the continuous choice to be the model's only choice, and this model also "

@@ -24,6 +24,7 @@ from typing import Any
 
 import numpy as np
 
+from worker.draws import draw_probabilities
 from worker.errors import InvalidDocument
 from worker.expressions import evaluate
 from worker.grids import locate
@@ -73,7 +74,7 @@ def simulate_paths(problem: Any, policy: np.ndarray, spec: Any, path: str,
             picked[name][t] = value
         if t + 1 == periods:
             break
-        x, out = _tomorrow(problem, data, x, z, {problem.choice: a, **fixed})
+        x, out = _tomorrow(problem, data, x, z, {problem.choice: a, **fixed}, rng)
         clamped += out
         draws = rng.random(paths) * chain[z, -1]
         z = np.minimum((chain[z] <= draws[:, None]).sum(axis=1), n_z - 1)
@@ -138,17 +139,32 @@ def _interpolate(data: Any, values: np.ndarray, combos: np.ndarray, x: np.ndarra
 
 
 def _tomorrow(problem: Any, data: Any, x: np.ndarray, z: np.ndarray,
-              chosen: dict[str, np.ndarray]) -> tuple[np.ndarray, int]:
+              chosen: dict[str, np.ndarray], rng: np.random.Generator) -> tuple[np.ndarray, int]:
     """Tomorrow's states (paths, d) after the choices ``chosen`` (name → (paths,)), moved into the grids, and
-    how many were moved."""
+    how many were moved; with draws after the choice, each path's combination is drawn by its probabilities
+    at the path's state and choice (checked by the rules of :func:`worker.draws.draw_probabilities`)."""
     env: dict[str, Any] = dict(zip(data.params, data.param_values.tolist()))
     env.update({name: x[:, t] for t, name in enumerate(data.states)})
     env.update({name: data.shock_table[z, k] for k, name in enumerate(data.shocks)})
     env.update(chosen)
     a = chosen[problem.choice]
     with np.errstate(all="ignore"):
+        draws = data.draws
         for name, expr in data.source.defines:
-            env[name] = evaluate(expr, env)
+            if draws is None or name not in draws.dependent:
+                env[name] = evaluate(expr, env)
+        if draws is not None:
+            shaped = {name: np.asarray(value, dtype=np.float64).reshape(-1, 1) for name, value in env.items()
+                      if np.ndim(value) == 1}
+            probs = draw_probabilities(draws, {**env, **shaped}, (a.size, 1), np.ones((a.size, 1), dtype=bool),
+                                       lambda r, c: f"simulated path {r}")[:, :, 0]
+            cumulative = np.cumsum(probs, axis=0)
+            k = np.minimum((cumulative < rng.random(a.size) * cumulative[-1]).sum(axis=0), draws.size - 1)
+            index = np.unravel_index(k, [v.size for v in draws.values])
+            env.update({name: values[i] for name, values, i in zip(draws.names, draws.values, index)})
+            for name, expr in data.source.defines:
+                if name in draws.dependent:
+                    env[name] = evaluate(expr, env)
         laws = dict(data.source.next)
         out = np.empty_like(x)
         moved = 0

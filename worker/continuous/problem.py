@@ -43,6 +43,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker import kernels, threadpool
+from worker.continuous.drawnodes import check_at_policy, draw_nodes
 from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
 from worker.feasibility import ModelData
 from worker.grids import locate
@@ -133,6 +134,7 @@ class ContinuousProblem:
         self._nodes_for: np.ndarray | None = None
         self._nodes: tuple[np.ndarray, ...] = ()
         self._scratch = (np.empty((data.n_shocks, data.n_grid)), np.empty(self.n))
+        self._draw_count = 0 if data.draws is None else data.draws.size
         self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
 
     def use_params(self, params: np.ndarray) -> None:
@@ -154,7 +156,13 @@ class ContinuousProblem:
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
                        False, False, self.scan_points, self.combos, none_f, none_f, none_f, none_i, 0, 0)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
-                          self.combos, none_i, none_f, np.empty((0, len(data.states))), np.empty(0, dtype=np.bool_))
+                          self.combos, none_i, none_f, self._tomorrow(0), np.empty(0, dtype=np.bool_),
+                          np.empty((0, self._draw_count)))
+
+    def _tomorrow(self, count: int) -> np.ndarray:
+        """Room for tomorrow's state values at ``count`` points: (count, d), or (count, K, d) with draws."""
+        d = len(self._data.states)
+        return np.zeros((count, self._draw_count, d) if self._data.draws is not None else (count, d))
 
     @property
     def model_data(self) -> ModelData:
@@ -304,23 +312,33 @@ class ContinuousProblem:
         return rule
 
     def nodes(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
-        """``(reward, tomorrow (n, d), clamped (n,), index (n, 2^d), weight (n, 2^d))`` of a policy (cached)."""
+        """``(reward, tomorrow (n, d), clamped (n,), index (n, 2^d), weight (n, 2^d), lowers, shares)`` of a
+        policy (cached); with draws after the choice, ``tomorrow`` is (n, K, d), the nodes are every
+        combination's, weighted by its probability (:func:`~worker.continuous.drawnodes.draw_nodes`), and the
+        last two are None (cubic interpolation is refused with draws)."""
         a, jc = self.split_policy(policy)
         key = np.asarray(policy, dtype=np.float64)
         if self._nodes_for is not None and np.array_equal(self._nodes_for, key):
             return self._nodes
         data = self._data
         reward = np.empty(self.n)
-        tomorrow = np.empty((self.n, len(data.states)))
+        tomorrow = self._tomorrow(self.n)
         ok = np.empty(self.n, dtype=np.bool_)
+        probs = np.zeros((self.n, self._draw_count))
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, self._svals, self._piz, a,
-                          self.combos, jc, reward, tomorrow, ok)
+                          self.combos, jc, reward, tomorrow, ok, probs)
         if not ok.all():
             i = int(np.flatnonzero(~ok)[0])
             raise ValueError(
                 f"the policy picks a choice that is not allowed at {data.describe_state(i)} ({self.choice} = "
                 f"{a[i]:.6g})"
             )
+        if data.draws is not None:
+            check_at_policy(data, self.choice_values(policy))
+            clamped, index, weight = draw_nodes(data.state_grids, self._strides, tomorrow, probs)
+            self._nodes_for = key.copy()
+            self._nodes = (reward, tomorrow, clamped, index, weight, None, None)
+            return self._nodes
         lowers, weights, clamped = [], [], np.zeros(self.n, dtype=bool)
         for t, grid in enumerate(data.state_grids):
             lower, weight, out = locate(grid, tomorrow[:, t])
@@ -366,7 +384,10 @@ class ContinuousProblem:
         """``P_σ`` with each next state's mass on its neighbouring grid points in proportion (Young 2010)."""
         _, _, _, index, weight, _, _ = self.nodes(policy)
         indptr, indices, values = kernels.policy_csr(index, weight, self._data.transition)
-        return sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
+        matrix = sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
+        if self._draw_count:
+            matrix.sum_duplicates()  # two draws' nodes may meet at one grid point
+        return matrix
 
     def describe_policy(self, policy: np.ndarray) -> tuple[dict[str, Any], dict[str, Any] | None]:
         """``policy`` (the chosen values, nested to ``shape``) and ``policy_index``: grid indices of the other

@@ -33,12 +33,16 @@ slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 from __future__ import annotations
 
+import numpy as np
+
 from worker import expressions
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
 from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
+from worker.document.limits import ROW_SUM_TOLERANCE
+from worker.draws import Draws
 from worker.expressions import Expression
 
 __all__ = ["BOUND_HIGH", "BOUND_LOW", "module_text"]
@@ -48,7 +52,7 @@ BOUND_HIGH = "_bound_high"
 """Names of the interval's ends when they are expressions: two defines placed first (they use no choice)."""
 
 
-def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool) -> str:
+def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool, draws: Draws | None = None) -> str:
     """Source of the continuous-choice module.
 
     Parameters
@@ -63,11 +67,13 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         ends are its interval.
     cubic : bool
         ``monotone_cubic`` (its tensor product with several states) instead of multilinear interpolation.
+    draws : the shocks drawn after the choice, or None: their values and probabilities are written into the
+        kernels, which take every value's expectation over their combinations (see :meth:`_Writer._draws`).
     """
-    writer = _Writer(model, setters, cubic)
+    writer = _Writer(model, setters, cubic, draws)
     header = [
         f"# fixq generated continuous-choice kernels: {writer.d} states, {writer.m} shocks, setters {setters}, "
-        f"interpolation {'monotone_cubic' if cubic else 'linear'}",
+        f"interpolation {'monotone_cubic' if cubic else 'linear'}, draws {0 if draws is None else draws.size}",
         f"# generators {generator_hash()}",
         "import numpy as np",
         "from numba import njit",
@@ -81,8 +87,11 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
 
 
 class _Writer:
-    def __init__(self, model: ModelSource, setters: tuple[int | None, ...], cubic: bool) -> None:
+    def __init__(self, model: ModelSource, setters: tuple[int | None, ...], cubic: bool,
+                 draws: Draws | None) -> None:
         self.model = model
+        self.draws = draws
+        self.k = 0 if draws is None else draws.size
         self.setters = setters
         self.target = next((t for t, j in enumerate(setters) if j == 0), None)
         self.cubic = cubic
@@ -94,9 +103,13 @@ class _Writer:
         names.update({name: f"z_{t}" for t, name in enumerate(model.shocks)})
         names.update({name: f"c_{t}" for t, name in enumerate(model.choices)})
         names.update({name: f"d_{k}" for k, (name, _) in enumerate(model.defines)})
+        drawn = set() if draws is None else set(draws.names)
+        if draws is not None:
+            names.update({name: f"w_{t}" for t, name in enumerate(draws.names)})
         self.names = names
         self.state_lines: list[str] = []
-        dependent = dependents(model, set(model.choices))
+        self.after = dependents(model, drawn)
+        dependent = dependents(model, set(model.choices) | drawn)
         hoist = Hoister(dependent, names, self.state_lines, "h_")
         self.defines: list[tuple[int, Expression]] = []
         for k, (name, expr) in enumerate(model.defines):
@@ -107,6 +120,10 @@ class _Writer:
         self.feasible = [Expression.from_tree(hoist.rewrite(expr.tree)) for expr in model.feasible]
         self.reward = Expression.from_tree(hoist.rewrite(model.reward.tree))
         self.next = {t: Expression.from_tree(hoist.rewrite(expr.tree)) for t, expr in model.next}
+        self.probs = [] if draws is None else [
+            [e if isinstance(e, float) else Expression.from_tree(hoist.rewrite(e.tree)) for e in entries]
+            for entries in draws.probs
+        ]
 
     def _src(self, expr: Expression) -> str:
         return expressions.scalar_source(expr, self.names)
@@ -140,15 +157,20 @@ class _Writer:
             j = self.setters[t]
             out.add(f"x_{t} = c_{j}" if j is not None else f"x_{t} = {self._src(self.next[t])}")
 
-    def _model_at_choice(self, out: Lines, continuation: bool) -> None:
+    def _model_at_choice(self, out: Lines, continuation: bool, store: bool = False) -> None:
         """Sets ``ok``, ``r`` and (with ``continuation``) ``val`` at choice ``c_0``."""
         out.add("ok = False", "r = -np.inf", "val = -np.inf")
         for k, expr in self.defines:
-            out.add(f"d_{k} = {self._src(expr)}")
+            if self.draws is None or self.model.defines[k][0] not in self.after:
+                out.add(f"d_{k} = {self._src(expr)}")
         depth = out.depth
         for k, expr in enumerate(self.feasible):
             out.add(f"f_{k} = {self._src(expr)}", f"if f_{k} != 0.0:")
             out.depth += 1
+        if self.draws is not None:
+            self._draws(out, continuation, store)
+            out.depth = depth
+            return
         out.add(f"r = {self._src(self.reward)}")
         with out.block("if r - r == 0.0:"):
             self._tomorrow(out)
@@ -159,6 +181,55 @@ class _Writer:
                     self._interpolate(out)
                     out.add("val = r + beta * e")
         out.depth = depth
+
+    def _draws(self, out: Lines, continuation: bool, store: bool) -> None:
+        """``r`` and ``val`` as expectations over the draws' combinations (unrolled; C order, first draw slowest).
+
+        A candidate is allowed when every draw's probabilities are finite, non-negative and sum to one (the
+        rules of :func:`worker.draws.draw_probabilities`, which raises on them at the scanned candidates and
+        the policy), and every combination that can happen has a finite reward and a next state; a combination
+        of probability 0 adds nothing.  With ``store``, ``out_p[i, k]`` and ``out_x[i, k, t]`` per combination.
+        """
+        draws = self.draws
+        checks = []
+        for t, entries in enumerate(self.probs):
+            for v, entry in enumerate(entries):
+                out.add(f"pr_{t}_{v} = {entry!r}" if isinstance(entry, float) else f"pr_{t}_{v} = {self._src(entry)}")
+            total = " + ".join(f"pr_{t}_{v}" for v in range(len(entries)))
+            low = " and ".join(f"pr_{t}_{v} >= -{ROW_SUM_TOLERANCE!r}" for v in range(len(entries)))
+            checks.append(f"abs({total} - 1.0) <= {ROW_SUM_TOLERANCE!r} and {low}")
+        out.add("good = " + " and ".join(f"({check})" for check in checks))
+        with out.block("if good:"):
+            out.add("acc_r = 0.0", "acc_v = 0.0")
+            sizes = [v.size for v in draws.values]
+            for k in range(self.k):
+                index = np.unravel_index(k, sizes)
+                out.add("pk = " + " * ".join(f"max(pr_{t}_{v}, 0.0)" for t, v in enumerate(index)))
+                if store:
+                    out.add(f"out_p[i, {k}] = pk")
+                with out.block("if pk > 0.0 and good:"):
+                    for t, v in enumerate(index):
+                        out.add(f"w_{t} = {float(draws.values[t][v])!r}")
+                    for j, expr in self.defines:
+                        if self.model.defines[j][0] in self.after:
+                            out.add(f"d_{j} = {self._src(expr)}")
+                    out.add(f"rk = {self._src(self.reward)}")
+                    self._tomorrow(out)
+                    check = " and ".join(f"x_{t} == x_{t}" for t in range(self.d))
+                    with out.block(f"if rk - rk == 0.0 and {check}:"):
+                        out.add("acc_r += pk * rk")
+                        if store:
+                            for t in range(self.d):
+                                out.add(f"out_x[i, {k}, {t}] = x_{t}")
+                        if continuation:
+                            self._interpolate(out)
+                            out.add("acc_v += pk * (rk + beta * e)")
+                    with out.block("else:"):
+                        out.add("good = False")
+            with out.block("if good:"):
+                out.add("ok = True", "r = acc_r")
+                if continuation:
+                    out.add("val = acc_v")
 
     def _interpolate(self, out: Lines) -> None:
         """``e``: the continuation at ``x`` (clamped to the grid's ends)."""
@@ -215,7 +286,7 @@ class _Writer:
                         out.add(f"x_{t} = np.nan")
                     self._model_at_choice(out, continuation=True)
                     out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
-                text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic else self._kinks())
+                text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic or self.draws is not None else self._kinks())
                 out.extend(text.strip("\n").split("\n"))
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
@@ -233,16 +304,20 @@ class _Writer:
     def policy_at(self) -> str:
         out = Lines()
         out.add(JIT)
-        out.add("def policy_at(p, sgrid, meta, ztab, svals, piz, a, combos, jc, out_r, out_x, out_ok):")
+        out.add("def policy_at(p, sgrid, meta, ztab, svals, piz, a, combos, jc, out_r, out_x, out_ok, out_p):")
         out.depth += 1
         self._prologue(out)
         with out.block("for i in range(a.shape[0]):"):
             self._point(out)
             out.add("c_0 = a[i]")
             self._others(out, "jc[i]")
-            self._model_at_choice(out, continuation=False)
-            out.add("out_ok[i] = ok", "out_r[i] = r")
-            with out.block("if ok:"):
+            if self.draws is not None:
                 for t in range(self.d):
-                    out.add(f"out_x[i, {t}] = x_{t}")
+                    out.add(f"x_{t} = np.nan")
+            self._model_at_choice(out, continuation=False, store=True)
+            out.add("out_ok[i] = ok", "out_r[i] = r")
+            if self.draws is None:
+                with out.block("if ok:"):
+                    for t in range(self.d):
+                        out.add(f"out_x[i, {t}] = x_{t}")
         return out.text()
