@@ -160,19 +160,16 @@ def _pinned(
     if guess is None:
         guess, _ = _lazy_power(transposed, n, max_steps=PIN_PROBE_STEPS)
     k = int(members[np.argmax(guess[members])])
+    if direct:
+        pi = pinned_lu(matrix, k)
+        if pi is None:
+            return None
+        pi = np.maximum(pi, 0.0)
+        return pi / pi.sum()
     system = sp.csc_matrix(sp.identity(n, format="csr") - transposed)
     keep = np.r_[0:k, k + 1:n]
     reduced = sp.csc_matrix(system[keep][:, keep])
     rhs = -system[keep][:, [k]].toarray().ravel()
-    if direct:
-        try:
-            solution = sla.splu(reduced).solve(rhs)
-        except RuntimeError:  # exactly singular
-            return None
-        if not np.isfinite(solution).all():
-            return None
-        pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
-        return pi / pi.sum()
     try:
         ilu = sla.spilu(reduced, drop_tol=ILU_DROP_TOLERANCE, fill_factor=ILU_FILL_FACTOR)
     except RuntimeError:  # an exactly singular pivot: leave it to power iteration
@@ -184,6 +181,39 @@ def _pinned(
         return None
     pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
     return pi / pi.sum()
+
+
+def pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
+    """``π`` with ``π (I − P) = 0`` and ``π_k = 1`` by one sparse LU, or None (singular, not finite, or no
+    diagonal entry in row ``k``); not normalised, and unchecked (the callers check the residual).
+
+    ``π_k`` is replaced by a slack that only equation ``k`` (the redundant one) sees, so the matrix is
+    ``(I − P)ᵀ`` with column ``k`` set to ``e_k`` — row ``k`` of ``I − P`` in CSR, whose arrays read as CSC
+    are that transpose, with no transpose or slicing (which cost more than the LU itself at 1,400 states).
+    """
+    from scipy.sparse import linalg as sla
+
+    n = matrix.shape[0]
+    system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
+    system.sort_indices()
+    start, stop = int(system.indptr[k]), int(system.indptr[k + 1])
+    columns = system.indices[start:stop]
+    diagonal = start + int(np.searchsorted(columns, k))
+    if diagonal >= stop or system.indices[diagonal] != k:
+        return None
+    rhs = np.zeros(n)
+    rhs[columns] = -system.data[start:stop]
+    data = system.data.copy()
+    data[start:stop] = 0.0
+    data[diagonal] = 1.0
+    try:
+        pi = sla.splu(sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n))).solve(rhs)
+    except RuntimeError:  # exactly singular: several closed classes
+        return None
+    if not np.isfinite(pi).all():
+        return None
+    pi[k] = 1.0
+    return pi
 
 
 def _lazy_power(

@@ -124,41 +124,19 @@ def _swappable(doc: Any, problem: CompiledProblem) -> bool:
 
 def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None) -> tuple[np.ndarray, dict[str, Any]]:
     """The stationary distribution of a trial's chain: one sparse LU pinned at the heaviest state of the last
-    trial's distribution, else :func:`worker.report.long_run_distribution`.
+    trial's distribution (:func:`worker.report.pinned_lu`), else :func:`worker.report.long_run_distribution`.
 
-    ``π (I − P) = 0`` with ``π_k = 1``: the variable ``π_k`` is replaced by a slack that only equation ``k``
-    (the redundant one) sees, so the matrix is ``(I − P)ᵀ`` with column ``k`` set to ``e_k`` — row ``k`` of
-    ``I − P`` in CSR, whose arrays read as CSC are that transpose, with no transpose or slicing (which cost
-    more than the LU itself at 1,400 states).  The answer is kept only when ``‖πP − π‖₁`` is at most the
-    pinned solve's tolerance of :mod:`worker.report` and nothing is negative beyond rounding; otherwise (a
-    pin outside the chain's closed class, several closed classes) the general solve gives it.
+    The answer is kept only when ``‖πP − π‖₁`` is at most the pinned solve's tolerance of :mod:`worker.report`
+    and nothing is negative beyond rounding; otherwise (a pin outside the chain's closed class, several closed
+    classes) the general solve gives it.
     """
-    from scipy.sparse import linalg as sla
-
-    from worker.report import PINNED_TOLERANCE, long_run_distribution
+    from worker.report import PINNED_TOLERANCE, long_run_distribution, pinned_lu
 
     n = matrix.shape[0]
     if previous is None or previous.shape != (n,):
         return long_run_distribution(matrix)
-    k = int(np.argmax(previous))
-    system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
-    system.sort_indices()
-    start, stop = int(system.indptr[k]), int(system.indptr[k + 1])
-    columns = system.indices[start:stop]
-    diagonal = start + int(np.searchsorted(columns, k))
-    pi = None
-    if diagonal < stop and system.indices[diagonal] == k:
-        rhs = np.zeros(n)
-        rhs[columns] = -system.data[start:stop]
-        data = system.data.copy()
-        data[start:stop] = 0.0
-        data[diagonal] = 1.0
-        try:
-            pi = sla.splu(sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n))).solve(rhs)
-        except RuntimeError:  # exactly singular: several closed classes
-            pi = None
-    if pi is not None and np.isfinite(pi).all():
-        pi[k] = 1.0
+    pi = pinned_lu(matrix, int(np.argmax(previous)))
+    if pi is not None:
         pi /= pi.sum()
         residual = float(np.abs(matrix.T @ pi - pi).sum())
         if residual <= PINNED_TOLERANCE and pi.min() >= -PINNED_TOLERANCE:
