@@ -35,6 +35,7 @@ simulations", JEDC 34(1)), whatever the interpolation.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from types import ModuleType
 from typing import Any
@@ -43,6 +44,7 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker import kernels, threadpool
+from worker._codegen import kernel_params
 from worker.continuous.drawnodes import check_at_policy, draw_nodes
 from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
 from worker.feasibility import ModelData
@@ -146,6 +148,12 @@ class ContinuousProblem:
         self._params = np.ascontiguousarray(params, dtype=np.float64)
         self._nodes_for = None
         self._nodes = ()
+
+    def use_period(self, param_values: np.ndarray) -> None:
+        """Evaluate with other param values from now on (a finite horizon's period): the kernels' params and the
+        numpy evaluations (the draws' probabilities checked at a policy) alike."""
+        self._data = dataclasses.replace(self._data, param_values=np.asarray(param_values, dtype=np.float64))
+        self.use_params(kernel_params(self._data.param_values, self.kernel_literals))
 
     def warm_up(self) -> None:
         """Compile (or load) the kernels on empty inputs, so that ``timings`` shows the compile's cost."""
