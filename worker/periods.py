@@ -85,15 +85,28 @@ def _grid_plan(doc: Any, problem: Any) -> PeriodPlan:
     if varying and data.span is not None:
         _check_bounds_by_period(model, data)
 
+    continuous = getattr(problem, "choose_at", None) is not None  # a continuous choice
+    if varying and continuous:
+        from worker.continuous.draw_periods import PeriodEntry
+
+        enter_continuous = PeriodEntry(problem, model)
+
     def enter(t: int) -> None:
-        if varying and getattr(problem, "reward_storage", None) == "tables":
+        if varying and continuous:  # its params, and the draws' probabilities at its scanned candidates
+            enter_continuous(t)
+        elif varying and getattr(problem, "reward_storage", None) == "tables":
             # Taste shocks and draws after the choice are solved from tables only: refilled per period.
             enter_period_tables(problem, model, t)
         elif varying:
             problem.use_params(kernel_params(period_params(model, t), problem.kernel_literals))
         problem.discount = float(discounts[t])
 
-    return PeriodPlan(periods, discounts, terminal, enter, data.describe_state)
+    plan = PeriodPlan(periods, discounts, terminal, enter, data.describe_state)
+    if continuous and data.draws is not None:
+        from worker.continuous.draw_periods import check_period_policy
+
+        plan.check_policy = lambda t, policy: check_period_policy(problem, t, policy)
+    return plan
 
 
 def _check_bounds_by_period(model: Any, data: Any) -> None:

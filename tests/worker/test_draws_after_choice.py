@@ -178,22 +178,21 @@ def test_expressions_need_the_after_choice_timing_and_after_choice_needs_iid():
     assert caught.value.errors[0]["path"] == "model.shocks.wear.timing"
 
 
-def test_continuous_choices_with_draws_are_refused_with_a_horizon():
-    # A continuous choice with draws is solved (tests/worker/test_continuous_draws.py) with an infinite horizon;
-    # with a finite one it is refused at the draw's timing.
+def test_continuous_choices_with_draws_are_accepted_with_a_horizon():
+    # Once refused at the draw's timing; now solved by backward induction (checked against plain numpy in
+    # tests/worker/test_horizon_continuous_draws.py).
     model = {
         "horizon": {"periods": 3},
         "states": {"k": {"min": 0.1, "max": 2.0, "points": 20}},
         "shocks": {"luck": {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}},
         "choices": {"k_next": {"next_of": "k", "continuous": True}},
-        "define": {"c": "k**0.3 - k_next"},
-        "reward": "log(c)",
-        "feasible": ["c > 0"],
+        "define": {"c": "luck * k**0.3 - k_next"},
+        "reward": "log(max(c, 1e-3))",
+        "feasible": ["k_next < 0.9 * k**0.3"],
     }
-    with pytest.raises(InvalidDocument) as caught:
-        solve(grid_document(model))
-    error = next(e for e in caught.value.errors if e["path"] == "model.shocks.luck.timing")
-    assert "finite horizon" in error["message"]
+    result = solve(grid_document(model))
+    assert result["status"] == "converged" and result["method"] == "backward_induction"
+    assert np.asarray(result["value"]).shape == (3, 20)
 
 
 def test_tables_over_the_budget_are_refused_at_the_draw():

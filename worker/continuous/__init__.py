@@ -53,12 +53,6 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
             "linear interpolation",
         )
     data = model_data(doc)
-    if data.draws is not None and cubic:
-        raise InvalidDocument.at(
-            "model.interpolation",
-            "monotone_cubic interpolation is not available with shocks drawn after the choice yet; use linear "
-            "(which also keeps the error bound a proof)",
-        )
     egm = None
     if doc.solver.method == "endogenous_grid":
         found, c_slope, reason = conditions(data)

@@ -1,11 +1,13 @@
 """Draws revealed after a continuous choice: the policy's nodes over the draws, and the probabilities' checks.
 
 The generated kernels (:mod:`worker.continuous.source`) take the expectation over the draws' combinations at
-every candidate: ``Σ_k p_k(c) [r_k(c) + β EV(x'_k(c))]``, ``EV`` read by linear interpolation.  A policy's
-nodes (:meth:`worker.continuous.problem.ContinuousProblem.nodes`) then hold, per point, every combination's
-``2^d`` interpolation nodes with their weights multiplied by its probability, so Howard's steps, the
-transition matrix (Young 2010 lotteries per draw, weighted by the probabilities) and the certified bound
-follow without change.
+every candidate: ``Σ_k p_k(c) [r_k(c) + β EV(x'_k(c))]``, ``EV`` read by the model's interpolation.  A
+policy's nodes (:meth:`worker.continuous.problem.ContinuousProblem.nodes`) then hold, per point, every
+combination's ``2^d`` multilinear nodes with their weights multiplied by its probability, so Howard's linear
+steps, the transition matrix (Young 2010 lotteries per draw, weighted by the probabilities) and the
+certified bound follow without change; and every combination's place on the grids with its probability, from
+which the monotone cubic's steps take the same expectation
+(:func:`worker.continuous.interp_kernels.cubic_policy_steps`; its bound is computed the same way, not a proof).
 
 The probabilities are checked by the rules of :func:`worker.draws.draw_probabilities` (finite, non-negative,
 summing to one) where the model is evaluated with numpy: at every point's scanned candidates (the
@@ -65,16 +67,19 @@ def check_at_policy(data: ModelData, choice_values: dict[str, np.ndarray]) -> No
 
 def draw_nodes(
     grids: list[np.ndarray], strides: list[int], tomorrow: np.ndarray, probs: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """``(clamped (n,), index (n, K·2^d), weight (n, K·2^d))``: each combination's multilinear nodes with
-    their weights times its probability; ``tomorrow`` (n, K, d), ``probs`` (n, K).  A combination of
-    probability 0 gets weight 0 (its next value is not read)."""
+) -> tuple[np.ndarray, ...]:
+    """``(clamped (n,), index (n, K·2^d), weight (n, K·2^d), lower (n, K, d), share (n, K, d), mass (n, K))``:
+    each combination's multilinear nodes with their weights times its probability, and where it lies on each
+    state's grid (for the monotone cubic) with its probability; ``tomorrow`` (n, K, d), ``probs`` (n, K)
+    (without draws K = 1 and probability 1).  A combination of probability 0 gets weight and mass 0 (its next
+    value is not read)."""
     n, k_count, d = tomorrow.shape
     corners = 2**d
     index = np.zeros((n, k_count, corners), dtype=np.int64)
     weight = np.zeros((n, k_count, corners))
     clamped = np.zeros(n, dtype=bool)
     live = probs > 0.0
+    mass = np.where(live, probs, 0.0)
     x = np.where(live[:, :, None], tomorrow, np.array([g[0] for g in grids])[None, None, :])
     lowers, shares = [], []
     for t, grid in enumerate(grids):
@@ -83,10 +88,11 @@ def draw_nodes(
         shares.append(share.reshape(n, k_count))
         clamped |= (out.reshape(n, k_count) & live).any(axis=1)
     for corner in range(corners):
-        w = np.where(live, probs, 0.0)
+        w = mass
         for t, (lower, share) in enumerate(zip(lowers, shares)):
             bit = (corner >> t) & 1
             index[:, :, corner] += strides[t] * (lower + bit)
             w = w * (share if bit else 1.0 - share)
         weight[:, :, corner] = w
-    return clamped, index.reshape(n, -1), weight.reshape(n, -1)
+    return (clamped, index.reshape(n, -1), weight.reshape(n, -1), np.ascontiguousarray(np.stack(lowers, axis=2)),
+            np.ascontiguousarray(np.stack(shares, axis=2)), np.ascontiguousarray(mass))

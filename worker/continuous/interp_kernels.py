@@ -186,22 +186,24 @@ def cubic_values(grid: np.ndarray, values: np.ndarray, slopes: np.ndarray, rows:
 
 @njit(cache=True, nogil=True, error_model="numpy")
 def cubic_policy_steps(
-    reward: np.ndarray, lower: np.ndarray, share: np.ndarray, sgrid: np.ndarray, meta: np.ndarray, P: np.ndarray,
-    beta: float, v: np.ndarray, steps: int, span_stop: float,
+    reward: np.ndarray, lower: np.ndarray, share: np.ndarray, mass: np.ndarray, sgrid: np.ndarray,
+    meta: np.ndarray, P: np.ndarray, beta: float, v: np.ndarray, steps: int, span_stop: float,
 ) -> tuple[int, float]:
     """Up to ``steps`` steps ``v ← r_σ + β EV_σ`` in place, ``EV_σ`` read by the monotone cubic (the tensor
     product of :func:`tensor_cubic` with several states).
 
-    Flat point ``i = x · n_shocks + z``; ``lower``/``share`` (n, d) locate tomorrow's state of each point on
-    each state's grid (``meta``: offsets, sizes, strides in ``sgrid``).  Stops after the first step whose
-    increment has span ``max − min`` at most ``span_stop``.
+    Flat point ``i = x · n_shocks + z``; ``lower``/``share`` (n, K, d) locate tomorrow's state of each point on
+    each state's grid (``meta``: offsets, sizes, strides in ``sgrid``), for each of the ``K`` combinations of
+    the draws after the choice, whose probabilities are ``mass`` (n, K) (K = 1 and probability 1 without
+    draws; a combination of probability 0 is not read).  Stops after the first step whose increment has span
+    ``max − min`` at most ``span_stop``.
 
     Returns
     -------
     (steps done, span of the last step's increment; inf when none was done)
     """
     n_shocks = P.shape[0]
-    d = lower.shape[1]
+    d = lower.shape[2]
     n_grid = v.shape[0] // n_shocks
     size_last = meta[2 * d - 1]
     last_grid = sgrid[meta[d - 1]:meta[d - 1] + size_last]
@@ -222,14 +224,20 @@ def cubic_policy_steps(
         low = np.inf
         high = -np.inf
         for i in range(reward.shape[0]):
-            if d == 1:  # one state: the Hermite form at once
-                k = lower[i, 0]
-                e = hermite(share[i, 0], sgrid[k + 1] - sgrid[k], EVt[i % n_shocks, k], EVt[i % n_shocks, k + 1],
-                            D[i % n_shocks, k], D[i % n_shocks, k + 1])
-            elif d == 2:
-                e = tensor_two(EVt, D, i % n_shocks, sgrid, meta, lower[i], share[i])
-            else:
-                e = tensor_cubic(EVt, D, i % n_shocks, sgrid, meta, lower[i], share[i], scratch)
+            iz = i % n_shocks
+            e = 0.0
+            for k in range(mass.shape[1]):
+                p = mass[i, k]
+                if p == 0.0:
+                    continue
+                if d == 1:  # one state: the Hermite form at once
+                    j = lower[i, k, 0]
+                    e += p * hermite(share[i, k, 0], sgrid[j + 1] - sgrid[j], EVt[iz, j], EVt[iz, j + 1], D[iz, j],
+                                     D[iz, j + 1])
+                elif d == 2:
+                    e += p * tensor_two(EVt, D, iz, sgrid, meta, lower[i, k], share[i, k])
+                else:
+                    e += p * tensor_cubic(EVt, D, iz, sgrid, meta, lower[i, k], share[i, k], scratch)
             value = reward[i] + beta * e
             step = value - v[i]
             low = min(low, step)

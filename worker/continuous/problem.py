@@ -35,6 +35,7 @@ simulations", JEDC 34(1)), whatever the interpolation.
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from types import ModuleType
 from typing import Any
@@ -43,10 +44,10 @@ import numpy as np
 import scipy.sparse as sp
 
 from worker import kernels, threadpool
+from worker._codegen import kernel_params
 from worker.continuous.drawnodes import check_at_policy, draw_nodes
 from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
 from worker.feasibility import ModelData
-from worker.grids import locate
 from worker.problem import Hints
 
 __all__ = ["MOVING_STEPS_DIVISOR", "POLICY_RESOLUTION", "ContinuousProblem"]
@@ -146,6 +147,12 @@ class ContinuousProblem:
         self._params = np.ascontiguousarray(params, dtype=np.float64)
         self._nodes_for = None
         self._nodes = ()
+
+    def use_period(self, param_values: np.ndarray) -> None:
+        """Evaluate with other param values from now on (a finite horizon's period): the kernels' params and the
+        numpy evaluations (the draws' probabilities checked at a policy) alike."""
+        self._data = dataclasses.replace(self._data, param_values=np.asarray(param_values, dtype=np.float64))
+        self.use_params(kernel_params(self._data.param_values, self.kernel_literals))
 
     def warm_up(self) -> None:
         """Compile (or load) the kernels on empty inputs, so that ``timings`` shows the compile's cost."""
@@ -312,10 +319,11 @@ class ContinuousProblem:
         return rule
 
     def nodes(self, policy: np.ndarray) -> tuple[np.ndarray, ...]:
-        """``(reward, tomorrow (n, d), clamped (n,), index (n, 2^d), weight (n, 2^d), lowers, shares)`` of a
-        policy (cached); with draws after the choice, ``tomorrow`` is (n, K, d), the nodes are every
-        combination's, weighted by its probability (:func:`~worker.continuous.drawnodes.draw_nodes`), and the
-        last two are None (cubic interpolation is refused with draws)."""
+        """``(reward, tomorrow, clamped (n,), index (n, K·2^d), weight (n, K·2^d), lower (n, K, d), share (n, K, d),
+        mass (n, K))`` of a policy (cached): per combination of the draws after the choice (K = 1, probability 1
+        without them; ``tomorrow`` (n, d) then, (n, K, d) with them) its multilinear nodes, their weights
+        times its probability, and where it lies on each grid with its probability (the monotone cubic's);
+        see :func:`~worker.continuous.drawnodes.draw_nodes`."""
         a, jc = self.split_policy(policy)
         key = np.asarray(policy, dtype=np.float64)
         if self._nodes_for is not None and np.array_equal(self._nodes_for, key):
@@ -335,37 +343,21 @@ class ContinuousProblem:
             )
         if data.draws is not None:
             check_at_policy(data, self.choice_values(policy))
-            clamped, index, weight = draw_nodes(data.state_grids, self._strides, tomorrow, probs)
-            self._nodes_for = key.copy()
-            self._nodes = (reward, tomorrow, clamped, index, weight, None, None)
-            return self._nodes
-        lowers, weights, clamped = [], [], np.zeros(self.n, dtype=bool)
-        for t, grid in enumerate(data.state_grids):
-            lower, weight, out = locate(grid, tomorrow[:, t])
-            lowers.append(lower)
-            weights.append(weight)
-            clamped |= out
-        corners = 2 ** len(lowers)
-        index = np.zeros((self.n, corners), dtype=np.int64)
-        weight = np.ones((self.n, corners))
-        for corner in range(corners):
-            for t, (lower, share) in enumerate(zip(lowers, weights)):
-                bit = (corner >> t) & 1
-                index[:, corner] += self._strides[t] * (lower + bit)
-                weight[:, corner] *= share if bit else 1.0 - share
+            found = draw_nodes(data.state_grids, self._strides, tomorrow, probs)
+        else:
+            found = draw_nodes(data.state_grids, self._strides, tomorrow[:, None, :], np.ones((self.n, 1)))
         self._nodes_for = key.copy()
-        self._nodes = (reward, tomorrow, clamped, index, weight, np.ascontiguousarray(np.column_stack(lowers)),
-                       np.ascontiguousarray(np.column_stack(weights)))
+        self._nodes = (reward, tomorrow, *found)
         return self._nodes
 
     def policy_steps(
         self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf
     ) -> tuple[np.ndarray, int, float]:
         """Howard evaluation steps under the model's interpolation; see :data:`worker.problem.PolicySteps`."""
-        reward, _, _, index, weight, lower, share = self.nodes(policy)
+        reward, _, _, index, weight, lower, share, mass = self.nodes(policy)
         out = np.array(v, dtype=np.float64).reshape(self.n)
         if self.cubic:
-            done, span = cubic_policy_steps(reward, lower, share, self._sgrid, self._meta, self._data.transition,
+            done, span = cubic_policy_steps(reward, lower, share, mass, self._sgrid, self._meta, self._data.transition,
                                             self.discount, out, int(steps), float(span_stop))
         else:
             EVt, spare = self._scratch
@@ -382,7 +374,7 @@ class ContinuousProblem:
 
     def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
         """``P_σ`` with each next state's mass on its neighbouring grid points in proportion (Young 2010)."""
-        _, _, _, index, weight, _, _ = self.nodes(policy)
+        _, _, _, index, weight, _, _, _ = self.nodes(policy)
         indptr, indices, values = kernels.policy_csr(index, weight, self._data.transition)
         matrix = sp.csr_matrix((values, indices, indptr), shape=(self.n, self.n))
         if self._draw_count:
@@ -413,7 +405,7 @@ class ContinuousProblem:
 
     def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
         """The continuous choice's search and interpolation, clamped next values, and notes."""
-        _, tomorrow, clamped, _, _, _, _ = self.nodes(policy)
+        _, tomorrow, clamped, _, _, _, _, _ = self.nodes(policy)
         a, _ = self.split_policy(policy)
         warnings: list[str] = []
         if clamped.any():

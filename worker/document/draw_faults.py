@@ -21,9 +21,6 @@ def draw_faults(model: Any) -> list[Fault]:
     draws = draw_names(model)
     if not draws:
         return []
-    if model.continuous_choice() is not None and getattr(model, "horizon", None) is not None:
-        return [fault(join_path("shocks", draws[0], "timing"), "shocks drawn after a continuous choice are solved "
-                      "with an infinite horizon only for now: a finite horizon with them is not checked yet")]
     dependent = draw_dependent(model)
     known = [
         *model.params, *model.states, *(n for n in model.shocks if n not in draws), *model.choices,

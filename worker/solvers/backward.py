@@ -78,6 +78,9 @@ class PeriodPlan:
         :mod:`worker.egm_horizon`): ``step(t, after, verification, warnings) -> (V_t, policy)``,
         ``carry() -> dict`` of arrays saved with each checkpoint, ``resume(state, first_done) -> bool``
         (whether a checkpoint's carry restores it).
+    check_policy : callable, optional
+        ``check_policy(t, policy)`` after period ``t``'s step (the problem in period ``t``): raises on a policy
+        the model refuses (a continuous choice's draw probabilities, :mod:`worker.continuous.draw_periods`).
     """
 
     periods: int
@@ -86,6 +89,7 @@ class PeriodPlan:
     enter: Callable[[int], None]
     describe_point: Callable[[int], str]
     stepper: Any = None
+    check_policy: Callable[[int, np.ndarray], None] | None = None
 
 
 @dataclass
@@ -174,6 +178,8 @@ def backward_induction(
         else:
             tv, policy = period_step(problem, plan, t, after, None if t == T - 1 else policies[t + 1],
                                       verification, warnings)
+        if plan.check_policy is not None:
+            plan.check_policy(t, policy)
         scale = max(float(np.abs(tv).max()), float(np.abs(after).max()))
         bounds[t] = ROUNDING_ULPS * EPS * scale + plan.discounts[t] * (0.0 if t == T - 1 else bounds[t + 1])
         values[t], policies[t] = tv, policy
