@@ -354,3 +354,20 @@ def test_a_persistent_shock_before_the_choice_and_a_draw_after_it():
         assert value.shape == (M, 2)
         assert np.abs(value.reshape(-1) - reference).max() <= result["error_bound"], method
     np.testing.assert_array_equal(np.asarray(result["policy_index"]["replace"]).reshape(-1), policy)
+
+
+def test_draw_probabilities_may_use_the_period_under_a_horizon():
+    """P(d = 1) = 0.5 + 0.1·t; the draw sets tomorrow's state and pays in the reward only when a = 1.
+
+    Backward induction by hand (terminal value 0, β = 0.9): V_2(x) = x + max(0, 0.7 − 0.3) = x + 0.4;
+    V_1(x) = x + (0.6 − 0.3) + 0.9·(0.6 + 0.4) = x + 1.2; V_0(x) = x + (0.5 − 0.3) + 0.9·(0.5 + 1.2) = x + 1.73.
+    """
+    doc = {"version": 1, "discount": 0.9, "model": {
+        "kind": "grid", "horizon": {"periods": 3}, "states": {"x": {"values": [0, 1]}},
+        "shocks": {"d": {"iid": {"values": [0, 1], "probs": ["0.5 - 0.1 * period", "0.5 + 0.1 * period"]},
+                         "timing": "after_choice"}},
+        "choices": {"a": {"values": [0, 1]}}, "next": {"x": "d"}, "reward": "x + a * d - 0.3 * a"}}
+    result = solve(doc)
+    assert result["axis_order"] == ["period", "x"]
+    np.testing.assert_allclose(result["value"], [[1.73, 2.73], [1.2, 2.2], [0.4, 1.4]], atol=1e-12)
+    assert np.array(result["policy"]["a"]).tolist() == [[1, 1], [1, 1], [1, 1]]

@@ -10,6 +10,7 @@ from typing import Any
 
 from worker import expressions
 from worker.document._faults import Fault, fault
+from worker.document.horizon import PERIOD_NAME
 from worker.drawnames import draw_dependent, draw_names
 from worker.errors import InvalidDocument, join_path
 
@@ -26,6 +27,8 @@ def draw_faults(model: Any) -> list[Fault]:
         *model.params, *model.states, *(n for n in model.shocks if n not in draws), *model.choices,
         *(n for n in model.define if n not in dependent),
     ]
+    if getattr(model, "horizon", None) is not None:
+        known.append(PERIOD_NAME)
     faults: list[Fault] = []
     for i, text in enumerate(model.feasible):
         faults += _uses_draws(text, dependent, join_path("feasible", i), "a feasibility condition is decided before "

@@ -126,13 +126,15 @@ class TabularHorizon(Part):
 
 
 def varies_by_period(model: Any) -> bool:
-    """Whether a grid model's reward, feasibility or laws of motion change with the period
-    (params given per period, or ``period`` in its expressions)."""
+    """Whether a grid model's reward, feasibility, laws of motion or draw probabilities change with the
+    period (params given per period, or ``period`` in its expressions)."""
     if getattr(model, "horizon", None) is None or model.kind != "grid":
         return False
     if any(isinstance(value, list) for value in model.params.values()):
         return True
     texts = [*model.define.values(), *model.next.values(), model.reward, *model.feasible]
+    texts += [entry for shock in model.shocks.values() if getattr(shock, "iid", None) is not None
+              and isinstance(shock.iid.probs, (list, tuple)) for entry in shock.iid.probs if isinstance(entry, str)]
     return any(PERIOD_NAME in expressions.parse(text, path="model").names for text in texts)
 
 
