@@ -39,6 +39,7 @@ died).
 
 from __future__ import annotations
 
+import functools
 import hashlib
 import json
 import os
@@ -85,9 +86,14 @@ def enabled() -> bool:
 
 
 def _tag() -> str:
+    return _tag_for(os.environ.get("NUMBA_CACHE_DIR", ""))
+
+
+@functools.lru_cache(maxsize=8)
+def _tag_for(numba_cache_dir: str) -> str:
     import numba
 
-    text = "|".join([os.environ.get("NUMBA_CACHE_DIR", ""), sys.version, numba.__version__])
+    text = "|".join([numba_cache_dir, sys.version, numba.__version__])
     return hashlib.sha256(text.encode()).hexdigest()[:10]
 
 

@@ -20,7 +20,8 @@ every point: the value is ``v = r + β W e`` with ``e`` the expected value of
 each grid state, which solves a system of the grid states' size
 (:func:`reduced_policy_value`, offered to the solvers as
 ``exact_policy_value``; 80 × 80 on the benchmark where the full system is
-3,200 × 3,200 with 40 entries per node).
+3,200 × 3,200 with 40 entries per node).  It reads each policy's nodes
+unmerged: one solve per policy does not repay the merging.
 
 The merged sums are not the Bellman kernels' sums node by node, so a step may
 differ from :meth:`~worker.gridproblem.GridProblem.policy_step` in the last
@@ -131,7 +132,9 @@ def reduced_system(
         qz = q[i - x * n_shocks]
         b[x] += qz * reward[i]
         for k in range(indptr[i], indptr[i + 1]):
-            M[x, index[k]] += qz * weight[k]
+            w = weight[k]
+            if w != 0.0:  # unmerged nodes: a zero weight adds nothing
+                M[x, index[k]] += qz * w
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -143,7 +146,9 @@ def expand_value(
     for i in range(reward.shape[0]):
         total = 0.0
         for k in range(indptr[i], indptr[i + 1]):
-            total += weight[k] * e[index[k]]
+            w = weight[k]
+            if w != 0.0:  # unmerged nodes: a zero weight adds nothing
+                total += w * e[index[k]]
         out[i] = reward[i] + beta * total
 
 
@@ -253,6 +258,8 @@ class DrawGridProblem(GridProblem):
     """A :class:`~worker.gridproblem.GridProblem` with draws after the choice: evaluation steps over merged nodes."""
 
     _merged: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
+    _node_rows: tuple[tuple[int, int], np.ndarray] | None = None
+    """``((n, K), CSR row starts of unmerged nodes, K a row)`` (``exact_policy_value``)."""
 
     def _merged_nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """``(r_σ, indptr, node index, node weight)`` of ``policy``, nodes merged (CSR); cached for the last policy."""
@@ -289,8 +296,14 @@ class DrawGridProblem(GridProblem):
         transition = self._data.transition
         if not identical_rows(transition):
             return None
-        reward, indptr, index, weight = self._merged_nodes(policy)
-        return reduced_policy_value(reward, indptr, index, weight, transition[0], self.discount)
+        # Each policy is solved once: its nodes are summed into the system as they are, unmerged (every row K
+        # nodes, zero weights adding nothing), for merging them cost more than the sums it saves.
+        reward, index, weight = self._evaluated(policy)
+        n, nodes = index.shape
+        if self._node_rows is None or self._node_rows[0] != (n, nodes):
+            self._node_rows = ((n, nodes), np.arange(0, n * nodes + 1, nodes, dtype=np.int64))
+        return reduced_policy_value(reward, self._node_rows[1], index.reshape(-1), weight.reshape(-1), transition[0],
+                                    self.discount)
 
     def _clamped_at_policy_numpy(self, policy: np.ndarray) -> int:
         """Points whose policy's next value leaves a grid for some draw that can happen: read from the tables'

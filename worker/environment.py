@@ -18,6 +18,7 @@ __all__ = [
     "DEFAULT_MAX_LOADED_STRUCTURES",
     "KERNEL_CACHE",
     "KERNEL_CACHE_MB",
+    "MALLOC_TUNING",
     "MAX_LOADED_STRUCTURES",
     "MAX_PROBLEM_MB",
     "SOLVE_THREADS",
@@ -25,6 +26,7 @@ __all__ = [
     "cold_bridge_enabled",
     "kernel_cache_bytes",
     "kernel_cache_setting",
+    "malloc_tuning_enabled",
     "max_loaded_structures",
     "max_problem_bytes",
     "solve_threads",
@@ -63,6 +65,12 @@ SOLVE_THREADS = "FIXQ_SOLVE_THREADS"
 run on; ``1`` turns threading off.  Problems below ``worker.threadpool.THREAD_MIN_PAIRS`` (points ×
 choice points) always run on one thread, so a node running many small jobs keeps one job per core."""
 
+MALLOC_TUNING = "FIXQ_MALLOC_TUNING"
+"""``on`` (default) or ``off``: raise glibc's malloc thresholds once per worker process (mapping 4 MiB,
+trim 64 MiB), so that repeated small solves reuse freed memory instead of page-faulting on fresh pages;
+a process then keeps at most 64 MiB of free memory at the top of each malloc arena (see
+:mod:`worker.allocator`).  No effect where the C library is not glibc."""
+
 _MIB = 2**20
 _OFF = ("off", "0", "false", "no")
 
@@ -98,6 +106,11 @@ def max_loaded_structures() -> int:
 def cold_bridge_enabled() -> bool:
     """Whether ``FIXQ_COLD_BRIDGE`` leaves the cold-start bridge on (the default)."""
     return os.environ.get(COLD_BRIDGE, "on").strip().lower() not in _OFF
+
+
+def malloc_tuning_enabled() -> bool:
+    """Whether ``FIXQ_MALLOC_TUNING`` leaves the malloc thresholds' tuning on (the default)."""
+    return os.environ.get(MALLOC_TUNING, "on").strip().lower() not in _OFF
 
 
 def kernel_cache_setting() -> pathlib.Path | None:

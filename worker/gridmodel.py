@@ -71,11 +71,12 @@ from __future__ import annotations
 
 import dataclasses
 import time
+from types import ModuleType
 from typing import Any
 
 import numpy as np
 
-from worker import _codegen, bridge
+from worker import _codegen, bridge, threadpool
 from worker.document import SUBMISSION_KEYS
 from worker.document.horizon import varies_by_period
 from worker.drawcheck import check_draw_tables
@@ -172,7 +173,7 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
     kind = DrawGridProblem if layout.draws else GridProblem  # draws after the choice: merged nodes (worker.drawsteps)
     problem = kind(doc, data, plan, layout, module, ctx, chosen, counts, full=full, static=static)
     problem.kernel_literals = literals
-    problem._warm_up()
+    _warm_up_once(problem, module)
     bridge.mark_warm(module.__name__)
     if first_load:
         # Numba has written this structure's machine code by now: bring the folder back within its limit.
@@ -183,6 +184,18 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
         "compile_s": time.perf_counter() - prepared,
     }
     return problem
+
+
+def _warm_up_once(problem: GridProblem, module: ModuleType) -> None:
+    """``problem._warm_up()``, unless a problem of the same class and kernel configuration warmed up this module
+    object in this process already: its dispatchers then hold the machine code for exactly these argument types
+    (a module loaded again is a new object, warmed up again).  Calling every kernel once cost 70 µs a solve."""
+    threaded = problem.threads > 1 and problem.n >= threadpool.THREAD_MIN_STEP_POINTS
+    key = (type(problem).__qualname__, problem.hints_active, problem.reward_storage, threaded)
+    warmed = module.__dict__.setdefault("_fixq_warmed", set())
+    if key not in warmed:
+        problem._warm_up()
+        warmed.add(key)
 
 
 def _tables(

@@ -20,6 +20,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from worker.allocator import keep_freed_memory
 from worker.axis_order import apply_axis_order, model_axis_order, to_internal
 from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
@@ -160,6 +161,7 @@ def solve(
     """
     from worker.document import parse_document
 
+    keep_freed_memory()  # once per process: repeated solves reuse freed pages (worker.allocator)
     limits = limits or {}
     doc = parse_document(document)
     cap = {"max_bytes": int(limits.get("max_bytes") or max_problem_bytes())}
@@ -363,8 +365,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     report = doc.report
-    stationary = None
-    simulation = None
+    stationary = simulation = None
     if report.stationary:
         states = getattr(doc.model, "states", None)
         real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
@@ -401,10 +402,10 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
             "axes": problem.axes,
         }
     )
-    tail = _plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary, "simulation": simulation,
-                   "chains": shock_chains(doc)})
-    # The big nested lists come from ndarray.tolist() (``describe_policy`` promises the same), so they
-    # are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
+    tail = {**_plain({"log": outcome.log, "diagnostics": diagnostics, "stationary": stationary,
+                      "simulation": simulation}), "chains": shock_chains(doc)}
+    # The big nested lists come from ndarray.tolist() (``describe_policy`` and ``shock_chains`` promise the
+    # same), so they are plain already: walking them again cost a quarter of a 1,000 x 7 hinted solve.
     value = np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist()
     result = {**head, "value": value, "policy": policy, "policy_index": policy_index, **probabilities, **tail}
     return apply_axis_order(result, model_axis_order(doc.model))

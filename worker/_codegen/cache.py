@@ -36,6 +36,7 @@ Bounds
 from __future__ import annotations
 
 import fcntl
+import functools
 import hashlib
 import importlib.util
 import os
@@ -73,8 +74,10 @@ _GUARD = threading.Lock()
 """Guards `_HELD` and `_IMPORTS` (a solve's threads may load at once)."""
 
 
+@functools.lru_cache(maxsize=128)
 def module_name(source: str) -> str:
-    """The module (and file) name generated ``source`` is imported under: a hash of it."""
+    """The module (and file) name generated ``source`` is imported under: a hash of it (kept for the last 128
+    texts: a solve names its modules several times, and kept texts are the same string objects)."""
     return f"fixq_kernels_{hashlib.sha256(source.encode()).hexdigest()[:24]}"
 
 

@@ -36,6 +36,15 @@ class UnsafeFolder(OSError):
     """A kernel folder that others could write into (or that is not a plain folder of this user)."""
 
 
+_CHOSEN: dict[tuple[str | None, str | None, str | None], pathlib.Path] = {}
+"""The folder chosen last for each ``(FIXQ_KERNEL_CACHE, HOME, tempfile.tempdir)``: a solve loads its kernels
+several times, and the choice's path handling took about 0.1 ms each; the folder is still checked (an
+``lstat`` against its verified device and inode) at each call, so one replaced since is checked anew."""
+
+_CHOSEN_KEPT = 16
+"""Settings remembered in ``_CHOSEN`` (count; more only in tests that change the environment)."""
+
+
 def kernel_cache_dir() -> pathlib.Path:
     """The private kernel folder (see the module docstring), created if missing.
 
@@ -46,6 +55,27 @@ def kernel_cache_dir() -> pathlib.Path:
     OSError
         No candidate folder could be created.
     """
+    key = (os.environ.get(KERNEL_CACHE), os.environ.get("HOME"), tempfile.tempdir)
+    chosen = _CHOSEN.get(key)
+    if chosen is not None and _still_verified(chosen):
+        return chosen
+    chosen = _choose()
+    if len(_CHOSEN) >= _CHOSEN_KEPT:
+        _CHOSEN.clear()
+    _CHOSEN[key] = chosen
+    return chosen
+
+
+def _still_verified(path: pathlib.Path) -> bool:
+    """Whether ``path`` is the folder `private_folder` accepted, the same device and inode, still a folder."""
+    try:
+        now = os.lstat(path)
+    except OSError:
+        return False
+    return _VERIFIED.get(path) == (now.st_dev, now.st_ino) and stat.S_ISDIR(now.st_mode)
+
+
+def _choose() -> pathlib.Path:
     configured = kernel_cache_setting()
     if configured is not None:
         return private_folder(configured)

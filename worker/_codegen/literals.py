@@ -32,6 +32,7 @@ for a lifted name).
 
 from __future__ import annotations
 
+import functools
 import math
 
 import numpy as np
@@ -74,7 +75,24 @@ def lift_literals(model: ModelSource) -> tuple[ModelSource, tuple[float, ...]]:
     feasibility, ``next``; each tree depth first), one per occurrence, so the
     returned model depends on where numbers are written, never on their
     values (except the `structural` ones).
+
+    The answer for a model whose expressions were all parsed from text is kept (the last 64 such models):
+    every solve lifts its model again, about 0.1 ms for a small one.  Such a model equals another only with
+    the same texts, hence the same trees, so a kept answer is the one lifting would give (a tree built by code
+    has no text, and its numbers compare by value: ``-0.0`` equals ``0.0``; those are lifted each time).
     """
+    if all(expr.text for expr in (model.reward, *model.feasible, *(e for _, e in model.defines),
+                                  *(e for _, e in model.next))):
+        return _lift_parsed(model)
+    return _lift(model)
+
+
+@functools.lru_cache(maxsize=64)
+def _lift_parsed(model: ModelSource) -> tuple[ModelSource, tuple[float, ...]]:
+    return _lift(model)
+
+
+def _lift(model: ModelSource) -> tuple[ModelSource, tuple[float, ...]]:
     values: list[float] = []
 
     def walk(node: expressions.Node, role: str = "") -> expressions.Node:
