@@ -38,7 +38,7 @@ sys.path.insert(0, str(ROOT / "bench"))
 
 import baseline_separation as baseline  # noqa: E402
 
-REPEATS = 5
+REPEATS = 15
 """Timed solves of each; the medians are compared (count)."""
 TARGET = 5.0
 """Least speed-up of fixq over the baseline (ratio of solve times)."""
