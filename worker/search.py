@@ -148,6 +148,8 @@ def run_search(
         if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
             solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
 
+    factors: dict[str, Any] = {}  # the last sparse LU of a trial's stationary distribution (trial_distribution)
+
     def at(xs: tuple[float, ...], tolerance: float, certify: bool) -> list[float]:
         """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`)."""
         if (xs, tolerance, certify) in replay:
@@ -159,7 +161,7 @@ def run_search(
         started = time.perf_counter()
         trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
                                                               certify)
-        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"))
+        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))

@@ -288,3 +288,34 @@ def test_a_trials_distribution_pinned_at_the_last_ones_heaviest_state_is_the_sta
     pi, info = search_trials.trial_distribution(sp.csr_matrix(leaky), pinned_there)
     np.testing.assert_allclose(pi, _stationary_numpy(leaky), rtol=0, atol=1e-12)
     assert abs(pi[0]) <= 1e-15 and info["residual"] <= 1e-12
+
+
+def _savings_like_chain(seed: int, n: int = 60) -> np.ndarray:
+    rng = np.random.default_rng(seed)
+    dense = np.zeros((n, n))
+    for i in range(n):  # each state moves to one of a few neighbours
+        columns = np.clip(i + rng.integers(-3, 4, size=3), 0, n - 1)
+        dense[i, columns] += rng.random(3) + 0.1
+    return dense / dense.sum(axis=1, keepdims=True)
+
+
+def test_a_nearby_trials_distribution_is_refined_from_the_last_ones_lu_and_a_far_one_factorised_afresh() -> None:
+    import scipy.sparse as sp
+
+    first = _savings_like_chain(7)
+    factors: dict[str, Any] = {}
+    previous = _stationary_numpy(first)
+    pi, info = search_trials.trial_distribution(sp.csr_matrix(first), previous, factors)
+    assert info["method"] == "direct" and factors["pin"] == int(np.argmax(previous))
+    # A nearby chain (a trial close to the last): a few refinement steps with the kept LU.
+    nearby = 0.999 * first + 0.001 * _savings_like_chain(8)
+    pi, info = search_trials.trial_distribution(sp.csr_matrix(nearby), previous, factors)
+    assert info["method"] == "refined" and 1 <= info["steps"] <= search_trials.REFINE_STEPS
+    np.testing.assert_allclose(pi, _stationary_numpy(nearby), rtol=0, atol=1e-12)
+    assert info["residual"] <= 1e-12
+    # A far chain pinned at the same state: refinement stalls, and a fresh LU answers (and is kept).
+    far = 0.3 * first + 0.7 * _savings_like_chain(9)
+    kept = factors["lu"]
+    pi, info = search_trials.trial_distribution(sp.csr_matrix(far), previous, factors)
+    assert info["method"] == "direct" and factors["lu"] is not kept
+    np.testing.assert_allclose(pi, _stationary_numpy(far), rtol=0, atol=1e-12)
