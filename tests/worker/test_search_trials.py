@@ -111,6 +111,9 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     # Some guiding trial met the tolerance at a point that is not the answer, and was refused there.
     misled = [row for row in search["trials"] if not row["certified"] and abs(row["residuals"][0]) <= 1e-6]
     assert misled and all(abs(row["unknowns"]["r"] - reference) > 1e-5 for row in misled)
+    # The certifying trials after the misled guiding one: the first at the guiding trials' estimate, then
+    # Newton steps with their slope (a shift moves the residual, not its slope), within SETTLE_STEPS.
+    assert sum(row["certified"] for row in search["trials"]) <= search_module.SETTLE_STEPS
 
 
 def test_guiding_trials_reuse_one_compiled_problem(monkeypatch: pytest.MonkeyPatch) -> None:
