@@ -278,9 +278,8 @@ def run_search(
 def _start(solved: list[tuple[tuple[float, ...], np.ndarray]], xs: tuple[float, ...],
            value: np.ndarray | None) -> np.ndarray | None:
     """The next solve's starting value: with one unknown and two solves made, their values extrapolated
-    linearly in the unknown to ``xs`` (measured to save a third
-    of Howard's iterations); else the last solve's value (``value``, which a resumed search reads from its
-    checkpoint)."""
+    linearly in the unknown to ``xs`` (measured to save a third of Howard's iterations); else the last solve's
+    value (``value``, which a resumed search reads from its checkpoint)."""
     if len(solved) < 2 or len(xs) != 1:
         return value
     (x0,), v0 = solved[0]
