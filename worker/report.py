@@ -266,7 +266,8 @@ short (a share of the distribution; common practice)."""
 
 
 def stationary_report(
-    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None
+    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None,
+    distribution: tuple[np.ndarray, dict[str, Any]] | None = None,
 ) -> dict[str, Any]:
     """The stationary distribution of (states, shocks) under ``policy``.
 
@@ -274,6 +275,8 @@ def stationary_report(
     ----------
     problem : CompiledProblem
     policy : (n,) int64
+    distribution : ``(π, info)`` of the policy's chain when already solved (a search's certifying trial,
+        :func:`worker.search_trials.trial_distribution`); else :func:`long_run_distribution` solves it.
 
     Returns
     -------
@@ -289,7 +292,10 @@ def stationary_report(
         ``warnings`` (also when more than `TOP_MASS_WARNING` of the mass sits at
         the top of a state's grid, unless ``real_ends`` lists ``"max"`` for it).
     """
-    pi, info = long_run_distribution(problem.policy_matrix(policy))
+    if distribution is None:
+        pi, info = long_run_distribution(problem.policy_matrix(policy))
+    else:
+        pi, info = distribution[0], {**distribution[1], "warnings": list(distribution[1]["warnings"])}
     series = _series(problem, policy)
     if doc is not None:
         from worker.aggregates import define_series

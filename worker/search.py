@@ -83,7 +83,7 @@ def run_search(
     document: dict[str, Any],
     doc: Any,
     trial: Trial,
-    finish: Callable[[Any, CompiledProblem, Any], dict[str, Any]],
+    finish: Callable[..., dict[str, Any]],
     *,
     on_progress: Callable[[dict[str, Any]], None] | None = None,
     checkpoint: Any = None,
@@ -96,7 +96,8 @@ def run_search(
     document : the raw document (its string params are resolved again for every trial).
     doc : the validated document, with ``doc.search`` set.
     trial : solves one validated document from given values (None: the document's own start).
-    finish : builds the result document of a solve (``worker.solve``'s own).
+    finish : ``finish(doc, problem, outcome, distribution=(π, info))`` builds the result document of a solve
+        (``worker.solve``'s own), given the stationary distribution the last trial solved for the same policy.
     on_progress : called after every trial with ``{"iteration": trial number, "error_bound", "seconds",
         "search_trial": row}``.
     checkpoint : object with ``load() -> dict | None`` and ``save(state)``, optional
@@ -167,7 +168,7 @@ def run_search(
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-2]
         last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified, pi=pi,
-                    problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
+                    info=info, problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
                "inner_status": outcome.status, "iterations": int(outcome.iterations),
                "error_bound": float(outcome.error_bound), "stationary_residual": info["residual"],
@@ -266,7 +267,7 @@ def run_search(
            and last["certified"])
     if not met and status == "converged":
         status = "max_trials" if len(trials) >= spec.max_trials else "not_met"
-    result = finish(last["doc"], last["problem"], last["outcome"])
+    result = finish(last["doc"], last["problem"], last["outcome"], distribution=(last["pi"], last["info"]))
     result["search"] = {"status": status, "unknowns": dict(zip(names, last["xs"])), "residuals": last["residuals"],
                         "tolerance": spec.tolerance,
                         "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}

@@ -116,6 +116,31 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     assert sum(row["certified"] for row in search["trials"]) <= search_module.SETTLE_STEPS
 
 
+def test_the_results_stationary_distribution_is_the_certifying_trials_not_solved_again(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    import worker.report as report
+
+    general: list[int] = []
+    original = report.long_run_distribution
+
+    def counted(matrix: Any) -> Any:
+        general.append(matrix.shape[0])
+        return original(matrix)
+
+    monkeypatch.setattr(report, "long_run_distribution", counted)
+    result = solve(_search_document())
+    # Only the first trial (no distribution before it to pin from) takes the general solve.
+    assert len(general) == 1
+    pi = np.asarray(result["stationary"]["distribution"]).reshape(-1)
+    # Independent: the stationary distribution of the result's own policy, by numpy's least squares.
+    single = copy.deepcopy(DOCUMENT)
+    single["model"]["params"]["r"] = result["search"]["unknowns"]["r"]
+    _, problem = compile_document(single)
+    chosen = np.asarray(result["policy"]["save"], dtype=np.float64).reshape(-1)  # the certified policy
+    np.testing.assert_allclose(pi, _stationary_numpy(problem.policy_matrix(chosen).toarray()), rtol=0, atol=1e-12)
+    assert result["stationary"]["residual"] <= 1e-12
+
+
 def test_guiding_trials_reuse_one_compiled_problem(monkeypatch: pytest.MonkeyPatch) -> None:
     front = importlib.import_module("worker.solve")  # the module: ``worker.solve`` the attribute is the function
     compiled: list[Any] = []
