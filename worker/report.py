@@ -183,16 +183,37 @@ def _pinned(
     return pi / pi.sum()
 
 
-def pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
-    """``π`` with ``π (I − P) = 0`` and ``π_k = 1`` by one sparse LU, or None (singular, not finite, or no
-    diagonal entry in row ``k``); not normalised, and unchecked (the callers check the residual).
+def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None) -> np.ndarray | None:
+    """``π`` with ``π (I − P) = 0`` and ``π_k = 1`` by one sparse LU of :func:`pinned_system`, or None
+    (singular, not finite, or no diagonal entry in row ``k``); not normalised, and unchecked (the callers
+    check the residual).  ``keep``, when given, receives the factorisation (``lu``; ``pin`` = ``k``; ``n``)
+    for later solves of nearby chains (:mod:`worker.search_trials`)."""
+    from scipy.sparse import linalg as sla
+
+    pinned = pinned_system(matrix, k)
+    if pinned is None:
+        return None
+    system, rhs = pinned
+    try:
+        lu = sla.splu(system)
+    except RuntimeError:  # exactly singular: several closed classes
+        return None
+    pi = lu.solve(rhs)
+    if not np.isfinite(pi).all():
+        return None
+    pi[k] = 1.0
+    if keep is not None:
+        keep.update(lu=lu, pin=k, n=matrix.shape[0])
+    return pi
+
+
+def pinned_system(matrix: sp.csr_matrix, k: int) -> tuple[sp.csc_matrix, np.ndarray] | None:
+    """The system of :func:`pinned_lu` and its right-hand side, or None (no diagonal entry in row ``k``).
 
     ``π_k`` is replaced by a slack that only equation ``k`` (the redundant one) sees, so the matrix is
     ``(I − P)ᵀ`` with column ``k`` set to ``e_k`` — row ``k`` of ``I − P`` in CSR, whose arrays read as CSC
     are that transpose, with no transpose or slicing (which cost more than the LU itself at 1,400 states).
     """
-    from scipy.sparse import linalg as sla
-
     n = matrix.shape[0]
     system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
     system.sort_indices()
@@ -206,14 +227,7 @@ def pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
     data = system.data.copy()
     data[start:stop] = 0.0
     data[diagonal] = 1.0
-    try:
-        pi = sla.splu(sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n))).solve(rhs)
-    except RuntimeError:  # exactly singular: several closed classes
-        return None
-    if not np.isfinite(pi).all():
-        return None
-    pi[k] = 1.0
-    return pi
+    return sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n)), rhs
 
 
 def _lazy_power(
@@ -252,7 +266,8 @@ short (a share of the distribution; common practice)."""
 
 
 def stationary_report(
-    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None
+    problem: CompiledProblem, policy: np.ndarray, real_ends: dict[str, list[str]] | None = None, doc: Any = None,
+    distribution: tuple[np.ndarray, dict[str, Any]] | None = None,
 ) -> dict[str, Any]:
     """The stationary distribution of (states, shocks) under ``policy``.
 
@@ -260,6 +275,8 @@ def stationary_report(
     ----------
     problem : CompiledProblem
     policy : (n,) int64
+    distribution : ``(π, info)`` of the policy's chain when already solved (a search's certifying trial,
+        :func:`worker.search_trials.trial_distribution`); else :func:`long_run_distribution` solves it.
 
     Returns
     -------
@@ -275,7 +292,10 @@ def stationary_report(
         ``warnings`` (also when more than `TOP_MASS_WARNING` of the mass sits at
         the top of a state's grid, unless ``real_ends`` lists ``"max"`` for it).
     """
-    pi, info = long_run_distribution(problem.policy_matrix(policy))
+    if distribution is None:
+        pi, info = long_run_distribution(problem.policy_matrix(policy))
+    else:
+        pi, info = distribution[0], {**distribution[1], "warnings": list(distribution[1]["warnings"])}
     series = _series(problem, policy)
     if doc is not None:
         from worker.aggregates import define_series

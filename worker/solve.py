@@ -359,7 +359,8 @@ def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str
     return _checked_values(values, problem, path)
 
 
-def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[str, Any]:
+def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
+            distribution: tuple[np.ndarray, dict[str, Any]] | None = None) -> dict[str, Any]:
     taste, probabilities = _taste_shocks(doc, problem, outcome)
     policy, policy_index = problem.describe_policy(outcome.policy)
     problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
@@ -369,7 +370,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> dict[s
     if report.stationary:
         states = getattr(doc.model, "states", None)
         real_ends = {name: axis.real_ends for name, axis in states.items()} if isinstance(states, dict) else None
-        stationary = stationary_report(problem, outcome.policy, real_ends, doc)
+        stationary = stationary_report(problem, outcome.policy, real_ends, doc, distribution=distribution)
         warnings += stationary.pop("warnings", [])
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)

@@ -358,16 +358,23 @@ class _Memory:
         self.saves += 1
 
 
+def _saving_every_trial() -> dict[str, Any]:
+    """The market's search with a checkpoint due after every trial (``solver.checkpoint_s`` tiny)."""
+    document = _document(MARKET)
+    document["solver"]["checkpoint_s"] = 1e-9
+    return document
+
+
 def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(equilibrium: dict[str, Any]) -> None:
     from worker.errors import Canceled
 
     memory = _Memory()
     first: list[dict[str, Any]] = []
     with pytest.raises(Canceled):
-        solve(_document(MARKET), checkpoint=memory, on_progress=first.append, should_stop=lambda: len(first) >= 5)
+        solve(_saving_every_trial(), checkpoint=memory, on_progress=first.append, should_stop=lambda: len(first) >= 5)
     assert memory.state is not None and memory.state["iteration"] == 5 and len(memory.state["trials"]) == 5
     second: list[dict[str, Any]] = []
-    resumed = solve(_document(MARKET), checkpoint=memory, on_progress=second.append)
+    resumed = solve(_saving_every_trial(), checkpoint=memory, on_progress=second.append)
     fresh = equilibrium["search"]
     # The same trials, the first five answered from the checkpoint: the same point, reached with fewer solves.
     assert resumed["search"]["unknowns"] == fresh["unknowns"]
@@ -378,10 +385,21 @@ def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(e
 
 def test_a_checkpoint_of_another_document_is_ignored() -> None:
     memory = _Memory()
-    solve(_document(MARKET), checkpoint=memory)
+    solve(_saving_every_trial(), checkpoint=memory)
+    assert memory.state is not None
     entries: list[dict[str, Any]] = []
     other = solve(_document({**MARKET, "tolerance": 1e-5}), checkpoint=memory, on_progress=entries.append)
     assert len(entries) == len(other["search"]["trials"])
+
+
+def test_a_search_saves_its_checkpoint_every_checkpoint_s_not_after_every_trial() -> None:
+    memory = _Memory()
+    result = solve(_document(MARKET), checkpoint=memory)  # the default checkpoint_s (30 s): longer than the search
+    assert len(result["search"]["trials"]) > 1
+    assert memory.saves == 0
+    memory = _Memory()
+    result = solve(_saving_every_trial(), checkpoint=memory)
+    assert memory.saves == len(result["search"]["trials"])
 
 
 def _stationary_sd_of_assets(result: dict[str, Any]) -> float:
