@@ -318,7 +318,8 @@ def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, An
     if initial is None or initial == "zeros":
         return np.zeros(problem.n)
     if isinstance(initial, InitialValues):
-        values = to_internal(np.asarray(initial.values, dtype=np.float64), model_axis_order(doc.model), _sizes(problem))
+        values = to_internal(np.asarray(initial.values, dtype=np.float64), model_axis_order(doc.model),
+                             {name: len(values) for name, values in problem.axes.items()})
         return _checked_values(values, problem, "solver.initial.values")
     if isinstance(initial, InitialJob):
         path = "solver.initial.job"
@@ -410,10 +411,6 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
     value = np.asarray(outcome.value, dtype=np.float64).reshape(problem.shape).tolist()
     result = {**head, "value": value, "policy": policy, "policy_index": policy_index, **probabilities, **tail}
     return apply_axis_order(result, model_axis_order(doc.model))
-
-
-def _sizes(problem: CompiledProblem) -> dict[str, int]:
-    return {name: len(values) for name, values in problem.axes.items()}
 
 
 def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> tuple[dict[str, Any], dict[str, Any]]:
