@@ -47,6 +47,7 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.compile_seconds import compile_kernels, compile_seconds
 from worker.costs import (
     BASE_BYTES,
     CHOICE_BYTES,
@@ -70,7 +71,7 @@ from worker.costs import (
 from worker.drawnames import draw_count, draw_table_bytes
 from worker.grid_seconds import grid_seconds
 from worker.hintuse import hint_use
-from worker.kernel_limits import compile_cost
+from worker.kernel_limits import compile_bytes as compile_memory
 from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
 from worker.threadpool import TABLE_CHUNKS_AT_ONCE, threads_for
@@ -343,7 +344,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
             plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
         )
         basis += f"; {linear_solve_words(plan.n)}"
-    compile_bytes, compile_s = compile_cost(model)
+    compile_bytes = compile_memory(model)
+    compile_s, compile_basis = compile_seconds(model, compile_kernels(model, plan))
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
         used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
@@ -361,7 +363,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         )
     notes.append("memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)")
     notes.append(
-        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.1f} s "
         f"and {compile_bytes / _MIB:,.0f} MiB, then cached)"
     )
     return {
@@ -375,6 +377,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
+        "compile_basis": compile_basis,
         "seconds": seconds,
         "basis": f"{basis}; {how}",
         "notes": notes,
@@ -434,6 +437,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,
+        "compile_basis": "nothing compiled: a tabular model runs sparse matrices",
         "seconds": seconds,
         "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
         "notes": notes,
