@@ -40,6 +40,10 @@ __all__ = [
     "STABLE_STEPS_FACTOR",
     "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_RESTART",
+    "LU_ENTRY_NS",
+    "LU_FIXED_S",
+    "TABULAR_LU_SHARE",
+    "VALUE_SPAN_SHARE",
     "MATVEC_NS",
     "NUMPY_PAIR_NS",
     "POINT_NS",
@@ -90,6 +94,11 @@ SETTLE_SHARE = 0.15
 """Howard's last evaluation phase runs until the increments' span settles: about this share of the steps a
 contraction at rate β would need (dimensionless; measured 0 to 0.45 on the bundled examples, since chains
 that mix contract the span faster than β)."""
+VALUE_SPAN_SHARE = 0.2
+"""Value iteration stops when the MacQueen–Porteus bracket, ``β/(1 − β)`` times the span of ``Tv − v``, is within
+twice the tolerance; the span shrinks at β times the chain's mixing rate, so it takes about this share of the
+steps a contraction at rate β would need from a span of order 1 (dimensionless; measured by
+``bench/bench_estimates.py``: 0.05 to 0.6 on the bundled examples, the taste-shock and the draw documents)."""
 ITERATION_S = 5e-5
 """Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
 PERIOD_S = 1e-3
@@ -171,6 +180,17 @@ importers; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
 EULER_CHUNK_ELEMENTS = 2**18
 """As ``worker.euler._CHUNK_ELEMENTS``: (test point, shock, next shock) triples evaluated at once (count)."""
 
+LU_FIXED_S = 3e-4
+"""A direct exact evaluation's fixed cost: ``I − βP_σ`` built in CSC, the solver set up (seconds)."""
+LU_ENTRY_NS = 100.0
+"""A sparse LU of a grid model's policy system, per stored entry and point (nanoseconds; measured by
+``bench/bench_estimates.py`` with policy iteration: about 2 ms a solve at 802 points and 9,624 entries (taste
+shocks with draws), under 0.5 ms at 270 points and 1,620 entries: a policy's rows reach a few grid points, so the
+fill-in stays small)."""
+TABULAR_LU_SHARE = 0.2
+"""A tabular model's transitions may reach any state, so its LU may fill in: its time is this share of the
+dense bound ``n³/3`` ns (dimensionless; measured 9 ms a solve at 500 states with random transitions, against
+42 ms)."""
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
 then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
@@ -233,11 +253,15 @@ def linear_solve_bytes(n: int, entries: int) -> int:
     return (KRYLOV_RESTART + 6) * 8 * n + (entries + n) * 12
 
 
-def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) -> float:
-    """Time of one exact evaluation: an LU's ``n³/3`` floating-point operations at most (1 ns each), or the GMRES
-    mat-vecs a rate of β needs to bring the residual to the target (an upper guess for chains that mix slowly)."""
+def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float, *, anywhere: bool = False) -> float:
+    """Time of one exact evaluation: a sparse LU (``LU_FIXED_S`` plus ``LU_ENTRY_NS`` per stored entry and point;
+    with transitions that may reach ``anywhere``, a tabular model's, ``TABULAR_LU_SHARE`` of the dense bound of
+    ``n³/3`` operations at 1 ns each), or the GMRES mat-vecs a rate of β needs to bring the residual to the target
+    (an upper guess for chains that mix slowly)."""
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return n**3 / 3 * 1e-9
+        if anywhere:
+            return LU_FIXED_S + TABULAR_LU_SHARE * n**3 / 3 * 1e-9
+        return LU_FIXED_S + (entries + n) * LU_ENTRY_NS * 1e-9
     scale = 1.0 / (1.0 - beta)
     target = max(KRYLOV_RESIDUAL_SHARE * tolerance * (1.0 - beta) / scale, 1e-16)
     matvecs = math.ceil(math.log(target) / math.log(beta))
@@ -261,7 +285,7 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
     follow :func:`worker.solvers.evaluation.phase_plan`: ``m // moving_divisor`` steps after each iteration
     that moved the policy, then the steps until the increments settle, guessed as ``SETTLE_SHARE`` of the
     steps a contraction at rate β needs to bring the span to ``tolerance · (1 − β)/β``.  Value iteration:
-    the steps at rate β from a value of order ``1/(1 − β)``.
+    ``VALUE_SPAN_SHARE`` of the steps at rate β that bring the bracket from a span of order 1 to the tolerance.
     """
     horizon = doc.model.horizon
     if horizon is not None:
@@ -272,13 +296,14 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
     beta = float(doc.discount)
     solver = doc.solver
     tolerance = float(solver.tolerance)
-    scale = 1.0 / (1.0 - beta)
-    # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
-    target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
     evaluation = 0
     if solver.method == "value_iteration":
-        steps = math.ceil(math.log(target) / math.log(beta))
-        how = f"value iteration at rate β from a value of order 1/(1 − β) to the tolerance {tolerance:g}"
+        # It stops on the bracket: β/(1 − β) · span(Tv − v) within 2 · tolerance, from a span of order 1; the span
+        # shrinks faster than β when the chain mixes, so a share of the steps at rate β.
+        bracket = max(2.0 * tolerance * (1.0 - beta) / beta, 1e-16)
+        steps = math.ceil(VALUE_SPAN_SHARE * math.log(bracket) / math.log(beta))
+        how = (f"value iteration: {VALUE_SPAN_SHARE:g} of the steps at rate β that bring the bracket from a reward "
+               f"span of order 1 to the tolerance {tolerance:g}")
     else:
         steps = math.ceil(HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE * math.log2(max(choices, 2)))
         how = (f"{solver.method}: {HOWARD_BASE_ITERATIONS:g} + {HOWARD_ITERATIONS_PER_OCTAVE:g} per doubling of "

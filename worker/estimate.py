@@ -69,7 +69,7 @@ from worker.costs import (
     solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
-from worker.grid_seconds import grid_seconds
+from worker.grid_seconds import grid_seconds, policy_solve_seconds, policy_solve_words
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_bytes as compile_memory
 from worker.staticchoices import static_choices
@@ -340,10 +340,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
     seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
-        seconds += steps * linear_solve_seconds(
-            plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
-        )
-        basis += f"; {linear_solve_words(plan.n)}"
+        seconds += steps * policy_solve_seconds(doc, plan)
+        basis += f"; {policy_solve_words(doc, plan)}"
     compile_bytes = compile_memory(model)
     compile_s, compile_basis = compile_seconds(model, compile_kernels(model, plan))
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
@@ -417,7 +415,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         matrix += linear_solve_bytes(n_states, policy_entries)
         seconds += steps * linear_solve_seconds(
-            n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance)
+            n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance), anywhere=True
         )
         basis += f"; {linear_solve_words(n_states)}"
     notes = [

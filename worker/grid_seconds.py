@@ -11,6 +11,7 @@ import math
 from typing import Any
 
 from worker.costs import (
+    DIRECT_SOLVE_MAX_POINTS,
     DRAWS_FIXED_S,
     EXACT_LEVEL_NS,
     EXPECTATION_NS,
@@ -19,6 +20,7 @@ from worker.costs import (
     HINTED_POINTS,
     INTERPOLATED_PAIR_NS,
     ITERATION_S,
+    LU_FIXED_S,
     MATVEC_NS,
     NUMPY_PAIR_NS,
     POINT_NS,
@@ -28,12 +30,14 @@ from worker.costs import (
     THREAD_EFFICIENCY,
     euler_elements,
     horizon_seconds,
+    linear_solve_seconds,
+    linear_solve_words,
     report_seconds,
 )
 from worker.taste import SMOOTHED_PAIR_NS
 from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
 
-__all__ = ["grid_seconds"]
+__all__ = ["grid_seconds", "policy_solve_seconds", "policy_solve_words"]
 
 DRAW_FILL_NS = 16.0
 """The compiled fill of a model with draws after the choice (:mod:`worker.drawkernel`), per (pair, draw)
@@ -110,3 +114,38 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     if threads > 1:
         how += f"; {threads} threads ({speedup:g}× on the table fill and the Bellman steps)"
     return seconds + report_seconds(doc, plan.n, entries, euler) + horizon_seconds(doc, plan.n), how
+
+
+REDUCED_DENSE_MAX_GRID = 400
+"""As :data:`worker.drawsteps.DENSE_SOLVE_MAX_GRID` (not imported: that module loads numba;
+``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+
+
+def _reduced(doc: Any, plan: Any) -> bool:
+    """Whether policy iteration solves a system over the grid states only: draws after the choice with a chain of
+    identical rows (iid shocks or none before the choice; :func:`worker.drawsteps.reduced_policy_value`)."""
+    draws = plan.nodes >> plan.interpolated
+    before = [spec for spec in doc.model.shocks.values() if not spec.after_choice]
+    return draws > 1 and plan.interpolated > 0 and all(spec.iid is not None for spec in before) and (
+        plan.grid_states <= DIRECT_SOLVE_MAX_POINTS)
+
+
+def policy_solve_seconds(doc: Any, plan: Any) -> float:
+    """One exact evaluation of policy iteration on a grid model (seconds): the reduced system of the grid states
+    with draws after the choice and an iid chain (dense up to ``REDUCED_DENSE_MAX_GRID`` grid states: ``g³/3``
+    operations at 1 ns, plus the nodes read), else the full system of :func:`worker.costs.linear_solve_seconds`."""
+    entries = plan.n * plan.nodes * plan.shocks
+    if _reduced(doc, plan):
+        g = plan.grid_states
+        nodes = plan.n * plan.nodes
+        if g <= REDUCED_DENSE_MAX_GRID:
+            return LU_FIXED_S + g**3 / 3 * 1e-9 + nodes * MATVEC_NS * 1e-9
+        return linear_solve_seconds(g, nodes, float(doc.discount), float(doc.solver.tolerance)) + nodes * 1e-9
+    return linear_solve_seconds(plan.n, entries, float(doc.discount), float(doc.solver.tolerance))
+
+
+def policy_solve_words(doc: Any, plan: Any) -> str:
+    if _reduced(doc, plan):
+        return (f"exact evaluations over the {plan.grid_states:,} grid states (draws after the choice with iid "
+                "shocks: the expected value of each grid state solves a system of their size)")
+    return linear_solve_words(plan.n)
