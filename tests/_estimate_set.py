@@ -169,6 +169,22 @@ def documents(large: bool = False) -> dict[str, dict[str, Any]]:
     return docs
 
 
+def method_variants() -> dict[str, dict[str, Any]]:
+    """The taste-shock and draw documents solved by policy iteration and by value iteration (name → document):
+    their exact evaluations and their iteration counts are modelled apart from Howard's."""
+    base = {name: raw for name, raw in documents().items() if name in (
+        "taste_tabular", "taste_with_draws_after_choice", "separation_after_choice", "bike_shop_inventory",
+        "courier_van_replacement")}
+    variants = {}
+    for name, raw in base.items():
+        for method, short in (("policy_iteration", "pi"), ("value_iteration", "vi")):
+            document = copy.deepcopy(raw)
+            document["solver"]["method"] = method
+            document["solver"].pop("evaluation_steps", None)
+            variants[f"{name}_{short}"] = document
+    return variants
+
+
 POINTWISE: dict[str, tuple[dict[str, Any], dict[str, int]]] = {
     "fishery_pointwise": (example("fishery_harvest"), {"max_bytes": 2**20}),
     "roastery_60_pointwise": (two_states(60, 60), {"max_bytes": 200 * 2**20}),

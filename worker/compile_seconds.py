@@ -27,11 +27,12 @@ from worker.kernel_limits import expression_nodes
 
 __all__ = ["LOAD_S", "compile_kernels", "compile_seconds", "continuous_kernels"]
 
-LOAD_S = 0.27
+LOAD_S = 0.4
 """What the first solve in a fresh worker process adds when its kernels are compiled already: modules
 imported on first use, the generated module and numba's machine code loaded from the folders (seconds;
-measured 0.22–0.33 on the 14 grid documents of ``bench/bench_estimates.py``).  Also part of every cold
-first solve, beside the compile."""
+measured 0.22–0.33 on the 14 grid documents of ``bench/bench_estimates.py`` on a quiet machine, 0.34–0.94 on a
+busy one; a model with taste shocks, which compiles nothing of its own, 0.3–0.8 for its whole first solve).
+Also part of every cold first solve, beside the compile."""
 SCAN_PAIRS_MAX = 20_000_000
 """As :data:`worker.griddiagnostics.SCAN_MAX_PAIRS` (not imported: that module builds on numpy's kernels'
 results; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""

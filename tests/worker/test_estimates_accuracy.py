@@ -65,3 +65,98 @@ def test_howard_evaluation_steps_follow_the_phases_of_the_solver() -> None:
         assert iterations == 15  # 3 + 1.5 · log2(240), rounded up
     assert steps[10] - steps[5] == 14 * (10 // 5 - 5 // 5)
     assert steps[50] - steps[10] == 14 * (50 // 5 - 10 // 5)
+
+
+def test_the_mirrored_limits_of_the_time_estimate_are_those_of_the_code() -> None:
+    from worker import compile_seconds, drawsteps, grid_seconds, griddiagnostics
+
+    assert compile_seconds.SCAN_PAIRS_MAX == griddiagnostics.SCAN_MAX_PAIRS
+    assert grid_seconds.REDUCED_DENSE_MAX_GRID == drawsteps.DENSE_SOLVE_MAX_GRID
+
+
+def test_value_iteration_steps_are_a_share_of_the_bracket_steps_at_rate_beta() -> None:
+    # The bracket β/(1 − β)·span must fall from about 1 to 2·tolerance (worker.solvers.loop's stopping rule).
+    import math
+
+    raw = DOCUMENTS["several_iid_and_markov"]
+    for beta, tolerance in ((0.95, 1e-6), (0.99, 1e-8)):
+        doc = parse_document({**raw, "discount": beta, "solver": {"method": "value_iteration", "tolerance": tolerance}})
+        steps, evaluation_steps, basis = costs.iteration_steps(doc, 60)
+        at_rate_beta = math.log(2 * tolerance * (1 - beta) / beta) / math.log(beta)
+        assert steps == math.ceil(costs.VALUE_SPAN_SHARE * at_rate_beta) and evaluation_steps == 0
+        assert "bracket" in basis
+
+
+def test_policy_iteration_with_draws_and_iid_shocks_is_priced_on_the_grid_states() -> None:
+    # worker.drawsteps solves a system of the grid states' size (80 here), not of all 3,200 points.
+    from worker.estimate import grid_plan
+    from worker.grid_seconds import policy_solve_seconds, policy_solve_words
+
+    raw = DOCUMENTS["separation_after_choice"]
+    doc = parse_document({**raw, "solver": {"method": "policy_iteration", "tolerance": 1e-8}})
+    plan = grid_plan(doc.model, method="policy_iteration")
+    assert (plan.grid_states, plan.n) == (80, 3200)
+    assert policy_solve_seconds(doc, plan) < 1e-3
+    assert "80 grid states" in policy_solve_words(doc, plan)
+
+
+def test_the_cold_estimate_names_the_kernels_the_plan_compiles() -> None:
+    from worker.compile_seconds import LOAD_S, compile_seconds
+
+    household = estimate(parse_document(DOCUMENTS["household_saving"]))  # hinted, evaluated pointwise
+    assert household["reward_storage"] == "on_the_fly"
+    for kind in ("exact block search", "hinted search", "pointwise policy nodes"):
+        assert kind in household["compile_basis"]
+    fishery = estimate(parse_document(DOCUMENTS["fishery_harvest"]))  # reward tables: no expression compiled
+    assert fishery["reward_storage"] == "tables" and "table scan" in fishery["compile_basis"]
+    assert "block search" not in fishery["compile_basis"]
+    assert LOAD_S < fishery["compile_seconds"] < household["compile_seconds"]
+    taste = estimate(parse_document(DOCUMENTS["taste_with_draws_after_choice"]))  # installed kernels only
+    assert taste["compile_seconds"] == LOAD_S
+    assert estimate(parse_document(DOCUMENTS["sparse_tabular"]))["compile_seconds"] == 0.0
+    model = parse_document(DOCUMENTS["household_saving"]).model
+    assert compile_seconds(model, ["exact block search"], cached=True)[0] == LOAD_S  # in the folder: a load
+
+
+def test_the_kernels_a_cold_solve_compiles_are_the_ones_counted(tmp_path) -> None:
+    # A fresh process, an empty kernel folder: numba's compile events name the generated kernels compiled.
+    import json
+    import os
+    import subprocess
+    import sys
+    from pathlib import Path
+
+    from worker.compile_seconds import compile_kernels
+    from worker.estimate import grid_plan
+
+    names = {"bellman_full": "table scan", "policy_nodes": "policy nodes from tables", "bellman_bnb":
+             "exact block search", "bellman_hinted": "hinted search"}
+    probe = (
+        "import json, sys\n"
+        "from numba.core import event\n"
+        "seen = set()\n"
+        "class L(event.Listener):\n"
+        "    def on_start(self, ev): pass\n"
+        "    def on_end(self, ev):\n"
+        "        f = ev.data['dispatcher'].py_func\n"
+        "        if f.__module__.startswith('fixq_kernels_'): seen.add(f.__qualname__)\n"
+        "event.register('numba:compile', L())\n"
+        "from worker import solve\n"
+        "solve(json.loads(sys.stdin.read()))\n"
+        "print(json.dumps(sorted(seen)))\n"
+    )
+    root = Path(__file__).resolve().parents[2]
+    for name in ("fishery_harvest", "household_saving"):
+        raw = DOCUMENTS[name]
+        folder = tmp_path / name
+        done = subprocess.run(
+            [sys.executable, "-c", probe], input=json.dumps(raw), capture_output=True, text=True, cwd=root, check=True,
+            env={**os.environ, "FIXQ_KERNEL_CACHE": str(folder), "FIXQ_COLD_BRIDGE": "off", "PYTHONPATH": str(root)},
+            timeout=300,
+        )
+        compiled = json.loads(done.stdout.strip().splitlines()[-1])
+        doc = parse_document(raw)
+        counted = compile_kernels(doc.model, grid_plan(doc.model, method=doc.solver.method))
+        expected = {("pointwise policy nodes" if kernel == "policy_nodes" and "exact block search" in counted
+                     else names[kernel]) for kernel in compiled}
+        assert expected == set(counted), (name, compiled, counted)
