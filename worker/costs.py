@@ -61,6 +61,9 @@ __all__ = [
     "horizon_bytes",
     "iteration_steps",
     "linear_solve_bytes",
+    "lu_entries",
+    "GRID_LU_FILL",
+    "LU_ENTRY_BYTES",
     "linear_solve_seconds",
     "linear_solve_words",
 ]
@@ -191,6 +194,18 @@ TABULAR_LU_SHARE = 0.2
 """A tabular model's transitions may reach any state, so its LU may fill in: its time is this share of the
 dense bound ``n³/3`` ns (dimensionless; measured 9 ms a solve at 500 states with random transitions, against
 42 ms)."""
+GRID_LU_FILL = 3.0
+"""A sparse LU of a grid model's policy system ``I − βP_σ`` holds about this many entries per entry of the system
+(dimensionless; at most ``n²``).  The policy is not known before solving, so neither is the system's pattern: a
+grid point's row reaches its interpolation nodes times the shocks its chain row reaches, and SuperLU's default
+column ordering (COLAMD) keeps the fill-in small.  Measured by ``bench/bench_lu_fill.py`` (the seven grid
+documents of ``tests/_estimate_set.py`` that policy iteration solves by sparse LU): 0.96 to 6.6 times the
+estimate's ``n · nodes · shocks`` entries plus the diagonal, more with a Markov chain of more points (its rows
+fill the blocks of a grid point's shocks), geometric mean 2.5; 3 leans to the side the job's memory limit does
+not catch (an overstatement)."""
+LU_ENTRY_BYTES = 12
+"""SuperLU's storage per entry of an LU factor: the value and its row index (bytes).  Held by the C library,
+outside Python's allocators; ``bench/bench_lu_fill.py`` compares it with the resident memory a solve adds."""
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
 then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
@@ -207,12 +222,13 @@ def policy_matrix_bytes(n: int, entries: int) -> int:
     return entries * 12 + 8 * (n + 1)
 
 
-def solve_bytes(n: int, entries: int, method: str) -> int:
-    """What the solver keeps while it iterates: its vectors and, for policy iteration, the policy's matrix and
-    its exact evaluation (bytes).  ``entries``: stored entries of a policy's matrix."""
+def solve_bytes(n: int, entries: int, method: str, *, exact: int | None = None) -> int:
+    """What the solver keeps while it iterates: its vectors and, for policy iteration, its exact evaluation
+    (bytes): ``exact`` when the caller sized it, else the policy's matrix with ``entries`` stored entries and the
+    solve of its system (:func:`linear_solve_bytes`, the fill-in of a grid model's)."""
     memory = n * SOLVER_BYTES_PER_STATE
     if method == "policy_iteration":
-        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries)
+        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries) if exact is None else exact
     return memory
 
 
@@ -240,16 +256,31 @@ def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
     return memory + euler * EULER_BYTES_PER_ELEMENT
 
 
-def linear_solve_bytes(n: int, entries: int) -> int:
+def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
+    """Entries of the sparse LU of an ``n``-square system with ``entries`` stored entries besides the diagonal.
+
+    With a ``bandwidth`` (a tabular model's transitions, in the states' order, read from the document): the bound
+    of a banded LU with partial pivoting, ``n · (3·bandwidth + 2)`` (L keeps the lower bandwidth, U the sum of
+    both; Golub and Van Loan, *Matrix Computations*, §4.3), at most ``n²``: a chain that reaches anywhere fills
+    its LU nearly dense (0.6 to 1.0 of ``n²`` measured on the random tabular chains of the estimate set).
+    Without one (a grid model, whose policy decides the pattern): ``GRID_LU_FILL`` per entry and diagonal
+    entry, at most ``n²``.
+    """
+    if bandwidth is not None:
+        return min(n * n, n * (3 * bandwidth + 2))
+    return min(n * n, math.ceil(GRID_LU_FILL * (entries + n)))
+
+
+def linear_solve_bytes(n: int, entries: int, bandwidth: int | None = None) -> int:
     """Memory of one exact evaluation of policy iteration, ``P_σ`` with ``entries`` stored entries.
 
-    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC and its LU,
-    whose fill-in is at most ``n²`` entries of 12 bytes each, plus SuperLU's
-    work arrays.  Iterative: ``I − βP_σ`` is applied, never formed; GMRES keeps
-    ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
+    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC (built from the identity and the scaled matrix,
+    then converted) and its LU factor, :func:`lu_entries` of ``LU_ENTRY_BYTES`` each (SuperLU's own memory, which
+    Python's tracing does not see), plus SuperLU's work arrays.  Iterative: ``I − βP_σ`` is applied, never
+    formed; GMRES keeps ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
     """
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return 2 * (entries + n) * 12 + n * n * 12 + 64 * n
+        return 2 * (entries + n) * 12 + lu_entries(n, entries, bandwidth) * LU_ENTRY_BYTES + 64 * n
     return (KRYLOV_RESTART + 6) * 8 * n + (entries + n) * 12
 
 
@@ -270,7 +301,8 @@ def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float, *,
 
 def linear_solve_words(n: int) -> str:
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points: fill-in at most n²)"
+        return (f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points; its fill-in estimated "
+                "from the system's entries, at most n²)")
     return (
         f"exact evaluations by restarted GMRES ({KRYLOV_RESTART} steps a cycle; above {DIRECT_SOLVE_MAX_POINTS:,} "
         "points an LU's fill-in is unbounded), mat-vecs guessed for a chain that mixes at rate β"

@@ -51,6 +51,7 @@ from worker.compile_seconds import compile_kernels, compile_seconds
 from worker.costs import (
     BASE_BYTES,
     CHOICE_BYTES,
+    DIRECT_SOLVE_MAX_POINTS,
     FEASIBILITY_COLUMNS,
     ITERATION_S,
     MATVEC_NS,
@@ -69,7 +70,7 @@ from worker.costs import (
     solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
-from worker.grid_seconds import grid_seconds, policy_solve_seconds, policy_solve_words
+from worker.grid_seconds import grid_seconds, policy_solve_bytes, policy_solve_seconds, policy_solve_words
 from worker.hintuse import hint_use
 from worker.kernel_limits import compile_bytes as compile_memory
 from worker.staticchoices import static_choices
@@ -303,7 +304,8 @@ def grid_bytes(doc: Any, plan: GridPlan) -> int:
     entries = plan.n * plan.nodes * plan.shocks
     first_axis = next(iter(doc.model.states.values())).size
     euler = 0 if doc.model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
-    working = (solve_bytes(plan.n, entries, doc.solver.method) + plan.solve_extra_bytes
+    exact = policy_solve_bytes(doc, plan) if doc.solver.method == "policy_iteration" else None
+    working = (solve_bytes(plan.n, entries, doc.solver.method, exact=exact) + plan.solve_extra_bytes
                + report_bytes(doc, plan.n, entries, euler))
     return BASE_BYTES + max(plan.setup_bytes, plan.table_bytes + working) + horizon_bytes(doc, plan.n)
 
@@ -413,7 +415,8 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     seconds += evaluation_steps * TABULAR_STEP_S
     seconds += report_seconds(doc, n_states, policy_entries, grid=False) + horizon_seconds(doc, n_states)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
-        matrix += linear_solve_bytes(n_states, policy_entries)
+        bandwidth = transition_bandwidth(transition, dense) if n_states <= DIRECT_SOLVE_MAX_POINTS else None
+        matrix += linear_solve_bytes(n_states, policy_entries, bandwidth)
         seconds += steps * linear_solve_seconds(
             n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance), anywhere=True
         )
@@ -440,3 +443,20 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
         "notes": notes,
     }
+
+
+def transition_bandwidth(transition: Any, dense: bool) -> int:
+    """The largest ``|s − s'|`` of a tabular model's transitions with a positive probability, every action's
+    (a policy's rows come from them; taste shocks mix them all): the bandwidth of its policy systems in the states'
+    order.  One pass over the document's entries, run for policy iteration's direct solves only (at most
+    ``DIRECT_SOLVE_MAX_POINTS`` states)."""
+    import numpy as np  # here: the rest of the estimate works from sizes alone
+
+    if dense:
+        reached = np.asarray(transition).any(axis=1)  # (s, s') reached by some action
+        rows, columns = np.nonzero(reached)
+    else:
+        entries = np.asarray(transition.entries)
+        positive = entries[:, 3] > 0
+        rows, columns = entries[positive, 0], entries[positive, 2]
+    return int(np.abs(rows.astype(np.int64) - columns.astype(np.int64)).max(initial=0))

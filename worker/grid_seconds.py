@@ -1,4 +1,5 @@
-"""The time of a grid model's warm solve, from its sizes and the reward storage :mod:`worker.estimate` chose.
+"""The time of a grid model's warm solve, from its sizes and the reward storage :mod:`worker.estimate` chose
+(and, beside the time of policy iteration's exact evaluation, its memory: :func:`policy_solve_bytes`).
 
 Kept apart from :mod:`worker.estimate` (which calls it) by topic: the counts of the work a solve does
 (pairs filled, entries scanned, points searched, expectations formed, evaluation steps), times the costs
@@ -30,14 +31,16 @@ from worker.costs import (
     THREAD_EFFICIENCY,
     euler_elements,
     horizon_seconds,
+    linear_solve_bytes,
     linear_solve_seconds,
     linear_solve_words,
+    policy_matrix_bytes,
     report_seconds,
 )
 from worker.taste import SMOOTHED_PAIR_NS
 from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
 
-__all__ = ["grid_seconds", "policy_solve_seconds", "policy_solve_words"]
+__all__ = ["grid_seconds", "policy_solve_bytes", "policy_solve_seconds", "policy_solve_words"]
 
 DRAW_FILL_NS = 16.0
 """The compiled fill of a model with draws after the choice (:mod:`worker.drawkernel`), per (pair, draw)
@@ -149,3 +152,24 @@ def policy_solve_words(doc: Any, plan: Any) -> str:
         return (f"exact evaluations over the {plan.grid_states:,} grid states (draws after the choice with iid "
                 "shocks: the expected value of each grid state solves a system of their size)")
     return linear_solve_words(plan.n)
+
+
+def policy_solve_bytes(doc: Any, plan: Any) -> int:
+    """Memory of one exact evaluation of policy iteration on a grid model (bytes).
+
+    The reduced system (:func:`_reduced`, :func:`worker.drawsteps.reduced_policy_value`): the policy's nodes
+    merged (CSR: 16 bytes a node, the row pointers), the value, and the system over the grid states, dense up to
+    ``REDUCED_DENSE_MAX_GRID`` (the matrix and LAPACK's copy of it), else sparse (a row reaches at most the nodes
+    of every shock, the node arrays it is built from, its LU).  Otherwise the policy's matrix over all points and
+    :func:`worker.costs.linear_solve_bytes`.
+    """
+    entries = plan.n * plan.nodes * plan.shocks
+    if not _reduced(doc, plan):
+        return policy_matrix_bytes(plan.n, entries) + linear_solve_bytes(plan.n, entries)
+    g = plan.grid_states
+    nodes = plan.n * plan.nodes
+    merged = 16 * nodes + 8 * (plan.n + 1) + 8 * plan.n
+    if g <= REDUCED_DENSE_MAX_GRID:
+        return merged + 2 * 8 * g * g
+    reduced = g * min(g, plan.nodes * plan.shocks)
+    return merged + 3 * 8 * nodes + policy_matrix_bytes(g, reduced) + linear_solve_bytes(g, reduced)
