@@ -259,15 +259,16 @@ def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
 def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
     """Entries of the sparse LU of an ``n``-square system with ``entries`` stored entries besides the diagonal.
 
-    With a ``bandwidth`` (a tabular model's transitions, in the states' order, read from the document): the bound
-    of a banded LU with partial pivoting, ``n · (3·bandwidth + 2)`` (L keeps the lower bandwidth, U the sum of
-    both; Golub and Van Loan, *Matrix Computations*, §4.3), at most ``n²``: a chain that reaches anywhere fills
-    its LU nearly dense (0.6 to 1.0 of ``n²`` measured on the random tabular chains of the estimate set).
+    With a ``bandwidth`` (a tabular model's transitions, in the states' order, read from the document): the
+    size of a banded LU with partial pivoting, ``n · (3·bandwidth + 3)`` (L keeps the lower bandwidth and its
+    diagonal, U the sum of both bandwidths; Golub and Van Loan, *Matrix Computations*, §4.3; SuperLU's column
+    ordering may stray from it a little), at most ``n²``: a chain that reaches anywhere fills its LU nearly dense
+    (0.6 to 1.0 of ``n²`` measured on the random tabular chains of the estimate set).
     Without one (a grid model, whose policy decides the pattern): ``GRID_LU_FILL`` per entry and diagonal
     entry, at most ``n²``.
     """
     if bandwidth is not None:
-        return min(n * n, n * (3 * bandwidth + 2))
+        return min(n * n, n * (3 * bandwidth + 3))
     return min(n * n, math.ceil(GRID_LU_FILL * (entries + n)))
 
 

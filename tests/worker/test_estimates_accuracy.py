@@ -164,3 +164,46 @@ def test_the_kernels_a_cold_solve_compiles_are_the_ones_counted(tmp_path) -> Non
         expected = {("pointwise policy nodes" if kernel == "policy_nodes" and "exact block search" in counted
                      else names[kernel]) for kernel in compiled}
         assert expected == set(counted), (name, compiled, counted)
+
+
+def _warehouse_chain(states: int = 1500, reach: int = 2, seed: int = 4) -> dict:
+    """Invented warehouse stock: each of three actions moves the stock at most ``reach`` levels either way."""
+    import numpy as np
+
+    from tests._documents import array_tabular
+    from worker.arrays import encode_array
+
+    rng = np.random.default_rng(seed)
+    rows = []
+    for a in range(3):
+        for s in range(states):
+            targets = np.unique(np.clip(s + rng.integers(-reach, reach + 1, 3), 0, states - 1))
+            for target, p in zip(targets, rng.dirichlet(np.ones(targets.size)), strict=True):
+                rows.append((s, a, target, p))
+    raw = array_tabular(rng.uniform(0.0, 1.0, (states, 3)), {"entries": encode_array(np.array(rows))})
+    raw["solver"] = {"method": "policy_iteration", "tolerance": 1e-8}
+    return raw
+
+
+def test_a_banded_tabular_chain_is_sized_by_its_bandwidth_not_the_dense_bound() -> None:
+    import numpy as np
+    import scipy.sparse as sp
+    import scipy.sparse.linalg as spla
+
+    from worker.estimate import transition_bandwidth
+
+    raw = _warehouse_chain()
+    doc = parse_document(raw)
+    assert transition_bandwidth(doc.model.transition, False) == 2
+    n = 1500
+    assert costs.lu_entries(n, 4 * n, 2) == n * 9 < n * n // 100
+    # scipy's own LU of a policy's system is about the banded size n · (3 · bandwidth + 3) (Golub and Van Loan,
+    # Matrix Computations, §4.3: partial pivoting keeps L's lower bandwidth, U's grows to the sum of both), far
+    # from the dense n² the estimate took before.
+    entries = np.asarray(doc.model.transition.entries)
+    first = entries[entries[:, 1] == 0]
+    P = sp.csr_matrix((first[:, 3], (first[:, 0].astype(int), first[:, 2].astype(int))), shape=(n, n))
+    fill = spla.splu((sp.identity(n, format="csc") - 0.9 * P).tocsc()).nnz
+    assert 1 / FACTOR <= costs.lu_entries(n, P.nnz, 2) / fill <= FACTOR, fill
+    ratio = estimate(doc)["bytes"] / measure_memory(raw)
+    assert 1 / FACTOR <= ratio <= FACTOR, ratio
