@@ -97,11 +97,14 @@ SETTLE_SHARE = 0.15
 """Howard's last evaluation phase runs until the increments' span settles: about this share of the steps a
 contraction at rate β would need (dimensionless; measured 0 to 0.45 on the bundled examples, since chains
 that mix contract the span faster than β)."""
-VALUE_SPAN_SHARE = 0.2
+VALUE_SPAN_SHARE = 0.25
 """Value iteration stops when the MacQueen–Porteus bracket, ``β/(1 − β)`` times the span of ``Tv − v``, is within
-twice the tolerance; the span shrinks at β times the chain's mixing rate, so it takes about this share of the
-steps a contraction at rate β would need from a span of order 1 (dimensionless; measured by
-``bench/bench_estimates.py``: 0.05 to 0.6 on the bundled examples, the taste-shock and the draw documents)."""
+twice the tolerance; the span shrinks at β times the rate at which the policy's chain mixes, so a grid model
+takes about this share of the steps a contraction at rate β would need from a span of order 1 (dimensionless).
+Its chain depends on the policy through the next states, which the sizes do not tell: measured on the 13 grid
+documents of ``tests/_estimate_set.py`` without a horizon, by value iteration, 0.06 (bike shop: its demand
+draws reset the stock) to 0.62 (household savings), geometric mean 0.26 — so this figure may be 4 times the
+steps, or 0.4 of them.  A tabular model's steps come from its chains instead (:mod:`worker.mixing`)."""
 ITERATION_S = 5e-5
 """Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
 PERIOD_S = 1e-3
@@ -310,7 +313,9 @@ def linear_solve_words(n: int) -> str:
     )
 
 
-def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None) -> tuple[int, int, str]:
+def iteration_steps(
+    doc: Any, choices: int, *, moving_divisor: int | None = None, mixing: tuple[float, float, str] | None = None
+) -> tuple[int, int, str]:
     """(iterations, evaluation steps in all, basis) guessed from β, the tolerance, the method and the choices.
 
     Howard and policy iteration: ``HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE · log2(choices)``
@@ -318,7 +323,9 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
     follow :func:`worker.solvers.evaluation.phase_plan`: ``m // moving_divisor`` steps after each iteration
     that moved the policy, then the steps until the increments settle, guessed as ``SETTLE_SHARE`` of the
     steps a contraction at rate β needs to bring the span to ``tolerance · (1 − β)/β``.  Value iteration:
-    ``VALUE_SPAN_SHARE`` of the steps at rate β that bring the bracket from a span of order 1 to the tolerance.
+    ``VALUE_SPAN_SHARE`` of the steps at rate β that bring the bracket from a span of order 1 to the tolerance,
+    or, with ``mixing`` (a tabular model's ``(rate ρ, first span, words)``, :mod:`worker.mixing`), the steps at
+    rate ``β · ρ`` from that first span.
     """
     horizon = doc.model.horizon
     if horizon is not None:
@@ -334,9 +341,17 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
         # It stops on the bracket: β/(1 − β) · span(Tv − v) within 2 · tolerance, from a span of order 1; the span
         # shrinks faster than β when the chain mixes, so a share of the steps at rate β.
         bracket = max(2.0 * tolerance * (1.0 - beta) / beta, 1e-16)
-        steps = math.ceil(VALUE_SPAN_SHARE * math.log(bracket) / math.log(beta))
-        how = (f"value iteration: {VALUE_SPAN_SHARE:g} of the steps at rate β that bring the bracket from a reward "
-               f"span of order 1 to the tolerance {tolerance:g}")
+        if mixing is None:
+            steps = math.ceil(VALUE_SPAN_SHARE * math.log(bracket) / math.log(beta))
+            how = (f"value iteration: {VALUE_SPAN_SHARE:g} of the steps at rate β that bring the bracket from a "
+                   f"reward span of order 1 to the tolerance {tolerance:g}")
+        else:
+            rate, first, words = mixing
+            contraction = beta * max(rate, 1e-6)
+            steps = 1 + max(1, math.ceil(math.log(bracket / first) / math.log(contraction))) if first > bracket else 2
+            how = (f"value iteration: the steps at rate β · {rate:.2f} ({words}, measured on the document's "
+                   f"transitions) that bring the bracket from the first span {first:.3g} to the tolerance "
+                   f"{tolerance:g}")
     else:
         steps = math.ceil(HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE * math.log2(max(choices, 2)))
         how = (f"{solver.method}: {HOWARD_BASE_ITERATIONS:g} + {HOWARD_ITERATIONS_PER_OCTAVE:g} per doubling of "

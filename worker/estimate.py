@@ -408,7 +408,12 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         common += 3 * 8 * pairs
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
-    steps, evaluation_steps, basis = iteration_steps(doc, n_actions)
+    mixing = None
+    if doc.solver.method == "value_iteration" and model.horizon is None:
+        from worker.mixing import value_iteration_mixing  # here: it reads the transitions (numpy, scipy)
+
+        mixing = value_iteration_mixing(model)
+    steps, evaluation_steps, basis = iteration_steps(doc, n_actions, mixing=mixing)
     step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
     step += ITERATION_S * 1e9
     seconds = (steps * step + evaluation_steps * policy_entries * MATVEC_NS + entries * TABULAR_ENTRY_NS) * 1e-9
