@@ -342,7 +342,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
     seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
-        seconds += steps * policy_solve_seconds(doc, plan)
+        # The last iteration's Bellman step meets the tolerance and stops before an evaluation: steps − 1 solves.
+        seconds += max(steps - 1, 1) * policy_solve_seconds(doc, plan)
         basis += f"; {policy_solve_words(doc, plan)}"
     compile_bytes = compile_memory(model)
     compile_s, compile_basis = compile_seconds(model, compile_kernels(model, plan))
@@ -422,7 +423,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     if doc.solver.method == "policy_iteration" and model.horizon is None:
         bandwidth = transition_bandwidth(transition, dense) if n_states <= DIRECT_SOLVE_MAX_POINTS else None
         matrix += linear_solve_bytes(n_states, policy_entries, bandwidth)
-        seconds += steps * linear_solve_seconds(
+        seconds += max(steps - 1, 1) * linear_solve_seconds(  # no evaluation after the last Bellman step
             n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance), anywhere=True
         )
         basis += f"; {linear_solve_words(n_states)}"
