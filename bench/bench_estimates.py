@@ -9,8 +9,9 @@ out (``POINTWISE``), for the exact pointwise search through an interpolated stat
 What is measured (the figures the estimate promises):
 
 * memory: the peak of the memory :mod:`tracemalloc` traces (Python objects and numpy's arrays) during a
-  solve of the document in a process that solved it once already, above what was traced just before —
-  the ``bytes`` of ``POST /v1/check`` and of admission;
+  solve of the document in a process that solved it once already, above what was traced just before, or the
+  traced memory at a direct solve plus the LU factor it holds outside the trace, whichever is larger
+  (:func:`tests._estimate_set.measure_memory`) — the ``bytes`` of ``POST /v1/check`` and of admission;
 * with ``--rss``: a fresh process per document imports fixq, solves the document once (kernels loaded from
   the cache, libraries imported), then the growth of its peak resident memory (``VmHWM``, reset before) over a
   second solve is printed beside it, for information: freed memory the allocator keeps makes it smaller than
