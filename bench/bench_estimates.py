@@ -9,16 +9,23 @@ out (``POINTWISE``), for the exact pointwise search through an interpolated stat
 What is measured (the figures the estimate promises):
 
 * memory: the peak of the memory :mod:`tracemalloc` traces (Python objects and numpy's arrays) during a
-  solve of the document in a process that solved it once already, above what was traced just before —
-  the ``bytes`` of ``POST /v1/check`` and of admission;
+  solve of the document in a process that solved it once already, above what was traced just before, or the
+  traced memory at a direct solve plus the LU factor it holds outside the trace, whichever is larger
+  (:func:`tests._estimate_set.measure_memory`) — the ``bytes`` of ``POST /v1/check`` and of admission;
 * with ``--rss``: a fresh process per document imports fixq, solves the document once (kernels loaded from
   the cache, libraries imported), then the growth of its peak resident memory (``VmHWM``, reset before) over a
   second solve is printed beside it, for information: freed memory the allocator keeps makes it smaller than
   the traced peak, and memory returned to the system in between makes it larger;
 * time: the wall time of a warm solve (kernels compiled and loaded, the document solved once before), the
   least of ``REPEATS`` — the ``seconds`` of the estimate;
-* with ``--cold``: a fresh process per grid document with an empty kernel cache solves it once (the cold
-  bridge off, so it waits for its kernels); its wall time is compared with ``seconds + compile_seconds``.
+* with ``--cold``: a fresh process per grid document with an empty kernel folder (``FIXQ_KERNEL_CACHE``, the
+  cold bridge off, so it waits for its kernels) imports fixq, solves the document, then solves it again: the
+  first solve's extra time (``cold+``) is compared with ``compile_seconds``; a second fresh process on the same,
+  now filled, folder gives the extra time of loading them (``load+``), compared with
+  :data:`worker.compile_seconds.LOAD_S`.  ``bench/bench_compile.py`` splits the cold extra by kernel.
+
+The documents: ``tests/_estimate_set.py``'s set, its ``method_variants`` (the taste-shock and draw documents by
+policy iteration and value iteration) and ``POINTWISE``.
 
 The machine may be shared and noisy: time ratios are those of this run (the least of the repeats), and
 the test ``tests/worker/test_estimates_accuracy.py`` asserts the memory ratios only.
@@ -37,7 +44,14 @@ ROOT = Path(__file__).resolve().parents[1]
 sys.path.insert(0, str(ROOT))
 os.environ.setdefault("FIXQ_COLD_BRIDGE", "off")
 
-from tests._estimate_set import POINTWISE, documents, measure_memory, measure_seconds  # noqa: E402
+from tests._estimate_set import (  # noqa: E402
+    POINTWISE,
+    documents,
+    measure_memory,
+    measure_seconds,
+    method_variants,
+)
+from worker.compile_seconds import LOAD_S  # noqa: E402
 from worker.document import parse_document  # noqa: E402
 from worker.estimate import estimate  # noqa: E402
 
@@ -68,11 +82,15 @@ print(json.dumps({{"grown": status("VmHWM") - before}}))
 COLD_CHILD = r"""
 import json, sys, time
 sys.path.insert(0, {root!r})
-raw = json.loads(sys.stdin.read())
-start = time.perf_counter()
+given = json.loads(sys.stdin.read())
+raw, limits = given["document"], given["limits"]
 from worker import solve
-solve(raw)
-print(json.dumps({{"seconds": time.perf_counter() - start}}))
+start = time.perf_counter()
+solve(raw, limits=limits)
+first = time.perf_counter() - start
+start = time.perf_counter()
+solve(raw, limits=limits)
+print(json.dumps({{"extra": first - (time.perf_counter() - start)}}))
 """
 
 
@@ -92,8 +110,9 @@ def main(argv: list[str]) -> int:
     large, rss, cold = "--large" in argv, "--rss" in argv, "--cold" in argv
     rows = []
     print(f"{'document':28s} {'est MiB':>9s} {'traced':>9s} {'ratio':>6s}    {'est s':>8s} {'warm s':>8s} "
-          f"{'ratio':>6s}" + ("   rss MiB" if rss else "") + ("   cold s  est+compile  ratio" if cold else ""))
-    cases = [(name, raw, None) for name, raw in documents(large).items()]
+          f"{'ratio':>6s}" + ("   rss MiB" if rss else "")
+          + ("  cold+  compile  ratio     load+  LOAD_S ratio" if cold else ""))
+    cases = [(name, raw, None) for name, raw in {**documents(large), **method_variants()}.items()]
     cases += [(name, raw, limits) for name, (raw, limits) in POINTWISE.items()]
     for name, raw, limits in cases:
         size = estimate(parse_document(raw), limits=limits)
@@ -105,11 +124,15 @@ def main(argv: list[str]) -> int:
                 f"{verdict(row['time']):3s}")
         if rss and limits is None:
             line += f" {_child(RSS_CHILD, raw, {})['grown'] / _MIB:9.2f}"
-        if cold and raw["model"]["kind"] == "grid" and limits is None:
+        if cold and raw["model"]["kind"] == "grid":
             with tempfile.TemporaryDirectory() as cache:
-                first = _child(COLD_CHILD, raw, {"FIXQ_KERNEL_CACHE": cache})["seconds"]
-            promised = size["seconds"] + size["compile_seconds"]
-            line += f" {first:8.2f} {promised:12.2f} {promised / first:6.2f}"
+                env = {"FIXQ_KERNEL_CACHE": cache}
+                extra = _child(COLD_CHILD, {"document": raw, "limits": limits}, env)["extra"]
+                loaded = _child(COLD_CHILD, {"document": raw, "limits": limits}, env)["extra"]
+            promised = size["compile_seconds"]
+            row["cold"] = promised / extra
+            line += (f" {extra:7.2f} {promised:7.2f} {row['cold']:6.2f} {verdict(row['cold']):3s}"
+                     f" {loaded:6.2f} {LOAD_S:5.2f} {LOAD_S / loaded:6.2f}")
         print(line, flush=True)
         rows.append(row)
     memory_ok = all(1 / FACTOR <= row["memory"] <= FACTOR for row in rows)
@@ -120,7 +143,12 @@ def main(argv: list[str]) -> int:
     spread = [row["time"] for row in rows]
     print(f"warm time ratios {min(spread):.2f} to {max(spread):.2f}: {'PASS' if time_ok else 'FAIL'} "
           f"(within {FACTOR:g}x, this run)")
-    return 0 if memory_ok and time_ok else 1
+    colds = [row["cold"] for row in rows if "cold" in row]
+    cold_ok = all(1 / FACTOR <= ratio <= FACTOR for ratio in colds)
+    if colds:
+        print(f"compile_seconds / cold extra {min(colds):.2f} to {max(colds):.2f}: {'PASS' if cold_ok else 'FAIL'} "
+              f"(within {FACTOR:g}x, this run)")
+    return 0 if memory_ok and time_ok and cold_ok else 1
 
 
 if __name__ == "__main__":

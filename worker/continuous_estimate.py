@@ -13,6 +13,7 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from worker.compile_seconds import compile_seconds, continuous_kernels
 from worker.costs import (
     BASE_BYTES,
     GRID_FIXED_S,
@@ -27,7 +28,7 @@ from worker.costs import (
     report_seconds,
     solve_bytes,
 )
-from worker.kernel_limits import compile_cost
+from worker.kernel_limits import compile_bytes as compile_memory
 
 __all__ = ["SEARCH_POINTS", "continuous_estimate"]
 
@@ -66,14 +67,15 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     if hinted:
         seconds += n * combos * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
     seconds += report_seconds(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_seconds(doc, n)
-    compile_bytes, compile_s = compile_cost(model)
+    compile_bytes = compile_memory(model)
+    compile_s, compile_basis = compile_seconds(model, continuous_kernels())
     notes = [
         f"continuous choice `{name}`: no reward tables; tomorrow's value read by {model.interpolation} "
         "interpolation",
         ("hinted searches evaluate about " f"{SEARCH_POINTS} points per state, and one unhinted step verifies them"
          if hinted else f"without the concave hint each search scans {scan:,} points, then refines"),
         "memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)",
-        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.1f} s "
         f"and {compile_bytes / 2**20:,.0f} MiB, then cached)",
     ]
     return {
@@ -87,6 +89,7 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         "reward_storage": "on_the_fly",
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
+        "compile_basis": compile_basis,
         "seconds": seconds,
         "basis": f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each)",
         "notes": notes,

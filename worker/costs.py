@@ -40,6 +40,10 @@ __all__ = [
     "STABLE_STEPS_FACTOR",
     "KRYLOV_RESIDUAL_SHARE",
     "KRYLOV_RESTART",
+    "LU_ENTRY_NS",
+    "LU_FIXED_S",
+    "TABULAR_LU_SHARE",
+    "VALUE_SPAN_SHARE",
     "MATVEC_NS",
     "NUMPY_PAIR_NS",
     "POINT_NS",
@@ -57,6 +61,9 @@ __all__ = [
     "horizon_bytes",
     "iteration_steps",
     "linear_solve_bytes",
+    "lu_entries",
+    "GRID_LU_FILL",
+    "LU_ENTRY_BYTES",
     "linear_solve_seconds",
     "linear_solve_words",
 ]
@@ -90,6 +97,14 @@ SETTLE_SHARE = 0.15
 """Howard's last evaluation phase runs until the increments' span settles: about this share of the steps a
 contraction at rate β would need (dimensionless; measured 0 to 0.45 on the bundled examples, since chains
 that mix contract the span faster than β)."""
+VALUE_SPAN_SHARE = 0.25
+"""Value iteration stops when the MacQueen–Porteus bracket, ``β/(1 − β)`` times the span of ``Tv − v``, is within
+twice the tolerance; the span shrinks at β times the rate at which the policy's chain mixes, so a grid model
+takes about this share of the steps a contraction at rate β would need from a span of order 1 (dimensionless).
+Its chain depends on the policy through the next states, which the sizes do not tell: measured on the 13 grid
+documents of ``tests/_estimate_set.py`` without a horizon, by value iteration, 0.06 (bike shop: its demand
+draws reset the stock) to 0.62 (household savings), geometric mean 0.26 — so this figure may be 4 times the
+steps, or 0.4 of them.  A tabular model's steps come from its chains instead (:mod:`worker.mixing`)."""
 ITERATION_S = 5e-5
 """Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
 PERIOD_S = 1e-3
@@ -100,10 +115,14 @@ TABULAR_STEP_S = 5e-6
 FIXED_S = 7e-4
 """Fixed cost of any solve: validation, the size check, the result's dictionaries (seconds; a ten-state tabular
 solve takes about 2 ms in all, 1.2 of them its stationary report)."""
-GRID_FIXED_S = 7e-4
-"""Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds)."""
-DRAWS_FIXED_S = 7e-4
-"""Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds)."""
+GRID_FIXED_S = 1.5e-4
+"""Fixed cost of a grid model's compilation: its data, the kernels' module from the cache, a warm-up (seconds;
+measured: a warm solve of one iteration without reports took 0.86 ms on the courier example, 270 points with
+taste shocks, of which ``FIXED_S`` 0.7)."""
+DRAWS_FIXED_S = 1e-4
+"""Fixed cost of draws after the choice: their probabilities checked at every point, their tables (seconds;
+measured: the one-iteration solve of the bike shop, 31 points with demand drawn after the order, took 0.95 ms,
+its table fill included)."""
 SCAN_NODE_NS = 12.0
 """An exact pointwise step of a model with an interpolated state, per point, choice and interpolation node:
 bounds through interpolated tomorrows are loose and the search comes near a scan of every choice
@@ -128,11 +147,13 @@ distribution when asked for (nanoseconds)."""
 RESULT_NS = 100.0
 """The result's nested lists per point (nanoseconds)."""
 STATIONARY_S = 1e-3
-STATIONARY_GRID_S = 1.5e-3
+STATIONARY_GRID_S = 2e-4
 """The stationary report of a grid model, on top of ``STATIONARY_S``: the marginals by state and shock (seconds)."""
-STATIONARY_ENTRY_NS = 300.0
-"""The stationary report: a fixed cost (seconds) and the cost per entry of the policy's matrix (nanoseconds; a
-sparse solve or power iteration, its marginals; measured 4–15 ms on the bundled examples)."""
+STATIONARY_ENTRY_NS = 450.0
+"""The stationary report: a fixed cost (seconds) and the cost per entry of the policy's matrix (nanoseconds; one
+pinned sparse LU, :func:`worker.report.pinned_lu`, and the marginals).  Measured as a warm solve with the report
+less one without it: 0.6 ms on the ten-state machine example, 0.9 ms on the bike shop (31 points, 310 entries),
+1.9 ms on the household (4,000 entries), 5.4 ms on the roastery (7,200) and 6.6 ms on the plant (11,760)."""
 SIMULATION_NS = 500.0
 """The simulation per simulated period of one path (nanoseconds; measured 13 ms for 200 × 100)."""
 EULER_ELEMENT_NS = 600.0
@@ -171,6 +192,30 @@ importers; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
 EULER_CHUNK_ELEMENTS = 2**18
 """As ``worker.euler._CHUNK_ELEMENTS``: (test point, shock, next shock) triples evaluated at once (count)."""
 
+LU_FIXED_S = 1e-4
+"""A direct exact evaluation's fixed cost: ``I − βP_σ`` built in CSC, the solver set up (seconds; measured 0.09 ms
+for a 10-state system, and 0.1 ms at 31 states, here)."""
+LU_ENTRY_NS = 100.0
+"""A sparse LU of a grid model's policy system, per stored entry and point (nanoseconds; measured by
+``bench/bench_estimates.py`` with policy iteration: about 2 ms a solve at 802 points and 9,624 entries (taste
+shocks with draws), under 0.5 ms at 270 points and 1,620 entries: a policy's rows reach a few grid points, so the
+fill-in stays small)."""
+TABULAR_LU_SHARE = 0.2
+"""A tabular model's transitions may reach any state, so its LU may fill in: its time is this share of the
+dense bound ``n³/3`` ns (dimensionless; measured 9 ms a solve at 500 states with random transitions, against
+42 ms)."""
+GRID_LU_FILL = 3.0
+"""A sparse LU of a grid model's policy system ``I − βP_σ`` holds about this many entries per entry of the system
+(dimensionless; at most ``n²``).  The policy is not known before solving, so neither is the system's pattern: a
+grid point's row reaches its interpolation nodes times the shocks its chain row reaches, and SuperLU's default
+column ordering (COLAMD) keeps the fill-in small.  Measured by ``bench/bench_lu_fill.py`` (the seven grid
+documents of ``tests/_estimate_set.py`` that policy iteration solves by sparse LU): 0.96 to 6.6 times the
+estimate's ``n · nodes · shocks`` entries plus the diagonal, more with a Markov chain of more points (its rows
+fill the blocks of a grid point's shocks), geometric mean 2.5; 3 leans to the side the job's memory limit does
+not catch (an overstatement)."""
+LU_ENTRY_BYTES = 12
+"""SuperLU's storage per entry of an LU factor: the value and its row index (bytes).  Held by the C library,
+outside Python's allocators; ``bench/bench_lu_fill.py`` compares it with the resident memory a solve adds."""
 DIRECT_SOLVE_MAX_POINTS = 2_000
 """Policy iteration solves ``(I − βP_σ) v = r_σ`` by sparse LU up to this many points (count): its fill-in is
 then at most ``n²`` entries (48 MiB).  Above it, a random 20,000-point chain filled an LU to 1.1 GB in 84 s, so
@@ -187,12 +232,13 @@ def policy_matrix_bytes(n: int, entries: int) -> int:
     return entries * 12 + 8 * (n + 1)
 
 
-def solve_bytes(n: int, entries: int, method: str) -> int:
-    """What the solver keeps while it iterates: its vectors and, for policy iteration, the policy's matrix and
-    its exact evaluation (bytes).  ``entries``: stored entries of a policy's matrix."""
+def solve_bytes(n: int, entries: int, method: str, *, exact: int | None = None) -> int:
+    """What the solver keeps while it iterates: its vectors and, for policy iteration, its exact evaluation
+    (bytes): ``exact`` when the caller sized it, else the policy's matrix with ``entries`` stored entries and the
+    solve of its system (:func:`linear_solve_bytes`, the fill-in of a grid model's)."""
     memory = n * SOLVER_BYTES_PER_STATE
     if method == "policy_iteration":
-        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries)
+        memory += policy_matrix_bytes(n, entries) + linear_solve_bytes(n, entries) if exact is None else exact
     return memory
 
 
@@ -220,24 +266,44 @@ def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
     return memory + euler * EULER_BYTES_PER_ELEMENT
 
 
-def linear_solve_bytes(n: int, entries: int) -> int:
+def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
+    """Entries of the sparse LU of an ``n``-square system with ``entries`` stored entries besides the diagonal.
+
+    With a ``bandwidth`` (a tabular model's transitions, in the states' order, read from the document): the
+    size of a banded LU with partial pivoting, ``n · (3·bandwidth + 3)`` (L keeps the lower bandwidth and its
+    diagonal, U the sum of both bandwidths; Golub and Van Loan, *Matrix Computations*, §4.3; SuperLU's column
+    ordering may stray from it a little), at most ``n²``: a chain that reaches anywhere fills its LU nearly dense
+    (0.6 to 1.0 of ``n²`` measured on the random tabular chains of the estimate set).
+    Without one (a grid model, whose policy decides the pattern): ``GRID_LU_FILL`` per entry and diagonal
+    entry, at most ``n²``.
+    """
+    if bandwidth is not None:
+        return min(n * n, n * (3 * bandwidth + 3))
+    return min(n * n, math.ceil(GRID_LU_FILL * (entries + n)))
+
+
+def linear_solve_bytes(n: int, entries: int, bandwidth: int | None = None) -> int:
     """Memory of one exact evaluation of policy iteration, ``P_σ`` with ``entries`` stored entries.
 
-    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC and its LU,
-    whose fill-in is at most ``n²`` entries of 12 bytes each, plus SuperLU's
-    work arrays.  Iterative: ``I − βP_σ`` is applied, never formed; GMRES keeps
-    ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
+    Direct (``n ≤ DIRECT_SOLVE_MAX_POINTS``): ``I − βP_σ`` in CSC (built from the identity and the scaled matrix,
+    then converted) and its LU factor, :func:`lu_entries` of ``LU_ENTRY_BYTES`` each (SuperLU's own memory, which
+    Python's tracing does not see), plus SuperLU's work arrays.  Iterative: ``I − βP_σ`` is applied, never
+    formed; GMRES keeps ``KRYLOV_RESTART + 4`` vectors and the residual check two more.
     """
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return 2 * (entries + n) * 12 + n * n * 12 + 64 * n
+        return 2 * (entries + n) * 12 + lu_entries(n, entries, bandwidth) * LU_ENTRY_BYTES + 64 * n
     return (KRYLOV_RESTART + 6) * 8 * n + (entries + n) * 12
 
 
-def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) -> float:
-    """Time of one exact evaluation: an LU's ``n³/3`` floating-point operations at most (1 ns each), or the GMRES
-    mat-vecs a rate of β needs to bring the residual to the target (an upper guess for chains that mix slowly)."""
+def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float, *, anywhere: bool = False) -> float:
+    """Time of one exact evaluation: a sparse LU (``LU_FIXED_S`` plus ``LU_ENTRY_NS`` per stored entry and point;
+    with transitions that may reach ``anywhere``, a tabular model's, ``TABULAR_LU_SHARE`` of the dense bound of
+    ``n³/3`` operations at 1 ns each), or the GMRES mat-vecs a rate of β needs to bring the residual to the target
+    (an upper guess for chains that mix slowly)."""
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return n**3 / 3 * 1e-9
+        if anywhere:
+            return LU_FIXED_S + TABULAR_LU_SHARE * n**3 / 3 * 1e-9
+        return LU_FIXED_S + (entries + n) * LU_ENTRY_NS * 1e-9
     scale = 1.0 / (1.0 - beta)
     target = max(KRYLOV_RESIDUAL_SHARE * tolerance * (1.0 - beta) / scale, 1e-16)
     matvecs = math.ceil(math.log(target) / math.log(beta))
@@ -246,14 +312,17 @@ def linear_solve_seconds(n: int, entries: int, beta: float, tolerance: float) ->
 
 def linear_solve_words(n: int) -> str:
     if n <= DIRECT_SOLVE_MAX_POINTS:
-        return f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points: fill-in at most n²)"
+        return (f"exact evaluations by sparse LU (at most {DIRECT_SOLVE_MAX_POINTS:,} points; its fill-in estimated "
+                "from the system's entries, at most n²)")
     return (
         f"exact evaluations by restarted GMRES ({KRYLOV_RESTART} steps a cycle; above {DIRECT_SOLVE_MAX_POINTS:,} "
         "points an LU's fill-in is unbounded), mat-vecs guessed for a chain that mixes at rate β"
     )
 
 
-def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None) -> tuple[int, int, str]:
+def iteration_steps(
+    doc: Any, choices: int, *, moving_divisor: int | None = None, mixing: tuple[float, float, str] | None = None
+) -> tuple[int, int, str]:
     """(iterations, evaluation steps in all, basis) guessed from β, the tolerance, the method and the choices.
 
     Howard and policy iteration: ``HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE · log2(choices)``
@@ -261,7 +330,9 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
     follow :func:`worker.solvers.evaluation.phase_plan`: ``m // moving_divisor`` steps after each iteration
     that moved the policy, then the steps until the increments settle, guessed as ``SETTLE_SHARE`` of the
     steps a contraction at rate β needs to bring the span to ``tolerance · (1 − β)/β``.  Value iteration:
-    the steps at rate β from a value of order ``1/(1 − β)``.
+    ``VALUE_SPAN_SHARE`` of the steps at rate β that bring the bracket from a span of order 1 to the tolerance,
+    or, with ``mixing`` (a tabular model's ``(rate ρ, first span, words)``, :mod:`worker.mixing`), the steps at
+    rate ``β · ρ`` from that first span.
     """
     horizon = doc.model.horizon
     if horizon is not None:
@@ -272,13 +343,22 @@ def iteration_steps(doc: Any, choices: int, *, moving_divisor: int | None = None
     beta = float(doc.discount)
     solver = doc.solver
     tolerance = float(solver.tolerance)
-    scale = 1.0 / (1.0 - beta)
-    # Distance ‖Tv − v‖ must fall from about `scale` to tolerance·(1 − β)/β.
-    target = max(tolerance * (1.0 - beta) / beta / scale, 1e-16)
     evaluation = 0
     if solver.method == "value_iteration":
-        steps = math.ceil(math.log(target) / math.log(beta))
-        how = f"value iteration at rate β from a value of order 1/(1 − β) to the tolerance {tolerance:g}"
+        # It stops on the bracket: β/(1 − β) · span(Tv − v) within 2 · tolerance, from a span of order 1; the span
+        # shrinks faster than β when the chain mixes, so a share of the steps at rate β.
+        bracket = max(2.0 * tolerance * (1.0 - beta) / beta, 1e-16)
+        if mixing is None:
+            steps = math.ceil(VALUE_SPAN_SHARE * math.log(bracket) / math.log(beta))
+            how = (f"value iteration: {VALUE_SPAN_SHARE:g} of the steps at rate β that bring the bracket from a "
+                   f"reward span of order 1 to the tolerance {tolerance:g}")
+        else:
+            rate, first, words = mixing
+            contraction = beta * max(rate, 1e-6)
+            steps = 1 + max(1, math.ceil(math.log(bracket / first) / math.log(contraction))) if first > bracket else 2
+            how = (f"value iteration: the steps at rate β · {rate:.2f} ({words}, measured on the document's "
+                   f"transitions) that bring the bracket from the first span {first:.3g} to the tolerance "
+                   f"{tolerance:g}")
     else:
         steps = math.ceil(HOWARD_BASE_ITERATIONS + HOWARD_ITERATIONS_PER_OCTAVE * math.log2(max(choices, 2)))
         how = (f"{solver.method}: {HOWARD_BASE_ITERATIONS:g} + {HOWARD_ITERATIONS_PER_OCTAVE:g} per doubling of "

@@ -47,9 +47,11 @@ import math
 from dataclasses import dataclass
 from typing import Any
 
+from worker.compile_seconds import compile_kernels, compile_seconds
 from worker.costs import (
     BASE_BYTES,
     CHOICE_BYTES,
+    DIRECT_SOLVE_MAX_POINTS,
     FEASIBILITY_COLUMNS,
     ITERATION_S,
     MATVEC_NS,
@@ -68,9 +70,9 @@ from worker.costs import (
     solve_bytes,
 )
 from worker.drawnames import draw_count, draw_table_bytes
-from worker.grid_seconds import grid_seconds
+from worker.grid_seconds import grid_seconds, policy_solve_bytes, policy_solve_seconds, policy_solve_words
 from worker.hintuse import hint_use
-from worker.kernel_limits import compile_cost
+from worker.kernel_limits import compile_bytes as compile_memory
 from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes
 from worker.threadpool import TABLE_CHUNKS_AT_ONCE, threads_for
@@ -302,7 +304,8 @@ def grid_bytes(doc: Any, plan: GridPlan) -> int:
     entries = plan.n * plan.nodes * plan.shocks
     first_axis = next(iter(doc.model.states.values())).size
     euler = 0 if doc.model.taste_shocks is not None else euler_elements(doc, first_axis, plan.shocks)
-    working = (solve_bytes(plan.n, entries, doc.solver.method) + plan.solve_extra_bytes
+    exact = policy_solve_bytes(doc, plan) if doc.solver.method == "policy_iteration" else None
+    working = (solve_bytes(plan.n, entries, doc.solver.method, exact=exact) + plan.solve_extra_bytes
                + report_bytes(doc, plan.n, entries, euler))
     return BASE_BYTES + max(plan.setup_bytes, plan.table_bytes + working) + horizon_bytes(doc, plan.n)
 
@@ -339,11 +342,11 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
     steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
     seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
-        seconds += steps * linear_solve_seconds(
-            plan.n, plan.n * plan.nodes * plan.shocks, float(doc.discount), float(doc.solver.tolerance)
-        )
-        basis += f"; {linear_solve_words(plan.n)}"
-    compile_bytes, compile_s = compile_cost(model)
+        # The last iteration's Bellman step meets the tolerance and stops before an evaluation: steps − 1 solves.
+        seconds += max(steps - 1, 1) * policy_solve_seconds(doc, plan)
+        basis += f"; {policy_solve_words(doc, plan)}"
+    compile_bytes = compile_memory(model)
+    compile_s, compile_basis = compile_seconds(model, compile_kernels(model, plan))
     notes = [f"reward storage {plan.reward_storage}: {plan.reason}"]
     if plan.hints_active:
         used = " and ".join(name for name, on in (("monotone", plan.monotone), ("concave", plan.concave)) if on)
@@ -361,7 +364,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         )
     notes.append("memory counts the arrays of the solve, not the Python interpreter and its libraries (about 200 MiB)")
     notes.append(
-        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.0f} s "
+        f"the first solve of a new model structure on a machine also compiles its kernels (about {compile_s:,.1f} s "
         f"and {compile_bytes / _MIB:,.0f} MiB, then cached)"
     )
     return {
@@ -375,6 +378,7 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
         "reward_storage": plan.reward_storage,
         "compile_bytes": compile_bytes,
         "compile_seconds": compile_s,
+        "compile_basis": compile_basis,
         "seconds": seconds,
         "basis": f"{basis}; {how}",
         "notes": notes,
@@ -405,16 +409,22 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         common += 3 * 8 * pairs
         policy_entries = stored
     matrix = policy_entries * 12 + 8 * (n_states + 1)
-    steps, evaluation_steps, basis = iteration_steps(doc, n_actions)
+    mixing = None
+    if doc.solver.method == "value_iteration" and model.horizon is None:
+        from worker.mixing import value_iteration_mixing  # here: it reads the transitions (numpy, scipy)
+
+        mixing = value_iteration_mixing(model)
+    steps, evaluation_steps, basis = iteration_steps(doc, n_actions, mixing=mixing)
     step = stored * MATVEC_NS + pairs * (SMOOTHED_PAIR_NS if getattr(model, "taste_shocks", None) else TABLE_READ_NS)
     step += ITERATION_S * 1e9
     seconds = (steps * step + evaluation_steps * policy_entries * MATVEC_NS + entries * TABULAR_ENTRY_NS) * 1e-9
     seconds += evaluation_steps * TABULAR_STEP_S
     seconds += report_seconds(doc, n_states, policy_entries, grid=False) + horizon_seconds(doc, n_states)
     if doc.solver.method == "policy_iteration" and model.horizon is None:
-        matrix += linear_solve_bytes(n_states, policy_entries)
-        seconds += steps * linear_solve_seconds(
-            n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance)
+        bandwidth = transition_bandwidth(transition, dense) if n_states <= DIRECT_SOLVE_MAX_POINTS else None
+        matrix += linear_solve_bytes(n_states, policy_entries, bandwidth)
+        seconds += max(steps - 1, 1) * linear_solve_seconds(  # no evaluation after the last Bellman step
+            n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance), anywhere=True
         )
         basis += f"; {linear_solve_words(n_states)}"
     notes = [
@@ -434,7 +444,25 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,
+        "compile_basis": "nothing compiled: a tabular model runs sparse matrices",
         "seconds": seconds,
         "basis": f"{basis}; one sparse product of {stored:,} entries ({MATVEC_NS:g} ns each) per step",
         "notes": notes,
     }
+
+
+def transition_bandwidth(transition: Any, dense: bool) -> int:
+    """The largest ``|s − s'|`` of a tabular model's transitions with a positive probability, every action's
+    (a policy's rows come from them; taste shocks mix them all): the bandwidth of its policy systems in the states'
+    order.  One pass over the document's entries, run for policy iteration's direct solves only (at most
+    ``DIRECT_SOLVE_MAX_POINTS`` states)."""
+    import numpy as np  # here: the rest of the estimate works from sizes alone
+
+    if dense:
+        reached = np.asarray(transition).any(axis=1)  # (s, s') reached by some action
+        rows, columns = np.nonzero(reached)
+    else:
+        entries = np.asarray(transition.entries)
+        positive = entries[:, 3] > 0
+        rows, columns = entries[positive, 0], entries[positive, 2]
+    return int(np.abs(rows.astype(np.int64) - columns.astype(np.int64)).max(initial=0))

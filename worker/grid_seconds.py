@@ -1,4 +1,5 @@
-"""The time of a grid model's warm solve, from its sizes and the reward storage :mod:`worker.estimate` chose.
+"""The time of a grid model's warm solve, from its sizes and the reward storage :mod:`worker.estimate` chose
+(and, beside the time of policy iteration's exact evaluation, its memory: :func:`policy_solve_bytes`).
 
 Kept apart from :mod:`worker.estimate` (which calls it) by topic: the counts of the work a solve does
 (pairs filled, entries scanned, points searched, expectations formed, evaluation steps), times the costs
@@ -11,6 +12,7 @@ import math
 from typing import Any
 
 from worker.costs import (
+    DIRECT_SOLVE_MAX_POINTS,
     DRAWS_FIXED_S,
     EXACT_LEVEL_NS,
     EXPECTATION_NS,
@@ -28,12 +30,16 @@ from worker.costs import (
     THREAD_EFFICIENCY,
     euler_elements,
     horizon_seconds,
+    linear_solve_bytes,
+    linear_solve_seconds,
+    linear_solve_words,
+    policy_matrix_bytes,
     report_seconds,
 )
 from worker.taste import SMOOTHED_PAIR_NS
 from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
 
-__all__ = ["grid_seconds"]
+__all__ = ["grid_seconds", "policy_solve_bytes", "policy_solve_seconds", "policy_solve_words"]
 
 DRAW_FILL_NS = 16.0
 """The compiled fill of a model with draws after the choice (:mod:`worker.drawkernel`), per (pair, draw)
@@ -110,3 +116,63 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     if threads > 1:
         how += f"; {threads} threads ({speedup:g}× on the table fill and the Bellman steps)"
     return seconds + report_seconds(doc, plan.n, entries, euler) + horizon_seconds(doc, plan.n), how
+
+
+REDUCED_FIXED_S = 3e-5
+"""The fixed cost of one reduced exact evaluation of draws after the choice (:func:`worker.drawsteps.
+reduced_policy_value`): the compiled system, LAPACK's call, the value expanded — no sparse matrix is built
+(seconds; measured 0.03 to 0.04 ms a solve on the bike shop's 31 grid states once its policy settled)."""
+REDUCED_DENSE_MAX_GRID = 400
+"""As :data:`worker.drawsteps.DENSE_SOLVE_MAX_GRID` (not imported: that module loads numba;
+``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+
+
+def _reduced(doc: Any, plan: Any) -> bool:
+    """Whether policy iteration solves a system over the grid states only: draws after the choice with a chain of
+    identical rows (iid shocks or none before the choice; :func:`worker.drawsteps.reduced_policy_value`)."""
+    draws = plan.nodes >> plan.interpolated
+    before = [spec for spec in doc.model.shocks.values() if not spec.after_choice]
+    return draws > 1 and plan.interpolated > 0 and all(spec.iid is not None for spec in before) and (
+        plan.grid_states <= DIRECT_SOLVE_MAX_POINTS)
+
+
+def policy_solve_seconds(doc: Any, plan: Any) -> float:
+    """One exact evaluation of policy iteration on a grid model (seconds): the reduced system of the grid states
+    with draws after the choice and an iid chain (dense up to ``REDUCED_DENSE_MAX_GRID`` grid states: ``g³/3``
+    operations at 1 ns, plus the nodes read), else the full system of :func:`worker.costs.linear_solve_seconds`."""
+    entries = plan.n * plan.nodes * plan.shocks
+    if _reduced(doc, plan):
+        g = plan.grid_states
+        nodes = plan.n * plan.nodes
+        if g <= REDUCED_DENSE_MAX_GRID:
+            return REDUCED_FIXED_S + g**3 / 3 * 1e-9 + nodes * MATVEC_NS * 1e-9
+        return linear_solve_seconds(g, nodes, float(doc.discount), float(doc.solver.tolerance)) + nodes * 1e-9
+    return linear_solve_seconds(plan.n, entries, float(doc.discount), float(doc.solver.tolerance))
+
+
+def policy_solve_words(doc: Any, plan: Any) -> str:
+    if _reduced(doc, plan):
+        return (f"exact evaluations over the {plan.grid_states:,} grid states (draws after the choice with iid "
+                "shocks: the expected value of each grid state solves a system of their size)")
+    return linear_solve_words(plan.n)
+
+
+def policy_solve_bytes(doc: Any, plan: Any) -> int:
+    """Memory of one exact evaluation of policy iteration on a grid model (bytes).
+
+    The reduced system (:func:`_reduced`, :func:`worker.drawsteps.reduced_policy_value`): the policy's nodes
+    merged (CSR: 16 bytes a node, the row pointers), the value, and the system over the grid states, dense up to
+    ``REDUCED_DENSE_MAX_GRID`` (the matrix and LAPACK's copy of it), else sparse (a row reaches at most the nodes
+    of every shock, the node arrays it is built from, its LU).  Otherwise the policy's matrix over all points and
+    :func:`worker.costs.linear_solve_bytes`.
+    """
+    entries = plan.n * plan.nodes * plan.shocks
+    if not _reduced(doc, plan):
+        return policy_matrix_bytes(plan.n, entries) + linear_solve_bytes(plan.n, entries)
+    g = plan.grid_states
+    nodes = plan.n * plan.nodes
+    merged = 16 * nodes + 8 * (plan.n + 1) + 8 * plan.n
+    if g <= REDUCED_DENSE_MAX_GRID:
+        return merged + 2 * 8 * g * g
+    reduced = g * min(g, plan.nodes * plan.shocks)
+    return merged + 3 * 8 * nodes + policy_matrix_bytes(g, reduced) + linear_solve_bytes(g, reduced)

@@ -6,8 +6,8 @@ written out, each feasibility condition nests one block, and each evaluation
 site repeats the model's expressions.  Compile time and memory grow with
 all three, so :func:`check_structure` refuses structures over the limits
 below at the door (``service.admission``) and before every solve
-(``worker.solve``), and :func:`compile_cost` sizes the first compile of a
-structure for the estimate.  The limits were measured on this machine
+(``worker.solve``), and :func:`compile_bytes` sizes the memory of the first compile of a
+structure for the estimate (its time: :mod:`worker.compile_seconds`).  The limits were measured on this machine
 (2-core x86, cold kernel cache); each constant says how.  Nothing here builds
 a grid or imports numba.
 """
@@ -21,18 +21,15 @@ from typing import Any
 from worker.errors import TooLarge
 
 __all__ = [
-    "COMPILE_S",
     "MAX_EXPRESSION_NODES",
     "MAX_FEASIBLE_CONDITIONS",
     "MAX_INTERPOLATION_CORNERS",
     "check_structure",
-    "compile_cost",
+    "compile_bytes",
     "expression_nodes",
     "interpolation_corners",
 ]
 
-COMPILE_S = 6.0
-"""Compilation on first use of a model structure on a machine (seconds; cached afterwards)."""
 MAX_INTERPOLATION_CORNERS = 64
 """Most interpolation corners (``2 ** state variables moved by a next expression``) a grid model may have (count).
 
@@ -50,10 +47,6 @@ MAX_EXPRESSION_NODES = 1_000
 Each evaluation site of the generated kernels repeats them, and the exact search adds their interval form;
 measured on this machine (cold kernel cache, hinted, one state variable): 135 parts compiled in 7 s, 500 in
 15 s with 100 MiB more resident memory, 750 in 18 s with 140 MiB, 1,500 in 51 s with 310 MiB."""
-COMPILE_CORNER_S = 0.2
-"""Compile time per interpolation corner, on top of ``COMPILE_S`` (seconds; measured on this machine)."""
-COMPILE_NODE_S = 0.03
-"""Compile time per part of the model's expressions (seconds; measured on this machine)."""
 COMPILE_NODE_BYTES = 200 * 2**10
 """Compile memory per part of the model's expressions (bytes, 200 KiB; measured on this machine)."""
 COMPILE_BASE_BYTES = 32 * 2**20
@@ -143,9 +136,9 @@ def check_structure(doc: Any) -> None:
         )
 
 
-def compile_cost(model: Any) -> tuple[int, float]:
-    """``(bytes, seconds)`` the first compile of a grid model's structure on a machine adds (then cached)."""
+def compile_bytes(model: Any) -> int:
+    """Memory the first compile of a grid model's structure on a machine adds (bytes; then cached).  Its time is
+    counted kernel by kernel in :mod:`worker.compile_seconds`."""
     corners = interpolation_corners(model)
     parts = sum(expression_nodes(model).values())
-    memory = COMPILE_BASE_BYTES + COMPILE_CORNER_BYTES * corners + COMPILE_NODE_BYTES * parts
-    return memory, COMPILE_S + COMPILE_CORNER_S * corners + COMPILE_NODE_S * parts
+    return COMPILE_BASE_BYTES + COMPILE_CORNER_BYTES * corners + COMPILE_NODE_BYTES * parts
