@@ -28,6 +28,7 @@ from worker.costs import (
     report_seconds,
     solve_bytes,
 )
+from worker.drawnames import draw_count
 from worker.kernel_limits import compile_bytes as compile_memory
 
 __all__ = ["SEARCH_POINTS", "continuous_estimate"]
@@ -47,25 +48,28 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     name = model.continuous_choice()
     choice = model.choices[name]
     grid_states = math.prod(axis.size for axis in model.states.values())
-    shocks = math.prod(shock.size for shock in model.shocks.values()) if model.shocks else 1
+    # Shocks drawn after the choice are no axis of the value: each multiplies the search's evaluations
+    # and tomorrow's nodes of a point instead.
+    shocks = math.prod(shock.size for shock in model.shocks.values() if not shock.after_choice)
+    draws = max(1, draw_count(model))
     n = grid_states * shocks
     states = len(model.states)
     nodes = 2**states
     scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
     method = doc.solver.method
-    entries = n * nodes * shocks
+    entries = n * nodes * shocks * draws
     first_axis = next(iter(model.states.values())).size
     memory = (BASE_BYTES + solve_bytes(n, entries, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
               + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     combos = math.prod(other.size for key, other in model.choices.items() if key != name)  # searched for each
-    per_point = combos * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
+    per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
     iteration = n * per_point * POINT_NS + ITERATION_S * 1e9 + entries * MATVEC_NS
     seconds = (GRID_FIXED_S * 1e9 + steps * iteration + evaluation_steps * entries * MATVEC_NS) * 1e-9
     if hinted:
-        seconds += n * combos * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
+        seconds += n * combos * draws * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
     seconds += report_seconds(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_seconds(doc, n)
     compile_bytes = compile_memory(model)
     compile_s, compile_basis = compile_seconds(model, continuous_kernels())
