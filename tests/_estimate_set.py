@@ -148,6 +148,22 @@ def sparse_tabular() -> dict[str, Any]:
     return raw
 
 
+def continuous_with_draws(points: int = 400) -> dict[str, Any]:
+    """An invented fishery: a continuous harvest, the season drawn after it with odds that worsen with the
+    harvest (the shape of ``tests/worker/test_continuous_draws.py``'s model, on ``points`` stock points)."""
+    return {"version": 1, "discount": 0.9, "model": {
+        "kind": "grid",
+        "params": {"price": 1.0},
+        "states": {"stock": {"min": 0.2, "max": 4.0, "points": points}},
+        "shocks": {"season": {"iid": {"values": [0.8, 1.25],
+                                      "probs": ["0.3 + 0.1 * harvest / stock", "0.7 - 0.1 * harvest / stock"]},
+                              "timing": "after_choice"}},
+        "choices": {"harvest": {"min": 0, "max": "stock - 0.1", "continuous": True, "points": 40}},
+        "next": {"stock": "min(season * 1.6 * (stock - harvest) ** 0.8 + 0.1, 4.0)"},
+        "reward": "price * log(harvest + 0.05) + 0.05 * season"},
+        "solver": {"method": "howard", "tolerance": 1e-8}}
+
+
 def documents(large: bool = False) -> dict[str, dict[str, Any]]:
     """Name → document: the bundled examples and the extra shapes; ``large`` adds the slow, large ones."""
     docs = {path.stem: example(path.stem) for path in sorted(EXAMPLES.glob("*.json"))}
@@ -159,6 +175,7 @@ def documents(large: bool = False) -> dict[str, dict[str, Any]]:
         "sparse_tabular": sparse_tabular(),
         "taste_tabular": taste_tabular(),
         "taste_with_draws_after_choice": grid_document(van(top=400), discount=0.95, tolerance=1e-6),
+        "continuous_with_draws_after_choice": continuous_with_draws(),
         "growth_tables_20k": growth(1000, 20),
         "growth_hinted_60k": growth(2000, 30, {"monotone": True, "concave": True}),
     })

@@ -16,6 +16,8 @@ from typing import Any
 from worker.compile_seconds import compile_seconds, continuous_kernels
 from worker.costs import (
     BASE_BYTES,
+    CHUNK_ELEMENTS,
+    CHUNK_TEMPORARIES,
     GRID_FIXED_S,
     ITERATION_S,
     MATVEC_NS,
@@ -59,10 +61,14 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     method = doc.solver.method
     entries = n * nodes * shocks * draws
     first_axis = next(iter(model.states.values())).size
-    memory = (BASE_BYTES + solve_bytes(n, entries, method) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
+    # With draws the probabilities are checked at every point's scanned candidates, in numpy chunks of
+    # whole rows (every candidate, every draw), before the solve (worker.continuous.drawnodes.check_at_scan).
+    check = (CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, n * choice.size * combos_of(model, name) * draws)
+             if draws > 1 else 0)
+    memory = (BASE_BYTES + max(check, solve_bytes(n, entries, method)) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
               + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
-    combos = math.prod(other.size for key, other in model.choices.items() if key != name)  # searched for each
+    combos = combos_of(model, name)  # searched for each
     per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
@@ -98,3 +104,8 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         "basis": f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each)",
         "notes": notes,
     }
+
+
+def combos_of(model: Any, name: str) -> int:
+    """Combinations of the choices beside the continuous ``name`` (1 without others)."""
+    return math.prod(other.size for key, other in model.choices.items() if key != name)

@@ -12,6 +12,8 @@ import math
 from typing import Any
 
 __all__ = [
+    "CHUNK_ELEMENTS",
+    "CHUNK_TEMPORARIES",
     "EXACT_LEVEL_NS",
     "EXPECTATION_NS",
     "EULER_BYTES_PER_ELEMENT",
@@ -189,6 +191,12 @@ measured 66 on the beekeeper example)."""
 EULER_TEST_POINTS_PER_GRID_POINT = 10
 """As :data:`worker.euler.TEST_POINTS_PER_GRID_POINT` (not imported: ``worker.euler`` imports this module's
 importers; ``tests/worker/test_estimates_accuracy.py`` checks they agree)."""
+CHUNK_ELEMENTS = 1 << 20
+"""(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
+CHUNK_TEMPORARIES = 5
+"""float64 temporaries of chunk size alive at once while evaluating a model's expressions, per chunk in flight
+(count; traced peaks of the bundled examples: 3 to 8, and 10 per draw with draws after the choice; 2.5 per
+chunk filling the 20-million-pair tables of ``bench/bench_estimates.py`` on 1, 2 and 4 threads)."""
 EULER_CHUNK_ELEMENTS = 2**18
 """As ``worker.euler._CHUNK_ELEMENTS``: (test point, shock, next shock) triples evaluated at once (count)."""
 

@@ -51,6 +51,8 @@ from worker.compile_seconds import compile_kernels, compile_seconds
 from worker.costs import (
     BASE_BYTES,
     CHOICE_BYTES,
+    CHUNK_ELEMENTS,
+    CHUNK_TEMPORARIES,
     DIRECT_SOLVE_MAX_POINTS,
     FEASIBILITY_COLUMNS,
     ITERATION_S,
@@ -88,12 +90,6 @@ PRECOMPUTE_MAX_BYTES = 1 << 30
 """Largest precomputed table set, in bytes (1 GiB)."""
 PRECOMPUTE_CAP_SHARE = 0.25
 """Share of the memory cap (``limits["max_bytes"]``) precomputed tables may take (dimensionless)."""
-CHUNK_ELEMENTS = 1 << 20
-"""(state, choice) pairs evaluated per numpy chunk while precomputing or checking (elements)."""
-CHUNK_TEMPORARIES = 5
-"""float64 temporaries of chunk size alive at once while evaluating a model's expressions, per chunk in flight
-(count; traced peaks of the bundled examples: 3 to 8, and 10 per draw with draws after the choice; 2.5 per
-chunk filling the 20-million-pair tables of ``bench/bench_estimates.py`` on 1, 2 and 4 threads)."""
 
 TABULAR_ENTRY_NS = 10.0
 """Reading a tabular transition into a sparse matrix, per entry given (nanoseconds; measured 11 on the dense

@@ -23,10 +23,10 @@ from typing import Any
 import numpy as np
 
 from worker import _codegen
+from worker.costs import CHUNK_ELEMENTS
 from worker.document.horizon import PERIOD_NAME
 from worker.draws import Draws, draw_probabilities, model_draws
 from worker.errors import InfeasibleModel, InvalidDocument, join_path
-from worker.estimate import CHUNK_ELEMENTS
 from worker.expressions import Expression, evaluate, parse
 from worker.shocks import product_chain
 

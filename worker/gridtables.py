@@ -17,7 +17,7 @@ from typing import Any
 import numpy as np
 
 from worker import threadpool
-from worker.estimate import CHUNK_ELEMENTS
+from worker.costs import CHUNK_ELEMENTS
 from worker.feasibility import ModelData, evaluate_pairs
 from worker.grids import locate
 

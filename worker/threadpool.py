@@ -46,7 +46,7 @@ points and no faster at 700,000 (measured), so only larger problems split them."
 
 TABLE_CHUNKS_AT_ONCE = 4
 """Chunks of a threaded solve's reward tables evaluated at once, at most (count): each holds
-``worker.estimate.CHUNK_TEMPORARIES`` temporaries of a chunk, so this bounds the memory threads add
+``worker.costs.CHUNK_TEMPORARIES`` temporaries of a chunk, so this bounds the memory threads add
 while the tables are filled (three chunks' temporaries beyond the estimate, 192 MiB at most)."""
 
 BLOCKS_PER_THREAD = 4

@@ -22,8 +22,8 @@ from typing import Any
 
 import numpy as np
 
+from worker.costs import CHUNK_ELEMENTS
 from worker.draws import draw_probabilities
-from worker.estimate import CHUNK_ELEMENTS
 from worker.expressions import evaluate
 from worker.feasibility import ModelData, evaluate_pairs
 from worker.grids import locate
