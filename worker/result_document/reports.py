@@ -48,14 +48,15 @@ class StationaryReport(Reported):
     ends: dict[str, EndMass] = Field(
         description="Grid models: per state variable, the mass at the ends of its grid ({} for tabular models)."
     )
-    method: Literal["direct", "gmres", "power"] = Field(
+    method: Literal["direct", "gmres", "power", "refined"] = Field(
         description=f"How it was computed: direct (sparse LU, up to {DIRECT_MAX_STATES:,} points), gmres "
-        "(preconditioned, one closed class) or power (power iteration on the lazy chain)."
+        "(preconditioned, one closed class), power (power iteration on the lazy chain) or refined (a search's "
+        "trial: iterative refinement of the pinned system with the sparse LU of the trial before)."
     )
     residual: float = Field(description="‖πP − π‖₁, the distribution's residual (rounding-small for method direct).")
     steps: int = Field(
         description="Power-iteration steps taken (0 for direct; above the direct limit, up to "
-        f"{POWER_FIRST_STEPS:,} come first, so gmres shows them too)."
+        f"{POWER_FIRST_STEPS:,} come first, so gmres shows them too), or refinement steps for refined."
     )
 
 
