@@ -129,3 +129,38 @@ def test_a_simulation_follows_states_off_the_grid_with_the_policy_interpolated()
     long_run = result["stationary"]["means"]["a"]
     assert simulation["summary"]["a"]["mean"] == pytest.approx(long_run, rel=0.05)
     assert simulation["summary"]["save"]["mean"] == pytest.approx(result["stationary"]["means"]["save"], rel=0.05)
+
+
+def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives() -> None:
+    """The rounds' compiled bends, union and reading (worker.continuous.egm_rounds) against the numpy code they
+    replace (egm._kinks, np.union1d, egm._rule_at), on random endogenous grids: ties with grid points, bends
+    outside the grid, not-a-number states, earlier bends not among the choices."""
+    from worker.continuous import egm
+    from worker.continuous.egm_rounds import read_moved, union_sorted
+
+    rng = np.random.default_rng(7)
+    for _ in range(200):
+        n, n_z = int(rng.integers(3, 40)), int(rng.integers(1, 6))
+        grid = np.sort(rng.choice(np.linspace(0.0, 10.0, 200), n, replace=False))
+        extra = np.sort(rng.uniform(-1.0, 11.0, int(rng.integers(0, 8))))
+        choices = np.union1d(grid, np.concatenate([extra, grid[:2]]) if rng.random() < 0.3 else extra)
+        states = np.sort(rng.uniform(-2.0, 12.0, (choices.size, n_z)), axis=0)
+        if rng.random() < 0.3:
+            states[0, :] = grid[1]
+        if rng.random() < 0.2:
+            states[rng.integers(0, choices.size), 0] = np.nan
+        previous = None
+        if rng.random() < 0.7:
+            earlier = np.concatenate([choices[rng.integers(0, choices.size, int(rng.integers(0, 6)))], [123.0]])
+            previous = (earlier, rng.integers(1, 5, earlier.size))
+        expected = egm._kinks(grid, (states, choices), previous)
+        found = egm._bends(grid, (states, choices), previous)
+        assert np.array_equal(found[0], expected[0]) and np.array_equal(found[1], expected[1])
+        assert np.array_equal(union_sorted(grid, expected[0]), np.union1d(grid, expected[0]))
+        if np.isfinite(states).all():
+            before = rng.uniform(0.0, 10.0, (grid.size, n_z))
+            out = np.empty_like(before)
+            moved = read_moved(states, choices, grid[0], grid[-1], grid, before, out)
+            if moved >= 0.0:  # −1: a column not increasing, read in numpy by the caller
+                read = egm._rule_at(grid, (states, choices), grid)
+                assert np.array_equal(out, read) and moved == np.abs(read - before).max()

@@ -52,6 +52,7 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
+from worker.continuous.egm_rounds import bends, read_moved, union_sorted
 from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
@@ -127,12 +128,18 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     rounds, change = 0, np.inf
     power = _power(data, found, grid)
     kernel, params = egm_kernel(data, found, c_slope, power)
+    low, high = float(grid[0]), float(grid[-1])
+    scale = float(np.abs(grid).max())
+    moved = np.empty((n_k, n_z))
     with np.errstate(all="ignore"):
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
             if pairs is not None:
-                kinks = _kinks(grid, pairs, kinks)
-            points = grid if kinks is None else np.union1d(grid, kinks[0])
-            tomorrow = np.full((points.size, n_z), grid[0]) if pairs is None else _rule_at(grid, pairs, points)
+                kinks = _bends(grid, pairs, kinks)
+            points = grid if kinks is None else union_sorted(grid, kinks[0])
+            if pairs is None:
+                tomorrow = np.full((points.size, n_z), low)
+            else:
+                tomorrow = _rule_at(grid, pairs, points, ordered=True)
             if c_star is None:
                 c_star = np.full((points.size, n_z), np.nan)
             elif c_star.shape != (points.size, n_z):
@@ -140,15 +147,17 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 c_star = np.column_stack([np.interp(points, pairs[1], c_star[:, z]) for z in range(n_z)])
             k_today = np.empty((points.size, n_z))
             if not kernel(points, tomorrow, data.transition, beta, params, data.shock_table, power is not None,
-                          c_star, k_today):
+                          c_star, k_today, scale):
                 c_star, k_today = _numpy_round(data, found, c_slope, beta, points, tomorrow, c_star)
             if not np.isfinite(k_today).all():
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
             pairs = (k_today, points)
-            new = _rule_at(grid, pairs, grid)
-            change = float(np.abs(new - policy).max())
-            policy = new
+            change = read_moved(k_today, points, low, high, grid, policy, moved)
+            if change < 0.0:  # an endogenous grid that is not increasing: read it in numpy
+                moved = _rule_at(grid, pairs, grid)
+                change = float(np.abs(moved - policy).max())
+            policy, moved = moved, policy
             rounds += 1
     egm_seconds = time.perf_counter() - started
     flat = np.ascontiguousarray(policy.reshape(-1))
@@ -225,12 +234,23 @@ def _kinks(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray],
     return value[first], generation[first]
 
 
-def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarray) -> np.ndarray:
+def _bends(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray],
+           previous: tuple[np.ndarray, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray]:
+    """:func:`_kinks`, compiled (:func:`worker.continuous.egm_rounds.bends`, the same answer)."""
+    if KINK_GENERATIONS < 1:
+        return np.zeros(0), np.zeros(0, dtype=np.int64)
+    earlier, generation = previous if previous is not None else (np.zeros(0), np.zeros(0, dtype=np.int64))
+    return bends(grid, pairs[0], pairs[1], earlier, generation, KINK_GENERATIONS)
+
+
+def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarray, *,
+             ordered: bool = False) -> np.ndarray:
     """The method's policy (m, n_z) at states ``k`` (m,): linear along each shock point's endogenous grid;
-    the grid's lower end below its first point (the constraint binds), its upper end past the last."""
+    the grid's lower end below its first point (the constraint binds), its upper end past the last.
+    ``ordered``: ``k`` is known to be sorted."""
     states, choices = pairs
     out = np.empty((k.size, states.shape[1]))
-    if np.all(k[1:] >= k[:-1]) and read_pairs(states, choices, grid[0], grid[-1], k, out):
+    if (ordered or np.all(k[1:] >= k[:-1])) and read_pairs(states, choices, grid[0], grid[-1], k, out):
         return out
     for z in range(states.shape[1]):
         order = np.argsort(states[:, z], kind="stable")

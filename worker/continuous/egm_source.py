@@ -4,17 +4,21 @@ compiled).
 The round needs a model's derivative trees (:func:`worker.euler.setup`): the
 reward's slope in the state at a fixed choice, the define's slope in the
 choice and in the state, the marginal reward and its slope.  They are written
-into one kernel, ``egm_round(points, tomorrow, P, beta, p, ztab, cstar,
-kout)``, with the trees' numbers lifted into the params vector as for every
-generated module (:func:`worker._codegen.lift_literals`), so a calibration
-sweep reuses one compiled module.  For each choice point ``points[j]`` and
+into one kernel, ``egm_round(points, tomorrow, P, beta, p, ztab, power,
+cstar, kout, scale)`` (``scale`` the largest ``|points|``), with the trees'
+numbers lifted into the params vector as for every generated module
+(:func:`worker._codegen.lift_literals`), so a calibration sweep reuses one
+compiled module.  For each choice point ``points[j]`` and
 shock row ``z``:
 
 1. ``E = Σ_z' P[z, z'] ∂r/∂k(points[j], z', tomorrow[j, z'])``;
 2. ``c*`` with ``∂r/∂c(c*) = −β E / (∂c/∂x)`` by Newton steps on logarithms
-   from ``cstar[j, z]`` (written back);
+   from ``cstar[j, z]`` (written back), or in closed form for a marginal
+   reward ``A·c**p`` (:func:`worker.continuous.egm_rounds.root`);
 3. ``k*`` with ``c(k*, z, points[j]) = c*`` by Newton steps in ``k``
-   (``kout[j, z]``).
+   (``kout[j, z]``): one step when the define is affine in the state (its
+   slope in the state moves with nothing that moves with the state), which
+   lands on ``k*`` to rounding.
 
 It returns False when a marginal reward or a target is not positive or a
 step is not a number; the caller then runs the numpy round, which falls back
@@ -31,7 +35,7 @@ from worker import _codegen, _slopes, expressions
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
 from worker.euler import EulerSetup
-from worker.expressions import Expression
+from worker.expressions import Expression, names_in
 from worker.feasibility import ModelData
 
 __all__ = ["egm_kernel", "power_law"]
@@ -82,6 +86,10 @@ def egm_kernel(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict],
     names.update({name: f"d_{k}" for k, name in enumerate(defines)})
     names.update({_slopes.prime(name): f"q_{k}" for k, name in enumerate(defines)})
     carrier = names[found.define]
+    # The define's slope in the state, once its define derivatives are known, not moving with the state:
+    # the define is affine in the state and one Newton step finds today's state (to rounding).
+    moving = set(c_slope[1]) | {found.state}
+    affine = not any(names_in(lifted_trees[index]) & moving for _, index in groups["c_state"])
 
     def src(index: int) -> str:
         return expressions.scalar_source(Expression.from_tree(lifted_trees[index]), names)
@@ -97,13 +105,11 @@ def egm_kernel(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict],
             out.add(f"d_{k} = {src(k)}")
 
     out = Lines()
-    out.add(JIT, "def egm_round(points, tomorrow, P, beta, p, ztab, power, cstar, kout):")
+    out.add(JIT, "def egm_round(points, tomorrow, P, beta, p, ztab, power, cstar, kout, scale):")
     out.depth += 1
     out.extend([f"p_{k} = p[{k}]" for k in range(len(lifted.params))])
-    out.add("m = points.shape[0]", "nz = P.shape[0]", "slope = np.empty(nz)", "scale = 0.0")
-    with out.block("for j in range(m):"):
-        out.add("scale = max(scale, abs(points[j]))")
-    with out.block("for j in range(m):"):
+    out.add("nz = P.shape[0]", "slope = np.empty(nz)")
+    with out.block("for j in range(points.shape[0]):"):
         with out.block("for zz in range(nz):"):
             out.add("s_0 = points[j]", "c_0 = tomorrow[j, zz]")
             out.extend([f"z_{t} = ztab[zz, {t}]" for t in range(len(source.shocks))])
@@ -123,7 +129,7 @@ def egm_kernel(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict],
             with out.block("if not (target > 0.0 and target < np.inf):"):
                 out.add("return False")
             with out.block("if power:"):
-                out.add(f"cc = (target / p[{len(lifted.params)}]) ** (1.0 / p[{len(lifted.params) + 1}])")
+                out.add(f"cc = root(target / p[{len(lifted.params)}], 1.0 / p[{len(lifted.params) + 1}])")
             with out.block("for _step in range(0 if power else 60):"):
                 out.add(f"{carrier} = cc")
                 block(out, "after", "_unused")
@@ -135,7 +141,7 @@ def egm_kernel(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict],
                 with out.block(f"if abs(step) <= {_EPS4!r}:"):
                     out.add("break")
             out.add("cstar[j, z] = cc", "k = points[j]")
-            with out.block("for _step in range(60):"):
+            with out.block(f"for _step in range({1 if affine else 60}):"):
                 out.add("s_0 = k")
                 all_defines(out)
                 block(out, "c_state", "ck")
@@ -151,6 +157,7 @@ def egm_kernel(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict],
         f"# generators {generator_hash()}",
         "import numpy as np",
         "from numba import njit",
+        "from worker.continuous.egm_rounds import root",
         "from worker.expressions.interval_kernels import interval_globals",
         "",
         "globals().update(interval_globals())",
