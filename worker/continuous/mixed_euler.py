@@ -50,6 +50,9 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
 def mixed_euler_report(problem: Any, v: np.ndarray, discount: float) -> tuple[dict[str, Any] | None, str]:
     """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
     data = problem.model_data
+    if len(data.states) > 1:
+        return None, ("Euler-equation errors were not measured: beside other choices they are measured for a "
+                      "model with one state")
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):
         return None, found or ("Euler-equation errors were not measured: they need a continuous choice that sets "

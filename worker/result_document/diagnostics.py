@@ -229,6 +229,10 @@ class EulerProfile(Reported):
     pooled: int = Field(
         description="Test points per entry: 1, or with many test points the worst of that many consecutive ones."
     )
+    over: list[str] = absent_unless(
+        description="Several states only: the other state variables; each entry is the worst error over their grid "
+        "points (the test points lie at them)."
+    )
 
 
 class EulerByPeriod(Reported):

@@ -1,0 +1,65 @@
+"""``diagnostics.euler_errors`` of an infinite-horizon solve: which measurement applies, and its note.
+
+:func:`euler_diagnostics` picks the measurement for the solved problem — one state (:mod:`worker.euler`),
+several states (:mod:`worker.euler_states`), a continuous choice beside discrete ones
+(:mod:`worker.continuous.mixed_euler`) — with the policy between grid points read as the solve reads it,
+and appends a note to the diagnostics where the errors were not measured.  (A finite horizon's are
+:mod:`worker.horizon_euler`'s.)
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import numpy as np
+
+__all__ = ["euler_diagnostics"]
+
+
+def euler_diagnostics(
+    doc: Any, problem: Any, outcome: Any, stationary: dict[str, Any] | None, problem_diagnostics: dict[str, Any],
+) -> dict[str, Any]:
+    """``{"euler_errors": ...}`` when ``report.euler_errors`` asks and the model has the form; else ``{}``
+    (with a note why when it was asked for).  ``outcome`` is the :class:`~worker.solvers.SolveOutcome`."""
+    if not doc.report.euler_errors:
+        return {}
+    from worker.euler import euler_report
+    from worker.gridproblem import GridProblem
+
+    def add_note(text: str) -> None:
+        problem_diagnostics.setdefault("notes", []).append(text)
+
+    continuous = getattr(problem, "choose_at", None) is not None
+    if not isinstance(problem, GridProblem) and not continuous:
+        add_note("Euler-equation errors were not measured: they apply to grid models")
+        return {}
+    data = problem.model_data
+    if getattr(data, "draws", None) is not None:
+        add_note("Euler-equation errors were not measured: the model has draws after the choice")
+        return {}
+    started = time.perf_counter()
+    choice = data.choices[0]
+    distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
+    if getattr(problem, "others", ()):  # a continuous choice beside others: at the chosen combination
+        from worker.continuous.mixed_euler import mixed_euler_report
+
+        errors, note = mixed_euler_report(problem, outcome.value, doc.discount)
+    else:
+        rule = None
+        if continuous and len(data.states) > 1:
+            from worker.euler_states import search_rule
+
+            rule = search_rule(problem, outcome.value, outcome.policy)
+        elif continuous:
+            rule = problem.policy_rule(outcome.value, outcome.policy)
+        errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
+                                    distribution, rule=rule)
+    if errors is None and note is None:
+        note = ("Euler-equation errors were not measured: they need a choice that sets tomorrow's value of a state "
+                "(next_of)")
+    if note is not None:
+        add_note(note)
+    if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):
+        problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
+    return {} if errors is None else {"euler_errors": errors}

@@ -1,0 +1,152 @@
+"""What a model's Euler equation needs: which state the choice sets, the define carrying it, derivative trees.
+
+See :mod:`worker.euler` for the equation and where the errors are measured.  A model qualifies when its one
+choice ``x`` is ``next_of`` a state ``k``, its reward depends on the choice only through one define ``c``,
+differentiably, and every other state moves by a law of motion that does not move with ``k`` or ``x``
+(directly or through a define): then the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice
+and tomorrow's marginal value needs the policy alone.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from worker import _slopes
+from worker.expressions import Node, Number, names_in
+from worker.feasibility import ModelData
+
+__all__ = ["EulerSetup", "setup", "slope_trees"]
+
+
+@dataclass(frozen=True)
+class EulerSetup:
+    """What the errors of one model need: names and derivative trees."""
+
+    state: str
+    choice: str
+    define: str
+    marginal: Node
+    """∂r/∂c, with ``c`` a leaf and the defines after it that depend on it as primed names."""
+    marginal_slope: Node
+    """∂²r/∂c², for the Newton steps."""
+    after: dict[str, tuple[Node, Node]]
+    """The defines after ``c`` that depend on it, in order: their trees and their derivatives in ``c``."""
+    define_slope: tuple[Node, dict[str, Node]]
+    """∂c/∂x: the tree and the defines' derivatives in ``x`` it uses."""
+    state_slope: tuple[Node, dict[str, Node]]
+    """∂r/∂k at a fixed choice: the tree and the defines' derivatives in ``k`` it uses."""
+
+
+def setup(data: ModelData) -> EulerSetup | str | None:
+    """The derivative trees of ``data``'s Euler equation; a note why not; None when it does not apply.
+
+    It applies to models with one choice that is ``next_of`` a state; the
+    note explains what else is missing (one define carrying the choice, a
+    differentiable reward, other states' laws of motion free of the chosen
+    state and of the choice).
+    """
+    if not any(j is not None for j in data.setter):
+        return None
+    if len(data.choices) != 1:
+        return ("Euler-equation errors not computed: they are measured for models with one choice that sets "
+                "tomorrow's value of a state (or a continuous one beside discrete choices)")
+    position = data.setter.index(0)
+    if data.choice_is_menu[0] or data.state_grids[position].size < 2:
+        return None
+    state, choice = data.states[position], data.choices[0]
+    src = data.source
+    defines = {name: expr.tree for name, expr in src.defines}
+    reward = src.reward.tree
+    moving = _depends(defines, choice)
+    define, reason = _carrier(defines, reward, choice, moving)
+    if define is None:
+        return f"Euler-equation errors not computed: {reason}"
+    reason = _open_law(data, defines, state, choice)
+    if reason:
+        return f"Euler-equation errors not computed: {reason}"
+    try:
+        after = slope_trees(defines, define, skip_own=True)
+        marginal = _slopes.derivative(reward, define, after)
+        marginal_slope = _slopes.derivative(marginal, define, after)
+        if isinstance(marginal, Number):
+            return (f"Euler-equation errors not computed: the marginal reward of `{define}` is constant, so it "
+                    "cannot be inverted")
+        in_choice = slope_trees(defines, choice)
+        define_slope = _slopes.derivative(defines[define], choice, in_choice)
+        in_state = slope_trees(defines, state)
+        state_slope = _slopes.derivative(reward, state, in_state)
+    except _slopes.NotSmooth as error:
+        return f"Euler-equation errors not computed: the reward is not differentiable ({error})"
+    later = {name: (defines[name], derived) for name, derived in after.items()}
+    return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
+                      (state_slope, in_state))
+
+
+def _open_law(data: ModelData, defines: dict[str, Node], state: str, choice: str) -> str:
+    """Why the envelope condition does not close over the other states' laws of motion ("" when it does).
+
+    With ``y' = g(y, z)`` free of the chosen state ``k`` and of the choice, ``∂V/∂k`` is the reward's
+    slope in ``k`` at the chosen choice; a law that moves with ``k`` or with the choice would add
+    ``β E ∂V/∂y' · ∂g/∂k``, a slope of the value the policy alone does not give.
+    """
+    moved = {**_depends(defines, state), **_depends(defines, choice)}
+    for position, law in data.source.next:
+        used = names_in(law.tree)
+        if any(name in (state, choice) or name in moved for name in used):
+            return (f"the law of motion of `{data.states[position]}` moves with `{state}` or with the choice "
+                    f"`{choice}`, so tomorrow's marginal value of `{state}` would need the slope of the value in "
+                    f"`{data.states[position]}`, which the policy alone does not give")
+    return ""
+
+
+def _depends(defines: dict[str, Node], variable: str) -> dict[str, bool]:
+    """The defines that depend on ``variable``, directly or through earlier defines (in order)."""
+    moving: dict[str, bool] = {}
+    for name, tree in defines.items():
+        if any(used == variable or used in moving for used in names_in(tree)):
+            moving[name] = True
+    return moving
+
+
+def _carrier(
+    defines: dict[str, Node], reward: Node, choice: str, moving: dict[str, bool]
+) -> tuple[str | None, str]:
+    """The one define through which the choice enters the reward, or None and why.
+
+    A define whose only role is to rename another (``u = log(c)``, reward
+    ``u``: a marginal reward that is a constant) is looked through, down to
+    the define nearest the choice that still carries it alone.
+    """
+    carried = sorted(name for name in names_in(reward) if name == choice or name in moving)
+    if choice in carried:
+        return None, f"the reward uses the choice `{choice}` directly, not through one define"
+    if not carried:
+        return None, f"the reward does not depend on the choice `{choice}`"
+    if len(carried) > 1:
+        return None, (f"the choice `{choice}` enters the reward through several defines "
+                      f"({', '.join(f'`{name}`' for name in carried)}), not one")
+    define = carried[0]
+    while True:
+        inner = sorted(name for name in names_in(defines[define]) if name == choice or name in moving)
+        try:
+            constant = isinstance(_slopes.derivative(reward, define, slope_trees(defines, define, skip_own=True)),
+                                  Number)
+        except _slopes.NotSmooth:
+            constant = False
+        if not constant or len(inner) != 1 or inner[0] == choice:
+            return define, ""
+        define = inner[0]
+
+
+def slope_trees(defines: dict[str, Node], variable: str, *, skip_own: bool = False) -> dict[str, Node]:
+    """Derivatives in ``variable`` of the defines that depend on it, in order.
+
+    With ``skip_own`` the variable is itself a define, held as a leaf.
+    """
+    moving = _depends({name: tree for name, tree in defines.items() if not (skip_own and name == variable)}, variable)
+    if skip_own:
+        names = list(defines)
+        later = set(names[names.index(variable) + 1:])
+        moving = {name: True for name in moving if name in later}
+    return {name: _slopes.derivative(defines[name], variable, moving) for name in moving}
+
