@@ -9,6 +9,10 @@ equation.  Today's and tomorrow's policies between grid points are
 * for a continuous choice, each period's own search (:meth:`policy_rule` of the compiled problem at
   the value it was chosen against, ``V_{t+1}``), run with that period's params and discount: the rule
   enters its period before every search, since today's and tomorrow's are called in turn.
+
+With several states the rules read points (m, states) and the test points are
+:mod:`worker.euler_states`'s (the grid policy multilinear over the product grid, or the search at the
+point).
 """
 
 from __future__ import annotations
@@ -49,6 +53,12 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
     choice = data.choices[0]
     grid = data.state_grids[0]
+    several = len(data.states) > 1
+    measure = euler_errors
+    if several:  # rules over points (m, states), and the test points at every grid point of the other states
+        from worker.euler_states import grid_rule, search_rule, states_errors
+
+        measure = states_errors
 
     def model_and_rule(t: int) -> tuple[Any, Callable[[np.ndarray], np.ndarray]]:
         period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
@@ -57,17 +67,20 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         if own is not None:  # the endogenous grid method's own rule (linear along its endogenous grid)
             return period_data, own
         if continuous:
-            after = plan.terminal if t == periods - 1 else outcome.values[t + 1 - first]
-            return period_data, _in_period(plan, t, problem.policy_rule(np.asarray(after, dtype=np.float64), policy))
-        values = problem.choice_values(policy)[choice]
-        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
+            after = np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
+            rule = search_rule(problem, after, policy) if several else problem.policy_rule(after, policy)
+            return period_data, _in_period(plan, t, rule)
+        values = np.asarray(problem.choice_values(policy)[choice], dtype=np.float64).reshape(-1, data.n_shocks)
+        if several:
+            return period_data, grid_rule(data, values, extend=data.states.index(found.state))
+        return period_data, grid_policy(grid, values)
 
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}
     worst, total, profile = None, 0.0, None
     for t in range(first, periods - 1):
         today, rule = model_and_rule(t)
-        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        errors = measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
         profile = profile or errors["profile"]
         by_period["period"].append(t)
         by_period["max_log10"].append(errors["max_log10"])
