@@ -24,8 +24,8 @@ from worker.expressions import Node
 from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
-__all__ = ["ERROR_FLOOR", "PointsRule", "binding", "environment", "errors_at", "invert", "marginal_at",
-           "slope_at", "subset"]
+__all__ = ["ERROR_FLOOR", "PointsRule", "binding", "combinations", "draw_weights", "environment", "errors_at",
+           "invert", "marginal_at", "slope_at", "subset"]
 
 ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
@@ -42,36 +42,92 @@ def errors_at(
     tomorrow: tuple[ModelData, PointsRule],
 ) -> tuple[np.ndarray, np.ndarray]:
     """log10 errors and the constrained mask at test ``points`` (m, states), both (m, shock points);
-    ``tomorrow`` is the model and policy of the next period."""
+    ``tomorrow`` is the model and policy of the next period.
+
+    With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and the
+    draws' probabilities do not move with them, nor the probabilities with ``k`` or ``x``), tomorrow's
+    marginal value is the expectation over today's draws (each with its next state and probability) and,
+    tomorrow, over tomorrow's draws of the reward's slope in ``k``:
+    ``β Σ_d p_d Σ_z' P[z, z'] Σ_d' p_d'(s') ∂r/∂k(s', x(s'), d')``, ``s' = (x, g(y, z, d), z')``.
+    """
     n_z = data.n_shocks
     columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states)}
     k = columns.pop(found.state)
     shocks = data.shock_table[None, :, :]
+    data_next, policy_next = tomorrow
+    draws = combinations(data)
     with np.errstate(all="ignore"):
         x = policy(points)
-        constrained = binding(data, found, data.state_grids[data.states.index(found.state)], k, shocks, x, columns)
-        env = environment(data, found, k, shocks, x, columns)
+        grid = data.state_grids[data.states.index(found.state)]
+        constrained = binding(data, found, grid, k, shocks, x, columns)
+        env = environment(data, found, k, shocks, x, {**columns, **draws[0]})
         c = np.broadcast_to(env[found.define], x.shape)
         c_slope = slope_at(found.define_slope, env, x.shape)
-        # Tomorrow: rows are (test point, z); k' = x, the other states by their laws, at every shock point z'.
-        data_next, policy_next = tomorrow
-        next_points = np.empty((x.size, len(data.states)))
-        for t, name in enumerate(data.states):
-            if name == found.state:
-                next_points[:, t] = x.reshape(-1)
-        for t, law in data.source.next:
-            grid = data.state_grids[t]
-            moved = np.broadcast_to(evaluate_tree(law.tree, env), x.shape)
-            next_points[:, t] = np.clip(moved, grid[0], grid[-1]).reshape(-1)
-        k_next = next_points[:, [data.states.index(found.state)]]
-        others_next = {name: next_points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
-        env_next = environment(data_next, found, k_next, shocks, policy_next(next_points), others_next)
-        state_slope = slope_at(found.state_slope, env_next, (x.size, n_z)).reshape(x.shape[0], n_z, n_z)
-        expected = np.einsum("azw,zw->az", state_slope, data.transition)
+        chances = draw_weights(data, env, x.shape)
+        expected = np.zeros(x.shape)
+        last: tuple[np.ndarray, np.ndarray] | None = None
+        for d, drawn in enumerate(draws):
+            here = env if d == 0 else environment(data, found, k, shocks, x, {**columns, **drawn})
+            next_points = _next_points(data, found, here, x)
+            if last is None or not np.array_equal(next_points, last[0], equal_nan=True):
+                last = (next_points, _marginal_value(data_next, found, policy_next, next_points, shocks))
+            slope_next = last[1].reshape(x.shape[0], n_z, n_z)
+            expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
         target = -discount * expected / c_slope
         c_tilde = invert(found, env, c, target)
         error = np.abs(1.0 - c_tilde / c)
         return np.log10(np.maximum(error, ERROR_FLOOR)), constrained
+
+
+def _next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.ndarray) -> np.ndarray:
+    """Tomorrow's states, rows (test point, z): ``k' = x``, the others by their laws (moved into their grids)."""
+    out = np.empty((x.size, len(data.states)))
+    out[:, data.states.index(found.state)] = x.reshape(-1)
+    for t, law in data.source.next:
+        grid = data.state_grids[t]
+        out[:, t] = np.clip(np.broadcast_to(evaluate_tree(law.tree, env), x.shape), grid[0], grid[-1]).reshape(-1)
+    return out
+
+
+def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,
+                    shocks: np.ndarray) -> np.ndarray:
+    """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there,
+    its expectation over the draws after the choice, (rows, shock points)."""
+    k = points[:, [data.states.index(found.state)]]
+    others = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
+    x = policy(points)
+    draws = combinations(data)
+    env = environment(data, found, k, shocks, x, {**others, **draws[0]})
+    chances = draw_weights(data, env, x.shape)
+    total = chances[0] * slope_at(found.state_slope, env, x.shape)
+    for d, drawn in enumerate(draws[1:], start=1):
+        here = environment(data, found, k, shocks, x, {**others, **drawn})
+        total = total + chances[d] * slope_at(found.state_slope, here, x.shape)
+    return total
+
+
+def combinations(data: ModelData) -> list[dict[str, float]]:
+    """The draws after the choice, one dict of values per combination (C order); ``[{}]`` without draws."""
+    draws = data.draws
+    return [{}] if draws is None else [draws.combination(d) for d in range(draws.size)]
+
+
+def draw_weights(data: ModelData, env: dict[str, Any], shape: tuple[int, ...]) -> np.ndarray:
+    """The probability of every combination of the draws, (combinations, *shape); ones without draws.
+
+    Each draw's probabilities at ``env`` (negative roundings counted as 0, as the solve counts them), their
+    products in C order of the draws, as :func:`worker.draws.draw_probabilities` combines them.
+    """
+    draws = data.draws
+    if draws is None:
+        return np.ones((1, *shape))
+    out = np.ones((1, *shape))
+    for entries in draws.probs:
+        table = np.stack([np.broadcast_to(np.asarray(entry if isinstance(entry, float) else
+                                                     evaluate_tree(entry.tree, env), dtype=np.float64), shape)
+                          for entry in entries])
+        out = (out[:, None] * np.maximum(table, 0.0)[None, :]).reshape(-1, *shape)
+    return out
 
 
 def environment(
@@ -181,9 +237,14 @@ def binding(
     step = np.interp(x, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
     binding = ~((x - step >= grid[0]) & (x + step <= grid[-1]))
     for moved in (x - step, x + step):
-        env = environment(data, found, k, shocks, moved, others)
-        allowed = np.isfinite(np.broadcast_to(evaluate_tree(data.source.reward.tree, env), x.shape))
-        for expr in data.source.feasible:
-            allowed &= np.broadcast_to(evaluate_tree(expr.tree, env), x.shape) != 0.0
+        allowed = np.ones(x.shape, dtype=bool)
+        for d, drawn in enumerate(combinations(data)):
+            env = environment(data, found, k, shocks, moved, {**(others or {}), **drawn})
+            if d == 0:
+                chances = draw_weights(data, env, x.shape)
+                for expr in data.source.feasible:
+                    allowed &= np.broadcast_to(evaluate_tree(expr.tree, env), x.shape) != 0.0
+            reward = np.broadcast_to(evaluate_tree(data.source.reward.tree, env), x.shape)
+            allowed &= np.isfinite(reward) | (chances[d] <= 0.0)
         binding |= ~allowed
     return binding

@@ -35,9 +35,6 @@ def euler_diagnostics(
         add_note("Euler-equation errors were not measured: they apply to grid models")
         return {}
     data = problem.model_data
-    if getattr(data, "draws", None) is not None:
-        add_note("Euler-equation errors were not measured: the model has draws after the choice")
-        return {}
     started = time.perf_counter()
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)

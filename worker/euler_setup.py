@@ -4,7 +4,9 @@ See :mod:`worker.euler` for the equation and where the errors are measured.  A m
 choice ``x`` is ``next_of`` a state ``k``, its reward depends on the choice only through one define ``c``,
 differentiably, and every other state moves by a law of motion that does not move with ``k`` or ``x``
 (directly or through a define): then the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice
-and tomorrow's marginal value needs the policy alone.
+and tomorrow's marginal value needs the policy alone.  Shocks drawn after the choice are allowed when ``c``
+and its marginal reward do not change with the draw and the draws' probabilities do not move with ``k``
+or ``x`` (:func:`_draw_form` says why).
 """
 
 from __future__ import annotations
@@ -77,6 +79,9 @@ def setup(data: ModelData) -> EulerSetup | str | None:
         state_slope = _slopes.derivative(reward, state, in_state)
     except _slopes.NotSmooth as error:
         return f"Euler-equation errors not computed: the reward is not differentiable ({error})"
+    reason = _draw_form(data, defines, state, choice, define, [marginal, marginal_slope, define_slope], after)
+    if reason:
+        return f"Euler-equation errors not computed: {reason}"
     later = {name: (defines[name], derived) for name, derived in after.items()}
     return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
                       (state_slope, in_state))
@@ -96,6 +101,41 @@ def _open_law(data: ModelData, defines: dict[str, Node], state: str, choice: str
             return (f"the law of motion of `{data.states[position]}` moves with `{state}` or with the choice "
                     f"`{choice}`, so tomorrow's marginal value of `{state}` would need the slope of the value in "
                     f"`{data.states[position]}`, which the policy alone does not give")
+    return ""
+
+
+def _draw_form(data: ModelData, defines: dict[str, Node], state: str, choice: str, define: str,
+               trees: list[Node], after: dict[str, Node]) -> str:
+    """Why shocks drawn after the choice keep the Euler equation from the policy alone ("" when they do not).
+
+    The define ``c`` and its marginal reward must not change with the draw (one ``c`` to compare with
+    ``c̃``), and the draws' probabilities must not move with the choice or the chosen state: a probability
+    ``p_d(x)`` adds ``Σ_d ∂p_d/∂x · (r_d + β E V_d)`` to the first-order condition (and its slope in ``k``
+    the same to the envelope condition), a term in the level of the value, which the policy alone does not
+    give.  The draws may move the reward's slope in the state and the other states' laws of motion.
+    """
+    draws = data.draws
+    if draws is None:
+        return ""
+    moving = draws.dependent
+    used: set[str] = {define}
+    for tree in trees:
+        used |= names_in(tree)
+    for name, derived in reversed(after.items()):  # the later defines' slopes the trees use, and what those use
+        if _slopes.prime(name) in used:
+            used |= names_in(derived)
+    changing = sorted(name for name in used if name in moving)
+    if changing:
+        return (f"the define `{define}` or its marginal reward changes with the draw after the choice (through "
+                f"{', '.join(f'`{name}`' for name in changing)}), so there is no one `{define}` to compare with the "
+                "Euler equation's")
+    moved = {state, choice, *_depends(defines, state), *_depends(defines, choice)}
+    for name, entries in zip(draws.names, draws.probs):
+        for entry in entries:
+            if not isinstance(entry, float) and names_in(entry.tree) & moved:
+                return (f"the probabilities of `{name}`, drawn after the choice, move with `{state}` or with the "
+                        f"choice `{choice}`: the first-order condition then carries their slope times the value "
+                        "of each draw, a level of the value the policy alone does not give")
     return ""
 
 

@@ -41,8 +41,6 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     data = getattr(problem, "model_data", None)
     if data is None:
         return {}, "Euler-equation errors were not measured: they apply to grid models"
-    if getattr(data, "draws", None) is not None:
-        return {}, "Euler-equation errors were not measured: the model has draws after the choice"
     continuous = getattr(problem, "choose_at", None) is not None
     found = setup(data)
     if not isinstance(found, EulerSetup):
