@@ -98,18 +98,23 @@ def test_a_policy_saving_a_known_share_has_the_closed_form_error(ratio: float) -
         assert errors["mean_log10"] == pytest.approx(math.log10(abs(1 - ratio)), abs=1e-9)
 
 
-def _numpy_errors(result: dict[str, Any], slope: float) -> np.ndarray:
+def _numpy_errors(result: dict[str, Any], slope: float, period: int | None = None) -> np.ndarray:
     """Independent: the Euler errors of the result's grid policy at every test point, (z, k test values, e).
 
     Tomorrow's marginal value of k, for the reward ``log(c) + slope · d · k``: the expectation over today's
     draw d (probability p_d(z), tomorrow's level z' = d), over e' and over tomorrow's draw d' (probability
     p_d'(z')) of ``alpha e' z' k'^(alpha − 1) / c' + slope · d'``; the policy read by scipy's
-    RegularGridInterpolator (multilinear).
+    RegularGridInterpolator (multilinear).  With a horizon: ``period``'s policy today, the next one's tomorrow.
     """
     k_grid, z_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["z"])
-    policy = np.asarray(result["policy"]["k_next"], dtype=float)  # (z, k, e)
-    read = [RegularGridInterpolator((z_grid, k_grid), policy[:, :, j], bounds_error=False, fill_value=None)
-            for j in range(E_VALUES.size)]
+    policy = np.asarray(result["policy"]["k_next"], dtype=float)  # ([period,] z, k, e)
+    today, later_policy = (policy, policy) if period is None else (policy[period], policy[period + 1])
+
+    def readers(table: np.ndarray) -> list[RegularGridInterpolator]:
+        return [RegularGridInterpolator((z_grid, k_grid), table[:, :, j], bounds_error=False, fill_value=None)
+                for j in range(E_VALUES.size)]
+
+    read, read_next = readers(today), readers(later_policy)
     parts = math.ceil(10 * k_grid.size / (k_grid.size - 1))
     k_test = (k_grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(k_grid)[:, None]).ravel()
     z, k = np.meshgrid(z_grid, k_test, indexing="ij")
@@ -122,7 +127,7 @@ def _numpy_errors(result: dict[str, Any], slope: float) -> np.ndarray:
             z_next = np.full_like(z, d)
             later = 1 - _p_high(d), _p_high(d)
             for jj, e_next in enumerate(E_VALUES):
-                c_next = e_next * z_next * x**ALPHA - read[jj]((z_next, x))
+                c_next = e_next * z_next * x**ALPHA - read_next[jj]((z_next, x))
                 marginal = ALPHA * e_next * z_next * x ** (ALPHA - 1) / c_next
                 marginal = marginal + slope * (later[0] * D_VALUES[0] + later[1] * D_VALUES[1])
                 expected += p_today * E_CHAIN[j, jj] * marginal
@@ -142,6 +147,19 @@ def test_a_grid_choice_against_an_independent_numpy_computation(slope: float) ->
     assert errors["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
     assert errors["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
     assert errors["weighted_mean_log10"] is not None
+
+
+def test_a_finite_horizon_against_the_independent_computation() -> None:
+    # Four periods, nothing after the last: each period's errors with its policy today and the next one's.
+    document = _document(30, params={"slope": 0.05})
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1, 2] and errors["constrained"] == 0
+    for t in errors["by_period"]["period"]:
+        reference = _numpy_errors(result, 0.05, t)
+        assert errors["by_period"]["max_log10"][t] == pytest.approx(reference.max(), abs=1e-9)
+        assert errors["by_period"]["mean_log10"][t] == pytest.approx(reference.mean(), abs=1e-9)
 
 
 def test_a_continuous_choice_errors_fall_as_the_grid_is_refined() -> None:
