@@ -42,7 +42,13 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     if data is None:
         return {}, "Euler-equation errors were not measured: they apply to grid models"
     continuous = getattr(problem, "choose_at", None) is not None
-    found = setup(data)
+    mixed = bool(getattr(problem, "others", ()))
+    if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
+        from worker.continuous.mixed_euler import mixed_errors, mixed_setup, searcher
+
+        found = mixed_setup(problem, data)
+    else:
+        found = setup(data)
     if not isinstance(found, EulerSetup):
         return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
                              "value of a state (next_of)")
@@ -73,12 +79,29 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             return period_data, grid_rule(data, values, extend=data.states.index(found.state))
         return period_data, grid_policy(grid, values)
 
+    searches: dict[int, Any] = {}
+
+    def model_and_search(t: int) -> tuple[Any, Any]:
+        """Period ``t``'s params and its search against ``V_{t+1}`` (the combination chosen beside)."""
+        if t not in searches:
+            after = np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
+            searches[t] = (dataclasses.replace(data, param_values=period_params(doc.model, t)),
+                           searcher(problem, after, enter=lambda t=t: plan.enter(t)))
+        return searches[t]
+
+    def measured(t: int) -> dict[str, Any]:
+        if mixed:
+            today, search = model_and_search(t)
+            searches.pop(t - 1, None)
+            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1))[0]
+        today, rule = model_and_rule(t)
+        return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}
     worst, total, profile = None, 0.0, None
     for t in range(first, periods - 1):
-        today, rule = model_and_rule(t)
-        errors = measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        errors = measured(t)
         profile = profile or errors["profile"]
         by_period["period"].append(t)
         by_period["max_log10"].append(errors["max_log10"])
@@ -99,7 +122,10 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     }
     note = (f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal "
             "value, with no Euler equation)"
-            + ("; the policy between grid points is the endogenous grid method's own (linear along its grid)"
+            + (f"; the continuous choice at the chosen combination of the others: {pooled['constrained']:,} test "
+               "points skipped (where a limit may bind, or the best combination differs today or at a state "
+               "tomorrow, where the value function has a kink)" if mixed else
+               "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
                "; the policy between grid points is each period's own search" if continuous else ""))
     return {"euler_errors": result}, note

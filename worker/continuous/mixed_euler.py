@@ -16,7 +16,7 @@ point measured, ``profile`` the worst at each test point; ``weighted_mean_log10`
 from __future__ import annotations
 
 import dataclasses
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -24,7 +24,7 @@ from worker import _codegen
 from worker.euler import EulerSetup, between_points, euler_errors, setup
 from worker.feasibility import ModelData
 
-__all__ = ["mixed_euler_report"]
+__all__ = ["mixed_errors", "mixed_euler_report", "mixed_setup", "searcher"]
 
 
 def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) -> ModelData:
@@ -50,40 +50,70 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
 def mixed_euler_report(problem: Any, v: np.ndarray, discount: float) -> tuple[dict[str, Any] | None, str]:
     """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
     data = problem.model_data
+    found = mixed_setup(problem, data)
+    if not isinstance(found, EulerSetup):
+        return None, found
+    search = searcher(problem, v)
+    return mixed_errors(problem, data, discount, search, (data, search))
+
+
+def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
+    """The Euler setup of the model with the other choices fixed, or a note why there is none."""
     if len(data.states) > 1:
-        return None, ("Euler-equation errors were not measured: beside other choices they are measured for a "
-                      "model with one state")
+        return ("Euler-equation errors were not measured: beside other choices they are measured for a model "
+                "with one state")
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):
-        return None, found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
-                               "tomorrow's value of the state (next_of)")
-    grid = data.state_grids[0]
-    n_z = data.n_shocks
+        return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
+                         "tomorrow's value of the state (next_of)")
+    return found
+
+
+Search = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
+"""``search(k) -> (choice, combination)``: at states ``k`` (m,), every shock point, both (m, shock points)."""
+
+
+def searcher(problem: Any, v: np.ndarray, enter: Callable[[], None] | None = None) -> Search:
+    """The fitted problem's search against the value ``v`` (remembered by the states asked for); ``enter``
+    puts the problem in its period first (a finite horizon's)."""
+    n_z = problem.model_data.n_shocks
     remembered: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
 
     def search(k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The continuous choice and the combination at states ``k`` (m,), every shock point: (m, n_z) each."""
+        k = np.asarray(k, dtype=np.float64).reshape(-1)
         key = k.tobytes()
         if key not in remembered:
+            if enter is not None:
+                enter()
             states = np.repeat(k, n_z)[:, None]
             rows = np.tile(np.arange(n_z, dtype=np.int64), k.size)
             _, chosen = problem.choose_at(v, states, rows, None)
             remembered[key] = (chosen[:, 0].reshape(k.size, n_z), chosen[:, 1].astype(np.int64).reshape(k.size, n_z))
         return remembered[key]
 
+    return search
+
+
+def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
+                 tomorrow: tuple[ModelData, Search]) -> tuple[dict[str, Any], str]:
+    """The pooled errors over the combinations of the other choices, and the note; ``data`` and ``search`` are
+    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon)."""
+    grid = data.state_grids[0]
+    n_z = data.n_shocks
+    data_next, search_next = tomorrow
     parts = []
     for d, values in enumerate(problem.combos):
-        model = fixed_model(data, problem.others, values)
+        model, model_next = fixed_model(data, problem.others, values), fixed_model(data_next, problem.others, values)
 
         def today(k: np.ndarray, d: int = d) -> np.ndarray:
-            x, combo = search(np.asarray(k, dtype=np.float64).reshape(-1))
-            _, after = search(x.reshape(-1))
+            x, combo = search(k)
+            _, after = search_next(x.reshape(-1))
             keep = (combo == d) & (after.reshape(x.shape[0], n_z, n_z) == d).all(axis=2)
             return np.where(keep, x, grid[0])  # a choice at the grid's end: skipped as constrained
 
         parts.append(euler_errors(model, setup(model), discount, today,
-                                  tomorrow=(model, lambda k: search(np.asarray(k, dtype=np.float64).reshape(-1))[0])))
-    return _pooled(parts, between_points(grid).size * n_z, found.define)
+                                  tomorrow=(model_next, lambda k: search_next(k)[0])))
+    return _pooled(parts, between_points(grid).size * n_z, parts[0]["define"])
 
 
 def _pooled(parts: list[dict[str, Any]], total: int, define: str) -> tuple[dict[str, Any] | None, str]:
