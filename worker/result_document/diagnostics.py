@@ -221,7 +221,7 @@ class TasteShockInfo(Reported):
 class EulerProfile(Reported):
     """The Euler-equation errors across the state, for a plot."""
 
-    state: str = Field(description="The state variable.")
+    state: str = Field(description="The state variable the choice sets (the profile runs along it).")
     at: list[float] = Field(description="Values of the state, increasing.")
     log10_error: NestedOptionalNumbers = Field(
         description="log10 errors, [len(at)][shock points] (shock points in C order); null where nothing was measured."
