@@ -243,16 +243,14 @@ def euler_report(data: ModelData, discount: float, policy_values: np.ndarray,
 
     ``policy_values`` is the chosen value at every flat point, (n,); ``distribution`` the stationary one, (n,).
     ``rule`` gives the policy between grid points (a continuous choice: the solved problem's own search
-    there); by default the grid policy interpolated linearly (:func:`grid_policy`).  With several states
-    ``rule`` takes points (m, states) and the errors are :func:`worker.euler_states.states_report`'s.
+    there); by default the grid policy interpolated linearly (:func:`grid_policy`).  One state only: with
+    several the errors are :func:`worker.euler_states.states_report`'s (:mod:`worker.euler_result` picks).
     """
     found = setup(data)
     if not isinstance(found, EulerSetup):
         return None, found
     if len(data.states) > 1:
-        from worker.euler_states import states_report
-
-        return states_report(data, found, discount, policy_values, distribution, rule=rule), None
+        raise ValueError("euler_report measures one state; several are worker.euler_states.states_report's")
     values = np.asarray(policy_values, dtype=np.float64).reshape(data.state_grids[0].size, data.n_shocks)
     at_end = None
     if rule is None:

@@ -42,14 +42,18 @@ def euler_diagnostics(
         from worker.continuous.mixed_euler import mixed_euler_report
 
         errors, note = mixed_euler_report(problem, outcome.value, doc.discount)
-    else:
-        rule = None
-        if continuous and len(data.states) > 1:
-            from worker.euler_states import search_rule
+    elif len(data.states) > 1:
+        from worker.euler import setup
+        from worker.euler_states import search_rule, states_report
 
-            rule = search_rule(problem, outcome.value, outcome.policy)
-        elif continuous:
-            rule = problem.policy_rule(outcome.value, outcome.policy)
+        found = setup(data)
+        errors, note = None, found
+        if not isinstance(found, str) and found is not None:
+            rule = search_rule(problem, outcome.value, outcome.policy) if continuous else None
+            errors = states_report(data, found, doc.discount, problem.choice_values(outcome.policy)[choice],
+                                   distribution, rule=rule)
+    else:
+        rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
         errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
                                     distribution, rule=rule)
     if errors is None and note is None:
