@@ -43,12 +43,12 @@ def euler_diagnostics(
 
         errors, note = mixed_euler_report(problem, outcome.value, doc.discount)
     elif len(data.states) > 1:
-        from worker.euler import setup
+        from worker.euler import EulerSetup, setup
         from worker.euler_states import search_rule, states_report
 
         found = setup(data)
-        errors, note = None, found
-        if not isinstance(found, str) and found is not None:
+        errors, note = None, found if isinstance(found, str) else None
+        if isinstance(found, EulerSetup):
             rule = search_rule(problem, outcome.value, outcome.policy) if continuous else None
             errors = states_report(data, found, doc.discount, problem.choice_values(outcome.policy)[choice],
                                    distribution, rule=rule)
