@@ -25,7 +25,7 @@ from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
 __all__ = ["ERROR_FLOOR", "PointsRule", "binding", "combinations", "draw_weights", "environment", "errors_at",
-           "invert", "marginal_at", "slope_at", "subset"]
+           "invert", "marginal_at", "next_points", "slope_at", "subset"]
 
 ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
@@ -68,9 +68,9 @@ def errors_at(
         last: tuple[np.ndarray, np.ndarray] | None = None
         for d, drawn in enumerate(draws):
             here = env if d == 0 else environment(data, found, k, shocks, x, {**columns, **drawn})
-            next_points = _next_points(data, found, here, x)
-            if last is None or not np.array_equal(next_points, last[0], equal_nan=True):
-                last = (next_points, _marginal_value(data_next, found, policy_next, next_points, shocks))
+            tomorrows = next_points(data, found, here, x)
+            if last is None or not np.array_equal(tomorrows, last[0], equal_nan=True):
+                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks))
             slope_next = last[1].reshape(x.shape[0], n_z, n_z)
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
         target = -discount * expected / c_slope
@@ -79,7 +79,7 @@ def errors_at(
         return np.log10(np.maximum(error, ERROR_FLOOR)), constrained
 
 
-def _next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.ndarray) -> np.ndarray:
+def next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.ndarray) -> np.ndarray:
     """Tomorrow's states, rows (test point, z): ``k' = x``, the others by their laws (moved into their grids)."""
     out = np.empty((x.size, len(data.states)))
     out[:, data.states.index(found.state)] = x.reshape(-1)

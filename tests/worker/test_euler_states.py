@@ -234,3 +234,34 @@ def test_a_continuous_choice_over_a_finite_horizon_is_measured_with_each_period_
         assert errors["by_period"]["period"] == [0, 1, 2, 3] and errors["constrained"] == 0
         worst.append(errors["max_log10"])
     assert worst[0] - worst[1] >= 0.4 and worst[1] - worst[2] >= 0.4
+
+
+def test_a_continuous_choice_beside_a_discrete_one_with_two_states() -> None:
+    # A discrete choice that only adds to the reward (`bonus`, always taken) leaves the saving choice the one of
+    # the model without it — the value only shifts by 0.1 / (1 − beta) — so the errors at the chosen
+    # combination are those of that model; with a choice that matters (`overtime`: a fixed extra income at a
+    # utility cost, worth it only where consumption is low) test points where the choice switches today or
+    # tomorrow are skipped and counted.
+    plain = solve(_document(30, 5, continuous=True, interpolation="monotone_cubic"))["diagnostics"]["euler_errors"]
+    document = _document(30, 5, continuous=True, interpolation="monotone_cubic",
+                         choices={"bonus": {"values": [0.0, 1.0]}, **GROWTH["choices"]},
+                         reward="log(c) + 0.1 * bonus")
+    document["model"]["choices"]["k_next"]["continuous"] = True
+    beside = solve(document)["diagnostics"]
+    errors = beside["euler_errors"]
+    assert errors["points"] == plain["points"] and errors["profile"]["over"] == ["a"]
+    # Equal up to the searches' own precision (each point's search stops within about 1e-7 of the choice).
+    assert errors["max_log10"] == pytest.approx(plain["max_log10"], abs=1e-3)
+    assert errors["mean_log10"] == pytest.approx(plain["mean_log10"], abs=1e-3)
+    assert any("chosen combination" in note for note in beside["notes"])
+    document = _document(30, 5, continuous=True, interpolation="monotone_cubic",
+                         choices={"overtime": {"values": [0.0, 1.0]}, **GROWTH["choices"]},
+                         define={"c": "e * a * k**alpha + 0.05 * overtime - k_next"},
+                         reward="log(c) - 0.12 * overtime")
+    document["model"]["choices"]["k_next"]["continuous"] = True
+    result = solve(document)
+    switching = result["diagnostics"]["euler_errors"]
+    overtime = np.asarray(result["policy"]["overtime"])
+    assert 0 < overtime.sum() < overtime.size  # both regimes occur
+    assert switching["constrained"] > 0 and switching["points"] > 0
+    assert switching["points"] + switching["constrained"] + switching["undefined"] == plain["points"]
