@@ -5,8 +5,10 @@ A model qualifies when its one choice ``x`` sets tomorrow's value of a state
 on the choice only through one define ``c``, through which it is
 differentiable, and its other states, if any, move by laws that do not move
 with ``k`` or ``x`` (:mod:`worker.euler_setup`; with several states the
-measurement is :mod:`worker.euler_states`'s).  With ``r`` the reward, the first-order condition of an
-interior choice and the envelope condition read
+measurement is :mod:`worker.euler_states`'s, with shocks drawn after the
+choice :func:`worker.euler_points.errors_at` takes their expectations).
+With ``r`` the reward, the first-order condition of an interior choice and
+the envelope condition read
 
     ∂r/∂c(c) · ∂c/∂x  =  −β E_z'[ ∂r/∂k (k', z', x'') ],   k' = x(k, z),  x'' = x(k', z'),
 
@@ -16,8 +18,8 @@ state at a fixed choice (through every define that depends on it; for
 ``c`` that makes the left side equal to the right side, found by inverting
 the marginal reward ``∂r/∂c`` numerically (vectorised Newton steps on its
 derivative tree, with bisection where Newton does not settle:
-:mod:`worker.euler_points`), and the error
-at a point is ``|1 − c̃/c|``, reported as its log10.  Every derivative is a
+:mod:`worker.euler_points`), and the error at a point is ``|1 − c̃/c|``,
+reported as its log10.  Every derivative is a
 tree of :func:`worker._slopes.derivative`, evaluated with numpy: the reward
 is differentiated in one name at a time (the choice, the state, or the
 define ``c`` held as a leaf).
