@@ -68,7 +68,7 @@ from typing import Any
 
 import numpy as np
 
-from worker.euler_points import PointsRule, errors_at
+from worker.euler_points import PointsRule, ValueParts, errors_at
 from worker.euler_setup import EulerSetup, setup
 from worker.feasibility import ModelData
 
@@ -134,6 +134,7 @@ def euler_errors(
     at_end: np.ndarray | None = None,
     *,
     tomorrow: tuple[ModelData, PolicyRule] | None = None,
+    values: ValueParts | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of ``data``'s state grid.
 
@@ -155,6 +156,9 @@ def euler_errors(
     tomorrow : (ModelData, policy), optional
         Tomorrow's model (its params) and policy, when they differ from today's (a finite horizon's
         next period); default: ``data`` and ``policy``.
+    values : ValueParts, optional
+        The value read at points, for draws whose probabilities move with the choice or the state
+        (:func:`worker.euler_points.errors_at`).
 
     Returns
     -------
@@ -171,7 +175,7 @@ def euler_errors(
     data_next, policy_next = tomorrow or (data, policy)
     along = (data_next, lambda points: policy_next(points[:, 0]))
     parts = [errors_at(data, found, discount, lambda points: policy(points[:, 0]), k_all[start:start + rows, None],
-                       along) for start in range(0, k_all.size, rows)]
+                       along, values) for start in range(0, k_all.size, rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
     if at_end is not None:
@@ -239,8 +243,8 @@ def error_profile(state: str, k_points: np.ndarray, log_error: np.ndarray, measu
 
 
 def euler_report(data: ModelData, discount: float, policy_values: np.ndarray,
-                 distribution: np.ndarray | None = None, *,
-                 rule: PolicyRule | None = None) -> tuple[dict[str, Any] | None, str | None]:
+                 distribution: np.ndarray | None = None, *, rule: PolicyRule | None = None,
+                 values: ValueParts | None = None) -> tuple[dict[str, Any] | None, str | None]:
     """``(diagnostics.euler_errors, note)`` of a solved grid model: the errors, or None and why (or no note).
 
     ``policy_values`` is the chosen value at every flat point, (n,); ``distribution`` the stationary one, (n,).
@@ -253,10 +257,10 @@ def euler_report(data: ModelData, discount: float, policy_values: np.ndarray,
         return None, found
     if len(data.states) > 1:
         raise ValueError("euler_report measures one state; several are worker.euler_states.states_report's")
-    values = np.asarray(policy_values, dtype=np.float64).reshape(data.state_grids[0].size, data.n_shocks)
+    chosen = np.asarray(policy_values, dtype=np.float64).reshape(data.state_grids[0].size, data.n_shocks)
     at_end = None
     if rule is None:
-        rule = grid_policy(data.state_grids[0], values)
+        rule = grid_policy(data.state_grids[0], chosen)
         grid = data.state_grids[0]
-        at_end = (values <= grid[0]) | (values >= grid[-1])
-    return euler_errors(data, found, discount, rule, distribution, at_end), None
+        at_end = (chosen <= grid[0]) | (chosen >= grid[-1])
+    return euler_errors(data, found, discount, rule, distribution, at_end, values=values), None

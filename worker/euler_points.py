@@ -19,13 +19,13 @@ from typing import Any
 import numpy as np
 
 from worker import _slopes
-from worker.euler_setup import EulerSetup
+from worker.euler_setup import EulerSetup, needs_value
 from worker.expressions import Node
 from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
-__all__ = ["ERROR_FLOOR", "PointsRule", "binding", "combinations", "draw_weights", "environment", "errors_at",
-           "invert", "marginal_at", "next_points", "slope_at", "subset"]
+__all__ = ["ERROR_FLOOR", "PointsRule", "ValueParts", "ValueReader", "binding", "chance_slopes", "combinations",
+           "draw_weights", "environment", "errors_at", "invert", "marginal_at", "next_points", "slope_at", "subset"]
 
 ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
@@ -35,20 +35,27 @@ _BISECTION_STEPS = 200
 PointsRule = Callable[[np.ndarray], np.ndarray]
 """``policy(points) -> x``: at points (m, states) of the state space, the choice at every shock point,
 (m, shock points)."""
+ValueReader = Callable[[np.ndarray], np.ndarray]
+"""``read(points) -> V``: the value at points (rows, states), at every shock point, (rows, shock points)."""
+ValueParts = tuple[ValueReader, ValueReader, float]
+"""What draws moving with ``x`` or ``k`` need: the value tomorrow read today (``V_{t+1}``), the value the
+day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomorrow's discount."""
 
 
 def errors_at(
     data: ModelData, found: EulerSetup, discount: float, policy: PointsRule, points: np.ndarray,
-    tomorrow: tuple[ModelData, PointsRule],
+    tomorrow: tuple[ModelData, PointsRule], values: ValueParts | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """log10 errors and the constrained mask at test ``points`` (m, states), both (m, shock points);
     ``tomorrow`` is the model and policy of the next period.
 
-    With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and the
-    draws' probabilities do not move with them, nor the probabilities with ``k`` or ``x``), tomorrow's
-    marginal value is the expectation over today's draws (each with its next state and probability) and,
-    tomorrow, over tomorrow's draws of the reward's slope in ``k``:
-    ``β Σ_d p_d Σ_z' P[z, z'] Σ_d' p_d'(s') ∂r/∂k(s', x(s'), d')``, ``s' = (x, g(y, z, d), z')``.
+    With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and its
+    marginal reward do not move with them), tomorrow's marginal value is the expectation over today's draws
+    (each with its next state and probability) and, tomorrow, over tomorrow's draws of the reward's slope
+    in ``k``: ``β Σ_d p_d Σ_z' P[z, z'] Σ_d' p_d'(s') ∂r/∂k(s', x(s'), d')``, ``s' = (x, g(y, z, d), z')``.
+    Where the probabilities move with ``x`` the first-order condition adds ``Σ_d ∂p_d/∂x · W_d`` and where
+    they move with ``k`` the envelope condition tomorrow adds ``Σ_d' ∂p_d'/∂k · W_d'``, with
+    ``W_d = r_d + β E V(next_d)`` read by ``values`` (:data:`ValueParts`; needed then).
     """
     n_z = data.n_shocks
     columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states)}
@@ -56,6 +63,9 @@ def errors_at(
     shocks = data.shock_table[None, :, :]
     data_next, policy_next = tomorrow
     draws = combinations(data)
+    if needs_value(found) and values is None:
+        raise ValueError("draws whose probabilities move with the choice or the state need the value")
+    later = None if values is None else (values[1], values[2])
     with np.errstate(all="ignore"):
         x = policy(points)
         grid = data.state_grids[data.states.index(found.state)]
@@ -64,16 +74,19 @@ def errors_at(
         c = np.broadcast_to(env[found.define], x.shape)
         c_slope = slope_at(found.define_slope, env, x.shape)
         chances = draw_weights(data, env, x.shape)
-        expected = np.zeros(x.shape)
+        moving = chance_slopes(data, found, env, x.shape, 0)
+        expected, extra = np.zeros(x.shape), np.zeros(x.shape)
         last: tuple[np.ndarray, np.ndarray] | None = None
         for d, drawn in enumerate(draws):
             here = env if d == 0 else environment(data, found, k, shocks, x, {**columns, **drawn})
             tomorrows = next_points(data, found, here, x)
             if last is None or not np.array_equal(tomorrows, last[0], equal_nan=True):
-                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks))
+                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later))
             slope_next = last[1].reshape(x.shape[0], n_z, n_z)
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
-        target = -discount * expected / c_slope
+            if moving is not None and values is not None:
+                extra += moving[d] * _worth(data, here, tomorrows, values[0], discount, x.shape)
+        target = -(discount * expected + extra) / c_slope
         c_tilde = invert(found, env, c, target)
         error = np.abs(1.0 - c_tilde / c)
         return np.log10(np.maximum(error, ERROR_FLOOR)), constrained
@@ -89,20 +102,33 @@ def next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.n
     return out
 
 
+def _worth(data: ModelData, env: dict[str, Any], tomorrows: np.ndarray, read: ValueReader, discount: float,
+           shape: tuple[int, ...]) -> np.ndarray:
+    """``W = r + β Σ_z' P[z, z'] V(next, z')`` of one draw at its ``env`` (rows, shock points)."""
+    reward = np.broadcast_to(evaluate_tree(data.source.reward.tree, env), shape)
+    after = read(tomorrows).reshape(shape[0], shape[1], -1)
+    return reward + discount * np.einsum("azw,zw->az", after, data.transition)
+
+
 def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,
-                    shocks: np.ndarray) -> np.ndarray:
+                    shocks: np.ndarray, later: tuple[ValueReader, float] | None = None) -> np.ndarray:
     """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there,
-    its expectation over the draws after the choice, (rows, shock points)."""
+    its expectation over the draws after the choice, (rows, shock points); with ``later`` (the value the day
+    after and tomorrow's discount) and probabilities moving with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``."""
     k = points[:, [data.states.index(found.state)]]
     others = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
     x = policy(points)
     draws = combinations(data)
     env = environment(data, found, k, shocks, x, {**others, **draws[0]})
     chances = draw_weights(data, env, x.shape)
-    total = chances[0] * slope_at(found.state_slope, env, x.shape)
-    for d, drawn in enumerate(draws[1:], start=1):
-        here = environment(data, found, k, shocks, x, {**others, **drawn})
+    moving = None if later is None else chance_slopes(data, found, env, x.shape, 1)
+    total = np.zeros(x.shape)
+    for d, drawn in enumerate(draws):
+        here = env if d == 0 else environment(data, found, k, shocks, x, {**others, **drawn})
         total = total + chances[d] * slope_at(found.state_slope, here, x.shape)
+        if moving is not None and later is not None:
+            total = total + moving[d] * _worth(data, here, next_points(data, found, here, x), later[0], later[1],
+                                               x.shape)
     return total
 
 
@@ -227,6 +253,27 @@ def bisect(found: EulerSetup, env: dict[str, Any], c: np.ndarray, target: np.nda
         if np.all((high - low) <= 4 * np.finfo(float).eps * np.abs(middle)):
             break
     return np.where(bracketed, 0.5 * (low + high), np.nan)
+
+
+def chance_slopes(data: ModelData, found: EulerSetup, env: dict[str, Any], shape: tuple[int, ...],
+                  which: int) -> np.ndarray | None:
+    """The slope of every combination's probability in ``x`` (``which`` 0) or ``k`` (1), (combinations, *shape),
+    by the product rule over the draws; None when no probability moves with it."""
+    if found.chance_slopes is None or all(entry[which] is None for row in found.chance_slopes for entry in row):
+        return None
+    draws = data.draws
+    assert draws is not None
+    defines = (found.define_slope if which == 0 else found.state_slope)[1]
+    level, slope = np.ones((1, *shape)), np.zeros((1, *shape))
+    for entries, trees in zip(draws.probs, found.chance_slopes):
+        table = np.stack([np.broadcast_to(np.asarray(entry if isinstance(entry, float) else
+                                                     evaluate_tree(entry.tree, env), dtype=np.float64), shape)
+                          for entry in entries])
+        moved = np.stack([np.zeros(shape) if tree[which] is None else slope_at((tree[which], defines), env, shape)
+                          for tree in trees])
+        slope = (slope[:, None] * table[None, :] + level[:, None] * moved[None, :]).reshape(-1, *shape)
+        level = (level[:, None] * table[None, :]).reshape(-1, *shape)
+    return slope
 
 
 def binding(

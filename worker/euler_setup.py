@@ -5,8 +5,8 @@ choice ``x`` is ``next_of`` a state ``k``, its reward depends on the choice only
 differentiably, and every other state moves by a law of motion that does not move with ``k`` or ``x``
 (directly or through a define): then the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice
 and tomorrow's marginal value needs the policy alone.  Shocks drawn after the choice are allowed when ``c``
-and its marginal reward do not change with the draw and the draws' probabilities do not move with ``k``
-or ``x`` (:func:`_draw_form` says why).
+and its marginal reward do not change with the draw (:func:`_draw_form` says why); probabilities that move
+with ``k`` or ``x`` add a term in the value's level (:func:`needs_value`).
 """
 
 from __future__ import annotations
@@ -17,7 +17,7 @@ from worker import _slopes
 from worker.expressions import Node, Number, names_in
 from worker.feasibility import ModelData
 
-__all__ = ["EulerSetup", "setup", "slope_trees"]
+__all__ = ["EulerSetup", "needs_value", "setup", "slope_trees"]
 
 
 @dataclass(frozen=True)
@@ -37,6 +37,17 @@ class EulerSetup:
     """∂c/∂x: the tree and the defines' derivatives in ``x`` it uses."""
     state_slope: tuple[Node, dict[str, Node]]
     """∂r/∂k at a fixed choice: the tree and the defines' derivatives in ``k`` it uses."""
+    chance_slopes: tuple[tuple[tuple[Node | None, Node | None], ...], ...] | None = None
+    """With draws after the choice whose probabilities move with ``x`` or ``k``: per draw, per value,
+    ``(∂p/∂x, ∂p/∂k)`` (None where it does not move; the defines' derivatives are those of ``define_slope``
+    and ``state_slope``); None when no probability moves.  The errors then need the value
+    (:func:`needs_value`)."""
+
+
+def needs_value(found: EulerSetup) -> bool:
+    """Whether the first-order or envelope condition carries ``Σ_d ∂p_d · (r_d + β E V_d)``, a level of the value
+    (draws whose probabilities move with the choice or the chosen state)."""
+    return found.chance_slopes is not None
 
 
 def setup(data: ModelData) -> EulerSetup | str | None:
@@ -82,9 +93,35 @@ def setup(data: ModelData) -> EulerSetup | str | None:
     reason = _draw_form(data, defines, state, choice, define, [marginal, marginal_slope, define_slope], after)
     if reason:
         return f"Euler-equation errors not computed: {reason}"
+    try:
+        chances = _chance_slopes(data, defines, state, choice, in_choice, in_state)
+    except _slopes.NotSmooth as error:
+        return f"Euler-equation errors not computed: a draw's probability is not differentiable ({error})"
     later = {name: (defines[name], derived) for name, derived in after.items()}
     return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
-                      (state_slope, in_state))
+                      (state_slope, in_state), chances)
+
+
+def _chance_slopes(data: ModelData, defines: dict[str, Node], state: str, choice: str, in_choice: dict[str, Node],
+                   in_state: dict[str, Node]) -> tuple[tuple[tuple[Node | None, Node | None], ...], ...] | None:
+    """Per draw, per value, the probability's derivatives in ``x`` and ``k`` (None where it does not move
+    with them); None when no probability moves."""
+    draws = data.draws
+    if draws is None:
+        return None
+    moved_x = {choice, *_depends(defines, choice)}
+    moved_k = {state, *_depends(defines, state)}
+    out, moving = [], False
+    for entries in draws.probs:
+        row = []
+        for entry in entries:
+            used = set() if isinstance(entry, float) else names_in(entry.tree)
+            in_x = _slopes.derivative(entry.tree, choice, in_choice) if used & moved_x else None
+            in_k = _slopes.derivative(entry.tree, state, in_state) if used & moved_k else None
+            moving = moving or in_x is not None or in_k is not None
+            row.append((in_x, in_k))
+        out.append(tuple(row))
+    return tuple(out) if moving else None
 
 
 def _open_law(data: ModelData, defines: dict[str, Node], state: str, choice: str) -> str:
@@ -109,10 +146,10 @@ def _draw_form(data: ModelData, defines: dict[str, Node], state: str, choice: st
     """Why shocks drawn after the choice keep the Euler equation from the policy alone ("" when they do not).
 
     The define ``c`` and its marginal reward must not change with the draw (one ``c`` to compare with
-    ``c̃``), and the draws' probabilities must not move with the choice or the chosen state: a probability
-    ``p_d(x)`` adds ``Σ_d ∂p_d/∂x · (r_d + β E V_d)`` to the first-order condition (and its slope in ``k``
-    the same to the envelope condition), a term in the level of the value, which the policy alone does not
-    give.  The draws may move the reward's slope in the state and the other states' laws of motion.
+    ``c̃``).  The draws may move the reward's slope in the state and the other states' laws of motion; their
+    probabilities may move with the choice or the chosen state (:func:`_chance_slopes`): a probability
+    ``p_d(x)`` adds ``Σ_d ∂p_d/∂x · (r_d + β E V_d)`` to the first-order condition (its slope in ``k`` the
+    same to the envelope condition), a term in the level of the value, read as the solve reads it.
     """
     draws = data.draws
     if draws is None:
@@ -129,13 +166,6 @@ def _draw_form(data: ModelData, defines: dict[str, Node], state: str, choice: st
         return (f"the define `{define}` or its marginal reward changes with the draw after the choice (through "
                 f"{', '.join(f'`{name}`' for name in changing)}), so there is no one `{define}` to compare with the "
                 "Euler equation's")
-    moved = {state, choice, *_depends(defines, state), *_depends(defines, choice)}
-    for name, entries in zip(draws.names, draws.probs):
-        for entry in entries:
-            if not isinstance(entry, float) and names_in(entry.tree) & moved:
-                return (f"the probabilities of `{name}`, drawn after the choice, move with `{state}` or with the "
-                        f"choice `{choice}`: the first-order condition then carries their slope times the value "
-                        "of each draw, a level of the value the policy alone does not give")
     return ""
 
 

@@ -40,11 +40,11 @@ from typing import Any
 import numpy as np
 
 from worker.euler import between_points, chunk_rows, error_profile
-from worker.euler_points import PointsRule, errors_at
+from worker.euler_points import PointsRule, ValueParts, ValueReader, errors_at
 from worker.euler_setup import EulerSetup
 from worker.feasibility import ModelData
 
-__all__ = ["grid_rule", "search_rule", "states_errors", "states_report", "test_points"]
+__all__ = ["grid_rule", "search_rule", "states_errors", "states_report", "test_points", "value_reader"]
 
 
 def test_points(data: ModelData, found: EulerSetup) -> tuple[np.ndarray, tuple[int, ...]]:
@@ -117,6 +117,7 @@ def states_errors(
     at_end: np.ndarray | None = None,
     *,
     tomorrow: tuple[ModelData, PointsRule] | None = None,
+    values: ValueParts | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of a model with several states.
 
@@ -127,7 +128,7 @@ def states_errors(
     axis = data.states.index(found.state)
     points, layout = test_points(data, found)
     rows = chunk_rows(n_z)
-    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy))
+    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy), values)
              for start in range(0, points.shape[0], rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
@@ -168,18 +169,25 @@ def states_errors(
 
 
 def states_report(data: ModelData, found: EulerSetup, discount: float, policy_values: np.ndarray,
-                  distribution: np.ndarray | None = None, *, rule: PointsRule | None = None) -> dict[str, Any]:
+                  distribution: np.ndarray | None = None, *, rule: PointsRule | None = None,
+                  values: ValueParts | None = None) -> dict[str, Any]:
     """``diagnostics.euler_errors`` of a solved model with several states (see :func:`worker.euler.euler_report`).
 
     ``policy_values`` is the chosen value at every flat point, (n,); without ``rule`` (a choice restricted
     to the grid) the policy between grid points is :func:`grid_rule`'s, and test points next to a grid
     point whose choice is at an end of its grid count as ``constrained``.
     """
-    values = np.asarray(policy_values, dtype=np.float64).reshape(data.n_grid, data.n_shocks)
+    chosen = np.asarray(policy_values, dtype=np.float64).reshape(data.n_grid, data.n_shocks)
     axis = data.states.index(found.state)
     at_end = None
     if rule is None:
-        rule = grid_rule(data, values, extend=axis)
+        rule = grid_rule(data, chosen, extend=axis)
         grid = data.state_grids[axis]
-        at_end = (values <= grid[0]) | (values >= grid[-1])
-    return states_errors(data, found, discount, rule, distribution, at_end)
+        at_end = (chosen <= grid[0]) | (chosen >= grid[-1])
+    return states_errors(data, found, discount, rule, distribution, at_end, values=values)
+
+
+def value_reader(data: ModelData, value: np.ndarray) -> ValueReader:
+    """The value ``value`` (flat points) read at any points multilinearly over the product grid, held at the
+    grid's ends: as a solve with ``linear`` interpolation (or a choice restricted to the grid) reads it."""
+    return grid_rule(data, np.asarray(value, dtype=np.float64).reshape(data.n_grid, data.n_shocks))

@@ -36,6 +36,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     the first period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
     """
     from worker.euler import EulerSetup, euler_errors, grid_policy, setup
+    from worker.euler_result import value_refusal
+    from worker.euler_setup import needs_value
+    from worker.euler_states import value_reader
     from worker.feasibility import period_params
 
     data = getattr(problem, "model_data", None)
@@ -55,6 +58,19 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     first, periods = outcome.first_period, plan.periods
     if periods - first < 2:
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
+    moving = needs_value(found)
+    if moving and value_refusal(doc, problem):
+        return {}, value_refusal(doc, problem)
+
+    def after(t: int) -> np.ndarray:
+        """``V_{t+1}``, the value period ``t`` was chosen against."""
+        return np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
+
+    def values_at(t: int) -> Any:
+        """Period ``t``'s value parts (:data:`worker.euler_points.ValueParts`) when the draws need them."""
+        if not moving:
+            return None
+        return (value_reader(data, after(t)), value_reader(data, after(t + 1)), float(plan.discounts[t + 1]))
     choice = data.choices[0]
     grid = data.state_grids[0]
     several = len(data.states) > 1
@@ -71,8 +87,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         if own is not None:  # the endogenous grid method's own rule (linear along its endogenous grid)
             return period_data, own
         if continuous:
-            after = np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
-            rule = search_rule(problem, after, policy) if several else problem.policy_rule(after, policy)
+            rule = search_rule(problem, after(t), policy) if several else problem.policy_rule(after(t), policy)
             return period_data, _in_period(plan, t, rule)
         values = np.asarray(problem.choice_values(policy)[choice], dtype=np.float64).reshape(-1, data.n_shocks)
         if several:
@@ -84,18 +99,19 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     def model_and_search(t: int) -> tuple[Any, Any]:
         """Period ``t``'s params and its search against ``V_{t+1}`` (the combination chosen beside)."""
         if t not in searches:
-            after = np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
             searches[t] = (dataclasses.replace(data, param_values=period_params(doc.model, t)),
-                           searcher(problem, after, enter=lambda t=t: plan.enter(t)))
+                           searcher(problem, after(t), enter=lambda t=t: plan.enter(t)))
         return searches[t]
 
     def measured(t: int) -> dict[str, Any]:
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)
-            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1))[0]
+            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
+                                values_at(t))[0]
         today, rule = model_and_rule(t)
-        return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
+                       values=values_at(t))
 
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}

@@ -24,7 +24,7 @@ import numpy as np
 
 from worker import _codegen
 from worker.euler import EulerSetup, between_points, euler_errors, setup
-from worker.euler_points import combinations, environment, next_points
+from worker.euler_points import ValueParts, combinations, environment, next_points
 from worker.euler_states import states_errors, test_points
 from worker.feasibility import ModelData
 
@@ -51,14 +51,15 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
     )
 
 
-def mixed_euler_report(problem: Any, v: np.ndarray, discount: float) -> tuple[dict[str, Any] | None, str]:
+def mixed_euler_report(problem: Any, v: np.ndarray, discount: float,
+                       values: ValueParts | None = None) -> tuple[dict[str, Any] | None, str]:
     """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
     data = problem.model_data
     found = mixed_setup(problem, data)
     if not isinstance(found, EulerSetup):
         return None, found
     search = searcher(problem, v)
-    return mixed_errors(problem, data, discount, search, (data, search))
+    return mixed_errors(problem, data, discount, search, (data, search), values)
 
 
 def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
@@ -98,23 +99,24 @@ def searcher(problem: Any, v: np.ndarray, enter: Callable[[], None] | None = Non
 
 
 def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
-                 tomorrow: tuple[ModelData, Search]) -> tuple[dict[str, Any], str]:
+                 tomorrow: tuple[ModelData, Search], values: ValueParts | None = None) -> tuple[dict[str, Any], str]:
     """The pooled errors over the combinations of the other choices, and the note; ``data`` and ``search`` are
-    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon)."""
+    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon); ``values`` as
+    :func:`worker.euler_points.errors_at` takes them."""
     n_z = data.n_shocks
     several = len(data.states) > 1
     data_next, search_next = tomorrow
     parts = []
-    for d, values in enumerate(problem.combos):
-        model, model_next = fixed_model(data, problem.others, values), fixed_model(data_next, problem.others, values)
+    for d, combo in enumerate(problem.combos):
+        model, model_next = fixed_model(data, problem.others, combo), fixed_model(data_next, problem.others, combo)
         found = setup(model)
         today = _at_combination(model, found, search, search_next, d)
         if several:
             parts.append(states_errors(model, found, discount, today,
-                                       tomorrow=(model_next, lambda points: search_next(points)[0])))
+                                       tomorrow=(model_next, lambda points: search_next(points)[0]), values=values))
         else:
             parts.append(euler_errors(model, found, discount, lambda k, today=today: today(k[:, None]),
-                                      tomorrow=(model_next, lambda k: search_next(k)[0])))
+                                      tomorrow=(model_next, lambda k: search_next(k)[0]), values=values))
     total = (test_points(data, found)[0].shape[0] if several else between_points(data.state_grids[0]).size) * n_z
     return _pooled(parts, total, parts[0]["define"])
 
