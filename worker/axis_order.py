@@ -10,7 +10,7 @@ JSON decoder does not keep key order still knows which axis is which.
 
 Arrays that follow the order: ``value``, each ``policy`` and ``policy_index``, ``choice_probabilities`` (the
 value's axes, then the choices), ``stationary.distribution``, ``cohort.distribution`` (period first), and the
-shock columns of ``diagnostics.euler_errors.profile.log10_error`` (rows are points of the one state; the
+shock columns of ``diagnostics.euler_errors.profile.log10_error`` (rows are points of the chosen state; the
 columns run over the shocks' points in row-major order of the shocks as ``axis_order`` lists them).
 """
 
@@ -117,7 +117,8 @@ def _transpose_arrays(out: dict[str, Any], perm: list[int], lead: int, current: 
     euler = diagnostics.get("euler_errors") if isinstance(diagnostics, dict) else None
     profile = euler.get("profile") if isinstance(euler, dict) else None
     if isinstance(profile, dict) and profile.get("log10_error") is not None and profile.get("state") in current:
-        columns = _profile_columns(profile["log10_error"], profile["state"], current, wanted, out.get("axes") or {})
+        states = [profile["state"], *(profile.get("over") or [])]
+        columns = _profile_columns(profile["log10_error"], states, current, wanted, out.get("axes") or {})
         out["diagnostics"] = {**diagnostics, "euler_errors": {**euler, "profile": {**profile, "log10_error": columns}}}
 
 
@@ -136,10 +137,12 @@ def _moved(nested: Any, perm: list[int], rank: int, *, trailing: bool = False) -
     return np.transpose(array, [*perm, *range(rank, array.ndim)]).tolist()
 
 
-def _profile_columns(rows: Any, state: str, current: list[str], wanted: list[str], axes: dict[str, Any]) -> Any:
-    """The Euler profile's shock columns (flat, row-major over the shocks) reordered as ``wanted`` lists them."""
-    shocks = [name for name in current if name != state]
-    ordered = [name for name in wanted if name != state]
+def _profile_columns(rows: Any, states: list[str], current: list[str], wanted: list[str],
+                     axes: dict[str, Any]) -> Any:
+    """The Euler profile's shock columns (flat, row-major over the shocks) reordered as ``wanted`` lists them;
+    ``states`` are the profile's state and the states it takes the worst over (not columns)."""
+    shocks = [name for name in current if name not in states]
+    ordered = [name for name in wanted if name not in states]
     if shocks == ordered:
         return rows
     array = _array(rows)

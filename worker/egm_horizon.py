@@ -40,7 +40,7 @@ import numpy as np
 from worker import _slopes
 from worker.continuous.egm import KINK_GENERATIONS, _inverse_marginal, _kinks, _state_for
 from worker.errors import InvalidDocument
-from worker.euler import _environment, _slope
+from worker.euler_points import environment, slope_at
 from worker.expressions import parse
 from worker.expressions.evaluator import evaluate_tree
 from worker.solvers.backward import PeriodPlan, period_step
@@ -148,12 +148,12 @@ class EgmStepper:
                 marginal = np.column_stack([np.interp(points, grid, self.terminal_slope[:, z]) for z in range(n_z)])
             else:
                 tomorrow = self._tomorrow(t + 1, points)
-                env_next = _environment(self._period_data(t + 1), self.found, points[:, None], shocks, tomorrow)
-                marginal = _slope(self.found.state_slope, env_next, shape)
+                env_next = environment(self._period_data(t + 1), self.found, points[:, None], shocks, tomorrow)
+                marginal = slope_at(self.found.state_slope, env_next, shape)
             expected = marginal @ today.transition.T
             chosen = np.broadcast_to(points[:, None], shape)
-            env_today = _environment(today, self.found, points[:, None], shocks, chosen)
-            target = -float(self.plan.discounts[t]) * expected / _slope(self.found.define_slope, env_today, shape)
+            env_today = environment(today, self.found, points[:, None], shocks, chosen)
+            target = -float(self.plan.discounts[t]) * expected / slope_at(self.found.define_slope, env_today, shape)
             interior = np.isfinite(target) & (target > 0)
             c_star = np.full(shape, np.nan)
             if interior.any():

@@ -9,6 +9,10 @@ equation.  Today's and tomorrow's policies between grid points are
 * for a continuous choice, each period's own search (:meth:`policy_rule` of the compiled problem at
   the value it was chosen against, ``V_{t+1}``), run with that period's params and discount: the rule
   enters its period before every search, since today's and tomorrow's are called in turn.
+
+With several states the rules read points (m, states) and the test points are
+:mod:`worker.euler_states`'s (the grid policy multilinear over the product grid, or the search at the
+point).
 """
 
 from __future__ import annotations
@@ -32,23 +36,49 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     the first period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
     """
     from worker.euler import EulerSetup, euler_errors, grid_policy, setup
+    from worker.euler_result import value_refusal
+    from worker.euler_setup import needs_value
+    from worker.euler_states import value_reader
     from worker.feasibility import period_params
 
     data = getattr(problem, "model_data", None)
     if data is None:
         return {}, "Euler-equation errors were not measured: they apply to grid models"
-    if getattr(data, "draws", None) is not None:
-        return {}, "Euler-equation errors were not measured: the model has draws after the choice"
     continuous = getattr(problem, "choose_at", None) is not None
-    found = setup(data)
+    mixed = bool(getattr(problem, "others", ()))
+    if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
+        from worker.continuous.mixed_euler import mixed_errors, mixed_setup, searcher
+
+        found = mixed_setup(problem, data)
+    else:
+        found = setup(data)
     if not isinstance(found, EulerSetup):
         return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
                              "value of a state (next_of)")
     first, periods = outcome.first_period, plan.periods
     if periods - first < 2:
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
+    moving = needs_value(found)
+    if moving and value_refusal(doc, problem):
+        return {}, value_refusal(doc, problem)
+
+    def after(t: int) -> np.ndarray:
+        """``V_{t+1}``, the value period ``t`` was chosen against."""
+        return np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
+
+    def values_at(t: int) -> Any:
+        """Period ``t``'s value parts (:data:`worker.euler_points.ValueParts`) when the draws need them."""
+        if not moving:
+            return None
+        return (value_reader(data, after(t)), value_reader(data, after(t + 1)), float(plan.discounts[t + 1]))
     choice = data.choices[0]
     grid = data.state_grids[0]
+    several = len(data.states) > 1
+    measure = euler_errors
+    if several:  # rules over points (m, states), and the test points at every grid point of the other states
+        from worker.euler_states import grid_rule, search_rule, states_errors
+
+        measure = states_errors
 
     def model_and_rule(t: int) -> tuple[Any, Callable[[np.ndarray], np.ndarray]]:
         period_data = dataclasses.replace(data, param_values=period_params(doc.model, t))
@@ -57,17 +87,37 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         if own is not None:  # the endogenous grid method's own rule (linear along its endogenous grid)
             return period_data, own
         if continuous:
-            after = plan.terminal if t == periods - 1 else outcome.values[t + 1 - first]
-            return period_data, _in_period(plan, t, problem.policy_rule(np.asarray(after, dtype=np.float64), policy))
-        values = problem.choice_values(policy)[choice]
-        return period_data, grid_policy(grid, np.asarray(values, dtype=np.float64).reshape(grid.size, data.n_shocks))
+            rule = search_rule(problem, after(t), policy) if several else problem.policy_rule(after(t), policy)
+            return period_data, _in_period(plan, t, rule)
+        values = np.asarray(problem.choice_values(policy)[choice], dtype=np.float64).reshape(-1, data.n_shocks)
+        if several:
+            return period_data, grid_rule(data, values, extend=data.states.index(found.state))
+        return period_data, grid_policy(grid, values)
+
+    searches: dict[int, Any] = {}
+
+    def model_and_search(t: int) -> tuple[Any, Any]:
+        """Period ``t``'s params and its search against ``V_{t+1}`` (the combination chosen beside)."""
+        if t not in searches:
+            searches[t] = (dataclasses.replace(data, param_values=period_params(doc.model, t)),
+                           searcher(problem, after(t), enter=lambda t=t: plan.enter(t)))
+        return searches[t]
+
+    def measured(t: int) -> dict[str, Any]:
+        if mixed:
+            today, search = model_and_search(t)
+            searches.pop(t - 1, None)
+            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
+                                values_at(t))[0]
+        today, rule = model_and_rule(t)
+        return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
+                       values=values_at(t))
 
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}
     worst, total, profile = None, 0.0, None
     for t in range(first, periods - 1):
-        today, rule = model_and_rule(t)
-        errors = euler_errors(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1))
+        errors = measured(t)
         profile = profile or errors["profile"]
         by_period["period"].append(t)
         by_period["max_log10"].append(errors["max_log10"])
@@ -88,7 +138,10 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     }
     note = (f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal "
             "value, with no Euler equation)"
-            + ("; the policy between grid points is the endogenous grid method's own (linear along its grid)"
+            + (f"; the continuous choice at the chosen combination of the others: {pooled['constrained']:,} test "
+               "points skipped (where a limit may bind, or the best combination differs today or at a state "
+               "tomorrow, where the value function has a kink)" if mixed else
+               "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
                "; the policy between grid points is each period's own search" if continuous else ""))
     return {"euler_errors": result}, note

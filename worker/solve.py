@@ -25,6 +25,7 @@ from worker.axis_order import apply_axis_order, model_axis_order, to_internal
 from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
+from worker.euler_result import euler_diagnostics
 from worker.memory import memory_limit
 from worker.problem import CompiledProblem
 from worker.report import shock_chains, simulate_report, stationary_report
@@ -376,7 +377,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
     if report.simulation is not None:
         simulation = simulate_report(problem, outcome.policy, report.simulation)
         warnings += simulation.pop("warnings", [])
-    euler = {} if taste else _euler_errors(doc, problem, outcome, stationary, problem_diagnostics)
+    euler = {} if taste else euler_diagnostics(doc, problem, outcome, stationary, problem_diagnostics)
     if taste and doc.report.euler_errors:
         problem_diagnostics.setdefault("notes", []).append(
             "Euler-equation errors were not measured: with taste shocks the choice is random, not a policy rule"
@@ -437,50 +438,6 @@ def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> 
         "probabilities_at": "the choice-specific values at the returned value",
     }
     return {"taste_shocks": notes}, {"choice_probabilities": probabilities.reshape(shape).tolist()}
-
-
-def _euler_errors(
-    doc: Any, problem: CompiledProblem, outcome: SolveOutcome, stationary: dict[str, Any] | None,
-    problem_diagnostics: dict[str, Any],
-) -> dict[str, Any]:
-    """``{"euler_errors": ...}`` when ``report.euler_errors`` asks and :mod:`worker.euler` applies; else ``{}``
-    (with a note why when it was asked for)."""
-    if not doc.report.euler_errors:
-        return {}
-    from worker.euler import euler_report
-    from worker.gridproblem import GridProblem
-
-    continuous = getattr(problem, "choose_at", None) is not None
-    if not isinstance(problem, GridProblem) and not continuous:
-        problem_diagnostics.setdefault("notes", []).append(
-            "Euler-equation errors were not measured: they apply to grid models"
-        )
-        return {}
-    data = problem.model_data
-    if getattr(data, "draws", None) is not None:
-        problem_diagnostics.setdefault("notes", []).append(
-            "Euler-equation errors were not measured: the model has draws after the choice"
-        )
-        return {}
-    started = time.perf_counter()
-    choice = data.choices[0]
-    distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
-    rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
-    if getattr(problem, "others", ()):  # a continuous choice beside others: at the chosen combination
-        from worker.continuous.mixed_euler import mixed_euler_report
-
-        errors, note = mixed_euler_report(problem, outcome.value, doc.discount)
-    else:
-        errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
-                                    distribution, rule=rule)
-    if errors is None and note is None:
-        note = ("Euler-equation errors were not measured: they need a choice that sets tomorrow's value of a state "
-                "(next_of)")
-    if note is not None:
-        problem_diagnostics.setdefault("notes", []).append(note)
-    if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):
-        problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
-    return {} if errors is None else {"euler_errors": _plain(errors)}
 
 
 def _plain(obj: Any) -> Any:

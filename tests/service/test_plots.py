@@ -169,6 +169,22 @@ def test_plots_of_a_solved_example_result() -> None:
     assert "series-distance" in svg_ids(plots.convergence_plot(result["log"]))
 
 
+def test_euler_errors_of_two_states_are_drawn_along_the_chosen_one() -> None:
+    # Invented: growth with a productivity level moving by its own law; the profile runs along capital, each
+    # entry the worst over the level's grid points, and the plot says so.
+    from tests._documents import grid_document, log_growth
+    from worker import solve
+
+    model = log_growth(points=12, define={"c": "z * level * k**alpha - k_next"}, next={"level": "level**0.5"})
+    model["states"] = {"level": {"min": 0.9, "max": 1.1, "points": 3}, **model["states"]}
+    result = solve({**grid_document(model), "report": {"euler_errors": True}})
+    profile = result["diagnostics"]["euler_errors"]["profile"]
+    assert profile["state"] == "k" and profile["over"] == ["level"]
+    svg = plots.euler_plot(result)
+    assert "mean" in svg_ids(svg)
+    assert b"the worst over level" in svg
+
+
 @pytest.fixture
 def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[httpx.Client, FastAPI]]:
     monkeypatch.setenv("FIXQ_AUTH", "off")

@@ -367,3 +367,38 @@ def test_the_stationary_distribution_is_youngs(household: dict) -> None:
     np.testing.assert_allclose(found, expected, rtol=0, atol=1e-10)
     work = np.array(household["policy"]["work"]).reshape(-1)
     assert household["stationary"]["means"]["work"] == pytest.approx(expected @ work, abs=1e-9)
+
+
+def test_euler_errors_through_a_finite_horizon_are_the_independent_ones(reference: tuple) -> None:
+    # Period t's Judd (1992) errors: today's choice from the exact Bellman step against V_{t+1}, tomorrow's
+    # against V_{t+2} (the terminal value for the last period), skipped as in the infinite horizon's test
+    # above; all from the exact solver here, period by period.
+    grid = reference[0]
+    document = _document({"concave": True}, euler_errors=True)
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    result = solve(document)
+    values = [np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)]  # V_4, then V_3, ..., V_0
+    for _ in range(4):
+        values.insert(0, _exact_bellman(values[0], grid)[0])
+    parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
+    k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1, 2]
+    points = 0
+    for t in range(3):
+        _, save, work = _exact_bellman(values[t + 1], grid, k)
+        c = _cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
+        _, save_next, work_next = _exact_bellman(values[t + 2], grid, save.reshape(-1))
+        c_next = _cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :],
+                                         work_next] - save_next
+        expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
+        error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
+        step = np.interp(save, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
+        same = (work_next.reshape(k.size, INCOME.size, INCOME.size) == work[:, :, None]).all(axis=2)
+        measured = same & (save - step >= grid[0]) & (save + step <= grid[-1])
+        points += int(measured.sum())
+        assert errors["by_period"]["max_log10"][t] == pytest.approx(error[measured].max(), abs=1e-3)
+        assert errors["by_period"]["mean_log10"][t] == pytest.approx(error[measured].mean(), abs=0.01)
+    assert errors["points"] == pytest.approx(points, abs=6)
+    assert errors["points"] + errors["constrained"] + errors["undefined"] == 3 * k.size * INCOME.size
+    assert any("chosen combination" in note for note in result["diagnostics"]["notes"])

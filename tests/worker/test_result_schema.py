@@ -139,6 +139,13 @@ def _economy_with_work() -> dict[str, Any]:
     return document
 
 
+def _growth_two_states() -> dict[str, Any]:
+    """Invented: growth with a productivity level that drifts by its own law beside capital (two states)."""
+    model = log_growth(points=12, define={"c": "z * level * k**alpha - k_next"}, next={"level": "level**0.5"})
+    model["states"] = {"level": {"min": 0.9, "max": 1.1, "points": 3}, **model["states"]}
+    return {**grid_document(model), "report": {"stationary": True, "euler_errors": True}}
+
+
 CASES: dict[str, Callable[[], dict[str, Any]]] = {
     **{f"example:{name}": (lambda name=name: load_example(name)) for name in example_names()},
     "grid horizon, hints, cohort, simulation, euler errors": lambda: _glassblower(20),
@@ -161,6 +168,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
     ),
     "continuous choice beside a discrete one": _economy_with_work,
     "static choice": _static_choice,
+    "euler errors with two states": _growth_two_states,
     "law of motion leaving its grid, non-finite rewards": _leaving_grid,
     "max_iterations": lambda: machine_shop(solver={"method": "howard", "max_iterations": 1}),
 }
@@ -235,6 +243,7 @@ def test_the_cases_reach_the_shapes_they_are_for(results: dict[str, dict[str, An
     search = results["search"]["search"]
     assert search["status"] == "converged" and search["sign_change"] is not None
     assert results["static choice"]["diagnostics"]["maximised_within_period"] == ["hours"]
+    assert results["euler errors with two states"]["diagnostics"]["euler_errors"]["profile"]["over"] == ["level"]
     leaving = results["law of motion leaving its grid, non-finite rewards"]["diagnostics"]
     assert leaving["clamped_next"]["policy"]["count"] > 0 and leaving["nonfinite_rewards"]["count"] > 0
     assert results["max_iterations"]["status"] == "max_iterations"

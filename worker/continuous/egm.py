@@ -57,7 +57,8 @@ from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
 from worker.errors import InvalidDocument
-from worker.euler import EulerSetup, _environment, _invert, _marginal, _slope, _slope_trees, _subset, setup
+from worker.euler_points import environment, invert, marginal_at, slope_at, subset
+from worker.euler_setup import EulerSetup, setup, slope_trees
 from worker.expressions import names_in
 from worker.feasibility import ModelData
 
@@ -93,7 +94,7 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
         return None, None, reason.replace("Euler-equation errors not computed: ", "")
     state = found.state
     defines = {name: expr.tree for name, expr in data.source.defines}
-    moving = set(_slope_trees(defines, state))
+    moving = set(slope_trees(defines, state))
     trees = [found.marginal, found.define_slope[0], *found.define_slope[1].values(),
              *(tree for pair in found.after.values() for tree in pair)]
     if any(names_in(tree) & (moving | {state}) - {found.define} for tree in trees):
@@ -101,7 +102,7 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
             f"the marginal reward of `{found.define}` or its slope in the choice depends on today's state "
             f"`{state}`, so tomorrow's choice alone does not fix `{found.define}`")
     try:
-        in_state = _slope_trees(defines, state)
+        in_state = slope_trees(defines, state)
         c_slope = (_slopes.derivative(defines[found.define], state, in_state), in_state)
     except _slopes.NotSmooth as error:
         return None, None, f"`{found.define}` is not differentiable in the state ({error})"
@@ -180,8 +181,8 @@ def _power(data: ModelData, found: EulerSetup, grid: np.ndarray) -> tuple[float,
     found_laws = set()
     shocks = data.shock_table[None, :, :]
     for z in range(data.n_shocks):
-        env = _environment(data, found, grid[:1, None], shocks[:, z:z + 1, :], grid[:1, None])
-        law = power_law(lambda c, env=env: _marginal(found, {**env}, c[:, None], slope=False)[:, 0],
+        env = environment(data, found, grid[:1, None], shocks[:, z:z + 1, :], grid[:1, None])
+        law = power_law(lambda c, env=env: marginal_at(found, {**env}, c[:, None], slope=False)[:, 0],
                         max(float(np.abs(env[found.define]).max()), 1.0))
         if law is None:
             return None
@@ -194,10 +195,10 @@ def _numpy_round(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], 
     """One round in numpy (the kernel's twin, with bisection where Newton steps do not settle): ``(c*, k*)``."""
     shocks = data.shock_table[None, :, :]
     shape = (points.size, data.n_shocks)
-    env_next = _environment(data, found, points[:, None], shocks, tomorrow)
-    expected = _slope(found.state_slope, env_next, shape) @ data.transition.T
-    env_today = _environment(data, found, points[:, None], shocks, np.broadcast_to(points[:, None], shape))
-    target = -beta * expected / _slope(found.define_slope, env_today, shape)
+    env_next = environment(data, found, points[:, None], shocks, tomorrow)
+    expected = slope_at(found.state_slope, env_next, shape) @ data.transition.T
+    env_today = environment(data, found, points[:, None], shocks, np.broadcast_to(points[:, None], shape))
+    target = -beta * expected / slope_at(found.define_slope, env_today, shape)
     start = np.where(np.isfinite(c_star), c_star, np.broadcast_to(env_today[found.define], shape))
     c_star = _inverse_marginal(found, env_today, start, target)
     return c_star, _state_for(data, found, c_slope, points, shocks, c_star)
@@ -260,13 +261,13 @@ def _rule_at(grid: np.ndarray, pairs: tuple[np.ndarray, np.ndarray], k: np.ndarr
 
 def _inverse_marginal(found: EulerSetup, env: dict[str, Any], guess: np.ndarray, target: np.ndarray) -> np.ndarray:
     """The ``c`` with ``∂r/∂c(c) = target``: Newton steps on the logarithms (exact in one step for a marginal
-    reward that is a power of ``c``, as CRRA and log rewards have), :func:`worker.euler._invert` where the
+    reward that is a power of ``c``, as CRRA and log rewards have), :func:`worker.euler_points.invert` where the
     marginal reward or the target is not positive or a step does not settle."""
     c = np.where(np.isfinite(guess) & (guess > 0), guess, 1.0)
     settled = np.zeros(c.shape, dtype=bool)
     for _ in range(_NEWTON_STEPS):
-        marginal = _marginal(found, env, c, slope=False)
-        elasticity = c * _marginal(found, env, c, slope=True) / marginal
+        marginal = marginal_at(found, env, c, slope=False)
+        elasticity = c * marginal_at(found, env, c, slope=True) / marginal
         step = (np.log(marginal) - np.log(target)) / elasticity
         usable = np.isfinite(step)
         c = np.where(usable, c * np.exp(-np.clip(step, -50.0, 50.0)), c)
@@ -274,7 +275,7 @@ def _inverse_marginal(found: EulerSetup, env: dict[str, Any], guess: np.ndarray,
         if settled.all():
             return c
     rest = ~settled
-    c[rest] = _invert(found, _subset(env, rest), c[rest], target[rest]) if rest.any() else c[rest]
+    c[rest] = invert(found, subset(env, rest), c[rest], target[rest]) if rest.any() else c[rest]
     return c
 
 
@@ -285,9 +286,9 @@ def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], po
     x = np.broadcast_to(points[:, None], c_star.shape)
     scale = float(np.abs(points).max())
     for _ in range(_NEWTON_STEPS):
-        env = _environment(data, found, k, shocks, x)
+        env = environment(data, found, k, shocks, x)
         gap = np.broadcast_to(env[found.define], c_star.shape) - c_star
-        step = gap / _slope(c_slope, env, c_star.shape)
+        step = gap / slope_at(c_slope, env, c_star.shape)
         k = k - step
         if np.all(np.abs(step) <= 4 * np.finfo(float).eps * (np.abs(k) + scale)):
             break

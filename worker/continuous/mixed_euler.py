@@ -1,13 +1,15 @@
 """Euler-equation errors of a continuous choice beside other (discrete) choices.
 
 For each combination ``d`` of the other choices' values, the model with them fixed at ``d`` (as params)
-has one choice, and :mod:`worker.euler` measures its Euler equation (Judd 1992) as for any one-choice
-model: at the test points between grid points where the search chose ``d`` today *and* at every
-tomorrow's state it leads to (every shock point tomorrow) — there the envelope condition holds with ``d``
-on both days.  A test point where the best combination differs today or tomorrow is skipped (counted as
-``constrained``, and the note gives their number): across a switch the value function has a kink, and
-the first-order condition of the continuous choice alone need not hold there.  The choices at test points
-are the fitted problem's own search there, as for a continuous choice alone.
+has one choice, and :mod:`worker.euler` (several states: :mod:`worker.euler_states`) measures its Euler
+equation (Judd 1992) as for any one-choice model: at the test points where the search chose ``d`` today
+*and* at every tomorrow's state it leads to (every shock point tomorrow; the other states by their laws,
+every draw after the choice) — there the envelope condition holds with ``d`` on both days.  A finite
+horizon measures each period so (:mod:`worker.horizon_euler`), today's search against ``V_{t+1}`` and
+tomorrow's against ``V_{t+2}``.  A test point where the best combination differs today or tomorrow is
+skipped (counted as ``constrained``, and the note gives their number): across a switch the value
+function has a kink, and the first-order condition of the continuous choice alone need not hold there.
+The choices at test points are the fitted problem's own search there, as for a continuous choice alone.
 
 The pooled errors: ``max_log10`` the largest over the combinations, ``mean_log10`` the mean over every
 point measured, ``profile`` the worst at each test point; ``weighted_mean_log10`` is not given.
@@ -16,15 +18,17 @@ point measured, ``profile`` the worst at each test point; ``weighted_mean_log10`
 from __future__ import annotations
 
 import dataclasses
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
 from worker import _codegen
 from worker.euler import EulerSetup, between_points, euler_errors, setup
+from worker.euler_points import ValueParts, combinations, environment, next_points
+from worker.euler_states import states_errors, test_points
 from worker.feasibility import ModelData
 
-__all__ = ["mixed_euler_report"]
+__all__ = ["mixed_errors", "mixed_euler_report", "mixed_setup", "searcher"]
 
 
 def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) -> ModelData:
@@ -47,40 +51,98 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
     )
 
 
-def mixed_euler_report(problem: Any, v: np.ndarray, discount: float) -> tuple[dict[str, Any] | None, str]:
+def mixed_euler_report(problem: Any, v: np.ndarray, discount: float,
+                       values: ValueParts | None = None) -> tuple[dict[str, Any] | None, str]:
     """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
     data = problem.model_data
+    found = mixed_setup(problem, data)
+    if not isinstance(found, EulerSetup):
+        return None, found
+    search = searcher(problem, v)
+    return mixed_errors(problem, data, discount, search, (data, search), values)
+
+
+def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
+    """The Euler setup of the model with the other choices fixed, or a note why there is none."""
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):
-        return None, found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
-                               "tomorrow's value of the state (next_of)")
-    grid = data.state_grids[0]
-    n_z = data.n_shocks
+        return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
+                         "tomorrow's value of a state (next_of)")
+    return found
+
+
+Search = Callable[[np.ndarray], tuple[np.ndarray, np.ndarray]]
+"""``search(points) -> (choice, combination)``: at points (m, states) — or (m,) with one state — every shock
+point, both (m, shock points)."""
+
+
+def searcher(problem: Any, v: np.ndarray, enter: Callable[[], None] | None = None) -> Search:
+    """The fitted problem's search against the value ``v`` (remembered by the points asked for); ``enter``
+    puts the problem in its period first (a finite horizon's)."""
+    data = problem.model_data
+    n_z, d = data.n_shocks, len(data.states)
     remembered: dict[bytes, tuple[np.ndarray, np.ndarray]] = {}
 
-    def search(k: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """The continuous choice and the combination at states ``k`` (m,), every shock point: (m, n_z) each."""
-        key = k.tobytes()
+    def search(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        points = np.ascontiguousarray(points, dtype=np.float64).reshape(-1, d)
+        key = points.tobytes()
         if key not in remembered:
-            states = np.repeat(k, n_z)[:, None]
-            rows = np.tile(np.arange(n_z, dtype=np.int64), k.size)
-            _, chosen = problem.choose_at(v, states, rows, None)
-            remembered[key] = (chosen[:, 0].reshape(k.size, n_z), chosen[:, 1].astype(np.int64).reshape(k.size, n_z))
+            if enter is not None:
+                enter()
+            m = points.shape[0]
+            rows = np.tile(np.arange(n_z, dtype=np.int64), m)
+            _, chosen = problem.choose_at(v, np.repeat(points, n_z, axis=0), rows, None)
+            remembered[key] = (chosen[:, 0].reshape(m, n_z), chosen[:, 1].astype(np.int64).reshape(m, n_z))
         return remembered[key]
 
+    return search
+
+
+def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
+                 tomorrow: tuple[ModelData, Search], values: ValueParts | None = None) -> tuple[dict[str, Any], str]:
+    """The pooled errors over the combinations of the other choices, and the note; ``data`` and ``search`` are
+    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon); ``values`` as
+    :func:`worker.euler_points.errors_at` takes them."""
+    n_z = data.n_shocks
+    several = len(data.states) > 1
+    data_next, search_next = tomorrow
     parts = []
-    for d, values in enumerate(problem.combos):
-        model = fixed_model(data, problem.others, values)
+    for d, combo in enumerate(problem.combos):
+        model, model_next = fixed_model(data, problem.others, combo), fixed_model(data_next, problem.others, combo)
+        found = setup(model)
+        today = _at_combination(model, found, search, search_next, d)
+        if several:
+            parts.append(states_errors(model, found, discount, today,
+                                       tomorrow=(model_next, lambda points: search_next(points)[0]), values=values))
+        else:
+            parts.append(euler_errors(model, found, discount, lambda k, today=today: today(k[:, None]),
+                                      tomorrow=(model_next, lambda k: search_next(k)[0]), values=values))
+    total = (test_points(data, found)[0].shape[0] if several else between_points(data.state_grids[0]).size) * n_z
+    return _pooled(parts, total, parts[0]["define"])
 
-        def today(k: np.ndarray, d: int = d) -> np.ndarray:
-            x, combo = search(np.asarray(k, dtype=np.float64).reshape(-1))
-            _, after = search(x.reshape(-1))
-            keep = (combo == d) & (after.reshape(x.shape[0], n_z, n_z) == d).all(axis=2)
-            return np.where(keep, x, grid[0])  # a choice at the grid's end: skipped as constrained
 
-        parts.append(euler_errors(model, setup(model), discount, today,
-                                  tomorrow=(model, lambda k: search(np.asarray(k, dtype=np.float64).reshape(-1))[0])))
-    return _pooled(parts, between_points(grid).size * n_z, found.define)
+def _at_combination(model: ModelData, found: EulerSetup, search: Search, search_next: Search,
+                    d: int) -> Callable[[np.ndarray], np.ndarray]:
+    """The rule of combination ``d`` at points (m, states): the searched choice where ``d`` is chosen today and
+    at every state it leads to tomorrow (every draw after the choice, every shock point), else the grid's
+    lower end, which the measurement skips as constrained."""
+    position = model.states.index(found.state)
+    low = model.state_grids[position][0]
+    shocks = model.shock_table[None, :, :]
+    n_z = model.n_shocks
+
+    def today(points: np.ndarray) -> np.ndarray:
+        x, combo = search(points)
+        keep = combo == d
+        k = points[:, position:position + 1]
+        others = {name: points[:, t:t + 1] for t, name in enumerate(model.states) if t != position}
+        for drawn in combinations(model):
+            env = environment(model, found, k, shocks, x, {**others, **drawn})
+            _, after = search_next(next_points(model, found, env, x))
+            keep &= (after.reshape(x.shape[0], n_z, n_z) == d).all(axis=2)
+        return np.where(keep, x, low)
+
+    return today
 
 
 def _pooled(parts: list[dict[str, Any]], total: int, define: str) -> tuple[dict[str, Any] | None, str]:

@@ -293,7 +293,8 @@ class ContinuousProblem:
 
     def policy_rule(self, v: np.ndarray, policy: np.ndarray) -> Any:
         """``rule(k) -> x``: the choice at states ``k`` (m,) of the one state, at every shock point, (m, shocks);
-        None with several states (the Euler errors are measured for one).
+        None with several states or other choices (:func:`worker.euler_states.search_rule` and
+        :mod:`worker.continuous.mixed_euler` search at points there).
 
         The fitted problem's own search at those points, with the final ``v``
         (seeded with the grid policy interpolated linearly): what the solved

@@ -308,9 +308,9 @@ class ReportSpec(Part):
         default=False,
         description=(
             "Also measure the accuracy of the policy by Euler-equation errors (Judd 1992) at test points between "
-            "the grid points, for grid models with one state variable chosen through next_of and a differentiable "
-            "reward: diagnostics.euler_errors. On a grid-restricted choice it shows how coarse the grid is; it "
-            "costs about as much as a hinted solve."
+            "the grid points, for grid models with a state variable chosen through next_of (any other states "
+            "moving by laws free of it and of the choice) and a differentiable reward: diagnostics.euler_errors. On "
+            "a grid-restricted choice it shows how coarse the grid is; it costs about as much as a hinted solve."
         ),
     )
 

@@ -221,13 +221,17 @@ class TasteShockInfo(Reported):
 class EulerProfile(Reported):
     """The Euler-equation errors across the state, for a plot."""
 
-    state: str = Field(description="The state variable.")
+    state: str = Field(description="The state variable the choice sets (the profile runs along it).")
     at: list[float] = Field(description="Values of the state, increasing.")
     log10_error: NestedOptionalNumbers = Field(
         description="log10 errors, [len(at)][shock points] (shock points in C order); null where nothing was measured."
     )
     pooled: int = Field(
         description="Test points per entry: 1, or with many test points the worst of that many consecutive ones."
+    )
+    over: list[str] = absent_unless(
+        description="Several states only: the other state variables; each entry is the worst error over their grid "
+        "points (the test points lie at them)."
     )
 
 

@@ -1,0 +1,99 @@
+"""``diagnostics.euler_errors`` of an infinite-horizon solve: which measurement applies, and its note.
+
+:func:`euler_diagnostics` picks the measurement for the solved problem — one state (:mod:`worker.euler`),
+several states (:mod:`worker.euler_states`), a continuous choice beside discrete ones
+(:mod:`worker.continuous.mixed_euler`) — with the policy between grid points read as the solve reads it,
+and appends a note to the diagnostics where the errors were not measured.  (A finite horizon's are
+:mod:`worker.horizon_euler`'s.)
+"""
+
+from __future__ import annotations
+
+import time
+from typing import Any
+
+import numpy as np
+
+__all__ = ["euler_diagnostics", "value_refusal"]
+
+
+def euler_diagnostics(
+    doc: Any, problem: Any, outcome: Any, stationary: dict[str, Any] | None, problem_diagnostics: dict[str, Any],
+) -> dict[str, Any]:
+    """``{"euler_errors": ...}`` when ``report.euler_errors`` asks and the model has the form; else ``{}``
+    (with a note why when it was asked for).  ``outcome`` is the :class:`~worker.solvers.SolveOutcome`."""
+    if not doc.report.euler_errors:
+        return {}
+    from worker.euler import euler_report
+    from worker.euler_setup import needs_value
+    from worker.gridproblem import GridProblem
+
+    def add_note(text: str) -> None:
+        problem_diagnostics.setdefault("notes", []).append(text)
+
+    continuous = getattr(problem, "choose_at", None) is not None
+    if not isinstance(problem, GridProblem) and not continuous:
+        add_note("Euler-equation errors were not measured: they apply to grid models")
+        return {}
+    data = problem.model_data
+    started = time.perf_counter()
+    choice = data.choices[0]
+    distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
+    mixed = bool(getattr(problem, "others", ()))
+    found = _setup(problem, data, mixed)
+    values = None
+    if not isinstance(found, str) and found is not None and needs_value(found):
+        refusal = value_refusal(doc, problem)
+        if refusal:
+            add_note(refusal)
+            return {}
+        from worker.euler_states import value_reader
+
+        read = value_reader(data, outcome.value)
+        values = (read, read, float(doc.discount))
+    if mixed:  # a continuous choice beside others: at the chosen combination
+        from worker.continuous.mixed_euler import mixed_euler_report
+
+        errors, note = mixed_euler_report(problem, outcome.value, doc.discount, values)
+    elif len(data.states) > 1:
+        from worker.euler_states import search_rule, states_report
+
+        errors, note = None, found if isinstance(found, str) else None
+        if found is not None and not isinstance(found, str):
+            rule = search_rule(problem, outcome.value, outcome.policy) if continuous else None
+            errors = states_report(data, found, doc.discount, problem.choice_values(outcome.policy)[choice],
+                                   distribution, rule=rule, values=values)
+    else:
+        rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
+        errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
+                                    distribution, rule=rule, values=values)
+    if errors is None and note is None:
+        note = ("Euler-equation errors were not measured: they need a choice that sets tomorrow's value of a state "
+                "(next_of)")
+    if note is not None:
+        add_note(note)
+    if errors is not None and isinstance(problem_diagnostics.get("timings"), dict):
+        problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
+    return {} if errors is None else {"euler_errors": errors}
+
+
+def _setup(problem: Any, data: Any, mixed: bool) -> Any:
+    """The model's :class:`~worker.euler_setup.EulerSetup`, a note, or None (see :func:`worker.euler.setup`)."""
+    if mixed:
+        from worker.continuous.mixed_euler import mixed_setup
+
+        return mixed_setup(problem, data)
+    from worker.euler_setup import setup
+
+    return setup(data)
+
+
+def value_refusal(doc: Any, problem: Any) -> str:
+    """Why the value cannot be read as the solve reads it, for draws whose probabilities move with the choice or
+    the chosen state ("" when it can: a choice restricted to the grid, or ``linear`` interpolation)."""
+    if getattr(problem, "choose_at", None) is None or getattr(doc.model, "interpolation", "linear") == "linear":
+        return ""
+    return ("Euler-equation errors were not measured: the probabilities of a draw after the choice move with the "
+            "choice or the chosen state, so the first-order condition carries the value of each draw, and with "
+            f"{doc.model.interpolation} interpolation that value is not read here as the solve reads it (it is "
+            "with linear)")
