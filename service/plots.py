@@ -13,9 +13,8 @@ touches Redis or HTTP, so the router and the tests share it.
 * ``euler_errors`` — the profile of ``diagnostics.euler_errors``: log10 of
   the Euler-equation error against the state, a line per shock point (gaps
   where a test point was constrained or undefined), the worst and the mean
-  written on the plot and the mean drawn as a dotted line.  With several
-  states the profile runs along the chosen one, each entry the worst over the
-  others' grid points (``profile.over``), and the plot says so.
+  written on the plot and the mean drawn as a dotted line (several states:
+  along the chosen one, the worst over the others, ``profile.over``).
 
 A request for a picture that cannot be drawn (an unknown choice, a shock
 index out of range) raises :class:`service.problems.Problem` (400) naming the
@@ -83,11 +82,8 @@ _RENDER_LOCK = threading.Lock()
 
 @dataclass(frozen=True)
 class AxisLayout:
-    """Which result axes are state variables and which are shocks.
-
-    ``states`` and ``shocks`` are axis names in array-axis order; ``tabular``
-    is true for a finite Markov decision problem (one axis of state labels).
-    """
+    """Which result axes are state variables and which are shocks: ``states`` and ``shocks`` are axis names
+    in array-axis order; ``tabular`` is true for a finite Markov decision problem (one axis of state labels)."""
 
     states: tuple[str, ...]
     shocks: tuple[str, ...]
@@ -319,8 +315,7 @@ def euler_plot(
     axes: dict[str, list[Any]] = result.get("axes") or {}
     if profile.get("over"):  # several states: the profile names them, so its columns are the other axes' points
         known = {profile["state"], *profile["over"], "period"}
-        layout = AxisLayout(states=tuple(n for n in axes if n in known),
-                            shocks=tuple(n for n in axes if n not in known))
+        layout = AxisLayout(tuple(n for n in axes if n in known), tuple(n for n in axes if n not in known))
     x = np.asarray(profile["at"], dtype=float)
     by_shock = np.array(profile["log10_error"], dtype=float).reshape(x.size, -1)
     labels = shock_labels(axes, layout.shocks)
@@ -338,8 +333,7 @@ def euler_plot(
     counts = [f"{errors.get('points', 0):,} test points"]
     counts += [f"{errors[key]:,} {key}" for key in ("constrained", "undefined") if errors.get(key)]
     pooled = f"; the worst of every {profile['pooled']} shown" if profile.get("pooled", 1) > 1 else ""
-    if profile.get("over"):  # several states: each entry is the worst over the other states' grid points
-        pooled += f"; the worst over {', '.join(profile['over'])}"
+    pooled += f"; the worst over {', '.join(profile['over'])}" if profile.get("over") else ""  # several states
     ax.set_title("\n".join([*words, ", ".join(counts) + pooled]), fontsize=8.5, color=INK, loc="left", gid="summary")
     ax.set_xlabel(profile.get("state") or layout.states[0])
     ax.set_ylabel(f"log10 Euler-equation error in {errors.get('define', 'c')}")

@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from tests._documents import GROWTH, array_tabular, grid_document, random_replacement
+from tests._documents import GROWTH, array_tabular, grid_document, log_growth, random_replacement
 from tests._draw_models import van
 from worker.arrays import encode_array
 
@@ -164,6 +164,20 @@ def continuous_with_draws(points: int = 400) -> dict[str, Any]:
         "solver": {"method": "howard", "tolerance": 1e-8}}
 
 
+def two_state_growth_euler(k_points: int = 200, a_points: int = 7) -> dict[str, Any]:
+    """Invented growth with a productivity level ``a`` that moves by its own law, capital chosen continuously
+    (``monotone_cubic``), with Euler errors at every grid point of ``a`` (``worker.euler_states``)."""
+    model = log_growth(
+        k_min=0.05, k_max=0.45, points=k_points, params={"alpha": 0.3, "rho": 0.6},
+        shocks={"e": {"markov": {"values": [0.9, 1.1], "matrix": [[0.8, 0.2], [0.3, 0.7]]}, "transform": "none"}},
+        define={"c": "e * a * k**alpha - k_next"}, next={"a": "a**rho"},
+        interpolation="monotone_cubic", hints={"concave": True})
+    model["states"] = {"a": {"min": 0.8, "max": 1.25, "points": a_points}, **model["states"]}
+    model["choices"]["k_next"]["continuous"] = True
+    return {"version": 1, "discount": 0.95, "model": model, "solver": {"method": "howard", "tolerance": 1e-8},
+            "report": {"euler_errors": True}}
+
+
 def documents(large: bool = False) -> dict[str, dict[str, Any]]:
     """Name → document: the bundled examples and the extra shapes; ``large`` adds the slow, large ones."""
     docs = {path.stem: example(path.stem) for path in sorted(EXAMPLES.glob("*.json"))}
@@ -176,6 +190,7 @@ def documents(large: bool = False) -> dict[str, dict[str, Any]]:
         "taste_tabular": taste_tabular(),
         "taste_with_draws_after_choice": grid_document(van(top=400), discount=0.95, tolerance=1e-6),
         "continuous_with_draws_after_choice": continuous_with_draws(),
+        "two_states_continuous_euler": two_state_growth_euler(),
         "growth_tables_20k": growth(1000, 20),
         "growth_hinted_60k": growth(2000, 30, {"monotone": True, "concave": True}),
     })

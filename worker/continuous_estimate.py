@@ -60,13 +60,18 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     scan = min(choice.size, _GRID_SCAN_MAX) if choice.next_of is not None else choice.size
     method = doc.solver.method
     entries = n * nodes * shocks * draws
-    first_axis = next(iter(model.states.values())).size
+    # Euler errors: test points along the state the choice sets, at every grid point of the other states
+    # (worker.euler_states), each a search of the choice again for a continuous one.
+    tested = model.states[choice.next_of].size if choice.next_of in model.states else grid_states
+    others = grid_states // tested
+    euler = euler_elements(doc, tested, shocks) * others
+    euler_searches = euler // max(shocks, 1) * combos_of(model, name) * draws
     # With draws the probabilities are checked at every point's scanned candidates, in numpy chunks of
     # whole rows (every candidate, every draw), before the solve (worker.continuous.drawnodes.check_at_scan).
     check = (CHUNK_TEMPORARIES * 8 * min(CHUNK_ELEMENTS, n * choice.size * combos_of(model, name) * draws)
              if draws > 1 else 0)
     memory = (BASE_BYTES + max(check, solve_bytes(n, entries, method)) + n * (_SEARCH_BYTES_PER_POINT + 8 * states)
-              + report_bytes(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_bytes(doc, n))
+              + report_bytes(doc, n, entries, euler) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     combos = combos_of(model, name)  # searched for each
     per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
@@ -76,7 +81,8 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     seconds = (GRID_FIXED_S * 1e9 + steps * iteration + evaluation_steps * entries * MATVEC_NS) * 1e-9
     if hinted:
         seconds += n * combos * draws * (scan + SEARCH_POINTS) * POINT_NS * 1e-9  # the unhinted verification
-    seconds += report_seconds(doc, n, entries, euler_elements(doc, first_axis, shocks)) + horizon_seconds(doc, n)
+    seconds += report_seconds(doc, n, entries, euler) + horizon_seconds(doc, n)
+    seconds += euler_searches * SEARCH_POINTS * POINT_NS * 1e-9
     compile_bytes = compile_memory(model)
     compile_s, compile_basis = compile_seconds(model, continuous_kernels())
     notes = [
