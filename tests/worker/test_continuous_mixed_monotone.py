@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 import pytest
 
-from tests._mixed_models import exact_fixed_point, household_document
+from tests._mixed_models import INCOME, exact_bellman, exact_fixed_point, household_document
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
 
@@ -133,3 +133,19 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
         results.append((result["iterations"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
     assert results[0] == results[1]
+
+
+def test_a_finite_horizon_with_the_hint_is_the_independent_backward_induction(reference: tuple) -> None:
+    grid = reference[0]
+    document = household_document({"monotone": True})
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    result = solve(document)
+    v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
+    expected_v, expected_work = [], []
+    for _ in range(4):
+        v, _, work = exact_bellman(v, grid)
+        expected_v.insert(0, v)
+        expected_work.insert(0, work)
+    np.testing.assert_allclose(np.array(result["value"]), np.array(expected_v), rtol=0, atol=1e-9)
+    np.testing.assert_array_equal(np.array(result["policy_index"]["work"]), np.array(expected_work))
+    assert result["diagnostics"]["continuous_choice"]["monotone_narrowing"] is True
