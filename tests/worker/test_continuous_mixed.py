@@ -1,14 +1,10 @@
-"""A continuous choice beside a discrete one, against an independent plain-numpy solver written here.
+"""A continuous choice beside a discrete one, against an independent plain-numpy solver.
 
-Invented household: assets ``a`` on a grid, income ``y`` from a two-state chain; each period it chooses
-whether to work (``work`` ∈ {0, 1}, a menu: working adds ``wage · y`` to cash and costs ``disutility`` in
-utility) and how much to save (``save``, tomorrow's assets anywhere in [0, a_max]), with log utility.
-
-The references: (1) the fitted problem's fixed point (tomorrow's value read linearly between grid points)
-solved by a numpy value iteration whose maximisation is exact — on each grid segment the continuation is
-linear, so the first-order condition ``1/c = β·slope`` gives the segment's maximum in closed form, and the
-best segment and the best work choice win; (2) scipy's bounded ``minimize_scalar`` at every point and work
-choice, at that fixed point, seeded by a brute-force scan of a fine grid of savings.
+The invented work-or-not-and-save household of ``tests/_mixed_models.py``.  The references: (1) the fitted
+problem's fixed point (tomorrow's value read linearly between grid points) solved by a numpy value iteration
+whose maximisation is exact (``tests._mixed_models.exact_bellman``); (2) scipy's bounded
+``minimize_scalar`` at every point and work choice, at that fixed point, seeded by a
+brute-force scan of a fine grid of savings.
 """
 
 from __future__ import annotations
@@ -20,88 +16,38 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
+from tests._mixed_models import (
+    A_MAX,
+    BETA,
+    CHAIN,
+    DISUTILITY,
+    INCOME,
+    WORK,
+    R,
+    cash,
+    exact_bellman,
+    exact_fixed_point,
+    household_document,
+)
 from worker import environment, threadpool
 from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
 
-BETA, R, WAGE, DISUTILITY, BASE, A_MAX = 0.9, 0.04, 1.0, 0.4, 0.3, 8.0
-INCOME = np.array([0.6, 1.4])
-CHAIN = np.array([[0.75, 0.25], [0.35, 0.65]])
-WORK = np.array([0.0, 1.0])
-
-HOUSEHOLD: dict[str, Any] = {
-    "kind": "grid",
-    "params": {"r": R, "wage": WAGE, "disutility": DISUTILITY, "base": BASE},
-    "states": {"a": {"min": 0.0, "max": A_MAX, "points": 30, "spacing": "power", "exponent": 1.5}},
-    "shocks": {"y": {"markov": {"values": INCOME.tolist(), "matrix": CHAIN.tolist()}, "transform": "none"}},
-    "choices": {"work": {"values": WORK.tolist()}, "save": {"next_of": "a", "continuous": True}},
-    "define": {"c": "(1 + r) * a + base + work * wage * y - save"},
-    "reward": "log(c) - disutility * work",
-    "feasible": ["c > 0"],
-}
-"""Invented: whether to work and how much to save."""
-
-
-def _document(hints: dict | None = None, **report: Any) -> dict[str, Any]:
-    model = copy.deepcopy(HOUSEHOLD)
-    if hints is not None:
-        model["hints"] = hints
-    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": report}
-
-
-def _cash(grid: np.ndarray) -> np.ndarray:
-    """Cash on hand (points, shocks, work options)."""
-    return (1 + R) * grid[:, None, None] + BASE + WORK[None, None, :] * WAGE * INCOME[None, :, None]
-
-
-def _exact_bellman(v: np.ndarray, grid: np.ndarray, at: np.ndarray | None = None
-                   ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """The fitted Bellman operator with an exact maximisation: ``(Tv, save, work index)``, (points, shocks),
-    at the grid points or at the assets ``at``."""
-    continuation = v @ CHAIN.T  # (points, shocks): E[v(a', y') | y]
-    cash = _cash(grid if at is None else at)
-    best = np.full(cash.shape, -np.inf)
-    chosen = np.full(cash.shape, np.nan)
-    for j in range(grid.size - 1):
-        slope = (continuation[j + 1] - continuation[j]) / (grid[j + 1] - grid[j])
-        slope = slope[None, :, None]
-        with np.errstate(divide="ignore", invalid="ignore"):
-            interior = cash - 1.0 / (BETA * slope)
-        upper = np.minimum(grid[j + 1], cash)
-        save = np.clip(np.where(slope > 0, interior, grid[j]), grid[j], upper)
-        c = cash - save
-        with np.errstate(divide="ignore", invalid="ignore"):
-            value = np.where((c > 0) & (grid[j] < cash), np.log(np.where(c > 0, c, 1.0))
-                             - DISUTILITY * WORK[None, None, :]
-                             + BETA * (continuation[j][None, :, None] + slope * (save - grid[j])), -np.inf)
-        better = value > best
-        best[better], chosen[better] = value[better], save[better]
-    work = np.argmax(best, axis=2)
-    take = np.take_along_axis
-    return (take(best, work[..., None], 2)[..., 0], take(chosen, work[..., None], 2)[..., 0], work)
-
 
 @pytest.fixture(scope="module")
 def reference() -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """``(grid, v*, save, work)`` of the fitted problem, iterated until a step moves ``v`` by at most 1e-13."""
-    grid = np.array(solve(_document())["axes"]["a"])
-    v = np.zeros((grid.size, INCOME.size))
-    for _ in range(2000):
-        tv, save, work = _exact_bellman(v, grid)
-        moved = np.abs(tv - v).max()
-        v = tv
-        if moved <= 1e-13:
-            break
+    grid = np.array(solve(household_document())["axes"]["a"])
+    v, save, work = exact_fixed_point(grid)
     return grid, v, save, work
 
 
 @pytest.fixture(scope="module")
 def household() -> dict[str, Any]:
-    return solve(_document({"concave": True}, stationary=True, euler_errors=True,
-                           simulation={"periods": 40, "paths": 30, "seed": 5}))
+    return solve(household_document({"concave": True}, stationary=True, euler_errors=True,
+                                    simulation={"periods": 40, "paths": 30, "seed": 5}))
 
 
 def test_the_value_and_policy_are_the_independent_solvers(household: dict, reference: tuple) -> None:
@@ -121,16 +67,16 @@ def test_the_value_and_policy_are_the_independent_solvers(household: dict, refer
 def test_scipy_finds_the_same_maximum_at_every_point(household: dict, reference: tuple) -> None:
     grid, v, _, _ = reference
     continuation = v @ CHAIN.T
-    cash = _cash(grid)
+    money = cash(grid)
     found_value = np.array(household["value"])
     for i in range(grid.size):
         for z in range(INCOME.size):
             best = -np.inf
             for w in range(WORK.size):
-                top = min(A_MAX, cash[i, z, w] * (1 - 1e-12))
+                top = min(A_MAX, money[i, z, w] * (1 - 1e-12))
 
                 def loss(s: float, i: int = i, z: int = z, w: int = w) -> float:
-                    c = cash[i, z, w] - s
+                    c = money[i, z, w] - s
                     if c <= 0:
                         return np.inf
                     return -(np.log(c) - DISUTILITY * WORK[w] + BETA * np.interp(s, grid, continuation[:, z]))
@@ -145,7 +91,7 @@ def test_scipy_finds_the_same_maximum_at_every_point(household: dict, reference:
 
 
 def test_without_hints_the_scan_finds_the_same_household(household: dict) -> None:
-    plain = solve(_document())
+    plain = solve(household_document())
     assert np.abs(np.array(plain["value"]) - np.array(household["value"])).max() <= 1e-8
     np.testing.assert_array_equal(np.array(plain["policy"]["work"]), np.array(household["policy"]["work"]))
 
@@ -162,7 +108,7 @@ def test_the_report_describes_both_choices(household: dict) -> None:
 
 
 def test_the_endogenous_grid_method_says_which_condition_fails() -> None:
-    document = _document()
+    document = household_document()
     document["solver"]["method"] = "endogenous_grid"
     with pytest.raises(InvalidDocument) as info:
         solve(document)
@@ -171,7 +117,7 @@ def test_the_endogenous_grid_method_says_which_condition_fails() -> None:
 
 
 def test_two_continuous_choices_are_refused() -> None:
-    document = _document()
+    document = household_document()
     document["model"]["choices"]["hours"] = {"min": 0.0, "max": 1.0, "continuous": True}
     with pytest.raises(InvalidDocument) as info:
         parse_document(document)
@@ -182,7 +128,7 @@ def test_two_continuous_choices_are_refused() -> None:
 def test_choosing_consumption_between_bounds_gives_the_same_household(household: dict) -> None:
     # The same household choosing consumption (given by min and max, the continuous choice second) instead of
     # savings: the same fitted problem, so the same value and work policy.
-    document = _document({"concave": True})
+    document = household_document({"concave": True})
     model = document["model"]
     model["choices"] = {"work": {"values": WORK.tolist()},
                         "c": {"min": "0", "max": "(1 + r) * a + base + wage * y", "continuous": True}}
@@ -198,13 +144,13 @@ def test_choosing_consumption_between_bounds_gives_the_same_household(household:
 
 def test_a_finite_horizon_is_the_independent_backward_induction(reference: tuple) -> None:
     grid = reference[0]
-    document = _document({"concave": True})
+    document = household_document({"concave": True})
     document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
     result = solve(document)
     v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
     expected_v, expected_work = [], []
     for _ in range(4):
-        v, _, work = _exact_bellman(v, grid)
+        v, _, work = exact_bellman(v, grid)
         expected_v.insert(0, v)
         expected_work.insert(0, work)
     np.testing.assert_allclose(np.array(result["value"]), np.array(expected_v), rtol=0, atol=1e-9)
@@ -266,7 +212,7 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
     results = []
     for threads in ("1", "2"):
         monkeypatch.setenv(environment.SOLVE_THREADS, threads)
-        result = solve(_document({"concave": True}))
+        result = solve(household_document({"concave": True}))
         assert calls and calls[-1] == int(threads)
         results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
@@ -297,7 +243,7 @@ class Crash(Exception):
 
 
 def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
-    _, problem = compile_document(_document({"concave": True}))
+    _, problem = compile_document(household_document({"concave": True}))
     options = dict(tolerance=1e-10, evaluation_steps=5, fingerprint="household", checkpoint_s=0.0)
     whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
     counting = MemoryCheckpoint()
@@ -313,13 +259,6 @@ def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
     np.testing.assert_array_equal(resumed.policy, whole.policy)
 
 
-def test_the_monotone_hint_beside_other_choices_is_not_used_and_said_so() -> None:
-    result = solve(_document({"concave": True, "monotone": True}))
-    assert result["diagnostics"]["continuous_choice"]["monotone_narrowing"] is False
-    assert any("monotone hint is not used" in note and "`work`" in note for note in result["diagnostics"]["notes"])
-    assert result["diagnostics"]["verification"]["hints_held"] is True
-
-
 def test_euler_errors_at_the_chosen_combination_are_the_independent_ones(household: dict, reference: tuple) -> None:
     # Judd (1992): |1 − c̃/c| with 1/c̃ = β Σ_z' P[z, z'] (1 + r)/c''(a', z') for log utility, c'' tomorrow's
     # consumption at a' = save; measured where today's work choice and every tomorrow's are the same (no kink
@@ -328,10 +267,10 @@ def test_euler_errors_at_the_chosen_combination_are_the_independent_ones(househo
     grid, v, _, _ = reference
     parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
     k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
-    _, save, work = _exact_bellman(v, grid, k)
-    c = _cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
-    _, save_next, work_next = _exact_bellman(v, grid, save.reshape(-1))
-    c_next = _cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :], work_next] \
+    _, save, work = exact_bellman(v, grid, k)
+    c = cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
+    _, save_next, work_next = exact_bellman(v, grid, save.reshape(-1))
+    c_next = cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :], work_next] \
         - save_next
     expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
     error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
@@ -374,22 +313,22 @@ def test_euler_errors_through_a_finite_horizon_are_the_independent_ones(referenc
     # against V_{t+2} (the terminal value for the last period), skipped as in the infinite horizon's test
     # above; all from the exact solver here, period by period.
     grid = reference[0]
-    document = _document({"concave": True}, euler_errors=True)
+    document = household_document({"concave": True}, euler_errors=True)
     document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
     result = solve(document)
     values = [np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)]  # V_4, then V_3, ..., V_0
     for _ in range(4):
-        values.insert(0, _exact_bellman(values[0], grid)[0])
+        values.insert(0, exact_bellman(values[0], grid)[0])
     parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
     k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2]
     points = 0
     for t in range(3):
-        _, save, work = _exact_bellman(values[t + 1], grid, k)
-        c = _cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
-        _, save_next, work_next = _exact_bellman(values[t + 2], grid, save.reshape(-1))
-        c_next = _cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :],
+        _, save, work = exact_bellman(values[t + 1], grid, k)
+        c = cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
+        _, save_next, work_next = exact_bellman(values[t + 2], grid, save.reshape(-1))
+        c_next = cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :],
                                          work_next] - save_next
         expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
         error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))

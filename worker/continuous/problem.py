@@ -23,7 +23,9 @@ interpolation:
 A policy is a float64 vector: the chosen value at each point.  With other
 (discrete) choices beside the continuous one, the continuous one is searched
 for each combination of theirs (one row of ``combos``, in C order of their
-grids) and the best kept; a policy is then (n, 2): the chosen value and the
+grids) and the best kept (under the monotone hint, each combination's search
+is narrowed by that combination's own choice at the point before, not the
+kept one's); a policy is then (n, 2): the chosen value and the
 index of the combination (as a float).  Its fixed-
 policy steps read ``EV`` by the same interpolation; its transition matrix
 ``P_σ`` (stationary distribution, simulation start) always puts each next
@@ -93,7 +95,7 @@ class ContinuousProblem:
         self.n = data.n
         self.axes: dict[str, list[float]] = {name: grid.tolist() for name, grid in zip(data.states, data.state_grids)}
         self.axes.update((name, values.tolist()) for name, values in zip(data.shocks, data.shock_values))
-        monotone = bool(model.hints.monotone) and self.target is not None and not others
+        monotone = bool(model.hints.monotone) and self.target is not None
         self.policy_shape = (self.n, 2) if others else (self.n,)
         self.hints = Hints(monotone=monotone, concave=bool(model.hints.concave))
         self.hints_active = monotone or self.hints.concave
@@ -101,11 +103,11 @@ class ContinuousProblem:
         self.timings: dict[str, float] = {}
         self.moving_steps_divisor = MOVING_STEPS_DIVISOR
         self.notes: list[str] = []
-        if model.hints.monotone and self.target is not None and others:
+        if monotone and others:
             self.notes.append(
-                f"the monotone hint is not used: `{self.choice}` is searched for each combination of "
-                f"{', '.join(f'`{name}`' for name in self.others)}, and the policy keeps only the best, so the "
-                "choice at the point before need not bound it"
+                f"the monotone hint is read for each combination of {', '.join(f'`{name}`' for name in self.others)}: "
+                f"`{self.choice}`'s search in a combination starts at that combination's own choice at the point "
+                "before"
             )
         elif model.hints.monotone and not monotone:
             self.notes.append(
@@ -223,7 +225,27 @@ class ContinuousProblem:
         blocks = [(start * self._line, stop * self._line)
                   for start, stop in threadpool.row_blocks(lines, self.threads * threadpool.BLOCKS_PER_THREAD)]
         threadpool.run_blocks(step, blocks if self.threads > 1 else [(0, self.n)], self.threads)
+        lost = np.flatnonzero(~(out_v > -np.inf)) if monotone else np.empty(0, dtype=np.int64)
+        if lost.size:  # a false monotone hint can leave no allowed choice above the point before: search again there
+            self._search_again(EVt, D, lost, guess, concave, out_v, out_a, out_r, out_j)
         return out_v, self._policy(out_a, out_j)
+
+    def _search_again(self, EVt: np.ndarray, D: np.ndarray, rows: np.ndarray, guess: np.ndarray | None,
+                      concave: bool, out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray,
+                      out_j: np.ndarray) -> None:
+        """The search without the monotone narrowing at the points ``rows``, written into the ``out_`` arrays.
+
+        The step then has the value the hint-free search gives there, and the verification at the end of the
+        solve still compares every point with the unrestricted step."""
+        count = rows.size
+        found_v, found_a, found_r = np.empty(count), np.empty(count), np.empty(count)
+        found_j = np.zeros(count, dtype=np.int64)
+        run = self._step(EVt, D, np.ascontiguousarray(self._svals[rows]), np.ascontiguousarray(self._piz[rows]),
+                         np.arange(count, dtype=np.int64), np.full(count, -1, dtype=np.int64),
+                         None if guess is None else np.ascontiguousarray(guess[rows]), concave, False,
+                         found_v, found_a, found_r, found_j)
+        run(0, count)
+        out_v[rows], out_a[rows], out_r[rows], out_j[rows] = found_v, found_a, found_r, found_j
 
     def _policy(self, chosen: np.ndarray, combos: np.ndarray) -> np.ndarray:
         """The policy array: the chosen values, with the combinations beside them when there are others."""

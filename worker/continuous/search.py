@@ -2,7 +2,13 @@
 
 The interval is ``[low, high]`` (the grid's ends for a ``next_of`` choice,
 else the bounds' expressions at the point).  ``monotone`` raises its lower
-end to the choice of the point before on the same line of the chosen state.
+end to the choice of the point before on the same line of the chosen state
+*in the same combination of the other choices* (``line_a[cc]``, kept by the
+kernel for each combination, NaN where that combination had no allowed
+choice; ``follows`` is true when that point was the one searched just
+before): the hint promises, for fixed other choices, a choice that never
+falls as the state rises, and the best combination's choice need not bound
+another combination's.
 Then:
 
 * ``concave``, with a usable guess (the previous iteration's choice, where
@@ -28,7 +34,9 @@ within about ``f''·x²·ε`` of the maximum, far below any value tolerance.  A
 point where the model is not allowed counts as ``−inf``, so the search stays
 inside the allowed part of the interval.  Every point's answer depends on
 that point (and, with ``monotone``, the one before it on its line) only, so
-row blocks of whole lines give the same bits on any number of threads.
+row blocks of whole lines give the same bits on any number of threads (a block
+that starts inside a line is not narrowed at its first point: ``follows`` is
+false there).
 """
 
 from __future__ import annotations
@@ -53,8 +61,8 @@ BRENT_MAX_STEPS = 200
 SEARCH_TEXT = f"""
 lo_b = low
 hi_b = high
-if monotone and prev[q] >= 0:
-    before = out_a[order[prev[q]]]
+if follows:
+    before = line_a[cc]
     if before == before and before > lo_b:
         lo_b = min(before, hi_b)
 x = np.nan

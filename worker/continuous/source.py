@@ -22,8 +22,8 @@ slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
   other choices, one combination a row; one empty row without them), the
   best combination's index in ``out_j``;
   ``prev[q]`` is the position of the point before it on the same line of
-  the chosen state (``-1`` at a line's start), whose choice narrows the
-  bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
+  the chosen state (``-1`` at a line's start), whose choice in the same
+  combination narrows that combination's bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
   search itself.
 * ``policy_at(p, sgrid, ztab, svals, piz, a, combos, jc, out_r, out_x,
   out_ok)`` — the reward and tomorrow's state values ``out_x`` (P, d) at the
@@ -269,8 +269,9 @@ class _Writer:
         )
         out.depth += 1
         self._prologue(out)
+        out.add("line_a = np.full(combos.shape[0], np.nan)", "last_q = -1")
         with out.block("for q in range(start, stop):"):
-            out.add("i = order[q]")
+            out.add("i = order[q]", "follows = monotone and prev[q] >= 0 and prev[q] == last_q", "last_q = q")
             self._point(out)
             if self.target is not None:
                 t = self.target
@@ -288,6 +289,7 @@ class _Writer:
                     out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
                 text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic or self.draws is not None else self._kinks())
                 out.extend(text.strip("\n").split("\n"))
+                out.add("line_a[cc] = x if fx > -np.inf else np.nan")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
             out.add("out_v[i] = best_v", "out_a[i] = best_a", "out_r[i] = best_r", "out_j[i] = best_j")
