@@ -444,8 +444,14 @@ def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> 
     return {"taste_shocks": notes}, {"choice_probabilities": probabilities.reshape(shape).tolist()}
 
 
+_PLAIN_TYPES = (float, int, str, bool, type(None))
+"""Leaves :func:`_plain` returns as they are (exact types: a numpy float64 is a float subclass, made plain)."""
+
+
 def _plain(obj: Any) -> Any:
     """Numpy scalars and arrays → Python numbers and lists, recursively."""
+    if type(obj) in _PLAIN_TYPES:
+        return obj
     if isinstance(obj, dict):
         return {str(key): _plain(value) for key, value in obj.items()}
     if isinstance(obj, (list, tuple)):
