@@ -300,6 +300,16 @@ class DrawGridProblem(GridProblem):
     _merged: tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray] | None = None
     _node_rows: tuple[tuple[int, int], np.ndarray] | None = None
     """``((n, K), CSR row starts of unmerged nodes, K a row)`` (``exact_policy_value``)."""
+    _same_rows: tuple[np.ndarray, bool] | None = None
+    """``(the chain, whether its rows are identical)``, checked once per chain (:meth:`_identical_rows`)."""
+
+    def _identical_rows(self) -> bool:
+        """:func:`identical_rows` of the shocks' chain, compared once for each chain object the problem holds."""
+        transition = self._data.transition
+        same = self._same_rows
+        if same is None or same[0] is not transition:
+            same = self._same_rows = (transition, identical_rows(transition))
+        return same[1]
 
     def _merged_nodes(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
         """``(r_σ, indptr, node index, node weight)`` of ``policy``, nodes merged (CSR); cached for the last policy."""
@@ -325,7 +335,7 @@ class DrawGridProblem(GridProblem):
         EVt, spare = self._step_scratch
         transition = self._data.transition
         done, span = draw_policy_steps(
-            reward, indptr, index, weight, transition, identical_rows(transition), self.discount, out, int(steps),
+            reward, indptr, index, weight, transition, self._identical_rows(), self.discount, out, int(steps),
             float(span_stop), EVt, spare,
         )
         return out, int(done), float(span)
@@ -335,7 +345,7 @@ class DrawGridProblem(GridProblem):
         then solves the full system): up to ``DENSE_SOLVE_MAX_GRID`` grid states in one compiled call
         (:func:`dense_reduced_value`), above it by :func:`reduced_policy_value`'s sparse LU."""
         transition = self._data.transition
-        if not identical_rows(transition):
+        if not self._identical_rows():
             return None
         # Each policy is solved once: its nodes are summed into the system as they are, unmerged (every row K
         # nodes, zero weights adding nothing), for merging them cost more than the sums it saves.
