@@ -10,20 +10,22 @@ from typing import Any
 
 from worker.drawnames import draw_names
 from worker.errors import TooLarge, join_path
-from worker.estimate import grid_plan
+from worker.estimate import GridPlan, grid_plan
 
 __all__ = ["check_draw_tables"]
 
 _MIB = 2**20
 
 
-def check_draw_tables(doc: Any, *, limits: dict[str, Any] | None = None) -> None:
+def check_draw_tables(doc: Any, *, limits: dict[str, Any] | None = None, plan: GridPlan | None = None) -> None:
     """Raise :class:`~worker.errors.TooLarge` at the first draw's ``timing`` when a grid model with draws after
-    the choice has tables over the precompute budget under ``limits`` (their only storage for now)."""
+    the choice has tables over the precompute budget under ``limits`` (their only storage for now).  ``plan``:
+    the model's :func:`~worker.estimate.grid_plan` under the same ``limits`` when the caller has it already."""
     model = doc.model
     if model.kind != "grid" or not draw_names(model):
         return
-    plan = grid_plan(model, limits=limits, method=doc.solver.method)
+    if plan is None:
+        plan = grid_plan(model, limits=limits, method=doc.solver.method)
     if plan.reward_storage != "tables":
         raise TooLarge.at(
             join_path("model", "shocks", draw_names(model)[0], "timing"),

@@ -306,8 +306,9 @@ def grid_bytes(doc: Any, plan: GridPlan) -> int:
     return BASE_BYTES + max(plan.setup_bytes, plan.table_bytes + working) + horizon_bytes(doc, plan.n)
 
 
-def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any]:
-    """Size, memory and time of a validated ``ProblemDocument``, without building it.
+def estimate(doc: Any, *, limits: dict[str, Any] | None = None, plan: GridPlan | None = None) -> dict[str, Any]:
+    """Size, memory and time of a validated ``ProblemDocument``, without building it (``plan``: a grid model's
+    :func:`grid_plan` under the same ``limits`` when the caller has it already).
 
     Returns
     -------
@@ -334,7 +335,8 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None) -> dict[str, Any
 
         return continuous_estimate(doc)
     model = doc.model
-    plan = grid_plan(model, limits=limits, method=doc.solver.method)
+    if plan is None:
+        plan = grid_plan(model, limits=limits, method=doc.solver.method)
     steps, evaluation_steps, basis = iteration_steps(doc, plan.choices)
     seconds, how = grid_seconds(doc, plan, steps, evaluation_steps)
     if doc.solver.method == "policy_iteration" and model.horizon is None:

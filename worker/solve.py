@@ -67,15 +67,19 @@ def compile_document(document: dict[str, Any], *, limits: dict[str, Any] | None 
 
 def _check_size(doc: Any, limits: dict[str, int]) -> dict[str, Any]:
     from worker.drawcheck import check_draw_tables
-    from worker.estimate import estimate
+    from worker.estimate import estimate, grid_plan
     from worker.kernel_limits import check_structure
     from worker.tastecheck import check_taste_tables
 
     check_structure(doc)
     check_taste_tables(doc, limits=limits)
-    check_draw_tables(doc, limits=limits)
+    model = doc.model
+    # A discrete grid model's plan, computed once for the draws' check and the estimate.
+    plan = (grid_plan(model, limits=limits, method=doc.solver.method)
+            if model.kind != "tabular" and model.continuous_choice() is None else None)
+    check_draw_tables(doc, limits=limits, plan=plan)
     cap = limits["max_bytes"]
-    size = estimate(doc, limits=limits)
+    size = estimate(doc, limits=limits, plan=plan)
     if size["bytes"] > cap:
         raise TooLarge.at(
             "model",
@@ -440,8 +444,14 @@ def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> 
     return {"taste_shocks": notes}, {"choice_probabilities": probabilities.reshape(shape).tolist()}
 
 
+_PLAIN_TYPES = (float, int, str, bool, type(None))
+"""Leaves :func:`_plain` returns as they are (exact types: a numpy float64 is a float subclass, made plain)."""
+
+
 def _plain(obj: Any) -> Any:
     """Numpy scalars and arrays → Python numbers and lists, recursively."""
+    if type(obj) in _PLAIN_TYPES:
+        return obj
     if isinstance(obj, dict):
         return {str(key): _plain(value) for key, value in obj.items()}
     if isinstance(obj, (list, tuple)):
