@@ -228,7 +228,9 @@ class Hints(Part):
     solve falls back to the full search."""
 
     monotone: bool = Field(
-        default=False, description="The chosen next value of a state never falls as that state rises."
+        default=False,
+        description="The chosen next value of a state never falls as that state rises (beside other choices: for "
+        "each fixed combination of them).",
     )
     concave: bool = Field(
         default=False,
