@@ -196,3 +196,30 @@ def van_arrays() -> tuple[np.ndarray, np.ndarray]:
                         for tomorrow in range(2):
                             P[x, a, 2 * node + tomorrow] += p * w * VAN_SEASON[busy, tomorrow]
     return R, P
+
+
+FISHERY_STOCK = (0.2, 4.0)
+"""The invented fishery's stock grid ends."""
+FISHERY_SEASONS = [0.8, 1.25]
+"""Its seasons, drawn after the harvest."""
+
+
+def fishery(points: int = 25, *, tolerance: float = 1e-10, reports: bool = True) -> dict[str, Any]:
+    """An invented fishery: a continuous harvest of the stock, the season (bad or good, its odds worse after a
+    heavy harvest) drawn after the harvest; ``points`` stock points, β = 0.9."""
+    low, high = FISHERY_STOCK
+    document = {"version": 1, "discount": 0.9, "model": {
+        "kind": "grid",
+        "params": {"price": 1.0},
+        "states": {"stock": {"min": low, "max": high, "points": points}},
+        "shocks": {"season": {"iid": {"values": list(FISHERY_SEASONS),
+                                      "probs": ["0.3 + 0.1 * harvest / stock", "0.7 - 0.1 * harvest / stock"]},
+                              "timing": "after_choice"}},
+        "choices": {"harvest": {"min": 0, "max": "stock - 0.1", "continuous": True, "points": 40}},
+        "next": {"stock": f"min(season * 1.6 * (stock - harvest) ** 0.8 + 0.1, {high})"},
+        "reward": "price * log(harvest + 0.05) + 0.05 * season"},
+        "solver": {"method": "howard", "tolerance": tolerance}}
+    if reports:
+        document["report"] = {"stationary": True, "euler_errors": True,
+                              "simulation": {"paths": 200, "periods": 60, "seed": 4}}
+    return document

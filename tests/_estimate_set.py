@@ -27,7 +27,7 @@ from typing import Any
 import numpy as np
 
 from tests._documents import GROWTH, array_tabular, grid_document, log_growth, random_replacement
-from tests._draw_models import van
+from tests._draw_models import fishery, van
 from worker.arrays import encode_array
 
 EXAMPLES = Path(__file__).resolve().parents[1] / "service" / "examples"
@@ -149,19 +149,9 @@ def sparse_tabular() -> dict[str, Any]:
 
 
 def continuous_with_draws(points: int = 400) -> dict[str, Any]:
-    """An invented fishery: a continuous harvest, the season drawn after it with odds that worsen with the
-    harvest (the shape of ``tests/worker/test_continuous_draws.py``'s model, on ``points`` stock points)."""
-    return {"version": 1, "discount": 0.9, "model": {
-        "kind": "grid",
-        "params": {"price": 1.0},
-        "states": {"stock": {"min": 0.2, "max": 4.0, "points": points}},
-        "shocks": {"season": {"iid": {"values": [0.8, 1.25],
-                                      "probs": ["0.3 + 0.1 * harvest / stock", "0.7 - 0.1 * harvest / stock"]},
-                              "timing": "after_choice"}},
-        "choices": {"harvest": {"min": 0, "max": "stock - 0.1", "continuous": True, "points": 40}},
-        "next": {"stock": "min(season * 1.6 * (stock - harvest) ** 0.8 + 0.1, 4.0)"},
-        "reward": "price * log(harvest + 0.05) + 0.05 * season"},
-        "solver": {"method": "howard", "tolerance": 1e-8}}
+    """The invented fishery of ``tests._draw_models`` (a continuous harvest, the season drawn after it) on
+    ``points`` stock points, without reports."""
+    return fishery(points, tolerance=1e-8, reports=False)
 
 
 def two_state_growth_euler(k_points: int = 200, a_points: int = 7) -> dict[str, Any]:

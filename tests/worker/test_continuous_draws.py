@@ -18,27 +18,18 @@ import pytest
 from scipy.interpolate import PchipInterpolator
 from scipy.optimize import minimize_scalar
 
+from tests._draw_models import FISHERY_SEASONS, FISHERY_STOCK, fishery
 from worker.errors import InvalidDocument
 from worker.solve import solve
 
 BETA = 0.9
-LOW, HIGH, POINTS = 0.2, 4.0, 25
-SEASONS = np.array([0.8, 1.25])
+LOW, HIGH = FISHERY_STOCK
+POINTS = 25
+SEASONS = np.array(FISHERY_SEASONS)
 
 
 def _document() -> dict[str, Any]:
-    return {"version": 1, "discount": BETA, "model": {
-        "kind": "grid",
-        "params": {"price": 1.0},
-        "states": {"stock": {"min": LOW, "max": HIGH, "points": POINTS}},
-        "shocks": {"season": {"iid": {"values": SEASONS.tolist(),
-                                      "probs": ["0.3 + 0.1 * harvest / stock", "0.7 - 0.1 * harvest / stock"]},
-                              "timing": "after_choice"}},
-        "choices": {"harvest": {"min": 0, "max": "stock - 0.1", "continuous": True, "points": 40}},
-        "next": {"stock": f"min(season * 1.6 * (stock - harvest) ** 0.8 + 0.1, {HIGH})"},
-        "reward": "price * log(harvest + 0.05) + 0.05 * season"},
-        "solver": {"method": "howard", "tolerance": 1e-10},
-        "report": {"stationary": True, "euler_errors": True, "simulation": {"paths": 200, "periods": 60, "seed": 4}}}
+    return fishery(POINTS)
 
 
 def _parts(s: float, c: Any) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
