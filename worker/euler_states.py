@@ -39,7 +39,7 @@ from typing import Any
 
 import numpy as np
 
-from worker.euler import between_points, chunk_rows, error_profile
+from worker.euler import between_points, chunk_rows, error_profile, weigh
 from worker.euler_points import PointsRule, ValueParts, ValueReader, errors_at
 from worker.euler_setup import EulerSetup
 from worker.feasibility import ModelData
@@ -118,11 +118,12 @@ def states_errors(
     *,
     tomorrow: tuple[ModelData, PointsRule] | None = None,
     values: ValueParts | None = None,
+    pooling: bool = False,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of a model with several states.
 
-    As :func:`worker.euler.euler_errors`, with rules that take points (m, states); ``distribution`` and
-    ``at_end`` are over the flat grid points, (grid points, shock points).
+    As :func:`worker.euler.euler_errors` (``pooling`` too), with rules that take points (m, states);
+    ``distribution`` and ``at_end`` are over the flat grid points, (grid points, shock points).
     """
     n_z = data.n_shocks
     axis = data.states.index(found.state)
@@ -161,10 +162,7 @@ def states_errors(
         share = share.reshape(shape)
         weights = (np.take(table, interval, axis=axis) * (1.0 - share)
                    + np.take(table, interval + 1, axis=axis) * share).reshape(-1, n_z)
-        total = weights[measured].sum()
-        result["weighted_mean_log10"] = (
-            float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
-        )
+        weigh(result, weights, log_error, measured, pooling=pooling)
     return result
 
 
