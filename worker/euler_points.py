@@ -24,8 +24,9 @@ from worker.expressions import Node
 from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
-__all__ = ["ERROR_FLOOR", "PointsRule", "ValueParts", "ValueReader", "binding", "chance_slopes", "combinations",
-           "draw_weights", "environment", "errors_at", "invert", "marginal_at", "next_points", "slope_at", "subset"]
+__all__ = ["ERROR_FLOOR", "Companions", "PointsRule", "ValueParts", "ValueReader", "binding", "chance_slopes",
+           "combinations", "draw_weights", "environment", "errors_at", "invert", "marginal_at", "next_points",
+           "slope_at", "subset"]
 
 ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
@@ -37,6 +38,9 @@ PointsRule = Callable[[np.ndarray], np.ndarray]
 (m, shock points)."""
 ValueReader = Callable[[np.ndarray], np.ndarray]
 """``read(points) -> V``: the value at points (rows, states), at every shock point, (rows, shock points)."""
+Companions = Callable[[np.ndarray], dict[str, np.ndarray]]
+"""``beside(points) -> {choice: x_j}``: at points (m, states), the values of the other ``next_of`` choices (the
+:attr:`~worker.euler_setup.EulerSetup.companions`) at every shock point, each (m, shock points)."""
 ValueParts = tuple[ValueReader, ValueReader, float]
 """What draws moving with ``x`` or ``k`` need: the value tomorrow read today (``V_{t+1}``), the value the
 day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomorrow's discount."""
@@ -45,9 +49,11 @@ day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomor
 def errors_at(
     data: ModelData, found: EulerSetup, discount: float, policy: PointsRule, points: np.ndarray,
     tomorrow: tuple[ModelData, PointsRule], values: ValueParts | None = None,
+    companions: tuple[Companions, Companions] | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """log10 errors and the constrained mask at test ``points`` (m, states), both (m, shock points);
-    ``tomorrow`` is the model and policy of the next period.
+    ``tomorrow`` is the model and policy of the next period; ``companions`` today's and tomorrow's values of
+    the other ``next_of`` choices, when the model has several (held there, their states moving to them).
 
     With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and its
     marginal reward do not move with them), tomorrow's marginal value is the expectation over today's draws
@@ -60,6 +66,10 @@ def errors_at(
     n_z = data.n_shocks
     columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states)}
     k = columns.pop(found.state)
+    beside_next = None
+    if companions is not None:
+        columns.update(companions[0](points))
+        beside_next = companions[1]
     shocks = data.shock_table[None, :, :]
     data_next, policy_next = tomorrow
     draws = combinations(data)
@@ -81,7 +91,8 @@ def errors_at(
             here = env if d == 0 else environment(data, found, k, shocks, x, {**columns, **drawn})
             tomorrows = next_points(data, found, here, x)
             if last is None or not np.array_equal(tomorrows, last[0], equal_nan=True):
-                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later))
+                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later,
+                                                   beside_next))
             slope_next = last[1].reshape(x.shape[0], n_z, n_z)
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
             if moving is not None and values is not None:
@@ -93,9 +104,13 @@ def errors_at(
 
 
 def next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.ndarray) -> np.ndarray:
-    """Tomorrow's states, rows (test point, z): ``k' = x``, the others by their laws (moved into their grids)."""
+    """Tomorrow's states, rows (test point, z): ``k' = x``, each companion's state its choice's value in ``env``,
+    the others by their laws (moved into their grids)."""
     out = np.empty((x.size, len(data.states)))
     out[:, data.states.index(found.state)] = x.reshape(-1)
+    for state, choice in found.companions:
+        t = data.states.index(state)
+        out[:, t] = np.broadcast_to(env[choice], x.shape).reshape(-1)
     for t, law in data.source.next:
         grid = data.state_grids[t]
         out[:, t] = np.clip(np.broadcast_to(evaluate_tree(law.tree, env), x.shape), grid[0], grid[-1]).reshape(-1)
@@ -111,12 +126,16 @@ def _worth(data: ModelData, env: dict[str, Any], tomorrows: np.ndarray, read: Va
 
 
 def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,
-                    shocks: np.ndarray, later: tuple[ValueReader, float] | None = None) -> np.ndarray:
-    """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there,
-    its expectation over the draws after the choice, (rows, shock points); with ``later`` (the value the day
-    after and tomorrow's discount) and probabilities moving with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``."""
+                    shocks: np.ndarray, later: tuple[ValueReader, float] | None = None,
+                    beside: Companions | None = None) -> np.ndarray:
+    """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there
+    (the companions' choices at theirs, ``beside``), its expectation over the draws after the choice, (rows,
+    shock points); with ``later`` (the value the day after and tomorrow's discount) and probabilities moving
+    with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``."""
     k = points[:, [data.states.index(found.state)]]
     others = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
+    if beside is not None:
+        others.update(beside(points))
     x = policy(points)
     draws = combinations(data)
     env = environment(data, found, k, shocks, x, {**others, **draws[0]})

@@ -1,10 +1,10 @@
 """``diagnostics.euler_errors`` of an infinite-horizon solve: which measurement applies, and its note.
 
 :func:`euler_diagnostics` picks the measurement for the solved problem — one state (:mod:`worker.euler`),
-several states (:mod:`worker.euler_states`), a continuous choice beside discrete ones
-(:mod:`worker.continuous.mixed_euler`) — with the policy between grid points read as the solve reads it,
-and appends a note to the diagnostics where the errors were not measured.  (A finite horizon's are
-:mod:`worker.horizon_euler`'s.)
+several states (:mod:`worker.euler_states`), several ``next_of`` choices (:mod:`worker.euler_choices`), a
+continuous choice beside discrete ones (:mod:`worker.continuous.mixed_euler`) — with the policy between grid
+points read as the solve reads it, and appends a note to the diagnostics where the errors were not measured.
+(A finite horizon's are :mod:`worker.horizon_euler`'s.)
 """
 
 from __future__ import annotations
@@ -40,6 +40,19 @@ def euler_diagnostics(
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     mixed = bool(getattr(problem, "others", ()))
+    from worker.euler_choices import choices_report, choices_setup, several_next_of
+
+    if not mixed and several_next_of(data):  # several next_of choices, each with its own equation
+        founds = choices_setup(data)
+        if isinstance(founds, list):
+            chosen = problem.choice_values(outcome.policy)
+            errors = choices_report(data, founds, doc.discount, chosen, distribution)
+            if isinstance(problem_diagnostics.get("timings"), dict):
+                problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
+            return {"euler_errors": errors}
+        add_note(founds or "Euler-equation errors were not measured: they need choices that set tomorrow's value "
+                 "of a state (next_of) on grids of two points or more")
+        return {}
     found = _setup(problem, data, mixed)
     values = None
     if not isinstance(found, str) and found is not None and needs_value(found):

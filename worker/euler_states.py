@@ -40,7 +40,7 @@ from typing import Any
 import numpy as np
 
 from worker.euler import between_points, chunk_rows, error_profile, weigh
-from worker.euler_points import PointsRule, ValueParts, ValueReader, errors_at
+from worker.euler_points import Companions, PointsRule, ValueParts, ValueReader, errors_at
 from worker.euler_setup import EulerSetup
 from worker.feasibility import ModelData
 
@@ -119,18 +119,21 @@ def states_errors(
     tomorrow: tuple[ModelData, PointsRule] | None = None,
     values: ValueParts | None = None,
     pooling: bool = False,
+    companions: tuple[Companions, Companions] | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of a model with several states.
 
     As :func:`worker.euler.euler_errors` (``pooling`` too), with rules that take points (m, states);
-    ``distribution`` and ``at_end`` are over the flat grid points, (grid points, shock points).
+    ``distribution`` and ``at_end`` are over the flat grid points, (grid points, shock points); with several
+    ``next_of`` choices ``companions`` gives the others' values today and tomorrow
+    (:func:`worker.euler_points.errors_at`).
     """
     n_z = data.n_shocks
     axis = data.states.index(found.state)
     points, layout = test_points(data, found)
     rows = chunk_rows(n_z)
-    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy), values)
-             for start in range(0, points.shape[0], rows)]
+    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy), values,
+                       companions) for start in range(0, points.shape[0], rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
     grid = data.state_grids[axis]
