@@ -49,7 +49,7 @@ from worker.euler_setup import EulerSetup, choice_setup, needs_value
 from worker.euler_states import grid_rule, states_errors
 from worker.feasibility import ModelData
 
-__all__ = ["choices_errors", "choices_report", "choices_setup", "several_next_of"]
+__all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_periods", "several_next_of"]
 
 _PER_CHOICE = ("state", "define", "max_log10", "mean_log10", "points", "constrained", "undefined", "profile",
                "weighted_mean_log10")
@@ -151,10 +151,11 @@ def choices_errors(
     return result
 
 
-def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, chosen: dict[str, np.ndarray],
-                   distribution: np.ndarray | None = None) -> dict[str, Any]:
-    """``diagnostics.euler_errors`` of a solved model with several ``next_of`` choices (restricted to their
-    grids); ``chosen`` holds each choice's values at every flat point, (n,)."""
+def grid_rules(data: ModelData, founds: list[EulerSetup],
+               chosen: dict[str, np.ndarray]) -> tuple[dict[str, PointsRule], dict[str, np.ndarray]]:
+    """``(rules, at_end)`` of choices restricted to their grids, each choice's values at every flat point in
+    ``chosen``: each read multilinearly over the product grid (its own state's end intervals extended), and
+    where it is at an end of its state's grid."""
     rules: dict[str, PointsRule] = {}
     at_end: dict[str, np.ndarray] = {}
     for found in founds:
@@ -163,4 +164,32 @@ def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, c
         grid = data.state_grids[axis]
         rules[found.choice] = grid_rule(data, values, extend=axis)
         at_end[found.choice] = (values <= grid[0]) | (values >= grid[-1])
+    return rules, at_end
+
+
+def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, chosen: dict[str, np.ndarray],
+                   distribution: np.ndarray | None = None) -> dict[str, Any]:
+    """``diagnostics.euler_errors`` of a solved model with several ``next_of`` choices (restricted to their
+    grids); ``chosen`` holds each choice's values at every flat point, (n,)."""
+    rules, at_end = grid_rules(data, founds, chosen)
     return choices_errors(data, founds, discount, rules, distribution, at_end)
+
+
+def pool_periods(periods: list[dict[str, Any]]) -> dict[str, Any]:
+    """``by_choice`` over the periods of a finite horizon, from each period's: per choice the largest error,
+    the mean over every point measured, the sums, the first period's profile."""
+    out: dict[str, Any] = {}
+    for choice, first in periods[0].items():
+        parts = [period[choice] for period in periods]
+        points = sum(part["points"] for part in parts)
+        measured = [part for part in parts if part["points"]]
+        out[choice] = {
+            "state": first["state"], "define": first["define"],
+            "max_log10": max((part["max_log10"] for part in measured), default=None),
+            "mean_log10": sum(part["mean_log10"] * part["points"] for part in measured) / points if points else None,
+            "points": points,
+            "constrained": sum(part["constrained"] for part in parts),
+            "undefined": sum(part["undefined"] for part in parts),
+            "profile": first["profile"],
+        }
+    return out

@@ -95,9 +95,11 @@ def test_each_choice_off_by_a_known_factor_has_its_own_error(ratio_k: float, rat
 
 
 def _numpy_errors(policy_k: np.ndarray, policy_h: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray,
-                  along: int) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
+                  along: int, tomorrow: tuple[np.ndarray, np.ndarray] | None = None,
+                  ) -> tuple[np.ndarray, tuple[np.ndarray, np.ndarray]]:
     """Independent: the Euler errors of the grid policies (k, h, z) of the choice setting state ``along`` (0: k,
-    1: h) at its test points, (k or k test values, h test values or h, z), and the test points' (k, h) mesh.
+    1: h) at its test points, (k or k test values, h test values or h, z), and the test points' (k, h) mesh;
+    ``tomorrow``'s policies tomorrow (default: the same).
 
     scipy's RegularGridInterpolator reads both policies multilinearly between grid points (as the module
     documents); ten or more test points per grid point, strictly between grid points, along the choice's state.
@@ -107,6 +109,11 @@ def _numpy_errors(policy_k: np.ndarray, policy_h: np.ndarray, k_grid: np.ndarray
               for j in range(Z_VALUES.size)]
     read_h = [RegularGridInterpolator(grids, policy_h[:, :, j], bounds_error=False, fill_value=None)
               for j in range(Z_VALUES.size)]
+    next_k, next_h = tomorrow or (policy_k, policy_h)
+    read_k_next = [RegularGridInterpolator(grids, next_k[:, :, j], bounds_error=False, fill_value=None)
+                   for j in range(Z_VALUES.size)]
+    read_h_next = [RegularGridInterpolator(grids, next_h[:, :, j], bounds_error=False, fill_value=None)
+                   for j in range(Z_VALUES.size)]
     grid = grids[along]
     parts = math.ceil(10 * grid.size / (grid.size - 1))
     between = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
@@ -119,7 +126,7 @@ def _numpy_errors(policy_k: np.ndarray, policy_h: np.ndarray, k_grid: np.ndarray
         expected = np.zeros_like(c)
         for jj, z_next in enumerate(Z_VALUES):
             y_next = z_next * xk**A1 * xh**A2
-            c_next = y_next - read_k[jj]((xk, xh)) - read_h[jj]((xk, xh))
+            c_next = y_next - read_k_next[jj]((xk, xh)) - read_h_next[jj]((xk, xh))
             expected += Z_CHAIN[j, jj] * share * y_next / ((xk if along == 0 else xh) * c_next)
         out[:, :, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
     return out, (k, h)
@@ -152,6 +159,38 @@ def test_the_solved_workshop_against_an_independent_numpy_computation() -> None:
     assert errors["max_log10"] == max(errors["by_choice"][c]["max_log10"] for c in ("k_next", "h_next"))
     assert errors["weighted_mean_log10"] == pytest.approx(pooled / weight, abs=1e-9)
     assert not any("Euler" in note for note in result["diagnostics"].get("notes", []))
+
+
+def test_a_finite_horizon_against_the_independent_computation() -> None:
+    # Terminal value B1 log k + B2 log h, B_i = A_i / (1 − (A1 + A2) β) (the module docstring's coefficients): the
+    # exact policy of every period is then the infinite horizon's, inside both grids; period t's errors link its
+    # grid policies today with period t + 1's tomorrow (the numpy computation above).
+    bonus = 1 / (1 - (A1 + A2) * BETA)
+    document = _document()
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": f"{A1 * bonus} * log(k) + {A2 * bonus} * log(h)"}
+    document["report"] = {"euler_errors": True}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1, 2] and "weighted_mean_log10" not in errors
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    policy_k = np.asarray(result["policy"]["k_next"], dtype=float)  # (period, k, h, z)
+    policy_h = np.asarray(result["policy"]["h_next"], dtype=float)
+    everything = {"k_next": [], "h_next": []}
+    for t in errors["by_period"]["period"]:
+        worst = []
+        for along, choice in ((0, "k_next"), (1, "h_next")):
+            reference, _ = _numpy_errors(policy_k[t], policy_h[t], k_grid, h_grid, along,
+                                         (policy_k[t + 1], policy_h[t + 1]))
+            everything[choice].append(reference)
+            worst.append(reference.max())
+        assert errors["by_period"]["max_log10"][t] == pytest.approx(max(worst), abs=1e-9)
+    for choice, parts in everything.items():
+        own = errors["by_choice"][choice]
+        pooled = np.concatenate([part.ravel() for part in parts])
+        assert own["constrained"] == 0 and own["points"] == pooled.size
+        assert own["max_log10"] == pytest.approx(pooled.max(), abs=1e-9)
+        assert own["mean_log10"] == pytest.approx(pooled.mean(), abs=1e-9)
+    assert errors["points"] == sum(sum(part.size for part in parts) for parts in everything.values())
 
 
 def test_a_law_that_moves_with_a_chosen_state_gets_a_note_naming_the_choice() -> None:
