@@ -203,3 +203,15 @@ def test_a_law_that_moves_with_a_chosen_state_gets_a_note_naming_the_choice() ->
     result = solve(document)
     assert "euler_errors" not in result["diagnostics"]
     assert any("law of motion of `q`" in note for note in result["diagnostics"]["notes"])
+
+
+def test_a_continuous_choice_beside_another_next_of_choice_gets_a_note() -> None:
+    # Machines continuous, tools on their grid: the tools' combination changes with h from day to day, so the
+    # measurement at one combination on both days would skip nearly every point; a note says why instead.
+    states = {"k": {"min": 0.04, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
+    document = _document(states=states, hints={"concave": True},
+                         choices={"k_next": {"next_of": "k", "continuous": True}, "h_next": {"next_of": "h"}})
+    diagnostics = solve(document)["diagnostics"]
+    assert "euler_errors" not in diagnostics
+    assert any("another choice that sets tomorrow's value of a state (`h_next`)" in note
+               for note in diagnostics["notes"])
