@@ -3,8 +3,10 @@
 A model qualifies when its one choice ``x`` sets tomorrow's value of a state
 ``k`` (a ``next_of`` choice; shocks as many as it likes), its reward depends
 on the choice only through one define ``c``, through which it is
-differentiable, and its other states, if any, move by laws that do not move
-with ``k`` or ``x`` (:mod:`worker.euler_setup`; with several states the
+differentiable (:mod:`worker.euler_setup`; other states whose laws move with
+``k`` or ``x`` add terms in the value's slopes, :mod:`worker.euler_laws`;
+several ``next_of`` choices each have their own equation,
+:mod:`worker.euler_choices`; with several states the
 measurement is :mod:`worker.euler_states`'s, with shocks drawn after the
 choice :func:`worker.euler_points.errors_at` takes their expectations).
 With ``r`` the reward, the first-order condition of an interior choice and

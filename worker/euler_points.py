@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 
 from worker import _slopes
+from worker.euler_laws import SlopeParts, SlopeReader, law_term
 from worker.euler_setup import EulerSetup, needs_value
 from worker.expressions import Node
 from worker.expressions.evaluator import evaluate_tree
@@ -49,11 +50,14 @@ day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomor
 def errors_at(
     data: ModelData, found: EulerSetup, discount: float, policy: PointsRule, points: np.ndarray,
     tomorrow: tuple[ModelData, PointsRule], values: ValueParts | None = None,
-    companions: tuple[Companions, Companions] | None = None,
+    companions: tuple[Companions, Companions] | None = None, slopes: SlopeParts | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """log10 errors and the constrained mask at test ``points`` (m, states), both (m, shock points);
     ``tomorrow`` is the model and policy of the next period; ``companions`` today's and tomorrow's values of
-    the other ``next_of`` choices, when the model has several (held there, their states moving to them).
+    the other ``next_of`` choices, when the model has several (held there, their states moving to them);
+    ``slopes`` the value's slopes, when another state's law moves with ``k`` or ``x``
+    (:mod:`worker.euler_laws`: each such law adds ``∂V/∂y(s') ∂g/∂x`` today and ``β' E ∂V/∂y(s'') ∂g/∂k``
+    tomorrow).
 
     With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and its
     marginal reward do not move with them), tomorrow's marginal value is the expectation over today's draws
@@ -75,6 +79,9 @@ def errors_at(
     draws = combinations(data)
     if needs_value(found) and values is None:
         raise ValueError("draws whose probabilities move with the choice or the state need the value")
+    if found.laws and slopes is None:
+        raise ValueError("a law of motion that moves with the chosen state or the choice needs the value's slopes")
+    later_slope = None if slopes is None else (slopes[1], slopes[2])
     later = None if values is None else (values[1], values[2])
     with np.errstate(all="ignore"):
         x = policy(points)
@@ -92,9 +99,12 @@ def errors_at(
             tomorrows = next_points(data, found, here, x)
             if last is None or not np.array_equal(tomorrows, last[0], equal_nan=True):
                 last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later,
-                                                   beside_next))
+                                                   beside_next, later_slope))
             slope_next = last[1].reshape(x.shape[0], n_z, n_z)
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
+            if found.laws and slopes is not None:
+                expected += chances[d] * law_term(data, found.laws, 0, found.define_slope, here, x.shape,
+                                                  tomorrows, slopes[0], data.transition)
             if moving is not None and values is not None:
                 extra += moving[d] * _worth(data, here, tomorrows, values[0], discount, x.shape)
         target = -(discount * expected + extra) / c_slope
@@ -127,11 +137,13 @@ def _worth(data: ModelData, env: dict[str, Any], tomorrows: np.ndarray, read: Va
 
 def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,
                     shocks: np.ndarray, later: tuple[ValueReader, float] | None = None,
-                    beside: Companions | None = None) -> np.ndarray:
+                    beside: Companions | None = None,
+                    later_slope: tuple[SlopeReader, float] | None = None) -> np.ndarray:
     """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there
     (the companions' choices at theirs, ``beside``), its expectation over the draws after the choice, (rows,
     shock points); with ``later`` (the value the day after and tomorrow's discount) and probabilities moving
-    with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``."""
+    with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``; with ``later_slope`` (the day after's value slopes and tomorrow's
+    discount) and laws moving with ``k``, plus ``β' Σ_y ∂g_y/∂k · E ∂V/∂y`` (:mod:`worker.euler_laws`)."""
     k = points[:, [data.states.index(found.state)]]
     others = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
     if beside is not None:
@@ -145,6 +157,10 @@ def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, poin
     for d, drawn in enumerate(draws):
         here = env if d == 0 else environment(data, found, k, shocks, x, {**others, **drawn})
         total = total + chances[d] * slope_at(found.state_slope, here, x.shape)
+        if found.laws and later_slope is not None:
+            total = total + chances[d] * later_slope[1] * law_term(
+                data, found.laws, 1, found.state_slope, here, x.shape, next_points(data, found, here, x),
+                later_slope[0], data.transition)
         if moving is not None and later is not None:
             total = total + moving[d] * _worth(data, here, next_points(data, found, here, x), later[0], later[1],
                                                x.shape)

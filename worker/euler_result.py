@@ -64,6 +64,16 @@ def euler_diagnostics(
 
         read = value_reader(data, outcome.value)
         values = (read, read, float(doc.discount))
+    slopes = None
+    if not isinstance(found, str) and found is not None and found.laws:  # laws moving with k or x: value slopes
+        refusal = value_refusal(doc, problem, slopes=True)
+        if refusal:
+            add_note(refusal)
+            return {}
+        from worker.euler_laws import value_slope
+
+        slope = value_slope(data, outcome.value)
+        slopes = (slope, slope, float(doc.discount))
     if mixed:  # a continuous choice beside others: at the chosen combination
         from worker.continuous.mixed_euler import mixed_euler_report
 
@@ -75,7 +85,7 @@ def euler_diagnostics(
         if found is not None and not isinstance(found, str):
             rule = search_rule(problem, outcome.value, outcome.policy) if continuous else None
             errors = states_report(data, found, doc.discount, problem.choice_values(outcome.policy)[choice],
-                                   distribution, rule=rule, values=values)
+                                   distribution, rule=rule, values=values, slopes=slopes)
     else:
         rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
         errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
@@ -101,11 +111,17 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
     return setup(data)
 
 
-def value_refusal(doc: Any, problem: Any) -> str:
+def value_refusal(doc: Any, problem: Any, *, slopes: bool = False) -> str:
     """Why the value cannot be read as the solve reads it, for draws whose probabilities move with the choice or
-    the chosen state ("" when it can: a choice restricted to the grid, or ``linear`` interpolation)."""
+    the chosen state — or, with ``slopes``, for laws of motion that move with them ("" when it can: a choice
+    restricted to the grid, or ``linear`` interpolation)."""
     if getattr(problem, "choose_at", None) is None or getattr(doc.model, "interpolation", "linear") == "linear":
         return ""
+    if slopes:
+        return ("Euler-equation errors were not measured: a law of motion moves with the chosen state or the "
+                "choice, so the envelope condition carries the value's slope in that law's state, and with "
+                f"{doc.model.interpolation} interpolation that slope is not read here as the solve reads the value "
+                "(it is with linear)")
     return ("Euler-equation errors were not measured: the probabilities of a draw after the choice move with the "
             "choice or the chosen state, so the first-order condition carries the value of each draw, and with "
             f"{doc.model.interpolation} interpolation that value is not read here as the solve reads it (it is "

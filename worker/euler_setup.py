@@ -2,11 +2,14 @@
 
 See :mod:`worker.euler` for the equation and where the errors are measured.  A model qualifies when its one
 choice ``x`` is ``next_of`` a state ``k``, its reward depends on the choice only through one define ``c``,
-differentiably, and every other state moves by a law of motion that does not move with ``k`` or ``x``
-(directly or through a define): then the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice
-and tomorrow's marginal value needs the policy alone.  Shocks drawn after the choice are allowed when ``c``
-and its marginal reward do not change with the draw (:func:`_draw_form` says why); probabilities that move
-with ``k`` or ``x`` add a term in the value's level (:func:`needs_value`).
+differentiably.  When every other state moves by a law of motion that does not move with ``k`` or ``x``
+(directly or through a define), the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice and
+tomorrow's marginal value needs the policy alone; a law that moves with them adds terms in the value's
+slope in its state (:mod:`worker.euler_laws`, :attr:`EulerSetup.laws`).  With several ``next_of`` choices
+each has its own setup (:func:`choice_setup`, :mod:`worker.euler_choices`), every law closed.  Shocks
+drawn after the choice are allowed when ``c`` and its marginal reward do not change with the draw
+(:func:`_draw_form` says why); probabilities that move with ``k`` or ``x`` add a term in the value's level
+(:func:`needs_value`).
 """
 
 from __future__ import annotations
@@ -14,6 +17,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from worker import _slopes
+from worker.euler_laws import OpenLaw, open_laws
 from worker.expressions import Node, Number, names_in
 from worker.feasibility import ModelData
 
@@ -42,6 +46,9 @@ class EulerSetup:
     ``(∂p/∂x, ∂p/∂k)`` (None where it does not move; the defines' derivatives are those of ``define_slope``
     and ``state_slope``); None when no probability moves.  The errors then need the value
     (:func:`needs_value`)."""
+    laws: tuple[OpenLaw, ...] = ()
+    """The other states' laws of motion that move with ``k`` or ``x`` (one choice only): their slopes, whose
+    terms need the value's slopes (:mod:`worker.euler_laws`)."""
     companions: tuple[tuple[str, str], ...] = ()
     """With several ``next_of`` choices (:mod:`worker.euler_choices`): ``(state, choice)`` of each of the others,
     whose values the measurement holds at the policy's and whose states move to them tomorrow."""
@@ -94,10 +101,11 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
     define, reason = _carrier(defines, reward, choice, moving)
     if define is None:
         return f"Euler-equation errors not computed: {reason}"
-    reason = _open_law(data, defines, (state, *(pair[0] for pair in companions)),
-                       (choice, *(pair[1] for pair in companions)))
-    if reason:
-        return f"Euler-equation errors not computed: {reason}"
+    if companions:  # several next_of choices: every other law must close (no value slopes there)
+        reason = _open_law(data, defines, (state, *(pair[0] for pair in companions)),
+                           (choice, *(pair[1] for pair in companions)))
+        if reason:
+            return f"Euler-equation errors not computed: {reason}"
     try:
         after = slope_trees(defines, define, skip_own=True)
         marginal = _slopes.derivative(reward, define, after)
@@ -118,9 +126,15 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
         chances = _chance_slopes(data, defines, state, choice, in_choice, in_state)
     except _slopes.NotSmooth as error:
         return f"Euler-equation errors not computed: a draw's probability is not differentiable ({error})"
+    try:
+        laws = () if companions else open_laws(data, {state, *_depends(defines, state)},
+                                               {choice, *_depends(defines, choice)}, state, choice, in_choice,
+                                               in_state)
+    except _slopes.NotSmooth as error:
+        return f"Euler-equation errors not computed: a law of motion is not differentiable ({error})"
     later = {name: (defines[name], derived) for name, derived in after.items()}
     return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
-                      (state_slope, in_state), chances, companions)
+                      (state_slope, in_state), chances, laws, companions)
 
 
 def _chance_slopes(data: ModelData, defines: dict[str, Node], state: str, choice: str, in_choice: dict[str, Node],

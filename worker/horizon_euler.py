@@ -65,6 +65,8 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     moving = needs_value(found)
     if moving and value_refusal(doc, problem):
         return {}, value_refusal(doc, problem)
+    if found.laws and value_refusal(doc, problem, slopes=True):  # laws moving with k or x: the value's slopes
+        return {}, value_refusal(doc, problem, slopes=True)
 
     def after(t: int) -> np.ndarray:
         """``V_{t+1}``, the value period ``t`` was chosen against."""
@@ -127,8 +129,14 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
                                 values_at(t))[0]
         today, rule = model_and_rule(t)
+        extra = {}
+        if found.laws:
+            from worker.euler_laws import value_slope
+
+            extra["slopes"] = (value_slope(data, after(t)), value_slope(data, after(t + 1)),
+                               float(plan.discounts[t + 1]))
         return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
-                       values=values_at(t))
+                       values=values_at(t), **extra)
 
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}

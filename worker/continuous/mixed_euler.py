@@ -87,6 +87,10 @@ def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
     if not isinstance(found, EulerSetup):
         return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
                          "tomorrow's value of a state (next_of)")
+    if found.laws:
+        return (f"Euler-equation errors were not measured: beside other choices, a law of motion that moves with "
+                f"`{found.state}` or the choice `{found.choice}` (the law of "
+                f"`{data.states[found.laws[0].position]}`) is not measured")
     return found
 
 
