@@ -281,7 +281,8 @@ class EulerErrors(Reported):
     by_choice: dict[str, EulerChoiceErrors] = absent_unless(
         description="Several choices that each set tomorrow's value of a state (and no other choice): each one's own "
         "errors, by the choice's name. The keys above then pool them (the largest, the mean over every point "
-        "measured, the sums); define and profile are those of the choice with the largest error."
+        "measured, the sums); define and profile are those of the choice with the largest error (finite horizon: "
+        "in the first period measured; each choice's own over all periods here)."
     )
 
 
