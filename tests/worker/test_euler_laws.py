@@ -119,10 +119,15 @@ def test_the_value_slope_is_the_multilinear_interpolant_s() -> None:
         assert found[:, j] == pytest.approx(central, abs=1e-7)
 
 
-def _numpy_errors(policy: np.ndarray, value: np.ndarray, a_grid: np.ndarray, k_grid: np.ndarray) -> np.ndarray:
+def _numpy_errors(policy: np.ndarray, value: np.ndarray, a_grid: np.ndarray, k_grid: np.ndarray,
+                  policy_next: np.ndarray | None = None) -> np.ndarray:
     """Independent: the Euler errors of the grid ``policy`` (a, k, e) with the law's term, ∂V/∂a'' the slope
-    along a of the multilinear interpolant of ``value`` (a, k, e): (a, k test values, e)."""
-    read = [RegularGridInterpolator((a_grid, k_grid), policy[:, :, j], bounds_error=False, fill_value=None)
+    along a of the multilinear interpolant of ``value`` (a, k, e), the day after's; ``policy_next`` tomorrow's
+    policy (default: the same): (a, k test values, e)."""
+    read_today = [RegularGridInterpolator((a_grid, k_grid), policy[:, :, j], bounds_error=False, fill_value=None)
+                  for j in range(E_VALUES.size)]
+    policy_next = policy if policy_next is None else policy_next
+    read = [RegularGridInterpolator((a_grid, k_grid), policy_next[:, :, j], bounds_error=False, fill_value=None)
             for j in range(E_VALUES.size)]
     slope_table = np.diff(value, axis=0) / np.diff(a_grid)[:, None, None]  # (a intervals, k, e)
 
@@ -136,7 +141,7 @@ def _numpy_errors(policy: np.ndarray, value: np.ndarray, a_grid: np.ndarray, k_g
     a, k = np.meshgrid(a_grid, k_test, indexing="ij")
     out = np.empty((*a.shape, E_VALUES.size))
     for j, e in enumerate(E_VALUES):
-        x = read[j]((a, k))
+        x = read_today[j]((a, k))
         c = e * a * k**ALPHA - x
         a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
         expected = np.zeros_like(c)
@@ -163,6 +168,59 @@ def test_a_solved_grid_choice_against_an_independent_numpy_computation() -> None
     assert errors["constrained"] == 0 and errors["undefined"] == 0 and errors["points"] == reference.size
     assert errors["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
     assert errors["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+
+
+def test_a_finite_horizon_against_the_independent_computation() -> None:
+    # Terminal value B log k + D log a (the exact coefficients, B = α̃ / (1 − β α̃)): every period's exact policy is
+    # the infinite horizon's; period t links its grid policy today with period t + 1's tomorrow, and ∂V/∂a'' is
+    # the slope of V_{t+2} (the terminal value, read on its grid, for the last period measured).
+    b_coefficient = ALPHA_TILDE / (1 - BETA * ALPHA_TILDE)
+    document = _document(24, 4)
+    document["model"]["horizon"] = {"periods": 4, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1, 2]
+    k_grid, a_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["a"])
+    policy = np.asarray(result["policy"]["k_next"], dtype=float)  # (period, a, k, e)
+    terminal = b_coefficient * np.log(k_grid)[None, :, None] + D * np.log(a_grid)[:, None, None] + np.zeros(2)
+    values = [*np.asarray(result["value"], dtype=float), terminal]  # V_0 .. V_3, V_4
+    for t in errors["by_period"]["period"]:
+        reference = _numpy_errors(policy[t], values[t + 2], a_grid, k_grid, policy[t + 1])
+        assert errors["by_period"]["max_log10"][t] == pytest.approx(reference.max(), abs=1e-9)
+        assert errors["by_period"]["mean_log10"][t] == pytest.approx(reference.mean(), abs=1e-9)
+    assert errors["constrained"] == 0 and errors["points"] == 3 * reference.size
+
+
+CHOSEN_LAW = {"a": "a**rho * (k_next / k_bar)**theta"}
+"""Learning from the capital chosen for tomorrow: the law moves with the choice, not with today's k."""
+ALPHA_HAT = ALPHA + THETA / (1 - BETA * RHO)
+"""With it: ``V_a = D̂ / a``, ``D̂ = 1 / ((1 − β α̂)(1 − β ρ))``, and the exact saving ``s = β α̂`` (the guess and
+verify above: the first-order condition ``1/c = β (B + D̂ θ) / k'``, ``B = α M``, ``D̂ = M / (1 − β ρ)``,
+``M = 1 + β (B + D̂ θ) = 1 / (1 − β α̂)``)."""
+D_HAT = 1 / ((1 - BETA * ALPHA_HAT) * (1 - BETA * RHO))
+
+
+@pytest.mark.parametrize("ratio", [1.0, 1.025, 0.8])
+def test_a_law_moving_with_the_choice_adds_its_term_today(ratio: float) -> None:
+    # Saving s = ratio · β α̂: 1/c̃ = β (α / (1 − s) + D̂ θ) / k' (the reward's slope in k' and ∂V/∂a' · ∂a'/∂k'
+    # = (D̂ / a') θ a' / k'), so c̃ / c = s / (β (α + (1 − s) D̂ θ)); 1 at ratio 1: rounding level.
+    data = model_data(parse_document(_document(next=CHOSEN_LAW)))
+    found = euler.setup(data)
+    assert isinstance(found, euler.EulerSetup) and found.laws[0].in_choice is not None
+    assert found.laws[0].in_state is None
+
+    def exact(points: np.ndarray, axis: int) -> np.ndarray:
+        return np.repeat((D_HAT / points[:, 0])[:, None], E_VALUES.size, axis=1)
+
+    s = ratio * BETA * ALPHA_HAT
+    errors = euler_states.states_errors(data, found, BETA, _saving(s), slopes=(exact, exact, BETA))
+    assert errors["points"] > 0 and errors["undefined"] == 0
+    if ratio == 1.0:
+        assert errors["max_log10"] < -10
+    else:
+        expected = math.log10(abs(1 - s / (BETA * (ALPHA + (1 - s) * D_HAT * THETA))))
+        assert errors["max_log10"] == pytest.approx(expected, abs=1e-9)
+        assert errors["mean_log10"] == pytest.approx(expected, abs=1e-9)
 
 
 def test_a_cubic_continuous_choice_gets_a_note() -> None:
