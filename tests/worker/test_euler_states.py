@@ -253,6 +253,8 @@ def test_a_continuous_choice_beside_a_discrete_one_with_two_states() -> None:
     # Equal up to the searches' own precision (each point's search stops within about 1e-7 of the choice).
     assert errors["max_log10"] == pytest.approx(plain["max_log10"], abs=1e-3)
     assert errors["mean_log10"] == pytest.approx(plain["mean_log10"], abs=1e-3)
+    # The stationary weighting too: the same policy has the same distribution (each combination weighs its points).
+    assert errors["weighted_mean_log10"] == pytest.approx(plain["weighted_mean_log10"], abs=1e-3)
     assert any("chosen combination" in note for note in beside["notes"])
     document = _document(30, 5, continuous=True, interpolation="monotone_cubic",
                          choices={"overtime": {"values": [0.0, 1.0]}, **GROWTH["choices"]},
