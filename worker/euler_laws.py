@@ -138,6 +138,8 @@ def law_term(data: ModelData, laws: tuple[OpenLaw, ...], which: int, slope: tupl
         if tree is None:
             continue
         grid = data.state_grids[law.position]
+        if grid.size < 2:  # one grid point: the solve moves every y' there, so it never moves with k or x
+            continue
         level = np.broadcast_to(evaluate_tree(dict(data.source.next)[law.position].tree, env), shape)
         inside = (level >= grid[0]) & (level <= grid[-1])  # moved to the nearer end outside: it does not move
         moves = np.where(inside, np.broadcast_to(evaluate_tree(tree, local), shape), 0.0)
