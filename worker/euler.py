@@ -3,8 +3,10 @@
 A model qualifies when its one choice ``x`` sets tomorrow's value of a state
 ``k`` (a ``next_of`` choice; shocks as many as it likes), its reward depends
 on the choice only through one define ``c``, through which it is
-differentiable, and its other states, if any, move by laws that do not move
-with ``k`` or ``x`` (:mod:`worker.euler_setup`; with several states the
+differentiable (:mod:`worker.euler_setup`; other states whose laws move with
+``k`` or ``x`` add terms in the value's slopes, :mod:`worker.euler_laws`;
+several ``next_of`` choices each have their own equation,
+:mod:`worker.euler_choices`; with several states the
 measurement is :mod:`worker.euler_states`'s, with shocks drawn after the
 choice :func:`worker.euler_points.errors_at` takes their expectations).
 With ``r`` the reward, the first-order condition of an interior choice and
@@ -73,8 +75,9 @@ from worker.euler_setup import EulerSetup, setup
 from worker.feasibility import ModelData
 
 __all__ = [
-    "PROFILE_POINTS", "TEST_POINTS_PER_GRID_POINT", "EulerSetup", "PolicyRule", "between_points", "chunk_rows",
-    "error_profile", "euler_errors", "euler_report", "grid_policy", "setup",
+    "PROFILE_POINTS", "TEST_POINTS_PER_GRID_POINT", "EulerSetup", "PolicyRule", "WEIGHT", "between_points",
+    "chunk_rows", "error_profile", "euler_errors", "euler_report", "grid_policy", "pooled_weighted_mean", "setup",
+    "weigh",
 ]
 
 TEST_POINTS_PER_GRID_POINT = 10
@@ -135,6 +138,7 @@ def euler_errors(
     *,
     tomorrow: tuple[ModelData, PolicyRule] | None = None,
     values: ValueParts | None = None,
+    pooling: bool = False,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of ``data``'s state grid.
 
@@ -159,6 +163,8 @@ def euler_errors(
     values : ValueParts, optional
         The value read at points, for draws whose probabilities move with the choice or the state
         (:func:`worker.euler_points.errors_at`).
+    pooling : bool
+        Keep the total stationary weight for pooling parts (:func:`weigh`).
 
     Returns
     -------
@@ -196,11 +202,36 @@ def euler_errors(
     }
     if distribution is not None:
         weights = grid_policy(grid, np.asarray(distribution, dtype=np.float64).reshape(grid.size, n_z))(k_all)
-        total = weights[measured].sum()
-        result["weighted_mean_log10"] = (
-            float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
-        )
+        weigh(result, weights, log_error, measured, pooling=pooling)
     return result
+
+
+def weigh(result: dict[str, Any], weights: np.ndarray, log_error: np.ndarray, measured: np.ndarray, *,
+          pooling: bool = False) -> None:
+    """Set ``result["weighted_mean_log10"]``: the log10 errors measured, weighted by the stationary ``weights`` at
+    the test points, renormalised over the points measured; with ``pooling`` also ``result[WEIGHT]``, the total
+    weight (its sum over several parts renormalises their pooled mean: :func:`pooled_weighted_mean`)."""
+    total = float(weights[measured].sum())
+    result["weighted_mean_log10"] = (
+        float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
+    )
+    if pooling:
+        result[WEIGHT] = total
+
+
+WEIGHT = "_weight"
+"""The key of a part's total stationary weight while parts are pooled (never in a result: popped by
+:func:`pooled_weighted_mean`)."""
+
+
+def pooled_weighted_mean(parts: list[dict[str, Any]]) -> float | None:
+    """The stationary-weighted mean over parts that each weighted their own points (:func:`weigh` with
+    ``pooling``), their weight totals popped: ``Σ_parts W_p · mean_p / Σ_parts W_p``; None when none weighs."""
+    totals = [part.pop(WEIGHT, 0.0) for part in parts]
+    weight = sum(totals)
+    if weight <= 0:
+        return None
+    return sum(total * part["weighted_mean_log10"] for total, part in zip(totals, parts) if total > 0) / weight
 
 
 def error_profile(state: str, k_points: np.ndarray, log_error: np.ndarray, measured: np.ndarray) -> dict[str, Any]:

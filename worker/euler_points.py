@@ -19,13 +19,15 @@ from typing import Any
 import numpy as np
 
 from worker import _slopes
+from worker.euler_laws import SlopeParts, SlopeReader, law_term
 from worker.euler_setup import EulerSetup, needs_value
 from worker.expressions import Node
 from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
-__all__ = ["ERROR_FLOOR", "PointsRule", "ValueParts", "ValueReader", "binding", "chance_slopes", "combinations",
-           "draw_weights", "environment", "errors_at", "invert", "marginal_at", "next_points", "slope_at", "subset"]
+__all__ = ["ERROR_FLOOR", "Companions", "PointsRule", "ValueParts", "ValueReader", "binding", "chance_slopes",
+           "combinations", "draw_weights", "environment", "errors_at", "invert", "marginal_at", "next_points",
+           "slope_at", "subset"]
 
 ERROR_FLOOR = 2.0**-56
 """The smallest error reported, a little below the rounding of one float64 operation."""
@@ -37,6 +39,9 @@ PointsRule = Callable[[np.ndarray], np.ndarray]
 (m, shock points)."""
 ValueReader = Callable[[np.ndarray], np.ndarray]
 """``read(points) -> V``: the value at points (rows, states), at every shock point, (rows, shock points)."""
+Companions = Callable[[np.ndarray], dict[str, np.ndarray]]
+"""``beside(points) -> {choice: x_j}``: at points (m, states), the values of the other ``next_of`` choices (the
+:attr:`~worker.euler_setup.EulerSetup.companions`) at every shock point, each (m, shock points)."""
 ValueParts = tuple[ValueReader, ValueReader, float]
 """What draws moving with ``x`` or ``k`` need: the value tomorrow read today (``V_{t+1}``), the value the
 day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomorrow's discount."""
@@ -45,9 +50,14 @@ day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomor
 def errors_at(
     data: ModelData, found: EulerSetup, discount: float, policy: PointsRule, points: np.ndarray,
     tomorrow: tuple[ModelData, PointsRule], values: ValueParts | None = None,
+    companions: tuple[Companions, Companions] | None = None, slopes: SlopeParts | None = None,
 ) -> tuple[np.ndarray, np.ndarray]:
     """log10 errors and the constrained mask at test ``points`` (m, states), both (m, shock points);
-    ``tomorrow`` is the model and policy of the next period.
+    ``tomorrow`` is the model and policy of the next period; ``companions`` today's and tomorrow's values of
+    the other ``next_of`` choices, when the model has several (held there, their states moving to them);
+    ``slopes`` the value's slopes, when another state's law moves with ``k`` or ``x``
+    (:mod:`worker.euler_laws`: each such law adds ``∂V/∂y(s') ∂g/∂x`` today and ``β' E ∂V/∂y(s'') ∂g/∂k``
+    tomorrow).
 
     With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and its
     marginal reward do not move with them), tomorrow's marginal value is the expectation over today's draws
@@ -60,11 +70,18 @@ def errors_at(
     n_z = data.n_shocks
     columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states)}
     k = columns.pop(found.state)
+    beside_next = None
+    if companions is not None:
+        columns.update(companions[0](points))
+        beside_next = companions[1]
     shocks = data.shock_table[None, :, :]
     data_next, policy_next = tomorrow
     draws = combinations(data)
     if needs_value(found) and values is None:
         raise ValueError("draws whose probabilities move with the choice or the state need the value")
+    if found.laws and slopes is None:
+        raise ValueError("a law of motion that moves with the chosen state or the choice needs the value's slopes")
+    later_slope = None if slopes is None else (slopes[1], slopes[2])
     later = None if values is None else (values[1], values[2])
     with np.errstate(all="ignore"):
         x = policy(points)
@@ -81,9 +98,13 @@ def errors_at(
             here = env if d == 0 else environment(data, found, k, shocks, x, {**columns, **drawn})
             tomorrows = next_points(data, found, here, x)
             if last is None or not np.array_equal(tomorrows, last[0], equal_nan=True):
-                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later))
+                last = (tomorrows, _marginal_value(data_next, found, policy_next, tomorrows, shocks, later,
+                                                   beside_next, later_slope))
             slope_next = last[1].reshape(x.shape[0], n_z, n_z)
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
+            if found.laws and slopes is not None:
+                expected += chances[d] * law_term(data, found.laws, 0, found.define_slope, here, x.shape,
+                                                  tomorrows, slopes[0], data.transition)
             if moving is not None and values is not None:
                 extra += moving[d] * _worth(data, here, tomorrows, values[0], discount, x.shape)
         target = -(discount * expected + extra) / c_slope
@@ -93,9 +114,13 @@ def errors_at(
 
 
 def next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.ndarray) -> np.ndarray:
-    """Tomorrow's states, rows (test point, z): ``k' = x``, the others by their laws (moved into their grids)."""
+    """Tomorrow's states, rows (test point, z): ``k' = x``, each companion's state its choice's value in ``env``,
+    the others by their laws (moved into their grids)."""
     out = np.empty((x.size, len(data.states)))
     out[:, data.states.index(found.state)] = x.reshape(-1)
+    for state, choice in found.companions:
+        t = data.states.index(state)
+        out[:, t] = np.broadcast_to(env[choice], x.shape).reshape(-1)
     for t, law in data.source.next:
         grid = data.state_grids[t]
         out[:, t] = np.clip(np.broadcast_to(evaluate_tree(law.tree, env), x.shape), grid[0], grid[-1]).reshape(-1)
@@ -111,12 +136,18 @@ def _worth(data: ModelData, env: dict[str, Any], tomorrows: np.ndarray, read: Va
 
 
 def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,
-                    shocks: np.ndarray, later: tuple[ValueReader, float] | None = None) -> np.ndarray:
-    """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there,
-    its expectation over the draws after the choice, (rows, shock points); with ``later`` (the value the day
-    after and tomorrow's discount) and probabilities moving with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``."""
+                    shocks: np.ndarray, later: tuple[ValueReader, float] | None = None,
+                    beside: Companions | None = None,
+                    later_slope: tuple[SlopeReader, float] | None = None) -> np.ndarray:
+    """∂V/∂k at states ``points`` (rows) and every shock point: the reward's slope in ``k`` at the policy there
+    (the companions' choices at theirs, ``beside``), its expectation over the draws after the choice, (rows,
+    shock points); with ``later`` (the value the day after and tomorrow's discount) and probabilities moving
+    with ``k``, plus ``Σ_d ∂p_d/∂k · W_d``; with ``later_slope`` (the day after's value slopes and tomorrow's
+    discount) and laws moving with ``k``, plus ``β' Σ_y ∂g_y/∂k · E ∂V/∂y`` (:mod:`worker.euler_laws`)."""
     k = points[:, [data.states.index(found.state)]]
     others = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if name != found.state}
+    if beside is not None:
+        others.update(beside(points))
     x = policy(points)
     draws = combinations(data)
     env = environment(data, found, k, shocks, x, {**others, **draws[0]})
@@ -126,6 +157,10 @@ def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, poin
     for d, drawn in enumerate(draws):
         here = env if d == 0 else environment(data, found, k, shocks, x, {**others, **drawn})
         total = total + chances[d] * slope_at(found.state_slope, here, x.shape)
+        if found.laws and later_slope is not None:
+            total = total + chances[d] * later_slope[1] * law_term(
+                data, found.laws, 1, found.state_slope, here, x.shape, next_points(data, found, here, x),
+                later_slope[0], data.transition)
         if moving is not None and later is not None:
             total = total + moving[d] * _worth(data, here, next_points(data, found, here, x), later[0], later[1],
                                                x.shape)

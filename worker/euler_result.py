@@ -1,10 +1,10 @@
 """``diagnostics.euler_errors`` of an infinite-horizon solve: which measurement applies, and its note.
 
 :func:`euler_diagnostics` picks the measurement for the solved problem — one state (:mod:`worker.euler`),
-several states (:mod:`worker.euler_states`), a continuous choice beside discrete ones
-(:mod:`worker.continuous.mixed_euler`) — with the policy between grid points read as the solve reads it,
-and appends a note to the diagnostics where the errors were not measured.  (A finite horizon's are
-:mod:`worker.horizon_euler`'s.)
+several states (:mod:`worker.euler_states`), several ``next_of`` choices (:mod:`worker.euler_choices`), a
+continuous choice beside discrete ones (:mod:`worker.continuous.mixed_euler`) — with the policy between grid
+points read as the solve reads it, and appends a note to the diagnostics where the errors were not measured.
+(A finite horizon's are :mod:`worker.horizon_euler`'s.)
 """
 
 from __future__ import annotations
@@ -40,6 +40,19 @@ def euler_diagnostics(
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     mixed = bool(getattr(problem, "others", ()))
+    from worker.euler_choices import choices_report, choices_setup, several_next_of
+
+    if not mixed and several_next_of(data):  # several next_of choices, each with its own equation
+        founds = choices_setup(data)
+        if isinstance(founds, list):
+            chosen = problem.choice_values(outcome.policy)
+            errors = choices_report(data, founds, doc.discount, chosen, distribution)
+            if isinstance(problem_diagnostics.get("timings"), dict):
+                problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
+            return {"euler_errors": errors}
+        add_note(founds or "Euler-equation errors were not measured: they need choices that set tomorrow's value "
+                 "of a state (next_of) on grids of two points or more")
+        return {}
     found = _setup(problem, data, mixed)
     values = None
     if not isinstance(found, str) and found is not None and needs_value(found):
@@ -51,10 +64,20 @@ def euler_diagnostics(
 
         read = value_reader(data, outcome.value)
         values = (read, read, float(doc.discount))
+    slopes = None
+    if not isinstance(found, str) and found is not None and found.laws:  # laws moving with k or x: value slopes
+        refusal = value_refusal(doc, problem, slopes=True)
+        if refusal:
+            add_note(refusal)
+            return {}
+        from worker.euler_laws import value_slope
+
+        slope = value_slope(data, outcome.value)
+        slopes = (slope, slope, float(doc.discount))
     if mixed:  # a continuous choice beside others: at the chosen combination
         from worker.continuous.mixed_euler import mixed_euler_report
 
-        errors, note = mixed_euler_report(problem, outcome.value, doc.discount, values)
+        errors, note = mixed_euler_report(problem, outcome.value, doc.discount, values, distribution)
     elif len(data.states) > 1:
         from worker.euler_states import search_rule, states_report
 
@@ -62,7 +85,7 @@ def euler_diagnostics(
         if found is not None and not isinstance(found, str):
             rule = search_rule(problem, outcome.value, outcome.policy) if continuous else None
             errors = states_report(data, found, doc.discount, problem.choice_values(outcome.policy)[choice],
-                                   distribution, rule=rule, values=values)
+                                   distribution, rule=rule, values=values, slopes=slopes)
     else:
         rule = problem.policy_rule(outcome.value, outcome.policy) if continuous else None
         errors, note = euler_report(data, doc.discount, problem.choice_values(outcome.policy)[choice],
@@ -88,11 +111,17 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
     return setup(data)
 
 
-def value_refusal(doc: Any, problem: Any) -> str:
+def value_refusal(doc: Any, problem: Any, *, slopes: bool = False) -> str:
     """Why the value cannot be read as the solve reads it, for draws whose probabilities move with the choice or
-    the chosen state ("" when it can: a choice restricted to the grid, or ``linear`` interpolation)."""
+    the chosen state — or, with ``slopes``, for laws of motion that move with them ("" when it can: a choice
+    restricted to the grid, or ``linear`` interpolation)."""
     if getattr(problem, "choose_at", None) is None or getattr(doc.model, "interpolation", "linear") == "linear":
         return ""
+    if slopes:
+        return ("Euler-equation errors were not measured: a law of motion moves with the chosen state or the "
+                "choice, so the envelope condition carries the value's slope in that law's state, and with "
+                f"{doc.model.interpolation} interpolation that slope is not read here as the solve reads the value "
+                "(it is with linear)")
     return ("Euler-equation errors were not measured: the probabilities of a draw after the choice move with the "
             "choice or the chosen state, so the first-order condition carries the value of each draw, and with "
             f"{doc.model.interpolation} interpolation that value is not read here as the solve reads it (it is "

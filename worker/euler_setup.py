@@ -2,11 +2,14 @@
 
 See :mod:`worker.euler` for the equation and where the errors are measured.  A model qualifies when its one
 choice ``x`` is ``next_of`` a state ``k``, its reward depends on the choice only through one define ``c``,
-differentiably, and every other state moves by a law of motion that does not move with ``k`` or ``x``
-(directly or through a define): then the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice
-and tomorrow's marginal value needs the policy alone.  Shocks drawn after the choice are allowed when ``c``
-and its marginal reward do not change with the draw (:func:`_draw_form` says why); probabilities that move
-with ``k`` or ``x`` add a term in the value's level (:func:`needs_value`).
+differentiably.  When every other state moves by a law of motion that does not move with ``k`` or ``x``
+(directly or through a define), the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice and
+tomorrow's marginal value needs the policy alone; a law that moves with them adds terms in the value's
+slope in its state (:mod:`worker.euler_laws`, :attr:`EulerSetup.laws`).  With several ``next_of`` choices
+each has its own setup (:func:`choice_setup`, :mod:`worker.euler_choices`), every law closed.  Shocks
+drawn after the choice are allowed when ``c`` and its marginal reward do not change with the draw
+(:func:`_draw_form` says why); probabilities that move with ``k`` or ``x`` add a term in the value's level
+(:func:`needs_value`).
 """
 
 from __future__ import annotations
@@ -14,10 +17,11 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 from worker import _slopes
+from worker.euler_laws import OpenLaw, open_laws
 from worker.expressions import Node, Number, names_in
 from worker.feasibility import ModelData
 
-__all__ = ["EulerSetup", "needs_value", "setup", "slope_trees"]
+__all__ = ["EulerSetup", "choice_setup", "needs_value", "setup", "slope_trees"]
 
 
 @dataclass(frozen=True)
@@ -42,6 +46,12 @@ class EulerSetup:
     ``(∂p/∂x, ∂p/∂k)`` (None where it does not move; the defines' derivatives are those of ``define_slope``
     and ``state_slope``); None when no probability moves.  The errors then need the value
     (:func:`needs_value`)."""
+    laws: tuple[OpenLaw, ...] = ()
+    """The other states' laws of motion that move with ``k`` or ``x`` (one choice only): their slopes, whose
+    terms need the value's slopes (:mod:`worker.euler_laws`)."""
+    companions: tuple[tuple[str, str], ...] = ()
+    """With several ``next_of`` choices (:mod:`worker.euler_choices`): ``(state, choice)`` of each of the others,
+    whose values the measurement holds at the policy's and whose states move to them tomorrow."""
 
 
 def needs_value(found: EulerSetup) -> bool:
@@ -62,11 +72,28 @@ def setup(data: ModelData) -> EulerSetup | str | None:
         return None
     if len(data.choices) != 1:
         return ("Euler-equation errors not computed: they are measured for models with one choice that sets "
-                "tomorrow's value of a state (or a continuous one beside discrete choices)")
+                "tomorrow's value of a state, several such choices and no other, or a continuous one beside "
+                "discrete choices")
     position = data.setter.index(0)
     if data.choice_is_menu[0] or data.state_grids[position].size < 2:
         return None
-    state, choice = data.states[position], data.choices[0]
+    return choice_setup(data, position)
+
+
+def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
+    """The derivative trees of the Euler equation of the choice that sets the state at ``position``, or a note
+    why there are none; the model's other ``next_of`` choices, if any, are its :attr:`EulerSetup.companions`.
+
+    With several such choices each has its own equation: the first-order condition in its choice ``x_i``
+    (the others held at the policy's) and the envelope condition in its state ``k_i``, as for one choice,
+    ``∂r/∂c · ∂c/∂x_i = −β E[∂r/∂k_i(s')]``; that needs every law of the states no choice sets to be free of
+    every chosen state and every choice (:func:`_open_law`).
+    """
+    j = data.setter[position]
+    assert j is not None
+    state, choice = data.states[position], data.choices[j]
+    companions = tuple((data.states[p], data.choices[i]) for p, i in enumerate(data.setter)
+                       if i is not None and i != j)
     src = data.source
     defines = {name: expr.tree for name, expr in src.defines}
     reward = src.reward.tree
@@ -74,9 +101,11 @@ def setup(data: ModelData) -> EulerSetup | str | None:
     define, reason = _carrier(defines, reward, choice, moving)
     if define is None:
         return f"Euler-equation errors not computed: {reason}"
-    reason = _open_law(data, defines, state, choice)
-    if reason:
-        return f"Euler-equation errors not computed: {reason}"
+    if companions:  # several next_of choices: every other law must close (no value slopes there)
+        reason = _open_law(data, defines, (state, *(pair[0] for pair in companions)),
+                           (choice, *(pair[1] for pair in companions)))
+        if reason:
+            return f"Euler-equation errors not computed: {reason}"
     try:
         after = slope_trees(defines, define, skip_own=True)
         marginal = _slopes.derivative(reward, define, after)
@@ -97,9 +126,15 @@ def setup(data: ModelData) -> EulerSetup | str | None:
         chances = _chance_slopes(data, defines, state, choice, in_choice, in_state)
     except _slopes.NotSmooth as error:
         return f"Euler-equation errors not computed: a draw's probability is not differentiable ({error})"
+    try:
+        laws = () if companions else open_laws(data, {state, *_depends(defines, state)},
+                                               {choice, *_depends(defines, choice)}, state, choice, in_choice,
+                                               in_state)
+    except _slopes.NotSmooth as error:
+        return f"Euler-equation errors not computed: a law of motion is not differentiable ({error})"
     later = {name: (defines[name], derived) for name, derived in after.items()}
     return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
-                      (state_slope, in_state), chances)
+                      (state_slope, in_state), chances, laws, companions)
 
 
 def _chance_slopes(data: ModelData, defines: dict[str, Node], state: str, choice: str, in_choice: dict[str, Node],
@@ -124,20 +159,26 @@ def _chance_slopes(data: ModelData, defines: dict[str, Node], state: str, choice
     return tuple(out) if moving else None
 
 
-def _open_law(data: ModelData, defines: dict[str, Node], state: str, choice: str) -> str:
+def _open_law(data: ModelData, defines: dict[str, Node], states: tuple[str, ...], choices: tuple[str, ...]) -> str:
     """Why the envelope condition does not close over the other states' laws of motion ("" when it does).
 
-    With ``y' = g(y, z)`` free of the chosen state ``k`` and of the choice, ``∂V/∂k`` is the reward's
-    slope in ``k`` at the chosen choice; a law that moves with ``k`` or with the choice would add
-    ``β E ∂V/∂y' · ∂g/∂k``, a slope of the value the policy alone does not give.
+    With ``y' = g(y, z)`` free of the chosen states ``k`` and of the choices, ``∂V/∂k`` is the reward's
+    slope in ``k`` at the chosen choice; a law that moves with ``k`` or with a choice would add
+    ``β E ∂V/∂y' · ∂g/∂k``, a slope of the value the policy alone does not give.  ``states`` and ``choices``
+    start with the measured choice's own.
     """
-    moved = {**_depends(defines, state), **_depends(defines, choice)}
+    moved: dict[str, bool] = {}
+    for name in (*states, *choices):
+        moved.update(_depends(defines, name))
     for position, law in data.source.next:
         used = names_in(law.tree)
-        if any(name in (state, choice) or name in moved for name in used):
-            return (f"the law of motion of `{data.states[position]}` moves with `{state}` or with the choice "
-                    f"`{choice}`, so tomorrow's marginal value of `{state}` would need the slope of the value in "
-                    f"`{data.states[position]}`, which the policy alone does not give")
+        triggers = sorted(name for name in used if name in states or name in choices or name in moved)
+        if triggers:
+            state, law_of = states[0], data.states[position]
+            moves = (f"moves with `{state}` or with the choice `{choices[0]}`" if len(choices) == 1 else
+                     f"moves with `{triggers[0]}` (a state a choice sets, a choice, or a define of them)")
+            return (f"the law of motion of `{law_of}` {moves}, so tomorrow's marginal value of `{state}` would need "
+                    f"the slope of the value in `{law_of}`, which the policy alone does not give")
     return ""
 
 

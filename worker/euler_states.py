@@ -39,8 +39,9 @@ from typing import Any
 
 import numpy as np
 
-from worker.euler import between_points, chunk_rows, error_profile
-from worker.euler_points import PointsRule, ValueParts, ValueReader, errors_at
+from worker.euler import between_points, chunk_rows, error_profile, weigh
+from worker.euler_laws import SlopeParts
+from worker.euler_points import Companions, PointsRule, ValueParts, ValueReader, errors_at
 from worker.euler_setup import EulerSetup
 from worker.feasibility import ModelData
 
@@ -118,18 +119,23 @@ def states_errors(
     *,
     tomorrow: tuple[ModelData, PointsRule] | None = None,
     values: ValueParts | None = None,
+    pooling: bool = False,
+    companions: tuple[Companions, Companions] | None = None,
+    slopes: SlopeParts | None = None,
 ) -> dict[str, Any]:
     """Euler-equation errors of ``policy`` at the test points of a model with several states.
 
-    As :func:`worker.euler.euler_errors`, with rules that take points (m, states); ``distribution`` and
-    ``at_end`` are over the flat grid points, (grid points, shock points).
+    As :func:`worker.euler.euler_errors` (``pooling`` too), with rules that take points (m, states);
+    ``distribution`` and ``at_end`` are over the flat grid points, (grid points, shock points); with several
+    ``next_of`` choices ``companions`` gives the others' values today and tomorrow, and with laws moving with
+    the chosen state or the choice ``slopes`` the value's slopes (:func:`worker.euler_points.errors_at`).
     """
     n_z = data.n_shocks
     axis = data.states.index(found.state)
     points, layout = test_points(data, found)
     rows = chunk_rows(n_z)
-    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy), values)
-             for start in range(0, points.shape[0], rows)]
+    parts = [errors_at(data, found, discount, policy, points[start:start + rows], tomorrow or (data, policy), values,
+                       companions, slopes) for start in range(0, points.shape[0], rows)]
     log_error = np.concatenate([part[0] for part in parts])
     constrained = np.concatenate([part[1] for part in parts])
     grid = data.state_grids[axis]
@@ -161,16 +167,13 @@ def states_errors(
         share = share.reshape(shape)
         weights = (np.take(table, interval, axis=axis) * (1.0 - share)
                    + np.take(table, interval + 1, axis=axis) * share).reshape(-1, n_z)
-        total = weights[measured].sum()
-        result["weighted_mean_log10"] = (
-            float(weights[measured] @ log_error[measured] / total) if measured.any() and total > 0 else None
-        )
+        weigh(result, weights, log_error, measured, pooling=pooling)
     return result
 
 
 def states_report(data: ModelData, found: EulerSetup, discount: float, policy_values: np.ndarray,
                   distribution: np.ndarray | None = None, *, rule: PointsRule | None = None,
-                  values: ValueParts | None = None) -> dict[str, Any]:
+                  values: ValueParts | None = None, slopes: SlopeParts | None = None) -> dict[str, Any]:
     """``diagnostics.euler_errors`` of a solved model with several states (see :func:`worker.euler.euler_report`).
 
     ``policy_values`` is the chosen value at every flat point, (n,); without ``rule`` (a choice restricted
@@ -184,7 +187,7 @@ def states_report(data: ModelData, found: EulerSetup, discount: float, policy_va
         rule = grid_rule(data, chosen, extend=axis)
         grid = data.state_grids[axis]
         at_end = (chosen <= grid[0]) | (chosen >= grid[-1])
-    return states_errors(data, found, discount, rule, distribution, at_end, values=values)
+    return states_errors(data, found, discount, rule, distribution, at_end, values=values, slopes=slopes)
 
 
 def value_reader(data: ModelData, value: np.ndarray) -> ValueReader:

@@ -46,12 +46,16 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         return {}, "Euler-equation errors were not measured: they apply to grid models"
     continuous = getattr(problem, "choose_at", None) is not None
     mixed = bool(getattr(problem, "others", ()))
+    from worker.euler_choices import choices_errors, choices_setup, grid_rules, pool_periods, several_next_of
+
+    several_choices = not mixed and several_next_of(data)  # several next_of choices, each with its own equation
+    founds = choices_setup(data) if several_choices else None
     if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
         from worker.continuous.mixed_euler import mixed_errors, mixed_setup, searcher
 
         found = mixed_setup(problem, data)
     else:
-        found = setup(data)
+        found = founds[0] if isinstance(founds, list) else founds if several_choices else setup(data)
     if not isinstance(found, EulerSetup):
         return {}, found or ("Euler-equation errors were not measured: they need a choice that sets tomorrow's "
                              "value of a state (next_of)")
@@ -61,6 +65,8 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     moving = needs_value(found)
     if moving and value_refusal(doc, problem):
         return {}, value_refusal(doc, problem)
+    if found.laws and value_refusal(doc, problem, slopes=True):  # laws moving with k or x: the value's slopes
+        return {}, value_refusal(doc, problem, slopes=True)
 
     def after(t: int) -> np.ndarray:
         """``V_{t+1}``, the value period ``t`` was chosen against."""
@@ -103,21 +109,43 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                            searcher(problem, after(t), enter=lambda t=t: plan.enter(t)))
         return searches[t]
 
+    def choices_at(t: int) -> tuple[Any, Any, Any]:
+        """Period ``t``'s params, and its grid rules and where they are at a grid end (several choices)."""
+        assert isinstance(founds, list)
+        chosen = problem.choice_values(outcome.policies[t - first])
+        return (dataclasses.replace(data, param_values=period_params(doc.model, t)),
+                *grid_rules(data, founds, chosen))
+
     def measured(t: int) -> dict[str, Any]:
+        if several_choices:
+            assert isinstance(founds, list)
+            today, rules, at_end = choices_at(t)
+            data_next, rules_next, _ = choices_at(t + 1)
+            return choices_errors(today, founds, float(plan.discounts[t]), rules, None, at_end,
+                                  tomorrow=(data_next, rules_next))
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)
             return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
                                 values_at(t))[0]
         today, rule = model_and_rule(t)
+        extra = {}
+        if found.laws:
+            from worker.euler_laws import value_slope
+
+            extra["slopes"] = (value_slope(data, after(t)), value_slope(data, after(t + 1)),
+                               float(plan.discounts[t + 1]))
         return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
-                       values=values_at(t))
+                       values=values_at(t), **extra)
 
     by_period: dict[str, list[Any]] = {"period": [], "max_log10": [], "mean_log10": []}
     pooled = {"points": 0, "constrained": 0, "undefined": 0}
-    worst, total, profile = None, 0.0, None
+    worst, total, profile, choices, defined = None, 0.0, None, [], None
     for t in range(first, periods - 1):
         errors = measured(t)
+        if "by_choice" in errors:  # define and profile: those of the first period's choice with the largest error
+            choices.append(errors["by_choice"])
+            defined = defined or errors["define"]
         profile = profile or errors["profile"]
         by_period["period"].append(t)
         by_period["max_log10"].append(errors["max_log10"])
@@ -132,10 +160,12 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         "max_log10": worst,
         "mean_log10": total / pooled["points"] if pooled["points"] else None,
         **pooled,
-        "define": found.define,
+        "define": defined or found.define,
         "profile": profile,
         "by_period": by_period,
     }
+    if choices:
+        result["by_choice"] = pool_periods(choices)
     note = (f"Euler-equation errors: periods {first} to {periods - 2} (the last period's tomorrow is the terminal "
             "value, with no Euler equation)"
             + (f"; the continuous choice at the chosen combination of the others: {pooled['constrained']:,} test "

@@ -193,14 +193,14 @@ def test_a_continuous_choice_errors_fall_as_the_grid_is_refined(interpolation: s
         assert coarse - fine >= least_drop
 
 
-def test_a_law_that_moves_with_the_chosen_state_gets_a_note() -> None:
-    # a' = a^rho · k^0.1: tomorrow's value would need ∂V/∂a, which the policy alone does not give.
+def test_a_law_that_moves_with_the_chosen_state_is_measured_with_the_value_slope() -> None:
+    # a' = a^rho · k^0.1: tomorrow's marginal value of k needs ∂V/∂a, read from the solved value
+    # (worker.euler_laws; checked against the exact policy and an independent computation in test_euler_laws.py).
     document = _document(next={"a": "a**rho * k**0.1"})
     found = euler.setup(_data(document))
-    assert isinstance(found, str) and "law of motion of `a`" in found
-    result = solve(document)
-    assert "euler_errors" not in result["diagnostics"]
-    assert any("law of motion of `a`" in note for note in result["diagnostics"]["notes"])
+    assert isinstance(found, euler.EulerSetup) and [law.position for law in found.laws] == [0]
+    errors = solve(document)["diagnostics"]["euler_errors"]
+    assert errors["points"] > 0 and errors["max_log10"] is not None
 
 
 def test_the_axis_order_moves_only_the_shock_columns_of_the_profile() -> None:
@@ -253,6 +253,8 @@ def test_a_continuous_choice_beside_a_discrete_one_with_two_states() -> None:
     # Equal up to the searches' own precision (each point's search stops within about 1e-7 of the choice).
     assert errors["max_log10"] == pytest.approx(plain["max_log10"], abs=1e-3)
     assert errors["mean_log10"] == pytest.approx(plain["mean_log10"], abs=1e-3)
+    # The stationary weighting too: the same policy has the same distribution (each combination weighs its points).
+    assert errors["weighted_mean_log10"] == pytest.approx(plain["weighted_mean_log10"], abs=1e-3)
     assert any("chosen combination" in note for note in beside["notes"])
     document = _document(30, 5, continuous=True, interpolation="monotone_cubic",
                          choices={"overtime": {"values": [0.0, 1.0]}, **GROWTH["choices"]},

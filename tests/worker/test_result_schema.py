@@ -146,6 +146,14 @@ def _growth_two_states() -> dict[str, Any]:
     return {**grid_document(model), "report": {"stationary": True, "euler_errors": True}}
 
 
+def _two_chosen_states() -> dict[str, Any]:
+    """Invented: a workshop choosing tomorrow's machines k and tools h out of today's output (two next_of choices)."""
+    model = log_growth(points=8, define={"c": "z * k**0.25 * h**0.15 - k_next - h_next"},
+                       choices={"k_next": {"next_of": "k"}, "h_next": {"next_of": "h"}})
+    model["states"] = {"k": {"min": 0.04, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.1, "points": 6}}
+    return {**grid_document(model), "report": {"stationary": True, "euler_errors": True}}
+
+
 CASES: dict[str, Callable[[], dict[str, Any]]] = {
     **{f"example:{name}": (lambda name=name: load_example(name)) for name in example_names()},
     "grid horizon, hints, cohort, simulation, euler errors": lambda: _glassblower(20),
@@ -169,6 +177,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
     "continuous choice beside a discrete one": _economy_with_work,
     "static choice": _static_choice,
     "euler errors with two states": _growth_two_states,
+    "euler errors of two next_of choices": _two_chosen_states,
     "law of motion leaving its grid, non-finite rewards": _leaving_grid,
     "max_iterations": lambda: machine_shop(solver={"method": "howard", "max_iterations": 1}),
 }
@@ -244,6 +253,8 @@ def test_the_cases_reach_the_shapes_they_are_for(results: dict[str, dict[str, An
     assert search["status"] == "converged" and search["sign_change"] is not None
     assert results["static choice"]["diagnostics"]["maximised_within_period"] == ["hours"]
     assert results["euler errors with two states"]["diagnostics"]["euler_errors"]["profile"]["over"] == ["level"]
+    assert list(results["euler errors of two next_of choices"]["diagnostics"]["euler_errors"]["by_choice"]) == [
+        "k_next", "h_next"]
     leaving = results["law of motion leaving its grid, non-finite rewards"]["diagnostics"]
     assert leaving["clamped_next"]["policy"]["count"] > 0 and leaving["nonfinite_rewards"]["count"] > 0
     assert results["max_iterations"]["status"] == "max_iterations"

@@ -12,7 +12,12 @@ function has a kink, and the first-order condition of the continuous choice alon
 The choices at test points are the fitted problem's own search there, as for a continuous choice alone.
 
 The pooled errors: ``max_log10`` the largest over the combinations, ``mean_log10`` the mean over every
-point measured, ``profile`` the worst at each test point; ``weighted_mean_log10`` is not given.
+point measured, ``profile`` the worst at each test point.  With the stationary distribution (an infinite
+horizon's ``report.stationary``), ``weighted_mean_log10`` weights every point measured by it, read at the
+test point as for one choice (:func:`worker.euler.euler_errors`, :func:`worker.euler_states.states_errors`),
+renormalised over the points measured in all combinations: each combination weighs its own points, and
+their sums pool them (:func:`worker.euler.pooled_weighted_mean`; a test point is measured in one
+combination at most, the one chosen there).
 """
 
 from __future__ import annotations
@@ -23,7 +28,7 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _codegen
-from worker.euler import EulerSetup, between_points, euler_errors, setup
+from worker.euler import EulerSetup, between_points, euler_errors, pooled_weighted_mean, setup
 from worker.euler_points import ValueParts, combinations, environment, next_points
 from worker.euler_states import states_errors, test_points
 from worker.feasibility import ModelData
@@ -51,23 +56,41 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
     )
 
 
-def mixed_euler_report(problem: Any, v: np.ndarray, discount: float,
-                       values: ValueParts | None = None) -> tuple[dict[str, Any] | None, str]:
-    """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices."""
+def mixed_euler_report(problem: Any, v: np.ndarray, discount: float, values: ValueParts | None = None,
+                       distribution: np.ndarray | None = None) -> tuple[dict[str, Any] | None, str]:
+    """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices;
+    ``distribution`` the stationary one over the flat points, (n,), for ``weighted_mean_log10``."""
     data = problem.model_data
     found = mixed_setup(problem, data)
     if not isinstance(found, EulerSetup):
         return None, found
     search = searcher(problem, v)
-    return mixed_errors(problem, data, discount, search, (data, search), values)
+    return mixed_errors(problem, data, discount, search, (data, search), values, distribution)
 
 
 def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
-    """The Euler setup of the model with the other choices fixed, or a note why there is none."""
+    """The Euler setup of the model with the other choices fixed, or a note why there is none.
+
+    Another choice that sets tomorrow's value of a state is refused: its combination changes with its state
+    from one day to the next, so the test points where the same combination is chosen today and at every
+    state tomorrow (the rule here) would be few or none, and its state has no law to move by in the model
+    with it fixed.
+    """
+    setting = [name for name in problem.others if data.setter.count(data.choices.index(name))]
+    if setting:
+        return (f"Euler-equation errors were not measured: beside another choice that sets tomorrow's value of a "
+                f"state (`{setting[0]}`), the continuous choice's equation is measured only at the chosen "
+                "combination of the others on both days, which such a choice changes from day to day; give the "
+                "other choice no next_of, or make both choices restricted to their grids (each then has its own "
+                "equation)")
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):
         return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
                          "tomorrow's value of a state (next_of)")
+    if found.laws:
+        return (f"Euler-equation errors were not measured: beside other choices, a law of motion that moves with "
+                f"`{found.state}` or the choice `{found.choice}` (the law of "
+                f"`{data.states[found.laws[0].position]}`) is not measured")
     return found
 
 
@@ -99,10 +122,11 @@ def searcher(problem: Any, v: np.ndarray, enter: Callable[[], None] | None = Non
 
 
 def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
-                 tomorrow: tuple[ModelData, Search], values: ValueParts | None = None) -> tuple[dict[str, Any], str]:
+                 tomorrow: tuple[ModelData, Search], values: ValueParts | None = None,
+                 distribution: np.ndarray | None = None) -> tuple[dict[str, Any], str]:
     """The pooled errors over the combinations of the other choices, and the note; ``data`` and ``search`` are
     today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon); ``values`` as
-    :func:`worker.euler_points.errors_at` takes them."""
+    :func:`worker.euler_points.errors_at` takes them; ``distribution`` the stationary one (infinite horizon)."""
     n_z = data.n_shocks
     several = len(data.states) > 1
     data_next, search_next = tomorrow
@@ -112,13 +136,15 @@ def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
         found = setup(model)
         today = _at_combination(model, found, search, search_next, d)
         if several:
-            parts.append(states_errors(model, found, discount, today,
-                                       tomorrow=(model_next, lambda points: search_next(points)[0]), values=values))
+            parts.append(states_errors(model, found, discount, today, distribution,
+                                       tomorrow=(model_next, lambda points: search_next(points)[0]), values=values,
+                                       pooling=True))
         else:
             parts.append(euler_errors(model, found, discount, lambda k, today=today: today(k[:, None]),
-                                      tomorrow=(model_next, lambda k: search_next(k)[0]), values=values))
+                                      distribution, tomorrow=(model_next, lambda k: search_next(k)[0]),
+                                      values=values, pooling=True))
     total = (test_points(data, found)[0].shape[0] if several else between_points(data.state_grids[0]).size) * n_z
-    return _pooled(parts, total, parts[0]["define"])
+    return _pooled(parts, total, parts[0]["define"], distribution is not None)
 
 
 def _at_combination(model: ModelData, found: EulerSetup, search: Search, search_next: Search,
@@ -145,7 +171,8 @@ def _at_combination(model: ModelData, found: EulerSetup, search: Search, search_
     return today
 
 
-def _pooled(parts: list[dict[str, Any]], total: int, define: str) -> tuple[dict[str, Any] | None, str]:
+def _pooled(parts: list[dict[str, Any]], total: int, define: str,
+            weighted: bool) -> tuple[dict[str, Any] | None, str]:
     points = sum(part["points"] for part in parts)
     undefined = sum(part["undefined"] for part in parts)
     measured = [part for part in parts if part["points"]]
@@ -158,6 +185,9 @@ def _pooled(parts: list[dict[str, Any]], total: int, define: str) -> tuple[dict[
     skipped = total - points - undefined
     note = (f"Euler-equation errors of the continuous choice at the chosen combination of the others: "
             f"{skipped:,} test points skipped (where a limit may bind, or the best combination differs today or "
-            "at a state tomorrow, where the value function has a kink); no weighted mean")
-    return {"max_log10": worst, "mean_log10": mean, "points": points, "constrained": skipped,
-            "undefined": undefined, "define": define, "profile": profile}, note
+            "at a state tomorrow, where the value function has a kink)")
+    result = {"max_log10": worst, "mean_log10": mean, "points": points, "constrained": skipped,
+              "undefined": undefined, "define": define, "profile": profile}
+    if weighted:
+        result["weighted_mean_log10"] = pooled_weighted_mean(parts)
+    return result, note

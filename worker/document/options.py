@@ -308,8 +308,8 @@ class ReportSpec(Part):
         default=False,
         description=(
             "Also measure the accuracy of the policy by Euler-equation errors (Judd 1992) at test points between "
-            "the grid points, for grid models with a state variable chosen through next_of (any other states "
-            "moving by laws free of it and of the choice) and a differentiable reward: diagnostics.euler_errors. On "
+            "the grid points, for grid models with state variables chosen through next_of (each choice its own "
+            "equation) and a differentiable reward: diagnostics.euler_errors. On "
             "a grid-restricted choice it shows how coarse the grid is; it costs about as much as a hinted solve."
         ),
     )

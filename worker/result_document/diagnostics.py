@@ -243,6 +243,24 @@ class EulerByPeriod(Reported):
     mean_log10: list[float | None] = Field(description="Each period's mean log10 error.")
 
 
+class EulerChoiceErrors(Reported):
+    """One choice's Euler-equation errors, in a model with several choices that each set tomorrow's value of a
+    state: its own Euler equation, the other choices held at the policy's."""
+
+    state: str = Field(description="The state variable the choice sets (its test points lie along it).")
+    define: str = Field(description="The define through which the reward depends on the choice.")
+    max_log10: float | None = Field(description="The largest log10 error; null when no point was measured.")
+    mean_log10: float | None = Field(description="The mean log10 error; null when no point was measured.")
+    points: int = Field(description="Test points measured.")
+    constrained: int = Field(description="Test points skipped because a limit of the choice may bind there.")
+    undefined: int = Field(description="Test points skipped because a derivative was not a finite number.")
+    profile: EulerProfile | None = Field(description="The errors along the state.")
+    weighted_mean_log10: float | None = Field(
+        default=None,
+        description="With report.stationary: the mean weighted by the stationary distribution; absent otherwise.",
+    )
+
+
 class EulerErrors(Reported):
     """report.euler_errors: the unit-free accuracy of the policy (Judd 1992) at test points between the grid
     points, log10 of |1 − c̃/c| where c̃ is the value of define that makes the Euler equation hold."""
@@ -260,6 +278,12 @@ class EulerErrors(Reported):
         "absent otherwise.",
     )
     by_period: EulerByPeriod = absent_unless(description="Finite horizon only.")
+    by_choice: dict[str, EulerChoiceErrors] = absent_unless(
+        description="Several choices that each set tomorrow's value of a state (and no other choice): each one's own "
+        "errors, by the choice's name. The keys above then pool them (the largest, the mean over every point "
+        "measured, the sums); define and profile are those of the choice with the largest error (finite horizon: "
+        "in the first period measured; each choice's own over all periods here)."
+    )
 
 
 class HorizonDiagnostics(Reported):
