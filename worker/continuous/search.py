@@ -26,7 +26,11 @@ Then:
   moved is settled by three evaluations (a bracket of Brent's tolerance on
   both sides).  The step's size decides the cost only: with ``concave`` the
   objective is unimodal, so any three points whose middle one is the best
-  bracket the maximum;
+  bracket the maximum.  Where the hint is false (several peaks, as the
+  monotone cubic interpolant of an early iterate can have) a short first
+  step stays on the peak nearest the guess more often than a long one; the
+  verification at the end of a solve compares every point with the
+  unrestricted step, as before;
 * ``concave`` without a guess: a coarse scan of ``COARSE_POINTS`` evenly
   spread points (ends included, so a corner is found), and Brent's method
   between the best one's neighbours;
