@@ -12,9 +12,25 @@ another combination's.
 Then:
 
 * ``concave``, with a usable guess (the previous iteration's choice, where
-  the model allows it): a bracket grown from the guess — steps of
-  ``EXPAND_SHARE`` of the interval, doubling, uphill until the objective
-  falls — and Brent's method inside it;
+  the model allows it): a bracket grown from the guess — doubling steps,
+  uphill until the objective falls — and Brent's method inside it, started
+  from the bracket's three points (its first step may then be parabolic).
+  The first step is the choice's move from its guess at the point searched
+  just before on the same line, in the same combination (``line_d[cc]``,
+  NaN when unknown; ``near`` is true when that point was the one searched
+  just before), times ``MOVE_STEP``, taken first in that move's direction
+  and at least Brent's tolerance at the guess; else ``EXPAND_SHARE`` of the
+  interval, upwards first.  Near convergence the choice moves far less than
+  the interval between iterations and about as much at neighbouring points,
+  so the bracket starts about as wide as the move, and a guess that has not
+  moved is settled by three evaluations (a bracket of Brent's tolerance on
+  both sides).  The step's size decides the cost only: with ``concave`` the
+  objective is unimodal, so any three points whose middle one is the best
+  bracket the maximum.  Where the hint is false (several peaks, as the
+  monotone cubic interpolant of an early iterate can have) a short first
+  step stays on the peak nearest the guess more often than a long one; the
+  verification at the end of a solve compares every point with the
+  unrestricted step, as before;
 * ``concave`` without a guess: a coarse scan of ``COARSE_POINTS`` evenly
   spread points (ends included, so a corner is found), and Brent's method
   between the best one's neighbours;
@@ -33,17 +49,18 @@ XTOL_SHARE·(high − low)``; near an interior maximum the value is then
 within about ``f''·x²·ε`` of the maximum, far below any value tolerance.  A
 point where the model is not allowed counts as ``−inf``, so the search stays
 inside the allowed part of the interval.  Every point's answer depends on
-that point (and, with ``monotone``, the one before it on its line) only, so
-row blocks of whole lines give the same bits on any number of threads (a block
-that starts inside a line is not narrowed at its first point: ``follows`` is
-false there).
+that point and the one before it on its line only (its choice with
+``monotone``, its move with a guess), so row blocks of whole lines give the
+same bits on any number of threads (a block that starts inside a line is not
+narrowed at its first point, nor is its first step sized there: ``follows``
+and ``near`` are false there).
 """
 
 from __future__ import annotations
 
 __all__ = [
-    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT", "SEARCH_TEXT",
-    "XTOL_SHARE",
+    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT", "MOVE_STEP",
+    "SEARCH_TEXT", "SQRT_EPS", "XTOL_SHARE",
 ]
 
 COARSE_POINTS = 9
@@ -55,6 +72,12 @@ XTOL_SHARE = 1e-10
 GRID_SCAN_MAX = 512
 """Most grid points a scan without hints visits inside the interval (count; every k-th grid point above,
 so an unhinted step costs O(points) per point, not O(points²))."""
+MOVE_STEP = 1.0
+"""First step of a bracket grown from a guess when the point searched just before on the same line (same
+combination of the other choices) also had a guess: this many times that point's move from its guess, and at
+least Brent's tolerance at the guess (so a guess within it is settled by three evaluations)."""
+SQRT_EPS = 1.4901161193847656e-08
+"""Brent's relative tolerance on the choice: the square root of float64's machine epsilon."""
 BRENT_MAX_STEPS = 200
 """Most steps of one Brent search (count; a smooth objective needs 10 to 30)."""
 
@@ -68,6 +91,7 @@ if follows:
 x = np.nan
 fx = -np.inf
 rx = -np.inf
+moved = np.nan
 width = hi_b - lo_b
 if width == 0.0:
     fx, rx, _xk = f(lo_b)
@@ -79,6 +103,8 @@ elif width > 0.0:
     x1 = np.nan
     f1 = -np.inf
     r1 = -np.inf
+    f0 = -np.inf
+    f2 = -np.inf
     found = False
     g = guess[i] if has_guess else np.nan
     if g == g:
@@ -87,54 +113,52 @@ elif width > 0.0:
         fg, rg, _xk = f(g)
         if fg > -np.inf:
             found = True
-            step = {EXPAND_SHARE!r} * width
             x1 = g
             f1 = fg
             r1 = rg
-            xa = min(x1 + step, hi_b)
-            fa, ra, _xk = f(xa)
-            if fa > f1:
-                a0 = x1
+            before_d = line_d[cc] if near else np.nan
+            if before_d == before_d:
+                step = max({MOVE_STEP!r} * abs(before_d), {SQRT_EPS!r} * abs(g) + tol_abs)
+                sgn = -1.0 if before_d < 0.0 else 1.0
+            else:
+                step = {EXPAND_SHARE!r} * width
+                sgn = 1.0
+            xb = x1
+            fb = f1
+            xa = min(max(x1 + sgn * step, lo_b), hi_b)
+            fa = f1
+            ra = r1
+            if xa != x1:
+                fa, ra, _xk = f(xa)
+            if not fa > f1:
+                xb = xa
+                fb = fa
+                sgn = -sgn
+                xa = min(max(x1 + sgn * step, lo_b), hi_b)
+                fa = f1
+                if xa != x1:
+                    fa, ra, _xk = f(xa)
+            while fa > f1:
+                xb = x1
+                fb = f1
                 x1 = xa
                 f1 = fa
                 r1 = ra
-                a2 = hi_b
-                while x1 < hi_b:
-                    step *= 2.0
-                    xb = min(x1 + step, hi_b)
-                    fb, rb, _xk = f(xb)
-                    if fb > f1:
-                        a0 = x1
-                        x1 = xb
-                        f1 = fb
-                        r1 = rb
-                    else:
-                        a2 = xb
-                        break
+                step *= 2.0
+                xa = min(max(x1 + sgn * step, lo_b), hi_b)
+                fa = f1
+                if xa != x1:
+                    fa, ra, _xk = f(xa)
+            if xa < xb:
+                a0 = xa
+                f0 = fa
+                a2 = xb
+                f2 = fb
             else:
+                a0 = xb
+                f0 = fb
                 a2 = xa
-                xb = max(x1 - step, lo_b)
-                fb, rb, _xk = f(xb)
-                if fb > f1:
-                    a2 = x1
-                    x1 = xb
-                    f1 = fb
-                    r1 = rb
-                    a0 = lo_b
-                    while x1 > lo_b:
-                        step *= 2.0
-                        xc = max(x1 - step, lo_b)
-                        fc, rc, _xk = f(xc)
-                        if fc > f1:
-                            a2 = x1
-                            x1 = xc
-                            f1 = fc
-                            r1 = rc
-                        else:
-                            a0 = xc
-                            break
-                else:
-                    a0 = xb
+                f2 = fa
     if not found:
         use_grid = grid_size > 0 and not concave
         count = {COARSE_POINTS} if concave else scan_n
@@ -189,9 +213,21 @@ elif width > 0.0:
         rx = r1
         dd = 0.0
         ee = 0.0
+        if f0 > -np.inf and f2 > -np.inf:
+            ee = b - a
+            if f0 >= f2:
+                w = a
+                gw = -f0
+                v = b
+                gv = -f2
+            else:
+                w = b
+                gw = -f2
+                v = a
+                gv = -f0
         for _step in range({BRENT_MAX_STEPS}):
             mid = 0.5 * (a + b)
-            tol1 = 1.4901161193847656e-08 * abs(x) + tol_abs
+            tol1 = {SQRT_EPS!r} * abs(x) + tol_abs
             tol2 = 2.0 * tol1
             if abs(x - mid) <= tol2 - 0.5 * (b - a):
                 break
@@ -251,6 +287,8 @@ elif width > 0.0:
                 elif gu <= gv or v == x or v == w:
                     v = u
                     gv = gu
+    if found:
+        moved = x - g
 #KINK#
 """
 """The search's text, run inside the kernel's loop over points (and over combinations of the other choices),

@@ -269,9 +269,10 @@ class _Writer:
         )
         out.depth += 1
         self._prologue(out)
-        out.add("line_a = np.full(combos.shape[0], np.nan)", "last_q = -1")
+        out.add("line_a = np.full(combos.shape[0], np.nan)", "line_d = np.full(combos.shape[0], np.nan)", "last_q = -1")
         with out.block("for q in range(start, stop):"):
-            out.add("i = order[q]", "follows = monotone and prev[q] >= 0 and prev[q] == last_q", "last_q = q")
+            out.add("i = order[q]", "near = prev[q] >= 0 and prev[q] == last_q", "follows = monotone and near",
+                    "last_q = q")
             self._point(out)
             if self.target is not None:
                 t = self.target
@@ -289,7 +290,7 @@ class _Writer:
                     out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
                 text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic or self.draws is not None else self._kinks())
                 out.extend(text.strip("\n").split("\n"))
-                out.add("line_a[cc] = x if fx > -np.inf else np.nan")
+                out.add("line_a[cc] = x if fx > -np.inf else np.nan", "line_d[cc] = moved")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
             out.add("out_v[i] = best_v", "out_a[i] = best_a", "out_r[i] = best_r", "out_j[i] = best_j")
