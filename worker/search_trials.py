@@ -8,7 +8,9 @@ unrestricted Bellman step that verifies them at the end of a hinted solve.
 
 A *certifying* trial is the solve that may be returned: the document validated and compiled afresh at the
 trial values, solved at ``solver.tolerance`` with the hints verified, exactly as a single job at those values
-would be (started from the guiding trial's value at the same point).  :mod:`worker.search` accepts a point
+would be (started from the guiding trial's value at the same point).  When the hints hold, a certified solve
+ends with its last hinted step (:meth:`worker.solvers.loop.Run.kept`), as a guiding trial does, so that the
+two kinds of trial agree but for the inner solves' noise.  :mod:`worker.search` accepts a point
 only from a certifying trial, and builds the result from one; the trial rows say which were certified.
 
 Problems that cannot swap their params (reward tables, the endogenous grid method, draws after the choice)
@@ -149,8 +151,11 @@ def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None,
 
     n = matrix.shape[0]
     if previous is None or previous.shape != (n,):
-        return long_run_distribution(matrix)
-    k = int(np.argmax(previous))
+        # The first trial: pinned at the state with the most mass flowing in (a column sum of P; common
+        # practice as a guess of a heavy state), checked below like any other pin.
+        k = int(np.argmax(np.asarray(matrix.sum(axis=0)).ravel()))
+    else:
+        k = int(np.argmax(previous))
     steps = 0
     pi = None
     if factors and factors.get("pin") == k and factors.get("n") == n:

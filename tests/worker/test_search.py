@@ -223,8 +223,12 @@ def test_no_root_in_the_bracket_is_said_with_the_values_at_the_ends() -> None:
 
 def test_a_calibration_of_the_discount_hits_a_target_mean() -> None:
     target = 2.0
+    # 1e-7, not 1e-8: the condition's noise from the inner solves is about 5e-8 here (measured: certifying trials
+    # within 1e-9 of each other in the discount gave residuals of either sign up to 6e-8), so a tolerance of 1e-8
+    # was met only by a lucky draw after 16-24 trials, or not at all (targets 2.0 or 3.5, depending on how the
+    # certified solves end); at 1e-7 every target from 1.5 to 3.5 converges in 5-7 trials.
     search = {"unknowns": {"discount": {"min": 0.85, "max": 0.97}}, "conditions": [f"mean(a) - {target}"],
-              "tolerance": 1e-8}
+              "tolerance": 1e-7}
     result = solve(_document(search, r=0.03))
     assert result["search"]["status"] == "converged"
     beta = result["search"]["unknowns"]["discount"]

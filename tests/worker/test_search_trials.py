@@ -129,8 +129,9 @@ def test_the_results_stationary_distribution_is_the_certifying_trials_not_solved
 
     monkeypatch.setattr(report, "long_run_distribution", counted)
     result = solve(_search_document())
-    # Only the first trial (no distribution before it to pin from) takes the general solve.
-    assert len(general) == 1
+    # No trial takes the general solve (the first is pinned at the state of most inflow, each later one at the
+    # last distribution's heaviest state), and the result does not solve the chain again.
+    assert general == []
     pi = np.asarray(result["stationary"]["distribution"]).reshape(-1)
     # Independent: the stationary distribution of the result's own policy, by numpy's least squares.
     single = copy.deepcopy(DOCUMENT)
@@ -174,6 +175,31 @@ def test_a_trusted_hinted_solve_skips_only_the_verification() -> None:
     assert checked.verification is not None and checked.verification["hints_held"]
     assert trusted.verification is None
     np.testing.assert_allclose(trusted.value, checked.value, rtol=0, atol=1e-9)
+
+
+def test_a_checked_solve_whose_hints_held_ends_with_its_hinted_step_and_a_bound_that_holds() -> None:
+    doc, problem = compile_document(copy.deepcopy(DOCUMENT))
+    start = np.zeros(problem.n)
+    checked = METHODS["howard"](problem, start, tolerance=1e-10)
+    trusted = METHODS["howard"](problem, start, tolerance=1e-10, trust_hints=True)
+    assert checked.verification is not None and checked.verification["hints_held"]
+    # The hinted iterations' own choices, as a guiding trial ends with; not the unrestricted step's, which a
+    # different search of the same flat objective places a little apart.
+    np.testing.assert_array_equal(checked.policy, trusted.policy)
+    unrestricted = np.asarray(problem.bellman_step(start if checked.iterations == 0 else checked.value,
+                                                   restricted=False)[1])
+    assert not np.array_equal(unrestricted, checked.policy)
+    # Its bound answers for the unrestricted step too: it differs from that step's own by rounding only.
+    assert checked.error_bound <= 1e-10
+    assert checked.error_bound == pytest.approx(checked.verification["error_bound"], rel=1e-4)
+    # The bound holds: against the same model solved without hints to a far tighter tolerance (independent of
+    # the hinted search and of the step kept).
+    plain = copy.deepcopy(DOCUMENT)
+    plain["model"]["hints"] = {}
+    _, reference_problem = compile_document(plain)
+    reference = METHODS["howard"](reference_problem, checked.value, tolerance=1e-11, max_iterations=50)
+    assert reference.error_bound <= 1e-10
+    assert np.abs(checked.value - reference.value).max() <= checked.error_bound + reference.error_bound
 
 
 def _counted(f: Any) -> tuple[Any, list[float]]:
