@@ -40,6 +40,7 @@ from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
+from worker.continuous.bound_search import STACK_ROWS, bound_plan, bound_search
 from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
 from worker.document.limits import ROW_SUM_TOLERANCE
 from worker.draws import Draws
@@ -79,9 +80,12 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
+        "from worker.continuous.bound_kernels import block_max",
         "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
+        "",
+        f"BOUNDED = {writer.plan is not None}",
     ]
     return "\n\n\n".join(["\n".join(header), writer.search(), writer.policy_at()]) + "\n"
 
@@ -124,6 +128,7 @@ class _Writer:
             [e if isinstance(e, float) else Expression.from_tree(hoist.rewrite(e.tree)) for e in entries]
             for entries in draws.probs
         ]
+        self.plan = bound_plan(self)
 
     def _src(self, expr: Expression) -> str:
         return expressions.scalar_source(expr, self.names)
@@ -265,10 +270,17 @@ class _Writer:
         out.add(JIT)
         out.add(
             "def search(EVt, D, beta, p, sgrid, meta, ztab, svals, piz, order, prev, guess, has_guess, concave, "
-            "monotone, scan_n, combos, out_v, out_a, out_r, out_j, start, stop):"
+            "monotone, scan_n, combos, b_pyr, b_levels, ev_abs, out_v, out_a, out_r, out_j, start, stop):"
         )
         out.depth += 1
         self._prologue(out)
+        if self.plan is not None:
+            t = self.target
+            out.add(f"b_lev = np.empty({STACK_ROWS}, dtype=np.int64)", f"b_q = np.empty({STACK_ROWS}, dtype=np.int64)",
+                    f"b_ub = np.empty({STACK_ROWS})", f"b_outer = EVt.shape[1] // (size_{t} * stride_{t})",
+                    "bounded = b_pyr.shape[0] > 0", "b_root = 0")
+            with out.block(f"while (1 << b_root) < size_{t} - 1:"):
+                out.add("b_root += 1")
         out.add("line_a = np.full(combos.shape[0], np.nan)", "last_q = -1")
         with out.block("for q in range(start, stop):"):
             out.add("i = order[q]", "follows = monotone and prev[q] >= 0 and prev[q] == last_q", "last_q = q")
@@ -287,8 +299,15 @@ class _Writer:
                         out.add(f"x_{t} = np.nan")
                     self._model_at_choice(out, continuation=True)
                     out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
-                text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic or self.draws is not None else self._kinks())
-                out.extend(text.strip("\n").split("\n"))
+                kinks = "" if self.cubic or self.draws is not None else self._kinks()
+                if self.plan is None:
+                    out.extend(SEARCH_TEXT.replace("#KINK#", kinks).strip("\n").split("\n"))
+                else:  # the branch and bound of worker.continuous.bound_search where it holds, else the scan
+                    with out.block("if bounded and not concave:"):
+                        out.extend(bound_search(self, self.plan).strip("\n").split("\n"))
+                    with out.block("else:"):
+                        out.extend(SEARCH_TEXT.replace("#KINK#", "").strip("\n").split("\n"))
+                    out.extend(kinks.strip("\n").split("\n"))
                 out.add("line_a[cc] = x if fx > -np.inf else np.nan")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
