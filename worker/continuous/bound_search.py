@@ -8,43 +8,55 @@ generated kernel runs :data:`BOUND_TEXT` instead:
 
 * the *incumbent* starts at the point's guess (the previous policy: the
   hinted step's choice in the verification), clamped into the interval;
-* *blocks* are runs ``[ja, jb]`` of grid intervals ``[g_j, g_{j+1}]`` of the
-  chosen state meeting the interval ``[lo_b, hi_b]``.  A block's upper bound
-  is the interval bound of the reward over its choices
-  (:func:`worker.expressions.intervals.interval_source`, with the box narrowed
-  by the constraints as the grid-restricted branch and bound does; a block
-  where a constraint certainly fails is dropped) plus ``β`` times the largest
-  continuation over the block, widened by :data:`BOUND_SLACK` of
-  ``|reward bound| + β·max |EV|``;
-* the largest continuation over a block is the largest *node* value of the
-  block's intervals, from the dyadic max-pyramid of ``EVt`` along the chosen
-  state (:func:`worker.kernels.pyramid_max`).  That is exact for ``linear``
-  interpolation, and for ``monotone_cubic`` with one state: with the slopes
-  of :func:`worker.continuous.interp_kernels.monotone_slopes` (zero where
-  the data turn, the Fritsch–Butland mean, at most three secants, inside,
-  the three-point formula capped at three secants at the ends) every node
-  slope is within ``[0, 3]`` times the secant of each interval beside it,
-  inside the Fritsch & Carlson (1980) square of monotonicity, so each
-  interval's piece lies between its two node values.  With several states,
-  tomorrow's other states must not move with the choice: the continuation is
-  then a sum of lines along the chosen state with the other states'
-  (non-negative) multilinear weights, bounded by the weighted sum of the
-  lines' maxima.  The tensor-product cubic's weights can be negative, so it
-  keeps the scan;
+* *blocks* are aligned dyadic runs of grid intervals ``[g_j, g_{j+1}]`` of
+  the chosen state (block ``q`` of level ``l``: intervals ``q·2**l …
+  (q+1)·2**l − 1``), cut to those meeting the interval ``[lo_b, hi_b]``.  A
+  block's upper bound is the interval bound of the reward over its choices
+  (:func:`worker.expressions.intervals.interval_source`, with the box
+  narrowed by the constraints as the grid-restricted branch and bound
+  does; a block where a constraint certainly fails is dropped) plus ``β``
+  times the largest continuation over the block, widened by
+  :data:`~worker._codegen.block_search.BOUND_SLACK` of ``|reward bound| +
+  β·max |EV|`` (the rounding of the interpolation's weights and of the
+  cubic's Hermite form);
+* the largest continuation over a block is the largest *node* value of its
+  intervals (:func:`worker.continuous.bound_kernels.block_max`, from the
+  max-pyramid of ``EVt`` along the chosen state).  That is exact for
+  ``linear`` interpolation, and for ``monotone_cubic`` with one state: with
+  the slopes of :func:`worker.continuous.interp_kernels.monotone_slopes`
+  every node slope is between 0 and 3 times the secant of each interval
+  beside it (0 where the data turn, that is at a local extremum or a flat
+  secant; inside, the Fritsch–Butland weighted harmonic mean, at most
+  ``3(h0 + h1)/(2h1 + h0)`` and ``3(h0 + h1)/(h1 + 2h0)`` times the two
+  secants, both at most 3; at the grid's ends the three-point formula, set
+  to 0 when its sign differs from the secant's, below twice the secant when
+  the data do not turn and capped at three times it when they do; with two
+  points both slopes are the secant), which is inside the square
+  ``[0, 3]²`` of Fritsch & Carlson (1980, "Monotone piecewise
+  cubic interpolation", SIAM J. Numer. Anal. 17(2)), so each interval's
+  piece is monotone and lies between its two node values.  With several
+  states, tomorrow's other states must not move with the choice: the
+  continuation is then a sum of lines along the chosen state with the
+  other states' non-negative multilinear weights, bounded by the weighted
+  sum of the lines' block maxima.  The tensor-product cubic's weights can
+  be negative, so it keeps the scan;
 * blocks are searched depth first, the child with the higher bound first; a
-  block whose bound is at most the incumbent is skipped, another halved; a
-  single interval is searched from its better end: when a point a tolerance
-  inside is no better, that end is kept, else Brent's method runs inside
-  the interval (the one of :mod:`worker.continuous.search`).
+  block whose bound is at most the incumbent is skipped, another halved,
+  down to blocks of ``2**LEAF_LEVEL`` intervals, whose intervals are then
+  searched one by one: from the better end, which is kept when a point a
+  tolerance inside is no better, else by Brent's method inside the interval
+  (the one of :mod:`worker.continuous.search`; both ends of an interval are
+  evaluated, so the answer is never below a grid point's value).
 
 What is proved: no skipped block holds a choice whose value (as the kernel
-computes it) exceeds the incumbent at the time it was skipped, so the
-result is at least the value at every grid point and every choice of a
-skipped block, up to the slack.  What is local: inside one surviving
-interval the objective is taken to be unimodal (the end test and Brent's
-method), as the scan's refinement does between two grid points.  Every
-point's answer depends on that point alone, so the bits are the same on
-any number of threads.
+computes it) exceeds the incumbent when it was skipped, up to the slack, so
+the answer is at least the value at every grid point and at every choice
+of a skipped block.  What is local: inside one grid interval of a block not
+skipped, the objective is taken to be single-peaked (the end test and
+Brent's method), as the scan's refinement takes it between two grid points.
+Every point's answer depends on that point alone (the values of the ends
+kept for the next interval are reset at each point and combination), so the
+bits are the same on any number of threads.
 """
 
 from __future__ import annotations
@@ -60,7 +72,10 @@ from worker.continuous.search import BRENT_MAX_STEPS, XTOL_SHARE
 from worker.expressions import Expression
 from worker.expressions.intervals import interval_source
 
-__all__ = ["BOUND_TEXT", "LEAF_LEVEL", "STACK_ROWS", "BoundPlan", "bound_plan", "bound_search"]
+__all__ = [
+    "BOUND_ARGUMENTS", "BOUND_CALL", "BOUND_TEXT", "LEAF_LEVEL", "STACK_ROWS", "BoundPlan", "bound_plan",
+    "bound_search",
+]
 
 LEAF_LEVEL = 3
 """Blocks of at most ``2**LEAF_LEVEL`` grid intervals are searched interval by interval, without bounds of their
@@ -68,13 +83,25 @@ own: on the accuracy benchmark a bound costs about seven evaluations of the obje
 STACK_ROWS = 130
 """Rows of the block stack (each split pushes two halves, so depth first it holds about 2·log2(intervals))."""
 
-BOUND_TEXT = f"""
+BOUND_ARGUMENTS = ("EVt, D, beta, p, sgrid, meta, ztab, svals, piz, i, combos, cc, guess, has_guess, lo_b, hi_b, "
+                   "b_pyr, b_levels, ev_abs, b_lev, b_q, b_ub")
+"""The arguments of the generated ``bound_point``: the search kernel's, the point ``i``, the combination ``cc``, the
+interval ``[lo_b, hi_b]`` (narrowed under ``monotone``), the pyramid and the block stack."""
+
+BOUND_CALL = f"""
 lo_b = low
 hi_b = high
 if follows:
     before = line_a[cc]
     if before == before and before > lo_b:
         lo_b = min(before, hi_b)
+width = hi_b - lo_b
+x, fx, rx = bound_point({BOUND_ARGUMENTS})
+"""
+"""What the search kernel runs in place of the scan: the interval, narrowed as the scan narrows it, then
+``bound_point``; the kink polish follows as after the scan."""
+
+BOUND_TEXT = f"""
 x = np.nan
 fx = -np.inf
 rx = -np.inf
@@ -271,11 +298,11 @@ elif width > 0.0:
                 fx = fb
                 rx = rb
 """
-"""The branch and bound of one point and combination of the other choices, in the scope of
-:data:`worker.continuous.search.SEARCH_TEXT` (same inputs; leaves ``fx``, ``x``, ``rx``, ``lo_b``,
-``hi_b``, ``width`` for the kink polish).  ``#PREPARE#`` is where the bound's parts fixed at the point
-go, ``#BOUND#`` the lines setting ``ub`` for the choices ``[c_lo, c_hi]`` of intervals ``ca … cz``;
-``b_lo``/``b_hi``/``b_ub`` are the block stack."""
+"""The body of ``bound_point`` after its point is unpacked and ``f`` written (with ``grid_off``, ``grid_size``,
+``b_outer`` (lines of ``EVt`` beside the chosen state's) and ``b_root`` (the level of one block over every
+interval) in scope): leaves the best choice, value and reward in ``x``, ``fx``, ``rx``.  ``#PREPARE#`` is where the
+bound's parts fixed at the point go, ``#BOUND#`` the lines setting ``ub`` for the choices ``[c_lo, c_hi]`` of
+intervals ``ca … cz`` (block ``qc`` of level ``lc``); ``b_lev``/``b_q``/``b_ub`` are the block stack."""
 
 
 @dataclass

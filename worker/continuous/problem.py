@@ -451,7 +451,13 @@ class ContinuousProblem:
                 "monotone_cubic interpolation: the error bound is computed as for linear interpolation, but the "
                 "cubic interpolant is not linear in the value function, so the bound is not a proof"
             )
-        if not self.hints.concave:
+        if not self.hints.concave and self.bound_search:
+            notes.append(
+                "without the concave hint each point's search skips runs of grid intervals that a bound proves "
+                "cannot beat the best choice found, and searches the others interval by interval; inside one "
+                "interval the search is local"
+            )
+        elif not self.hints.concave:
             notes.append(
                 "without the concave hint each point's search scans the interval and refines the best scanned "
                 "choice; a maximum hidden between two scanned points can be missed"

@@ -40,7 +40,7 @@ from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
-from worker.continuous.bound_search import STACK_ROWS, bound_plan, bound_search
+from worker.continuous.bound_search import BOUND_ARGUMENTS, BOUND_CALL, STACK_ROWS, bound_plan, bound_search
 from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
 from worker.document.limits import ROW_SUM_TOLERANCE
 from worker.draws import Draws
@@ -87,7 +87,8 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "",
         f"BOUNDED = {writer.plan is not None}",
     ]
-    return "\n\n\n".join(["\n".join(header), writer.search(), writer.policy_at()]) + "\n"
+    kernels = [writer.search(), writer.policy_at()] + ([] if writer.plan is None else [writer.bound_point()])
+    return "\n\n\n".join(["\n".join(header), *kernels]) + "\n"
 
 
 class _Writer:
@@ -265,6 +266,14 @@ class _Writer:
             with out.block("if wk != 0.0:"):
                 out.add(f"e += wk * EVt[iz, {index}]")
 
+    def _closure(self, out: Lines) -> None:
+        """``f(c_0) -> (value, reward, tomorrow's states)``: the model at one choice, inlined where it is called."""
+        with out.block("def f(c_0):"):
+            for t in range(self.d):
+                out.add(f"x_{t} = np.nan")
+            self._model_at_choice(out, continuation=True)
+            out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
+
     def search(self) -> str:
         out = Lines()
         out.add(JIT)
@@ -275,12 +284,8 @@ class _Writer:
         out.depth += 1
         self._prologue(out)
         if self.plan is not None:
-            t = self.target
             out.add(f"b_lev = np.empty({STACK_ROWS}, dtype=np.int64)", f"b_q = np.empty({STACK_ROWS}, dtype=np.int64)",
-                    f"b_ub = np.empty({STACK_ROWS})", f"b_outer = EVt.shape[1] // (size_{t} * stride_{t})",
-                    "bounded = b_pyr.shape[0] > 0", "b_root = 0")
-            with out.block(f"while (1 << b_root) < size_{t} - 1:"):
-                out.add("b_root += 1")
+                    f"b_ub = np.empty({STACK_ROWS})", "bounded = b_pyr.shape[0] > 0")
         out.add("line_a = np.full(combos.shape[0], np.nan)", "last_q = -1")
         with out.block("for q in range(start, stop):"):
             out.add("i = order[q]", "follows = monotone and prev[q] >= 0 and prev[q] == last_q", "last_q = q")
@@ -294,17 +299,13 @@ class _Writer:
             out.add("best_v = -np.inf", "best_a = np.nan", "best_r = -np.inf", "best_j = 0")
             with out.block("for cc in range(combos.shape[0]):"):
                 self._others(out, "cc")
-                with out.block("def f(c_0):"):
-                    for t in range(self.d):
-                        out.add(f"x_{t} = np.nan")
-                    self._model_at_choice(out, continuation=True)
-                    out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
+                self._closure(out)
                 kinks = "" if self.cubic or self.draws is not None else self._kinks()
                 if self.plan is None:
                     out.extend(SEARCH_TEXT.replace("#KINK#", kinks).strip("\n").split("\n"))
                 else:  # the branch and bound of worker.continuous.bound_search where it holds, else the scan
                     with out.block("if bounded and not concave:"):
-                        out.extend(bound_search(self, self.plan).strip("\n").split("\n"))
+                        out.extend(BOUND_CALL.strip("\n").split("\n"))
                     with out.block("else:"):
                         out.extend(SEARCH_TEXT.replace("#KINK#", "").strip("\n").split("\n"))
                     out.extend(kinks.strip("\n").split("\n"))
@@ -312,6 +313,27 @@ class _Writer:
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
             out.add("out_v[i] = best_v", "out_a[i] = best_a", "out_r[i] = best_r", "out_j[i] = best_j")
+        return out.text()
+
+    def bound_point(self) -> str:
+        """``bound_point``: the branch and bound of :mod:`worker.continuous.bound_search` at point ``i`` and
+        combination ``cc`` — a function of its own, so that numba compiles it apart from ``search`` (inlined there,
+        it doubled the compile time)."""
+        out = Lines()
+        out.add(JIT)
+        out.add(f"def bound_point({BOUND_ARGUMENTS}):")
+        out.depth += 1
+        self._prologue(out)
+        t = self.target
+        out.add(f"grid_off = off_{t}", f"grid_size = size_{t}", f"b_outer = EVt.shape[1] // (size_{t} * stride_{t})",
+                "b_root = 0")
+        with out.block(f"while (1 << b_root) < size_{t} - 1:"):
+            out.add("b_root += 1")
+        self._point(out)
+        self._others(out, "cc")
+        self._closure(out)
+        out.extend(bound_search(self, self.plan).strip("\n").split("\n"))
+        out.add("return x, fx, rx")
         return out.text()
 
     def _kinks(self) -> str:
