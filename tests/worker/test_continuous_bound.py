@@ -202,3 +202,35 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
     two = solve(copy.deepcopy(document))
     assert one["status"] == "converged"
     assert _bits(one) == _bits(two)
+
+
+def test_beside_a_discrete_choice_that_sets_another_state() -> None:
+    """A second state ``shop`` (closed 0 / open 1) set by a discrete choice ``open`` (next_of it), searched for
+    each of its values: tomorrow's shop is a grid point, read with weight one; brute force over both values."""
+    document = _household(30, "linear")
+    model = document["model"]
+    model["states"]["shop"] = {"min": 0.0, "max": 1.0, "points": 2}
+    model["choices"]["open"] = {"next_of": "shop"}
+    model["define"] = {"c": "(1 + r) * assets + income * (1 + 0.3 * shop) - saving - 0.2 * open"}
+    _, problem = compile_document(document)
+    assert problem.bound_search
+    data = problem.model_data
+    grid, n_z = data.state_grids[0], data.n_shocks
+    env = problem.state_values()
+    choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
+    for scale in (0.0, 0.4):
+        v = _wavy_values(problem, scale) + 0.3 * env["shop"]
+        (bound_v, _), (scan_v, _) = _both(problem, v)
+        size = float(np.abs(scan_v).max())
+        assert np.all(bound_v >= scan_v - 1e-13 * size), float((scan_v - bound_v).max())
+        lines = (data.transition @ v.reshape(data.n_grid, n_z).T).reshape(n_z, grid.size, 2)
+        for i in range(problem.n):
+            best = -np.inf
+            for shop_next in (0, 1):
+                c = (1.03 * env["assets"][i] + env["income"][i] * (1 + 0.3 * env["shop"][i]) - choices
+                     - 0.2 * shop_next)
+                with np.errstate(all="ignore"):
+                    reward = np.where(c > 0, -1.0 / c, -np.inf)  # c**(1 - 2) / (1 - 2)
+                ev = np.interp(choices, grid, lines[i % n_z, :, shop_next])
+                best = max(best, float((reward + BETA * ev).max()))
+            assert bound_v[i] >= best - 1e-11 * size, (i, best - bound_v[i])

@@ -61,7 +61,7 @@ bits are the same on any number of threads.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any
 
 from worker import expressions
@@ -307,11 +307,11 @@ intervals ``ca … cz`` (block ``qc`` of level ``lc``); ``b_lev``/``b_q``/``b_ub
 
 @dataclass
 class BoundPlan:
-    """What the bound needs from the continuous writer: its model, names and hoisted expressions."""
+    """What the bound needs beyond the continuous writer: the names that move with the choice, and the names of
+    the writer's variables (a copy: the bound's own are added to it)."""
 
     varying: set[str]
     names: dict[str, str]
-    prepare: list[str] = field(default_factory=list)
 
 
 def bound_plan(writer: Any) -> BoundPlan | None:
@@ -326,8 +326,8 @@ def bound_plan(writer: Any) -> BoundPlan | None:
         return None
     choice = w.model.choices[0]
     varying = dependents(w.model, {choice})
-    for t, expr in w.next.items():
-        if t != w.target and expressions.names_in(expr.tree) & varying:
+    for t in range(w.d):
+        if t != w.target and (w.setters[t] == 0 or (t in w.next and expressions.names_in(w.next[t].tree) & varying)):
             return None
     return BoundPlan(varying=varying, names=dict(w.names))
 
@@ -355,8 +355,10 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
     feasible = [hoist.rewrite(expr.tree) for expr in w.feasible]
     reward = hoist.rewrite(w.reward.tree)
     others = [t for t in range(w.d) if t != w.target]
-    for t in others:
-        point_lines.append(f"ox_{t} = {expressions.scalar_source(w.next[t], names)}")
+    for t in others:  # tomorrow's other states: their laws, or the other choices they are next_of
+        j = w.setters[t]
+        law = f"c_{j}" if j is not None else expressions.scalar_source(w.next[t], names)
+        point_lines.append(f"ox_{t} = {law}")
     prepare.extend(point_lines)
     if others:
         _continuation_weights(prepare, others)
