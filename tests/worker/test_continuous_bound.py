@@ -194,12 +194,23 @@ def _bits(result: dict[str, Any]) -> tuple:
 
 
 def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
+    calls: list[tuple[int, int]] = []
+    real = threadpool.run_blocks
+
+    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
+        calls.append((threads, len(blocks)))
+        return real(task, blocks, threads)
+
+    monkeypatch.setattr(threadpool, "run_blocks", spy)
     monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
     document = _household(20, "linear", skill=True)  # no hints: every step is the unrestricted search
     monkeypatch.setenv(environment.SOLVE_THREADS, "1")
     one = solve(copy.deepcopy(document))
+    assert calls and all(threads == 1 for threads, _ in calls)
+    calls.clear()
     monkeypatch.setenv(environment.SOLVE_THREADS, "2")
     two = solve(copy.deepcopy(document))
+    assert any(threads == 2 and blocks >= 2 for threads, blocks in calls), calls
     assert one["status"] == "converged"
     assert _bits(one) == _bits(two)
 
