@@ -16,15 +16,19 @@ row ``piz`` (P,); ``EVt`` (n_shocks, n_grid) the continuation, ``D`` its
 slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 * ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
-  has_guess, concave, monotone, scan_n, combos, out_v, out_a, out_r, out_j,
-  start, stop)`` — the maximisation over the interval at the points
+  has_guess, concave, monotone, scan_n, combos, b_pyr, b_levels, ev_abs,
+  out_v, out_a, out_r, out_j, start, stop)`` — the maximisation over the interval at the points
   ``order[start:stop]``, once for each row of ``combos`` (the values of the
   other choices, one combination a row; one empty row without them), the
   best combination's index in ``out_j``;
   ``prev[q]`` is the position of the point before it on the same line of
   the chosen state (``-1`` at a line's start), whose choice in the same
   combination narrows that combination's bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
-  search itself.
+  search itself.  A non-empty ``b_pyr`` (the max-pyramid of ``EVt`` along the chosen state, ``b_levels`` its
+  level starts, ``ev_abs`` the largest ``|EVt|``) runs the branch and bound instead of the scan where the
+  module has ``BOUNDED = True``.
+* ``bound_point`` (only where the module has ``BOUNDED = True``) — that branch and bound at one point and
+  combination (:mod:`worker.continuous.bound_search`), a function of its own.
 * ``policy_at(p, sgrid, ztab, svals, piz, a, combos, jc, out_r, out_x,
   out_ok)`` — the reward and tomorrow's state values ``out_x`` (P, d) at the
   fixed choices ``a`` and combinations ``jc`` of the others; ``out_ok`` false
