@@ -103,7 +103,7 @@ def test_euler_errors_fall_with_the_grid_step(refined: dict) -> None:
 def test_the_hints_do_not_change_the_answer(how: str) -> None:
     plain = solve(_document(48, how))
     hinted = solve(_document(48, how, BOTH))
-    assert plain["diagnostics"]["continuous_choice"]["search"] == "scan_and_refine"
+    assert plain["diagnostics"]["continuous_choice"]["search"] == "branch_and_bound"
     assert hinted["diagnostics"]["continuous_choice"]["search"] == "brent_from_bracket"
     # Both are certified bounds on the same fitted problem's fixed point (linear; a computed bracket for cubic).
     gap = np.abs(np.array(plain["value"]) - np.array(hinted["value"])).max()

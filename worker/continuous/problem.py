@@ -138,6 +138,8 @@ class ContinuousProblem:
         self._nodes: tuple[np.ndarray, ...] = ()
         self._scratch = (np.empty((data.n_shocks, data.n_grid)), np.empty(self.n))
         self._draw_count = 0 if data.draws is None else data.draws.size
+        self.bound_search = bool(getattr(module, "BOUNDED", False))  # see worker.continuous.bound_search
+        self._levels = kernels.pyramid_levels(sizes[self.target] if self.target is not None else 1)
         self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
 
     def use_params(self, params: np.ndarray) -> None:
@@ -163,7 +165,8 @@ class ContinuousProblem:
         states = np.empty((0, len(data.states)))
         self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
-                       False, False, self.scan_points, self.combos, none_f, none_f, none_f, none_i, 0, 0)
+                       False, False, self.scan_points, self.combos, none_f, self._levels, 0.0, none_f, none_f, none_f,
+                       none_i, 0, 0)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
                           self.combos, none_i, none_f, self._tomorrow(0), np.empty(0, dtype=np.bool_),
                           np.empty((0, self._draw_count)))
@@ -277,11 +280,17 @@ class ContinuousProblem:
         has_guess = guess is not None
         guess = guess if has_guess else np.zeros(1)
         search = self._k.search
+        pyramid, ev_abs = np.empty(0), 0.0  # an empty pyramid: the scan (see worker.continuous.bound_search)
+        if self.bound_search and not concave:
+            size, stride = int(self._meta[len(self._strides) + self.target]), self._strides[self.target]
+            pyramid = np.empty(EVt.size // (size * stride) * int(self._levels[-1]) * stride)
+            kernels.build_pyramid(EVt, size, stride, self._levels, pyramid)
+            ev_abs = float(np.abs(EVt).max())
 
         def run(start: int, stop: int) -> None:
             search(EVt, D, self.discount, self._params, self._sgrid, self._meta, self._data.shock_table, svals,
-                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self.combos, out_v,
-                   out_a, out_r, out_j, start, stop)
+                   piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self.combos, pyramid,
+                   self._levels, ev_abs, out_v, out_a, out_r, out_j, start, stop)
 
         return run
 
@@ -442,7 +451,13 @@ class ContinuousProblem:
                 "monotone_cubic interpolation: the error bound is computed as for linear interpolation, but the "
                 "cubic interpolant is not linear in the value function, so the bound is not a proof"
             )
-        if not self.hints.concave:
+        if not self.hints.concave and self.bound_search:
+            notes.append(
+                "without the concave hint each point's search skips runs of grid intervals that a bound proves "
+                "cannot beat the best choice found, and searches the others interval by interval; inside one "
+                "interval the search is local"
+            )
+        elif not self.hints.concave:
             notes.append(
                 "without the concave hint each point's search scans the interval and refines the best scanned "
                 "choice; a maximum hidden between two scanned points can be missed"
@@ -451,7 +466,8 @@ class ContinuousProblem:
             "choice": self.choice,
             "interpolation": self.interpolation,
             "certified": not self.cubic,
-            "search": ("brent_from_bracket" if self.hints.concave else "scan_and_refine"),
+            "search": ("brent_from_bracket" if self.hints.concave
+                       else "branch_and_bound" if self.bound_search else "scan_and_refine"),
             "monotone_narrowing": self.hints.monotone,
             "clamped_next": int(clamped.sum()),
         }

@@ -40,7 +40,9 @@ Then:
   choice's; every k-th above), else of ``scan_n`` evenly spread points — and
   Brent's method between the best one's neighbours.  This finds a global
   maximum only if no other peak hides between two scanned points; it is a
-  local refinement, not a guarantee.
+  local refinement, not a guarantee.  For a ``next_of`` choice where its
+  bound holds, the kernel runs the branch and bound of
+  :mod:`worker.continuous.bound_search` instead.
 
 Brent's method (Brent 1973, *Algorithms for Minimization without
 Derivatives*, ch. 5: golden-section steps with parabolic interpolation) stops

@@ -16,15 +16,19 @@ row ``piz`` (P,); ``EVt`` (n_shocks, n_grid) the continuation, ``D`` its
 slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 * ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
-  has_guess, concave, monotone, scan_n, combos, out_v, out_a, out_r, out_j,
-  start, stop)`` — the maximisation over the interval at the points
+  has_guess, concave, monotone, scan_n, combos, b_pyr, b_levels, ev_abs,
+  out_v, out_a, out_r, out_j, start, stop)`` — the maximisation over the interval at the points
   ``order[start:stop]``, once for each row of ``combos`` (the values of the
   other choices, one combination a row; one empty row without them), the
   best combination's index in ``out_j``;
   ``prev[q]`` is the position of the point before it on the same line of
   the chosen state (``-1`` at a line's start), whose choice in the same
   combination narrows that combination's bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
-  search itself.
+  search itself.  A non-empty ``b_pyr`` (the max-pyramid of ``EVt`` along the chosen state, ``b_levels`` its
+  level starts, ``ev_abs`` the largest ``|EVt|``) runs the branch and bound instead of the scan where the
+  module has ``BOUNDED = True``.
+* ``bound_point`` (only where the module has ``BOUNDED = True``) — that branch and bound at one point and
+  combination (:mod:`worker.continuous.bound_search`), a function of its own.
 * ``policy_at(p, sgrid, ztab, svals, piz, a, combos, jc, out_r, out_x,
   out_ok)`` — the reward and tomorrow's state values ``out_x`` (P, d) at the
   fixed choices ``a`` and combinations ``jc`` of the others; ``out_ok`` false
@@ -40,6 +44,7 @@ from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
+from worker.continuous.bound_search import BOUND_ARGUMENTS, BOUND_CALL, STACK_ROWS, bound_plan, bound_search
 from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
 from worker.document.limits import ROW_SUM_TOLERANCE
 from worker.draws import Draws
@@ -79,11 +84,15 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
+        "from worker.continuous.bound_kernels import block_max",
         "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
+        "",
+        f"BOUNDED = {writer.plan is not None}",
     ]
-    return "\n\n\n".join(["\n".join(header), writer.search(), writer.policy_at()]) + "\n"
+    kernels = [writer.search(), writer.policy_at()] + ([] if writer.plan is None else [writer.bound_point()])
+    return "\n\n\n".join(["\n".join(header), *kernels]) + "\n"
 
 
 class _Writer:
@@ -124,6 +133,7 @@ class _Writer:
             [e if isinstance(e, float) else Expression.from_tree(hoist.rewrite(e.tree)) for e in entries]
             for entries in draws.probs
         ]
+        self.plan = bound_plan(self)
 
     def _src(self, expr: Expression) -> str:
         return expressions.scalar_source(expr, self.names)
@@ -260,15 +270,26 @@ class _Writer:
             with out.block("if wk != 0.0:"):
                 out.add(f"e += wk * EVt[iz, {index}]")
 
+    def _closure(self, out: Lines) -> None:
+        """``f(c_0) -> (value, reward, tomorrow's states)``: the model at one choice, inlined where it is called."""
+        with out.block("def f(c_0):"):
+            for t in range(self.d):
+                out.add(f"x_{t} = np.nan")
+            self._model_at_choice(out, continuation=True)
+            out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
+
     def search(self) -> str:
         out = Lines()
         out.add(JIT)
         out.add(
             "def search(EVt, D, beta, p, sgrid, meta, ztab, svals, piz, order, prev, guess, has_guess, concave, "
-            "monotone, scan_n, combos, out_v, out_a, out_r, out_j, start, stop):"
+            "monotone, scan_n, combos, b_pyr, b_levels, ev_abs, out_v, out_a, out_r, out_j, start, stop):"
         )
         out.depth += 1
         self._prologue(out)
+        if self.plan is not None:
+            out.add(f"b_lev = np.empty({STACK_ROWS}, dtype=np.int64)", f"b_q = np.empty({STACK_ROWS}, dtype=np.int64)",
+                    f"b_ub = np.empty({STACK_ROWS})", "bounded = b_pyr.shape[0] > 0")
         out.add("line_a = np.full(combos.shape[0], np.nan)", "line_d = np.full(combos.shape[0], np.nan)", "last_q = -1")
         with out.block("for q in range(start, stop):"):
             out.add("i = order[q]", "near = prev[q] >= 0 and prev[q] == last_q", "follows = monotone and near",
@@ -283,17 +304,42 @@ class _Writer:
             out.add("best_v = -np.inf", "best_a = np.nan", "best_r = -np.inf", "best_j = 0")
             with out.block("for cc in range(combos.shape[0]):"):
                 self._others(out, "cc")
-                with out.block("def f(c_0):"):
-                    for t in range(self.d):
-                        out.add(f"x_{t} = np.nan")
-                    self._model_at_choice(out, continuation=True)
-                    out.add("return val, r, (" + "".join(f"x_{t}, " for t in range(self.d)) + ")")
-                text = SEARCH_TEXT.replace("#KINK#", "" if self.cubic or self.draws is not None else self._kinks())
-                out.extend(text.strip("\n").split("\n"))
+                self._closure(out)
+                kinks = "" if self.cubic or self.draws is not None else self._kinks()
+                out.add("moved = np.nan")  # the guess's move, set by SEARCH_TEXT's concave branch only
+                if self.plan is None:
+                    out.extend(SEARCH_TEXT.replace("#KINK#", kinks).strip("\n").split("\n"))
+                else:  # the branch and bound of worker.continuous.bound_search where it holds, else the scan
+                    with out.block("if bounded and not concave:"):
+                        out.extend(BOUND_CALL.strip("\n").split("\n"))
+                    with out.block("else:"):
+                        out.extend(SEARCH_TEXT.replace("#KINK#", "").strip("\n").split("\n"))
+                    out.extend(kinks.strip("\n").split("\n"))
                 out.add("line_a[cc] = x if fx > -np.inf else np.nan", "line_d[cc] = moved")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
             out.add("out_v[i] = best_v", "out_a[i] = best_a", "out_r[i] = best_r", "out_j[i] = best_j")
+        return out.text()
+
+    def bound_point(self) -> str:
+        """``bound_point``: the branch and bound of :mod:`worker.continuous.bound_search` at point ``i`` and
+        combination ``cc`` — a function of its own, so that numba compiles it apart from ``search`` (inlined there,
+        it doubled the compile time)."""
+        out = Lines()
+        out.add(JIT)
+        out.add(f"def bound_point({BOUND_ARGUMENTS}):")
+        out.depth += 1
+        self._prologue(out)
+        t = self.target
+        out.add(f"grid_off = off_{t}", f"grid_size = size_{t}", f"b_outer = EVt.shape[1] // (size_{t} * stride_{t})",
+                "b_root = 0")
+        with out.block(f"while (1 << b_root) < size_{t} - 1:"):
+            out.add("b_root += 1")
+        self._point(out)
+        self._others(out, "cc")
+        self._closure(out)
+        out.extend(bound_search(self, self.plan).strip("\n").split("\n"))
+        out.add("return x, fx, rx")
         return out.text()
 
     def _kinks(self) -> str:

@@ -172,10 +172,13 @@ class ContinuousChoice(Reported):
         description="True when the error bound is a proof for the fitted problem (linear interpolation); "
         "monotone_cubic interpolation is not linear in the value, so its bound is not."
     )
-    search: Literal["brent_from_bracket", "scan_and_refine"] = Field(
-        description="brent_from_bracket (with the concave hint: Brent's method from a bracket) or scan_and_refine "
-        "(without it: a scan of the interval, then a refinement of the best point scanned; a maximum hidden between "
-        "two scanned points can be missed)."
+    search: Literal["brent_from_bracket", "branch_and_bound", "scan_and_refine"] = Field(
+        description="brent_from_bracket (with the concave hint: Brent's method from a bracket); without it, "
+        "branch_and_bound (a next_of choice where the bound holds: runs of grid intervals that an upper bound proves "
+        "cannot beat the best choice found are skipped, the others searched interval by interval, locally inside "
+        "each) or scan_and_refine (elsewhere: a scan of the interval, then a refinement of the best point scanned; a "
+        "maximum hidden between two scanned points can be missed). A hinted solve's verifying step searches as "
+        "an unhinted one."
     )
     monotone_narrowing: bool = Field(description="The monotone hint narrowed each search's interval.")
     clamped_next: int = Field(
