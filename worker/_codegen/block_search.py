@@ -24,7 +24,7 @@ from worker._codegen.writer import JIT, KernelWriter, Lines
 from worker.expressions import Expression, names_in
 from worker.expressions.intervals import interval_source
 
-__all__ = ["BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan"]
+__all__ = ["BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan", "tighten_box"]
 
 BOUND_SLACK = 2.0**-40
 """Relative widening of a block's upper bound (of ``|reward bound| + |β·EV bound|``):
@@ -194,7 +194,7 @@ def _block_bound(writer: KernelWriter, out: Lines) -> None:
         lo, hi = bounds(expr, f"bf{k}_")
         out.add(f"if not ({lo} == 0.0 and {hi} == 0.0):")
         out.depth += 1
-        _tighten(writer, out, expr.tree, varying, names, lo_names, hi_names)
+        tighten_box(writer, out, expr.tree, varying, names, lo_names, hi_names)
     _, r_hi = bounds(writer.reward, "br_")
     out.add(f"r_hi = {r_hi}")
     with out.block("if r_hi != -np.inf:"):
@@ -223,7 +223,7 @@ def _block_bound(writer: KernelWriter, out: Lines) -> None:
 _FLIPPED = {"<": ">", "<=": ">=", ">": "<", ">=": "<=", "==": "=="}
 
 
-def _tighten(
+def tighten_box(
     writer: KernelWriter, out: Lines, tree: expressions.Node, varying: set[str], names: dict[str, str],
     lo_names: dict[str, str], hi_names: dict[str, str],
 ) -> None:
@@ -239,7 +239,7 @@ def _tighten(
     E = expressions
     if isinstance(tree, E.Logic) and tree.op == "and":
         for operand in tree.operands:
-            _tighten(writer, out, operand, varying, names, lo_names, hi_names)
+            tighten_box(writer, out, operand, varying, names, lo_names, hi_names)
         return
     if not isinstance(tree, E.Compare):
         return

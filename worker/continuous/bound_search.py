@@ -65,7 +65,7 @@ from dataclasses import dataclass
 from typing import Any
 
 from worker import expressions
-from worker._codegen.block_search import BOUND_SLACK, _tighten
+from worker._codegen.block_search import BOUND_SLACK, tighten_box
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
 from worker.continuous.search import BRENT_MAX_STEPS, XTOL_SHARE
@@ -387,7 +387,7 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
         lo, hi = interval(tree, f"bf{k}_")
         bound.add(f"if not ({lo} == 0.0 and {hi} == 0.0):")
         bound.depth += 1
-        _tighten(None, bound, tree, varying, names, lo_names, hi_names)
+        tighten_box(None, bound, tree, varying, names, lo_names, hi_names)
     _, r_hi = interval(reward, "br_")
     with bound.block(f"if {r_hi} != -np.inf:"):
         t = w.target
