@@ -68,7 +68,7 @@ from worker import expressions
 from worker._codegen.block_search import BOUND_SLACK, tighten_box
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
-from worker.continuous.search import BRENT_MAX_STEPS, XTOL_SHARE
+from worker.continuous.search import XTOL_SHARE, brent_loop
 from worker.expressions import Expression
 from worker.expressions.intervals import interval_source
 
@@ -231,69 +231,7 @@ elif width > 0.0:
             rb = r1
             dd = 0.0
             ee = 0.0
-            for _step in range({BRENT_MAX_STEPS}):
-                mid_b = 0.5 * (a + b)
-                tol1 = 1.4901161193847656e-08 * abs(xb) + tol_abs
-                tol2 = 2.0 * tol1
-                if abs(xb - mid_b) <= tol2 - 0.5 * (b - a):
-                    break
-                golden = True
-                if abs(ee) > tol1:
-                    rr = (xb - wb) * (gx - gv)
-                    qq = (xb - vb) * (gx - gw)
-                    pp = (xb - vb) * qq - (xb - wb) * rr
-                    qq = 2.0 * (qq - rr)
-                    if qq > 0.0:
-                        pp = -pp
-                    else:
-                        qq = -qq
-                    r0 = ee
-                    ee = dd
-                    if abs(pp) < abs(0.5 * qq * r0) and pp > qq * (a - xb) and pp < qq * (b - xb):
-                        dd = pp / qq
-                        u = xb + dd
-                        if u - a < tol2 or b - u < tol2:
-                            dd = tol1 if xb < mid_b else -tol1
-                        golden = False
-                if golden:
-                    ee = (b - xb) if xb < mid_b else (a - xb)
-                    dd = 0.3819660112501051 * ee
-                if abs(dd) >= tol1:
-                    u = xb + dd
-                elif dd > 0.0:
-                    u = xb + tol1
-                else:
-                    u = xb - tol1
-                u = min(max(u, lo_b), hi_b)
-                fu, ru, _xk = f(u)
-                gu = -fu
-                if gu <= gx:
-                    if u < xb:
-                        b = xb
-                    else:
-                        a = xb
-                    vb = wb
-                    gv = gw
-                    wb = xb
-                    gw = gx
-                    xb = u
-                    gx = gu
-                    fb = fu
-                    rb = ru
-                else:
-                    if u < xb:
-                        a = u
-                    else:
-                        b = u
-                    if gu <= gw or wb == xb:
-                        vb = wb
-                        gv = gw
-                        wb = u
-                        gw = gu
-                    elif gu <= gv or vb == xb or vb == wb:
-                        vb = u
-                        gv = gu
-            if fb > fx:
+{brent_loop(12, x="xb", w="wb", v="vb", fx="fb", rx="rb", mid="mid_b")}            if fb > fx:
                 x = xb
                 fx = fb
                 rx = rb

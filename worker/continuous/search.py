@@ -61,8 +61,8 @@ and ``near`` are false there).
 from __future__ import annotations
 
 __all__ = [
-    "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT", "MOVE_STEP",
-    "SEARCH_TEXT", "SQRT_EPS", "XTOL_SHARE",
+    "BRENT_LOOP", "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT",
+    "MOVE_STEP", "SEARCH_TEXT", "SQRT_EPS", "XTOL_SHARE", "brent_loop",
 ]
 
 COARSE_POINTS = 9
@@ -82,6 +82,85 @@ SQRT_EPS = 1.4901161193847656e-08
 """Brent's relative tolerance on the choice: the square root of float64's machine epsilon."""
 BRENT_MAX_STEPS = 200
 """Most steps of one Brent search (count; a smooth objective needs 10 to 30)."""
+
+BRENT_LOOP = """
+for _step in range({steps}):
+    {mid} = 0.5 * (a + b)
+    tol1 = {sqrt_eps} * abs({x}) + tol_abs
+    tol2 = 2.0 * tol1
+    if abs({x} - {mid}) <= tol2 - 0.5 * (b - a):
+        break
+    golden = True
+    if abs(ee) > tol1:
+        rr = ({x} - {w}) * (gx - gv)
+        qq = ({x} - {v}) * (gx - gw)
+        pp = ({x} - {v}) * qq - ({x} - {w}) * rr
+        qq = 2.0 * (qq - rr)
+        if qq > 0.0:
+            pp = -pp
+        else:
+            qq = -qq
+        r0 = ee
+        ee = dd
+        if abs(pp) < abs(0.5 * qq * r0) and pp > qq * (a - {x}) and pp < qq * (b - {x}):
+            dd = pp / qq
+            u = {x} + dd
+            if u - a < tol2 or b - u < tol2:
+                dd = tol1 if {x} < {mid} else -tol1
+            golden = False
+    if golden:
+        ee = (b - {x}) if {x} < {mid} else (a - {x})
+        dd = 0.3819660112501051 * ee
+    if abs(dd) >= tol1:
+        u = {x} + dd
+    elif dd > 0.0:
+        u = {x} + tol1
+    else:
+        u = {x} - tol1
+    u = min(max(u, lo_b), hi_b)
+    fu, ru, _xk = f(u)
+    gu = -fu
+    if gu <= gx:
+        if u < {x}:
+            b = {x}
+        else:
+            a = {x}
+        {v} = {w}
+        gv = gw
+        {w} = {x}
+        gw = gx
+        {x} = u
+        gx = gu
+        {fx} = fu
+        {rx} = ru
+    else:
+        if u < {x}:
+            a = u
+        else:
+            b = u
+        if gu <= gw or {w} == {x}:
+            {v} = {w}
+            gv = gw
+            {w} = u
+            gw = gu
+        elif gu <= gv or {v} == {x} or {v} == {w}:
+            {v} = u
+            gv = gu
+"""
+"""Brent's method (Brent 1973, ch. 5) as kernel text: the search for a maximum of ``f`` inside ``[a, b]`` from
+its best point ``{x}`` (value ``{fx}``, reward ``{rx}``) and the two before it ``{w}``, ``{v}`` (``gx``, ``gw``,
+``gv`` their negated values; ``dd``, ``ee`` the last two steps), never outside ``[lo_b, hi_b]``, stopping within
+``tol1 = SQRT_EPS·|x| + tol_abs``; written once, used by :data:`SEARCH_TEXT` and the branch and bound's
+intervals (:mod:`worker.continuous.bound_search`) under their own names (:func:`brent_loop`)."""
+
+
+def brent_loop(indent: int, *, x: str = "x", w: str = "w", v: str = "v", fx: str = "fx", rx: str = "rx",
+               mid: str = "mid") -> str:
+    """:data:`BRENT_LOOP` with the given names, every line indented by ``indent`` spaces (ends with a newline)."""
+    text = BRENT_LOOP.strip("\n").format(steps=BRENT_MAX_STEPS, sqrt_eps=repr(SQRT_EPS), x=x, w=w, v=v, fx=fx,
+                                          rx=rx, mid=mid)
+    return "".join(" " * indent + line + "\n" for line in text.split("\n"))
+
 
 SEARCH_TEXT = f"""
 lo_b = low
@@ -227,69 +306,7 @@ elif width > 0.0:
                 gw = -f2
                 v = a
                 gv = -f0
-        for _step in range({BRENT_MAX_STEPS}):
-            mid = 0.5 * (a + b)
-            tol1 = {SQRT_EPS!r} * abs(x) + tol_abs
-            tol2 = 2.0 * tol1
-            if abs(x - mid) <= tol2 - 0.5 * (b - a):
-                break
-            golden = True
-            if abs(ee) > tol1:
-                rr = (x - w) * (gx - gv)
-                qq = (x - v) * (gx - gw)
-                pp = (x - v) * qq - (x - w) * rr
-                qq = 2.0 * (qq - rr)
-                if qq > 0.0:
-                    pp = -pp
-                else:
-                    qq = -qq
-                r0 = ee
-                ee = dd
-                if abs(pp) < abs(0.5 * qq * r0) and pp > qq * (a - x) and pp < qq * (b - x):
-                    dd = pp / qq
-                    u = x + dd
-                    if u - a < tol2 or b - u < tol2:
-                        dd = tol1 if x < mid else -tol1
-                    golden = False
-            if golden:
-                ee = (b - x) if x < mid else (a - x)
-                dd = 0.3819660112501051 * ee
-            if abs(dd) >= tol1:
-                u = x + dd
-            elif dd > 0.0:
-                u = x + tol1
-            else:
-                u = x - tol1
-            u = min(max(u, lo_b), hi_b)
-            fu, ru, _xk = f(u)
-            gu = -fu
-            if gu <= gx:
-                if u < x:
-                    b = x
-                else:
-                    a = x
-                v = w
-                gv = gw
-                w = x
-                gw = gx
-                x = u
-                gx = gu
-                fx = fu
-                rx = ru
-            else:
-                if u < x:
-                    a = u
-                else:
-                    b = u
-                if gu <= gw or w == x:
-                    v = w
-                    gv = gw
-                    w = u
-                    gw = gu
-                elif gu <= gv or v == x or v == w:
-                    v = u
-                    gv = gu
-    if found:
+{brent_loop(8)}    if found:
         moved = x - g
 #KINK#
 """
