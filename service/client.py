@@ -205,11 +205,27 @@ class FixqClient:
                     raise
                 record = {"state": None}
             if record.get("state") in TERMINAL_STATES:
+                if not ended and on_progress is not None:
+                    # The stream broke and the job ended before it was re-opened: the log's tail is still to
+                    # be passed on (a finished job's stream replays it, then ends).
+                    self._drain_log(job_id, last_iteration, on_progress)
                 return record
             if deadline is not None and time.monotonic() > deadline:
                 raise TimeoutError(f"job {job_id} not finished after {timeout_s} s")
             if not ended:
                 time.sleep(RECONNECT_S)
+
+    def _drain_log(self, job_id: str, after: int | None, on_progress: Callable[[dict[str, Any]], None]) -> None:
+        """Pass on the entries of a finished job's log after iteration ``after`` (best effort: a stream that breaks
+        again is left, the record is what the caller returns)."""
+        try:
+            for event, data in self.stream_log(job_id, after=after):
+                if event == "entry":
+                    on_progress(data)
+                elif event == "end":
+                    return
+        except (httpx.TransportError, httpx.StreamError, APIError):
+            return
 
 
 def _encode(document: dict[str, Any]) -> bytes:
