@@ -23,11 +23,11 @@ from tests._mixed_models import (
     DISUTILITY,
     INCOME,
     WORK,
-    R,
     cash,
     exact_bellman,
     exact_fixed_point,
     household_document,
+    independent_euler_errors,
 )
 from worker import environment, threadpool
 from worker.document import parse_document
@@ -265,18 +265,7 @@ def test_euler_errors_at_the_chosen_combination_are_the_independent_ones(househo
     # between) and the saving is more than one local grid step from both ends of the grid (common practice, as
     # fixq's rule), at ten test points per grid point; everything from the exact solver here.
     grid, v, _, _ = reference
-    parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
-    k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
-    _, save, work = exact_bellman(v, grid, k)
-    c = cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
-    _, save_next, work_next = exact_bellman(v, grid, save.reshape(-1))
-    c_next = cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :], work_next] \
-        - save_next
-    expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
-    error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
-    step = np.interp(save, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
-    same = (work_next.reshape(k.size, INCOME.size, INCOME.size) == work[:, :, None]).all(axis=2)
-    measured = same & (save - step >= grid[0]) & (save + step <= grid[-1])
+    k, save, error, measured = independent_euler_errors(v, grid)
     found = household["diagnostics"]["euler_errors"]
     assert found["points"] == pytest.approx(int(measured.sum()), abs=2)
     assert found["max_log10"] == pytest.approx(error[measured].max(), abs=1e-3)
@@ -319,22 +308,11 @@ def test_euler_errors_through_a_finite_horizon_are_the_independent_ones(referenc
     values = [np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)]  # V_4, then V_3, ..., V_0
     for _ in range(4):
         values.insert(0, exact_bellman(values[0], grid)[0])
-    parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
-    k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2]
     points = 0
     for t in range(3):
-        _, save, work = exact_bellman(values[t + 1], grid, k)
-        c = cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
-        _, save_next, work_next = exact_bellman(values[t + 2], grid, save.reshape(-1))
-        c_next = cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :],
-                                         work_next] - save_next
-        expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
-        error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
-        step = np.interp(save, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
-        same = (work_next.reshape(k.size, INCOME.size, INCOME.size) == work[:, :, None]).all(axis=2)
-        measured = same & (save - step >= grid[0]) & (save + step <= grid[-1])
+        k, _, error, measured = independent_euler_errors(values[t + 1], grid, tomorrow=values[t + 2])
         points += int(measured.sum())
         assert errors["by_period"]["max_log10"][t] == pytest.approx(error[measured].max(), abs=1e-3)
         assert errors["by_period"]["mean_log10"][t] == pytest.approx(error[measured].mean(), abs=0.01)

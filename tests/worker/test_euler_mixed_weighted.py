@@ -9,7 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from tests._mixed_models import BETA, CHAIN, INCOME, R, cash, exact_bellman, exact_fixed_point, household_document
+from tests._mixed_models import CHAIN, INCOME, exact_fixed_point, household_document, independent_euler_errors
 from worker.solve import solve
 
 
@@ -38,18 +38,7 @@ def test_the_weighted_mean_beside_a_discrete_choice_is_the_independent_one() -> 
     result = solve(household_document({"concave": True}, stationary=True, euler_errors=True))
     grid = np.array(result["axes"]["a"])
     v, save_grid, _ = exact_fixed_point(grid)
-    parts = int(np.ceil(10 * grid.size / (grid.size - 1)))
-    k = (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
-    _, save, work = exact_bellman(v, grid, k)
-    c = cash(k)[np.arange(k.size)[:, None], np.arange(INCOME.size)[None, :], work] - save
-    _, save_next, work_next = exact_bellman(v, grid, save.reshape(-1))
-    c_next = cash(save.reshape(-1))[np.arange(save.size)[:, None], np.arange(INCOME.size)[None, :], work_next] \
-        - save_next
-    expected = (CHAIN[None, :, :] * (1 + R) / c_next.reshape(k.size, INCOME.size, INCOME.size)).sum(axis=2)
-    error = np.log10(np.maximum(np.abs(1.0 - 1.0 / (BETA * expected) / c), 2.0**-56))
-    step = np.interp(save, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
-    same = (work_next.reshape(k.size, INCOME.size, INCOME.size) == work[:, :, None]).all(axis=2)
-    measured = same & (save - step >= grid[0]) & (save + step <= grid[-1])
+    k, save, error, measured = independent_euler_errors(v, grid)
     stationary = _young(grid, save_grid)
     weights = np.stack([np.interp(k, grid, stationary[:, z]) for z in range(INCOME.size)], axis=1)
     reference = float(weights[measured] @ error[measured] / weights[measured].sum())
