@@ -68,7 +68,7 @@ from worker import expressions
 from worker._codegen.block_search import BOUND_SLACK, tighten_box
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
-from worker.continuous.search import XTOL_SHARE, brent_loop
+from worker.continuous.search import NARROW_TEXT, XTOL_SHARE, brent_loop
 from worker.expressions import Expression
 from worker.expressions.intervals import interval_source
 
@@ -88,14 +88,7 @@ BOUND_ARGUMENTS = ("EVt, D, beta, p, sgrid, meta, ztab, svals, piz, i, combos, c
 """The arguments of the generated ``bound_point``: the search kernel's, the point ``i``, the combination ``cc``, the
 interval ``[lo_b, hi_b]`` (narrowed under ``monotone``), the pyramid and the block stack."""
 
-BOUND_CALL = f"""
-lo_b = low
-hi_b = high
-if follows:
-    before = line_a[cc]
-    if before == before and before > lo_b:
-        lo_b = min(before, hi_b)
-width = hi_b - lo_b
+BOUND_CALL = f"""{NARROW_TEXT}width = hi_b - lo_b
 x, fx, rx = bound_point({BOUND_ARGUMENTS})
 """
 """What the search kernel runs in place of the scan: the interval, narrowed as the scan narrows it, then

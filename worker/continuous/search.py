@@ -62,7 +62,7 @@ from __future__ import annotations
 
 __all__ = [
     "BRENT_LOOP", "BRENT_MAX_STEPS", "COARSE_POINTS", "EXPAND_SHARE", "GRID_SCAN_MAX", "KINK_AXIS", "KINK_TEXT",
-    "MOVE_STEP", "SEARCH_TEXT", "SQRT_EPS", "XTOL_SHARE", "brent_loop",
+    "MOVE_STEP", "NARROW_TEXT", "SEARCH_TEXT", "SQRT_EPS", "XTOL_SHARE", "brent_loop",
 ]
 
 COARSE_POINTS = 9
@@ -162,14 +162,20 @@ def brent_loop(indent: int, *, x: str = "x", w: str = "w", v: str = "v", fx: str
     return "".join(" " * indent + line + "\n" for line in text.split("\n"))
 
 
-SEARCH_TEXT = f"""
+NARROW_TEXT = """
 lo_b = low
 hi_b = high
 if follows:
     before = line_a[cc]
     if before == before and before > lo_b:
         lo_b = min(before, hi_b)
-x = np.nan
+"""
+"""The interval ``[lo_b, hi_b]`` of a point's search: ``[low, high]``, its lower end raised under ``monotone`` to
+the choice at the point before on the same line in the same combination (``line_a[cc]``); written once, used
+by :data:`SEARCH_TEXT` and the branch and bound's call (:mod:`worker.continuous.bound_search`)."""
+
+
+SEARCH_TEXT = f"""{NARROW_TEXT}x = np.nan
 fx = -np.inf
 rx = -np.inf
 moved = np.nan
