@@ -14,6 +14,8 @@ BIN := $(VENV)/bin
 # makes a new stamp name, so the install reruns; otherwise it is skipped.
 STAMP := $(VENV)/.fixq-installed-$(shell cksum pyproject.toml | cut -d' ' -f1)
 DEMO_PROBLEM ?= service/examples/plant_capacity.json
+# Test processes (pytest-xdist): one per core by default; 0 runs the suite in this process.
+PYTEST_WORKERS ?= auto
 
 .PHONY: help env demo lint test
 
@@ -40,7 +42,7 @@ lint: $(STAMP)
 test: $(STAMP)
 	@$(BIN)/ruff check .
 	rc=0
-	$(BIN)/python -m pytest -q $(PYTEST_ARGS) || rc=$$?
+	$(BIN)/python -m pytest -q -n $(PYTEST_WORKERS) $(PYTEST_ARGS) || rc=$$?
 	if [ -n "$(PYTEST_STATUS)" ]; then echo "$$rc" >"$(PYTEST_STATUS)"; fi
 	if [ "$$rc" -eq 5 ]; then echo "make test: pytest collected no tests" >&2; fi
 	exit "$$rc"
