@@ -120,6 +120,9 @@ def draw_source(writer: DrawWriter) -> str:
         f"# generators {generator_hash()} {_own_hash()}",
         "import numpy as np",
         "from numba import njit",
+        "from worker.expressions.interval_kernels import interval_globals",
+        "",
+        "globals().update(interval_globals())",
         "",
         "",
     )

@@ -16,7 +16,7 @@ the method (Carroll 2006) instead of a search:
 
 Period ``t``'s policy reads ``k'_j`` against ``k*_j`` linearly (the lower end below the first point:
 the constraint binds); the choice points are the grid plus the bends of tomorrow's policy (where its
-constraint starts to bind, and up to ``KINK_GENERATIONS`` generations of their images), as in the
+constraint starts to bind, and their images down to a strength of ``KINK_STRENGTH``), as in the
 infinite-horizon method.
 
 Certification: each period's value is the exact step of the fitted Bellman operator at ``V_{t+1}``
@@ -38,14 +38,14 @@ from typing import Any
 import numpy as np
 
 from worker import _slopes
-from worker.continuous.egm import KINK_GENERATIONS, _inverse_marginal, _kinks, _state_for
+from worker.continuous.egm import KINK_STRENGTH, _inverse_marginal, _kinks, _most_bends, _state_for
 from worker.errors import InvalidDocument
 from worker.euler_points import environment, slope_at
 from worker.expressions import parse
 from worker.expressions.evaluator import evaluate_tree
 from worker.solvers.backward import PeriodPlan, period_step
 
-__all__ = ["EgmStepper", "KINK_GENERATIONS", "egm_stepper"]
+__all__ = ["EgmStepper", "KINK_STRENGTH", "egm_stepper"]
 
 
 def egm_stepper(doc: Any, problem: Any, plan: PeriodPlan, terminal_given: bool) -> EgmStepper | None:
@@ -96,12 +96,11 @@ class EgmStepper:
         self.grid = self.data.state_grids[0]
         self.terminal_slope = terminal_slope
         T, n_z = plan.periods, self.data.n_shocks
-        # The most choice points a round has: the grid, and bends of generation g, at most n_z^g of them
-        # (each bend of the generation before seen from every shock point).
-        self.width = self.grid.size + sum(n_z**g for g in range(1, KINK_GENERATIONS + 1))
+        # The most choice points a round has: the grid and the most bends kept.
+        self.width = self.grid.size + _most_bends(self.grid)
         self.states = np.full((T, self.width, n_z), np.nan)  # k*_j per period (NaN: no point)
         self.points = np.full((T, self.width), np.nan)  # k'_j per period
-        self.kinks: list[tuple[np.ndarray, np.ndarray] | None] = [None] * T
+        self.kinks: list[tuple[np.ndarray, np.ndarray, np.ndarray] | None] = [None] * T
         self.searched = np.zeros(T, dtype=bool)  # periods whose policy is the search's (no round possible)
         self.greedy_gap = np.zeros(T)
         self.value_gap = np.zeros(T)
@@ -138,7 +137,7 @@ class EgmStepper:
         today = self._period_data(t)
         kinks = None
         if not last and not self.searched[t + 1]:
-            kinks = _kinks(grid, self._pairs(t + 1), self.kinks[t + 1])
+            kinks = _kinks(grid, self._pairs(t + 1), self.kinks[t + 1], today.transition)
             self.kinks[t] = kinks
         points = grid if kinks is None else np.union1d(grid, kinks[0])
         shocks = today.shock_table[None, :, :]
@@ -214,7 +213,8 @@ class EgmStepper:
         # The bends of each period are recomputed from the grids, in the order the solve made them.
         for t in range(self.plan.periods - 2, first_done - 1, -1):
             if not self.searched[t + 1]:
-                self.kinks[t] = _kinks(self.grid, self._pairs(t + 1), self.kinks[t + 1])
+                self.kinks[t] = _kinks(self.grid, self._pairs(t + 1), self.kinks[t + 1],
+                                       self._period_data(t).transition)
         return True
 
     def report(self, first: int) -> dict[str, Any]:

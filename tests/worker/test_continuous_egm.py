@@ -72,7 +72,7 @@ def test_the_value_agrees_with_howards_method_within_both_bounds() -> None:
 def test_the_policy_agrees_with_a_plain_numpy_endogenous_grid_iteration(monkeypatch: pytest.MonkeyPatch) -> None:
     from worker.continuous import egm
 
-    monkeypatch.setattr(egm, "KINK_GENERATIONS", 0)
+    monkeypatch.setattr(egm, "KINK_STRENGTH", 2.0)
     plain = solve(_document())
     grid = np.array(plain["axes"]["a"])
     reference = _numpy_egm(grid)
@@ -84,7 +84,7 @@ def test_the_policy_agrees_with_a_plain_numpy_endogenous_grid_iteration(monkeypa
     # With them the fitted solution moves a little (the bends are read exactly), and its errors fall.
     bent = solve(_document(euler_errors=True))
     assert np.abs(np.array(bent["policy"]["save"]) - reference).max() < 2e-3
-    monkeypatch.setattr(egm, "KINK_GENERATIONS", 0)
+    monkeypatch.setattr(egm, "KINK_STRENGTH", 2.0)
     straight = solve(_document(euler_errors=True))
     assert bent["diagnostics"]["euler_errors"]["max_log10"] < straight["diagnostics"]["euler_errors"]["max_log10"]
 
@@ -131,7 +131,7 @@ def test_a_simulation_follows_states_off_the_grid_with_the_policy_interpolated()
     assert simulation["summary"]["save"]["mean"] == pytest.approx(result["stationary"]["means"]["save"], rel=0.05)
 
 
-def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives() -> None:
+def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives(monkeypatch: pytest.MonkeyPatch) -> None:
     """The rounds' compiled bends, union and reading (worker.continuous.egm_rounds) against the numpy code they
     replace (egm._kinks, np.union1d, egm._rule_at), on random endogenous grids: ties with grid points, bends
     outside the grid, not-a-number states, earlier bends not among the choices."""
@@ -149,13 +149,18 @@ def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives() -> None:
             states[0, :] = grid[1]
         if rng.random() < 0.2:
             states[rng.integers(0, choices.size), 0] = np.nan
+        transition = rng.dirichlet(np.ones(n_z), n_z)
         previous = None
         if rng.random() < 0.7:
             earlier = np.concatenate([choices[rng.integers(0, choices.size, int(rng.integers(0, 6)))], [123.0]])
-            previous = (earlier, rng.integers(1, 5, earlier.size))
-        expected = egm._kinks(grid, (states, choices), previous)
-        found = egm._bends(grid, (states, choices), previous)
-        assert np.array_equal(found[0], expected[0]) and np.array_equal(found[1], expected[1])
+            strength = rng.choice([1.0, 0.5, 0.02, 0.004], earlier.size)
+            previous = (earlier, rng.integers(0, n_z, earlier.size), strength)
+        if rng.random() < 0.2:
+            monkeypatch.setattr(egm, "KINK_MOST", 2.0 / grid.size)  # at most two bends: the strongest kept
+        expected = egm._kinks(grid, (states, choices), previous, transition)
+        found = egm._bends(grid, (states, choices), previous, transition)
+        monkeypatch.undo()
+        assert all(np.array_equal(f, e) for f, e in zip(found, expected, strict=True))
         assert np.array_equal(union_sorted(grid, expected[0]), np.union1d(grid, expected[0]))
         if np.isfinite(states).all():
             before = rng.uniform(0.0, 10.0, (grid.size, n_z))

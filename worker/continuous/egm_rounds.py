@@ -7,7 +7,7 @@ bookkeeping took a dozen small array calls per round, about as long as the kerne
 grid points (0.17 ms a round on the accuracy benchmark); compiled, it is a few microseconds.  Each
 function here gives exactly what its numpy twin in :mod:`worker.continuous.egm` gives.
 
-* :func:`bends` — :func:`worker.continuous.egm._kinks` (the bends and their generations);
+* :func:`bends` — :func:`worker.continuous.egm._kinks` (the bends, their shock points and strengths);
 * :func:`union_sorted` — ``np.union1d`` of the grid and the bends;
 * :func:`read_moved` — the policy on the grid read along the endogenous grid
   (:func:`worker.continuous.interp_kernels.read_pairs`) and its largest move from the last.
@@ -26,27 +26,37 @@ __all__ = ["bends", "read_moved", "root", "union_sorted"]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def bends(grid: np.ndarray, states: np.ndarray, choices: np.ndarray, earlier: np.ndarray,
-          generation: np.ndarray, most: int) -> tuple[np.ndarray, np.ndarray]:
-    """``(states, generations)`` of the bends inside the grid, sorted by state, each state once with its
-    lowest generation: generation 1 the first endogenous state of each shock point, and generation
-    ``g + 1`` the endogenous states of each earlier bend of generation ``g < most`` found among
-    ``choices`` (sorted).  ``earlier`` may be empty."""
+def bends(grid: np.ndarray, states: np.ndarray, choices: np.ndarray, earlier: np.ndarray, column: np.ndarray,
+          strength: np.ndarray, transition: np.ndarray, least: float,
+          most: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """``(states, columns, strengths)`` of the bends inside the grid and off its points, sorted by state.
+
+    Strength 1: the first endogenous state of each shock point (column).  An earlier bend ``e`` (a
+    state of column ``column[e]`` found among ``choices``, sorted) gives in every column ``z`` the
+    endogenous state that chooses it, of strength ``strength[e]·transition[z, column[e]]``; those below
+    ``least`` are dropped.  Each (state, column) is kept once, with its largest strength; past ``most``
+    bends, the strongest ``most`` (ties: the lower state first).  ``earlier`` may be empty."""
     n_z = states.shape[1]
     m = choices.shape[0]
     value = np.empty(n_z * (1 + earlier.shape[0]))
-    gen = np.empty(value.shape[0], dtype=np.int64)
+    col = np.empty(value.shape[0], dtype=np.int64)
+    power = np.empty(value.shape[0])
     count = 0
     for z in range(n_z):
         value[count] = states[0, z]
-        gen[count] = 1
+        col[count] = z
+        power[count] = 1.0
         count += 1
     for e in range(earlier.shape[0]):
         row = min(np.searchsorted(choices, earlier[e]), m - 1)
-        if choices[row] == earlier[e] and generation[e] < most:
-            for z in range(n_z):
+        if choices[row] != earlier[e]:
+            continue
+        for z in range(n_z):
+            carried = strength[e] * transition[z, column[e]]
+            if carried >= least:
                 value[count] = states[row, z]
-                gen[count] = generation[e] + 1
+                col[count] = z
+                power[count] = carried
                 count += 1
     low, high, n = grid[0], grid[-1], grid.shape[0]
     kept = 0
@@ -58,21 +68,26 @@ def bends(grid: np.ndarray, states: np.ndarray, choices: np.ndarray, earlier: np
         if at < n and grid[at] == x:
             continue
         value[kept] = x
-        gen[kept] = gen[i]
+        col[kept] = col[i]
+        power[kept] = power[i]
         kept += 1
-    value, gen = value[:kept], gen[:kept]
-    by_generation = np.argsort(gen, kind="mergesort")
-    order = by_generation[np.argsort(value[by_generation], kind="mergesort")]
-    out_value = np.empty(kept)
-    out_gen = np.empty(kept, dtype=np.int64)
-    unique = 0
+    value, col, power = value[:kept], col[:kept], power[:kept]
+    # Lexicographic order (state, column, strongest first) by stable sorts from the last key to the first.
+    order = np.argsort(-power, kind="mergesort")
+    order = order[np.argsort(col[order], kind="mergesort")]
+    order = order[np.argsort(value[order], kind="mergesort")]
+    unique = np.empty(kept, dtype=np.int64)
+    count = 0
     for i in range(kept):
-        x = value[order[i]]
-        if unique == 0 or x != out_value[unique - 1]:
-            out_value[unique] = x
-            out_gen[unique] = gen[order[i]]
-            unique += 1
-    return out_value[:unique], out_gen[:unique]
+        k = order[i]
+        if count == 0 or value[k] != value[unique[count - 1]] or col[k] != col[unique[count - 1]]:
+            unique[count] = k
+            count += 1
+    unique = unique[:count]
+    if count > most:
+        strongest = unique[np.argsort(-power[unique], kind="mergesort")][:most]
+        unique = strongest[np.argsort(value[strongest], kind="mergesort")]
+    return value[unique], col[unique], power[unique]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")

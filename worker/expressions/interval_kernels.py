@@ -65,6 +65,31 @@ def interval_globals() -> dict[str, object]:
     return {"np": np, GLOBAL_NAME: sys.modules[__name__]}
 
 
+@njit(cache=True, error_model="numpy", fastmath=False, inline="always")
+def scalar_power(x: float, e: float) -> float:
+    """``x ** e`` for an exponent known only at run time (a param, or an expression of params).
+
+    The exponents of everyday rewards are computed without ``pow``, which costs
+    about ten times a division (17 ns against 2–4 ns here): ``-1`` as ``1/x``,
+    ``2`` as ``x*x`` and ``1`` as ``x`` (exactly ``pow``'s value), ``-2`` as
+    ``1/(x*x)`` (within 1.5 ulp of it: the marginal utility of CRRA with
+    γ = 2), ``0.5`` as ``sqrt`` (exactly, but at ``-0.0`` and ``-inf``, where
+    ``pow`` gives ``+0.0`` and ``+inf``, and so does this).  Any other exponent
+    is ``pow``.
+    """
+    if e == -1.0:
+        return 1.0 / x
+    if e == 2.0:
+        return x * x
+    if e == -2.0:
+        return 1.0 / (x * x)
+    if e == 1.0:
+        return x
+    if e == 0.5 and x > 0.0:
+        return np.sqrt(x)
+    return x ** e
+
+
 @_jit
 def _widen(lo: float, hi: float) -> tuple[float, float]:
     lo = lo - (abs(lo) * RELATIVE_SLACK + ABSOLUTE_SLACK) if lo < np.inf else _LARGEST

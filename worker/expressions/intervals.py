@@ -34,12 +34,10 @@ from worker.expressions.nodes import (
     Power,
     pairwise,
 )
-from worker.expressions.scalar import float_literal, variable_text
+from worker.expressions.scalar import GLOBAL_NAME, float_literal, variable_text
 
 __all__ = ["GLOBAL_NAME", "interval_source"]
 
-GLOBAL_NAME = "fixq_intervals"
-"""The global name the generated lines use for :mod:`worker.expressions.interval_kernels`."""
 
 Interval = tuple[str, str]
 
