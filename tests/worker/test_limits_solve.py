@@ -172,7 +172,9 @@ def test_the_time_limit_stops_a_long_linear_solve() -> None:
     outcome = METHODS["policy_iteration"](problem, np.zeros(problem.n), tolerance=1e-12, time_limit_s=0.5)
     elapsed = time.perf_counter() - started
     assert outcome.status == "time_limit"
-    assert elapsed < 0.5 + 1.5
+    # The limit is checked between pieces of the linear solve, so it overshoots by a piece; on a loaded machine
+    # (the suite runs a process per core) a piece took up to 1.7 s (measured once), so the slack is generous.
+    assert elapsed < 0.5 + 4.0
     assert outcome.linear_solves >= 1
     tv, _ = problem.bellman_step(outcome.value)
     # The value returned carries the error bound of its own Bellman step, even cut short.
