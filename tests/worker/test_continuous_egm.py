@@ -133,10 +133,10 @@ def test_a_simulation_follows_states_off_the_grid_with_the_policy_interpolated()
 
 def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives(monkeypatch: pytest.MonkeyPatch) -> None:
     """The rounds' compiled bends, union and reading (worker.continuous.egm_rounds) against the numpy code they
-    replace (egm._kinks, np.union1d, egm._rule_at), on random endogenous grids: ties with grid points, bends
-    outside the grid, not-a-number states, earlier bends not among the choices."""
+    replace (egm._kinks, np.union1d, egm._rule_at on the grid), on random endogenous grids: ties with grid
+    points, bends outside the grid, not-a-number states, earlier bends not among the choices."""
     from worker.continuous import egm
-    from worker.continuous.egm_rounds import read_moved, union_sorted
+    from worker.continuous.egm_rounds import grid_moved, union_sorted
 
     rng = np.random.default_rng(7)
     for _ in range(200):
@@ -161,11 +161,11 @@ def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives(monkeypatch: p
         found = egm._bends(grid, (states, choices), previous, transition)
         monkeypatch.undo()
         assert all(np.array_equal(f, e) for f, e in zip(found, expected, strict=True))
-        assert np.array_equal(union_sorted(grid, expected[0]), np.union1d(grid, expected[0]))
+        union, rows = union_sorted(grid, expected[0])
+        assert np.array_equal(union, np.union1d(grid, expected[0])) and np.array_equal(union[rows], grid)
         if np.isfinite(states).all():
             before = rng.uniform(0.0, 10.0, (grid.size, n_z))
             out = np.empty_like(before)
-            moved = read_moved(states, choices, grid[0], grid[-1], grid, before, out)
-            if moved >= 0.0:  # −1: a column not increasing, read in numpy by the caller
-                read = egm._rule_at(grid, (states, choices), grid)
-                assert np.array_equal(out, read) and moved == np.abs(read - before).max()
+            read = egm._rule_at(grid, (states, choices), grid)
+            moved = grid_moved(egm._rule_at(grid, (states, choices), union), rows, before, out)
+            assert np.array_equal(out, read) and moved == np.abs(read - before).max()

@@ -52,7 +52,7 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
-from worker.continuous.egm_rounds import bends, read_moved, union_sorted
+from worker.continuous.egm_rounds import bends, grid_moved, union_sorted
 from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
@@ -141,18 +141,13 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     rounds, change = 0, np.inf
     power = _power(data, found, grid)
     kernel, params = egm_kernel(data, found, c_slope, power)
-    low, high = float(grid[0]), float(grid[-1])
+    low = float(grid[0])
     scale = float(np.abs(grid).max())
     moved = np.empty((n_k, n_z))
+    points, rows = grid, np.arange(n_k)
+    tomorrow = np.full((n_k, n_z), low)
     with np.errstate(all="ignore"):
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
-            if pairs is not None:
-                kinks = _bends(grid, pairs, kinks, data.transition)
-            points = grid if kinks is None else union_sorted(grid, kinks[0])
-            if pairs is None:
-                tomorrow = np.full((points.size, n_z), low)
-            else:
-                tomorrow = _rule_at(grid, pairs, points, ordered=True)
             if c_star is None:
                 c_star = np.full((points.size, n_z), np.nan)
             elif c_star.shape != (points.size, n_z):
@@ -166,12 +161,14 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
             pairs = (k_today, points)
-            change = read_moved(k_today, points, low, high, grid, policy, moved)
-            if change < 0.0:  # an endogenous grid that is not increasing: read it in numpy
-                moved = _rule_at(grid, pairs, grid)
-                change = float(np.abs(moved - policy).max())
-            policy, moved = moved, policy
             rounds += 1
+            # The next round's choices (the grid and this policy's bends) and the policy read there; the policy on
+            # the grid is among them, and its move from the last round's is the stopping rule's.
+            kinks = _bends(grid, pairs, kinks, data.transition)
+            points, rows = union_sorted(grid, kinks[0]) if kinks[0].size else (grid, np.arange(n_k))
+            tomorrow = _rule_at(grid, pairs, points, ordered=True)
+            change = grid_moved(tomorrow, rows, policy, moved)
+            policy, moved = moved, policy
     egm_seconds = time.perf_counter() - started
     flat = np.ascontiguousarray(policy.reshape(-1))
     try:

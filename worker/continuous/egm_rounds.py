@@ -8,9 +8,9 @@ grid points (0.17 ms a round on the accuracy benchmark); compiled, it is a few m
 function here gives exactly what its numpy twin in :mod:`worker.continuous.egm` gives.
 
 * :func:`bends` — :func:`worker.continuous.egm._kinks` (the bends, their shock points and strengths);
-* :func:`union_sorted` — ``np.union1d`` of the grid and the bends;
-* :func:`read_moved` — the policy on the grid read along the endogenous grid
-  (:func:`worker.continuous.interp_kernels.read_pairs`) and its largest move from the last.
+* :func:`union_sorted` — ``np.union1d`` of the grid and the bends, and the grid's rows among them;
+* :func:`grid_moved` — the policy on the grid (its rows among the next round's choices, where the
+  policy is read along the endogenous grid anyway) and its largest move from the last.
 * :func:`root` — ``x ** e`` with the exponents of the common rewards' inverse marginal (CRRA with
   γ = 2 or 1/2, log) as a square root or a division, within an ulp of the power.
 """
@@ -20,9 +20,7 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
-from worker.continuous.interp_kernels import read_pairs
-
-__all__ = ["bends", "read_moved", "root", "union_sorted"]
+__all__ = ["bends", "grid_moved", "root", "union_sorted"]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -91,37 +89,43 @@ def bends(grid: np.ndarray, states: np.ndarray, choices: np.ndarray, earlier: np
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def union_sorted(grid: np.ndarray, extra: np.ndarray) -> np.ndarray:
-    """The sorted distinct values of ``grid`` and ``extra`` (each sorted): ``np.union1d``."""
+def union_sorted(grid: np.ndarray, extra: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The sorted distinct values of ``grid`` and ``extra`` (each sorted), ``np.union1d``, and the row of each
+    grid point among them."""
     out = np.empty(grid.shape[0] + extra.shape[0])
+    rows = np.empty(grid.shape[0], dtype=np.int64)
     i = j = count = 0
     while i < grid.shape[0] or j < extra.shape[0]:
-        if j >= extra.shape[0] or (i < grid.shape[0] and grid[i] <= extra[j]):
+        from_grid = j >= extra.shape[0] or (i < grid.shape[0] and grid[i] <= extra[j])
+        if from_grid:
             x = grid[i]
-            i += 1
         else:
             x = extra[j]
             j += 1
         if count == 0 or x != out[count - 1]:
             out[count] = x
             count += 1
-    return out[:count]
+        if from_grid:
+            rows[i] = count - 1
+            i += 1
+    return out[:count], rows
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
-def read_moved(states: np.ndarray, choices: np.ndarray, low: float, high: float, grid: np.ndarray,
-               before: np.ndarray, out: np.ndarray) -> float:
-    """Write the policy at the (sorted) ``grid`` read along the pairs into ``out`` and return the largest
-    ``|out − before|``; −1 (``out`` not usable) when a column of ``states`` is not increasing."""
-    if not read_pairs(states, choices, low, high, grid, out):
-        return -1.0
+def grid_moved(tomorrow: np.ndarray, rows: np.ndarray, before: np.ndarray, out: np.ndarray) -> float:
+    """Write the policy on the grid, the rows ``rows`` of ``tomorrow`` (the policy at the next round's choices,
+    among which the grid's points are), into ``out``, and return the largest ``|out − before|`` (NaN if any
+    is, as ``np.max`` gives)."""
     moved = 0.0
     for i in range(out.shape[0]):
         for z in range(out.shape[1]):
-            gap = abs(out[i, z] - before[i, z])
-            if gap != gap:
-                return gap  # NaN, as np.max gives
-            moved = max(moved, gap)
+            x = tomorrow[rows[i], z]
+            out[i, z] = x
+            gap = abs(x - before[i, z])
+            if gap != gap or moved != moved:
+                moved = np.nan
+            else:
+                moved = max(moved, gap)
     return moved
 
 
