@@ -297,27 +297,19 @@ def _solved_cubic(k_points: int, a_points: int) -> tuple[Any, Any, np.ndarray, A
     return result["diagnostics"], problem, value, rule
 
 
-def test_a_solved_cubic_choice_against_an_independent_scipy_reading() -> None:
-    # Every test point's error against one computed here with numpy and scipy: the choices today and tomorrow by
-    # the fitted problem's own search (the policy the solve has between grid points), ∂EV/∂a'' the slope of the
-    # continuation EV(·, e') = Σ_e'' P[e', e''] V(·, e'') read by scipy's PchipInterpolator (_pchip_slope).
-    diagnostics, problem, value, rule = _solved_cubic(20, 5)
-    data = problem.model_data
-    found = euler.setup(data)
-    points, _ = euler_states.test_points(data, found)
-    slope = solve_slope(problem, data, value)
-    fixq, constrained = euler_points.errors_at(data, found, BETA, rule, points, (data, rule),
-                                               slopes=(slope, slope, BETA))
-    a_grid, k_grid = data.state_grids
-    table = value.reshape(a_grid.size, k_grid.size, 2)
-    ev = np.einsum("zw,akw->zak", E_CHAIN, table)
+def _scipy_errors(points: np.ndarray, a_grid: np.ndarray, k_grid: np.ndarray, rule: Any, rule_next: Any,
+                  value_after: np.ndarray) -> np.ndarray:
+    """Independent: the log10 errors at test ``points`` (a, k) of the choices ``rule`` today and ``rule_next``
+    tomorrow (points -> (points, e)), ∂EV/∂a'' the slope of the continuation EV(·, e') = Σ_e'' P[e', e'']
+    V(·, e'') of ``value_after`` (the day after's value, flat) read by scipy's PchipInterpolator
+    (:func:`_pchip_slope`): (points, e)."""
+    ev = np.einsum("zw,akw->zak", E_CHAIN, value_after.reshape(a_grid.size, k_grid.size, 2))
     a, k = points[:, 0], points[:, 1]
     x = rule(points)
     a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
     reference = np.empty_like(x)
     for j, e in enumerate(E_VALUES):
-        tomorrow = np.column_stack([a_next, x[:, j]])
-        x_next = rule(tomorrow)
+        x_next = rule_next(np.column_stack([a_next, x[:, j]]))
         expected = np.zeros(a.size)
         for jj, e_next in enumerate(E_VALUES):
             c_next = e_next * a_next * x[:, j] ** ALPHA - x_next[:, jj]
@@ -328,6 +320,21 @@ def test_a_solved_cubic_choice_against_an_independent_scipy_reading() -> None:
             expected += E_CHAIN[j, jj] * (ALPHA * e_next * a_next * x[:, j] ** (ALPHA - 1) / c_next + BETA * law)
         c = e * a * k**ALPHA - x[:, j]
         reference[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    return reference
+
+
+def test_a_solved_cubic_choice_against_an_independent_scipy_reading() -> None:
+    # Every test point's error against one computed here with numpy and scipy: the choices today and tomorrow by
+    # the fitted problem's own search (the policy the solve has between grid points), ∂EV/∂a'' read by scipy.
+    diagnostics, problem, value, rule = _solved_cubic(20, 5)
+    data = problem.model_data
+    found = euler.setup(data)
+    points, _ = euler_states.test_points(data, found)
+    slope = solve_slope(problem, data, value)
+    fixq, constrained = euler_points.errors_at(data, found, BETA, rule, points, (data, rule),
+                                               slopes=(slope, slope, BETA))
+    a_grid, k_grid = data.state_grids
+    reference = _scipy_errors(points, a_grid, k_grid, rule, rule, value)
     assert not constrained.any()
     # |1 − c̃/c| alike to 1e-13 at every point (largest gap 7.8e-15, one run: the two readings round differently,
     # which near errors of 1e-6 moves the log10 by up to about 2e-8), and the log10 to 1e-9 where the error is
@@ -358,6 +365,31 @@ def test_a_cubic_continuous_choice_is_measured_and_its_errors_fall_with_the_grid
         worst.append(errors["max_log10"])
     assert mean[0] - mean[1] >= 0.5 and worst[0] - worst[1] >= 0.3
     assert mean[1] < -4
+
+
+def test_a_cubic_finite_horizon_against_the_independent_scipy_reading() -> None:
+    # Period t: today's choice by the search against V_{t+1}, tomorrow's against V_{t+2}, ∂EV/∂a'' of V_{t+2}
+    # (the terminal value B log k + D log a on the grid for the last period measured), as in the linear test above.
+    b_coefficient = ALPHA_TILDE / (1 - BETA * ALPHA_TILDE)
+    document = _cubic(_document(16, 4))
+    document["model"]["horizon"] = {"periods": 3, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1]
+    _, problem = compile_document(document)
+    data = problem.model_data
+    a_grid, k_grid = data.state_grids
+    policies = np.asarray(result["policy"]["k_next"], dtype=float).reshape(3, -1)
+    terminal = b_coefficient * np.log(k_grid)[None, :, None] + D * np.log(a_grid)[:, None, None] + np.zeros(2)
+    values = [*np.asarray(result["value"], dtype=float).reshape(3, -1), terminal.reshape(-1)]  # V_0 .. V_3
+    points, _ = euler_states.test_points(data, euler.setup(data))
+    for t in (0, 1):
+        rule = euler_states.search_rule(problem, values[t + 1], policies[t])
+        rule_next = euler_states.search_rule(problem, values[t + 2], policies[t + 1])
+        reference = _scipy_errors(points, a_grid, k_grid, rule, rule_next, values[t + 2])
+        assert errors["by_period"]["max_log10"][t] == pytest.approx(reference.max(), abs=1e-9)
+        assert errors["by_period"]["mean_log10"][t] == pytest.approx(reference.mean(), abs=1e-9)
+    assert errors["constrained"] == 0 and errors["points"] == 2 * reference.size
 
 
 def test_a_continuous_linear_choice_is_measured_and_its_errors_fall_with_the_grid_step() -> None:
