@@ -286,9 +286,9 @@ def _pchip_slope(ev: np.ndarray, a_grid: np.ndarray, k_grid: np.ndarray, a: np.n
     return np.array([PchipInterpolator(a_grid, lines[:, i]).derivative()(a[i]) for i in range(a.size)])
 
 
-def _solved_cubic(k_points: int, a_points: int) -> tuple[Any, Any, np.ndarray, Any]:
+def _solved_cubic(k_points: int, a_points: int, **model: Any) -> tuple[Any, Any, np.ndarray, Any]:
     """A solved monotone_cubic model: its diagnostics, the compiled problem, the value, the search rule."""
-    document = _cubic(_document(k_points, a_points))
+    document = _cubic(_document(k_points, a_points, **model))
     result = solve(document)
     assert result["status"] == "converged"
     _, problem = compile_document(document)
@@ -298,35 +298,45 @@ def _solved_cubic(k_points: int, a_points: int) -> tuple[Any, Any, np.ndarray, A
 
 
 def _scipy_errors(points: np.ndarray, a_grid: np.ndarray, k_grid: np.ndarray, rule: Any, rule_next: Any,
-                  value_after: np.ndarray) -> np.ndarray:
+                  value_after: np.ndarray, value_next: np.ndarray | None = None) -> np.ndarray:
     """Independent: the log10 errors at test ``points`` (a, k) of the choices ``rule`` today and ``rule_next``
-    tomorrow (points -> (points, e)), ∂EV/∂a'' the slope of the continuation EV(·, e') = Σ_e'' P[e', e'']
-    V(·, e'') of ``value_after`` (the day after's value, flat) read by scipy's PchipInterpolator
-    (:func:`_pchip_slope`): (points, e)."""
-    ev = np.einsum("zw,akw->zak", E_CHAIN, value_after.reshape(a_grid.size, k_grid.size, 2))
+    tomorrow (points -> (points, e)), slopes along a of continuations EV(·, e) = Σ_e' P[e, e'] V(·, e') read by
+    scipy's PchipInterpolator (:func:`_pchip_slope`): (points, e).  The law learns from today's k (GROWTH's:
+    ∂EV/∂a'' of ``value_after``, the day after's value, flat), or with ``value_next`` (tomorrow's value) from the
+    capital chosen (CHOSEN_LAW's: ∂EV/∂a' of it, today)."""
+    chosen = value_next is not None
+    ev = np.einsum("zw,akw->zak", E_CHAIN, (value_next if chosen else value_after).reshape(a_grid.size, -1, 2))
     a, k = points[:, 0], points[:, 1]
     x = rule(points)
-    a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
     reference = np.empty_like(x)
     for j, e in enumerate(E_VALUES):
+        raw_next = a**RHO * ((x[:, j] if chosen else k) / K_BAR) ** THETA
+        a_next = np.clip(raw_next, a_grid[0], a_grid[-1])
         x_next = rule_next(np.column_stack([a_next, x[:, j]]))
         expected = np.zeros(a.size)
+        if chosen:  # moved to a grid end, the law does not move
+            moves = np.where(raw_next == a_next, THETA * raw_next / x[:, j], 0.0)
+            expected += BETA * moves * _pchip_slope(ev[j], a_grid, k_grid, a_next, x[:, j])
         for jj, e_next in enumerate(E_VALUES):
             c_next = e_next * a_next * x[:, j] ** ALPHA - x_next[:, jj]
-            raw = a_next**RHO * (x[:, j] / K_BAR) ** THETA
-            a_after = np.clip(raw, a_grid[0], a_grid[-1])
-            moves = np.where(raw == a_after, THETA * raw / x[:, j], 0.0)  # moved to a grid end: it does not move
-            law = _pchip_slope(ev[jj], a_grid, k_grid, a_after, x_next[:, jj]) * moves
-            expected += E_CHAIN[j, jj] * (ALPHA * e_next * a_next * x[:, j] ** (ALPHA - 1) / c_next + BETA * law)
+            expected += BETA * E_CHAIN[j, jj] * ALPHA * e_next * a_next * x[:, j] ** (ALPHA - 1) / c_next
+            if not chosen:
+                raw = a_next**RHO * (x[:, j] / K_BAR) ** THETA
+                a_after = np.clip(raw, a_grid[0], a_grid[-1])
+                moves = np.where(raw == a_after, THETA * raw / x[:, j], 0.0)
+                law = _pchip_slope(ev[jj], a_grid, k_grid, a_after, x_next[:, jj]) * moves
+                expected += BETA * BETA * E_CHAIN[j, jj] * law
         c = e * a * k**ALPHA - x[:, j]
-        reference[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+        reference[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / expected / c), 2.0**-56))
     return reference
 
 
-def test_a_solved_cubic_choice_against_an_independent_scipy_reading() -> None:
+@pytest.mark.parametrize("law", ["state", "choice"])
+def test_a_solved_cubic_choice_against_an_independent_scipy_reading(law: str) -> None:
     # Every test point's error against one computed here with numpy and scipy: the choices today and tomorrow by
-    # the fitted problem's own search (the policy the solve has between grid points), ∂EV/∂a'' read by scipy.
-    diagnostics, problem, value, rule = _solved_cubic(20, 5)
+    # the fitted problem's own search (the policy the solve has between grid points), the value's slope read by
+    # scipy; the law learning from today's k (tomorrow's term) or from the capital chosen (today's term).
+    diagnostics, problem, value, rule = _solved_cubic(20, 5, **({"next": CHOSEN_LAW} if law == "choice" else {}))
     data = problem.model_data
     found = euler.setup(data)
     points, _ = euler_states.test_points(data, found)
@@ -334,7 +344,7 @@ def test_a_solved_cubic_choice_against_an_independent_scipy_reading() -> None:
     fixq, constrained = euler_points.errors_at(data, found, BETA, rule, points, (data, rule),
                                                slopes=(slope, slope, BETA))
     a_grid, k_grid = data.state_grids
-    reference = _scipy_errors(points, a_grid, k_grid, rule, rule, value)
+    reference = _scipy_errors(points, a_grid, k_grid, rule, rule, value, value if law == "choice" else None)
     assert not constrained.any()
     # |1 − c̃/c| alike to 1e-13 at every point (largest gap 7.8e-15, one run: the two readings round differently,
     # which near errors of 1e-6 moves the log10 by up to about 2e-8), and the log10 to 1e-9 where the error is
