@@ -17,14 +17,23 @@ is left is the direct slope of the reward and of every law in ``k``.  With ``r``
 
 ``s' = (x, g(s, x, z), z')``, ``x' = x(s')``, ``s''`` the day after's states from ``s'`` and ``x'``.  The
 policy gives every term but ``∂V/∂y``: the envelope condition of ``y`` is itself recursive
-(``∂V/∂y = ∂r/∂y + β E[∂V/∂y' ∂g/∂y]`` and so on), so ``∂V/∂y`` is read from the solved value instead,
-as the solve reads the value (:func:`value_slope`: the slope along ``y`` of the multilinear interpolant,
-which is what a choice restricted to the grid or ``linear`` interpolation maximises against), the value
-of tomorrow ``V_{t+1}`` at ``s'`` and of the day after ``V_{t+2}`` at ``s''`` (the same in an infinite
-horizon).  Reading a slope of a piecewise-linear value is first order in the grid step of ``y``, so these
-errors carry that too.  Where ``g`` leaves the grid of ``y`` the solve moves ``y'`` to the nearer end,
-where it does not move with ``k`` or ``x``: the law's slopes count as 0 there.  At a point exactly on a
-grid node of ``y`` the slope is the one of the interval to its right.
+(``∂V/∂y = ∂r/∂y + β E[∂V/∂y' ∂g/∂y]`` and so on), so ``E ∂V/∂y`` is read from the solved value instead, as
+the solve reads the value: the slope along ``y`` of the continuation ``EV(·, z) = Σ_z' P[z, z'] V(·, z')``
+(what the solve interpolates and maximises against) at tomorrow's states, for today's shock point ``z``, of
+tomorrow's value ``V_{t+1}`` at ``s'`` and of the day after's ``V_{t+2}`` at ``s''`` (the same in an infinite
+horizon).  :func:`solve_slope` reads it by the solve's interpolation:
+
+* a choice restricted to the grid, or ``linear`` interpolation (:func:`value_slope`): the slope of the
+  multilinear interpolant, that of the grid interval along ``y`` holding the point (at a point exactly on a
+  grid node of ``y``, the interval to its right), first order in the grid step of ``y``, so these errors
+  carry that too;
+* ``monotone_cubic`` (:func:`worker.continuous.cubic_slope.cubic_continuation`): the slope of the tensor
+  product of Fritsch–Carlson interpolants the solve reads, by the solve's own functions differentiated.  That
+  reading is not linear in the value, so the slope of the expectation ``EV`` is read, not the expectation of
+  the slopes of ``V`` (with a multilinear reading the two are the same).
+
+Where ``g`` leaves the grid of ``y`` the solve moves ``y'`` to the nearer end, where it does not move with
+``k`` or ``x``: the law's slopes count as 0 there.
 
 Draws after the choice enter as elsewhere: every term is taken per draw and weighted by its probability.
 """
@@ -43,14 +52,14 @@ from worker.expressions import Node, names_in
 from worker.expressions.evaluator import evaluate_tree
 from worker.feasibility import ModelData
 
-__all__ = ["OpenLaw", "SlopeParts", "SlopeReader", "law_term", "open_laws", "value_slope"]
+__all__ = ["OpenLaw", "SlopeParts", "SlopeReader", "law_term", "open_laws", "solve_slope", "value_slope"]
 
-SlopeReader = Callable[[np.ndarray, int], np.ndarray]
-"""``slope(points, t) -> ∂V/∂y_t``: at points (rows, states), the value's slope along the state at position
-``t``, at every shock point, (rows, shock points)."""
+SlopeReader = Callable[[np.ndarray, np.ndarray, int], np.ndarray]
+"""``slope(points, rows, t) -> ∂EV/∂y_t``: at points (m, states) and today's shock points ``rows`` (m,), the
+slope along the state at position ``t`` of the continuation ``EV(·, z) = Σ_z' P[z, z'] V(·, z')``, (m,)."""
 SlopeParts = tuple[SlopeReader, SlopeReader, float]
-"""The slopes of tomorrow's value read today (``V_{t+1}``), of the day after's read tomorrow (``V_{t+2}``; the
-same in an infinite horizon), and tomorrow's discount."""
+"""The slopes of tomorrow's continuation read today (``V_{t+1}``'s), of the day after's read tomorrow
+(``V_{t+2}``'s; the same in an infinite horizon), and tomorrow's discount."""
 
 
 @dataclass(frozen=True)
@@ -81,20 +90,32 @@ def open_laws(data: ModelData, moved_k: set[str], moved_x: set[str], state: str,
     return tuple(out)
 
 
+def solve_slope(problem: Any, data: ModelData, value: np.ndarray) -> SlopeReader:
+    """The continuation's slopes of ``value`` (flat points) as ``problem``'s solve reads the value: by the monotone
+    cubic's tensor product where it interpolates so (``problem.cubic``), else multilinearly (:func:`value_slope`)."""
+    if not getattr(problem, "cubic", False):
+        return value_slope(data, value)
+    from worker.continuous.cubic_slope import cubic_continuation
+
+    read = cubic_continuation(data, value)
+    return lambda points, rows, t: read(points, rows, t)[1]
+
+
 def value_slope(data: ModelData, value: np.ndarray) -> SlopeReader:
-    """The slope along one state of ``value`` (flat points) read multilinearly over the product grid: along
-    that state the slope of the grid interval holding the point (the end intervals' beyond the grid), along
-    the others interpolated linearly, held at the ends."""
+    """The slope along one state of the continuation of ``value`` (flat points) read multilinearly over the
+    product grid: along that state the slope of the grid interval holding the point (the end intervals' beyond
+    the grid), along the others interpolated linearly, held at the ends."""
     sizes, n_z = tuple(data.state_sizes), data.n_shocks
-    table = np.asarray(value, dtype=np.float64).reshape(*sizes, n_z)
+    flat = np.asarray(value, dtype=np.float64).reshape(data.n_grid, n_z)
+    table = (data.transition @ flat.T).reshape(n_z, *sizes)  # EV(·, z), today's shock point first
     grids = [np.asarray(grid, dtype=np.float64) for grid in data.state_grids]
     cache: dict[int, np.ndarray] = {}
 
-    def read(points: np.ndarray, axis: int) -> np.ndarray:
+    def read(points: np.ndarray, rows: np.ndarray, axis: int) -> np.ndarray:
         if axis not in cache:
             shape = [1] * table.ndim
-            shape[axis] = grids[axis].size - 1
-            cache[axis] = np.diff(table, axis=axis) / np.diff(grids[axis]).reshape(shape)
+            shape[axis + 1] = grids[axis].size - 1
+            cache[axis] = np.diff(table, axis=axis + 1) / np.diff(grids[axis]).reshape(shape)
         slopes = cache[axis]
         lower, upper, weight = [], [], []
         for t, grid in enumerate(grids):
@@ -110,29 +131,30 @@ def value_slope(data: ModelData, value: np.ndarray) -> SlopeReader:
             lower.append(i)
             upper.append(i + 1)
             weight.append(np.clip((x - grid[i]) / (grid[i + 1] - grid[i]), 0.0, 1.0))
-        out = np.zeros((points.shape[0], n_z))
+        shock = np.asarray(rows, dtype=np.int64)
+        out = np.zeros(points.shape[0])
         for corner in itertools.product((False, True), repeat=len(grids)):
             share = np.prod([w if high else 1.0 - w for w, high in zip(weight, corner)], axis=0)
             if not share.any():
                 continue
             index = tuple(up if high else low for low, up, high in zip(lower, upper, corner))
-            out += share[:, None] * slopes[index]
+            out += share * slopes[(shock, *index)]
         return out
 
     return read
 
 
 def law_term(data: ModelData, laws: tuple[OpenLaw, ...], which: int, slope: tuple[Node, dict[str, Node]],
-             env: dict[str, Any], shape: tuple[int, ...], tomorrows: np.ndarray, read: SlopeReader,
-             transition: np.ndarray) -> np.ndarray:
-    """``Σ_y ∂g_y/∂x · E_z'[∂V/∂y(s')]`` (``which`` 0) or ``Σ_y ∂g_y/∂k · E_z'[∂V/∂y(s')]`` (1) at ``env``,
-    (rows, shock points); ``tomorrows`` the next states (rows × shock points, states), ``read`` the slope of
-    the value there, ``transition`` the shock chain; ``slope`` the setup's ``define_slope`` (0) or
-    ``state_slope`` (1), for the defines' derivatives the laws' slopes use."""
+             env: dict[str, Any], shape: tuple[int, ...], tomorrows: np.ndarray, read: SlopeReader) -> np.ndarray:
+    """``Σ_y ∂g_y/∂x · ∂EV/∂y(s')`` (``which`` 0) or ``Σ_y ∂g_y/∂k · ∂EV/∂y(s')`` (1) at ``env``,
+    (rows, shock points); ``tomorrows`` the next states (rows × shock points in C order, states), ``read`` the
+    slope of the continuation there (:data:`SlopeReader`, at each row's own shock point); ``slope`` the setup's
+    ``define_slope`` (0) or ``state_slope`` (1), for the defines' derivatives the laws' slopes use."""
     local = dict(env)
     for name, derived in slope[1].items():
         local[_slopes.prime(name)] = evaluate_tree(derived, local)
     total = np.zeros(shape)
+    rows = np.tile(np.arange(shape[1], dtype=np.int64), shape[0])
     for law in laws:
         tree = law.in_choice if which == 0 else law.in_state
         if tree is None:
@@ -143,6 +165,5 @@ def law_term(data: ModelData, laws: tuple[OpenLaw, ...], which: int, slope: tupl
         level = np.broadcast_to(evaluate_tree(dict(data.source.next)[law.position].tree, env), shape)
         inside = (level >= grid[0]) & (level <= grid[-1])  # moved to the nearer end outside: it does not move
         moves = np.where(inside, np.broadcast_to(evaluate_tree(tree, local), shape), 0.0)
-        value_slope_next = read(tomorrows, law.position).reshape(shape[0], shape[1], -1)
-        total += moves * np.einsum("azw,zw->az", value_slope_next, transition)
+        total += moves * read(tomorrows, rows, law.position).reshape(shape)
     return total

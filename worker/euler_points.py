@@ -56,8 +56,8 @@ def errors_at(
     ``tomorrow`` is the model and policy of the next period; ``companions`` today's and tomorrow's values of
     the other ``next_of`` choices, when the model has several (held there, their states moving to them);
     ``slopes`` the value's slopes, when another state's law moves with ``k`` or ``x``
-    (:mod:`worker.euler_laws`: each such law adds ``∂V/∂y(s') ∂g/∂x`` today and ``β' E ∂V/∂y(s'') ∂g/∂k``
-    tomorrow).
+    (:mod:`worker.euler_laws`: each such law adds ``∂EV/∂y(s') ∂g/∂x`` today and ``β' ∂EV/∂y(s'') ∂g/∂k``
+    tomorrow, ``EV`` the continuation).
 
     With shocks drawn after the choice (:func:`worker.euler_setup.setup` has checked that ``c`` and its
     marginal reward do not move with them), tomorrow's marginal value is the expectation over today's draws
@@ -104,7 +104,7 @@ def errors_at(
             expected += chances[d] * np.einsum("azw,zw->az", slope_next, data.transition)
             if found.laws and slopes is not None:
                 expected += chances[d] * law_term(data, found.laws, 0, found.define_slope, here, x.shape,
-                                                  tomorrows, slopes[0], data.transition)
+                                                  tomorrows, slopes[0])
             if moving is not None and values is not None:
                 extra += moving[d] * _worth(data, here, tomorrows, values[0], discount, x.shape)
         target = -(discount * expected + extra) / c_slope
@@ -160,7 +160,7 @@ def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, poin
         if found.laws and later_slope is not None:
             total = total + chances[d] * later_slope[1] * law_term(
                 data, found.laws, 1, found.state_slope, here, x.shape, next_points(data, found, here, x),
-                later_slope[0], data.transition)
+                later_slope[0])
         if moving is not None and later is not None:
             total = total + moving[d] * _worth(data, here, next_points(data, found, here, x), later[0], later[1],
                                                x.shape)

@@ -70,9 +70,9 @@ def euler_diagnostics(
         if refusal:
             add_note(refusal)
             return {}
-        from worker.euler_laws import value_slope
+        from worker.euler_laws import solve_slope
 
-        slope = value_slope(data, outcome.value)
+        slope = solve_slope(problem, data, outcome.value)
         slopes = (slope, slope, float(doc.discount))
     if mixed:  # a continuous choice beside others: at the chosen combination
         from worker.continuous.mixed_euler import mixed_euler_report
@@ -114,14 +114,17 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
 def value_refusal(doc: Any, problem: Any, *, slopes: bool = False) -> str:
     """Why the value cannot be read as the solve reads it, for draws whose probabilities move with the choice or
     the chosen state — or, with ``slopes``, for laws of motion that move with them ("" when it can: a choice
-    restricted to the grid, or ``linear`` interpolation)."""
-    if getattr(problem, "choose_at", None) is None or getattr(doc.model, "interpolation", "linear") == "linear":
+    restricted to the grid, or ``linear`` interpolation; for the slopes, ``monotone_cubic`` too:
+    :func:`worker.euler_laws.solve_slope`)."""
+    interpolation = getattr(doc.model, "interpolation", "linear")
+    if getattr(problem, "choose_at", None) is None or interpolation == "linear":
         return ""
     if slopes:
+        if interpolation == "monotone_cubic":
+            return ""
         return ("Euler-equation errors were not measured: a law of motion moves with the chosen state or the "
                 "choice, so the envelope condition carries the value's slope in that law's state, and with "
-                f"{doc.model.interpolation} interpolation that slope is not read here as the solve reads the value "
-                "(it is with linear)")
+                f"{interpolation} interpolation that slope is not read here as the solve reads the value")
     return ("Euler-equation errors were not measured: the probabilities of a draw after the choice move with the "
             "choice or the chosen state, so the first-order condition carries the value of each draw, and with "
             f"{doc.model.interpolation} interpolation that value is not read here as the solve reads it (it is "

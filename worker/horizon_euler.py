@@ -131,9 +131,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         today, rule = model_and_rule(t)
         extra = {}
         if found.laws:
-            from worker.euler_laws import value_slope
+            from worker.euler_laws import solve_slope
 
-            extra["slopes"] = (value_slope(data, after(t)), value_slope(data, after(t + 1)),
+            extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
                                float(plan.discounts[t + 1]))
         return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
                        values=values_at(t), **extra)
