@@ -24,7 +24,7 @@ from worker.document import parse_document
 from worker.euler import TEST_POINTS_PER_GRID_POINT
 from worker.euler_choices import choices_errors, choices_setup
 from worker.feasibility import model_data
-from worker.solve import solve
+from worker.solve import compile_document, solve
 
 A1, A2, BETA = 0.25, 0.15, 0.95
 Z_VALUES = np.array([0.9, 1.1])
@@ -205,13 +205,134 @@ def test_a_law_that_moves_with_a_chosen_state_gets_a_note_naming_the_choice() ->
     assert any("law of motion of `q`" in note for note in result["diagnostics"]["notes"])
 
 
-def test_a_continuous_choice_beside_another_next_of_choice_gets_a_note() -> None:
-    # Machines continuous, tools on their grid: the tools' combination changes with h from day to day, so the
-    # measurement at one combination on both days would skip nearly every point; a note says why instead.
+# A continuous choice beside a discrete one that sets a state (worker.continuous.setters_euler): machines ``k``
+# anywhere in their interval, tools ``h`` on their grid.
+
+CONTINUOUS_MACHINES = {"k_next": {"next_of": "k", "continuous": True}, "h_next": {"next_of": "h"}}
+
+
+def _between(grid: np.ndarray) -> np.ndarray:
+    """Ten or more test values per grid point, the centres of equal parts of each interval (common practice, as
+    the module documents)."""
+    parts = math.ceil(10 * grid.size / (grid.size - 1))
+    return (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
+
+
+def _searched(problem: Any, v: np.ndarray, points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The fitted problem's own search (fixq's maximiser, not its Euler code) at points (m, 2) of (k, h), every
+    shock row: ``(value, k', index of h')``, each (m, shock points)."""
+    m, n_z = points.shape[0], Z_VALUES.size
+    found, chosen = problem.choose_at(v, np.repeat(points, n_z, axis=0), np.tile(np.arange(n_z), m), None)
+    return found.reshape(m, n_z), chosen[:, 0].reshape(m, n_z), chosen[:, 1].astype(int).reshape(m, n_z)
+
+
+def _exact_maximum(value: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray, points: np.ndarray
+                   ) -> tuple[np.ndarray, np.ndarray]:
+    """Independent, plain numpy: the fitted workshop's maximum at points (m, 2), every shock point, ``(value, k')``.
+
+    Tomorrow's value is read linearly along k (``linear`` interpolation; h' is a grid point), so on each grid
+    segment of k the continuation is linear and ``1/c = β · slope`` gives the segment's maximum in closed form;
+    the best segment and the best h' win."""
+    k, h = points[:, 0], points[:, 1]
+    best = np.full((k.size, Z_VALUES.size), -np.inf)
+    chosen = np.full(best.shape, np.nan)
+    for j, z in enumerate(Z_VALUES):
+        after = value @ Z_CHAIN[j]  # (k, h): E[V(k', h', z') | z]
+        y = z * k**A1 * h**A2
+        for i, h_next in enumerate(h_grid):
+            for s in range(k_grid.size - 1):
+                slope = (after[s + 1, i] - after[s, i]) / (k_grid[s + 1] - k_grid[s])
+                interior = y - h_next - 1 / (BETA * slope) if slope > 0 else np.full(k.size, k_grid[s])
+                save = np.clip(interior, k_grid[s], k_grid[s + 1])
+                c = y - h_next - save
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    total = np.where(c > 0, np.log(np.where(c > 0, c, 1.0)) + BETA * (
+                        after[s, i] + slope * (save - k_grid[s])), -np.inf)
+                better = total > best[:, j]
+                best[better, j], chosen[better, j] = total[better], save[better]
+    return best, chosen
+
+
+def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Independent, plain numpy: Judd's (1992) errors of the machines' equation at the test points (between grid
+    points of k, at every grid point of h, C order), every shock point: ``(points, error, constrained,
+    measured)``.
+
+    Today's (k', h') and tomorrow's (k'', h'') at (k', h', z') are the fitted problem's search (:func:`_searched`,
+    checked against :func:`_exact_maximum` by the test); the equation is ``1/c = β Σ_z' P[z, z'] ∂r/∂k(s')`` with
+    ``∂r/∂k = a1 y'/(k' c'')`` (log utility, ``c = y − k_next − h_next``), ``c̃ = 1/(β E[·])``.  Skipped: k'
+    within one local grid step of an end of k's grid or c ≤ 0 a step away (common practice, as fixq's rule), and
+    tomorrow's best h'' at k' not the one at the nearest grid points of k below and above k' (the value's kink).
+    """
+    k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
+    points = np.column_stack([k.ravel(), h.ravel()])
+    _, k_next, index = _searched(problem, v, points)
+    h_next = h_grid[index]
+    y = Z_VALUES[None, :] * points[:, :1] ** A1 * points[:, 1:] ** A2
+    c = y - k_next - h_next
+    after = np.column_stack([k_next.ravel(), h_next.ravel()])  # tomorrow's states, rows (test point, z)
+    _, k_after, index_after = _searched(problem, v, after)
+    y_after = Z_VALUES[None, :] * after[:, :1] ** A1 * after[:, 1:] ** A2
+    c_after = y_after - k_after - h_grid[index_after]
+    slope = (A1 * y_after / (after[:, :1] * c_after)).reshape(*c.shape, Z_VALUES.size)
+    expected = np.einsum("mzw,zw->mz", slope, Z_CHAIN)
+    error = np.log10(np.maximum(np.abs(1 - 1 / (BETA * expected) / c), 2.0**-56))
+    step = np.interp(k_next, 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid))
+    constrained = (k_next - step < k_grid[0]) | (k_next + step > k_grid[-1])
+    constrained |= (y - h_next - (k_next - step) <= 0) | (y - h_next - (k_next + step) <= 0)
+    last = k_grid.size - 1
+    for nearest in (np.searchsorted(k_grid, after[:, 0], side="left") - 1,
+                    np.searchsorted(k_grid, after[:, 0], side="right")):
+        beside = np.column_stack([k_grid[np.clip(nearest, 0, last)], after[:, 1]])
+        switched = (_searched(problem, v, beside)[2] != index_after).any(axis=1)
+        constrained |= switched.reshape(c.shape)
+    return points, error, constrained, ~constrained & np.isfinite(error)
+
+
+def test_a_continuous_choice_beside_a_discrete_next_of_choice_against_an_independent_computation() -> None:
     states = {"k": {"min": 0.04, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
-    document = _document(states=states, hints={"concave": True},
-                         choices={"k_next": {"next_of": "k", "continuous": True}, "h_next": {"next_of": "h"}})
-    diagnostics = solve(document)["diagnostics"]
-    assert "euler_errors" not in diagnostics
-    assert any("another choice that sets tomorrow's value of a state (`h_next`)" in note
-               for note in diagnostics["notes"])
+    document = _document(states=states, hints={"concave": True}, choices=CONTINUOUS_MACHINES)
+    result = solve(document)
+    assert result["status"] == "converged"
+    errors = result["diagnostics"]["euler_errors"]
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    value = np.asarray(result["value"], dtype=float)  # (k, h, z)
+    problem = compile_document(document)[1]
+    v = value.reshape(-1)
+    points, error, constrained, measured = _machine_errors(problem, v, k_grid, h_grid)
+    # The search's choices are the fitted problem's exact maximum (an independent numpy maximiser), to Brent's
+    # tolerance; the errors below then use the search's own.
+    found, k_next, _ = _searched(problem, v, points)
+    best, exact = _exact_maximum(value, k_grid, h_grid, points)
+    assert np.abs(found - best).max() <= 1e-10
+    assert np.abs(k_next - exact).max() <= 1e-6
+    own = errors["by_choice"]["k_next"]
+    assert own["state"] == "k" and own["define"] == "c" and own["undefined"] == 0
+    assert own["points"] == measured.sum() and own["constrained"] == constrained.sum() == error.size - measured.sum()
+    # Both kinds of skip happen here: tomorrow's tools switching along k, and the machines' grid ends.
+    assert 0 < own["points"] < error.size
+    assert own["max_log10"] == pytest.approx(error[measured].max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(error[measured].mean(), abs=1e-9)
+    # Every test point: the profile along k holds, per shock point, the worst over h of the errors measured.
+    layout = (_between(k_grid).size, h_grid.size, Z_VALUES.size)
+    worst = np.where(measured, error, -np.inf).reshape(layout).max(axis=1)
+    profile = np.array([[-np.inf if entry is None else entry for entry in row]
+                        for row in own["profile"]["log10_error"]])
+    assert own["profile"]["pooled"] == 1 and np.array_equal(profile == -np.inf, worst == -np.inf)
+    np.testing.assert_allclose(profile[worst > -np.inf], worst[worst > -np.inf], rtol=0, atol=1e-9)
+    distribution = np.asarray(result["stationary"]["distribution"], dtype=float)
+    read = [RegularGridInterpolator((k_grid, h_grid), distribution[:, :, j]) for j in range(Z_VALUES.size)]
+    weights = np.stack([r(points) for r in read], axis=-1)
+    assert own["weighted_mean_log10"] == pytest.approx(
+        (weights * error)[measured].sum() / weights[measured].sum(), abs=1e-9)
+    # The tools' own equation: along h, every policy read linearly between grid points (the module documents why).
+    reference, _ = _numpy_errors(np.asarray(result["policy"]["k_next"], dtype=float),
+                                 np.asarray(result["policy"]["h_next"], dtype=float), k_grid, h_grid, 1)
+    tools = errors["by_choice"]["h_next"]
+    assert tools["state"] == "h" and tools["constrained"] == 0 and tools["points"] == reference.size
+    assert tools["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+    assert tools["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+    assert errors["max_log10"] == max(own["max_log10"], tools["max_log10"])
+    assert errors["points"] == own["points"] + tools["points"]
+    assert any(f"{own['constrained']:,} test points skipped" in note for note in result["diagnostics"]["notes"])
