@@ -265,7 +265,7 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
     checked against :func:`_exact_maximum` by the test); the equation is ``1/c = β Σ_z' P[z, z'] ∂r/∂k(s')`` with
     ``∂r/∂k = a1 y'/(k' c'')`` (log utility, ``c = y − k_next − h_next``), ``c̃ = 1/(β E[·])``.  Skipped: k'
     within one local grid step of an end of k's grid or c ≤ 0 a step away (common practice, as fixq's rule), and
-    tomorrow's best h'' at k' not the one at the nearest grid points of k below and above k' (the value's kink).
+    tomorrow's best h'' at k' not the one a test points' spacing below or above (the value's kink).
     """
     k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
     points = np.column_stack([k.ravel(), h.ravel()])
@@ -283,17 +283,18 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
     step = np.interp(k_next, 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid))
     constrained = (k_next - step < k_grid[0]) | (k_next + step > k_grid[-1])
     constrained |= (y - h_next - (k_next - step) <= 0) | (y - h_next - (k_next + step) <= 0)
-    last = k_grid.size - 1
-    for nearest in (np.searchsorted(k_grid, after[:, 0], side="left") - 1,
-                    np.searchsorted(k_grid, after[:, 0], side="right")):
-        beside = np.column_stack([k_grid[np.clip(nearest, 0, last)], after[:, 1]])
+    apart = np.interp(after[:, 0], 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid)) / math.ceil(
+        10 * k_grid.size / (k_grid.size - 1))  # the test points' spacing there
+    for moved in (after[:, 0] - apart, after[:, 0] + apart):
+        beside = np.column_stack([np.clip(moved, k_grid[0], k_grid[-1]), after[:, 1]])
         switched = (_searched(problem, v, beside)[2] != index_after).any(axis=1)
         constrained |= switched.reshape(c.shape)
     return points, error, constrained, ~constrained & np.isfinite(error)
 
 
 def test_a_continuous_choice_beside_a_discrete_next_of_choice_against_an_independent_computation() -> None:
-    states = {"k": {"min": 0.04, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
+    # The machines' grid starts above the poorest shop's exact choice, so their lower limit binds there.
+    states = {"k": {"min": 0.06, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
     document = _document(states=states, hints={"concave": True}, choices=CONTINUOUS_MACHINES)
     result = solve(document)
     assert result["status"] == "converged"
@@ -312,8 +313,10 @@ def test_a_continuous_choice_beside_a_discrete_next_of_choice_against_an_indepen
     own = errors["by_choice"]["k_next"]
     assert own["state"] == "k" and own["define"] == "c" and own["undefined"] == 0
     assert own["points"] == measured.sum() and own["constrained"] == constrained.sum() == error.size - measured.sum()
-    # Both kinds of skip happen here: tomorrow's tools switching along k, and the machines' grid ends.
-    assert 0 < own["points"] < error.size
+    # Both kinds of skip happen here: the machines' lower limit, and tomorrow's tools switching along k.
+    step = np.interp(k_next, 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid))
+    at_limit = k_next - step < k_grid[0]
+    assert at_limit.any() and (constrained & ~at_limit).any() and own["points"] > error.size / 2
     assert own["max_log10"] == pytest.approx(error[measured].max(), abs=1e-9)
     assert own["mean_log10"] == pytest.approx(error[measured].mean(), abs=1e-9)
     # Every test point: the profile along k holds, per shock point, the worst over h of the errors measured.

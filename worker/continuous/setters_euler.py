@@ -26,9 +26,11 @@ A test point is skipped and counted as ``constrained`` where the equation need n
 * ``k'`` within one local grid step of an end of the grid of ``k``, or moving it by that step either way not
   allowed with ``h'`` held (:func:`worker.euler_points.binding`, as for one choice);
 * at a state ``s'`` tomorrow (any draw, any shock point), the best combination of the discrete choices at
-  ``k'`` differs from the one at the nearest grid point of ``k`` below ``k'`` or above it (``h'``, ``y'``
-  held): the value then has a kink in ``k`` near ``k'`` (the best ``h''`` switches), where ``∂V/∂k`` is not
-  ``∂r/∂k`` at one choice, and the fitted value is interpolated across it.
+  ``k'`` differs from the one at ``k'`` minus or plus the test points' spacing there (the local grid step of
+  ``k`` over the test points per interval; ``h'``, ``y'`` held): the value has a kink in ``k`` between (the
+  best ``h''`` switches), where ``∂V/∂k`` is not ``∂r/∂k`` at one choice.  The test points' spacing is the
+  resolution the measurement has along ``k``; a point farther from the switch is measured, the fitted
+  value's smoothing of the kink over its grid interval showing in its error.
 
 A switch of today's combination between test points does not skip a point: the first-order condition in
 ``k'`` holds at the combination chosen, and today's kink in ``V`` is not in the equation.
@@ -46,11 +48,13 @@ infinite horizon only (a finite horizon gets a note: :func:`worker.continuous.mi
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
 
 from worker.continuous.mixed_euler import Search, searcher
+from worker.euler import TEST_POINTS_PER_GRID_POINT
 from worker.euler_choices import choices_setup, grid_rules, pool_choices, several_next_of
 from worker.euler_points import PointsRule, combinations, environment, next_points
 from worker.euler_setup import EulerSetup
@@ -98,15 +102,18 @@ def continuous_part(data: ModelData, found: EulerSetup, discount: float, search:
     shocks = data.shock_table[None, :, :]
     beside, beside_next = _values_of(others, combos, search), _values_of(others, combos, search_next)
 
+    spacing = 1.0 / math.ceil(TEST_POINTS_PER_GRID_POINT * grid.size / (grid.size - 1))  # of a local grid step
+
     def smooth(points: np.ndarray) -> np.ndarray:
-        """Whether tomorrow's best combination at ``points`` (rows) is the one at the nearest grid points of the
-        state below and above, at every shock point: no kink between (rows,)."""
+        """Whether tomorrow's best combination at ``points`` (rows) is the one a test points' spacing below and
+        above along the state, at every shock point: no kink between (rows,)."""
         chosen = search_next(points)[1]
         k = points[:, position]
+        apart = spacing * np.interp(k, 0.5 * (grid[1:] + grid[:-1]), np.diff(grid))
         same = np.ones(points.shape[0], dtype=bool)
-        for nearest in (np.searchsorted(grid, k, side="left") - 1, np.searchsorted(grid, k, side="right")):
+        for moved_k in (k - apart, k + apart):
             moved = points.copy()
-            moved[:, position] = grid[np.clip(nearest, 0, grid.size - 1)]
+            moved[:, position] = np.clip(moved_k, grid[0], grid[-1])
             same &= (search_next(moved)[1] == chosen).all(axis=1)
         return same
 
