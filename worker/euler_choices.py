@@ -33,8 +33,9 @@ Reported: ``diagnostics.euler_errors`` pools every choice's errors (``max_log10`
 ``weighted_mean_log10`` weights every point measured by the stationary distribution read along the
 choice's state, renormalised over all of them); ``define`` and ``profile`` are those of the choice with the
 largest error, so the profile's largest entry is still ``max_log10``; ``by_choice`` holds each choice's
-own errors (:func:`choices_errors`).  Draws whose probabilities move with a choice or a chosen state are
-not measured here (a note says so).
+own errors (:func:`choices_errors`).  One of the choices may be continuous: its own equation is then read by
+the fitted problem's search (:mod:`worker.continuous.setters_euler`), the others' as here.  Draws whose
+probabilities move with a choice or a chosen state are not measured here (a note says so).
 """
 
 from __future__ import annotations
