@@ -413,3 +413,15 @@ def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:
         worst.append(own["max_log10"])
         mean.append(own["mean_log10"])
     assert worst[0] > worst[1] + 0.25 > worst[2] + 0.5 and mean[0] > mean[1] + 0.25 > mean[2] + 0.5
+
+
+def test_a_finite_horizon_with_a_continuous_choice_beside_a_discrete_next_of_choice_gets_a_note() -> None:
+    # Not wired into worker.horizon_euler yet: a note says so instead of errors.
+    states = {"k": {"min": 0.06, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
+    document = _document(states=states, hints={"concave": True}, choices=CONTINUOUS_MACHINES)
+    document["model"]["horizon"] = {"periods": 3, "terminal_value": "0"}
+    document["report"] = {"euler_errors": True}
+    diagnostics = solve(document)["diagnostics"]
+    assert "euler_errors" not in diagnostics
+    assert any("with a finite horizon, beside another choice that sets tomorrow's value of a state (`h_next`)" in note
+               for note in diagnostics["notes"])
