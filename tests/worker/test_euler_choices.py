@@ -306,10 +306,12 @@ def test_a_continuous_choice_beside_a_discrete_next_of_choice_against_an_indepen
     points, error, constrained, measured = _machine_errors(problem, v, k_grid, h_grid)
     # The search's choices are the fitted problem's exact maximum (an independent numpy maximiser), to Brent's
     # tolerance; the errors below then use the search's own.
-    found, k_next, _ = _searched(problem, v, points)
-    best, exact = _exact_maximum(value, k_grid, h_grid, points)
-    assert np.abs(found - best).max() <= 1e-10
-    assert np.abs(k_next - exact).max() <= 1e-6
+    found, k_next, index = _searched(problem, v, points)
+    after = np.column_stack([k_next.ravel(), h_grid[index].ravel()])  # tomorrow's states, off the grid of k
+    for where, (found, chosen, _) in ((points, (found, k_next, index)), (after, _searched(problem, v, after))):
+        best, exact = _exact_maximum(value, k_grid, h_grid, where)
+        assert np.abs(found - best).max() <= 1e-10
+        assert np.abs(chosen - exact).max() <= 1e-6
     own = errors["by_choice"]["k_next"]
     assert own["state"] == "k" and own["define"] == "c" and own["undefined"] == 0
     assert own["points"] == measured.sum() and own["constrained"] == constrained.sum() == error.size - measured.sum()
