@@ -8,6 +8,10 @@ case", Journal of Economic Theory 4(3), 479–513, derived here by guess and ver
 ``V = A(z) + B1 log k + B2 log h``, the first-order conditions ``1/c = β B_i / k_i'`` and the budget give
 ``k_i' = β B_i y / (1 + β (B1 + B2))``; matching the coefficients of ``log k_i``,
 ``B_i = A_i (1 + β (B1 + B2))``, so ``k_i' = A_i β y`` for each kind.  The calibration is invented.
+
+The machines may instead be continuous beside tools on their grid (worker.continuous.setters_euler): checked
+against an independent numpy computation on the workshop, and on an invented shop buying its tools out of a
+fixed allowance, whose exact tools lie on their grid (:func:`_allowance_document` derives it).
 """
 
 from __future__ import annotations
