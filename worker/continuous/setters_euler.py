@@ -48,13 +48,12 @@ infinite horizon only (a finite horizon gets a note: :func:`worker.continuous.mi
 
 from __future__ import annotations
 
-import math
 from typing import Any
 
 import numpy as np
 
 from worker.continuous.mixed_euler import Search, searcher
-from worker.euler import TEST_POINTS_PER_GRID_POINT
+from worker.euler import between_points
 from worker.euler_choices import choices_setup, grid_rules, pool_choices, several_next_of
 from worker.euler_points import PointsRule, combinations, environment, next_points
 from worker.euler_setup import EulerSetup
@@ -102,7 +101,7 @@ def continuous_part(data: ModelData, found: EulerSetup, discount: float, search:
     shocks = data.shock_table[None, :, :]
     beside, beside_next = _values_of(others, combos, search), _values_of(others, combos, search_next)
 
-    spacing = 1.0 / math.ceil(TEST_POINTS_PER_GRID_POINT * grid.size / (grid.size - 1))  # of a local grid step
+    spacing = (grid.size - 1) / between_points(grid).size  # the test points', as a share of a local grid step
 
     def smooth(points: np.ndarray) -> np.ndarray:
         """Whether tomorrow's best combination at ``points`` (rows) is the one a test points' spacing below and
