@@ -33,8 +33,9 @@ Reported: ``diagnostics.euler_errors`` pools every choice's errors (``max_log10`
 ``weighted_mean_log10`` weights every point measured by the stationary distribution read along the
 choice's state, renormalised over all of them); ``define`` and ``profile`` are those of the choice with the
 largest error, so the profile's largest entry is still ``max_log10``; ``by_choice`` holds each choice's
-own errors (:func:`choices_errors`).  Draws whose probabilities move with a choice or a chosen state are
-not measured here (a note says so).
+own errors (:func:`choices_errors`).  One of the choices may be continuous: its own equation is then read by
+the fitted problem's search (:mod:`worker.continuous.setters_euler`), the others' as here.  Draws whose
+probabilities move with a choice or a chosen state are not measured here (a note says so).
 """
 
 from __future__ import annotations
@@ -49,7 +50,8 @@ from worker.euler_setup import EulerSetup, choice_setup, needs_value
 from worker.euler_states import grid_rule, states_errors
 from worker.feasibility import ModelData
 
-__all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_periods", "several_next_of"]
+__all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_choices", "pool_periods",
+           "several_next_of"]
 
 _PER_CHOICE = ("state", "define", "max_log10", "mean_log10", "points", "constrained", "undefined", "profile",
                "weighted_mean_log10")
@@ -132,6 +134,12 @@ def choices_errors(
             companions=(_beside(found, rules), _beside(found, rules_next)),
         ))
         parts[-1]["state"] = found.state
+    return pool_choices(founds, parts, distribution is not None)
+
+
+def pool_choices(founds: list[EulerSetup], parts: list[dict[str, Any]], weighted: bool) -> dict[str, Any]:
+    """Each choice's errors (``parts``, in the order of ``founds``, each with its ``state``) and their pool (see
+    the module's docstring); ``weighted``: each part has its ``weighted_mean_log10`` and weight to pool."""
     measured = [part for part in parts if part["points"]]
     points = sum(part["points"] for part in parts)
     worst = max(measured, key=lambda part: part["max_log10"], default=parts[0])
@@ -144,7 +152,7 @@ def choices_errors(
         "define": worst["define"],
         "profile": worst["profile"],
     }
-    if distribution is not None:
+    if weighted:
         result["weighted_mean_log10"] = pooled_weighted_mean(parts)
     result["by_choice"] = {found.choice: {key: part[key] for key in _PER_CHOICE if key in part}
                            for found, part in zip(founds, parts)}

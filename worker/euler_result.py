@@ -2,7 +2,8 @@
 
 :func:`euler_diagnostics` picks the measurement for the solved problem — one state (:mod:`worker.euler`),
 several states (:mod:`worker.euler_states`), several ``next_of`` choices (:mod:`worker.euler_choices`), a
-continuous choice beside discrete ones (:mod:`worker.continuous.mixed_euler`) — with the policy between grid
+continuous choice beside discrete ones (:mod:`worker.continuous.mixed_euler`; beside discrete ones that set
+states too, :mod:`worker.continuous.setters_euler`) — with the policy between grid
 points read as the solve reads it, and appends a note to the diagnostics where the errors were not measured.
 (A finite horizon's are :mod:`worker.horizon_euler`'s.)
 """
@@ -53,6 +54,19 @@ def euler_diagnostics(
         add_note(founds or "Euler-equation errors were not measured: they need choices that set tomorrow's value "
                  "of a state (next_of) on grids of two points or more")
         return {}
+    if mixed:  # beside discrete choices that set states too: each choice's own equation
+        from worker.continuous.setters_euler import setters_report, setters_setup
+
+        founds = setters_setup(problem, data)
+        if isinstance(founds, str):
+            add_note(founds)
+            return {}
+        if founds is not None:
+            errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution)
+            add_note(note)
+            if isinstance(problem_diagnostics.get("timings"), dict):
+                problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
+            return {"euler_errors": errors}
     found = _setup(problem, data, mixed)
     values = None
     if not isinstance(found, str) and found is not None and needs_value(found):

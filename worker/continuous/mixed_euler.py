@@ -71,17 +71,17 @@ def mixed_euler_report(problem: Any, v: np.ndarray, discount: float, values: Val
 def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
     """The Euler setup of the model with the other choices fixed, or a note why there is none.
 
-    Another choice that sets tomorrow's value of a state is refused: its combination changes with its state
-    from one day to the next, so the test points where the same combination is chosen today and at every
-    state tomorrow (the rule here) would be few or none, and its state has no law to move by in the model
-    with it fixed.
+    Another choice that sets tomorrow's value of a state is not this module's: its combination changes with
+    its state from one day to the next, so the test points where the same combination is chosen today and at
+    every state tomorrow (the rule here) would be few or none, and its state has no law to move by in the
+    model with it fixed.  An infinite horizon measures that model by :mod:`worker.continuous.setters_euler`
+    (each choice its own equation); a finite horizon, which reaches here, gets a note.
     """
     setting = [name for name in problem.others if data.setter.count(data.choices.index(name))]
     if setting:
-        return (f"Euler-equation errors were not measured: beside another choice that sets tomorrow's value of a "
-                f"state (`{setting[0]}`), the continuous choice's equation is measured only at the chosen "
-                "combination of the others on both days, which such a choice changes from day to day; give the "
-                "other choice no next_of, or make both choices restricted to their grids (each then has its own "
+        return (f"Euler-equation errors were not measured: with a finite horizon, beside another choice that sets "
+                f"tomorrow's value of a state (`{setting[0]}`), the continuous choice's equation is not measured "
+                "(an infinite horizon's is); make both choices restricted to their grids (each then has its own "
                 "equation)")
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):

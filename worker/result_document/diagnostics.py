@@ -282,8 +282,9 @@ class EulerErrors(Reported):
     )
     by_period: EulerByPeriod = absent_unless(description="Finite horizon only.")
     by_choice: dict[str, EulerChoiceErrors] = absent_unless(
-        description="Several choices that each set tomorrow's value of a state (and no other choice): each one's own "
-        "errors, by the choice's name. The keys above then pool them (the largest, the mean over every point "
+        description="Several choices that each set tomorrow's value of a state (and no other choice; one of them may "
+        "be continuous, read by the fitted problem's own search): each one's own errors, by the choice's name. The "
+        "keys above then pool them (the largest, the mean over every point "
         "measured, the sums); define and profile are those of the choice with the largest error (finite horizon: "
         "in the first period measured; each choice's own over all periods here)."
     )
