@@ -50,10 +50,15 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
 
     several_choices = not mixed and several_next_of(data)  # several next_of choices, each with its own equation
     founds = choices_setup(data) if several_choices else None
+    setters = None  # beside discrete choices that set states too: each choice's own equation
     if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
         from worker.continuous.mixed_euler import mixed_errors, mixed_setup, searcher
+        from worker.continuous.setters_euler import setters_errors, setters_setup
 
-        found = mixed_setup(problem, data)
+        setters = setters_setup(problem, data)
+        if isinstance(setters, str):
+            return {}, setters
+        found = setters[0] if setters is not None else mixed_setup(problem, data)
     else:
         found = founds[0] if isinstance(founds, list) else founds if several_choices else setup(data)
     if not isinstance(found, EulerSetup):
@@ -109,12 +114,14 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                            searcher(problem, after(t), enter=lambda t=t: plan.enter(t)))
         return searches[t]
 
-    def choices_at(t: int) -> tuple[Any, Any, Any]:
-        """Period ``t``'s params, and its grid rules and where they are at a grid end (several choices)."""
-        assert isinstance(founds, list)
+    def choices_at(t: int, setups: Any = None) -> tuple[Any, Any, Any]:
+        """Period ``t``'s params, and every choice's grid rules and where they are at a grid end (several choices
+        that set states: ``setups``, by default the model's own next_of choices)."""
+        setups = founds if setups is None else setups
+        assert isinstance(setups, list)
         chosen = problem.choice_values(outcome.policies[t - first])
         return (dataclasses.replace(data, param_values=period_params(doc.model, t)),
-                *grid_rules(data, founds, chosen))
+                *grid_rules(data, setups, chosen))
 
     def measured(t: int) -> dict[str, Any]:
         if several_choices:
@@ -123,6 +130,15 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             data_next, rules_next, _ = choices_at(t + 1)
             return choices_errors(today, founds, float(plan.discounts[t]), rules, None, at_end,
                                   tomorrow=(data_next, rules_next))
+        if setters is not None:
+            today, search = model_and_search(t)
+            data_next, search_next = model_and_search(t + 1)
+            searches.pop(t - 1, None)
+            _, rules, at_end = choices_at(t, setters)
+            _, rules_next, _ = choices_at(t + 1, setters)
+            combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
+            return setters_errors(today, setters, float(plan.discounts[t]), search, combined, rules, None, at_end,
+                                  tomorrow=(data_next, search_next, rules_next))
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)
@@ -170,7 +186,12 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             "value, with no Euler equation)"
             + (f"; the continuous choice at the chosen combination of the others: {pooled['constrained']:,} test "
                "points skipped (where a limit may bind, or the best combination differs today or at a state "
-               "tomorrow, where the value function has a kink)" if mixed else
+               "tomorrow, where the value function has a kink)" if mixed and setters is None else
+               f"; the continuous choice `{problem.choice}` read by each period's own search: "
+               f"{result.get('by_choice', {}).get(problem.choice, {}).get('constrained', 0):,} test points "
+               "skipped in all periods (where a limit may bind, or tomorrow's best "
+               "combination of the others switches next to tomorrow's state, where the value function has a kink); "
+               "the other choices' own errors read every policy linearly between grid points" if mixed else
                "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
                "; the policy between grid points is each period's own search" if continuous else ""))

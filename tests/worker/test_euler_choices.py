@@ -259,8 +259,8 @@ def _exact_maximum(value: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray, po
     return best, chosen
 
 
-def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray
-                    ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray,
+                    v_after: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Independent, plain numpy: Judd's (1992) errors of the machines' equation at the test points (between grid
     points of k, at every grid point of h, C order), every shock point: ``(points, error, constrained,
     measured)``.
@@ -269,8 +269,10 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
     checked against :func:`_exact_maximum` by the test); the equation is ``1/c = β Σ_z' P[z, z'] ∂r/∂k(s')`` with
     ``∂r/∂k = a1 y'/(k' c'')`` (log utility, ``c = y − k_next − h_next``), ``c̃ = 1/(β E[·])``.  Skipped: k'
     within one local grid step of an end of k's grid or c ≤ 0 a step away (common practice, as fixq's rule), and
-    tomorrow's best h'' at k' not the one a test points' spacing below or above (the value's kink).
+    tomorrow's best h'' at k' not the one a test points' spacing below or above (the value's kink).  ``v`` is the
+    value today's choice is made against; ``v_after`` tomorrow's (a finite horizon's next period; by default ``v``).
     """
+    v_after = v if v_after is None else v_after
     k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
     points = np.column_stack([k.ravel(), h.ravel()])
     _, k_next, index = _searched(problem, v, points)
@@ -278,7 +280,7 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
     y = Z_VALUES[None, :] * points[:, :1] ** A1 * points[:, 1:] ** A2
     c = y - k_next - h_next
     after = np.column_stack([k_next.ravel(), h_next.ravel()])  # tomorrow's states, rows (test point, z)
-    _, k_after, index_after = _searched(problem, v, after)
+    _, k_after, index_after = _searched(problem, v_after, after)
     y_after = Z_VALUES[None, :] * after[:, :1] ** A1 * after[:, 1:] ** A2
     c_after = y_after - k_after - h_grid[index_after]
     slope = (A1 * y_after / (after[:, :1] * c_after)).reshape(*c.shape, Z_VALUES.size)
@@ -291,7 +293,7 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
         10 * k_grid.size / (k_grid.size - 1))  # the test points' spacing there
     for moved in (after[:, 0] - apart, after[:, 0] + apart):
         beside = np.column_stack([np.clip(moved, k_grid[0], k_grid[-1]), after[:, 1]])
-        switched = (_searched(problem, v, beside)[2] != index_after).any(axis=1)
+        switched = (_searched(problem, v_after, beside)[2] != index_after).any(axis=1)
         constrained |= switched.reshape(c.shape)
     return points, error, constrained, ~constrained & np.isfinite(error)
 
@@ -421,13 +423,41 @@ def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:
     assert worst[0] > worst[1] + 0.25 > worst[2] + 0.5 and mean[0] > mean[1] + 0.25 > mean[2] + 0.5
 
 
-def test_a_finite_horizon_with_a_continuous_choice_beside_a_discrete_next_of_choice_gets_a_note() -> None:
-    # Not wired into worker.horizon_euler yet: a note says so instead of errors.
+def test_a_finite_horizon_with_a_continuous_choice_beside_a_discrete_next_of_choice() -> None:
+    # Period t's machines: today's choice against V_{t+1}, tomorrow's against V_{t+2} (the terminal value for the
+    # last period measured), each by the fitted problem's own search; the independent numpy computation above.
     states = {"k": {"min": 0.06, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
     document = _document(states=states, hints={"concave": True}, choices=CONTINUOUS_MACHINES)
-    document["model"]["horizon"] = {"periods": 3, "terminal_value": "0"}
+    periods = 3
+    document["model"]["horizon"] = {"periods": periods, "terminal_value": "0.5 * log(k) + 0.3 * log(h)"}
     document["report"] = {"euler_errors": True}
-    diagnostics = solve(document)["diagnostics"]
-    assert "euler_errors" not in diagnostics
-    assert any("with a finite horizon, beside another choice that sets tomorrow's value of a state (`h_next`)" in note
-               for note in diagnostics["notes"])
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1]
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    values = np.asarray(result["value"], dtype=float)  # (period, k, h, z)
+    terminal = np.broadcast_to((0.5 * np.log(k_grid)[:, None] + 0.3 * np.log(h_grid)[None, :])[:, :, None],
+                               values.shape[1:])
+    after = [values[t].reshape(-1) for t in range(1, periods)] + [np.ascontiguousarray(terminal).reshape(-1)]
+    problem = compile_document(document)[1]
+    measured_all, error_all, skipped = [], [], 0
+    for t in errors["by_period"]["period"]:
+        _, error, constrained, measured = _machine_errors(problem, after[t], k_grid, h_grid, after[t + 1])
+        measured_all.append(measured.sum())
+        error_all.append(error[measured])
+        skipped += int(constrained.sum())
+    own = errors["by_choice"]["k_next"]
+    pooled = np.concatenate(error_all)
+    assert own["points"] == sum(measured_all) == pooled.size > 0 and own["constrained"] == skipped
+    assert own["max_log10"] == pytest.approx(pooled.max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(pooled.mean(), abs=1e-9)
+    # The tools' own equation, period t's grid policies today and period t + 1's tomorrow (numpy, as above).
+    policy_k = np.asarray(result["policy"]["k_next"], dtype=float)
+    policy_h = np.asarray(result["policy"]["h_next"], dtype=float)
+    tools = np.concatenate([_numpy_errors(policy_k[t], policy_h[t], k_grid, h_grid, 1,
+                                          (policy_k[t + 1], policy_h[t + 1]))[0].ravel()
+                            for t in errors["by_period"]["period"]])
+    assert errors["by_choice"]["h_next"]["max_log10"] == pytest.approx(tools.max(), abs=1e-9)
+    assert errors["by_choice"]["h_next"]["mean_log10"] == pytest.approx(tools.mean(), abs=1e-9)
+    assert any(f"{own['constrained']:,} test points skipped in all periods" in note
+               for note in result["diagnostics"]["notes"])

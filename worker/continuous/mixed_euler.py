@@ -74,15 +74,12 @@ def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
     Another choice that sets tomorrow's value of a state is not this module's: its combination changes with
     its state from one day to the next, so the test points where the same combination is chosen today and at
     every state tomorrow (the rule here) would be few or none, and its state has no law to move by in the
-    model with it fixed.  An infinite horizon measures that model by :mod:`worker.continuous.setters_euler`
-    (each choice its own equation); a finite horizon, which reaches here, gets a note.
+    model with it fixed: :mod:`worker.continuous.setters_euler` measures that model (each choice its own
+    equation), and its callers ask it first.
     """
     setting = [name for name in problem.others if data.setter.count(data.choices.index(name))]
     if setting:
-        return (f"Euler-equation errors were not measured: with a finite horizon, beside another choice that sets "
-                f"tomorrow's value of a state (`{setting[0]}`), the continuous choice's equation is not measured "
-                "(an infinite horizon's is); make both choices restricted to their grids (each then has its own "
-                "equation)")
+        raise ValueError(f"`{setting[0]}` sets a state: worker.continuous.setters_euler measures this model")
     found = setup(fixed_model(data, problem.others, problem.combos[0]))
     if not isinstance(found, EulerSetup):
         return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "

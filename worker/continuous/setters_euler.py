@@ -42,8 +42,8 @@ to its grid: along its own state between grid points, every choice's policy read
 solved grid policy (:func:`worker.euler_choices.grid_rules`), the continuous one's too — the search cannot
 be asked for an ``h'`` between grid points, and the error so measured shows how coarse the grid of ``h`` is.
 
-Reported: the pool of :func:`worker.euler_choices.pool_choices` (``by_choice`` each choice's own).  An
-infinite horizon only (a finite horizon gets a note: :func:`worker.continuous.mixed_euler.mixed_setup`).
+Reported: the pool of :func:`worker.euler_choices.pool_choices` (``by_choice`` each choice's own).  A finite
+horizon measures each period against the next (:func:`worker.horizon_euler.euler_by_period` passes ``tomorrow``).
 """
 
 from __future__ import annotations
