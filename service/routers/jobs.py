@@ -424,6 +424,11 @@ async def _live_log(
     while not STOPPING.is_set():
         start = max(0, cursor - KEEP_LATEST - 1)
         rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)
+        if start and not rows and start >= length > 0:
+            # Past the log's end: a Last-Event-ID (an iteration) beyond a bounded log's length, say after an
+            # API restart while a long solve ended. Its last entries are read again, so the tail is sent.
+            start = max(0, length - KEEP_LATEST - 1)
+            rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)
         if start and rows and _iteration_of_row(rows[0], sent) > sent:
             start = 0
             rows, length, state = await anyio.to_thread.run_sync(_poll_log, store, job_id, start)

@@ -395,3 +395,21 @@ def test_a_live_log_misses_nothing_while_the_stored_log_is_thinned(app_settings:
     assert ids == sorted(set(ids))
     assert set(ids) >= {e["iteration"] for e in store.get_log(job_id, limit=10_000)}
     assert ids[-1] == last
+
+
+def test_a_stream_resumed_past_the_end_of_a_thinned_log_still_sends_its_tail(client: httpx.Client,
+                                                                             store: JobStore) -> None:
+    # A client that followed a long solve reconnects (the API restarted) with the last iteration it saw as
+    # Last-Event-ID; the job ended meanwhile, and its bounded log holds far fewer entries than that iteration.
+    job_id = new_job(store, owner="anonymous")
+    store.claim(job_id, "t", worker="w")
+    last = KEEP_FIRST + 4 * KEEP_SAMPLED + 333
+    store.write_log(job_id, "t", [{"iteration": i, "distance": 1.0} for i in range(1, last + 1)], progress=None)
+    store.finish(job_id, "t", "canceled")
+    kept = [e["iteration"] for e in store.get_log(job_id, limit=10_000)]
+    seen = kept[-3] - 1  # the client saw up to here: beyond the stored log's length, before its last entries
+    assert seen > store.log_length(job_id)
+    stream = client.get(f"/v1/jobs/{job_id}/log", headers={"Accept": "text/event-stream", "Last-Event-ID": str(seen)})
+    ids = [int(line[4:]) for line in stream.text.splitlines() if line.startswith("id: ")]
+    assert ids == [i for i in kept if i > seen] and ids[-1] == last
+    assert "event: end" in stream.text
