@@ -232,3 +232,42 @@ def test_beside_a_discrete_choice_the_cubic_errors_fall_as_the_grid_is_refined()
         assert errors["by_period"]["period"] == [0, 1, 2] and errors["points"] > 0
         by_period.append(errors["max_log10"])
     assert by_period[0] - by_period[1] >= 0.4
+
+
+def test_one_state_with_odds_moving_with_the_choice_under_the_cubic() -> None:
+    # tests/worker/test_euler_draws.py's one-state luck (a bonus of 0.1 drawn after the choice, its chance
+    # 0.2 + 0.6 k' rising with tomorrow's capital) with a continuous choice and monotone_cubic: the draw moves no
+    # state, so both draws' EV are read at one point and W_high − W_low = 0.1, and the first-order condition reads
+    # 1/c̃ = β Σ_e' P[e, e'] α e' k'^(α − 1) / c'(k', e') + 0.06, the choices by the fitted problem's own search.
+    model = {
+        "kind": "grid", "params": {"alpha": ALPHA},
+        "states": {"k": {"min": 0.05, "max": 0.45, "points": 30}},
+        "shocks": {"e": {"markov": {"values": E_VALUES.tolist(), "matrix": E_CHAIN.tolist()}, "transform": "none"},
+                   "luck": {"timing": "after_choice", "iid": {"values": [0.0, 1.0],
+                                                              "probs": ["0.8 - 0.6 * k_next", "0.2 + 0.6 * k_next"]}}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "define": {"c": "e * k**alpha - k_next"},
+        "reward": "log(c) + 0.1 * luck",
+        "feasible": ["c > 0"],
+        "interpolation": "monotone_cubic",
+        "hints": {"concave": True},
+    }
+    result, problem = _solved({"version": 1, "discount": BETA, "model": model,
+                               "solver": {"method": "howard", "tolerance": 1e-10}, "report": {"euler_errors": True}})
+    errors = result["diagnostics"]["euler_errors"]
+    grid = problem.model_data.state_grids[0]
+    rule = problem.policy_rule(np.asarray(result["value"], dtype=float).reshape(-1),
+                               np.asarray(result["policy"]["k_next"], dtype=float).reshape(-1))
+    k = euler.between_points(grid)
+    x = rule(k)
+    reference = np.empty_like(x)
+    for j, e in enumerate(E_VALUES):
+        x_next = rule(x[:, j])
+        ahead = sum(E_CHAIN[j, jj] * ALPHA * e_next * x[:, j] ** (ALPHA - 1) / (e_next * x[:, j] ** ALPHA
+                                                                               - x_next[:, jj])
+                    for jj, e_next in enumerate(E_VALUES))
+        c = e * k**ALPHA - x[:, j]
+        reference[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * ahead + 0.06) / c), 2.0**-56))
+    assert errors["constrained"] == 0 and errors["points"] == reference.size
+    assert errors["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+    assert errors["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
