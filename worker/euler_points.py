@@ -37,14 +37,16 @@ _BISECTION_STEPS = 200
 PointsRule = Callable[[np.ndarray], np.ndarray]
 """``policy(points) -> x``: at points (m, states) of the state space, the choice at every shock point,
 (m, shock points)."""
-ValueReader = Callable[[np.ndarray], np.ndarray]
-"""``read(points) -> V``: the value at points (rows, states), at every shock point, (rows, shock points)."""
+ValueReader = Callable[[np.ndarray, np.ndarray], np.ndarray]
+"""``read(points, rows) -> EV``: at points (m, states) and today's shock points ``rows`` (m,), the continuation
+``EV(·, z) = Σ_z' P[z, z'] V(·, z')`` as the solve reads it, (m,) (:func:`worker.euler_states.solve_value`)."""
 Companions = Callable[[np.ndarray], dict[str, np.ndarray]]
 """``beside(points) -> {choice: x_j}``: at points (m, states), the values of the other ``next_of`` choices (the
 :attr:`~worker.euler_setup.EulerSetup.companions`) at every shock point, each (m, shock points)."""
 ValueParts = tuple[ValueReader, ValueReader, float]
-"""What draws moving with ``x`` or ``k`` need: the value tomorrow read today (``V_{t+1}``), the value the
-day after read tomorrow (``V_{t+2}``; the same in an infinite horizon) and tomorrow's discount."""
+"""What draws moving with ``x`` or ``k`` need: the continuation of the value tomorrow read today (``V_{t+1}``'s),
+of the value the day after read tomorrow (``V_{t+2}``'s; the same in an infinite horizon) and tomorrow's
+discount."""
 
 
 def errors_at(
@@ -65,7 +67,8 @@ def errors_at(
     in ``k``: ``β Σ_d p_d Σ_z' P[z, z'] Σ_d' p_d'(s') ∂r/∂k(s', x(s'), d')``, ``s' = (x, g(y, z, d), z')``.
     Where the probabilities move with ``x`` the first-order condition adds ``Σ_d ∂p_d/∂x · W_d`` and where
     they move with ``k`` the envelope condition tomorrow adds ``Σ_d' ∂p_d'/∂k · W_d'``, with
-    ``W_d = r_d + β E V(next_d)`` read by ``values`` (:data:`ValueParts`; needed then).
+    ``W_d = r_d + β EV(next_d)`` read by ``values`` (:data:`ValueParts`, the continuation as the solve reads
+    it; needed then).
     """
     n_z = data.n_shocks
     columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states)}
@@ -129,10 +132,11 @@ def next_points(data: ModelData, found: EulerSetup, env: dict[str, Any], x: np.n
 
 def _worth(data: ModelData, env: dict[str, Any], tomorrows: np.ndarray, read: ValueReader, discount: float,
            shape: tuple[int, ...]) -> np.ndarray:
-    """``W = r + β Σ_z' P[z, z'] V(next, z')`` of one draw at its ``env`` (rows, shock points)."""
+    """``W = r + β EV(next, z)``, ``EV(·, z) = Σ_z' P[z, z'] V(·, z')``, of one draw at its ``env`` (rows, shock
+    points); ``tomorrows`` its next states (rows × shock points in C order, states), each read at its own ``z``."""
     reward = np.broadcast_to(evaluate_tree(data.source.reward.tree, env), shape)
-    after = read(tomorrows).reshape(shape[0], shape[1], -1)
-    return reward + discount * np.einsum("azw,zw->az", after, data.transition)
+    rows = np.tile(np.arange(shape[1], dtype=np.int64), shape[0])
+    return reward + discount * read(tomorrows, rows).reshape(shape)
 
 
 def _marginal_value(data: ModelData, found: EulerSetup, policy: PointsRule, points: np.ndarray,

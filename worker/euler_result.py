@@ -4,7 +4,9 @@
 several states (:mod:`worker.euler_states`), several ``next_of`` choices (:mod:`worker.euler_choices`), a
 continuous choice beside discrete ones (:mod:`worker.continuous.mixed_euler`; beside discrete ones that set
 states too, :mod:`worker.continuous.setters_euler`) — with the policy between grid
-points read as the solve reads it, and appends a note to the diagnostics where the errors were not measured.
+points read as the solve reads it (and the value, where the probabilities of draws after the choice or the laws
+of motion move with the choice or the chosen state: :func:`worker.euler_states.solve_value`,
+:func:`worker.euler_laws.solve_slope`), and appends a note to the diagnostics where the errors were not measured.
 (A finite horizon's are :mod:`worker.horizon_euler`'s.)
 """
 
@@ -15,7 +17,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["euler_diagnostics", "value_refusal"]
+__all__ = ["euler_diagnostics"]
 
 
 def euler_diagnostics(
@@ -69,21 +71,13 @@ def euler_diagnostics(
             return {"euler_errors": errors}
     found = _setup(problem, data, mixed)
     values = None
-    if not isinstance(found, str) and found is not None and needs_value(found):
-        refusal = value_refusal(doc, problem)
-        if refusal:
-            add_note(refusal)
-            return {}
-        from worker.euler_states import value_reader
+    if not isinstance(found, str) and found is not None and needs_value(found):  # draws moving with k or x
+        from worker.euler_states import solve_value
 
-        read = value_reader(data, outcome.value)
+        read = solve_value(problem, data, outcome.value)
         values = (read, read, float(doc.discount))
     slopes = None
     if not isinstance(found, str) and found is not None and found.laws:  # laws moving with k or x: value slopes
-        refusal = value_refusal(doc, problem, slopes=True)
-        if refusal:
-            add_note(refusal)
-            return {}
         from worker.euler_laws import solve_slope
 
         slope = solve_slope(problem, data, outcome.value)
@@ -123,23 +117,3 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
     from worker.euler_setup import setup
 
     return setup(data)
-
-
-def value_refusal(doc: Any, problem: Any, *, slopes: bool = False) -> str:
-    """Why the value cannot be read as the solve reads it, for draws whose probabilities move with the choice or
-    the chosen state — or, with ``slopes``, for laws of motion that move with them ("" when it can: a choice
-    restricted to the grid, or ``linear`` interpolation; for the slopes, ``monotone_cubic`` too:
-    :func:`worker.euler_laws.solve_slope`)."""
-    interpolation = getattr(doc.model, "interpolation", "linear")
-    if getattr(problem, "choose_at", None) is None or interpolation == "linear":
-        return ""
-    if slopes:
-        if interpolation == "monotone_cubic":
-            return ""
-        return ("Euler-equation errors were not measured: a law of motion moves with the chosen state or the "
-                "choice, so the envelope condition carries the value's slope in that law's state, and with "
-                f"{interpolation} interpolation that slope is not read here as the solve reads the value")
-    return ("Euler-equation errors were not measured: the probabilities of a draw after the choice move with the "
-            "choice or the chosen state, so the first-order condition carries the value of each draw, and with "
-            f"{doc.model.interpolation} interpolation that value is not read here as the solve reads it (it is "
-            "with linear)")

@@ -45,7 +45,8 @@ from worker.euler_points import Companions, PointsRule, ValueParts, ValueReader,
 from worker.euler_setup import EulerSetup
 from worker.feasibility import ModelData
 
-__all__ = ["grid_rule", "search_rule", "states_errors", "states_report", "test_points", "value_reader"]
+__all__ = ["grid_rule", "search_rule", "solve_value", "states_errors", "states_report", "test_points",
+           "value_reader"]
 
 
 def test_points(data: ModelData, found: EulerSetup) -> tuple[np.ndarray, tuple[int, ...]]:
@@ -191,6 +192,27 @@ def states_report(data: ModelData, found: EulerSetup, discount: float, policy_va
 
 
 def value_reader(data: ModelData, value: np.ndarray) -> ValueReader:
-    """The value ``value`` (flat points) read at any points multilinearly over the product grid, held at the
-    grid's ends: as a solve with ``linear`` interpolation (or a choice restricted to the grid) reads it."""
-    return grid_rule(data, np.asarray(value, dtype=np.float64).reshape(data.n_grid, data.n_shocks))
+    """The continuation of ``value`` (flat points) at any points (:data:`~worker.euler_points.ValueReader`), the
+    value read multilinearly over the product grid, held at the grid's ends, then weighted by the row of today's
+    shock point: as a solve with ``linear`` interpolation (or a choice restricted to the grid) reads it (the
+    reading is linear in the value, so this is the continuation read multilinearly too)."""
+    read = grid_rule(data, np.asarray(value, dtype=np.float64).reshape(data.n_grid, data.n_shocks))
+    transition = np.asarray(data.transition, dtype=np.float64)
+
+    def continuation(points: np.ndarray, rows: np.ndarray) -> np.ndarray:
+        return np.einsum("aw,aw->a", read(points), transition[np.asarray(rows, dtype=np.int64)])
+
+    return continuation
+
+
+def solve_value(problem: Any, data: ModelData, value: np.ndarray) -> ValueReader:
+    """The continuation of ``value`` (flat points) as ``problem``'s solve reads it: the monotone cubic's tensor
+    product of ``EV`` where it interpolates so (``problem.cubic``;
+    :func:`worker.continuous.cubic_slope.cubic_continuation` — the cubic of the expectation, not the expectation
+    of cubic readings of ``V``, the reading not being linear), else multilinearly (:func:`value_reader`)."""
+    if not getattr(problem, "cubic", False):
+        return value_reader(data, value)
+    from worker.continuous.cubic_slope import cubic_continuation
+
+    read = cubic_continuation(data, value)
+    return lambda points, rows: read(points, rows, 0)[0]

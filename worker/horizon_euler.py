@@ -36,9 +36,8 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     the first period's) and ``by_period``: ``period``, ``max_log10`` and ``mean_log10`` lists.
     """
     from worker.euler import EulerSetup, euler_errors, grid_policy, setup
-    from worker.euler_result import value_refusal
     from worker.euler_setup import needs_value
-    from worker.euler_states import value_reader
+    from worker.euler_states import solve_value
     from worker.feasibility import period_params
 
     data = getattr(problem, "model_data", None)
@@ -68,20 +67,18 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     if periods - first < 2:
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
     moving = needs_value(found)
-    if moving and value_refusal(doc, problem):
-        return {}, value_refusal(doc, problem)
-    if found.laws and value_refusal(doc, problem, slopes=True):  # laws moving with k or x: the value's slopes
-        return {}, value_refusal(doc, problem, slopes=True)
 
     def after(t: int) -> np.ndarray:
         """``V_{t+1}``, the value period ``t`` was chosen against."""
         return np.asarray(plan.terminal if t == periods - 1 else outcome.values[t + 1 - first], dtype=np.float64)
 
     def values_at(t: int) -> Any:
-        """Period ``t``'s value parts (:data:`worker.euler_points.ValueParts`) when the draws need them."""
+        """Period ``t``'s value parts (:data:`worker.euler_points.ValueParts`, the continuations as the solve reads
+        them) when the draws need them."""
         if not moving:
             return None
-        return (value_reader(data, after(t)), value_reader(data, after(t + 1)), float(plan.discounts[t + 1]))
+        return (solve_value(problem, data, after(t)), solve_value(problem, data, after(t + 1)),
+                float(plan.discounts[t + 1]))
     choice = data.choices[0]
     grid = data.state_grids[0]
     several = len(data.states) > 1

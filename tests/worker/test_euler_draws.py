@@ -268,7 +268,7 @@ def test_odds_moving_with_the_choice_or_the_state_against_an_independent_computa
 
 def test_odds_moving_with_the_choice_through_a_horizon_and_with_a_continuous_choice() -> None:
     # linear interpolation reads the value as the solve does: the errors fall with the grid step (first order,
-    # as without draws); monotone_cubic is not read here, and a note says so.
+    # as without draws); monotone_cubic: tests/worker/test_euler_draws_cubic.py.
     worst = []
     for k_points in (25, 50, 100):
         document = _moving_document(0.6, 0.3, k_points)
@@ -276,10 +276,6 @@ def test_odds_moving_with_the_choice_through_a_horizon_and_with_a_continuous_cho
         result = solve(document)
         worst.append(result["diagnostics"]["euler_errors"]["max_log10"])
     assert worst[0] - worst[1] >= 0.2 and worst[1] - worst[2] >= 0.2
-    cubic = _moving_document(0.6, 0.3, continuous=True)
-    result = solve(cubic)
-    assert "euler_errors" not in result["diagnostics"]
-    assert any("monotone_cubic interpolation that value is not read" in note for note in result["diagnostics"]["notes"])
     document = _moving_document(0.6, 0.3, 30)
     document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
     errors = solve(document)["diagnostics"]["euler_errors"]
