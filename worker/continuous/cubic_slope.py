@@ -28,6 +28,7 @@ from worker.continuous.interp_kernels import (
     _inner_slope,
     four_point,
     hermite,
+    line_start,
     monotone_slopes,
     tensor_cubic,
     tensor_two,
@@ -142,16 +143,7 @@ def cubic_reads(EVt: np.ndarray, D: np.ndarray, sgrid: np.ndarray, meta: np.ndar
             continue
         dt_last = 1.0 / h_last if axis == last else 0.0
         for m in range(count_all):  # the lines along the last state, as tensor_cubic walks them
-            base = k_last
-            rest = m
-            for a in range(last - 1, -1, -1):
-                j = lo[a] - 1 + rest % 4
-                rest //= 4
-                if j < 0:
-                    j = 0
-                elif j > meta[d + a] - 1:
-                    j = meta[d + a] - 1
-                base += meta[2 * d + a] * j
+            base = line_start(meta, lo, m)
             y0, y1, d0, d1 = EVt[iz, base], EVt[iz, base + 1], D[iz, base], D[iz, base + 1]
             values[m] = hermite(w[last], h_last, y0, y1, d0, d1)
             slopes[m] = _hermite_slope(w[last], dt_last, h_last, y0, y1, d0, d1, 0.0, 0.0, 0.0, 0.0)

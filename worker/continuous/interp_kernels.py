@@ -106,6 +106,25 @@ def tensor_two(EVt: np.ndarray, D: np.ndarray, iz: int, sgrid: np.ndarray, meta:
     return four_point(sgrid, meta[0], size0, k0, w[0], ym, y0, y1, y2)
 
 
+@njit(cache=True, nogil=True, error_model="numpy", inline="always")
+def line_start(meta: np.ndarray, lo: np.ndarray, m: int) -> int:
+    """The flat index of the ``m``-th line along the last state that :func:`tensor_cubic` reads at the point
+    located by ``lo`` (d,): through nodes ``lo − 1 … lo + 2`` of the other states, the first state's digit the
+    slowest, moved into the grid at its ends; its node ``lo[last]`` along the last state."""
+    d = lo.shape[0]
+    base = lo[d - 1]
+    rest = m
+    for a in range(d - 2, -1, -1):
+        j = lo[a] - 1 + rest % 4
+        rest //= 4
+        if j < 0:
+            j = 0
+        elif j > meta[d + a] - 1:
+            j = meta[d + a] - 1
+        base += meta[2 * d + a] * j
+    return base
+
+
 @njit(cache=True, nogil=True, error_model="numpy")
 def tensor_cubic(EVt: np.ndarray, D: np.ndarray, iz: int, sgrid: np.ndarray, meta: np.ndarray, lo: np.ndarray,
                  w: np.ndarray, scratch: np.ndarray) -> float:
@@ -126,16 +145,7 @@ def tensor_cubic(EVt: np.ndarray, D: np.ndarray, iz: int, sgrid: np.ndarray, met
     for _a in range(last):
         count *= 4
     for m in range(count):
-        base = k_last
-        rest = m
-        for a in range(last - 1, -1, -1):
-            j = lo[a] - 1 + rest % 4
-            rest //= 4
-            if j < 0:
-                j = 0
-            elif j > meta[d + a] - 1:
-                j = meta[d + a] - 1
-            base += meta[2 * d + a] * j
+        base = line_start(meta, lo, m)
         scratch[m] = hermite(w[last], h_last, EVt[iz, base], EVt[iz, base + 1], D[iz, base], D[iz, base + 1])
     for a in range(last - 1, -1, -1):
         count //= 4
