@@ -10,94 +10,25 @@ bound of a step is the MacQueen–Porteus bracket described in
 from __future__ import annotations
 
 import time
-from dataclasses import dataclass
 from typing import Any, Callable
 
 import numpy as np
 
 from worker.convergence_log import ConvergenceLog
-from worker.defaults import DEFAULT_CHECKPOINT_S
 from worker.errors import Canceled, InvalidDocument
 from worker.problem import CompiledProblem
-from worker.solvers.outcome import EPS, ROUNDING_ULPS, Checkpoint, Entry, SolveOutcome, observed_rate
+from worker.solvers.outcome import EPS, ROUNDING_ULPS, Entry, SolveOutcome, observed_rate
+from worker.solvers.step import Options, Step, options
 
 __all__ = ["STOP_POLL_S", "Accept", "Evaluate", "Options", "Run", "Step", "iterate", "meets", "options"]
 
+LOCAL_MIN_ITERATIONS = 10
+"""The local phase after a failed verification may take as many iterations as the solve had taken when it
+began, and at least this many (count; common practice: a phase started near the fixed point should converge in
+fewer iterations than the whole solve before it); then it is verified, and the solve goes on without hints."""
 STOP_POLL_S = 0.005
 """Seconds between two polls of ``should_stop`` during evaluation steps
 (it is always polled before an iteration)."""
-
-
-@dataclass
-class Step:
-    """One Bellman step ``v → Tv`` and its bracket."""
-
-    tv: np.ndarray
-    policy: np.ndarray
-    distance: float
-    lower: float
-    upper: float
-    rounding: float
-    changes: int
-    restricted: bool
-    origin: np.ndarray | None = None
-    """The ``v`` the step was taken from (kept for problems with taste shocks, whose evaluation uses the
-    choice probabilities of this step)."""
-
-    @property
-    def error_bound(self) -> float:
-        return 0.5 * (self.upper - self.lower) + self.rounding
-
-    @property
-    def improves(self) -> bool:
-        """True when ``Tv`` beats ``v`` somewhere by more than rounding."""
-        return self.upper > self.rounding
-
-
-@dataclass
-class Options:
-    """The settings of one solve, as the methods receive them."""
-
-    tolerance: float
-    max_iterations: int
-    time_limit_s: float | None
-    checkpoint_s: float
-    evaluation_steps: int
-    on_progress: Callable[[Entry], None] | None
-    checkpoint: Checkpoint | None
-    should_stop: Callable[[], bool] | None
-    fingerprint: str
-    trust_hints: bool = False
-    """Skip the unrestricted step that verifies the hints at the end (a search's guiding trials, whose
-    answers are never returned: the trial that is returned is solved again with it)."""
-
-
-def options(
-    tolerance: float,
-    max_iterations: int,
-    time_limit_s: float | None,
-    checkpoint_s: float | None,
-    evaluation_steps: int,
-    on_progress: Callable[[Entry], None] | None,
-    checkpoint: Checkpoint | None,
-    should_stop: Callable[[], bool] | None,
-    fingerprint: str,
-    *,
-    trust_hints: bool = False,
-) -> Options:
-    """The :class:`Options` of a method's keyword arguments, normalised."""
-    return Options(
-        tolerance=float(tolerance),
-        max_iterations=max(1, int(max_iterations)),
-        time_limit_s=None if time_limit_s is None else float(time_limit_s),
-        checkpoint_s=DEFAULT_CHECKPOINT_S if checkpoint_s is None else float(checkpoint_s),
-        evaluation_steps=max(0, int(evaluation_steps)),
-        on_progress=on_progress,
-        checkpoint=checkpoint,
-        should_stop=should_stop,
-        fingerprint=fingerprint,
-        trust_hints=bool(trust_hints),
-    )
 
 
 class Run:
@@ -115,7 +46,12 @@ class Run:
         self.log: list[Entry] = ConvergenceLog()
         self.policy: np.ndarray | None = None
         self.restricted = bool(problem.hints_active)
+        self.local_step = getattr(problem, "local_step", None)
+        """The problem's local restricted step, or None: ``local_step(v, policy_guess=) -> (Tv, policy)``."""
+        self.local: dict[str, int] | None = None
+        """In the local phase: ``{"from": the iteration it began after, "broken": states the first check found}``."""
         self.verification: dict[str, Any] | None = None
+        self.broken = 0  # states the last verification found better outside the restricted search
         self.warnings: list[str] = []
         self.pending_steps: int | None = None
         self.taste = getattr(problem, "taste_scale", None) is not None
@@ -146,6 +82,10 @@ class Run:
         policy = state.get("policy")
         self.policy = None if policy is None else _policy_array(policy)
         self.restricted = bool(state.get("restricted", self.restricted))
+        local = state.get("local")
+        self.local = None if local is None else {"from": int(local["from"]), "broken": int(local["broken"])}
+        if self.local is not None and self.local_step is None:
+            self.local, self.restricted = None, False
         verification = state.get("verification")
         self.verification = None if verification is None else dict(verification)
         self.warnings = list(state.get("warnings", []))
@@ -215,6 +155,7 @@ class Run:
                     else {}
                 ),
                 "restricted": self.restricted,
+                "local": None if self.local is None else dict(self.local),
                 "verification": None if self.verification is None else dict(self.verification),
                 "warnings": list(self.warnings),
                 "seconds": seconds,
@@ -222,9 +163,13 @@ class Run:
         )
         self.last_save = seconds
 
-    def bellman(self, restricted: bool) -> Step:
-        """A Bellman step at the current iterate, measured against the last policy; nothing is recorded."""
-        tv, policy = self.problem.bellman_step(self.v, restricted=restricted, policy_guess=self.policy)
+    def bellman(self, restricted: bool, *, local: bool = False) -> Step:
+        """A Bellman step at the current iterate, measured against the last policy; nothing is recorded.
+        ``local``: the problem's local restricted step from the last policy (a restricted step)."""
+        if local and self.local_step is not None and self.policy is not None:
+            tv, policy = self.local_step(self.v, policy_guess=self.policy)
+        else:
+            tv, policy = self.problem.bellman_step(self.v, restricted=restricted, policy_guess=self.policy)
         tv = np.asarray(tv, dtype=np.float64)
         policy = _policy_array(policy)
         if not np.isfinite(tv).all():
@@ -268,35 +213,66 @@ class Run:
             self.options.on_progress(dict(entry))
 
     def improve(self) -> Step:
-        """One iteration at the current iterate (hinted while the hints are in use)."""
-        step = self.bellman(self.restricted)
+        """One iteration at the current iterate (hinted while the hints are in use, local in the local phase)."""
+        step = self.bellman(self.restricted, local=self.restricted and self.local is not None)
         self.record(step)
         return step
 
     def verify(self, hinted: Step) -> Step:
-        """The unrestricted Bellman step at the value of the hinted iteration ``hinted``: not an iteration.
+        """The unrestricted Bellman step at the value of the hinted (or local) iteration ``hinted``: not an
+        iteration.
 
-        Compares it with the hinted step (a state whose value rises by more
-        than rounding found a better choice outside the hinted search),
-        records it as ``verification`` and ends the use of hints.
+        Compares it with that step (a state whose value rises by more than
+        rounding found a better choice outside the restricted search), records
+        it as ``verification`` (after a local phase with ``local_search``:
+        its ``iterations`` and whether this check found it held; ``hints_held``
+        stays False, the first check having found the hints false) and ends
+        the use of hints until :meth:`go_local`.
         """
         step = self.bellman(False)
         self.restricted = False
         scale = max(float(np.abs(step.tv).max()), float(np.abs(self.v).max()))
         broken = int(np.count_nonzero(step.tv > hinted.tv + ROUNDING_ULPS * EPS * scale))
-        if broken:
+        self.broken = broken
+        local, self.local = self.local, None
+        first = broken if local is None else local["broken"]
+        said = (f"the {_hint_names(self.problem)} hint did not hold for this model: {first} states found better "
+                "choices outside the hinted search; ")
+        if local is not None:
+            done = self.iteration - local["from"]
+            most = ", its most" if done >= _local_cap(local["from"]) else ""
             self.warnings.append(
-                f"the {_hint_names(self.problem)} hint did not hold for this model: {broken} states found "
-                "better choices outside the hinted search; re-solved without hints"
+                said + f"searched locally from the verified policy ({done} iterations{most}), verified again: "
+                + (f"did not hold at {broken} states; re-solved without hints" if broken else "held")
             )
+        elif broken:
+            self.warnings.append(said + "re-solved without hints")
         self.verification = {
             "distance": step.distance,
             "error_bound": step.error_bound,
             "policy_changes": step.changes,
             "seconds": self.elapsed(),
-            "hints_held": not broken,
+            "hints_held": local is None and not broken,
         }
+        if local is not None:
+            self.verification["local_search"] = {"iterations": self.iteration - local["from"],
+                                                 "hints_held": not broken}
         return step
+
+    def go_local(self) -> None:
+        """After the first verification found the hints false and the solve goes on from its step: search
+        locally from its policy (the problem's ``local_step``) while that converges, when the problem offers one
+        (the warning of :meth:`verify` is then written again when the local phase is checked)."""
+        if self.local_step is None or not self.broken or self.verification is None \
+                or "local_search" in self.verification:
+            return
+        self.warnings.pop()
+        self.local = {"from": self.iteration, "broken": self.broken}
+        self.restricted = True
+
+    def local_capped(self) -> bool:
+        """True when the local phase has taken its most iterations (see :data:`LOCAL_MIN_ITERATIONS`)."""
+        return self.local is not None and self.iteration - self.local["from"] >= _local_cap(self.local["from"])
 
     def kept(self, hinted: Step, checked: Step) -> Step:
         """The hinted step ``hinted``, kept as the solve's last step after the unrestricted step ``checked`` at
@@ -379,6 +355,10 @@ def _changes(problem: CompiledProblem, policy: np.ndarray, before: np.ndarray) -
     return int(np.count_nonzero(policy != before))
 
 
+def _local_cap(began: int) -> int:
+    return max(LOCAL_MIN_ITERATIONS, began)
+
+
 def _hint_names(problem: CompiledProblem) -> str:
     hints = problem.hints
     names = [name for name, on in (("monotone", hints.monotone), ("concave", hints.concave)) if on]
@@ -437,8 +417,19 @@ def iterate(
     the solve's step is then the hinted one, with a bracket that answers for
     both (:meth:`Run.kept`); else the unrestricted one.  When it meets the
     stopping rule, or the solve had to stop anyway, the solve ends with it.
-    Otherwise (the hints did not hold) the solve goes on unrestricted from
-    it, and it counts as the next iteration.  With ``trust_hints`` there is
+    Otherwise it counts as the next iteration and the solve goes on from it:
+    unrestricted, unless the hints failed this first check and the problem
+    offers a ``local_step`` (a restricted search from the last policy, without
+    the narrowing by neighbours' choices: the concave hint's bracket grown
+    from the verified choice).  Then the *local phase*: local iterations from
+    the verified policy until one would stop the solve or the phase has taken
+    ``max(LOCAL_MIN_ITERATIONS, iterations before it)``; a second unrestricted
+    step verifies it the same way (``verification.local_search``), its result
+    used as after the first, and the solve goes on unrestricted if it must
+    go on.  Where the cubic interpolant of a fine grid is not exactly concave,
+    the hinted search misses the better peak at a few states; from the
+    verified policy the local search stays on it, and the solve converges at
+    the hinted step's cost, not the unrestricted one's.  With ``trust_hints`` there is
     no verification: the solve ends with the hinted step (``verification``
     None), for guiding trials of a search only.
     """
@@ -450,16 +441,17 @@ def iterate(
         run.poll(force=True)
         step = run.improve()
         stop = _stop(run, step, accept)
-        if stop is not None and step.restricted and not options.trust_hints:
+        if (stop is not None or run.local_capped()) and step.restricted and not options.trust_hints:
             checked = run.verify(step)
-            held = run.verification is not None and run.verification["hints_held"]
-            step = run.kept(step, checked) if held and not run.taste else checked
+            step = run.kept(step, checked) if not run.broken and not run.taste else checked
             if accept(step):
                 return run.outcome(step, "converged")
-            if stop != "converged":
+            if stop is not None and stop != "converged":
                 return run.outcome(step, stop)
             run.record(step)
             stop = _stop(run, step, accept)
+            if stop is None:
+                run.go_local()
         if stop is not None:
             return run.outcome(step, stop)
         run.v = step.tv
