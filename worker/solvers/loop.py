@@ -49,7 +49,8 @@ class Run:
         self.local_step = getattr(problem, "local_step", None)
         """The problem's local restricted step, or None: ``local_step(v, policy_guess=) -> (Tv, policy)``."""
         self.local: dict[str, int] | None = None
-        """In the local phase: ``{"from": the iteration it began after, "broken": states the first check found}``."""
+        """In the local phase: ``{"from": the iteration it began after, "broken": states the first check found
+        better, "changes": its policy changes}``."""
         self.verification: dict[str, Any] | None = None
         self.broken = 0  # states the last verification found better outside the restricted search
         self.warnings: list[str] = []
@@ -83,7 +84,7 @@ class Run:
         self.policy = None if policy is None else _policy_array(policy)
         self.restricted = bool(state.get("restricted", self.restricted))
         local = state.get("local")
-        self.local = None if local is None else {"from": int(local["from"]), "broken": int(local["broken"])}
+        self.local = None if local is None else {key: int(local[key]) for key in ("from", "broken", "changes")}
         if self.local is not None and self.local_step is None:
             self.local, self.restricted = None, False
         verification = state.get("verification")
@@ -224,9 +225,11 @@ class Run:
 
         Compares it with that step (a state whose value rises by more than
         rounding found a better choice outside the restricted search), records
-        it as ``verification`` (after a local phase with ``local_search``:
-        its ``iterations`` and whether this check found it held; ``hints_held``
-        stays False, the first check having found the hints false) and ends
+        it as ``verification`` (after a local phase with ``local_search``: its
+        ``iterations``, whether this check found it held, and the first
+        check's count of states better outside the hinted search and policy
+        changes; ``hints_held`` stays False, the first check having found the
+        hints false) and ends
         the use of hints until :meth:`go_local`.
         """
         step = self.bellman(False)
@@ -255,8 +258,9 @@ class Run:
             "hints_held": local is None and not broken,
         }
         if local is not None:
-            self.verification["local_search"] = {"iterations": self.iteration - local["from"],
-                                                 "hints_held": not broken}
+            self.verification["local_search"] = {"iterations": self.iteration - local["from"], "hints_held": not broken,
+                                                 "first_states_better": local["broken"],
+                                                 "first_policy_changes": local["changes"]}
         return step
 
     def go_local(self) -> None:
@@ -267,7 +271,7 @@ class Run:
                 or "local_search" in self.verification:
             return
         self.warnings.pop()
-        self.local = {"from": self.iteration, "broken": self.broken}
+        self.local = {"from": self.iteration, "broken": self.broken, "changes": self.verification["policy_changes"]}
         self.restricted = True
 
     def local_capped(self) -> bool:
