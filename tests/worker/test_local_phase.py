@@ -51,12 +51,14 @@ def _exact_value(problem: TabularProblem) -> np.ndarray:
 
 class LocalProblem:
     """A tabular problem that claims hints: its hinted search looks only at ``hinted`` actions, its local step
-    only at ``local`` ones (the loop's protocol: ``local_step(v, policy_guess=)``)."""
+    only at ``local`` ones (the loop's protocol: ``local_step(v, policy_guess=)``), and with ``keep_guess`` at
+    each state's guessed action too, as a search from the guess does."""
 
     hints_active = True
 
-    def __init__(self, inner: TabularProblem, hinted: list[int], local: list[int]) -> None:
+    def __init__(self, inner: TabularProblem, hinted: list[int], local: list[int], keep_guess: bool = False) -> None:
         self.inner = inner
+        self.keep_guess = keep_guess
         self.masks = {name: np.full(inner.n_actions, -np.inf) for name in ("hinted", "local")}
         self.masks["hinted"][hinted] = 0.0
         self.masks["local"][local] = 0.0
@@ -65,11 +67,14 @@ class LocalProblem:
     def __getattr__(self, name: str) -> Any:
         return getattr(self.inner, name)
 
-    def _search(self, v: np.ndarray, kind: str) -> tuple[np.ndarray, np.ndarray]:
+    def _search(self, v: np.ndarray, kind: str, guess: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
         self.calls["restricted" if kind == "hinted" else "local"] += 1
         inner = self.inner
         q = (inner.transition @ v).reshape(inner.n_states, inner.n_actions) * inner.discount
-        q = q + inner.reward + self.masks[kind]
+        mask = np.tile(self.masks[kind], (inner.n_states, 1))
+        if guess is not None:
+            mask[np.arange(inner.n_states), guess] = 0.0
+        q = q + inner.reward + mask
         policy = q.argmax(axis=1)
         return q[np.arange(q.shape[0]), policy], policy
 
@@ -81,7 +86,7 @@ class LocalProblem:
 
     def local_step(self, v, *, policy_guess):  # type: ignore[no-untyped-def]
         assert policy_guess is not None  # the phase starts from the verified step's policy
-        return self._search(v, "local")
+        return self._search(v, "local", policy_guess if self.keep_guess else None)
 
 
 @pytest.mark.parametrize("name", sorted(GENERAL_METHODS))
@@ -112,9 +117,8 @@ def test_a_local_phase_that_fails_again_falls_back_to_unrestricted_steps(name: s
     assert np.abs(outcome.value - _exact_value(inner)).max() <= outcome.error_bound
     local = outcome.verification["local_search"]  # type: ignore[index]
     assert local["hints_held"] is False and local["iterations"] == problem.calls["local"] > 0
-    # After the second check, unrestricted iterations to the end (the second check is the first of them).
-    unrestricted = problem.calls["full"] - 2
-    assert outcome.iterations == problem.calls["restricted"] + 1 + problem.calls["local"] + 1 + unrestricted
+    # Every check is an iteration here (the solve went on from each), and so is every unrestricted step after.
+    assert outcome.iterations == problem.calls["restricted"] + problem.calls["local"] + problem.calls["full"]
     [warning] = outcome.warnings
     assert "verified again: did not hold at" in warning and warning.endswith("re-solved without hints")
 
@@ -128,7 +132,34 @@ def test_a_local_phase_is_checked_at_its_cap(monkeypatch: pytest.MonkeyPatch) ->
     assert problem.calls["full"] > 2  # not converged at the cap: the solve went on unrestricted
     assert np.abs(outcome.value - _exact_value(inner)).max() <= outcome.error_bound
     assert outcome.verification["local_search"]["iterations"] == 1  # type: ignore[index]
-    assert "(1 iterations, its most)" in outcome.warnings[0]
+    assert "(1 iterations, the last one up to its cap)" in outcome.warnings[0]
+
+
+@pytest.mark.parametrize("name", sorted(GENERAL_METHODS))
+def test_a_local_phase_follows_a_check_that_found_fewer_states_better(name: str) -> None:
+    inner = _fully_allowed(30, 25, 3, 0.9)
+    problem = LocalProblem(inner, hinted=[0], local=[0], keep_guess=True)  # keeps what the last check found
+    outcome = METHODS[name](problem, np.zeros(inner.n), tolerance=1e-8)
+    assert outcome.status == "converged"
+    assert np.abs(outcome.value - _exact_value(inner)).max() <= outcome.error_bound
+    local = outcome.verification["local_search"]  # type: ignore[index]
+    assert local["phases"] == 2 and local["hints_held"] is True and local["iterations"] == problem.calls["local"]
+    # Three checks: the first two are iterations (the solve went on from them), the last one held and ends it.
+    assert problem.calls["full"] == 3
+    assert outcome.iterations == problem.calls["restricted"] + problem.calls["local"] + 2
+    assert "in 2 phases), verified again: held" in outcome.warnings[0]
+
+
+def test_with_one_local_phase_a_second_failure_falls_back(monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(loop, "LOCAL_PHASES", 1)
+    inner = _fully_allowed(30, 25, 3, 0.9)
+    problem = LocalProblem(inner, hinted=[0], local=[0], keep_guess=True)
+    outcome = METHODS["howard"](problem, np.zeros(inner.n), tolerance=1e-8)
+    assert np.abs(outcome.value - _exact_value(inner)).max() <= outcome.error_bound
+    local = outcome.verification["local_search"]  # type: ignore[index]
+    assert local["phases"] == 1 and local["hints_held"] is False
+    assert outcome.iterations == problem.calls["restricted"] + problem.calls["local"] + problem.calls["full"]
+    assert outcome.warnings[0].endswith("re-solved without hints")
 
 
 class MemoryCheckpoint:
@@ -154,20 +185,24 @@ class Crash(Exception):
     """Stands in for a worker killed mid-solve."""
 
 
-@pytest.mark.parametrize("local", [[0, 1, 2], [0, 1]], ids=["holds", "fails_again"])
-def test_a_solve_resumed_in_the_local_phase_repeats_the_whole_one(local: list[int]) -> None:
-    inner = _fully_allowed(37, 25, 3, 0.97)
+@pytest.mark.parametrize(("local", "keep"), [([0, 1, 2], False), ([0, 1], False), ([0], True)],
+                         ids=["holds", "fails_again", "two_phases"])
+def test_a_solve_resumed_in_the_local_phase_repeats_the_whole_one(local: list[int], keep: bool) -> None:
+    inner = _fully_allowed(30 if keep else 37, 25, 3, 0.97)
     options = dict(tolerance=1e-10, evaluation_steps=6, fingerprint="local", checkpoint_s=0.0)
-    whole = METHODS["howard"](LocalProblem(inner, [0], local), np.zeros(inner.n), **options)
+    whole = METHODS["howard"](LocalProblem(inner, [0], local, keep), np.zeros(inner.n), **options)
+    if keep:
+        assert whole.verification["local_search"]["phases"] == 2  # type: ignore[index]
     counting = MemoryCheckpoint()
-    METHODS["howard"](LocalProblem(inner, [0], local), np.zeros(inner.n), checkpoint=counting, **options)
+    METHODS["howard"](LocalProblem(inner, [0], local, keep), np.zeros(inner.n), checkpoint=counting, **options)
     assert any(state["local"] is not None for state in counting.saves)  # some saves fall in the local phase
     strip = lambda entry: {k: v for k, v in entry.items() if k != "seconds"}  # noqa: E731
     for crash_after in range(1, len(counting.saves) + 1):
         store = MemoryCheckpoint(crash_after=crash_after)
         with pytest.raises(Crash):
-            METHODS["howard"](LocalProblem(inner, [0], local), np.zeros(inner.n), checkpoint=store, **options)
-        resumed = METHODS["howard"](LocalProblem(inner, [0], local), np.zeros(inner.n), checkpoint=store, **options)
+            METHODS["howard"](LocalProblem(inner, [0], local, keep), np.zeros(inner.n), checkpoint=store, **options)
+        resumed = METHODS["howard"](LocalProblem(inner, [0], local, keep), np.zeros(inner.n), checkpoint=store,
+                                    **options)
         np.testing.assert_array_equal(resumed.value, whole.value)
         assert (resumed.iterations, resumed.evaluation_steps) == (whole.iterations, whole.evaluation_steps)
         assert [strip(e) for e in resumed.log] == [strip(e) for e in whole.log]
@@ -196,11 +231,15 @@ def _two_peaks(bonus: float, hints: dict | None) -> dict[str, Any]:
 BOTH = {"monotone": True, "concave": True}
 
 
-@pytest.mark.parametrize(("bonus", "held"), [(0.5, True), (0.2, False)])
-def test_a_false_concave_hint_on_a_continuous_choice(bonus: float, held: bool) -> None:
+@pytest.mark.parametrize(("bonus", "most", "phases", "held"),
+                         [(0.5, 3, 1, True), (0.2, 3, 2, True), (0.2, 1, 1, False)])
+def test_a_false_concave_hint_on_a_continuous_choice(monkeypatch: pytest.MonkeyPatch, bonus: float, most: int,
+                                                     phases: int, held: bool) -> None:
     # 0.5: the narrow peak wins everywhere, and the local search from the verified choices stays on it; 0.2: it
     # wins above some k only, where the choice jumps from peak to peak while the value moves, and the local
-    # search from the first check's choices misses some jumps (the second check catches them).
+    # search from the first check's choices misses some jumps: the second check catches them, and a second
+    # phase from its choices holds (or, allowed one phase only, the solve goes on unrestricted).
+    monkeypatch.setattr(loop, "LOCAL_PHASES", most)
     plain = solve(_two_peaks(bonus, None))
     hinted = solve(_two_peaks(bonus, BOTH))
     assert plain["status"] == hinted["status"] == "converged"
@@ -212,6 +251,7 @@ def test_a_false_concave_hint_on_a_continuous_choice(bonus: float, held: bool) -
     np.testing.assert_allclose(np.array(hinted["policy"]["k_next"]), np.array(plain["policy"]["k_next"]), atol=2e-3)
     check = hinted["diagnostics"]["verification"]
     assert check["hints_held"] is False and check["local_search"]["hints_held"] is held
+    assert check["local_search"]["phases"] == phases
     assert check["local_search"]["first_states_better"] > 0
     # The result rests on an unrestricted step: the second check's bound (kept with the local step's when it held)
     if not held:

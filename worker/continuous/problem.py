@@ -20,6 +20,9 @@ interpolation:
     Far more accurate for smooth models, but not linear in ``v``: the bracket
     is computed the same way and is not a proof (the result says so).
 
+Under the concave hint, ``local_step`` is that search from a guess without the
+monotone narrowing (the loop's local phase after a failed verification).
+
 A policy is a float64 vector: the chosen value at each point.  With other
 (discrete) choices beside the continuous one, the continuous one is searched
 for each combination of theirs (one row of ``combos``, in C order of their

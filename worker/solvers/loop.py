@@ -4,7 +4,9 @@ An *iteration* is one Bellman step ``v → Tv`` (with its greedy policy σ),
 the stopping test on the error bound of that step, then a method-specific
 evaluation that moves ``v`` (:mod:`worker.solvers.evaluation`).  The error
 bound of a step is the MacQueen–Porteus bracket described in
-:mod:`worker.solvers`.
+:mod:`worker.solvers`.  With hints, restricted iterations (hinted, then after
+a failed verification possibly local ones) are always checked by an
+unrestricted step before the solve ends on them (:func:`iterate`).
 """
 
 from __future__ import annotations
@@ -23,9 +25,13 @@ from worker.solvers.step import Options, Step, options
 __all__ = ["STOP_POLL_S", "Accept", "Evaluate", "Options", "Run", "Step", "iterate", "meets", "options"]
 
 LOCAL_MIN_ITERATIONS = 10
-"""The local phase after a failed verification may take as many iterations as the solve had taken when it
+"""A local phase after a failed verification may take as many iterations as the solve had taken when it
 began, and at least this many (count; common practice: a phase started near the fixed point should converge in
 fewer iterations than the whole solve before it); then it is verified, and the solve goes on without hints."""
+LOCAL_PHASES = 3
+"""Most local phases of one solve (count).  Another one starts only when the check of the one before found
+better choices at fewer states than the check before it, and that phase converged within its cap (on the
+accuracy benchmark at 5,000 points: 1,769 states, then 2, then none)."""
 STOP_POLL_S = 0.005
 """Seconds between two polls of ``should_stop`` during evaluation steps
 (it is always polled before an iteration)."""
@@ -49,10 +55,12 @@ class Run:
         self.local_step = getattr(problem, "local_step", None)
         """The problem's local restricted step, or None: ``local_step(v, policy_guess=) -> (Tv, policy)``."""
         self.local: dict[str, int] | None = None
-        """In the local phase: ``{"from": the iteration it began after, "broken": states the first check found
-        better, "changes": its policy changes}``."""
+        """In a local phase: ``{"from": the iteration it began after, "phase": its number, "earlier": local
+        iterations of the phases before, "last": states the check before it found better, "broken" and "changes":
+        the first check's states found better and policy changes}``."""
         self.verification: dict[str, Any] | None = None
         self.broken = 0  # states the last verification found better outside the restricted search
+        self.capped = False  # the last local phase reached its cap
         self.warnings: list[str] = []
         self.pending_steps: int | None = None
         self.taste = getattr(problem, "taste_scale", None) is not None
@@ -84,7 +92,7 @@ class Run:
         self.policy = None if policy is None else _policy_array(policy)
         self.restricted = bool(state.get("restricted", self.restricted))
         local = state.get("local")
-        self.local = None if local is None else {key: int(local[key]) for key in ("from", "broken", "changes")}
+        self.local = None if local is None else {key: int(local[key]) for key in _LOCAL_KEYS}
         if self.local is not None and self.local_step is None:
             self.local, self.restricted = None, False
         verification = state.get("verification")
@@ -225,12 +233,12 @@ class Run:
 
         Compares it with that step (a state whose value rises by more than
         rounding found a better choice outside the restricted search), records
-        it as ``verification`` (after a local phase with ``local_search``: its
-        ``iterations``, whether this check found it held, and the first
-        check's count of states better outside the hinted search and policy
-        changes; ``hints_held`` stays False, the first check having found the
-        hints false) and ends
-        the use of hints until :meth:`go_local`.
+        it as ``verification`` (after a local phase with ``local_search``: the
+        ``phases`` so far, their ``iterations``, whether this check found the
+        last one held, and the first check's count of states better outside
+        the hinted search and policy changes; ``hints_held`` stays False, the
+        first check having found the hints false) and ends the use of hints
+        until :meth:`go_local`.
         """
         step = self.bellman(False)
         self.restricted = False
@@ -241,15 +249,6 @@ class Run:
         first = broken if local is None else local["broken"]
         said = (f"the {_hint_names(self.problem)} hint did not hold for this model: {first} states found better "
                 "choices outside the hinted search; ")
-        if local is not None:
-            done = self.iteration - local["from"]
-            most = ", its most" if done >= _local_cap(local["from"]) else ""
-            self.warnings.append(
-                said + f"searched locally from the verified policy ({done} iterations{most}), verified again: "
-                + (f"did not hold at {broken} states; re-solved without hints" if broken else "held")
-            )
-        elif broken:
-            self.warnings.append(said + "re-solved without hints")
         self.verification = {
             "distance": step.distance,
             "error_bound": step.error_bound,
@@ -257,21 +256,45 @@ class Run:
             "seconds": self.elapsed(),
             "hints_held": local is None and not broken,
         }
-        if local is not None:
-            self.verification["local_search"] = {"iterations": self.iteration - local["from"], "hints_held": not broken,
-                                                 "first_states_better": local["broken"],
-                                                 "first_policy_changes": local["changes"]}
+        if local is None:
+            if broken:
+                self.warnings.append(said + "re-solved without hints")
+            return step
+        done = self.iteration - local["from"]
+        self.capped = done >= _local_cap(local["from"])
+        phases = f" in {local['phase']} phases" if local["phase"] > 1 else ""
+        self.warnings.append(
+            said + f"searched locally from the verified policy ({local['earlier'] + done} iterations{phases}"
+            + (", the last one up to its cap" if self.capped else "") + "), verified again: "
+            + (f"did not hold at {broken} states; re-solved without hints" if broken else "held")
+        )
+        self.verification["local_search"] = {
+            "phases": local["phase"],
+            "iterations": local["earlier"] + done,
+            "hints_held": not broken,
+            "first_states_better": local["broken"],
+            "first_policy_changes": local["changes"],
+        }
         return step
 
-    def go_local(self) -> None:
-        """After the first verification found the hints false and the solve goes on from its step: search
-        locally from its policy (the problem's ``local_step``) while that converges, when the problem offers one
-        (the warning of :meth:`verify` is then written again when the local phase is checked)."""
-        if self.local_step is None or not self.broken or self.verification is None \
-                or "local_search" in self.verification:
+    def go_local(self, before: dict[str, int] | None) -> None:
+        """After a check found better choices and the solve goes on from its step: search locally from its
+        policy (the problem's ``local_step``), when the problem offers one and this is the first check, or
+        ``before`` (the local phase just checked) converged, had fewer than :data:`LOCAL_PHASES`, and its check
+        found fewer states better than the check before it.  The warning of :meth:`verify` is written again
+        when the phase is checked."""
+        if self.local_step is None or not self.broken or self.verification is None:
             return
+        search = self.verification.get("local_search")
+        if search is None:
+            first = {"phase": 1, "earlier": 0, "broken": self.broken, "changes": self.verification["policy_changes"]}
+        elif before is None or self.capped or search["phases"] >= LOCAL_PHASES or self.broken >= before["last"]:
+            return
+        else:
+            first = {"phase": search["phases"] + 1, "earlier": search["iterations"], "broken": before["broken"],
+                     "changes": before["changes"]}
         self.warnings.pop()
-        self.local = {"from": self.iteration, "broken": self.broken, "changes": self.verification["policy_changes"]}
+        self.local = {"from": self.iteration, "last": self.broken, **first}
         self.restricted = True
 
     def local_capped(self) -> bool:
@@ -359,6 +382,9 @@ def _changes(problem: CompiledProblem, policy: np.ndarray, before: np.ndarray) -
     return int(np.count_nonzero(policy != before))
 
 
+_LOCAL_KEYS = ("from", "phase", "earlier", "last", "broken", "changes")
+
+
 def _local_cap(began: int) -> int:
     return max(LOCAL_MIN_ITERATIONS, began)
 
@@ -429,11 +455,12 @@ def iterate(
     the verified policy until one would stop the solve or the phase has taken
     ``max(LOCAL_MIN_ITERATIONS, iterations before it)``; a second unrestricted
     step verifies it the same way (``verification.local_search``), its result
-    used as after the first, and the solve goes on unrestricted if it must
-    go on.  Where the cubic interpolant of a fine grid is not exactly concave,
-    the hinted search misses the better peak at a few states; from the
-    verified policy the local search stays on it, and the solve converges at
-    the hinted step's cost, not the unrestricted one's.  With ``trust_hints`` there is
+    used as after the first.  If the solve must go on, it does so in another
+    local phase from that step while the checks find fewer states better (at
+    most ``LOCAL_PHASES``), else unrestricted.  Where the cubic interpolant of a fine grid is not exactly concave,
+    the hinted search misses the better peak at some states; from the verified
+    policy the local search mostly stays on it, at the cost of a hinted step
+    rather than an unrestricted one.  With ``trust_hints`` there is
     no verification: the solve ends with the hinted step (``verification``
     None), for guiding trials of a search only.
     """
@@ -446,6 +473,7 @@ def iterate(
         step = run.improve()
         stop = _stop(run, step, accept)
         if (stop is not None or run.local_capped()) and step.restricted and not options.trust_hints:
+            before = run.local
             checked = run.verify(step)
             step = run.kept(step, checked) if not run.broken and not run.taste else checked
             if accept(step):
@@ -455,7 +483,7 @@ def iterate(
             run.record(step)
             stop = _stop(run, step, accept)
             if stop is None:
-                run.go_local()
+                run.go_local(before)
         if stop is not None:
             return run.outcome(step, stop)
         run.v = step.tv
