@@ -20,6 +20,9 @@ interpolation:
     Far more accurate for smooth models, but not linear in ``v``: the bracket
     is computed the same way and is not a proof (the result says so).
 
+Under the concave hint, ``local_step`` is that search from a guess without the
+monotone narrowing (the loop's local phase after a failed verification).
+
 A policy is a float64 vector: the chosen value at each point.  With other
 (discrete) choices beside the continuous one, the continuous one is searched
 for each combination of theirs (one row of ``combos``, in C order of their
@@ -69,8 +72,9 @@ class ContinuousProblem:
 
     Besides the protocol: ``model_data`` (the evaluated model), ``cubic``,
     ``target`` (the state the choice is ``next_of``, or None),
-    ``policy_resolution``, ``timings`` and :meth:`choose_at`, the search at
-    points off the grid (Euler errors).
+    ``policy_resolution``, ``timings``, :meth:`choose_at`, the search at
+    points off the grid (Euler errors), and ``local_step`` (under the concave
+    hint; else None), the search from a guess without the monotone narrowing.
     """
 
     def __init__(self, doc: Any, data: ModelData, module: ModuleType, params: np.ndarray) -> None:
@@ -99,6 +103,7 @@ class ContinuousProblem:
         self.policy_shape = (self.n, 2) if others else (self.n,)
         self.hints = Hints(monotone=monotone, concave=bool(model.hints.concave))
         self.hints_active = monotone or self.hints.concave
+        self.local_step = self._local_step if self.hints.concave else None  # no local search without the hint
         self.scan_points = model.choices[self.choice].size
         self.timings: dict[str, float] = {}
         self.moving_steps_divisor = MOVING_STEPS_DIVISOR
@@ -216,12 +221,21 @@ class ContinuousProblem:
         ``restricted`` uses the hints (see :mod:`worker.continuous.search`);
         unrestricted, the search starts from a scan of the interval.
         """
+        return self._bellman(v, policy_guess, bool(restricted and self.hints.concave),
+                             bool(restricted and self.hints.monotone))
+
+    def _local_step(self, v: np.ndarray, *, policy_guess: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``local_step``: the concave hint's bracket grown from ``policy_guess`` at each point, without the
+        monotone narrowing by the point before (the loop's local phase after a failed verification,
+        :mod:`worker.solvers.loop`); verified by an unrestricted step like a hinted one."""
+        return self._bellman(v, policy_guess, True, False)
+
+    def _bellman(self, v: np.ndarray, policy_guess: np.ndarray | None, concave: bool,
+                 monotone: bool) -> tuple[np.ndarray, np.ndarray]:
         EVt, D = self.continuation(v)
         out_v, out_a, out_r = np.empty(self.n), np.empty(self.n), np.empty(self.n)
         out_j = np.zeros(self.n, dtype=np.int64)
         guess = self._guess(policy_guess)
-        concave = bool(restricted and self.hints.concave)
-        monotone = bool(restricted and self.hints.monotone)
         step = self._step(EVt, D, self._svals, self._piz, self._order, self._prev, guess, concave, monotone,
                           out_v, out_a, out_r, out_j)
         lines = self.n // self._line

@@ -13,6 +13,7 @@ from typing import Literal, Union
 from pydantic import Field
 
 from worker.result_document._types import NestedOptionalNumbers, NumberOrLabel, Reported, absent_unless
+from worker.solvers.loop import LOCAL_PHASES
 from worker.solvers.outcome import RATE_WINDOW, ROUNDING_ULPS
 
 __all__ = ["Diagnostics"]
@@ -36,6 +37,23 @@ class ErrorBracket(Reported):
     )
 
 
+class LocalSearch(Reported):
+    """After the first check found the hints false: the local phases that searched from the verified policy
+    (the concave hint's bracket without the monotone narrowing), each checked by an unrestricted step."""
+
+    phases: int = Field(
+        description="Local phases: another one follows a check that found better choices at fewer states than the "
+        f"check before it (at most {LOCAL_PHASES})."
+    )
+    iterations: int = Field(description="Local iterations taken, over all phases (each is also a log entry).")
+    hints_held: bool = Field(
+        description="True when the check of the last phase found no better choice outside the local search (the "
+        "solve then ended with it, or went on unrestricted); false: the solve went on without hints."
+    )
+    first_states_better: int = Field(description="Points where the first check found a better choice.")
+    first_policy_changes: int = Field(description="The first check's policy_changes.")
+
+
 class Verification(Reported):
     """With speed hints (infinite horizon): the unrestricted Bellman step, at the value of the last hinted
     iteration, that checks the hints' promise. Not an iteration, unless the hints failed and the solve went on
@@ -47,7 +65,12 @@ class Verification(Reported):
     seconds: float = Field(description="Solving time (s) when the verification ended, counted across resumes.")
     hints_held: bool = Field(
         description="False when some point found a better choice outside the hinted search (a warning says so and "
-        "the solve went on without hints)."
+        "the solve went on: searching locally from the verified policy where the model's search can, see "
+        "local_search, else without hints)."
+    )
+    local_search: LocalSearch = absent_unless(
+        description="When the first check failed and the solve went on with a local search: those phases and their "
+        "checks (the figures above are then the last check's); absent otherwise."
     )
 
 
