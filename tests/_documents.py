@@ -301,3 +301,22 @@ def drifting(state_variables: int, points: int) -> dict[str, Any]:
 def random_values(problem: Any, seed: int = 0) -> np.ndarray:
     """A value function that is neither concave nor monotone: the searches must not rely on shape."""
     return np.random.default_rng(seed).normal(scale=3.0, size=problem.n)
+
+
+def two_peaks(bonus: float, hints: dict | None) -> dict[str, Any]:
+    """Invented (tests/worker/test_local_phase.py): a broad peak of the reward at 0.25 + 0.05·k + z and a
+    narrow one of height ``bonus`` at 0.725, between the grid points 0.70 and 0.75 of ``k`` on [0, 1] (21
+    points); tomorrow's value read linearly."""
+    model: dict[str, Any] = {
+        "kind": "grid",
+        "params": {"bonus": bonus, "peak": 0.725, "spread": 0.02},
+        "states": {"k": {"min": 0.0, "max": 1.0, "points": 21}},
+        "shocks": {"z": {"markov": {"values": [0.0, 0.03], "matrix": [[0.9, 0.1], [0.1, 0.9]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "reward": "-(k_next - 0.25 - 0.05 * k - z)**2 + bonus * exp(-((k_next - peak) / spread)**2)",
+        "interpolation": "linear",
+    }
+    if hints is not None:
+        model["hints"] = hints
+    return {"version": 1, "discount": 0.5, "model": model, "solver": {"method": "howard", "tolerance": 1e-9}}

@@ -19,6 +19,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from tests._documents import two_peaks
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
 from worker.solvers import GENERAL_METHODS, METHODS, loop
@@ -210,24 +211,6 @@ def test_a_solve_resumed_in_the_local_phase_repeats_the_whole_one(local: list[in
         assert resumed.warnings == whole.warnings
 
 
-def _two_peaks(bonus: float, hints: dict | None) -> dict[str, Any]:
-    """Invented: a broad peak of the reward at 0.25 + 0.05·k + z and a narrow one of height ``bonus`` at 0.725,
-    between the grid points 0.70 and 0.75 of ``k`` on [0, 1] (21 points); tomorrow's value read linearly."""
-    model: dict[str, Any] = {
-        "kind": "grid",
-        "params": {"bonus": bonus, "peak": 0.725, "spread": 0.02},
-        "states": {"k": {"min": 0.0, "max": 1.0, "points": 21}},
-        "shocks": {"z": {"markov": {"values": [0.0, 0.03], "matrix": [[0.9, 0.1], [0.1, 0.9]]},
-                         "transform": "none"}},
-        "choices": {"k_next": {"next_of": "k", "continuous": True}},
-        "reward": "-(k_next - 0.25 - 0.05 * k - z)**2 + bonus * exp(-((k_next - peak) / spread)**2)",
-        "interpolation": "linear",
-    }
-    if hints is not None:
-        model["hints"] = hints
-    return {"version": 1, "discount": 0.5, "model": model, "solver": {"method": "howard", "tolerance": 1e-9}}
-
-
 BOTH = {"monotone": True, "concave": True}
 
 
@@ -240,8 +223,8 @@ def test_a_false_concave_hint_on_a_continuous_choice(monkeypatch: pytest.MonkeyP
     # search from the first check's choices misses some jumps: the second check catches them, and a second
     # phase from its choices holds (or, allowed one phase only, the solve goes on unrestricted).
     monkeypatch.setattr(loop, "LOCAL_PHASES", most)
-    plain = solve(_two_peaks(bonus, None))
-    hinted = solve(_two_peaks(bonus, BOTH))
+    plain = solve(two_peaks(bonus, None))
+    hinted = solve(two_peaks(bonus, BOTH))
     assert plain["status"] == hinted["status"] == "converged"
     gap = np.abs(np.array(hinted["value"]) - np.array(plain["value"])).max()
     # Both bounds, plus what two searches of the narrow peak may differ by: Brent's tolerance on the choice
@@ -264,7 +247,7 @@ def test_two_threads_give_the_bits_of_one_through_the_local_phase(monkeypatch: p
     results = []
     for threads in ("1", "2"):
         monkeypatch.setenv(environment.SOLVE_THREADS, threads)
-        result = solve(_two_peaks(0.5, BOTH))
+        result = solve(two_peaks(0.5, BOTH))
         assert "local_search" in result["diagnostics"]["verification"]
         results.append((result["iterations"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["k_next"]).tobytes(), result["diagnostics"]["warnings"]))
@@ -272,11 +255,11 @@ def test_two_threads_give_the_bits_of_one_through_the_local_phase(monkeypatch: p
 
 
 def test_only_a_concave_hint_offers_a_local_step() -> None:
-    _, concave = compile_document(_two_peaks(0.5, {"concave": True}))
-    _, monotone = compile_document(_two_peaks(0.5, {"monotone": True}))
+    _, concave = compile_document(two_peaks(0.5, {"concave": True}))
+    _, monotone = compile_document(two_peaks(0.5, {"monotone": True}))
     assert concave.local_step is not None and monotone.local_step is None
     # A model with discrete choices only has none: its failed check goes on unrestricted, as before.
-    document = _two_peaks(0.5, BOTH)
+    document = two_peaks(0.5, BOTH)
     document["model"]["choices"] = {"k_next": {"next_of": "k"}}
     _, grid = compile_document(document)
     assert getattr(grid, "local_step", None) is None

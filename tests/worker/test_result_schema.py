@@ -21,7 +21,7 @@ import pytest
 from pydantic import BaseModel, ValidationError
 
 from service.examples import example_names, load_example
-from tests._documents import grid_document, log_growth, machine_shop
+from tests._documents import grid_document, log_growth, machine_shop, two_peaks
 from worker import solve
 from worker.report import PERCENTILES
 from worker.result_document import ResultDocument, result_json_schema
@@ -180,6 +180,8 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
     "euler errors of two next_of choices": _two_chosen_states,
     "law of motion leaving its grid, non-finite rewards": _leaving_grid,
     "max_iterations": lambda: machine_shop(solver={"method": "howard", "max_iterations": 1}),
+    "a false concave hint, searched locally from the verified policy": lambda: two_peaks(
+        0.5, {"monotone": True, "concave": True}),
 }
 """What each case is for, and its document."""
 
