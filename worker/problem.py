@@ -14,6 +14,17 @@ Conventions
   index of the chosen alternative in the problem's choice space (tabular: the
   action index; grid: the C-order flat index over the product of choices).
 
+Local steps
+-----------
+A problem may also offer ``local_step(v, policy_guess=...)`` (an optional
+attribute, read with ``getattr``; None or absent when it cannot): a Bellman
+step whose search is local around ``policy_guess`` (a continuous choice's
+concave bracket grown from the previous choice, without the monotone
+narrowing).  After the hints fail their check, the solver iterates such
+steps from the checked policy and checks them again with an unrestricted
+step (:mod:`worker.solvers.loop`, "local phase"); the answer never rests on
+an unchecked local step.
+
 Taste shocks
 ------------
 A problem with taste shocks (:mod:`worker.taste`) also has ``taste_scale``
