@@ -85,7 +85,7 @@ def euler_diagnostics(
     if mixed:  # a continuous choice beside others: at the chosen combination
         from worker.continuous.mixed_euler import mixed_euler_report
 
-        errors, note = mixed_euler_report(problem, outcome.value, doc.discount, values, distribution)
+        errors, note = mixed_euler_report(problem, outcome.value, doc.discount, values, distribution, slopes)
     elif len(data.states) > 1:
         from worker.euler_states import search_rule, states_report
 

@@ -136,18 +136,18 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
             return setters_errors(today, setters, float(plan.discounts[t]), search, combined, rules, None, at_end,
                                   tomorrow=(data_next, search_next, rules_next))
-        if mixed:
-            today, search = model_and_search(t)
-            searches.pop(t - 1, None)
-            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
-                                values_at(t))[0]
-        today, rule = model_and_rule(t)
         extra = {}
-        if found.laws:
+        if found.laws:  # laws moving with k or x: the slopes of V_{t+1} read today and of V_{t+2} tomorrow
             from worker.euler_laws import solve_slope
 
             extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
                                float(plan.discounts[t + 1]))
+        if mixed:
+            today, search = model_and_search(t)
+            searches.pop(t - 1, None)
+            return mixed_errors(problem, today, float(plan.discounts[t]), search, model_and_search(t + 1),
+                                values_at(t), **extra)[0]
+        today, rule = model_and_rule(t)
         return measure(today, found, float(plan.discounts[t]), rule, tomorrow=model_and_rule(t + 1),
                        values=values_at(t), **extra)
 

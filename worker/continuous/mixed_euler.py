@@ -10,6 +10,9 @@ tomorrow's against ``V_{t+2}``.  A test point where the best combination differs
 skipped (counted as ``constrained``, and the note gives their number): across a switch the value
 function has a kink, and the first-order condition of the continuous choice alone need not hold there.
 The choices at test points are the fitted problem's own search there, as for a continuous choice alone.
+Where another state's law moves with the chosen state or the choice, its terms read the slopes of the solved
+value (:mod:`worker.euler_laws`, ``slopes``) as for a choice alone: the one value the search maximises against,
+whichever combination is fixed, and at the measured points the combination is the same today and tomorrow.
 
 The pooled errors: ``max_log10`` the largest over the combinations, ``mean_log10`` the mean over every
 point measured, ``profile`` the worst at each test point.  With the stationary distribution (an infinite
@@ -29,6 +32,7 @@ import numpy as np
 
 from worker import _codegen
 from worker.euler import EulerSetup, between_points, euler_errors, pooled_weighted_mean, setup
+from worker.euler_laws import SlopeParts
 from worker.euler_points import ValueParts, combinations, environment, next_points
 from worker.euler_states import states_errors, test_points
 from worker.feasibility import ModelData
@@ -57,15 +61,17 @@ def fixed_model(data: ModelData, others: tuple[str, ...], values: np.ndarray) ->
 
 
 def mixed_euler_report(problem: Any, v: np.ndarray, discount: float, values: ValueParts | None = None,
-                       distribution: np.ndarray | None = None) -> tuple[dict[str, Any] | None, str]:
+                       distribution: np.ndarray | None = None,
+                       slopes: SlopeParts | None = None) -> tuple[dict[str, Any] | None, str]:
     """``(diagnostics.euler_errors or None, note)`` of a solved continuous choice beside other choices;
-    ``distribution`` the stationary one over the flat points, (n,), for ``weighted_mean_log10``."""
+    ``distribution`` the stationary one over the flat points, (n,), for ``weighted_mean_log10``; ``slopes`` the
+    value's slopes where a law moves with the chosen state or the choice (:mod:`worker.euler_laws`)."""
     data = problem.model_data
     found = mixed_setup(problem, data)
     if not isinstance(found, EulerSetup):
         return None, found
     search = searcher(problem, v)
-    return mixed_errors(problem, data, discount, search, (data, search), values, distribution)
+    return mixed_errors(problem, data, discount, search, (data, search), values, distribution, slopes)
 
 
 def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
@@ -84,10 +90,6 @@ def mixed_setup(problem: Any, data: ModelData) -> EulerSetup | str:
     if not isinstance(found, EulerSetup):
         return found or ("Euler-equation errors were not measured: they need a continuous choice that sets "
                          "tomorrow's value of a state (next_of)")
-    if found.laws:
-        return (f"Euler-equation errors were not measured: beside other choices, a law of motion that moves with "
-                f"`{found.state}` or the choice `{found.choice}` (the law of "
-                f"`{data.states[found.laws[0].position]}`) is not measured")
     return found
 
 
@@ -120,10 +122,13 @@ def searcher(problem: Any, v: np.ndarray, enter: Callable[[], None] | None = Non
 
 def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
                  tomorrow: tuple[ModelData, Search], values: ValueParts | None = None,
-                 distribution: np.ndarray | None = None) -> tuple[dict[str, Any], str]:
+                 distribution: np.ndarray | None = None,
+                 slopes: SlopeParts | None = None) -> tuple[dict[str, Any], str]:
     """The pooled errors over the combinations of the other choices, and the note; ``data`` and ``search`` are
-    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon); ``values`` as
-    :func:`worker.euler_points.errors_at` takes them; ``distribution`` the stationary one (infinite horizon)."""
+    today's (params, search), ``tomorrow`` the next period's (the same in an infinite horizon); ``values`` and
+    ``slopes`` as :func:`worker.euler_points.errors_at` takes them (the solved value's, whatever the combination:
+    every combination's equation reads the one value tomorrow); ``distribution`` the stationary one (infinite
+    horizon)."""
     n_z = data.n_shocks
     several = len(data.states) > 1
     data_next, search_next = tomorrow
@@ -135,7 +140,7 @@ def mixed_errors(problem: Any, data: ModelData, discount: float, search: Search,
         if several:
             parts.append(states_errors(model, found, discount, today, distribution,
                                        tomorrow=(model_next, lambda points: search_next(points)[0]), values=values,
-                                       pooling=True))
+                                       pooling=True, slopes=slopes))
         else:
             parts.append(euler_errors(model, found, discount, lambda k, today=today: today(k[:, None]),
                                       distribution, tomorrow=(model_next, lambda k: search_next(k)[0]),
