@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 from tests._documents import two_peaks
+from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
 from worker.solvers import GENERAL_METHODS, METHODS, loop
@@ -163,27 +164,6 @@ def test_with_one_local_phase_a_second_failure_falls_back(monkeypatch: pytest.Mo
     assert outcome.warnings[0].endswith("re-solved without hints")
 
 
-class MemoryCheckpoint:
-    """A checkpoint store in memory; ``crash_after`` saves, it raises :class:`Crash`."""
-
-    def __init__(self, crash_after: int | None = None) -> None:
-        self.state: dict | None = None
-        self.saves: list[dict] = []
-        self.crash_after = crash_after
-
-    def load(self) -> dict | None:
-        return self.state
-
-    def save(self, state: dict) -> None:
-        self.state = state
-        self.saves.append(state)
-        if self.crash_after is not None and len(self.saves) >= self.crash_after:
-            self.crash_after = None
-            raise Crash
-
-
-class Crash(Exception):
-    """Stands in for a worker killed mid-solve."""
 
 
 @pytest.mark.parametrize(("local", "keep"), [([0, 1, 2], False), ([0, 1], False), ([0], True)],

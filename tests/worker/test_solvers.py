@@ -22,6 +22,7 @@ import pytest
 import scipy.sparse as sp
 from scipy.optimize import linprog
 
+from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from worker.errors import Canceled
 from worker.solvers import GENERAL_METHODS, METHODS, RATE_FLOOR_ULPS, SolveOutcome, observed_rate
 from worker.tabular import TabularProblem
@@ -216,27 +217,6 @@ def test_progress_callback_gets_every_entry_in_order():
     assert all(b["seconds"] >= a["seconds"] for a, b in zip(seen, seen[1:]))
 
 
-class MemoryCheckpoint:
-    """A checkpoint store in memory that records every save; ``crash_after`` saves, it raises."""
-
-    def __init__(self, crash_after: int | None = None) -> None:
-        self.state: dict | None = None
-        self.saves: list[dict] = []
-        self.crash_after = crash_after
-
-    def load(self) -> dict | None:
-        return self.state
-
-    def save(self, state: dict) -> None:
-        self.state = state
-        self.saves.append(state)
-        if self.crash_after is not None and len(self.saves) >= self.crash_after:
-            self.crash_after = None
-            raise Crash
-
-
-class Crash(Exception):
-    """Stands in for a worker killed mid-solve."""
 
 
 @pytest.mark.parametrize("name", sorted(GENERAL_METHODS))

@@ -20,6 +20,7 @@ import pytest
 import scipy.optimize
 
 from tests._documents import array_tabular, idle_busy_worn
+from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from worker import solve
 from worker.errors import InvalidDocument
 from worker.solve import compile_document
@@ -254,27 +255,6 @@ def test_simulation_draws_the_actions_with_their_probabilities():
     assert all(a == "run" for s, a in zip(first["state_label"], first["action"]) if s == "busy")
 
 
-class Crash(Exception):
-    """Stands in for a worker killed mid-solve."""
-
-
-class MemoryCheckpoint:
-    """A checkpoint store in memory that records every save; after ``crash_after`` saves it raises once."""
-
-    def __init__(self, crash_after: int | None = None) -> None:
-        self.state: dict | None = None
-        self.saves: list[dict] = []
-        self.crash_after = crash_after
-
-    def load(self) -> dict | None:
-        return self.state
-
-    def save(self, state: dict) -> None:
-        self.state = state
-        self.saves.append(state)
-        if self.crash_after is not None and len(self.saves) >= self.crash_after:
-            self.crash_after = None
-            raise Crash
 
 
 def _tabular_factory():
