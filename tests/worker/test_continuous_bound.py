@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator
 
+from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
 
@@ -194,14 +195,7 @@ def _bits(result: dict[str, Any]) -> tuple:
 
 
 def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
-    calls: list[tuple[int, int]] = []
-    real = threadpool.run_blocks
-
-    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
-        calls.append((threads, len(blocks)))
-        return real(task, blocks, threads)
-
-    monkeypatch.setattr(threadpool, "run_blocks", spy)
+    calls = spy_run_blocks(monkeypatch)
     monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
     document = _household(20, "linear", skill=True)  # no hints: every step is the unrestricted search
     monkeypatch.setenv(environment.SOLVE_THREADS, "1")

@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator
 
+from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.continuous.interp_kernels import monotone_slopes, tensor_cubic, tensor_two
 from worker.document import parse_document
@@ -171,19 +172,12 @@ def test_three_states_run_the_general_tensor_product() -> None:
 
 def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
-    calls: list[int] = []
-    real = threadpool.run_blocks
-
-    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
-        calls.append(threads)
-        return real(task, blocks, threads)
-
-    monkeypatch.setattr(threadpool, "run_blocks", spy)
+    calls = spy_run_blocks(monkeypatch)
     results = []
     for threads in ("1", "2"):
         monkeypatch.setenv(environment.SOLVE_THREADS, threads)
         result = solve(_document(24, 12, "monotone_cubic"))
-        assert calls and calls[-1] == int(threads)
+        assert calls and calls[-1][0] == int(threads)
         results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["k_next"]).tobytes()))
     assert results[0] == results[1]

@@ -9,13 +9,13 @@ brute-force scan of a fine grid of savings.
 
 from __future__ import annotations
 
-import copy
 from typing import Any
 
 import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
+from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from tests._mixed_models import (
     A_MAX,
     BETA,
@@ -29,6 +29,7 @@ from tests._mixed_models import (
     household_document,
     independent_euler_errors,
 )
+from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.document import parse_document
 from worker.errors import InvalidDocument
@@ -201,45 +202,16 @@ def test_two_separable_economies_split_into_their_known_parts() -> None:
 
 def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
     monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
-    calls: list[int] = []
-    real = threadpool.run_blocks
-
-    def spy(task, blocks, threads):  # type: ignore[no-untyped-def]
-        calls.append(threads)
-        return real(task, blocks, threads)
-
-    monkeypatch.setattr(threadpool, "run_blocks", spy)
+    calls = spy_run_blocks(monkeypatch)
     results = []
     for threads in ("1", "2"):
         monkeypatch.setenv(environment.SOLVE_THREADS, threads)
         result = solve(household_document({"concave": True}))
-        assert calls and calls[-1] == int(threads)
+        assert calls and calls[-1][0] == int(threads)
         results.append((result["iterations"], result["error_bound"], np.array(result["value"]).tobytes(),
                         np.array(result["policy"]["save"]).tobytes(), result["policy_index"]["work"]))
     assert results[0] == results[1]
 
-
-class MemoryCheckpoint:
-    """A checkpoint store in memory (deep copies, as a store that serialises would); raises after ``crash_after``."""
-
-    def __init__(self, crash_after: int | None = None) -> None:
-        self.state: dict | None = None
-        self.saves = 0
-        self.crash_after = crash_after
-
-    def load(self) -> dict | None:
-        return copy.deepcopy(self.state)
-
-    def save(self, state: dict) -> None:
-        self.state = copy.deepcopy(state)
-        self.saves += 1
-        if self.crash_after is not None and self.saves >= self.crash_after:
-            self.crash_after = None
-            raise Crash
-
-
-class Crash(Exception):
-    """Stands in for a worker killed mid-solve."""
 
 
 def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
@@ -248,8 +220,8 @@ def test_a_resumed_solve_ends_where_the_uninterrupted_one_does() -> None:
     whole = METHODS["howard"](problem, np.zeros(problem.n), **options)
     counting = MemoryCheckpoint()
     METHODS["howard"](problem, np.zeros(problem.n), checkpoint=counting, **options)
-    assert counting.saves >= 3 and counting.state["policy"].shape == (problem.n, 2)
-    store = MemoryCheckpoint(crash_after=counting.saves // 2)
+    assert len(counting.saves) >= 3 and counting.state["policy"].shape == (problem.n, 2)
+    store = MemoryCheckpoint(crash_after=len(counting.saves) // 2)
     with pytest.raises(Crash):
         METHODS["howard"](problem, np.zeros(problem.n), checkpoint=store, **options)
     at = store.state["iteration"]

@@ -9,6 +9,7 @@ import pytest
 
 from tests._documents import GROWTH, LQ, TWO_CHOICES, random_values
 from tests._documents import grid_document as document
+from tests._thread_spy import spy_run_blocks
 from worker import environment, gridtables, solve, threadpool
 from worker.document import parse_document
 from worker.gridmodel import compile_grid
@@ -18,15 +19,7 @@ from worker.gridmodel import compile_grid
 def spied(monkeypatch: pytest.MonkeyPatch) -> list[tuple[int, int]]:
     """Every :func:`worker.threadpool.run_blocks` call as ``(threads, blocks)``; compiled kernels, no bridge."""
     monkeypatch.setenv("FIXQ_COLD_BRIDGE", "off")
-    calls: list[tuple[int, int]] = []
-    real = threadpool.run_blocks
-
-    def run_blocks(task, blocks, threads):  # type: ignore[no-untyped-def]
-        calls.append((threads, len(blocks)))
-        return real(task, blocks, threads)
-
-    monkeypatch.setattr(threadpool, "run_blocks", run_blocks)
-    return calls
+    return spy_run_blocks(monkeypatch)
 
 
 @pytest.fixture
