@@ -24,7 +24,7 @@ from worker._codegen.writer import JIT, KernelWriter, Lines
 from worker.expressions import Expression, names_in
 from worker.expressions.intervals import interval_source
 
-__all__ = ["BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan", "tighten_box"]
+__all__ = ["BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan", "tighten_box", "tree_interval"]
 
 BOUND_SLACK = 2.0**-40
 """Relative widening of a block's upper bound (of ``|reward bound| + |β·EV bound|``):
@@ -154,6 +154,21 @@ def _slope_bound(writer: KernelWriter, out: Lines, plan: SlopePlan) -> None:
                 out.add("descend = False")
 
 
+def tree_interval(tree: expressions.Node, varying: set[str], names: dict[str, str], lo_names: dict[str, str],
+                  hi_names: dict[str, str], prefix: str, out: Lines) -> tuple[str, str]:
+    """The kernel names of the lower and upper ends of ``tree`` over a box of choices: its own variable when it is
+    a name that does not move with them, else the lines of its interval bound (written to ``out``, names starting
+    ``prefix``) over ``lo_names``/``hi_names`` (the moving names' ends; every other name is its point value)."""
+    if isinstance(tree, expressions.Name) and tree.id not in varying:
+        return names[tree.id], names[tree.id]
+    for key, value in names.items():
+        lo_names.setdefault(key, value)
+        hi_names.setdefault(key, value)
+    lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, prefix)
+    out.extend(lines)
+    return lo, hi
+
+
 def _block_bound(writer: KernelWriter, out: Lines) -> None:
     """Sets ``dead`` (no allowed choice in inner block ``[a, b]``) or ``ub``, an upper bound of the objective."""
     model = writer.model
@@ -170,14 +185,7 @@ def _block_bound(writer: KernelWriter, out: Lines) -> None:
         tree = hoist.rewrite(expr.tree)
         out.extend(point_lines)
         point_lines.clear()
-        if isinstance(tree, expressions.Name) and tree.id not in varying:
-            return names[tree.id], names[tree.id]
-        for key, value in names.items():
-            lo_names.setdefault(key, value)
-            hi_names.setdefault(key, value)
-        lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, prefix)
-        out.extend(lines)
-        return lo, hi
+        return tree_interval(tree, varying, names, lo_names, hi_names, prefix, out)
 
     out.add("dead = True", "ub = -np.inf", "base = 0")
     out.add(f"c_lo = cgrid[{writer.meta.coff(inner)} + a]", f"c_hi = cgrid[{writer.meta.coff(inner)} + b]")

@@ -65,12 +65,10 @@ from dataclasses import dataclass
 from typing import Any
 
 from worker import expressions
-from worker._codegen.block_search import BOUND_SLACK, tighten_box
+from worker._codegen.block_search import BOUND_SLACK, tighten_box, tree_interval
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
 from worker.continuous.search import NARROW_TEXT, XTOL_SHARE, brent_loop
-from worker.expressions import Expression
-from worker.expressions.intervals import interval_source
 
 __all__ = [
     "BOUND_ARGUMENTS", "BOUND_CALL", "BOUND_TEXT", "LEAF_LEVEL", "STACK_ROWS", "BoundPlan", "bound_plan",
@@ -300,14 +298,7 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
     lo_names[choice], hi_names[choice] = "c_lo", "c_hi"
 
     def interval(tree: expressions.Node, prefix: str) -> tuple[str, str]:
-        if isinstance(tree, expressions.Name) and tree.id not in varying:
-            return names[tree.id], names[tree.id]
-        for key, value in names.items():
-            lo_names.setdefault(key, value)
-            hi_names.setdefault(key, value)
-        lines, lo, hi = interval_source(Expression.from_tree(tree), lo_names, hi_names, prefix)
-        bound.extend(lines)
-        return lo, hi
+        return tree_interval(tree, varying, names, lo_names, hi_names, prefix, bound)
 
     bound.add("ub = -np.inf")
     for k, tree in trees.items():
