@@ -1,8 +1,8 @@
 """Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
 
 :func:`run_search` solves the model once per trial value of the unknowns, each solve started from the last
-one's value, computes the stationary distribution of the policy and the conditions' aggregates
-(:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
+ones' values extrapolated to it (``_start``), computes the stationary distribution of the policy and the
+conditions' aggregates (:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
 :func:`worker.search_outer.find_root` (from the document's own value, steps to the root of a rational model
 of the residual, then ``scipy.optimize.brentq`` on the narrowest sign change; never outside the bracket),
 with several scipy's bounded least squares.
