@@ -408,3 +408,37 @@ def test_a_start_through_three_solves_saves_howard_iterations_over_a_line_throug
     assert three["unknowns"]["r"] == pytest.approx(two["unknowns"]["r"], abs=1e-9)
     # Measured: 37 Howard iterations in 8 trials where the line through two took 39.
     assert sum(row["iterations"] for row in three["trials"]) < sum(row["iterations"] for row in two["trials"])
+
+
+def test_a_search_factorises_a_banded_chain_in_the_states_order_and_a_scrambled_one_with_colamd() -> None:
+    import scipy.sparse as sp
+
+    n = 200
+    rng = np.random.default_rng(11)
+    banded = np.zeros((n, n))
+    for i in range(n):  # to the next states down and up (one closed class) and a few others near: half-bandwidth 3
+        columns = np.clip(np.r_[i - 1, i + 1, i + rng.integers(-3, 4, size=3)], 0, n - 1)
+        banded[i, columns] += rng.random(5) + 0.1
+    banded /= banded.sum(axis=1, keepdims=True)
+    order = np.random.default_rng(12).permutation(n)
+    scrambled = banded[np.ix_(order, order)]  # the same chain with its states renumbered at random
+    for dense, ordering in ((banded, "NATURAL"), (scrambled, "COLAMD")):
+        expected = _stationary_numpy(dense)
+        factors: dict[str, Any] = {}
+        pi, info = search_trials.trial_distribution(sp.csr_matrix(dense), expected, factors)
+        assert factors["ordering"] == ordering and info["method"] == "direct"
+        np.testing.assert_allclose(pi, expected, rtol=0, atol=1e-12)
+        # The choice is kept for the search's later factorisations (the next chain pinned elsewhere).
+        later = 0.5 * dense + 0.5 * dense @ dense
+        pi, info = search_trials.trial_distribution(sp.csr_matrix(later), np.roll(expected, 1), factors)
+        assert factors["ordering"] == ordering
+        np.testing.assert_allclose(pi, _stationary_numpy(later), rtol=0, atol=1e-12)
+    # A banded chain whose LU in the states' order fills past NATURAL_FILL times its entries: COLAMD instead.
+    factors = {}
+    original = search_trials.NATURAL_FILL
+    try:
+        search_trials.NATURAL_FILL = 0.5
+        search_trials.trial_distribution(sp.csr_matrix(banded), _stationary_numpy(banded), factors)
+    finally:
+        search_trials.NATURAL_FILL = original
+    assert factors["ordering"] == "COLAMD"
