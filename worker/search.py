@@ -53,15 +53,14 @@ from worker.search_trials import TrialModels, trial_distribution
 
 __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
-LOOSE_FACTOR = 1e5
-"""The first trial's inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
-only need the sign of the condition, not its digits)."""
-TIGHTEN = 0.05
-"""Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance`` (with
-`LOOSE_FACTOR`, the fifth trial's is the document's, as with 1e4 and 0.1 before; measured on the four cells of
-the Aiyagari bench: 113 Howard iterations in 29 trials where 1e4 and 0.1 took 126 in 29; 1e6 and 0.05 took
-109, but 1e7 and 0.03 took 15 trials at ρ = 0, where the first trials' noise spoilt the probe's slope, so the
-first trial stays a factor 100 short of that)."""
+LOOSE_FACTOR = 1e4
+"""The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
+only need the sign of the condition, not its digits).  Measured on the Aiyagari bench's four cells: 1e5 with
+`TIGHTEN` 0.05 took 112 Howard iterations in 28 trials where these took 127 in 30 at ``solver.tolerance``
+1e-8, but 196 in 43 where these took 95 in 27 at 1e-6 (the default): the factor multiplies whatever
+``solver.tolerance`` a document gives, and the first trials' noise then spoils the probe's slope."""
+TIGHTEN = 0.1
+"""Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
 CERTIFY_NEAR = 1e3
 """Once a trial's residuals are all within this many times ``search.tolerance``, every later trial is a
 certifying one (:mod:`worker.search_trials`); before, trials are guiding."""
