@@ -183,11 +183,13 @@ def _pinned(
     return pi / pi.sum()
 
 
-def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None) -> np.ndarray | None:
+def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None,
+              ordering: str = "COLAMD") -> np.ndarray | None:
     """``π`` with ``π (I − P) = 0`` and ``π_k = 1`` by one sparse LU of :func:`pinned_system`, or None
     (singular, not finite, or no diagonal entry in row ``k``); not normalised, and unchecked (the callers
     check the residual).  ``keep``, when given, receives the factorisation (``lu``; ``pin`` = ``k``; ``n``)
-    for later solves of nearby chains (:mod:`worker.search_trials`)."""
+    for later solves of nearby chains (:mod:`worker.search_trials`, which also chooses the column
+    ``ordering``: SuperLU's ``permc_spec``)."""
     from scipy.sparse import linalg as sla
 
     pinned = pinned_system(matrix, k)
@@ -195,7 +197,7 @@ def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None)
         return None
     system, rhs = pinned
     try:
-        lu = sla.splu(system)
+        lu = sla.splu(system, permc_spec=ordering)
     except RuntimeError:  # exactly singular: several closed classes
         return None
     pi = lu.solve(rhs)

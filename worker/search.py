@@ -1,8 +1,8 @@
 """Searches: the unknowns at which conditions on the stationary distribution hold, in one job.
 
 :func:`run_search` solves the model once per trial value of the unknowns, each solve started from the last
-one's value, computes the stationary distribution of the policy and the conditions' aggregates
-(:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
+ones' values extrapolated to it (``_start``), computes the stationary distribution of the policy and the
+conditions' aggregates (:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
 :func:`worker.search_outer.find_root` (from the document's own value, steps to the root of a rational model
 of the residual, then ``scipy.optimize.brentq`` on the narrowest sign change; never outside the bracket),
 with several scipy's bounded least squares.
@@ -55,12 +55,18 @@ __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE",
 
 LOOSE_FACTOR = 1e4
 """The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
-only need the sign of the condition, not its digits)."""
+only need the sign of the condition, not its digits).  Measured on the Aiyagari bench's four cells: 1e5 with
+`TIGHTEN` 0.05 took 112 Howard iterations in 28 trials where these took 127 in 30 at ``solver.tolerance``
+1e-8, but 196 in 43 where these took 95 in 27 at 1e-6 (the default): the factor multiplies whatever
+``solver.tolerance`` a document gives, and the first trials' noise then spoils the probe's slope."""
 TIGHTEN = 0.1
 """Each trial's inner tolerance is this times the previous one's, down to ``solver.tolerance``."""
 CERTIFY_NEAR = 1e3
 """Once a trial's residuals are all within this many times ``search.tolerance``, every later trial is a
 certifying one (:mod:`worker.search_trials`); before, trials are guiding."""
+START_POINTS = 3
+"""A trial starts from the polynomial through the last this many solves' values, extrapolated in the unknown
+(see ``_start``)."""
 SETTLE_STEPS = 3
 """Most certifying trials when one unknown's guiding trial comes close to the root (see ``settle`` in
 :func:`run_search`) before the root finder goes on with certifying trials."""
@@ -108,7 +114,8 @@ def run_search(
         Saved after the first trial that ends ``solver.checkpoint_s`` seconds or more after the last save (or
         the search's start), as a solve saves its own (``kind`` "search", ``fingerprint``, ``iteration`` =
         trials so far, ``log``, ``trials``, ``value`` = the last solve's value, at ``value_xs``;
-        ``previous_value`` at ``previous_xs``, the one before, or None; ``distribution``, the last solve's
+        ``previous_value`` at ``previous_xs``, the one before, or None; ``earlier_values`` at ``earlier_xs``,
+        those before it that the next start uses (see ``_start``); ``distribution``, the last solve's
         stationary distribution).  A matching saved state is resumed from: the root finder is deterministic,
         so it asks for the same trials again, and those already made are answered from the saved rows without
         solving; the next solve starts from the saved value.
@@ -137,7 +144,7 @@ def run_search(
     begun = time.perf_counter()
     saved_at = {"seconds": begun}  # when the checkpoint was last saved (the search's start: never)
     log: list[dict[str, Any]] = []
-    solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last two solves' unknowns and values
+    solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last solves' unknowns and values (START_POINTS)
     saved = checkpoint.load() if checkpoint is not None else None
     replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
@@ -152,6 +159,9 @@ def run_search(
             last["pi"] = np.asarray(saved["distribution"], dtype=np.float64)
         if saved.get("previous_xs") is not None and saved.get("previous_value") is not None:
             solved.insert(0, (tuple(saved["previous_xs"]), np.asarray(saved["previous_value"], dtype=np.float64)))
+        earlier = saved.get("earlier_values")
+        for xs_, value_ in reversed(list(zip(saved.get("earlier_xs") or [], [] if earlier is None else earlier))):
+            solved.insert(0, (tuple(xs_), np.asarray(value_, dtype=np.float64)))
 
     factors: dict[str, Any] = {}  # the last sparse LU of a trial's stationary distribution (trial_distribution)
 
@@ -170,7 +180,7 @@ def run_search(
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
-        del solved[:-2]
+        del solved[:-START_POINTS]
         last.update(value=solved[-1][1], xs=xs, tolerance=tolerance, doc=trial_doc, certified=certified, pi=pi,
                     info=info, problem=problem, outcome=outcome, residuals=residuals, status=outcome.status)
         row = {"unknowns": dict(zip(names, xs)), "residuals": residuals, "inner_tolerance": tolerance,
@@ -191,8 +201,11 @@ def run_search(
             checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
                              "trials": trials, "value": last["value"], "value_xs": list(xs), "distribution": pi,
                              # The solve before, from which the next start is extrapolated (see _start).
-                             "previous_xs": list(solved[0][0]) if len(solved) > 1 else None,
-                             "previous_value": solved[0][1] if len(solved) > 1 else None})
+                             "previous_xs": list(solved[-2][0]) if len(solved) > 1 else None,
+                             "previous_value": solved[-2][1] if len(solved) > 1 else None,
+                             "earlier_xs": [list(x) for x, _ in solved[:-2]],
+                             # One array (rows), which the service's store keeps as binary, as the others.
+                             "earlier_values": np.stack([v for _, v in solved[:-2]]) if len(solved) > 2 else None})
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}
@@ -282,17 +295,25 @@ def run_search(
 
 def _start(solved: list[tuple[tuple[float, ...], np.ndarray]], xs: tuple[float, ...],
            value: np.ndarray | None) -> np.ndarray | None:
-    """The next solve's starting value: with one unknown and two solves made, their values extrapolated
-    linearly in the unknown to ``xs`` (measured to save a third of Howard's iterations); else the last solve's
-    value (``value``, which a resumed search reads from its checkpoint)."""
-    if len(solved) < 2 or len(xs) != 1:
+    """The next solve's starting value: with one unknown, the last solves' values (up to `START_POINTS`, one
+    per distinct value of the unknown) extrapolated in the unknown to ``xs`` by the polynomial through them;
+    else the last solve's value (``value``, which a resumed search reads from its checkpoint)."""
+    if len(xs) != 1:
         return value
-    (x0,), v0 = solved[0]
-    (x1,), v1 = solved[1]
-    if x0 == x1 or v0.shape != v1.shape:
+    points: dict[float, np.ndarray] = {}
+    for (x,), v in solved:  # oldest first: a later solve at the same value replaces an earlier one
+        points.pop(x, None)
+        points[x] = v
+    nodes = list(points.items())[-START_POINTS:]
+    if len(nodes) < 2 or any(v.shape != nodes[-1][1].shape for _, v in nodes):
         return value
-    weight = (xs[0] - x1) / (x1 - x0)
-    start = v1 + weight * (v1 - v0)
+    start = np.zeros_like(nodes[-1][1])
+    for i, (xi, vi) in enumerate(nodes):
+        weight = 1.0
+        for j, (xj, _) in enumerate(nodes):
+            if j != i:
+                weight *= (xs[0] - xj) / (xi - xj)
+        start += weight * vi
     return start if np.isfinite(start).all() else value
 
 
