@@ -136,7 +136,7 @@ def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives(monkeypatch: p
     replace (egm._kinks, np.union1d, egm._rule_at on the grid), on random endogenous grids: ties with grid
     points, bends outside the grid, not-a-number states, earlier bends not among the choices."""
     from worker.continuous import egm
-    from worker.continuous.egm_rounds import grid_moved, union_sorted
+    from worker.continuous.egm_rounds import read_moved, union_sorted
 
     rng = np.random.default_rng(7)
     for _ in range(200):
@@ -163,9 +163,18 @@ def test_the_compiled_bookkeeping_gives_what_its_numpy_twin_gives(monkeypatch: p
         assert all(np.array_equal(f, e) for f, e in zip(found, expected, strict=True))
         union, rows = union_sorted(grid, expected[0])
         assert np.array_equal(union, np.union1d(grid, expected[0])) and np.array_equal(union[rows], grid)
-        if np.isfinite(states).all():
-            before = rng.uniform(0.0, 10.0, (grid.size, n_z))
-            out = np.empty_like(before)
-            read = egm._rule_at(grid, (states, choices), grid)
-            moved = grid_moved(egm._rule_at(grid, (states, choices), union), rows, before, out)
-            assert np.array_equal(out, read) and moved == np.abs(read - before).max()
+        before = rng.uniform(0.0, 10.0, (grid.size, n_z))
+        if rng.random() < 0.1:
+            before[rng.integers(0, grid.size), 0] = np.nan
+        out, tomorrow = np.empty_like(before), np.empty((union.size, n_z))
+        moved = read_moved(states, choices, grid[0], grid[-1], union, rows, before, tomorrow, out)
+        if not (np.diff(states, axis=0) > 0).all():
+            assert moved == -1.0
+            continue
+        read = egm._rule_at(grid, (states, choices), union)
+        plain = np.column_stack([np.interp(union, states[:, z], choices, left=grid[0], right=grid[-1])
+                                 for z in range(n_z)])  # numpy's own linear reading
+        assert np.allclose(tomorrow, np.clip(plain, grid[0], grid[-1]), rtol=0, atol=1e-12)
+        expected_move = np.abs(read[rows] - before).max()
+        assert np.array_equal(tomorrow, read) and np.array_equal(out, read[rows])
+        assert moved == expected_move or (np.isnan(moved) and np.isnan(expected_move))

@@ -52,7 +52,7 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
-from worker.continuous.egm_rounds import bends, grid_moved, union_sorted
+from worker.continuous.egm_rounds import bends, read_moved, union_sorted
 from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
@@ -175,8 +175,12 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
             if kinks is None or rounds % _BEND_EVERY == 0 or change <= _BEND_NEAR * POLICY_TOLERANCE * width:
                 kinks = _bends(grid, pairs, kinks, data.transition)
                 points, rows = union_sorted(grid, kinks[0]) if kinks[0].size else (grid, np.arange(n_k))
-            tomorrow = _rule_at(grid, pairs, points, ordered=True)
-            change = grid_moved(tomorrow, rows, policy, moved)
+            tomorrow = np.empty((points.size, n_z))
+            change = read_moved(k_today, pairs[1], low, float(grid[-1]), points, rows, policy, tomorrow, moved)
+            if change < 0.0:  # an endogenous grid not increasing: read it in numpy
+                tomorrow = _rule_at(grid, pairs, points, ordered=True)
+                moved = np.ascontiguousarray(tomorrow[rows])
+                change = float(np.abs(moved - policy).max())
             policy, moved = moved, policy
     egm_seconds = time.perf_counter() - started
     flat = np.ascontiguousarray(policy.reshape(-1))
