@@ -90,6 +90,12 @@ policy before it.  On the accuracy benchmark at 1,000 points the rounds took 0.0
 round, 0.056 s so (the same errors to three decimals; measured 2026-12-05)."""
 _BEND_NEAR = 1e3
 """See ``_BEND_EVERY`` (dimensionless)."""
+LEAP_EVERY = 10
+"""Fewest rounds between two leaps (count; 0: no leaps); see :class:`_Leaps`."""
+LEAP_STEADY = 0.01
+"""Largest spread of the last three ratios of successive moves for a leap (dimensionless)."""
+LEAP_MOST_RATE = 0.995
+"""A leap needs the ratios of successive moves below this (dimensionless)."""
 _NO_BENDS: Bends = (np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros(0))
 
 
@@ -154,6 +160,8 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     moved = np.empty((n_k, n_z))
     points, rows = grid, np.arange(n_k)
     tomorrow = np.full((n_k, n_z), low)
+    previous: tuple[np.ndarray, np.ndarray] | None = None
+    leaps = _Leaps()
     with np.errstate(all="ignore"):
         while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
             if c_star is None:
@@ -168,7 +176,7 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
             if not np.isfinite(k_today).all():
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
-            pairs = (k_today, points)
+            previous, pairs = pairs, (k_today, points)
             rounds += 1
             # The next round's choices (the grid and this policy's bends) and the policy read there; the policy on
             # the grid is among them, and its move from the last round's is the stopping rule's.
@@ -182,10 +190,17 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 moved = np.ascontiguousarray(tomorrow[rows])
                 change = float(np.abs(moved - policy).max())
             policy, moved = moved, policy
+            rate = leaps.rate(change) if change > POLICY_TOLERANCE * width and previous is not None else None
+            if rate is not None:
+                # Aitken's leap: the rest of a geometric tail of moves at this rate, from this round's policy.
+                earlier = _rule_at(grid, previous, points, ordered=True)
+                tomorrow = np.clip(tomorrow + (tomorrow - earlier) * (rate / (1.0 - rate)), low, grid[-1])
+                policy = np.ascontiguousarray(tomorrow[rows])
+                moved = np.empty_like(policy)
     egm_seconds = time.perf_counter() - started
     flat = np.ascontiguousarray(policy.reshape(-1))
     try:
-        value = _policy_value(problem, flat, tolerance)
+        value = _policy_value(problem, flat, tolerance, _envelope_value(problem, found, grid, policy))
     except ValueError as error:
         raise InvalidDocument.at("solver.method", f"the endogenous grid method's policy is not allowed by the "
                                  f"model ({error}); use howard") from error
@@ -196,6 +211,40 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     outcome.policy = flat
     problem.egm_rule = lambda k: _rule_at(grid, pairs, np.asarray(k, dtype=np.float64).reshape(-1))
     return outcome
+
+
+class _Leaps:
+    """When the rounds leap (Aitken's extrapolation): :meth:`rate`."""
+
+    def __init__(self) -> None:
+        self.moves: list[float] = []
+        self.since = 0
+        self.on = LEAP_EVERY > 0
+        self.count = 0
+        self.before: float | None = None
+
+    def rate(self, change: float) -> float | None:
+        """Record a round's move (the largest move of a choice on the grid); the rate to leap with now, or None.
+
+        A leap needs ``LEAP_EVERY`` rounds since the last, and the last three ratios of successive moves
+        steady (within ``LEAP_STEADY`` of each other) and below ``LEAP_MOST_RATE``: the moves then shrink
+        geometrically, and the policy's distance to the fixed point is about ``move·ρ/(1 − ρ)`` along the
+        last move.  The first round after a leap measures it: when its move is not below the move before
+        the leap, the leap did not pay and the rounds leap no more."""
+        self.since += 1
+        if self.before is not None:
+            self.on = self.on and change < self.before
+            self.before = None
+            self.moves = [change]
+            return None
+        self.moves = [*self.moves[-3:], change]
+        if not self.on or self.since < LEAP_EVERY or len(self.moves) < 4:
+            return None
+        rates = [after / before for before, after in zip(self.moves, self.moves[1:])]
+        if not (all(0.0 < r < LEAP_MOST_RATE for r in rates) and max(rates) - min(rates) <= LEAP_STEADY):
+            return None
+        self.since, self.before, self.count = 0, change, self.count + 1
+        return rates[-1]
 
 
 def _power(data: ModelData, found: EulerSetup, grid: np.ndarray) -> tuple[float, float] | None:
@@ -337,11 +386,33 @@ def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], po
     return k
 
 
-def _policy_value(problem: Any, policy: np.ndarray, tolerance: float) -> np.ndarray:
-    """``v_σ`` under the model's interpolation: evaluation steps until their span is far below the tolerance."""
+def _envelope_value(problem: Any, found: EulerSetup, grid: np.ndarray, policy: np.ndarray) -> np.ndarray | None:
+    """A start for :func:`_policy_value` (n,): the policy's value up to a constant per shock point by the envelope
+    condition (its slope in the state is ``∂r/∂k`` at the policy, integrated along the grid by trapezoids), the
+    constants those that make one evaluation step's mean move at each shock point vanish for a move constant in
+    the state (``(I − β P) c = mean move``); None where it is not finite."""
+    data = problem.model_data
+    beta = problem.discount
+    with np.errstate(all="ignore"):
+        env = environment(data, found, grid[:, None], data.shock_table[None, :, :], policy)
+        slope = slope_at(found.state_slope, env, policy.shape)
+        value = np.zeros(policy.shape)
+        value[1:] = np.cumsum(0.5 * (slope[1:] + slope[:-1]) * np.diff(grid)[:, None], axis=0)
+        if not np.isfinite(value).all():
+            return None
+        flat = np.ascontiguousarray(value.reshape(-1))
+        moved = (problem.policy_step(flat, np.ascontiguousarray(policy.reshape(-1))) - flat).reshape(policy.shape)
+        constants = np.linalg.solve(np.eye(data.n_shocks) - beta * data.transition, moved.mean(axis=0))
+        start = np.ascontiguousarray((value + constants).reshape(-1))
+    return start if np.isfinite(start).all() else None
+
+
+def _policy_value(problem: Any, policy: np.ndarray, tolerance: float, start: np.ndarray | None = None) -> np.ndarray:
+    """``v_σ`` under the model's interpolation: evaluation steps from ``start`` (or zeros) until their span is far
+    below the tolerance."""
     beta = problem.discount
     stop = 0.01 * tolerance * (1.0 - beta) / beta
-    value = np.zeros(problem.n)
+    value = np.zeros(problem.n) if start is None else start
     total = 0
     while total < 1_000_000:
         value, done, span = problem.policy_steps(value, policy, 1000, stop)
