@@ -27,10 +27,30 @@ and the new policy on the grid interpolates ``k'_j`` linearly against
 binds), above ``k*_last`` its upper end.  It stops when no choice moves by
 more than ``POLICY_TOLERANCE`` of the grid's width, or after ``MAX_ROUNDS``.
 
+While the moves shrink geometrically at a steady rate ``ρ`` (the ratios of
+successive largest moves), the rounds *leap* (Aitken's extrapolation, every
+``LEAP_EVERY`` rounds at most): the policy is moved on by ``move·ρ/(1 − ρ)``,
+the rest of that geometric tail (:func:`_leap`, :class:`_Leaps`).  A leap is
+not a round and the stopping rule is judged on rounds only, so the answer is
+the same fixed point's: the policy returned is always a round's, and its move
+is within the tolerance.  On the accuracy benchmark (7 income points) the
+leaps cut the rounds from 378 to 299, 252 and 253 at 200, 1,000 and 5,000
+points, and the policy ends closer to the fixed point (3.4e-9 against 1.3e-8
+at 1,000 points, measured from rounds run to 1e-14; the means of the Euler
+errors then match the fixed point's to three decimals).  They do not always
+pay: on the tests' two-state household they save 1 to 5 rounds of 200 to
+400, and on a five-state chain (assets to 50, 150 points) they take 344
+rounds against 337 (measured 2026-12-05).  The slow part of the
+rounds is not a geometric tail but the bends of the policy, carried one link
+of the chain of choices per round from where the constraint binds up the
+grid; no leap shortens that.
+
 Certification
 -------------
 The policy's value ``v_σ`` is computed under the model's interpolation
-(Howard evaluation steps to a span far below the tolerance), and then the
+(Howard evaluation steps until the MacQueen–Porteus bracket of the last is
+within the tolerance, from the value the envelope condition gives up to a
+constant per shock point: :func:`_envelope_value`), and then the
 ordinary solver (Howard's method) runs from it: a Bellman step of the fitted
 operator at ``v_σ`` gives the error bound (MacQueen–Porteus), as for every
 method, and when it does not meet the tolerance yet (the method's policy
@@ -92,10 +112,12 @@ _BEND_NEAR = 1e3
 """See ``_BEND_EVERY`` (dimensionless)."""
 LEAP_EVERY = 10
 """Fewest rounds between two leaps (count; 0: no leaps); see :class:`_Leaps`."""
-LEAP_STEADY = 0.01
+LEAP_STEADY = 0.03
 """Largest spread of the last three ratios of successive moves for a leap (dimensionless)."""
 LEAP_MOST_RATE = 0.995
 """A leap needs the ratios of successive moves below this (dimensionless)."""
+LEAP_MOST_GROWTH = 100.0
+"""The rounds leap no more when the first move after a leap is more than this many times the one before it."""
 _NO_BENDS: Bends = (np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros(0))
 
 
@@ -162,8 +184,9 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     tomorrow = np.full((n_k, n_z), low)
     previous: tuple[np.ndarray, np.ndarray] | None = None
     leaps = _Leaps()
+    limit = min(max_iterations, MAX_ROUNDS)
     with np.errstate(all="ignore"):
-        while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
+        while rounds < limit and change > POLICY_TOLERANCE * width:
             if c_star is None:
                 c_star = np.full((points.size, n_z), np.nan)
             elif c_star.shape != (points.size, n_z):
@@ -190,11 +213,10 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 moved = np.ascontiguousarray(tomorrow[rows])
                 change = float(np.abs(moved - policy).max())
             policy, moved = moved, policy
-            rate = leaps.rate(change) if change > POLICY_TOLERANCE * width and previous is not None else None
+            going = change > POLICY_TOLERANCE * width and rounds < limit and previous is not None
+            rate = leaps.rate(change) if going else None
             if rate is not None:
-                # Aitken's leap: the rest of a geometric tail of moves at this rate, from this round's policy.
-                earlier = _rule_at(grid, previous, points, ordered=True)
-                tomorrow = np.clip(tomorrow + (tomorrow - earlier) * (rate / (1.0 - rate)), low, grid[-1])
+                tomorrow = _leap(grid, previous, points, tomorrow, rate)
                 policy = np.ascontiguousarray(tomorrow[rows])
                 moved = np.empty_like(policy)
     egm_seconds = time.perf_counter() - started
@@ -221,7 +243,7 @@ class _Leaps:
         self.since = 0
         self.on = LEAP_EVERY > 0
         self.count = 0
-        self.before: float | None = None
+        self.leapt_at = np.inf
 
     def rate(self, change: float) -> float | None:
         """Record a round's move (the largest move of a choice on the grid); the rate to leap with now, or None.
@@ -229,22 +251,35 @@ class _Leaps:
         A leap needs ``LEAP_EVERY`` rounds since the last, and the last three ratios of successive moves
         steady (within ``LEAP_STEADY`` of each other) and below ``LEAP_MOST_RATE``: the moves then shrink
         geometrically, and the policy's distance to the fixed point is about ``move·ρ/(1 − ρ)`` along the
-        last move.  The first round after a leap measures it: when its move is not below the move before
-        the leap, the leap did not pay and the rounds leap no more."""
+        last move.  A leap moves the policy by the fast parts of the last move too, so the next rounds' moves
+        may first grow; the rounds leap no more once the move, when a leap is due, is not below the move at
+        the last leap (the leaps no longer pay), or the first move after a leap is more than
+        ``LEAP_MOST_GROWTH`` times the one before it."""
         self.since += 1
-        if self.before is not None:
-            self.on = self.on and change < self.before
-            self.before = None
-            self.moves = [change]
-            return None
+        if self.since == 1 and self.count:
+            self.on = self.on and change <= LEAP_MOST_GROWTH * self.leapt_at
         self.moves = [*self.moves[-3:], change]
         if not self.on or self.since < LEAP_EVERY or len(self.moves) < 4:
             return None
         rates = [after / before for before, after in zip(self.moves, self.moves[1:])]
         if not (all(0.0 < r < LEAP_MOST_RATE for r in rates) and max(rates) - min(rates) <= LEAP_STEADY):
             return None
-        self.since, self.before, self.count = 0, change, self.count + 1
+        if not change < self.leapt_at:
+            self.on = False
+            return None
+        self.since, self.leapt_at, self.count, self.moves = 0, change, self.count + 1, []
         return rates[-1]
+
+
+def _leap(grid: np.ndarray, previous: tuple[np.ndarray, np.ndarray], points: np.ndarray, tomorrow: np.ndarray,
+          rate: float) -> np.ndarray:
+    """Aitken's leap: ``tomorrow`` (the policy at ``points``) moved on by the rest of a geometric tail of its last
+    move (from the policy of the ``previous`` round's pairs) at ``rate``, ``move·rate/(1 − rate)``; not where the
+    choice is at an end of the grid in either round (where the policy bends), and clipped to the grid."""
+    low, high = float(grid[0]), float(grid[-1])
+    earlier = _rule_at(grid, previous, points, ordered=True)
+    free = (tomorrow > low) & (tomorrow < high) & (earlier > low) & (earlier < high)
+    return np.clip(tomorrow + np.where(free, tomorrow - earlier, 0.0) * (rate / (1.0 - rate)), low, high)
 
 
 def _power(data: ModelData, found: EulerSetup, grid: np.ndarray) -> tuple[float, float] | None:
@@ -408,10 +443,14 @@ def _envelope_value(problem: Any, found: EulerSetup, grid: np.ndarray, policy: n
 
 
 def _policy_value(problem: Any, policy: np.ndarray, tolerance: float, start: np.ndarray | None = None) -> np.ndarray:
-    """``v_σ`` under the model's interpolation: evaluation steps from ``start`` (or zeros) until their span is far
-    below the tolerance."""
+    """``v_σ`` under the model's interpolation: evaluation steps from ``start`` (or zeros) until the span of their
+    move is within ``tolerance·(1 − β)/β`` (the step's MacQueen–Porteus bracket is then within the tolerance).
+
+    Only the solver's start: its own bound certifies.  On the accuracy benchmark at 1,000 points, 460 steps
+    from zeros to 0.01 of that span, 313 from the envelope condition's value, 237 from it to the span itself,
+    with the same Howard iterations and evaluation steps after it (3 and 136; measured 2026-12-05)."""
     beta = problem.discount
-    stop = 0.01 * tolerance * (1.0 - beta) / beta
+    stop = tolerance * (1.0 - beta) / beta
     value = np.zeros(problem.n) if start is None else start
     total = 0
     while total < 1_000_000:
