@@ -262,7 +262,7 @@ def test_a_leap_waits_for_steady_moves_and_stops_when_it_no_longer_pays(monkeypa
     assert np.array_equal(leapt[~free], tomorrow[~free]) and free.sum() > 10
 
 
-def test_the_policy_value_from_the_envelope_start_is_a_sparse_solves(monkeypatch: pytest.MonkeyPatch) -> None:
+def test_the_policy_value_from_the_envelope_start_agrees_with_a_sparse_solve(monkeypatch: pytest.MonkeyPatch) -> None:
     """The policy's value (egm._policy_value) from the envelope condition's start against scipy's sparse LU of
     (I − β P_σ) v = r_σ, up to a constant (the solver's bracket answers for a constant): within the stop, and in
     fewer evaluation steps than from zeros."""
