@@ -11,8 +11,8 @@ function here gives exactly what its numpy twin in :mod:`worker.continuous.egm` 
 * :func:`union_sorted` — ``np.union1d`` of the grid and the bends, and the grid's rows among them;
 * :func:`read_moved` — the policy read along the endogenous grid at the next round's choices
   (:func:`worker.continuous.egm._rule_at`), the policy on the grid (its rows among them) and its
-  largest move from the last, in one pass (as two calls, they took 18 ms of the 58 ms of the rounds
-  on the accuracy benchmark at 1,000 points; fused, about 13 ms; measured 2026-12-05).
+  largest move from the last, in one pass (as two calls, 19 ms of the 58 ms of the rounds on the
+  accuracy benchmark at 1,000 points; fused, 17 ms, one profile each; measured 2026-12-05).
 * :func:`root` — ``x ** e`` with the exponents of the common rewards' inverse marginal (CRRA with
   γ = 2 or 1/2, log) as a square root or a division, within an ulp of the power.
 """
