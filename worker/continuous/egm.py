@@ -27,10 +27,34 @@ and the new policy on the grid interpolates ``k'_j`` linearly against
 binds), above ``k*_last`` its upper end.  It stops when no choice moves by
 more than ``POLICY_TOLERANCE`` of the grid's width, or after ``MAX_ROUNDS``.
 
+While the moves shrink geometrically at a steady rate ``ρ`` (the ratios of
+successive largest moves), the rounds *leap* (Aitken's extrapolation, every
+``LEAP_EVERY`` rounds at most): the policy is moved on by ``move·ρ/(1 − ρ)``,
+the rest of that geometric tail (:func:`_leap`, :class:`_Leaps`).  A leap is
+not a round and the stopping rule is judged on rounds only, so the answer is
+the same fixed point's: the policy returned is always a round's, and its move
+is within the tolerance.  On the accuracy benchmark (7 income points) the
+leaps cut the rounds from 378 to 299, 252 and 253 at 200, 1,000 and 5,000
+points, and the policy ends as close to the fixed point as the stopping rule
+promises (at 1,000 points 3.4e-9 from rounds run to 1e-14, against 1.3e-8
+without leaps, the means of the Euler errors matching the fixed point's to
+three decimals; at 200 points of the tests' seven-point household 2.6e-8
+against 1.2e-8).  They do not always pay: on the tests' two-state household
+they save 1 to 5 rounds of 200 to 400, and on a five-state chain (assets to
+50, 150 points) they take 344 rounds against 337 (measured 2026-12-05).  The
+slow part of the rounds is not a geometric tail but the bends of the policy,
+carried one link of the chain of choices per round from where the constraint
+binds up the grid; no leap shortens that, and neither did starting from
+rounds on every fifth grid point (tried: 268 rounds on the grid instead of
+378, the coarse rounds' bends then travelling up the fine grid the same way,
+and no time saved with the coarse rounds counted).
+
 Certification
 -------------
 The policy's value ``v_σ`` is computed under the model's interpolation
-(Howard evaluation steps to a span far below the tolerance), and then the
+(Howard evaluation steps to a span far below the tolerance, from the value
+the envelope condition gives up to a constant per shock point:
+:func:`_envelope_value`), and then the
 ordinary solver (Howard's method) runs from it: a Bellman step of the fitted
 operator at ``v_σ`` gives the error bound (MacQueen–Porteus), as for every
 method, and when it does not meet the tolerance yet (the method's policy
@@ -52,7 +76,7 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
-from worker.continuous.egm_rounds import bends, grid_moved, union_sorted
+from worker.continuous.egm_rounds import bends, read_moved, union_sorted
 from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
@@ -90,6 +114,14 @@ policy before it.  On the accuracy benchmark at 1,000 points the rounds took 0.0
 round, 0.056 s so (the same errors to three decimals; measured 2026-12-05)."""
 _BEND_NEAR = 1e3
 """See ``_BEND_EVERY`` (dimensionless)."""
+LEAP_EVERY = 10
+"""Fewest rounds between two leaps (count; 0: no leaps); see :class:`_Leaps`."""
+LEAP_STEADY = 0.03
+"""Largest spread of the last three ratios of successive moves for a leap (dimensionless)."""
+LEAP_MOST_RATE = 0.995
+"""A leap needs the ratios of successive moves below this (dimensionless)."""
+LEAP_MOST_GROWTH = 100.0
+"""The rounds leap no more when the first move after a leap is more than this many times the one before it."""
 _NO_BENDS: Bends = (np.zeros(0), np.zeros(0, dtype=np.int64), np.zeros(0))
 
 
@@ -154,8 +186,11 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     moved = np.empty((n_k, n_z))
     points, rows = grid, np.arange(n_k)
     tomorrow = np.full((n_k, n_z), low)
+    previous: tuple[np.ndarray, np.ndarray] | None = None
+    leaps = _Leaps()
+    limit = min(max_iterations, MAX_ROUNDS)
     with np.errstate(all="ignore"):
-        while rounds < min(max_iterations, MAX_ROUNDS) and change > POLICY_TOLERANCE * width:
+        while rounds < limit and change > POLICY_TOLERANCE * width:
             if c_star is None:
                 c_star = np.full((points.size, n_z), np.nan)
             elif c_star.shape != (points.size, n_z):
@@ -168,20 +203,30 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
             if not np.isfinite(k_today).all():
                 raise InvalidDocument.at("solver.method", "the endogenous grid method broke down: the first-order "
                                          "condition has no solution at some grid points; use howard")
-            pairs = (k_today, points)
+            previous, pairs = pairs, (k_today, points)
             rounds += 1
             # The next round's choices (the grid and this policy's bends) and the policy read there; the policy on
             # the grid is among them, and its move from the last round's is the stopping rule's.
             if kinks is None or rounds % _BEND_EVERY == 0 or change <= _BEND_NEAR * POLICY_TOLERANCE * width:
                 kinks = _bends(grid, pairs, kinks, data.transition)
                 points, rows = union_sorted(grid, kinks[0]) if kinks[0].size else (grid, np.arange(n_k))
-            tomorrow = _rule_at(grid, pairs, points, ordered=True)
-            change = grid_moved(tomorrow, rows, policy, moved)
+            tomorrow = np.empty((points.size, n_z))
+            change = read_moved(k_today, pairs[1], low, float(grid[-1]), points, rows, policy, tomorrow, moved)
+            if change < 0.0:  # an endogenous grid not increasing: read it in numpy
+                tomorrow = _rule_at(grid, pairs, points, ordered=True)
+                moved = np.ascontiguousarray(tomorrow[rows])
+                change = float(np.abs(moved - policy).max())
             policy, moved = moved, policy
+            going = change > POLICY_TOLERANCE * width and rounds < limit and previous is not None
+            rate = leaps.rate(change) if going else None
+            if rate is not None:
+                tomorrow = _leap(grid, previous, points, tomorrow, rate)
+                policy = np.ascontiguousarray(tomorrow[rows])
+                moved = np.empty_like(policy)
     egm_seconds = time.perf_counter() - started
     flat = np.ascontiguousarray(policy.reshape(-1))
     try:
-        value = _policy_value(problem, flat, tolerance)
+        value = _policy_value(problem, flat, tolerance, _envelope_value(problem, found, grid, policy))
     except ValueError as error:
         raise InvalidDocument.at("solver.method", f"the endogenous grid method's policy is not allowed by the "
                                  f"model ({error}); use howard") from error
@@ -192,6 +237,53 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     outcome.policy = flat
     problem.egm_rule = lambda k: _rule_at(grid, pairs, np.asarray(k, dtype=np.float64).reshape(-1))
     return outcome
+
+
+class _Leaps:
+    """When the rounds leap (Aitken's extrapolation): :meth:`rate`."""
+
+    def __init__(self) -> None:
+        self.moves: list[float] = []
+        self.since = 0
+        self.on = LEAP_EVERY > 0
+        self.count = 0
+        self.leapt_at = np.inf
+
+    def rate(self, change: float) -> float | None:
+        """Record a round's move (the largest move of a choice on the grid); the rate to leap with now, or None.
+
+        A leap needs ``LEAP_EVERY`` rounds since the last, and the last three ratios of successive moves
+        steady (within ``LEAP_STEADY`` of each other) and below ``LEAP_MOST_RATE``: the moves then shrink
+        geometrically, and the policy's distance to the fixed point is about ``move·ρ/(1 − ρ)`` along the
+        last move.  A leap moves the policy by the fast parts of the last move too, so the next rounds' moves
+        may first grow; the rounds leap no more once the move, when a leap is due, is not below the move at
+        the last leap (the leaps no longer pay), or the first move after a leap is more than
+        ``LEAP_MOST_GROWTH`` times the one before it."""
+        self.since += 1
+        if self.since == 1 and self.count:
+            self.on = self.on and change <= LEAP_MOST_GROWTH * self.leapt_at
+        self.moves = [*self.moves[-3:], change]
+        if not self.on or self.since < LEAP_EVERY or len(self.moves) < 4:
+            return None
+        rates = [after / before for before, after in zip(self.moves, self.moves[1:])]
+        if not (all(0.0 < r < LEAP_MOST_RATE for r in rates) and max(rates) - min(rates) <= LEAP_STEADY):
+            return None
+        if not change < self.leapt_at:
+            self.on = False
+            return None
+        self.since, self.leapt_at, self.count, self.moves = 0, change, self.count + 1, []
+        return rates[-1]
+
+
+def _leap(grid: np.ndarray, previous: tuple[np.ndarray, np.ndarray], points: np.ndarray, tomorrow: np.ndarray,
+          rate: float) -> np.ndarray:
+    """Aitken's leap: ``tomorrow`` (the policy at ``points``) moved on by the rest of a geometric tail of its last
+    move (from the policy of the ``previous`` round's pairs) at ``rate``, ``move·rate/(1 − rate)``; not where the
+    choice is at an end of the grid in either round (where the policy bends), and clipped to the grid."""
+    low, high = float(grid[0]), float(grid[-1])
+    earlier = _rule_at(grid, previous, points, ordered=True)
+    free = (tomorrow > low) & (tomorrow < high) & (earlier > low) & (earlier < high)
+    return np.clip(tomorrow + np.where(free, tomorrow - earlier, 0.0) * (rate / (1.0 - rate)), low, high)
 
 
 def _power(data: ModelData, found: EulerSetup, grid: np.ndarray) -> tuple[float, float] | None:
@@ -333,11 +425,38 @@ def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], po
     return k
 
 
-def _policy_value(problem: Any, policy: np.ndarray, tolerance: float) -> np.ndarray:
-    """``v_σ`` under the model's interpolation: evaluation steps until their span is far below the tolerance."""
+def _envelope_value(problem: Any, found: EulerSetup, grid: np.ndarray, policy: np.ndarray) -> np.ndarray | None:
+    """A start for :func:`_policy_value` (n,): the policy's value up to a constant per shock point by the envelope
+    condition (its slope in the state is ``∂r/∂k`` at the policy, integrated along the grid by trapezoids), the
+    constants those that make one evaluation step's mean move at each shock point vanish for a move constant in
+    the state (``(I − β P) c = mean move``); None where it is not finite."""
+    data = problem.model_data
+    beta = problem.discount
+    with np.errstate(all="ignore"):
+        env = environment(data, found, grid[:, None], data.shock_table[None, :, :], policy)
+        slope = slope_at(found.state_slope, env, policy.shape)
+        value = np.zeros(policy.shape)
+        value[1:] = np.cumsum(0.5 * (slope[1:] + slope[:-1]) * np.diff(grid)[:, None], axis=0)
+        if not np.isfinite(value).all():
+            return None
+        flat = np.ascontiguousarray(value.reshape(-1))
+        moved = (problem.policy_step(flat, np.ascontiguousarray(policy.reshape(-1))) - flat).reshape(policy.shape)
+        constants = np.linalg.solve(np.eye(data.n_shocks) - beta * data.transition, moved.mean(axis=0))
+        start = np.ascontiguousarray((value + constants).reshape(-1))
+    return start if np.isfinite(start).all() else None
+
+
+def _policy_value(problem: Any, policy: np.ndarray, tolerance: float, start: np.ndarray | None = None) -> np.ndarray:
+    """``v_σ`` under the model's interpolation: evaluation steps from ``start`` (or zeros) until the span of their
+    move is within ``0.01·tolerance·(1 − β)/β`` (the step's MacQueen–Porteus bracket within 1% of the tolerance).
+
+    Only the solver's start: its own bound certifies.  On the accuracy benchmark at 1,000 points, 460 steps
+    from zeros, 313 from the envelope condition's value (:func:`_envelope_value`).  Stopping at the tolerance's
+    own span (237 steps) saved 2 ms there, but at 5,000 points the solver's second iteration then missed the
+    tolerance by 5% (1.05e-8 against 9.9e-9) and it took a third (measured 2026-12-05)."""
     beta = problem.discount
     stop = 0.01 * tolerance * (1.0 - beta) / beta
-    value = np.zeros(problem.n)
+    value = np.zeros(problem.n) if start is None else start
     total = 0
     while total < 1_000_000:
         value, done, span = problem.policy_steps(value, policy, 1000, stop)
