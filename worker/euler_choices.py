@@ -51,7 +51,7 @@ from worker.euler_states import grid_rule, states_errors
 from worker.feasibility import ModelData
 
 __all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_choices", "pool_periods",
-           "several_next_of"]
+           "setting_setups", "several_next_of"]
 
 _PER_CHOICE = ("state", "define", "max_log10", "mean_log10", "points", "constrained", "undefined", "profile",
                "weighted_mean_log10")
@@ -69,6 +69,13 @@ def choices_setup(data: ModelData) -> list[EulerSetup] | str | None:
     are not measured, or None when the model is not one of several ``next_of`` choices and no other."""
     if not several_next_of(data):
         return None
+    return setting_setups(data)
+
+
+def setting_setups(data: ModelData) -> list[EulerSetup] | str | None:
+    """Each ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices (the others,
+    companions), a note why the errors are not measured, or None when one is a menu or its state's grid has one
+    point."""
     found: list[tuple[int, EulerSetup]] = []
     for position, j in enumerate(data.setter):
         if j is None:

@@ -38,6 +38,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     from worker.euler import EulerSetup, euler_errors, grid_policy, setup
     from worker.euler_setup import needs_value
     from worker.euler_states import solve_value
+    from worker.euler_within import within_note
     from worker.feasibility import period_params
 
     data = getattr(problem, "model_data", None)
@@ -188,7 +189,8 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                f"{result.get('by_choice', {}).get(problem.choice, {}).get('constrained', 0):,} test points "
                "skipped in all periods (where a limit may bind, or tomorrow's best "
                "combination of the others switches next to tomorrow's state, where the value function has a kink); "
-               "the other choices' own errors read every policy linearly between grid points" if mixed else
+               "the other choices' own errors read every policy linearly between grid points"
+               + within_note(data) if mixed else
                "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
                "; the policy between grid points is each period's own search" if continuous else ""))

@@ -2,9 +2,11 @@
 
 An invented workshop choosing tomorrow's machines ``k`` anywhere in their interval (``k_next``, continuous,
 ``next_of`` ``k``) and tomorrow's tools ``h`` on the grid of ``h`` (``h_next``, ``next_of`` ``h``): every choice
-sets a state, one of them continuous (:func:`setters_setup`; a discrete choice that sets no state beside them
-is not measured here, a note says so).  Each choice has its own Euler equation (Judd 1992), as in
-:mod:`worker.euler_choices`.
+sets a state, one of them continuous (:func:`setters_setup`), or, beside them, discrete choices that set no
+state (its daily effort, say), maximised out within the period (:mod:`worker.euler_within`: where no law of
+motion and no draw's probability uses them; a note says which does otherwise).  Each choice that sets a state
+has its own Euler equation (Judd 1992), as in :mod:`worker.euler_choices`; a choice that sets none has no
+equation of its own and is held at its value in the others'.
 
 The continuous choice's equation
 --------------------------------
@@ -41,6 +43,9 @@ Each discrete choice's own equation is measured as :mod:`worker.euler_choices` m
 to its grid: along its own state between grid points, every choice's policy read multilinearly from the
 solved grid policy (:func:`worker.euler_choices.grid_rules`), the continuous one's too — the search cannot
 be asked for an ``h'`` between grid points, and the error so measured shows how coarse the grid of ``h`` is.
+A choice that sets no state is there the value of its grid with the best expected reward today, the setting
+choices at their values read so (:func:`worker.euler_within.maximised`), today and tomorrow; in the continuous
+choice's equation it is the search's, part of the combination whose switches skip a point.
 
 Reported: the pool of :func:`worker.euler_choices.pool_choices` (``by_choice`` each choice's own).  A finite
 horizon measures each period against the next (:func:`worker.horizon_euler.euler_by_period` passes ``tomorrow``).
@@ -54,25 +59,33 @@ import numpy as np
 
 from worker.continuous.mixed_euler import Search, searcher
 from worker.euler import between_points
-from worker.euler_choices import choices_setup, grid_rules, pool_choices, several_next_of
+from worker.euler_choices import grid_rules, pool_choices, setting_setups
 from worker.euler_points import PointsRule, combinations, environment, next_points
 from worker.euler_setup import EulerSetup
 from worker.euler_states import states_errors
+from worker.euler_within import maximised, no_state_choices, within_note, within_reason
 from worker.feasibility import ModelData
 
 __all__ = ["continuous_part", "setters_errors", "setters_report", "setters_setup"]
 
 
 def setters_setup(problem: Any, data: ModelData) -> list[EulerSetup] | str | None:
-    """Every choice's :class:`~worker.euler_setup.EulerSetup` (the model's order) of a continuous choice beside
-    discrete ones of which one sets a state; a note why the errors are not measured; None when no other choice
-    sets a state (:mod:`worker.continuous.mixed_euler`'s case)."""
+    """Every ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` (the model's order) of a continuous
+    choice beside discrete ones of which one sets a state (the others setting none, maximised out within the
+    period: :mod:`worker.euler_within`); a note why the errors are not measured; None when no other choice sets a
+    state (:mod:`worker.continuous.mixed_euler`'s case)."""
     if not any(data.setter.count(data.choices.index(name)) for name in problem.others):
         return None
-    if not several_next_of(data):
-        return ("Euler-equation errors were not measured: beside a continuous choice and another choice that sets "
-                "tomorrow's value of a state, a choice that sets no state is not measured")
-    founds = choices_setup(data)
+    continuous = next(name for name in data.choices if name not in problem.others)
+    if not data.setter.count(data.choices.index(continuous)):
+        return (f"Euler-equation errors were not measured: the continuous choice `{continuous}` sets no state "
+                "beside a discrete choice that sets one; a continuous choice that sets no state is not maximised "
+                "out within the period")
+    free = no_state_choices(data)
+    reason = within_reason(data, free)
+    if reason:
+        return f"Euler-equation errors were not measured: {reason}"
+    founds = setting_setups(data)
     if isinstance(founds, list):
         return founds
     return founds or ("Euler-equation errors were not measured: beside a continuous choice, the other choices that "
@@ -148,12 +161,10 @@ def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, s
             part = continuous_part(data, found, discount, search, combined, distribution,
                                    tomorrow=(data_next, search_next))
         else:
-            names = [choice for _, choice in found.companions]
             part = states_errors(
                 data, found, discount, rules[found.choice], distribution,
                 None if at_end is None else at_end[found.choice], tomorrow=(data_next, rules_next[found.choice]),
-                pooling=weighted, companions=(lambda points: {name: rules[name](points) for name in names},
-                                              lambda points: {name: rules_next[name](points) for name in names}))
+                pooling=weighted, companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)))
         part["state"] = found.state
         parts.append(part)
     return pool_choices(founds, parts, weighted)
@@ -173,5 +184,6 @@ def setters_report(problem: Any, founds: list[EulerSetup], v: np.ndarray, policy
             f"search: {own['constrained']:,} test points skipped (where a limit may bind, or tomorrow's best "
             f"combination of "
             f"{', '.join(f'`{name}`' for name in problem.others)} switches next to tomorrow's state, where the value "
-            "function has a kink); the other choices' own errors read every policy linearly between grid points")
+            "function has a kink); the other choices' own errors read every policy linearly between grid points"
+            + within_note(data))
     return errors, note

@@ -1,0 +1,270 @@
+"""Euler-equation errors beside a choice that sets no state (worker.euler_within, worker.continuous.setters_euler).
+
+An invented workshop: machines ``k`` chosen anywhere in their interval (continuous, ``next_of`` ``k``), tools
+``h`` bought on their grid out of a fixed allowance ``e`` (``w = e − h_next`` left for other spending), and a
+daily effort (0 or 1, setting no state) that raises today's output ``y = z k**a1 h**a2 (1 + g · effort)`` and
+costs ``κ z`` in utility (effort is dearer in good times); output is eaten or put into tomorrow's machines, both
+kinds wearing out fully; reward ``log(c) + log(w) − κ z effort``, ``c = y − k_next``.
+
+Exact policy (Brock, W. A. and L. J. Mirman (1972), "Optimal economic growth and uncertainty: the discounted
+case", Journal of Economic Theory 4(3), 479–513, extended by guess and verify to two capital goods and the
+effort): with ``V = A(z) + B1 log k + B2 log h``, the first-order conditions ``1/c = β B1/k'`` and
+``1/w = β B2/h'`` give ``k' = β B1 y/(1 + β B1)``, ``h' = β B2 e/(1 + β B2)``; the reward then holds
+``(1 + β B1) log y``, whose ``log k`` and ``log h`` coefficients give ``B1 = a1/(1 − β a1)``,
+``B2 = a2/(1 − β a1)``: ``k' = a1 β y`` and ``h' = H_BAR``, whatever the effort.  The effort enters only
+``(1 + β B1) log(1 + g · effort) − κ z effort`` (the rest is the same with or without it), so it is taken
+where ``log(1 + g)/(1 − β a1) > κ z``: here at the low shock and not at the high one.  The calibration is
+invented.
+"""
+
+from __future__ import annotations
+
+import math
+from types import SimpleNamespace
+from typing import Any
+
+import numpy as np
+import pytest
+
+from tests._documents import grid_document
+from worker.continuous.mixed_euler import searcher
+from worker.continuous.setters_euler import setters_errors, setters_setup
+from worker.document import parse_document
+from worker.euler import TEST_POINTS_PER_GRID_POINT
+from worker.euler_choices import grid_rules
+from worker.euler_points import errors_at
+from worker.euler_within import maximised, within_reason
+from worker.feasibility import model_data
+from worker.solve import compile_document, solve
+
+A1, A2, BETA, ALLOWANCE, GAIN, KAPPA = 0.25, 0.15, 0.95, 0.4, 0.1, 0.125
+Z_VALUES = np.array([0.9, 1.1])
+Z_CHAIN = np.array([[0.8, 0.2], [0.3, 0.7]])
+H_BAR = BETA * (A2 / (1 - BETA * A1)) * ALLOWANCE / (1 + BETA * A2 / (1 - BETA * A1))
+EFFORT = (math.log(1 + GAIN) / (1 - BETA * A1) > KAPPA * Z_VALUES).astype(float)
+"""The exact effort at each shock point (derived in the module's docstring): [1, 0]."""
+
+
+def _document(machines: int) -> dict[str, Any]:
+    """The invented workshop (module docstring): ``machines`` grid points of k, tools on five values centred on the
+    exact choice."""
+    model = {
+        "params": {"a1": A1, "a2": A2, "e": ALLOWANCE, "g": GAIN, "kappa": KAPPA},
+        "states": {"k": {"min": 0.04, "max": 0.16, "points": machines},
+                   "h": {"values": (H_BAR * np.array([0.6, 0.8, 1.0, 1.2, 1.4])).tolist()}},
+        "shocks": {"z": {"markov": {"values": Z_VALUES.tolist(), "matrix": Z_CHAIN.tolist()}, "transform": "none"}},
+        "choices": {"effort": {"values": [0.0, 1.0]}, "k_next": {"next_of": "k", "continuous": True},
+                    "h_next": {"next_of": "h"}},
+        "define": {"y": "z * k**a1 * h**a2 * (1 + g * effort)", "c": "y - k_next", "w": "e - h_next"},
+        "reward": "log(c) + log(w) - kappa * z * effort",
+        "feasible": ["c > 0", "w > 0"],
+        "hints": {"concave": True},
+    }
+    document = grid_document(model, discount=BETA, method="howard")
+    document["solver"]["tolerance"] = 1e-10
+    document["report"] = {"stationary": True, "euler_errors": True}
+    return document
+
+
+def test_the_exact_effort_switches_with_the_shock() -> None:
+    assert EFFORT.tolist() == [1.0, 0.0]
+
+
+@pytest.mark.parametrize("ratio", [1.0, 1.03])
+def test_the_exact_policy_beside_an_effort_that_sets_no_state(ratio: float) -> None:
+    # k' = s y (y with the exact effort) with s = ratio · a1 β, h' = H_BAR: c = (1 − s) y and tomorrow
+    # ∂r/∂k = a1 y'/(k' c'') = a1/(k'(1 − s)) whatever z' and the effort, so c̃/c = ratio; the tools' ∂r/∂h =
+    # a2/(H_BAR (1 − s)) gives w̃/w = (1 − s)/(1 − a1 β) (1 at the exact policy) — as without the effort, which
+    # the tools' equation maximises out within the period (the best reward today at the machines read there).
+    data = model_data(parse_document(_document(8)))
+    others = ("effort", "h_next")
+    founds = setters_setup(SimpleNamespace(others=others), data)
+    assert isinstance(founds, list) and [(f.choice, f.state, f.define) for f in founds] == [
+        ("k_next", "k", "c"), ("h_next", "h", "w")]
+    h_grid = data.state_grids[1]
+    combos = np.array([[effort, h] for effort in (0.0, 1.0) for h in h_grid])  # C order, as the search's
+    index = np.array([int(np.flatnonzero((combos[:, 0] == effort) & (combos[:, 1] == H_BAR))[0])
+                      for effort in EFFORT])
+    share = ratio * A1 * BETA
+
+    def machines(points: np.ndarray) -> np.ndarray:
+        return share * Z_VALUES[None, :] * (1 + GAIN * EFFORT[None, :]) * (points[:, :1] ** A1 * points[:, 1:] ** A2)
+
+    def search(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return machines(points), np.broadcast_to(index, (points.shape[0], Z_VALUES.size))
+
+    rules = {"k_next": machines, "h_next": lambda points: np.full((points.shape[0], Z_VALUES.size), H_BAR)}
+    # Maximised out within the period at the machines and tools read there: the exact effort, at every point.
+    points = np.column_stack([np.linspace(0.04, 0.16, 7), np.full(7, H_BAR)])
+    assert (maximised(data, founds[1], rules)(points)["effort"] == EFFORT[None, :]).all()
+    errors = setters_errors(data, founds, BETA, search, (others, combos), rules)
+    for choice, size, other, gap in (("k_next", 8, 5, abs(1 - ratio)),
+                                     ("h_next", 5, 8, abs(1 - (1 - share) / (1 - A1 * BETA)))):
+        own = errors["by_choice"][choice]
+        assert own["constrained"] == 0 and own["undefined"] == 0
+        assert own["points"] >= TEST_POINTS_PER_GRID_POINT * size * other * Z_VALUES.size
+        if ratio == 1.0:  # rounding level
+            assert own["max_log10"] < -13
+        else:
+            assert own["max_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+            assert own["mean_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+
+
+def _between(grid: np.ndarray) -> np.ndarray:
+    """Ten or more test values per grid point, the centres of equal parts of each interval (common practice, as
+    fixq documents)."""
+    parts = math.ceil(10 * grid.size / (grid.size - 1))
+    return (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
+
+
+def _searched(problem: Any, v: np.ndarray, points: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The fitted problem's own search (fixq's maximiser, not its Euler code) at points (m, 2) of (k, h), every shock
+    row: ``(k', effort, h', combination index)``, each (m, shock points)."""
+    m, n_z = points.shape[0], Z_VALUES.size
+    _, chosen = problem.choose_at(v, np.repeat(points, n_z, axis=0), np.tile(np.arange(n_z), m), None)
+    index = chosen[:, 1].astype(int)
+    assert problem.others == ("effort", "h_next")
+    effort, h_next = problem.combos[index, 0], problem.combos[index, 1]
+    return (chosen[:, 0].reshape(m, n_z), effort.reshape(m, n_z), h_next.reshape(m, n_z), index.reshape(m, n_z))
+
+
+def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """Independent, plain numpy: Judd's (1992) errors of the machines' equation at the test points (between grid
+    points of k, every grid point of h, C order), every shock point, and where they are measured.  Today's and
+    tomorrow's choices by the fitted problem's search; ``1/c̃ = β Σ_z' P[z, z'] a1 y'/(k' c'')`` with y' at
+    tomorrow's effort.  Skipped: k' within one local grid step of an end of k's grid or c ≤ 0 a step away (common
+    practice, as fixq's rule), or tomorrow's best combination (effort, h'') at k' not the one a test points'
+    spacing below or above (the value's kink)."""
+    k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
+    points = np.column_stack([k.ravel(), h.ravel()])
+    k_next, effort, h_next, _ = _searched(problem, v, points)
+    y = Z_VALUES[None, :] * points[:, :1] ** A1 * points[:, 1:] ** A2 * (1 + GAIN * effort)
+    c = y - k_next
+    after = np.column_stack([k_next.ravel(), h_next.ravel()])
+    k_after, effort_after, _, index_after = _searched(problem, v, after)
+    y_after = Z_VALUES[None, :] * after[:, :1] ** A1 * after[:, 1:] ** A2 * (1 + GAIN * effort_after)
+    slope = (A1 * y_after / (after[:, :1] * (y_after - k_after))).reshape(*c.shape, Z_VALUES.size)
+    expected = np.einsum("mzw,zw->mz", slope, Z_CHAIN)
+    error = np.log10(np.maximum(np.abs(1 - 1 / (BETA * expected) / c), 2.0**-56))
+    step = np.interp(k_next, 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid))
+    constrained = (k_next - step < k_grid[0]) | (k_next + step > k_grid[-1]) | (c - step <= 0)
+    apart = np.interp(after[:, 0], 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid)) / math.ceil(
+        10 * k_grid.size / (k_grid.size - 1))
+    for moved in (after[:, 0] - apart, after[:, 0] + apart):
+        beside = np.column_stack([np.clip(moved, k_grid[0], k_grid[-1]), after[:, 1]])
+        constrained |= (_searched(problem, v, beside)[3] != index_after).any(axis=1).reshape(c.shape)
+    return error, ~constrained & np.isfinite(error)
+
+
+def _tool_errors(policy_k: np.ndarray, policy_h: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray) -> np.ndarray:
+    """Independent, plain numpy: the tools' equation at the test points (every grid point of k, between grid points
+    of h), every shock point: both grid policies (k, h, z) read linearly along h and k, the effort the best reward
+    today at them (``log(y(e) − k') − κ z e``, the tools' term the same for both), ``1/w̃ = β Σ_z' P[z, z']
+    a2 y'/(h' c'')`` with tomorrow's effort so too."""
+    def read(table: np.ndarray, k: np.ndarray, h: np.ndarray) -> np.ndarray:
+        i = np.clip(np.searchsorted(k_grid, k, side="right") - 1, 0, k_grid.size - 2)
+        j = np.clip(np.searchsorted(h_grid, h, side="right") - 1, 0, h_grid.size - 2)
+        s = np.clip((k - k_grid[i]) / (k_grid[i + 1] - k_grid[i]), 0, 1)  # held at the ends along k
+        t = (h - h_grid[j]) / (h_grid[j + 1] - h_grid[j])  # the end intervals' lines extended along h
+        return ((1 - s) * (1 - t))[:, None] * table[i, j] + ((1 - s) * t)[:, None] * table[i, j + 1] + (
+            s * (1 - t))[:, None] * table[i + 1, j] + (s * t)[:, None] * table[i + 1, j + 1]
+
+    def effort_at(k: np.ndarray, h: np.ndarray, k_next: np.ndarray) -> np.ndarray:
+        base = Z_VALUES[None, :] * (k**A1 * h**A2)[:, None]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            worth = [np.where(base * (1 + GAIN * e) - k_next > 0, np.log(base * (1 + GAIN * e) - k_next)
+                              - KAPPA * Z_VALUES[None, :] * e, -np.inf) for e in (0.0, 1.0)]
+        return (worth[1] > worth[0]).astype(float)
+
+    k, h = (grid.ravel() for grid in np.meshgrid(k_grid, _between(h_grid), indexing="ij"))
+    k_next, h_next = read(policy_k, k, h), read(policy_h, k, h)
+    w = ALLOWANCE - h_next
+    expected = np.zeros_like(w)
+    for j in range(Z_VALUES.size):
+        k_after = read(policy_k, k_next[:, j], h_next[:, j])  # tomorrow's tools do not enter c''
+        effort = effort_at(k_next[:, j], h_next[:, j], k_after)
+        y_after = Z_VALUES[None, :] * (k_next[:, j] ** A1 * h_next[:, j] ** A2)[:, None] * (1 + GAIN * effort)
+        slope = A2 * y_after / (h_next[:, j, None] * (y_after - k_after))
+        expected[:, j] = slope @ Z_CHAIN[j]
+    return np.log10(np.maximum(np.abs(1 - 1 / (BETA * expected) / w), 2.0**-56))
+
+
+def test_the_solved_workshop_against_an_independent_computation() -> None:
+    document = _document(8)
+    result = solve(document)
+    assert result["status"] == "converged"
+    effort = np.asarray(result["policy"]["effort"])
+    assert (effort == EFFORT[None, None, :]).all()  # the solved effort is the exact one
+    problem = compile_document(document)[1]
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    v = np.asarray(result["value"], dtype=float).reshape(-1)
+    errors = result["diagnostics"]["euler_errors"]
+    error, measured = _machine_errors(problem, v, k_grid, h_grid)
+    own = errors["by_choice"]["k_next"]
+    assert own["points"] == measured.sum() > error.size / 2 and own["undefined"] == 0
+    assert own["max_log10"] == pytest.approx(error[measured].max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(error[measured].mean(), abs=1e-9)
+    worst = np.where(measured, error, -np.inf).reshape(-1, h_grid.size, Z_VALUES.size).max(axis=1)
+    profile = np.array([[-np.inf if entry is None else entry for entry in row]
+                        for row in own["profile"]["log10_error"]])
+    assert np.array_equal(profile == -np.inf, worst == -np.inf)
+    np.testing.assert_allclose(profile[worst > -np.inf], worst[worst > -np.inf], rtol=0, atol=1e-9)
+    # Every test point: fixq's per-point errors (worker.euler_points.errors_at, with the search's choices and the
+    # combination beside, as the diagnostic reads them) against the independent ones where measured.
+    data = problem.model_data
+    founds = setters_setup(problem, data)
+    assert isinstance(founds, list)
+    search = searcher(problem, v)
+
+    def beside(points: np.ndarray) -> dict[str, np.ndarray]:
+        return {name: problem.combos[search(points)[1], column] for column, name in enumerate(problem.others)}
+
+    k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
+    points = np.column_stack([k.ravel(), h.ravel()])
+    fixq, _ = errors_at(data, founds[0], BETA, lambda at: search(at)[0], points, (data, lambda at: search(at)[0]),
+                        companions=(beside, beside))
+    assert np.abs(fixq - error)[measured].max() <= 1e-9
+    tools = errors["by_choice"]["h_next"]
+    reference = _tool_errors(np.asarray(result["policy"]["k_next"], dtype=float),
+                             np.asarray(result["policy"]["h_next"], dtype=float), k_grid, h_grid)
+    rules, _ = grid_rules(data, founds, {name: np.asarray(result["policy"][name], dtype=float).reshape(-1)
+                                         for name in ("k_next", "h_next")})
+    k, h = np.meshgrid(k_grid, _between(h_grid), indexing="ij")
+    within = maximised(data, founds[1], rules)
+    fixq, _ = errors_at(data, founds[1], BETA, rules["h_next"], np.column_stack([k.ravel(), h.ravel()]),
+                        (data, rules["h_next"]), companions=(within, within))
+    assert np.abs(fixq - reference).max() <= 1e-9
+    assert tools["constrained"] == 0 and tools["undefined"] == 0 and tools["points"] == reference.size
+    assert tools["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+    assert tools["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+    assert "effort" not in errors["by_choice"]
+    assert any("`effort`, setting no state, maximised out within the period" in note
+               for note in result["diagnostics"]["notes"])
+
+
+def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:
+    # One run (linear interpolation; worst / mean log10 of the machines' equation): 8 points −0.89 / −1.47,
+    # 16 points −1.19 / −1.78, 32 points −1.50 / −2.10: first order, about log10 2 per halving of the step, as for
+    # a continuous choice alone with linear interpolation.
+    worst, mean = [], []
+    for machines in (8, 16, 32):
+        result = solve(_document(machines))
+        own = result["diagnostics"]["euler_errors"]["by_choice"]["k_next"]
+        assert own["undefined"] == 0
+        worst.append(own["max_log10"])
+        mean.append(own["mean_log10"])
+    assert worst[0] > worst[1] + 0.25 > worst[2] + 0.5 and mean[0] > mean[1] + 0.25 > mean[2] + 0.5
+
+
+def test_a_law_that_moves_with_the_effort_gets_a_note() -> None:
+    # Effort that wears the tools: tomorrow's tools would carry it, so it is not maximised out within the period.
+    document = _document(8)
+    model = document["model"]
+    model["states"]["q"] = {"min": 0.5, "max": 1.0, "points": 3}
+    model["next"] = {"q": "0.5 + 0.4 * q - 0.1 * effort"}
+    data = model_data(parse_document(document))
+    assert within_reason(data, ("effort",)).startswith("the law of motion of `q` moves with `effort`")
+    notes = solve(document)["diagnostics"]["notes"]
+    assert any("Euler-equation errors were not measured: the law of motion of `q` moves with `effort`, a choice "
+               "that sets no state, so that choice is not maximised out within the period" in note for note in notes)
