@@ -45,6 +45,7 @@ from typing import Any
 import numpy as np
 
 from worker.euler import pooled_weighted_mean
+from worker.euler_laws import SlopeParts
 from worker.euler_points import Companions, PointsRule
 from worker.euler_setup import EulerSetup, choice_setup, needs_value
 from worker.euler_states import grid_rule, states_errors
@@ -107,6 +108,7 @@ def choices_errors(
     at_end: dict[str, np.ndarray] | None = None,
     *,
     tomorrow: tuple[ModelData, dict[str, PointsRule]] | None = None,
+    slopes: SlopeParts | None = None,
 ) -> dict[str, Any]:
     """Every choice's Euler-equation errors and their pool (see the module's docstring).
 
@@ -125,6 +127,8 @@ def choices_errors(
         Per choice, (grid points, shock points): where the solved choice is at an end of its state's grid.
     tomorrow : (ModelData, rules), optional
         The next period's model and rules; default ``data`` and ``rules``.
+    slopes : SlopeParts, optional
+        The value's slopes, where a law of motion moves with a chosen state or a choice (:mod:`worker.euler_laws`).
 
     Returns
     -------
@@ -138,7 +142,7 @@ def choices_errors(
         parts.append(states_errors(
             data, found, discount, rules[own], distribution, None if at_end is None else at_end[own],
             tomorrow=(data_next, rules_next[own]), pooling=distribution is not None,
-            companions=(_beside(found, rules), _beside(found, rules_next)),
+            companions=(_beside(found, rules), _beside(found, rules_next)), slopes=slopes,
         ))
         parts[-1]["state"] = found.state
     return pool_choices(founds, parts, distribution is not None)
@@ -183,11 +187,12 @@ def grid_rules(data: ModelData, founds: list[EulerSetup],
 
 
 def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, chosen: dict[str, np.ndarray],
-                   distribution: np.ndarray | None = None) -> dict[str, Any]:
+                   distribution: np.ndarray | None = None, slopes: SlopeParts | None = None) -> dict[str, Any]:
     """``diagnostics.euler_errors`` of a solved model with several ``next_of`` choices (restricted to their
-    grids); ``chosen`` holds each choice's values at every flat point, (n,)."""
+    grids); ``chosen`` holds each choice's values at every flat point, (n,); ``slopes`` the value's, where a law
+    moves with a chosen state or a choice."""
     rules, at_end = grid_rules(data, founds, chosen)
-    return choices_errors(data, founds, discount, rules, distribution, at_end)
+    return choices_errors(data, founds, discount, rules, distribution, at_end, slopes=slopes)
 
 
 def pool_periods(periods: list[dict[str, Any]]) -> dict[str, Any]:

@@ -49,7 +49,8 @@ def euler_diagnostics(
         founds = choices_setup(data)
         if isinstance(founds, list):
             chosen = problem.choice_values(outcome.policy)
-            errors = choices_report(data, founds, doc.discount, chosen, distribution)
+            errors = choices_report(data, founds, doc.discount, chosen, distribution,
+                                    _law_slopes(problem, founds, outcome.value, doc.discount))
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
             return {"euler_errors": errors}
@@ -64,7 +65,8 @@ def euler_diagnostics(
             add_note(founds)
             return {}
         if founds is not None:
-            errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution)
+            errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution,
+                                          _law_slopes(problem, founds, outcome.value, doc.discount))
             add_note(note)
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
@@ -117,3 +119,14 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
     from worker.euler_setup import setup
 
     return setup(data)
+
+
+def _law_slopes(problem: Any, founds: list[Any], value: np.ndarray, discount: float) -> Any:
+    """The value's slopes as the solve reads the value (:func:`worker.euler_laws.solve_slope`), today's and
+    tomorrow's the same, where a law of motion moves with one of several choices or its state; else None."""
+    if not any(found.laws for found in founds):
+        return None
+    from worker.euler_laws import solve_slope
+
+    slope = solve_slope(problem, problem.model_data, value)
+    return (slope, slope, float(discount))

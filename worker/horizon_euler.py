@@ -122,12 +122,19 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                 *grid_rules(data, setups, chosen))
 
     def measured(t: int) -> dict[str, Any]:
+        extra = {}
+        if any(one.laws for one in (founds if several_choices else setters) or [found]):
+            # laws moving with k or x: the slopes of V_{t+1} read today and of V_{t+2} tomorrow
+            from worker.euler_laws import solve_slope
+
+            extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
+                               float(plan.discounts[t + 1]))
         if several_choices:
             assert isinstance(founds, list)
             today, rules, at_end = choices_at(t)
             data_next, rules_next, _ = choices_at(t + 1)
             return choices_errors(today, founds, float(plan.discounts[t]), rules, None, at_end,
-                                  tomorrow=(data_next, rules_next))
+                                  tomorrow=(data_next, rules_next), **extra)
         if setters is not None:
             today, search = model_and_search(t)
             data_next, search_next = model_and_search(t + 1)
@@ -136,13 +143,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             _, rules_next, _ = choices_at(t + 1, setters)
             combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
             return setters_errors(today, setters, float(plan.discounts[t]), search, combined, rules, None, at_end,
-                                  tomorrow=(data_next, search_next, rules_next))
-        extra = {}
-        if found.laws:  # laws moving with k or x: the slopes of V_{t+1} read today and of V_{t+2} tomorrow
-            from worker.euler_laws import solve_slope
-
-            extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
-                               float(plan.discounts[t + 1]))
+                                  tomorrow=(data_next, search_next, rules_next), **extra)
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)

@@ -1,0 +1,179 @@
+"""Euler-equation errors of several next_of choices when another state's law moves with a chosen state.
+
+An invented workshop choosing tomorrow's machines ``k`` and tools ``h`` on their grids out of output
+``y = z · a · k**A1 · h**A2`` (``z`` a Markov shock), both wearing out fully, log utility, ``c = y − k_next − h_next``,
+and a know-how ``a`` that learns from the machines in use: ``a' = a**RHO · (k / K_BAR)**THETA``.
+
+Exact policy, by the guess and verify of Brock, W. A. and L. J. Mirman (1972), "Optimal economic growth and
+uncertainty: the discounted case", Journal of Economic Theory 4(3), 479–513, extended here to two kinds and the
+law: with ``V = A(z) + B1 log k + B2 log h + D log a`` and ``S = 1 + β (B1 + B2)``, the first-order conditions
+``1/c = β B_i / k_i'`` give ``k_i' = β B_i y / S``; the coefficients of ``log a``, ``log k``, ``log h`` give
+``D = S + β ρ D``, ``B1 = S A1 + β θ D``, ``B2 = S A2``, so ``D = S / (1 − β ρ)``, ``B1 = S Ã1`` with
+``Ã1 = A1 + β θ / (1 − β ρ)``, ``B2 = S A2``, ``S = 1 / (1 − β (Ã1 + A2))``: ``k' = β Ã1 y``, ``h' = β A2 y``, and
+``∂V/∂a = D / a``.  The calibration is invented.
+"""
+
+from __future__ import annotations
+
+import math
+from typing import Any
+
+import numpy as np
+import pytest
+from scipy.interpolate import RegularGridInterpolator
+
+from tests._documents import grid_document
+from worker.document import parse_document
+from worker.euler import TEST_POINTS_PER_GRID_POINT
+from worker.euler_choices import choices_errors, choices_setup, grid_rules
+from worker.euler_laws import value_slope
+from worker.euler_points import errors_at
+from worker.feasibility import model_data
+from worker.solve import solve
+
+A1, A2, BETA, RHO, THETA, K_BAR = 0.25, 0.15, 0.95, 0.6, 0.05, 0.1
+Z_VALUES = np.array([0.95, 1.05])
+Z_CHAIN = np.array([[0.8, 0.2], [0.3, 0.7]])
+A1_TILDE = A1 + BETA * THETA / (1 - BETA * RHO)
+S = 1 / (1 - BETA * (A1_TILDE + A2))
+D = S / (1 - BETA * RHO)
+
+
+def _document(k_points: int = 12, h_points: int = 8) -> dict[str, Any]:
+    model = {
+        "params": {"a1": A1, "a2": A2, "rho": RHO, "theta": THETA, "k_bar": K_BAR},
+        "states": {"a": {"min": 0.85, "max": 1.15, "points": 4},
+                   "k": {"min": 0.04, "max": 0.25, "points": k_points},
+                   "h": {"min": 0.01, "max": 0.10, "points": h_points}},
+        "shocks": {"z": {"markov": {"values": Z_VALUES.tolist(), "matrix": Z_CHAIN.tolist()}, "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k"}, "h_next": {"next_of": "h"}},
+        "define": {"y": "z * a * k**a1 * h**a2", "c": "y - k_next - h_next"},
+        "next": {"a": "a**rho * (k / k_bar)**theta"},
+        "reward": "log(c)",
+        "feasible": ["c > 0"],
+    }
+    document = grid_document(model, discount=BETA, method="howard")
+    document["solver"]["tolerance"] = 1e-10
+    document["report"] = {"stationary": True, "euler_errors": True}
+    return document
+
+
+def _exact_slope(points: np.ndarray, rows: np.ndarray, axis: int) -> np.ndarray:
+    """∂EV/∂a = D / a of the exact value, whatever today's shock point."""
+    assert axis == 0 and rows.shape == (points.shape[0],)
+    return D / points[:, 0]
+
+
+def _share(share: float) -> Any:
+    """Put ``share`` of output into one kind at points (a, k, h), every shock point."""
+    return lambda points: share * Z_VALUES[None, :] * (points[:, 0] * points[:, 1] ** A1 * points[:, 2] ** A2)[:, None]
+
+
+def test_each_choice_keeps_its_own_laws() -> None:
+    founds = choices_setup(model_data(parse_document(_document())))
+    assert isinstance(founds, list) and [(f.choice, f.state) for f in founds] == [("k_next", "k"), ("h_next", "h")]
+    assert len(founds[0].laws) == 1 and founds[0].laws[0].in_state is not None and founds[0].laws[0].in_choice is None
+    assert founds[1].laws == ()  # the law does not move with the tools: not in their equation
+
+
+@pytest.mark.parametrize("ratio", [1.0, 1.03])
+def test_the_exact_policy_with_the_exact_value_slope(ratio: float) -> None:
+    # k' = s_k y with s_k = ratio · β Ã1, h' = s_h y with s_h = β A2, s = s_k + s_h: c = (1 − s) y.  Machines:
+    # tomorrow ∂r/∂k' + β ∂V/∂a'' ∂a''/∂k' = (A1 / (1 − s) + β D θ) / k' whatever a', z', z'', so
+    # c̃ / c = s_k / (β (A1 + (1 − s) β D θ)) (1 at ratio 1); tools: ∂r/∂h' = A2 / (h' (1 − s)),
+    # c̃ / c = s_h / (β A2) = 1.
+    data = model_data(parse_document(_document()))
+    founds = choices_setup(data)
+    assert isinstance(founds, list)
+    s_k, s_h = ratio * BETA * A1_TILDE, BETA * A2
+    rules = {"k_next": _share(s_k), "h_next": _share(s_h)}
+    errors = choices_errors(data, founds, BETA, rules, slopes=(_exact_slope, _exact_slope, BETA))
+    for choice, size, others in (("k_next", 12, 4 * 8), ("h_next", 8, 4 * 12)):
+        own = errors["by_choice"][choice]
+        assert own["constrained"] == 0 and own["undefined"] == 0
+        assert own["points"] >= TEST_POINTS_PER_GRID_POINT * size * others * Z_VALUES.size
+    assert errors["by_choice"]["h_next"]["max_log10"] < -13
+    if ratio == 1.0:
+        assert errors["by_choice"]["k_next"]["max_log10"] < -13
+    else:
+        expected = math.log10(abs(1 - s_k / (BETA * (A1 + (1 - s_k - s_h) * BETA * D * THETA))))
+        assert errors["by_choice"]["k_next"]["max_log10"] == pytest.approx(expected, abs=1e-9)
+        assert errors["by_choice"]["k_next"]["mean_log10"] == pytest.approx(expected, abs=1e-9)
+    with pytest.raises(ValueError, match="slopes"):  # the law's term needs the value's slopes
+        choices_errors(data, founds, BETA, rules)
+
+
+def _between(grid: np.ndarray) -> np.ndarray:
+    """Ten or more test values per grid point, the centres of equal parts of each interval (common practice)."""
+    parts = math.ceil(10 * grid.size / (grid.size - 1))
+    return (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
+
+
+def _machine_errors(policy_k: np.ndarray, policy_h: np.ndarray, value: np.ndarray, grids: tuple[np.ndarray, ...]
+                    ) -> tuple[np.ndarray, np.ndarray]:
+    """Independent (numpy and scipy): the machines' errors at their test points (a grid, k between grid points, h
+    grid; C order), every shock point, (points, z), and the points.  Both grid policies (a, k, h, z) read
+    multilinearly by scipy; the law's term ``β ∂EV/∂a(s'') · θ a''/k'`` tomorrow, ``EV(·, z') = Σ P[z', z''] V``
+    read as the solve reads it: the slope of the grid interval of a holding a'' (the one to its right at a node),
+    linear along k and h; zero where a'' is moved to a grid end."""
+    a_grid, k_grid, h_grid = grids
+    read = [[RegularGridInterpolator(grids, table[..., j]) for j in range(Z_VALUES.size)]
+            for table in (policy_k, policy_h)]
+    ev = np.einsum("wv,akhv->wakh", Z_CHAIN, value)  # EV(·, w) at tomorrow's shock w
+    slope_table = np.diff(ev, axis=1) / np.diff(a_grid)[None, :, None, None]
+
+    def ev_slope(w: int, a: np.ndarray, k: np.ndarray, h: np.ndarray) -> np.ndarray:
+        i = np.clip(np.searchsorted(a_grid, a, side="right") - 1, 0, a_grid.size - 2)
+        out = np.empty(a.size)
+        for interval in np.unique(i):
+            rows = i == interval
+            out[rows] = RegularGridInterpolator((k_grid, h_grid), slope_table[w, interval])(
+                np.column_stack([k[rows], h[rows]]))
+        return out
+
+    a, k, h = (g.ravel() for g in np.meshgrid(a_grid, _between(k_grid), h_grid, indexing="ij"))
+    points = np.column_stack([a, k, h])
+    out = np.empty((a.size, Z_VALUES.size))
+    for j, z in enumerate(Z_VALUES):
+        xk, xh = read[0][j](points), read[1][j](points)
+        c = z * a * k**A1 * h**A2 - xk - xh
+        a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
+        tomorrow = np.column_stack([a_next, xk, xh])
+        expected = np.zeros(a.size)
+        for jj, z_next in enumerate(Z_VALUES):
+            xk2, xh2 = read[0][jj](tomorrow), read[1][jj](tomorrow)
+            y_next = z_next * a_next * xk**A1 * xh**A2
+            raw = a_next**RHO * (xk / K_BAR) ** THETA
+            a_after = np.clip(raw, a_grid[0], a_grid[-1])
+            moves = np.where(raw == a_after, THETA * raw / xk, 0.0)
+            law = BETA * moves * ev_slope(jj, a_after, xk2, xh2)
+            expected += Z_CHAIN[j, jj] * (A1 * y_next / (xk * (y_next - xk2 - xh2)) + law)
+        out[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    return out, points
+
+
+def test_the_solved_workshop_against_an_independent_computation_at_every_test_point() -> None:
+    document = _document()
+    result = solve(document)
+    assert result["status"] == "converged"
+    grids = tuple(np.asarray(result["axes"][name]) for name in ("a", "k", "h"))
+    policy_k = np.asarray(result["policy"]["k_next"], dtype=float)
+    policy_h = np.asarray(result["policy"]["h_next"], dtype=float)
+    value = np.asarray(result["value"], dtype=float)
+    reference, points = _machine_errors(policy_k, policy_h, value, grids)
+    # fixq's per-point errors (its grid rules and value slope) against the independent ones.
+    data = model_data(parse_document(document))
+    founds = choices_setup(data)
+    assert isinstance(founds, list)
+    rules, _ = grid_rules(data, founds, {"k_next": policy_k.reshape(-1), "h_next": policy_h.reshape(-1)})
+    slope = value_slope(data, value.reshape(-1))
+    fixq, constrained = errors_at(data, founds[0], BETA, rules["k_next"], points, (data, rules["k_next"]),
+                                  companions=(lambda at: {"h_next": rules["h_next"](at)},) * 2,
+                                  slopes=(slope, slope, BETA))
+    assert not constrained.any()
+    assert np.abs(fixq - reference).max() <= 1e-9
+    own = result["diagnostics"]["euler_errors"]["by_choice"]["k_next"]
+    assert own["constrained"] == 0 and own["undefined"] == 0 and own["points"] == reference.size
+    assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+    assert result["diagnostics"]["euler_errors"]["by_choice"]["h_next"]["points"] > 0
