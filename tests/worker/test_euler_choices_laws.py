@@ -16,6 +16,7 @@ law: with ``V = A(z) + B1 log k + B2 log h + D log a`` and ``S = 1 + β (B1 + B2
 from __future__ import annotations
 
 import math
+from types import SimpleNamespace
 from typing import Any
 
 import numpy as np
@@ -23,13 +24,14 @@ import pytest
 from scipy.interpolate import RegularGridInterpolator
 
 from tests._documents import grid_document
+from worker.continuous.setters_euler import setters_errors, setters_setup
 from worker.document import parse_document
 from worker.euler import TEST_POINTS_PER_GRID_POINT
 from worker.euler_choices import choices_errors, choices_setup, grid_rules
 from worker.euler_laws import value_slope
 from worker.euler_points import errors_at
 from worker.feasibility import model_data
-from worker.solve import solve
+from worker.solve import compile_document, solve
 
 A1, A2, BETA, RHO, THETA, K_BAR = 0.25, 0.15, 0.95, 0.6, 0.05, 0.1
 Z_VALUES = np.array([0.95, 1.05])
@@ -177,3 +179,131 @@ def test_the_solved_workshop_against_an_independent_computation_at_every_test_po
     assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
     assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
     assert result["diagnostics"]["euler_errors"]["by_choice"]["h_next"]["points"] > 0
+
+
+# The machines continuous beside the tools on their grid (worker.continuous.setters_euler), the tools bought out of
+# a fixed allowance ``e`` (``w = e − h_next``, reward ``log(c) + log(w)``, ``c = y − k_next``; invented): the guess
+# above with ``S = 1 + β B1`` gives ``D = S / (1 − β ρ)``, ``B1 = S Ã1``, ``S = 1 / (1 − β Ã1)``, ``k' = β Ã1 y`` and
+# ``B2 = S A2``, ``h' = β B2 e / (1 + β B2)``: a constant, H_BAR, which the tools' grid holds.
+
+ALLOWANCE = 0.4
+B2 = A2 / (1 - BETA * A1_TILDE)
+H_BAR = BETA * B2 * ALLOWANCE / (1 + BETA * B2)
+D_ALLOWANCE = 1 / ((1 - BETA * A1_TILDE) * (1 - BETA * RHO))
+
+
+def _allowance_document(k_points: int) -> dict[str, Any]:
+    document = _document(k_points)
+    model = document["model"]
+    model["params"]["e"] = ALLOWANCE
+    model["states"]["h"] = {"values": (H_BAR * np.array([0.6, 0.8, 1.0, 1.2, 1.4])).tolist()}
+    model["choices"] = {"k_next": {"next_of": "k", "continuous": True}, "h_next": {"next_of": "h"}}
+    model["define"] = {"y": "z * a * k**a1 * h**a2", "c": "y - k_next", "w": "e - h_next"}
+    model["reward"] = "log(c) + log(w)"
+    model["feasible"] = ["c > 0", "w > 0"]
+    model["hints"] = {"concave": True}
+    return document
+
+
+@pytest.mark.parametrize("ratio", [1.0, 1.03])
+def test_a_continuous_choice_beside_tools_with_the_exact_policy_and_value_slope(ratio: float) -> None:
+    # k' = s y, s = ratio · β Ã1, h' = H_BAR: the machines' c̃ / c = s / (β (A1 + (1 − s) β D θ)) as above (D of
+    # this shop); the tools' ∂r/∂h' = A2 / (H_BAR (1 − s)) gives w̃ / w = (1 − s) / (1 − β Ã1).
+    data = model_data(parse_document(_allowance_document(8)))
+    founds = setters_setup(SimpleNamespace(others=("h_next",)), data)
+    assert isinstance(founds, list) and len(founds[0].laws) == 1 and founds[1].laws == ()
+    h_grid = data.state_grids[2]
+    index = int(np.flatnonzero(h_grid == H_BAR)[0])
+    s = ratio * BETA * A1_TILDE
+    machines = _share(s)
+
+    def search(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        return machines(points), np.full((points.shape[0], Z_VALUES.size), index)
+
+    def slope(points: np.ndarray, rows: np.ndarray, axis: int) -> np.ndarray:
+        assert axis == 0
+        return D_ALLOWANCE / points[:, 0]
+
+    rules = {"k_next": machines, "h_next": lambda points: np.full((points.shape[0], Z_VALUES.size), H_BAR)}
+    errors = setters_errors(data, founds, BETA, search, (("h_next",), h_grid[:, None]), rules,
+                            slopes=(slope, slope, BETA))
+    gaps = {"k_next": abs(1 - s / (BETA * (A1 + (1 - s) * BETA * D_ALLOWANCE * THETA))),
+            "h_next": abs(1 - (1 - s) / (1 - BETA * A1_TILDE))}
+    for choice, gap in gaps.items():
+        own = errors["by_choice"][choice]
+        assert own["constrained"] == 0 and own["undefined"] == 0 and own["points"] > 0
+        if ratio == 1.0:
+            assert own["max_log10"] < -13
+        else:
+            assert own["max_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+            assert own["mean_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+
+
+def test_the_errors_fall_as_the_grids_are_refined() -> None:
+    # One run (worst / mean log10), both choices on their grids: machines 12 × 8 points of (k, h) −0.70 / −1.48,
+    # 24 × 16 −0.96 / −1.79, 48 × 32 −1.16 / −2.03; tools −0.66 / −1.34, −0.91 / −1.69, −1.18 / −2.02: about first
+    # order in the grid step, as for one grid choice.  The machines continuous beside the tools (the allowance shop,
+    # 8, 16, 32 points of k): machines −0.72 / −1.38, −0.99 / −1.70, −1.15 / −1.98.
+    grid_errors = [solve(_document(k, h))["diagnostics"]["euler_errors"]["by_choice"] for k, h in ((12, 8), (24, 16))]
+    for choice in ("k_next", "h_next"):
+        coarse, fine = (errors[choice] for errors in grid_errors)
+        assert coarse["max_log10"] > fine["max_log10"] + 0.2 and coarse["mean_log10"] > fine["mean_log10"] + 0.3
+    beside = [solve(_allowance_document(k))["diagnostics"]["euler_errors"]["by_choice"]["k_next"] for k in (8, 16)]
+    assert beside[0]["constrained"] == beside[1]["constrained"] == 0
+    assert beside[0]["max_log10"] > beside[1]["max_log10"] + 0.2
+    assert beside[0]["mean_log10"] > beside[1]["mean_log10"] + 0.25
+
+
+def test_a_solved_continuous_choice_beside_tools_against_an_independent_computation() -> None:
+    # Today's and tomorrow's choices by the fitted problem's own search (its maximiser, not its Euler code); the
+    # law's term tomorrow β ∂EV/∂a(s'') · θ a''/k' with EV read as the solve reads the value (multilinearly: the
+    # slope of the grid interval of a holding a'', linear along k and h); skipped as fixq documents (k' within one
+    # local grid step of an end of its grid or c ≤ 0 a step away; tomorrow's tools switching along k: never here,
+    # the solved tools being H_BAR everywhere).
+    document = _allowance_document(8)
+    result = solve(document)
+    assert result["status"] == "converged" and np.all(np.asarray(result["policy"]["h_next"]) == H_BAR)
+    problem = compile_document(document)[1]
+    assert not getattr(problem, "cubic", False)
+    grids = tuple(np.asarray(result["axes"][name]) for name in ("a", "k", "h"))
+    a_grid, k_grid, h_grid = grids
+    v = np.asarray(result["value"], dtype=float).reshape(-1)
+    ev = np.einsum("wv,akhv->wakh", Z_CHAIN, v.reshape(*(g.size for g in grids), Z_VALUES.size))
+    slope_table = np.diff(ev, axis=1) / np.diff(a_grid)[None, :, None, None]
+
+    def searched(points: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        m = points.shape[0]
+        _, chosen = problem.choose_at(v, np.repeat(points, Z_VALUES.size, axis=0), np.tile(np.arange(2), m), None)
+        return chosen[:, 0].reshape(m, 2), h_grid[chosen[:, 1].astype(int)].reshape(m, 2)
+
+    a, k, h = (g.ravel() for g in np.meshgrid(a_grid, _between(k_grid), h_grid, indexing="ij"))
+    x, tools = searched(np.column_stack([a, k, h]))
+    reference = np.empty_like(x)
+    measured = np.ones(x.shape, dtype=bool)
+    for j, z in enumerate(Z_VALUES):
+        c = z * a * k**A1 * h**A2 - x[:, j]
+        step = np.interp(x[:, j], 0.5 * (k_grid[1:] + k_grid[:-1]), np.diff(k_grid))
+        measured[:, j] = (x[:, j] - step >= k_grid[0]) & (x[:, j] + step <= k_grid[-1]) & (c - step > 0)
+        a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
+        x_next, tools_next = searched(np.column_stack([a_next, x[:, j], tools[:, j]]))
+        expected = np.zeros(a.size)
+        for jj, z_next in enumerate(Z_VALUES):
+            y_next = z_next * a_next * x[:, j] ** A1 * tools[:, j] ** A2
+            raw = a_next**RHO * (x[:, j] / K_BAR) ** THETA
+            a_after = np.clip(raw, a_grid[0], a_grid[-1])
+            moves = np.where(raw == a_after, THETA * raw / x[:, j], 0.0)
+            i = np.clip(np.searchsorted(a_grid, a_after, side="right") - 1, 0, a_grid.size - 2)
+            read = np.array([RegularGridInterpolator((k_grid, h_grid), slope_table[jj, ii])([kk, hh])[0]
+                             for ii, kk, hh in zip(i, x_next[:, jj], tools_next[:, jj])])
+            expected += Z_CHAIN[j, jj] * (A1 * y_next / (x[:, j] * (y_next - x_next[:, jj])) + BETA * moves * read)
+        reference[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    own = result["diagnostics"]["euler_errors"]["by_choice"]["k_next"]
+    assert own["points"] == measured.sum() > 0 and own["undefined"] == 0
+    assert own["constrained"] == measured.size - measured.sum()
+    assert own["max_log10"] == pytest.approx(reference[measured].max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(reference[measured].mean(), abs=1e-9)
+    worst = np.where(measured, reference, -np.inf).reshape(a_grid.size, -1, h_grid.size, 2).max(axis=(0, 2))
+    profile = np.array([[-np.inf if entry is None else entry for entry in row]
+                        for row in own["profile"]["log10_error"]])
+    assert np.array_equal(profile == -np.inf, worst == -np.inf)
+    np.testing.assert_allclose(profile[worst > -np.inf], worst[worst > -np.inf], rtol=0, atol=1e-9)
