@@ -111,16 +111,19 @@ def _between(grid: np.ndarray) -> np.ndarray:
     return (grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(grid)[:, None]).ravel()
 
 
-def _machine_errors(policy_k: np.ndarray, policy_h: np.ndarray, value: np.ndarray, grids: tuple[np.ndarray, ...]
-                    ) -> tuple[np.ndarray, np.ndarray]:
+def _machine_errors(policy_k: np.ndarray, policy_h: np.ndarray, value: np.ndarray, grids: tuple[np.ndarray, ...],
+                    tomorrow: tuple[np.ndarray, np.ndarray] | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Independent (numpy and scipy): the machines' errors at their test points (a grid, k between grid points, h
     grid; C order), every shock point, (points, z), and the points.  Both grid policies (a, k, h, z) read
     multilinearly by scipy; the law's term ``β ∂EV/∂a(s'') · θ a''/k'`` tomorrow, ``EV(·, z') = Σ P[z', z''] V``
     read as the solve reads it: the slope of the grid interval of a holding a'' (the one to its right at a node),
-    linear along k and h; zero where a'' is moved to a grid end."""
+    linear along k and h; zero where a'' is moved to a grid end.  ``tomorrow``: tomorrow's policies (a finite
+    horizon's next period; ``value`` then the day after's), by default today's."""
     a_grid, k_grid, h_grid = grids
     read = [[RegularGridInterpolator(grids, table[..., j]) for j in range(Z_VALUES.size)]
             for table in (policy_k, policy_h)]
+    read_next = read if tomorrow is None else [[RegularGridInterpolator(grids, table[..., j])
+                                                for j in range(Z_VALUES.size)] for table in tomorrow]
     ev = np.einsum("wv,akhv->wakh", Z_CHAIN, value)  # EV(·, w) at tomorrow's shock w
     slope_table = np.diff(ev, axis=1) / np.diff(a_grid)[None, :, None, None]
 
@@ -140,10 +143,10 @@ def _machine_errors(policy_k: np.ndarray, policy_h: np.ndarray, value: np.ndarra
         xk, xh = read[0][j](points), read[1][j](points)
         c = z * a * k**A1 * h**A2 - xk - xh
         a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
-        tomorrow = np.column_stack([a_next, xk, xh])
+        states = np.column_stack([a_next, xk, xh])
         expected = np.zeros(a.size)
         for jj, z_next in enumerate(Z_VALUES):
-            xk2, xh2 = read[0][jj](tomorrow), read[1][jj](tomorrow)
+            xk2, xh2 = read_next[0][jj](states), read_next[1][jj](states)
             y_next = z_next * a_next * xk**A1 * xh**A2
             raw = a_next**RHO * (xk / K_BAR) ** THETA
             a_after = np.clip(raw, a_grid[0], a_grid[-1])
@@ -179,6 +182,33 @@ def test_the_solved_workshop_against_an_independent_computation_at_every_test_po
     assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
     assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
     assert result["diagnostics"]["euler_errors"]["by_choice"]["h_next"]["points"] > 0
+
+
+def test_a_finite_horizon_against_the_independent_computation() -> None:
+    # Period t: its grid policies today, period t + 1's tomorrow, the law's term read from V_{t+2} (the terminal
+    # value B1 log k + B2 log h + D log a on the grid, the exact coefficients, for the last period measured).
+    document = _document()
+    terminal = f"{S * A1_TILDE} * log(k) + {S * A2} * log(h) + {D} * log(a)"
+    document["model"]["horizon"] = {"periods": 3, "terminal_value": terminal}
+    document["report"] = {"euler_errors": True}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1]
+    grids = tuple(np.asarray(result["axes"][name]) for name in ("a", "k", "h"))
+    a_grid, k_grid, h_grid = np.meshgrid(*grids, indexing="ij")
+    last = S * A1_TILDE * np.log(k_grid) + S * A2 * np.log(h_grid) + D * np.log(a_grid)
+    values = [*np.asarray(result["value"], dtype=float), np.repeat(last[..., None], Z_VALUES.size, axis=-1)]
+    policy_k = np.asarray(result["policy"]["k_next"], dtype=float)  # (period, a, k, h, z)
+    policy_h = np.asarray(result["policy"]["h_next"], dtype=float)
+    parts = [_machine_errors(policy_k[t], policy_h[t], values[t + 2], grids, (policy_k[t + 1], policy_h[t + 1]))[0]
+             for t in (0, 1)]
+    for t, part in enumerate(parts):
+        assert errors["by_period"]["max_log10"][t] >= part.max() - 1e-9  # the pool of both choices
+    pooled = np.concatenate([part.ravel() for part in parts])
+    own = errors["by_choice"]["k_next"]
+    assert own["constrained"] == 0 and own["points"] == pooled.size
+    assert own["max_log10"] == pytest.approx(pooled.max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(pooled.mean(), abs=1e-9)
 
 
 # The machines continuous beside the tools on their grid (worker.continuous.setters_euler), the tools bought out of
