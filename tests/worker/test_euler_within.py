@@ -128,21 +128,23 @@ def _searched(problem: Any, v: np.ndarray, points: np.ndarray) -> tuple[np.ndarr
     return (chosen[:, 0].reshape(m, n_z), effort.reshape(m, n_z), h_next.reshape(m, n_z), index.reshape(m, n_z))
 
 
-def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray
-                    ) -> tuple[np.ndarray, np.ndarray]:
+def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray,
+                    v_after: np.ndarray | None = None) -> tuple[np.ndarray, np.ndarray]:
     """Independent, plain numpy: Judd's (1992) errors of the machines' equation at the test points (between grid
     points of k, every grid point of h, C order), every shock point, and where they are measured.  Today's and
     tomorrow's choices by the fitted problem's search; ``1/c̃ = β Σ_z' P[z, z'] a1 y'/(k' c'')`` with y' at
     tomorrow's effort.  Skipped: k' within one local grid step of an end of k's grid or c ≤ 0 a step away (common
     practice, as fixq's rule), or tomorrow's best combination (effort, h'') at k' not the one a test points'
-    spacing below or above (the value's kink)."""
+    spacing below or above (the value's kink).  ``v`` is the value today's choice is made against, ``v_after``
+    tomorrow's (a finite horizon's next period; by default ``v``)."""
+    v_after = v if v_after is None else v_after
     k, h = np.meshgrid(_between(k_grid), h_grid, indexing="ij")
     points = np.column_stack([k.ravel(), h.ravel()])
     k_next, effort, h_next, _ = _searched(problem, v, points)
     y = Z_VALUES[None, :] * points[:, :1] ** A1 * points[:, 1:] ** A2 * (1 + GAIN * effort)
     c = y - k_next
     after = np.column_stack([k_next.ravel(), h_next.ravel()])
-    k_after, effort_after, _, index_after = _searched(problem, v, after)
+    k_after, effort_after, _, index_after = _searched(problem, v_after, after)
     y_after = Z_VALUES[None, :] * after[:, :1] ** A1 * after[:, 1:] ** A2 * (1 + GAIN * effort_after)
     slope = (A1 * y_after / (after[:, :1] * (y_after - k_after))).reshape(*c.shape, Z_VALUES.size)
     expected = np.einsum("mzw,zw->mz", slope, Z_CHAIN)
@@ -153,7 +155,7 @@ def _machine_errors(problem: Any, v: np.ndarray, k_grid: np.ndarray, h_grid: np.
         10 * k_grid.size / (k_grid.size - 1))
     for moved in (after[:, 0] - apart, after[:, 0] + apart):
         beside = np.column_stack([np.clip(moved, k_grid[0], k_grid[-1]), after[:, 1]])
-        constrained |= (_searched(problem, v, beside)[3] != index_after).any(axis=1).reshape(c.shape)
+        constrained |= (_searched(problem, v_after, beside)[3] != index_after).any(axis=1).reshape(c.shape)
     return error, ~constrained & np.isfinite(error)
 
 
@@ -255,6 +257,31 @@ def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:
         worst.append(own["max_log10"])
         mean.append(own["mean_log10"])
     assert worst[0] > worst[1] + 0.25 > worst[2] + 0.5 and mean[0] > mean[1] + 0.25 > mean[2] + 0.5
+
+
+def test_a_finite_horizon_against_the_independent_computation() -> None:
+    # Period t's machines: today's choice against V_{t+1}, tomorrow's against V_{t+2} (the terminal value for the
+    # last period measured), each by the fitted problem's own search; the effort the search's, as above.
+    document = _document(8)
+    document["model"]["horizon"] = {"periods": 3, "terminal_value": "0.3 * log(k) + 0.2 * log(h)"}
+    document["report"] = {"euler_errors": True}
+    result = solve(document)
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["by_period"]["period"] == [0, 1]
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    values = np.asarray(result["value"], dtype=float)  # (period, k, h, z)
+    terminal = np.broadcast_to((0.3 * np.log(k_grid)[:, None] + 0.2 * np.log(h_grid)[None, :])[:, :, None],
+                               values.shape[1:])
+    after = [values[1].reshape(-1), values[2].reshape(-1), np.ascontiguousarray(terminal).reshape(-1)]
+    problem = compile_document(document)[1]
+    parts = [_machine_errors(problem, after[t], k_grid, h_grid, after[t + 1]) for t in (0, 1)]
+    pooled = np.concatenate([error[measured] for error, measured in parts])
+    own = errors["by_choice"]["k_next"]
+    assert own["points"] == pooled.size > 0 and own["undefined"] == 0
+    assert own["max_log10"] == pytest.approx(pooled.max(), abs=1e-9)
+    assert own["mean_log10"] == pytest.approx(pooled.mean(), abs=1e-9)
+    assert any("`effort`, setting no state, maximised out within the period" in note
+               for note in result["diagnostics"]["notes"])
 
 
 def test_a_law_that_moves_with_the_effort_gets_a_note() -> None:
