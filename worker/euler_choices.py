@@ -11,8 +11,10 @@ with ``c_i`` the define through which ``x_i`` enters the reward (the same define
 household).  The first-order condition is the partial derivative of ``r(s, x) + β E V(s')`` in ``x_i``,
 and the envelope condition the total derivative of ``V(s) = r(s, x(s)) + β E V(s')`` in ``k_i``: every
 choice's own first-order condition cancels the terms in ``∂x_j/∂k_i``, and what is left is the reward's
-slope in ``k_i`` at the chosen choices, ``∂V/∂k_i = ∂r/∂k_i`` — as long as no state's law of motion moves
-with a chosen state or a choice (:func:`worker.euler_setup.choice_setup` says so with a note otherwise).  A
+slope in ``k_i`` at the chosen choices, ``∂V/∂k_i = ∂r/∂k_i`` — plus, where another state's law of motion
+moves with ``k_i`` or ``x_i``, that law's terms in the value's slopes (:mod:`worker.euler_laws`, ``slopes``).
+Choices on grids or menus that set no state may stand beside them (one ``next_of`` choice is then enough):
+they are maximised out within the period (:mod:`worker.euler_within`) and have no equation of their own.  A
 choice at a limit (the illiquid account empty) has no equation of its own, but leaves the others': at a
 corner that binds nearby ``∂x_j/∂k_i = 0``.  ``c̃_i`` solves the equation of choice ``i`` and its error
 at a point is ``|1 − c̃_i/c_i|``.
@@ -46,30 +48,35 @@ import numpy as np
 
 from worker.euler import pooled_weighted_mean
 from worker.euler_laws import SlopeParts
-from worker.euler_points import Companions, PointsRule
+from worker.euler_points import PointsRule
 from worker.euler_setup import EulerSetup, choice_setup, needs_value
 from worker.euler_states import grid_rule, states_errors
+from worker.euler_within import maximised, no_state_choices, within_reason
 from worker.feasibility import ModelData
 
 __all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_choices", "pool_periods",
-           "setting_setups", "several_next_of"]
+           "setting_setups", "choices_model"]
 
 _PER_CHOICE = ("state", "define", "max_log10", "mean_log10", "points", "constrained", "undefined", "profile",
                "weighted_mean_log10")
 """The keys of each entry of ``by_choice``."""
 
 
-def several_next_of(data: ModelData) -> bool:
-    """Whether every choice of ``data`` is ``next_of`` a state, and there are at least two."""
-    chosen = [j for j in data.setter if j is not None]
-    return len(chosen) >= 2 and len(chosen) == len(data.choices)
+def choices_model(data: ModelData) -> bool:
+    """Whether ``data`` has several choices of which at least one is ``next_of`` a state: this module's model
+    when none is continuous (the others set no state: :mod:`worker.euler_within`)."""
+    return len(data.choices) >= 2 and any(j is not None for j in data.setter)
 
 
 def choices_setup(data: ModelData) -> list[EulerSetup] | str | None:
-    """Each choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices, a note why the errors
-    are not measured, or None when the model is not one of several ``next_of`` choices and no other."""
-    if not several_next_of(data):
+    """Each ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices, a note why
+    the errors are not measured, or None when the model is not one of several choices of which one is
+    ``next_of`` (or one is a menu, or its state's grid has one point)."""
+    if not choices_model(data):
         return None
+    reason = within_reason(data, no_state_choices(data))
+    if reason:
+        return f"Euler-equation errors not computed: {reason}"
     return setting_setups(data)
 
 
@@ -91,12 +98,6 @@ def setting_setups(data: ModelData) -> list[EulerSetup] | str | None:
                     "whose probabilities move with a choice or a chosen state are not measured")
         found.append((j, one))
     return [one for _, one in sorted(found, key=lambda pair: pair[0])]
-
-
-def _beside(found: EulerSetup, rules: dict[str, PointsRule]) -> Companions:
-    """The other choices' values at points, by their rules."""
-    others = [choice for _, choice in found.companions]
-    return lambda points: {choice: rules[choice](points) for choice in others}
 
 
 def choices_errors(
@@ -142,7 +143,8 @@ def choices_errors(
         parts.append(states_errors(
             data, found, discount, rules[own], distribution, None if at_end is None else at_end[own],
             tomorrow=(data_next, rules_next[own]), pooling=distribution is not None,
-            companions=(_beside(found, rules), _beside(found, rules_next)), slopes=slopes,
+            companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)),
+            slopes=slopes,
         ))
         parts[-1]["state"] = found.state
     return pool_choices(founds, parts, distribution is not None)

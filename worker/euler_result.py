@@ -29,6 +29,7 @@ def euler_diagnostics(
         return {}
     from worker.euler import euler_report
     from worker.euler_setup import needs_value
+    from worker.euler_within import within_note
     from worker.gridproblem import GridProblem
 
     def add_note(text: str) -> None:
@@ -43,14 +44,16 @@ def euler_diagnostics(
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     mixed = bool(getattr(problem, "others", ()))
-    from worker.euler_choices import choices_report, choices_setup, several_next_of
+    from worker.euler_choices import choices_model, choices_report, choices_setup
 
-    if not mixed and several_next_of(data):  # several next_of choices, each with its own equation
+    if not mixed and choices_model(data):  # several next_of choices, each with its own equation
         founds = choices_setup(data)
         if isinstance(founds, list):
             chosen = problem.choice_values(outcome.policy)
             errors = choices_report(data, founds, doc.discount, chosen, distribution,
                                     _law_slopes(problem, founds, outcome.value, doc.discount))
+            if within_note(data):
+                add_note(f"Euler-equation errors of the choices that set states{within_note(data)}")
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
             return {"euler_errors": errors}

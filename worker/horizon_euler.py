@@ -46,9 +46,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         return {}, "Euler-equation errors were not measured: they apply to grid models"
     continuous = getattr(problem, "choose_at", None) is not None
     mixed = bool(getattr(problem, "others", ()))
-    from worker.euler_choices import choices_errors, choices_setup, grid_rules, pool_periods, several_next_of
+    from worker.euler_choices import choices_errors, choices_model, choices_setup, grid_rules, pool_periods
 
-    several_choices = not mixed and several_next_of(data)  # several next_of choices, each with its own equation
+    several_choices = not mixed and choices_model(data)  # several next_of choices, each with its own equation
     founds = choices_setup(data) if several_choices else None
     setters = None  # beside discrete choices that set states too: each choice's own equation
     if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
@@ -194,7 +194,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                + within_note(data) if mixed else
                "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
-               "; the policy between grid points is each period's own search" if continuous else ""))
+               "; the policy between grid points is each period's own search" if continuous else within_note(data)))
     return {"euler_errors": result}, note
 
 

@@ -25,13 +25,14 @@ from typing import Any
 
 import numpy as np
 import pytest
+from scipy.interpolate import RegularGridInterpolator
 
 from tests._documents import grid_document
 from worker.continuous.mixed_euler import searcher
 from worker.continuous.setters_euler import setters_errors, setters_setup
 from worker.document import parse_document
 from worker.euler import TEST_POINTS_PER_GRID_POINT
-from worker.euler_choices import grid_rules
+from worker.euler_choices import choices_errors, choices_setup, grid_rules
 from worker.euler_points import errors_at
 from worker.euler_within import maximised, within_reason
 from worker.feasibility import model_data
@@ -295,3 +296,128 @@ def test_a_law_that_moves_with_the_effort_gets_a_note() -> None:
     notes = solve(document)["diagnostics"]["notes"]
     assert any("Euler-equation errors were not measured: the law of motion of `q` moves with `effort`, a choice "
                "that sets no state, so that choice is not maximised out within the period" in note for note in notes)
+
+
+# Both kinds on their grids beside a menu effort (worker.euler_choices with worker.euler_within): the workshop of
+# test_euler_choices.py (output eaten or put into machines and tools, c = y − k_next − h_next) with the effort above.
+# Exact policy by the same guess and verify: k' = A1 β y, h' = A2 β y (y with the effort); the effort enters only
+# S log(1 + g · effort) − κ' z effort with S = 1 / (1 − β (A1 + A2)): taken at the low shock, not at the high one.
+
+KAPPA_GRID = 0.155
+EFFORT_GRID = (math.log(1 + GAIN) / (1 - BETA * (A1 + A2)) > KAPPA_GRID * Z_VALUES).astype(float)
+
+
+def _grid_document(k_points: int = 16, h_points: int = 12) -> dict[str, Any]:
+    model = {
+        "params": {"a1": A1, "a2": A2, "g": GAIN, "kappa": KAPPA_GRID},
+        "states": {"k": {"min": 0.04, "max": 0.16, "points": k_points},
+                   "h": {"min": 0.02, "max": 0.10, "points": h_points}},
+        "shocks": {"z": {"markov": {"values": Z_VALUES.tolist(), "matrix": Z_CHAIN.tolist()}, "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k"}, "effort": {"values": [0.0, 1.0]}, "h_next": {"next_of": "h"}},
+        "define": {"y": "z * k**a1 * h**a2 * (1 + g * effort)", "c": "y - k_next - h_next"},
+        "reward": "log(c) - kappa * z * effort",
+        "feasible": ["c > 0"],
+    }
+    document = grid_document(model, discount=BETA, method="howard")
+    document["solver"]["tolerance"] = 1e-10
+    document["report"] = {"stationary": True, "euler_errors": True}
+    return document
+
+
+def _grid_share(share: float) -> Any:
+    """Put ``share`` of output (with the exact effort) into one kind at points (k, h), every shock point."""
+    return lambda points: share * Z_VALUES[None, :] * (1 + GAIN * EFFORT_GRID[None, :]) * (
+        points[:, :1] ** A1 * points[:, 1:] ** A2)
+
+
+@pytest.mark.parametrize("ratio", [1.0, 1.03])
+def test_grid_choices_beside_a_menu_effort_with_the_exact_policy(ratio: float) -> None:
+    # k' = s_k y, s_k = ratio · A1 β, h' = A2 β y: tomorrow ∂r/∂k' = A1 / (k' (1 − s)) whatever the effort, so
+    # c̃ / c = s_k / (β A1) = ratio for the machines and 1 for the tools.
+    data = model_data(parse_document(_grid_document()))
+    founds = choices_setup(data)
+    assert isinstance(founds, list) and [f.choice for f in founds] == ["k_next", "h_next"]
+    rules = {"k_next": _grid_share(ratio * A1 * BETA), "h_next": _grid_share(A2 * BETA)}
+    points = np.column_stack([np.linspace(0.05, 0.15, 9), np.full(9, 0.05)])
+    assert (maximised(data, founds[0], rules)(points)["effort"] == EFFORT_GRID[None, :]).all()
+    errors = choices_errors(data, founds, BETA, rules)
+    assert set(errors["by_choice"]) == {"k_next", "h_next"}
+    for choice in ("k_next", "h_next"):
+        own = errors["by_choice"][choice]
+        assert own["constrained"] == 0 and own["undefined"] == 0 and own["points"] > 0
+    assert errors["by_choice"]["h_next"]["max_log10"] < -13
+    if ratio == 1.0:
+        assert errors["by_choice"]["k_next"]["max_log10"] < -13
+    else:
+        assert errors["by_choice"]["k_next"]["max_log10"] == pytest.approx(math.log10(ratio - 1), abs=1e-9)
+
+
+def _grid_errors(policy_k: np.ndarray, policy_h: np.ndarray, k_grid: np.ndarray, h_grid: np.ndarray, along: int
+                 ) -> tuple[np.ndarray, np.ndarray]:
+    """Independent (numpy, scipy): the errors of the choice setting state ``along`` (0: k, 1: h) at its test points
+    ((k, h) rows, C order), every shock point: both grid policies read multilinearly by scipy, the effort the best
+    reward today at them (``log(y(e) − k' − h') − κ' z e``), today and tomorrow."""
+    grids = (k_grid, h_grid)
+    read = [[RegularGridInterpolator(grids, table[:, :, j]) for j in range(Z_VALUES.size)]
+            for table in (policy_k, policy_h)]
+
+    def effort_at(k: np.ndarray, h: np.ndarray, spent: np.ndarray, z: Any) -> np.ndarray:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            worth = [np.where(z * k**A1 * h**A2 * (1 + GAIN * e) - spent > 0,
+                              np.log(z * k**A1 * h**A2 * (1 + GAIN * e) - spent) - KAPPA_GRID * z * e, -np.inf)
+                     for e in (0.0, 1.0)]
+        return (worth[1] > worth[0]).astype(float)
+
+    k, h = (g.ravel() for g in np.meshgrid(*(_between(grid) if t == along else grid for t, grid in enumerate(grids)),
+                                           indexing="ij"))
+    points = np.column_stack([k, h])
+    out = np.empty((k.size, Z_VALUES.size))
+    for j, z in enumerate(Z_VALUES):
+        xk, xh = read[0][j](points), read[1][j](points)
+        c = z * k**A1 * h**A2 * (1 + GAIN * effort_at(k, h, xk + xh, z)) - xk - xh
+        expected = np.zeros(k.size)
+        for jj, z_next in enumerate(Z_VALUES):
+            tomorrow = np.column_stack([xk, xh])
+            xk2, xh2 = read[0][jj](tomorrow), read[1][jj](tomorrow)
+            y_next = z_next * xk**A1 * xh**A2 * (1 + GAIN * effort_at(xk, xh, xk2 + xh2, z_next))
+            share = A1 / xk if along == 0 else A2 / xh
+            expected += Z_CHAIN[j, jj] * share * y_next / (y_next - xk2 - xh2)
+        out[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    return out, points
+
+
+def test_solved_grid_choices_beside_a_menu_effort_against_an_independent_computation() -> None:
+    document = _grid_document()
+    result = solve(document)
+    assert result["status"] == "converged"
+    assert (np.asarray(result["policy"]["effort"]) == EFFORT_GRID[None, None, :]).all()
+    k_grid, h_grid = np.asarray(result["axes"]["k"]), np.asarray(result["axes"]["h"])
+    policies = {name: np.asarray(result["policy"][name], dtype=float) for name in ("k_next", "h_next")}
+    data = model_data(parse_document(document))
+    founds = choices_setup(data)
+    assert isinstance(founds, list)
+    rules, _ = grid_rules(data, founds, {name: table.reshape(-1) for name, table in policies.items()})
+    errors = result["diagnostics"]["euler_errors"]
+    for along, found in enumerate(founds):
+        reference, points = _grid_errors(policies["k_next"], policies["h_next"], k_grid, h_grid, along)
+        within = maximised(data, found, rules)
+        fixq, constrained = errors_at(data, found, BETA, rules[found.choice], points, (data, rules[found.choice]),
+                                      companions=(within, within))
+        assert not constrained.any()
+        assert np.abs(fixq - reference).max() <= 1e-9  # every test point
+        own = errors["by_choice"][found.choice]
+        assert own["constrained"] == 0 and own["points"] == reference.size
+        assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+        assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+    assert any("`effort`, setting no state, maximised out within the period" in note
+               for note in result["diagnostics"]["notes"])
+
+
+def test_grid_choices_beside_a_menu_effort_fall_as_the_grids_are_refined() -> None:
+    # One run (worst / mean log10): 16 × 12 points of (k, h) machines −1.12 / −1.77, tools −0.91 / −1.58;
+    # 32 × 24 machines −1.39 / −2.06, tools −1.27 / −1.94: about first order in the grid step.
+    coarse, fine = (solve(_grid_document(k, h))["diagnostics"]["euler_errors"]["by_choice"]
+                    for k, h in ((16, 12), (32, 24)))
+    for choice in ("k_next", "h_next"):
+        assert coarse[choice]["max_log10"] > fine[choice]["max_log10"] + 0.2
+        assert coarse[choice]["mean_log10"] > fine[choice]["mean_log10"] + 0.2
