@@ -337,3 +337,37 @@ def test_a_solved_continuous_choice_beside_tools_against_an_independent_computat
                         for row in own["profile"]["log10_error"]])
     assert np.array_equal(profile == -np.inf, worst == -np.inf)
     np.testing.assert_allclose(profile[worst > -np.inf], worst[worst > -np.inf], rtol=0, atol=1e-9)
+
+
+def test_draw_probabilities_moving_with_one_of_several_choices_get_a_note() -> None:
+    # Not measured: a spoilage drawn after the choice, likelier with more tools bought (invented), would add a term
+    # in the value's level to the tools' equation, which the several-choice measurement does not read.
+    document = _document()
+    model = document["model"]
+    model["shocks"]["spoil"] = {"iid": {"values": [0.0, 1.0], "probs": ["0.9 - 2 * h_next", "0.1 + 2 * h_next"]},
+                                "timing": "after_choice"}
+    model["reward"] = "log(c) - 0.1 * spoil"
+    note = ("Euler-equation errors not computed: with several choices that set tomorrow's states, draws whose "
+            "probabilities move with a choice or a chosen state are not measured")
+    assert choices_setup(model_data(parse_document(document))) == note
+    result = solve(document)
+    assert "euler_errors" not in result["diagnostics"] and note in result["diagnostics"]["notes"]
+    # The same beside a continuous choice (worker.continuous.setters_euler).
+    model["choices"]["k_next"]["continuous"] = True
+    model["hints"] = {"concave": True}
+    assert setters_setup(SimpleNamespace(others=("h_next",)), model_data(parse_document(document))) == note
+
+
+def test_a_continuous_choice_that_sets_no_state_beside_a_discrete_next_of_gets_a_note() -> None:
+    # Invented: the allowance shop's machines on their grid, and hours worked chosen anywhere in an interval.
+    document = _allowance_document(8)
+    model = document["model"]
+    model["choices"] = {"k_next": {"next_of": "k"}, "h_next": {"next_of": "h"},
+                        "hours": {"min": 0.0, "max": 1.0, "continuous": True}}
+    model["define"]["c"] = "y * (1 + 0.1 * hours) - k_next"
+    model["reward"] = "log(c) + log(w) - 0.2 * hours**2"
+    result = solve(document)
+    assert "euler_errors" not in result["diagnostics"]
+    assert ("Euler-equation errors were not measured: the continuous choice `hours` sets no state beside a discrete "
+            "choice that sets one; a continuous choice that sets no state is not maximised out within the period"
+            in result["diagnostics"]["notes"])
