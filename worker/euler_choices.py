@@ -37,7 +37,8 @@ choice's state, renormalised over all of them); ``define`` and ``profile`` are t
 largest error, so the profile's largest entry is still ``max_log10``; ``by_choice`` holds each choice's
 own errors (:func:`choices_errors`).  One of the choices may be continuous: its own equation is then read by
 the fitted problem's search (:mod:`worker.continuous.setters_euler`), the others' as here.  Draws whose
-probabilities move with a choice or a chosen state are not measured here (a note says so).
+probabilities move with a choice or its state add their terms in the value's level to that choice's equation
+(:func:`worker.euler_points.errors_at`, ``values``).
 """
 
 from __future__ import annotations
@@ -48,8 +49,8 @@ import numpy as np
 
 from worker.euler import pooled_weighted_mean
 from worker.euler_laws import SlopeParts
-from worker.euler_points import PointsRule
-from worker.euler_setup import EulerSetup, choice_setup, needs_value
+from worker.euler_points import PointsRule, ValueParts
+from worker.euler_setup import EulerSetup, choice_setup
 from worker.euler_states import grid_rule, states_errors
 from worker.euler_within import maximised, no_state_choices, within_reason
 from worker.feasibility import ModelData
@@ -93,9 +94,6 @@ def setting_setups(data: ModelData) -> list[EulerSetup] | str | None:
         one = choice_setup(data, position)
         if isinstance(one, str):
             return one.replace("not computed:", f"not computed (choice `{data.choices[j]}`):", 1)
-        if needs_value(one):
-            return ("Euler-equation errors not computed: with several choices that set tomorrow's states, draws "
-                    "whose probabilities move with a choice or a chosen state are not measured")
         found.append((j, one))
     return [one for _, one in sorted(found, key=lambda pair: pair[0])]
 
@@ -110,6 +108,7 @@ def choices_errors(
     *,
     tomorrow: tuple[ModelData, dict[str, PointsRule]] | None = None,
     slopes: SlopeParts | None = None,
+    values: ValueParts | None = None,
 ) -> dict[str, Any]:
     """Every choice's Euler-equation errors and their pool (see the module's docstring).
 
@@ -130,6 +129,9 @@ def choices_errors(
         The next period's model and rules; default ``data`` and ``rules``.
     slopes : SlopeParts, optional
         The value's slopes, where a law of motion moves with a chosen state or a choice (:mod:`worker.euler_laws`).
+    values : ValueParts, optional
+        The value read at points, where a draw's probability moves with a choice or its state
+        (:func:`worker.euler_points.errors_at`).
 
     Returns
     -------
@@ -144,7 +146,7 @@ def choices_errors(
             data, found, discount, rules[own], distribution, None if at_end is None else at_end[own],
             tomorrow=(data_next, rules_next[own]), pooling=distribution is not None,
             companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)),
-            slopes=slopes,
+            slopes=slopes, values=values,
         ))
         parts[-1]["state"] = found.state
     return pool_choices(founds, parts, distribution is not None)
@@ -189,12 +191,13 @@ def grid_rules(data: ModelData, founds: list[EulerSetup],
 
 
 def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, chosen: dict[str, np.ndarray],
-                   distribution: np.ndarray | None = None, slopes: SlopeParts | None = None) -> dict[str, Any]:
+                   distribution: np.ndarray | None = None, slopes: SlopeParts | None = None,
+                   values: ValueParts | None = None) -> dict[str, Any]:
     """``diagnostics.euler_errors`` of a solved model with several ``next_of`` choices (restricted to their
     grids); ``chosen`` holds each choice's values at every flat point, (n,); ``slopes`` the value's, where a law
     moves with a chosen state or a choice."""
     rules, at_end = grid_rules(data, founds, chosen)
-    return choices_errors(data, founds, discount, rules, distribution, at_end, slopes=slopes)
+    return choices_errors(data, founds, discount, rules, distribution, at_end, slopes=slopes, values=values)
 
 
 def pool_periods(periods: list[dict[str, Any]]) -> dict[str, Any]:

@@ -51,7 +51,8 @@ def euler_diagnostics(
         if isinstance(founds, list):
             chosen = problem.choice_values(outcome.policy)
             errors = choices_report(data, founds, doc.discount, chosen, distribution,
-                                    _law_slopes(problem, founds, outcome.value, doc.discount))
+                                    _law_slopes(problem, founds, outcome.value, doc.discount),
+                                    _chance_values(problem, founds, outcome.value, doc.discount))
             if within_note(data):
                 add_note(f"Euler-equation errors of the choices that set states{within_note(data)}")
             if isinstance(problem_diagnostics.get("timings"), dict):
@@ -69,7 +70,8 @@ def euler_diagnostics(
             return {}
         if founds is not None:
             errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution,
-                                          _law_slopes(problem, founds, outcome.value, doc.discount))
+                                          _law_slopes(problem, founds, outcome.value, doc.discount),
+                                          _chance_values(problem, founds, outcome.value, doc.discount))
             add_note(note)
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
@@ -133,3 +135,16 @@ def _law_slopes(problem: Any, founds: list[Any], value: np.ndarray, discount: fl
 
     slope = solve_slope(problem, problem.model_data, value)
     return (slope, slope, float(discount))
+
+
+def _chance_values(problem: Any, founds: list[Any], value: np.ndarray, discount: float) -> Any:
+    """The value as the solve reads it (:func:`worker.euler_states.solve_value`), today's and tomorrow's the same,
+    where a draw's probability moves with one of several choices or its state; else None."""
+    from worker.euler_setup import needs_value
+
+    if not any(needs_value(found) for found in founds):
+        return None
+    from worker.euler_states import solve_value
+
+    read = solve_value(problem, problem.model_data, value)
+    return (read, read, float(discount))

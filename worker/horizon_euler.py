@@ -67,7 +67,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     first, periods = outcome.first_period, plan.periods
     if periods - first < 2:
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
-    moving = needs_value(found)
+    moving = any(needs_value(one) for one in (founds if several_choices else setters) or [found])
 
     def after(t: int) -> np.ndarray:
         """``V_{t+1}``, the value period ``t`` was chosen against."""
@@ -134,7 +134,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             today, rules, at_end = choices_at(t)
             data_next, rules_next, _ = choices_at(t + 1)
             return choices_errors(today, founds, float(plan.discounts[t]), rules, None, at_end,
-                                  tomorrow=(data_next, rules_next), **extra)
+                                  tomorrow=(data_next, rules_next), values=values_at(t), **extra)
         if setters is not None:
             today, search = model_and_search(t)
             data_next, search_next = model_and_search(t + 1)
@@ -143,7 +143,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             _, rules_next, _ = choices_at(t + 1, setters)
             combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
             return setters_errors(today, setters, float(plan.discounts[t]), search, combined, rules, None, at_end,
-                                  tomorrow=(data_next, search_next, rules_next), **extra)
+                                  tomorrow=(data_next, search_next, rules_next), values=values_at(t), **extra)
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)

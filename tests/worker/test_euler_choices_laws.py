@@ -30,6 +30,7 @@ from worker.euler import TEST_POINTS_PER_GRID_POINT
 from worker.euler_choices import choices_errors, choices_setup, grid_rules
 from worker.euler_laws import value_slope
 from worker.euler_points import errors_at
+from worker.euler_states import value_reader
 from worker.feasibility import model_data
 from worker.solve import compile_document, solve
 
@@ -339,23 +340,62 @@ def test_a_solved_continuous_choice_beside_tools_against_an_independent_computat
     np.testing.assert_allclose(profile[worst > -np.inf], worst[worst > -np.inf], rtol=0, atol=1e-9)
 
 
-def test_draw_probabilities_moving_with_one_of_several_choices_get_a_note() -> None:
-    # Not measured: a spoilage drawn after the choice, likelier with more tools bought (invented), would add a term
-    # in the value's level to the tools' equation, which the several-choice measurement does not read.
-    document = _document()
+def _spoiling(document: dict[str, Any]) -> dict[str, Any]:
+    """Invented: a spoilage drawn after the choice, likelier with more tools bought, costing 0.1 in utility."""
     model = document["model"]
     model["shocks"]["spoil"] = {"iid": {"values": [0.0, 1.0], "probs": ["0.9 - 2 * h_next", "0.1 + 2 * h_next"]},
                                 "timing": "after_choice"}
     model["reward"] = "log(c) - 0.1 * spoil"
-    note = ("Euler-equation errors not computed: with several choices that set tomorrow's states, draws whose "
-            "probabilities move with a choice or a chosen state are not measured")
-    assert choices_setup(model_data(parse_document(document))) == note
+    return document
+
+
+def test_draw_probabilities_moving_with_one_of_several_choices_against_an_independent_computation() -> None:
+    # The tools' first-order condition carries Σ_d ∂p_d/∂h' (r_d + β EV_d) = 2 (−0.1) (tomorrow's state does not
+    # depend on the draw, so EV_d is the same for both): 1/c̃ = β Σ_z' P[z, z'] A2 y'/(h' c'') − 0.2, both grid
+    # policies read multilinearly by scipy; the machines' equation is the one above (the draw does not move with k').
+    document = _spoiling(_document())
     result = solve(document)
-    assert "euler_errors" not in result["diagnostics"] and note in result["diagnostics"]["notes"]
-    # The same beside a continuous choice (worker.continuous.setters_euler).
-    model["choices"]["k_next"]["continuous"] = True
-    model["hints"] = {"concave": True}
-    assert setters_setup(SimpleNamespace(others=("h_next",)), model_data(parse_document(document))) == note
+    assert result["status"] == "converged"
+    errors = result["diagnostics"]["euler_errors"]
+    grids = tuple(np.asarray(result["axes"][name]) for name in ("a", "k", "h"))
+    a_grid, k_grid, h_grid = grids
+    policy_k = np.asarray(result["policy"]["k_next"], dtype=float)
+    policy_h = np.asarray(result["policy"]["h_next"], dtype=float)
+    value = np.asarray(result["value"], dtype=float)
+    machines, _ = _machine_errors(policy_k, policy_h, value, grids)
+    read = [[RegularGridInterpolator(grids, table[..., j]) for j in range(Z_VALUES.size)]
+            for table in (policy_k, policy_h)]
+    a, k, h = (g.ravel() for g in np.meshgrid(a_grid, k_grid, _between(h_grid), indexing="ij"))
+    points = np.column_stack([a, k, h])
+    tools, plain = np.empty((a.size, Z_VALUES.size)), np.empty((a.size, Z_VALUES.size))
+    for j, z in enumerate(Z_VALUES):
+        xk, xh = read[0][j](points), read[1][j](points)
+        c = z * a * k**A1 * h**A2 - xk - xh
+        a_next = np.clip(a**RHO * (k / K_BAR) ** THETA, a_grid[0], a_grid[-1])
+        states = np.column_stack([a_next, xk, xh])
+        expected = np.zeros(a.size)
+        for jj, z_next in enumerate(Z_VALUES):
+            y_next = z_next * a_next * xk**A1 * xh**A2
+            expected += Z_CHAIN[j, jj] * A2 * y_next / (xh * (y_next - read[0][jj](states) - read[1][jj](states)))
+        tools[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected - 0.2) / c), 2.0**-56))
+        plain[:, j] = np.log10(np.maximum(np.abs(1 - 1.0 / (BETA * expected) / c), 2.0**-56))
+    data = model_data(parse_document(document))
+    founds = choices_setup(data)
+    assert isinstance(founds, list) and founds[0].chance_slopes is None and founds[1].chance_slopes is not None
+    for choice, reference in (("k_next", machines), ("h_next", tools)):
+        own = errors["by_choice"][choice]
+        assert own["constrained"] == 0 and own["undefined"] == 0 and own["points"] == reference.size
+        assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
+        assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+    # Every test point of the tools: fixq's per-point errors with its grid rules and value reading.
+    rules, _ = grid_rules(data, founds, {"k_next": policy_k.reshape(-1), "h_next": policy_h.reshape(-1)})
+    read_value = value_reader(data, value.reshape(-1))
+    fixq, _ = errors_at(data, founds[1], BETA, rules["h_next"], points, (data, rules["h_next"]),
+                        values=(read_value, read_value, BETA),
+                        companions=(lambda at: {"k_next": rules["k_next"](at)},) * 2)
+    assert np.abs(fixq - tools).max() <= 1e-9
+    # The term matters: without it the tools' |1 − c̃/c| would differ by several hundredths at some points.
+    assert np.abs(10.0**plain - 10.0**tools).max() > 0.03
 
 
 def test_a_continuous_choice_that_sets_no_state_beside_a_discrete_next_of_gets_a_note() -> None:

@@ -61,7 +61,7 @@ from worker.continuous.mixed_euler import Search, searcher
 from worker.euler import between_points
 from worker.euler_choices import grid_rules, pool_choices, setting_setups
 from worker.euler_laws import SlopeParts
-from worker.euler_points import PointsRule, combinations, environment, next_points
+from worker.euler_points import PointsRule, ValueParts, combinations, environment, next_points
 from worker.euler_setup import EulerSetup
 from worker.euler_states import states_errors
 from worker.euler_within import maximised, no_state_choices, within_note, within_reason
@@ -105,7 +105,7 @@ def _values_of(others: tuple[str, ...], combos: np.ndarray, search: Search) -> A
 def continuous_part(data: ModelData, found: EulerSetup, discount: float, search: Search,
                     combined: tuple[tuple[str, ...], np.ndarray], distribution: np.ndarray | None = None, *,
                     tomorrow: tuple[ModelData, Search] | None = None,
-                    slopes: SlopeParts | None = None) -> dict[str, Any]:
+                    slopes: SlopeParts | None = None, values: ValueParts | None = None) -> dict[str, Any]:
     """The continuous choice's errors (see the module's docstring), :func:`worker.euler_states.states_errors`'s
     keys; ``search`` is today's (points -> (choice, combination index)), ``combined`` the discrete choices' names
     and their combinations (rows, names), ``tomorrow`` the next period's model and search (default today's)."""
@@ -144,14 +144,15 @@ def continuous_part(data: ModelData, found: EulerSetup, discount: float, search:
 
     return states_errors(data, found, discount, today, distribution, None,
                          tomorrow=(data_next, lambda points: search_next(points)[0]),
-                         pooling=distribution is not None, companions=(beside, beside_next), slopes=slopes)
+                         pooling=distribution is not None, companions=(beside, beside_next), slopes=slopes,
+                         values=values)
 
 
 def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, search: Search,
                    combined: tuple[tuple[str, ...], np.ndarray], rules: dict[str, PointsRule],
                    distribution: np.ndarray | None = None, at_end: dict[str, np.ndarray] | None = None, *,
                    tomorrow: tuple[ModelData, Search, dict[str, PointsRule]] | None = None,
-                   slopes: SlopeParts | None = None) -> dict[str, Any]:
+                   slopes: SlopeParts | None = None, values: ValueParts | None = None) -> dict[str, Any]:
     """Every choice's errors and their pool: the continuous choice (the one not in ``combined``'s names) by
     :func:`continuous_part`, each discrete one along its state with every choice's grid ``rules`` (and
     ``at_end``, per choice, where its solved value is at an end of its state's grid), as
@@ -162,13 +163,13 @@ def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, s
     for found in founds:
         if found.choice not in combined[0]:
             part = continuous_part(data, found, discount, search, combined, distribution,
-                                   tomorrow=(data_next, search_next), slopes=slopes)
+                                   tomorrow=(data_next, search_next), slopes=slopes, values=values)
         else:
             part = states_errors(
                 data, found, discount, rules[found.choice], distribution,
                 None if at_end is None else at_end[found.choice], tomorrow=(data_next, rules_next[found.choice]),
                 pooling=weighted, companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)),
-                slopes=slopes)
+                slopes=slopes, values=values)
         part["state"] = found.state
         parts.append(part)
     return pool_choices(founds, parts, weighted)
@@ -176,7 +177,7 @@ def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, s
 
 def setters_report(problem: Any, founds: list[EulerSetup], v: np.ndarray, policy: np.ndarray, discount: float,
                    distribution: np.ndarray | None = None,
-                   slopes: SlopeParts | None = None) -> tuple[dict[str, Any], str]:
+                   slopes: SlopeParts | None = None, values: ValueParts | None = None) -> tuple[dict[str, Any], str]:
     """``(diagnostics.euler_errors, note)`` of a solved continuous choice beside discrete choices that set states
     (``founds`` from :func:`setters_setup`), ``v`` and ``policy`` the solve's; ``distribution`` the stationary one
     over the flat points, (n,)."""
@@ -184,7 +185,7 @@ def setters_report(problem: Any, founds: list[EulerSetup], v: np.ndarray, policy
     rules, at_end = grid_rules(data, founds, problem.choice_values(policy))
     combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
     errors = setters_errors(data, founds, discount, searcher(problem, v), combined, rules, distribution, at_end,
-                            slopes=slopes)
+                            slopes=slopes, values=values)
     own = errors["by_choice"][problem.choice]
     note = (f"Euler-equation errors of the continuous choice `{problem.choice}` read by the fitted problem's own "
             f"search: {own['constrained']:,} test points skipped (where a limit may bind, or tomorrow's best "
