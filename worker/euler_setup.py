@@ -72,8 +72,8 @@ def setup(data: ModelData) -> EulerSetup | str | None:
         return None
     if len(data.choices) != 1:
         return ("Euler-equation errors not computed: they are measured for models with one choice that sets "
-                "tomorrow's value of a state, several such choices and no other, or a continuous one beside "
-                "discrete choices")
+                "tomorrow's value of a state, several choices of which one or more set states (the others on grids "
+                "or menus), or a continuous one beside discrete choices")
     position = data.setter.index(0)
     if data.choice_is_menu[0] or data.state_grids[position].size < 2:
         return None

@@ -409,6 +409,11 @@ def test_solved_grid_choices_beside_a_menu_effort_against_an_independent_computa
         assert own["constrained"] == 0 and own["points"] == reference.size
         assert own["max_log10"] == pytest.approx(reference.max(), abs=1e-9)
         assert own["mean_log10"] == pytest.approx(reference.mean(), abs=1e-9)
+        # The stationary distribution of the report read linearly along the choice's state at the test points.
+        distribution = np.asarray(result["stationary"]["distribution"], dtype=float)  # (k, h, z)
+        weights = np.stack([RegularGridInterpolator((k_grid, h_grid), distribution[:, :, j])(points)
+                            for j in range(Z_VALUES.size)], axis=-1)
+        assert own["weighted_mean_log10"] == pytest.approx((weights * reference).sum() / weights.sum(), abs=1e-9)
     assert any("`effort`, setting no state, maximised out within the period" in note
                for note in result["diagnostics"]["notes"])
 
