@@ -46,7 +46,7 @@ def euler_diagnostics(
     mixed = bool(getattr(problem, "others", ()))
     from worker.euler_choices import choices_model, choices_report, choices_setup
 
-    if not mixed and choices_model(data):  # several next_of choices, each with its own equation
+    if not mixed and choices_model(data):  # the next_of choices each with its own equation
         founds = choices_setup(data)
         if isinstance(founds, list):
             chosen = problem.choice_values(outcome.policy)

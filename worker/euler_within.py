@@ -82,11 +82,11 @@ def maximised(data: ModelData, found: EulerSetup, rules: dict[str, PointsRule]) 
     shocks = data.shock_table[None, :, :]
 
     def beside(points: np.ndarray) -> dict[str, np.ndarray]:
-        x = rules[found.choice](points)
         setting = {name: rules[name](points) for name in companions}
-        columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if t != position}
         if not names:
             return setting
+        x = rules[found.choice](points)
+        columns = {name: points[:, t:t + 1] for t, name in enumerate(data.states) if t != position}
         columns.update(setting)
         k = points[:, position:position + 1]
         best = np.full(x.shape, -np.inf)

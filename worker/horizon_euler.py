@@ -48,7 +48,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     mixed = bool(getattr(problem, "others", ()))
     from worker.euler_choices import choices_errors, choices_model, choices_setup, grid_rules, pool_periods
 
-    several_choices = not mixed and choices_model(data)  # several next_of choices, each with its own equation
+    several_choices = not mixed and choices_model(data)  # the next_of choices each with its own equation
     founds = choices_setup(data) if several_choices else None
     setters = None  # beside discrete choices that set states too: each choice's own equation
     if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
