@@ -426,3 +426,42 @@ def test_grid_choices_beside_a_menu_effort_fall_as_the_grids_are_refined() -> No
     for choice in ("k_next", "h_next"):
         assert coarse[choice]["max_log10"] > fine[choice]["max_log10"] + 0.2
         assert coarse[choice]["mean_log10"] > fine[choice]["mean_log10"] + 0.2
+
+
+def test_one_grid_next_of_choice_beside_a_menu_effort() -> None:
+    # The machines alone (no tools): y = z k**A1 (1 + g · effort), c = y − k_next, reward log(c) − κ'' z effort.
+    # Brock & Mirman (1972): k' = A1 β y whatever the effort, which enters only log(1 + g · effort)/(1 − β A1)
+    # − κ'' z effort: taken at the low shock only (κ'' below).  Exact policy at rounding level, off by 3 % the
+    # derived error c̃/c = 1.03 (tomorrow ∂r/∂k' = A1/(k'(1 − s)) whatever the effort); and the solve measures it.
+    kappa = 0.12  # log(1.1)/(1 − 0.2375) = 0.125: between 0.9 κ'' and 1.1 κ''
+    model = {
+        "params": {"a1": A1, "g": GAIN, "kappa": kappa},
+        "states": {"k": {"min": 0.1, "max": 0.3, "points": 30}},
+        "shocks": {"z": {"markov": {"values": Z_VALUES.tolist(), "matrix": Z_CHAIN.tolist()}, "transform": "none"}},
+        "choices": {"effort": {"values": [0.0, 1.0]}, "k_next": {"next_of": "k"}},
+        "define": {"y": "z * k**a1 * (1 + g * effort)", "c": "y - k_next"},
+        "reward": "log(c) - kappa * z * effort",
+        "feasible": ["c > 0"],
+    }
+    document = grid_document(model, discount=BETA, method="howard")
+    document["solver"]["tolerance"] = 1e-10
+    document["report"] = {"euler_errors": True}
+    data = model_data(parse_document(document))
+    founds = choices_setup(data)
+    assert isinstance(founds, list) and [f.choice for f in founds] == ["k_next"]
+    effort = np.array([1.0, 0.0])
+    for ratio in (1.0, 1.03):
+        rules = {"k_next": lambda points, ratio=ratio: ratio * A1 * BETA * Z_VALUES[None, :] * (
+            1 + GAIN * effort[None, :]) * points[:, :1] ** A1}
+        own = choices_errors(data, founds, BETA, rules)["by_choice"]["k_next"]
+        assert own["constrained"] == 0 and own["points"] >= TEST_POINTS_PER_GRID_POINT * 30 * 2
+        if ratio == 1.0:
+            assert own["max_log10"] < -13
+        else:
+            assert own["max_log10"] == pytest.approx(math.log10(0.03), abs=1e-9)
+    result = solve(document)
+    assert (np.asarray(result["policy"]["effort"]) == effort[None, :]).all()
+    errors = result["diagnostics"]["euler_errors"]
+    assert list(errors["by_choice"]) == ["k_next"] and errors["points"] > 0
+    assert any("`effort`, setting no state, maximised out within the period" in note
+               for note in result["diagnostics"]["notes"])
