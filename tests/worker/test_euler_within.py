@@ -298,6 +298,21 @@ def test_a_law_that_moves_with_the_effort_gets_a_note() -> None:
                "that sets no state, so that choice is not maximised out within the period" in note for note in notes)
 
 
+def test_a_draw_probability_that_moves_with_the_effort_gets_a_note() -> None:
+    # Grid choices beside a menu effort that makes a breakdown after the choice less likely (invented): tomorrow's
+    # chances would carry the effort.
+    document = _grid_document()
+    model = document["model"]
+    chances = ["0.8 + 0.1 * effort", "0.2 - 0.1 * effort"]
+    model["shocks"]["breakdown"] = {"iid": {"values": [0.0, 1.0], "probs": chances}, "timing": "after_choice"}
+    model["reward"] = "log(c) - kappa * z * effort - 0.1 * breakdown"
+    note = ("Euler-equation errors not computed: a probability of a draw after the choice moves with `effort`, a "
+            "choice that sets no state, so that choice is not maximised out within the period")
+    assert choices_setup(model_data(parse_document(document))) == note
+    result = solve(document)
+    assert "euler_errors" not in result["diagnostics"] and note in result["diagnostics"]["notes"]
+
+
 # Both kinds on their grids beside a menu effort (worker.euler_choices with worker.euler_within): the workshop of
 # test_euler_choices.py (output eaten or put into machines and tools, c = y − k_next − h_next) with the effort above.
 # Exact policy by the same guess and verify: k' = A1 β y, h' = A2 β y (y with the effort); the effort enters only
