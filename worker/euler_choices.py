@@ -11,8 +11,10 @@ with ``c_i`` the define through which ``x_i`` enters the reward (the same define
 household).  The first-order condition is the partial derivative of ``r(s, x) + β E V(s')`` in ``x_i``,
 and the envelope condition the total derivative of ``V(s) = r(s, x(s)) + β E V(s')`` in ``k_i``: every
 choice's own first-order condition cancels the terms in ``∂x_j/∂k_i``, and what is left is the reward's
-slope in ``k_i`` at the chosen choices, ``∂V/∂k_i = ∂r/∂k_i`` — as long as no state's law of motion moves
-with a chosen state or a choice (:func:`worker.euler_setup.choice_setup` says so with a note otherwise).  A
+slope in ``k_i`` at the chosen choices, ``∂V/∂k_i = ∂r/∂k_i`` — plus, where another state's law of motion
+moves with ``k_i`` or ``x_i``, that law's terms in the value's slopes (:mod:`worker.euler_laws`, ``slopes``).
+Choices on grids or menus that set no state may stand beside them (one ``next_of`` choice is then enough):
+they are maximised out within the period (:mod:`worker.euler_within`) and have no equation of their own.  A
 choice at a limit (the illiquid account empty) has no equation of its own, but leaves the others': at a
 corner that binds nearby ``∂x_j/∂k_i = 0``.  ``c̃_i`` solves the equation of choice ``i`` and its error
 at a point is ``|1 − c̃_i/c_i|``.
@@ -35,7 +37,8 @@ choice's state, renormalised over all of them); ``define`` and ``profile`` are t
 largest error, so the profile's largest entry is still ``max_log10``; ``by_choice`` holds each choice's
 own errors (:func:`choices_errors`).  One of the choices may be continuous: its own equation is then read by
 the fitted problem's search (:mod:`worker.continuous.setters_euler`), the others' as here.  Draws whose
-probabilities move with a choice or a chosen state are not measured here (a note says so).
+probabilities move with a choice or its state add their terms in the value's level to that choice's equation
+(:func:`worker.euler_points.errors_at`, ``values``).
 """
 
 from __future__ import annotations
@@ -45,30 +48,43 @@ from typing import Any
 import numpy as np
 
 from worker.euler import pooled_weighted_mean
-from worker.euler_points import Companions, PointsRule
-from worker.euler_setup import EulerSetup, choice_setup, needs_value
+from worker.euler_laws import SlopeParts
+from worker.euler_points import PointsRule, ValueParts
+from worker.euler_setup import EulerSetup, choice_setup
 from worker.euler_states import grid_rule, states_errors
+from worker.euler_within import maximised, no_state_choices, within_reason
 from worker.feasibility import ModelData
 
 __all__ = ["choices_errors", "choices_report", "choices_setup", "grid_rules", "pool_choices", "pool_periods",
-           "several_next_of"]
+           "setting_setups", "choices_model"]
 
 _PER_CHOICE = ("state", "define", "max_log10", "mean_log10", "points", "constrained", "undefined", "profile",
                "weighted_mean_log10")
 """The keys of each entry of ``by_choice``."""
 
 
-def several_next_of(data: ModelData) -> bool:
-    """Whether every choice of ``data`` is ``next_of`` a state, and there are at least two."""
-    chosen = [j for j in data.setter if j is not None]
-    return len(chosen) >= 2 and len(chosen) == len(data.choices)
+def choices_model(data: ModelData) -> bool:
+    """Whether ``data`` has several choices of which at least one is ``next_of`` a state: this module's model
+    when none is continuous (the others set no state: :mod:`worker.euler_within`)."""
+    return len(data.choices) >= 2 and any(j is not None for j in data.setter)
 
 
 def choices_setup(data: ModelData) -> list[EulerSetup] | str | None:
-    """Each choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices, a note why the errors
-    are not measured, or None when the model is not one of several ``next_of`` choices and no other."""
-    if not several_next_of(data):
+    """Each ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices, a note why
+    the errors are not measured, or None when the model is not one of several choices of which one is
+    ``next_of`` (or one is a menu, or its state's grid has one point)."""
+    if not choices_model(data):
         return None
+    reason = within_reason(data, no_state_choices(data))
+    if reason:
+        return f"Euler-equation errors not computed: {reason}"
+    return setting_setups(data)
+
+
+def setting_setups(data: ModelData) -> list[EulerSetup] | str | None:
+    """Each ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` in the order of the choices (the others,
+    companions), a note why the errors are not measured, or None when one is a menu or its state's grid has one
+    point."""
     found: list[tuple[int, EulerSetup]] = []
     for position, j in enumerate(data.setter):
         if j is None:
@@ -78,17 +94,8 @@ def choices_setup(data: ModelData) -> list[EulerSetup] | str | None:
         one = choice_setup(data, position)
         if isinstance(one, str):
             return one.replace("not computed:", f"not computed (choice `{data.choices[j]}`):", 1)
-        if needs_value(one):
-            return ("Euler-equation errors not computed: with several choices that set tomorrow's states, draws "
-                    "whose probabilities move with a choice or a chosen state are not measured")
         found.append((j, one))
     return [one for _, one in sorted(found, key=lambda pair: pair[0])]
-
-
-def _beside(found: EulerSetup, rules: dict[str, PointsRule]) -> Companions:
-    """The other choices' values at points, by their rules."""
-    others = [choice for _, choice in found.companions]
-    return lambda points: {choice: rules[choice](points) for choice in others}
 
 
 def choices_errors(
@@ -100,6 +107,8 @@ def choices_errors(
     at_end: dict[str, np.ndarray] | None = None,
     *,
     tomorrow: tuple[ModelData, dict[str, PointsRule]] | None = None,
+    slopes: SlopeParts | None = None,
+    values: ValueParts | None = None,
 ) -> dict[str, Any]:
     """Every choice's Euler-equation errors and their pool (see the module's docstring).
 
@@ -118,6 +127,11 @@ def choices_errors(
         Per choice, (grid points, shock points): where the solved choice is at an end of its state's grid.
     tomorrow : (ModelData, rules), optional
         The next period's model and rules; default ``data`` and ``rules``.
+    slopes : SlopeParts, optional
+        The value's slopes, where a law of motion moves with a chosen state or a choice (:mod:`worker.euler_laws`).
+    values : ValueParts, optional
+        The value read at points, where a draw's probability moves with a choice or its state
+        (:func:`worker.euler_points.errors_at`).
 
     Returns
     -------
@@ -131,7 +145,8 @@ def choices_errors(
         parts.append(states_errors(
             data, found, discount, rules[own], distribution, None if at_end is None else at_end[own],
             tomorrow=(data_next, rules_next[own]), pooling=distribution is not None,
-            companions=(_beside(found, rules), _beside(found, rules_next)),
+            companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)),
+            slopes=slopes, values=values,
         ))
         parts[-1]["state"] = found.state
     return pool_choices(founds, parts, distribution is not None)
@@ -176,11 +191,13 @@ def grid_rules(data: ModelData, founds: list[EulerSetup],
 
 
 def choices_report(data: ModelData, founds: list[EulerSetup], discount: float, chosen: dict[str, np.ndarray],
-                   distribution: np.ndarray | None = None) -> dict[str, Any]:
+                   distribution: np.ndarray | None = None, slopes: SlopeParts | None = None,
+                   values: ValueParts | None = None) -> dict[str, Any]:
     """``diagnostics.euler_errors`` of a solved model with several ``next_of`` choices (restricted to their
-    grids); ``chosen`` holds each choice's values at every flat point, (n,)."""
+    grids); ``chosen`` holds each choice's values at every flat point, (n,); ``slopes`` the value's, where a law
+    moves with a chosen state or a choice."""
     rules, at_end = grid_rules(data, founds, chosen)
-    return choices_errors(data, founds, discount, rules, distribution, at_end)
+    return choices_errors(data, founds, discount, rules, distribution, at_end, slopes=slopes, values=values)
 
 
 def pool_periods(periods: list[dict[str, Any]]) -> dict[str, Any]:

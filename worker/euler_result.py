@@ -29,6 +29,7 @@ def euler_diagnostics(
         return {}
     from worker.euler import euler_report
     from worker.euler_setup import needs_value
+    from worker.euler_within import within_note
     from worker.gridproblem import GridProblem
 
     def add_note(text: str) -> None:
@@ -43,13 +44,17 @@ def euler_diagnostics(
     choice = data.choices[0]
     distribution = None if stationary is None else np.asarray(stationary["distribution"], dtype=np.float64)
     mixed = bool(getattr(problem, "others", ()))
-    from worker.euler_choices import choices_report, choices_setup, several_next_of
+    from worker.euler_choices import choices_model, choices_report, choices_setup
 
-    if not mixed and several_next_of(data):  # several next_of choices, each with its own equation
+    if not mixed and choices_model(data):  # the next_of choices each with its own equation
         founds = choices_setup(data)
         if isinstance(founds, list):
             chosen = problem.choice_values(outcome.policy)
-            errors = choices_report(data, founds, doc.discount, chosen, distribution)
+            errors = choices_report(data, founds, doc.discount, chosen, distribution,
+                                    _law_slopes(problem, founds, outcome.value, doc.discount),
+                                    _chance_values(problem, founds, outcome.value, doc.discount))
+            if within_note(data):
+                add_note(f"Euler-equation errors of the choices that set states{within_note(data)}")
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
             return {"euler_errors": errors}
@@ -64,7 +69,9 @@ def euler_diagnostics(
             add_note(founds)
             return {}
         if founds is not None:
-            errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution)
+            errors, note = setters_report(problem, founds, outcome.value, outcome.policy, doc.discount, distribution,
+                                          _law_slopes(problem, founds, outcome.value, doc.discount),
+                                          _chance_values(problem, founds, outcome.value, doc.discount))
             add_note(note)
             if isinstance(problem_diagnostics.get("timings"), dict):
                 problem_diagnostics["timings"]["euler_s"] = time.perf_counter() - started
@@ -117,3 +124,27 @@ def _setup(problem: Any, data: Any, mixed: bool) -> Any:
     from worker.euler_setup import setup
 
     return setup(data)
+
+
+def _law_slopes(problem: Any, founds: list[Any], value: np.ndarray, discount: float) -> Any:
+    """The value's slopes as the solve reads the value (:func:`worker.euler_laws.solve_slope`), today's and
+    tomorrow's the same, where a law of motion moves with one of several choices or its state; else None."""
+    if not any(found.laws for found in founds):
+        return None
+    from worker.euler_laws import solve_slope
+
+    slope = solve_slope(problem, problem.model_data, value)
+    return (slope, slope, float(discount))
+
+
+def _chance_values(problem: Any, founds: list[Any], value: np.ndarray, discount: float) -> Any:
+    """The value as the solve reads it (:func:`worker.euler_states.solve_value`), today's and tomorrow's the same,
+    where a draw's probability moves with one of several choices or its state; else None."""
+    from worker.euler_setup import needs_value
+
+    if not any(needs_value(found) for found in founds):
+        return None
+    from worker.euler_states import solve_value
+
+    read = solve_value(problem, problem.model_data, value)
+    return (read, read, float(discount))

@@ -6,7 +6,7 @@ differentiably.  When every other state moves by a law of motion that does not m
 (directly or through a define), the envelope condition ``∂V/∂k = ∂r/∂k`` holds at the chosen choice and
 tomorrow's marginal value needs the policy alone; a law that moves with them adds terms in the value's
 slope in its state (:mod:`worker.euler_laws`, :attr:`EulerSetup.laws`).  With several ``next_of`` choices
-each has its own setup (:func:`choice_setup`, :mod:`worker.euler_choices`), every law closed.  Shocks
+each has its own setup (:func:`choice_setup`, :mod:`worker.euler_choices`), its own laws.  Shocks
 drawn after the choice are allowed when ``c`` and its marginal reward do not change with the draw
 (:func:`_draw_form` says why); probabilities that move with ``k`` or ``x`` add a term in the value's level
 (:func:`needs_value`).
@@ -47,8 +47,8 @@ class EulerSetup:
     and ``state_slope``); None when no probability moves.  The errors then need the value
     (:func:`needs_value`)."""
     laws: tuple[OpenLaw, ...] = ()
-    """The other states' laws of motion that move with ``k`` or ``x`` (one choice only): their slopes, whose
-    terms need the value's slopes (:mod:`worker.euler_laws`)."""
+    """The other states' laws of motion that move with ``k`` or ``x`` (with several ``next_of`` choices, this
+    choice's and its state's): their slopes, whose terms need the value's slopes (:mod:`worker.euler_laws`)."""
     companions: tuple[tuple[str, str], ...] = ()
     """With several ``next_of`` choices (:mod:`worker.euler_choices`): ``(state, choice)`` of each of the others,
     whose values the measurement holds at the policy's and whose states move to them tomorrow."""
@@ -72,8 +72,8 @@ def setup(data: ModelData) -> EulerSetup | str | None:
         return None
     if len(data.choices) != 1:
         return ("Euler-equation errors not computed: they are measured for models with one choice that sets "
-                "tomorrow's value of a state, several such choices and no other, or a continuous one beside "
-                "discrete choices")
+                "tomorrow's value of a state, several choices of which one or more set states (the others on grids "
+                "or menus), or a continuous one beside discrete choices")
     position = data.setter.index(0)
     if data.choice_is_menu[0] or data.state_grids[position].size < 2:
         return None
@@ -86,8 +86,9 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
 
     With several such choices each has its own equation: the first-order condition in its choice ``x_i``
     (the others held at the policy's) and the envelope condition in its state ``k_i``, as for one choice,
-    ``∂r/∂c · ∂c/∂x_i = −β E[∂r/∂k_i(s')]``; that needs every law of the states no choice sets to be free of
-    every chosen state and every choice (:func:`_open_law`).
+    ``∂r/∂c · ∂c/∂x_i = −β E[∂r/∂k_i(s')]``; a law of a state no choice sets that moves with ``k_i`` or ``x_i``
+    adds its terms in the value's slopes (:mod:`worker.euler_laws`) to that choice's equation (one that moves
+    only with the others' choices or states is not in it).
     """
     j = data.setter[position]
     assert j is not None
@@ -101,11 +102,6 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
     define, reason = _carrier(defines, reward, choice, moving)
     if define is None:
         return f"Euler-equation errors not computed: {reason}"
-    if companions:  # several next_of choices: every other law must close (no value slopes there)
-        reason = _open_law(data, defines, (state, *(pair[0] for pair in companions)),
-                           (choice, *(pair[1] for pair in companions)))
-        if reason:
-            return f"Euler-equation errors not computed: {reason}"
     try:
         after = slope_trees(defines, define, skip_own=True)
         marginal = _slopes.derivative(reward, define, after)
@@ -127,9 +123,8 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
     except _slopes.NotSmooth as error:
         return f"Euler-equation errors not computed: a draw's probability is not differentiable ({error})"
     try:
-        laws = () if companions else open_laws(data, {state, *_depends(defines, state)},
-                                               {choice, *_depends(defines, choice)}, state, choice, in_choice,
-                                               in_state)
+        laws = open_laws(data, {state, *_depends(defines, state)}, {choice, *_depends(defines, choice)}, state,
+                         choice, in_choice, in_state)
     except _slopes.NotSmooth as error:
         return f"Euler-equation errors not computed: a law of motion is not differentiable ({error})"
     later = {name: (defines[name], derived) for name, derived in after.items()}
@@ -157,29 +152,6 @@ def _chance_slopes(data: ModelData, defines: dict[str, Node], state: str, choice
             row.append((in_x, in_k))
         out.append(tuple(row))
     return tuple(out) if moving else None
-
-
-def _open_law(data: ModelData, defines: dict[str, Node], states: tuple[str, ...], choices: tuple[str, ...]) -> str:
-    """Why the envelope condition does not close over the other states' laws of motion ("" when it does).
-
-    With ``y' = g(y, z)`` free of the chosen states ``k`` and of the choices, ``∂V/∂k`` is the reward's
-    slope in ``k`` at the chosen choice; a law that moves with ``k`` or with a choice would add
-    ``β E ∂V/∂y' · ∂g/∂k``, a slope of the value the policy alone does not give.  ``states`` and ``choices``
-    start with the measured choice's own.
-    """
-    moved: dict[str, bool] = {}
-    for name in (*states, *choices):
-        moved.update(_depends(defines, name))
-    for position, law in data.source.next:
-        used = names_in(law.tree)
-        triggers = sorted(name for name in used if name in states or name in choices or name in moved)
-        if triggers:
-            state, law_of = states[0], data.states[position]
-            moves = (f"moves with `{state}` or with the choice `{choices[0]}`" if len(choices) == 1 else
-                     f"moves with `{triggers[0]}` (a state a choice sets, a choice, or a define of them)")
-            return (f"the law of motion of `{law_of}` {moves}, so tomorrow's marginal value of `{state}` would need "
-                    f"the slope of the value in `{law_of}`, which the policy alone does not give")
-    return ""
 
 
 def _draw_form(data: ModelData, defines: dict[str, Node], state: str, choice: str, define: str,

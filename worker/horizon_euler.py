@@ -38,6 +38,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     from worker.euler import EulerSetup, euler_errors, grid_policy, setup
     from worker.euler_setup import needs_value
     from worker.euler_states import solve_value
+    from worker.euler_within import within_note
     from worker.feasibility import period_params
 
     data = getattr(problem, "model_data", None)
@@ -45,9 +46,9 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
         return {}, "Euler-equation errors were not measured: they apply to grid models"
     continuous = getattr(problem, "choose_at", None) is not None
     mixed = bool(getattr(problem, "others", ()))
-    from worker.euler_choices import choices_errors, choices_setup, grid_rules, pool_periods, several_next_of
+    from worker.euler_choices import choices_errors, choices_model, choices_setup, grid_rules, pool_periods
 
-    several_choices = not mixed and several_next_of(data)  # several next_of choices, each with its own equation
+    several_choices = not mixed and choices_model(data)  # the next_of choices each with its own equation
     founds = choices_setup(data) if several_choices else None
     setters = None  # beside discrete choices that set states too: each choice's own equation
     if mixed:  # a continuous choice beside discrete ones: at the chosen combination of the others
@@ -66,7 +67,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     first, periods = outcome.first_period, plan.periods
     if periods - first < 2:
         return {}, "Euler-equation errors were not measured: they need two periods solved, today's and tomorrow's"
-    moving = needs_value(found)
+    moving = any(needs_value(one) for one in (founds if several_choices else setters) or [found])
 
     def after(t: int) -> np.ndarray:
         """``V_{t+1}``, the value period ``t`` was chosen against."""
@@ -121,12 +122,19 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                 *grid_rules(data, setups, chosen))
 
     def measured(t: int) -> dict[str, Any]:
+        extra = {}
+        if any(one.laws for one in (founds if several_choices else setters) or [found]):
+            # laws moving with k or x: the slopes of V_{t+1} read today and of V_{t+2} tomorrow
+            from worker.euler_laws import solve_slope
+
+            extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
+                               float(plan.discounts[t + 1]))
         if several_choices:
             assert isinstance(founds, list)
             today, rules, at_end = choices_at(t)
             data_next, rules_next, _ = choices_at(t + 1)
             return choices_errors(today, founds, float(plan.discounts[t]), rules, None, at_end,
-                                  tomorrow=(data_next, rules_next))
+                                  tomorrow=(data_next, rules_next), values=values_at(t), **extra)
         if setters is not None:
             today, search = model_and_search(t)
             data_next, search_next = model_and_search(t + 1)
@@ -135,13 +143,7 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             _, rules_next, _ = choices_at(t + 1, setters)
             combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
             return setters_errors(today, setters, float(plan.discounts[t]), search, combined, rules, None, at_end,
-                                  tomorrow=(data_next, search_next, rules_next))
-        extra = {}
-        if found.laws:  # laws moving with k or x: the slopes of V_{t+1} read today and of V_{t+2} tomorrow
-            from worker.euler_laws import solve_slope
-
-            extra["slopes"] = (solve_slope(problem, data, after(t)), solve_slope(problem, data, after(t + 1)),
-                               float(plan.discounts[t + 1]))
+                                  tomorrow=(data_next, search_next, rules_next), values=values_at(t), **extra)
         if mixed:
             today, search = model_and_search(t)
             searches.pop(t - 1, None)
@@ -188,10 +190,11 @@ def euler_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
                f"{result.get('by_choice', {}).get(problem.choice, {}).get('constrained', 0):,} test points "
                "skipped in all periods (where a limit may bind, or tomorrow's best "
                "combination of the others switches next to tomorrow's state, where the value function has a kink); "
-               "the other choices' own errors read every policy linearly between grid points" if mixed else
+               "the other choices' own errors read every policy linearly between grid points"
+               + within_note(data) if mixed else
                "; the policy between grid points is the endogenous grid method's own (linear along its grid)"
                if plan.stepper is not None else
-               "; the policy between grid points is each period's own search" if continuous else ""))
+               "; the policy between grid points is each period's own search" if continuous else within_note(data)))
     return {"euler_errors": result}, note
 
 

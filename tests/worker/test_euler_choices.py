@@ -199,16 +199,17 @@ def test_a_finite_horizon_against_the_independent_computation() -> None:
     assert errors["points"] == sum(sum(part.size for part in parts) for parts in everything.values())
 
 
-def test_a_law_that_moves_with_a_chosen_state_gets_a_note_naming_the_choice() -> None:
-    # A third state whose law uses tools: tomorrow's marginal value of h would need ∂V/∂q.
+def test_a_law_that_moves_with_a_chosen_state_is_in_that_choice_s_equation() -> None:
+    # A third state whose law uses tools: the tools' equation carries ∂V/∂q (worker.euler_laws; checked against the
+    # exact policy and an independent computation in test_euler_choices_laws.py), the machines' does not.
     states = {**WORKSHOP["states"], "q": {"min": 0.9, "max": 1.1, "points": 3}}
     document = _document(states=states, next={"q": "0.5 + 0.5 * q * (h / 0.05)**0.01"},
                          define={"y": "z * q * k**a1 * h**a2", "c": "y - k_next - h_next"})
     found = choices_setup(model_data(parse_document(document)))
-    assert isinstance(found, str) and "(choice `k_next`)" in found and "law of motion of `q` moves with `h`" in found
+    assert isinstance(found, list) and found[0].laws == () and len(found[1].laws) == 1
     result = solve(document)
-    assert "euler_errors" not in result["diagnostics"]
-    assert any("law of motion of `q`" in note for note in result["diagnostics"]["notes"])
+    assert set(result["diagnostics"]["euler_errors"]["by_choice"]) == {"k_next", "h_next"}
+    assert not any("law of motion of `q`" in note for note in result["diagnostics"].get("notes", []))
 
 
 # A continuous choice beside a discrete one that sets a state (worker.continuous.setters_euler): machines ``k``

@@ -597,3 +597,31 @@ def test_beside_a_discrete_choice_a_finite_horizon_against_the_independent_compu
         points += int(measured.sum())
     assert errors["points"] == points and errors["undefined"] == 0
     assert errors["constrained"] == 2 * reference.size - points
+
+
+@pytest.mark.parametrize("law", ["state", "choice"])
+def test_beside_a_discrete_choice_the_weighted_mean_is_the_independent_one(law: str) -> None:
+    # weighted_mean_log10 of the capital choice beside the effort: every point measured (the independent errors and
+    # rule above) weighted by the stationary distribution of the report, read linearly along k at each grid point
+    # of a and each shock point, renormalised over the points measured (in whichever combination: one per point).
+    document = _effort_document(12, 3, "linear", law)
+    document["report"]["stationary"] = True
+    result = solve(document)
+    assert result["status"] == "converged"
+    _, problem = compile_document(document)
+    a_grid, k_grid = problem.model_data.state_grids
+    value = np.asarray(result["value"], dtype=float).reshape(-1)
+    reference, measured = _effort_errors(problem, law, value, value)
+    stationary = np.asarray(result["stationary"]["distribution"], dtype=float).reshape(a_grid.size, k_grid.size, 2)
+    assert stationary.sum() == pytest.approx(1.0, abs=1e-9) and stationary.min() >= 0
+    parts = math.ceil(10 * k_grid.size / (k_grid.size - 1))
+    k_test = (k_grid[:-1, None] + ((np.arange(parts) + 0.5) / parts)[None, :] * np.diff(k_grid)[:, None]).ravel()
+    weights = np.stack([np.stack([np.interp(k_test, k_grid, stationary[i, :, j]) for j in range(2)], axis=1)
+                        for i in range(a_grid.size)])  # (a, k test values, e), as reference
+    expected = float(weights[measured] @ reference[measured] / weights[measured].sum())
+    errors = result["diagnostics"]["euler_errors"]
+    assert errors["points"] == measured.sum()
+    assert errors["weighted_mean_log10"] == pytest.approx(expected, abs=1e-9)
+    # The weights matter: the stationary mass sits where the errors differ from their plain mean (measured, one run:
+    # law in k weighted −1.28415 both ways, plain mean −1.563; law in the capital chosen −1.70025, plain −1.689).
+    assert abs(expected - reference[measured].mean()) > 1e-3

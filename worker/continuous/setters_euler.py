@@ -2,9 +2,11 @@
 
 An invented workshop choosing tomorrow's machines ``k`` anywhere in their interval (``k_next``, continuous,
 ``next_of`` ``k``) and tomorrow's tools ``h`` on the grid of ``h`` (``h_next``, ``next_of`` ``h``): every choice
-sets a state, one of them continuous (:func:`setters_setup`; a discrete choice that sets no state beside them
-is not measured here, a note says so).  Each choice has its own Euler equation (Judd 1992), as in
-:mod:`worker.euler_choices`.
+sets a state, one of them continuous (:func:`setters_setup`), or, beside them, discrete choices that set no
+state (its daily effort, say), maximised out within the period (:mod:`worker.euler_within`: where no law of
+motion and no draw's probability uses them; a note says which does otherwise).  Each choice that sets a state
+has its own Euler equation (Judd 1992), as in :mod:`worker.euler_choices`; a choice that sets none has no
+equation of its own and is held at its value in the others'.
 
 The continuous choice's equation
 --------------------------------
@@ -41,6 +43,9 @@ Each discrete choice's own equation is measured as :mod:`worker.euler_choices` m
 to its grid: along its own state between grid points, every choice's policy read multilinearly from the
 solved grid policy (:func:`worker.euler_choices.grid_rules`), the continuous one's too — the search cannot
 be asked for an ``h'`` between grid points, and the error so measured shows how coarse the grid of ``h`` is.
+A choice that sets no state is there the value of its grid with the best expected reward today, the setting
+choices at their values read so (:func:`worker.euler_within.maximised`), today and tomorrow; in the continuous
+choice's equation it is the search's, part of the combination whose switches skip a point.
 
 Reported: the pool of :func:`worker.euler_choices.pool_choices` (``by_choice`` each choice's own).  A finite
 horizon measures each period against the next (:func:`worker.horizon_euler.euler_by_period` passes ``tomorrow``).
@@ -54,25 +59,34 @@ import numpy as np
 
 from worker.continuous.mixed_euler import Search, searcher
 from worker.euler import between_points
-from worker.euler_choices import choices_setup, grid_rules, pool_choices, several_next_of
-from worker.euler_points import PointsRule, combinations, environment, next_points
+from worker.euler_choices import grid_rules, pool_choices, setting_setups
+from worker.euler_laws import SlopeParts
+from worker.euler_points import PointsRule, ValueParts, combinations, environment, next_points
 from worker.euler_setup import EulerSetup
 from worker.euler_states import states_errors
+from worker.euler_within import maximised, no_state_choices, within_note, within_reason
 from worker.feasibility import ModelData
 
 __all__ = ["continuous_part", "setters_errors", "setters_report", "setters_setup"]
 
 
 def setters_setup(problem: Any, data: ModelData) -> list[EulerSetup] | str | None:
-    """Every choice's :class:`~worker.euler_setup.EulerSetup` (the model's order) of a continuous choice beside
-    discrete ones of which one sets a state; a note why the errors are not measured; None when no other choice
-    sets a state (:mod:`worker.continuous.mixed_euler`'s case)."""
+    """Every ``next_of`` choice's :class:`~worker.euler_setup.EulerSetup` (the model's order) of a continuous
+    choice beside discrete ones of which one sets a state (the others setting none, maximised out within the
+    period: :mod:`worker.euler_within`); a note why the errors are not measured; None when no other choice sets a
+    state (:mod:`worker.continuous.mixed_euler`'s case)."""
     if not any(data.setter.count(data.choices.index(name)) for name in problem.others):
         return None
-    if not several_next_of(data):
-        return ("Euler-equation errors were not measured: beside a continuous choice and another choice that sets "
-                "tomorrow's value of a state, a choice that sets no state is not measured")
-    founds = choices_setup(data)
+    continuous = next(name for name in data.choices if name not in problem.others)
+    if not data.setter.count(data.choices.index(continuous)):
+        return (f"Euler-equation errors were not measured: the continuous choice `{continuous}` sets no state "
+                "beside a discrete choice that sets one; a continuous choice that sets no state is not maximised "
+                "out within the period")
+    free = no_state_choices(data)
+    reason = within_reason(data, free)
+    if reason:
+        return f"Euler-equation errors were not measured: {reason}"
+    founds = setting_setups(data)
     if isinstance(founds, list):
         return founds
     return founds or ("Euler-equation errors were not measured: beside a continuous choice, the other choices that "
@@ -90,7 +104,8 @@ def _values_of(others: tuple[str, ...], combos: np.ndarray, search: Search) -> A
 
 def continuous_part(data: ModelData, found: EulerSetup, discount: float, search: Search,
                     combined: tuple[tuple[str, ...], np.ndarray], distribution: np.ndarray | None = None, *,
-                    tomorrow: tuple[ModelData, Search] | None = None) -> dict[str, Any]:
+                    tomorrow: tuple[ModelData, Search] | None = None,
+                    slopes: SlopeParts | None = None, values: ValueParts | None = None) -> dict[str, Any]:
     """The continuous choice's errors (see the module's docstring), :func:`worker.euler_states.states_errors`'s
     keys; ``search`` is today's (points -> (choice, combination index)), ``combined`` the discrete choices' names
     and their combinations (rows, names), ``tomorrow`` the next period's model and search (default today's)."""
@@ -129,13 +144,15 @@ def continuous_part(data: ModelData, found: EulerSetup, discount: float, search:
 
     return states_errors(data, found, discount, today, distribution, None,
                          tomorrow=(data_next, lambda points: search_next(points)[0]),
-                         pooling=distribution is not None, companions=(beside, beside_next))
+                         pooling=distribution is not None, companions=(beside, beside_next), slopes=slopes,
+                         values=values)
 
 
 def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, search: Search,
                    combined: tuple[tuple[str, ...], np.ndarray], rules: dict[str, PointsRule],
                    distribution: np.ndarray | None = None, at_end: dict[str, np.ndarray] | None = None, *,
-                   tomorrow: tuple[ModelData, Search, dict[str, PointsRule]] | None = None) -> dict[str, Any]:
+                   tomorrow: tuple[ModelData, Search, dict[str, PointsRule]] | None = None,
+                   slopes: SlopeParts | None = None, values: ValueParts | None = None) -> dict[str, Any]:
     """Every choice's errors and their pool: the continuous choice (the one not in ``combined``'s names) by
     :func:`continuous_part`, each discrete one along its state with every choice's grid ``rules`` (and
     ``at_end``, per choice, where its solved value is at an end of its state's grid), as
@@ -146,32 +163,34 @@ def setters_errors(data: ModelData, founds: list[EulerSetup], discount: float, s
     for found in founds:
         if found.choice not in combined[0]:
             part = continuous_part(data, found, discount, search, combined, distribution,
-                                   tomorrow=(data_next, search_next))
+                                   tomorrow=(data_next, search_next), slopes=slopes, values=values)
         else:
-            names = [choice for _, choice in found.companions]
             part = states_errors(
                 data, found, discount, rules[found.choice], distribution,
                 None if at_end is None else at_end[found.choice], tomorrow=(data_next, rules_next[found.choice]),
-                pooling=weighted, companions=(lambda points: {name: rules[name](points) for name in names},
-                                              lambda points: {name: rules_next[name](points) for name in names}))
+                pooling=weighted, companions=(maximised(data, found, rules), maximised(data_next, found, rules_next)),
+                slopes=slopes, values=values)
         part["state"] = found.state
         parts.append(part)
     return pool_choices(founds, parts, weighted)
 
 
 def setters_report(problem: Any, founds: list[EulerSetup], v: np.ndarray, policy: np.ndarray, discount: float,
-                   distribution: np.ndarray | None = None) -> tuple[dict[str, Any], str]:
+                   distribution: np.ndarray | None = None,
+                   slopes: SlopeParts | None = None, values: ValueParts | None = None) -> tuple[dict[str, Any], str]:
     """``(diagnostics.euler_errors, note)`` of a solved continuous choice beside discrete choices that set states
     (``founds`` from :func:`setters_setup`), ``v`` and ``policy`` the solve's; ``distribution`` the stationary one
     over the flat points, (n,)."""
     data = problem.model_data
     rules, at_end = grid_rules(data, founds, problem.choice_values(policy))
     combined = (tuple(problem.others), np.asarray(problem.combos, dtype=np.float64))
-    errors = setters_errors(data, founds, discount, searcher(problem, v), combined, rules, distribution, at_end)
+    errors = setters_errors(data, founds, discount, searcher(problem, v), combined, rules, distribution, at_end,
+                            slopes=slopes, values=values)
     own = errors["by_choice"][problem.choice]
     note = (f"Euler-equation errors of the continuous choice `{problem.choice}` read by the fitted problem's own "
             f"search: {own['constrained']:,} test points skipped (where a limit may bind, or tomorrow's best "
             f"combination of "
             f"{', '.join(f'`{name}`' for name in problem.others)} switches next to tomorrow's state, where the value "
-            "function has a kink); the other choices' own errors read every policy linearly between grid points")
+            "function has a kink); the other choices' own errors read every policy linearly between grid points"
+            + within_note(data))
     return errors, note
