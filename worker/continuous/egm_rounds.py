@@ -22,6 +22,8 @@ from __future__ import annotations
 import numpy as np
 from numba import njit
 
+from worker.continuous.interp_kernels import read_pairs
+
 __all__ = ["bends", "read_moved", "root", "union_sorted"]
 
 
@@ -122,39 +124,18 @@ def read_moved(states: np.ndarray, choices: np.ndarray, low: float, high: float,
     the grid's points among ``points``) into ``out``; and the largest ``|out − before|`` (NaN if any is, as
     ``np.max`` gives).  −1 when a column of ``states`` is not increasing (``tomorrow`` and ``out`` are then
     not all written)."""
-    m = states.shape[0]
-    n_rows = rows.shape[0]
+    if not read_pairs(states, choices, low, high, points, tomorrow):
+        return -1.0
     moved = 0.0
     for z in range(states.shape[1]):
-        for j in range(1, m):
-            if not states[j, z] > states[j - 1, z]:
-                return -1.0
-        j = 0
-        r = 0
-        for i in range(points.shape[0]):
-            x = points[i]
-            if x < states[0, z]:
-                value = low
-            elif x > states[m - 1, z]:
-                value = high
+        for r in range(rows.shape[0]):
+            value = tomorrow[rows[r], z]
+            out[r, z] = value
+            gap = abs(value - before[r, z])
+            if gap != gap or moved != moved:
+                moved = np.nan
             else:
-                while j < m - 2 and states[j + 1, z] < x:
-                    j += 1
-                while j > 0 and states[j, z] > x:
-                    j -= 1
-                left = states[j, z]
-                right = states[j + 1, z]
-                value = choices[j] + (choices[j + 1] - choices[j]) * ((x - left) / (right - left))
-            value = min(max(value, low), high)
-            tomorrow[i, z] = value
-            if r < n_rows and rows[r] == i:
-                out[r, z] = value
-                gap = abs(value - before[r, z])
-                if gap != gap or moved != moved:
-                    moved = np.nan
-                else:
-                    moved = max(moved, gap)
-                r += 1
+                moved = max(moved, gap)
     return moved
 
 
