@@ -14,6 +14,7 @@ import scipy.sparse as sp
 from worker.errors import InvalidDocument, join_path
 from worker.problem import CompiledProblem
 from worker.shocks import stationary_distribution
+from worker.stationary_lu import ordered_pinned_lu
 
 __all__ = [
     "DIRECT_MAX_STATES",
@@ -161,7 +162,7 @@ def _pinned(
         guess, _ = _lazy_power(transposed, n, max_steps=PIN_PROBE_STEPS)
     k = int(members[np.argmax(guess[members])])
     if direct:
-        pi = pinned_lu(matrix, k)
+        pi = ordered_pinned_lu(matrix, k)  # the states' own order when their band bounds the fill (stationary_lu)
         if pi is None:
             return None
         pi = np.maximum(pi, 0.0)
@@ -181,55 +182,6 @@ def _pinned(
         return None
     pi = np.maximum(np.insert(solution, k, 1.0), 0.0)
     return pi / pi.sum()
-
-
-def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None,
-              ordering: str = "COLAMD") -> np.ndarray | None:
-    """``π`` with ``π (I − P) = 0`` and ``π_k = 1`` by one sparse LU of :func:`pinned_system`, or None
-    (singular, not finite, or no diagonal entry in row ``k``); not normalised, and unchecked (the callers
-    check the residual).  ``keep``, when given, receives the factorisation (``lu``; ``pin`` = ``k``; ``n``)
-    for later solves of nearby chains (:mod:`worker.search_trials`, which also chooses the column
-    ``ordering``: SuperLU's ``permc_spec``)."""
-    from scipy.sparse import linalg as sla
-
-    pinned = pinned_system(matrix, k)
-    if pinned is None:
-        return None
-    system, rhs = pinned
-    try:
-        lu = sla.splu(system, permc_spec=ordering)
-    except RuntimeError:  # exactly singular: several closed classes
-        return None
-    pi = lu.solve(rhs)
-    if not np.isfinite(pi).all():
-        return None
-    pi[k] = 1.0
-    if keep is not None:
-        keep.update(lu=lu, pin=k, n=matrix.shape[0])
-    return pi
-
-
-def pinned_system(matrix: sp.csr_matrix, k: int) -> tuple[sp.csc_matrix, np.ndarray] | None:
-    """The system of :func:`pinned_lu` and its right-hand side, or None (no diagonal entry in row ``k``).
-
-    ``π_k`` is replaced by a slack that only equation ``k`` (the redundant one) sees, so the matrix is
-    ``(I − P)ᵀ`` with column ``k`` set to ``e_k`` — row ``k`` of ``I − P`` in CSR, whose arrays read as CSC
-    are that transpose, with no transpose or slicing (which cost more than the LU itself at 1,400 states).
-    """
-    n = matrix.shape[0]
-    system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
-    system.sort_indices()
-    start, stop = int(system.indptr[k]), int(system.indptr[k + 1])
-    columns = system.indices[start:stop]
-    diagonal = start + int(np.searchsorted(columns, k))
-    if diagonal >= stop or system.indices[diagonal] != k:
-        return None
-    rhs = np.zeros(n)
-    rhs[columns] = -system.data[start:stop]
-    data = system.data.copy()
-    data[start:stop] = 0.0
-    data[diagonal] = 1.0
-    return sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n)), rhs
 
 
 def _lazy_power(
