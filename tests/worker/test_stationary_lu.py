@@ -78,18 +78,62 @@ def test_an_lu_in_the_states_order_that_fills_past_natural_fill_is_made_again_wi
     made: list[str] = []
     splu = scipy.sparse.linalg.splu
     monkeypatch.setattr(scipy.sparse.linalg, "splu",
-                        lambda system, permc_spec: made.append(permc_spec) or splu(system, permc_spec=permc_spec))
+                        lambda system, permc_spec, **options: made.append(permc_spec)
+                        or splu(system, permc_spec=permc_spec, **options))
     keep: dict[str, Any] = {}
     pi = stationary_lu.ordered_pinned_lu(sp.csr_matrix(banded), 0, keep=keep)
     assert made == ["NATURAL", "COLAMD"] and keep["ordering"] == "COLAMD"
     np.testing.assert_allclose(_normalised(pi), _eigen(banded), rtol=0, atol=1e-12)
 
 
+def test_the_envelope_bounds_the_lu_made_in_the_states_order() -> None:
+    # Columns 0..3 reach up to rows 0, 1, 0, 2 (U: 0 + 0 + 2 + 1); rows 0..3 reach back to columns 0, 1, 0, 1
+    # (L: 0 + 0 + 2 + 2); and the diagonal.
+    dense = np.array([[4.0, 0.0, 1.0, 0.0],
+                      [0.0, 4.0, 0.0, 0.0],
+                      [1.0, 0.0, 4.0, 1.0],
+                      [0.0, 1.0, 0.0, 4.0]])
+    assert stationary_lu.natural_lu_bound(sp.csc_matrix(dense)) == 3 + 4 + 4
+    for dense in (_banded(200, 11), _scrambled(_banded(200, 11), 12)):
+        system, _ = stationary_lu.pinned_system(sp.csr_matrix(dense), 0)
+        lu = scipy.sparse.linalg.splu(system, permc_spec="NATURAL",
+                                      diag_pivot_thresh=stationary_lu.NATURAL_PIVOT_THRESHOLD)
+        assert (lu.perm_r == np.arange(200)).all()  # no row interchanges: diagonally dominant by columns
+        # L (its unit diagonal too) and U within the envelope (SuperLU's storage also keeps its supernodes' zeros).
+        assert lu.L.nnz + lu.U.nnz <= stationary_lu.natural_lu_bound(system) + 200
+
+
+def test_above_the_direct_cap_an_lu_is_made_only_in_the_states_order_within_its_bound(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    import worker.report as report
+
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 50)
+    banded = _banded(400, 21)
+    pi, info = long_run_distribution(sp.csr_matrix(banded))
+    assert info["method"] == "direct" and info["steps"] == 0 and info["residual"] <= 1e-12
+    np.testing.assert_allclose(pi, _eigen(banded), rtol=0, atol=1e-10)
+    system, _ = stationary_lu.pinned_system(sp.csr_matrix(banded), 0)
+    assert stationary_lu.natural_lu_bound(system) <= 4 * system.nnz  # a thin envelope: the bound is far from 64
+    # Scrambled, its envelope is past NATURAL_ENVELOPE times its entries (made small here): no LU, the iterative
+    # path instead, to the same distribution.
+    scrambled = _scrambled(banded, 22)
+    monkeypatch.setattr(stationary_lu, "NATURAL_ENVELOPE", 4)
+    pi, info = long_run_distribution(sp.csr_matrix(scrambled))
+    assert info["method"] in ("power", "gmres")
+    np.testing.assert_allclose(pi, _eigen(scrambled), rtol=0, atol=1e-9)
+    # An LU in the states' order that interchanged rows (rounding) is dropped too.
+    monkeypatch.setattr(stationary_lu, "_no_interchanges", lambda lu: False)
+    assert stationary_lu.natural_pinned_lu(sp.csr_matrix(banded), 0) is None
+    pi, info = long_run_distribution(sp.csr_matrix(banded))
+    assert info["method"] in ("power", "gmres")
+
+
 def test_a_single_jobs_stationary_distribution_uses_the_shared_rule(monkeypatch: pytest.MonkeyPatch) -> None:
     made: list[str] = []
     splu = scipy.sparse.linalg.splu
     monkeypatch.setattr(scipy.sparse.linalg, "splu",
-                        lambda system, permc_spec: made.append(permc_spec) or splu(system, permc_spec=permc_spec))
+                        lambda system, permc_spec, **options: made.append(permc_spec)
+                        or splu(system, permc_spec=permc_spec, **options))
     banded = _banded(200, 11)
     for dense, ordering in ((banded, "NATURAL"), (_scrambled(banded, 8), "COLAMD")):
         made.clear()
