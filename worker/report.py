@@ -14,7 +14,7 @@ import scipy.sparse as sp
 from worker.errors import InvalidDocument, join_path
 from worker.problem import CompiledProblem
 from worker.shocks import stationary_distribution
-from worker.stationary_lu import natural_pinned_lu, ordered_pinned_lu
+from worker.stationary_lu import natural_lu_fits, natural_pinned_lu, ordered_pinned_lu
 
 __all__ = [
     "DIRECT_MAX_STATES",
@@ -111,7 +111,7 @@ def long_run_distribution(matrix: sp.csr_matrix) -> tuple[np.ndarray, dict[str, 
     else:
         # An LU in the states' own order when their envelope bounds it (worker.stationary_lu): 0.3 s where the
         # power steps, the incomplete LU and GMRES took 6.7 s on a 28,000-state savings chain (measured).
-        pi = _pinned(matrix, transposed, n, direct=True, natural_only=True)
+        pi = _pinned(matrix, transposed, n, direct=True, natural_only=True) if natural_lu_fits(matrix) else None
         method, steps = "direct", 0
         if pi is None or float(np.abs(transposed @ pi - pi).sum()) > PINNED_TOLERANCE:
             pi, method, steps = _iterative(matrix, transposed, n)

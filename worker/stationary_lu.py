@@ -36,8 +36,8 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-__all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "natural_lu_bound", "natural_order_fits",
-           "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
+__all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "natural_lu_bound", "natural_lu_fits",
+           "natural_order_fits", "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
 
 NATURAL_BAND = 64
 """An LU may keep the states' own order only when the pinned system's band bounds its entries to this many
@@ -106,6 +106,18 @@ def natural_order_fits(system: sp.csc_matrix) -> bool:
     columns = np.repeat(np.arange(n), np.diff(system.indptr))  # CSC: indptr runs over columns
     band = int(np.abs(system.indices - columns).max())
     return n * (3 * band + 1) <= NATURAL_BAND * system.nnz
+
+
+def natural_lu_fits(matrix: sp.csr_matrix) -> bool:
+    """Whether :func:`natural_pinned_lu` may make an LU of this chain pinned anywhere: the envelope of
+    ``(I − P)ᵀ``, the pattern of every pinned system, is at most `NATURAL_ENVELOPE` times its entries (a check
+    before the closed class and the pin are found: 5-8 ms on a 60,000-state growth chain, whose envelope is 266
+    times its entries, beside 0.2 s for its power steps; measured)."""
+    n = matrix.shape[0]
+    system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
+    system.sort_indices()
+    transposed = sp.csc_matrix((system.data, system.indices, system.indptr), shape=(n, n))
+    return 0 < transposed.nnz and natural_lu_bound(transposed) <= NATURAL_ENVELOPE * transposed.nnz
 
 
 def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
