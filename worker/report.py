@@ -33,7 +33,8 @@ __all__ = [
 
 DIRECT_MAX_STATES = 20_000
 """Chains with at most this many states are solved exactly (sparse LU); larger ones by GMRES with an
-incomplete-LU preconditioner (one closed class), else by power iteration, whose memory stays O(nonzeros).
+incomplete-LU preconditioner (one closed class), else by power iteration, whose memory stays O(nonzeros);
+unless the states' own order bounds an LU's fill (:func:`worker.stationary_lu.natural_pinned_lu`).
 A sparse LU of a 28,000-state savings chain fills in to 40 million entries (8 s, measured); the
 preconditioned GMRES settles it to a residual of 3e-14 in 1.1 s."""
 CHAIN_TRANSITION_MAX_POINTS = 100
