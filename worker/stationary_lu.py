@@ -122,12 +122,18 @@ def natural_lu_fits(matrix: sp.csr_matrix) -> bool:
 
 def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
     """:func:`pinned_lu` in the states' own order when :func:`natural_lu_bound` bounds its LU to
-    `NATURAL_ENVELOPE` times the pinned system's entries and the LU made no row interchanges; else None."""
+    `NATURAL_ENVELOPE` times the pinned system's entries and the LU made no row interchanges; else None (also
+    when it runs out of memory)."""
     pinned = pinned_system(matrix, k)
     if pinned is None or not pinned[0].nnz or natural_lu_bound(pinned[0]) > NATURAL_ENVELOPE * pinned[0].nnz:
         return None
     keep: dict[str, Any] = {}
-    pi = _solved(pinned, k, "NATURAL", keep, diag_pivot_thresh=NATURAL_PIVOT_THRESHOLD)
+    try:
+        pi = _solved(pinned, k, "NATURAL", keep, diag_pivot_thresh=NATURAL_PIVOT_THRESHOLD)
+    except MemoryError:
+        # Past a job's memory limit (worker.memory), which its estimate does not size for this LU: the
+        # iterative solves, which need O(entries), instead.
+        return None
     return pi if pi is not None and _no_interchanges(keep["lu"]) else None
 
 

@@ -121,6 +121,14 @@ def test_above_the_direct_cap_an_lu_is_made_only_in_the_states_order_within_its_
     pi, info = long_run_distribution(sp.csr_matrix(scrambled))
     assert info["method"] in ("power", "gmres")
     np.testing.assert_allclose(pi, _eigen(scrambled), rtol=0, atol=1e-9)
+    # An LU that ran out of memory (past a job's memory limit) leaves the chain to the iterative solves.
+    def out_of_memory(*args: Any, **kwargs: Any) -> Any:
+        raise MemoryError
+
+    monkeypatch.setattr(scipy.sparse.linalg, "splu", out_of_memory)
+    assert stationary_lu.natural_pinned_lu(sp.csr_matrix(banded), 0) is None
+    monkeypatch.undo()
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 50)
     # An LU in the states' order that interchanged rows (rounding) is dropped too.
     monkeypatch.setattr(stationary_lu, "_no_interchanges", lambda lu: False)
     assert stationary_lu.natural_pinned_lu(sp.csr_matrix(banded), 0) is None
