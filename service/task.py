@@ -40,8 +40,8 @@ lease that lapsed meanwhile back if nobody else claimed the job; the final
 writes are retried with backoff for up to ``redis_retry_s``, and write
 nothing once the lease is known to be another execution's.
 
-``run_worker(burst=False, queues=None)`` runs an RQ worker on ``fixq-high``,
-``fixq-normal``, ``fixq-low`` (in that order) with a ``service.reaper.Reaper``
+``run_worker(burst=False, queues=None)`` imports what jobs import lazily (``preload``), then runs an RQ
+worker on ``fixq-high``, ``fixq-normal``, ``fixq-low`` (in that order) with a ``service.reaper.Reaper``
 and a ``service.liveness.Beacon`` thread beside it; ``worker_main`` is one
 such process under ``fixq worker`` (``service.supervisor``), which stops
 taking jobs once ``worker._codegen.recycle_due()`` and exits with
@@ -71,7 +71,7 @@ from service.store import JobStore, connect, is_job_id
 from service.supervisor import RECYCLE_EXIT
 from worker._codegen import recycle_due
 
-__all__ = ["run_job", "run_next", "run_worker", "worker_main"]
+__all__ = ["preload", "run_job", "run_next", "run_worker", "worker_main"]
 
 logger = logging.getLogger("fixq.task")
 
@@ -130,6 +130,19 @@ def _connection(settings: Settings) -> redis.Redis:
         _CONNECTIONS[url] = connect(settings)
     return _CONNECTIONS[url]
 
+def preload() -> None:
+    """Import what jobs import lazily, once per worker process before it takes a job (or counts as live).
+
+    ``worker.solve`` imports the grid models (numba) and the searches (scipy.optimize, 147 modules) only when
+    a document needs them, so that ``import worker`` stays light; in a worker process the first job of each kind
+    paid that import: 126 ms for the grid models and 58 ms for the searches in a quiet process, and the first
+    search job in a fresh worker ran 150-170 ms against 60-75 ms for the next ones on a loaded machine
+    (``bench/bench_aiyagari.py``'s household at 200 points, measured).
+    """
+    import worker.gridmodel  # noqa: F401
+    import worker.search  # noqa: F401
+
+
 class _WithoutCommandChannel:
     """An RQ worker that does not listen on RQ's command channel.
 
@@ -178,6 +191,7 @@ def _run(burst: bool, queues: Sequence[str] | None) -> tuple[bool, bool]:
     """(ran a job, stopped to be recycled)."""
     settings = get_settings()
     logging.basicConfig(level=settings.worker_log_level.upper(), format="%(asctime)s %(name)s %(message)s")
+    preload()
     connection = connect(settings)
     rq_queues = [Queue(name, connection=connection) for name in ordered_queue_names(queues)]
     reaper_store = JobStore(connect(settings), settings)

@@ -50,14 +50,6 @@ REFINE_TOLERANCE = 1e-14
 1-norm (the distribution's residual is then checked against ``worker.report.PINNED_TOLERANCE``)."""
 
 
-NATURAL_BAND = 64
-"""A search's LUs may keep the states' own order only when its band bounds their entries to this many times
-the pinned system's (count; see ``_factorised``: a bound on memory before that LU is tried)."""
-NATURAL_FILL = 4.0
-"""...and when the first such LU has at most this many times the system's entries (count; on the Aiyagari
-bench 2.2, and 1.8 with SuperLU's default ordering)."""
-
-
 def with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[str, Any]:
     """The raw document with the unknowns set to ``values``, no search, and the stationary report on."""
     out = {key: value for key, value in document.items() if key != "search"}
@@ -147,7 +139,7 @@ def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None,
                        factors: dict[str, Any] | None = None) -> tuple[np.ndarray, dict[str, Any]]:
     """The stationary distribution of a trial's chain, pinned at the heaviest state of the last trial's
     distribution: by iterative refinement with the last trial's sparse LU (``factors``, kept by
-    :func:`worker.report.pinned_lu` when pinned at the same state; :func:`_refined`), else by a sparse LU of
+    :func:`worker.stationary_lu.pinned_lu` when pinned at the same state; :func:`_refined`), else by a sparse LU of
     its own (kept in ``factors`` for the next trial), else (no last distribution)
     :func:`worker.report.long_run_distribution`.
 
@@ -182,42 +174,22 @@ def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None,
 
 
 def _factorised(matrix: sp.csr_matrix, k: int, factors: dict[str, Any] | None) -> np.ndarray | None:
-    """:func:`worker.report.pinned_lu` of the pinned chain, kept in ``factors``, with the column ordering
-    chosen on the search's first factorisation (SuperLU's ``permc_spec``): "NATURAL" (the states' own order)
-    when the pinned system's band bounds the fill of an LU with partial pivoting (``n (3b + 1)`` entries for
-    half-bandwidth ``b``) to `NATURAL_BAND` times the system's entries, and the LU made with it has at most
-    `NATURAL_FILL` times the system's entries; else (that LU made again) SuperLU's default "COLAMD".  Chosen
-    by entry counts, not seconds, so that a search is repeatable (a resumed one asks for the same trials).
+    """:func:`worker.stationary_lu.pinned_lu` of the pinned chain, kept in ``factors``, with the column ordering
+    chosen on the search's first factorisation by :func:`worker.stationary_lu.ordered_pinned_lu` (the states'
+    own order when their band bounds the fill, as a single job's report chooses it) and kept for the rest.
 
     On the Aiyagari bench the states' order is banded (1,400 states, half-bandwidth about 160, 19,000 entries):
-    "NATURAL" factorised in 0.54 ms with 42,000 entries where "COLAMD" took 1.05 ms with 35,000, and a
-    search's stationary distributions took 6.4 ms in all where they took 8.4 ms at ρ = 0.9 (measured)."""
-    from worker.report import pinned_lu, pinned_system
+    a search's stationary distributions took 6.4 ms in all with it where they took 8.4 ms with SuperLU's
+    default ordering at ρ = 0.9 (measured)."""
+    from worker.stationary_lu import ordered_pinned_lu, pinned_lu
 
     if factors is None:
         return pinned_lu(matrix, k)
-    n = matrix.shape[0]
-    if factors.get("ordering_n") != n:
-        pinned = pinned_system(matrix, k)
-        entries = 0 if pinned is None else pinned[0].nnz
-        if pinned is not None and entries:
-            system = pinned[0]
-            columns = np.repeat(np.arange(n), np.diff(system.indptr))  # CSC: indptr runs over columns
-            band = int(np.abs(system.indices - columns).max())
-            natural = n * (3 * band + 1) <= NATURAL_BAND * entries
-        else:
-            natural = False
-        factors.update(ordering="NATURAL" if natural else "COLAMD", ordering_n=n, ordering_entries=entries)
-        if natural:
-            pi = pinned_lu(matrix, k, keep=factors, ordering="NATURAL")
-            if pi is not None and factors["lu"].nnz <= NATURAL_FILL * entries:
-                return pi
-            factors["ordering"] = "COLAMD"
-    return pinned_lu(matrix, k, keep=factors, ordering=factors["ordering"])
+    return ordered_pinned_lu(matrix, k, keep=factors)
 
 
 def _refined(matrix: sp.csr_matrix, k: int, lu: Any) -> tuple[np.ndarray | None, int]:
-    """The pinned system of ``matrix`` (:func:`worker.report.pinned_system`) solved by iterative refinement
+    """The pinned system of ``matrix`` (:func:`worker.stationary_lu.pinned_system`) solved by iterative refinement
     with ``lu``, the factorisation of a nearby chain's pinned at the same state: ``(π, steps)``, or
     ``(None, steps)`` when a step does not shrink the residual at least `REFINE_RATE` times or
     `REFINE_STEPS` do not reach `REFINE_TOLERANCE` (the caller then factorises afresh).
@@ -225,7 +197,7 @@ def _refined(matrix: sp.csr_matrix, k: int, lu: Any) -> tuple[np.ndarray | None,
     A refinement step costs one sparse product and one pair of triangular solves (a tenth of an LU at 1,400
     states, measured); from the trial before near the root of the Aiyagari bench, 3-6 steps reach 1e-14,
     while far from it the residual stalls at once and one or two steps are lost (measured)."""
-    from worker.report import pinned_system
+    from worker.stationary_lu import pinned_system
 
     pinned = pinned_system(matrix, k)
     if pinned is None:

@@ -434,11 +434,13 @@ def test_a_search_factorises_a_banded_chain_in_the_states_order_and_a_scrambled_
         assert factors["ordering"] == ordering
         np.testing.assert_allclose(pi, _stationary_numpy(later), rtol=0, atol=1e-12)
     # A banded chain whose LU in the states' order fills past NATURAL_FILL times its entries: COLAMD instead.
+    import worker.stationary_lu as stationary_lu
+
     factors = {}
-    original = search_trials.NATURAL_FILL
+    original = stationary_lu.NATURAL_FILL
     try:
-        search_trials.NATURAL_FILL = 0.5
+        stationary_lu.NATURAL_FILL = 0.5
         search_trials.trial_distribution(sp.csr_matrix(banded), _stationary_numpy(banded), factors)
     finally:
-        search_trials.NATURAL_FILL = original
+        stationary_lu.NATURAL_FILL = original
     assert factors["ordering"] == "COLAMD"

@@ -49,7 +49,8 @@ class StationaryReport(Reported):
         description="Grid models: per state variable, the mass at the ends of its grid ({} for tabular models)."
     )
     method: Literal["direct", "gmres", "power", "refined"] = Field(
-        description=f"How it was computed: direct (sparse LU, up to {DIRECT_MAX_STATES:,} points), gmres "
+        description=f"How it was computed: direct (sparse LU, up to {DIRECT_MAX_STATES:,} points, or beyond when "
+        "the states' order bounds its fill), gmres "
         "(preconditioned, one closed class), power (power iteration on the lazy chain) or refined (a search's "
         "trial: iterative refinement of the pinned system with the sparse LU of the trial before)."
     )

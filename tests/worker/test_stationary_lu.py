@@ -1,0 +1,158 @@
+"""The pinned sparse LU of a chain's stationary distribution and its column ordering (worker.stationary_lu).
+
+Independent reference: the stationary distribution of an irreducible chain is the left eigenvector of P for
+eigenvalue 1, normalised (Perron–Frobenius), computed with ``scipy.linalg.eig``.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import pytest
+import scipy.linalg
+import scipy.sparse as sp
+
+import worker.stationary_lu as stationary_lu
+from worker.report import long_run_distribution
+
+
+def _eigen(matrix: np.ndarray) -> np.ndarray:
+    """Left eigenvector of eigenvalue 1, normalised (scipy)."""
+    values, vectors = scipy.linalg.eig(matrix.T)
+    vector = np.real(vectors[:, np.argmin(np.abs(values - 1.0))])
+    return vector / vector.sum()
+
+
+def _banded(n: int, seed: int) -> np.ndarray:
+    """A chain moving to the next states down and up (one closed class) and a few others near: half-bandwidth 3."""
+    rng = np.random.default_rng(seed)
+    dense = np.zeros((n, n))
+    for i in range(n):
+        columns = np.clip(np.r_[i - 1, i + 1, i + rng.integers(-3, 4, size=3)], 0, n - 1)
+        dense[i, columns] += rng.random(5) + 0.1
+    return dense / dense.sum(axis=1, keepdims=True)
+
+
+def _scrambled(dense: np.ndarray, seed: int) -> np.ndarray:
+    order = np.random.default_rng(seed).permutation(dense.shape[0])
+    return dense[np.ix_(order, order)]  # the same chain with its states renumbered at random
+
+
+def _normalised(pi: np.ndarray | None) -> np.ndarray:
+    assert pi is not None
+    return pi / pi.sum()
+
+
+def test_a_banded_chain_keeps_the_states_order_and_a_scrambled_one_gets_colamd() -> None:
+    banded = _banded(200, 11)
+    for dense, ordering in ((banded, "NATURAL"), (_scrambled(banded, 12), "COLAMD")):
+        expected = _eigen(dense)
+        keep: dict[str, Any] = {}
+        k = int(np.argmax(expected))
+        pi = stationary_lu.ordered_pinned_lu(sp.csr_matrix(dense), k, keep=keep)
+        assert keep["ordering"] == ordering and keep["pin"] == k and keep["n"] == 200
+        np.testing.assert_allclose(_normalised(pi), expected, rtol=0, atol=1e-12)
+        # Without keep the same rule picks the same ordering, and the answer is the same.
+        np.testing.assert_allclose(_normalised(stationary_lu.ordered_pinned_lu(sp.csr_matrix(dense), k)), expected,
+                                   rtol=0, atol=1e-12)
+
+
+def test_the_chosen_ordering_is_kept_for_chains_of_as_many_states(monkeypatch: pytest.MonkeyPatch) -> None:
+    banded = _banded(120, 3)
+    keep: dict[str, Any] = {}
+    stationary_lu.ordered_pinned_lu(sp.csr_matrix(banded), 0, keep=keep)
+    assert keep["ordering"] == "NATURAL"
+    # A later chain (scrambled: the rule alone would pick COLAMD) reuses the kept choice without choosing again.
+    monkeypatch.setattr(stationary_lu, "natural_order_fits", lambda system: pytest.fail("chose again"))
+    later = _scrambled(banded, 4)
+    pi = stationary_lu.ordered_pinned_lu(sp.csr_matrix(later), 5, keep=keep)
+    assert keep["ordering"] == "NATURAL" and keep["pin"] == 5
+    np.testing.assert_allclose(_normalised(pi), _eigen(later), rtol=0, atol=1e-12)
+
+
+def test_an_lu_in_the_states_order_that_fills_past_natural_fill_is_made_again_with_colamd(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    banded = _banded(150, 5)
+    monkeypatch.setattr(stationary_lu, "NATURAL_FILL", 0.5)
+    made: list[str] = []
+    splu = scipy.sparse.linalg.splu
+    monkeypatch.setattr(scipy.sparse.linalg, "splu",
+                        lambda system, permc_spec, **options: made.append(permc_spec)
+                        or splu(system, permc_spec=permc_spec, **options))
+    keep: dict[str, Any] = {}
+    pi = stationary_lu.ordered_pinned_lu(sp.csr_matrix(banded), 0, keep=keep)
+    assert made == ["NATURAL", "COLAMD"] and keep["ordering"] == "COLAMD"
+    np.testing.assert_allclose(_normalised(pi), _eigen(banded), rtol=0, atol=1e-12)
+
+
+def test_the_envelope_bounds_the_lu_made_in_the_states_order() -> None:
+    # Columns 0..3 reach up to rows 0, 1, 0, 2 (U: 0 + 0 + 2 + 1); rows 0..3 reach back to columns 0, 1, 0, 1
+    # (L: 0 + 0 + 2 + 2); and the diagonal.
+    dense = np.array([[4.0, 0.0, 1.0, 0.0],
+                      [0.0, 4.0, 0.0, 0.0],
+                      [1.0, 0.0, 4.0, 1.0],
+                      [0.0, 1.0, 0.0, 4.0]])
+    assert stationary_lu.natural_lu_bound(sp.csc_matrix(dense)) == 3 + 4 + 4
+    for dense in (_banded(200, 11), _scrambled(_banded(200, 11), 12)):
+        system, _ = stationary_lu.pinned_system(sp.csr_matrix(dense), 0)
+        lu = scipy.sparse.linalg.splu(system, permc_spec="NATURAL",
+                                      diag_pivot_thresh=stationary_lu.NATURAL_PIVOT_THRESHOLD)
+        assert (lu.perm_r == np.arange(200)).all()  # no row interchanges: diagonally dominant by columns
+        # L (its unit diagonal too) and U within the envelope (SuperLU's storage also keeps its supernodes' zeros).
+        assert lu.L.nnz + lu.U.nnz <= stationary_lu.natural_lu_bound(system) + 200
+
+
+def test_above_the_direct_cap_an_lu_is_made_only_in_the_states_order_within_its_bound(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    import worker.report as report
+
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 50)
+    banded = _banded(400, 21)
+    pi, info = long_run_distribution(sp.csr_matrix(banded))
+    assert info["method"] == "direct" and info["steps"] == 0 and info["residual"] <= 1e-12
+    np.testing.assert_allclose(pi, _eigen(banded), rtol=0, atol=1e-10)
+    system, _ = stationary_lu.pinned_system(sp.csr_matrix(banded), 0)
+    assert stationary_lu.natural_lu_bound(system) <= 4 * system.nnz  # a thin envelope: the bound is far from 64
+    # Scrambled, its envelope is past NATURAL_ENVELOPE times its entries (made small here): no LU, the iterative
+    # path instead, to the same distribution.
+    scrambled = _scrambled(banded, 22)
+    monkeypatch.setattr(stationary_lu, "NATURAL_ENVELOPE", 4)
+    pi, info = long_run_distribution(sp.csr_matrix(scrambled))
+    assert info["method"] in ("power", "gmres")
+    np.testing.assert_allclose(pi, _eigen(scrambled), rtol=0, atol=1e-9)
+    # An LU that ran out of memory (past a job's memory limit) leaves the chain to the iterative solves.
+    def out_of_memory(*args: Any, **kwargs: Any) -> Any:
+        raise MemoryError
+
+    monkeypatch.setattr(scipy.sparse.linalg, "splu", out_of_memory)
+    assert stationary_lu.natural_pinned_lu(sp.csr_matrix(banded), 0) is None
+    monkeypatch.undo()
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 50)
+    # An LU in the states' order that interchanged rows (rounding) is dropped too.
+    monkeypatch.setattr(stationary_lu, "_no_interchanges", lambda lu: False)
+    assert stationary_lu.natural_pinned_lu(sp.csr_matrix(banded), 0) is None
+    pi, info = long_run_distribution(sp.csr_matrix(banded))
+    assert info["method"] in ("power", "gmres")
+
+
+def test_a_single_jobs_stationary_distribution_uses_the_shared_rule(monkeypatch: pytest.MonkeyPatch) -> None:
+    made: list[str] = []
+    splu = scipy.sparse.linalg.splu
+    monkeypatch.setattr(scipy.sparse.linalg, "splu",
+                        lambda system, permc_spec, **options: made.append(permc_spec)
+                        or splu(system, permc_spec=permc_spec, **options))
+    banded = _banded(200, 11)
+    for dense, ordering in ((banded, "NATURAL"), (_scrambled(banded, 8), "COLAMD")):
+        made.clear()
+        pi, info = long_run_distribution(sp.csr_matrix(dense))
+        assert made == [ordering] and info["method"] == "direct"
+        np.testing.assert_allclose(pi, _eigen(dense), rtol=0, atol=1e-12)
+
+
+def test_a_chain_with_two_closed_classes_gives_none() -> None:
+    # States 0 and 1 are absorbing: pinned at 0, state 1's equation is 0 = 0 and the system is singular.
+    two = np.array([[1.0, 0.0, 0.0], [0.0, 1.0, 0.0], [0.5, 0.0, 0.5]])
+    keep: dict[str, Any] = {}
+    assert stationary_lu.ordered_pinned_lu(sp.csr_matrix(two), 0, keep=keep) is None
+    assert "lu" not in keep
