@@ -36,8 +36,8 @@ from typing import Any
 import numpy as np
 import scipy.sparse as sp
 
-__all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "natural_lu_bound", "natural_lu_fits",
-           "natural_order_fits", "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
+__all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "NATURAL_MAX_ENTRIES", "natural_lu_bound",
+           "natural_lu_fits", "natural_order_fits", "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
 
 NATURAL_BAND = 64
 """An LU may keep the states' own order only when the pinned system's band bounds its entries to this many
@@ -49,6 +49,10 @@ NATURAL_ENVELOPE = 64
 """Above ``worker.report.DIRECT_MAX_STATES`` states an LU in the states' own order is made only when
 :func:`natural_lu_bound` bounds its entries to this many times the pinned system's (count; a bound on memory
 before that LU is tried: 39 on the 4,000-point Aiyagari household)."""
+NATURAL_MAX_ENTRIES = 2**25
+"""...and only when that bound is at most this many entries (count; about 400 MB of values and row indices):
+a ceiling of our own choosing, so that the ratio alone never admits an LU of gigabytes on a chain of millions
+of entries (the 4,000-point Aiyagari household's bound is 15 million, its LU 8.7 million)."""
 NATURAL_PIVOT_THRESHOLD = 0.1
 """SuperLU's ``diag_pivot_thresh`` for that LU: the diagonal pivot is kept while it is at least this share of
 its column's largest entry.  Diagonal dominance makes it the largest, but a column whose one other entry below
@@ -117,7 +121,7 @@ def natural_lu_fits(matrix: sp.csr_matrix) -> bool:
     system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
     system.sort_indices()
     transposed = sp.csc_matrix((system.data, system.indices, system.indptr), shape=(n, n))
-    return 0 < transposed.nnz and natural_lu_bound(transposed) <= NATURAL_ENVELOPE * transposed.nnz
+    return 0 < transposed.nnz and _within(natural_lu_bound(transposed), transposed.nnz)
 
 
 def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
@@ -125,7 +129,7 @@ def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
     `NATURAL_ENVELOPE` times the pinned system's entries and the LU made no row interchanges; else None (also
     when it runs out of memory)."""
     pinned = pinned_system(matrix, k)
-    if pinned is None or not pinned[0].nnz or natural_lu_bound(pinned[0]) > NATURAL_ENVELOPE * pinned[0].nnz:
+    if pinned is None or not pinned[0].nnz or not _within(natural_lu_bound(pinned[0]), pinned[0].nnz):
         return None
     keep: dict[str, Any] = {}
     try:
@@ -135,6 +139,12 @@ def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
         # iterative solves, which need O(entries), instead.
         return None
     return pi if pi is not None and _no_interchanges(keep["lu"]) else None
+
+
+def _within(bound: int, entries: int) -> bool:
+    """Whether an LU of at most ``bound`` entries may be made for a system of ``entries``: within
+    `NATURAL_ENVELOPE` times them and `NATURAL_MAX_ENTRIES`."""
+    return bound <= min(NATURAL_ENVELOPE * entries, NATURAL_MAX_ENTRIES)
 
 
 def _no_interchanges(lu: Any) -> bool:

@@ -114,6 +114,12 @@ def test_above_the_direct_cap_an_lu_is_made_only_in_the_states_order_within_its_
     np.testing.assert_allclose(pi, _eigen(banded), rtol=0, atol=1e-10)
     system, _ = stationary_lu.pinned_system(sp.csr_matrix(banded), 0)
     assert stationary_lu.natural_lu_bound(system) <= 4 * system.nnz  # a thin envelope: the bound is far from 64
+    # Past the ceiling on the LU's entries (made small here), whatever the ratio: the iterative path.
+    monkeypatch.setattr(stationary_lu, "NATURAL_MAX_ENTRIES", stationary_lu.natural_lu_bound(system) - 1)
+    assert not stationary_lu.natural_lu_fits(sp.csr_matrix(banded))
+    assert long_run_distribution(sp.csr_matrix(banded))[1]["method"] in ("power", "gmres")
+    monkeypatch.undo()
+    monkeypatch.setattr(report, "DIRECT_MAX_STATES", 50)
     # Scrambled, its envelope is past NATURAL_ENVELOPE times its entries (made small here): no LU, the iterative
     # path instead, to the same distribution.
     scrambled = _scrambled(banded, 22)
