@@ -37,7 +37,8 @@ import numpy as np
 import scipy.sparse as sp
 
 __all__ = ["NATURAL_BAND", "NATURAL_ENVELOPE", "NATURAL_FILL", "NATURAL_MAX_ENTRIES", "natural_lu_bound",
-           "natural_lu_fits", "natural_order_fits", "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu", "pinned_system"]
+           "natural_lu_fits", "natural_order_fits", "natural_pinned_lu", "ordered_pinned_lu", "pinned_lu",
+           "pinned_system"]
 
 NATURAL_BAND = 64
 """An LU may keep the states' own order only when the pinned system's band bounds its entries to this many
