@@ -153,7 +153,7 @@ STATIONARY_GRID_S = 2e-4
 """The stationary report of a grid model, on top of ``STATIONARY_S``: the marginals by state and shock (seconds)."""
 STATIONARY_ENTRY_NS = 450.0
 """The stationary report: a fixed cost (seconds) and the cost per entry of the policy's matrix (nanoseconds; one
-pinned sparse LU, :func:`worker.report.pinned_lu`, and the marginals).  Measured as a warm solve with the report
+pinned sparse LU, :func:`worker.stationary_lu.pinned_lu`, and the marginals).  Measured as a warm solve with the report
 less one without it: 0.6 ms on the ten-state machine example, 0.9 ms on the bike shop (31 points, 310 entries),
 1.9 ms on the household (4,000 entries), 5.4 ms on the roastery (7,200) and 6.6 ms on the plant (11,760)."""
 SIMULATION_NS = 500.0
