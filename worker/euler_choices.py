@@ -77,7 +77,7 @@ def choices_setup(data: ModelData) -> list[EulerSetup] | str | None:
         return None
     reason = within_reason(data, no_state_choices(data))
     if reason:
-        return f"Euler-equation errors not computed: {reason}"
+        return f"Euler-equation errors were not measured: {reason}"
     return setting_setups(data)
 
 
@@ -93,7 +93,7 @@ def setting_setups(data: ModelData) -> list[EulerSetup] | str | None:
             return None
         one = choice_setup(data, position)
         if isinstance(one, str):
-            return one.replace("not computed:", f"not computed (choice `{data.choices[j]}`):", 1)
+            return one.replace("were not measured:", f"were not measured (choice `{data.choices[j]}`):", 1)
         found.append((j, one))
     return [one for _, one in sorted(found, key=lambda pair: pair[0])]
 

@@ -71,7 +71,7 @@ def setup(data: ModelData) -> EulerSetup | str | None:
     if not any(j is not None for j in data.setter):
         return None
     if len(data.choices) != 1:
-        return ("Euler-equation errors not computed: they are measured for models with one choice that sets "
+        return ("Euler-equation errors were not measured: they are measured for models with one choice that sets "
                 "tomorrow's value of a state, several choices of which one or more set states (the others on grids "
                 "or menus), or a continuous one beside discrete choices")
     position = data.setter.index(0)
@@ -101,32 +101,32 @@ def choice_setup(data: ModelData, position: int) -> EulerSetup | str:
     moving = _depends(defines, choice)
     define, reason = _carrier(defines, reward, choice, moving)
     if define is None:
-        return f"Euler-equation errors not computed: {reason}"
+        return f"Euler-equation errors were not measured: {reason}"
     try:
         after = slope_trees(defines, define, skip_own=True)
         marginal = _slopes.derivative(reward, define, after)
         marginal_slope = _slopes.derivative(marginal, define, after)
         if isinstance(marginal, Number):
-            return (f"Euler-equation errors not computed: the marginal reward of `{define}` is constant, so it "
+            return (f"Euler-equation errors were not measured: the marginal reward of `{define}` is constant, so it "
                     "cannot be inverted")
         in_choice = slope_trees(defines, choice)
         define_slope = _slopes.derivative(defines[define], choice, in_choice)
         in_state = slope_trees(defines, state)
         state_slope = _slopes.derivative(reward, state, in_state)
     except _slopes.NotSmooth as error:
-        return f"Euler-equation errors not computed: the reward is not differentiable ({error})"
+        return f"Euler-equation errors were not measured: the reward is not differentiable ({error})"
     reason = _draw_form(data, defines, state, choice, define, [marginal, marginal_slope, define_slope], after)
     if reason:
-        return f"Euler-equation errors not computed: {reason}"
+        return f"Euler-equation errors were not measured: {reason}"
     try:
         chances = _chance_slopes(data, defines, state, choice, in_choice, in_state)
     except _slopes.NotSmooth as error:
-        return f"Euler-equation errors not computed: a draw's probability is not differentiable ({error})"
+        return f"Euler-equation errors were not measured: a draw's probability is not differentiable ({error})"
     try:
         laws = open_laws(data, {state, *_depends(defines, state)}, {choice, *_depends(defines, choice)}, state,
                          choice, in_choice, in_state)
     except _slopes.NotSmooth as error:
-        return f"Euler-equation errors not computed: a law of motion is not differentiable ({error})"
+        return f"Euler-equation errors were not measured: a law of motion is not differentiable ({error})"
     later = {name: (defines[name], derived) for name, derived in after.items()}
     return EulerSetup(state, choice, define, marginal, marginal_slope, later, (define_slope, in_choice),
                       (state_slope, in_state), chances, laws, companions)

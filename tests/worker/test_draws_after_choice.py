@@ -283,7 +283,7 @@ def test_a_draw_in_the_reward_only_with_a_next_of_choice():
     assert "euler_errors" not in result
     # Not measured, and the note says why: the reward uses the choice directly (the probabilities move with it
     # too; tests/worker/test_euler_draws.py has the draws' own notes).
-    assert any(note.startswith("Euler-equation errors not computed") and "uses the choice `keep` directly" in note
+    assert any(note.startswith("Euler-equation errors were not measured") and "uses the choice `keep` directly" in note
                for note in result["diagnostics"]["notes"])
 
 

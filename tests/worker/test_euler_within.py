@@ -306,7 +306,7 @@ def test_a_draw_probability_that_moves_with_the_effort_gets_a_note() -> None:
     chances = ["0.8 + 0.1 * effort", "0.2 - 0.1 * effort"]
     model["shocks"]["breakdown"] = {"iid": {"values": [0.0, 1.0], "probs": chances}, "timing": "after_choice"}
     model["reward"] = "log(c) - kappa * z * effort - 0.1 * breakdown"
-    note = ("Euler-equation errors not computed: a probability of a draw after the choice moves with `effort`, a "
+    note = ("Euler-equation errors were not measured: a probability of a draw after the choice moves with `effort`, a "
             "choice that sets no state, so that choice is not maximised out within the period")
     assert choices_setup(model_data(parse_document(document))) == note
     result = solve(document)

@@ -143,7 +143,7 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
     found = setup(data)
     if not isinstance(found, EulerSetup):
         reason = found or "it needs one state and one choice that sets tomorrow's value of it"
-        return None, None, reason.replace("Euler-equation errors not computed: ", "")
+        return None, None, reason.replace("Euler-equation errors were not measured: ", "")
     state = found.state
     defines = {name: expr.tree for name, expr in data.source.defines}
     moving = set(slope_trees(defines, state))
