@@ -25,6 +25,7 @@ import pytest
 from scipy.interpolate import RegularGridInterpolator
 
 from tests._documents import grid_document
+from tests._euler_checks import assert_each_choice_off_by
 from worker.continuous.setters_euler import setters_errors, setters_setup
 from worker.document import parse_document
 from worker.euler import TEST_POINTS_PER_GRID_POINT
@@ -396,16 +397,9 @@ def test_the_allowance_shop_s_exact_policy_beside_its_tools(ratio: float) -> Non
     rules = {"k_next": machines, "h_next": lambda points: np.full((points.shape[0], Z_VALUES.size), H_BAR)}
     errors = setters_errors(data, founds, BETA, search, (("h_next",), h_grid[:, None]), rules)
     share = ratio * A1 * BETA
-    for choice, size, other, gap in (("k_next", 8, 5, abs(1 - ratio)), ("h_next", 5, 8, abs(1 - (1 - share) / (
-            1 - A1 * BETA)))):
-        own = errors["by_choice"][choice]
-        assert own["constrained"] == 0 and own["undefined"] == 0
-        assert own["points"] >= TEST_POINTS_PER_GRID_POINT * size * other * Z_VALUES.size
-        if ratio == 1.0:  # rounding level
-            assert own["max_log10"] < -13
-        else:
-            assert own["max_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
-            assert own["mean_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+    assert_each_choice_off_by(errors, (("k_next", 8, 5, abs(1 - ratio)),
+                                       ("h_next", 5, 8, abs(1 - (1 - share) / (1 - A1 * BETA)))),
+                              Z_VALUES.size, exact=ratio == 1.0)
 
 
 def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:

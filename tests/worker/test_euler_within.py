@@ -28,6 +28,7 @@ import pytest
 from scipy.interpolate import RegularGridInterpolator
 
 from tests._documents import grid_document
+from tests._euler_checks import assert_each_choice_off_by
 from worker.continuous.mixed_euler import searcher
 from worker.continuous.setters_euler import setters_errors, setters_setup
 from worker.document import parse_document
@@ -99,16 +100,9 @@ def test_the_exact_policy_beside_an_effort_that_sets_no_state(ratio: float) -> N
     points = np.column_stack([np.linspace(0.04, 0.16, 7), np.full(7, H_BAR)])
     assert (maximised(data, founds[1], rules)(points)["effort"] == EFFORT[None, :]).all()
     errors = setters_errors(data, founds, BETA, search, (others, combos), rules)
-    for choice, size, other, gap in (("k_next", 8, 5, abs(1 - ratio)),
-                                     ("h_next", 5, 8, abs(1 - (1 - share) / (1 - A1 * BETA)))):
-        own = errors["by_choice"][choice]
-        assert own["constrained"] == 0 and own["undefined"] == 0
-        assert own["points"] >= TEST_POINTS_PER_GRID_POINT * size * other * Z_VALUES.size
-        if ratio == 1.0:  # rounding level
-            assert own["max_log10"] < -13
-        else:
-            assert own["max_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
-            assert own["mean_log10"] == pytest.approx(math.log10(gap), abs=1e-9)
+    assert_each_choice_off_by(errors, (("k_next", 8, 5, abs(1 - ratio)),
+                                       ("h_next", 5, 8, abs(1 - (1 - share) / (1 - A1 * BETA)))),
+                              Z_VALUES.size, exact=ratio == 1.0)
 
 
 def _between(grid: np.ndarray) -> np.ndarray:
