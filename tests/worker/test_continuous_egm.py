@@ -220,6 +220,9 @@ def test_the_leaps_end_on_the_same_fixed_point_in_fewer_rounds(monkeypatch: pyte
     rounds = {name: result["diagnostics"]["continuous_choice"]["endogenous_grid"]["rounds"]
               for name, result in (("plain", plain), ("leapt", leapt))}
     assert rounds["leapt"] < 0.9 * rounds["plain"]
+    leaps = {name: result["diagnostics"]["continuous_choice"]["endogenous_grid"]["leaps"]
+             for name, result in (("plain", plain), ("leapt", leapt))}
+    assert leaps["plain"] == 0 and leaps["leapt"] >= 1
     far = {name: np.abs(np.array(result["policy"]["save"]) - fixed).max()
            for name, result in (("plain", plain), ("leapt", leapt))}
     # The stopping rule's promise: a last move of at most POLICY_TOLERANCE of the width (100) leaves about

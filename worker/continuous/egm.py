@@ -232,7 +232,7 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                                  f"model ({error}); use howard") from error
     outcome = solve_from(problem, value, tolerance=tolerance, max_iterations=max_iterations, **options)
     greedy = np.asarray(outcome.policy, dtype=np.float64)
-    problem.egm_report = {"rounds": rounds, "last_change": change, "seconds": egm_seconds,
+    problem.egm_report = {"rounds": rounds, "leaps": leaps.count, "last_change": change, "seconds": egm_seconds,
                           "greedy_gap": float(np.abs(greedy - flat).max())}
     outcome.policy = flat
     problem.egm_rule = lambda k: _rule_at(grid, pairs, np.asarray(k, dtype=np.float64).reshape(-1))

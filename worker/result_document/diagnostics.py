@@ -158,6 +158,10 @@ class EndogenousGrid(Reported):
     """solver.method endogenous_grid: the method's own rounds before the solver certified its policy."""
 
     rounds: int = Field(description="Rounds of the endogenous grid method.")
+    leaps: int = Field(
+        description="Leaps the rounds made over the geometric tail of their moves (Aitken's extrapolation while the "
+        "moves shrink at a steady rate; a leap is not a round, and the answer is a round's)."
+    )
     last_change: float = Field(description="The largest move of a choice in the last round.")
     seconds: float = Field(description="Time (s) spent in the rounds.")
     greedy_gap: float = Field(
