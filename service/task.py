@@ -130,6 +130,7 @@ def _connection(settings: Settings) -> redis.Redis:
         _CONNECTIONS[url] = connect(settings)
     return _CONNECTIONS[url]
 
+
 def preload() -> None:
     """Import what jobs import lazily, once per worker process before it takes a job (or counts as live).
 
