@@ -1,4 +1,6 @@
-"""The compiled helper of :mod:`worker.continuous.bound_search`: the largest node value of a block of grid intervals.
+"""The compiled helpers of :mod:`worker.continuous.bound_search`: the largest node value of a block of grid intervals,
+and the upper concave hulls of the continuation that the proof at the incumbent reads
+(:mod:`worker.continuous.bound_proof`: :func:`build_hulls` once per step, :func:`hull_rise` per piece of a point).
 
 The branch and bound of an unrestricted continuous search walks aligned dyadic blocks of grid
 intervals of the chosen state: block ``q`` of level ``l`` holds intervals ``q·2**l … (q+1)·2**l − 1``,

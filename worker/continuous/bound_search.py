@@ -48,6 +48,11 @@ generated kernel runs :data:`BOUND_TEXT` instead:
   (the one of :mod:`worker.continuous.search`; both ends of an interval are
   evaluated, so the answer is never below a grid point's value).
 
+Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` interpolation, the chosen
+state the only one, a reward :mod:`worker._slopes` can differentiate) and the step's hulls are given, the
+*proof at the incumbent* runs (``#PROOF#``): where it shows that no choice beats the guess by more than the
+slack, the block stack is emptied and the incumbent is the answer; elsewhere the blocks are searched as below.
+
 What is proved: no skipped block holds a choice whose value (as the kernel
 computes it) exceeds the incumbent when it was skipped, up to the slack, so
 the answer is at least the value at every grid point and at every choice
