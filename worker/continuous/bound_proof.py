@@ -24,8 +24,12 @@ with ``G`` the upper end (right side) or the lower end (left side) of the interv
 (:func:`worker._codegen.block_search.slope_steps`, :mod:`worker._slopes`) over the piece's choice box.  The
 right-hand side is concave and piecewise linear in ``x``: its maximum over the piece is one bisection
 over the hull's segments (:func:`worker.continuous.bound_kernels.hull_rise`).  The proof holds when every
-non-empty piece's bound is at most ``f(x0)`` after the slack below; the answer is then ``x0`` with its value
-and reward, with the branch and bound's meaning: no choice beats it by more than the slack.  The near piece
+non-empty piece's bound is at most ``f(x0)`` plus the slack below; the answer is then ``x0`` with its value
+and reward: no choice beats it by more than the slack (twice the slack, strictly: the computed bound is within
+one slack of the exact one, and one more is allowed because at the optimum of a concave objective the bound
+*equals* ``f(x0)``, so a test without it would fail by rounding at half the points).  That is about ``2**-39``
+of the values' size, below any value tolerance a solve is given; a better choice by less goes unnoticed where
+the branch and bound's Brent refinement might have found it.  The near piece
 is there because ``x0`` is only within Brent's tolerance of the optimum: one piece from ``x0`` to ``hi_b``
 would rise by ``f'(x0)`` times a grid interval, while the near piece rises by ``f'(x0)·t`` (about ``f''·t²``)
 and the far piece's anchor is past the optimum.
@@ -66,7 +70,7 @@ from worker._codegen.static_proof import constraint_limits, inward_limit, narrow
 from worker._codegen.writer import Lines
 from worker.continuous.search import SQRT_EPS
 
-__all__ = ["PROOF_REACH", "ProofPlan", "proof_plan", "proof_text"]
+__all__ = ["PROOF_REACH", "ProofPlan", "guess_text", "proof_plan", "proof_text"]
 
 PROOF_REACH = 4.0
 """Width of each side's near piece, in Brent tolerances (``SQRT_EPS·|x0| + tol_abs``) at the incumbent (count:
@@ -116,6 +120,25 @@ def proof_plan(writer: Any, names: dict[str, str]) -> ProofPlan | None:
     return ProofPlan(choice, varying, steps, lines, names, limits)
 
 
+def guess_text(guess: str) -> str:
+    """``guess`` (:data:`worker.continuous.bound_search.GUESS_TEXT`, which evaluates ``xg = g``) in a loop that also
+    evaluates the far pieces' anchors ``g ± t`` when there are hulls, into ``pf_fr``/``pf_rr`` (right) and
+    ``pf_fl``/``pf_rl`` (left): through the guess's own lines, so the model is not inlined once more."""
+    lines = guess.strip("\n").split("\n")
+    assert lines[0] == "xg = g"
+    out = Lines()
+    out.add(f"pf_t = {PROOF_REACH!r} * ({SQRT_EPS!r} * abs(g) + tol_abs)",
+            "pf_fr = -np.inf", "pf_rr = -np.inf", "pf_fl = -np.inf", "pf_rl = -np.inf")
+    with out.block("for e_g in range(3 if b_hull.shape[0] > 0 else 1):"):
+        out.add("xg = g if e_g == 0 else (min(g + pf_t, hi_b) if e_g == 1 else max(g - pf_t, lo_b))")
+        out.extend(lines[1:])
+        with out.block("if e_g == 1:"):
+            out.add("pf_fr = fg", "pf_rr = rg")
+        with out.block("elif e_g == 2:"):
+            out.add("pf_fl = fg", "pf_rl = rg")
+    return out.text()
+
+
 def proof_text(plan: ProofPlan) -> str:
     """The lines (at the depth of ``BOUND_TEXT``'s ``#PROOF#``) that set ``proven`` and empty the block stack
     when the proof holds; they read the incumbent ``x``/``fx``/``rx``, the guess ``g`` and the hulls
@@ -127,7 +150,7 @@ def proof_text(plan: ProofPlan) -> str:
     lo_names[plan.choice], hi_names[plan.choice] = "pf_lo", "pf_hi"
     with out.block("if b_hull.shape[0] > 0 and x == g and fx - fx == 0.0:"):
         out.extend(plan.lines)
-        out.add(f"pf_t = {PROOF_REACH!r} * ({SQRT_EPS!r} * abs(g) + tol_abs)", "proven = True")
+        out.add("proven = True")
         # Pieces: 0 near right [g, g + t], 1 far right [g + t, hi_b], 2 near left, 3 far left.
         with out.block("for pf_k in range(4):"):
             out.add("pf_right = pf_k < 2", "pf_m = min(g + pf_t, hi_b) if pf_right else max(g - pf_t, lo_b)",
@@ -136,9 +159,8 @@ def proof_text(plan: ProofPlan) -> str:
                     "pf_hi = (pf_m if pf_k == 0 else hi_b) if pf_right else (g if pf_k == 2 else pf_m)")
             with out.block("if not pf_lo < pf_hi:"):
                 out.add("continue")
-            out.add("pf_f = fx", "pf_r = rx")
-            with out.block("if pf_a != g:"):
-                out.add("pf_f, pf_r, _pf_x = f(pf_a)")
+            out.add("pf_f = fx if pf_k % 2 == 0 else (pf_fr if pf_k == 1 else pf_fl)",
+                    "pf_r = rx if pf_k % 2 == 0 else (pf_rr if pf_k == 1 else pf_rl)")
             out.add("pf_empty = False")
             narrow_lines(out, plan.limits.get(plan.choice, []), "pf_lo", "pf_hi", None, "pf_empty")
             g_lo = g_hi = "0.0"

@@ -73,7 +73,7 @@ from worker import expressions
 from worker._codegen.block_search import BOUND_SLACK, tighten_box, tree_interval
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
-from worker.continuous.bound_proof import proof_plan, proof_text
+from worker.continuous.bound_proof import guess_text, proof_plan, proof_text
 from worker.continuous.search import NARROW_TEXT, XTOL_SHARE, brent_loop
 
 __all__ = [
@@ -102,6 +102,17 @@ if proven:
 ``bound_point``, counting in ``b_proven`` the combinations where the proof at the incumbent held; the kink polish
 follows as after the scan."""
 
+GUESS_TEXT = """xg = g
+fg, rg, _xk = f(xg)
+if xg == g and fg > fx:
+    x = g
+    fx = fg
+    rx = rg
+"""
+"""The evaluation of the guess ``g`` at ``#GUESS#`` of :data:`BOUND_TEXT`: it becomes the incumbent.  The proof at
+the incumbent (:func:`worker.continuous.bound_proof.guess_text`) evaluates its anchors through the same lines, in a
+loop whose first point is ``g`` (one inline copy of the model less to compile)."""
+
 BOUND_TEXT = f"""
 proven = False
 x = np.nan
@@ -121,11 +132,7 @@ elif width > 0.0:
     g = guess[i] if has_guess else np.nan
     if g == g:
         g = min(max(g, lo_b), hi_b)
-        fg, rg, _xk = f(g)
-        if fg > fx:
-            x = g
-            fx = fg
-            rx = rg
+#GUESS#
     b_lev[0] = b_root
     b_q[0] = 0
     b_ub[0] = np.inf
@@ -243,7 +250,8 @@ elif width > 0.0:
 ``b_outer`` (lines of ``EVt`` beside the chosen state's) and ``b_root`` (the level of one block over every
 interval) in scope): leaves the best choice, value and reward in ``x``, ``fx``, ``rx``, and ``proven`` (the proof
 at the incumbent held).  ``#PREPARE#`` is where the bound's parts fixed at the point go, ``#PROOF#`` the proof's
-lines (:func:`worker.continuous.bound_proof.proof_text`; they empty the block stack when it holds), ``#BOUND#``
+lines (:func:`worker.continuous.bound_proof.proof_text`; they empty the block stack when it holds), ``#GUESS#``
+:data:`GUESS_TEXT`, ``#BOUND#``
 the lines setting ``ub`` for the choices ``[c_lo, c_hi]`` of intervals ``ca … cz`` (block ``qc`` of level ``lc``);
 ``b_lev``/``b_q``/``b_ub`` are the block stack."""
 
@@ -341,6 +349,8 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
     proof = None if others else proof_plan(w, names)
     plan.provable = proof is not None
     text = BOUND_TEXT.replace("#PREPARE#", prepare.text()).replace("#BOUND#", bound.text())
+    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT)
+    text = text.replace("#GUESS#\n", "".join(f"        {line}\n" for line in guess.strip("\n").split("\n")))
     return text.replace("#PROOF#\n", "" if proof is None else proof_text(proof) + "\n")
 
 
