@@ -15,7 +15,8 @@ of the nodes (:func:`worker.continuous.bound_kernels.build_hulls`, built once pe
 row's *deficit* is at least ``W`` everywhere, ``W`` being linear between nodes), each side of ``x0`` is cut
 into a *near* piece ``[x0, x0 + t]`` and a *far* piece ``[x0 + t, hi_b]`` (on the left, mirrored), with
 ``t = PROOF_REACH`` Brent tolerances at ``x0``.  Over a piece with anchor ``a`` (``x0`` for the near piece,
-its inner end for the far one, evaluated: it must be allowed and finite), by the mean value theorem as in
+its inner end for the far one, evaluated beside the guess (:func:`guess_text`): it must be allowed and
+finite), by the mean value theorem as in
 :mod:`worker._codegen.static_proof`, every allowed ``x`` of the piece has
 
     f(x) ≤ f(a) + G·(x − a) + β (H(x) + deficit − W(a)),
@@ -40,13 +41,13 @@ gives that wherever the used end of the bound is a number, and refuses (:class:`
 then no proof is written) what may jump.  The constraints narrow the choice's box, and a define's box only
 where the bounds of its derivative exclude 0 (it is then monotone on the box, so a constraint holding at the
 anchor and at ``x`` holds between them): the rule, the rounding of the limits and the acceptance of an
-infinite unused end are those of :mod:`worker._codegen.static_proof` (:func:`~worker._codegen.static_proof.
-narrow_lines`).  A box that reaches a pole of the reward (``c → 0`` under ``c**(1 − γ)``) without a
-constraint narrowing it has an infinite end, and the proof fails there; a piece that the narrowing empties
-fails too (conservatively).
+infinite unused end are those of :mod:`worker._codegen.static_proof` (its
+:func:`~worker._codegen.static_proof.narrow_lines`).  A box that reaches a pole of the reward (``c → 0``
+under ``c**(1 − γ)``) without a constraint narrowing it has an infinite end, and the proof fails there; a
+piece that the narrowing empties fails too (conservatively).
 
-Slack: the bound is widened by :data:`~worker._codegen.block_search.BOUND_SLACK` times ``2|r(a)| + 2|f(x0)|
-+ |G|·(width of the piece) + 2β·max|EV| + |rise|``, which covers the rounding of ``f(a)`` and of ``f(x)`` at a
+Slack: :data:`~worker._codegen.block_search.BOUND_SLACK` times ``2|r(a)| + 2|f(x0)| + |G|·(width of the
+piece) + 2β·max|EV| + |rise|``, which covers the rounding of ``f(a)`` and of ``f(x)`` at a
 choice near the bound (its reward is then within ``|f(x0)| + β·max|EV|`` of the bound's size), of the hull's
 interpolation and of the deficit (ulps of ``max|EV|``), the bisection's sign tests (a wrong sign moves the
 maximum by a few ulps of ``|G|·width``: :func:`~worker.continuous.bound_kernels.hull_rise`), and the
