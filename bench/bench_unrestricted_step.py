@@ -1,4 +1,5 @@
-"""The unrestricted Bellman step of a continuous ``next_of`` choice: branch and bound against the scan.
+"""The unrestricted Bellman step of a continuous ``next_of`` choice: branch and bound (with and without the proof
+at the incumbent) against the scan.
 
 Run from the repository root: ``python bench/bench_unrestricted_step.py`` (``--quick``: 200 points only).
 The model is the accuracy benchmark's (:mod:`bench_accuracy`, variants (b) ``linear`` and (c)
@@ -6,10 +7,12 @@ The model is the accuracy benchmark's (:mod:`bench_accuracy`, variants (b) ``lin
 once with its hints; then the unrestricted step that verifies them, ``bellman_step(v, restricted=False,
 policy_guess=policy)`` at the solved value, is timed with the branch and bound of
 :mod:`worker.continuous.bound_search` and with the scan it replaces (the same kernels, the bound switched
-off), interleaved, median of :data:`REPEATS`.  The scan is the baseline measured in the same run; the
-script also prints the largest amount by which the bound's value falls below the scan's at any point
-(rounding only, or the script says FAIL) and how far it rises above it.  The machine may be shared and
-noisy: the ratios are those of this one run.
+off), interleaved, median of :data:`REPEATS`; for ``linear`` also with the proof at the incumbent of
+:mod:`worker.continuous.bound_proof` before the branch and bound (the share of points where it held is printed),
+the branch and bound alone being then the proof switched off.  The scan is the baseline measured in the same
+run; the script also prints the largest amount by which the bound's value falls below the scan's at any point
+(rounding only, or the script says FAIL; the same for the proof's) and how far it rises above it.  The machine
+may be shared and noisy: the ratios are those of this one run.
 """
 
 from __future__ import annotations
@@ -46,21 +49,36 @@ def run(points: int, variant: str) -> bool:
     _, problem = compile_document(document)
     v = np.asarray(result["value"], dtype=np.float64).reshape(-1)
     policy = np.asarray(result["policy"][bench_accuracy.CHOICE], dtype=np.float64).reshape(-1)
-    times: dict[bool, list[float]] = {True: [], False: []}
+    provable = problem.bound_proof
+    modes = ("proof", "bound", "scan") if provable else ("bound", "scan")
+    times: dict[str, list[float]] = {mode: [] for mode in modes}
     answers = {}
+    proven = 0
     for _ in range(REPEATS + 1):
-        for bound in (True, False):
-            problem.bound_search = bound
+        for mode in modes:
+            problem.bound_search = mode != "scan"
+            problem.bound_proof = mode == "proof"
             started = time.perf_counter()
-            answers[bound] = problem.bellman_step(v, restricted=False, policy_guess=policy)[0]
-            times[bound].append(time.perf_counter() - started)
-    new, old = (1e3 * statistics.median(times[b][1:]) for b in (True, False))
-    gap = answers[True] - answers[False]
-    size = float(np.abs(answers[False]).max())
-    ok = bool(gap.min() >= -ROUNDING * size)
+            answers[mode] = problem.bellman_step(v, restricted=False, policy_guess=policy)[0]
+            times[mode].append(time.perf_counter() - started)
+            if mode == "proof":
+                proven = int(np.count_nonzero(problem.proven))
+    ms = {mode: 1e3 * statistics.median(times[mode][1:]) for mode in modes}
+    size = float(np.abs(answers["scan"]).max())
+    ok = True
     label = bench_accuracy.VARIANTS[variant][0]
-    print(f"  {points:>6,} x 7  {label:<34} scan {old:8.2f} ms  bound {new:8.2f} ms  ratio {new / old:5.2f}  "
-          f"value: lowest {gap.min():+.1e}, highest {gap.max():+.1e}  {'ok' if ok else 'FAIL'}")
+    line = f"  {points:>6,} x 7  {label:<34} scan {ms['scan']:8.2f} ms  bound {ms['bound']:8.2f} ms"
+    for mode in modes[:-1]:
+        gap = answers[mode] - answers["scan"]
+        ok = ok and bool(gap.min() >= -ROUNDING * size)
+    gap = answers["bound"] - answers["scan"]
+    line += f"  ratio {ms['bound'] / ms['scan']:5.2f}  value: lowest {gap.min():+.1e}, highest {gap.max():+.1e}"
+    if provable:
+        gap = answers["proof"] - answers["bound"]
+        line += (f"\n  {'':>10}  {'':<34} proof {ms['proof']:8.2f} ms  held at {proven / v.size:6.1%} of points  "
+                 f"ratio to bound {ms['proof'] / ms['bound']:5.2f}, to scan {ms['proof'] / ms['scan']:5.2f}  "
+                 f"value vs bound: lowest {gap.min():+.1e}, highest {gap.max():+.1e}")
+    print(line + f"  {'ok' if ok else 'FAIL'}")
     return ok
 
 

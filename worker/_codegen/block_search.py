@@ -20,11 +20,15 @@ from dataclasses import dataclass
 
 from worker import _slopes, expressions
 from worker._codegen.hoist import Hoister, dependents
+from worker._codegen.layout import ModelSource
 from worker._codegen.writer import JIT, KernelWriter, Lines
 from worker.expressions import Expression, names_in
 from worker.expressions.intervals import interval_source
 
-__all__ = ["BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan", "tighten_box", "tree_interval"]
+__all__ = [
+    "BOUND_SLACK", "SLOPE_SLACK", "SlopePlan", "bellman_bnb", "slope_plan", "slope_steps", "tighten_box",
+    "tree_interval",
+]
 
 BOUND_SLACK = 2.0**-40
 """Relative widening of a block's upper bound (of ``|reward bound| + |β·EV bound|``):
@@ -62,26 +66,36 @@ def slope_plan(writer: KernelWriter) -> SlopePlan | None:
     ):
         return None
     choice = model.choices[inner]
-    varying = dependents(model, {choice})
+    plan = SlopePlan(names=dict(writer.names), lines=[], steps=[])
+    hoist = Hoister(dependents(model, {choice}), plan.names, plan.lines, "hs_")
+    try:
+        plan.steps = slope_steps(model, writer.defines, writer.reward, choice, hoist)
+    except _slopes.NotSmooth:
+        return None
+    return plan
+
+
+def slope_steps(model: ModelSource, defines: list[tuple[int, Expression | None]], reward: Expression, choice: str,
+                hoist: Hoister) -> list[tuple[str, expressions.Node, expressions.Node]]:
+    """``(name, value tree, derivative tree)`` along ``choice`` for the defines the reward needs that move with
+    it, in order, then ``("", reward tree, its derivative)``: the trees rewritten by ``hoist`` (whose varying
+    names are those that move with the choice).  Raises :class:`worker._slopes.NotSmooth` where one may jump."""
+    varying = hoist.varying
     needed = set(model.reward.names)
     for name, expr in reversed(model.defines):
         if name in needed:
             needed |= set(expr.names)
-    plan = SlopePlan(names=dict(writer.names), lines=[], steps=[])
-    hoist = Hoister(varying, plan.names, plan.lines, "hs_")
     moving = {name: True for name in varying if name != choice}
-    try:
-        for k, expr in writer.defines:
-            name = model.defines[k][0]
-            if expr is None or name not in varying or name not in needed:
-                continue
-            tree = hoist.rewrite(expr.tree)
-            plan.steps.append((name, tree, _slopes.derivative(tree, choice, moving)))
-        tree = hoist.rewrite(writer.reward.tree)
-        plan.steps.append(("", tree, _slopes.derivative(tree, choice, moving)))
-    except _slopes.NotSmooth:
-        return None
-    return plan
+    steps = []
+    for k, expr in defines:
+        name = model.defines[k][0]
+        if expr is None or name not in varying or name not in needed:
+            continue
+        tree = hoist.rewrite(expr.tree)
+        steps.append((name, tree, _slopes.derivative(tree, choice, moving)))
+    tree = hoist.rewrite(reward.tree)
+    steps.append(("", tree, _slopes.derivative(tree, choice, moving)))
+    return steps
 
 
 def _slope_bound(writer: KernelWriter, out: Lines, plan: SlopePlan) -> None:

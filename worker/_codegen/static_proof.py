@@ -96,7 +96,7 @@ from worker._codegen.writer import KernelWriter, Lines
 from worker.expressions import Expression, names_in
 from worker.expressions.intervals import interval_source
 
-__all__ = ["PROOF_TRIES", "SLACK", "ProofPlan", "proof_plan"]
+__all__ = ["PROOF_TRIES", "SLACK", "ProofPlan", "constraint_limits", "inward_limit", "narrow_lines", "proof_plan"]
 
 SLACK = 2.0**-40
 """Relative widening of a side's bound (of |anchor| + |step| + |bound|; see the module docstring)."""
@@ -256,20 +256,21 @@ def proof_plan(writer: KernelWriter, axis: int, constant: set[str]) -> ProofPlan
     tests = [per_line.rewrite(tree) for tree in tests]
     plan = ProofPlan(choice, writer.meta.coff(axis), tabulator.trees, names, line_lines, [], steps, values, tests)
     for expr in writer.feasible:
-        _limits(expr.tree, moving, names, plan.limits, static_names)
+        constraint_limits(expr.tree, moving, names, plan.limits, static_names)
     _limit_lines(plan)
     return plan
 
 
-def _limits(
+def constraint_limits(
     tree: expressions.Node, moving: set[str], names: dict[str, str], found: dict[str, list[tuple[str, str, bool]]],
     constant: set[str],
 ) -> None:
-    """Comparisons (chained, or inside ``and``) of a name that moves with ``h`` with a side that does not."""
+    """Comparisons (chained, or inside ``and``) of a name that moves with the choice with a side that does not:
+    ``found[name]`` gets ``(op, fixed side's source, whether it depends on ``constant`` names only)``."""
     E = expressions
     if isinstance(tree, E.Logic) and tree.op == "and":
         for operand in tree.operands:
-            _limits(operand, moving, names, found, constant)
+            constraint_limits(operand, moving, names, found, constant)
         return
     if not isinstance(tree, E.Compare):
         return
@@ -291,14 +292,21 @@ def _limit_lines(plan: ProofPlan) -> None:
     for name, limits in plan.limits.items():
         moved = []
         for op, point, fixed in limits:
-            if op == ">":
-                point = f"np.nextafter({point}, np.inf)"
-            elif op == "<":
-                point = f"np.nextafter({point}, -np.inf)"
+            point = inward_limit(op, point)
             (plan.fixed_lines if fixed else plan.line_lines).append(f"lim{count} = {point}")
             moved.append((op, f"lim{count}", fixed))
             count += 1
         plan.limits[name] = moved
+
+
+def inward_limit(op: str, point: str) -> str:
+    """The source of a narrowing limit: the fixed side ``point`` of a comparison ``op``, rounded inward for the
+    strict ones (``x > p`` allows ``x >= nextafter(p, inf)`` only)."""
+    if op == ">":
+        return f"np.nextafter({point}, np.inf)"
+    if op == "<":
+        return f"np.nextafter({point}, -np.inf)"
+    return point
 
 
 def table_source(plan: ProofPlan, out: Lines) -> None:
@@ -454,7 +462,15 @@ def _narrow(
     plan: ProofPlan, out: Lines, name: str, lo: str, hi: str, slope: tuple[str, str] | None, tag: str
 ) -> None:
     """Narrow ``[lo, hi]`` by the constraints on ``name`` (``""``: the static choice) where it is monotone."""
-    limits = plan.limits.get(name or plan.choice, [])
+    narrow_lines(out, plan.limits.get(name or plan.choice, []), lo, hi, slope, f"empty_{tag}")
+
+
+def narrow_lines(
+    out: Lines, limits: list[tuple[str, str, bool]], lo: str, hi: str, slope: tuple[str, str] | None, empty: str
+) -> None:
+    """Lines narrowing the bounds ``[lo, hi]`` of a name by its constraints' limits (variables, as
+    :func:`inward_limit` writes them) where the bounds ``slope`` of its derivative exclude 0 (always for the
+    choice itself: ``slope`` None), setting ``empty`` when nothing is left (see the module docstring)."""
     if not limits:
         return
     test = "True" if slope is None else f"{slope[0]} > 0.0 or {slope[1]} < 0.0"
@@ -465,4 +481,4 @@ def _narrow(
             else:
                 out.add(f"{hi} = min({hi}, {limit})")
         with out.block(f"if not ({lo} <= {hi}):"):
-            out.add(f"empty_{tag} = True")
+            out.add(f"{empty} = True")

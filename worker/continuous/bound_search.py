@@ -48,6 +48,11 @@ generated kernel runs :data:`BOUND_TEXT` instead:
   (the one of :mod:`worker.continuous.search`; both ends of an interval are
   evaluated, so the answer is never below a grid point's value).
 
+Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` interpolation, the chosen
+state the only one, a reward :mod:`worker._slopes` can differentiate) and the step's hulls are given, the
+*proof at the incumbent* runs (``#PROOF#``): where it shows that no choice beats the guess by more than the
+slack, the block stack is emptied and the incumbent is the answer; elsewhere the blocks are searched as below.
+
 What is proved: no skipped block holds a choice whose value (as the kernel
 computes it) exceeds the incumbent when it was skipped, up to the slack, so
 the answer is at least the value at every grid point and at every choice
@@ -68,6 +73,7 @@ from worker import expressions
 from worker._codegen.block_search import BOUND_SLACK, tighten_box, tree_interval
 from worker._codegen.hoist import Hoister, dependents
 from worker._codegen.writer import Lines
+from worker.continuous.bound_proof import guess_text, proof_plan, proof_text
 from worker.continuous.search import NARROW_TEXT, XTOL_SHARE, brent_loop
 
 __all__ = [
@@ -82,17 +88,33 @@ STACK_ROWS = 130
 """Rows of the block stack (each split pushes two halves, so depth first it holds about 2·log2(intervals))."""
 
 BOUND_ARGUMENTS = ("EVt, D, beta, p, sgrid, meta, ztab, svals, piz, i, combos, cc, guess, has_guess, lo_b, hi_b, "
-                   "b_pyr, b_levels, ev_abs, b_lev, b_q, b_ub")
+                   "b_pyr, b_levels, ev_abs, b_lev, b_q, b_ub, b_hull, b_hd")
 """The arguments of the generated ``bound_point``: the search kernel's, the point ``i``, the combination ``cc``, the
-interval ``[lo_b, hi_b]`` (narrowed under ``monotone``), the pyramid and the block stack."""
+interval ``[lo_b, hi_b]`` (narrowed under ``monotone``), the pyramid, the block stack and the hulls of the proof at
+the incumbent (:mod:`worker.continuous.bound_proof`; empty: no proof)."""
 
 BOUND_CALL = f"""{NARROW_TEXT}width = hi_b - lo_b
-x, fx, rx = bound_point({BOUND_ARGUMENTS})
+x, fx, rx, proven = bound_point({BOUND_ARGUMENTS})
+if proven:
+    b_proven[i] += 1
 """
 """What the search kernel runs in place of the scan: the interval, narrowed as the scan narrows it, then
-``bound_point``; the kink polish follows as after the scan."""
+``bound_point``, counting in ``b_proven`` the combinations where the proof at the incumbent held; the kink polish
+follows as after the scan."""
+
+GUESS_TEXT = """xg = g
+fg, rg, _xk = f(xg)
+if xg == g and fg > fx:
+    x = g
+    fx = fg
+    rx = rg
+"""
+"""The evaluation of the guess ``g`` at ``#GUESS#`` of :data:`BOUND_TEXT`: it becomes the incumbent.  The proof at
+the incumbent (:func:`worker.continuous.bound_proof.guess_text`) evaluates its anchors through the same lines, in a
+loop whose first point is ``g`` (one inline copy of the model less to compile)."""
 
 BOUND_TEXT = f"""
+proven = False
 x = np.nan
 fx = -np.inf
 rx = -np.inf
@@ -110,15 +132,12 @@ elif width > 0.0:
     g = guess[i] if has_guess else np.nan
     if g == g:
         g = min(max(g, lo_b), hi_b)
-        fg, rg, _xk = f(g)
-        if fg > fx:
-            x = g
-            fx = fg
-            rx = rg
+#GUESS#
     b_lev[0] = b_root
     b_q[0] = 0
     b_ub[0] = np.inf
     top = 1
+#PROOF#
     n0_x = np.nan
     n0_f = -np.inf
     n0_r = -np.inf
@@ -229,9 +248,12 @@ elif width > 0.0:
 """
 """The body of ``bound_point`` after its point is unpacked and ``f`` written (with ``grid_off``, ``grid_size``,
 ``b_outer`` (lines of ``EVt`` beside the chosen state's) and ``b_root`` (the level of one block over every
-interval) in scope): leaves the best choice, value and reward in ``x``, ``fx``, ``rx``.  ``#PREPARE#`` is where the
-bound's parts fixed at the point go, ``#BOUND#`` the lines setting ``ub`` for the choices ``[c_lo, c_hi]`` of
-intervals ``ca … cz`` (block ``qc`` of level ``lc``); ``b_lev``/``b_q``/``b_ub`` are the block stack."""
+interval) in scope): leaves the best choice, value and reward in ``x``, ``fx``, ``rx``, and ``proven`` (the proof
+at the incumbent held).  ``#PREPARE#`` is where the bound's parts fixed at the point go, ``#PROOF#`` the proof's
+lines (:func:`worker.continuous.bound_proof.proof_text`; they empty the block stack when it holds), ``#GUESS#``
+:data:`GUESS_TEXT`, ``#BOUND#``
+the lines setting ``ub`` for the choices ``[c_lo, c_hi]`` of intervals ``ca … cz`` (block ``qc`` of level ``lc``);
+``b_lev``/``b_q``/``b_ub`` are the block stack."""
 
 
 @dataclass
@@ -241,6 +263,7 @@ class BoundPlan:
 
     varying: set[str]
     names: dict[str, str]
+    provable: bool = False
 
 
 def bound_plan(writer: Any) -> BoundPlan | None:
@@ -323,8 +346,12 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
         with bound.block("if ub - ub == 0.0:"):
             bound.add(f"ub += {BOUND_SLACK!r} * (abs({r_hi}) + beta * ev_abs)")
     bound.depth = depth
+    proof = None if others else proof_plan(w, names)
+    plan.provable = proof is not None
     text = BOUND_TEXT.replace("#PREPARE#", prepare.text()).replace("#BOUND#", bound.text())
-    return text
+    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT)
+    text = text.replace("#GUESS#\n", "".join(f"        {line}\n" for line in guess.strip("\n").split("\n")))
+    return text.replace("#PROOF#\n", "" if proof is None else proof_text(proof) + "\n")
 
 
 def _continuation_weights(out: Lines, others: list[int]) -> None:

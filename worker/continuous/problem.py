@@ -50,6 +50,7 @@ import scipy.sparse as sp
 
 from worker import kernels, threadpool
 from worker._codegen import kernel_params
+from worker.continuous.bound_kernels import bound_tables
 from worker.continuous.drawnodes import check_at_policy, draw_nodes
 from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
 from worker.feasibility import ModelData
@@ -144,6 +145,8 @@ class ContinuousProblem:
         self._scratch = (np.empty((data.n_shocks, data.n_grid)), np.empty(self.n))
         self._draw_count = 0 if data.draws is None else data.draws.size
         self.bound_search = bool(getattr(module, "BOUNDED", False))  # see worker.continuous.bound_search
+        self.bound_proof = bool(getattr(module, "PROVABLE", False))  # see worker.continuous.bound_proof
+        self.proven = np.zeros(0, dtype=np.int64)  # per point of the last step: combinations the proof held at
         self._levels = kernels.pyramid_levels(sizes[self.target] if self.target is not None else 1)
         self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
 
@@ -170,8 +173,8 @@ class ContinuousProblem:
         states = np.empty((0, len(data.states)))
         self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
-                       False, False, self.scan_points, self.combos, none_f, self._levels, 0.0, none_f, none_f, none_f,
-                       none_i, 0, 0)
+                       False, False, self.scan_points, self.combos, none_f, self._levels, 0.0, none_i.reshape(0, 0),
+                       none_f, none_i, none_f, none_f, none_f, none_i, 0, 0)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
                           self.combos, none_i, none_f, self._tomorrow(0), np.empty(0, dtype=np.bool_),
                           np.empty((0, self._draw_count)))
@@ -294,17 +297,14 @@ class ContinuousProblem:
         has_guess = guess is not None
         guess = guess if has_guess else np.zeros(1)
         search = self._k.search
-        pyramid, ev_abs = np.empty(0), 0.0  # an empty pyramid: the scan (see worker.continuous.bound_search)
-        if self.bound_search and not concave:
-            size, stride = int(self._meta[len(self._strides) + self.target]), self._strides[self.target]
-            pyramid = np.empty(EVt.size // (size * stride) * int(self._levels[-1]) * stride)
-            kernels.build_pyramid(EVt, size, stride, self._levels, pyramid)
-            ev_abs = float(np.abs(EVt).max())
+        pyramid, ev_abs, hull, deficit = bound_tables(EVt, self._sgrid, self._meta, self.target, self._strides,
+                                                      self._levels, self.bound_search and not concave, self.bound_proof)
+        self.proven = proven = np.zeros(svals.shape[0] if hull.size else 0, dtype=np.int64)
 
         def run(start: int, stop: int) -> None:
             search(EVt, D, self.discount, self._params, self._sgrid, self._meta, self._data.shock_table, svals,
                    piz, order, prev, guess, has_guess, concave, monotone, self.scan_points, self.combos, pyramid,
-                   self._levels, ev_abs, out_v, out_a, out_r, out_j, start, stop)
+                   self._levels, ev_abs, hull, deficit, proven, out_v, out_a, out_r, out_j, start, stop)
 
         return run
 

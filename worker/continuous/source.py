@@ -17,7 +17,7 @@ slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
 
 * ``search(EVt, D, beta, p, sgrid, ztab, svals, piz, order, prev, guess,
   has_guess, concave, monotone, scan_n, combos, b_pyr, b_levels, ev_abs,
-  out_v, out_a, out_r, out_j, start, stop)`` — the maximisation over the interval at the points
+  b_hull, b_hd, b_proven, out_v, out_a, out_r, out_j, start, stop)`` — the maximisation over the interval at the points
   ``order[start:stop]``, once for each row of ``combos`` (the values of the
   other choices, one combination a row; one empty row without them), the
   best combination's index in ``out_j``;
@@ -26,7 +26,9 @@ slopes along the last state for ``monotone_cubic`` (unused for ``linear``)):
   combination narrows that combination's bracket under ``monotone``.  See :mod:`worker.continuous.search` for the
   search itself.  A non-empty ``b_pyr`` (the max-pyramid of ``EVt`` along the chosen state, ``b_levels`` its
   level starts, ``ev_abs`` the largest ``|EVt|``) runs the branch and bound instead of the scan where the
-  module has ``BOUNDED = True``.
+  module has ``BOUNDED = True``; where it also has ``PROVABLE = True``, non-empty hulls ``b_hull``/``b_hd``
+  (:func:`worker.continuous.bound_kernels.build_hulls`) run the proof at the incumbent first
+  (:mod:`worker.continuous.bound_proof`), counting the combinations it proves at point ``i`` in ``b_proven[i]``.
 * ``bound_point`` (only where the module has ``BOUNDED = True``) — that branch and bound at one point and
   combination (:mod:`worker.continuous.bound_search`), a function of its own.
 * ``policy_at(p, sgrid, ztab, svals, piz, a, combos, jc, out_r, out_x,
@@ -76,6 +78,7 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         kernels, which take every value's expectation over their combinations (see :meth:`_Writer._draws`).
     """
     writer = _Writer(model, setters, cubic, draws)
+    kernels = [writer.search(), writer.policy_at()] + ([] if writer.plan is None else [writer.bound_point()])
     header = [
         f"# fixq generated continuous-choice kernels: {writer.d} states, {writer.m} shocks, setters {setters}, "
         f"interpolation {'monotone_cubic' if cubic else 'linear'}, draws {0 if draws is None else draws.size}",
@@ -84,14 +87,14 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
-        "from worker.continuous.bound_kernels import block_max",
+        "from worker.continuous.bound_kernels import block_max, hull_rise",
         "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
         "",
         f"BOUNDED = {writer.plan is not None}",
+        f"PROVABLE = {writer.plan is not None and writer.plan.provable}",
     ]
-    kernels = [writer.search(), writer.policy_at()] + ([] if writer.plan is None else [writer.bound_point()])
     return "\n\n\n".join(["\n".join(header), *kernels]) + "\n"
 
 
@@ -283,7 +286,8 @@ class _Writer:
         out.add(JIT)
         out.add(
             "def search(EVt, D, beta, p, sgrid, meta, ztab, svals, piz, order, prev, guess, has_guess, concave, "
-            "monotone, scan_n, combos, b_pyr, b_levels, ev_abs, out_v, out_a, out_r, out_j, start, stop):"
+            "monotone, scan_n, combos, b_pyr, b_levels, ev_abs, b_hull, b_hd, b_proven, out_v, out_a, out_r, out_j, "
+            "start, stop):"
         )
         out.depth += 1
         self._prologue(out)
@@ -339,7 +343,7 @@ class _Writer:
         self._others(out, "cc")
         self._closure(out)
         out.extend(bound_search(self, self.plan).strip("\n").split("\n"))
-        out.add("return x, fx, rx")
+        out.add("return x, fx, rx, proven")
         return out.text()
 
     def _kinks(self) -> str:

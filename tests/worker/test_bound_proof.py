@@ -1,0 +1,250 @@
+"""The proof at the incumbent before the branch and bound of a ``next_of`` continuous choice
+(worker.continuous.bound_proof).
+
+Checked against the same step with the proof switched off (``problem.bound_proof``: the branch and bound alone)
+and against an independent check, a dense evaluation of the objective in plain numpy (the continuation read
+by ``np.interp``, as linear interpolation reads it).  Models: the accuracy benchmark's household
+(bench/bench_accuracy.py, invented calibration) and invented ones: a fishery, a saver with a pole in its
+reward and no constraint, a saver with a kinked (``abs``) and a capped (``min``) reward, a two-peaked reward.
+Comparison rule: the values of the step with and without the proof agree to 1e-12 of the largest value (the
+proof's slack is 2**-40 of the terms); the choices agree to 1e-5 of the grid's width (both are the optimum to
+Brent's tolerance where the objective is flat; the proof returns the hinted one).
+"""
+
+from __future__ import annotations
+
+import copy
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from tests._thread_spy import spy_run_blocks
+from worker import environment, threadpool
+from worker.solve import compile_document, solve
+
+sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "bench"))
+import bench_accuracy  # noqa: E402
+
+DENSE = 40_001
+"""Choices of the independent dense evaluation per point (count)."""
+
+
+def _on_off(problem: Any, v: np.ndarray, guess: np.ndarray) -> tuple[tuple, tuple, np.ndarray]:
+    """The unrestricted step with the proof, then without it; and where the proof held (per point)."""
+    assert problem.bound_search and problem.bound_proof
+    on = problem.bellman_step(v, restricted=False, policy_guess=guess)
+    proven = problem.proven.copy()
+    assert proven.shape == (problem.n,)
+    problem.bound_proof = False
+    try:
+        off = problem.bellman_step(v, restricted=False, policy_guess=guess)
+        assert problem.proven.size == 0
+    finally:
+        problem.bound_proof = True
+    return on, off, proven
+
+
+def _fishery(points: int) -> dict[str, Any]:
+    """Invented fishery: the stock grows as ``stock + 0.8·stock·(1 − stock/10)`` times a weather factor; the
+    escapement (tomorrow's stock) is chosen, the catch is the rest, and the reward is ``sqrt(catch)`` less a
+    small cost of a low stock."""
+    model = {
+        "kind": "grid",
+        "params": {"growth": 0.8, "capacity": 10.0, "cost": 0.02},
+        "states": {"stock": {"min": 0.5, "max": 12.0, "points": points}},
+        "shocks": {"weather": {"markov": {"values": [0.85, 1.0, 1.15],
+                                          "matrix": [[0.6, 0.3, 0.1], [0.2, 0.6, 0.2], [0.1, 0.3, 0.6]]},
+                               "transform": "none"}},
+        "choices": {"escapement": {"next_of": "stock", "continuous": True}},
+        "define": {"catch": "weather * (stock + growth * stock * (1 - stock / capacity)) - escapement"},
+        "reward": "sqrt(catch) - cost / escapement",
+        "feasible": ["catch > 0"],
+        "interpolation": "linear",
+        "hints": {"concave": True, "monotone": True},
+    }
+    return {"version": 1, "discount": 0.93, "model": model, "solver": {"method": "howard", "tolerance": 1e-8}}
+
+
+def _saver(points: int, reward: str, feasible: bool = True) -> dict[str, Any]:
+    """Invented saver on assets [0, 10], income 0.8 / 1.2, consumption ``c = 1.02·assets + income − saving``."""
+    model: dict[str, Any] = {
+        "kind": "grid",
+        "params": {"gamma": 2.0},
+        "states": {"assets": {"min": 0.0, "max": 10.0, "points": points}},
+        "shocks": {"income": {"markov": {"values": [0.8, 1.2], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
+                              "transform": "none"}},
+        "choices": {"saving": {"next_of": "assets", "continuous": True}},
+        "define": {"c": "1.02 * assets + income - saving"},
+        "reward": reward,
+        "interpolation": "linear",
+    }
+    if feasible:
+        model["feasible"] = ["c > 0"]
+    return {"version": 1, "discount": 0.9, "model": model, "solver": {"method": "value_iteration",
+                                                                      "tolerance": 1e-8}}
+
+
+def _dense(problem: Any, v: np.ndarray, reward: Any, cash: np.ndarray) -> tuple[np.ndarray, Any]:
+    """Independent check: the best of ``DENSE`` evenly spread choices and every grid point at every point, and
+    the objective ``objective(i, choices)``; ``reward(c)`` in numpy, ``c = cash[i] − choice``."""
+    data = problem.model_data
+    grid = data.state_grids[0]
+    n_z = data.n_shocks
+    EVt = data.transition @ np.asarray(v).reshape(data.n_grid, n_z).T  # (shocks, grid states)
+
+    def objective(i: int, x: np.ndarray) -> np.ndarray:
+        with np.errstate(all="ignore"):
+            return reward(cash[i] - x) + problem.discount * np.interp(x, grid, EVt[i % n_z])
+
+    choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
+    return np.array([np.nanmax(objective(i, choices)) for i in range(problem.n)]), objective
+
+
+def _crra(c: np.ndarray) -> np.ndarray:
+    return np.where(c > 0, -1.0 / c, -np.inf)  # c**(1 - 2) / (1 - 2)
+
+
+def _solved(document: dict[str, Any], choice: str) -> tuple[Any, np.ndarray, np.ndarray]:
+    result = solve(json.loads(json.dumps(document)))
+    assert result["status"] == "converged"
+    _, problem = compile_document(document)
+    return problem, np.asarray(result["value"], dtype=np.float64).reshape(-1), \
+        np.asarray(result["policy"][choice], dtype=np.float64).reshape(-1)
+
+
+@pytest.mark.parametrize("which", ["household", "fishery"])
+def test_the_proof_gives_the_branch_and_bounds_answer_at_most_points(which: str) -> None:
+    if which == "household":
+        document, choice = bench_accuracy.document(150, "(b)"), bench_accuracy.CHOICE
+    else:
+        document, choice = _fishery(120), "escapement"
+    problem, v, policy = _solved(document, choice)
+    (on_v, on_a), (off_v, off_a), proven = _on_off(problem, v, policy)
+    size = float(np.abs(off_v).max())
+    np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
+    width = float(np.ptp(problem.model_data.state_grids[0]))
+    np.testing.assert_allclose(on_a, off_a, rtol=0, atol=1e-5 * width)
+    assert np.count_nonzero(proven) >= 0.9 * problem.n, (np.count_nonzero(proven), problem.n)
+
+
+def test_a_false_concave_hint_is_not_proven_where_a_better_choice_exists() -> None:
+    """A continuation with waves: the hinted (concave) search stops on the peak nearest its guess."""
+    document = _saver(60, "c**(1 - gamma) / (1 - gamma)")
+    document["model"]["hints"] = {"concave": True}
+    _, problem = compile_document(document)
+    env = problem.state_values()
+    v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]) + 0.4 * np.sin(1.7 * env["assets"]))
+    local_v, local_a = problem.bellman_step(v, restricted=True, policy_guess=np.full(problem.n, 0.2))
+    (on_v, _), (off_v, _), proven = _on_off(problem, v, local_a)
+    best, objective = _dense(problem, v, _crra, 1.02 * env["assets"] + env["income"])
+    size = float(np.abs(best).max())
+    at_guess = np.array([objective(i, np.array([local_a[i]]))[0] for i in range(problem.n)])
+    better = best > at_guess + 1e-9 * size  # a better choice exists (independent check)
+    assert better.sum() >= 5 and np.count_nonzero(proven) >= 5  # both cases occur
+    assert not np.any(proven[better])
+    assert np.all(on_v >= best - 1e-11 * size), float((best - on_v).max())
+    np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
+    assert np.all(on_v >= local_v - 1e-12 * size)
+
+
+def test_a_two_peaked_reward_is_not_proven_at_the_lower_peak() -> None:
+    """Invented: a broad peak of the reward and a narrow, higher one between two grid points (v = 0)."""
+    model = {
+        "kind": "grid",
+        "params": {"bonus": 0.5, "peak": 0.725, "spread": 0.02},
+        "states": {"k": {"min": 0.0, "max": 1.0, "points": 21}},
+        "shocks": {"z": {"markov": {"values": [0.0, 0.03], "matrix": [[0.9, 0.1], [0.1, 0.9]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "reward": "-(k_next - 0.25 - 0.05 * k - z)**2 + bonus * exp(-((k_next - peak) / spread)**2)",
+        "interpolation": "linear",
+    }
+    _, problem = compile_document({"version": 1, "discount": 0.5, "model": model})
+    env = problem.state_values()
+    broad = 0.25 + 0.05 * env["k"] + env["z"]  # the broad peak (the bump is negligible there)
+    (on_v, on_a), _, proven = _on_off(problem, np.zeros(problem.n), np.ascontiguousarray(broad))
+    assert not np.any(proven)
+    exact = 0.5 - (0.725 - broad) ** 2  # the narrow peak's value, to the bump's own curvature
+    assert np.all(on_v >= exact - 1e-6)
+    np.testing.assert_allclose(on_a, 0.725, atol=2e-3)
+
+
+def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven() -> None:
+    """``-1/c`` with no constraint: past ``c = 0`` the reward is large and positive, and allowed."""
+    document = _saver(40, "-1 / c", feasible=False)
+    _, problem = compile_document(document)
+    env = problem.state_values()
+    cash = 1.02 * env["assets"] + env["income"]
+    v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
+    grid = problem.model_data.state_grids[0]
+    left = np.array([max(0.0, min(0.5 * c, grid[-1])) for c in cash])  # a choice left of the pole
+    (on_v, _), (off_v, _), proven = _on_off(problem, v, left)
+    best, objective = _dense(problem, v, lambda c: np.where(c != 0, -1.0 / c, np.nan), cash)
+    pole_inside = cash < grid[-1]
+    assert pole_inside.sum() >= 10
+    assert not np.any(proven[pole_inside])
+    at_left = np.array([objective(i, np.array([left[i]]))[0] for i in range(problem.n)])
+    assert np.all(on_v[pole_inside] > at_left[pole_inside] + 1.0)  # the better choice past the pole is found
+    np.testing.assert_array_equal(on_v, off_v)
+    # With the constraint the pole is narrowed out of the box: proven where it holds.
+    _, problem = compile_document(_saver(40, "-1 / c"))
+    problem.bellman_step(v, restricted=False, policy_guess=problem.bellman_step(v, restricted=False)[1])
+    assert np.count_nonzero(problem.proven) >= 0.8 * problem.n
+
+
+def test_kinked_rewards_use_the_hull_of_both_slopes_and_a_jump_writes_no_proof() -> None:
+    """``abs`` and ``min`` (Lebourg's mean value inequality) are proven and agree with the independent check;
+    ``where`` on the choice may jump, so no proof is written."""
+    rewards = {
+        "c**(1 - gamma) / (1 - gamma) - 0.05 * abs(saving - 4)": lambda c, x: _crra(c) - 0.05 * np.abs(x - 4),
+        "min(c**(1 - gamma) / (1 - gamma), -0.6)": lambda c, x: np.minimum(_crra(c), -0.6),
+    }
+    for text, numpy_reward in rewards.items():
+        _, problem = compile_document(_saver(50, text))
+        assert problem.bound_proof
+        env = problem.state_values()
+        cash = 1.02 * env["assets"] + env["income"]
+        v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
+        first = problem.bellman_step(v, restricted=False)[1]
+        (on_v, _), (off_v, _), proven = _on_off(problem, v, first)
+        # Where the optimum sits on the reward's kink the incumbent is only within Brent's tolerance of it, and
+        # the proof fails by about that tolerance times the jump of the slope (the branch and bound answers).
+        assert np.count_nonzero(proven) >= 0.25 * problem.n, (text, np.count_nonzero(proven))
+        best = np.empty(problem.n)
+        grid = problem.model_data.state_grids[0]
+        choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
+        EVt = problem.model_data.transition @ v.reshape(problem.model_data.n_grid, -1).T
+        for i in range(problem.n):
+            with np.errstate(all="ignore"):
+                values = numpy_reward(cash[i] - choices, choices) + problem.discount * np.interp(
+                    choices, grid, EVt[i % 2])
+            best[i] = np.nanmax(values)
+        size = float(np.abs(best).max())
+        # Where the proof held, no choice is better (the branch and bound's answer elsewhere is Brent's, which
+        # stops within its tolerance of a kink of the reward: 1e-9 of the value here).
+        held = proven > 0
+        assert np.all(on_v[held] >= best[held] - 1e-11 * size), (text, float((best - on_v)[held].max()))
+        np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
+    _, problem = compile_document(_saver(20, "where(saving > 4, -1 / c, -1 / c - 0.1)"))
+    assert problem.bound_search and not problem.bound_proof
+
+
+def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
+    calls = spy_run_blocks(monkeypatch)
+    monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
+    document = _fishery(80)
+    _, v, policy = _solved(copy.deepcopy(document), "escapement")
+    answers = []
+    for threads in ("1", "2"):
+        monkeypatch.setenv(environment.SOLVE_THREADS, threads)
+        calls.clear()
+        _, problem = compile_document(copy.deepcopy(document))
+        values, choices = problem.bellman_step(v, restricted=False, policy_guess=policy)
+        answers.append((values.tobytes(), np.asarray(choices).tobytes(), problem.proven.tobytes()))
+        assert calls and all(t == int(threads) for t, _ in calls)
+    assert any(blocks >= 2 for _, blocks in calls), calls
+    assert answers[0] == answers[1]
