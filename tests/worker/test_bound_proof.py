@@ -34,8 +34,12 @@ DENSE = 40_001
 
 
 def _on_off(problem: Any, v: np.ndarray, guess: np.ndarray) -> tuple[tuple, tuple, np.ndarray]:
-    """The unrestricted step with the proof, then without it; and where the proof held (per point)."""
+    """The unrestricted step with the proof, then without it; and where the proof held (per point).
+
+    The proof runs only where the guess is the last step's choices at ``v`` (as in the verification, after the
+    hinted step): ``last_step`` declares it so here, for any guess the test wants to try."""
     assert problem.bound_search and problem.bound_proof
+    problem.last_step = (np.array(v, dtype=np.float64), np.array(guess, dtype=np.float64))
     on = problem.bellman_step(v, restricted=False, policy_guess=guess)
     proven = problem.proven.copy()
     assert proven.shape == (problem.n,)
@@ -248,3 +252,22 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
         assert calls and all(t == int(threads) for t, _ in calls)
     assert any(blocks >= 2 for _, blocks in calls), calls
     assert answers[0] == answers[1]
+
+
+def test_the_proof_runs_only_from_the_last_steps_choices_at_the_same_value() -> None:
+    """At the verification the guess is the hinted step's choices at the same v, and the proof runs; in an
+    unhinted solve the guess is the last iteration's policy at another v, and a proof within its slack would keep
+    choices whose optimum moved by less than Brent's tolerance (a search's finite differences then see nothing
+    move), so it does not run there."""
+    result = solve(bench_accuracy.document(60, "(b)"))
+    _, problem = compile_document(bench_accuracy.document(60, "(b)"))
+    v = np.asarray(result["value"], dtype=np.float64).reshape(-1)
+    _, hinted = problem.bellman_step(v, restricted=True)
+    problem.bellman_step(v, restricted=False, policy_guess=hinted)
+    assert problem.proven.shape == (problem.n,) and np.count_nonzero(problem.proven) >= 0.9 * problem.n
+    moved = v + 1e-3 * np.asarray(problem.policy_reward(hinted))  # another value function
+    problem.bellman_step(moved, restricted=True)
+    problem.bellman_step(v, restricted=False, policy_guess=hinted)  # the guess is not the last step's choices
+    assert problem.proven.size == 0
+    _, again = problem.bellman_step(moved, restricted=False, policy_guess=hinted)  # the same v, another guess
+    assert problem.proven.size == 0

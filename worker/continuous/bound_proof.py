@@ -53,6 +53,14 @@ interpolation and of the deficit (ulps of ``max|EV|``), the bisection's sign tes
 maximum by a few ulps of ``|G|·width``: :func:`~worker.continuous.bound_kernels.hull_rise`), and the
 intervals' own slack on ``r'``.
 
+Where it runs: only where the incumbent is the last step's own choice at the same value function — the
+verification, whose guess is the hinted step's choices at the same ``v``
+(:meth:`worker.continuous.problem.ContinuousProblem._bellman` keeps the last step's ``v`` and choices in
+``last_step``).  An unhinted solve's steps start from the last iteration's policy at another ``v``; there a
+proof within its slack would keep every choice whose optimum moved by less than Brent's tolerance, so the
+policy would not follow small changes of the model at all (a search's finite differences in a param saw no
+change, and its least squares stalled), and the branch and bound refines as before.
+
 What is local: nothing beyond the branch and bound's own rules; the proof applies to ``linear``
 interpolation with the chosen state the only state and no draws (``monotone_cubic`` and several states keep
 the branch and bound).  Each point's proof reads that point and the step's hulls only, so the bits are the

@@ -28,14 +28,13 @@ A policy is a float64 vector: the chosen value at each point.  With other
 for each combination of theirs (one row of ``combos``, in C order of their
 grids) and the best kept (under the monotone hint, each combination's search
 is narrowed by that combination's own choice at the point before, not the
-kept one's); a policy is then (n, 2): the chosen value and the
-index of the combination (as a float).  Its fixed-
-policy steps read ``EV`` by the same interpolation; its transition matrix
-``P_σ`` (stationary distribution, simulation start) always puts each next
-state's mass on the neighbouring grid points in proportion (multilinear
-weights: Young 2010, "Solving the incomplete markets model with aggregate
-uncertainty using the Krusell–Smith algorithm and non-stochastic
-simulations", JEDC 34(1)), whatever the interpolation.
+kept one's); a policy is then (n, 2): the chosen value and the index of the
+combination (as a float).  Its fixed-policy steps read ``EV`` by the same
+interpolation; its transition matrix ``P_σ`` (stationary distribution,
+simulation start) always puts each next state's mass on the neighbouring grid
+points in proportion (multilinear weights: Young 2010, "Solving the incomplete
+markets model with aggregate uncertainty using the Krusell–Smith algorithm and
+non-stochastic simulations", JEDC 34(1)), whatever the interpolation.
 """
 
 from __future__ import annotations
@@ -147,6 +146,7 @@ class ContinuousProblem:
         self.bound_search = bool(getattr(module, "BOUNDED", False))  # see worker.continuous.bound_search
         self.bound_proof = bool(getattr(module, "PROVABLE", False))  # see worker.continuous.bound_proof
         self.proven = np.zeros(0, dtype=np.int64)  # per point of the last step: combinations the proof held at
+        self.last_step: tuple[np.ndarray, np.ndarray] | None = None  # its v and choices: the proof needs its guess
         self._levels = kernels.pyramid_levels(sizes[self.target] if self.target is not None else 1)
         self.kernel_literals: tuple[float, ...] = ()  # the numbers lifted out of the expressions (set by the compiler)
 
@@ -221,9 +221,8 @@ class ContinuousProblem:
         """One step of the fitted Bellman operator; the policy is the (n,) chosen values (with other choices,
         (n, 2): the values and the combinations' indices).
 
-        ``restricted`` uses the hints (see :mod:`worker.continuous.search`);
-        unrestricted, the search starts from a scan of the interval.
-        """
+        ``restricted`` uses the hints (see :mod:`worker.continuous.search`); unrestricted, the search starts from
+        a scan of the interval (or the branch and bound)."""
         return self._bellman(v, policy_guess, bool(restricted and self.hints.concave),
                              bool(restricted and self.hints.monotone))
 
@@ -239,8 +238,11 @@ class ContinuousProblem:
         out_v, out_a, out_r = np.empty(self.n), np.empty(self.n), np.empty(self.n)
         out_j = np.zeros(self.n, dtype=np.int64)
         guess = self._guess(policy_guess)
+        last = self.last_step
+        proof = (self.bound_proof and guess is not None and last is not None and np.array_equal(last[1], guess)
+                 and np.array_equal(last[0], v))
         step = self._step(EVt, D, self._svals, self._piz, self._order, self._prev, guess, concave, monotone,
-                          out_v, out_a, out_r, out_j)
+                          out_v, out_a, out_r, out_j, proof)
         lines = self.n // self._line
         blocks = [(start * self._line, stop * self._line)
                   for start, stop in threadpool.row_blocks(lines, self.threads * threadpool.BLOCKS_PER_THREAD)]
@@ -248,11 +250,11 @@ class ContinuousProblem:
         lost = np.flatnonzero(~(out_v > -np.inf)) if monotone else np.empty(0, dtype=np.int64)
         if lost.size:  # a false monotone hint can leave no allowed choice above the point before: search again there
             self._search_again(EVt, D, lost, guess, concave, out_v, out_a, out_r, out_j)
+        self.last_step = (np.array(v, dtype=np.float64), out_a.copy())
         return out_v, self._policy(out_a, out_j)
 
-    def _search_again(self, EVt: np.ndarray, D: np.ndarray, rows: np.ndarray, guess: np.ndarray | None,
-                      concave: bool, out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray,
-                      out_j: np.ndarray) -> None:
+    def _search_again(self, EVt: np.ndarray, D: np.ndarray, rows: np.ndarray, guess: np.ndarray | None, concave: bool,
+                      out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray, out_j: np.ndarray) -> None:
         """The search without the monotone narrowing at the points ``rows``, written into the ``out_`` arrays.
 
         The step then has the value the hint-free search gives there, and the verification at the end of the
@@ -269,9 +271,7 @@ class ContinuousProblem:
 
     def _policy(self, chosen: np.ndarray, combos: np.ndarray) -> np.ndarray:
         """The policy array: the chosen values, with the combinations beside them when there are others."""
-        if not self.others:
-            return chosen
-        return np.ascontiguousarray(np.column_stack([chosen, combos.astype(np.float64)]))
+        return np.ascontiguousarray(np.column_stack([chosen, combos.astype(np.float64)])) if self.others else chosen
 
     def split_policy(self, policy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """``(chosen values (n,), combinations (n,) int64)`` of a policy."""
@@ -293,12 +293,12 @@ class ContinuousProblem:
 
     def _step(self, EVt: np.ndarray, D: np.ndarray, svals: np.ndarray, piz: np.ndarray, order: np.ndarray,
               prev: np.ndarray, guess: np.ndarray | None, concave: bool, monotone: bool,
-              out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray, out_j: np.ndarray) -> Any:
+              out_v: np.ndarray, out_a: np.ndarray, out_r: np.ndarray, out_j: np.ndarray, proof: bool = False) -> Any:
         has_guess = guess is not None
         guess = guess if has_guess else np.zeros(1)
         search = self._k.search
         pyramid, ev_abs, hull, deficit = bound_tables(EVt, self._sgrid, self._meta, self.target, self._strides,
-                                                      self._levels, self.bound_search and not concave, self.bound_proof)
+                                                      self._levels, self.bound_search and not concave, proof)
         self.proven = proven = np.zeros(svals.shape[0] if hull.size else 0, dtype=np.int64)
 
         def run(start: int, stop: int) -> None:
