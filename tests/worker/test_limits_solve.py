@@ -193,7 +193,9 @@ def test_the_stop_flag_is_polled_inside_a_long_linear_solve() -> None:
     finally:
         timer.cancel()
         timer.join()
-    assert time.perf_counter() - started < 0.3 + 1.5
+    # Polled between pieces of the linear solve, as the time limit above (the same generous slack for a loaded
+    # machine: 2.25 s once, in a fresh-clone run beside other work); the whole solve takes over a minute.
+    assert time.perf_counter() - started < 0.3 + 4.0
 
 
 def test_the_deployment_maximum_bounds_a_solve_that_asks_for_no_time_limit() -> None:
