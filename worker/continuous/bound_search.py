@@ -349,7 +349,7 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
     proof = None if others else proof_plan(w, names)
     plan.provable = proof is not None
     text = BOUND_TEXT.replace("#PREPARE#", prepare.text()).replace("#BOUND#", bound.text())
-    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT)
+    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT, proof.cubic)
     text = text.replace("#GUESS#\n", "".join(f"        {line}\n" for line in guess.strip("\n").split("\n")))
     return text.replace("#PROOF#\n", "" if proof is None else proof_text(proof) + "\n")
 
