@@ -9,15 +9,14 @@ before.
 
 What is proved
 --------------
-With ``W`` the continuation (the linear interpolant of the ``EVt`` row of the point's shock along the chosen
-state, node values ``W_j`` at grid nodes ``s_j``), ``f(x) = r(x) + β W(x)`` and ``H`` the upper concave hull
-of the nodes (:func:`worker.continuous.bound_kernels.build_hulls`, built once per step; ``H`` plus the
-row's *deficit* is at least ``W`` everywhere, ``W`` being linear between nodes), each side of ``x0`` is cut
-into a *near* piece ``[x0, x0 + t]`` and a *far* piece ``[x0 + t, hi_b]`` (on the left, mirrored), with
-``t = PROOF_REACH`` Brent tolerances at ``x0``.  Over a piece with anchor ``a`` (``x0`` for the near piece,
-its inner end for the far one, evaluated beside the guess (:func:`guess_text`): it must be allowed and
-finite), by the mean value theorem as in
-:mod:`worker._codegen.static_proof`, every allowed ``x`` of the piece has
+With ``W`` the continuation (with ``linear`` interpolation: the linear interpolant of the ``EVt`` row of the
+point's shock along the chosen state, node values ``W_j`` at grid nodes ``s_j``), ``f(x) = r(x) + β W(x)`` and
+``H`` the upper concave hull of the nodes (:func:`worker.continuous.bound_kernels.build_hulls`, built once per
+step; ``H`` plus the row's *deficit* is at least ``W`` everywhere, ``W`` being linear between nodes), each side of
+``x0`` is cut into a *near* piece ``[x0, x0 + t]`` and a *far* piece ``[x0 + t, hi_b]`` (on the left, mirrored),
+with ``t = PROOF_REACH`` Brent tolerances at ``x0``.  Over a piece with anchor ``a`` (``x0`` for the near piece,
+its inner end for the far one, evaluated beside the guess (:func:`guess_text`): it must be allowed and finite), by
+the mean value theorem as in :mod:`worker._codegen.static_proof`, every allowed ``x`` of the piece has
 
     f(x) ≤ f(a) + G·(x − a) + β (H(x) + deficit − W(a)),
 
@@ -35,6 +34,27 @@ is there because ``x0`` is only within Brent's tolerance of the optimum: one pie
 would rise by ``f'(x0)`` times a grid interval, while the near piece rises by ``f'(x0)·t`` (about ``f''·t²``)
 and the far piece's anchor is past the optimum.
 
+With ``monotone_cubic`` (one state), ``W`` on grid interval ``[s_j, s_{j+1}]`` is the cubic Hermite piece of the
+node values and the kernel's slopes ``D``.  ``H`` is then the upper concave hull of the pieces' Bézier control
+points (:func:`worker.continuous.bound_kernels.build_controls`; a piece lies in their convex hull), which touches
+``W`` at the nodes where the data are concave but lies above it inside the intervals by about ``h²·W''``, so the
+hull bound is used only from an anchor at a grid node.  Each side is cut into three pieces: *near*
+``[x0, x0 + t]`` (anchor ``x0``), *mid* ``[x0 + t, s_k]`` up to the first node ``s_k`` beyond it (anchor
+``x0 + t``), and *far* ``[s_k, hi_b]`` (anchor ``s_k``, evaluated beside the guess too; ``W(s_k)`` is the node's
+value, which the kernel reads exactly); on the left, mirrored (``s_k`` the last node at or below ``x0 − t``).  The
+far piece has the hull bound above.  The near and mid pieces have, by the mean value theorem for ``r`` and ``W``,
+
+    f(x) ≤ f(a) + (G + β·M)·(x − a),
+
+with ``M`` the largest ``W'`` over ``[a, hi]`` (right; on the left the smallest over ``[lo, a]``, and ``G`` the
+lower end): ``W'`` is a quadratic on each interval, whose extremes over a sub-interval are at its ends or its
+vertex (:func:`~worker.continuous.bound_kernels.cubic_rise`, which widens them for the rounding of the
+coefficients and of ``t``).  The rounding of the control points and the kernel's reading of ``W`` at
+``s_j + w·h`` (``w`` rounded) for ``x`` are covered by a per-row *widening* (``2**-46·(max|Y| + S·max|X|)``,
+``S`` the control polygon's steepest slope, which bounds ``|W'|``), added like the deficit to every piece's bound;
+the Hermite form's own rounding (a few ulps of ``|W_j| + |W_{j+1}| + h(|D_j| + |D_{j+1}|)/7``, the slopes being at
+most three secants) is within the slack's ``2β·max|EV|``.
+
 The mean value theorem needs ``r`` continuous on the segment between the anchor and every allowed ``x`` and
 differentiable inside it, with ``r'`` in the tree's bound; :mod:`worker._slopes` (its Soundness section)
 gives that wherever the used end of the bound is a number, and refuses (:class:`worker._slopes.NotSmooth`,
@@ -51,7 +71,9 @@ piece) + 2β·max|EV| + |rise|``, which covers the rounding of ``f(a)`` and of `
 choice near the bound (its reward is then within ``|f(x0)| + β·max|EV|`` of the bound's size), of the hull's
 interpolation and of the deficit (ulps of ``max|EV|``), the bisection's sign tests (a wrong sign moves the
 maximum by a few ulps of ``|G|·width``: :func:`~worker.continuous.bound_kernels.hull_rise`), and the
-intervals' own slack on ``r'``.
+intervals' own slack on ``r'``.  The same slack serves ``monotone_cubic``: its further roundings are inside the
+rise itself (the widening of the control points and of the kernel's reading of ``x``, the widened extremes of
+``W'``, and ``2**-48·(|G| + β|M|)`` times the reach for the product ``(G + β·M)·(x − a)``).
 
 Where it runs: only where the incumbent is the last step's own choice at the same value function — the
 verification, whose guess is the hinted step's choices at the same ``v``
@@ -61,9 +83,9 @@ proof within its slack would keep every choice whose optimum moved by less than 
 policy would not follow small changes of the model at all (a search's finite differences in a param saw no
 change, and its least squares stalled), and the branch and bound refines as before.
 
-What is local: nothing beyond the branch and bound's own rules; the proof applies to ``linear``
-interpolation with the chosen state the only state and no draws (``monotone_cubic`` and several states keep
-the branch and bound).  Each point's proof reads that point and the step's hulls only, so the bits are the
+What is local: nothing beyond the branch and bound's own rules; the proof applies to ``linear`` and
+``monotone_cubic`` interpolation with the chosen state the only state and no draws (several states keep the
+branch and bound).  Each point's proof reads that point and the step's hulls only, so the bits are the
 same on any number of threads.
 """
 

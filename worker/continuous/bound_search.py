@@ -48,7 +48,7 @@ generated kernel runs :data:`BOUND_TEXT` instead:
   (the one of :mod:`worker.continuous.search`; both ends of an interval are
   evaluated, so the answer is never below a grid point's value).
 
-Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` interpolation, the chosen
+Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` or ``monotone_cubic``, the chosen
 state the only one, a reward :mod:`worker._slopes` can differentiate) and the step's hulls are given, the
 *proof at the incumbent* runs (``#PROOF#``): where it shows that no choice beats the guess by more than the
 slack, the block stack is emptied and the incumbent is the answer; elsewhere the blocks are searched as below.
