@@ -449,3 +449,41 @@ def test_cubic_a_higher_peak_inside_the_incumbents_grid_interval_is_not_proven()
     (on_v, _), (off_v, _), proven = _on_off(problem, np.zeros(problem.n), np.ascontiguousarray(broad))
     assert not np.any(proven)  # (where a local search within one interval then misses the peak is the branch
     np.testing.assert_array_equal(on_v, off_v)  # and bound's own rule: single-peaked inside a grid interval)
+
+
+def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not_proven() -> None:
+    """Invented: a linear reward and a continuation with a step, whose cubic piece rises above the hull of the
+    nodes inside its interval; the better choice is there, every node's value is below the incumbent's (a local
+    maximum further left), so only the far piece's hull of the control points can see it (the nodes' hull
+    would prove the incumbent)."""
+    from scipy.optimize import minimize_scalar
+
+    model = {
+        "kind": "grid",
+        "params": {"lam": 1.563},
+        "states": {"k": {"min": 0.0, "max": 1.0, "points": 6}},
+        "shocks": {"z": {"markov": {"values": [0.0, 1.0], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "reward": "-lam * k_next",
+        "interpolation": "monotone_cubic",
+    }
+    _, problem = compile_document({"version": 1, "discount": 0.9, "model": model})
+    assert problem.bound_proof
+    nodes = np.array([0.0, 0.46, 0.624, 0.786, 1.5, 1.5])  # found by a random search for this shape
+    v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
+    row = _pchip_rows(problem, v)[0]
+
+    def objective(x: Any) -> Any:
+        return -1.563 * x + 0.9 * row(x)
+
+    local = minimize_scalar(lambda x: -objective(x), bounds=(0.1, 0.2), method="bounded",
+                            options={"xatol": 1e-12}).x
+    grid = problem.model_data.state_grids[0]
+    dense = np.linspace(0.0, 1.0, DENSE)
+    assert np.all(objective(grid) < objective(local) - 1e-3)
+    assert objective(dense).max() > objective(local) + 1e-3
+    (on_v, _), (off_v, _), proven = _on_off(problem, v, np.full(problem.n, local))
+    assert not np.any(proven)
+    assert np.all(on_v >= objective(dense).max() - 1e-9)
+    np.testing.assert_array_equal(on_v, off_v)
