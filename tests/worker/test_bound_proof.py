@@ -487,3 +487,40 @@ def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not
     assert not np.any(proven)
     assert np.all(on_v >= objective(dense).max() - 1e-9)
     np.testing.assert_array_equal(on_v, off_v)
+
+
+def test_cubic_a_rise_of_the_continuation_inside_the_incumbents_interval_is_not_proven() -> None:
+    """Invented: a concave reward that falls steeply near the next node and a continuation whose cubic piece has
+    a U-shaped slope: inside the incumbent's grid interval, past ``x0 + t``, ``W`` rises enough to beat the
+    incumbent (a local maximum) while the nodes' values stay below it.  (Here the far piece's bound fails too: a
+    case where only the mid piece's ``W'`` term sees the better choice was not found by a random search.)"""
+    from scipy.optimize import minimize_scalar
+
+    model = {
+        "kind": "grid",
+        "params": {"lam": 54.48, "p": 0.61, "lin": -0.182},
+        "states": {"k": {"min": 0.0, "max": 1.0, "points": 6}},
+        "shocks": {"z": {"markov": {"values": [0.0, 1.0], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "reward": "-0.01 * exp(lam * (k_next - p)) + lin * k_next",
+        "interpolation": "monotone_cubic",
+    }
+    _, problem = compile_document({"version": 1, "discount": 0.9, "model": model})
+    assert problem.bound_proof
+    nodes = np.array([0.0, 0.1045, 0.2195, 0.2694, 0.4012, 0.4105])  # found by a random search for this shape
+    v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
+    row = _pchip_rows(problem, v)[0]
+
+    def objective(x: Any) -> Any:
+        return -0.01 * np.exp(54.48 * (x - 0.61)) - 0.182 * x + 0.9 * row(x)
+
+    local = minimize_scalar(lambda x: -objective(x), bounds=(0.45, 0.5), method="bounded",
+                            options={"xatol": 1e-12}).x
+    grid = problem.model_data.state_grids[0]
+    inside = np.linspace(local, 0.6, 4001)
+    assert np.all(objective(grid) < objective(local) - 1e-4)
+    assert objective(inside).max() > objective(local) + 1e-4  # before the next node
+    (on_v, _), (off_v, _), proven = _on_off(problem, v, np.full(problem.n, local))
+    assert not np.any(proven)
+    np.testing.assert_array_equal(on_v, off_v)
