@@ -7,8 +7,9 @@ The model is the accuracy benchmark's (:mod:`bench_accuracy`, variants (b) ``lin
 once with its hints; then the unrestricted step that verifies them, ``bellman_step(v, restricted=False,
 policy_guess=policy)`` at the solved value, is timed with the branch and bound of
 :mod:`worker.continuous.bound_search` and with the scan it replaces (the same kernels, the bound switched
-off), interleaved, median of :data:`REPEATS`; for ``linear`` also with the proof at the incumbent of
-:mod:`worker.continuous.bound_proof` before the branch and bound (the share of points where it held is printed),
+off), interleaved, median of :data:`REPEATS`; also with the proof at the incumbent of
+:mod:`worker.continuous.bound_proof` before the branch and bound (both variants; the share of points where it
+held is printed),
 the branch and bound alone being then the proof switched off.  The scan is the baseline measured in the same
 run; the script also prints the largest amount by which the bound's value falls below the scan's at any point
 (rounding only, or the script says FAIL; the same for the proof's) and how far it rises above it.  The machine

@@ -48,7 +48,7 @@ generated kernel runs :data:`BOUND_TEXT` instead:
   (the one of :mod:`worker.continuous.search`; both ends of an interval are
   evaluated, so the answer is never below a grid point's value).
 
-Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` interpolation, the chosen
+Before the blocks, where :mod:`worker.continuous.bound_proof` applies (``linear`` or ``monotone_cubic``, the chosen
 state the only one, a reward :mod:`worker._slopes` can differentiate) and the step's hulls are given, the
 *proof at the incumbent* runs (``#PROOF#``): where it shows that no choice beats the guess by more than the
 slack, the block stack is emptied and the incumbent is the answer; elsewhere the blocks are searched as below.
@@ -349,7 +349,7 @@ def bound_search(writer: Any, plan: BoundPlan) -> str:
     proof = None if others else proof_plan(w, names)
     plan.provable = proof is not None
     text = BOUND_TEXT.replace("#PREPARE#", prepare.text()).replace("#BOUND#", bound.text())
-    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT)
+    guess = GUESS_TEXT if proof is None else guess_text(GUESS_TEXT, proof.cubic)
     text = text.replace("#GUESS#\n", "".join(f"        {line}\n" for line in guess.strip("\n").split("\n")))
     return text.replace("#PROOF#\n", "" if proof is None else proof_text(proof) + "\n")
 

@@ -174,7 +174,7 @@ class ContinuousProblem:
         self._k.search(np.zeros((data.n_shocks, data.n_grid)), np.zeros((1, 1)), self.discount, self._params,
                        self._sgrid, self._meta, data.shock_table, states, none_i, none_i, none_i, np.zeros(1), False,
                        False, False, self.scan_points, self.combos, none_f, self._levels, 0.0, none_i.reshape(0, 0),
-                       none_f, none_i, none_f, none_f, none_f, none_i, 0, 0)
+                       none_f.reshape(0, 0), none_i, none_f, none_f, none_f, none_i, 0, 0)
         self._k.policy_at(self._params, self._sgrid, self._meta, data.shock_table, states, none_i, none_f,
                           self.combos, none_i, none_f, self._tomorrow(0), np.empty(0, dtype=np.bool_),
                           np.empty((0, self._draw_count)))
@@ -298,7 +298,7 @@ class ContinuousProblem:
         guess = guess if has_guess else np.zeros(1)
         search = self._k.search
         pyramid, ev_abs, hull, deficit = bound_tables(EVt, self._sgrid, self._meta, self.target, self._strides,
-                                                      self._levels, self.bound_search and not concave, proof)
+                                                      self._levels, self.bound_search and not concave, proof, D)
         self.proven = proven = np.zeros(svals.shape[0] if hull.size else 0, dtype=np.int64)
 
         def run(start: int, stop: int) -> None:

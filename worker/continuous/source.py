@@ -87,7 +87,7 @@ def module_text(model: ModelSource, setters: tuple[int | None, ...], cubic: bool
         "from numba import njit",
         "from worker.expressions.interval_kernels import interval_globals",
         "from worker.kernels import locate_one",
-        "from worker.continuous.bound_kernels import block_max, hull_rise",
+        "from worker.continuous.bound_kernels import block_max, control_rise, cubic_rise, hull_rise",
         "from worker.continuous.interp_kernels import tensor_cubic, tensor_two",
         "",
         "globals().update(interval_globals())",
