@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from tests._documents import two_peaks
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
@@ -135,16 +136,20 @@ def test_the_proof_gives_the_branch_and_bounds_answer_at_most_points(which: str)
     assert np.count_nonzero(proven) >= 0.9 * problem.n, (np.count_nonzero(proven), problem.n)
 
 
-def test_a_false_concave_hint_is_not_proven_where_a_better_choice_exists() -> None:
-    """A continuation with waves: the hinted (concave) search stops on the peak nearest its guess."""
+@pytest.mark.parametrize("interpolation", ["linear", "monotone_cubic"])
+def test_a_false_concave_hint_is_not_proven_where_a_better_choice_exists(interpolation: str) -> None:
+    """A continuation with waves: the hinted (concave) search stops on the peak nearest its guess.  The
+    independent check is a dense evaluation of the objective (numpy's linear reading, or scipy's PCHIP)."""
+    cubic = interpolation == "monotone_cubic"
     document = _saver(60, "c**(1 - gamma) / (1 - gamma)")
+    document = _cubic(document) if cubic else document
     document["model"]["hints"] = {"concave": True}
     _, problem = compile_document(document)
     env = problem.state_values()
     v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]) + 0.4 * np.sin(1.7 * env["assets"]))
     local_v, local_a = problem.bellman_step(v, restricted=True, policy_guess=np.full(problem.n, 0.2))
     (on_v, _), (off_v, _), proven = _on_off(problem, v, local_a)
-    best, objective = _dense(problem, v, _crra, 1.02 * env["assets"] + env["income"])
+    best, objective = (_dense_cubic if cubic else _dense)(problem, v, _crra, 1.02 * env["assets"] + env["income"])
     size = float(np.abs(best).max())
     at_guess = np.array([objective(i, np.array([local_a[i]]))[0] for i in range(problem.n)])
     better = best > at_guess + 1e-9 * size  # a better choice exists (independent check)
@@ -156,18 +161,9 @@ def test_a_false_concave_hint_is_not_proven_where_a_better_choice_exists() -> No
 
 
 def test_a_two_peaked_reward_is_not_proven_at_the_lower_peak() -> None:
-    """Invented: a broad peak of the reward and a narrow, higher one between two grid points (v = 0)."""
-    model = {
-        "kind": "grid",
-        "params": {"bonus": 0.5, "peak": 0.725, "spread": 0.02},
-        "states": {"k": {"min": 0.0, "max": 1.0, "points": 21}},
-        "shocks": {"z": {"markov": {"values": [0.0, 0.03], "matrix": [[0.9, 0.1], [0.1, 0.9]]},
-                         "transform": "none"}},
-        "choices": {"k_next": {"next_of": "k", "continuous": True}},
-        "reward": "-(k_next - 0.25 - 0.05 * k - z)**2 + bonus * exp(-((k_next - peak) / spread)**2)",
-        "interpolation": "linear",
-    }
-    _, problem = compile_document({"version": 1, "discount": 0.5, "model": model})
+    """Invented (tests/_documents.two_peaks): a broad peak of the reward and a narrow, higher one between two grid
+    points (v = 0)."""
+    _, problem = compile_document(two_peaks(0.5, None))
     env = problem.state_values()
     broad = 0.25 + 0.05 * env["k"] + env["z"]  # the broad peak (the bump is negligible there)
     (on_v, on_a), _, proven = _on_off(problem, np.zeros(problem.n), np.ascontiguousarray(broad))
@@ -177,17 +173,24 @@ def test_a_two_peaked_reward_is_not_proven_at_the_lower_peak() -> None:
     np.testing.assert_allclose(on_a, 0.725, atol=2e-3)
 
 
-def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven() -> None:
+@pytest.mark.parametrize("interpolation", ["linear", "monotone_cubic"])
+def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven(interpolation: str) -> None:
     """``-1/c`` with no constraint: past ``c = 0`` the reward is large and positive, and allowed."""
-    document = _saver(40, "-1 / c", feasible=False)
-    _, problem = compile_document(document)
+    cubic = interpolation == "monotone_cubic"
+
+    def saver(feasible: bool) -> dict[str, Any]:
+        document = _saver(40, "-1 / c", feasible=feasible)
+        return _cubic(document) if cubic else document
+
+    _, problem = compile_document(saver(False))
+    assert problem.bound_proof
     env = problem.state_values()
     cash = 1.02 * env["assets"] + env["income"]
     v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
     grid = problem.model_data.state_grids[0]
     left = np.array([max(0.0, min(0.5 * c, grid[-1])) for c in cash])  # a choice left of the pole
     (on_v, _), (off_v, _), proven = _on_off(problem, v, left)
-    best, objective = _dense(problem, v, lambda c: np.where(c != 0, -1.0 / c, np.nan), cash)
+    _, objective = (_dense_cubic if cubic else _dense)(problem, v, lambda c: np.where(c != 0, -1.0 / c, np.nan), cash)
     pole_inside = cash < grid[-1]
     assert pole_inside.sum() >= 10
     assert not np.any(proven[pole_inside])
@@ -195,7 +198,7 @@ def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven() -> None
     assert np.all(on_v[pole_inside] > at_left[pole_inside] + 1.0)  # the better choice past the pole is found
     np.testing.assert_array_equal(on_v, off_v)
     # With the constraint the pole is narrowed out of the box: proven where it holds.
-    _, problem = compile_document(_saver(40, "-1 / c"))
+    _, problem = compile_document(saver(True))
     problem.bellman_step(v, restricted=False, policy_guess=problem.bellman_step(v, restricted=False)[1])
     assert np.count_nonzero(problem.proven) >= 0.8 * problem.n
 
@@ -330,25 +333,6 @@ def test_cubic_the_proof_gives_the_branch_and_bounds_answer_at_most_points(which
     assert np.count_nonzero(proven) >= 0.9 * problem.n, (np.count_nonzero(proven), problem.n)
 
 
-def test_cubic_a_false_concave_hint_is_not_proven_where_a_better_choice_exists() -> None:
-    document = _cubic(_saver(60, "c**(1 - gamma) / (1 - gamma)"))
-    document["model"]["hints"] = {"concave": True}
-    _, problem = compile_document(document)
-    env = problem.state_values()
-    v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]) + 0.4 * np.sin(1.7 * env["assets"]))
-    local_v, local_a = problem.bellman_step(v, restricted=True, policy_guess=np.full(problem.n, 0.2))
-    (on_v, _), (off_v, _), proven = _on_off(problem, v, local_a)
-    best, objective = _dense_cubic(problem, v, _crra, 1.02 * env["assets"] + env["income"])
-    size = float(np.abs(best).max())
-    at_guess = np.array([objective(i, np.array([local_a[i]]))[0] for i in range(problem.n)])
-    better = best > at_guess + 1e-9 * size  # a better choice exists (independent check)
-    assert better.sum() >= 5 and np.count_nonzero(proven) >= 5  # both cases occur
-    assert not np.any(proven[better])
-    assert np.all(on_v >= best - 1e-11 * size), float((best - on_v).max())
-    np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
-    assert np.all(on_v >= local_v - 1e-12 * size)
-
-
 def test_cubic_a_wavy_continuation_is_proven_only_where_the_dense_check_finds_nothing_better() -> None:
     """Guesses spread over the interval (not the optimum) at a wavy continuation: wherever the proof holds, no
     choice of the dense check (PCHIP) beats the guess beyond rounding."""
@@ -375,27 +359,6 @@ def test_cubic_a_wavy_continuation_is_proven_only_where_the_dense_check_finds_no
     assert np.count_nonzero(better & (kind == 2)) >= 5
     assert np.all(on_v >= best - 1e-11 * size), float((best - on_v).max())
     np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
-
-
-def test_cubic_a_pole_inside_the_interval_without_a_constraint_is_not_proven() -> None:
-    _, problem = compile_document(_cubic(_saver(40, "-1 / c", feasible=False)))
-    assert problem.bound_proof
-    env = problem.state_values()
-    cash = 1.02 * env["assets"] + env["income"]
-    v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
-    grid = problem.model_data.state_grids[0]
-    left = np.array([max(0.0, min(0.5 * c, grid[-1])) for c in cash])  # a choice left of the pole
-    (on_v, _), (off_v, _), proven = _on_off(problem, v, left)
-    _, objective = _dense_cubic(problem, v, lambda c: np.where(c != 0, -1.0 / c, np.nan), cash)
-    pole_inside = cash < grid[-1]
-    assert pole_inside.sum() >= 10
-    assert not np.any(proven[pole_inside])
-    at_left = np.array([objective(i, np.array([left[i]]))[0] for i in range(problem.n)])
-    assert np.all(on_v[pole_inside] > at_left[pole_inside] + 1.0)  # the better choice past the pole is found
-    np.testing.assert_array_equal(on_v, off_v)
-    _, problem = compile_document(_cubic(_saver(40, "-1 / c")))
-    problem.bellman_step(v, restricted=False, policy_guess=problem.bellman_step(v, restricted=False)[1])
-    assert np.count_nonzero(problem.proven) >= 0.8 * problem.n
 
 
 def test_cubic_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
@@ -451,6 +414,22 @@ def test_cubic_a_higher_peak_inside_the_incumbents_grid_interval_is_not_proven()
     np.testing.assert_array_equal(on_v, off_v)  # and bound's own rule: single-peaked inside a grid interval)
 
 
+def _six_points(params: dict[str, float], reward: str) -> dict[str, Any]:
+    """Invented: a state on six grid points of [0, 1], two equally likely shock values, a ``next_of`` continuous
+    choice read by ``monotone_cubic``, β = 0.9."""
+    model = {
+        "kind": "grid",
+        "params": params,
+        "states": {"k": {"min": 0.0, "max": 1.0, "points": 6}},
+        "shocks": {"z": {"markov": {"values": [0.0, 1.0], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
+                         "transform": "none"}},
+        "choices": {"k_next": {"next_of": "k", "continuous": True}},
+        "reward": reward,
+        "interpolation": "monotone_cubic",
+    }
+    return {"version": 1, "discount": 0.9, "model": model}
+
+
 def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not_proven() -> None:
     """Invented: a linear reward and a continuation with a step, whose cubic piece rises above the hull of the
     nodes inside its interval; the better choice is there, every node's value is below the incumbent's (a local
@@ -458,17 +437,7 @@ def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not
     would prove the incumbent)."""
     from scipy.optimize import minimize_scalar
 
-    model = {
-        "kind": "grid",
-        "params": {"lam": 1.563},
-        "states": {"k": {"min": 0.0, "max": 1.0, "points": 6}},
-        "shocks": {"z": {"markov": {"values": [0.0, 1.0], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
-                         "transform": "none"}},
-        "choices": {"k_next": {"next_of": "k", "continuous": True}},
-        "reward": "-lam * k_next",
-        "interpolation": "monotone_cubic",
-    }
-    _, problem = compile_document({"version": 1, "discount": 0.9, "model": model})
+    _, problem = compile_document(_six_points({"lam": 1.563}, "-lam * k_next"))
     assert problem.bound_proof
     nodes = np.array([0.0, 0.46, 0.624, 0.786, 1.5, 1.5])  # found by a random search for this shape
     v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
@@ -496,17 +465,8 @@ def test_cubic_a_rise_of_the_continuation_inside_the_incumbents_interval_is_not_
     case where only the mid piece's ``W'`` term sees the better choice was not found by a random search.)"""
     from scipy.optimize import minimize_scalar
 
-    model = {
-        "kind": "grid",
-        "params": {"lam": 54.48, "p": 0.61, "lin": -0.182},
-        "states": {"k": {"min": 0.0, "max": 1.0, "points": 6}},
-        "shocks": {"z": {"markov": {"values": [0.0, 1.0], "matrix": [[0.5, 0.5], [0.5, 0.5]]},
-                         "transform": "none"}},
-        "choices": {"k_next": {"next_of": "k", "continuous": True}},
-        "reward": "-0.01 * exp(lam * (k_next - p)) + lin * k_next",
-        "interpolation": "monotone_cubic",
-    }
-    _, problem = compile_document({"version": 1, "discount": 0.9, "model": model})
+    _, problem = compile_document(_six_points({"lam": 54.48, "p": 0.61, "lin": -0.182},
+                                              "-0.01 * exp(lam * (k_next - p)) + lin * k_next"))
     assert problem.bound_proof
     nodes = np.array([0.0, 0.1045, 0.2195, 0.2694, 0.4012, 0.4105])  # found by a random search for this shape
     v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
