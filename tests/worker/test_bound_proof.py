@@ -203,39 +203,46 @@ def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven(interpola
     assert np.count_nonzero(problem.proven) >= 0.8 * problem.n
 
 
-def test_kinked_rewards_use_the_hull_of_both_slopes_and_a_jump_writes_no_proof() -> None:
-    """``abs`` and ``min`` (Lebourg's mean value inequality) are proven and agree with the independent check;
-    ``where`` on the choice may jump, so no proof is written."""
-    rewards = {
-        "c**(1 - gamma) / (1 - gamma) - 0.05 * abs(saving - 4)": lambda c, x: _crra(c) - 0.05 * np.abs(x - 4),
-        "min(c**(1 - gamma) / (1 - gamma), -0.6)": lambda c, x: np.minimum(_crra(c), -0.6),
-    }
-    for text, numpy_reward in rewards.items():
-        _, problem = compile_document(_saver(50, text))
-        assert problem.bound_proof
-        env = problem.state_values()
-        cash = 1.02 * env["assets"] + env["income"]
-        v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
-        first = problem.bellman_step(v, restricted=False)[1]
-        (on_v, _), (off_v, _), proven = _on_off(problem, v, first)
-        # Where the optimum sits on the reward's kink the incumbent is only within Brent's tolerance of it, and
-        # the proof fails by about that tolerance times the jump of the slope (the branch and bound answers).
-        assert np.count_nonzero(proven) >= 0.25 * problem.n, (text, np.count_nonzero(proven))
-        best = np.empty(problem.n)
-        grid = problem.model_data.state_grids[0]
-        choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
-        EVt = problem.model_data.transition @ v.reshape(problem.model_data.n_grid, -1).T
-        for i in range(problem.n):
-            with np.errstate(all="ignore"):
-                values = numpy_reward(cash[i] - choices, choices) + problem.discount * np.interp(
-                    choices, grid, EVt[i % 2])
-            best[i] = np.nanmax(values)
-        size = float(np.abs(best).max())
-        # Where the proof held, no choice is better (the branch and bound's answer elsewhere is Brent's, which
-        # stops within its tolerance of a kink of the reward: 1e-9 of the value here).
-        held = proven > 0
-        assert np.all(on_v[held] >= best[held] - 1e-11 * size), (text, float((best - on_v)[held].max()))
-        np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
+KINKED = {
+    "c**(1 - gamma) / (1 - gamma) - 0.05 * abs(saving - 4)": lambda c, x: _crra(c) - 0.05 * np.abs(x - 4),
+    "min(c**(1 - gamma) / (1 - gamma), -0.6)": lambda c, x: np.minimum(_crra(c), -0.6),
+}
+"""Rewards with a kink in the choice (``abs``, ``min``), as written and in numpy."""
+
+
+@pytest.mark.parametrize("text", list(KINKED))
+def test_kinked_rewards_use_the_hull_of_both_slopes(text: str) -> None:
+    """``abs`` and ``min`` (Lebourg's mean value inequality) are proven and agree with the independent check."""
+    numpy_reward = KINKED[text]
+    _, problem = compile_document(_saver(50, text))
+    assert problem.bound_proof
+    env = problem.state_values()
+    cash = 1.02 * env["assets"] + env["income"]
+    v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]))
+    first = problem.bellman_step(v, restricted=False)[1]
+    (on_v, _), (off_v, _), proven = _on_off(problem, v, first)
+    # Where the optimum sits on the reward's kink the incumbent is only within Brent's tolerance of it, and
+    # the proof fails by about that tolerance times the jump of the slope (the branch and bound answers).
+    assert np.count_nonzero(proven) >= 0.25 * problem.n, (text, np.count_nonzero(proven))
+    best = np.empty(problem.n)
+    grid = problem.model_data.state_grids[0]
+    choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
+    EVt = problem.model_data.transition @ v.reshape(problem.model_data.n_grid, -1).T
+    for i in range(problem.n):
+        with np.errstate(all="ignore"):
+            values = numpy_reward(cash[i] - choices, choices) + problem.discount * np.interp(
+                choices, grid, EVt[i % 2])
+        best[i] = np.nanmax(values)
+    size = float(np.abs(best).max())
+    # Where the proof held, no choice is better (the branch and bound's answer elsewhere is Brent's, which
+    # stops within its tolerance of a kink of the reward: 1e-9 of the value here).
+    held = proven > 0
+    assert np.all(on_v[held] >= best[held] - 1e-11 * size), (text, float((best - on_v)[held].max()))
+    np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
+
+
+def test_a_reward_that_may_jump_in_the_choice_writes_no_proof() -> None:
+    """``where`` on the choice may jump: no proof is written (the branch and bound stays)."""
     _, problem = compile_document(_saver(20, "where(saving > 4, -1 / c, -1 / c - 0.1)"))
     assert problem.bound_search and not problem.bound_proof
 
