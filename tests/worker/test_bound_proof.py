@@ -250,19 +250,22 @@ def test_a_reward_that_may_jump_in_the_choice_writes_no_proof() -> None:
     assert problem.bound_search and not problem.bound_proof
 
 
-def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
+@pytest.mark.parametrize("interpolation", ["linear", "monotone_cubic"])
+def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch, interpolation: str) -> None:
     calls = spy_run_blocks(monkeypatch)
     monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
-    document = _fishery(80)
+    document = _cubic(_fishery(80)) if interpolation == "monotone_cubic" else _fishery(80)
     _, v, policy = _solved(copy.deepcopy(document), "escapement")
     answers = []
     for threads in ("1", "2"):
         monkeypatch.setenv(environment.SOLVE_THREADS, threads)
         calls.clear()
         _, problem = compile_document(copy.deepcopy(document))
+        problem.last_step = (np.array(v, dtype=np.float64), np.array(policy, dtype=np.float64))
         values, choices = problem.bellman_step(v, restricted=False, policy_guess=policy)
         answers.append((values.tobytes(), np.asarray(choices).tobytes(), problem.proven.tobytes()))
         assert calls and all(t == int(threads) for t, _ in calls)
+        assert np.count_nonzero(problem.proven) >= 0.9 * problem.n
     assert any(blocks >= 2 for _, blocks in calls), calls
     assert answers[0] == answers[1]
 
@@ -353,25 +356,6 @@ def test_cubic_a_wavy_continuation_is_proven_only_where_the_dense_check_finds_no
     assert np.count_nonzero(better & (kind == 2)) >= 5
     assert np.all(on_v >= best - 1e-11 * size), float((best - on_v).max())
     np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
-
-
-def test_cubic_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> None:
-    calls = spy_run_blocks(monkeypatch)
-    monkeypatch.setattr(threadpool, "THREAD_MIN_PAIRS", 0)
-    document = _cubic(_fishery(80))
-    _, v, policy = _solved(copy.deepcopy(document), "escapement")
-    answers = []
-    for threads in ("1", "2"):
-        monkeypatch.setenv(environment.SOLVE_THREADS, threads)
-        calls.clear()
-        _, problem = compile_document(copy.deepcopy(document))
-        problem.last_step = (np.array(v, dtype=np.float64), np.array(policy, dtype=np.float64))
-        values, choices = problem.bellman_step(v, restricted=False, policy_guess=policy)
-        answers.append((values.tobytes(), np.asarray(choices).tobytes(), problem.proven.tobytes()))
-        assert calls and all(t == int(threads) for t, _ in calls)
-        assert np.count_nonzero(problem.proven) >= 0.9 * problem.n
-    assert any(blocks >= 2 for _, blocks in calls), calls
-    assert answers[0] == answers[1]
 
 
 def test_cubic_a_higher_peak_inside_the_incumbents_grid_interval_is_not_proven() -> None:
