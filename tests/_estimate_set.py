@@ -226,34 +226,40 @@ estimate's: ``bench/bench_lu_fill.py`` compares it with the resident memory a so
 def untraced_solves(held: list[int]) -> Iterator[None]:
     """Count what direct solves hold outside :mod:`tracemalloc`'s view, while they run.
 
-    SuperLU (``scipy.sparse.linalg.spsolve``) and LAPACK (``numpy.linalg.solve``) allocate their factors with
-    C's ``malloc``, which tracing does not see.  For each call, ``held`` gets the traced memory at the call plus
-    that factor: the entries of SuperLU's factor of the same matrix (``splu`` with spsolve's default COLAMD
-    ordering, its ``nnz`` read, nothing converted) at ``LU_ENTRY_BYTES`` each; LAPACK's copy of the matrix and
-    the right-hand side, and its pivots.
+    SuperLU (``scipy.sparse.linalg.spsolve``, ``splu``) and LAPACK (``numpy.linalg.solve``) allocate their
+    factors with C's ``malloc``, which tracing does not see.  For each call, ``held`` gets the traced memory at
+    the call plus that factor: the entries of SuperLU's factor of the same matrix (``splu`` with spsolve's
+    default COLAMD ordering, its ``nnz`` read, nothing converted) at ``LU_ENTRY_BYTES`` each; for ``splu`` itself
+    (a stationary distribution's LU), the entries of the factor it made; LAPACK's copy of the matrix and the
+    right-hand side, and its pivots.
     """
     import numpy.linalg as npla
     import scipy.sparse as sp
     import scipy.sparse.linalg as spla
 
-    sparse_solve, dense_solve = spla.spsolve, npla.solve
+    sparse_solve, dense_solve, factorise = spla.spsolve, npla.solve, spla.splu
 
     def counted_sparse(A: Any, b: Any, *args: Any, **kwargs: Any) -> Any:
-        factor = spla.splu(sp.csc_matrix(A))
+        factor = factorise(sp.csc_matrix(A))
         held.append(tracemalloc.get_traced_memory()[0] + factor.nnz * LU_ENTRY_BYTES)
         del factor
         return sparse_solve(A, b, *args, **kwargs)
+
+    def counted_factor(A: Any, *args: Any, **kwargs: Any) -> Any:
+        factor = factorise(A, *args, **kwargs)
+        held.append(tracemalloc.get_traced_memory()[0] + factor.nnz * LU_ENTRY_BYTES)
+        return factor
 
     def counted_dense(a: Any, b: Any) -> Any:
         a, b = np.asarray(a), np.asarray(b)
         held.append(tracemalloc.get_traced_memory()[0] + a.nbytes + b.nbytes + 4 * a.shape[-1])
         return dense_solve(a, b)
 
-    spla.spsolve, npla.solve = counted_sparse, counted_dense
+    spla.spsolve, npla.solve, spla.splu = counted_sparse, counted_dense, counted_factor
     try:
         yield
     finally:
-        spla.spsolve, npla.solve = sparse_solve, dense_solve
+        spla.spsolve, npla.solve, spla.splu = sparse_solve, dense_solve, factorise
 
 
 def measure_memory(raw: dict[str, Any], limits: dict[str, Any] | None = None) -> int:

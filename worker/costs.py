@@ -11,6 +11,8 @@ from __future__ import annotations
 import math
 from typing import Any
 
+from worker.stationary_lu import NATURAL_ENVELOPE, NATURAL_MAX_ENTRIES
+
 __all__ = [
     "CHUNK_ELEMENTS",
     "CHUNK_TEMPORARIES",
@@ -20,6 +22,8 @@ __all__ = [
     "SIMULATION_BYTES_PER_DRAW",
     "STATIONARY_BYTES_PER_ENTRY",
     "STATIONARY_BYTES_PER_STATE",
+    "STATIONARY_LU_ENTRY_NS",
+    "STATIONARY_LU_SHARE",
     "CHOICE_BYTES",
     "DIRECT_SOLVE_MAX_POINTS",
     "DRAWS_FIXED_S",
@@ -64,6 +68,7 @@ __all__ = [
     "iteration_steps",
     "linear_solve_bytes",
     "lu_entries",
+    "stationary_lu_entries",
     "GRID_LU_FILL",
     "LU_ENTRY_BYTES",
     "linear_solve_seconds",
@@ -183,6 +188,15 @@ STATIONARY_BYTES_PER_STATE = 300
 measured: 540 per point with 5 shock points, 1,100 with 7 and interpolated nodes, including the entries)."""
 STATIONARY_BYTES_PER_ENTRY = 50
 """The stationary report per entry of the policy's matrix: the matrix, its transpose and their solve (bytes)."""
+STATIONARY_LU_SHARE = 0.02
+"""Above ``DIRECT_SOLVE_MAX_POINTS`` states a grid model's stationary LU, made in the states' own order within its
+envelope (:func:`worker.stationary_lu.natural_pinned_lu`), holds about this share of ``n²`` entries
+(dimensionless; measured 2026-12-05: the savings chains of ``bench/bench_aiyagari.py`` at 3,500 to 28,000 states
+0.011–0.019, the growth chains of ``bench/bench_solver.py`` at 3,500 and 7,000 states 0.014).  The envelope widens
+with the grid, so the fill grows like ``n²``, not like the matrix's entries (4 to 28 times them there)."""
+STATIONARY_LU_ENTRY_NS = 50.0
+"""That LU's time per entry of its factors (nanoseconds; measured 30–52 on the same chains, 0.13 s at 14,000
+states)."""
 SIMULATION_BYTES_PER_DRAW = 24
 """The simulation per simulated period of one path (bytes; measured 24–28 at 200 × 100 and 1,000 × 500)."""
 EULER_BYTES_PER_ELEMENT = 64
@@ -260,18 +274,33 @@ def euler_elements(doc: Any, grid_points: int, shocks: int) -> int:
     return min(per_interval * (grid_points - 1) * shocks * shocks, max(EULER_CHUNK_ELEMENTS, shocks * shocks))
 
 
-def report_bytes(doc: Any, n: int, entries: int, euler: int = 0) -> int:
+def report_bytes(doc: Any, n: int, entries: int, euler: int = 0, *, bandwidth: int | None = None) -> int:
     """The result document and the reports asked for (bytes): the value and policy as nested lists, the
-    stationary distribution (a policy's matrix with ``entries`` entries and its solve), the simulated paths,
-    and ``euler`` elements of the Euler-error measurement's temporaries (:func:`euler_elements`)."""
+    stationary distribution (a policy's matrix with ``entries`` entries, its solve and its LU,
+    :func:`stationary_lu_entries`; ``bandwidth``: a tabular model's), the simulated paths, and ``euler``
+    elements of the Euler-error measurement's temporaries (:func:`euler_elements`)."""
     report = doc.report
     memory = n * RESULT_BYTES_PER_STATE
     if report.stationary:
         memory += n * STATIONARY_BYTES_PER_STATE + entries * STATIONARY_BYTES_PER_ENTRY
+        memory += stationary_lu_entries(n, entries, bandwidth) * LU_ENTRY_BYTES
     if report.simulation is not None:
         memory += int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_BYTES_PER_DRAW
         memory += 0 if report.stationary else policy_matrix_bytes(n, entries)
     return memory + euler * EULER_BYTES_PER_ELEMENT
+
+
+def stationary_lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
+    """Entries of the LU a stationary report makes of a chain of ``n`` states whose matrix stores ``entries``
+    (:func:`worker.report.long_run_distribution`; a search's trials make the same): up to
+    ``DIRECT_SOLVE_MAX_POINTS`` states SuperLU's own, :func:`lu_entries`; above, one in the states' own order,
+    made only within ``NATURAL_ENVELOPE`` times the system's entries and ``NATURAL_MAX_ENTRIES`` (else none: the
+    iterative solves, whose incomplete LU is smaller): the band's bound with a ``bandwidth`` (a tabular model's),
+    else ``STATIONARY_LU_SHARE`` of ``n²``."""
+    if n <= DIRECT_SOLVE_MAX_POINTS:
+        return lu_entries(n, entries, bandwidth)
+    typical = lu_entries(n, entries, bandwidth) if bandwidth is not None else math.ceil(STATIONARY_LU_SHARE * n * n)
+    return min(typical, NATURAL_ENVELOPE * (entries + n), NATURAL_MAX_ENTRIES)
 
 
 def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
@@ -388,13 +417,17 @@ def horizon_seconds(doc: Any, n: int) -> float:
     return 0.0 if horizon is None else int(horizon.periods) * (n * HORIZON_POINT_NS * 1e-9 + PERIOD_S)
 
 
-def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool = True) -> float:
+def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool = True,
+                   bandwidth: int | None = None) -> float:
     """Time of the result and the reports asked for (seconds): the fixed cost of any solve, the stationary
-    distribution, the simulation and ``euler`` elements of the Euler-error measurement."""
+    distribution (above ``DIRECT_SOLVE_MAX_POINTS`` states its LU, :func:`stationary_lu_entries`), the simulation
+    and ``euler`` elements of the Euler-error measurement."""
     report = doc.report
     seconds = FIXED_S + n * RESULT_NS * 1e-9
     if report.stationary:
         seconds += STATIONARY_S + (STATIONARY_GRID_S if grid else 0.0) + entries * STATIONARY_ENTRY_NS * 1e-9
+        if n > DIRECT_SOLVE_MAX_POINTS:
+            seconds += stationary_lu_entries(n, entries, bandwidth) * STATIONARY_LU_ENTRY_NS * 1e-9
     if report.simulation is not None:
         seconds += STATIONARY_S + int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_NS * 1e-9
     return seconds + euler * EULER_ELEMENT_NS * 1e-9

@@ -417,10 +417,16 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
     step += ITERATION_S * 1e9
     seconds = (steps * step + evaluation_steps * policy_entries * MATVEC_NS + entries * TABULAR_ENTRY_NS) * 1e-9
     seconds += evaluation_steps * TABULAR_STEP_S
-    seconds += report_seconds(doc, n_states, policy_entries, grid=False) + horizon_seconds(doc, n_states)
-    if doc.solver.method == "policy_iteration" and model.horizon is None:
-        bandwidth = transition_bandwidth(transition, dense) if n_states <= DIRECT_SOLVE_MAX_POINTS else None
-        matrix += linear_solve_bytes(n_states, policy_entries, bandwidth)
+    exact = doc.solver.method == "policy_iteration" and model.horizon is None
+    # The band of the transitions bounds an LU's fill: policy iteration's (up to DIRECT_SOLVE_MAX_POINTS states)
+    # and the stationary report's (worker.costs.stationary_lu_entries).
+    banded = doc.report.stationary or (exact and n_states <= DIRECT_SOLVE_MAX_POINTS)
+    bandwidth = transition_bandwidth(transition, dense) if banded else None
+    seconds += (report_seconds(doc, n_states, policy_entries, grid=False, bandwidth=bandwidth)
+                + horizon_seconds(doc, n_states))
+    if exact:
+        matrix += linear_solve_bytes(n_states, policy_entries,
+                                     bandwidth if n_states <= DIRECT_SOLVE_MAX_POINTS else None)
         seconds += max(steps - 1, 1) * linear_solve_seconds(  # no evaluation after the last Bellman step
             n_states, policy_entries, float(doc.discount), float(doc.solver.tolerance), anywhere=True
         )
@@ -438,7 +444,7 @@ def _tabular_estimate(doc: Any) -> dict[str, Any]:
         "choice_points": n_actions,
         "pairs": pairs,
         "bytes": int(BASE_BYTES + common + csr + document + conversion + matrix)
-        + report_bytes(doc, n_states, policy_entries) + horizon_bytes(doc, n_states),
+        + report_bytes(doc, n_states, policy_entries, bandwidth=bandwidth) + horizon_bytes(doc, n_states),
         "reward_storage": "tables",
         "compile_bytes": 0,
         "compile_seconds": 0.0,

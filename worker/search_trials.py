@@ -176,13 +176,20 @@ def trial_distribution(matrix: sp.csr_matrix, previous: np.ndarray | None,
 def _factorised(matrix: sp.csr_matrix, k: int, factors: dict[str, Any] | None) -> np.ndarray | None:
     """:func:`worker.stationary_lu.pinned_lu` of the pinned chain, kept in ``factors``, with the column ordering
     chosen on the search's first factorisation by :func:`worker.stationary_lu.ordered_pinned_lu` (the states'
-    own order when their band bounds the fill, as a single job's report chooses it) and kept for the rest.
+    own order when their band bounds the fill, as a single job's report chooses it) and kept for the rest;
+    above :data:`worker.report.DIRECT_MAX_STATES` states only :func:`worker.stationary_lu.natural_pinned_lu`,
+    as a single job's report.
 
     On the Aiyagari bench the states' order is banded (1,400 states, half-bandwidth about 160, 19,000 entries):
     a search's stationary distributions took 6.4 ms in all with it where they took 8.4 ms with SuperLU's
     default ordering at ρ = 0.9 (measured)."""
-    from worker.stationary_lu import ordered_pinned_lu, pinned_lu
+    from worker import report
+    from worker.stationary_lu import natural_pinned_lu, ordered_pinned_lu, pinned_lu
 
+    if matrix.shape[0] > report.DIRECT_MAX_STATES:
+        # No LU whose fill nothing bounds but n² (see worker.report.DIRECT_MAX_STATES): the states' own order
+        # within its bound, else the general solve (trial_distribution's fallback).
+        return natural_pinned_lu(matrix, k, keep=factors)
     if factors is None:
         return pinned_lu(matrix, k)
     return ordered_pinned_lu(matrix, k, keep=factors)

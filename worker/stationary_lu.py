@@ -125,21 +125,25 @@ def natural_lu_fits(matrix: sp.csr_matrix) -> bool:
     return 0 < transposed.nnz and _within(natural_lu_bound(transposed), transposed.nnz)
 
 
-def natural_pinned_lu(matrix: sp.csr_matrix, k: int) -> np.ndarray | None:
+def natural_pinned_lu(matrix: sp.csr_matrix, k: int, keep: dict[str, Any] | None = None) -> np.ndarray | None:
     """:func:`pinned_lu` in the states' own order when :func:`natural_lu_bound` bounds its LU to
     `NATURAL_ENVELOPE` times the pinned system's entries and the LU made no row interchanges; else None (also
-    when it runs out of memory)."""
+    when it runs out of memory).  ``keep``, when given, receives the factorisation as :func:`pinned_lu`'s does
+    (only when the answer is not None)."""
     pinned = pinned_system(matrix, k)
     if pinned is None or not pinned[0].nnz or not _within(natural_lu_bound(pinned[0]), pinned[0].nnz):
         return None
-    keep: dict[str, Any] = {}
+    made: dict[str, Any] = {}
     try:
-        pi = _solved(pinned, k, "NATURAL", keep, diag_pivot_thresh=NATURAL_PIVOT_THRESHOLD)
+        pi = _solved(pinned, k, "NATURAL", made, diag_pivot_thresh=NATURAL_PIVOT_THRESHOLD)
     except MemoryError:
-        # Past a job's memory limit (worker.memory), which its estimate does not size for this LU: the
-        # iterative solves, which need O(entries), instead.
+        # Past a job's memory limit (worker.memory): the iterative solves, which need O(entries), instead.
         return None
-    return pi if pi is not None and _no_interchanges(keep["lu"]) else None
+    if pi is None or not _no_interchanges(made["lu"]):
+        return None
+    if keep is not None:
+        keep.update(made)
+    return pi
 
 
 def _within(bound: int, entries: int) -> bool:
