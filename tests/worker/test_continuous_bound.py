@@ -20,6 +20,7 @@ from scipy.interpolate import PchipInterpolator
 
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
+from worker.continuous.problem import ContinuousProblem
 from worker.solve import compile_document, solve
 
 BETA = 0.95
@@ -178,7 +179,10 @@ def test_a_higher_peak_between_grid_points_is_found_where_the_scan_misses_it() -
     assert np.all(np.abs(np.array(result["policy"]["k_next"]) - 0.725) < 0.01)
 
 
-def test_the_bound_is_used_only_where_it_holds() -> None:
+def test_the_bound_is_used_only_where_it_holds(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The generated module's flag (BOUNDED), read without compiling the kernels: nothing here calls them, and the
+    # first two structures are no other test's (their compile cost 5-7 s each).
+    monkeypatch.setattr(ContinuousProblem, "warm_up", lambda self: None)
     cubic_two = _household(12, "monotone_cubic", skill=True)
     moving = _household(12, "linear", skill=True)
     moving["model"]["next"] = {"skill": "0.6 * skill + 0.5 + 0.001 * saving"}
