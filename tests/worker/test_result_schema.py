@@ -22,6 +22,7 @@ from pydantic import BaseModel, ValidationError
 
 from service.examples import example_names, load_example
 from tests._documents import grid_document, log_growth, machine_shop, two_peaks
+from tests._mixed_models import household_document
 from worker import solve
 from worker.report import PERCENTILES
 from worker.result_document import ResultDocument, result_json_schema
@@ -128,15 +129,10 @@ def _leaving_grid() -> dict[str, Any]:
     return grid_document(model, discount=0.9)
 
 
-def _economy_with_work() -> dict[str, Any]:
-    """The households also choose whether to work (a menu) beside their continuous saving."""
-    document = _economy(report={"stationary": True, "simulation": SIMULATION, "euler_errors": True})
-    model = document["model"]
-    model["choices"] = {"work": {"values": [0.0, 1.0]}, **model["choices"]}
-    model["define"] = {"c": "(1 + r) * a + 0.2 + work * w * y - save"}
-    model["reward"] = "log(c) - 0.3 * work"
-    model["hints"] = {"concave": True}
-    return document
+def _saving_with_work() -> dict[str, Any]:
+    """Households choosing whether to work (a menu) beside their continuous saving: the work-or-not household of
+    tests/_mixed_models.py (its kernels are compiled for the tests of a continuous choice beside a discrete one)."""
+    return household_document({"concave": True}, stationary=True, simulation=SIMULATION, euler_errors=True)
 
 
 def _growth_two_states() -> dict[str, Any]:
@@ -174,7 +170,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
             "tolerance": 1e-4,
         }
     ),
-    "continuous choice beside a discrete one": _economy_with_work,
+    "continuous choice beside a discrete one": _saving_with_work,
     "static choice": _static_choice,
     "euler errors with two states": _growth_two_states,
     "euler errors of two next_of choices": _two_chosen_states,
