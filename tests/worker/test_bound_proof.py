@@ -339,7 +339,7 @@ def _dense_cubic(problem: Any, v: np.ndarray, reward: Any, cash: np.ndarray) -> 
 def test_cubic_a_wavy_continuation_is_proven_only_where_the_dense_check_finds_nothing_better() -> None:
     """Guesses spread over the interval (not the optimum) at a wavy continuation: wherever the proof holds, no
     choice of the dense check (PCHIP) beats the guess beyond rounding."""
-    document = _cubic(_saver(60, "c**(1 - gamma) / (1 - gamma)"))
+    document = _cubic(_saver(60, "-1 / c"))  # CRRA at gamma = 2 (_crra), as the false-concave-hint test writes it
     _, problem = compile_document(document)
     env = problem.state_values()
     v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]) + 0.1 * np.sin(2.3 * env["assets"]))
