@@ -32,6 +32,9 @@ log utility and full depreciation, whose exact policy is ``k' = αβ z k^α``.
 :func:`drifting` is a whole grid document whose size (state variables, points)
 a test chooses, for the kernel-size limits.
 
+:func:`aging_saver` is a whole grid document: a household over eight ages saving continuously, by the
+endogenous grid method or the search.
+
 :func:`random_values` gives the value function the kernel tests probe a compiled
 problem with.  Each builder returns a fresh dict, so a test may edit its copy.
 """
@@ -320,3 +323,29 @@ def two_peaks(bonus: float, hints: dict | None) -> dict[str, Any]:
     if hints is not None:
         model["hints"] = hints
     return {"version": 1, "discount": 0.5, "model": model, "solver": {"method": "howard", "tolerance": 1e-9}}
+
+
+def aging_saver(method: str | None) -> dict[str, Any]:
+    """An invented household over eight ages: CRRA utility, income by age times an AR(1) shock, a pension
+    from age 5, a bequest value; savings chosen continuously (tests/worker/test_horizon_egm.py; its kernels are
+    those of tests/integration/test_horizon_resume.py's working life too)."""
+    document: dict[str, Any] = {
+        "version": 1,
+        "discount": 0.96,
+        "model": {
+            "kind": "grid",
+            "params": {"r": 0.03, "gamma": 2.0, "income": [1.0, 1.2, 1.4, 1.5, 1.5, 0.6, 0.6, 0.6]},
+            "states": {"a": {"min": 0, "max": 15, "points": 120, "spacing": "power", "exponent": 2.0}},
+            "shocks": {"y": {"ar1": {"rho": 0.9, "sigma": 0.1, "points": 5}}},
+            "choices": {"an": {"next_of": "a", "continuous": True}},
+            "define": {"c": "(1 + r) * a + income * exp(y) - an"},
+            "feasible": ["c > 0"],
+            "reward": "c**(1 - gamma) / (1 - gamma)",
+            "hints": {"concave": True},
+            "horizon": {"periods": 8, "terminal_value": "2 * (1 + a)**(1 - gamma) / (1 - gamma)"},
+        },
+        "report": {"euler_errors": True, "cohort": {"start": {"a": 0, "y": 0}}},
+    }
+    if method is not None:
+        document["solver"] = {"method": method}
+    return document

@@ -36,20 +36,22 @@ PERIODS = 24
 
 def working_life() -> dict[str, Any]:
     """About 0.1 s a period on one core (700 asset points × 7 income points, each choice found by a scan of
-    the grid and Brent's method): long enough to be killed in the middle, with a checkpoint every 0.2 s."""
+    the grid and Brent's method): long enough to be killed in the middle, with a checkpoint every 0.2 s.  CRRA
+    utility with gamma = 2."""
     return {
         "version": 1,
         "label": "a household's working life (invented)",
         "discount": 0.96,
         "model": {
             "kind": "grid",
-            "params": {"r": 0.03, "income": [1.0 + 0.02 * t for t in range(PERIODS)]},
+            "params": {"r": 0.03, "gamma": 2.0, "income": [1.0 + 0.02 * t for t in range(PERIODS)]},
             "states": {"a": {"min": 0.0, "max": 20.0, "points": 700}},
             "shocks": {"y": {"ar1": {"rho": 0.9, "sigma": 0.1, "points": 7}}},
             "choices": {"an": {"next_of": "a", "continuous": True}},
             "define": {"c": "(1 + r) * a + income * exp(y) - an"},
             "feasible": ["c > 0"],
-            "reward": "log(c)",
+            # The reward and params of tests/worker/test_horizon_egm.py's saver: the same kernels, compiled once.
+            "reward": "c**(1 - gamma) / (1 - gamma)",
             "horizon": {"periods": PERIODS, "terminal_value": "0.5 * log(1 + a)"},
         },
         "solver": {"checkpoint_s": 0.2},

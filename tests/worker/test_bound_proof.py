@@ -25,6 +25,7 @@ import pytest
 from tests._documents import two_peaks
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
+from worker.continuous.problem import ContinuousProblem
 from worker.solve import compile_document, solve
 
 sys.path.insert(0, str(Path(__file__).resolve().parents[2] / "bench"))
@@ -144,7 +145,9 @@ def test_a_false_concave_hint_is_not_proven_where_a_better_choice_exists(interpo
     """A continuation with waves: the hinted (concave) search stops on the peak nearest its guess.  The
     independent check is a dense evaluation of the objective (numpy's linear reading, or scipy's PCHIP)."""
     cubic = interpolation == "monotone_cubic"
-    document = _saver(60, "c**(1 - gamma) / (1 - gamma)")
+    # -1/c is c**(1 - gamma) / (1 - gamma) at gamma = 2 (_crra), written as the pole test's constrained saver writes
+    # it, so that the two tests compile the same kernels (the hint is not part of them).
+    document = _saver(60, "-1 / c")
     document = _cubic(document) if cubic else document
     document["model"]["hints"] = {"concave": True}
     _, problem = compile_document(document)
@@ -244,8 +247,11 @@ def test_kinked_rewards_use_the_hull_of_both_slopes(text: str) -> None:
     np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
 
 
-def test_a_reward_that_may_jump_in_the_choice_writes_no_proof() -> None:
+def test_a_reward_that_may_jump_in_the_choice_writes_no_proof(monkeypatch: pytest.MonkeyPatch) -> None:
     """``where`` on the choice may jump: no proof is written (the branch and bound stays)."""
+    # The flags are the generated module's (BOUNDED, PROVABLE): read without compiling its kernels, which no
+    # other test uses and nothing here calls.
+    monkeypatch.setattr(ContinuousProblem, "warm_up", lambda self: None)
     _, problem = compile_document(_saver(20, "where(saving > 4, -1 / c, -1 / c - 0.1)"))
     assert problem.bound_search and not problem.bound_proof
 
@@ -333,7 +339,7 @@ def _dense_cubic(problem: Any, v: np.ndarray, reward: Any, cash: np.ndarray) -> 
 def test_cubic_a_wavy_continuation_is_proven_only_where_the_dense_check_finds_nothing_better() -> None:
     """Guesses spread over the interval (not the optimum) at a wavy continuation: wherever the proof holds, no
     choice of the dense check (PCHIP) beats the guess beyond rounding."""
-    document = _cubic(_saver(60, "c**(1 - gamma) / (1 - gamma)"))
+    document = _cubic(_saver(60, "-1 / c"))  # CRRA at gamma = 2 (_crra), as the false-concave-hint test writes it
     _, problem = compile_document(document)
     env = problem.state_values()
     v = np.ascontiguousarray(-4.0 / (1.0 + 0.5 * env["assets"]) + 0.1 * np.sin(2.3 * env["assets"]))
@@ -408,6 +414,10 @@ def _six_points(params: dict[str, float], reward: str) -> dict[str, Any]:
     return {"version": 1, "discount": 0.9, "model": model}
 
 
+EXPONENTIAL_REWARD = "-0.01 * exp(lam * (k_next - p)) + lin * k_next"
+"""A reward falling steeply past ``p`` (rate ``lam``) beside a linear one (slope ``lin``)."""
+
+
 def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not_proven() -> None:
     """Invented: a linear reward and a continuation with a step, whose cubic piece rises above the hull of the
     nodes inside its interval; the better choice is there, every node's value is below the incumbent's (a local
@@ -415,14 +425,16 @@ def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not
     would prove the incumbent)."""
     from scipy.optimize import minimize_scalar
 
-    _, problem = compile_document(_six_points({"lam": 1.563}, "-lam * k_next"))
+    # The reward -0.01 - 1.563 k_next, written as the next test's with its exponential switched off (lam = 0), so
+    # that the two tests compile the same kernels.
+    _, problem = compile_document(_six_points({"lam": 0.0, "p": 0.0, "lin": -1.563}, EXPONENTIAL_REWARD))
     assert problem.bound_proof
     nodes = np.array([0.0, 0.46, 0.624, 0.786, 1.5, 1.5])  # found by a random search for this shape
     v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
     row = _pchip_rows(problem, v)[0]
 
     def objective(x: Any) -> Any:
-        return -1.563 * x + 0.9 * row(x)
+        return -0.01 - 1.563 * x + 0.9 * row(x)
 
     local = minimize_scalar(lambda x: -objective(x), bounds=(0.1, 0.2), method="bounded",
                             options={"xatol": 1e-12}).x
@@ -443,8 +455,7 @@ def test_cubic_a_rise_of_the_continuation_inside_the_incumbents_interval_is_not_
     case where only the mid piece's ``W'`` term sees the better choice was not found by a random search.)"""
     from scipy.optimize import minimize_scalar
 
-    _, problem = compile_document(_six_points({"lam": 54.48, "p": 0.61, "lin": -0.182},
-                                              "-0.01 * exp(lam * (k_next - p)) + lin * k_next"))
+    _, problem = compile_document(_six_points({"lam": 54.48, "p": 0.61, "lin": -0.182}, EXPONENTIAL_REWARD))
     assert problem.bound_proof
     nodes = np.array([0.0, 0.1045, 0.2195, 0.2694, 0.4012, 0.4105])  # found by a random search for this shape
     v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))

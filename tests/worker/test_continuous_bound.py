@@ -20,6 +20,7 @@ from scipy.interpolate import PchipInterpolator
 
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
+from worker.continuous.problem import ContinuousProblem
 from worker.solve import compile_document, solve
 
 BETA = 0.95
@@ -31,7 +32,8 @@ DENSE = 20_001
 
 def _household(points: int, how: str, skill: bool = False) -> dict[str, Any]:
     """Invented household: assets on [0, 20] (power spacing), CRRA utility of consumption; with ``skill``, a
-    second state scaling income whose next value ``0.6·skill + 0.5`` falls between its grid points."""
+    second state scaling income whose next value ``0.6·skill + 0.4·income`` falls between its grid points (the law
+    of tests/worker/test_continuous_savings.py's skill: the same kernels)."""
     states: dict[str, Any] = {"assets": {"min": 0.0, "max": 20.0, "points": points, "spacing": "power",
                                          "exponent": 2.0}}
     cash = "(1 + r) * assets + income"
@@ -39,7 +41,7 @@ def _household(points: int, how: str, skill: bool = False) -> dict[str, Any]:
     if skill:
         states["skill"] = {"min": 0.5, "max": 1.5, "points": 5}
         cash = "(1 + r) * assets + skill * income"
-        nexts = {"skill": "0.6 * skill + 0.5"}
+        nexts = {"skill": "0.6 * skill + 0.4 * income"}
     model: dict[str, Any] = {
         "kind": "grid",
         "params": {"r": 0.03, "gamma": 2.0},
@@ -95,7 +97,7 @@ def _brute_force(problem: Any, v: np.ndarray, cubic: bool) -> tuple[np.ndarray, 
         if skill_grid is None:
             rows, weights = [0], [1.0]
         else:  # tomorrow's skill between two grid points: multilinear weights (np.interp of the unit vectors)
-            s_next = 0.6 * env["skill"][i] + 0.5
+            s_next = 0.6 * env["skill"][i] + 0.4 * env["income"][i]
             weights_all = [np.interp(s_next, skill_grid, np.eye(skill_grid.size)[k]) for k in range(skill_grid.size)]
             rows = [k for k in range(skill_grid.size) if weights_all[k] > 0]
             weights = [weights_all[k] for k in rows]
@@ -178,10 +180,13 @@ def test_a_higher_peak_between_grid_points_is_found_where_the_scan_misses_it() -
     assert np.all(np.abs(np.array(result["policy"]["k_next"]) - 0.725) < 0.01)
 
 
-def test_the_bound_is_used_only_where_it_holds() -> None:
+def test_the_bound_is_used_only_where_it_holds(monkeypatch: pytest.MonkeyPatch) -> None:
+    # The generated module's flag (BOUNDED), read without compiling the kernels: nothing here calls them, and the
+    # first two structures are no other test's (their compile cost 5-7 s each).
+    monkeypatch.setattr(ContinuousProblem, "warm_up", lambda self: None)
     cubic_two = _household(12, "monotone_cubic", skill=True)
     moving = _household(12, "linear", skill=True)
-    moving["model"]["next"] = {"skill": "0.6 * skill + 0.5 + 0.001 * saving"}
+    moving["model"]["next"] = {"skill": "0.6 * skill + 0.4 * income + 0.001 * saving"}
     for document in (cubic_two, moving):
         _, problem = compile_document(document)
         assert not problem.bound_search

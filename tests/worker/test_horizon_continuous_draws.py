@@ -36,18 +36,21 @@ SICK = [0.05, 0.08, 0.12, 0.17, 0.23, 0.3]
 PENSION = [0.4, 0.4, 0.4, 0.3, 0.3, 0.3]
 SURVIVE = [0.99, 0.98, 0.97, 0.95, 0.93, 0.9]
 SPEND_LOW = 0.05
+CARE = 0.3
+"""How much spending on oneself lowers the chance of a bill (a param, not a number in the expressions, so that a test
+changing it by period compiles the same kernels)."""
 PROFILE = (SICK, PENSION, SURVIVE)
 
 
 def retiree(**report: Any) -> dict[str, Any]:
     return {"version": 1, "discount": BETA, "model": {
         "kind": "grid",
-        "params": {"sick": SICK, "pension": PENSION, "survive": SURVIVE},
+        "params": {"sick": SICK, "pension": PENSION, "survive": SURVIVE, "care": CARE},
         "states": {"wealth": {"min": LOW, "max": HIGH, "points": POINTS}},
         "shocks": {
             "ret": {"iid": {"values": RETURNS.tolist(), "probs": RETURN_PROBS.tolist()}, "timing": "after_choice"},
             "bill": {"iid": {"values": BILLS.tolist(),
-                             "probs": ["1 - sick * (1 - 0.3 * spend / wealth)", "sick * (1 - 0.3 * spend / wealth)"]},
+                             "probs": ["1 - sick * (1 - care * spend / wealth)", "sick * (1 - care * spend / wealth)"]},
                      "timing": "after_choice"},
         },
         "choices": {"spend": {"min": SPEND_LOW, "max": "wealth", "continuous": True, "points": 60}},
@@ -61,7 +64,7 @@ def _parts(t: int, w: float, c: np.ndarray, profile: tuple = PROFILE) -> tuple[n
     """Per draw combination (first axis; return slowest), at spendings ``c``: probability and next wealth (the
     document's expressions, written in numpy); ``profile`` the per-period (sick, pension, survive)."""
     sick, pension, _ = profile
-    p_bill = sick[t] * (1 - 0.3 * c / w)
+    p_bill = sick[t] * (1 - CARE * c / w)
     probs, nxt = [], []
     for ret, p_ret in zip(RETURNS, RETURN_PROBS):
         for bill, p in zip(BILLS, (1 - p_bill, p_bill)):
@@ -212,9 +215,9 @@ def test_probabilities_breaking_the_rules_in_a_later_period_are_named_with_it() 
     # In period 4 a "care" effect so strong that a high spender's chance of a bill goes below zero (invented).
     document = retiree()
     model = document["model"]
-    model["params"]["care"] = [0.3, 0.3, 0.3, 0.3, 1.5, 0.3]
-    model["shocks"]["bill"]["iid"]["probs"] = ["1 - sick * (1 - care * spend / wealth)",
-                                              "sick * (1 - care * spend / wealth)"]
+    model["params"]["care"] = [CARE, CARE, CARE, CARE, 1.5, CARE]
+    assert model["shocks"]["bill"]["iid"]["probs"] == ["1 - sick * (1 - care * spend / wealth)",
+                                                       "sick * (1 - care * spend / wealth)"]
     with pytest.raises(InvalidDocument) as caught:
         solve(document)
     error = caught.value.errors[0]
@@ -227,7 +230,7 @@ def test_the_same_life_without_per_period_params_matches_its_own_reference() -> 
     # takes the same expectation.  Reference: the plain-numpy backward induction with the lists made constant.
     document = copy.deepcopy(retiree())
     model = document["model"]
-    model["params"] = {"sick": 0.1, "pension": 0.35, "survive": 0.97}
+    model["params"] = {"sick": 0.1, "pension": 0.35, "survive": 0.97, "care": CARE}
     _, values, _ = _reference(([0.1] * PERIODS, [0.35] * PERIODS, [0.97] * PERIODS))
     result = solve(document)
     np.testing.assert_allclose(np.asarray(result["value"]), values, rtol=1e-8)

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 
 from service.checkpoints import decode_checkpoint, encode_checkpoint
+from tests._documents import aging_saver
 from worker import solve
 from worker.errors import Canceled
 
@@ -144,33 +145,8 @@ def test_a_resumed_solve_reads_tomorrows_endogenous_grid_from_the_checkpoint(sto
     assert resumed["diagnostics"]["euler_errors"] == whole["diagnostics"]["euler_errors"]
 
 
-def saver(method: str | None) -> dict[str, Any]:
-    """An invented household over eight ages: CRRA utility, income by age times an AR(1) shock, a pension
-    from age 5, a bequest value; savings chosen continuously."""
-    document: dict[str, Any] = {
-        "version": 1,
-        "discount": 0.96,
-        "model": {
-            "kind": "grid",
-            "params": {"r": 0.03, "gamma": 2.0, "income": [1.0, 1.2, 1.4, 1.5, 1.5, 0.6, 0.6, 0.6]},
-            "states": {"a": {"min": 0, "max": 15, "points": 120, "spacing": "power", "exponent": 2.0}},
-            "shocks": {"y": {"ar1": {"rho": 0.9, "sigma": 0.1, "points": 5}}},
-            "choices": {"an": {"next_of": "a", "continuous": True}},
-            "define": {"c": "(1 + r) * a + income * exp(y) - an"},
-            "feasible": ["c > 0"],
-            "reward": "c**(1 - gamma) / (1 - gamma)",
-            "hints": {"concave": True},
-            "horizon": {"periods": 8, "terminal_value": "2 * (1 + a)**(1 - gamma) / (1 - gamma)"},
-        },
-        "report": {"euler_errors": True, "cohort": {"start": {"a": 0, "y": 0}}},
-    }
-    if method is not None:
-        document["solver"] = {"method": method}
-    return document
-
-
 def test_shocks_and_params_by_age_the_rounds_agree_with_the_search_and_solve_the_euler_equation_better() -> None:
-    egm, searched = solve(saver("endogenous_grid")), solve(saver(None))
+    egm, searched = solve(aging_saver("endogenous_grid")), solve(aging_saver(None))
     # Both values are the fitted Bellman steps'.
     np.testing.assert_allclose(np.array(egm["value"]), np.array(searched["value"]), rtol=0, atol=1e-9)
     report = egm["diagnostics"]["continuous_choice"]["endogenous_grid"]

@@ -21,7 +21,8 @@ import pytest
 from pydantic import BaseModel, ValidationError
 
 from service.examples import example_names, load_example
-from tests._documents import grid_document, log_growth, machine_shop, two_peaks
+from tests._documents import aging_saver, grid_document, log_growth, machine_shop, two_peaks
+from tests._mixed_models import household_document
 from worker import solve
 from worker.report import PERCENTILES
 from worker.result_document import ResultDocument, result_json_schema
@@ -58,14 +59,12 @@ def _economy(**top_level: Any) -> dict[str, Any]:
     }
 
 
-def _glassblower(points: int, *, continuous: bool = False) -> dict[str, Any]:
+def _glassblower(points: int) -> dict[str, Any]:
     document = load_example("glassblower_life_cycle")
     document["model"]["states"]["savings"]["points"] = points
     # One define between the choice and the reward, the form Euler-equation errors need.
     document["model"]["reward"] = "spending**(1 - gamma) / (1 - gamma)"
     del document["model"]["define"]["left_behind"]
-    if continuous:
-        document["model"]["choices"]["savings_next"]["continuous"] = True
     document["report"] = {
         "cohort": document["report"]["cohort"],
         "simulation": dict(SIMULATION, periods=60),
@@ -94,9 +93,11 @@ def _tabular_taste_horizon() -> dict[str, Any]:
     return document
 
 
-def _glassblower_egm() -> dict[str, Any]:
-    document = _glassblower(12, continuous=True)
-    document["solver"] = {"method": "endogenous_grid"}
+def _aging_saver(method: str | None) -> dict[str, Any]:
+    """A continuous choice over a finite horizon: tests/_documents.aging_saver (its kernels are other tests' too),
+    with a simulation beside its cohort and Euler-equation errors."""
+    document = aging_saver(method)
+    document["report"]["simulation"] = dict(SIMULATION, periods=8)
     return document
 
 
@@ -128,15 +129,10 @@ def _leaving_grid() -> dict[str, Any]:
     return grid_document(model, discount=0.9)
 
 
-def _economy_with_work() -> dict[str, Any]:
-    """The households also choose whether to work (a menu) beside their continuous saving."""
-    document = _economy(report={"stationary": True, "simulation": SIMULATION, "euler_errors": True})
-    model = document["model"]
-    model["choices"] = {"work": {"values": [0.0, 1.0]}, **model["choices"]}
-    model["define"] = {"c": "(1 + r) * a + 0.2 + work * w * y - save"}
-    model["reward"] = "log(c) - 0.3 * work"
-    model["hints"] = {"concave": True}
-    return document
+def _saving_with_work() -> dict[str, Any]:
+    """Households choosing whether to work (a menu) beside their continuous saving: the work-or-not household of
+    tests/_mixed_models.py (its kernels are compiled for the tests of a continuous choice beside a discrete one)."""
+    return household_document({"concave": True}, stationary=True, simulation=SIMULATION, euler_errors=True)
 
 
 def _growth_two_states() -> dict[str, Any]:
@@ -157,11 +153,11 @@ def _two_chosen_states() -> dict[str, Any]:
 CASES: dict[str, Callable[[], dict[str, Any]]] = {
     **{f"example:{name}": (lambda name=name: load_example(name)) for name in example_names()},
     "grid horizon, hints, cohort, simulation, euler errors": lambda: _glassblower(20),
-    "continuous horizon": lambda: _glassblower(12, continuous=True),
+    "continuous horizon": lambda: _aging_saver(None),
     "tabular horizon": _tabular_horizon,
     "tabular taste shocks": _tabular_taste,
     "tabular taste shocks with a horizon": _tabular_taste_horizon,
-    "endogenous grid method with a horizon": _glassblower_egm,
+    "endogenous grid method with a horizon": lambda: _aging_saver("endogenous_grid"),
     "grid taste shocks": _grid_taste,
     "endogenous grid method": lambda: _economy(
         solver={"method": "endogenous_grid", "tolerance": 1e-8},
@@ -174,7 +170,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
             "tolerance": 1e-4,
         }
     ),
-    "continuous choice beside a discrete one": _economy_with_work,
+    "continuous choice beside a discrete one": _saving_with_work,
     "static choice": _static_choice,
     "euler errors with two states": _growth_two_states,
     "euler errors of two next_of choices": _two_chosen_states,

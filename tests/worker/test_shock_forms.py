@@ -31,7 +31,7 @@ def _household(reward: str, gamma: float, shock: dict[str, Any] | None = None) -
     return {
         "version": 1, "discount": 0.95, "solver": {"tolerance": 1e-9},
         "model": {
-            "kind": "grid", "params": {"gamma": gamma, "r": 0.02},
+            "kind": "grid", "params": {"r": 0.02, "gamma": gamma},
             "states": {"a": {"min": 0.0, "max": 10.0, "points": 30}},
             "shocks": {"y": shock or {"markov": {"values": [0.5, 1.5], "matrix": [[0.9, 0.1], [0.1, 0.9]]}}},
             "choices": {"save": {"next_of": "a"}},
