@@ -484,6 +484,11 @@ GRID = [
     ("model.shocks.demand.ar1.rho", -1.5, "model.shocks.demand.ar1.rho", "strictly between -1 and 1"),
     ("model.shocks.demand.ar1.sigma", 0, "model.shocks.demand.ar1.sigma", "must be positive"),
     ("model.shocks.demand.ar1.points", 1, "model.shocks.demand.ar1.points", "at least 2"),
+    # A chain is a dense matrix built at admission (an AR(1) of 20,000 points, or an iid of 20,000 values, held the
+    # API for minutes or took 3.2 GB before this cap): refused at once, naming the field.
+    ("model.shocks.demand.ar1.points", 2_001, "model.shocks.demand.ar1.points", "at most 2,000 values are accepted"),
+    ("model.shocks.demand.ar1.points", 10**6, "model.shocks.demand.ar1.points", "got 1,000,000"),
+    ("model.shocks.demand", {"iid": {"values": list(range(2_001)), "probs": [1 / 2_001] * 2_001}}, "model.shocks.demand.iid.values", "at most 2,000 values are accepted"),  # noqa: E501
     ("model.shocks.demand.ar1.width", 2.0, "model.shocks.demand.ar1.width", 'only with method "tauchen"'),
     ("model.shocks.demand.ar1.method", "hermite", "model.shocks.demand.ar1.method", '"rouwenhorst" or "tauchen"'),
     ("model.shocks.demand.ar1.mean", 800.0, "model.shocks.demand.transform", "overflows float64"),
@@ -706,10 +711,10 @@ def test_huge_grids_are_validated_without_being_built(monkeypatch: pytest.Monkey
         for name in names:
             monkeypatch.setattr(module, name, refuse)
     document = edit(plant(), "model.states.capacity.points", 10_000_000)
-    document = edit(document, "model.shocks.demand.ar1.points", 10_000_000)
+    document = edit(document, "model.shocks.demand.ar1.points", 2_000)  # a chain's most (MAX_CHAIN_POINTS)
     document = edit(document, "model.states.capacity.spacing", "uniform")
     document = edit(document, "model.states.capacity.exponent", DELETE)
-    assert parse_document(document).model.axis_sizes() == {"capacity": 10_000_000, "demand": 10_000_000}
+    assert parse_document(document).model.axis_sizes() == {"capacity": 10_000_000, "demand": 2_000}
 
 
 def test_packed_array_with_huge_shape_is_refused_before_decoding() -> None:

@@ -31,7 +31,7 @@ from worker.document._fields import (
     Vector,
     check,
 )
-from worker.document.limits import DEFAULT_WIDTH, MAX_ENTRIES, MAX_EXPRESSION_CHARS, MAX_POINTS
+from worker.document.limits import DEFAULT_WIDTH, MAX_CHAIN_POINTS, MAX_ENTRIES, MAX_EXPRESSION_CHARS
 from worker.errors import join_path
 
 _EXP_LIMIT = math.log(np.finfo(np.float64).max)
@@ -74,7 +74,7 @@ class AR1Spec(Part):
     ] = Field(default=None, description=(
         "Unconditional (long-run) standard deviation of y, as papers often quote it; the innovation's is then "
         "sigma = sd * sqrt(1 - rho**2). Give exactly one of sigma and sd."))
-    points: Points = Field(description=f"Number of chain values, 2 to {MAX_POINTS:,}.")
+    points: Points = Field(description=f"Number of chain values, 2 to {MAX_CHAIN_POINTS:,}.")
     method: Literal["rouwenhorst", "tauchen"] = Field(
         default="rouwenhorst",
         description=(
@@ -127,7 +127,8 @@ class AR1Spec(Part):
 class MarkovSpec(Part):
     """A finite Markov chain given explicitly."""
 
-    values: Vector = Field(description="The values the shock can take, strictly increasing.")
+    values: Vector = Field(description=f"The values the shock can take, strictly increasing; at most "
+                           f"{MAX_CHAIN_POINTS:,}.")
     matrix: Matrix = Field(
         description=(
             "matrix[i][j]: the probability that tomorrow's value is values[j] when today's is values[i]. "
@@ -203,7 +204,8 @@ Probabilities = Annotated[
 class IIDSpec(Part):
     """A shock drawn afresh each period, independently of its past, from a finite distribution."""
 
-    values: Vector = Field(description="The values the shock can take, strictly increasing.")
+    values: Vector = Field(description=f"The values the shock can take, strictly increasing; at most "
+                           f"{MAX_CHAIN_POINTS:,} for a shock drawn before the choice.")
     probs: Probabilities = Field(
         description=(
             "probs[i]: the probability of values[i]; non-negative, summing to 1 (within 1e-9). A shock drawn "
@@ -312,6 +314,11 @@ class ShockSpec(Part):
         if form and self.after_choice and self.iid is None:
             faults.append(fault("timing", 'a shock drawn after the choice must be an `iid` distribution '
                                 '(values and probs): a chain would link it to the next period\'s draw'))
+        if form and not self.after_choice and self.size > MAX_CHAIN_POINTS:
+            where = join_path("ar1", "points") if form == "ar1" else join_path(form, "values")
+            faults.append(fault(where, f"at most {MAX_CHAIN_POINTS:,} values are accepted for a shock drawn before "
+                                f"the choice (its chain is a dense {MAX_CHAIN_POINTS:,} by {MAX_CHAIN_POINTS:,} matrix "
+                                f"at most), got {self.size:,}"))
         if form == "iid" and self.iid.written and not self.after_choice:
             faults.append(fault(join_path("iid", "probs"), 'probabilities written as expressions need "timing": '
                                 '"after_choice" (a shock drawn before the choice is a point of the value function, '
