@@ -103,8 +103,12 @@ def draw_probabilities(
     per_draw = []
     for name, entries in zip(draws.names, draws.probs):
         with np.errstate(all="ignore"):
-            table = np.stack([np.broadcast_to(np.asarray(evaluate(e, env) if isinstance(e, Expression) else e,
-                                                         dtype=np.float64), shape) for e in entries])
+            if any(isinstance(e, Expression) for e in entries):
+                table = np.stack([np.broadcast_to(np.asarray(evaluate(e, env) if isinstance(e, Expression) else e,
+                                                             dtype=np.float64), shape) for e in entries])
+            else:  # numbers only: one broadcast, not one per value (20,000 values made it most of a fill)
+                table = np.broadcast_to(np.asarray(entries, dtype=np.float64).reshape(-1, 1, 1),
+                                        (len(entries), *shape))
         total = table.sum(axis=0)
         # An expression that should give 0 may round to -1e-17: that much below 0 counts as 0.
         wrong = feasible & ~(np.isfinite(table).all(axis=0) & (table >= -ROW_SUM_TOLERANCE).all(axis=0)

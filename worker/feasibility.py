@@ -271,17 +271,23 @@ def _with_draws(
         draws, env, shape, feasible,
         lambda r, c: f"{data.describe_state(int(rows[r]))} with {data.describe_choice(int(columns[c]))}",
     )
-    reward = np.zeros(shape)
-    next_values = [np.empty((draws.size, *shape)) for _ in data.source.next]
-    for k in range(draws.size):
-        env.update(draws.combination(k))
-        for name, expr in data.source.defines:
-            if name in draws.dependent:
-                env[name] = evaluate(expr, env)
-        # A draw that cannot happen adds nothing, whatever its reward (0 · inf would be NaN).
-        reward += np.where(probs[k] > 0, probs[k] * evaluate(data.source.reward, env), 0.0)
-        for values, (_, expr) in zip(next_values, data.source.next):
-            values[k] = evaluate(expr, env)
+    # Every combination at once, along a leading axis: one evaluation of each expression per block.  One per
+    # combination cost a block's Python overhead each time, and blocks shrink as the draws grow (a block holds
+    # every draw of its rows), so the fill grew as the square of the draws: 1.2 s at 2,000 draws of a reward-only
+    # draw, 72 s at 20,000 (measured 2026-12-05).
+    size = draws.size
+    combination = np.unravel_index(np.arange(size), [v.size for v in draws.values])
+    env.update({name: v[index].reshape(size, 1, 1)
+                for name, v, index in zip(draws.names, draws.values, combination)})
+    for name, expr in data.source.defines:
+        if name in draws.dependent:
+            env[name] = evaluate(expr, env)
+    # A draw that cannot happen adds nothing, whatever its reward (0 · inf would be NaN).  The sum runs along the
+    # leading axis in order, as the loop over combinations added them.
+    terms = np.where(probs > 0, probs * np.broadcast_to(evaluate(data.source.reward, env), (size, *shape)), 0.0)
+    reward = np.add.reduce(terms, axis=0)
+    next_values = [np.array(np.broadcast_to(evaluate(expr, env), (size, *shape)), dtype=np.float64)
+                   for _, expr in data.source.next]
     return _Evaluated(feasible, reward, next_values, probs)
 
 

@@ -36,6 +36,7 @@ from worker.costs import (
     policy_matrix_bytes,
     report_seconds,
 )
+from worker.drawnames import draw_count
 from worker.taste import SMOOTHED_PAIR_NS
 from worker.threadpool import THREAD_MIN_STEP_POINTS, threads_for
 
@@ -61,26 +62,31 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     evaluation_speedup = speedup if plan.n >= THREAD_MIN_STEP_POINTS else 1.0
     entries = plan.n * plan.nodes * plan.shocks  # a policy's matrix: one evaluation step, one expectation
     draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
-    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+    # The fill evaluates every pair at every draw, whether or not tomorrow's state moves with it
+    # (worker.feasibility); without an interpolated state the draws leave no node sets to the steps.
+    filled = max(draw_count(model), 1)
+    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if filled > 1 else 0.0)
     # Draws after the choice with an interpolated state and no static choice: a compiled fill and draw steps.
     draw_kernel = draws > 1 and plan.interpolated and plan.table_entries == plan.pairs
     if plan.reward_storage == "tables":
         per_pair = DRAW_FILL_NS if draw_kernel else NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
-        setup += plan.pairs * per_pair * draws / speedup
-        filled = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
+        setup += plan.pairs * per_pair * filled / speedup
+        fill = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
+        if filled > 1:
+            fill += f" at each of {filled:,} draws after the choice"
         if plan.table_entries < plan.pairs:
             # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
-            setup += (evaluated * POINT_NS - plan.pairs * per_pair * draws) / speedup
-            filled = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
+            setup += (evaluated * POINT_NS - plan.pairs * per_pair * filled) / speedup
+            fill = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
         from worker.document.horizon import varies_by_period  # here: worker.document reads the estimate's limits
 
         if model.horizon is not None and varies_by_period(model):
-            fixed = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if draws > 1 else 0.0)
+            fixed = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if filled > 1 else 0.0)
             setup = fixed + (setup - fixed) * model.horizon.periods  # refilled every period (worker.period_tables)
         step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
         step_total = steps * step
-        how = f"{filled}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
+        how = f"{fill}, then table scans ({TABLE_READ_NS:g} ns per entry, {plan.table_entries:,} entries)"
     else:
         setup += plan.n * FEASIBILITY_COLUMNS * NUMPY_PAIR_NS  # the feasibility scan's first passes
         blocks = 2 * max(1, math.ceil(math.log2(max(plan.choices / 16, 1.0)))) + 10
