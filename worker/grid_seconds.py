@@ -64,25 +64,25 @@ def grid_seconds(doc: Any, plan: Any, steps: int, evaluation_steps: int) -> tupl
     draws = plan.nodes >> plan.interpolated  # node sets per entry: one per draw after the choice
     # The fill evaluates every pair at every draw, whether or not tomorrow's state moves with it
     # (worker.feasibility); without an interpolated state the draws leave no node sets to the steps.
-    filled = max(draw_count(model), 1)
-    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if filled > 1 else 0.0)
+    fill_draws = max(draw_count(model), 1)
+    setup = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if fill_draws > 1 else 0.0)
     # Draws after the choice with an interpolated state and no static choice: a compiled fill and draw steps.
     draw_kernel = draws > 1 and plan.interpolated and plan.table_entries == plan.pairs
     if plan.reward_storage == "tables":
         per_pair = DRAW_FILL_NS if draw_kernel else NUMPY_PAIR_NS + INTERPOLATED_PAIR_NS * plan.interpolated
-        setup += plan.pairs * per_pair * filled / speedup
+        setup += plan.pairs * per_pair * fill_draws / speedup
         fill = f"evaluating {plan.pairs:,} pairs once with numpy ({per_pair:g} ns each)"
-        if filled > 1:
-            fill += f" at each of {filled:,} draws after the choice"
+        if fill_draws > 1:
+            fill += f" at each of {fill_draws:,} draws after the choice"
         if plan.table_entries < plan.pairs:
             # Static choices maximised out in compiled code: every pair, or a climb of a few per entry.
             evaluated = STATIC_CLIMB_POINTS * plan.table_entries if plan.static_concave else plan.pairs
-            setup += (evaluated * POINT_NS - plan.pairs * per_pair * filled) / speedup
+            setup += (evaluated * POINT_NS - plan.pairs * per_pair * fill_draws) / speedup
             fill = f"evaluating about {evaluated:,} pairs once in compiled code ({POINT_NS:g} ns each)"
         from worker.document.horizon import varies_by_period  # here: worker.document reads the estimate's limits
 
         if model.horizon is not None and varies_by_period(model):
-            fixed = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if filled > 1 else 0.0)
+            fixed = GRID_FIXED_S * 1e9 + (DRAWS_FIXED_S * 1e9 if fill_draws > 1 else 0.0)
             setup = fixed + (setup - fixed) * model.horizon.periods  # refilled every period (worker.period_tables)
         step = draws * plan.table_entries * (SMOOTHED_PAIR_NS if model.taste_shocks is not None else TABLE_READ_NS)
         step_total = steps * step

@@ -418,6 +418,15 @@ EXPONENTIAL_REWARD = "-0.01 * exp(lam * (k_next - p)) + lin * k_next"
 """A reward falling steeply past ``p`` (rate ``lam``) beside a linear one (slope ``lin``)."""
 
 
+def _exponential_case(params: dict[str, float], nodes: list[float]) -> tuple[Any, np.ndarray, Any]:
+    """The six-point model with ``EXPONENTIAL_REWARD`` at ``params`` (its proof written), the value ``nodes`` at
+    every shock point, and the continuation's first row as scipy's PCHIP."""
+    _, problem = compile_document(_six_points(params, EXPONENTIAL_REWARD))
+    assert problem.bound_proof
+    v = np.ascontiguousarray(np.repeat(np.asarray(nodes, dtype=np.float64), problem.model_data.n_shocks))
+    return problem, v, _pchip_rows(problem, v)[0]
+
+
 def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not_proven() -> None:
     """Invented: a linear reward and a continuation with a step, whose cubic piece rises above the hull of the
     nodes inside its interval; the better choice is there, every node's value is below the incumbent's (a local
@@ -427,11 +436,8 @@ def test_cubic_a_better_choice_inside_a_far_interval_above_the_nodes_hull_is_not
 
     # The reward -0.01 - 1.563 k_next, written as the next test's with its exponential switched off (lam = 0), so
     # that the two tests compile the same kernels.
-    _, problem = compile_document(_six_points({"lam": 0.0, "p": 0.0, "lin": -1.563}, EXPONENTIAL_REWARD))
-    assert problem.bound_proof
-    nodes = np.array([0.0, 0.46, 0.624, 0.786, 1.5, 1.5])  # found by a random search for this shape
-    v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
-    row = _pchip_rows(problem, v)[0]
+    nodes = [0.0, 0.46, 0.624, 0.786, 1.5, 1.5]  # found by a random search for this shape
+    problem, v, row = _exponential_case({"lam": 0.0, "p": 0.0, "lin": -1.563}, nodes)
 
     def objective(x: Any) -> Any:
         return -0.01 - 1.563 * x + 0.9 * row(x)
@@ -455,11 +461,8 @@ def test_cubic_a_rise_of_the_continuation_inside_the_incumbents_interval_is_not_
     case where only the mid piece's ``W'`` term sees the better choice was not found by a random search.)"""
     from scipy.optimize import minimize_scalar
 
-    _, problem = compile_document(_six_points({"lam": 54.48, "p": 0.61, "lin": -0.182}, EXPONENTIAL_REWARD))
-    assert problem.bound_proof
-    nodes = np.array([0.0, 0.1045, 0.2195, 0.2694, 0.4012, 0.4105])  # found by a random search for this shape
-    v = np.ascontiguousarray(np.repeat(nodes, problem.model_data.n_shocks))
-    row = _pchip_rows(problem, v)[0]
+    nodes = [0.0, 0.1045, 0.2195, 0.2694, 0.4012, 0.4105]  # found by a random search for this shape
+    problem, v, row = _exponential_case({"lam": 54.48, "p": 0.61, "lin": -0.182}, nodes)
 
     def objective(x: Any) -> Any:
         return -0.01 * np.exp(54.48 * (x - 0.61)) - 0.182 * x + 0.9 * row(x)

@@ -164,6 +164,22 @@ def test_a_chain_with_two_closed_classes_gives_none() -> None:
     assert "lu" not in keep
 
 
+def _spied_lus(monkeypatch: pytest.MonkeyPatch) -> list[tuple[str, int]]:
+    """Every sparse LU made from here on, as ``(column ordering, entries of its factors)``."""
+    import scipy.sparse.linalg
+
+    factorise = scipy.sparse.linalg.splu
+    lus: list[tuple[str, int]] = []
+
+    def spy(A: Any, *args: Any, **kwargs: Any) -> Any:
+        factor = factorise(A, *args, **kwargs)
+        lus.append((kwargs.get("permc_spec", "COLAMD"), int(factor.nnz)))
+        return factor
+
+    monkeypatch.setattr(scipy.sparse.linalg, "splu", spy)
+    return lus
+
+
 def _random_chain(n: int, successors: int, seed: int) -> sp.csr_matrix:
     """A chain whose every state moves to ``successors`` states drawn at random: no band, no envelope."""
     rng = np.random.default_rng(seed)
@@ -177,22 +193,14 @@ def test_above_the_direct_cap_no_lu_of_unbounded_fill_is_made(monkeypatch: pytes
     # A random chain of 10,000 states: SuperLU's own ordering filled its LU past a job's memory limit after 19 s
     # (5,000 states: 13 million entries, 2.9 s; measured) when chains of up to 20,000 states took it.  Above
     # worker.report.DIRECT_MAX_STATES only an LU in the states' own order within its envelope's bound is made.
-    import scipy.sparse.linalg
     from scipy.sparse.linalg import eigs
 
     from worker.search_trials import trial_distribution
 
     matrix = _random_chain(10_000, 5, 31)
-    made: list[str] = []
-    factorise = scipy.sparse.linalg.splu
-
-    def spy(A: Any, *args: Any, **kwargs: Any) -> Any:
-        made.append(kwargs.get("permc_spec", "COLAMD"))
-        return factorise(A, *args, **kwargs)
-
-    monkeypatch.setattr(scipy.sparse.linalg, "splu", spy)
+    lus = _spied_lus(monkeypatch)
     pi, info = long_run_distribution(matrix)
-    assert made == [] and info["method"] in ("power", "gmres") and info["residual"] <= 1e-10
+    assert lus == [] and info["method"] in ("power", "gmres") and info["residual"] <= 1e-10
     # Independent: ARPACK's eigenvector of Pᵀ for its largest eigenvalue, 1 (Perron–Frobenius).
     values, vectors = eigs(matrix.T, k=1, which="LM", tol=1e-14)
     assert abs(values[0] - 1.0) < 1e-10
@@ -202,7 +210,7 @@ def test_above_the_direct_cap_no_lu_of_unbounded_fill_is_made(monkeypatch: pytes
     for previous in (None, pi):
         pi_trial, _ = trial_distribution(matrix, previous, {})
         np.testing.assert_allclose(pi_trial, expected, rtol=0, atol=1e-12)
-    assert made == []
+    assert lus == []
     # A banded chain above the cap gets its LU in the states' own order, kept for the next trial's refinement
     # (steps of up to three states either way, of equal weight both ways: no well where the mass could hide).
     rng = np.random.default_rng(32)
@@ -214,11 +222,11 @@ def test_above_the_direct_cap_no_lu_of_unbounded_fill_is_made(monkeypatch: pytes
     banded = sp.csr_matrix((np.tile(weights / weights.sum(), 2_500), (rows, columns)), shape=(2_500, 2_500))
     factors: dict[str, Any] = {}
     pi_trial, info = trial_distribution(banded, None, factors)
-    assert made == ["NATURAL"] and info["method"] == "direct" and factors["n"] == 2_500
+    assert [o for o, _ in lus] == ["NATURAL"] and info["method"] == "direct" and factors["n"] == 2_500
     np.testing.assert_allclose(pi_trial, long_run_distribution(banded)[0], rtol=0, atol=1e-12)
     trial_distribution(banded, pi_trial, factors)  # pinned at the heaviest state of the last trial's answer
     pi_again, info = trial_distribution(banded, pi_trial, factors)  # pinned there again: refined with the kept LU
-    assert info["method"] == "refined" and set(made) == {"NATURAL"}
+    assert info["method"] == "refined" and {o for o, _ in lus} == {"NATURAL"}
     np.testing.assert_allclose(pi_again, pi_trial, rtol=0, atol=1e-12)
 
 
@@ -227,7 +235,6 @@ def test_the_estimate_sizes_the_stationary_lu_a_grid_chain_makes(monkeypatch: py
     # Python's memory does not see) of a growth chain above the direct cap: never below it.  A share of n² leans
     # high for a policy that moves a few grid points a period, as here (measured 4.2 times the LU made), and
     # 1.05-1.8 times it on the savings chains of bench/bench_aiyagari.py (3,500-28,000 states).
-    import scipy.sparse.linalg
 
     from tests._documents import GROWTH, grid_document
     from worker import costs
@@ -237,17 +244,10 @@ def test_the_estimate_sizes_the_stationary_lu_a_grid_chain_makes(monkeypatch: py
 
     model = {**GROWTH, "states": {"k": {**GROWTH["states"]["k"], "points": 1_000}}}
     raw = {**grid_document(model, hints={"monotone": True, "concave": True}), "report": {"stationary": True}}
-    made: list[int] = []
-    factorise = scipy.sparse.linalg.splu
-
-    def spy(A: Any, *args: Any, **kwargs: Any) -> Any:
-        factor = factorise(A, *args, **kwargs)
-        made.append(int(factor.nnz))
-        return factor
-
-    monkeypatch.setattr(scipy.sparse.linalg, "splu", spy)
+    lus = _spied_lus(monkeypatch)
     result = solve(raw)
-    assert len(made) == 1 and result["stationary"]["method"] == "direct"
+    assert len(lus) == 1 and result["stationary"]["method"] == "direct"
+    made = [entries for _, entries in lus]
     n = 1_000 * 3
     sized = costs.stationary_lu_entries(n, n * 3)  # a grid-restricted choice: one node for each of 3 shocks
     assert made[0] <= sized <= 5 * made[0], (made[0], sized)
