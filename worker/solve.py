@@ -22,6 +22,7 @@ import numpy as np
 
 from worker.allocator import keep_freed_memory
 from worker.axis_order import apply_axis_order, model_axis_order, to_internal
+from worker.coarse_start import coarse_start, left_after
 from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
@@ -200,13 +201,14 @@ def _solve(
     if doc.model.horizon is not None:
         return _solve_horizon(doc, problem, warm_start, on_progress, checkpoint, should_stop,
                               time_limit(spec.time_limit_s, max_seconds))
-    initial = _initial_values(doc, problem, warm_start)
+    limit = time_limit(spec.time_limit_s, max_seconds)
+    initial, coarse = _start(doc, problem, cap, warm_start, checkpoint, should_stop, limit)
     outcome = METHODS[spec.method](
         problem,
         initial,
         tolerance=spec.tolerance,
         max_iterations=spec.max_iterations,
-        time_limit_s=time_limit(spec.time_limit_s, max_seconds),
+        time_limit_s=left_after(limit, coarse),
         checkpoint_s=spec.checkpoint_s,
         evaluation_steps=spec.evaluation_steps,
         on_progress=on_progress,
@@ -214,7 +216,7 @@ def _solve(
         should_stop=should_stop,
         fingerprint="" if checkpoint is None else _fingerprint(doc),
     )
-    return _result(doc, problem, outcome)
+    return _result(doc, problem, outcome, coarse=coarse)
 
 
 def _search(
@@ -237,7 +239,9 @@ def _search(
     def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float, problem: CompiledProblem | None = None,
               trust_hints: bool = False) -> tuple[CompiledProblem, SolveOutcome]:
         problem = _compile(trial_doc, cap) if problem is None else problem  # given: compiled, its params swapped
-        start = _initial_values(trial_doc, problem, warm_start) if initial is None else initial
+        left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
+        start = initial if initial is not None else _start(trial_doc, problem, cap, warm_start, None, should_stop,
+                                                           left)[0]
         spec = trial_doc.solver
         left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
         extra = {"trust_hints": True} if trust_hints else {}
@@ -315,6 +319,15 @@ def _fingerprint(doc: Any) -> str:
     return digest.hexdigest()
 
 
+def _start(doc: Any, problem: CompiledProblem, cap: dict[str, int], warm_start: dict[str, Any] | None,
+           checkpoint: Checkpoint | None, should_stop: Callable[[], bool] | None,
+           limit: float | None) -> tuple[np.ndarray, dict[str, Any] | None]:
+    """The solve's starting values and ``diagnostics.coarse_start`` (:func:`worker.coarse_start.coarse_start`),
+    else ``solver.initial``'s and None."""
+    found = coarse_start(doc, problem, cap, checkpoint, should_stop, limit)
+    return found if found is not None else (_initial_values(doc, problem, warm_start), None)
+
+
 def _initial_values(doc: Any, problem: CompiledProblem, warm_start: dict[str, Any] | None) -> np.ndarray:
     """(n,) float64 starting values from ``solver.initial``."""
     from worker.document import InitialJob, InitialValues
@@ -366,7 +379,8 @@ def _warm_values(warm_start: dict[str, Any], problem: CompiledProblem, path: str
 
 
 def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
-            distribution: tuple[np.ndarray, dict[str, Any]] | None = None) -> dict[str, Any]:
+            distribution: tuple[np.ndarray, dict[str, Any]] | None = None, *,
+            coarse: dict[str, Any] | None = None) -> dict[str, Any]:
     taste, probabilities = _taste_shocks(doc, problem, outcome)
     policy, policy_index = problem.describe_policy(outcome.policy)
     problem_diagnostics = _plain(problem.diagnostics(outcome.policy))
@@ -396,6 +410,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
         "verification": outcome.verification,
         "bracket": dict(outcome.bracket),
         "log_dropped": dropped(outcome.log),
+        **({} if coarse is None else {"coarse_start": coarse}),
     }
     head = _plain(
         {
@@ -405,7 +420,7 @@ def _result(doc: Any, problem: CompiledProblem, outcome: SolveOutcome,
             "iterations": outcome.iterations,
             "evaluation_steps": outcome.evaluation_steps,
             "linear_solves": outcome.linear_solves,
-            "seconds": outcome.seconds,
+            "seconds": outcome.seconds + (0.0 if coarse is None else coarse["seconds"]),
             "axes": problem.axes,
         }
     )

@@ -24,6 +24,7 @@ from service.examples import example_names, load_example
 from tests._documents import aging_saver, grid_document, log_growth, machine_shop, two_peaks
 from tests._mixed_models import household_document
 from worker import solve
+from worker.coarse_start import COARSE_MIN_POINTS
 from worker.report import PERCENTILES
 from worker.result_document import ResultDocument, result_json_schema
 from worker.result_document.reports import SeriesSummary
@@ -101,6 +102,13 @@ def _aging_saver(method: str | None) -> dict[str, Any]:
     return document
 
 
+def _coarse_start() -> dict[str, Any]:
+    """The economy on a grid large enough for a coarse start (worker.coarse_start), from zeros."""
+    document = _economy()
+    document["model"]["states"]["a"]["points"] = COARSE_MIN_POINTS
+    return document
+
+
 def _grid_taste() -> dict[str, Any]:
     document = load_example("courier_van_replacement")
     document["report"] = {"stationary": True, "simulation": SIMULATION, "euler_errors": True}
@@ -170,6 +178,7 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
             "tolerance": 1e-4,
         }
     ),
+    "coarse start": _coarse_start,
     "continuous choice beside a discrete one": _saving_with_work,
     "static choice": _static_choice,
     "euler errors with two states": _growth_two_states,

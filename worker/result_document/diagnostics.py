@@ -12,6 +12,7 @@ from typing import Literal, Union
 
 from pydantic import Field
 
+from worker.coarse_start import COARSE_MIN_POINTS, COARSE_SHARE
 from worker.result_document._types import NestedOptionalNumbers, NumberOrLabel, Reported, absent_unless
 from worker.solvers.loop import LOCAL_PHASES
 from worker.solvers.outcome import RATE_WINDOW, ROUNDING_ULPS
@@ -126,6 +127,17 @@ class ClampedNext(Reported):
         description="The same over every allowed (state, choice) pair; null when there were too many to count."
     )
     note: str = absent_unless(description="Why all_pairs is null; absent otherwise.")
+
+
+class CoarseStart(Reported):
+    """A solve from zeros on fine state grids that began from the same model solved on coarser grids (see
+    README.md's "Continuous choices")."""
+
+    points: dict[str, int] = Field(description="The first coarse level's grid points, per state coarsened.")
+    levels: int = Field(description=f"Coarse levels solved, each on one in {COARSE_SHARE} of the points of the one "
+                        "above.")
+    iterations: int = Field(description="Iterations of every coarse level together (not in the result's iterations).")
+    seconds: float = Field(description="Time of the coarse levels (included in the result's seconds).")
 
 
 class PairExample(Reported):
@@ -382,3 +394,7 @@ class Diagnostics(Reported):
         description="With report.euler_errors, where the model has the form they need (notes say why not otherwise)."
     )
     horizon: HorizonDiagnostics = absent_unless(description="With model.horizon.")
+    coarse_start: CoarseStart = absent_unless(
+        description=f"A solve from zeros of a model with a continuous choice and a state grid of {COARSE_MIN_POINTS} "
+        "points or more."
+    )
