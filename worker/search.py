@@ -174,10 +174,15 @@ def run_search(
                         certified=False)  # a replayed row has no solution to return: solved again at the end
             return row["residuals"]
         started = time.perf_counter()
-        trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
-                                                              certify)
+        try:
+            trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")),
+                                                                  tolerance, certify)
+        except InvalidDocument as exc:
+            # The document held at its own values; name the trial's, or the fault reads as the document's.
+            raise _at_trial(exc, names, xs, spec) from None
         pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
-        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
+        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k),
+                               _point(names, xs))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-START_POINTS]
@@ -351,8 +356,25 @@ def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], doc
                   max_nfev=spec.max_trials)
 
 
+def _point(names: list[str], xs: tuple[float, ...]) -> str:
+    """The unknowns' values of a trial, as messages give them."""
+    return ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, xs))
+
+
+def _at_trial(exc: InvalidDocument, names: list[str], xs: tuple[float, ...], spec: Any) -> InvalidDocument:
+    """``exc`` (raised by a trial's validation or solve) with the trial's values in its messages, after a fault
+    at each unknown saying the model cannot be solved there (the same class: an infeasible model stays one)."""
+    point = _point(names, xs)
+    heads = [{"path": join_path("search.unknowns", name), "message": (
+        f"the model cannot be solved at the search's trial {point}, inside the bracket [{spec.unknowns[name].min:.10g},"
+        f" {spec.unknowns[name].max:.10g}] (the faults below are at that trial); narrow the bracket to values where "
+        "it can")} for name in names]
+    errors = heads + [{**e, "message": f"at the search's trial {point}: {e['message']}"} for e in exc.errors]
+    return type(exc)(errors, **exc.context)
+
+
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
-              where: str) -> float:
+              where: str, point: str = "") -> float:
     env = point_env(doc, problem, policy)
     for aggregate in condition.aggregates.values():
         missing = sorted(aggregate.argument.names - env.keys())
@@ -361,7 +383,15 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
                                      + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
     values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
     scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
-    return float(evaluate(condition.outer, {**scalars, **values}))
+    residual = float(evaluate(condition.outer, {**scalars, **values}))
+    if not np.isfinite(residual):
+        # Refused: no root finder can use it, and a NaN compares as neither sign (the steps went to NaN).
+        bad = [f"{a.kind}({a.argument.text}{'' if a.q is None else f', {a.q:g}'}) is {float(values[key]):g}"
+               for key, a in condition.aggregates.items() if not np.isfinite(values[key])]
+        raise InvalidDocument.at(where, f"`{condition.text}` is {residual:g} at the search's trial {point}"
+                                 + (f" ({'; '.join(bad)})" if bad else "") + ": a condition must be a finite number "
+                                 "throughout the bracket; narrow the bracket or change the condition")
+    return residual
 
 
 def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
@@ -391,7 +421,7 @@ def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: 
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
                "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
                "solver.tolerance, or loosen search.tolerance)")
-    point = ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, last["xs"]))
+    point = _point(names, last["xs"])
     where = " search.sign_change gives the closest values on either side of zero." if len(names) == 1 else ""
     return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {point} the largest "
             f"residual is {residual:.6g} after {len(trials)} trials; {why}.{where}")

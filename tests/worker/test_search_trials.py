@@ -20,6 +20,7 @@ import pytest
 from scipy.optimize import brentq
 
 import worker.search_trials as search_trials
+from worker.errors import InvalidDocument
 from worker.search_outer import NoRoot, estimate_root, find_root
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
@@ -444,3 +445,48 @@ def test_a_search_factorises_a_banded_chain_in_the_states_order_and_a_scrambled_
     finally:
         stationary_lu.NATURAL_FILL = original
     assert factors["ordering"] == "COLAMD"
+
+
+def test_a_condition_not_finite_at_a_trial_is_refused_naming_the_trial_and_never_tried_at_nan(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # The condition is NaN below r = 0.01 (sqrt of a negative number); the document starts the search at
+    # 0.005, inside the bracket and where the document itself is fine.  Before: the model step through two NaN
+    # residuals was NaN, the third trial was made at r = nan, and the job failed at model.params.capital_demand.
+    tried: list[float] = []
+    solve_trial = search_trials.TrialModels.solve
+
+    def spy(self: Any, xs: tuple[float, ...], *args: Any, **kwargs: Any) -> Any:
+        tried.append(xs[0])
+        return solve_trial(self, xs, *args, **kwargs)
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", spy)
+    document = _search_document()
+    document["model"]["params"]["r"] = 0.005
+    document["search"] = {**MARKET, "conditions": ["mean(a) - capital_demand + 0 * sqrt(r - 0.01)"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert tried == [0.005], tried
+    (fault,) = caught.value.errors
+    assert fault["path"] == "search.conditions[0]"
+    assert "is nan at the search's trial r = 0.005" in fault["message"], fault
+    # An aggregate that is not finite is named: log(0) at the borrowing limit, where the distribution has mass.
+    document["model"]["params"]["r"] = 0.02
+    document["search"] = {**MARKET, "conditions": ["mean(log(a)) - 1"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert "mean(log(a)) is -inf" in caught.value.errors[0]["message"], caught.value.errors
+
+
+def test_a_trial_the_model_cannot_be_solved_at_is_named_beside_the_models_fault() -> None:
+    # A careless bracket: r = -0.1 makes r + delta negative and capital demand NaN.  The condition has no root
+    # (mean assets never reach 200), so the end is solved.  Before: the only fault was at
+    # model.params.capital_demand, with nothing saying that the document's own r (0.02) was fine.
+    document = _search_document()
+    document["search"] = {**MARKET, "unknowns": {"r": {"min": -0.1, "max": 0.05}}, "conditions": ["mean(a) - 200"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    first, second = caught.value.errors
+    assert first["path"] == "search.unknowns.r" and "trial r = -0.1," in first["message"], first
+    assert "[-0.1, 0.05]" in first["message"]
+    assert second["path"] == "model.params.capital_demand", second
+    assert second["message"].startswith("at the search's trial r = -0.1: "), second
