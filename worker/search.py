@@ -222,7 +222,9 @@ def run_search(
         if xs in known:
             return known[xs]
         tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
-        certify = mode["certify"]
+        # The last trial the budget allows is a certifying one: the result is built from one only, and a guiding
+        # last trial would take a solve past search.max_trials to certify it.
+        certify = mode["certify"] or len(trials) >= spec.max_trials - 1
         values = at(xs, final_tolerance if certify else tolerance, certify=certify)
         if last["status"] != "converged":
             raise _InnerStopped

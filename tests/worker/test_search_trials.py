@@ -490,3 +490,21 @@ def test_a_trial_the_model_cannot_be_solved_at_is_named_beside_the_models_fault(
     assert "[-0.1, 0.05]" in first["message"]
     assert second["path"] == "model.params.capital_demand", second
     assert second["message"].startswith("at the search's trial r = -0.1: "), second
+
+
+@pytest.mark.parametrize(("unknowns", "conditions", "budget"), [
+    ({"r": {"min": 0.0, "max": 0.05}}, ["mean(a) - capital_demand"], 3),
+    ({"r": {"min": 0.0, "max": 0.05}, "discount": {"min": 0.9, "max": 0.96}},
+     ["mean(a) - capital_demand", "sd(a) - 4"], 5),
+])
+def test_a_search_makes_at_most_max_trials_solves_the_last_a_certifying_one(
+        unknowns: dict[str, Any], conditions: list[str], budget: int) -> None:
+    # Before: the budget ran out on a guiding trial, which was then certified by one solve more (4 of 3, 6 of
+    # 5, 61 of the default 60).
+    document = _search_document()
+    document["search"] = {**MARKET, "unknowns": unknowns, "conditions": conditions, "max_trials": budget}
+    search = solve(document)["search"]
+    assert search["status"] == "max_trials"
+    assert len(search["trials"]) == budget, [row["certified"] for row in search["trials"]]
+    assert search["trials"][-1]["certified"]
+    assert search["residuals"] == search["trials"][-1]["residuals"]
