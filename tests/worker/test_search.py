@@ -519,3 +519,17 @@ def test_mass_at_the_top_of_a_short_grid_is_warned_unless_declared_a_real_limit(
     pi = np.asarray(result["stationary"]["distribution"])
     mean = float((pi * GRID[:, None]).sum())
     assert sd == pytest.approx(np.sqrt((pi * (GRID[:, None] - mean) ** 2).sum()), rel=1e-12)
+
+
+@pytest.mark.parametrize("condition", ["mean(income) - 1", "sd(e) - 1", "mass(pay > 1) - 0.5"])
+def test_a_condition_over_a_draw_after_the_choice_is_refused_before_any_solve(condition: str) -> None:
+    # `e` is drawn after the choice: it has no value at a point of the stationary distribution, nor has `pay`
+    # (a define of it) or `income` (a define of `pay`, listed first).  Before: a define of it passed validation
+    # and was refused only after the first trial's solve; the draw itself was called an unknown name.
+    document = _document({**MARKET, "conditions": [condition]})
+    model = document["model"]
+    model["shocks"]["e"] = {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}
+    model["define"] = {"income": "pay + 0", "pay": "w * y * e", **model["define"]}
+    faults = _faults(document)
+    assert any(f["path"] == "search.conditions[0]" and "draw revealed after the choice" in f["message"]
+               for f in faults), faults
