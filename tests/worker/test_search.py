@@ -533,3 +533,10 @@ def test_a_condition_over_a_draw_after_the_choice_is_refused_before_any_solve(co
     faults = _faults(document)
     assert any(f["path"] == "search.conditions[0]" and "draw revealed after the choice" in f["message"]
                for f in faults), faults
+
+
+def test_a_param_named_discount_is_refused_in_a_search_whose_conditions_would_read_the_discount_factor() -> None:
+    # Before: accepted, and `discount` in a condition was the document's 0.95, not the param's 0.5 that the
+    # model's own expressions read (mean(a) - 10 * discount was met at mean assets 9.5).
+    faults = _faults(_document({**MARKET, "conditions": ["mean(a) - 10 * discount"]}, discount=0.5))
+    assert any(f["path"] == "model.params.discount" and "another name" in f["message"] for f in faults), faults

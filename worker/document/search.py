@@ -72,6 +72,11 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
         return [fault("search", "a search with taste shocks is not supported yet: its aggregates would need the "
                       "stationary distribution of the random choice, not of one policy")]
     faults: list[Fault] = []
+    if DISCOUNT in model.params:
+        # A condition's `discount` is the document's discount factor: a param of that name was silently shadowed
+        # (mean(a) - 10 * discount met 10 x 0.95, not 10 x the param's 0.5).
+        faults.append(fault(join_path("model.params", DISCOUNT), "in a document with a search, `discount` names the "
+                            "discount factor (in conditions, and as an unknown): give this param another name"))
     if len(search.conditions) != len(search.unknowns):
         faults.append(fault("search.conditions", f"give one condition per unknown: {len(search.unknowns)} "
                             f"unknown(s), {len(search.conditions)} condition(s)"))
