@@ -540,3 +540,24 @@ def test_a_param_named_discount_is_refused_in_a_search_whose_conditions_would_re
     # model's own expressions read (mean(a) - 10 * discount was met at mean assets 9.5).
     faults = _faults(_document({**MARKET, "conditions": ["mean(a) - 10 * discount"]}, discount=0.5))
     assert any(f["path"] == "model.params.discount" and "another name" in f["message"] for f in faults), faults
+
+
+def test_an_aggregate_is_taken_over_the_points_with_mass_as_the_stationary_report_is() -> None:
+    # log(A_MAX - a) is -inf at the top of the grid, where at r = 0.03 the distribution has no mass.  Before:
+    # 0 x inf made mean and sd NaN (a search on them failed), while the stationary report gave finite values.
+    r = 0.03
+    doc, problem = compile_document(_document(r=r))
+    result = solve(_document(r=r))
+    _, chosen = problem.bellman_step(np.asarray(result["value"]).reshape(-1))
+    pi, _ = long_run_distribution(problem.policy_matrix(chosen))
+    env = point_env(doc, problem, chosen)
+    a = np.repeat(GRID, INCOME.size)
+    assert pi[a == A_MAX].sum() == 0.0 and pi[a < A_MAX].sum() > 0.99  # the case has teeth
+    held = pi > 0  # numpy over the support
+    logs = np.log(A_MAX - a[held])
+    mean = float(pi[held] @ logs)
+    expected = {"mean(log(30 - a))": mean, "sd(log(30 - a))": float(np.sqrt(pi[held] @ (logs - mean) ** 2)),
+                "quantile(log(30 - a), 0.5)": float(np.quantile(logs, 0.5, method="inverted_cdf", weights=pi[held]))}
+    for text, value in expected.items():
+        (aggregate,) = parse_condition(text, path="x").aggregates.values()
+        assert aggregate_value(aggregate, pi, env) == pytest.approx(value, rel=1e-12), text
