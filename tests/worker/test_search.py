@@ -561,3 +561,14 @@ def test_an_aggregate_is_taken_over_the_points_with_mass_as_the_stationary_repor
     for text, value in expected.items():
         (aggregate,) = parse_condition(text, path="x").aggregates.values()
         assert aggregate_value(aggregate, pi, env) == pytest.approx(value, rel=1e-12), text
+
+
+def test_a_quantile_target_not_met_is_explained_by_the_quantiles_steps_not_by_the_choice() -> None:
+    # The median of assets is always a grid point: with a continuous choice the search still ends not_met.
+    # Before: the warning said that a continuous choice makes aggregates move smoothly (this one has one).
+    result = solve(_document({**MARKET, "conditions": ["quantile(a, 0.5) - 3"]}))
+    search = result["search"]
+    assert search["status"] == "not_met" and abs(search["residuals"][0]) > 1e-6
+    assert min(abs(GRID - (search["residuals"][0] + 3))) <= 1e-12  # the median found is a grid point
+    (warning,) = [w for w in result["diagnostics"]["warnings"] if "did NOT meet" in w]
+    assert "moves in steps even with a continuous choice" in warning and "mass(x <= v)" in warning, warning
