@@ -278,8 +278,9 @@ def run_search(
     except _Met:
         pass
     except _InnerStopped:
-        # A solve ran out of time or iterations: the search stops there, and says so.
-        status = last["status"]
+        # A solve ran out of time or iterations: the search stops there, and says so (with the status of the
+        # solve the result is built from, below: a guiding trial's is solved again, and may stop otherwise).
+        status = "stopped"
     except RuntimeError:
         status = "max_trials"
     if not last["certified"]:
@@ -287,6 +288,8 @@ def run_search(
         # trial, from which alone the result is built (a solve that stopped stops again, after one step).
         replay.clear()
         at(last["xs"], final_tolerance, certify=True)
+    if status == "stopped":
+        status = last["status"] if last["status"] != "converged" else "converged"
     met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
            and last["certified"])
     if not met and status == "converged":

@@ -508,3 +508,27 @@ def test_a_search_makes_at_most_max_trials_solves_the_last_a_certifying_one(
     assert len(search["trials"]) == budget, [row["certified"] for row in search["trials"]]
     assert search["trials"][-1]["certified"]
     assert search["residuals"] == search["trials"][-1]["residuals"]
+
+
+def test_a_stopped_search_reports_the_status_of_the_solve_its_result_is_built_from(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # Measured at solver.tolerance 1e-13 with time_limit_s 20: a guiding trial ended at max_iterations, the
+    # certifying solve of its point (the result) at time_limit; search.status said max_iterations while the
+    # warning and the last row said time_limit.  Here the certifying solves are made to stop otherwise.
+    solve_trial = search_trials.TrialModels.solve
+
+    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
+        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify)
+        if certified:
+            outcome.status = "time_limit"
+        return doc, problem, outcome, certified
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", spy)
+    document = _search_document()
+    document["solver"]["max_iterations"] = 2
+    result = solve(document)
+    search = result["search"]
+    first, last = search["trials"]
+    assert first["inner_status"] == "max_iterations" and last["certified"]
+    assert search["status"] == last["inner_status"] == "time_limit", search["status"]
+    assert any("did NOT meet" in w and "time_limit" in w for w in result["diagnostics"]["warnings"])
