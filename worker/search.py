@@ -336,10 +336,20 @@ def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: s
         find_root(lambda x: residuals_at((x,))[0], bracket.min, bracket.max, _own(doc, name),
                   xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
     except NoRoot as ends:
-        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
-            f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} and "
-            f"{ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
-            "check the condition")}], trials=trials) from None
+        message = (f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} "
+                   f"and {ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the "
+                   "bracket or check the condition")
+        nearest = min(trials, key=lambda row: abs(row["residuals"][0]))
+        if abs(nearest["residuals"][0]) < min(abs(ends.low), abs(ends.high)):
+            # No sign change is not no root: a square or an abs touches zero without crossing it (the steps
+            # crept towards such a root, and the ends were then reported as if nothing lay between them).
+            message = (f"no sign change in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = "
+                       f"{bracket.min:.10g} and {ends.high:.10g} at {name} = {bracket.max:.10g}, and nearest zero "
+                       f"{nearest['residuals'][0]:.10g} at {name} = {nearest['unknowns'][name]:.10g}, with the same "
+                       "sign; a condition that touches zero without changing sign (a square, an abs) cannot be "
+                       "found: give it a sign (a - b, not (a - b) ** 2), or widen the bracket")
+        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": message}],
+                              trials=trials) from None
 
 
 def _own(doc: Any, name: str) -> float:

@@ -572,3 +572,18 @@ def test_a_quantile_target_not_met_is_explained_by_the_quantiles_steps_not_by_th
     assert min(abs(GRID - (search["residuals"][0] + 3))) <= 1e-12  # the median found is a grid point
     (warning,) = [w for w in result["diagnostics"]["warnings"] if "did NOT meet" in w]
     assert "moves in steps even with a continuous choice" in warning and "mass(x <= v)" in warning, warning
+
+
+def test_a_squared_condition_is_not_said_to_have_no_root() -> None:
+    # (mean(a) - capital_demand) ** 2 touches zero at the equilibrium without changing sign.  Before: "no root
+    # in the bracket", naming only the ends (75.2 and 52.6), after trials had crept to 8.9e-5 at r = 0.04229.
+    with pytest.raises(InvalidDocument) as caught:
+        solve(_document({**MARKET, "conditions": ["(mean(a) - capital_demand) ** 2"]}))
+    (error,) = caught.value.errors
+    assert error["path"] == "search.unknowns.r"
+    assert "no root" not in error["message"] and "no sign change" in error["message"], error
+    assert "give it a sign" in error["message"]
+    nearest = min(caught.value.context["trials"], key=lambda row: row["residuals"][0])
+    assert f"{nearest['residuals'][0]:.10g} at r = {nearest['unknowns']['r']:.10g}" in error["message"]
+    # The independent equilibrium (a bisection over the numpy household, the module's reference) is near it.
+    assert abs(nearest["unknowns"]["r"] - _bisect(_excess, 0.03, 0.05, width=1e-9)) < 1e-3
