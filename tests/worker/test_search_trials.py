@@ -517,8 +517,8 @@ def test_a_stopped_search_reports_the_status_of_the_solve_its_result_is_built_fr
     # warning and the last row said time_limit.  Here the certifying solves are made to stop otherwise.
     solve_trial = search_trials.TrialModels.solve
 
-    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
-        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify)
+    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
+        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify, **kwargs)
         if certified:
             outcome.status = "time_limit"
         return doc, problem, outcome, certified
@@ -532,3 +532,16 @@ def test_a_stopped_search_reports_the_status_of_the_solve_its_result_is_built_fr
     assert first["inner_status"] == "max_iterations" and last["certified"]
     assert search["status"] == last["inner_status"] == "time_limit", search["status"]
     assert any("did NOT meet" in w and "time_limit" in w for w in result["diagnostics"]["warnings"])
+
+
+def test_a_point_whose_solve_used_up_max_iterations_is_certified_in_one_more_iteration() -> None:
+    # Measured: a discount bracket reaching 0.998 (where solver.tolerance 1e-10 is below float64's reach) had a
+    # guiding trial run its 100,000 iterations (25 s), and the certifying solve of its point 100,000 more (24 s).
+    document = _search_document()
+    document["solver"]["max_iterations"] = 3
+    search = solve(document)["search"]
+    assert search["status"] == "max_iterations"
+    first, last = search["trials"]
+    assert first["unknowns"] == last["unknowns"] and not first["certified"] and last["certified"]
+    assert (first["iterations"], last["iterations"]) == (3, 1)
+    assert last["inner_status"] == "max_iterations" and math.isfinite(last["error_bound"])
