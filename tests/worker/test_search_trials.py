@@ -95,9 +95,9 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     original = search_trials.TrialModels.solve
     shifted: list[float] = []
 
-    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
+    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
         if certify:
-            return original(self, xs, start, tolerance, certify)
+            return original(self, xs, start, tolerance, certify, **kwargs)
         shifted.append(xs[0])
         return original(self, (xs[0] + 2e-4,), start, tolerance, certify)
 
