@@ -441,8 +441,8 @@ def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: 
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
                "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
                "solver.tolerance, or loosen search.tolerance)")
-    if any(a.kind == "quantile" for c in spec.conditions
-           for a in parse_condition(c, path="search.conditions").aggregates.values()):
+    if status == "not_met" and any(a.kind == "quantile" for c in spec.conditions
+                                   for a in parse_condition(c, path="search.conditions").aggregates.values()):
         # A continuous choice does not smooth these: the value at the quantile is one of x's values at the points.
         why += ("; quantile(x, q) is one of the values x takes at the grid's points, so it moves in steps even with a "
                 "continuous choice: target the mass below a value instead (mass(x <= v) - q), which moves smoothly")
