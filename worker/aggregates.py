@@ -118,6 +118,10 @@ def point_values(expr: Expression, env: dict[str, Any], n: int) -> np.ndarray:
 def aggregate_value(aggregate: Aggregate, pi: np.ndarray, env: dict[str, Any]) -> float:
     """The aggregate under the distribution ``pi`` (n,), with ``env`` holding every name its argument uses."""
     values = point_values(aggregate.argument, env, pi.size)
+    # Over the points with mass only, as the stationary report's means: an argument may be undefined where no
+    # one is (log(a) at a borrowing limit nobody reaches), and 0 x inf made the whole aggregate NaN.
+    held = pi > 0
+    values, pi = values[held], pi[held]
     if aggregate.kind == "mass":
         return float(pi @ (values != 0.0))
     mean = float(pi @ values)

@@ -165,8 +165,9 @@ def run_search(
 
     factors: dict[str, Any] = {}  # the last sparse LU of a trial's stationary distribution (trial_distribution)
 
-    def at(xs: tuple[float, ...], tolerance: float, certify: bool) -> list[float]:
-        """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`)."""
+    def at(xs: tuple[float, ...], tolerance: float, certify: bool, iterations: int | None = None) -> list[float]:
+        """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`);
+        ``iterations``: at most so many, instead of ``solver.max_iterations``."""
         if (xs, tolerance, certify) in replay:
             row = replay.pop((xs, tolerance, certify))
             trials.append(row)
@@ -174,10 +175,15 @@ def run_search(
                         certified=False)  # a replayed row has no solution to return: solved again at the end
             return row["residuals"]
         started = time.perf_counter()
-        trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
-                                                              certify)
+        try:
+            trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")),
+                                                                  tolerance, certify, iterations=iterations)
+        except InvalidDocument as exc:
+            # The document held at its own values; name the trial's, or the fault reads as the document's.
+            raise _at_trial(exc, names, xs, spec) from None
         pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
-        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
+        residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k),
+                               _point(names, xs))
                      for k, c in enumerate(conditions)]
         solved.append((xs, np.asarray(outcome.value, dtype=np.float64)))
         del solved[:-START_POINTS]
@@ -217,7 +223,9 @@ def run_search(
         if xs in known:
             return known[xs]
         tolerance = max(final_tolerance, final_tolerance * LOOSE_FACTOR * TIGHTEN ** len(trials))
-        certify = mode["certify"]
+        # The last trial the budget allows is a certifying one: the result is built from one only, and a guiding
+        # last trial would take a solve past search.max_trials to certify it.
+        certify = mode["certify"] or len(trials) >= spec.max_trials - 1
         values = at(xs, final_tolerance if certify else tolerance, certify=certify)
         if last["status"] != "converged":
             raise _InnerStopped
@@ -271,15 +279,22 @@ def run_search(
     except _Met:
         pass
     except _InnerStopped:
-        # A solve ran out of time or iterations: the search stops there, and says so.
-        status = last["status"]
+        # A solve ran out of time or iterations: the search stops there, and says so (with the status of the
+        # solve the result is built from, below: a guiding trial's is solved again, and may stop otherwise).
+        status = "stopped"
     except RuntimeError:
         status = "max_trials"
     if not last["certified"]:
         # A guiding last trial, or one answered from a checkpoint: the point is solved again by a certifying
-        # trial, from which alone the result is built (a solve that stopped stops again, after one step).
+        # trial, from which alone the result is built.  A solve that stopped stops again, after one step: from
+        # the stopped solve's value, with one iteration where it used up solver.max_iterations (it ran the whole
+        # budget again: 24 s more at a discount of 0.998, where 1e-10 is below float64's reach), with the time
+        # the search has left where it ran out of time.
         replay.clear()
-        at(last["xs"], final_tolerance, certify=True)
+        ran_out = status == "stopped" and last["status"] == "max_iterations"
+        at(last["xs"], final_tolerance, certify=True, iterations=1 if ran_out else None)
+    if status == "stopped":
+        status = last["status"] if last["status"] != "converged" else "converged"
     met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
            and last["certified"])
     if not met and status == "converged":
@@ -326,10 +341,20 @@ def _bracketed(residuals_at: Callable[[tuple[float, ...]], list[float]], name: s
         find_root(lambda x: residuals_at((x,))[0], bracket.min, bracket.max, _own(doc, name),
                   xtol=XTOL_SHARE * (bracket.max - bracket.min), maxiter=spec.max_trials)
     except NoRoot as ends:
-        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": (
-            f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} and "
-            f"{ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the bracket or "
-            "check the condition")}], trials=trials) from None
+        message = (f"no root in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = {bracket.min:.10g} "
+                   f"and {ends.high:.10g} at {name} = {bracket.max:.10g}, the same sign at both ends; widen the "
+                   "bracket or check the condition")
+        nearest = min(trials, key=lambda row: abs(row["residuals"][0]))
+        if abs(nearest["residuals"][0]) < min(abs(ends.low), abs(ends.high)):
+            # No sign change is not no root: a square or an abs touches zero without crossing it (the steps
+            # crept towards such a root, and the ends were then reported as if nothing lay between them).
+            message = (f"no sign change in the bracket: {spec.conditions[0]} is {ends.low:.10g} at {name} = "
+                       f"{bracket.min:.10g} and {ends.high:.10g} at {name} = {bracket.max:.10g}, and nearest zero "
+                       f"{nearest['residuals'][0]:.10g} at {name} = {nearest['unknowns'][name]:.10g}, with the same "
+                       "sign; a condition that touches zero without changing sign (a square, an abs) cannot be "
+                       "found: give it a sign (a - b, not (a - b) ** 2), or widen the bracket")
+        raise InvalidDocument([{"path": join_path("search.unknowns", name), "message": message}],
+                              trials=trials) from None
 
 
 def _own(doc: Any, name: str) -> float:
@@ -351,8 +376,25 @@ def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], doc
                   max_nfev=spec.max_trials)
 
 
+def _point(names: list[str], xs: tuple[float, ...]) -> str:
+    """The unknowns' values of a trial, as messages give them."""
+    return ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, xs))
+
+
+def _at_trial(exc: InvalidDocument, names: list[str], xs: tuple[float, ...], spec: Any) -> InvalidDocument:
+    """``exc`` (raised by a trial's validation or solve) with the trial's values in its messages, after a fault
+    at each unknown saying the model cannot be solved there (the same class: an infeasible model stays one)."""
+    point = _point(names, xs)
+    heads = [{"path": join_path("search.unknowns", name), "message": (
+        f"the model cannot be solved at the search's trial {point}, inside the bracket [{spec.unknowns[name].min:.10g},"
+        f" {spec.unknowns[name].max:.10g}] (the faults below are at that trial); narrow the bracket to values where "
+        "it can")} for name in names]
+    errors = heads + [{**e, "message": f"at the search's trial {point}: {e['message']}"} for e in exc.errors]
+    return type(exc)(errors, **exc.context)
+
+
 def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: np.ndarray, pi: np.ndarray,
-              where: str) -> float:
+              where: str, point: str = "") -> float:
     env = point_env(doc, problem, policy)
     for aggregate in condition.aggregates.values():
         missing = sorted(aggregate.argument.names - env.keys())
@@ -361,7 +403,15 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
                                      + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
     values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
     scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
-    return float(evaluate(condition.outer, {**scalars, **values}))
+    residual = float(evaluate(condition.outer, {**scalars, **values}))
+    if not np.isfinite(residual):
+        # Refused: no root finder can use it, and a NaN compares as neither sign (the steps went to NaN).
+        bad = [f"{a.kind}({a.argument.text}{'' if a.q is None else f', {a.q:g}'}) is {float(values[key]):g}"
+               for key, a in condition.aggregates.items() if not np.isfinite(values[key])]
+        raise InvalidDocument.at(where, f"`{condition.text}` is {residual:g} at the search's trial {point}"
+                                 + (f" ({'; '.join(bad)})" if bad else "") + ": a condition must be a finite number "
+                                 "throughout the bracket; narrow the bracket or change the condition")
+    return residual
 
 
 def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | None:
@@ -391,7 +441,12 @@ def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: 
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
                "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
                "solver.tolerance, or loosen search.tolerance)")
-    point = ", ".join(f"{name} = {x:.12g}" for name, x in zip(names, last["xs"]))
+    if status == "not_met" and any(a.kind == "quantile" for c in spec.conditions
+                                   for a in parse_condition(c, path="search.conditions").aggregates.values()):
+        # A continuous choice does not smooth these: the value at the quantile is one of x's values at the points.
+        why += ("; quantile(x, q) is one of the values x takes at the grid's points, so it moves in steps even with a "
+                "continuous choice: target the mass below a value instead (mass(x <= v) - q), which moves smoothly")
+    point = _point(names, last["xs"])
     where = " search.sign_change gives the closest values on either side of zero." if len(names) == 1 else ""
     return (f"the search did NOT meet its tolerance {spec.tolerance:g}: at {point} the largest "
             f"residual is {residual:.6g} after {len(trials)} trials; {why}.{where}")

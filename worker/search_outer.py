@@ -86,7 +86,7 @@ def find_root(residual: Callable[[float], float], low: float, high: float, start
             return  # an exact root (brentq would return it too)
         pair = _sign_change(seen)
         x = _model_root(path[-3:], high - low)
-        if x is None:
+        if x is None or not np.isfinite(x):
             break
         fb = path[-1][1]
         if pair is None:

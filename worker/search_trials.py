@@ -83,13 +83,16 @@ class TrialModels:
         return parse_document(with_unknowns(self.document, dict(zip(self.names, xs))))
 
     def solve(self, xs: tuple[float, ...], start: np.ndarray | None, tolerance: float,
-              certify: bool) -> tuple[Any, CompiledProblem, Any, bool]:
-        """One trial at ``xs``; the last item says whether it is a certifying trial (see the module docstring)."""
+              certify: bool, iterations: int | None = None) -> tuple[Any, CompiledProblem, Any, bool]:
+        """One trial at ``xs``; the last item says whether it is a certifying trial (see the module docstring).
+        ``iterations``: a certifying trial's most iterations, instead of the document's ``solver.max_iterations``."""
         if not certify:
             guided = self._guiding(xs, start, tolerance)
             if guided is not None:
                 return guided
         doc = self.fresh_doc(xs)
+        if iterations is not None:
+            doc = doc.model_copy(update={"solver": doc.solver.model_copy(update={"max_iterations": iterations})})
         problem, outcome = self.trial(doc, start, tolerance)
         return doc, problem, outcome, True
 

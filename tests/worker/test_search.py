@@ -519,3 +519,71 @@ def test_mass_at_the_top_of_a_short_grid_is_warned_unless_declared_a_real_limit(
     pi = np.asarray(result["stationary"]["distribution"])
     mean = float((pi * GRID[:, None]).sum())
     assert sd == pytest.approx(np.sqrt((pi * (GRID[:, None] - mean) ** 2).sum()), rel=1e-12)
+
+
+@pytest.mark.parametrize("condition", ["mean(income) - 1", "sd(e) - 1", "mass(pay > 1) - 0.5"])
+def test_a_condition_over_a_draw_after_the_choice_is_refused_before_any_solve(condition: str) -> None:
+    # `e` is drawn after the choice: it has no value at a point of the stationary distribution, nor has `pay`
+    # (a define of it) or `income` (a define of `pay`, listed first).  Before: a define of it passed validation
+    # and was refused only after the first trial's solve; the draw itself was called an unknown name.
+    document = _document({**MARKET, "conditions": [condition]})
+    model = document["model"]
+    model["shocks"]["e"] = {"iid": {"values": [0.9, 1.1], "probs": [0.5, 0.5]}, "timing": "after_choice"}
+    model["define"] = {"income": "pay + 0", "pay": "w * y * e", **model["define"]}
+    faults = _faults(document)
+    assert any(f["path"] == "search.conditions[0]" and "draw revealed after the choice" in f["message"]
+               for f in faults), faults
+
+
+def test_a_param_named_discount_is_refused_in_a_search_whose_conditions_would_read_the_discount_factor() -> None:
+    # Before: accepted, and `discount` in a condition was the document's 0.95, not the param's 0.5 that the
+    # model's own expressions read (mean(a) - 10 * discount was met at mean assets 9.5).
+    faults = _faults(_document({**MARKET, "conditions": ["mean(a) - 10 * discount"]}, discount=0.5))
+    assert any(f["path"] == "model.params.discount" and "another name" in f["message"] for f in faults), faults
+
+
+def test_an_aggregate_is_taken_over_the_points_with_mass_as_the_stationary_report_is() -> None:
+    # log(A_MAX - a) is -inf at the top of the grid, where at r = 0.03 the distribution has no mass.  Before:
+    # 0 x inf made mean and sd NaN (a search on them failed), while the stationary report gave finite values.
+    r = 0.03
+    doc, problem = compile_document(_document(r=r))
+    result = solve(_document(r=r))
+    _, chosen = problem.bellman_step(np.asarray(result["value"]).reshape(-1))
+    pi, _ = long_run_distribution(problem.policy_matrix(chosen))
+    env = point_env(doc, problem, chosen)
+    a = np.repeat(GRID, INCOME.size)
+    assert pi[a == A_MAX].sum() == 0.0 and pi[a < A_MAX].sum() > 0.99  # the case has teeth
+    held = pi > 0  # numpy over the support
+    logs = np.log(A_MAX - a[held])
+    mean = float(pi[held] @ logs)
+    expected = {"mean(log(30 - a))": mean, "sd(log(30 - a))": float(np.sqrt(pi[held] @ (logs - mean) ** 2)),
+                "quantile(log(30 - a), 0.5)": float(np.quantile(logs, 0.5, method="inverted_cdf", weights=pi[held]))}
+    for text, value in expected.items():
+        (aggregate,) = parse_condition(text, path="x").aggregates.values()
+        assert aggregate_value(aggregate, pi, env) == pytest.approx(value, rel=1e-12), text
+
+
+def test_a_quantile_target_not_met_is_explained_by_the_quantiles_steps_not_by_the_choice() -> None:
+    # The median of assets is always a grid point: with a continuous choice the search still ends not_met.
+    # Before: the warning said that a continuous choice makes aggregates move smoothly (this one has one).
+    result = solve(_document({**MARKET, "conditions": ["quantile(a, 0.5) - 3"]}))
+    search = result["search"]
+    assert search["status"] == "not_met" and abs(search["residuals"][0]) > 1e-6
+    assert min(abs(GRID - (search["residuals"][0] + 3))) <= 1e-12  # the median found is a grid point
+    (warning,) = [w for w in result["diagnostics"]["warnings"] if "did NOT meet" in w]
+    assert "moves in steps even with a continuous choice" in warning and "mass(x <= v)" in warning, warning
+
+
+def test_a_squared_condition_is_not_said_to_have_no_root() -> None:
+    # (mean(a) - capital_demand) ** 2 touches zero at the equilibrium without changing sign.  Before: "no root
+    # in the bracket", naming only the ends (75.2 and 52.6), after trials had crept to 8.9e-5 at r = 0.04229.
+    with pytest.raises(InvalidDocument) as caught:
+        solve(_document({**MARKET, "conditions": ["(mean(a) - capital_demand) ** 2"]}))
+    (error,) = caught.value.errors
+    assert error["path"] == "search.unknowns.r"
+    assert "no root" not in error["message"] and "no sign change" in error["message"], error
+    assert "give it a sign" in error["message"]
+    nearest = min(caught.value.context["trials"], key=lambda row: row["residuals"][0])
+    assert f"{nearest['residuals'][0]:.10g} at r = {nearest['unknowns']['r']:.10g}" in error["message"]
+    # The independent equilibrium (a bisection over the numpy household, the module's reference) is near it.
+    assert abs(nearest["unknowns"]["r"] - _bisect(_excess, 0.03, 0.05, width=1e-9)) < 1e-3

@@ -20,6 +20,7 @@ import pytest
 from scipy.optimize import brentq
 
 import worker.search_trials as search_trials
+from worker.errors import InvalidDocument
 from worker.search_outer import NoRoot, estimate_root, find_root
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
@@ -94,9 +95,9 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     original = search_trials.TrialModels.solve
     shifted: list[float] = []
 
-    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
+    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
         if certify:
-            return original(self, xs, start, tolerance, certify)
+            return original(self, xs, start, tolerance, certify, **kwargs)
         shifted.append(xs[0])
         return original(self, (xs[0] + 2e-4,), start, tolerance, certify)
 
@@ -444,3 +445,103 @@ def test_a_search_factorises_a_banded_chain_in_the_states_order_and_a_scrambled_
     finally:
         stationary_lu.NATURAL_FILL = original
     assert factors["ordering"] == "COLAMD"
+
+
+def test_a_condition_not_finite_at_a_trial_is_refused_naming_the_trial_and_never_tried_at_nan(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # The condition is NaN below r = 0.01 (sqrt of a negative number); the document starts the search at
+    # 0.005, inside the bracket and where the document itself is fine.  Before: the model step through two NaN
+    # residuals was NaN, the third trial was made at r = nan, and the job failed at model.params.capital_demand.
+    tried: list[float] = []
+    solve_trial = search_trials.TrialModels.solve
+
+    def spy(self: Any, xs: tuple[float, ...], *args: Any, **kwargs: Any) -> Any:
+        tried.append(xs[0])
+        return solve_trial(self, xs, *args, **kwargs)
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", spy)
+    document = _search_document()
+    document["model"]["params"]["r"] = 0.005
+    document["search"] = {**MARKET, "conditions": ["mean(a) - capital_demand + 0 * sqrt(r - 0.01)"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert tried == [0.005], tried
+    (fault,) = caught.value.errors
+    assert fault["path"] == "search.conditions[0]"
+    assert "is nan at the search's trial r = 0.005" in fault["message"], fault
+    # An aggregate that is not finite is named: log(0) at the borrowing limit, where the distribution has mass.
+    document["model"]["params"]["r"] = 0.02
+    document["search"] = {**MARKET, "conditions": ["mean(log(a)) - 1"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    assert "mean(log(a)) is -inf" in caught.value.errors[0]["message"], caught.value.errors
+
+
+def test_a_trial_the_model_cannot_be_solved_at_is_named_beside_the_models_fault() -> None:
+    # A careless bracket: r = -0.1 makes r + delta negative and capital demand NaN.  The condition has no root
+    # (mean assets never reach 200), so the end is solved.  Before: the only fault was at
+    # model.params.capital_demand, with nothing saying that the document's own r (0.02) was fine.
+    document = _search_document()
+    document["search"] = {**MARKET, "unknowns": {"r": {"min": -0.1, "max": 0.05}}, "conditions": ["mean(a) - 200"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    first, second = caught.value.errors
+    assert first["path"] == "search.unknowns.r" and "trial r = -0.1," in first["message"], first
+    assert "[-0.1, 0.05]" in first["message"]
+    assert second["path"] == "model.params.capital_demand", second
+    assert second["message"].startswith("at the search's trial r = -0.1: "), second
+
+
+@pytest.mark.parametrize(("unknowns", "conditions", "budget"), [
+    ({"r": {"min": 0.0, "max": 0.05}}, ["mean(a) - capital_demand"], 3),
+    ({"r": {"min": 0.0, "max": 0.05}, "discount": {"min": 0.9, "max": 0.96}},
+     ["mean(a) - capital_demand", "sd(a) - 4"], 5),
+])
+def test_a_search_makes_at_most_max_trials_solves_the_last_a_certifying_one(
+        unknowns: dict[str, Any], conditions: list[str], budget: int) -> None:
+    # Before: the budget ran out on a guiding trial, which was then certified by one solve more (4 of 3, 6 of
+    # 5, 61 of the default 60).
+    document = _search_document()
+    document["search"] = {**MARKET, "unknowns": unknowns, "conditions": conditions, "max_trials": budget}
+    search = solve(document)["search"]
+    assert search["status"] == "max_trials"
+    assert len(search["trials"]) == budget, [row["certified"] for row in search["trials"]]
+    assert search["trials"][-1]["certified"]
+    assert search["residuals"] == search["trials"][-1]["residuals"]
+
+
+def test_a_stopped_search_reports_the_status_of_the_solve_its_result_is_built_from(
+        monkeypatch: pytest.MonkeyPatch) -> None:
+    # Measured at solver.tolerance 1e-13 with time_limit_s 20: a guiding trial ended at max_iterations, the
+    # certifying solve of its point (the result) at time_limit; search.status said max_iterations while the
+    # warning and the last row said time_limit.  Here the certifying solves are made to stop otherwise.
+    solve_trial = search_trials.TrialModels.solve
+
+    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
+        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify, **kwargs)
+        if certified:
+            outcome.status = "time_limit"
+        return doc, problem, outcome, certified
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", spy)
+    document = _search_document()
+    document["solver"]["max_iterations"] = 2
+    result = solve(document)
+    search = result["search"]
+    first, last = search["trials"]
+    assert first["inner_status"] == "max_iterations" and last["certified"]
+    assert search["status"] == last["inner_status"] == "time_limit", search["status"]
+    assert any("did NOT meet" in w and "time_limit" in w for w in result["diagnostics"]["warnings"])
+
+
+def test_a_point_whose_solve_used_up_max_iterations_is_certified_in_one_more_iteration() -> None:
+    # Measured: a discount bracket reaching 0.998 (where solver.tolerance 1e-10 is below float64's reach) had a
+    # guiding trial run its 100,000 iterations (25 s), and the certifying solve of its point 100,000 more (24 s).
+    document = _search_document()
+    document["solver"]["max_iterations"] = 3
+    search = solve(document)["search"]
+    assert search["status"] == "max_iterations"
+    first, last = search["trials"]
+    assert first["unknowns"] == last["unknowns"] and not first["certified"] and last["certified"]
+    assert (first["iterations"], last["iterations"]) == (3, 1)
+    assert last["inner_status"] == "max_iterations" and math.isfinite(last["error_bound"])

@@ -15,6 +15,7 @@ from worker.aggregates import DISCOUNT, parse_condition
 from worker.document._faults import Fault, fault, number, raise_faults
 from worker.document._fields import Expression, Integer, Name, Part
 from worker.errors import InvalidDocument, join_path
+from worker.expressions import parse
 
 __all__ = ["DISCOUNT", "MAX_TRIALS", "Bracket", "SearchSpec", "search_faults"]
 
@@ -71,6 +72,11 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
         return [fault("search", "a search with taste shocks is not supported yet: its aggregates would need the "
                       "stationary distribution of the random choice, not of one policy")]
     faults: list[Fault] = []
+    if DISCOUNT in model.params:
+        # A condition's `discount` is the document's discount factor: a param of that name was silently shadowed
+        # (mean(a) - 10 * discount met 10 x 0.95, not 10 x the param's 0.5).
+        faults.append(fault(join_path("model.params", DISCOUNT), "in a document with a search, `discount` names the "
+                            "discount factor (in conditions, and as an unknown): give this param another name"))
     if len(search.conditions) != len(search.unknowns):
         faults.append(fault("search.conditions", f"give one condition per unknown: {len(search.unknowns)} "
                             f"unknown(s), {len(search.conditions)} condition(s)"))
@@ -87,6 +93,7 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
     at_points = [*model.params, *model.states, *(n for n, s in model.shocks.items() if not s.after_choice),
                  *model.choices, *model.define]
     reserved = set(at_points) | {DISCOUNT}
+    late = _drawn_after_choice(model)
     for k, text in enumerate(search.conditions):
         where = join_path("search.conditions", k)
         try:
@@ -98,10 +105,36 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
         if outer:
             faults.append(fault(where, "outside mean, sd, quantile and mass a condition uses params only: "
                                 + ", ".join(f"`{n}`" for n in outer) + " must be inside an aggregate"))
-        inner = sorted(condition.point_names() - set(at_points))
+        drawn = sorted(condition.point_names() & late)
+        if drawn:
+            # Refused here, before any solve (a trial's solve found it at the first condition it evaluated).
+            faults.append(fault(where, "cannot be evaluated over the stationary distribution: "
+                                + ", ".join(f"`{n}`" for n in drawn) + " is a draw revealed after the choice, or a "
+                                "define that depends on one"))
+        inner = sorted(condition.point_names() - set(at_points) - late)
         if inner:
             faults.append(fault(where, "unknown name(s) " + ", ".join(f"`{n}`" for n in inner) + " inside an "
                                 "aggregate: known are params, states, shocks, choices and defines"))
         if not condition.aggregates and not condition.outer.names:
             faults.append(fault(where, "a condition must depend on something: it has no names"))
     return faults
+
+
+def _drawn_after_choice(model: Any) -> set[str]:
+    """The shocks drawn after the choice, and the defines that depend on one (directly or through other
+    defines): names that have no value at a point of the stationary distribution."""
+    late = {name for name, shock in model.shocks.items() if shock.after_choice}
+    uses: dict[str, set[str]] = {}
+    for name, text in model.define.items():
+        try:
+            uses[name] = set(parse(str(text), path=join_path("model.define", name)).names)
+        except InvalidDocument:
+            uses[name] = set()  # faulted where the defines are checked
+    grown = bool(late)
+    while grown:
+        grown = False
+        for name, names in uses.items():
+            if name not in late and names & late:
+                late.add(name)
+                grown = True
+    return late
