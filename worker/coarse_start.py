@@ -79,7 +79,12 @@ def coarse_document(doc: Any) -> Any:
         else:
             keep = np.unique(np.r_[np.arange(0, n, COARSE_SHARE), n - 1])
             states[name] = axis.model_copy(update={"values": axis.values[keep]})
-    model = doc.model.model_copy(update={"states": states})
+    choices = {}
+    for name, choice in doc.model.choices.items():
+        choices[name] = choice.model_copy()
+        if choice.next_of in states:
+            choices[name]._target = states[choice.next_of]  # as the model's validation links them
+    model = doc.model.model_copy(update={"states": states, "choices": choices})
     report = type(doc.report)()
     update: dict[str, Any] = {"model": model, "report": report}
     if "search" in type(doc).model_fields:
