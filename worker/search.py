@@ -147,7 +147,9 @@ def run_search(
     solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last solves' unknowns and values (START_POINTS)
     saved = checkpoint.load() if checkpoint is not None else None
     replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
+    resumed_from: int | None = None  # the checkpoint's trial count, when one is resumed from
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
+        resumed_from = int(saved["iteration"])
         # Rows saved before guiding trials existed were all certified.
         replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"], row.get("certified", True)): row
                   for row in saved["trials"]}
@@ -290,6 +292,9 @@ def run_search(
                         "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}
     if status != "converged":
         result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials))
+    if resumed_from is not None:
+        # The final solve is a fresh one; the search itself went on from the checkpoint's trials.
+        result["diagnostics"]["resumed_from_iteration"] = resumed_from
     return result
 
 

@@ -386,6 +386,9 @@ def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(e
     assert [row["unknowns"] for row in resumed["search"]["trials"]] == [row["unknowns"] for row in fresh["trials"]]
     assert len(second) == len(fresh["trials"]) - 5
     assert resumed["search"]["status"] == "converged"
+    # The result says it was resumed, and from how many trials (the final solve itself is a fresh one).
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 5
+    assert equilibrium["diagnostics"]["resumed_from_iteration"] is None
 
 
 def test_a_checkpoint_of_another_document_is_ignored() -> None:
