@@ -172,8 +172,10 @@ def run_search(
         if (xs, tolerance, certify) in replay:
             row = replay.pop((xs, tolerance, certify))
             trials.append(row)
+            # A replayed row counts as the trial it records (a certifying one ends the search as it did), but
+            # has no solution in memory (doc None): the last one is solved again at the end, without a new row.
             last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None,
-                        certified=False)  # a replayed row has no solution to return: solved again at the end
+                        certified=row.get("certified", True))
             return row["residuals"]
         started = time.perf_counter()
         trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
@@ -278,10 +280,17 @@ def run_search(
     except RuntimeError:
         status = "max_trials"
     if not last["certified"]:
-        # A guiding last trial, or one answered from a checkpoint: the point is solved again by a certifying
-        # trial, from which alone the result is built (a solve that stopped stops again, after one step).
-        replay.clear()
+        # A guiding last trial: the point is solved again by a certifying trial, from which alone the result
+        # is built (a solve that stopped stops again, after one step).  One made before a resume is replayed.
         at(last["xs"], final_tolerance, certify=True)
+    if last["doc"] is None:
+        # The last trial was answered from the checkpoint: its solution is made again (from the checkpoint's
+        # value, so within the solver's bound of the first one) for the result, without a second row.
+        xs = last["xs"]
+        trial_doc, problem, outcome, _ = models.solve(xs, _start(solved, xs, last.get("value")), final_tolerance,
+                                                      True)
+        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
+        last.update(doc=trial_doc, problem=problem, outcome=outcome, pi=pi, info=info)
     met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
            and last["certified"])
     if not met and status == "converged":

@@ -18,10 +18,12 @@ from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
 
+import numpy as np
 import pytest
 import redis
 
 from service.app import create_app
+from service.checkpoints import encode_checkpoint
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
 from tests._processes import kill_node
@@ -124,3 +126,52 @@ def test_a_search_whose_worker_died_resumes_its_trials_and_says_so(fast_settings
     assert record["search"] == {"status": "converged", "unknowns": search["unknowns"],
                                 "residuals": search["residuals"], "trials": len(search["trials"])}
     assert [entry["iteration"] for entry in log] == list(range(1, len(search["trials"]) + 1))
+
+
+class _Memory:
+    """An in-memory checkpoint (load/save), as the service keeps one in Redis."""
+
+    def __init__(self) -> None:
+        self.state: dict[str, Any] | None = None
+
+    def load(self) -> dict[str, Any] | None:
+        return self.state
+
+    def save(self, state: dict[str, Any]) -> None:
+        self.state = dict(state)
+
+
+def test_a_search_resumed_after_its_last_trial_ends_as_the_uninterrupted_one(
+    fast_settings: Settings, start_worker: Any
+) -> None:
+    """The worker died after the checkpoint of the search's last (certifying) trial, before it wrote the result
+    (a SIGKILL then, or a Redis outage longer than redis_retry_s): the checkpoint is that of an uninterrupted
+    solve in this process, stored in Redis as an execution stores it.  Before the fix the resumed search took a
+    replayed certifying row for a guiding one and solved the point again as a new trial (9 rows for 8 here; a
+    search of two unknowns went on past its answer and ended at another point)."""
+    document = market(40)
+    document["solver"]["checkpoint_s"] = 1e-9  # saved after every trial, the last included
+    memory = _Memory()
+    uninterrupted = solve(document, checkpoint=memory)
+    assert memory.state is not None and memory.state["iteration"] == len(uninterrupted["search"]["trials"])
+    store = JobStore(redis.Redis.from_url(fast_settings.redis_url), fast_settings)
+    record = store.create_job(document, owner="lab", estimate={}, document_hash="resume", enqueue=False)
+    job_id = record["id"]
+    blob = b"fixq-ckpt:%d\n" % memory.state["iteration"] + encode_checkpoint(memory.state)
+    store.redis.set(store.keys.checkpoint(job_id), blob)
+    store.enqueue_created(record)
+    start_worker()
+    with make_client(create_app(fast_settings)) as http:
+        deadline = time.monotonic() + 120
+        while (record := http.get(f"/v1/jobs/{job_id}").json())["state"] not in TERMINAL_STATES:
+            assert time.monotonic() < deadline, f"not finished; record: {record}"
+            time.sleep(0.05)
+        result = http.get(f"/v1/jobs/{job_id}/result").json()
+    assert record["state"] == "done", record
+    search, expected = result["search"], uninterrupted["search"]
+    assert result["diagnostics"]["resumed_from_iteration"] == len(expected["trials"])
+    assert search["trials"] == expected["trials"] and search["unknowns"] == expected["unknowns"]
+    assert record["search"]["trials"] == len(expected["trials"])
+    # The point's solution is made again from the checkpoint's value: within the solver's bounds of the first.
+    gap = np.max(np.abs(np.array(result["value"]) - np.array(uninterrupted["value"])))
+    assert gap <= result["error_bound"] + uninterrupted["error_bound"]

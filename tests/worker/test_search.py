@@ -391,6 +391,22 @@ def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(e
     assert equilibrium["diagnostics"]["resumed_from_iteration"] is None
 
 
+def test_a_search_resumed_from_the_checkpoint_of_its_last_trial_stops_where_it_did() -> None:
+    """The worker was lost after the last trial's checkpoint: the replayed certifying rows end the search as
+    they did (before, a search of two unknowns went on for three more trials and ended at another point)."""
+    search = {"unknowns": {"r": {"min": 0.0, "max": 0.05}, "alpha": {"min": 0.3, "max": 0.4}},
+              "conditions": ["mean(a) - capital_demand", "alpha - 0.36"], "tolerance": 1e-6}
+    document = _document(search)
+    document["solver"]["checkpoint_s"] = 1e-9
+    memory = _Memory()
+    first = solve(document, checkpoint=memory)
+    assert memory.state is not None and memory.state["iteration"] == len(first["search"]["trials"])
+    again = solve(document, checkpoint=memory)
+    assert again["search"]["trials"] == first["search"]["trials"]
+    assert again["search"]["unknowns"] == first["search"]["unknowns"]
+    assert again["diagnostics"]["resumed_from_iteration"] == len(first["search"]["trials"])
+
+
 def test_a_checkpoint_of_another_document_is_ignored() -> None:
     memory = _Memory()
     solve(_saving_every_trial(), checkpoint=memory)
