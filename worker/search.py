@@ -49,7 +49,7 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.search_outer import NoRoot, estimate_root, find_root
-from worker.search_trials import TrialModels, trial_distribution
+from worker.search_trials import TrialCheckpoint, TrialModels, trial_distribution
 
 __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
@@ -118,7 +118,9 @@ def run_search(
         those before it that the next start uses (see ``_start``); ``distribution``, the last solve's
         stationary distribution).  A matching saved state is resumed from: the root finder is deterministic,
         so it asks for the same trials again, and those already made are answered from the saved rows without
-        solving; the next solve starts from the saved value.
+        solving; the next solve starts from the saved value.  Each trial's solve saves its own state within the
+        search's too (:class:`worker.search_trials.TrialCheckpoint`), and the trial it was saved in goes on
+        from it.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
@@ -154,7 +156,8 @@ def run_search(
         replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"], row.get("certified", True)): row
                   for row in saved["trials"]}
         log = list(saved.get("log") or [])
-        last["value"] = np.asarray(saved["value"], dtype=np.float64)
+        if saved.get("value") is not None:  # None: saved during the first trial (its solver's state beside)
+            last["value"] = np.asarray(saved["value"], dtype=np.float64)
         if saved.get("value_xs") is not None:
             solved.append((tuple(saved["value_xs"]), last["value"]))
         if saved.get("distribution") is not None:  # the pin of the next trial's distribution (trial_distribution)
@@ -166,6 +169,20 @@ def run_search(
             solved.insert(0, (tuple(xs_), np.asarray(value_, dtype=np.float64)))
 
     factors: dict[str, Any] = {}  # the last sparse LU of a trial's stationary distribution (trial_distribution)
+    # The loaded checkpoint, for the trial it was saved in the middle of (TrialCheckpoint.load).
+    pending: dict[str, Any] = {"state": saved} if resumed_from is not None else {}
+
+    def search_state() -> dict[str, Any]:
+        """What the checkpoint keeps of the search after its trials so far."""
+        return {"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
+                "trials": trials, "value": last.get("value"), "value_xs": list(solved[-1][0]) if solved else None,
+                "distribution": last.get("pi"),
+                # The solve before, from which the next start is extrapolated (see _start).
+                "previous_xs": list(solved[-2][0]) if len(solved) > 1 else None,
+                "previous_value": solved[-2][1] if len(solved) > 1 else None,
+                "earlier_xs": [list(x) for x, _ in solved[:-2]],
+                # One array (rows), which the service's store keeps as binary, as the others.
+                "earlier_values": np.stack([v for _, v in solved[:-2]]) if len(solved) > 2 else None}
 
     def at(xs: tuple[float, ...], tolerance: float, certify: bool) -> list[float]:
         """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`)."""
@@ -178,8 +195,10 @@ def run_search(
                         certified=row.get("certified", True))
             return row["residuals"]
         started = time.perf_counter()
+        inner = None if checkpoint is None else TrialCheckpoint(
+            checkpoint, search_state, f"{len(trials) + 1}:{xs!r}:{tolerance!r}:{certify}", pending)
         trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")), tolerance,
-                                                              certify)
+                                                              certify, inner)
         pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k))
                      for k, c in enumerate(conditions)]
@@ -202,14 +221,7 @@ def run_search(
             # Time-based, as a solve's: a save after every trial cost a search of 10 trials of 10 ms about a tenth
             # of its time over the service (measured), for a resume that saves little.
             saved_at["seconds"] = time.perf_counter()
-            checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
-                             "trials": trials, "value": last["value"], "value_xs": list(xs), "distribution": pi,
-                             # The solve before, from which the next start is extrapolated (see _start).
-                             "previous_xs": list(solved[-2][0]) if len(solved) > 1 else None,
-                             "previous_value": solved[-2][1] if len(solved) > 1 else None,
-                             "earlier_xs": [list(x) for x, _ in solved[:-2]],
-                             # One array (rows), which the service's store keeps as binary, as the others.
-                             "earlier_values": np.stack([v for _, v in solved[:-2]]) if len(solved) > 2 else None})
+            checkpoint.save(search_state())
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}

@@ -235,7 +235,7 @@ def _search(
     deadline = None if limit is None else time.monotonic() + limit
 
     def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float, problem: CompiledProblem | None = None,
-              trust_hints: bool = False) -> tuple[CompiledProblem, SolveOutcome]:
+              trust_hints: bool = False, checkpoint: Any = None) -> tuple[CompiledProblem, SolveOutcome]:
         problem = _compile(trial_doc, cap) if problem is None else problem  # given: compiled, its params swapped
         start = _initial_values(trial_doc, problem, warm_start) if initial is None else initial
         spec = trial_doc.solver
@@ -244,8 +244,8 @@ def _search(
         outcome = METHODS[spec.method](
             problem, start, tolerance=tolerance, max_iterations=spec.max_iterations,
             time_limit_s=left, checkpoint_s=spec.checkpoint_s,
-            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
-            fingerprint="", **extra,
+            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=checkpoint, should_stop=should_stop,
+            fingerprint="" if checkpoint is None else checkpoint.fingerprint(trust_hints), **extra,
         )
         return problem, outcome
 

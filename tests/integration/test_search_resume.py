@@ -23,7 +23,7 @@ import pytest
 import redis
 
 from service.app import create_app
-from service.checkpoints import encode_checkpoint
+from service.checkpoints import decode_checkpoint, encode_checkpoint
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
 from tests._processes import kill_node
@@ -89,7 +89,9 @@ def start_worker(redis_url: str, tmp_path: Path) -> Iterator[Any]:
         print(f"--- {log.name}\n{log.read_text(errors='replace')[-4000:]}")
 
 
-def test_a_search_whose_worker_died_resumes_its_trials_and_says_so(fast_settings: Settings, start_worker: Any) -> None:
+def test_a_search_whose_worker_died_in_a_trial_resumes_it_and_says_so(
+    fast_settings: Settings, start_worker: Any
+) -> None:
     document = market(2000)
     store = JobStore(redis.Redis.from_url(fast_settings.redis_url), fast_settings)
     with make_client(create_app(fast_settings)) as http:
@@ -98,12 +100,16 @@ def test_a_search_whose_worker_died_resumes_its_trials_and_says_so(fast_settings
         job_id = response.json()["id"]
         first = start_worker()
         deadline = time.monotonic() + 120
-        # Kill once a checkpoint holds three trials (the first search in a process may compile its kernels).
-        while (store.load_checkpoint(job_id) or (0, b""))[0] < 3:
-            assert time.monotonic() < deadline, f"no checkpoint of 3 trials; record: {store.get_job(job_id)}"
+        # Kill in the middle of a trial once the checkpoint holds three trials and that trial's solver state
+        # (the first search in a process may compile its kernels).  Before, a search saved only between trials.
+        while not _in_a_trial_after(store.load_checkpoint(job_id), 3):
+            job = store.get_job(job_id)
+            assert time.monotonic() < deadline and job["state"] not in TERMINAL_STATES, (
+                f"no checkpoint within a trial; record: {job}")
             time.sleep(0.01)
         kill_node(first)
-        checkpoint_trials = store.load_checkpoint(job_id)[0]
+        checkpoint_trials, payload = store.load_checkpoint(job_id)
+        killed_in = decode_checkpoint(payload)
         assert http.get(f"/v1/jobs/{job_id}").json()["state"] == "running", "the search ended before the kill"
         start_worker()
         deadline = time.monotonic() + 120
@@ -126,6 +132,18 @@ def test_a_search_whose_worker_died_resumes_its_trials_and_says_so(fast_settings
     assert record["search"] == {"status": "converged", "unknowns": search["unknowns"],
                                 "residuals": search["residuals"], "trials": len(search["trials"])}
     assert [entry["iteration"] for entry in log] == list(range(1, len(search["trials"]) + 1))
+    # The trial under way went on from its solver's saved iteration: its count of iterations is the
+    # uninterrupted trial's (counted across the resume), not more.
+    assert killed_in["trial:key"].startswith(f"{checkpoint_trials + 1}:") and killed_in["trial:iteration"] >= 1
+    assert [row["iterations"] for row in search["trials"]] == [row["iterations"] for row in uninterrupted["trials"]]
+
+
+def _in_a_trial_after(stored: tuple[int, bytes] | None, trials: int) -> bool:
+    """Whether the stored checkpoint holds ``trials`` trials or more and the solver state of the next one."""
+    if stored is None or stored[0] < trials:
+        return False
+    state = decode_checkpoint(stored[1])
+    return "trial:key" in state and state["trial:iteration"] >= 1
 
 
 class _Memory:

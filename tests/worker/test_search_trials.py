@@ -94,11 +94,12 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     original = search_trials.TrialModels.solve
     shifted: list[float] = []
 
-    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool) -> Any:
+    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool,
+              checkpoint: Any = None) -> Any:
         if certify:
-            return original(self, xs, start, tolerance, certify)
+            return original(self, xs, start, tolerance, certify, checkpoint)
         shifted.append(xs[0])
-        return original(self, (xs[0] + 2e-4,), start, tolerance, certify)
+        return original(self, (xs[0] + 2e-4,), start, tolerance, certify, checkpoint)
 
     monkeypatch.setattr(search_trials.TrialModels, "solve", lying)
     # Guiding trials all the way down to the tolerance, so that one meets it where the truth does not.
