@@ -51,8 +51,11 @@ class Notifier(PeriodicThread):
     def run_once(self) -> bool:
         try:
             self.dispatch_due()
+        except redis.ConnectionError as exc:
+            # Redis is away (a restart, an outage): one line per pass, not a traceback every notify_poll_s.
+            logger.warning("notifier: Redis unavailable (%s); trying again", exc)
         except redis.RedisError:
-            logger.warning("notifier: Redis unavailable; trying again", exc_info=True)
+            logger.warning("notifier: Redis failed; trying again", exc_info=True)
         return False
 
     def dispatch_due(self) -> int:

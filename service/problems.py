@@ -33,7 +33,8 @@ from starlette.exceptions import HTTPException
 
 from worker.errors import FixqError, join_path
 
-__all__ = ["PROBLEM_JSON", "Problem", "handle_error", "install", "problem_response"]
+__all__ = ["PROBLEM_JSON", "STORE_UNAVAILABLE", "UNAVAILABLE_DETAIL", "Problem", "handle_error", "install",
+           "problem_response"]
 
 PROBLEM_JSON = "application/problem+json"
 TYPE_PREFIX = "urn:fixq:problem:"
@@ -89,13 +90,15 @@ def problem_response(
     return JSONResponse(body, status_code=status, headers=headers, media_type=PROBLEM_JSON)
 
 
-_STORE_UNAVAILABLE = (
+STORE_UNAVAILABLE = (
     redis.exceptions.ConnectionError,
     redis.exceptions.TimeoutError,
     redis.exceptions.OutOfMemoryError,
     redis.exceptions.ReadOnlyError,
 )
 """Redis failures that are the store's state, not a bug: answered 503 with Retry-After."""
+UNAVAILABLE_DETAIL = "the job store (Redis) is unavailable; try again shortly"
+"""The ``detail`` of the 503 for an unreachable Redis (a response's, or a live log's ``event: error``)."""
 
 def _redis_full(exc: Exception) -> bool:
     """True when Redis refused a write at ``maxmemory``: a plain command's error, or a Lua script's."""
@@ -158,13 +161,13 @@ async def handle_error(request: Request, exc: Exception) -> JSONResponse:
             "carried out; try again later (an operator must raise maxmemory or let finished jobs expire)",
             headers={"Retry-After": "30"},
         )
-    if isinstance(exc, _STORE_UNAVAILABLE):
+    if isinstance(exc, STORE_UNAVAILABLE):
         logger.warning("redis unavailable while answering %s %s: %s", request.method, request.url.path, exc)
         return problem_response(
             503,
             "unavailable",
             "service unavailable",
-            "the job store (Redis) is unavailable; try again shortly",
+            UNAVAILABLE_DETAIL,
             headers={"Retry-After": "5"},
         )
     logger.error("unexpected error answering %s %s", request.method, request.url.path, exc_info=exc)
@@ -180,7 +183,7 @@ def install(app: FastAPI) -> None:
         FixqError,
         RequestValidationError,
         HTTPException,
-        *_STORE_UNAVAILABLE,
+        *STORE_UNAVAILABLE,
         Exception,
     ):
         app.add_exception_handler(exc_class, handle_error)

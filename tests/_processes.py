@@ -6,6 +6,7 @@ import os
 import signal
 import subprocess
 from collections.abc import Iterable
+from pathlib import Path
 
 STOP_TIMEOUT_S = 10.0
 """Seconds a process group has after SIGTERM before it gets SIGKILL."""
@@ -40,3 +41,27 @@ def stop_process_groups(processes: Iterable[subprocess.Popen], timeout_s: float 
             process.wait()
             killed.append(f"pid {process.pid}: {process.args}")
     assert not killed, f"still running {timeout_s:g} s after SIGTERM, killed:\n" + "\n".join(killed)
+
+
+def child_pids(pid: int) -> list[int]:
+    """Children of ``pid`` (Linux /proc): a forking RQ worker's work-horse, which leads a group of its own."""
+    children = []
+    for entry in os.listdir("/proc"):
+        if entry.isdigit():
+            try:
+                stat = Path(f"/proc/{entry}/stat").read_text()
+            except OSError:
+                continue
+            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
+                children.append(int(entry))
+    return children
+
+
+def kill_node(process: subprocess.Popen) -> None:
+    """SIGKILL a worker process's group and its work-horses' groups (what a dead machine looks like)."""
+    for pgid in [*child_pids(process.pid), process.pid][::-1]:
+        try:
+            os.killpg(pgid, signal.SIGKILL)
+        except ProcessLookupError:
+            pass
+    process.wait()

@@ -49,7 +49,7 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.search_outer import NoRoot, estimate_root, find_root
-from worker.search_trials import TrialModels, trial_distribution
+from worker.search_trials import TrialCheckpoint, TrialModels, trial_distribution
 
 __all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
@@ -118,7 +118,9 @@ def run_search(
         those before it that the next start uses (see ``_start``); ``distribution``, the last solve's
         stationary distribution).  A matching saved state is resumed from: the root finder is deterministic,
         so it asks for the same trials again, and those already made are answered from the saved rows without
-        solving; the next solve starts from the saved value.
+        solving; the next solve starts from the saved value.  Each trial's solve saves its own state within the
+        search's too (:class:`worker.search_trials.TrialCheckpoint`), and the trial it was saved in goes on
+        from it.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
@@ -147,12 +149,15 @@ def run_search(
     solved: list[tuple[tuple[float, ...], np.ndarray]] = []  # the last solves' unknowns and values (START_POINTS)
     saved = checkpoint.load() if checkpoint is not None else None
     replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
+    resumed_from: int | None = None  # the checkpoint's trial count, when one is resumed from
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
+        resumed_from = int(saved["iteration"])
         # Rows saved before guiding trials existed were all certified.
         replay = {(tuple(row["unknowns"][n] for n in names), row["inner_tolerance"], row.get("certified", True)): row
                   for row in saved["trials"]}
         log = list(saved.get("log") or [])
-        last["value"] = np.asarray(saved["value"], dtype=np.float64)
+        if saved.get("value") is not None:  # None: saved during the first trial (its solver's state beside)
+            last["value"] = np.asarray(saved["value"], dtype=np.float64)
         if saved.get("value_xs") is not None:
             solved.append((tuple(saved["value_xs"]), last["value"]))
         if saved.get("distribution") is not None:  # the pin of the next trial's distribution (trial_distribution)
@@ -164,6 +169,20 @@ def run_search(
             solved.insert(0, (tuple(xs_), np.asarray(value_, dtype=np.float64)))
 
     factors: dict[str, Any] = {}  # the last sparse LU of a trial's stationary distribution (trial_distribution)
+    # The loaded checkpoint, for the trial it was saved in the middle of (TrialCheckpoint.load).
+    pending: dict[str, Any] = {"state": saved} if resumed_from is not None else {}
+
+    def search_state() -> dict[str, Any]:
+        """What the checkpoint keeps of the search after its trials so far."""
+        return {"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
+                "trials": trials, "value": last.get("value"), "value_xs": list(solved[-1][0]) if solved else None,
+                "distribution": last.get("pi"),
+                # The solve before, from which the next start is extrapolated (see _start).
+                "previous_xs": list(solved[-2][0]) if len(solved) > 1 else None,
+                "previous_value": solved[-2][1] if len(solved) > 1 else None,
+                "earlier_xs": [list(x) for x, _ in solved[:-2]],
+                # One array (rows), which the service's store keeps as binary, as the others.
+                "earlier_values": np.stack([v for _, v in solved[:-2]]) if len(solved) > 2 else None}
 
     def at(xs: tuple[float, ...], tolerance: float, certify: bool, iterations: int | None = None) -> list[float]:
         """The conditions at ``xs`` from a guiding trial, or a certifying one (see :mod:`worker.search_trials`);
@@ -171,13 +190,17 @@ def run_search(
         if (xs, tolerance, certify) in replay:
             row = replay.pop((xs, tolerance, certify))
             trials.append(row)
+            # A replayed row counts as the trial it records (a certifying one ends the search as it did), but
+            # has no solution in memory (doc None): the last one is solved again at the end, without a new row.
             last.update(xs=xs, tolerance=tolerance, residuals=row["residuals"], status=row["inner_status"], doc=None,
-                        certified=False)  # a replayed row has no solution to return: solved again at the end
+                        certified=row.get("certified", True))
             return row["residuals"]
         started = time.perf_counter()
+        inner = None if checkpoint is None else TrialCheckpoint(
+            checkpoint, search_state, f"{len(trials) + 1}:{xs!r}:{tolerance!r}:{certify}", pending)
         try:
             trial_doc, problem, outcome, certified = models.solve(xs, _start(solved, xs, last.get("value")),
-                                                                  tolerance, certify, iterations=iterations)
+                                                                  tolerance, certify, inner, iterations=iterations)
         except InvalidDocument as exc:
             # The document held at its own values; name the trial's, or the fault reads as the document's.
             raise _at_trial(exc, names, xs, spec) from None
@@ -204,14 +227,7 @@ def run_search(
             # Time-based, as a solve's: a save after every trial cost a search of 10 trials of 10 ms about a tenth
             # of its time over the service (measured), for a resume that saves little.
             saved_at["seconds"] = time.perf_counter()
-            checkpoint.save({"kind": "search", "fingerprint": fingerprint, "iteration": len(trials), "log": log,
-                             "trials": trials, "value": last["value"], "value_xs": list(xs), "distribution": pi,
-                             # The solve before, from which the next start is extrapolated (see _start).
-                             "previous_xs": list(solved[-2][0]) if len(solved) > 1 else None,
-                             "previous_value": solved[-2][1] if len(solved) > 1 else None,
-                             "earlier_xs": [list(x) for x, _ in solved[:-2]],
-                             # One array (rows), which the service's store keeps as binary, as the others.
-                             "earlier_values": np.stack([v for _, v in solved[:-2]]) if len(solved) > 2 else None})
+            checkpoint.save(search_state())
         return residuals
 
     known: dict[tuple[float, ...], list[float]] = {}
@@ -285,16 +301,23 @@ def run_search(
     except RuntimeError:
         status = "max_trials"
     if not last["certified"]:
-        # A guiding last trial, or one answered from a checkpoint: the point is solved again by a certifying
-        # trial, from which alone the result is built.  A solve that stopped stops again, after one step: from
-        # the stopped solve's value, with one iteration where it used up solver.max_iterations (it ran the whole
-        # budget again: 24 s more at a discount of 0.998, where 1e-10 is below float64's reach), with the time
-        # the search has left where it ran out of time.
-        replay.clear()
+        # A guiding last trial: the point is solved again by a certifying trial, from which alone the result
+        # is built (one made before a resume is replayed).  A solve that stopped stops again, after one step:
+        # from the stopped solve's value, with one iteration where it used up solver.max_iterations (it ran the
+        # whole budget again: 24 s more at a discount of 0.998, where 1e-10 is below float64's reach), with the
+        # time the search has left where it ran out of time.
         ran_out = status == "stopped" and last["status"] == "max_iterations"
         at(last["xs"], final_tolerance, certify=True, iterations=1 if ran_out else None)
     if status == "stopped":
         status = last["status"] if last["status"] != "converged" else "converged"
+    if last["doc"] is None:
+        # The last trial was answered from the checkpoint: its solution is made again (from the checkpoint's
+        # value, so within the solver's bound of the first one) for the result, without a second row.
+        xs = last["xs"]
+        trial_doc, problem, outcome, _ = models.solve(xs, _start(solved, xs, last.get("value")), final_tolerance,
+                                                      True)
+        pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
+        last.update(doc=trial_doc, problem=problem, outcome=outcome, pi=pi, info=info)
     met = (all(abs(r) <= spec.tolerance for r in last["residuals"]) and last["status"] == "converged"
            and last["certified"])
     if not met and status == "converged":
@@ -305,6 +328,9 @@ def run_search(
                         "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}
     if status != "converged":
         result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials))
+    if resumed_from is not None:
+        # The final solve is a fresh one; the search itself went on from the checkpoint's trials.
+        result["diagnostics"]["resumed_from_iteration"] = resumed_from
     return result
 
 

@@ -64,6 +64,42 @@ def with_unknowns(document: dict[str, Any], values: dict[str, float]) -> dict[st
     return out
 
 
+TRIAL_PREFIX = "trial:"
+"""Prefix of the keys of a trial's solver state inside its search's checkpoint (:class:`TrialCheckpoint`)."""
+
+
+class TrialCheckpoint:
+    """The checkpoint of one trial's solve, kept inside its search's (``worker.search.run_search``).
+
+    A save stores the search's state (``search_state()``: the trials before this one) with the solver's
+    beside it, its keys prefixed `TRIAL_PREFIX` and the trial named by ``key`` (its number, values, inner
+    tolerance and kind), so that a worker lost in the middle of a long trial loses at most ``checkpoint_s``
+    of it, as a single job does.  ``load`` gives the solver's state back once, and only to the same trial
+    (``pending["state"]``: the search's checkpoint as loaded, shared by the search's trials).  The solver is
+    given ``key`` as its fingerprint (``fingerprint``), with the attempt's kind.
+    """
+
+    def __init__(self, search: Any, search_state: Callable[[], dict[str, Any]], key: str,
+                 pending: dict[str, Any]) -> None:
+        self.search = search
+        self.search_state = search_state
+        self.key = key
+        self.pending = pending
+
+    def fingerprint(self, guiding: bool) -> str:
+        return f"{self.key}:{'guiding' if guiding else 'certifying'}"
+
+    def load(self) -> dict[str, Any] | None:
+        saved = self.pending.pop("state", None)
+        if not saved or saved.get(TRIAL_PREFIX + "key") != self.key:
+            return None
+        return {name[len(TRIAL_PREFIX):]: value for name, value in saved.items() if name.startswith(TRIAL_PREFIX)}
+
+    def save(self, state: dict[str, Any]) -> None:
+        inner = {TRIAL_PREFIX + name: value for name, value in state.items()}
+        self.search.save({**self.search_state(), **inner, TRIAL_PREFIX + "key": self.key})
+
+
 class TrialModels:
     """Solves a search's trials: ``solve(xs, start, tolerance, certify) -> (doc, problem, outcome, certified)``.
 
@@ -83,21 +119,23 @@ class TrialModels:
         return parse_document(with_unknowns(self.document, dict(zip(self.names, xs))))
 
     def solve(self, xs: tuple[float, ...], start: np.ndarray | None, tolerance: float,
-              certify: bool, iterations: int | None = None) -> tuple[Any, CompiledProblem, Any, bool]:
+              certify: bool, checkpoint: TrialCheckpoint | None = None,
+              iterations: int | None = None) -> tuple[Any, CompiledProblem, Any, bool]:
         """One trial at ``xs``; the last item says whether it is a certifying trial (see the module docstring).
-        ``iterations``: a certifying trial's most iterations, instead of the document's ``solver.max_iterations``."""
+        ``checkpoint``: the trial's own, handed to the caller's ``trial`` (``checkpoint=``); ``iterations``: a
+        certifying trial's most iterations, instead of the document's ``solver.max_iterations``."""
         if not certify:
-            guided = self._guiding(xs, start, tolerance)
+            guided = self._guiding(xs, start, tolerance, checkpoint)
             if guided is not None:
                 return guided
         doc = self.fresh_doc(xs)
         if iterations is not None:
             doc = doc.model_copy(update={"solver": doc.solver.model_copy(update={"max_iterations": iterations})})
-        problem, outcome = self.trial(doc, start, tolerance)
+        problem, outcome = self.trial(doc, start, tolerance, checkpoint=checkpoint)
         return doc, problem, outcome, True
 
-    def _guiding(self, xs: tuple[float, ...], start: np.ndarray | None,
-                 tolerance: float) -> tuple[Any, CompiledProblem, Any, bool] | None:
+    def _guiding(self, xs: tuple[float, ...], start: np.ndarray | None, tolerance: float,
+                 checkpoint: TrialCheckpoint | None) -> tuple[Any, CompiledProblem, Any, bool] | None:
         """A guiding trial, on the shared problem when the model allows it; None when it failed (the
         certifying trial then gives the error, as a single job would)."""
         from worker._codegen import kernel_params
@@ -111,7 +149,8 @@ class TrialModels:
             shared.use_params(kernel_params(period_params(doc.model, 0), shared.kernel_literals))
             shared.discount = float(doc.discount)
         try:
-            problem, outcome = self.trial(doc, start, tolerance, problem=shared, trust_hints=True)
+            problem, outcome = self.trial(doc, start, tolerance, problem=shared, trust_hints=True,
+                                          checkpoint=checkpoint)
         except (InvalidDocument, ValueError, ArithmeticError):
             return None
         if shared is None and _swappable(doc, problem):

@@ -237,7 +237,7 @@ def _search(
     deadline = None if limit is None else time.monotonic() + limit
 
     def trial(trial_doc: Any, initial: np.ndarray | None, tolerance: float, problem: CompiledProblem | None = None,
-              trust_hints: bool = False) -> tuple[CompiledProblem, SolveOutcome]:
+              trust_hints: bool = False, checkpoint: Any = None) -> tuple[CompiledProblem, SolveOutcome]:
         problem = _compile(trial_doc, cap) if problem is None else problem  # given: compiled, its params swapped
         left = None if deadline is None else max(deadline - time.monotonic(), 1e-3)
         start = initial if initial is not None else _start(trial_doc, problem, cap, warm_start, None, should_stop,
@@ -248,8 +248,8 @@ def _search(
         outcome = METHODS[spec.method](
             problem, start, tolerance=tolerance, max_iterations=spec.max_iterations,
             time_limit_s=left, checkpoint_s=spec.checkpoint_s,
-            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
-            fingerprint="", **extra,
+            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=checkpoint, should_stop=should_stop,
+            fingerprint="" if checkpoint is None else checkpoint.fingerprint(trust_hints), **extra,
         )
         return problem, outcome
 

@@ -11,6 +11,7 @@ active jobs, taken race-free before the job is created (``429``).
 
 from __future__ import annotations
 
+import logging
 import time
 import zlib
 from collections.abc import AsyncIterator, Callable
@@ -29,7 +30,7 @@ from service.deps import Caller, JsonObject, Owner, SettingsDep, StoreDep, api_k
 from service.flat import flat_result
 from service.keys import ApiKey
 from service.limits import ActiveJobs, check_problem_size, quota_for
-from service.problems import Problem
+from service.problems import STORE_UNAVAILABLE, TYPE_PREFIX, UNAVAILABLE_DETAIL, Problem
 from service.resubmission import IdempotencyKeys, SolvedJobs, start_free_hash, with_reuse_fields
 from service.result_openapi import RESULT_RESPONSES
 from service.settings import Settings
@@ -51,6 +52,7 @@ ORDER_QUERY = (
 )
 
 router = APIRouter(prefix="/v1/jobs", tags=["jobs"])
+logger = logging.getLogger("fixq.service")
 
 LOG_PAGE_MAX = 1000
 """Most log entries in one page of ``GET /v1/jobs/{id}/log`` (entries)."""
@@ -404,6 +406,21 @@ def _key_still_valid(request: Request, settings: Settings) -> bool:
 
 
 async def _live_log(
+    store: JobStore, job_id: str, after: int, poll_s: float, key_valid: Callable[[], bool] | None = None
+) -> AsyncIterator[bytes]:
+    """:func:`_follow_log`, ended by ``event: error`` (a 503 problem) when Redis goes away while it is open,
+    rather than cut off mid-chunk (the client reconnects with ``Last-Event-ID`` once Redis is back)."""
+    try:
+        async for chunk in _follow_log(store, job_id, after, poll_s, key_valid):
+            yield chunk
+    except STORE_UNAVAILABLE as exc:
+        logger.warning("redis unavailable while following the log of job %s: %s", job_id, exc)
+        problem = {"type": TYPE_PREFIX + "unavailable", "title": "service unavailable", "status": 503,
+                   "detail": UNAVAILABLE_DETAIL}
+        yield b"retry: 5000\nevent: error\ndata: " + orjson.dumps(problem) + b"\n\n"
+
+
+async def _follow_log(
     store: JobStore, job_id: str, after: int, poll_s: float, key_valid: Callable[[], bool] | None = None
 ) -> AsyncIterator[bytes]:
     """SSE: ``event: entry`` per log entry (``id:`` its iteration), then ``event: end``.

@@ -1,4 +1,4 @@
-"""A live log (SSE) ends when its key is revoked and when the API is told to stop.
+"""A live log (SSE) ends when its key is revoked, when the API is told to stop, and when Redis goes away.
 
 Jobs here are never run: a queued job's live log would stay open for ever,
 so each test also cancels its job after ``SAFETY_S`` (the stream then ends
@@ -7,6 +7,7 @@ with ``event: end``), and a stream that ended only then fails the test.
 
 from __future__ import annotations
 
+import json
 import os
 import signal
 import threading
@@ -18,6 +19,7 @@ import httpx
 import pytest
 from fastapi import FastAPI
 
+from service.embedded_redis import EmbeddedRedis, free_port
 from service.keys import KeyStore
 from service.stopping import STOPPING, watch_stop_signals
 from service.store import JobStore
@@ -104,4 +106,25 @@ def test_fixq_api_stops_at_once_with_a_live_log_open(redis_url: str, tmp_path: P
         assert time.monotonic() - sent < 1.0, server.logs()
         reader.join(5)
     finally:
+        server.stop()
+
+
+def test_a_live_log_open_when_redis_goes_away_ends_with_a_503_event(tmp_path: Path) -> None:
+    """Before, the stream was cut off mid-chunk ("incomplete chunked read") and the API logged a traceback."""
+    server = EmbeddedRedis(tmp_path / "redis", port=free_port()).start()
+    api = LiveServer(server.url, tmp_path, FIXQ_AUTH="off", FIXQ_SSE_POLL_S="0.2").start()
+    try:
+        job_id = httpx.post(f"{api.url}/v1/jobs", json=print_shop(), timeout=10).json()["id"]
+        lines: list[str] = []
+        with httpx.stream("GET", f"{api.url}/v1/jobs/{job_id}/log", headers=SSE,
+                          timeout=httpx.Timeout(5.0, read=SAFETY_S)) as stream:  # fmt: skip
+            threading.Timer(0.5, server.kill).start()
+            lines.extend(stream.iter_lines())
+        events = [line for line in lines if line.startswith(("event:", "data:", "retry:"))]
+        assert events[-3:-1] == ["retry: 5000", "event: error"], lines
+        problem = json.loads(events[-1][5:])
+        assert problem["status"] == 503 and problem["type"] == "urn:fixq:problem:unavailable", problem
+        assert "Exception in ASGI application" not in api.logs()
+    finally:
+        api.stop()
         server.stop()

@@ -354,6 +354,7 @@ class _Memory:
     def __init__(self) -> None:
         self.state: dict[str, Any] | None = None
         self.saves = 0
+        self.within_trials = 0
 
     def load(self) -> dict[str, Any] | None:
         return copy.deepcopy(self.state)
@@ -361,6 +362,7 @@ class _Memory:
     def save(self, state: dict[str, Any]) -> None:
         self.state = copy.deepcopy(state)
         self.saves += 1
+        self.within_trials += "trial:key" in state  # saved in the middle of a trial, with its solver's state
 
 
 def _saving_every_trial() -> dict[str, Any]:
@@ -386,6 +388,64 @@ def test_a_stopped_search_resumes_from_its_checkpoint_without_repeating_trials(e
     assert [row["unknowns"] for row in resumed["search"]["trials"]] == [row["unknowns"] for row in fresh["trials"]]
     assert len(second) == len(fresh["trials"]) - 5
     assert resumed["search"]["status"] == "converged"
+    # The result says it was resumed, and from how many trials (the final solve itself is a fresh one).
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 5
+    assert equilibrium["diagnostics"]["resumed_from_iteration"] is None
+
+
+def test_a_search_resumed_from_the_checkpoint_of_its_last_trial_stops_where_it_did() -> None:
+    """The worker was lost after the last trial's checkpoint: the replayed certifying rows end the search as
+    they did (before, a search of two unknowns went on for three more trials and ended at another point)."""
+    search = {"unknowns": {"r": {"min": 0.0, "max": 0.05}, "alpha": {"min": 0.3, "max": 0.4}},
+              "conditions": ["mean(a) - capital_demand", "alpha - 0.36"], "tolerance": 1e-6}
+    document = _document(search)
+    document["solver"]["checkpoint_s"] = 1e-9
+    memory = _Memory()
+    first = solve(document, checkpoint=memory)
+    assert memory.state is not None and memory.state["iteration"] == len(first["search"]["trials"])
+    again = solve(document, checkpoint=memory)
+    assert again["search"]["trials"] == first["search"]["trials"]
+    assert again["search"]["unknowns"] == first["search"]["unknowns"]
+    assert again["diagnostics"]["resumed_from_iteration"] == len(first["search"]["trials"])
+
+
+def test_a_search_stopped_in_the_middle_of_a_trial_resumes_that_trials_solve(
+    equilibrium: dict[str, Any], monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A trial's solve saves its state inside the search's checkpoint every checkpoint_s, so a lost worker loses
+    at most that much of a long trial (before, it lost the whole trial: the search saved only between trials)."""
+    import worker.search_trials as search_trials
+
+    document = _document(MARKET)
+    document["solver"]["checkpoint_s"] = 1e-9
+    memory = _Memory()
+
+    def in_fourth_trial() -> bool:
+        state = memory.state or {}
+        return str(state.get("trial:key", "")).startswith("4:") and state.get("trial:iteration", 0) >= 1
+
+    from worker.errors import Canceled
+
+    with pytest.raises(Canceled):
+        solve(document, checkpoint=memory, should_stop=in_fourth_trial)
+    assert memory.state is not None and memory.state["iteration"] == 3
+    inner_iteration = memory.state["trial:iteration"]
+    given: list[int] = []
+    load = search_trials.TrialCheckpoint.load
+
+    def spied(self: Any) -> dict[str, Any] | None:
+        state = load(self)
+        if state is not None:
+            given.append(state["iteration"])
+        return state
+
+    monkeypatch.setattr(search_trials.TrialCheckpoint, "load", spied)
+    resumed = solve(document, checkpoint=memory)
+    assert given == [inner_iteration]  # the fourth trial's solver went on from its saved iteration
+    fresh = equilibrium["search"]
+    assert [row["unknowns"] for row in resumed["search"]["trials"]] == [row["unknowns"] for row in fresh["trials"]]
+    assert [row["iterations"] for row in resumed["search"]["trials"]] == [row["iterations"] for row in fresh["trials"]]
+    assert resumed["search"]["unknowns"] == fresh["unknowns"]
 
 
 def test_a_checkpoint_of_another_document_is_ignored() -> None:
@@ -404,7 +464,9 @@ def test_a_search_saves_its_checkpoint_every_checkpoint_s_not_after_every_trial(
     assert memory.saves == 0
     memory = _Memory()
     result = solve(_saving_every_trial(), checkpoint=memory)
-    assert memory.saves == len(result["search"]["trials"])
+    # One after each trial, and, checkpoint_s being tiny, others within the trials' solves.
+    assert memory.saves - memory.within_trials == len(result["search"]["trials"])
+    assert memory.within_trials > 0
 
 
 def _stationary_sd_of_assets(result: dict[str, Any]) -> float:

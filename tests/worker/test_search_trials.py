@@ -95,11 +95,12 @@ def test_guiding_trials_that_mislead_never_become_the_answer(monkeypatch: pytest
     original = search_trials.TrialModels.solve
     shifted: list[float] = []
 
-    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
+    def lying(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool,
+              checkpoint: Any = None, **kwargs: Any) -> Any:
         if certify:
-            return original(self, xs, start, tolerance, certify, **kwargs)
+            return original(self, xs, start, tolerance, certify, checkpoint, **kwargs)
         shifted.append(xs[0])
-        return original(self, (xs[0] + 2e-4,), start, tolerance, certify)
+        return original(self, (xs[0] + 2e-4,), start, tolerance, certify, checkpoint)
 
     monkeypatch.setattr(search_trials.TrialModels, "solve", lying)
     # Guiding trials all the way down to the tolerance, so that one meets it where the truth does not.
@@ -517,8 +518,9 @@ def test_a_stopped_search_reports_the_status_of_the_solve_its_result_is_built_fr
     # warning and the last row said time_limit.  Here the certifying solves are made to stop otherwise.
     solve_trial = search_trials.TrialModels.solve
 
-    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, **kwargs: Any) -> Any:
-        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify, **kwargs)
+    def spy(self: Any, xs: tuple[float, ...], start: Any, tolerance: float, certify: bool, *args: Any,
+            **kwargs: Any) -> Any:
+        doc, problem, outcome, certified = solve_trial(self, xs, start, tolerance, certify, *args, **kwargs)
         if certified:
             outcome.status = "time_limit"
         return doc, problem, outcome, certified

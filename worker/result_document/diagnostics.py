@@ -354,7 +354,8 @@ class Diagnostics(Reported):
         "not hold, a search that did not meet its tolerance, ...)."
     )
     resumed_from_iteration: int | None = Field(
-        description="The checkpoint's iteration when the solve resumed from one (a worker was lost); else null."
+        description="The checkpoint's iteration when the solve resumed from one (a worker was lost); for a search, "
+        "the number of trials its checkpoint held; else null."
     )
     verification: Union[Verification, HorizonVerification, None] = Field(
         description="With speed hints: the unrestricted check of the hinted search; null without hints."
