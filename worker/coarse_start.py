@@ -34,16 +34,14 @@ asset points, 13 iterations from zeros against 6 after a 64-point coarse solve; 
 
 from __future__ import annotations
 
-import time
-from typing import Any, Callable
+from typing import Any
 
 import numpy as np
 
-from worker.errors import InfeasibleModel, InvalidDocument
 from worker.grids import locate
 
-__all__ = ["COARSE_LEAST_POINTS", "COARSE_MIN_POINTS", "COARSE_SHARE", "carried_value", "coarse_document",
-           "coarse_start", "left_after", "starts_coarse"]
+__all__ = ["COARSE_FINE_ITERATIONS", "COARSE_LEAST_POINTS", "COARSE_MIN_POINTS", "COARSE_SHARE", "carried_value",
+           "coarse_document", "coarse_levels", "starts_coarse"]
 
 COARSE_MIN_POINTS = 160
 """A state grid with at least this many points is coarsened for the start (count)."""
@@ -51,6 +49,9 @@ COARSE_SHARE = 4
 """A coarse grid has this share of the fine grid's points: one in ``COARSE_SHARE`` (count)."""
 COARSE_LEAST_POINTS = 40
 """Fewest points of a coarsened grid (count)."""
+COARSE_FINE_ITERATIONS = 6
+"""Iterations of a solve after its coarse start, as the time estimate counts them (count; measured 3 to 6 on the
+accuracy benchmark's household at 400 to 100,000 points, :mod:`worker.continuous_estimate`)."""
 _METHODS = ("howard", "value_iteration", "policy_iteration")
 
 
@@ -70,12 +71,13 @@ def starts_coarse(doc: Any) -> bool:
 def coarse_document(doc: Any) -> Any:
     """A copy of ``doc`` on coarser state grids, without reports or search: the coarse level's document."""
     states = {}
-    for name, axis in doc.model.states.items():
+    sizes = coarse_levels([axis.size for axis in doc.model.states.values()])[0]
+    for (name, axis), size in zip(doc.model.states.items(), sizes):
         n = axis.size
         if n < COARSE_MIN_POINTS:
             states[name] = axis
         elif axis.values is None:
-            states[name] = axis.model_copy(update={"points": max(COARSE_LEAST_POINTS, -(-n // COARSE_SHARE))})
+            states[name] = axis.model_copy(update={"points": size})
         else:
             keep = np.unique(np.r_[np.arange(0, n, COARSE_SHARE), n - 1])
             states[name] = axis.model_copy(update={"values": axis.values[keep]})
@@ -90,6 +92,17 @@ def coarse_document(doc: Any) -> Any:
     if "search" in type(doc).model_fields:
         update["search"] = None
     return doc.model_copy(update=update)
+
+
+def coarse_levels(sizes: list[int]) -> list[list[int]]:
+    """The grid sizes of every coarse level below state grids of ``sizes`` points, the first level first (a grid
+    given by ``values`` keeps about as many, one more where the last value is not among every fourth)."""
+    levels = []
+    while any(size >= COARSE_MIN_POINTS for size in sizes):
+        sizes = [max(COARSE_LEAST_POINTS, -(-size // COARSE_SHARE)) if size >= COARSE_MIN_POINTS else size
+                 for size in sizes]
+        levels.append(sizes)
+    return levels
 
 
 def carried_value(coarse_axes: dict[str, Any], coarse_value: np.ndarray, axes: dict[str, Any]) -> np.ndarray:
@@ -117,47 +130,3 @@ def carried_value(coarse_axes: dict[str, Any], coarse_value: np.ndarray, axes: d
                      np.tile(lower, rows.shape[0]), np.tile(np.clip(share, 0.0, 1.0), rows.shape[0]), out)
         value = np.moveaxis(out.reshape(*shape[:-1], new.size), -1, axis)
     return np.ascontiguousarray(value).reshape(-1)
-
-
-def coarse_start(doc: Any, problem: Any, cap: dict[str, int], checkpoint: Any, should_stop: Callable[[], bool] | None,
-                 limit: float | None) -> tuple[np.ndarray, dict[str, Any]] | None:
-    """The coarse start of a solve of ``doc`` (compiled: ``problem``) and ``diagnostics.coarse_start``; None where
-    there is none (:func:`starts_coarse`, or ``checkpoint`` holds a state to resume from, or the coarse grids do
-    not suit the model: the fine solve then starts from ``solver.initial`` and says what is wrong, if anything).
-    The coarse level starts from its own coarse start; ``cap`` bounds its memory (``worker.solve``'s), ``limit``
-    its time (seconds, None: no limit)."""
-    if not starts_coarse(doc) or (checkpoint is not None and checkpoint.load()):
-        return None
-    from worker.gridmodel import compile_grid
-    from worker.solvers import METHODS
-
-    started = time.perf_counter()
-    coarse = coarse_document(doc)
-    try:
-        coarse_problem = compile_grid(coarse, limits=cap)
-        below = coarse_start(coarse, coarse_problem, cap, None, should_stop, limit)
-        start = np.zeros(coarse_problem.n) if below is None else below[0]
-        spec = coarse.solver
-        outcome = METHODS[spec.method](
-            coarse_problem, start, tolerance=spec.tolerance, max_iterations=spec.max_iterations,
-            time_limit_s=left_after(limit, None if below is None else below[1]), checkpoint_s=None,
-            evaluation_steps=spec.evaluation_steps, on_progress=None, checkpoint=None, should_stop=should_stop,
-            fingerprint="", trust_hints=True,
-        )
-    except (InvalidDocument, InfeasibleModel):
-        return None
-    deeper = {"levels": 0, "iterations": 0} if below is None else below[1]
-    figures = {
-        "points": {name: len(coarse_problem.axes[name]) for name in doc.model.states},
-        "levels": deeper["levels"] + 1,
-        "iterations": deeper["iterations"] + outcome.iterations,
-        "seconds": time.perf_counter() - started,
-    }
-    return carried_value(coarse_problem.axes, outcome.value, problem.axes), figures
-
-
-def left_after(limit: float | None, coarse: dict[str, Any] | None) -> float | None:
-    """What is left of the time limit ``limit`` (seconds) after the coarse start ``coarse`` (None: no limit)."""
-    if limit is None or coarse is None:
-        return limit
-    return max(limit - coarse["seconds"], 1e-3)

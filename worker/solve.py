@@ -22,7 +22,7 @@ import numpy as np
 
 from worker.allocator import keep_freed_memory
 from worker.axis_order import apply_axis_order, model_axis_order, to_internal
-from worker.coarse_start import coarse_start, left_after
+from worker.coarse_solve import coarse_start, left_after
 from worker.convergence_log import dropped
 from worker.environment import MAX_PROBLEM_MB, max_problem_bytes
 from worker.errors import InvalidDocument, TooLarge
@@ -322,7 +322,7 @@ def _fingerprint(doc: Any) -> str:
 def _start(doc: Any, problem: CompiledProblem, cap: dict[str, int], warm_start: dict[str, Any] | None,
            checkpoint: Checkpoint | None, should_stop: Callable[[], bool] | None,
            limit: float | None) -> tuple[np.ndarray, dict[str, Any] | None]:
-    """The solve's starting values and ``diagnostics.coarse_start`` (:func:`worker.coarse_start.coarse_start`),
+    """The solve's starting values and ``diagnostics.coarse_start`` (:func:`worker.coarse_solve.coarse_start`),
     else ``solver.initial``'s and None."""
     found = coarse_start(doc, problem, cap, checkpoint, should_stop, limit)
     return found if found is not None else (_initial_values(doc, problem, warm_start), None)
