@@ -48,6 +48,7 @@ from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
 from worker.continuous.bound_search import BOUND_ARGUMENTS, BOUND_CALL, STACK_ROWS, bound_plan, bound_search
 from worker.continuous.search import (
+    EDGE_TEXT,
     KINK_AXIS,
     KINK_DRAWS_AXIS,
     KINK_DRAWS_MOST,
@@ -326,6 +327,7 @@ class _Writer:
                     with out.block("else:"):
                         out.extend(SEARCH_TEXT.replace("#KINK#", "").strip("\n").split("\n"))
                     out.extend(kinks.strip("\n").split("\n"))
+                out.extend(EDGE_TEXT.strip("\n").split("\n"))
                 out.add("line_a[cc] = x if fx > -np.inf else np.nan", "line_d[cc] = moved")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
