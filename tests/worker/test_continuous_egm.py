@@ -13,6 +13,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from tests._documents import log_growth
 from worker.errors import InvalidDocument
 from worker.solve import solve
 
@@ -308,3 +309,19 @@ def test_the_policy_value_from_the_envelope_start_agrees_with_a_sparse_solve(mon
     assert done["envelope"] < 0.8 * done["zeros"]
     off = start - exact
     assert off.max() - off.min() < 0.1 * np.ptp(exact)
+
+
+def test_growth_with_a_concave_output_is_solved_to_its_closed_form() -> None:
+    """Output ``z·k**α`` is concave in the state: Newton's steps for today's state from above overshoot below 0,
+    where the define is not a number; they are halved back inside (the method once refused the model as having
+    no solution of its first-order condition).  Reference: log utility with full depreciation has the exact
+    policy ``k' = αβ·z·k**α`` (Brock & Mirman 1972) whatever the shock chain."""
+    alpha, beta = 0.33, 0.95
+    model = log_growth(alpha=alpha, k_min=0.05, k_max=0.5, points=60,
+                       choices={"k_next": {"next_of": "k", "continuous": True}}, hints={"concave": True})
+    result = solve({"version": 1, "discount": beta, "model": model,
+                    "solver": {"method": "endogenous_grid", "tolerance": 1e-9}})
+    k, z = np.array(result["axes"]["k"]), np.array(result["axes"]["z"])
+    exact = alpha * beta * z[None, :] * k[:, None] ** alpha
+    assert result["status"] == "converged"
+    assert np.abs(np.array(result["policy"]["k_next"]) - exact).max() < 1e-3

@@ -415,11 +415,24 @@ def _state_for(data: ModelData, found: EulerSetup, c_slope: tuple[Any, dict], po
     k = np.broadcast_to(points[:, None], c_star.shape).copy()
     x = np.broadcast_to(points[:, None], c_star.shape)
     scale = float(np.abs(points).max())
-    for _ in range(_NEWTON_STEPS):
+
+    def at(k: np.ndarray) -> tuple[dict[str, Any], np.ndarray]:
         env = environment(data, found, k, shocks, x)
-        gap = np.broadcast_to(env[found.define], c_star.shape) - c_star
+        return env, np.broadcast_to(env[found.define], c_star.shape) - c_star
+
+    env, gap = at(k)
+    for _ in range(_NEWTON_STEPS):
         step = gap / slope_at(c_slope, env, c_star.shape)
-        k = k - step
+        moved, (env_moved, gap_moved) = k - step, at(k - step)
+        # A step that leaves the define's domain (below 0 for k**alpha: Newton's tangent overshoots a concave
+        # define from above) is halved until it lands inside; from below the steps then approach k* monotonely.
+        for _ in range(_NEWTON_STEPS):
+            outside = ~np.isfinite(gap_moved) & np.isfinite(gap) & np.isfinite(step)
+            if not outside.any():
+                break
+            step = np.where(outside, 0.5 * step, step)
+            moved, (env_moved, gap_moved) = k - step, at(k - step)
+        k, env, gap = moved, env_moved, gap_moved
         if np.all(np.abs(step) <= 4 * np.finfo(float).eps * (np.abs(k) + scale)):
             break
     return k

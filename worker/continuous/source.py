@@ -47,7 +47,15 @@ from worker._codegen.layout import ModelSource
 from worker._codegen.source import generator_hash
 from worker._codegen.writer import JIT, Lines
 from worker.continuous.bound_search import BOUND_ARGUMENTS, BOUND_CALL, STACK_ROWS, bound_plan, bound_search
-from worker.continuous.search import KINK_AXIS, KINK_TEXT, SEARCH_TEXT
+from worker.continuous.search import (
+    EDGE_TEXT,
+    KINK_AXIS,
+    KINK_DRAWS_AXIS,
+    KINK_DRAWS_MOST,
+    KINK_DRAWS_TEXT,
+    KINK_TEXT,
+    SEARCH_TEXT,
+)
 from worker.document.limits import ROW_SUM_TOLERANCE
 from worker.draws import Draws
 from worker.expressions import Expression
@@ -309,7 +317,7 @@ class _Writer:
             with out.block("for cc in range(combos.shape[0]):"):
                 self._others(out, "cc")
                 self._closure(out)
-                kinks = "" if self.cubic or self.draws is not None else self._kinks()
+                kinks = "" if self.cubic else self._kinks(out)
                 out.add("moved = np.nan")  # the guess's move, set by SEARCH_TEXT's concave branch only
                 if self.plan is None:
                     out.extend(SEARCH_TEXT.replace("#KINK#", kinks).strip("\n").split("\n"))
@@ -319,6 +327,7 @@ class _Writer:
                     with out.block("else:"):
                         out.extend(SEARCH_TEXT.replace("#KINK#", "").strip("\n").split("\n"))
                     out.extend(kinks.strip("\n").split("\n"))
+                out.extend(EDGE_TEXT.strip("\n").split("\n"))
                 out.add("line_a[cc] = x if fx > -np.inf else np.nan", "line_d[cc] = moved")
                 with out.block("if cc == 0 or fx > best_v:"):
                     out.add("best_v = fx", "best_a = x", "best_r = rx", "best_j = cc")
@@ -346,13 +355,46 @@ class _Writer:
         out.add("return x, fx, rx, proven")
         return out.text()
 
-    def _kinks(self) -> str:
-        """The kink polish (see :data:`worker.continuous.search.KINK_TEXT`) along every state axis."""
+    def _kinks(self, out: Lines) -> str:
+        """The kink polish (see :data:`worker.continuous.search.KINK_TEXT`) along every state axis; with draws
+        after the choice along every state under every combination of them (writing their closure ``draw_states`` to
+        ``out``), or none above :data:`~worker.continuous.search.KINK_DRAWS_MOST`."""
+        if self.draws is None:
+            axes = []
+            for t in range(self.d):
+                slope = "1.0" if t == self.target else f"(xs2[{t}] - xs[{t}]) / (x2 - x)"
+                axes.append(KINK_AXIS.format(t=t, slope=slope))
+            return KINK_TEXT.replace("#AXES#", "\n".join(axes))
+        if self.k * self.d > KINK_DRAWS_MOST:
+            return ""
+        self._draw_states(out)
         axes = []
-        for t in range(self.d):
-            slope = "1.0" if t == self.target else f"(xs2[{t}] - xs[{t}]) / (x2 - x)"
-            axes.append(KINK_AXIS.format(t=t, slope=slope))
-        return KINK_TEXT.replace("#AXES#", "\n".join(axes))
+        for k in range(self.k):
+            for t in range(self.d):
+                i = k * self.d + t
+                slope = "1.0" if t == self.target else f"(xs2[{i}] - xs[{i}]) / (x2 - x_best)"
+                axes.append(KINK_DRAWS_AXIS.format(t=t, i=i, slope=slope))
+        return KINK_DRAWS_TEXT.replace("#AXES#", "\n".join(axes))
+
+    def _draw_states(self, out: Lines) -> None:
+        """``draw_states(c_0)``: tomorrow's states under each combination of the draws (C order, each state in turn)."""
+        with out.block("def draw_states(c_0):"):
+            for k, expr in self.defines:
+                if self.model.defines[k][0] not in self.after:
+                    out.add(f"d_{k} = {self._src(expr)}")
+            sizes = [v.size for v in self.draws.values]
+            names = []
+            for k in range(self.k):
+                for t, v in enumerate(np.unravel_index(k, sizes)):
+                    out.add(f"w_{t} = {float(self.draws.values[t][v])!r}")
+                for j, expr in self.defines:
+                    if self.model.defines[j][0] in self.after:
+                        out.add(f"d_{j} = {self._src(expr)}")
+                self._tomorrow(out)
+                for t in range(self.d):
+                    out.add(f"xg_{k}_{t} = x_{t}")
+                    names.append(f"xg_{k}_{t}")
+            out.add("return (" + "".join(f"{name}, " for name in names) + ")")
 
     def policy_at(self) -> str:
         out = Lines()
