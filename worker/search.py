@@ -5,7 +5,7 @@ ones' values extrapolated to it (``_start``), computes the stationary distributi
 conditions' aggregates (:mod:`worker.aggregates`), and lets the outer method choose the next trial: with one unknown
 :func:`worker.search_outer.find_root` (from the document's own value, steps to the root of a rational model
 of the residual, then ``scipy.optimize.brentq`` on the narrowest sign change; never outside the bracket),
-with several scipy's bounded least squares.
+with several :func:`worker.search_several.find_common_root` (a bounded Newton method).
 
 Trials are *guiding* or *certifying* (:mod:`worker.search_trials`).  A guiding trial reuses one compiled
 problem with its params swapped and trusts the hints (no verification step); its inner tolerance is
@@ -40,7 +40,6 @@ from collections.abc import Callable
 from typing import Any
 
 import numpy as np
-from scipy.optimize import least_squares
 
 from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
 from worker.document.params import param_expressions
@@ -49,9 +48,10 @@ from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
 from worker.search_outer import NoRoot, estimate_root, find_root
+from worker.search_several import find_common_root
 from worker.search_trials import TrialCheckpoint, TrialModels, trial_distribution
 
-__all__ = ["CERTIFY_NEAR", "DIFF_STEP", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
+__all__ = ["CERTIFY_NEAR", "LOOSE_FACTOR", "TIGHTEN", "XTOL_SHARE", "point_env", "run_search"]
 
 LOOSE_FACTOR = 1e4
 """The first trials' inner tolerance, as a multiple of ``solver.tolerance`` (common practice: early trials
@@ -72,9 +72,6 @@ SETTLE_STEPS = 3
 :func:`run_search`) before the root finder goes on with certifying trials."""
 XTOL_SHARE = 1e-12
 """The root finder stops when its bracket is narrower than this share of the search bracket."""
-DIFF_STEP = 1e-6
-"""Relative step of least squares' forward differences with several unknowns: large beside the conditions'
-noise from the inner solves (about 1e-7 of their size, measured), small beside their curvature."""
 
 Trial = Callable[..., tuple[CompiledProblem, Any]]
 """``trial(doc, initial, tolerance, problem=None, trust_hints=False) -> (problem, outcome)``: one solve of a
@@ -286,12 +283,14 @@ def run_search(
             if not bracket.min <= x <= bracket.max:
                 return
 
-    status = "converged"
+    status, stalled, notes = "converged", "", []  # notes: what a search of several unknowns says (search_several)
     try:
         if len(names) == 1:
             _bracketed(residuals_at, names[0], doc, spec, trials)
         else:
-            _least_squares(residuals_at, document, doc, names, spec)
+            stalled, best = _several(residuals_at, doc, names, spec, notes)
+            if best != last["xs"] and len(trials) < spec.max_trials:
+                at(best, final_tolerance, certify=True)  # the result at the point the conditions were smallest
     except _Met:
         pass
     except _InnerStopped:
@@ -327,7 +326,8 @@ def run_search(
                         "tolerance": spec.tolerance,
                         "sign_change": _sign_change(trials, names[0]) if len(names) == 1 else None, "trials": trials}
     if status != "converged":
-        result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials))
+        result["diagnostics"]["warnings"].append(_not_met_warning(status, names, last, spec, trials, stalled))
+    result["diagnostics"]["warnings"].extend(notes)
     if resumed_from is not None:
         # The final solve is a fresh one; the search itself went on from the checkpoint's trials.
         result["diagnostics"]["resumed_from_iteration"] = resumed_from
@@ -388,18 +388,16 @@ def _own(doc: Any, name: str) -> float:
     return float(doc.discount) if name == DISCOUNT else float(doc.model.params[name])
 
 
-def _least_squares(residuals_at: Callable[[tuple[float, ...]], list[float]], document: dict[str, Any], doc: Any,
-                   names: list[str], spec: Any) -> None:
-    """Several unknowns: scipy's trust-region least squares within the brackets (bounds), from the document's
-    own values (or the brackets' midpoints when those lie outside), with forward differences of relative step
-    `DIFF_STEP`."""
+def _several(residuals_at: Callable[[tuple[float, ...]], list[float]], doc: Any, names: list[str], spec: Any,
+             notes: list[str]) -> tuple[str, tuple[float, ...]]:
+    """Several unknowns: :func:`worker.search_several.find_common_root` within the brackets, from the document's
+    own values (or the brackets' midpoints when those lie outside); returns why it stopped unmet, and where the
+    conditions were smallest."""
     lows = np.array([spec.unknowns[n].min for n in names])
     highs = np.array([spec.unknowns[n].max for n in names])
     own = np.array([_own(doc, n) for n in names])
     start = np.where((own > lows) & (own < highs), own, 0.5 * (lows + highs))
-    least_squares(lambda v: np.asarray(residuals_at(tuple(float(x) for x in v))), start, bounds=(lows, highs),
-                  method="trf", x_scale=highs - lows, diff_step=DIFF_STEP, xtol=1e-15, ftol=1e-15, gtol=1e-15,
-                  max_nfev=spec.max_trials)
+    return find_common_root(residuals_at, lows, highs, start, spec.tolerance, names, spec.conditions, notes)
 
 
 def _point(names: list[str], xs: tuple[float, ...]) -> str:
@@ -452,16 +450,19 @@ def _sign_change(trials: list[dict[str, Any]], name: str) -> dict[str, Any] | No
 
 
 def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: Any,
-                     trials: list[dict[str, Any]]) -> str:
+                     trials: list[dict[str, Any]], stalled: str = "") -> str:
     residual = max(last["residuals"], key=abs)
     if last["status"] != "converged":
         why = f"the last solve ended with status {last['status']}"
     elif status == "max_trials":
         why = f"search.max_trials ({spec.max_trials}) solves were used up"
+        if len(names) > 1:  # how far it got says whether more trials would help
+            sizes = [max(abs(v) for v in row["residuals"]) for row in trials]
+            why += (f" (the largest residual was {sizes[0]:.3g} at the first trial and {min(sizes):.3g} at best; "
+                    "falling: raise search.max_trials; not falling: the conditions may have no common root inside "
+                    "the brackets, or be noisier than the tolerance)")
     elif len(names) > 1:
-        why = ("least squares stopped where the conditions are not all met: they may have no common root inside "
-               "the brackets, or their noise from the inner solves exceeds the tolerance (tighten solver.tolerance, "
-               "or loosen search.tolerance)")
+        why = stalled or "the conditions are not all met"
     else:
         why = ("the condition changes sign across the narrowest bracket without coming that close to zero: it "
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "

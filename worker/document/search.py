@@ -42,8 +42,8 @@ class SearchSpec(Part):
     unknowns: Annotated[dict[Name, Bracket], Field(min_length=1, max_length=8)] = Field(
         description=(
             'The unknowns, each a param of the model (given as a number) or "discount", with the interval in '
-            "which to seek it. One unknown is found by a bracketing root finder (brentq), several by bounded "
-            "least squares."
+            "which to seek it. One unknown is found by a bracketing root finder (brentq), several by a bounded "
+            "Newton method."
         )
     )
     conditions: Annotated[list[Expression], Field(min_length=1, max_length=8)] = Field(
