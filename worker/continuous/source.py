@@ -369,11 +369,9 @@ class _Writer:
             return ""
         self._draw_states(out)
         axes = []
-        for k in range(self.k):
-            for t in range(self.d):
-                i = k * self.d + t
-                slope = "1.0" if t == self.target else f"(xs2[{i}] - xs[{i}]) / (x2 - x_best)"
-                axes.append(KINK_DRAWS_AXIS.format(t=t, i=i, slope=slope))
+        for t in range(self.d):
+            slope = "1.0" if t == self.target else "(xs2[i_d] - xs[i_d]) / (x2 - x_best)"
+            axes.append(KINK_DRAWS_AXIS.format(t=t, k=self.k, d=self.d, slope=slope))
         return KINK_DRAWS_TEXT.replace("#AXES#", "\n".join(axes))
 
     def _draw_states(self, out: Lines) -> None:
