@@ -238,7 +238,9 @@ def test_the_monotone_cubic_interpolant_keeps_monotone_data_monotone() -> None:
     assert dense.min() >= row.min() - 1e-12 and dense.max() <= row.max() + 1e-12
 
 
-@pytest.mark.parametrize("interpolation", ["linear", "monotone_cubic"])
+# Linear only: the edge search is the same generated text for both interpolations, and a monotone_cubic variant
+# (which passed) compiled a model structure of its own, about 11 s of the suite's time.
+@pytest.mark.parametrize("interpolation", ["linear"])
 def test_a_cap_on_tomorrows_capital_binds_to_rounding(interpolation: str) -> None:
     """A ``feasible`` cap ``k' ≤ 0.05 + k/2`` that binds inside the interval: Brent's method ends within its
     tolerance of the cap on the allowed side, and the edge is now found to rounding.  Reference: the MacQueen–
