@@ -57,11 +57,16 @@ def child_pids(pid: int) -> list[int]:
     return children
 
 
+def kill_group(pgid: int) -> None:
+    """SIGKILL the process group ``pgid``, gone already or not."""
+    try:
+        os.killpg(pgid, signal.SIGKILL)
+    except ProcessLookupError:
+        pass
+
+
 def kill_node(process: subprocess.Popen) -> None:
     """SIGKILL a worker process's group and its work-horses' groups (what a dead machine looks like)."""
     for pgid in [*child_pids(process.pid), process.pid][::-1]:
-        try:
-            os.killpg(pgid, signal.SIGKILL)
-        except ProcessLookupError:
-            pass
+        kill_group(pgid)
     process.wait()

@@ -12,7 +12,6 @@ invented household over a working life: savings chosen continuously, income risi
 from __future__ import annotations
 
 import os
-import signal
 import subprocess
 import sys
 import time
@@ -26,6 +25,7 @@ import redis
 
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
+from tests._processes import child_pids, kill_group
 from worker import solve
 
 REPO = Path(__file__).resolve().parents[2]
@@ -56,27 +56,6 @@ def working_life() -> dict[str, Any]:
         },
         "solver": {"checkpoint_s": 0.2},
     }
-
-
-def kill_group(pgid: int) -> None:
-    try:
-        os.killpg(pgid, signal.SIGKILL)
-    except ProcessLookupError:
-        pass
-
-
-def child_pids(pid: int) -> list[int]:
-    """Children of ``pid`` (Linux /proc)."""
-    children = []
-    for entry in os.listdir("/proc"):
-        if entry.isdigit():
-            try:
-                stat = Path(f"/proc/{entry}/stat").read_text()
-            except OSError:
-                continue
-            if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
-                children.append(int(entry))
-    return children
 
 
 @pytest.fixture

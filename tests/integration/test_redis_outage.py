@@ -28,7 +28,7 @@ from service.liveness import live_workers
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from tests._documents import LQ, grid_document, machine_shop, random_replacement
-from tests._processes import stop_process_groups
+from tests._processes import child_pids, stop_process_groups
 from worker import solve
 
 REPO = Path(__file__).resolve().parents[2]
@@ -47,11 +47,6 @@ OUTAGE_S = 6.0
 def long_solve(seed: int) -> dict[str, Any]:
     """60,000 Bellman iterations: about 4 s of solving, through the outage."""
     return random_replacement(60_000, checkpoint_s=0.2, seed=seed)
-
-
-def child_pids(pid: int) -> list[int]:
-    """Children of ``pid`` (Linux /proc)."""
-    return [int(child) for child in Path(f"/proc/{pid}/task/{pid}/children").read_text().split()]
 
 
 class Fleet:

@@ -14,7 +14,6 @@ from __future__ import annotations
 import functools
 import itertools
 import os
-import signal
 import subprocess
 import sys
 import threading
@@ -36,6 +35,7 @@ from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
 from service.task import run_job
 from tests._documents import idle_busy_worn, random_replacement
+from tests._processes import child_pids, kill_group
 from worker.convergence_log import KEEP_FIRST
 from worker.solve import solve
 
@@ -115,28 +115,6 @@ def finished(job: dict[str, Any]) -> bool:
 
 def iterations_of(log: list[dict[str, Any]]) -> list[int]:
     return [entry["iteration"] for entry in log]
-
-
-def child_pids(pid: int) -> list[int]:
-    """Children of ``pid`` (Linux /proc)."""
-    children = []
-    for entry in os.listdir("/proc"):
-        if not entry.isdigit():
-            continue
-        try:
-            stat = Path(f"/proc/{entry}/stat").read_text()
-        except OSError:
-            continue
-        if int(stat.rsplit(")", 1)[1].split()[1]) == pid:
-            children.append(int(entry))
-    return children
-
-
-def kill_group(pgid: int) -> None:
-    try:
-        os.killpg(pgid, signal.SIGKILL)
-    except ProcessLookupError:
-        pass
 
 
 class Workers:
