@@ -5,7 +5,9 @@ from __future__ import annotations
 import os
 import signal
 import subprocess
-from collections.abc import Iterable
+import sys
+from collections.abc import Callable, Iterable, Iterator
+from contextlib import contextmanager
 from pathlib import Path
 
 STOP_TIMEOUT_S = 10.0
@@ -18,6 +20,9 @@ WORKER_LAUNCH = (
     "run_worker()\n"
 )
 """``python -c`` source of a worker process with a notifier thread beside it, as ``run_worker`` is to start one."""
+REPO = Path(__file__).resolve().parents[1]
+WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; run_worker()"]
+"""A plain worker process (no notifier)."""
 
 
 def stop_process_groups(processes: Iterable[subprocess.Popen], timeout_s: float = STOP_TIMEOUT_S) -> None:
@@ -70,3 +75,30 @@ def kill_node(process: subprocess.Popen) -> None:
     for pgid in [*child_pids(process.pid), process.pid][::-1]:
         kill_group(pgid)
     process.wait()
+
+
+@contextmanager
+def worker_nodes(redis_url: str, logs: Path, env: dict[str, str]) -> Iterator[Callable[[], subprocess.Popen]]:
+    """``start()`` starts a worker process on ``redis_url`` (``env`` added to this process's; one thread for
+    BLAS), logging to ``logs/worker-K.log``, each leading its own group; on exit every one still running is
+    killed as a dead machine would be (:func:`kill_node`) and the logs are printed (pytest shows them when the
+    test failed)."""
+    env = {**os.environ, **env, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": str(REPO), "OPENBLAS_NUM_THREADS": "1",
+           "OMP_NUM_THREADS": "1"}
+    processes: list[subprocess.Popen] = []
+
+    def start() -> subprocess.Popen:
+        with open(logs / f"worker-{len(processes)}.log", "wb") as log:
+            process = subprocess.Popen(WORKER_COMMAND, cwd=REPO, env=env, stdout=log, stderr=subprocess.STDOUT,
+                                       start_new_session=True)
+        processes.append(process)
+        return process
+
+    try:
+        yield start
+    finally:
+        for process in processes:
+            if process.poll() is None:
+                kill_node(process)
+        for log in sorted(logs.glob("worker-*.log")):
+            print(f"--- {log.name}\n{log.read_text(errors='replace')[-4000:]}")

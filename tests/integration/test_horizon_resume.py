@@ -11,9 +11,6 @@ invented household over a working life: savings chosen continuously, income risi
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -25,12 +22,10 @@ import redis
 
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
-from tests._processes import child_pids, kill_group
+from tests._processes import child_pids, kill_group, worker_nodes
 from worker import solve
 
-REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1"}
-WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; run_worker()"]
 PERIODS = 24
 
 
@@ -69,27 +64,8 @@ def fast_store(redis_client: redis.Redis, redis_url: str, monkeypatch: pytest.Mo
 
 @pytest.fixture
 def start_worker(redis_url: str, tmp_path: Path) -> Iterator[Any]:
-    env = {**os.environ, **SHORT_LEASES, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": str(REPO),
-           "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
-    processes: list[subprocess.Popen[bytes]] = []
-
-    def start() -> subprocess.Popen[bytes]:
-        with open(tmp_path / f"worker-{len(processes)}.log", "wb") as log:
-            process = subprocess.Popen(WORKER_COMMAND, cwd=REPO, env=env, stdout=log, stderr=subprocess.STDOUT,
-                                       start_new_session=True)
-        processes.append(process)
-        return process
-
-    yield start
-    for process in processes:
-        if process.poll() is None:
-            horses = child_pids(process.pid)
-            kill_group(process.pid)
-            process.wait()
-            for horse in horses:
-                kill_group(horse)
-    for log in sorted(tmp_path.glob("worker-*.log")):  # pytest shows captured output when the test failed
-        print(f"--- {log.name}\n{log.read_text(errors='replace')[-4000:]}")
+    with worker_nodes(redis_url, tmp_path, SHORT_LEASES) as start:
+        yield start
 
 
 def wait_for(store: JobStore, job_id: str, predicate: Any, timeout_s: float, what: str) -> dict[str, Any]:

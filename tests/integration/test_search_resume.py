@@ -10,9 +10,6 @@ interest rate the unknown that clears its capital market (as in ``tests/service/
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
 import time
 from collections.abc import Iterator
 from pathlib import Path
@@ -26,13 +23,11 @@ from service.app import create_app
 from service.checkpoints import decode_checkpoint, encode_checkpoint
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
-from tests._processes import kill_node
+from tests._processes import kill_node, worker_nodes
 from tests.service._http import make_client
 from worker import solve
 
-REPO = Path(__file__).resolve().parents[2]
 SHORT_LEASES = {"FIXQ_LEASE_S": "3", "FIXQ_REAPER_INTERVAL_S": "1", "FIXQ_AUTH": "off"}
-WORKER_COMMAND = [sys.executable, "-c", "from service.task import run_worker; run_worker()"]
 
 
 def market(points: int) -> dict[str, Any]:
@@ -70,23 +65,8 @@ def fast_settings(redis_client: redis.Redis, redis_url: str, monkeypatch: pytest
 
 @pytest.fixture
 def start_worker(redis_url: str, tmp_path: Path) -> Iterator[Any]:
-    env = {**os.environ, **SHORT_LEASES, "FIXQ_REDIS_URL": redis_url, "PYTHONPATH": str(REPO),
-           "OPENBLAS_NUM_THREADS": "1", "OMP_NUM_THREADS": "1"}
-    processes: list[subprocess.Popen[bytes]] = []
-
-    def start() -> subprocess.Popen[bytes]:
-        with open(tmp_path / f"worker-{len(processes)}.log", "wb") as log:
-            process = subprocess.Popen(WORKER_COMMAND, cwd=REPO, env=env, stdout=log, stderr=subprocess.STDOUT,
-                                       start_new_session=True)
-        processes.append(process)
-        return process
-
-    yield start
-    for process in processes:
-        if process.poll() is None:
-            kill_node(process)
-    for log in sorted(tmp_path.glob("worker-*.log")):  # pytest shows captured output when the test failed
-        print(f"--- {log.name}\n{log.read_text(errors='replace')[-4000:]}")
+    with worker_nodes(redis_url, tmp_path, SHORT_LEASES) as start:
+        yield start
 
 
 def test_a_search_whose_worker_died_in_a_trial_resumes_it_and_says_so(
