@@ -23,6 +23,7 @@ from service.app import create_app
 from service.checkpoints import decode_checkpoint, encode_checkpoint
 from service.settings import Settings, get_settings
 from service.store import TERMINAL_STATES, JobStore
+from tests._documents import savings_market
 from tests._processes import kill_node, worker_nodes
 from tests.service._http import make_client
 from worker import solve
@@ -39,19 +40,7 @@ def market(points: int) -> dict[str, Any]:
         "solver": {"method": "howard", "tolerance": 1e-10, "checkpoint_s": 0.01},
         "search": {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
                    "tolerance": 1e-6},
-        "model": {
-            "kind": "grid",
-            "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
-                       "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-                       "w": "(1 - alpha) * capital_demand ** alpha"},
-            "states": {"a": {"min": 0.0, "max": 30.0, "points": points, "spacing": "power", "exponent": 2.0}},
-            "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
-                             "transform": "none"}},
-            "choices": {"save": {"next_of": "a", "continuous": True}},
-            "define": {"c": "(1 + r) * a + w * y - save"},
-            "reward": "log(c)",
-            "feasible": ["c > 0"],
-        },
+        "model": savings_market(points),
     }
 
 

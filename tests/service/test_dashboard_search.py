@@ -16,6 +16,7 @@ import httpx
 import pytest
 
 from service.embedded_redis import EmbeddedRedis
+from tests._documents import savings_market
 from tests.service._browser import CHROMIUM, Browser, Tab
 from tests.service._live_server import LiveServer, wait_until_finished
 
@@ -31,19 +32,7 @@ def _document(search: dict[str, Any] | None) -> dict[str, Any]:
     document: dict[str, Any] = {
         "version": 1, "label": "households and a firm (invented)", "discount": 0.95,
         "solver": {"method": "howard", "tolerance": 1e-10},
-        "model": {
-            "kind": "grid",
-            "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
-                       "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-                       "w": "(1 - alpha) * capital_demand ** alpha"},
-            "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
-            "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
-                             "transform": "none"}},
-            "choices": {"save": {"next_of": "a", "continuous": True}},
-            "define": {"c": "(1 + r) * a + w * y - save"},
-            "reward": "log(c)",
-            "feasible": ["c > 0"],
-        },
+        "model": savings_market(),
     }
     if search is not None:
         document["search"] = search

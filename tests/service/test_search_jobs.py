@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import httpx
 
+from tests._documents import savings_market
 from tests.service._http import run_inline
 from worker import solve
 
@@ -21,19 +22,7 @@ def _document(search: dict) -> dict:
     firm's wage and capital demand as params given as expressions of r."""
     return {
         "version": 1, "discount": 0.95, "solver": {"method": "howard", "tolerance": 1e-10}, "search": search,
-        "model": {
-            "kind": "grid",
-            "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
-                       "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-                       "w": "(1 - alpha) * capital_demand ** alpha"},
-            "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
-            "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]},
-                             "transform": "none"}},
-            "choices": {"save": {"next_of": "a", "continuous": True}},
-            "define": {"c": "(1 + r) * a + w * y - save"},
-            "reward": "log(c)",
-            "feasible": ["c > 0"],
-        },
+        "model": savings_market(),
     }
 
 

@@ -21,7 +21,7 @@ import pytest
 from pydantic import BaseModel, ValidationError
 
 from service.examples import example_names, load_example
-from tests._documents import aging_saver, grid_document, log_growth, machine_shop, two_peaks
+from tests._documents import aging_saver, grid_document, log_growth, machine_shop, savings_market, two_peaks
 from tests._mixed_models import household_document
 from worker import solve
 from worker.coarse_start import COARSE_MIN_POINTS
@@ -31,22 +31,7 @@ from worker.result_document.reports import SeriesSummary
 
 SIMULATION = {"periods": 12, "paths": 6, "seed": 3}
 
-ECONOMY: dict[str, Any] = {
-    "kind": "grid",
-    "params": {
-        "r": 0.02,
-        "alpha": 0.36,
-        "delta": 0.08,
-        "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-        "w": "(1 - alpha) * capital_demand ** alpha",
-    },
-    "states": {"a": {"min": 0.0, "max": 30.0, "points": 30, "spacing": "power", "exponent": 2.0}},
-    "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
-    "choices": {"save": {"next_of": "a", "continuous": True}},
-    "define": {"c": "(1 + r) * a + w * y - save"},
-    "reward": "log(c)",
-    "feasible": ["c > 0"],
-}
+ECONOMY: dict[str, Any] = savings_market(30)
 """Invented: households saving in an asset, their wage and capital demand given by the interest rate r."""
 
 

@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
+from tests._documents import savings_market
 from worker.search_several import find_common_root
 from worker.solve import solve
 
@@ -30,18 +31,8 @@ BOTH = {"unknowns": {"r": {"min": 0.0, "max": 0.052}, "tau": {"min": 0.0, "max":
 
 
 def _taxed(search: dict[str, Any] | None, r: float = 0.02, tau: float = 0.1) -> dict[str, Any]:
-    model = {
-        "kind": "grid",
-        "params": {"r": r, "tau": tau, "alpha": 0.36, "delta": 0.08,
-                   "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-                   "w": "(1 - alpha) * capital_demand ** alpha"},
-        "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
-        "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
-        "choices": {"save": {"next_of": "a", "continuous": True}},
-        "define": {"c": "(1 + r) * a + (1 - tau) * w * y + tau * w - save"},
-        "reward": "log(c)",
-        "feasible": ["c > 0"],
-    }
+    model = savings_market(define={"c": "(1 + r) * a + (1 - tau) * w * y + tau * w - save"})
+    model["params"] = {**model["params"], "r": r, "tau": tau}
     document = {"version": 1, "discount": 0.95, "model": model, "solver": {"method": "howard", "tolerance": 1e-10}}
     if search is not None:
         document["search"] = search

@@ -20,6 +20,7 @@ import pytest
 from scipy.optimize import brentq
 
 import worker.search_trials as search_trials
+from tests._documents import savings_market
 from worker.errors import InvalidDocument
 from worker.search_outer import NoRoot, estimate_root, find_root
 from worker.solve import compile_document, solve
@@ -28,19 +29,7 @@ from worker.solvers import METHODS
 ALPHA, DELTA = 0.36, 0.08
 DOCUMENT: dict[str, Any] = {
     "version": 1, "discount": 0.95, "solver": {"method": "howard", "tolerance": 1e-10},
-    "model": {
-        "kind": "grid",
-        "params": {"r": 0.02, "alpha": ALPHA, "delta": DELTA,
-                   "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
-                   "w": "(1 - alpha) * capital_demand ** alpha"},
-        "states": {"a": {"min": 0.0, "max": 30.0, "points": 40, "spacing": "power", "exponent": 2.0}},
-        "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
-        "choices": {"save": {"next_of": "a", "continuous": True}},
-        "define": {"c": "(1 + r) * a + w * y - save"},
-        "reward": "log(c)",
-        "feasible": ["c > 0"],
-        "hints": {"monotone": True, "concave": True},
-    },
+    "model": savings_market(hints={"monotone": True, "concave": True}),
 }
 """Invented: the households of the economy."""
 MARKET = {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
