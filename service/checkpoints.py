@@ -1,6 +1,7 @@
 """Solver checkpoints in Redis: the ``checkpoint`` object of an execution, and its bytes.
 
-``RedisCheckpoint`` is what ``service.task`` hands to ``solve``: ``save``
+``RedisCheckpoint`` is what ``service.task`` hands to ``solve``: ``has_state`` says whether one is stored
+(without decoding it); ``save``
 stores the state if its iteration is not older than the stored one and the
 lease is still the execution's (a failed save is logged and the solve goes
 on); ``load`` returns it and rewrites the stored log to the checkpoint's.
@@ -66,6 +67,12 @@ class RedisCheckpoint:
 
     def __init__(self, execution: Any) -> None:
         self.execution = execution
+
+    def has_state(self) -> bool:
+        """Whether a checkpoint is stored, without reading it (``worker.coarse_solve`` asks this before a
+        solve's own ``load``: a resumed solve then decodes its state once)."""
+        execution = self.execution
+        return bool(execution.store.redis.exists(execution.store.keys.checkpoint(execution.job_id)))
 
     def load(self) -> dict[str, Any] | None:
         execution = self.execution

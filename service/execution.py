@@ -81,6 +81,9 @@ class Execution:
         self._trim_from = -1
         self._finished = False
         self._last_iteration = 0
+        # A search's trial rows by number (log entries with ``search_trial``, a resumed checkpoint's included):
+        # the record's summary of a search that ends without a result (canceled, failed) is made from them.
+        self._trials: dict[int, dict[str, Any]] = {}
         self._last_flush = time.monotonic()
         self.worker = f"{socket.gethostname()}:{os.getpid()}"
         self._attempts = b""
@@ -129,11 +132,11 @@ class Execution:
             if self.lease_lost.is_set():
                 return self._lost()
             self._final_flush()
-            return self._finish("canceled", iterations=exc.context.get("iteration"))
+            return self._finish("canceled", iterations=exc.context.get("iteration"), search=self._stopped("canceled"))
         except FixqError as exc:
             self._final_flush()
             trials = exc.context.get("trials")
-            search = failed_search_summary(trials) if isinstance(trials, list) else None
+            search = failed_search_summary(trials) if isinstance(trials, list) else self._stopped("failed")
             return self._finish("failed", error={"title": exc.title, "detail": exc.detail, "errors": exc.errors},
                                 search=search)
         except redis.RedisError:
@@ -144,14 +147,33 @@ class Execution:
         except JobTimeoutException:
             self._final_flush()
             detail = f"the solve ran longer than job_timeout_s ({self.settings.job_timeout_s} s) and was stopped"
-            return self._finish("failed", error={"title": "job timed out", "detail": detail, "errors": []})
+            return self._finish("failed", error={"title": "job timed out", "detail": detail, "errors": []},
+                                search=self._stopped("failed"))
         except Exception as exc:
             logger.exception("job %s: the solve raised", self.job_id)
             self._final_flush()
             detail = f"the solver stopped on an internal error: {type(exc).__name__}: {exc}"[:500]
-            return self._finish("failed", error={"title": "solver error", "detail": detail, "errors": []})
+            return self._finish("failed", error={"title": "solver error", "detail": detail, "errors": []},
+                                search=self._stopped("failed"))
         self._final_flush()
         return self._finish("done", result=result)
+
+    def _stopped(self, state: str) -> dict[str, Any] | None:
+        """The record's ``search`` of a search that ended ``state`` without a result: the trials it made, the
+        last one's unknowns and residuals (:func:`failed_search_summary`); None when no trial ended."""
+        if not self._trials:
+            return None
+        return failed_search_summary([self._trials[number] for number in sorted(self._trials)], status=state)
+
+    def _keep_trials(self, entries: list[dict[str, Any]]) -> None:
+        """Keep the search trials of ``entries``; a trial's number again (a search not resumed from what is
+        stored) supersedes it and every later one."""
+        for entry in entries:
+            number, row = entry.get("iteration"), entry.get("search_trial")
+            if isinstance(number, int) and isinstance(row, dict):
+                for later in [n for n in self._trials if n >= number]:
+                    del self._trials[later]
+                self._trials[number] = row
 
     def _finish(self, state: str, **outcome: Any) -> str:
         def write() -> bool:
@@ -276,6 +298,7 @@ class Execution:
             self._trim_from = iteration
         if isinstance(iteration, int):
             self._last_iteration = iteration
+        self._keep_trials([entry])
         self._buffer.append(entry)
         if time.monotonic() - self._last_flush >= self.settings.progress_interval_s:
             self.flush()
@@ -323,6 +346,8 @@ class Execution:
         """Make the stored log exactly ``entries`` (a checkpoint's log)."""
         self._buffer = []
         self._trim_from = 0
+        self._trials = {}
+        self._keep_trials(entries)
         written = self.store.write_log(self.job_id, self.token, entries, progress=None, trim_from=-1)
         if not written and self.still_ours():
             written = self.store.write_log(self.job_id, self.token, entries, progress=None, trim_from=-1)

@@ -24,7 +24,7 @@ def coarse_start(doc: Any, problem: Any, cap: dict[str, int], checkpoint: Any, s
     not suit the model: the fine solve then starts from ``solver.initial`` and says what is wrong, if anything).
     The coarse level starts from its own coarse start; ``cap`` bounds its memory (``worker.solve``'s), ``limit``
     its time (seconds, None: no limit)."""
-    if not starts_coarse(doc) or (checkpoint is not None and checkpoint.load()):
+    if not starts_coarse(doc) or (checkpoint is not None and _holds_state(checkpoint)):
         return None
     from worker.gridmodel import compile_grid
     from worker.solvers import METHODS
@@ -52,6 +52,14 @@ def coarse_start(doc: Any, problem: Any, cap: dict[str, int], checkpoint: Any, s
         "seconds": time.perf_counter() - started,
     }
     return carried_value(coarse_problem.axes, outcome.value, problem.axes), figures
+
+
+def _holds_state(checkpoint: Any) -> bool:
+    """Whether ``checkpoint`` holds a state the solve will resume from, asked without loading it where the
+    checkpoint can say so (``has_state()``: the service's answers from Redis without decoding the state or
+    rewriting the job's log; the solve's own ``load`` is then the only one), else by ``load()``."""
+    has_state = getattr(checkpoint, "has_state", None)
+    return bool(has_state()) if callable(has_state) else bool(checkpoint.load())
 
 
 def left_after(limit: float | None, coarse: dict[str, Any] | None) -> float | None:

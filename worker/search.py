@@ -117,7 +117,9 @@ def run_search(
         so it asks for the same trials again, and those already made are answered from the saved rows without
         solving; the next solve starts from the saved value.  Each trial's solve saves its own state within the
         search's too (:class:`worker.search_trials.TrialCheckpoint`), and the trial it was saved in goes on
-        from it.
+        from it.  The result's ``diagnostics.resumed_from_iteration`` is the trials the checkpoint held, and
+        ``diagnostics.resumed_trial_iteration`` the iteration the next trial's solve went on from, when the
+        checkpoint was saved inside it.
     fingerprint : identifies the document for the checkpoint (``worker.solve``'s hash of it).
 
     Raises
@@ -147,6 +149,7 @@ def run_search(
     saved = checkpoint.load() if checkpoint is not None else None
     replay: dict[tuple[tuple[float, ...], float, bool], dict[str, Any]] = {}
     resumed_from: int | None = None  # the checkpoint's trial count, when one is resumed from
+    within: dict[str, int] = {}  # "iteration": where the trial under way at the save resumed its solve
     if saved is not None and saved.get("kind") == "search" and saved.get("fingerprint") == fingerprint:
         resumed_from = int(saved["iteration"])
         # Rows saved before guiding trials existed were all certified.
@@ -201,6 +204,8 @@ def run_search(
         except InvalidDocument as exc:
             # The document held at its own values; name the trial's, or the fault reads as the document's.
             raise _at_trial(exc, names, xs, spec) from None
+        if outcome.resumed_from_iteration is not None:  # the trial's solve went on from its saved state
+            within.setdefault("iteration", int(outcome.resumed_from_iteration))
         pi, info = trial_distribution(problem.policy_matrix(outcome.policy), last.get("pi"), factors)
         residuals = [_residual(c, trial_doc, problem, outcome.policy, pi, join_path("search.conditions", k),
                                _point(names, xs))
@@ -331,6 +336,8 @@ def run_search(
     if resumed_from is not None:
         # The final solve is a fresh one; the search itself went on from the checkpoint's trials.
         result["diagnostics"]["resumed_from_iteration"] = resumed_from
+        if within:  # saved inside trial resumed_from + 1, whose solve went on from there
+            result["diagnostics"]["resumed_trial_iteration"] = within["iteration"]
     return result
 
 

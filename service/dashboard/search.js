@@ -70,16 +70,35 @@
     } else {
       const found = Object.entries(summary.unknowns || {}).map(([name, value]) => `${name} = ${Number(value).toPrecision(10)}`).join(", ");
       const residuals = (summary.residuals || []).map((value) => formatBound(value)).join(", ");
+      // Each status in the README's words ("Searches: equilibria and calibrations in one job"); none but
+      // converged is a point found.
+      const nearest = nearestTrial();
       const words = {
         converged: `Found ${found}: every condition within the search's tolerance (residuals ${residuals}).`,
-        not_met: `Not met: the closest point found is ${found} (residuals ${residuals}); see the warnings.`,
-        max_trials: `Stopped after search.max_trials solves at ${found} (residuals ${residuals}), not within the tolerance.`,
-        no_root: `No root in the bracket: the conditions have the same sign at its ends (last trial ${found}, residuals ${residuals}).`,
+        not_met: `Not met: the search stopped at ${found} (residuals ${residuals}) without every condition within the tolerance; the point is not a solution (see the warnings).`,
+        max_trials: `Stopped after search.max_trials solves at ${found} (residuals ${residuals}), not within the tolerance; the point is not a solution.`,
+        max_iterations: `Stopped: a solve used up solver.max_iterations at ${found} (residuals ${residuals}); the point is not a solution.`,
+        time_limit: `Stopped: the time limit ran out during a solve at ${found} (residuals ${residuals}); the point is not a solution.`,
+        no_root: `No sign change: the condition has the same sign at every trial, the bracket's ends included, so no root was found${nearest ? ` (nearest zero: ${nearest})` : ""}; see the error.`,
+        canceled: `Canceled; the last trial made was at ${found} (residuals ${residuals}), not a solution.`,
+        failed: `Failed; the last trial made was at ${found} (residuals ${residuals}), not a solution; see the error.`,
       };
       parts.push(words[summary.status] || `Search ${summary.status}: ${found} (residuals ${residuals}).`);
       parts.push(`${formatCount(summary.trials)} trials.`);
     }
     document.getElementById("search-summary").textContent = parts.join(" ");
+  }
+
+  // The trial whose largest |residual| is smallest, as "r = ..., residual ..." (null before any trial).
+  function nearestTrial() {
+    let best = null;
+    for (const trial of trials.values()) {
+      const size = Math.max(...trial.residuals.map((value) => Math.abs(value)));
+      if (best === null || size < best[0]) best = [size, trial];
+    }
+    if (best === null) return null;
+    const at = Object.entries(best[1].unknowns).map(([name, value]) => `${name} = ${Number(value).toPrecision(10)}`).join(", ");
+    return `${at}, residual ${best[1].residuals.map((value) => formatBound(value)).join(", ")}`;
   }
 
   function renderTable(rows) {

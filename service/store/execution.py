@@ -44,12 +44,15 @@ def search_summary(search: dict[str, Any]) -> dict[str, Any]:
             "trials": len(search.get("trials") or [])}
 
 
-def failed_search_summary(trials: list[dict[str, Any]]) -> dict[str, Any]:
-    """The record's ``search`` of a search that failed (no root in the bracket): status ``no_root``, the
-    unknowns and residuals of its last trial (the one that showed no sign change), and the number of trials."""
+def failed_search_summary(trials: list[dict[str, Any]], status: str = "no_root") -> dict[str, Any]:
+    """The record's ``search`` of a search that ended without a result: ``status`` (``no_root``: no sign
+    change in the bracket; ``canceled``, ``failed``: the job's state, for a search canceled or stopped by
+    another fault after ``trials``), the unknowns and residuals of its last trial, and the number of trials.
+    None of these statuses is ``converged``: the last trial is where the search was, not a point found."""
     last = trials[-1] if trials else {}
-    return {"status": "no_root", "unknowns": last.get("unknowns"), "residuals": last.get("residuals"),
+    return {"status": status, "unknowns": last.get("unknowns"), "residuals": last.get("residuals"),
             "trials": len(trials)}
+
 
 class ExecutionWrites:
     """The lease-guarded writes of an execution and the reaper's compare-and-set transitions."""

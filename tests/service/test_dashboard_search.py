@@ -118,8 +118,15 @@ def test_a_search_without_a_root_shows_its_trials(server: LiveServer, api: httpx
     trials = record["search"]["trials"]  # from the document's r towards the root, then the bracket's ends
     assert trials >= 2
     tab.goto(f"{server.url}/jobs/{job_id}")
-    tab.wait_for(f"{ROWS} === {trials} && document.getElementById('search-summary').textContent.startsWith('No root')")
+    tab.wait_for(f"{ROWS} === {trials} && "
+                 "document.getElementById('search-summary').textContent.startsWith('No sign change')")
     assert "no root in the bracket" in tab.evaluate("document.getElementById('failure-list').textContent")
+    # The summary names the trial nearest zero (the log's rows), not a root that is not there.
+    rows = [entry["search_trial"] for entry in api.get(f"/v1/jobs/{job_id}/log", params={"limit": 500}).json()["data"]]
+    nearest = min(rows, key=lambda row: abs(row["residuals"][0]))
+    summary = tab.evaluate("document.getElementById('search-summary').textContent")
+    assert f"nearest zero: r = {nearest['unknowns']['r']:.10g}"[:24] in summary, summary
+    assert "No root" not in summary
     assert tab.problems() == []
 
 

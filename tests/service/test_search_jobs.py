@@ -7,11 +7,16 @@ Redis server of the fixtures.  The document is the invented economy of ``tests/w
 
 from __future__ import annotations
 
+import threading
+import time
+from typing import Any
+
 import httpx
+import pytest
 
 from tests._documents import savings_market
 from tests.service._http import run_inline
-from worker import solve
+from worker import search_trials, solve
 
 MARKET = {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
           "tolerance": 1e-6}
@@ -62,3 +67,41 @@ def test_a_search_without_a_root_fails_naming_the_ends(client: httpx.Client) -> 
     assert all(0.0 <= row["unknowns"]["r"] <= 0.02 for row in rows)
     assert record["search"] == {"status": "no_root", "unknowns": rows[-1]["unknowns"],
                                 "residuals": rows[-1]["residuals"], "trials": len(rows)}
+
+
+def test_a_canceled_search_keeps_its_trials_in_the_job_record(client: httpx.Client,
+                                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    """DELETE on a running search: the job ends ``canceled`` and its record carries the trials made so far
+    (status ``canceled``, never ``converged``; the last trial's unknowns and residuals), as the log holds them.
+    The third trial waits until the cancel is sent, so the test does not race the search."""
+    original = search_trials.TrialModels.solve
+    calls: list[tuple[float, ...]] = []
+    third, canceled = threading.Event(), threading.Event()
+
+    def held(self: Any, xs: tuple[float, ...], *args: Any, **kwargs: Any) -> Any:
+        calls.append(xs)
+        if len(calls) == 3:
+            third.set()
+            assert canceled.wait(30)
+            time.sleep(0.2)  # past stop_check_interval_s (0.1 s), so that the next check asks Redis
+        return original(self, xs, *args, **kwargs)
+
+    monkeypatch.setattr(search_trials.TrialModels, "solve", held)
+    job_id = _submit(client, _document(MARKET))
+    outcome: dict[str, Any] = {}
+    runner = threading.Thread(target=lambda: outcome.update(run_inline(job_id)))
+    runner.start()
+    try:
+        assert third.wait(60)
+        assert client.delete(f"/v1/jobs/{job_id}").status_code == 202
+    finally:
+        canceled.set()
+        runner.join(60)
+    assert outcome["outcome"] == "canceled"
+    record = client.get(f"/v1/jobs/{job_id}").json()
+    assert record["state"] == "canceled"
+    rows = [entry["search_trial"] for entry in
+            client.get(f"/v1/jobs/{job_id}/log", params={"limit": 100}).json()["data"]]
+    assert len(rows) == 2 and [row["unknowns"]["r"] for row in rows] == [xs[0] for xs in calls[:2]]
+    assert record["search"] == {"status": "canceled", "unknowns": rows[-1]["unknowns"],
+                                "residuals": rows[-1]["residuals"], "trials": 2}

@@ -446,6 +446,37 @@ def test_a_search_stopped_in_the_middle_of_a_trial_resumes_that_trials_solve(
     assert [row["unknowns"] for row in resumed["search"]["trials"]] == [row["unknowns"] for row in fresh["trials"]]
     assert [row["iterations"] for row in resumed["search"]["trials"]] == [row["iterations"] for row in fresh["trials"]]
     assert resumed["search"]["unknowns"] == fresh["unknowns"]
+    # Where the resume started: three trials held complete, the fourth's solve from its saved iteration.
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 3
+    assert resumed["diagnostics"]["resumed_trial_iteration"] == inner_iteration
+
+
+def test_a_search_stopped_inside_its_first_trial_says_where_that_trial_resumed() -> None:
+    """A checkpoint saved inside the first trial holds no trial complete: resumed_from_iteration is 0 (the
+    number of trials it held) and resumed_trial_iteration the iteration the first trial's solve went on from;
+    before, the result read 0 alone, as if the search had started over."""
+    from worker.errors import Canceled
+
+    document = _document(MARKET)
+    document["solver"]["checkpoint_s"] = 1e-9
+    memory = _Memory()
+
+    def in_first_trial() -> bool:
+        state = memory.state or {}
+        return str(state.get("trial:key", "")).startswith("1:") and state.get("trial:iteration", 0) >= 1
+
+    with pytest.raises(Canceled):
+        solve(document, checkpoint=memory, should_stop=in_first_trial)
+    assert memory.state is not None and memory.state["iteration"] == 0
+    inner_iteration = memory.state["trial:iteration"]
+    resumed = solve(document, checkpoint=memory)
+    assert resumed["search"]["status"] == "converged"
+    assert resumed["diagnostics"]["resumed_from_iteration"] == 0
+    assert resumed["diagnostics"]["resumed_trial_iteration"] == inner_iteration >= 1
+    # A search resumed between trials has no trial resumed inside, and a search never stopped neither key.
+    fresh = solve(document)
+    assert fresh["diagnostics"]["resumed_from_iteration"] is None
+    assert "resumed_trial_iteration" not in fresh["diagnostics"]
 
 
 def test_a_checkpoint_of_another_document_is_ignored() -> None:

@@ -354,8 +354,10 @@ class Diagnostics(Reported):
         "not hold, a search that did not meet its tolerance, ...)."
     )
     resumed_from_iteration: int | None = Field(
-        description="The checkpoint's iteration when the solve resumed from one (a worker was lost); for a search, "
-        "the number of trials its checkpoint held; else null."
+        description="The checkpoint's iteration when the solve resumed from one (a worker was lost); else null. For "
+        "a search, a log entry's iteration is a trial's number: this is the number of trials its checkpoint held "
+        "complete (answered from it without solving again), 0 when it was saved inside the first trial; "
+        "resumed_trial_iteration then says where within the next trial the resume started."
     )
     verification: Union[Verification, HorizonVerification, None] = Field(
         description="With speed hints: the unrestricted check of the hinted search; null without hints."
@@ -395,6 +397,10 @@ class Diagnostics(Reported):
         description="With report.euler_errors, where the model has the form they need (notes say why not otherwise)."
     )
     horizon: HorizonDiagnostics = absent_unless(description="With model.horizon.")
+    resumed_trial_iteration: int = absent_unless(
+        description="A search resumed from a checkpoint saved inside a trial (number resumed_from_iteration + 1): "
+        "the iteration that trial's solve went on from (its own solver's checkpoint iteration)."
+    )
     coarse_start: CoarseStart = absent_unless(
         description=f"A solve from zeros of a model with a continuous choice and a state grid of {COARSE_MIN_POINTS} "
         "points or more."
