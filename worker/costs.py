@@ -322,12 +322,14 @@ def stationary_lu_entries(n: int, entries: int, bandwidth: int | None = None, *,
 def every_state_moves(doc: Any) -> bool:
     """Whether ``doc`` is a grid model of two or more states, each set by a choice (``next_of``) or a ``next``
     expression: the pattern :data:`STATIONARY_ENVELOPE_SHARE` was measured on.  A state that keeps its value (a
-    fixed type) splits the chain into blocks whose LU may be made, so it is priced as one state's."""
+    fixed type, whose ``next`` is its own name) splits the chain into blocks whose LU may be made, so it is
+    priced as one state's."""
     model = doc.model
     if getattr(model, "kind", None) != "grid" or len(model.states) < 2:
         return False
     set_by_choice = {choice.next_of for choice in model.choices.values() if choice.next_of is not None}
-    return all(name in model.next or name in set_by_choice for name in model.states)
+    moved_by_law = {name for name, law in model.next.items() if str(law).replace(" ", "") != name}
+    return all(name in moved_by_law or name in set_by_choice for name in model.states)
 
 
 def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
