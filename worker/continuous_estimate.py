@@ -44,10 +44,10 @@ took 660–890 ns a point on the savings shapes of ``bench/bench_estimates.py --
 PROOF_POINTS = 40
 """Evaluations per point of the proof at the incumbent that verifies a hinted solve (count; measured
 1,400–1,500 ns a point on the same shapes at 200, 1,000 and 5,000 points, about 37 at ``POINT_NS``)."""
-SCAN_POINT_NS = 20.0
+SCAN_POINT_NS = 10.0
 """One point of an unhinted search's scan of the choice's grid (nanoseconds; a compiled loop over candidates,
-cheaper than a search's evaluation: measured 11–16 at 200 and 1,000 points, 26–29 at 3,000, where the
-continuation read at 512 candidates no longer stays in cache; the same shapes)."""
+cheaper than a search's evaluation: measured 9–15 at 200, 1,000 and 3,000 points on a quiet machine, and up to
+29 while the machine was loaded; the same shapes)."""
 _SEARCH_BYTES_PER_POINT = 8 * 6
 """The search's outputs and scratch per point: value, choice, reward, order, previous point, guess (bytes)."""
 _GRID_SCAN_MAX = 512
@@ -105,13 +105,17 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     sizes = [axis.size for axis in model.states.values()]
     total_ns = solve_ns(sizes, steps, evaluation_steps)
     if starts_coarse(doc):
-        # worker.coarse_start: the coarsest level from zeros at the steps of a whole solve, every finer level and
+        # worker.coarse_start: the coarsest level from zeros as a whole solve, every finer level and
         # the fine solve seeded, at a few iterations each (value iteration: as from zeros, conservatively), with
         # the evaluation steps those iterations bring.
         levels = coarse_levels(sizes)
         seeded = steps if method == "value_iteration" else min(steps, COARSE_FINE_ITERATIONS)
         seeded_evaluations = evaluation_steps * seeded / max(steps, 1)
-        total_ns = solve_ns(levels[-1], steps, evaluation_steps) + sum(
+        # The coarsest level's iterations as a whole solve's with its own scan (the Howard count grows with it).
+        coarsest_scan = min(dict(zip(model.states, levels[-1]))[choice.next_of], _GRID_SCAN_MAX) \
+            if choice.next_of is not None else scan
+        first_steps, first_evaluations, _ = iteration_steps(doc, coarsest_scan, moving_divisor=1)
+        total_ns = solve_ns(levels[-1], first_steps, first_evaluations) + sum(
             solve_ns(level, seeded, seeded_evaluations) for level in [*levels[:-1], sizes])
         share = sum(math.prod(level) for level in levels) / grid_states
         basis += (f"; a coarse start on {len(levels)} level(s) of {share:.2g} of the points in all, the "
