@@ -45,9 +45,11 @@ PROOF_POINTS = 40
 """Evaluations per point of the proof at the incumbent that verifies a hinted solve (count; measured
 1,400–1,500 ns a point on the same shapes at 200, 1,000 and 5,000 points, about 37 at ``POINT_NS``)."""
 SCAN_POINT_NS = 10.0
-"""One point of an unhinted search's scan of the choice's grid (nanoseconds; a compiled loop over candidates,
-cheaper than a search's evaluation: measured 9–15 at 200, 1,000 and 3,000 points on a quiet machine, and up to
-29 while the machine was loaded; the same shapes)."""
+"""One point of an unhinted search's scan of a ``next_of`` choice, whose candidates are the grid's own points,
+tomorrow's value read there without interpolating (nanoseconds; measured 5–15 on the savings shapes of
+``bench/bench_estimates.py --continuous`` at 200, 1,000 and 3,000 points, from unhinted less hinted solves, and
+up to 29 while the machine was loaded).  A choice of its own interval interpolates at every candidate: its scan
+is priced at ``POINT_NS`` a candidate, as a search's evaluation."""
 _SEARCH_BYTES_PER_POINT = 8 * 6
 """The search's outputs and scratch per point: value, choice, reward, order, previous point, guess (bytes)."""
 _GRID_SCAN_MAX = 512
@@ -84,6 +86,7 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
               + report_bytes(doc, n, entries, euler) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     combos = combos_of(model, name)  # searched for each
+    scan_ns = SCAN_POINT_NS if choice.next_of is not None else POINT_NS
     per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
@@ -97,7 +100,7 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         points = grid * shocks
         scanned = 0 if hinted else (min(dict(zip(model.states, sizes))[choice.next_of], _GRID_SCAN_MAX)
                                     if choice.next_of is not None else choice.size)
-        point_ns = combos * draws * (SEARCH_POINTS * POINT_NS + scanned * SCAN_POINT_NS)
+        point_ns = combos * draws * (SEARCH_POINTS * POINT_NS + scanned * scan_ns)
         expectation = grid * shocks * shocks * EXPECTATION_NS
         return (iterations * (points * point_ns + ITERATION_S * 1e9 + expectation)
                 + evaluations * (expectation + points * nodes * draws * MATVEC_NS))
@@ -127,7 +130,7 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         # evaluations (it held at 99.7-100 % of the points of the accuracy benchmark).
         proof = states == 1 and draws == 1 and choice.next_of is not None
         seconds += n * combos * draws * (PROOF_POINTS * POINT_NS if proof
-                                         else SEARCH_POINTS * POINT_NS + scan * SCAN_POINT_NS) * 1e-9
+                                         else SEARCH_POINTS * POINT_NS + scan * scan_ns) * 1e-9
     seconds += report_seconds(doc, n, entries, euler) + horizon_seconds(doc, n)
     seconds += euler_searches * SEARCH_POINTS * POINT_NS * 1e-9
     compile_bytes = compile_memory(model)
@@ -155,7 +158,7 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         "compile_basis": compile_basis,
         "seconds": seconds,
         "basis": (f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each"
-                  + ("" if hinted else f", {SCAN_POINT_NS:g} ns a scanned point") + ")"),
+                  + ("" if hinted else f", {scan_ns:g} ns a scanned point") + ")"),
         "notes": notes,
     }
 
