@@ -40,7 +40,8 @@ __all__ = ["PROOF_POINTS", "SCAN_POINT_NS", "SEARCH_POINTS", "continuous_estimat
 SEARCH_POINTS = 20
 """Evaluations of the model per point in a hinted search of a continuous choice (count; a bracket and
 Brent's method, measured at 15–40 on the accuracy benchmark; priced at ``POINT_NS`` each, a hinted Bellman step
-took 660–890 ns a point on the savings shapes of ``bench/bench_estimates.py --continuous``, 2026-12-05)."""
+took 660–970 ns a point, 1,140 under load, on the savings shapes of ``bench/bench_estimates.py --continuous``,
+2026-12-05)."""
 PROOF_POINTS = 40
 """Evaluations per point of the proof at the incumbent that verifies a hinted solve (count; measured
 1,400–1,500 ns a point on the same shapes at 200, 1,000 and 5,000 points, about 37 at ``POINT_NS``)."""
