@@ -2,7 +2,8 @@
 
 Run from the repository root: ``python bench/bench_estimates.py`` (add ``--large`` for three grid models of
 29,000 to 300,000 points, ``--rss`` for the resident-memory column, ``--cold`` for the first solve of each
-structure with an empty kernel cache).  Target, printed with PASS or FAIL: every ratio estimate / measured
+structure with an empty kernel cache; ``--continuous`` alone for the time of sixteen models with a continuous
+choice, :func:`continuous_main`).  Target, printed with PASS or FAIL: every ratio estimate / measured
 within [1/2, 2].  Besides the set, two documents are solved under a memory cap that leaves their tables
 out (``POINTWISE``), for the exact pointwise search through an interpolated state.
 
@@ -17,7 +18,7 @@ What is measured (the figures the estimate promises):
   second solve is printed beside it, for information: freed memory the allocator keeps makes it smaller than
   the traced peak, and memory returned to the system in between makes it larger;
 * time: the wall time of a warm solve (kernels compiled and loaded, the document solved once before), the
-  least of ``REPEATS`` — the ``seconds`` of the estimate;
+  median of ``REPEATS`` — the ``seconds`` of the estimate;
 * with ``--cold``: a fresh process per grid document with an empty kernel folder (``FIXQ_KERNEL_CACHE``, the
   cold bridge off, so it waits for its kernels) imports fixq, solves the document, then solves it again: the
   first solve's extra time (``cold+``) is compared with ``compile_seconds``; a second fresh process on the same,
@@ -27,7 +28,7 @@ What is measured (the figures the estimate promises):
 The documents: ``tests/_estimate_set.py``'s set, its ``method_variants`` (the taste-shock and draw documents by
 policy iteration and value iteration) and ``POINTWISE``.
 
-The machine may be shared and noisy: time ratios are those of this run (the least of the repeats), and
+The machine may be shared and noisy: time ratios are those of this run (the median of the repeats), and
 the test ``tests/worker/test_estimates_accuracy.py`` asserts the memory ratios only.
 """
 
@@ -46,6 +47,7 @@ os.environ.setdefault("FIXQ_COLD_BRIDGE", "off")
 
 from tests._estimate_set import (  # noqa: E402
     POINTWISE,
+    continuous_shapes,
     documents,
     measure_memory,
     measure_seconds,
@@ -56,7 +58,9 @@ from worker.document import parse_document  # noqa: E402
 from worker.estimate import estimate  # noqa: E402
 
 REPEATS = 5
-"""Timed warm solves per document; the least is compared (count)."""
+"""Timed warm solves per document; their median is compared (count)."""
+CONTINUOUS_REPEATS = 7
+"""Timed warm solves per document of ``--continuous`` (count; the median is compared)."""
 FACTOR = 2.0
 """Largest ratio estimate / measured, and its inverse the smallest (dimensionless)."""
 _MIB = 2**20
@@ -106,7 +110,31 @@ def verdict(ratio: float) -> str:
     return "ok" if 1 / FACTOR <= ratio <= FACTOR else "OUT"
 
 
+def continuous_main() -> int:
+    """``--continuous``: the time estimate of :func:`tests._estimate_set.continuous_shapes` against the median of
+    ``CONTINUOUS_REPEATS`` warm solves, with the solve's iterations and evaluation steps and the coarse start's
+    iterations (the counts the estimate guesses)."""
+    from worker import solve
+
+    print(f"{'document':30s} {'est s':>8s} {'median s':>9s} {'ratio':>6s}    iterations (coarse)  evaluation steps")
+    ratios = []
+    for name, raw in continuous_shapes().items():
+        size = estimate(parse_document(raw))
+        seconds = measure_seconds(raw, CONTINUOUS_REPEATS)
+        result = solve(raw)
+        coarse = (result["diagnostics"].get("coarse_start") or {}).get("iterations", 0)
+        ratios.append(size["seconds"] / seconds)
+        print(f"{name:30s} {size['seconds']:8.4f} {seconds:9.4f} {ratios[-1]:6.2f} {verdict(ratios[-1]):3s} "
+              f"{result['iterations']:4d} ({coarse:3d})        {result['evaluation_steps']:6d}", flush=True)
+    ok = all(1 / FACTOR <= ratio <= FACTOR for ratio in ratios)
+    print(f"continuous time ratios {min(ratios):.2f} to {max(ratios):.2f}: {'PASS' if ok else 'FAIL'} "
+          f"(within {FACTOR:g}x, this run)")
+    return 0 if ok else 1
+
+
 def main(argv: list[str]) -> int:
+    if "--continuous" in argv:
+        return continuous_main()
     large, rss, cold = "--large" in argv, "--rss" in argv, "--cold" in argv
     rows = []
     print(f"{'document':28s} {'est MiB':>9s} {'traced':>9s} {'ratio':>6s}    {'est s':>8s} {'warm s':>8s} "

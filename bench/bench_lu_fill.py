@@ -1,6 +1,8 @@
 """The calibration of policy iteration's LU memory (:func:`worker.costs.lu_entries`): the fill-in SuperLU makes.
 
-Run from the repository root: ``python bench/bench_lu_fill.py``.  Every document of ``tests/_estimate_set.py``
+Run from the repository root: ``python bench/bench_lu_fill.py`` (``--stationary``: the stationary report's
+LU above ``worker.costs.DIRECT_SOLVE_MAX_POINTS`` states instead, :func:`stationary_main`).
+Every document of ``tests/_estimate_set.py``
 (and its method variants) that policy iteration solves by a sparse LU — at most
 ``worker.costs.DIRECT_SOLVE_MAX_POINTS`` points, no horizon — is solved by policy iteration in this process,
 and each system handed to ``scipy.sparse.linalg.spsolve`` is kept (the last policy's, and the largest factor).
@@ -172,5 +174,101 @@ def main() -> int:
     return 0 if ok else 1
 
 
+def stationary_shapes() -> dict[str, dict]:
+    """Grid models of more than ``DIRECT_SOLVE_MAX_POINTS`` states with a stationary report (name → document):
+    one-state savings and growth chains (grid and continuous choices, 3 to 20 shock points) and two-state
+    chains whose states both move (the roastery's next_of and expression, growth with a level that moves by its
+    own law, savings with a skill that grows with work, in both orders of the states)."""
+    from tests._documents import TWO_CHOICES
+    from tests._estimate_set import example, growth, two_state_growth_euler, two_states
+
+    def one_state(name: str, points: int, shocks: int) -> dict:
+        raw = example(name)
+        next(iter(raw["model"]["states"].values()))["points"] = points
+        next(iter(raw["model"]["shocks"].values()))["ar1"]["points"] = shocks
+        raw["report"] = {"stationary": True}
+        return raw
+
+    def reported(raw: dict) -> dict:
+        raw = copy.deepcopy(raw)
+        raw["report"] = {"stationary": True}
+        return raw
+
+    shapes = {f"household_{p}x{s}": one_state("household_saving", p, s) for p, s in ((500, 5), (1000, 5), (1500, 3))}
+    shapes.update({f"beekeeper_continuous_{p}x{s}": one_state("beekeeper_savings", p, s)
+                   for p, s in ((500, 7), (1000, 7), (2000, 5))})
+    shapes.update({f"growth_{p}x{s}": reported(growth(p, s)) for p, s in ((1000, 5), (3000, 3), (700, 20))})
+    shapes.update({f"roastery_{c}x{u}": two_states(c, u) for c, u in ((40, 60), (60, 60), (80, 80))})
+    shapes.update({f"two_state_growth_continuous_{p}x{a}": reported(two_state_growth_euler(p, a))
+                   for p, a in ((400, 9), (1000, 5))})
+    for order in (("a", "h"), ("h", "a")):
+        model = {"kind": "grid", **copy.deepcopy(TWO_CHOICES)}
+        model["states"]["a"]["points"], model["states"]["h"]["points"] = 300, 10
+        model["states"] = {name: model["states"][name] for name in order}
+        shapes[f"skill_savings_{order[0]}_first"] = {"version": 1, "discount": 0.95, "model": model,
+                                                     "solver": {"method": "howard", "tolerance": 1e-6},
+                                                     "report": {"stationary": True}}
+    return shapes
+
+
+def stationary_main() -> int:
+    """``--stationary``: the LU of the stationary report above ``DIRECT_SOLVE_MAX_POINTS`` states
+    (:func:`worker.costs.stationary_lu_entries`) against the one the report makes, on :func:`stationary_shapes`.
+    Printed: the chain's states and entries, its envelope (the bound of an LU in the states' own order) as a
+    share of ``n²``, the LU made (none: the envelope was past ``NATURAL_ENVELOPE`` times the entries, the
+    iterative solves instead) as a share of ``n²``, and the estimate's entries over the measured ones.  Target,
+    printed with PASS or FAIL: the estimate at least the LU made on every shape (an under-estimate lets a job
+    past its cap; the estimate's memory ratio on the whole set is ``bench/bench_estimates.py``'s)."""
+    import worker.report as report
+    from worker import solve
+    from worker.costs import every_state_moves, stationary_lu_entries
+    from worker.stationary_lu import natural_lu_bound
+
+    chains: list[tuple[int, int, int]] = []
+    made: list[int] = []
+    fits, factorise = report.natural_lu_fits, spla.splu
+
+    def measured_fits(matrix: sp.csr_matrix) -> bool:
+        n = matrix.shape[0]
+        system = sp.csr_matrix(sp.identity(n, format="csr") - matrix)
+        system.sort_indices()
+        transposed = sp.csc_matrix((system.data, system.indices, system.indptr), shape=(n, n))
+        chains.append((n, transposed.nnz, natural_lu_bound(transposed)))
+        return fits(matrix)
+
+    def kept_factor(matrix: sp.csc_matrix, *args: object, **kwargs: object) -> object:
+        lu = factorise(matrix, *args, **kwargs)
+        if matrix.shape[0] > DIRECT_SOLVE_MAX_POINTS:
+            made.append(lu.nnz)
+        return lu
+
+    report.natural_lu_fits, spla.splu = measured_fits, kept_factor
+    print(f"{'document':34s} {'n':>6s} {'entries':>8s} {'envelope/n²':>11s} {'LU/n²':>8s} {'estimate/n²':>11s} "
+          f"{'est/LU':>7s}")
+    under = []
+    try:
+        for name, raw in stationary_shapes().items():
+            chains.clear()
+            made.clear()
+            solve(raw)
+            if not chains:
+                print(f"{name:34s} no chain above {DIRECT_SOLVE_MAX_POINTS} states")
+                continue
+            n, entries, envelope = chains[-1]
+            doc = parse_document(raw)
+            plan = grid_plan(doc.model, method="howard")
+            promised = stationary_lu_entries(n, plan.n * plan.nodes * plan.shocks, all_move=every_state_moves(doc))
+            lu = made[-1] if made else 0
+            if promised < lu:
+                under.append(name)
+            ratio = f"{promised / lu:7.2f}" if lu else "   none"
+            print(f"{name:34s} {n:6d} {entries:8d} {envelope / n / n:11.4f} {lu / n / n:8.4f} "
+                  f"{promised / n / n:11.4f} {ratio}", flush=True)
+    finally:
+        report.natural_lu_fits, spla.splu = fits, factorise
+    print(f"stationary LU estimated at least as made: {'PASS' if not under else 'FAIL: ' + ', '.join(under)}")
+    return 0 if not under else 1
+
+
 if __name__ == "__main__":
-    sys.exit(main())
+    sys.exit(stationary_main() if "--stationary" in sys.argv else main())

@@ -168,6 +168,40 @@ def two_state_growth_euler(k_points: int = 200, a_points: int = 7) -> dict[str, 
             "report": {"euler_errors": True}}
 
 
+def saver(points: int, interpolation: str = "monotone_cubic", hinted: bool = True) -> dict[str, Any]:
+    """The beekeeper example (a continuous saving choice, 7 harvest points) on ``points`` savings points, with
+    ``interpolation``, with or without its hints, without reports (the solve's own time)."""
+    document = example("beekeeper_savings")
+    model = document["model"]
+    model["states"]["savings"]["points"] = points
+    model["interpolation"] = interpolation
+    if not hinted:
+        model.pop("hints")
+    document.pop("report")
+    return document
+
+
+def continuous_shapes() -> dict[str, dict[str, Any]]:
+    """Name → document: models with a continuous choice whose time ``bench/bench_estimates.py --continuous``
+    compares with the estimate's (linear and monotone cubic, hinted and not, 200 to 5,000 points of the state the
+    choice sets; two states; draws after the choice), without reports."""
+    shapes = {}
+    for points in (200, 1000, 5000):
+        for interpolation, short in (("monotone_cubic", "cubic"), ("linear", "linear")):
+            shapes[f"saver_{short}_hinted_{points}"] = saver(points, interpolation)
+    for points in (200, 1000, 3000):
+        for interpolation, short in (("monotone_cubic", "cubic"), ("linear", "linear")):
+            shapes[f"saver_{short}_unhinted_{points}"] = saver(points, interpolation, hinted=False)
+    for (k_points, a_points), interpolation in (((200, 7), "monotone_cubic"), ((1000, 5), "linear")):
+        document = two_state_growth_euler(k_points, a_points)
+        document.pop("report")
+        document["model"]["interpolation"] = interpolation
+        shapes[f"two_state_growth_{interpolation.split('_')[-1]}_{k_points}x{a_points}"] = document
+    for points in (400, 2000):
+        shapes[f"fishery_draws_{points}"] = continuous_with_draws(points)
+    return shapes
+
+
 def documents(large: bool = False) -> dict[str, dict[str, Any]]:
     """Name → document: the bundled examples and the extra shapes; ``large`` adds the slow, large ones."""
     docs = {path.stem: example(path.stem) for path in sorted(EXAMPLES.glob("*.json"))}
@@ -283,13 +317,16 @@ def measure_memory(raw: dict[str, Any], limits: dict[str, Any] | None = None) ->
 
 
 def measure_seconds(raw: dict[str, Any], repeats: int = 3, limits: dict[str, Any] | None = None) -> float:
-    """Least wall time of ``repeats`` warm solves (after one untimed solve) in seconds."""
+    """Median wall time of ``repeats`` warm solves (after one untimed solve) in seconds: on a shared machine the
+    least is as much luck as the largest (the same solve took 1 to 5 times as long from one run to the next)."""
+    import statistics
+
     from worker import solve
 
     solve(raw, limits=limits)
-    best = float("inf")
+    seconds = []
     for _ in range(repeats):
         start = time.perf_counter()
         solve(raw, limits=limits)
-        best = min(best, time.perf_counter() - start)
-    return best
+        seconds.append(time.perf_counter() - start)
+    return statistics.median(seconds)

@@ -19,6 +19,7 @@ from worker.costs import (
     BASE_BYTES,
     CHUNK_ELEMENTS,
     CHUNK_TEMPORARIES,
+    EXPECTATION_NS,
     GRID_FIXED_S,
     ITERATION_S,
     MATVEC_NS,
@@ -34,11 +35,22 @@ from worker.costs import (
 from worker.drawnames import draw_count
 from worker.kernel_limits import compile_bytes as compile_memory
 
-__all__ = ["SEARCH_POINTS", "continuous_estimate"]
+__all__ = ["PROOF_POINTS", "SCAN_POINT_NS", "SEARCH_POINTS", "continuous_estimate"]
 
-SEARCH_POINTS = 30
+SEARCH_POINTS = 20
 """Evaluations of the model per point in a hinted search of a continuous choice (count; a bracket and
-Brent's method, measured at 15–40 on the accuracy benchmark)."""
+Brent's method, measured at 15–40 on the accuracy benchmark; priced at ``POINT_NS`` each, a hinted Bellman step
+took 660–970 ns a point, 1,140 under load, on the savings shapes of ``bench/bench_estimates.py --continuous``,
+2026-12-05)."""
+PROOF_POINTS = 40
+"""Evaluations per point of the proof at the incumbent that verifies a hinted solve (count; measured
+1,400–1,500 ns a point on the same shapes at 200, 1,000 and 5,000 points, about 37 at ``POINT_NS``)."""
+SCAN_POINT_NS = 10.0
+"""One point of an unhinted search's scan of a ``next_of`` choice, whose candidates are the grid's own points,
+tomorrow's value read there without interpolating (nanoseconds; measured 5–15 on the savings shapes of
+``bench/bench_estimates.py --continuous`` at 200, 1,000 and 3,000 points, from unhinted less hinted solves, and
+up to 29 while the machine was loaded).  A choice of its own interval interpolates at every candidate: its scan
+is priced at ``POINT_NS`` a candidate, as a search's evaluation."""
 _SEARCH_BYTES_PER_POINT = 8 * 6
 """The search's outputs and scratch per point: value, choice, reward, order, previous point, guess (bytes)."""
 _GRID_SCAN_MAX = 512
@@ -75,27 +87,51 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
               + report_bytes(doc, n, entries, euler) + horizon_bytes(doc, n))
     hinted = bool(model.hints.concave)
     combos = combos_of(model, name)  # searched for each
+    scan_ns = SCAN_POINT_NS if choice.next_of is not None else POINT_NS
     per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
-    iteration = n * per_point * POINT_NS + ITERATION_S * 1e9 + entries * MATVEC_NS
-    fine_steps, coarse = steps, 0.0
+
+    def solve_ns(sizes: list[int], iterations: float, evaluations: float) -> float:
+        """A solve on state grids of ``sizes`` points: ``iterations`` Bellman steps, ``evaluations`` evaluation
+        steps (nanoseconds).  As a grid model's (worker.grid_seconds), every step forms the expected continuation
+        (grid states × shocks × next shocks); a Bellman step searches every point, scanning the choice's grid
+        first without the hint; an evaluation step reads each point's nodes for every draw."""
+        grid = math.prod(sizes)
+        points = grid * shocks
+        scanned = 0 if hinted else (min(dict(zip(model.states, sizes))[choice.next_of], _GRID_SCAN_MAX)
+                                    if choice.next_of is not None else choice.size)
+        point_ns = combos * draws * (SEARCH_POINTS * POINT_NS + scanned * scan_ns)
+        expectation = grid * shocks * shocks * EXPECTATION_NS
+        return (iterations * (points * point_ns + ITERATION_S * 1e9 + expectation)
+                + evaluations * (expectation + points * nodes * draws * MATVEC_NS))
+
+    sizes = [axis.size for axis in model.states.values()]
+    total_ns = solve_ns(sizes, steps, evaluation_steps)
     if starts_coarse(doc):
-        # worker.coarse_start: every coarse level counted at the steps from zeros (its points' share of the
-        # fine grid's), the fine solve at a few iterations (value iteration: as from zeros, conservatively).
-        levels = coarse_levels([axis.size for axis in model.states.values()])
-        coarse = sum(math.prod(level) for level in levels) / grid_states
-        fine_steps = steps if method == "value_iteration" else min(steps, COARSE_FINE_ITERATIONS)
-        basis += (f"; a coarse start on {len(levels)} level(s) of {coarse:.2g} of the points in all, then "
-                  f"{fine_steps} iterations")
-    seconds = (GRID_FIXED_S * 1e9 + (fine_steps + coarse * steps) * iteration
-               + (1.0 + coarse) * evaluation_steps * entries * MATVEC_NS) * 1e-9
+        # worker.coarse_start: the coarsest level from zeros as a whole solve, every finer level and
+        # the fine solve seeded, at a few iterations each (value iteration: as from zeros, conservatively), with
+        # the evaluation steps those iterations bring.
+        levels = coarse_levels(sizes)
+        seeded = steps if method == "value_iteration" else min(steps, COARSE_FINE_ITERATIONS)
+        seeded_evaluations = evaluation_steps * seeded / max(steps, 1)
+        # The coarsest level's iterations as a whole solve's with its own scan (the Howard count grows with it).
+        coarsest_scan = min(dict(zip(model.states, levels[-1]))[choice.next_of], _GRID_SCAN_MAX) \
+            if choice.next_of is not None else scan
+        first_steps, first_evaluations, _ = iteration_steps(doc, coarsest_scan, moving_divisor=1)
+        total_ns = solve_ns(levels[-1], first_steps, first_evaluations) + sum(
+            solve_ns(level, seeded, seeded_evaluations) for level in [*levels[:-1], sizes])
+        share = sum(math.prod(level) for level in levels) / grid_states
+        basis += (f"; a coarse start on {len(levels)} level(s) of {share:.2g} of the points in all, the "
+                  f"coarsest from zeros, then {seeded} iterations a level")
+    seconds = (GRID_FIXED_S * 1e9 + total_ns) * 1e-9
     if hinted:
         # The unhinted verification: a scan and a refinement per point, or, where the proof at the incumbent
-        # applies (one state, set by the choice, no draws: worker.continuous.bound_proof), about a search's
+        # applies (one state, set by the choice, no draws: worker.continuous.bound_proof), ``PROOF_POINTS``
         # evaluations (it held at 99.7-100 % of the points of the accuracy benchmark).
         proof = states == 1 and draws == 1 and choice.next_of is not None
-        seconds += n * combos * draws * (SEARCH_POINTS if proof else scan + SEARCH_POINTS) * POINT_NS * 1e-9
+        seconds += n * combos * draws * (PROOF_POINTS * POINT_NS if proof
+                                         else SEARCH_POINTS * POINT_NS + scan * scan_ns) * 1e-9
     seconds += report_seconds(doc, n, entries, euler) + horizon_seconds(doc, n)
     seconds += euler_searches * SEARCH_POINTS * POINT_NS * 1e-9
     compile_bytes = compile_memory(model)
@@ -122,7 +158,8 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
         "compile_seconds": compile_s,
         "compile_basis": compile_basis,
         "seconds": seconds,
-        "basis": f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each)",
+        "basis": (f"{basis}; a search of about {per_point} points per state ({POINT_NS:g} ns each"
+                  + ("" if hinted else f", {scan_ns:g} ns a scanned point") + ")"),
         "notes": notes,
     }
 

@@ -23,6 +23,7 @@ __all__ = [
     "STATIONARY_BYTES_PER_ENTRY",
     "STATIONARY_BYTES_PER_STATE",
     "STATIONARY_LU_ENTRY_NS",
+    "STATIONARY_ENVELOPE_SHARE",
     "STATIONARY_LU_SHARE",
     "CHOICE_BYTES",
     "DIRECT_SOLVE_MAX_POINTS",
@@ -69,6 +70,7 @@ __all__ = [
     "linear_solve_bytes",
     "lu_entries",
     "stationary_lu_entries",
+    "every_state_moves",
     "GRID_LU_FILL",
     "LU_ENTRY_BYTES",
     "linear_solve_seconds",
@@ -188,12 +190,20 @@ STATIONARY_BYTES_PER_STATE = 300
 measured: 540 per point with 5 shock points, 1,100 with 7 and interpolated nodes, including the entries)."""
 STATIONARY_BYTES_PER_ENTRY = 50
 """The stationary report per entry of the policy's matrix: the matrix, its transpose and their solve (bytes)."""
-STATIONARY_LU_SHARE = 0.02
+STATIONARY_LU_SHARE = 0.035
 """Above ``DIRECT_SOLVE_MAX_POINTS`` states a grid model's stationary LU, made in the states' own order within its
-envelope (:func:`worker.stationary_lu.natural_pinned_lu`), holds about this share of ``n²`` entries
-(dimensionless; measured 2026-12-05: the savings chains of ``bench/bench_aiyagari.py`` at 3,500 to 28,000 states
-0.011–0.019, the growth chains of ``bench/bench_solver.py`` at 3,500 and 7,000 states 0.014).  The envelope widens
-with the grid, so the fill grows like ``n²``, not like the matrix's entries (4 to 28 times them there)."""
+envelope (:func:`worker.stationary_lu.natural_pinned_lu`), holds at most about this share of ``n²`` entries
+(dimensionless; the largest measured, rounded up: ``bench/bench_lu_fill.py --stationary``, 2026-12-05, one-state
+chains of 2,500 to 14,000 states, grid and continuous choices, 3 to 20 shock points: 0.0038 to 0.034; the 2 %
+used before was below the household's 0.025 at 2,500 and 5,000 states).  The envelope widens with the grid,
+so the fill grows like ``n²``, not like the matrix's entries (5 to 23 times them there)."""
+STATIONARY_ENVELOPE_SHARE = 0.1
+"""The envelope of the chain of a grid model whose every state moves (two or more states, each set by a
+choice or a ``next`` expression), as a share of ``n²``, at least (dimensionless; measured 0.10 to 0.19 on seven
+two-state chains of 4,800 to 12,800 states, ``bench/bench_lu_fill.py --stationary``): the states' own order
+interleaves a slow state's moves with the fast ones', so a row reaches back a slow step's stride.  Where this
+share of ``n²`` exceeds what :func:`worker.stationary_lu.natural_pinned_lu` allows, no LU is made (the
+iterative solves instead; it made none on any of the seven)."""
 STATIONARY_LU_ENTRY_NS = 50.0
 """That LU's time per entry of its factors (nanoseconds; measured 30–52 on the same chains, 0.13 s at 14,000
 states)."""
@@ -283,24 +293,43 @@ def report_bytes(doc: Any, n: int, entries: int, euler: int = 0, *, bandwidth: i
     memory = n * RESULT_BYTES_PER_STATE
     if report.stationary:
         memory += n * STATIONARY_BYTES_PER_STATE + entries * STATIONARY_BYTES_PER_ENTRY
-        memory += stationary_lu_entries(n, entries, bandwidth) * LU_ENTRY_BYTES
+        lu = stationary_lu_entries(n, entries, bandwidth, all_move=every_state_moves(doc))
+        memory += lu * LU_ENTRY_BYTES
     if report.simulation is not None:
         memory += int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_BYTES_PER_DRAW
         memory += 0 if report.stationary else policy_matrix_bytes(n, entries)
     return memory + euler * EULER_BYTES_PER_ELEMENT
 
 
-def stationary_lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
+def stationary_lu_entries(n: int, entries: int, bandwidth: int | None = None, *,
+                          all_move: bool = False) -> int:
     """Entries of the LU a stationary report makes of a chain of ``n`` states whose matrix stores ``entries``
     (:func:`worker.report.long_run_distribution`; a search's trials make the same): up to
     ``DIRECT_SOLVE_MAX_POINTS`` states SuperLU's own, :func:`lu_entries`; above, one in the states' own order,
     made only within ``NATURAL_ENVELOPE`` times the system's entries and ``NATURAL_MAX_ENTRIES`` (else none: the
     iterative solves, whose incomplete LU is smaller): the band's bound with a ``bandwidth`` (a tabular model's),
-    else ``STATIONARY_LU_SHARE`` of ``n²``."""
+    else ``STATIONARY_LU_SHARE`` of ``n²``; none when ``all_move`` (a grid model of two or more states,
+    :func:`every_state_moves`) and ``STATIONARY_ENVELOPE_SHARE`` of ``n²`` is past that limit."""
     if n <= DIRECT_SOLVE_MAX_POINTS:
         return lu_entries(n, entries, bandwidth)
+    limit = min(NATURAL_ENVELOPE * (entries + n), NATURAL_MAX_ENTRIES)
+    if bandwidth is None and all_move and STATIONARY_ENVELOPE_SHARE * n * n > limit:
+        return 0
     typical = lu_entries(n, entries, bandwidth) if bandwidth is not None else math.ceil(STATIONARY_LU_SHARE * n * n)
-    return min(typical, NATURAL_ENVELOPE * (entries + n), NATURAL_MAX_ENTRIES)
+    return min(typical, limit)
+
+
+def every_state_moves(doc: Any) -> bool:
+    """Whether ``doc`` is a grid model of two or more states, each set by a choice (``next_of``) or a ``next``
+    expression: the pattern :data:`STATIONARY_ENVELOPE_SHARE` was measured on.  A state that keeps its value (a
+    fixed type, whose ``next`` is its own name) splits the chain into blocks whose LU may be made, so it is
+    priced as one state's."""
+    model = doc.model
+    if getattr(model, "kind", None) != "grid" or len(model.states) < 2:
+        return False
+    set_by_choice = {choice.next_of for choice in model.choices.values() if choice.next_of is not None}
+    moved_by_law = {name for name, law in model.next.items() if str(law).replace(" ", "") != name}
+    return all(name in moved_by_law or name in set_by_choice for name in model.states)
 
 
 def lu_entries(n: int, entries: int, bandwidth: int | None = None) -> int:
@@ -427,7 +456,8 @@ def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool
     if report.stationary:
         seconds += STATIONARY_S + (STATIONARY_GRID_S if grid else 0.0) + entries * STATIONARY_ENTRY_NS * 1e-9
         if n > DIRECT_SOLVE_MAX_POINTS:
-            seconds += stationary_lu_entries(n, entries, bandwidth) * STATIONARY_LU_ENTRY_NS * 1e-9
+            lu = stationary_lu_entries(n, entries, bandwidth, all_move=every_state_moves(doc))
+            seconds += lu * STATIONARY_LU_ENTRY_NS * 1e-9
     if report.simulation is not None:
         seconds += STATIONARY_S + int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_NS * 1e-9
     return seconds + euler * EULER_ELEMENT_NS * 1e-9
