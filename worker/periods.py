@@ -214,7 +214,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         probabilities = {"choice_probabilities": by_period.tolist()}
     if plan.stepper is not None:
         problem.egm_report = plan.stepper.report(outcome.first_period)
-    problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
+    problem_diagnostics = plain(_diagnostics_by_period(doc, problem, plan, outcome)) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
     continuous = getattr(problem, "choose_at", None) is not None
@@ -292,6 +292,75 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **probabilities,
               **tail}
     return apply_axis_order(result, model_axis_order(doc.model))
+
+
+WARNED_PERIODS = 3
+"""Later periods whose own diagnostics warnings are listed word for word; the rest are counted in one more."""
+
+
+def _diagnostics_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
+                           outcome: HorizonOutcome) -> dict[str, Any]:
+    """The problem's diagnostics over every period's policy, not the first period's alone.
+
+    A life cycle's policy reaches a grid's end in some periods only (wealth peaks near retirement): edge hits,
+    clamped next values and a continuous choice's ends are counted over every (period, point) pair, and a later
+    period's own warnings are added, naming it.  Each period is entered (its params) before its policy is
+    read, unless the model would refill its reward tables to do so: then only the edge hits, which depend on
+    the policy alone, are taken from the later periods.
+    """
+    first = outcome.first_period
+    merged = problem.diagnostics(outcome.policies[0])
+    later = list(enumerate(outcome.policies[1:], start=first + 1))
+    if doc.model.kind != "grid" or not later:
+        return merged
+    varying = varies_by_period(doc.model)
+    refills = (varying and getattr(problem, "choose_at", None) is None
+               and getattr(problem, "reward_storage", None) == "tables")
+    entered = varying and not refills
+    count = len(later) + 1
+    edges = {name: dict(hits) for name, hits in merged.get("edge_hits", {}).items()}
+    clamped = merged.get("clamped_next")
+    clamped = {**clamped, "policy": dict(clamped["policy"])} if clamped and not refills else None
+    continuous = merged.get("continuous_choice")
+    seen = set(merged.get("warnings", []))
+    warned: list[str] = []
+    warned_periods = 0
+    for t, policy in later:
+        if entered:
+            plan.enter(t)
+        own = problem.diagnostics(policy)
+        for name, hits in own.get("edge_hits", {}).items():
+            for end in ("lowest", "highest"):
+                edges[name][end] += hits[end]
+        if clamped is not None and own.get("clamped_next"):
+            clamped["policy"]["count"] += own["clamped_next"]["policy"]["count"]
+        if continuous is not None and not refills:
+            for key in ("clamped_next", "at_lower_end", "at_upper_end"):
+                if key in continuous:
+                    continuous[key] += own["continuous_choice"][key]
+        news = [w for w in own.get("warnings", []) if w not in seen] if not refills else []
+        if news:
+            seen.update(news)
+            warned_periods += 1
+            if warned_periods <= WARNED_PERIODS:
+                warned += [f"period {t}: {w}" for w in news]
+    if entered:
+        plan.enter(first)
+    if warned_periods > WARNED_PERIODS:
+        warned.append(f"and in {warned_periods - WARNED_PERIODS} more periods (diagnostics count every period)")
+    for name, hits in edges.items():
+        merged["edge_hits"][name] = {end: share / count for end, share in hits.items()}
+    if clamped is not None:
+        clamped["policy"]["share"] = clamped["policy"]["count"] / (count * problem.n)
+        merged["clamped_next"] = clamped
+    merged["warnings"] = list(merged.get("warnings", [])) + warned
+    merged.setdefault("notes", []).append(
+        f"edge hits, clamped next values under the policy and a continuous choice's ends are counted over every "
+        f"period's points ({count} periods); clamped_next.all_pairs is period {first}'s"
+        + ("; only the edge hits are taken from later periods (their reward tables are not refilled for this)"
+           if refills else "")
+    )
+    return merged
 
 
 @contextmanager
