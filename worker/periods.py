@@ -236,6 +236,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     elif "method" in doc.solver.model_fields_set and method != METHOD:
         notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
                      "induction")
+    unused = [key for key in ("tolerance", "max_iterations", "evaluation_steps") if key in doc.solver.model_fields_set]
+    if unused:
+        notes.append(f"{', '.join(f'solver.{key}' for key in unused)} not used: backward induction takes exactly one "
+                     f"step per period ({plan.periods}), with no fixed point to approach; solver.time_limit_s "
+                     "stops between periods")
     if doc.solver.initial not in (None, "zeros"):
         notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
     report = doc.report

@@ -66,3 +66,14 @@ def test_ends_of_a_continuous_next_of_choice_count_every_period() -> None:
     found = result["diagnostics"]["continuous_choice"]
     assert found["at_upper_end"] == np.count_nonzero(a_next >= TOP) >= 13
     assert found["at_lower_end"] == np.count_nonzero(a_next <= 0.0)
+
+
+def test_settings_backward_induction_does_not_use_are_named() -> None:
+    """Before, solver.max_iterations and solver.tolerance were dropped without a word under a horizon."""
+    document = glassblower({"a_next": {"next_of": "a"}}, define="R * a + inc - a_next")
+    document["solver"] = {"max_iterations": 2, "tolerance": 1e-3}
+    result = solve(document)
+    assert result["axes"]["period"] == [0, 1, 2, 3]  # every period solved: max_iterations does not stop it
+    assert any("solver.tolerance, solver.max_iterations not used" in note for note in result["diagnostics"]["notes"])
+    plain = solve(glassblower({"a_next": {"next_of": "a"}}, define="R * a + inc - a_next"))
+    assert not any("not used: backward induction takes" in note for note in plain["diagnostics"]["notes"])
