@@ -343,7 +343,10 @@ def _diagnostics_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
             for key in ("clamped_next", "at_lower_end", "at_upper_end"):
                 if key in continuous:
                     continuous[key] += own["continuous_choice"][key]
-        news = [w for w in own.get("warnings", []) if w not in seen] if not refills else []
+        # A later period at the lowest point is mostly a borrowing limit binding (the last period spends all):
+        # counted in edge_hits, not warned again; the top of a grid and clamped values are.
+        news = [w for w in own.get("warnings", []) if w not in seen and "the lowest point of" not in w]
+        news = news if not refills else []
         if news:
             seen.update(news)
             warned_periods += 1

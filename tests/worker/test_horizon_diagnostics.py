@@ -77,3 +77,15 @@ def test_settings_backward_induction_does_not_use_are_named() -> None:
     assert any("solver.tolerance, solver.max_iterations not used" in note for note in result["diagnostics"]["notes"])
     plain = solve(glassblower({"a_next": {"next_of": "a"}}, define="R * a + inc - a_next"))
     assert not any("not used: backward induction takes" in note for note in plain["diagnostics"]["notes"])
+
+
+def test_a_last_period_that_spends_everything_adds_no_warning() -> None:
+    """With no bequest the last period saves nothing at every point: a limit of the problem, counted, not warned."""
+    document = glassblower({"a_next": {"next_of": "a"}}, define="R * a + inc - a_next")
+    document["model"]["params"]["inc"] = [0.5, 0.6, 0.7, 0.5]
+    document["model"]["horizon"]["terminal_value"] = 0.0
+    result = solve(document)
+    index = np.asarray(result["policy_index"]["a_next"])
+    assert np.all(index[-1] == 0)
+    assert result["diagnostics"]["edge_hits"]["a_next"]["lowest"] == np.mean(index == 0)
+    assert not any(w.startswith("period ") for w in result["diagnostics"]["warnings"])
