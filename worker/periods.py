@@ -333,7 +333,7 @@ def _diagnostics_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     for t, policy in later:
         if entered:
             plan.enter(t)
-        own = problem.diagnostics(policy)
+        own = problem.diagnostics(policy, all_pairs=False) if clamped is not None else problem.diagnostics(policy)
         for name, hits in own.get("edge_hits", {}).items():
             for end in ("lowest", "highest"):
                 edges[name][end] += hits[end]
@@ -364,7 +364,8 @@ def _diagnostics_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
     merged["warnings"] = list(merged.get("warnings", [])) + warned
     merged.setdefault("notes", []).append(
         f"edge hits, clamped next values under the policy and a continuous choice's ends are counted over every "
-        f"period's points ({count} periods); clamped_next.all_pairs is period {first}'s"
+        f"period's points ({count} periods)"
+        + (f"; clamped_next.all_pairs is period {first}'s" if clamped is not None else "")
         + ("; only the edge hits are taken from later periods (their reward tables are not refilled for this)"
            if refills else "")
     )
