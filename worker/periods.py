@@ -125,7 +125,7 @@ def _check_bounds_by_period(model: Any, data: Any) -> None:
 
 
 def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
-    """``β_t`` for every period, each checked finite and positive (the path names the period)."""
+    """``β_t`` for every period, each checked finite and positive or 0 (the path names the period)."""
     from worker.feasibility import period_params
 
     horizon = doc.model.horizon
@@ -141,12 +141,13 @@ def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
             env = dict(zip(names, period_params(doc.model, t).tolist()))
             env[DISCOUNT_NAME] = float(doc.discount)
             discounts[t] = float(np.asarray(evaluate(expression, env), dtype=np.float64).reshape(-1)[0])
-    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts > 0)))
+    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts >= 0)))
     if bad.size:
         t = int(bad[0])
         raise InvalidDocument.at(
             where, f"gives {float(discounts[t])!r} in period {t}: the discount must be a positive number in every "
-            "period" + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
+            "period, or 0 (the next period's value not counted: a survival probability of 0)"
+            + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
         )
     return discounts
 
