@@ -172,8 +172,19 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
     lists = [name for name, value in model.params.items() if isinstance(value, list)]
     scalars = [name for name in model.params if name not in lists]
     if isinstance(horizon.terminal_value, str):
-        known = [*scalars, *model.states, *model.shocks, PERIOD_NAME]
-        faults += _names_faults(horizon.terminal_value, known, lists, join_path("horizon", "terminal_value"))
+        # A draw after the choice is integrated out within a period: the value after the last has no axis for it.
+        seen = [name for name, shock in model.shocks.items() if not shock.after_choice]
+        drawn = [name for name in model.shocks if name not in seen]
+        where = join_path("horizon", "terminal_value")
+        known = [*scalars, *model.states, *seen, PERIOD_NAME]
+        found = _names_faults(horizon.terminal_value, known, lists, where)
+        used = sorted(_names(horizon.terminal_value, where) & set(drawn))
+        if used:
+            names = ", ".join(f"`{name}`" for name in used)
+            found = [fault(where, f"uses {names}, drawn after the choice: the terminal value is a value of the states "
+                           "and the shocks seen before the choice (a draw after it is integrated out within its "
+                           "period)")]
+        faults += found
     if isinstance(horizon.discount, str):
         faults += _names_faults(horizon.discount, [*model.params, PERIOD_NAME, DISCOUNT_NAME], [],
                                 join_path("horizon", "discount"))
@@ -184,6 +195,14 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
         faults.append(fault(join_path("horizon", "discount"), f"the discount must be positive or 0, got "
                             f"{number(horizon.discount)}"))
     return faults
+
+
+def _names(text: str, where: str) -> set[str]:
+    """The names ``text`` uses (empty when it does not parse: :func:`_names_faults` says why)."""
+    try:
+        return set(expressions.parse(text, path=where).names)
+    except InvalidDocument:
+        return set()
 
 
 def _names_faults(text: str, known: list[str], lists: list[str], where: str) -> list[Fault]:
