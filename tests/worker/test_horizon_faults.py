@@ -44,3 +44,14 @@ def test_a_terminal_value_using_a_draw_after_the_choice_is_refused_at_its_field(
 def test_a_terminal_value_of_the_states_and_the_shocks_seen_before_the_choice_is_accepted() -> None:
     result = solve(beekeeper("z * log(1 + a)"))
     assert result["status"] == "converged"
+
+
+def test_a_cohort_start_giving_a_draw_after_the_choice_says_what_it_is() -> None:
+    """Before, the message said the draw was "not a state or shock of the model", which it is."""
+    document = beekeeper("z * log(1 + a)")
+    document["report"] = {"cohort": {"start": {"a": 0.0, "z": 0.9, "price": 0.2}}}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(document)
+    (error,) = caught.value.errors
+    assert error["path"] == "report.cohort.start.price"
+    assert "`price` is drawn after the choice" in error["message"]
