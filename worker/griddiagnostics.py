@@ -68,8 +68,12 @@ class GridDiagnostics:
         kept = iter(dynamic)
         return tuple(next(static) if name in self._static else next(kept) for name in full.choices)
 
-    def diagnostics(self, policy: np.ndarray) -> dict[str, Any]:
-        """Reward storage, hints, edge hits per choice, clamped next values and excluded rewards, with warnings."""
+    def diagnostics(self, policy: np.ndarray, *, all_pairs: bool = True) -> dict[str, Any]:
+        """Reward storage, hints, edge hits per choice, clamped next values and excluded rewards, with warnings.
+
+        ``all_pairs=False`` skips counting clamped pairs over every choice on the fly (a finite horizon's later
+        periods: :mod:`worker.periods` keeps the first period's count).
+        """
         data = self._full
         warnings: list[str] = []
         notes = [f"reward storage {self.reward_storage}: {self.bridge_note or self.plan.reason}"]
@@ -111,7 +115,7 @@ class GridDiagnostics:
             "edge_hits": edge_hits,
             "maximised_within_period": list(self._static),
         }
-        clamped = self._clamped(policy, warnings)
+        clamped = self._clamped(policy, warnings, all_pairs)
         if clamped is not None:
             result["clamped_next"] = clamped
         excluded = self._excluded(warnings)
@@ -133,7 +137,7 @@ class GridDiagnostics:
                 return f"the grid of state `{self._full.states[t]}`"
         return f"choice `{name}`"
 
-    def _clamped(self, policy: np.ndarray, warnings: list[str]) -> dict[str, Any] | None:
+    def _clamped(self, policy: np.ndarray, warnings: list[str], all_pairs: bool = True) -> dict[str, Any] | None:
         data = self._data
         interpolated = [data.states[t] for t, j in enumerate(data.setter) if j is None]
         if not interpolated:
@@ -148,7 +152,7 @@ class GridDiagnostics:
             count, allowed = self._counts["clamped"], self._counts["allowed"]
             overall = {"count": count, "share": count / max(allowed, 1), "of": "allowed (state, choice) pairs"
                        + (CLIMBED_SCOPE if self._counts.get("climbed") else "")}
-        elif data.n * data.n_choices <= SCAN_MAX_PAIRS:
+        elif all_pairs and data.n * data.n_choices <= SCAN_MAX_PAIRS:
             allowed_per = np.empty(self.n, dtype=np.int64)
             clamped_per = np.empty(self.n, dtype=np.int64)
             bad_per = np.empty(self.n, dtype=np.int64)

@@ -125,7 +125,7 @@ def _check_bounds_by_period(model: Any, data: Any) -> None:
 
 
 def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
-    """``β_t`` for every period, each checked finite and positive (the path names the period)."""
+    """``β_t`` for every period, each checked finite and positive or 0 (the path names the period)."""
     from worker.feasibility import period_params
 
     horizon = doc.model.horizon
@@ -141,12 +141,13 @@ def _discounts(doc: Any, names: tuple[str, ...]) -> np.ndarray:
             env = dict(zip(names, period_params(doc.model, t).tolist()))
             env[DISCOUNT_NAME] = float(doc.discount)
             discounts[t] = float(np.asarray(evaluate(expression, env), dtype=np.float64).reshape(-1)[0])
-    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts > 0)))
+    bad = np.flatnonzero(~(np.isfinite(discounts) & (discounts >= 0)))
     if bad.size:
         t = int(bad[0])
         raise InvalidDocument.at(
             where, f"gives {float(discounts[t])!r} in period {t}: the discount must be a positive number in every "
-            "period" + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
+            "period, or 0 (the next period's value not counted: a survival probability of 0)"
+            + (f" ({bad.size} periods fail)" if bad.size > 1 else ""),
         )
     return discounts
 
@@ -214,7 +215,7 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         probabilities = {"choice_probabilities": by_period.tolist()}
     if plan.stepper is not None:
         problem.egm_report = plan.stepper.report(outcome.first_period)
-    problem_diagnostics = plain(problem.diagnostics(outcome.policies[0])) if periods else {}
+    problem_diagnostics = plain(_diagnostics_by_period(doc, problem, plan, outcome)) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
     notes = problem_diagnostics.setdefault("notes", [])
     continuous = getattr(problem, "choose_at", None) is not None
@@ -236,6 +237,11 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     elif "method" in doc.solver.model_fields_set and method != METHOD:
         notes.append(f"solver.method {method} was not used: a model with a finite horizon is solved by backward "
                      "induction")
+    unused = [key for key in ("tolerance", "max_iterations", "evaluation_steps") if key in doc.solver.model_fields_set]
+    if unused:
+        notes.append(f"{', '.join(f'solver.{key}' for key in unused)} not used: backward induction takes exactly one "
+                     f"step per period ({plan.periods}), with no fixed point to approach; solver.time_limit_s "
+                     "stops between periods")
     if doc.solver.initial not in (None, "zeros"):
         notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
     report = doc.report
@@ -292,6 +298,79 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     result = {**head, "value": value, "policy": policy, "policy_index": policy_index or None, **probabilities,
               **tail}
     return apply_axis_order(result, model_axis_order(doc.model))
+
+
+WARNED_PERIODS = 3
+"""Later periods whose own diagnostics warnings are listed word for word; the rest are counted in one more."""
+
+
+def _diagnostics_by_period(doc: Any, problem: CompiledProblem, plan: PeriodPlan,
+                           outcome: HorizonOutcome) -> dict[str, Any]:
+    """The problem's diagnostics over every period's policy, not the first period's alone.
+
+    A life cycle's policy reaches a grid's end in some periods only (wealth peaks near retirement): edge hits,
+    clamped next values and a continuous choice's ends are counted over every (period, point) pair, and a later
+    period's own warnings are added, naming it.  Each period is entered (its params) before its policy is
+    read, unless the model would refill its reward tables to do so: then only the edge hits, which depend on
+    the policy alone, are taken from the later periods.
+    """
+    first = outcome.first_period
+    merged = problem.diagnostics(outcome.policies[0])
+    later = list(enumerate(outcome.policies[1:], start=first + 1))
+    if doc.model.kind != "grid" or not later:
+        return merged
+    varying = varies_by_period(doc.model)
+    refills = (varying and getattr(problem, "choose_at", None) is None
+               and getattr(problem, "reward_storage", None) == "tables")
+    entered = varying and not refills
+    count = len(later) + 1
+    edges = {name: dict(hits) for name, hits in merged.get("edge_hits", {}).items()}
+    clamped = merged.get("clamped_next")
+    clamped = {**clamped, "policy": dict(clamped["policy"])} if clamped and not refills else None
+    continuous = merged.get("continuous_choice")
+    seen = set(merged.get("warnings", []))
+    warned: list[str] = []
+    warned_periods = 0
+    for t, policy in later:
+        if entered:
+            plan.enter(t)
+        own = problem.diagnostics(policy, all_pairs=False) if clamped is not None else problem.diagnostics(policy)
+        for name, hits in own.get("edge_hits", {}).items():
+            for end in ("lowest", "highest"):
+                edges[name][end] += hits[end]
+        if clamped is not None and own.get("clamped_next"):
+            clamped["policy"]["count"] += own["clamped_next"]["policy"]["count"]
+        if continuous is not None and not refills:
+            for key in ("clamped_next", "at_lower_end", "at_upper_end"):
+                if key in continuous:
+                    continuous[key] += own["continuous_choice"][key]
+        # A later period at the lowest point is mostly a borrowing limit binding (the last period spends all):
+        # counted in edge_hits, not warned again; the top of a grid and clamped values are.
+        news = [w for w in own.get("warnings", []) if w not in seen and "the lowest point of" not in w]
+        news = news if not refills else []
+        if news:
+            seen.update(news)
+            warned_periods += 1
+            if warned_periods <= WARNED_PERIODS:
+                warned += [f"period {t}: {w}" for w in news]
+    if entered:
+        plan.enter(first)
+    if warned_periods > WARNED_PERIODS:
+        warned.append(f"and in {warned_periods - WARNED_PERIODS} more periods (diagnostics count every period)")
+    for name, hits in edges.items():
+        merged["edge_hits"][name] = {end: share / count for end, share in hits.items()}
+    if clamped is not None:
+        clamped["policy"]["share"] = clamped["policy"]["count"] / (count * problem.n)
+        merged["clamped_next"] = clamped
+    merged["warnings"] = list(merged.get("warnings", [])) + warned
+    merged.setdefault("notes", []).append(
+        f"edge hits, clamped next values under the policy and a continuous choice's ends are counted over every "
+        f"period's points ({count} periods)"
+        + (f"; clamped_next.all_pairs is period {first}'s" if clamped is not None else "")
+        + ("; only the edge hits are taken from later periods (their reward tables are not refilled for this)"
+           if refills else "")
+    )
+    return merged
 
 
 @contextmanager

@@ -323,7 +323,9 @@ def start_faults(model: Any, start: Any, where: str) -> list[Fault]:
         return [fault(where, "for a grid model, start is an object giving a value for every state and shock")]
     axes = {**model.states, **{name: shock for name, shock in model.shocks.items() if not shock.after_choice}}
     faults = [
-        fault(join_path(where, name), f"`{name}` is not a state or shock of the model")
+        fault(join_path(where, name), f"`{name}` is drawn after the choice, within each period: a start gives the "
+              "states and the shocks seen before the choice" if name in model.shocks
+              else f"`{name}` is not a state or shock of the model")
         for name in start
         if name not in axes
     ]

@@ -3,7 +3,8 @@
 A model with a horizon is solved by backward induction (:mod:`worker.solvers.backward`):
 the value after the last period is the *terminal value*, and each period's value is one
 Bellman step from the next period's.  No fixed point is sought, so the discount need only be
-positive; the rule ``discount < 1`` of an infinite horizon (which makes the Bellman operator a
+positive or 0 (0: the next period's value does not count, as with a survival probability of 0 at
+the last age); the rule ``discount < 1`` of an infinite horizon (which makes the Bellman operator a
 contraction) does not apply.
 
 Grid models may use the name ``period`` (0 for the first period) in every expression, and
@@ -97,7 +98,8 @@ class GridHorizon(Part):
             "The discount applied in each period to the next period's value, when it changes with the period: "
             "a number or an expression of params and `period`, in which `discount` is the document's discount "
             "(\"discount * survival\" with survival a param list of survival probabilities). It must be "
-            "positive in every period; values of 1 or more are allowed (a finite horizon needs no "
+            "positive or 0 in every period (0: the next period's value does not count, as with a survival "
+            "probability of 0 at the last age); values of 1 or more are allowed (a finite horizon needs no "
             "contraction). Default: the document's discount in every period."
         ),
     )
@@ -119,8 +121,9 @@ class TabularHorizon(Part):
     discount: Vector | None = Field(
         default=None,
         description=(
-            "The discount applied in each period to the next period's value, one positive number per period "
-            "(values of 1 or more are allowed). Default: the document's discount in every period."
+            "The discount applied in each period to the next period's value, one positive number or 0 per "
+            "period (values of 1 or more are allowed; 0: the next period's value does not count). Default: the "
+            "document's discount in every period."
         ),
     )
 
@@ -169,18 +172,37 @@ def grid_horizon_faults(model: Any) -> list[Fault]:
     lists = [name for name, value in model.params.items() if isinstance(value, list)]
     scalars = [name for name in model.params if name not in lists]
     if isinstance(horizon.terminal_value, str):
-        known = [*scalars, *model.states, *model.shocks, PERIOD_NAME]
-        faults += _names_faults(horizon.terminal_value, known, lists, join_path("horizon", "terminal_value"))
+        # A draw after the choice is integrated out within a period: the value after the last has no axis for it.
+        seen = [name for name, shock in model.shocks.items() if not shock.after_choice]
+        drawn = [name for name in model.shocks if name not in seen]
+        where = join_path("horizon", "terminal_value")
+        known = [*scalars, *model.states, *seen, PERIOD_NAME]
+        found = _names_faults(horizon.terminal_value, known, lists, where)
+        used = sorted(_names(horizon.terminal_value, where) & set(drawn))
+        if used:
+            names = ", ".join(f"`{name}`" for name in used)
+            found = [fault(where, f"uses {names}, drawn after the choice: the terminal value is a value of the states "
+                           "and the shocks seen before the choice (a draw after it is integrated out within its "
+                           "period)")]
+        faults += found
     if isinstance(horizon.discount, str):
         faults += _names_faults(horizon.discount, [*model.params, PERIOD_NAME, DISCOUNT_NAME], [],
                                 join_path("horizon", "discount"))
         if DISCOUNT_NAME in model.params:
             faults.append(fault(join_path("params", DISCOUNT_NAME), f"with model.horizon.discount, `{DISCOUNT_NAME}` "
                                 "names the document's discount; give this param another name"))
-    elif horizon.discount is not None and not horizon.discount > 0:
-        faults.append(fault(join_path("horizon", "discount"), f"the discount must be positive, got "
+    elif horizon.discount is not None and not horizon.discount >= 0:
+        faults.append(fault(join_path("horizon", "discount"), f"the discount must be positive or 0, got "
                             f"{number(horizon.discount)}"))
     return faults
+
+
+def _names(text: str, where: str) -> set[str]:
+    """The names ``text`` uses (empty when it does not parse: :func:`_names_faults` says why)."""
+    try:
+        return set(expressions.parse(text, path=where).names)
+    except InvalidDocument:
+        return set()
 
 
 def _names_faults(text: str, known: list[str], lists: list[str], where: str) -> list[Fault]:
@@ -213,8 +235,8 @@ def tabular_horizon_faults(model: Any) -> list[Fault]:
         if discount.shape != (horizon.periods,):
             faults.append(fault(where, f"has {discount.size:,} values, but model.horizon.periods is "
                                 f"{horizon.periods:,}: give one discount per period"))
-        bad = np.flatnonzero(~(discount > 0))
+        bad = np.flatnonzero(~(discount >= 0))
         if bad.size:
-            faults.append(fault(join_path(where, int(bad[0])), f"the discount must be positive in every period, got "
-                                f"{number(float(discount[bad[0]]))}"))
+            faults.append(fault(join_path(where, int(bad[0])), "the discount must be positive in every period, or 0, "
+                                f"got {number(float(discount[bad[0]]))}"))
     return faults

@@ -7,7 +7,8 @@ With ``T`` periods, ``V_T`` the terminal value and ``β_t`` the discount of peri
 Each step is the exact maximum over every allowed choice of period ``t`` (the compiled
 problem's unrestricted :meth:`~worker.problem.CompiledProblem.bellman_step`, with that period's
 params and discount in force), so ``V_t`` is the exact value of the (grid-restricted) problem
-up to rounding: there is no fixed point to approach and no discount restriction but ``β_t > 0``.
+up to rounding: there is no fixed point to approach and no discount restriction but ``β_t ≥ 0``
+(``β_t = 0``: a life table ending in a survival probability of 0; period t is then its best reward).
 
 Error bound
 -----------
