@@ -177,9 +177,11 @@ CASES: dict[str, Callable[[], dict[str, Any]]] = {
 
 RARE = {
     ("ClampedNext", "note"),
+    ("Diagnostics", "resumed_trial_iteration"),
 }
 """Keys no case here writes, with why: ``clamped_next.note`` needs more (point, choice) pairs than a quick test
-solves (over 50 million)."""
+solves (over 50 million); ``diagnostics.resumed_trial_iteration`` a search resumed from a checkpoint saved inside a
+trial (tests/worker/test_search.py makes two and validates their results against the schema)."""
 
 
 @pytest.fixture(scope="module")

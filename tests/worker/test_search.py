@@ -17,12 +17,14 @@ import copy
 from typing import Any
 
 import numpy as np
+import orjson
 import pytest
 
 from worker.aggregates import aggregate_value, parse_condition
 from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.report import long_run_distribution
+from worker.result_document import ResultDocument
 from worker.search import point_env
 from worker.solve import compile_document, solve
 
@@ -449,6 +451,7 @@ def test_a_search_stopped_in_the_middle_of_a_trial_resumes_that_trials_solve(
     # Where the resume started: three trials held complete, the fourth's solve from its saved iteration.
     assert resumed["diagnostics"]["resumed_from_iteration"] == 3
     assert resumed["diagnostics"]["resumed_trial_iteration"] == inner_iteration
+    ResultDocument.model_validate_json(orjson.dumps(resumed))  # the key as documented (test_result_schema's RARE)
 
 
 def test_a_search_stopped_inside_its_first_trial_says_where_that_trial_resumed() -> None:
@@ -473,6 +476,7 @@ def test_a_search_stopped_inside_its_first_trial_says_where_that_trial_resumed()
     assert resumed["search"]["status"] == "converged"
     assert resumed["diagnostics"]["resumed_from_iteration"] == 0
     assert resumed["diagnostics"]["resumed_trial_iteration"] == inner_iteration >= 1
+    ResultDocument.model_validate_json(orjson.dumps(resumed))  # the key as documented (test_result_schema's RARE)
     # A search resumed between trials has no trial resumed inside, and a search never stopped neither key.
     fresh = solve(document)
     assert fresh["diagnostics"]["resumed_from_iteration"] is None
