@@ -354,13 +354,15 @@ def aging_saver(method: str | None) -> dict[str, Any]:
 def savings_market(points: int = 40, **model: Any) -> dict[str, Any]:
     """Invented: households saving in an asset out of a two-state wage, their wage ``w`` and the firms'
     ``capital_demand`` params given as expressions of the interest rate ``r`` (the economy of the search tests;
-    one text, so that the tests share its compiled kernels); a grid ``model`` with ``model``'s keys overridden."""
+    one text, so that the tests share its compiled kernels); a grid ``model`` with ``model``'s keys overridden.
+    The borrowing limit, the grid's min, is a real end (no warning that the choice reaches it)."""
     return {
         "kind": "grid",
         "params": {"r": 0.02, "alpha": 0.36, "delta": 0.08,
                    "capital_demand": "(alpha / (r + delta)) ** (1 / (1 - alpha))",
                    "w": "(1 - alpha) * capital_demand ** alpha"},
-        "states": {"a": {"min": 0.0, "max": 30.0, "points": points, "spacing": "power", "exponent": 2.0}},
+        "states": {"a": {"min": 0.0, "max": 30.0, "points": points, "spacing": "power", "exponent": 2.0,
+                         "real_ends": ["min"]}},
         "shocks": {"y": {"markov": {"values": [0.4, 1.6], "matrix": [[0.8, 0.2], [0.2, 0.8]]}, "transform": "none"}},
         "choices": {"save": {"next_of": "a", "continuous": True}},
         "define": {"c": "(1 + r) * a + w * y - save"},

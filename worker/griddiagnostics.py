@@ -19,7 +19,7 @@ from worker.feasibility import ModelData
 from worker.grids import locate
 from worker.problem import Hints
 
-__all__ = ["EDGE_WARNING_SHARE", "SCAN_MAX_PAIRS", "GridDiagnostics"]
+__all__ = ["EDGE_WARNING_SHARE", "SCAN_MAX_PAIRS", "GridDiagnostics", "end_warnings", "real_ends_of"]
 
 EDGE_WARNING_SHARE = 0.01
 """Share of points at the lowest or highest point of a choice grid above which the diagnostics warn."""
@@ -30,6 +30,36 @@ CLIMBED_SCOPE = (
     "lower without evaluating them)"
 )
 """Said of counted pairs when a climb along the static choice filled the tables (:mod:`worker.statickernel`)."""
+
+
+def end_warnings(choice: str, grid: np.ndarray, lowest: float, highest: float, state: str | None,
+                 real: tuple[str, ...] = ()) -> list[str]:
+    """The warnings about the shares ``lowest`` and ``highest`` of points choosing an end of ``grid``: the
+    choice's own grid, or for a choice ``next_of`` a ``state`` that state's grid.  At :data:`EDGE_WARNING_SHARE` or
+    more, unless the state's ``real_ends`` (``real``) lists that end as a real limit of the problem.  Grid and
+    continuous choices alike."""
+    grid_of = f"choice `{choice}`" if state is None else f"the grid of state `{state}`"
+    declare = "" if state is None else f"model.states.{state}.real_ends"
+    warnings = []
+    if highest >= EDGE_WARNING_SHARE and "max" not in real:
+        warnings.append(
+            f"{highest:.1%} of points choose the highest point of `{choice}` ({grid[-1]:.6g}): the best choice "
+            f"may lie beyond the grid; consider a larger max for {grid_of}"
+            + (f", or list \"max\" in {declare} if it is a real limit" if declare else "")
+        )
+    if lowest >= EDGE_WARNING_SHARE and "min" not in real:
+        warnings.append(
+            f"{lowest:.1%} of points choose the lowest point of `{choice}` ({grid[0]:.6g}): unless that is a "
+            f"real limit of the problem (a borrowing limit, say), consider a smaller min for {grid_of}"
+            + (f"; if it is, list \"min\" in {declare}" if declare else "")
+        )
+    return warnings
+
+
+def real_ends_of(doc: Any) -> dict[str, tuple[str, ...]]:
+    """Each state's ``real_ends`` (grid models; empty otherwise)."""
+    states = getattr(doc.model, "states", None)
+    return {name: tuple(axis.real_ends) for name, axis in states.items()} if isinstance(states, dict) else {}
 
 
 class GridDiagnostics:
@@ -47,6 +77,7 @@ class GridDiagnostics:
     bridge_note: str
     _data: ModelData
     _full: ModelData
+    _real_ends: dict[str, tuple[str, ...]]
     _static: tuple[str, ...]
     _kernels: ModuleType | None
     _ctx: tuple[np.ndarray, ...]
@@ -99,16 +130,8 @@ class GridDiagnostics:
             edge_hits[name] = {"lowest": lowest, "highest": highest}
             if not self._is_choice_grid(j):
                 continue
-            if highest >= EDGE_WARNING_SHARE:
-                warnings.append(
-                    f"{highest:.1%} of points choose the highest point of `{name}` ({grid[-1]:.6g}): the best choice "
-                    f"may lie beyond the grid; consider a larger max for {self._grid_of(j)}"
-                )
-            if lowest >= EDGE_WARNING_SHARE:
-                warnings.append(
-                    f"{lowest:.1%} of points choose the lowest point of `{name}` ({grid[0]:.6g}): unless that is a "
-                    f"real limit of the problem (a borrowing limit, say), consider a smaller min for {self._grid_of(j)}"
-                )
+            state = self._state_of(j)
+            warnings += end_warnings(name, grid, lowest, highest, state, self._real_ends.get(state or "", ()))
         result: dict[str, Any] = {
             "reward_storage": self.reward_storage,
             "hints": {"monotone": self.hints.monotone, "concave": self.hints.concave},
@@ -130,12 +153,9 @@ class GridDiagnostics:
         """True for ``next_of`` choices and min/max/points grids, whose ends are arbitrary; not for menus."""
         return not self._full.choice_is_menu[j]
 
-    def _grid_of(self, j: int) -> str:
-        name = self._full.choices[j]
-        for t, setter in enumerate(self._full.setter):
-            if setter == j:
-                return f"the grid of state `{self._full.states[t]}`"
-        return f"choice `{name}`"
+    def _state_of(self, j: int) -> str | None:
+        """The state choice ``j`` is ``next_of``, or None."""
+        return next((self._full.states[t] for t, setter in enumerate(self._full.setter) if setter == j), None)
 
     def _clamped(self, policy: np.ndarray, warnings: list[str], all_pairs: bool = True) -> dict[str, Any] | None:
         data = self._data

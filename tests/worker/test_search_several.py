@@ -77,7 +77,8 @@ def test_r_and_a_tax_are_found_from_several_starts_where_a_nested_loop_finds_the
     # The nested loop's own tolerances (1e-6 on each condition) allow about this much (its sensitivities).
     assert abs(search["unknowns"]["r"] - r) <= 1e-7, (search["unknowns"], r)
     assert abs(search["unknowns"]["tau"] - tau) <= 2e-6, (search["unknowns"], tau)
-    assert not result["diagnostics"]["warnings"]
+    # Only that some of the 40 points choose the top of this short grid (a true warning of the grid).
+    assert all("highest point of `save`" in warning for warning in result["diagnostics"]["warnings"])
 
 
 def test_a_repeated_condition_is_said_not_to_identify_the_unknowns() -> None:

@@ -53,6 +53,7 @@ from worker.continuous.bound_kernels import bound_tables
 from worker.continuous.drawnodes import check_at_policy, draw_nodes
 from worker.continuous.interp_kernels import cubic_policy_steps, monotone_slopes
 from worker.feasibility import ModelData
+from worker.griddiagnostics import end_warnings, real_ends_of
 from worker.problem import Hints
 
 __all__ = ["MOVING_STEPS_DIVISOR", "POLICY_RESOLUTION", "ContinuousProblem"]
@@ -94,6 +95,7 @@ class ContinuousProblem:
         else:
             self.combos = np.zeros((1, 0))
         self.cubic = model.interpolation == "monotone_cubic"
+        self.real_ends = real_ends_of(doc)
         self.interpolation = model.interpolation
         self.shape = tuple(data.state_sizes) + tuple(v.size for v in data.shock_values)
         self.n = data.n
@@ -461,21 +463,15 @@ class ContinuousProblem:
             )
         notes = list(self.notes)
         if self.cubic:
-            notes.append(
-                "monotone_cubic interpolation: the error bound is computed as for linear interpolation, but the "
-                "cubic interpolant is not linear in the value function, so the bound is not a proof"
-            )
+            notes.append("monotone_cubic interpolation: the error bound is computed as for linear interpolation, but "
+                         "the cubic interpolant is not linear in the value function, so the bound is not a proof")
         if not self.hints.concave and self.bound_search:
-            notes.append(
-                "without the concave hint each point's search skips runs of grid intervals that a bound proves "
-                "cannot beat the best choice found, and searches the others interval by interval; inside one "
-                "interval the search is local"
-            )
+            notes.append("without the concave hint each point's search skips runs of grid intervals that a bound "
+                         "proves cannot beat the best choice found, and searches the others interval by interval; "
+                         "inside one interval the search is local")
         elif not self.hints.concave:
-            notes.append(
-                "without the concave hint each point's search scans the interval and refines the best scanned "
-                "choice; a maximum hidden between two scanned points can be missed"
-            )
+            notes.append("without the concave hint each point's search scans the interval and refines the best "
+                         "scanned choice; a maximum hidden between two scanned points can be missed")
         continuous = {
             "choice": self.choice,
             "interpolation": self.interpolation,
@@ -488,10 +484,12 @@ class ContinuousProblem:
         if self.others:
             continuous["searched_for_each"] = list(self.others)
             continuous["combinations"] = int(self.combos.shape[0])
-        if self.target is not None:
-            grid = self._data.state_grids[self.target]
-            continuous["at_lower_end"] = int(np.count_nonzero(a <= grid[0]))
-            continuous["at_upper_end"] = int(np.count_nonzero(a >= grid[-1]))
+        if self.target is not None:  # the ends of the chosen state's grid, warned as a grid choice's are
+            grid, state = self._data.state_grids[self.target], self._data.states[self.target]
+            low, high = int(np.count_nonzero(a <= grid[0])), int(np.count_nonzero(a >= grid[-1]))
+            continuous.update(at_lower_end=low, at_upper_end=high)
+            warnings += end_warnings(self.choice, grid, low / self.n, high / self.n, state,
+                                     self.real_ends.get(state, ()))
         if self.egm_report is not None:
             continuous["endogenous_grid"] = dict(self.egm_report)
         out: dict[str, Any] = {"continuous_choice": continuous, "warnings": warnings, "timings": dict(self.timings)}

@@ -79,7 +79,8 @@ class GridAxis(Part):
         description=(
             'Ends of the grid that are real limits of the state (a borrowing limit, a capacity): "min", "max" '
             "or both. Stationary mass piling up at the top of a grid is warned about (the grid may cut the "
-            "state short) unless \"max\" is listed here."
+            "state short) unless \"max\" is listed here, and a policy choosing an end of the grid at 1% of "
+            "the points or more (a next_of choice, grid or continuous) unless that end is listed."
         ),
     )
 
