@@ -43,8 +43,8 @@ from worker.continuous.egm_rounds import first_disorder
 from worker.errors import InvalidDocument
 from worker.euler_points import environment, slope_at
 from worker.expressions import parse
-from worker.expressions.nodes import Compare, children, names_in
 from worker.expressions.evaluator import evaluate_tree
+from worker.expressions.nodes import Compare, children, names_in
 from worker.solvers.backward import PeriodPlan, period_step
 
 __all__ = ["EgmStepper", "KINK_STRENGTH", "egm_stepper"]
@@ -246,8 +246,8 @@ class EgmStepper:
         self.states, self.points, self.searched = arrays[0].copy(), arrays[1].copy(), arrays[2].astype(bool)
         self.greedy_gap, self.value_gap = arrays[3][0].copy(), arrays[3][1].copy()
         self.searched_policy = arrays[4].copy()
-        disorder, reason = state.get("egm_disorder"), state.get("egm_disorder_reason")
-        if isinstance(disorder, np.ndarray) and isinstance(reason, np.ndarray) and disorder.shape == self.disorder.shape:
+        disorder, reason, T = state.get("egm_disorder"), state.get("egm_disorder_reason"), self.plan.periods
+        if isinstance(disorder, np.ndarray) and isinstance(reason, np.ndarray) and disorder.shape == (T,):
             self.disorder, self.disorder_reason = disorder.astype(np.int64), [str(r) for r in reason.tolist()]
         # The bends of each period are recomputed from the grids, in the order the solve made them.
         for t in range(self.plan.periods - 2, first_done - 1, -1):
