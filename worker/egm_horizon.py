@@ -39,10 +39,12 @@ import numpy as np
 
 from worker import _slopes
 from worker.continuous.egm import KINK_STRENGTH, _inverse_marginal, _kinks, _most_bends, _state_for
+from worker.continuous.egm_rounds import first_disorder
 from worker.errors import InvalidDocument
 from worker.euler_points import environment, slope_at
 from worker.expressions import parse
 from worker.expressions.evaluator import evaluate_tree
+from worker.expressions.nodes import Compare, children, names_in
 from worker.solvers.backward import PeriodPlan, period_step
 
 __all__ = ["EgmStepper", "KINK_STRENGTH", "egm_stepper"]
@@ -56,7 +58,14 @@ def egm_stepper(doc: Any, problem: Any, plan: PeriodPlan, terminal_given: bool) 
     """
     if doc.solver.method != "endogenous_grid" or getattr(problem, "egm_form", None) is None:
         return None
-    return EgmStepper(doc, problem, plan, None if terminal_given else _terminal_slope(doc, problem))
+    slope = None if terminal_given else _terminal_slope(doc, problem)
+    stepper = EgmStepper(doc, problem, plan, None if slope is _KINKED else slope)
+    stepper.terminal_kink = slope is _KINKED
+    return stepper
+
+
+_KINKED = np.zeros(0)
+""":func:`_terminal_slope` of a terminal value with a kink in the state (no slope there)."""
 
 
 def _terminal_slope(doc: Any, problem: Any) -> np.ndarray | None:
@@ -75,6 +84,8 @@ def _terminal_slope(doc: Any, problem: Any) -> np.ndarray | None:
         slope = _slopes.derivative(tree, data.states[0], {})
     except _slopes.NotSmooth:
         return None
+    if _tests_state(slope, data.states[0]):
+        return _KINKED  # a kink in the state (abs, min, max, clip): no slope there, and the method needs one
     env: dict[str, Any] = {name: value for name, value, raw in zip(
         data.params, period_params(doc.model, 0).tolist(), [*doc.model.params.values(), None])
         if not isinstance(raw, list)}
@@ -84,6 +95,14 @@ def _terminal_slope(doc: Any, problem: Any) -> np.ndarray | None:
     with np.errstate(all="ignore"):
         values = np.broadcast_to(np.asarray(evaluate_tree(slope, env), dtype=np.float64), shape).copy()
     return values if np.isfinite(values).all() else None
+
+
+def _tests_state(node: Any, state: str) -> bool:
+    """Whether the tree ``node`` compares something that depends on ``state`` (the derivative of ``abs``,
+    ``min``, ``max`` or ``clip`` of the state does: the value has a kink there)."""
+    if isinstance(node, Compare) and state in names_in(node):
+        return True
+    return any(_tests_state(child, state) for child in children(node))
 
 
 class EgmStepper:
@@ -106,6 +125,9 @@ class EgmStepper:
         self.value_gap = np.zeros(T)
         self.seconds = 0.0
         self.searched_policy = np.full(self.data.n, np.nan)  # the last period's policy when it was searched
+        self.disorder = np.full(T, -1, dtype=np.int64)  # the shock point whose round failed the check (-1: none)
+        self.disorder_reason: list[str] = [""] * T
+        self.terminal_kink = False  # the terminal value has a kink in the state (the last period searched)
 
     def _period_data(self, t: int) -> Any:
         from worker.feasibility import period_params
@@ -128,10 +150,13 @@ class EgmStepper:
         T, n_z = self.plan.periods, self.data.n_shocks
         grid = self.grid
         last = t == T - 1
-        if last and self.terminal_slope is None:
+        if (last and self.terminal_slope is None) or (not last and self.searched[t + 1] and t + 1 < T - 1):
+            # No slope of the terminal value, or a later period fell back to the search (the round needs
+            # tomorrow's policy from a round, or from the last period's search): this period is searched.
             tv, policy = period_step(self.problem, self.plan, t, after, None, verification, warnings)
             self.searched[t] = True
-            self.searched_policy = np.asarray(policy, dtype=np.float64).copy()
+            if last:
+                self.searched_policy = np.asarray(policy, dtype=np.float64).copy()
             self.seconds += time.perf_counter() - started
             return tv, np.asarray(policy, dtype=np.float64)
         today = self._period_data(t)
@@ -162,6 +187,16 @@ class EgmStepper:
             c_star[~interior] = np.nan
             k_today = _state_for(today, self.found, self.c_slope, points, shocks, np.where(interior, c_star, 1.0))
         k_today[~interior] = np.nan
+        disorder = first_disorder(k_today, expected)
+        if disorder is not None:
+            # The continuation is not concave here (a kink or a dip): the first-order condition has several
+            # solutions, and the round's policy would not be the maximum.  The period is searched instead.
+            tv, policy = period_step(self.problem, self.plan, t, after, None, verification, warnings)
+            self.searched[t] = True
+            self.disorder[t] = disorder[0]
+            self.disorder_reason[t] = disorder[1]
+            self.seconds += time.perf_counter() - started
+            return tv, np.asarray(policy, dtype=np.float64)
         if points.size > self.width:
             raise RuntimeError(f"period {t}: {points.size} choice points, more than the {self.width} kept")
         self.states[t], self.points[t] = np.nan, np.nan
@@ -200,6 +235,7 @@ class EgmStepper:
         return {
             "egm_states": self.states.copy(), "egm_points": self.points.copy(), "egm_searched": self.searched.copy(),
             "egm_gaps": np.stack([self.greedy_gap, self.value_gap]), "egm_searched_policy": self.searched_policy.copy(),
+            "egm_disorder": self.disorder.copy(), "egm_disorder_reason": np.array(self.disorder_reason, dtype=str),
         }
 
     def resume(self, state: dict[str, Any], first_done: int) -> bool:
@@ -210,12 +246,36 @@ class EgmStepper:
         self.states, self.points, self.searched = arrays[0].copy(), arrays[1].copy(), arrays[2].astype(bool)
         self.greedy_gap, self.value_gap = arrays[3][0].copy(), arrays[3][1].copy()
         self.searched_policy = arrays[4].copy()
+        disorder, reason, T = state.get("egm_disorder"), state.get("egm_disorder_reason"), self.plan.periods
+        if isinstance(disorder, np.ndarray) and isinstance(reason, np.ndarray) and disorder.shape == (T,):
+            self.disorder, self.disorder_reason = disorder.astype(np.int64), [str(r) for r in reason.tolist()]
         # The bends of each period are recomputed from the grids, in the order the solve made them.
         for t in range(self.plan.periods - 2, first_done - 1, -1):
             if not self.searched[t + 1]:
                 self.kinks[t] = _kinks(self.grid, self._pairs(t + 1), self.kinks[t + 1],
                                        self._period_data(t).transition)
         return True
+
+    def warnings(self, first: int) -> list[str]:
+        """The warning of a solve whose rounds fell back to the search (none when every round held)."""
+        failed = [t for t in range(first, self.plan.periods) if self.disorder[t] >= 0]
+        kink = []
+        if self.terminal_kink and self.searched[-1]:
+            kink = [f"solver.method endogenous_grid: model.horizon.terminal_value has a kink in the state (abs, min, "
+                    f"max or clip of it), where the method has no slope to use: the last period "
+                    f"({self.plan.periods - 1}) was solved by backward induction's search"]
+        if not failed:
+            return kink
+        t = failed[-1]
+        shock = ", ".join(f"{name}={float(self.data.shock_table[self.disorder[t], i]):g}"
+                          for i, name in enumerate(self.data.shocks)) or "the only shock point"
+        earlier = f"; periods {first} to {t - 1} were searched too (a round needs tomorrow's policy from a " \
+                  "round)" if t > first else ""
+        return [f"solver.method endogenous_grid: in period {t}, at shock point {shock}, {self.disorder_reason[t]}: "
+                "the continuation is not concave there (a kink or a dip, e.g. in model.horizon.terminal_value), the "
+                "first-order condition has several solutions and the method's policy would not be the best choice, "
+                f"so period {t} was solved by backward induction's search instead{earlier}; "
+                "diagnostics.continuous_choice.endogenous_grid.searched_periods lists the searched periods", *kink]
 
     def report(self, first: int) -> dict[str, Any]:
         """``diagnostics.continuous_choice.endogenous_grid`` of a horizon."""

@@ -217,6 +217,8 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
         problem.egm_report = plan.stepper.report(outcome.first_period)
     problem_diagnostics = plain(_diagnostics_by_period(doc, problem, plan, outcome)) if periods else {}
     warnings = list(outcome.warnings) + list(problem_diagnostics.pop("warnings", []))
+    if plan.stepper is not None:
+        warnings += plan.stepper.warnings(outcome.first_period)
     notes = problem_diagnostics.setdefault("notes", [])
     continuous = getattr(problem, "choose_at", None) is not None
     notes.append(

@@ -24,7 +24,7 @@ from numba import njit
 
 from worker.continuous.interp_kernels import read_pairs
 
-__all__ = ["bends", "read_moved", "root", "union_sorted"]
+__all__ = ["bends", "first_disorder", "read_moved", "root", "union_sorted"]
 
 
 @njit(cache=True, nogil=True, error_model="numpy")
@@ -155,3 +155,30 @@ def root(x: float, e: float) -> float:
     if e == 2.0:
         return x * x
     return x ** e
+
+
+def first_disorder(states: np.ndarray, marginal: np.ndarray | None = None) -> tuple[int, str] | None:
+    """Where one round's endogenous grid shows a continuation the method cannot use: ``(shock point, what)``,
+    or None.  ``states`` (m, n_z) are the endogenous states of the choices (sorted, increasing), NaN where the
+    choice is never interior; ``marginal`` (m, n_z), when given, the expected marginal value of the choices.
+
+    The method (Carroll 2006) assumes the continuation is concave in the choice: its expected marginal
+    value then does not rise with the choice, the first-order condition has one solution for each state,
+    and the endogenous states rise with the choices, the interior ones first.  A rise of the marginal
+    value (beyond rounding), an interior choice above one that is not, or endogenous states that do not
+    increase mean several choices solve the first-order condition at some state, and the linear reading of
+    the choices against those states is not the maximum."""
+    with np.errstate(invalid="ignore"):
+        for z in range(states.shape[1]):
+            finite = np.isfinite(states[:, z])
+            count = int(finite.sum())
+            if not finite[:count].all():
+                return z, "a choice above one that is never interior is interior"
+            if np.any(np.diff(states[:count, z]) <= 0.0):
+                return z, "the endogenous states do not increase with the choice"
+            if marginal is not None:
+                m = marginal[:, z]
+                rise = np.diff(m) > 1e-9 * np.maximum(np.abs(m[:-1]), np.abs(m[1:]))
+                if np.any(rise & np.isfinite(m[1:]) & np.isfinite(m[:-1])):
+                    return z, "the expected marginal value rises with the choice"
+    return None
