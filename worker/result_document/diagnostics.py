@@ -187,8 +187,10 @@ class EndogenousGridByPeriod(Reported):
 
     periods: int = Field(description="Periods whose policy is the method's round (from the next period's policy).")
     searched_periods: list[int] = Field(
-        description="Periods solved by the ordinary search instead (the last, when the terminal value has no slope "
-        "the method can use)."
+        description="Periods solved by the ordinary search instead: the last, when the terminal value has no slope "
+        "the method can use (or a kink in the state); a period whose continuation is not concave (its round's "
+        "endogenous states do not rise with the choice, or its expected marginal value rises), and every earlier "
+        "one (a warning names the first such period and shock point)."
     )
     seconds: float = Field(description="Time (s) spent in the rounds.")
     greedy_gap: float = Field(
