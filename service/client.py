@@ -33,12 +33,14 @@ class APIError(Exception):
     """Raised when the API answers with an error status.
 
     ``status`` is the HTTP status and ``problem`` the problem-details body
-    (``type``, ``title``, ``detail`` and, for invalid documents, ``errors``).
+    (``type``, ``title``, ``detail`` and, for invalid documents, ``errors``);
+    ``retry_after`` the seconds of a ``Retry-After`` header (429, 503), else None.
     """
 
-    def __init__(self, status: int, problem: dict[str, Any]) -> None:
+    def __init__(self, status: int, problem: dict[str, Any], retry_after: float | None = None) -> None:
         self.status = status
         self.problem = problem
+        self.retry_after = retry_after
         super().__init__(f"{status} {problem.get('title', 'error')}: {problem.get('detail', '')}".rstrip(": "))
 
     @property
@@ -251,4 +253,8 @@ def _api_error(response: httpx.Response) -> APIError:
         problem = {"title": response.reason_phrase, "detail": response.text[:200]}
     if not isinstance(problem, dict):
         problem = {"title": response.reason_phrase, "detail": str(problem)[:200]}
-    return APIError(response.status_code, problem)
+    try:
+        retry_after = float(response.headers["Retry-After"])
+    except (KeyError, ValueError):
+        retry_after = None
+    return APIError(response.status_code, problem, retry_after)

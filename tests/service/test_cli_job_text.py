@@ -1,0 +1,95 @@
+"""What ``fixq status`` and ``fixq submit`` say about a search's answer, a failed job's reason, and a
+refusal with Retry-After, against canned API answers (httpx.MockTransport: the words, not the service)."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Callable
+from pathlib import Path
+
+import httpx
+import pytest
+
+from service import cli
+from service.client import FixqClient
+from tests._documents import machine_shop
+
+JOB = "87a9107cd0b1548f"
+FAULT = "no root in the bracket: mean(a) - capital_demand is -8.29 at r = 0 and -7.16 at r = 0.005"
+RECORDS = {
+    "search_done": {
+        "id": JOB, "state": "done", "label": "invented market", "status": "converged", "iterations": 2,
+        "error_bound": 2.06e-09, "progress": {"iteration": 7},
+        "search": {"status": "converged", "unknowns": {"r": 0.03293677769544847}, "residuals": [1.0154e-07],
+                   "trials": 7},
+    },
+    "search_failed": {
+        "id": JOB, "state": "failed", "label": "invented market", "progress": {"iteration": 12},
+        "search": {"status": "no_root", "unknowns": {"r": 0.005}, "residuals": [-7.158], "trials": 12},
+        "error": {"title": "invalid problem document", "detail": f"search.unknowns.r: {FAULT}",
+                  "errors": [{"path": "search.unknowns.r", "message": FAULT}]},
+    },
+}  # fmt: skip
+
+
+@pytest.fixture
+def fixq(monkeypatch: pytest.MonkeyPatch, capsys: pytest.CaptureFixture[str]):
+    """``fixq ARGS`` against ``handler`` (a MockTransport handler); returns (exit code, stdout, stderr)."""
+
+    def run(handler: Callable[[httpx.Request], httpx.Response], *args: str) -> tuple[int, str, str]:
+        transport = httpx.MockTransport(handler)
+        monkeypatch.setattr(cli, "FixqClient", lambda: FixqClient("http://fixq.test", transport=transport))
+        code = cli.main(list(args))
+        out, err = capsys.readouterr()
+        return code, out, err
+
+    return run
+
+
+def answering(record: dict) -> Callable[[httpx.Request], httpx.Response]:
+    def handler(request: httpx.Request) -> httpx.Response:
+        if request.method == "POST":
+            return httpx.Response(202, json={**record, "state": "queued"})
+        if request.url.path.endswith("/log"):
+            return httpx.Response(200, text='event: end\ndata: {"state": "x"}\n\n',
+                                  headers={"Content-Type": "text/event-stream"})
+        return httpx.Response(200, json=record)
+
+    return handler
+
+
+def test_status_shows_a_search_answer_from_the_job_record(fixq) -> None:
+    code, out, _ = fixq(answering(RECORDS["search_done"]), "status", JOB)
+    assert code == 0
+    assert "search       converged: r = 0.0329368 (residuals 1.02e-07) after 7 trials" in out.splitlines()
+
+
+def test_a_failed_job_is_told_in_sentences_with_the_fault_paths(fixq, tmp_path: Path) -> None:
+    # Before: "failed: {'title': 'invalid problem document', 'detail': ...}", a Python dict's repr.
+    code, out, _ = fixq(answering(RECORDS["search_failed"]), "status", JOB)
+    assert code == 0 and "{'" not in out
+    assert f"state        failed: search.unknowns.r: {FAULT}" in out.splitlines()
+    assert "search       no_root: r = 0.005 (residuals -7.16) after 12 trials" in out.splitlines()
+    assert f"  search.unknowns.r: {FAULT}" in out.splitlines()
+
+    document = tmp_path / "market.json"
+    document.write_text(json.dumps(machine_shop()))
+    code, out, err = fixq(answering(RECORDS["search_failed"]), "submit", str(document), "--wait")
+    assert code == 1 and out.strip() == JOB and "{'" not in err
+    assert f"fixq: job {JOB} failed: search.unknowns.r: {FAULT}" in err.splitlines()
+    assert "fixq: search no_root: r = 0.005 (residuals -7.16) after 12 trials" in err.splitlines()
+
+
+def test_a_refusal_says_when_to_try_again(fixq, tmp_path: Path) -> None:
+    problem = {"type": "urn:fixq:problem:too-many-jobs", "title": "too many active jobs", "status": 429,
+               "detail": "key 'lab' has 3 jobs queued or running, and the per-key cap max_active_jobs is 3"}
+
+    def refuse(request: httpx.Request) -> httpx.Response:
+        return httpx.Response(429, json=problem, headers={"Retry-After": "30"})
+
+    document = tmp_path / "shop.json"
+    document.write_text(json.dumps(machine_shop()))
+    code, _, err = fixq(refuse, "submit", str(document))
+    assert code == 1
+    assert "fixq: 429 too many active jobs: key 'lab' has 3 jobs" in err
+    assert "fixq: the API asks to try again in 30 s (Retry-After)" in err.splitlines()
