@@ -186,13 +186,18 @@ def assert_same(native: np.ndarray, expected: Any) -> None:
 def test_the_script_reads_the_solution_into_native_arrays(
     language: str, example: str, server: LiveServer, key: str, tmp_path: Path
 ) -> None:
-    done = run(language, server, tmp_path, FIXQ_KEY=key, FIXQ_EXAMPLE=example)
+    # R in the C locale (cron, containers), where the script's label went out with "β" as "<ce><b2>".
+    locale = {"LC_ALL": "C"} if language == "R" else {}
+    done = run(language, server, tmp_path, FIXQ_KEY=key, FIXQ_EXAMPLE=example, **locale)
     assert done.returncode == 0, f"{language} failed:\n{done.stdout}\n{done.stderr}\n{server.logs()}"
     output = done.stdout
     job_id = (tmp_path / "job_id.txt").read_text().strip()
     assert f"submitted job {job_id}" in output
     with httpx.Client(base_url=server.url, headers={"Authorization": f"Bearer {key}"}, timeout=30) as client:
-        assert client.get(f"/v1/jobs/{job_id}").json()["owner"] == KEY_NAME  # the script sent the key
+        record = client.get(f"/v1/jobs/{job_id}").json()
+        assert record["owner"] == KEY_NAME  # the script sent the key
+        if language == "R" and example == "household_saving":
+            assert record["label"] == "household saving at a 2% interest rate, β = 0.96 (invented scenario)"
         result = client.get(f"/v1/jobs/{job_id}/result").json()
 
     axis_order = result.get("axis_order") or list(result["axes"])

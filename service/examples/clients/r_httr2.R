@@ -33,6 +33,16 @@
 library(httr2)
 library(jsonlite)
 
+# Under a locale that is not UTF-8 (LANG=C: cron, containers, ssh sessions)
+# R reads this file's text, and Sys.getenv() and readLines() theirs, as bytes
+# of no known encoding, which jsonlite sends as "Z<c3><bc>rich" for "Zürich"
+# (seen with R 4.2, jsonlite 1.8). So the session's character type is
+# switched to UTF-8 first (this file is UTF-8; so should your own be).
+if (!l10n_info()[["UTF-8"]]) {
+  for (utf8 in c("C.UTF-8", "en_US.UTF-8")) if (nzchar(suppressWarnings(Sys.setlocale("LC_CTYPE", utf8)))) break
+  if (!l10n_info()[["UTF-8"]]) warning("no UTF-8 locale: text outside ASCII will be sent mangled")
+}
+
 fixq_url <- Sys.getenv("FIXQ_URL", "http://127.0.0.1:8000")
 fixq_key <- Sys.getenv("FIXQ_KEY")
 example <- Sys.getenv("FIXQ_EXAMPLE", "household_saving")
@@ -104,7 +114,7 @@ row_major_array <- function(flat, axes) {
 #    FALSE keeps the document's lists as lists, so it goes back as it came.
 document <- fixq_get(paste0("/v1/examples/", example))
 if (example == "household_saving") {
-  document$label <- "household saving at a 2% interest rate (invented scenario)"
+  document$label <- "household saving at a 2% interest rate, β = 0.96 (invented scenario)"
   document$model$params$r <- 0.02
 }
 
