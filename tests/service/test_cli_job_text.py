@@ -1,5 +1,6 @@
 """What ``fixq status`` and ``fixq submit`` say about a search's answer, a failed job's reason, and a
-refusal with Retry-After, against canned API answers (httpx.MockTransport: the words, not the service)."""
+refusal with Retry-After, against canned API answers (httpx.MockTransport: the words, not the service);
+and a refusal that no wait can cure carries no Retry-After."""
 
 from __future__ import annotations
 
@@ -12,6 +13,7 @@ import pytest
 
 from service import cli
 from service.client import FixqClient
+from service.limits import Quota, _too_many
 from tests._documents import machine_shop
 
 JOB = "87a9107cd0b1548f"
@@ -93,3 +95,14 @@ def test_a_refusal_says_when_to_try_again(fixq, tmp_path: Path) -> None:
     assert code == 1
     assert "fixq: 429 too many active jobs: key 'lab' has 3 jobs" in err
     assert "fixq: the API asks to try again in 30 s (Retry-After)" in err.splitlines()
+
+
+def test_a_sweep_larger_than_the_cap_is_not_told_to_wait() -> None:
+    # Before: "wait for some to finish ..." and Retry-After: 30 for 4 jobs at once under a cap of 3, with
+    # nothing running: a client honouring Retry-After asked again for ever.
+    quota = Quota(owner="lab", max_active_jobs=3, max_active_high_jobs=0, key_max_problem_mb=0.0)
+    never = _too_many(quota, "max_active_jobs", 0, 4)
+    assert never.status_code == 429 and not (never.headers or {}).get("Retry-After")
+    assert "split the sweep, or chain it" in never.detail and "wait for some" not in never.detail
+    later = _too_many(quota, "max_active_jobs", 2, 2)
+    assert later.headers["Retry-After"] and "wait for some to finish" in later.detail
