@@ -19,6 +19,7 @@ import os
 import re
 import shutil
 import subprocess
+import sys
 import threading
 from collections.abc import Iterator
 from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
@@ -262,3 +263,16 @@ def test_the_script_follows_axis_order_and_rides_out_an_outage(
         assert {f"cut /v1/jobs/{job_id}/log", f"503 /v1/jobs/{job_id}/log"} <= set(proxy.interrupted)
         shown = [int(n) for n in re.findall(r"^  iteration (\d+), error bound", done.stdout, re.MULTILINE)]
         assert shown == [entry["iteration"] for entry in result["log"]]
+
+
+def test_the_python_script_rides_out_an_outage(server: LiveServer, key: str, tmp_path: Path) -> None:
+    # python_httpx.py (run as shipped by tests/service/test_examples.py too) through the same outage.
+    with ReorderingProxy(server.url, outage=True) as proxy:
+        environment = {**os.environ, "FIXQ_URL": proxy.url, "FIXQ_KEY": key}
+        done = subprocess.run([sys.executable, str(CLIENTS / "python_httpx.py")], cwd=tmp_path, env=environment,
+                              capture_output=True, text=True, timeout=RUN_TIMEOUT_S)  # fmt: skip
+    assert done.returncode == 0, f"{done.stdout}\n{done.stderr}\n{server.logs()}"
+    job_id = re.search(r"submitted job ([0-9a-f]{16})", done.stdout).group(1)
+    assert {f"cut /v1/jobs/{job_id}/result", f"503 /v1/jobs/{job_id}/result"} <= set(proxy.interrupted)
+    assert "fixq is unreachable for now" in done.stderr
+    assert "policy array shape (160, 5) (assets x income)" in done.stdout
