@@ -27,6 +27,10 @@ TERMINAL_STATES = frozenset({"done", "failed", "canceled"})
 JSON_HEADERS = {"Content-Type": "application/json"}
 RECONNECT_S = 1.0
 """Seconds to wait before re-opening a progress stream that broke."""
+STREAM_SILENCE_S = 45.0
+"""Seconds a live log may send nothing before it counts as broken: three of the API's keepalive intervals (15 s),
+so a connection that died without closing (a dropped network, a suspended laptop) is re-opened, not waited on
+for ever."""
 
 
 class APIError(Exception):
@@ -143,12 +147,13 @@ class FixqClient:
     def stream_log(self, job_id: str, *, after: int | None = None) -> Iterator[tuple[str, dict[str, Any]]]:
         """Follow the live log (SSE): yields ``("entry", entry)`` then ``("end", {"state": ...})``.
 
-        ``after`` is the last iteration already seen (sent as ``Last-Event-ID``).
+        Raises ``httpx.ReadTimeout`` when the stream sends nothing, not even a keepalive, for
+        ``STREAM_SILENCE_S``. ``after`` is the last iteration already seen (sent as ``Last-Event-ID``).
         """
         headers = {"Accept": "text/event-stream"}
         if after is not None:
             headers["Last-Event-ID"] = str(after)
-        timeout = httpx.Timeout(self._http.timeout.connect, read=None)
+        timeout = httpx.Timeout(self._http.timeout.connect, read=STREAM_SILENCE_S)
         with self._http.stream("GET", f"/v1/jobs/{job_id}/log", headers=headers, timeout=timeout) as response:
             if response.status_code >= 400:
                 response.read()
