@@ -276,3 +276,20 @@ def test_the_python_script_rides_out_an_outage(server: LiveServer, key: str, tmp
     assert {f"cut /v1/jobs/{job_id}/result", f"503 /v1/jobs/{job_id}/result"} <= set(proxy.interrupted)
     assert "fixq is unreachable for now" in done.stderr
     assert "policy array shape (160, 5) (assets x income)" in done.stdout
+
+
+@pytest.mark.skipif(not (shutil.which("curl") and shutil.which("jq")), reason="curl and jq are needed for this example")
+def test_the_curl_script_rides_out_an_outage(server: LiveServer, key: str, tmp_path: Path) -> None:
+    # curl_lifecycle.sh (run as shipped by tests/service/test_examples.py too) through the same outage.
+    with ReorderingProxy(server.url, outage=True) as proxy:
+        environment = {**os.environ, "FIXQ_URL": proxy.url, "FIXQ_KEY": key}
+        done = subprocess.run(["bash", str(CLIENTS / "curl_lifecycle.sh"), str(tmp_path)], cwd=tmp_path,
+                              env=environment, capture_output=True, text=True, timeout=RUN_TIMEOUT_S)  # fmt: skip
+    assert done.returncode == 0, f"{done.stdout}\n{done.stderr}\n{server.logs()}"
+    job_id = re.search(r"job ([0-9a-f]{16}) is done", done.stdout).group(1)
+    assert {f"cut /v1/jobs/{job_id}/result", f"503 /v1/jobs/{job_id}/log"} <= set(proxy.interrupted)
+    assert "fixq is unreachable for now (HTTP 503)" in done.stderr
+    assert "wear 8\treplace" in done.stdout
+    assert json.loads((tmp_path / "result.json").read_text())["axis_order"] == ["state_label"]
+    table = (tmp_path / "result.csv").read_text().splitlines()
+    assert table[0] == "state_label,value,action" and len(table) == 11
