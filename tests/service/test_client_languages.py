@@ -9,7 +9,8 @@ axis of text labels (machine_replacement), and taste shocks, whose CSV table has
 column per alternative (courier_van_replacement). One more run goes through a pass-through that lists
 a result's axes out of order and states the order in ``axis_order``, which the scripts must
 follow, and that plays a short outage (a cut connection, then a 503) which they must wait
-out. A test skips when its language is not installed.
+out. The Python and curl scripts (run as they are by tests/service/test_examples.py) go through
+that outage too. A test skips when its language is not installed.
 """
 
 from __future__ import annotations
