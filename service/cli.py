@@ -162,7 +162,7 @@ def _cmd_submit(args: argparse.Namespace) -> int:
             return EXIT_OK
         tolerance = float((document.get("solver") or {}).get("tolerance", 1e-6))
         bar = ProgressBar(sys.stderr, tolerance)
-        record = client.wait(job["id"], on_progress=bar.update)
+        record = client.wait(job["id"], on_progress=bar.update, on_outage=_say_waiting)
         bar.close()
     state = record.get("state")
     print(f"fixq: job {record['id']} {outcome(record)}", file=sys.stderr)
@@ -194,6 +194,10 @@ def _cmd_status(args: argparse.Namespace) -> int:
     for line in fault_lines(record):
         print(line)
     return EXIT_OK
+
+
+def _say_waiting(reason: str) -> None:
+    print(f"\nfixq: {reason}; waiting for it (Ctrl-C stops waiting, not the job)", file=sys.stderr)
 
 
 def _print_answer(record: dict[str, Any]) -> None:

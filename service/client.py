@@ -175,16 +175,20 @@ class FixqClient:
         *,
         on_progress: Callable[[dict[str, Any]], None] | None = None,
         timeout_s: float | None = None,
+        on_outage: Callable[[str], None] | None = None,
     ) -> dict[str, Any]:
         """Block until the job is done, failed or canceled; returns its final record.
 
         ``on_progress(entry)`` is called with each convergence-log entry
         (``iteration``, ``distance``, ``error_bound``...) as it is made.  A
         broken stream (the API restarted, Redis answered 503 for a while) is
-        re-opened where it left off.
+        re-opened where it left off; ``on_outage(reason)`` is called once when
+        the job record cannot be read (so a caller can say why it is waiting),
+        and again only after it could be read in between.
         """
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         last_iteration: int | None = None
+        in_outage = False
         while True:
             ended = False
             try:
@@ -203,14 +207,18 @@ class FixqClient:
             except APIError as exc:
                 if exc.status != 503:
                     raise
+            outage = None
             try:
                 record = self.status(job_id)
-            except httpx.TransportError:
-                record = {"state": None}
+            except httpx.TransportError as exc:
+                record, outage = {"state": None}, f"cannot reach the API at {self.url} ({exc or type(exc).__name__})"
             except APIError as exc:
                 if exc.status != 503:
                     raise
-                record = {"state": None}
+                record, outage = {"state": None}, str(exc)
+            if outage is not None and not in_outage and on_outage is not None:
+                on_outage(outage)
+            in_outage = outage is not None
             if record.get("state") in TERMINAL_STATES:
                 if not ended and on_progress is not None:
                     # The stream broke and the job ended before it was re-opened: the log's tail is still to

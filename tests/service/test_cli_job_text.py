@@ -106,3 +106,28 @@ def test_a_sweep_larger_than_the_cap_is_not_told_to_wait() -> None:
     assert "split the sweep, or chain it" in never.detail and "wait for some" not in never.detail
     later = _too_many(quota, "max_active_jobs", 2, 2)
     assert later.headers["Retry-After"] and "wait for some to finish" in later.detail
+
+
+def test_submit_wait_says_once_why_it_waits_through_an_outage(fixq, tmp_path: Path, monkeypatch) -> None:
+    # Before: the progress line froze without a word while Redis was away (503 on the log and the record).
+    monkeypatch.setattr("service.client.RECONNECT_S", 0.0)
+    unavailable = {"type": "urn:fixq:problem:unavailable", "title": "service unavailable", "status": 503,
+                   "detail": "the job store (Redis) is unavailable; try again shortly"}
+    reads: list[str] = []
+
+    def redis_away_twice(request: httpx.Request) -> httpx.Response:
+        if request.method == "POST":
+            return httpx.Response(202, json={"id": JOB, "state": "queued"})
+        reads.append(request.url.path)
+        if len(reads) <= 4:  # log, record, log, record: all 503
+            return httpx.Response(503, json=unavailable, headers={"Retry-After": "5"})
+        return answering({"id": JOB, "state": "done", "status": "converged", "iterations": 3})(request)
+
+    document = tmp_path / "shop.json"
+    document.write_text(json.dumps(machine_shop()))
+    code, out, err = fixq(redis_away_twice, "submit", str(document), "--wait")
+    assert code == 0 and out.strip() == JOB
+    said = [line for line in err.splitlines() if "waiting for it" in line]
+    assert said == ["fixq: 503 service unavailable: the job store (Redis) is unavailable; try again shortly; "
+                    "waiting for it (Ctrl-C stops waiting, not the job)"]  # fmt: skip
+    assert f"fixq: job {JOB} done: converged after 3 iterations" in err
