@@ -26,6 +26,7 @@ import httpx
 
 from service.children import WARM_STOP_S, Stop, raise_stop, spawn, stop_child
 from service.client import APIError, FixqClient
+from service.job_text import fault_lines, outcome, search_answer
 from service.progress import ProgressBar
 
 __all__ = ["main"]
@@ -119,6 +120,8 @@ def _url() -> str:
 
 def _print_problem(exc: APIError) -> None:
     print(f"fixq: {exc}", file=sys.stderr)
+    if exc.retry_after is not None:
+        print(f"fixq: the API asks to try again in {exc.retry_after:g} s (Retry-After)", file=sys.stderr)
     for error in exc.errors:
         print(f"  {error.get('path') or '(document)'}: {error.get('message')}", file=sys.stderr)
 
@@ -159,25 +162,12 @@ def _cmd_submit(args: argparse.Namespace) -> int:
             return EXIT_OK
         tolerance = float((document.get("solver") or {}).get("tolerance", 1e-6))
         bar = ProgressBar(sys.stderr, tolerance)
-        record = client.wait(job["id"], on_progress=bar.update)
+        record = client.wait(job["id"], on_progress=bar.update, on_outage=_say_waiting)
         bar.close()
     state = record.get("state")
-    print(f"fixq: job {record['id']} {_outcome(record)}", file=sys.stderr)
+    print(f"fixq: job {record['id']} {outcome(record)}", file=sys.stderr)
+    _print_answer(record)
     return EXIT_OK if state == "done" else EXIT_FAILED
-
-
-def _outcome(record: dict[str, Any]) -> str:
-    state = record.get("state")
-    if state == "done":
-        text = f"done: {record.get('status') or 'finished'}"
-        if record.get("iterations") is not None:
-            text += f" after {record['iterations']} iterations"
-        if record.get("error_bound") is not None:
-            text += f", error bound {record['error_bound']:.3g}"
-        return text
-    if state == "failed":
-        return f"failed: {record.get('error') or 'no reason recorded'}"
-    return str(state)
 
 
 def _cmd_status(args: argparse.Namespace) -> int:
@@ -190,7 +180,8 @@ def _cmd_status(args: argparse.Namespace) -> int:
     rows = [
         ("job", record.get("id")),
         ("label", record.get("label")),
-        ("state", _outcome(record)),
+        ("state", outcome(record)),
+        ("search", search_answer(record.get("search"))),
         ("iterations", _recorded_or_latest(record, progress, "iterations", "iteration")),
         ("error bound", _recorded_or_latest(record, progress, "error_bound", "error_bound")),
         ("submitted", record.get("submitted_at")),
@@ -200,7 +191,20 @@ def _cmd_status(args: argparse.Namespace) -> int:
     for name, value in rows:
         if value not in (None, "", []):
             print(f"{name:<12} {value}")
+    for line in fault_lines(record):
+        print(line)
     return EXIT_OK
+
+
+def _say_waiting(reason: str) -> None:
+    print(f"\nfixq: {reason}; waiting for it (Ctrl-C stops waiting, not the job)", file=sys.stderr)
+
+
+def _print_answer(record: dict[str, Any]) -> None:
+    """A search's answer and a failed job's faults, under the outcome line of ``fixq submit --wait``."""
+    answer = search_answer(record.get("search"))
+    for line in ([f"fixq: search {answer}"] if answer else []) + fault_lines(record):
+        print(line, file=sys.stderr)
 
 
 def _recorded_or_latest(record: dict[str, Any], progress: dict[str, Any], key: str, progress_key: str) -> Any:

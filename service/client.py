@@ -27,18 +27,24 @@ TERMINAL_STATES = frozenset({"done", "failed", "canceled"})
 JSON_HEADERS = {"Content-Type": "application/json"}
 RECONNECT_S = 1.0
 """Seconds to wait before re-opening a progress stream that broke."""
+STREAM_SILENCE_S = 45.0
+"""Seconds a live log may send nothing before it counts as broken: three of the API's keepalive intervals (15 s),
+so a connection that died without closing (a dropped network, a suspended laptop) is re-opened, not waited on
+for ever."""
 
 
 class APIError(Exception):
     """Raised when the API answers with an error status.
 
     ``status`` is the HTTP status and ``problem`` the problem-details body
-    (``type``, ``title``, ``detail`` and, for invalid documents, ``errors``).
+    (``type``, ``title``, ``detail`` and, for invalid documents, ``errors``);
+    ``retry_after`` the seconds of a ``Retry-After`` header (429, 503), else None.
     """
 
-    def __init__(self, status: int, problem: dict[str, Any]) -> None:
+    def __init__(self, status: int, problem: dict[str, Any], retry_after: float | None = None) -> None:
         self.status = status
         self.problem = problem
+        self.retry_after = retry_after
         super().__init__(f"{status} {problem.get('title', 'error')}: {problem.get('detail', '')}".rstrip(": "))
 
     @property
@@ -141,12 +147,13 @@ class FixqClient:
     def stream_log(self, job_id: str, *, after: int | None = None) -> Iterator[tuple[str, dict[str, Any]]]:
         """Follow the live log (SSE): yields ``("entry", entry)`` then ``("end", {"state": ...})``.
 
-        ``after`` is the last iteration already seen (sent as ``Last-Event-ID``).
+        Raises ``httpx.ReadTimeout`` when the stream sends nothing, not even a keepalive, for
+        ``STREAM_SILENCE_S``. ``after`` is the last iteration already seen (sent as ``Last-Event-ID``).
         """
         headers = {"Accept": "text/event-stream"}
         if after is not None:
             headers["Last-Event-ID"] = str(after)
-        timeout = httpx.Timeout(self._http.timeout.connect, read=None)
+        timeout = httpx.Timeout(self._http.timeout.connect, read=STREAM_SILENCE_S)
         with self._http.stream("GET", f"/v1/jobs/{job_id}/log", headers=headers, timeout=timeout) as response:
             if response.status_code >= 400:
                 response.read()
@@ -168,16 +175,20 @@ class FixqClient:
         *,
         on_progress: Callable[[dict[str, Any]], None] | None = None,
         timeout_s: float | None = None,
+        on_outage: Callable[[str], None] | None = None,
     ) -> dict[str, Any]:
         """Block until the job is done, failed or canceled; returns its final record.
 
         ``on_progress(entry)`` is called with each convergence-log entry
         (``iteration``, ``distance``, ``error_bound``...) as it is made.  A
         broken stream (the API restarted, Redis answered 503 for a while) is
-        re-opened where it left off.
+        re-opened where it left off; ``on_outage(reason)`` is called once when
+        the job record cannot be read (so a caller can say why it is waiting),
+        and again only after it could be read in between.
         """
         deadline = None if timeout_s is None else time.monotonic() + timeout_s
         last_iteration: int | None = None
+        in_outage = False
         while True:
             ended = False
             try:
@@ -196,14 +207,18 @@ class FixqClient:
             except APIError as exc:
                 if exc.status != 503:
                     raise
+            outage = None
             try:
                 record = self.status(job_id)
-            except httpx.TransportError:
-                record = {"state": None}
+            except httpx.TransportError as exc:
+                record, outage = {"state": None}, f"cannot reach the API at {self.url} ({exc or type(exc).__name__})"
             except APIError as exc:
                 if exc.status != 503:
                     raise
-                record = {"state": None}
+                record, outage = {"state": None}, str(exc)
+            if outage is not None and not in_outage and on_outage is not None:
+                on_outage(outage)
+            in_outage = outage is not None
             if record.get("state") in TERMINAL_STATES:
                 if not ended and on_progress is not None:
                     # The stream broke and the job ended before it was re-opened: the log's tail is still to
@@ -251,4 +266,8 @@ def _api_error(response: httpx.Response) -> APIError:
         problem = {"title": response.reason_phrase, "detail": response.text[:200]}
     if not isinstance(problem, dict):
         problem = {"title": response.reason_phrase, "detail": str(problem)[:200]}
-    return APIError(response.status_code, problem)
+    try:
+        retry_after = float(response.headers["Retry-After"])
+    except (KeyError, ValueError):
+        retry_after = None
+    return APIError(response.status_code, problem, retry_after)

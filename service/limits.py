@@ -218,13 +218,17 @@ def _too_many(quota: Quota, limit: str, usage: int, count: int) -> Problem:
     remedy = "wait for some to finish or cancel some, then submit again"
     if limit == "max_active_high_jobs":
         remedy += ", or submit with priority normal"
+    never = count > cap  # a sweep larger than the cap: no wait makes it fit, so no Retry-After
+    if never:
+        remedy = (f"no wait makes {count} jobs at once fit a cap of {cap}: split the sweep, or chain it (\"chain\": "
+                  "its jobs are then made one after another as slots free)")
     return Problem(
         429,
         "too-many-jobs",
         f"key {quota.owner!r} has {usage} {what} queued or running, and {whose} is {cap}: {asked} more would "
         f"exceed it; {remedy}",
         title="too many active jobs",
-        headers={"Retry-After": str(RETRY_AFTER_S)},
+        headers=None if never else {"Retry-After": str(RETRY_AFTER_S)},
         limit=limit,
         limit_value=cap,
         usage=usage,

@@ -47,6 +47,7 @@ api.url = getenv('FIXQ_URL');
 if isempty(api.url), api.url = 'http://127.0.0.1:8000'; end
 api.key = getenv('FIXQ_KEY');
 api.octave = exist('OCTAVE_VERSION', 'builtin') ~= 0;
+api.patience_s = 120;   % how long a GET waits out an outage (see fixq_json)
 example = getenv('FIXQ_EXAMPLE');
 if isempty(example), example = 'household_saving'; end
 
@@ -71,7 +72,11 @@ while any(strcmp(job.state, {'queued', 'running'}))
         fprintf('  iteration %d, error bound %.3g\n', seen, job.progress.error_bound);
     end
 end
-if ~strcmp(job.state, 'done'), error('fixq:job', 'job %s ended %s', job.id, job.state); end
+if ~strcmp(job.state, 'done')
+    reason = '';
+    if isfield(job, 'error') && ischar(job.error), reason = [': ' job.error]; end
+    error('fixq:job', 'job %s ended %s%s', job.id, job.state, reason);
+end
 
 % 4. The result. Axes in array order: axis_order when the server states it,
 %    else the order of the fields of axes.
@@ -98,9 +103,7 @@ fprintf('policy %s at the last point of every axis: %s\n', choices{1}, shown(fir
 
 % 5. The same solution as one long table: a row per grid point, the last
 %    axis varying fastest; a column goes back into an array by one reshape.
-[status, text] = fixq_call(api, 'GET', ['/v1/jobs/' job.id '/result?format=csv']);
-if status ~= 200, error('fixq:csv', 'the CSV table answered %d', status); end
-table = csv_columns(text);
+table = csv_columns(fixq_text(api, 'GET', ['/v1/jobs/' job.id '/result?format=csv']));
 fromCsv = row_major(table.value, dims);
 fprintf('CSV and JSON values agree: largest difference %.3g\n', max(abs(fromCsv(:) - value(:))));
 if max(abs(fromCsv(:) - value(:))) > 1e-12 * max(1, max(abs(value(:))))
@@ -216,12 +219,39 @@ end
 
 
 function data = fixq_json(api, method, path, body)
-% Call fixq and decode its JSON answer; on 4xx/5xx, stop with fixq's own
-% explanation (RFC 9457 problem details: detail, then each fault's path).
+% Call fixq and decode its JSON answer (see fixq_text).
 if nargin < 4, body = ''; end
-[status, text] = fixq_call(api, method, path, body);
+data = jsondecode(fixq_text(api, method, path, body));
+end
+
+
+function text = fixq_text(api, method, path, body)
+% Call fixq and return its answer's text; on 4xx/5xx, stop with fixq's own
+% explanation (RFC 9457 problem details: detail, then each fault's path).
+% A GET rides out a short outage: while Redis restarts fixq answers 503, while
+% the API restarts the connection is refused or cut; those (and 502/504 from
+% a proxy) are tried again, a second apart, for up to api.patience_s seconds.
+if nargin < 4, body = ''; end
+started = tic;
+while true
+    try
+        [status, text] = fixq_call(api, method, path, body);
+        failure = '';
+    catch caught
+        if ~strcmp(method, 'GET'), rethrow(caught); end
+        status = 0;
+        failure = caught.message;
+    end
+    if ~strcmp(method, 'GET') || ~any(status == [0 502 503 504]) || toc(started) > api.patience_s
+        break
+    end
+    if status == 0, reason = failure; else, reason = sprintf('HTTP %d', status); end
+    fprintf('  fixq is unreachable for now (%s); trying again in 1 s\n', reason);
+    pause(1);
+end
+if status == 0, error('fixq:unreachable', '%s', failure); end
 if status >= 400
-    problem = jsondecode(text);
+    problem = problem_of(status, text);
     message = sprintf('fixq answered %d: %s', status, problem.detail);
     if isfield(problem, 'errors')
         faults = problem.errors;
@@ -232,7 +262,20 @@ if status >= 400
     end
     error('fixq:problem', '%s', message);
 end
-data = jsondecode(text);
+end
+
+
+function problem = problem_of(status, text)
+% The problem details of an error answer; a body that is not fixq's JSON (a
+% proxy's error page) becomes the detail as it is.
+try
+    problem = jsondecode(text);
+catch
+    problem = struct();
+end
+if ~isstruct(problem) || ~isfield(problem, 'detail')
+    problem = struct('detail', sprintf('HTTP %d: %s', status, text(1:min(200, end))));
+end
 end
 
 
@@ -282,7 +325,10 @@ function [status, text] = call_with_curl(api, method, path, body)
 % line, where other users of the machine could see it.
 answer = [tempname() '.out'];
 scratch = {answer};
-args = sprintf('-sS -X %s -o "%s" -w "%%{http_code}"', method, answer);
+% A connection that takes over 10 s to open, or an answer that stalls (under
+% 1 byte a second for 60 s), fails instead of hanging: fixq_json tries a GET again.
+args = sprintf('-sS --connect-timeout 10 --speed-limit 1 --speed-time 60 -X %s -o "%s" -w "%%{http_code}"', ...
+               method, answer);
 if ~isempty(api.key)
     scratch{end + 1} = [tempname() '.hdr'];
     write_text(scratch{end}, ['Authorization: Bearer ' api.key]);
@@ -301,6 +347,6 @@ if exist(answer, 'file'), text = fileread(answer); end
 for k = 1:numel(scratch)
     if exist(scratch{k}, 'file'), delete(scratch{k}); end
 end
-if failed, error('fixq:curl', 'curl failed: %s', code); end
+if failed, error('fixq:curl', 'curl could not reach %s (curl exit code %d)', api.url, failed); end
 status = str2double(code);
 end

@@ -39,6 +39,24 @@ def checked(response: httpx.Response) -> dict:
     sys.exit(1)
 
 
+def patient_get(client: httpx.Client, path: str, deadline: float) -> dict:
+    """GET ``path``, waiting out a short outage until ``deadline`` (time.monotonic()): while Redis restarts fixq
+    answers 503 (with Retry-After), while the API restarts the connection is refused or cut; a proxy may answer
+    502 or 504. Any other error stops at once (see ``checked``)."""
+    while True:
+        try:
+            response = client.get(path)
+            if response.status_code not in (502, 503, 504):
+                return checked(response)
+            reason, pause = f"HTTP {response.status_code}", float(response.headers.get("Retry-After", POLL_S))
+        except httpx.TransportError as exc:
+            reason, pause = str(exc) or type(exc).__name__, POLL_S
+        if time.monotonic() + pause > deadline:
+            sys.exit(f"fixq still unreachable ({reason}) after waiting {WAIT_LIMIT_S:.0f} s")
+        print(f"  fixq is unreachable for now ({reason}); trying again in {pause:g} s", file=sys.stderr)
+        time.sleep(pause)
+
+
 def main() -> None:
     headers = {"Authorization": f"Bearer {FIXQ_KEY}"} if FIXQ_KEY else {}
     with httpx.Client(base_url=FIXQ_URL, headers=headers, timeout=30.0) as client:
@@ -53,10 +71,12 @@ def main() -> None:
             if time.monotonic() > deadline:
                 sys.exit(f"job {job['id']} still {job['state']} after {WAIT_LIMIT_S:.0f} s")
             time.sleep(POLL_S)
-            job = checked(client.get(f"/v1/jobs/{job['id']}"))
+            job = patient_get(client, f"/v1/jobs/{job['id']}", deadline)
         if job["state"] != "done":
-            sys.exit(f"job {job['id']} ended {job['state']}: {job.get('error')}")
-        result = checked(client.get(f"/v1/jobs/{job['id']}/result"))
+            error = job.get("error")  # problem details: detail, and errors with each fault's path
+            reason = error.get("detail") if isinstance(error, dict) else error
+            sys.exit(f"job {job['id']} ended {job['state']}: {reason}")
+        result = patient_get(client, f"/v1/jobs/{job['id']}/result", deadline)
 
     # The arrays' axes in order: axis_order when the server states it, else the keys of axes
     # (state variables, then shocks). Nested lists are row-major, as numpy is: no reshape needed.

@@ -33,6 +33,16 @@
 library(httr2)
 library(jsonlite)
 
+# Under a locale that is not UTF-8 (LANG=C: cron, containers, ssh sessions)
+# R reads this file's text, and Sys.getenv() and readLines() theirs, as bytes
+# of no known encoding, which jsonlite sends as "Z<c3><bc>rich" for "Zürich"
+# (seen with R 4.2, jsonlite 1.8). So the session's character type is
+# switched to UTF-8 first (this file is UTF-8; so should your own be).
+if (!l10n_info()[["UTF-8"]]) {
+  for (utf8 in c("C.UTF-8", "en_US.UTF-8")) if (nzchar(suppressWarnings(Sys.setlocale("LC_CTYPE", utf8)))) break
+  if (!l10n_info()[["UTF-8"]]) warning("no UTF-8 locale: text outside ASCII will be sent mangled")
+}
+
 fixq_url <- Sys.getenv("FIXQ_URL", "http://127.0.0.1:8000")
 fixq_key <- Sys.getenv("FIXQ_KEY")
 example <- Sys.getenv("FIXQ_EXAMPLE", "household_saving")
@@ -46,15 +56,40 @@ fixq_base <- function(path) {
 
 fixq_request <- function(path) {
   req <- fixq_base(path)
-  # On 4xx/5xx, stop with fixq's own explanation (RFC 9457 problem details).
+  # On 4xx/5xx, stop with fixq's own explanation (RFC 9457 problem details);
+  # a body that is not JSON (a proxy's error page) is shown as it is.
   req_error(req, body = function(resp) {
-    problem <- resp_body_json(resp)
+    problem <- tryCatch(resp_body_json(resp), error = function(e) list(detail = substr(resp_body_string(resp), 1, 200)))
     c(problem$detail, vapply(problem$errors, function(e) paste0(e$path, ": ", e$message), ""))
   })
 }
 
 fixq_get <- function(path) {
   fixq_request(path) |> req_perform() |> resp_body_json(simplifyVector = FALSE)
+}
+
+# Waiting rides out a short outage. While Redis restarts, fixq answers 503
+# (with Retry-After); while the API restarts, the connection is refused or
+# cut. patiently() retries those (and 502/504 from a proxy) for up to
+# patience_s seconds, honouring Retry-After; any other error (401, 404, ...)
+# stops at once.
+patience_s <- 120
+transient <- function(e) {
+  inherits(e, c("httr2_failed", "fixq_connection", "httr2_http_502", "httr2_http_503", "httr2_http_504"))
+}
+patiently <- function(action) {
+  deadline <- Sys.time() + patience_s
+  repeat {
+    outcome <- tryCatch(list(value = action()), error = function(e) {
+      if (transient(e) && Sys.time() < deadline) e else stop(e)
+    })
+    if (!inherits(outcome, "error")) return(outcome$value)
+    after <- if (is.null(outcome$resp)) NULL else resp_header(outcome$resp, "Retry-After")
+    pause <- if (is.null(after)) 1 else as.numeric(after)
+    cat("  fixq is unreachable for now (", strsplit(conditionMessage(outcome), "\n")[[1]][1],
+        "); trying again in ", pause, " s\n", sep = "")
+    Sys.sleep(min(pause, 30))
+  }
 }
 
 # The result's nested lists are row-major (the last axis varies fastest); R
@@ -79,7 +114,7 @@ row_major_array <- function(flat, axes) {
 #    FALSE keeps the document's lists as lists, so it goes back as it came.
 document <- fixq_get(paste0("/v1/examples/", example))
 if (example == "household_saving") {
-  document$label <- "household saving at a 2% interest rate (invented scenario)"
+  document$label <- "household saving at a 2% interest rate, β = 0.96 (invented scenario)"
   document$model$params$r <- 0.02
 }
 
@@ -94,8 +129,13 @@ cat("submitted job", job$id, "\n")
 #    "entry" event per iteration, then "end" when the job has finished.
 #    (Polling GET /v1/jobs/{id}, whose progress holds the latest iteration,
 #    works too; matlab_octave.m does that.) httr2 1.0 renamed req_stream.
+#    A stream cut short (the API restarting, or "event: error" while Redis
+#    is away) is opened again with Last-Event-ID, the last iteration shown,
+#    so the log goes on where it stopped and no iteration is shown twice.
 stream <- if (exists("req_perform_stream", asNamespace("httr2"))) httr2::req_perform_stream else httr2::req_stream
 pending <- ""
+last_seen <- NA
+ended <- FALSE
 follow <- function(bytes) {
   pending <<- paste0(pending, rawToChar(bytes))
   events <- strsplit(pending, "\n\n")[[1]]
@@ -109,26 +149,43 @@ follow <- function(bytes) {
     if (length(data) == 0) next  # a comment line that keeps the connection open
     data <- fromJSON(data)
     if (identical(kind, "entry")) {
+      last_seen <<- data$iteration
       cat(sprintf("  iteration %d, error bound %.3g\n", data$iteration, data$error_bound))
     } else if (identical(kind, "end")) {
+      ended <<- TRUE
       return(FALSE)  # stop reading: the job has finished
     }
   }
   TRUE
 }
-invisible(fixq_request(paste0("/v1/jobs/", job$id, "/log")) |>
-  req_headers(Accept = "text/event-stream") |>
-  stream(follow))
-job <- fixq_get(paste0("/v1/jobs/", job$id))
-while (job$state %in% c("queued", "running")) {  # only if the stream was cut short
-  Sys.sleep(0.5)
-  job <- fixq_get(paste0("/v1/jobs/", job$id))
+open_log <- function() {
+  req <- fixq_request(paste0("/v1/jobs/", job$id, "/log")) |> req_headers(Accept = "text/event-stream")
+  if (!is.na(last_seen)) req <- req_headers(req, `Last-Event-ID` = last_seen)
+  pending <<- ""
+  # A connection that fails under the stream is a plain R error: mark it as
+  # one patiently() retries (an HTTP error status keeps its own class).
+  tryCatch(invisible(stream(req, follow)), error = function(e) {
+    if (inherits(e, "httr2_http")) stop(e)
+    stop(structure(class = c("fixq_connection", "error", "condition"),
+                   list(message = conditionMessage(e), call = NULL)))
+  })
 }
-if (job$state != "done") stop("job ", job$id, " ended ", job$state)
+finished <- FALSE
+repeat {
+  patiently(open_log)
+  if (ended || finished) break
+  # The stream ended without "end": open it again, and once more after the
+  # job has finished (a finished job's log is sent to its end).
+  job <- patiently(function() fixq_get(paste0("/v1/jobs/", job$id)))
+  finished <- !(job$state %in% c("queued", "running"))
+  if (!finished) Sys.sleep(0.5)
+}
+job <- patiently(function() fixq_get(paste0("/v1/jobs/", job$id)))
+if (job$state != "done") stop("job ", job$id, " ended ", job$state, if (!is.null(job$error)) paste(":", job$error))
 
 # 4. The result. Axes in array order: axis_order when the server states it,
 #    else the order of the keys of axes (jsonlite keeps key order).
-result <- fixq_get(paste0("/v1/jobs/", job$id, "/result"))
+result <- patiently(function() fixq_get(paste0("/v1/jobs/", job$id, "/result")))
 axis_names <- if (is.null(result$axis_order)) names(result$axes) else unlist(result$axis_order)
 axes <- lapply(result$axes[axis_names], unlist)
 value <- row_major_array(leaves(result$value), axes)
@@ -143,11 +200,10 @@ cat("policy", first, "at the last point of every axis:", policy[[first]][length(
 # 5. The same solution as one long table (a row per grid point, the last axis
 #    varying fastest: expand.grid with its arguments reversed). A column goes
 #    back into an array with the same reshape as the nested lists above.
-table <- fixq_request(paste0("/v1/jobs/", job$id, "/result")) |>
-  req_url_query(format = "csv") |>
-  req_perform() |>
-  resp_body_string() |>
-  (\(text) read.csv(text = text, check.names = FALSE))()
+csv <- patiently(function() {
+  fixq_request(paste0("/v1/jobs/", job$id, "/result")) |> req_url_query(format = "csv") |> req_perform()
+})
+table <- read.csv(text = resp_body_string(csv), check.names = FALSE)
 print(head(table))
 from_csv <- row_major_array(table$value, axes)
 cat(sprintf("CSV and JSON values agree: largest difference %.3g\n", max(abs(from_csv - value))))
