@@ -29,7 +29,7 @@ from service.problems import Problem
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
-from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, row_states, store_sweep
+from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, replayed_sweep, row_states, store_sweep
 from service.sweeps.request import VALUE_IN_LABEL_CHARS, SweepRequest, parse_request
 from service.sweeps.reuse import record_means, remember_row, reused_row
 from worker.errors import FixqError, InvalidDocument, TooLarge, join_path
@@ -132,9 +132,10 @@ def create_sweep(
     ``idempotency_ttl_s``, that earlier sweep is returned and nothing is created.
     """
     idem = None
+    body_hash = hashlib.sha256(orjson.dumps(body, option=orjson.OPT_SORT_KEYS)).hexdigest()
     if idempotency_key is not None:
         idem = store.key("sweepidem", caller.owner, hashlib.sha256(idempotency_key.encode()).hexdigest())
-        earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
+        earlier = replayed_sweep(store, idem, idempotency_key, body_hash)
         if earlier is not None:
             return earlier
     request = parse_request(body, settings)
@@ -158,8 +159,13 @@ def create_sweep(
             active.release(reservation)
         raise
     if idem is not None:
-        if not store.redis.set(idem, sweep_id, nx=True, ex=settings.idempotency_ttl_s):
-            earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
+        if not store.redis.set(idem, f"{sweep_id} {body_hash}", nx=True, ex=settings.idempotency_ttl_s):
+            try:
+                earlier = replayed_sweep(store, idem, idempotency_key or "", body_hash)
+            except Problem:
+                if reservation is not None:
+                    active.release(reservation)
+                raise
             if earlier is not None:
                 if reservation is not None:
                     active.release(reservation)
