@@ -31,7 +31,7 @@ from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
 from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, replayed_sweep, row_states, store_sweep
 from service.sweeps.request import VALUE_IN_LABEL_CHARS, SweepRequest, parse_request
-from service.sweeps.reuse import record_means, remember_row, reused_row
+from service.sweeps.reuse import record_means, remember_row, reserve_first_rows, reused_row
 from worker.errors import FixqError, InvalidDocument, TooLarge, join_path
 
 __all__ = ["cancel_sweep", "create_sweep", "ensure_job", "job_finished", "rescue_pending"]
@@ -151,7 +151,9 @@ def create_sweep(
     # Priority cannot vary, so the caps are known before any combination is validated.
     high = (request.priority or request.base.get("priority")) == "high"
     active = ActiveJobs(store.redis, settings.redis_prefix)
-    reservation = active.reserve(quota, high=high, count=len(first_jobs)) if quota is not None else None
+    reservation = None
+    if quota is not None:
+        reservation = reserve_first_rows(active, quota, high, request, sweep_id, store, first_jobs, fresh)
     try:
         prepared, stationary = _admit_combinations(request, sweep_id, faults, caller, store, settings, quota)
     except BaseException:
