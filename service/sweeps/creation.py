@@ -29,9 +29,9 @@ from service.problems import Problem
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
-from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, row_states, store_sweep
+from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, replayed_sweep, row_states, store_sweep
 from service.sweeps.request import VALUE_IN_LABEL_CHARS, SweepRequest, parse_request
-from service.sweeps.reuse import record_means, remember_row, reused_row
+from service.sweeps.reuse import record_means, remember_row, reserve_first_rows, reused_row
 from worker.errors import FixqError, InvalidDocument, TooLarge, join_path
 
 __all__ = ["cancel_sweep", "create_sweep", "ensure_job", "job_finished", "rescue_pending"]
@@ -132,9 +132,10 @@ def create_sweep(
     ``idempotency_ttl_s``, that earlier sweep is returned and nothing is created.
     """
     idem = None
+    body_hash = hashlib.sha256(orjson.dumps(body, option=orjson.OPT_SORT_KEYS)).hexdigest()
     if idempotency_key is not None:
         idem = store.key("sweepidem", caller.owner, hashlib.sha256(idempotency_key.encode()).hexdigest())
-        earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
+        earlier = replayed_sweep(store, idem, idempotency_key, body_hash)
         if earlier is not None:
             return earlier
     request = parse_request(body, settings)
@@ -150,7 +151,9 @@ def create_sweep(
     # Priority cannot vary, so the caps are known before any combination is validated.
     high = (request.priority or request.base.get("priority")) == "high"
     active = ActiveJobs(store.redis, settings.redis_prefix)
-    reservation = active.reserve(quota, high=high, count=len(first_jobs)) if quota is not None else None
+    reservation = None
+    if quota is not None:
+        reservation = reserve_first_rows(active, quota, high, request, sweep_id, store, first_jobs, fresh)
     try:
         prepared, stationary = _admit_combinations(request, sweep_id, faults, caller, store, settings, quota)
     except BaseException:
@@ -158,8 +161,13 @@ def create_sweep(
             active.release(reservation)
         raise
     if idem is not None:
-        if not store.redis.set(idem, sweep_id, nx=True, ex=settings.idempotency_ttl_s):
-            earlier = load_sweep(store, (store.redis.get(idem) or b"").decode())
+        if not store.redis.set(idem, f"{sweep_id} {body_hash}", nx=True, ex=settings.idempotency_ttl_s):
+            try:
+                earlier = replayed_sweep(store, idem, idempotency_key or "", body_hash)
+            except Problem:
+                if reservation is not None:
+                    active.release(reservation)
+                raise
             if earlier is not None:
                 if reservation is not None:
                     active.release(reservation)

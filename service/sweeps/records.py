@@ -11,11 +11,14 @@ from typing import Any
 import orjson
 
 from service._formats import decode_cursor, encode_cursor, iso_utc
+from service.problems import Problem
+from service.resubmission import HEADER_PATH
 from service.store import JobStore, is_job_id
 from service.sweeps.request import SweepRequest, sweep_tag
 from worker.errors import InvalidDocument
 
 __all__ = [
+    "replayed_sweep",
     "CLAIM_MS",
     "Sweep",
     "SweepKeys",
@@ -240,3 +243,16 @@ def forget_expired_sweeps(store: JobStore, now: float | None = None, *, scan_lim
             pipe.execute()
         forgotten.append(sweep_id)
     return forgotten
+
+
+def replayed_sweep(store: JobStore, idem: str, key: str, body_hash: str) -> Sweep | None:
+    """The sweep an ``Idempotency-Key`` already names when it was made from the same body (equal as JSON);
+    422 at the header when it was made from another body, as for a job (``service.resubmission``)."""
+    sweep_id, _, made_from = (store.redis.get(idem) or b"").decode().partition(" ")
+    earlier = load_sweep(store, sweep_id)
+    if earlier is not None and made_from and made_from != body_hash:
+        message = (f"Idempotency-Key {key!r} was used for sweep {sweep_id} with a different body; send that body "
+                   "again to get that sweep, or use a new key for a new sweep")  # fmt: skip
+        raise Problem(422, "idempotency-key-reused", message, title="idempotency key reused with another body",
+                      errors=[{"path": HEADER_PATH, "message": message}], sweep=sweep_id)  # fmt: skip
+    return earlier

@@ -4,15 +4,21 @@ stationary means a done row leaves in its sweep."""
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from typing import Any
 
 import orjson
 
+from service.limits import ActiveJobs, Quota, Reservation
+from service.problems import Problem
 from service.resubmission import SolvedJobs, start_free_hash
+from service.store import JobStore
 from service.sweeps.records import Sweep
-from worker.document import parse_document
+from service.sweeps.request import SweepRequest
+from worker.document import document_hash, parse_document
+from worker.errors import FixqError
 
-__all__ = ["record_means", "remember_row", "reused_row"]
+__all__ = ["record_means", "remember_row", "reserve_first_rows", "reused_row"]
 
 
 def reused_row(sweep: Sweep, raw: dict[str, Any], prepared: dict[str, Any]) -> tuple[dict[str, Any] | None, bool,
@@ -29,6 +35,37 @@ def reused_row(sweep: Sweep, raw: dict[str, Any], prepared: dict[str, Any]) -> t
         return None, False, start_free
     record, reused = solved.create_reused(raw, earlier, owner=sweep.owner, **prepared)
     return record, reused, start_free
+
+
+def reserve_first_rows(
+    active: ActiveJobs, quota: Quota, high: bool, request: SweepRequest, sweep_id: str, store: JobStore,
+    rows: Sequence[int], fresh: bool,
+) -> Reservation:  # fmt: skip
+    """Slots of the owner's active-job caps for the door's first ``rows``, or the 429.
+
+    When they do not all fit, the rows a solved twin of the owner answers (unless ``fresh``) are left out, as
+    a resubmitted job takes no slot when it is answered from its twin; the twins are looked up as
+    :func:`reused_row` finds them, without the door's admission, and the lookup stops once the rows that need a
+    slot are more than the caps allow (a row that does not parse needs one; admission refuses it later).
+    """
+    try:
+        return active.reserve(quota, high=high, count=len(rows))
+    except Problem:
+        if fresh:
+            raise
+        most = min(cap for cap in (quota.max_active_jobs, quota.max_active_high_jobs if high else 0) if cap > 0)
+        solved, needed = SolvedJobs(store), 0
+        for index in rows:
+            try:
+                document = parse_document(request.document(index, sweep_id=sweep_id))
+                twin = solved.find(quota.owner, document_hash(document)) or solved.find_start_free(
+                    quota.owner, start_free_hash(document))  # fmt: skip
+            except FixqError:
+                twin = None
+            needed += twin is None
+            if needed > most or needed == len(rows):
+                raise  # never fits, or no row is answered by a twin
+        return active.reserve(quota, high=high, count=needed)
 
 
 def remember_row(sweep: Sweep, prepared: dict[str, Any], start_free: str | None, job_id: str) -> None:

@@ -61,3 +61,30 @@ def test_a_chain_of_solved_rows_is_followed_to_its_end_at_once(client: httpx.Cli
     again = _sweep(client, body)
     assert [row["state"] for row in again["rows"]["data"]] == ["done", "done", "done"]
     assert again["state"] == "done" and store.queue_depths()["normal"] == 0
+
+
+def test_a_resent_sweep_of_solved_rows_needs_no_slot_of_the_full_cap(app_settings, redis_client) -> None:
+    # Before: the door asked for a slot for every first row before it looked for solved twins, so a nightly
+    # sweep sent again while the key's cap was full was refused 429, though it queues nothing (a single job
+    # sent again is answered 201 at the same cap).
+    from service.app import create_app
+    from tests.service._http import make_client
+
+    settings = app_settings.model_copy(update={"max_active_jobs": 3})
+    store = JobStore(redis_client, settings)
+    with make_client(create_app(settings)) as client:
+        body = {"base": machine_shop(), "vary": {"discount": [0.8, 0.85, 0.9]}}
+        for row in _sweep(client, body)["rows"]["data"]:
+            assert _run(store, row["job"]) == "done"
+        for discount in (0.5, 0.6):
+            assert client.post("/v1/jobs", json=machine_shop(discount=discount)).status_code == 202
+        again = _sweep(client, body)
+        assert [row["state"] for row in again["rows"]["data"]] == ["done"] * 3
+        # One new row among solved ones takes the one slot left; two new rows do not fit, and nothing is made.
+        one_new = _sweep(client, {**body, "vary": {"discount": [0.8, 0.85, 0.9, 0.95]}})
+        assert [row["state"] for row in one_new["rows"]["data"]] == ["done", "done", "done", "queued"]
+        refused = client.post("/v1/sweeps", json={**body, "vary": {"discount": [0.8, 0.96, 0.97]}})
+        assert refused.status_code == 429, refused.text
+        assert refused.json()["limit"] == "max_active_jobs"
+        assert client.post("/v1/sweeps", json=body, params={"fresh": "true"}).status_code == 429
+        assert len(client.get("/v1/sweeps").json()["data"]) == 3

@@ -367,6 +367,12 @@ def test_an_idempotency_key_returns_the_same_sweep(http: httpx.Client, store: Jo
     first = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
     second = http.post("/v1/sweeps", json=body, headers={"Idempotency-Key": "nightly-42"}).json()
     assert first["id"] == second["id"] and store.counts_by_state()["queued"] == 2
+    # The same key with another body is refused naming the header, as for a job (before: the earlier
+    # sweep was answered as if it were this one, and the new values were never solved).
+    other = {"base": machine_shop(), "vary": {"discount": [0.5, 0.6, 0.7]}}
+    problem = assert_problem(http.post("/v1/sweeps", json=other, headers={"Idempotency-Key": "nightly-42"}), 422)
+    assert problem["errors"][0]["path"] == "header.Idempotency-Key" and problem["sweep"] == first["id"]
+    assert store.counts_by_state()["queued"] == 2 and len(http.get("/v1/sweeps").json()["data"]) == 1
 
 
 def test_a_chain_starts_cold_when_the_predecessor_result_has_expired(
