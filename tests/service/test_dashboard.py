@@ -98,6 +98,8 @@ def test_a_job_is_followed_live_from_queued_to_solved(
 ) -> None:
     # No worker yet: the job waits in the queue while both pages are open.
     document = load_example("household_saving")
+    # Without its declared borrowing limit, so that the result warns and the page must show the warning.
+    del document["model"]["states"]["assets"]["real_ends"]
     job_id = submit(api, document)
 
     listing = new_tab()
