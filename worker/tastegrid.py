@@ -244,7 +244,7 @@ class TasteGridProblem(ReferenceProblem):
     def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
         """``P_π`` (n, n) CSR with each row's columns summed once: several pairs of a point may reach the same
         node (working or not, then the same assets), and a row with repeated columns misleads the
-        strongly-connected-class search of the stationary distribution (:func:`worker.shocks.stationary_distribution`)."""
+        strongly-connected-class search of :func:`worker.shocks.stationary_distribution`."""
         matrix = super().policy_matrix(policy)
         matrix.sum_duplicates()
         return matrix
