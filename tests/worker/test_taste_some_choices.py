@@ -200,7 +200,9 @@ def test_a_finite_horizon_matches_a_numpy_backward_induction():
     scale = 0.25
     model = household(scale, params={"profile": PROFILE},
                       horizon={"periods": len(PROFILE), "terminal_value": "0.5 * log(1 + assets)"})
-    result = solve(grid_document(model, discount=BETA))
+    document = grid_document(model, discount=BETA)
+    document["report"] = {"cohort": {"start": {"assets": 0.0, "wage": 0.5}}}
+    result = solve(document)
     terminal = np.broadcast_to(0.5 * np.log1p(ASSETS)[:, None], (ASSETS.size, WAGES.size))
     values, probabilities = numpy_backward(scale, terminal)
     np.testing.assert_allclose(np.asarray(result["value"]), values, rtol=0, atol=1e-10)
@@ -208,3 +210,12 @@ def test_a_finite_horizon_matches_a_numpy_backward_induction():
     assert p.shape == (len(PROFILE), 9, 2, 2, 9)
     np.testing.assert_allclose(p, probabilities, rtol=0, atol=1e-10)
     assert result["diagnostics"]["taste_shocks"]["shocked_choices"] == ["work"]
+    # The cohort moves by each period's probabilities (zeros included): its mass works with Σ μ_t·P_t(work = 1),
+    # and tomorrow's mass is the sum, over every (point, work, save) pair, of μ_t·P_t on (save, tomorrow's wage).
+    mu = np.zeros((ASSETS.size, WAGES.size))
+    mu[0, 0] = 1.0
+    for t in range(len(PROFILE)):
+        np.testing.assert_allclose(result["cohort"]["distribution"][t], mu, rtol=0, atol=1e-12)
+        expected = float((mu * p[t][:, :, 1, :].sum(axis=-1)).sum())
+        assert result["cohort"]["means"]["work"][t] == pytest.approx(expected, abs=1e-12)
+        mu = np.einsum("ij,ijwk->k", mu, p[t])[:, None] * WAGE_PROBS[None, :]
