@@ -444,7 +444,7 @@ def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> 
     scale = getattr(problem, "taste_scale", None)
     if scale is None:
         return {}, {}
-    from worker.taste import diagnostics
+    from worker.taste import diagnostics, shocked_choices
 
     _, policy = problem.bellman_step(np.asarray(outcome.value, dtype=np.float64))
     outcome.policy = np.asarray(policy, dtype=np.int64)
@@ -452,7 +452,7 @@ def _taste_shocks(doc: Any, problem: CompiledProblem, outcome: SolveOutcome) -> 
     probabilities = problem.choice_probabilities(outcome.policy)
     shape = (*problem.shape, *(len(values) for values in axes.values()))
     notes = {
-        **diagnostics(scale, float(doc.discount)),
+        **diagnostics(scale, float(doc.discount), shocked_choices(problem)),
         "choices": _plain(axes),
         "probabilities_at": "the choice-specific values at the returned value",
     }

@@ -43,6 +43,24 @@ and ``Tv = max_π (r_π + β P_π v)`` (the Gibbs variational principle), so
 ``T`` is the upper envelope of the affine operators of the probabilities,
 each maximised by the logit of its own ``Q``: the convergence arguments of
 Howard's method and policy iteration go through unchanged.
+
+Shocks on some of the choices (``model.taste_shocks.choices``)
+--------------------------------------------------------------
+With the shocks on the listed choices only, ``d`` runs over the combinations
+of the listed choices and ``a`` over those of the others, maximised exactly
+once ``d`` (and its shock) is known:
+
+    (Tv)(x) = s · log Σ_d exp(max_a Q(x, d, a) / s)
+
+(:func:`partial_smoothed_max`).  The choice rule is: for each ``d`` its best
+``a`` (ties: lowest index), and ``d`` with the logit probabilities of those
+maxima.  Written over every ``(d, a)`` pair, a pair that is not the best
+``a`` of its ``d`` has probability 0, so the evaluation above is unchanged:
+its entropy term skips pairs of probability 0, so it is ``−s·log π(d|x)`` of
+the chosen ``d`` only.  Monotonicity and the constant shift still hold (a
+maximum has both), and ``T`` is the upper envelope of the affine operators of
+the rules (a probability over ``d``, an ``a`` for each ``d``), so the bound
+and the three methods carry over.
 """
 
 from __future__ import annotations
@@ -55,8 +73,8 @@ import numpy as np
 from worker.drawnames import draw_table_bytes
 
 __all__ = [
-    "EULER_GAMMA", "SMOOTHED_PAIR_NS", "check_scale", "diagnostics", "entropy_reward", "smoothed_max",
-    "taste_storage_words", "taste_table_bytes",
+    "EULER_GAMMA", "SMOOTHED_PAIR_NS", "check_scale", "diagnostics", "entropy_reward", "partial_smoothed_max",
+    "shocked_choices", "smoothed_max", "taste_storage_words", "taste_table_bytes",
 ]
 
 EULER_GAMMA = 0.5772156649015329
@@ -98,6 +116,51 @@ def smoothed_max(q: np.ndarray, scale: float) -> tuple[np.ndarray, np.ndarray, n
     return value, weights, most_probable.astype(np.int64, copy=False)
 
 
+def partial_smoothed_max(
+    q: np.ndarray, scale: float, sizes: tuple[int, ...], shocked: tuple[bool, ...]
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """The smoothed maximum over the shocked choices of the exact maximum over the others, for each row of ``q``.
+
+    Parameters
+    ----------
+    q : (n, C) float64
+        Choice-specific values over the flat C-order product of the choices (sizes ``sizes``); ``-inf``
+        marks a pair that is not allowed (every row has at least one finite entry).
+    scale : float
+        ``s > 0``.
+    sizes : the number of values of each choice, in the order of the flat index
+    shocked : per choice, whether it carries the taste shocks (at least one does)
+
+    Returns
+    -------
+    value : (n,) float64
+        ``s·log Σ_d exp(max_a q(d, a)/s)``, ``d`` the combinations of the shocked choices, ``a`` of the others.
+    probabilities : (n, C) float64
+        The logit probability of ``d`` at the pair ``(d, best a of d)``; 0 at every other pair.
+    most_probable : (n,) int64
+        The flat index of the most probable ``d`` with its best ``a`` (ties: lowest index).
+
+    With every choice shocked this is :func:`smoothed_max`, to the bit.
+    """
+    if all(shocked):
+        return smoothed_max(q, scale)
+    n, n_pairs = q.shape
+    d_axes = [j for j, on in enumerate(shocked) if on]
+    a_axes = [j for j, on in enumerate(shocked) if not on]
+    n_d = math.prod(sizes[j] for j in d_axes)
+    order = d_axes + a_axes
+    grouped = q.reshape(n, *sizes).transpose(0, *(1 + j for j in order)).reshape(n, n_d, -1)
+    best = grouped.argmax(axis=2)
+    top = np.take_along_axis(grouped, best[:, :, None], axis=2)[:, :, 0]
+    value, by_d, likeliest = smoothed_max(top, scale)
+    flat = np.arange(n_pairs).reshape(sizes).transpose(order).reshape(n_d, -1)
+    chosen = flat[np.arange(n_d)[None, :], best]
+    probabilities = np.zeros_like(q)
+    np.put_along_axis(probabilities, chosen, by_d, axis=1)
+    most_probable = np.take_along_axis(chosen, likeliest[:, None], axis=1)[:, 0]
+    return value, probabilities, most_probable.astype(np.int64, copy=False)
+
+
 def entropy_reward(reward: np.ndarray, probabilities: np.ndarray, scale: float) -> np.ndarray:
     """``r_π(x) = Σ_a π(a|x)·(r(x, a) − s·log π(a|x))``, choices of probability zero left out.
 
@@ -119,10 +182,17 @@ def entropy_reward(reward: np.ndarray, probabilities: np.ndarray, scale: float) 
     return terms.sum(axis=1)
 
 
-def diagnostics(scale: float, discount: float) -> dict[str, Any]:
-    """``diagnostics.taste_shocks`` of a result: the scale and what the value includes."""
+def shocked_choices(problem: Any) -> list[str]:
+    """The names of the choices that carry the taste shocks: ``problem.taste_choices`` or every choice."""
+    named = getattr(problem, "taste_choices", None)
+    return list(named) if named is not None else list(problem.choice_axes())
+
+
+def diagnostics(scale: float, discount: float, shocked: list[str]) -> dict[str, Any]:
+    """``diagnostics.taste_shocks`` of a result: the scale, the choices that carry it and what the value includes."""
     return {
         "scale": float(scale),
+        "shocked_choices": list(shocked),
         "distribution": "extreme value type I (Gumbel), centred, independent across choices and periods",
         "euler_constant_included": False,
         "location_zero_offset": float(scale) * EULER_GAMMA / (1.0 - float(discount)),

@@ -25,7 +25,7 @@ import numpy as np
 
 from worker.report import _draw_from, _start_state, _summarise
 from worker.solvers.backward import HorizonOutcome, PeriodPlan
-from worker.taste import EULER_GAMMA, diagnostics
+from worker.taste import EULER_GAMMA, diagnostics, shocked_choices
 
 __all__ = ["probabilities_by_period", "taste_horizon_simulation", "with_probabilities"]
 
@@ -71,7 +71,7 @@ def probabilities_by_period(problem: Any, plan: PeriodPlan, outcome: HorizonOutc
         following = scale * EULER_GAMMA + (plan.discounts[t] * following if t < periods - 1 else 0.0)
         offsets[t] = following
     notes = {
-        **diagnostics(scale, 0.0),
+        **diagnostics(scale, 0.0, shocked_choices(problem)),
         "location_zero_offset": offsets[first:].tolist(),
         "note": (
             "the value is the expected discounted reward with centred taste shocks; with location-zero shocks "

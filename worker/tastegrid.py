@@ -3,7 +3,12 @@
 Every combination of the choices carries its own extreme-value shock (see
 :mod:`worker.taste`), so every allowed choice has a probability and enters the
 value: no hinted search, no block search that skips choices, and no static
-choice maximised out within the period applies.  Every step therefore scans
+choice maximised out within the period applies.  With
+``model.taste_shocks.choices`` the shocks are on the combinations ``d`` of the
+listed choices only, and the other choices ``a`` are maximised exactly given
+``d`` (:func:`worker.taste.partial_smoothed_max`): a pair that is not the best
+``a`` of its ``d`` has probability 0, so everything below reads the
+probabilities as before.  Every step therefore scans
 the tables of every (point, choice) pair (:func:`worker.gridtables.precompute_tables`,
 the same tables the ``tables`` reward storage and the numpy reference use) with
 numpy: the choice-specific values ``Q = R + β·EV`` and their log-sum-exp.
@@ -41,7 +46,7 @@ from worker.feasibility import infeasible, model_data
 from worker.gridproblem import GridProblem
 from worker.gridtables import precompute_tables
 from worker.reference import CHUNK_PAIRS, ReferenceProblem, _corner, _interpolated_expected
-from worker.taste import check_scale, entropy_reward, smoothed_max
+from worker.taste import check_scale, entropy_reward, partial_smoothed_max
 from worker.tastecheck import check_taste_tables
 
 __all__ = ["TasteGridProblem", "compile_taste_grid"]
@@ -69,8 +74,10 @@ def compile_taste_grid(doc: Any, *, limits: dict[str, Any] | None = None) -> Tas
     draws = data.draws.size if data.draws is not None else 0
     layout = _codegen.layout_for(data.setter, len(data.shocks), len(data.choices), "table", False, draws=draws)
     ctx = _codegen.context(data.param_values, data.state_grids, data.shock_table, data.choice_grids, tables)
+    shocks = doc.model.taste_shocks
     problem = TasteGridProblem(
-        doc, data, plan, layout, None, ctx, "tables", counts, full=data, taste_scale=doc.model.taste_shocks.scale
+        doc, data, plan, layout, None, ctx, "tables", counts, full=data, taste_scale=shocks.scale,
+        taste_choices=None if shocks.choices is None else [name for name in data.choices if name in shocks.choices],
     )
     prepared = time.perf_counter()
     problem._warm_up()
@@ -84,12 +91,18 @@ class TasteGridProblem(ReferenceProblem):
     Policies are the most probable choice (flat C-order index over the
     choices); ``choice_probabilities(policy)`` gives the (n, C) logit
     probabilities of the last Bellman step, which ``policy_matrix``,
-    ``policy_reward`` and ``choice_values`` use.
+    ``policy_reward`` and ``choice_values`` use.  ``taste_choices`` names the
+    choices that carry the shocks (in the model's order), or is None: every
+    choice, the smoothed maximum over all pairs.
     """
 
-    def __init__(self, *args: Any, taste_scale: float, **kwargs: Any) -> None:
+    def __init__(self, *args: Any, taste_scale: float, taste_choices: list[str] | None = None,
+                 **kwargs: Any) -> None:
         super().__init__(*args, **kwargs)
         self.taste_scale = check_scale(taste_scale)
+        shocked = tuple(taste_choices is None or name in taste_choices for name in self._data.choices)
+        self.taste_choices = None if all(shocked) else list(taste_choices or ())
+        self._shocked = shocked
         self._probabilities: np.ndarray | None = None
         self._most_probable: np.ndarray | None = None
         self._pair_nodes: tuple[np.ndarray, np.ndarray] | None = None
@@ -143,10 +156,13 @@ class TasteGridProblem(ReferenceProblem):
 
         Returns
         -------
-        Tv : (n,) float64, ``s·log Σ_c exp(Q(x, c)/s)``
+        Tv : (n,) float64, ``s·log Σ_c exp(Q(x, c)/s)`` (shocks on some choices: ``s·log Σ_d exp(max_a Q/s)``)
         policy : (n,) int64, the most probable choice
         """
-        value, self._probabilities, policy = smoothed_max(self.choice_specific_values(v), self.taste_scale)
+        sizes = tuple(int(size) for size in self._data.choice_sizes)
+        value, self._probabilities, policy = partial_smoothed_max(
+            self.choice_specific_values(v), self.taste_scale, sizes, self._shocked
+        )
         self._most_probable = policy
         self._mixed = None
         return value, policy
@@ -224,6 +240,14 @@ class TasteGridProblem(ReferenceProblem):
         return sp.csr_matrix((data, indices, indptr), shape=(n * n_choices, self.n))
 
     _evaluated = _mixture
+
+    def policy_matrix(self, policy: np.ndarray) -> sp.csr_matrix:
+        """``P_π`` (n, n) CSR with each row's columns summed once: several pairs of a point may reach the same
+        node (working or not, then the same assets), and a row with repeated columns misleads the
+        strongly-connected-class search of :func:`worker.shocks.stationary_distribution`."""
+        matrix = super().policy_matrix(policy)
+        matrix.sum_duplicates()
+        return matrix
 
     def policy_steps(  # type: ignore[override]
         self, v: np.ndarray, policy: np.ndarray, steps: int, span_stop: float = -np.inf

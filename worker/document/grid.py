@@ -34,7 +34,7 @@ from worker.document.grid_ranges import range_faults
 from worker.document.horizon import PERIOD_NAME, GridHorizon, ParamValue, grid_horizon_faults
 from worker.document.limits import CONTINUOUS_SCAN_POINTS, DEFAULT_EXPONENT, MAX_AXES, MAX_ENTRIES, MAX_POINTS
 from worker.document.shock_specs import ShockSpec
-from worker.document.taste_shocks import TasteShocks
+from worker.document.taste_shocks import TasteShocks, taste_choice_faults
 from worker.errors import InvalidDocument, join_path
 
 RANGE_KEYS = ("min", "max", "points", "spacing", "exponent")
@@ -315,7 +315,8 @@ class GridModel(Part):
     taste_shocks: TasteShocks | None = Field(
         default=None,
         description=(
-            "Optional taste shocks on every combination of the choices (grid-restricted choices only): the "
+            "Optional taste shocks on every combination of the choices, or of those listed in its `choices` "
+            "(grid-restricted choices only): the "
             "result then carries choice_probabilities, shape the value's axes then the choices."
         ),
     )
@@ -353,6 +354,7 @@ def grid_model_faults(model: Any) -> list[Fault]:
     return (
         _name_faults(model) + _motion_faults(model) + _expressions_faults(model) + continuous_model_faults(model)
         + draw_faults(model) + grid_horizon_faults(model) + axis_order_faults(model)
+        + taste_choice_faults(model.taste_shocks, list(model.choices))
     )
 
 

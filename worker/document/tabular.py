@@ -18,7 +18,7 @@ from worker.document._faults import Fault, capped, fault, number, raise_faults
 from worker.document._fields import Cube, LabelsOrCount, NullableMatrix, Part, Rows4
 from worker.document.horizon import TabularHorizon, tabular_horizon_faults
 from worker.document.limits import ROW_SUM_TOLERANCE
-from worker.document.taste_shocks import TasteShocks
+from worker.document.taste_shocks import TasteShocks, taste_choice_faults
 from worker.errors import join_path
 
 
@@ -119,7 +119,8 @@ class TabularModel(Part):
 
     @model_validator(mode="after")
     def _check_model(self) -> TabularModel:
-        raise_faults(tabular_faults(self) + tabular_horizon_faults(self))
+        raise_faults(tabular_faults(self) + tabular_horizon_faults(self)
+                     + taste_choice_faults(self.taste_shocks, ["action"]))
         return self
 
 

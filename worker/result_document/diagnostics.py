@@ -246,6 +246,11 @@ class TasteShockInfo(Reported):
     """model.taste_shocks: what the value includes and the choices choice_probabilities covers."""
 
     scale: float = Field(description="The taste shocks' scale σ.")
+    shocked_choices: list[str] = Field(
+        description="The choices that carry the shocks (model.taste_shocks.choices; default every choice; tabular: "
+        '["action"]). The others are maximised exactly given them: choice_probabilities is 0 wherever they are '
+        "not the best for the shocked choices' values."
+    )
     distribution: str = Field(description="The taste shocks' distribution, in words.")
     euler_constant_included: bool = Field(
         description="False: the shocks are centred, so the value does not include σ × Euler's constant per period."
