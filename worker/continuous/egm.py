@@ -65,7 +65,11 @@ is the endogenous grid method's, and
 ``diagnostics.continuous_choice.endogenous_grid.greedy_gap`` is the largest
 distance between it and the fitted problem's own policy.  Euler errors are
 measured with the method's own rule between grid points (linear along the
-endogenous grid).
+endogenous grid).  A problem that is not concave (a reward convex in the
+define, endogenous states not rising, an expected marginal value rising with
+the choice), or a policy ending more than ``FAR_STEPS`` grid steps from the
+fitted maximiser, gets the search's policy instead, with a warning
+(:mod:`worker.continuous.egm_checks`).
 """
 
 from __future__ import annotations
@@ -76,7 +80,8 @@ from typing import Any, Callable
 import numpy as np
 
 from worker import _slopes
-from worker.continuous.egm_rounds import bends, read_moved, union_sorted
+from worker.continuous import egm_checks as checks
+from worker.continuous.egm_rounds import bends, first_disorder, read_moved, union_sorted
 from worker.continuous.egm_source import egm_kernel, power_law
 from worker.continuous.interp_kernels import read_pairs
 from worker.defaults import DEFAULT_MAX_ITERATIONS, DEFAULT_TOLERANCE
@@ -189,8 +194,9 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
     previous: tuple[np.ndarray, np.ndarray] | None = None
     leaps = _Leaps()
     limit = min(max_iterations, MAX_ROUNDS)
+    disorder = checks.reward_disorder(data, found, grid)
     with np.errstate(all="ignore"):
-        while rounds < limit and change > POLICY_TOLERANCE * width:
+        while disorder is None and rounds < limit and change > POLICY_TOLERANCE * width:
             if c_star is None:
                 c_star = np.full((points.size, n_z), np.nan)
             elif c_star.shape != (points.size, n_z):
@@ -212,7 +218,10 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 points, rows = union_sorted(grid, kinks[0]) if kinks[0].size else (grid, np.arange(n_k))
             tomorrow = np.empty((points.size, n_z))
             change = read_moved(k_today, pairs[1], low, float(grid[-1]), points, rows, policy, tomorrow, moved)
-            if change < 0.0:  # an endogenous grid not increasing: read it in numpy
+            if change < 0.0:  # an endogenous grid not increasing: the problem is not concave there
+                disorder = first_disorder(k_today)
+                if disorder is not None:
+                    break
                 tomorrow = _rule_at(grid, pairs, points, ordered=True)
                 moved = np.ascontiguousarray(tomorrow[rows])
                 change = float(np.abs(moved - policy).max())
@@ -223,7 +232,15 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
                 tomorrow = _leap(grid, previous, points, tomorrow, rate)
                 policy = np.ascontiguousarray(tomorrow[rows])
                 moved = np.empty_like(policy)
+    if disorder is None and rounds:
+        disorder = checks.marginal_disorder(data, found, points, tomorrow)
     egm_seconds = time.perf_counter() - started
+    report = {"rounds": rounds, "leaps": leaps.count, "last_change": change if change >= 0.0 else 0.0,
+              "seconds": egm_seconds}
+    if disorder is not None:
+        warning = checks.disorder_warning(data, disorder, rounds)
+        return checks.searched(problem, solve_from, report, warning, tolerance=tolerance,
+                               max_iterations=max_iterations, **options)
     flat = np.ascontiguousarray(policy.reshape(-1))
     try:
         value = _policy_value(problem, flat, tolerance, _envelope_value(problem, found, grid, policy))
@@ -231,9 +248,12 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
         raise InvalidDocument.at("solver.method", f"the endogenous grid method's policy is not allowed by the "
                                  f"model ({error}); use howard") from error
     outcome = solve_from(problem, value, tolerance=tolerance, max_iterations=max_iterations, **options)
-    greedy = np.asarray(outcome.policy, dtype=np.float64)
-    problem.egm_report = {"rounds": rounds, "leaps": leaps.count, "last_change": change, "seconds": egm_seconds,
-                          "greedy_gap": float(np.abs(greedy - flat).max())}
+    gap, step = float(np.abs(np.asarray(outcome.policy, dtype=np.float64) - flat).max()), float(np.diff(grid).max())
+    if not gap <= checks.FAR_STEPS * step:  # the method's policy far from the best choice: the search's returned
+        outcome.warnings.append(checks.far_warning(gap, step))
+        problem.egm_report, problem.egm_rule = {**report, "greedy_gap": 0.0}, None
+        return outcome
+    problem.egm_report = {**report, "greedy_gap": gap}
     outcome.policy = flat
     problem.egm_rule = lambda k: _rule_at(grid, pairs, np.asarray(k, dtype=np.float64).reshape(-1))
     return outcome
