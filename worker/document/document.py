@@ -54,6 +54,7 @@ from worker.document.options import InitialValues, NotifySpec, ReportSpec, Solve
 from worker.document.params import resolve_params
 from worker.document.search import SearchSpec, search_faults
 from worker.document.tabular import TabularModel
+from worker.document.unknown_keys import hidden_faults
 from worker.errors import InvalidDocument, join_path
 
 PRIORITIES = ("high", "normal", "low")
@@ -285,12 +286,18 @@ def parse_document(raw: Any) -> ProblemDocument:
         raise InvalidDocument([hostile])
     raw = resolve_params(raw)
     try:
-        return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
+        return _validate(raw)
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
     # Only the listed errors are translated: a document with a million unknown keys costs no more.
     faults = translate(errors[:MAX_REPORTED], ProblemDocument)
+    if len(errors) < MAX_REPORTED:  # what the unknown keys kept from being checked, listed with them
+        faults += hidden_faults(raw, errors, ProblemDocument, _validate, MAX_REPORTED)
     raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
+
+
+def _validate(raw: Any) -> ProblemDocument:
+    return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
 
 
 def _has_horizon(raw: Any) -> bool:
