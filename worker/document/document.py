@@ -54,6 +54,7 @@ from worker.document.options import InitialValues, NotifySpec, ReportSpec, Solve
 from worker.document.params import resolve_params
 from worker.document.search import SearchSpec, search_faults
 from worker.document.tabular import TabularModel
+from worker.document.tags import TAG_RULE, TagText
 from worker.document.unknown_keys import hidden_faults
 from worker.errors import InvalidDocument, join_path
 
@@ -71,16 +72,6 @@ SUBMISSION_KEYS = ("label", "tags", "priority", "notify")
 def _or(words: tuple[str, ...]) -> str:
     quoted = [f'"{word}"' for word in words]
     return ", ".join(quoted[:-1]) + " or " + quoted[-1]
-
-
-TagText = Annotated[
-    str,
-    check(
-        lambda t: 1 <= len(t) <= 64 and t.isascii() and all(c.isalnum() or c in "_.:-" for c in t),
-        "a tag must be 1 to 64 characters of letters, digits and _ . : -, got {value}",
-    ),
-    SchemaExtra(pattern="^[A-Za-z0-9_.:-]{1,64}$"),
-]
 
 
 _DISCOUNT_POSITIVE = (
@@ -133,8 +124,7 @@ class ProblemDocument(Part):
     ] = Field(
         default_factory=list,
         description=(
-            f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters "
-            "of letters, digits and _ . : -; one tag may be given as a string."
+            f"Up to {MAX_TAGS} tags for finding jobs later, each {TAG_RULE}; one tag may be given as a string."
         ),
     )
     discount: Annotated[
