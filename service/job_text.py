@@ -10,7 +10,7 @@ from __future__ import annotations
 
 from typing import Any
 
-__all__ = ["fault_lines", "outcome", "search_answer"]
+__all__ = ["fault_lines", "outcome", "search_answer", "trial_line"]
 
 
 def outcome(record: dict[str, Any]) -> str:
@@ -54,6 +54,18 @@ def search_answer(search: dict[str, Any] | None) -> str | None:
     if search.get("trials") is not None:
         text += f" after {search['trials']} trials"
     return text
+
+
+def trial_line(number: Any, trial: dict[str, Any]) -> str:
+    """A search trial's progress line: ``trial      3  r = 0.0329368  residuals 1.02e-07  (certifying)``.
+
+    ``trial`` is the row a search's log entry carries under ``search_trial``; it has no distance (each trial is
+    a whole solve), so its residuals (the conditions' values, zero at the point sought) say how near it came.
+    """
+    unknowns = ", ".join(f"{name} = {_number(value, '.6g')}" for name, value in (trial.get("unknowns") or {}).items())
+    residuals = ", ".join(_number(value, ".3g") for value in trial.get("residuals") or []) or "none"
+    kind = "certifying" if trial.get("certified") else "guiding"
+    return f"trial {number:>6}  {unknowns}  residuals {residuals}  ({kind})"
 
 
 def _number(value: Any, spec: str) -> str:

@@ -1,11 +1,13 @@
 """The terminal progress line of ``fixq submit --wait``: iteration, distance, error bound and a bar
-(a finite horizon: the period and how many periods are done)."""
+(a finite horizon: the period and how many periods are done; a search: each trial's unknowns and residuals)."""
 
 from __future__ import annotations
 
 import math
 import time
 from typing import Any, TextIO
+
+from service.job_text import trial_line
 
 __all__ = ["PROGRESS_EVERY_S", "ProgressBar"]
 
@@ -48,7 +50,11 @@ class ProgressBar:
         elif self.first_bound is None and bound > 0:
             self.first_bound = bound
         periods = entry.get("periods")
-        if isinstance(periods, int) and periods > 0:
+        trial = entry.get("search_trial")
+        if isinstance(trial, dict):
+            # A search's trial: a whole solve with no distance; its residuals say how near it came.
+            line = trial_line(entry.get("iteration", "?"), trial)
+        elif isinstance(periods, int) and periods > 0:
             # A finite horizon: the bar fills by periods done, from the last period back to period 0.
             done = int(entry.get("iteration", 0))
             filled = round(min(1.0, done / periods) * self.WIDTH)

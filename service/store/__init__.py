@@ -29,7 +29,7 @@ without touching Redis.
   bounded log no longer holds; see ``worker.convergence_log``).
 * ``list_jobs(*, owner=None, state=None, tag=None, label=None, cursor=None,
   limit=50) -> (records, next_cursor)``: newest first.  ``owner=None`` lists
-  every owner's jobs; ``state`` is one state or a list of them; ``tag`` must
+  every owner's jobs; ``state`` is one state or a list of them; ``tag`` (composed, NFC) must
   be among the job's tags; ``label`` must equal the job's label.  ``cursor``
   is the opaque ``next_cursor`` of the previous page (``ValueError`` if
   malformed); ``next_cursor`` is ``None`` after the last page.  A page may hold

@@ -10,6 +10,7 @@ from __future__ import annotations
 import math
 import secrets
 import time
+import unicodedata
 from collections.abc import Iterable, Iterator
 from typing import Any
 
@@ -246,6 +247,7 @@ class JobStore(ExecutionWrites):
         if states is not None and not states <= set(JOB_STATES):
             raise ValueError(f"unknown state {sorted(states - set(JOB_STATES))}; expected one of {JOB_STATES}")
         limit = max(1, min(int(limit), 1000))
+        tag = tag and unicodedata.normalize("NFC", tag)  # tags are stored composed (worker/document/tags.py)
         index = self.keys.owner_jobs(owner) if owner is not None else self.keys.jobs
         expired: list[bytes] = []
         try:

@@ -18,10 +18,11 @@ from collections.abc import Callable, Sequence
 from typing import Annotated, Any, Literal
 
 import orjson
-from pydantic import BaseModel, ConfigDict, Field, StrictBool, StrictStr, StringConstraints, ValidationError
+from pydantic import AfterValidator, BaseModel, ConfigDict, Field, StrictBool, StrictStr, ValidationError
 
 from service.settings import Settings
 from worker.document import DEFAULT_PRIORITY, MAX_LABEL_CHARS, MAX_TAGS, PRIORITIES, SUBMISSION_KEYS
+from worker.document.tags import tag_problem
 from worker.errors import InvalidDocument, TooLarge, join_path
 
 __all__ = [
@@ -38,13 +39,21 @@ MODES = ("product", "zip")
 """How the varied lists combine: every combination, or the i-th value of each."""
 VALUE_IN_LABEL_CHARS = 40
 """Longest rendering of one value in a job's label (characters)."""
-TAG_PATTERN = r"^[A-Za-z0-9_.:-]{1,64}$"
-"""What a sweep's tag may hold: 1 to 64 letters, digits and ``_ . : -``."""
 
 _SEGMENT = re.compile(r"([^.\[\]]+)|\[(\d+)\]")
 
 Segments = tuple[str | int, ...]
-Tag = Annotated[StrictStr, StringConstraints(pattern=TAG_PATTERN)]
+
+
+def _tag(value: str) -> str:
+    """A sweep's tag, checked by the documents' one rule (worker/document/tags.py)."""
+    problem = tag_problem(value)
+    if problem is not None:
+        raise ValueError(problem)
+    return value
+
+
+Tag = Annotated[StrictStr, AfterValidator(_tag)]
 ValueList = Annotated[list[Any], Field(min_length=1)]
 
 
@@ -276,8 +285,7 @@ def _field_fault(error: Any) -> dict[str, str]:
     if field == "vary" and len(loc) > 1:
         return {"path": f"vary.{loc[1]}", "message": "must be a non-empty list of values"}
     if field == "tags" and len(loc) > 1:
-        message = f"a tag must be 1 to 64 characters of letters, digits and _ . : -, got {value!r}"
-        return {"path": f"tags[{loc[1]}]", "message": message}
+        return {"path": f"tags[{loc[1]}]", "message": f"{tag_problem(value) or error['msg']}, got {value!r}"}
     message = _FIELD_MESSAGES.get(field)
     return {"path": field, "message": message(value) if message else error["msg"]}
 

@@ -433,7 +433,7 @@ SOLVER_AND_REPORT = [
     ("solver.checkpoint_s", -5, "solver.checkpoint_s", "greater than 0"),
     ("solver.initial", "ones", "solver.initial", 'must be "zeros"'),
     ("solver.initial", {"values": [1.0], "job": "a"}, "solver.initial", '{"values": ARRAY} or an object {"job": JOB_ID}'),  # noqa: E501
-    ("solver.initial", {"job": "no spaces"}, "solver.initial.job", "a job id is 1 to 128 letters"),
+    ("solver.initial", {"job": "no spaces"}, "solver.initial.job", "a job id is 1 to 128 ASCII letters"),
     ("solver.initial", {"values": [[1.0, 2.0]]}, "solver.initial.values", "the value array has shape [60, 5]"),
     ("solver.initial", {"values": [1.0, float("nan")]}, "solver.initial.values[1]", "NaN is not allowed"),
     ("report.stationary", "yes", "report.stationary", "expected true or false"),

@@ -114,7 +114,7 @@ def test_constant_parts_are_folded_in_float64() -> None:
         ("max(*k)", "`*` unpacking is not allowed"),
         ("lambda: 1", "lambda functions are not allowed"),
         ("[1, 2]", "lists are not allowed"),
-        ("(1, 2)", "tuples are not allowed"),
+        ("(1, 2)", "a comma outside a function call's parentheses"),
         ("{1}", "sets are not allowed"),
         ("{1: 2}", "dictionaries are not allowed"),
         ("[k for k in z]", "comprehensions are not allowed"),
@@ -150,7 +150,7 @@ def test_refusals_name_what_was_found(text: str, fragment: str) -> None:
 def test_refusals_say_where() -> None:
     assert refuse("k + z.real").endswith("(at column 5)")
     assert "syntax error at column 4" in refuse("k +* 2")
-    assert "syntax error at column 5: '(' was never closed" in refuse("k + (1")
+    assert "syntax error at column 5: `(` was never closed" in refuse("k + (1")
     assert "(at line 2, column 2)" in refuse("(k +\n k.x)")
 
 

@@ -139,8 +139,8 @@ def check_name(name: str) -> str:
     if not (name.isascii() and name.isidentifier()) or len(name) > MAX_NAME_CHARS:
         raise PydanticCustomError(
             "fixq_name",
-            "`{name}` is not a valid name: use letters, digits and underscores, starting with a letter "
-            "or underscore, at most {limit} characters",
+            "`{name}` is not a valid name: use ASCII letters (A-Z, a-z), digits and underscores, starting with a "
+            "letter or underscore, at most {limit} characters",
             {"name": name[:80], "limit": MAX_NAME_CHARS},
         )
     if keyword.iskeyword(name) or keyword.issoftkeyword(name):

@@ -54,6 +54,8 @@ from worker.document.options import InitialValues, NotifySpec, ReportSpec, Solve
 from worker.document.params import resolve_params
 from worker.document.search import SearchSpec, search_faults
 from worker.document.tabular import TabularModel
+from worker.document.tags import TAG_RULE, TagText
+from worker.document.unknown_keys import hidden_faults
 from worker.errors import InvalidDocument, join_path
 
 PRIORITIES = ("high", "normal", "low")
@@ -70,16 +72,6 @@ SUBMISSION_KEYS = ("label", "tags", "priority", "notify")
 def _or(words: tuple[str, ...]) -> str:
     quoted = [f'"{word}"' for word in words]
     return ", ".join(quoted[:-1]) + " or " + quoted[-1]
-
-
-TagText = Annotated[
-    str,
-    check(
-        lambda t: 1 <= len(t) <= 64 and t.isascii() and all(c.isalnum() or c in "_.:-" for c in t),
-        "a tag must be 1 to 64 characters of letters, digits and _ . : -, got {value}",
-    ),
-    SchemaExtra(pattern="^[A-Za-z0-9_.:-]{1,64}$"),
-]
 
 
 _DISCOUNT_POSITIVE = (
@@ -132,8 +124,7 @@ class ProblemDocument(Part):
     ] = Field(
         default_factory=list,
         description=(
-            f"Up to {MAX_TAGS} tags for finding jobs later, each 1 to 64 characters "
-            "of letters, digits and _ . : -; one tag may be given as a string."
+            f"Up to {MAX_TAGS} tags for finding jobs later, each {TAG_RULE}; one tag may be given as a string."
         ),
     )
     discount: Annotated[
@@ -285,12 +276,18 @@ def parse_document(raw: Any) -> ProblemDocument:
         raise InvalidDocument([hostile])
     raw = resolve_params(raw)
     try:
-        return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
+        return _validate(raw)
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
     # Only the listed errors are translated: a document with a million unknown keys costs no more.
     faults = translate(errors[:MAX_REPORTED], ProblemDocument)
+    if len(errors) < MAX_REPORTED:  # what the unknown keys kept from being checked, listed with them
+        faults += hidden_faults(raw, errors, ProblemDocument, _validate, MAX_REPORTED)
     raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
+
+
+def _validate(raw: Any) -> ProblemDocument:
+    return ProblemDocument.model_validate(raw, context={HORIZON_CONTEXT: _has_horizon(raw)})
 
 
 def _has_horizon(raw: Any) -> bool:

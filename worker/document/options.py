@@ -77,7 +77,7 @@ class InitialJob(Part):
         str,
         check(
             lambda j: 1 <= len(j) <= 128 and j.isascii() and all(c.isalnum() or c in "_-" for c in j),
-            "a job id is 1 to 128 letters, digits, _ or -, got {value}",
+            "a job id is 1 to 128 ASCII letters (A-Z, a-z), digits, _ or -, got {value}",
         ),
         SchemaExtra(pattern="^[A-Za-z0-9_-]{1,128}$"),
     ] = Field(

@@ -10,7 +10,7 @@ Nothing outside this list is accepted:
 * comparisons ``< <= > >= == !=``, chained as in ``0 < k <= 1``
   (``0 < k and k <= 1``, with ``k`` evaluated once);
 * ``and``, ``or``, ``not``; parentheses;
-* calls to ``log exp sqrt abs`` (one argument), ``min max`` (two or more),
+* calls to ``log exp sqrt abs`` (one argument), ``min max`` (two or more, no comma before ``)``),
   ``where(condition, if_true, if_false)`` and ``clip(x, lo, hi)``.
 
 The text goes through ``ast.parse(text, mode="eval")`` and then a whitelist
@@ -50,6 +50,7 @@ from worker.expressions.nodes import (
     children,
 )
 from worker.expressions.scalar import scalar_source, source_nesting
+from worker.expressions.slips import comma_before_close, diagnose, function_hint, operator_index
 
 __all__ = ["DEPTH_CEILING", "MAX_DEPTH", "MAX_LENGTH", "MAX_NODES", "check_names", "parse"]
 
@@ -175,8 +176,12 @@ def _parse(text: str, path: str, max_length: int, max_depth: int, max_nodes: int
     try:
         body = ast.parse(source, mode="eval").body
     except SyntaxError as exc:
-        where = positions.of_line_column(exc.lineno or 1, (exc.offset or 1) - 1)
-        message = exc.msg
+        slip = diagnose(source)
+        if slip is not None:  # Python points a trailing `+` at column 1 and says only "invalid syntax"
+            where, message = positions.of_index(slip[0]), slip[1]
+        else:
+            where = positions.of_line_column(exc.lineno or 1, (exc.offset or 1) - 1)
+            message = exc.msg
         if "integer string conversion" in message:
             message = "a number has too many digits"
         raise InvalidDocument.at(path, f"syntax error at {where}: {message}") from None
@@ -184,6 +189,8 @@ def _parse(text: str, path: str, max_length: int, max_depth: int, max_nodes: int
         raise InvalidDocument.at(path, "the expression is nested too deeply to read") from None
     except ValueError as exc:
         raise InvalidDocument.at(path, f"the expression cannot be read: {exc}") from None
+    if (slip := comma_before_close(source)) is not None:  # max(a, b,): an argument left out
+        raise InvalidDocument.at(path, f"syntax error at {positions.of_index(slip[0])}: {slip[1]}")
     builder = _Builder(source, positions, path, max_depth, max_nodes)
     try:
         tree = builder.build(body, 1)
@@ -222,10 +229,14 @@ class _Positions:
         return self.of_index(before + max(column, 0))
 
     def of_node(self, node: ast.AST) -> str:
-        lineno = getattr(node, "lineno", 1)
-        line = self.source_lines[min(lineno, len(self.source_lines)) - 1]
-        column = len(line.encode("utf-8")[: getattr(node, "col_offset", 0)].decode("utf-8", "replace"))
-        return self.of_line_column(lineno, column)
+        return self.of_index(self.index_of(getattr(node, "lineno", 1), getattr(node, "col_offset", 0)))
+
+    def index_of(self, lineno: int, byte_offset: int) -> int:
+        """Index in the source of ``ast``'s (line, UTF-8 byte offset)."""
+        lineno = min(max(lineno, 1), len(self.source_lines))
+        line = self.source_lines[lineno - 1]
+        column = len(line.encode("utf-8")[:byte_offset].decode("utf-8", "replace"))
+        return sum(len(text) + 1 for text in self.source_lines[: lineno - 1]) + column
 
 
 def _precheck(source: str, positions: _Positions, path: str, max_depth: int) -> None:
@@ -274,6 +285,12 @@ class _Builder:
     def fail(self, node: ast.AST, message: str) -> InvalidDocument:
         return InvalidDocument.at(self.path, f"{message} (at {self.positions.of_node(node)})")
 
+    def fail_after(self, operand: ast.AST, message: str) -> InvalidDocument:
+        """A refusal of the operator that follows ``operand`` (``k ^ 2``), pointing at the operator."""
+        end = self.positions.index_of(getattr(operand, "end_lineno", 1), getattr(operand, "end_col_offset", 0))
+        where = self.positions.of_index(operator_index(self.source, end))
+        return InvalidDocument.at(self.path, f"{message} (at {where})")
+
     def code(self, node: ast.AST, limit: int = 40) -> str:
         segment = ast.get_source_segment(self.source, node) or type(node).__name__
         segment = " ".join(segment.split())
@@ -305,6 +322,8 @@ class _Builder:
             return _fold(Logic("and" if isinstance(node.op, ast.And) else "or", operands))
         if isinstance(node, ast.Call):
             return self.call(node, depth)
+        if isinstance(node, ast.Tuple) and (slip := diagnose(self.source)) is not None:  # `1,5`, a stray comma
+            raise InvalidDocument.at(self.path, f"syntax error at {self.positions.of_index(slip[0])}: {slip[1]}")
         message = _REFUSED_NODES.get(type(node), "`{code}` is not allowed in an expression")
         raise self.fail(node, message.format(code=self.code(node)))
 
@@ -373,15 +392,15 @@ class _Builder:
     def arith_symbol(self, node: ast.BinOp) -> str:
         symbol = _ARITH_SYMBOLS.get(type(node.op))
         if symbol is None:
-            raise self.fail(node, _REFUSED_OPERATORS.get(type(node.op), "this operator is not allowed"))
+            raise self.fail_after(node.left, _REFUSED_OPERATORS.get(type(node.op), "this operator is not allowed"))
         return symbol
 
     def compare(self, node: ast.Compare, depth: int) -> Node:
         ops = []
-        for op in node.ops:
+        for op, left in zip(node.ops, [node.left, *node.comparators]):
             symbol = _COMPARE_SYMBOLS.get(type(op))
             if symbol is None:
-                raise self.fail(node, _REFUSED_OPERATORS.get(type(op), "this comparison is not allowed"))
+                raise self.fail_after(left, _REFUSED_OPERATORS.get(type(op), "this comparison is not allowed"))
             ops.append(symbol)
         operands = tuple(self.build(item, depth + 1) for item in [node.left, *node.comparators])
         return _fold(Compare(operands, tuple(ops)))
@@ -389,8 +408,9 @@ class _Builder:
     def call(self, node: ast.Call, depth: int) -> Node:
         function = node.func.id if isinstance(node.func, ast.Name) else None
         if function not in FUNCTIONS:
+            hint = function_hint(function, FUNCTIONS) if function else ""
             raise self.fail(
-                node, f"calls are limited to {_FUNCTION_LIST}; `{self.code(node.func)}` is not one of them"
+                node, f"calls are limited to {_FUNCTION_LIST}; `{self.code(node.func)}` is not one of them{hint}"
             )
         if node.keywords:
             keyword = node.keywords[0].arg
