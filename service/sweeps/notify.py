@@ -57,7 +57,7 @@ __all__ = [
 EVENT = "sweep.finished"
 """The ``event`` (and ``Fixq-Event``) of a sweep's notification."""
 ROWS_LISTED = 500
-"""Most rows a ``sweep.finished`` body lists (count); about 0.3 kB each, so a body stays under about 150 kB."""
+"""Most rows a ``sweep.finished`` body lists (count); about 0.2 kB each (more with means or an error)."""
 
 logger = logging.getLogger("fixq.webhooks")
 
