@@ -1,4 +1,5 @@
-"""What happens once a job has finished: its webhook is queued, its sweep moves on, waiting workers look again.
+"""What happens once a job has finished: its webhook is queued, its sweep moves on (and is notified once
+every row ended), waiting workers look again.
 
 :func:`job_finished` is called where a job reaches a terminal state (done,
 failed, canceled): by ``service.task.run_job`` after an execution, and by the
@@ -32,7 +33,8 @@ def job_finished(store: JobStore, job_id: str, outcome: str) -> None:
     if outcome not in TERMINAL_STATES:
         return
     dispatch.wake(store)
-    for step in (webhooks.schedule, sweeps.job_finished):
+    # The sweep's own notification last: its check sees the chain's successors created (or refused).
+    for step in (webhooks.schedule, sweeps.job_finished, sweeps.member_finished):
         try:
             step(store, job_id)
         except Exception:

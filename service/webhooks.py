@@ -54,6 +54,8 @@ with ``hmac.compare_digest``, and refuse timestamps far from your clock (five
 minutes is common practice) so that a captured request cannot be replayed
 later.  :func:`verify` does that.  Delivery is at least once: a receiver
 that answers slowly or crashes may see the same ``Fixq-Delivery`` again.
+A sweep's ``sweep.finished`` (``service.sweeps.notify``) is sent the same
+way, with ``Fixq-Delivery: sweep:{id}`` and ``"sweep"`` in place of ``"job"``.
 
 Delivery
 --------
@@ -112,6 +114,7 @@ __all__ = [
     "deliver",
     "deliver_due",
     "delivery_status",
+    "queue_delivery",
     "resolve_host",
     "schedule",
     "sign",
@@ -120,7 +123,7 @@ __all__ = [
 ]
 
 EVENT = "job.finished"
-"""The ``event`` of every notification fixq sends."""
+"""The ``event`` of a job's notification (a sweep's: ``service.sweeps.notify``)."""
 USER_AGENT = "fixq-webhooks/1"
 """The ``User-Agent`` of every delivery."""
 SIGNATURE_TOLERANCE_S = 300
@@ -349,20 +352,19 @@ def schedule(store: JobStore, job_id: str) -> bool:
     if not isinstance(notify, dict) or not isinstance(notify.get("url"), str):
         return False
     record = store.get_job(job_id)
-    if record is None:
-        return False
-    fields = {
-        "url": notify["url"],
-        "secret": notify.get("secret") or "",
-        "job": orjson.dumps(record).decode(),
-        "state": "pending",
-        "attempts": "0",
-        "scheduled_at": iso_utc(),
-    }
+    return record is not None and queue_delivery(store, job_id, notify, EVENT, "job", record)
+
+
+def queue_delivery(store: JobStore, delivery: str, notify: dict[str, Any], event: str, subject: str,
+                   payload: dict[str, Any]) -> bool:
+    """Queue the delivery ``delivery`` (its ``Fixq-Delivery``) of ``{"event": event, subject: payload}`` to
+    ``notify`` (``url``, ``secret``), due now; True if queued, False if it exists already (one Lua script)."""
+    fields = {"url": notify["url"], "secret": notify.get("secret") or "", "event": event, "subject": subject,
+              subject: orjson.dumps(payload).decode(), "state": "pending", "attempts": "0", "scheduled_at": iso_utc()}
     script = store.redis.register_script(_SCHEDULE)
     queued = script(
-        keys=[_key(store, job_id), _due_key(store)],
-        args=[job_id, int(time.time() * 1000), store.settings.result_ttl_s,
+        keys=[_key(store, delivery), _due_key(store)],
+        args=[delivery, int(time.time() * 1000), store.settings.result_ttl_s,
               *(item for pair in fields.items() for item in pair)],
     )  # fmt: skip
     return bool(queued)
@@ -440,11 +442,12 @@ def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.tim
         return "missing"
     attempt = int(fields.get("attempts") or 0) + 1
     timestamp = int(now())
-    body = orjson.dumps({"event": EVENT, "job": orjson.loads(fields["job"]), "timestamp": timestamp})
+    event, subject = fields.get("event") or EVENT, fields.get("subject") or "job"
+    body = orjson.dumps({"event": event, subject: orjson.loads(fields[subject]), "timestamp": timestamp})
     headers = {
         "Content-Type": "application/json",
         "User-Agent": USER_AGENT,
-        "Fixq-Event": EVENT,
+        "Fixq-Event": event,
         "Fixq-Delivery": job_id,
         "Fixq-Attempt": str(attempt),
         "Fixq-Timestamp": str(timestamp),
@@ -454,7 +457,7 @@ def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.tim
     try:
         target = check_target(fields["url"], settings)
     except InvalidDocument as exc:
-        logger.warning("webhook of job %s refused at delivery: %s", job_id, exc.detail)
+        logger.warning("webhook %s refused at delivery: %s", job_id, exc.detail)
         _record(store, job_id, {"state": "refused", "attempts": attempt, "last_error": exc.errors[0]["message"]})
         return "refused"
     status, error = post(target.url, target.host, target.port, target.addresses, body, headers,
@@ -466,7 +469,7 @@ def deliver(store: JobStore, job_id: str, *, now: Callable[[], float] = time.tim
     update: dict[str, Any] = {"attempts": attempt, "last_status": status if status is not None else "",
                               "last_error": error or f"the receiver answered {status}"}  # fmt: skip
     if attempt >= settings.notify_max_attempts:
-        logger.warning("webhook of job %s given up after %d attempts: %s", job_id, attempt, update["last_error"])
+        logger.warning("webhook %s given up after %d attempts: %s", job_id, attempt, update["last_error"])
         _record(store, job_id, {**update, "state": "failed"})
         return "failed"
     delays = settings.notify_retry_delays_s

@@ -72,9 +72,13 @@ The sweep's own ``state`` is ``active`` while a row is waiting, queued or
 running, ``done`` once every row is done, failed or canceled, and
 ``canceled`` after ``DELETE``.
 
+With ``base.notify``, each job sends its ``job.finished`` and the sweep one
+``sweep.finished`` once every row ended (``notify``).
+
 Modules: ``request`` (the pydantic request and its combinations),
 ``records`` (stored sweeps and their listing), ``creation`` (the only place
-jobs are created) and ``view`` (what a read shows).  This package is the
+jobs are created), ``view`` (what a read shows) and ``notify`` (the
+``sweep.finished`` webhook).  This package is the
 public entry: import from ``service.sweeps``.
 
 Keys (prefix ``fixq``)
@@ -82,17 +86,19 @@ Keys (prefix ``fixq``)
 ================================  ======  ===========================================
 ``fixq:sweep:{id}``               hash    ``record`` (JSON), ``owner``, ``stationary``
                                           ("1" when some combination reports it),
-                                          ``canceled_at``
+                                          ``canceled_at``, ``notified_at``
 ``fixq:sweep:{id}:base``          string  the base document, zlib-compressed JSON
 ``fixq:sweep:{id}:jobs``          hash    combination index → job id
 ``fixq:sweep:{id}:means``         hash    combination index → stationary means (JSON)
 ``fixq:sweep:{id}:errors``        hash    combination index → why its job was not created
 ``fixq:sweep:{id}:claim:{i}``     string  the claim on creating row ``i``'s job, held until it is recorded
 ``fixq:sweep:{id}:door``          string  present while ``POST`` is still creating the first jobs
+``fixq:sweep:{id}:ended``         set     indices of the rows whose job ended (``notify``)
 ``fixq:sweepjob:{job id}``        string  ``{sweep id}:{index}`` of a sweep's job
 ``fixq:sweeps``                   zset    sweep ids by submission time (ms)
 ``fixq:sweeps:owner:{owner}``     zset    the same per owner
 ``fixq:sweeps:pending``           set     sweeps the reaper checks for rows nobody created
+``fixq:sweeps:notify``            set     sweeps with a ``notify`` whose ``sweep.finished`` is not queued
 ``fixq:sweepidem:{owner}:{h}``    string  sweep id of an Idempotency-Key
 ================================  ======  ===========================================
 
@@ -103,6 +109,7 @@ listing entries.
 """
 
 from service.sweeps.creation import cancel_sweep, create_sweep, ensure_job, job_finished, rescue_pending
+from service.sweeps.notify import member_finished
 from service.sweeps.records import CLAIM_MS, Sweep, forget_expired_sweeps, list_sweeps, load_sweep
 from service.sweeps.request import MODES, SweepRequest, parse_path, parse_request, sweep_tag
 from service.sweeps.view import ROW_STATES, SWEEP_STATES, sweep_view
@@ -121,6 +128,7 @@ __all__ = [
     "job_finished",
     "list_sweeps",
     "load_sweep",
+    "member_finished",
     "parse_path",
     "parse_request",
     "rescue_pending",

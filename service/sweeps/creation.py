@@ -29,6 +29,7 @@ from service.problems import Problem
 from service.settings import Settings
 from service.store import TERMINAL_STATES, JobStore
 from service.submission import Submitter, admit_submission, admitted_summary, create_submitted_job
+from service.sweeps.notify import notify_quietly, rescue_notifications, twin_answered
 from service.sweeps.records import CLAIM_MS, Sweep, load_sweep, pending_key, replayed_sweep, row_states, store_sweep
 from service.sweeps.request import VALUE_IN_LABEL_CHARS, SweepRequest, parse_request
 from service.sweeps.reuse import record_means, remember_row, reserve_first_rows, reused_row
@@ -116,13 +117,11 @@ def create_sweep(
 ) -> Sweep:
     """Check and admit every combination, store the sweep, and create its first jobs.
 
-    With a ``quota`` (the caller's per-key caps), the jobs created now take
-    slots of its active-job caps (429) before any combination is validated,
-    and every combination must fit the key's memory cap (413), exactly as
-    single submissions do.  Jobs a chain creates later, when their
-    predecessor finishes, take their slots then (:func:`ensure_job`).
-    Each combination is validated like the first one admitted, reusing the
-    parts it shares with it (``service.submission.admit_submission``).
+    With a ``quota`` (the caller's per-key caps), the jobs created now take slots of its active-job caps
+    (429) before any combination is validated, and every combination must fit the key's memory cap (413),
+    exactly as single submissions do.  Jobs a chain creates later, when their predecessor finishes, take
+    their slots then (:func:`ensure_job`).  Each combination is validated like the first one admitted,
+    reusing the parts it shares with it (``service.submission.admit_submission``).
 
     A row whose document its owner solved already is answered from that job, as a submission is
     (``service.resubmission``), unless ``fresh``.
@@ -184,6 +183,7 @@ def create_sweep(
         store.redis.delete(sweep.keys.door)
         if reservation is not None:
             active.bind(reservation, created)
+        notify_quietly(sweep)  # every first row may have been answered from a solved twin
     except redis.RedisError:
         # Nothing half-done: what was created is canceled, then the 503 is answered.
         try:
@@ -235,7 +235,8 @@ def ensure_job(
     due = [index] if reused else []
     while due:
         done = due.pop()
-        record_means(sweep, sweep.store.redis.hget(sweep.keys.jobs, done).decode(), done)
+        record_means(sweep, done_job := sweep.store.redis.hget(sweep.keys.jobs, done).decode(), done)
+        twin_answered(sweep, done, done_job)
         if not sweep.plan.chain or sweep.canceled_at is not None:
             continue
         for successor in sweep.plan.successors(done):
@@ -432,7 +433,8 @@ def rescue_pending(store: JobStore) -> list[str]:
     A row is due when it has no job and no error and, in a chain, its
     predecessor has finished; a sweep whose door marker lives is left to its
     door.  A sweep leaves the pending set once every row has a job or an
-    error, or it was canceled.  Returns the ids of the jobs created.
+    error, or it was canceled.  Then due ``sweep.finished`` are queued
+    (``notify.rescue_notifications``).  Returns the ids of the jobs created.
     """
     created: list[str] = []
     key = pending_key(store)
@@ -447,6 +449,7 @@ def rescue_pending(store: JobStore) -> list[str]:
             created += _create_due_rows(sweep)
         except AtCap:
             continue
+    rescue_notifications(store)
     return created
 
 
@@ -492,4 +495,5 @@ def cancel_sweep(sweep: Sweep) -> dict[str, int]:
         outcome = _cancel_job(store, job_id)
         if outcome in outcomes:
             outcomes[outcome] += 1
+    notify_quietly(sweep)
     return outcomes

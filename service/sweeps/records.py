@@ -25,6 +25,7 @@ __all__ = [
     "forget_expired_sweeps",
     "list_sweeps",
     "load_sweep",
+    "notify_key",
     "row_states",
     "store_sweep",
 ]
@@ -46,6 +47,7 @@ class SweepKeys:
         self.means = f"{self.sweep}:means"
         self.errors = f"{self.sweep}:errors"
         self.door = f"{self.sweep}:door"
+        self.ended = f"{self.sweep}:ended"
         self._store = store
 
     def claim(self, index: int) -> str:
@@ -58,6 +60,11 @@ class SweepKeys:
 def index_key(store: JobStore, owner: str | None) -> str:
     """The zset of every sweep (``owner=None``) or of one owner's, scored by submission time (ms)."""
     return store.key("sweeps", "owner", owner) if owner is not None else store.key("sweeps")
+
+
+def notify_key(store: JobStore) -> str:
+    """The set of sweeps with a ``notify`` target whose ``sweep.finished`` is not queued yet."""
+    return store.key("sweeps", "notify")
 
 
 def pending_key(store: JobStore) -> str:
@@ -154,6 +161,8 @@ def store_sweep(store: JobStore, sweep_id: str, owner: str, request: SweepReques
         pipe.zadd(index_key(store, None), {sweep_id: now_ms})
         pipe.zadd(index_key(store, owner), {sweep_id: now_ms})
         pipe.sadd(pending_key(store), sweep_id)
+        if isinstance(request.base.get("notify"), dict):
+            pipe.sadd(notify_key(store), sweep_id)
         pipe.execute()
     return Sweep(store, record, stationary, None, request)
 
@@ -234,7 +243,8 @@ def forget_expired_sweeps(store: JobStore, now: float | None = None, *, scan_lim
         if any(alive):
             continue
         with redis.pipeline(transaction=True) as pipe:
-            pipe.delete(keys.sweep, keys.base, keys.jobs, keys.means, keys.errors, keys.door)
+            pipe.delete(keys.sweep, keys.base, keys.jobs, keys.means, keys.errors, keys.door, keys.ended)
+            pipe.srem(notify_key(store), sweep_id)
             for job_id in job_ids:
                 pipe.delete(keys.job_link(job_id))
             pipe.zrem(index_key(store, None), sweep_id)

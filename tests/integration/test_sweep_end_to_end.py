@@ -124,7 +124,7 @@ def test_a_chained_sweep_runs_on_real_workers_and_notifies_every_job(
                 break
             time.sleep(0.1)
         assert view["state"] == "done", worker_logs(logs)
-        requests = receiver.wait_for(6, 20)
+        requests = receiver.wait_for(7, 20)  # six job.finished and the sweep's sweep.finished
     rows = view["rows"]["data"]
     assert view["counts"]["done"] == 6 and all(row["status"] == "converged" for row in rows)
     jobs = [row["job"] for row in rows]
@@ -155,6 +155,9 @@ def test_a_chained_sweep_runs_on_real_workers_and_notifies_every_job(
     assert table[0][:3] == ["index", "discount", "model.reward[0][0]"] and "mean.state_label" in table[0]
     assert [line[table[0].index("job")] for line in table[1:]] == jobs
 
+    ended = [r for r in requests if r["headers"]["Fixq-Event"] == "sweep.finished"]
+    assert [r["headers"]["Fixq-Delivery"] for r in ended] == [f"sweep:{sweep['id']}"]
+    requests = [r for r in requests if r not in ended]
     assert sorted(r["headers"]["Fixq-Delivery"] for r in requests) == sorted(jobs)
     for request in requests:
         headers, body = request["headers"], request["body"]
