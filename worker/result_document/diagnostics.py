@@ -178,7 +178,8 @@ class EndogenousGrid(Reported):
     seconds: float = Field(description="Time (s) spent in the rounds.")
     greedy_gap: float = Field(
         description="The largest distance between the method's policy (the one reported) and the fitted problem's "
-        "own maximising policy at the returned value."
+        "own maximising policy at the returned value; 0 when the problem was found not concave and Howard's "
+        "method's policy was returned instead (a warning says so)."
     )
 
 
