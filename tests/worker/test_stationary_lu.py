@@ -233,8 +233,9 @@ def test_above_the_direct_cap_no_lu_of_unbounded_fill_is_made(monkeypatch: pytes
 def test_the_estimate_sizes_the_stationary_lu_a_grid_chain_makes(monkeypatch: pytest.MonkeyPatch) -> None:
     # worker.costs.stationary_lu_entries against the LU SuperLU makes (its factors' entries, which tracing of
     # Python's memory does not see) of a growth chain above the direct cap: never below it.  A share of n² leans
-    # high for a policy that moves a few grid points a period, as here (measured 4.2 times the LU made), and
-    # 1.05-1.8 times it on the savings chains of bench/bench_aiyagari.py (3,500-28,000 states).
+    # high for a policy that moves a few grid points a period, as here (7.4 times the LU made since the share
+    # became 0.035, the largest measured on one-state chains: growth_3000x3 7.46 in bench/RESULTS.md's
+    # bench_lu_fill --stationary table), and 1.4-2.9 times it on the savings chains there.
 
     from tests._documents import GROWTH, grid_document
     from worker import costs
@@ -250,5 +251,5 @@ def test_the_estimate_sizes_the_stationary_lu_a_grid_chain_makes(monkeypatch: py
     made = [entries for _, entries in lus]
     n = 1_000 * 3
     sized = costs.stationary_lu_entries(n, n * 3)  # a grid-restricted choice: one node for each of 3 shocks
-    assert made[0] <= sized <= 5 * made[0], (made[0], sized)
+    assert made[0] <= sized <= 8 * made[0], (made[0], sized)
     assert estimate(parse_document(raw))["bytes"] >= sized * costs.LU_ENTRY_BYTES
