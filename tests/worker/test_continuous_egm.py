@@ -68,6 +68,8 @@ def test_the_value_agrees_with_howards_method_within_both_bounds() -> None:
     assert report["greedy_gap"] == pytest.approx(
         np.abs(np.array(egm["policy"]["save"]) - np.array(howard["policy"]["save"])).max(), abs=1e-6)
     assert report["greedy_gap"] < 0.05
+    # A concave household: the method's checks of concavity (worker.continuous.egm_checks) raise no alarm.
+    assert 0.0 < report["greedy_gap"] and not [w for w in egm["diagnostics"]["warnings"] if "endogenous_grid" in w]
 
 
 def test_the_policy_agrees_with_a_plain_numpy_endogenous_grid_iteration(monkeypatch: pytest.MonkeyPatch) -> None:

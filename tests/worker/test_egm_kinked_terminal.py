@@ -109,39 +109,5 @@ def test_a_kinked_terminal_value_gives_the_best_choice_and_says_so(text: str, te
         assert any("at shock point z=" in w and "in period" in w for w in said)
 
 
-def test_concave_crra_cake_eating_uses_the_method_in_every_period_with_no_warning() -> None:
-    # Standard derivation (CRRA cake eating with a return R on what is kept): with V_{t+1}(w) = a_{t+1}·w^(1−γ)/(1−γ),
-    # max_c c^(1−γ)/(1−γ) + β·a_{t+1}·(R(w − c))^(1−γ)/(1−γ) has the first-order condition
-    # c^(−γ) = β·a_{t+1}·R^(1−γ)·(w − c)^(−γ), so (w − c)/c = k_t := (β·a_{t+1}·R^(1−γ))^(1/γ) and
-    # c = w/(1 + k_t); substituting, V_t(w) = a_t·w^(1−γ)/(1−γ) with a_t = (1 + k_t)^γ.  Tomorrow's cake is
-    # R(w − c) = R·w·k_t/(1 + k_t).  Terminal value a_T = 1.
-    gamma, beta, R, periods = 2.0, 0.9, 1.05, 4
-    a_next = 1.0
-    shares = []
-    for _ in range(periods):
-        k = (beta * a_next * R ** (1 - gamma)) ** (1 / gamma)
-        shares.append(R * k / (1 + k))
-        a_next = (1 + k) ** gamma
-    shares = shares[::-1]
-    document = {
-        "version": 1, "label": "a cheese maturing in a cellar, eaten over four seasons (invented)", "discount": beta,
-        "model": {
-            "kind": "grid", "params": {"R": R, "g": gamma},
-            "states": {"w": {"min": 0.01, "max": 2.0, "points": 60, "spacing": "log"}},
-            "choices": {"wn": {"next_of": "w", "continuous": True}},
-            "define": {"c": "w - wn / R"}, "feasible": ["c > 0"], "reward": "c**(1-g)/(1-g)",
-            "hints": {"concave": True},
-            "horizon": {"periods": periods, "terminal_value": "w**(1-g)/(1-g)"},
-        },
-        "solver": {"method": "endogenous_grid"},
-    }
-    result = solve(document)
-    w = np.array(result["axes"]["w"])
-    policy = np.array(result["policy"]["wn"])
-    for t in range(periods):
-        # Cakes whose path keeps tomorrow's cake on the grid until the end (every share is at least 0.5).
-        safe = w >= 0.01 / 0.5 ** (periods - t)
-        np.testing.assert_allclose(policy[t, safe], shares[t] * w[safe], rtol=1e-9)
-    egm = result["diagnostics"]["continuous_choice"]["endogenous_grid"]
-    assert egm["periods"] == periods and egm["searched_periods"] == []
-    assert not [w for w in result["diagnostics"]["warnings"] if "endogenous_grid" in w]
+# A concave cake keeps a round in every period with no warning: tests/worker/test_horizon_egm.py checks it on its
+# cake (test_each_periods_round_gives_the_textbook_rule_and_the_value_is_the_fitted_steps), sharing its kernels.

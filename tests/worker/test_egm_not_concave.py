@@ -129,8 +129,5 @@ def test_the_rounds_check_the_expected_marginal_value(monkeypatch: pytest.Monkey
     assert any("expected marginal value rises with the choice" in w for w in result["diagnostics"]["warnings"])
 
 
-def test_a_concave_household_still_uses_the_method_with_no_warning() -> None:
-    result = solve(household("(1 + r) * a + y - save", "log(c)"))
-    report = result["diagnostics"]["continuous_choice"]["endogenous_grid"]
-    assert report["rounds"] > 10 and 0.0 < report["greedy_gap"] < 12.0 / (POINTS - 1)
-    assert not [w for w in result["diagnostics"]["warnings"] if "endogenous_grid" in w]
+# The concave households keep the method with no warning: tests/worker/test_continuous_egm.py checks it on its
+# household (test_the_value_agrees_with_howards_method_within_both_bounds), sharing that module's kernels.

@@ -78,6 +78,8 @@ def test_each_periods_round_gives_the_textbook_rule_and_the_value_is_the_fitted_
         np.testing.assert_allclose(consumption[t, safe], rule[safe], rtol=1e-12)
     egm = result["diagnostics"]["continuous_choice"]["endogenous_grid"]
     assert egm["periods"] == PERIODS and egm["searched_periods"] == []
+    # A concave cake: no period's round fails the method's check (worker.egm_horizon), and nothing is warned.
+    assert not [w for w in result["diagnostics"]["warnings"] if "endogenous_grid" in w]
     assert len(egm["greedy_gap_by_period"]) == PERIODS and egm["value_gap"] >= -1e-12
     # The value is each period's fitted Bellman step: the plain search's backward induction gives the same
     # (both are the fitted problem's maxima; the searches stop within about 1e-8 of the choice).
