@@ -6,9 +6,14 @@ import os
 import signal
 import subprocess
 import sys
+import time
 from collections.abc import Callable, Iterable, Iterator
 from contextlib import contextmanager
 from pathlib import Path
+
+import httpx
+
+from service.embedded_redis import free_port
 
 STOP_TIMEOUT_S = 10.0
 """Seconds a process group has after SIGTERM before it gets SIGKILL."""
@@ -102,3 +107,33 @@ def worker_nodes(redis_url: str, logs: Path, env: dict[str, str]) -> Iterator[Ca
                 kill_node(process)
         for log in sorted(logs.glob("worker-*.log")):
             print(f"--- {log.name}\n{log.read_text(errors='replace')[-4000:]}")
+
+
+API_STARTUP_S = 60.0
+"""Seconds ``fixq api`` has to answer ``/healthz``."""
+
+
+@contextmanager
+def api_process(env: dict[str, str], log: Path) -> Iterator[httpx.Client]:
+    """``fixq api`` as a child process (its own process group) on a free loopback port with ``env``, its output in
+    ``log``; a client of it once it answers ``/healthz``.  Stopped on the way out."""
+    port = free_port()
+    with open(log, "wb") as out:
+        process = subprocess.Popen([sys.executable, "-m", "service.cli", "api", "--port", str(port)], cwd=REPO,
+                                   env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)  # fmt: skip
+    client = httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=30.0)
+    try:
+        deadline = time.monotonic() + API_STARTUP_S
+        while True:
+            assert process.poll() is None, log.read_text()
+            try:
+                if client.get("/healthz").status_code == 200:
+                    break
+            except httpx.TransportError:
+                pass
+            assert time.monotonic() < deadline, "fixq api did not become healthy"
+            time.sleep(0.1)
+        yield client
+    finally:
+        client.close()
+        stop_process_groups([process])

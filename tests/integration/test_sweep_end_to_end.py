@@ -25,10 +25,10 @@ import httpx
 import pytest
 import redis
 
-from service.embedded_redis import EmbeddedRedis, free_port
+from service.embedded_redis import EmbeddedRedis
 from service.settings import Settings
 from service.store import JobStore
-from tests._processes import WORKER_LAUNCH, stop_process_groups
+from tests._processes import WORKER_LAUNCH, api_process, stop_process_groups
 from tests._receiver import Receiver
 from worker import solve
 
@@ -36,8 +36,6 @@ REPO = Path(__file__).resolve().parents[2]
 EXAMPLE = json.loads((REPO / "service" / "examples" / "machine_replacement.json").read_text())
 DATABASE = 6
 WORKERS = 2
-API_STARTUP_S = 60.0
-"""Seconds to wait for ``fixq api`` to answer ``/healthz``."""
 SECRET = "shop floor secret"
 
 
@@ -74,29 +72,11 @@ def workers(lab: tuple[JobStore, Path]) -> Iterator[list[subprocess.Popen]]:
 def api(lab: tuple[JobStore, Path]) -> Iterator[httpx.Client]:
     """``fixq api`` as a child process on loopback, with auth off."""
     store, logs = lab
-    port = free_port()
     env = {**os.environ, "FIXQ_REDIS_URL": store.settings.redis_url, "FIXQ_AUTH": "off",
            "FIXQ_NOTIFY_ALLOW_HOSTS": "127.0.0.1", "FIXQ_NOTIFY_ALLOW_PRIVATE": "true",
            "PYTHONPATH": str(REPO)}  # fmt: skip
-    with open(logs / "api.log", "wb") as out:
-        process = subprocess.Popen([sys.executable, "-m", "service.cli", "api", "--port", str(port)], cwd=REPO,
-                                   env=env, stdout=out, stderr=subprocess.STDOUT, start_new_session=True)  # fmt: skip
-    client = httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=30.0)
-    try:
-        deadline = time.monotonic() + API_STARTUP_S
-        while True:
-            assert process.poll() is None, (logs / "api.log").read_text()
-            try:
-                if client.get("/healthz").status_code == 200:
-                    break
-            except httpx.TransportError:
-                pass
-            assert time.monotonic() < deadline, "fixq api did not become healthy"
-            time.sleep(0.1)
+    with api_process(env, logs / "api.log") as client:
         yield client
-    finally:
-        client.close()
-        stop(process)
 
 
 def stop(process: subprocess.Popen) -> None:

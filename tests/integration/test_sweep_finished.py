@@ -22,16 +22,14 @@ import httpx
 import pytest
 import redis
 
-from service.embedded_redis import EmbeddedRedis, free_port
+from service.embedded_redis import EmbeddedRedis
 from service.settings import Settings
-from tests._processes import WORKER_LAUNCH, stop_process_groups
+from tests._processes import WORKER_LAUNCH, api_process, stop_process_groups
 from tests._receiver import Receiver
 
 REPO = Path(__file__).resolve().parents[2]
 EXAMPLE = json.loads((REPO / "service" / "examples" / "machine_replacement.json").read_text())
 DATABASE = 8
-API_STARTUP_S = 60.0
-"""Seconds to wait for ``fixq api`` to answer ``/healthz``."""
 SECRET = "lathe floor secret"
 PATH = "model.reward[0][0]"
 OVERFLOW = 1e308
@@ -60,24 +58,8 @@ def start(command: list[str], env: dict[str, str], log: Path) -> subprocess.Pope
 def api(lab: tuple[dict[str, str], Path]) -> Iterator[httpx.Client]:
     """``fixq api`` as a child process on loopback, with auth off."""
     env, logs = lab
-    port = free_port()
-    process = start([sys.executable, "-m", "service.cli", "api", "--port", str(port)], env, logs / "api.log")
-    client = httpx.Client(base_url=f"http://127.0.0.1:{port}", timeout=30.0)
-    try:
-        deadline = time.monotonic() + API_STARTUP_S
-        while True:
-            assert process.poll() is None, (logs / "api.log").read_text()
-            try:
-                if client.get("/healthz").status_code == 200:
-                    break
-            except httpx.TransportError:
-                pass
-            assert time.monotonic() < deadline, "fixq api did not become healthy"
-            time.sleep(0.1)
+    with api_process(env, logs / "api.log") as client:
         yield client
-    finally:
-        client.close()
-        stop_process_groups([process])
 
 
 def wait_for(api: httpx.Client, path: str, done: str, logs: Path, timeout_s: float = 60) -> dict:
