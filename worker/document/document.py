@@ -56,6 +56,7 @@ from worker.document.search import SearchSpec, search_faults
 from worker.document.tabular import TabularModel
 from worker.document.tags import TAG_RULE, TagText
 from worker.document.unknown_keys import hidden_faults
+from worker.document.value_faults import value_hidden_faults
 from worker.errors import InvalidDocument, join_path
 
 PRIORITIES = ("high", "normal", "low")
@@ -283,6 +284,7 @@ def parse_document(raw: Any) -> ProblemDocument:
     faults = translate(errors[:MAX_REPORTED], ProblemDocument)
     if len(errors) < MAX_REPORTED:  # what the unknown keys kept from being checked, listed with them
         faults += hidden_faults(raw, errors, ProblemDocument, _validate, MAX_REPORTED)
+        faults += value_hidden_faults(raw, errors)  # what a bad value inside the grid model kept from being checked
     raise exception_for(faults, MAX_REPORTED, unlisted=max(len(errors) - MAX_REPORTED, 0))
 
 

@@ -7,7 +7,8 @@ unknown key is dropped, or, when it is a close match of a key missing beside it 
 read as that key, whose faults are then named at the key as written (``model.statez.capital.points``).  The
 copy shares everything but the objects along the paths it changes; the raw document is never touched.  A
 fault that makes the later checks meaningless (a required key missing, with no typo to read for it) still
-stops them, as it does without an unknown key.
+stops them, as it does without an unknown key; a bad value inside the grid model hides no names in the copy
+either (:mod:`worker.document.value_faults`).
 """
 
 from __future__ import annotations
@@ -20,6 +21,7 @@ from pydantic import BaseModel, ValidationError
 
 from worker.document._faults import Fault
 from worker.document._translate import _is_model, _resolve, split_loc, translate
+from worker.document.value_faults import value_hidden_faults
 from worker.errors import join_path
 
 __all__ = ["hidden_faults"]
@@ -54,7 +56,8 @@ def hidden_faults(
         again = exc.errors(include_url=False)
     else:
         return []
-    return [_as_written(item, renamed) for item in translate(again[:max_reported], root)]
+    found = translate(again[:max_reported], root) + value_hidden_faults(corrected, again)
+    return [_as_written(item, renamed) for item in found]
 
 
 def _missing_match(key: str, place: dict, holder: Any) -> str | None:
