@@ -36,6 +36,10 @@ __all__ = ["RESULT_AXES_FIELD", "ExecutionWrites", "failed_search_summary", "sea
 
 RESULT_AXES_FIELD = "result_axes"
 """The record hash's field holding a done job's axes summary (``worker.interpolate.axes_summary``)."""
+RESULT_AXES_MAX_BYTES = 64 * 1024
+"""Largest axes summary kept (bytes of JSON; a tabular model's labels): listings read whole records, so a
+larger one is not kept, and the worker alone checks a warm start from that job (choice: keeps a listing
+page of 50 records under a few MiB)."""
 
 _CKPT_HEADER = re.compile(rb"fixq-ckpt:(\d+)\n")
 
@@ -182,7 +186,8 @@ class ExecutionWrites:
         One script stores the result (``SET NX``, TTL ``result_ttl_s``), sets
         ``status``, ``iterations``, ``error_bound``, ``search`` (a search's summary: the result's, or
         ``search`` given for a failed one), ``error``, the hash field ``result_axes`` (the result's
-        ``worker.interpolate.axes_summary``, for :meth:`result_axes`; not part of the public record) and
+        ``worker.interpolate.axes_summary``, for :meth:`result_axes`, when at most ``RESULT_AXES_MAX_BYTES``;
+        not part of the public record) and
         ``finished_at``, moves the state, drops lease, checkpoint and cancel
         flag, gives record, document and log their lifetime (``job_ttl_s``)
         and, for ``done``, records the histograms.  False (nothing
@@ -201,8 +206,9 @@ class ExecutionWrites:
             fields["error_bound"] = dumps(result.get("error_bound")).decode()
             if isinstance(result.get("search"), dict):
                 fields["search"] = dumps(search_summary(result["search"])).decode()
-            if isinstance(result.get("axes"), dict):
-                fields[RESULT_AXES_FIELD] = dumps(axes_summary(result["axes"])).decode()
+            summary = dumps(axes_summary(result["axes"])) if isinstance(result.get("axes"), dict) else b""
+            if 0 < len(summary) <= RESULT_AXES_MAX_BYTES:
+                fields[RESULT_AXES_FIELD] = summary.decode()
             histogram = [
                 bucket_field(seconds, SOLVE_SECONDS_BUCKETS), seconds,
                 bucket_field(iterations, SOLVE_ITERATION_BUCKETS), iterations,

@@ -9,8 +9,10 @@ from __future__ import annotations
 import copy
 
 import httpx
+import pytest
 
 from service.store import JobStore
+from service.store import execution as store_execution
 from tests._documents import LQ, grid_document, machine_shop
 from tests.service._http import assert_problem, run_inline
 
@@ -78,3 +80,19 @@ def test_starts_the_solve_accepts_still_pass_and_solve(client: httpx.Client, sto
     reordered = machine_shop(solver={"initial": {"job": shop}})
     reordered["model"]["states"] = ["broken", "new", "worn"]
     assert store.get_result(done_job(client, reordered))["status"] == "converged"
+
+
+def test_a_job_without_a_kept_summary_is_left_to_the_worker(client: httpx.Client, store: JobStore,
+                                                             monkeypatch: pytest.MonkeyPatch) -> None:
+    # A summary over the cap is not kept (as for jobs finished before summaries were kept): the door lets
+    # the start through and the run refuses it with the same words.
+    monkeypatch.setattr(store_execution, "RESULT_AXES_MAX_BYTES", 10)
+    earlier = done_job(client, machine_shop())
+    assert store.result_axes(earlier) is None
+    later = machine_shop(solver={"initial": {"job": earlier}})
+    later["model"]["states"] = ["new", "worn", "scrapped"]
+    response = client.post("/v1/jobs", json=later)
+    assert response.status_code == 202, response.text
+    assert run_inline(response.json()["id"])["outcome"] == "failed"
+    error = store.get_job(response.json()["id"])["error"]["errors"][0]
+    assert error["path"] == PATH and "has no entry for ['scrapped']" in error["message"]
