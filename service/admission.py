@@ -6,9 +6,11 @@ model whose kernels would be too large to compile
 would exceed the precompute budget (``worker.tastecheck``), estimates
 (``worker.estimate.estimate``), refuses a problem over ``max_problem_mb``,
 runs the cheap grid feasibility check when the worker package offers one, and
-checks that a warm start names a finished job the caller may read.  It never
-builds the problem and never imports the numba kernels, so bad input is
-answered at the door (422 / 413) and never reaches a worker.
+checks that a warm start names a finished job the caller may read, whose
+value function's axes (names, labels) fit this model's
+(``worker.interpolate.check_start``, against the summary the job's record
+keeps).  It never builds the problem and never imports the numba kernels, so
+bad input is answered at the door (422 / 413) and never reaches a worker.
 """
 
 from __future__ import annotations
@@ -23,6 +25,7 @@ from worker.document import InitialJob, ProblemDocument, parse_document
 from worker.drawcheck import check_draw_tables
 from worker.errors import InvalidDocument, TooLarge
 from worker.estimate import estimate
+from worker.interpolate import check_start
 from worker.kernel_limits import check_structure
 from worker.tastecheck import check_taste_tables
 
@@ -111,3 +114,6 @@ def _check_warm_start(document: ProblemDocument, store: JobStore, may_see: Calla
         raise InvalidDocument.at(path, f"job {initial.job} is {record['state']}; a warm start needs a job that is done")
     if not store.redis.exists(store.keys.result(initial.job)):
         raise InvalidDocument.at(path, f"the result of job {initial.job} has expired; start from another job")
+    earlier = store.result_axes(initial.job)
+    if earlier is not None:  # None: finished before records kept it; the worker checks the axes then
+        check_start(earlier, document, path=path)

@@ -5,6 +5,11 @@ function of an earlier job, whose grids may differ from today's: a nightly
 re-solve with a finer capital grid or a re-calibrated shock.  Any start is
 valid for a contraction, so the aim is a good one, cheaply: multilinear
 interpolation, flat outside the old range.
+
+The rules on which axes may meet (names, labels) are :func:`check_axes`, the
+one source for :func:`regrid` at run time and for the door
+(``service.admission``), which checks a document against a finished job's
+:func:`axes_summary` (kept in its record) without compiling either.
 """
 
 from __future__ import annotations
@@ -15,10 +20,81 @@ from typing import Any, Mapping, Sequence
 import numpy as np
 
 from worker.arrays import decode_array
+from worker.axis_order import PERIOD_AXIS
 from worker.errors import InvalidDocument
 from worker.grids import locate
+from worker.tabular import STATE_AXIS
 
-__all__ = ["regrid"]
+__all__ = ["axes_summary", "check_axes", "check_start", "document_axes", "regrid"]
+
+
+def axes_summary(axes: Mapping[str, Sequence[Any]]) -> dict[str, list[Any] | None]:
+    """A result's ``axes`` without numeric grids: name -> its labels for an axis of labels, else None.
+
+    Small enough for a job record, and all :func:`check_axes` needs of the earlier side.
+    """
+    return {name: None if _all_numbers(list(values)) else list(values) for name, values in axes.items()}
+
+
+def document_axes(document: Any) -> dict[str, list[Any] | None]:
+    """The axes of a validated document's value function, as :func:`axes_summary` gives them, without compiling.
+
+    A grid model: its states, then its shocks drawn before the choice (``worker.feasibility.model_data``'s
+    order, which the compiled problem's ``axes`` follow); a tabular one: ``state_label`` with its labels.
+    """
+    model = document.model
+    if model.kind == "tabular":
+        return axes_summary({STATE_AXIS: model.state_labels()})
+    names = [*model.states, *(name for name, shock in model.shocks.items() if not shock.after_choice)]
+    return dict.fromkeys(names)
+
+
+def check_start(earlier: Mapping[str, list[Any] | None], document: Any, *, path: str) -> None:
+    """Refuse, at ``path``, a warm start of ``document`` from a job whose result has the axes ``earlier``
+    (its :func:`axes_summary`) when :func:`regrid` would refuse it at run time.
+
+    Under a horizon the earlier job's ``period`` axis is left out, as the solve leaves it out (it starts from
+    the earlier job's first period).
+    """
+    if getattr(document.model, "horizon", None) is not None:
+        earlier = {name: labels for name, labels in earlier.items() if name != PERIOD_AXIS}
+    check_axes(earlier, document_axes(document), path=path)
+
+
+def check_axes(
+    old_axes: Mapping[str, Sequence[Any] | None],
+    new_axes: Mapping[str, Sequence[Any] | None],
+    *,
+    path: str = "solver.initial",
+) -> None:
+    """Refuse, at ``path``, a starting value function on ``old_axes`` for a problem on ``new_axes``.
+
+    The axis names must match (in any order); along an axis whose values are labels on either side, each new
+    label must appear once among the old ones.  Either side may give None for an axis of numbers whose values
+    are not at hand (:func:`axes_summary`): numbers on both sides are interpolated, never refused here.
+    """
+    _check_names(list(old_axes), list(new_axes), path)
+    for name, new_values in new_axes.items():
+        if new_values is None:
+            continue  # numbers not at hand: only their values decide, at run time
+        new, old_values = list(new_values), old_axes[name]
+        if old_values is None:
+            if not _all_numbers(new):
+                raise InvalidDocument.at(path, _no_entry(name, new))  # labels are never found among numbers
+            continue
+        old = list(old_values)
+        if _same(old, new) or (_all_numbers(old) and _all_numbers(new)):
+            continue
+        _label_positions(old, new, name, path)
+
+
+def _check_names(old_names: list[str], new_names: list[str], path: str) -> None:
+    missing = [name for name in new_names if name not in old_names]
+    extra = [name for name in old_names if name not in new_names]
+    if missing or extra:
+        parts = [f"lacks axes {missing} of this problem"] if missing else []
+        parts += [f"has axes {extra} this problem does not"] if extra else []
+        raise InvalidDocument.at(path, f"the starting value function {' and '.join(parts)}; axes must match by name")
 
 
 def regrid(
@@ -55,12 +131,7 @@ def regrid(
         old axes, or it holds non-finite numbers.
     """
     old_names, new_names = list(old_axes), list(new_axes)
-    missing = [name for name in new_names if name not in old_axes]
-    extra = [name for name in old_names if name not in new_axes]
-    if missing or extra:
-        parts = [f"lacks axes {missing} of this problem"] if missing else []
-        parts += [f"has axes {extra} this problem does not"] if extra else []
-        raise InvalidDocument.at(path, f"the starting value function {' and '.join(parts)}; axes must match by name")
+    _check_names(old_names, new_names, path)
     shape = tuple(len(old_axes[name]) for name in old_names)
     value = decode_array(old_value, path=path, allow_nonfinite=True)
     if value.shape != shape:
@@ -78,7 +149,7 @@ def regrid(
 
 
 def _regrid_axis(value: np.ndarray, axis: int, old: list, new: list, name: str, path: str) -> np.ndarray:
-    if len(old) == len(new) and all(a == b for a, b in zip(old, new)):
+    if _same(old, new):
         return value
     if not (_all_numbers(old) and _all_numbers(new)):
         return _match_labels(value, axis, old, new, name, path)
@@ -105,13 +176,26 @@ def _regrid_axis(value: np.ndarray, axis: int, old: list, new: list, name: str, 
 
 
 def _match_labels(value: np.ndarray, axis: int, old: list, new: list, name: str, path: str) -> np.ndarray:
+    return np.take(value, _label_positions(old, new, name, path), axis=axis)
+
+
+def _label_positions(old: list, new: list, name: str, path: str) -> list[int]:
+    """Where each label of ``new`` stands in ``old``; refused when ``old`` repeats one or lacks one."""
     position = {label: i for i, label in enumerate(old)}
     if len(position) != len(old):
         raise InvalidDocument.at(path, f"axis {name!r} of the starting value function repeats a label")
     unknown = [label for label in new if label not in position]
     if unknown:
-        raise InvalidDocument.at(path, f"axis {name!r} of the starting value function has no entry for {unknown[:5]}")
-    return np.take(value, [position[label] for label in new], axis=axis)
+        raise InvalidDocument.at(path, _no_entry(name, unknown))
+    return [position[label] for label in new]
+
+
+def _no_entry(name: str, unknown: list) -> str:
+    return f"axis {name!r} of the starting value function has no entry for {unknown[:5]}"
+
+
+def _same(old: list, new: list) -> bool:
+    return len(old) == len(new) and all(a == b for a, b in zip(old, new))
 
 
 def _all_numbers(values: list) -> bool:

@@ -30,8 +30,16 @@ from service.store.layout import (
     register_script,
 )
 from worker.convergence_log import KEEP_FIRST, KEEP_LATEST, iteration_of, kept, stride
+from worker.interpolate import axes_summary
 
-__all__ = ["ExecutionWrites", "failed_search_summary", "search_summary"]
+__all__ = ["RESULT_AXES_FIELD", "ExecutionWrites", "failed_search_summary", "search_summary"]
+
+RESULT_AXES_FIELD = "result_axes"
+"""The record hash's field holding a done job's axes summary (``worker.interpolate.axes_summary``)."""
+RESULT_AXES_MAX_BYTES = 64 * 1024
+"""Largest axes summary kept (bytes of JSON; a tabular model's labels): listings read whole records, so a
+larger one is not kept, and the worker alone checks a warm start from that job (choice: keeps a listing
+page of 50 records under a few MiB)."""
 
 _CKPT_HEADER = re.compile(rb"fixq-ckpt:(\d+)\n")
 
@@ -156,6 +164,12 @@ class ExecutionWrites:
             return None
         return int(match.group(1)), blob[match.end() :]
 
+    def result_axes(self, job_id: str) -> dict[str, list[Any] | None] | None:
+        """The axes summary ``finish`` kept of a ``done`` job's result (names, labels of label axes), without
+        reading the result; None for a job finished before it was kept, or none at all."""
+        text = self.redis.hget(self.keys.job(job_id), RESULT_AXES_FIELD)
+        return orjson.loads(text) if text else None
+
     def finish(
         self,
         job_id: str,
@@ -171,7 +185,9 @@ class ExecutionWrites:
 
         One script stores the result (``SET NX``, TTL ``result_ttl_s``), sets
         ``status``, ``iterations``, ``error_bound``, ``search`` (a search's summary: the result's, or
-        ``search`` given for a failed one), ``error`` and
+        ``search`` given for a failed one), ``error``, the hash field ``result_axes`` (the result's
+        ``worker.interpolate.axes_summary``, for :meth:`result_axes`, when at most ``RESULT_AXES_MAX_BYTES``;
+        not part of the public record) and
         ``finished_at``, moves the state, drops lease, checkpoint and cancel
         flag, gives record, document and log their lifetime (``job_ttl_s``)
         and, for ``done``, records the histograms.  False (nothing
@@ -190,6 +206,9 @@ class ExecutionWrites:
             fields["error_bound"] = dumps(result.get("error_bound")).decode()
             if isinstance(result.get("search"), dict):
                 fields["search"] = dumps(search_summary(result["search"])).decode()
+            summary = dumps(axes_summary(result["axes"])) if isinstance(result.get("axes"), dict) else b""
+            if 0 < len(summary) <= RESULT_AXES_MAX_BYTES:
+                fields[RESULT_AXES_FIELD] = summary.decode()
             histogram = [
                 bucket_field(seconds, SOLVE_SECONDS_BUCKETS), seconds,
                 bucket_field(iterations, SOLVE_ITERATION_BUCKETS), iterations,
