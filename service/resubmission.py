@@ -82,6 +82,7 @@ from service import queue as rq_queues
 from service._formats import iso_utc
 from service.problems import Problem
 from service.store import JobStore
+from service.store.execution import RESULT_AXES_FIELD
 from worker.document import DEFAULT_PRIORITY, ProblemDocument
 from worker.document.canonical import canonical_json
 
@@ -142,7 +143,9 @@ redis.call('HSET', KEYS[6], 'state', 'done')
 return 1
 """
 
-_COPIED_FIELDS = ("status", "iterations", "error_bound", "search", "progress", "log_dropped")
+_COPIED_FIELDS = ("status", "iterations", "error_bound", "search", "progress", "log_dropped", RESULT_AXES_FIELD)
+"""The earlier record's fields a reused job copies (its result's axes summary too, so a warm start from the reused
+job is checked at the door as from the earlier one)."""
 
 
 @dataclass(frozen=True)

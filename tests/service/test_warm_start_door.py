@@ -44,6 +44,18 @@ def test_another_state_name_is_refused_at_the_door_and_nothing_is_queued(client:
     assert queued(store) == 0 and store.counts_by_state().get("queued", 0) == 0
 
 
+def test_a_start_from_a_reused_job_is_checked_as_from_the_earlier_one(client: httpx.Client, store: JobStore) -> None:
+    # The same document again is answered from the solved one (a reused job, no execution of its own): its record
+    # copies the axes summary, so a warm start from it is refused at the door too.
+    earlier = done_job(client, grid_document(LQ))
+    again = client.post("/v1/jobs", json=grid_document(LQ))
+    assert again.status_code in (200, 201), again.text
+    reused = again.json()["id"]
+    assert reused != earlier and again.json().get("reused_from") == earlier
+    body = assert_problem(client.post("/v1/jobs", json=grid_document(LQ_Y, initial={"job": reused})), 422)
+    assert [error["path"] for error in body["errors"]] == [PATH] and "lacks axes ['y']" in body["errors"][0]["message"]
+
+
 def test_a_sweep_whose_base_starts_from_another_state_name_is_refused_once(client: httpx.Client,
                                                                           store: JobStore) -> None:
     earlier = done_job(client, grid_document(LQ))
