@@ -16,8 +16,9 @@ STAMP := $(VENV)/.fixq-installed-$(shell cksum pyproject.toml | cut -d' ' -f1)
 DEMO_PROBLEM ?= service/examples/plant_capacity.json
 # Test processes (pytest-xdist): one per core by default; 0 runs the suite in this process.
 # Each test module runs in one process (--dist loadfile), so a model structure its tests share is compiled
-# once, not by two processes at once (the kernel folder has no compile lock): on 2 cores the suite took
-# 588 s so against 626-640 s with tests dealt out one by one (2026-12-05, fresh kernel folders).
+# by that process (two processes meeting one new structure at once: one compiles, the other waits and loads,
+# worker._codegen.cache.warming): on 2 cores the suite took 588 s so against 626-640 s with tests dealt out
+# one by one (2026-12-05, fresh kernel folders).
 PYTEST_WORKERS ?= auto
 
 .PHONY: help env demo lint test

@@ -194,7 +194,8 @@ def _warm_up_once(problem: GridProblem, module: ModuleType) -> None:
     key = (type(problem).__qualname__, problem.hints_active, problem.reward_storage, threaded)
     warmed = module.__dict__.setdefault("_fixq_warmed", set())
     if key not in warmed:
-        problem._warm_up()
+        with _codegen.warming(module):  # another process compiling the same kernels: wait, then load them
+            problem._warm_up()
         warmed.add(key)
 
 

@@ -349,3 +349,44 @@ def test_a_process_counts_its_loads_drops_old_modules_and_asks_to_be_recycled(ke
         os.close(descriptor)
     _codegen.load(sources[0])
     assert _codegen.loaded_structures() == start + cache.LOADED_KEPT + 2
+
+
+_WARM_RACE = """
+import json, os, pathlib, sys, time
+from numba.core.registry import CPUDispatcher
+from tests._documents import grid_document
+from worker.document import parse_document
+from worker.gridmodel import compile_grid
+model, barrier = json.loads(sys.argv[1]), pathlib.Path(sys.argv[2])
+document = parse_document(grid_document(model))
+barrier.with_name(barrier.name + "." + sys.argv[3]).touch()
+while len(list(barrier.parent.glob(barrier.name + ".*"))) < 2:
+    time.sleep(0.005)
+problem = compile_grid(document, reward_storage="on_the_fly")
+kernels = [value for value in vars(problem._kernels).values() if isinstance(value, CPUDispatcher)]
+print(json.dumps([sum(sum(k.stats.cache_misses.values()) for k in kernels),
+                  sum(sum(k.stats.cache_hits.values()) for k in kernels)]))
+"""
+"""One process of the race below: waits for the other at a barrier, compiles a model, prints its kernels' numba
+cache misses (compiled here) and hits (loaded from what another process compiled)."""
+
+
+def test_two_processes_warming_up_one_new_structure_compile_it_once(kernels, tmp_path) -> None:
+    # Two workers of a node taking a new sweep's first members at the same moment: before, both compiled the same
+    # kernels side by side (each its own cache misses); under the warm-up lock (worker._codegen.cache.warming)
+    # one compiles and the other, having waited, loads every kernel from the cache the first wrote.
+    model = nudged("a * k - (k2 - k)**2 + 3.25e-9 * k2")  # a structure no other test compiles
+    env = {**os.environ, "FIXQ_KERNEL_CACHE": str(kernels), "FIXQ_COLD_BRIDGE": "off", "PYTHONPATH": str(REPO)}
+    import json
+
+    racers = [subprocess.Popen([sys.executable, "-c", _WARM_RACE, json.dumps(model), str(tmp_path / "barrier"),
+                                str(n)], cwd=REPO, env=env, stdout=subprocess.PIPE, stderr=subprocess.PIPE)
+              for n in range(2)]  # fmt: skip
+    counts = []
+    for racer in racers:
+        out, err = racer.communicate(timeout=300)
+        assert racer.returncode == 0, err.decode()[-2000:]
+        counts.append(json.loads(out.decode().strip().splitlines()[-1]))
+    misses = sorted(count[0] for count in counts)
+    assert misses[0] == 0 and misses[1] > 0, counts  # one compiled; the other compiled nothing
+    assert max(count[1] for count in counts) > 0, counts

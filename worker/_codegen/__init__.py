@@ -75,7 +75,7 @@ trailing ``start, stop``: the flat states ``[start, stop)``, all by default):
 """
 
 from worker._codegen.block_search import BOUND_SLACK
-from worker._codegen.cache import is_held, load, loaded_structures, module_name, recycle_due, trim
+from worker._codegen.cache import is_held, load, loaded_structures, module_name, recycle_due, trim, warming
 from worker._codegen.folder import UnsafeFolder, kernel_cache_dir
 from worker._codegen.layout import KernelLayout, ModelSource, context, layout_for
 from worker._codegen.literals import kernel_params, lift_literals
@@ -98,4 +98,5 @@ __all__ = [
     "module_source",
     "recycle_due",
     "trim",
+    "warming",
 ]

@@ -48,13 +48,15 @@ import tempfile
 import threading
 import time
 from collections import OrderedDict
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from types import ModuleType
 
 from worker._codegen.folder import kernel_cache_dir, numba_cache_dir
 from worker.environment import kernel_cache_bytes, max_loaded_structures
 
-__all__ = ["LOADED_KEPT", "is_held", "load", "loaded_structures", "module_name", "recycle_due", "trim"]
+__all__ = ["LOADED_KEPT", "is_held", "load", "loaded_structures", "module_name", "recycle_due", "trim", "warming"]
 
 LOADED_KEPT = 16
 """Modules a process keeps imported (count); a module used again while kept costs no new load."""
@@ -145,6 +147,31 @@ def _load(source: str) -> ModuleType:
         sys.modules.pop(dropped, None)
         os.close(old.lock)
     return module
+
+
+@contextmanager
+def warming(module: ModuleType) -> Iterator[None]:
+    """Hold ``<name>.warming``'s exclusive lock while the block warms up (compiles) a loaded module's kernels.
+
+    numba compiles a kernel at its first call and writes the machine code to its cache then, so a second
+    process that warms up the same structure at the same time (two workers of a node taking a new sweep's
+    members, two test processes solving one example) would compile it again beside the first.  Under this lock
+    it waits instead, and its first calls then load what the first process wrote.  The lock is the operating
+    system's (``flock``): it goes with its holder, even one killed mid-compile; the file stays beside the module
+    and goes with it when :func:`trim` deletes the module (which it cannot while a process holds the module).
+    Outside the kernel folder's modules (no such file can be made) the block runs unlocked."""
+    name = module.__name__
+    try:
+        descriptor = os.open(kernel_cache_dir() / f"{name}.warming", os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW
+                             | os.O_CLOEXEC, 0o600)  # fmt: skip
+    except OSError:
+        yield
+        return
+    try:
+        fcntl.flock(descriptor, fcntl.LOCK_EX)
+        yield
+    finally:
+        os.close(descriptor)  # closing the descriptor drops the lock
 
 
 def _shared_lock(path: pathlib.Path) -> int:

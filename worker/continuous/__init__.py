@@ -85,7 +85,8 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     problem = ContinuousProblem(doc, data, module, params)
     problem.kernel_literals = literals
     problem.egm_form = egm
-    problem.warm_up()
+    with _codegen.warming(module):  # another process compiling the same kernels: wait, then load them
+        problem.warm_up()
     problem.timings = {"prepare_s": prepared - started, "compile_s": time.perf_counter() - prepared}
     return problem
 
