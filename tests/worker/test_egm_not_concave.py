@@ -131,3 +131,17 @@ def test_the_rounds_check_the_expected_marginal_value(monkeypatch: pytest.Monkey
 
 # The concave households keep the method with no warning: tests/worker/test_continuous_egm.py checks it on its
 # household (test_the_value_agrees_with_howards_method_within_both_bounds), sharing that module's kernels.
+
+
+def test_the_search_that_replaces_the_method_starts_from_solver_initial() -> None:
+    # A warm start sent with solver.initial (last night's value, say) is where Howard's search starts when the
+    # method is not used; before, it started from zeros whatever the document said.
+    document = household("(1 + r) * a + y - save", "c**2 / 2")
+    cold = solve(document)
+    warm = solve({**document, "solver": {**document["solver"], "initial": {"values": cold["value"]}}})
+    np.testing.assert_allclose(np.array(warm["value"]), np.array(cold["value"]), atol=1e-8)
+    # From the fixed point itself the first Bellman step moves by no more than the cold solve's tolerance.
+    assert warm["log"][0]["distance"] <= 1e-9 < cold["log"][0]["distance"]
+    assert warm["iterations"] < cold["iterations"]
+    said = [w for w in warm["diagnostics"]["warnings"] if "endogenous_grid" in w]
+    assert len(said) == 1 and "from solver.initial" in said[0]

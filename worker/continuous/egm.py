@@ -168,10 +168,11 @@ def conditions(data: ModelData) -> tuple[EulerSetup | None, tuple[Any, dict] | N
 
 def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], solve_from: Callable[..., Any],
                     *, tolerance: float = DEFAULT_TOLERANCE, max_iterations: int = DEFAULT_MAX_ITERATIONS,
-                    **options: Any) -> Any:
+                    start: np.ndarray | None = None, **options: Any) -> Any:
     """Solve ``problem`` (a :class:`~worker.continuous.ContinuousProblem`) by the method; a certified outcome.
 
-    ``solve_from(problem, v, **options)`` is the ordinary solver that certifies (Howard's method).
+    ``solve_from(problem, v, **options)`` is the ordinary solver that certifies (Howard's method); ``start``
+    (the solve's start, ``solver.initial`` or zeros) is where it searches from when the method is not used.
     """
     data = problem.model_data
     started = time.perf_counter()
@@ -239,7 +240,7 @@ def endogenous_grid(problem: Any, found: EulerSetup, c_slope: tuple[Any, dict], 
               "seconds": egm_seconds}
     if disorder is not None:
         warning = checks.disorder_warning(data, disorder, rounds)
-        return checks.searched(problem, solve_from, report, warning, tolerance=tolerance,
+        return checks.searched(problem, solve_from, report, warning, start, tolerance=tolerance,
                                max_iterations=max_iterations, **options)
     flat = np.ascontiguousarray(policy.reshape(-1))
     try:

@@ -15,8 +15,9 @@ up to the whole grid away from the best choice with no word said.  Three checks,
   not rise with the choice (:func:`~worker.continuous.egm_rounds.first_disorder`).
 
 Where one fails the rounds are abandoned and :func:`searched` solves by the ordinary solver (Howard's
-method, its search with the document's hints) from zeros, returning the search's policy, with a
-warning naming the shock point and the reason.  And where the rounds pass but the method's policy ends
+method, its search with the document's hints) from the solve's start (``solver.initial``, or zeros),
+returning the search's policy, with a warning naming the shock point and the reason.  And where the
+rounds pass but the method's policy ends
 more than ``FAR_STEPS`` of the grid's largest step from the fitted problem's maximiser, the search's
 policy is returned too, with a warning (:func:`far_warning`).
 """
@@ -79,10 +80,12 @@ def marginal_disorder(data: Any, found: Any, points: np.ndarray, tomorrow: np.nd
     return first_disorder(np.broadcast_to(points[:, None], shape), expected)
 
 
-def searched(problem: Any, solve_from: Any, report: dict[str, Any], warning: str, **options: Any) -> Any:
-    """The ordinary solver's outcome from zeros, its policy returned, with ``warning``; ``report`` is the rounds'
-    ``diagnostics.continuous_choice.endogenous_grid`` (its ``greedy_gap`` 0: the policy reported is the search's)."""
-    outcome = solve_from(problem, np.zeros(problem.n), **options)
+def searched(problem: Any, solve_from: Any, report: dict[str, Any], warning: str, start: np.ndarray | None = None,
+             **options: Any) -> Any:
+    """The ordinary solver's outcome from ``start`` (the solve's own start: ``solver.initial``, or zeros), its
+    policy returned, with ``warning``; ``report`` is the rounds' ``diagnostics.continuous_choice.endogenous_grid``
+    (its ``greedy_gap`` 0: the policy reported is the search's)."""
+    outcome = solve_from(problem, np.zeros(problem.n) if start is None else start, **options)
     outcome.warnings.append(warning)
     problem.egm_report = {**report, "greedy_gap": 0.0}
     problem.egm_rule = None
@@ -95,8 +98,8 @@ def disorder_warning(data: Any, disorder: tuple[int, str], rounds: int) -> str:
     return (f"solver.method endogenous_grid: {where}, at shock point {shock_point(data, disorder[0])}, "
             f"{disorder[1]}: the problem is not concave there, the first-order condition the method solves does "
             "not pick the best choice, so the method was not used: the value and policy are Howard's method's "
-            "(its search, from zeros); diagnostics.continuous_choice.endogenous_grid.greedy_gap is 0 (the policy "
-            "reported is the search's)")
+            "(its search, from solver.initial, or from zeros without one); "
+            "diagnostics.continuous_choice.endogenous_grid.greedy_gap is 0 (the policy reported is the search's)")
 
 
 def far_warning(gap: float, step: float) -> str:

@@ -332,11 +332,12 @@ class ContinuousProblem:
         return out_v, (np.column_stack([out_a, out_j.astype(np.float64)]) if self.others else out_a)
 
     def solve_endogenous_grid(self, initial: np.ndarray, solve_from: Any, **options: Any) -> Any:
-        """``solver.method: endogenous_grid`` (:mod:`worker.continuous.egm`); ``initial`` is not needed."""
+        """``solver.method: endogenous_grid`` (:mod:`worker.continuous.egm`); ``initial`` is the start of Howard's
+        search when the problem is not concave (the method's own rounds start from the last period's policy)."""
         from worker.continuous.egm import endogenous_grid
 
         found, c_slope = self.egm_form
-        return endogenous_grid(self, found, c_slope, solve_from, **options)
+        return endogenous_grid(self, found, c_slope, solve_from, start=initial, **options)
 
     def policy_rule(self, v: np.ndarray, policy: np.ndarray) -> Any:
         """``rule(k) -> x``: the choice at states ``k`` (m,) of the one state, at every shock point, (m, shocks);
