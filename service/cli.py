@@ -85,7 +85,7 @@ def _parser() -> argparse.ArgumentParser:
     keys = commands.add_parser("keys", help="manage API keys (talks to Redis directly: FIXQ_REDIS_URL)")
     key_commands = keys.add_subparsers(dest="keys_command", required=True, metavar="KEYS_COMMAND")
     add = key_commands.add_parser("add", help="make a key; prints it alone on the last line, only this once")
-    add.add_argument("name", help="the owner name of the key's jobs (letters, digits, _ . @ -)")
+    add.add_argument("name", help="the owner name of the key's jobs (ASCII letters, digits, _ . @ -)")
     add.add_argument("--admin", action="store_true", help="the key sees and cancels every owner's jobs")
     add.add_argument("--max-active-jobs", type=int, metavar="N", help="its own cap on queued+running jobs")
     add.add_argument("--max-active-high-jobs", type=int, metavar="N", help="its own cap on priority-high ones")

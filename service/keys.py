@@ -154,8 +154,8 @@ class KeyStore:
         """
         if _NAME.fullmatch(name) is None:
             raise KeyNameError(
-                f"key name {name!r} is not allowed: 1 to 64 characters, letters, digits and _ . @ -, "
-                "starting with a letter or digit"
+                f"key name {name!r} is not allowed: 1 to 64 characters, ASCII letters (A-Z, a-z), digits and _ . @ -, "
+                "starting with a letter or digit (a name such as Müller is refused: write it in ASCII)"
             )
         if name in RESERVED_NAMES:
             raise KeyNameError(f"key name {name!r} is reserved (it owns the jobs submitted while auth was off)")

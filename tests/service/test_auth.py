@@ -79,6 +79,9 @@ def test_key_names_are_checked_and_unique(keys: KeyStore) -> None:
     for bad in ("", "has space", "a:b", "-lead", "x" * 65, "anonymous"):
         with pytest.raises(KeyNameError):
             keys.add(bad)
+    # A name in a language other than English is refused, and the message says why (it used to say "letters").
+    with pytest.raises(KeyNameError, match="ASCII letters"):
+        keys.add("Müller")
     assert [k.name for k in keys.list_keys()] == ["alice"]
 
 
