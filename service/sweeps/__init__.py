@@ -94,6 +94,7 @@ Keys (prefix ``fixq``)
 ``fixq:sweep:{id}:claim:{i}``     string  the claim on creating row ``i``'s job, held until it is recorded
 ``fixq:sweep:{id}:door``          string  present while ``POST`` is still creating the first jobs
 ``fixq:sweep:{id}:ended``         set     indices of the rows whose job ended (``notify``)
+``fixq:sweep:{id}:rescan``        string  present for ``notify.RESCAN_S`` after a reaper read its rows
 ``fixq:sweepjob:{job id}``        string  ``{sweep id}:{index}`` of a sweep's job
 ``fixq:sweeps``                   zset    sweep ids by submission time (ms)
 ``fixq:sweeps:owner:{owner}``     zset    the same per owner

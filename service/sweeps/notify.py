@@ -46,6 +46,7 @@ from service.sweeps.view import sweep_view
 
 __all__ = [
     "EVENT",
+    "RESCAN_S",
     "ROWS_LISTED",
     "member_finished",
     "notify_if_finished",
@@ -58,6 +59,10 @@ EVENT = "sweep.finished"
 """The ``event`` (and ``Fixq-Event``) of a sweep's notification."""
 ROWS_LISTED = 500
 """Most rows a ``sweep.finished`` body lists (count); about 0.2 kB each (more with means or an error)."""
+
+RESCAN_S = 60
+"""Seconds between two reads of one sweep's rows by the reapers' passes (:func:`rescue_notifications`): the
+longest a notification lost between a row's end and its count waits beyond the reaper's interval."""
 
 logger = logging.getLogger("fixq.webhooks")
 
@@ -114,8 +119,9 @@ def notify_if_finished(sweep: Sweep, *, check_all: bool = False) -> bool:
 
 
 def rescue_notifications(store: JobStore) -> list[str]:
-    """The reaper's pass: for every sweep still to be notified, count the rows whose job ended without
-    being counted, and queue its ``sweep.finished`` when due; the ids of the sweeps queued."""
+    """The reaper's pass: for every sweep still to be notified, queue its ``sweep.finished`` when due; where
+    rows may have ended without being counted, read them (at most once every :data:`RESCAN_S` per sweep) and
+    count them first.  The ids of the sweeps queued."""
     queued: list[str] = []
     key = notify_key(store)
     for member in store.redis.smembers(key):
@@ -125,6 +131,11 @@ def rescue_notifications(store: JobStore) -> list[str]:
             continue
         if store.redis.exists(sweep.keys.door):
             continue  # the door notifies once it created the first rows
+        if sweep.canceled_at is None and notify_if_finished(sweep):  # every row counted ended: no rows read
+            queued.append(sweep.id)
+            continue
+        if not store.redis.set(sweep.keys.rescan, b"1", nx=True, ex=RESCAN_S):
+            continue  # its rows were read within the last RESCAN_S
         _, states = row_states(sweep)
         ended = [index for index, state in states.items() if state in TERMINAL_STATES]
         if ended:

@@ -48,6 +48,7 @@ class SweepKeys:
         self.errors = f"{self.sweep}:errors"
         self.door = f"{self.sweep}:door"
         self.ended = f"{self.sweep}:ended"
+        self.rescan = f"{self.sweep}:rescan"
         self._store = store
 
     def claim(self, index: int) -> str:
@@ -243,7 +244,7 @@ def forget_expired_sweeps(store: JobStore, now: float | None = None, *, scan_lim
         if any(alive):
             continue
         with redis.pipeline(transaction=True) as pipe:
-            pipe.delete(keys.sweep, keys.base, keys.jobs, keys.means, keys.errors, keys.door, keys.ended)
+            pipe.delete(keys.sweep, keys.base, keys.jobs, keys.means, keys.errors, keys.door, keys.ended, keys.rescan)
             pipe.srem(notify_key(store), sweep_id)
             for job_id in job_ids:
                 pipe.delete(keys.job_link(job_id))

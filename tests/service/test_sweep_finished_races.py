@@ -87,3 +87,43 @@ def test_a_worker_dead_before_its_finish_hook_leaves_the_notification_to_the_rea
     assert view["id"] == sweep_id and view["counts"]["done"] == 3
     assert [row["job"] for row in view["rows"]["data"]] == jobs
     assert webhooks.delivery_status(store, f"sweep:{sweep_id}")["state"] == "delivered"
+
+
+def test_the_reapers_read_a_running_sweeps_rows_at_most_once_a_minute(hook_store: JobStore,
+                                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    # Every reaper runs a pass every 5 s; before, each pass read every row of every sweep still to be notified
+    # (10,000 job states a pass for a nightly sweep of 10,000 rows), though a lost count is rare.
+    from service.sweeps import notify
+
+    reads: list[str] = []
+    real = notify.row_states
+    monkeypatch.setattr(notify, "row_states", lambda sweep: reads.append(sweep.id) or real(sweep))
+    store = hook_store
+    with Receiver([204]) as receiver:
+        sweep_id, jobs = new_sweep(store, receiver.url, [0.7, 0.8, 0.9])
+        assert Execution(store, jobs[0]).run() == "done"
+        lifecycle.job_finished(store, jobs[0], "done")
+        for _ in range(5):
+            reap(store, use_lock=False)
+        assert reads == [sweep_id]  # the first pass read the rows; the next four did not
+        for job_id in jobs[1:]:
+            assert Execution(store, job_id).run() == "done"  # ... and their workers die before the hook
+        reap(store, use_lock=False)
+        assert webhooks.delivery_status(store, f"sweep:{sweep_id}") is None  # within the minute: not yet
+        store.redis.delete(store.key("sweep", sweep_id) + ":rescan")  # the minute has passed
+        reap(store, use_lock=False)
+        assert reads == [sweep_id, sweep_id]
+        while webhooks.deliver_due(store):
+            pass
+        # Counted rows need no read: a sweep whose ended set covers every row is queued at the next pass.
+        other_id, others = new_sweep(store, receiver.url, [0.75, 0.85])
+        for job_id in others:
+            assert Execution(store, job_id).run() == "done"
+        store.redis.sadd(store.key("sweep", other_id) + ":ended", 0, 1)  # counted, but the hook died before queuing
+        reap(store, use_lock=False)
+        assert reads == [sweep_id, sweep_id]
+        while webhooks.deliver_due(store):
+            pass
+    events = sweep_events(receiver)
+    assert sorted(e["sweep"]["id"] for e in events) == sorted([sweep_id, other_id])
+    assert all(e["sweep"]["state"] == "done" for e in events)
