@@ -4,7 +4,8 @@
 picture shows one choice (``?choice=NAME``, default the first), its
 probabilities summed over the other choices:
 
-* tabular models: a stacked bar per state, a colour per action;
+* tabular models: a stacked bar per state, a colour per action (with a finite horizon, a heatmap of
+  period × state of the probability of the choice's last value, :mod:`service.period_plots`);
 * one state variable: the probabilities of the choice's values stacked
   against the state, at one shock point (``?shock_index=I``, default 0);
 * two or more: a heatmap of the probability of the choice's last value
@@ -21,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from service import plots
+from service.period_plots import probability_heatmap
 from service.plots import PALETTE, AxisLayout, Format
 from service.problems import Problem
 
@@ -61,6 +63,8 @@ def choice_probability_plot(
     others = tuple(len(value_shape) + k for k in range(len(names)) if k != j)
     marginal = probabilities.sum(axis=others) if others else probabilities
     labels = [f"{choice}={plots._num(value)}" for value in choices[choice]]
+    if layout.tabular and marginal.ndim == 3:  # a finite horizon: [period][state][value]
+        return probability_heatmap(axes, marginal[..., -1], labels[-1], title, fmt)
     if layout.tabular:
         return _stacked_bars(axes, marginal, [str(value) for value in choices[choice]], choice, title, fmt)
     n_states = len(layout.states)

@@ -24,8 +24,8 @@ import numpy as np
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import Expression, evaluate, parse
 
-__all__ = ["AGGREGATES", "DISCOUNT", "Aggregate", "Condition", "aggregate_value", "define_series", "parse_condition",
-           "point_env", "point_values"]
+__all__ = ["AGGREGATES", "DISCOUNT", "Aggregate", "Condition", "aggregate_value", "define_series", "defines_env",
+           "parse_condition", "point_env", "point_values"]
 
 DISCOUNT = "discount"
 """The name by which a search's unknown or condition means the document's discount factor."""
@@ -140,10 +140,15 @@ def point_env(doc: Any, problem: Any, policy: np.ndarray) -> dict[str, Any]:
     """Every name an aggregate may use, at every point of the grid: params, discount, states, shocks,
     choices (chosen there) and the defines that can be evaluated from them (not those of a draw revealed
     after the choice)."""
+    return defines_env(doc, {**problem.state_values(), **problem.choice_values(policy)})
+
+
+def defines_env(doc: Any, values: dict[str, Any]) -> dict[str, Any]:
+    """Params, discount, ``values`` (states, shocks and choices, arrays of one length) and the defines that can
+    be evaluated from them (not those of a draw revealed after the choice)."""
     env: dict[str, Any] = {name: float(value) for name, value in doc.model.params.items()}
     env[DISCOUNT] = float(doc.discount)
-    env.update(problem.state_values())
-    env.update(problem.choice_values(policy))
+    env.update(values)
     for name, text in doc.model.define.items():
         expr = parse(text, path=join_path("model.define", name))
         if expr.names <= env.keys():

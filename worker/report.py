@@ -281,13 +281,17 @@ def stationary_report(
 
         series.update((name, values) for name, values in define_series(doc, problem, policy).items()
                       if name not in series)
+    pairs = {}
+    if getattr(problem, "taste_scale", None) is not None:  # a random choice: moments over (point, choice) pairs
+        from worker.taste_moments import pair_series
+
+        pairs = pair_series(problem, policy, pi, doc)
     means, sds = {}, {}
     for name, values in series.items():
-        held = values[pi > 0]  # a define may be undefined where no mass is
-        if not np.isfinite(held).all():
+        held, weights = pairs[name] if name in pairs else (values[pi > 0], pi[pi > 0])
+        if not np.isfinite(held).all():  # a define may be undefined where no mass is
             means[name] = sds[name] = None
             continue
-        weights = pi[pi > 0]
         means[name] = float(weights @ held)
         sds[name] = float(np.sqrt(max(weights @ (held - means[name]) ** 2, 0.0)))
     ends = _ends(problem, pi, real_ends or {}, info["warnings"])

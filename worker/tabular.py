@@ -188,8 +188,12 @@ class TabularProblem:
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
         """``{"action": (S,) float64}``: the chosen action's index (taste shocks: its expected index)."""
         if self.taste_scale is not None:
-            return {"action": self.choice_probabilities(policy) @ np.arange(self.n_actions, dtype=np.float64)}
+            return {"action": self.choice_probabilities(policy) @ self.combination_values()["action"]}
         return {"action": np.asarray(policy, dtype=np.float64)}
+
+    def combination_values(self) -> dict[str, np.ndarray]:
+        """``{"action": (A,)}``: each action's index (the columns of the choice probabilities)."""
+        return {"action": np.arange(self.n_actions, dtype=np.float64)}
 
     def choice_axes(self) -> dict[str, list[Any]]:
         """The choice axes of ``choice_probabilities``: ``{"action": labels}``."""

@@ -265,8 +265,9 @@ class TasteGridProblem(ReferenceProblem):
     def choice_values(self, policy: np.ndarray) -> dict[str, np.ndarray]:
         """Per choice, the (n,) expected chosen value under the probabilities."""
         probabilities = self.choice_probabilities(policy)
+        return {name: probabilities @ values for name, values in self.combination_values().items()}
+
+    def combination_values(self) -> dict[str, np.ndarray]:
+        """Per choice, its (C,) value in each combination of the choices (the columns of the probabilities)."""
         parts = np.unravel_index(np.arange(self._data.n_choices), self._data.choice_sizes)
-        return {
-            name: probabilities @ grid[parts[j]]
-            for j, (name, grid) in enumerate(zip(self._data.choices, self._data.choice_grids))
-        }
+        return {name: grid[parts[j]] for j, (name, grid) in enumerate(zip(self._data.choices, self._data.choice_grids))}

@@ -122,7 +122,11 @@ def plot(
     else:
         result = _result(store, job)
         layout = plots.axis_layout(result, store.get_document(job_id))
-        if picture == "life_cycle":
+        from service.period_plots import is_tabular_horizon, tabular_horizon_plot
+
+        if picture in ("value", "policy") and is_tabular_horizon(result, layout):
+            body = tabular_horizon_plot(result, picture, choice=choice, title=title, fmt=fmt)
+        elif picture == "life_cycle":
             from service.cohort_plot import life_cycle_plot
 
             body = life_cycle_plot(result, store.get_document(job_id), title=title, fmt=fmt)

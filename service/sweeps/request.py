@@ -103,7 +103,11 @@ class SweepRequest(BaseModel):
         description="Path into the document (dotted keys, [i] list indices) → the values it takes.",
     )
     mode: Literal[MODES] = Field(default="product", description="product: every combination; zip: the i-th of each.")
-    chain: StrictBool = Field(default=False, description="Warm-start each job from its neighbour.")
+    chain: StrictBool = Field(
+        default=False,
+        description="Warm-start each job from its neighbour (refused with model.horizon, where solver.initial "
+        "replaces the terminal value).",
+    )
     label: StrictStr | None = Field(default=None, max_length=MAX_LABEL_CHARS)
     tags: list[Tag] = Field(default_factory=list, max_length=MAX_TAGS)
     priority: Literal[PRIORITIES] | None = None
@@ -250,9 +254,33 @@ class SweepRequest(BaseModel):
             if total > MAX_TAGS:
                 out.append({"path": "tags", "message": f"the jobs would carry {total} tags (the base's, the "
                             f"sweep's, sweep:ID); at most {MAX_TAGS}"})  # fmt: skip
+        if self.chain and self._has_horizon():
+            out.append({"path": "chain", "message": "a model with a horizon (model.horizon) is solved by backward "
+                        "induction, which starts from no guess: there, solver.initial is the value after the last "
+                        "period, and a neighbour's value would replace the terminal value; leave chain out"})
         if self.mode == "zip" and len(set(self.shape)) > 1:
             lengths = ", ".join(f"{p}: {len(v)}" for p, v in self.vary.items())
             out.append({"path": "vary", "message": f'with mode "zip" every list needs the same length; got {lengths}'})
+        return out
+
+    def _has_horizon(self) -> bool:
+        """Whether some combination has a finite horizon (the base's model.horizon, or a varied one)."""
+        model = self.base.get("model")
+        if isinstance(model, dict) and model.get("horizon") is not None:
+            return True
+        for segments, values in zip(self._segments_or_none(), self.vary.values()):
+            if segments is not None and segments[:2] == ("model", "horizon") and any(v is not None for v in values):
+                return True
+        return False
+
+    def _segments_or_none(self) -> list[Segments | None]:
+        """Each varied path split into keys and indices, None for a path that does not parse."""
+        out: list[Segments | None] = []
+        for text in self.vary:
+            try:
+                out.append(parse_path(text))
+            except ValueError:
+                out.append(None)
         return out
 
     def canonical(self) -> SweepRequest:

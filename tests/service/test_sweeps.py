@@ -30,7 +30,7 @@ from tests._documents import GROWTH, LQ, TWO_CHOICES, grid_document
 from tests._documents import machine_shop as shared_machine_shop
 from tests.service._http import make_client
 from worker import solve
-from worker.errors import FixqError
+from worker.errors import FixqError, InvalidDocument
 
 PROBLEM_JSON = "application/problem+json"
 
@@ -128,6 +128,26 @@ def test_chain_tree_steps_back_along_the_last_non_zero_axis(settings: Settings) 
     )  # fmt: skip
     assert zipped.count == 3 and [zipped.predecessor(i) for i in range(3)] == [None, 0, 1]
     assert zipped.values_of(2) == {"discount": 0.95, "solver.tolerance": 1e-8}
+
+
+def test_a_chain_over_a_finite_horizon_is_refused_at_chain(settings: Settings) -> None:
+    # Before, the chain set each later row's solver.initial to its neighbour's job, which with a horizon is the value
+    # after the last period: the row at r = 0.03 of an invented 5-period household solved with its neighbour's
+    # period-0 value as terminal value, 0.49 away from the same document solved alone.
+    base = machine_shop()
+    base["model"]["horizon"] = {"periods": 4}
+    for vary in ({"discount": [0.8, 0.9]}, {"model.horizon.periods": [3, 4]}):
+        with pytest.raises(InvalidDocument) as caught:
+            sweeps.parse_request({"base": base, "vary": vary, "chain": True}, settings)
+        assert [f["path"] for f in caught.value.errors] == ["chain"]
+        assert "terminal value" in caught.value.errors[0]["message"]
+    infinite = machine_shop()
+    with pytest.raises(InvalidDocument) as caught:
+        sweeps.parse_request({"base": infinite, "vary": {"model.horizon": [None, {"periods": 3}]}, "chain": True},
+                             settings)
+    assert [f["path"] for f in caught.value.errors] == ["chain"]
+    sweeps.parse_request({"base": base, "vary": {"discount": [0.8, 0.9]}}, settings)  # no chain: fine
+    sweeps.parse_request({"base": infinite, "vary": {"discount": [0.8, 0.9]}, "chain": True}, settings)
 
 
 def test_a_sweep_queues_one_tagged_job_per_combination(http: httpx.Client, store: JobStore) -> None:

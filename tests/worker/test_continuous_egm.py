@@ -14,6 +14,7 @@ import numpy as np
 import pytest
 
 from tests._documents import log_growth
+from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.solve import solve
 
@@ -327,3 +328,37 @@ def test_growth_with_a_concave_output_is_solved_to_its_closed_form() -> None:
     exact = alpha * beta * z[None, :] * k[:, None] ** alpha
     assert result["status"] == "converged"
     assert np.abs(np.array(result["policy"]["k_next"]) - exact).max() < 1e-3
+
+
+@pytest.mark.parametrize("change, phrase", [
+    ({"choices": {"save": {"next_of": "a"}}}, "continuous choice that is next_of"),
+    ({"choices": {"save": {"next_of": "a", "continuous": True}, "work": {"values": [0, 1]}}}, "only choice"),
+    ({"shocks": {**HOUSEHOLD["shocks"], "bill": {"timing": "after_choice", "iid": {"values": [0, 0.1],
+                                                                                     "probs": [0.9, 0.1]}}},
+      "reward": "c**(1 - gamma) / (1 - gamma) - bill"}, "drawn after the choice"),
+])
+@pytest.mark.parametrize("horizon", [None, {"periods": 4}])
+def test_a_model_not_of_its_form_is_refused_at_the_door(change: dict[str, Any], phrase: str,
+                                                        horizon: dict[str, Any] | None) -> None:
+    # Before, a grid choice (or a second choice, a draw) passed parse_document: without a horizon the job failed in
+    # the worker after the 202, with one the method was dropped by a note blaming the horizon.
+    model = {**copy.deepcopy(HOUSEHOLD), **change, "horizon": horizon}
+    with pytest.raises(InvalidDocument) as caught:
+        parse_document(_document(model=model))
+    assert caught.value.errors[0]["path"] == "solver.method"
+    assert phrase in caught.value.errors[0]["message"]
+
+
+def test_a_tabular_model_with_the_method_is_refused_at_the_door() -> None:
+    document = {"version": 1, "discount": 0.9, "solver": {"method": "endogenous_grid"},
+                "model": {"kind": "tabular", "states": 2, "actions": 1, "reward": [[1.0], [0.0]],
+                          "transition": [[[0.5, 0.5]], [[0.5, 0.5]]]}}
+    with pytest.raises(InvalidDocument) as caught:
+        parse_document(document)
+    assert caught.value.errors[0]["path"] == "solver.method"
+    assert "tabular" in caught.value.errors[0]["message"]
+
+
+def test_a_model_of_its_form_passes_the_door() -> None:
+    parse_document(_document())
+    parse_document(_document(model={**copy.deepcopy(HOUSEHOLD), "horizon": {"periods": 3}}))

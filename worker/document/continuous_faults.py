@@ -13,7 +13,7 @@ from worker import expressions
 from worker.document._faults import Fault, fault, number
 from worker.errors import InvalidDocument, join_path
 
-__all__ = ["CUBIC_MAX_STATES", "continuous_faults", "continuous_model_faults"]
+__all__ = ["CUBIC_MAX_STATES", "continuous_faults", "continuous_model_faults", "endogenous_grid_faults"]
 
 CUBIC_MAX_STATES = 3
 """Most state variables of a model with monotone_cubic interpolation (count): its tensor product reads
@@ -93,3 +93,33 @@ def continuous_model_faults(model: Any) -> list[Fault]:
         faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "
                             f"`{continuous[0]}` is continuous; give it a grid (points) or a menu (values) instead"))
     return faults
+
+
+def endogenous_grid_faults(model: Any) -> list[Fault]:
+    """Faults of ``solver.method: endogenous_grid`` that the document shows: the method needs a grid model with one
+    state, whose one choice is continuous and next_of it, and no draw after the choice.  The worker checks the rest
+    (the reward through one define, smoothness) when it compiles the model (``worker.continuous.egm.conditions``).
+    Before, a model with a grid choice was accepted at the door and then failed in the worker (no horizon) or was
+    solved by backward induction with a note that blamed the horizon."""
+    where = "solver.method"
+    if getattr(model, "kind", None) != "grid":
+        return [fault(where, "the endogenous grid method applies to a grid model (one state, one continuous next_of "
+                      "choice), not a tabular one; use howard, value_iteration or policy_iteration")]
+    reasons = []
+    continuous = [name for name, choice in model.choices.items() if choice.continuous and choice.next_of]
+    if not continuous:
+        reasons.append("a continuous choice that is next_of the state (tomorrow's value of it), and no choice here "
+                       "is (\"continuous\": true with next_of)")
+    if len(model.choices) > 1:
+        reasons.append(f"the continuous choice to be the model's only choice, and this model has {len(model.choices)} ("
+                       + ", ".join(f"`{name}`" for name in model.choices) + ")")
+    if len(model.states) != 1:
+        reasons.append(f"one state, and this model has {len(model.states)}")
+    draws = [name for name, shock in model.shocks.items() if shock.after_choice]
+    if draws:
+        reasons.append("no shock drawn after the choice (" + ", ".join(f"`{n}`" for n in draws) + "): its "
+                       "first-order condition would hold only in expectation over the draws")
+    if not reasons:
+        return []
+    return [fault(where, "the endogenous grid method does not apply: it needs " + "; and ".join(reasons)
+                  + "; use howard, value_iteration or policy_iteration (a horizon: backward induction, the default)")]

@@ -40,6 +40,7 @@ from worker.document._faults import (
 )
 from worker.document._fields import Integer, Part, SchemaExtra, check, one_as_list
 from worker.document._translate import translate
+from worker.document.continuous_faults import endogenous_grid_faults
 from worker.document.grid import GridModel
 from worker.document.limits import (
     DOCUMENT_VERSION,
@@ -183,6 +184,8 @@ class ProblemDocument(Part):
         return [fault("discount", _DISCOUNT_BELOW_ONE.format(value=number(self.discount)))]
 
     def _method_faults(self) -> list[Fault]:
+        if self.solver.method == "endogenous_grid":
+            return endogenous_grid_faults(self.model)
         if self.solver.method != "backward_induction" or self.model.horizon is not None:
             return []
         return [fault("solver.method", "backward induction solves a model with a finite horizon: give model.horizon, "

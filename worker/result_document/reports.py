@@ -41,10 +41,12 @@ class StationaryReport(Reported):
     means: dict[str, float | None] = Field(
         description="Per axis (state variable, shock; tabular: state_label, the state's index), per choice "
         "(tabular: action, the chosen action's index; with taste shocks its expected index) and per define (grid "
-        "models), its mean under the distribution; null for a define that is not finite somewhere the distribution "
-        "has mass."
+        "models), its mean under the distribution (with taste shocks, a choice's and a define's over the points "
+        "and the choices drawn there, weighted by their probabilities); null for a define that is not finite "
+        "somewhere the distribution has mass."
     )
-    sd: dict[str, float | None] = Field(description="The same names' standard deviations under the distribution.")
+    sd: dict[str, float | None] = Field(description="The same names' standard deviations under the distribution "
+                                        "(with taste shocks, over the points and the choices drawn there).")
     ends: dict[str, EndMass] = Field(
         description="Grid models: per state variable, the mass at the ends of its grid ({} for tabular models)."
     )
