@@ -1,6 +1,7 @@
 """Finite-horizon documents the time estimate is measured on (``bench/bench_estimates.py --horizon``), each an
 invented scenario solved by backward induction: a continuous choice with draws after it, a grid choice with
-draws after it, a continuous choice with and without its hints."""
+draws after it (each with and without params by period), a continuous choice with and without its hints, and
+the glassblower example's hinted grid choice on a finer grid."""
 
 from __future__ import annotations
 
@@ -9,7 +10,7 @@ from typing import Any
 
 from tests._documents import grid_document
 from tests._draw_models import fishery, van
-from tests._estimate_set import saver
+from tests._estimate_set import example, saver
 
 
 def with_horizon(document: dict[str, Any], periods: int) -> dict[str, Any]:
@@ -60,4 +61,14 @@ def horizon_shapes(small: bool = False) -> dict[str, dict[str, Any]]:
         f"horizon_grid_draws_by_period_{400 // scale}": aging_van(400 // scale),
         f"horizon_continuous_unhinted_{1000 // scale}": with_horizon(saver(1000 // scale, hinted=False), 20),
         f"horizon_continuous_hinted_{1000 // scale}": with_horizon(saver(1000 // scale), 20),
+        f"horizon_grid_hinted_by_period_{600 // scale}": glassblower(600 // scale),
     }
+
+
+def glassblower(points: int) -> dict[str, Any]:
+    """The bundled glassblower example (a grid savings choice with both hints, params by period, 60 periods) on
+    ``points`` savings points, without its cohort report."""
+    document = example("glassblower_life_cycle")
+    document["model"]["states"]["savings"]["points"] = points
+    document.pop("report", None)
+    return document
