@@ -272,10 +272,8 @@ def test_a_hinted_horizon_is_verified_in_every_period_and_priced_so() -> None:
     raw = next(raw for name, raw in HORIZON.items() if name.startswith("horizon_continuous_hinted"))
     periods = raw["model"]["horizon"]["periods"]
     assert solve(raw)["diagnostics"]["verification"]["periods"] == periods
-    doc = parse_document(raw)
-    hinted = estimate(doc)
-    once = estimate(parse_document({**raw, "model": {**raw["model"], "horizon": {"periods": 1}}}))
-    assert hinted["seconds"] - periods * once["seconds"] < 0  # fixed costs are paid once
+    hinted = estimate(parse_document(raw))
+    # One state set by the choice, no draws: each verification is the proof at the incumbent.
     assert hinted["seconds"] >= periods * hinted["points"] * PROOF_POINTS * POINT_NS * 1e-9
 
 
