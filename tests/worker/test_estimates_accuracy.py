@@ -16,6 +16,7 @@ from __future__ import annotations
 import pytest
 
 from tests._estimate_set import documents, measure_memory, method_variants
+from tests._horizon_shapes import horizon_shapes
 from worker import costs, euler
 from worker.document import parse_document
 from worker.estimate import estimate
@@ -248,7 +249,7 @@ def test_a_continuous_choice_with_draws_counts_the_draws_as_no_axis_of_the_value
     assert estimate(parse_document(continuous_with_draws(400)))["points"] == 400
 
 
-HORIZON = __import__("tests._horizon_shapes", fromlist=["horizon_shapes"]).horizon_shapes(small=True)
+HORIZON = horizon_shapes(small=True)
 
 
 @pytest.mark.parametrize("name", sorted(HORIZON))
@@ -266,15 +267,18 @@ def test_a_hinted_horizon_is_verified_in_every_period_and_priced_so() -> None:
     # solver's own count of verified periods is the horizon's, and the estimate prices a verification per period
     # (it priced one for the whole solve, 0.24 of the measured time on the 7,000-point saver over 20 periods).
     from worker import solve
-    from worker.continuous_estimate import PROOF_POINTS
+    from worker.continuous_estimate import PROOF_POINTS, SEARCH_POINTS
     from worker.costs import POINT_NS
+    from worker.horizon_costs import horizon_seconds
 
     raw = next(raw for name, raw in HORIZON.items() if name.startswith("horizon_continuous_hinted"))
     periods = raw["model"]["horizon"]["periods"]
     assert solve(raw)["diagnostics"]["verification"]["periods"] == periods
-    hinted = estimate(parse_document(raw))
-    # One state set by the choice, no draws: each verification is the proof at the incumbent.
-    assert hinted["seconds"] >= periods * hinted["points"] * PROOF_POINTS * POINT_NS * 1e-9
+    doc = parse_document(raw)
+    hinted = estimate(doc)
+    # One state set by the choice, no draws: each period a hinted search, then the proof at the incumbent.
+    searches = hinted["seconds"] - horizon_seconds(doc, hinted["points"])
+    assert searches >= periods * hinted["points"] * (SEARCH_POINTS + PROOF_POINTS) * POINT_NS * 1e-9
 
 
 def test_a_horizon_prices_its_result_by_point_and_period_and_the_cohort_only_when_asked() -> None:
