@@ -26,9 +26,9 @@ __all__ = [
 
 PERIOD_S = 5e-5
 """Fixed cost of one period of a finite horizon besides its Bellman step: its params entered, its rounding
-allowance, its log entry and its diagnostics (seconds; measured 2026-12-05 with ``bench/bench_estimates.py
---horizon``'s van at 22 points: 35 µs a period from 50 to 400 periods; 1 ms was used before, the glassblower's
-whole period, its steps included)."""
+allowance, its log entry and its diagnostics (seconds; measured 2026-12-05 on the 2-core development machine:
+the van of ``tests._horizon_shapes`` at 22 points, warm solves of 50 and 400 periods, 35 µs a period; 1 ms was
+used before, the glassblower's whole period, its steps included)."""
 HORIZON_POINT_NS = 200.0
 """A finite horizon's result per point and period: the nested lists of every period's value and policy (and
 grid index), and freeing them (nanoseconds; measured 2026-12-05: 100–144 on the glassblower example at 150 and
