@@ -3,7 +3,8 @@
 Run from the repository root: ``python bench/bench_estimates.py`` (add ``--large`` for three grid models of
 29,000 to 300,000 points, ``--rss`` for the resident-memory column, ``--cold`` for the first solve of each
 structure with an empty kernel cache; ``--continuous`` alone for the time of sixteen models with a continuous
-choice, :func:`continuous_main`).  Target, printed with PASS or FAIL: every ratio estimate / measured
+choice, :func:`continuous_main`; ``--horizon`` alone for the time of the finite-horizon shapes of
+``tests/_horizon_shapes.py``, :func:`horizon_main`).  Target, printed with PASS or FAIL: every ratio estimate / measured
 within [1/2, 2].  Besides the set, two documents are solved under a memory cap that leaves their tables
 out (``POINTWISE``), for the exact pointwise search through an interpolated state.
 
@@ -53,6 +54,7 @@ from tests._estimate_set import (  # noqa: E402
     measure_seconds,
     method_variants,
 )
+from tests._horizon_shapes import horizon_shapes  # noqa: E402
 from worker.compile_seconds import LOAD_S  # noqa: E402
 from worker.document import parse_document  # noqa: E402
 from worker.estimate import estimate  # noqa: E402
@@ -132,9 +134,61 @@ def continuous_main() -> int:
     return 0 if ok else 1
 
 
+def horizon_main() -> int:
+    """``--horizon``: the time estimate of :func:`tests._horizon_shapes.horizon_shapes` (continuous and grid
+    choices with draws after them, with and without params by period; a continuous choice with and without its
+    hints; the glassblower's hinted grid) against the median of ``CONTINUOUS_REPEATS`` warm solves, with the
+    median CPU time of the process (on a loaded machine nearer a quiet wall time, its threads' time summed) and of
+    the result's construction (what :mod:`worker.horizon_costs` counts beside the periods' steps)."""
+    import statistics
+    import time
+
+    import worker.periods as periods
+    from worker import solve
+
+    parts: dict[str, float] = {}
+    build = periods.horizon_result
+
+    def timed_result(*args, **kwargs):  # the result's lists (and the cohort), apart from the periods' steps
+        start = time.perf_counter()
+        try:
+            return build(*args, **kwargs)
+        finally:
+            parts["result"] = time.perf_counter() - start
+
+    periods.horizon_result = timed_result
+    print(f"{'document':40s} {'est s':>8s} {'median s':>9s} {'ratio':>6s}     {'cpu s':>8s} {'ratio':>6s}  "
+          "result s  periods")
+    ratios, cpu_ratios = [], []
+    try:
+        for name, raw in horizon_shapes().items():
+            size = estimate(parse_document(raw))
+            solve(raw)
+            wall, cpu, results = [], [], []
+            for _ in range(CONTINUOUS_REPEATS):
+                start, started = time.perf_counter(), time.process_time()
+                solve(raw)
+                wall.append(time.perf_counter() - start)
+                cpu.append(time.process_time() - started)
+                results.append(parts["result"])
+            ratios.append(size["seconds"] / statistics.median(wall))
+            cpu_ratios.append(size["seconds"] / statistics.median(cpu))
+            print(f"{name:40s} {size['seconds']:8.4f} {statistics.median(wall):9.4f} {ratios[-1]:6.2f} "
+                  f"{verdict(ratios[-1]):3s} {statistics.median(cpu):8.4f} {cpu_ratios[-1]:6.2f} "
+                  f"{statistics.median(results):9.4f} {raw['model']['horizon']['periods']:8d}", flush=True)
+    finally:
+        periods.horizon_result = build
+    ok = all(1 / FACTOR <= ratio <= FACTOR for ratio in ratios)
+    print(f"horizon time ratios {min(ratios):.2f} to {max(ratios):.2f}: {'PASS' if ok else 'FAIL'} "
+          f"(within {FACTOR:g}x, this run); against CPU time {min(cpu_ratios):.2f} to {max(cpu_ratios):.2f}")
+    return 0 if ok else 1
+
+
 def main(argv: list[str]) -> int:
     if "--continuous" in argv:
         return continuous_main()
+    if "--horizon" in argv:
+        return horizon_main()
     large, rss, cold = "--large" in argv, "--rss" in argv, "--cold" in argv
     rows = []
     print(f"{'document':28s} {'est MiB':>9s} {'traced':>9s} {'ratio':>6s}    {'est s':>8s} {'warm s':>8s} "

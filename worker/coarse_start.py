@@ -49,9 +49,11 @@ COARSE_SHARE = 4
 """A coarse grid has this share of the fine grid's points: one in ``COARSE_SHARE`` (count)."""
 COARSE_LEAST_POINTS = 40
 """Fewest points of a coarsened grid (count)."""
-COARSE_FINE_ITERATIONS = 6
-"""Iterations of a solve after its coarse start, as the time estimate counts them (count; measured 3 to 6 on the
-accuracy benchmark's household at 400 to 100,000 points, :mod:`worker.continuous_estimate`)."""
+COARSE_FINE_ITERATIONS = 3
+"""Iterations of a solve after its coarse start, as the time estimate counts them (count; measured 2 to 4, 3 on
+most, on the sixteen continuous shapes of ``bench/bench_estimates.py --continuous`` at 200 to 5,000 points,
+2026-12-05; 3 to 6 on the accuracy benchmark's household at 400 to 100,000 points; 6 was used before,
+:mod:`worker.continuous_estimate`)."""
 _METHODS = ("howard", "value_iteration", "policy_iteration")
 
 

@@ -23,16 +23,16 @@ from worker.costs import (
     GRID_FIXED_S,
     ITERATION_S,
     MATVEC_NS,
+    NUMPY_PAIR_NS,
     POINT_NS,
     euler_elements,
-    horizon_bytes,
-    horizon_seconds,
     iteration_steps,
     report_bytes,
     report_seconds,
     solve_bytes,
 )
 from worker.drawnames import draw_count
+from worker.horizon_costs import horizon_bytes, horizon_seconds
 from worker.kernel_limits import compile_bytes as compile_memory
 
 __all__ = ["PROOF_POINTS", "SCAN_POINT_NS", "SEARCH_POINTS", "continuous_estimate"]
@@ -89,6 +89,12 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
     combos = combos_of(model, name)  # searched for each
     scan_ns = SCAN_POINT_NS if choice.next_of is not None else POINT_NS
     per_point = combos * draws * (SEARCH_POINTS if hinted else scan + SEARCH_POINTS)
+    # The unhinted verification of a hinted search, per point: a scan and a refinement, or, where the proof at the
+    # incumbent applies (one state, set by the choice, no draws: worker.continuous.bound_proof), ``PROOF_POINTS``
+    # evaluations (it held at 99.7-100 % of the points of the accuracy benchmark).
+    proof = states == 1 and draws == 1 and choice.next_of is not None
+    verify_ns = combos * draws * (PROOF_POINTS * POINT_NS if proof else SEARCH_POINTS * POINT_NS + scan * scan_ns)
+    horizon = model.horizon
     # The policy of a continuous choice keeps moving a little until the end: every evaluation phase is full.
     steps, evaluation_steps, basis = iteration_steps(doc, scan, moving_divisor=1)
 
@@ -126,12 +132,16 @@ def continuous_estimate(doc: Any) -> dict[str, Any]:
                   f"coarsest from zeros, then {seeded} iterations a level")
     seconds = (GRID_FIXED_S * 1e9 + total_ns) * 1e-9
     if hinted:
-        # The unhinted verification: a scan and a refinement per point, or, where the proof at the incumbent
-        # applies (one state, set by the choice, no draws: worker.continuous.bound_proof), ``PROOF_POINTS``
-        # evaluations (it held at 99.7-100 % of the points of the accuracy benchmark).
-        proof = states == 1 and draws == 1 and choice.next_of is not None
-        seconds += n * combos * draws * (PROOF_POINTS * POINT_NS if proof
-                                         else SEARCH_POINTS * POINT_NS + scan * scan_ns) * 1e-9
+        # The unhinted verification, once after an infinite horizon's solve and after every period's hinted search
+        # in a finite one (worker.solvers.backward.period_step).
+        seconds += (horizon.periods if horizon is not None else 1) * n * verify_ns * 1e-9
+    if horizon is not None and draws > 1:
+        from worker.document.horizon import varies_by_period  # here: worker.document reads the estimate's limits
+
+        # Every period checks the draws' probabilities at the policy it chose, and, when the model changes with the
+        # period, first at every point's scanned candidates (worker.continuous.draw_periods), in numpy.
+        checked = n * draws * (1 + (choice.size * combos if varies_by_period(model) else 0))
+        seconds += horizon.periods * checked * NUMPY_PAIR_NS * 1e-9
     seconds += report_seconds(doc, n, entries, euler) + horizon_seconds(doc, n)
     seconds += euler_searches * SEARCH_POINTS * POINT_NS * 1e-9
     compile_bytes = compile_memory(model)

@@ -2,7 +2,8 @@
 
 :mod:`worker.estimate` sizes a document from them, and so does
 :mod:`worker.continuous_estimate`; keeping them here lets both import them
-without importing each other.  Every figure is a measurement on the
+without importing each other (a finite horizon's own costs are in
+:mod:`worker.horizon_costs`).  Every figure is a measurement on the
 development machine or marked as a guess.
 """
 
@@ -36,10 +37,8 @@ __all__ = [
     "HINTED_POINTS",
     "THREAD_EFFICIENCY",
     "SCAN_NODE_NS",
-    "HORIZON_POINT_NS",
     "INTERPOLATED_PAIR_NS",
     "ITERATION_S",
-    "PERIOD_S",
     "STATIONARY_GRID_S",
     "TABULAR_STEP_S",
     "MOVING_STEPS_DIVISOR",
@@ -58,15 +57,12 @@ __all__ = [
     "SOLVER_BYTES_PER_STATE",
     "STATIC_CLIMB_POINTS",
     "TABLE_READ_NS",
-    "TASTE_PROBABILITY_NS",
     "BASE_BYTES",
     "euler_elements",
     "policy_matrix_bytes",
-    "horizon_seconds",
     "report_seconds",
     "report_bytes",
     "solve_bytes",
-    "horizon_bytes",
     "iteration_steps",
     "linear_solve_bytes",
     "lu_entries",
@@ -117,9 +113,6 @@ draws reset the stock) to 0.62 (household savings), geometric mean 0.26 — so t
 steps, or 0.4 of them.  A tabular model's steps come from its chains instead (:mod:`worker.mixing`)."""
 ITERATION_S = 5e-5
 """Fixed cost of one iteration: the log entry, the bracket, the policy comparison, the polls (seconds)."""
-PERIOD_S = 1e-3
-"""Fixed cost of one period of a finite horizon: its params, its steps, its log entry (seconds; measured about
-1.2 ms per period on the glassblower example)."""
 TABULAR_STEP_S = 5e-6
 """Fixed cost of one evaluation step of a tabular model: a sparse product called from Python (seconds)."""
 FIXED_S = 7e-4
@@ -151,14 +144,8 @@ hint it stops at the first that does worse, counted as one: measured 18–35 ns 
 household models)."""
 INTERPOLATED_PAIR_NS = 40.0
 """Filling the tables, per pair and state moved by a ``next`` expression: its nodes and weights (nanoseconds)."""
-HORIZON_POINT_NS = 2_000.0
-"""A finite horizon's result per point and period: the lists of every period's value and policy, and the cohort's
-distribution when asked for (nanoseconds)."""
 RESULT_NS = 100.0
 """The result's nested lists per point (nanoseconds)."""
-TASTE_PROBABILITY_NS = 250.0
-"""A finite horizon with taste shocks: each choice probability of each period and point in the result's nested
-lists (nanoseconds; one run, 2026-12-05: 1.6 s for 6.0 million, 60 periods x 500 points x 200 choices)."""
 STATIONARY_S = 1e-3
 STATIONARY_GRID_S = 2e-4
 """The stationary report of a grid model, on top of ``STATIONARY_S``: the marginals by state and shock (seconds)."""
@@ -444,19 +431,6 @@ def iteration_steps(
     return steps, evaluation, basis
 
 
-def horizon_seconds(doc: Any, n: int) -> float:
-    """A finite horizon's result: every period's value and policy, and the cohort (seconds; 0 without one);
-    with taste shocks the choice probabilities by period too (one per choice and point, as ``horizon_bytes``)."""
-    horizon = getattr(doc.model, "horizon", None)
-    if horizon is None:
-        return 0.0
-    per_point = HORIZON_POINT_NS
-    if getattr(doc.model, "taste_shocks", None) is not None:
-        model = doc.model
-        choices = model.n_actions if model.kind == "tabular" else math.prod(c.size for c in model.choices.values())
-        per_point += choices * TASTE_PROBABILITY_NS
-    return int(horizon.periods) * (n * per_point * 1e-9 + PERIOD_S)
-
 
 def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool = True,
                    bandwidth: int | None = None) -> float:
@@ -473,24 +447,3 @@ def report_seconds(doc: Any, n: int, entries: int, euler: int = 0, *, grid: bool
     if report.simulation is not None:
         seconds += STATIONARY_S + int(report.simulation.periods) * int(report.simulation.paths) * SIMULATION_NS * 1e-9
     return seconds + euler * EULER_ELEMENT_NS * 1e-9
-
-
-def horizon_bytes(doc: Any, n: int) -> int:
-    """The value and policy of every period of a finite horizon, kept for the result (bytes; 0 without one).
-
-    Per period and point: the value and the policy (8 bytes each) in the solve, and the result's
-    nested lists of them (about ``RESULT_BYTES_PER_STATE``); with ``report.cohort`` the cohort's
-    distribution by period as well; with taste shocks the choice probabilities by period (one per
-    choice, in the solve and in the result).
-    """
-    horizon = getattr(doc.model, "horizon", None)
-    if horizon is None:
-        return 0
-    per_point = 16 + RESULT_BYTES_PER_STATE
-    if doc.report.cohort is not None:
-        per_point += 8 + RESULT_BYTES_PER_STATE // 3
-    if getattr(doc.model, "taste_shocks", None) is not None:
-        model = doc.model
-        choices = model.n_actions if model.kind == "tabular" else math.prod(c.size for c in model.choices.values())
-        per_point += choices * (8 + RESULT_BYTES_PER_STATE)
-    return int(horizon.periods) * n * per_point

@@ -61,8 +61,6 @@ from worker.costs import (
     TABLE_READ_NS,
     TABULAR_STEP_S,
     euler_elements,
-    horizon_bytes,
-    horizon_seconds,
     iteration_steps,
     linear_solve_bytes,
     linear_solve_seconds,
@@ -74,6 +72,7 @@ from worker.costs import (
 from worker.drawnames import draw_count, draw_table_bytes
 from worker.grid_seconds import grid_seconds, policy_solve_bytes, policy_solve_seconds, policy_solve_words
 from worker.hintuse import hint_use
+from worker.horizon_costs import horizon_bytes, horizon_seconds
 from worker.kernel_limits import compile_bytes as compile_memory
 from worker.staticchoices import static_choices
 from worker.taste import SMOOTHED_PAIR_NS, taste_storage_words, taste_table_bytes

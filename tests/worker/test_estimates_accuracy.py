@@ -2,7 +2,8 @@
 issue's shapes (several iid and Markov shocks, a many-point iid shock, draws after the choice, taste shocks,
 a horizon, a continuous choice, dense and sparse tabular, grids of 20,000 and 60,000 points), and on the
 taste-shock and draw documents solved by policy iteration and value iteration (their exact evaluations' LU
-factors counted, which tracing does not see).
+factors counted, which tracing does not see), and on the finite-horizon shapes of ``tests/_horizon_shapes.py`` at
+a quarter of their size (with a count the solver reports, that a hinted horizon is verified in every period).
 
 Measured: the peak traced by :mod:`tracemalloc` during a warm solve, above what was traced before it, with the
 factors of direct solves added while they are held (:func:`tests._estimate_set.measure_memory`), which is what
@@ -16,6 +17,7 @@ from __future__ import annotations
 import pytest
 
 from tests._estimate_set import documents, measure_memory, method_variants
+from tests._horizon_shapes import horizon_shapes
 from worker import costs, euler
 from worker.document import parse_document
 from worker.estimate import estimate
@@ -246,3 +248,47 @@ def test_a_continuous_choice_with_draws_counts_the_draws_as_no_axis_of_the_value
     from tests._estimate_set import continuous_with_draws
 
     assert estimate(parse_document(continuous_with_draws(400)))["points"] == 400
+
+
+HORIZON = horizon_shapes(small=True)
+
+
+@pytest.mark.parametrize("name", sorted(HORIZON))
+def test_the_memory_estimate_of_a_finite_horizon_is_within_a_factor_of_two(name: str) -> None:
+    # Continuous and grid choices with draws after them (with and without params by period), a continuous choice
+    # with and without hints, the glassblower's hinted grid: every period's value and policy kept for the result.
+    raw = HORIZON[name]
+    promised = estimate(parse_document(raw))["bytes"]
+    measured = measure_memory(raw)
+    assert 1 / FACTOR <= promised / measured <= FACTOR, (name, promised, measured)
+
+
+def test_a_hinted_horizon_is_verified_in_every_period_and_priced_so() -> None:
+    # worker.solvers.backward.period_step runs the unrestricted step after each period's hinted search: the
+    # solver's own count of verified periods is the horizon's, and the estimate prices a verification per period
+    # (it priced one for the whole solve, 0.24 of the measured time on the 7,000-point saver over 20 periods).
+    from worker import solve
+    from worker.continuous_estimate import PROOF_POINTS, SEARCH_POINTS
+    from worker.costs import POINT_NS
+    from worker.horizon_costs import horizon_seconds
+
+    raw = next(raw for name, raw in HORIZON.items() if name.startswith("horizon_continuous_hinted"))
+    periods = raw["model"]["horizon"]["periods"]
+    assert solve(raw)["diagnostics"]["verification"]["periods"] == periods
+    doc = parse_document(raw)
+    hinted = estimate(doc)
+    # One state set by the choice, no draws: each period a hinted search, then the proof at the incumbent.
+    searches = hinted["seconds"] - horizon_seconds(doc, hinted["points"])
+    assert searches >= periods * hinted["points"] * (SEARCH_POINTS + PROOF_POINTS) * POINT_NS * 1e-9
+
+
+def test_a_horizon_prices_its_result_by_point_and_period_and_the_cohort_only_when_asked() -> None:
+    from worker.horizon_costs import COHORT_POINT_NS
+
+    raw = next(raw for name, raw in HORIZON.items() if name.startswith("horizon_grid_hinted"))
+    without = estimate(parse_document(raw))
+    cohort = {**raw, "report": {"cohort": {"start": {"savings": 0.0, "orders": 1.0}}}}
+    with_cohort = estimate(parse_document(cohort))
+    periods = raw["model"]["horizon"]["periods"]
+    assert with_cohort["seconds"] - without["seconds"] == pytest.approx(
+        periods * without["points"] * COHORT_POINT_NS * 1e-9)

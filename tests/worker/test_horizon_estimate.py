@@ -11,8 +11,8 @@ from __future__ import annotations
 from typing import Any
 
 from worker import estimate
-from worker.costs import TASTE_PROBABILITY_NS
 from worker.document import parse_document
+from worker.horizon_costs import TASTE_PROBABILITY_NS
 
 PERIODS, ASSETS, INCOMES = 60, 100, 5
 
