@@ -19,7 +19,8 @@ from worker.feasibility import ModelData
 from worker.grids import locate
 from worker.problem import Hints
 
-__all__ = ["EDGE_WARNING_SHARE", "SCAN_MAX_PAIRS", "GridDiagnostics", "end_warnings", "real_ends_of"]
+__all__ = ["EDGE_WARNING_SHARE", "SCAN_MAX_PAIRS", "GridDiagnostics", "choice_real_ends_of", "end_warnings",
+           "real_ends_of"]
 
 EDGE_WARNING_SHARE = 0.01
 """Share of points at the lowest or highest point of a choice grid above which the diagnostics warn."""
@@ -36,10 +37,10 @@ def end_warnings(choice: str, grid: np.ndarray, lowest: float, highest: float, s
                  real: tuple[str, ...] = ()) -> list[str]:
     """The warnings about the shares ``lowest`` and ``highest`` of points choosing an end of ``grid``: the
     choice's own grid, or for a choice ``next_of`` a ``state`` that state's grid.  At :data:`EDGE_WARNING_SHARE` or
-    more, unless the state's ``real_ends`` (``real``) lists that end as a real limit of the problem.  Grid and
-    continuous choices alike."""
+    more, unless ``real`` (the state's ``real_ends``, or the choice's own for a grid of its own) lists that end
+    as a real limit of the problem.  Grid and continuous choices alike."""
     grid_of = f"choice `{choice}`" if state is None else f"the grid of state `{state}`"
-    declare = "" if state is None else f"model.states.{state}.real_ends"
+    declare = f"model.choices.{choice}.real_ends" if state is None else f"model.states.{state}.real_ends"
     warnings = []
     if highest >= EDGE_WARNING_SHARE and "max" not in real:
         warnings.append(
@@ -62,6 +63,12 @@ def real_ends_of(doc: Any) -> dict[str, tuple[str, ...]]:
     return {name: tuple(axis.real_ends) for name, axis in states.items()} if isinstance(states, dict) else {}
 
 
+def choice_real_ends_of(doc: Any) -> dict[str, tuple[str, ...]]:
+    """Each choice's own ``real_ends`` (a grid or menu of its own; grid models; empty otherwise)."""
+    choices = getattr(doc.model, "choices", None)
+    return {name: tuple(spec.real_ends) for name, spec in choices.items()} if isinstance(choices, dict) else {}
+
+
 class GridDiagnostics:
     """The ``diagnostics`` of :class:`worker.problem.CompiledProblem` for grid models.
 
@@ -78,6 +85,7 @@ class GridDiagnostics:
     _data: ModelData
     _full: ModelData
     _real_ends: dict[str, tuple[str, ...]]
+    _choice_real_ends: dict[str, tuple[str, ...]]
     _static: tuple[str, ...]
     _kernels: ModuleType | None
     _ctx: tuple[np.ndarray, ...]
@@ -131,7 +139,8 @@ class GridDiagnostics:
             if not self._is_choice_grid(j):
                 continue
             state = self._state_of(j)
-            warnings += end_warnings(name, grid, lowest, highest, state, self._real_ends.get(state or "", ()))
+            real = self._real_ends.get(state, ()) if state is not None else self._choice_real_ends.get(name, ())
+            warnings += end_warnings(name, grid, lowest, highest, state, real)
         result: dict[str, Any] = {
             "reward_storage": self.reward_storage,
             "hints": {"monotone": self.hints.monotone, "concave": self.hints.concave},

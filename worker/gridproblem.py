@@ -23,7 +23,7 @@ import scipy.sparse as sp
 from worker import _codegen, kernels, threadpool
 from worker.estimate import GridPlan
 from worker.feasibility import ModelData
-from worker.griddiagnostics import GridDiagnostics, real_ends_of
+from worker.griddiagnostics import GridDiagnostics, choice_real_ends_of, real_ends_of
 from worker.problem import Hints
 
 __all__ = ["BNB_LEAF", "GridProblem"]
@@ -70,6 +70,7 @@ class GridProblem(GridDiagnostics):
         self._full = full if full is not None else data
         self._static = static
         self._real_ends = real_ends_of(doc)
+        self._choice_real_ends = choice_real_ends_of(doc)
         self._layout = layout
         self._kernels = module
         self._ctx = ctx

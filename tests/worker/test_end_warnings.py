@@ -12,6 +12,9 @@ from __future__ import annotations
 import copy
 from typing import Any
 
+import numpy as np
+import pytest
+
 from tests._documents import grid_document, savings_market
 from worker import solve
 
@@ -70,3 +73,45 @@ def test_a_grid_choice_at_its_borrowing_limit_is_warned_unless_real_ends_lists_m
     quiet = solve(grid_document(declared, hints={"monotone": True, "concave": True}))
     assert quiet["diagnostics"]["edge_hits"] == result["diagnostics"]["edge_hits"]
     assert not any("lowest point" in w for w in _end_warnings(quiet))
+
+
+def _shop(hours: dict[str, Any]) -> dict[str, Any]:
+    """An invented repair shop: stock of spare parts (state), hours of overtime chosen on a grid of their own
+    (no overtime at all is a real corner: a quiet week needs none) and tomorrow's stock."""
+    return grid_document({
+        "states": {"s": {"min": 0.0, "max": 6.0, "points": 25}},
+        "shocks": {"d": {"markov": {"values": [0.5, 2.0], "matrix": [[0.7, 0.3], [0.4, 0.6]]},
+                         "transform": "none"}},
+        "choices": {"s_next": {"next_of": "s"}, "overtime": hours},
+        "define": {"made": "s + overtime - d"},
+        "reward": "-0.5 * overtime**2 - 0.1 * s_next - 3 * max(0 - made, 0)",
+        "feasible": ["s_next <= max(made, 0)"],
+    }, hints={})
+
+
+def test_a_choice_on_its_own_grid_at_a_real_corner_is_silenced_by_its_own_real_ends() -> None:
+    # Before, a choice with a grid of its own (min, max, points) had no way to declare a real limit: every
+    # solve of the shop warned that the best overtime "may lie below" zero hours.
+    hours = {"min": 0.0, "max": 3.0, "points": 13}
+    result = solve(_shop(hours))
+    assert result["diagnostics"]["edge_hits"]["overtime"]["lowest"] >= 0.01
+    (warning,) = [w for w in _end_warnings(result) if "lowest point of `overtime`" in w]
+    assert "smaller min for choice `overtime`" in warning
+    assert 'list "min" in model.choices.overtime.real_ends' in warning
+    quiet = solve(_shop({**hours, "real_ends": ["min"]}))
+    assert quiet["diagnostics"]["edge_hits"] == result["diagnostics"]["edge_hits"]
+    assert not [w for w in _end_warnings(quiet) if "point of `overtime`" in w]
+    np.testing.assert_array_equal(np.array(quiet["value"]), np.array(result["value"]))
+
+
+def test_real_ends_on_a_choice_without_a_grid_of_its_own_is_refused_at_the_field() -> None:
+    from worker.errors import InvalidDocument
+
+    for choice, said in (({"next_of": "s", "real_ends": ["min"]}, "model.states.s.real_ends"),
+                         ({"min": 0.0, "max": 3.0, "continuous": True, "real_ends": ["min"]},
+                          "never warned about its ends")):
+        document = _shop({"min": 0.0, "max": 3.0, "points": 13})
+        document["model"]["choices"]["s_next"] = choice
+        with pytest.raises(InvalidDocument) as refused:
+            solve(document)
+        assert "model.choices.s_next.real_ends" in str(refused.value) and said in str(refused.value)

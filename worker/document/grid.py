@@ -165,6 +165,17 @@ class ChoiceSpec(Part):
         ),
     )
 
+    real_ends: list[Literal["min", "max"]] = Field(
+        default_factory=list,
+        description=(
+            'Ends of the choice\'s own grid (min, max and points, or a menu of values) that are real limits of '
+            'the choice (no fewer than zero hours, a full shift): "min", "max" or both. A policy choosing an '
+            "end at 1% of the points or more is warned about (the best choice may lie beyond the grid) unless "
+            "that end is listed. For a next_of choice list them on the state (model.states.NAME.real_ends); a "
+            "continuous choice between min and max gets no such warning."
+        ),
+    )
+
     _target: GridAxis | None = PrivateAttr(default=None)
 
     @property
@@ -196,6 +207,10 @@ class ChoiceSpec(Part):
 
     @model_validator(mode="after")
     def _check_choice(self) -> ChoiceSpec:
+        if self.real_ends and (self.next_of is not None or self.continuous):
+            where = (f"list them on the state: model.states.{self.next_of}.real_ends" if self.next_of is not None
+                     else "a continuous choice between min and max is never warned about its ends")
+            raise_faults([fault("real_ends", f"this choice has no grid of its own; {where}")])
         if self.continuous:
             raise_faults(continuous_faults(self))
             return self
