@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator
 
+from tests._documents import with_horizon, with_period_slot
 from worker import euler, euler_points, euler_states
 from worker.solve import compile_document, solve
 
@@ -53,8 +54,11 @@ def _document(on_choice: float, on_state: float, k_points: int = 20) -> dict[str
         "interpolation": "monotone_cubic",
         "hints": {"concave": True},
     }
-    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": {"stationary": True, "euler_errors": True}}
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot({"version": 1, "discount": BETA, "model": model,
+                             "solver": {"method": "howard", "tolerance": 1e-10},
+                             "report": {"stationary": True, "euler_errors": True}})
 
 
 def _pchip_ev(value: np.ndarray, z_grid: np.ndarray, k_grid: np.ndarray, j: int, z: np.ndarray,
@@ -167,8 +171,7 @@ def test_a_solved_cubic_choice_against_an_independent_scipy_reading(on_choice: f
 def test_a_cubic_finite_horizon_against_the_independent_scipy_reading() -> None:
     # Period t: today's choice by the search against V_{t+1}, tomorrow's against V_{t+2}; today's worths read
     # V_{t+1}, tomorrow's V_{t+2} (the terminal value 0 for the last period measured).
-    document = _document(0.6, 0.3, 16)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    document = with_horizon(_document(0.6, 0.3, 16), {"periods": 4, "terminal_value": 0.0})
     document["report"] = {"euler_errors": True}
     result, problem = _solved(document)
     errors = result["diagnostics"]["euler_errors"]
@@ -226,8 +229,7 @@ def test_beside_a_discrete_choice_the_cubic_errors_fall_as_the_grid_is_refined()
     assert worst[0] - worst[1] >= 0.4 and worst[1] - worst[2] >= 0.4
     by_period = []
     for k_points in (25, 50):
-        document = _with_effort(_document(0.6, 0.3, k_points))
-        document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+        document = with_horizon(_with_effort(_document(0.6, 0.3, k_points)), {"periods": 4, "terminal_value": 0.0})
         errors = solve(document)["diagnostics"]["euler_errors"]
         assert errors["by_period"]["period"] == [0, 1, 2] and errors["points"] > 0
         by_period.append(errors["max_log10"])
