@@ -385,8 +385,8 @@ def with_period_slot(document: dict[str, Any]) -> dict[str, Any]:
     model and its finite-horizon twin (:func:`with_horizon`) list as many params and, since a param's name is not
     part of the structure (DEVELOPERS.md), compile one set of kernels.  The solve is unchanged.  In place; returned."""
     model = document["model"]
-    assert "horizon" not in model and PERIOD_SLOT not in model["params"]
-    model["params"] = {**model["params"], PERIOD_SLOT: 0.0}
+    assert "horizon" not in model and PERIOD_SLOT not in model.get("params", {})
+    model["params"] = {**model.get("params", {}), PERIOD_SLOT: 0.0}
     return document
 
 
@@ -394,6 +394,10 @@ def with_horizon(document: dict[str, Any], horizon: dict[str, Any]) -> dict[str,
     """``document`` given ``horizon``, without the param :func:`with_period_slot` added (its place is
     ``period``'s).  In place; returned."""
     model = document["model"]
-    model["params"] = {name: value for name, value in model["params"].items() if name != PERIOD_SLOT}
+    params = {name: value for name, value in model.get("params", {}).items() if name != PERIOD_SLOT}
+    if params:
+        model["params"] = params
+    else:
+        model.pop("params", None)
     model["horizon"] = horizon
     return document
