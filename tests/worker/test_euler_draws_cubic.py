@@ -68,9 +68,10 @@ def _pchip_ev(value: np.ndarray, z_grid: np.ndarray, k_grid: np.ndarray, j: int,
     of each V(·, e') (what the solve does not read)."""
     tables = value if mean_of_reads else np.einsum("w,zkw->zk", E_CHAIN[j], value)[:, :, None]
     out = np.zeros(z.size)
+    levels, which = np.unique(z, return_inverse=True)  # each point's line along z read at its own z only
     for w in range(tables.shape[-1]):
         lines = PchipInterpolator(k_grid, tables[:, :, w], axis=1)(k)  # (z nodes, points)
-        read = np.array([PchipInterpolator(z_grid, lines[:, i])(z[i]) for i in range(z.size)])
+        read = PchipInterpolator(z_grid, lines, axis=0)(levels)[which.reshape(-1), np.arange(z.size)]
         out += E_CHAIN[j, w] * read if mean_of_reads else read
     return out
 
