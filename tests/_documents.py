@@ -35,6 +35,9 @@ a test chooses, for the kernel-size limits.
 :func:`aging_saver` is a whole grid document: a household over eight ages saving continuously, by the
 endogenous grid method or the search.
 
+:func:`with_period_slot` and :func:`with_horizon` let an infinite-horizon model and its finite-horizon twin
+share their kernels.
+
 :func:`random_values` gives the value function the kernel tests probe a compiled
 problem with.  Each builder returns a fresh dict, so a test may edit its copy.
 """
@@ -370,3 +373,31 @@ def savings_market(points: int = 40, **model: Any) -> dict[str, Any]:
         "feasible": ["c > 0"],
         **model,
     }
+
+
+PERIOD_SLOT = "period_slot"
+"""The name of the last param :func:`with_period_slot` adds (no expression reads it)."""
+
+
+def with_period_slot(document: dict[str, Any]) -> dict[str, Any]:
+    """An infinite-horizon grid ``document`` with a last param no expression reads (``PERIOD_SLOT``, 0), where a
+    horizon puts ``period``: worker.feasibility.model_data appends ``period`` to a horizon model's params, so the
+    model and its finite-horizon twin (:func:`with_horizon`) list as many params and, since a param's name is not
+    part of the structure (DEVELOPERS.md), compile one set of kernels.  The solve is unchanged.  In place; returned."""
+    model = document["model"]
+    assert "horizon" not in model and PERIOD_SLOT not in model.get("params", {})
+    model["params"] = {**model.get("params", {}), PERIOD_SLOT: 0.0}
+    return document
+
+
+def with_horizon(document: dict[str, Any], horizon: dict[str, Any]) -> dict[str, Any]:
+    """``document`` given ``horizon``, without the param :func:`with_period_slot` added (its place is
+    ``period``'s).  In place; returned."""
+    model = document["model"]
+    params = {name: value for name, value in model.get("params", {}).items() if name != PERIOD_SLOT}
+    if params:
+        model["params"] = params
+    else:
+        model.pop("params", None)
+    model["horizon"] = horizon
+    return document

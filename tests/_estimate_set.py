@@ -26,7 +26,7 @@ from typing import Any
 
 import numpy as np
 
-from tests._documents import GROWTH, array_tabular, grid_document, log_growth, random_replacement
+from tests._documents import GROWTH, array_tabular, grid_document, log_growth, random_replacement, with_period_slot
 from tests._draw_models import fishery, van
 from worker.arrays import encode_array
 
@@ -164,8 +164,9 @@ def two_state_growth_euler(k_points: int = 200, a_points: int = 7) -> dict[str, 
         interpolation="monotone_cubic", hints={"concave": True})
     model["states"] = {"a": {"min": 0.8, "max": 1.25, "points": a_points}, **model["states"]}
     model["choices"]["k_next"]["continuous"] = True
-    return {"version": 1, "discount": 0.95, "model": model, "solver": {"method": "howard", "tolerance": 1e-8},
-            "report": {"euler_errors": True}}
+    # With the period slot, as tests/worker/test_euler_states.py writes this model: one set of kernels for both.
+    return with_period_slot({"version": 1, "discount": 0.95, "model": model,
+                             "solver": {"method": "howard", "tolerance": 1e-8}, "report": {"euler_errors": True}})
 
 
 def saver(points: int, interpolation: str = "monotone_cubic", hinted: bool = True) -> dict[str, Any]:

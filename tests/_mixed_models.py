@@ -18,6 +18,8 @@ from typing import Any
 
 import numpy as np
 
+from tests._documents import with_period_slot
+
 BETA, R, WAGE, DISUTILITY, BASE, A_MAX = 0.9, 0.04, 1.0, 0.4, 0.3, 8.0
 INCOME = np.array([0.6, 1.4])
 CHAIN = np.array([[0.75, 0.25], [0.35, 0.65]])
@@ -41,8 +43,10 @@ def household_document(hints: dict | None = None, **report: Any) -> dict[str, An
     model = copy.deepcopy(HOUSEHOLD)
     if hints is not None:
         model["hints"] = hints
-    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": report}
+    # The slot where a horizon puts ``period``: a finite-horizon household (with_horizon) shares the kernels of the
+    # infinite-horizon one.
+    return with_period_slot({"version": 1, "discount": BETA, "model": model,
+                             "solver": {"method": "howard", "tolerance": 1e-10}, "report": report})
 
 
 def cash(grid: np.ndarray) -> np.ndarray:

@@ -209,18 +209,24 @@ def test_a_pole_inside_the_interval_without_a_constraint_is_not_proven(interpola
     assert np.count_nonzero(problem.proven) >= 0.8 * problem.n
 
 
+KINKED_REWARD = "min(c**(1 - gamma) / (1 - gamma) - tilt * abs(saving - 4), cap)"
+"""A reward with a kink in the choice: the ``abs`` one weighs ``tilt``, the ``min`` one binds below ``cap``.  Each
+case switches the other kink off by its params (``tilt = 0``; a ``cap`` far above the CRRA part, which is negative),
+so that both cases compile one set of kernels."""
 KINKED = {
-    "c**(1 - gamma) / (1 - gamma) - 0.05 * abs(saving - 4)": lambda c, x: _crra(c) - 0.05 * np.abs(x - 4),
-    "min(c**(1 - gamma) / (1 - gamma), -0.6)": lambda c, x: np.minimum(_crra(c), -0.6),
+    "abs": ({"tilt": 0.05, "cap": 1e3}, lambda c, x: _crra(c) - 0.05 * np.abs(x - 4)),
+    "min": ({"tilt": 0.0, "cap": -0.6}, lambda c, x: np.minimum(_crra(c), -0.6)),
 }
-"""Rewards with a kink in the choice (``abs``, ``min``), as written and in numpy."""
+"""Each kink's params, and the reward in numpy (the other kink left out)."""
 
 
-@pytest.mark.parametrize("text", list(KINKED))
-def test_kinked_rewards_use_the_hull_of_both_slopes(text: str) -> None:
+@pytest.mark.parametrize("kink", list(KINKED))
+def test_kinked_rewards_use_the_hull_of_both_slopes(kink: str) -> None:
     """``abs`` and ``min`` (Lebourg's mean value inequality) are proven and agree with the independent check."""
-    numpy_reward = KINKED[text]
-    _, problem = compile_document(_saver(50, text))
+    params, numpy_reward = KINKED[kink]
+    document = _saver(50, KINKED_REWARD)
+    document["model"]["params"].update(params)
+    _, problem = compile_document(document)
     assert problem.bound_proof
     env = problem.state_values()
     cash = 1.02 * env["assets"] + env["income"]
@@ -229,7 +235,7 @@ def test_kinked_rewards_use_the_hull_of_both_slopes(text: str) -> None:
     (on_v, _), (off_v, _), proven = _on_off(problem, v, first)
     # Where the optimum sits on the reward's kink the incumbent is only within Brent's tolerance of it, and
     # the proof fails by about that tolerance times the jump of the slope (the branch and bound answers).
-    assert np.count_nonzero(proven) >= 0.25 * problem.n, (text, np.count_nonzero(proven))
+    assert np.count_nonzero(proven) >= 0.25 * problem.n, (kink, np.count_nonzero(proven))
     best = np.empty(problem.n)
     grid = problem.model_data.state_grids[0]
     choices = np.unique(np.concatenate([np.linspace(grid[0], grid[-1], DENSE), grid]))
@@ -243,7 +249,7 @@ def test_kinked_rewards_use_the_hull_of_both_slopes(text: str) -> None:
     # Where the proof held, no choice is better (the branch and bound's answer elsewhere is Brent's, which
     # stops within its tolerance of a kink of the reward: 1e-9 of the value here).
     held = proven > 0
-    assert np.all(on_v[held] >= best[held] - 1e-11 * size), (text, float((best - on_v)[held].max()))
+    assert np.all(on_v[held] >= best[held] - 1e-11 * size), (kink, float((best - on_v)[held].max()))
     np.testing.assert_allclose(on_v, off_v, rtol=0, atol=1e-12 * size)
 
 

@@ -15,6 +15,7 @@ import numpy as np
 import pytest
 from scipy.optimize import minimize_scalar
 
+from tests._documents import with_horizon
 from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from tests._mixed_models import (
     A_MAX,
@@ -145,8 +146,7 @@ def test_choosing_consumption_between_bounds_gives_the_same_household(household:
 
 def test_a_finite_horizon_is_the_independent_backward_induction(reference: tuple) -> None:
     grid = reference[0]
-    document = household_document({"concave": True})
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    document = with_horizon(household_document({"concave": True}), {"periods": 4, "terminal_value": "log(1 + a)"})
     result = solve(document)
     v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
     expected_v, expected_work = [], []
@@ -274,8 +274,8 @@ def test_euler_errors_through_a_finite_horizon_are_the_independent_ones(referenc
     # against V_{t+2} (the terminal value for the last period), skipped as in the infinite horizon's test
     # above; all from the exact solver here, period by period.
     grid = reference[0]
-    document = household_document({"concave": True}, euler_errors=True)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    document = with_horizon(household_document({"concave": True}, euler_errors=True),
+                            {"periods": 4, "terminal_value": "log(1 + a)"})
     result = solve(document)
     values = [np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)]  # V_4, then V_3, ..., V_0
     for _ in range(4):

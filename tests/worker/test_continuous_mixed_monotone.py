@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 import pytest
 
+from tests._documents import with_horizon
 from tests._mixed_models import INCOME, exact_bellman, exact_fixed_point, household_document
 from worker import environment, threadpool
 from worker.solve import compile_document, solve
@@ -139,8 +140,7 @@ def test_two_threads_give_the_bits_of_one(monkeypatch: pytest.MonkeyPatch) -> No
 
 def test_a_finite_horizon_with_the_hint_is_the_independent_backward_induction(reference: tuple) -> None:
     grid = reference[0]
-    document = household_document({"monotone": True})
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": "log(1 + a)"}
+    document = with_horizon(household_document({"monotone": True}), {"periods": 4, "terminal_value": "log(1 + a)"})
     result = solve(document)
     v = np.repeat(np.log1p(grid)[:, None], INCOME.size, axis=1)
     expected_v, expected_work = [], []

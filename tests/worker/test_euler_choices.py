@@ -24,7 +24,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 
-from tests._documents import grid_document
+from tests._documents import grid_document, with_horizon, with_period_slot
 from tests._euler_checks import assert_each_choice_off_by
 from worker.continuous.setters_euler import setters_errors, setters_setup
 from worker.document import parse_document
@@ -53,7 +53,9 @@ def _document(**model: Any) -> dict[str, Any]:
     document = grid_document({**WORKSHOP, **model}, discount=BETA, method="howard")
     document["solver"]["tolerance"] = 1e-10
     document["report"] = {"stationary": True, "euler_errors": True}
-    return document
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot(document)
 
 
 def _saving(share: float) -> Any:
@@ -173,8 +175,8 @@ def test_a_finite_horizon_against_the_independent_computation() -> None:
     # exact policy of every period is then the infinite horizon's, inside both grids; period t's errors link its
     # grid policies today with period t + 1's tomorrow (the numpy computation above).
     bonus = 1 / (1 - (A1 + A2) * BETA)
-    document = _document()
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": f"{A1 * bonus} * log(k) + {A2 * bonus} * log(h)"}
+    document = with_horizon(_document(), {"periods": 4,
+                                          "terminal_value": f"{A1 * bonus} * log(k) + {A2 * bonus} * log(h)"})
     document["report"] = {"euler_errors": True}
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
@@ -424,7 +426,7 @@ def test_a_finite_horizon_with_a_continuous_choice_beside_a_discrete_next_of_cho
     states = {"k": {"min": 0.06, "max": 0.16, "points": 8}, "h": {"min": 0.02, "max": 0.10, "points": 6}}
     document = _document(states=states, hints={"concave": True}, choices=CONTINUOUS_MACHINES)
     periods = 3
-    document["model"]["horizon"] = {"periods": periods, "terminal_value": "0.5 * log(k) + 0.3 * log(h)"}
+    with_horizon(document, {"periods": periods, "terminal_value": "0.5 * log(k) + 0.3 * log(h)"})
     document["report"] = {"euler_errors": True}
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]

@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 
+from tests._documents import with_horizon, with_period_slot
 from worker import euler, euler_states
 from worker.document import parse_document
 from worker.euler_points import PointsRule
@@ -67,8 +68,11 @@ def _document(k_points: int = 30, *, continuous: bool = False, **model: Any) -> 
         spec["hints"] = {"concave": True}
     for key, value in model.items():
         spec[key] = {**spec[key], **value} if isinstance(value, dict) and key == "params" else value
-    return {"version": 1, "discount": BETA, "model": spec, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": {"stationary": True, "euler_errors": True}}
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot({"version": 1, "discount": BETA, "model": spec,
+                             "solver": {"method": "howard", "tolerance": 1e-10},
+                             "report": {"stationary": True, "euler_errors": True}})
 
 
 def _data(document: dict[str, Any]) -> Any:
@@ -151,8 +155,7 @@ def test_a_grid_choice_against_an_independent_numpy_computation(slope: float) ->
 
 def test_a_finite_horizon_against_the_independent_computation() -> None:
     # Four periods, nothing after the last: each period's errors with its policy today and the next one's.
-    document = _document(30, params={"slope": 0.05})
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    document = with_horizon(_document(30, params={"slope": 0.05}), {"periods": 4, "terminal_value": 0.0})
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2] and errors["constrained"] == 0
@@ -276,8 +279,7 @@ def test_odds_moving_with_the_choice_through_a_horizon_and_with_a_continuous_cho
         result = solve(document)
         worst.append(result["diagnostics"]["euler_errors"]["max_log10"])
     assert worst[0] - worst[1] >= 0.2 and worst[1] - worst[2] >= 0.2
-    document = _moving_document(0.6, 0.3, 30)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    document = with_horizon(_moving_document(0.6, 0.3, 30), {"periods": 4, "terminal_value": 0.0})
     errors = solve(document)["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2] and errors["points"] > 0
 

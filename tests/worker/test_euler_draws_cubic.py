@@ -25,6 +25,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator
 
+from tests._documents import with_horizon, with_period_slot
 from worker import euler, euler_points, euler_states
 from worker.solve import compile_document, solve
 
@@ -53,8 +54,11 @@ def _document(on_choice: float, on_state: float, k_points: int = 20) -> dict[str
         "interpolation": "monotone_cubic",
         "hints": {"concave": True},
     }
-    return {"version": 1, "discount": BETA, "model": model, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": {"stationary": True, "euler_errors": True}}
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot({"version": 1, "discount": BETA, "model": model,
+                             "solver": {"method": "howard", "tolerance": 1e-10},
+                             "report": {"stationary": True, "euler_errors": True}})
 
 
 def _pchip_ev(value: np.ndarray, z_grid: np.ndarray, k_grid: np.ndarray, j: int, z: np.ndarray,
@@ -64,9 +68,10 @@ def _pchip_ev(value: np.ndarray, z_grid: np.ndarray, k_grid: np.ndarray, j: int,
     of each V(·, e') (what the solve does not read)."""
     tables = value if mean_of_reads else np.einsum("w,zkw->zk", E_CHAIN[j], value)[:, :, None]
     out = np.zeros(z.size)
+    levels, which = np.unique(z, return_inverse=True)  # each point's line along z read at its own z only
     for w in range(tables.shape[-1]):
         lines = PchipInterpolator(k_grid, tables[:, :, w], axis=1)(k)  # (z nodes, points)
-        read = np.array([PchipInterpolator(z_grid, lines[:, i])(z[i]) for i in range(z.size)])
+        read = PchipInterpolator(z_grid, lines, axis=0)(levels)[which.reshape(-1), np.arange(z.size)]
         out += E_CHAIN[j, w] * read if mean_of_reads else read
     return out
 
@@ -167,8 +172,7 @@ def test_a_solved_cubic_choice_against_an_independent_scipy_reading(on_choice: f
 def test_a_cubic_finite_horizon_against_the_independent_scipy_reading() -> None:
     # Period t: today's choice by the search against V_{t+1}, tomorrow's against V_{t+2}; today's worths read
     # V_{t+1}, tomorrow's V_{t+2} (the terminal value 0 for the last period measured).
-    document = _document(0.6, 0.3, 16)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    document = with_horizon(_document(0.6, 0.3, 16), {"periods": 4, "terminal_value": 0.0})
     document["report"] = {"euler_errors": True}
     result, problem = _solved(document)
     errors = result["diagnostics"]["euler_errors"]
@@ -226,8 +230,7 @@ def test_beside_a_discrete_choice_the_cubic_errors_fall_as_the_grid_is_refined()
     assert worst[0] - worst[1] >= 0.4 and worst[1] - worst[2] >= 0.4
     by_period = []
     for k_points in (25, 50):
-        document = _with_effort(_document(0.6, 0.3, k_points))
-        document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+        document = with_horizon(_with_effort(_document(0.6, 0.3, k_points)), {"periods": 4, "terminal_value": 0.0})
         errors = solve(document)["diagnostics"]["euler_errors"]
         assert errors["by_period"]["period"] == [0, 1, 2] and errors["points"] > 0
         by_period.append(errors["max_log10"])

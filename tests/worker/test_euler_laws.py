@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import PchipInterpolator, RegularGridInterpolator
 
-from tests._documents import log_growth
+from tests._documents import log_growth, with_horizon, with_period_slot
 from worker import euler, euler_points, euler_states
 from worker.continuous import mixed_euler
 from worker.document import parse_document
@@ -52,8 +52,10 @@ def _document(k_points: int = 30, a_points: int = 5, **model: Any) -> dict[str, 
     spec["states"]["k"]["points"] = k_points
     spec["states"]["a"]["points"] = a_points
     spec.update(model)
-    return {"version": 1, "discount": BETA, "model": spec, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": {"euler_errors": True}}
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot({"version": 1, "discount": BETA, "model": spec,
+                             "solver": {"method": "howard", "tolerance": 1e-10}, "report": {"euler_errors": True}})
 
 
 def _saving(share: float) -> Any:
@@ -181,8 +183,8 @@ def test_a_finite_horizon_against_the_independent_computation() -> None:
     # the infinite horizon's; period t links its grid policy today with period t + 1's tomorrow, and ∂V/∂a'' is
     # the slope of V_{t+2} (the terminal value, read on its grid, for the last period measured).
     b_coefficient = ALPHA_TILDE / (1 - BETA * ALPHA_TILDE)
-    document = _document(24, 4)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"}
+    document = with_horizon(_document(24, 4), {"periods": 4,
+                                               "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"})
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2]
@@ -382,8 +384,8 @@ def test_a_cubic_finite_horizon_against_the_independent_scipy_reading() -> None:
     # Period t: today's choice by the search against V_{t+1}, tomorrow's against V_{t+2}, ∂EV/∂a'' of V_{t+2}
     # (the terminal value B log k + D log a on the grid for the last period measured), as in the linear test above.
     b_coefficient = ALPHA_TILDE / (1 - BETA * ALPHA_TILDE)
-    document = _cubic(_document(16, 4))
-    document["model"]["horizon"] = {"periods": 3, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"}
+    document = with_horizon(_cubic(_document(16, 4)),
+                            {"periods": 3, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"})
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1]
@@ -579,8 +581,8 @@ def test_beside_a_discrete_choice_a_finite_horizon_against_the_independent_compu
     # law in today's k; for the last period measured the terminal value B log k + D log a on the grid) or ∂EV/∂a'
     # of V_{t+1} (the law in the capital chosen), as in the infinite horizon.
     b_coefficient = ALPHA_TILDE / (1 - BETA * ALPHA_TILDE)
-    document = _effort_document(12, 3, "linear", law)
-    document["model"]["horizon"] = {"periods": 3, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"}
+    document = with_horizon(_effort_document(12, 3, "linear", law),
+                            {"periods": 3, "terminal_value": f"{b_coefficient} * log(k) + {D} * log(a)"})
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1]

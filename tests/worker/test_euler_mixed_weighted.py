@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from tests._documents import with_horizon
 from tests._mixed_models import CHAIN, INCOME, exact_fixed_point, household_document, independent_euler_errors
 from worker.solve import solve
 
@@ -55,7 +56,7 @@ def test_the_weighted_mean_beside_a_discrete_choice_is_the_independent_one() -> 
 
 def test_a_finite_horizon_beside_a_discrete_choice_gives_no_weighted_mean() -> None:
     # No stationary distribution in a finite horizon (the schema: infinite horizon only).
-    document = household_document({"concave": True}, euler_errors=True)
-    document["model"]["horizon"] = {"periods": 3, "terminal_value": 0.0}
+    document = with_horizon(household_document({"concave": True}, euler_errors=True),
+                            {"periods": 3, "terminal_value": 0.0})
     errors = solve(document)["diagnostics"]["euler_errors"]
     assert "weighted_mean_log10" not in errors and "_weight" not in errors

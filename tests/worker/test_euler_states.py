@@ -22,7 +22,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 
-from tests._documents import log_growth
+from tests._documents import log_growth, with_horizon, with_period_slot
 from worker import euler, euler_states
 from worker.document import parse_document
 from worker.euler_points import PointsRule, errors_at
@@ -56,8 +56,11 @@ def _document(k_points: int = 30, a_points: int = 5, *, continuous: bool = False
         spec["interpolation"] = interpolation
         spec["hints"] = {"concave": True}
     spec.update(model)
-    return {"version": 1, "discount": BETA, "model": spec, "solver": {"method": "howard", "tolerance": 1e-10},
-            "report": {"stationary": True, "euler_errors": True}}
+    # The slot where a horizon puts ``period``: the finite-horizon tests below (with_horizon) share the kernels of
+    # the infinite-horizon ones (and of tests/_estimate_set.two_state_growth_euler, which carries it too).
+    return with_period_slot({"version": 1, "discount": BETA, "model": spec,
+                             "solver": {"method": "howard", "tolerance": 1e-10},
+                             "report": {"stationary": True, "euler_errors": True}})
 
 
 def _data(document: dict[str, Any]) -> Any:
@@ -157,8 +160,7 @@ def test_a_grid_choice_against_an_independent_numpy_computation() -> None:
 def test_a_finite_horizon_against_the_independent_computation() -> None:
     # Four periods, nothing after the last: period t's errors link its policy today with period t + 1's
     # tomorrow (the numpy computation above, with the two periods' grid policies).
-    document = _document(30, 4)
-    document["model"]["horizon"] = {"periods": 4, "terminal_value": 0.0}
+    document = with_horizon(_document(30, 4), {"periods": 4, "terminal_value": 0.0})
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     by_period = errors["by_period"]
@@ -228,8 +230,8 @@ def test_a_continuous_choice_over_a_finite_horizon_is_measured_with_each_period_
     # grid step (measured −2.46, −2.99, −3.50 at 25, 50, 100 capital points, one run).
     worst = []
     for k_points in (25, 50, 100):
-        document = _document(k_points, 5, continuous=True, interpolation="monotone_cubic")
-        document["model"]["horizon"] = {"periods": 5, "terminal_value": 0.0}
+        document = with_horizon(_document(k_points, 5, continuous=True, interpolation="monotone_cubic"),
+                                {"periods": 5, "terminal_value": 0.0})
         errors = solve(document)["diagnostics"]["euler_errors"]
         assert errors["by_period"]["period"] == [0, 1, 2, 3] and errors["constrained"] == 0
         worst.append(errors["max_log10"])

@@ -27,7 +27,7 @@ import numpy as np
 import pytest
 from scipy.interpolate import RegularGridInterpolator
 
-from tests._documents import grid_document
+from tests._documents import grid_document, with_horizon, with_period_slot
 from tests._euler_checks import assert_each_choice_off_by
 from worker.continuous.mixed_euler import searcher
 from worker.continuous.setters_euler import setters_errors, setters_setup
@@ -65,7 +65,9 @@ def _document(machines: int) -> dict[str, Any]:
     document = grid_document(model, discount=BETA, method="howard")
     document["solver"]["tolerance"] = 1e-10
     document["report"] = {"stationary": True, "euler_errors": True}
-    return document
+    # The slot where a horizon puts ``period``: the finite-horizon test below (with_horizon) shares the kernels of
+    # the infinite-horizon ones.
+    return with_period_slot(document)
 
 
 def test_the_exact_effort_switches_with_the_shock() -> None:
@@ -257,8 +259,7 @@ def test_the_machines_errors_fall_as_their_grid_is_refined() -> None:
 def test_a_finite_horizon_against_the_independent_computation() -> None:
     # Period t's machines: today's choice against V_{t+1}, tomorrow's against V_{t+2} (the terminal value for the
     # last period measured), each by the fitted problem's own search; the effort the search's, as above.
-    document = _document(8)
-    document["model"]["horizon"] = {"periods": 3, "terminal_value": "0.3 * log(k) + 0.2 * log(h)"}
+    document = with_horizon(_document(8), {"periods": 3, "terminal_value": "0.3 * log(k) + 0.2 * log(h)"})
     document["report"] = {"euler_errors": True}
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]

@@ -17,6 +17,7 @@ import numpy as np
 import pytest
 
 from service.checkpoints import decode_checkpoint, encode_checkpoint
+from tests._documents import with_horizon, with_period_slot
 from worker import solve
 from worker.document import parse_document
 from worker.errors import Canceled, InvalidDocument
@@ -288,9 +289,9 @@ def test_a_grid_horizon_approaches_the_infinite_horizon_grid_solution() -> None:
     infinite_document["model"]["reward"] = "where(w > 0, log(w - wn + 0.05), -1e6)"
     infinite_document["model"]["feasible"] = ["wn <= w"]
     infinite_document["solver"] = {"tolerance": 1e-10}
-    infinite = np.array(solve(infinite_document)["value"])
-    document = copy.deepcopy(infinite_document)
-    document["model"]["horizon"] = {"periods": 120}
+    # The slot where a horizon puts ``period``: the two documents share their kernels.
+    infinite = np.array(solve(with_period_slot(infinite_document))["value"])
+    document = with_horizon(copy.deepcopy(infinite_document), {"periods": 120})
     first = np.array(solve(document)["value"][0])
     assert np.abs(first - infinite).max() <= BETA**120 * np.abs(infinite).max() + 1e-8
 
