@@ -41,7 +41,7 @@ from typing import Any
 
 import numpy as np
 
-from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
+from worker.aggregates import Condition, aggregate_values, parse_condition, point_env
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
@@ -432,7 +432,7 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
         if missing:
             raise InvalidDocument.at(where, "cannot be evaluated over the stationary distribution: "
                                      + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
-    values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
+    values = aggregate_values(condition.aggregates, doc, problem, policy, pi, env)
     scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
     residual = float(evaluate(condition.outer, {**scalars, **values}))
     if not np.isfinite(residual):
