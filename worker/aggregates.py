@@ -10,11 +10,13 @@ allowed, and only here:
 ``x`` and ``condition`` are expressions of params, states, shocks, choices and defines, evaluated at every
 point of the grid with the chosen choice there.  With taste shocks the choice at a point is random: an argument
 that uses a choice, or a define that depends on one, is evaluated at every (point, combination of the choices)
-pair, weighted by π(x)·P(c|x) (:func:`worker.taste_moments.pair_env`, the pairs of the stationary report's
-moments); an argument of params, states and shocks alone at the points, which is the same (the probabilities at
-a point sum to 1).  The calls are cut out of the text (Python's own ``ast``,
-then ``ast.unparse``) and replaced by names of their own, so the rest of the condition, and each argument,
-goes through the unchanged :func:`worker.expressions.parse`; no other expression of a document can use them.
+pair, weighted by π(x)·P(c|x) (:func:`worker.search_aggregates.aggregate_values`, over the pairs of the
+stationary report's moments, :func:`worker.taste_moments.pair_env`); an argument of params, states and shocks
+alone at the points, which is the same (the probabilities at a point sum to 1).
+
+The calls are cut out of the text (Python's own ``ast``, then ``ast.unparse``) and replaced by names of their
+own, so the rest of the condition, and each argument, goes through the unchanged
+:func:`worker.expressions.parse`; no other expression of a document can use them.
 """
 
 from __future__ import annotations
@@ -28,8 +30,8 @@ import numpy as np
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import Expression, evaluate, parse
 
-__all__ = ["AGGREGATES", "DISCOUNT", "Aggregate", "Condition", "aggregate_value", "aggregate_values", "define_series",
-           "defines_env", "parse_condition", "point_env", "point_values"]
+__all__ = ["AGGREGATES", "DISCOUNT", "Aggregate", "Condition", "aggregate_value", "define_series", "defines_env",
+           "parse_condition", "point_env", "point_values"]
 
 DISCOUNT = "discount"
 """The name by which a search's unknown or condition means the document's discount factor."""
@@ -138,29 +140,6 @@ def aggregate_value(aggregate: Aggregate, pi: np.ndarray, env: dict[str, Any]) -
     # Rounding may leave the total a hair under 1: q = 1 then still names the largest value.
     at = int(np.searchsorted(cumulative, aggregate.q * cumulative[-1], side="left"))
     return float(values[order][min(at, values.size - 1)])
-
-
-def aggregate_values(aggregates: dict[str, Aggregate], doc: Any, problem: Any, policy: np.ndarray, pi: np.ndarray,
-                     env: dict[str, Any]) -> dict[str, float]:
-    """Each aggregate (placeholder → call) under the stationary distribution ``pi`` of ``policy``; ``env`` is
-    :func:`point_env`'s.  With taste shocks (``problem.taste_scale``) an argument that uses a choice, or a
-    define that depends on one, is taken over the (point, combination) pairs (see the module docstring)."""
-    if getattr(problem, "taste_scale", None) is None:
-        return {key: aggregate_value(aggregate, pi, env) for key, aggregate in aggregates.items()}
-    # The names with one value per point: a define that depends on a choice cannot be evaluated without it.
-    at_points = defines_env(doc, problem.state_values())
-    pairs: tuple[dict[str, Any], np.ndarray] | None = None
-    values: dict[str, float] = {}
-    for key, aggregate in aggregates.items():
-        if aggregate.argument.names <= at_points.keys():
-            values[key] = aggregate_value(aggregate, pi, at_points)
-            continue
-        if pairs is None:
-            from worker.taste_moments import pair_env
-
-            pairs = pair_env(problem, policy, pi, doc)
-        values[key] = aggregate_value(aggregate, pairs[1], pairs[0])
-    return values
 
 
 def point_env(doc: Any, problem: Any, policy: np.ndarray) -> dict[str, Any]:

@@ -6,7 +6,7 @@ those pairs, as a simulation's pooled summary estimates them.  (Taken over the p
 expected choice, the standard deviation left out the spread of the choice within a point, and a define was
 evaluated at the expected choices: a `where(work > 0, wage, benefit)` income counted the wage at every point.)
 A search's aggregates of a choice or a define are taken over the same pairs (:func:`pair_env`, read by
-:func:`worker.aggregates.aggregate_values`).
+:func:`worker.search_aggregates.aggregate_values`).
 """
 
 from __future__ import annotations
@@ -29,7 +29,7 @@ def pair_env(problem: Any, policy: np.ndarray, pi: np.ndarray, doc: Any = None) 
     weights = weights / weights.sum()
     choices = {name: values[combinations] for name, values in problem.combination_values().items()}
     states = {name: np.asarray(values, dtype=np.float64)[points] for name, values in problem.state_values().items()}
-    if doc is None:
+    if getattr(getattr(doc, "model", None), "define", None) is None:  # no doc, or a tabular model's
         return {**states, **choices}, weights
     from worker.aggregates import defines_env
 

@@ -21,10 +21,11 @@ import numpy as np
 import pytest
 from scipy.optimize import brentq
 
-from worker.aggregates import aggregate_values, parse_condition, point_env
+from worker.aggregates import parse_condition, point_env
 from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.report import long_run_distribution
+from worker.search_aggregates import aggregate_values
 from worker.solve import compile_document, solve
 
 BETA, SCALE, TOP = 0.9, 0.5, 4
