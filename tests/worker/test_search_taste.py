@@ -56,14 +56,16 @@ def _document(search: dict[str, Any] | None, **params: float) -> dict[str, Any]:
     return out
 
 
-def plain_dock(effort: float, cost: float) -> dict[str, np.ndarray]:
-    """Independent reference: per (h, was, z) point, the stationary mass ``pi`` and P(work), to 1e-13."""
+def plain_dock(effort: float, cost: float, overtime: bool = False) -> dict[str, np.ndarray]:
+    """Independent reference: per (h, was, z) point, the stationary mass ``pi`` and P(work), to 1e-13.
+    ``overtime``: a worker also picks overtime 0 or 0.5 paying ``extra * z - 0.3 * extra`` when working (at
+    z >= 0.8 always 0.5 when working, 0 when idle: adds ``0.5 z - 0.15`` to work's reward)."""
     h = np.arange(TOP + 1, dtype=float)[:, None, None]
     was = np.arange(2, dtype=float)[None, :, None]
     z = DEMAND[None, None, :]
     shape = (TOP + 1, 2, 2)
     rewards = [np.broadcast_to(BENEFIT - cost * was, shape),
-               np.broadcast_to((1 + 0.25 * h) * z - effort - cost * (1 - was), shape)]
+               np.broadcast_to((1 + 0.25 * h) * z - effort - cost * (1 - was) + overtime * (0.5 * z - 0.15), shape)]
     h_next = [np.maximum(np.arange(TOP + 1) - 1, 0), np.minimum(np.arange(TOP + 1) + 1, TOP)]  # idle, work
     v = np.zeros(shape)
     while True:
@@ -85,9 +87,9 @@ def plain_dock(effort: float, cost: float) -> dict[str, np.ndarray]:
     return {"pi": (pi / pi.sum()).reshape(shape), "work": work}
 
 
-def plain_participation(effort: float, cost: float) -> float:
+def plain_participation(effort: float, cost: float, overtime: bool = False) -> float:
     """mean(work) over (point, choice) pairs: Σ π(x) P(work | x)."""
-    ref = plain_dock(effort, cost)
+    ref = plain_dock(effort, cost, overtime)
     return float((ref["pi"] * ref["work"]).sum())
 
 
@@ -175,6 +177,24 @@ def test_a_search_with_taste_shocks_still_refuses_a_draw_after_the_choice_in_a_c
         parse_document(document)
     assert any(f["path"] == "search.conditions[0]" and "after the choice" in f["message"]
                for f in caught.value.errors), caught.value.errors
+
+
+def test_shocks_on_one_choice_with_another_maximised_exactly_meet_a_mean_of_the_exact_choice() -> None:
+    """Taste shocks on `work` only; overtime is the best given work (0.5 when working, 0 idle), so its mean is
+    half the participation rate."""
+    search = {"unknowns": {"effort": {"min": 0.0, "max": 3.0}}, "conditions": ["mean(extra) - 0.2"],
+              "tolerance": 1e-9}
+    document = _document(search)
+    model = document["model"]
+    model["choices"]["extra"] = {"values": [0, 0.5]}
+    model["reward"] += " + work * extra * z - 0.3 * extra"
+    model["taste_shocks"]["choices"] = ["work"]
+    result = solve(document)
+    assert result["search"]["status"] == "converged", result["diagnostics"]["warnings"]
+    # Reference: scipy.optimize.brentq on the plain-numpy participation with overtime's pay folded in.
+    root = brentq(lambda e: 0.5 * plain_participation(e, 0.3, overtime=True) - 0.2, 0.0, 3.0, xtol=1e-13)
+    assert abs(result["search"]["unknowns"]["effort"] - root) < 1e-7, (result["search"]["unknowns"], root)
+    assert result["stationary"]["means"]["work"] == pytest.approx(0.4, abs=1e-9)
 
 
 PARTICIPATION = {"unknowns": {"effort": {"min": 0.0, "max": 2.0}}, "conditions": ["mean(work) - 0.8"],
