@@ -8,9 +8,15 @@ allowed, and only here:
 * ``mass(condition)``: the probability that ``condition`` holds (is nonzero).
 
 ``x`` and ``condition`` are expressions of params, states, shocks, choices and defines, evaluated at every
-point of the grid with the chosen choice there.  The calls are cut out of the text (Python's own ``ast``,
-then ``ast.unparse``) and replaced by names of their own, so the rest of the condition, and each argument,
-goes through the unchanged :func:`worker.expressions.parse`; no other expression of a document can use them.
+point of the grid with the chosen choice there.  With taste shocks the choice at a point is random: an argument
+that uses a choice, or a define that depends on one, is evaluated at every (point, combination of the choices)
+pair, weighted by π(x)·P(c|x) (:func:`worker.search_aggregates.aggregate_values`, over the pairs of the
+stationary report's moments, :func:`worker.taste_moments.pair_env`); an argument of params, states and shocks
+alone at the points, which is the same (the probabilities at a point sum to 1).
+
+The calls are cut out of the text (Python's own ``ast``, then ``ast.unparse``) and replaced by names of their
+own, so the rest of the condition, and each argument, goes through the unchanged
+:func:`worker.expressions.parse`; no other expression of a document can use them.
 """
 
 from __future__ import annotations

@@ -41,12 +41,13 @@ from typing import Any
 
 import numpy as np
 
-from worker.aggregates import Condition, aggregate_value, parse_condition, point_env
+from worker.aggregates import Condition, parse_condition, point_env
 from worker.document.params import param_expressions
 from worker.document.search import DISCOUNT
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.problem import CompiledProblem
+from worker.search_aggregates import aggregate_values
 from worker.search_outer import NoRoot, estimate_root, find_root
 from worker.search_several import find_common_root
 from worker.search_trials import TrialCheckpoint, TrialModels, trial_distribution
@@ -432,7 +433,7 @@ def _residual(condition: Condition, doc: Any, problem: CompiledProblem, policy: 
         if missing:
             raise InvalidDocument.at(where, "cannot be evaluated over the stationary distribution: "
                                      + ", ".join(f"`{n}`" for n in missing) + " depends on a draw after the choice")
-    values = {key: aggregate_value(aggregate, pi, env) for key, aggregate in condition.aggregates.items()}
+    values = aggregate_values(condition.aggregates, doc, problem, policy, pi, env)
     scalars = {name: value for name, value in env.items() if np.ndim(value) == 0}
     residual = float(evaluate(condition.outer, {**scalars, **values}))
     if not np.isfinite(residual):
@@ -473,8 +474,8 @@ def _not_met_warning(status: str, names: list[str], last: dict[str, Any], spec: 
     else:
         why = ("the condition changes sign across the narrowest bracket without coming that close to zero: it "
                "jumps there (aggregates move in steps when a choice is restricted to a grid; a continuous choice "
-               "makes them move smoothly), or its noise from the inner solves exceeds the tolerance (tighten "
-               "solver.tolerance, or loosen search.tolerance)")
+               "or taste shocks make them move smoothly), or its noise from the inner solves exceeds the tolerance "
+               "(tighten solver.tolerance, or loosen search.tolerance)")
     if status == "not_met" and any(a.kind == "quantile" for c in spec.conditions
                                    for a in parse_condition(c, path="search.conditions").aggregates.values()):
         # A continuous choice does not smooth these: the value at the quantile is one of x's values at the points.

@@ -583,14 +583,6 @@ def test_a_search_out_of_time_says_so() -> None:
     assert any("did NOT meet" in w and "max_iterations" in w for w in result["diagnostics"]["warnings"])
 
 
-def test_a_search_with_taste_shocks_is_refused_for_now() -> None:
-    document = _document(MARKET)
-    document["model"]["choices"] = {"save": {"next_of": "a"}}
-    document["model"]["taste_shocks"] = {"scale": 0.1}
-    faults = _faults(document)
-    assert any(f["path"] == "search" and "taste shocks" in f["message"] for f in faults), faults
-
-
 def test_mass_at_the_top_of_a_short_grid_is_warned_unless_declared_a_real_limit() -> None:
     short = _document(r=0.04)
     short["model"]["states"]["a"] = {"min": 0.0, "max": 1.0, "points": POINTS}

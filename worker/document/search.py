@@ -50,7 +50,9 @@ class SearchSpec(Part):
         description=(
             "Expressions that must equal zero, one per unknown: over params and the aggregates mean(x), sd(x), "
             "quantile(x, q) and mass(condition) of the stationary distribution, where x and condition are "
-            "expressions of params, states, shocks, choices and defines."
+            "expressions of params, states, shocks, choices and defines. With taste shocks the choice is random: "
+            "an x or condition that uses a choice, or a define that depends on one, is taken over (point, choice) "
+            "pairs weighted by the stationary mass times the choice probability."
         )
     )
     tolerance: Annotated[float, Field(gt=0)] = Field(
@@ -68,9 +70,6 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
     if has_horizon:
         return [fault("search", "a search needs an infinite horizon: its conditions use the stationary "
                       "distribution, which a finite horizon does not have")]
-    if model.taste_shocks is not None:
-        return [fault("search", "a search with taste shocks is not supported yet: its aggregates would need the "
-                      "stationary distribution of the random choice, not of one policy")]
     faults: list[Fault] = []
     if DISCOUNT in model.params:
         # A condition's `discount` is the document's discount factor: a param of that name was silently shadowed
