@@ -30,8 +30,29 @@ headers = ["Accept" => "application/json", "Content-Type" => "application/json"]
 isempty(FIXQ_KEY) || push!(headers, "Authorization" => "Bearer $FIXQ_KEY")
 
 # One request: its status and its body as text (no exception on 4xx/5xx).
-call(method, path; body = UInt8[]) =
-    HTTP.request(method, FIXQ_URL * path, headers, body; status_exception = false)
+# A GET rides out a short outage, as the R and Octave clients do: while Redis
+# restarts fixq answers 503, while the API restarts the connection is refused
+# or cut; those (and 502/504 from a proxy) are tried again for up to
+# PATIENCE_S seconds, waiting as Retry-After says (1 s when it says nothing).
+const PATIENCE_S = 120.0
+function call(method, path; body = UInt8[])
+    started = time()
+    while true
+        response = try
+            HTTP.request(method, FIXQ_URL * path, headers, body; status_exception = false, retry = false)
+        catch err
+            # A refused or cut connection (HTTP.jl's ConnectError, RequestError or an IOError); never Ctrl-C.
+            (method == "GET" && !(err isa InterruptException) && time() - started < PATIENCE_S) || rethrow()
+            println("  fixq is unreachable for now ($(typeof(err))); trying again in 1 s")
+            sleep(1)
+            continue
+        end
+        method == "GET" && response.status in (502, 503, 504) && time() - started < PATIENCE_S || return response
+        wait_s = something(tryparse(Float64, HTTP.header(response, "Retry-After", "1")), 1.0)
+        println("  fixq is unreachable for now (HTTP $(response.status)); trying again in $(wait_s) s")
+        sleep(clamp(wait_s, 0.25, 10.0))
+    end
+end
 
 # The JSON answer; on 4xx/5xx, stop with fixq's explanation (RFC 9457 problem details).
 function fixq(method, path; body = UInt8[])

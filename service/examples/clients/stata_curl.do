@@ -70,8 +70,28 @@ if "`state'" != "done" {
 }
 
 * 4. The long table: one row per grid point with assets, income, value, assets_next.
+*    Fetched again, a second apart for up to two minutes, while fixq is briefly
+*    unreachable (Redis or the API restarting: a 503 answer, or no answer at all),
+*    as the R and Octave clients do; the table's first line names its columns.
 tempfile table
-shell `curl' -o "`table'" "`url'/v1/jobs/`job'/result?format=csv"
+local header ""
+forvalues attempt = 1/120 {
+    capture erase "`table'"
+    shell `curl' -o "`table'" "`url'/v1/jobs/`job'/result?format=csv"
+    capture confirm file "`table'"
+    if !_rc {
+        file open fh using "`table'", read text
+        file read fh header
+        file close fh
+        if regexm(`"`macval(header)'"', "^[a-z_][a-z0-9_]*,") continue, break
+    }
+    display "fixq is unreachable for now; trying again in 1 s"
+    sleep 1000
+}
+if !regexm(`"`macval(header)'"', "^[a-z_][a-z0-9_]*,") {
+    display as error `"fixq did not send the table: `macval(header)'"'
+    exit 498
+}
 import delimited using "`table'", clear asdouble varnames(1)
 describe
 list in 1/10
