@@ -8,17 +8,13 @@ from typing import Any
 
 import httpx
 import pytest
-from fastapi import FastAPI
 
-from service import problems
 from service.choice_plots import choice_probability_plot
 from service.problems import Problem
-from service.routers.plots import router as plots_router
-from service.settings import get_settings
 from service.store import JobStore
 from service.task import run_job
 from tests._documents import grid_document, idle_busy_worn
-from tests.service._http import make_client
+from tests.service._plot_app import plots_app
 from worker import solve
 from worker.document import document_hash, parse_document
 from worker.estimate import estimate
@@ -97,17 +93,8 @@ def test_a_result_without_taste_shocks_has_no_picture() -> None:
 
 @pytest.fixture
 def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[httpx.Client]:
-    monkeypatch.setenv("FIXQ_AUTH", "off")
-    get_settings.cache_clear()
-    app = FastAPI()
-    problems.install(app)
-    app.state.settings = get_settings()
-    app.state.redis = store.redis
-    app.state.store = store
-    app.include_router(plots_router)
-    with make_client(app) as client:
+    with plots_app(store, monkeypatch) as (client, _):
         yield client
-    get_settings.cache_clear()
 
 
 def test_the_route_draws_them_and_the_summary_says_so(plot_app: httpx.Client, store: JobStore) -> None:

@@ -7,32 +7,19 @@ from collections.abc import Iterator
 
 import httpx
 import pytest
-from fastapi import FastAPI
 
-from service import problems
-from service.routers.plots import router as plots_router
-from service.settings import get_settings
 from service.store import JobStore
 from service.task import run_job
 from tests._documents import idle_busy_worn
-from tests.service._http import make_client
+from tests.service._plot_app import plots_app
 from worker.document import document_hash, parse_document
 from worker.estimate import estimate
 
 
 @pytest.fixture
 def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[httpx.Client]:
-    monkeypatch.setenv("FIXQ_AUTH", "off")
-    get_settings.cache_clear()
-    app = FastAPI()
-    problems.install(app)
-    app.state.settings = get_settings()
-    app.state.redis = store.redis
-    app.state.store = store
-    app.include_router(plots_router)
-    with make_client(app) as client:
+    with plots_app(store, monkeypatch) as (client, _):
         yield client
-    get_settings.cache_clear()
 
 
 @pytest.mark.parametrize("taste", [False, True])

@@ -19,11 +19,9 @@ from service import plots, problems
 from service.deps import Caller, current_owner
 from service.examples import load_example
 from service.problems import Problem
-from service.routers.plots import router as plots_router
-from service.settings import get_settings
 from service.store import JobStore
 from service.task import run_job
-from tests.service._http import make_client
+from tests.service._plot_app import plots_app
 from worker.document import document_hash, parse_document
 from worker.estimate import estimate
 
@@ -187,17 +185,8 @@ def test_euler_errors_of_two_states_are_drawn_along_the_chosen_one() -> None:
 
 @pytest.fixture
 def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[httpx.Client, FastAPI]]:
-    monkeypatch.setenv("FIXQ_AUTH", "off")
-    get_settings.cache_clear()
-    app = FastAPI()
-    problems.install(app)
-    app.state.settings = get_settings()
-    app.state.redis = store.redis
-    app.state.store = store
-    app.include_router(plots_router)
-    with make_client(app) as client:
-        yield client, app
-    get_settings.cache_clear()
+    with plots_app(store, monkeypatch) as pair:
+        yield pair
 
 
 def submit(store: JobStore, document: dict[str, Any], *, owner: str = "anonymous", solve_now: bool = True) -> str:
