@@ -210,6 +210,21 @@ def test_a_refused_combination_names_its_vary_entry_and_creates_nothing(http: ht
     assert http.get("/v1/sweeps").json()["data"] == []
 
 
+def test_a_varied_horizon_beside_a_stationary_report_is_refused_at_its_vary_entry(
+    http: httpx.Client, store: JobStore
+) -> None:
+    # Before, the combination with a horizon was queued and its result carried only a note that a finite horizon
+    # has no stationary distribution; it is now refused like report.cohort without a horizon.
+    body = {"base": machine_shop(), "vary": {"model.horizon": [None, {"periods": 3}]}}
+    problem = assert_problem(http.post("/v1/sweeps", json=body), 422)
+    faults = {error["path"]: error["message"] for error in problem["errors"]}
+    assert list(faults) == ["base.report.stationary"]  # the base's field, in the combinations with a horizon
+    message = faults["base.report.stationary"]
+    assert message.startswith("a model with a finite horizon") and "report.cohort" in message
+    assert 'in 1 of 2 combinations; first #1: model.horizon={"periods":3}' in message
+    assert store.counts_by_state()["queued"] == 0
+
+
 def test_faults_outside_the_varied_paths_are_named_in_the_base(http: httpx.Client) -> None:
     base = machine_shop()
     base["model"]["transition"][0][0] = [0.5, 0.6, 0.0]

@@ -174,7 +174,7 @@ class ProblemDocument(Part):
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
         faults = (self._discount_faults() + self._method_faults() + self._initial_faults() + self._terminal_faults()
-                  + self._start_faults() + self._cohort_faults() + self._search_faults())
+                  + self._start_faults() + self._cohort_faults() + self._stationary_faults() + self._search_faults())
         raise_faults(faults)
         return self
 
@@ -235,6 +235,15 @@ class ProblemDocument(Part):
         if self.search is None:
             return []
         return search_faults(self.search, self.model, self.model.horizon is not None)
+
+    def _stationary_faults(self) -> list[Fault]:
+        # The mirror of _cohort_faults: a finite horizon has no long-run distribution; refused at the door as a
+        # cohort without a horizon is (before, it was accepted and only a note said so).
+        if not self.report.stationary or self.model.horizon is None:
+            return []
+        return [fault("report.stationary", "a model with a finite horizon (model.horizon) has no stationary "
+                      "distribution: leave report.stationary out, and use report.cohort for the distribution of a "
+                      "cohort in every period")]
 
     def _cohort_faults(self) -> list[Fault]:
         cohort = self.report.cohort

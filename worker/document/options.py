@@ -284,7 +284,7 @@ class ReportSpec(Part):
         default=False,
         description=(
             "Also compute the long-run (stationary) distribution of states and shocks under the optimal policy, with "
-            "means of states and choices."
+            "means of states and choices. Infinite horizon only: with model.horizon it is refused (use report.cohort)."
         ),
     )
     simulation: SimulateSpec | None = Field(
