@@ -21,6 +21,7 @@ from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.continuous.interp_kernels import cubic_values, monotone_slopes
+from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
@@ -146,6 +147,12 @@ def test_policy_iteration_is_refused_with_monotone_cubic() -> None:
     with pytest.raises(InvalidDocument) as info:
         solve(document)
     assert [e["path"] for e in info.value.errors] == ["solver.method"]
+    # At the door (what POST /v1/jobs and /v1/check run): before, only the compile refused it, so the job was
+    # queued and then failed.
+    with pytest.raises(InvalidDocument) as info:
+        parse_document(document)
+    assert [e["path"] for e in info.value.errors] == ["solver.method"]
+    assert "not linear in the value function" in info.value.errors[0]["message"]
 
 
 def _bits(result: dict[str, Any]) -> tuple:
