@@ -105,9 +105,16 @@ def continuous_model_faults(model: Any) -> list[Fault]:
             faults.append(fault("interpolation", f"monotone_cubic interpolation reads 4^(d−1) lines of the grid at "
                                 f"each point, so it takes at most {CUBIC_MAX_STATES} states, and this model has "
                                 f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
-    if continuous and getattr(model, "taste_shocks", None) is not None:
-        faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "
-                            f"`{continuous[0]}` is continuous; give it a grid (points) or a menu (values) instead"))
+    shocks = getattr(model, "taste_shocks", None)
+    if continuous and shocks is not None:
+        # With taste_shocks.choices naming only discrete choices the old words (`a_next` is continuous) read as
+        # if a_next had been listed: the model as a whole is what is not supported.
+        listed = [name for name in (shocks.choices or ()) if name not in continuous]
+        beside = (f"even on {', '.join(f'`{n}`' for n in listed)} alone: a model with a continuous choice has none "
+                  "yet" if listed and shocks.choices and len(listed) == len(shocks.choices) else
+                  "they apply to choices among finitely many values")
+        faults.append(fault("taste_shocks", f"taste shocks are not supported beside the continuous choice "
+                            f"`{continuous[0]}`, {beside}; give it a grid (points) or a menu (values) instead"))
     return faults
 
 
