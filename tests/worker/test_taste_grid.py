@@ -171,7 +171,7 @@ def test_a_continuous_choice_with_taste_shocks_is_refused():
     model["define"]["c"] = "k**0.3 + 0.1 * work - k_next"
     model["taste_shocks"] = {"scale": 0.1, "choices": ["work"]}
     with pytest.raises(InvalidDocument) as caught:
-        parse_document(grid_document(model))
+        solve(grid_document(model))
     error = next(e for e in caught.value.errors if e["path"] == "model.taste_shocks")
     assert "even on `work` alone: a model with a continuous choice has none yet" in error["message"]
 
