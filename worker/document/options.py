@@ -243,7 +243,8 @@ class SimulateSpec(Part):
         default=None,
         description=(
             "Where every path starts. Grid models: an object giving a value for every state and shock, each "
-            "within its grid (a value between grid points starts at the nearest one). Tabular models: a state "
+            "within its grid (a value between grid points starts at the nearest one; with a continuous choice "
+            "the states start at the values given). Tabular models: a state "
             "label or a state index (from 0). Omitted: each path starts from a draw of the long-run distribution "
             "under the optimal policy."
         ),
