@@ -309,3 +309,24 @@ def test_a_narrow_allowed_window_is_found_under_the_concave_hint() -> None:
             assert best <= value[i, j] + result["error_bound"] + 1e-12
             assert best >= value[i, j] - 1e-7
 
+
+
+def test_no_allowed_scanned_point_of_a_continuous_interval_is_told_as_such() -> None:
+    # The same household choosing its saving s from [-2, 25] with a scan of 3 points: the allowed window at the
+    # lowest assets and the low catch ([-1, -0.41]) lies between them. Before, the refusal said "no choice
+    # satisfies", which is false; with 60 points the window holds one and the document solves.
+    model = {
+        "kind": "grid", "params": {"r": 0.03, "w": 3.0, "b": 1.0},
+        "states": {"a": {"min": -2.0, "max": 25.0, "points": 28}},
+        "shocks": {"z": {"markov": {"values": [0.55, 1.45], "matrix": [[0.9, 0.1], [0.1, 0.9]]}}},
+        "choices": {"s": {"min": "-2", "max": "25", "points": 3, "continuous": True}},
+        "define": {"c": "(1 + r) * a + w * z - s"}, "next": {"a": "s"},
+        "reward": "log(c)", "feasible": ["c > 0", "s >= -b"],
+    }  # fmt: skip
+    with pytest.raises(InvalidDocument) as caught:
+        solve({"version": 1, "discount": 0.95, "model": model})
+    message = caught.value.errors[0]["message"]
+    assert message.startswith("at a = -2, z = 0.55 none of the 3 scanned points of `s`'s interval satisfies")
+    assert "raise model.choices.s.points" in message
+    model["choices"]["s"]["points"] = 60
+    assert solve({"version": 1, "discount": 0.95, "model": model})["status"] == "converged"
