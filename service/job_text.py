@@ -14,10 +14,15 @@ __all__ = ["fault_lines", "outcome", "search_answer", "trial_line"]
 
 
 def outcome(record: dict[str, Any]) -> str:
-    """One line: ``done: converged after 14 iterations, error bound 4.19e-07``, ``failed: REASON``, ``canceled``."""
+    """One line: ``done: converged after 14 iterations, error bound 4.19e-07``, ``failed: REASON``, ``canceled``.
+
+    A search's line leads with the search's own status: the record's ``status`` is the last solve's, and alone
+    (``done: converged``) it read as success for a search that did not meet its tolerance (``not_met``)."""
     state = record.get("state")
     if state == "done":
-        text = f"done: {record.get('status') or 'finished'}"
+        search = record.get("search") if isinstance(record.get("search"), dict) else {}
+        point = f"search {search['status']}; its solution at the point returned " if search.get("status") else ""
+        text = f"done: {point}{record.get('status') or 'finished'}"
         if record.get("iterations") is not None:
             text += f" after {record['iterations']} iterations"
         if record.get("error_bound") is not None:

@@ -334,6 +334,8 @@ def euler_plot(
     counts += [f"{errors[key]:,} {key}" for key in ("constrained", "undefined") if errors.get(key)]
     pooled = f"; the worst of every {profile['pooled']} shown" if profile.get("pooled", 1) > 1 else ""
     pooled += f"; the worst over {', '.join(profile['over'])}" if profile.get("over") else ""  # several states
+    periods = (errors.get("by_period") or {}).get("period") or []  # a horizon: the title pools them, a curve is one
+    pooled += f"; curves: period {periods[0]} (of {periods[0]}–{periods[-1]})" if len(periods) > 1 else ""
     ax.set_title("\n".join([*words, ", ".join(counts) + pooled]), fontsize=8.5, color=INK, loc="left", gid="summary")
     ax.set_xlabel(profile.get("state") or layout.states[0])
     ax.set_ylabel(f"log10 Euler-equation error in {errors.get('define', 'c')}")

@@ -329,6 +329,10 @@ def estimate(doc: Any, *, limits: dict[str, Any] | None = None, plan: GridPlan |
     """
     if doc.model.kind == "tabular":
         return _tabular_estimate(doc)
+    if getattr(doc, "search", None) is not None:
+        from worker.search_estimate import search_estimate
+
+        return search_estimate(doc, lambda one: estimate(one, limits=limits, plan=plan))
     if doc.model.continuous_choice() is not None:
         from worker.continuous_estimate import continuous_estimate
 

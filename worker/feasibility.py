@@ -312,6 +312,13 @@ def infeasible(data: ModelData, stuck: np.ndarray, any_feasible: np.ndarray) -> 
                     "-inf, NaN or +inf, so none is allowed",
                 }
             )
+        elif data.span is not None:
+            # A continuous choice given by min and max is scanned at its points only: before, this said "no choice
+            # satisfies" where a window of allowed choices lay between two scanned points.
+            name, points = data.choices[data.span_choice], data.choice_grids[data.span_choice].size
+            errors.append({"path": "model.feasible", "message": f"at {where} none of the {points} scanned points of "
+                           f"`{name}`'s interval satisfies {conditions}; an allowed window between them is missed "
+                           f"(raise model.choices.{name}.points)"})
         else:
             errors.append({"path": "model.feasible", "message": f"at {where} no choice satisfies {conditions}"})
     if stuck.size > _LISTED_STATES:

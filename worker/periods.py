@@ -247,9 +247,6 @@ def horizon_result(doc: Any, problem: CompiledProblem, plan: PeriodPlan, outcome
     if doc.solver.initial not in (None, "zeros"):
         notes.append("the value after the last period is solver.initial's (it replaces model.horizon.terminal_value)")
     report = doc.report
-    if report.stationary:
-        notes.append("no stationary distribution: a model with a finite horizon has none (report.cohort gives the "
-                     "distribution by period)")
     cohort = simulation = None
     if (report.cohort is not None or report.simulation is not None) and outcome.first_period > 0:
         notes.append("no cohort and no simulation: they start in period 0, which the solve did not reach")

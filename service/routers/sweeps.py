@@ -62,6 +62,8 @@ class SweepRow(BaseModel):
     means: dict[str, float] | None = None
     error: dict[str, Any] | None = None
     after: int | None = None
+    search: dict[str, Any] | None = None
+    """A search's summary from the job record (status, unknowns, residuals, trials); null without a search."""
 
 
 class RowPage(BaseModel):
@@ -185,19 +187,26 @@ def cancel(sweep_id: str, owner: Owner, store: StoreDep, response: Response) -> 
 
 def _csv(paths: list[str], rows: list[dict[str, Any]]) -> str:
     """One header, then one line per combination: index, values, job, state, status, iterations,
-    error bound, ``mean.{name}`` for every stationary mean any row reports, and the error."""
+    error bound, ``mean.{name}`` for every stationary mean any row reports, with a search ``search.status`` and
+    ``search.{name}`` for every unknown any row reports, and the error."""
     mean_names = list(dict.fromkeys(name for row in rows for name in (row.get("means") or {})))
+    searched = [row["search"] for row in rows if row.get("search")]
+    unknown_names = list(dict.fromkeys(name for search in searched for name in (search.get("unknowns") or {})))
+    search_header = ["search.status", *(f"search.{name}" for name in unknown_names)] if searched else []
     buffer = io.StringIO()
     writer = csv.writer(buffer, lineterminator="\n")
     writer.writerow([csv_text(name) for name in ["index", *paths, "job", "state", "status", "iterations",
-                     "error_bound", *(f"mean.{name}" for name in mean_names), "error"]])  # fmt: skip
+                     "error_bound", *(f"mean.{name}" for name in mean_names), *search_header, "error"]])  # fmt: skip
     for row in rows:
         means = row.get("means") or {}
+        search = row.get("search") or {}
+        found = [search.get("status") or "", *((search.get("unknowns") or {}).get(n) for n in unknown_names)]
         error = row.get("error") or {}
         writer.writerow([
             row["index"], *(_cell(row["values"][path]) for path in paths), *map(_cell, (row["job"] or "",
             row["state"], row["status"] or "")), _cell(row["iterations"]), _cell(row["error_bound"]),
-            *(_cell(means.get(name)) for name in mean_names), _cell(error.get("detail") or error.get("title") or ""),
+            *(_cell(means.get(name)) for name in mean_names), *(map(_cell, found) if searched else ()),
+            _cell(error.get("detail") or error.get("title") or ""),
         ])  # fmt: skip
     return buffer.getvalue()
 

@@ -199,7 +199,7 @@ def _admit_combinations(
     quota: Quota | None,
 ) -> tuple[dict[int, dict[str, Any]], bool]:  # fmt: skip
     """Admit every combination (raising the refusal of any); the admitted summaries of the first jobs,
-    and whether any asks for the stationary distribution."""
+    and whether any asks for the stationary distribution (report.stationary, or a search)."""
     prepared: dict[int, dict[str, Any]] = {}
     stationary = False
     like: tuple[dict[str, Any], Any] | None = None
@@ -212,7 +212,8 @@ def _admit_combinations(
             continue
         if like is None:
             like = (raw, admitted)
-        stationary = stationary or admitted.document.report.stationary
+        # A search's result always carries the stationary distribution at its point (its conditions use it).
+        stationary = stationary or admitted.document.report.stationary or admitted.document.search is not None
         if quota is not None:
             check_problem_size(quota, admitted.estimate)
         if not faults.seen and (not request.chain or index == 0):

@@ -29,7 +29,8 @@ def sweep_view(sweep: Sweep, *, cursor: int = 0, limit: int | None = 100) -> dic
     every row is done, failed or canceled, else ``active``.  ``rows`` is
     ``{"data": [...], "next": index of the next page or null}``; a row is
     ``{"index", "values", "job", "state", "status", "iterations",
-    "error_bound", "means", "error", "after"}``.
+    "error_bound", "means", "error", "after", "search"}`` (``search``: the job record's summary of a search,
+    else null).
     """
     jobs, states = row_states(sweep)
     total = sweep.record["combinations"]
@@ -85,12 +86,12 @@ def _rows(
     on_page = [i for i in page if i in jobs]
     with store.redis.pipeline(transaction=False) as pipe:
         for index in on_page:
-            pipe.hmget(store.keys.job(jobs[index]), "status", "iterations", "error_bound", "error")
+            pipe.hmget(store.keys.job(jobs[index]), "status", "iterations", "error_bound", "error", "search")
         fields = dict(zip(on_page, pipe.execute()))
     means = _means(sweep, {i: jobs[i] for i in on_page}, states)
     rows = []
     for index in page:
-        status, iterations, error_bound, error = fields.get(index, (None, None, None, None))
+        status, iterations, error_bound, error, search = fields.get(index, (None,) * 5)
         rows.append({
             "index": index,
             "values": plan.values_of(index),
@@ -102,5 +103,6 @@ def _rows(
             "means": means.get(index),
             "error": orjson.loads(error) if error else errors.get(index),
             "after": plan.predecessor(index) if plan.chain else None,
+            "search": orjson.loads(search) if search else None,
         })  # fmt: skip
     return rows

@@ -25,6 +25,12 @@ RECORDS = {
         "search": {"status": "converged", "unknowns": {"r": 0.03293677769544847}, "residuals": [1.0154e-07],
                    "trials": 7},
     },
+    "search_not_met": {
+        "id": JOB, "state": "done", "label": "invented market", "status": "converged", "iterations": 1,
+        "error_bound": 4.44e-08, "progress": {"iteration": 19},
+        "search": {"status": "not_met", "unknowns": {"r": 0.04, "discount": 0.958866}, "residuals": [1.44, -0.0483],
+                   "trials": 19},
+    },
     "search_failed": {
         "id": JOB, "state": "failed", "label": "invented market", "progress": {"iteration": 12},
         "search": {"status": "no_root", "unknowns": {"r": 0.005}, "residuals": [-7.158], "trials": 12},
@@ -64,6 +70,18 @@ def test_status_shows_a_search_answer_from_the_job_record(fixq) -> None:
     code, out, _ = fixq(answering(RECORDS["search_done"]), "status", JOB)
     assert code == 0
     assert "search       converged: r = 0.0329368 (residuals 1.02e-07) after 7 trials" in out.splitlines()
+
+
+def test_a_search_that_missed_its_tolerance_is_not_told_as_converged(fixq, tmp_path: Path) -> None:
+    # Before: "fixq: job ... done: converged after 1 iterations" (the last solve's status) above
+    # "fixq: search not_met: ...", two answers that contradict each other on the first line a script reads.
+    document = tmp_path / "market.json"
+    document.write_text(json.dumps(machine_shop()))
+    _, _, err = fixq(answering(RECORDS["search_not_met"]), "submit", str(document), "--wait")
+    assert (f"fixq: job {JOB} done: search not_met; its solution at the point returned converged after 1 "
+            "iterations, error bound 4.44e-08") in err.splitlines()
+    _, out, _ = fixq(answering(RECORDS["search_not_met"]), "status", JOB)
+    assert any(line.startswith("state        done: search not_met;") for line in out.splitlines())
 
 
 def test_a_failed_job_is_told_in_sentences_with_the_fault_paths(fixq, tmp_path: Path) -> None:

@@ -183,6 +183,19 @@ def test_euler_errors_of_two_states_are_drawn_along_the_chosen_one() -> None:
     assert b"the worst over level" in svg
 
 
+def test_euler_errors_of_a_horizon_say_which_period_the_curves_show() -> None:
+    # Invented: a five-period cake of log growth. The worst and mean in the title pool periods 0–3 while the
+    # profile is period 0's; before, nothing said so, and the curves could stay below the "worst" printed above.
+    from tests._documents import grid_document, log_growth
+    from worker import solve
+
+    document = {**grid_document(log_growth(points=12)), "report": {"euler_errors": True}}
+    document["model"]["horizon"] = {"periods": 5, "terminal_value": 0.0}
+    result = solve(document)
+    assert result["diagnostics"]["euler_errors"]["by_period"]["period"] == [0, 1, 2, 3]
+    assert "curves: period 0 (of 0–3)".encode() in plots.euler_plot(result, layout=plots.axis_layout(result, document))
+
+
 @pytest.fixture
 def plot_app(store: JobStore, monkeypatch: pytest.MonkeyPatch) -> Iterator[tuple[httpx.Client, FastAPI]]:
     with plots_app(store, monkeypatch) as pair:

@@ -26,7 +26,7 @@ from service.settings import Settings, get_settings
 from service.store import JobStore
 from service.sweeps import creation as sweep_creation
 from service.task import run_job
-from tests._documents import GROWTH, LQ, TWO_CHOICES, grid_document
+from tests._documents import GROWTH, LQ, TWO_CHOICES, grid_document, savings_market
 from tests._documents import machine_shop as shared_machine_shop
 from tests.service._http import make_client
 from worker import solve
@@ -199,6 +199,30 @@ def test_rows_are_paginated(http: httpx.Client) -> None:
     assert [row["index"] for row in last["data"]] == [4] and last["next"] is None
 
 
+def test_a_sweep_of_searches_shows_each_row_s_answer_and_means(http: httpx.Client, store: JobStore) -> None:
+    # Before, a row of a search sweep had means null (the sweep kept means only with report.stationary, which a
+    # search's result carries anyway) and no word of what the search found: the interest rate of each row could
+    # be read only from each job.  Invented households (tests/_documents.py) clearing a capital market.
+    base = {"version": 1, "discount": 0.95, "model": savings_market(), "solver": {"tolerance": 1e-9},
+            "search": {"unknowns": {"r": {"min": 0.0, "max": 0.05}}, "conditions": ["mean(a) - capital_demand"],
+                       "tolerance": 1e-6}}
+    response = http.post("/v1/sweeps", json={"base": base, "vary": {"model.params.alpha": [0.33, 0.36]}})
+    assert response.status_code == 202, response.text
+    view = run_all(http, store, response.json()["id"])
+    assert view["counts"]["done"] == 2
+    for row in view["rows"]["data"]:
+        result, record = store.get_result(row["job"]), store.get_job(row["job"])
+        assert row["means"] == result["stationary"]["means"]
+        assert row["search"] == record["search"] and row["search"]["status"] == "converged"
+        assert row["search"]["unknowns"] == result["search"]["unknowns"]
+    table = http.get(f"/v1/sweeps/{response.json()['id']}", params={"format": "csv"}).text
+    lines = list(csv.reader(io.StringIO(table)))
+    assert lines[0][-3:] == ["search.status", "search.r", "error"]
+    found = [float(line[-2]) for line in lines[1:]]
+    assert found == [row["search"]["unknowns"]["r"] for row in view["rows"]["data"]]
+    assert found[0] != found[1]  # a smaller capital share clears at another rate
+
+
 def test_a_refused_combination_names_its_vary_entry_and_creates_nothing(http: httpx.Client, store: JobStore) -> None:
     body = {"base": machine_shop(), "vary": {"discount": [0.9, 1.5], "model.reward[0][1]": [-1.0, -2.0]}}
     problem = assert_problem(http.post("/v1/sweeps", json=body), 422)
@@ -208,6 +232,21 @@ def test_a_refused_combination_names_its_vary_entry_and_creates_nothing(http: ht
     assert "in 2 of 4 combinations; first #2" in faults["vary.discount[1]"]
     assert store.counts_by_state()["queued"] == 0 and store.queue_depths()["normal"] == 0
     assert http.get("/v1/sweeps").json()["data"] == []
+
+
+def test_a_varied_horizon_beside_a_stationary_report_is_refused_at_its_vary_entry(
+    http: httpx.Client, store: JobStore
+) -> None:
+    # Before, the combination with a horizon was queued and its result carried only a note that a finite horizon
+    # has no stationary distribution; it is now refused like report.cohort without a horizon.
+    body = {"base": machine_shop(), "vary": {"model.horizon": [None, {"periods": 3}]}}
+    problem = assert_problem(http.post("/v1/sweeps", json=body), 422)
+    faults = {error["path"]: error["message"] for error in problem["errors"]}
+    assert list(faults) == ["base.report.stationary"]  # the base's field, in the combinations with a horizon
+    message = faults["base.report.stationary"]
+    assert message.startswith("a model with a finite horizon") and "report.cohort" in message
+    assert 'in 1 of 2 combinations; first #1: model.horizon={"periods":3}' in message
+    assert store.counts_by_state()["queued"] == 0
 
 
 def test_faults_outside_the_varied_paths_are_named_in_the_base(http: httpx.Client) -> None:

@@ -21,6 +21,7 @@ from tests._memory_checkpoint import Crash, MemoryCheckpoint
 from tests._thread_spy import spy_run_blocks
 from worker import environment, threadpool
 from worker.continuous.interp_kernels import cubic_values, monotone_slopes
+from worker.document import parse_document
 from worker.errors import InvalidDocument
 from worker.solve import compile_document, solve
 from worker.solvers import METHODS
@@ -146,6 +147,12 @@ def test_policy_iteration_is_refused_with_monotone_cubic() -> None:
     with pytest.raises(InvalidDocument) as info:
         solve(document)
     assert [e["path"] for e in info.value.errors] == ["solver.method"]
+    # At the door (what POST /v1/jobs and /v1/check run): before, only the compile refused it, so the job was
+    # queued and then failed.
+    with pytest.raises(InvalidDocument) as info:
+        parse_document(document)
+    assert [e["path"] for e in info.value.errors] == ["solver.method"]
+    assert "not linear in the value function" in info.value.errors[0]["message"]
 
 
 def _bits(result: dict[str, Any]) -> tuple:
@@ -267,3 +274,59 @@ def test_a_cap_on_tomorrows_capital_binds_to_rounding(interpolation: str) -> Non
     gap = step - v
     assert (np.abs(np.array(result["policy"]["k_next"]) - 0.05 - 0.5 * k[:, None]) < 1e-12).sum() > 10
     assert (gap + BETA / (1 - BETA) * gap.min()).max() <= result["error_bound"]
+
+
+def test_a_narrow_allowed_window_is_found_under_the_concave_hint() -> None:
+    # Invented: a fishing household that may borrow down to b = 1 on an asset grid from -2. At the lowest assets
+    # and the low catch only choices in about [-1, -0.41] are allowed, narrower than the spacing (3.4) of the
+    # concave hint's 9-point scan of [-2, 25]. Before, that scan found no allowed value and the solve failed
+    # ("the Bellman step is not finite at 2 states ... for every allowed choice there"), while the same document
+    # without the hint solved; now the scan of an unhinted search follows where the coarse one found nothing.
+    beta, rate, wage, limit = 0.95, 0.03, 3.0, 1.0
+    catch, chain = np.array([0.55, 1.45]), np.array([[0.9, 0.1], [0.1, 0.9]])
+    model = {
+        "kind": "grid", "params": {"r": rate, "w": wage, "b": limit},
+        "states": {"a": {"min": -2.0, "max": 25.0, "points": 28}},
+        "shocks": {"z": {"markov": {"values": catch.tolist(), "matrix": chain.tolist()}}},
+        "choices": {"a_next": {"next_of": "a", "continuous": True}},
+        "define": {"c": "(1 + r) * a + w * z - a_next"},
+        "reward": "log(c)", "feasible": ["c > 0", "a_next >= -b"], "hints": {"concave": True},
+    }  # fmt: skip
+    result = solve({"version": 1, "discount": beta, "model": model, "solver": {"tolerance": 1e-9}})
+    assert result["status"] == "converged"
+    # An independent Bellman step of the fitted problem (linear interpolation, as fixq reads it) on a fine grid
+    # of each point's allowed window and its grid points: no choice beats the value by more than the bound, and
+    # the best comes within the fine grid's reach of it (common practice: 20,001 choices per point).
+    grid, value = np.array(result["axes"]["a"]), np.array(result["value"])
+    expected = value @ chain.T
+    for i, a in enumerate(grid):
+        for j, z in enumerate(catch):
+            cash = (1 + rate) * a + wage * z
+            top = min(grid[-1], cash)
+            choices = np.linspace(-limit, top, 20_001)[:-1]  # with the grid points, where the objective bends
+            choices = np.concatenate([choices, grid[(grid >= -limit) & (grid < top)]])
+            best = np.max(np.log(cash - choices) + beta * np.interp(choices, grid, expected[:, j]))
+            assert best <= value[i, j] + result["error_bound"] + 1e-12
+            assert best >= value[i, j] - 1e-7
+
+
+
+def test_no_allowed_scanned_point_of_a_continuous_interval_is_told_as_such() -> None:
+    # The same household choosing its saving s from [-2, 25] with a scan of 3 points: the allowed window at the
+    # lowest assets and the low catch ([-1, -0.41]) lies between them. Before, the refusal said "no choice
+    # satisfies", which is false; with 60 points the window holds one and the document solves.
+    model = {
+        "kind": "grid", "params": {"r": 0.03, "w": 3.0, "b": 1.0},
+        "states": {"a": {"min": -2.0, "max": 25.0, "points": 28}},
+        "shocks": {"z": {"markov": {"values": [0.55, 1.45], "matrix": [[0.9, 0.1], [0.1, 0.9]]}}},
+        "choices": {"s": {"min": "-2", "max": "25", "points": 3, "continuous": True}},
+        "define": {"c": "(1 + r) * a + w * z - s"}, "next": {"a": "s"},
+        "reward": "log(c)", "feasible": ["c > 0", "s >= -b"],
+    }  # fmt: skip
+    with pytest.raises(InvalidDocument) as caught:
+        solve({"version": 1, "discount": 0.95, "model": model})
+    message = caught.value.errors[0]["message"]
+    assert message.startswith("at a = -2, z = 0.55 none of the 3 scanned points of `s`'s interval satisfies")
+    assert "raise model.choices.s.points" in message
+    model["choices"]["s"]["points"] = 60
+    assert solve({"version": 1, "discount": 0.95, "model": model})["status"] == "converged"

@@ -392,6 +392,17 @@ def test_cohort_and_simulation_faults_name_their_field() -> None:
     assert "finite horizon" in bad(infinite)["report.cohort"]
 
 
+def test_stationary_with_a_horizon_is_refused_like_a_cohort_without_one() -> None:
+    # Before, report.stationary with model.horizon was accepted and the result carried only a note, while
+    # report.cohort without a horizon was refused: the two now agree, each refused at its own field.
+    document = life_cycle()
+    document["report"] = {"stationary": True}
+    message = bad(document)["report.stationary"]
+    assert "no stationary distribution" in message and "report.cohort" in message
+    document["report"] = {"stationary": True, "cohort": {"start": {"a": 0.0, "y": 1.0}}}
+    assert set(bad(document)) == {"report.stationary"}
+
+
 def test_cake_eating_with_a_continuous_choice_follows_the_textbook_rule() -> None:
     periods, extra = 6, 3
     # The terminal value is the closed-form value with `extra` periods left, so the rule of a

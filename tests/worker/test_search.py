@@ -330,6 +330,16 @@ def test_an_unknown_given_as_an_expression_is_refused() -> None:
     with pytest.raises(InvalidDocument) as caught:
         solve(_document(search))
     assert caught.value.errors[0]["path"] == "search.unknowns.w"
+    # At the door (what POST /v1/jobs and /v1/check run): before, only the search refused it, so the job was
+    # queued and then failed; with another fault, both are listed.
+    with pytest.raises(InvalidDocument) as caught:
+        parse_document(_document(search))
+    assert [e["path"] for e in caught.value.errors] == ["search.unknowns.w"]
+    document = _document(search)
+    document["discount"] = 1.5
+    with pytest.raises(InvalidDocument) as caught:
+        parse_document(document)
+    assert {e["path"] for e in caught.value.errors} == {"search.unknowns.w", "discount"}
 
 
 def test_a_large_chain_is_settled_by_preconditioned_gmres_to_the_direct_answer(monkeypatch: pytest.MonkeyPatch) -> None:

@@ -165,6 +165,15 @@ def test_a_continuous_choice_with_taste_shocks_is_refused():
         solve(grid_document(model))
     error = next(e for e in caught.value.errors if e["path"] == "model.taste_shocks")
     assert "continuous" in error["message"]
+    # Shocks listed on a discrete choice beside it are refused too, and the words say it is the model: before,
+    # "`k_next` is continuous" read as if k_next had been listed.
+    model["choices"]["work"] = {"values": [0.0, 1.0]}
+    model["define"]["c"] = "k**0.3 + 0.1 * work - k_next"
+    model["taste_shocks"] = {"scale": 0.1, "choices": ["work"]}
+    with pytest.raises(InvalidDocument) as caught:
+        solve(grid_document(model))
+    error = next(e for e in caught.value.errors if e["path"] == "model.taste_shocks")
+    assert "even on `work` alone: a model with a continuous choice has none yet" in error["message"]
 
 
 @pytest.mark.parametrize("threads", [1, 2])

@@ -28,6 +28,7 @@ from worker.continuous.drawnodes import check_at_scan
 from worker.continuous.egm import conditions
 from worker.continuous.problem import ContinuousProblem
 from worker.continuous.source import BOUND_HIGH, BOUND_LOW, module_text
+from worker.document.continuous_faults import POLICY_ITERATION_CUBIC
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import evaluate
 from worker.feasibility import ModelData, feasibility_scan, model_data
@@ -46,12 +47,7 @@ def compile_continuous(doc: Any) -> ContinuousProblem:
     started = time.perf_counter()
     cubic = doc.model.interpolation == "monotone_cubic"
     if cubic and doc.solver.method == "policy_iteration":
-        raise InvalidDocument.at(
-            "solver.method",
-            "policy_iteration solves a linear system for each policy's value, and with monotone_cubic "
-            "interpolation that value is not linear in the value function; use howard or value_iteration, or "
-            "linear interpolation",
-        )
+        raise InvalidDocument.at("solver.method", POLICY_ITERATION_CUBIC)  # refused at the door too
     data = model_data(doc)
     egm = None
     if doc.solver.method == "endogenous_grid":

@@ -33,7 +33,9 @@ Then:
   unrestricted step, as before;
 * ``concave`` without a guess: a coarse scan of ``COARSE_POINTS`` evenly
   spread points (ends included, so a corner is found), and Brent's method
-  between the best one's neighbours;
+  between the best one's neighbours; where none of them is allowed (a window
+  of allowed choices narrower than the scan's spacing), the scan of a search
+  without ``concave`` below follows;
 * no ``concave`` hint: a scan — of the state's grid points inside the
   interval for a ``next_of`` choice (every one up to ``GRID_SCAN_MAX`` of
   them, so the answer is then never worse than the grid-restricted
@@ -249,46 +251,52 @@ elif width > 0.0:
                 a2 = xa
                 f2 = fa
     if not found:
-        use_grid = grid_size > 0 and not concave
-        count = {COARSE_POINTS} if concave else scan_n
-        k0 = 0
-        stride = 1
-        if use_grid:
-            k0, w0, c0 = locate_one(sgrid, grid_off, grid_size, lo_b)
-            k0 += 1
-            k1, w1, c1 = locate_one(sgrid, grid_off, grid_size, hi_b)
-            if sgrid[grid_off + k1] >= hi_b:
-                k1 -= 1
-            inside = k1 - k0 + 1
-            if inside < 0:
-                inside = 0
-            stride = (inside + {GRID_SCAN_MAX} - 1) // {GRID_SCAN_MAX}
-            if stride < 1:
-                stride = 1
-            count = 2 + (inside + stride - 1) // stride
-        last = lo_b
-        wanted = False
-        for k in range(count):
-            if k == 0:
-                xk = lo_b
-            elif k == count - 1:
-                xk = hi_b
-            elif use_grid:
-                xk = sgrid[grid_off + k0 + (k - 1) * stride]
-            else:
-                xk = lo_b + width * (k / (count - 1.0))
-            if wanted:
-                a2 = xk
-                wanted = False
-            fk, rk, _xk = f(xk)
-            if fk > f1:
-                x1 = xk
-                f1 = fk
-                r1 = rk
-                a0 = last
-                a2 = xk
-                wanted = True
-            last = xk
+        # concave: the coarse scan, and where it found no allowed value (an allowed window narrower than its
+        # spacing) the scan of an unhinted search; before, such a point counted as having no allowed choice.
+        for scan_pass in range(2 if concave else 1):
+            if scan_pass == 1 and f1 > -np.inf:
+                break
+            coarse = concave and scan_pass == 0
+            use_grid = grid_size > 0 and not coarse
+            count = {COARSE_POINTS} if coarse else scan_n
+            k0 = 0
+            stride = 1
+            if use_grid:
+                k0, w0, c0 = locate_one(sgrid, grid_off, grid_size, lo_b)
+                k0 += 1
+                k1, w1, c1 = locate_one(sgrid, grid_off, grid_size, hi_b)
+                if sgrid[grid_off + k1] >= hi_b:
+                    k1 -= 1
+                inside = k1 - k0 + 1
+                if inside < 0:
+                    inside = 0
+                stride = (inside + {GRID_SCAN_MAX} - 1) // {GRID_SCAN_MAX}
+                if stride < 1:
+                    stride = 1
+                count = 2 + (inside + stride - 1) // stride
+            last = lo_b
+            wanted = False
+            for k in range(count):
+                if k == 0:
+                    xk = lo_b
+                elif k == count - 1:
+                    xk = hi_b
+                elif use_grid:
+                    xk = sgrid[grid_off + k0 + (k - 1) * stride]
+                else:
+                    xk = lo_b + width * (k / (count - 1.0))
+                if wanted:
+                    a2 = xk
+                    wanted = False
+                fk, rk, _xk = f(xk)
+                if fk > f1:
+                    x1 = xk
+                    f1 = fk
+                    r1 = rk
+                    a0 = last
+                    a2 = xk
+                    wanted = True
+                last = xk
     if f1 > -np.inf:
         a = a0
         b = a2

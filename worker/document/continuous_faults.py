@@ -13,12 +13,28 @@ from worker import expressions
 from worker.document._faults import Fault, fault, number
 from worker.errors import InvalidDocument, join_path
 
-__all__ = ["CUBIC_MAX_STATES", "continuous_faults", "continuous_model_faults", "endogenous_grid_faults"]
+__all__ = ["CUBIC_MAX_STATES", "POLICY_ITERATION_CUBIC", "continuous_faults", "continuous_model_faults",
+           "endogenous_grid_faults", "policy_iteration_faults"]
 
 CUBIC_MAX_STATES = 3
 """Most state variables of a model with monotone_cubic interpolation (count): its tensor product reads
 4^(d−1) lines of the grid per evaluation, 16 at three states (common practice: the cost grows fourfold with
 each state)."""
+
+POLICY_ITERATION_CUBIC = (
+    "policy_iteration solves a linear system for each policy's value, and with monotone_cubic interpolation that "
+    "value is not linear in the value function; use howard or value_iteration, or linear interpolation"
+)
+"""Why ``solver.method`` policy_iteration is refused beside a continuous choice read by monotone cubics."""
+
+
+def policy_iteration_faults(model: Any) -> list[Fault]:
+    """``solver.method`` policy_iteration with a continuous choice and monotone_cubic interpolation, refused at
+    the door (before, only the compile refused it, so the job was queued and then failed)."""
+    cubic = getattr(model, "interpolation", None) == "monotone_cubic"
+    if model.kind != "grid" or not cubic or model.continuous_choice() is None:
+        return []
+    return [fault("solver.method", POLICY_ITERATION_CUBIC)]
 
 
 def continuous_faults(choice: Any) -> list[Fault]:
@@ -89,9 +105,16 @@ def continuous_model_faults(model: Any) -> list[Fault]:
             faults.append(fault("interpolation", f"monotone_cubic interpolation reads 4^(d−1) lines of the grid at "
                                 f"each point, so it takes at most {CUBIC_MAX_STATES} states, and this model has "
                                 f"{len(model.states)}; use \"linear\" (multilinear on the product grid)"))
-    if continuous and getattr(model, "taste_shocks", None) is not None:
-        faults.append(fault("taste_shocks", f"taste shocks apply to choices among finitely many values, and "
-                            f"`{continuous[0]}` is continuous; give it a grid (points) or a menu (values) instead"))
+    shocks = getattr(model, "taste_shocks", None)
+    if continuous and shocks is not None:
+        # With taste_shocks.choices naming only discrete choices the old words (`a_next` is continuous) read as
+        # if a_next had been listed: the model as a whole is what is not supported.
+        listed = [name for name in (shocks.choices or ()) if name not in continuous]
+        beside = (f"even on {', '.join(f'`{n}`' for n in listed)} alone: a model with a continuous choice has none "
+                  "yet" if listed and shocks.choices and len(listed) == len(shocks.choices) else
+                  "they apply to choices among finitely many values")
+        faults.append(fault("taste_shocks", f"taste shocks are not supported beside the continuous choice "
+                            f"`{continuous[0]}`, {beside}; give it a grid (points) or a menu (values) instead"))
     return faults
 
 

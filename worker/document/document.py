@@ -40,7 +40,7 @@ from worker.document._faults import (
 )
 from worker.document._fields import Integer, Part, SchemaExtra, check, one_as_list
 from worker.document._translate import translate
-from worker.document.continuous_faults import endogenous_grid_faults
+from worker.document.continuous_faults import endogenous_grid_faults, policy_iteration_faults
 from worker.document.grid import GridModel
 from worker.document.limits import (
     DOCUMENT_VERSION,
@@ -53,7 +53,7 @@ from worker.document.limits import (
 )
 from worker.document.options import InitialValues, NotifySpec, ReportSpec, SolverSpec
 from worker.document.params import resolve_params
-from worker.document.search import SearchSpec, search_faults
+from worker.document.search import SearchSpec, search_faults, unknown_expression_faults
 from worker.document.tabular import TabularModel
 from worker.document.tags import TAG_RULE, TagText
 from worker.document.unknown_keys import hidden_faults
@@ -174,7 +174,7 @@ class ProblemDocument(Part):
     @model_validator(mode="after")
     def _check_document(self) -> ProblemDocument:
         faults = (self._discount_faults() + self._method_faults() + self._initial_faults() + self._terminal_faults()
-                  + self._start_faults() + self._cohort_faults() + self._search_faults())
+                  + self._start_faults() + self._cohort_faults() + self._stationary_faults() + self._search_faults())
         raise_faults(faults)
         return self
 
@@ -186,6 +186,8 @@ class ProblemDocument(Part):
     def _method_faults(self) -> list[Fault]:
         if self.solver.method == "endogenous_grid":
             return endogenous_grid_faults(self.model)
+        if self.solver.method == "policy_iteration":
+            return policy_iteration_faults(self.model)
         if self.solver.method != "backward_induction" or self.model.horizon is not None:
             return []
         return [fault("solver.method", "backward induction solves a model with a finite horizon: give model.horizon, "
@@ -236,6 +238,15 @@ class ProblemDocument(Part):
             return []
         return search_faults(self.search, self.model, self.model.horizon is not None)
 
+    def _stationary_faults(self) -> list[Fault]:
+        # The mirror of _cohort_faults: a finite horizon has no long-run distribution; refused at the door as a
+        # cohort without a horizon is (before, it was accepted and only a note said so).
+        if not self.report.stationary or self.model.horizon is None:
+            return []
+        return [fault("report.stationary", "a model with a finite horizon (model.horizon) has no stationary "
+                      "distribution: leave report.stationary out, and use report.cohort for the distribution of a "
+                      "cohort in every period")]
+
     def _cohort_faults(self) -> list[Fault]:
         cohort = self.report.cohort
         if cohort is None:
@@ -278,13 +289,18 @@ def parse_document(raw: Any) -> ProblemDocument:
     hostile = structure_fault(raw, max_depth=MAX_DEPTH, max_keys=MAX_KEYS)
     if hostile is not None:
         raise InvalidDocument([hostile])
+    expressions = unknown_expression_faults(raw)
     raw = resolve_params(raw)
     try:
-        return _validate(raw)
+        document = _validate(raw)
     except ValidationError as exc:
         errors = exc.errors(include_url=False)
+    else:
+        if expressions:
+            raise exception_for(expressions, MAX_REPORTED, unlisted=0)
+        return document
     # Only the listed errors are translated: a document with a million unknown keys costs no more.
-    faults = translate(errors[:MAX_REPORTED], ProblemDocument)
+    faults = expressions + translate(errors[:MAX_REPORTED], ProblemDocument)
     if len(errors) < MAX_REPORTED:  # what the unknown keys kept from being checked, listed with them
         faults += hidden_faults(raw, errors, ProblemDocument, _validate, MAX_REPORTED)
         faults += value_hidden_faults(raw, errors)  # what a bad value inside the grid model kept from being checked

@@ -243,7 +243,8 @@ class SimulateSpec(Part):
         default=None,
         description=(
             "Where every path starts. Grid models: an object giving a value for every state and shock, each "
-            "within its grid (a value between grid points starts at the nearest one). Tabular models: a state "
+            "within its grid (a value between grid points starts at the nearest one; with a continuous choice "
+            "the states start at the values given). Tabular models: a state "
             "label or a state index (from 0). Omitted: each path starts from a draw of the long-run distribution "
             "under the optimal policy."
         ),
@@ -284,7 +285,7 @@ class ReportSpec(Part):
         default=False,
         description=(
             "Also compute the long-run (stationary) distribution of states and shocks under the optimal policy, with "
-            "means of states and choices."
+            "means of states and choices. Infinite horizon only: with model.horizon it is refused (use report.cohort)."
         ),
     )
     simulation: SimulateSpec | None = Field(

@@ -14,10 +14,11 @@ from pydantic import Field, model_validator
 from worker.aggregates import DISCOUNT, parse_condition
 from worker.document._faults import Fault, fault, number, raise_faults
 from worker.document._fields import Expression, Integer, Name, Part
+from worker.document.params import param_expressions
 from worker.errors import InvalidDocument, join_path
 from worker.expressions import parse
 
-__all__ = ["DISCOUNT", "MAX_TRIALS", "Bracket", "SearchSpec", "search_faults"]
+__all__ = ["DISCOUNT", "MAX_TRIALS", "Bracket", "SearchSpec", "search_faults", "unknown_expression_faults"]
 
 MAX_TRIALS = 500
 """Most solves one search may make."""
@@ -88,6 +89,7 @@ def search_faults(search: SearchSpec, model: Any, has_horizon: bool) -> list[Fau
             faults.append(fault(where, f"`{name}` is not a param of the model (nor \"discount\")"))
         elif isinstance(model.params[name], list):
             faults.append(fault(where, f"`{name}` has one value per period; an unknown is one number"))
+
     params = [*model.params, DISCOUNT]
     at_points = [*model.params, *model.states, *(n for n, s in model.shocks.items() if not s.after_choice),
                  *model.choices, *model.define]
@@ -137,3 +139,16 @@ def _drawn_after_choice(model: Any) -> set[str]:
                 late.add(name)
                 grown = True
     return late
+
+
+def unknown_expression_faults(raw: Any) -> list[Fault]:
+    """Unknowns of a raw document's search that name a param given as an expression (the params are resolved to
+    numbers before validation, so this reads the raw document).  Refused at the door; before, only the search
+    refused them, so the job was queued and then failed."""
+    search = raw.get("search") if isinstance(raw, dict) else None
+    unknowns = search.get("unknowns") if isinstance(search, dict) else None
+    if not isinstance(unknowns, dict):
+        return []
+    texts = param_expressions(raw)
+    return [fault(join_path("search.unknowns", name), f"`{name}` is given as an expression; an unknown is a "
+                  "param given as a number") for name in unknowns if name in texts]
