@@ -392,7 +392,9 @@ def with_period_slot(document: dict[str, Any]) -> dict[str, Any]:
 
 def with_horizon(document: dict[str, Any], horizon: dict[str, Any]) -> dict[str, Any]:
     """``document`` given ``horizon``, without the param :func:`with_period_slot` added (its place is
-    ``period``'s).  In place; returned."""
+    ``period``'s) and without ``report.stationary`` (refused with a horizon, which has no stationary
+    distribution).  In place; returned."""
+    document.get("report", {}).pop("stationary", None)
     model = document["model"]
     params = {name: value for name, value in model.get("params", {}).items() if name != PERIOD_SLOT}
     if params:

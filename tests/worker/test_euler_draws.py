@@ -156,7 +156,6 @@ def test_a_grid_choice_against_an_independent_numpy_computation(slope: float) ->
 def test_a_finite_horizon_against_the_independent_computation() -> None:
     # Four periods, nothing after the last: each period's errors with its policy today and the next one's.
     document = with_horizon(_document(30, params={"slope": 0.05}), {"periods": 4, "terminal_value": 0.0})
-    del document["report"]["stationary"]  # a finite horizon has none (refused)
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     assert errors["by_period"]["period"] == [0, 1, 2] and errors["constrained"] == 0

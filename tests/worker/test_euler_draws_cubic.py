@@ -231,7 +231,6 @@ def test_beside_a_discrete_choice_the_cubic_errors_fall_as_the_grid_is_refined()
     by_period = []
     for k_points in (25, 50):
         document = with_horizon(_with_effort(_document(0.6, 0.3, k_points)), {"periods": 4, "terminal_value": 0.0})
-        del document["report"]["stationary"]  # a finite horizon has none (refused)
         errors = solve(document)["diagnostics"]["euler_errors"]
         assert errors["by_period"]["period"] == [0, 1, 2] and errors["points"] > 0
         by_period.append(errors["max_log10"])

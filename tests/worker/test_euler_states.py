@@ -161,7 +161,6 @@ def test_a_finite_horizon_against_the_independent_computation() -> None:
     # Four periods, nothing after the last: period t's errors link its policy today with period t + 1's
     # tomorrow (the numpy computation above, with the two periods' grid policies).
     document = with_horizon(_document(30, 4), {"periods": 4, "terminal_value": 0.0})
-    del document["report"]["stationary"]  # a finite horizon has none (refused)
     result = solve(document)
     errors = result["diagnostics"]["euler_errors"]
     by_period = errors["by_period"]
@@ -233,7 +232,6 @@ def test_a_continuous_choice_over_a_finite_horizon_is_measured_with_each_period_
     for k_points in (25, 50, 100):
         document = with_horizon(_document(k_points, 5, continuous=True, interpolation="monotone_cubic"),
                                 {"periods": 5, "terminal_value": 0.0})
-        del document["report"]["stationary"]  # a finite horizon has none (refused)
         errors = solve(document)["diagnostics"]["euler_errors"]
         assert errors["by_period"]["period"] == [0, 1, 2, 3] and errors["constrained"] == 0
         worst.append(errors["max_log10"])
