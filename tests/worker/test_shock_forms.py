@@ -119,10 +119,6 @@ def test_a_crra_reward_written_with_where_solves_at_gamma_one(variant: str, gamm
             document["model"]["hints"] = {"monotone": True, "concave": True}
         if variant in ("continuous", "endogenous_grid"):
             document["model"]["choices"]["save"]["continuous"] = True
-            # Read with the shape-preserving cubic: at γ ≠ 1 the plain reward is then the bundled beekeeper example's
-            # structure, whose kernels other tests compile (DEVELOPERS.md, the suite's time); the reward is evaluated
-            # by the same compiled code whichever interpolation reads tomorrow's value.
-            document["model"]["interpolation"] = "monotone_cubic"
         if variant == "endogenous_grid":
             document["solver"]["method"] = "endogenous_grid"
         documents.append(document)
