@@ -31,16 +31,20 @@ RETURN = 1.03
 
 
 def household(terminal: str) -> dict[str, Any]:
-    """An invented household (a beekeeper with a good and a bad honey year) saving for a bequest."""
+    """An invented household (a beekeeper with a good and a bad honey year) saving for a bequest.
+
+    Written as ``tests._documents.aging_saver`` writes its household (interest ``r``, income by period times
+    ``exp`` of a shock in logs, its params in that order), so the two are one structure and share their compiled
+    kernels (DEVELOPERS.md, the suite's time): the same numbers as the reference's, up to rounding."""
     return {
         "version": 1, "label": "beekeeper with a bequest (invented)", "discount": BETA,
         "model": {
             "kind": "grid",
-            "params": {"R": RETURN, "inc": INCOME, "g": GAMMA},
+            "params": {"r": RETURN - 1, "g": GAMMA, "inc": INCOME},
             "states": {"a": {"min": 0.0, "max": 6.0, "points": POINTS}},
-            "shocks": {"z": {"markov": {"values": SHOCKS.tolist(), "matrix": MATRIX.tolist()}}},
+            "shocks": {"z": {"markov": {"values": np.log(SHOCKS).tolist(), "matrix": MATRIX.tolist()}}},
             "choices": {"a_next": {"next_of": "a", "continuous": True}},
-            "define": {"c": "R * a + inc * z - a_next"},
+            "define": {"c": "(1 + r) * a + inc * exp(z) - a_next"},
             "reward": "c**(1-g)/(1-g)", "feasible": ["c > 0"],
             "interpolation": "linear", "hints": {"concave": True},
             "horizon": {"periods": PERIODS, "terminal_value": terminal},
