@@ -181,6 +181,8 @@ Points = Annotated[
 ]
 Positive = Annotated[float, Field(gt=0)]
 Spacing = Literal["uniform", "log", "power"]
+RealEnds = list[Literal["min", "max"]]
+"""Ends of a grid declared real limits of the problem (``real_ends`` of a state's grid or a choice's own)."""
 
 
 _SIZES = {"max_elements": MAX_ARRAY_ELEMENTS, "inline_elements": CANONICAL_INLINE_ELEMENTS}

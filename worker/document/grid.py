@@ -23,6 +23,7 @@ from worker.document._fields import (
     Part,
     Points,
     Positive,
+    RealEnds,
     Spacing,
     Vector,
 )
@@ -74,7 +75,7 @@ class GridAxis(Part):
             "points)."
         ),
     )
-    real_ends: list[Literal["min", "max"]] = Field(
+    real_ends: RealEnds = Field(
         default_factory=list,
         description=(
             'Ends of the grid that are real limits of the state (a borrowing limit, a capacity): "min", "max" '
@@ -165,7 +166,7 @@ class ChoiceSpec(Part):
         ),
     )
 
-    real_ends: list[Literal["min", "max"]] = Field(
+    real_ends: RealEnds = Field(
         default_factory=list,
         description=(
             'Ends of the choice\'s own grid (min, max and points, or a menu of values) that are real limits of '
